@@ -1,0 +1,27 @@
+# One entry point per job. Every target creates the virtual environment it needs.
+PYTHON ?= python3
+VENV ?= .venv
+PY := $(VENV)/bin/python
+STAMP := $(VENV)/.installed
+
+.PHONY: demo test lint bench clean
+
+$(STAMP): pyproject.toml
+	$(PYTHON) -m venv $(VENV)
+	$(PY) -m pip install --quiet --upgrade pip
+	$(PY) -m pip install --quiet -e '.[test]'
+	touch $(STAMP)
+
+demo: $(STAMP)
+	$(VENV)/bin/slicetime demo --out demo-output
+
+test: $(STAMP)
+	$(PY) -m ruff check slicetime tests
+	$(PY) -m pytest -q
+
+lint: $(STAMP)
+	$(PY) -m ruff check slicetime tests
+	$(PY) -m ruff format --check slicetime tests
+
+clean:
+	rm -rf $(VENV) demo-output .pytest_cache .hypothesis build *.egg-info

@@ -1,0 +1,281 @@
+"""The ``slicetime`` command line. Thin: parse, call a pipeline, render.
+
+Exit codes (contract): 0 nothing at or above ``--fail-on``; 1 findings at or
+above it; 2 bad usage or unreadable input given explicitly. A user's mistake
+or a bad file never produces a traceback: it is one line on stderr.
+"""
+
+from __future__ import annotations
+
+import functools
+import json
+import os
+import sys
+from collections.abc import Callable
+from pathlib import Path
+from typing import Any, TypeVar
+
+import click
+
+from slicetime import __version__
+
+F = TypeVar("F", bound=Callable[..., Any])
+
+EXIT_FINDINGS = 1
+EXIT_USAGE = 2
+EXIT_INTERNAL = 3
+
+
+class UserError(click.ClickException):
+    """A one-line problem with what the user asked for (exit 2)."""
+
+    exit_code = EXIT_USAGE
+
+    def show(self, file: Any = None) -> None:
+        click.echo(f"slicetime: {self.format_message()}", err=True)
+
+
+def friendly(fn: F) -> F:
+    """Turn reader errors into one-line messages and unexpected crashes into exit 3."""
+
+    @functools.wraps(fn)
+    def wrapper(*args: Any, **kwargs: Any) -> Any:
+        from slicetime.readers.errors import ReadError
+
+        try:
+            return fn(*args, **kwargs)
+        except ReadError as exc:
+            raise UserError(exc.message) from None
+        except (click.ClickException, click.exceptions.Exit, click.Abort, SystemExit):
+            raise
+        except KeyboardInterrupt:
+            click.echo("slicetime: interrupted", err=True)
+            sys.exit(130)
+        except BrokenPipeError:
+            sys.exit(0)
+        except Exception as exc:  # a bug: keep the user's terminal clean, allow debugging
+            if os.environ.get("SLICETIME_DEBUG"):
+                raise
+            click.echo(
+                f"slicetime: internal error ({type(exc).__name__}: {exc}); "
+                "rerun with SLICETIME_DEBUG=1 for the traceback and please report it",
+                err=True,
+            )
+            sys.exit(EXIT_INTERNAL)
+
+    return wrapper  # type: ignore[return-value]
+
+
+@click.group(context_settings={"help_option_names": ["-h", "--help"], "max_content_width": 100})
+@click.version_option(__version__, prog_name="slicetime")
+def cli() -> None:
+    """Audit, repair and correct fMRI slice timing across BIDS-style datasets."""
+
+
+# --------------------------------------------------------------------------- show
+@cli.command()
+@click.argument("file", type=click.Path(path_type=Path))
+@click.option("--json", "as_json", is_flag=True, help="Print the run object of the JSON report.")
+@friendly
+def show(file: Path, as_json: bool) -> None:
+    """Show one run: its schedule, where each value came from, its scheme and findings."""
+    from slicetime.interfaces.report_json import dumps, run_object
+    from slicetime.interfaces.terminal import make_console, render_show
+    from slicetime.pipelines.audit import audit_one
+    from slicetime.readers.dataset import find_root
+    from slicetime.readers.errors import check_regular_file
+
+    check_regular_file(file, str(file), what="image")
+    root = find_root(file.resolve().parent if not file.is_dir() else file)
+    run = audit_one(root, file.absolute() if not file.is_absolute() else file)
+    if as_json:
+        click.echo(dumps(run_object(run)))
+    else:
+        render_show(run, make_console())
+
+
+# --------------------------------------------------------------------------- audit
+@cli.command()
+@click.argument("paths", nargs=-1, required=True, type=click.Path(path_type=Path))
+@click.option("--format", "fmt", type=click.Choice(["text", "json"]), default="text",
+              show_default=True, help="Report format on stdout (or --output).")
+@click.option("--output", type=click.Path(path_type=Path, dir_okay=False),
+              help="Write the report to this file instead of stdout.")
+@click.option("--fail-on", type=click.Choice(["error", "warning", "never"]), default="error",
+              show_default=True, help="Exit 1 when a finding reaches this severity.")
+@click.option("--hide-notes", is_flag=True, help="Leave notes out of the text report.")
+@click.option("--include-derivatives", is_flag=True, help="Also audit derivatives/.")
+@click.option("--include-sourcedata", is_flag=True, help="Also audit sourcedata/.")
+@click.option("--include-hidden", is_flag=True, help="Also audit hidden folders and files.")
+@friendly
+def audit(
+    paths: tuple[Path, ...],
+    fmt: str,
+    output: Path | None,
+    fail_on: str,
+    hide_notes: bool,
+    include_derivatives: bool,
+    include_sourcedata: bool,
+    include_hidden: bool,
+) -> None:
+    """Audit every run under PATHS (dataset roots, subject folders or run files)."""
+    from slicetime.interfaces.report_json import audit_object, dumps
+    from slicetime.interfaces.terminal import make_console, render_audit
+    from slicetime.pipelines.audit import audit_paths
+
+    result = audit_paths(
+        list(paths),
+        include_derivatives=include_derivatives,
+        include_sourcedata=include_sourcedata,
+        include_hidden=include_hidden,
+    )
+    root_given = str(paths[0]) if len(paths) == 1 else " ".join(str(p) for p in paths)
+    if fmt == "json":
+        text = dumps(audit_object(result, root_given)) + "\n"
+        if output:
+            _write_text(output, text)
+        else:
+            click.echo(text, nl=False)
+    else:
+        if output:
+            with open(output, "w", encoding="utf-8") as fh:
+                render_audit(result, make_console(fh), show_notes=not hide_notes)
+        else:
+            render_audit(result, make_console(), show_notes=not hide_notes)
+    sys.exit(result.exit_code(fail_on))
+
+
+def _write_text(path: Path, text: str) -> None:
+    try:
+        tmp = path.with_name(f".{path.name}.tmp-{os.getpid()}")
+        tmp.write_text(text, encoding="utf-8")
+        os.replace(tmp, path)
+    except OSError as exc:
+        raise UserError(f"{path}: cannot write the report: {exc.strerror or exc}") from None
+
+
+# --------------------------------------------------------------------------- timing
+@cli.command()
+@click.option("--slices", "n_slices", type=click.IntRange(min=1), required=True,
+              help="Number of slices along the slice axis.")
+@click.option("--tr", "tr", type=click.FloatRange(min=0, min_open=True),
+              help="Repetition time in seconds.")
+@click.option("--acquisition-time", "ta", type=click.FloatRange(min=0, min_open=True),
+              help="Time over which the slices are spread, when shorter than the TR "
+              "(sparse protocols). Defaults to the TR.")
+@click.option("--order", type=click.Choice(["sequential", "interleaved"]), default="sequential",
+              show_default=True, help="Order of excitation along the slice encoding direction.")
+@click.option("--descending", is_flag=True,
+              help="Acquire from the last slice (along the encoding direction) first.")
+@click.option("--step", type=click.IntRange(min=2), default=2, show_default=True,
+              help="Distance between successive slices of an interleaved order.")
+@click.option("--first", "first", default=None,
+              help="First slice acquired in an interleaved order (a slice index), or 'auto': "
+              "from 1 when the count is even, else from 0.")
+@click.option("--multiband", type=click.IntRange(min=1), default=1, show_default=True,
+              help="Multiband factor: slices excited together, spaced N/M apart.")
+@click.option("--axis", "axis", type=click.Choice(["i", "j", "k", "i-", "j-", "k-"]),
+              default="k", show_default=True,
+              help="SliceEncodingDirection of the run the list is for.")
+@click.option("--decimals", type=click.IntRange(min=0, max=9), default=4, show_default=True,
+              help="Round the times to this many decimals.")
+@friendly
+def timing(
+    n_slices: int,
+    tr: float | None,
+    ta: float | None,
+    order: str,
+    descending: bool,
+    step: int,
+    first: str | None,
+    multiband: int,
+    axis: str,
+    decimals: int,
+) -> None:
+    """Print SliceTiming for a protocol, as JSON to paste into a sidecar.
+
+    \b
+    Examples:
+      slicetime timing --slices 40 --tr 2 --order interleaved
+      slicetime timing --slices 60 --tr 1 --multiband 4 --order interleaved --first auto
+    """
+    from slicetime.schemes.generate import Protocol, array_times, slice_timing
+    from slicetime.schemes.infer import infer_scheme
+
+    if tr is None and ta is None:
+        raise UserError("timing: give --tr (and --acquisition-time for sparse protocols)")
+    start: int | str | None = None
+    if first is not None:
+        if first == "auto":
+            start = "auto"
+        else:
+            try:
+                start = int(first)
+            except ValueError:
+                raise UserError(f"--first must be a slice index or 'auto', not {first!r}") \
+                    from None
+    protocol = Protocol(
+        n_slices=n_slices,
+        order=order,  # type: ignore[arg-type]
+        ascending=not descending,
+        step=step,
+        start=start,  # type: ignore[arg-type]
+        multiband=multiband,
+        repetition_time=tr,
+        acquisition_time=ta,
+        direction="-" if axis.endswith("-") else "+",
+        decimals=decimals,
+    )
+    try:
+        times = slice_timing(protocol)
+    except ValueError as exc:
+        raise UserError(f"timing: {exc}") from None
+    fields: dict[str, Any] = {"SliceTiming": times}
+    if tr is not None:
+        fields["RepetitionTime"] = tr
+    if ta is not None and tr is not None and ta < tr:
+        fields["DelayTime"] = round(tr - ta, decimals)
+    fields["SliceEncodingDirection"] = axis
+    if multiband > 1:
+        fields["MultibandAccelerationFactor"] = multiband
+    label = infer_scheme(array_times(protocol)).label
+    click.echo(json.dumps(fields, indent=2))
+    click.echo(f"scheme in data-array order: {label}", err=True)
+
+
+# --------------------------------------------------------------------------- explain
+@cli.command()
+@click.argument("code", required=False)
+@click.option("--list", "list_all", is_flag=True, help="List every finding code.")
+@friendly
+def explain(code: str | None, list_all: bool) -> None:
+    """Print the documentation of a finding CODE (or --list them all)."""
+    from slicetime.rules import RULES
+    from slicetime.rules import explain as explain_rule
+
+    if list_all or code is None:
+        width = max(len(c) for c in RULES)
+        for rule in sorted(RULES.values(), key=lambda r: r.code):
+            click.echo(f"{rule.code:<{width}}  {rule.severity.value:<7}  {rule.title}")
+        return
+    if code not in RULES:
+        near = [c for c in RULES if code.split("/")[-1] in c]
+        extra = f"; did you mean {', '.join(sorted(near)[:3])}?" if near else ""
+        raise UserError(f"explain: no finding code {code!r}{extra} (see slicetime explain --list)")
+    click.echo(explain_rule(code))
+
+
+# --------------------------------------------------------------------------- demo
+@cli.command()
+@click.option("--out", type=click.Path(path_type=Path, file_okay=False), default=Path(
+    "demo-output"), show_default=True, help="Folder for the invented dataset and reports.")
+@friendly
+def demo(out: Path) -> None:
+    """Build a small invented dataset and audit it."""
+    from slicetime.pipelines.demo import run_demo
+
+    sys.exit(run_demo(out))
+
+
+def main() -> None:
+    cli(prog_name="slicetime")

@@ -1,0 +1,64 @@
+"""The JSON report (contract in DESIGN.md) and its shipped JSON Schema."""
+
+from __future__ import annotations
+
+import json
+from functools import lru_cache
+from importlib import resources
+from typing import Any
+
+from slicetime import __version__
+from slicetime.pipelines.audit import AuditResult, RunResult
+
+
+@lru_cache(maxsize=1)
+def report_schema() -> dict[str, Any]:
+    text = resources.files("slicetime").joinpath("data/report.schema.json").read_text("utf-8")
+    return json.loads(text)
+
+
+def run_object(run: RunResult) -> dict[str, Any]:
+    """One run as the contract's run object."""
+    record = run.record
+    schedule = record.schedule
+    header = record.header
+    sources: dict[str, str] = {}
+    if schedule is not None:
+        sources.update({k: v.describe() for k, v in schedule.sources.items()})
+    for key in ("MultibandAccelerationFactor", "TaskName", "EchoTime"):
+        if key in record.metadata_sources:
+            sources[key] = record.metadata_sources[key]
+    return {
+        "path": record.path,
+        "shape": list(header.shape) if header else None,
+        "slice_axis": schedule.axis if schedule else None,
+        "slice_direction": schedule.direction if schedule else None,
+        "repetition_time": schedule.repetition_time if schedule else (
+            header.repetition_time if header else None),
+        "volume_times": list(schedule.volume_times) if schedule and schedule.volume_times
+        else None,
+        "acquisition_duration": schedule.acquisition_duration if schedule else None,
+        "slice_times": [round(t, 6) for t in schedule.times] if schedule else None,
+        "timing_origin": record.timing_origin,
+        "scheme": record.scheme.to_json() if record.scheme else None,
+        "sources": sources,
+        "entities": dict(record.entities),
+        "sidecars": list(record.sidecar_chain),
+        "findings": [f.to_json() for f in run.findings],
+    }
+
+
+def audit_object(result: AuditResult, root_given: str) -> dict[str, Any]:
+    counts = result.counts()
+    return {
+        "tool": {"name": "slicetime", "version": __version__},
+        "root": root_given,
+        "roots": result.roots,
+        "runs": [run_object(r) for r in result.runs],
+        "dataset_findings": [f.to_json() for f in result.dataset_findings],
+        "summary": {"runs": len(result.runs), **counts},
+    }
+
+
+def dumps(obj: Any) -> str:
+    return json.dumps(obj, indent=2, ensure_ascii=False, allow_nan=False)

@@ -1,0 +1,168 @@
+"""Terminal output for people: one run in detail (show), a dataset summary (audit).
+
+Uses rich so that colour appears only on a terminal, ``NO_COLOR`` is honoured
+and piped output is plain text.
+"""
+
+from __future__ import annotations
+
+import os
+import sys
+from collections.abc import Iterable
+
+from rich.console import Console
+from rich.table import Table
+from rich.text import Text
+
+from slicetime.interfaces.diagram import order_diagram
+from slicetime.model import Finding, Severity
+from slicetime.pipelines.audit import AuditResult, RunResult
+
+#: our own palette: severities read at a glance without shouting
+STYLE = {
+    Severity.ERROR: "bold red3",
+    Severity.WARNING: "dark_orange3",
+    Severity.NOTE: "steel_blue",
+}
+BADGE = {Severity.ERROR: "ERR", Severity.WARNING: "WRN", Severity.NOTE: "NTE"}
+
+
+def make_console(file: object = None) -> Console:
+    stream = file if file is not None else sys.stdout
+    is_tty = bool(getattr(stream, "isatty", lambda: False)())
+    return Console(
+        file=stream,  # type: ignore[arg-type]
+        width=None if is_tty else int(os.environ.get("COLUMNS", "120")),
+        highlight=False,
+        soft_wrap=True,
+        no_color="NO_COLOR" in os.environ,
+        emoji=False,
+    )
+
+
+def supports_unicode(console: Console) -> bool:
+    encoding = (console.encoding or "").lower()
+    return "utf" in encoding and os.environ.get("SLICETIME_ASCII") is None
+
+
+def _ms(value: float) -> str:
+    return f"{value * 1000:.1f} ms" if value < 1 else f"{value:g} s"
+
+
+def finding_lines(findings: Iterable[Finding], indent: str = "  ") -> list[Text]:
+    lines = []
+    for f in sorted(findings, key=lambda f: -f.severity.rank):
+        line = Text(indent)
+        line.append(f"{BADGE[f.severity]} ", style=STYLE[f.severity])
+        line.append(f"{f.code}", style="bold")
+        where = f.file or ""
+        if f.field:
+            where = f"{where} › {f.field}" if where else f.field
+        line.append(f"  {f.message}")
+        if where:
+            line.append(f"\n{indent}    at {where}", style="dim")
+        if f.hint:
+            line.append(f"\n{indent}    → {f.hint}", style="italic")
+        lines.append(line)
+    return lines
+
+
+def render_show(run: RunResult, console: Console) -> None:
+    """The detailed view of one run."""
+    record = run.record
+    schedule = record.schedule
+    header = record.header
+    console.print(Text(record.path, style="bold"))
+    facts = Table.grid(padding=(0, 2))
+    facts.add_column(style="dim", no_wrap=True)
+    facts.add_column()
+    if header is not None:
+        facts.add_row("shape", " × ".join(str(d) for d in header.shape)
+                       + f"   (NIfTI-{header.version}{', gzip' if header.compressed else ''})")
+    if schedule is not None:
+        facts.add_row("slice axis", f"{schedule.axis} ({schedule.direction})"
+                      + ("   SliceTiming lists the highest index first"
+                         if schedule.direction == "-" else ""))
+        if schedule.repetition_time is not None:
+            facts.add_row("repetition time", f"{schedule.repetition_time:g} s")
+        if schedule.volume_times:
+            facts.add_row("volume times", f"{len(schedule.volume_times)} onsets (VolumeTiming)")
+        if schedule.acquisition_window is not None and schedule.delay_time:
+            facts.add_row("acquisition window", f"{schedule.acquisition_window:g} s "
+                          f"(DelayTime {schedule.delay_time:g} s)")
+    scheme = record.scheme
+    if scheme is not None:
+        detail: list[str] = []
+        if scheme.spacing:
+            detail.append(f"one excitation every {_ms(scheme.spacing)}")
+        detail.append(f"{len(scheme.groups)} excitation group"
+                      f"{'s' if len(scheme.groups) != 1 else ''}")
+        facts.add_row("scheme", Text(scheme.label, style="bold") + Text(
+            "   " + ", ".join(detail), style="dim"))
+    elif header is not None:
+        facts.add_row("scheme", Text("unknown: no usable slice timing", style="italic"))
+    console.print(facts)
+
+    if schedule is not None:
+        console.print(Text("\nwhere each value came from", style="dim"))
+        src = Table.grid(padding=(0, 2))
+        src.add_column(no_wrap=True)
+        src.add_column(style="dim")
+        for key, source in schedule.sources.items():
+            src.add_row(f"  {key}", source.describe())
+        console.print(src)
+        console.print(Text("\nacquisition order (slice index ↑, time within the volume →)"
+                           if supports_unicode(console) else
+                           "\nacquisition order (slice index up, time within the volume right)",
+                           style="dim"))
+        for line in order_diagram(schedule.times, schedule.acquisition_window
+                                  or schedule.repetition_time,
+                                  unicode=supports_unicode(console)):
+            console.print("  " + line)
+    if run.findings:
+        console.print(Text("\nfindings", style="dim"))
+        for line in finding_lines(run.findings):
+            console.print(line)
+    else:
+        console.print(Text("\nno findings", style="dim"))
+
+
+def render_audit(result: AuditResult, console: Console, *, show_notes: bool = True) -> None:
+    """A table of runs with their scheme and counts, then the findings per run."""
+    table = Table(title=None, show_edge=False, pad_edge=False, header_style="bold")
+    table.add_column("run", overflow="fold")
+    table.add_column("scheme", overflow="fold")
+    table.add_column("TR", justify="right", no_wrap=True)
+    for sev in Severity:
+        table.add_column(BADGE[sev], justify="right", style=STYLE[sev], no_wrap=True)
+    for run in result.runs:
+        record = run.record
+        counts = {s: 0 for s in Severity}
+        for f in run.findings:
+            counts[f.severity] += 1
+        tr = record.schedule.repetition_time if record.schedule else None
+        table.add_row(
+            record.path,
+            record.scheme.label if record.scheme else "—",
+            f"{tr:g}" if tr else "—",
+            *(str(counts[s]) if counts[s] else "" for s in Severity),
+        )
+    console.print(table)
+    for run in result.runs:
+        shown = [f for f in run.findings if show_notes or f.severity != Severity.NOTE]
+        if shown:
+            console.print(Text(f"\n{run.record.path}", style="bold"))
+            for line in finding_lines(shown):
+                console.print(line)
+    if result.dataset_findings:
+        console.print(Text("\ndataset", style="bold"))
+        for line in finding_lines(result.dataset_findings):
+            console.print(line)
+    counts = result.counts()
+    summary = Text(f"\n{len(result.runs)} run{'s' if len(result.runs) != 1 else ''} audited: ")
+    for i, sev in enumerate(Severity):
+        if i:
+            summary.append(", ")
+        summary.append(f"{counts[sev.value]} {sev.value}{'s' if counts[sev.value] != 1 else ''}",
+                       style=STYLE[sev] if counts[sev.value] else None)
+    console.print(summary)

@@ -1,0 +1,284 @@
+"""Plain values shared by every layer: schedules, schemes, findings, sources.
+
+Nothing here touches the file system. Every other layer builds on these types,
+so they stay small, immutable and serialisable.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import enum
+from collections.abc import Mapping
+from dataclasses import dataclass
+from typing import Any, Literal
+
+Axis = Literal["i", "j", "k"]
+Direction = Literal["+", "-"]
+AXES: tuple[Axis, ...] = ("i", "j", "k")
+
+
+class Severity(str, enum.Enum):
+    """How bad a finding is. Ordered: error > warning > note."""
+
+    ERROR = "error"
+    WARNING = "warning"
+    NOTE = "note"
+
+    @property
+    def rank(self) -> int:
+        return {"error": 3, "warning": 2, "note": 1}[self.value]
+
+    @classmethod
+    def parse(cls, text: str) -> Severity:
+        try:
+            return cls(text.lower())
+        except ValueError:
+            raise ValueError(
+                f"unknown severity {text!r}; expected one of error, warning, note"
+            ) from None
+
+
+@dataclass(frozen=True)
+class Source:
+    """Where one resolved value came from.
+
+    kind is one of:
+      sidecar  - a JSON sidecar (``file`` is its path, ``field`` the key)
+      header   - the NIfTI header (``file`` is the image, ``field`` the header field)
+      derived  - computed from other values (``field`` says how)
+      default  - a documented default of the BIDS standard or of slicetime
+      policy   - the lab policy file
+      cli      - given on the command line
+    """
+
+    kind: Literal["sidecar", "header", "derived", "default", "policy", "cli"]
+    field: str
+    file: str | None = None
+
+    def describe(self) -> str:
+        if self.file:
+            return f"{self.file} ({self.field})" if self.kind != "sidecar" else self.file
+        return f"{self.kind}: {self.field}"
+
+    def to_json(self) -> dict[str, Any]:
+        return {"kind": self.kind, "file": self.file, "field": self.field}
+
+
+@dataclass(frozen=True)
+class SliceSchedule:
+    """When each slice of a volume was acquired.
+
+    ``times`` are seconds from the start of each volume, in data-array order
+    (slice index 0 first along ``axis``), i.e. after ``SliceEncodingDirection``
+    has been applied: with direction ``-`` the sidecar list is reversed.
+    """
+
+    times: tuple[float, ...]
+    axis: Axis = "k"
+    direction: Direction = "+"
+    repetition_time: float | None = None
+    volume_times: tuple[float, ...] | None = None
+    acquisition_duration: float | None = None  # TA when shorter than the TR (sparse)
+    delay_time: float | None = None
+    sources: Mapping[str, Source] = dataclasses.field(default_factory=dict)
+
+    @property
+    def n_slices(self) -> int:
+        return len(self.times)
+
+    @property
+    def axis_index(self) -> int:
+        return AXES.index(self.axis)
+
+    @property
+    def acquisition_window(self) -> float | None:
+        """Time within which all slices must be acquired (TA, else TR)."""
+        if self.acquisition_duration is not None:
+            return self.acquisition_duration
+        if self.repetition_time is not None:
+            return self.repetition_time - (self.delay_time or 0.0)
+        return None
+
+    def sidecar_order(self) -> tuple[float, ...]:
+        """The times as a ``SliceTiming`` list for this schedule's direction."""
+        return self.times if self.direction == "+" else tuple(reversed(self.times))
+
+
+@dataclass(frozen=True)
+class Scheme:
+    """The acquisition scheme that a schedule describes.
+
+    ``groups`` are the excitation groups in acquisition order, each a sorted
+    tuple of 0-based slice indices in data-array order. ``step``, ``start``,
+    ``ascending`` and ``residue_order`` describe the order of the groups'
+    lowest slice ("base slice") when the order is regular, and are ``None``
+    for an irregular scheme. ``evidence`` explains an irregular verdict.
+    """
+
+    groups: tuple[tuple[int, ...], ...]
+    group_times: tuple[float, ...]
+    multiband_factor: int
+    label: str
+    regular: bool
+    step: int | None = None
+    ascending: bool | None = None
+    start: int | None = None
+    residue_order: tuple[int, ...] | None = None
+    spacing: float | None = None  # seconds between consecutive groups
+    evidence: Mapping[str, Any] = dataclasses.field(default_factory=dict)
+
+    @property
+    def n_slices(self) -> int:
+        return sum(len(g) for g in self.groups)
+
+    def to_json(self) -> dict[str, Any]:
+        return {
+            "label": self.label,
+            "multiband_factor": self.multiband_factor,
+            "groups": [list(g) for g in self.groups],
+            "group_times": [round(t, 6) for t in self.group_times],
+            "step": self.step,
+            "regular": self.regular,
+            "residue_order": list(self.residue_order) if self.residue_order else None,
+            "ascending": self.ascending,
+            "start": self.start,
+            "spacing": self.spacing,
+            "evidence": _jsonable(self.evidence),
+        }
+
+
+@dataclass(frozen=True)
+class Finding:
+    """One problem or remark about a run or a dataset."""
+
+    code: str
+    severity: Severity
+    message: str
+    file: str | None = None
+    field: str | None = None
+    evidence: Mapping[str, Any] = dataclasses.field(default_factory=dict)
+    hint: str | None = None
+
+    def with_severity(self, severity: Severity) -> Finding:
+        return Finding(
+            self.code, severity, self.message, self.file, self.field, self.evidence, self.hint
+        )
+
+    def one_line(self) -> str:
+        where = self.file or ""
+        if self.field:
+            where = f"{where} [{self.field}]" if where else f"[{self.field}]"
+        return f"{self.severity.value}: {self.code}: {where}: {self.message}"
+
+    def to_json(self) -> dict[str, Any]:
+        return {
+            "code": self.code,
+            "severity": self.severity.value,
+            "message": self.message,
+            "file": self.file,
+            "field": self.field,
+            "evidence": _jsonable(self.evidence),
+            "hint": self.hint,
+        }
+
+
+def _jsonable(value: Any) -> Any:
+    """Turn evidence values (tuples, numpy scalars, mappings) into JSON values."""
+    if isinstance(value, Mapping):
+        return {str(k): _jsonable(v) for k, v in value.items()}
+    if isinstance(value, list | tuple):
+        return [_jsonable(v) for v in value]
+    if isinstance(value, bool | str | int | type(None)):
+        return value
+    if isinstance(value, float):
+        return value if value == value and abs(value) != float("inf") else repr(value)
+    if hasattr(value, "item"):  # numpy scalar
+        return _jsonable(value.item())
+    return str(value)
+
+
+def worst(findings: list[Finding] | tuple[Finding, ...]) -> Severity | None:
+    """The highest severity among findings, or None when there are none."""
+    best: Severity | None = None
+    for f in findings:
+        if best is None or f.severity.rank > best.rank:
+            best = f.severity
+    return best
+
+
+@dataclass(frozen=True)
+class HeaderInfo:
+    """What slicetime needs from a NIfTI-1 or NIfTI-2 header (header bytes only).
+
+    Times are converted to seconds using ``xyzt_units``; the raw values are
+    kept beside them for reports. Dimension indices are 0-based.
+    """
+
+    version: int  # 1 or 2
+    shape: tuple[int, ...]  # dim[1..dim[0]]
+    pixdim: tuple[float, ...]  # pixdim[1..dim[0]]
+    datatype: int
+    bitpix: int
+    vox_offset: int
+    byte_order: Literal["<", ">"]
+    time_unit: Literal["s", "ms", "us", "unknown"]
+    raw_pixdim4: float  # pixdim[4] as stored, in ``time_unit``
+    repetition_time: float | None  # pixdim[4] in seconds; None when unset (0) or not 4D
+    freq_dim: int | None
+    phase_dim: int | None
+    slice_dim: int | None  # from dim_info bits 4-5; None when 0 (unknown)
+    slice_code: int
+    slice_start: int
+    slice_end: int
+    raw_slice_duration: float  # as stored, in ``time_unit``
+    slice_duration: float | None  # seconds; None when unset (0)
+    scl_slope: float
+    scl_inter: float
+    compressed: bool
+    file_size: int  # bytes on disk
+    data_bytes: int  # bytes of image data the header claims
+
+    @property
+    def n_volumes(self) -> int:
+        return self.shape[3] if len(self.shape) >= 4 else 1
+
+
+@dataclass(frozen=True)
+class TimingProblem:
+    """A reason a run's timing could not be turned into a schedule."""
+
+    code: str
+    message: str
+    evidence: Mapping[str, Any] = dataclasses.field(default_factory=dict)
+
+
+@dataclass(frozen=True)
+class RunRecord:
+    """One run with everything resolved about it, ready for rules and reports.
+
+    ``path`` is relative to ``root`` with forward slashes (how reports name the
+    run); ``abs_path`` is the real location. ``metadata`` is the sidecar
+    content after the inheritance principle, and ``metadata_sources`` says
+    which sidecar (relative path) supplied each key. ``findings`` holds what
+    was found while reading (bad JSON, bad header, unresolvable timing).
+    """
+
+    path: str
+    abs_path: str
+    root: str
+    entities: Mapping[str, str] = dataclasses.field(default_factory=dict)
+    suffix: str = ""
+    datatype: str | None = None
+    header: HeaderInfo | None = None
+    metadata: Mapping[str, Any] = dataclasses.field(default_factory=dict)
+    metadata_sources: Mapping[str, str] = dataclasses.field(default_factory=dict)
+    sidecar_chain: tuple[str, ...] = ()
+    schedule: SliceSchedule | None = None
+    #: where the slice times came from: "sidecar", "header" or None
+    timing_origin: str | None = None
+    #: why there is no schedule, when there is none
+    timing_problems: tuple[TimingProblem, ...] = ()
+    #: the number of slices along the resolved slice axis, when the header gives it
+    axis_length: int | None = None
+    scheme: Scheme | None = None
+    findings: tuple[Finding, ...] = ()

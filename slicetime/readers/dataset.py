@@ -1,0 +1,239 @@
+"""Finding dataset roots and the runs to audit under the paths a user gives.
+
+:func:`iter_runs` yields ``(root, data_file)`` for every candidate run, as
+absolute paths (symlinks are not resolved, so runs keep their dataset names).
+A file is a candidate run when its name ends in ``.nii`` or ``.nii.gz`` and
+
+* its suffix is a time-series suffix (:data:`TIME_SERIES_SUFFIXES`: ``bold``,
+  ``cbv``, ``phase``, ``asl``, ``dwi``), in any folder; or
+* its own sidecar (same stem, ``.json``) has a top-level ``SliceTiming`` key,
+  unless it sits in an ``anat`` or ``fmap`` folder (structural scans and field
+  maps often carry ``SliceTiming`` but are not time series) or is a
+  single-band reference (``sbref``).
+
+Entries that *look* like runs by name but are broken symlinks (an annexed
+file without local content, a dangling link), symlink loops or folders are
+yielded too, so that reading them turns into a finding (``file/no-content``,
+``file/link-loop``, ``file/unreadable``) rather than a silently missing run.
+
+``derivatives``, ``sourcedata`` and ``code`` folders and hidden names
+(starting with a dot) are skipped at any depth below a given folder unless
+included. Folder symlinks that lead out of the given folder are followed
+(subjects kept on other storage); symlinks to folders inside it are aliases
+(or loops) and are not followed, so each run keeps its real name; a folder
+whose real path was already visited is never entered again, so loops end. Runs come out sorted by
+root, then by path components; each run once.
+"""
+
+from __future__ import annotations
+
+import os
+import stat
+from collections.abc import Callable, Iterator, Sequence
+from pathlib import Path
+
+from slicetime.model import Finding, Severity
+
+from .entities import IMAGE_EXTENSIONS, image_stem, parse_name
+from .errors import ReadError, check_regular_file
+from .sidecar import load_sidecar
+
+__all__ = [
+    "SKIPPED_FOLDERS",
+    "TIME_SERIES_SUFFIXES",
+    "find_root",
+    "is_image_name",
+    "iter_runs",
+]
+
+TIME_SERIES_SUFFIXES: frozenset[str] = frozenset({"bold", "cbv", "phase", "asl", "dwi"})
+#: Suffixes never treated as runs even with SliceTiming in their sidecar.
+_NOT_RUNS: frozenset[str] = frozenset({"sbref"})
+_NOT_RUN_FOLDERS: frozenset[str] = frozenset({"anat", "fmap"})
+#: Folders not searched unless included (``code`` goes with ``sourcedata``).
+SKIPPED_FOLDERS: frozenset[str] = frozenset({"derivatives", "sourcedata", "code"})
+_DESCRIPTION = "dataset_description.json"
+
+
+def _abs(path: Path) -> Path:
+    return Path(os.path.abspath(path))
+
+
+def is_image_name(name: str) -> bool:
+    """True for ``*.nii`` and ``*.nii.gz`` names (case-insensitive extension)."""
+    lower = name.lower()
+    return any(lower.endswith(ext) and len(name) > len(ext) for ext in IMAGE_EXTENSIONS)
+
+
+def find_root(path: Path) -> Path:
+    """The dataset root for ``path`` (absolute, symlinks not resolved).
+
+    The nearest ancestor of ``path`` (or ``path`` itself, when a folder) that
+    holds ``dataset_description.json``; else the parent of the topmost
+    ``sub-*`` folder in the path; else the folder itself (a file's folder for
+    a file).
+    """
+    p = _abs(Path(path))
+    start = p if p.is_dir() else p.parent
+    for candidate in (start, *start.parents):
+        if (candidate / _DESCRIPTION).is_file():
+            return candidate
+    for candidate in reversed((start, *start.parents)):
+        if candidate.name.startswith("sub-"):
+            return candidate.parent
+    return start
+
+
+def _time_series_by_name(name: str) -> bool:
+    parsed = parse_name(name)
+    return parsed is not None and parsed.suffix in TIME_SERIES_SUFFIXES
+
+
+def _has_slice_timing(folder: Path, name: str, listing: set[str]) -> bool:
+    parsed = parse_name(name)
+    if parsed is not None and parsed.suffix in _NOT_RUNS:
+        return False
+    if folder.name in _NOT_RUN_FOLDERS:
+        return False
+    own = image_stem(name) + ".json"
+    if own not in listing:
+        return False
+    data, _findings = load_sidecar(folder / own)
+    return data is not None and "SliceTiming" in data
+
+
+class _Walker:
+    def __init__(
+        self,
+        skip: set[str],
+        include_hidden: bool,
+        on_error: Callable[[Finding], None] | None,
+    ) -> None:
+        self.skip = skip
+        self.include_hidden = include_hidden
+        self.on_error = on_error
+        self.visited: set[str] = set()
+
+    def _report(self, folder: Path, exc: OSError) -> None:
+        if self.on_error is not None:
+            shown = str(folder)
+            self.on_error(
+                Finding(
+                    "file/unreadable",
+                    Severity.ERROR,
+                    f"{shown}: cannot list the folder ({exc.strerror or exc}); "
+                    "its runs are skipped",
+                    file=shown,
+                )
+            )
+
+    def walk(self, folder: Path, top_real: str | None = None) -> Iterator[Path]:
+        """Depth-first, sorted by name."""
+        try:
+            real = os.path.realpath(folder)
+        except OSError as exc:  # pragma: no cover - realpath rarely raises
+            self._report(folder, exc)
+            return
+        if top_real is None:
+            top_real = real
+        if real in self.visited:
+            return
+        self.visited.add(real)
+        try:
+            with os.scandir(folder) as it:
+                entries = sorted(it, key=lambda e: e.name)
+        except OSError as exc:
+            self._report(folder, exc)
+            return
+        names = {e.name for e in entries}
+        for entry in entries:
+            name = entry.name
+            if name.startswith(".") and not self.include_hidden:
+                continue
+            path = folder / name
+            try:
+                is_dir = entry.is_dir()  # follows symlinks
+            except OSError:
+                is_dir = False  # a link loop
+            if is_image_name(name):
+                if is_dir or not _is_regular(path):
+                    if _time_series_by_name(name):
+                        yield path  # reading it reports what is wrong
+                    continue
+                if _time_series_by_name(name) or _has_slice_timing(folder, name, names):
+                    yield path
+                continue
+            if is_dir:
+                if name in self.skip:
+                    continue
+                if entry.is_symlink() and _inside(os.path.realpath(path), top_real):
+                    continue  # an alias of a folder in this tree (or a loop): reached by its name
+                yield from self.walk(path, top_real)
+
+
+def _inside(real: str, top_real: str) -> bool:
+    return real == top_real or real.startswith(top_real.rstrip(os.sep) + os.sep)
+
+
+def _is_regular(path: Path) -> bool:
+    try:
+        return stat.S_ISREG(os.stat(path).st_mode)
+    except OSError:
+        return False
+
+
+def iter_runs(
+    paths: Sequence[Path],
+    *,
+    include_derivatives: bool = False,
+    include_sourcedata: bool = False,
+    include_hidden: bool = False,
+    on_error: Callable[[Finding], None] | None = None,
+) -> Iterator[tuple[Path, Path]]:
+    """Yield ``(root, data_file)`` for every candidate run under ``paths``.
+
+    A path that is a file is yielded as given (made absolute), whatever its
+    name. A folder is searched as described in the module docstring; each
+    run's root is :func:`find_root` of the run. A path that does not exist
+    (including a broken symlink) raises ``ReadError("file/missing")`` before
+    anything is yielded. ``include_sourcedata`` also includes ``code``.
+    Folders that cannot be listed are skipped and, when ``on_error`` is
+    given, reported to it as ``file/unreadable`` findings.
+    """
+    given = [_abs(Path(p)) for p in paths]
+    for p in given:
+        if not os.path.lexists(p) or (os.path.islink(p) and not os.path.exists(p)):
+            shown = str(p)
+            if os.path.islink(p):
+                check_regular_file(p, shown)  # tells an annexed file from a dangling link
+            raise ReadError("file/missing", shown, None, f"{shown}: path does not exist")
+    skip = set(SKIPPED_FOLDERS)
+    if include_derivatives:
+        skip.discard("derivatives")
+    if include_sourcedata:
+        skip -= {"sourcedata", "code"}
+    walker = _Walker(skip, include_hidden, on_error)
+    roots: dict[str, Path] = {}
+
+    def root_of(run: Path) -> Path:
+        key = str(run.parent)
+        if key not in roots:
+            roots[key] = find_root(run)
+        return roots[key]
+
+    found: dict[tuple[str, str], tuple[Path, Path]] = {}
+    for p in given:
+        runs = walker.walk(p) if p.is_dir() else iter([p])
+        for run in runs:
+            root = root_of(run)
+            found.setdefault((str(root), str(run)), (root, run))
+
+    def order(item: tuple[Path, Path]) -> tuple[str, tuple[str, ...]]:
+        root, run = item
+        try:
+            parts = run.relative_to(root).parts
+        except ValueError:
+            parts = run.parts
+        return (str(root), parts)
+
+    yield from sorted(found.values(), key=order)

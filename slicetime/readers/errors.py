@@ -1,0 +1,182 @@
+"""The readers' error type and the file checks every reader shares.
+
+A reader never lets a bare ``OSError``, ``ValueError`` or ``struct.error``
+escape for a bad file. A problem that makes the file unusable is raised as a
+:class:`ReadError` (always severity ``error``); callers that process batches
+turn it into a :class:`~slicetime.model.Finding` with :meth:`ReadError.to_finding`
+and go on with the next file.
+
+File-level codes (our own):
+
+``file/missing``
+    the path does not exist, or is a symlink whose target does not exist;
+``file/no-content``
+    a symlink into an annex-style object store (its target path contains
+    ``annex/objects``) whose content is not present locally;
+``file/link-loop``
+    symlinks that point at each other in a loop;
+``file/unreadable``
+    a permission or other OS error, a directory or anything that is not a
+    regular file (FIFOs and devices are refused so that reading never blocks).
+"""
+
+from __future__ import annotations
+
+import errno
+import os
+import stat
+from collections.abc import Mapping
+from pathlib import Path
+from typing import Any
+
+from slicetime.model import Finding, Severity
+
+__all__ = ["ReadError", "check_regular_file", "display_name", "os_error"]
+
+_MAX_LINK_HOPS = 40
+
+
+class ReadError(Exception):
+    """A fatal problem with one input file.
+
+    ``code`` is a stable finding code such as ``file/truncated``; ``file`` is
+    the display path given by the caller; ``field`` names the header field or
+    sidecar key at fault (or ``None``); ``message`` is one line and already
+    names the file and the field.
+    """
+
+    def __init__(
+        self,
+        code: str,
+        file: str | None,
+        field: str | None,
+        message: str,
+        *,
+        evidence: Mapping[str, Any] | None = None,
+        hint: str | None = None,
+    ) -> None:
+        super().__init__(message)
+        self.code = code
+        self.file = file
+        self.field = field
+        self.message = message
+        self.evidence: dict[str, Any] = dict(evidence or {})
+        self.hint = hint
+
+    def __str__(self) -> str:
+        return f"{self.code}: {self.message}"
+
+    def __repr__(self) -> str:
+        return f"ReadError({self.code!r}, {self.file!r}, {self.field!r}, {self.message!r})"
+
+    def to_finding(self) -> Finding:
+        """This error as a finding of severity ``error``."""
+        return Finding(
+            code=self.code,
+            severity=Severity.ERROR,
+            message=self.message,
+            file=self.file,
+            field=self.field,
+            evidence=dict(self.evidence),
+            hint=self.hint,
+        )
+
+
+def display_name(path: Path | str, display: str | None) -> str:
+    """The name to use for ``path`` in messages: ``display`` when given."""
+    return display if display is not None else str(path)
+
+
+def _annex_target(path: Path) -> str | None:
+    """The first link target on the way from ``path`` that points into an annex store."""
+    current = str(path)
+    for _ in range(_MAX_LINK_HOPS):
+        try:
+            target = os.readlink(current)
+        except OSError:
+            return None
+        if "annex/objects" in target.replace("\\", "/"):
+            return target
+        current = os.path.join(os.path.dirname(current), target)
+    return None
+
+
+def os_error(exc: OSError, shown: str, *, what: str = "file") -> ReadError:
+    """Translate an ``OSError`` raised while opening or reading ``shown`` into a ReadError."""
+    if exc.errno == errno.ELOOP:
+        return ReadError(
+            "file/link-loop",
+            shown,
+            None,
+            f"{shown}: symbolic links form a loop",
+            hint="point the link at a real file",
+        )
+    if isinstance(exc, FileNotFoundError):
+        return ReadError("file/missing", shown, None, f"{shown}: {what} does not exist")
+    if isinstance(exc, IsADirectoryError):
+        return ReadError(
+            "file/unreadable", shown, None, f"{shown}: is a directory, expected a {what}"
+        )
+    if isinstance(exc, PermissionError):
+        return ReadError(
+            "file/unreadable",
+            shown,
+            None,
+            f"{shown}: permission denied while reading the {what}",
+            hint="check the file's permissions",
+        )
+    reason = exc.strerror or exc.__class__.__name__
+    return ReadError("file/unreadable", shown, None, f"{shown}: cannot read the {what}: {reason}")
+
+
+def check_regular_file(path: Path, shown: str, *, what: str = "file") -> os.stat_result:
+    """Return the ``stat`` of ``path`` (following links) or raise the matching ReadError.
+
+    Distinguishes a missing path, a broken symlink (``file/missing``), a symlink
+    into an annex object store whose content is absent (``file/no-content``), a
+    link loop (``file/link-loop``) and anything that is not a regular file
+    (``file/unreadable``).
+    """
+    try:
+        lst = os.lstat(path)
+    except FileNotFoundError:
+        raise ReadError("file/missing", shown, None, f"{shown}: {what} does not exist") from None
+    except OSError as exc:
+        raise os_error(exc, shown, what=what) from None
+    try:
+        st = os.stat(path)
+    except FileNotFoundError:
+        annex = _annex_target(path) if stat.S_ISLNK(lst.st_mode) else None
+        if annex is not None:
+            raise ReadError(
+                "file/no-content",
+                shown,
+                None,
+                f"{shown}: the content of this annexed {what} is not present locally",
+                evidence={"link_target": annex},
+                hint="fetch the file's content from the annex before reading it",
+            ) from None
+        if stat.S_ISLNK(lst.st_mode):
+            try:
+                target = os.readlink(path)
+            except OSError:
+                target = "?"
+            raise ReadError(
+                "file/missing",
+                shown,
+                None,
+                f"{shown}: broken symbolic link (target {target} does not exist)",
+                evidence={"link_target": target},
+            ) from None
+        raise ReadError("file/missing", shown, None, f"{shown}: {what} does not exist") from None
+    except OSError as exc:
+        raise os_error(exc, shown, what=what) from None
+    if stat.S_ISDIR(st.st_mode):
+        raise ReadError(
+            "file/unreadable", shown, None, f"{shown}: is a directory, expected a {what}"
+        )
+    if not stat.S_ISREG(st.st_mode):
+        raise ReadError(
+            "file/unreadable", shown, None, f"{shown}: is not a regular file (a device or pipe)"
+        )
+    return st

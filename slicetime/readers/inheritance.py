@@ -1,0 +1,320 @@
+"""The BIDS inheritance principle: which sidecars apply to a data file, merged how.
+
+A sidecar applies to a data file when it is a ``.json`` file in a folder from
+the dataset root down to the data file's own folder, has the same suffix, and
+its entities are a subset (same keys, same values) of the data file's
+entities. Values from higher folders are inherited unless a deeper sidecar
+sets the same key; the data file's own sidecar (same stem) is the deepest.
+Merging is per top-level key (a deeper object value replaces a higher one
+whole). Separate echoes (``echo-N``) and parts (``part-mag``/``part-phase``)
+are separate runs and resolve independently through the subset rule.
+
+The standard allows at most one applicable sidecar per folder level. When
+there are several, ``inherit/ambiguous`` is reported: a **warning** when they
+agree on every timing field (:data:`~slicetime.readers.sidecar.TIMING_FIELDS`)
+that two of them set, an **error** per timing field on which they disagree,
+naming the files and the field. They are still merged, deterministically: at
+one level fewer entities first and ties by file name, so the more specific
+file overrides the less specific one; the data file's own sidecar always last.
+
+:class:`SidecarIndex` caches folder listings and parsed sidecars for one walk,
+so a top-level sidecar inherited by a thousand runs is parsed once.
+"""
+
+from __future__ import annotations
+
+import copy
+import os
+from collections import OrderedDict
+from collections.abc import Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+from slicetime.model import Finding, Severity
+
+from .entities import ParsedName, image_stem, parse_name
+from .sidecar import TIMING_FIELDS, check_types, load_sidecar
+
+__all__ = ["Resolution", "SidecarIndex", "relative_posix"]
+
+_OWN_CACHE_SIZE = 256
+
+
+def relative_posix(path: Path, root: Path | None) -> str:
+    """``path`` relative to ``root`` with forward slashes, else ``path`` as posix."""
+    if root is not None:
+        try:
+            return path.relative_to(root).as_posix()
+        except ValueError:
+            pass
+    return path.as_posix()
+
+
+def _short(value: Any) -> str:
+    text = repr(value)
+    return text if len(text) <= 40 else text[:37] + "..."
+
+
+@dataclass(frozen=True)
+class Resolution:
+    """The metadata of one data file after the inheritance principle.
+
+    ``metadata`` is a fresh dict (safe to modify); ``sources`` maps each key to
+    the sidecar (relative posix path) that supplied the winning value;
+    ``chain`` lists the applicable sidecars top-down in merge order;
+    ``findings`` holds the parse problems of applicable sidecars (attributed
+    to the sidecar), ``inherit/ambiguous`` findings and, when the index checks
+    types, ``sidecar/wrong-type`` errors for the merged timing fields
+    (attributed to the sidecar that supplied the bad value).
+    """
+
+    metadata: dict[str, Any]
+    sources: dict[str, str]
+    chain: tuple[str, ...]
+    findings: tuple[Finding, ...]
+    name: ParsedName | None = None
+    levels: tuple[tuple[str, ...], ...] = field(default=())
+
+
+@dataclass
+class _Listing:
+    jsons: list[tuple[str, ParsedName | None]]
+    names: frozenset[str]
+    problem: Finding | None = None
+
+
+class SidecarIndex:
+    """Folder listings and parsed sidecars of one walk, with :meth:`resolve`.
+
+    ``root`` is the default dataset root for :meth:`resolve`. With
+    ``check_field_types`` (default) each resolution includes the
+    ``sidecar/wrong-type`` findings of the merged metadata.
+    ``parse_count`` counts sidecar files actually read and parsed.
+    """
+
+    def __init__(self, root: Path | None = None, *, check_field_types: bool = True) -> None:
+        self.root = Path(os.path.abspath(root)) if root is not None else None
+        self.check_field_types = check_field_types
+        self.parse_count = 0
+        self._listings: dict[str, _Listing] = {}
+        self._checked: dict[tuple[str, str], tuple[Finding, ...]] = {}
+        self._shared: dict[tuple[str, str], tuple[dict[str, Any] | None, tuple[Finding, ...]]] = {}
+        self._own: OrderedDict[
+            tuple[str, str], tuple[dict[str, Any] | None, tuple[Finding, ...]]
+        ] = OrderedDict()
+
+    # -- caches ---------------------------------------------------------------------------
+
+    def listing(self, directory: Path, root: Path | None = None) -> _Listing:
+        """The ``.json`` names in ``directory`` (parsed), cached."""
+        key = str(directory)
+        cached = self._listings.get(key)
+        if cached is not None:
+            return cached
+        jsons: list[tuple[str, ParsedName | None]] = []
+        names: set[str] = set()
+        problem: Finding | None = None
+        try:
+            with os.scandir(directory) as it:
+                for entry in it:
+                    names.add(entry.name)
+                    if not entry.name.endswith(".json") or entry.name.startswith("."):
+                        continue
+                    try:
+                        if entry.is_dir():
+                            continue
+                    except OSError:
+                        pass  # a link loop: load_sidecar reports it
+                    jsons.append((entry.name, parse_name(entry.name)))
+        except FileNotFoundError:
+            pass
+        except OSError as exc:
+            shown = relative_posix(directory, root or self.root) or "."
+            problem = Finding(
+                "file/unreadable",
+                Severity.ERROR,
+                f"{shown}: cannot list the folder to find sidecars ({exc.strerror or exc})",
+                file=shown,
+            )
+        jsons.sort()
+        result = _Listing(jsons, frozenset(names), problem)
+        self._listings[key] = result
+        return result
+
+    def load(
+        self, path: Path, display: str, *, shared: bool = True
+    ) -> tuple[dict[str, Any] | None, tuple[Finding, ...]]:
+        """Parse the sidecar at ``path`` once; ``shared=False`` uses a small LRU cache
+        (for a data file's own sidecar, which no other run inherits)."""
+        key = (str(path), display)
+        if key in self._shared:
+            return self._shared[key]
+        if key in self._own:
+            self._own.move_to_end(key)
+            return self._own[key]
+        data, findings = load_sidecar(path, display)
+        self.parse_count += 1
+        value = (data, tuple(findings))
+        if shared:
+            self._shared[key] = value
+        else:
+            self._own[key] = value
+            if len(self._own) > _OWN_CACHE_SIZE:
+                self._own.popitem(last=False)
+        return value
+
+    def _type_findings(
+        self, metadata: dict[str, Any], sources: dict[str, str], own_names: set[str]
+    ) -> list[Finding]:
+        """Type checks of the merged timing fields; a shared sidecar's value is checked once."""
+        out: list[Finding] = []
+        for key in sorted(TIMING_FIELDS.intersection(metadata)):
+            source = sources[key]
+            memo_key = (source, key)
+            cached = self._checked.get(memo_key)
+            if cached is None:
+                cached = tuple(check_types({key: metadata[key]}, source, sources))
+                if source not in own_names:
+                    self._checked[memo_key] = cached
+            out.extend(cached)
+        return out
+
+    # -- resolution -----------------------------------------------------------------------
+
+    def applicable(self, data_file: Path, root: Path | None = None) -> list[list[Path]]:
+        """The applicable sidecars per folder level, top-down, each level in merge order."""
+        data_file = Path(os.path.abspath(data_file))
+        root_path = Path(os.path.abspath(root)) if root is not None else self.root
+        return [[p for p, _own in level] for level in self._levels(data_file, root_path)[0]]
+
+    def _levels(
+        self, data_file: Path, root: Path | None
+    ) -> tuple[list[list[tuple[Path, bool]]], list[Finding]]:
+        parsed = parse_name(data_file.name)
+        folder = data_file.parent
+        folders: list[Path] = [folder]
+        if root is not None and folder != root and folder.is_relative_to(root):
+            folders = [root]
+            for part in folder.relative_to(root).parts:
+                folders.append(folders[-1] / part)
+        own_name = image_stem(data_file.name) + ".json"
+        levels: list[list[tuple[Path, bool]]] = []
+        problems: list[Finding] = []
+        for i, directory in enumerate(folders):
+            listing = self.listing(directory, root)
+            if listing.problem is not None:
+                problems.append(listing.problem)
+            deepest = i == len(folders) - 1
+            chosen: list[tuple[tuple[int, int, str], Path, bool]] = []
+            for name, pn in listing.jsons:
+                own = deepest and name == own_name
+                if name == data_file.name:
+                    continue
+                if own or (
+                    parsed is not None
+                    and pn is not None
+                    and pn.extension == ".json"
+                    and pn.applies_to(parsed)
+                ):
+                    n_entities = len(pn.entities) if pn is not None else 0
+                    chosen.append(((int(own), n_entities, name), directory / name, own))
+            chosen.sort(key=lambda t: t[0])
+            levels.append([(p, own) for _k, p, own in chosen])
+        return levels, problems
+
+    def resolve(self, data_file: Path, root: Path | None = None) -> Resolution:
+        """Merge the applicable sidecars of ``data_file`` under dataset ``root``."""
+        data_path = Path(os.path.abspath(data_file))
+        root_path = Path(os.path.abspath(root)) if root is not None else self.root
+        levels, findings = self._levels(data_path, root_path)
+        metadata: dict[str, Any] = {}
+        sources: dict[str, str] = {}
+        chain: list[str] = []
+        level_names: list[tuple[str, ...]] = []
+        own_names: set[str] = set()
+        for level in levels:
+            loaded: list[tuple[str, dict[str, Any] | None]] = []
+            for path, own in level:
+                shown = relative_posix(path, root_path)
+                if own:
+                    own_names.add(shown)
+                data, problems = self.load(path, shown, shared=not own)
+                findings.extend(problems)
+                chain.append(shown)
+                loaded.append((shown, data))
+                if data:
+                    for key, value in data.items():
+                        metadata[key] = value
+                        sources[key] = shown
+            level_names.append(tuple(name for name, _ in loaded))
+            if len(loaded) > 1:
+                findings.extend(_ambiguity(loaded, relative_posix(data_path, root_path)))
+        if self.check_field_types and metadata:
+            findings.extend(self._type_findings(metadata, sources, own_names))
+        metadata = copy.deepcopy(metadata)
+        return Resolution(
+            metadata=metadata,
+            sources=sources,
+            chain=tuple(chain),
+            findings=tuple(findings),
+            name=parse_name(data_path.name),
+            levels=tuple(level_names),
+        )
+
+
+def _ambiguity(
+    loaded: Sequence[tuple[str, dict[str, Any] | None]], data_shown: str
+) -> list[Finding]:
+    """Findings for several applicable sidecars at one level (``loaded`` in merge order)."""
+    files = [name for name, _ in loaded]
+    listed = ", ".join(files)
+    winner_of: dict[str, str] = {}
+    values_of: dict[str, dict[str, Any]] = {}
+    for name, data in loaded:
+        for key, value in (data or {}).items():
+            values_of.setdefault(key, {})[name] = value
+            winner_of[key] = name
+    disagree = sorted(
+        key
+        for key, per_file in values_of.items()
+        if len(per_file) > 1 and any(v != next(iter(per_file.values())) for v in per_file.values())
+    )
+    timing = [k for k in disagree if k in TIMING_FIELDS]
+    others = [k for k in disagree if k not in TIMING_FIELDS]
+    out: list[Finding] = []
+    for key in timing:
+        per_file = values_of[key]
+        shown_values = "; ".join(f"{f}: {_short(v)}" for f, v in per_file.items())
+        out.append(
+            Finding(
+                "inherit/ambiguous",
+                Severity.ERROR,
+                f"{listed} all apply to {data_shown} at one folder level and disagree on {key} "
+                f"({shown_values}); {winner_of[key]} is used",
+                file=winner_of[key],
+                field=key,
+                evidence={
+                    "files": files,
+                    "values": {f: per_file[f] for f in per_file},
+                    "used": winner_of[key],
+                    "data_file": data_shown,
+                },
+                hint="merge the files, or add entities so that each applies to different runs",
+            )
+        )
+    if not timing:
+        tail = f"; they also differ on {', '.join(others)}" if others else ""
+        out.append(
+            Finding(
+                "inherit/ambiguous",
+                Severity.WARNING,
+                f"{listed} all apply to {data_shown} at one folder level; they agree on every "
+                f"timing field, merged with the more specific file last{tail}",
+                file=files[-1],
+                field=None,
+                evidence={"files": files, "differing_fields": others, "data_file": data_shown},
+                hint="merge the files, or add entities so that each applies to different runs",
+            )
+        )
+    return out

@@ -1,0 +1,501 @@
+"""Header-only NIfTI-1 / NIfTI-2 reader.
+
+:func:`read_header` reads the header bytes of a ``.nii`` or ``.nii.gz`` file
+(never the image data), checks that the dimensions it claims are possible for
+the file on disk, and returns a :class:`~slicetime.model.HeaderInfo`.
+
+Both NIfTI versions and both byte orders are handled; the version and byte
+order come from ``sizeof_hdr`` (348 or 540, read little- then big-endian).
+gzip content is recognised by its magic bytes whatever the file is called, and
+only the first 540 decompressed bytes are produced, with a streaming
+decompressor (``isal`` when importable, else ``zlib``).
+
+Checks, in order, each before any allocation that depends on the header:
+
+1. the file exists and is a regular file (see :mod:`.errors`);
+2. it is gzip when named ``.gz`` and the header decodes: ``sizeof_hdr``,
+   magic, a known ``datatype`` (``file/not-nifti``); the header is complete
+   (``file/truncated``);
+3. ``dim[0]`` is 1..7 and ``dim[1..dim[0]]`` are positive; the claimed image
+   size is below 1 PiB, and for gzip content at most 1032 times the
+   compressed file size, deflate's maximum ratio (``file/bad-dimensions``);
+4. an uncompressed file holds ``vox_offset + data_bytes`` bytes; for gzip
+   content the ISIZE trailer (uncompressed size mod 2**32) matches
+   ``vox_offset + data_bytes`` mod 2**32 (``file/truncated``).
+
+gzip trailer policy: the ISIZE trailer describes only the *last* member of a
+multi-member gzip file, and garbage after the last member hides it too. So a
+trailer mismatch is not reported at once: the stream is then decompressed
+once in bounded chunks, counting bytes and discarding them, through every
+member, stopping as soon as the claimed size is reached (that size is already
+known to be within the 1032:1 bound). Only a stream that really ends short, or
+is corrupt, is reported as ``file/truncated``. A matching trailer costs
+nothing more. Pass ``verify_stream=False`` to report a mismatch without the
+count (faster, but multi-member files are then flagged).
+"""
+
+from __future__ import annotations
+
+import math
+import os
+import struct
+import zlib
+from collections.abc import Callable
+from pathlib import Path
+from typing import Any, BinaryIO, Literal
+
+from slicetime.model import Finding, HeaderInfo
+
+from .errors import ReadError, check_regular_file, display_name, os_error
+
+try:  # pragma: no cover - depends on the environment
+    from isal import isal_zlib as _fast_zlib
+
+    _DECOMPRESS_ERRORS: tuple[type[BaseException], ...] = (zlib.error, _fast_zlib.error)
+
+    def _new_decompressor() -> Any:
+        return _fast_zlib.decompressobj(wbits=31)
+
+except ImportError:  # pragma: no cover
+    _DECOMPRESS_ERRORS = (zlib.error,)
+
+    def _new_decompressor() -> Any:
+        return zlib.decompressobj(wbits=31)
+
+
+__all__ = ["DATATYPE_BITS", "MAX_DEFLATE_RATIO", "MAX_IMAGE_BYTES", "read_header"]
+
+GZIP_MAGIC = b"\x1f\x8b"
+NIFTI1_SIZE = 348
+NIFTI2_SIZE = 540
+#: deflate cannot expand data by more than about 1032:1 (RFC 1951 block limits).
+MAX_DEFLATE_RATIO = 1032
+#: No real image holds a pebibyte; anything above it is a corrupt header.
+MAX_IMAGE_BYTES = 1 << 50
+_READ_CHUNK = 1 << 16
+_COUNT_CHUNK = 1 << 20
+
+#: Bits per voxel of each NIfTI datatype code (nifti1.h, from memory).
+DATATYPE_BITS: dict[int, int] = {
+    1: 1,  # binary
+    2: 8,  # uint8
+    4: 16,  # int16
+    8: 32,  # int32
+    16: 32,  # float32
+    32: 64,  # complex64
+    64: 64,  # float64
+    128: 24,  # rgb24
+    256: 8,  # int8
+    512: 16,  # uint16
+    768: 32,  # uint32
+    1024: 64,  # int64
+    1280: 64,  # uint64
+    1536: 128,  # float128
+    1792: 128,  # complex128
+    2048: 256,  # complex256
+    2304: 32,  # rgba32
+}
+
+# (offset, struct format) of the fields we use; nifti1.h / nifti2.h layouts.
+_FIELDS_1: dict[str, tuple[int, str]] = {
+    "dim_info": (39, "B"),
+    "dim": (40, "8h"),
+    "datatype": (70, "h"),
+    "bitpix": (72, "h"),
+    "slice_start": (74, "h"),
+    "pixdim": (76, "8f"),
+    "vox_offset": (108, "f"),
+    "scl_slope": (112, "f"),
+    "scl_inter": (116, "f"),
+    "slice_end": (120, "h"),
+    "slice_code": (122, "B"),
+    "xyzt_units": (123, "B"),
+    "slice_duration": (132, "f"),
+    "magic": (344, "4s"),
+}
+_FIELDS_2: dict[str, tuple[int, str]] = {
+    "magic": (4, "8s"),
+    "datatype": (12, "h"),
+    "bitpix": (14, "h"),
+    "dim": (16, "8q"),
+    "pixdim": (104, "8d"),
+    "vox_offset": (168, "q"),
+    "scl_slope": (176, "d"),
+    "scl_inter": (184, "d"),
+    "slice_duration": (208, "d"),
+    "slice_start": (224, "q"),
+    "slice_end": (232, "q"),
+    "slice_code": (496, "i"),
+    "xyzt_units": (500, "i"),
+    "dim_info": (524, "B"),
+}
+_MAGIC_1 = {b"n+1\x00": True, b"ni1\x00": False}  # value: image data in the same file
+_MAGIC_2 = {b"n+2\x00\r\n\x1a\n": True, b"ni2\x00\r\n\x1a\n": False}
+_TIME_UNITS: dict[int, tuple[Literal["s", "ms", "us"], float]] = {
+    8: ("s", 1.0),
+    16: ("ms", 1e-3),
+    24: ("us", 1e-6),
+}
+
+
+def _size_text(n: int) -> str:
+    for unit, scale in (("TiB", 1 << 40), ("GiB", 1 << 30), ("MiB", 1 << 20), ("KiB", 1 << 10)):
+        if n >= scale:
+            return f"{n / scale:.1f} {unit}"
+    return f"{n} bytes"
+
+
+class _GzipReader:
+    """Bounded streaming decompression of a gzip file, across members."""
+
+    def __init__(self, fh: BinaryIO, shown: str, first: bytes) -> None:
+        self._fh = fh
+        self._shown = shown
+        self._pending = first
+        self._d = _new_decompressor()
+        self.ended_cleanly = False  # the last member seen had its end marker
+
+    def _input(self) -> bytes:
+        if self._pending:
+            data, self._pending = self._pending, b""
+            return data
+        return self._fh.read(_READ_CHUNK)
+
+    def read(self, limit: int, sink: Callable[[bytes], None]) -> int:
+        """Decompress up to ``limit`` bytes into ``sink``; return how many were produced."""
+        produced = 0
+        while produced < limit:
+            tail = self._d.unconsumed_tail
+            data = tail if tail else self._input()
+            try:
+                out = self._d.decompress(data, min(limit - produced, _COUNT_CHUNK))
+            except _DECOMPRESS_ERRORS as exc:
+                raise ReadError(
+                    "file/not-nifti",
+                    self._shown,
+                    None,
+                    f"{self._shown}: the gzip-compressed data is corrupt ({exc})",
+                ) from None
+            if out:
+                sink(out)
+                produced += len(out)
+            if self._d.eof:
+                rest = self._d.unused_data or self._fh.read(_READ_CHUNK)
+                if rest[:2] != GZIP_MAGIC:
+                    self.ended_cleanly = True  # end of the last member (trailing bytes ignored)
+                    break
+                self._d = _new_decompressor()
+                self._pending = rest
+            elif not data and not out:
+                self.ended_cleanly = False  # input exhausted inside a member
+                break
+        return produced
+
+
+def _decode(buf: bytes, shown: str) -> tuple[int, Literal["<", ">"], dict[str, Any]]:
+    """Version, byte order and raw fields of a header held in ``buf``."""
+    if len(buf) == 0:
+        raise ReadError("file/not-nifti", shown, None, f"{shown}: the file is empty")
+    if len(buf) < 4:
+        raise ReadError(
+            "file/not-nifti",
+            shown,
+            "sizeof_hdr",
+            f"{shown}: only {len(buf)} bytes, too short for a NIfTI header",
+        )
+    order: Literal["<", ">"] = "<"
+    size = struct.unpack_from("<i", buf)[0]
+    if size not in (NIFTI1_SIZE, NIFTI2_SIZE):
+        size = struct.unpack_from(">i", buf)[0]
+        order = ">"
+    if size not in (NIFTI1_SIZE, NIFTI2_SIZE):
+        raise ReadError(
+            "file/not-nifti",
+            shown,
+            "sizeof_hdr",
+            f"{shown}: not a NIfTI file (sizeof_hdr is neither 348 nor 540 in either byte order)",
+            evidence={"first_bytes": buf[:8].hex()},
+        )
+    version = 1 if size == NIFTI1_SIZE else 2
+    if len(buf) < size:
+        raise ReadError(
+            "file/truncated",
+            shown,
+            None,
+            f"{shown}: the NIfTI-{version} header is cut short ({len(buf)} of {size} bytes)",
+            evidence={"header_bytes": len(buf), "expected": size},
+        )
+    layout = _FIELDS_1 if version == 1 else _FIELDS_2
+    raw: dict[str, Any] = {}
+    for name, (offset, fmt) in layout.items():
+        values = struct.unpack_from(order + fmt, buf, offset)
+        raw[name] = values if len(values) > 1 else values[0]
+    magics = _MAGIC_1 if version == 1 else _MAGIC_2
+    if raw["magic"] not in magics:
+        if version == 2 and raw["magic"][:4] in (b"n+2\x00", b"ni2\x00"):
+            message = f"{shown}: NIfTI-2 magic is damaged (line-ending conversion in transfer?)"
+        else:
+            message = f"{shown}: not a NIfTI file (magic {raw['magic']!r} is not a NIfTI magic)"
+        raise ReadError(
+            "file/not-nifti", shown, "magic", message, evidence={"magic": raw["magic"].hex()}
+        )
+    raw["single_file"] = magics[raw["magic"]]
+    return version, order, raw
+
+
+def _check_dimensions(raw: dict[str, Any], shown: str) -> tuple[tuple[int, ...], int, int]:
+    """Shape, bits per voxel and claimed data bytes; raise on impossible dimensions."""
+    dim = raw["dim"]
+    ndim = dim[0]
+    if not 1 <= ndim <= 7:
+        raise ReadError(
+            "file/bad-dimensions",
+            shown,
+            "dim",
+            f"{shown}: dim[0] is {ndim}; NIfTI allows 1 to 7 dimensions",
+            evidence={"dim": list(dim)},
+        )
+    shape = tuple(int(d) for d in dim[1 : ndim + 1])
+    if any(d <= 0 for d in shape):
+        raise ReadError(
+            "file/bad-dimensions",
+            shown,
+            "dim",
+            f"{shown}: dimension sizes must be positive, header has {list(shape)}",
+            evidence={"dim": list(dim)},
+        )
+    datatype = int(raw["datatype"])
+    bits = DATATYPE_BITS.get(datatype)
+    if bits is None:
+        raise ReadError(
+            "file/not-nifti",
+            shown,
+            "datatype",
+            f"{shown}: unknown NIfTI datatype code {datatype}",
+            evidence={"datatype": datatype, "bitpix": int(raw["bitpix"])},
+        )
+    data_bytes = (math.prod(shape) * bits + 7) // 8
+    if data_bytes > MAX_IMAGE_BYTES:
+        raise ReadError(
+            "file/bad-dimensions",
+            shown,
+            "dim",
+            f"{shown}: header claims {_size_text(data_bytes)} of image data "
+            f"(shape {list(shape)}), which no real image holds",
+            evidence={"shape": list(shape), "data_bytes": data_bytes},
+        )
+    return shape, bits, data_bytes
+
+
+def _vox_offset(raw: dict[str, Any], shown: str) -> int:
+    value = raw["vox_offset"]
+    if (isinstance(value, float) and not math.isfinite(value)) or value < 0:
+        raise ReadError(
+            "file/not-nifti",
+            shown,
+            "vox_offset",
+            f"{shown}: vox_offset {value!r} is not a valid byte offset",
+        )
+    return int(value)
+
+
+def _read_isize(fh: BinaryIO, file_size: int) -> int | None:
+    if file_size < 18:  # smallest gzip member: 10-byte header, 8-byte trailer
+        return None
+    fh.seek(file_size - 4)
+    return int(struct.unpack("<I", fh.read(4))[0])
+
+
+def _paired_image(path: Path) -> Path | None:
+    """The ``.img`` file holding the data of a two-file (``ni1``/``ni2``) header."""
+    name = path.name
+    for hdr_ext, img_ext in ((".hdr.gz", ".img.gz"), (".hdr", ".img"), (".nii", ".img")):
+        if name.lower().endswith(hdr_ext):
+            return path.with_name(name[: -len(hdr_ext)] + img_ext)
+    return None
+
+
+def read_header(
+    path: str | os.PathLike[str], display: str | None = None, *, verify_stream: bool = True
+) -> tuple[HeaderInfo, list[Finding]]:
+    """Read and check the header of the NIfTI file at ``path``.
+
+    ``display`` is how messages name the file (default: ``str(path)``).
+    Returns the header and a list of non-fatal findings (currently always
+    empty: every header problem this reader detects makes the file unusable).
+    Raises :class:`ReadError` (``file/*`` codes, see the module docstring)
+    for anything that makes the file unusable, in bounded time and memory.
+    """
+    p = Path(path)
+    shown = display_name(p, display)
+    try:
+        st = check_regular_file(p, shown, what="NIfTI file")
+        with open(p, "rb") as fh:
+            return _read_open(p, fh, st.st_size, shown, verify_stream)
+    except OSError as exc:
+        raise os_error(exc, shown, what="NIfTI file") from None
+
+
+def _read_open(
+    p: Path, fh: BinaryIO, file_size: int, shown: str, verify_stream: bool
+) -> tuple[HeaderInfo, list[Finding]]:
+    findings: list[Finding] = []
+    first = fh.read(NIFTI2_SIZE)
+    compressed = first[:2] == GZIP_MAGIC
+    if compressed:
+        parts: list[bytes] = []
+        reader = _GzipReader(fh, shown, first)
+        reader.read(NIFTI2_SIZE, parts.append)
+        buf = b"".join(parts)
+        if len(buf) < NIFTI1_SIZE and not reader.ended_cleanly:
+            raise ReadError(
+                "file/truncated",
+                shown,
+                None,
+                f"{shown}: the gzip stream ends after {len(buf)} bytes, inside the NIfTI header",
+                evidence={"decompressed_size": len(buf), "file_size": file_size},
+            )
+        if not buf:
+            raise ReadError("file/not-nifti", shown, None, f"{shown}: the gzip content is empty")
+    else:
+        if p.name.lower().endswith(".gz") and first:
+            raise ReadError(
+                "file/not-nifti",
+                shown,
+                None,
+                f"{shown}: named .gz but the content is not gzip-compressed",
+                evidence={"first_bytes": first[:8].hex()},
+            )
+        buf = first
+    version, order, raw = _decode(buf, shown)
+    shape, _bits, data_bytes = _check_dimensions(raw, shown)
+    vox_offset = _vox_offset(raw, shown)
+    header_size = NIFTI1_SIZE if version == 1 else NIFTI2_SIZE
+
+    if raw["single_file"]:
+        needed = max(vox_offset, header_size) + data_bytes
+        if compressed:
+            limit = file_size * MAX_DEFLATE_RATIO
+            if needed > limit:
+                raise ReadError(
+                    "file/bad-dimensions",
+                    shown,
+                    "dim",
+                    f"{shown}: header claims {_size_text(needed)} but a "
+                    f"{_size_text(file_size)} gzip file can hold at most {_size_text(limit)}",
+                    evidence={
+                        "shape": list(shape),
+                        "claimed_bytes": needed,
+                        "file_size": file_size,
+                        "max_ratio": MAX_DEFLATE_RATIO,
+                    },
+                )
+            isize = _read_isize(fh, file_size)
+            if isize != needed % (1 << 32):
+                _check_stream_length(fh, first, shown, needed, isize, verify_stream)
+        elif file_size < needed:
+            raise ReadError(
+                "file/truncated",
+                shown,
+                None,
+                f"{shown}: file has {file_size} bytes but the header implies {needed} "
+                f"(vox_offset {vox_offset} + {data_bytes} bytes of data)",
+                evidence={"file_size": file_size, "expected_size": needed},
+            )
+    else:
+        _check_paired_image(p, shown, vox_offset + data_bytes)
+
+    unit_bits = int(raw["xyzt_units"]) & 0x38
+    time_unit, factor = _TIME_UNITS.get(unit_bits, ("unknown", 1.0))
+    pixdim_all = raw["pixdim"]
+    raw_tr = float(pixdim_all[4])
+    tr = raw_tr * factor if len(shape) >= 4 and math.isfinite(raw_tr) and raw_tr != 0 else None
+    raw_sd = float(raw["slice_duration"])
+    sd = raw_sd * factor if math.isfinite(raw_sd) and raw_sd != 0 else None
+    info = int(raw["dim_info"])
+    freq, phase, slc = info & 3, (info >> 2) & 3, (info >> 4) & 3
+    header = HeaderInfo(
+        version=version,
+        shape=shape,
+        pixdim=tuple(float(v) for v in pixdim_all[1 : len(shape) + 1]),
+        datatype=int(raw["datatype"]),
+        bitpix=int(raw["bitpix"]),
+        vox_offset=vox_offset,
+        byte_order=order,
+        time_unit=time_unit,
+        raw_pixdim4=raw_tr,
+        repetition_time=tr,
+        freq_dim=freq - 1 if freq else None,
+        phase_dim=phase - 1 if phase else None,
+        slice_dim=slc - 1 if slc else None,
+        slice_code=int(raw["slice_code"]),
+        slice_start=int(raw["slice_start"]),
+        slice_end=int(raw["slice_end"]),
+        raw_slice_duration=raw_sd,
+        slice_duration=sd,
+        scl_slope=float(raw["scl_slope"]),
+        scl_inter=float(raw["scl_inter"]),
+        compressed=compressed,
+        file_size=file_size,
+        data_bytes=data_bytes,
+    )
+    return header, findings
+
+
+def _check_stream_length(
+    fh: BinaryIO, first: bytes, shown: str, needed: int, isize: int | None, verify: bool
+) -> None:
+    """Called when the ISIZE trailer disagrees: count the real stream length (bounded)."""
+    evidence: dict[str, Any] = {"expected_size": needed, "gzip_isize": isize}
+    if verify:
+        fh.seek(len(first))
+        counter = _GzipReader(fh, shown, first)
+        try:
+            total = counter.read(needed, lambda _chunk: None)
+        except ReadError as err:
+            raise ReadError(
+                "file/truncated",
+                shown,
+                None,
+                f"{shown}: the gzip stream is damaged before the image data ends",
+                evidence=evidence,
+            ) from err
+        if total >= needed:
+            return  # multi-member gzip or trailing bytes: the data is all there
+        evidence["decompressed_size"] = total
+        raise ReadError(
+            "file/truncated",
+            shown,
+            None,
+            f"{shown}: the gzip stream holds {total} bytes but the header implies {needed}",
+            evidence=evidence,
+        )
+    raise ReadError(
+        "file/truncated",
+        shown,
+        None,
+        f"{shown}: the gzip trailer gives {isize} bytes (mod 2**32) but the header implies "
+        f"{needed}",
+        evidence=evidence,
+    )
+
+
+def _check_paired_image(p: Path, shown: str, needed: int) -> None:
+    img = _paired_image(p)
+    img_shown = str(Path(shown).with_name(img.name)) if img is not None else shown
+    if img is None:
+        raise ReadError(
+            "file/missing",
+            shown,
+            None,
+            f"{shown}: header says the image data is in a separate file, none can be named",
+        )
+    st = check_regular_file(img, img_shown, what="image data file")
+    if not img.name.lower().endswith(".gz") and st.st_size < needed:
+        raise ReadError(
+            "file/truncated",
+            img_shown,
+            None,
+            f"{img_shown}: file has {st.st_size} bytes but the header {shown} implies {needed}",
+            evidence={"file_size": st.st_size, "expected_size": needed},
+        )

@@ -1,0 +1,104 @@
+"""Assemble a :class:`RunRecord` for one run: header, inherited metadata, schedule.
+
+This is the only place where the readers' pieces meet. :func:`build_record`
+reads the header bytes and (through the shared :class:`SidecarIndex`) the
+applicable sidecars; :func:`assemble_record` is the pure part that resolves
+the schedule and infers the scheme from values already read.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterable, Mapping, Sequence
+from pathlib import Path
+from typing import Any
+
+from slicetime.model import Finding, HeaderInfo, RunRecord
+from slicetime.readers.entities import parse_name
+from slicetime.readers.errors import ReadError
+from slicetime.readers.inheritance import SidecarIndex
+from slicetime.readers.nifti import read_header
+from slicetime.schemes.infer import infer_scheme
+from slicetime.schemes.resolve import resolve_schedule
+
+#: timing fields with a dedicated rule; their type problems are reported there
+_DEDICATED_FIELDS = frozenset({"SliceTiming", "SliceEncodingDirection"})
+DATATYPES = frozenset({"func", "perf", "dwi", "anat", "fmap"})
+
+
+def relative_display(path: Path, root: Path) -> str:
+    """How reports name a file: relative to the dataset root, forward slashes."""
+    try:
+        return path.relative_to(root).as_posix()
+    except ValueError:
+        return path.as_posix()
+
+
+def assemble_record(
+    *,
+    display: str,
+    abs_path: str,
+    root: str,
+    header: HeaderInfo | None,
+    metadata: Mapping[str, Any],
+    sources: Mapping[str, str],
+    chain: Sequence[str] = (),
+    findings: Iterable[Finding] = (),
+) -> RunRecord:
+    """Resolve the schedule and infer the scheme from values already read (pure)."""
+    name = display.rsplit("/", 1)[-1]
+    parent = display.rsplit("/", 2)[-2] if display.count("/") >= 1 else ""
+    parsed = parse_name(name)
+    kept = [
+        f for f in findings
+        if not (f.code == "sidecar/wrong-type" and f.field in _DEDICATED_FIELDS)
+    ]
+    common: dict[str, Any] = {
+        "path": display,
+        "abs_path": abs_path,
+        "root": root,
+        "entities": dict(parsed.entities) if parsed else {},
+        "suffix": parsed.suffix if parsed else "",
+        "datatype": parent if parent in DATATYPES else None,
+        "header": header,
+        "metadata": dict(metadata),
+        "metadata_sources": dict(sources),
+        "sidecar_chain": tuple(chain),
+        "findings": tuple(kept),
+    }
+    if header is None:
+        return RunRecord(**common)
+    timing = resolve_schedule(metadata, sources, header, display)
+    scheme = infer_scheme(timing.schedule.times) if timing.schedule is not None else None
+    return RunRecord(
+        **common,
+        schedule=timing.schedule,
+        timing_origin=timing.timing_origin,
+        timing_problems=timing.problems,
+        axis_length=timing.axis_length,
+        scheme=scheme,
+    )
+
+
+def build_record(root: Path, path: Path, index: SidecarIndex | None = None) -> RunRecord:
+    """Read one run. Never raises for a bad file: problems become findings."""
+    index = index if index is not None else SidecarIndex(root)
+    display = relative_display(path, root)
+    findings: list[Finding] = []
+    header: HeaderInfo | None = None
+    try:
+        header, header_findings = read_header(path, display)
+        findings.extend(header_findings)
+    except ReadError as exc:
+        findings.append(exc.to_finding())
+    resolution = index.resolve(path, root)
+    findings.extend(resolution.findings)
+    return assemble_record(
+        display=display,
+        abs_path=str(path),
+        root=str(root),
+        header=header,
+        metadata=resolution.metadata,
+        sources=resolution.sources,
+        chain=resolution.chain,
+        findings=findings,
+    )

@@ -1,0 +1,513 @@
+"""Strict reading of JSON sidecars and type checks of their timing fields.
+
+:func:`load_sidecar` parses one sidecar more strictly than :func:`json.loads`
+and reports every departure from JSON (RFC 8259) and BIDS as a finding:
+
+=============================  ========  =====================================================
+code                           severity  when (data returned)
+=============================  ========  =====================================================
+``file/*``                     error     missing, broken or annexed link, unreadable (None)
+``sidecar/too-large``          error     over 16 MiB (None)
+``sidecar/bad-encoding``       error     not UTF-8, e.g. UTF-16 or Latin-1 bytes (None)
+``sidecar/bad-encoding``       warning   a UTF-8 byte-order mark (parsed without it); a
+                                         ``\\uD800``-style lone surrogate escape (replaced
+                                         with U+FFFD)
+``sidecar/bad-json``           error     a syntax error, with line and column (None)
+``sidecar/too-deep``           error     nesting beyond 64 levels (None)
+``sidecar/not-object``         error     the top level is not an object (None)
+``sidecar/non-finite-number``  error     ``NaN``, ``Infinity``, ``-Infinity`` or a number
+                                         that overflows to infinity; the value reads as
+                                         ``null`` (data kept)
+``sidecar/duplicate-key``      warning   a key repeated in one object; the last copy wins,
+                                         as standard parsers do (data kept)
+``sidecar/duplicate-key``      error     as above, for a top-level timing field whose
+                                         copies differ
+=============================  ========  =====================================================
+
+:func:`load_sidecar` never raises: file problems come back as findings with
+data ``None``. :func:`check_types` checks the known timing fields
+(:data:`TIMING_FIELDS`, defined by ``slicetime/data/sidecar.schema.json``,
+which follows the BIDS field definitions) and reports ``sidecar/wrong-type``
+(error) once per bad field; unknown fields are not checked.
+"""
+
+from __future__ import annotations
+
+import functools
+import json
+import os
+import re
+from collections.abc import Mapping
+from importlib import resources
+from pathlib import Path
+from typing import Any
+
+import jsonschema
+
+from slicetime.model import Finding, Severity
+
+from .errors import ReadError, check_regular_file, display_name, os_error
+
+__all__ = [
+    "MAX_SIDECAR_BYTES",
+    "MAX_SIDECAR_DEPTH",
+    "TIMING_FIELDS",
+    "check_types",
+    "load_schema",
+    "load_sidecar",
+    "parse_sidecar_bytes",
+]
+
+MAX_SIDECAR_BYTES = 16 * 1024 * 1024
+MAX_SIDECAR_DEPTH = 64
+
+_UTF8_BOM = b"\xef\xbb\xbf"
+_OTHER_BOMS = {
+    b"\x00\x00\xfe\xff": "UTF-32",
+    b"\xff\xfe\x00\x00": "UTF-32",
+    b"\xfe\xff": "UTF-16",
+    b"\xff\xfe": "UTF-16",
+}
+_SURROGATE = re.compile("[\ud800-\udfff]")
+_LITERAL = re.compile(r'"(?:[^"\\]|\\.)*"|(-?Infinity|NaN|-?\d[\d.eE+\-]*)', re.S)
+
+
+@functools.cache
+def load_schema() -> dict[str, Any]:
+    """The sidecar JSON Schema shipped in ``slicetime/data``."""
+    text = (resources.files("slicetime") / "data" / "sidecar.schema.json").read_text("utf-8")
+    schema: dict[str, Any] = json.loads(text)
+    return schema
+
+
+@functools.cache
+def _validators() -> dict[str, jsonschema.protocols.Validator]:
+    schema = load_schema()
+    cls = jsonschema.validators.validator_for(schema)
+    return {key: cls(sub) for key, sub in schema["properties"].items()}
+
+
+#: The sidecar fields slicetime knows the type of (keys of the shipped schema).
+TIMING_FIELDS: frozenset[str] = frozenset(load_schema()["properties"])
+
+
+class _NonFinite:
+    """Placeholder for a non-finite number while parsing; becomes ``None``."""
+
+    __slots__ = ("index", "literal")
+
+    def __init__(self, literal: str, index: int) -> None:
+        self.literal = literal
+        self.index = index
+
+    def __eq__(self, other: object) -> bool:
+        return isinstance(other, _NonFinite) and other.literal == self.literal
+
+    def __hash__(self) -> int:
+        return hash(self.literal)
+
+    def __repr__(self) -> str:
+        return self.literal
+
+
+def _short(value: Any, limit: int = 60) -> str:
+    text = json.dumps(value, default=repr, ensure_ascii=True)
+    return text if len(text) <= limit else text[: limit - 3] + "..."
+
+
+def _line_col(data: bytes, offset: int) -> tuple[int, int]:
+    line = data.count(b"\n", 0, offset) + 1
+    col = offset - (data.rfind(b"\n", 0, offset) + 1) + 1
+    return line, col
+
+
+def load_sidecar(
+    path: str | os.PathLike[str], display: str | None = None
+) -> tuple[dict[str, Any] | None, list[Finding]]:
+    """Read and strictly parse the sidecar at ``path``; never raises.
+
+    Returns ``(data, findings)``; ``data`` is ``None`` only when the file is
+    unusable (see the module docstring for codes and severities).
+    """
+    p = Path(path)
+    shown = display_name(p, display)
+    try:
+        st = check_regular_file(p, shown, what="sidecar")
+        if st.st_size > MAX_SIDECAR_BYTES:
+            return None, [_too_large(shown, st.st_size)]
+        with open(p, "rb") as fh:
+            raw = fh.read(MAX_SIDECAR_BYTES + 1)
+    except ReadError as err:
+        return None, [err.to_finding()]
+    except OSError as exc:
+        return None, [os_error(exc, shown, what="sidecar").to_finding()]
+    return parse_sidecar_bytes(raw, shown)
+
+
+def _too_large(shown: str, size: int) -> Finding:
+    return Finding(
+        "sidecar/too-large",
+        Severity.ERROR,
+        f"{shown}: the sidecar has {size} bytes, more than the {MAX_SIDECAR_BYTES} "
+        "bytes (16 MiB) metadata can reasonably need; not read",
+        file=shown,
+        evidence={"size": size, "limit": MAX_SIDECAR_BYTES},
+    )
+
+
+def parse_sidecar_bytes(raw: bytes, shown: str) -> tuple[dict[str, Any] | None, list[Finding]]:
+    """Parse sidecar content already in memory; ``shown`` names it in messages."""
+    findings: list[Finding] = []
+    if len(raw) > MAX_SIDECAR_BYTES:
+        return None, [_too_large(shown, len(raw))]
+    for bom, name in _OTHER_BOMS.items():
+        if raw.startswith(bom):
+            return None, [
+                Finding(
+                    "sidecar/bad-encoding",
+                    Severity.ERROR,
+                    f"{shown}: the sidecar is encoded as {name}; BIDS sidecars must be UTF-8",
+                    file=shown,
+                    evidence={"encoding": name},
+                    hint="re-save the file as UTF-8 without a byte-order mark",
+                )
+            ]
+    if raw.startswith(_UTF8_BOM):
+        raw = raw[len(_UTF8_BOM) :]
+        findings.append(
+            Finding(
+                "sidecar/bad-encoding",
+                Severity.WARNING,
+                f"{shown}: the sidecar starts with a UTF-8 byte-order mark, which JSON "
+                "forbids; read without it",
+                file=shown,
+                hint="re-save the file as UTF-8 without a byte-order mark",
+            )
+        )
+    try:
+        text = raw.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        line, col = _line_col(raw, exc.start)
+        return None, [
+            *findings,
+            Finding(
+                "sidecar/bad-encoding",
+                Severity.ERROR,
+                f"{shown}: the sidecar is not valid UTF-8 (byte 0x{raw[exc.start]:02x} at line "
+                f"{line} column {col})",
+                file=shown,
+                evidence={"offset": exc.start, "line": line, "column": col},
+                hint="re-save the file as UTF-8",
+            ),
+        ]
+    if not text.strip():
+        return None, [
+            *findings,
+            Finding(
+                "sidecar/bad-json",
+                Severity.ERROR,
+                f"{shown}: the sidecar is empty",
+                file=shown,
+                evidence={"line": 1, "column": 1},
+            ),
+        ]
+
+    constants: list[_NonFinite] = []
+    duplicates: list[tuple[dict[str, Any], str, list[Any]]] = []
+
+    def on_constant(literal: str) -> _NonFinite:
+        marker = _NonFinite(literal, len(constants))
+        constants.append(marker)
+        return marker
+
+    def on_float(literal: str) -> float | _NonFinite:
+        value = float(literal)
+        if value in (float("inf"), float("-inf")):
+            return on_constant(literal)
+        return value
+
+    def on_pairs(pairs: list[tuple[str, Any]]) -> dict[str, Any]:
+        obj = dict(pairs)
+        if len(obj) != len(pairs):
+            seen: dict[str, list[Any]] = {}
+            for key, value in pairs:
+                seen.setdefault(key, []).append(value)
+            for key, values in seen.items():
+                if len(values) > 1:
+                    duplicates.append((obj, key, values))
+        return obj
+
+    try:
+        data = json.loads(
+            text, object_pairs_hook=on_pairs, parse_constant=on_constant, parse_float=on_float
+        )
+    except json.JSONDecodeError as exc:
+        return None, [
+            *findings,
+            Finding(
+                "sidecar/bad-json",
+                Severity.ERROR,
+                f"{shown}: invalid JSON at line {exc.lineno} column {exc.colno}: {exc.msg}",
+                file=shown,
+                evidence={"line": exc.lineno, "column": exc.colno, "error": exc.msg},
+            ),
+        ]
+    except RecursionError:
+        return None, [*findings, _too_deep(shown)]
+    except ValueError as exc:  # e.g. an integer literal beyond Python's digit limit
+        return None, [
+            *findings,
+            Finding(
+                "sidecar/bad-json",
+                Severity.ERROR,
+                f"{shown}: a value cannot be read ({str(exc).splitlines()[0]})",
+                file=shown,
+            ),
+        ]
+
+    if not isinstance(data, dict):
+        kind = {list: "an array", str: "a string", bool: "a boolean", type(None): "null"}.get(
+            type(data), "a number"
+        )
+        return None, [
+            *findings,
+            Finding(
+                "sidecar/not-object",
+                Severity.ERROR,
+                f"{shown}: the top level is {kind}; a sidecar must be a JSON object",
+                file=shown,
+                evidence={"type": kind},
+            ),
+        ]
+
+    cleaner = _Cleaner()
+    try:
+        cleaned = cleaner.clean(data, 1, None)
+    except _TooDeep:
+        return None, [*findings, _too_deep(shown)]
+    assert isinstance(cleaned, dict)
+
+    findings.extend(_duplicate_findings(shown, data, duplicates))
+    if constants:
+        reached = {id(marker): top for top, marker in cleaner.non_finite}
+        placed = [(reached.get(id(m), _DISCARDED), m) for m in constants]
+        findings.extend(_non_finite_findings(shown, text, placed))
+    if cleaner.surrogate_keys:
+        keys = sorted(cleaner.surrogate_keys)
+        findings.append(
+            Finding(
+                "sidecar/bad-encoding",
+                Severity.WARNING,
+                f"{shown}: {', '.join(keys)} contain lone UTF-16 surrogate escapes, which are not "
+                "valid Unicode; replaced with U+FFFD",
+                file=shown,
+                field=keys[0],
+                evidence={"fields": keys},
+            )
+        )
+    return cleaned, findings
+
+
+def _too_deep(shown: str) -> Finding:
+    return Finding(
+        "sidecar/too-deep",
+        Severity.ERROR,
+        f"{shown}: the sidecar nests deeper than {MAX_SIDECAR_DEPTH} levels; not read",
+        file=shown,
+        evidence={"limit": MAX_SIDECAR_DEPTH},
+    )
+
+
+_DISCARDED = "\x00discarded"  # marker: the value sat in an overridden duplicate key
+
+
+class _TooDeep(Exception):
+    pass
+
+
+class _Cleaner:
+    """Copy parsed JSON, bounding depth, replacing placeholders and lone surrogates."""
+
+    def __init__(self) -> None:
+        self.non_finite: list[tuple[str | None, _NonFinite]] = []
+        self.surrogate_keys: set[str] = set()
+
+    def _text(self, s: str, top: str | None) -> str:
+        if s.isascii():
+            return s
+        try:
+            s.encode("utf-8")
+            return s
+        except UnicodeEncodeError:
+            self.surrogate_keys.add(top if top is not None else "a key")
+            return _SURROGATE.sub("\ufffd", s)
+
+    def clean(self, value: Any, depth: int, top: str | None) -> Any:
+        if isinstance(value, dict):
+            if depth > MAX_SIDECAR_DEPTH:
+                raise _TooDeep
+            out: dict[str, Any] = {}
+            for k, v in value.items():
+                key = self._text(k, top if top is not None else k)
+                out[key] = self.clean(v, depth + 1, top if top is not None else key)
+            return out
+        if isinstance(value, list):
+            if depth > MAX_SIDECAR_DEPTH:
+                raise _TooDeep
+            return [self.clean(v, depth + 1, top) for v in value]
+        if isinstance(value, str):
+            return self._text(value, top)
+        if isinstance(value, _NonFinite):
+            self.non_finite.append((top, value))
+            return None
+        return value
+
+
+def _duplicate_findings(
+    shown: str, top_obj: dict[str, Any], duplicates: list[tuple[dict[str, Any], str, list[Any]]]
+) -> list[Finding]:
+    out: list[Finding] = []
+    for obj, key, values in duplicates:
+        top_level = obj is top_obj
+        differ = any(v != values[-1] for v in values[:-1])
+        severity = (
+            Severity.ERROR if top_level and differ and key in TIMING_FIELDS else Severity.WARNING
+        )
+        where = "" if top_level else " (in a nested object)"
+        if differ:
+            shown_values = ", ".join(_short(v, 40) for v in values)
+            what = f"with different values ({shown_values}); the last one wins"
+        else:
+            what = "with the same value; the last copy is kept"
+        out.append(
+            Finding(
+                "sidecar/duplicate-key",
+                severity,
+                f"{shown}: key {key!r}{where} appears {len(values)} times {what}",
+                file=shown,
+                field=key,
+                evidence={
+                    "values": [_short(v) for v in values],
+                    "kept": _short(values[-1]),
+                    "top_level": top_level,
+                },
+                hint="keep a single copy of the key with the intended value",
+            )
+        )
+    return out
+
+
+def _non_finite_findings(
+    shown: str, text: str, seen: list[tuple[str | None, _NonFinite]]
+) -> list[Finding]:
+    # positions of the literals in text order; placeholders were numbered in text order too
+    positions: list[int] = []
+    for m in _LITERAL.finditer(text):
+        token = m.group(1)
+        if token is None:
+            continue
+        if token in ("NaN", "Infinity", "-Infinity") or (
+            any(c in token for c in ".eE") and float(token) in (float("inf"), float("-inf"))
+        ):
+            positions.append(m.start(1))
+    by_field: dict[str | None, list[_NonFinite]] = {}
+    for top, marker in seen:
+        by_field.setdefault(top, []).append(marker)
+    out: list[Finding] = []
+    for key, markers in by_field.items():
+        first = markers[0]
+        where = ""
+        if first.index < len(positions):
+            offset = positions[first.index]
+            line = text.count("\n", 0, offset) + 1
+            col = offset - (text.rfind("\n", 0, offset) + 1) + 1
+            where = f" at line {line} column {col}"
+        literals = sorted({m.literal for m in markers})
+        if key == _DISCARDED:
+            subject, field_name, outcome = "a value overridden by a duplicate key", None, "ignored"
+        else:
+            subject, field_name, outcome = key or "a value", key, "read as null"
+        out.append(
+            Finding(
+                "sidecar/non-finite-number",
+                Severity.ERROR,
+                f"{shown}: {subject} holds {', '.join(literals)}{where}, which is not a "
+                f"JSON number; {outcome}",
+                file=shown,
+                field=field_name,
+                evidence={"literals": literals, "count": len(markers)},
+                hint="write a finite number, or remove the key",
+            )
+        )
+    return out
+
+
+# --- type checks -------------------------------------------------------------------------
+
+
+def _describe(schema: Mapping[str, Any], plural: bool = False) -> str:
+    if "anyOf" in schema:
+        return " or ".join(_describe(s, plural) for s in schema["anyOf"])
+    if "enum" in schema:
+        return "one of " + ", ".join(str(v) for v in schema["enum"])
+    kind = schema.get("type")
+    if kind == "array":
+        items = schema.get("items", {})
+        base = "an array" if not schema.get("minItems") else "a non-empty array"
+        return f"{base} of {_describe(items, plural=True)}" if items else base
+    noun = {
+        "number": "number",
+        "integer": "integer",
+        "string": "string",
+        "boolean": "boolean",
+        "object": "object",
+    }.get(str(kind), "value")
+    text = (noun + "s") if plural else ("an " if noun[0] in "aeiou" else "a ") + noun
+    if "exclusiveMinimum" in schema:
+        text += f" > {schema['exclusiveMinimum']}"
+    elif "minimum" in schema:
+        text += f" ≥ {schema['minimum']}"
+    return text
+
+
+def check_types(
+    data: Mapping[str, Any],
+    display: str | None = None,
+    sources: Mapping[str, str] | None = None,
+) -> list[Finding]:
+    """Check the known timing fields of ``data``; one ``sidecar/wrong-type`` error per bad field.
+
+    ``display`` names the sidecar in messages. For merged (inherited)
+    metadata pass ``sources`` (field -> sidecar that supplied it): each
+    finding is then attributed to the file that supplied the bad value.
+    Fields not in :data:`TIMING_FIELDS` are not checked.
+    """
+    schema = load_schema()["properties"]
+    validators = _validators()
+    out: list[Finding] = []
+    for key in sorted(TIMING_FIELDS.intersection(data)):
+        value = data[key]
+        errors = list(validators[key].iter_errors(value))
+        if not errors:
+            continue
+        err = jsonschema.exceptions.best_match(errors) or errors[0]
+        path = list(err.absolute_path)
+        where = key + "".join(f"[{p}]" if isinstance(p, int) else f".{p}" for p in path)
+        shown = (sources or {}).get(key) or display or "sidecar"
+        out.append(
+            Finding(
+                "sidecar/wrong-type",
+                Severity.ERROR,
+                f"{shown}: {key} must be {_describe(schema[key])}; "
+                f"{where} is {_short(err.instance)}",
+                file=shown,
+                field=key,
+                evidence={
+                    "value": _short(value, 200),
+                    "at": where,
+                    "expected": _describe(schema[key]),
+                },
+                hint=f"write {key} as {_describe(schema[key])}",
+            )
+        )
+    return out

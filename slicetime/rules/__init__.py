@@ -1,0 +1,17 @@
+"""Rules layer: one small registered function per check. No I/O.
+
+Importing this package registers every rule in :data:`RULES`.
+"""
+
+from slicetime.rules import header, reading, timing  # noqa: F401  (registration)
+from slicetime.rules.registry import (
+    RULES,
+    DatasetHit,
+    Hit,
+    Rule,
+    check_dataset,
+    check_run,
+    explain,
+)
+
+__all__ = ["RULES", "DatasetHit", "Hit", "Rule", "check_dataset", "check_run", "explain"]

@@ -1,0 +1,186 @@
+"""Checks that compare the NIfTI header with the sidecar metadata."""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Iterator
+
+from slicetime.model import AXES, RunRecord, Severity
+from slicetime.rules.registry import Hit, run_rule
+from slicetime.schemes.infer import infer_scheme
+from slicetime.schemes.niftcodes import SLICE_CODE_NAMES, header_slice_times
+from slicetime.schemes.resolve import parse_direction, positive_number
+
+E, W, N = Severity.ERROR, Severity.WARNING, Severity.NOTE
+
+#: header and sidecar TR may differ by less than 1 ms (BIDS RepetitionTimeMismatch check)
+TR_ABS_TOL = 1e-3
+
+
+@run_rule(
+    "file/not-4d",
+    title="a single volume where a time series is expected",
+    severity=E,
+    rationale="Slice timing concerns series of volumes; a 3D image (or a 4D image with one "
+    "volume) under a functional name is a conversion mistake or the wrong file.",
+    fix="Check that the file is the full series.",
+)
+def not_4d(record: RunRecord) -> Iterator[Hit]:
+    header = record.header
+    if header is None or record.suffix not in ("bold", "cbv", "asl"):
+        return
+    if len(header.shape) < 4 or header.shape[3] < 2:
+        yield Hit(
+            f"the image has shape {list(header.shape)}: not a time series",
+            "dim", {"shape": list(header.shape)}, file=record.path,
+        )
+    elif len(header.shape) > 4 and any(d > 1 for d in header.shape[4:]):
+        yield Hit(
+            f"the image has shape {list(header.shape)}: more than four dimensions",
+            "dim", {"shape": list(header.shape)}, file=record.path,
+        )
+
+
+@run_rule(
+    "header/tr-mismatch",
+    title="the header's TR disagrees with RepetitionTime",
+    severity=E,
+    rationale=(
+        "BIDS requires RepetitionTime to agree with pixdim[4] after converting xyzt_units. "
+        "Tools that read the header see a different TR from tools that read the sidecar."
+    ),
+    fix="Correct whichever is wrong; the sidecar is what slicetime uses.",
+    standard="BIDS rules.checks.func.RepetitionTimeMismatch",
+)
+def tr_mismatch(record: RunRecord) -> Iterator[Hit]:
+    header = record.header
+    tr = positive_number(record.metadata.get("RepetitionTime"))
+    if header is None or tr is None or not header.repetition_time:
+        return
+    htr = header.repetition_time
+    if abs(htr - tr) < TR_ABS_TOL:
+        return
+    hint = None
+    ratio = htr / tr
+    if math.isclose(ratio, 1000, rel_tol=1e-3):
+        hint = (f"pixdim[4] is {header.raw_pixdim4:g} with time unit {header.time_unit}: the "
+                "header unit is probably wrong (the value is in milliseconds).")
+    elif math.isclose(ratio, 1e-3, rel_tol=1e-3):
+        hint = ("The header TR is a thousandth of the sidecar's: the header unit is probably "
+                "wrong (microseconds or milliseconds labelled as seconds).")
+    yield Hit(
+        f"header pixdim[4] gives a TR of {htr:g} s, the sidecar RepetitionTime {tr:g} s",
+        "RepetitionTime",
+        {"header_tr": htr, "raw_pixdim4": header.raw_pixdim4,
+         "time_unit": header.time_unit, "sidecar_tr": tr},
+        hint=hint,
+    )
+
+
+@run_rule(
+    "header/tr-unset",
+    title="the header's TR is 0",
+    severity=W,
+    rationale="Tools that take the TR from the NIfTI header see none.",
+    fix="Set pixdim[4] (and xyzt_units) to the repetition time.",
+)
+def tr_unset(record: RunRecord) -> Iterator[Hit]:
+    header = record.header
+    tr = positive_number(record.metadata.get("RepetitionTime"))
+    if header is None or tr is None or len(header.shape) < 4:
+        return
+    if header.raw_pixdim4 == 0:
+        yield Hit(
+            f"pixdim[4] is 0 while RepetitionTime is {tr:g} s",
+            "pixdim[4]", {"sidecar_tr": tr}, file=record.path,
+        )
+
+
+@run_rule(
+    "header/time-units-unknown",
+    title="the header does not say the unit of its TR",
+    severity=N,
+    rationale="xyzt_units carries no time unit, so pixdim[4] is read as seconds.",
+    fix="Set the time unit in xyzt_units.",
+)
+def time_units(record: RunRecord) -> Iterator[Hit]:
+    header = record.header
+    if header is not None and header.time_unit == "unknown" and header.raw_pixdim4 > 0 \
+            and len(header.shape) >= 4:
+        yield Hit(
+            f"xyzt_units has no time unit; pixdim[4] = {header.raw_pixdim4:g} read as seconds",
+            "xyzt_units", {"raw_pixdim4": header.raw_pixdim4}, file=record.path,
+        )
+
+
+@run_rule(
+    "axis/dim-info-mismatch",
+    title="the slice axis disagrees with the header's dim_info",
+    severity=W,
+    rationale=(
+        "SliceEncodingDirection (k when absent) and the header's dim_info slice dimension "
+        "both name the slice axis. When they differ, SliceTiming may be applied along the "
+        "wrong axis."
+    ),
+    fix="Set SliceEncodingDirection to the header's slice axis, or correct dim_info.",
+)
+def dim_info_mismatch(record: RunRecord) -> Iterator[Hit]:
+    header = record.header
+    if header is None or header.slice_dim is None or header.slice_dim > 2:
+        return
+    if "SliceTiming" not in record.metadata:
+        return
+    sed = record.metadata.get("SliceEncodingDirection")
+    parsed = parse_direction(sed) if sed is not None else ("k", "+")
+    if parsed is None:
+        return
+    header_axis = AXES[header.slice_dim]
+    if parsed[0] != header_axis:
+        said = f"SliceEncodingDirection {sed}" if sed is not None else \
+            "SliceEncodingDirection is absent (k)"
+        yield Hit(
+            f"{said}, but dim_info gives slice axis {header_axis}",
+            "SliceEncodingDirection",
+            {"sidecar_axis": parsed[0], "dim_info_axis": header_axis},
+            file=record.metadata_sources.get("SliceEncodingDirection", record.path),
+        )
+
+
+@run_rule(
+    "header/slice-code-mismatch",
+    title="the header's slice_code describes another order than SliceTiming",
+    severity=W,
+    rationale=(
+        "The header's slice_code and slice_duration and the sidecar's SliceTiming both "
+        "describe the order. When they disagree, tools reading the header correct with the "
+        "wrong order."
+    ),
+    fix="Trust neither blindly: check the protocol, then correct the wrong one.",
+)
+def slice_code_mismatch(record: RunRecord) -> Iterator[Hit]:
+    header = record.header
+    scheme = record.scheme
+    if header is None or scheme is None or record.timing_origin != "sidecar":
+        return
+    if header.slice_code <= 0 or not header.slice_duration or header.slice_dim is None:
+        return
+    if record.schedule is None or AXES.index(record.schedule.axis) != header.slice_dim:
+        return
+    n = len(record.schedule.times)
+    try:
+        raw = header_slice_times(header.slice_code, header.slice_start, header.slice_end,
+                                 header.slice_duration, n)
+    except ValueError:
+        return
+    if any(t is None for t in raw):
+        return
+    header_scheme = infer_scheme([float(t) for t in raw if t is not None])
+    if header_scheme.groups != scheme.groups:
+        yield Hit(
+            f"header slice_code {header.slice_code} ({SLICE_CODE_NAMES.get(header.slice_code)}) "
+            f"describes '{header_scheme.label}', SliceTiming describes '{scheme.label}'",
+            "slice_code",
+            {"slice_code": header.slice_code, "header_scheme": header_scheme.label,
+             "sidecar_scheme": scheme.label},
+            file=record.path,
+        )

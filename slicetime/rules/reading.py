@@ -1,0 +1,144 @@
+"""Documentation of the codes that the readers raise while opening files.
+
+The checks themselves live in :mod:`slicetime.readers` (they need the bytes);
+these entries make ``slicetime explain`` and the report schema cover them.
+"""
+
+from __future__ import annotations
+
+from slicetime.model import Severity
+from slicetime.rules.registry import reader_code
+
+E, W, N = Severity.ERROR, Severity.WARNING, Severity.NOTE
+
+reader_code(
+    "file/missing",
+    title="the file does not exist or is a broken link",
+    severity=E,
+    rationale="A run named on the command line, or a link in the dataset, points nowhere.",
+    fix="Check the path; restore the file or remove the dangling link.",
+)
+reader_code(
+    "file/no-content",
+    title="the file is a link into an annex object store whose content is not here",
+    severity=E,
+    rationale=(
+        "Datasets managed with a large-file annex keep images as symbolic links into an "
+        "object store. When the content has not been retrieved the link points at a missing "
+        "object: the run exists in the dataset but cannot be read on this machine."
+    ),
+    fix="Retrieve the content with your annex tool's get command, then audit again.",
+)
+reader_code(
+    "file/link-loop",
+    title="a symbolic link loops back on itself",
+    severity=E,
+    rationale="Following the link never reaches a file.",
+    fix="Replace the link with the file it was meant to point at.",
+)
+reader_code(
+    "file/unreadable",
+    title="the file cannot be read",
+    severity=E,
+    rationale="The operating system refused to read it (permissions, a folder with a run's name).",
+    fix="Check permissions and that the path is a regular file.",
+)
+reader_code(
+    "file/not-nifti",
+    title="the file is not a NIfTI-1 or NIfTI-2 image",
+    severity=E,
+    rationale="The header size field and magic string do not identify a NIfTI image.",
+    fix="Re-export the image from the original data; check the file was not truncated to zero.",
+)
+reader_code(
+    "file/truncated",
+    title="the file holds less image data than its header describes",
+    severity=E,
+    rationale=(
+        "An interrupted copy or conversion leaves a file whose header promises more voxels "
+        "than the file contains; the later volumes are missing or garbage."
+    ),
+    fix="Copy or convert the run again from its source.",
+)
+reader_code(
+    "file/bad-dimensions",
+    title="the header's dimensions are impossible",
+    severity=E,
+    rationale=(
+        "dim[0] must be 1..7 and every used dimension positive; the size they imply must be "
+        "possible for the file on disk. slicetime checks this before allocating anything."
+    ),
+    fix="The header is corrupt: regenerate the file from its source.",
+)
+reader_code(
+    "sidecar/bad-json",
+    title="a JSON sidecar has a syntax error",
+    severity=E,
+    rationale="An unparsable sidecar contributes no metadata; every run inheriting it loses it.",
+    fix="Fix the syntax at the line and column given.",
+)
+reader_code(
+    "sidecar/duplicate-key",
+    title="a JSON sidecar repeats a key",
+    severity=W,
+    rationale=(
+        "JSON parsers keep the last of repeated keys, silently dropping the others; which one "
+        "a given tool keeps is not guaranteed. An error when the copies differ on a timing field."
+    ),
+    fix="Keep one copy of the key with the intended value.",
+)
+reader_code(
+    "sidecar/non-finite-number",
+    title="a JSON sidecar contains NaN or Infinity",
+    severity=E,
+    rationale="NaN and Infinity are not JSON; strict parsers reject the whole file.",
+    fix="Replace the value with a number, or remove the key.",
+)
+reader_code(
+    "sidecar/not-object",
+    title="a JSON sidecar's top level is not an object",
+    severity=E,
+    rationale="BIDS sidecars are key-value objects.",
+    fix="Wrap the content in an object with the proper keys.",
+)
+reader_code(
+    "sidecar/bad-encoding",
+    title="a JSON sidecar is not valid UTF-8",
+    severity=E,
+    rationale="JSON text exchanged between systems must be UTF-8 (RFC 8259).",
+    fix="Re-save the file as UTF-8.",
+)
+reader_code(
+    "sidecar/too-deep",
+    title="a JSON sidecar nests too deeply",
+    severity=E,
+    rationale="Absurd nesting is a sign of a corrupt or hostile file and is not read.",
+    fix="Flatten the structure; BIDS metadata is at most a few levels deep.",
+)
+reader_code(
+    "sidecar/too-large",
+    title="a JSON sidecar is too large to be metadata",
+    severity=E,
+    rationale="Sidecars are kilobytes; a huge one is not read so the audit stays bounded.",
+    fix="Move bulk data out of the sidecar.",
+)
+reader_code(
+    "sidecar/wrong-type",
+    title="a timing field has the wrong type or an impossible value",
+    severity=E,
+    rationale="The BIDS specification defines the type and range of every metadata field.",
+    fix="Write the value with the type the standard defines.",
+    standard="BIDS objects.metadata field definitions",
+)
+reader_code(
+    "inherit/ambiguous",
+    title="more than one sidecar applies at one folder level",
+    severity=W,
+    rationale=(
+        "The inheritance principle allows at most one applicable sidecar per level; with "
+        "several, which value wins depends on the tool. An error when they disagree on a "
+        "timing field."
+    ),
+    fix="Merge the files, or add entities so that each applies to a distinct set of runs.",
+    standard="BIDS inheritance principle",
+)

@@ -1,0 +1,174 @@
+"""The rule registry: every finding code, with its documentation and its check.
+
+A rule is a small function registered under a stable code. Run rules take a
+:class:`RunRecord` and yield :class:`Hit` values; dataset rules take every
+record. The registry turns hits into :class:`Finding` objects carrying the
+rule's code and default severity, so a rule cannot invent an unregistered
+code. Codes raised while reading files (``file/*``, ``sidecar/*``,
+``inherit/*``) are registered as documentation-only rules, so ``slicetime
+explain`` covers every code a report can contain.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+from collections.abc import Callable, Iterable, Mapping, Sequence
+from dataclasses import dataclass
+from typing import Any, Literal
+
+from slicetime.model import Finding, RunRecord, Severity
+
+Scope = Literal["run", "dataset", "reader"]
+RunCheck = Callable[[RunRecord], Iterable["Hit"]]
+DatasetCheck = Callable[[Sequence[RunRecord]], Iterable["DatasetHit"]]
+
+
+@dataclass(frozen=True)
+class Hit:
+    """What a run rule reports; the registry adds code and severity."""
+
+    message: str
+    field: str | None = None
+    evidence: Mapping[str, Any] = dataclasses.field(default_factory=dict)
+    hint: str | None = None
+    file: str | None = None  # defaults to the sidecar that supplied ``field``, else the run
+    severity: Severity | None = None  # overrides the rule's default for this hit
+
+
+@dataclass(frozen=True)
+class DatasetHit:
+    """What a dataset rule reports about one run (or about the dataset: run=None)."""
+
+    run: str | None
+    hit: Hit
+
+
+@dataclass(frozen=True)
+class Rule:
+    code: str
+    title: str
+    severity: Severity
+    rationale: str
+    fix: str | None
+    scope: Scope
+    check: RunCheck | DatasetCheck | None = None
+    #: the standard's check this rule covers, when one exists (for docs and tests)
+    standard: str | None = None
+
+
+RULES: dict[str, Rule] = {}
+
+
+def _register(rule: Rule) -> None:
+    if rule.code in RULES:
+        raise RuntimeError(f"finding code registered twice: {rule.code}")
+    area, _, name = rule.code.partition("/")
+    if not area or not name or rule.code != rule.code.lower():
+        raise RuntimeError(f"finding codes are lower-case area/short-name: {rule.code!r}")
+    RULES[rule.code] = rule
+
+
+def run_rule(
+    code: str,
+    *,
+    title: str,
+    severity: Severity,
+    rationale: str,
+    fix: str | None = None,
+    standard: str | None = None,
+) -> Callable[[RunCheck], RunCheck]:
+    """Register a check over one run."""
+
+    def decorate(check: RunCheck) -> RunCheck:
+        _register(Rule(code, title, severity, rationale, fix, "run", check, standard))
+        return check
+
+    return decorate
+
+
+def dataset_rule(
+    code: str, *, title: str, severity: Severity, rationale: str, fix: str | None = None
+) -> Callable[[DatasetCheck], DatasetCheck]:
+    """Register a check over all runs of a dataset."""
+
+    def decorate(check: DatasetCheck) -> DatasetCheck:
+        _register(Rule(code, title, severity, rationale, fix, "dataset", check))
+        return check
+
+    return decorate
+
+
+def reader_code(
+    code: str,
+    *,
+    title: str,
+    severity: Severity,
+    rationale: str,
+    fix: str | None = None,
+    standard: str | None = None,
+) -> None:
+    """Document a code that the readers raise (no check function)."""
+    _register(Rule(code, title, severity, rationale, fix, "reader", None, standard))
+
+
+def to_finding(rule: Rule, record: RunRecord | None, hit: Hit) -> Finding:
+    file = hit.file
+    if file is None and record is not None:
+        if hit.field and hit.field in record.metadata_sources:
+            file = record.metadata_sources[hit.field]
+        else:
+            file = record.path
+    return Finding(
+        code=rule.code,
+        severity=hit.severity or rule.severity,
+        message=hit.message,
+        file=file,
+        field=hit.field,
+        evidence=dict(hit.evidence),
+        hint=hit.hint if hit.hint is not None else rule.fix,
+    )
+
+
+def check_run(record: RunRecord) -> list[Finding]:
+    """Reading findings plus every run rule's findings, in registry order."""
+    findings = list(record.findings)
+    for rule in RULES.values():
+        if rule.scope != "run" or rule.check is None:
+            continue
+        for hit in rule.check(record):  # type: ignore[arg-type]
+            findings.append(to_finding(rule, record, hit))
+    return findings
+
+
+def check_dataset(records: Sequence[RunRecord]) -> tuple[dict[str, list[Finding]], list[Finding]]:
+    """Dataset rules: (findings per run path, findings about the whole dataset)."""
+    per_run: dict[str, list[Finding]] = {}
+    overall: list[Finding] = []
+    by_path = {r.path: r for r in records}
+    for rule in RULES.values():
+        if rule.scope != "dataset" or rule.check is None:
+            continue
+        for dhit in rule.check(records):  # type: ignore[arg-type]
+            record = by_path.get(dhit.run) if dhit.run else None
+            finding = to_finding(rule, record, dhit.hit)
+            if dhit.run is None:
+                overall.append(finding)
+            else:
+                per_run.setdefault(dhit.run, []).append(finding)
+    return per_run, overall
+
+
+def explain(code: str) -> str:
+    """The documentation of one rule, as printed by ``slicetime explain``."""
+    rule = RULES[code]
+    lines = [
+        f"{rule.code} — {rule.title}",
+        f"default severity: {rule.severity.value}    checked on: {rule.scope}",
+        "",
+        rule.rationale.strip(),
+    ]
+    if rule.fix:
+        lines += ["", f"what to do: {rule.fix.strip()}"]
+    if rule.standard:
+        lines += ["", f"standard: {rule.standard}"]
+    return "\n".join(lines)

@@ -1,0 +1,267 @@
+"""Resolve a run's schedule from its merged sidecar metadata and header fields.
+
+Pure: takes values already read (sidecar dict, :class:`HeaderInfo`) and decides
+which value wins, recording the source of each. The problems that make timing
+unusable are described by :func:`slice_timing_problems`, which the audit
+rules reuse so that "the schedule could not be built" and "the audit reports
+an error" never disagree.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+from typing import Any
+
+from slicetime.model import (
+    AXES,
+    Axis,
+    Direction,
+    HeaderInfo,
+    SliceSchedule,
+    Source,
+    TimingProblem,
+)
+from slicetime.schemes.niftcodes import header_slice_times
+
+SLICE_ENCODING_VALUES = ("i", "j", "k", "i-", "j-", "k-")
+
+
+@dataclass(frozen=True)
+class ScheduleResolution:
+    schedule: SliceSchedule | None
+    #: where the slice times came from: "sidecar", "header", or None
+    timing_origin: str | None
+    #: why there is no schedule (empty when there is one)
+    problems: tuple[TimingProblem, ...] = ()
+    #: slice axis length along the resolved axis, when the header gives it
+    axis_length: int | None = None
+
+
+def is_number(value: Any) -> bool:
+    """A JSON number (bool is not a number in JSON terms)."""
+    return isinstance(value, int | float) and not isinstance(value, bool)
+
+
+def positive_number(value: Any) -> float | None:
+    if is_number(value) and math.isfinite(value) and value > 0:
+        return float(value)
+    return None
+
+
+def parse_direction(value: Any) -> tuple[Axis, Direction] | None:
+    """``SliceEncodingDirection`` → (axis, direction), or None when invalid."""
+    if isinstance(value, str) and value in SLICE_ENCODING_VALUES:
+        axis: Axis = value[0]  # type: ignore[assignment]
+        return axis, ("-" if value.endswith("-") else "+")
+    return None
+
+
+def slice_timing_problems(value: Any, expected_count: int | None) -> list[TimingProblem]:
+    """Structural problems that make a SliceTiming value unusable."""
+    if not isinstance(value, list):
+        return [
+            TimingProblem(
+                "timing/not-a-list",
+                f"SliceTiming must be a list of numbers, found {type(value).__name__}",
+                {"value": value if is_number(value) or isinstance(value, str) else repr(value)},
+            )
+        ]
+    if not value:
+        return [TimingProblem("timing/not-a-list", "SliceTiming is an empty list", {"value": []})]
+    bad = [i for i, v in enumerate(value) if not (is_number(v) and math.isfinite(float(v)))]
+    problems: list[TimingProblem] = []
+    if bad:
+        shown = {
+            str(i): (value[i] if not isinstance(value[i], float) else repr(value[i]))
+            for i in bad[:5]
+        }
+        problems.append(
+            TimingProblem(
+                "timing/bad-entry",
+                f"SliceTiming has {len(bad)} entr{'y' if len(bad) == 1 else 'ies'} that are not "
+                f"finite numbers (first at index {bad[0]})",
+                {"indices": bad[:20], "values": shown},
+            )
+        )
+    if expected_count is not None and len(value) != expected_count:
+        problems.append(
+            TimingProblem(
+                "timing/count-mismatch",
+                f"SliceTiming has {len(value)} entries but the image has {expected_count} "
+                "slices along the slice axis",
+                {"entries": len(value), "slices": expected_count},
+            )
+        )
+    return problems
+
+
+def resolve_schedule(
+    metadata: Mapping[str, Any],
+    metadata_sources: Mapping[str, str],
+    header: HeaderInfo | None,
+    image_file: str,
+) -> ScheduleResolution:
+    """Build the schedule of one run, or say why it cannot be built.
+
+    Precedence (documented in DEVELOPERS.md):
+      * axis/direction: ``SliceEncodingDirection`` from the sidecar; when absent
+        the BIDS default (``k``, positive) — except that header-rebuilt timing
+        runs along the header's ``dim_info`` slice dimension;
+      * slice times: sidecar ``SliceTiming``; else the header's ``slice_code`` /
+        ``slice_duration`` / ``dim_info`` when all are set;
+      * TR: sidecar ``RepetitionTime``; else ``VolumeTiming``; else header pixdim[4].
+    """
+
+    def sidecar_source(key: str) -> Source:
+        return Source("sidecar", key, metadata_sources.get(key))
+
+    sources: dict[str, Source] = {}
+
+    # --- repetition time / volume times -------------------------------------
+    tr = positive_number(metadata.get("RepetitionTime"))
+    if tr is not None:
+        sources["RepetitionTime"] = sidecar_source("RepetitionTime")
+    volume_times: tuple[float, ...] | None = None
+    vt = metadata.get("VolumeTiming")
+    if isinstance(vt, list) and vt and all(is_number(v) and math.isfinite(v) for v in vt):
+        volume_times = tuple(float(v) for v in vt)
+        sources["VolumeTiming"] = sidecar_source("VolumeTiming")
+    if tr is None and volume_times is None and header is not None and header.repetition_time:
+        tr = header.repetition_time
+        sources["RepetitionTime"] = Source("header", "pixdim[4]", image_file)
+
+    delay = metadata.get("DelayTime")
+    delay_time = float(delay) if is_number(delay) and math.isfinite(delay) and delay > 0 else None
+    if delay_time is not None:
+        sources["DelayTime"] = sidecar_source("DelayTime")
+    acq: float | None = None
+    if delay_time is not None and tr is not None and delay_time < tr:
+        acq = tr - delay_time
+        sources["AcquisitionDuration"] = Source("derived", "RepetitionTime - DelayTime")
+    else:
+        fad = positive_number(metadata.get("FrameAcquisitionDuration"))
+        if fad is not None:
+            acq = fad
+            sources["AcquisitionDuration"] = sidecar_source("FrameAcquisitionDuration")
+
+    # --- axis and direction --------------------------------------------------
+    sed = metadata.get("SliceEncodingDirection")
+    parsed = parse_direction(sed)
+    if sed is not None and parsed is None:
+        return ScheduleResolution(
+            None,
+            None,
+            (
+                TimingProblem(
+                    "axis/unknown-direction",
+                    f"SliceEncodingDirection {sed!r} is not one of "
+                    + ", ".join(SLICE_ENCODING_VALUES),
+                    {"value": sed if isinstance(sed, str) else repr(sed)},
+                ),
+            ),
+        )
+    axis: Axis
+    direction: Direction
+    if parsed is not None:
+        axis, direction = parsed
+        sources["SliceEncodingDirection"] = sidecar_source("SliceEncodingDirection")
+    else:
+        axis, direction = "k", "+"
+        sources["SliceEncodingDirection"] = Source(
+            "default", "k (BIDS: SliceTiming runs along k when SliceEncodingDirection is absent)"
+        )
+
+    def axis_length(ax: Axis) -> int | None:
+        if header is None:
+            return None
+        index = AXES.index(ax)
+        return header.shape[index] if len(header.shape) > index else 1
+
+    def build(times: Sequence[float], origin: str, ax: Axis, dr: Direction) -> ScheduleResolution:
+        schedule = SliceSchedule(
+            times=tuple(times),
+            axis=ax,
+            direction=dr,
+            repetition_time=tr,
+            volume_times=volume_times,
+            acquisition_duration=acq,
+            delay_time=delay_time,
+            sources=sources,
+        )
+        return ScheduleResolution(schedule, origin, (), axis_length(ax))
+
+    # --- slice times -----------------------------------------------------------
+    if "SliceTiming" in metadata:
+        value = metadata["SliceTiming"]
+        length = axis_length(axis)
+        problems = slice_timing_problems(value, length)
+        if problems:
+            return ScheduleResolution(None, None, tuple(problems), length)
+        times = [float(v) for v in value]
+        if direction == "-":
+            times.reverse()
+        sources["SliceTiming"] = sidecar_source("SliceTiming")
+        return build(times, "sidecar", axis, direction)
+
+    if (
+        header is not None
+        and header.slice_code > 0
+        and header.slice_duration
+        and header.slice_dim is not None
+        and header.slice_dim < min(3, len(header.shape))
+    ):
+        header_axis: Axis = AXES[header.slice_dim]
+        n = header.shape[header.slice_dim]
+        try:
+            raw = header_slice_times(
+                header.slice_code,
+                header.slice_start,
+                header.slice_end,
+                header.slice_duration,
+                n,
+            )
+        except ValueError as exc:
+            return ScheduleResolution(
+                None,
+                None,
+                (
+                    TimingProblem(
+                        "header/bad-slice-fields",
+                        str(exc),
+                        {
+                            "slice_code": header.slice_code,
+                            "slice_start": header.slice_start,
+                            "slice_end": header.slice_end,
+                            "slice_duration": header.slice_duration,
+                        },
+                    ),
+                ),
+                n,
+            )
+        if any(t is None for t in raw):
+            return ScheduleResolution(
+                None,
+                None,
+                (
+                    TimingProblem(
+                        "header/padded-slices",
+                        f"the header times only slices {header.slice_start}..{header.slice_end} "
+                        f"of {n}; padding slices have no acquisition time",
+                        {
+                            "slice_start": header.slice_start,
+                            "slice_end": header.slice_end,
+                            "slices": n,
+                        },
+                    ),
+                ),
+                n,
+            )
+        sources["SliceTiming"] = Source(
+            "header", "slice_code, slice_duration, dim_info", image_file
+        )
+        sources["SliceEncodingDirection"] = Source("header", "dim_info", image_file)
+        return build([float(t) for t in raw if t is not None], "header", header_axis, "+")
+
+    return ScheduleResolution(None, None, (), axis_length(axis))

@@ -1,0 +1,151 @@
+"""The command line: contracts (exit codes, JSON report) and clean failures."""
+
+from __future__ import annotations
+
+import json
+import os
+import subprocess
+import sys
+from pathlib import Path
+
+import jsonschema
+import pytest
+from click.testing import CliRunner
+
+from slicetime.interfaces.cli import cli
+from slicetime.interfaces.report_json import report_schema
+from slicetime.rules import RULES
+from slicetime.schemes.generate import Protocol, slice_timing
+from slicetime.schemes.infer import infer_scheme
+from tests.helpers_bids import write_description, write_run, write_sidecar
+
+RUN = "sub-01/func/sub-01_task-tap_bold.nii.gz"
+
+
+def run_cli(*args: str) -> tuple[int, str, str]:
+    result = CliRunner().invoke(cli, list(args), catch_exceptions=False)
+    return result.exit_code, result.stdout, result.stderr
+
+
+@pytest.fixture()
+def dataset(tmp_path: Path) -> Path:
+    root = tmp_path / "ds"
+    write_description(root)
+    st = slice_timing(Protocol(n_slices=10, order="interleaved", repetition_time=2.0))
+    write_sidecar(root, "task-tap_bold.json", {"RepetitionTime": 2.0, "SliceTiming": st})
+    write_run(root, RUN, shape=(4, 4, 10, 5), tr=2.0)
+    write_run(root, "sub-02/func/sub-02_task-tap_bold.nii.gz", shape=(4, 4, 10, 5), tr=2.0,
+              sidecar={"SliceTiming": [t * 1000 for t in st]})
+    return root
+
+
+def test_show_json_is_the_contract_run_object(dataset: Path) -> None:
+    code, out, _ = run_cli("show", str(dataset / RUN), "--json")
+    assert code == 0
+    obj = json.loads(out)
+    jsonschema.validate(obj, report_schema()["$defs"]["run"] | {"$defs": report_schema()["$defs"]})
+    assert obj["path"] == RUN
+    assert obj["shape"] == [4, 4, 10, 5]
+    assert obj["sources"]["SliceTiming"] == "task-tap_bold.json"
+    # common practice (no source): odd-then-even interleaving of 10 slices over 2 s puts
+    # array-neighbouring slices about half a TR (1 s) apart
+    times = obj["slice_times"]
+    assert times[1] - times[0] == pytest.approx(1.0)
+    assert obj["scheme"]["label"] == "interleaved ascending from 0"
+    assert obj["scheme"]["groups"][:3] == [[0], [2], [4]]
+
+
+def test_show_text_names_sources_and_scheme(dataset: Path) -> None:
+    code, out, _ = run_cli("show", str(dataset / RUN))
+    assert code == 0
+    assert "interleaved ascending from 0" in out
+    assert "task-tap_bold.json" in out
+
+
+def test_audit_json_validates_and_exit_code_follows_fail_on(dataset: Path) -> None:
+    code, out, _ = run_cli("audit", str(dataset), "--format", "json")
+    assert code == 1  # sub-02 has SliceTiming in milliseconds (an error)
+    report = json.loads(out)
+    jsonschema.validate(report, report_schema())
+    assert report["summary"]["runs"] == 2
+    by_path = {r["path"]: r for r in report["runs"]}
+    bad = by_path["sub-02/func/sub-02_task-tap_bold.nii.gz"]
+    assert "timing/units-ms" in {f["code"] for f in bad["findings"]}
+    assert [f for f in by_path[RUN]["findings"] if f["severity"] == "error"] == []
+    assert run_cli("audit", str(dataset), "--fail-on", "never")[0] == 0
+
+
+def test_audit_writes_output_file(dataset: Path, tmp_path: Path) -> None:
+    target = tmp_path / "report.json"
+    run_cli("audit", str(dataset), "--format", "json", "--output", str(target))
+    jsonschema.validate(json.loads(target.read_text()), report_schema())
+
+
+def test_missing_path_is_one_line_and_exit_2(tmp_path: Path) -> None:
+    code, _out, err = run_cli("show", str(tmp_path / "nope.nii.gz"))
+    assert code == 2
+    assert err.count("\n") == 1 and "nope.nii.gz" in err and "Traceback" not in err
+    code, _, err = run_cli("audit", str(tmp_path / "absent"))
+    assert code == 2 and "absent" in err
+
+
+def test_garbage_file_is_a_finding_not_a_crash(tmp_path: Path) -> None:
+    root = tmp_path / "ds"
+    write_description(root)
+    bad = root / "sub-01/func/sub-01_task-tap_bold.nii.gz"
+    bad.parent.mkdir(parents=True)
+    bad.write_bytes(os.urandom(2000))
+    code, out, _ = run_cli("show", str(bad), "--json")
+    assert code == 0
+    assert "file/not-nifti" in {f["code"] for f in json.loads(out)["findings"]}
+
+
+def test_timing_output_round_trips_through_inference() -> None:
+    code, out, err = run_cli("timing", "--slices", "40", "--tr", "2", "--order", "interleaved")
+    assert code == 0
+    fields = json.loads(out)
+    # common practice (no source): 40 slices in a 2 s TR puts one slice every 50 ms
+    assert sorted(fields["SliceTiming"])[1] == pytest.approx(0.05)
+    assert infer_scheme(fields["SliceTiming"]).label == "interleaved ascending from 0"
+    assert "interleaved ascending from 0" in err
+    code, out, _ = run_cli("timing", "--slices", "12", "--tr", "1.5", "--multiband", "4",
+                           "--axis", "k-")
+    fields = json.loads(out)
+    assert fields["MultibandAccelerationFactor"] == 4
+    assert fields["SliceEncodingDirection"] == "k-"
+
+
+def test_timing_bad_protocol_is_a_usage_error() -> None:
+    code, _, err = run_cli("timing", "--slices", "10", "--tr", "2", "--multiband", "3")
+    assert code == 2 and "multiband" in err and "Traceback" not in err
+    code, _, err = run_cli("timing", "--slices", "10")
+    assert code == 2 and "--tr" in err
+
+
+def test_explain_covers_every_code() -> None:
+    code, out, _ = run_cli("explain", "--list")
+    assert code == 0
+    listed = {line.split()[0] for line in out.splitlines()}
+    assert listed == set(RULES)
+    code, out, _ = run_cli("explain", "timing/units-ms")
+    assert code == 0 and "1000" in out
+    assert run_cli("explain", "no/such-code")[0] == 2
+
+
+def test_module_entry_point_runs() -> None:
+    proc = subprocess.run([sys.executable, "-m", "slicetime", "--version"],
+                          capture_output=True, text=True, check=False)
+    assert proc.returncode == 0 and "slicetime" in proc.stdout
+
+
+def test_every_code_the_package_can_emit_is_documented() -> None:
+    import re
+
+    package = Path(__file__).resolve().parents[1] / "slicetime"
+    pattern = re.compile(r"""["']((?:file|sidecar|inherit|timing|tr|header|axis|scheme|dataset)"""
+                         r"""/[a-z0-9-]+)["']""")
+    emitted = set()
+    for source in package.rglob("*.py"):
+        emitted.update(pattern.findall(source.read_text("utf-8")))
+    undocumented = emitted - set(RULES)
+    assert not undocumented, sorted(undocumented)

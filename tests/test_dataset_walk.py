@@ -1,0 +1,170 @@
+"""Dataset roots and run discovery.
+
+What counts as a run follows the BIDS specification's datatypes and suffixes:
+``bold``/``cbv`` (func), ``asl`` (perf) and ``dwi`` are time series; ``sbref``
+is a single reference volume; ``anat`` and ``fmap`` hold no time series.
+"""
+
+from __future__ import annotations
+
+import os
+import sys
+from pathlib import Path
+
+import pytest
+
+from slicetime.model import Finding
+from slicetime.readers import ReadError, find_root, iter_runs
+
+sys.path.insert(0, str(Path(__file__).parent))
+from helpers_bids import symlink, write_description, write_json, write_run
+
+SMALL = (2, 2, 3, 2)
+
+
+def rel(root: Path, runs: list[tuple[Path, Path]]) -> list[tuple[str, str]]:
+    return [(r.relative_to(root).as_posix() or ".", f.relative_to(r).as_posix()) for r, f in runs]
+
+
+def test_find_root(tmp_path: Path) -> None:
+    ds = tmp_path / "ds"
+    write_description(ds)
+    run = write_run(ds, "sub-01/ses-1/func/sub-01_ses-1_task-x_bold.nii.gz", SMALL)
+    # BIDS specification: dataset_description.json sits at the dataset root
+    assert find_root(run) == ds
+    assert find_root(ds / "sub-01") == ds and find_root(ds) == ds
+    bare = tmp_path / "bare"
+    run2 = write_run(bare, "sub-07/ses-1/func/sub-07_ses-1_task-x_bold.nii", SMALL)
+    # without a description: the folder above the topmost sub-* folder (common practice)
+    assert find_root(run2) == bare and find_root(bare / "sub-07" / "ses-1") == bare
+    loose = write_run(tmp_path / "loose", "scan.nii", SMALL)
+    assert find_root(loose) == tmp_path / "loose" and find_root(loose.parent) == loose.parent
+    derived = tmp_path / "ds" / "derivatives" / "pipe"
+    write_description(derived, DatasetType="derivative")
+    out = write_run(derived, "sub-01/func/sub-01_task-x_desc-x_bold.nii.gz", SMALL)
+    assert find_root(out) == derived  # a derivative dataset is its own root
+
+
+@pytest.fixture
+def tree(tmp_path: Path) -> Path:
+    ds = tmp_path / "ds"
+    write_description(ds)
+    write_json(ds / "task-x_bold.json", {"RepetitionTime": 2.0})
+    write_run(ds, "sub-01/func/sub-01_task-x_run-1_bold.nii.gz", SMALL)
+    write_run(ds, "sub-01/func/sub-01_task-x_run-2_bold.nii", SMALL)
+    write_run(
+        ds, "sub-01/func/sub-01_task-x_sbref.nii.gz", SMALL[:3], sidecar={"SliceTiming": [0, 1, 2]}
+    )
+    write_run(ds, "sub-01/func/sub-01_task-x_cbv.nii.gz", SMALL)
+    (ds / "sub-01/func/sub-01_task-x_events.tsv").write_text("onset\tduration\n")
+    write_run(ds, "sub-01/anat/sub-01_T2w.nii.gz", SMALL[:3], sidecar={"SliceTiming": [0, 1]})
+    write_run(ds, "sub-01/fmap/sub-01_epi.nii.gz", SMALL, sidecar={"SliceTiming": [0, 1]})
+    write_run(ds, "sub-01/perf/sub-01_asl.nii.gz", SMALL)
+    write_run(ds, "sub-01/dwi/sub-01_dwi.nii.gz", SMALL)
+    write_run(ds, "sub-02/ses-1/func/sub-02_ses-1_task-x_echo-1_bold.nii.gz", SMALL)
+    write_run(ds, "sub-02/ses-1/func/sub-02_ses-1_task-x_echo-2_bold.nii.gz", SMALL)
+    write_run(ds, "sub-02/extra/sub-02_task-x_custom.nii", SMALL, sidecar={"SliceTiming": [0]})
+    write_run(ds, "sub-02/extra/sub-02_task-x_other.nii", SMALL, sidecar={"EchoTime": 0.03})
+    write_run(ds, "derivatives/pipe/sub-01/func/sub-01_task-x_desc-y_bold.nii.gz", SMALL)
+    write_run(ds, "sourcedata/sub-01/func/sub-01_task-x_bold.nii.gz", SMALL)
+    write_run(ds, "code/sub-01_task-x_bold.nii.gz", SMALL)
+    write_run(ds, ".hidden/sub-01_task-x_bold.nii.gz", SMALL)
+    write_run(ds, "sub-01/func/._sub-01_task-x_run-1_bold.nii.gz", SMALL)
+    (ds / "sub-03/func/sub-03_task-x_bold.nii.gz").mkdir(parents=True)  # a folder named as a run
+    symlink(ds / "sub-01/func/loop", "..")  # folder link back up: a traversal loop
+    symlink(ds / "sub-04/func/sub-04_task-x_bold.nii.gz", "sub-04_task-x_bold.nii.gz")  # self loop
+    symlink(ds / "sub-05/func/sub-05_task-x_bold.nii.gz", "../../.git/annex/objects/A/B/K/K")
+    return ds
+
+
+EXPECTED = [
+    "sub-01/dwi/sub-01_dwi.nii.gz",
+    "sub-01/func/sub-01_task-x_cbv.nii.gz",
+    "sub-01/func/sub-01_task-x_run-1_bold.nii.gz",
+    "sub-01/func/sub-01_task-x_run-2_bold.nii",
+    "sub-01/perf/sub-01_asl.nii.gz",
+    "sub-02/extra/sub-02_task-x_custom.nii",  # its own sidecar has SliceTiming
+    "sub-02/ses-1/func/sub-02_ses-1_task-x_echo-1_bold.nii.gz",
+    "sub-02/ses-1/func/sub-02_ses-1_task-x_echo-2_bold.nii.gz",
+    # named like runs but unreadable: yielded so that reading reports them
+    "sub-03/func/sub-03_task-x_bold.nii.gz",
+    "sub-04/func/sub-04_task-x_bold.nii.gz",
+    "sub-05/func/sub-05_task-x_bold.nii.gz",
+]
+
+
+def test_iter_runs_finds_the_runs_in_order(tree: Path) -> None:
+    runs = list(iter_runs([tree]))
+    assert rel(tree, runs) == [(".", p) for p in EXPECTED]
+    assert all(root == tree and f.is_absolute() for root, f in runs)
+
+
+def test_iter_runs_from_a_subject_folder_and_duplicates(tree: Path) -> None:
+    runs = list(iter_runs([tree / "sub-02", tree, tree / "sub-02"]))
+    assert rel(tree, runs) == [(".", p) for p in EXPECTED]  # each run once, sorted
+    sub = list(iter_runs([tree / "sub-02"]))
+    assert rel(tree, sub) == [(".", p) for p in EXPECTED if p.startswith("sub-02/")]
+
+
+def test_include_flags(tree: Path) -> None:
+    runs = rel(tree, list(iter_runs([tree], include_derivatives=True)))
+    assert ("derivatives/pipe", "sub-01/func/sub-01_task-x_desc-y_bold.nii.gz") not in runs
+    assert (".", "derivatives/pipe/sub-01/func/sub-01_task-x_desc-y_bold.nii.gz") in runs
+    assert len(runs) == len(EXPECTED) + 1
+    runs = rel(tree, list(iter_runs([tree], include_sourcedata=True)))
+    assert (".", "sourcedata/sub-01/func/sub-01_task-x_bold.nii.gz") in runs
+    assert (".", "code/sub-01_task-x_bold.nii.gz") in runs
+    runs = rel(tree, list(iter_runs([tree], include_hidden=True)))
+    assert (".", ".hidden/sub-01_task-x_bold.nii.gz") in runs
+    assert (".", "sub-01/func/._sub-01_task-x_run-1_bold.nii.gz") not in runs  # no BIDS name
+
+
+def test_derivative_dataset_has_its_own_root(tree: Path) -> None:
+    write_description(tree / "derivatives" / "pipe", DatasetType="derivative")
+    runs = list(iter_runs([tree], include_derivatives=True))
+    assert (
+        tree / "derivatives" / "pipe",
+        tree / "derivatives/pipe/sub-01/func/sub-01_task-x_desc-y_bold.nii.gz",
+    ) in runs
+
+
+def test_a_file_is_yielded_as_given(tree: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    odd = write_run(tree, "sub-01/anat/some scan.nii", SMALL)
+    assert list(iter_runs([odd])) == [(tree, odd)]
+    monkeypatch.chdir(tree)
+    assert list(iter_runs([Path("sub-01/anat/some scan.nii")])) == [(tree, odd)]
+
+
+def test_missing_paths_raise(tree: Path) -> None:
+    with pytest.raises(ReadError) as err:
+        list(iter_runs([tree / "nope"]))
+    assert err.value.code == "file/missing"
+    with pytest.raises(ReadError) as err:
+        list(iter_runs([tree / "sub-05/func/sub-05_task-x_bold.nii.gz"]))
+    assert err.value.code == "file/no-content"
+
+
+def test_unlistable_folder_is_reported(tree: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    real_scandir = os.scandir
+    locked = str(tree / "sub-02")
+
+    def refusing(path: os.PathLike[str] | str) -> object:
+        if os.fspath(path) == locked:
+            raise PermissionError(13, "Permission denied", locked)
+        return real_scandir(path)
+
+    monkeypatch.setattr(os, "scandir", refusing)
+    seen: list[Finding] = []
+    runs = rel(tree, list(iter_runs([tree], on_error=seen.append)))
+    assert runs and all(not p.startswith("sub-02/") for _, p in runs)
+    assert [f.code for f in seen] == ["file/unreadable"]
+    assert "Permission denied" in seen[0].message
+
+
+def test_folder_links(tree: Path, tmp_path: Path) -> None:
+    storage = tmp_path / "storage" / "sub-06"
+    write_run(storage, "func/sub-06_task-x_bold.nii.gz", SMALL)
+    symlink(tree / "sub-06", storage)  # a subject kept elsewhere: followed
+    symlink(tree / "sub-01/func/alias", "../../sub-02")  # an alias inside the tree: not followed
+    runs = rel(tree, list(iter_runs([tree])))
+    assert runs == [(".", p) for p in [*EXPECTED, "sub-06/func/sub-06_task-x_bold.nii.gz"]]

@@ -1,0 +1,128 @@
+"""Single-run rules on the defects that happen in practice."""
+
+from __future__ import annotations
+
+from slicetime.model import Severity
+from slicetime.rules import check_run
+from slicetime.schemes.generate import Protocol, slice_timing
+from tests.factories import header_info, record
+
+H = header_info((8, 8, 12, 20), tr=2.0)
+
+
+def codes(metadata: dict, header=H) -> dict[str, Severity]:
+    return {f.code: f.severity for f in check_run(record(metadata, header))}
+
+
+def test_milliseconds_are_named_as_such_with_the_fix() -> None:
+    # common practice (no source): converters sometimes write SliceTiming in ms
+    seconds = slice_timing(Protocol(n_slices=12, order="interleaved", repetition_time=2.0))
+    found = check_run(record({"RepetitionTime": 2.0,
+                              "SliceTiming": [t * 1000 for t in seconds]}, H))
+    ms = [f for f in found if f.code == "timing/units-ms"]
+    assert len(ms) == 1 and ms[0].severity is Severity.ERROR
+    assert "1000" in (ms[0].hint or "")
+    assert ms[0].evidence["as_seconds_max"] < 2.0
+    assert "timing/exceeds-tr" not in {f.code for f in found}  # one problem, one finding
+
+
+def test_negative_times() -> None:
+    assert codes({"RepetitionTime": 2.0,
+                  "SliceTiming": [-0.1] + [i * 0.15 for i in range(1, 12)]}).get(
+        "timing/negative") is Severity.ERROR
+
+
+def test_bad_entries_and_not_a_list() -> None:
+    st = [i * 0.15 for i in range(12)]
+    st[3] = None
+    assert "timing/bad-entry" in codes({"RepetitionTime": 2.0, "SliceTiming": st})
+    assert "timing/not-a-list" in codes({"RepetitionTime": 2.0, "SliceTiming": "0,0.1"})
+    assert "timing/bad-entry" in codes({"RepetitionTime": 2.0,
+                                        "SliceTiming": [float("nan")] * 12})
+
+
+def test_all_equal_without_multiband() -> None:
+    assert codes({"RepetitionTime": 2.0, "SliceTiming": [0.5] * 12}).get(
+        "timing/all-equal") is Severity.WARNING
+
+
+def test_duplicates_without_multiband_structure() -> None:
+    st = [i * 0.15 for i in range(12)]
+    st[5] = st[4]  # a copy error: one time appears twice on neighbouring slices
+    assert "timing/duplicates" in codes({"RepetitionTime": 2.0, "SliceTiming": st})
+
+
+def test_uneven_spacing() -> None:
+    st = [i * 0.1 for i in range(12)]
+    st[6:] = [t + 0.05 for t in st[6:]]  # one gap of 150 ms among gaps of 100 ms
+    assert codes({"RepetitionTime": 2.0, "SliceTiming": st}).get(
+        "timing/uneven") is Severity.WARNING
+
+
+def test_multiband_factor_against_the_times() -> None:
+    # common practice (no source): with factor m and N slices, SliceTiming holds N/m
+    # distinct values, each repeated m times on slices N/m apart.
+    st = slice_timing(Protocol(n_slices=12, multiband=3, order="interleaved",
+                               repetition_time=2.0))
+    assert len(set(st)) == 4
+    assert "scheme/multiband-mismatch" not in codes(
+        {"RepetitionTime": 2.0, "SliceTiming": st, "MultibandAccelerationFactor": 3})
+    assert codes({"RepetitionTime": 2.0, "SliceTiming": st,
+                  "MultibandAccelerationFactor": 2}).get(
+        "scheme/multiband-mismatch") is Severity.ERROR
+    assert "scheme/multiband-undeclared" in codes({"RepetitionTime": 2.0, "SliceTiming": st})
+
+
+def test_sparse_run_times_beyond_the_acquisition_window() -> None:
+    # BIDS DelayTime: slices are acquired within RepetitionTime - DelayTime
+    st = slice_timing(Protocol(n_slices=12, repetition_time=3.0))  # spread over all 3 s
+    found = codes({"RepetitionTime": 3.0, "DelayTime": 1.0, "SliceTiming": st},
+                  header_info((8, 8, 12, 20), tr=3.0))
+    assert found.get("timing/exceeds-acquisition") is Severity.ERROR
+    ok = slice_timing(Protocol(n_slices=12, repetition_time=3.0, acquisition_time=2.0))
+    assert "timing/exceeds-acquisition" not in codes(
+        {"RepetitionTime": 3.0, "DelayTime": 1.0, "SliceTiming": ok},
+        header_info((8, 8, 12, 20), tr=3.0))
+
+
+def test_header_tr_in_ms_labelled_seconds_gets_a_unit_hint() -> None:
+    # BIDS RepetitionTimeMismatch: pixdim[4] after xyzt_units must equal RepetitionTime
+    st = [i * 0.15 for i in range(12)]
+    hdr = header_info((8, 8, 12, 20), tr=2000.0)
+    found = [f for f in check_run(record({"RepetitionTime": 2.0, "SliceTiming": st}, hdr))
+             if f.code == "header/tr-mismatch"]
+    assert found and "milliseconds" in (found[0].hint or "")
+    # a header in ms units that says so is consistent
+    ms_header = header_info((8, 8, 12, 20), tr=2.0, time_unit="ms")
+    assert "header/tr-mismatch" not in codes({"RepetitionTime": 2.0, "SliceTiming": st},
+                                             ms_header)
+
+
+def test_dim_info_disagreeing_with_the_slice_axis() -> None:
+    st = [i * 0.15 for i in range(12)]
+    hdr = header_info((8, 12, 12, 20), slice_dim=1)
+    assert "axis/dim-info-mismatch" in codes({"RepetitionTime": 2.0, "SliceTiming": st}, hdr)
+    assert "axis/dim-info-mismatch" not in codes(
+        {"RepetitionTime": 2.0, "SliceTiming": st, "SliceEncodingDirection": "j"}, hdr)
+
+
+def test_header_slice_code_describing_another_order() -> None:
+    # nifti1.h: slice_code 2 is sequential decreasing; the sidecar says ascending
+    st = [i * 0.15 for i in range(12)]
+    hdr = header_info((8, 8, 12, 20), slice_code=2, slice_duration=0.15)
+    assert "header/slice-code-mismatch" in codes({"RepetitionTime": 2.0, "SliceTiming": st},
+                                                 hdr)
+    hdr1 = header_info((8, 8, 12, 20), slice_code=1, slice_duration=0.15)
+    assert "header/slice-code-mismatch" not in codes(
+        {"RepetitionTime": 2.0, "SliceTiming": st}, hdr1)
+
+
+def test_missing_timing_and_tr() -> None:
+    found = codes({}, header_info((8, 8, 12, 20), tr=2.0))
+    assert found.get("timing/missing") is Severity.WARNING
+    assert found.get("tr/missing") is Severity.ERROR
+
+
+def test_three_dimensional_bold() -> None:
+    assert "file/not-4d" in codes({"RepetitionTime": 2.0},
+                                  header_info((8, 8, 12), tr=None))
