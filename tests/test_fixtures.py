@@ -56,7 +56,7 @@ def test_hostile_tree_is_audited_without_a_traceback_and_unchanged() -> None:
     assert "file/truncated" in codes["cut"]
     assert "sidecar/bad-json" in codes["brokenjson"]
     assert "sidecar/non-finite-number" in codes["nan"] and "timing/bad-entry" in codes["nan"]
-    fine = [r for r in report["runs"] if "task-fine" in r["path"]][0]
+    fine = next(r for r in report["runs"] if "task-fine" in r["path"])
     assert [f for f in fine["findings"] if f["severity"] != "note"] == []
     assert fine["scheme"]["label"] == "ascending"
     assert tree_digest(root) == before  # nothing in the input tree is modified
