@@ -282,3 +282,7 @@ class RunRecord:
     axis_length: int | None = None
     scheme: Scheme | None = None
     findings: tuple[Finding, ...] = ()
+    #: timing fields a deeper sidecar overrode: key -> ((sidecar, shadowed value), ...)
+    overridden: Mapping[str, tuple[tuple[str, Any], ...]] = dataclasses.field(
+        default_factory=dict
+    )

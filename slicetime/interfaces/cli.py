@@ -107,6 +107,8 @@ def show(file: Path, as_json: bool) -> None:
 @click.option("--include-derivatives", is_flag=True, help="Also audit derivatives/.")
 @click.option("--include-sourcedata", is_flag=True, help="Also audit sourcedata/.")
 @click.option("--include-hidden", is_flag=True, help="Also audit hidden folders and files.")
+@click.option("--jobs", type=click.IntRange(min=1), default=None,
+              help="Local worker processes (default: the CPUs available).")
 @friendly
 def audit(
     paths: tuple[Path, ...],
@@ -117,18 +119,23 @@ def audit(
     include_derivatives: bool,
     include_sourcedata: bool,
     include_hidden: bool,
+    jobs: int | None,
 ) -> None:
     """Audit every run under PATHS (dataset roots, subject folders or run files)."""
     from slicetime.interfaces.report_json import audit_object, dumps
-    from slicetime.interfaces.terminal import make_console, render_audit
+    from slicetime.interfaces.terminal import make_console, progress_reporter, render_audit
     from slicetime.pipelines.audit import audit_paths
+    from slicetime.pipelines.executor import available_cpus
 
-    result = audit_paths(
-        list(paths),
-        include_derivatives=include_derivatives,
-        include_sourcedata=include_sourcedata,
-        include_hidden=include_hidden,
-    )
+    with progress_reporter("auditing") as progress:
+        result = audit_paths(
+            list(paths),
+            include_derivatives=include_derivatives,
+            include_sourcedata=include_sourcedata,
+            include_hidden=include_hidden,
+            jobs=jobs if jobs is not None else available_cpus(),
+            progress=progress,
+        )
     root_given = str(paths[0]) if len(paths) == 1 else " ".join(str(p) for p in paths)
     if fmt == "json":
         text = dumps(audit_object(result, root_given)) + "\n"

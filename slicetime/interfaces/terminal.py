@@ -8,7 +8,8 @@ from __future__ import annotations
 
 import os
 import sys
-from collections.abc import Iterable
+from collections.abc import Callable, Iterable, Iterator
+from contextlib import contextmanager
 
 from rich.console import Console
 from rich.table import Table
@@ -38,6 +39,24 @@ def make_console(file: object = None) -> Console:
         no_color="NO_COLOR" in os.environ,
         emoji=False,
     )
+
+
+@contextmanager
+def progress_reporter(what: str) -> Iterator[Callable[[int, int], None] | None]:
+    """A progress bar on stderr when it is a terminal; nothing otherwise."""
+    if not sys.stderr.isatty():
+        yield None
+        return
+    from rich.progress import BarColumn, MofNCompleteColumn, Progress, TimeRemainingColumn
+
+    bar = Progress(f"[dim]{what}[/dim]", BarColumn(), MofNCompleteColumn(),
+                   TimeRemainingColumn(), console=Console(stderr=True), transient=True)
+    task = bar.add_task(what, total=None)
+    with bar:
+        def update(done: int, total: int) -> None:
+            bar.update(task, completed=done, total=total)
+
+        yield update
 
 
 def supports_unicode(console: Console) -> bool:

@@ -7,6 +7,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from slicetime.model import Finding, RunRecord, Severity
+from slicetime.pipelines.executor import Progress, map_chunks
 from slicetime.readers.dataset import find_root, iter_runs
 from slicetime.readers.errors import ReadError
 from slicetime.readers.inheritance import SidecarIndex
@@ -51,28 +52,40 @@ def audit_one(root: Path, path: Path, index: SidecarIndex | None = None) -> RunR
     return RunResult(record, check_run(record))
 
 
+def audit_chunk(targets: Sequence[tuple[Path, Path]]) -> list[RunResult]:
+    """Audit neighbouring runs with one sidecar cache per dataset root."""
+    indexes: dict[Path, SidecarIndex] = {}
+    results = []
+    for root, path in targets:
+        index = indexes.setdefault(root, SidecarIndex(root))
+        results.append(audit_one(root, path, index))
+    return results
+
+
 def audit_paths(
     paths: Sequence[Path],
     *,
     include_derivatives: bool = False,
     include_sourcedata: bool = False,
     include_hidden: bool = False,
+    jobs: int = 1,
+    progress: Progress | None = None,
 ) -> AuditResult:
     """Audit every run under ``paths``; raises ReadError only for a missing given path."""
+    walk_problems: list[Finding] = []
     targets: list[tuple[Path, Path]] = list(
         iter_runs(
             paths,
             include_derivatives=include_derivatives,
             include_sourcedata=include_sourcedata,
             include_hidden=include_hidden,
+            on_error=walk_problems.append,
         )
     )
     roots = sorted({str(root) for root, _ in targets}) or [str(find_root(p)) for p in paths]
     result = AuditResult(roots=roots)
-    indexes: dict[Path, SidecarIndex] = {}
-    for root, path in targets:
-        index = indexes.setdefault(root, SidecarIndex(root))
-        result.runs.append(audit_one(root, path, index))
+    result.runs = map_chunks(audit_chunk, targets, jobs=jobs, progress=progress)
+    result.dataset_findings.extend(walk_problems)
     per_run, overall = check_dataset([r.record for r in result.runs])
     for run in result.runs:
         run.findings.extend(per_run.get(run.record.path, []))

@@ -56,6 +56,13 @@ def _short(value: Any) -> str:
     return text if len(text) <= 40 else text[:37] + "..."
 
 
+#: fields whose overriding by a deeper sidecar is worth reporting
+OVERRIDE_TRACKED = frozenset({
+    "SliceTiming", "RepetitionTime", "SliceEncodingDirection", "MultibandAccelerationFactor",
+    "DelayTime", "VolumeTiming",
+})
+
+
 @dataclass(frozen=True)
 class Resolution:
     """The metadata of one data file after the inheritance principle.
@@ -75,6 +82,9 @@ class Resolution:
     findings: tuple[Finding, ...]
     name: ParsedName | None = None
     levels: tuple[tuple[str, ...], ...] = field(default=())
+    #: timing fields whose inherited value a deeper sidecar replaced with a different
+    #: one: key -> ((sidecar, value), ...) of the shadowed values, top-down
+    overridden: dict[str, tuple[tuple[str, Any], ...]] = field(default_factory=dict)
 
 
 @dataclass
@@ -233,6 +243,7 @@ class SidecarIndex:
         chain: list[str] = []
         level_names: list[tuple[str, ...]] = []
         own_names: set[str] = set()
+        overridden: dict[str, list[tuple[str, Any]]] = {}
         for level in levels:
             loaded: list[tuple[str, dict[str, Any] | None]] = []
             for path, own in level:
@@ -245,6 +256,10 @@ class SidecarIndex:
                 loaded.append((shown, data))
                 if data:
                     for key, value in data.items():
+                        if key in OVERRIDE_TRACKED and key in metadata \
+                                and metadata[key] != value:
+                            overridden.setdefault(key, []).append(
+                                (sources[key], copy.deepcopy(metadata[key])))
                         metadata[key] = value
                         sources[key] = shown
             level_names.append(tuple(name for name, _ in loaded))
@@ -260,6 +275,7 @@ class SidecarIndex:
             findings=tuple(findings),
             name=parse_name(data_path.name),
             levels=tuple(level_names),
+            overridden={k: tuple(v) for k, v in overridden.items()},
         )
 
 

@@ -43,6 +43,7 @@ def assemble_record(
     sources: Mapping[str, str],
     chain: Sequence[str] = (),
     findings: Iterable[Finding] = (),
+    overridden: Mapping[str, tuple[tuple[str, Any], ...]] | None = None,
 ) -> RunRecord:
     """Resolve the schedule and infer the scheme from values already read (pure)."""
     name = display.rsplit("/", 1)[-1]
@@ -64,6 +65,7 @@ def assemble_record(
         "metadata_sources": dict(sources),
         "sidecar_chain": tuple(chain),
         "findings": tuple(kept),
+        "overridden": dict(overridden or {}),
     }
     if header is None:
         return RunRecord(**common)
@@ -101,4 +103,5 @@ def build_record(root: Path, path: Path, index: SidecarIndex | None = None) -> R
         sources=resolution.sources,
         chain=resolution.chain,
         findings=findings,
+        overridden=resolution.overridden,
     )

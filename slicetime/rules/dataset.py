@@ -1,0 +1,216 @@
+"""Checks across runs: consensus within a task/acquisition, echoes, overrides."""
+
+from __future__ import annotations
+
+import math
+from collections import Counter, defaultdict
+from collections.abc import Callable, Hashable, Iterator, Sequence
+from typing import Any
+
+from slicetime.model import RunRecord, Severity
+from slicetime.rules.registry import DatasetHit, Hit, dataset_rule, run_rule
+
+E, W, N = Severity.ERROR, Severity.WARNING, Severity.NOTE
+
+#: entities that name a protocol; runs sharing them are expected to share timing.
+#: echo and part are left out: echoes and magnitude/phase parts of one run share a
+#: protocol by construction and are compared by dataset/echo-mismatch.
+PROTOCOL_ENTITIES = ("task", "acq", "ce", "rec", "dir")
+#: a consensus needs at least this many runs (common practice, no source)
+MIN_RUNS_FOR_CONSENSUS = 3
+TIME_TOLERANCE = 0.003
+
+
+def protocol_key(record: RunRecord) -> tuple[str, ...]:
+    """Runs with the same key (root, datatype, suffix, protocol entities) should agree."""
+    return (record.root, record.datatype or "", record.suffix,
+            *(f"{e}-{record.entities.get(e, '')}" for e in PROTOCOL_ENTITIES))
+
+
+def _describe_key(key: tuple[str, ...]) -> str:
+    parts = [p for p in key[3:] if not p.endswith("-")]
+    return "_".join([*parts, key[2]]) if parts else key[2]
+
+
+def _consensus(
+    records: Sequence[RunRecord],
+    value_of: Callable[[RunRecord], Hashable | None],
+    show: Callable[[Hashable], str],
+    what: str,
+    field: str,
+) -> Iterator[DatasetHit]:
+    groups: dict[tuple[str, ...], list[RunRecord]] = defaultdict(list)
+    for record in records:
+        if record.header is not None:
+            groups[protocol_key(record)].append(record)
+    for key, members in sorted(groups.items()):
+        values = [(r, value_of(r)) for r in members]
+        known = [(r, v) for r, v in values if v is not None]
+        if len(known) < MIN_RUNS_FOR_CONSENSUS:
+            continue
+        counts = Counter(v for _, v in known)
+        majority, votes = counts.most_common(1)[0]
+        if votes * 2 <= len(known) or votes == len(known):
+            continue  # no strict majority, or everyone agrees
+        outliers = [r for r, v in known if v != majority]
+        for record in outliers:
+            seen = value_of(record)
+            assert seen is not None
+            yield DatasetHit(record.path, Hit(
+                f"{what} {show(seen)} differs from the {votes} of {len(known)} "
+                f"{_describe_key(key)} runs that have {show(majority)}",
+                field,
+                {"found": show(seen), "majority": show(majority), "majority_runs": votes,
+                 "runs_compared": len(known),
+                 "outliers": [r.path for r in outliers][:20]},
+            ))
+
+
+def _scheme_value(record: RunRecord) -> Hashable | None:
+    if record.scheme is None:
+        return None
+    return (record.scheme.label, record.scheme.groups) if not record.scheme.regular \
+        else record.scheme.label
+
+
+def _scheme_text(value: Hashable) -> str:
+    return f"'{value[0]}'" if isinstance(value, tuple) else f"'{value}'"
+
+
+@dataset_rule(
+    "dataset/outlier-scheme",
+    title="a run's scheme differs from the other runs of its task and acquisition",
+    severity=W,
+    rationale=(
+        "Runs of one task and acquisition come from one protocol, so they should share a "
+        "slice order. One subject's differing order usually means an overriding sidecar, a "
+        "different converter, or a protocol change nobody recorded."
+    ),
+    fix="Check the outlier against the protocol; fix its sidecar or record the change with "
+    "an acq- entity.",
+)
+def outlier_scheme(records: Sequence[RunRecord]) -> Iterator[DatasetHit]:
+    yield from _consensus(records, _scheme_value, _scheme_text, "scheme", "SliceTiming")
+
+
+@dataset_rule(
+    "dataset/outlier-tr",
+    title="a run's TR differs from the other runs of its task and acquisition",
+    severity=W,
+    rationale="Runs of one protocol share a repetition time.",
+    fix="Check RepetitionTime of the outlier against the protocol.",
+)
+def outlier_tr(records: Sequence[RunRecord]) -> Iterator[DatasetHit]:
+    def value(record: RunRecord) -> Hashable | None:
+        tr = record.schedule.repetition_time if record.schedule else None
+        return round(tr, 3) if tr else None
+
+    yield from _consensus(records, value, lambda v: f"{v:g} s", "RepetitionTime",
+                          "RepetitionTime")
+
+
+@dataset_rule(
+    "dataset/outlier-slices",
+    title="a run's slice count differs from the other runs of its task and acquisition",
+    severity=W,
+    rationale="Runs of one protocol have the same number of slices.",
+    fix="Check the image: a different slice count means a different protocol or a crop.",
+)
+def outlier_slices(records: Sequence[RunRecord]) -> Iterator[DatasetHit]:
+    def value(record: RunRecord) -> Hashable | None:
+        if record.schedule is not None:
+            return record.schedule.n_slices
+        return record.axis_length
+
+    yield from _consensus(records, value, lambda v: f"{v}", "slice count", "SliceTiming")
+
+
+def _echo_family(record: RunRecord) -> tuple[Any, ...] | None:
+    if "echo" not in record.entities and "part" not in record.entities:
+        return None
+    rest = tuple(sorted((k, v) for k, v in record.entities.items() if k not in ("echo", "part")))
+    return (record.root, record.datatype, record.suffix, rest)
+
+
+@dataset_rule(
+    "dataset/echo-mismatch",
+    title="echoes or parts of one run disagree on timing",
+    severity=E,
+    rationale=(
+        "The echoes (and magnitude/phase parts) of a multi-echo run are acquired in the same "
+        "excitations, so their slice times and TR are identical. A difference means one "
+        "file's metadata belongs to another run."
+    ),
+    fix="Give every echo the same SliceTiming and RepetitionTime.",
+)
+def echo_mismatch(records: Sequence[RunRecord]) -> Iterator[DatasetHit]:
+    families: dict[tuple[Any, ...], list[RunRecord]] = defaultdict(list)
+    for record in records:
+        family = _echo_family(record)
+        if family is not None and record.schedule is not None:
+            families[family].append(record)
+    for members in families.values():
+        if len(members) < 2:
+            continue
+        members = sorted(members, key=lambda r: r.path)
+        first = members[0]
+        assert first.schedule is not None
+        for other in members[1:]:
+            assert other.schedule is not None
+            a, b = first.schedule, other.schedule
+            same_times = len(a.times) == len(b.times) and all(
+                abs(x - y) <= TIME_TOLERANCE for x, y in zip(a.times, b.times, strict=True))
+            same_tr = (a.repetition_time is None) == (b.repetition_time is None) and (
+                a.repetition_time is None or b.repetition_time is None
+                or math.isclose(a.repetition_time, b.repetition_time, abs_tol=1e-3))
+            if not (same_times and same_tr):
+                what = "SliceTiming" if not same_times else "RepetitionTime"
+                yield DatasetHit(other.path, Hit(
+                    f"{what} differs from {first.path}, another echo/part of the same run",
+                    what,
+                    {"reference_run": first.path,
+                     "reference_scheme": first.scheme.label if first.scheme else None,
+                     "this_scheme": other.scheme.label if other.scheme else None,
+                     "reference_tr": a.repetition_time, "this_tr": b.repetition_time},
+                ))
+
+
+@run_rule(
+    "inherit/timing-override",
+    title="a deeper sidecar overrides inherited timing",
+    severity=N,
+    rationale=(
+        "The inheritance principle lets a subject- or run-level sidecar override a value "
+        "inherited from above. For timing that is legitimate (a protocol change) but also how "
+        "one participant silently ends up with different slice times. It is an error when the "
+        "overriding value itself is broken."
+    ),
+    fix="Confirm the override is intended; otherwise delete the overriding key.",
+)
+def timing_override(record: RunRecord) -> Iterator[Hit]:
+    for key, shadowed in sorted(record.overridden.items()):
+        winner = record.metadata_sources.get(key)
+        replaced_from, replaced = shadowed[-1]
+        broken = key == "SliceTiming" and (
+            bool(record.timing_problems) or _exceeds_window(record))
+        yield Hit(
+            f"{key} from {winner} overrides the value inherited from {replaced_from}"
+            + (" and the overriding value is broken" if broken else ""),
+            key,
+            {"winner": winner, "overridden": [s for s, _ in shadowed],
+             "inherited_value": _short(replaced)},
+            severity=E if broken else None,
+        )
+
+
+def _exceeds_window(record: RunRecord) -> bool:
+    schedule = record.schedule
+    if schedule is None or schedule.repetition_time is None:
+        return False
+    return max(schedule.times) >= schedule.repetition_time or min(schedule.times) < 0
+
+
+def _short(value: Any) -> Any:
+    if isinstance(value, list) and len(value) > 12:
+        return [*value[:12], f"… {len(value) - 12} more"]
+    return value
