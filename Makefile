@@ -25,3 +25,6 @@ lint: $(STAMP)
 
 clean:
 	rm -rf $(VENV) demo-output .pytest_cache .hypothesis build *.egg-info
+
+bench: $(STAMP)
+	$(PY) benchmarks/bench_audit.py --sizes 500,2000 --out bench-results/audit.json

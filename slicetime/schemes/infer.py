@@ -31,6 +31,7 @@ A single slice or a single group (``simultaneous``) is regular with ``start``
 
 from __future__ import annotations
 
+import functools
 import itertools
 import math
 from collections.abc import Sequence
@@ -129,7 +130,8 @@ def group_slices(
         groups[-1].append(int(index))
         previous = t
     sorted_groups = tuple(tuple(sorted(g)) for g in groups)
-    group_times = tuple(float(np.mean(values[list(g)])) for g in sorted_groups)
+    plain = values.tolist()
+    group_times = tuple(math.fsum(plain[i] for i in g) / len(g) for g in sorted_groups)
     return sorted_groups, group_times
 
 
@@ -266,6 +268,21 @@ def _check_values(times: Sequence[float]) -> np.ndarray:
 
 
 def infer_scheme(times: Sequence[float], *, tolerance: float = DEFAULT_TOLERANCE) -> Scheme:
+    """Infer the acquisition scheme from per-slice times (data-array order).
+
+    Memoised: the runs of a dataset share a handful of schedules, and a
+    :class:`Scheme` is immutable. See :func:`_infer_scheme` for the method.
+    """
+    key = tuple(float(t) for t in times)
+    return _infer_cached(key, float(tolerance))
+
+
+@functools.lru_cache(maxsize=4096)
+def _infer_cached(times: tuple[float, ...], tolerance: float) -> Scheme:
+    return _infer_scheme(times, tolerance=tolerance)
+
+
+def _infer_scheme(times: Sequence[float], *, tolerance: float = DEFAULT_TOLERANCE) -> Scheme:
     """Infer the acquisition scheme from per-slice times (data-array order).
 
     ``tolerance`` (seconds, default :data:`DEFAULT_TOLERANCE`) bounds how far
