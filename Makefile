@@ -16,11 +16,11 @@ demo: $(STAMP)
 	$(VENV)/bin/slicetime demo --out demo-output
 
 test: $(STAMP)
-	$(PY) -m ruff check slicetime tests
+	$(PY) -m ruff check slicetime tests benchmarks fixtures
 	$(PY) -m pytest -q
 
 lint: $(STAMP)
-	$(PY) -m ruff check slicetime tests
+	$(PY) -m ruff check slicetime tests benchmarks fixtures
 	$(PY) -m ruff format --check slicetime tests
 
 clean:

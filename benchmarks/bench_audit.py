@@ -29,8 +29,8 @@ import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from slicetime.pipelines.audit import audit_paths  # noqa: E402
-from slicetime.schemes.generate import Protocol, slice_timing  # noqa: E402
+from slicetime.pipelines.audit import audit_paths
+from slicetime.schemes.generate import Protocol, slice_timing
 
 
 def make_dataset(root: Path, n_runs: int) -> None:
