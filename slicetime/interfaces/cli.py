@@ -97,7 +97,7 @@ def show(file: Path, as_json: bool) -> None:
 # --------------------------------------------------------------------------- audit
 @cli.command()
 @click.argument("paths", nargs=-1, required=True, type=click.Path(path_type=Path))
-@click.option("--format", "fmt", type=click.Choice(["text", "json"]), default="text",
+@click.option("--format", "fmt", type=click.Choice(["text", "json", "junit"]), default="text",
               show_default=True, help="Report format on stdout (or --output).")
 @click.option("--output", type=click.Path(path_type=Path, dir_okay=False),
               help="Write the report to this file instead of stdout.")
@@ -139,6 +139,14 @@ def audit(
     root_given = str(paths[0]) if len(paths) == 1 else " ".join(str(p) for p in paths)
     if fmt == "json":
         text = dumps(audit_object(result, root_given)) + "\n"
+        if output:
+            _write_text(output, text)
+        else:
+            click.echo(text, nl=False)
+    elif fmt == "junit":
+        from slicetime.interfaces.report_junit import junit_xml
+
+        text = junit_xml(result, fail_on=fail_on, root_given=root_given)
         if output:
             _write_text(output, text)
         else:

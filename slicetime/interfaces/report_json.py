@@ -8,6 +8,7 @@ from importlib import resources
 from typing import Any
 
 from slicetime import __version__
+from slicetime.interfaces.safe_text import sanitise
 from slicetime.pipelines.audit import AuditResult, RunResult
 
 
@@ -61,4 +62,4 @@ def audit_object(result: AuditResult, root_given: str) -> dict[str, Any]:
 
 
 def dumps(obj: Any) -> str:
-    return json.dumps(obj, indent=2, ensure_ascii=False, allow_nan=False)
+    return json.dumps(sanitise(obj), indent=2, ensure_ascii=False, allow_nan=False)

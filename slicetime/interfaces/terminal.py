@@ -16,6 +16,7 @@ from rich.table import Table
 from rich.text import Text
 
 from slicetime.interfaces.diagram import order_diagram
+from slicetime.interfaces.safe_text import xml_safe
 from slicetime.model import Finding, Severity
 from slicetime.pipelines.audit import AuditResult, RunResult
 
@@ -74,14 +75,14 @@ def finding_lines(findings: Iterable[Finding], indent: str = "  ") -> list[Text]
         line = Text(indent)
         line.append(f"{BADGE[f.severity]} ", style=STYLE[f.severity])
         line.append(f"{f.code}", style="bold")
-        where = f.file or ""
+        where = xml_safe(f.file or "")
         if f.field:
-            where = f"{where} › {f.field}" if where else f.field
-        line.append(f"  {f.message}")
+            where = f"{where} › {xml_safe(f.field)}" if where else xml_safe(f.field)
+        line.append(f"  {xml_safe(f.message, one_line=False)}")
         if where:
             line.append(f"\n{indent}    at {where}", style="dim")
         if f.hint:
-            line.append(f"\n{indent}    → {f.hint}", style="italic")
+            line.append(f"\n{indent}    → {xml_safe(f.hint, one_line=False)}", style="italic")
         lines.append(line)
     return lines
 
@@ -91,7 +92,7 @@ def render_show(run: RunResult, console: Console) -> None:
     record = run.record
     schedule = record.schedule
     header = record.header
-    console.print(Text(record.path, style="bold"))
+    console.print(Text(xml_safe(record.path), style="bold"))
     facts = Table.grid(padding=(0, 2))
     facts.add_column(style="dim", no_wrap=True)
     facts.add_column()
@@ -128,7 +129,7 @@ def render_show(run: RunResult, console: Console) -> None:
         src.add_column(no_wrap=True)
         src.add_column(style="dim")
         for key, source in schedule.sources.items():
-            src.add_row(f"  {key}", source.describe())
+            src.add_row(f"  {key}", xml_safe(source.describe()))
         console.print(src)
         console.print(Text("\nacquisition order (slice index ↑, time within the volume →)"
                            if supports_unicode(console) else
@@ -161,7 +162,7 @@ def render_audit(result: AuditResult, console: Console, *, show_notes: bool = Tr
             counts[f.severity] += 1
         tr = record.schedule.repetition_time if record.schedule else None
         table.add_row(
-            record.path,
+            xml_safe(record.path),
             record.scheme.label if record.scheme else "—",
             f"{tr:g}" if tr else "—",
             *(str(counts[s]) if counts[s] else "" for s in Severity),
@@ -170,7 +171,7 @@ def render_audit(result: AuditResult, console: Console, *, show_notes: bool = Tr
     for run in result.runs:
         shown = [f for f in run.findings if show_notes or f.severity != Severity.NOTE]
         if shown:
-            console.print(Text(f"\n{run.record.path}", style="bold"))
+            console.print(Text(f"\n{xml_safe(run.record.path)}", style="bold"))
             for line in finding_lines(shown):
                 console.print(line)
     if result.dataset_findings:

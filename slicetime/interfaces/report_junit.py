@@ -1,0 +1,192 @@
+"""The audit as a JUnit XML report, for CI systems that display test results.
+
+Layout (our own mapping of an audit onto the JUnit XML vocabulary):
+
+* one ``<testsuites>`` element holding the totals;
+* one ``<testsuite>`` per dataset root. With a single root it is named
+  ``slicetime audit``; with several, ``slicetime audit: ROOT``. Its
+  ``<properties>`` give the root, the path as given, the ``--fail-on`` level
+  and the slicetime version;
+* one ``<testcase>`` per run: ``classname`` is the run's folder relative to its
+  dataset root (``.`` for the root itself) and ``name`` the run's path;
+* one more ``<testcase classname="." name="dataset">`` for the checks over the
+  whole dataset. It sits in the single suite, or, with several roots, in a
+  last suite named ``slicetime audit: all datasets`` (dataset checks look
+  at every run given, whatever its root). It is always present, so a CI page
+  shows that those checks ran;
+* each finding at or above ``fail_on`` becomes one ``<failure>`` in its
+  test case (``type`` = finding code, ``message`` = the one-line message; the
+  text gives severity, file, field, the evidence as JSON and the hint);
+  findings below the level are listed in the test case's ``<system-out>``.
+  ``fail_on="never"`` gives no failures: everything goes to ``<system-out>``.
+
+Counts: ``tests`` is the number of test cases, ``failures`` the number of test
+cases with at least one ``<failure>`` (so ``failures <= tests``), ``errors``
+and ``skipped`` are always 0: a file that cannot be read is a finding like
+any other, never a skipped test. ``failures > 0`` exactly when
+``AuditResult.exit_code(fail_on)`` is 1.
+
+Hostile file names: XML 1.0 cannot carry most control characters even as
+character references, and UTF-8 cannot carry the lone surrogates by which
+Python represents file-name bytes that are not UTF-8. Every string is passed
+through :func:`xml_safe`, which writes such characters as visible escapes
+(``\\x01``, ``\\xff`` for an undecodable byte, ``\\ud800``), and, in attributes
+and one-line fields, also tabs and line breaks (``\\t``, ``\\n``, ``\\r``). The
+document is built with :mod:`xml.etree.ElementTree`, so markup characters
+are always escaped, and the result always parses and encodes as UTF-8.
+"""
+
+from __future__ import annotations
+
+import json
+import xml.etree.ElementTree as ET
+from collections.abc import Iterable, Sequence
+
+from slicetime import __version__
+from slicetime.interfaces.safe_text import xml_safe
+from slicetime.model import Finding, Severity
+from slicetime.pipelines.audit import AuditResult, RunResult
+
+__all__ = ["DATASET_CASE", "FAIL_LEVELS", "junit_xml", "xml_safe"]
+
+#: accepted values of ``fail_on``
+FAIL_LEVELS: tuple[str, ...] = ("error", "warning", "never")
+#: the name of the test case that holds findings about the whole dataset
+DATASET_CASE = "dataset"
+SUITE_NAME = "slicetime audit"
+_MAX_MESSAGE = 1000  # characters kept of a message in the ``message`` attribute
+
+def _check_level(fail_on: str) -> int | None:
+    """The lowest failing severity rank, or None for ``never``."""
+    if fail_on not in FAIL_LEVELS:
+        raise ValueError(f"fail_on must be one of {', '.join(FAIL_LEVELS)}, not {fail_on!r}")
+    return None if fail_on == "never" else Severity.parse(fail_on).rank
+
+
+def _folder(path: str) -> str:
+    folder, sep, _name = path.rpartition("/")
+    return folder if sep and folder else "."
+
+
+def _message(finding: Finding) -> str:
+    text = " ".join(xml_safe(finding.message, one_line=False).split())
+    return text if len(text) <= _MAX_MESSAGE else text[: _MAX_MESSAGE - 1] + "…"
+
+
+def _evidence(finding: Finding) -> str:
+    data = finding.to_json()["evidence"]
+    return json.dumps(data, ensure_ascii=False, sort_keys=True, allow_nan=True, default=str)
+
+
+def _failure_text(finding: Finding) -> str:
+    lines = [
+        f"severity: {finding.severity.value}",
+        f"file: {xml_safe(finding.file or '-')}",
+        f"field: {xml_safe(finding.field or '-')}",
+        f"evidence: {xml_safe(_evidence(finding))}",
+        f"hint: {xml_safe(finding.hint or '-')}",
+    ]
+    return "\n".join(lines) + "\n"
+
+
+def _note_line(finding: Finding) -> str:
+    line = xml_safe(finding.one_line())
+    if finding.hint:
+        line += f" (hint: {xml_safe(finding.hint)})"
+    return line
+
+
+def _testcase(
+    parent: ET.Element, classname: str, name: str, findings: Sequence[Finding], level: int | None
+) -> bool:
+    """Add one test case; True when it has a failure."""
+    case = ET.SubElement(parent, "testcase", classname=xml_safe(classname), name=xml_safe(name))
+    failing: list[Finding] = []
+    quiet: list[Finding] = []
+    for finding in findings:
+        (failing if level is not None and finding.severity.rank >= level else quiet).append(finding)
+    for finding in failing:
+        failure = ET.SubElement(
+            case, "failure", type=xml_safe(finding.code), message=_message(finding)
+        )
+        failure.text = _failure_text(finding)
+    if quiet:
+        out = ET.SubElement(case, "system-out")
+        out.text = "".join(_note_line(f) + "\n" for f in quiet)
+    return bool(failing)
+
+
+def _suite(
+    parent: ET.Element,
+    name: str,
+    properties: dict[str, str],
+    runs: Iterable[RunResult],
+    dataset_findings: Sequence[Finding] | None,
+    level: int | None,
+) -> tuple[int, int]:
+    """Add one test suite; returns (tests, failures)."""
+    suite = ET.SubElement(parent, "testsuite", name=xml_safe(name))
+    props = ET.SubElement(suite, "properties")
+    for key, value in properties.items():
+        ET.SubElement(props, "property", name=key, value=xml_safe(value))
+    tests = failures = 0
+    for run in runs:
+        path = run.record.path
+        tests += 1
+        failures += _testcase(suite, _folder(path), path, run.findings, level)
+    if dataset_findings is not None:
+        tests += 1
+        failures += _testcase(suite, ".", DATASET_CASE, dataset_findings, level)
+    suite.set("tests", str(tests))
+    suite.set("failures", str(failures))
+    suite.set("errors", "0")
+    suite.set("skipped", "0")
+    # attribute order on the page: name, tests, failures, errors, skipped
+    suite.attrib = {k: suite.attrib[k] for k in ("name", "tests", "failures", "errors", "skipped")}
+    return tests, failures
+
+
+def junit_xml(result: AuditResult, *, fail_on: str, root_given: str) -> str:
+    """The audit as a JUnit XML document (a string starting with the XML declaration).
+
+    ``fail_on`` is ``error``, ``warning`` or ``never`` (as for the exit code);
+    ``root_given`` is the path as the user gave it (recorded as a property).
+    """
+    level = _check_level(fail_on)
+    top = ET.Element("testsuites", name="slicetime")
+    roots = list(dict.fromkeys([*result.roots, *(r.record.root for r in result.runs)]))
+    if not roots:
+        roots = [root_given]
+    several = len(roots) > 1
+    common = {"path_given": root_given, "fail_on": fail_on, "slicetime_version": __version__}
+    tests = failures = 0
+    for root in roots:
+        runs = [r for r in result.runs if r.record.root == root]
+        if several and not runs:
+            continue
+        t, f = _suite(
+            top,
+            f"{SUITE_NAME}: {root}" if several else SUITE_NAME,
+            {"root": root, **common},
+            runs,
+            None if several else result.dataset_findings,
+            level,
+        )
+        tests, failures = tests + t, failures + f
+    if several:
+        t, f = _suite(
+            top,
+            f"{SUITE_NAME}: all datasets",
+            {"root": ", ".join(roots), **common},
+            [],
+            result.dataset_findings,
+            level,
+        )
+        tests, failures = tests + t, failures + f
+    top.set("tests", str(tests))
+    top.set("failures", str(failures))
+    top.set("errors", "0")
+    top.set("skipped", "0")
+    ET.indent(top, space="  ")
+    body = ET.tostring(top, encoding="unicode")
+    return '<?xml version="1.0" encoding="UTF-8"?>\n' + body + "\n"

@@ -1,0 +1,59 @@
+"""Make strings from file names and file contents safe to print and to encode.
+
+File names may hold control characters (which can retitle or clear a
+terminal) and bytes that are not UTF-8 (which Python carries as lone
+surrogates, unencodable on output). Reports pass every such string through
+:func:`xml_safe` (one line, XML 1.0 and terminal safe) or :func:`sanitise` (JSON values,
+recursively).
+"""
+
+from __future__ import annotations
+
+import re
+from typing import Any
+
+# Characters XML 1.0 cannot hold (outside Char), plus DEL and C1 controls, which
+# it allows but which are invisible and unsafe on terminals that display reports.
+_UNSAFE_TEXT = re.compile("[\x00-\x08\x0b\x0c\x0e-\x1f\x7f-\x9f\ud800-\udfff\ufffe\uffff]")
+_UNSAFE_LINE = re.compile("[\x00-\x1f\x7f-\x9f\ud800-\udfff\ufffe\uffff]")
+_NAMED = {"\t": "\\t", "\n": "\\n", "\r": "\\r"}
+
+
+def _escape(match: re.Match[str]) -> str:
+    char = match.group(0)
+    if char in _NAMED:
+        return _NAMED[char]
+    code = ord(char)
+    if 0xDC80 <= code <= 0xDCFF:  # a file-name byte that is not UTF-8 (surrogateescape)
+        return f"\\x{code - 0xDC00:02x}"
+    if code <= 0xFF:
+        return f"\\x{code:02x}"
+    return f"\\u{code:04x}"
+
+
+def xml_safe(text: object, *, one_line: bool = True) -> str:
+    """``text`` as a string that XML 1.0 can hold and UTF-8 can encode.
+
+    Unsafe characters become visible backslash escapes; with ``one_line``
+    tabs and line breaks do too (use it for attributes and single fields).
+    """
+    value = text if isinstance(text, str) else str(text)
+    return (_UNSAFE_LINE if one_line else _UNSAFE_TEXT).sub(_escape, value)
+
+
+_SURROGATE = re.compile("[\ud800-\udfff]")
+
+
+def sanitise(value: Any) -> Any:
+    """Make every string in a JSON-like value encodable as UTF-8.
+
+    JSON escapes control characters itself, so only lone surrogates (bytes of
+    file names that are not UTF-8) are replaced, by visible ``\\xNN`` escapes.
+    """
+    if isinstance(value, str):
+        return _SURROGATE.sub(_escape, value) if _SURROGATE.search(value) else value
+    if isinstance(value, dict):
+        return {sanitise(k): sanitise(v) for k, v in value.items()}
+    if isinstance(value, list | tuple):
+        return [sanitise(v) for v in value]
+    return value
