@@ -142,10 +142,33 @@ def test_every_code_the_package_can_emit_is_documented() -> None:
     import re
 
     package = Path(__file__).resolve().parents[1] / "slicetime"
-    pattern = re.compile(r"""["']((?:file|sidecar|inherit|timing|tr|header|axis|scheme|dataset)"""
-                         r"""/[a-z0-9-]+)["']""")
+    areas = "file|sidecar|inherit|timing|tr|header|axis|scheme|dataset|policy"
+    pattern = re.compile(rf"""["']((?:{areas})/[a-z0-9-]+)["']""")
     emitted = set()
     for source in package.rglob("*.py"):
         emitted.update(pattern.findall(source.read_text("utf-8")))
     undocumented = emitted - set(RULES)
     assert not undocumented, sorted(undocumented)
+
+
+def test_policy_is_discovered_applied_and_counted(dataset: Path) -> None:
+    (dataset / "slicetime-policy.toml").write_text(
+        'version = 1\n'
+        '[[protocols]]\nmatch = { task = "tap" }\nrepetition_time = 2.5\n'
+        '[[ignore]]\npaths = ["sub-02/**"]\ncodes = ["timing/*"]\n'
+        'reason = "sub-02 is re-exported next week"\n')
+    code, out, _ = run_cli("audit", str(dataset), "--format", "json")
+    report = json.loads(out)
+    jsonschema.validate(report, report_schema())
+    by_path = {r["path"]: {f["code"] for f in r["findings"]} for r in report["runs"]}
+    assert "policy/tr-mismatch" in by_path[RUN]
+    assert "timing/units-ms" not in by_path["sub-02/func/sub-02_task-tap_bold.nii.gz"]
+    assert report["summary"]["ignored"] >= 1
+    assert code == 1  # the policy mismatch is an error
+
+
+def test_bad_policy_given_explicitly_is_exit_2(dataset: Path, tmp_path: Path) -> None:
+    bad = tmp_path / "p.toml"
+    bad.write_text("version = 1\n[[protocols]]\nmatch = {}\nrepetition_time = -1\n")
+    code, _, err = run_cli("audit", str(dataset), "--policy", str(bad))
+    assert code == 2 and "repetition_time" in err and "Traceback" not in err

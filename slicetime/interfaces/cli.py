@@ -109,6 +109,8 @@ def show(file: Path, as_json: bool) -> None:
 @click.option("--include-hidden", is_flag=True, help="Also audit hidden folders and files.")
 @click.option("--jobs", type=click.IntRange(min=1), default=None,
               help="Local worker processes (default: the CPUs available).")
+@click.option("--policy", "policy_file", type=click.Path(path_type=Path, dir_okay=False),
+              help="Lab policy (TOML). Default: slicetime-policy.toml at the dataset root.")
 @friendly
 def audit(
     paths: tuple[Path, ...],
@@ -120,6 +122,7 @@ def audit(
     include_sourcedata: bool,
     include_hidden: bool,
     jobs: int | None,
+    policy_file: Path | None,
 ) -> None:
     """Audit every run under PATHS (dataset roots, subject folders or run files)."""
     from slicetime.interfaces.report_json import audit_object, dumps
@@ -135,6 +138,7 @@ def audit(
             include_hidden=include_hidden,
             jobs=jobs if jobs is not None else available_cpus(),
             progress=progress,
+            policy_file=policy_file,
         )
     root_given = str(paths[0]) if len(paths) == 1 else " ".join(str(p) for p in paths)
     if fmt == "json":

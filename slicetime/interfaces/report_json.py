@@ -57,7 +57,8 @@ def audit_object(result: AuditResult, root_given: str) -> dict[str, Any]:
         "roots": result.roots,
         "runs": [run_object(r) for r in result.runs],
         "dataset_findings": [f.to_json() for f in result.dataset_findings],
-        "summary": {"runs": len(result.runs), **counts},
+        "policies": result.policies,
+        "summary": {"runs": len(result.runs), **counts, "ignored": result.ignored_count()},
     }
 
 

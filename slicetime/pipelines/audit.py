@@ -2,7 +2,8 @@
 
 from __future__ import annotations
 
-from collections.abc import Iterable, Sequence
+import functools
+from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -11,14 +12,17 @@ from slicetime.pipelines.executor import Progress, map_chunks
 from slicetime.readers.dataset import find_root, iter_runs
 from slicetime.readers.errors import ReadError
 from slicetime.readers.inheritance import SidecarIndex
+from slicetime.readers.policy import POLICY_FILENAME, Policy, find_policy, load_policy
 from slicetime.readers.record import build_record
-from slicetime.rules import check_dataset, check_run
+from slicetime.rules import RULES, check_dataset, check_run
+from slicetime.rules.policy import IgnoredFinding, apply_overrides_and_ignores, apply_policy
 
 
 @dataclass
 class RunResult:
     record: RunRecord
     findings: list[Finding]
+    ignored: list[IgnoredFinding] = field(default_factory=list)
 
 
 @dataclass
@@ -26,6 +30,11 @@ class AuditResult:
     roots: list[str]
     runs: list[RunResult] = field(default_factory=list)
     dataset_findings: list[Finding] = field(default_factory=list)
+    ignored: list[IgnoredFinding] = field(default_factory=list)
+    policies: dict[str, str] = field(default_factory=dict)  # root -> policy file used
+
+    def ignored_count(self) -> int:
+        return len(self.ignored) + sum(len(r.ignored) for r in self.runs)
 
     def counts(self) -> dict[str, int]:
         counts = {s.value: 0 for s in Severity}
@@ -46,20 +55,50 @@ class AuditResult:
         return 1 if any(f.severity.rank >= level for f in self.all_findings()) else 0
 
 
-def audit_one(root: Path, path: Path, index: SidecarIndex | None = None) -> RunResult:
+def audit_one(
+    root: Path, path: Path, index: SidecarIndex | None = None, policy: Policy | None = None
+) -> RunResult:
     """Audit one run (the unit of work for every executor)."""
     record = build_record(root, path, index)
-    return RunResult(record, check_run(record))
+    findings = check_run(record)
+    if policy is None:
+        return RunResult(record, findings)
+    outcome = apply_policy(policy, record, findings)
+    return RunResult(record, list(outcome.kept), list(outcome.ignored))
 
 
-def audit_chunk(targets: Sequence[tuple[Path, Path]]) -> list[RunResult]:
+def audit_chunk(
+    targets: Sequence[tuple[Path, Path]], policies: Mapping[Path, Policy | None] | None = None
+) -> list[RunResult]:
     """Audit neighbouring runs with one sidecar cache per dataset root."""
     indexes: dict[Path, SidecarIndex] = {}
     results = []
     for root, path in targets:
         index = indexes.setdefault(root, SidecarIndex(root))
-        results.append(audit_one(root, path, index))
+        results.append(audit_one(root, path, index, (policies or {}).get(root)))
     return results
+
+
+def _policies(
+    roots: Iterable[Path], policy_file: Path | None, problems: list[Finding]
+) -> dict[Path, Policy | None]:
+    """The policy of each root: the one given (errors propagate: exit 2), else the
+    root's own file (a broken one becomes a dataset finding and is not used)."""
+    if policy_file is not None:
+        given = load_policy(policy_file, RULES)
+        return {root: given for root in roots}
+    found: dict[Path, Policy | None] = {}
+    for root in roots:
+        candidate = find_policy(root)
+        if candidate is None:
+            found[root] = None
+            continue
+        try:
+            found[root] = load_policy(candidate, RULES, display=POLICY_FILENAME)
+        except ReadError as exc:
+            problems.append(exc.to_finding())
+            found[root] = None
+    return found
 
 
 def audit_paths(
@@ -70,6 +109,7 @@ def audit_paths(
     include_hidden: bool = False,
     jobs: int = 1,
     progress: Progress | None = None,
+    policy_file: Path | None = None,
 ) -> AuditResult:
     """Audit every run under ``paths``; raises ReadError only for a missing given path."""
     walk_problems: list[Finding] = []
@@ -84,12 +124,28 @@ def audit_paths(
     )
     roots = sorted({str(root) for root, _ in targets}) or [str(find_root(p)) for p in paths]
     result = AuditResult(roots=roots)
-    result.runs = map_chunks(audit_chunk, targets, jobs=jobs, progress=progress)
+    policies = _policies(sorted({root for root, _ in targets}), policy_file, walk_problems)
+    result.policies = {str(r): p.file for r, p in policies.items() if p is not None}
+    job = functools.partial(audit_chunk, policies=policies)
+    result.runs = map_chunks(job, targets, jobs=jobs, progress=progress)
     result.dataset_findings.extend(walk_problems)
     per_run, overall = check_dataset([r.record for r in result.runs])
     for run in result.runs:
-        run.findings.extend(per_run.get(run.record.path, []))
-    result.dataset_findings.extend(overall)
+        extra = per_run.get(run.record.path, [])
+        policy = policies.get(Path(run.record.root))
+        if policy is not None and extra:
+            outcome = apply_overrides_and_ignores(policy, run.record.path, extra)
+            run.findings.extend(outcome.kept)
+            run.ignored.extend(outcome.ignored)
+        else:
+            run.findings.extend(extra)
+    only = {p.file: p for p in policies.values() if p is not None}
+    if len(only) == 1 and overall:
+        outcome = apply_overrides_and_ignores(next(iter(only.values())), None, overall)
+        result.dataset_findings.extend(outcome.kept)
+        result.ignored.extend(outcome.ignored)
+    else:
+        result.dataset_findings.extend(overall)
     return result
 
 

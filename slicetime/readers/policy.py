@@ -1,0 +1,881 @@
+"""Loading the lab policy file: what a lab expects of its runs and how it reads findings.
+
+A dataset may carry ``slicetime-policy.toml`` at its root (:func:`find_policy`),
+or the policy can be given on the command line. :func:`load_policy` reads it,
+checks it against ``slicetime/data/policy.schema.json`` (JSON Schema draft
+2020-12, every table closed so that a misspelt key is an error) and against
+the semantics below, and returns a frozen :class:`Policy`. Applying it to runs
+and findings is pure and lives in :mod:`slicetime.rules.policy`.
+
+The format (version 1)::
+
+    version = 1                          # required
+
+    [[protocols]]                        # what runs should look like
+    name = "resting state, mb4"          # optional, used in messages
+    match = { task = "rest", acq = "mb4" }
+    repetition_time = 0.8                # seconds
+    slices = 72                          # along the slice axis
+    multiband_factor = 4
+    scheme = "multiband ×4, interleaved ascending from 0"
+    slice_encoding_direction = "k"
+    tolerance = 0.003                    # seconds, for repetition_time (default 0.003)
+
+    [severity]                           # replaces a rule's default severity
+    "scheme/multiband-undeclared" = "warning"
+
+    [[ignore]]                           # drops findings
+    paths = ["sub-pilot*/**"]
+    codes = ["*"]
+    reason = "pilot sessions use a test protocol"
+
+Semantics, decided here and relied on by :mod:`slicetime.rules.policy`:
+
+*Protocols.* ``match`` is required (``match = {}`` selects every run). Its keys
+are BIDS entities by their short names (``sub``, ``ses``, ``task``, ``acq``,
+``run``, ``echo``, ...), ``datatype`` (the run's folder: ``func``, ``perf``,
+...) and ``suffix`` (``bold``, ...); a run is selected when every key equals
+the run's value. Labels compare exactly (case-sensitive, as BIDS names are);
+index entities (``run``, ``echo``, ``flip``, ``inv``, ``split``, ``chunk``)
+compare as numbers, so ``run = 1`` selects ``run-01`` (BIDS: an index may
+carry leading zeros). A protocol must set at least one expectation. When
+several protocols select a run, the one with the most ``match`` keys wins; two
+protocols with the same ``match`` are an error here (merge them). Protocols
+with different keys but equal size can only be seen to collide on a real run;
+that is reported there (``policy/ambiguous-protocol``).
+
+``scheme`` is either a label exactly as slicetime prints it (describing the
+order of data-array indices, after ``SliceEncodingDirection``), or an order
+family: ``ascending``, ``descending``, ``interleaved``, ``sequential``, or a
+kind with a direction such as ``interleaved descending`` or ``sequential
+ascending``. A family ignores the multiband factor and the start slice, and
+``ascending``/``descending`` alone include interleaved orders (for exactly
+one-slice-after-another write ``sequential ascending``). Labels are checked
+against the label grammar; ``multiband x4`` is accepted for ``multiband ×4``.
+A label's multiband factor must agree with ``multiband_factor``, and
+``multiband_factor`` must divide ``slices``.
+
+*Severity.* Keys are finding codes, or patterns with ``*`` and ``?`` (``header/*``).
+Every key must name or match at least one known code. An exact code beats
+patterns; two patterns that give one known code different severities are an
+error (give that code its own key).
+
+*Ignore.* ``codes`` (required) are codes or patterns as above. ``paths``
+(default: every run) are patterns over the run's path relative to the dataset
+root with forward slashes: ``*`` and ``?`` within one folder or file name,
+``[abc]``/``[!abc]`` character sets, ``**`` as a whole path segment for any
+number of folders. A pattern that selects a folder covers everything in it
+(``sub-pilot01`` and ``sub-pilot01/**`` are the same). ``reason`` is required
+and must not be blank.
+
+Every problem raises :class:`ReadError` with code ``policy/invalid``, a
+one-line message naming the file and the key path
+(``protocols[1].repetition_time: must be a number greater than 0 ...``), the
+key path as ``field``, and for TOML syntax errors the line and column. File
+problems (missing, unreadable) keep their ``file/*`` codes.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import difflib
+import fnmatch
+import functools
+import json
+import math
+import re
+import sys
+from collections.abc import Collection, Mapping, Sequence
+from dataclasses import dataclass
+from importlib import resources
+from pathlib import Path
+from typing import Any, Literal
+
+import jsonschema
+
+from slicetime.model import Severity
+from slicetime.schemes.infer import DEFAULT_TOLERANCE
+
+from .errors import ReadError, check_regular_file, display_name, os_error
+
+if sys.version_info >= (3, 11):
+    import tomllib
+else:  # pragma: no cover - exercised on Python 3.10 only
+    import tomli as tomllib
+
+__all__ = [
+    "DEFAULT_TOLERANCE",
+    "EXPECTATION_KEYS",
+    "INDEX_ENTITIES",
+    "INVALID_CODE",
+    "MATCH_KEYS",
+    "MAX_POLICY_BYTES",
+    "POLICY_FILENAME",
+    "ExpectedProtocol",
+    "IgnoreEntry",
+    "Policy",
+    "SchemeFamily",
+    "code_matches",
+    "find_policy",
+    "load_policy",
+    "parse_policy",
+    "path_matches",
+    "path_pattern_problem",
+    "policy_from_document",
+    "policy_schema",
+    "scheme_family",
+]
+
+POLICY_FILENAME = "slicetime-policy.toml"
+#: the finding code of every problem with the policy's content
+INVALID_CODE = "policy/invalid"
+#: a policy is a few kilobytes; anything this large is not one
+MAX_POLICY_BYTES = 1024 * 1024
+#: the keys of a protocol that state an expectation (at least one is required)
+EXPECTATION_KEYS: tuple[str, ...] = (
+    "repetition_time",
+    "slices",
+    "multiband_factor",
+    "scheme",
+    "slice_encoding_direction",
+)
+_HINT = "Fix the policy file; `slicetime explain policy/invalid` describes its format."
+
+
+@functools.cache
+def policy_schema() -> dict[str, Any]:
+    """The shipped JSON Schema of the policy file."""
+    text = (resources.files("slicetime") / "data" / "policy.schema.json").read_text("utf-8")
+    schema: dict[str, Any] = json.loads(text)
+    return schema
+
+
+def _match_keys() -> tuple[tuple[str, ...], frozenset[str]]:
+    match = policy_schema()["$defs"]["match"]["properties"]
+    index = frozenset(k for k, v in match.items() if v.get("$ref") == "#/$defs/index")
+    return tuple(match), index
+
+
+#: keys allowed in ``match``: BIDS entities, ``datatype`` and ``suffix`` (from the schema)
+MATCH_KEYS, INDEX_ENTITIES = _match_keys()
+
+
+# --------------------------------------------------------------------------- the policy
+
+
+@dataclass(frozen=True)
+class SchemeFamily:
+    """An order family: ``kind`` sequential/interleaved and/or a direction (None = any)."""
+
+    kind: Literal["sequential", "interleaved"] | None = None
+    ascending: bool | None = None
+
+
+@dataclass(frozen=True)
+class ExpectedProtocol:
+    """One ``[[protocols]]`` entry: what the runs its ``match`` selects should look like.
+
+    ``index`` is the entry's position in the file (0-based), for messages.
+    ``match`` values are strings, except index entities, which are ints.
+    ``scheme`` is normalised (``multiband ×M``, single spaces, lower case).
+    """
+
+    index: int
+    match: Mapping[str, str | int] = dataclasses.field(default_factory=dict)
+    name: str | None = None
+    repetition_time: float | None = None
+    slices: int | None = None
+    multiband_factor: int | None = None
+    scheme: str | None = None
+    slice_encoding_direction: str | None = None
+    tolerance: float = DEFAULT_TOLERANCE
+
+    @property
+    def specificity(self) -> int:
+        """How many keys the selector has; the most specific matching protocol wins."""
+        return len(self.match)
+
+    @property
+    def key_path(self) -> str:
+        return f"protocols[{self.index}]"
+
+    def selector(self) -> str:
+        """The selector for messages: ``task=rest, acq=mb4`` (``every run`` when empty)."""
+        if not self.match:
+            return "every run"
+        return ", ".join(f"{k}={v}" for k, v in self.match.items())
+
+    def describe(self) -> str:
+        """``protocol "name" (task=rest)`` or ``protocols[0] (task=rest)``."""
+        who = f'protocol "{self.name}"' if self.name else f"policy {self.key_path}"
+        return f"{who} ({self.selector()})"
+
+    def expectations(self) -> dict[str, Any]:
+        """The expectations this protocol sets (keys of :data:`EXPECTATION_KEYS`)."""
+        return {k: getattr(self, k) for k in EXPECTATION_KEYS if getattr(self, k) is not None}
+
+    def selects(self, entities: Mapping[str, str], datatype: str | None, suffix: str) -> bool:
+        """Whether a run with these name parts is selected by ``match``."""
+        for key, wanted in self.match.items():
+            if key == "datatype":
+                found: str | None = datatype
+            elif key == "suffix":
+                found = suffix
+            else:
+                found = entities.get(key)
+            if found is None:
+                return False
+            if isinstance(wanted, int):
+                if not found.isdigit() or int(found) != wanted:
+                    return False
+            elif found != wanted:
+                return False
+        return True
+
+
+@dataclass(frozen=True)
+class IgnoreEntry:
+    """One ``[[ignore]]`` entry: drop findings whose code and run path both match."""
+
+    index: int
+    codes: tuple[str, ...]
+    reason: str
+    paths: tuple[str, ...] = ("**",)
+
+    def covers(self, path: str, code: str) -> bool:
+        return any(code_matches(c, code) for c in self.codes) and any(
+            path_matches(p, path) for p in self.paths
+        )
+
+
+@dataclass(frozen=True)
+class Policy:
+    """A loaded lab policy. ``file`` is how messages name the policy file."""
+
+    file: str | None = None
+    version: int = 1
+    protocols: tuple[ExpectedProtocol, ...] = ()
+    severity: Mapping[str, Severity] = dataclasses.field(default_factory=dict)
+    ignores: tuple[IgnoreEntry, ...] = ()
+
+    def severity_for(self, code: str) -> Severity | None:
+        """The lab's severity for ``code``: an exact key, else the first matching pattern."""
+        if code in self.severity:
+            return self.severity[code]
+        for pattern, severity in self.severity.items():
+            if _is_pattern(pattern) and code_matches(pattern, code):
+                return severity
+        return None
+
+    def ignore_entry(self, path: str, code: str) -> IgnoreEntry | None:
+        """The first ``[[ignore]]`` entry that drops ``code`` on ``path``, if any."""
+        for entry in self.ignores:
+            if entry.covers(path, code):
+                return entry
+        return None
+
+
+# --------------------------------------------------------------------------- patterns
+
+
+def _is_pattern(code: str) -> bool:
+    return "*" in code or "?" in code
+
+
+_CODE_CHARS = re.compile(r"[a-z0-9/*?-]+\Z")
+
+
+def code_matches(pattern: str, code: str) -> bool:
+    """Whether a finding code matches a code or a ``*``/``?`` pattern."""
+    if not _is_pattern(pattern):
+        return pattern == code
+    return fnmatch.fnmatchcase(code, pattern)
+
+
+def path_pattern_problem(pattern: str) -> str | None:
+    """Why ``pattern`` is not a valid run path pattern, or None."""
+    if not pattern:
+        return "must not be empty"
+    if "\\" in pattern:
+        return "use forward slashes (/) between folders"
+    if pattern.startswith("/"):
+        return "must be relative to the dataset root (no leading /)"
+    body = pattern[:-1] if pattern.endswith("/") else pattern
+    for segment in body.split("/"):
+        if segment == "":
+            return "has an empty folder name (//)"
+        if segment in (".", ".."):
+            return "must not contain . or .. folders"
+        if "**" in segment and segment != "**":
+            return "** must stand alone between slashes (write sub-*/** rather than sub-**)"
+        problem = _segment_problem(segment)
+        if problem:
+            return problem
+    return None
+
+
+def _segment_problem(segment: str) -> str | None:
+    i = 0
+    while i < len(segment):
+        if segment[i] == "[":
+            end = _class_end(segment, i)
+            if end is None:
+                return "has a [ without its closing ]"
+            i = end
+        i += 1
+    return None
+
+
+def _class_end(segment: str, start: int) -> int | None:
+    """Index of the ``]`` closing the set opened at ``start`` (a leading ``]`` is literal)."""
+    j = start + 1
+    if j < len(segment) and segment[j] == "!":
+        j += 1
+    if j < len(segment) and segment[j] == "]":
+        j += 1
+    close = segment.find("]", j)
+    return close if close != -1 else None
+
+
+def _segment_regex(segment: str) -> str:
+    out: list[str] = []
+    i = 0
+    while i < len(segment):
+        char = segment[i]
+        if char == "*":
+            out.append("[^/]*")
+        elif char == "?":
+            out.append("[^/]")
+        elif char == "[":
+            end = _class_end(segment, i)
+            assert end is not None  # validated before
+            body = segment[i + 1 : end]
+            negate = body.startswith("!")
+            if negate:
+                body = body[1:]
+            escaped = "".join("\\" + c if c in "\\^[]" else c for c in body)
+            out.append(f"[^/{escaped}]" if negate else f"[{escaped}]")
+            i = end
+        else:
+            out.append(re.escape(char))
+        i += 1
+    return "".join(out)
+
+
+@functools.lru_cache(maxsize=1024)
+def _path_regex(pattern: str) -> re.Pattern[str]:
+    body = pattern[:-1] if pattern.endswith("/") else pattern
+    segments = body.split("/")
+    out: list[str] = []
+    for i, segment in enumerate(segments):
+        last = i == len(segments) - 1
+        if segment == "**":
+            out.append(".*" if last else "(?:[^/]+/)*")
+        else:
+            out.append(_segment_regex(segment) + ("" if last else "/"))
+    # a pattern that selects a folder covers everything below it
+    return re.compile("(?:" + "".join(out) + ")(?:/.*)?", re.DOTALL)
+
+
+def path_matches(pattern: str, path: str) -> bool:
+    """Whether a dataset-relative posix ``path`` matches a run path pattern.
+
+    Raises ValueError for an invalid pattern (:func:`path_pattern_problem`).
+    """
+    problem = path_pattern_problem(pattern)
+    if problem:
+        raise ValueError(f"path pattern {pattern!r} {problem}")
+    return _path_regex(pattern).fullmatch(path) is not None
+
+
+# --------------------------------------------------------------------------- scheme labels
+
+_ORDER = (
+    r"(?:ascending|descending"
+    r"|interleaved (?:ascending|descending) from \d+"
+    r"|interleaved step (?P<step>\d+) (?:ascending|descending) from \d+"
+    r"|interleaved step (?P<rstep>\d+) (?:ascending|descending), residue order \d+(?:,\d+)+)"
+)
+_LABEL = re.compile(
+    rf"(?:single slice|simultaneous|irregular|(?:multiband ×(?P<mb>\d+), )?{_ORDER})\Z"
+)
+_FAMILY = re.compile(
+    r"(?:(?P<kind>sequential|interleaved)(?: (?P<dir1>ascending|descending))?"
+    r"|(?P<dir2>ascending|descending))\Z"
+)
+
+
+def _normalise_scheme(text: str) -> str:
+    text = " ".join(text.split()).lower()
+    text = re.sub(r"^multiband\s*[x×*]\s*(\d+)\s*,\s*", r"multiband ×\1, ", text)
+    return re.sub(r"\s*,\s*(?=\d)", ",", text)
+
+
+def scheme_family(text: str) -> SchemeFamily | None:
+    """The order family a (normalised) ``scheme`` value names, or None for an exact label."""
+    m = _FAMILY.match(text)
+    if m is None:
+        return None
+    direction = m.group("dir1") or m.group("dir2")
+    kind = m.group("kind")
+    return SchemeFamily(
+        kind=kind,  # type: ignore[arg-type]
+        ascending=None if direction is None else direction == "ascending",
+    )
+
+
+def _label_multiband(text: str) -> int | None:
+    """The multiband factor an exact label implies (None when it implies none)."""
+    m = _LABEL.match(text)
+    if (
+        m is None
+        or scheme_family(text) is not None
+        or text in ("single slice", "simultaneous", "irregular")
+    ):
+        return None
+    return int(m.group("mb")) if m.group("mb") else 1
+
+
+def _scheme_problem(text: str) -> str | None:
+    if scheme_family(text) is not None:
+        return None
+    m = _LABEL.match(text)
+    if m is None:
+        return (
+            f"{json.dumps(text, ensure_ascii=False)} is not a scheme label or family; labels "
+            'look like "ascending", "interleaved ascending from 1", "multiband ×4, interleaved '
+            'descending from 17", families are ascending, descending, interleaved, sequential'
+        )
+    if m.group("mb") is not None and int(m.group("mb")) < 2:
+        return "slicetime never prints multiband ×1; leave the multiband part out"
+    step = m.group("step") or m.group("rstep")
+    if step is not None and int(step) < 3:
+        return (
+            'slicetime prints step 2 as "interleaved ascending from S" (or descending); '
+            "write it that way"
+        )
+    return None
+
+
+# --------------------------------------------------------------------------- loading
+
+
+def find_policy(root: Path) -> Path | None:
+    """The policy file at a dataset root, or None when there is none.
+
+    A broken link or a folder of that name is returned too, so that loading it
+    reports the problem rather than silently auditing without the policy.
+    """
+    candidate = Path(root) / POLICY_FILENAME
+    return candidate if candidate.exists() or candidate.is_symlink() else None
+
+
+def load_policy(path: Path, known_codes: Collection[str], *, display: str | None = None) -> Policy:
+    """Read, validate and return the policy at ``path``.
+
+    ``known_codes`` are the finding codes that may appear in ``severity`` and
+    ``ignore`` (pass ``slicetime.rules.RULES``; the readers cannot import the
+    rules themselves). ``display`` names the file in messages. Raises
+    :class:`ReadError`: ``file/*`` when the file cannot be read,
+    ``policy/invalid`` for anything wrong with its content.
+    """
+    shown = display_name(path, display)
+    st = check_regular_file(Path(path), shown, what="policy file")
+    if st.st_size > MAX_POLICY_BYTES:
+        raise _invalid(shown, None, f"is {st.st_size} bytes; a policy file is a few kilobytes")
+    try:
+        raw = Path(path).read_bytes()
+    except OSError as exc:
+        raise os_error(exc, shown, what="policy file") from None
+    return parse_policy(raw, file=shown, known_codes=known_codes)
+
+
+def parse_policy(text: str | bytes, *, file: str, known_codes: Collection[str]) -> Policy:
+    """Parse and validate policy text (TOML); ``file`` names it in messages."""
+    if isinstance(text, bytes):
+        if text.startswith(b"\xef\xbb\xbf"):
+            text = text[3:]
+        try:
+            text = text.decode("utf-8")
+        except UnicodeDecodeError as exc:
+            raise _invalid(
+                file,
+                None,
+                f"is not UTF-8 text (bad byte at offset {exc.start}); TOML files must be UTF-8",
+            ) from None
+    elif text.startswith("\ufeff"):
+        text = text[1:]
+    try:
+        data = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise _syntax_error(file, exc) from None
+    return policy_from_document(data, file=file, known_codes=known_codes)
+
+
+def _syntax_error(file: str, exc: Exception) -> ReadError:
+    text = str(exc)
+    line: int | None = getattr(exc, "lineno", None)
+    column: int | None = getattr(exc, "colno", None)
+    m = re.search(r"\s*\(at line (\d+), column (\d+)\)\s*$", text)
+    if m and line is None:
+        line, column = int(m.group(1)), int(m.group(2))
+    message = getattr(exc, "msg", None) or re.sub(
+        r"\s*\((?:at line \d+, column \d+|at end of document)\)\s*$", "", text
+    )
+    where = f"line {line}, column {column}" if line is not None else "at the end of the file"
+    return ReadError(
+        INVALID_CODE,
+        file,
+        None,
+        f"{file}: {where}: not valid TOML: {message}",
+        evidence={"line": line, "column": column, "reason": message},
+        hint="Fix the syntax at the line and column given (see the TOML specification).",
+    )
+
+
+def _invalid(file: str, key: str | None, text: str, **evidence: Any) -> ReadError:
+    where = f"{file}: {key}: " if key else f"{file}: "
+    return ReadError(
+        INVALID_CODE, file, key, where + text, evidence={"key": key, **evidence}, hint=_HINT
+    )
+
+
+# ------------------------------------------------------------------ document -> Policy
+
+KeyPath = Sequence[str | int]
+_BARE_KEY = re.compile(r"[A-Za-z0-9_-]+\Z")
+
+
+def _key_path(parts: KeyPath) -> str:
+    out = ""
+    for part in parts:
+        if isinstance(part, int):
+            out += f"[{part}]"
+        else:
+            name = part if _BARE_KEY.match(part) else json.dumps(part, ensure_ascii=False)
+            out += ("." if out else "") + name
+    return out
+
+
+def _document_order(data: Any, parts: KeyPath) -> tuple[int, ...]:
+    """Sort key putting problems in the order their keys appear in the file."""
+    out: list[int] = []
+    node = data
+    for part in parts:
+        if isinstance(node, dict):
+            keys = list(node)
+            out.append(keys.index(part) if part in node else len(keys))
+            node = node.get(part)  # type: ignore[call-overload]
+        elif isinstance(node, list) and isinstance(part, int) and part < len(node):
+            out.append(part)
+            node = node[part]
+        else:
+            out.append(0)
+            node = None
+    return tuple(out)
+
+
+def _toml_type(value: Any) -> str:
+    if isinstance(value, bool):
+        return "a boolean"
+    if isinstance(value, int):
+        return "an integer"
+    if isinstance(value, float):
+        return "a float"
+    if isinstance(value, str):
+        return "a string"
+    if isinstance(value, dict):
+        return "a table"
+    if isinstance(value, list):
+        return "an array"
+    return "a date/time"
+
+
+def _shown(value: Any) -> str:
+    if isinstance(value, bool):
+        return "true" if value else "false"
+    if isinstance(value, int | float):
+        return f"{value!r}, {_toml_type(value)}"
+    if isinstance(value, str):
+        text = json.dumps(value if len(value) <= 40 else value[:37] + "...", ensure_ascii=False)
+        return f"{text}, a string"
+    return _toml_type(value)
+
+
+_PATTERN_WORDS = {
+    "^[A-Za-z0-9]+$": "a string of letters and digits (a BIDS label)",
+    "\\S": "a string that is not blank",
+}
+
+
+def _describe(schema: Mapping[str, Any]) -> str:
+    if "$ref" in schema:
+        name = str(schema["$ref"]).rsplit("/", 1)[-1]
+        return _describe(policy_schema()["$defs"][name])
+    if "const" in schema:
+        return json.dumps(schema["const"])
+    if "enum" in schema:
+        return "one of " + ", ".join(str(v) for v in schema["enum"])
+    kind = schema.get("type")
+    if isinstance(kind, list):
+        return "a whole number of at least 0, or such a number as a string of digits"
+    if kind == "array":
+        base = "a non-empty array" if schema.get("minItems") else "an array"
+        items = schema.get("items", {})
+        if "$ref" in items:
+            return base + " of tables"
+        return base + " of strings" if items.get("type") == "string" else base
+    if kind == "object":
+        return "a table"
+    if kind in ("number", "integer"):
+        noun = "a number" if kind == "number" else "a whole number"
+        if "exclusiveMinimum" in schema:
+            return f"{noun} greater than {schema['exclusiveMinimum']}"
+        if "minimum" in schema:
+            return f"{noun} of at least {schema['minimum']}"
+        return noun
+    if kind == "string":
+        if "pattern" in schema:
+            return _PATTERN_WORDS.get(schema["pattern"], "a string")
+        return "a non-empty string" if schema.get("minLength") else "a string"
+    return "a valid value"
+
+
+_REQUIRED_WHY = {
+    "version": "the policy must say version = 1",
+    "match": 'say which runs this protocol is for, e.g. match = { task = "rest" } '
+    "(match = {} for every run)",
+    "codes": 'list the finding codes to ignore (codes = ["*"] for every code)',
+    "reason": 'say why these findings are ignored (reason = "..."): a lab must say why',
+}
+
+
+def _schema_problem(error: jsonschema.ValidationError) -> tuple[list[str | int], str]:
+    """A jsonschema error as (key path, message)."""
+    path: list[str | int] = list(error.absolute_path)
+    validator = error.validator
+    if "propertyNames" in error.absolute_schema_path:
+        return [*path, str(error.instance)], (
+            "is not a finding code or code pattern (codes are area/short-name in lower case, "
+            "patterns may use * and ?)"
+        )
+    if validator == "additionalProperties" and isinstance(error.instance, dict):
+        allowed = list(error.schema.get("properties", {}))
+        extras = [k for k in error.instance if k not in allowed]
+        extra = extras[0] if extras else "?"
+        close = difflib.get_close_matches(str(extra), allowed, n=1, cutoff=0.6)
+        guess = f" (did you mean {close[0]!r}?)" if close else ""
+        if "sub" in allowed:
+            text = "is not a BIDS entity, 'datatype' or 'suffix'" + guess
+        else:
+            text = "unknown key" + guess + "; allowed here: " + ", ".join(allowed)
+        return [*path, extra], text
+    if validator == "required" and isinstance(error.instance, dict):
+        missing = [k for k in error.validator_value if k not in error.instance]
+        key = missing[0] if missing else "?"
+        return [*path, key], "missing: " + _REQUIRED_WHY.get(key, "this key is required")
+    if (
+        validator == "anyOf"
+        and isinstance(error.instance, dict)
+        and "match" in error.schema.get("properties", {})
+    ):
+        return path, "sets no expectation; give at least one of " + ", ".join(EXPECTATION_KEYS)
+    if validator == "const":
+        return path, f"must be {json.dumps(error.validator_value)} (found {_shown(error.instance)})"
+    if validator in ("minItems", "minLength"):
+        return path, "must not be empty"
+    return path, f"must be {_describe(error.schema)} (found {_shown(error.instance)})"
+
+
+def _non_finite(data: Any, path: list[str | int]) -> list[tuple[list[str | int], str]]:
+    if isinstance(data, float) and not math.isfinite(data):
+        return [(path, f"must be a finite number (found {data!r})")]
+    out: list[tuple[list[str | int], str]] = []
+    if isinstance(data, dict):
+        for key, value in data.items():
+            out += _non_finite(value, [*path, key])
+    elif isinstance(data, list):
+        for i, value in enumerate(data):
+            out += _non_finite(value, [*path, i])
+    return out
+
+
+_STRUCTURAL = ("missing: ", "sets no expectation")
+
+
+def _raise_first(file: str, data: Any, problems: list[tuple[list[str | int], str]]) -> None:
+    if not problems:
+        return
+    # a misspelt key also leaves a required key missing: report the spelling first
+    problems.sort(key=lambda p: (p[1].startswith(_STRUCTURAL), _document_order(data, p[0])))
+    parts, text = problems[0]
+    more = len(problems) - 1
+    if more:
+        text += f" (and {more} more problem{'s' if more > 1 else ''})"
+    raise _invalid(file, _key_path(parts) or None, text, problems=len(problems))
+
+
+def _code_problem(code: str, known: Collection[str]) -> str | None:
+    if not _CODE_CHARS.match(code):
+        return (
+            f"{json.dumps(code)} is not a finding code: codes are lower-case letters, digits, "
+            "- and /, and patterns may use * and ?"
+        )
+    if _is_pattern(code):
+        if not any(code_matches(code, k) for k in known):
+            return f"pattern {json.dumps(code)} matches no finding code"
+        return None
+    if code not in known:
+        close = difflib.get_close_matches(code, sorted(known), n=1, cutoff=0.6)
+        guess = f" (did you mean {json.dumps(close[0])}?)" if close else ""
+        return (
+            f"unknown finding code {json.dumps(code)}{guess}; `slicetime explain --list` "
+            "shows every code"
+        )
+    return None
+
+
+def _protocol(index: int, entry: Mapping[str, Any]) -> ExpectedProtocol:
+    match: dict[str, str | int] = {}
+    for key, value in entry["match"].items():
+        match[key] = int(value) if key in INDEX_ENTITIES else str(value)
+    scheme = entry.get("scheme")
+    return ExpectedProtocol(
+        index=index,
+        match=match,
+        name=entry.get("name"),
+        repetition_time=float(entry["repetition_time"]) if "repetition_time" in entry else None,
+        slices=int(entry["slices"]) if "slices" in entry else None,
+        multiband_factor=int(entry["multiband_factor"]) if "multiband_factor" in entry else None,
+        scheme=_normalise_scheme(scheme) if scheme is not None else None,
+        slice_encoding_direction=entry.get("slice_encoding_direction"),
+        tolerance=float(entry.get("tolerance", DEFAULT_TOLERANCE)),
+    )
+
+
+def _protocol_problems(protocols: Sequence[ExpectedProtocol]) -> list[tuple[list[str | int], str]]:
+    problems: list[tuple[list[str | int], str]] = []
+    seen: dict[tuple[tuple[str, str | int], ...], int] = {}
+    for p in protocols:
+        here: list[str | int] = ["protocols", p.index]
+        if p.scheme is not None:
+            problem = _scheme_problem(p.scheme)
+            if problem:
+                problems.append(([*here, "scheme"], problem))
+            else:
+                implied = _label_multiband(p.scheme)
+                if (
+                    implied is not None
+                    and p.multiband_factor is not None
+                    and implied != p.multiband_factor
+                ):
+                    problems.append(
+                        (
+                            [*here, "multiband_factor"],
+                            f"{p.multiband_factor} contradicts scheme "
+                            f"{json.dumps(p.scheme, ensure_ascii=False)} "
+                            f"(multiband factor {implied})",
+                        )
+                    )
+        if (
+            p.slices is not None
+            and p.multiband_factor is not None
+            and p.slices % p.multiband_factor
+        ):
+            problems.append(
+                (
+                    [*here, "multiband_factor"],
+                    f"{p.multiband_factor} does not divide slices = {p.slices}",
+                )
+            )
+        selector = tuple(sorted(p.match.items(), key=lambda kv: kv[0]))
+        if selector in seen:
+            problems.append(
+                (
+                    [*here, "match"],
+                    f"selects the same runs as protocols[{seen[selector]}] "
+                    f"({p.selector()}); merge the two entries",
+                )
+            )
+        else:
+            seen[selector] = p.index
+    return problems
+
+
+def _severity_problems(
+    severity: Mapping[str, Severity], known: Collection[str]
+) -> list[tuple[list[str | int], str]]:
+    problems: list[tuple[list[str | int], str]] = []
+    for code in severity:
+        problem = _code_problem(code, known)
+        if problem:
+            problems.append((["severity", code], problem))
+    if problems:
+        return problems
+    patterns = [c for c in severity if _is_pattern(c)]
+    for code in sorted(known):
+        if code in severity:
+            continue
+        hits = [p for p in patterns if code_matches(p, code)]
+        levels = {severity[p] for p in hits}
+        if len(levels) > 1:
+            first, second = hits[0], next(p for p in hits if severity[p] != severity[hits[0]])
+            problems.append(
+                (
+                    ["severity", second],
+                    f"gives {code} {severity[second].value} but severity.{json.dumps(first)} gives "
+                    f"it {severity[first].value}; give {json.dumps(code)} its own entry",
+                )
+            )
+    return problems
+
+
+def _ignore_problems(entries: Sequence[Any]) -> list[tuple[list[str | int], str]]:
+    problems: list[tuple[list[str | int], str]] = []
+    for i, entry in enumerate(entries):
+        for j, pattern in enumerate(entry.get("paths", [])):
+            problem = path_pattern_problem(pattern)
+            if problem:
+                problems.append((["ignore", i, "paths", j], f"{json.dumps(pattern)}: {problem}"))
+    return problems
+
+
+def policy_from_document(
+    data: Mapping[str, Any], *, file: str, known_codes: Collection[str]
+) -> Policy:
+    """Validate a parsed TOML document and build the :class:`Policy` (pure)."""
+    known = frozenset(known_codes)
+    _raise_first(file, data, _non_finite(dict(data), []))
+    validator_class = jsonschema.validators.validator_for(policy_schema())
+    validator = validator_class(policy_schema())
+    _raise_first(file, data, [_schema_problem(e) for e in validator.iter_errors(dict(data))])
+
+    protocols = tuple(_protocol(i, entry) for i, entry in enumerate(data.get("protocols", [])))
+    severity = {code: Severity(level) for code, level in data.get("severity", {}).items()}
+    raw_ignores = data.get("ignore", [])
+    problems = _protocol_problems(protocols)
+    problems += _severity_problems(severity, known)
+    problems += _ignore_problems(raw_ignores)
+    for i, entry in enumerate(raw_ignores):
+        for j, code in enumerate(entry["codes"]):
+            problem = _code_problem(code, known)
+            if problem:
+                problems.append((["ignore", i, "codes", j], problem))
+    _raise_first(file, data, problems)
+
+    ignores = tuple(
+        IgnoreEntry(
+            index=i,
+            codes=tuple(entry["codes"]),
+            reason=" ".join(entry["reason"].split()),
+            paths=tuple(entry.get("paths", ["**"])),
+        )
+        for i, entry in enumerate(raw_ignores)
+    )
+    return Policy(
+        file=file,
+        version=int(data["version"]),
+        protocols=protocols,
+        severity=severity,
+        ignores=ignores,
+    )

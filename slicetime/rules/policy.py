@@ -1,0 +1,569 @@
+"""Applying the lab policy to runs and findings. Pure: no I/O.
+
+The policy itself (its format, its :class:`Policy` value and the loader) is
+in :mod:`slicetime.readers.policy`; the value types live there so that the
+loader does not import the rules layer. This module:
+
+* :func:`check_protocol` compares one run with the protocol the policy
+  expects for it and returns ``policy/*`` findings;
+* :func:`apply_overrides_and_ignores` applies the ``[severity]`` table and the
+  ``[[ignore]]`` entries to any findings (reader, run and dataset findings
+  alike) and returns the kept ones and the ignored ones
+  (:class:`PolicyOutcome`), so a report can say how many the policy hid;
+* :func:`apply_policy` does both for one run;
+* registers the ``policy/*`` codes so ``slicetime explain`` documents them.
+
+Choosing the protocol of a run (:func:`select_protocol`): among the
+``[[protocols]]`` whose ``match`` selects the run, the one with the most
+``match`` keys wins. When several tie for most specific, they are used if
+they expect the same things (the first is named in findings); if they
+disagree, the run gets one ``policy/ambiguous-protocol`` finding and no other
+protocol checks, because any choice would be a guess.
+
+What each expectation is compared with (a run without a usable schedule still
+gets the checks its header and sidecar allow):
+
+``repetition_time``
+    the schedule's TR (sidecar ``RepetitionTime``, else header ``pixdim[4]``);
+    without a schedule the same precedence over the raw values. Runs timed by
+    ``VolumeTiming`` have no TR and are not checked. Differences up to the
+    protocol's ``tolerance`` (default 0.003 s) are accepted.
+``slices``
+    the image's extent along the slice axis (header ``dim``): the schedule's
+    axis, else the sidecar's ``SliceEncodingDirection``, else the protocol's
+    ``slice_encoding_direction``, else ``k`` (the BIDS default).
+``multiband_factor``
+    the size of the excitation groups the slice times form (when there is
+    more than one group of equal size); else a declared whole-number
+    ``MultibandAccelerationFactor``; else not checked.
+``scheme``
+    the inferred scheme's label (exact label) or its order (family: regular
+    schemes only; ``sequential`` means step 1, ``interleaved`` step 2 or more).
+    Needs slice times. Labels describe the order of data-array indices.
+``slice_encoding_direction``
+    the schedule's axis and direction; without a schedule the sidecar's
+    ``SliceEncodingDirection``; when it is absent the BIDS default ``k``
+    (which is then reported as not matching a protocol that expects another).
+
+Severity overrides replace the severity of every finding with that code
+(an exact code beats a pattern). Ignore entries drop a finding when one of
+their ``codes`` matches its code and one of their ``paths`` matches the run's
+dataset-relative path; for findings about the dataset as a whole (``path``
+None) the finding's own ``file`` is matched instead, and a finding without a
+file only matches patterns that match everything (``**``). Ignoring happens
+before severity overrides; an ignored finding keeps its original severity.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterable, Iterator
+from dataclasses import dataclass
+from typing import Any
+
+from slicetime.model import AXES, Finding, RunRecord, Severity, Source
+from slicetime.readers.policy import (
+    ExpectedProtocol,
+    IgnoreEntry,
+    Policy,
+    SchemeFamily,
+    scheme_family,
+)
+from slicetime.rules.registry import RULES, Hit, reader_code, run_rule, to_finding
+from slicetime.schemes.resolve import is_number, parse_direction, positive_number
+
+__all__ = [
+    "ExpectedProtocol",
+    "IgnoreEntry",
+    "IgnoredFinding",
+    "Policy",
+    "PolicyOutcome",
+    "ProtocolChoice",
+    "apply_overrides_and_ignores",
+    "apply_policy",
+    "check_protocol",
+    "select_protocol",
+]
+
+E = Severity.ERROR
+_SLACK = 1e-9  # float noise when comparing with a tolerance
+
+# --------------------------------------------------------------------------- registration
+
+
+def _checked_with_policy(record: RunRecord) -> Iterator[Hit]:
+    """Registered check for the policy codes: they need the policy, so check_protocol runs them."""
+    return iter(())
+
+
+def _document(code: str, *, title: str, rationale: str, fix: str) -> None:
+    run_rule(code, title=title, severity=E, rationale=rationale, fix=fix)(_checked_with_policy)
+
+
+_OWN_ENTRY = (
+    "If the run was acquired with another protocol on purpose, give it its own [[protocols]] "
+    "entry with a more specific match (or ignore the code for it with a reason)."
+)
+
+_document(
+    "policy/tr-mismatch",
+    title="the repetition time differs from the lab's protocol",
+    rationale=(
+        "The lab policy (slicetime-policy.toml) expects this repetition time for the runs its "
+        "protocol selects. A different TR means the run was acquired with another protocol, or "
+        "its metadata is wrong (milliseconds, a copied sidecar, an inherited value meant for "
+        "other runs). Only differences beyond the protocol's tolerance count."
+    ),
+    fix="Correct RepetitionTime in the sidecar. " + _OWN_ENTRY,
+)
+_document(
+    "policy/slice-count",
+    title="the number of slices differs from the lab's protocol",
+    rationale=(
+        "The image's extent along the slice axis is not the number of slices the lab's protocol "
+        "for this run expects: the run used another protocol, was cropped or resliced, or the "
+        "slice axis is not the one the lab expects."
+    ),
+    fix="Check the slice axis (SliceEncodingDirection) and the image. " + _OWN_ENTRY,
+)
+_document(
+    "policy/multiband-mismatch",
+    title="the multiband factor differs from the lab's protocol",
+    rationale=(
+        "The slices excited together (the size of the groups in the slice times, else the "
+        "declared MultibandAccelerationFactor) are not as many as the lab's protocol for this "
+        "run expects. Slice times written for a single-band protocol, or copied from another "
+        "protocol, give every slice the wrong time."
+    ),
+    fix="Take SliceTiming and MultibandAccelerationFactor from the protocol that produced the "
+    "run (slicetime timing prints them). " + _OWN_ENTRY,
+)
+_document(
+    "policy/scheme-mismatch",
+    title="the slice order differs from the lab's protocol",
+    rationale=(
+        "The acquisition scheme inferred from the slice times is not the one the lab's protocol "
+        "expects (an exact label as slicetime prints it, or an order family such as "
+        "interleaved). Labels describe the order of data-array indices, after "
+        "SliceEncodingDirection is applied: a reversed direction turns ascending into "
+        "descending."
+    ),
+    fix="Compare with `slicetime show` for the run; fix SliceTiming or SliceEncodingDirection. "
+    + _OWN_ENTRY,
+)
+_document(
+    "policy/direction-mismatch",
+    title="the slice encoding direction differs from the lab's protocol",
+    rationale=(
+        "The slice axis and direction the run's metadata gives (or the BIDS default k when "
+        "SliceEncodingDirection is absent) are not the ones the lab's protocol expects. Slice "
+        "times mapped onto the wrong axis or direction are wrong for every slice."
+    ),
+    fix="Set SliceEncodingDirection in the sidecar to the protocol's value. " + _OWN_ENTRY,
+)
+_document(
+    "policy/ambiguous-protocol",
+    title="two protocols of the lab policy claim the run and disagree",
+    rationale=(
+        "When several [[protocols]] select a run, the one with the most match keys applies. "
+        "These are equally specific and expect different things, so slicetime cannot tell "
+        "which the lab meant and checks none of them for this run."
+    ),
+    fix="Add a key to one of the match tables so exactly one protocol is most specific for "
+    "such runs, or make the protocols agree.",
+)
+reader_code(
+    "policy/invalid",
+    title="the lab policy file cannot be used",
+    severity=E,
+    rationale=(
+        "slicetime-policy.toml (at the dataset root, or given with --policy) must be valid TOML "
+        "and follow the policy format: version = 1; [[protocols]] with a match table of BIDS "
+        "entities (plus datatype and suffix), at least one of repetition_time, slices, "
+        "multiband_factor, scheme, slice_encoding_direction, and an optional tolerance; a "
+        "[severity] table "
+        "mapping finding codes (or patterns with * and ?) to error, warning or note; [[ignore]] "
+        "entries with codes, optional run path patterns (paths) and a required reason. Unknown "
+        "keys, unknown finding codes and bad patterns are errors, so a typo never silently "
+        "turns a check off."
+    ),
+    fix="Fix the key the message names; the file's JSON Schema ships as "
+    "slicetime/data/policy.schema.json.",
+)
+
+
+# --------------------------------------------------------------------------- results
+
+
+@dataclass(frozen=True)
+class IgnoredFinding:
+    """A finding the policy dropped, and the ``[[ignore]]`` entry that dropped it."""
+
+    finding: Finding
+    entry: IgnoreEntry
+
+    @property
+    def reason(self) -> str:
+        return self.entry.reason
+
+
+@dataclass(frozen=True)
+class PolicyOutcome:
+    """Findings after the policy: those kept (severities overridden) and those ignored."""
+
+    kept: tuple[Finding, ...] = ()
+    ignored: tuple[IgnoredFinding, ...] = ()
+
+    def ignored_by_reason(self) -> dict[str, int]:
+        """How many findings each ignore reason dropped (in file order of first use)."""
+        counts: dict[str, int] = {}
+        for item in self.ignored:
+            counts[item.reason] = counts.get(item.reason, 0) + 1
+        return counts
+
+
+@dataclass(frozen=True)
+class ProtocolChoice:
+    """The protocol that applies to a run, or the disagreeing candidates when ambiguous."""
+
+    protocol: ExpectedProtocol | None
+    tied: tuple[ExpectedProtocol, ...] = ()
+
+
+# --------------------------------------------------------------------------- applying
+
+
+def select_protocol(policy: Policy, record: RunRecord) -> ProtocolChoice:
+    """The most specific protocol selecting ``record`` (see the module docstring)."""
+    matching = [
+        p for p in policy.protocols if p.selects(record.entities, record.datatype, record.suffix)
+    ]
+    if not matching:
+        return ProtocolChoice(None)
+    top = max(p.specificity for p in matching)
+    best = [p for p in matching if p.specificity == top]
+    first = best[0]
+    same = all(
+        p.expectations() == first.expectations() and p.tolerance == first.tolerance
+        for p in best[1:]
+    )
+    return ProtocolChoice(first) if same else ProtocolChoice(None, tuple(best))
+
+
+def check_protocol(policy: Policy, record: RunRecord) -> list[Finding]:
+    """``policy/*`` findings for one run against the protocol the policy expects for it."""
+    choice = select_protocol(policy, record)
+    if choice.tied:
+        return [
+            to_finding(
+                RULES["policy/ambiguous-protocol"], record, _ambiguous(policy, record, choice.tied)
+            )
+        ]
+    protocol = choice.protocol
+    if protocol is None:
+        return []
+    findings: list[Finding] = []
+    for code, check in _CHECKS:
+        hit = check(policy, protocol, record)
+        if hit is not None:
+            findings.append(to_finding(RULES[code], record, hit))
+    return findings
+
+
+def apply_overrides_and_ignores(
+    policy: Policy, path: str | None, findings: Iterable[Finding]
+) -> PolicyOutcome:
+    """Drop ignored findings and apply severity overrides.
+
+    ``path`` is the run's dataset-relative path (``RunRecord.path``); pass None
+    for findings about the whole dataset, whose own ``file`` is matched then.
+    """
+    kept: list[Finding] = []
+    ignored: list[IgnoredFinding] = []
+    for finding in findings:
+        where = path if path is not None else (finding.file or "")
+        entry = policy.ignore_entry(where, finding.code)
+        if entry is not None:
+            ignored.append(IgnoredFinding(finding, entry))
+            continue
+        severity = policy.severity_for(finding.code)
+        if severity is not None and severity != finding.severity:
+            finding = finding.with_severity(severity)
+        kept.append(finding)
+    return PolicyOutcome(tuple(kept), tuple(ignored))
+
+
+def apply_policy(policy: Policy, record: RunRecord, findings: Iterable[Finding]) -> PolicyOutcome:
+    """The run's findings plus its protocol findings, after overrides and ignores."""
+    everything = [*findings, *check_protocol(policy, record)]
+    return apply_overrides_and_ignores(policy, record.path, everything)
+
+
+# --------------------------------------------------------------------------- the checks
+
+
+def _evidence(
+    policy: Policy,
+    protocol: ExpectedProtocol,
+    record: RunRecord,
+    expected: Any,
+    found: Any,
+    **extra: Any,
+) -> dict[str, Any]:
+    evidence: dict[str, Any] = {
+        "expected": expected,
+        "found": found,
+        "protocol": dict(protocol.match),
+        "protocol_entry": protocol.key_path,
+        "run": record.path,
+    }
+    if protocol.name:
+        evidence["protocol_name"] = protocol.name
+    if policy.file:
+        evidence["policy"] = policy.file
+    evidence.update(extra)
+    return evidence
+
+
+def _source_file(source: Source | None, record: RunRecord) -> str:
+    if source is not None and source.file:
+        return source.file
+    return record.path
+
+
+def _found_tr(record: RunRecord) -> tuple[float, Source] | None:
+    schedule = record.schedule
+    if schedule is not None:
+        if schedule.repetition_time is None:
+            return None
+        source = schedule.sources.get("RepetitionTime") or Source("derived", "RepetitionTime")
+        return schedule.repetition_time, source
+    tr = positive_number(record.metadata.get("RepetitionTime"))
+    if tr is not None:
+        return tr, Source(
+            "sidecar", "RepetitionTime", record.metadata_sources.get("RepetitionTime")
+        )
+    if "VolumeTiming" in record.metadata:
+        return None
+    if record.header is not None and record.header.repetition_time:
+        return record.header.repetition_time, Source("header", "pixdim[4]", record.path)
+    return None
+
+
+def _check_tr(policy: Policy, protocol: ExpectedProtocol, record: RunRecord) -> Hit | None:
+    expected = protocol.repetition_time
+    found = _found_tr(record)
+    if expected is None or found is None:
+        return None
+    tr, source = found
+    if abs(tr - expected) <= protocol.tolerance + _SLACK:
+        return None
+    from_header = source.kind == "header"
+    what = (
+        "the header's pixdim[4] gives a repetition time of" if from_header else "RepetitionTime is"
+    )
+    hint = None
+    if abs(tr / 1000 - expected) <= protocol.tolerance + _SLACK:
+        hint = f"{tr:g} looks like milliseconds: {tr / 1000:g} s is the protocol's value."
+    return Hit(
+        f"{what} {tr:g} s but {protocol.describe()} expects {expected:g} s",
+        "pixdim[4]" if from_header else "RepetitionTime",
+        _evidence(
+            policy,
+            protocol,
+            record,
+            expected,
+            tr,
+            source=source.describe(),
+            tolerance=protocol.tolerance,
+        ),
+        hint=hint,
+        file=_source_file(source, record),
+    )
+
+
+def _check_slices(policy: Policy, protocol: ExpectedProtocol, record: RunRecord) -> Hit | None:
+    expected = protocol.slices
+    header = record.header
+    if expected is None or header is None:
+        return None
+    if record.schedule is not None:
+        axis = record.schedule.axis
+    else:
+        parsed = parse_direction(record.metadata.get("SliceEncodingDirection"))
+        if parsed is not None:
+            axis = parsed[0]
+        elif protocol.slice_encoding_direction is not None:
+            axis = protocol.slice_encoding_direction[0]  # type: ignore[assignment]
+        else:
+            axis = "k"
+    index = AXES.index(axis)
+    found = header.shape[index] if len(header.shape) > index else 1
+    if found == expected:
+        return None
+    return Hit(
+        f"the image has {found} slices along {axis} but {protocol.describe()} expects {expected}",
+        f"dim[{index + 1}]",
+        _evidence(policy, protocol, record, expected, found, axis=axis, shape=list(header.shape)),
+        file=record.path,
+    )
+
+
+def _check_multiband(policy: Policy, protocol: ExpectedProtocol, record: RunRecord) -> Hit | None:
+    expected = protocol.multiband_factor
+    if expected is None:
+        return None
+    scheme = record.scheme
+    declared = record.metadata.get("MultibandAccelerationFactor")
+    if (
+        scheme is not None
+        and len(scheme.groups) > 1
+        and scheme.evidence.get("kind") != "unequal-groups"
+    ):
+        found = scheme.multiband_factor
+        if found == expected:
+            return None
+        field = "SliceTiming" if record.timing_origin == "sidecar" else "slice_code"
+        source = record.schedule.sources.get("SliceTiming") if record.schedule else None
+        return Hit(
+            f"the slice times form excitation groups of {found} (multiband factor {found}) "
+            f"but {protocol.describe()} expects {expected}",
+            field,
+            _evidence(
+                policy,
+                protocol,
+                record,
+                expected,
+                found,
+                declared=declared,
+                **{"from": "slice times"},
+            ),
+            file=_source_file(source, record),
+        )
+    if is_number(declared) and declared == int(declared) and declared >= 1:
+        found = int(declared)
+        if found == expected:
+            return None
+        return Hit(
+            f"MultibandAccelerationFactor is {found} but {protocol.describe()} expects {expected}",
+            "MultibandAccelerationFactor",
+            _evidence(
+                policy, protocol, record, expected, found, **{"from": "MultibandAccelerationFactor"}
+            ),
+        )
+    return None
+
+
+def _family_matches(family: SchemeFamily, record: RunRecord) -> bool:
+    scheme = record.scheme
+    if scheme is None or not scheme.regular or scheme.step is None or scheme.ascending is None:
+        return False
+    if family.kind is not None and (family.kind == "sequential") != (scheme.step == 1):
+        return False
+    return family.ascending is None or family.ascending == scheme.ascending
+
+
+def _check_scheme(policy: Policy, protocol: ExpectedProtocol, record: RunRecord) -> Hit | None:
+    expected = protocol.scheme
+    scheme = record.scheme
+    if expected is None or scheme is None:
+        return None
+    family = scheme_family(expected)
+    if family is not None:
+        if _family_matches(family, record):
+            return None
+        wanted = f"an order of the family {expected!r}"
+    else:
+        if scheme.label == expected:
+            return None
+        wanted = f"{expected!r}"
+    extra: dict[str, Any] = {"family": family is not None}
+    if "order_label" in scheme.evidence:
+        extra["order_label"] = scheme.evidence["order_label"]
+    if "reason" in scheme.evidence:
+        extra["irregular"] = scheme.evidence["reason"]
+    field = "SliceTiming" if record.timing_origin == "sidecar" else "slice_code"
+    source = record.schedule.sources.get("SliceTiming") if record.schedule else None
+    return Hit(
+        f"the slice times describe {scheme.label!r} but {protocol.describe()} expects {wanted}",
+        field,
+        _evidence(policy, protocol, record, expected, scheme.label, **extra),
+        hint="Scheme labels describe the order of data-array indices (after "
+        "SliceEncodingDirection); `slicetime show` prints this run's scheme. " + _OWN_ENTRY,
+        file=_source_file(source, record),
+    )
+
+
+def _check_direction(policy: Policy, protocol: ExpectedProtocol, record: RunRecord) -> Hit | None:
+    expected = protocol.slice_encoding_direction
+    if expected is None:
+        return None
+    schedule = record.schedule
+    source: Source | None
+    if schedule is not None:
+        found = schedule.axis + ("-" if schedule.direction == "-" else "")
+        source = schedule.sources.get("SliceEncodingDirection")
+    else:
+        value = record.metadata.get("SliceEncodingDirection")
+        if value is None:
+            found, source = "k", Source("default", "k")
+        elif parse_direction(value) is not None:
+            found = str(value)
+            source = Source(
+                "sidecar",
+                "SliceEncodingDirection",
+                record.metadata_sources.get("SliceEncodingDirection"),
+            )
+        else:
+            return None  # reported as axis/unknown-direction
+    if found == expected:
+        return None
+    kind = source.kind if source is not None else "sidecar"
+    if kind == "default":
+        text = f"SliceEncodingDirection is absent (BIDS default {found})"
+        file = record.sidecar_chain[-1] if record.sidecar_chain else record.path
+    elif kind == "header":
+        text = f"the header's dim_info gives slice axis {found}"
+        file = record.path
+    else:
+        text = f"SliceEncodingDirection is {found}"
+        file = _source_file(source, record)
+    return Hit(
+        f"{text} but {protocol.describe()} expects {expected}",
+        "SliceEncodingDirection",
+        _evidence(
+            policy,
+            protocol,
+            record,
+            expected,
+            found,
+            source=source.describe() if source is not None else None,
+        ),
+        hint=f'Set "SliceEncodingDirection": "{expected}" in the sidecar if the protocol is '
+        "right for this run. " + _OWN_ENTRY,
+        file=file,
+    )
+
+
+def _ambiguous(policy: Policy, record: RunRecord, tied: tuple[ExpectedProtocol, ...]) -> Hit:
+    return Hit(
+        f"{len(tied)} equally specific protocols of the lab policy select this run and "
+        "disagree: " + "; ".join(p.describe() for p in tied),
+        None,
+        {
+            "protocols": [
+                {"entry": p.key_path, "match": dict(p.match), **p.expectations()} for p in tied
+            ],
+            "run": record.path,
+            **({"policy": policy.file} if policy.file else {}),
+        },
+        file=record.path,
+    )
+
+
+_CHECKS = (
+    ("policy/tr-mismatch", _check_tr),
+    ("policy/slice-count", _check_slices),
+    ("policy/multiband-mismatch", _check_multiband),
+    ("policy/scheme-mismatch", _check_scheme),
+    ("policy/direction-mismatch", _check_direction),
+)
