@@ -96,3 +96,14 @@ def test_local_processes_give_the_same_report_as_serial(tmp_path: Path) -> None:
     parallel = audit_object(audit_paths([root], jobs=2), str(root))
     assert serial == parallel
     assert [r["path"] for r in serial["runs"]] == sorted(r["path"] for r in serial["runs"])
+
+
+def test_dataset_findings_stay_with_their_own_root(tmp_path: Path) -> None:
+    # two datasets whose runs have the same relative paths
+    first = study(tmp_path / "a")
+    second = study(tmp_path / "b")
+    write_sidecar(first, "sub-03/sub-03_task-tap_bold.json", {"SliceTiming": DESCENDING})
+    result = audit_paths([first, second])
+    flagged = [(r.record.root, r.record.path) for r in result.runs
+               if any(f.code == "dataset/outlier-scheme" for f in r.findings)]
+    assert flagged == [(str(first), "sub-03/func/sub-03_task-tap_bold.nii.gz")]

@@ -131,7 +131,7 @@ def audit_paths(
     result.dataset_findings.extend(walk_problems)
     per_run, overall = check_dataset([r.record for r in result.runs])
     for run in result.runs:
-        extra = per_run.get(run.record.path, [])
+        extra = per_run.get(run.record.abs_path, [])
         policy = policies.get(Path(run.record.root))
         if policy is not None and extra:
             outcome = apply_overrides_and_ignores(policy, run.record.path, extra)

@@ -56,7 +56,7 @@ def _consensus(
         for record in outliers:
             seen = value_of(record)
             assert seen is not None
-            yield DatasetHit(record.path, Hit(
+            yield DatasetHit(record.abs_path, Hit(
                 f"{what} {show(seen)} differs from the {votes} of {len(known)} "
                 f"{_describe_key(key)} runs that have {show(majority)}",
                 field,
@@ -165,7 +165,7 @@ def echo_mismatch(records: Sequence[RunRecord]) -> Iterator[DatasetHit]:
                 or math.isclose(a.repetition_time, b.repetition_time, abs_tol=1e-3))
             if not (same_times and same_tr):
                 what = "SliceTiming" if not same_times else "RepetitionTime"
-                yield DatasetHit(other.path, Hit(
+                yield DatasetHit(other.abs_path, Hit(
                     f"{what} differs from {first.path}, another echo/part of the same run",
                     what,
                     {"reference_run": first.path,

@@ -37,7 +37,10 @@ class Hit:
 
 @dataclass(frozen=True)
 class DatasetHit:
-    """What a dataset rule reports about one run (or about the dataset: run=None)."""
+    """What a dataset rule reports about one run (or about the dataset: run=None).
+
+    ``run`` is the run's ``abs_path``: relative paths repeat across dataset roots.
+    """
 
     run: str | None
     hit: Hit
@@ -141,10 +144,10 @@ def check_run(record: RunRecord) -> list[Finding]:
 
 
 def check_dataset(records: Sequence[RunRecord]) -> tuple[dict[str, list[Finding]], list[Finding]]:
-    """Dataset rules: (findings per run path, findings about the whole dataset)."""
+    """Dataset rules: (findings per run ``abs_path``, findings about the whole dataset)."""
     per_run: dict[str, list[Finding]] = {}
     overall: list[Finding] = []
-    by_path = {r.path: r for r in records}
+    by_path = {r.abs_path: r for r in records}
     for rule in RULES.values():
         if rule.scope != "dataset" or rule.check is None:
             continue
