@@ -173,6 +173,105 @@ def _write_text(path: Path, text: str) -> None:
         raise UserError(f"{path}: cannot write the report: {exc.strerror or exc}") from None
 
 
+# --------------------------------------------------------------------------- correct
+@cli.command()
+@click.argument("paths", nargs=-1, required=True, type=click.Path(path_type=Path))
+@click.option("--out", type=click.Path(path_type=Path, file_okay=False), required=True,
+              help="Derivative dataset folder for the corrected runs (never inside an input "
+              "dataset, except under its derivatives/).")
+@click.option("--method", type=click.Choice(["fourier", "sinc", "cubic", "linear"]),
+              default="fourier", show_default=True, help="Temporal interpolation method.")
+@click.option("--reference", "reference", default="middle", show_default=True,
+              help="Time every slice is aligned to: seconds from the start of the volume "
+              "(e.g. 1.0), 'first', 'middle' (halfway between the first and last excitation), "
+              "'last', or 'slice:N' (the time of slice N, 0-based).")
+@click.option("--desc", default="timealigned", show_default=True,
+              help="Value of the desc- entity added to output names.")
+@click.option("--keep-dtype", is_flag=True,
+              help="Store the input's data type (rounded, clipped with a warning) instead of "
+              "float32.")
+@click.option("--force", is_flag=True,
+              help="Correct runs whose audit has errors (never runs without slice timing).")
+@click.option("--max-memory", "max_memory", default=None, metavar="SIZE",
+              help="Keep the working memory under SIZE (e.g. 512M, 2G); larger runs are "
+              "buffered in a scratch file under --out.")
+@click.option("--jobs", type=click.IntRange(min=1), default=1, show_default=True,
+              help="Runs corrected at once in local processes (memory grows with each).")
+@click.option("--policy", "policy_file", type=click.Path(path_type=Path, dir_okay=False),
+              help="Lab policy (TOML) used by the audit that gates correction.")
+@click.option("--format", "fmt", type=click.Choice(["text", "json"]), default="text",
+              show_default=True, help="Report format on stdout.")
+@click.option("--include-derivatives", is_flag=True, help="Also correct runs in derivatives/.")
+@click.option("--include-sourcedata", is_flag=True, help="Also correct runs in sourcedata/.")
+@click.option("--include-hidden", is_flag=True, help="Also correct hidden folders and files.")
+@friendly
+def correct(
+    paths: tuple[Path, ...],
+    out: Path,
+    method: str,
+    reference: str,
+    desc: str,
+    keep_dtype: bool,
+    force: bool,
+    max_memory: str | None,
+    jobs: int,
+    policy_file: Path | None,
+    fmt: str,
+    include_derivatives: bool,
+    include_sourcedata: bool,
+    include_hidden: bool,
+) -> None:
+    """Align every slice of the runs under PATHS to one reference time.
+
+    \b
+    Examples:
+      slicetime correct ds/ --out ds/derivatives/slicetime
+      slicetime correct ds/sub-01 --out aligned --method cubic --reference 1.0
+    """
+    from slicetime.engines.plan import ReferenceChoice
+    from slicetime.interfaces.report_json import dumps
+    from slicetime.interfaces.terminal import make_console, progress_reporter, render_correct
+    from slicetime.pipelines.correct import CorrectOptions, correct_paths, parse_size
+    from slicetime.pipelines.executor import available_cpus
+
+    try:
+        choice = ReferenceChoice.parse(reference)
+    except ValueError as exc:
+        raise UserError(f"--reference: {exc}") from None
+    cap = None
+    if max_memory is not None:
+        try:
+            cap = parse_size(max_memory)
+        except ValueError as exc:
+            raise UserError(f"--max-memory: {exc}") from None
+    threads = max(1, available_cpus() // jobs)
+    options = CorrectOptions(out=out, method=method, reference=choice, desc=desc,
+                             keep_dtype=keep_dtype, force=force, max_memory=cap,
+                             threads=threads)
+    with progress_reporter("correcting") as progress:
+        try:
+            result = correct_paths(
+                list(paths), options, jobs=jobs, progress=progress, policy_file=policy_file,
+                include_derivatives=include_derivatives, include_sourcedata=include_sourcedata,
+                include_hidden=include_hidden,
+            )
+        except ValueError as exc:
+            raise UserError(str(exc)) from None
+        except OSError as exc:
+            raise UserError(f"{out}: cannot write the outputs ({exc.strerror or exc})") from None
+    if fmt == "json":
+        payload = {
+            "tool": {"name": "slicetime", "version": __version__},
+            "out": result.out,
+            "runs": [r.to_json() for r in result.runs],
+            "summary": result.counts(),
+        }
+        click.echo(dumps(payload))
+    else:
+        render_correct(result, make_console())
+    sys.exit(result.exit_code())
+
+
 # --------------------------------------------------------------------------- timing
 @cli.command()
 @click.option("--slices", "n_slices", type=click.IntRange(min=1), required=True,

@@ -19,6 +19,7 @@ from slicetime.interfaces.diagram import order_diagram
 from slicetime.interfaces.safe_text import xml_safe
 from slicetime.model import Finding, Severity
 from slicetime.pipelines.audit import AuditResult, RunResult
+from slicetime.pipelines.correct import CorrectResult
 
 #: our own palette: severities read at a glance without shouting
 STYLE = {
@@ -186,3 +187,35 @@ def render_audit(result: AuditResult, console: Console, *, show_notes: bool = Tr
         summary.append(f"{counts[sev.value]} {sev.value}{'s' if counts[sev.value] != 1 else ''}",
                        style=STYLE[sev] if counts[sev.value] else None)
     console.print(summary)
+
+
+#: how each correction outcome is shown
+OUTCOME_STYLE = {
+    "corrected": "green4",
+    "up-to-date": "steel_blue",
+    "refused": "dark_orange3",
+    "failed": "bold red3",
+}
+
+
+def render_correct(result: CorrectResult, console: Console) -> None:
+    """One line per run (status, output, reference time), reasons under it, a summary."""
+    for run in result.runs:
+        line = Text()
+        line.append(f"{run.status:<10}", style=OUTCOME_STYLE[run.status])
+        line.append(" " + xml_safe(run.path))
+        if run.ok and run.output:
+            line.append(f"  → {xml_safe(run.output)}", style="dim")
+        if run.reference is not None and run.ok:
+            line.append(f"  (reference {run.reference:.4g} s)", style="dim")
+        console.print(line)
+        if run.reason:
+            console.print(Text(f"           {xml_safe(run.reason)}"))
+        for warning in run.warnings:
+            console.print(Text(f"           warning: {xml_safe(warning)}", style="dark_orange3"))
+    counts = result.counts()
+    parts = [f"{counts[k]} {k}" for k in ("corrected", "up-to-date", "refused", "failed")
+             if counts[k]]
+    total = len(result.runs)
+    console.print(Text(f"\n{total} run{'s' if total != 1 else ''}: "
+                       f"{', '.join(parts) or 'nothing to do'}; outputs in {xml_safe(result.out)}"))

@@ -71,6 +71,16 @@ reader_code(
     fix="The header is corrupt: regenerate the file from its source.",
 )
 reader_code(
+    "file/unsupported",
+    title="the image cannot be corrected (data type or dimensions)",
+    severity=E,
+    rationale=(
+        "Correction resamples real-valued 4-D images. Complex, RGB and bit images, and images "
+        "with fewer or more than four dimensions, are audited but not corrected."
+    ),
+    fix="Convert the run to a real-valued 4-D image, or leave it out of the correction.",
+)
+reader_code(
     "sidecar/bad-json",
     title="a JSON sidecar has a syntax error",
     severity=E,

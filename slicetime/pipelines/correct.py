@@ -1,0 +1,868 @@
+"""The correction pipeline: audit, plan, resample and write BIDS-derivative runs.
+
+For each run (found by the audit's walker):
+
+1. the audit decides whether the timing can be trusted: a run without a
+   resolved schedule is always refused; a run with error findings is refused
+   unless ``force`` (which never invents missing timing);
+2. the output path is the input's path relative to its dataset root, under
+   ``out``, with ``desc-<label>`` added; a run whose output sidecar records the
+   same inputs (SHA-256), settings and output checksum is skipped;
+3. the image is read a batch of volumes at a time into a slice-major float32
+   buffer (in memory, or a scratch file under ``out`` with ``max_memory``),
+   each excitation group is resampled with the chosen engine, and the volumes
+   are written back out, compressed like the input;
+4. the image, then the sidecar (which records the provenance and acts as the
+   "done" marker) appear under their final names by atomic rename; a failure
+   at any point removes the temporary files.
+
+The buffer layout ``(slice, volume, in-plane voxel)`` keeps one slice's whole
+run contiguous, so a slice can be read from a scratch file in one call, and
+the engines get ``(voxel, volume)`` arrays with time contiguous.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import json
+import math
+import os
+import re
+import time
+from collections.abc import Iterator, Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from slicetime import __version__
+from slicetime.engines.interpolate import (
+    Engine,
+    IrregularGridError,
+    ResampleStats,
+    get_engine,
+    resample,
+)
+from slicetime.engines.plan import PlanError, ReferenceChoice, ResamplingPlan, make_plan
+from slicetime.model import Finding, RunRecord, Severity
+from slicetime.pipelines.audit import AuditResult, RunResult, audit_paths
+from slicetime.pipelines.executor import Progress, map_chunks
+from slicetime.readers.entities import parse_name
+from slicetime.readers.errors import ReadError
+from slicetime.readers.volumes import (
+    FLOAT32_CODE,
+    VolumeReader,
+    VolumeWriter,
+    file_sha256,
+    patched_prefix,
+    scaling,
+)
+
+DEFAULT_DESC = "timealigned"
+PROVENANCE_KEY = "SliceTimeAlignment"
+PROVENANCE_FILE = "slicetime-provenance.json"
+TEMP_PREFIX = ".slicetime-partial-"
+_DESC_RE = re.compile(r"[A-Za-z0-9]+\Z")
+_SIZE_RE = re.compile(r"^\s*(\d+(?:\.\d+)?)\s*([kmgt]?)(?:i?b)?\s*$", re.IGNORECASE)
+#: fields dropped from the output sidecar: they describe per-slice offsets that no
+#: longer exist in the corrected image
+DROPPED_FIELDS = ("SliceTiming",)
+
+
+class CorrectionError(Exception):
+    """A run cannot be corrected; the message names the file and the reason."""
+
+
+def parse_size(text: str) -> int:
+    """``512M``, ``2G``, ``1.5GiB``, ``800MB``, ``1000000`` → bytes (binary multiples)."""
+    match = _SIZE_RE.match(text)
+    if not match:
+        raise ValueError(f"size {text!r} is not a number with an optional K, M, G or T suffix")
+    number, unit = float(match.group(1)), match.group(2).lower()
+    factor = {"": 1, "k": 1 << 10, "m": 1 << 20, "g": 1 << 30, "t": 1 << 40}[unit]
+    value = int(number * factor)
+    if value <= 0:
+        raise ValueError(f"size {text!r} must be positive")
+    return value
+
+
+@dataclass(frozen=True)
+class CorrectOptions:
+    out: Path
+    method: str = "fourier"
+    reference: ReferenceChoice = field(default_factory=lambda: ReferenceChoice("middle"))
+    desc: str = DEFAULT_DESC
+    keep_dtype: bool = False
+    force: bool = False
+    max_memory: int | None = None
+    threads: int = 1  # FFT workers and gzip helper threads per run
+
+    def settings(self, engine: Engine) -> dict[str, Any]:
+        """What must match for an earlier output to be reused."""
+        return {
+            "Method": engine.name,
+            "Parameters": dict(engine.parameters),
+            "Reference": self.reference.to_json(),
+            "KeepDataType": self.keep_dtype,
+            "Desc": self.desc,
+            "Version": __version__,
+        }
+
+
+@dataclass
+class RunOutcome:
+    """What happened to one run."""
+
+    path: str  # input, relative to its root
+    root: str
+    status: str  # corrected | up-to-date | refused | failed
+    reason: str | None = None
+    output: str | None = None  # relative to out
+    reference: float | None = None
+    warnings: list[str] = field(default_factory=list)
+    blocking: list[Finding] = field(default_factory=list)
+    seconds: float = 0.0
+    provenance: dict[str, Any] | None = None
+
+    @property
+    def ok(self) -> bool:
+        return self.status in ("corrected", "up-to-date")
+
+    def to_json(self) -> dict[str, Any]:
+        return {
+            "path": self.path,
+            "status": self.status,
+            "reason": self.reason,
+            "output": self.output,
+            "reference_time": self.reference,
+            "warnings": self.warnings,
+            "blocking_findings": [f.to_json() for f in self.blocking],
+            "seconds": round(self.seconds, 3),
+        }
+
+
+@dataclass
+class CorrectResult:
+    out: str
+    runs: list[RunOutcome] = field(default_factory=list)
+    dataset_findings: list[Finding] = field(default_factory=list)
+
+    def counts(self) -> dict[str, int]:
+        counts = {"corrected": 0, "up-to-date": 0, "refused": 0, "failed": 0}
+        for run in self.runs:
+            counts[run.status] += 1
+        return counts
+
+    def exit_code(self) -> int:
+        return 0 if all(r.ok for r in self.runs) else 1
+
+
+# ---------------------------------------------------------------------------
+# paths
+
+
+def output_name(name: str, desc: str) -> str:
+    """``sub-01_task-x_bold.nii.gz`` → ``sub-01_task-x_desc-<desc>_bold.nii.gz``.
+
+    ``desc`` goes last among the entities, as BIDS derivatives order it; an
+    existing ``desc`` value is replaced.
+    """
+    parsed = parse_name(name)
+    if parsed is None:
+        stem, dot, ext = name.partition(".")
+        return f"{stem}_desc-{desc}{dot}{ext}"
+    entities = {k: v for k, v in parsed.entities.items() if k != "desc"}
+    entities["desc"] = desc
+    parts = [f"{k}-{v}" for k, v in entities.items()]
+    return "_".join([*parts, parsed.suffix]) + parsed.extension
+
+
+def sidecar_name(image_name: str) -> str:
+    for ext in (".nii.gz", ".nii"):
+        if image_name.endswith(ext):
+            return image_name[: -len(ext)] + ".json"
+    return image_name + ".json"
+
+
+def check_output_location(out: Path, roots: Sequence[Path]) -> None:
+    """Refuse an output folder that would put files into an input dataset.
+
+    ``out`` may be outside every root, or inside a root's ``derivatives/``
+    folder (the BIDS convention); nowhere else inside a root.
+    """
+    out_real = Path(os.path.realpath(out))
+    for root in roots:
+        root_real = Path(os.path.realpath(root))
+        if out_real == root_real:
+            raise ValueError(f"--out {out} is the input dataset {root}; choose another folder")
+        if out_real.is_relative_to(root_real):
+            rel = out_real.relative_to(root_real)
+            if rel.parts[0] != "derivatives" or len(rel.parts) < 2:
+                raise ValueError(
+                    f"--out {out} is inside the input dataset {root}; use a folder outside "
+                    f"it or under {root / 'derivatives'}"
+                )
+        if root_real.is_relative_to(out_real):
+            raise ValueError(f"--out {out} contains the input dataset {root}")
+
+
+# ---------------------------------------------------------------------------
+# memory planning
+
+
+@dataclass(frozen=True)
+class Budget:
+    """How many volumes and series one step handles, and where the buffer lives."""
+
+    on_disk: bool
+    volumes_per_batch: int
+    rows_per_block: int
+
+
+def plan_budget(
+    n_slices: int, n_volumes: int, plane: int, stored_itemsize: int, cap: int | None, shown: str
+) -> Budget:
+    volume_voxels = n_slices * plane
+    if cap is None:
+        batch = max(1, min(n_volumes, (16 << 20) // max(1, volume_voxels * 4)))
+        return Budget(False, batch, 4096)
+    slice_bytes = n_volumes * plane * 4
+    buffer_bytes = slice_bytes * n_slices
+    # per volume in a batch: stored bytes + float32 + the output copy
+    per_volume = volume_voxels * (stored_itemsize + 8)
+    if buffer_bytes + 4 * slice_bytes + per_volume <= cap:  # all fits: no scratch file
+        batch = max(1, min(n_volumes, (cap - buffer_bytes - 4 * slice_bytes) // per_volume, 64))
+        return Budget(False, int(batch), 4096)
+    need = 5 * slice_bytes + per_volume
+    if cap < need:
+        raise CorrectionError(
+            f"{shown}: --max-memory {_mib(cap)} is too small for this run; one slice's "
+            f"series need about {_mib(need)}"
+        )
+    batch = max(1, min(n_volumes, (cap - 4 * slice_bytes) // per_volume, 256))
+    # engine temporaries: about 10 float32 values per sample and series
+    rows = max(64, min(4096, (cap - 4 * slice_bytes) // max(1, 40 * n_volumes)))
+    return Budget(True, int(batch), int(rows))
+
+
+def _mib(n: int) -> str:
+    return f"{n / (1 << 20):.0f} MiB"
+
+
+class _MemoryBuffer:
+    def __init__(self, n_slices: int, n_volumes: int, plane: int) -> None:
+        self.array = np.empty((n_slices, n_volumes, plane), dtype=np.float32)
+
+    def put_volumes(self, first: int, block: np.ndarray) -> None:
+        self.array[:, first : first + block.shape[1], :] = block
+
+    def get_slices(self, slices: Sequence[int]) -> np.ndarray:
+        return self.array[list(slices)]
+
+    def put_slices(self, slices: Sequence[int], data: np.ndarray) -> None:
+        self.array[list(slices)] = data
+
+    def get_volumes(self, first: int, count: int) -> np.ndarray:
+        return self.array[:, first : first + count, :]
+
+    def close(self) -> None:
+        del self.array
+
+
+class _DiskBuffer:
+    """The same buffer in a scratch file, read and written with explicit I/O
+    (not a memory map, so its pages never count against the process)."""
+
+    def __init__(self, path: Path, n_slices: int, n_volumes: int, plane: int) -> None:
+        self.path = path
+        self.shape = (n_slices, n_volumes, plane)
+        self._fd = os.open(path, os.O_RDWR | os.O_CREAT | os.O_EXCL, 0o600)
+        os.ftruncate(self._fd, n_slices * n_volumes * plane * 4)
+
+    def _offset(self, z: int, v: int) -> int:
+        _, n_volumes, plane = self.shape
+        return (z * n_volumes + v) * plane * 4
+
+    def put_volumes(self, first: int, block: np.ndarray) -> None:
+        for z in range(block.shape[0]):
+            data = np.ascontiguousarray(block[z])
+            os.pwrite(self._fd, memoryview(data.reshape(-1).view(np.uint8)), self._offset(z, first))
+
+    def get_slices(self, slices: Sequence[int]) -> np.ndarray:
+        _, n_volumes, plane = self.shape
+        out = np.empty((len(slices), n_volumes, plane), dtype=np.float32)
+        for i, z in enumerate(slices):
+            _read_into(self._fd, out[i], self._offset(z, 0))
+        return out
+
+    def put_slices(self, slices: Sequence[int], data: np.ndarray) -> None:
+        for i, z in enumerate(slices):
+            block = np.ascontiguousarray(data[i])
+            os.pwrite(self._fd, memoryview(block.reshape(-1).view(np.uint8)), self._offset(z, 0))
+
+    def get_volumes(self, first: int, count: int) -> np.ndarray:
+        n_slices, _, plane = self.shape
+        out = np.empty((n_slices, count, plane), dtype=np.float32)
+        for z in range(n_slices):
+            _read_into(self._fd, out[z], self._offset(z, first))
+        return out
+
+    def close(self) -> None:
+        os.close(self._fd)
+        with contextlib.suppress(FileNotFoundError):
+            os.unlink(self.path)
+
+
+def _read_into(fd: int, target: np.ndarray, offset: int) -> None:
+    view = memoryview(target.reshape(-1).view(np.uint8))
+    got = 0
+    while got < len(view):
+        n = os.preadv(fd, [view[got:]], offset + got)
+        if n <= 0:
+            raise OSError("scratch file ended early")
+        got += n
+
+
+# ---------------------------------------------------------------------------
+# one run
+
+
+def _c_axis(axis_index: int) -> int:
+    """The axis of a ``(volume, k, j, i)`` C-ordered batch that holds ``axis_index``."""
+    return 3 - axis_index
+
+
+def _to_slice_major(batch: np.ndarray, axis_index: int, scale: tuple[float, float] | None):
+    """``(volume, k, j, i)`` stored values → ``(slice, volume, plane)`` float32."""
+    moved = np.moveaxis(batch, _c_axis(axis_index), 0)
+    n_slices, count = moved.shape[0], moved.shape[1]
+    out = np.empty((n_slices, count, moved[0, 0].size), dtype=np.float32)
+    target = out.reshape(moved.shape)
+    if scale is None:
+        target[...] = moved
+    else:
+        slope, inter = scale
+        np.multiply(moved, np.float32(slope), out=target, casting="unsafe")
+        if inter:
+            target += np.float32(inter)
+    return out
+
+
+def _from_slice_major(block: np.ndarray, axis_index: int, spatial_c: tuple[int, ...]):
+    """``(slice, volume, plane)`` → ``(volume, k, j, i)`` (a view when possible)."""
+    c_axis = _c_axis(axis_index)
+    others = [d for i, d in enumerate(spatial_c) if i != c_axis - 1]
+    shaped = block.reshape(block.shape[0], block.shape[1], *others)
+    return np.moveaxis(shaped, 0, c_axis)
+
+
+@dataclass
+class _Cast:
+    """float32 → the output type, counting clipped values."""
+
+    dtype: np.dtype[Any]
+    scale: tuple[float, float] | None
+    clipped: int = 0
+    nonfinite: int = 0
+
+    def __call__(self, values: np.ndarray) -> np.ndarray:
+        if self.dtype.kind == "f":
+            return values.astype(self.dtype, order="C")
+        data = values
+        if self.scale is not None:
+            slope, inter = self.scale
+            data = (values - np.float32(inter)) / np.float32(slope)
+        info = np.iinfo(self.dtype)
+        bad = ~np.isfinite(data)
+        if bad.any():
+            self.nonfinite += int(bad.sum())
+            data = np.where(bad, 0, data)
+        rounded = np.rint(data)
+        low, high = rounded < info.min, rounded > info.max
+        self.clipped += int(low.sum() + high.sum())
+        np.clip(rounded, info.min, info.max, out=rounded)
+        return rounded.astype(self.dtype, order="C")
+
+
+def _engine_pass(
+    buffer: _MemoryBuffer | _DiskBuffer,
+    plan: ResamplingPlan,
+    engine: Engine,
+    budget: Budget,
+    workers: int,
+    stats: ResampleStats,
+) -> None:
+    targets = plan.target_times()
+    step = 1
+    for group in plan.groups:
+        if abs(group.shift) < 1e-9:
+            continue  # already at the reference
+        samples = plan.sample_times(group)
+        slices = group.slices
+        for start in range(0, len(slices), step):
+            part = slices[start : start + step]
+            data = buffer.get_slices(part)  # (slice, volume, plane)
+            series = np.ascontiguousarray(data.transpose(0, 2, 1)).reshape(-1, data.shape[1])
+            del data
+            done = np.empty_like(series)
+            for row in range(0, series.shape[0], budget.rows_per_block):
+                rows = slice(row, row + budget.rows_per_block)
+                done[rows] = resample(
+                    engine, series[rows], samples, targets, workers=workers, stats=stats
+                )
+            del series
+            back = done.reshape(len(part), -1, plan.n_volumes).transpose(0, 2, 1)
+            buffer.put_slices(part, back)
+
+
+def _hash_inputs(record: RunRecord, image_sha: str | None) -> dict[str, Any]:
+    root = Path(record.root)
+    sidecars = []
+    for rel in record.sidecar_chain:
+        sidecars.append({"Path": rel, "SHA256": file_sha256(root / rel)})
+    image = {"Path": record.path, "SHA256": image_sha or file_sha256(Path(record.abs_path))}
+    return {"Image": image, "Sidecars": sidecars}
+
+
+def _up_to_date(
+    image_out: Path, sidecar_out: Path, settings: dict[str, Any], inputs: dict[str, Any]
+) -> bool:
+    try:
+        with open(sidecar_out, encoding="utf-8") as fh:
+            recorded = json.load(fh).get(PROVENANCE_KEY, {})
+    except (OSError, ValueError, AttributeError):
+        return False
+    if not isinstance(recorded, dict):
+        return False
+    if recorded.get("Settings") != settings or recorded.get("Inputs") != inputs:
+        return False
+    output = recorded.get("Output", {})
+    if not image_out.is_file() or not isinstance(output, dict):
+        return False
+    return output.get("SHA256") == file_sha256(image_out)
+
+
+def _temp_path(final: Path) -> Path:
+    return final.with_name(f"{TEMP_PREFIX}{os.getpid()}-{final.name}")
+
+
+def _write_json_atomic(path: Path, content: Any) -> None:
+    tmp = _temp_path(path)
+    try:
+        with open(tmp, "x", encoding="utf-8") as fh:
+            json.dump(content, fh, indent=2, ensure_ascii=False, allow_nan=False)
+            fh.write("\n")
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.replace(tmp, path)
+    finally:
+        with contextlib.suppress(FileNotFoundError):
+            os.unlink(tmp)
+
+
+def _output_sidecar(
+    record: RunRecord,
+    plan: ResamplingPlan,
+    options: CorrectOptions,
+    settings: dict[str, Any],
+    inputs: dict[str, Any],
+    output_sha: str,
+    dataset_name: str,
+    stats: ResampleStats,
+) -> dict[str, Any]:
+    metadata = {k: v for k, v in record.metadata.items() if k not in DROPPED_FIELDS}
+    schedule = record.schedule
+    assert schedule is not None
+    metadata["SliceTimingCorrected"] = True
+    metadata["StartTime"] = round(plan.reference, 6)
+    metadata["Sources"] = [f"bids:{dataset_name}:{record.path}"]
+    metadata[PROVENANCE_KEY] = {
+        "Tool": "slicetime",
+        "Settings": settings,
+        "ReferenceTime": round(plan.reference, 6),
+        "OriginalSliceTiming": [round(t, 6) for t in schedule.sidecar_order()],
+        "SliceAxis": schedule.axis,
+        "SliceDirection": schedule.direction,
+        "TimingOrigin": record.timing_origin,
+        "ConstantSeries": stats.constant,
+        "SeriesWithGaps": stats.partial_nonfinite,
+        "Inputs": inputs,
+        "Output": {"SHA256": output_sha},
+    }
+    return metadata
+
+
+def correct_run(
+    run: RunResult, options: CorrectOptions, dataset_name: str = "raw"
+) -> RunOutcome:
+    """Correct one audited run. Never raises for a bad run: returns an outcome."""
+    started = time.perf_counter()
+    record = run.record
+    outcome = RunOutcome(record.path, record.root, "refused")
+    try:
+        _correct(run, options, dataset_name, outcome)
+    except (CorrectionError, PlanError, IrregularGridError, ReadError) as exc:
+        outcome.status = "refused" if isinstance(exc, PlanError | IrregularGridError) else "failed"
+        message = exc.message if isinstance(exc, ReadError) else str(exc)
+        outcome.reason = message if message.startswith(record.path) else f"{record.path}: {message}"
+    except OSError as exc:
+        outcome.status = "failed"
+        outcome.reason = f"{record.path}: cannot write the output ({exc.strerror or exc})"
+    outcome.seconds = time.perf_counter() - started
+    return outcome
+
+
+def _refusal(run: RunResult, force: bool) -> tuple[str | None, list[Finding], list[str]]:
+    record = run.record
+    errors = [f for f in run.findings if f.severity is Severity.ERROR]
+    if record.header is None:
+        first = errors[0].message if errors else "the image header cannot be read"
+        return first, errors, []
+    if record.schedule is None:
+        why = "; ".join(p.message for p in record.timing_problems) or "no slice timing found"
+        return f"{record.path}: no usable slice timing ({why})", errors, []
+    if errors and not force:
+        codes = ", ".join(sorted({f.code for f in errors}))
+        return (
+            f"{record.path}: the audit found errors that make the timing untrustworthy "
+            f"({codes}); fix them (see slicetime show) or pass --force",
+            errors,
+            [],
+        )
+    warnings = [f"corrected despite audit error {f.code}: {f.message}" for f in errors]
+    return None, errors, warnings
+
+
+def _correct(
+    run: RunResult, options: CorrectOptions, dataset_name: str, outcome: RunOutcome
+) -> None:
+    record = run.record
+    reason, blocking, warnings = _refusal(run, options.force)
+    outcome.blocking = blocking
+    outcome.warnings.extend(warnings)
+    if reason is not None:
+        outcome.reason = reason
+        return
+    header, schedule = record.header, record.schedule
+    assert header is not None and schedule is not None
+    engine = get_engine(options.method)
+    if len(header.shape) != 4:
+        raise CorrectionError(
+            f"correction needs a 4-D image; this one has {len(header.shape)} dimensions "
+            f"{list(header.shape)} (dim)"
+        )
+    if not header.compressed and not record.path.endswith(".nii"):
+        raise CorrectionError("only single-file NIfTI images (.nii, .nii.gz) can be corrected")
+    axis_length = header.shape[schedule.axis_index]
+    if axis_length != schedule.n_slices:
+        raise CorrectionError(
+            f"SliceTiming has {schedule.n_slices} entries but the image has {axis_length} "
+            f"slices along {schedule.axis}"
+        )
+    plan = make_plan(schedule, header.shape[3], options.reference)
+    outcome.reference = plan.reference
+    if engine.needs_regular_grid and not plan.regular:
+        raise IrregularGridError(
+            f"VolumeTiming spaces the volumes unevenly; the {engine.name} method needs evenly "
+            "spaced volumes (use --method cubic or --method linear)"
+        )
+
+    rel_out = Path(record.path).with_name(output_name(Path(record.path).name, options.desc))
+    image_out = options.out / rel_out
+    sidecar_out = image_out.with_name(sidecar_name(image_out.name))
+    outcome.output = rel_out.as_posix()
+    settings = options.settings(engine)
+    image_out.parent.mkdir(parents=True, exist_ok=True)
+    if sidecar_out.exists() and image_out.exists():
+        inputs = _hash_inputs(record, None)
+        if _up_to_date(image_out, sidecar_out, settings, inputs):
+            outcome.status = "up-to-date"
+            return
+
+    spatial = tuple(header.shape[:3])
+    plane = math.prod(spatial) // axis_length
+    budget = plan_budget(
+        axis_length, header.shape[3], plane, _stored_itemsize(header), options.max_memory,
+        record.path,
+    )
+    scale = scaling(header)
+    tmp_image = _temp_path(image_out)
+    stats = ResampleStats()
+    buffer: _MemoryBuffer | _DiskBuffer | None = None
+    writer: VolumeWriter | None = None
+    try:
+        with VolumeReader(
+            Path(record.abs_path), header, record.path, threads=options.threads
+        ) as reader:
+            if budget.on_disk:
+                scratch = options.out / f"{TEMP_PREFIX}{os.getpid()}-scratch.f32"
+                buffer = _DiskBuffer(scratch, axis_length, header.shape[3], plane)
+            else:
+                buffer = _MemoryBuffer(axis_length, header.shape[3], plane)
+            for first, batch in reader.batches(budget.volumes_per_batch):
+                buffer.put_volumes(first, _to_slice_major(batch, plan.axis_index, scale))
+            prefix = reader.prefix
+            image_sha = reader.sha256()
+        _engine_pass(buffer, plan, engine, budget, max(1, options.threads), stats)
+
+        out_dtype, code, bitpix, out_scale = _output_type(header, reader.dtype, options.keep_dtype)
+        cast = _Cast(out_dtype, out_scale)
+        slope, inter = out_scale if out_scale is not None else (1.0, 0.0)
+        new_prefix = patched_prefix(
+            prefix, header, datatype=code, bitpix=bitpix, slope=slope, inter=inter
+        )
+        writer = VolumeWriter(
+            tmp_image, new_prefix, compress=header.compressed, threads=options.threads
+        )
+        spatial_c = tuple(reversed(spatial))
+        for first in range(0, header.shape[3], budget.volumes_per_batch):
+            count = min(budget.volumes_per_batch, header.shape[3] - first)
+            block = buffer.get_volumes(first, count)
+            writer.write(cast(_from_slice_major(block, plan.axis_index, spatial_c)))
+        writer.close()
+        output_sha = writer.sha256()
+        writer = None
+        buffer.close()
+        buffer = None
+        if cast.clipped:
+            outcome.warnings.append(
+                f"{cast.clipped} values were clipped to the range of {out_dtype.name}"
+            )
+        if cast.nonfinite:
+            outcome.warnings.append(
+                f"{cast.nonfinite} non-finite values were stored as 0 in {out_dtype.name}"
+            )
+        inputs = _hash_inputs(record, image_sha)
+        sidecar = _output_sidecar(
+            record, plan, options, settings, inputs, output_sha, dataset_name, stats
+        )
+        os.replace(tmp_image, image_out)
+        _write_json_atomic(sidecar_out, sidecar)
+        outcome.status = "corrected"
+        outcome.provenance = sidecar[PROVENANCE_KEY] | {"OutputPath": rel_out.as_posix()}
+    finally:
+        if writer is not None:
+            writer.abort()
+        if buffer is not None:
+            buffer.close()
+        with contextlib.suppress(FileNotFoundError):
+            os.unlink(tmp_image)
+
+
+def _stored_itemsize(header: Any) -> int:
+    return max(1, header.bitpix // 8)
+
+
+def _output_type(
+    header: Any, stored: np.dtype[Any], keep: bool
+) -> tuple[np.dtype[Any], int, int, tuple[float, float] | None]:
+    """(numpy type with byte order, NIfTI code, bitpix, scaling) of the output."""
+    if keep:
+        return stored, header.datatype, header.bitpix, scaling(header)
+    return np.dtype(np.float32).newbyteorder(header.byte_order), FLOAT32_CODE, 32, None
+
+
+# ---------------------------------------------------------------------------
+# batches
+
+
+def _correct_chunk(
+    items: Sequence[tuple[RunResult, str]], options: CorrectOptions
+) -> list[RunOutcome]:
+    return [correct_run(run, options, name) for run, name in items]
+
+
+def _dataset_names(roots: Sequence[str]) -> dict[str, str]:
+    return {root: ("raw" if i == 0 else f"raw{i + 1}") for i, root in enumerate(roots)}
+
+
+def _read_description(root: Path) -> dict[str, Any]:
+    try:
+        with open(root / "dataset_description.json", encoding="utf-8") as fh:
+            value = json.load(fh)
+        return value if isinstance(value, dict) else {}
+    except (OSError, ValueError):
+        return {}
+
+
+def _check_existing_description(out: Path) -> None:
+    path = out / "dataset_description.json"
+    if not path.exists():
+        return
+    content = _read_description(out)
+    generated = content.get("GeneratedBy")
+    names = (
+        {g.get("Name") for g in generated if isinstance(g, dict)}
+        if isinstance(generated, list)
+        else set()
+    )
+    if "slicetime" not in names:
+        raise ValueError(
+            f"--out {out} already holds a dataset that slicetime did not write "
+            f"({path.name} has no GeneratedBy entry for slicetime); choose an empty folder"
+        )
+
+
+def _write_description(
+    out: Path, roots: Sequence[str], names: dict[str, str], options: CorrectOptions
+) -> None:
+    engine = get_engine(options.method)
+    first = _read_description(Path(roots[0])) if roots else {}
+    bids_version = first.get("BIDSVersion") if isinstance(first.get("BIDSVersion"), str) else None
+    description = {
+        "Name": "Slice-timing corrected runs (slicetime)",
+        "BIDSVersion": bids_version or "1.10.0",
+        "DatasetType": "derivative",
+        "GeneratedBy": [
+            {
+                "Name": "slicetime",
+                "Version": __version__,
+                "Description": (
+                    f"Slice-timing correction with the {engine.name} method "
+                    f"({engine.summary}); reference {options.reference.describe()}; "
+                    f"parameters {json.dumps(dict(engine.parameters), sort_keys=True)}"
+                ),
+            }
+        ],
+        "DatasetLinks": {names[r]: Path(r).resolve().as_uri() for r in roots},
+    }
+    _write_json_atomic(out / "dataset_description.json", description)
+
+
+def _write_provenance(out: Path, outcomes: Sequence[RunOutcome]) -> None:
+    path = out / PROVENANCE_FILE
+    try:
+        with open(path, encoding="utf-8") as fh:
+            existing = json.load(fh)
+        runs = existing.get("Runs", {}) if isinstance(existing, dict) else {}
+        runs = runs if isinstance(runs, dict) else {}
+    except (OSError, ValueError):
+        runs = {}
+    for outcome in outcomes:
+        if outcome.output is None or not outcome.ok:
+            continue
+        if outcome.provenance is not None:
+            runs[outcome.output] = outcome.provenance
+        elif outcome.output not in runs:
+            recorded = _recorded_provenance(out / outcome.output)
+            if recorded is not None:
+                runs[outcome.output] = recorded
+    content = {
+        "Tool": {"Name": "slicetime", "Version": __version__},
+        "Runs": dict(sorted(runs.items())),
+    }
+    _write_json_atomic(path, content)
+
+
+def _recorded_provenance(image: Path) -> dict[str, Any] | None:
+    try:
+        with open(image.with_name(sidecar_name(image.name)), encoding="utf-8") as fh:
+            value = json.load(fh).get(PROVENANCE_KEY)
+        return value if isinstance(value, dict) else None
+    except (OSError, ValueError, AttributeError):
+        return None
+
+
+def remove_stale_temporaries(out: Path) -> int:
+    """Delete temporary files an interrupted earlier batch left under ``out``."""
+    removed = 0
+    if not out.is_dir():
+        return 0
+    for dirpath, _dirs, files in os.walk(out):
+        for name in files:
+            if name.startswith(TEMP_PREFIX):
+                with contextlib.suppress(FileNotFoundError):
+                    os.unlink(os.path.join(dirpath, name))
+                    removed += 1
+    return removed
+
+
+def correct_paths(
+    paths: Sequence[Path],
+    options: CorrectOptions,
+    *,
+    jobs: int = 1,
+    progress: Progress | None = None,
+    policy_file: Path | None = None,
+    include_derivatives: bool = False,
+    include_sourcedata: bool = False,
+    include_hidden: bool = False,
+) -> CorrectResult:
+    """Correct every run under ``paths`` into ``options.out``.
+
+    Raises ``ValueError`` for a bad output location (usage error) and
+    ``ReadError`` for a missing given path; everything about a single run
+    becomes its outcome.
+    """
+    get_engine(options.method)
+    if not _DESC_RE.match(options.desc):
+        raise ValueError(f"--desc {options.desc!r} must be letters and digits only")
+    audit: AuditResult = audit_paths(
+        paths,
+        include_derivatives=include_derivatives,
+        include_sourcedata=include_sourcedata,
+        include_hidden=include_hidden,
+        policy_file=policy_file,
+    )
+    roots = sorted({r.record.root for r in audit.runs}) or audit.roots
+    check_output_location(options.out, [Path(r) for r in roots])
+    _check_existing_description(options.out)
+    result = CorrectResult(out=str(options.out))
+    result.dataset_findings = [
+        f for f in audit.dataset_findings if f.severity is Severity.ERROR
+    ]
+    names = _dataset_names(roots)
+    _refuse_collisions(audit.runs)
+    options.out.mkdir(parents=True, exist_ok=True)
+    remove_stale_temporaries(options.out)
+    items = [(run, names[run.record.root]) for run in audit.runs]
+    job = _ChunkJob(options)
+    result.runs = map_chunks(job, items, jobs=jobs, chunk_size=1, progress=progress)
+    if any(r.ok for r in result.runs):
+        _write_description(options.out, roots, names, options)
+        _write_provenance(options.out, result.runs)
+    return result
+
+
+def _refuse_collisions(runs: Sequence[RunResult]) -> None:
+    seen: dict[str, str] = {}
+    for run in runs:
+        other = seen.setdefault(run.record.path, run.record.root)
+        if other != run.record.root:
+            raise ValueError(
+                f"{run.record.path} exists in both {other} and {run.record.root}; their "
+                "outputs would collide, correct the datasets into separate --out folders"
+            )
+
+
+@dataclass(frozen=True)
+class _ChunkJob:
+    options: CorrectOptions
+
+    def __call__(self, items: Sequence[tuple[RunResult, str]]) -> list[RunOutcome]:
+        return _correct_chunk(items, self.options)
+
+
+def iter_outputs(result: CorrectResult) -> Iterator[Path]:
+    out = Path(result.out)
+    for run in result.runs:
+        if run.output:
+            yield out / run.output
+
+
+__all__ = [
+    "DEFAULT_DESC",
+    "PROVENANCE_FILE",
+    "PROVENANCE_KEY",
+    "CorrectOptions",
+    "CorrectResult",
+    "CorrectionError",
+    "RunOutcome",
+    "check_output_location",
+    "correct_paths",
+    "correct_run",
+    "output_name",
+    "parse_size",
+    "remove_stale_temporaries",
+]

@@ -1,0 +1,403 @@
+"""Image data I/O for correction: stream volumes in, stream volumes out.
+
+Audits read header bytes only (:mod:`.nifti`); correction needs the data. This
+module reads a single-file NIfTI-1/NIfTI-2 image (``.nii`` or ``.nii.gz``) a
+batch of volumes at a time, never holding the file's whole content, and writes
+an image with the same header layout (header, extensions and padding copied
+byte for byte, a few fields patched) from batches of volumes.
+
+* gzip is decompressed and compressed with ``isal`` in a helper thread when it
+  is importable (several times faster than ``zlib``), else with ``gzip``.
+* The compressed (or plain) input bytes are hashed (SHA-256) while they are
+  read, so provenance costs no second pass over the file.
+* Sizes were checked by :func:`.nifti.read_header` before anything here is
+  allocated; a stream that still ends early or is corrupt raises ``ReadError``
+  (``file/truncated`` / ``file/not-nifti``) naming the file.
+"""
+
+from __future__ import annotations
+
+import gzip
+import hashlib
+import math
+import os
+import struct
+import zlib
+from collections.abc import Iterator
+from pathlib import Path
+from types import TracebackType
+from typing import Any, BinaryIO
+
+import numpy as np
+
+from slicetime.model import HeaderInfo
+
+from .errors import ReadError, os_error
+
+try:  # pragma: no cover - depends on the environment
+    from isal import igzip_threaded as _threaded_gzip
+    from isal import isal_zlib as _isal_zlib
+
+    _GZIP_ERRORS: tuple[type[BaseException], ...] = (
+        zlib.error,
+        _isal_zlib.error,
+        gzip.BadGzipFile,
+        EOFError,
+    )
+except ImportError:  # pragma: no cover
+    _threaded_gzip = None
+    _GZIP_ERRORS = (zlib.error, gzip.BadGzipFile, EOFError)
+
+#: NIfTI datatype code -> numpy type, for the types correction accepts
+DATA_TYPES: dict[int, np.dtype[Any]] = {
+    2: np.dtype(np.uint8),
+    4: np.dtype(np.int16),
+    8: np.dtype(np.int32),
+    16: np.dtype(np.float32),
+    64: np.dtype(np.float64),
+    256: np.dtype(np.int8),
+    512: np.dtype(np.uint16),
+    768: np.dtype(np.uint32),
+    1024: np.dtype(np.int64),
+    1280: np.dtype(np.uint64),
+}
+FLOAT32_CODE = 16
+_HASH_CHUNK = 1 << 20
+
+# (offset, format) of the header fields a corrected output changes; nifti1.h / nifti2.h
+_PATCH_1 = {
+    "datatype": (70, "h"),
+    "bitpix": (72, "h"),
+    "slice_start": (74, "h"),
+    "scl_slope": (112, "f"),
+    "scl_inter": (116, "f"),
+    "slice_end": (120, "h"),
+    "slice_code": (122, "B"),
+    "cal_max": (124, "f"),
+    "cal_min": (128, "f"),
+    "slice_duration": (132, "f"),
+}
+_PATCH_2 = {
+    "datatype": (12, "h"),
+    "bitpix": (14, "h"),
+    "scl_slope": (176, "d"),
+    "scl_inter": (184, "d"),
+    "cal_max": (192, "d"),
+    "cal_min": (200, "d"),
+    "slice_duration": (208, "d"),
+    "slice_start": (224, "q"),
+    "slice_end": (232, "q"),
+    "slice_code": (496, "i"),
+}
+
+
+def data_type(header: HeaderInfo, shown: str) -> np.dtype[Any]:
+    """The numpy type of the stored voxels (with the header's byte order)."""
+    try:
+        base = DATA_TYPES[header.datatype]
+    except KeyError:
+        raise ReadError(
+            "file/unsupported",
+            shown,
+            "datatype",
+            f"{shown}: NIfTI datatype {header.datatype} cannot be corrected "
+            "(only real integer and float voxels can)",
+        ) from None
+    return base.newbyteorder(header.byte_order)
+
+
+def scaling(header: HeaderInfo) -> tuple[float, float] | None:
+    """``(slope, inter)`` to apply, or None when the header asks for no scaling."""
+    slope, inter = header.scl_slope, header.scl_inter
+    if not math.isfinite(slope) or slope == 0.0:
+        return None
+    inter = inter if math.isfinite(inter) else 0.0
+    if slope == 1.0 and inter == 0.0:
+        return None
+    return slope, inter
+
+
+class _HashingReader:
+    """A binary file wrapper that hashes every byte read through it."""
+
+    def __init__(self, fh: BinaryIO) -> None:
+        self._fh = fh
+        self.digest = hashlib.sha256()
+
+    def read(self, size: int = -1) -> bytes:
+        data = self._fh.read(size)
+        self.digest.update(data)
+        return data
+
+    def readinto(self, buffer: Any) -> int:
+        n = self._fh.readinto(buffer)
+        if n:
+            self.digest.update(memoryview(buffer)[:n])
+        return n or 0
+
+    def readable(self) -> bool:
+        return True
+
+    def close(self) -> None:
+        pass  # the owner closes the real file
+
+    @property
+    def closed(self) -> bool:
+        return self._fh.closed
+
+    def finish(self) -> str:
+        """Hash whatever is left of the file and return the hex digest."""
+        while chunk := self._fh.read(_HASH_CHUNK):
+            self.digest.update(chunk)
+        return self.digest.hexdigest()
+
+
+class VolumeReader:
+    """Read the volumes of a single-file NIfTI image in batches, in file order.
+
+    Use as a context manager. ``prefix`` holds the bytes before the image data
+    (header, extensions, padding). ``read(count)`` returns a C-ordered array of
+    shape ``(count, *reversed(spatial shape))`` in the stored type, i.e. the
+    NIfTI (Fortran-ordered) volumes viewed without a copy of the bytes.
+    """
+
+    def __init__(self, path: Path, header: HeaderInfo, shown: str, *, threads: int = 1) -> None:
+        if len(header.shape) != 4:
+            raise ReadError(
+                "file/unsupported",
+                shown,
+                "dim",
+                f"{shown}: correction needs a 4-D image, this one has "
+                f"{len(header.shape)} dimensions {list(header.shape)}",
+            )
+        self.path = path
+        self.header = header
+        self.shown = shown
+        self.dtype = data_type(header, shown)
+        self.spatial = tuple(header.shape[:3])
+        self.n_volumes = header.shape[3]
+        self.volume_bytes = math.prod(self.spatial) * self.dtype.itemsize
+        self._threads = threads
+        self._fh: BinaryIO | None = None
+        self._hasher: _HashingReader | None = None
+        self._stream: Any = None
+        self._done = 0
+        self.prefix = b""
+
+    def __enter__(self) -> VolumeReader:
+        try:
+            self._fh = open(self.path, "rb")
+        except OSError as exc:
+            raise os_error(exc, self.shown, what="NIfTI file") from None
+        self._hasher = _HashingReader(self._fh)
+        if self.header.compressed:
+            if _threaded_gzip is not None and self._threads > 0:
+                self._stream = _threaded_gzip.open(self._hasher, "rb", threads=self._threads)
+            else:
+                self._stream = gzip.GzipFile(fileobj=self._hasher, mode="rb")  # type: ignore[arg-type]
+        else:
+            self._stream = self._hasher
+        self.prefix = self._read_exact(self.header.vox_offset, "the header and extensions")
+        return self
+
+    def __exit__(
+        self,
+        exc_type: type[BaseException] | None,
+        exc: BaseException | None,
+        tb: TracebackType | None,
+    ) -> None:
+        try:
+            if self._stream is not None and self._stream is not self._hasher:
+                self._stream.close()
+        except _GZIP_ERRORS:
+            pass
+        finally:
+            if self._fh is not None:
+                self._fh.close()
+
+    def _read_exact(self, size: int, what: str) -> bytes:
+        out = bytearray(size)
+        self._fill(memoryview(out), what)
+        return bytes(out)
+
+    def _fill(self, view: memoryview, what: str) -> None:
+        got = 0
+        total = len(view)
+        try:
+            while got < total:
+                n = self._stream.readinto(view[got:])
+                if not n:
+                    break
+                got += n
+        except _GZIP_ERRORS as exc:
+            raise ReadError(
+                "file/truncated",
+                self.shown,
+                None,
+                f"{self.shown}: the compressed data is damaged while reading {what} ({exc})",
+            ) from None
+        except OSError as exc:
+            raise os_error(exc, self.shown, what="NIfTI file") from None
+        if got < total:
+            raise ReadError(
+                "file/truncated",
+                self.shown,
+                None,
+                f"{self.shown}: the image data ends early, while reading {what}",
+                evidence={"expected_bytes": total, "read_bytes": got},
+            )
+
+    def read(self, count: int) -> np.ndarray:
+        count = min(count, self.n_volumes - self._done)
+        out = np.empty((count, *reversed(self.spatial)), dtype=self.dtype)
+        first = self._done
+        what = f"volumes {first} to {first + count - 1}"
+        self._fill(memoryview(out.reshape(-1).view(np.uint8)), what)
+        self._done += count
+        return out
+
+    def batches(self, count: int) -> Iterator[tuple[int, np.ndarray]]:
+        """``(first volume index, volumes)`` until the image is read."""
+        while self._done < self.n_volumes:
+            first = self._done
+            yield first, self.read(count)
+
+    def sha256(self) -> str:
+        """SHA-256 of the whole file on disk (reads what the decoder left)."""
+        assert self._hasher is not None
+        return self._hasher.finish()
+
+
+def patched_prefix(
+    prefix: bytes,
+    header: HeaderInfo,
+    *,
+    datatype: int,
+    bitpix: int,
+    slope: float,
+    inter: float,
+) -> bytes:
+    """The input header bytes with the fields a corrected image changes.
+
+    Changed: ``datatype``, ``bitpix``, ``scl_slope``, ``scl_inter``;
+    ``cal_min``/``cal_max`` are reset to 0 (the display range may no longer
+    hold); ``slice_code``, ``slice_start``, ``slice_end`` and
+    ``slice_duration`` are reset to 0 so the corrected image no longer claims a
+    slice acquisition order (nothing downstream corrects it twice). Everything
+    else (affine, units, ``dim_info``, intent, description, extensions) is kept.
+    """
+    fields = _PATCH_1 if header.version == 1 else _PATCH_2
+    values = {
+        "datatype": datatype,
+        "bitpix": bitpix,
+        "scl_slope": slope,
+        "scl_inter": inter,
+        "cal_max": 0.0,
+        "cal_min": 0.0,
+        "slice_code": 0,
+        "slice_start": 0,
+        "slice_end": 0,
+        "slice_duration": 0.0,
+    }
+    out = bytearray(prefix)
+    for name, (offset, fmt) in fields.items():
+        struct.pack_into(header.byte_order + fmt, out, offset, values[name])
+    return bytes(out)
+
+
+class VolumeWriter:
+    """Write a NIfTI image: the prefix, then volumes in file order.
+
+    Compressed with gzip when ``compress`` (``isal`` at its fastest level in a
+    helper thread when available, else zlib level 1). The SHA-256 of the bytes
+    written to disk is available from ``sha256()`` after ``close()``.
+    """
+
+    def __init__(
+        self, path: Path, prefix: bytes, *, compress: bool, threads: int = 1, level: int = 1
+    ) -> None:
+        self.path = path
+        self._raw: BinaryIO = open(path, "xb")
+        self._digest = hashlib.sha256()
+        self._hashing = _HashingWriter(self._raw, self._digest)
+        self._stream: Any
+        if compress:
+            if _threaded_gzip is not None and threads > 0:
+                self._stream = _threaded_gzip.open(
+                    self._hashing, "wb", compresslevel=level, threads=threads
+                )
+            else:
+                self._stream = gzip.GzipFile(
+                    fileobj=self._hashing,  # type: ignore[arg-type]
+                    mode="wb",
+                    compresslevel=level,
+                    mtime=0,
+                )
+        else:
+            self._stream = self._hashing
+        self._stream.write(prefix)
+
+    def write(self, volumes: np.ndarray) -> None:
+        self._stream.write(memoryview(np.ascontiguousarray(volumes).reshape(-1).view(np.uint8)))
+
+    def close(self) -> None:
+        if self._stream is not self._hashing:
+            self._stream.close()
+        self._raw.flush()
+        os.fsync(self._raw.fileno())
+        self._raw.close()
+
+    def abort(self) -> None:
+        try:
+            if self._stream is not self._hashing:
+                self._stream.close()
+        except Exception:
+            pass
+        self._raw.close()
+
+    def sha256(self) -> str:
+        return self._digest.hexdigest()
+
+
+class _HashingWriter:
+    def __init__(self, fh: BinaryIO, digest: Any) -> None:
+        self._fh = fh
+        self._digest = digest
+
+    def write(self, data: Any) -> int:
+        self._digest.update(data)
+        return self._fh.write(data)
+
+    def writable(self) -> bool:
+        return True
+
+    def flush(self) -> None:
+        self._fh.flush()
+
+    def close(self) -> None:
+        pass
+
+    @property
+    def closed(self) -> bool:
+        return self._fh.closed
+
+
+def file_sha256(path: Path) -> str:
+    """SHA-256 of a file's bytes."""
+    digest = hashlib.sha256()
+    with open(path, "rb") as fh:
+        while chunk := fh.read(_HASH_CHUNK):
+            digest.update(chunk)
+    return digest.hexdigest()
+
+
+__all__ = [
+    "DATA_TYPES",
+    "FLOAT32_CODE",
+    "VolumeReader",
+    "VolumeWriter",
+    "data_type",
+    "file_sha256",
+    "patched_prefix",
+    "scaling",
+]
