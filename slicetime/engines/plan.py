@@ -154,6 +154,14 @@ def make_plan(
     """Plan the correction of a run with ``n_volumes`` volumes."""
     if n_volumes < 2:
         raise PlanError(f"the run has {n_volumes} volume(s); correction needs at least 2")
+    window = schedule.acquisition_window
+    if window is not None and schedule.times:
+        low, high = min(schedule.times), max(schedule.times)
+        if low < -1e-6 or high > window + 1e-6:
+            raise PlanError(
+                f"slice times run from {low:g} to {high:g} s, outside the acquisition "
+                f"window of 0 to {window:g} s, so they cannot be used even with --force"
+            )
     reference = reference_time(choice, schedule)
     if schedule.volume_times is not None:
         onsets = tuple(float(t) for t in schedule.volume_times)

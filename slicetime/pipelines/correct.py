@@ -50,6 +50,7 @@ from slicetime.pipelines.audit import AuditResult, RunResult, audit_paths
 from slicetime.pipelines.executor import Progress, map_chunks
 from slicetime.readers.entities import parse_name
 from slicetime.readers.errors import ReadError
+from slicetime.readers.nifti import size_text
 from slicetime.readers.volumes import (
     FLOAT32_CODE,
     VolumeReader,
@@ -237,8 +238,8 @@ def plan_budget(
     need = 5 * slice_bytes + per_volume
     if cap < need:
         raise CorrectionError(
-            f"{shown}: --max-memory {_mib(cap)} is too small for this run; one slice's "
-            f"series need about {_mib(need)}"
+            f"{shown}: --max-memory {size_text(cap)} is too small for this run; one slice's "
+            f"series need about {size_text(need)}"
         )
     batch = max(1, min(n_volumes, (cap - 4 * slice_bytes) // per_volume, 256))
     # engine temporaries: about 10 float32 values per sample and series
@@ -246,8 +247,6 @@ def plan_budget(
     return Budget(True, int(batch), int(rows))
 
 
-def _mib(n: int) -> str:
-    return f"{n / (1 << 20):.0f} MiB"
 
 
 class _MemoryBuffer:

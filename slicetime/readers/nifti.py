@@ -138,7 +138,7 @@ _TIME_UNITS: dict[int, tuple[Literal["s", "ms", "us"], float]] = {
 }
 
 
-def _size_text(n: int) -> str:
+def size_text(n: int) -> str:
     for unit, scale in (("TiB", 1 << 40), ("GiB", 1 << 30), ("MiB", 1 << 20), ("KiB", 1 << 10)):
         if n >= scale:
             return f"{n / scale:.1f} {unit}"
@@ -280,7 +280,7 @@ def _check_dimensions(raw: dict[str, Any], shown: str) -> tuple[tuple[int, ...],
             "file/bad-dimensions",
             shown,
             "dim",
-            f"{shown}: header claims {_size_text(data_bytes)} of image data "
+            f"{shown}: header claims {size_text(data_bytes)} of image data "
             f"(shape {list(shape)}), which no real image holds",
             evidence={"shape": list(shape), "data_bytes": data_bytes},
         )
@@ -381,8 +381,8 @@ def _read_open(
                     "file/bad-dimensions",
                     shown,
                     "dim",
-                    f"{shown}: header claims {_size_text(needed)} but a "
-                    f"{_size_text(file_size)} gzip file can hold at most {_size_text(limit)}",
+                    f"{shown}: header claims {size_text(needed)} but a "
+                    f"{size_text(file_size)} gzip file can hold at most {size_text(limit)}",
                     evidence={
                         "shape": list(shape),
                         "claimed_bytes": needed,
