@@ -205,7 +205,7 @@ def render_correct(result: CorrectResult, console: Console) -> None:
         line.append(f"{run.status:<10}", style=OUTCOME_STYLE[run.status])
         line.append(" " + xml_safe(run.path))
         if run.ok and run.output:
-            line.append(f"  → {xml_safe(run.output)}", style="dim")
+            line.append(f"  → {xml_safe(run.output.rsplit('/', 1)[-1])}", style="dim")
         if run.reference is not None and run.ok:
             line.append(f"  (reference {run.reference:.4g} s)", style="dim")
         console.print(line)

@@ -525,7 +525,8 @@ def _refusal(run: RunResult, force: bool) -> tuple[str | None, list[Finding], li
         codes = ", ".join(sorted({f.code for f in errors}))
         return (
             f"{record.path}: the audit found errors that make the timing untrustworthy "
-            f"({codes}); fix them (see slicetime show) or pass --force",
+            f"({codes}); fix them (see slicetime show), or pass --force if you judge them "
+            "harmless",
             errors,
             [],
         )
@@ -567,12 +568,19 @@ def _correct(
             "spaced volumes (use --method cubic or --method linear)"
         )
 
-    rel_out = Path(record.path).with_name(output_name(Path(record.path).name, options.desc))
+    rel_in = Path(record.path)
+    if rel_in.is_absolute() or ".." in rel_in.parts:
+        raise CorrectionError("the run is outside its dataset root, so its path cannot be mirrored")
+    rel_out = rel_in.with_name(output_name(rel_in.name, options.desc))
     image_out = options.out / rel_out
     sidecar_out = image_out.with_name(sidecar_name(image_out.name))
     outcome.output = rel_out.as_posix()
     settings = options.settings(engine)
     image_out.parent.mkdir(parents=True, exist_ok=True)
+    if not Path(os.path.realpath(image_out.parent)).is_relative_to(os.path.realpath(options.out)):
+        raise CorrectionError(
+            f"{image_out.parent} leads outside --out (a symbolic link?); nothing was written"
+        )
     if sidecar_out.exists() and image_out.exists():
         inputs = _hash_inputs(record, None)
         if _up_to_date(image_out, sidecar_out, settings, inputs):

@@ -117,10 +117,16 @@ def build_demo_dataset(root: Path, seed: int = 20261201) -> list[DemoRun]:
 
 
 def run_demo(out: Path) -> int:
-    """Build the dataset, show one run and audit the whole study. Returns 0."""
+    """Build the dataset, show one run, audit the study, correct what can be. Returns 0."""
     from slicetime.interfaces.report_json import audit_object, dumps
-    from slicetime.interfaces.terminal import make_console, render_audit, render_show
+    from slicetime.interfaces.terminal import (
+        make_console,
+        render_audit,
+        render_correct,
+        render_show,
+    )
     from slicetime.pipelines.audit import audit_one, audit_paths
+    from slicetime.pipelines.correct import CorrectOptions, correct_paths
 
     console = make_console()
     dataset = out / "quiet-rooms"
@@ -135,5 +141,11 @@ def run_demo(out: Path) -> int:
     render_audit(result, console)
     report = out / "audit.json"
     report.write_text(dumps(audit_object(result, str(dataset))) + "\n", encoding="utf-8")
+    console.rule("slicetime correct (runs with trustworthy timing only)")
+    aligned = dataset / "derivatives" / "slicetime"
+    if aligned.exists():
+        shutil.rmtree(aligned)
+    corrected = correct_paths([dataset], CorrectOptions(out=aligned))
+    render_correct(corrected, console)
     console.print(f"\nJSON report: {report}\nTry: slicetime explain timing/units-ms")
     return 0
