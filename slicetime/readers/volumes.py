@@ -17,6 +17,7 @@ byte for byte, a few fields patched) from batches of volumes.
 
 from __future__ import annotations
 
+import contextlib
 import gzip
 import hashlib
 import math
@@ -197,8 +198,15 @@ class VolumeReader:
                 self._stream = gzip.GzipFile(fileobj=self._hasher, mode="rb")  # type: ignore[arg-type]
         else:
             self._stream = self._hasher
-        self.prefix = self._read_exact(self.header.vox_offset, "the header and extensions")
+        self.prefix = self._read_exact(self.data_offset, "the header and extensions")
         return self
+
+    @property
+    def data_offset(self) -> int:
+        """Where the voxels start: ``vox_offset``, or right after the header (and the
+        4 extension bytes) when a single-file header leaves it too small."""
+        minimum = 352 if self.header.version == 1 else 544
+        return self.header.vox_offset if self.header.vox_offset >= minimum else minimum
 
     def __exit__(
         self,
@@ -207,10 +215,7 @@ class VolumeReader:
         tb: TracebackType | None,
     ) -> None:
         try:
-            if self._stream is not None and self._stream is not self._hasher:
-                self._stream.close()
-        except _GZIP_ERRORS:
-            pass
+            self._close_stream()
         finally:
             if self._fh is not None:
                 self._fh.close()
@@ -263,9 +268,20 @@ class VolumeReader:
             yield first, self.read(count)
 
     def sha256(self) -> str:
-        """SHA-256 of the whole file on disk (reads what the decoder left)."""
+        """SHA-256 of the whole file on disk (reads what the decoder left).
+
+        The decoder's helper thread reads the file ahead of us, so it is stopped
+        first: only then is this thread the file's single reader, in order.
+        """
         assert self._hasher is not None
+        self._close_stream()
         return self._hasher.finish()
+
+    def _close_stream(self) -> None:
+        stream, self._stream = self._stream, None
+        if stream is not None and stream is not self._hasher:
+            with contextlib.suppress(*_GZIP_ERRORS):
+                stream.close()
 
 
 def patched_prefix(
