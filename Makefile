@@ -28,3 +28,4 @@ clean:
 
 bench: $(STAMP)
 	$(PY) benchmarks/bench_audit.py --sizes 500,2000 --out bench-results/audit.json
+	$(PY) benchmarks/bench_correct.py --volumes 600 --repeat 5 --out bench-results/correct.json

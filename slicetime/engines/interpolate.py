@@ -47,13 +47,18 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
-import scipy.fft
-from scipy.interpolate import CubicSpline
 
 #: series processed together; bounds the temporaries of every engine
 BLOCK_ROWS = 4096
 
 SINC_HALF_WIDTH = 8
+
+
+def _fft() -> Any:
+    """scipy.fft, imported on first use (it is a large import; see ``prepare``)."""
+    import scipy.fft
+
+    return scipy.fft
 
 
 class IrregularGridError(ValueError):
@@ -131,18 +136,30 @@ def _with_trend(
 def _fourier_core(
     x: np.ndarray, sample_times: np.ndarray, target_times: np.ndarray, workers: int
 ) -> np.ndarray:
+    """Phase ramp on the mirrored series, computed as cosine and sine transforms.
+
+    The mirrored series ``x[0..n-1], x[n-1..0]`` has a 2n-periodic Fourier series
+    whose terms are exactly the DCT-II basis (its Nyquist term is zero), so
+    ``x(m + d) = idct(c_k cos(pi k d / n)) - idst(c_k sin(pi k d / n))`` with
+    ``c = dct(x)``: the same result as an FFT of the mirrored series, without
+    building it and with transforms of length n instead of 2n.
+    """
     shift = regular_shift(sample_times, target_times)
     n = x.shape[1]
-    length = 2 * n
-    k = np.arange(n + 1, dtype=np.float64)
-    ramp = np.exp(2j * np.pi * k * shift / length).astype(np.complex64)
+    angle = np.pi * np.arange(n, dtype=np.float64) * shift / n
+    cos_k = np.cos(angle).astype(np.float32)
+    sin_k = np.sin(angle[1:]).astype(np.float32)
 
     def transform(r: np.ndarray) -> np.ndarray:
-        mirrored = np.concatenate([r, r[:, ::-1]], axis=1)
-        spectrum = scipy.fft.rfft(mirrored, axis=1, workers=workers)
-        spectrum *= ramp
-        back = scipy.fft.irfft(spectrum, n=length, axis=1, workers=workers)
-        return np.ascontiguousarray(back[:, :n], dtype=np.float32)
+        fft = _fft()
+        coeffs = fft.dct(r, type=2, axis=1, workers=workers)
+        odd = np.empty_like(coeffs)
+        np.multiply(coeffs[:, 1:], sin_k, out=odd[:, :-1])
+        odd[:, -1] = 0.0
+        coeffs *= cos_k
+        out = fft.idct(coeffs, type=2, axis=1, workers=workers, overwrite_x=True)
+        out -= fft.idst(odd, type=2, axis=1, workers=workers, overwrite_x=True)
+        return out
 
     return _with_trend(x, shift, transform)
 
@@ -185,6 +202,8 @@ def _cubic_core(
     x: np.ndarray, sample_times: np.ndarray, target_times: np.ndarray, workers: int
 ) -> np.ndarray:
     del workers
+    from scipy.interpolate import CubicSpline  # imported here: only this method needs it
+
     spline = CubicSpline(sample_times, x.astype(np.float64), axis=1, bc_type="not-a-knot")
     return spline(target_times).astype(np.float32)
 
@@ -250,6 +269,15 @@ def get_engine(name: str) -> Engine:
         ) from None
 
 
+def prepare(engine: Engine) -> None:
+    """Import the libraries ``engine`` needs. Callers may run this in a thread
+    while the image is being read, so the import does not add to the wall time."""
+    if engine.name == "fourier":
+        _fft()
+    elif engine.name == "cubic":
+        import scipy.interpolate  # noqa: F401
+
+
 def _fill_gaps(row: np.ndarray, sample_times: np.ndarray) -> np.ndarray:
     good = np.isfinite(row)
     filled = row.copy()
@@ -265,12 +293,17 @@ def resample(
     *,
     workers: int = 1,
     stats: ResampleStats | None = None,
+    block_rows: int = BLOCK_ROWS,
+    overwrite: bool = False,
 ) -> np.ndarray:
     """Resample every row of ``series`` (float32, time last) to ``target_times``.
 
     Constant rows are copied; rows with non-finite samples are handled as the
-    module documentation says. Raises ``IrregularGridError`` when the engine
-    needs evenly spaced samples and the grid is not.
+    module documentation says. At most ``block_rows`` rows are transformed at
+    once, which bounds the engine's temporaries. With ``overwrite`` the result
+    may be written into ``series`` itself (when it is float32). Raises
+    ``IrregularGridError`` when the engine needs evenly spaced samples and the
+    grid is not.
     """
     if series.ndim != 2:
         raise ValueError("series must be 2-D (series, samples)")
@@ -281,33 +314,42 @@ def resample(
     if engine.needs_regular_grid:
         regular_shift(sample_times, target_times)  # refuse before any work
     x = np.asarray(series, dtype=np.float32)
-    out = x.copy()
+    out = x if overwrite and x is series else x.copy()
     stats = stats if stats is not None else ResampleStats()
-    finite = np.isfinite(x)
-    all_finite = finite.all(axis=1)
-    none_finite = ~finite.any(axis=1)
+    # min and max propagate NaN and keep inf, so one pass over the data finds the
+    # rows that are finite (both finite) and, among them, the constant ones
     with np.errstate(invalid="ignore"):
-        constant = all_finite & (x.max(axis=1) == x.min(axis=1))
-    partial = ~all_finite & ~none_finite
-    # a series with a single finite sample is constant for every purpose
-    if partial.any():
-        singles = partial & (finite.sum(axis=1) < 2)
-        partial &= ~singles
-        out[singles] = np.where(finite[singles], x[singles], np.nan)
+        low, high = x.min(axis=1), x.max(axis=1)
+    all_finite = np.isfinite(low) & np.isfinite(high)
+    constant = all_finite & (low == high)
+    partial = np.zeros_like(all_finite)
+    none_finite = np.zeros_like(all_finite)
+    suspects = np.flatnonzero(~all_finite)
+    finite = np.isfinite(x[suspects])
+    counts = finite.sum(axis=1)
+    none_finite[suspects[counts == 0]] = True
+    partial[suspects[counts >= 2]] = True
+    singles = suspects[counts == 1]  # one finite sample: constant for every purpose
+    if singles.size:
+        out[singles] = np.where(finite[counts == 1], x[singles], np.nan)
     stats.constant += int(constant.sum())
     stats.partial_nonfinite += int(partial.sum())
     stats.all_nonfinite += int(none_finite.sum())
 
     work = np.flatnonzero(all_finite & ~constant)
-    for start in range(0, work.size, BLOCK_ROWS):
-        rows = work[start : start + BLOCK_ROWS]
+    if work.size == x.shape[0] and work.size <= block_rows:
+        out[...] = engine.core(x, sample_times, target_times, workers)
+        return out
+    for start in range(0, work.size, block_rows):
+        rows = work[start : start + block_rows]
         out[rows] = engine.core(x[rows], sample_times, target_times, workers)
     gaps = np.flatnonzero(partial)
-    for start in range(0, gaps.size, BLOCK_ROWS):
-        rows = gaps[start : start + BLOCK_ROWS]
+    for start in range(0, gaps.size, block_rows):
+        rows = gaps[start : start + block_rows]
         filled = np.stack([_fill_gaps(x[r], sample_times) for r in rows])
         done = engine.core(filled, sample_times, target_times, workers)
-        done[~finite[rows]] = x[rows][~finite[rows]]
+        bad = ~np.isfinite(x[rows])
+        done[bad] = x[rows][bad]
         out[rows] = done
     return out
 
@@ -320,6 +362,7 @@ __all__ = [
     "IrregularGridError",
     "ResampleStats",
     "get_engine",
+    "prepare",
     "regular_shift",
     "resample",
     "sinc_weights",

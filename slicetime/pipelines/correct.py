@@ -28,6 +28,7 @@ import json
 import math
 import os
 import re
+import threading
 import time
 from collections.abc import Iterator, Sequence
 from dataclasses import dataclass, field
@@ -42,6 +43,7 @@ from slicetime.engines.interpolate import (
     IrregularGridError,
     ResampleStats,
     get_engine,
+    prepare,
     resample,
 )
 from slicetime.engines.plan import PlanError, ReferenceChoice, ResamplingPlan, make_plan
@@ -219,48 +221,73 @@ class Budget:
     on_disk: bool
     volumes_per_batch: int
     rows_per_block: int
+    threads: int = 1
+
+
+#: float32-sized temporaries per sample of a series inside an engine (upper bound,
+#: the cubic spline's float64 coefficients included)
+_ENGINE_COPIES = 14
+#: voxels resampled together: small enough that a block's copies stay in cache
+BLOCK_VOXELS = 256
 
 
 def plan_budget(
-    n_slices: int, n_volumes: int, plane: int, stored_itemsize: int, cap: int | None, shown: str
+    n_slices: int,
+    n_volumes: int,
+    plane: int,
+    stored_itemsize: int,
+    cap: int | None,
+    shown: str,
+    threads: int = 1,
 ) -> Budget:
+    """Batch sizes for a run, from the memory cap (None: no cap, everything in memory).
+
+    Accounted: the slice-major buffer (unless it goes to a scratch file), a batch of
+    stored volumes plus its float32 copy on the way in and out, and per engine
+    thread one slice (twice when it comes from a scratch file) and the engine's
+    temporaries for one block of voxels.
+    """
     volume_voxels = n_slices * plane
-    if cap is None:
-        batch = max(1, min(n_volumes, (16 << 20) // max(1, volume_voxels * 4)))
-        return Budget(False, batch, 4096)
-    slice_bytes = n_volumes * plane * 4
-    buffer_bytes = slice_bytes * n_slices
-    # per volume in a batch: stored bytes + float32 + the output copy
     per_volume = volume_voxels * (stored_itemsize + 8)
-    if buffer_bytes + 4 * slice_bytes + per_volume <= cap:  # all fits: no scratch file
-        batch = max(1, min(n_volumes, (cap - buffer_bytes - 4 * slice_bytes) // per_volume, 64))
-        return Budget(False, int(batch), 4096)
-    need = 5 * slice_bytes + per_volume
+    slice_bytes = n_volumes * plane * 4
+    per_voxel = n_volumes * 4 * _ENGINE_COPIES
+    block_bytes = min(BLOCK_VOXELS, plane) * per_voxel
+    if cap is None:
+        batch = max(1, min(n_volumes, (16 << 20) // max(1, per_volume)))
+        return Budget(False, batch, BLOCK_VOXELS, threads)
+    buffer_bytes = slice_bytes * n_slices
+    engine_bytes = threads * block_bytes
+    if buffer_bytes + max(engine_bytes, 4 * per_volume) <= cap:  # all fits: no scratch file
+        batch = max(1, min(n_volumes, (cap - buffer_bytes) // per_volume, 64))
+        return Budget(False, int(batch), BLOCK_VOXELS, threads)
+    smallest_block = 16
+    need = max(2 * slice_bytes + smallest_block * per_voxel, per_volume)
     if cap < need:
         raise CorrectionError(
             f"{shown}: --max-memory {size_text(cap)} is too small for this run; one slice's "
             f"series need about {size_text(need)}"
         )
-    batch = max(1, min(n_volumes, (cap - 4 * slice_bytes) // per_volume, 256))
-    # engine temporaries: about 10 float32 values per sample and series
-    rows = max(64, min(4096, (cap - 4 * slice_bytes) // max(1, 40 * n_volumes)))
-    return Budget(True, int(batch), int(rows))
-
-
+    batch = max(1, min(n_volumes, cap // per_volume, 256))
+    rows = max(smallest_block, min(BLOCK_VOXELS, (cap - 2 * slice_bytes) // per_voxel))
+    return Budget(True, int(batch), int(rows), 1)
 
 
 class _MemoryBuffer:
+    """The run as ``(slice, volume, in-plane voxel)`` float32, in memory."""
+
     def __init__(self, n_slices: int, n_volumes: int, plane: int) -> None:
         self.array = np.empty((n_slices, n_volumes, plane), dtype=np.float32)
 
-    def put_volumes(self, first: int, block: np.ndarray) -> None:
-        self.array[:, first : first + block.shape[1], :] = block
+    def put_volumes(self, first: int, block: np.ndarray, scale: tuple[float, float] | None):
+        """Store ``block`` (slice, volume, plane; any type) scaled to float32."""
+        _store_scaled(self.array[:, first : first + block.shape[1], :], block, scale)
 
-    def get_slices(self, slices: Sequence[int]) -> np.ndarray:
-        return self.array[list(slices)]
+    def get_slice(self, z: int) -> np.ndarray:
+        return self.array[z]
 
-    def put_slices(self, slices: Sequence[int], data: np.ndarray) -> None:
-        self.array[list(slices)] = data
+    def put_slice(self, z: int, data: np.ndarray) -> None:
+        if data is not self.array[z] and not np.may_share_memory(data, self.array[z]):
+            self.array[z] = data
 
     def get_volumes(self, first: int, count: int) -> np.ndarray:
         return self.array[:, first : first + count, :]
@@ -278,27 +305,36 @@ class _DiskBuffer:
         self.shape = (n_slices, n_volumes, plane)
         self._fd = os.open(path, os.O_RDWR | os.O_CREAT | os.O_EXCL, 0o600)
         os.ftruncate(self._fd, n_slices * n_volumes * plane * 4)
+        self._scratch: np.ndarray | None = None
 
     def _offset(self, z: int, v: int) -> int:
         _, n_volumes, plane = self.shape
         return (z * n_volumes + v) * plane * 4
 
-    def put_volumes(self, first: int, block: np.ndarray) -> None:
-        for z in range(block.shape[0]):
-            data = np.ascontiguousarray(block[z])
-            os.pwrite(self._fd, memoryview(data.reshape(-1).view(np.uint8)), self._offset(z, first))
+    def _write(self, data: np.ndarray, offset: int) -> None:
+        view = memoryview(np.ascontiguousarray(data).reshape(-1).view(np.uint8))
+        done = 0
+        while done < len(view):
+            done += os.pwrite(self._fd, view[done:], offset + done)
 
-    def get_slices(self, slices: Sequence[int]) -> np.ndarray:
+    def put_volumes(self, first: int, block: np.ndarray, scale: tuple[float, float] | None):
+        count = block.shape[1]
+        if self._scratch is None or self._scratch.shape[1] < count:
+            self._scratch = np.empty((self.shape[0], count, self.shape[2]), dtype=np.float32)
+        scaled = self._scratch[:, :count, :]
+        _store_scaled(scaled, block, scale)
+        for z in range(self.shape[0]):
+            self._write(scaled[z], self._offset(z, first))
+
+    def get_slice(self, z: int) -> np.ndarray:
+        self._scratch = None  # the batch scratch is not needed once the engine runs
         _, n_volumes, plane = self.shape
-        out = np.empty((len(slices), n_volumes, plane), dtype=np.float32)
-        for i, z in enumerate(slices):
-            _read_into(self._fd, out[i], self._offset(z, 0))
+        out = np.empty((n_volumes, plane), dtype=np.float32)
+        _read_into(self._fd, out, self._offset(z, 0))
         return out
 
-    def put_slices(self, slices: Sequence[int], data: np.ndarray) -> None:
-        for i, z in enumerate(slices):
-            block = np.ascontiguousarray(data[i])
-            os.pwrite(self._fd, memoryview(block.reshape(-1).view(np.uint8)), self._offset(z, 0))
+    def put_slice(self, z: int, data: np.ndarray) -> None:
+        self._write(data, self._offset(z, 0))
 
     def get_volumes(self, first: int, count: int) -> np.ndarray:
         n_slices, _, plane = self.shape
@@ -308,6 +344,7 @@ class _DiskBuffer:
         return out
 
     def close(self) -> None:
+        self._scratch = None
         os.close(self._fd)
         with contextlib.suppress(FileNotFoundError):
             os.unlink(self.path)
@@ -323,6 +360,43 @@ def _read_into(fd: int, target: np.ndarray, offset: int) -> None:
         got += n
 
 
+def _store_scaled(
+    target: np.ndarray, block: np.ndarray, scale: tuple[float, float] | None
+) -> None:
+    """``target[...] = block * slope + inter`` in float32, without a temporary."""
+    np.copyto(target, block, casting="unsafe")
+    if scale is not None:
+        slope, inter = scale
+        target *= np.float32(slope)
+        if inter:
+            target += np.float32(inter)
+
+
+def _keep_freed_memory() -> None:
+    """Let glibc reuse freed blocks up to 64 MiB instead of returning them to the
+    system after every slice: on virtual machines touching fresh pages costs
+    more than the transforms. Process-wide; the large buffer is still mapped
+    separately and returned when freed."""
+    try:
+        import ctypes
+
+        libc = ctypes.CDLL("libc.so.6")
+        libc.mallopt(-3, 64 << 20)  # M_MMAP_THRESHOLD
+        libc.mallopt(-1, 128 << 20)  # M_TRIM_THRESHOLD
+    except (OSError, AttributeError):  # pragma: no cover - not glibc
+        pass
+
+
+def _release_memory() -> None:
+    """Hand freed heap memory back to the system (glibc), so a memory cap holds."""
+    try:
+        import ctypes
+
+        ctypes.CDLL("libc.so.6").malloc_trim(0)
+    except (OSError, AttributeError):  # pragma: no cover - not glibc
+        pass
+
+
 # ---------------------------------------------------------------------------
 # one run
 
@@ -332,56 +406,43 @@ def _c_axis(axis_index: int) -> int:
     return 3 - axis_index
 
 
-def _to_slice_major(batch: np.ndarray, axis_index: int, scale: tuple[float, float] | None):
-    """``(volume, k, j, i)`` stored values → ``(slice, volume, plane)`` float32."""
+def _slice_major_view(batch: np.ndarray, axis_index: int) -> np.ndarray:
+    """``(volume, k, j, i)`` → ``(slice, volume, plane)`` (a view unless the axis is j)."""
     moved = np.moveaxis(batch, _c_axis(axis_index), 0)
-    n_slices, count = moved.shape[0], moved.shape[1]
-    out = np.empty((n_slices, count, moved[0, 0].size), dtype=np.float32)
-    target = out.reshape(moved.shape)
-    if scale is None:
-        target[...] = moved
-    else:
-        slope, inter = scale
-        np.multiply(moved, np.float32(slope), out=target, casting="unsafe")
-        if inter:
-            target += np.float32(inter)
-    return out
+    return moved.reshape(moved.shape[0], moved.shape[1], -1)
 
 
-def _from_slice_major(block: np.ndarray, axis_index: int, spatial_c: tuple[int, ...]):
-    """``(slice, volume, plane)`` → ``(volume, k, j, i)`` (a view when possible)."""
-    c_axis = _c_axis(axis_index)
-    others = [d for i, d in enumerate(spatial_c) if i != c_axis - 1]
-    shaped = block.reshape(block.shape[0], block.shape[1], *others)
-    return np.moveaxis(shaped, 0, c_axis)
+def _volume_major_target(out: np.ndarray, axis_index: int) -> np.ndarray:
+    """A writable ``(slice, volume, o1, o2)`` view of a ``(volume, k, j, i)`` array."""
+    return np.moveaxis(out, _c_axis(axis_index), 0)
 
 
 @dataclass
 class _Cast:
-    """float32 → the output type, counting clipped values."""
+    """float32 → the output type into a reused batch array, counting clipped values."""
 
     dtype: np.dtype[Any]
     scale: tuple[float, float] | None
     clipped: int = 0
     nonfinite: int = 0
 
-    def __call__(self, values: np.ndarray) -> np.ndarray:
+    def __call__(self, target: np.ndarray, values: np.ndarray) -> None:
         if self.dtype.kind == "f":
-            return values.astype(self.dtype, order="C")
-        data = values
+            np.copyto(target, values, casting="unsafe")
+            return
+        data = values.astype(np.float64)
         if self.scale is not None:
             slope, inter = self.scale
-            data = (values - np.float32(inter)) / np.float32(slope)
+            data = (data - inter) / slope
         info = np.iinfo(self.dtype)
         bad = ~np.isfinite(data)
         if bad.any():
             self.nonfinite += int(bad.sum())
-            data = np.where(bad, 0, data)
-        rounded = np.rint(data)
-        low, high = rounded < info.min, rounded > info.max
-        self.clipped += int(low.sum() + high.sum())
-        np.clip(rounded, info.min, info.max, out=rounded)
-        return rounded.astype(self.dtype, order="C")
+            data[bad] = 0.0
+        np.rint(data, out=data)
+        self.clipped += int(np.count_nonzero(data < info.min) + np.count_nonzero(data > info.max))
+        np.clip(data, info.min, info.max, out=data)
+        np.copyto(target, data, casting="unsafe")
 
 
 def _engine_pass(
@@ -389,30 +450,44 @@ def _engine_pass(
     plan: ResamplingPlan,
     engine: Engine,
     budget: Budget,
-    workers: int,
     stats: ResampleStats,
 ) -> None:
+    """Resample every slice that is not already at the reference, one slice per task
+    (slices run in ``budget.threads`` threads: the transforms release the GIL)."""
     targets = plan.target_times()
-    step = 1
-    for group in plan.groups:
-        if abs(group.shift) < 1e-9:
-            continue  # already at the reference
+    tasks = [(g, z) for g in plan.groups if abs(g.shift) >= 1e-9 for z in g.slices]
+
+    def work(task: tuple[Any, int]) -> ResampleStats:
+        group, z = task
+        local = ResampleStats()
         samples = plan.sample_times(group)
-        slices = group.slices
-        for start in range(0, len(slices), step):
-            part = slices[start : start + step]
-            data = buffer.get_slices(part)  # (slice, volume, plane)
-            series = np.ascontiguousarray(data.transpose(0, 2, 1)).reshape(-1, data.shape[1])
-            del data
-            done = np.empty_like(series)
-            for row in range(0, series.shape[0], budget.rows_per_block):
-                rows = slice(row, row + budget.rows_per_block)
-                done[rows] = resample(
-                    engine, series[rows], samples, targets, workers=workers, stats=stats
-                )
-            del series
-            back = done.reshape(len(part), -1, plan.n_volumes).transpose(0, 2, 1)
-            buffer.put_slices(part, back)
+        view = buffer.get_slice(z)  # (volume, plane)
+        step = budget.rows_per_block
+        # one block of voxels at a time, transposed so time is contiguous: the block's
+        # copies and the engine's temporaries stay in the processor's cache
+        for start in range(0, view.shape[1], step):
+            block = view[:, start : start + step]
+            with np.errstate(invalid="ignore"):
+                if bool(np.all(block.min(axis=0) == block.max(axis=0))):
+                    local.constant += block.shape[1]  # background: nothing to move
+                    continue
+            series = np.ascontiguousarray(block.T)
+            done = resample(
+                engine, series, samples, targets, workers=1, stats=local, overwrite=True
+            )
+            block[...] = done.T
+        buffer.put_slice(z, view)
+        return local
+
+    if budget.threads > 1 and len(tasks) > 1:
+        from concurrent.futures import ThreadPoolExecutor
+
+        with ThreadPoolExecutor(max_workers=budget.threads) as pool:
+            for local in pool.map(work, tasks):
+                stats.add(local)
+    else:
+        for task in tasks:
+            stats.add(work(task))
 
 
 def _hash_inputs(record: RunRecord, image_sha: str | None) -> dict[str, Any]:
@@ -588,32 +663,55 @@ def _correct(
             return
 
     spatial = tuple(header.shape[:3])
+    n_volumes = header.shape[3]
     plane = math.prod(spatial) // axis_length
     budget = plan_budget(
-        axis_length, header.shape[3], plane, _stored_itemsize(header), options.max_memory,
+        axis_length,
+        n_volumes,
+        plane,
+        _stored_itemsize(header),
+        options.max_memory,
         record.path,
+        threads=max(1, options.threads),
     )
     scale = scaling(header)
     tmp_image = _temp_path(image_out)
     stats = ResampleStats()
     buffer: _MemoryBuffer | _DiskBuffer | None = None
     writer: VolumeWriter | None = None
+    spatial_c = tuple(reversed(spatial))
+    # the engine's imports load in a thread while the decompressor fills the buffer
+    warm_up = threading.Thread(target=prepare, args=(engine,), daemon=True)
+    warm_up.start()
     try:
         with VolumeReader(
             Path(record.abs_path), header, record.path, threads=options.threads
         ) as reader:
             if budget.on_disk:
                 scratch = options.out / f"{TEMP_PREFIX}{os.getpid()}-scratch.f32"
-                buffer = _DiskBuffer(scratch, axis_length, header.shape[3], plane)
+                buffer = _DiskBuffer(scratch, axis_length, n_volumes, plane)
             else:
-                buffer = _MemoryBuffer(axis_length, header.shape[3], plane)
-            for first, batch in reader.batches(budget.volumes_per_batch):
-                buffer.put_volumes(first, _to_slice_major(batch, plan.axis_index, scale))
+                buffer = _MemoryBuffer(axis_length, n_volumes, plane)
+            batch = np.empty((budget.volumes_per_batch, *spatial_c), dtype=reader.dtype)
+            for first in range(0, n_volumes, budget.volumes_per_batch):
+                count = min(budget.volumes_per_batch, n_volumes - first)
+                reader.read_into(batch[:count])
+                buffer.put_volumes(first, _slice_major_view(batch[:count], plan.axis_index),
+                                   scale)
+            del batch
             prefix = reader.prefix
             image_sha = reader.sha256()
-        _engine_pass(buffer, plan, engine, budget, max(1, options.threads), stats)
+            stored_dtype = reader.dtype
+        if budget.on_disk:
+            _release_memory()
+        else:
+            _keep_freed_memory()
+        warm_up.join()
+        _engine_pass(buffer, plan, engine, budget, stats)
+        if budget.on_disk:
+            _release_memory()
 
-        out_dtype, code, bitpix, out_scale = _output_type(header, reader.dtype, options.keep_dtype)
+        out_dtype, code, bitpix, out_scale = _output_type(header, stored_dtype, options.keep_dtype)
         cast = _Cast(out_dtype, out_scale)
         slope, inter = out_scale if out_scale is not None else (1.0, 0.0)
         new_prefix = patched_prefix(
@@ -622,11 +720,16 @@ def _correct(
         writer = VolumeWriter(
             tmp_image, new_prefix, compress=header.compressed, threads=options.threads
         )
-        spatial_c = tuple(reversed(spatial))
-        for first in range(0, header.shape[3], budget.volumes_per_batch):
-            count = min(budget.volumes_per_batch, header.shape[3] - first)
-            block = buffer.get_volumes(first, count)
-            writer.write(cast(_from_slice_major(block, plan.axis_index, spatial_c)))
+        others = [d for i, d in enumerate(spatial_c) if i != _c_axis(plan.axis_index) - 1]
+        outgoing = np.empty((budget.volumes_per_batch, *spatial_c), dtype=out_dtype)
+        for first in range(0, n_volumes, budget.volumes_per_batch):
+            count = min(budget.volumes_per_batch, n_volumes - first)
+            block = buffer.get_volumes(first, count).reshape(axis_length, count, *others)
+            target = outgoing[:count]
+            cast(_volume_major_target(target, plan.axis_index), block)
+            del block
+            writer.write(target)
+        del outgoing
         writer.close()
         output_sha = writer.sha256()
         writer = None

@@ -255,11 +255,19 @@ class VolumeReader:
     def read(self, count: int) -> np.ndarray:
         count = min(count, self.n_volumes - self._done)
         out = np.empty((count, *reversed(self.spatial)), dtype=self.dtype)
+        self.read_into(out)
+        return out
+
+    def read_into(self, out: np.ndarray) -> None:
+        """Fill ``out`` (C-contiguous, ``(count, k, j, i)`` of ``self.dtype``) with the
+        next ``count`` volumes; reusing one array avoids fresh pages per batch."""
+        count = out.shape[0]
+        if count > self.n_volumes - self._done or not out.flags.c_contiguous:
+            raise ValueError("read_into needs a contiguous array within the remaining volumes")
         first = self._done
         what = f"volumes {first} to {first + count - 1}"
         self._fill(memoryview(out.reshape(-1).view(np.uint8)), what)
         self._done += count
-        return out
 
     def batches(self, count: int) -> Iterator[tuple[int, np.ndarray]]:
         """``(first volume index, volumes)`` until the image is read."""
