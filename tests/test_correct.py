@@ -371,7 +371,7 @@ def test_force_never_invents_missing_timing(dataset: Path, tmp_path: Path) -> No
     result = run_cli("correct", dataset, "--out", out, "--force")
     assert result.exit_code == 1
     assert "no usable slice timing" in result.output
-    assert not any(p.is_file() for p in out.rglob("*")) if out.exists() else True
+    assert not out.exists()
 
 
 @pytest.mark.parametrize("shape", [(5, 4, 8), (5, 4, 8, 6, 2)])
@@ -458,6 +458,20 @@ def test_truncated_and_corrupt_images_fail_cleanly(dataset: Path, tmp_path: Path
     leftovers = [p for p in out.rglob("*") if p.name.startswith(".slicetime-partial-")]
     assert leftovers == []
     assert good.exists()
+    # nothing at all is left for the failed runs, not even their folders
+    assert not (out / "sub-02").exists() and not (out / "sub-03").exists()
+    assert "Traceback" not in result.output
+    for line in result.output.splitlines():
+        if line.startswith("failed"):
+            assert any(rel in line for rel in (short_rel, bad_rel))
+
+
+def test_a_batch_that_writes_nothing_leaves_no_output_folder(dataset: Path, tmp_path: Path):
+    write_run(dataset, REL, shape=SHAPE, tr=TR, sidecar={"RepetitionTime": TR, "TaskName": "x"})
+    out = tmp_path / "never"
+    result = run_cli("correct", dataset, "--out", out)
+    assert result.exit_code == 1
+    assert not out.exists()
 
 
 def test_an_interrupted_batch_leaves_nothing_half_written_and_resumes(

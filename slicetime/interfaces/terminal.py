@@ -217,5 +217,7 @@ def render_correct(result: CorrectResult, console: Console) -> None:
     parts = [f"{counts[k]} {k}" for k in ("corrected", "up-to-date", "refused", "failed")
              if counts[k]]
     total = len(result.runs)
+    where = (f"outputs in {xml_safe(result.out)}" if any(r.ok for r in result.runs)
+             else "nothing was written")
     console.print(Text(f"\n{total} run{'s' if total != 1 else ''}: "
-                       f"{', '.join(parts) or 'nothing to do'}; outputs in {xml_safe(result.out)}"))
+                       f"{', '.join(parts) or 'nothing to do'}; {where}"))

@@ -592,7 +592,7 @@ def _refusal(run: RunResult, force: bool) -> tuple[str | None, list[Finding], li
     errors = [f for f in run.findings if f.severity is Severity.ERROR]
     if record.header is None:
         first = errors[0].message if errors else "the image header cannot be read"
-        return first, errors, []
+        raise CorrectionError(first)
     if record.schedule is None:
         why = "; ".join(p.message for p in record.timing_problems) or "no slice timing found"
         return f"{record.path}: no usable slice timing ({why})", errors, []
@@ -613,6 +613,7 @@ def _correct(
     run: RunResult, options: CorrectOptions, dataset_name: str, outcome: RunOutcome
 ) -> None:
     record = run.record
+    outcome.blocking = [f for f in run.findings if f.severity is Severity.ERROR]
     reason, blocking, warnings = _refusal(run, options.force)
     outcome.blocking = blocking
     outcome.warnings.extend(warnings)
@@ -924,6 +925,7 @@ def correct_paths(
     ]
     names = _dataset_names(roots)
     _refuse_collisions(audit.runs)
+    created_out = not options.out.exists()
     options.out.mkdir(parents=True, exist_ok=True)
     remove_stale_temporaries(options.out)
     items = [(run, names[run.record.root]) for run in audit.runs]
@@ -932,7 +934,26 @@ def correct_paths(
     if any(r.ok for r in result.runs):
         _write_description(options.out, roots, names, options)
         _write_provenance(options.out, result.runs)
+    _prune_empty_folders(options.out, result.runs, remove_out=created_out)
     return result
+
+
+def _prune_empty_folders(out: Path, runs: Sequence[RunOutcome], *, remove_out: bool) -> None:
+    """Remove the folders made for runs that produced nothing, so a failed batch
+    leaves nothing behind (and ``out`` itself when this batch created it)."""
+    for run in runs:
+        if run.ok or run.output is None:
+            continue
+        folder = (out / run.output).parent
+        while folder != out and out in folder.parents:
+            try:
+                folder.rmdir()
+            except OSError:
+                break  # not empty (other outputs live there) or already gone
+            folder = folder.parent
+    if remove_out:
+        with contextlib.suppress(OSError):
+            out.rmdir()
 
 
 def _refuse_collisions(runs: Sequence[RunResult]) -> None:

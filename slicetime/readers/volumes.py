@@ -239,7 +239,8 @@ class VolumeReader:
                 "file/truncated",
                 self.shown,
                 None,
-                f"{self.shown}: the compressed data is damaged while reading {what} ({exc})",
+                f"{self.shown}: the gzip-compressed image data is damaged ({exc})",
+                evidence={"while_reading": what},
             ) from None
         except OSError as exc:
             raise os_error(exc, self.shown, what="NIfTI file") from None
