@@ -547,3 +547,51 @@ def test_input_checksum_is_exact_for_a_large_compressed_run(tmp_path: Path) -> N
     # the volumes come back in file order: (volume, k, j, i) is the NIfTI layout
     stacked = np.concatenate(volumes)
     assert np.array_equal(stacked, np.transpose(data, (3, 2, 1, 0)))
+
+
+def test_stale_temporaries_are_removed_but_not_a_running_batchs(tmp_path: Path) -> None:
+    # common practice (no source): a pid that no longer runs owns nothing
+    out = tmp_path / "out"
+    (out / "sub-01").mkdir(parents=True)
+    dead = out / "sub-01" / f"{correct_module.TEMP_PREFIX}999999999-x_bold.nii.gz"
+    mine = out / f"{correct_module.TEMP_PREFIX}{os.getpid()}-scratch.f32"
+    alive = out / f"{correct_module.TEMP_PREFIX}1-y_bold.json"  # pid 1 always runs
+    for path in (dead, mine, alive):
+        path.write_bytes(b"partial")
+    assert correct_module.remove_stale_temporaries(out) == 2
+    assert not dead.exists() and not mine.exists() and alive.exists()
+
+
+def test_header_extensions_and_reference_slice(dataset: Path, tmp_path: Path) -> None:
+    # nibabel as the reference: NIfTI extensions are copied byte for byte
+    path, array_times = build_run(dataset, REL, interleaved(8))
+    image = nib.load(path)
+    image.header.extensions.append(nib.nifti1.Nifti1Extension(6, b"invented comment 1234"))
+    nib.save(nib.Nifti1Image(np.asarray(image.dataobj), image.affine, image.header), path)
+    out = tmp_path / "out"
+    result = run_cli("correct", dataset, "--out", out, "--reference", "slice:3")
+    assert result.exit_code == 0, result.output
+    after = nib.load(output_of(out, REL))
+    assert [e.get_content() for e in after.header.extensions] == [b"invented comment 1234"]
+    # slice 3 is the reference, so it is unchanged and every other slice matches it
+    before = np.asarray(nib.load(path).dataobj)
+    data = np.asarray(after.dataobj)
+    np.testing.assert_array_equal(data[:, :, 3, :], before[:, :, 3, :])
+    assert interior_error(output_of(out, REL), truth_at(SHAPE, float(array_times[3]))) < 0.2
+
+
+def test_the_lab_policy_decides_what_blocks(dataset: Path, tmp_path: Path) -> None:
+    # a lab that has judged a header disagreement harmless lowers its severity in the
+    # policy; the audit gate then lets the run through without --force
+    build_run(dataset, REL, interleaved(8))
+    image = nib.load(dataset / REL)
+    image.header.set_zooms((1.0, 1.0, 1.0, 3.0))
+    nib.save(nib.Nifti1Image(np.asarray(image.dataobj), image.affine, image.header),
+             dataset / REL)
+    policy = tmp_path / "policy.toml"
+    policy.write_text('version = 1\n\n[severity]\n"header/tr-mismatch" = "warning"\n')
+    out = tmp_path / "out"
+    assert run_cli("correct", dataset, "--out", out).exit_code == 1
+    result = run_cli("correct", dataset, "--out", out, "--policy", policy)
+    assert result.exit_code == 0, result.output
+    assert "corrected despite" not in result.output

@@ -875,14 +875,32 @@ def _recorded_provenance(image: Path) -> dict[str, Any] | None:
         return None
 
 
+def _owner_alive(name: str) -> bool:
+    """Whether the process that named a temporary file (by its pid) still runs."""
+    pid_text = name[len(TEMP_PREFIX) :].split("-", 1)[0]
+    if not pid_text.isdigit():
+        return False
+    pid = int(pid_text)
+    if pid == os.getpid():
+        return False
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True
+    return True
+
+
 def remove_stale_temporaries(out: Path) -> int:
-    """Delete temporary files an interrupted earlier batch left under ``out``."""
+    """Delete temporary files an interrupted earlier batch left under ``out``
+    (not those of a batch that is still running)."""
     removed = 0
     if not out.is_dir():
         return 0
     for dirpath, _dirs, files in os.walk(out):
         for name in files:
-            if name.startswith(TEMP_PREFIX):
+            if name.startswith(TEMP_PREFIX) and not _owner_alive(name):
                 with contextlib.suppress(FileNotFoundError):
                     os.unlink(os.path.join(dirpath, name))
                     removed += 1
