@@ -347,14 +347,18 @@ def test_runs_with_timing_errors_are_refused_unless_forced(dataset: Path, tmp_pa
     assert not output_of(out, REL).exists()
 
 
+def run_with_header_tr(root: Path, header_tr: float) -> None:
+    """A good run whose header pixdim[4] says ``header_tr`` (the sidecar says TR)."""
+    build_run(root, REL, interleaved(8))
+    image = nib.load(root / REL)
+    image.header.set_zooms((1.0, 1.0, 1.0, header_tr))
+    nib.save(nib.Nifti1Image(np.asarray(image.dataobj), image.affine, image.header), root / REL)
+
+
 def test_force_overrides_a_header_disagreement(dataset: Path, tmp_path: Path) -> None:
     # the header's pixdim[4] disagrees with RepetitionTime: an audit error that a
     # person may judge harmless (BIDS: RepetitionTime must agree with pixdim[4])
-    build_run(dataset, REL, interleaved(8))
-    image = nib.load(dataset / REL)
-    image.header.set_zooms((1.0, 1.0, 1.0, 3.0))
-    nib.save(nib.Nifti1Image(np.asarray(image.dataobj), image.affine, image.header),
-             dataset / REL)
+    run_with_header_tr(dataset, 3.0)
     out = tmp_path / "out"
     refused = run_cli("correct", dataset, "--out", out)
     assert refused.exit_code == 1 and "header/tr-mismatch" in refused.output
@@ -583,11 +587,7 @@ def test_header_extensions_and_reference_slice(dataset: Path, tmp_path: Path) ->
 def test_the_lab_policy_decides_what_blocks(dataset: Path, tmp_path: Path) -> None:
     # a lab that has judged a header disagreement harmless lowers its severity in the
     # policy; the audit gate then lets the run through without --force
-    build_run(dataset, REL, interleaved(8))
-    image = nib.load(dataset / REL)
-    image.header.set_zooms((1.0, 1.0, 1.0, 3.0))
-    nib.save(nib.Nifti1Image(np.asarray(image.dataobj), image.affine, image.header),
-             dataset / REL)
+    run_with_header_tr(dataset, 3.0)
     policy = tmp_path / "policy.toml"
     policy.write_text('version = 1\n\n[severity]\n"header/tr-mismatch" = "warning"\n')
     out = tmp_path / "out"
