@@ -30,7 +30,7 @@ import os
 import re
 import threading
 import time
-from collections.abc import Iterator, Sequence
+from collections.abc import Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -991,13 +991,6 @@ class _ChunkJob:
 
     def __call__(self, items: Sequence[tuple[RunResult, str]]) -> list[RunOutcome]:
         return _correct_chunk(items, self.options)
-
-
-def iter_outputs(result: CorrectResult) -> Iterator[Path]:
-    out = Path(result.out)
-    for run in result.runs:
-        if run.output:
-            yield out / run.output
 
 
 __all__ = [
