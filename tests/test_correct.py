@@ -495,8 +495,10 @@ def test_an_interrupted_batch_leaves_nothing_half_written_and_resumes(
         real(*args, **kwargs)
 
     monkeypatch.setattr(correct_module, "_engine_pass", interrupt_second)
-    result = CliRunner().invoke(cli, ["correct", str(dataset), "--out", str(out)])
+    # one process, so the patched engine is the one that runs
+    result = CliRunner().invoke(cli, ["correct", str(dataset), "--out", str(out), "--jobs", "1"])
     assert result.exit_code == 130
+    assert "interrupted; 2 run(s) not finished" in result.output
     files = sorted(p.relative_to(out).as_posix() for p in out.rglob("*") if p.is_file())
     first = output_of(out, rels[0]).relative_to(out).as_posix()
     assert first in files

@@ -7,11 +7,12 @@ or a bad file never produces a traceback: it is one line on stderr.
 
 from __future__ import annotations
 
+import contextlib
 import functools
 import json
 import os
 import sys
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
 from pathlib import Path
 from typing import Any, TypeVar
 
@@ -109,6 +110,9 @@ def show(file: Path, as_json: bool) -> None:
 @click.option("--include-hidden", is_flag=True, help="Also audit hidden folders and files.")
 @click.option("--jobs", type=click.IntRange(min=1), default=None,
               help="Local worker processes (default: the CPUs available).")
+@click.option("--scheduler", metavar="ADDRESS",
+              help="Run on a Dask cluster: the address of its scheduler (tcp://host:8786). "
+              "Files must be on a file system the workers share.")
 @click.option("--policy", "policy_file", type=click.Path(path_type=Path, dir_okay=False),
               help="Lab policy (TOML). Default: slicetime-policy.toml at the dataset root.")
 @friendly
@@ -122,23 +126,23 @@ def audit(
     include_sourcedata: bool,
     include_hidden: bool,
     jobs: int | None,
+    scheduler: str | None,
     policy_file: Path | None,
 ) -> None:
     """Audit every run under PATHS (dataset roots, subject folders or run files)."""
     from slicetime.interfaces.report_json import audit_object, dumps
     from slicetime.interfaces.terminal import make_console, progress_reporter, render_audit
     from slicetime.pipelines.audit import audit_paths
-    from slicetime.pipelines.executor import available_cpus
 
-    with progress_reporter("auditing") as progress:
+    with _executor(jobs, scheduler) as executor, progress_reporter("auditing") as progress:
         result = audit_paths(
             list(paths),
             include_derivatives=include_derivatives,
             include_sourcedata=include_sourcedata,
             include_hidden=include_hidden,
-            jobs=jobs if jobs is not None else available_cpus(),
             progress=progress,
             policy_file=policy_file,
+            executor=executor,
         )
     root_given = str(paths[0]) if len(paths) == 1 else " ".join(str(p) for p in paths)
     if fmt == "json":
@@ -162,6 +166,28 @@ def audit(
         else:
             render_audit(result, make_console(), show_notes=not hide_notes)
     sys.exit(result.exit_code(fail_on))
+
+
+@contextlib.contextmanager
+def _executor(jobs: int | None, scheduler: str | None) -> Iterator[Any]:
+    """The executor the options ask for; a note on stderr of where the work ran."""
+    from slicetime.pipelines.executor import ExecutorError, make_executor
+
+    try:
+        executor = make_executor(jobs, scheduler)
+    except ExecutorError as exc:
+        raise UserError(str(exc)) from None
+    try:
+        yield executor
+    finally:
+        stats = executor.stats
+        if executor.name == "dask":
+            click.echo(f"slicetime: ran on {len(stats.workers)} Dask worker(s) of "
+                       f"{scheduler}", err=True)
+        if stats.retried_chunks:
+            click.echo(f"slicetime: {stats.retried_chunks} chunk(s) retried after a lost "
+                       f"worker, {stats.lost_items} run(s) lost twice", err=True)
+        executor.close()
 
 
 def _write_text(path: Path, text: str) -> None:
@@ -195,8 +221,12 @@ def _write_text(path: Path, text: str) -> None:
 @click.option("--max-memory", "max_memory", default=None, metavar="SIZE",
               help="Keep the working memory under SIZE (e.g. 512M, 2G); larger runs are "
               "buffered in a scratch file under --out.")
-@click.option("--jobs", type=click.IntRange(min=1), default=1, show_default=True,
-              help="Runs corrected at once in local processes (memory grows with each).")
+@click.option("--jobs", type=click.IntRange(min=1), default=None,
+              help="Runs corrected at once in local processes (default: the CPUs "
+              "available; memory grows with each).")
+@click.option("--scheduler", metavar="ADDRESS",
+              help="Run on a Dask cluster: the address of its scheduler (tcp://host:8786). "
+              "Inputs and --out must be on a file system the workers share.")
 @click.option("--policy", "policy_file", type=click.Path(path_type=Path, dir_okay=False),
               help="Lab policy (TOML) used by the audit that gates correction.")
 @click.option("--format", "fmt", type=click.Choice(["text", "json"]), default="text",
@@ -214,7 +244,8 @@ def correct(
     keep_dtype: bool,
     force: bool,
     max_memory: str | None,
-    jobs: int,
+    jobs: int | None,
+    scheduler: str | None,
     policy_file: Path | None,
     fmt: str,
     include_derivatives: bool,
@@ -231,8 +262,12 @@ def correct(
     from slicetime.engines.plan import ReferenceChoice
     from slicetime.interfaces.report_json import dumps
     from slicetime.interfaces.terminal import make_console, progress_reporter, render_correct
-    from slicetime.pipelines.correct import CorrectOptions, correct_paths, parse_size
-    from slicetime.pipelines.executor import available_cpus
+    from slicetime.pipelines.correct import (
+        CorrectInterrupted,
+        CorrectOptions,
+        correct_paths,
+        parse_size,
+    )
 
     try:
         choice = ReferenceChoice.parse(reference)
@@ -244,17 +279,20 @@ def correct(
             cap = parse_size(max_memory)
         except ValueError as exc:
             raise UserError(f"--max-memory: {exc}") from None
-    threads = max(1, available_cpus() // jobs)
     options = CorrectOptions(out=out, method=method, reference=choice, desc=desc,
-                             keep_dtype=keep_dtype, force=force, max_memory=cap,
-                             threads=threads)
-    with progress_reporter("correcting") as progress:
+                             keep_dtype=keep_dtype, force=force, max_memory=cap, threads=0)
+    with _executor(jobs, scheduler) as executor, progress_reporter("correcting") as progress:
         try:
             result = correct_paths(
-                list(paths), options, jobs=jobs, progress=progress, policy_file=policy_file,
+                list(paths), options, progress=progress, policy_file=policy_file,
                 include_derivatives=include_derivatives, include_sourcedata=include_sourcedata,
-                include_hidden=include_hidden,
+                include_hidden=include_hidden, executor=executor,
             )
+        except CorrectInterrupted as stop:
+            render_correct(stop.result, make_console(sys.stderr))
+            click.echo(f"slicetime: interrupted; {stop.not_finished} run(s) not finished "
+                       "(rerun the same command to finish them)", err=True)
+            sys.exit(130)
         except ValueError as exc:
             raise UserError(str(exc)) from None
         except OSError as exc:

@@ -3,17 +3,18 @@
 from __future__ import annotations
 
 import functools
+import os
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 
 from slicetime.model import Finding, RunRecord, Severity
-from slicetime.pipelines.executor import Progress, map_chunks
+from slicetime.pipelines.executor import Executor, Progress, map_chunks
 from slicetime.readers.dataset import find_root, iter_runs
 from slicetime.readers.errors import ReadError
 from slicetime.readers.inheritance import SidecarIndex
 from slicetime.readers.policy import POLICY_FILENAME, Policy, find_policy, load_policy
-from slicetime.readers.record import build_record
+from slicetime.readers.record import build_record, relative_display
 from slicetime.rules import RULES, check_dataset, check_run
 from slicetime.rules.policy import IgnoredFinding, apply_overrides_and_ignores, apply_policy
 
@@ -70,13 +71,44 @@ def audit_one(
 def audit_chunk(
     targets: Sequence[tuple[Path, Path]], policies: Mapping[Path, Policy | None] | None = None
 ) -> list[RunResult]:
-    """Audit neighbouring runs with one sidecar cache per dataset root."""
+    """Audit neighbouring runs with one sidecar cache per dataset root.
+
+    A bug while auditing one run becomes a ``batch/internal-error`` finding for
+    that run (set ``SLICETIME_DEBUG`` to get the traceback instead).
+    """
     indexes: dict[Path, SidecarIndex] = {}
     results = []
     for root, path in targets:
         index = indexes.setdefault(root, SidecarIndex(root))
-        results.append(audit_one(root, path, index, (policies or {}).get(root)))
+        try:
+            results.append(audit_one(root, path, index, (policies or {}).get(root)))
+        except Exception as exc:
+            if os.environ.get("SLICETIME_DEBUG"):
+                raise
+            results.append(
+                failed_run(root, path, "batch/internal-error", f"{type(exc).__name__}: {exc}")
+            )
     return results
+
+
+def failed_run(root: Path, path: Path, code: str, why: str) -> RunResult:
+    """The result for a run that could not be audited at all."""
+    shown = relative_display(path, root)
+    record = RunRecord(path=shown, abs_path=str(path), root=str(root))
+    message = (
+        f"{shown}: not audited, {why}"
+        if code == "batch/worker-lost"
+        else f"{shown}: the audit of this run failed ({why})"
+    )
+    return RunResult(record, [Finding(code, Severity.ERROR, message, shown)])
+
+
+def _lost_target(target: tuple[Path, Path], why: str) -> RunResult:
+    return failed_run(target[0], target[1], "batch/worker-lost", why)
+
+
+def _has_error(result: RunResult) -> bool:
+    return any(f.severity is Severity.ERROR for f in result.findings)
 
 
 def _policies(
@@ -110,6 +142,7 @@ def audit_paths(
     jobs: int = 1,
     progress: Progress | None = None,
     policy_file: Path | None = None,
+    executor: Executor | None = None,
 ) -> AuditResult:
     """Audit every run under ``paths``; raises ReadError only for a missing given path."""
     walk_problems: list[Finding] = []
@@ -127,7 +160,15 @@ def audit_paths(
     policies = _policies(sorted({root for root, _ in targets}), policy_file, walk_problems)
     result.policies = {str(r): p.file for r, p in policies.items() if p is not None}
     job = functools.partial(audit_chunk, policies=policies)
-    result.runs = map_chunks(job, targets, jobs=jobs, progress=progress)
+    result.runs = map_chunks(
+        job,
+        targets,
+        lost=_lost_target,
+        executor=executor,
+        jobs=jobs,
+        progress=progress,
+        failed_of=_has_error,
+    )
     result.dataset_findings.extend(walk_problems)
     per_run, overall = check_dataset([r.record for r in result.runs])
     for run in result.runs:
@@ -149,4 +190,4 @@ def audit_paths(
     return result
 
 
-__all__ = ["AuditResult", "ReadError", "RunResult", "audit_one", "audit_paths"]
+__all__ = ["AuditResult", "ReadError", "RunResult", "audit_one", "audit_paths", "failed_run"]

@@ -24,6 +24,7 @@ the engines get ``(voxel, volume)`` arrays with time contiguous.
 from __future__ import annotations
 
 import contextlib
+import dataclasses
 import json
 import math
 import os
@@ -49,7 +50,13 @@ from slicetime.engines.interpolate import (
 from slicetime.engines.plan import PlanError, ReferenceChoice, ResamplingPlan, make_plan
 from slicetime.model import Finding, RunRecord, Severity
 from slicetime.pipelines.audit import AuditResult, RunResult, audit_paths
-from slicetime.pipelines.executor import Progress, map_chunks
+from slicetime.pipelines.executor import (
+    Executor,
+    Interrupted,
+    Progress,
+    available_cpus,
+    map_chunks,
+)
 from slicetime.readers.entities import parse_name
 from slicetime.readers.errors import ReadError
 from slicetime.readers.nifti import size_text
@@ -99,7 +106,7 @@ class CorrectOptions:
     keep_dtype: bool = False
     force: bool = False
     max_memory: int | None = None
-    threads: int = 1  # FFT workers and gzip helper threads per run
+    threads: int = 1  # engine and gzip helper threads per run; 0: share the CPUs
 
     def settings(self, engine: Engine) -> dict[str, Any]:
         """What must match for an earlier output to be reused."""
@@ -917,6 +924,7 @@ def correct_paths(
     include_derivatives: bool = False,
     include_sourcedata: bool = False,
     include_hidden: bool = False,
+    executor: Executor | None = None,
 ) -> CorrectResult:
     """Correct every run under ``paths`` into ``options.out``.
 
@@ -947,13 +955,62 @@ def correct_paths(
     options.out.mkdir(parents=True, exist_ok=True)
     remove_stale_temporaries(options.out)
     items = [(run, names[run.record.root]) for run in audit.runs]
+    if options.threads <= 0:
+        options = dataclasses.replace(options, threads=_auto_threads(executor, jobs, len(items)))
     job = _ChunkJob(options)
-    result.runs = map_chunks(job, items, jobs=jobs, chunk_size=1, progress=progress)
+    try:
+        result.runs = map_chunks(
+            job,
+            items,
+            lost=_lost_run,
+            executor=executor,
+            jobs=jobs,
+            chunk_size=1,
+            progress=progress,
+            failed_of=lambda outcome: not outcome.ok,
+        )
+    except Interrupted as stop:
+        finished = [r for r in stop.results if r is not None]
+        result.runs = finished
+        _finish(options, roots, names, result, created_out)
+        raise CorrectInterrupted(result, len(items) - len(finished)) from None
+    _finish(options, roots, names, result, created_out)
+    return result
+
+
+def _auto_threads(executor: Executor | None, jobs: int, n_runs: int) -> int:
+    """Threads per run so that the runs corrected at once share the CPUs."""
+    if executor is not None and executor.name == "dask":
+        return 1  # a Dask worker runs as many tasks as it has threads
+    at_once = getattr(executor, "jobs", jobs) if executor is not None else jobs
+    return max(1, available_cpus() // max(1, min(at_once, n_runs)))
+
+
+class CorrectInterrupted(KeyboardInterrupt):
+    """Ctrl-C during a batch: ``result`` holds the runs that finished."""
+
+    def __init__(self, result: CorrectResult, not_finished: int) -> None:
+        super().__init__("interrupted")
+        self.result = result
+        self.not_finished = not_finished
+
+
+def _finish(
+    options: CorrectOptions,
+    roots: Sequence[str],
+    names: dict[str, str],
+    result: CorrectResult,
+    created_out: bool,
+) -> None:
     if any(r.ok for r in result.runs):
         _write_description(options.out, roots, names, options)
         _write_provenance(options.out, result.runs)
     _prune_empty_folders(options.out, result.runs, remove_out=created_out)
-    return result
+
+
+def _lost_run(item: tuple[RunResult, str], why: str) -> RunOutcome:
+    record = item[0].record
+    return RunOutcome(record.path, record.root, "failed", reason=f"{record.path}: {why}")
 
 
 def _prune_empty_folders(out: Path, runs: Sequence[RunOutcome], *, remove_out: bool) -> None:
@@ -997,6 +1054,7 @@ __all__ = [
     "DEFAULT_DESC",
     "PROVENANCE_FILE",
     "PROVENANCE_KEY",
+    "CorrectInterrupted",
     "CorrectOptions",
     "CorrectResult",
     "CorrectionError",

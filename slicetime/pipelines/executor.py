@@ -1,22 +1,52 @@
-"""Map a per-run job over many runs: serially or in local processes.
+"""Map a per-run job over many runs: serially, in local processes, or on Dask.
 
-Results come back in input order whichever executor ran them, so reports
-are deterministic. Work is sent in chunks of neighbouring runs, so that each
-worker's sidecar cache (one per chunk) serves runs that inherit the same
-files.
+One abstraction serves ``audit``, ``correct`` and ``fix``: a pipeline hands
+``map_chunks`` a picklable job (chunk of items → list of results), the items,
+and a ``lost`` function that turns an item whose worker died into a result
+(a finding or a failed outcome), so one bad worker never stops a batch.
+
+* Results come back in input order whichever executor ran them, so reports are
+  deterministic and identical between executors.
+* Work goes out in chunks of neighbouring items (the audit's sidecar cache is
+  per chunk); correction sends one run per chunk.
+* A chunk whose worker is lost (a crashed process, a vanished Dask worker) is
+  retried once; if it fails again, every item in it becomes ``lost(item, why)``.
+* Ctrl-C cancels what has not started, waits for nothing else, and raises
+  :class:`Interrupted` carrying the results that did finish.
+
+The Dask executor connects to a running ``distributed`` scheduler (files must
+be on a file system every worker sees); ``dask[distributed]`` is the optional
+``slicetime[dask]`` extra and is imported only when used.
 """
 
 from __future__ import annotations
 
 import os
+import time
 from collections.abc import Callable, Sequence
-from concurrent.futures import ProcessPoolExecutor, as_completed
-from typing import TypeVar
+from concurrent.futures import FIRST_COMPLETED, Future, ProcessPoolExecutor, wait
+from concurrent.futures.process import BrokenProcessPool
+from dataclasses import dataclass, field
+from typing import Any, Generic, TypeVar
 
 T = TypeVar("T")
 R = TypeVar("R")
 
-Progress = Callable[[int, int], None]  # (done, total)
+Progress = Callable[[int, int, int], None]  # (done, total, failed)
+Job = Callable[[Sequence[T]], list[R]]
+Lost = Callable[[T, str], R]
+
+
+class Interrupted(KeyboardInterrupt):
+    """Ctrl-C during a batch; ``results`` holds what finished (None where not)."""
+
+    def __init__(self, results: list[Any]) -> None:
+        super().__init__("interrupted")
+        self.results = results
+
+
+class ExecutorError(RuntimeError):
+    """The executor itself cannot run (e.g. no Dask scheduler at the address)."""
 
 
 def available_cpus() -> int:
@@ -27,45 +57,230 @@ def available_cpus() -> int:
 
 
 def chunked(items: Sequence[T], size: int) -> list[Sequence[T]]:
-    return [items[i:i + size] for i in range(0, len(items), size)]
+    return [items[i : i + size] for i in range(0, len(items), size)]
 
 
-def map_chunks(
-    job: Callable[[Sequence[T]], list[R]],
-    items: Sequence[T],
-    *,
-    jobs: int = 1,
-    chunk_size: int = 64,
-    progress: Progress | None = None,
-) -> list[R]:
-    """Apply ``job`` to chunks of ``items``; return the concatenated results in order.
+@dataclass
+class RunStats:
+    """What an executor did: for summaries and for tests."""
 
-    ``job`` must be a picklable top-level function when ``jobs > 1``. With one
-    job, or few items, everything runs in this process.
-    """
-    chunks = chunked(items, chunk_size)
-    total = len(items)
-    done = 0
-    if jobs <= 1 or len(chunks) <= 1:
-        results: list[R] = []
-        for chunk in chunks:
-            results.extend(job(chunk))
-            done += len(chunk)
-            if progress:
-                progress(done, total)
-        return results
-    ordered: list[list[R] | None] = [None] * len(chunks)
-    with ProcessPoolExecutor(max_workers=min(jobs, len(chunks))) as pool:
-        futures = {pool.submit(job, chunk): i for i, chunk in enumerate(chunks)}
+    executor: str = "serial"
+    workers: set[str] = field(default_factory=set)
+    retried_chunks: int = 0
+    lost_items: int = 0
+
+
+@dataclass
+class _Tracker(Generic[R]):
+    chunks: list[Sequence[Any]]
+    progress: Progress | None
+    failed_of: Callable[[R], bool] | None
+    ordered: list[list[R] | None] = field(init=False)
+    done: int = 0
+    failed: int = 0
+
+    def __post_init__(self) -> None:
+        self.ordered = [None] * len(self.chunks)
+        self.total = sum(len(c) for c in self.chunks)
+
+    def finish(self, index: int, results: list[R]) -> None:
+        self.ordered[index] = results
+        self.done += len(self.chunks[index])
+        if self.failed_of is not None:
+            self.failed += sum(1 for r in results if self.failed_of(r))
+        if self.progress:
+            self.progress(self.done, self.total, self.failed)
+
+    def flat(self) -> list[R]:
+        return [r for part in self.ordered if part is not None for r in part]
+
+    def partial(self) -> list[R | None]:
+        out: list[R | None] = []
+        for chunk, part in zip(self.chunks, self.ordered, strict=True):
+            out.extend(part if part is not None else [None] * len(chunk))
+        return out
+
+    def pending(self) -> list[int]:
+        return [i for i, part in enumerate(self.ordered) if part is None]
+
+
+class Executor:
+    """Runs chunks somewhere. Subclasses implement ``_run``."""
+
+    name = "serial"
+
+    def __init__(self) -> None:
+        self.stats = RunStats(self.name)
+
+    def map_chunks(
+        self,
+        job: Job[T, R],
+        items: Sequence[T],
+        *,
+        lost: Lost[T, R],
+        chunk_size: int = 64,
+        progress: Progress | None = None,
+        failed_of: Callable[[R], bool] | None = None,
+    ) -> list[R]:
+        tracker: _Tracker[R] = _Tracker(chunked(items, chunk_size), progress, failed_of)
         try:
-            for future in as_completed(futures):
-                i = futures[future]
-                ordered[i] = future.result()
-                done += len(chunks[i])
-                if progress:
-                    progress(done, total)
+            self._run(job, tracker, lost)
+        except KeyboardInterrupt:
+            raise Interrupted(tracker.partial()) from None
+        return tracker.flat()
+
+    def _run(self, job: Job[T, R], tracker: _Tracker[R], lost: Lost[T, R]) -> None:
+        for index, chunk in enumerate(tracker.chunks):
+            tracker.finish(index, job(chunk))
+
+    def _give_up(self, tracker: _Tracker[R], index: int, lost: Lost[T, R], why: str) -> None:
+        chunk = tracker.chunks[index]
+        self.stats.lost_items += len(chunk)
+        tracker.finish(index, [lost(item, why) for item in chunk])
+
+    def close(self) -> None:
+        """Release connections (Dask); nothing to do for local executors."""
+
+
+class ProcessExecutor(Executor):
+    """A local process pool; a crashed worker's chunks are retried once in a new pool."""
+
+    name = "processes"
+
+    def __init__(self, jobs: int) -> None:
+        super().__init__()
+        self.jobs = jobs
+
+    def _run(self, job: Job[T, R], tracker: _Tracker[R], lost: Lost[T, R]) -> None:
+        if self.jobs <= 1 or len(tracker.chunks) <= 1:
+            Executor._run(self, job, tracker, lost)
+            return
+        for attempt in (1, 2):
+            todo = tracker.pending()
+            if not todo:
+                return
+            broken = self._one_pool(job, tracker, todo)
+            if not broken:
+                return
+            if attempt == 1:
+                self.stats.retried_chunks += len(tracker.pending())
+        for index in tracker.pending():
+            self._give_up(tracker, index, lost, "its worker process stopped unexpectedly twice")
+
+    def _one_pool(self, job: Job[T, R], tracker: _Tracker[R], todo: list[int]) -> bool:
+        """Run ``todo`` in a fresh pool; True when the pool broke (work left undone)."""
+        pool = ProcessPoolExecutor(max_workers=min(self.jobs, len(todo)))
+        futures: dict[Future[list[R]], int] = {}
+        try:
+            futures = {pool.submit(job, tracker.chunks[i]): i for i in todo}
+            waiting = set(futures)
+            while waiting:
+                finished, waiting = wait(waiting, return_when=FIRST_COMPLETED)
+                for future in finished:
+                    try:
+                        results = future.result()
+                    except BrokenProcessPool:
+                        return True
+                    tracker.finish(futures[future], results)
+            return False
         except BaseException:
             for future in futures:
                 future.cancel()
+            pool.shutdown(wait=False, cancel_futures=True)
             raise
-    return [r for part in ordered if part is not None for r in part]
+        finally:
+            pool.shutdown(wait=True, cancel_futures=True)
+
+
+class DaskExecutor(Executor):
+    """Chunks as tasks on a running ``distributed`` scheduler (retried once)."""
+
+    name = "dask"
+
+    def __init__(self, address: str, *, timeout: float = 10.0) -> None:
+        super().__init__()
+        try:
+            from distributed import Client
+        except ImportError:
+            raise ExecutorError(
+                "--scheduler needs the optional Dask support: pip install 'slicetime[dask]'"
+            ) from None
+        try:
+            self.client = Client(address, timeout=timeout, set_as_default=False)
+        except (OSError, TimeoutError) as exc:
+            raise ExecutorError(
+                f"cannot reach a Dask scheduler at {address} ({exc}); start one with "
+                "'dask scheduler' and workers with 'dask worker ADDRESS'"
+            ) from None
+        self.address = address
+
+    def _run(self, job: Job[T, R], tracker: _Tracker[R], lost: Lost[T, R]) -> None:
+        from distributed import as_completed
+
+        todo = tracker.pending()
+        futures = self.client.map(
+            job, [tracker.chunks[i] for i in todo], pure=False, retries=1,
+            key=[f"slicetime-{time.time_ns()}-{i}" for i in todo],
+        )
+        index_of = {future.key: i for future, i in zip(futures, todo, strict=True)}
+        try:
+            for future in as_completed(futures):
+                index = index_of[future.key]
+                if future.status == "error":
+                    why = f"its Dask task failed ({type(future.exception()).__name__})"
+                    self._give_up(tracker, index, lost, why)
+                    continue
+                where = self.client.who_has([future]).get(future.key, ())
+                self.stats.workers.update(where)
+                tracker.finish(index, future.result())
+                future.release()
+        except BaseException:
+            self.client.cancel(futures)
+            raise
+
+    def close(self) -> None:
+        self.client.close()
+
+
+def make_executor(jobs: int | None, scheduler: str | None) -> Executor:
+    """``--scheduler`` wins; else ``--jobs`` (None: the CPUs available) local processes."""
+    if scheduler:
+        return DaskExecutor(scheduler)
+    count = jobs if jobs is not None else available_cpus()
+    return ProcessExecutor(count) if count > 1 else Executor()
+
+
+def map_chunks(
+    job: Job[T, R],
+    items: Sequence[T],
+    *,
+    lost: Lost[T, R],
+    executor: Executor | None = None,
+    jobs: int = 1,
+    chunk_size: int = 64,
+    progress: Progress | None = None,
+    failed_of: Callable[[R], bool] | None = None,
+) -> list[R]:
+    """Apply ``job`` to chunks of ``items`` on ``executor`` (default: ``jobs`` local
+    processes); return the results in input order."""
+    runner = executor if executor is not None else (
+        ProcessExecutor(jobs) if jobs > 1 else Executor()
+    )
+    return runner.map_chunks(
+        job, items, lost=lost, chunk_size=chunk_size, progress=progress, failed_of=failed_of
+    )
+
+
+__all__ = [
+    "DaskExecutor",
+    "Executor",
+    "ExecutorError",
+    "Interrupted",
+    "ProcessExecutor",
+    "Progress",
+    "RunStats",
+    "available_cpus",
+    "chunked",
+    "make_executor",
+    "map_chunks",
+]

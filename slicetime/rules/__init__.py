@@ -3,7 +3,14 @@
 Importing this package registers every rule in :data:`RULES`.
 """
 
-from slicetime.rules import dataset, header, policy, reading, timing  # noqa: F401  (registration)
+from slicetime.rules import (  # noqa: F401  (registration)
+    batch,
+    dataset,
+    header,
+    policy,
+    reading,
+    timing,
+)
 from slicetime.rules.registry import (
     RULES,
     DatasetHit,
