@@ -224,7 +224,7 @@ class DaskExecutor(Executor):
         )
         index_of = {future.key: i for future, i in zip(futures, todo, strict=True)}
         try:
-            for future in as_completed(futures):
+            for future in as_completed(futures, loop=self.client.loop):
                 index = index_of[future.key]
                 if future.status == "error":
                     why = f"its Dask task failed ({type(future.exception()).__name__})"
@@ -243,9 +243,11 @@ class DaskExecutor(Executor):
 
 
 def make_executor(jobs: int | None, scheduler: str | None) -> Executor:
-    """``--scheduler`` wins; else ``--jobs`` (None: the CPUs available) local processes."""
+    """``--scheduler`` wins (connecting for at most ``SLICETIME_CONNECT_TIMEOUT``
+    seconds, default 10); else ``--jobs`` (None: the CPUs available) local processes."""
     if scheduler:
-        return DaskExecutor(scheduler)
+        timeout = float(os.environ.get("SLICETIME_CONNECT_TIMEOUT", "10"))
+        return DaskExecutor(scheduler, timeout=timeout)
     count = jobs if jobs is not None else available_cpus()
     return ProcessExecutor(count) if count > 1 else Executor()
 

@@ -1,0 +1,240 @@
+"""Executors: identical results serially, in processes and on a real Dask cluster;
+lost workers, per-run failures, Ctrl-C and progress."""
+
+from __future__ import annotations
+
+import json
+import os
+from collections.abc import Iterator, Sequence
+from pathlib import Path
+
+import numpy as np
+import pytest
+from click.testing import CliRunner
+
+from slicetime.interfaces.cli import cli
+from slicetime.interfaces.report_json import audit_object, dumps
+from slicetime.pipelines import audit as audit_module
+from slicetime.pipelines.audit import audit_paths
+from slicetime.pipelines.correct import CorrectOptions, correct_paths
+from slicetime.pipelines.executor import (
+    DaskExecutor,
+    Executor,
+    Interrupted,
+    ProcessExecutor,
+    make_executor,
+    map_chunks,
+)
+from tests.helpers_bids import write_description, write_sidecar
+from tests.test_correct import build_run, interleaved
+
+
+def make_dataset(root: Path, n_subjects: int = 6) -> Path:
+    write_description(root)
+    write_sidecar(root, "task-hum_bold.json", {"RepetitionTime": 2.0, "TaskName": "hum"})
+    for i in range(1, n_subjects + 1):
+        rel = f"sub-{i:02d}/func/sub-{i:02d}_task-hum_bold.nii.gz"
+        times = interleaved(8) if i != 3 else [t * 1000 for t in interleaved(8)]  # one in ms
+        build_run(root, rel, times, shape=(4, 4, 8, 24))
+    if n_subjects >= 5:
+        (root / "sub-05/func/sub-05_task-hum_bold.nii.gz").write_bytes(b"not an image")
+    return root
+
+
+def report(result: audit_module.AuditResult, root: Path) -> str:
+    return dumps(audit_object(result, str(root)))
+
+
+# ------------------------------------------------------------- identical results
+
+
+def test_processes_and_serial_give_the_same_report(tmp_path: Path) -> None:
+    root = make_dataset(tmp_path / "ds")
+    serial = audit_paths([root], executor=Executor())
+    pooled = audit_paths([root], executor=ProcessExecutor(2))
+    assert report(serial, root) == report(pooled, root)
+    assert [r.record.path for r in serial.runs] == sorted(r.record.path for r in serial.runs)
+
+
+@pytest.fixture(scope="module")
+def dask_cluster() -> Iterator[object]:
+    distributed = pytest.importorskip("distributed")
+    cluster = distributed.LocalCluster(
+        n_workers=2,
+        threads_per_worker=1,
+        processes=True,
+        host="127.0.0.1",
+        dashboard_address=None,
+        silence_logs=40,
+    )
+    try:
+        yield cluster
+    finally:
+        cluster.close()
+
+
+def test_dask_audit_equals_a_local_audit_and_runs_on_the_workers(
+    tmp_path: Path, dask_cluster: object
+) -> None:
+    root = make_dataset(tmp_path / "ds", n_subjects=8)
+    local = audit_paths([root], executor=Executor())
+    executor = DaskExecutor(dask_cluster.scheduler_address)  # type: ignore[attr-defined]
+    try:
+        remote = audit_paths([root], executor=executor)
+    finally:
+        executor.close()
+    assert report(remote, root) == report(local, root)
+    workers = set(dask_cluster.scheduler_info["workers"])  # type: ignore[attr-defined]
+    assert executor.stats.workers and executor.stats.workers <= workers
+
+
+def test_dask_correction_equals_a_local_one(tmp_path: Path, dask_cluster: object) -> None:
+    import nibabel as nib
+
+    root = tmp_path / "ds"
+    write_description(root)
+    rels = [f"sub-0{i}/func/sub-0{i}_task-hum_bold.nii.gz" for i in (1, 2, 3)]
+    for rel in rels:
+        build_run(root, rel, interleaved(8), shape=(6, 5, 8, 40))
+    local_out, dask_out = tmp_path / "local", tmp_path / "dask"
+    local = correct_paths([root], CorrectOptions(out=local_out), executor=Executor())
+    executor = DaskExecutor(dask_cluster.scheduler_address)  # type: ignore[attr-defined]
+    try:
+        remote = correct_paths([root], CorrectOptions(out=dask_out, threads=0),
+                               executor=executor)
+    finally:
+        executor.close()
+    assert [r.status for r in local.runs] == [r.status for r in remote.runs] == ["corrected"] * 3
+    assert executor.stats.workers  # the files were written by the workers
+    for run in local.runs:
+        assert run.output is not None
+        a = np.asarray(nib.load(local_out / run.output).dataobj)
+        b = np.asarray(nib.load(dask_out / run.output).dataobj)
+        assert np.array_equal(a, b)
+        side_a = json.loads((local_out / run.output).with_suffix("").with_suffix(".json")
+                            .read_text())
+        side_b = json.loads((dask_out / run.output).with_suffix("").with_suffix(".json")
+                            .read_text())
+        for side in (side_a, side_b):
+            side["SliceTimeAlignment"].pop("Output")  # gzip bytes may differ by thread count
+        assert side_a == side_b
+
+
+def test_unreachable_scheduler_is_a_usage_error(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    monkeypatch.setenv("SLICETIME_CONNECT_TIMEOUT", "1")
+    root = make_dataset(tmp_path / "ds", n_subjects=1)
+    result = CliRunner().invoke(cli, ["audit", str(root), "--scheduler", "tcp://127.0.0.1:9"])
+    assert result.exit_code == 2
+    assert "cannot reach a Dask scheduler at tcp://127.0.0.1:9" in result.output
+
+
+# --------------------------------------------------------------- failures
+
+
+def crash_once(items: Sequence[str]) -> list[str]:
+    """Kill the worker process the first time it sees an item named in a marker file."""
+    out = []
+    for item in items:
+        marker = Path(item)
+        if marker.exists() and marker.read_text() == "crash":
+            marker.write_text("crashed")
+            os._exit(1)
+        if marker.exists() and marker.read_text() == "always":
+            os._exit(1)
+        out.append(f"done {marker.name}")
+    return out
+
+
+def lost_item(item: str, why: str) -> str:
+    return f"lost {Path(item).name}: {why}"
+
+
+def test_a_lost_worker_is_retried_once(tmp_path: Path) -> None:
+    items = [str(tmp_path / f"item{i}") for i in range(6)]
+    Path(items[2]).write_text("crash")
+    executor = ProcessExecutor(2)
+    results = executor.map_chunks(crash_once, items, lost=lost_item, chunk_size=1)
+    assert results == [f"done item{i}" for i in range(6)]
+    assert executor.stats.retried_chunks >= 1 and executor.stats.lost_items == 0
+
+
+def test_a_run_whose_worker_dies_twice_becomes_a_result(tmp_path: Path) -> None:
+    items = [str(tmp_path / f"item{i}") for i in range(4)]
+    Path(items[1]).write_text("always")
+    executor = ProcessExecutor(2)
+    results = executor.map_chunks(crash_once, items, lost=lost_item, chunk_size=1)
+    assert results[1] == "lost item1: its worker process stopped unexpectedly twice"
+    assert results[0] == "done item0" and results[3] == "done item3"
+    assert executor.stats.lost_items == 1
+
+
+def test_a_bug_on_one_run_becomes_a_finding(tmp_path: Path, monkeypatch: pytest.MonkeyPatch):
+    root = make_dataset(tmp_path / "ds", n_subjects=3)
+    real = audit_module.audit_one
+
+    def flaky(root_: Path, path: Path, *args: object, **kwargs: object):
+        if "sub-02" in path.name:
+            raise ZeroDivisionError("invented failure")
+        return real(root_, path, *args, **kwargs)  # type: ignore[arg-type]
+
+    monkeypatch.delenv("SLICETIME_DEBUG", raising=False)
+    monkeypatch.setattr(audit_module, "audit_one", flaky)
+    result = audit_paths([root], executor=Executor())
+    by_path = {r.record.path: r for r in result.runs}
+    broken = by_path["sub-02/func/sub-02_task-hum_bold.nii.gz"]
+    assert [f.code for f in broken.findings] == ["batch/internal-error"]
+    assert "ZeroDivisionError: invented failure" in broken.findings[0].message
+    assert len(result.runs) == 3  # the batch went on
+
+
+def interrupt_at_third(items: Sequence[int]) -> list[int]:
+    if items[0] == 3:
+        raise KeyboardInterrupt
+    return [i * 10 for i in items]
+
+
+def test_ctrl_c_keeps_what_finished() -> None:
+    with pytest.raises(Interrupted) as stop:
+        map_chunks(interrupt_at_third, [1, 2, 3, 4], lost=lambda i, why: -1, chunk_size=1)
+    assert stop.value.results == [10, 20, None, None]
+
+
+def test_progress_reports_failures() -> None:
+    seen: list[tuple[int, int, int]] = []
+    map_chunks(
+        lambda chunk: [i % 3 == 0 for i in chunk],
+        list(range(7)),
+        lost=lambda i, why: False,
+        chunk_size=2,
+        progress=lambda done, total, failed: seen.append((done, total, failed)),
+        failed_of=bool,
+    )
+    assert seen == [(2, 7, 1), (4, 7, 2), (6, 7, 2), (7, 7, 3)]
+
+
+def test_progress_lines_off_a_terminal(capsys: pytest.CaptureFixture[str]) -> None:
+    from slicetime.interfaces.terminal import _periodic_lines
+
+    update = _periodic_lines("auditing", every=0.0)
+    update(5, 20, 1)
+    update(20, 20, 1)  # the end is left to the final report
+    lines = capsys.readouterr().err.splitlines()
+    assert len(lines) == 1
+    assert lines[0].startswith("slicetime: auditing: 5/20 runs, 1 failed, about ")
+
+
+def test_make_executor_follows_the_options() -> None:
+    assert type(make_executor(1, None)) is Executor
+    pooled = make_executor(3, None)
+    assert isinstance(pooled, ProcessExecutor) and pooled.jobs == 3
+
+
+def test_correct_uses_all_cpus_for_a_single_run(tmp_path: Path) -> None:
+    # one run in a process pool would waste the other CPUs: it gets them as threads
+    from slicetime.pipelines.correct import _auto_threads
+    from slicetime.pipelines.executor import available_cpus
+
+    assert _auto_threads(ProcessExecutor(2), 2, 1) == available_cpus()
+    assert _auto_threads(ProcessExecutor(available_cpus()), 1, 50) == 1
