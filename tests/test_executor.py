@@ -238,3 +238,22 @@ def test_correct_uses_all_cpus_for_a_single_run(tmp_path: Path) -> None:
 
     assert _auto_threads(ProcessExecutor(2), 2, 1) == available_cpus()
     assert _auto_threads(ProcessExecutor(available_cpus()), 1, 50) == 1
+
+
+def test_ctrl_c_during_an_audit_says_how_far_it_got(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    root = make_dataset(tmp_path / "ds", n_subjects=3)
+    real = audit_module.audit_one
+    seen = {"n": 0}
+
+    def interrupt_second(*args: object, **kwargs: object):
+        seen["n"] += 1
+        if seen["n"] == 2:
+            raise KeyboardInterrupt
+        return real(*args, **kwargs)  # type: ignore[arg-type]
+
+    monkeypatch.setattr(audit_module, "audit_one", interrupt_second)
+    result = CliRunner().invoke(cli, ["audit", str(root), "--jobs", "1"])
+    assert result.exit_code == 130
+    assert "interrupted; 0 of 3 runs audited, no report written" in result.output

@@ -133,17 +133,24 @@ def audit(
     from slicetime.interfaces.report_json import audit_object, dumps
     from slicetime.interfaces.terminal import make_console, progress_reporter, render_audit
     from slicetime.pipelines.audit import audit_paths
+    from slicetime.pipelines.executor import Interrupted
 
     with _executor(jobs, scheduler) as executor, progress_reporter("auditing") as progress:
-        result = audit_paths(
-            list(paths),
-            include_derivatives=include_derivatives,
-            include_sourcedata=include_sourcedata,
-            include_hidden=include_hidden,
-            progress=progress,
-            policy_file=policy_file,
-            executor=executor,
-        )
+        try:
+            result = audit_paths(
+                list(paths),
+                include_derivatives=include_derivatives,
+                include_sourcedata=include_sourcedata,
+                include_hidden=include_hidden,
+                progress=progress,
+                policy_file=policy_file,
+                executor=executor,
+            )
+        except Interrupted as stop:
+            finished = sum(1 for r in stop.results if r is not None)
+            click.echo(f"slicetime: interrupted; {finished} of {len(stop.results)} runs "
+                       "audited, no report written", err=True)
+            sys.exit(130)
     root_given = str(paths[0]) if len(paths) == 1 else " ".join(str(p) for p in paths)
     if fmt == "json":
         text = dumps(audit_object(result, root_given)) + "\n"
