@@ -1,40 +1,66 @@
-"""`slicetime correct` on one large run against a nibabel load-and-save baseline.
+"""`slicetime correct` against a nibabel load-and-save baseline, at three scales.
 
-The run (invented, generated once and cached under --work): 64×64×40×600 int16
-``.nii.gz``, TR 2 s, interleaved SliceTiming over 40 slices, in a one-subject
-dataset. Its content looks like a head: an ellipsoid of signal around 1000 with
-a fixed texture, slow drifts, a small block-design response and thermal noise,
-and an exactly zero background (a bit over half the voxels), so gzip behaves
-like it does on real runs.
+Three invented datasets, each generated once and cached under --work (a stamp
+with the parameters marks a dataset complete). Their content looks like a head:
+an ellipsoid of signal around 1000 with a fixed texture, slow drifts, a small
+block-design response and thermal noise, and an exactly zero background (a bit
+over half the voxels), so gzip behaves like it does on real runs.
+
+* standard: one 64×64×40×600 int16 ``.nii.gz`` run, TR 2 s, interleaved
+  SliceTiming over 40 slices (compressed with zlib level 6);
+* multiband: one 96×96×66×1200 int16 ``.nii.gz`` run, TR 1 s, 66 slices
+  acquired 3 at a time (SliceTiming with 22 distinct times, each 3 times;
+  ``MultibandAccelerationFactor`` 3). Its float32 array is 2.7 GiB. It is
+  written with a fast threaded gzip (isal level 1) so that generating it takes
+  well under a minute;
+* batch: six 64×64×32×200 int16 runs (one per subject), TR 2 s, interleaved.
 
 Every measured command runs in a fresh wrapper process that starts it, times
 it and reports the peak RSS of that one child (``RUSAGE_CHILDREN`` of a
-process that has had no other children):
+process that has had no other children; for ``--jobs 2`` the largest single
+process of the tree, not their sum):
 
 * baseline: nibabel loads the run, converts it to float32 and saves it as a
   float32 ``.nii.gz`` (the output type ``correct`` writes by default; nibabel
   compresses at its default level 1, as ``correct`` does);
-* ``slicetime correct DS --out OUT`` (fourier, a fresh OUT every time),
-  interleaved with the baseline repetitions so drifts in machine load hit both;
-* once each, informational: ``--method cubic`` and ``--max-memory CAP``;
+* standard run: ``slicetime correct DS --out OUT`` (fourier, a fresh OUT every
+  time) --repeat times, interleaved with the baseline repetitions so drifts in
+  machine load hit both; then once each ``--method sinc``, ``cubic``,
+  ``linear`` and ``--max-memory CAP``;
+* multiband run: the baseline, fourier and ``--max-memory MB_CAP``, once each;
+* batch: ``--jobs 1`` and ``--jobs 2`` alternating, --batch-repeat times each;
 * the interpreter overhead: a process that only imports what ``correct`` imports.
 
-One unmeasured baseline and correct run come first (--warmup).
+One unmeasured baseline and correct run of the standard run come first
+(--warmup); the multiband and batch files are read once beforehand so that
+they sit in the page cache.
 
-Targets (from the design): correct wall time ≤ 0.5 × baseline; correct peak
-RSS < 2 × the float32 array; the ``--max-memory`` peak ≤ cap + overhead.
-Absolute seconds vary between machines, the ratios are what the targets are about.
+Targets (from the design), on the standard run: fourier wall time ≤ 0.5 ×
+baseline; fourier peak RSS < 2 × the float32 array; and, on both the standard
+and the multiband run, the ``--max-memory`` peak ≤ cap + overhead. The other
+ratios (methods, the multiband run's time and memory, ``--jobs 2`` ÷
+``--jobs 1``) are reported without a target. Absolute seconds vary between
+machines, the ratios are what the targets are about.
 
-With ``--profile`` (the default) three more runs show where ``correct`` spends
-its time: one with wall-clock timers wrapped around its phases (read, engine,
-write, ...; the wrapping happens in the child, slicetime is not modified), the
+With ``--profile`` (the default; standard run only) three more runs show where
+``correct`` spends its time: one with wall-clock timers wrapped around its
+phases (read, engine, write, ...; the wrapping happens in the child, slicetime
+is not modified; functions that no longer exist are skipped with a note), the
 same with the memory cap, and one ``correct_paths`` call under cProfile (main
 thread only; the gzip helper threads show up as lock waits); last, the slowest
 imports (``python -X importtime``), part of every command's wall time.
 
-    python benchmarks/bench_correct.py [--volumes 600] [--repeat 3]
-        [--work bench-results/work] [--out bench-results/correct.json]
-        [--cap 160M] [--warmup 1] [--no-profile]
+The results are written to --out as JSON after each part (``"complete":
+false`` until the end), so a late failure keeps what was measured.
+
+    python benchmarks/bench_correct.py [--runs standard,multiband,batch]
+        [--volumes 600] [--repeat 3] [--cap 160M] [--warmup 1]
+        [--multiband-volumes 1200] [--multiband-cap 1G]
+        [--batch-runs 6] [--batch-volumes 200] [--batch-repeat 3]
+        [--work bench-results/work] [--out bench-results/correct.json] [--no-profile]
+
+For a quick check of the script itself: --volumes 40 --multiband-volumes 30
+--batch-volumes 20 --repeat 1 --batch-repeat 1 --warmup 0.
 """
 
 from __future__ import annotations
@@ -50,9 +76,10 @@ import statistics
 import subprocess
 import sys
 import time
-from dataclasses import asdict, dataclass
+from collections.abc import Callable, Sequence
+from dataclasses import asdict, dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import IO, Any
 
 import nibabel as nib
 import numpy as np
@@ -63,17 +90,19 @@ from slicetime.schemes.generate import Protocol, slice_timing
 
 REPO = Path(__file__).resolve().parents[1]
 
-SHAPE = (64, 64, 40)
-TR = 2.0
-VOXEL_MM = (3.0, 3.0, 3.5)
-SUBJECT_PATH = Path("sub-01") / "func" / "sub-01_task-fingertap_bold.nii.gz"
 GENERATOR_VERSION = 1
-GZIP_LEVEL = 6  # what converters typically use; decompression speed barely depends on it
+GZIP_LEVEL = 6  # standard run: what converters typically use; decoding speed barely depends on it
+FAST_GZIP_LEVEL = 1  # multiband and batch runs: isal's fast level, in helper threads
+SEED = 20240611
+DESC = "timealigned"
 MIB = 1 << 20
+GIB = 1 << 30
+BLOCK_BYTES = 64 * MIB  # float32 working set per block of generated volumes
+PARTS = ("standard", "multiband", "batch")
 
 # Runs ``argv[1]`` (a JSON list) with stdout/stderr to ``argv[2]`` and prints its
 # wall time and rusage. ru_maxrss of RUSAGE_CHILDREN is the largest over all
-# children so far: this wrapper has exactly one.
+# children so far (and their reaped children): this wrapper has exactly one.
 WRAPPER = """
 import json, resource, subprocess, sys, time
 cmd = json.loads(sys.argv[1])
@@ -102,7 +131,9 @@ OVERHEAD = "import slicetime.pipelines.correct, scipy.fft, numpy, nibabel"
 # Runs correct_paths in-process with wall-clock timers around its phases and
 # prints them as JSON. For each phase it also records by how much the process's
 # peak RSS (a high-water mark) rose while inside it, and the highest value it
-# left behind: that shows which phase sets the peak. argv: dataset, out,
+# left behind: that shows which phase sets the peak. Functions are named by
+# their dotted path in slicetime.pipelines.correct; a path that no longer
+# resolves is listed under "missing" instead of failing. argv: dataset, out,
 # method, cap in bytes or "".
 PHASES = """
 import json, resource, sys, time
@@ -115,6 +146,7 @@ totals = {}
 calls = {}
 raised = {}
 peak_after = {}
+missing = []
 
 def maxrss():
     return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024
@@ -134,29 +166,39 @@ def timed(name, fn):
                 peak_after[name] = max(peak_after.get(name, 0), after)
     return wrapper
 
-def patch(owner, attr, name):
-    setattr(owner, attr, timed(name, getattr(owner, attr)))
+def patch(path, name):
+    owner = mod
+    *parents, attr = path.split(".")
+    for part in parents:
+        owner = getattr(owner, part, None)
+        if owner is None:
+            missing.append(path)
+            return
+    fn = getattr(owner, attr, None)
+    if not callable(fn):
+        missing.append(path)
+        return
+    setattr(owner, attr, timed(name, fn))
 
-patch(mod, "audit_paths", "audit (walk, headers, rules)")
-patch(mod.VolumeReader, "__enter__", "read: open, start decoder, header bytes")
-patch(mod.VolumeReader, "read_into", "read: decompress + SHA-256 (wait on decoder)")
-patch(mod, "_store_scaled", "read: stored type -> float32 slice-major")
-for cls in (mod._MemoryBuffer, mod._DiskBuffer):
-    kind = "memory" if cls is mod._MemoryBuffer else "scratch file"
-    patch(cls, "__init__", f"buffer ({kind}): allocate")
-    patch(cls, "put_volumes", f"buffer ({kind}): put volumes")
-    patch(cls, "get_slice", f"engine: buffer ({kind}) get slice")
-    patch(cls, "put_slice", f"engine: buffer ({kind}) put slice")
-    patch(cls, "get_volumes", f"write: buffer ({kind}) get volumes")
-patch(mod, "_engine_pass", "engine (whole pass)")
-patch(mod, "resample", "engine: resample calls")
-patch(mod._Cast, "__call__", "write: slice-major -> volume order, output type")
-patch(mod.VolumeWriter, "__init__", "write: open, start encoder")
-patch(mod.VolumeWriter, "write", "write: compress + SHA-256 (feed encoder)")
-patch(mod.VolumeWriter, "close", "write: flush encoder + fsync")
-patch(mod, "_hash_inputs", "provenance: hash sidecars")
-patch(mod, "_write_description", "provenance: dataset_description")
-patch(mod, "_write_provenance", "provenance: provenance file")
+patch("audit_paths", "audit (walk, headers, rules)")
+patch("VolumeReader.__enter__", "read: open, start decoder, header bytes")
+patch("VolumeReader.read_into", "read: decompress + SHA-256 (wait on decoder)")
+patch("_store_scaled", "read: stored type -> float32 slice-major")
+for cls, kind in (("_MemoryBuffer", "memory"), ("_DiskBuffer", "scratch file")):
+    patch(f"{cls}.__init__", f"buffer ({kind}): allocate")
+    patch(f"{cls}.put_volumes", f"buffer ({kind}): put volumes")
+    patch(f"{cls}.get_slice", f"engine: buffer ({kind}) get slice")
+    patch(f"{cls}.put_slice", f"engine: buffer ({kind}) put slice")
+    patch(f"{cls}.get_volumes", f"write: buffer ({kind}) get volumes")
+patch("_engine_pass", "engine (whole pass)")
+patch("resample", "engine: resample calls")
+patch("_Cast.__call__", "write: slice-major -> volume order, output type")
+patch("VolumeWriter.__init__", "write: open, start encoder")
+patch("VolumeWriter.write", "write: compress + SHA-256 (feed encoder)")
+patch("VolumeWriter.close", "write: flush encoder + fsync")
+patch("_hash_inputs", "provenance: hash sidecars")
+patch("_write_description", "provenance: dataset_description")
+patch("_write_provenance", "provenance: provenance file")
 cap = int(sys.argv[4]) if sys.argv[4] else None
 options = mod.CorrectOptions(out=Path(sys.argv[2]), method=sys.argv[3], max_memory=cap,
                              threads=available_cpus())
@@ -167,6 +209,7 @@ total = time.perf_counter() - began
 assert result.counts()["corrected"] == 1, [r.to_json() for r in result.runs]
 print(json.dumps({"imports_s": imported, "correct_paths_s": total,
                   "peak_rss_before_bytes": rss_before, "peak_rss_bytes": maxrss(),
+                  "missing": missing,
                   "phases": {k: {"s": v, "calls": calls[k], "peak_raised_bytes": raised.get(k, 0),
                                  "peak_after_bytes": peak_after.get(k)}
                              for k, v in totals.items()}}))
@@ -196,7 +239,90 @@ class Measurement:
 
 
 # ---------------------------------------------------------------------------
-# the invented run
+# the invented datasets
+
+
+@dataclass(frozen=True)
+class Spec:
+    """One invented dataset: ``runs`` runs of the same shape and protocol."""
+
+    key: str
+    folder: str
+    shape: tuple[int, int, int]
+    volumes: int
+    tr: float
+    voxel_mm: tuple[float, float, float]
+    protocol: Protocol
+    # head ellipsoid in voxel units (centre, semi-axes)
+    centre: tuple[float, float, float]
+    axes: tuple[float, float, float]
+    compressor: str  # "zlib" (gzip module) or "isal" (threaded igzip)
+    level: int
+    runs: int = 1
+    acq: str | None = None
+    sidecar_extra: dict[str, Any] = field(default_factory=dict)
+
+    @property
+    def images(self) -> list[Path]:
+        acq = f"_acq-{self.acq}" if self.acq else ""
+        subjects = [f"sub-{i + 1:02d}" for i in range(self.runs)]
+        return [Path(s) / "func" / f"{s}_task-fingertap{acq}_bold.nii.gz" for s in subjects]
+
+    @property
+    def float32_bytes(self) -> int:
+        """Bytes of one run's float32 array."""
+        return int(np.prod(self.shape)) * self.volumes * 4
+
+    def stamp(self) -> dict[str, Any]:
+        # the standard run keeps the stamp it always had, so existing caches stay valid
+        wanted: dict[str, Any] = {"version": GENERATOR_VERSION,
+                                  "shape": [*self.shape, self.volumes], "tr": self.tr,
+                                  "seed": SEED, "gzip_level": self.level}
+        if self.key != "standard":
+            wanted |= {"kind": self.key, "compressor": self.compressor, "runs": self.runs,
+                       "multiband": self.protocol.multiband, "centre": list(self.centre),
+                       "axes": list(self.axes), "voxel_mm": list(self.voxel_mm)}
+        return wanted
+
+    def describe(self, root: Path) -> dict[str, Any]:
+        sizes = [(root / image).stat().st_size for image in self.images]
+        return {"shape": [*self.shape, self.volumes], "dtype": "int16", "tr_s": self.tr,
+                "runs": self.runs, "multiband": self.protocol.multiband,
+                "slices": self.protocol.n_slices, "compressed_mib": round(sum(sizes) / MIB, 1),
+                "float32_mib": round(self.float32_bytes / MIB, 1),
+                "gzip": f"{self.compressor} level {self.level}", "gzip_level": self.level}
+
+    def title(self) -> str:
+        size = "×".join(str(n) for n in (*self.shape, self.volumes))
+        runs = f"{self.runs} runs of " if self.runs > 1 else ""
+        mb = f", multiband {self.protocol.multiband}" if self.protocol.multiband > 1 else ""
+        return (f"{self.key}: {runs}{size} int16, TR {self.tr:g} s{mb}; float32 array "
+                f"{self.float32_bytes / MIB:.0f} MiB per run")
+
+
+def standard_spec(volumes: int) -> Spec:
+    return Spec("standard", f"ds-v{volumes}", (64, 64, 40), volumes, 2.0, (3.0, 3.0, 3.5),
+                Protocol(n_slices=40, order="interleaved", repetition_time=2.0, decimals=4),
+                centre=(31.5, 33.0, 19.0), axes=(29.0, 31.0, 19.5), compressor="zlib",
+                level=GZIP_LEVEL)
+
+
+def multiband_spec(volumes: int) -> Spec:
+    return Spec("multiband", f"ds-mb3-v{volumes}", (96, 96, 66), volumes, 1.0,
+                (2.4, 2.4, 2.4),
+                Protocol(n_slices=66, order="interleaved", multiband=3, repetition_time=1.0,
+                         decimals=4),
+                centre=(47.5, 49.5, 31.5), axes=(43.5, 46.5, 32.0), compressor="isal",
+                level=FAST_GZIP_LEVEL, acq="mb3",
+                sidecar_extra={"MultibandAccelerationFactor": 3})
+
+
+def batch_spec(runs: int, volumes: int) -> Spec:
+    return Spec("batch", f"ds-batch{runs}-v{volumes}", (64, 64, 32), volumes, 2.0,
+                (3.0, 3.0, 3.5),
+                Protocol(n_slices=32, order="interleaved", repetition_time=2.0, decimals=4),
+                centre=(31.5, 33.0, 15.2), axes=(29.0, 31.0, 15.6), compressor="isal",
+                level=FAST_GZIP_LEVEL, runs=runs)
 
 
 def _smooth_field(grid: tuple[np.ndarray, ...], rng: np.random.Generator, terms: int) -> np.ndarray:
@@ -209,38 +335,59 @@ def _smooth_field(grid: tuple[np.ndarray, ...], rng: np.random.Generator, terms:
     return field / terms
 
 
-def make_run(root: Path, volumes: int, seed: int = 20240611) -> Path:
-    """Write the dataset (once: a stamp with the parameters marks it complete)."""
-    stamp = root / ".bench-stamp.json"
-    wanted = {"version": GENERATOR_VERSION, "shape": [*SHAPE, volumes], "tr": TR,
-              "seed": seed, "gzip_level": GZIP_LEVEL}
-    image = root / SUBJECT_PATH
-    if stamp.is_file() and image.is_file():
-        try:
-            if json.loads(stamp.read_text()) == wanted:
-                return root
-        except ValueError:
-            pass
-    shutil.rmtree(root, ignore_errors=True)
-    image.parent.mkdir(parents=True)
-    started = time.perf_counter()
+def _open_gzip(path: Path, spec: Spec) -> IO[bytes]:
+    if spec.compressor == "isal":
+        from isal import igzip_threaded
+
+        stream: IO[bytes] = igzip_threaded.open(path, "wb", compresslevel=spec.level,
+                                                threads=2)
+        return stream
+    return gzip.GzipFile(path, "wb", compresslevel=spec.level, mtime=0)
+
+
+def _header(spec: Spec) -> nib.Nifti1Header:
+    nx, ny, nz = spec.shape
+    affine = np.diag([*spec.voxel_mm, 1.0])
+    affine[:3, 3] = [-(nx - 1) * spec.voxel_mm[0] / 2, -(ny - 1) * spec.voxel_mm[1] / 2,
+                     -(nz - 1) * spec.voxel_mm[2] / 2]
+    header = nib.Nifti1Header()
+    header.set_data_shape((*spec.shape, spec.volumes))
+    header.set_data_dtype(np.int16)
+    header.set_zooms((*spec.voxel_mm, spec.tr))
+    header.set_xyzt_units("mm", "sec")
+    header.set_dim_info(freq=0, phase=1, slice=2)
+    header.set_qform(affine, code=1)
+    header.set_sform(affine, code=1)
+    header.set_data_offset(352)
+    header.set_slope_inter(1.0, 0.0)
+    return header
+
+
+def write_image(path: Path, spec: Spec, seed: int) -> float:
+    """Write one run; return the fraction of voxels inside the head.
+
+    The volumes are made in blocks (one array operation per step for a whole
+    block) and written in Fortran order, one volume after the other, after the
+    348-byte header and the 4 bytes that say there are no extensions.
+    """
     rng = np.random.default_rng(seed)
-    nx, ny, nz = SHAPE
+    nx, ny, nz = spec.shape
+    (cx, cy, cz), (ax, ay, az) = spec.centre, spec.axes
     # coordinates in units of the head's semi-axes: inside the head where r < 1
-    x = ((np.arange(nx, dtype=np.float32) - 31.5) / 29.0)[:, None, None]
-    y = ((np.arange(ny, dtype=np.float32) - 33.0) / 31.0)[None, :, None]
-    z = ((np.arange(nz, dtype=np.float32) - 19.0) / 19.5)[None, None, :]
+    x = ((np.arange(nx, dtype=np.float32) - cx) / ax)[:, None, None]
+    y = ((np.arange(ny, dtype=np.float32) - cy) / ay)[None, :, None]
+    z = ((np.arange(nz, dtype=np.float32) - cz) / az)[None, None, :]
     r = np.sqrt(x * x + y * y + z * z)
     mask = r < 1.0
     n_in = int(mask.sum())
     # static image: bright cortex-like rim, darker centre, a coil-like bias, texture
     rim = 1.0 + 0.12 * np.exp(-(((r - 0.85) / 0.08) ** 2))
     bias = 1.0 + 0.15 * _smooth_field((x, y, z), rng, 3)
-    texture = 0.05 * rng.standard_normal(SHAPE, dtype=np.float32)
+    texture = 0.05 * rng.standard_normal(spec.shape, dtype=np.float32)
     base = (1000.0 * (0.9 + 0.1 * r) * rim * bias * (1.0 + texture))[mask].astype(np.float32)
     # temporal: a slow global drift, a spatially varying slow oscillation, a
     # block-design response (30 s on / 30 s off) in a small region, noise
-    t = np.arange(volumes, dtype=np.float32) * TR
+    t = np.arange(spec.volumes, dtype=np.float32) * spec.tr
     drift = 0.01 * t / max(t[-1], 1.0) + 0.004 * np.cos(2 * np.pi * t / 180.0)
     wobble_amp = (0.003 * (1 + _smooth_field((x, y, z), rng, 2)))[mask]
     wobble = np.sin(2 * np.pi * t / 97.0 + 1.3)
@@ -248,45 +395,86 @@ def make_run(root: Path, volumes: int, seed: int = 20240611) -> Path:
     response_amp = np.where(region, 0.02, 0.0)[mask].astype(np.float32)
     block = ((t // 30.0) % 2 == 1).astype(np.float32)
     noise_sd = np.float32(18.0)
+    one_plus_drift = 1.0 + drift
+    # where each head voxel (listed in C order, as ``mask`` lists them) sits in a
+    # Fortran-ordered volume
+    where = np.ravel_multi_index(np.nonzero(mask), spec.shape, order="F")
 
-    affine = np.diag([*VOXEL_MM, 1.0])
-    affine[:3, 3] = [-(nx - 1) * VOXEL_MM[0] / 2, -(ny - 1) * VOXEL_MM[1] / 2,
-                     -(nz - 1) * VOXEL_MM[2] / 2]
-    header = nib.Nifti1Header()
-    header.set_data_shape((*SHAPE, volumes))
-    header.set_data_dtype(np.int16)
-    header.set_zooms((*VOXEL_MM, TR))
-    header.set_xyzt_units("mm", "sec")
-    header.set_dim_info(freq=0, phase=1, slice=2)
-    header.set_qform(affine, code=1)
-    header.set_sform(affine, code=1)
-    header.set_data_offset(352)
-    header.set_slope_inter(1.0, 0.0)
-    volume = np.zeros(SHAPE, dtype=np.int16, order="F")
-    with gzip.GzipFile(image, "wb", compresslevel=GZIP_LEVEL, mtime=0) as fh:
-        fh.write(header.binaryblock)
-        fh.write(b"\0" * 4)  # no extensions
-        for i in range(volumes):
-            gain = 1.0 + drift[i] + wobble_amp * wobble[i] + response_amp * block[i]
-            values = base * gain + noise_sd * rng.standard_normal(n_in, dtype=np.float32)
-            volume[mask] = np.rint(values).astype(np.int16)
-            fh.write(volume.tobytes(order="F"))
+    per_block = max(1, BLOCK_BYTES // (4 * n_in))
+    volumes = np.zeros((min(per_block, spec.volumes), mask.size), dtype=np.int16)
+    with _open_gzip(path, spec) as fh:
+        _header(spec).write_to(fh)  # header + 4 zero bytes (no extensions)
+        for first in range(0, spec.volumes, per_block):
+            b = slice(first, min(first + per_block, spec.volumes))
+            count = b.stop - b.start
+            # the same float32 operations, in the same order, as one volume at a
+            # time: gain = 1 + drift + wobble + response; base * gain + noise
+            values = wobble_amp[None, :] * wobble[b, None]
+            values += one_plus_drift[b, None]
+            values += response_amp[None, :] * block[b, None]
+            values *= base[None, :]
+            values += noise_sd * rng.standard_normal((count, n_in), dtype=np.float32)
+            np.rint(values, out=values)
+            out = volumes[:count]
+            out[:, where] = values
+            fh.write(memoryview(out).cast("B"))
+    return n_in / mask.size
 
-    timing = slice_timing(Protocol(n_slices=SHAPE[2], order="interleaved",
-                                   repetition_time=TR, decimals=4))
+
+def make_dataset(root: Path, spec: Spec) -> Path:
+    """Write the dataset (once: a stamp with the parameters marks it complete)."""
+    stamp = root / ".bench-stamp.json"
+    wanted = spec.stamp()
+    if stamp.is_file() and all((root / image).is_file() for image in spec.images):
+        try:
+            if json.loads(stamp.read_text()) == wanted:
+                return root
+        except ValueError:
+            pass
+    shutil.rmtree(root, ignore_errors=True)
+    started = time.perf_counter()
+    timing = slice_timing(spec.protocol)
+    fraction = 0.0
+    for index, rel in enumerate(spec.images):
+        image = root / rel
+        image.parent.mkdir(parents=True)
+        fraction = write_image(image, spec, SEED + index)
+        sidecar = {"TaskName": "fingertap", "RepetitionTime": spec.tr, "SliceTiming": timing,
+                   **spec.sidecar_extra, "EchoTime": 0.03}
+        image.with_name(image.name.replace(".nii.gz", ".json")).write_text(
+            json.dumps(sidecar, indent=2))
+        check = nib.load(image)
+        assert check.shape == (*spec.shape, spec.volumes), check.shape
+    name = "run" if spec.key == "standard" else f"dataset ({spec.key})"
     (root / "dataset_description.json").write_text(
-        json.dumps({"Name": "Invented finger-tapping benchmark run", "BIDSVersion": "1.10.0"},
+        json.dumps({"Name": f"Invented finger-tapping benchmark {name}", "BIDSVersion": "1.10.0"},
                    indent=2))
-    image.with_name(image.name.replace(".nii.gz", ".json")).write_text(json.dumps(
-        {"TaskName": "fingertap", "RepetitionTime": TR, "SliceTiming": timing,
-         "EchoTime": 0.03}, indent=2))
-    check = nib.load(image)
-    assert check.shape == (*SHAPE, volumes), check.shape
     stamp.write_text(json.dumps(wanted))
-    print(f"generated {image} ({image.stat().st_size / MIB:.0f} MiB, "
-          f"{n_in / mask.size:.0%} of voxels in the head) in "
+    total = sum((root / rel).stat().st_size for rel in spec.images)
+    print(f"generated {root} ({spec.runs} run(s), {total / MIB:.0f} MiB, "
+          f"{fraction:.0%} of voxels in the head) in "
           f"{time.perf_counter() - started:.1f} s", flush=True)
     return root
+
+
+def available_memory() -> int | None:
+    """MemAvailable from /proc/meminfo in bytes (None where there is none)."""
+    try:
+        with open("/proc/meminfo") as fh:
+            for line in fh:
+                if line.startswith("MemAvailable:"):
+                    return int(line.split()[1]) * 1024
+    except OSError:
+        pass
+    return None
+
+
+def warm_page_cache(root: Path, spec: Spec) -> None:
+    """Read the images once, so the first measured command does not pay for the disk."""
+    for rel in spec.images:
+        with open(root / rel, "rb") as fh:
+            while fh.read(16 * MIB):
+                pass
 
 
 # ---------------------------------------------------------------------------
@@ -317,28 +505,40 @@ def measure(label: str, cmd: list[str], log: Path) -> Measurement:
                        report["sys"])
 
 
-def correct_cmd(dataset: Path, out: Path, *extra: str) -> list[str]:
-    return [*slicetime_command(), "correct", str(dataset), "--out", str(out), *extra]
+def _say(prefix: str, m: Measurement) -> None:
+    print(f"  {prefix:<34} {m.wall_s:7.2f} s, {m.peak_rss_bytes / MIB:6.0f} MiB", flush=True)
 
 
-def run_correct(label: str, dataset: Path, work: Path, tag: str, *extra: str) -> Measurement:
+def expected_outputs(spec: Spec, out: Path) -> list[Path]:
+    from slicetime.pipelines.correct import output_name
+
+    return [out / rel.parent / output_name(rel.name, DESC) for rel in spec.images]
+
+
+def run_correct(label: str, dataset: Path, spec: Spec, work: Path, tag: str,
+                *extra: str) -> Measurement:
     out = work / f"out-{tag}"
     shutil.rmtree(out, ignore_errors=True)
-    result = measure(label, correct_cmd(dataset, out, *extra), work / "logs" / f"{tag}.log")
-    produced = out / SUBJECT_PATH.with_name(
-        SUBJECT_PATH.name.replace("_bold", "_desc-timealigned_bold"))
-    if not produced.is_file():
-        raise SystemExit(f"{label}: no output at {produced}")
+    cmd = [*slicetime_command(), "correct", str(dataset), "--out", str(out), *extra]
+    result = measure(label, cmd, work / "logs" / f"{tag}.log")
+    missing = [p for p in expected_outputs(spec, out) if not p.is_file()]
+    if missing:
+        raise SystemExit(f"{label}: no output at {', '.join(map(str, missing))} "
+                         f"(log: {work / 'logs' / f'{tag}.log'})")
     shutil.rmtree(out, ignore_errors=True)
+    _say(label, result)
     return result
 
 
-def run_baseline(dataset: Path, work: Path, tag: str) -> Measurement:
+def run_baseline(dataset: Path, spec: Spec, work: Path, tag: str,
+                 label: str = "baseline (nibabel)") -> Measurement:
     out = work / f"baseline-{tag}.nii.gz"
     out.unlink(missing_ok=True)
-    result = measure("baseline", [sys.executable, "-c", BASELINE, str(dataset / SUBJECT_PATH),
-                                  str(out)], work / "logs" / f"baseline-{tag}.log")
+    result = measure("baseline", [sys.executable, "-c", BASELINE,
+                                  str(dataset / spec.images[0]), str(out)],
+                     work / "logs" / f"baseline-{tag}.log")
     out.unlink(missing_ok=True)
+    _say(label, result)
     return result
 
 
@@ -415,15 +615,15 @@ def _print_profile_rows(title: str, rows: list[dict[str, Any]]) -> None:
 # reporting
 
 
-def _median(values: list[Measurement]) -> float:
+def _median(values: Sequence[Measurement]) -> float:
     return statistics.median(m.wall_s for m in values)
 
 
-def _peak(values: list[Measurement]) -> int:
+def _peak(values: Sequence[Measurement]) -> int:
     return max(m.peak_rss_bytes for m in values)
 
 
-def _summary(values: list[Measurement]) -> dict[str, Any]:
+def _summary(values: Sequence[Measurement]) -> dict[str, Any]:
     return {"wall_s_median": round(_median(values), 3),
             "wall_s": [round(m.wall_s, 3) for m in values],
             "cpu_s": [round(m.user_s + m.sys_s, 3) for m in values],
@@ -431,142 +631,330 @@ def _summary(values: list[Measurement]) -> dict[str, Any]:
             "runs": [asdict(m) for m in values]}
 
 
-def _row(name: str, values: list[Measurement], base_wall: float, f32: int) -> str:
+def _ratios(values: Sequence[Measurement], base_wall: float, f32: int) -> dict[str, Any]:
+    return _summary(values) | {"time_ratio": round(_median(values) / base_wall, 3),
+                               "peak_over_float32": round(_peak(values) / f32, 3)}
+
+
+HEAD = (f"{'command':<34} {'wall s':>8} {'cpu s':>8} {'÷ base':>8} {'peak MiB':>9} "
+        f"{'÷ f32':>8}")
+
+
+def _row(name: str, values: Sequence[Measurement], base_wall: float, f32: int) -> str:
     wall, peak = _median(values), _peak(values)
     cpu = statistics.median(m.user_s + m.sys_s for m in values)
-    return (f"{name:<28} {wall:8.2f} {cpu:8.2f} {wall / base_wall:8.2f} "
+    return (f"{name:<34} {wall:8.2f} {cpu:8.2f} {wall / base_wall:8.2f} "
             f"{peak / MIB:9.0f} {peak / f32:8.2f}")
 
 
-def main() -> int:
-    parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
-    parser.add_argument("--work", type=Path, default=REPO / "bench-results" / "work",
-                        help="folder for the cached run, outputs and logs")
-    parser.add_argument("--out", type=Path, default=REPO / "bench-results" / "correct.json")
-    parser.add_argument("--volumes", type=int, default=600)
-    parser.add_argument("--repeat", type=int, default=3)
-    parser.add_argument("--warmup", type=int, default=1,
-                        help="unmeasured baseline + correct runs first")
-    parser.add_argument("--cap", default="160M", help="--max-memory value for the capped run")
-    parser.add_argument("--profile", action=argparse.BooleanOptionalAction, default=True,
-                        help="also time the phases of one run and cProfile another")
-    parser.add_argument("--top", type=int, default=25, help="cProfile rows shown")
-    args = parser.parse_args()
+def _verdict(met: bool) -> str:
+    return "MET" if met else "NOT MET"
+
+
+def _cap_target(capped: Sequence[Measurement], cap: int, overhead: int,
+                cap_text: str) -> dict[str, Any]:
+    limit = cap + overhead
+    peak = _peak(capped)
+    return {"value": round(peak / limit, 3), "target": "<= 1", "cap": cap_text,
+            "cap_mib": round(cap / MIB, 1), "overhead_mib": round(overhead / MIB, 1),
+            "peak_mib": round(peak / MIB, 1), "met": peak <= limit}
+
+
+def _print_cap(cap_text: str, target: dict[str, Any]) -> None:
+    print(f"--max-memory {cap_text}: peak {target['peak_mib']:.0f} MiB vs cap "
+          f"{target['cap_mib']:.0f} MiB + overhead {target['overhead_mib']:.0f} MiB = "
+          f"{target['cap_mib'] + target['overhead_mib']:.0f} MiB  {_verdict(target['met'])}")
+
+
+# ---------------------------------------------------------------------------
+# the three parts
+
+
+@dataclass
+class Context:
+    args: argparse.Namespace
+    work: Path
+    overhead: list[Measurement]
+    results: dict[str, Any]
+    targets: dict[str, Any]
+    tables: list[Callable[[], None]]
+
+    @property
+    def overhead_peak(self) -> int:
+        return _peak(self.overhead)
+
+    def save(self, complete: bool) -> None:
+        out: Path = self.args.out
+        out.parent.mkdir(parents=True, exist_ok=True)
+        out.write_text(json.dumps(self.results | {"targets": self.targets,
+                                                  "complete": complete}, indent=2))
+
+
+def standard_part(ctx: Context, spec: Spec, dataset: Path) -> None:
+    args, work = ctx.args, ctx.work
     from slicetime.pipelines.correct import parse_size
 
-    work: Path = args.work.resolve()
-    work.mkdir(parents=True, exist_ok=True)
-    dataset = make_run(work / f"ds-v{args.volumes}", args.volumes)
-    image = dataset / SUBJECT_PATH
-    f32 = int(np.prod(SHAPE)) * args.volumes * 4
     cap = parse_size(args.cap)
-    print(f"run: {image.name} {[*SHAPE, args.volumes]} int16, "
-          f"{image.stat().st_size / MIB:.0f} MiB compressed, float32 array {f32 / MIB:.0f} MiB; "
-          f"{os.cpu_count()} CPUs", flush=True)
-
-    overhead = [measure("overhead", [sys.executable, "-c", OVERHEAD],
-                        work / "logs" / f"overhead-{i}.log") for i in range(args.repeat)]
+    f32 = spec.float32_bytes
     for i in range(args.warmup):  # page cache, CPU frequency, first-run effects
-        run_baseline(dataset, work, f"warmup-{i}")
-        run_correct("correct (warm-up)", dataset, work, f"warmup-{i}")
+        run_baseline(dataset, spec, work, f"warmup-{i}")
+        run_correct("correct (warm-up)", dataset, spec, work, f"warmup-{i}")
     baseline: list[Measurement] = []
     fourier: list[Measurement] = []
     for i in range(args.repeat):
-        baseline.append(run_baseline(dataset, work, str(i)))
-        print(f"  baseline #{i + 1}: {baseline[-1].wall_s:6.2f} s, "
-              f"{baseline[-1].peak_rss_bytes / MIB:5.0f} MiB", flush=True)
-        fourier.append(run_correct("correct (fourier)", dataset, work, f"fourier-{i}"))
-        print(f"  correct  #{i + 1}: {fourier[-1].wall_s:6.2f} s, "
-              f"{fourier[-1].peak_rss_bytes / MIB:5.0f} MiB", flush=True)
-    cubic = [run_correct("correct --method cubic", dataset, work, "cubic", "--method", "cubic")]
-    capped = [run_correct(f"correct --max-memory {args.cap}", dataset, work, "capped",
+        baseline.append(run_baseline(dataset, spec, work, str(i)))
+        fourier.append(run_correct("correct (fourier)", dataset, spec, work, f"fourier-{i}"))
+    methods: dict[str, list[Measurement]] = {"fourier": fourier}
+    for method in ("sinc", "cubic", "linear"):
+        methods[method] = [run_correct(f"correct --method {method}", dataset, spec, work,
+                                       method, "--method", method)]
+    capped = [run_correct(f"correct --max-memory {args.cap}", dataset, spec, work, "capped",
                           "--max-memory", args.cap)]
 
     base_wall = _median(baseline)
-    over_peak = _peak(overhead)
     time_ratio = _median(fourier) / base_wall
     mem_ratio = _peak(fourier) / f32
-    cap_limit = cap + over_peak
-    targets = {
+    ctx.targets |= {
         "time_ratio": {"value": round(time_ratio, 3), "target": "<= 0.5",
                        "met": time_ratio <= 0.5},
         "peak_over_float32": {"value": round(mem_ratio, 3), "target": "< 2",
                               "met": mem_ratio < 2},
-        "max_memory_peak_over_cap_plus_overhead": {
-            "value": round(_peak(capped) / cap_limit, 3), "target": "<= 1",
-            "cap_mib": round(cap / MIB, 1), "overhead_mib": round(over_peak / MIB, 1),
-            "peak_mib": round(_peak(capped) / MIB, 1), "met": _peak(capped) <= cap_limit},
+        "max_memory_peak_over_cap_plus_overhead": _cap_target(capped, cap, ctx.overhead_peak,
+                                                              args.cap),
+    }
+    ctx.results |= {
+        "run": spec.describe(dataset), "repeat": args.repeat,
+        "baseline": _summary(baseline),
+        **{f"correct_{name}": _summary(values) for name, values in methods.items()},
+        "correct_max_memory": _summary(capped) | {"cap": args.cap},
+        "methods": {name: _ratios(values, base_wall, f32) for name, values in methods.items()},
     }
 
-    print()
-    print(f"{'command':<28} {'wall s':>8} {'cpu s':>8} {'÷ base':>8} {'peak MiB':>9} "
-          f"{'÷ f32':>8}")
-    print("-" * 74)
-    for name, values in (("imports only (overhead)", overhead), ("baseline (nibabel)", baseline),
-                         ("correct (fourier)", fourier), ("correct --method cubic", cubic),
-                         (f"correct --max-memory {args.cap}", capped)):
-        print(_row(name, values, base_wall, f32))
-    print(f"(wall: median of {args.repeat} for overhead, baseline and fourier, else one run; "
-          "peak: the largest)")
-    print()
-    print(f"time  correct / baseline      {time_ratio:6.3f}  (target ≤ 0.5)  "
-          f"{'MET' if targets['time_ratio']['met'] else 'NOT MET'}")
-    print(f"peak  correct / float32 array {mem_ratio:6.3f}  (target < 2)    "
-          f"{'MET' if targets['peak_over_float32']['met'] else 'NOT MET'}")
-    print(f"--max-memory {args.cap}: peak {_peak(capped) / MIB:.0f} MiB vs cap "
-          f"{cap / MIB:.0f} MiB + overhead {over_peak / MIB:.0f} MiB = {cap_limit / MIB:.0f} MiB  "
-          f"{'MET' if targets['max_memory_peak_over_cap_plus_overhead']['met'] else 'NOT MET'}")
+    def table() -> None:
+        print(f"\n{spec.title()}")
+        print(HEAD)
+        print("-" * len(HEAD))
+        rows: list[tuple[str, list[Measurement]]] = [
+            ("imports only (overhead)", ctx.overhead), ("baseline (nibabel)", baseline),
+            ("correct (fourier)", fourier),
+            *((f"correct --method {m}", methods[m]) for m in ("sinc", "cubic", "linear")),
+            (f"correct --max-memory {args.cap}", capped)]
+        for name, values in rows:
+            print(_row(name, values, base_wall, f32))
+        print(f"(wall: median of {args.repeat} for overhead, baseline and fourier, else one "
+              "run; peak: the largest)")
+        print(f"time  fourier / baseline      {time_ratio:6.3f}  (target ≤ 0.5)  "
+              f"{_verdict(ctx.targets['time_ratio']['met'])}")
+        print(f"peak  fourier / float32 array {mem_ratio:6.3f}  (target < 2)    "
+              f"{_verdict(ctx.targets['peak_over_float32']['met'])}")
+        _print_cap(args.cap, ctx.targets["max_memory_peak_over_cap_plus_overhead"])
 
+    ctx.tables.append(table)
+
+
+def multiband_part(ctx: Context, spec: Spec, dataset: Path) -> None:
+    args, work = ctx.args, ctx.work
+    from slicetime.pipelines.correct import parse_size
+
+    cap = parse_size(args.multiband_cap)
+    f32 = spec.float32_bytes
+    warm_page_cache(dataset, spec)
+    baseline = [run_baseline(dataset, spec, work, "mb", "multiband: baseline (nibabel)")]
+    fourier = [run_correct("multiband: correct (fourier)", dataset, spec, work, "mb-fourier")]
+    capped = [run_correct(f"multiband: correct --max-memory {args.multiband_cap}", dataset,
+                          spec, work, "mb-capped", "--max-memory", args.multiband_cap)]
+    base_wall = _median(baseline)
+    ctx.targets["multiband_max_memory_peak_over_cap_plus_overhead"] = _cap_target(
+        capped, cap, ctx.overhead_peak, args.multiband_cap)
+    ctx.results["multiband"] = {
+        "run": spec.describe(dataset), "baseline": _summary(baseline),
+        "correct_fourier": _ratios(fourier, base_wall, f32),
+        "correct_max_memory": _ratios(capped, base_wall, f32) | {"cap": args.multiband_cap},
+        "note": "one run each; time and memory ratios without a design target",
+    }
+
+    def table() -> None:
+        print(f"\n{spec.title()}")
+        print(HEAD)
+        print("-" * len(HEAD))
+        for name, values in (("baseline (nibabel)", baseline), ("correct (fourier)", fourier),
+                             (f"correct --max-memory {args.multiband_cap}", capped)):
+            print(_row(name, values, base_wall, f32))
+        print("(one run each; no design target for the ratios of this run)")
+        _print_cap(args.multiband_cap,
+                   ctx.targets["multiband_max_memory_peak_over_cap_plus_overhead"])
+
+    ctx.tables.append(table)
+
+
+def batch_part(ctx: Context, spec: Spec, dataset: Path) -> None:
+    args, work = ctx.args, ctx.work
+    warm_page_cache(dataset, spec)
+    by_jobs: dict[int, list[Measurement]] = {1: [], 2: []}
+    for i in range(args.batch_repeat):
+        for jobs in by_jobs:
+            by_jobs[jobs].append(run_correct(f"batch: correct --jobs {jobs}", dataset, spec,
+                                             work, f"batch-jobs{jobs}-{i}", "--jobs", str(jobs)))
+    serial = _median(by_jobs[1])
+    ratio = _median(by_jobs[2]) / serial
+    ctx.results["batch"] = {
+        "run": spec.describe(dataset), "repeat": args.batch_repeat,
+        **{f"jobs_{jobs}": _summary(values) for jobs, values in by_jobs.items()},
+        "jobs_2_over_jobs_1": round(ratio, 3),
+        "note": "peak: the largest single process (the wrapper's RUSAGE_CHILDREN), not the "
+                "sum over the worker processes",
+    }
+
+    def table() -> None:
+        print(f"\n{spec.title()}")
+        head = (f"{'command':<34} {'wall s':>8} {'cpu s':>8} {'÷ jobs 1':>9} "
+                f"{'peak MiB':>9}")
+        print(head)
+        print("-" * len(head))
+        for jobs, values in by_jobs.items():
+            cpu = statistics.median(m.user_s + m.sys_s for m in values)
+            print(f"{f'correct --jobs {jobs}':<34} {_median(values):8.2f} {cpu:8.2f} "
+                  f"{_median(values) / serial:9.2f} {_peak(values) / MIB:9.0f}")
+        print(f"(wall: median of {args.batch_repeat}; peak: the largest single process, not "
+              f"the sum; ideal ÷ on {os.cpu_count()} CPUs: {1 / min(2, os.cpu_count() or 1):.2f})")
+
+    ctx.tables.append(table)
+
+
+def profile_part(ctx: Context, dataset: Path) -> None:
+    args, work = ctx.args, ctx.work
+    from slicetime.pipelines.correct import parse_size
+
+    cap = parse_size(args.cap)
     profile: dict[str, Any] = {}
-    if args.profile:
-        for key, method, run_cap in (("fourier", "fourier", None),
-                                     ("max_memory", "fourier", cap)):
-            phases = phase_profile(dataset, work, method, run_cap, f"phases-{key}")
-            profile[f"phases_{key}"] = phases
-            title = "fourier" if run_cap is None else f"fourier, --max-memory {args.cap}"
-            print(f"\nphases of one correct ({title}; in-process wall clock; "
-                  f"imports {phases['imports_s']:.2f} s, correct_paths "
-                  f"{phases['correct_paths_s']:.2f} s; peak RSS "
-                  f"{phases['peak_rss_before_bytes'] / MIB:.0f} MiB before correct_paths, "
-                  f"{phases['peak_rss_bytes'] / MIB:.0f} MiB after):")
-            print(f"  {'phase':<48} {'wall s':>7} {'share':>6} {'calls':>6} "
-                  f"{'peak +MiB':>9} {'peak MiB':>9}")
-            for name, entry in sorted(phases["phases"].items()):
-                share = entry["s"] / phases["correct_paths_s"]
-                after = entry["peak_after_bytes"]
-                print(f"  {name:<48} {entry['s']:7.2f} {share:6.1%} {entry['calls']:6d} "
-                      f"{entry['peak_raised_bytes'] / MIB:9.0f} "
-                      f"{after / MIB if after else float('nan'):9.0f}")
-            print("  (peak +MiB: how much the peak RSS rose inside the phase; peak MiB: the "
-                  "highest peak it left; nested phases count in their parents too)")
-        profiled = cprofile(dataset, work, args.top)
-        profile["cprofile"] = profiled
-        print(f"\ncProfile of one correct_paths call (fourier, after the imports; main "
-              f"thread only, the gzip helper threads appear as lock waits; total "
-              f"{profiled['total_s']:.2f} s; {profiled['file']})")
-        _print_profile_rows(f"top {args.top} by cumulative time:", profiled["top_by_cumtime"])
-        _print_profile_rows(f"top {args.top} by own time:", profiled["top_by_tottime"])
-        imports = import_times(15)
-        profile["slowest_imports"] = imports
-        print("\nslowest imports of the correct command (python -X importtime, cumulative):")
-        for row in imports:
-            print(f"  {row['cumulative_s']:6.3f} s  {row['module']}")
+    for key, method, run_cap in (("fourier", "fourier", None), ("max_memory", "fourier", cap)):
+        phases = phase_profile(dataset, work, method, run_cap, f"phases-{key}")
+        profile[f"phases_{key}"] = phases
+        title = "fourier" if run_cap is None else f"fourier, --max-memory {args.cap}"
+        print(f"\nphases of one correct ({title}; standard run; in-process wall clock; "
+              f"imports {phases['imports_s']:.2f} s, correct_paths "
+              f"{phases['correct_paths_s']:.2f} s; peak RSS "
+              f"{phases['peak_rss_before_bytes'] / MIB:.0f} MiB before correct_paths, "
+              f"{phases['peak_rss_bytes'] / MIB:.0f} MiB after):")
+        print(f"  {'phase':<48} {'wall s':>7} {'share':>6} {'calls':>6} "
+              f"{'peak +MiB':>9} {'peak MiB':>9}")
+        for name, entry in sorted(phases["phases"].items()):
+            share = entry["s"] / phases["correct_paths_s"]
+            after = entry["peak_after_bytes"]
+            print(f"  {name:<48} {entry['s']:7.2f} {share:6.1%} {entry['calls']:6d} "
+                  f"{entry['peak_raised_bytes'] / MIB:9.0f} "
+                  f"{after / MIB if after else float('nan'):9.0f}")
+        print("  (peak +MiB: how much the peak RSS rose inside the phase; peak MiB: the "
+              "highest peak it left; nested phases count in their parents too)")
+        if phases.get("missing"):
+            print("  note: not timed, no longer in slicetime.pipelines.correct: "
+                  + ", ".join(phases["missing"]))
+    profiled = cprofile(dataset, work, args.top)
+    profile["cprofile"] = profiled
+    print(f"\ncProfile of one correct_paths call (fourier, standard run, after the imports; "
+          f"main thread only, the gzip helper threads appear as lock waits; total "
+          f"{profiled['total_s']:.2f} s; {profiled['file']})")
+    _print_profile_rows(f"top {args.top} by cumulative time:", profiled["top_by_cumtime"])
+    _print_profile_rows(f"top {args.top} by own time:", profiled["top_by_tottime"])
+    imports = import_times(15)
+    profile["slowest_imports"] = imports
+    print("\nslowest imports of the correct command (python -X importtime, cumulative):")
+    for row in imports:
+        print(f"  {row['cumulative_s']:6.3f} s  {row['module']}")
+    ctx.results["profile"] = profile
 
-    out: Path = args.out
-    out.parent.mkdir(parents=True, exist_ok=True)
-    out.write_text(json.dumps({
+
+def _parts(text: str) -> list[str]:
+    chosen = [p.strip() for p in text.split(",") if p.strip()]
+    unknown = sorted(set(chosen) - set(PARTS))
+    if unknown or not chosen:
+        raise argparse.ArgumentTypeError(
+            f"choose from {','.join(PARTS)} (got {text!r})")
+    return [p for p in PARTS if p in chosen]
+
+
+def _positive(text: str) -> int:
+    value = int(text)
+    if value < 1:
+        raise argparse.ArgumentTypeError(f"must be at least 1 (got {value})")
+    return value
+
+
+def main() -> int:
+    parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
+    parser.add_argument("--runs", type=_parts, default=list(PARTS),
+                        help=f"comma-separated parts to measure (default: {','.join(PARTS)})")
+    parser.add_argument("--work", type=Path, default=REPO / "bench-results" / "work",
+                        help="folder for the cached datasets, outputs and logs")
+    parser.add_argument("--out", type=Path, default=REPO / "bench-results" / "correct.json")
+    parser.add_argument("--volumes", type=_positive, default=600,
+                        help="volumes of the standard run")
+    parser.add_argument("--repeat", type=_positive, default=3,
+                        help="baseline/fourier pairs on the standard run; overhead runs")
+    parser.add_argument("--warmup", type=int, default=1,
+                        help="unmeasured baseline + correct runs first (standard run)")
+    parser.add_argument("--cap", default="160M", help="--max-memory of the standard run")
+    parser.add_argument("--multiband-volumes", type=_positive, default=1200,
+                        help="volumes of the multiband run (fewer only to check this script)")
+    parser.add_argument("--multiband-cap", default="1G",
+                        help="--max-memory of the multiband run")
+    parser.add_argument("--batch-runs", type=_positive, default=6, help="runs in the batch")
+    parser.add_argument("--batch-volumes", type=_positive, default=200,
+                        help="volumes of each batch run")
+    parser.add_argument("--batch-repeat", type=_positive, default=3,
+                        help="--jobs 1 / --jobs 2 pairs on the batch")
+    parser.add_argument("--profile", action=argparse.BooleanOptionalAction, default=True,
+                        help="also time the phases of one standard run and cProfile another")
+    parser.add_argument("--top", type=int, default=25, help="cProfile rows shown")
+    args = parser.parse_args()
+    from slicetime.pipelines.correct import parse_size
+
+    for option in ("cap", "multiband_cap"):
+        try:
+            parse_size(getattr(args, option))
+        except ValueError as exc:
+            parser.error(f"--{option.replace('_', '-')}: {exc}")
+    work: Path = args.work.resolve()
+    work.mkdir(parents=True, exist_ok=True)
+    specs = {"standard": standard_spec(args.volumes),
+             "multiband": multiband_spec(args.multiband_volumes),
+             "batch": batch_spec(args.batch_runs, args.batch_volumes)}
+    datasets = {key: make_dataset(work / specs[key].folder, specs[key]) for key in args.runs}
+    for key, dataset in datasets.items():
+        described = specs[key].describe(dataset)
+        print(f"{specs[key].title()}; {described['compressed_mib']:.0f} MiB compressed",
+              flush=True)
+    print(f"{os.cpu_count()} CPUs", flush=True)
+    if "multiband" in datasets:
+        # the baseline holds the stored array and its float32 copy at once
+        need = specs["multiband"].float32_bytes * 3 // 2 + GIB
+        free = available_memory()
+        if free is not None and free < need:
+            print(f"warning: {free / GIB:.1f} GiB of memory available, the multiband "
+                  f"baseline needs about {need / GIB:.1f} GiB (skip it with --runs)", flush=True)
+
+    overhead = [measure("overhead", [sys.executable, "-c", OVERHEAD],
+                        work / "logs" / f"overhead-{i}.log") for i in range(args.repeat)]
+    ctx = Context(args, work, overhead, results={
         "machine": platform.platform(), "python": platform.python_version(),
-        "cpus": os.cpu_count(),
-        "run": {"shape": [*SHAPE, args.volumes], "dtype": "int16", "tr_s": TR,
-                "compressed_mib": round(image.stat().st_size / MIB, 1),
-                "float32_mib": round(f32 / MIB, 1), "gzip_level": GZIP_LEVEL},
-        "repeat": args.repeat,
-        "overhead": _summary(overhead), "baseline": _summary(baseline),
-        "correct_fourier": _summary(fourier), "correct_cubic": _summary(cubic),
-        "correct_max_memory": _summary(capped) | {"cap": args.cap},
-        "targets": targets, "profile": profile,
-    }, indent=2))
-    print(f"\nwritten {out}")
+        "cpus": os.cpu_count(), "parts": args.runs,
+        "runs": {key: specs[key].describe(dataset) for key, dataset in datasets.items()},
+        "overhead": _summary(overhead)}, targets={}, tables=[])
+    parts = {"standard": standard_part, "multiband": multiband_part, "batch": batch_part}
+    for key in args.runs:
+        print(f"\n{key}:", flush=True)
+        parts[key](ctx, specs[key], datasets[key])
+        ctx.save(complete=False)
+
+    for table in ctx.tables:
+        table()
+    if args.profile:
+        if "standard" in datasets:
+            profile_part(ctx, datasets["standard"])
+        else:
+            print("\n(--profile: skipped, it profiles the standard run, which is not in --runs)")
+    ctx.save(complete=True)
+    print(f"\nwritten {args.out}")
     return 0
 
 

@@ -264,8 +264,9 @@ def plan_budget(
         return Budget(False, batch, BLOCK_VOXELS, threads)
     buffer_bytes = slice_bytes * n_slices
     engine_bytes = threads * block_bytes
-    if buffer_bytes + max(engine_bytes, 4 * per_volume) <= cap:  # all fits: no scratch file
-        batch = max(1, min(n_volumes, (cap - buffer_bytes) // per_volume, 64))
+    # batches as small as without a cap (16 MiB), and at most a quarter of the cap
+    batch = max(1, min(n_volumes, (16 << 20) // per_volume, cap // (4 * per_volume)))
+    if buffer_bytes + max(engine_bytes, batch * per_volume) <= cap:  # fits: no scratch file
         return Budget(False, int(batch), BLOCK_VOXELS, threads)
     smallest_block = 16
     need = max(2 * slice_bytes + smallest_block * per_voxel, per_volume)
@@ -274,9 +275,11 @@ def plan_budget(
             f"{shown}: --max-memory {size_text(cap)} is too small for this run; one slice's "
             f"series need about {size_text(need)}"
         )
-    batch = max(1, min(n_volumes, cap // per_volume, 256))
     rows = max(smallest_block, min(BLOCK_VOXELS, (cap - 2 * slice_bytes) // per_voxel))
-    return Budget(True, int(batch), int(rows), 1)
+    # each engine thread holds its slice twice (read, written back) and one block
+    per_thread = 2 * slice_bytes + rows * per_voxel
+    disk_threads = max(1, min(threads, cap // per_thread))
+    return Budget(True, int(batch), int(rows), int(disk_threads))
 
 
 class _MemoryBuffer:
