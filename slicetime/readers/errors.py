@@ -87,9 +87,9 @@ def display_name(path: Path | str, display: str | None) -> str:
     return display if display is not None else str(path)
 
 
-def _annex_target(path: Path) -> str | None:
+def _annex_target(path: str | os.PathLike[str]) -> str | None:
     """The first link target on the way from ``path`` that points into an annex store."""
-    current = str(path)
+    current = os.fspath(path)
     for _ in range(_MAX_LINK_HOPS):
         try:
             target = os.readlink(current)
@@ -129,7 +129,9 @@ def os_error(exc: OSError, shown: str, *, what: str = "file") -> ReadError:
     return ReadError("file/unreadable", shown, None, f"{shown}: cannot read the {what}: {reason}")
 
 
-def check_regular_file(path: Path, shown: str, *, what: str = "file") -> os.stat_result:
+def check_regular_file(
+    path: str | os.PathLike[str], shown: str, *, what: str = "file"
+) -> os.stat_result:
     """Return the ``stat`` of ``path`` (following links) or raise the matching ReadError.
 
     Distinguishes a missing path, a broken symlink (``file/missing``), a symlink
@@ -144,7 +146,7 @@ def check_regular_file(path: Path, shown: str, *, what: str = "file") -> os.stat
     except OSError as exc:
         raise os_error(exc, shown, what=what) from None
     try:
-        st = os.stat(path)
+        st = os.stat(path) if stat.S_ISLNK(lst.st_mode) else lst  # not a link: lstat is stat
     except FileNotFoundError:
         annex = _annex_target(path) if stat.S_ISLNK(lst.st_mode) else None
         if annex is not None:

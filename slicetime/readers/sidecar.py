@@ -37,7 +37,8 @@ import functools
 import json
 import os
 import re
-from collections.abc import Mapping
+import threading
+from collections.abc import Callable, Mapping
 from importlib import resources
 from pathlib import Path
 from typing import Any
@@ -90,6 +91,82 @@ def _validators() -> dict[str, jsonschema.protocols.Validator]:
 #: The sidecar fields slicetime knows the type of (keys of the shipped schema).
 TIMING_FIELDS: frozenset[str] = frozenset(load_schema()["properties"])
 
+Check = Callable[[Any], bool]
+
+#: schema keywords :func:`_quick_check` understands; with any other, it defers to jsonschema
+_QUICK_KEYWORDS = frozenset(
+    {"description", "type", "enum", "items", "minItems", "minimum", "exclusiveMinimum", "anyOf"}
+)
+
+
+def _never(_value: Any) -> bool:
+    return False
+
+
+def _quick_check(schema: Mapping[str, Any]) -> Check:
+    """A fast predicate that is True only for values ``schema`` certainly accepts.
+
+    It understands the few keywords the shipped schema uses, for the value types JSON
+    parsing produces (``int``, ``float``, ``str``, ``list``); anything else (another
+    keyword, a bool, a float where an integer is wanted, a subclass) gives False, and
+    the caller asks jsonschema, which also words the finding. So the predicate only
+    decides how fast a valid value passes, never what is reported.
+    """
+    if not _QUICK_KEYWORDS.issuperset(schema):
+        return _never
+    if "anyOf" in schema:
+        if len(schema) != 1 + ("description" in schema):
+            return _never
+        options = [_quick_check(option) for option in schema["anyOf"]]
+        return lambda value: any(option(value) for option in options)
+    kind = schema.get("type")
+    low = schema.get("minimum")
+    above = schema.get("exclusiveMinimum")
+    if kind in ("number", "integer"):
+        if "enum" in schema or "items" in schema or "minItems" in schema:
+            return _never
+        accepted = (int, float) if kind == "number" else (int,)
+        if not all(type(b) in (int, float) for b in (low, above) if b is not None):
+            return _never
+
+        def number(value: Any) -> bool:
+            return (
+                type(value) in accepted
+                and (low is None or value >= low)
+                and (above is None or value > above)
+            )
+
+        return number
+    if kind == "string":
+        if low is not None or above is not None or "items" in schema or "minItems" in schema:
+            return _never
+        enum = schema.get("enum")
+        if enum is None:
+            return lambda value: type(value) is str
+        if not all(type(option) is str for option in enum):
+            return _never
+        options = frozenset(enum)
+        return lambda value: type(value) is str and value in options
+    if kind == "array":
+        if low is not None or above is not None or "enum" in schema:
+            return _never
+        min_items = schema.get("minItems", 0)
+        items = schema.get("items")
+        if type(min_items) is not int or not isinstance(items, Mapping | None):
+            return _never
+        item = _quick_check(items) if items is not None else None
+        return lambda value: (
+            type(value) is list
+            and len(value) >= min_items
+            and (item is None or all(item(v) for v in value))
+        )
+    return _never
+
+
+@functools.cache
+def _quick_checks() -> dict[str, Check]:
+    return {key: _quick_check(sub) for key, sub in load_schema()["properties"].items()}
+
 
 class _NonFinite:
     """Placeholder for a non-finite number while parsing; becomes ``None``."""
@@ -129,14 +206,19 @@ def load_sidecar(
     Returns ``(data, findings)``; ``data`` is ``None`` only when the file is
     unusable (see the module docstring for codes and severities).
     """
-    p = Path(path)
-    shown = display_name(p, display)
+    p = os.fspath(path)
+    shown = display if display is not None else display_name(Path(p), None)
     try:
         st = check_regular_file(p, shown, what="sidecar")
         if st.st_size > MAX_SIDECAR_BYTES:
             return None, [_too_large(shown, st.st_size)]
         with open(p, "rb") as fh:
-            raw = fh.read(MAX_SIDECAR_BYTES + 1)
+            # ask for the size on disk (plus one byte, to see growth): a read of the 16 MiB
+            # limit would allocate that much for every small file
+            want = st.st_size + 1
+            raw = fh.read(want)
+            if len(raw) == want:  # the file grew since the stat: read on up to the limit
+                raw += fh.read(MAX_SIDECAR_BYTES + 1 - want)
     except ReadError as err:
         return None, [err.to_finding()]
     except OSError as exc:
@@ -212,35 +294,9 @@ def parse_sidecar_bytes(raw: bytes, shown: str) -> tuple[dict[str, Any] | None, 
             ),
         ]
 
-    constants: list[_NonFinite] = []
-    duplicates: list[tuple[dict[str, Any], str, list[Any]]] = []
-
-    def on_constant(literal: str) -> _NonFinite:
-        marker = _NonFinite(literal, len(constants))
-        constants.append(marker)
-        return marker
-
-    def on_float(literal: str) -> float | _NonFinite:
-        value = float(literal)
-        if value in (float("inf"), float("-inf")):
-            return on_constant(literal)
-        return value
-
-    def on_pairs(pairs: list[tuple[str, Any]]) -> dict[str, Any]:
-        obj = dict(pairs)
-        if len(obj) != len(pairs):
-            seen: dict[str, list[Any]] = {}
-            for key, value in pairs:
-                seen.setdefault(key, []).append(value)
-            for key, values in seen.items():
-                if len(values) > 1:
-                    duplicates.append((obj, key, values))
-        return obj
-
+    parser = _parser()
     try:
-        data = json.loads(
-            text, object_pairs_hook=on_pairs, parse_constant=on_constant, parse_float=on_float
-        )
+        data, constants, duplicates = parser.parse(text)
     except json.JSONDecodeError as exc:
         return None, [
             *findings,
@@ -306,6 +362,65 @@ def parse_sidecar_bytes(raw: bytes, shown: str) -> tuple[dict[str, Any] | None, 
             )
         )
     return cleaned, findings
+
+
+class _StrictParser:
+    """A JSON decoder whose hooks note what plain parsing would hide: non-finite numbers
+    (kept as :class:`_NonFinite` placeholders, numbered in text order) and repeated keys.
+
+    The decoder is made once per thread (making one costs more than parsing a small
+    sidecar); :meth:`parse` starts each document with fresh notes.
+    """
+
+    def __init__(self) -> None:
+        self.constants: list[_NonFinite] = []
+        self.duplicates: list[tuple[dict[str, Any], str, list[Any]]] = []
+        self.decoder = json.JSONDecoder(
+            object_pairs_hook=self.on_pairs,
+            parse_constant=self.on_constant,
+            parse_float=self.on_float,
+        )
+
+    def parse(
+        self, text: str
+    ) -> tuple[Any, list[_NonFinite], list[tuple[dict[str, Any], str, list[Any]]]]:
+        """Parse ``text`` as :func:`json.loads` would, with this parser's hooks."""
+        self.constants, self.duplicates = [], []
+        if text.startswith("\ufeff"):  # as json.loads does for text input
+            raise json.JSONDecodeError("Unexpected UTF-8 BOM (decode using utf-8-sig)", text, 0)
+        return self.decoder.decode(text), self.constants, self.duplicates
+
+    def on_constant(self, literal: str) -> _NonFinite:
+        marker = _NonFinite(literal, len(self.constants))
+        self.constants.append(marker)
+        return marker
+
+    def on_float(self, literal: str) -> float | _NonFinite:
+        value = float(literal)
+        if value in (float("inf"), float("-inf")):
+            return self.on_constant(literal)
+        return value
+
+    def on_pairs(self, pairs: list[tuple[str, Any]]) -> dict[str, Any]:
+        obj = dict(pairs)
+        if len(obj) != len(pairs):
+            seen: dict[str, list[Any]] = {}
+            for key, value in pairs:
+                seen.setdefault(key, []).append(value)
+            for key, values in seen.items():
+                if len(values) > 1:
+                    self.duplicates.append((obj, key, values))
+        return obj
+
+
+_THREAD = threading.local()
+
+
+def _parser() -> _StrictParser:
+    parser: _StrictParser | None = getattr(_THREAD, "parser", None)
+    if parser is None:
+        parser = _THREAD.parser = _StrictParser()
+    return parser
 
 
 def _too_deep(shown: str) -> Finding:
@@ -483,11 +598,13 @@ def check_types(
     Fields not in :data:`TIMING_FIELDS` are not checked.
     """
     schema = load_schema()["properties"]
-    validators = _validators()
+    quick = _quick_checks()
     out: list[Finding] = []
     for key in sorted(TIMING_FIELDS.intersection(data)):
         value = data[key]
-        errors = list(validators[key].iter_errors(value))
+        if quick[key](value):
+            continue
+        errors = list(_validators()[key].iter_errors(value))
         if not errors:
             continue
         err = jsonschema.exceptions.best_match(errors) or errors[0]
