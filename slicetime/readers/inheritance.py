@@ -44,6 +44,10 @@ _OWN_CACHE_SIZE = 256
 def relative_posix(path: Path, root: Path | None) -> str:
     """``path`` relative to ``root`` with forward slashes, else ``path`` as posix."""
     if root is not None:
+        if os.sep == "/":  # the common case without pathlib's part-by-part comparison
+            below = _strip_root(str(path), str(root))
+            if below is not None:
+                return below
         try:
             return path.relative_to(root).as_posix()
         except ValueError:
@@ -90,7 +94,6 @@ class Resolution:
 @dataclass
 class _Listing:
     jsons: list[tuple[str, ParsedName | None]]
-    names: frozenset[str]
     problem: Finding | None = None
 
 
@@ -104,31 +107,37 @@ class SidecarIndex:
     """
 
     def __init__(self, root: Path | None = None, *, check_field_types: bool = True) -> None:
-        self.root = Path(os.path.abspath(root)) if root is not None else None
+        # an index is cheap to make (one per chunk of runs, or per run): no Path until asked
+        self._root_text = os.path.abspath(root) if root is not None else None
         self.check_field_types = check_field_types
         self.parse_count = 0
         self._listings: dict[str, _Listing] = {}
+        self._folders: dict[tuple[str, str | None], _Folder] = {}
+        self._chains: dict[tuple[str, str | None], tuple[_Folder, ...]] = {}
         self._checked: dict[tuple[str, str], tuple[Finding, ...]] = {}
         self._shared: dict[tuple[str, str], tuple[dict[str, Any] | None, tuple[Finding, ...]]] = {}
         self._own: OrderedDict[
             tuple[str, str], tuple[dict[str, Any] | None, tuple[Finding, ...]]
         ] = OrderedDict()
 
+    @property
+    def root(self) -> Path | None:
+        """The default dataset root (absolute), or None."""
+        return Path(self._root_text) if self._root_text is not None else None
+
     # -- caches ---------------------------------------------------------------------------
 
-    def listing(self, directory: Path, root: Path | None = None) -> _Listing:
+    def listing(self, directory: Path | str, root: Path | str | None = None) -> _Listing:
         """The ``.json`` names in ``directory`` (parsed), cached."""
-        key = str(directory)
+        key = os.fspath(directory)
         cached = self._listings.get(key)
         if cached is not None:
             return cached
         jsons: list[tuple[str, ParsedName | None]] = []
-        names: set[str] = set()
         problem: Finding | None = None
         try:
-            with os.scandir(directory) as it:
+            with os.scandir(key) as it:
                 for entry in it:
-                    names.add(entry.name)
                     if not entry.name.endswith(".json") or entry.name.startswith("."):
                         continue
                     try:
@@ -140,7 +149,8 @@ class SidecarIndex:
         except FileNotFoundError:
             pass
         except OSError as exc:
-            shown = relative_posix(directory, root or self.root) or "."
+            base = os.fspath(root) if root is not None else self._root_text
+            shown = _relative_text(key, base) or "."
             problem = Finding(
                 "file/unreadable",
                 Severity.ERROR,
@@ -148,22 +158,52 @@ class SidecarIndex:
                 file=shown,
             )
         jsons.sort()
-        result = _Listing(jsons, frozenset(names), problem)
+        result = _Listing(jsons, problem)
         self._listings[key] = result
         return result
 
+    def _folder(self, directory: str, root: str | None) -> _Folder:
+        """The sidecars of ``directory`` with their paths and display names, cached."""
+        key = (directory, root)
+        cached = self._folders.get(key)
+        if cached is None:
+            listing = self.listing(directory, root)
+            candidates = tuple(
+                _Candidate(
+                    name=name,
+                    parsed=pn,
+                    inheritable=pn is not None and pn.extension == ".json",
+                    n_entities=len(pn.entities) if pn is not None else 0,
+                    path=os.path.join(directory, name),
+                    shown=_relative_text(os.path.join(directory, name), root),
+                )
+                for name, pn in listing.jsons
+            )
+            cached = _Folder(candidates, listing.problem)
+            self._folders[key] = cached
+        return cached
+
+    def _chain(self, folder: str, root: str | None) -> tuple[_Folder, ...]:
+        """The folders from ``root`` down to ``folder`` (only ``folder`` when outside root)."""
+        key = (folder, root)
+        cached = self._chains.get(key)
+        if cached is None:
+            cached = tuple(self._folder(d, root) for d in _folder_chain(folder, root))
+            self._chains[key] = cached
+        return cached
+
     def load(
-        self, path: Path, display: str, *, shared: bool = True
+        self, path: Path | str, display: str, *, shared: bool = True
     ) -> tuple[dict[str, Any] | None, tuple[Finding, ...]]:
         """Parse the sidecar at ``path`` once; ``shared=False`` uses a small LRU cache
         (for a data file's own sidecar, which no other run inherits)."""
-        key = (str(path), display)
+        key = (os.fspath(path), display)
         if key in self._shared:
             return self._shared[key]
         if key in self._own:
             self._own.move_to_end(key)
             return self._own[key]
-        data, findings = load_sidecar(path, display)
+        data, findings = load_sidecar(key[0], display)
         self.parse_count += 1
         value = (data, tuple(findings))
         if shared:
@@ -194,50 +234,48 @@ class SidecarIndex:
 
     def applicable(self, data_file: Path, root: Path | None = None) -> list[list[Path]]:
         """The applicable sidecars per folder level, top-down, each level in merge order."""
-        data_file = Path(os.path.abspath(data_file))
-        root_path = Path(os.path.abspath(root)) if root is not None else self.root
-        return [[p for p, _own in level] for level in self._levels(data_file, root_path)[0]]
+        data_path = os.path.abspath(data_file)
+        root_path = os.path.abspath(root) if root is not None else self._root_text
+        levels, _problems = self._levels(data_path, root_path, parse_name(_basename(data_path)))
+        return [[Path(c.path) for c, _own in level] for level in levels]
 
     def _levels(
-        self, data_file: Path, root: Path | None
-    ) -> tuple[list[list[tuple[Path, bool]]], list[Finding]]:
-        parsed = parse_name(data_file.name)
-        folder = data_file.parent
-        folders: list[Path] = [folder]
-        if root is not None and folder != root and folder.is_relative_to(root):
-            folders = [root]
-            for part in folder.relative_to(root).parts:
-                folders.append(folders[-1] / part)
-        own_name = image_stem(data_file.name) + ".json"
-        levels: list[list[tuple[Path, bool]]] = []
+        self, data_path: str, root: str | None, parsed: ParsedName | None
+    ) -> tuple[list[list[tuple[_Candidate, bool]]], list[Finding]]:
+        """The applicable sidecars of the data file at ``data_path`` (absolute, normalised)."""
+        folder, data_name = os.path.split(data_path)
+        folders = self._chain(folder, root)
+        own_name = image_stem(data_name) + ".json"
+        levels: list[list[tuple[_Candidate, bool]]] = []
         problems: list[Finding] = []
-        for i, directory in enumerate(folders):
-            listing = self.listing(directory, root)
-            if listing.problem is not None:
-                problems.append(listing.problem)
-            deepest = i == len(folders) - 1
-            chosen: list[tuple[tuple[int, int, str], Path, bool]] = []
-            for name, pn in listing.jsons:
-                own = deepest and name == own_name
-                if name == data_file.name:
+        deepest = len(folders) - 1
+        for i, entry in enumerate(folders):
+            if entry.problem is not None:
+                problems.append(entry.problem)
+            chosen: list[tuple[tuple[int, int, str], _Candidate, bool]] = []
+            for candidate in entry.candidates:
+                name = candidate.name
+                if name == data_name:
                     continue
+                own = i == deepest and name == own_name
                 if own or (
                     parsed is not None
-                    and pn is not None
-                    and pn.extension == ".json"
-                    and pn.applies_to(parsed)
+                    and candidate.inheritable
+                    and candidate.parsed is not None
+                    and candidate.parsed.applies_to(parsed)
                 ):
-                    n_entities = len(pn.entities) if pn is not None else 0
-                    chosen.append(((int(own), n_entities, name), directory / name, own))
-            chosen.sort(key=lambda t: t[0])
-            levels.append([(p, own) for _k, p, own in chosen])
+                    chosen.append(((int(own), candidate.n_entities, name), candidate, own))
+            if len(chosen) > 1:
+                chosen.sort(key=lambda t: t[0])
+            levels.append([(candidate, own) for _k, candidate, own in chosen])
         return levels, problems
 
     def resolve(self, data_file: Path, root: Path | None = None) -> Resolution:
         """Merge the applicable sidecars of ``data_file`` under dataset ``root``."""
-        data_path = Path(os.path.abspath(data_file))
-        root_path = Path(os.path.abspath(root)) if root is not None else self.root
-        levels, findings = self._levels(data_path, root_path)
+        data_path = os.path.abspath(data_file)
+        root_path = os.path.abspath(root) if root is not None else self._root_text
+        parsed = parse_name(_basename(data_path))
+        levels, findings = self._levels(data_path, root_path, parsed)
         metadata: dict[str, Any] = {}
         sources: dict[str, str] = {}
         chain: list[str] = []
@@ -246,11 +284,11 @@ class SidecarIndex:
         overridden: dict[str, list[tuple[str, Any]]] = {}
         for level in levels:
             loaded: list[tuple[str, dict[str, Any] | None]] = []
-            for path, own in level:
-                shown = relative_posix(path, root_path)
+            for candidate, own in level:
+                shown = candidate.shown
                 if own:
                     own_names.add(shown)
-                data, problems = self.load(path, shown, shared=not own)
+                data, problems = self.load(candidate.path, shown, shared=not own)
                 findings.extend(problems)
                 chain.append(shown)
                 loaded.append((shown, data))
@@ -259,24 +297,96 @@ class SidecarIndex:
                         if key in OVERRIDE_TRACKED and key in metadata \
                                 and metadata[key] != value:
                             overridden.setdefault(key, []).append(
-                                (sources[key], copy.deepcopy(metadata[key])))
+                                (sources[key], fresh_copy(metadata[key])))
                         metadata[key] = value
                         sources[key] = shown
             level_names.append(tuple(name for name, _ in loaded))
             if len(loaded) > 1:
-                findings.extend(_ambiguity(loaded, relative_posix(data_path, root_path)))
+                findings.extend(_ambiguity(loaded, _relative_text(data_path, root_path)))
         if self.check_field_types and metadata:
             findings.extend(self._type_findings(metadata, sources, own_names))
-        metadata = copy.deepcopy(metadata)
         return Resolution(
-            metadata=metadata,
+            metadata=fresh_copy(metadata),
             sources=sources,
             chain=tuple(chain),
             findings=tuple(findings),
-            name=parse_name(data_path.name),
+            name=parsed,
             levels=tuple(level_names),
             overridden={k: tuple(v) for k, v in overridden.items()},
         )
+
+
+@dataclass(frozen=True)
+class _Candidate:
+    """A sidecar in one folder, as seen from one dataset root."""
+
+    name: str
+    parsed: ParsedName | None
+    #: a BIDS name with exactly the ``.json`` extension (so it may be inherited)
+    inheritable: bool
+    n_entities: int
+    path: str
+    shown: str
+
+
+@dataclass(frozen=True)
+class _Folder:
+    """One folder on the way down from a dataset root: its sidecars, or why it could not
+    be listed."""
+
+    candidates: tuple[_Candidate, ...]
+    problem: Finding | None
+
+
+def _basename(path: str) -> str:
+    return os.path.split(path)[1]
+
+
+def _strip_root(path: str, root: str) -> str | None:
+    """``path`` relative to ``root`` when it is ``root`` or below it, else None (POSIX
+    path strings as pathlib prints them: no doubled or trailing separators)."""
+    if path == root:
+        return "."
+    prefix = root if root.endswith("/") else root + "/"
+    return path[len(prefix) :] if path.startswith(prefix) else None
+
+
+def _relative_text(path: str, root: str | None) -> str:
+    """:func:`relative_posix` for absolute, normalised path strings (no pathlib objects)."""
+    if os.sep != "/":  # pragma: no cover - slicetime runs on POSIX; keep the general form
+        return relative_posix(Path(path), Path(root) if root is not None else None)
+    below = _strip_root(path, root) if root is not None else None
+    return below if below is not None else path
+
+
+def _folder_chain(folder: str, root: str | None) -> tuple[str, ...]:
+    """``root`` and each folder below it down to ``folder``; just ``folder`` when it is the
+    root or lies outside it (paths absolute and normalised)."""
+    if root is None or folder == root:
+        return (folder,)
+    prefix = root if root.endswith(os.sep) else root + os.sep
+    if not folder.startswith(prefix):
+        return (folder,)
+    chain = [root]
+    for part in folder[len(prefix) :].split(os.sep):
+        chain.append(os.path.join(chain[-1], part))
+    return tuple(chain)
+
+
+_IMMUTABLE: frozenset[type] = frozenset({str, int, float, bool, type(None)})
+
+
+def fresh_copy(value: Any) -> Any:
+    """A deep copy of a JSON value: every list and dict is new, immutable scalars are
+    shared (cheaper than :func:`copy.deepcopy`, same result for JSON data)."""
+    kind = type(value)
+    if kind in _IMMUTABLE:
+        return value
+    if kind is list:
+        return [v if type(v) in _IMMUTABLE else fresh_copy(v) for v in value]
+    if kind is dict:
+        return {k: v if type(v) in _IMMUTABLE else fresh_copy(v) for k, v in value.items()}
+    return copy.deepcopy(value)
 
 
 def _ambiguity(

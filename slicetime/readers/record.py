@@ -15,7 +15,7 @@ from typing import Any
 from slicetime.model import Finding, HeaderInfo, RunRecord
 from slicetime.readers.entities import parse_name
 from slicetime.readers.errors import ReadError
-from slicetime.readers.inheritance import SidecarIndex
+from slicetime.readers.inheritance import SidecarIndex, relative_posix
 from slicetime.readers.nifti import read_header
 from slicetime.schemes.infer import infer_scheme
 from slicetime.schemes.resolve import resolve_schedule
@@ -27,10 +27,7 @@ DATATYPES = frozenset({"func", "perf", "dwi", "anat", "fmap"})
 
 def relative_display(path: Path, root: Path) -> str:
     """How reports name a file: relative to the dataset root, forward slashes."""
-    try:
-        return path.relative_to(root).as_posix()
-    except ValueError:
-        return path.as_posix()
+    return relative_posix(path, root)
 
 
 def assemble_record(
