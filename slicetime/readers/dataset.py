@@ -27,6 +27,7 @@ root, then by path components; each run once.
 
 from __future__ import annotations
 
+import errno
 import os
 import stat
 from collections.abc import Callable, Iterator, Sequence
@@ -62,7 +63,9 @@ def _abs(path: Path) -> Path:
 def is_image_name(name: str) -> bool:
     """True for ``*.nii`` and ``*.nii.gz`` names (case-insensitive extension)."""
     lower = name.lower()
-    return any(lower.endswith(ext) and len(name) > len(ext) for ext in IMAGE_EXTENSIONS)
+    return lower.endswith(IMAGE_EXTENSIONS) and any(
+        lower.endswith(ext) and len(name) > len(ext) for ext in IMAGE_EXTENSIONS
+    )
 
 
 def find_root(path: Path) -> Path:
@@ -73,15 +76,53 @@ def find_root(path: Path) -> Path:
     ``sub-*`` folder in the path; else the folder itself (a file's folder for
     a file).
     """
-    p = _abs(Path(path))
-    start = p if p.is_dir() else p.parent
-    for candidate in (start, *start.parents):
-        if (candidate / _DESCRIPTION).is_file():
-            return candidate
-    for candidate in reversed((start, *start.parents)):
-        if candidate.name.startswith("sub-"):
-            return candidate.parent
-    return start
+    return _RootFinder().find(path)
+
+
+#: errors that :meth:`pathlib.Path.is_file` treats as "not a file" (others propagate)
+_NOT_A_FILE_ERRNOS = frozenset({errno.ENOENT, errno.ENOTDIR, errno.EBADF, errno.ELOOP})
+
+
+def _path_is_file(path: str) -> bool:
+    """:meth:`pathlib.Path.is_file` for a path string."""
+    try:
+        return stat.S_ISREG(os.stat(path).st_mode)
+    except OSError as exc:
+        if exc.errno not in _NOT_A_FILE_ERRNOS:
+            raise
+        return False
+    except ValueError:
+        return False
+
+
+class _RootFinder:
+    """:func:`find_root` that remembers, for one walk, which folders hold a description."""
+
+    def __init__(self) -> None:
+        self._described: dict[str, bool] = {}
+
+    def _has_description(self, folder: str) -> bool:
+        known = self._described.get(folder)
+        if known is None:
+            known = _path_is_file(os.path.join(folder, _DESCRIPTION))
+            self._described[folder] = known
+        return known
+
+    def find(self, path: Path) -> Path:
+        p = _abs(Path(path))
+        start = p if p.is_dir() else p.parent
+        folder = str(start)
+        while True:  # start, then each parent up to the file-system root
+            if self._has_description(folder):
+                return Path(folder)
+            parent = os.path.dirname(folder)
+            if parent == folder:
+                break
+            folder = parent
+        for candidate in reversed((start, *start.parents)):
+            if candidate.name.startswith("sub-"):
+                return candidate.parent
+        return start
 
 
 def _time_series_by_name(name: str) -> bool:
@@ -127,13 +168,16 @@ class _Walker:
                 )
             )
 
-    def walk(self, folder: Path, top_real: str | None = None) -> Iterator[Path]:
-        """Depth-first, sorted by name."""
-        try:
-            real = os.path.realpath(folder)
-        except OSError as exc:  # pragma: no cover - realpath rarely raises
-            self._report(folder, exc)
-            return
+    def walk(
+        self, folder: Path, top_real: str | None = None, real: str | None = None
+    ) -> Iterator[Path]:
+        """Depth-first, sorted by name; ``real`` is the real path of ``folder`` when known."""
+        if real is None:
+            try:
+                real = os.path.realpath(folder)
+            except OSError as exc:  # pragma: no cover - realpath rarely raises
+                self._report(folder, exc)
+                return
         if top_real is None:
             top_real = real
         if real in self.visited:
@@ -145,39 +189,49 @@ class _Walker:
         except OSError as exc:
             self._report(folder, exc)
             return
-        names = {e.name for e in entries}
+        names: set[str] | None = None
         for entry in entries:
             name = entry.name
             if name.startswith(".") and not self.include_hidden:
                 continue
-            path = folder / name
             try:
                 is_dir = entry.is_dir()  # follows symlinks
             except OSError:
                 is_dir = False  # a link loop
             if is_image_name(name):
-                if is_dir or not _is_regular(path):
+                if is_dir or not _is_regular(entry):
                     if _time_series_by_name(name):
-                        yield path  # reading it reports what is wrong
+                        yield folder / name  # reading it reports what is wrong
                     continue
-                if _time_series_by_name(name) or _has_slice_timing(folder, name, names):
-                    yield path
+                if _time_series_by_name(name):
+                    yield folder / name
+                    continue
+                if names is None:
+                    names = {e.name for e in entries}
+                if _has_slice_timing(folder, name, names):
+                    yield folder / name
                 continue
             if is_dir:
                 if name in self.skip:
                     continue
-                if entry.is_symlink() and _inside(os.path.realpath(path), top_real):
-                    continue  # an alias of a folder in this tree (or a loop): reached by its name
-                yield from self.walk(path, top_real)
+                path = folder / name
+                if entry.is_symlink():
+                    child_real = os.path.realpath(path)
+                    if _inside(child_real, top_real):
+                        continue  # an alias of a folder in this tree (or a loop): reached by name
+                else:  # not a link: its real path is its name under this folder's real path
+                    child_real = os.path.join(real, name)
+                yield from self.walk(path, top_real, child_real)
 
 
 def _inside(real: str, top_real: str) -> bool:
     return real == top_real or real.startswith(top_real.rstrip(os.sep) + os.sep)
 
 
-def _is_regular(path: Path) -> bool:
+def _is_regular(entry: os.DirEntry[str]) -> bool:
+    """A regular file, following symlinks (the entry's type needs no system call)."""
     try:
-        return stat.S_ISREG(os.stat(path).st_mode)
+        return entry.is_file()
     except OSError:
         return False
 
@@ -213,12 +267,13 @@ def iter_runs(
     if include_sourcedata:
         skip -= {"sourcedata", "code"}
     walker = _Walker(skip, include_hidden, on_error)
+    finder = _RootFinder()
     roots: dict[str, Path] = {}
 
     def root_of(run: Path) -> Path:
         key = str(run.parent)
         if key not in roots:
-            roots[key] = find_root(run)
+            roots[key] = finder.find(run)
         return roots[key]
 
     found: dict[tuple[str, str], tuple[Path, Path]] = {}
@@ -230,10 +285,15 @@ def iter_runs(
 
     def order(item: tuple[Path, Path]) -> tuple[str, tuple[str, ...]]:
         root, run = item
+        root_text, run_text = str(root), str(run)
+        prefix = root_text if root_text.endswith(os.sep) else root_text + os.sep
+        if os.sep == "/" and run_text.startswith(prefix):
+            # what run.relative_to(root).parts gives, for absolute normalised paths
+            return (root_text, tuple(run_text[len(prefix) :].split("/")))
         try:
             parts = run.relative_to(root).parts
         except ValueError:
             parts = run.parts
-        return (str(root), parts)
+        return (root_text, parts)
 
     yield from sorted(found.values(), key=order)
