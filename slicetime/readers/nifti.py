@@ -129,6 +129,29 @@ _FIELDS_2: dict[str, tuple[int, str]] = {
     "xyzt_units": (500, "i"),
     "dim_info": (524, "B"),
 }
+
+
+def _layout_struct(
+    fields: dict[str, tuple[int, str]], order: str
+) -> tuple[struct.Struct, tuple[tuple[str, int, int], ...]]:
+    """One struct for all ``fields`` (padding between them) and where each value lands:
+    (name, index of its first value, number of values)."""
+    fmt, at, index = order, 0, 0
+    places: list[tuple[str, int, int]] = []
+    for name, (offset, code) in sorted(fields.items(), key=lambda item: item[1][0]):
+        fmt += f"{offset - at}x{code}" if offset > at else code
+        count = 1 if code.endswith("s") else int(code[:-1] or 1)
+        places.append((name, index, count))
+        at = offset + struct.calcsize(order + code)
+        index += count
+    return struct.Struct(fmt), tuple(places)
+
+
+_LAYOUTS = {
+    (version, order): _layout_struct(fields, order)
+    for version, fields in ((1, _FIELDS_1), (2, _FIELDS_2))
+    for order in ("<", ">")
+}
 _MAGIC_1 = {b"n+1\x00": True, b"ni1\x00": False}  # value: image data in the same file
 _MAGIC_2 = {b"n+2\x00\r\n\x1a\n": True, b"ni2\x00\r\n\x1a\n": False}
 _TIME_UNITS: dict[int, tuple[Literal["s", "ms", "us"], float]] = {
@@ -225,11 +248,12 @@ def _decode(buf: bytes, shown: str) -> tuple[int, Literal["<", ">"], dict[str, A
             f"{shown}: the NIfTI-{version} header is cut short ({len(buf)} of {size} bytes)",
             evidence={"header_bytes": len(buf), "expected": size},
         )
-    layout = _FIELDS_1 if version == 1 else _FIELDS_2
-    raw: dict[str, Any] = {}
-    for name, (offset, fmt) in layout.items():
-        values = struct.unpack_from(order + fmt, buf, offset)
-        raw[name] = values if len(values) > 1 else values[0]
+    layout, places = _LAYOUTS[version, order]
+    values = layout.unpack_from(buf)
+    raw: dict[str, Any] = {
+        name: values[index] if count == 1 else values[index : index + count]
+        for name, index, count in places
+    }
     magics = _MAGIC_1 if version == 1 else _MAGIC_2
     if raw["magic"] not in magics:
         if version == 2 and raw["magic"][:4] in (b"n+2\x00", b"ni2\x00"):
@@ -255,7 +279,7 @@ def _check_dimensions(raw: dict[str, Any], shown: str) -> tuple[tuple[int, ...],
             f"{shown}: dim[0] is {ndim}; NIfTI allows 1 to 7 dimensions",
             evidence={"dim": list(dim)},
         )
-    shape = tuple(int(d) for d in dim[1 : ndim + 1])
+    shape = tuple(map(int, dim[1 : ndim + 1]))
     if any(d <= 0 for d in shape):
         raise ReadError(
             "file/bad-dimensions",
@@ -303,7 +327,7 @@ def _read_isize(fh: BinaryIO, file_size: int) -> int | None:
     if file_size < 18:  # smallest gzip member: 10-byte header, 8-byte trailer
         return None
     fh.seek(file_size - 4)
-    return int(struct.unpack("<I", fh.read(4))[0])
+    return int(struct.unpack("<I", _read_full(fh, 4))[0])
 
 
 def _paired_image(path: Path) -> Path | None:
@@ -326,21 +350,34 @@ def read_header(
     Raises :class:`ReadError` (``file/*`` codes, see the module docstring)
     for anything that makes the file unusable, in bounded time and memory.
     """
-    p = Path(path)
-    shown = display_name(p, display)
+    file = os.fspath(path)
+    shown = display if display is not None else display_name(Path(file), None)
     try:
-        st = check_regular_file(p, shown, what="NIfTI file")
-        with open(p, "rb") as fh:
-            return _read_open(p, fh, st.st_size, shown, verify_stream)
+        st = check_regular_file(file, shown, what="NIfTI file")
+        # unbuffered: a header read is a few small reads, a buffer would only be filled
+        with open(file, "rb", buffering=0) as fh:
+            return _read_open(path, fh, st.st_size, shown, verify_stream)
     except OSError as exc:
         raise os_error(exc, shown, what="NIfTI file") from None
 
 
+def _read_full(fh: BinaryIO, size: int) -> bytes:
+    """Up to ``size`` bytes, fewer only at the end of the file (an unbuffered read may
+    return less)."""
+    data = fh.read(size)
+    while len(data) < size:
+        more = fh.read(size - len(data))
+        if not more:
+            break
+        data += more
+    return data
+
+
 def _read_open(
-    p: Path, fh: BinaryIO, file_size: int, shown: str, verify_stream: bool
+    path: str | os.PathLike[str], fh: BinaryIO, file_size: int, shown: str, verify_stream: bool
 ) -> tuple[HeaderInfo, list[Finding]]:
     findings: list[Finding] = []
-    first = fh.read(NIFTI2_SIZE)
+    first = _read_full(fh, NIFTI2_SIZE)
     compressed = first[:2] == GZIP_MAGIC
     if compressed:
         parts: list[bytes] = []
@@ -358,7 +395,7 @@ def _read_open(
         if not buf:
             raise ReadError("file/not-nifti", shown, None, f"{shown}: the gzip content is empty")
     else:
-        if p.name.lower().endswith(".gz") and first:
+        if Path(path).name.lower().endswith(".gz") and first:
             raise ReadError(
                 "file/not-nifti",
                 shown,
@@ -403,7 +440,7 @@ def _read_open(
                 evidence={"file_size": file_size, "expected_size": needed},
             )
     else:
-        _check_paired_image(p, shown, vox_offset + data_bytes)
+        _check_paired_image(Path(path), shown, vox_offset + data_bytes)
 
     unit_bits = int(raw["xyzt_units"]) & 0x38
     time_unit, factor = _TIME_UNITS.get(unit_bits, ("unknown", 1.0))
