@@ -60,6 +60,8 @@ class Rule:
 
 
 RULES: dict[str, Rule] = {}
+#: the run rules with a check, in registry order (what :func:`check_run` runs)
+_RUN_CHECKS: list[tuple[Rule, RunCheck]] = []
 
 
 def _register(rule: Rule) -> None:
@@ -69,6 +71,8 @@ def _register(rule: Rule) -> None:
     if not area or not name or rule.code != rule.code.lower():
         raise RuntimeError(f"finding codes are lower-case area/short-name: {rule.code!r}")
     RULES[rule.code] = rule
+    if rule.scope == "run" and rule.check is not None:
+        _RUN_CHECKS.append((rule, rule.check))  # type: ignore[arg-type]
 
 
 def run_rule(
@@ -135,10 +139,8 @@ def to_finding(rule: Rule, record: RunRecord | None, hit: Hit) -> Finding:
 def check_run(record: RunRecord) -> list[Finding]:
     """Reading findings plus every run rule's findings, in registry order."""
     findings = list(record.findings)
-    for rule in RULES.values():
-        if rule.scope != "run" or rule.check is None:
-            continue
-        for hit in rule.check(record):  # type: ignore[arg-type]
+    for rule, check in _RUN_CHECKS:
+        for hit in check(record):
             findings.append(to_finding(rule, record, hit))
     return findings
 

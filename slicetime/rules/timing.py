@@ -280,7 +280,7 @@ def exceeds_acquisition(record: RunRecord) -> Iterator[Hit]:
 )
 def all_equal(record: RunRecord) -> Iterator[Hit]:
     scheme = record.scheme
-    if scheme is None or scheme.n_slices < 2 or len(scheme.groups) != 1:
+    if scheme is None or len(scheme.groups) != 1 or scheme.n_slices < 2:
         return
     mb = record.metadata.get("MultibandAccelerationFactor")
     if is_number(mb) and mb == scheme.n_slices:

@@ -273,7 +273,7 @@ def infer_scheme(times: Sequence[float], *, tolerance: float = DEFAULT_TOLERANCE
     Memoised: the runs of a dataset share a handful of schedules, and a
     :class:`Scheme` is immutable. See :func:`_infer_scheme` for the method.
     """
-    key = tuple(float(t) for t in times)
+    key = tuple(map(float, times))
     return _infer_cached(key, float(tolerance))
 
 

@@ -44,6 +44,20 @@ def is_number(value: Any) -> bool:
     return isinstance(value, int | float) and not isinstance(value, bool)
 
 
+_PLAIN_NUMBERS = frozenset({int, float})
+
+
+def all_finite_numbers(values: list[Any]) -> bool:
+    """True when every entry is a finite JSON number (:func:`is_number` and finite)."""
+    if _PLAIN_NUMBERS.issuperset(map(type, values)):
+        try:  # the sum of finite numbers is finite unless it overflows
+            if math.isfinite(sum(values)):
+                return True
+        except OverflowError:
+            pass
+    return all(is_number(v) and math.isfinite(float(v)) for v in values)
+
+
 def positive_number(value: Any) -> float | None:
     if is_number(value) and math.isfinite(value) and value > 0:
         return float(value)
@@ -70,7 +84,9 @@ def slice_timing_problems(value: Any, expected_count: int | None) -> list[Timing
         ]
     if not value:
         return [TimingProblem("timing/not-a-list", "SliceTiming is an empty list", {"value": []})]
-    bad = [i for i, v in enumerate(value) if not (is_number(v) and math.isfinite(float(v)))]
+    bad: list[int] = []
+    if not all_finite_numbers(value):  # the common case needs no per-entry look
+        bad = [i for i, v in enumerate(value) if not (is_number(v) and math.isfinite(float(v)))]
     problems: list[TimingProblem] = []
     if bad:
         shown = {
@@ -199,7 +215,7 @@ def resolve_schedule(
         problems = slice_timing_problems(value, length)
         if problems:
             return ScheduleResolution(None, None, tuple(problems), length)
-        times = [float(v) for v in value]
+        times = list(map(float, value))
         if direction == "-":
             times.reverse()
         sources["SliceTiming"] = sidecar_source("SliceTiming")
