@@ -1,0 +1,183 @@
+"""The audit's fast paths give the same answers as the plain code they stand in for.
+
+Each shortcut taken for speed (a quick type check before jsonschema, a container
+copy instead of ``copy.deepcopy``, string path arithmetic instead of pathlib,
+one struct for the whole NIfTI header) is compared here with the general code,
+on generated values. Speed itself is measured by ``benchmarks/bench_audit.py``.
+"""
+
+from __future__ import annotations
+
+import copy
+import math
+import struct
+from pathlib import Path, PurePosixPath
+from typing import Any
+
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from slicetime.readers import inheritance, nifti, sidecar
+from slicetime.readers.inheritance import fresh_copy, relative_posix
+from slicetime.schemes.resolve import all_finite_numbers, is_number
+
+json_scalars = (
+    st.none()
+    | st.booleans()
+    | st.integers(min_value=-(10**6), max_value=10**6)
+    | st.floats(allow_nan=True, allow_infinity=True)
+    | st.sampled_from(["i", "j", "k-", "x", ""])
+)
+json_values = st.recursive(
+    json_scalars,
+    lambda inner: (
+        st.lists(inner, max_size=5) | st.dictionaries(st.text(max_size=3), inner, max_size=4)
+    ),
+    max_leaves=12,
+)
+number_lists = st.lists(
+    st.integers(min_value=-5, max_value=10**3) | st.floats(allow_nan=True, allow_infinity=True),
+    max_size=8,
+)
+
+
+@settings(max_examples=300, deadline=None)
+@given(key=st.sampled_from(sorted(sidecar.TIMING_FIELDS)), value=json_values | number_lists)
+def test_quick_type_check_never_passes_what_jsonschema_rejects(key: str, value: Any) -> None:
+    validator = sidecar._validators()[key]  # source: jsonschema, the reference validator
+    if sidecar._quick_checks()[key](value):
+        assert validator.is_valid(value), (key, value)
+
+
+@pytest.mark.parametrize(
+    ("key", "value"),
+    [
+        ("SliceTiming", [0.0, 0.5, 1, 1.5]),
+        ("RepetitionTime", 2.0),
+        ("EchoTime", 0.03),
+        ("EchoTime", [0.01, 0.02]),
+        ("SliceEncodingDirection", "k-"),
+        ("VolumeTiming", [0, 2.0]),
+        ("NumberOfVolumesDiscardedByScanner", 4),
+        ("TaskName", "rest"),
+    ],
+)
+def test_quick_type_check_passes_common_valid_values(key: str, value: Any) -> None:
+    assert sidecar._quick_checks()[key](value)
+    assert sidecar._validators()[key].is_valid(value)  # source: jsonschema
+
+
+def test_check_types_reports_the_same_with_or_without_quick_checks(
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    data = {
+        "SliceTiming": [0.0, -1.0, "x"],
+        "RepetitionTime": 0,
+        "EchoTime": [0.01, True],
+        "SliceEncodingDirection": "z",
+        "VolumeTiming": [],
+        "NumberOfVolumesDiscardedByUser": 1.5,
+        "TaskName": "rest",
+        "DelayTime": 0.5,
+    }
+    fast = sidecar.check_types(data, "a.json")
+    monkeypatch.setattr(
+        sidecar, "_quick_checks", lambda: dict.fromkeys(sidecar.TIMING_FIELDS, lambda _v: False)
+    )
+    assert sidecar.check_types(data, "a.json") == fast
+    assert [f.field for f in fast] == [
+        "EchoTime",
+        "NumberOfVolumesDiscardedByUser",
+        "RepetitionTime",
+        "SliceEncodingDirection",
+        "SliceTiming",
+        "VolumeTiming",
+    ]
+
+
+@settings(max_examples=200, deadline=None)
+@given(value=json_values)
+def test_fresh_copy_is_a_deep_copy(value: Any) -> None:
+    copied = fresh_copy(value)
+    expected = copy.deepcopy(value)  # source: the standard library's deep copy
+    assert repr(copied) == repr(expected)
+
+    def containers(v: Any) -> list[int]:
+        if isinstance(v, list):
+            return [id(v), *(i for x in v for i in containers(x))]
+        if isinstance(v, dict):
+            return [id(v), *(i for x in v.values() for i in containers(x))]
+        return []
+
+    assert not set(containers(copied)) & set(containers(value))
+
+
+@settings(max_examples=200, deadline=None)
+@given(values=number_lists)
+def test_all_finite_numbers_matches_the_entrywise_test(values: list[Any]) -> None:
+    assert all_finite_numbers(values) == all(
+        is_number(v) and math.isfinite(float(v)) for v in values
+    )
+
+
+def test_all_finite_numbers_edge_cases() -> None:
+    assert not all_finite_numbers([1e308, 1e308, math.nan])
+    assert all_finite_numbers([1e308, 1e308, -1e308])  # the sum overflows; each entry is finite
+    assert not all_finite_numbers([0.0, True])
+    assert all_finite_numbers([])
+
+
+parts = st.lists(st.sampled_from(["a", "b", "sub-01", "func", "x y", ".."]), max_size=4)
+
+
+@settings(max_examples=300, deadline=None)
+@given(root_parts=parts, rest=parts, absolute=st.booleans(), other=parts)
+def test_relative_posix_matches_pathlib(
+    root_parts: list[str], rest: list[str], absolute: bool, other: list[str]
+) -> None:
+    lead = "/" if absolute else ""
+    root = Path(lead + "/".join(root_parts)) if root_parts or absolute else Path(".")
+    for path in (root.joinpath(*rest), Path(lead + "/".join(other or ["z"])), root):
+        try:  # source: pathlib's relative_to
+            expected = path.relative_to(root).as_posix()
+        except ValueError:
+            expected = path.as_posix()
+        assert relative_posix(path, root) == expected, (path, root)
+
+
+@pytest.mark.parametrize(
+    ("folder", "root"),
+    [
+        ("/ds/sub-01/ses-1/func", "/ds"),
+        ("/ds", "/ds"),
+        ("/elsewhere/func", "/ds"),
+        ("/ds2/func", "/ds"),
+        ("/a/b", "/"),
+        ("/ds/func", None),
+    ],
+)
+def test_folder_chain_matches_pathlib(folder: str, root: str | None) -> None:
+    # the construction the inheritance code used before, with pathlib
+    f = PurePosixPath(folder)
+    expected = [f]
+    if root is not None and f != PurePosixPath(root) and f.is_relative_to(root):
+        expected = [PurePosixPath(root)]
+        for part in f.relative_to(root).parts:
+            expected.append(expected[-1] / part)
+    assert inheritance._folder_chain(folder, root) == tuple(str(p) for p in expected)
+
+
+@pytest.mark.parametrize("version", [1, 2])
+@pytest.mark.parametrize("order", ["<", ">"])
+def test_one_struct_header_decode_matches_field_by_field(version: int, order: str) -> None:
+    fields = nifti._FIELDS_1 if version == 1 else nifti._FIELDS_2
+    size = nifti.NIFTI1_SIZE if version == 1 else nifti.NIFTI2_SIZE
+    buf = bytes((i * 37 + 11) % 256 for i in range(size))
+    layout, places = nifti._LAYOUTS[version, order]
+    values = layout.unpack_from(buf)
+    for name, index, count in places:
+        offset, fmt = fields[name]
+        expected = struct.unpack_from(order + fmt, buf, offset)  # source: struct, per field
+        got = values[index : index + count]
+        assert [repr(v) for v in got] == [repr(v) for v in expected], name
