@@ -2,14 +2,16 @@
 
 Each shortcut taken for speed (a quick type check before jsonschema, a container
 copy instead of ``copy.deepcopy``, string path arithmetic instead of pathlib,
-one struct for the whole NIfTI header) is compared here with the general code,
-on generated values. Speed itself is measured by ``benchmarks/bench_audit.py``.
+one struct for the whole NIfTI header, one regular expression for a BIDS name)
+is compared here with the general code, on generated values. Speed itself is
+measured by ``benchmarks/bench_audit.py``.
 """
 
 from __future__ import annotations
 
 import copy
 import math
+import re
 import struct
 from pathlib import Path, PurePosixPath
 from typing import Any
@@ -19,6 +21,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from slicetime.readers import inheritance, nifti, sidecar
+from slicetime.readers.entities import ParsedName, parse_name
 from slicetime.readers.inheritance import fresh_copy, relative_posix
 from slicetime.schemes.resolve import all_finite_numbers, is_number
 
@@ -181,3 +184,32 @@ def test_one_struct_header_decode_matches_field_by_field(version: int, order: st
         expected = struct.unpack_from(order + fmt, buf, offset)  # source: struct, per field
         got = values[index : index + count]
         assert [repr(v) for v in got] == [repr(v) for v in expected], name
+
+
+def _parse_name_part_by_part(name: str) -> ParsedName | None:
+    """The BIDS name rule written out part by part (the reference for the one-regex form)."""
+    if not name or name.startswith(".") or "/" in name:
+        return None
+    stem, dot, rest = name.partition(".")
+    parts = stem.split("_")
+    alnum = re.compile(r"[A-Za-z0-9]+\Z")
+    if not alnum.match(parts[-1]):
+        return None
+    entities: dict[str, str] = {}
+    for part in parts[:-1]:
+        key, dash, value = part.partition("-")
+        if not dash or not alnum.match(key) or not alnum.match(value) or key in entities:
+            return None
+        entities[key] = value
+    return ParsedName(entities=entities, suffix=parts[-1], extension=dot + rest)
+
+
+@settings(max_examples=500, deadline=None)
+@given(
+    name=st.lists(
+        st.sampled_from(["sub", "01", "-", "_", ".", "bold", "json", "é", "٣", " ", "\n", "a"]),
+        max_size=10,
+    ).map("".join)
+)
+def test_parse_name_matches_the_part_by_part_rule(name: str) -> None:
+    assert repr(parse_name(name)) == repr(_parse_name_part_by_part(name))

@@ -18,9 +18,8 @@ __all__ = ["IMAGE_EXTENSIONS", "ParsedName", "image_stem", "parse_name"]
 #: Extensions of NIfTI image files, longest first.
 IMAGE_EXTENSIONS: tuple[str, ...] = (".nii.gz", ".nii")
 
-_KEY = re.compile(r"[A-Za-z0-9]+\Z")
-_VALUE = re.compile(r"[A-Za-z0-9]+\Z")
-_SUFFIX = re.compile(r"[A-Za-z0-9]+\Z")
+#: a whole stem: ``key-value`` parts, each followed by ``_``, then the suffix
+_STEM = re.compile(r"(?:[A-Za-z0-9]+-[A-Za-z0-9]+_)*[A-Za-z0-9]+\Z")
 
 
 @dataclass(frozen=True)
@@ -63,18 +62,16 @@ def parse_name(name: str) -> ParsedName | None:
     if not name or name.startswith(".") or "/" in name:
         return None
     stem, dot, rest = name.partition(".")
-    extension = dot + rest
-    parts = stem.split("_")
-    suffix = parts[-1]
-    if not _SUFFIX.match(suffix):
+    if not _STEM.match(stem):
         return None
+    *pairs, suffix = stem.split("_")
     entities: dict[str, str] = {}
-    for part in parts[:-1]:
-        key, dash, value = part.partition("-")
-        if not dash or not _KEY.match(key) or not _VALUE.match(value) or key in entities:
+    for pair in pairs:
+        key, _, value = pair.partition("-")
+        if key in entities:
             return None
         entities[key] = value
-    return ParsedName(entities=entities, suffix=suffix, extension=extension)
+    return ParsedName(entities=entities, suffix=suffix, extension=dot + rest)
 
 
 def image_stem(name: str) -> str:
