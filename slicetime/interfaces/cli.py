@@ -317,6 +317,109 @@ def correct(
     sys.exit(result.exit_code())
 
 
+# --------------------------------------------------------------------------- fix
+@cli.command()
+@click.argument("paths", nargs=-1, type=click.Path(path_type=Path))
+@click.option("--apply", "do_apply", is_flag=True,
+              help="Write the changes (default: only show them). Each file is backed up first.")
+@click.option("--backup-dir", type=click.Path(path_type=Path, file_okay=False),
+              help="Where --apply keeps the originals and the journal (default: a "
+              "<dataset>-slicetime-backups folder beside the dataset).")
+@click.option("--undo", "undo_journal", type=click.Path(path_type=Path, dir_okay=False),
+              help="Restore the files a journal (from an earlier --apply) records.")
+@click.option("--plan", "plan_file", type=click.Path(path_type=Path, dir_okay=False),
+              help="Without --apply: save the plan to this file. With --apply: apply exactly "
+              "this saved plan (files changed since it was made are refused).")
+@click.option("--per-run", is_flag=True,
+              help="Write every repair into the run's own sidecar, never into an inherited one.")
+@click.option("--replace-links", is_flag=True,
+              help="Replace a sidecar that is a symbolic link (annexed) by a regular file "
+              "instead of refusing it.")
+@click.option("--policy", "policy_file", type=click.Path(path_type=Path, dir_okay=False),
+              help="Lab policy (TOML); its expected protocols can rebuild missing timing.")
+@click.option("--jobs", type=click.IntRange(min=1), default=None,
+              help="Local worker processes for the audit (default: the CPUs available).")
+@click.option("--scheduler", metavar="ADDRESS", help="Audit on a Dask cluster.")
+@friendly
+def fix(
+    paths: tuple[Path, ...],
+    do_apply: bool,
+    backup_dir: Path | None,
+    undo_journal: Path | None,
+    plan_file: Path | None,
+    per_run: bool,
+    replace_links: bool,
+    policy_file: Path | None,
+    jobs: int | None,
+    scheduler: str | None,
+) -> None:
+    """Repair slice-timing metadata in sidecars: a dry run unless --apply.
+
+    \b
+    Exit status: 0 nothing to do (or everything applied / restored); 1 changes
+    are planned (dry run) or some files were refused; 2 bad usage.
+    \b
+    Examples:
+      slicetime fix ds/                    # show the planned changes as diffs
+      slicetime fix ds/ --apply            # write them, with backups and a journal
+      slicetime fix --undo ds-slicetime-backups/20261201T120000Z/journal.json
+    """
+    from slicetime.interfaces.terminal import make_console, render_fix_plan
+    from slicetime.pipelines import fix as fixing
+
+    console = make_console()
+    try:
+        if undo_journal is not None:
+            if paths or do_apply:
+                raise UserError("--undo takes only the journal, no PATH and no --apply")
+            undone = fixing.undo(undo_journal)
+            for name in undone.restored:
+                click.echo(f"restored  {name}")
+            for line in undone.refused:
+                click.echo(f"refused   {line}")
+            sys.exit(1 if undone.refused else 0)
+        if do_apply and plan_file is not None:
+            if paths:
+                raise UserError("--apply --plan FILE applies the saved plan; give no PATH")
+            plan = fixing.read_plan(plan_file)
+        else:
+            if not paths:
+                raise UserError("fix: give the dataset or runs to repair (PATH...)")
+            with _executor(jobs, scheduler) as executor:
+                plan = fixing.plan_fix(list(paths), per_run=per_run, policy_file=policy_file,
+                                       executor=executor)
+            render_fix_plan(plan, console)
+    except fixing.FixError as exc:
+        raise UserError(str(exc)) from None
+    if not do_apply:
+        if plan_file is not None:
+            fixing.write_plan(plan, plan_file)
+            click.echo(f"plan saved to {plan_file}; apply it with: slicetime fix --apply "
+                       f"--plan {plan_file}")
+        sys.exit(1 if plan.changes else 0)
+    if not plan.changes:
+        sys.exit(0)
+    try:
+        applied = fixing.apply_plan(plan, backup_dir=backup_dir, replace_links=replace_links)
+    except OSError as exc:
+        raise UserError(f"cannot write the backups or files ({exc.strerror or exc}); choose "
+                        "a writable --backup-dir") from None
+    for name in applied.written:
+        click.echo(f"written   {name}")
+    for line in applied.refused:
+        click.echo(f"refused   {line}")
+    if applied.journal is not None:
+        click.echo(f"backups and journal: {applied.journal}  (undo: slicetime fix --undo "
+                   f"{applied.journal})")
+    left = fixing.reaudit(plan)
+    if left:
+        for finding in left:
+            click.echo(f"still     {finding.one_line()}")
+    elif applied.written:
+        click.echo("re-audit: the repaired runs are clean for the repaired codes")
+    sys.exit(1 if applied.refused else 0)
+
+
 # --------------------------------------------------------------------------- timing
 @cli.command()
 @click.option("--slices", "n_slices", type=click.IntRange(min=1), required=True,

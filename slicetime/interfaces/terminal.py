@@ -21,6 +21,7 @@ from slicetime.interfaces.safe_text import xml_safe
 from slicetime.model import Finding, Severity
 from slicetime.pipelines.audit import AuditResult, RunResult
 from slicetime.pipelines.correct import CorrectResult
+from slicetime.pipelines.fix import FixPlan
 
 #: our own palette: severities read at a glance without shouting
 STYLE = {
@@ -251,3 +252,34 @@ def render_correct(result: CorrectResult, console: Console) -> None:
              else "nothing was written")
     console.print(Text(f"\n{total} run{'s' if total != 1 else ''}: "
                        f"{', '.join(parts) or 'nothing to do'}; {where}"))
+
+
+def render_fix_plan(plan: FixPlan, console: Console) -> None:
+    """Every planned file: what changes and why (rule, evidence, runs), then the diff."""
+    for change in plan.changes:
+        runs = change.runs
+        head = Text(xml_safe(change.file), style="bold")
+        head.append(f"  ({'new file; ' if change.sha256_before is None else ''}"
+                    f"{len(runs)} run{'s' if len(runs) != 1 else ''})", style="dim")
+        console.print(head)
+        seen: set[tuple[str, str]] = set()
+        for repair in change.repairs:
+            if (repair.code, repair.field) in seen:
+                continue
+            seen.add((repair.code, repair.field))
+            console.print(Text(f"  {repair.code}: {repair.field} from {repair.source}"))
+        for run in runs[:10]:
+            console.print(Text(f"    run {xml_safe(run)}", style="dim"))
+        if len(runs) > 10:
+            console.print(Text(f"    … and {len(runs) - 10} more runs", style="dim"))
+        for line in change.diff().splitlines():
+            style = ("green4" if line.startswith("+") and not line.startswith("+++")
+                     else "red3" if line.startswith("-") and not line.startswith("---")
+                     else "dim" if line.startswith("@@") else None)
+            console.print(Text(xml_safe(line), style=style))
+        console.print()
+    for note in plan.notes:
+        console.print(Text(f"note: {xml_safe(note)}", style=STYLE[Severity.NOTE]))
+    total = len(plan.changes)
+    console.print(Text(f"{total} file{'s' if total != 1 else ''} to change"
+                       + ("" if total else " — nothing to fix")))
