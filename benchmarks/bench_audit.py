@@ -5,10 +5,14 @@ BIDSLayout, then for every BOLD run get its metadata with get_metadata and
 load its header with nibabel. slicetime: the full audit (reading, inheritance,
 scheme inference, every rule, dataset rules), serially and with 2 processes.
 
-    python benchmarks/bench_audit.py [--sizes 500,2000] [--out bench-results/audit.json]
+    python benchmarks/bench_audit.py [--sizes 500,2000] [--repeat 3]
+                                     [--out bench-results/audit.json]
 
 Reports wall times and ratios (baseline / slicetime); absolute seconds vary
-between machines, the ratios are what the targets are about.
+between machines, the ratios are what the targets are about. Each measurement
+is repeated (``--repeat``, alternating baseline and slicetime so that a busy
+moment on a shared machine hits both) and the median is reported, with the
+spread (min and max) beside it in the JSON.
 """
 
 from __future__ import annotations
@@ -18,6 +22,7 @@ import gzip
 import json
 import platform
 import shutil
+import statistics
 import sys
 import tempfile
 import time
@@ -86,23 +91,35 @@ def ours(root: Path, jobs: int) -> tuple[float, int]:
 def main() -> int:
     parser = argparse.ArgumentParser()
     parser.add_argument("--sizes", default="500,2000")
+    parser.add_argument("--repeat", type=int, default=3,
+                        help="measurements of each kind; the median is reported")
     parser.add_argument("--out", default="bench-results/audit.json")
     args = parser.parse_args()
     sizes = [int(s) for s in args.sizes.split(",")]
+    repeat = max(1, args.repeat)
     rows = []
     work = Path(tempfile.mkdtemp(prefix="slicetime-bench-"))
     try:
         for n in sizes:
             root = work / f"ds{n}"
             make_dataset(root, n)
-            t_base = baseline(root)
-            t_one, runs = ours(root, 1)
-            t_two, _ = ours(root, 2)
+            times: dict[str, list[float]] = {"baseline": [], "jobs1": [], "jobs2": []}
+            runs = 0
+            for _ in range(repeat):
+                times["baseline"].append(baseline(root))
+                t_one, runs = ours(root, 1)
+                times["jobs1"].append(t_one)
+                times["jobs2"].append(ours(root, 2)[0])
+            t_base, t_one, t_two = (statistics.median(times[k])
+                                    for k in ("baseline", "jobs1", "jobs2"))
             row = {"runs": runs, "baseline_s": round(t_base, 3),
                    "slicetime_jobs1_s": round(t_one, 3), "slicetime_jobs2_s": round(t_two, 3),
                    "ratio_jobs1": round(t_base / t_one, 1),
                    "ratio_jobs2": round(t_base / t_two, 1),
-                   "slicetime_us_per_run": round(t_one / runs * 1e6)}
+                   "slicetime_us_per_run": round(t_one / runs * 1e6),
+                   "repeat": repeat,
+                   "spread_s": {k: [round(min(v), 3), round(max(v), 3)]
+                                for k, v in times.items()}}
             rows.append(row)
             print(f"{runs:>6} runs: baseline {t_base:7.2f} s | slicetime {t_one:6.2f} s "
                   f"(×{row['ratio_jobs1']}) | --jobs 2 {t_two:6.2f} s (×{row['ratio_jobs2']})",
