@@ -281,8 +281,10 @@ def plan_consensus(
             source = (f"the {len(donors)} other runs of the same task and acquisition, which "
                       "all agree")
             evidence = {"runs": [d.path for d in donors][:20], "slice_axis": first.axis}
-            repairs.append(_repair(record, "timing/missing", "SliceTiming", _rounded(reference),
-                                   source, evidence))
+            listed = donors[0].metadata.get("SliceTiming")
+            value = list(listed) if isinstance(listed, list) else _rounded(reference)
+            repairs.append(_repair(record, "timing/missing", "SliceTiming", value, source,
+                                   evidence))
             direction = donors[0].metadata.get("SliceEncodingDirection")
             if direction is not None and "SliceEncodingDirection" not in record.metadata:
                 repairs.append(_repair(record, "timing/missing", "SliceEncodingDirection",

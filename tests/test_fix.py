@@ -1,0 +1,401 @@
+"""slicetime fix: each repair, where it is written, safety, plans, undo."""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+import stat
+from pathlib import Path
+from typing import Any
+
+import nibabel as nib
+import pytest
+from click.testing import CliRunner
+
+from slicetime.interfaces.cli import cli
+from slicetime.pipelines.audit import audit_paths
+from slicetime.pipelines.fix import JsonStyle
+from slicetime.schemes.generate import Protocol, slice_timing
+from tests.helpers_bids import symlink, write_description, write_run, write_sidecar
+
+TR = 2.0
+SHAPE = (4, 4, 10, 5)
+
+
+def interleaved(n: int = 10, **kw: Any) -> list[float]:
+    return list(slice_timing(Protocol(n_slices=n, order="interleaved", repetition_time=TR, **kw)))
+
+
+def run_path(sub: str, task: str = "hum") -> str:
+    return f"sub-{sub}/func/sub-{sub}_task-{task}_bold.nii.gz"
+
+
+def sidecar_of(rel: str) -> str:
+    return rel.replace(".nii.gz", ".json")
+
+
+def fix(*args: object) -> Any:
+    return CliRunner().invoke(cli, ["fix", *(str(a) for a in args)], catch_exceptions=False)
+
+
+def tree(root: Path) -> dict[str, str]:
+    """Every file's SHA-256 (links by their target), for byte-for-byte comparisons."""
+    out = {}
+    for path in sorted(root.rglob("*")):
+        rel = str(path.relative_to(root))
+        if path.is_symlink():
+            out[rel] = "link:" + os.readlink(path)
+        elif path.is_file():
+            out[rel] = hashlib.sha256(path.read_bytes()).hexdigest()
+    return out
+
+
+def codes_of(root: Path, rel: str) -> set[str]:
+    result = audit_paths([root])
+    return {f.code for r in result.runs if r.record.path == rel for f in r.findings}
+
+
+def journal_in(output: str) -> Path:
+    line = next(x for x in output.splitlines() if x.startswith("backups and journal: "))
+    return Path(line.split(": ", 1)[1].split("  (undo")[0])
+
+
+@pytest.fixture
+def ds(tmp_path: Path) -> Path:
+    root = tmp_path / "ds"
+    write_description(root)
+    return root
+
+
+# --------------------------------------------------------------- the repairs
+
+
+def test_milliseconds_become_seconds_in_the_shared_file(ds: Path) -> None:
+    # BIDS: SliceTiming is in seconds; a converter's milliseconds are /1000
+    seconds = interleaved()
+    write_sidecar(ds, "task-hum_bold.json",
+                  {"TaskName": "hum", "RepetitionTime": TR,
+                   "SliceTiming": [t * 1000 for t in seconds]})
+    for sub in ("01", "02", "03"):
+        write_run(ds, run_path(sub), shape=SHAPE, tr=TR)
+    assert "timing/units-ms" in codes_of(ds, run_path("01"))
+    before = tree(ds)
+    dry = fix(ds)
+    assert dry.exit_code == 1  # changes are planned
+    assert "task-hum_bold.json  (3 runs)" in dry.output
+    assert tree(ds) == before  # a dry run changes no byte
+    applied = fix(ds, "--apply")
+    assert applied.exit_code == 0, applied.output
+    assert "written   task-hum_bold.json" in applied.output
+    assert "re-audit: the repaired runs are clean" in applied.output
+    content = json.loads((ds / "task-hum_bold.json").read_text())
+    assert content["SliceTiming"] == pytest.approx(seconds, abs=1e-6)
+    # no per-run files were created: the value is resolved once, at the top
+    assert not (ds / sidecar_of(run_path("01"))).exists()
+    for sub in ("01", "02", "03"):
+        assert "timing/units-ms" not in codes_of(ds, run_path(sub))
+    again = fix(ds, "--apply")  # idempotent
+    assert again.exit_code == 0 and "nothing to fix" in again.output
+
+
+def mb_times(multiband: int, n: int = 12) -> list[float]:
+    return list(slice_timing(Protocol(n_slices=n, order="interleaved", multiband=multiband,
+                                      repetition_time=TR)))
+
+
+def test_shared_file_serving_a_run_that_needs_no_change_gets_an_override(ds: Path) -> None:
+    # the top-level factor 2 is right for sub-02 (groups of 2) and wrong for sub-01
+    # (groups of 3): the fix must not change sub-02, so sub-01 gets its own value
+    shared = {"TaskName": "hum", "RepetitionTime": TR, "MultibandAccelerationFactor": 2}
+    write_sidecar(ds, "task-hum_bold.json", shared)
+    write_run(ds, run_path("01"), shape=(4, 4, 12, 5), tr=TR,
+              sidecar={"SliceTiming": mb_times(3)})
+    write_run(ds, run_path("02"), shape=(4, 4, 12, 5), tr=TR,
+              sidecar={"SliceTiming": mb_times(2)})
+    result = fix(ds, "--apply")
+    assert result.exit_code == 0, result.output
+    assert "writing per-run overrides" in result.output
+    assert json.loads((ds / "task-hum_bold.json").read_text()) == shared
+    own = json.loads((ds / sidecar_of(run_path("01"))).read_text())
+    assert own["MultibandAccelerationFactor"] == 3
+    assert "scheme/multiband-mismatch" not in codes_of(ds, run_path("01"))
+    assert "MultibandAccelerationFactor" not in json.loads(
+        (ds / sidecar_of(run_path("02"))).read_text())
+
+
+def test_per_run_writes_overrides_and_leaves_the_shared_file(ds: Path) -> None:
+    shared = {"TaskName": "hum", "RepetitionTime": TR,
+              "SliceTiming": [t * 1000 for t in interleaved()]}
+    write_sidecar(ds, "task-hum_bold.json", shared)
+    write_run(ds, run_path("01"), shape=SHAPE, tr=TR)
+    result = fix(ds, "--apply", "--per-run")
+    assert result.exit_code == 0, result.output
+    assert json.loads((ds / "task-hum_bold.json").read_text()) == shared
+    own = json.loads((ds / sidecar_of(run_path("01"))).read_text())
+    assert own["SliceTiming"] == pytest.approx(interleaved(), abs=1e-6)
+    assert "timing/units-ms" not in codes_of(ds, run_path("01"))
+
+
+@pytest.mark.parametrize("code", [1, 3, 4, 5])
+def test_missing_timing_rebuilt_from_the_header(ds: Path, code: int) -> None:
+    # nibabel's get_slice_times is the reference for what the header encodes
+    rel = run_path("01")
+    path = write_run(ds, rel, shape=SHAPE, tr=TR, slice_code=code, slice_duration=0.2,
+                     sidecar={"TaskName": "hum", "RepetitionTime": TR})
+    result = fix(ds, "--apply")
+    assert result.exit_code == 0, result.output
+    written = json.loads((ds / sidecar_of(rel)).read_text())
+    expected = nib.load(path).header.get_slice_times()
+    assert written["SliceTiming"] == pytest.approx(expected, abs=1e-6)
+    assert "SliceEncodingDirection" not in written  # the header's slice axis is k
+    assert {"timing/from-header", "timing/missing"}.isdisjoint(codes_of(ds, rel))
+
+
+def test_header_rebuild_along_j_writes_the_direction(ds: Path) -> None:
+    rel = run_path("01")
+    path = write_run(ds, rel, shape=(4, 10, 4, 5), tr=TR, slice_code=1, slice_duration=0.2,
+                     dim_info=(None, None, 1), sidecar={"TaskName": "hum",
+                                                        "RepetitionTime": TR})
+    assert fix(ds, "--apply").exit_code == 0
+    written = json.loads((ds / sidecar_of(rel)).read_text())
+    assert written["SliceEncodingDirection"] == "j"
+    # nibabel as the reference
+    assert written["SliceTiming"] == pytest.approx(nib.load(path).header.get_slice_times())
+
+
+def test_missing_timing_from_the_lab_policy(ds: Path) -> None:
+    rel = run_path("01")
+    write_run(ds, rel, shape=SHAPE, tr=TR, sidecar={"TaskName": "hum", "RepetitionTime": TR})
+    (ds / "slicetime-policy.toml").write_text(
+        'version = 1\n\n[[protocols]]\nmatch = { task = "hum" }\nrepetition_time = 2.0\n'
+        'slices = 10\nscheme = "interleaved ascending from 1"\n'
+    )
+    result = fix(ds, "--apply")
+    assert result.exit_code == 0, result.output
+    written = json.loads((ds / sidecar_of(rel)).read_text())
+    # common practice (no source): odd-first interleaving of 10 slices over 2 s puts
+    # slice 1 at 0 s and slice 0 half a TR later
+    assert written["SliceTiming"] == pytest.approx(interleaved(start=1), abs=1e-6)
+    assert written["SliceTiming"][1] == 0.0 and written["SliceTiming"][0] == pytest.approx(1.0)
+
+
+def test_a_family_in_the_policy_does_not_settle_the_order(ds: Path) -> None:
+    write_run(ds, run_path("01"), shape=SHAPE, tr=TR,
+              sidecar={"TaskName": "hum", "RepetitionTime": TR})
+    (ds / "slicetime-policy.toml").write_text(
+        'version = 1\n\n[[protocols]]\nmatch = { task = "hum" }\nrepetition_time = 2.0\n'
+        'slices = 10\nscheme = "interleaved"\n'
+    )
+    result = fix(ds)
+    assert result.exit_code == 0 and "nothing to fix" in result.output
+    assert "timing/missing not repaired" in result.output
+
+
+def test_missing_timing_from_agreeing_runs(ds: Path) -> None:
+    for sub in ("01", "02", "03"):
+        write_run(ds, run_path(sub), shape=SHAPE, tr=TR,
+                  sidecar={"TaskName": "hum", "RepetitionTime": TR,
+                           "SliceTiming": interleaved()})
+    write_run(ds, run_path("04"), shape=SHAPE, tr=TR,
+              sidecar={"TaskName": "hum", "RepetitionTime": TR})
+    result = fix(ds / "sub-04", "--apply")  # only the run that needs it
+    assert result.exit_code == 0, result.output
+    written = json.loads((ds / sidecar_of(run_path("04"))).read_text())
+    assert written["SliceTiming"] == interleaved()
+    assert "timing/missing" not in codes_of(ds, run_path("04"))
+
+
+def test_disagreeing_runs_settle_nothing(ds: Path) -> None:
+    write_run(ds, run_path("01"), shape=SHAPE, tr=TR,
+              sidecar={"TaskName": "hum", "RepetitionTime": TR, "SliceTiming": interleaved()})
+    sequential = [i * 0.2 for i in range(10)]
+    write_run(ds, run_path("02"), shape=SHAPE, tr=TR,
+              sidecar={"TaskName": "hum", "RepetitionTime": TR, "SliceTiming": sequential})
+    write_run(ds, run_path("03"), shape=SHAPE, tr=TR,
+              sidecar={"TaskName": "hum", "RepetitionTime": TR})
+    result = fix(ds)
+    assert result.exit_code == 0
+    assert "timing/missing not repaired" in result.output
+
+
+def test_a_list_written_for_the_opposite_direction_is_reversed(ds: Path) -> None:
+    # NIfTI: slice_code 1 is sequential increasing along the slice axis, so a
+    # decreasing SliceTiming along +k is the same list written for k-
+    rel = run_path("01")
+    descending = [round((9 - i) * 0.2, 4) for i in range(10)]
+    path = write_run(ds, rel, shape=SHAPE, tr=TR, slice_code=1, slice_duration=0.2,
+                     sidecar={"TaskName": "hum", "RepetitionTime": TR,
+                              "SliceTiming": descending})
+    assert "header/slice-code-mismatch" in codes_of(ds, rel)
+    assert fix(ds, "--apply").exit_code == 0
+    written = json.loads((ds / sidecar_of(rel)).read_text())
+    assert written["SliceTiming"] == descending[::-1]
+    # nibabel's reading of the header is the reference
+    assert written["SliceTiming"] == pytest.approx(nib.load(path).header.get_slice_times())
+    assert "header/slice-code-mismatch" not in codes_of(ds, rel)
+
+
+@pytest.mark.parametrize("declared", [None, 2])
+def test_multiband_factor_from_the_groups(ds: Path, declared: int | None) -> None:
+    # common practice (no source): multiband factor m repeats each time m times
+    sidecar: dict[str, Any] = {"TaskName": "hum", "RepetitionTime": TR,
+                               "SliceTiming": mb_times(3)}
+    if declared is not None:
+        sidecar["MultibandAccelerationFactor"] = declared
+    rel = run_path("01")
+    write_run(ds, rel, shape=(4, 4, 12, 5), tr=TR, sidecar=sidecar)
+    result = fix(ds, "--apply")
+    assert result.exit_code == 0, result.output
+    written = json.loads((ds / sidecar_of(rel)).read_text())
+    assert written["MultibandAccelerationFactor"] == 3
+    assert {"scheme/multiband-mismatch", "scheme/multiband-undeclared"}.isdisjoint(
+        codes_of(ds, rel))
+
+
+# -------------------------------------------------------------- file safety
+
+
+def test_style_and_key_order_are_kept(ds: Path) -> None:
+    rel = run_path("01")
+    write_run(ds, rel, shape=SHAPE, tr=TR)
+    text = ('{\n    "TaskName": "hum",\n    "SliceTiming": [' +
+            ", ".join(str(t * 1000) for t in interleaved()) +
+            '],\n    "RepetitionTime": 2.0,\n    "Note": "caf\\u00e9"\n}')  # no final newline
+    (ds / sidecar_of(rel)).write_text(text)
+    assert fix(ds, "--apply").exit_code == 0
+    after = (ds / sidecar_of(rel)).read_text()
+    assert list(json.loads(after)) == ["TaskName", "SliceTiming", "RepetitionTime", "Note"]
+    assert after.startswith('{\n    "TaskName"') and not after.endswith("\n")
+    assert "\\u00e9" in after  # escaped before, escaped after
+
+
+def test_json_style_detection() -> None:
+    assert JsonStyle.of('{\n\t"a": 1\n}\n').indent == "\t"
+    assert JsonStyle.of('{"a":1}').separators == (",", ":")
+    compact = JsonStyle.of('{"a": 1, "b": 2}')
+    assert compact.indent is None and compact.separators == (", ", ": ")
+
+
+def test_undo_restores_every_byte(ds: Path) -> None:
+    write_sidecar(ds, "task-hum_bold.json",
+                  {"TaskName": "hum", "RepetitionTime": TR,
+                   "SliceTiming": [t * 1000 for t in interleaved()]})
+    write_run(ds, run_path("01"), shape=SHAPE, tr=TR)
+    write_run(ds, run_path("02"), shape=(4, 4, 12, 5), tr=TR,
+              sidecar={"SliceTiming": list(slice_timing(Protocol(
+                  n_slices=12, order="interleaved", multiband=3, repetition_time=TR)))})
+    before = tree(ds)
+    applied = fix(ds, "--apply", "--backup-dir", ds.parent / "backups")
+    assert applied.exit_code == 0, applied.output
+    assert tree(ds) != before
+    journal = journal_in(applied.output)
+    assert journal.parent == ds.parent / "backups"
+    undone = fix("--undo", journal)
+    assert undone.exit_code == 0, undone.output
+    assert tree(ds) == before
+
+
+def test_default_backups_live_beside_the_dataset(ds: Path) -> None:
+    write_run(ds, run_path("01"), shape=SHAPE, tr=TR,
+              sidecar={"TaskName": "hum", "RepetitionTime": TR,
+                       "SliceTiming": [t * 1000 for t in interleaved()]})
+    applied = fix(ds, "--apply")
+    journal = journal_in(applied.output)
+    assert journal.parent.parent == ds.parent / "ds-slicetime-backups"
+    assert not any("backups" in p.name for p in ds.rglob("*"))
+
+
+def test_an_annexed_sidecar_is_refused_unless_links_may_be_replaced(ds: Path) -> None:
+    rel = run_path("01")
+    write_run(ds, rel, shape=SHAPE, tr=TR)
+    store = ds / ".git" / "annex" / "objects" / "Xy" / "KEY" / "KEY"
+    store.parent.mkdir(parents=True)
+    store.write_text(json.dumps({"TaskName": "hum", "RepetitionTime": TR,
+                                 "SliceTiming": [t * 1000 for t in interleaved()]}))
+    link = symlink(ds / sidecar_of(rel), os.path.relpath(store, (ds / rel).parent))
+    object_bytes = store.read_bytes()
+    refused = fix(ds, "--apply")
+    assert refused.exit_code == 1
+    assert "is an annexed file" in refused.output and "--replace-links" in refused.output
+    assert store.read_bytes() == object_bytes and link.is_symlink()
+    replaced = fix(ds, "--apply", "--replace-links")
+    assert replaced.exit_code == 0, replaced.output
+    assert not link.is_symlink()
+    assert store.read_bytes() == object_bytes  # the annex object is never written
+    assert json.loads(link.read_text())["SliceTiming"][1] < 2
+    undone = fix("--undo", journal_in(replaced.output))
+    assert undone.exit_code == 0 and link.is_symlink()
+
+
+@pytest.mark.skipif(os.geteuid() == 0, reason="root may write read-only files")
+def test_a_read_only_sidecar_is_refused(ds: Path) -> None:
+    rel = run_path("01")
+    write_run(ds, rel, shape=SHAPE, tr=TR,
+              sidecar={"TaskName": "hum", "RepetitionTime": TR,
+                       "SliceTiming": [t * 1000 for t in interleaved()]})
+    own = ds / sidecar_of(rel)
+    own.chmod(stat.S_IRUSR)
+    try:
+        result = fix(ds, "--apply")
+        assert result.exit_code == 1 and "is read-only" in result.output
+    finally:
+        own.chmod(stat.S_IRUSR | stat.S_IWUSR)
+
+
+def test_read_only_check_without_root(ds: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    # the same refusal, made visible when tests run as root: os.access says no
+    rel = run_path("01")
+    write_run(ds, rel, shape=SHAPE, tr=TR,
+              sidecar={"TaskName": "hum", "RepetitionTime": TR,
+                       "SliceTiming": [t * 1000 for t in interleaved()]})
+    own = str(ds / sidecar_of(rel))
+    real_access = os.access
+    monkeypatch.setattr(os, "access", lambda p, mode: False if str(p) == own and
+                        mode == os.W_OK else real_access(p, mode))
+    before = tree(ds)
+    result = fix(ds, "--apply")
+    assert result.exit_code == 1
+    assert f"{sidecar_of(rel)}: is read-only" in result.output
+    assert tree(ds) == before
+
+
+def test_saved_plan_refuses_files_changed_since(ds: Path, tmp_path: Path) -> None:
+    write_run(ds, run_path("01"), shape=SHAPE, tr=TR,
+              sidecar={"TaskName": "hum", "RepetitionTime": TR,
+                       "SliceTiming": [t * 1000 for t in interleaved()]})
+    write_run(ds, run_path("02"), shape=SHAPE, tr=TR,
+              sidecar={"TaskName": "hum", "RepetitionTime": TR,
+                       "SliceTiming": [t * 1000 for t in interleaved()]})
+    plan = tmp_path / "plan.json"
+    saved = fix(ds, "--plan", plan)
+    assert saved.exit_code == 1 and plan.exists()
+    # someone edits one of the files after the plan was reviewed
+    edited = ds / sidecar_of(run_path("02"))
+    edited.write_text(edited.read_text().replace('"hum"', '"hum2"'))
+    edited_bytes = edited.read_bytes()
+    applied = fix("--apply", "--plan", plan)
+    assert applied.exit_code == 1
+    assert f"{sidecar_of(run_path('02'))}: changed since the plan was made" in applied.output
+    assert edited.read_bytes() == edited_bytes
+    assert json.loads((ds / sidecar_of(run_path("01"))).read_text())["SliceTiming"][1] < 2
+
+
+@pytest.mark.parametrize(
+    ("args", "message"),
+    [
+        ([], "give the dataset or runs to repair"),
+        (["--undo", "nowhere.json"], "cannot read the journal"),
+    ],
+)
+def test_usage_errors(args: list[str], message: str) -> None:
+    result = CliRunner().invoke(cli, ["fix", *args])
+    assert result.exit_code == 2
+    assert message in result.output
+
+
+def test_nothing_to_fix_exits_zero(ds: Path) -> None:
+    write_run(ds, run_path("01"), shape=SHAPE, tr=TR,
+              sidecar={"TaskName": "hum", "RepetitionTime": TR, "SliceTiming": interleaved()})
+    result = fix(ds)
+    assert result.exit_code == 0 and "nothing to fix" in result.output
