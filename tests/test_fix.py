@@ -399,3 +399,42 @@ def test_nothing_to_fix_exits_zero(ds: Path) -> None:
               sidecar={"TaskName": "hum", "RepetitionTime": TR, "SliceTiming": interleaved()})
     result = fix(ds)
     assert result.exit_code == 0 and "nothing to fix" in result.output
+
+
+# ------------------------------------------------------------ layout moves
+
+
+def test_consolidate_and_spread_are_inverse(ds: Path) -> None:
+    # BIDS inheritance principle: a value in task-hum_bold.json at the root applies to
+    # every hum run that does not override it, so the resolved metadata is unchanged
+    for sub in ("01", "02", "03"):
+        write_run(ds, run_path(sub), shape=SHAPE, tr=TR,
+                  sidecar={"TaskName": "hum", "RepetitionTime": TR, "SliceTiming": interleaved()})
+    resolved = {r.record.path: dict(r.record.metadata) for r in audit_paths([ds]).runs}
+    original = tree(ds)
+    result = fix(ds, "--apply", "--consolidate", "SliceTiming", "--consolidate", "RepetitionTime")
+    assert result.exit_code == 0, result.output
+    top = json.loads((ds / "task-hum_bold.json").read_text())
+    assert top == {"SliceTiming": interleaved(), "RepetitionTime": TR}
+    for sub in ("01", "02", "03"):
+        assert json.loads((ds / sidecar_of(run_path(sub))).read_text()) == {"TaskName": "hum"}
+    after = {r.record.path: dict(r.record.metadata) for r in audit_paths([ds]).runs}
+    assert after == resolved
+    spread = fix(ds, "--apply", "--spread", "SliceTiming", "--spread", "RepetitionTime")
+    assert spread.exit_code == 0, spread.output
+    assert {r.record.path: dict(r.record.metadata) for r in audit_paths([ds]).runs} == resolved
+    assert json.loads((ds / "task-hum_bold.json").read_text()) == {}
+    assert tree(ds) != original  # key order may differ; the meaning does not
+
+
+def test_consolidate_refuses_differing_values(ds: Path) -> None:
+    write_run(ds, run_path("01"), shape=SHAPE, tr=TR,
+              sidecar={"TaskName": "hum", "RepetitionTime": TR, "SliceTiming": interleaved()})
+    write_run(ds, run_path("02"), shape=SHAPE, tr=TR,
+              sidecar={"TaskName": "hum", "RepetitionTime": TR,
+                       "SliceTiming": [i * 0.2 for i in range(10)]})
+    before = tree(ds)
+    result = fix(ds, "--apply", "--consolidate", "SliceTiming")
+    assert result.exit_code == 0
+    assert "SliceTiming not consolidated" in result.output
+    assert tree(ds) == before

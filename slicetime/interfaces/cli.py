@@ -332,6 +332,12 @@ def correct(
               "this saved plan (files changed since it was made are refused).")
 @click.option("--per-run", is_flag=True,
               help="Write every repair into the run's own sidecar, never into an inherited one.")
+@click.option("--consolidate", "consolidate", multiple=True, metavar="FIELD",
+              help="Move FIELD, when every run of a task and acquisition has the same value in "
+              "its own sidecar, into one top-level sidecar (repeatable).")
+@click.option("--spread", "spread", multiple=True, metavar="FIELD",
+              help="The reverse: copy FIELD from the shared sidecar that gives it into each "
+              "run's own sidecar and remove it there (repeatable).")
 @click.option("--replace-links", is_flag=True,
               help="Replace a sidecar that is a symbolic link (annexed) by a regular file "
               "instead of refusing it.")
@@ -348,6 +354,8 @@ def fix(
     undo_journal: Path | None,
     plan_file: Path | None,
     per_run: bool,
+    consolidate: tuple[str, ...],
+    spread: tuple[str, ...],
     replace_links: bool,
     policy_file: Path | None,
     jobs: int | None,
@@ -387,7 +395,8 @@ def fix(
                 raise UserError("fix: give the dataset or runs to repair (PATH...)")
             with _executor(jobs, scheduler) as executor:
                 plan = fixing.plan_fix(list(paths), per_run=per_run, policy_file=policy_file,
-                                       executor=executor)
+                                       executor=executor, consolidate=consolidate,
+                                       spread=spread)
             render_fix_plan(plan, console)
     except fixing.FixError as exc:
         raise UserError(str(exc)) from None

@@ -40,9 +40,11 @@ from slicetime.model import Finding, RunRecord
 from slicetime.pipelines.audit import AuditResult, audit_paths
 from slicetime.pipelines.executor import Executor
 from slicetime.readers.dataset import find_root
+from slicetime.readers.entities import parse_name
 from slicetime.readers.errors import ReadError
 from slicetime.readers.policy import POLICY_FILENAME, Policy, find_policy, load_policy
 from slicetime.rules import RULES
+from slicetime.rules.dataset import PROTOCOL_ENTITIES
 from slicetime.rules.policy import select_protocol
 from slicetime.rules.repairs import FIXABLE, Repair, plan_consensus, plan_run
 
@@ -116,7 +118,8 @@ def _repair_json(repair: Repair) -> dict[str, Any]:
         "run": repair.run,
         "code": repair.code,
         "field": repair.field,
-        "value": repair.value,
+        "value": None if repair.value is REMOVE else repair.value,
+        "remove": repair.value is REMOVE,
         "current": repair.current,
         "resolved_from": repair.resolved_from,
         "source": repair.source,
@@ -227,8 +230,15 @@ def plan_fix(
     per_run: bool = False,
     policy_file: Path | None = None,
     executor: Executor | None = None,
+    consolidate: Sequence[str] = (),
+    spread: Sequence[str] = (),
 ) -> FixPlan:
-    """Audit the datasets holding ``paths`` and plan the repairs of the runs under them."""
+    """Audit the datasets holding ``paths`` and plan the repairs of the runs under them.
+
+    ``consolidate`` fields identical in the own sidecars of every run of a task and
+    acquisition move into one top-level sidecar; ``spread`` fields move from the
+    shared sidecars that supply them into each run's own sidecar.
+    """
     roots = sorted({find_root(Path(p)) for p in paths}, key=str)
     wanted = [Path(os.path.realpath(p)) for p in paths]
     audit = audit_paths(list(roots), policy_file=policy_file, executor=executor)
@@ -245,7 +255,8 @@ def plan_fix(
     consensus = plan_consensus(runs, repairs)
     repairs += [r for r in consensus if _under_path(r, runs, wanted)]
     _explain_unrepaired(runs, wanted, repairs, plan)
-    _place(repairs, runs, per_run, plan)
+    moves = _layout_moves(runs, wanted, consolidate, spread, plan)
+    _place(repairs, runs, per_run, plan, moves)
     for repair in repairs:
         plan.repaired_runs.setdefault(repair.root, set()).add(repair.run)
     return plan
@@ -279,6 +290,7 @@ def _place(
     runs: Sequence[tuple[RunRecord, list[Finding]]],
     per_run: bool,
     plan: FixPlan,
+    moves: Sequence[tuple[str, Repair]] = (),
 ) -> None:
     """Decide the file of every repair, then build the new content of every file."""
     users: dict[tuple[str, str, str], set[str]] = defaultdict(set)
@@ -305,6 +317,8 @@ def _place(
                 if note not in plan.notes:
                     plan.notes.append(note)
         targets[(repair.root, target)][repair.field].append(repair)
+    for file, move in moves:
+        targets[(move.root, file)][move.field].append(move)
     for (root, file), fields in sorted(targets.items()):
         change = _build_change(root, file, fields, plan)
         if change is not None:
@@ -326,11 +340,14 @@ def _build_change(
         return None
     chosen: list[Repair] = []
     for key, group in fields.items():
-        values = {json.dumps(r.value) for r in group}
+        values = {_value_key(r.value) for r in group}
         if len(values) != 1:
             plan.notes.append(f"{file}: {key} not changed: the repairs disagree on its value")
             continue
-        data[key] = group[0].value
+        if group[0].value is REMOVE:
+            data.pop(key, None)
+        else:
+            data[key] = group[0].value
         chosen.extend(group)
     if not chosen:
         return None
@@ -338,6 +355,105 @@ def _build_change(
     if after == before:
         return None
     return FileChange(root, file, before, after, _current_sha(path), chosen)
+
+
+# --------------------------------------------------------------------------- layout
+
+
+class _Remove:
+    """The value of a repair that deletes its field."""
+
+    def __repr__(self) -> str:
+        return "REMOVE"
+
+
+REMOVE: Any = _Remove()
+
+
+def _value_key(value: Any) -> str:
+    return "<remove>" if value is REMOVE else json.dumps(value, sort_keys=True)
+
+
+def _top_name(record: RunRecord) -> str:
+    """The root-level sidecar for the run's task and acquisition: ``task-x[_acq-y]_bold.json``."""
+    parts = [f"{e}-{record.entities[e]}" for e in PROTOCOL_ENTITIES if e in record.entities]
+    return "_".join([*parts, record.suffix]) + ".json"
+
+
+def _applies(top: str, record: RunRecord) -> bool:
+    parsed = parse_name(top)
+    return parsed is not None and parsed.suffix == record.suffix and all(
+        record.entities.get(k) == v for k, v in parsed.entities.items()
+    )
+
+
+def _move(record: RunRecord, key: str, value: Any, code: str, source: str) -> Repair:
+    return Repair(run=record.path, root=record.root, code=code, field=key, value=value,
+                  current=record.metadata.get(key),
+                  resolved_from=record.metadata_sources.get(key), source=source)
+
+
+def _layout_moves(
+    runs: Sequence[tuple[RunRecord, list[Finding]]],
+    wanted: Sequence[Path],
+    consolidate: Sequence[str],
+    spread: Sequence[str],
+    plan: FixPlan,
+) -> list[tuple[str, Repair]]:
+    """(file, repair) pairs that move fields between run and top-level sidecars."""
+    records = [r for r, _ in runs if r.header is not None]
+    users: dict[tuple[str, str, str], list[RunRecord]] = defaultdict(list)
+    for record in records:
+        for name, source in record.metadata_sources.items():
+            users[(record.root, source, name)].append(record)
+    moves: list[tuple[str, Repair]] = []
+    for key in consolidate:
+        groups: dict[tuple[str, str], list[RunRecord]] = defaultdict(list)
+        for record in records:
+            if _under(record, wanted) and record.suffix:
+                groups[(record.root, _top_name(record))].append(record)
+        for (root, top), members in sorted(groups.items()):
+            affected = [r for r in records if r.root == root and _applies(top, r)]
+            values = {_value_key(r.metadata.get(key)) for r in affected}
+            if len(affected) < 2 or len(values) != 1 or key not in affected[0].metadata:
+                plan.notes.append(f"{top}: {key} not consolidated: the {len(affected)} runs "
+                                  "it would serve do not all have one value")
+                continue
+            if all(r.metadata_sources.get(key) == top for r in affected):
+                continue  # already written once
+            sources = {r.metadata_sources[key] for r in affected} - {top}
+            outside = [s for s in sorted(sources)
+                       if not {u.path for u in users[(root, s, key)]} <= {a.path for a in affected}]
+            if outside:
+                plan.notes.append(f"{top}: {key} not consolidated: {outside[0]} also gives it "
+                                  "to runs of other tasks or acquisitions")
+                continue
+            value = affected[0].metadata[key]
+            why = f"one value shared by the {len(affected)} runs {top} serves"
+            moves.append((top, _move(members[0], key, value, "layout/consolidate", why)))
+            for record in affected:
+                source = record.metadata_sources.get(key)
+                if source is not None and source != top:
+                    moves.append((source, _move(record, key, REMOVE, "layout/consolidate",
+                                                f"now inherited from {top}")))
+    for key in spread:
+        for record in records:
+            source = record.metadata_sources.get(key)
+            own = own_sidecar(record.path)
+            if not _under(record, wanted) or source is None or source == own:
+                continue
+            if not all(_under(u, wanted) for u in users[(record.root, source, key)]):
+                note = (f"{source}: {key} not spread: it also serves runs outside the paths "
+                        "given (give the whole dataset)")
+                if note not in plan.notes:
+                    plan.notes.append(note)
+                continue
+            value = record.metadata[key]
+            moves.append((own, _move(record, key, value, "layout/spread",
+                                     f"copied from {source} into the run's own sidecar")))
+            moves.append((source, _move(record, key, REMOVE, "layout/spread",
+                                        "now written in each run's own sidecar")))
+    return moves
 
 
 # --------------------------------------------------------------------------- plan files
