@@ -79,7 +79,9 @@ def audit_chunk(
     indexes: dict[Path, SidecarIndex] = {}
     results = []
     for root, path in targets:
-        index = indexes.setdefault(root, SidecarIndex(root))
+        if root not in indexes:
+            indexes[root] = SidecarIndex(root)
+        index = indexes[root]
         try:
             results.append(audit_one(root, path, index, (policies or {}).get(root)))
         except Exception as exc:
