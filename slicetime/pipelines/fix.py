@@ -463,13 +463,19 @@ def write_plan(plan: FixPlan, path: Path) -> None:
     _atomic_write(path, (json.dumps(plan.to_json(), indent=2) + "\n").encode("utf-8"), None)
 
 
-def read_plan(path: Path) -> FixPlan:
+def _load_marked(path: Path, marker: str, what: str) -> dict[str, Any]:
+    """A JSON file slicetime wrote (a plan or a journal), checked by its format marker."""
     try:
         content = json.loads(path.read_text(encoding="utf-8"))
     except (OSError, ValueError) as exc:
-        raise FixError(f"{path}: cannot read the plan ({exc})") from None
-    if not isinstance(content, dict) or content.get("format") != PLAN_FORMAT:
-        raise FixError(f"{path}: not a slicetime fix plan (format {PLAN_FORMAT!r} expected)")
+        raise FixError(f"{path}: cannot read the {what} ({exc})") from None
+    if not isinstance(content, dict) or content.get("format") != marker:
+        raise FixError(f"{path}: not a slicetime fix {what} (format {marker!r} expected)")
+    return content
+
+
+def read_plan(path: Path) -> FixPlan:
+    content = _load_marked(path, PLAN_FORMAT, "plan")
     plan = FixPlan(notes=list(content.get("notes", [])))
     for item in content.get("changes", []):
         try:
@@ -620,12 +626,7 @@ class UndoResult:
 
 def undo(journal_path: Path) -> UndoResult:
     """Restore every file a journal records, newest first, byte for byte."""
-    try:
-        content = json.loads(journal_path.read_text(encoding="utf-8"))
-    except (OSError, ValueError) as exc:
-        raise FixError(f"{journal_path}: cannot read the journal ({exc})") from None
-    if not isinstance(content, dict) or content.get("format") != JOURNAL_FORMAT:
-        raise FixError(f"{journal_path}: not a slicetime fix journal")
+    content = _load_marked(journal_path, JOURNAL_FORMAT, "journal")
     backup = journal_path.parent
     result = UndoResult()
     for entry in reversed(content.get("entries", [])):
