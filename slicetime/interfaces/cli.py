@@ -102,6 +102,9 @@ def show(file: Path, as_json: bool) -> None:
               show_default=True, help="Report format on stdout (or --output).")
 @click.option("--output", type=click.Path(path_type=Path, dir_okay=False),
               help="Write the report to this file instead of stdout.")
+@click.option("--html", "html_file", type=click.Path(path_type=Path, dir_okay=False),
+              help="Also write a self-contained HTML report with timing diagrams to this "
+              "file (works offline; any --format still goes to stdout or --output).")
 @click.option("--fail-on", type=click.Choice(["error", "warning", "never"]), default="error",
               show_default=True, help="Exit 1 when a finding reaches this severity.")
 @click.option("--hide-notes", is_flag=True, help="Leave notes out of the text report.")
@@ -120,6 +123,7 @@ def audit(
     paths: tuple[Path, ...],
     fmt: str,
     output: Path | None,
+    html_file: Path | None,
     fail_on: str,
     hide_notes: bool,
     include_derivatives: bool,
@@ -152,6 +156,14 @@ def audit(
                        "audited, no report written", err=True)
             sys.exit(130)
     root_given = str(paths[0]) if len(paths) == 1 else " ".join(str(p) for p in paths)
+    if html_file is not None:
+        from slicetime.interfaces.report_html import write_html
+
+        try:
+            write_html(result, html_file, root_given=root_given)
+        except OSError as exc:
+            raise UserError(f"{html_file}: cannot write the HTML report: "
+                            f"{exc.strerror or exc}") from None
     if fmt == "json":
         text = dumps(audit_object(result, root_given)) + "\n"
         if output:
