@@ -127,7 +127,7 @@ def glm_effect(trs: Iterable[float], *, n_slices: int = 9, volumes: int = 180, s
         # the true effect size: the regressor built by nilearn has peak ~1 per unit
         # amplitude of our double-gamma response (both are the canonical shape)
         for is_corrected, values in ((False, data), (True, corrected)):
-            model = FirstLevelModel(t_r=tr, slice_time_ref=reference / tr, hrf_model="spm",
+            model = FirstLevelModel(t_r=tr, slice_time_ref=reference / tr, hrf_model="glover",
                                     drift_model="cosine", mask_img=NiftiMasker(mask).fit(),
                                     signal_scaling=False, noise_model="ols",
                                     minimize_memory=True)

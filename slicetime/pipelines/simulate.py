@@ -4,9 +4,8 @@ Used by the demo (realistic small data) and by the validation study (ground
 truth for the correction). Pure numeric code: arrays in, arrays out.
 
 A simulated voxel's signal is a baseline, a response to events (events
-convolved with a canonical double-gamma haemodynamic response: the shape of
-Glover 1999, NeuroImage 9:416-429, in the common parameterisation of a gamma
-peak with shape 6 and an undershoot with shape 16 at 1/6 of its size), a slow
+convolved with the canonical double-gamma haemodynamic response of Glover
+1999, NeuroImage 9:416-429), a slow
 drift, and optionally physiological-like fluctuations and thermal noise. The
 value stored for slice ``z`` of volume ``v`` is that signal at time
 ``v * TR + slice_time[z]``: what the scanner records.
@@ -21,14 +20,21 @@ import numpy as np
 from scipy import stats
 
 
-def double_gamma(t: np.ndarray, *, peak: float = 6.0, undershoot: float = 16.0,
-                 ratio: float = 1.0 / 6.0) -> np.ndarray:
-    """The canonical double-gamma response at times ``t`` (seconds), peak 1."""
+def double_gamma(t: np.ndarray) -> np.ndarray:
+    """The canonical double-gamma response at times ``t`` (seconds), peak 1.
+
+    Glover's parameterisation (1999): a gamma peak with delay 6 s and dispersion
+    0.9, minus 0.35 of an undershoot with delay 12 s and dispersion 0.9 (from
+    memory; the tests cross-check the shape against nilearn's "glover" model).
+    """
     t = np.asarray(t, dtype=np.float64)
-    shape = stats.gamma.pdf(t, peak) - ratio * stats.gamma.pdf(t, undershoot)
-    grid = np.linspace(0, 32, 3201)
-    top = float(np.max(stats.gamma.pdf(grid, peak) - ratio * stats.gamma.pdf(grid, undershoot)))
-    return np.where(t >= 0, shape, 0.0) / top
+
+    def shape(x: np.ndarray) -> np.ndarray:
+        return (stats.gamma.pdf(x, 6.0 / 0.9, scale=0.9)
+                - 0.35 * stats.gamma.pdf(x, 12.0 / 0.9, scale=0.9))
+
+    top = float(np.max(shape(np.linspace(0, 32, 3201))))
+    return np.where(t >= 0, shape(t), 0.0) / top
 
 
 def random_events(rng: np.random.Generator, duration: float, *, gap: tuple[float, float] =
