@@ -10,6 +10,7 @@ from slicetime.rules import (  # noqa: F401  (registration)
     policy,
     reading,
     timing,
+    verify,
 )
 from slicetime.rules.registry import (
     RULES,

@@ -1,0 +1,57 @@
+"""Documentation of the codes that ``slicetime verify`` (and ``audit --verify``) raises.
+
+The check reads image data, so it lives in :mod:`slicetime.pipelines.verify`
+(scoring in :mod:`slicetime.engines.verify`); these entries make ``slicetime
+explain`` and the report schema cover its codes.
+"""
+
+from __future__ import annotations
+
+from slicetime.model import Severity
+from slicetime.rules.registry import reader_code
+
+_HOW = (
+    "A signal shared by the slices (global fluctuations, a widespread response, abrupt "
+    "events) reaches every slice delayed by that slice's acquisition time. verify aligns "
+    "the slices' mean time courses with the claimed schedule and with plausible "
+    "alternatives (sequential and interleaved orders, the claim flipped or reversed, "
+    "multiband variants, no offsets) and compares how coherent they become; a block "
+    "bootstrap over volumes and orders made by shuffling the claimed times calibrate the "
+    "differences. "
+)
+
+reader_code(
+    "verify/contradicted",
+    title="the image data fit another slice order clearly better than the claimed one",
+    severity=Severity.WARNING,
+    rationale=_HOW + (
+        "A named alternative aligns the slices better than the claim by a clear margin "
+        "(evidence: effect, the share of the timing evidence the claim loses; z_rival, the "
+        "bootstrap z of the difference, and its 95 % interval). Anything that delays the "
+        "signal differently from slice to slice can also cause this, e.g. strong regional "
+        "latency differences or slice-wise motion; already corrected data fit 'no offsets'."
+    ),
+    fix="Check the slice order against the protocol or the scanner export before correcting; "
+        "the alternative named in the message fits the data better.",
+)
+reader_code(
+    "verify/supported",
+    title="the image data support the claimed slice order",
+    severity=Severity.NOTE,
+    rationale=_HOW + (
+        "The claim aligns the slices clearly better than shuffled orders and no alternative "
+        "beats it beyond noise. Alternatives nearly identical in time to the claim cannot be "
+        "told apart and are listed as equivalent."
+    ),
+)
+reader_code(
+    "verify/undecidable",
+    title="the image data cannot tell whether the claimed slice order is right",
+    severity=Severity.NOTE,
+    rationale=_HOW + (
+        "No verdict: the shared signal is too weak or too slow for slice delays to matter "
+        "(e.g. noise-dominated data, short runs), the evidence points both ways, or the run "
+        "cannot be checked (no schedule, VolumeTiming, fewer than 30 volumes or 3 slices)."
+    ),
+    fix="Nothing to repair; longer runs or runs with more shared signal give more evidence.",
+)
