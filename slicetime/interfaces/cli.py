@@ -118,6 +118,9 @@ def show(file: Path, as_json: bool) -> None:
               "Files must be on a file system the workers share.")
 @click.option("--policy", "policy_file", type=click.Path(path_type=Path, dir_okay=False),
               help="Lab policy (TOML). Default: slicetime-policy.toml at the dataset root.")
+@click.option("--verify", "verify_data", is_flag=True,
+              help="Also read each run's image data and check its slice order against it "
+              "(a verify/* finding per run; slower: see 'slicetime verify').")
 @friendly
 def audit(
     paths: tuple[Path, ...],
@@ -132,6 +135,7 @@ def audit(
     jobs: int | None,
     scheduler: str | None,
     policy_file: Path | None,
+    verify_data: bool,
 ) -> None:
     """Audit every run under PATHS (dataset roots, subject folders or run files)."""
     from slicetime.interfaces.report_json import audit_object, dumps
@@ -149,6 +153,7 @@ def audit(
                 progress=progress,
                 policy_file=policy_file,
                 executor=executor,
+                verify=verify_data,
             )
         except Interrupted as stop:
             finished = sum(1 for r in stop.results if r is not None)
@@ -216,6 +221,57 @@ def _write_text(path: Path, text: str) -> None:
         os.replace(tmp, path)
     except OSError as exc:
         raise UserError(f"{path}: cannot write the report: {exc.strerror or exc}") from None
+
+
+# --------------------------------------------------------------------------- verify
+@cli.command()
+@click.argument("files", nargs=-1, required=True, type=click.Path(path_type=Path))
+@click.option("--format", "fmt", type=click.Choice(["text", "json"]), default="text",
+              show_default=True, help="Report format on stdout.")
+@friendly
+def verify(files: tuple[Path, ...], fmt: str) -> None:
+    """Check each run's claimed slice order against its own image data.
+
+    Verdicts: supported, contradicted (naming the order that fits better) or
+    undecidable. Exit 1 when any run is contradicted, 2 when a file cannot be read.
+    """
+    from slicetime.interfaces.report_json import dumps
+    from slicetime.pipelines.verify import verify_run
+    from slicetime.readers.dataset import find_root
+    from slicetime.readers.errors import ReadError, check_regular_file
+
+    outcomes = []
+    unreadable: list[dict[str, str]] = []
+    for file in files:
+        try:
+            check_regular_file(file, str(file), what="image")
+            path = file if file.is_absolute() else file.absolute()
+            _, outcome = verify_run(find_root(path.parent), path)
+        except ReadError as exc:
+            click.echo(f"slicetime: {exc.message}", err=True)
+            unreadable.append({"file": str(file), "code": exc.code, "message": exc.message})
+            continue
+        outcomes.append(outcome)
+        if fmt == "text":
+            finding = outcome.finding
+            click.echo(f"{finding.code.split('/')[1]:<12} {finding.message}")
+            if outcome.decision is not None and outcome.decision.verdict != "supported":
+                d = outcome.decision
+                click.echo(f"{'':<12} best: {d.best_name} (score {d.best_score:.3f}; claimed "
+                           f"{d.claimed_score:.3f}; shuffled orders {d.null_score:.3f})")
+    verdicts = [o.finding.code.split("/")[1] for o in outcomes]
+    if fmt == "json":
+        click.echo(dumps({
+            "tool": {"name": "slicetime", "version": __version__},
+            "runs": [{"path": o.path, "verdict": o.finding.code.split("/")[1],
+                      "finding": o.finding.to_json()} for o in outcomes],
+            "unreadable": unreadable,
+            "summary": {v: verdicts.count(v) for v in ("supported", "contradicted",
+                                                       "undecidable")},
+        }))
+    if unreadable:
+        sys.exit(EXIT_USAGE)
+    sys.exit(EXIT_FINDINGS if "contradicted" in verdicts else 0)
 
 
 # --------------------------------------------------------------------------- correct

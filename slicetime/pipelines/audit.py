@@ -57,11 +57,18 @@ class AuditResult:
 
 
 def audit_one(
-    root: Path, path: Path, index: SidecarIndex | None = None, policy: Policy | None = None
+    root: Path, path: Path, index: SidecarIndex | None = None, policy: Policy | None = None,
+    *, verify: bool = False,
 ) -> RunResult:
-    """Audit one run (the unit of work for every executor)."""
+    """Audit one run (the unit of work for every executor). With ``verify`` the image
+    data are read too and the run gets one ``verify/*`` finding (before the policy, so
+    the policy can ignore or re-rate it)."""
     record = build_record(root, path, index)
     findings = check_run(record)
+    if verify:
+        from slicetime.pipelines.verify import verify_finding
+
+        findings.append(verify_finding(record))
     if policy is None:
         return RunResult(record, findings)
     outcome = apply_policy(policy, record, findings)
@@ -69,7 +76,8 @@ def audit_one(
 
 
 def audit_chunk(
-    targets: Sequence[tuple[Path, Path]], policies: Mapping[Path, Policy | None] | None = None
+    targets: Sequence[tuple[Path, Path]], policies: Mapping[Path, Policy | None] | None = None,
+    verify: bool = False,
 ) -> list[RunResult]:
     """Audit neighbouring runs with one sidecar cache per dataset root.
 
@@ -83,7 +91,8 @@ def audit_chunk(
             indexes[root] = SidecarIndex(root)
         index = indexes[root]
         try:
-            results.append(audit_one(root, path, index, (policies or {}).get(root)))
+            results.append(audit_one(root, path, index, (policies or {}).get(root),
+                                     verify=verify))
         except Exception as exc:
             if os.environ.get("SLICETIME_DEBUG"):
                 raise
@@ -145,8 +154,12 @@ def audit_paths(
     progress: Progress | None = None,
     policy_file: Path | None = None,
     executor: Executor | None = None,
+    verify: bool = False,
 ) -> AuditResult:
-    """Audit every run under ``paths``; raises ReadError only for a missing given path."""
+    """Audit every run under ``paths``; raises ReadError only for a missing given path.
+
+    ``verify`` also reads every run's image data in its worker and adds its
+    ``verify/*`` finding (see :mod:`slicetime.pipelines.verify`)."""
     walk_problems: list[Finding] = []
     targets: list[tuple[Path, Path]] = list(
         iter_runs(
@@ -161,7 +174,7 @@ def audit_paths(
     result = AuditResult(roots=roots)
     policies = _policies(sorted({root for root, _ in targets}), policy_file, walk_problems)
     result.policies = {str(r): p.file for r, p in policies.items() if p is not None}
-    job = functools.partial(audit_chunk, policies=policies)
+    job = functools.partial(audit_chunk, policies=policies, verify=verify)
     result.runs = map_chunks(
         job,
         targets,
