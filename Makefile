@@ -32,3 +32,7 @@ bench: $(STAMP)
 
 validate: $(STAMP)
 	$(PY) validation/make_report.py --out docs
+
+.PHONY: verify-study
+verify-study: $(STAMP)
+	$(PY) validation/verify_study.py --out docs
