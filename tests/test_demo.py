@@ -6,14 +6,19 @@ import json
 from pathlib import Path
 
 import jsonschema
+import pytest
 
 from slicetime.interfaces.report_json import report_schema
 from slicetime.pipelines.demo import run_demo
 
 
-def test_the_demo_runs_the_whole_job(tmp_path: Path) -> None:
+def test_the_demo_runs_the_whole_job(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
     out = tmp_path / "demo"
     assert run_demo(out) == 0
+    printed = capsys.readouterr().out
+    # the planted override (descending) is contradicted by the simulated data, which
+    # were acquired interleaved (see tests/test_verify.py for the method's rates)
+    assert printed.count("verify/contradicted") == 2
     report = json.loads((out / "audit.json").read_text())
     jsonschema.validate(report, report_schema())  # the JSON report contract
     codes = {f["code"] for run in report["runs"] for f in run["findings"]}

@@ -14,7 +14,8 @@ exists for, planted the way they happen in practice:
 * one header's TR is in milliseconds but labelled seconds;
 * one file was cut short in a copy.
 
-The tour: show one run, audit the study (terminal and HTML), plan the repairs,
+The tour: show one run, audit the study (terminal and HTML), ask the images
+whether the overriding participant's claimed order is true, plan the repairs,
 apply them to a copy, audit the copy again, correct the copy, and say where
 everything is. Seeded, so every run of the demo is the same.
 """
@@ -193,7 +194,17 @@ def run_demo(out: Path) -> int:
     report.write_text(dumps(audit_object(result, str(dataset))) + "\n", encoding="utf-8")
     html = _html_report(result, str(dataset), out / "audit.html")
 
-    console.rule("3. slicetime fix (the plan, on a copy of the study)")
+    console.rule("3. slicetime verify (do the images agree with sub-03's override?)")
+    from slicetime.pipelines.verify import verify_run
+
+    for session in ("1", "2"):
+        rel = f"sub-03/ses-{session}/func/sub-03_ses-{session}_task-hum_bold.nii.gz"
+        _, verdict = verify_run(dataset, dataset / rel)
+        console.print(f"{verdict.finding.code:<20} {rel}: {verdict.finding.message}")
+    console.print("the sidecar override says 'descending'; the slices' own time courses say "
+                  "otherwise: fix cannot settle which is true, a person must\n")
+
+    console.rule("4. slicetime fix (the plan, on a copy of the study)")
     fixed = out / "quiet-rooms-fixed"
     if fixed.exists():
         shutil.rmtree(fixed)
@@ -207,7 +218,7 @@ def run_demo(out: Path) -> int:
                      f"{len(left)} findings left"))
     after = audit_paths([fixed])
 
-    console.rule("4. slicetime correct (runs with trustworthy timing)")
+    console.rule("5. slicetime correct (runs with trustworthy timing)")
     aligned = fixed / "derivatives" / "slicetime"
     if aligned.exists():
         shutil.rmtree(aligned)
