@@ -614,7 +614,7 @@ def explain(code: str | None, list_all: bool) -> None:
     "demo-output"), show_default=True, help="Folder for the invented dataset and reports.")
 @friendly
 def demo(out: Path) -> None:
-    """Build a small invented dataset and audit it."""
+    """Run the whole job on a small invented study (audit, verify, fix, correct)."""
     from slicetime.pipelines.demo import run_demo
 
     sys.exit(run_demo(out))
