@@ -257,3 +257,19 @@ def test_ctrl_c_during_an_audit_says_how_far_it_got(
     result = CliRunner().invoke(cli, ["audit", str(root), "--jobs", "1"])
     assert result.exit_code == 130
     assert "interrupted; 0 of 3 runs audited, no report written" in result.output
+
+
+def test_light_work_stays_in_one_process_on_small_machines(
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    # measured (README, Performance): on 2 CPUs a second audit worker costs more than
+    # it saves, while correction (seconds per run) gains from it
+    from slicetime.pipelines import executor as executor_module
+
+    monkeypatch.setattr(executor_module, "available_cpus", lambda: 2)
+    assert type(make_executor(None, None, light=True)) is Executor
+    assert isinstance(make_executor(None, None, light=False), ProcessExecutor)
+    assert isinstance(make_executor(2, None, light=True), ProcessExecutor)  # asked for
+    monkeypatch.setattr(executor_module, "available_cpus", lambda: 8)
+    pooled = make_executor(None, None, light=True)
+    assert isinstance(pooled, ProcessExecutor) and pooled.jobs == 8

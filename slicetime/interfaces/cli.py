@@ -112,7 +112,8 @@ def show(file: Path, as_json: bool) -> None:
 @click.option("--include-sourcedata", is_flag=True, help="Also audit sourcedata/.")
 @click.option("--include-hidden", is_flag=True, help="Also audit hidden folders and files.")
 @click.option("--jobs", type=click.IntRange(min=1), default=None,
-              help="Local worker processes (default: the CPUs available).")
+              help="Local worker processes (default: the CPUs available; one on machines with 2 or "
+              "fewer).")
 @click.option("--scheduler", metavar="ADDRESS",
               help="Run on a Dask cluster: the address of its scheduler (tcp://host:8786). "
               "Files must be on a file system the workers share.")
@@ -143,7 +144,8 @@ def audit(
     from slicetime.pipelines.audit import audit_paths
     from slicetime.pipelines.executor import Interrupted
 
-    with _executor(jobs, scheduler) as executor, progress_reporter("auditing") as progress:
+    with _executor(jobs, scheduler, light=not verify_data) as executor, \
+            progress_reporter("auditing") as progress:
         try:
             result = audit_paths(
                 list(paths),
@@ -193,12 +195,13 @@ def audit(
 
 
 @contextlib.contextmanager
-def _executor(jobs: int | None, scheduler: str | None) -> Iterator[Any]:
-    """The executor the options ask for; a note on stderr of where the work ran."""
+def _executor(jobs: int | None, scheduler: str | None, *, light: bool = True) -> Iterator[Any]:
+    """The executor the options ask for; a note on stderr of where the work ran.
+    ``light``: header-only work per run (audit, fix), see ``make_executor``."""
     from slicetime.pipelines.executor import ExecutorError, make_executor
 
     try:
-        executor = make_executor(jobs, scheduler)
+        executor = make_executor(jobs, scheduler, light=light)
     except ExecutorError as exc:
         raise UserError(str(exc)) from None
     try:
@@ -356,7 +359,8 @@ def correct(
             raise UserError(f"--max-memory: {exc}") from None
     options = CorrectOptions(out=out, method=method, reference=choice, desc=desc,
                              keep_dtype=keep_dtype, force=force, max_memory=cap, threads=0)
-    with _executor(jobs, scheduler) as executor, progress_reporter("correcting") as progress:
+    with _executor(jobs, scheduler, light=False) as executor, \
+            progress_reporter("correcting") as progress:
         try:
             result = correct_paths(
                 list(paths), options, progress=progress, policy_file=policy_file,

@@ -242,13 +242,25 @@ class DaskExecutor(Executor):
         self.client.close()
 
 
-def make_executor(jobs: int | None, scheduler: str | None) -> Executor:
+#: with this many CPUs or fewer, light per-run work (audit, fix) runs in one process by
+#: default: measured on 2 CPUs, sending results back costs more than the second worker
+#: saves (README, Performance)
+LIGHT_WORK_SERIAL_CPUS = 2
+
+
+def make_executor(jobs: int | None, scheduler: str | None, *, light: bool = False) -> Executor:
     """``--scheduler`` wins (connecting for at most ``SLICETIME_CONNECT_TIMEOUT``
-    seconds, default 10); else ``--jobs`` (None: the CPUs available) local processes."""
+    seconds, default 10); else ``--jobs`` local processes. Without ``--jobs``: the
+    CPUs available, except for ``light`` work on machines with at most
+    ``LIGHT_WORK_SERIAL_CPUS`` CPUs, which runs in this process."""
     if scheduler:
         timeout = float(os.environ.get("SLICETIME_CONNECT_TIMEOUT", "10"))
         return DaskExecutor(scheduler, timeout=timeout)
-    count = jobs if jobs is not None else available_cpus()
+    if jobs is None:
+        cpus = available_cpus()
+        count = 1 if light and cpus <= LIGHT_WORK_SERIAL_CPUS else cpus
+    else:
+        count = jobs
     return ProcessExecutor(count) if count > 1 else Executor()
 
 
