@@ -416,7 +416,8 @@ def correct(
 @click.option("--policy", "policy_file", type=click.Path(path_type=Path, dir_okay=False),
               help="Lab policy (TOML); its expected protocols can rebuild missing timing.")
 @click.option("--jobs", type=click.IntRange(min=1), default=None,
-              help="Local worker processes for the audit (default: the CPUs available).")
+              help="Local worker processes for the audit (default: the CPUs available; one "
+              "on machines with 2 or fewer).")
 @click.option("--scheduler", metavar="ADDRESS", help="Audit on a Dask cluster.")
 @friendly
 def fix(
