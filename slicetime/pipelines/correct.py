@@ -597,26 +597,24 @@ def correct_run(
     return outcome
 
 
-def _refusal(run: RunResult, force: bool) -> tuple[str | None, list[Finding], list[str]]:
+def _refusal(run: RunResult, errors: list[Finding], force: bool) -> tuple[str | None, list[str]]:
+    """Why the run is not corrected (None: it is), and the warnings when forced."""
     record = run.record
-    errors = [f for f in run.findings if f.severity is Severity.ERROR]
     if record.header is None:
         first = errors[0].message if errors else "the image header cannot be read"
         raise CorrectionError(first)
     if record.schedule is None:
         why = "; ".join(p.message for p in record.timing_problems) or "no slice timing found"
-        return f"{record.path}: no usable slice timing ({why})", errors, []
+        return f"{record.path}: no usable slice timing ({why})", []
     if errors and not force:
         codes = ", ".join(sorted({f.code for f in errors}))
         return (
             f"{record.path}: the audit found errors that make the timing untrustworthy "
             f"({codes}); fix them (see slicetime show), or pass --force if you judge them "
             "harmless",
-            errors,
             [],
         )
-    warnings = [f"corrected despite audit error {f.code}: {f.message}" for f in errors]
-    return None, errors, warnings
+    return None, [f"corrected despite audit error {f.code}: {f.message}" for f in errors]
 
 
 def _correct(
@@ -624,8 +622,7 @@ def _correct(
 ) -> None:
     record = run.record
     outcome.blocking = [f for f in run.findings if f.severity is Severity.ERROR]
-    reason, blocking, warnings = _refusal(run, options.force)
-    outcome.blocking = blocking
+    reason, warnings = _refusal(run, outcome.blocking, options.force)
     outcome.warnings.extend(warnings)
     if reason is not None:
         outcome.reason = reason

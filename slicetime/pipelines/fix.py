@@ -43,6 +43,7 @@ from slicetime.readers.dataset import find_root
 from slicetime.readers.entities import parse_name
 from slicetime.readers.errors import ReadError
 from slicetime.readers.policy import POLICY_FILENAME, Policy, find_policy, load_policy
+from slicetime.readers.volumes import file_sha256
 from slicetime.rules import RULES
 from slicetime.rules.dataset import PROTOCOL_ENTITIES
 from slicetime.rules.policy import select_protocol
@@ -240,20 +241,22 @@ def plan_fix(
     shared sidecars that supply them into each run's own sidecar.
     """
     roots = sorted({find_root(Path(p)) for p in paths}, key=str)
-    wanted = [Path(os.path.realpath(p)) for p in paths]
+    targets = [Path(os.path.realpath(p)) for p in paths]
     audit = audit_paths(list(roots), policy_file=policy_file, executor=executor)
     policies = _policies(roots, policy_file)
     plan = FixPlan(audit=audit)
     runs: list[tuple[RunRecord, list[Finding]]] = [(r.record, r.findings) for r in audit.runs]
+    # the runs under the given paths, resolved once (realpath per run is file-system work)
+    wanted = {(r.root, r.path) for r, _ in runs if _under(r, targets)}
     repairs: list[Repair] = []
     for record, findings in runs:
-        if not _under(record, wanted) or not {f.code for f in findings} & FIXABLE:
+        if (record.root, record.path) not in wanted or not {f.code for f in findings} & FIXABLE:
             continue
         policy = policies.get(record.root)
         protocol = select_protocol(policy, record).protocol if policy is not None else None
         repairs += plan_run(record, findings, protocol)
     consensus = plan_consensus(runs, repairs)
-    repairs += [r for r in consensus if _under_path(r, runs, wanted)]
+    repairs += [r for r in consensus if (r.root, r.run) in wanted]
     _explain_unrepaired(runs, wanted, repairs, plan)
     moves = _layout_moves(runs, wanted, consolidate, spread, plan)
     _place(repairs, runs, per_run, plan, moves)
@@ -262,20 +265,15 @@ def plan_fix(
     return plan
 
 
-def _under_path(repair: Repair, runs: Sequence[tuple[RunRecord, Any]], wanted: Sequence[Path]):
-    return any(r.path == repair.run and r.root == repair.root and _under(r, wanted)
-               for r, _ in runs)
-
-
 def _explain_unrepaired(
     runs: Sequence[tuple[RunRecord, list[Finding]]],
-    wanted: Sequence[Path],
+    wanted: set[tuple[str, str]],
     repairs: Sequence[Repair],
     plan: FixPlan,
 ) -> None:
     done = {(r.root, r.run, r.code) for r in repairs}
     for record, findings in runs:
-        if not _under(record, wanted):
+        if (record.root, record.path) not in wanted:
             continue
         for finding in findings:
             if finding.code in FIXABLE and (record.root, record.path, finding.code) not in done:
@@ -395,7 +393,7 @@ def _move(record: RunRecord, key: str, value: Any, code: str, source: str) -> Re
 
 def _layout_moves(
     runs: Sequence[tuple[RunRecord, list[Finding]]],
-    wanted: Sequence[Path],
+    wanted: set[tuple[str, str]],
     consolidate: Sequence[str],
     spread: Sequence[str],
     plan: FixPlan,
@@ -410,7 +408,7 @@ def _layout_moves(
     for key in consolidate:
         groups: dict[tuple[str, str], list[RunRecord]] = defaultdict(list)
         for record in records:
-            if _under(record, wanted) and record.suffix:
+            if (record.root, record.path) in wanted and record.suffix:
                 groups[(record.root, _top_name(record))].append(record)
         for (root, top), members in sorted(groups.items()):
             affected = [r for r in records if r.root == root and _applies(top, r)]
@@ -440,9 +438,9 @@ def _layout_moves(
         for record in records:
             source = record.metadata_sources.get(key)
             own = own_sidecar(record.path)
-            if not _under(record, wanted) or source is None or source == own:
+            if (record.root, record.path) not in wanted or source is None or source == own:
                 continue
-            if not all(_under(u, wanted) for u in users[(record.root, source, key)]):
+            if not all((u.root, u.path) in wanted for u in users[(record.root, source, key)]):
                 note = (f"{source}: {key} not spread: it also serves runs outside the paths "
                         "given (give the whole dataset)")
                 if note not in plan.notes:
@@ -535,8 +533,7 @@ def _refusal(change: FileChange, replace_links: bool, expected_sha: str | None) 
 
 def _current_sha(path: Path) -> str | None:
     try:
-        with open(path, "rb") as fh:
-            return _sha(fh.read())
+        return file_sha256(path)
     except FileNotFoundError:
         return None
 
