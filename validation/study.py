@@ -14,9 +14,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from slicetime.engines.interpolate import ENGINES, resample
-from slicetime.engines.plan import ReferenceChoice, make_plan
-from slicetime.model import SliceSchedule
+from slicetime import correct_array
 from slicetime.pipelines.simulate import RunSimulation, simulate_run, truth_at
 from slicetime.schemes.generate import Protocol, array_groups, array_times, validate_protocol
 from slicetime.schemes.infer import infer_scheme
@@ -37,21 +35,6 @@ def protocol_times(n_slices: int, tr: float, scheme: str) -> list[float]:
     else:
         raise ValueError(scheme)
     return list(array_times(p))
-
-
-def correct_array(data: np.ndarray, times: Sequence[float], tr: float, method: str,
-                  reference: float) -> np.ndarray:
-    """Correct a (i, j, k, t) float32 array along k with one engine (no files)."""
-    schedule = SliceSchedule(times=tuple(times), repetition_time=tr)
-    plan = make_plan(schedule, data.shape[3], ReferenceChoice("seconds", value=reference))
-    out = data.copy()
-    targets = plan.target_times()
-    for group in plan.groups:
-        for z in group.slices:
-            series = np.ascontiguousarray(data[:, :, z, :].reshape(-1, data.shape[3]))
-            done = resample(ENGINES[method], series, plan.sample_times(group), targets)
-            out[:, :, z, :] = done.reshape(data.shape[0], data.shape[1], -1)
-    return out
 
 
 @dataclass(frozen=True)
@@ -82,7 +65,7 @@ def accuracy(trs: Iterable[float], slice_counts: Iterable[int], schemes: Iterabl
         outer = np.r_[0:edge, volumes - edge:volumes]
         base = np.abs(data.astype(np.float64) - truth)
         for method in METHODS:
-            err = np.abs(correct_array(data, times, tr, method, reference) - truth)
+            err = np.abs(correct_array(data, times, tr, method=method, reference=reference) - truth)
             rows.append(AccuracyRow(
                 tr, n, scheme, method,
                 float(err[..., inner].mean() / base[..., inner].mean()),
@@ -120,7 +103,7 @@ def glm_effect(trs: Iterable[float], *, n_slices: int = 9, volumes: int = 180, s
         data, onsets, _ = simulate_run(sim)
         events = pd.DataFrame({"onset": onsets, "duration": np.full(len(onsets), 1.0),
                                "trial_type": "task"})
-        corrected = correct_array(data, times, tr, "fourier", reference)
+        corrected = correct_array(data, times, tr, method="fourier", reference=reference)
         order = np.argsort(times, kind="stable")
         early, late = order[:2], order[-2:]
         mask = nib.Nifti1Image(np.ones(data.shape[:3], dtype=np.uint8), np.eye(4))
@@ -230,5 +213,5 @@ def inference(protocols: Sequence[Protocol],
     return rows
 
 
-__all__ = ["METHODS", "AccuracyRow", "GlmRow", "InferenceRow", "accuracy", "correct_array",
+__all__ = ["METHODS", "AccuracyRow", "GlmRow", "InferenceRow", "accuracy",
            "generated_protocols", "glm_effect", "inference", "protocol_times"]

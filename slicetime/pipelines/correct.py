@@ -39,15 +39,21 @@ from typing import Any
 import numpy as np
 
 from slicetime import __version__
+from slicetime.engines.align import align_slice, run_tasks, slice_tasks
 from slicetime.engines.interpolate import (
     Engine,
     IrregularGridError,
     ResampleStats,
     get_engine,
     prepare,
-    resample,
 )
-from slicetime.engines.plan import PlanError, ReferenceChoice, ResamplingPlan, make_plan
+from slicetime.engines.plan import (
+    PlanError,
+    ReferenceChoice,
+    ResamplingPlan,
+    ShiftGroup,
+    make_plan,
+)
 from slicetime.model import Finding, RunRecord, Severity
 from slicetime.pipelines.audit import AuditResult, RunResult, audit_paths
 from slicetime.pipelines.executor import (
@@ -463,41 +469,18 @@ def _engine_pass(
     stats: ResampleStats,
 ) -> None:
     """Resample every slice that is not already at the reference, one slice per task
-    (slices run in ``budget.threads`` threads: the transforms release the GIL)."""
-    targets = plan.target_times()
-    tasks = [(g, z) for g in plan.groups if abs(g.shift) >= 1e-9 for z in g.slices]
+    (slices run in ``budget.threads`` threads: the transforms release the GIL), with
+    the same per-slice code as ``slicetime.correct_array`` (``engines.align``)."""
 
-    def work(task: tuple[Any, int]) -> ResampleStats:
+    def work(task: tuple[ShiftGroup, int]) -> ResampleStats:
         group, z = task
         local = ResampleStats()
-        samples = plan.sample_times(group)
         view = buffer.get_slice(z)  # (volume, plane)
-        step = budget.rows_per_block
-        # one block of voxels at a time, transposed so time is contiguous: the block's
-        # copies and the engine's temporaries stay in the processor's cache
-        for start in range(0, view.shape[1], step):
-            block = view[:, start : start + step]
-            with np.errstate(invalid="ignore"):
-                if bool(np.all(block.min(axis=0) == block.max(axis=0))):
-                    local.constant += block.shape[1]  # background: nothing to move
-                    continue
-            series = np.ascontiguousarray(block.T)
-            done = resample(
-                engine, series, samples, targets, workers=1, stats=local, overwrite=True
-            )
-            block[...] = done.T
+        align_slice(view, plan, group, engine, stats=local, rows_per_block=budget.rows_per_block)
         buffer.put_slice(z, view)
         return local
 
-    if budget.threads > 1 and len(tasks) > 1:
-        from concurrent.futures import ThreadPoolExecutor
-
-        with ThreadPoolExecutor(max_workers=budget.threads) as pool:
-            for local in pool.map(work, tasks):
-                stats.add(local)
-    else:
-        for task in tasks:
-            stats.add(work(task))
+    stats.add(run_tasks(slice_tasks(plan), work, budget.threads))
 
 
 def _hash_inputs(record: RunRecord, image_sha: str | None) -> dict[str, Any]:

@@ -1,0 +1,373 @@
+"""The public Python API (re-exported by ``slicetime``; stable names).
+
+Everything here composes the lower layers the same way the command line does;
+no function has an implementation of its own that the commands do not share.
+
+* :func:`correct_array` / :func:`correct_image` — slice-timing correction of
+  an array or a nibabel image (the engines the ``correct`` command runs);
+* :func:`reference_time` — the reference a correction aligns to (write it as
+  ``StartTime``);
+* :func:`slice_times` — ``SliceTiming`` for a protocol (``slicetime timing``);
+* :func:`infer_scheme` — the acquisition scheme a list of times describes.
+
+Times follow BIDS: seconds from the start of each volume, listed along the
+``SliceEncodingDirection`` (so with ``k-`` the list runs from the last slice
+index down to 0), exactly as in a sidecar's ``SliceTiming``.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+from typing import TYPE_CHECKING, Any, Literal
+
+if TYPE_CHECKING:  # the heavy imports happen only when a function is called
+    import numpy as np
+
+    from slicetime.engines.plan import ReferenceChoice
+    from slicetime.model import Scheme, SliceSchedule
+
+_DIRECTIONS = ("i", "j", "k", "i-", "j-", "k-")
+
+
+def _schedule(
+    slice_timing: Sequence[float],
+    repetition_time: float | None,
+    slice_encoding_direction: str,
+    volume_timing: Sequence[float] | None,
+    delay_time: float | None,
+) -> SliceSchedule:
+    from slicetime.model import SliceSchedule
+
+    if slice_encoding_direction not in _DIRECTIONS:
+        raise ValueError(
+            f"slice_encoding_direction must be one of {', '.join(_DIRECTIONS)}, "
+            f"not {slice_encoding_direction!r}"
+        )
+    times = [float(t) for t in slice_timing]
+    if not times or not all(math.isfinite(t) for t in times):
+        raise ValueError("slice_timing must be a non-empty list of finite numbers (seconds)")
+    if repetition_time is None and volume_timing is None:
+        raise ValueError("give repetition_time (seconds) or volume_timing")
+    if repetition_time is not None and not (math.isfinite(repetition_time)
+                                            and repetition_time > 0):
+        raise ValueError(f"repetition_time must be a positive number of seconds, "
+                         f"not {repetition_time!r}")
+    direction = "-" if slice_encoding_direction.endswith("-") else "+"
+    return SliceSchedule(
+        times=tuple(times if direction == "+" else times[::-1]),
+        axis=slice_encoding_direction[0],  # type: ignore[arg-type]  # checked above
+        direction=direction,
+        repetition_time=None if repetition_time is None else float(repetition_time),
+        volume_times=None if volume_timing is None else tuple(float(t) for t in volume_timing),
+        delay_time=None if delay_time is None else float(delay_time),
+    )
+
+
+def _choice(reference: float | str | ReferenceChoice) -> ReferenceChoice:
+    from slicetime.engines.plan import ReferenceChoice
+
+    if isinstance(reference, ReferenceChoice):
+        return reference
+    if isinstance(reference, (int, float)) and not isinstance(reference, bool):
+        return ReferenceChoice.parse(repr(float(reference)))
+    if isinstance(reference, str):
+        return ReferenceChoice.parse(reference)
+    raise TypeError(f"reference must be seconds, a word or a ReferenceChoice, not {reference!r}")
+
+
+def reference_time(
+    slice_timing: Sequence[float],
+    repetition_time: float | None = None,
+    reference: float | str | ReferenceChoice = "middle",
+    *,
+    slice_encoding_direction: str = "k",
+    volume_timing: Sequence[float] | None = None,
+    delay_time: float | None = None,
+) -> float:
+    """The time, in seconds from the start of each volume, that a correction aligns to.
+
+    Parameters
+    ----------
+    slice_timing, repetition_time, slice_encoding_direction, volume_timing, delay_time
+        The run's BIDS fields (see :func:`correct_array`).
+    reference
+        Seconds (``1.0``), ``"first"``, ``"middle"`` (halfway between the first
+        and the last excitation), ``"last"``, or ``"slice:N"`` (slice N,
+        0-based in data-array order).
+
+    Returns
+    -------
+    float
+        The reference time; a corrected run's ``StartTime``.
+
+    Raises
+    ------
+    ValueError
+        When the reference lies outside the acquisition window.
+    """
+    from slicetime.engines.plan import reference_time as plan_reference
+
+    schedule = _schedule(slice_timing, repetition_time, slice_encoding_direction,
+                         volume_timing, delay_time)
+    return plan_reference(_choice(reference), schedule)
+
+
+def correct_array(
+    data: np.ndarray,
+    slice_timing: Sequence[float],
+    repetition_time: float | None = None,
+    *,
+    slice_encoding_direction: str = "k",
+    method: str = "fourier",
+    reference: float | str | ReferenceChoice = "middle",
+    volume_timing: Sequence[float] | None = None,
+    delay_time: float | None = None,
+    threads: int = 1,
+) -> np.ndarray:
+    """Align every slice of a 4-D array to one reference time.
+
+    Parameters
+    ----------
+    data : array, shape (x, y, z, time)
+        The run, time last (nibabel's order). Any real dtype; it is not changed.
+    slice_timing : sequence of float
+        ``SliceTiming``: seconds from the start of each volume, one per slice,
+        listed along ``slice_encoding_direction``.
+    repetition_time : float, optional
+        ``RepetitionTime`` in seconds (or give ``volume_timing``).
+    slice_encoding_direction : {"i", "j", "k", "i-", "j-", "k-"}
+        ``SliceEncodingDirection``: the slice axis, and with ``-`` a list that
+        runs from the last slice index down to 0.
+    method : {"fourier", "sinc", "cubic", "linear"}
+        The interpolation engine (see ``slicetime correct --help``).
+    reference : float or str
+        See :func:`reference_time`.
+    volume_timing : sequence of float, optional
+        ``VolumeTiming`` (uneven volume onsets; only ``cubic`` and ``linear``).
+    delay_time : float, optional
+        ``DelayTime`` of a sparse run: the slices lie within ``TR - DelayTime``.
+    threads : int
+        Slices resampled at once.
+
+    Returns
+    -------
+    ndarray, float32, same shape as ``data``
+        The aligned run. Constant series are copied; non-finite samples keep
+        their place and the rest of their series is corrected around them.
+
+    Raises
+    ------
+    ValueError
+        Inconsistent inputs: wrong number of slice times, times outside the
+        acquisition window, a reference outside it, fewer than 2 volumes, an
+        engine that needs even volume spacing given ``volume_timing``.
+
+    Examples
+    --------
+    >>> import numpy as np, slicetime
+    >>> data = np.random.default_rng(0).normal(size=(4, 4, 3, 20)).astype("float32")
+    >>> out = slicetime.correct_array(data, [0.0, 0.4, 0.8], 1.2)
+    >>> out.shape, out.dtype.name
+    ((4, 4, 3, 20), 'float32')
+    """
+    import numpy as np
+
+    from slicetime.engines.align import align_array
+    from slicetime.engines.interpolate import get_engine
+    from slicetime.engines.plan import make_plan
+
+    array = np.asarray(data)
+    if array.ndim != 4:
+        raise ValueError(f"data must be 4-D (x, y, z, time), got shape {array.shape}")
+    schedule = _schedule(slice_timing, repetition_time, slice_encoding_direction,
+                         volume_timing, delay_time)
+    if len(schedule.times) != array.shape[schedule.axis_index]:
+        raise ValueError(
+            f"slice_timing has {len(schedule.times)} entries but the data have "
+            f"{array.shape[schedule.axis_index]} slices along {schedule.axis}"
+        )
+    plan = make_plan(schedule, array.shape[3], _choice(reference))
+    return align_array(array, plan, get_engine(method), threads=threads)
+
+
+def correct_image(
+    img: Any,
+    slice_timing: Sequence[float] | None = None,
+    repetition_time: float | None = None,
+    *,
+    slice_encoding_direction: str | None = None,
+    method: str = "fourier",
+    reference: float | str | ReferenceChoice = "middle",
+    volume_timing: Sequence[float] | None = None,
+    delay_time: float | None = None,
+    threads: int = 1,
+) -> Any:
+    """Align a nibabel NIfTI image; returns a new float32 image.
+
+    Parameters
+    ----------
+    img : nibabel.Nifti1Image or nibabel.Nifti2Image
+        A 4-D image. Its data are read with scaling applied.
+    slice_timing : sequence of float, optional
+        ``SliceTiming`` (see :func:`correct_array`). When omitted, the times
+        encoded by the header's ``slice_code``/``slice_duration``/``dim_info``
+        are used (and the axis is the header's slice dimension).
+    repetition_time : float, optional
+        Seconds. When omitted, the header's ``pixdim[4]`` (after ``xyzt_units``).
+    slice_encoding_direction, method, reference, volume_timing, delay_time, threads
+        As in :func:`correct_array`. The direction defaults to the header's
+        slice dimension when the times come from the header, else ``k``.
+
+    Returns
+    -------
+    image of the same class
+        Same affine and header, data float32 without scaling, ``slice_code``
+        and ``slice_duration`` cleared (the slices are no longer staggered).
+    """
+    import numpy as np
+
+    header = img.header
+    axis_letter: str | None = None
+    if slice_timing is None:
+        slice_timing, axis_letter = _header_times(header)
+    if slice_encoding_direction is None:
+        slice_encoding_direction = axis_letter or "k"
+    if repetition_time is None and volume_timing is None:
+        repetition_time = _header_tr(header)
+    data = np.asarray(img.dataobj, dtype=np.float32)
+    aligned = correct_array(
+        data, slice_timing, repetition_time,
+        slice_encoding_direction=slice_encoding_direction, method=method,
+        reference=reference, volume_timing=volume_timing, delay_time=delay_time,
+        threads=threads,
+    )
+    new_header = header.copy()
+    new_header.set_data_dtype(np.float32)
+    new_header["slice_code"] = 0
+    new_header["slice_duration"] = 0
+    out = img.__class__(aligned, img.affine, new_header)
+    out.header.set_slope_inter(1.0, 0.0)
+    return out
+
+
+def _header_times(header: Any) -> tuple[list[float], str]:
+    """SliceTiming (along +axis) and the axis letter from a nibabel header."""
+    try:
+        _, _, slice_dim = header.get_dim_info()
+        times = header.get_slice_times()
+    except Exception as exc:  # nibabel raises HeaderDataError for unset fields
+        raise ValueError(
+            "give slice_timing: the header does not encode slice times "
+            f"(slice_code/slice_duration/dim_info): {exc}"
+        ) from None
+    if slice_dim is None or any(t is None for t in times):
+        raise ValueError("give slice_timing: the header's slice_code does not cover every slice")
+    return [float(t) for t in times], "ijk"[slice_dim]
+
+
+def _header_tr(header: Any) -> float:
+    zooms = header.get_zooms()
+    if len(zooms) < 4 or not zooms[3] > 0:
+        raise ValueError("give repetition_time: the header's pixdim[4] is unset")
+    unit = header.get_xyzt_units()[1]
+    factor = {"msec": 1e-3, "usec": 1e-6}.get(unit, 1.0)
+    return float(zooms[3]) * factor
+
+
+def slice_times(
+    n_slices: int,
+    repetition_time: float,
+    *,
+    order: Literal["sequential", "interleaved"] = "sequential",
+    descending: bool = False,
+    step: int = 2,
+    first: int | Literal["auto"] | None = None,
+    multiband: int = 1,
+    slice_encoding_direction: str = "k",
+    delay_time: float | None = None,
+    decimals: int | None = 6,
+) -> list[float]:
+    """``SliceTiming`` for a protocol, as ``slicetime timing`` prints it.
+
+    Parameters
+    ----------
+    n_slices : int
+        Slices along the slice axis.
+    repetition_time : float
+        Seconds.
+    order : {"sequential", "interleaved"}
+        Order of excitation along the slice encoding direction.
+    descending : bool
+        Start from the last slice along the encoding direction.
+    step : int
+        Distance between successive slices of an interleaved order.
+    first : int or "auto", optional
+        First base slice of an interleaved order (``0 .. step-1`` ascending);
+        ``"auto"`` starts at 1 when the number of excitation groups is even.
+    multiband : int
+        Slices excited together, spaced ``n_slices / multiband`` apart.
+    slice_encoding_direction : str
+        The run's ``SliceEncodingDirection``; with ``-`` the list is reversed.
+    delay_time : float, optional
+        ``DelayTime`` (sparse runs): the slices are spread over
+        ``repetition_time - delay_time``.
+    decimals : int, optional
+        Round to this many decimals (default: microseconds).
+
+    Examples
+    --------
+    >>> import slicetime
+    >>> slicetime.slice_times(4, 2.0, order="interleaved")
+    [0.0, 1.0, 0.5, 1.5]
+    """
+    from slicetime.schemes.generate import Protocol, slice_timing
+
+    if slice_encoding_direction not in _DIRECTIONS:
+        raise ValueError(f"slice_encoding_direction must be one of {', '.join(_DIRECTIONS)}")
+    window = None
+    if delay_time is not None:
+        window = repetition_time - delay_time
+    protocol = Protocol(
+        n_slices=n_slices, order=order, ascending=not descending, step=step, start=first,
+        multiband=multiband, repetition_time=repetition_time, acquisition_time=window,
+        direction="-" if slice_encoding_direction.endswith("-") else "+", decimals=decimals,
+    )
+    return slice_timing(protocol)
+
+
+def infer_scheme(slice_timing: Sequence[float], *,
+                 slice_encoding_direction: str = "k") -> Scheme:
+    """The acquisition scheme that ``SliceTiming`` describes.
+
+    Parameters
+    ----------
+    slice_timing : sequence of float
+        Seconds, listed along ``slice_encoding_direction`` (as in a sidecar).
+    slice_encoding_direction : str
+        With ``-`` the list is reversed into data-array order first, so the
+        scheme's slice indices are array indices.
+
+    Returns
+    -------
+    Scheme
+        ``label`` (e.g. ``"interleaved ascending from 1"``), ``groups`` (the
+        excitation groups in acquisition order, array indices),
+        ``multiband_factor``, ``step``, ``start`` and, for an irregular list,
+        ``evidence`` saying why.
+
+    Examples
+    --------
+    >>> import slicetime
+    >>> slicetime.infer_scheme([0.0, 1.0, 0.5, 1.5]).label
+    'interleaved ascending from 0'
+    """
+    from slicetime.schemes.infer import infer_scheme as infer
+
+    times = [float(t) for t in slice_timing]
+    if slice_encoding_direction.endswith("-"):
+        times.reverse()
+    return infer(times)
+
+
+__all__ = ["correct_array", "correct_image", "infer_scheme", "reference_time", "slice_times"]

@@ -1,0 +1,146 @@
+"""Slice-timing correction of arrays: the one implementation every caller uses.
+
+``align_slice`` resamples the series of one slice in place; ``align_array``
+applies a :class:`~slicetime.engines.plan.ResamplingPlan` to a whole 4-D array.
+The batch pipeline (``pipelines/correct.py``) calls ``align_slice`` on its
+slice-major buffer; the public ``slicetime.correct_array`` and
+``slicetime.correct_image``, the demo and the validation study call
+``align_array``. There is no second implementation of the correction.
+
+Pure: arrays in, arrays out; no files.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Sequence
+
+import numpy as np
+
+from slicetime.engines.interpolate import Engine, ResampleStats, resample
+from slicetime.engines.plan import ResamplingPlan, ShiftGroup
+
+#: voxels transformed together inside one slice: small enough that a block's copies
+#: and the engine's temporaries stay in the processor's cache
+ROWS_PER_BLOCK = 256
+
+#: shifts smaller than this (seconds) leave a slice as it is
+NO_SHIFT = 1e-9
+
+
+def align_slice(
+    view: np.ndarray,
+    plan: ResamplingPlan,
+    group: ShiftGroup,
+    engine: Engine,
+    *,
+    stats: ResampleStats | None = None,
+    rows_per_block: int = ROWS_PER_BLOCK,
+) -> None:
+    """Resample one slice's series in place.
+
+    Parameters
+    ----------
+    view
+        float32 array of shape ``(n_volumes, n_voxels)``: the slice's voxels
+        (any in-plane order), one row per volume. Changed in place.
+    plan
+        The run's resampling plan (sample and target times).
+    group
+        The excitation group the slice belongs to (its shift).
+    engine
+        The interpolation engine.
+    stats
+        Counts of constant and non-finite series, added to in place.
+    rows_per_block
+        Voxels transformed together (bounds the temporaries).
+    """
+    if abs(group.shift) < NO_SHIFT:
+        return
+    stats = stats if stats is not None else ResampleStats()
+    samples = plan.sample_times(group)
+    targets = plan.target_times()
+    for start in range(0, view.shape[1], rows_per_block):
+        block = view[:, start : start + rows_per_block]
+        with np.errstate(invalid="ignore"):
+            if bool(np.all(block.min(axis=0) == block.max(axis=0))):
+                stats.constant += block.shape[1]  # background: nothing to move
+                continue
+        series = np.ascontiguousarray(block.T)
+        done = resample(engine, series, samples, targets, workers=1, stats=stats,
+                        overwrite=True)
+        block[...] = done.T
+
+
+def slice_tasks(plan: ResamplingPlan) -> list[tuple[ShiftGroup, int]]:
+    """The (group, slice index) pairs that need resampling, in acquisition order."""
+    return [(g, z) for g in plan.groups if abs(g.shift) >= NO_SHIFT for z in g.slices]
+
+
+def run_tasks(
+    tasks: Sequence[tuple[ShiftGroup, int]],
+    work: Callable[[tuple[ShiftGroup, int]], ResampleStats],
+    threads: int,
+) -> ResampleStats:
+    """Run ``work`` over ``tasks`` in ``threads`` threads (the transforms release
+    the GIL) and add up their statistics."""
+    total = ResampleStats()
+    if threads > 1 and len(tasks) > 1:
+        from concurrent.futures import ThreadPoolExecutor
+
+        with ThreadPoolExecutor(max_workers=threads) as pool:
+            for local in pool.map(work, tasks):
+                total.add(local)
+    else:
+        for task in tasks:
+            total.add(work(task))
+    return total
+
+
+def align_array(
+    data: np.ndarray,
+    plan: ResamplingPlan,
+    engine: Engine,
+    *,
+    threads: int = 1,
+    stats: ResampleStats | None = None,
+) -> np.ndarray:
+    """Align every slice of a 4-D array (three spatial axes, then time).
+
+    Returns a new float32 array; ``data`` is not changed. The slice axis is
+    ``plan.axis_index``; the time axis is the last one and must have
+    ``plan.n_volumes`` entries.
+    """
+    if data.ndim != 4:
+        raise ValueError(f"expected a 4-D array (x, y, z, time), got {data.ndim}-D")
+    if data.shape[3] != plan.n_volumes:
+        raise ValueError(
+            f"the array has {data.shape[3]} volumes but the plan has {plan.n_volumes}"
+        )
+    axis = plan.axis_index
+    n_slices = data.shape[axis]
+    expected = sum(len(g.slices) for g in plan.groups)
+    if n_slices != expected:
+        raise ValueError(
+            f"the array has {n_slices} slices along axis {axis} but the schedule has "
+            f"{expected} slice times"
+        )
+    # slice-major working copy: (slice, volume, in-plane voxel), time rows contiguous
+    # per slice, so each slice is one (volume, voxel) view for align_slice
+    moved = np.moveaxis(np.asarray(data), (axis, 3), (0, 1))
+    work = np.array(moved, dtype=np.float32, order="C").reshape(n_slices, plan.n_volumes, -1)
+
+    def one(task: tuple[ShiftGroup, int]) -> ResampleStats:
+        group, z = task
+        local = ResampleStats()
+        align_slice(work[z], plan, group, engine, stats=local)
+        return local
+
+    total = run_tasks(slice_tasks(plan), one, threads)
+    if stats is not None:
+        stats.add(total)
+    aligned = work.reshape(moved.shape)
+    return np.ascontiguousarray(np.moveaxis(aligned, (0, 1), (axis, 3)))
+
+
+__all__ = ["NO_SHIFT", "ROWS_PER_BLOCK", "align_array", "align_slice", "run_tasks",
+           "slice_tasks"]
