@@ -10,7 +10,10 @@ import dataclasses
 import enum
 from collections.abc import Mapping
 from dataclasses import dataclass
-from typing import Any, Literal
+from typing import TYPE_CHECKING, Any, Literal
+
+if TYPE_CHECKING:
+    from slicetime.model_source import SourceEvidence
 
 Axis = Literal["i", "j", "k"]
 Direction = Literal["+", "-"]
@@ -49,9 +52,11 @@ class Source:
       default  - a documented default of the BIDS standard or of slicetime
       policy   - the lab policy file
       cli      - given on the command line
+      dicom    - the source DICOM series under ``sourcedata/`` (``file`` is the file
+                 read, ``field`` the tag or the vendor private header entry)
     """
 
-    kind: Literal["sidecar", "header", "derived", "default", "policy", "cli"]
+    kind: Literal["sidecar", "header", "derived", "default", "policy", "cli", "dicom"]
     field: str
     file: str | None = None
 
@@ -286,3 +291,5 @@ class RunRecord:
     overridden: Mapping[str, tuple[tuple[str, Any], ...]] = dataclasses.field(
         default_factory=dict
     )
+    #: what the source DICOM series says, when the source cross-check ran (see model_source)
+    source: SourceEvidence | None = None

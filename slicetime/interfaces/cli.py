@@ -79,20 +79,62 @@ def cli() -> None:
 @click.option("--json", "as_json", is_flag=True, help="Print the run object of the JSON report.")
 @friendly
 def show(file: Path, as_json: bool) -> None:
-    """Show one run: its schedule, where each value came from, its scheme and findings."""
+    """Show one run: its schedule, where each value came from, its scheme and findings.
+
+    A DICOM file or series folder shows the series' own slice times and scheme."""
     from slicetime.interfaces.report_json import dumps, run_object
     from slicetime.interfaces.terminal import make_console, render_show
     from slicetime.pipelines.audit import audit_one
     from slicetime.readers.dataset import find_root
     from slicetime.readers.errors import check_regular_file
 
+    if _is_dicom_input(file):
+        _show_series(file, as_json)
+        return
     check_regular_file(file, str(file), what="image")
     root = find_root(file.resolve().parent if not file.is_dir() else file)
     run = audit_one(root, file.absolute() if not file.is_absolute() else file)
     if as_json:
-        click.echo(dumps(run_object(run)))
+        from slicetime.interfaces.source_view import run_source_object
+
+        obj = run_object(run)
+        if run.record.source is not None:
+            obj["source"] = run_source_object(run.record)
+        click.echo(dumps(obj))
     else:
+        from slicetime.interfaces.source_view import render_run_source
+
         render_show(run, make_console())
+        render_run_source(run.record, make_console())
+
+
+def _is_dicom_input(file: Path) -> bool:
+    """A series folder or a DICOM file (not a NIfTI run) given to ``show``."""
+    from slicetime.readers.dataset import is_image_name
+    from slicetime.readers.dicom import is_dicom_file, series_files
+
+    if is_image_name(file.name):
+        return False
+    if file.is_dir():
+        try:
+            files = series_files(str(file))
+        except OSError:
+            return False
+        return bool(files) and is_dicom_file(files[0])
+    return file.is_file() and is_dicom_file(str(file))
+
+
+def _show_series(file: Path, as_json: bool) -> None:
+    from slicetime.interfaces.report_json import dumps
+    from slicetime.interfaces.source_view import render_series, series_object
+    from slicetime.interfaces.terminal import make_console
+    from slicetime.readers.dicom import read_series
+
+    series = read_series(str(file), str(file))  # ReadError: one line, exit 2
+    if as_json:
+        click.echo(dumps(series_object(series)))
+    else:
+        render_series(series, make_console())
 
 
 # --------------------------------------------------------------------------- audit
@@ -122,6 +164,13 @@ def show(file: Path, as_json: bool) -> None:
 @click.option("--verify", "verify_data", is_flag=True,
               help="Also read each run's image data and check its slice order against it "
               "(a verify/* finding per run; slower: see 'slicetime verify').")
+@click.option("--source/--no-source", "source_check", default=None,
+              help="Check each run against its DICOM series under sourcedata/ (default: on "
+              "when the dataset has a sourcedata/ folder; --source also notes runs without "
+              "a series).")
+@click.option("--source-map", "source_map", type=click.Path(path_type=Path, dir_okay=False),
+              help="TSV of run path and series folder (relative to the dataset root, or "
+              "absolute): these matches win over SeriesNumber and geometry.")
 @friendly
 def audit(
     paths: tuple[Path, ...],
@@ -137,6 +186,8 @@ def audit(
     scheduler: str | None,
     policy_file: Path | None,
     verify_data: bool,
+    source_check: bool | None,
+    source_map: Path | None,
 ) -> None:
     """Audit every run under PATHS (dataset roots, subject folders or run files)."""
     from slicetime.interfaces.report_json import audit_object, dumps
@@ -156,6 +207,7 @@ def audit(
                 policy_file=policy_file,
                 executor=executor,
                 verify=verify_data,
+                source=_source_options(source_check, source_map),
             )
         except Interrupted as stop:
             finished = sum(1 for r in stop.results if r is not None)
@@ -192,6 +244,15 @@ def audit(
         else:
             render_audit(result, make_console(), show_notes=not hide_notes)
     sys.exit(result.exit_code(fail_on))
+
+
+def _source_options(check: bool | None, source_map: Path | None) -> Any:
+    """The source cross-check the options ask for (a bad map file: exit 2)."""
+    from slicetime.readers.source import SourceOptions, load_source_map
+
+    mapping = load_source_map(source_map) if source_map is not None else {}
+    mode = "off" if check is False else "on" if check or mapping else "auto"
+    return SourceOptions(mode=mode, mapping=mapping)
 
 
 @contextlib.contextmanager
@@ -419,6 +480,8 @@ def correct(
               help="Local worker processes for the audit (default: the CPUs available; one "
               "on machines with 2 or fewer).")
 @click.option("--scheduler", metavar="ADDRESS", help="Audit on a Dask cluster.")
+@click.option("--source-map", "source_map", type=click.Path(path_type=Path, dir_okay=False),
+              help="TSV of run path and series folder for rebuilding timing from sourcedata/.")
 @friendly
 def fix(
     paths: tuple[Path, ...],
@@ -433,6 +496,7 @@ def fix(
     policy_file: Path | None,
     jobs: int | None,
     scheduler: str | None,
+    source_map: Path | None,
 ) -> None:
     """Repair slice-timing metadata in sidecars: a dry run unless --apply.
 
@@ -469,7 +533,8 @@ def fix(
             with _executor(jobs, scheduler) as executor:
                 plan = fixing.plan_fix(list(paths), per_run=per_run, policy_file=policy_file,
                                        executor=executor, consolidate=consolidate,
-                                       spread=spread)
+                                       spread=spread,
+                                       source=_source_options(None, source_map))
             render_fix_plan(plan, console)
     except fixing.FixError as exc:
         raise UserError(str(exc)) from None

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import dataclasses
 import functools
 import os
 from collections.abc import Iterable, Mapping, Sequence
@@ -9,12 +10,14 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from slicetime.model import Finding, RunRecord, Severity
+from slicetime.model_source import SourceEvidence
 from slicetime.pipelines.executor import Executor, Progress, map_chunks
 from slicetime.readers.dataset import find_root, iter_runs
 from slicetime.readers.errors import ReadError
 from slicetime.readers.inheritance import SidecarIndex
 from slicetime.readers.policy import POLICY_FILENAME, Policy, find_policy, load_policy
 from slicetime.readers.record import build_record, relative_display
+from slicetime.readers.source import SourceIndex, SourceOptions, find_source
 from slicetime.rules import RULES, check_dataset, check_run
 from slicetime.rules.policy import IgnoredFinding, apply_overrides_and_ignores, apply_policy
 
@@ -58,12 +61,14 @@ class AuditResult:
 
 def audit_one(
     root: Path, path: Path, index: SidecarIndex | None = None, policy: Policy | None = None,
-    *, verify: bool = False,
+    *, verify: bool = False, source: SourceOptions | None = None,
+    sources: SourceIndex | None = None,
 ) -> RunResult:
     """Audit one run (the unit of work for every executor). With ``verify`` the image
     data are read too and the run gets one ``verify/*`` finding (before the policy, so
     the policy can ignore or re-rate it)."""
     record = build_record(root, path, index)
+    record = _with_source(record, root, source, sources)
     findings = check_run(record)
     if verify:
         from slicetime.pipelines.verify import verify_finding
@@ -75,9 +80,31 @@ def audit_one(
     return RunResult(record, list(outcome.kept), list(outcome.ignored))
 
 
+# ---- the source cross-check (sourcedata/ DICOM series): one place, see readers/source.py
+def _with_source(record: RunRecord, root: Path, options: SourceOptions | None,
+                 sources: SourceIndex | None) -> RunRecord:
+    """The record with its source evidence (``record.source``) when the check applies."""
+    options = options if options is not None else SourceOptions()
+    if options.mode == "off":
+        return record
+    sources = sources if sources is not None else SourceIndex(root)
+    if options.mode == "auto" and not options.mapping and not sources.has_sourcedata():
+        return record
+    try:
+        evidence = find_source(record, sources, options)
+    except Exception as exc:  # a series no reader anticipated: a finding, never a crash
+        if os.environ.get("SLICETIME_DEBUG"):
+            raise
+        error = Finding("source/unreadable", Severity.WARNING, f"{record.path}: its source "
+                        f"series could not be read ({type(exc).__name__}: {exc})", record.path)
+        evidence = SourceEvidence("unreadable", "", error=error)
+    return dataclasses.replace(record, source=evidence) if evidence is not None else record
+# ---- end of the source cross-check
+
+
 def audit_chunk(
     targets: Sequence[tuple[Path, Path]], policies: Mapping[Path, Policy | None] | None = None,
-    verify: bool = False,
+    verify: bool = False, source: SourceOptions | None = None,
 ) -> list[RunResult]:
     """Audit neighbouring runs with one sidecar cache per dataset root.
 
@@ -85,14 +112,17 @@ def audit_chunk(
     that run (set ``SLICETIME_DEBUG`` to get the traceback instead).
     """
     indexes: dict[Path, SidecarIndex] = {}
+    source_indexes: dict[Path, SourceIndex] = {}
     results = []
     for root, path in targets:
         if root not in indexes:
             indexes[root] = SidecarIndex(root)
+            source_indexes[root] = SourceIndex(root)
         index = indexes[root]
         try:
             results.append(audit_one(root, path, index, (policies or {}).get(root),
-                                     verify=verify))
+                                     verify=verify, source=source,
+                                     sources=source_indexes[root]))
         except Exception as exc:
             if os.environ.get("SLICETIME_DEBUG"):
                 raise
@@ -155,11 +185,14 @@ def audit_paths(
     policy_file: Path | None = None,
     executor: Executor | None = None,
     verify: bool = False,
+    source: SourceOptions | None = None,
 ) -> AuditResult:
     """Audit every run under ``paths``; raises ReadError only for a missing given path.
 
     ``verify`` also reads every run's image data in its worker and adds its
-    ``verify/*`` finding (see :mod:`slicetime.pipelines.verify`)."""
+    ``verify/*`` finding (see :mod:`slicetime.pipelines.verify`). ``source`` says
+    whether runs are checked against their DICOM series under ``sourcedata/``
+    (default: when that folder exists; see :mod:`slicetime.readers.source`)."""
     walk_problems: list[Finding] = []
     targets: list[tuple[Path, Path]] = list(
         iter_runs(
@@ -174,7 +207,7 @@ def audit_paths(
     result = AuditResult(roots=roots)
     policies = _policies(sorted({root for root, _ in targets}), policy_file, walk_problems)
     result.policies = {str(r): p.file for r, p in policies.items() if p is not None}
-    job = functools.partial(audit_chunk, policies=policies, verify=verify)
+    job = functools.partial(audit_chunk, policies=policies, verify=verify, source=source)
     result.runs = map_chunks(
         job,
         targets,

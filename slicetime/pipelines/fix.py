@@ -43,6 +43,7 @@ from slicetime.readers.dataset import find_root
 from slicetime.readers.entities import parse_name
 from slicetime.readers.errors import ReadError
 from slicetime.readers.policy import POLICY_FILENAME, Policy, find_policy, load_policy
+from slicetime.readers.source import SourceOptions
 from slicetime.readers.volumes import file_sha256
 from slicetime.rules import RULES
 from slicetime.rules.dataset import PROTOCOL_ENTITIES
@@ -233,6 +234,7 @@ def plan_fix(
     executor: Executor | None = None,
     consolidate: Sequence[str] = (),
     spread: Sequence[str] = (),
+    source: SourceOptions | None = None,
 ) -> FixPlan:
     """Audit the datasets holding ``paths`` and plan the repairs of the runs under them.
 
@@ -242,7 +244,7 @@ def plan_fix(
     """
     roots = sorted({find_root(Path(p)) for p in paths}, key=str)
     targets = [Path(os.path.realpath(p)) for p in paths]
-    audit = audit_paths(list(roots), policy_file=policy_file, executor=executor)
+    audit = audit_paths(list(roots), policy_file=policy_file, executor=executor, source=source)
     policies = _policies(roots, policy_file)
     plan = FixPlan(audit=audit)
     runs: list[tuple[RunRecord, list[Finding]]] = [(r.record, r.findings) for r in audit.runs]
@@ -272,11 +274,16 @@ def _explain_unrepaired(
     plan: FixPlan,
 ) -> None:
     done = {(r.root, r.run, r.code) for r in repairs}
+    from slicetime.rules.repairs import SOURCE_TIMING_CODES  # source: see rules/repairs.py
+
+    # SliceTiming rebuilt from the source series settles the run's other timing findings
+    sourced = {(r.root, r.run) for r in repairs if r.code in SOURCE_TIMING_CODES}
     for record, findings in runs:
         if (record.root, record.path) not in wanted:
             continue
         for finding in findings:
-            if finding.code in FIXABLE and (record.root, record.path, finding.code) not in done:
+            if finding.code in FIXABLE and (record.root, record.path, finding.code) not in done \
+                    and (record.root, record.path) not in sourced:
                 plan.notes.append(
                     f"{record.path}: {finding.code} not repaired: the evidence does not settle "
                     "the value (see slicetime show)"

@@ -9,6 +9,7 @@ from slicetime.rules import (  # noqa: F401  (registration)
     header,
     policy,
     reading,
+    source,
     timing,
     verify,
 )

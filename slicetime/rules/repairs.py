@@ -14,7 +14,12 @@ Each repair is proposed only when the evidence is unambiguous:
   reverse of what the header encodes along the same axis is reversed (it was
   written for the opposite direction);
 * ``scheme/multiband-mismatch`` / ``scheme/multiband-undeclared``:
-  MultibandAccelerationFactor set to the group size the times show.
+  MultibandAccelerationFactor set to the group size the times show;
+* ``source/times-absent``, ``source/times-differ``, ``source/reversed``:
+  SliceTiming rebuilt from the source DICOM series (the scanner's own record,
+  the strongest evidence), slice by slice through the position correspondence,
+  and SliceEncodingDirection when the matched slice axis is not ``k``;
+  ``source/multiband-differs``: MultibandAccelerationFactor from the source's groups.
 
 Where the value is written is the pipeline's business (``pipelines.fix``);
 a repair only says which sidecar supplies the current value.
@@ -31,6 +36,7 @@ from typing import Any
 from slicetime.model import AXES, Finding, RunRecord, Severity
 from slicetime.readers.policy import ExpectedProtocol
 from slicetime.rules.dataset import TIME_TOLERANCE, protocol_key
+from slicetime.rules.source import matched, source_multiband, source_times
 from slicetime.schemes.generate import Protocol, array_times, validate_protocol
 from slicetime.schemes.infer import infer_scheme
 from slicetime.schemes.niftcodes import SLICE_CODE_NAMES, header_slice_times
@@ -44,8 +50,14 @@ FIXABLE = frozenset(
         "header/slice-code-mismatch",
         "scheme/multiband-mismatch",
         "scheme/multiband-undeclared",
+        "source/times-absent",
+        "source/times-differ",
+        "source/reversed",
+        "source/multiband-differs",
     }
 )
+#: codes repaired from the source series; they win over every other SliceTiming repair
+SOURCE_TIMING_CODES = ("source/times-absent", "source/times-differ", "source/reversed")
 DECIMALS = 6  # microseconds: finer than any scanner clock
 
 
@@ -215,12 +227,60 @@ def _reversed_list(record: RunRecord) -> list[Repair]:
                     {"slice_code": header.slice_code, "direction": schedule.direction})]
 
 
+def _from_source(record: RunRecord, code: str) -> list[Repair]:
+    found, both = matched(record), source_times(record)
+    if found is None or both is None:
+        return []
+    series = found[1]
+    corr, times = both
+    axis = "ijk"[corr.axis]
+    declared = record.metadata.get("SliceEncodingDirection")
+    negative = isinstance(declared, str) and declared == f"{axis}-"
+    value = _rounded(times[::-1] if negative else times)
+    pairs = corr.pairs(series)
+    shown = ", ".join(f"{k}↔{label}" for k, label in pairs[:4]) + (", …" if len(pairs) > 4
+                                                                    else "")
+    what = series.times_source.field if series.times_source else "slice times"
+    source = (f"the source DICOM series {series.series} ({what}); run slices along {axis} "
+              f"matched by position along its slice normal: {shown}")
+    evidence = {"series": series.series, "files_read": list(series.files_read),
+                "times_from": what, "slice_axis": axis,
+                "correspondence": [[k, label] for k, label in pairs],
+                "largest_offset_mm": round(max(corr.offsets, default=0.0), 3)}
+    repairs = [_repair(record, code, "SliceTiming", value, source, evidence)]
+    if axis != "k" and not (isinstance(declared, str) and declared[:1] == axis):
+        repairs.append(_repair(record, code, "SliceEncodingDirection", axis, source, evidence))
+    return repairs
+
+
+def _multiband_from_source(record: RunRecord) -> list[Repair]:
+    found = matched(record)
+    factor = source_multiband(found[1]) if found is not None else None
+    if found is None or factor is None:
+        return []
+    return [_repair(record, "source/multiband-differs", "MultibandAccelerationFactor", factor,
+                    f"the source DICOM series {found[1].series}: {factor} slices share each "
+                    "time", {"series": found[1].series, "group_size": factor})]
+
+
 def plan_run(
     record: RunRecord, findings: Sequence[Finding], protocol: ExpectedProtocol | None = None
 ) -> list[Repair]:
-    """Repairs for one run's fixable findings (consensus repairs excluded)."""
+    """Repairs for one run's fixable findings (consensus repairs excluded).
+
+    SliceTiming from the source series, when there is one, replaces every other
+    SliceTiming repair of the run."""
     codes = {f.code for f in findings}
+    for code in SOURCE_TIMING_CODES:
+        if code in codes:
+            repairs = _from_source(record, code)
+            if repairs:
+                if "source/multiband-differs" in codes:
+                    repairs += _multiband_from_source(record)
+                return repairs
     repairs: list[Repair] = []
+    if "source/multiband-differs" in codes:
+        repairs += _multiband_from_source(record)
     if "timing/units-ms" in codes:
         repairs += _units_ms(record)
     if "timing/from-header" in codes:

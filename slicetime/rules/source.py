@@ -1,0 +1,330 @@
+"""Rules that compare a run with its source DICOM series (``source/*``). No I/O.
+
+The reader (:mod:`slicetime.readers.source`) puts a
+:class:`~slicetime.model_source.SourceEvidence` on the record; these rules
+compare it with the sidecar. Times are compared slice by slice after matching
+slices by position (:mod:`slicetime.schemes.correspond`), with a tolerance of
+the 2.5 ms step in which scanners commonly quantise slice times (common
+practice, no source).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterator
+
+from slicetime.model import RunRecord, Severity
+from slicetime.model_source import SeriesTiming, SourceEvidence
+from slicetime.rules.registry import Hit, reader_code, run_rule
+from slicetime.schemes.correspond import Correspondence, Mismatch, correspond
+from slicetime.schemes.infer import infer_scheme
+
+E, W, N = Severity.ERROR, Severity.WARNING, Severity.NOTE
+#: the source's quantisation step: a sidecar within it agrees (common practice, no source)
+QUANTUM = 0.0025
+TIME_TOLERANCE = QUANTUM + 1e-6
+TR_TOLERANCE = 0.001
+
+
+def _declared_axis(record: RunRecord) -> int | None:
+    value = record.metadata.get("SliceEncodingDirection")
+    if isinstance(value, str) and value[:1] in ("i", "j", "k"):
+        return "ijk".index(value[0])
+    return None
+
+
+def matched(record: RunRecord) -> tuple[SourceEvidence, SeriesTiming] | None:
+    evidence = record.source
+    if evidence is None or evidence.status != "matched" or evidence.series is None:
+        return None
+    return evidence, evidence.series
+
+
+def correspondence(record: RunRecord) -> Correspondence | Mismatch | None:
+    """How the run's slices map onto the matched series; None without a match or geometry."""
+    found = matched(record)
+    if found is None:
+        return None
+    evidence, series = found
+    if evidence.affine is None or evidence.shape is None:
+        return None
+    return correspond(series, evidence.affine, evidence.shape, _declared_axis(record))
+
+
+def source_times(record: RunRecord) -> tuple[Correspondence, tuple[float, ...]] | None:
+    """The source's times in the run's array order (with the correspondence used)."""
+    found = matched(record)
+    outcome = correspondence(record)
+    if found is None or not isinstance(outcome, Correspondence):
+        return None
+    times = outcome.times(found[1])
+    return (outcome, times) if times is not None else None
+
+
+def _series_facts(series: SeriesTiming) -> dict[str, object]:
+    return {"series": series.series, "layout": series.layout,
+            "times_from": series.times_source.field if series.times_source else None}
+
+
+def _ms(values: tuple[float, ...]) -> list[float]:
+    return [round(v * 1000.0, 2) for v in values]
+
+
+# --------------------------------------------------------------------------- matching
+
+
+@run_rule(
+    "source/no-match",
+    title="no source series could be matched to the run",
+    severity=N,
+    rationale=(
+        "The source cross-check compares a run with the DICOM series it was converted from. "
+        "It matches by the sidecar's SeriesNumber, else by geometry, TR and volume count, and "
+        "never guesses: when nothing fits, the run is not checked against the scanner's record."
+    ),
+    fix="Add SeriesNumber to the sidecar, or name the series in a --source-map file.",
+)
+def no_match(record: RunRecord) -> Iterator[Hit]:
+    evidence = record.source
+    if evidence is not None and evidence.status == "no-match":
+        yield Hit(f"no source series matched: {evidence.reason}",
+                  evidence={"candidates": list(evidence.candidates)})
+
+
+@run_rule(
+    "source/ambiguous",
+    title="several source series fit the run",
+    severity=N,
+    rationale=(
+        "More than one series under sourcedata/ fits the run and nothing singles one out; "
+        "comparing with any of them would be a guess."
+    ),
+    fix="Name the run's series in a --source-map file (run path, series folder).",
+)
+def ambiguous(record: RunRecord) -> Iterator[Hit]:
+    evidence = record.source
+    if evidence is not None and evidence.status == "ambiguous":
+        yield Hit(f"the source series is ambiguous: {evidence.reason}",
+                  evidence={"candidates": list(evidence.candidates)})
+
+
+@run_rule(
+    "source/unreadable",
+    title="the source series cannot be read",
+    severity=W,
+    rationale=(
+        "The series matched to the run (or named in the source map) is not usable DICOM: "
+        "not DICOM at all, truncated, missing a tag needed to place the slices, or carrying "
+        "a vendor private header too large to trust. Nothing is compared."
+    ),
+    fix="Copy the series again from the scanner or archive, or correct the source map.",
+)
+def unreadable(record: RunRecord) -> Iterator[Hit]:
+    evidence = record.source
+    if evidence is not None and evidence.status == "unreadable" and evidence.error is not None:
+        error = evidence.error
+        yield Hit(error.message, field=error.field, file=error.file,
+                  evidence={**error.evidence, "how": evidence.how})
+
+
+@run_rule(
+    "source/geometry-differs",
+    title="the run's slices do not line up with its source series",
+    severity=W,
+    rationale=(
+        "Slices are matched by their position along the source's slice normal. When the "
+        "slice axis is not parallel to it, the counts or the matrix differ, or a slice finds "
+        "no source slice within half the spacing, the run was resliced, cropped or matched "
+        "to the wrong series: no time is compared."
+    ),
+    fix="Check the match (SeriesNumber, --source-map) and whether the run was resampled.",
+)
+def geometry_differs(record: RunRecord) -> Iterator[Hit]:
+    outcome = correspondence(record)
+    found = matched(record)
+    if isinstance(outcome, Mismatch) and found is not None:
+        yield Hit(f"the geometry differs from the source series {found[1].series} "
+                  f"({outcome.reason}); no slice times compared",
+                  field="SliceEncodingDirection" if _declared_axis(record) is not None
+                  else None, evidence=_series_facts(found[1]))
+
+
+# --------------------------------------------------------------------------- times
+
+
+@run_rule(
+    "source/no-times",
+    title="the source series carries no per-slice times",
+    severity=N,
+    rationale=(
+        "The series was found, but neither its vendor private header, its frames nor its "
+        "files record when each slice was acquired; the sidecar cannot be checked against it."
+    ),
+)
+def no_times(record: RunRecord) -> Iterator[Hit]:
+    found = matched(record)
+    if found is not None and found[1].times is None:
+        why = "; ".join(found[1].notes) or "no per-slice times"
+        yield Hit(f"the source series {found[1].series} carries no slice times ({why})",
+                  evidence=_series_facts(found[1]))
+
+
+def _where(corr: Correspondence, series: SeriesTiming) -> str:
+    direction = "against" if corr.against_normal else "along"
+    return (f"run slices along {'ijk'[corr.axis]} matched by position ({direction} the "
+            f"series' normal; largest offset {max(corr.offsets, default=0):.2f} mm)")
+
+
+@run_rule(
+    "source/times-absent",
+    title="the sidecar has no SliceTiming but the source series records it",
+    severity=W,
+    rationale=(
+        "The scanner recorded every slice's time in the series the run was converted from; "
+        "the converter dropped it. Correction and event models need it."
+    ),
+    fix="Run slicetime fix: it rebuilds SliceTiming from the source series.",
+)
+def times_absent(record: RunRecord) -> Iterator[Hit]:
+    if "SliceTiming" in record.metadata:
+        return
+    found, both = matched(record), source_times(record)
+    if found is None or both is None:
+        return
+    corr, times = both
+    yield Hit(f"no SliceTiming, but the source series {found[1].series} records it "
+              f"({_where(corr, found[1])})", field="SliceTiming",
+              evidence={**_series_facts(found[1]), "source_ms": _ms(times)})
+
+
+def _compare(record: RunRecord) -> tuple[str, dict[str, object]] | None:
+    """('differ'|'reversed', evidence) when the sidecar's times disagree with the source."""
+    schedule = record.schedule
+    found, both = matched(record), source_times(record)
+    if schedule is None or record.timing_origin != "sidecar" or found is None or both is None:
+        return None
+    corr, times = both
+    evidence: dict[str, object] = {**_series_facts(found[1]), "source_ms": _ms(times),
+                                   "sidecar_ms": _ms(schedule.times)}
+    if schedule.axis_index != corr.axis or len(schedule.times) != len(times):
+        evidence["reason"] = (f"the sidecar's times run along {schedule.axis}, the source's "
+                              f"slices along {'ijk'[corr.axis]}")
+        return "differ", evidence
+    diffs = [abs(a - b) for a, b in zip(schedule.times, times, strict=True)]
+    if max(diffs) <= TIME_TOLERANCE:
+        return None
+    flipped = [abs(a - b) for a, b in zip(schedule.times, reversed(times), strict=True)]
+    evidence["largest_difference_ms"] = round(max(diffs) * 1000.0, 3)
+    evidence["slices_differing"] = sum(d > TIME_TOLERANCE for d in diffs)
+    if max(flipped) <= TIME_TOLERANCE:
+        return "reversed", evidence
+    return "differ", evidence
+
+
+@run_rule(
+    "source/reversed",
+    title="the sidecar's slice times run in the opposite direction to the source's",
+    severity=E,
+    rationale=(
+        "Matched by position, the sidecar's SliceTiming is the source's list backwards: the "
+        "times were written for the opposite slice direction (common with head-to-foot "
+        "stacks, whose tiles come in reversed order). Correction would shift every slice by "
+        "the wrong amount."
+    ),
+    fix="Run slicetime fix: it rebuilds SliceTiming from the source series.",
+)
+def reversed_times(record: RunRecord) -> Iterator[Hit]:
+    outcome = _compare(record)
+    if outcome is not None and outcome[0] == "reversed":
+        yield Hit(f"SliceTiming is the source series {outcome[1]['series']}'s times in "
+                  "reverse slice order", field="SliceTiming", evidence=outcome[1])
+
+
+@run_rule(
+    "source/times-differ",
+    title="the sidecar's slice times disagree with the source series",
+    severity=E,
+    rationale=(
+        "The scanner's own record of each slice's time (matched to the run's slices by "
+        "position) differs from SliceTiming by more than the 2.5 ms step in which scanners "
+        "store slice times: the sidecar was rounded wrongly, edited, or copied from another "
+        "protocol."
+    ),
+    fix="Run slicetime fix: it rebuilds SliceTiming from the source series.",
+)
+def times_differ(record: RunRecord) -> Iterator[Hit]:
+    outcome = _compare(record)
+    if outcome is None or outcome[0] != "differ":
+        return
+    facts = outcome[1]
+    detail = facts.get("reason") or (
+        f"{facts['slices_differing']} slice(s) differ, by up to "
+        f"{facts['largest_difference_ms']:g} ms")
+    yield Hit(f"SliceTiming disagrees with the source series {facts['series']} ({detail})",
+              field="SliceTiming", evidence=facts)
+
+
+# --------------------------------------------------------------------------- TR, multiband
+
+
+@run_rule(
+    "source/tr-differs",
+    title="the run's repetition time differs from the source series'",
+    severity=E,
+    rationale="RepetitionTime (0018,0080) of the source series is the scanner's TR.",
+    fix="Set RepetitionTime (and the NIfTI header's pixdim[4]) to the source's value.",
+)
+def tr_differs(record: RunRecord) -> Iterator[Hit]:
+    found = matched(record)
+    schedule = record.schedule
+    tr = schedule.repetition_time if schedule else (
+        record.header.repetition_time if record.header else None)
+    if found is None or tr is None or found[1].repetition_time is None:
+        return
+    if abs(tr - found[1].repetition_time) > TR_TOLERANCE:
+        yield Hit(f"the repetition time is {tr:g} s, the source series {found[1].series} "
+                  f"says {found[1].repetition_time:g} s", field="RepetitionTime",
+                  evidence={**_series_facts(found[1]), "run": tr,
+                            "source": found[1].repetition_time})
+
+
+def source_multiband(series: SeriesTiming) -> int | None:
+    """The group size of the source's times when every excitation group has it."""
+    if series.times is None or len(series.times) < 2:
+        return None
+    scheme = infer_scheme(series.times)
+    sizes = {len(g) for g in scheme.groups}
+    return scheme.multiband_factor if len(sizes) == 1 and len(scheme.groups) > 1 else None
+
+
+@run_rule(
+    "source/multiband-differs",
+    title="MultibandAccelerationFactor differs from the source's excitation groups",
+    severity=W,
+    rationale=(
+        "Slices excited together share one time in the source series; the number sharing "
+        "each time is the multiband factor the scanner used."
+    ),
+    fix="Run slicetime fix: it sets MultibandAccelerationFactor from the source series.",
+)
+def multiband_differs(record: RunRecord) -> Iterator[Hit]:
+    found = matched(record)
+    declared = record.metadata.get("MultibandAccelerationFactor")
+    if found is None or not isinstance(declared, int | float) or isinstance(declared, bool):
+        return
+    factor = source_multiband(found[1])
+    if factor is not None and factor != declared:
+        yield Hit(f"MultibandAccelerationFactor is {declared:g}, the source series "
+                  f"{found[1].series} excites {factor} slices at a time",
+                  field="MultibandAccelerationFactor",
+                  evidence={**_series_facts(found[1]), "declared": declared, "source": factor})
+
+
+reader_code(
+    "source/bad-map",
+    title="the --source-map file cannot be used",
+    severity=E,
+    rationale="The map must be a TSV with two columns per line: run path and series folder.",
+    fix="Fix the line named in the message.",
+)
+
+__all__ = ["QUANTUM", "correspondence", "matched", "source_multiband", "source_times"]
