@@ -547,6 +547,9 @@ def fix(
         else:
             if not paths:
                 raise UserError("fix: give the dataset or runs to repair (PATH...)")
+            from slicetime.pipelines.audit import check_paths_hold_runs
+
+            check_paths_hold_runs(list(paths))
             with _executor(jobs, scheduler) as executor:
                 plan = fixing.plan_fix(list(paths), per_run=per_run, policy_file=policy_file,
                                        executor=executor, consolidate=consolidate,

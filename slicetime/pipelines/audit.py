@@ -167,6 +167,12 @@ def _policies(
     return found
 
 
+def check_paths_hold_runs(paths: Sequence[Path], **include: bool) -> None:
+    """Walk ``paths`` (names only, no file is read) and raise :class:`NoRunsError` for
+    the first that holds no run; for commands that find their runs another way."""
+    _check_every_path_has_runs(paths, list(iter_runs(paths, **include)))
+
+
 def audit_paths(
     paths: Sequence[Path],
     *,
@@ -252,5 +258,6 @@ __all__ = [
     "RunResult",
     "audit_one",
     "audit_paths",
+    "check_paths_hold_runs",
     "failed_run",
 ]
