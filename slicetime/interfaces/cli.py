@@ -524,7 +524,10 @@ def fix(
     Examples:
       slicetime fix ds/                    # show the planned changes as diffs
       slicetime fix ds/ --apply            # write them, with backups and a journal
-      slicetime fix --undo ds-slicetime-backups/20261201T120000Z/journal.json
+      slicetime fix --undo ds-slicetime-backups/<UTC time>/journal.json
+    \b
+    Backups go to <dataset>-slicetime-backups/<UTC time stamp>/ beside the
+    dataset (or --backup-dir); --apply prints the journal's exact path.
     """
     from slicetime.interfaces.terminal import make_console, render_fix_plan
     from slicetime.pipelines import fix as fixing
