@@ -146,6 +146,7 @@ def test_milliseconds_give_one_finding_and_the_scheme_in_seconds(tmp_path: Path)
     # common practice (no source): N slices spread evenly over a TR are TR/N apart
     assert obj["scheme"]["spacing"] == pytest.approx(TR / 30, abs=1e-3)
     code, text, _ = run_cli("show", str(root / "sub-03/func/sub-03_task-tap_bold.nii.gz"))
+    assert code == 1
     flat = " ".join(text.split())
     assert "one excitation every 66.7 ms" in flat
     assert "SliceTiming read as milliseconds" in flat
