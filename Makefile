@@ -2,17 +2,24 @@
 PYTHON ?= python3
 VENV ?= .venv
 PY := $(VENV)/bin/python
-STAMP := $(VENV)/.installed
+# Two stamps: the demo needs only slicetime and its runtime dependencies; the tests,
+# lint, benchmarks and validation also need the test tools (pytest, pybids, nilearn, ...).
+RUNTIME_STAMP := $(VENV)/.installed-runtime
+STAMP := $(VENV)/.installed-test
 
 .PHONY: demo test lint bench validate clean
 
-$(STAMP): pyproject.toml
-	$(PYTHON) -m venv $(VENV)
+$(RUNTIME_STAMP): pyproject.toml
+	test -x $(PY) || $(PYTHON) -m venv $(VENV)
 	$(PY) -m pip install --quiet --upgrade pip
+	$(PY) -m pip install --quiet -e .
+	touch $(RUNTIME_STAMP)
+
+$(STAMP): $(RUNTIME_STAMP)
 	$(PY) -m pip install --quiet -e '.[test]'
 	touch $(STAMP)
 
-demo: $(STAMP)
+demo: $(RUNTIME_STAMP)
 	$(VENV)/bin/slicetime demo --out demo-output
 
 test: $(STAMP)

@@ -96,7 +96,7 @@ def test_garbage_file_is_a_finding_not_a_crash(tmp_path: Path) -> None:
     bad.parent.mkdir(parents=True)
     bad.write_bytes(os.urandom(2000))
     code, out, _ = run_cli("show", str(bad), "--json")
-    assert code == 0
+    assert code == 1  # a file show cannot read at all: the finding, and exit 1 (issue 15)
     assert "file/not-nifti" in {f["code"] for f in json.loads(out)["findings"]}
 
 

@@ -44,11 +44,23 @@ def test_one_subjects_override_is_an_outlier_and_a_noted_override(tmp_path: Path
 
 def test_broken_override_is_an_error(tmp_path: Path) -> None:
     root = study(tmp_path)
-    write_sidecar(root, "sub-02/sub-02_task-tap_bold.json",
-                  {"SliceTiming": [t * 1000 for t in INTERLEAVED]})
+    # a list of 7 entries for 10 slices (BIDS rules.checks.mri.SliceTimingElements)
+    write_sidecar(root, "sub-02/sub-02_task-tap_bold.json", {"SliceTiming": INTERLEAVED[:7]})
     odd = findings_by_run(root)["sub-02/func/sub-02_task-tap_bold.nii.gz"]
     assert odd.get("inherit/timing-override") is Severity.ERROR
-    assert odd.get("timing/units-ms") is Severity.ERROR
+    assert odd.get("timing/count-mismatch") is Severity.ERROR
+
+
+def test_override_in_milliseconds_is_folded_into_the_unit_finding(tmp_path: Path) -> None:
+    root = study(tmp_path)
+    write_sidecar(root, "sub-02/sub-02_task-tap_bold.json",
+                  {"SliceTiming": [t * 1000 for t in INTERLEAVED]})
+    result = audit_paths([root])
+    odd = next(r for r in result.runs if r.record.path.startswith("sub-02/"))
+    # one root cause, reported once: the broken override follows from the unit
+    assert [f.code for f in odd.findings] == ["timing/units-ms"]
+    folded = odd.findings[0].evidence["folded"]
+    assert {"code": "inherit/timing-override", "severity": "error"}.items() <= folded[0].items()
 
 
 def test_no_consensus_without_a_strict_majority(tmp_path: Path) -> None:

@@ -41,12 +41,15 @@ def friendly(fn: F) -> F:
 
     @functools.wraps(fn)
     def wrapper(*args: Any, **kwargs: Any) -> Any:
+        from slicetime.pipelines.errors import NoRunsError
         from slicetime.readers.errors import ReadError
 
         try:
             return fn(*args, **kwargs)
         except ReadError as exc:
             raise UserError(exc.message) from None
+        except NoRunsError as exc:
+            raise UserError(str(exc)) from None
         except (click.ClickException, click.exceptions.Exit, click.Abort, SystemExit):
             raise
         except KeyboardInterrupt:
@@ -67,7 +70,27 @@ def friendly(fn: F) -> F:
     return wrapper  # type: ignore[return-value]
 
 
-@click.group(context_settings={"help_option_names": ["-h", "--help"], "max_content_width": 100})
+EXIT_STATUSES = """\b
+Exit status (every command):
+  0    nothing at or above --fail-on (audit, show), every run corrected or up to
+       date (correct), nothing to fix or everything applied (fix), no claim
+       contradicted (verify)
+  1    a finding at or above --fail-on (audit, show; also a file show cannot
+       read), a run refused or failed (correct), changes planned or files
+       refused (fix), a claim contradicted (verify)
+  2    bad usage: an unknown option or value, a path that does not exist or
+       holds no run, an unreadable file or policy named on the command line, a
+       missing optional part (e.g. matplotlib for --html)
+  3    internal error (a bug: rerun with SLICETIME_DEBUG=1 and report it)
+  130  interrupted (Ctrl-C)
+\b
+Shell completion (bash, zsh, fish): see README, "Shell completion", e.g.
+  eval "$(_SLICETIME_COMPLETE=bash_source slicetime)"
+"""
+
+
+@click.group(context_settings={"help_option_names": ["-h", "--help"], "max_content_width": 100},
+             epilog=EXIT_STATUSES)
 @click.version_option(__version__, prog_name="slicetime")
 def cli() -> None:
     """Audit, repair and correct fMRI slice timing across BIDS-style datasets."""
@@ -77,23 +100,43 @@ def cli() -> None:
 @cli.command()
 @click.argument("file", type=click.Path(path_type=Path))
 @click.option("--json", "as_json", is_flag=True, help="Print the run object of the JSON report.")
+@click.option("--fail-on", type=click.Choice(["error", "warning", "never"]), default="error",
+              show_default=True, help="Exit 1 when one of the run's findings reaches this "
+              "severity.")
+@click.option("--policy", "policy_file", type=click.Path(path_type=Path, dir_okay=False),
+              help="Lab policy (TOML). Default: slicetime-policy.toml at the dataset root.")
 @friendly
-def show(file: Path, as_json: bool) -> None:
+def show(file: Path, as_json: bool, fail_on: str, policy_file: Path | None) -> None:
     """Show one run: its schedule, where each value came from, its scheme and findings.
 
-    A DICOM file or series folder shows the series' own slice times and scheme."""
+    FILE is the run's image or its own sidecar (_bold.json). The findings are
+    exactly those `slicetime audit` gives the run: its dataset is audited (header
+    bytes only) with the lab policy, so the dataset-wide checks are included.
+    A DICOM file or series folder shows the series' own slice times and scheme.
+    """
     from slicetime.interfaces.report_json import dumps, run_object
     from slicetime.interfaces.terminal import make_console, render_show
-    from slicetime.pipelines.audit import audit_one
+    from slicetime.model import RunRecord, Severity
+    from slicetime.pipelines.audit import RunResult, audit_paths
     from slicetime.readers.dataset import find_root
-    from slicetime.readers.errors import check_regular_file
+    from slicetime.readers.errors import ReadError
+    from slicetime.readers.record import relative_display
 
     if _is_dicom_input(file):
         _show_series(file, as_json)
         return
-    check_regular_file(file, str(file), what="image")
-    root = find_root(file.resolve().parent if not file.is_dir() else file)
-    run = audit_one(root, file.absolute() if not file.is_absolute() else file)
+    image = _show_target(file)
+    absolute = image if image.is_absolute() else image.absolute()
+    root = find_root(absolute.parent)
+    try:
+        result = audit_paths([root, absolute], policy_file=policy_file, require_runs=False)
+        run = next(r for r in result.runs if r.record.abs_path == str(absolute))
+    except ReadError as exc:
+        if exc.code == "file/missing":
+            raise
+        shown = relative_display(absolute, root)
+        run = RunResult(RunRecord(path=shown, abs_path=str(absolute), root=str(root)),
+                        [exc.to_finding()])
     if as_json:
         from slicetime.interfaces.source_view import run_source_object
 
@@ -106,6 +149,29 @@ def show(file: Path, as_json: bool) -> None:
 
         render_show(run, make_console())
         render_run_source(run.record, make_console())
+    if fail_on != "never":
+        level = Severity.parse(fail_on).rank
+        sys.exit(EXIT_FINDINGS if any(f.severity.rank >= level for f in run.findings) else 0)
+
+
+def _show_target(file: Path) -> Path:
+    """The run image that ``show FILE`` means: the file itself, or the image beside a
+    run's own sidecar. A folder or a sidecar without its image is a usage mistake."""
+    if not os.path.lexists(file):
+        raise UserError(f"{file}: file does not exist")
+    if file.is_dir():
+        raise UserError(f"{file}: a folder; show takes one run (its image or its own sidecar); "
+                        f"to check every run under it: slicetime audit {file}")
+    if file.name.lower().endswith(".json"):
+        stem = file.name[: -len(".json")]
+        for ext in (".nii.gz", ".nii"):
+            image = file.with_name(stem + ext)
+            if os.path.lexists(image):
+                return image
+        raise UserError(f"{file}: a sidecar without a run image beside it (no {stem}.nii.gz "
+                        f"or {stem}.nii); an inherited sidecar serves several runs: show one "
+                        "of them, or audit the folder")
+    return file
 
 
 def _is_dicom_input(file: Path) -> bool:
@@ -195,6 +261,8 @@ def audit(
     from slicetime.pipelines.audit import audit_paths
     from slicetime.pipelines.executor import Interrupted
 
+    if html_file is not None:
+        _require_matplotlib("--html")
     with _executor(jobs, scheduler, light=not verify_data) as executor, \
             progress_reporter("auditing") as progress:
         try:
@@ -278,6 +346,15 @@ def _executor(jobs: int | None, scheduler: str | None, *, light: bool = True) ->
         executor.close()
 
 
+def _require_matplotlib(option: str) -> None:
+    """Exit 2 with what to install when the optional drawing library is missing."""
+    try:
+        import matplotlib  # noqa: F401
+    except ImportError:
+        raise UserError(f"{option} draws timing diagrams with matplotlib, which is not "
+                        "installed: pip install matplotlib") from None
+
+
 def _write_text(path: Path, text: str) -> None:
     try:
         tmp = path.with_name(f".{path.name}.tmp-{os.getpid()}")
@@ -307,6 +384,9 @@ def verify(files: tuple[Path, ...], fmt: str) -> None:
     outcomes = []
     unreadable: list[dict[str, str]] = []
     for file in files:
+        if file.is_dir():
+            raise UserError(f"{file}: a folder; verify takes run files (to check every run "
+                            f"under a folder: slicetime audit {file} --verify)")
         try:
             check_regular_file(file, str(file), what="image")
             path = file if file.is_absolute() else file.absolute()
@@ -507,7 +587,10 @@ def fix(
     Examples:
       slicetime fix ds/                    # show the planned changes as diffs
       slicetime fix ds/ --apply            # write them, with backups and a journal
-      slicetime fix --undo ds-slicetime-backups/20261201T120000Z/journal.json
+      slicetime fix --undo ds-slicetime-backups/<UTC time>/journal.json
+    \b
+    Backups go to <dataset>-slicetime-backups/<UTC time stamp>/ beside the
+    dataset (or --backup-dir); --apply prints the journal's exact path.
     """
     from slicetime.interfaces.terminal import make_console, render_fix_plan
     from slicetime.pipelines import fix as fixing
@@ -530,6 +613,9 @@ def fix(
         else:
             if not paths:
                 raise UserError("fix: give the dataset or runs to repair (PATH...)")
+            from slicetime.pipelines.audit import check_paths_hold_runs
+
+            check_paths_hold_runs(list(paths))
             with _executor(jobs, scheduler) as executor:
                 plan = fixing.plan_fix(list(paths), per_run=per_run, policy_file=policy_file,
                                        executor=executor, consolidate=consolidate,
@@ -582,9 +668,11 @@ def fix(
               help="Acquire from the last slice (along the encoding direction) first.")
 @click.option("--step", type=click.IntRange(min=2), default=2, show_default=True,
               help="Distance between successive slices of an interleaved order.")
-@click.option("--first", "first", default=None,
-              help="First slice acquired in an interleaved order (a slice index), or 'auto': "
-              "from 1 when the count is even, else from 0.")
+@click.option("--first", "first", default=None, metavar="INDEX|auto",
+              help="First slice acquired in an interleaved order, counted along the encoding "
+              "direction from 0: one of the first STEP slices (0 to STEP-1; with --descending "
+              "one of the last STEP excitation groups), each later pass starting one slice "
+              "further; or 'auto': from 1 when the count is even, else from 0.")
 @click.option("--multiband", type=click.IntRange(min=1), default=1, show_default=True,
               help="Multiband factor: slices excited together, spaced N/M apart.")
 @click.option("--axis", "axis", type=click.Choice(["i", "j", "k", "i-", "j-", "k-"]),
@@ -592,6 +680,8 @@ def fix(
               help="SliceEncodingDirection of the run the list is for.")
 @click.option("--decimals", type=click.IntRange(min=0, max=9), default=4, show_default=True,
               help="Round the times to this many decimals.")
+@click.option("--compact", is_flag=True,
+              help="Print the fields as one line of JSON, ready to paste into a sidecar.")
 @friendly
 def timing(
     n_slices: int,
@@ -604,6 +694,7 @@ def timing(
     multiband: int,
     axis: str,
     decimals: int,
+    compact: bool,
 ) -> None:
     """Print SliceTiming for a protocol, as JSON to paste into a sidecar.
 
@@ -617,6 +708,10 @@ def timing(
 
     if tr is None and ta is None:
         raise UserError("timing: give --tr (and --acquisition-time for sparse protocols)")
+    for option, value in (("--tr", tr), ("--acquisition-time", ta)):
+        if value is not None and value > _MS_LIKE_SECONDS:
+            raise UserError(f"{option} {value:g}: times are in seconds, and {value:g} s looks "
+                            f"like milliseconds; did you mean {option} {value / 1000:g}?")
     start: int | str | None = None
     if first is not None:
         if first == "auto":
@@ -627,6 +722,8 @@ def timing(
             except ValueError:
                 raise UserError(f"--first must be a slice index or 'auto', not {first!r}") \
                     from None
+            if start < 0:  # type: ignore[operator]
+                raise UserError(f"--first must be a slice index (0 or more), not {first}")
     protocol = Protocol(
         n_slices=n_slices,
         order=order,  # type: ignore[arg-type]
@@ -642,7 +739,7 @@ def timing(
     try:
         times = slice_timing(protocol)
     except ValueError as exc:
-        raise UserError(f"timing: {exc}") from None
+        raise UserError(f"timing: {_as_options(str(exc))}") from None
     fields: dict[str, Any] = {"SliceTiming": times}
     if tr is not None:
         fields["RepetitionTime"] = tr
@@ -652,8 +749,32 @@ def timing(
     if multiband > 1:
         fields["MultibandAccelerationFactor"] = multiband
     label = infer_scheme(array_times(protocol)).label
-    click.echo(json.dumps(fields, indent=2))
+    click.echo(json.dumps(fields) if compact else json.dumps(fields, indent=2))
     click.echo(f"scheme in data-array order: {label}", err=True)
+
+
+#: a TR or acquisition time above this many seconds was written in milliseconds (the
+#: audit's tr/units-ms uses the same bound)
+_MS_LIKE_SECONDS = 100.0
+#: the protocol's parameter names and the options the user typed for them
+_OPTION_OF = {
+    "n_slices": "--slices",
+    "repetition_time": "--tr",
+    "acquisition_time": "--acquisition-time",
+    "start": "--first",
+    "step": "--step",
+    "multiband": "--multiband",
+    "decimals": "--decimals",
+}
+
+
+def _as_options(message: str) -> str:
+    """A protocol validation message with parameter names replaced by option names."""
+    import re
+
+    pattern = re.compile(r"(?<![\w-])(" + "|".join(_OPTION_OF) + r")(?= must|:|=| \()")
+    message = message.replace("use order 'sequential'", "use --order sequential")
+    return pattern.sub(lambda m: _OPTION_OF[m.group(1)], message)
 
 
 # --------------------------------------------------------------------------- explain
@@ -672,10 +793,29 @@ def explain(code: str | None, list_all: bool) -> None:
             click.echo(f"{rule.code:<{width}}  {rule.severity.value:<7}  {rule.title}")
         return
     if code not in RULES:
-        near = [c for c in RULES if code.split("/")[-1] in c]
-        extra = f"; did you mean {', '.join(sorted(near)[:3])}?" if near else ""
+        near = _close_codes(code, list(RULES))
+        extra = f"; did you mean {', '.join(near)}?" if near else ""
         raise UserError(f"explain: no finding code {code!r}{extra} (see slicetime explain --list)")
     click.echo(explain_rule(code))
+
+
+def _close_codes(code: str, known: list[str]) -> list[str]:
+    """Codes close to a mistyped one: spelling (difflib) after normalising case and
+    separators, then codes containing its short name."""
+    import difflib
+
+    typed = code.strip().lower().replace("_", "-").replace(" ", "-").replace(".", "/")
+    if typed in known:
+        return [typed]
+    short = typed.split("/")[-1]
+
+    def score(candidate: str) -> float:
+        ratio = difflib.SequenceMatcher(None, typed, candidate).ratio()
+        return ratio + (1.0 if short and candidate.split("/")[-1] == short else 0.0)
+
+    near = set(difflib.get_close_matches(typed, known, n=3, cutoff=0.6))
+    near.update(c for c in known if short and c.split("/")[-1] == short)
+    return sorted(near, key=lambda c: (-score(c), c))[:3]
 
 
 # --------------------------------------------------------------------------- demo

@@ -149,6 +149,8 @@ def render_show(run: RunResult, console: Console) -> None:
             detail.append(f"one excitation every {_ms(scheme.spacing)}")
         detail.append(f"{len(scheme.groups)} excitation group"
                       f"{'s' if len(scheme.groups) != 1 else ''}")
+        if scheme.evidence.get("unit_note"):
+            detail.append(str(scheme.evidence["unit_note"]))
         facts.add_row("scheme", Text(scheme.label, style="bold") + Text(
             "   " + ", ".join(detail), style="dim"))
     elif header is not None:
@@ -167,8 +169,10 @@ def render_show(run: RunResult, console: Console) -> None:
                            if supports_unicode(console) else
                            "\nacquisition order (slice index up, time within the volume right)",
                            style="dim"))
-        for line in order_diagram(schedule.times, schedule.acquisition_window
-                                  or schedule.repetition_time,
+        factor = 0.001 if scheme is not None and scheme.evidence.get("assumed_unit") == "ms" \
+            else 1.0  # SliceTiming in milliseconds: drawn in seconds, as the scheme reads it
+        for line in order_diagram([t * factor for t in schedule.times],
+                                  schedule.acquisition_window or schedule.repetition_time,
                                   unicode=supports_unicode(console)):
             console.print("  " + line)
     if run.findings:
@@ -210,6 +214,9 @@ def render_audit(result: AuditResult, console: Console, *, show_notes: bool = Tr
         console.print(Text("\ndataset", style="bold"))
         for line in finding_lines(result.dataset_findings):
             console.print(line)
+    policy_line = policy_summary(result)
+    if policy_line:
+        console.print(Text(f"\n{xml_safe(policy_line)}", style="dim"))
     counts = result.counts()
     summary = Text(f"\n{len(result.runs)} run{'s' if len(result.runs) != 1 else ''} audited: ")
     for i, sev in enumerate(Severity):
@@ -218,6 +225,19 @@ def render_audit(result: AuditResult, console: Console, *, show_notes: bool = Tr
         summary.append(f"{counts[sev.value]} {sev.value}{'s' if counts[sev.value] != 1 else ''}",
                        style=STYLE[sev] if counts[sev.value] else None)
     console.print(summary)
+
+
+def policy_summary(result: AuditResult) -> str | None:
+    """One line: the policy file(s) used, the findings they ignored and the runs their
+    protocols judged instead of the dataset majority; None without a policy."""
+    files = sorted(set(result.policies.values()))
+    if not files:
+        return None
+    ignored = result.ignored_count()
+    judged = result.judged_by_policy
+    return (f"policy {', '.join(files)}: {ignored} finding{'s' if ignored != 1 else ''} "
+            f"ignored, {judged} run{'s' if judged != 1 else ''} judged by its protocols "
+            "instead of the dataset majority")
 
 
 #: how each correction outcome is shown

@@ -11,6 +11,7 @@ from pathlib import Path
 
 from slicetime.model import Finding, RunRecord, Severity
 from slicetime.model_source import SourceEvidence
+from slicetime.pipelines.errors import NoRunsError
 from slicetime.pipelines.executor import Executor, Progress, map_chunks
 from slicetime.readers.dataset import find_root, iter_runs
 from slicetime.readers.errors import ReadError
@@ -18,8 +19,13 @@ from slicetime.readers.inheritance import SidecarIndex
 from slicetime.readers.policy import POLICY_FILENAME, Policy, find_policy, load_policy
 from slicetime.readers.record import build_record, relative_display
 from slicetime.readers.source import SourceIndex, SourceOptions, find_source
-from slicetime.rules import RULES, check_dataset, check_run
-from slicetime.rules.policy import IgnoredFinding, apply_overrides_and_ignores, apply_policy
+from slicetime.rules import RULES, check_dataset, check_run, fold_consequences
+from slicetime.rules.policy import (
+    IgnoredFinding,
+    apply_overrides_and_ignores,
+    apply_policy,
+    dataset_codes_judged,
+)
 
 
 @dataclass
@@ -36,6 +42,9 @@ class AuditResult:
     dataset_findings: list[Finding] = field(default_factory=list)
     ignored: list[IgnoredFinding] = field(default_factory=list)
     policies: dict[str, str] = field(default_factory=dict)  # root -> policy file used
+    #: runs whose policy protocol states a value, so that value was judged by the policy
+    #: and not by the majority of their task and acquisition (dataset/outlier-*)
+    judged_by_policy: int = 0
 
     def ignored_count(self) -> int:
         return len(self.ignored) + sum(len(r.ignored) for r in self.runs)
@@ -75,9 +84,9 @@ def audit_one(
 
         findings.append(verify_finding(record))
     if policy is None:
-        return RunResult(record, findings)
+        return RunResult(record, fold_consequences(findings))
     outcome = apply_policy(policy, record, findings)
-    return RunResult(record, list(outcome.kept), list(outcome.ignored))
+    return RunResult(record, fold_consequences(outcome.kept), list(outcome.ignored))
 
 
 # ---- the source cross-check (sourcedata/ DICOM series): one place, see readers/source.py
@@ -148,8 +157,22 @@ def _lost_target(target: tuple[Path, Path], why: str) -> RunResult:
     return failed_run(target[0], target[1], "batch/worker-lost", why)
 
 
-def _has_error(result: RunResult) -> bool:
-    return any(f.severity is Severity.ERROR for f in result.findings)
+def _not_processed(result: RunResult) -> bool:
+    """A run that could not be processed (unreadable, not NIfTI, a lost worker, a bug):
+    what progress counts as failed. Findings about a readable run are not failures."""
+    return result.record.header is None
+
+
+def _check_every_path_has_runs(
+    paths: Sequence[Path], targets: Sequence[tuple[Path, Path]]
+) -> None:
+    """Raise :class:`NoRunsError` for the first given path that holds no run."""
+    runs = [str(run) for _, run in targets]
+    for given in paths:
+        where = os.path.abspath(given)
+        prefix = where.rstrip(os.sep) + os.sep
+        if not any(run == where or run.startswith(prefix) for run in runs):
+            raise NoRunsError(str(given), is_folder=os.path.isdir(given))
 
 
 def _policies(
@@ -174,6 +197,12 @@ def _policies(
     return found
 
 
+def check_paths_hold_runs(paths: Sequence[Path], **include: bool) -> None:
+    """Walk ``paths`` (names only, no file is read) and raise :class:`NoRunsError` for
+    the first that holds no run; for commands that find their runs another way."""
+    _check_every_path_has_runs(paths, list(iter_runs(paths, **include)))
+
+
 def audit_paths(
     paths: Sequence[Path],
     *,
@@ -186,13 +215,18 @@ def audit_paths(
     executor: Executor | None = None,
     verify: bool = False,
     source: SourceOptions | None = None,
+    require_runs: bool = True,
 ) -> AuditResult:
-    """Audit every run under ``paths``; raises ReadError only for a missing given path.
+    """Audit every run under ``paths``; raises ReadError only for a missing given path,
+    and :class:`NoRunsError` when a given path holds no run (unless ``require_runs`` is
+    false): nothing found is not success.
 
     ``verify`` also reads every run's image data in its worker and adds its
     ``verify/*`` finding (see :mod:`slicetime.pipelines.verify`). ``source`` says
     whether runs are checked against their DICOM series under ``sourcedata/``
-    (default: when that folder exists; see :mod:`slicetime.readers.source`)."""
+    (default: when that folder exists; see :mod:`slicetime.readers.source`). Findings
+    that follow from a root cause are folded into it
+    (:func:`slicetime.rules.fold_consequences`)."""
     walk_problems: list[Finding] = []
     targets: list[tuple[Path, Path]] = list(
         iter_runs(
@@ -203,6 +237,8 @@ def audit_paths(
             on_error=walk_problems.append,
         )
     )
+    if require_runs:
+        _check_every_path_has_runs(paths, targets)
     roots = sorted({str(root) for root, _ in targets}) or [str(find_root(p)) for p in paths]
     result = AuditResult(roots=roots)
     policies = _policies(sorted({root for root, _ in targets}), policy_file, walk_problems)
@@ -215,10 +251,19 @@ def audit_paths(
         executor=executor,
         jobs=jobs,
         progress=progress,
-        failed_of=_has_error,
+        failed_of=_not_processed,
     )
     result.dataset_findings.extend(walk_problems)
-    per_run, overall = check_dataset([r.record for r in result.runs])
+    exempt: dict[str, set[str]] = {}
+    for run in result.runs:
+        policy = policies.get(Path(run.record.root))
+        if policy is None:
+            continue
+        codes = dataset_codes_judged(policy, run.record)
+        for code in codes:
+            exempt.setdefault(code, set()).add(run.record.abs_path)
+        result.judged_by_policy += bool(codes)
+    per_run, overall = check_dataset([r.record for r in result.runs], exempt)
     for run in result.runs:
         extra = per_run.get(run.record.abs_path, [])
         policy = policies.get(Path(run.record.root))
@@ -228,6 +273,8 @@ def audit_paths(
             run.ignored.extend(outcome.ignored)
         else:
             run.findings.extend(extra)
+        if extra:
+            run.findings[:] = fold_consequences(run.findings)
     only = {p.file: p for p in policies.values() if p is not None}
     if len(only) == 1 and overall:
         outcome = apply_overrides_and_ignores(next(iter(only.values())), None, overall)
@@ -238,4 +285,13 @@ def audit_paths(
     return result
 
 
-__all__ = ["AuditResult", "ReadError", "RunResult", "audit_one", "audit_paths", "failed_run"]
+__all__ = [
+    "AuditResult",
+    "NoRunsError",
+    "ReadError",
+    "RunResult",
+    "audit_one",
+    "audit_paths",
+    "check_paths_hold_runs",
+    "failed_run",
+]

@@ -9,7 +9,12 @@ A file is a candidate run when its name ends in ``.nii`` or ``.nii.gz`` and
 * its own sidecar (same stem, ``.json``) has a top-level ``SliceTiming`` key,
   unless it sits in an ``anat`` or ``fmap`` folder (structural scans and field
   maps often carry ``SliceTiming`` but are not time series) or is a
-  single-band reference (``sbref``).
+  single-band reference (``sbref``); or
+* it is meant as a run but its name is not a valid BIDS run name
+  (:func:`~slicetime.readers.entities.looks_like_run`: any NIfTI in a ``func``,
+  ``perf`` or ``dwi`` folder, or with a time-series suffix, ``sbref`` or
+  ``m0scan`` as a word of its name, e.g. ``task-rest-eyes``, ``acq-1.5mm``,
+  ``_bold (copy)``), so the audit reports the name instead of dropping the run.
 
 Entries that *look* like runs by name but are broken symlinks (an annexed
 file without local content, a dangling link), symlink loops or folders are
@@ -35,7 +40,13 @@ from pathlib import Path
 
 from slicetime.model import Finding, Severity
 
-from .entities import IMAGE_EXTENSIONS, image_stem, parse_name
+from .entities import (
+    IMAGE_EXTENSIONS,
+    image_stem,
+    looks_like_run,
+    parse_name,
+    run_name_problem,
+)
 from .errors import ReadError, check_regular_file
 from .sidecar import load_sidecar
 
@@ -130,6 +141,12 @@ def _time_series_by_name(name: str) -> bool:
     return parsed is not None and parsed.suffix in TIME_SERIES_SUFFIXES
 
 
+def _misnamed_run(name: str, folder: str) -> bool:
+    """A NIfTI meant as a run whose name is not a valid BIDS run name: yielded so the
+    audit reports the name (``file/bad-run-name``) instead of dropping the run."""
+    return looks_like_run(name, folder) and run_name_problem(name) is not None
+
+
 def _has_slice_timing(folder: Path, name: str, listing: set[str]) -> bool:
     parsed = parse_name(name)
     if parsed is not None and parsed.suffix in _NOT_RUNS:
@@ -200,10 +217,10 @@ class _Walker:
                 is_dir = False  # a link loop
             if is_image_name(name):
                 if is_dir or not _is_regular(entry):
-                    if _time_series_by_name(name):
+                    if _time_series_by_name(name) or _misnamed_run(name, folder.name):
                         yield folder / name  # reading it reports what is wrong
                     continue
-                if _time_series_by_name(name):
+                if _time_series_by_name(name) or _misnamed_run(name, folder.name):
                     yield folder / name
                     continue
                 if names is None:

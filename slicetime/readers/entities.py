@@ -13,7 +13,15 @@ import re
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 
-__all__ = ["IMAGE_EXTENSIONS", "ParsedName", "image_stem", "parse_name"]
+__all__ = [
+    "IMAGE_EXTENSIONS",
+    "RUN_FOLDERS",
+    "ParsedName",
+    "image_stem",
+    "looks_like_run",
+    "parse_name",
+    "run_name_problem",
+]
 
 #: Extensions of NIfTI image files, longest first.
 IMAGE_EXTENSIONS: tuple[str, ...] = (".nii.gz", ".nii")
@@ -82,3 +90,63 @@ def image_stem(name: str) -> str:
             return name[: -len(ext)]
     stem, dot, _ = name.rpartition(".")
     return stem if dot and stem else name
+
+
+#: folders whose NIfTI files are time series (BIDS datatypes func, perf, dwi)
+RUN_FOLDERS: frozenset[str] = frozenset({"func", "perf", "dwi"})
+#: a time-series suffix (or a single-band reference) as a word of a name
+_SERIES_WORD = re.compile(
+    r"(?:^|[^A-Za-z0-9])(?:bold|cbv|phase|asl|dwi|sbref|m0scan)(?:[^A-Za-z0-9]|$)", re.IGNORECASE
+)
+_ALNUM = re.compile(r"[A-Za-z0-9]+\Z")
+
+
+def looks_like_run(name: str, folder: str) -> bool:
+    """True for a NIfTI name that is meant as a functional run: it sits in a ``func``,
+    ``perf`` or ``dwi`` folder, or a word of its name is a time-series suffix (``bold``,
+    ``cbv``, ``phase``, ``asl``, ``dwi``) or ``sbref``/``m0scan`` (``_bold (copy)``,
+    ``task-rest-eyes_bold``). Hidden names (``.``, e.g. ``._`` metadata forks) never are.
+    Whether the name is valid is :func:`run_name_problem`."""
+    if name.startswith("."):
+        return False
+    stem = image_stem(name)
+    if stem == name:  # not a NIfTI name
+        return False
+    return folder in RUN_FOLDERS or _SERIES_WORD.search(stem) is not None
+
+
+def run_name_problem(name: str) -> str | None:
+    """Why ``name`` is not a valid BIDS name for a NIfTI run, or None when it is.
+
+    A valid name is ``sub-<label>[_<key>-<label>...]_<suffix>`` plus ``.nii`` or
+    ``.nii.gz``; keys, labels and the suffix are letters and digits, a key appears
+    once (BIDS file naming, from memory).
+    """
+    stem = image_stem(name)
+    if stem == name:
+        return "not a NIfTI name (.nii or .nii.gz)"
+    extension = name[len(stem):]
+    if extension not in IMAGE_EXTENSIONS:
+        return f"the extension {extension!r} is not .nii or .nii.gz"
+    if "." in stem:
+        part = next(p for p in stem.split("_") if "." in p)
+        return f"{part!r} holds a '.': labels are letters and digits only, and a name has " \
+            "one extension"
+    *pairs, suffix = stem.split("_")
+    seen: set[str] = set()
+    for pair in pairs:
+        key, dash, value = pair.partition("-")
+        if not dash:
+            return f"{pair!r} is not a key-value entity (key-label)"
+        if "-" in value:
+            return f"{pair!r} holds more than one '-': a label is letters and digits only"
+        if not _ALNUM.match(key) or not _ALNUM.match(value):
+            return f"{pair!r}: keys and labels are letters and digits only"
+        if key in seen:
+            return f"the entity {key!r} appears twice"
+        seen.add(key)
+    if not _ALNUM.match(suffix):
+        return f"the suffix {suffix!r} is not letters and digits only"
+    if not pairs or not pairs[0].startswith("sub-"):
+        return "a run's name starts with sub-<label>"
+    return None

@@ -17,8 +17,7 @@ from slicetime.readers.entities import parse_name
 from slicetime.readers.errors import ReadError
 from slicetime.readers.inheritance import SidecarIndex, relative_posix
 from slicetime.readers.nifti import read_header
-from slicetime.schemes.infer import infer_scheme
-from slicetime.schemes.resolve import resolve_schedule
+from slicetime.schemes.resolve import infer_run_scheme, resolve_schedule
 
 #: timing fields with a dedicated rule; their type problems are reported there
 _DEDICATED_FIELDS = frozenset({"SliceTiming", "SliceEncodingDirection"})
@@ -67,7 +66,8 @@ def assemble_record(
     if header is None:
         return RunRecord(**common)
     timing = resolve_schedule(metadata, sources, header, display)
-    scheme = infer_scheme(timing.schedule.times) if timing.schedule is not None else None
+    scheme = (infer_run_scheme(timing.schedule, timing.timing_origin)
+              if timing.schedule is not None else None)
     return RunRecord(
         **common,
         schedule=timing.schedule,

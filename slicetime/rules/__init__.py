@@ -7,6 +7,7 @@ from slicetime.rules import (  # noqa: F401  (registration)
     batch,
     dataset,
     header,
+    naming,
     policy,
     reading,
     source,
@@ -21,6 +22,8 @@ from slicetime.rules.registry import (
     check_dataset,
     check_run,
     explain,
+    fold_consequences,
 )
 
-__all__ = ["RULES", "DatasetHit", "Hit", "Rule", "check_dataset", "check_run", "explain"]
+__all__ = ["RULES", "DatasetHit", "Hit", "Rule", "check_dataset", "check_run", "explain",
+           "fold_consequences"]

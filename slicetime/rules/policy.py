@@ -81,6 +81,7 @@ __all__ = [
     "apply_overrides_and_ignores",
     "apply_policy",
     "check_protocol",
+    "dataset_codes_judged",
     "select_protocol",
 ]
 
@@ -247,6 +248,28 @@ def select_protocol(policy: Policy, record: RunRecord) -> ProtocolChoice:
         for p in best[1:]
     )
     return ProtocolChoice(first) if same else ProtocolChoice(None, tuple(best))
+
+
+#: which dataset consensus each stated protocol value takes over
+_JUDGED_BY = (
+    ("repetition_time", "dataset/outlier-tr"),
+    ("slices", "dataset/outlier-slices"),
+    ("scheme", "dataset/outlier-scheme"),
+    ("multiband_factor", "dataset/outlier-scheme"),
+)
+
+
+def dataset_codes_judged(policy: Policy, record: RunRecord) -> frozenset[str]:
+    """The dataset consensus codes that do not apply to ``record`` because the protocol
+    the policy selects for it states that value: the run is judged by the protocol
+    (``policy/*``), not by the majority of its task and acquisition, and it does not
+    count towards that majority either. A stated multiband factor takes over the scheme
+    consensus too (the scheme label includes the factor). A run whose protocols tie is
+    judged by none of them."""
+    protocol = select_protocol(policy, record).protocol
+    if protocol is None:
+        return frozenset()
+    return frozenset(code for key, code in _JUDGED_BY if getattr(protocol, key) is not None)
 
 
 def check_protocol(policy: Policy, record: RunRecord) -> list[Finding]:

@@ -12,7 +12,7 @@ explain`` covers every code a report can contain.
 from __future__ import annotations
 
 import dataclasses
-from collections.abc import Callable, Iterable, Mapping, Sequence
+from collections.abc import Callable, Iterable, Mapping, Sequence, Set
 from dataclasses import dataclass
 from typing import Any, Literal
 
@@ -57,6 +57,9 @@ class Rule:
     check: RunCheck | DatasetCheck | None = None
     #: the standard's check this rule covers, when one exists (for docs and tests)
     standard: str | None = None
+    #: codes that follow from this rule's finding: on the same run and field they are
+    #: folded into it (listed in its evidence) instead of reported again
+    subsumes: frozenset[str] = frozenset()
 
 
 RULES: dict[str, Rule] = {}
@@ -83,11 +86,14 @@ def run_rule(
     rationale: str,
     fix: str | None = None,
     standard: str | None = None,
+    subsumes: Iterable[str] = (),
 ) -> Callable[[RunCheck], RunCheck]:
-    """Register a check over one run."""
+    """Register a check over one run. ``subsumes``: codes that follow from this one's
+    finding on the same run and field (see :func:`fold_consequences`)."""
 
     def decorate(check: RunCheck) -> RunCheck:
-        _register(Rule(code, title, severity, rationale, fix, "run", check, standard))
+        _register(Rule(code, title, severity, rationale, fix, "run", check, standard,
+                       frozenset(subsumes)))
         return check
 
     return decorate
@@ -145,15 +151,24 @@ def check_run(record: RunRecord) -> list[Finding]:
     return findings
 
 
-def check_dataset(records: Sequence[RunRecord]) -> tuple[dict[str, list[Finding]], list[Finding]]:
-    """Dataset rules: (findings per run ``abs_path``, findings about the whole dataset)."""
+def check_dataset(
+    records: Sequence[RunRecord], exempt: Mapping[str, Set[str]] | None = None
+) -> tuple[dict[str, list[Finding]], list[Finding]]:
+    """Dataset rules: (findings per run ``abs_path``, findings about the whole dataset).
+
+    ``exempt`` maps a dataset rule's code to the runs (``abs_path``) that rule must
+    leave out: neither counted nor reported (e.g. runs the lab policy judges for that
+    value, so the majority of the others does not judge them).
+    """
     per_run: dict[str, list[Finding]] = {}
     overall: list[Finding] = []
     by_path = {r.abs_path: r for r in records}
     for rule in RULES.values():
         if rule.scope != "dataset" or rule.check is None:
             continue
-        for dhit in rule.check(records):  # type: ignore[arg-type]
+        left_out = (exempt or {}).get(rule.code)
+        considered = [r for r in records if r.abs_path not in left_out] if left_out else records
+        for dhit in rule.check(considered):  # type: ignore[arg-type]
             record = by_path.get(dhit.run) if dhit.run else None
             finding = to_finding(rule, record, dhit.hit)
             if dhit.run is None:
@@ -161,6 +176,50 @@ def check_dataset(records: Sequence[RunRecord]) -> tuple[dict[str, list[Finding]
             else:
                 per_run.setdefault(dhit.run, []).append(finding)
     return per_run, overall
+
+
+def fold_consequences(findings: Sequence[Finding]) -> list[Finding]:
+    """Fold findings that follow from a root cause into it.
+
+    A finding whose rule declares ``subsumes`` absorbs every other finding of the
+    same run with one of those codes on the same field: they leave the list and are
+    listed under ``evidence["folded"]`` of the root (code, severity, message), so one
+    cause is reported once. Order is kept; a folded finding never absorbs others.
+    """
+    roots = [
+        (i, RULES[f.code].subsumes) for i, f in enumerate(findings)
+        if f.code in RULES and RULES[f.code].subsumes
+    ]
+    if not roots:
+        return list(findings)
+    folded_into: dict[int, list[Finding]] = {}
+    taken: set[int] = set()
+    for root_index, codes in roots:
+        if root_index in taken:
+            continue
+        root = findings[root_index]
+        for i, other in enumerate(findings):
+            if i == root_index or i in taken or other.code not in codes:
+                continue
+            if other.field == root.field:
+                taken.add(i)
+                folded_into.setdefault(root_index, []).append(other)
+    result: list[Finding] = []
+    for i, finding in enumerate(findings):
+        if i in taken:
+            continue
+        absorbed = folded_into.get(i)
+        if absorbed:
+            before = list(finding.evidence.get("folded", []))
+            finding = dataclasses.replace(finding, evidence={
+                **finding.evidence,
+                "folded": before + [
+                    {"code": f.code, "severity": f.severity.value, "message": f.message}
+                    for f in absorbed
+                ],
+            })
+        result.append(finding)
+    return result
 
 
 def explain(code: str) -> str:
@@ -176,4 +235,7 @@ def explain(code: str) -> str:
         lines += ["", f"what to do: {rule.fix.strip()}"]
     if rule.standard:
         lines += ["", f"standard: {rule.standard}"]
+    if rule.subsumes:
+        lines += ["", "folds in (consequences on the same run and field, listed in its "
+                  "evidence instead of reported again): " + ", ".join(sorted(rule.subsumes))]
     return "\n".join(lines)

@@ -7,7 +7,12 @@ from typing import Any
 
 from slicetime.model import RunRecord, Severity
 from slicetime.rules.registry import Hit, run_rule
-from slicetime.schemes.resolve import is_number, positive_number
+from slicetime.schemes.resolve import (
+    is_number,
+    looks_like_milliseconds,
+    positive_number,
+    timing_window,
+)
 
 E, W, N = Severity.ERROR, Severity.WARNING, Severity.NOTE
 
@@ -84,20 +89,9 @@ _problem_rule(
 
 def _window(record: RunRecord) -> tuple[float | None, str]:
     """The acquisition window that every slice time must fall inside, and its name."""
-    schedule = record.schedule
-    if schedule is None:
+    if record.schedule is None:
         return None, ""
-    if schedule.delay_time is not None and schedule.repetition_time is not None:
-        return schedule.repetition_time - schedule.delay_time, "RepetitionTime - DelayTime"
-    if schedule.acquisition_duration is not None:
-        return schedule.acquisition_duration, "FrameAcquisitionDuration"
-    if schedule.repetition_time is not None:
-        return schedule.repetition_time, "RepetitionTime"
-    if schedule.volume_times and len(schedule.volume_times) > 1:
-        vt = schedule.volume_times
-        gaps = [vt[i + 1] - vt[i] for i in range(len(vt) - 1)]
-        return min(gaps), "the shortest VolumeTiming interval"
-    return None, ""
+    return timing_window(record.schedule)
 
 
 def _sidecar_times(record: RunRecord) -> list[float] | None:
@@ -124,6 +118,8 @@ def _sidecar_times(record: RunRecord) -> list[float] | None:
 def missing(record: RunRecord) -> Iterator[Hit]:
     if record.suffix not in TIMED_SUFFIXES or record.header is None:
         return
+    if record.metadata.get("SliceTimingCorrected") is True:
+        return  # already aligned to one reference time: no slice times expected
     if "SliceTiming" in record.metadata or record.schedule is not None:
         return
     yield Hit(
@@ -133,6 +129,41 @@ def missing(record: RunRecord) -> Iterator[Hit]:
          "sidecars": list(record.sidecar_chain)},
         file=record.sidecar_chain[-1] if record.sidecar_chain else record.path,
     )
+
+
+@run_rule(
+    "timing/corrected-still-timed",
+    title="a slice-time corrected run still claims per-slice times",
+    severity=E,
+    rationale=(
+        "SliceTimingCorrected: true says every slice was already aligned to one reference time "
+        "(StartTime). A run that still gives SliceTiming (or header slice_code/slice_duration) "
+        "invites the next processing step to correct it again, shifting every slice a second "
+        "time."
+    ),
+    fix="Remove SliceTiming from the corrected run's sidecar (and clear slice_code and "
+    "slice_duration in its header); keep the original times in a provenance record instead.",
+)
+def corrected_still_timed(record: RunRecord) -> Iterator[Hit]:
+    if record.metadata.get("SliceTimingCorrected") is not True:
+        return
+    if "SliceTiming" in record.metadata:
+        yield Hit(
+            "SliceTimingCorrected is true but SliceTiming is still given: a later step would "
+            "correct this run twice",
+            "SliceTiming",
+            {"SliceTimingCorrected_from": record.metadata_sources.get("SliceTimingCorrected")},
+        )
+    elif record.timing_origin == "header" and record.header is not None:
+        yield Hit(
+            "SliceTimingCorrected is true but the header still encodes slice timing "
+            f"(slice_code {record.header.slice_code}, slice_duration "
+            f"{record.header.slice_duration} s): a later step would correct this run twice",
+            "slice_code",
+            {"slice_code": record.header.slice_code,
+             "slice_duration": record.header.slice_duration},
+            file=record.path,
+        )
 
 
 @run_rule(
@@ -178,9 +209,15 @@ def negative(record: RunRecord) -> Iterator[Hit]:
 
 
 def _looks_like_ms(times: list[float], window: float) -> bool:
-    # in milliseconds, the largest time is hundreds of times the window in seconds
-    top = max(times)
-    return top >= 50 * window and top / 1000.0 < window
+    return looks_like_milliseconds(times, window)
+
+
+#: what follows from SliceTiming in milliseconds, on the same field: folded into it
+_MS_CONSEQUENCES = (
+    "timing/exceeds-tr", "timing/exceeds-acquisition", "timing/uneven", "timing/duplicates",
+    "scheme/unrecognised-order", "inherit/timing-override", "dataset/outlier-scheme",
+    "dataset/echo-mismatch", "policy/scheme-mismatch", "policy/multiband-mismatch",
+)
 
 
 @run_rule(
@@ -193,6 +230,7 @@ def _looks_like_ms(times: list[float], window: float) -> bool:
     ),
     fix="Divide every SliceTiming entry by 1000 (slicetime fix does this).",
     standard="BIDS rules.checks.func.SliceTimingGreaterThanRepetitionTime",
+    subsumes=_MS_CONSEQUENCES,
 )
 def units_ms(record: RunRecord) -> Iterator[Hit]:
     times = _sidecar_times(record)
@@ -200,10 +238,12 @@ def units_ms(record: RunRecord) -> Iterator[Hit]:
     if times and window and _looks_like_ms(times, window):
         yield Hit(
             f"SliceTiming goes up to {max(times):g}, above {name} ({window:g} s); divided by "
-            f"1000 it fits",
+            f"1000 it fits"
+            + (f" ({record.scheme.label} in seconds)" if record.scheme is not None else ""),
             "SliceTiming",
             {"max": max(times), "window": window, "window_from": name,
-             "as_seconds_max": max(times) / 1000.0},
+             "as_seconds_max": max(times) / 1000.0,
+             "scheme_in_seconds": record.scheme.label if record.scheme is not None else None},
         )
 
 
@@ -565,6 +605,7 @@ def deprecated_acq(record: RunRecord) -> Iterator[Hit]:
     "time and correction would be wrong by a factor of 1000.)",
     fix="Divide RepetitionTime by 1000.",
     standard="BIDS rules.checks.func.RepetitionTimeGreaterThan",
+    subsumes=("dataset/outlier-tr", "policy/tr-mismatch", "header/tr-mismatch"),
 )
 def tr_units(record: RunRecord) -> Iterator[Hit]:
     tr = positive_number(record.metadata.get("RepetitionTime"))

@@ -9,6 +9,7 @@ an error" never disagree.
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
@@ -19,6 +20,7 @@ from slicetime.model import (
     Axis,
     Direction,
     HeaderInfo,
+    Scheme,
     SliceSchedule,
     Source,
     TimingProblem,
@@ -281,3 +283,59 @@ def resolve_schedule(
         return build([float(t) for t in raw if t is not None], "header", header_axis, "+")
 
     return ScheduleResolution(None, None, (), axis_length(axis))
+
+
+# --------------------------------------------------------------------------- units
+
+#: a list in milliseconds has its largest value at least this many times the window
+#: in seconds (a protocol's times in seconds never exceed the window)
+MS_FACTOR_MIN = 50.0
+
+
+def timing_window(schedule: SliceSchedule) -> tuple[float | None, str]:
+    """The acquisition window every slice time must fall inside, and where it comes from."""
+    if schedule.delay_time is not None and schedule.repetition_time is not None:
+        return schedule.repetition_time - schedule.delay_time, "RepetitionTime - DelayTime"
+    if schedule.acquisition_duration is not None:
+        return schedule.acquisition_duration, "FrameAcquisitionDuration"
+    if schedule.repetition_time is not None:
+        return schedule.repetition_time, "RepetitionTime"
+    if schedule.volume_times and len(schedule.volume_times) > 1:
+        vt = schedule.volume_times
+        gaps = [vt[i + 1] - vt[i] for i in range(len(vt) - 1)]
+        return min(gaps), "the shortest VolumeTiming interval"
+    return None, ""
+
+
+def looks_like_milliseconds(times: Sequence[float], window: float | None) -> bool:
+    """True when slice times were evidently written in milliseconds: the largest is
+    many times the window (in seconds) yet fits inside it once divided by 1000."""
+    if not times or window is None or window <= 0:
+        return False
+    top = max(times)
+    return top >= MS_FACTOR_MIN * window and top / 1000.0 < window
+
+
+def seconds_factor(schedule: SliceSchedule | None, timing_origin: str | None) -> float:
+    """1.0, or 0.001 when the sidecar's SliceTiming is in milliseconds (the schedule keeps
+    the values as written; inference and displays multiply by this factor)."""
+    if schedule is None or timing_origin != "sidecar":
+        return 1.0
+    window, _ = timing_window(schedule)
+    return 0.001 if looks_like_milliseconds(schedule.times, window) else 1.0
+
+
+def infer_run_scheme(schedule: SliceSchedule, timing_origin: str | None) -> Scheme:
+    """The scheme of a resolved schedule. Times written in milliseconds are read in
+    seconds first (the scheme's evidence says so: ``assumed_unit`` ``ms``), so the
+    order, the groups and the spacing describe the protocol and not the unit mistake."""
+    from slicetime.schemes.infer import infer_scheme
+
+    factor = seconds_factor(schedule, timing_origin)
+    if factor == 1.0:
+        return infer_scheme(schedule.times)
+    scheme = infer_scheme([t * factor for t in schedule.times])
+    note = "SliceTiming read as milliseconds (every value ÷ 1000)"
+    return dataclasses.replace(
+        scheme, evidence={**scheme.evidence, "assumed_unit": "ms", "unit_note": note}
+    )
