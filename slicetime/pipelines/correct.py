@@ -133,6 +133,9 @@ class CorrectOptions:
     threads: int = 1  # engine and gzip helper threads per run; 0: share the CPUs
     #: allow an --out folder made from other input datasets (their links are kept)
     mix_inputs: bool = False
+    #: when the batch began (time.time()): an output already in place that this batch
+    #: wrote (its worker was lost before it could say so) is reported as corrected
+    batch_started: float | None = None
 
     def settings(self, engine: Engine) -> dict[str, Any]:
         """What must match for an earlier output to be reused."""
@@ -629,6 +632,14 @@ def json_safe(value: Any) -> Any:
     return value
 
 
+_ESCAPED_BYTE = re.compile(r"\\x([89a-f][0-9a-f])")
+
+
+def _unescaped(text: str) -> str:
+    """The file name behind a :func:`json_safe` text (``\\xNN`` back to its byte)."""
+    return _ESCAPED_BYTE.sub(lambda m: chr(0xDC00 + int(m.group(1), 16)), text)
+
+
 def _write_json_atomic(path: Path, content: Any) -> None:
     tmp = _temp_path(path)
     content = json_safe(content)
@@ -818,7 +829,10 @@ def _correct(
     if sidecar_out.exists() and image_out.exists():
         inputs = _hash_inputs(record, None)
         if _up_to_date(image_out, sidecar_out, settings, inputs):
-            outcome.status = "up-to-date"
+            since = options.batch_started
+            outcome.status = (
+                "corrected" if since is not None and _mtime(image_out) >= since else "up-to-date"
+            )
             outcome.provenance = _provenance_entry(sidecar_out, rel_out.as_posix())
             return forced
 
@@ -918,6 +932,13 @@ def _correct(
         with contextlib.suppress(FileNotFoundError):
             os.unlink(tmp_image)
     return forced
+
+
+def _mtime(path: Path) -> float:
+    try:
+        return path.stat().st_mtime
+    except OSError:
+        return 0.0
 
 
 def _commit(tmp_image: Path, image_out: Path, sidecar_out: Path, sidecar: dict[str, Any]) -> None:
@@ -1111,8 +1132,8 @@ def _write_provenance(out: Path, outcomes: Sequence[RunOutcome]) -> None:
         if entry is not None:
             runs[key] = entry
     for key in list(runs):
-        image, sidecar = _output_files(out, key)
-        if not (image.is_file() and sidecar.is_file()):
+        if not any(image.is_file() and sidecar.is_file()
+                   for image, sidecar in (_output_files(out, k) for k in {key, _unescaped(key)})):
             del runs[key]
     content = {
         "Tool": {"Name": "slicetime", "Version": __version__},
@@ -1203,10 +1224,11 @@ def correct_paths(
         _write_description(options.out, roots, links, options)
     items = [(run, names[run.record.root]) for run in audit.runs
              if run.record.abs_path not in clashes]
+    started = time.time()
+    options = dataclasses.replace(options, batch_started=started)
     if options.threads <= 0:
         options = dataclasses.replace(options, threads=_auto_threads(executor, jobs, len(items)))
     job = _ChunkJob(options)
-    started = time.time()
     try:
         done = map_chunks(
             job,
@@ -1264,7 +1286,7 @@ def _found_on_disk(
 
     def fresh(path: Path) -> bool:
         try:
-            return path.stat().st_mtime >= since - 1.0
+            return path.stat().st_mtime >= since - 0.05
         except OSError:
             return False
 
@@ -1374,7 +1396,7 @@ def _finish(
         for name in ("dataset_description.json", PROVENANCE_FILE):
             with contextlib.suppress(FileNotFoundError):
                 os.unlink(options.out / name)
-    _prune_empty_folders(options.out, result.runs, remove_out=created_out)
+    _prune_empty_folders(options.out, result.runs, options.desc, remove_out=created_out)
 
 
 def _lost_run(item: tuple[RunResult, str], why: str) -> RunOutcome:
@@ -1382,13 +1404,15 @@ def _lost_run(item: tuple[RunResult, str], why: str) -> RunOutcome:
     return RunOutcome(record.path, record.root, "failed", reason=f"{record.path}: {why}")
 
 
-def _prune_empty_folders(out: Path, runs: Sequence[RunOutcome], *, remove_out: bool) -> None:
+def _prune_empty_folders(
+    out: Path, runs: Sequence[RunOutcome], desc: str, *, remove_out: bool
+) -> None:
     """Remove the folders made for runs that produced nothing, so a failed batch
     leaves nothing behind (and ``out`` itself when this batch created it)."""
     for run in runs:
         if run.ok:
             continue
-        target = run.output or run.removed
+        target = output_path(run.path, desc)
         if target is None:
             continue
         folder = (out / target).parent
