@@ -289,6 +289,12 @@ class Budget:
 _ENGINE_COPIES = 14
 #: voxels resampled together: small enough that a block's copies stay in cache
 BLOCK_VOXELS = 256
+#: gzip helper buffers of a compressed run: a base plus this much per helper thread
+#: (measured with benchmarks/bench_memory_cap.py: about 4 MiB with 2 threads)
+_CODEC_BASE = 2 << 20
+_CODEC_PER_THREAD = 1 << 20
+#: thread stacks and small temporaries of any run (measured: 1 to 3 MiB)
+_RUN_OVERHEAD = 4 << 20
 
 
 def plan_budget(
@@ -299,13 +305,17 @@ def plan_budget(
     cap: int | None,
     shown: str,
     threads: int = 1,
+    compressed: bool = False,
 ) -> Budget:
     """Batch sizes for a run, from the memory cap (None: no cap, everything in memory).
 
+    The cap bounds the run's working memory: the process's peak resident memory
+    minus what it held before the run (the interpreter and its libraries).
     Accounted: the slice-major buffer (unless it goes to a scratch file), a batch of
-    stored volumes plus its float32 copy on the way in and out, and per engine
-    thread one slice (twice when it comes from a scratch file) and the engine's
-    temporaries for one block of voxels.
+    stored volumes plus its float32 copies on the way in and out, the gzip helper
+    buffers of a compressed run, and per engine thread one slice (twice when it
+    comes from a scratch file) and the engine's temporaries for one block of voxels.
+    A run fits in memory only when all of it fits under the cap.
     """
     volume_voxels = n_slices * plane
     per_volume = volume_voxels * (stored_itemsize + 8)
@@ -317,6 +327,9 @@ def plan_budget(
         return Budget(False, batch, BLOCK_VOXELS, threads)
     buffer_bytes = slice_bytes * n_slices
     engine_bytes = threads * block_bytes
+    codec = _CODEC_BASE + _CODEC_PER_THREAD * max(1, threads) if compressed else 0
+    cap_all = cap
+    cap = cap - codec - _RUN_OVERHEAD
     # batches as small as without a cap (16 MiB), and at most a quarter of the cap
     batch = max(1, min(n_volumes, (16 << 20) // per_volume, cap // (4 * per_volume)))
     if buffer_bytes + max(engine_bytes, batch * per_volume) <= cap:  # fits: no scratch file
@@ -325,8 +338,9 @@ def plan_budget(
     need = max(2 * slice_bytes + smallest_block * per_voxel, per_volume)
     if cap < need:
         raise CorrectionError(
-            f"{shown}: --max-memory {size_text(cap)} is too small for this run; one slice's "
-            f"series need about {size_text(need)}"
+            f"{shown}: --max-memory {size_text(cap_all)} is too small for this run; one "
+            f"slice's series and the helper buffers need about "
+            f"{size_text(need + codec + _RUN_OVERHEAD)}"
         )
     rows = max(smallest_block, min(BLOCK_VOXELS, (cap - 2 * slice_bytes) // per_voxel))
     # each engine thread holds its slice twice (read, written back) and one block
@@ -847,6 +861,7 @@ def _correct(
         options.max_memory,
         record.path,
         threads=max(1, options.threads),
+        compressed=header.compressed,
     )
     scale = scaling(header)
     tmp_image = _temp_path(image_out)
