@@ -312,11 +312,14 @@ def test_keep_dtype_rounds_and_warns_about_clipping(dataset: Path, tmp_path: Pat
 
 
 def test_memory_cap_gives_the_same_output(dataset: Path, tmp_path: Path) -> None:
-    build_run(dataset, REL, interleaved(16), shape=(16, 16, 16, 80))
+    build_run(dataset, REL, interleaved(16), shape=(32, 32, 16, 120))
     plain, capped = tmp_path / "plain", tmp_path / "capped"
     assert run_cli("correct", dataset, "--out", plain).exit_code == 0
-    # the float32 array is 1.25 MiB; 600 KiB forces the scratch-file path
-    result = run_cli("correct", dataset, "--out", capped, "--max-memory", "600K")
+    # the float32 array is 7.5 MiB; with the helper buffers 10 MiB forces the scratch file
+    budget = correct_module.plan_budget(16, 120, 32 * 32, 4, 10 << 20, REL, threads=2,
+                                        compressed=True)
+    assert budget.on_disk
+    result = run_cli("correct", dataset, "--out", capped, "--max-memory", "10M")
     assert result.exit_code == 0, result.output
     a = np.asarray(nib.load(output_of(plain, REL)).dataobj)
     b = np.asarray(nib.load(output_of(capped, REL)).dataobj)

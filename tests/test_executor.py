@@ -170,6 +170,20 @@ def test_a_run_whose_worker_dies_twice_becomes_a_result(tmp_path: Path) -> None:
     assert executor.stats.lost_items == 1
 
 
+def test_only_the_item_that_kills_its_worker_is_lost(tmp_path: Path) -> None:
+    # the other item in flight when the worker died is rerun, never blamed (common
+    # practice (no source): a crash is attributed to the work that reproduces it alone)
+    items = [str(tmp_path / f"item{i}") for i in range(8)]
+    Path(items[4]).write_text("always")
+    for chunk_size in (1, 3):
+        executor = ProcessExecutor(2)
+        results = executor.map_chunks(crash_once, items, lost=lost_item, chunk_size=chunk_size)
+        expected = [f"done item{i}" for i in range(8)]
+        expected[4] = "lost item4: its worker process stopped unexpectedly twice"
+        assert results == expected, chunk_size
+        assert executor.stats.lost_items == 1
+
+
 def test_a_bug_on_one_run_becomes_a_finding(tmp_path: Path, monkeypatch: pytest.MonkeyPatch):
     root = make_dataset(tmp_path / "ds", n_subjects=3)
     real = audit_module.audit_one

@@ -29,6 +29,67 @@ class PlanError(ValueError):
     """The run cannot be planned (no usable grid, bad reference for this run)."""
 
 
+class ImplausibleTiming(PlanError):
+    """The timing is physically impossible for an fMRI run: refused even with --force."""
+
+
+#: The physical plausibility gate, in one place (README, "Safety"). A functional run
+#: whose timing falls outside these bounds is refused even with ``--force``, because
+#: no judgement can make it usable: the values are almost always in the wrong unit.
+#: Seconds. A functional TR above 100 s is the threshold ``tr/units-ms`` already uses
+#: (common practice (no source): fMRI repetition times run from about 0.1 s for fast
+#: multiband or inverse imaging to a few tens of seconds for sparse designs).
+MIN_REPETITION_TIME = 0.05
+MAX_REPETITION_TIME = 100.0
+
+
+def check_plausible(schedule: SliceSchedule) -> None:
+    """Raise :class:`ImplausibleTiming` when a value of the schedule is physically
+    impossible: a repetition time (or spacing of ``VolumeTiming``) outside
+    [``MIN_REPETITION_TIME``, ``MAX_REPETITION_TIME``], a non-finite or negative
+    time, ``DelayTime`` or ``AcquisitionDuration`` beyond ``MAX_REPETITION_TIME``,
+    or slice times outside the acquisition window (which would move the
+    output's ``StartTime`` outside the volume)."""
+    low_tr, high_tr = MIN_REPETITION_TIME, MAX_REPETITION_TIME
+    bounds = f"{low_tr:g} to {high_tr:g} s"
+    tr = schedule.repetition_time
+    if tr is not None and not (math.isfinite(tr) and low_tr <= tr <= high_tr):
+        raise ImplausibleTiming(
+            f"RepetitionTime {tr:g} is outside the plausible {bounds} (milliseconds?), so "
+            "the run cannot be corrected even with --force"
+        )
+    if schedule.volume_times is not None:
+        onsets = np.asarray(schedule.volume_times, dtype=np.float64)
+        steps = np.diff(onsets)
+        if not np.all(np.isfinite(onsets)) or (onsets.size and onsets.min() < 0):
+            raise ImplausibleTiming("VolumeTiming holds a negative or non-finite time")
+        if steps.size and (steps.max() > high_tr or steps.min() < low_tr):
+            raise ImplausibleTiming(
+                f"VolumeTiming spaces volumes {steps.min():g} to {steps.max():g} s apart, "
+                f"outside the plausible {bounds} (milliseconds?), so the run cannot be "
+                "corrected even with --force"
+            )
+    for name, value in (("DelayTime", schedule.delay_time),
+                        ("AcquisitionDuration", schedule.acquisition_duration)):
+        if value is not None and not (math.isfinite(value) and 0.0 <= value <= high_tr):
+            raise ImplausibleTiming(
+                f"{name} {value:g} is outside the plausible 0 to {high_tr:g} s, so the run "
+                "cannot be corrected even with --force"
+            )
+    times = schedule.times
+    if times and not all(math.isfinite(t) for t in times):
+        raise ImplausibleTiming("SliceTiming holds a non-finite value")
+    window = schedule.acquisition_window
+    if times:
+        low, high = min(times), max(times)
+        limit = min(window, high_tr) if window is not None else high_tr
+        if low < -1e-6 or high > limit + 1e-6:
+            raise ImplausibleTiming(
+                f"slice times run from {low:g} to {high:g} s, outside the acquisition "
+                f"window of 0 to {limit:g} s, so they cannot be used even with --force"
+            )
+
+
 @dataclass(frozen=True)
 class ReferenceChoice:
     """How the reference time is chosen for each run.
@@ -154,14 +215,7 @@ def make_plan(
     """Plan the correction of a run with ``n_volumes`` volumes."""
     if n_volumes < 2:
         raise PlanError(f"the run has {n_volumes} volume(s); correction needs at least 2")
-    window = schedule.acquisition_window
-    if window is not None and schedule.times:
-        low, high = min(schedule.times), max(schedule.times)
-        if low < -1e-6 or high > window + 1e-6:
-            raise PlanError(
-                f"slice times run from {low:g} to {high:g} s, outside the acquisition "
-                f"window of 0 to {window:g} s, so they cannot be used even with --force"
-            )
+    check_plausible(schedule)
     reference = reference_time(choice, schedule)
     if schedule.volume_times is not None:
         onsets = tuple(float(t) for t in schedule.volume_times)
@@ -208,10 +262,14 @@ def _group(members: list[int], schedule: SliceSchedule, reference: float) -> Shi
 
 __all__ = [
     "DEFAULT_REFERENCE",
+    "MAX_REPETITION_TIME",
+    "MIN_REPETITION_TIME",
+    "ImplausibleTiming",
     "PlanError",
     "ReferenceChoice",
     "ResamplingPlan",
     "ShiftGroup",
+    "check_plausible",
     "make_plan",
     "reference_time",
 ]

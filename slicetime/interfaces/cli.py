@@ -453,6 +453,9 @@ def verify(files: tuple[Path, ...], fmt: str) -> None:
 @click.option("--include-derivatives", is_flag=True, help="Also correct runs in derivatives/.")
 @click.option("--include-sourcedata", is_flag=True, help="Also correct runs in sourcedata/.")
 @click.option("--include-hidden", is_flag=True, help="Also correct hidden folders and files.")
+@click.option("--mix-inputs", is_flag=True,
+              help="Allow an --out folder that already holds outputs made from other input "
+              "datasets (they are kept; a run whose output would replace one is refused).")
 @friendly
 def correct(
     paths: tuple[Path, ...],
@@ -470,6 +473,7 @@ def correct(
     include_derivatives: bool,
     include_sourcedata: bool,
     include_hidden: bool,
+    mix_inputs: bool,
 ) -> None:
     """Align every slice of the runs under PATHS to one reference time.
 
@@ -480,6 +484,7 @@ def correct(
     """
     from slicetime.engines.plan import ReferenceChoice
     from slicetime.interfaces.report_json import dumps
+    from slicetime.interfaces.safe_text import xml_safe
     from slicetime.interfaces.terminal import make_console, progress_reporter, render_correct
     from slicetime.pipelines.correct import (
         CorrectInterrupted,
@@ -499,7 +504,8 @@ def correct(
         except ValueError as exc:
             raise UserError(f"--max-memory: {exc}") from None
     options = CorrectOptions(out=out, method=method, reference=choice, desc=desc,
-                             keep_dtype=keep_dtype, force=force, max_memory=cap, threads=0)
+                             keep_dtype=keep_dtype, force=force, max_memory=cap, threads=0,
+                             mix_inputs=mix_inputs)
     with _executor(jobs, scheduler, light=False) as executor, \
             progress_reporter("correcting") as progress:
         try:
@@ -514,9 +520,10 @@ def correct(
                        "(rerun the same command to finish them)", err=True)
             sys.exit(130)
         except ValueError as exc:
-            raise UserError(str(exc)) from None
+            raise UserError(xml_safe(str(exc))) from None
         except OSError as exc:
-            raise UserError(f"{out}: cannot write the outputs ({exc.strerror or exc})") from None
+            raise UserError(xml_safe(f"{out}: cannot write the outputs ({exc.strerror or exc})")
+                            ) from None
     if fmt == "json":
         payload = {
             "tool": {"name": "slicetime", "version": __version__},

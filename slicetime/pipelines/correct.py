@@ -48,10 +48,12 @@ from slicetime.engines.interpolate import (
     prepare,
 )
 from slicetime.engines.plan import (
+    ImplausibleTiming,
     PlanError,
     ReferenceChoice,
     ResamplingPlan,
     ShiftGroup,
+    check_plausible,
     make_plan,
 )
 from slicetime.model import Finding, RunRecord, Severity
@@ -63,16 +65,19 @@ from slicetime.pipelines.executor import (
     available_cpus,
     map_chunks,
 )
+from slicetime.readers.dataset import find_root
 from slicetime.readers.entities import parse_name
 from slicetime.readers.errors import ReadError
 from slicetime.readers.nifti import size_text
 from slicetime.readers.volumes import (
     FLOAT32_CODE,
+    FLOAT32_MAX,
     VolumeReader,
     VolumeWriter,
     file_sha256,
     patched_prefix,
     scaling,
+    scaling_problem,
 )
 
 DEFAULT_DESC = "timealigned"
@@ -87,7 +92,21 @@ DROPPED_FIELDS = ("SliceTiming",)
 
 
 class CorrectionError(Exception):
-    """A run cannot be corrected; the message names the file and the reason."""
+    """A run cannot be corrected; the message names the file and the reason.
+
+    With a ``code`` (a registered ``correct/*`` code) the run is *refused* and the
+    code becomes one of its blocking findings; without one it *failed*."""
+
+    def __init__(self, message: str, code: str | None = None, field: str | None = None):
+        super().__init__(message)
+        self.code = code
+        self.field = field
+
+
+#: codes of the refusals ``correct`` makes itself (documented in rules/correction.py)
+CLASH_CODE = "correct/output-clash"
+IMPLAUSIBLE_CODE = "correct/implausible-timing"
+SCALING_CODE = "correct/scaling-range"
 
 
 def parse_size(text: str) -> int:
@@ -113,6 +132,11 @@ class CorrectOptions:
     force: bool = False
     max_memory: int | None = None
     threads: int = 1  # engine and gzip helper threads per run; 0: share the CPUs
+    #: allow an --out folder made from other input datasets (their links are kept)
+    mix_inputs: bool = False
+    #: when the batch began (time.time()): an output already in place that this batch
+    #: wrote (its worker was lost before it could say so) is reported as corrected
+    batch_started: float | None = None
 
     def settings(self, engine: Engine) -> dict[str, Any]:
         """What must match for an earlier output to be reused."""
@@ -140,6 +164,7 @@ class RunOutcome:
     blocking: list[Finding] = field(default_factory=list)
     seconds: float = 0.0
     provenance: dict[str, Any] | None = None
+    removed: str | None = None  # an earlier output of this run, removed as stale (rel. to out)
 
     @property
     def ok(self) -> bool:
@@ -154,6 +179,7 @@ class RunOutcome:
             "reference_time": self.reference,
             "warnings": self.warnings,
             "blocking_findings": [f.to_json() for f in self.blocking],
+            "removed_output": self.removed,
             "seconds": round(self.seconds, 3),
         }
 
@@ -201,13 +227,23 @@ def sidecar_name(image_name: str) -> str:
     return image_name + ".json"
 
 
-def check_output_location(out: Path, roots: Sequence[Path]) -> None:
+def check_output_location(
+    out: Path,
+    roots: Sequence[Path],
+    paths: Sequence[Path] = (),
+    *,
+    include_derivatives: bool = False,
+) -> None:
     """Refuse an output folder that would put files into an input dataset.
 
-    ``out`` may be outside every root, or inside a root's ``derivatives/``
-    folder (the BIDS convention); nowhere else inside a root.
+    ``out`` may be outside every root and every given path, or inside a root's
+    ``derivatives/`` folder (the BIDS convention); nowhere else inside a root or
+    a given path. ``roots`` are all the roots given or found, also those that
+    contribute no run. With ``include_derivatives`` even a root's derivatives
+    folder is refused when a given path holds it (the outputs would become inputs).
     """
     out_real = Path(os.path.realpath(out))
+    in_derivatives = False
     for root in roots:
         root_real = Path(os.path.realpath(root))
         if out_real == root_real:
@@ -219,8 +255,20 @@ def check_output_location(out: Path, roots: Sequence[Path]) -> None:
                     f"--out {out} is inside the input dataset {root}; use a folder outside "
                     f"it or under {root / 'derivatives'}"
                 )
+            in_derivatives = True
         if root_real.is_relative_to(out_real):
             raise ValueError(f"--out {out} contains the input dataset {root}")
+    for path in paths:
+        path_real = Path(os.path.realpath(path))
+        if out_real == path_real or path_real.is_relative_to(out_real):
+            raise ValueError(f"--out {out} is or contains the input path {path}")
+        if out_real.is_relative_to(path_real) and (include_derivatives or not in_derivatives):
+            raise ValueError(
+                f"--out {out} is inside the input path {path}"
+                + (" and --include-derivatives would read the outputs back as inputs"
+                   if in_derivatives else "")
+                + "; choose a folder outside it"
+            )
 
 
 # ---------------------------------------------------------------------------
@@ -242,6 +290,12 @@ class Budget:
 _ENGINE_COPIES = 14
 #: voxels resampled together: small enough that a block's copies stay in cache
 BLOCK_VOXELS = 256
+#: gzip helper buffers of a compressed run: a base plus this much per helper thread
+#: (measured with benchmarks/bench_memory_cap.py: about 4 MiB with 2 threads)
+_CODEC_BASE = 2 << 20
+_CODEC_PER_THREAD = 1 << 20
+#: thread stacks and small temporaries of any run (measured: 1 to 3 MiB)
+_RUN_OVERHEAD = 4 << 20
 
 
 def plan_budget(
@@ -252,13 +306,17 @@ def plan_budget(
     cap: int | None,
     shown: str,
     threads: int = 1,
+    compressed: bool = False,
 ) -> Budget:
     """Batch sizes for a run, from the memory cap (None: no cap, everything in memory).
 
+    The cap bounds the run's working memory: the process's peak resident memory
+    minus what it held before the run (the interpreter and its libraries).
     Accounted: the slice-major buffer (unless it goes to a scratch file), a batch of
-    stored volumes plus its float32 copy on the way in and out, and per engine
-    thread one slice (twice when it comes from a scratch file) and the engine's
-    temporaries for one block of voxels.
+    stored volumes plus its float32 copies on the way in and out, the gzip helper
+    buffers of a compressed run, and per engine thread one slice (twice when it
+    comes from a scratch file) and the engine's temporaries for one block of voxels.
+    A run fits in memory only when all of it fits under the cap.
     """
     volume_voxels = n_slices * plane
     per_volume = volume_voxels * (stored_itemsize + 8)
@@ -270,6 +328,9 @@ def plan_budget(
         return Budget(False, batch, BLOCK_VOXELS, threads)
     buffer_bytes = slice_bytes * n_slices
     engine_bytes = threads * block_bytes
+    codec = _CODEC_BASE + _CODEC_PER_THREAD * max(1, threads) if compressed else 0
+    cap_all = cap
+    cap = cap - codec - _RUN_OVERHEAD
     # batches as small as without a cap (16 MiB), and at most a quarter of the cap
     batch = max(1, min(n_volumes, (16 << 20) // per_volume, cap // (4 * per_volume)))
     if buffer_bytes + max(engine_bytes, batch * per_volume) <= cap:  # fits: no scratch file
@@ -278,8 +339,9 @@ def plan_budget(
     need = max(2 * slice_bytes + smallest_block * per_voxel, per_volume)
     if cap < need:
         raise CorrectionError(
-            f"{shown}: --max-memory {size_text(cap)} is too small for this run; one slice's "
-            f"series need about {size_text(need)}"
+            f"{shown}: --max-memory {size_text(cap_all)} is too small for this run; one "
+            f"slice's series and the helper buffers need about "
+            f"{size_text(need + codec + _RUN_OVERHEAD)}"
         )
     rows = max(smallest_block, min(BLOCK_VOXELS, (cap - 2 * slice_bytes) // per_voxel))
     # each engine thread holds its slice twice (read, written back) and one block
@@ -379,13 +441,36 @@ def _read_into(fd: int, target: np.ndarray, offset: int) -> None:
 def _store_scaled(
     target: np.ndarray, block: np.ndarray, scale: tuple[float, float] | None
 ) -> None:
-    """``target[...] = block * slope + inter`` in float32, without a temporary."""
-    np.copyto(target, block, casting="unsafe")
-    if scale is not None:
-        slope, inter = scale
-        target *= np.float32(slope)
-        if inter:
-            target += np.float32(inter)
+    """``target[...] = block * slope + inter`` in float32, without a temporary.
+
+    Raises a refusal (``correct/scaling-range``) when a finite stored value becomes
+    inf or nan on the way: float64 voxels beyond the float32 range, or a scaling
+    that takes stored values beyond it. The output never holds such a value silently.
+    """
+    wide = block.dtype.kind == "f" and block.dtype.itemsize > 4
+    with np.errstate(over="ignore", invalid="ignore"):
+        np.copyto(target, block, casting="unsafe")
+        if scale is not None:
+            slope, inter = scale
+            target *= np.float32(slope)
+            if inter:
+                target += np.float32(inter)
+        if scale is None and not wide:
+            return
+        bad = ~np.isfinite(target)
+        if not bad.any():
+            return
+        if block.dtype.kind == "f":
+            bad &= np.isfinite(block)
+        count = int(np.count_nonzero(bad))
+    if count:
+        how = (f"scl_slope {scale[0]:g} and scl_inter {scale[1]:g} take" if scale is not None
+               else "the stored float64 values include")
+        raise CorrectionError(
+            f"{how} {count} value(s) beyond the float32 range (±{FLOAT32_MAX:.4g}); the "
+            "output would hold inf or nan, so the run is refused",
+            code=SCALING_CODE, field="scl_slope" if scale is not None else "datatype",
+        )
 
 
 def _keep_freed_memory() -> None:
@@ -484,12 +569,14 @@ def _engine_pass(
 
 
 def _hash_inputs(record: RunRecord, image_sha: str | None) -> dict[str, Any]:
+    """The run's true inputs: its dataset (file URI), image and sidecars with their
+    SHA-256, as written in the output (text made JSON-safe)."""
     root = Path(record.root)
     sidecars = []
     for rel in record.sidecar_chain:
         sidecars.append({"Path": rel, "SHA256": file_sha256(root / rel)})
     image = {"Path": record.path, "SHA256": image_sha or file_sha256(Path(record.abs_path))}
-    return {"Image": image, "Sidecars": sidecars}
+    return json_safe({"Dataset": dataset_uri(root), "Image": image, "Sidecars": sidecars})
 
 
 def _up_to_date(
@@ -514,8 +601,40 @@ def _temp_path(final: Path) -> Path:
     return final.with_name(f"{TEMP_PREFIX}{os.getpid()}-{final.name}")
 
 
+_SURROGATE = re.compile("[\ud800-\udfff]")
+
+
+def _escape_surrogate(match: re.Match[str]) -> str:
+    code = ord(match.group(0))
+    if 0xDC80 <= code <= 0xDCFF:  # a file-name byte that is not UTF-8 (surrogateescape)
+        return f"\\x{code - 0xDC00:02x}"
+    return f"\\u{code:04x}"
+
+
+def json_safe(value: Any) -> Any:
+    """Every string of a JSON-like value encodable as UTF-8: a file-name byte that is
+    not UTF-8 (a lone surrogate in Python) becomes a visible ``\\xNN``, as the
+    reports write it (interfaces/safe_text.py; this layer cannot import it)."""
+    if isinstance(value, str):
+        return _SURROGATE.sub(_escape_surrogate, value) if _SURROGATE.search(value) else value
+    if isinstance(value, dict):
+        return {json_safe(k): json_safe(v) for k, v in value.items()}
+    if isinstance(value, list | tuple):
+        return [json_safe(v) for v in value]
+    return value
+
+
+_ESCAPED_BYTE = re.compile(r"\\x([89a-f][0-9a-f])")
+
+
+def _unescaped(text: str) -> str:
+    """The file name behind a :func:`json_safe` text (``\\xNN`` back to its byte)."""
+    return _ESCAPED_BYTE.sub(lambda m: chr(0xDC00 + int(m.group(1), 16)), text)
+
+
 def _write_json_atomic(path: Path, content: Any) -> None:
     tmp = _temp_path(path)
+    content = json_safe(content)
     try:
         with open(tmp, "x", encoding="utf-8") as fh:
             json.dump(content, fh, indent=2, ensure_ascii=False, allow_nan=False)
@@ -563,25 +682,46 @@ def _output_sidecar(
 def correct_run(
     run: RunResult, options: CorrectOptions, dataset_name: str = "raw"
 ) -> RunOutcome:
-    """Correct one audited run. Never raises for a bad run: returns an outcome."""
+    """Correct one audited run. Never raises for a bad run: returns an outcome
+    (Ctrl-C still propagates, after the run's temporary files are removed)."""
     started = time.perf_counter()
     record = run.record
     outcome = RunOutcome(record.path, record.root, "refused")
+    forced: list[str] = []
     try:
-        _correct(run, options, dataset_name, outcome)
+        forced = _correct(run, options, dataset_name, outcome)
     except (CorrectionError, PlanError, IrregularGridError, ReadError) as exc:
-        outcome.status = "refused" if isinstance(exc, PlanError | IrregularGridError) else "failed"
+        refused = isinstance(exc, PlanError | IrregularGridError) or (
+            isinstance(exc, CorrectionError) and exc.code is not None
+        )
+        outcome.status = "refused" if refused else "failed"
         message = exc.message if isinstance(exc, ReadError) else str(exc)
         outcome.reason = message if message.startswith(record.path) else f"{record.path}: {message}"
+        code = (IMPLAUSIBLE_CODE if isinstance(exc, ImplausibleTiming)
+                else exc.code if isinstance(exc, CorrectionError) else None)
+        if code is not None:
+            field_name = exc.field if isinstance(exc, CorrectionError) else None
+            outcome.blocking.append(
+                Finding(code, Severity.ERROR, message, file=record.path, field=field_name)
+            )
     except OSError as exc:
         outcome.status = "failed"
         outcome.reason = f"{record.path}: cannot write the output ({exc.strerror or exc})"
+    except Exception as exc:  # a bug on one run never stops the batch
+        outcome.status = "failed"
+        outcome.reason = f"{record.path}: internal error ({type(exc).__name__}: {exc})"
+    if outcome.ok:
+        # said once, and only of a run that was corrected (never of a refused one)
+        outcome.warnings[:0] = forced
     outcome.seconds = time.perf_counter() - started
     return outcome
 
 
 def _refusal(run: RunResult, errors: list[Finding], force: bool) -> tuple[str | None, list[str]]:
-    """Why the run is not corrected (None: it is), and the warnings when forced."""
+    """Why the run is not corrected (None: it is), and the warnings when forced.
+
+    The physical plausibility gate (:func:`check_plausible`) comes before
+    ``force``: no judgement makes an impossible timing usable."""
     record = run.record
     if record.header is None:
         first = errors[0].message if errors else "the image header cannot be read"
@@ -589,6 +729,17 @@ def _refusal(run: RunResult, errors: list[Finding], force: bool) -> tuple[str | 
     if record.schedule is None:
         why = "; ".join(p.message for p in record.timing_problems) or "no slice timing found"
         return f"{record.path}: no usable slice timing ({why})", []
+    try:
+        check_plausible(record.schedule)
+    except ImplausibleTiming as exc:
+        if not errors:
+            raise
+        codes = ", ".join(sorted({f.code for f in errors}))
+        raise ImplausibleTiming(f"{exc} (the audit found {codes}; see slicetime show)") from None
+    problem = scaling_problem(record.header)
+    if problem is not None:
+        raise CorrectionError(f"{problem}, so the run is refused", code=SCALING_CODE,
+                              field="scl_inter")
     if errors and not force:
         codes = ", ".join(sorted({f.code for f in errors}))
         return (
@@ -600,16 +751,30 @@ def _refusal(run: RunResult, errors: list[Finding], force: bool) -> tuple[str | 
     return None, [f"corrected despite audit error {f.code}: {f.message}" for f in errors]
 
 
+def output_path(record_path: str, desc: str) -> Path | None:
+    """The output image of a run, relative to ``--out`` (None: the input path cannot
+    be mirrored)."""
+    rel_in = Path(record_path)
+    if rel_in.is_absolute() or ".." in rel_in.parts or not rel_in.parts:
+        return None
+    return rel_in.with_name(output_name(rel_in.name, desc))
+
+
+def dataset_uri(root: str | Path) -> str:
+    """How outputs and ``DatasetLinks`` name an input dataset: its resolved file URI."""
+    return Path(os.path.realpath(root)).as_uri()
+
+
 def _correct(
     run: RunResult, options: CorrectOptions, dataset_name: str, outcome: RunOutcome
-) -> None:
+) -> list[str]:
+    """Correct the run into ``outcome``; return the warnings about forced audit errors."""
     record = run.record
     outcome.blocking = [f for f in run.findings if f.severity is Severity.ERROR]
-    reason, warnings = _refusal(run, outcome.blocking, options.force)
-    outcome.warnings.extend(warnings)
+    reason, forced = _refusal(run, outcome.blocking, options.force)
     if reason is not None:
         outcome.reason = reason
-        return
+        return []
     header, schedule = record.header, record.schedule
     assert header is not None and schedule is not None
     engine = get_engine(options.method)
@@ -634,10 +799,9 @@ def _correct(
             "spaced volumes (use --method cubic or --method linear)"
         )
 
-    rel_in = Path(record.path)
-    if rel_in.is_absolute() or ".." in rel_in.parts:
+    rel_out = output_path(record.path, options.desc)
+    if rel_out is None:
         raise CorrectionError("the run is outside its dataset root, so its path cannot be mirrored")
-    rel_out = rel_in.with_name(output_name(rel_in.name, options.desc))
     image_out = options.out / rel_out
     sidecar_out = image_out.with_name(sidecar_name(image_out.name))
     outcome.output = rel_out.as_posix()
@@ -647,11 +811,22 @@ def _correct(
         raise CorrectionError(
             f"{image_out.parent} leads outside --out (a symbolic link?); nothing was written"
         )
+    owner = _recorded_input(sidecar_out)
+    if owner is not None and owner != (dataset_uri(record.root), json_safe(record.path)):
+        raise CorrectionError(
+            f"{rel_out.as_posix()} in --out was written from {owner[1]} of {owner[0]}, not "
+            "from this run; it is kept and this run is not written",
+            code=CLASH_CODE,
+        )
     if sidecar_out.exists() and image_out.exists():
         inputs = _hash_inputs(record, None)
         if _up_to_date(image_out, sidecar_out, settings, inputs):
-            outcome.status = "up-to-date"
-            return
+            since = options.batch_started
+            outcome.status = (
+                "corrected" if since is not None and _mtime(image_out) >= since else "up-to-date"
+            )
+            outcome.provenance = _provenance_entry(sidecar_out, rel_out.as_posix())
+            return forced
 
     spatial = tuple(header.shape[:3])
     n_volumes = header.shape[3]
@@ -664,6 +839,7 @@ def _correct(
         options.max_memory,
         record.path,
         threads=max(1, options.threads),
+        compressed=header.compressed,
     )
     scale = scaling(header)
     tmp_image = _temp_path(image_out)
@@ -738,10 +914,9 @@ def _correct(
         sidecar = _output_sidecar(
             record, plan, options, settings, inputs, output_sha, dataset_name, stats
         )
-        os.replace(tmp_image, image_out)
-        _write_json_atomic(sidecar_out, sidecar)
+        _commit(tmp_image, image_out, sidecar_out, sidecar)
         outcome.status = "corrected"
-        outcome.provenance = sidecar[PROVENANCE_KEY] | {"OutputPath": rel_out.as_posix()}
+        outcome.provenance = _entry_of(sidecar, rel_out.as_posix())
     finally:
         if writer is not None:
             writer.abort()
@@ -749,6 +924,32 @@ def _correct(
             buffer.close()
         with contextlib.suppress(FileNotFoundError):
             os.unlink(tmp_image)
+    return forced
+
+
+def _mtime(path: Path) -> float:
+    try:
+        return path.stat().st_mtime
+    except OSError:
+        return 0.0
+
+
+def _commit(tmp_image: Path, image_out: Path, sidecar_out: Path, sidecar: dict[str, Any]) -> None:
+    """Put a finished run in place as one unit: an earlier image goes first, then the
+    new sidecar, then the image by atomic rename. Whatever stops this half way
+    leaves at most a sidecar without an image, which never counts as a result (it
+    is not up to date, and the next batch or an interrupted one removes it); a
+    sidecar that cannot be written leaves no image at all."""
+    content = json_safe(sidecar)
+    with contextlib.suppress(FileNotFoundError):
+        os.unlink(image_out)
+    try:
+        _write_json_atomic(sidecar_out, content)
+        os.replace(tmp_image, image_out)
+    except BaseException:
+        with contextlib.suppress(OSError):
+            os.unlink(sidecar_out)
+        raise
 
 
 def _stored_itemsize(header: Any) -> int:
@@ -774,10 +975,6 @@ def _correct_chunk(
     return [correct_run(run, options, name) for run, name in items]
 
 
-def _dataset_names(roots: Sequence[str]) -> dict[str, str]:
-    return {root: ("raw" if i == 0 else f"raw{i + 1}") for i, root in enumerate(roots)}
-
-
 def _read_description(root: Path) -> dict[str, Any]:
     try:
         with open(root / "dataset_description.json", encoding="utf-8") as fh:
@@ -787,26 +984,57 @@ def _read_description(root: Path) -> dict[str, Any]:
         return {}
 
 
-def _check_existing_description(out: Path) -> None:
+def _dataset_names(
+    out: Path, roots: Sequence[str], *, mix_inputs: bool
+) -> tuple[dict[str, str], dict[str, str]]:
+    """``(name of each root, DatasetLinks to write)``.
+
+    An ``out`` that slicetime wrote before keeps its links and names (so the
+    ``Sources`` of earlier outputs stay true); a root it does not link to is
+    refused unless ``mix_inputs``, then added under a name not yet used. A folder
+    that holds a dataset slicetime did not write is always refused.
+    """
     path = out / "dataset_description.json"
-    if not path.exists():
-        return
-    content = _read_description(out)
-    generated = content.get("GeneratedBy")
-    names = (
-        {g.get("Name") for g in generated if isinstance(g, dict)}
-        if isinstance(generated, list)
-        else set()
-    )
-    if "slicetime" not in names:
-        raise ValueError(
-            f"--out {out} already holds a dataset that slicetime did not write "
-            f"({path.name} has no GeneratedBy entry for slicetime); choose an empty folder"
+    links: dict[str, str] = {}
+    if path.exists():
+        content = _read_description(out)
+        generated = content.get("GeneratedBy")
+        names = (
+            {g.get("Name") for g in generated if isinstance(g, dict)}
+            if isinstance(generated, list)
+            else set()
         )
+        if "slicetime" not in names:
+            raise ValueError(
+                f"--out {out} already holds a dataset that slicetime did not write "
+                f"({path.name} has no GeneratedBy entry for slicetime); choose an empty folder"
+            )
+        found = content.get("DatasetLinks")
+        if isinstance(found, dict):
+            links = {str(k): str(v) for k, v in found.items() if isinstance(v, str)}
+    by_uri = {uri: name for name, uri in links.items()}
+    others = [root for root in roots if dataset_uri(root) not in by_uri]
+    if links and others and not mix_inputs:
+        raise ValueError(
+            f"--out {out} holds outputs made from {', '.join(sorted(links.values()))}, not "
+            f"from {others[0]}; choose another folder, or pass --mix-inputs to add this "
+            "dataset's runs beside them"
+        )
+    result: dict[str, str] = {}
+    for root in roots:
+        uri = dataset_uri(root)
+        if uri not in by_uri:
+            number = len(links) + 1
+            while (name := "raw" if number == 1 else f"raw{number}") in links:
+                number += 1
+            links[name] = uri
+            by_uri[uri] = name
+        result[root] = by_uri[uri]
+    return result, links
 
 
 def _write_description(
-    out: Path, roots: Sequence[str], names: dict[str, str], options: CorrectOptions
+    out: Path, roots: Sequence[str], links: dict[str, str], options: CorrectOptions
 ) -> None:
     engine = get_engine(options.method)
     first = _read_description(Path(roots[0])) if roots else {}
@@ -826,43 +1054,87 @@ def _write_description(
                 ),
             }
         ],
-        "DatasetLinks": {names[r]: Path(r).resolve().as_uri() for r in roots},
+        "DatasetLinks": dict(sorted(links.items())),
     }
     _write_json_atomic(out / "dataset_description.json", description)
 
 
-def _write_provenance(out: Path, outcomes: Sequence[RunOutcome]) -> None:
-    path = out / PROVENANCE_FILE
+def _entry_of(sidecar: dict[str, Any], output: str) -> dict[str, Any] | None:
+    """The provenance file's entry for one output, from its sidecar: every field of
+    the sidecar's provenance, its ``Sources`` and ``OutputPath`` (the same for a run
+    corrected now and one corrected by an earlier, possibly killed, batch)."""
+    recorded = sidecar.get(PROVENANCE_KEY)
+    if not isinstance(recorded, dict):
+        return None
+    return {**recorded, "Sources": sidecar.get("Sources"), "OutputPath": output}
+
+
+def _read_sidecar_json(path: Path) -> dict[str, Any] | None:
     try:
         with open(path, encoding="utf-8") as fh:
-            existing = json.load(fh)
-        runs = existing.get("Runs", {}) if isinstance(existing, dict) else {}
-        runs = runs if isinstance(runs, dict) else {}
+            value = json.load(fh)
+        return value if isinstance(value, dict) else None
     except (OSError, ValueError):
-        runs = {}
+        return None
+
+
+def _provenance_entry(sidecar_out: Path, output: str) -> dict[str, Any] | None:
+    content = _read_sidecar_json(sidecar_out)
+    return _entry_of(content, output) if content is not None else None
+
+
+def _recorded_input(sidecar_out: Path) -> tuple[str, str] | None:
+    """``(dataset URI, image path)`` an existing output sidecar records as its input
+    (None: no such sidecar, or not one slicetime wrote with its dataset)."""
+    content = _read_sidecar_json(sidecar_out) if sidecar_out.exists() else None
+    recorded = content.get(PROVENANCE_KEY) if content else None
+    inputs = recorded.get("Inputs") if isinstance(recorded, dict) else None
+    if not isinstance(inputs, dict) or not isinstance(inputs.get("Dataset"), str):
+        return None
+    image = inputs.get("Image")
+    path = image.get("Path") if isinstance(image, dict) else None
+    return (inputs["Dataset"], path) if isinstance(path, str) else None
+
+
+def _output_files(out: Path, output: str) -> tuple[Path, Path]:
+    image = out / output
+    return image, image.with_name(sidecar_name(image.name))
+
+
+def _write_provenance(out: Path, outcomes: Sequence[RunOutcome]) -> None:
+    """Rewrite ``slicetime-provenance.json`` to match the files: an entry (with
+    ``OutputPath``) for every output whose image and sidecar are in ``out``, none for
+    an output that is gone, and under ``Removed`` the outputs this tool withdrew."""
+    path = out / PROVENANCE_FILE
+    existing = _read_sidecar_json(path) or {}
+    runs = existing.get("Runs", {})
+    runs = dict(runs) if isinstance(runs, dict) else {}
+    removed = existing.get("Removed", {})
+    removed = dict(removed) if isinstance(removed, dict) else {}
     for outcome in outcomes:
+        if outcome.removed is not None:
+            runs.pop(json_safe(outcome.removed), None)
+            removed[json_safe(outcome.removed)] = outcome.reason or "withdrawn"
         if outcome.output is None or not outcome.ok:
             continue
-        if outcome.provenance is not None:
-            runs[outcome.output] = outcome.provenance
-        elif outcome.output not in runs:
-            recorded = _recorded_provenance(out / outcome.output)
-            if recorded is not None:
-                runs[outcome.output] = recorded
+        key = json_safe(outcome.output)
+        removed.pop(key, None)
+        entry = outcome.provenance
+        if entry is None:
+            entry = _provenance_entry(_output_files(out, outcome.output)[1], outcome.output)
+        if entry is not None:
+            runs[key] = entry
+    for key in list(runs):
+        if not any(image.is_file() and sidecar.is_file()
+                   for image, sidecar in (_output_files(out, k) for k in {key, _unescaped(key)})):
+            del runs[key]
     content = {
         "Tool": {"Name": "slicetime", "Version": __version__},
         "Runs": dict(sorted(runs.items())),
     }
+    if removed:
+        content["Removed"] = dict(sorted(removed.items()))
     _write_json_atomic(path, content)
-
-
-def _recorded_provenance(image: Path) -> dict[str, Any] | None:
-    try:
-        with open(image.with_name(sidecar_name(image.name)), encoding="utf-8") as fh:
-            value = json.load(fh).get(PROVENANCE_KEY)
-        return value if isinstance(value, dict) else None
-    except (OSError, ValueError, AttributeError):
-        return None
 
 
 def _owner_alive(name: str) -> bool:
@@ -925,24 +1197,33 @@ def correct_paths(
         include_hidden=include_hidden,
         policy_file=policy_file,
     )
-    roots = sorted({r.record.root for r in audit.runs}) or audit.roots
-    check_output_location(options.out, [Path(r) for r in roots])
-    _check_existing_description(options.out)
+    roots = sorted({r.record.root for r in audit.runs})
+    given_roots = {str(find_root(Path(p))) for p in paths} | set(audit.roots) | set(roots)
+    check_output_location(
+        options.out, [Path(r) for r in sorted(given_roots)], list(paths),
+        include_derivatives=include_derivatives,
+    )
+    names, links = _dataset_names(options.out, roots, mix_inputs=options.mix_inputs)
     result = CorrectResult(out=str(options.out))
     result.dataset_findings = [
         f for f in audit.dataset_findings if f.severity is Severity.ERROR
     ]
-    names = _dataset_names(roots)
-    _refuse_collisions(audit.runs)
+    clashes = _clashing_runs(audit.runs, options.desc)
     created_out = not options.out.exists()
     options.out.mkdir(parents=True, exist_ok=True)
     remove_stale_temporaries(options.out)
-    items = [(run, names[run.record.root]) for run in audit.runs]
+    if any(r.record.abs_path not in clashes for r in audit.runs):
+        # before any output: a batch killed half way still names its inputs
+        _write_description(options.out, roots, links, options)
+    items = [(run, names[run.record.root]) for run in audit.runs
+             if run.record.abs_path not in clashes]
+    started = time.time()
+    options = dataclasses.replace(options, batch_started=started)
     if options.threads <= 0:
         options = dataclasses.replace(options, threads=_auto_threads(executor, jobs, len(items)))
     job = _ChunkJob(options)
     try:
-        result.runs = map_chunks(
+        done = map_chunks(
             job,
             items,
             lost=_lost_run,
@@ -953,12 +1234,127 @@ def correct_paths(
             failed_of=lambda outcome: not outcome.ok,
         )
     except Interrupted as stop:
-        finished = [r for r in stop.results if r is not None]
-        result.runs = finished
-        _finish(options, roots, names, result, created_out)
+        # the workers are gone: what is on disk now is final; report exactly that
+        remove_stale_temporaries(options.out)
+        finished: list[RunOutcome] = []
+        for item, outcome in zip(items, stop.results, strict=True):
+            found = outcome if outcome is not None else _found_on_disk(item, options, started)
+            if found is not None:
+                finished.append(found)
+        result.runs = _in_input_order(audit.runs, finished, clashes)
+        _withdraw_stale(options, audit.runs, result.runs)
+        _finish(options, roots, links, result, created_out)
         raise CorrectInterrupted(result, len(items) - len(finished)) from None
-    _finish(options, roots, names, result, created_out)
+    result.runs = _in_input_order(audit.runs, done, clashes)
+    _withdraw_stale(options, audit.runs, result.runs)
+    remove_stale_temporaries(options.out)  # of a worker that was lost
+    _finish(options, roots, links, result, created_out)
     return result
+
+
+def _in_input_order(
+    runs: Sequence[RunResult], outcomes: Sequence[RunOutcome], clashes: dict[str, RunOutcome]
+) -> list[RunOutcome]:
+    by_key = {(o.root, o.path): o for o in outcomes}
+    ordered = []
+    for run in runs:
+        record = run.record
+        outcome = clashes.get(record.abs_path) or by_key.get((record.root, record.path))
+        if outcome is not None:
+            ordered.append(outcome)
+    return ordered
+
+
+def _found_on_disk(
+    item: tuple[RunResult, str], options: CorrectOptions, since: float
+) -> RunOutcome | None:
+    """After Ctrl-C, a run whose worker was stopped: ``corrected`` when this batch put
+    its image and sidecar in place (the image matches the sidecar's checksum), else
+    nothing, after removing a sidecar or image of this batch that lacks its partner."""
+    record = item[0].record
+    rel_out = output_path(record.path, options.desc)
+    if rel_out is None:
+        return None
+    image, sidecar = _output_files(options.out, rel_out.as_posix())
+
+    def fresh(path: Path) -> bool:
+        try:
+            return path.stat().st_mtime >= since - 0.05
+        except OSError:
+            return False
+
+    if not (fresh(image) or fresh(sidecar)):
+        return None  # untouched by this batch: left as it was
+    content = _read_sidecar_json(sidecar)
+    entry = _entry_of(content, rel_out.as_posix()) if content is not None else None
+    output = entry.get("Output") if entry is not None else None
+    if (image.is_file() and isinstance(output, dict)
+            and output.get("SHA256") == file_sha256(image)
+            and _recorded_input(sidecar) == (dataset_uri(record.root), json_safe(record.path))):
+        outcome = RunOutcome(record.path, record.root, "corrected", output=rel_out.as_posix())
+        outcome.provenance = entry
+        return outcome
+    for path in (image, sidecar):
+        if fresh(path):
+            with contextlib.suppress(OSError):
+                os.unlink(path)
+    return None
+
+
+def _withdraw_stale(
+    options: CorrectOptions, runs: Sequence[RunResult], outcomes: Sequence[RunOutcome]
+) -> None:
+    """A run refused or failed now whose earlier output is still in ``out`` (written
+    from this very input): remove that output, so nothing stale looks valid, and
+    say so in the run's reason and in the provenance file (``Removed``)."""
+    for outcome in outcomes:
+        if outcome.ok:
+            continue
+        rel_out = output_path(outcome.path, options.desc)
+        if rel_out is None:
+            continue
+        image, sidecar = _output_files(options.out, rel_out.as_posix())
+        if _recorded_input(sidecar) != (dataset_uri(outcome.root), json_safe(outcome.path)):
+            continue  # not an output of this run (or not one slicetime wrote)
+        for path in (image, sidecar):
+            with contextlib.suppress(FileNotFoundError):
+                os.unlink(path)
+        outcome.removed = rel_out.as_posix()
+        note = f"its earlier output {rel_out.as_posix()} was removed, as it no longer holds"
+        outcome.reason = f"{outcome.reason}; {note}" if outcome.reason else note
+
+
+def _clashing_runs(runs: Sequence[RunResult], desc: str) -> dict[str, RunOutcome]:
+    """Runs that would be written onto one output (same output sidecar: names that
+    differ only in ``desc``, ``.nii``/``.nii.gz`` twins, one path in two roots):
+    each is refused with a ``correct/output-clash`` finding naming all of them."""
+    groups: dict[str, list[RunRecord]] = {}
+    for run in runs:
+        rel_out = output_path(run.record.path, desc)
+        if rel_out is None:
+            continue
+        key = rel_out.with_name(sidecar_name(rel_out.name)).as_posix()
+        groups.setdefault(key, []).append(run.record)
+    clashes: dict[str, RunOutcome] = {}
+    for key, records in groups.items():
+        if len(records) < 2:
+            continue
+        for record in records:
+            others = [r for r in records if r is not record]
+            named = ", ".join(
+                o.path if o.root == record.root else f"{o.path} (in {o.root})" for o in others
+            )
+            message = (
+                f"{record.path} and {named} would be written to one output "
+                f"({key} in --out); none of them is corrected"
+            )
+            finding = Finding(CLASH_CODE, Severity.ERROR, message, file=record.path,
+                              evidence={"inputs": [record.path, *[o.path for o in others]],
+                                        "output": key})
+            clashes[record.abs_path] = RunOutcome(
+                record.path, record.root, "refused", reason=message, blocking=[finding]
+            )
+    return clashes
 
 
 def _auto_threads(executor: Executor | None, jobs: int, n_runs: int) -> int:
@@ -981,14 +1377,19 @@ class CorrectInterrupted(KeyboardInterrupt):
 def _finish(
     options: CorrectOptions,
     roots: Sequence[str],
-    names: dict[str, str],
+    links: dict[str, str],
     result: CorrectResult,
     created_out: bool,
 ) -> None:
-    if any(r.ok for r in result.runs):
-        _write_description(options.out, roots, names, options)
+    withdrawn = any(r.removed for r in result.runs)
+    if any(r.ok for r in result.runs) or withdrawn:
+        _write_description(options.out, roots, links, options)
         _write_provenance(options.out, result.runs)
-    _prune_empty_folders(options.out, result.runs, remove_out=created_out)
+    elif created_out:  # nothing was written: leave no folder behind
+        for name in ("dataset_description.json", PROVENANCE_FILE):
+            with contextlib.suppress(FileNotFoundError):
+                os.unlink(options.out / name)
+    _prune_empty_folders(options.out, result.runs, options.desc, remove_out=created_out)
 
 
 def _lost_run(item: tuple[RunResult, str], why: str) -> RunOutcome:
@@ -996,13 +1397,18 @@ def _lost_run(item: tuple[RunResult, str], why: str) -> RunOutcome:
     return RunOutcome(record.path, record.root, "failed", reason=f"{record.path}: {why}")
 
 
-def _prune_empty_folders(out: Path, runs: Sequence[RunOutcome], *, remove_out: bool) -> None:
+def _prune_empty_folders(
+    out: Path, runs: Sequence[RunOutcome], desc: str, *, remove_out: bool
+) -> None:
     """Remove the folders made for runs that produced nothing, so a failed batch
     leaves nothing behind (and ``out`` itself when this batch created it)."""
     for run in runs:
-        if run.ok or run.output is None:
+        if run.ok:
             continue
-        folder = (out / run.output).parent
+        target = output_path(run.path, desc)
+        if target is None:
+            continue
+        folder = (out / target).parent
         while folder != out and out in folder.parents:
             try:
                 folder.rmdir()
@@ -1012,17 +1418,6 @@ def _prune_empty_folders(out: Path, runs: Sequence[RunOutcome], *, remove_out: b
     if remove_out:
         with contextlib.suppress(OSError):
             out.rmdir()
-
-
-def _refuse_collisions(runs: Sequence[RunResult]) -> None:
-    seen: dict[str, str] = {}
-    for run in runs:
-        other = seen.setdefault(run.record.path, run.record.root)
-        if other != run.record.root:
-            raise ValueError(
-                f"{run.record.path} exists in both {other} and {run.record.root}; their "
-                "outputs would collide, correct the datasets into separate --out folders"
-            )
 
 
 @dataclass(frozen=True)

@@ -10,9 +10,15 @@ and a ``lost`` function that turns an item whose worker died into a result
 * Work goes out in chunks of neighbouring items (the audit's sidecar cache is
   per chunk); correction sends one run per chunk.
 * A chunk whose worker is lost (a crashed process, a vanished Dask worker) is
-  retried once; if it fails again, every item in it becomes ``lost(item, why)``.
-* Ctrl-C cancels what has not started, waits for nothing else, and raises
-  :class:`Interrupted` carrying the results that did finish.
+  retried once. Locally only the chunks that were running when the worker died
+  are suspects (each worker flags a chunk in shared memory as it starts it);
+  each suspect is rerun alone in a pool of its own, then item by item, so only
+  an item that kills a worker by itself becomes ``lost(item, why)``, and no
+  other item is blamed or counted twice.
+* Ctrl-C cancels what has not started, stops the local workers (SIGTERM: a
+  running job ends through its clean-up; workers ignore the terminal's SIGINT)
+  and waits until they are gone, then raises :class:`Interrupted` carrying the
+  results that did finish: nothing is written after that.
 
 The Dask executor connects to a running ``distributed`` scheduler (files must
 be on a file system every worker sees); ``dask[distributed]`` is the optional
@@ -21,6 +27,7 @@ be on a file system every worker sees); ``dask[distributed]`` is the optional
 
 from __future__ import annotations
 
+import contextlib
 import os
 import time
 from collections.abc import Callable, Sequence
@@ -143,7 +150,10 @@ class Executor:
 
 
 class ProcessExecutor(Executor):
-    """A local process pool; a crashed worker's chunks are retried once in a new pool."""
+    """A local process pool. When a worker dies, only the chunks that were running
+    are suspects: each is rerun alone in a one-worker pool, so the one that kills
+    its worker again is the only one lost; chunks that had not started go back to
+    a full pool."""
 
     name = "processes"
 
@@ -155,24 +165,30 @@ class ProcessExecutor(Executor):
         if self.jobs <= 1 or len(tracker.chunks) <= 1:
             Executor._run(self, job, tracker, lost)
             return
-        for attempt in (1, 2):
-            todo = tracker.pending()
-            if not todo:
-                return
-            broken = self._one_pool(job, tracker, todo)
+        while todo := tracker.pending():
+            started = _shared_flags(len(tracker.chunks))
+            broken = self._one_pool(job, tracker, todo, started)
             if not broken:
                 return
-            if attempt == 1:
-                self.stats.retried_chunks += len(tracker.pending())
-        for index in tracker.pending():
-            self._give_up(tracker, index, lost, "its worker process stopped unexpectedly twice")
+            # running when the pool broke: flagged by the worker before the job began
+            suspects = [i for i in tracker.pending() if started[i]]
+            if not suspects:  # a worker died while idle: suspect everything left
+                suspects = tracker.pending()
+            self.stats.retried_chunks += len(suspects)
+            for index in suspects:
+                self._alone(job, tracker, index, lost)
 
-    def _one_pool(self, job: Job[T, R], tracker: _Tracker[R], todo: list[int]) -> bool:
+    def _one_pool(
+        self, job: Job[T, R], tracker: _Tracker[R], todo: list[int], started: Any
+    ) -> bool:
         """Run ``todo`` in a fresh pool; True when the pool broke (work left undone)."""
-        pool = ProcessPoolExecutor(max_workers=min(self.jobs, len(todo)))
+        pool = ProcessPoolExecutor(
+            max_workers=min(self.jobs, len(todo)), initializer=_remember_flags,
+            initargs=(started,),
+        )
         futures: dict[Future[list[R]], int] = {}
         try:
-            futures = {pool.submit(job, tracker.chunks[i]): i for i in todo}
+            futures = {pool.submit(_flagged, job, tracker.chunks[i], i): i for i in todo}
             waiting = set(futures)
             while waiting:
                 finished, waiting = wait(waiting, return_when=FIRST_COMPLETED)
@@ -184,12 +200,109 @@ class ProcessExecutor(Executor):
                     tracker.finish(futures[future], results)
             return False
         except BaseException:
-            for future in futures:
-                future.cancel()
-            pool.shutdown(wait=False, cancel_futures=True)
+            _stop_workers(pool)
             raise
         finally:
             pool.shutdown(wait=True, cancel_futures=True)
+
+    def _alone(self, job: Job[T, R], tracker: _Tracker[R], index: int, lost: Lost[T, R]) -> None:
+        """Rerun a suspect chunk in a pool of its own; if it kills that worker too, run its
+        items one by one, and lose only an item that kills a worker on its own."""
+        chunk = tracker.chunks[index]
+        results = self._isolated(job, chunk)
+        if results is None:
+            results = []
+            for item in chunk:
+                single = self._isolated(job, [item]) if len(chunk) > 1 else None
+                if single is None:
+                    self.stats.lost_items += 1
+                    single = [lost(item, "its worker process stopped unexpectedly twice")]
+                results.extend(single)
+        tracker.finish(index, results)
+
+    def _isolated(self, job: Job[T, R], chunk: Sequence[T]) -> list[R] | None:
+        """``job(chunk)`` in a one-worker pool; None when that worker died."""
+        pool = ProcessPoolExecutor(
+            max_workers=1, initializer=_remember_flags, initargs=(_shared_flags(1),)
+        )
+        try:
+            return pool.submit(_flagged, job, chunk, 0).result()
+        except BrokenProcessPool:
+            return None
+        except BaseException:
+            _stop_workers(pool)
+            raise
+        finally:
+            pool.shutdown(wait=True, cancel_futures=True)
+
+
+#: per pool: one shared byte per chunk, set by the worker as the chunk starts
+_FLAGS: Any = None
+#: in a worker: whether a job is running (SIGTERM then stops it through its clean-up)
+_IN_JOB = False
+#: exit status of a worker stopped by the parent after Ctrl-C
+STOPPED_STATUS = 130
+
+
+class _Stopped(BaseException):
+    """Raised in a worker's job when the parent stops the batch (after Ctrl-C)."""
+
+
+def _shared_flags(count: int) -> Any:
+    import multiprocessing
+
+    return multiprocessing.RawArray("b", max(1, count))
+
+
+def _on_terminate(signum: int, frame: Any) -> None:
+    if _IN_JOB:
+        raise _Stopped
+    os._exit(STOPPED_STATUS)
+
+
+def _remember_flags(flags: Any) -> None:
+    """Worker initialiser: keep the flags; Ctrl-C is the parent's to handle (it stops
+    the workers with SIGTERM, which ends a running job through its clean-up)."""
+    import signal
+
+    global _FLAGS
+    _FLAGS = flags
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+    signal.signal(signal.SIGTERM, _on_terminate)
+
+
+def _flagged(job: Job[T, R], chunk: Sequence[T], index: int) -> list[R]:
+    """In a worker: mark chunk ``index`` as started (in shared memory, visible to the
+    parent at once, even if this process dies a moment later), then run it."""
+    global _IN_JOB
+    if _FLAGS is not None:
+        _FLAGS[index] = 1
+    _IN_JOB = True
+    try:
+        return job(chunk)
+    except _Stopped:
+        os._exit(STOPPED_STATUS)  # the job's clean-up has run; take no further work
+    finally:
+        _IN_JOB = False
+
+
+def _stop_workers(pool: ProcessPoolExecutor) -> None:
+    """Ctrl-C: cancel what has not started and end the workers now (SIGTERM, which
+    ends a running job through its clean-up, so its temporary files go; SIGKILL for
+    a worker that has not stopped within a few seconds). Returns once they are gone,
+    so nothing is written after the batch reports."""
+    processes = dict(getattr(pool, "_processes", None) or {})
+    pool.shutdown(wait=False, cancel_futures=True)
+    for process in processes.values():
+        with contextlib.suppress(OSError, ValueError, AttributeError):
+            process.terminate()
+    deadline = time.monotonic() + 5.0
+    for process in processes.values():
+        with contextlib.suppress(OSError, ValueError, AttributeError, AssertionError):
+            process.join(max(0.0, deadline - time.monotonic()))
+            if process.is_alive():
+                process.kill()
+                process.join(1.0)
 
 
 class DaskExecutor(Executor):

@@ -108,14 +108,39 @@ def data_type(header: HeaderInfo, shown: str) -> np.dtype[Any]:
 
 
 def scaling(header: HeaderInfo) -> tuple[float, float] | None:
-    """``(slope, inter)`` to apply, or None when the header asks for no scaling."""
+    """``(slope, inter)`` to apply, or None when the header asks for no scaling
+    (``scl_slope`` 0 or not finite: NIfTI-1, nifti1.h). A valid slope with a
+    non-finite intercept is kept as it is: :func:`scaling_problem` refuses it."""
     slope, inter = header.scl_slope, header.scl_inter
     if not math.isfinite(slope) or slope == 0.0:
         return None
-    inter = inter if math.isfinite(inter) else 0.0
     if slope == 1.0 and inter == 0.0:
         return None
     return slope, inter
+
+
+#: the largest finite float32 (IEEE 754 binary32)
+FLOAT32_MAX = float(np.finfo(np.float32).max)
+
+
+def scaling_problem(header: HeaderInfo) -> str | None:
+    """Why the header's scaling cannot give finite float32 values, or None.
+
+    ``value = scl_slope * stored + scl_inter`` (nifti1.h). Refused: a valid slope
+    with a non-finite intercept (nibabel refuses such a header too) and a slope or
+    intercept beyond the float32 range. Whether the stored values scale beyond
+    it depends on the data: correction checks each batch as it is read.
+    """
+    scale = scaling(header)
+    if scale is None:
+        return None
+    slope, inter = scale
+    if not math.isfinite(inter):
+        return f"scl_inter is {inter} while scl_slope is {slope:g}; the scaled values are undefined"
+    if abs(slope) > FLOAT32_MAX or abs(inter) > FLOAT32_MAX:
+        return (f"scl_slope {slope:g} / scl_inter {inter:g} lie beyond the float32 range "
+                f"(±{FLOAT32_MAX:.4g})")
+    return None
 
 
 class _HashingReader:
@@ -419,10 +444,12 @@ def file_sha256(path: Path) -> str:
 __all__ = [
     "DATA_TYPES",
     "FLOAT32_CODE",
+    "FLOAT32_MAX",
     "VolumeReader",
     "VolumeWriter",
     "data_type",
     "file_sha256",
     "patched_prefix",
     "scaling",
+    "scaling_problem",
 ]

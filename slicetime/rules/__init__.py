@@ -5,6 +5,7 @@ Importing this package registers every rule in :data:`RULES`.
 
 from slicetime.rules import (  # noqa: F401  (registration)
     batch,
+    correction,
     dataset,
     header,
     naming,
