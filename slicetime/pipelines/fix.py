@@ -27,6 +27,7 @@ import datetime as dt
 import difflib
 import hashlib
 import json
+import math
 import os
 import shutil
 from collections import defaultdict
@@ -39,10 +40,12 @@ from slicetime import __version__
 from slicetime.model import Finding, RunRecord
 from slicetime.pipelines.audit import AuditResult, audit_paths
 from slicetime.pipelines.executor import Executor
+from slicetime.pipelines.json_splice import DELETE, Layout, scan, splice
 from slicetime.readers.dataset import find_root
 from slicetime.readers.entities import parse_name
 from slicetime.readers.errors import ReadError
 from slicetime.readers.policy import POLICY_FILENAME, Policy, find_policy, load_policy
+from slicetime.readers.sidecar import MAX_SIDECAR_BYTES
 from slicetime.readers.volumes import file_sha256
 from slicetime.rules import RULES
 from slicetime.rules.dataset import PROTOCOL_ENTITIES
@@ -166,24 +169,18 @@ class JsonStyle:
         return text + ("\n" if self.final_newline else "")
 
 
-def _load_for_edit(path: Path) -> tuple[str, dict[str, Any]]:
-    """The text and the ordered content of a sidecar about to be edited."""
-    text = path.read_text(encoding="utf-8")
-    pairs_seen: list[str] = []
-
-    def no_duplicates(pairs: list[tuple[str, Any]]) -> dict[str, Any]:
-        keys = [k for k, _ in pairs]
-        if len(keys) != len(set(keys)):
-            pairs_seen.extend(k for k in keys if keys.count(k) > 1)
-        return dict(pairs)
-
-    data = json.loads(text, object_pairs_hook=no_duplicates)
-    if pairs_seen:
-        raise ValueError(f"it repeats the key {sorted(set(pairs_seen))[0]!r}; a rewrite would "
-                         "drop one of the values, so fix that by hand first")
-    if not isinstance(data, dict):
-        raise ValueError("its top level is not a JSON object")
-    return text, data
+def _load_for_edit(path: Path) -> tuple[str, Layout]:
+    """The exact text of a sidecar about to be edited, and where its members sit."""
+    if path.is_symlink() and not path.is_file():
+        raise ValueError("it is a link to something that is not a regular file")
+    if path.exists() and not path.is_file():
+        raise ValueError("it is not a regular file")
+    with open(path, "rb") as fh:
+        data = fh.read(MAX_SIDECAR_BYTES + 1)
+    if len(data) > MAX_SIDECAR_BYTES:
+        raise ValueError(f"it is larger than {MAX_SIDECAR_BYTES} bytes")
+    text = data.decode("utf-8")  # no newline translation: every byte is kept
+    return text, scan(text)
 
 
 # --------------------------------------------------------------------------- planning
@@ -329,30 +326,56 @@ def _build_change(
     path = Path(root) / file
     try:
         if path.exists() or path.is_symlink():
-            before, data = _load_for_edit(path)
-            style = JsonStyle.of(before)
+            before: str | None
+            before, _ = _load_for_edit(path)
         else:
-            before, data, style = None, {}, JsonStyle()
+            before = None
     except (OSError, UnicodeDecodeError, ValueError) as exc:
-        plan.notes.append(f"{file}: not changed: {exc}")
+        plan.notes.append(f"{file}: not changed: {_reason(exc)}")
         return None
     chosen: list[Repair] = []
+    edits: list[tuple[str, Any]] = []
     for key, group in fields.items():
         values = {_value_key(r.value) for r in group}
         if len(values) != 1:
             plan.notes.append(f"{file}: {key} not changed: the repairs disagree on its value")
             continue
-        if group[0].value is REMOVE:
-            data.pop(key, None)
-        else:
-            data[key] = group[0].value
+        if group[0].value is not REMOVE and not _finite(group[0].value):
+            plan.notes.append(f"{file}: {key} not changed: the new value is not a finite number")
+            continue
+        edits.append((key, DELETE if group[0].value is REMOVE else group[0].value))
         chosen.extend(group)
     if not chosen:
         return None
-    after = style.dumps(data)
+    if before is None:
+        after = JsonStyle().dumps({k: v for k, v in edits if v is not DELETE})
+    else:
+        try:
+            after = splice(before, edits)
+        except ValueError as exc:
+            plan.notes.append(f"{file}: not changed: {_reason(exc)}")
+            return None
     if after == before:
         return None
     return FileChange(root, file, before, after, _current_sha(path), chosen)
+
+
+def _reason(exc: BaseException) -> str:
+    if isinstance(exc, OSError):
+        return exc.strerror or str(exc)
+    if isinstance(exc, UnicodeDecodeError):
+        return "it is not UTF-8 text"
+    return str(exc)
+
+
+def _finite(value: Any) -> bool:
+    if isinstance(value, float):
+        return math.isfinite(value)
+    if isinstance(value, list | tuple):
+        return all(_finite(v) for v in value)
+    if isinstance(value, dict):
+        return all(_finite(v) for v in value.values())
+    return True
 
 
 # --------------------------------------------------------------------------- layout
