@@ -84,14 +84,21 @@ class FileChange:
         return sorted({r.run for r in self.repairs})
 
     def diff(self) -> str:
-        before = self.before.splitlines(keepends=True) if self.before is not None else []
-        after = self.after.splitlines(keepends=True)
+        """A unified diff, one output line per line of the file.
+
+        Characters that would break a line on screen (in the file name, or raw
+        U+2028 in a JSON string) are written as escapes, so a renderer that
+        splits on line breaks and escapes the rest sees the true lines.
+        """
+        before = _diff_lines(self.before) if self.before is not None else []
+        after = _diff_lines(self.after)
+        name = _one_line(self.file)
         lines = difflib.unified_diff(
             before, after,
-            fromfile=f"a/{self.file}" if self.before is not None else "/dev/null",
-            tofile=f"b/{self.file}",
+            fromfile=f"a/{name}" if self.before is not None else "/dev/null",
+            tofile=f"b/{name}", lineterm="",
         )
-        return "".join(line if line.endswith("\n") else line + "\n" for line in lines)
+        return "".join(line + "\n" for line in lines)
 
     def to_json(self) -> dict[str, Any]:
         return {
@@ -118,6 +125,24 @@ class FixPlan:
             "changes": [c.to_json() for c in self.changes],
             "notes": self.notes,
         }
+
+
+#: what str.splitlines breaks on, besides the newline itself
+_BREAKS = re.compile("[\r\x0b\x0c\x1c-\x1e\x85\u2028\u2029\n]")
+
+
+def _one_line(text: str) -> str:
+    def escape(match: re.Match[str]) -> str:
+        char = match.group(0)
+        code = ord(char)
+        named = {"\n": "\\n", "\r": "\\r"}
+        return named.get(char) or (f"\\u{code:04x}" if code > 0xFF else f"\\x{code:02x}")
+
+    return _BREAKS.sub(escape, text)
+
+
+def _diff_lines(text: str) -> list[str]:
+    return [_one_line(line) for line in text.split("\n")]
 
 
 def _repair_json(repair: Repair) -> dict[str, Any]:
@@ -549,7 +574,8 @@ def _check_root(root: object, where: Path, what: str) -> str:
     if not isinstance(root, str) or not is_dataset_root(Path(root)):
         raise FixError(f"{where}: the {what} names {root!r} as a dataset root, but it is not "
                        "one (an absolute folder with dataset_description.json or sub-* "
-                       f"folders); the whole {what} is refused, nothing was written")
+                       f"folders); the whole {what} is refused, nothing was "
+                       f"{'restored' if what == 'journal' else 'written'}")
     return root
 
 
@@ -1101,6 +1127,7 @@ def undo(journal_path: Path) -> UndoResult:
                                   f"{left} not restored yet; fix the cause and run the undo "
                                   "again")
                 break
+            result.restored.append(entry.file)
         if journal.token is not None:
             _remove_temps(journal.entries, journal.token, len(journal.entries))
         if result.failure is None and not result.refused:
