@@ -12,12 +12,13 @@ each is written:
   sidecar (created when missing), which overrides the inherited value;
 * a field that is absent goes into the run's own sidecar.
 
-``apply_plan`` writes each changed file atomically (temporary file, fsync,
-rename) with the original's key order, indentation and final newline, after
-copying it to a backup folder and recording a journal; it refuses a file that
-is a symbolic link (annexed content: unlock it, or ``replace_links``),
-read-only, or changed since the plan was made. ``undo`` restores every byte
-from a journal.
+``apply_plan`` applies a plan all or nothing under a per-dataset lock: every
+file is checked first (links — annexed content: unlock it, or
+``replace_links`` —, read-only, changed since the plan, outside its dataset),
+then backed up, the journal written once, and each file replaced atomically
+with only the edited value's text changed (:mod:`slicetime.pipelines.json_splice`).
+``undo`` checks the whole journal and every backup's hash before it restores
+any byte.
 """
 
 from __future__ import annotations
@@ -142,7 +143,10 @@ def _one_line(text: str) -> str:
 
 
 def _diff_lines(text: str) -> list[str]:
-    return [_one_line(line) for line in text.split("\n")]
+    lines = text.split("\n")
+    if lines and lines[-1] == "":
+        lines.pop()  # the final newline ends the last line; it is not a line of its own
+    return [_one_line(line) for line in lines]
 
 
 def _repair_json(repair: Repair) -> dict[str, Any]:
@@ -1079,16 +1083,18 @@ def _restore(entry: JournalEntry, backup: Path, temp: str) -> None:
         _atomic_write(path, _backup_bytes(entry, backup), entry.mode, temp)
 
 
-def _remove_temps(entries: Sequence[JournalEntry], token: str | None, count: int) -> None:
-    """Remove what an interrupted apply may have left: its own temporary files only."""
+def _remove_temps(entries: Sequence[JournalEntry], token: str | None) -> None:
+    """Remove what an interrupted apply may have left: its own temporary files only.
+
+    The temporary file of the n-th entry is ``.slicetime-<token>-<n>.tmp`` beside it.
+    """
     if token is None:
         return
-    for n in range(count):
-        for entry in entries:
-            tmp = entry.path.with_name(_temp_name(token, n))
-            with contextlib.suppress(OSError):
-                if tmp.is_symlink() or tmp.is_file():
-                    tmp.unlink()
+    for n, entry in enumerate(entries):
+        tmp = entry.path.with_name(_temp_name(token, n))
+        with contextlib.suppress(OSError):
+            if tmp.is_symlink() or tmp.is_file():
+                tmp.unlink()
 
 
 def undo(journal_path: Path) -> UndoResult:
@@ -1129,7 +1135,7 @@ def undo(journal_path: Path) -> UndoResult:
                 break
             result.restored.append(entry.file)
         if journal.token is not None:
-            _remove_temps(journal.entries, journal.token, len(journal.entries))
+            _remove_temps(journal.entries, journal.token)
         if result.failure is None and not result.refused:
             with contextlib.suppress(OSError):
                 _write_journal(journal.path, journal.roots, journal.token or "",

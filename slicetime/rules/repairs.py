@@ -2,7 +2,9 @@
 
 Each repair is proposed only when the evidence is unambiguous:
 
-* ``timing/units-ms``: every SliceTiming entry divided by 1000;
+* ``timing/units-ms``: every SliceTiming entry divided by 1000, only when the
+  list exceeds a trusted TR (sidecar RepetitionTime or VolumeTiming, plausible)
+  and fits it once divided;
 * ``timing/from-header``: the times the NIfTI header encodes (slice_code,
   slice_duration, dim_info) written as SliceTiming (and SliceEncodingDirection
   when the header's slice axis is not the BIDS default ``k``);
