@@ -148,7 +148,7 @@ def _dumps(value: Any, ascii_only: bool, item_sep: str, indent: str | None) -> s
 
 
 def render_like(old: str | None, value: Any, *, base: str, unit: str, ascii_only: bool,
-                expanded: bool) -> str:
+                expanded: bool, item_sep: str = ", ") -> str:
     """``value`` as JSON text laid out like ``old`` (the text it replaces, if any).
 
     ``base`` is the indentation of the line the value starts on, ``unit`` one
@@ -168,7 +168,7 @@ def render_like(old: str | None, value: Any, *, base: str, unit: str, ascii_only
             unit = inner[len(closing) :]
         base = closing
     elif not expanded:
-        return _dumps(value, ascii_only, ", ", None)
+        return _dumps(value, ascii_only, item_sep, None)
     text = _dumps(value, ascii_only, ", ", unit)
     return text.replace("\n", "\n" + base)
 
@@ -224,7 +224,7 @@ def _append(text: str, layout: Layout, key: str, value: Any, ascii_only: bool) -
     expanded = "\n" in gap
     base = gap.rsplit("\n", 1)[1] if expanded else ""
     body = render_like(None, value, base=base, unit=_unit(text, layout), ascii_only=ascii_only,
-                       expanded=expanded)
+                       expanded=expanded, item_sep="," if not gap and colon == ":" else ", ")
     return (text[: last.value_end] + "," + gap + rendered_key + colon + body
             + text[last.value_end :])
 
