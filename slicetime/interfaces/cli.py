@@ -599,6 +599,7 @@ def fix(
     Backups go to <dataset>-slicetime-backups/<UTC time stamp>/ beside the
     dataset (or --backup-dir); --apply prints the journal's exact path.
     """
+    from slicetime.interfaces.safe_text import xml_safe
     from slicetime.interfaces.terminal import make_console, render_fix_plan
     from slicetime.pipelines import fix as fixing
 
@@ -607,12 +608,7 @@ def fix(
         if undo_journal is not None:
             if paths or do_apply:
                 raise UserError("--undo takes only the journal, no PATH and no --apply")
-            undone = fixing.undo(undo_journal)
-            for name in undone.restored:
-                click.echo(f"restored  {name}")
-            for line in undone.refused:
-                click.echo(f"refused   {line}")
-            sys.exit(1 if undone.refused else 0)
+            _fix_undo(undo_journal)
         if do_apply and plan_file is not None:
             if paths:
                 raise UserError("--apply --plan FILE applies the saved plan; give no PATH")
@@ -628,36 +624,65 @@ def fix(
                                        executor=executor, consolidate=consolidate,
                                        spread=spread,
                                        source=_source_options(None, source_map))
+            # the dry run names what --apply would refuse (one refusal writes nothing)
+            plan.notes.extend(f"--apply would refuse it, and then write nothing: {line}"
+                              for line in fixing.preflight(plan, replace_links))
             render_fix_plan(plan, console)
-    except fixing.FixError as exc:
-        raise UserError(str(exc)) from None
-    if not do_apply:
-        if plan_file is not None:
-            fixing.write_plan(plan, plan_file)
-            click.echo(f"plan saved to {plan_file}; apply it with: slicetime fix --apply "
-                       f"--plan {plan_file}")
-        sys.exit(1 if plan.changes else 0)
-    if not plan.changes:
-        sys.exit(0)
-    try:
+        if not do_apply:
+            if plan_file is not None:
+                fixing.write_plan(plan, plan_file)
+                click.echo(f"plan saved to {xml_safe(plan_file)}; apply it with: slicetime fix "
+                           f"--apply --plan {xml_safe(plan_file)}")
+            sys.exit(1 if plan.changes else 0)
+        if not plan.changes:
+            sys.exit(0)
         applied = fixing.apply_plan(plan, backup_dir=backup_dir, replace_links=replace_links)
+    except fixing.FixError as exc:
+        raise UserError(xml_safe(str(exc))) from None
     except OSError as exc:
-        raise UserError(f"cannot write the backups or files ({exc.strerror or exc}); choose "
-                        "a writable --backup-dir") from None
+        raise UserError(xml_safe(f"cannot write the backups or files ({exc.strerror or exc}); "
+                                 "choose a writable --backup-dir")) from None
     for name in applied.written:
-        click.echo(f"written   {name}")
+        click.echo(f"written   {xml_safe(name)}")
     for line in applied.refused:
-        click.echo(f"refused   {line}")
+        click.echo(f"refused   {xml_safe(line)}")
+    if applied.refused:
+        click.echo(f"nothing was written: {len(applied.refused)} of {len(plan.changes)} files "
+                   "would be refused, and a plan is applied whole or not at all")
     if applied.journal is not None:
-        click.echo(f"backups and journal: {applied.journal}  (undo: slicetime fix --undo "
-                   f"{applied.journal})")
-    left = fixing.reaudit(plan)
+        click.echo(f"backups and journal: {xml_safe(applied.journal)}  (undo: slicetime fix "
+                   f"--undo {xml_safe(applied.journal)})")
+    left = fixing.reaudit(plan) if applied.written else []
     if left:
         for finding in left:
-            click.echo(f"still     {finding.one_line()}")
+            click.echo(f"still     {xml_safe(finding.one_line())}")
     elif applied.written:
         click.echo("re-audit: the repaired runs are clean for the repaired codes")
     sys.exit(1 if applied.refused else 0)
+
+
+def _fix_undo(journal: Path) -> None:
+    """``fix --undo JOURNAL``: restore, then say exactly what was and was not done."""
+    from slicetime.interfaces.safe_text import xml_safe
+    from slicetime.pipelines import fix as fixing
+
+    try:
+        undone = fixing.undo(journal)
+    except OSError as exc:
+        raise UserError(xml_safe(f"{journal}: cannot undo ({exc.strerror or exc}); nothing "
+                                 "was restored")) from None
+    for name in undone.restored:
+        click.echo(f"restored  {xml_safe(name)}")
+    for name in undone.already:
+        click.echo(f"unchanged {xml_safe(name)}  (already restored)")
+    for name in undone.never_written:
+        click.echo(f"unchanged {xml_safe(name)}  (never written: the apply stopped before it)")
+    for line in undone.refused:
+        click.echo(f"refused   {xml_safe(line)}")
+    if undone.failure is not None:
+        click.echo(f"slicetime: {xml_safe(undone.failure)}", err=True)
+        sys.exit(2)
+    sys.exit(1 if undone.refused else 0)
 
 
 # --------------------------------------------------------------------------- timing

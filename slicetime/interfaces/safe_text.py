@@ -14,8 +14,14 @@ from typing import Any
 
 # Characters XML 1.0 cannot hold (outside Char), plus DEL and C1 controls, which
 # it allows but which are invisible and unsafe on terminals that display reports.
-_UNSAFE_TEXT = re.compile("[\x00-\x08\x0b\x0c\x0e-\x1f\x7f-\x9f\ud800-\udfff\ufffe\uffff]")
-_UNSAFE_LINE = re.compile("[\x00-\x1f\x7f-\x9f\ud800-\udfff\ufffe\uffff]")
+# Bidirectional controls (Unicode TR 9: U+061C, U+200E/F, U+202A-202E, U+2066-2069) reorder
+# the text around them on screen, so a name can show as another; line and paragraph
+# separators (U+2028/9) break lines. They become escapes too.
+_BIDI = "\u061c\u200e\u200f\u2028\u2029\u202a-\u202e\u2066-\u2069"
+_UNSAFE_TEXT = re.compile(
+    f"[\x00-\x08\x0b\x0c\x0e-\x1f\x7f-\x9f{_BIDI}\ud800-\udfff\ufffe\uffff]"
+)
+_UNSAFE_LINE = re.compile(f"[\x00-\x1f\x7f-\x9f{_BIDI}\ud800-\udfff\ufffe\uffff]")
 _NAMED = {"\t": "\\t", "\n": "\\n", "\r": "\\r"}
 
 

@@ -12,12 +12,13 @@ each is written:
   sidecar (created when missing), which overrides the inherited value;
 * a field that is absent goes into the run's own sidecar.
 
-``apply_plan`` writes each changed file atomically (temporary file, fsync,
-rename) with the original's key order, indentation and final newline, after
-copying it to a backup folder and recording a journal; it refuses a file that
-is a symbolic link (annexed content: unlock it, or ``replace_links``),
-read-only, or changed since the plan was made. ``undo`` restores every byte
-from a journal.
+``apply_plan`` applies a plan all or nothing under a per-dataset lock: every
+file is checked first (links — annexed content: unlock it, or
+``replace_links`` —, read-only, changed since the plan, outside its dataset),
+then backed up, the journal written once, and each file replaced atomically
+with only the edited value's text changed (:mod:`slicetime.pipelines.json_splice`).
+``undo`` checks the whole journal and every backup's hash before it restores
+any byte.
 """
 
 from __future__ import annotations
@@ -25,24 +26,30 @@ from __future__ import annotations
 import contextlib
 import datetime as dt
 import difflib
+import fcntl
 import hashlib
 import json
+import math
 import os
-import shutil
+import re
+import secrets
+import socket
 from collections import defaultdict
-from collections.abc import Sequence
+from collections.abc import Iterator, Sequence
 from dataclasses import dataclass, field
-from pathlib import Path
+from pathlib import Path, PurePosixPath
 from typing import Any
 
 from slicetime import __version__
 from slicetime.model import Finding, RunRecord
 from slicetime.pipelines.audit import AuditResult, audit_paths
 from slicetime.pipelines.executor import Executor
+from slicetime.pipelines.json_splice import DELETE, Layout, scan, splice
 from slicetime.readers.dataset import find_root
 from slicetime.readers.entities import parse_name
 from slicetime.readers.errors import ReadError
 from slicetime.readers.policy import POLICY_FILENAME, Policy, find_policy, load_policy
+from slicetime.readers.sidecar import MAX_SIDECAR_BYTES, TIMING_FIELDS
 from slicetime.readers.source import SourceOptions
 from slicetime.readers.volumes import file_sha256
 from slicetime.rules import RULES
@@ -79,14 +86,21 @@ class FileChange:
         return sorted({r.run for r in self.repairs})
 
     def diff(self) -> str:
-        before = self.before.splitlines(keepends=True) if self.before is not None else []
-        after = self.after.splitlines(keepends=True)
+        """A unified diff, one output line per line of the file.
+
+        Characters that would break a line on screen (in the file name, or raw
+        U+2028 in a JSON string) are written as escapes, so a renderer that
+        splits on line breaks and escapes the rest sees the true lines.
+        """
+        before = _diff_lines(self.before) if self.before is not None else []
+        after = _diff_lines(self.after)
+        name = _one_line(self.file)
         lines = difflib.unified_diff(
             before, after,
-            fromfile=f"a/{self.file}" if self.before is not None else "/dev/null",
-            tofile=f"b/{self.file}",
+            fromfile=f"a/{name}" if self.before is not None else "/dev/null",
+            tofile=f"b/{name}", lineterm="",
         )
-        return "".join(line if line.endswith("\n") else line + "\n" for line in lines)
+        return "".join(line + "\n" for line in lines)
 
     def to_json(self) -> dict[str, Any]:
         return {
@@ -113,6 +127,27 @@ class FixPlan:
             "changes": [c.to_json() for c in self.changes],
             "notes": self.notes,
         }
+
+
+#: what str.splitlines breaks on, besides the newline itself
+_BREAKS = re.compile("[\r\x0b\x0c\x1c-\x1e\x85\u2028\u2029\n]")
+
+
+def _one_line(text: str) -> str:
+    def escape(match: re.Match[str]) -> str:
+        char = match.group(0)
+        code = ord(char)
+        named = {"\n": "\\n", "\r": "\\r"}
+        return named.get(char) or (f"\\u{code:04x}" if code > 0xFF else f"\\x{code:02x}")
+
+    return _BREAKS.sub(escape, text)
+
+
+def _diff_lines(text: str) -> list[str]:
+    lines = text.split("\n")
+    if lines and lines[-1] == "":
+        lines.pop()  # the final newline ends the last line; it is not a line of its own
+    return [_one_line(line) for line in lines]
 
 
 def _repair_json(repair: Repair) -> dict[str, Any]:
@@ -167,24 +202,18 @@ class JsonStyle:
         return text + ("\n" if self.final_newline else "")
 
 
-def _load_for_edit(path: Path) -> tuple[str, dict[str, Any]]:
-    """The text and the ordered content of a sidecar about to be edited."""
-    text = path.read_text(encoding="utf-8")
-    pairs_seen: list[str] = []
-
-    def no_duplicates(pairs: list[tuple[str, Any]]) -> dict[str, Any]:
-        keys = [k for k, _ in pairs]
-        if len(keys) != len(set(keys)):
-            pairs_seen.extend(k for k in keys if keys.count(k) > 1)
-        return dict(pairs)
-
-    data = json.loads(text, object_pairs_hook=no_duplicates)
-    if pairs_seen:
-        raise ValueError(f"it repeats the key {sorted(set(pairs_seen))[0]!r}; a rewrite would "
-                         "drop one of the values, so fix that by hand first")
-    if not isinstance(data, dict):
-        raise ValueError("its top level is not a JSON object")
-    return text, data
+def _load_for_edit(path: Path) -> tuple[str, Layout]:
+    """The exact text of a sidecar about to be edited, and where its members sit."""
+    if path.is_symlink() and not path.is_file():
+        raise ValueError("it is a link to something that is not a regular file")
+    if path.exists() and not path.is_file():
+        raise ValueError("it is not a regular file")
+    with open(path, "rb") as fh:
+        data = fh.read(MAX_SIDECAR_BYTES + 1)
+    if len(data) > MAX_SIDECAR_BYTES:
+        raise ValueError(f"it is larger than {MAX_SIDECAR_BYTES} bytes")
+    text = data.decode("utf-8")  # no newline translation: every byte is kept
+    return text, scan(text)
 
 
 # --------------------------------------------------------------------------- planning
@@ -248,6 +277,7 @@ def plan_fix(
     policies = _policies(roots, policy_file)
     plan = FixPlan(audit=audit)
     runs: list[tuple[RunRecord, list[Finding]]] = [(r.record, r.findings) for r in audit.runs]
+    _check_fields(runs, consolidate, spread)
     # the runs under the given paths, resolved once (realpath per run is file-system work)
     wanted = {(r.root, r.path) for r, _ in runs if _under(r, targets)}
     repairs: list[Repair] = []
@@ -265,6 +295,26 @@ def plan_fix(
     for repair in repairs:
         plan.repaired_runs.setdefault(repair.root, set()).add(repair.run)
     return plan
+
+
+def _check_fields(
+    runs: Sequence[tuple[RunRecord, list[Finding]]],
+    consolidate: Sequence[str],
+    spread: Sequence[str],
+) -> None:
+    """``FixError`` for a --consolidate/--spread field that no run has and BIDS timing lacks."""
+    asked = [("--consolidate", k) for k in consolidate] + [("--spread", k) for k in spread]
+    if not asked:
+        return
+    known = set(TIMING_FIELDS)
+    for record, _ in runs:
+        known.update(record.metadata)
+    for option, key in asked:
+        if key not in known:
+            close = difflib.get_close_matches(key, sorted(known), n=1, cutoff=0.6)
+            guess = f"; did you mean {close[0]!r}?" if close else ""
+            raise FixError(f"{option} {key!r}: no run in the dataset has this field and it is "
+                           f"not a known timing field{guess}")
 
 
 def _explain_unrepaired(
@@ -336,30 +386,56 @@ def _build_change(
     path = Path(root) / file
     try:
         if path.exists() or path.is_symlink():
-            before, data = _load_for_edit(path)
-            style = JsonStyle.of(before)
+            before: str | None
+            before, _ = _load_for_edit(path)
         else:
-            before, data, style = None, {}, JsonStyle()
+            before = None
     except (OSError, UnicodeDecodeError, ValueError) as exc:
-        plan.notes.append(f"{file}: not changed: {exc}")
+        plan.notes.append(f"{file}: not changed: {_reason(exc)}")
         return None
     chosen: list[Repair] = []
+    edits: list[tuple[str, Any]] = []
     for key, group in fields.items():
         values = {_value_key(r.value) for r in group}
         if len(values) != 1:
             plan.notes.append(f"{file}: {key} not changed: the repairs disagree on its value")
             continue
-        if group[0].value is REMOVE:
-            data.pop(key, None)
-        else:
-            data[key] = group[0].value
+        if group[0].value is not REMOVE and not _finite(group[0].value):
+            plan.notes.append(f"{file}: {key} not changed: the new value is not a finite number")
+            continue
+        edits.append((key, DELETE if group[0].value is REMOVE else group[0].value))
         chosen.extend(group)
     if not chosen:
         return None
-    after = style.dumps(data)
+    if before is None:
+        after = JsonStyle().dumps({k: v for k, v in edits if v is not DELETE})
+    else:
+        try:
+            after = splice(before, edits)
+        except ValueError as exc:
+            plan.notes.append(f"{file}: not changed: {_reason(exc)}")
+            return None
     if after == before:
         return None
     return FileChange(root, file, before, after, _current_sha(path), chosen)
+
+
+def _reason(exc: BaseException) -> str:
+    if isinstance(exc, OSError):
+        return exc.strerror or str(exc)
+    if isinstance(exc, UnicodeDecodeError):
+        return "it is not UTF-8 text"
+    return str(exc)
+
+
+def _finite(value: Any) -> bool:
+    if isinstance(value, float):
+        return math.isfinite(value)
+    if isinstance(value, list | tuple):
+        return all(_finite(v) for v in value)
+    if isinstance(value, dict):
+        return all(_finite(v) for v in value.values())
+    return True
 
 
 # --------------------------------------------------------------------------- layout
@@ -461,6 +537,59 @@ def _layout_moves(
     return moves
 
 
+# --------------------------------------------------------------------------- confinement
+
+_SHA = re.compile(r"[0-9a-f]{64}\Z")
+_TOKEN = re.compile(r"[0-9a-f]{8,32}\Z")
+
+
+def is_dataset_root(root: Path) -> bool:
+    """An absolute folder that holds ``dataset_description.json`` or ``sub-*`` folders."""
+    try:
+        if not root.is_absolute() or not root.is_dir():
+            return False
+        if (root / "dataset_description.json").is_file():
+            return True
+        with os.scandir(root) as entries:
+            return any(e.name.startswith("sub-") and e.is_dir() for e in entries)
+    except (OSError, ValueError):
+        return False
+
+
+def _inside(path: str, folder: str) -> bool:
+    return path == folder or path.startswith(folder.rstrip(os.sep) + os.sep)
+
+
+def confinement_problem(root: str, file: object) -> str | None:
+    """Why ``file`` is not a sidecar inside the dataset ``root`` (None when it is).
+
+    A plan or journal names files relative to a dataset root; slicetime only
+    ever writes sidecars (``.json``, not hidden) whose folder, links resolved,
+    is inside the root.
+    """
+    if not isinstance(file, str) or not file:
+        return "no file name"
+    pure = PurePosixPath(file)
+    if pure.is_absolute() or "\\" in file or ".." in pure.parts or "\x00" in file:
+        return f"the file {file!r} is not a plain path inside its dataset"
+    if any(part.startswith(".") for part in pure.parts) or not pure.name.endswith(".json"):
+        return f"the file {file!r} is not a sidecar (slicetime writes only .json sidecars)"
+    real_root = os.path.realpath(root)
+    real_folder = os.path.realpath(os.path.join(root, *pure.parts[:-1]))
+    if not _inside(real_folder, real_root):
+        return f"the folder of {file!r} leads out of the dataset through a link"
+    return None
+
+
+def _check_root(root: object, where: Path, what: str) -> str:
+    if not isinstance(root, str) or not is_dataset_root(Path(root)):
+        raise FixError(f"{where}: the {what} names {root!r} as a dataset root, but it is not "
+                       "one (an absolute folder with dataset_description.json or sub-* "
+                       f"folders); the whole {what} is refused, nothing was "
+                       f"{'restored' if what == 'journal' else 'written'}")
+    return root
+
+
 # --------------------------------------------------------------------------- plan files
 
 
@@ -471,32 +600,104 @@ def write_plan(plan: FixPlan, path: Path) -> None:
 def _load_marked(path: Path, marker: str, what: str) -> dict[str, Any]:
     """A JSON file slicetime wrote (a plan or a journal), checked by its format marker."""
     try:
-        content = json.loads(path.read_text(encoding="utf-8"))
+        with open(path, "rb") as fh:
+            raw = fh.read(1 << 30)
+        content = json.loads(raw.decode("utf-8"))
     except (OSError, ValueError) as exc:
-        raise FixError(f"{path}: cannot read the {what} ({exc})") from None
+        why = exc.strerror if isinstance(exc, OSError) and exc.strerror else str(exc)
+        raise FixError(f"{path}: cannot read the {what} ({why})") from None
     if not isinstance(content, dict) or content.get("format") != marker:
         raise FixError(f"{path}: not a slicetime fix {what} (format {marker!r} expected)")
     return content
 
 
 def read_plan(path: Path) -> FixPlan:
+    """A saved plan, every change confined to a dataset root re-checked now."""
     content = _load_marked(path, PLAN_FORMAT, "plan")
-    plan = FixPlan(notes=list(content.get("notes", [])))
-    for item in content.get("changes", []):
+    notes = content.get("notes", [])
+    plan = FixPlan(notes=[str(n) for n in notes] if isinstance(notes, list) else [])
+    changes = content.get("changes", [])
+    if not isinstance(changes, list):
+        raise FixError(f"{path}: the plan is damaged (changes is not a list)")
+    for n, item in enumerate(changes, 1):
+        if not isinstance(item, dict) or not all(
+            k in item for k in ("root", "file", "sha256_before", "content_after")
+        ):
+            raise FixError(f"{path}: the plan is damaged (change {n} lacks root, file, "
+                           "sha256_before or content_after)")
+        root = _check_root(item["root"], path, "plan")
+        file, sha, after = item["file"], item["sha256_before"], item["content_after"]
+        problem = confinement_problem(root, file)
+        if problem is not None:
+            raise FixError(f"{path}: change {n}: {problem}; the whole plan is refused")
+        if sha is not None and not (isinstance(sha, str) and _SHA.match(sha)):
+            raise FixError(f"{path}: change {n}: sha256_before is not a SHA-256")
         try:
-            root, file = str(item["root"]), str(item["file"])
-            sha = item["sha256_before"]
-            change = FileChange(root, file, None, str(item["content_after"]),
-                                str(sha) if sha is not None else None)
-        except (KeyError, TypeError):
-            raise FixError(f"{path}: the plan is damaged (a change lacks root, file, "
-                           "sha256_before or content_after)") from None
-        if Path(file).is_absolute() or ".." in Path(file).parts:
-            raise FixError(f"{path}: the plan names a file outside its dataset: {file}")
-        plan.changes.append(change)
-        runs = {str(r.get("run")) for r in item.get("repairs", []) if isinstance(r, dict)}
+            parsed = json.loads(after) if isinstance(after, str) else None
+        except ValueError:
+            parsed = None
+        if not isinstance(parsed, dict):
+            raise FixError(f"{path}: change {n}: content_after is not a JSON object")
+        plan.changes.append(FileChange(root, str(file), None, after, sha))
+        repairs = item.get("repairs", [])
+        runs = {str(r.get("run")) for r in repairs if isinstance(r, dict)} if isinstance(
+            repairs, list) else set()
         plan.repaired_runs.setdefault(root, set()).update(runs)
     return plan
+
+
+# --------------------------------------------------------------------------- locking
+
+LOCK_NAME = ".slicetime-fix.lock"
+
+
+def _lock_one(root: Path) -> tuple[Path, int]:
+    """Hold ``root/.slicetime-fix.lock`` (flock); the kernel frees it if the process dies."""
+    path = root / LOCK_NAME
+    for _ in range(5):
+        try:
+            fd = os.open(path, os.O_RDWR | os.O_CREAT | getattr(os, "O_NOFOLLOW", 0), 0o644)
+        except OSError as exc:
+            raise FixError(f"{root}: cannot create the lock file {LOCK_NAME} "
+                           f"({exc.strerror or exc}); slicetime writes a dataset only while "
+                           "it holds that lock") from None
+        try:
+            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except OSError:
+            try:
+                holder = os.pread(fd, 200, 0).decode("utf-8", "replace").strip()
+            except OSError:
+                holder = ""
+            os.close(fd)
+            raise FixError(f"{root}: another slicetime fix is writing this dataset now "
+                           f"({holder or 'process unknown'}); wait until it ends, then make "
+                           "a new plan") from None
+        try:  # the previous holder may have removed the file between our open and flock
+            same = os.fstat(fd).st_ino == os.lstat(path).st_ino
+        except FileNotFoundError:
+            same = False
+        if same:
+            note = f"pid {os.getpid()} on {socket.gethostname()}\n".encode()
+            os.ftruncate(fd, 0)
+            os.pwrite(fd, note, 0)
+            return path, fd
+        os.close(fd)
+    raise FixError(f"{root}: cannot take the lock {LOCK_NAME}: it keeps being replaced")
+
+
+@contextlib.contextmanager
+def dataset_lock(roots: Sequence[str]) -> Iterator[None]:
+    """Hold the fix lock of every root (sorted, all or none) while writing."""
+    held: list[tuple[Path, int]] = []
+    try:
+        for root in sorted(set(roots)):
+            held.append(_lock_one(Path(root)))
+        yield
+    finally:
+        for path, fd in reversed(held):
+            with contextlib.suppress(OSError):
+                os.unlink(path)
+            os.close(fd)
 
 
 # --------------------------------------------------------------------------- applying
@@ -509,6 +710,29 @@ class ApplyResult:
     refused: list[str] = field(default_factory=list)  # one line per refused file
 
 
+@dataclass
+class JournalEntry:
+    """One file as the journal records it (paths checked when read back)."""
+
+    root: str
+    file: str
+    action: str  # modified | created | replaced-link
+    before_sha256: str | None
+    after_sha256: str
+    backup: str | None = None  # relative to the journal's folder
+    mode: int | None = None
+    link_target: str | None = None
+
+    @property
+    def path(self) -> Path:
+        return Path(self.root) / self.file
+
+    def to_json(self) -> dict[str, Any]:
+        return {"root": self.root, "file": self.file, "action": self.action,
+                "before_sha256": self.before_sha256, "after_sha256": self.after_sha256,
+                "backup": self.backup, "mode": self.mode, "link_target": self.link_target}
+
+
 def default_backup_dir(roots: Sequence[str]) -> Path:
     """``<dataset>-slicetime-backups/<UTC time>`` beside the (first) dataset root."""
     root = Path(roots[0]) if roots else Path.cwd()
@@ -518,6 +742,9 @@ def default_backup_dir(roots: Sequence[str]) -> Path:
 
 def _refusal(change: FileChange, replace_links: bool, expected_sha: str | None) -> str | None:
     path = change.path
+    problem = confinement_problem(change.root, change.file)
+    if problem is not None:
+        return f"{change.file}: {problem}"
     if path.is_symlink():
         if not replace_links:
             target = os.readlink(path)
@@ -527,15 +754,32 @@ def _refusal(change: FileChange, replace_links: bool, expected_sha: str | None) 
                     "links: unlock it with your annex tool (its unlock command), or pass "
                     "--replace-links to replace the link with a regular file")
     elif path.exists():
+        if not path.is_file():
+            return f"{change.file}: is not a regular file"
         if not os.access(path, os.W_OK):
             return f"{change.file}: is read-only; make it writable (chmod u+w) to fix it"
-    if not os.access(path.parent if path.parent.exists() else Path(change.root), os.W_OK):
+    if not path.parent.is_dir():
+        return f"{change.file}: its folder does not exist"
+    if not os.access(path.parent, os.W_OK):
         return f"{change.file}: its folder is not writable"
-    current = _current_sha(path)
+    try:
+        current = _current_sha(path)
+    except OSError as exc:
+        return f"{change.file}: cannot be read ({exc.strerror or exc})"
     if current != expected_sha:
         return (f"{change.file}: changed since the plan was made (or created); make a new "
                 "plan and review it")
     return None
+
+
+def preflight(plan: FixPlan, replace_links: bool = False) -> list[str]:
+    """Every file ``apply_plan`` would refuse, one line each (none: it can write all)."""
+    out = []
+    for change in plan.changes:
+        reason = _refusal(change, replace_links, change.sha256_before)
+        if reason is not None:
+            out.append(reason)
+    return out
 
 
 def _current_sha(path: Path) -> str | None:
@@ -545,67 +789,151 @@ def _current_sha(path: Path) -> str | None:
         return None
 
 
+def _prepare_backup_dir(backup_dir: Path | None, roots: Sequence[str]) -> Path:
+    if backup_dir is not None:
+        backup = Path(os.path.abspath(backup_dir))
+        if (backup / JOURNAL_NAME).exists() or (backup / JOURNAL_NAME).is_symlink():
+            raise FixError(f"{backup}: already holds the journal of an earlier --apply; give "
+                           "a new or empty --backup-dir (the earlier journal is needed to "
+                           "undo that fix)")
+    else:
+        backup = default_backup_dir(roots)
+    real = os.path.realpath(backup)
+    for root in roots:
+        if _inside(real, os.path.realpath(root)):
+            raise FixError(f"{backup}: the backups would be inside the dataset {root}; "
+                           "choose a --backup-dir outside it")
+    base = backup
+    for n in range(1, 1000):
+        try:
+            backup.mkdir(parents=True, exist_ok=backup_dir is not None)
+            return backup
+        except FileExistsError:
+            backup = base.with_name(f"{base.name}-{n}")
+    raise FixError(f"{base}: cannot make a new backup folder there")
+
+
 def apply_plan(
     plan: FixPlan, *, backup_dir: Path | None = None, replace_links: bool = False
 ) -> ApplyResult:
-    """Write the planned changes, each after a backup; return the journal's path."""
+    """Write the planned changes, all or none, after backing every file up.
+
+    Under the lock of every dataset root: every file is checked first (links,
+    read-only, changed since the plan, out of its dataset) and one refusal
+    writes nothing. Then each original is copied to the backup folder, the
+    journal (before and after SHA-256 of every file) is written once, and the
+    files are replaced atomically. When a write fails, the files already written
+    are put back from the backups.
+    """
     if not plan.changes:
         return ApplyResult(None)
-    backup = backup_dir or default_backup_dir([c.root for c in plan.changes])
-    backup.mkdir(parents=True, exist_ok=True)
+    roots = list(dict.fromkeys(c.root for c in plan.changes))
+    with dataset_lock(roots):
+        refused = preflight(plan, replace_links)
+        if refused:
+            return ApplyResult(None, refused=refused)
+        backup = _prepare_backup_dir(backup_dir, roots)
+        return _apply_checked(plan, roots, backup)
+
+
+def _fsync_folder(folder: Path) -> None:
+    with contextlib.suppress(OSError):
+        fd = os.open(folder, os.O_RDONLY)
+        try:
+            os.fsync(fd)
+        finally:
+            os.close(fd)
+
+
+def _backup_name(roots: Sequence[str], root: str) -> str:
+    name = re.sub(r"[^A-Za-z0-9._-]", "_", Path(root).name) or "root"
+    return f"{roots.index(root) + 1}-{name}"
+
+
+def _apply_checked(plan: FixPlan, roots: list[str], backup: Path) -> ApplyResult:
     journal_path = backup / JOURNAL_NAME
-    entries: list[dict[str, Any]] = []
-    result = ApplyResult(journal_path)
+    token = secrets.token_hex(8)
+    entries: list[JournalEntry] = []
     for change in plan.changes:
-        expected = change.sha256_before
-        reason = _refusal(change, replace_links, expected)
-        if reason is not None:
-            result.refused.append(reason)
-            continue
         path = change.path
-        entry: dict[str, Any] = {"root": change.root, "file": change.file,
-                                 "after_sha256": _sha(change.after.encode("utf-8"))}
-        mode = None
+        entry = JournalEntry(change.root, change.file, "created", None,
+                             _sha(change.after.encode("utf-8")))
         if path.is_symlink():
-            entry.update(action="replaced-link", link_target=os.readlink(path),
-                         before_sha256=expected, backup=None)
+            entry.action, entry.link_target = "replaced-link", os.readlink(path)
+            entry.before_sha256 = change.sha256_before
         elif path.exists():
-            saved = backup / "files" / Path(change.root).name / change.file
+            data = path.read_bytes()
+            if _sha(data) != change.sha256_before:
+                raise FixError(f"{change.file}: changed while the backups were being made; "
+                               "nothing was written, make a new plan")
+            rel = f"files/{_backup_name(roots, change.root)}/{change.file}"
+            saved = backup / rel
             saved.parent.mkdir(parents=True, exist_ok=True)
-            shutil.copy2(path, saved)
-            mode = path.stat().st_mode & 0o7777
-            entry.update(action="modified", before_sha256=expected,
-                         backup=saved.relative_to(backup).as_posix(), mode=mode)
-        else:
-            entry.update(action="created", before_sha256=None, backup=None)
+            with open(saved, "xb") as fh:
+                fh.write(data)
+                fh.flush()
+                os.fsync(fh.fileno())
+            entry.action, entry.backup = "modified", rel
+            entry.before_sha256 = change.sha256_before
+            entry.mode = path.stat().st_mode & 0o7777
         entries.append(entry)
-        _write_journal(journal_path, entries, "in progress")
-        path.parent.mkdir(parents=True, exist_ok=True)
-        _atomic_write(path, change.after.encode("utf-8"), mode)
+    _write_journal(journal_path, roots, token, entries, "prepared")
+    _fsync_folder(backup)
+    result = ApplyResult(journal_path)
+    done: list[JournalEntry] = []
+    for n, (change, entry) in enumerate(zip(plan.changes, entries, strict=True)):
+        try:
+            _atomic_write(change.path, change.after.encode("utf-8"), entry.mode,
+                          _temp_name(token, n))
+        except OSError as exc:
+            _roll_back(exc, change.file, done, backup, token, roots, journal_path)
+        done.append(entry)
         result.written.append(change.file)
-    if entries:
-        _write_journal(journal_path, entries, "applied")
-    else:
-        with contextlib.suppress(OSError):
-            journal_path.unlink()
-            backup.rmdir()
-        result.journal = None
+    for folder in {e.path.parent for e in entries}:
+        _fsync_folder(folder)
+    _write_journal(journal_path, roots, token, entries, "applied")
     return result
 
 
-def _write_journal(path: Path, entries: list[dict[str, Any]], status: str) -> None:
+def _roll_back(exc: OSError, file: str, done: list[JournalEntry], backup: Path, token: str,
+               roots: list[str], journal_path: Path) -> None:
+    stuck: list[str] = []
+    for n, entry in reversed(list(enumerate(done))):
+        try:
+            _restore(entry, backup, _temp_name(token, n))
+        except (OSError, FixError):
+            stuck.append(entry.file)
+    why = exc.strerror or str(exc)
+    if stuck:
+        raise FixError(f"cannot write {file} ({why}); {len(done) - len(stuck)} of the "
+                       f"{len(done)} files written before it were put back, not "
+                       f"{', '.join(stuck[:3])}: run slicetime fix --undo {journal_path}")
+    with contextlib.suppress(OSError):
+        _write_journal(journal_path, roots, token, done, "rolled back")
+    raise FixError(f"cannot write {file} ({why}); nothing is changed: the {len(done)} files "
+                   "written before it were put back from the backups")
+
+
+def _temp_name(token: str, n: int) -> str:
+    return f".slicetime-{token}-{n}.tmp"
+
+
+def _write_journal(path: Path, roots: Sequence[str], token: str,
+                   entries: Sequence[JournalEntry], status: str) -> None:
     content = {
         "format": JOURNAL_FORMAT,
         "tool": {"name": "slicetime", "version": __version__},
         "status": status,
-        "entries": entries,
+        "roots": list(roots),
+        "temp_token": token,
+        "entries": [e.to_json() for e in entries],
     }
-    _atomic_write(path, (json.dumps(content, indent=2) + "\n").encode("utf-8"), None)
+    _atomic_write(path, (json.dumps(content, indent=1) + "\n").encode("utf-8"), None)
 
 
-def _atomic_write(path: Path, data: bytes, mode: int | None) -> None:
+def _atomic_write(path: Path, data: bytes, mode: int | None, temp: str | None = None) -> None:
     """Write ``data`` to ``path`` by rename; a link at ``path`` is replaced, never followed."""
-    tmp = path.with_name(f".{path.name}.slicetime-{os.getpid()}.tmp")
+    tmp = path.with_name(temp or f".slicetime-{secrets.token_hex(8)}.tmp")
     try:
         with open(tmp, "xb") as fh:
             fh.write(data)
@@ -625,34 +953,200 @@ def _atomic_write(path: Path, data: bytes, mode: int | None) -> None:
 @dataclass
 class UndoResult:
     restored: list[str] = field(default_factory=list)
+    already: list[str] = field(default_factory=list)  # at their bytes before the fix
+    never_written: list[str] = field(default_factory=list)  # the apply stopped before them
     refused: list[str] = field(default_factory=list)
+    failure: str | None = None  # the undo stopped here; ``restored`` says what was done
+
+
+@dataclass
+class _Journal:
+    path: Path
+    status: str
+    roots: list[str]
+    token: str | None
+    entries: list[JournalEntry]
+
+
+def _read_journal(journal_path: Path) -> _Journal:
+    """A journal with every entry checked; one entry out of bounds refuses it all."""
+    content = _load_marked(journal_path, JOURNAL_FORMAT, "journal")
+    where = journal_path
+
+    def damaged(why: str) -> FixError:
+        return FixError(f"{where}: {why}; the journal is refused, nothing was restored")
+
+    raw_entries = content.get("entries")
+    if not isinstance(raw_entries, list):
+        raise damaged("it has no list of entries")
+    raw_roots = content.get("roots")
+    if raw_roots is None:  # journals written before roots were recorded
+        raw_roots = list(dict.fromkeys(e.get("root") for e in raw_entries if isinstance(e, dict)))
+    if not isinstance(raw_roots, list):
+        raise damaged("its roots are not a list")
+    roots = [_check_root(r, where, "journal") for r in raw_roots]
+    token = content.get("temp_token")
+    if token is not None and not (isinstance(token, str) and _TOKEN.match(token)):
+        raise damaged("its temp_token is malformed")
+    status = content.get("status")
+    real_backup = os.path.realpath(journal_path.parent)
+    entries: list[JournalEntry] = []
+    seen: set[tuple[str, str]] = set()
+    for n, raw in enumerate(raw_entries, 1):
+        if not isinstance(raw, dict):
+            raise damaged(f"entry {n} is not an object")
+        for key in ("root", "file", "action", "after_sha256"):
+            if key not in raw:
+                raise damaged(f"entry {n} lacks {key!r}")
+        root, file, action = raw["root"], raw["file"], raw["action"]
+        if root not in roots:
+            raise damaged(f"entry {n}: its root {root!r} is not one of the journal's roots")
+        problem = confinement_problem(root, file)
+        if problem is not None:
+            raise damaged(f"entry {n}: {problem}")
+        if (root, file) in seen:
+            raise damaged(f"entry {n}: {file!r} is recorded twice")
+        seen.add((root, file))
+        after, before = raw["after_sha256"], raw.get("before_sha256")
+        if not (isinstance(after, str) and _SHA.match(after)):
+            raise damaged(f"entry {n}: after_sha256 is not a SHA-256")
+        entry = JournalEntry(root, file, str(action), None, after)
+        if action == "created":
+            if before is not None:
+                raise damaged(f"entry {n}: a created file has a before_sha256")
+        elif action in ("modified", "replaced-link"):
+            if not (isinstance(before, str) and _SHA.match(before)):
+                raise damaged(f"entry {n}: before_sha256 is missing or not a SHA-256")
+            entry.before_sha256 = before
+        else:
+            raise damaged(f"entry {n}: unknown action {action!r}")
+        if action == "modified":
+            backup, mode = raw.get("backup"), raw.get("mode")
+            if not isinstance(backup, str) or not backup:
+                raise damaged(f"entry {n}: the backup of {file!r} is not named")
+            pure = PurePosixPath(backup)
+            real = os.path.realpath(journal_path.parent / backup)
+            if (pure.is_absolute() or ".." in pure.parts or not pure.parts
+                    or pure.parts[0] != "files" or not _inside(real, real_backup)):
+                raise damaged(f"entry {n}: the backup {backup!r} is outside the backup folder")
+            if mode is not None and not (isinstance(mode, int) and 0 <= mode <= 0o7777):
+                raise damaged(f"entry {n}: mode is not a file mode")
+            entry.backup, entry.mode = backup, mode
+        if action == "replaced-link":
+            target = raw.get("link_target")
+            if not isinstance(target, str) or not target or os.path.isabs(target):
+                raise damaged(f"entry {n}: link_target is missing or absolute")
+            landing = os.path.normpath(os.path.join(os.path.dirname(entry.path), target))
+            if not _inside(landing, os.path.normpath(root)):
+                raise damaged(f"entry {n}: the link target {target!r} points out of the dataset")
+            entry.link_target = target
+        entries.append(entry)
+    return _Journal(journal_path, str(status), roots, token, entries)
+
+
+def _backup_bytes(entry: JournalEntry, backup: Path) -> bytes:
+    """The backup of ``entry``, checked against its recorded SHA-256 (``FixError`` if not)."""
+    assert entry.backup is not None
+    path = backup / entry.backup
+    if path.is_symlink() or not path.is_file():
+        raise FixError(f"{path}: the backup of {entry.file} is missing (or not a regular "
+                       "file); nothing was restored")
+    data = path.read_bytes()
+    if _sha(data) != entry.before_sha256:
+        raise FixError(f"{path}: the backup of {entry.file} does not match the SHA-256 the "
+                       "journal recorded before the fix; nothing was restored")
+    return data
+
+
+def _state(entry: JournalEntry) -> str:
+    """``before``, ``after`` or ``other``: where the file stands against the journal."""
+    path = entry.path
+    if path.is_symlink():
+        if entry.action == "replaced-link" and os.readlink(path) == entry.link_target:
+            return "before"
+        return "other"
+    if path.exists() and not path.is_file():
+        return "other"
+    sha = _current_sha(path)
+    if sha == entry.after_sha256:
+        return "after"
+    if sha == entry.before_sha256 and entry.action != "replaced-link":
+        return "before"
+    return "other"
+
+
+def _restore(entry: JournalEntry, backup: Path, temp: str) -> None:
+    path = entry.path
+    if entry.action == "created":
+        path.unlink()
+    elif entry.action == "replaced-link":
+        assert entry.link_target is not None
+        tmp = path.with_name(temp)
+        with contextlib.suppress(FileNotFoundError):
+            os.unlink(tmp)
+        os.symlink(entry.link_target, tmp)
+        os.replace(tmp, path)
+    else:
+        _atomic_write(path, _backup_bytes(entry, backup), entry.mode, temp)
+
+
+def _remove_temps(entries: Sequence[JournalEntry], token: str | None) -> None:
+    """Remove what an interrupted apply may have left: its own temporary files only.
+
+    The temporary file of the n-th entry is ``.slicetime-<token>-<n>.tmp`` beside it.
+    """
+    if token is None:
+        return
+    for n, entry in enumerate(entries):
+        tmp = entry.path.with_name(_temp_name(token, n))
+        with contextlib.suppress(OSError):
+            if tmp.is_symlink() or tmp.is_file():
+                tmp.unlink()
 
 
 def undo(journal_path: Path) -> UndoResult:
-    """Restore every file a journal records, newest first, byte for byte."""
-    content = _load_marked(journal_path, JOURNAL_FORMAT, "journal")
-    backup = journal_path.parent
+    """Restore every file a journal records, newest first, byte for byte.
+
+    The journal is checked whole before anything is written (every entry inside
+    a dataset root and the backup folder, every backup matching its recorded
+    SHA-256). Files already at their bytes from before the fix are reported, not
+    written; files changed since the fix are refused and left alone.
+    """
+    journal = _read_journal(Path(os.path.abspath(journal_path)))
+    backup = journal.path.parent
     result = UndoResult()
-    for entry in reversed(content.get("entries", [])):
-        path = Path(entry["root"]) / entry["file"]
-        if _current_sha(path) != entry["after_sha256"] and not (
-            entry["action"] == "replaced-link" and path.is_symlink()
-        ):
-            result.refused.append(f"{entry['file']}: changed since the fix; not restored")
-            continue
-        action = entry["action"]
-        if action == "created":
-            path.unlink()
-        elif action == "replaced-link":
-            tmp = path.with_name(f".{path.name}.slicetime-{os.getpid()}.link")
-            with contextlib.suppress(FileNotFoundError):
-                os.unlink(tmp)
-            os.symlink(entry["link_target"], tmp)
-            os.replace(tmp, path)
-        else:
-            data = (backup / entry["backup"]).read_bytes()
-            _atomic_write(path, data, entry.get("mode"))
-        result.restored.append(entry["file"])
+    with dataset_lock(journal.roots):
+        for entry in journal.entries:
+            if entry.action == "modified":
+                _backup_bytes(entry, backup)
+        todo: list[tuple[int, JournalEntry]] = []
+        for n, entry in enumerate(journal.entries):
+            state = _state(entry)
+            if state == "after":
+                todo.append((n, entry))
+            elif state == "before":
+                (result.never_written if journal.status == "prepared"
+                 else result.already).append(entry.file)
+            else:
+                result.refused.append(f"{entry.file}: changed since the fix; not restored")
+        for n, entry in reversed(todo):
+            try:
+                _restore(entry, backup, _temp_name(journal.token or secrets.token_hex(8), n))
+            except (OSError, FixError) as exc:
+                why = exc.strerror if isinstance(exc, OSError) and exc.strerror else str(exc)
+                left = len(todo) - len(result.restored)
+                result.failure = (f"{entry.file}: cannot be restored ({why}); the undo stopped: "
+                                  f"{len(result.restored)} files restored (listed above), "
+                                  f"{left} not restored yet; fix the cause and run the undo "
+                                  "again")
+                break
+            result.restored.append(entry.file)
+        if journal.token is not None:
+            _remove_temps(journal.entries, journal.token)
+        if result.failure is None and not result.refused:
+            with contextlib.suppress(OSError):
+                _write_journal(journal.path, journal.roots, journal.token or "",
+                               journal.entries, "undone")
     return result
 
 

@@ -2,7 +2,9 @@
 
 Each repair is proposed only when the evidence is unambiguous:
 
-* ``timing/units-ms``: every SliceTiming entry divided by 1000;
+* ``timing/units-ms``: every SliceTiming entry divided by 1000, only when the
+  list exceeds a trusted TR (sidecar RepetitionTime or VolumeTiming, plausible)
+  and fits it once divided;
 * ``timing/from-header``: the times the NIfTI header encodes (slice_code,
   slice_duration, dim_info) written as SliceTiming (and SliceEncodingDirection
   when the header's slice axis is not the BIDS default ``k``);
@@ -28,6 +30,7 @@ a repair only says which sidecar supplies the current value.
 from __future__ import annotations
 
 import dataclasses
+import math
 from collections import defaultdict
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
@@ -102,14 +105,58 @@ def _repair(record: RunRecord, code: str, key: str, value: Any, source: str,
     )
 
 
+#: the repetition times a trusted window may have, in seconds: an fMRI volume takes
+#: at least tens of milliseconds and at most about a minute (common practice, no source)
+PLAUSIBLE_TR = (0.05, 100.0)
+
+
+def _trusted_window(record: RunRecord) -> tuple[float, float] | None:
+    """The TR and the window the times must fit, when it comes from evidence that is itself trusted.
+
+    Only a RepetitionTime (or VolumeTiming) written in a sidecar, inside
+    :data:`PLAUSIBLE_TR`, qualifies: a TR from the header (whose units may be
+    wrong) or an implausible one settles nothing. A shorter FrameAcquisitionDuration
+    or DelayTime window narrows it only when it is itself plausible (inside the TR
+    and not below the lower bound); otherwise it is ignored.
+    """
+    schedule = record.schedule
+    if schedule is None:
+        return None
+    tr_source = schedule.sources.get("RepetitionTime")
+    tr: float | None = None
+    if schedule.repetition_time is not None and tr_source is not None \
+            and tr_source.kind == "sidecar":
+        tr = schedule.repetition_time
+    elif schedule.volume_times is not None and len(schedule.volume_times) > 1:
+        vt = schedule.volume_times
+        tr = min(vt[i + 1] - vt[i] for i in range(len(vt) - 1))
+    low, high = PLAUSIBLE_TR
+    if tr is None or not low <= tr <= high:
+        return None
+    acq = schedule.acquisition_window
+    if acq is not None and low <= acq <= tr:
+        return tr, acq
+    return tr, tr
+
+
 def _units_ms(record: RunRecord) -> list[Repair]:
     times = record.metadata.get("SliceTiming")
-    if not isinstance(times, list) or not all(isinstance(t, int | float) for t in times):
+    if not isinstance(times, list) or not times or not all(
+        isinstance(t, int | float) and not isinstance(t, bool) and math.isfinite(t)
+        for t in times
+    ):
+        return []
+    trusted = _trusted_window(record)
+    if trusted is None:
+        return []
+    tr, window = trusted
+    # the list must be impossible in seconds (beyond the TR) and fit once divided
+    if max(times) < tr or max(times) / 1000.0 >= window:
         return []
     value = _rounded([t / 1000.0 for t in times])
     return [_repair(record, "timing/units-ms", "SliceTiming", value,
                     "the same list divided by 1000 (milliseconds to seconds)",
-                    {"max_before": max(times), "max_after": max(value)})]
+                    {"max_before": max(times), "max_after": max(value), "window": window})]
 
 
 def _from_header(record: RunRecord) -> list[Repair]:
