@@ -14,6 +14,7 @@ standards or reference libraries named beside each check.
 from __future__ import annotations
 
 import gzip
+import hashlib
 import json
 import os
 import zlib
@@ -220,3 +221,19 @@ def symlink(link: Path, target: str | Path) -> Path:
     link.parent.mkdir(parents=True, exist_ok=True)
     os.symlink(str(target), link)
     return link
+
+
+def tree_hashes(*roots: Path) -> dict[str, str]:
+    """Every file's SHA-256 under the roots (a link by its target, not followed), keyed
+    by its path relative to its root (prefixed by the root when several are given): the
+    byte-for-byte state that the safety tests compare before and after a command."""
+    out: dict[str, str] = {}
+    for root in roots:
+        prefix = f"{os.fsdecode(root)}/" if len(roots) > 1 else ""
+        for path in sorted(root.rglob("*")):
+            rel = prefix + os.fsdecode(path.relative_to(root))
+            if path.is_symlink():
+                out[rel] = "link:" + os.readlink(path)
+            elif path.is_file():
+                out[rel] = hashlib.sha256(path.read_bytes()).hexdigest()
+    return out

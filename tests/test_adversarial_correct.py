@@ -28,7 +28,7 @@ from slicetime.interfaces.cli import cli
 from slicetime.pipelines import correct as correct_module
 from slicetime.pipelines.correct import CorrectInterrupted, CorrectOptions, correct_paths
 from slicetime.pipelines.executor import ProcessExecutor
-from tests.helpers_bids import patch_header, write_description
+from tests.helpers_bids import patch_header, tree_hashes, write_description
 from tests.test_correct import REL, build_run, interleaved, output_of
 
 PARTIAL = correct_module.TEMP_PREFIX
@@ -36,12 +36,7 @@ PARTIAL = correct_module.TEMP_PREFIX
 
 def snapshot(*roots: Path) -> dict[str, str]:
     """SHA-256 of every file under the roots (the bytes, nothing else)."""
-    state = {}
-    for root in roots:
-        for path in sorted(root.rglob("*")):
-            if path.is_file():
-                state[os.fsdecode(path)] = hashlib.sha256(path.read_bytes()).hexdigest()
-    return state
+    return tree_hashes(*roots)
 
 
 def files_under(out: Path) -> list[str]:

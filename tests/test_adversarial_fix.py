@@ -24,7 +24,13 @@ from click.testing import CliRunner
 from slicetime.interfaces.cli import cli
 from slicetime.pipelines import fix as fixing
 from slicetime.schemes.generate import Protocol, slice_timing
-from tests.helpers_bids import symlink, write_description, write_run, write_sidecar
+from tests.helpers_bids import (
+    symlink,
+    tree_hashes,
+    write_description,
+    write_run,
+    write_sidecar,
+)
 
 TR = 2.0
 SHAPE = (4, 4, 10, 5)
@@ -44,16 +50,6 @@ def fix(*args: object) -> Any:
     return CliRunner().invoke(cli, ["fix", *(str(a) for a in args)], catch_exceptions=False)
 
 
-def tree(root: Path) -> dict[str, str]:
-    """Every file's SHA-256 under ``root`` (links by their target)."""
-    out = {}
-    for path in sorted(root.rglob("*")):
-        rel = str(path.relative_to(root))
-        if path.is_symlink():
-            out[rel] = "link:" + os.readlink(path)
-        elif path.is_file():
-            out[rel] = hashlib.sha256(path.read_bytes()).hexdigest()
-    return out
 
 
 def journal_in(output: str) -> Path:
@@ -75,7 +71,7 @@ def ms_dataset(root: Path, subjects: tuple[str, ...] = ("01", "02"), scale: floa
 def applied(tmp_path: Path) -> tuple[Path, Path, dict[str, str]]:
     """A dataset fixed with --apply: (root, journal, tree before the fix)."""
     ds = ms_dataset(tmp_path / "ds")
-    before = tree(ds)
+    before = tree_hashes(ds)
     result = fix(ds, "--apply", "--backup-dir", tmp_path / "backups")
     assert result.exit_code == 0, result.output
     return ds, journal_in(result.output), before
@@ -94,7 +90,7 @@ def test_two_roots_with_one_folder_name_keep_separate_backups(tmp_path: Path) ->
     a = ms_dataset(tmp_path / "A" / "ds", subjects=("01",))
     b = ms_dataset(tmp_path / "B" / "ds", subjects=("01",), scale=2000.0 / 1.9)
     assert (a / OWN).read_bytes() != (b / OWN).read_bytes()
-    before = tree(tmp_path)
+    before = tree_hashes(tmp_path)
     result = fix(a, b, "--apply", "--backup-dir", tmp_path / "backups")
     assert result.exit_code == 0, result.output
     journal = journal_in(result.output)
@@ -102,7 +98,7 @@ def test_two_roots_with_one_folder_name_keep_separate_backups(tmp_path: Path) ->
     assert len(backups) == 2  # one per root, not one overwriting the other
     undone = fix("--undo", journal)
     assert undone.exit_code == 0, undone.output
-    after = tree(tmp_path)
+    after = tree_hashes(tmp_path)
     for rel, digest in before.items():
         assert after[rel] == digest, rel  # A's bytes back in A, B's in B
 
@@ -111,11 +107,11 @@ def test_undo_refuses_a_backup_that_does_not_match_its_hash(tmp_path: Path) -> N
     _ds, journal, _ = applied(tmp_path)
     backup = next((journal.parent / "files").rglob("*.json"))
     backup.write_text('{"TaskName": "someone else"}')
-    state = tree(tmp_path)
+    state = tree_hashes(tmp_path)
     result = fix("--undo", journal)
     assert result.exit_code == 2
     assert "does not match the SHA-256" in result.output
-    assert tree(tmp_path) == state  # nothing restored, nothing written
+    assert tree_hashes(tmp_path) == state  # nothing restored, nothing written
 
 
 # ------------------------------------------------------------------ 2. confinement
@@ -157,12 +153,12 @@ def test_an_edited_journal_cannot_write_outside_its_datasets(tmp_path: Path, att
             del first["after_sha256"]
 
     edit_journal(journal, change)
-    state = tree(tmp_path)
+    state = tree_hashes(tmp_path)
     result = fix("--undo", journal)
     assert result.exit_code == 2, result.output
     assert "nothing was restored" in result.output
     assert len(result.output.strip().splitlines()) == 1  # one line, no traceback
-    assert tree(tmp_path) == state  # not even the valid entries were restored
+    assert tree_hashes(tmp_path) == state  # not even the valid entries were restored
 
 
 @pytest.mark.parametrize("attack", ["root-outside", "dotdot-file", "image-file"])
@@ -181,10 +177,10 @@ def test_an_edited_plan_cannot_write_outside_its_datasets(tmp_path: Path, attack
     else:
         first.update(file=RUN)
     plan.write_text(json.dumps(content))
-    state = tree(tmp_path)
+    state = tree_hashes(tmp_path)
     result = fix("--apply", "--plan", plan)
     assert result.exit_code == 2, result.output
-    assert tree(tmp_path) == state
+    assert tree_hashes(tmp_path) == state
 
 
 # ------------------------------------------------------------------ 3. all or nothing
@@ -204,21 +200,21 @@ def test_a_move_refused_for_one_file_writes_no_file(tmp_path: Path) -> None:
     store.write_bytes(own.read_bytes())
     own.unlink()
     symlink(own, os.path.relpath(store, own.parent))
-    before = tree(tmp_path)
+    before = tree_hashes(tmp_path)
     dry = fix(ds, "--spread", "SliceTiming")
     assert dry.exit_code == 1
     assert "--apply would refuse it" in dry.output and "annexed" in dry.output
     result = fix(ds, "--apply", "--spread", "SliceTiming")
     assert result.exit_code == 1
     assert "nothing was written" in result.output
-    assert tree(tmp_path) == before  # the shared file still gives every run its timing
+    assert tree_hashes(tmp_path) == before  # the shared file still gives every run its timing
 
 
 def test_a_failed_write_puts_back_the_files_written_before_it(
     tmp_path: Path, monkeypatch: pytest.MonkeyPatch
 ) -> None:
     ds = ms_dataset(tmp_path / "ds", subjects=("01", "02", "03"))
-    before = tree(ds)
+    before = tree_hashes(ds)
     real = fixing._atomic_write
     calls = {"n": 0}
 
@@ -233,7 +229,7 @@ def test_a_failed_write_puts_back_the_files_written_before_it(
     result = fix(ds, "--apply", "--backup-dir", tmp_path / "backups")
     assert result.exit_code == 2
     assert "nothing is changed" in result.output and "No space left" in result.output
-    assert tree(ds) == before
+    assert tree_hashes(ds) == before
 
 
 # ------------------------------------------------------------------ 7. trusted evidence
@@ -246,10 +242,10 @@ def test_seconds_are_not_divided_by_an_untrusted_header_tr(tmp_path: Path) -> No
     write_description(ds)
     write_run(ds, RUN, shape=SHAPE, tr=0.002, time_unit="sec",
               sidecar={"TaskName": "hum", "SliceTiming": seconds()})
-    before = tree(ds)
+    before = tree_hashes(ds)
     result = fix(ds, "--apply")
     assert "written" not in result.output
-    assert tree(ds) == before
+    assert tree_hashes(ds) == before
 
 
 def test_seconds_are_not_divided_by_a_few_ms_acquisition_window(tmp_path: Path) -> None:
@@ -258,10 +254,10 @@ def test_seconds_are_not_divided_by_a_few_ms_acquisition_window(tmp_path: Path) 
     write_run(ds, RUN, shape=SHAPE, tr=TR,
               sidecar={"TaskName": "hum", "RepetitionTime": TR,
                        "FrameAcquisitionDuration": 0.003, "SliceTiming": seconds()})
-    before = tree(ds)
+    before = tree_hashes(ds)
     result = fix(ds, "--apply")
     assert "written" not in result.output
-    assert tree(ds) == before
+    assert tree_hashes(ds) == before
 
 
 def test_milliseconds_under_a_trusted_tr_are_still_divided(tmp_path: Path) -> None:
@@ -301,11 +297,11 @@ def test_nan_and_huge_numbers_elsewhere_keep_their_bytes(tmp_path: Path) -> None
 def test_undo_with_a_missing_backup_is_one_line_and_writes_nothing(tmp_path: Path) -> None:
     _ds, journal, _ = applied(tmp_path)
     next((journal.parent / "files").rglob("*.json")).unlink()
-    state = tree(tmp_path)
+    state = tree_hashes(tmp_path)
     result = fix("--undo", journal)
     assert result.exit_code == 2
     assert "is missing" in result.output and len(result.output.strip().splitlines()) == 1
-    assert tree(tmp_path) == state
+    assert tree_hashes(tmp_path) == state
 
 
 @pytest.mark.parametrize("damage", ['{"format": "slicetime-fix-journal"',
@@ -315,28 +311,28 @@ def test_a_malformed_journal_is_one_line_and_writes_nothing(tmp_path: Path,
                                                             damage: str) -> None:
     _ds, journal, _ = applied(tmp_path)
     journal.write_text(damage)
-    state = tree(tmp_path)
+    state = tree_hashes(tmp_path)
     result = fix("--undo", journal)
     assert result.exit_code == 2 and "Traceback" not in result.output
     assert len(result.output.strip().splitlines()) == 1
-    assert tree(tmp_path) == state
+    assert tree_hashes(tmp_path) == state
 
 
 def test_a_second_undo_says_already_restored(tmp_path: Path) -> None:
     ds, journal, before = applied(tmp_path)
     assert fix("--undo", journal).exit_code == 0
-    assert tree(ds) == before
+    assert tree_hashes(ds) == before
     again = fix("--undo", journal)
     assert again.exit_code == 0, again.output
     assert "already restored" in again.output and "changed since" not in again.output
-    assert tree(ds) == before
+    assert tree_hashes(ds) == before
 
 
 def test_undo_after_kill_during_apply_restores_and_names_unwritten_files(
     tmp_path: Path,
 ) -> None:
     ds = ms_dataset(tmp_path / "ds", subjects=("01", "02", "03"))
-    before = tree(ds)
+    before = tree_hashes(ds)
     backups = tmp_path / "backups"
     # a separate process applies the fix and is killed (SIGKILL) while writing the second
     # dataset file, after its temporary file exists
@@ -361,12 +357,12 @@ fix.apply_plan(plan, backup_dir=Path({str(backups)!r}))
                           capture_output=True, timeout=120)
     assert proc.returncode == -signal.SIGKILL, proc.stderr.decode()
     assert any(p.name.endswith(".tmp") for p in ds.rglob(".*"))  # the crash left a temp
-    assert tree(ds) != before
+    assert tree_hashes(ds) != before
     result = fix("--undo", backups / "journal.json")
     assert result.exit_code == 0, result.output
     assert result.output.count("restored  ") == 1
     assert result.output.count("never written") == 2
-    assert tree(ds) == before  # temp and stale lock gone, every byte back
+    assert tree_hashes(ds) == before  # temp and stale lock gone, every byte back
 
 
 # ------------------------------------------------------------------ 14. locking
@@ -375,11 +371,11 @@ fix.apply_plan(plan, backup_dir=Path({str(backups)!r}))
 def test_a_second_apply_on_a_locked_dataset_writes_nothing(tmp_path: Path) -> None:
     ds = ms_dataset(tmp_path / "ds")
     with fixing.dataset_lock([str(ds)]):
-        state = tree(tmp_path)
+        state = tree_hashes(tmp_path)
         result = fix(ds, "--apply")
         assert result.exit_code == 2
         assert "another slicetime fix is writing this dataset" in result.output
-        assert tree(tmp_path) == state
+        assert tree_hashes(tmp_path) == state
     assert not (ds / fixing.LOCK_NAME).exists()  # released and removed
     assert fix(ds, "--apply").exit_code == 0
 
@@ -393,20 +389,20 @@ def test_an_apply_after_another_refuses_its_stale_plan(tmp_path: Path) -> None:
     assert fix(ds, "--plan", second).exit_code == 1
     done = fix("--apply", "--plan", first, "--backup-dir", tmp_path / "b1")
     assert done.exit_code == 0, done.output
-    state = tree(tmp_path)
+    state = tree_hashes(tmp_path)
     late = fix("--apply", "--plan", second, "--backup-dir", tmp_path / "b2")
     assert late.exit_code == 1 and "changed since the plan was made" in late.output
-    assert tree(tmp_path) == state
+    assert tree_hashes(tmp_path) == state
 
 
 def test_a_backup_folder_holding_a_journal_is_not_reused(tmp_path: Path) -> None:
     ds, journal, _ = applied(tmp_path)
     (ds / OWN).write_text(json.dumps({"TaskName": "hum", "RepetitionTime": TR,
                                       "SliceTiming": millis()}))
-    state = tree(tmp_path)
+    state = tree_hashes(tmp_path)
     result = fix(ds, "--apply", "--backup-dir", journal.parent)
     assert result.exit_code == 2 and "already holds the journal" in result.output
-    assert tree(tmp_path) == state
+    assert tree_hashes(tmp_path) == state
 
 
 # ------------------------------------------------------------------ 20. escaped names
@@ -433,7 +429,7 @@ def test_a_rewrite_changes_only_the_bytes_of_the_edited_value(tmp_path: Path) ->
             '\t"EchoTime": 3.0e-2,\r\n\t"Inline": [1, 2,  3],\r\n'
             f'\t"SliceTiming": {value},\r\n\t"Zzz": {{"b": 1, "a": 2}}\r\n}}')
     (ds / OWN).write_bytes(text.encode())
-    others = tree(ds)
+    others = tree_hashes(ds)
     result = fix(ds, "--apply")
     assert result.exit_code == 0, result.output
     after = (ds / OWN).read_bytes().decode()
@@ -443,7 +439,7 @@ def test_a_rewrite_changes_only_the_bytes_of_the_edited_value(tmp_path: Path) ->
     assert "\n" not in new and "," in new and ", " not in new  # inline, compact as before
     assert json.loads(new) == pytest.approx(seconds(), abs=1e-6)
     others.pop(OWN)
-    assert {k: v for k, v in tree(ds).items() if k != OWN} == others
+    assert {k: v for k, v in tree_hashes(ds).items() if k != OWN} == others
 
 
 def test_added_and_removed_members_keep_the_rest_of_the_text(tmp_path: Path) -> None:
@@ -489,9 +485,9 @@ def test_the_journal_is_written_twice_whatever_the_number_of_files(
 @pytest.mark.parametrize("option", ["--consolidate", "--spread"])
 def test_an_unknown_field_to_move_is_a_usage_error(tmp_path: Path, option: str) -> None:
     ds = ms_dataset(tmp_path / "ds")
-    state = tree(tmp_path)
+    state = tree_hashes(tmp_path)
     result = fix(ds, "--apply", option, "SliceTimng")
     assert result.exit_code == 2
     assert "did you mean 'SliceTiming'?" in result.output
     assert len(result.output.strip().splitlines()) == 1
-    assert tree(tmp_path) == state
+    assert tree_hashes(tmp_path) == state

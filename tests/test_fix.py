@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import hashlib
 import json
 import os
 import stat
@@ -17,7 +16,13 @@ from slicetime.interfaces.cli import cli
 from slicetime.pipelines.audit import audit_paths
 from slicetime.pipelines.fix import JsonStyle
 from slicetime.schemes.generate import Protocol, slice_timing
-from tests.helpers_bids import symlink, write_description, write_run, write_sidecar
+from tests.helpers_bids import (
+    symlink,
+    tree_hashes,
+    write_description,
+    write_run,
+    write_sidecar,
+)
 
 TR = 2.0
 SHAPE = (4, 4, 10, 5)
@@ -39,16 +44,6 @@ def fix(*args: object) -> Any:
     return CliRunner().invoke(cli, ["fix", *(str(a) for a in args)], catch_exceptions=False)
 
 
-def tree(root: Path) -> dict[str, str]:
-    """Every file's SHA-256 (links by their target), for byte-for-byte comparisons."""
-    out = {}
-    for path in sorted(root.rglob("*")):
-        rel = str(path.relative_to(root))
-        if path.is_symlink():
-            out[rel] = "link:" + os.readlink(path)
-        elif path.is_file():
-            out[rel] = hashlib.sha256(path.read_bytes()).hexdigest()
-    return out
 
 
 def codes_of(root: Path, rel: str) -> set[str]:
@@ -80,11 +75,11 @@ def test_milliseconds_become_seconds_in_the_shared_file(ds: Path) -> None:
     for sub in ("01", "02", "03"):
         write_run(ds, run_path(sub), shape=SHAPE, tr=TR)
     assert "timing/units-ms" in codes_of(ds, run_path("01"))
-    before = tree(ds)
+    before = tree_hashes(ds)
     dry = fix(ds)
     assert dry.exit_code == 1  # changes are planned
     assert "task-hum_bold.json  (3 runs)" in dry.output
-    assert tree(ds) == before  # a dry run changes no byte
+    assert tree_hashes(ds) == before  # a dry run changes no byte
     applied = fix(ds, "--apply")
     assert applied.exit_code == 0, applied.output
     assert "written   task-hum_bold.json" in applied.output
@@ -285,15 +280,15 @@ def test_undo_restores_every_byte(ds: Path) -> None:
     write_run(ds, run_path("02"), shape=(4, 4, 12, 5), tr=TR,
               sidecar={"SliceTiming": list(slice_timing(Protocol(
                   n_slices=12, order="interleaved", multiband=3, repetition_time=TR)))})
-    before = tree(ds)
+    before = tree_hashes(ds)
     applied = fix(ds, "--apply", "--backup-dir", ds.parent / "backups")
     assert applied.exit_code == 0, applied.output
-    assert tree(ds) != before
+    assert tree_hashes(ds) != before
     journal = journal_in(applied.output)
     assert journal.parent == ds.parent / "backups"
     undone = fix("--undo", journal)
     assert undone.exit_code == 0, undone.output
-    assert tree(ds) == before
+    assert tree_hashes(ds) == before
 
 
 def test_default_backups_live_beside_the_dataset(ds: Path) -> None:
@@ -353,11 +348,11 @@ def test_read_only_check_without_root(ds: Path, monkeypatch: pytest.MonkeyPatch)
     real_access = os.access
     monkeypatch.setattr(os, "access", lambda p, mode: False if str(p) == own and
                         mode == os.W_OK else real_access(p, mode))
-    before = tree(ds)
+    before = tree_hashes(ds)
     result = fix(ds, "--apply")
     assert result.exit_code == 1
     assert f"{sidecar_of(rel)}: is read-only" in result.output
-    assert tree(ds) == before
+    assert tree_hashes(ds) == before
 
 
 def test_saved_plan_refuses_files_changed_since(ds: Path, tmp_path: Path) -> None:
@@ -413,7 +408,7 @@ def test_consolidate_and_spread_are_inverse(ds: Path) -> None:
         write_run(ds, run_path(sub), shape=SHAPE, tr=TR,
                   sidecar={"TaskName": "hum", "RepetitionTime": TR, "SliceTiming": interleaved()})
     resolved = {r.record.path: dict(r.record.metadata) for r in audit_paths([ds]).runs}
-    original = tree(ds)
+    original = tree_hashes(ds)
     result = fix(ds, "--apply", "--consolidate", "SliceTiming", "--consolidate", "RepetitionTime")
     assert result.exit_code == 0, result.output
     top = json.loads((ds / "task-hum_bold.json").read_text())
@@ -426,7 +421,7 @@ def test_consolidate_and_spread_are_inverse(ds: Path) -> None:
     assert spread.exit_code == 0, spread.output
     assert {r.record.path: dict(r.record.metadata) for r in audit_paths([ds]).runs} == resolved
     assert json.loads((ds / "task-hum_bold.json").read_text()) == {}
-    assert tree(ds) != original  # key order may differ; the meaning does not
+    assert tree_hashes(ds) != original  # key order may differ; the meaning does not
 
 
 def test_consolidate_refuses_differing_values(ds: Path) -> None:
@@ -435,8 +430,8 @@ def test_consolidate_refuses_differing_values(ds: Path) -> None:
     write_run(ds, run_path("02"), shape=SHAPE, tr=TR,
               sidecar={"TaskName": "hum", "RepetitionTime": TR,
                        "SliceTiming": [i * 0.2 for i in range(10)]})
-    before = tree(ds)
+    before = tree_hashes(ds)
     result = fix(ds, "--apply", "--consolidate", "SliceTiming")
     assert result.exit_code == 0
     assert "SliceTiming not consolidated" in result.output
-    assert tree(ds) == before
+    assert tree_hashes(ds) == before
