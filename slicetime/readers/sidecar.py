@@ -47,7 +47,7 @@ import jsonschema
 
 from slicetime.model import Finding, Severity
 
-from .errors import ReadError, check_regular_file, display_name, os_error
+from .errors import ReadError, display_name, open_regular, os_error, read_bounded
 
 __all__ = [
     "MAX_SIDECAR_BYTES",
@@ -209,16 +209,17 @@ def load_sidecar(
     p = os.fspath(path)
     shown = display if display is not None else display_name(Path(p), None)
     try:
-        st = check_regular_file(p, shown, what="sidecar")
-        if st.st_size > MAX_SIDECAR_BYTES:
-            return None, [_too_large(shown, st.st_size)]
-        with open(p, "rb") as fh:
+        fh, st = open_regular(p, shown, what="sidecar")
+        with fh:
+            if st.st_size > MAX_SIDECAR_BYTES:
+                return None, [_too_large(shown, st.st_size)]
+            if st.st_size == 0:
+                # not read: a size of 0 is an empty file or a pseudo-file (/proc) whose
+                # read may never end
+                return None, [_empty(shown)]
             # ask for the size on disk (plus one byte, to see growth): a read of the 16 MiB
             # limit would allocate that much for every small file
-            want = st.st_size + 1
-            raw = fh.read(want)
-            if len(raw) == want:  # the file grew since the stat: read on up to the limit
-                raw += fh.read(MAX_SIDECAR_BYTES + 1 - want)
+            raw = read_bounded(fh, st.st_size, MAX_SIDECAR_BYTES)
     except ReadError as err:
         return None, [err.to_finding()]
     except OSError as exc:
@@ -234,6 +235,16 @@ def _too_large(shown: str, size: int) -> Finding:
         "bytes (16 MiB) metadata can reasonably need; not read",
         file=shown,
         evidence={"size": size, "limit": MAX_SIDECAR_BYTES},
+    )
+
+
+def _empty(shown: str) -> Finding:
+    return Finding(
+        "sidecar/bad-json",
+        Severity.ERROR,
+        f"{shown}: the sidecar is empty (0 bytes on disk)",
+        file=shown,
+        evidence={"line": 1, "column": 1, "size": 0},
     )
 
 
