@@ -441,3 +441,116 @@ def test_correct_refuses_a_run_with_vox_offset_zero_even_when_forced(tmp_path: P
     assert result.exit_code != 0
     assert not list(out.rglob("*_bold.nii*"))  # nothing written for the run
     assert stat.S_ISREG(os.stat(run).st_mode)
+
+
+# --- item 13: one large inherited sidecar, many runs -------------------------------------------
+
+
+def _big_inherited(root: Path, n_runs: int, n_values: int) -> tuple[Path, list[Path]]:
+    write_description(root)
+    values = [round(i * 1e-4, 4) for i in range(n_values)]
+    top = write_json(root / "task-big_bold.json", {"RepetitionTime": 2.0, "SliceTiming": values})
+    runs = [
+        write_run(root, f"sub-{i:03d}/func/sub-{i:03d}_task-big_bold.nii.gz", (2, 2, 3, 3))
+        for i in range(n_runs)
+    ]
+    return top, runs
+
+
+def test_runs_share_one_parsed_inherited_value(tmp_path: Path) -> None:
+    from slicetime.pipelines.audit import audit_paths
+
+    _top, _runs = _big_inherited(tmp_path / "ds", 130, 5000)  # 130 runs: three chunks
+    result = audit_paths([tmp_path / "ds"])
+    values = [run.record.metadata["SliceTiming"] for run in result.runs]
+    assert len(values) == 130
+    assert all(v is values[0] for v in values)  # one object, across chunks too
+    with pytest.raises(TypeError):
+        values[0].append(1.0)  # shared values refuse changes
+
+
+def test_memory_for_many_runs_is_bounded_by_the_file_not_the_run_count(tmp_path: Path) -> None:
+    import gc
+    import tracemalloc
+
+    from slicetime.pipelines.audit import audit_paths
+
+    top, _runs = _big_inherited(tmp_path / "ds", 200, 200_000)
+    size = top.stat().st_size  # about 1.5 MB of JSON
+    gc.collect()
+    tracemalloc.start()
+    result = audit_paths([tmp_path / "ds"])
+    gc.collect()
+    held, _peak = tracemalloc.get_traced_memory()
+    tracemalloc.stop()
+    assert len(result.runs) == 200
+    # one parsed copy: 8 bytes of list slot and at most one 24-byte float per value,
+    # about 5x the file; plus what any run costs (well under 20 kB each). A copy of the
+    # list per run would be 200 x 1.6 MB = 320 MB.
+    parsed = 200_000 * (8 + 24)
+    assert held < parsed + 200 * 20_000, (held, size)
+
+
+def test_a_large_inherited_sidecar_over_the_walk_budget_is_a_finding(tmp_path: Path) -> None:
+    from slicetime.readers.inheritance import LARGE_SIDECAR_BYTES, SidecarIndex, SidecarStore
+
+    root = tmp_path / "ds"
+    write_description(root)
+    values = [round(i * 1e-4, 4) for i in range((LARGE_SIDECAR_BYTES // 8) + 10)]
+    write_json(root / "task-a_bold.json", {"SliceTiming": values})
+    write_json(root / "task-b_bold.json", {"SliceTiming": values})
+    runs = [write_run(root, f"sub-01/func/sub-01_task-{t}_bold.nii.gz", (2, 2, 3, 3))
+            for t in ("a", "b", "a", "b")]
+    size = (root / "task-a_bold.json").stat().st_size
+    assert size >= LARGE_SIDECAR_BYTES
+    store = SidecarStore(budget=size + size // 2)  # room for one of the two
+    resolved = [SidecarIndex(root, store=store).resolve(run) for run in runs]
+    codes = [[f.code for f in r.findings] for r in resolved]
+    assert codes[0] == [] and codes[2] == []
+    assert codes[1] == ["sidecar/over-budget"] == codes[3]
+    assert "SliceTiming" not in resolved[1].metadata
+    assert store.parse_count == 1  # the one over budget is never parsed, nor tried again
+    assert "sidecar/over-budget" in RULES
+
+
+def test_a_store_sent_to_a_worker_is_that_workers_store_for_the_walk(tmp_path: Path) -> None:
+    import pickle
+
+    from slicetime.readers.inheritance import SidecarStore
+
+    store = SidecarStore()
+    copy_one = pickle.loads(pickle.dumps(store))
+    assert copy_one is store  # in this process: the same store
+    token = store.token
+    del store, copy_one
+    import gc
+
+    gc.collect()
+    # in a process without it (a worker), unpickling makes one store per walk and reuses it
+    first = pickle.loads(pickle.dumps(SidecarStore(token=token + "x")))
+    again = pickle.loads(pickle.dumps(first))
+    assert again is first and first.token == token + "x"
+
+
+def test_shared_values_survive_pickling_and_become_one_object_again() -> None:
+    import pickle
+
+    from slicetime.model import RunRecord
+    from slicetime.readers.inheritance import ValueSharer
+    from slicetime.readers.sidecar import parse_sidecar_bytes
+
+    data, _ = parse_sidecar_bytes(json.dumps({"SliceTiming": list(range(100))}).encode(), "t")
+    assert data is not None
+    records = [
+        RunRecord(path=f"r{i}", abs_path=f"/r{i}", root="/", metadata=dict(data),
+                  metadata_sources={"SliceTiming": "task-x_bold.json"})
+        for i in range(3)
+    ]
+    copies = [pickle.loads(pickle.dumps(r)) for r in records]  # as from worker processes
+    assert copies[0].metadata["SliceTiming"] is not copies[1].metadata["SliceTiming"]
+    assert type(copies[0].metadata["SliceTiming"]) is type(data["SliceTiming"])
+    sharer = ValueSharer()
+    for record in copies:
+        sharer.add(record)
+    assert copies[0].metadata["SliceTiming"] is copies[2].metadata["SliceTiming"]
+    assert sharer.replaced == 2

@@ -12,7 +12,7 @@ from slicetime.model import Finding, RunRecord, Severity
 from slicetime.pipelines.executor import Executor, Progress, map_chunks
 from slicetime.readers.dataset import find_root, iter_runs
 from slicetime.readers.errors import ReadError
-from slicetime.readers.inheritance import SidecarIndex
+from slicetime.readers.inheritance import SidecarIndex, SidecarStore, ValueSharer
 from slicetime.readers.policy import POLICY_FILENAME, Policy, find_policy, load_policy
 from slicetime.readers.record import build_record, relative_display
 from slicetime.rules import RULES, check_dataset, check_run
@@ -77,18 +77,21 @@ def audit_one(
 
 def audit_chunk(
     targets: Sequence[tuple[Path, Path]], policies: Mapping[Path, Policy | None] | None = None,
-    verify: bool = False,
+    verify: bool = False, store: SidecarStore | None = None,
 ) -> list[RunResult]:
     """Audit neighbouring runs with one sidecar cache per dataset root.
 
-    A bug while auditing one run becomes a ``batch/internal-error`` finding for
-    that run (set ``SLICETIME_DEBUG`` to get the traceback instead).
+    ``store`` holds the walk's parsed shared sidecars (one per walk and process, so
+    every chunk shares them). A bug while auditing one run becomes a
+    ``batch/internal-error`` finding for that run (set ``SLICETIME_DEBUG`` to get
+    the traceback instead).
     """
     indexes: dict[Path, SidecarIndex] = {}
+    store = store if store is not None else SidecarStore()
     results = []
     for root, path in targets:
         if root not in indexes:
-            indexes[root] = SidecarIndex(root)
+            indexes[root] = SidecarIndex(root, store=store)
         index = indexes[root]
         try:
             results.append(audit_one(root, path, index, (policies or {}).get(root),
@@ -174,7 +177,13 @@ def audit_paths(
     result = AuditResult(roots=roots)
     policies = _policies(sorted({root for root, _ in targets}), policy_file, walk_problems)
     result.policies = {str(r): p.file for r, p in policies.items() if p is not None}
-    job = functools.partial(audit_chunk, policies=policies, verify=verify)
+    job = functools.partial(audit_chunk, policies=policies, verify=verify, store=SidecarStore())
+    sharer = ValueSharer()  # one copy of each inherited value, as chunks come back
+
+    def arrived(run: RunResult) -> bool:
+        sharer.add(run.record)
+        return _has_error(run)
+
     result.runs = map_chunks(
         job,
         targets,
@@ -182,7 +191,7 @@ def audit_paths(
         executor=executor,
         jobs=jobs,
         progress=progress,
-        failed_of=_has_error,
+        failed_of=arrived,
     )
     result.dataset_findings.extend(walk_problems)
     per_run, overall = check_dataset([r.record for r in result.runs])

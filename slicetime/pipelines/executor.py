@@ -21,6 +21,7 @@ be on a file system every worker sees); ``dask[distributed]`` is the optional
 
 from __future__ import annotations
 
+import itertools
 import os
 import time
 from collections.abc import Callable, Sequence
@@ -171,9 +172,16 @@ class ProcessExecutor(Executor):
         """Run ``todo`` in a fresh pool; True when the pool broke (work left undone)."""
         pool = ProcessPoolExecutor(max_workers=min(self.jobs, len(todo)))
         futures: dict[Future[list[R]], int] = {}
+        # a few chunks in flight per worker, not all at once: results that arrive faster
+        # than they are taken would otherwise pile up in this process
+        window = max(2, 2 * self.jobs)
+        queue = iter(todo)
         try:
-            futures = {pool.submit(job, tracker.chunks[i]): i for i in todo}
-            waiting = set(futures)
+            waiting: set[Future[list[R]]] = set()
+            for i in itertools.islice(queue, window):
+                future = pool.submit(job, tracker.chunks[i])
+                futures[future] = i
+                waiting.add(future)
             while waiting:
                 finished, waiting = wait(waiting, return_when=FIRST_COMPLETED)
                 for future in finished:
@@ -181,7 +189,13 @@ class ProcessExecutor(Executor):
                         results = future.result()
                     except BrokenProcessPool:
                         return True
-                    tracker.finish(futures[future], results)
+                    # drop the finished future: it would hold its results until the end
+                    tracker.finish(futures.pop(future), results)
+                    del results
+                    for i in itertools.islice(queue, 1):
+                        following = pool.submit(job, tracker.chunks[i])
+                        futures[following] = i
+                        waiting.add(following)
             return False
         except BaseException:
             for future in futures:

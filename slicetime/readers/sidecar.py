@@ -53,6 +53,8 @@ __all__ = [
     "MAX_SIDECAR_BYTES",
     "MAX_SIDECAR_DEPTH",
     "TIMING_FIELDS",
+    "FrozenDict",
+    "FrozenList",
     "check_types",
     "load_schema",
     "load_sidecar",
@@ -88,6 +90,43 @@ def _validators() -> dict[str, jsonschema.protocols.Validator]:
     return {key: cls(sub) for key, sub in schema["properties"].items()}
 
 
+def _refuse(self: Any, *_args: Any, **_kwargs: Any) -> Any:
+    raise TypeError(
+        "a value read from a sidecar is shared between runs and cannot be changed; "
+        "copy it first (list(value), dict(value))"
+    )
+
+
+class FrozenList(list):  # type: ignore[type-arg]
+    """A JSON array read from a sidecar: a ``list`` that refuses every change.
+
+    One parsed value is shared by every run that inherits it (no copy per run), so it
+    must not change under them. It is still a ``list`` for ``isinstance``, equality,
+    ``json`` and jsonschema; copy it with ``list(value)`` to get a mutable one.
+    """
+
+    __slots__ = ()
+    append = extend = insert = pop = remove = clear = sort = reverse = _refuse
+    __setitem__ = __delitem__ = __iadd__ = __imul__ = _refuse
+
+    def __reduce__(self) -> tuple[Any, ...]:
+        return (FrozenList, (list(self),))
+
+
+class FrozenDict(dict):  # type: ignore[type-arg]
+    """A JSON object nested in a sidecar: a ``dict`` that refuses every change (see
+    :class:`FrozenList`)."""
+
+    __slots__ = ()
+    __setitem__ = __delitem__ = __ior__ = _refuse
+    clear = pop = popitem = setdefault = update = _refuse
+
+    def __reduce__(self) -> tuple[Any, ...]:
+        return (FrozenDict, (dict(self),))
+
+
+_LISTS: frozenset[type] = frozenset({list, FrozenList})
+
 #: The sidecar fields slicetime knows the type of (keys of the shipped schema).
 TIMING_FIELDS: frozenset[str] = frozenset(load_schema()["properties"])
 
@@ -107,10 +146,10 @@ def _quick_check(schema: Mapping[str, Any]) -> Check:
     """A fast predicate that is True only for values ``schema`` certainly accepts.
 
     It understands the few keywords the shipped schema uses, for the value types JSON
-    parsing produces (``int``, ``float``, ``str``, ``list``); anything else (another
-    keyword, a bool, a float where an integer is wanted, a subclass) gives False, and
-    the caller asks jsonschema, which also words the finding. So the predicate only
-    decides how fast a valid value passes, never what is reported.
+    parsing produces (``int``, ``float``, ``str``, ``list``, :class:`FrozenList`);
+    anything else (another keyword, a bool, a float where an integer is wanted, another
+    subclass) gives False, and the caller asks jsonschema, which also words the finding.
+    So the predicate only decides how fast a valid value passes, never what is reported.
     """
     if not _QUICK_KEYWORDS.issuperset(schema):
         return _never
@@ -156,7 +195,7 @@ def _quick_check(schema: Mapping[str, Any]) -> Check:
             return _never
         item = _quick_check(items) if items is not None else None
         return lambda value: (
-            type(value) is list
+            type(value) in _LISTS
             and len(value) >= min_items
             and (item is None or all(item(v) for v in value))
         )
@@ -444,6 +483,10 @@ def _too_deep(shown: str) -> Finding:
     )
 
 
+#: parsed values that need no cleaning (strings may hold lone surrogates, containers
+#: are copied, non-finite placeholders are replaced)
+_PLAIN: frozenset[type] = frozenset({int, float, bool, type(None)})
+
 _DISCARDED = "\x00discarded"  # marker: the value sat in an overridden duplicate key
 
 
@@ -452,7 +495,12 @@ class _TooDeep(Exception):
 
 
 class _Cleaner:
-    """Copy parsed JSON, bounding depth, replacing placeholders and lone surrogates."""
+    """Copy parsed JSON, bounding depth, replacing placeholders and lone surrogates.
+
+    The top-level object comes back as a plain ``dict``; every nested array and object
+    as a :class:`FrozenList` / :class:`FrozenDict`, so that the values can be shared
+    between the runs that inherit them without a copy per run.
+    """
 
     def __init__(self) -> None:
         self.non_finite: list[tuple[str | None, _NonFinite]] = []
@@ -475,12 +523,19 @@ class _Cleaner:
             out: dict[str, Any] = {}
             for k, v in value.items():
                 key = self._text(k, top if top is not None else k)
-                out[key] = self.clean(v, depth + 1, top if top is not None else key)
-            return out
+                kind = type(v)
+                # plain numbers, booleans and null (the common case) need no cleaning
+                out[key] = (
+                    v if kind in _PLAIN
+                    else self.clean(v, depth + 1, top if top is not None else key)
+                )
+            return out if depth == 1 else FrozenDict(out)
         if isinstance(value, list):
             if depth > MAX_SIDECAR_DEPTH:
                 raise _TooDeep
-            return [self.clean(v, depth + 1, top) for v in value]
+            if all(type(v) in _PLAIN for v in value):  # numbers: nothing to clean
+                return FrozenList(value)
+            return FrozenList([self.clean(v, depth + 1, top) for v in value])
         if isinstance(value, str):
             return self._text(value, top)
         if isinstance(value, _NonFinite):

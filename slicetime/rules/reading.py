@@ -165,6 +165,19 @@ reader_code(
     fix="Move bulk data out of the sidecar.",
 )
 reader_code(
+    "sidecar/over-budget",
+    title="a large inherited sidecar was not read: the audit's memory budget is spent",
+    severity=E,
+    rationale=(
+        "Inherited sidecars are parsed once per audit and their values shared by every run "
+        "that inherits them. Sidecars of 1 MiB or more count against a total of 64 MiB per "
+        "audit (and worker process), so that a dataset of huge metadata files cannot exhaust "
+        "memory; one that no longer fits is not read, and the runs inheriting it lack its "
+        "values."
+    ),
+    fix="Move bulk data (long lists) out of the sidecars, or audit fewer datasets at once.",
+)
+reader_code(
     "sidecar/wrong-type",
     title="a timing field has the wrong type or an impossible value",
     severity=E,
