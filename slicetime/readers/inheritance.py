@@ -53,6 +53,7 @@ from .sidecar import (
     FrozenList,
     check_types,
     load_sidecar,
+    quick_checks,
 )
 
 __all__ = [
@@ -376,7 +377,10 @@ class SidecarIndex:
     ) -> list[Finding]:
         """Type checks of the merged timing fields; a shared sidecar's value is checked once."""
         out: list[Finding] = []
+        quick = quick_checks()
         for key in sorted(TIMING_FIELDS.intersection(metadata)):
+            if quick[key](metadata[key]):
+                continue  # certainly valid (the same predicate check_types starts with)
             source = sources[key]
             memo_key = (source, key)
             cached = self._checked.get(memo_key)

@@ -202,6 +202,11 @@ def _quick_check(schema: Mapping[str, Any]) -> Check:
     return _never
 
 
+def quick_checks() -> dict[str, Check]:
+    """Per known field, a predicate that is True only for values the schema accepts."""
+    return _quick_checks()
+
+
 @functools.cache
 def _quick_checks() -> dict[str, Check]:
     return {key: _quick_check(sub) for key, sub in load_schema()["properties"].items()}
@@ -346,7 +351,9 @@ def parse_sidecar_bytes(raw: bytes, shown: str) -> tuple[dict[str, Any] | None, 
 
     parser = _parser()
     try:
-        data, constants, duplicates = parser.parse(text)
+        data, constants, duplicates = parser.parse(
+            text, exact_floats=_MAY_OVERFLOW.search(text) is not None
+        )
     except json.JSONDecodeError as exc:
         return None, [
             *findings,
@@ -386,7 +393,9 @@ def parse_sidecar_bytes(raw: bytes, shown: str) -> tuple[dict[str, Any] | None, 
             ),
         ]
 
-    cleaner = _Cleaner()
+    # lone surrogates can only come from \u escapes (the UTF-8 decoder refuses them), and
+    # placeholders only from non-finite literals: without either, strings need no cleaning
+    cleaner = _Cleaner(strings=bool(constants) or "\\u" in text)
     try:
         cleaned = cleaner.clean(data, 1, None)
     except _TooDeep:
@@ -430,15 +439,24 @@ class _StrictParser:
             parse_constant=self.on_constant,
             parse_float=self.on_float,
         )
+        # without a float hook: floats are made by the C scanner (used when no literal
+        # can overflow, see _MAY_OVERFLOW)
+        self.fast_decoder = json.JSONDecoder(
+            object_pairs_hook=self.on_pairs, parse_constant=self.on_constant
+        )
 
     def parse(
-        self, text: str
+        self, text: str, *, exact_floats: bool = True
     ) -> tuple[Any, list[_NonFinite], list[tuple[dict[str, Any], str, list[Any]]]]:
-        """Parse ``text`` as :func:`json.loads` would, with this parser's hooks."""
+        """Parse ``text`` as :func:`json.loads` would, with this parser's hooks.
+
+        ``exact_floats=False`` skips the per-float hook; only correct when no float
+        literal in ``text`` can overflow to infinity."""
         self.constants, self.duplicates = [], []
         if text.startswith("\ufeff"):  # as json.loads does for text input
             raise json.JSONDecodeError("Unexpected UTF-8 BOM (decode using utf-8-sig)", text, 0)
-        return self.decoder.decode(text), self.constants, self.duplicates
+        decoder = self.decoder if exact_floats else self.fast_decoder
+        return decoder.decode(text), self.constants, self.duplicates
 
     def on_constant(self, literal: str) -> _NonFinite:
         marker = _NonFinite(literal, len(self.constants))
@@ -486,6 +504,10 @@ def _too_deep(shown: str) -> Finding:
 #: parsed values that need no cleaning (strings may hold lone surrogates, containers
 #: are copied, non-finite placeholders are replaced)
 _PLAIN: frozenset[type] = frozenset({int, float, bool, type(None)})
+_PLAIN_OR_TEXT: frozenset[type] = _PLAIN | {str}
+#: a float literal that may overflow to infinity: a 3-digit positive exponent or 300 digits
+#: (the largest double is about 1.8e308); anything else cannot, and is parsed without a hook
+_MAY_OVERFLOW = re.compile(r"[eE]\+?0*[1-9]\d\d|\d{300}")
 
 _DISCARDED = "\x00discarded"  # marker: the value sat in an overridden duplicate key
 
@@ -502,9 +524,12 @@ class _Cleaner:
     between the runs that inherit them without a copy per run.
     """
 
-    def __init__(self) -> None:
+    def __init__(self, *, strings: bool = True) -> None:
         self.non_finite: list[tuple[str | None, _NonFinite]] = []
         self.surrogate_keys: set[str] = set()
+        #: value types copied as they are (strings too when they cannot need cleaning)
+        self.plain = _PLAIN if strings else _PLAIN_OR_TEXT
+        self.strings = strings
 
     def _text(self, s: str, top: str | None) -> str:
         if s.isascii():
@@ -520,20 +545,22 @@ class _Cleaner:
         if isinstance(value, dict):
             if depth > MAX_SIDECAR_DEPTH:
                 raise _TooDeep
+            plain = self.plain
+            strings = self.strings
             out: dict[str, Any] = {}
             for k, v in value.items():
-                key = self._text(k, top if top is not None else k)
-                kind = type(v)
+                key = self._text(k, top if top is not None else k) if strings else k
                 # plain numbers, booleans and null (the common case) need no cleaning
                 out[key] = (
-                    v if kind in _PLAIN
+                    v if type(v) in plain
                     else self.clean(v, depth + 1, top if top is not None else key)
                 )
             return out if depth == 1 else FrozenDict(out)
         if isinstance(value, list):
             if depth > MAX_SIDECAR_DEPTH:
                 raise _TooDeep
-            if all(type(v) in _PLAIN for v in value):  # numbers: nothing to clean
+            plain = self.plain
+            if all(type(v) in plain for v in value):  # numbers: nothing to clean
                 return FrozenList(value)
             return FrozenList([self.clean(v, depth + 1, top) for v in value])
         if isinstance(value, str):
