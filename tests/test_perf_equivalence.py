@@ -220,24 +220,19 @@ def test_parse_name_matches_the_part_by_part_rule(name: str) -> None:
 
 def _general_parse(raw: bytes) -> tuple[Any, list[Any]]:
     """parse_sidecar_bytes with every hook and every string cleaned (the general code)."""
-    real_pattern, real_cleaner = sidecar._MAY_OVERFLOW, sidecar._Cleaner
+    real_check, real_cleaner = sidecar._may_overflow, sidecar._Cleaner
 
     class AlwaysClean(real_cleaner):  # type: ignore[valid-type,misc]
         def __init__(self, *, strings: bool = True) -> None:
             super().__init__(strings=True)
 
     try:
-        sidecar._MAY_OVERFLOW = _AlwaysMatch()  # type: ignore[assignment]
+        sidecar._may_overflow = lambda _text: True
         sidecar._Cleaner = AlwaysClean  # type: ignore[misc]
         return sidecar.parse_sidecar_bytes(raw, "x.json")
     finally:
-        sidecar._MAY_OVERFLOW = real_pattern
+        sidecar._may_overflow = real_check
         sidecar._Cleaner = real_cleaner  # type: ignore[misc]
-
-
-class _AlwaysMatch:
-    def search(self, _text: str) -> bool:
-        return True
 
 
 def _dump(value: Any) -> str:
@@ -249,6 +244,21 @@ number_literals = st.sampled_from([
     "9" * 308 + ".0", "9" * 309, "1e0308", "0.5e308", "12e307", "NaN", "-Infinity", "2.5",
     '"\\ud800"', '"caf\\u00e9"', '"\\u00e9\\udfff"', "1e99",
 ])
+
+
+@pytest.mark.parametrize("literal", ["1e400", "1E+309", "-1e0400", "9" * 310 + ".5", "1e308"])
+def test_overflow_check_sees_every_literal_that_overflows(literal: str) -> None:
+    # the largest double is about 1.8e308 (IEEE 754 binary64; Python float)
+    assert sidecar._may_overflow('{"a": ' + literal + "}")
+    assert sidecar._may_overflow(literal) or float(literal) != float("inf")
+
+
+@settings(max_examples=300, deadline=None)
+@given(mantissa=st.integers(0, 10**6), exponent=st.integers(-400, 400))
+def test_overflow_check_never_misses_an_overflow(mantissa: int, exponent: int) -> None:
+    literal = f"{mantissa}.5e{exponent}"
+    if abs(float(literal)) == float("inf"):
+        assert sidecar._may_overflow(literal)
 
 
 @settings(max_examples=300, deadline=None)
