@@ -3,8 +3,9 @@
 Both layouts hold the same runs and the same metadata (issue 17, item 4): in
 ``shared`` the fields sit in one top-level sidecar per task and each run has a
 one-field own sidecar (as in ``bench_audit.py``); in ``per-run`` every run's own
-sidecar holds all its fields (about 55, as a converter writes them). Both are audited in one process, alternately (``--repeat`` times, the
-median kept), and the ratio of the per-run cost to the shared cost is printed.
+sidecar holds all its fields (about 55, as a converter writes them). Both are
+audited in one process, alternately (``--repeat`` times, the median kept), and
+the ratio of the per-run cost to the shared cost is printed.
 
     python benchmarks/bench_sidecar_layouts.py [--runs 2000] [--repeat 3] [--profile]
                                                [--out bench-results/sidecar_layouts.json]
