@@ -192,8 +192,10 @@ def test_volume_reader_refuses_a_fifo_swapped_in_after_the_audit(tmp_path: Path)
     with pytest.raises(ReadError) as err:
         within(open_it)
     assert err.value.code == "file/unreadable"
-    with pytest.raises(ReadError):
+    with pytest.raises(OSError):  # what callers of file_sha256 handle
         within(lambda: file_sha256(run))
+    with pytest.raises(FileNotFoundError):
+        file_sha256(tmp_path / "missing.nii")
 
 
 def test_volume_reader_reads_no_more_than_the_file_had_when_opened(tmp_path: Path) -> None:

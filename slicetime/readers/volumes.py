@@ -24,6 +24,7 @@ byte for byte, a few fields patched) from batches of volumes.
 from __future__ import annotations
 
 import contextlib
+import errno
 import gzip
 import hashlib
 import io
@@ -447,11 +448,22 @@ class _HashingWriter:
         return self._fh.closed
 
 
+def _open_regular_or_oserror(path: Path) -> BinaryIO:
+    """:func:`.errors.open_regular` for callers that expect ``OSError`` (a missing file
+    raises ``FileNotFoundError``; a FIFO or device an ``OSError`` with ``EINVAL``)."""
+    try:
+        fh, _st = open_regular(path, str(path))
+    except ReadError as exc:
+        if exc.code == "file/missing":
+            raise FileNotFoundError(errno.ENOENT, exc.message, str(path)) from None
+        raise OSError(errno.EINVAL, exc.message, str(path)) from None
+    return fh
+
+
 def file_sha256(path: Path) -> str:
     """SHA-256 of a file's bytes."""
     digest = hashlib.sha256()
-    raw, _st = open_regular(path, str(path))  # a regular file only: never blocks
-    with raw as fh:
+    with _open_regular_or_oserror(path) as fh:
         while chunk := fh.read(_HASH_CHUNK):
             digest.update(chunk)
     return digest.hexdigest()
