@@ -193,7 +193,8 @@ def test_an_out_folder_of_another_dataset_is_refused_and_provenance_stays_true(
     statuses = {r["path"]: r["status"] for r in report["runs"]}
     assert statuses == {REL: "refused", rel2: "corrected"}
     first = output_of(out, REL)
-    assert hashlib.sha256(first.read_bytes()).hexdigest() == kept[os.fsdecode(first.relative_to(out))]
+    key = os.fsdecode(first.relative_to(out))
+    assert hashlib.sha256(first.read_bytes()).hexdigest() == kept[key]
     links = json.loads((out / "dataset_description.json").read_text())["DatasetLinks"]
     for rel, root in ((REL, ds1), (rel2, ds2)):
         side = json.loads(sidecar_of(output_of(out, rel)).read_text())

@@ -289,12 +289,18 @@ def test_top_level_sidecar_is_parsed_once(tmp_path: Path, monkeypatch: pytest.Mo
     assert len(calls) == 1 + len(runs) == index.parse_count
 
 
-def test_metadata_is_a_fresh_copy(tmp_path: Path) -> None:
+def test_metadata_is_a_fresh_dict_of_shared_frozen_values(tmp_path: Path) -> None:
     write_sidecar(tmp_path, "task-rest_bold.json", {"SliceTiming": TIMES})
     run = write_run(tmp_path, "sub-01/func/sub-01_task-rest_bold.nii.gz", SMALL)
     index = SidecarIndex(tmp_path)
-    index.resolve(run).metadata["SliceTiming"].append(99.0)
-    assert index.resolve(run).metadata["SliceTiming"] == TIMES
+    first = index.resolve(run).metadata
+    first["RepetitionTime"] = 3.0  # the top level is the run's own dict
+    del first["SliceTiming"]
+    with pytest.raises(TypeError):
+        index.resolve(run).metadata["SliceTiming"].append(99.0)  # shared: refuses changes
+    again = index.resolve(run).metadata
+    assert again == {"SliceTiming": TIMES}
+    assert again["SliceTiming"] is index.resolve(run).metadata["SliceTiming"]
 
 
 def test_broken_top_level_sidecar_is_attributed(tmp_path: Path) -> None:

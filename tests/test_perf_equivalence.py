@@ -10,6 +10,7 @@ measured by ``benchmarks/bench_audit.py``.
 from __future__ import annotations
 
 import copy
+import json
 import math
 import re
 import struct
@@ -213,3 +214,62 @@ def _parse_name_part_by_part(name: str) -> ParsedName | None:
 )
 def test_parse_name_matches_the_part_by_part_rule(name: str) -> None:
     assert repr(parse_name(name)) == repr(_parse_name_part_by_part(name))
+
+
+# --- sidecar parsing fast paths: no float hook, no string cleaning --------------------------
+
+def _general_parse(raw: bytes) -> tuple[Any, list[Any]]:
+    """parse_sidecar_bytes with every hook and every string cleaned (the general code)."""
+    real_check, real_cleaner = sidecar._may_overflow, sidecar._Cleaner
+
+    class AlwaysClean(real_cleaner):  # type: ignore[valid-type,misc]
+        def __init__(self, *, strings: bool = True) -> None:
+            super().__init__(strings=True)
+
+    try:
+        sidecar._may_overflow = lambda _text: True
+        sidecar._Cleaner = AlwaysClean  # type: ignore[misc]
+        return sidecar.parse_sidecar_bytes(raw, "x.json")
+    finally:
+        sidecar._may_overflow = real_check
+        sidecar._Cleaner = real_cleaner  # type: ignore[misc]
+
+
+def _dump(value: Any) -> str:
+    return json.dumps(value, allow_nan=True)
+
+
+number_literals = st.sampled_from([
+    "1e308", "1.7976931348623157e308", "1.8e308", "1e309", "1E+400", "-1e400", "1e-400",
+    "9" * 308 + ".0", "9" * 309, "1e0308", "0.5e308", "12e307", "NaN", "-Infinity", "2.5",
+    '"\\ud800"', '"caf\\u00e9"', '"\\u00e9\\udfff"', "1e99",
+])
+
+
+@pytest.mark.parametrize("literal", ["1e400", "1E+309", "-1e0400", "9" * 310 + ".5", "1e308"])
+def test_overflow_check_sees_every_literal_that_overflows(literal: str) -> None:
+    # the largest double is about 1.8e308 (IEEE 754 binary64; Python float)
+    assert sidecar._may_overflow('{"a": ' + literal + "}")
+    assert sidecar._may_overflow(literal) or float(literal) != float("inf")
+
+
+@settings(max_examples=300, deadline=None)
+@given(mantissa=st.integers(0, 10**6), exponent=st.integers(-400, 400))
+def test_overflow_check_never_misses_an_overflow(mantissa: int, exponent: int) -> None:
+    literal = f"{mantissa}.5e{exponent}"
+    if abs(float(literal)) == float("inf"):
+        assert sidecar._may_overflow(literal)
+
+
+@settings(max_examples=300, deadline=None)
+@given(value=json_values, literals=st.lists(number_literals, max_size=4))
+def test_fast_sidecar_parse_equals_the_general_parse(value: Any, literals: list[str]) -> None:
+    # the fast paths (C float parsing when no literal can overflow; strings copied as they
+    # are when no \u escape and no non-finite literal occurs) give the same data and findings
+    fields = ", ".join(f'"k{i}": {lit}' for i, lit in enumerate(literals))
+    text = '{"v": ' + _dump(value) + (", " + fields if fields else "") + "}"
+    raw = text.encode("utf-8", "surrogatepass")
+    fast = sidecar.parse_sidecar_bytes(raw, "x.json")
+    general = _general_parse(raw)
+    assert repr(fast[0]) == repr(general[0])
+    assert fast[1] == general[1]

@@ -19,7 +19,7 @@ from hypothesis import strategies as st
 
 from slicetime.model import HeaderInfo, Severity
 from slicetime.readers import ReadError, read_header
-from slicetime.readers import nifti as nifti_module
+from slicetime.readers import errors as errors_module
 
 sys.path.insert(0, str(Path(__file__).parent))
 from helpers_bids import (
@@ -451,7 +451,8 @@ def test_permission_denied(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> N
     def refusing(*args: object, **kwargs: object) -> None:
         raise PermissionError(13, "Permission denied", str(path))
 
-    monkeypatch.setattr(nifti_module, "open", refusing, raising=False)  # as for a chmod 000 file
+    # as for a chmod 000 file (readers open files with os.open, see readers/errors.py)
+    monkeypatch.setattr(errors_module.os, "open", refusing)
     assert read_error(path).code == "file/unreadable"
 
 

@@ -15,7 +15,7 @@ from slicetime.pipelines.errors import NoRunsError
 from slicetime.pipelines.executor import Executor, Progress, map_chunks
 from slicetime.readers.dataset import find_root, iter_runs
 from slicetime.readers.errors import ReadError
-from slicetime.readers.inheritance import SidecarIndex
+from slicetime.readers.inheritance import SidecarIndex, SidecarStore, ValueSharer
 from slicetime.readers.policy import POLICY_FILENAME, Policy, find_policy, load_policy
 from slicetime.readers.record import build_record, relative_display
 from slicetime.readers.source import SourceIndex, SourceOptions, find_source
@@ -114,18 +114,22 @@ def _with_source(record: RunRecord, root: Path, options: SourceOptions | None,
 def audit_chunk(
     targets: Sequence[tuple[Path, Path]], policies: Mapping[Path, Policy | None] | None = None,
     verify: bool = False, source: SourceOptions | None = None,
+    store: SidecarStore | None = None,
 ) -> list[RunResult]:
     """Audit neighbouring runs with one sidecar cache per dataset root.
 
-    A bug while auditing one run becomes a ``batch/internal-error`` finding for
-    that run (set ``SLICETIME_DEBUG`` to get the traceback instead).
+    ``store`` holds the walk's parsed shared sidecars (one per walk and process, so
+    every chunk shares them). A bug while auditing one run becomes a
+    ``batch/internal-error`` finding for that run (set ``SLICETIME_DEBUG`` to get
+    the traceback instead).
     """
     indexes: dict[Path, SidecarIndex] = {}
+    store = store if store is not None else SidecarStore()
     source_indexes: dict[Path, SourceIndex] = {}
     results = []
     for root, path in targets:
         if root not in indexes:
-            indexes[root] = SidecarIndex(root)
+            indexes[root] = SidecarIndex(root, store=store)
             source_indexes[root] = SourceIndex(root)
         index = indexes[root]
         try:
@@ -243,7 +247,14 @@ def audit_paths(
     result = AuditResult(roots=roots)
     policies = _policies(sorted({root for root, _ in targets}), policy_file, walk_problems)
     result.policies = {str(r): p.file for r, p in policies.items() if p is not None}
-    job = functools.partial(audit_chunk, policies=policies, verify=verify, source=source)
+    job = functools.partial(audit_chunk, policies=policies, verify=verify, source=source,
+                            store=SidecarStore())
+    sharer = ValueSharer()  # one copy of each inherited value, as chunks come back
+
+    def arrived(run: RunResult) -> bool:
+        sharer.add(run.record)
+        return _not_processed(run)
+
     result.runs = map_chunks(
         job,
         targets,
@@ -251,7 +262,7 @@ def audit_paths(
         executor=executor,
         jobs=jobs,
         progress=progress,
-        failed_of=_not_processed,
+        failed_of=arrived,
     )
     result.dataset_findings.extend(walk_problems)
     exempt: dict[str, set[str]] = {}

@@ -28,6 +28,7 @@ be on a file system every worker sees); ``dask[distributed]`` is the optional
 from __future__ import annotations
 
 import contextlib
+import itertools
 import os
 import time
 from collections.abc import Callable, Sequence
@@ -187,9 +188,16 @@ class ProcessExecutor(Executor):
             initargs=(started,),
         )
         futures: dict[Future[list[R]], int] = {}
+        # a few chunks in flight per worker, not all at once: results that arrive faster
+        # than they are taken would otherwise pile up in this process
+        window = max(2, 2 * self.jobs)
+        queue = iter(todo)
         try:
-            futures = {pool.submit(_flagged, job, tracker.chunks[i], i): i for i in todo}
-            waiting = set(futures)
+            waiting: set[Future[list[R]]] = set()
+            for i in itertools.islice(queue, window):
+                future = pool.submit(_flagged, job, tracker.chunks[i], i)
+                futures[future] = i
+                waiting.add(future)
             while waiting:
                 finished, waiting = wait(waiting, return_when=FIRST_COMPLETED)
                 for future in finished:
@@ -197,7 +205,13 @@ class ProcessExecutor(Executor):
                         results = future.result()
                     except BrokenProcessPool:
                         return True
-                    tracker.finish(futures[future], results)
+                    # drop the finished future: it would hold its results until the end
+                    tracker.finish(futures.pop(future), results)
+                    del results
+                    for i in itertools.islice(queue, 1):
+                        following = pool.submit(_flagged, job, tracker.chunks[i], i)
+                        futures[following] = i
+                        waiting.add(following)
             return False
         except BaseException:
             _stop_workers(pool)

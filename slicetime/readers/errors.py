@@ -17,7 +17,15 @@ File-level codes (our own):
     symlinks that point at each other in a loop;
 ``file/unreadable``
     a permission or other OS error, a directory or anything that is not a
-    regular file (FIFOs and devices are refused so that reading never blocks).
+    regular file (FIFOs, sockets and devices are refused so that reading never blocks).
+
+Every reader opens its input through :func:`open_regular`: the path is checked
+with ``stat`` (a special file is refused before it is opened, so opening has no
+side effect), then opened without blocking (``O_NONBLOCK``: a FIFO swapped in
+between the two calls cannot block the open) and checked again with ``fstat``
+on the open descriptor (a swap between the two is refused too). Content is
+read with :func:`read_bounded`, which never reads more than a caller's limit
+even from a file that keeps growing.
 """
 
 from __future__ import annotations
@@ -27,11 +35,19 @@ import os
 import stat
 from collections.abc import Mapping
 from pathlib import Path
-from typing import Any
+from typing import Any, BinaryIO
 
 from slicetime.model import Finding, Severity
 
-__all__ = ["ReadError", "check_regular_file", "display_name", "os_error"]
+__all__ = [
+    "ReadError",
+    "check_regular_file",
+    "display_name",
+    "file_kind",
+    "open_regular",
+    "os_error",
+    "read_bounded",
+]
 
 _MAX_LINK_HOPS = 40
 
@@ -178,7 +194,105 @@ def check_regular_file(
             "file/unreadable", shown, None, f"{shown}: is a directory, expected a {what}"
         )
     if not stat.S_ISREG(st.st_mode):
-        raise ReadError(
-            "file/unreadable", shown, None, f"{shown}: is not a regular file (a device or pipe)"
-        )
+        raise _not_regular(shown, st.st_mode, what)
     return st
+
+
+def file_kind(mode: int) -> str:
+    """What kind of file a ``st_mode`` describes, in words (for messages)."""
+    if stat.S_ISREG(mode):
+        return "a regular file"
+    if stat.S_ISDIR(mode):
+        return "a directory"
+    if stat.S_ISFIFO(mode):
+        return "a FIFO (named pipe)"
+    if stat.S_ISCHR(mode):
+        return "a character device"
+    if stat.S_ISBLK(mode):
+        return "a block device"
+    if stat.S_ISSOCK(mode):
+        return "a socket"
+    return "not a regular file"
+
+
+def _not_regular(shown: str, mode: int, what: str, *, swapped: bool = False) -> ReadError:
+    kind = file_kind(mode)
+    when = " (it was replaced while being opened)" if swapped else ""
+    return ReadError(
+        "file/unreadable",
+        shown,
+        None,
+        f"{shown}: is {kind}, not a regular file{when}; a {what} is only read from a "
+        "regular file, so that reading cannot block",
+        evidence={"kind": kind},
+        hint="point the path at a regular file",
+    )
+
+
+#: open flags: never wait for a writer (FIFO), never become a controlling terminal
+_OPEN_FLAGS = (
+    os.O_RDONLY
+    | getattr(os, "O_NONBLOCK", 0)
+    | getattr(os, "O_NOCTTY", 0)
+    | getattr(os, "O_CLOEXEC", 0)
+    | getattr(os, "O_BINARY", 0)
+)
+
+
+def open_regular(
+    path: str | os.PathLike[str], shown: str, *, what: str = "file"
+) -> tuple[BinaryIO, os.stat_result]:
+    """Open the regular file at ``path`` for unbuffered binary reading, or raise.
+
+    Returns the open file and its ``fstat``. Raises :class:`ReadError` as
+    :func:`check_regular_file` does, and ``file/unreadable`` when the path turned
+    into something else (a FIFO, a device) between the check and the open. The
+    open never blocks: the flags include ``O_NONBLOCK``, which regular files ignore.
+    """
+    check_regular_file(path, shown, what=what)  # before the open: a device is never opened
+    try:
+        fd = os.open(path, _OPEN_FLAGS)
+    except OSError as exc:
+        raise os_error(exc, shown, what=what) from None
+    try:
+        st = os.fstat(fd)
+        if not stat.S_ISREG(st.st_mode):
+            raise _not_regular(shown, st.st_mode, what, swapped=True)
+        return os.fdopen(fd, "rb", buffering=0), st
+    except BaseException:
+        os.close(fd)
+        raise
+
+
+def read_bounded(fh: BinaryIO, expected: int, limit: int) -> bytes:
+    """The content of ``fh`` from its position, reading at most ``limit + 1`` bytes.
+
+    ``expected`` is the size on disk (from ``fstat``): that much (plus one byte,
+    to notice growth) is asked for first, so a small file costs one read and a
+    small allocation. A file that grew since is read on, but never beyond
+    ``limit + 1`` bytes, so a caller sees ``len(result) > limit`` as "too large"
+    whatever the file does while it is read.
+    """
+    first = min(max(expected, 0), limit) + 1
+    data = _read_up_to(fh, first)
+    if len(data) == first and first <= limit:
+        data += _read_up_to(fh, limit + 1 - first)
+    return data
+
+
+def _read_up_to(fh: BinaryIO, size: int) -> bytes:
+    """Up to ``size`` bytes; fewer only at the end of the file."""
+    data = fh.read(size)
+    if data is None:  # a non-blocking read with nothing to give (not a regular file)
+        return b""
+    if len(data) >= size:
+        return data
+    parts = [data]
+    got = len(data)
+    while got < size:
+        more = fh.read(min(size - got, 1 << 20))
+        if not more:
+            break
+        parts.append(more)
+        got += len(more)
+    return b"".join(parts)

@@ -19,14 +19,26 @@ file overrides the less specific one; the data file's own sidecar always last.
 
 :class:`SidecarIndex` caches folder listings and parsed sidecars for one walk,
 so a top-level sidecar inherited by a thousand runs is parsed once.
+
+Memory: parsed values are shared, never copied per run. Nested arrays and objects
+come from the parser frozen (:class:`~slicetime.readers.sidecar.FrozenList`,
+:class:`~slicetime.readers.sidecar.FrozenDict`), each run's merged metadata is a
+new top-level dict holding the same value objects, so a 13 MB ``SliceTiming``
+inherited by 400 runs is held once. A :class:`SidecarStore` holds the parsed
+shared (inherited) sidecars for a whole walk, across the chunks of runs and,
+through pickling, once per worker process; sidecars of 1 MiB and more
+(:data:`LARGE_SIDECAR_BYTES`) count against a total budget per walk
+(:data:`SHARED_BUDGET_BYTES`, bytes on disk). One that no longer fits is not
+parsed: every run inheriting it gets a ``sidecar/over-budget`` error instead.
 """
 
 from __future__ import annotations
 
 import copy
 import os
+import weakref
 from collections import OrderedDict
-from collections.abc import Sequence
+from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -34,11 +46,148 @@ from typing import Any
 from slicetime.model import Finding, Severity
 
 from .entities import ParsedName, image_stem, parse_name
-from .sidecar import TIMING_FIELDS, check_types, load_sidecar
+from .sidecar import (
+    MAX_SIDECAR_BYTES,
+    TIMING_FIELDS,
+    FrozenDict,
+    FrozenList,
+    check_types,
+    load_sidecar,
+    quick_checks,
+)
 
-__all__ = ["Resolution", "SidecarIndex", "relative_posix"]
+__all__ = [
+    "LARGE_SIDECAR_BYTES",
+    "SHARED_BUDGET_BYTES",
+    "Resolution",
+    "SidecarIndex",
+    "SidecarStore",
+    "ValueSharer",
+    "relative_posix",
+    "share_equal_values",
+]
 
 _OWN_CACHE_SIZE = 256
+#: shared sidecars of this size on disk or more count against the walk's budget
+LARGE_SIDECAR_BYTES = 1 << 20
+#: bytes on disk of large shared sidecars parsed and held in one walk (per process)
+SHARED_BUDGET_BYTES = 64 << 20
+
+Loaded = tuple[dict[str, Any] | None, tuple[Finding, ...]]
+
+
+class SidecarStore:
+    """The parsed shared sidecars of one walk, under a memory budget.
+
+    Each shared sidecar is parsed once per walk and process, and its value is
+    handed to every run that inherits it. Large sidecars (at least
+    :data:`LARGE_SIDECAR_BYTES` on disk) count against ``budget``; one that does not
+    fit in what is left is not parsed and reads as a ``sidecar/over-budget`` error,
+    remembered like a parsed file (so it is never tried again in the walk).
+
+    Pickling a store (to send a job to a worker process) sends only its identity:
+    in the worker it becomes that process's store for the same walk, so the chunks
+    a worker audits share one store too.
+    """
+
+    def __init__(self, budget: int = SHARED_BUDGET_BYTES, *, token: str | None = None) -> None:
+        self.budget = budget
+        self.token = token if token is not None else os.urandom(8).hex()
+        self.used = 0
+        self.parse_count = 0
+        self._entries: dict[tuple[str, str], Loaded] = {}
+        _STORES[self.token] = self
+
+    def __reduce__(self) -> tuple[Any, ...]:
+        return (_store_for, (self.token, self.budget))
+
+    def __len__(self) -> int:
+        return len(self._entries)
+
+    def get(self, path: str, display: str) -> tuple[Loaded, bool]:
+        """The parsed sidecar at ``path`` and whether it was parsed by this call."""
+        key = (path, display)
+        cached = self._entries.get(key)
+        if cached is not None:
+            return cached, False
+        try:
+            size = os.stat(path).st_size
+        except OSError:
+            size = 0  # load_sidecar reports the problem
+        if LARGE_SIDECAR_BYTES <= size <= MAX_SIDECAR_BYTES:
+            if self.used + size > self.budget:
+                value: Loaded = (None, (self._over_budget(display, size),))
+                self._entries[key] = value
+                return value, False
+            self.used += size
+        data, findings = load_sidecar(path, display)
+        self.parse_count += 1
+        value = (data, tuple(findings))
+        self._entries[key] = value
+        return value, True
+
+    def _over_budget(self, shown: str, size: int) -> Finding:
+        return Finding(
+            "sidecar/over-budget",
+            Severity.ERROR,
+            f"{shown}: this inherited sidecar has {size} bytes, and the large inherited "
+            f"sidecars parsed in this audit already hold {self.used} of the {self.budget} "
+            "bytes allowed; not read",
+            file=shown,
+            evidence={"size": size, "used": self.used, "budget": self.budget},
+            hint="move bulk data out of the sidecars; audit fewer datasets at once",
+        )
+
+
+#: the stores of this process by walk token (weak: a store lives as long as its walk)
+_STORES: weakref.WeakValueDictionary[str, SidecarStore] = weakref.WeakValueDictionary()
+#: in a worker process, the stores made for recent walks (kept between jobs)
+_RECENT: list[SidecarStore] = []
+
+
+def _store_for(token: str, budget: int) -> SidecarStore:
+    store = _STORES.get(token)
+    if store is None:
+        store = SidecarStore(budget, token=token)
+        _RECENT.append(store)
+        del _RECENT[:-2]  # a worker serves one walk at a time; keep the last two at most
+    return store
+
+
+class ValueSharer:
+    """Make equal large metadata values of different runs one object again, as records
+    arrive.
+
+    Records that come back from worker processes hold their own copy of an inherited
+    value per chunk (pickling copies). :meth:`add` replaces a record's value by the
+    first equal one seen from the same sidecar and key, so the parent holds each
+    inherited value once however many chunks carried it. Only frozen values (never
+    changed after parsing) of at least 64 items are considered.
+    """
+
+    def __init__(self) -> None:
+        self._first: dict[tuple[str, str], Any] = {}
+        self.replaced = 0
+
+    def add(self, record: Any) -> None:
+        metadata = record.metadata
+        sources = record.metadata_sources
+        for key, value in metadata.items():
+            if type(value) not in _FROZEN or len(value) < _SHARE_MIN_ITEMS:
+                continue
+            where = (sources.get(key, ""), key)
+            seen = self._first.setdefault(where, value)
+            if seen is not value and seen == value:
+                metadata[key] = seen
+                self.replaced += 1
+
+
+def share_equal_values(records: Iterable[Any]) -> int:
+    """:class:`ValueSharer` over ``records``; returns how many values were replaced."""
+    sharer = ValueSharer()
+    for record in records:
+        sharer.add(record)
+    return sharer.replaced
 
 
 def relative_posix(path: Path, root: Path | None) -> str:
@@ -71,7 +220,9 @@ OVERRIDE_TRACKED = frozenset({
 class Resolution:
     """The metadata of one data file after the inheritance principle.
 
-    ``metadata`` is a fresh dict (safe to modify); ``sources`` maps each key to
+    ``metadata`` is a fresh top-level dict (keys may be added or removed); nested
+    arrays and objects are frozen and shared with every run that inherits them
+    (copy before changing them); ``sources`` maps each key to
     the sidecar (relative posix path) that supplied the winning value;
     ``chain`` lists the applicable sidecars top-down in merge order;
     ``findings`` holds the parse problems of applicable sidecars (attributed
@@ -106,16 +257,23 @@ class SidecarIndex:
     ``parse_count`` counts sidecar files actually read and parsed.
     """
 
-    def __init__(self, root: Path | None = None, *, check_field_types: bool = True) -> None:
+    def __init__(
+        self,
+        root: Path | None = None,
+        *,
+        check_field_types: bool = True,
+        store: SidecarStore | None = None,
+    ) -> None:
         # an index is cheap to make (one per chunk of runs, or per run): no Path until asked
         self._root_text = os.path.abspath(root) if root is not None else None
         self.check_field_types = check_field_types
         self.parse_count = 0
+        #: parsed shared sidecars: the walk's store when given (shared between chunks)
+        self.store = store if store is not None else SidecarStore()
         self._listings: dict[str, _Listing] = {}
         self._folders: dict[tuple[str, str | None], _Folder] = {}
         self._chains: dict[tuple[str, str | None], tuple[_Folder, ...]] = {}
         self._checked: dict[tuple[str, str], tuple[Finding, ...]] = {}
-        self._shared: dict[tuple[str, str], tuple[dict[str, Any] | None, tuple[Finding, ...]]] = {}
         self._own: OrderedDict[
             tuple[str, str], tuple[dict[str, Any] | None, tuple[Finding, ...]]
         ] = OrderedDict()
@@ -195,23 +353,23 @@ class SidecarIndex:
     def load(
         self, path: Path | str, display: str, *, shared: bool = True
     ) -> tuple[dict[str, Any] | None, tuple[Finding, ...]]:
-        """Parse the sidecar at ``path`` once; ``shared=False`` uses a small LRU cache
-        (for a data file's own sidecar, which no other run inherits)."""
+        """Parse the sidecar at ``path`` once; shared sidecars go through the walk's
+        :class:`SidecarStore`; ``shared=False`` uses a small LRU cache (for a data file's
+        own sidecar, which no other run inherits)."""
         key = (os.fspath(path), display)
-        if key in self._shared:
-            return self._shared[key]
+        if shared:
+            value, parsed = self.store.get(key[0], display)
+            self.parse_count += parsed
+            return value
         if key in self._own:
             self._own.move_to_end(key)
             return self._own[key]
         data, findings = load_sidecar(key[0], display)
         self.parse_count += 1
         value = (data, tuple(findings))
-        if shared:
-            self._shared[key] = value
-        else:
-            self._own[key] = value
-            if len(self._own) > _OWN_CACHE_SIZE:
-                self._own.popitem(last=False)
+        self._own[key] = value
+        if len(self._own) > _OWN_CACHE_SIZE:
+            self._own.popitem(last=False)
         return value
 
     def _type_findings(
@@ -219,7 +377,10 @@ class SidecarIndex:
     ) -> list[Finding]:
         """Type checks of the merged timing fields; a shared sidecar's value is checked once."""
         out: list[Finding] = []
+        quick = quick_checks()
         for key in sorted(TIMING_FIELDS.intersection(metadata)):
+            if quick[key](metadata[key]):
+                continue  # certainly valid (the same predicate check_types starts with)
             source = sources[key]
             memo_key = (source, key)
             cached = self._checked.get(memo_key)
@@ -297,7 +458,7 @@ class SidecarIndex:
                         if key in OVERRIDE_TRACKED and key in metadata \
                                 and metadata[key] != value:
                             overridden.setdefault(key, []).append(
-                                (sources[key], fresh_copy(metadata[key])))
+                                (sources[key], metadata[key]))
                         metadata[key] = value
                         sources[key] = shown
             level_names.append(tuple(name for name, _ in loaded))
@@ -306,7 +467,7 @@ class SidecarIndex:
         if self.check_field_types and metadata:
             findings.extend(self._type_findings(metadata, sources, own_names))
         return Resolution(
-            metadata=fresh_copy(metadata),
+            metadata=metadata,  # a new dict; its values are shared (frozen, never copied)
             sources=sources,
             chain=tuple(chain),
             findings=tuple(findings),
@@ -374,6 +535,9 @@ def _folder_chain(folder: str, root: str | None) -> tuple[str, ...]:
 
 
 _IMMUTABLE: frozenset[type] = frozenset({str, int, float, bool, type(None)})
+_FROZEN: frozenset[type] = frozenset({FrozenList, FrozenDict})
+#: values shorter than this are not worth sharing after the fact
+_SHARE_MIN_ITEMS = 64
 
 
 def fresh_copy(value: Any) -> Any:

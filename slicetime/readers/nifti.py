@@ -19,9 +19,23 @@ Checks, in order, each before any allocation that depends on the header:
 3. ``dim[0]`` is 1..7 and ``dim[1..dim[0]]`` are positive; the claimed image
    size is below 1 PiB, and for gzip content at most 1032 times the
    compressed file size, deflate's maximum ratio (``file/bad-dimensions``);
-4. an uncompressed file holds ``vox_offset + data_bytes`` bytes; for gzip
+4. a single-file image's ``vox_offset`` lies at or after the end of the header
+   and its 4 extension-flag bytes (352 for NIfTI-1, 544 for NIfTI-2); ``0``
+   included, where readers disagree on where the data start
+   (``file/bad-data-offset``);
+5. an uncompressed file holds ``vox_offset + data_bytes`` bytes; for gzip
    content the ISIZE trailer (uncompressed size mod 2**32) matches
-   ``vox_offset + data_bytes`` mod 2**32 (``file/truncated``).
+   ``vox_offset + data_bytes`` mod 2**32 (``file/truncated``);
+6. when the extension flag is set, the chain of extensions between the header
+   and ``vox_offset`` is whole: every ``esize`` a positive multiple of 16 (so at
+   least 16, holding its own ``esize`` and ``ecode``), no extension running past
+   ``vox_offset`` or the end of the file (``file/bad-extensions``). As the
+   reference library reads them, the chain is followed while 16 or more bytes
+   are left before ``vox_offset``.
+
+The same checks of the data offset and the extensions run in
+:mod:`.volumes` before correction reads the data (:func:`data_offset_problem`,
+:func:`extension_problem`), so the audit and ``correct`` agree.
 
 gzip trailer policy: the ISIZE trailer describes only the *last* member of a
 multi-member gzip file, and garbage after the last member hides it too. So a
@@ -46,7 +60,7 @@ from typing import Any, BinaryIO, Literal
 
 from slicetime.model import Finding, HeaderInfo
 
-from .errors import ReadError, check_regular_file, display_name, os_error
+from .errors import ReadError, check_regular_file, display_name, open_regular, os_error
 
 try:  # pragma: no cover - depends on the environment
     from isal import isal_zlib as _fast_zlib
@@ -63,7 +77,14 @@ except ImportError:  # pragma: no cover
         return zlib.decompressobj(wbits=31)
 
 
-__all__ = ["DATATYPE_BITS", "MAX_DEFLATE_RATIO", "MAX_IMAGE_BYTES", "read_header"]
+__all__ = [
+    "DATATYPE_BITS",
+    "MAX_DEFLATE_RATIO",
+    "MAX_IMAGE_BYTES",
+    "data_offset_problem",
+    "extension_problem",
+    "read_header",
+]
 
 GZIP_MAGIC = b"\x1f\x8b"
 NIFTI1_SIZE = 348
@@ -73,6 +94,8 @@ MAX_DEFLATE_RATIO = 1032
 #: No real image holds a pebibyte; anything above it is a corrupt header.
 MAX_IMAGE_BYTES = 1 << 50
 _READ_CHUNK = 1 << 16
+#: the bytes read first: the larger header (NIfTI-2) and its 4 extension-flag bytes
+_FIRST_READ = NIFTI2_SIZE + 4
 _COUNT_CHUNK = 1 << 20
 
 #: Bits per voxel of each NIfTI datatype code (nifti1.h, from memory).
@@ -171,10 +194,13 @@ def size_text(n: int) -> str:
 class _GzipReader:
     """Bounded streaming decompression of a gzip file, across members."""
 
-    def __init__(self, fh: BinaryIO, shown: str, first: bytes) -> None:
+    def __init__(self, fh: BinaryIO, shown: str, first: bytes, left: int | None = None) -> None:
         self._fh = fh
         self._shown = shown
         self._pending = first
+        #: compressed bytes still to be read from ``fh`` (its size on disk when opened), so
+        #: a file that keeps growing cannot keep the reader going
+        self._left = left
         self._d = _new_decompressor()
         self.ended_cleanly = False  # the last member seen had its end marker
 
@@ -182,7 +208,17 @@ class _GzipReader:
         if self._pending:
             data, self._pending = self._pending, b""
             return data
-        return self._fh.read(_READ_CHUNK)
+        return self._read_input(_READ_CHUNK)
+
+    def _read_input(self, size: int) -> bytes:
+        if self._left is not None:
+            size = min(size, self._left)
+            if size <= 0:
+                return b""
+        data = self._fh.read(size) or b""
+        if self._left is not None:
+            self._left -= len(data)
+        return data
 
     def read(self, limit: int, sink: Callable[[bytes], None]) -> int:
         """Decompress up to ``limit`` bytes into ``sink``; return how many were produced."""
@@ -203,7 +239,7 @@ class _GzipReader:
                 sink(out)
                 produced += len(out)
             if self._d.eof:
-                rest = self._d.unused_data or self._fh.read(_READ_CHUNK)
+                rest = self._d.unused_data or self._read_input(_READ_CHUNK)
                 if rest[:2] != GZIP_MAGIC:
                     self.ended_cleanly = True  # end of the last member (trailing bytes ignored)
                     break
@@ -353,9 +389,14 @@ def read_header(
     file = os.fspath(path)
     shown = display if display is not None else display_name(Path(file), None)
     try:
-        st = check_regular_file(file, shown, what="NIfTI file")
         # unbuffered: a header read is a few small reads, a buffer would only be filled
-        with open(file, "rb", buffering=0) as fh:
+        fh, st = open_regular(file, shown, what="NIfTI file")
+        with fh:
+            if st.st_size == 0:
+                # not read: an empty file, or a pseudo-file (/proc) whose read may not end
+                raise ReadError(
+                    "file/not-nifti", shown, None, f"{shown}: the file is empty (0 bytes on disk)"
+                )
             return _read_open(path, fh, st.st_size, shown, verify_stream)
     except OSError as exc:
         raise os_error(exc, shown, what="NIfTI file") from None
@@ -377,12 +418,12 @@ def _read_open(
     path: str | os.PathLike[str], fh: BinaryIO, file_size: int, shown: str, verify_stream: bool
 ) -> tuple[HeaderInfo, list[Finding]]:
     findings: list[Finding] = []
-    first = _read_full(fh, NIFTI2_SIZE)
+    first = _read_full(fh, _FIRST_READ)
     compressed = first[:2] == GZIP_MAGIC
     if compressed:
         parts: list[bytes] = []
-        reader = _GzipReader(fh, shown, first)
-        reader.read(NIFTI2_SIZE, parts.append)
+        reader = _GzipReader(fh, shown, first, file_size - len(first))
+        reader.read(_FIRST_READ, parts.append)
         buf = b"".join(parts)
         if len(buf) < NIFTI1_SIZE and not reader.ended_cleanly:
             raise ReadError(
@@ -407,10 +448,11 @@ def _read_open(
     version, order, raw = _decode(buf, shown)
     shape, _bits, data_bytes = _check_dimensions(raw, shown)
     vox_offset = _vox_offset(raw, shown)
-    header_size = NIFTI1_SIZE if version == 1 else NIFTI2_SIZE
-
     if raw["single_file"]:
-        needed = max(vox_offset, header_size) + data_bytes
+        problem = data_offset_problem(version, vox_offset, shown)
+        if problem is not None:
+            raise problem
+        needed = vox_offset + data_bytes
         if compressed:
             limit = file_size * MAX_DEFLATE_RATIO
             if needed > limit:
@@ -429,7 +471,7 @@ def _read_open(
                 )
             isize = _read_isize(fh, file_size)
             if isize != needed % (1 << 32):
-                _check_stream_length(fh, first, shown, needed, isize, verify_stream)
+                _check_stream_length(fh, first, shown, needed, isize, verify_stream, file_size)
         elif file_size < needed:
             raise ReadError(
                 "file/truncated",
@@ -439,6 +481,14 @@ def _read_open(
                 f"(vox_offset {vox_offset} + {data_bytes} bytes of data)",
                 evidence={"file_size": file_size, "expected_size": needed},
             )
+        if _extension_flag(buf, version):
+            problem = extension_problem(
+                _stream_bytes(fh, first, buf, file_size, shown) if compressed
+                else _file_bytes(fh, buf),
+                version=version, order=order, vox_offset=vox_offset, shown=shown,
+            )
+            if problem is not None:
+                raise problem
     else:
         _check_paired_image(Path(path), shown, vox_offset + data_bytes)
 
@@ -479,14 +529,160 @@ def _read_open(
     return header, findings
 
 
+def _header_size(version: int) -> int:
+    return NIFTI1_SIZE if version == 1 else NIFTI2_SIZE
+
+
+def data_offset_problem(version: int, vox_offset: int, shown: str) -> ReadError | None:
+    """The error for a single-file image whose ``vox_offset`` lies inside the header, else None.
+
+    The data of a ``.nii`` file start after the header and the 4 extension-flag bytes
+    (NIfTI-1: 348 + 4 = 352; NIfTI-2: 540 + 4 = 544; nifti1.h and nifti2.h). A smaller
+    value, 0 included, makes readers disagree: some refuse the file, some read the data
+    from byte 0, some from the end of the header.
+    """
+    minimum = _header_size(version) + 4
+    if vox_offset >= minimum:
+        return None
+    if vox_offset == 0:
+        detail = (
+            "vox_offset is 0, but in a single-file image the data start after the header "
+            f"and the 4 extension-flag bytes (byte {minimum} or later); readers disagree on "
+            f"where the data start (byte 0 or byte {minimum})"
+        )
+    else:
+        detail = (
+            f"vox_offset {vox_offset} points inside the NIfTI-{version} header; the data of a "
+            f"single-file image start at byte {minimum} or later"
+        )
+    return ReadError(
+        "file/bad-data-offset",
+        shown,
+        "vox_offset",
+        f"{shown}: {detail}",
+        evidence={"vox_offset": vox_offset, "minimum": minimum, "version": version},
+        hint="rewrite the file with a reference library, which sets vox_offset after the header",
+    )
+
+
+def _extension_flag(buf: bytes, version: int) -> bool:
+    """True when the first byte of the 4 extension-flag bytes after the header is set."""
+    at = _header_size(version)
+    return len(buf) > at and buf[at] != 0
+
+
+ByteSource = Callable[[int, int], bytes]
+
+
+def extension_problem(
+    read: ByteSource, *, version: int, order: str, vox_offset: int, shown: str
+) -> ReadError | None:
+    """The error for a broken chain of header extensions, else None.
+
+    ``read(offset, count)`` returns up to ``count`` bytes of the (decompressed) file at
+    ``offset``; offsets only grow. With the extension flag set (the byte after the
+    header), extensions follow it as long as 16 or more bytes are left before
+    ``vox_offset`` (as the reference library reads them); each starts with ``esize``
+    and ``ecode`` (int32 in the header's byte order) and ``esize`` counts the whole
+    extension and must be a positive multiple of 16 (nifti1.h).
+    """
+    start = _header_size(version)
+    flag = read(start, 4)
+    if len(flag) < 4 or flag[0] == 0:
+        return None
+    pos = start + 4
+    number = 0
+    while vox_offset - pos >= 16:
+        number += 1
+        head = read(pos, 8)
+        where = f"extension {number} (at byte {pos})"
+        evidence: dict[str, Any] = {"extension": number, "offset": pos, "vox_offset": vox_offset}
+        detail: str | None = None
+        if len(head) < 8:
+            detail = f"{where} is cut off by the end of the file"
+        else:
+            esize, ecode = struct.unpack(order + "ii", head)
+            evidence.update(esize=esize, ecode=ecode)
+            if esize < 8:
+                detail = (
+                    f"{where} has esize {esize}, less than its own 8 bytes of esize and ecode"
+                )
+            elif esize % 16:
+                detail = f"{where} has esize {esize}, not a multiple of 16 as NIfTI requires"
+            elif esize > vox_offset - pos:
+                detail = (
+                    f"{where} has esize {esize} and runs to byte {pos + esize}, past "
+                    f"vox_offset {vox_offset} where the image data start"
+                )
+            else:
+                pos += esize
+                continue
+        return ReadError(
+            "file/bad-extensions",
+            shown,
+            "extensions",
+            f"{shown}: the header extension chain is broken: {detail}",
+            evidence=evidence,
+            hint="rewrite the file with a reference library, or clear the extension flag "
+            "(the byte after the header) when the extensions are not needed",
+        )
+    return None
+
+
+def _file_bytes(fh: BinaryIO, known: bytes) -> ByteSource:
+    """Reads at any offset of an uncompressed file whose first bytes are ``known``."""
+    fd = fh.fileno()
+
+    def read(offset: int, count: int) -> bytes:
+        if offset + count <= len(known):
+            return known[offset : offset + count]
+        return os.pread(fd, count, offset)
+
+    return read
+
+
+def _stream_bytes(
+    fh: BinaryIO, first: bytes, known: bytes, file_size: int, shown: str
+) -> ByteSource:
+    """Reads at growing offsets of a gzip stream: ``known`` holds its first bytes; beyond
+    them the stream is decompressed again from the start (only when needed), keeping
+    only the bytes asked for."""
+    state: dict[str, Any] = {"reader": None, "at": 0}
+
+    def read(offset: int, count: int) -> bytes:
+        if offset + count <= len(known):
+            return known[offset : offset + count]
+        reader = state["reader"]
+        if reader is None:
+            fh.seek(len(first))
+            reader = state["reader"] = _GzipReader(fh, shown, first, file_size - len(first))
+        if offset > state["at"]:
+            skipped = reader.read(offset - state["at"], lambda _chunk: None)
+            state["at"] += skipped
+            if state["at"] < offset:
+                return b""
+        parts: list[bytes] = []
+        got = reader.read(count, parts.append)
+        state["at"] += got
+        return b"".join(parts)
+
+    return read
+
+
 def _check_stream_length(
-    fh: BinaryIO, first: bytes, shown: str, needed: int, isize: int | None, verify: bool
+    fh: BinaryIO,
+    first: bytes,
+    shown: str,
+    needed: int,
+    isize: int | None,
+    verify: bool,
+    file_size: int,
 ) -> None:
     """Called when the ISIZE trailer disagrees: count the real stream length (bounded)."""
     evidence: dict[str, Any] = {"expected_size": needed, "gzip_isize": isize}
     if verify:
         fh.seek(len(first))
-        counter = _GzipReader(fh, shown, first)
+        counter = _GzipReader(fh, shown, first, file_size - len(first))
         try:
             total = counter.read(needed, lambda _chunk: None)
         except ReadError as err:

@@ -96,7 +96,7 @@ import jsonschema
 from slicetime.model import Severity
 from slicetime.schemes.infer import DEFAULT_TOLERANCE
 
-from .errors import ReadError, check_regular_file, display_name, os_error
+from .errors import ReadError, display_name, open_regular, os_error, read_bounded
 
 if sys.version_info >= (3, 11):
     import tomllib
@@ -480,13 +480,17 @@ def load_policy(path: Path, known_codes: Collection[str], *, display: str | None
     ``policy/invalid`` for anything wrong with its content.
     """
     shown = display_name(path, display)
-    st = check_regular_file(Path(path), shown, what="policy file")
-    if st.st_size > MAX_POLICY_BYTES:
-        raise _invalid(shown, None, f"is {st.st_size} bytes; a policy file is a few kilobytes")
-    try:
-        raw = Path(path).read_bytes()
-    except OSError as exc:
-        raise os_error(exc, shown, what="policy file") from None
+    fh, st = open_regular(Path(path), shown, what="policy file")
+    with fh:
+        if st.st_size > MAX_POLICY_BYTES:
+            raise _invalid(shown, None, f"is {st.st_size} bytes; a policy file is a few kilobytes")
+        try:
+            # bounded even when the file grows while it is read
+            raw = read_bounded(fh, st.st_size, MAX_POLICY_BYTES) if st.st_size else b""
+        except OSError as exc:
+            raise os_error(exc, shown, what="policy file") from None
+    if len(raw) > MAX_POLICY_BYTES:
+        raise _invalid(shown, None, f"grew beyond {MAX_POLICY_BYTES} bytes while being read")
     return parse_policy(raw, file=shown, known_codes=known_codes)
 
 

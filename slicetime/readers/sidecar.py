@@ -47,12 +47,14 @@ import jsonschema
 
 from slicetime.model import Finding, Severity
 
-from .errors import ReadError, check_regular_file, display_name, os_error
+from .errors import ReadError, display_name, open_regular, os_error, read_bounded
 
 __all__ = [
     "MAX_SIDECAR_BYTES",
     "MAX_SIDECAR_DEPTH",
     "TIMING_FIELDS",
+    "FrozenDict",
+    "FrozenList",
     "check_types",
     "load_schema",
     "load_sidecar",
@@ -88,6 +90,43 @@ def _validators() -> dict[str, jsonschema.protocols.Validator]:
     return {key: cls(sub) for key, sub in schema["properties"].items()}
 
 
+def _refuse(self: Any, *_args: Any, **_kwargs: Any) -> Any:
+    raise TypeError(
+        "a value read from a sidecar is shared between runs and cannot be changed; "
+        "copy it first (list(value), dict(value))"
+    )
+
+
+class FrozenList(list):  # type: ignore[type-arg]
+    """A JSON array read from a sidecar: a ``list`` that refuses every change.
+
+    One parsed value is shared by every run that inherits it (no copy per run), so it
+    must not change under them. It is still a ``list`` for ``isinstance``, equality,
+    ``json`` and jsonschema; copy it with ``list(value)`` to get a mutable one.
+    """
+
+    __slots__ = ()
+    append = extend = insert = pop = remove = clear = sort = reverse = _refuse
+    __setitem__ = __delitem__ = __iadd__ = __imul__ = _refuse
+
+    def __reduce__(self) -> tuple[Any, ...]:
+        return (FrozenList, (list(self),))
+
+
+class FrozenDict(dict):  # type: ignore[type-arg]
+    """A JSON object nested in a sidecar: a ``dict`` that refuses every change (see
+    :class:`FrozenList`)."""
+
+    __slots__ = ()
+    __setitem__ = __delitem__ = __ior__ = _refuse
+    clear = pop = popitem = setdefault = update = _refuse
+
+    def __reduce__(self) -> tuple[Any, ...]:
+        return (FrozenDict, (dict(self),))
+
+
+_LISTS: frozenset[type] = frozenset({list, FrozenList})
+
 #: The sidecar fields slicetime knows the type of (keys of the shipped schema).
 TIMING_FIELDS: frozenset[str] = frozenset(load_schema()["properties"])
 
@@ -107,10 +146,10 @@ def _quick_check(schema: Mapping[str, Any]) -> Check:
     """A fast predicate that is True only for values ``schema`` certainly accepts.
 
     It understands the few keywords the shipped schema uses, for the value types JSON
-    parsing produces (``int``, ``float``, ``str``, ``list``); anything else (another
-    keyword, a bool, a float where an integer is wanted, a subclass) gives False, and
-    the caller asks jsonschema, which also words the finding. So the predicate only
-    decides how fast a valid value passes, never what is reported.
+    parsing produces (``int``, ``float``, ``str``, ``list``, :class:`FrozenList`);
+    anything else (another keyword, a bool, a float where an integer is wanted, another
+    subclass) gives False, and the caller asks jsonschema, which also words the finding.
+    So the predicate only decides how fast a valid value passes, never what is reported.
     """
     if not _QUICK_KEYWORDS.issuperset(schema):
         return _never
@@ -156,11 +195,16 @@ def _quick_check(schema: Mapping[str, Any]) -> Check:
             return _never
         item = _quick_check(items) if items is not None else None
         return lambda value: (
-            type(value) is list
+            type(value) in _LISTS
             and len(value) >= min_items
             and (item is None or all(item(v) for v in value))
         )
     return _never
+
+
+def quick_checks() -> dict[str, Check]:
+    """Per known field, a predicate that is True only for values the schema accepts."""
+    return _quick_checks()
 
 
 @functools.cache
@@ -209,16 +253,17 @@ def load_sidecar(
     p = os.fspath(path)
     shown = display if display is not None else display_name(Path(p), None)
     try:
-        st = check_regular_file(p, shown, what="sidecar")
-        if st.st_size > MAX_SIDECAR_BYTES:
-            return None, [_too_large(shown, st.st_size)]
-        with open(p, "rb") as fh:
+        fh, st = open_regular(p, shown, what="sidecar")
+        with fh:
+            if st.st_size > MAX_SIDECAR_BYTES:
+                return None, [_too_large(shown, st.st_size)]
+            if st.st_size == 0:
+                # not read: a size of 0 is an empty file or a pseudo-file (/proc) whose
+                # read may never end
+                return None, [_empty(shown)]
             # ask for the size on disk (plus one byte, to see growth): a read of the 16 MiB
             # limit would allocate that much for every small file
-            want = st.st_size + 1
-            raw = fh.read(want)
-            if len(raw) == want:  # the file grew since the stat: read on up to the limit
-                raw += fh.read(MAX_SIDECAR_BYTES + 1 - want)
+            raw = read_bounded(fh, st.st_size, MAX_SIDECAR_BYTES)
     except ReadError as err:
         return None, [err.to_finding()]
     except OSError as exc:
@@ -234,6 +279,16 @@ def _too_large(shown: str, size: int) -> Finding:
         "bytes (16 MiB) metadata can reasonably need; not read",
         file=shown,
         evidence={"size": size, "limit": MAX_SIDECAR_BYTES},
+    )
+
+
+def _empty(shown: str) -> Finding:
+    return Finding(
+        "sidecar/bad-json",
+        Severity.ERROR,
+        f"{shown}: the sidecar is empty (0 bytes on disk)",
+        file=shown,
+        evidence={"line": 1, "column": 1, "size": 0},
     )
 
 
@@ -296,7 +351,9 @@ def parse_sidecar_bytes(raw: bytes, shown: str) -> tuple[dict[str, Any] | None, 
 
     parser = _parser()
     try:
-        data, constants, duplicates = parser.parse(text)
+        data, constants, duplicates = parser.parse(
+            text, exact_floats=_may_overflow(text)
+        )
     except json.JSONDecodeError as exc:
         return None, [
             *findings,
@@ -336,7 +393,9 @@ def parse_sidecar_bytes(raw: bytes, shown: str) -> tuple[dict[str, Any] | None, 
             ),
         ]
 
-    cleaner = _Cleaner()
+    # lone surrogates can only come from \u escapes (the UTF-8 decoder refuses them), and
+    # placeholders only from non-finite literals: without either, strings need no cleaning
+    cleaner = _Cleaner(strings=bool(constants) or "\\u" in text)
     try:
         cleaned = cleaner.clean(data, 1, None)
     except _TooDeep:
@@ -380,15 +439,24 @@ class _StrictParser:
             parse_constant=self.on_constant,
             parse_float=self.on_float,
         )
+        # without a float hook: floats are made by the C scanner (used when no literal
+        # can overflow, see _may_overflow)
+        self.fast_decoder = json.JSONDecoder(
+            object_pairs_hook=self.on_pairs, parse_constant=self.on_constant
+        )
 
     def parse(
-        self, text: str
+        self, text: str, *, exact_floats: bool = True
     ) -> tuple[Any, list[_NonFinite], list[tuple[dict[str, Any], str, list[Any]]]]:
-        """Parse ``text`` as :func:`json.loads` would, with this parser's hooks."""
+        """Parse ``text`` as :func:`json.loads` would, with this parser's hooks.
+
+        ``exact_floats=False`` skips the per-float hook; only correct when no float
+        literal in ``text`` can overflow to infinity."""
         self.constants, self.duplicates = [], []
         if text.startswith("\ufeff"):  # as json.loads does for text input
             raise json.JSONDecodeError("Unexpected UTF-8 BOM (decode using utf-8-sig)", text, 0)
-        return self.decoder.decode(text), self.constants, self.duplicates
+        decoder = self.decoder if exact_floats else self.fast_decoder
+        return decoder.decode(text), self.constants, self.duplicates
 
     def on_constant(self, literal: str) -> _NonFinite:
         marker = _NonFinite(literal, len(self.constants))
@@ -433,6 +501,26 @@ def _too_deep(shown: str) -> Finding:
     )
 
 
+#: parsed values that need no cleaning (strings may hold lone surrogates, containers
+#: are copied, non-finite placeholders are replaced)
+_PLAIN: frozenset[type] = frozenset({int, float, bool, type(None)})
+_PLAIN_OR_TEXT: frozenset[type] = _PLAIN | {str}
+_DIGITS_AS_NINES = str.maketrans("012345678", "999999999")
+_OVERFLOW_MARKS = ("e999", "E999", "e+999", "E+999", "9" * 300)
+
+
+def _may_overflow(text: str) -> bool:
+    """False only when no float literal in ``text`` can overflow to infinity.
+
+    The largest double is about 1.8e308, so an overflowing literal has an exponent of
+    three or more digits or 300 or more digits in a row. With every digit written as 9,
+    both show as one of :data:`_OVERFLOW_MARKS` (a few fast substring searches; a
+    regular expression with the same meaning costs several times more). False
+    positives (``e999`` inside a string) only select the exact, slower parse.
+    """
+    nines = text.translate(_DIGITS_AS_NINES)
+    return any(mark in nines for mark in _OVERFLOW_MARKS)
+
 _DISCARDED = "\x00discarded"  # marker: the value sat in an overridden duplicate key
 
 
@@ -441,11 +529,19 @@ class _TooDeep(Exception):
 
 
 class _Cleaner:
-    """Copy parsed JSON, bounding depth, replacing placeholders and lone surrogates."""
+    """Copy parsed JSON, bounding depth, replacing placeholders and lone surrogates.
 
-    def __init__(self) -> None:
+    The top-level object comes back as a plain ``dict``; every nested array and object
+    as a :class:`FrozenList` / :class:`FrozenDict`, so that the values can be shared
+    between the runs that inherit them without a copy per run.
+    """
+
+    def __init__(self, *, strings: bool = True) -> None:
         self.non_finite: list[tuple[str | None, _NonFinite]] = []
         self.surrogate_keys: set[str] = set()
+        #: value types copied as they are (strings too when they cannot need cleaning)
+        self.plain = _PLAIN if strings else _PLAIN_OR_TEXT
+        self.strings = strings
 
     def _text(self, s: str, top: str | None) -> str:
         if s.isascii():
@@ -461,15 +557,24 @@ class _Cleaner:
         if isinstance(value, dict):
             if depth > MAX_SIDECAR_DEPTH:
                 raise _TooDeep
+            plain = self.plain
+            strings = self.strings
             out: dict[str, Any] = {}
             for k, v in value.items():
-                key = self._text(k, top if top is not None else k)
-                out[key] = self.clean(v, depth + 1, top if top is not None else key)
-            return out
+                key = self._text(k, top if top is not None else k) if strings else k
+                # plain numbers, booleans and null (the common case) need no cleaning
+                out[key] = (
+                    v if type(v) in plain
+                    else self.clean(v, depth + 1, top if top is not None else key)
+                )
+            return out if depth == 1 else FrozenDict(out)
         if isinstance(value, list):
             if depth > MAX_SIDECAR_DEPTH:
                 raise _TooDeep
-            return [self.clean(v, depth + 1, top) for v in value]
+            plain = self.plain
+            if all(type(v) in plain for v in value):  # numbers: nothing to clean
+                return FrozenList(value)
+            return FrozenList([self.clean(v, depth + 1, top) for v in value])
         if isinstance(value, str):
             return self._text(value, top)
         if isinstance(value, _NonFinite):

@@ -13,13 +13,21 @@ byte for byte, a few fields patched) from batches of volumes.
 * Sizes were checked by :func:`.nifti.read_header` before anything here is
   allocated; a stream that still ends early or is corrupt raises ``ReadError``
   (``file/truncated`` / ``file/not-nifti``) naming the file.
+* The input is opened as the audit opens it (:func:`.errors.open_regular`: a
+  regular file only, never blocking), reads stop at its size when opened (a
+  growing file cannot keep a read going), and the data offset and the header
+  extensions pass the audit's own checks (:func:`.nifti.data_offset_problem`,
+  :func:`.nifti.extension_problem`) before a voxel is read, so a header the
+  audit refuses is refused here too, whatever ``--force`` says.
 """
 
 from __future__ import annotations
 
 import contextlib
+import errno
 import gzip
 import hashlib
+import io
 import math
 import os
 import struct
@@ -33,7 +41,8 @@ import numpy as np
 
 from slicetime.model import HeaderInfo
 
-from .errors import ReadError, os_error
+from .errors import ReadError, open_regular, os_error
+from .nifti import data_offset_problem, extension_problem
 
 try:  # pragma: no cover - depends on the environment
     from isal import igzip_threaded as _threaded_gzip
@@ -144,22 +153,40 @@ def scaling_problem(header: HeaderInfo) -> str | None:
 
 
 class _HashingReader:
-    """A binary file wrapper that hashes every byte read through it."""
+    """A binary file wrapper that hashes every byte read through it and reads at most
+    ``limit`` bytes (the size of the file when it was opened)."""
 
-    def __init__(self, fh: BinaryIO) -> None:
+    def __init__(self, fh: BinaryIO, limit: int | None = None) -> None:
         self._fh = fh
+        self._left = limit
         self.digest = hashlib.sha256()
 
+    def _allowed(self, size: int) -> int:
+        if self._left is None:
+            return size
+        return self._left if size < 0 else min(size, self._left)
+
     def read(self, size: int = -1) -> bytes:
-        data = self._fh.read(size)
+        size = self._allowed(size)
+        if size == 0:
+            return b""
+        data = self._fh.read(size) or b""
+        if self._left is not None:
+            self._left -= len(data)
         self.digest.update(data)
         return data
 
     def readinto(self, buffer: Any) -> int:
-        n = self._fh.readinto(buffer)
+        view = memoryview(buffer).cast("B")
+        size = self._allowed(len(view))
+        if size == 0:
+            return 0
+        n = self._fh.readinto(view[:size]) or 0
+        if self._left is not None:
+            self._left -= n
         if n:
-            self.digest.update(memoryview(buffer)[:n])
-        return n or 0
+            self.digest.update(view[:n])
+        return n
 
     def readable(self) -> bool:
         return True
@@ -173,8 +200,8 @@ class _HashingReader:
 
     def finish(self) -> str:
         """Hash whatever is left of the file and return the hex digest."""
-        while chunk := self._fh.read(_HASH_CHUNK):
-            self.digest.update(chunk)
+        while self.read(_HASH_CHUNK):
+            pass
         return self.digest.hexdigest()
 
 
@@ -211,11 +238,12 @@ class VolumeReader:
         self.prefix = b""
 
     def __enter__(self) -> VolumeReader:
-        try:
-            self._fh = open(self.path, "rb")
-        except OSError as exc:
-            raise os_error(exc, self.shown, what="NIfTI file") from None
-        self._hasher = _HashingReader(self._fh)
+        problem = data_offset_problem(self.header.version, self.header.vox_offset, self.shown)
+        if problem is not None:
+            raise problem
+        raw, st = open_regular(self.path, self.shown, what="NIfTI file")
+        self._fh = io.BufferedReader(raw)  # type: ignore[arg-type]  # owns and closes raw
+        self._hasher = _HashingReader(self._fh, st.st_size)
         if self.header.compressed:
             if _threaded_gzip is not None and self._threads > 0:
                 self._stream = _threaded_gzip.open(self._hasher, "rb", threads=self._threads)
@@ -223,15 +251,28 @@ class VolumeReader:
                 self._stream = gzip.GzipFile(fileobj=self._hasher, mode="rb")  # type: ignore[arg-type]
         else:
             self._stream = self._hasher
-        self.prefix = self._read_exact(self.data_offset, "the header and extensions")
+        try:
+            self.prefix = self._read_exact(self.data_offset, "the header and extensions")
+            prefix = self.prefix
+            problem = extension_problem(
+                lambda offset, count: prefix[offset : offset + count],
+                version=self.header.version,
+                order=self.header.byte_order,
+                vox_offset=self.header.vox_offset,
+                shown=self.shown,
+            )
+            if problem is not None:
+                raise problem
+        except BaseException:
+            self.__exit__(None, None, None)
+            raise
         return self
 
     @property
     def data_offset(self) -> int:
-        """Where the voxels start: ``vox_offset``, or right after the header (and the
-        4 extension bytes) when a single-file header leaves it too small."""
-        minimum = 352 if self.header.version == 1 else 544
-        return self.header.vox_offset if self.header.vox_offset >= minimum else minimum
+        """Where the voxels start: ``vox_offset`` (checked on entry: never inside the
+        header)."""
+        return self.header.vox_offset
 
     def __exit__(
         self,
@@ -432,10 +473,22 @@ class _HashingWriter:
         return self._fh.closed
 
 
+def _open_regular_or_oserror(path: Path) -> BinaryIO:
+    """:func:`.errors.open_regular` for callers that expect ``OSError`` (a missing file
+    raises ``FileNotFoundError``; a FIFO or device an ``OSError`` with ``EINVAL``)."""
+    try:
+        fh, _st = open_regular(path, str(path))
+    except ReadError as exc:
+        if exc.code == "file/missing":
+            raise FileNotFoundError(errno.ENOENT, exc.message, str(path)) from None
+        raise OSError(errno.EINVAL, exc.message, str(path)) from None
+    return fh
+
+
 def file_sha256(path: Path) -> str:
     """SHA-256 of a file's bytes."""
     digest = hashlib.sha256()
-    with open(path, "rb") as fh:
+    with _open_regular_or_oserror(path) as fh:
         while chunk := fh.read(_HASH_CHUNK):
             digest.update(chunk)
     return digest.hexdigest()

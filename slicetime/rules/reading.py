@@ -81,6 +81,38 @@ reader_code(
     fix="Convert the run to a real-valued 4-D image, or leave it out of the correction.",
 )
 reader_code(
+    "file/bad-data-offset",
+    title="a single-file image's vox_offset points inside its header",
+    severity=E,
+    rationale=(
+        "In a .nii file the voxels start after the header and its 4 extension-flag bytes "
+        "(byte 352 for NIfTI-1, 544 for NIfTI-2; nifti1.h, nifti2.h). With a smaller "
+        "vox_offset, 0 included, readers disagree: some refuse the file, some read the data "
+        "from byte 0 (the header bytes become voxels), some from the end of the header. A run "
+        "whose voxels depend on the reader cannot be audited or corrected with confidence, so "
+        "correct refuses it (even with --force)."
+    ),
+    fix="Rewrite the image with a reference NIfTI library, which sets vox_offset after the "
+    "header, and check the data.",
+    standard="NIfTI-1 / NIfTI-2 header: vox_offset",
+)
+reader_code(
+    "file/bad-extensions",
+    title="the chain of header extensions is broken",
+    severity=E,
+    rationale=(
+        "When the byte after the header is set, extensions follow it up to vox_offset; each "
+        "starts with its size (esize) and code, and esize must be a positive multiple of 16 "
+        "(nifti1.h). An esize below 8, not a multiple of 16, or running past vox_offset or "
+        "the end of the file makes readers fail or read the voxels as extension bytes, and "
+        "correct would copy the broken chain into its output. correct refuses the run (even "
+        "with --force)."
+    ),
+    fix="Rewrite the image with a reference NIfTI library, or clear the extension flag when "
+    "the extensions are not needed.",
+    standard="NIfTI-1 header extensions (esize, ecode)",
+)
+reader_code(
     "sidecar/bad-json",
     title="a JSON sidecar has a syntax error",
     severity=E,
@@ -131,6 +163,19 @@ reader_code(
     severity=E,
     rationale="Sidecars are kilobytes; a huge one is not read so the audit stays bounded.",
     fix="Move bulk data out of the sidecar.",
+)
+reader_code(
+    "sidecar/over-budget",
+    title="a large inherited sidecar was not read: the audit's memory budget is spent",
+    severity=E,
+    rationale=(
+        "Inherited sidecars are parsed once per audit and their values shared by every run "
+        "that inherits them. Sidecars of 1 MiB or more count against a total of 64 MiB per "
+        "audit (and worker process), so that a dataset of huge metadata files cannot exhaust "
+        "memory; one that no longer fits is not read, and the runs inheriting it lack its "
+        "values."
+    ),
+    fix="Move bulk data (long lists) out of the sidecars, or audit fewer datasets at once.",
 )
 reader_code(
     "sidecar/wrong-type",
