@@ -50,10 +50,16 @@ def run_object(run: RunResult) -> dict[str, Any]:
 
 
 def audit_object(result: AuditResult, root_given: str) -> dict[str, Any]:
+    """The whole report as one object (``report_stream.write_json`` writes the same
+    report as a stream). ``root`` names the dataset(s): see ``report_root``."""
+    from slicetime.pipelines.audit import dataset_names
+
     counts = result.counts()
+    roots = list(dict.fromkeys([*result.roots, *(r.record.root for r in result.runs)]))
+    names = dataset_names(roots)
     return {
         "tool": {"name": "slicetime", "version": __version__},
-        "root": root_given,
+        "root": ", ".join(names[r] for r in roots),
         "roots": result.roots,
         "runs": [run_object(r) for r in result.runs],
         "dataset_findings": [f.to_json() for f in result.dataset_findings],
