@@ -802,7 +802,7 @@ _SCRIPT = """
     return el("span", "chip " + tag[1], tag[0]);
   }
   function use(drawing, caption) {
-    var d = data.drawings[drawing], ns = "http://www.w3.org/2000/svg";
+    var d = data.drawings[drawing], ns = document.querySelector("svg.sprite").namespaceURI;
     var svg = document.createElementNS(ns, "svg");
     svg.setAttribute("class", "diagram");
     svg.setAttribute("viewBox", "0 0 " + d[1] + " " + d[2]);
