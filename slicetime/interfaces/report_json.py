@@ -18,6 +18,26 @@ def report_schema() -> dict[str, Any]:
     return json.loads(text)
 
 
+@lru_cache(maxsize=1)
+def lines_schema() -> dict[str, Any]:
+    """The schema of each line of ``audit --format jsonl`` (it refers to
+    ``report.schema.json``; see :func:`lines_validator`)."""
+    text = resources.files("slicetime").joinpath("data/report-lines.schema.json").read_text(
+        "utf-8")
+    return json.loads(text)
+
+
+def lines_validator() -> Any:
+    """A jsonschema validator for one jsonl line, with the report schema it refers to."""
+    import jsonschema
+    from referencing import Registry, Resource
+
+    registry = Registry().with_resources([
+        ("slicetime/report.schema.json", Resource.from_contents(report_schema())),
+    ])
+    return jsonschema.Draft202012Validator(lines_schema(), registry=registry)
+
+
 def run_object(run: RunResult) -> dict[str, Any]:
     """One run as the contract's run object."""
     record = run.record
