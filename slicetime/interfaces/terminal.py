@@ -16,7 +16,10 @@ from rich.table import Table
 from rich.text import Text
 
 from slicetime.interfaces.diagram import order_diagram
-from slicetime.interfaces.progress import progress_reporter  # noqa: F401 (re-exported)
+from slicetime.interfaces.progress import (  # noqa: F401 (re-exported)
+    _periodic_lines,
+    progress_reporter,
+)
 from slicetime.interfaces.safe_text import xml_safe
 from slicetime.model import Finding, Severity
 from slicetime.pipelines.audit import AuditResult, RunResult
