@@ -574,6 +574,7 @@ def test_browser_runs_the_script_and_filters(
     body = dom[dom.index(tag) :]
     body = body[: body.index("</details>")]
     assert "timing/units-ms" in body and '<use href="#dg-' in body
+    assert "where each value came from" in body and "sidecars" in body
 
 
 def test_browser_opens_a_large_report(browser: list[str], tmp_path: Path) -> None:

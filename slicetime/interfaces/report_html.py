@@ -37,7 +37,7 @@ import json
 import os
 from array import array
 from collections import Counter, defaultdict
-from collections.abc import Sequence
+from collections.abc import Iterator, Sequence
 from dataclasses import dataclass, field
 from typing import IO, Any
 
@@ -203,29 +203,30 @@ def _run_facts(record: RunRecord) -> tuple[tuple[str, str], ...]:
         facts.append(("scheme", f"{xml_safe(scheme.label)} · {detail}"))
     else:
         facts.append(("scheme", "unknown: no usable slice timing"))
-    if record.sidecar_chain:
-        facts.append(("sidecars", " → ".join(xml_safe(s) for s in record.sidecar_chain)))
     return tuple(facts)
 
 
-def _run_sources(record: RunRecord) -> tuple[tuple[str, str], ...]:
+def _run_sources(record: RunRecord, strings: _Table) -> tuple[int, ...]:
+    """Where each value came from, as string indexes: key, value, key, value, …"""
     sources: dict[str, str] = {}
     if record.schedule is not None:
         sources.update({k: v.describe() for k, v in record.schedule.sources.items()})
     for key in ("MultibandAccelerationFactor", "TaskName", "EchoTime"):
         if key in record.metadata_sources:
             sources[key] = record.metadata_sources[key]
-    return tuple((xml_safe(k), xml_safe(v)) for k, v in sources.items())
+    return tuple(strings(xml_safe(text)) for pair in sources.items() for text in pair)
 
 
 class DiagramCollector:
     """What the HTML report needs from each full run record, taken while the audit
-    streams (the records are not kept): its drawing, its facts and its sources,
-    each distinct value stored once."""
+    streams (the records are not kept): its drawing, its facts, its sources and
+    sidecars. Each distinct value (and string) is stored once; what is unique to
+    a run (its own sidecar's name) costs one string."""
 
     def __init__(self) -> None:
         self.drawings = Drawings()
         self.examples: dict[str, int] = {}
+        self.strings = _Table()
         self.facts = _Table()
         self.sources = _Table()
         self.run_drawing = array("I")
@@ -238,7 +239,8 @@ class DiagramCollector:
         self.examples.setdefault(ident, len(self.run_drawing))
         self.run_drawing.append(int(ident[3:]) - 1)
         self.run_facts.append(self.facts(_run_facts(record)))
-        self.run_sources.append(self.sources(_run_sources(record)))
+        chain = tuple(self.strings(xml_safe(s)) for s in record.sidecar_chain)
+        self.run_sources.append(self.sources((_run_sources(record, self.strings), chain)))
 
 
 # --------------------------------------------------------------------------- sections
@@ -374,14 +376,15 @@ def _column_of(facts: RunFacts, suffixes: int) -> str:
 
 
 def _page_data(source: ReportSource, collector: DiagramCollector,
-               tags: dict[str | None, _Tag], sizes: dict[str, tuple[float, float]]) -> str:
+               tags: dict[str | None, _Tag], sizes: dict[str, tuple[float, float]]
+               ) -> Iterator[str]:
     """The compact data the page's script renders from (JSON, safe inside a script
     element). Every string is stored once in ``s`` and referred to by index; a run
     is ``[path, tag, drawing, errors, warnings, notes, row, column, facts, sources,
     findings]``; a finding ``[code, rank, message, file, field, evidence, hint]``
     (-1 for none)."""
     totals = source.totals
-    strings = _Table()
+    strings = collector.strings
     several = len({f.root for f in totals.facts}) > 1
     suffixes = len({f.suffix for f in totals.facts})
     tag_index = {label: i for i, label in enumerate(tags)}
@@ -390,6 +393,7 @@ def _page_data(source: ReportSource, collector: DiagramCollector,
     found = source.objects(lambda i: any(totals.facts[i].counts))
     pending = next(found, None)
     rows: list[str] = []
+    size = 0
 
     def opt(value: str | None, *, one_line: bool = True) -> int:
         return -1 if value is None or value == "" else strings(xml_safe(value, one_line=one_line))
@@ -419,7 +423,8 @@ def _page_data(source: ReportSource, collector: DiagramCollector,
             collector.run_facts[index], collector.run_sources[index],
             findings,
         ]
-        rows.append(encode(row))
+        rows.append(_safe_in_script(encode(row)))
+        size += len(rows[-1])
     drawings = [[ident, *sizes[ident], xml_safe(spec.caption())]
                 for spec, ident in collector.drawings.ids.items()]
     row_order = sorted(range(len(subjects.values)), key=lambda i: subjects.values[i])
@@ -433,8 +438,16 @@ def _page_data(source: ReportSource, collector: DiagramCollector,
         "subjects": subjects.values, "subject_order": row_order,
         "columns": columns.values, "column_order": col_order,
     })
-    text = head[:-1] + ',"runs":[' + ",".join(rows) + "]}"
-    # inside <script>: no "<" (so no "</script" and no "<!--"), no ">" or "&" either
+    yield _safe_in_script(head[:-1]) + ',"runs":['
+    for i, row in enumerate(rows):
+        yield row if i == 0 else "," + row
+    yield "]}"
+
+
+def _safe_in_script(text: str) -> str:
+    """JSON text that can sit inside <script>: no "<" (so no "</script" and no
+    "<!--"), and no ">" or "&" either; they only occur inside JSON strings, where
+    the escapes mean the same characters."""
     return text.replace("<", "\\u003c").replace(">", "\\u003e").replace("&", "\\u0026")
 
 
@@ -745,7 +758,8 @@ def _write_page(source: ReportSource, collector: DiagramCollector, out: IO[str],
         "</main>",
         '<script type="application/json" id="report-data">',
     ]))
-    out.write(_page_data(source, collector, tags, sizes))
+    for part in _page_data(source, collector, tags, sizes):
+        out.write(part)
     out.write(f"</script><script>{_SCRIPT}</script></body></html>\n")
 
 
@@ -831,17 +845,21 @@ _SCRIPT = """
       }
       dl.appendChild(dd);
     });
+    var pairs = data.sources[r[9]][0], chain = data.sources[r[9]][1];
+    if (chain.length) {
+      dl.appendChild(el("dt", null, "sidecars"));
+      dl.appendChild(el("dd", null, chain.map(function (k) { return S[k]; }).join(" \u2192 ")));
+    }
     left.appendChild(dl);
-    var sources = data.sources[r[9]];
-    if (sources.length) {
+    if (pairs.length) {
       left.appendChild(el("h4", null, "where each value came from"));
       var table = el("table", "sources");
-      sources.forEach(function (pair) {
-        var tr = el("tr"), th = el("th", null, pair[0]), td = el("td");
+      for (var k = 0; k < pairs.length; k += 2) {
+        var tr = el("tr"), th = el("th", null, S[pairs[k]]), td = el("td");
         th.setAttribute("scope", "row");
-        td.appendChild(el("code", null, pair[1]));
+        td.appendChild(el("code", null, S[pairs[k + 1]]));
         tr.appendChild(th); tr.appendChild(td); table.appendChild(tr);
-      });
+      }
       left.appendChild(table);
     }
     cols.appendChild(left);
