@@ -1,18 +1,30 @@
-"""Audit throughput against a baseline script, in one process and one run.
+"""Audit throughput: the whole command as typed, against a whole-process baseline.
 
-Baseline: what a lab would write by hand — index the dataset with pybids'
-BIDSLayout, then for every BOLD run get its metadata with get_metadata and
-load its header with nibabel. slicetime: the full audit (reading, inheritance,
-scheme inference, every rule, dataset rules), serially and with 2 processes.
+Every measurement is a separate process started as a user starts it, timed from
+the outside (wall time and peak resident memory from ``/usr/bin/time``, or from
+``resource.getrusage(RUSAGE_CHILDREN)`` where it is missing):
 
-    python benchmarks/bench_audit.py [--sizes 500,2000] [--repeat 3]
+* baseline: a script that indexes the dataset with pybids' ``BIDSLayout``,
+  asks it for every run's metadata and loads every header with nibabel, then
+  prints a JSON report of the timing fields (what a lab would write by hand);
+* slicetime: ``slicetime audit DATASET --format F > report`` for F in json,
+  jsonl, text, and ``--html report.html --quiet`` for the HTML report.
+
+Two layouts: ``shared`` (the timing in top-level sidecars, each run a small
+sidecar of its own) and ``per-run`` (every run's own sidecar holds all of its
+timing, nothing inherited). Sizes: 2,000 and 20,000 runs by default; ``--huge``
+adds 100,000 runs (per-run layout, the memory target). The baseline runs at
+sizes up to ``--baseline-max`` (default 2,000: pybids takes minutes beyond).
+Also measured: a single-run audit (the pre-commit case) as a whole command,
+its import time (``python -X importtime``), and, for comparison with the
+earlier table, the audit inside this process (``audit_paths``, no report).
+
+    python benchmarks/bench_audit.py [--sizes 2000,20000] [--huge] [--repeat 3]
                                      [--out bench-results/audit.json]
 
-Reports wall times and ratios (baseline / slicetime); absolute seconds vary
-between machines, the ratios are what the targets are about. Each measurement
-is repeated (``--repeat``, alternating baseline and slicetime so that a busy
-moment on a shared machine hits both) and the median is reported, with the
-spread (min and max) beside it in the JSON.
+Absolute seconds vary between machines and with the load of a shared one; the
+ratios (baseline ÷ slicetime, measured alternately in one run) are what the
+targets are about.
 """
 
 from __future__ import annotations
@@ -20,116 +32,232 @@ from __future__ import annotations
 import argparse
 import gzip
 import json
+import os
 import platform
+import re
+import resource
 import shutil
 import statistics
+import subprocess
 import sys
 import tempfile
 import time
-import warnings
 from pathlib import Path
 
 import nibabel as nib
 import numpy as np
 
-sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
+REPO = Path(__file__).resolve().parents[1]
+sys.path.insert(0, str(REPO))
 
-from slicetime.pipelines.audit import audit_paths
-from slicetime.schemes.generate import Protocol, slice_timing
+from slicetime.schemes.generate import Protocol, slice_timing  # noqa: E402
+
+FORMATS = ("json", "jsonl", "text", "html")
+TIME = "/usr/bin/time" if os.access("/usr/bin/time", os.X_OK) else None
+
+BASELINE = r'''
+import json, sys, warnings
+import nibabel as nib
+from bids import BIDSLayout
+
+warnings.simplefilter("ignore")
+layout = BIDSLayout(sys.argv[1], validate=False)
+out = []
+for f in layout.get(suffix="bold", extension=[".nii.gz", ".nii"], return_type="filename"):
+    md = layout.get_metadata(f)
+    hdr = nib.load(f).header
+    out.append({"path": f, "zooms": [float(z) for z in hdr.get_zooms()],
+                "dim_info": [d if d is None else int(d) for d in hdr.get_dim_info()],
+                "SliceTiming": md.get("SliceTiming"), "RepetitionTime": md.get("RepetitionTime")})
+json.dump({"runs": out}, sys.stdout)
+'''
 
 
-def make_dataset(root: Path, n_runs: int) -> None:
-    """n_runs BOLD runs: subjects × sessions × 2 tasks, top-level sidecars, some overrides."""
+def _payload() -> bytes:
+    """One tiny gzipped NIfTI-1 file (8×8×40×4 int16), written once and copied."""
+    img = nib.Nifti1Image(np.zeros((8, 8, 40, 4), np.int16), np.eye(4))
+    img.header.set_xyzt_units("mm", "sec")
+    img.header.set_zooms((3.0, 3.0, 3.0, 2.0))
+    img.header.set_dim_info(slice=2)
+    return gzip.compress(img.to_bytes(), compresslevel=1, mtime=0)
+
+
+def make_dataset(root: Path, n_runs: int, layout: str) -> None:
+    """n_runs BOLD runs: subjects × 2 sessions × 2 tasks. ``shared``: timing in
+    top-level sidecars, each run a one-key sidecar; ``per-run``: each run's own
+    sidecar holds all its timing. The image bytes are written directly (one
+    compressed payload copied), so 100,000 runs take seconds, not minutes."""
     root.mkdir(parents=True)
     (root / "dataset_description.json").write_text(
         json.dumps({"Name": "bench", "BIDSVersion": "1.10.0"}))
     st = slice_timing(Protocol(n_slices=40, order="interleaved", repetition_time=2.0,
                                decimals=4))
-    for task in ("a", "b"):
-        (root / f"task-{task}_bold.json").write_text(
-            json.dumps({"RepetitionTime": 2.0, "SliceTiming": st, "TaskName": task}))
-    img = nib.Nifti1Image(np.zeros((8, 8, 40, 4), np.int16), np.eye(4))
-    img.header.set_xyzt_units("mm", "sec")
-    img.header.set_zooms((3.0, 3.0, 3.0, 2.0))
-    img.header.set_dim_info(slice=2)
-    payload = gzip.compress(img.to_bytes(), compresslevel=1, mtime=0)
+    shared = layout == "shared"
+    if shared:
+        for task in ("a", "b"):
+            (root / f"task-{task}_bold.json").write_text(
+                json.dumps({"RepetitionTime": 2.0, "SliceTiming": st, "TaskName": task}))
+    payload = _payload()
     per_subject = 4  # 2 sessions × 2 tasks
+    written = 0
     for i in range((n_runs + per_subject - 1) // per_subject):
         for ses in ("1", "2"):
-            func = root / f"sub-{i:05d}" / f"ses-{ses}" / "func"
-            func.mkdir(parents=True)
+            func = os.path.join(root, f"sub-{i:06d}", f"ses-{ses}", "func")
+            os.makedirs(func)
             for task in ("a", "b"):
-                if i * per_subject >= n_runs:
+                if written >= n_runs:
                     break
-                stem = f"sub-{i:05d}_ses-{ses}_task-{task}_bold"
-                (func / f"{stem}.nii.gz").write_bytes(payload)
-                (func / f"{stem}.json").write_text(json.dumps({"EchoTime": 0.03}))
+                stem = os.path.join(func, f"sub-{i:06d}_ses-{ses}_task-{task}_bold")
+                with open(stem + ".nii.gz", "wb") as fh:
+                    fh.write(payload)
+                side = {"EchoTime": 0.03} if shared else {
+                    "RepetitionTime": 2.0, "SliceTiming": st, "TaskName": task,
+                    "EchoTime": 0.03}
+                with open(stem + ".json", "w") as fh:
+                    fh.write(json.dumps(side))
+                written += 1
 
 
-def baseline(root: Path) -> float:
-    from bids import BIDSLayout
+def _command() -> list[str]:
+    script = Path(sys.executable).with_name("slicetime")
+    return [str(script)] if script.exists() else [sys.executable, "-m", "slicetime"]
+
+
+def measure(command: list[str], stdout: Path) -> tuple[float, float]:
+    """(wall seconds, peak resident MiB) of one command, stdout to a file."""
+    if TIME:
+        stats = stdout.with_suffix(".time")
+        with open(stdout, "wb") as out:
+            subprocess.run([TIME, "-f", "%e %M", "-o", str(stats), *command], stdout=out,
+                           stderr=subprocess.DEVNULL, check=False)
+        wall, kib = stats.read_text().split()[-2:]
+        return float(wall), int(kib) / 1024
+    before = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
+    start = time.perf_counter()
+    with open(stdout, "wb") as out:
+        subprocess.run(command, stdout=out, stderr=subprocess.DEVNULL, check=False)
+    wall = time.perf_counter() - start
+    # ru_maxrss of children is the largest so far: exact only when this one is larger
+    peak = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
+    return wall, (peak if peak > before else float("nan")) / 1024
+
+
+def slicetime_command(root: Path, fmt: str, work: Path) -> tuple[list[str], Path]:
+    base = [*_command(), "audit", str(root), "--fail-on", "never", "--no-progress"]
+    if fmt == "html":
+        return [*base, "--html", str(work / "report.html"), "--quiet"], work / "stdout.txt"
+    return [*base, "--format", fmt], work / f"report.{fmt}"
+
+
+def in_process(root: Path) -> float:
+    from slicetime.pipelines.audit import audit_paths
 
     start = time.perf_counter()
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        layout = BIDSLayout(str(root), validate=False)
-        files = layout.get(suffix="bold", extension=[".nii.gz", ".nii"],
-                           return_type="filename")
-        for f in files:
-            md = layout.get_metadata(f)
-            hdr = nib.load(f).header
-            _ = (hdr.get_zooms(), hdr.get_dim_info(), md.get("SliceTiming"))
+    audit_paths([root])
     return time.perf_counter() - start
 
 
-def ours(root: Path, jobs: int) -> tuple[float, int]:
-    start = time.perf_counter()
-    result = audit_paths([root], jobs=jobs)
-    return time.perf_counter() - start, len(result.runs)
+def single_run(work: Path, repeat: int) -> dict[str, object]:
+    """The pre-commit case: one run, the whole command, and where its start-up goes."""
+    root = work / "one"
+    make_dataset(root, 1, "per-run")
+    run = next(root.rglob("*_bold.nii.gz"))
+    command = [*_command(), "audit", str(run)]
+    walls = [measure(command, work / "one.txt")[0] for _ in range(repeat)]
+    imports = subprocess.run([sys.executable, "-X", "importtime", "-m", "slicetime", "audit",
+                              str(run)], capture_output=True, text=True, check=False).stderr
+    top: dict[str, int] = {}
+    for line in imports.splitlines():
+        m = re.match(r"import time:\s+\d+ \|\s+(\d+) \|( *)(\S+)", line)
+        if m and len(m.group(2)) <= 2:
+            top[m.group(3)] = int(m.group(1))
+    python = [measure([sys.executable, "-c", "pass"], work / "py.txt")[0] for _ in range(repeat)]
+    heavy = [name for name in ("numpy", "scipy", "rich", "jsonschema", "matplotlib", "nibabel",
+                               "dask") if re.search(rf"\| +{name}$", imports, re.M)]
+    return {"wall_s": round(statistics.median(walls), 3),
+            "python_startup_s": round(statistics.median(python), 3),
+            "heavy_imports": heavy,
+            "largest_imports_ms": {k: round(v / 1000) for k, v in
+                                   sorted(top.items(), key=lambda kv: -kv[1])[:8]}}
 
 
 def main() -> int:
     parser = argparse.ArgumentParser()
-    parser.add_argument("--sizes", default="500,2000")
+    parser.add_argument("--sizes", default="2000,20000")
+    parser.add_argument("--huge", action="store_true",
+                        help="also 100,000 runs (per-run layout): several minutes")
+    parser.add_argument("--layouts", default="shared,per-run")
+    parser.add_argument("--formats", default=",".join(FORMATS))
+    parser.add_argument("--baseline-max", type=int, default=2000)
     parser.add_argument("--repeat", type=int, default=3,
-                        help="measurements of each kind; the median is reported")
+                        help="measurements at the smallest size; the median is reported")
     parser.add_argument("--out", default="bench-results/audit.json")
     args = parser.parse_args()
     sizes = [int(s) for s in args.sizes.split(",")]
-    repeat = max(1, args.repeat)
+    layouts = args.layouts.split(",")
+    formats = args.formats.split(",")
     rows = []
     work = Path(tempfile.mkdtemp(prefix="slicetime-bench-"))
+    plan = [(n, layout) for n in sizes for layout in layouts]
+    if args.huge:
+        plan.append((100_000, "per-run"))
     try:
-        for n in sizes:
-            root = work / f"ds{n}"
-            make_dataset(root, n)
-            times: dict[str, list[float]] = {"baseline": [], "jobs1": [], "jobs2": []}
-            runs = 0
+        one = single_run(work, max(3, args.repeat))
+        print(f"one run: {one['wall_s']} s whole command (python alone "
+              f"{one['python_startup_s']} s); heavy imports: {one['heavy_imports'] or 'none'}",
+              flush=True)
+        baseline_script = work / "baseline.py"
+        baseline_script.write_text(BASELINE)
+        for n, layout in plan:
+            root = work / f"ds-{layout}-{n}"
+            started = time.perf_counter()
+            make_dataset(root, n, layout)
+            made = time.perf_counter() - started
+            repeat = max(1, args.repeat) if n == min(sizes) else 1
+            times: dict[str, list[float]] = {}
+            peaks: dict[str, float] = {}
             for _ in range(repeat):
-                times["baseline"].append(baseline(root))
-                t_one, runs = ours(root, 1)
-                times["jobs1"].append(t_one)
-                times["jobs2"].append(ours(root, 2)[0])
-            t_base, t_one, t_two = (statistics.median(times[k])
-                                    for k in ("baseline", "jobs1", "jobs2"))
-            row = {"runs": runs, "baseline_s": round(t_base, 3),
-                   "slicetime_jobs1_s": round(t_one, 3), "slicetime_jobs2_s": round(t_two, 3),
-                   "ratio_jobs1": round(t_base / t_one, 1),
-                   "ratio_jobs2": round(t_base / t_two, 1),
-                   "slicetime_us_per_run": round(t_one / runs * 1e6),
-                   "repeat": repeat,
-                   "spread_s": {k: [round(min(v), 3), round(max(v), 3)]
-                                for k, v in times.items()}}
+                if n <= args.baseline_max:
+                    wall, peak = measure([sys.executable, str(baseline_script), str(root)],
+                                         work / "baseline.json")
+                    times.setdefault("baseline", []).append(wall)
+                    peaks["baseline"] = max(peaks.get("baseline", 0.0), peak)
+                for fmt in formats:
+                    command, out = slicetime_command(root, fmt, work)
+                    wall, peak = measure(command, out)
+                    times.setdefault(fmt, []).append(wall)
+                    peaks[fmt] = max(peaks.get(fmt, 0.0), peak)
+            row: dict[str, object] = {"runs": n, "layout": layout, "repeat": repeat,
+                                      "generate_s": round(made, 2)}
+            base = statistics.median(times["baseline"]) if "baseline" in times else None
+            for key, values in times.items():
+                wall = statistics.median(values)
+                row[key] = {"wall_s": round(wall, 3), "peak_mib": round(peaks[key], 1),
+                            "ms_per_run": round(wall / n * 1000, 3),
+                            **({"ratio": round(base / wall, 1)} if base and key != "baseline"
+                               else {})}
+            if n == min(sizes):
+                row["in_process_s"] = round(statistics.median(
+                    in_process(root) for _ in range(repeat)), 3)
+                if base:
+                    row["in_process_ratio"] = round(base / row["in_process_s"], 1)  # type: ignore[operator]
+            html = work / "report.html"
+            if html.exists():
+                row["html_mib"] = round(html.stat().st_size / 2**20, 2)
             rows.append(row)
-            print(f"{runs:>6} runs: baseline {t_base:7.2f} s | slicetime {t_one:6.2f} s "
-                  f"(×{row['ratio_jobs1']}) | --jobs 2 {t_two:6.2f} s (×{row['ratio_jobs2']})",
-                  flush=True)
+            shown = " | ".join(
+                f"{k} {v['wall_s']:.2f} s {v['peak_mib']:.0f} MiB"  # type: ignore[index]
+                + (f" ×{v['ratio']}" if "ratio" in v else "")  # type: ignore[operator]
+                for k, v in row.items() if isinstance(v, dict))
+            print(f"{n:>7} runs, {layout:<7}: {shown}", flush=True)
+            shutil.rmtree(root, ignore_errors=True)
     finally:
         shutil.rmtree(work, ignore_errors=True)
     out = Path(args.out)
     out.parent.mkdir(parents=True, exist_ok=True)
     out.write_text(json.dumps({"machine": platform.platform(), "python": platform.python_version(),
-                               "cpus": __import__("os").cpu_count(), "audit": rows}, indent=2))
+                               "cpus": os.cpu_count(), "load_average": os.getloadavg(),
+                               "single_run": one, "audit": rows}, indent=2))
     print(f"written {out}")
     return 0
 

@@ -206,8 +206,10 @@ def _show_series(file: Path, as_json: bool) -> None:
 # --------------------------------------------------------------------------- audit
 @cli.command()
 @click.argument("paths", nargs=-1, required=True, type=click.Path(path_type=Path))
-@click.option("--format", "fmt", type=click.Choice(["text", "json", "junit"]), default="text",
-              show_default=True, help="Report format on stdout (or --output).")
+@click.option("--format", "fmt", type=click.Choice(["text", "json", "jsonl", "tsv", "junit"]),
+              default="text", show_default=True,
+              help="Report format on stdout (or --output): text, json (the contract), jsonl "
+              "(one object per line), tsv (one row per run) or junit (CI).")
 @click.option("--output", type=click.Path(path_type=Path, dir_okay=False),
               help="Write the report to this file instead of stdout.")
 @click.option("--html", "html_file", type=click.Path(path_type=Path, dir_okay=False),
@@ -216,6 +218,12 @@ def _show_series(file: Path, as_json: bool) -> None:
 @click.option("--fail-on", type=click.Choice(["error", "warning", "never"]), default="error",
               show_default=True, help="Exit 1 when a finding reaches this severity.")
 @click.option("--hide-notes", is_flag=True, help="Leave notes out of the text report.")
+@click.option("--all", "show_all", is_flag=True,
+              help="Text report: list every run, not only the runs with findings.")
+@click.option("--quiet", "-q", is_flag=True,
+              help="Print only the summary line (the exit status is unchanged); --output and "
+              "--html are still written.")
+@click.option("--no-progress", is_flag=True, help="No progress bar or progress lines on stderr.")
 @click.option("--include-derivatives", is_flag=True, help="Also audit derivatives/.")
 @click.option("--include-sourcedata", is_flag=True, help="Also audit sourcedata/.")
 @click.option("--include-hidden", is_flag=True, help="Also audit hidden folders and files.")
@@ -245,6 +253,9 @@ def audit(
     html_file: Path | None,
     fail_on: str,
     hide_notes: bool,
+    show_all: bool,
+    quiet: bool,
+    no_progress: bool,
     include_derivatives: bool,
     include_sourcedata: bool,
     include_hidden: bool,
@@ -256,62 +267,99 @@ def audit(
     source_map: Path | None,
 ) -> None:
     """Audit every run under PATHS (dataset roots, subject folders or run files)."""
-    from slicetime.interfaces.report_json import audit_object, dumps
-    from slicetime.interfaces.terminal import make_console, progress_reporter, render_audit
-    from slicetime.pipelines.audit import audit_paths
+    from slicetime.interfaces.progress import progress_reporter
+    from slicetime.interfaces.report_stream import RunSpool, summary_line
+    from slicetime.pipelines.audit import audit_stream
     from slicetime.pipelines.executor import Interrupted
 
     if html_file is not None:
         _require_matplotlib("--html")
-    with _executor(jobs, scheduler, light=not verify_data) as executor, \
-            progress_reporter("auditing") as progress:
-        try:
-            result = audit_paths(
-                list(paths),
-                include_derivatives=include_derivatives,
-                include_sourcedata=include_sourcedata,
-                include_hidden=include_hidden,
-                progress=progress,
-                policy_file=policy_file,
-                executor=executor,
-                verify=verify_data,
-                source=_source_options(source_check, source_map),
-            )
-        except Interrupted as stop:
-            finished = sum(1 for r in stop.results if r is not None)
-            click.echo(f"slicetime: interrupted; {finished} of {len(stop.results)} runs "
-                       "audited, no report written", err=True)
-            sys.exit(130)
     root_given = str(paths[0]) if len(paths) == 1 else " ".join(str(p) for p in paths)
+    spool = RunSpool(root_given)
+    collect: list[Callable[[Any], None]] = [spool.add]
+    drawings = None
     if html_file is not None:
-        from slicetime.interfaces.report_html import write_html
+        from slicetime.interfaces.report_html import DiagramCollector
 
-        try:
-            write_html(result, html_file, root_given=root_given)
-        except OSError as exc:
-            raise UserError(f"{html_file}: cannot write the HTML report: "
-                            f"{exc.strerror or exc}") from None
+        drawings = DiagramCollector()
+        collect.append(drawings.add)
+
+    def on_run(run: Any) -> None:
+        for step in collect:
+            step(run)
+
+    reporter = (contextlib.nullcontext(None) if quiet or no_progress
+                else progress_reporter("auditing"))
+    try:
+        with _executor(jobs, scheduler, light=not verify_data) as executor, \
+                reporter as progress:
+            try:
+                spool.totals = audit_stream(
+                    list(paths),
+                    on_run,
+                    include_derivatives=include_derivatives,
+                    include_sourcedata=include_sourcedata,
+                    include_hidden=include_hidden,
+                    progress=progress,
+                    policy_file=policy_file,
+                    executor=executor,
+                    verify=verify_data,
+                    source=_source_options(source_check, source_map),
+                )
+            except Interrupted as stop:
+                finished = sum(1 for r in stop.results if r is not None)
+                click.echo(f"slicetime: interrupted; {finished} of {len(stop.results)} runs "
+                           "audited, no report written", err=True)
+                sys.exit(130)
+        if html_file is not None:
+            from slicetime.interfaces.report_html import write_html_stream
+
+            assert drawings is not None
+            try:
+                write_html_stream(spool, drawings, html_file)
+            except OSError as exc:
+                raise UserError(f"{html_file}: cannot write the HTML report: "
+                                f"{exc.strerror or exc}") from None
+        if output is not None:
+            _write_report(output, lambda fh: _audit_report(spool, fh, fmt, fail_on, show_all,
+                                                           not hide_notes))
+        if quiet:
+            click.echo(summary_line(spool.totals))
+        elif output is None:
+            _audit_report(spool, sys.stdout, fmt, fail_on, show_all, not hide_notes)
+            sys.stdout.flush()
+    finally:
+        spool.close()
+    sys.exit(spool.totals.exit_code(fail_on))
+
+
+def _audit_report(source: Any, out: Any, fmt: str, fail_on: str, show_all: bool,
+                  show_notes: bool) -> None:
+    from slicetime.interfaces import report_stream as streamed
+
     if fmt == "json":
-        text = dumps(audit_object(result, root_given)) + "\n"
-        if output:
-            _write_text(output, text)
-        else:
-            click.echo(text, nl=False)
+        streamed.write_json(source, out)
+    elif fmt == "jsonl":
+        streamed.write_jsonl(source, out)
+    elif fmt == "tsv":
+        streamed.write_tsv(source, out)
     elif fmt == "junit":
-        from slicetime.interfaces.report_junit import junit_xml
-
-        text = junit_xml(result, fail_on=fail_on, root_given=root_given)
-        if output:
-            _write_text(output, text)
-        else:
-            click.echo(text, nl=False)
+        streamed.write_junit(source, out, fail_on=fail_on)
     else:
-        if output:
-            with open(output, "w", encoding="utf-8") as fh:
-                render_audit(result, make_console(fh), show_notes=not hide_notes)
-        else:
-            render_audit(result, make_console(), show_notes=not hide_notes)
-    sys.exit(result.exit_code(fail_on))
+        streamed.write_text(source, out, show_all=show_all, show_notes=show_notes)
+
+
+def _write_report(path: Path, write: Callable[[Any], None]) -> None:
+    """Write a report atomically (a temporary name beside it, then a rename)."""
+    tmp = path.with_name(f".{path.name}.tmp-{os.getpid()}")
+    try:
+        with open(tmp, "w", encoding="utf-8", newline="\n") as fh:
+            write(fh)
+        os.replace(tmp, path)
+    except OSError as exc:
+        with contextlib.suppress(OSError):
+            tmp.unlink()
+        raise UserError(f"{path}: cannot write the report: {exc.strerror or exc}") from None
 
 
 def _source_options(check: bool | None, source_map: Path | None) -> Any:

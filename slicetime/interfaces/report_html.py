@@ -32,18 +32,27 @@ import base64
 import datetime
 import hashlib
 import html
+import io
 import json
 import os
+from array import array
 from collections import Counter, defaultdict
-from collections.abc import Iterable, Sequence
+from collections.abc import Iterator, Sequence
 from dataclasses import dataclass, field
+from typing import IO, Any
 
 from slicetime import __version__
 from slicetime.interfaces.plots import COLOURS, DiagramSpec, diagram_spec, render_svg
-from slicetime.interfaces.report_json import run_object
-from slicetime.interfaces.safe_text import sanitise, xml_safe
-from slicetime.model import Finding, RunRecord, Severity, worst
-from slicetime.pipelines.audit import AuditResult, RunResult
+from slicetime.interfaces.report_stream import (
+    MemorySource,
+    ReportSource,
+    display_path,
+    encode,
+    report_root,
+)
+from slicetime.interfaces.safe_text import xml_safe
+from slicetime.model import RunRecord, Severity
+from slicetime.pipelines.audit import AuditResult, AuditTotals, RunFacts, RunResult
 from slicetime.rules.dataset import PROTOCOL_ENTITIES, protocol_key
 
 #: fills for scheme tags in the dataset picture (our own muted palette), reused in turn
@@ -123,15 +132,6 @@ def _use(ident: str, size: tuple[float, float], caption: str) -> str:
 # --------------------------------------------------------------------------- grouping
 
 
-def _worst_name(findings: Sequence[Finding]) -> str:
-    level = worst(list(findings))
-    return level.value if level is not None else "none"
-
-
-def _scheme_name(record: RunRecord) -> str | None:
-    return record.scheme.label if record.scheme is not None else None
-
-
 def _group_label(key: tuple[str, ...], many_roots: bool) -> str:
     root, datatype, suffix = key[0], key[1], key[2]
     parts = [p for p in key[3:] if not p.endswith("-")]
@@ -155,9 +155,100 @@ class _Tag:
     label: str
 
 
-def _scheme_tags(runs: Sequence[RunResult]) -> dict[str | None, _Tag]:
+def _chip(tag: _Tag) -> str:
+    return f'<span class="chip {tag.cls}">{txt(tag.text)}</span>'
+
+
+# --------------------------------------------------------------------------- phase 1
+
+
+class _Table:
+    """Distinct values, each stored once and referred to by its index."""
+
+    def __init__(self) -> None:
+        self.index: dict[Any, int] = {}
+        self.values: list[Any] = []
+
+    def __call__(self, value: Any) -> int:
+        found = self.index.get(value)
+        if found is None:
+            found = self.index[value] = len(self.values)
+            self.values.append(value)
+        return found
+
+
+def _run_facts(record: RunRecord) -> tuple[tuple[str, str], ...]:
+    """The facts a run's section lists (name, text), as plain text for the page."""
+    schedule = record.schedule
+    header = record.header
+    facts: list[tuple[str, str]] = []
+    if header is not None:
+        facts.append(("shape", " × ".join(str(d) for d in header.shape)))
+    tr = schedule.repetition_time if schedule else (header.repetition_time if header else None)
+    if tr is not None:
+        facts.append(("repetition time", f"{tr:g} s"))
+    if schedule is not None:
+        facts.append(("slice axis", f"{schedule.axis}{schedule.direction}" + (
+            " (SliceTiming lists the highest index first)" if schedule.direction == "-" else "")))
+        if schedule.delay_time:
+            facts.append(("DelayTime", f"{schedule.delay_time:g} s"))
+        if schedule.volume_times:
+            facts.append(("volume times", f"{len(schedule.volume_times)} onsets (VolumeTiming)"))
+        facts.append(("timing from", xml_safe(record.timing_origin or "")))
+    scheme = record.scheme
+    if scheme is not None:
+        detail = _plural(len(scheme.groups), "excitation group")
+        if scheme.spacing:
+            detail += f", one every {scheme.spacing * 1000:.4g} ms"
+        facts.append(("scheme", f"{xml_safe(scheme.label)} · {detail}"))
+    else:
+        facts.append(("scheme", "unknown: no usable slice timing"))
+    return tuple(facts)
+
+
+def _run_sources(record: RunRecord, strings: _Table) -> tuple[int, ...]:
+    """Where each value came from, as string indexes: key, value, key, value, …"""
+    sources: dict[str, str] = {}
+    if record.schedule is not None:
+        sources.update({k: v.describe() for k, v in record.schedule.sources.items()})
+    for key in ("MultibandAccelerationFactor", "TaskName", "EchoTime"):
+        if key in record.metadata_sources:
+            sources[key] = record.metadata_sources[key]
+    return tuple(strings(xml_safe(text)) for pair in sources.items() for text in pair)
+
+
+class DiagramCollector:
+    """What the HTML report needs from each full run record, taken while the audit
+    streams (the records are not kept): its drawing, its facts, its sources and
+    sidecars. Each distinct value (and string) is stored once; what is unique to
+    a run (its own sidecar's name) costs one string."""
+
+    def __init__(self) -> None:
+        self.drawings = Drawings()
+        self.examples: dict[str, int] = {}
+        self.strings = _Table()
+        self.facts = _Table()
+        self.sources = _Table()
+        self.run_drawing = array("I")
+        self.run_facts = array("I")
+        self.run_sources = array("I")
+
+    def add(self, run: RunResult) -> None:
+        record = run.record
+        ident = self.drawings.add(diagram_spec(record))
+        self.examples.setdefault(ident, len(self.run_drawing))
+        self.run_drawing.append(int(ident[3:]) - 1)
+        self.run_facts.append(self.facts(_run_facts(record)))
+        chain = tuple(self.strings(xml_safe(s)) for s in record.sidecar_chain)
+        self.run_sources.append(self.sources((_run_sources(record, self.strings), chain)))
+
+
+# --------------------------------------------------------------------------- sections
+
+
+def _scheme_tags(facts: Sequence[RunFacts]) -> dict[str | None, _Tag]:
     """A short numbered tag and a fill for every scheme label, most common first."""
-    counts = Counter(_scheme_name(r.record) for r in runs)
+    counts = Counter(f.scheme.label if f.scheme else None for f in facts)
     tags: dict[str | None, _Tag] = {}
     number = 0
     for label, _ in sorted(counts.items(), key=lambda kv: (-kv[1], kv[0] or "")):
@@ -169,40 +260,18 @@ def _scheme_tags(runs: Sequence[RunResult]) -> dict[str | None, _Tag]:
     return tags
 
 
-def _chip(tag: _Tag) -> str:
-    return f'<span class="chip {tag.cls}">{txt(tag.text)}</span>'
-
-
-# --------------------------------------------------------------------------- sections
-
-
-def _summary_cards(result: AuditResult, drawings: int) -> str:
-    runs = result.runs
-    with_sev = {
-        s: sum(1 for r in runs if any(f.severity is s for f in r.findings)) for s in Severity
-    }
-    clean = sum(1 for r in runs if not r.findings)
-    counts = result.counts()
+def _summary_cards(totals: AuditTotals, drawings: int) -> str:
+    facts = totals.facts
+    with_sev = [sum(1 for f in facts if f.counts[k]) for k in range(3)]
+    clean = sum(1 for f in facts if not any(f.counts))
+    counts = totals.counts
     cards = [
-        ("runs", str(len(runs)), "audited", ""),
-        (
-            "error",
-            str(with_sev[Severity.ERROR]),
-            "runs with errors",
-            f"{_plural(counts['error'], 'error')} in all",
-        ),
-        (
-            "warning",
-            str(with_sev[Severity.WARNING]),
-            "runs with warnings",
-            f"{_plural(counts['warning'], 'warning')} in all",
-        ),
-        (
-            "note",
-            str(with_sev[Severity.NOTE]),
-            "runs with notes",
-            f"{_plural(counts['note'], 'note')} in all",
-        ),
+        ("runs", str(len(facts)), "audited", ""),
+        ("error", str(with_sev[0]), "runs with errors",
+         f"{_plural(counts['error'], 'error')} in all"),
+        ("warning", str(with_sev[1]), "runs with warnings",
+         f"{_plural(counts['warning'], 'warning')} in all"),
+        ("note", str(with_sev[2]), "runs with notes", f"{_plural(counts['note'], 'note')} in all"),
         ("clean", str(clean), "runs without findings", ""),
         ("drawings", str(drawings), "distinct timing diagrams", ""),
     ]
@@ -217,37 +286,47 @@ def _summary_cards(result: AuditResult, drawings: int) -> str:
             + f"</{tag}>"
         )
     out.append("</div>")
-    ignored = result.ignored_count()
-    if ignored:
+    if totals.ignored:
         out.append(
-            f'<p class="muted">{_plural(ignored, "finding")} ignored by the lab '
+            f'<p class="muted">{_plural(totals.ignored, "finding")} ignored by the lab '
             "policy are not shown.</p>"
         )
     return "".join(out)
 
 
-def _schemes_table(result: AuditResult, tags: dict[str | None, _Tag], ids: dict[int, str]) -> str:
+def _group_name(key: tuple[str, ...], totals: AuditTotals, many_roots: bool) -> str:
+    label = _group_label(key, False)
+    return f"{totals.names.get(key[0], key[0])} · {label}" if many_roots else label
+
+
+def _schemes_table(totals: AuditTotals, tags: dict[str | None, _Tag]) -> str:
     groups: dict[tuple[str, ...], list[int]] = defaultdict(list)
-    for i, run in enumerate(result.runs):
-        groups[protocol_key(run.record)].append(i)
+    for i, facts in enumerate(totals.facts):
+        groups[protocol_key(facts)].append(i)  # type: ignore[arg-type]
     many_roots = len({k[0] for k in groups}) > 1
     rows = []
     for key, members in sorted(groups.items()):
-        per_label = Counter(_scheme_name(result.runs[i].record) for i in members)
+        per_label: Counter[str | None] = Counter()
+        first: dict[str | None, int] = {}
+        for i in members:
+            scheme = totals.facts[i].scheme
+            label = scheme.label if scheme else None
+            per_label[label] += 1
+            first.setdefault(label, i)
         cells = []
         for label, count in sorted(per_label.items(), key=lambda kv: (-kv[1], kv[0] or "")):
-            first = next(i for i in members if _scheme_name(result.runs[i].record) == label)
             name = txt(label) if label is not None else "<em>no usable slice timing</em>"
+            example = totals.facts[first[label]].path
             cells.append(
                 f'<li>{_chip(tags[label])} {name} <span class="muted">'
-                f'{_plural(count, "run")}, e.g. <a href="#{ids[first]}">'
-                f"{txt(result.runs[first].record.path)}</a></span></li>"
+                f'{_plural(count, "run")}, e.g. <a href="#run-{first[label] + 1}">'
+                f"{txt(example)}</a></span></li>"
             )
         mixed = len(per_label) > 1
         row_class = ' class="mixed"' if mixed else ""
         rows.append(
             f'<tr{row_class}><th scope="row">'
-            f"{txt(_group_label(key, many_roots))}</th><td>{len(members)}</td>"
+            f"{txt(_group_name(key, totals, many_roots))}</th><td>{len(members)}</td>"
             f'<td><ul class="plain">{"".join(cells)}</ul>'
             + ('<span class="flag">more than one scheme</span>' if mixed else "")
             + "</td></tr>"
@@ -261,49 +340,26 @@ def _schemes_table(result: AuditResult, tags: dict[str | None, _Tag], ids: dict[
     )
 
 
-def _outliers(result: AuditResult, ids: dict[int, str]) -> str:
-    items = []
-    for i, run in enumerate(result.runs):
-        for f in run.findings:
-            if f.code.startswith("dataset/"):
-                items.append(
-                    f'<li class="sev-{f.severity.value}"><a href="#{ids[i]}">'
-                    f"{txt(run.record.path)}</a> <code>{txt(f.code)}</code> "
-                    f"{txt(f.message, one_line=False)}</li>"
-                )
+def _wide_findings(totals: AuditTotals) -> str:
     wide = "".join(
         f'<li class="sev-{f.severity.value}"><code>{txt(f.code)}</code> '
         f"{txt(f.file or '')} {txt(f.message, one_line=False)}</li>"
-        for f in result.dataset_findings
+        for f in totals.dataset_findings
     )
-    out = []
-    if items:
-        out.append(f'<ul class="outliers">{"".join(items)}</ul>')
-    else:
-        out.append(
-            '<p class="muted">No run differs from the others of its task and acquisition.</p>'
-        )
-    if wide:
-        out.append(
-            f'<h3>Findings about the dataset as a whole</h3><ul class="outliers">{wide}</ul>'
-        )
-    return "".join(out)
+    return (f'<h3>Findings about the dataset as a whole</h3><ul class="outliers">{wide}</ul>'
+            if wide else "")
 
 
-def _gallery(
-    drawings: Drawings,
-    sizes: dict[str, tuple[float, float]],
-    examples: dict[str, int],
-    result: AuditResult,
-    ids: dict[int, str],
-) -> str:
+def _gallery(collector: DiagramCollector, sizes: dict[str, tuple[float, float]],
+             totals: AuditTotals) -> str:
     figures = []
+    drawings = collector.drawings
     for spec, ident in drawings.ids.items():
-        first = examples[ident]
+        first = collector.examples[ident]
         figures.append(
             f"<figure>{_use(ident, sizes[ident], spec.caption())}<figcaption>"
             f"{txt(spec.caption())}: {_plural(drawings.users[ident], 'run')}, e.g. "
-            f'<a href="#{ids[first]}">{txt(result.runs[first].record.path)}</a>'
+            f'<a href="#run-{first + 1}">{txt(totals.facts[first].path)}</a>'
             "</figcaption></figure>"
         )
     return (
@@ -312,177 +368,87 @@ def _gallery(
     )
 
 
-def _picture(result: AuditResult, tags: dict[str | None, _Tag], ids: dict[int, str]) -> str:
-    suffixes = len({r.record.suffix for r in result.runs})
-    cells: dict[tuple[str, str], list[int]] = defaultdict(list)
-    subjects: set[str] = set()
-    columns: set[str] = set()
-    for i, run in enumerate(result.runs):
-        sub = run.record.entities.get("sub")
-        row = f"sub-{sub}" if sub is not None else "(no subject)"
-        col = _column_key(run.record, suffixes)
-        subjects.add(row)
-        columns.add(col)
-        cells[(row, col)].append(i)
-    cols = sorted(columns)
-    head = "".join(f'<th scope="col"><span>{txt(c)}</span></th>' for c in cols)
-    body = []
-    for row in sorted(subjects):
-        tds = []
-        for col in cols:
-            links = []
-            for i in cells.get((row, col), []):
-                run = result.runs[i]
-                tag = tags[_scheme_name(run.record)]
-                level = worst(run.findings)
-                glyph = SEVERITY_GLYPH[level] if level is not None else ""
-                sev = level.value if level is not None else "none"
-                title = f"{run.record.path} · {tag.label} · " + (
-                    ", ".join(_plural(n, s.value) for s, n in _severity_counts(run.findings))
-                    or "no findings"
-                )
-                links.append(
-                    f'<a class="cell {tag.cls} sev-{sev}" href="#{ids[i]}" '
-                    f'title="{esc(title)}">'
-                    f"{txt(tag.text)}<b>{glyph}</b></a>"
-                )
-            tds.append(f"<td>{''.join(links)}</td>")
-        body.append(f'<tr><th scope="row">{txt(row)}</th>{"".join(tds)}</tr>')
-    legend = "".join(f"<li>{_chip(tag)} {txt(tag.label)}</li>" for tag in tags.values())
-    sev_legend = "".join(
-        f'<li><span class="cell sev-{s.value}">1<b>{SEVERITY_GLYPH[s]}</b></span> worst finding '
-        f"is {'an' if s is Severity.ERROR else 'a'} {s.value}</li>"
-        for s in Severity
-    )
-    return (
-        '<div class="picture-wrap"><table class="picture"><thead><tr><th></th>'
-        f"{head}</tr></thead><tbody>{''.join(body)}</tbody></table></div>"
-        f'<div class="legends"><ul class="plain legend">{legend}</ul>'
-        f'<ul class="plain legend">{sev_legend}<li><span class="cell sev-none">1<b></b></span>'
-        " no findings</li></ul></div>"
-    )
+def _column_of(facts: RunFacts, suffixes: int) -> str:
+    parts = [f"{k}-{v}" for k, v in facts.entities.items() if k != "sub"]
+    if suffixes > 1 or not parts:
+        parts.append(facts.suffix or "(no suffix)")
+    return " ".join(parts)
 
 
-def _severity_counts(findings: Iterable[Finding]) -> list[tuple[Severity, int]]:
-    counts = Counter(f.severity for f in findings)
-    return [(s, counts[s]) for s in Severity if counts[s]]
+def _page_data(source: ReportSource, collector: DiagramCollector,
+               tags: dict[str | None, _Tag], sizes: dict[str, tuple[float, float]]
+               ) -> Iterator[str]:
+    """The compact data the page's script renders from (JSON, safe inside a script
+    element). Every string is stored once in ``s`` and referred to by index; a run
+    is ``[path, tag, drawing, errors, warnings, notes, row, column, facts, sources,
+    findings]``; a finding ``[code, rank, message, file, field, evidence, hint]``
+    (-1 for none)."""
+    totals = source.totals
+    strings = collector.strings
+    several = len({f.root for f in totals.facts}) > 1
+    suffixes = len({f.suffix for f in totals.facts})
+    tag_index = {label: i for i, label in enumerate(tags)}
+    subjects = _Table()
+    columns = _Table()
+    found = source.objects(lambda i: any(totals.facts[i].counts))
+    pending = next(found, None)
+    rows: list[str] = []
+    size = 0
+
+    def opt(value: str | None, *, one_line: bool = True) -> int:
+        return -1 if value is None or value == "" else strings(xml_safe(value, one_line=one_line))
+
+    for index, facts in enumerate(totals.facts):
+        findings: list[list[int]] = []
+        if pending is not None and pending[0] == index:
+            ordered = sorted(pending[1]["findings"], key=lambda f: -_RANK[f["severity"]])
+            for f in ordered:
+                evidence = f.get("evidence")
+                findings.append([
+                    strings(xml_safe(f["code"])), _RANK[f["severity"]],
+                    opt(f["message"], one_line=False), opt(f.get("file")), opt(f.get("field")),
+                    opt(json.dumps(evidence, ensure_ascii=False) if evidence else None,
+                        one_line=False),
+                    opt(f.get("hint"), one_line=False),
+                ])
+            pending = next(found, None)
+        sub = facts.entities.get("sub")
+        name = display_path(totals, facts, facts.path, several=several)
+        row = [
+            strings(xml_safe(name)),
+            tag_index[facts.scheme.label if facts.scheme else None],
+            collector.run_drawing[index], *facts.counts,
+            subjects(f"sub-{xml_safe(sub)}" if sub is not None else "(no subject)"),
+            columns(xml_safe(_column_of(facts, suffixes))),
+            collector.run_facts[index], collector.run_sources[index],
+            findings,
+        ]
+        rows.append(_safe_in_script(encode(row)))
+        size += len(rows[-1])
+    drawings = [[ident, *sizes[ident], xml_safe(spec.caption())]
+                for spec, ident in collector.drawings.ids.items()]
+    row_order = sorted(range(len(subjects.values)), key=lambda i: subjects.values[i])
+    col_order = sorted(range(len(columns.values)), key=lambda i: columns.values[i])
+    head = encode({
+        "s": strings.values,
+        "tags": [[t.text, t.cls, xml_safe(t.label)] for t in tags.values()],
+        "drawings": drawings,
+        "facts": collector.facts.values,
+        "sources": collector.sources.values,
+        "subjects": subjects.values, "subject_order": row_order,
+        "columns": columns.values, "column_order": col_order,
+    })
+    yield _safe_in_script(head[:-1]) + ',"runs":['
+    for i, row in enumerate(rows):
+        yield row if i == 0 else "," + row
+    yield "]}"
 
 
-def _finding_item(f: Finding) -> str:
-    where = []
-    if f.file:
-        where.append(f"<span>file <code>{txt(f.file)}</code></span>")
-    if f.field:
-        where.append(f"<span>field <code>{txt(f.field)}</code></span>")
-    evidence = f.to_json()["evidence"]
-    parts = [
-        f'<li class="finding sev-{f.severity.value}" data-severity="{f.severity.value}">',
-        f'<div class="fhead"><span class="sev">{SEVERITY_GLYPH[f.severity]} '
-        f'{f.severity.value}</span> <code class="code">{txt(f.code)}</code></div>',
-        f'<p class="msg">{txt(f.message, one_line=False)}</p>',
-    ]
-    if where:
-        parts.append(f'<p class="where">{" ".join(where)}</p>')
-    if evidence:
-        text = json.dumps(sanitise(evidence), ensure_ascii=False, allow_nan=False)
-        parts.append(f'<pre class="evidence">{txt(text, one_line=False)}</pre>')
-    if f.hint:
-        parts.append(f'<p class="hint">{txt(f.hint, one_line=False)}</p>')
-    parts.append("</li>")
-    return "".join(parts)
-
-
-def _run_section(
-    run: RunResult,
-    ident: str,
-    drawing: str,
-    size: tuple[float, float],
-    spec: DiagramSpec,
-    tags: dict[str | None, _Tag],
-) -> str:
-    record = run.record
-    obj = run_object(run)
-    schedule = record.schedule
-    tag = tags[_scheme_name(record)]
-    worst_name = _worst_name(run.findings)
-    badges = (
-        "".join(
-            f'<span class="badge sev-{s.value}">{_plural(n, s.value)}</span>'
-            for s, n in _severity_counts(run.findings)
-        )
-        or '<span class="badge sev-none">no findings</span>'
-    )
-    facts: list[tuple[str, str]] = []
-    if obj["shape"]:
-        facts.append(("shape", " × ".join(str(d) for d in obj["shape"])))
-    if obj["repetition_time"] is not None:
-        facts.append(("repetition time", f"{obj['repetition_time']:g} s"))
-    if schedule is not None:
-        facts.append(
-            (
-                "slice axis",
-                f"{schedule.axis}{schedule.direction}"
-                + (
-                    " (SliceTiming lists the highest index first)"
-                    if schedule.direction == "-"
-                    else ""
-                ),
-            )
-        )
-        if schedule.delay_time:
-            facts.append(("DelayTime", f"{schedule.delay_time:g} s"))
-        if schedule.volume_times:
-            facts.append(("volume times", f"{len(schedule.volume_times)} onsets (VolumeTiming)"))
-        facts.append(("timing from", txt(record.timing_origin or "")))
-    scheme = record.scheme
-    if scheme is not None:
-        detail = _plural(len(scheme.groups), "excitation group")
-        if scheme.spacing:
-            detail += f", one every {scheme.spacing * 1000:.4g} ms"
-        facts.append(
-            (
-                "scheme",
-                f"{_chip(tag)} <strong>{txt(scheme.label)}</strong> "
-                f'<span class="muted">{detail}</span>',
-            )
-        )
-    else:
-        facts.append(("scheme", f"{_chip(tag)} <em>unknown: no usable slice timing</em>"))
-    if record.sidecar_chain:
-        facts.append(
-            ("sidecars", " → ".join(f"<code>{txt(s)}</code>" for s in record.sidecar_chain))
-        )
-    fact_rows = "".join(f"<dt>{name}</dt><dd>{value}</dd>" for name, value in facts)
-    sources = "".join(
-        f'<tr><th scope="row">{txt(k)}</th><td><code>{txt(v)}</code></td></tr>'
-        for k, v in obj["sources"].items()
-    )
-    findings = "".join(
-        _finding_item(f) for f in sorted(run.findings, key=lambda f: -f.severity.rank)
-    )
-    return (
-        f'<details class="run" id="{ident}" data-name="{esc(record.path.lower())}" '
-        f'data-worst="{worst_name}">'
-        f'<summary><span class="mark sev-{worst_name}"></span>'
-        f'<code class="path">{txt(record.path)}</code> {_chip(tag)}'
-        f'<span class="label">{txt(tag.label)}</span>{badges}</summary>'
-        '<div class="run-body"><div class="cols"><div>'
-        f'<dl class="facts">{fact_rows}</dl>'
-        + (
-            f'<h4>where each value came from</h4><table class="sources">{sources}</table>'
-            if sources
-            else ""
-        )
-        + f'</div><figure class="timing">{_use(drawing, size, spec.caption())}'
-        + (f"<figcaption>{txt(spec.caption())}</figcaption>" if spec.kind == "schedule" else "")
-        + "</figure></div>"
-        + (
-            f'<h4>findings</h4><ol class="findings">{findings}</ol>'
-            if findings
-            else '<p class="muted">No findings.</p>'
-        )
-        + "</div></details>"
-    )
+def _safe_in_script(text: str) -> str:
+    """JSON text that can sit inside <script>: no "<" (so no "</script" and no
+    "<!--"), and no ">" or "&" either; they only occur inside JSON strings, where
+    the escapes mean the same characters."""
+    return text.replace("<", "\\u003c").replace(">", "\\u003e").replace("&", "\\u0026")
 
 
 # --------------------------------------------------------------------------- page
@@ -500,95 +466,6 @@ def _generated_stamp() -> str:
     except (ValueError, OverflowError, OSError):
         moment = datetime.datetime.now(datetime.timezone.utc)
     return moment.strftime("%Y-%m-%d %H:%M UTC")
-
-
-def render_html(result: AuditResult, root_given: str, *, generated: str | None = None) -> str:
-    """The whole report as one HTML document (a string)."""
-    ids = {i: f"run-{i + 1}" for i in range(len(result.runs))}
-    tags = _scheme_tags(result.runs)
-    drawings = Drawings()
-    run_drawings: list[tuple[str, DiagramSpec]] = []
-    examples: dict[str, int] = {}
-    for i, run in enumerate(result.runs):
-        spec = diagram_spec(run.record)
-        ident = drawings.add(spec)
-        examples.setdefault(ident, i)
-        run_drawings.append((ident, spec))
-    sprite, sizes = drawings.symbols()
-    sections = "".join(
-        _run_section(
-            run, ids[i], run_drawings[i][0], sizes[run_drawings[i][0]], run_drawings[i][1], tags
-        )
-        for i, run in enumerate(result.runs)
-    )
-    counts = result.counts()
-    stamp = generated if generated is not None else _generated_stamp()
-    title = f"slicetime audit · {xml_safe(root_given)}"
-    script = _SCRIPT
-    digest = base64.b64encode(hashlib.sha256(script.encode("utf-8")).digest()).decode()
-    policy = (
-        "default-src 'none'; style-src 'unsafe-inline'; img-src data:; "
-        f"script-src 'sha256-{digest}'; base-uri 'none'; form-action 'none'"
-    )
-    roots = "".join(f"<code>{txt(r)}</code> " for r in result.roots)
-    policies = "".join(
-        f"<li><code>{txt(r)}</code>: <code>{txt(p)}</code></li>" for r, p in result.policies.items()
-    )
-    return "".join(
-        [
-            '<!DOCTYPE html>\n<html lang="en"><head><meta charset="utf-8">',
-            f'<meta http-equiv="Content-Security-Policy" content="{policy}">',
-            '<meta name="viewport" content="width=device-width, initial-scale=1">',
-            f'<meta name="generator" content="slicetime {esc(__version__)}">',
-            f"<title>{html.escape(title)}</title><style>{_css()}</style></head>",
-            '<body data-ready="0">',
-            sprite,
-            '<header class="top"><div class="brand">slicetime · slice-timing audit</div>',
-            f"<h1>{txt(root_given)}</h1>",
-            f'<p class="muted">{_plural(len(result.runs), "run")} · '
-            f"{_plural(counts['error'], 'error')}, {_plural(counts['warning'], 'warning')}, "
-            f"{_plural(counts['note'], 'note')} · dataset root {roots}· written {txt(stamp)} "
-            f"by slicetime {txt(__version__)}</p>",
-            (
-                f'<p class="muted">Lab policy: </p><ul class="plain muted">{policies}</ul>'
-                if policies
-                else ""
-            ),
-            '<nav class="no-print"><a href="#overview">overview</a><a href="#picture">dataset '
-            'picture</a><a href="#runs">runs</a><a href="#reading">how to read a diagram</a>'
-            "</nav></header><main>",
-            '<section id="overview"><h2>Overview</h2>',
-            _summary_cards(result, len(drawings.ids)),
-            "<h3>Schemes in use per task and acquisition</h3>",
-            _schemes_table(result, tags, ids),
-            "<h3>Outliers</h3>",
-            _outliers(result, ids),
-            _gallery(drawings, sizes, examples, result, ids),
-            "</section>",
-            '<section id="picture"><h2>Dataset picture</h2><p class="muted">One row per '
-            "subject, one column per session, task, acquisition and run. The number is the "
-            "scheme (legend below), the colour the scheme, the mark the worst finding: a subject "
-            "whose cells differ from the column stands out.</p>",
-            _picture(result, tags, ids),
-            "</section>",
-            '<section id="runs"><h2>Runs</h2>',
-            '<div class="controls" role="search"><label>Show <select id="severity-filter">'
-            '<option value="all">all runs</option><option value="error">runs with errors'
-            '</option><option value="warning">runs with warnings or errors</option>'
-            '<option value="note">runs with any finding</option><option value="clean">runs '
-            'without findings</option></select></label><label>Find <input id="run-search" '
-            'type="search" placeholder="part of a run name" autocomplete="off"></label>'
-            '<button type="button" id="open-shown">open shown</button><button type="button" '
-            'id="close-all">close all</button><span id="shown-count" aria-live="polite">'
-            f"{_plural(len(result.runs), 'run')}</span></div>",
-            '<p class="print-only" id="print-filter"></p>',
-            f'<div class="run-list">{sections}</div>',
-            "</section>",
-            _reading_guide(),
-            "</main>",
-            f"<script>{script}</script></body></html>\n",
-        ]
-    )
 
 
 def _reading_guide() -> str:
@@ -759,39 +636,337 @@ main{padding:0 .5rem}
     )
 
 
+def write_html_stream(
+    source: ReportSource, collector: DiagramCollector, path: str | os.PathLike[str], *,
+    generated: str | None = None,
+) -> None:
+    """Write the report atomically (a temporary file beside it, fsync, then a rename),
+    so a reader never sees half a report. OSError propagates."""
+    target = os.fspath(path)
+    folder = os.path.dirname(os.path.abspath(target))
+    tmp = os.path.join(folder, f".{os.path.basename(target)}.tmp-{os.getpid()}")
+    try:
+        with open(tmp, "w", encoding="utf-8") as fh:
+            _write_page(source, collector, fh, generated=generated)
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.replace(tmp, target)
+    except BaseException:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+        raise
+
+
+def _collect(result: AuditResult) -> DiagramCollector:
+    collector = DiagramCollector()
+    for run in result.runs:
+        collector.add(run)
+    return collector
+
+
+def render_html(result: AuditResult, root_given: str, *, generated: str | None = None) -> str:
+    """The whole report of a finished audit as one HTML document (a string)."""
+    buffer = io.StringIO()
+    _write_page(MemorySource(result, root_given), _collect(result), buffer, generated=generated)
+    return buffer.getvalue()
+
+
+def write_html(
+    result: AuditResult,
+    path: str | os.PathLike[str],
+    *,
+    root_given: str,
+    generated: str | None = None,
+) -> None:
+    """:func:`write_html_stream` for a finished audit."""
+    write_html_stream(MemorySource(result, root_given), _collect(result), path,
+                      generated=generated)
+
+
+def _write_page(source: ReportSource, collector: DiagramCollector, out: IO[str], *,
+                generated: str | None = None) -> None:
+    totals = source.totals
+    tags = _scheme_tags(totals.facts)
+    sprite, sizes = collector.drawings.symbols()
+    counts = totals.counts
+    stamp = generated if generated is not None else _generated_stamp()
+    name = report_root(totals)
+    title = f"slicetime audit · {xml_safe(name)}"
+    digest = base64.b64encode(hashlib.sha256(_SCRIPT.encode("utf-8")).digest()).decode()
+    policy = (
+        "default-src 'none'; style-src 'unsafe-inline'; img-src data:; "
+        f"script-src 'sha256-{digest}'; base-uri 'none'; form-action 'none'"
+    )
+    roots = "".join(f"<code>{txt(r)}</code> " for r in totals.roots)
+    policies = "".join(
+        f"<li><code>{txt(r)}</code>: <code>{txt(p)}</code></li>" for r, p in totals.policies.items()
+    )
+    n = totals.runs
+    out.write("".join([
+        '<!DOCTYPE html>\n<html lang="en"><head><meta charset="utf-8">',
+        f'<meta http-equiv="Content-Security-Policy" content="{policy}">',
+        '<meta name="viewport" content="width=device-width, initial-scale=1">',
+        f'<meta name="generator" content="slicetime {esc(__version__)}">',
+        f"<title>{html.escape(title)}</title><style>{_css()}</style></head>",
+        '<body data-ready="0">',
+        sprite,
+        '<header class="top"><div class="brand">slicetime · slice-timing audit</div>',
+        f"<h1>{txt(name)}</h1>",
+        f'<p class="muted">{_plural(n, "run")} · '
+        f"{_plural(counts['error'], 'error')}, {_plural(counts['warning'], 'warning')}, "
+        f"{_plural(counts['note'], 'note')} · dataset root {roots}· path given "
+        f"<code>{txt(source.root_given)}</code> · written {txt(stamp)} "
+        f"by slicetime {txt(__version__)}</p>",
+        (f'<p class="muted">Lab policy: </p><ul class="plain muted">{policies}</ul>'
+         if policies else ""),
+        '<nav class="no-print"><a href="#overview">overview</a><a href="#picture">dataset '
+        'picture</a><a href="#runs">runs</a><a href="#reading">how to read a diagram</a>'
+        "</nav></header><main>",
+        '<section id="overview"><h2>Overview</h2>',
+        _summary_cards(totals, len(collector.drawings.ids)),
+        "<h3>Schemes in use per task and acquisition</h3>",
+        _schemes_table(totals, tags),
+        "<h3>Outliers</h3>",
+        '<div id="outliers"><p class="muted">No run differs from the others of its task and '
+        "acquisition.</p></div>",
+        _wide_findings(totals),
+        _gallery(collector, sizes, totals),
+        "</section>",
+        '<section id="picture"><h2>Dataset picture</h2><p class="muted">One row per '
+        "subject, one column per session, task, acquisition and run. The number is the "
+        "scheme (legend below), the colour the scheme, the mark the worst finding: a subject "
+        "whose cells differ from the column stands out.</p>",
+        '<div class="picture-wrap"><table class="picture" id="picture-table"></table></div>',
+        _legends(tags),
+        "</section>",
+        '<section id="runs"><h2>Runs</h2>',
+        '<div class="controls" role="search"><label>Show <select id="severity-filter">'
+        '<option value="all">all runs</option><option value="error">runs with errors'
+        '</option><option value="warning">runs with warnings or errors</option>'
+        '<option value="note">runs with any finding</option><option value="clean">runs '
+        'without findings</option></select></label><label>Find <input id="run-search" '
+        'type="search" placeholder="part of a run name" autocomplete="off"></label>'
+        '<button type="button" id="open-shown">open listed</button><button type="button" '
+        'id="close-all">close all</button><span id="shown-count" aria-live="polite">'
+        f"{_plural(n, 'run')}</span></div>",
+        '<p class="print-only" id="print-filter"></p>',
+        '<div id="pinned"></div><div class="run-list" id="run-list"></div>',
+        f'<p class="no-print"><button type="button" id="more" hidden>list {PAGE} more'
+        "</button></p>",
+        "</section>",
+        _reading_guide(),
+        "</main>",
+        '<script type="application/json" id="report-data">',
+    ]))
+    for part in _page_data(source, collector, tags, sizes):
+        out.write(part)
+    out.write(f"</script><script>{_SCRIPT}</script></body></html>\n")
+
+
+#: runs listed at once; "list more" adds as many again
+PAGE = 200
+
+
+def _legends(tags: dict[str | None, _Tag]) -> str:
+    legend = "".join(f"<li>{_chip(tag)} {txt(tag.label)}</li>" for tag in tags.values())
+    sev_legend = "".join(
+        f'<li><span class="cell sev-{s.value}">1<b>{SEVERITY_GLYPH[s]}</b></span> worst finding '
+        f"is {'an' if s is Severity.ERROR else 'a'} {s.value}</li>"
+        for s in Severity
+    )
+    return (
+        f'<div class="legends"><ul class="plain legend">{legend}</ul>'
+        f'<ul class="plain legend">{sev_legend}<li><span class="cell sev-none">1<b></b></span>'
+        " no findings</li></ul></div>"
+    )
+
+
+_RANK = {"error": 3, "warning": 2, "note": 1}
+
 _SCRIPT = """
 (function () {
   "use strict";
   var body = document.body;
-  var runs = Array.prototype.slice.call(document.querySelectorAll("details.run"));
+  var data = JSON.parse(document.getElementById("report-data").textContent);
+  var S = data.s, runs = data.runs;
+  var SEV = ["none", "note", "warning", "error"];
+  var GLYPH = {error: "\\u2715", warning: "\\u25b3", note: "\\u2022", none: ""};
+  var PAGE = 200;
   var select = document.getElementById("severity-filter");
   var search = document.getElementById("run-search");
   var count = document.getElementById("shown-count");
   var printNote = document.getElementById("print-filter");
-  var rank = {none: 0, note: 1, warning: 2, error: 3};
+  var list = document.getElementById("run-list");
+  var pinned = document.getElementById("pinned");
+  var more = document.getElementById("more");
   var levels = ["all", "error", "warning", "note", "clean"];
+  var names = null, matching = [], limit = PAGE, built = {};
+
+  function el(tag, cls, text) {
+    var node = document.createElement(tag);
+    if (cls) { node.className = cls; }
+    if (text !== undefined && text !== null) { node.textContent = text; }
+    return node;
+  }
+  function plural(n, word) { return n + " " + word + (n === 1 ? "" : "s"); }
+  function worst(r) { return r[3] ? 3 : r[4] ? 2 : r[5] ? 1 : 0; }
+  function str(i) { return i < 0 ? "" : S[i]; }
+  function chip(tagIndex) {
+    var tag = data.tags[tagIndex];
+    return el("span", "chip " + tag[1], tag[0]);
+  }
+  function use(drawing, caption) {
+    var d = data.drawings[drawing], ns = document.querySelector("svg.sprite").namespaceURI;
+    var svg = document.createElementNS(ns, "svg");
+    svg.setAttribute("class", "diagram");
+    svg.setAttribute("viewBox", "0 0 " + d[1] + " " + d[2]);
+    svg.setAttribute("role", "img");
+    svg.setAttribute("aria-label", caption || d[3]);
+    var u = document.createElementNS(ns, "use");
+    u.setAttribute("href", "#" + d[0]);
+    u.setAttribute("width", d[1]);
+    u.setAttribute("height", d[2]);
+    svg.appendChild(u);
+    return svg;
+  }
+
+  function fill(details, i) {
+    if (details.getAttribute("data-built")) { return; }
+    details.setAttribute("data-built", "1");
+    var r = runs[i], d = data.drawings[r[2]];
+    var box = el("div", "run-body"), cols = el("div", "cols"), left = el("div");
+    var dl = el("dl", "facts");
+    data.facts[r[8]].forEach(function (fact) {
+      dl.appendChild(el("dt", null, fact[0]));
+      var dd = el("dd", null, fact[1]);
+      if (fact[0] === "scheme") {
+        dd.insertBefore(document.createTextNode(" "), dd.firstChild);
+        dd.insertBefore(chip(r[1]), dd.firstChild);
+      }
+      dl.appendChild(dd);
+    });
+    var pairs = data.sources[r[9]][0], chain = data.sources[r[9]][1];
+    if (chain.length) {
+      dl.appendChild(el("dt", null, "sidecars"));
+      dl.appendChild(el("dd", null, chain.map(function (k) { return S[k]; }).join(" \u2192 ")));
+    }
+    left.appendChild(dl);
+    if (pairs.length) {
+      left.appendChild(el("h4", null, "where each value came from"));
+      var table = el("table", "sources");
+      for (var k = 0; k < pairs.length; k += 2) {
+        var tr = el("tr"), th = el("th", null, S[pairs[k]]), td = el("td");
+        th.setAttribute("scope", "row");
+        td.appendChild(el("code", null, S[pairs[k + 1]]));
+        tr.appendChild(th); tr.appendChild(td); table.appendChild(tr);
+      }
+      left.appendChild(table);
+    }
+    cols.appendChild(left);
+    var figure = el("figure", "timing");
+    figure.appendChild(use(r[2]));
+    figure.appendChild(el("figcaption", null, d[3]));
+    cols.appendChild(figure);
+    box.appendChild(cols);
+    if (r[10].length) {
+      box.appendChild(el("h4", null, "findings"));
+      var ol = el("ol", "findings");
+      r[10].forEach(function (f) {
+        var sev = SEV[f[1]], li = el("li", "finding sev-" + sev);
+        li.setAttribute("data-severity", sev);
+        var head = el("div", "fhead");
+        head.appendChild(el("span", "sev", GLYPH[sev] + " " + sev));
+        head.appendChild(document.createTextNode(" "));
+        head.appendChild(el("code", "code", S[f[0]]));
+        li.appendChild(head);
+        li.appendChild(el("p", "msg", str(f[2])));
+        if (f[3] >= 0 || f[4] >= 0) {
+          var where = el("p", "where");
+          if (f[3] >= 0) {
+            var a = el("span", null, "file ");
+            a.appendChild(el("code", null, S[f[3]]));
+            where.appendChild(a);
+          }
+          if (f[4] >= 0) {
+            var b = el("span", null, "field ");
+            b.appendChild(el("code", null, S[f[4]]));
+            where.appendChild(b);
+          }
+          li.appendChild(where);
+        }
+        if (f[5] >= 0) { li.appendChild(el("pre", "evidence", S[f[5]])); }
+        if (f[6] >= 0) { li.appendChild(el("p", "hint", S[f[6]])); }
+        ol.appendChild(li);
+      });
+      box.appendChild(ol);
+    } else {
+      box.appendChild(el("p", "muted", "No findings."));
+    }
+    details.appendChild(box);
+  }
+
+  function section(i) {
+    var r = runs[i], w = SEV[worst(r)];
+    var details = el("details", "run");
+    details.id = "run-" + (i + 1);
+    details.setAttribute("data-name", S[r[0]].toLowerCase());
+    details.setAttribute("data-worst", w);
+    var summary = el("summary");
+    summary.appendChild(el("span", "mark sev-" + w));
+    summary.appendChild(el("code", "path", S[r[0]]));
+    summary.appendChild(document.createTextNode(" "));
+    summary.appendChild(chip(r[1]));
+    summary.appendChild(el("span", "label", data.tags[r[1]][2]));
+    var any = false;
+    [[r[3], "error"], [r[4], "warning"], [r[5], "note"]].forEach(function (c) {
+      if (c[0]) {
+        any = true;
+        summary.appendChild(el("span", "badge sev-" + c[1], plural(c[0], c[1])));
+      }
+    });
+    if (!any) { summary.appendChild(el("span", "badge sev-none", "no findings")); }
+    details.appendChild(summary);
+    details.addEventListener("toggle", function () { if (details.open) { fill(details, i); } });
+    built[i] = details;
+    return details;
+  }
+
+  function matches(i, level, words) {
+    var w = worst(runs[i]);
+    var rank = {note: 1, warning: 2, error: 3};
+    if (level === "clean" ? w !== 0 : level !== "all" && w < rank[level]) { return false; }
+    if (!words.length) { return true; }
+    if (!names) { names = runs.map(function (r) { return S[r[0]].toLowerCase(); }); }
+    var name = names[i];
+    return words.every(function (word) { return name.indexOf(word) >= 0; });
+  }
+
+  function draw() {
+    list.textContent = "";
+    built = {};
+    var shown = matching.slice(0, limit), frag = document.createDocumentFragment();
+    shown.forEach(function (i) { frag.appendChild(section(i)); });
+    list.appendChild(frag);
+    more.hidden = matching.length <= limit;
+    count.textContent = matching.length + " of " + runs.length + " runs shown" +
+      (matching.length > limit ? " (the first " + limit + " listed)" : "");
+  }
 
   function apply() {
     var level = select.value;
     var words = search.value.toLowerCase().split(/\\s+/).filter(Boolean);
-    var shown = 0;
-    runs.forEach(function (run) {
-      var w = rank[run.getAttribute("data-worst")] || 0;
-      var ok = level === "all" || (level === "clean" ? w === 0 : w >= rank[level]);
-      if (ok && words.length) {
-        var name = run.getAttribute("data-name");
-        ok = words.every(function (word) { return name.indexOf(word) >= 0; });
-      }
-      run.hidden = !ok;
-      if (ok) { shown += 1; }
-    });
-    count.textContent = shown + " of " + runs.length + " runs shown";
+    matching = [];
+    for (var i = 0; i < runs.length; i += 1) {
+      if (matches(i, level, words)) { matching.push(i); }
+    }
+    limit = PAGE;
+    draw();
     body.setAttribute("data-severity", level);
     var parts = [];
     if (level !== "all") { parts.push(select.options[select.selectedIndex].text); }
     if (words.length) { parts.push("names containing \\u201c" + search.value + "\\u201d"); }
     printNote.textContent = parts.length ? "Printed with a filter: " + parts.join(", ") +
-      " (" + shown + " of " + runs.length + " runs)." : "";
+      " (" + matching.length + " of " + runs.length + " runs)." : "";
   }
 
   function store() {
@@ -816,31 +991,113 @@ _SCRIPT = """
       apply();
       return;
     }
-    var target = text && document.getElementById(text);
-    if (target && target.tagName === "DETAILS") {
-      target.hidden = false;
+    var m = /^run-(\\d+)$/.exec(text);
+    if (m) {
+      var i = parseInt(m[1], 10) - 1;
+      if (i < 0 || i >= runs.length) { return; }
+      var target = built[i];
+      if (!target) {
+        pinned.textContent = "";
+        target = section(i);
+        pinned.appendChild(target);
+      }
+      fill(target, i);
       target.open = true;
       target.scrollIntoView();
     }
   }
 
+  function outliers() {
+    var box = document.getElementById("outliers"), ul = el("ul", "outliers"), n = 0, extra = 0;
+    runs.forEach(function (r, i) {
+      r[10].forEach(function (f) {
+        if (S[f[0]].indexOf("dataset/") !== 0) { return; }
+        if (n >= 500) { extra += 1; return; }
+        n += 1;
+        var li = el("li", "sev-" + SEV[f[1]]), a = el("a", null, S[r[0]]);
+        a.href = "#run-" + (i + 1);
+        li.appendChild(a);
+        li.appendChild(document.createTextNode(" "));
+        li.appendChild(el("code", null, S[f[0]]));
+        li.appendChild(document.createTextNode(" " + str(f[2])));
+        ul.appendChild(li);
+      });
+    });
+    if (n) {
+      box.textContent = "";
+      box.appendChild(ul);
+      if (extra) {
+        box.appendChild(el("p", "muted", "and " + extra + " more: filter the runs below"));
+      }
+    }
+  }
+
+  function picture() {
+    var table = document.getElementById("picture-table");
+    var cells = {}, thead = el("thead"), tr = el("tr"), tbody = el("tbody");
+    runs.forEach(function (r, i) {
+      var key = r[6] + ":" + r[7];
+      (cells[key] = cells[key] || []).push(i);
+    });
+    tr.appendChild(el("th"));
+    data.column_order.forEach(function (c) {
+      var th = el("th");
+      th.setAttribute("scope", "col");
+      th.appendChild(el("span", null, data.columns[c]));
+      tr.appendChild(th);
+    });
+    thead.appendChild(tr);
+    data.subject_order.forEach(function (s) {
+      var row = el("tr"), th = el("th", null, data.subjects[s]);
+      th.setAttribute("scope", "row");
+      row.appendChild(th);
+      data.column_order.forEach(function (c) {
+        var td = el("td");
+        (cells[s + ":" + c] || []).forEach(function (i) {
+          var r = runs[i], tag = data.tags[r[1]], w = SEV[worst(r)];
+          var a = el("a", "cell " + tag[1] + " sev-" + w, tag[0]);
+          a.href = "#run-" + (i + 1);
+          var counts = [];
+          if (r[3]) { counts.push(plural(r[3], "error")); }
+          if (r[4]) { counts.push(plural(r[4], "warning")); }
+          if (r[5]) { counts.push(plural(r[5], "note")); }
+          a.title = S[r[0]] + " \\u00b7 " + tag[2] + " \\u00b7 " +
+            (counts.join(", ") || "no findings");
+          a.appendChild(el("b", null, GLYPH[w]));
+          td.appendChild(a);
+        });
+        row.appendChild(td);
+      });
+      tbody.appendChild(row);
+    });
+    table.appendChild(thead);
+    table.appendChild(tbody);
+  }
+
   select.addEventListener("change", function () { apply(); store(); });
   search.addEventListener("input", function () { apply(); store(); });
   window.addEventListener("hashchange", fromFragment);
+  more.addEventListener("click", function () { limit += PAGE; draw(); });
   document.getElementById("open-shown").addEventListener("click", function () {
-    runs.forEach(function (run) { if (!run.hidden) { run.open = true; } });
+    Object.keys(built).forEach(function (i) { fill(built[i], +i); built[i].open = true; });
   });
   document.getElementById("close-all").addEventListener("click", function () {
-    runs.forEach(function (run) { run.open = false; });
+    Object.keys(built).forEach(function (i) { built[i].open = false; });
   });
-  var wasOpen = [];
+  var wasOpen = {};
   window.addEventListener("beforeprint", function () {
-    wasOpen = runs.map(function (run) { return run.open; });
-    runs.forEach(function (run) { if (!run.hidden) { run.open = true; } });
+    wasOpen = {};
+    Object.keys(built).forEach(function (i) {
+      wasOpen[i] = built[i].open;
+      fill(built[i], +i);
+      built[i].open = true;
+    });
   });
   window.addEventListener("afterprint", function () {
-    runs.forEach(function (run, i) { run.open = wasOpen[i] || false; });
+    Object.keys(built).forEach(function (i) { built[i].open = wasOpen[i] || false; });
   });
+  outliers();
+  picture();
   apply();
   fromFragment();
   body.setAttribute("data-ready", "1");
@@ -848,29 +1105,4 @@ _SCRIPT = """
 """
 
 
-def write_html(
-    result: AuditResult,
-    path: str | os.PathLike[str],
-    *,
-    root_given: str,
-    generated: str | None = None,
-) -> None:
-    """Render the report and write it atomically (a temporary file beside it, fsync,
-    then a rename), so a reader never sees half a report. OSError propagates."""
-    text = render_html(result, root_given, generated=generated)
-    target = os.fspath(path)
-    folder = os.path.dirname(os.path.abspath(target))
-    tmp = os.path.join(folder, f".{os.path.basename(target)}.tmp-{os.getpid()}")
-    try:
-        with open(tmp, "w", encoding="utf-8") as fh:
-            fh.write(text)
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, target)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
-
-
-__all__ = ["Drawings", "esc", "render_html", "write_html"]
+__all__ = ["DiagramCollector", "Drawings", "esc", "render_html", "write_html", "write_html_stream"]

@@ -18,6 +18,26 @@ def report_schema() -> dict[str, Any]:
     return json.loads(text)
 
 
+@lru_cache(maxsize=1)
+def lines_schema() -> dict[str, Any]:
+    """The schema of each line of ``audit --format jsonl`` (it refers to
+    ``report.schema.json``; see :func:`lines_validator`)."""
+    text = resources.files("slicetime").joinpath("data/report-lines.schema.json").read_text(
+        "utf-8")
+    return json.loads(text)
+
+
+def lines_validator() -> Any:
+    """A jsonschema validator for one jsonl line, with the report schema it refers to."""
+    import jsonschema
+    from referencing import Registry, Resource
+
+    registry = Registry().with_resources([
+        ("slicetime/report.schema.json", Resource.from_contents(report_schema())),
+    ])
+    return jsonschema.Draft202012Validator(lines_schema(), registry=registry)
+
+
 def run_object(run: RunResult) -> dict[str, Any]:
     """One run as the contract's run object."""
     record = run.record
@@ -50,10 +70,16 @@ def run_object(run: RunResult) -> dict[str, Any]:
 
 
 def audit_object(result: AuditResult, root_given: str) -> dict[str, Any]:
+    """The whole report as one object (``report_stream.write_json`` writes the same
+    report as a stream). ``root`` names the dataset(s): see ``report_root``."""
+    from slicetime.pipelines.audit import dataset_names
+
     counts = result.counts()
+    roots = list(dict.fromkeys([*result.roots, *(r.record.root for r in result.runs)]))
+    names = dataset_names(roots)
     return {
         "tool": {"name": "slicetime", "version": __version__},
-        "root": root_given,
+        "root": ", ".join(names[r] for r in roots),
         "roots": result.roots,
         "runs": [run_object(r) for r in result.runs],
         "dataset_findings": [f.to_json() for f in result.dataset_findings],

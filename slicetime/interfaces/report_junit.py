@@ -40,12 +40,11 @@ from __future__ import annotations
 
 import json
 import xml.etree.ElementTree as ET
-from collections.abc import Iterable, Sequence
+from collections.abc import Sequence
 
-from slicetime import __version__
 from slicetime.interfaces.safe_text import xml_safe
 from slicetime.model import Finding, Severity
-from slicetime.pipelines.audit import AuditResult, RunResult
+from slicetime.pipelines.audit import AuditResult
 
 __all__ = ["DATASET_CASE", "FAIL_LEVELS", "junit_xml", "xml_safe"]
 
@@ -116,77 +115,18 @@ def _testcase(
     return bool(failing)
 
 
-def _suite(
-    parent: ET.Element,
-    name: str,
-    properties: dict[str, str],
-    runs: Iterable[RunResult],
-    dataset_findings: Sequence[Finding] | None,
-    level: int | None,
-) -> tuple[int, int]:
-    """Add one test suite; returns (tests, failures)."""
-    suite = ET.SubElement(parent, "testsuite", name=xml_safe(name))
-    props = ET.SubElement(suite, "properties")
-    for key, value in properties.items():
-        ET.SubElement(props, "property", name=key, value=xml_safe(value))
-    tests = failures = 0
-    for run in runs:
-        path = run.record.path
-        tests += 1
-        failures += _testcase(suite, _folder(path), path, run.findings, level)
-    if dataset_findings is not None:
-        tests += 1
-        failures += _testcase(suite, ".", DATASET_CASE, dataset_findings, level)
-    suite.set("tests", str(tests))
-    suite.set("failures", str(failures))
-    suite.set("errors", "0")
-    suite.set("skipped", "0")
-    # attribute order on the page: name, tests, failures, errors, skipped
-    suite.attrib = {k: suite.attrib[k] for k in ("name", "tests", "failures", "errors", "skipped")}
-    return tests, failures
-
-
 def junit_xml(result: AuditResult, *, fail_on: str, root_given: str) -> str:
     """The audit as a JUnit XML document (a string starting with the XML declaration).
 
     ``fail_on`` is ``error``, ``warning`` or ``never`` (as for the exit code);
     ``root_given`` is the path as the user gave it (recorded as a property).
+    The CLI writes the same document as a stream (``report_stream.write_junit``).
     """
-    level = _check_level(fail_on)
-    top = ET.Element("testsuites", name="slicetime")
-    roots = list(dict.fromkeys([*result.roots, *(r.record.root for r in result.runs)]))
-    if not roots:
-        roots = [root_given]
-    several = len(roots) > 1
-    common = {"path_given": root_given, "fail_on": fail_on, "slicetime_version": __version__}
-    tests = failures = 0
-    for root in roots:
-        runs = [r for r in result.runs if r.record.root == root]
-        if several and not runs:
-            continue
-        t, f = _suite(
-            top,
-            f"{SUITE_NAME}: {root}" if several else SUITE_NAME,
-            {"root": root, **common},
-            runs,
-            None if several else result.dataset_findings,
-            level,
-        )
-        tests, failures = tests + t, failures + f
-    if several:
-        t, f = _suite(
-            top,
-            f"{SUITE_NAME}: all datasets",
-            {"root": ", ".join(roots), **common},
-            [],
-            result.dataset_findings,
-            level,
-        )
-        tests, failures = tests + t, failures + f
-    top.set("tests", str(tests))
-    top.set("failures", str(failures))
-    top.set("errors", "0")
-    top.set("skipped", "0")
-    ET.indent(top, space="  ")
-    body = ET.tostring(top, encoding="unicode")
-    return '<?xml version="1.0" encoding="UTF-8"?>\n' + body + "\n"
+    import io
+
+    from slicetime.interfaces.report_stream import MemorySource, write_junit
+
+    _check_level(fail_on)
+    buffer = io.StringIO()
+    write_junit(MemorySource(result, root_given), buffer, fail_on=fail_on)
+    return buffer.getvalue()

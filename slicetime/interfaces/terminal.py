@@ -8,20 +8,25 @@ from __future__ import annotations
 
 import os
 import sys
-import time
-from collections.abc import Callable, Iterable, Iterator
-from contextlib import contextmanager
+from collections.abc import Iterable
+from typing import TYPE_CHECKING
 
 from rich.console import Console
 from rich.table import Table
 from rich.text import Text
 
 from slicetime.interfaces.diagram import order_diagram
+from slicetime.interfaces.progress import (  # noqa: F401 (re-exported)
+    _periodic_lines,
+    progress_reporter,
+)
 from slicetime.interfaces.safe_text import xml_safe
 from slicetime.model import Finding, Severity
 from slicetime.pipelines.audit import AuditResult, RunResult
-from slicetime.pipelines.correct import CorrectResult
-from slicetime.pipelines.fix import FixPlan
+
+if TYPE_CHECKING:
+    from slicetime.pipelines.correct import CorrectResult
+    from slicetime.pipelines.fix import FixPlan
 
 #: our own palette: severities read at a glance without shouting
 STYLE = {
@@ -43,53 +48,6 @@ def make_console(file: object = None) -> Console:
         no_color="NO_COLOR" in os.environ,
         emoji=False,
     )
-
-
-@contextmanager
-def progress_reporter(
-    what: str, *, every: float = 10.0
-) -> Iterator[Callable[[int, int, int], None] | None]:
-    """Progress on stderr: a bar (runs done, failures, time left) on a terminal; on
-    anything else (CI logs, batch jobs) one line every ``every`` seconds."""
-    if not sys.stderr.isatty():
-        yield _periodic_lines(what, every)
-        return
-    from rich.progress import (
-        BarColumn,
-        MofNCompleteColumn,
-        Progress,
-        TextColumn,
-        TimeRemainingColumn,
-    )
-
-    bar = Progress(f"[dim]{what}[/dim]", BarColumn(), MofNCompleteColumn(),
-                   TextColumn("{task.fields[failed]}"), TimeRemainingColumn(),
-                   console=Console(stderr=True), transient=True)
-    task = bar.add_task(what, total=None, failed="")
-    with bar:
-        def update(done: int, total: int, failed: int) -> None:
-            bar.update(task, completed=done, total=total,
-                       failed=f"[{STYLE[Severity.ERROR]}]{failed} failed" if failed else "")
-
-        yield update
-
-
-def _periodic_lines(what: str, every: float) -> Callable[[int, int, int], None]:
-    started = time.monotonic()
-    last = [started]
-
-    def update(done: int, total: int, failed: int) -> None:
-        now = time.monotonic()
-        if now - last[0] < every or done >= total:
-            return
-        last[0] = now
-        elapsed = now - started
-        left = elapsed / done * (total - done) if done else float("nan")
-        eta = f", about {left:.0f} s left" if done else ""
-        print(f"slicetime: {what}: {done}/{total} runs, {failed} failed{eta}",
-              file=sys.stderr, flush=True)
-
-    return update
 
 
 def supports_unicode(console: Console) -> bool:
@@ -183,61 +141,12 @@ def render_show(run: RunResult, console: Console) -> None:
         console.print(Text("\nno findings", style="dim"))
 
 
-def render_audit(result: AuditResult, console: Console, *, show_notes: bool = True) -> None:
-    """A table of runs with their scheme and counts, then the findings per run."""
-    table = Table(title=None, show_edge=False, pad_edge=False, header_style="bold")
-    table.add_column("run", overflow="fold")
-    table.add_column("scheme", overflow="fold")
-    table.add_column("TR", justify="right", no_wrap=True)
-    for sev in Severity:
-        table.add_column(BADGE[sev], justify="right", style=STYLE[sev], no_wrap=True)
-    for run in result.runs:
-        record = run.record
-        counts = {s: 0 for s in Severity}
-        for f in run.findings:
-            counts[f.severity] += 1
-        tr = record.schedule.repetition_time if record.schedule else None
-        table.add_row(
-            xml_safe(record.path),
-            record.scheme.label if record.scheme else "—",
-            f"{tr:g}" if tr else "—",
-            *(str(counts[s]) if counts[s] else "" for s in Severity),
-        )
-    console.print(table)
-    for run in result.runs:
-        shown = [f for f in run.findings if show_notes or f.severity != Severity.NOTE]
-        if shown:
-            console.print(Text(f"\n{xml_safe(run.record.path)}", style="bold"))
-            for line in finding_lines(shown):
-                console.print(line)
-    if result.dataset_findings:
-        console.print(Text("\ndataset", style="bold"))
-        for line in finding_lines(result.dataset_findings):
-            console.print(line)
-    policy_line = policy_summary(result)
-    if policy_line:
-        console.print(Text(f"\n{xml_safe(policy_line)}", style="dim"))
-    counts = result.counts()
-    summary = Text(f"\n{len(result.runs)} run{'s' if len(result.runs) != 1 else ''} audited: ")
-    for i, sev in enumerate(Severity):
-        if i:
-            summary.append(", ")
-        summary.append(f"{counts[sev.value]} {sev.value}{'s' if counts[sev.value] != 1 else ''}",
-                       style=STYLE[sev] if counts[sev.value] else None)
-    console.print(summary)
+def render_audit(result: AuditResult, console: Console, *, show_notes: bool = True,
+                 show_all: bool = False) -> None:
+    """The text report of a finished audit (see ``report_stream.write_text``)."""
+    from slicetime.interfaces.report_stream import MemorySource, write_text
 
-
-def policy_summary(result: AuditResult) -> str | None:
-    """One line: the policy file(s) used, the findings they ignored and the runs their
-    protocols judged instead of the dataset majority; None without a policy."""
-    files = sorted(set(result.policies.values()))
-    if not files:
-        return None
-    ignored = result.ignored_count()
-    judged = result.judged_by_policy
-    return (f"policy {', '.join(files)}: {ignored} finding{'s' if ignored != 1 else ''} "
-            f"ignored, {judged} run{'s' if judged != 1 else ''} judged by its protocols "
-            "instead of the dataset majority")
+    write_text(MemorySource(result, ""), console.file, show_notes=show_notes, show_all=show_all)
 
 
 #: how each correction outcome is shown

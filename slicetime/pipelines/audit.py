@@ -5,21 +5,23 @@ from __future__ import annotations
 import dataclasses
 import functools
 import os
-from collections.abc import Iterable, Mapping, Sequence
+from collections import Counter
+from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import Any
 
-from slicetime.model import Finding, RunRecord, Severity
+from slicetime.model import Finding, HeaderInfo, RunRecord, Scheme, Severity, SliceSchedule
 from slicetime.model_source import SourceEvidence
 from slicetime.pipelines.errors import NoRunsError
-from slicetime.pipelines.executor import Executor, Progress, map_chunks
+from slicetime.pipelines.executor import Executor, Interrupted, Progress, map_chunks
 from slicetime.readers.dataset import find_root, iter_runs
 from slicetime.readers.errors import ReadError
 from slicetime.readers.inheritance import SidecarIndex, SidecarStore, ValueSharer
 from slicetime.readers.policy import POLICY_FILENAME, Policy, find_policy, load_policy
 from slicetime.readers.record import build_record, relative_display
 from slicetime.readers.source import SourceIndex, SourceOptions, find_source
-from slicetime.rules import RULES, check_dataset, check_run, fold_consequences
+from slicetime.rules import RULES, check_dataset, check_run, fold_consequences, folds_into
 from slicetime.rules.policy import (
     IgnoredFinding,
     apply_overrides_and_ignores,
@@ -207,6 +209,355 @@ def check_paths_hold_runs(paths: Sequence[Path], **include: bool) -> None:
     _check_every_path_has_runs(paths, list(iter_runs(paths, **include)))
 
 
+class RunFacts:
+    """The small part of a run record that the dataset rules and the report
+    summaries need, kept for every run while a streamed audit writes the rest.
+
+    It answers the attributes of :class:`RunRecord` that ``rules/dataset.py``
+    and :func:`rules.registry.to_finding` read; a dataset rule that needs
+    another attribute must add it here (``tests/test_report_stream.py`` runs
+    the dataset rules on facts and on full records and compares). Values that
+    many runs share (schedules, schemes, headers, source maps) are interned,
+    so 100,000 runs cost a few tens of MB.
+    """
+
+    __slots__ = ("abs_path", "axis_length", "counts", "datatype", "entities", "fold_roots",
+                 "header", "metadata_sources", "path", "root", "schedule", "scheme", "suffix",
+                 "timing_origin")
+
+    #: read by some run rules; a fact never has them
+    metadata: Mapping[str, Any] = {}
+    findings: tuple[Finding, ...] = ()
+    timing_problems: tuple[Any, ...] = ()
+    sidecar_chain: tuple[str, ...] = ()
+    overridden: Mapping[str, Any] = {}
+
+    def __init__(self, record: RunRecord, counts: tuple[int, int, int], shared: _Interner,
+                 findings: Sequence[Finding] = ()) -> None:
+        self.path = record.path
+        self.abs_path = record.abs_path
+        self.root = shared.text(record.root)
+        self.entities = shared.mapping(record.entities)
+        self.suffix = shared.text(record.suffix)
+        self.datatype = shared.text(record.datatype) if record.datatype else record.datatype
+        self.header = shared.header(record.header)
+        self.metadata_sources = shared.mapping(
+            {k: v for k, v in record.metadata_sources.items() if k in _FACT_SOURCES})
+        self.schedule = shared.schedule(record.schedule)
+        self.scheme = shared.scheme(record.scheme, self.schedule)
+        self.axis_length = record.axis_length
+        self.timing_origin = record.timing_origin
+        self.counts = counts  # (errors, warnings, notes) of the run's own findings
+        #: (code, field) of the run's own findings that fold others into them, in order
+        self.fold_roots: tuple[tuple[str, str | None], ...] = tuple(
+            (f.code, f.field) for f in findings if f.code in RULES and RULES[f.code].subsumes)
+
+    def worst(self) -> str:
+        """The worst severity among the run's findings, or ``none``."""
+        e, w, n = self.counts
+        return "error" if e else "warning" if w else "note" if n else "none"
+
+
+#: metadata sources a dataset finding may name as its file
+_FACT_SOURCES = frozenset({"SliceTiming", "RepetitionTime", "VolumeTiming", "DelayTime",
+                           "AcquisitionDuration", "SliceEncodingDirection",
+                           "MultibandAccelerationFactor", "EchoTime", "TaskName"})
+
+
+class _Interner:
+    """One shared instance per distinct value, so equal facts cost memory once."""
+
+    def __init__(self) -> None:
+        self._values: dict[Any, Any] = {}
+
+    def _one(self, key: Any, make: Callable[[], Any]) -> Any:
+        found = self._values.get(key)
+        if found is None:
+            found = self._values[key] = make()
+        return found
+
+    def text(self, value: str) -> str:
+        return self._one(("s", value), lambda: value)  # type: ignore[no-any-return]
+
+    def mapping(self, value: Mapping[str, Any]) -> Mapping[str, Any]:
+        items = tuple(value.items())
+        return self._one(("m", items), lambda: dict(items))  # type: ignore[no-any-return]
+
+    def header(self, value: HeaderInfo | None) -> HeaderInfo | None:
+        if value is None:
+            return None
+        slim = dataclasses.replace(value, file_size=0)
+        return self._one(("h", slim), lambda: slim)  # type: ignore[no-any-return]
+
+    def schedule(self, value: SliceSchedule | None) -> SliceSchedule | None:
+        if value is None:
+            return None
+        key = ("t", value.times, value.axis, value.direction, value.repetition_time,
+               value.volume_times, value.acquisition_duration, value.delay_time)
+        return self._one(  # type: ignore[no-any-return]
+            key, lambda: dataclasses.replace(value, sources={}))
+
+    def scheme(self, value: Scheme | None, schedule: SliceSchedule | None) -> Scheme | None:
+        if value is None:
+            return None
+        key = ("c", id(schedule), value.label, value.groups, value.multiband_factor,
+               value.regular)
+        return self._one(key, lambda: value)  # type: ignore[no-any-return]
+
+
+def _severity_counts(findings: Iterable[Finding]) -> tuple[int, int, int]:
+    e = w = n = 0
+    for f in findings:
+        if f.severity is Severity.ERROR:
+            e += 1
+        elif f.severity is Severity.WARNING:
+            w += 1
+        else:
+            n += 1
+    return e, w, n
+
+
+@dataclass
+class AuditTotals:
+    """What a streamed audit knows at the end: everything but the run objects.
+
+    ``facts[i]`` describes run ``i`` (in report order); ``extras[i]`` holds the
+    findings the dataset rules add to run ``i`` (after the policy), already
+    counted in ``facts[i].counts`` and in ``counts``; ``folds[i]`` those that
+    follow from one of the run's own root causes (root number among
+    ``facts[i].fold_roots``, finding): writers list them under that root's
+    ``evidence["folded"]``, not as findings."""
+
+    roots: list[str]
+    names: dict[str, str] = field(default_factory=dict)  # root -> dataset name
+    policies: dict[str, str] = field(default_factory=dict)
+    facts: list[RunFacts] = field(default_factory=list)
+    extras: dict[int, tuple[Finding, ...]] = field(default_factory=dict)
+    folds: dict[int, tuple[tuple[int, Finding], ...]] = field(default_factory=dict)
+    dataset_findings: list[Finding] = field(default_factory=list)
+    counts: dict[str, int] = field(default_factory=lambda: {s.value: 0 for s in Severity})
+    ignored: int = 0
+    judged_by_policy: int = 0  # runs judged by a policy protocol instead of the majority
+
+    @property
+    def runs(self) -> int:
+        return len(self.facts)
+
+    def exit_code(self, fail_on: str) -> int:
+        """0 when nothing reaches ``fail_on`` (error|warning|never), else 1."""
+        if fail_on == "never":
+            return 0
+        level = Severity.parse(fail_on).rank
+        return 1 if any(self.counts[s.value] for s in Severity if s.rank >= level) else 0
+
+
+def dataset_name(root: str) -> str:
+    """How reports name a dataset root: the ``Name`` of its
+    ``dataset_description.json`` when it is a non-empty string, else the root's
+    folder name (never ``.``)."""
+    import json
+
+    from slicetime.readers.errors import open_regular, read_bounded
+
+    path = os.path.join(root, "dataset_description.json")
+    try:
+        # a regular file only, read with a bound: a FIFO or device never blocks a report
+        fh, st = open_regular(path, path)
+        with fh:
+            data = json.loads(read_bounded(fh, st.st_size, 1 << 20))
+        name = data.get("Name") if isinstance(data, dict) else None
+        if isinstance(name, str) and name.strip():
+            return " ".join(name.split())
+    except (OSError, ValueError, RecursionError, ReadError):
+        pass
+    return os.path.basename(os.path.abspath(root).rstrip(os.sep)) or os.sep
+
+
+def dataset_names(roots: Iterable[str]) -> dict[str, str]:
+    """Each root's :func:`dataset_name`; equal names get the root's path beside them."""
+    names = {root: dataset_name(root) for root in roots}
+    seen = Counter(names.values())
+    return {root: name if seen[name] == 1 else f"{name} ({root})" for root, name in names.items()}
+
+
+#: runs handed to the executor at once by a streamed audit: bounds the results held
+STREAM_BATCH = 4096
+
+
+def audit_stream(
+    paths: Sequence[Path],
+    on_run: Callable[[RunResult], None],
+    *,
+    include_derivatives: bool = False,
+    include_sourcedata: bool = False,
+    include_hidden: bool = False,
+    progress: Progress | None = None,
+    policy_file: Path | None = None,
+    executor: Executor | None = None,
+    verify: bool = False,
+    source: SourceOptions | None = None,
+    require_runs: bool = True,
+    batch: int = STREAM_BATCH,
+    on_start: Callable[[AuditTotals], None] | None = None,
+) -> AuditTotals:
+    """The audit of :func:`audit_paths`, streamed: ``on_run`` gets every run's result
+    in report order as soon as its batch is done (without the findings of the
+    dataset rules, which need every run: they come back in ``extras``, and those
+    folded into a root cause of the run in ``folds``), and only :class:`RunFacts`
+    are kept. ``on_start`` sees the totals before the first run (roots, names and
+    policies are set). Interrupted carries one entry per run (None where not
+    finished)."""
+    targets, roots, policies, walk_problems = _targets(
+        paths, policy_file, include_derivatives, include_sourcedata, include_hidden,
+        require_runs)
+    totals = AuditTotals(roots=roots, names=dataset_names(roots))
+    totals.policies = {str(r): p.file for r, p in policies.items() if p is not None}
+    if on_start is not None:
+        on_start(totals)
+    job = functools.partial(audit_chunk, policies=policies, verify=verify, source=source,
+                            store=SidecarStore())
+    shared = _Interner()
+    total = len(targets)
+    done_before = failed_before = 0
+    counts = totals.counts
+    for start in range(0, total, max(1, batch)):
+        part = targets[start:start + batch]
+
+        def step(done: int, _total: int, failed: int, base: int = done_before,
+                 base_failed: int = failed_before) -> None:
+            if progress is not None:
+                progress(base + done, total, base_failed + failed)
+
+        try:
+            results = map_chunks(job, part, lost=_lost_target, executor=executor,
+                                 progress=step, failed_of=_not_processed)
+        except Interrupted as stop:
+            raise Interrupted([True] * start + stop.results + [None] * (total - start - len(part))
+                              ) from None
+        for result in results:
+            own = _severity_counts(result.findings)
+            counts["error"] += own[0]
+            counts["warning"] += own[1]
+            counts["note"] += own[2]
+            totals.ignored += len(result.ignored)
+            failed_before += _not_processed(result)
+            totals.facts.append(RunFacts(result.record, own, shared, result.findings))
+            on_run(result)
+        done_before += len(part)
+        del results
+    totals.dataset_findings.extend(walk_problems)
+    phase = dataset_phase(totals.facts, policies)
+    totals.judged_by_policy = phase.judged
+    for index, facts in enumerate(totals.facts):
+        found = phase.extras.get(facts.abs_path)
+        if found is None:
+            continue
+        kept, ignored = found
+        totals.ignored += len(ignored)
+        kept, folds = _fold_extras(facts.fold_roots, kept)
+        if folds:
+            totals.folds[index] = folds
+        if kept:
+            totals.extras[index] = kept
+            more = _severity_counts(kept)
+            facts.counts = tuple(a + b for a, b in zip(facts.counts, more, strict=True))
+            for key, value in zip(("error", "warning", "note"), more, strict=True):
+                counts[key] += value
+    totals.dataset_findings.extend(phase.overall)
+    totals.ignored += len(phase.overall_ignored)
+    for finding in totals.dataset_findings:
+        counts[finding.severity.value] += 1
+    return totals
+
+
+def _fold_extras(
+    roots: Sequence[tuple[str, str | None]], extras: Sequence[Finding]
+) -> tuple[tuple[Finding, ...], tuple[tuple[int, Finding], ...]]:
+    """Split a run's dataset findings into those kept and those that follow from one
+    of the run's own root causes (``roots``: code and field of each own finding whose
+    rule folds others, in report order): (kept, ((root number, folded finding), ...))."""
+    if not roots:
+        return tuple(extras), ()
+    kept: list[Finding] = []
+    folds: list[tuple[int, Finding]] = []
+    for finding in extras:
+        owner = next((n for n, (code, field_) in enumerate(roots)
+                      if folds_into(code, field_, finding)), None)
+        if owner is None:
+            kept.append(finding)
+        else:
+            folds.append((owner, finding))
+    return tuple(kept), tuple(folds)
+
+
+@dataclass
+class DatasetPhase:
+    """What the dataset rules add, with each root's policy applied."""
+
+    #: per run ``abs_path``: the findings kept and those the policy ignored
+    extras: dict[str, tuple[tuple[Finding, ...], tuple[IgnoredFinding, ...]]]
+    overall: list[Finding]  # about the whole dataset
+    overall_ignored: list[IgnoredFinding]
+    judged: int  # runs judged by a policy protocol instead of the majority
+
+
+def dataset_phase(
+    records: Sequence[RunRecord] | Sequence[RunFacts], policies: Mapping[Path, Policy | None],
+) -> DatasetPhase:
+    """The dataset rules over every run, with each root's policy applied. A run whose
+    policy protocol states a value is judged by the protocol, not by the majority
+    (:func:`slicetime.rules.policy.dataset_codes_judged`)."""
+    exempt: dict[str, set[str]] = {}
+    judged = 0
+    for record in records:
+        policy = policies.get(Path(record.root))
+        if policy is None:
+            continue
+        codes = dataset_codes_judged(policy, record)  # type: ignore[arg-type]
+        for code in codes:
+            exempt.setdefault(code, set()).add(record.abs_path)
+        judged += bool(codes)
+    per_run, overall = check_dataset(records, exempt)  # type: ignore[arg-type]
+    by_path = {r.abs_path: r for r in records}
+    extras: dict[str, tuple[tuple[Finding, ...], tuple[IgnoredFinding, ...]]] = {}
+    for abs_path, found in per_run.items():
+        record = by_path.get(abs_path)
+        policy = policies.get(Path(record.root)) if record is not None else None
+        if policy is not None and found and record is not None:
+            outcome = apply_overrides_and_ignores(policy, record.path, found)
+            extras[abs_path] = (tuple(outcome.kept), tuple(outcome.ignored))
+        else:
+            extras[abs_path] = (tuple(found), ())
+    only = {p.file: p for p in policies.values() if p is not None}
+    if len(only) == 1 and overall:
+        outcome = apply_overrides_and_ignores(next(iter(only.values())), None, overall)
+        return DatasetPhase(extras, list(outcome.kept), list(outcome.ignored), judged)
+    return DatasetPhase(extras, list(overall), [], judged)
+
+
+def _targets(
+    paths: Sequence[Path], policy_file: Path | None, include_derivatives: bool,
+    include_sourcedata: bool, include_hidden: bool, require_runs: bool = True,
+) -> tuple[list[tuple[Path, Path]], list[str], dict[Path, Policy | None], list[Finding]]:
+    """The runs to audit, the roots, each root's policy, and the walk's problems;
+    :class:`NoRunsError` when a given path holds no run and ``require_runs``."""
+    walk_problems: list[Finding] = []
+    targets: list[tuple[Path, Path]] = list(
+        iter_runs(
+            paths,
+            include_derivatives=include_derivatives,
+            include_sourcedata=include_sourcedata,
+            include_hidden=include_hidden,
+            on_error=walk_problems.append,
+        )
+    )
+    if require_runs:
+        _check_every_path_has_runs(paths, targets)
+    roots = sorted({str(root) for root, _ in targets}) or [str(find_root(p)) for p in paths]
+    policies = _policies(sorted({root for root, _ in targets}), policy_file, walk_problems)
+    return targets, roots, policies, walk_problems
+
+
 def audit_paths(
     paths: Sequence[Path],
     *,
@@ -231,21 +582,10 @@ def audit_paths(
     (default: when that folder exists; see :mod:`slicetime.readers.source`). Findings
     that follow from a root cause are folded into it
     (:func:`slicetime.rules.fold_consequences`)."""
-    walk_problems: list[Finding] = []
-    targets: list[tuple[Path, Path]] = list(
-        iter_runs(
-            paths,
-            include_derivatives=include_derivatives,
-            include_sourcedata=include_sourcedata,
-            include_hidden=include_hidden,
-            on_error=walk_problems.append,
-        )
-    )
-    if require_runs:
-        _check_every_path_has_runs(paths, targets)
-    roots = sorted({str(root) for root, _ in targets}) or [str(find_root(p)) for p in paths]
+    targets, roots, policies, walk_problems = _targets(
+        paths, policy_file, include_derivatives, include_sourcedata, include_hidden,
+        require_runs)
     result = AuditResult(roots=roots)
-    policies = _policies(sorted({root for root, _ in targets}), policy_file, walk_problems)
     result.policies = {str(r): p.file for r, p in policies.items() if p is not None}
     job = functools.partial(audit_chunk, policies=policies, verify=verify, source=source,
                             store=SidecarStore())
@@ -265,44 +605,31 @@ def audit_paths(
         failed_of=arrived,
     )
     result.dataset_findings.extend(walk_problems)
-    exempt: dict[str, set[str]] = {}
+    phase = dataset_phase([r.record for r in result.runs], policies)
+    result.judged_by_policy = phase.judged
     for run in result.runs:
-        policy = policies.get(Path(run.record.root))
-        if policy is None:
-            continue
-        codes = dataset_codes_judged(policy, run.record)
-        for code in codes:
-            exempt.setdefault(code, set()).add(run.record.abs_path)
-        result.judged_by_policy += bool(codes)
-    per_run, overall = check_dataset([r.record for r in result.runs], exempt)
-    for run in result.runs:
-        extra = per_run.get(run.record.abs_path, [])
-        policy = policies.get(Path(run.record.root))
-        if policy is not None and extra:
-            outcome = apply_overrides_and_ignores(policy, run.record.path, extra)
-            run.findings.extend(outcome.kept)
-            run.ignored.extend(outcome.ignored)
-        else:
-            run.findings.extend(extra)
-        if extra:
-            run.findings[:] = fold_consequences(run.findings)
-    only = {p.file: p for p in policies.values() if p is not None}
-    if len(only) == 1 and overall:
-        outcome = apply_overrides_and_ignores(next(iter(only.values())), None, overall)
-        result.dataset_findings.extend(outcome.kept)
-        result.ignored.extend(outcome.ignored)
-    else:
-        result.dataset_findings.extend(overall)
+        kept, ignored = phase.extras.get(run.record.abs_path, ((), ()))
+        run.ignored.extend(ignored)
+        if kept:
+            # the run's own findings and the dataset's, folded together (one root cause
+            # reported once): the streamed report patches its lines the same way
+            run.findings[:] = fold_consequences([*run.findings, *kept])
+    result.dataset_findings.extend(phase.overall)
+    result.ignored.extend(phase.overall_ignored)
     return result
 
 
 __all__ = [
     "AuditResult",
+    "AuditTotals",
     "NoRunsError",
     "ReadError",
+    "RunFacts",
     "RunResult",
     "audit_one",
     "audit_paths",
+    "audit_stream",
     "check_paths_hold_runs",
+    "dataset_name",
     "failed_run",
 ]

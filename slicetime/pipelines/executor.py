@@ -192,12 +192,19 @@ class ProcessExecutor(Executor):
         # than they are taken would otherwise pile up in this process
         window = max(2, 2 * self.jobs)
         queue = iter(todo)
-        try:
-            waiting: set[Future[list[R]]] = set()
-            for i in itertools.islice(queue, window):
+        waiting: set[Future[list[R]]] = set()
+
+        def submit(count: int) -> None:
+            for i in itertools.islice(queue, count):
                 future = pool.submit(_flagged, job, tracker.chunks[i], i)
                 futures[future] = i
                 waiting.add(future)
+
+        try:
+            try:
+                submit(window)
+            except BrokenProcessPool:  # a worker died before the window was filled
+                return True
             while waiting:
                 finished, waiting = wait(waiting, return_when=FIRST_COMPLETED)
                 for future in finished:
@@ -208,10 +215,10 @@ class ProcessExecutor(Executor):
                     # drop the finished future: it would hold its results until the end
                     tracker.finish(futures.pop(future), results)
                     del results
-                    for i in itertools.islice(queue, 1):
-                        following = pool.submit(_flagged, job, tracker.chunks[i], i)
-                        futures[following] = i
-                        waiting.add(following)
+                    try:
+                        submit(1)
+                    except BrokenProcessPool:  # another worker died meanwhile
+                        return True
             return False
         except BaseException:
             _stop_workers(pool)

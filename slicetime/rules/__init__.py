@@ -24,7 +24,9 @@ from slicetime.rules.registry import (
     check_run,
     explain,
     fold_consequences,
+    folded_entry,
+    folds_into,
 )
 
 __all__ = ["RULES", "DatasetHit", "Hit", "Rule", "check_dataset", "check_run", "explain",
-           "fold_consequences"]
+           "fold_consequences", "folded_entry", "folds_into"]

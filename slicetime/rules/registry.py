@@ -178,30 +178,37 @@ def check_dataset(
     return per_run, overall
 
 
+def folds_into(root_code: str, root_field: str | None, other: Finding) -> bool:
+    """Whether ``other`` follows from a finding ``root_code`` on ``root_field`` of the
+    same run (the root's rule declares ``subsumes``)."""
+    rule = RULES.get(root_code)
+    return rule is not None and other.code in rule.subsumes and other.field == root_field
+
+
+def folded_entry(finding: Finding) -> dict[str, str]:
+    """How a folded finding is listed under its root's ``evidence["folded"]``."""
+    return {"code": finding.code, "severity": finding.severity.value, "message": finding.message}
+
+
 def fold_consequences(findings: Sequence[Finding]) -> list[Finding]:
     """Fold findings that follow from a root cause into it.
 
     A finding whose rule declares ``subsumes`` absorbs every other finding of the
     same run with one of those codes on the same field: they leave the list and are
-    listed under ``evidence["folded"]`` of the root (code, severity, message), so one
+    listed under ``evidence["folded"]`` of the root (:func:`folded_entry`), so one
     cause is reported once. Order is kept; a folded finding never absorbs others.
     """
-    roots = [
-        (i, RULES[f.code].subsumes) for i, f in enumerate(findings)
-        if f.code in RULES and RULES[f.code].subsumes
-    ]
+    roots = [i for i, f in enumerate(findings) if f.code in RULES and RULES[f.code].subsumes]
     if not roots:
         return list(findings)
     folded_into: dict[int, list[Finding]] = {}
     taken: set[int] = set()
-    for root_index, codes in roots:
+    for root_index in roots:
         if root_index in taken:
             continue
         root = findings[root_index]
         for i, other in enumerate(findings):
-            if i == root_index or i in taken or other.code not in codes:
-                continue
-            if other.field == root.field:
+            if i != root_index and i not in taken and folds_into(root.code, root.field, other):
                 taken.add(i)
                 folded_into.setdefault(root_index, []).append(other)
     result: list[Finding] = []
@@ -212,12 +219,7 @@ def fold_consequences(findings: Sequence[Finding]) -> list[Finding]:
         if absorbed:
             before = list(finding.evidence.get("folded", []))
             finding = dataclasses.replace(finding, evidence={
-                **finding.evidence,
-                "folded": before + [
-                    {"code": f.code, "severity": f.severity.value, "message": f.message}
-                    for f in absorbed
-                ],
-            })
+                **finding.evidence, "folded": before + [folded_entry(f) for f in absorbed]})
         result.append(finding)
     return result
 

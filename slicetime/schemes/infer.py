@@ -38,8 +38,6 @@ from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Any
 
-import numpy as np
-
 from slicetime.model import Scheme
 
 __all__ = [
@@ -100,13 +98,32 @@ def grouping_threshold(times: Sequence[float], tolerance: float = DEFAULT_TOLERA
     jitter inside multiband groups can add small differences, and
     over-estimating the gap is harmless (the tolerance caps the threshold).
     """
-    values = np.sort(np.asarray(times, dtype=float))
-    diffs = np.diff(values)
-    big = diffs[diffs > MIN_SEPARATION]
-    if big.size == 0:
+    values = sorted(float(t) for t in times)
+    big = sorted(d for d in (b - a for a, b in itertools.pairwise(values)) if d > MIN_SEPARATION)
+    if not big:
         return float(tolerance)
-    typical = float(np.quantile(big, 0.75))
+    typical = _quantile(big, 0.75)
     return float(min(tolerance, SPLIT_FRACTION * typical))
+
+
+def _quantile(ordered: Sequence[float], q: float) -> float:
+    """``numpy.quantile(values, q)`` (its default, linear method) of sorted values,
+    without importing numpy: position q·(n−1), interpolated as numpy does."""
+    position = q * (len(ordered) - 1)
+    low = math.floor(position)
+    high = min(low + 1, len(ordered) - 1)
+    a, b = ordered[low], ordered[high]
+    t = position - low
+    return b - (b - a) * (1 - t) if t >= 0.5 else a + (b - a) * t
+
+
+def _median(values: Sequence[float]) -> float:
+    """``numpy.median`` without numpy."""
+    ordered = sorted(values)
+    middle = len(ordered) // 2
+    if len(ordered) % 2:
+        return ordered[middle]
+    return (ordered[middle - 1] + ordered[middle]) / 2.0
 
 
 def group_slices(
@@ -118,19 +135,19 @@ def group_slices(
     indices, ``group_times[k]`` is the mean time of group ``k``. Neighbouring
     sorted times closer than :func:`grouping_threshold` join one group.
     """
-    values = np.asarray(times, dtype=float)
+    values = [float(t) for t in times]
     threshold = grouping_threshold(values, tolerance)
-    order = np.argsort(values, kind="stable")
+    order = sorted(range(len(values)), key=values.__getitem__)  # stable, as numpy's
     groups: list[list[int]] = []
     previous: float | None = None
     for index in order:
-        t = float(values[index])
+        t = values[index]
         if previous is None or t - previous > threshold:
             groups.append([])
         groups[-1].append(int(index))
         previous = t
     sorted_groups = tuple(tuple(sorted(g)) for g in groups)
-    plain = values.tolist()
+    plain = values
     group_times = tuple(math.fsum(plain[i] for i in g) / len(g) for g in sorted_groups)
     return sorted_groups, group_times
 
@@ -255,14 +272,17 @@ def _irregular(
     )
 
 
-def _check_values(times: Sequence[float]) -> np.ndarray:
-    values = np.asarray(times, dtype=float)
-    if values.ndim != 1:
-        raise ValueError("slice times must be a flat sequence of numbers")
-    if values.size == 0:
+def _check_values(times: Sequence[float]) -> list[float]:
+    """The times as floats (as ``numpy.asarray(times, dtype=float)`` would read them:
+    None is NaN); ValueError for anything else than a flat, non-empty, finite list."""
+    try:
+        values = [math.nan if v is None else float(v) for v in times]
+    except TypeError:
+        raise ValueError("slice times must be a flat sequence of numbers") from None
+    if not values:
         raise ValueError("no slice times given")
-    if not np.all(np.isfinite(values)):
-        bad = [i for i, v in enumerate(values) if not math.isfinite(float(v))]
+    bad = [i for i, v in enumerate(values) if not math.isfinite(v)]
+    if bad:
         raise ValueError(f"slice times must be finite numbers (slice {bad[0]} is {values[bad[0]]})")
     return values
 
@@ -294,10 +314,10 @@ def _infer_scheme(times: Sequence[float], *, tolerance: float = DEFAULT_TOLERANC
     if not (tolerance > 0 and math.isfinite(tolerance)):
         raise ValueError(f"tolerance must be a positive number of seconds (got {tolerance})")
     values = _check_values(times)
-    n = int(values.size)
+    n = len(values)
     groups, group_times = group_slices(values, tolerance)
-    gaps = np.diff(np.asarray(group_times, dtype=float))
-    spacing = float(np.median(gaps)) if gaps.size else None
+    gaps = [b - a for a, b in itertools.pairwise(group_times)]
+    spacing = _median(gaps) if gaps else None
 
     # 2. multiband factor: the common group size
     sizes = [len(g) for g in groups]
@@ -358,11 +378,10 @@ def _infer_scheme(times: Sequence[float], *, tolerance: float = DEFAULT_TOLERANC
 
     # 5. timing regularity
     assert spacing is not None
-    deviation = np.abs(gaps - spacing)
     slack = tolerance + 1e-9
-    if np.any(deviation > slack):
-        too_long = [int(k) for k in np.nonzero(gaps - spacing > slack)[0]]
-        too_short = [int(k) for k in np.nonzero(spacing - gaps > slack)[0]]
+    if any(abs(g - spacing) > slack for g in gaps):
+        too_long = [k for k, g in enumerate(gaps) if g - spacing > slack]
+        too_short = [k for k, g in enumerate(gaps) if spacing - g > slack]
         details: dict[str, Any] = {
             "gaps": [_round(g) for g in gaps],
             "median_gap": _round(spacing),

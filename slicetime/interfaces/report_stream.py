@@ -1,0 +1,512 @@
+"""Reports written as a stream: the run objects are encoded once, as each run
+finishes, and the reports are written from them without holding every run.
+
+A streamed audit (``pipelines.audit.audit_stream``) hands each run's result to
+:meth:`RunSpool.add`, which encodes the contract's run object as one line of
+compact JSON into a temporary file. When every run is done, the dataset rules
+have added findings to a few runs (``AuditTotals.extras``); a
+:class:`ReportSource` reads the lines back in order, splices those findings
+in, and the writers here (JSON, JSON Lines, TSV, text, JUnit) and in
+``report_html`` render from it. Only the small per-run facts stay in memory.
+
+Escaping: JSON escapes control characters itself; the only strings it cannot
+encode as UTF-8 are lone surrogates (file-name bytes that are not UTF-8).
+They are replaced in the encoded line, once, by the visible escape that
+``safe_text.sanitise`` gives (``\\xff``), so no value is walked. Text and
+TSV pass each string they print through ``safe_text.xml_safe``.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import re
+import tempfile
+from collections import Counter, defaultdict
+from collections.abc import Callable, Iterable, Iterator, Sequence
+from typing import IO, Any
+
+from slicetime import __version__
+from slicetime.interfaces.safe_text import _escape, xml_safe
+from slicetime.model import Finding, Severity
+from slicetime.pipelines.audit import AuditResult, AuditTotals, RunFacts, RunResult, dataset_names
+from slicetime.rules.dataset import protocol_key
+
+_ENCODER = json.JSONEncoder(ensure_ascii=False, allow_nan=False, separators=(",", ":"))
+_SURROGATE = re.compile("[\ud800-\udfff]")
+
+
+def _visible(match: re.Match[str]) -> str:
+    # inside an encoded JSON string: a backslash (escaped) and the visible escape
+    return "\\" + _escape(match)
+
+
+def encode(value: Any) -> str:
+    """Compact JSON, one line, encodable as UTF-8 (see the module docstring)."""
+    text = _ENCODER.encode(value)
+    return _SURROGATE.sub(_visible, text) if _SURROGATE.search(text) else text
+
+
+def run_line(run: RunResult) -> str:
+    """The contract's run object of ``run`` as one line of JSON."""
+    from slicetime.interfaces.report_json import run_object
+
+    return encode(run_object(run))
+
+
+def _finding_from(obj: dict[str, Any]) -> Finding:
+    return Finding(obj["code"], Severity(obj["severity"]), obj["message"], obj.get("file"),
+                   obj.get("field"), obj.get("evidence") or {}, obj.get("hint"))
+
+
+# --------------------------------------------------------------------------- sources
+
+
+def _completed(obj: dict[str, Any], more: Sequence[Finding] | None,
+               folded: Sequence[tuple[int, Finding]] | None) -> dict[str, Any]:
+    """A streamed run object with what the dataset rules found: findings added, and
+    those that follow from one of the run's root causes listed under that root's
+    ``evidence["folded"]`` (as :func:`slicetime.rules.fold_consequences` does in memory)."""
+    from slicetime.rules import RULES, folded_entry
+
+    findings = obj["findings"]
+    if folded:
+        roots = [d for d in findings if d["code"] in RULES and RULES[d["code"]].subsumes]
+        for number, finding in folded:
+            evidence = roots[number].setdefault("evidence", {})
+            evidence.setdefault("folded", []).append(folded_entry(finding))
+    if more:
+        findings.extend(f.to_json() for f in more)
+    return obj
+
+
+class ReportSource:
+    """The runs of one audit for the writers: facts in memory, objects on demand."""
+
+    def __init__(self, totals: AuditTotals, root_given: str) -> None:
+        self.totals = totals
+        self.root_given = root_given
+
+    def _raw(self) -> Iterator[str]:
+        raise NotImplementedError
+
+    def lines(self) -> Iterator[str]:
+        """Every run's final object as one line of JSON (no newline), in order."""
+        extras, folds = self.totals.extras, self.totals.folds
+        for index, line in enumerate(self._raw()):
+            more, folded = extras.get(index), folds.get(index)
+            if more or folded:
+                line = encode(_completed(json.loads(line), more, folded))
+            yield line
+
+    def objects(self, wanted: Callable[[int], bool] | None = None
+                ) -> Iterator[tuple[int, dict[str, Any]]]:
+        """(index, run object) for every run, or only those ``wanted`` accepts."""
+        extras, folds = self.totals.extras, self.totals.folds
+        for index, line in enumerate(self._raw()):
+            if wanted is not None and not wanted(index):
+                continue
+            obj = json.loads(line)
+            more, folded = extras.get(index), folds.get(index)
+            if more or folded:
+                obj = json.loads(encode(_completed(obj, more, folded)))
+            yield index, obj
+
+    def close(self) -> None:
+        """Release the spool, if any."""
+
+
+class RunSpool(ReportSource):
+    """Run lines in a temporary file (deleted on close), written as runs finish."""
+
+    def __init__(self, root_given: str) -> None:
+        super().__init__(AuditTotals(roots=[]), root_given)
+        self._file: IO[str] = tempfile.TemporaryFile(
+            "w+", encoding="utf-8", newline="\n", buffering=1 << 20)
+
+    def add(self, run: RunResult) -> None:
+        self._file.write(run_line(run))
+        self._file.write("\n")
+
+    def _raw(self) -> Iterator[str]:
+        self._file.flush()
+        self._file.seek(0)
+        for line in self._file:
+            yield line[:-1]
+        self._file.seek(0, os.SEEK_END)
+
+    def close(self) -> None:
+        self._file.close()
+
+
+class MemorySource(ReportSource):
+    """A finished :class:`AuditResult` (every finding already in its runs)."""
+
+    def __init__(self, result: AuditResult, root_given: str) -> None:
+        from slicetime.pipelines.audit import _Interner, _severity_counts
+
+        shared = _Interner()
+        totals = AuditTotals(roots=list(result.roots), names=dataset_names(result.roots),
+                             policies=dict(result.policies),
+                             dataset_findings=list(result.dataset_findings),
+                             counts=result.counts(), ignored=result.ignored_count(),
+                             judged_by_policy=result.judged_by_policy)
+        totals.facts = [RunFacts(r.record, _severity_counts(r.findings), shared)
+                        for r in result.runs]
+        missing = {f.root for f in totals.facts} - set(totals.names)
+        if missing:
+            totals.names.update(dataset_names(missing))
+        super().__init__(totals, root_given)
+        self._runs = result.runs
+
+    def _raw(self) -> Iterator[str]:
+        for run in self._runs:
+            yield run_line(run)
+
+
+# --------------------------------------------------------------------------- naming
+
+
+def report_root(totals: AuditTotals) -> str:
+    """The report's ``root``: the dataset name(s), never ``.``."""
+    roots = list(dict.fromkeys([*totals.roots, *(f.root for f in totals.facts)]))
+    return ", ".join(totals.names.get(r, r) for r in roots)
+
+
+def several_roots(totals: AuditTotals) -> bool:
+    return len({f.root for f in totals.facts}) > 1
+
+
+def display_path(totals: AuditTotals, facts: RunFacts, path: str, *, several: bool) -> str:
+    """A run's path as reports show it: with the dataset name in front when the
+    runs come from more than one root (two ``sub-01`` must not look the same)."""
+    return f"[{totals.names.get(facts.root, facts.root)}] {path}" if several else path
+
+
+# --------------------------------------------------------------------------- JSON
+
+
+def _head(totals: AuditTotals) -> dict[str, Any]:
+    return {"tool": {"name": "slicetime", "version": __version__},
+            "root": report_root(totals), "roots": totals.roots}
+
+
+def _summary(totals: AuditTotals) -> dict[str, Any]:
+    return {"runs": totals.runs, **totals.counts, "ignored": totals.ignored}
+
+
+def write_json(source: ReportSource, out: IO[str]) -> None:
+    """The JSON report (contract: ``data/report.schema.json``; same keys and order
+    as ``report_json.audit_object``), one run object per line."""
+    totals = source.totals
+    head = _head(totals)
+    out.write("{\n")
+    for key, value in head.items():
+        out.write(f"  {encode(key)}: {encode(value)},\n")
+    out.write('  "runs": [')
+    first = True
+    for line in source.lines():
+        out.write("\n    " if first else ",\n    ")
+        out.write(line)
+        first = False
+    out.write("\n  ],\n" if not first else "],\n")
+    findings = [f.to_json() for f in totals.dataset_findings]
+    out.write('  "dataset_findings": [')
+    out.write(",".join(f"\n    {encode(f)}" for f in findings))
+    out.write("\n  ],\n" if findings else "],\n")
+    out.write(f'  "policies": {encode(totals.policies)},\n')
+    out.write(f'  "summary": {encode(_summary(totals))}\n')
+    out.write("}\n")
+
+
+def write_jsonl(source: ReportSource, out: IO[str]) -> None:
+    """JSON Lines (schema: ``data/report-lines.schema.json``): every line one object
+    with one key: ``report`` (first: tool, root, roots, policies), ``run`` (one per
+    run, the contract's run object, in report order), ``dataset_finding`` (one per
+    finding about the dataset as a whole), ``summary`` (last: the line that says
+    the report is complete)."""
+    totals = source.totals
+    out.write(encode({"report": {**_head(totals), "policies": totals.policies}}) + "\n")
+    for line in source.lines():
+        out.write('{"run":')
+        out.write(line)
+        out.write("}\n")
+    for finding in totals.dataset_findings:
+        out.write(encode({"dataset_finding": finding.to_json()}) + "\n")
+    out.write(encode({"summary": _summary(totals)}) + "\n")
+
+
+# --------------------------------------------------------------------------- TSV
+
+TSV_COLUMNS = ("path", "dataset", "task", "scheme", "repetition_time", "slices",
+               "multiband_factor", "errors", "warnings", "notes", "codes")
+
+
+def _cell(value: object) -> str:
+    if value is None:
+        return ""
+    return xml_safe(value if isinstance(value, str) else f"{value:g}"
+                    if isinstance(value, float) else str(value))
+
+
+def write_tsv(source: ReportSource, out: IO[str]) -> None:
+    """One row per run (tab-separated, header row first). Tabs, line breaks and
+    control characters in values are written as visible escapes (``\\t``,
+    ``\\n``), so every row is one line with exactly the header's columns.
+    ``codes`` lists the distinct finding codes, sorted, separated by commas."""
+    totals = source.totals
+    out.write("\t".join(TSV_COLUMNS) + "\n")
+    for index, obj in source.objects():
+        facts = totals.facts[index]
+        scheme = obj.get("scheme") or {}
+        times = obj.get("slice_times")
+        slices = len(times) if times else facts.axis_length
+        codes = ",".join(sorted({f["code"] for f in obj["findings"]}))
+        row = (obj["path"], totals.names.get(facts.root, facts.root),
+               obj.get("entities", {}).get("task"), scheme.get("label"),
+               obj.get("repetition_time"), slices, scheme.get("multiband_factor"),
+               *facts.counts, codes)
+        out.write("\t".join(_cell(v) for v in row) + "\n")
+
+
+# --------------------------------------------------------------------------- text
+
+BADGE = {"error": "ERR", "warning": "WRN", "note": "NTE"}
+_COLOUR = {"error": "1;31", "warning": "33", "note": "34", "bold": "1", "dim": "2"}
+_RANK = {"error": 3, "warning": 2, "note": 1}
+
+
+class _Paint:
+    def __init__(self, out: IO[str]) -> None:
+        tty = bool(getattr(out, "isatty", lambda: False)())
+        self.on = tty and "NO_COLOR" not in os.environ
+
+    def __call__(self, text: str, style: str | None) -> str:
+        if not self.on or not style or not text:
+            return text
+        return f"\x1b[{_COLOUR[style]}m{text}\x1b[0m"
+
+
+def _plural(n: int, word: str) -> str:
+    return f"{n} {word}{'' if n == 1 else 's'}"
+
+
+def _group_label(key: tuple[str, ...], totals: AuditTotals, several: bool) -> str:
+    root, datatype, suffix = key[0], key[1], key[2]
+    parts = [p for p in key[3:] if not p.endswith("-")]
+    name = "_".join([*parts, suffix or "(no suffix)"])
+    if datatype:
+        name = f"{datatype}: {name}"
+    return f"[{totals.names.get(root, root)}] {name}" if several else name
+
+
+def _tr_text(values: Iterable[float | None]) -> str:
+    known = sorted({round(v, 3) for v in values if v})
+    if not known:
+        return "—"
+    shown = ", ".join(f"{v:g}" for v in known[:3]) + (", …" if len(known) > 3 else "")
+    return f"{shown} s"
+
+
+def _finding_text(f: dict[str, Any], paint: _Paint, indent: str = "  ") -> str:
+    sev = f["severity"]
+    where = xml_safe(f.get("file") or "")
+    if f.get("field"):
+        field = xml_safe(f["field"])
+        where = f"{where} › {field}" if where else field
+    text = f"{indent}{paint(BADGE[sev], sev)} {paint(xml_safe(f['code']), 'bold')}  " \
+           f"{xml_safe(f['message'], one_line=False)}"
+    if where:
+        text += "\n" + paint(f"{indent}    at {where}", "dim")
+    if f.get("hint"):
+        text += f"\n{indent}    → {xml_safe(f['hint'], one_line=False)}"
+    return text
+
+
+def write_text(source: ReportSource, out: IO[str], *, show_all: bool = False,
+               show_notes: bool = True) -> None:
+    """The text report: a summary per task and acquisition, then the runs that
+    have findings (every run with ``show_all``), the dataset findings and the
+    summary line. Counts are exact: notes hidden with ``show_notes=False`` are
+    still counted."""
+    totals = source.totals
+    paint = _Paint(out)
+    several = several_roots(totals)
+    groups: dict[tuple[str, ...], list[int]] = defaultdict(list)
+    for index, facts in enumerate(totals.facts):
+        groups[protocol_key(facts)].append(index)  # type: ignore[arg-type]
+    if groups:
+        rows = []
+        for key, members in sorted(groups.items()):
+            schemes = Counter(
+                totals.facts[i].scheme.label if totals.facts[i].scheme else "no usable timing"
+                for i in members)
+            scheme_text = "; ".join(
+                f"{xml_safe(label)} ×{n}" if len(schemes) > 1 else xml_safe(label)
+                for label, n in sorted(schemes.items(), key=lambda kv: (-kv[1], kv[0])))
+            trs = _tr_text(totals.facts[i].schedule.repetition_time  # type: ignore[union-attr]
+                           for i in members if totals.facts[i].schedule is not None)
+            sums = [sum(totals.facts[i].counts[k] for i in members) for k in range(3)]
+            rows.append((xml_safe(_group_label(key, totals, several)), str(len(members)), trs,
+                         *(str(s) for s in sums), scheme_text))
+        head = ("task and acquisition", "runs", "TR", "ERR", "WRN", "NTE", "schemes")
+        widths = [max(len(r[c]) for r in [head, *rows]) for c in range(6)]
+        right = {1, 3, 4, 5}
+
+        def fmt(row: tuple[str, ...], styles: tuple[str | None, ...] = ()) -> str:
+            cells = []
+            for c in range(6):
+                cell = row[c].rjust(widths[c]) if c in right else row[c].ljust(widths[c])
+                style = styles[c] if c < len(styles) else None
+                cells.append(paint(cell, style) if row[c] not in ("0", "") else cell)
+            return "  ".join(cells) + "  " + row[6]
+
+        out.write(paint(fmt(head), "bold") + "\n")
+        for row in rows:
+            out.write(fmt(row, (None, None, None, "error", "warning", "note")) + "\n")
+
+    def listed(index: int) -> bool:
+        if show_all:
+            return True
+        e, w, n = totals.facts[index].counts
+        return bool(e or w or (n and show_notes))
+
+    with_findings = sum(1 for f in totals.facts if any(f.counts))
+    if totals.facts:
+        if show_all:
+            title = f"\nevery run ({totals.runs})"
+        else:
+            title = (f"\nruns with findings ({with_findings} of {totals.runs}; "
+                     "--all lists every run)")
+        out.write(paint(title, "bold") + "\n")
+    for index, obj in source.objects(listed):
+        facts = totals.facts[index]
+        scheme = (obj.get("scheme") or {}).get("label") or "no usable timing"
+        tr = obj.get("repetition_time")
+        e, w, n = facts.counts
+        counts = ", ".join(_plural(c, s) for c, s in ((e, "error"), (w, "warning"), (n, "note"))
+                           if c) or "no findings"
+        name = display_path(totals, facts, xml_safe(obj["path"]), several=several)
+        out.write(f"{paint(name, 'bold')}  {xml_safe(scheme)}"
+                  f"{f'  TR {tr:g} s' if tr else ''}  ({counts})\n")
+        shown = [f for f in obj["findings"] if show_notes or f["severity"] != "note"]
+        shown.sort(key=lambda f: -_RANK[f["severity"]])
+        for f in shown:
+            out.write(_finding_text(f, paint) + "\n")
+    if totals.dataset_findings:
+        out.write(paint("\ndataset", "bold") + "\n")
+        for finding in sorted(totals.dataset_findings, key=lambda f: -f.severity.rank):
+            out.write(_finding_text(json.loads(encode(finding.to_json())), paint) + "\n")
+    policy_line = policy_summary(totals)
+    if policy_line:
+        out.write("\n" + paint(xml_safe(policy_line), "dim") + "\n")
+    out.write("\n" + summary_line(totals, paint) + "\n")
+
+
+def policy_summary(totals: AuditTotals) -> str | None:
+    """One line: the policy file(s) used, the findings they ignored and the runs their
+    protocols judged instead of the dataset majority; None without a policy."""
+    files = sorted(set(totals.policies.values()))
+    if not files:
+        return None
+    ignored, judged = totals.ignored, totals.judged_by_policy
+    return (f"policy {', '.join(files)}: {ignored} finding{'s' if ignored != 1 else ''} "
+            f"ignored, {judged} run{'s' if judged != 1 else ''} judged by its protocols "
+            "instead of the dataset majority")
+
+
+def summary_line(totals: AuditTotals, paint: Callable[[str, str | None], str] | None = None
+                 ) -> str:
+    """``N runs audited: E errors, W warnings, N notes`` (plus what the policy ignored)."""
+    paint = paint or (lambda text, _style: text)
+    parts = [paint(_plural(totals.counts[s.value], s.value), s.value if totals.counts[s.value]
+                   else None) for s in Severity]
+    line = f"{_plural(totals.runs, 'run')} audited: {', '.join(parts)}"
+    if totals.ignored:
+        line += f" ({_plural(totals.ignored, 'finding')} ignored by the lab policy)"
+    return line
+
+
+# --------------------------------------------------------------------------- JUnit
+
+
+def write_junit(source: ReportSource, out: IO[str], *, fail_on: str) -> None:
+    """The JUnit XML report (layout in ``report_junit``), written suite by suite."""
+    import xml.etree.ElementTree as ET
+
+    from slicetime.interfaces import report_junit as junit
+
+    level = junit._check_level(fail_on)
+    totals = source.totals
+    roots = list(dict.fromkeys([*totals.roots, *(f.root for f in totals.facts)]))
+    if not roots:
+        roots = [source.root_given]
+    several = len(roots) > 1
+
+    def failing(counts: tuple[int, int, int]) -> bool:
+        if level is None:
+            return False
+        return bool(counts[0] or (level <= 2 and counts[1]) or (level <= 1 and counts[2]))
+
+    dataset_fails = level is not None and any(
+        f.severity.rank >= level for f in totals.dataset_findings)
+    per_root: dict[str, list[int]] = defaultdict(list)
+    for index, facts in enumerate(totals.facts):
+        per_root[facts.root].append(index)
+    suites: list[tuple[str, str, str | None, list[int], bool]] = []
+    for root in roots:
+        members = per_root.get(root, [])
+        if several and not members:
+            continue
+        name = totals.names.get(root, root)
+        suites.append((f"{junit.SUITE_NAME}: {root}" if several else junit.SUITE_NAME,
+                       root, name, members, not several))
+    if several:
+        suites.append((f"{junit.SUITE_NAME}: all datasets", ", ".join(roots), None, [], True))
+    tests = sum(len(m) + d for _, _, _, m, d in suites)
+    failures = sum(sum(failing(totals.facts[i].counts) for i in m) + (d and dataset_fails)
+                   for _, _, _, m, d in suites)
+    common = {"path_given": source.root_given, "fail_on": fail_on,
+              "slicetime_version": __version__}
+    out.write('<?xml version="1.0" encoding="UTF-8"?>\n')
+    out.write(f'<testsuites name="slicetime" tests="{tests}" failures="{failures}" '
+              'errors="0" skipped="0">\n')
+    for suite_name, root, name, members, with_dataset in suites:
+        s_tests = len(members) + with_dataset
+        s_fail = sum(failing(totals.facts[i].counts) for i in members) + (
+            with_dataset and dataset_fails)
+        suite = ET.Element("testsuite", name=xml_safe(suite_name), tests=str(s_tests),
+                           failures=str(s_fail), errors="0", skipped="0")
+        text = ET.tostring(suite, encoding="unicode")
+        out.write("  " + text[: -len(" />")] + ">\n")
+        props = ET.Element("properties")
+        prop_values = {"root": root, **({"dataset": name} if name else {}), **common}
+        for key, value in prop_values.items():
+            ET.SubElement(props, "property", name=key, value=xml_safe(value))
+        _write_element(out, props, ET)
+        wanted = set(members)
+        for _index, obj in source.objects(wanted.__contains__) if members else ():
+            holder = ET.Element("x")
+            path = obj["path"]
+            folder = junit._folder(path)
+            classname = f"{name}/{folder}" if several and name else folder
+            junit._testcase(holder, classname, path, [_finding_from(f) for f in obj["findings"]],
+                            level)
+            _write_element(out, holder[0], ET)
+        if with_dataset:
+            holder = ET.Element("x")
+            junit._testcase(holder, ".", junit.DATASET_CASE, totals.dataset_findings, level)
+            _write_element(out, holder[0], ET)
+        out.write("  </testsuite>\n")
+    out.write("</testsuites>\n")
+
+
+def _write_element(out: IO[str], element: Any, ET: Any) -> None:
+    ET.indent(element, space="  ", level=2)
+    out.write("    " + ET.tostring(element, encoding="unicode").rstrip() + "\n")
+
+
+__all__ = [
+    "TSV_COLUMNS", "MemorySource", "ReportSource", "RunSpool", "encode", "report_root", "run_line",
+    "summary_line", "write_json", "write_jsonl", "write_junit", "write_text", "write_tsv",
+]
