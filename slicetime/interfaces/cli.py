@@ -486,12 +486,8 @@ def correct(
     from slicetime.interfaces.report_json import dumps
     from slicetime.interfaces.safe_text import xml_safe
     from slicetime.interfaces.terminal import make_console, progress_reporter, render_correct
-    from slicetime.pipelines.correct import (
-        CorrectInterrupted,
-        CorrectOptions,
-        correct_paths,
-        parse_size,
-    )
+    from slicetime.pipelines.correct import CorrectInterrupted, CorrectOptions, correct_paths
+    from slicetime.pipelines.memory import parse_size
 
     try:
         choice = ReferenceChoice.parse(reference)
