@@ -118,14 +118,17 @@ def _r(value: float) -> float:
 def _window(record: RunRecord) -> tuple[float | None, str]:
     schedule = record.schedule
     assert schedule is not None
-    window = schedule.acquisition_window
-    if window is None:
-        return None, ""
-    if schedule.delay_time and schedule.repetition_time is not None:
-        return window, "TR − DelayTime"
-    if schedule.acquisition_duration is not None:
-        return window, "acquisition time"
-    return window, "TR"
+    window, name = schedule.window()
+    return window, _WINDOW_NAMES.get(name, name)
+
+
+#: how the diagram names each kind of window (model.SliceSchedule.window)
+_WINDOW_NAMES = {
+    "RepetitionTime - DelayTime": "TR − DelayTime",
+    "FrameAcquisitionDuration": "acquisition time",
+    "RepetitionTime": "TR",
+    "the shortest VolumeTiming interval": "VolumeTiming spacing",
+}
 
 
 def placeholder_message(record: RunRecord) -> str:

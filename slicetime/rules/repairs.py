@@ -33,9 +33,9 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
-from slicetime.model import AXES, Finding, RunRecord, Severity
-from slicetime.readers.policy import ExpectedProtocol
-from slicetime.rules.dataset import TIME_TOLERANCE, protocol_key
+from slicetime.model import AXES, TIME_TOLERANCE, Finding, RunRecord, Severity
+from slicetime.policy.model import ExpectedProtocol
+from slicetime.rules.dataset import protocol_key
 from slicetime.rules.source import matched, source_multiband, source_times
 from slicetime.schemes.generate import Protocol, array_times, validate_protocol
 from slicetime.schemes.infer import infer_scheme

@@ -292,21 +292,6 @@ def resolve_schedule(
 MS_FACTOR_MIN = 50.0
 
 
-def timing_window(schedule: SliceSchedule) -> tuple[float | None, str]:
-    """The acquisition window every slice time must fall inside, and where it comes from."""
-    if schedule.delay_time is not None and schedule.repetition_time is not None:
-        return schedule.repetition_time - schedule.delay_time, "RepetitionTime - DelayTime"
-    if schedule.acquisition_duration is not None:
-        return schedule.acquisition_duration, "FrameAcquisitionDuration"
-    if schedule.repetition_time is not None:
-        return schedule.repetition_time, "RepetitionTime"
-    if schedule.volume_times and len(schedule.volume_times) > 1:
-        vt = schedule.volume_times
-        gaps = [vt[i + 1] - vt[i] for i in range(len(vt) - 1)]
-        return min(gaps), "the shortest VolumeTiming interval"
-    return None, ""
-
-
 def looks_like_milliseconds(times: Sequence[float], window: float | None) -> bool:
     """True when slice times were evidently written in milliseconds: the largest is
     many times the window (in seconds) yet fits inside it once divided by 1000."""
@@ -321,7 +306,7 @@ def seconds_factor(schedule: SliceSchedule | None, timing_origin: str | None) ->
     the values as written; inference and displays multiply by this factor)."""
     if schedule is None or timing_origin != "sidecar":
         return 1.0
-    window, _ = timing_window(schedule)
+    window, _ = schedule.window()
     return 0.001 if looks_like_milliseconds(schedule.times, window) else 1.0
 
 
