@@ -828,7 +828,7 @@ def _close_codes(code: str, known: list[str]) -> list[str]:
 @friendly
 def demo(out: Path) -> None:
     """Run the whole job on a small invented study (audit, verify, fix, correct)."""
-    from slicetime.pipelines.demo import run_demo
+    from slicetime.interfaces.demo_tour import run_demo
 
     sys.exit(run_demo(out))
 
