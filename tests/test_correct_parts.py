@@ -5,9 +5,12 @@ outputs names every run that would collide."""
 from __future__ import annotations
 
 import json
+import subprocess
+import sys
 from pathlib import Path
 from typing import Any
 
+import click
 import nibabel as nib
 import numpy as np
 import pytest
@@ -130,3 +133,33 @@ def test_clashing_outputs_are_named_together(tmp_path: Path) -> None:
         assert finding.code == "correct/output-clash"
         assert finding.evidence["output"] == "sub-01/func/sub-01_task-x_desc-timealigned_bold.json"
     assert output_path("../x_bold.nii.gz", "d") is None
+
+
+def test_the_method_choice_comes_from_the_engine_registry(
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    """Adding an engine is one entry in ENGINES (plus its test): --method follows."""
+    import dataclasses
+
+    from slicetime.engines import interpolate
+    from slicetime.interfaces.cli import RegistryChoice, _engine_names
+
+    extra = dataclasses.replace(interpolate.ENGINES["linear"], name="linear2")
+    monkeypatch.setitem(interpolate.ENGINES, "linear2", extra)
+    choice = RegistryChoice(_engine_names)
+    assert "linear2" in choice.choices
+    assert choice.convert("linear2", None, None) == "linear2"
+    with pytest.raises(click.BadParameter):
+        choice.convert("nope", None, None)
+
+
+def test_the_command_line_starts_without_the_engines() -> None:
+    """The lazy choice keeps numpy and the engines out of start-up (an audit never
+    needs them)."""
+    code = ("import sys; from slicetime.interfaces import cli; "
+            "cli.cli.get_command(None, 'correct'); "
+            "print(sorted(m for m in ('numpy', 'slicetime.engines.interpolate') "
+            "if m in sys.modules))")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                         check=True)
+    assert out.stdout.strip() == "[]"

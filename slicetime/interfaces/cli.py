@@ -12,7 +12,7 @@ import functools
 import json
 import os
 import sys
-from collections.abc import Callable, Iterator
+from collections.abc import Callable, Iterator, Sequence
 from pathlib import Path
 from typing import Any, TypeVar
 
@@ -25,6 +25,33 @@ F = TypeVar("F", bound=Callable[..., Any])
 EXIT_FINDINGS = 1
 EXIT_USAGE = 2
 EXIT_INTERNAL = 3
+
+
+class RegistryChoice(click.Choice):
+    """A choice read from a registry the first time click needs it (parsing the option,
+    help, completion), so that starting the command line imports no registry (the
+    engines import numpy). Adding an engine to ``ENGINES`` adds it to ``--method``."""
+
+    def __init__(self, load: Callable[[], Sequence[str]]) -> None:
+        self._load = load
+        self._names: tuple[str, ...] | None = None
+        super().__init__([])
+
+    @property  # type: ignore[override]  # click declares choices as a plain attribute
+    def choices(self) -> tuple[str, ...]:
+        if self._names is None:
+            self._names = tuple(self._load())
+        return self._names
+
+    @choices.setter
+    def choices(self, value: Sequence[str]) -> None:
+        pass  # click.Choice.__init__ stores the (empty) list given: the registry decides
+
+
+def _engine_names() -> Sequence[str]:
+    from slicetime.engines.interpolate import ENGINES
+
+    return list(ENGINES)
 
 
 class UserError(click.ClickException):
@@ -424,7 +451,7 @@ def verify(files: tuple[Path, ...], fmt: str) -> None:
 @click.option("--out", type=click.Path(path_type=Path, file_okay=False), required=True,
               help="Derivative dataset folder for the corrected runs (never inside an input "
               "dataset, except under its derivatives/).")
-@click.option("--method", type=click.Choice(["fourier", "sinc", "cubic", "linear"]),
+@click.option("--method", type=RegistryChoice(_engine_names),
               default="fourier", show_default=True, help="Temporal interpolation method.")
 @click.option("--reference", "reference", default="middle", show_default=True,
               help="Time every slice is aligned to: seconds from the start of the volume "

@@ -50,7 +50,9 @@ RESOLUTION_DECIMALS = 4
 #: figure size in inches, and the user-space size of the SVG at 72 dpi
 FIGSIZE = (7.2, 3.0)
 
-_RC: dict[str, Any] = {
+#: typed Any: matplotlib's stubs type rc keys as one Literal union, which a dict
+#: literal's inferred type never matches
+_RC: Any = {
     "svg.hashsalt": "slicetime",  # deterministic ids
     "svg.fonttype": "none",  # real text: small, selectable, printed crisply
     "font.family": "sans-serif",

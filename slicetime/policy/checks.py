@@ -58,9 +58,9 @@ from __future__ import annotations
 
 from collections.abc import Iterable, Iterator
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, cast
 
-from slicetime.model import AXES, Finding, RunRecord, Severity, Source
+from slicetime.model import AXES, Axis, Finding, RunRecord, Severity, Source
 from slicetime.policy.model import ExpectedProtocol, IgnoreEntry, Policy, SchemeFamily
 from slicetime.rules.registry import RULES, Hit, reader_code, run_rule, to_finding
 from slicetime.schemes.labels import scheme_family
@@ -411,7 +411,7 @@ def _check_slices(policy: Policy, protocol: ExpectedProtocol, record: RunRecord)
         if parsed is not None:
             axis = parsed[0]
         elif protocol.slice_encoding_direction is not None:
-            axis = protocol.slice_encoding_direction[0]  # type: ignore[assignment]
+            axis = cast(Axis, protocol.slice_encoding_direction[0])  # validated on loading
         else:
             axis = "k"
     index = AXES.index(axis)

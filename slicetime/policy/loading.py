@@ -252,7 +252,7 @@ def _document_order(data: Any, parts: KeyPath) -> tuple[int, ...]:
         if isinstance(node, dict):
             keys = list(node)
             out.append(keys.index(part) if part in node else len(keys))
-            node = node.get(part)  # type: ignore[call-overload]
+            node = node[part] if part in node else None
         elif isinstance(node, list) and isinstance(part, int) and part < len(node):
             out.append(part)
             node = node[part]

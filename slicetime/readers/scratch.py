@@ -83,7 +83,7 @@ class DiskBuffer:
         return (z * n_volumes + v) * plane * 4
 
     def _write(self, data: np.ndarray, offset: int) -> None:
-        view = memoryview(np.ascontiguousarray(data).reshape(-1).view(np.uint8))
+        view = np.ascontiguousarray(data).reshape(-1).view(np.uint8).data
         done = 0
         while done < len(view):
             done += os.pwrite(self._fd, view[done:], offset + done)
@@ -122,7 +122,7 @@ class DiskBuffer:
 
 
 def _read_into(fd: int, target: np.ndarray, offset: int) -> None:
-    view = memoryview(target.reshape(-1).view(np.uint8))
+    view = target.reshape(-1).view(np.uint8).data
     got = 0
     while got < len(view):
         n = os.preadv(fd, [view[got:]], offset + got)

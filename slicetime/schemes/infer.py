@@ -80,7 +80,9 @@ the tolerance, whichever is smaller)."""
 # --------------------------------------------------------------------------- grouping
 
 
-def grouping_threshold(times: Sequence[float], tolerance: float = DEFAULT_TOLERANCE) -> float:
+def grouping_threshold(
+    times: Sequence[float] | np.ndarray, tolerance: float = DEFAULT_TOLERANCE
+) -> float:
     """The largest difference between two slice times that still counts as "equal".
 
     Equal to ``min(tolerance, SPLIT_FRACTION * g)``, where ``g`` is the typical
@@ -107,7 +109,7 @@ def grouping_threshold(times: Sequence[float], tolerance: float = DEFAULT_TOLERA
 
 
 def group_slices(
-    times: Sequence[float], tolerance: float = DEFAULT_TOLERANCE
+    times: Sequence[float] | np.ndarray, tolerance: float = DEFAULT_TOLERANCE
 ) -> tuple[tuple[tuple[int, ...], ...], tuple[float, ...]]:
     """Cluster slices with equal times into groups ordered by time.
 

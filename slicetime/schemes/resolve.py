@@ -13,7 +13,7 @@ import dataclasses
 import math
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, TypeGuard, cast
 
 from slicetime.model import (
     AXES,
@@ -41,7 +41,7 @@ class ScheduleResolution:
     axis_length: int | None = None
 
 
-def is_number(value: Any) -> bool:
+def is_number(value: Any) -> TypeGuard[int | float]:
     """A JSON number (bool is not a number in JSON terms)."""
     return isinstance(value, int | float) and not isinstance(value, bool)
 
@@ -69,7 +69,7 @@ def positive_number(value: Any) -> float | None:
 def parse_direction(value: Any) -> tuple[Axis, Direction] | None:
     """``SliceEncodingDirection`` → (axis, direction), or None when invalid."""
     if isinstance(value, str) and value in SLICE_ENCODING_VALUES:
-        axis: Axis = value[0]  # type: ignore[assignment]
+        axis = cast(Axis, value[0])  # one of i, j, k: value is a known direction
         return axis, ("-" if value.endswith("-") else "+")
     return None
 
