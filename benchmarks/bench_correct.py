@@ -199,7 +199,7 @@ patch("VolumeWriter.__init__", "write: open, start encoder")
 patch("VolumeWriter.write", "write: compress + SHA-256 (feed encoder)")
 patch("VolumeWriter.close", "write: flush encoder + fsync")
 patch("hash_inputs", "provenance: hash sidecars")
-patch("slicetime.pipelines.provenance:write_description", "provenance: dataset_description")
+patch("write_description", "provenance: dataset_description")
 patch("write_provenance", "provenance: provenance file")
 cap = int(sys.argv[4]) if sys.argv[4] else None
 options = mod.CorrectOptions(out=Path(sys.argv[2]), method=sys.argv[3], max_memory=cap,
