@@ -22,12 +22,13 @@ $(STAMP): $(RUNTIME_STAMP)
 demo: $(RUNTIME_STAMP)
 	$(VENV)/bin/slicetime demo --out demo-output
 
-test: $(STAMP)
-	$(PY) -m ruff check slicetime tests benchmarks fixtures validation
+test: lint
 	$(PY) -m pytest -q
 
+# ruff's rules (no auto-formatter; line length 100) and mypy (settings in pyproject.toml)
 lint: $(STAMP)
 	$(PY) -m ruff check slicetime tests benchmarks fixtures validation
+	$(PY) -m mypy
 
 clean:
 	rm -rf $(VENV) demo-output .pytest_cache .hypothesis build *.egg-info

@@ -132,11 +132,11 @@ OVERHEAD = "import slicetime.pipelines.correct, scipy.fft, numpy, nibabel"
 # prints them as JSON. For each phase it also records by how much the process's
 # peak RSS (a high-water mark) rose while inside it, and the highest value it
 # left behind: that shows which phase sets the peak. Functions are named by
-# their dotted path in slicetime.pipelines.correct; a path that no longer
+# their dotted path in slicetime.pipelines.correct (or "module:path"); a path that no longer
 # resolves is listed under "missing" instead of failing. argv: dataset, out,
 # method, cap in bytes or "".
 PHASES = """
-import json, resource, sys, time
+import importlib, json, resource, sys, time
 from pathlib import Path
 start = time.perf_counter()
 import slicetime.pipelines.correct as mod
@@ -167,7 +167,9 @@ def timed(name, fn):
     return wrapper
 
 def patch(path, name):
-    owner = mod
+    # "attr.path" on slicetime.pipelines.correct, or "module:attr.path"
+    module, _, path = path.rpartition(":")
+    owner = importlib.import_module(module) if module else mod
     *parents, attr = path.split(".")
     for part in parents:
         owner = getattr(owner, part, None)
@@ -183,22 +185,22 @@ def patch(path, name):
 patch("audit_paths", "audit (walk, headers, rules)")
 patch("VolumeReader.__enter__", "read: open, start decoder, header bytes")
 patch("VolumeReader.read_into", "read: decompress + SHA-256 (wait on decoder)")
-patch("_store_scaled", "read: stored type -> float32 slice-major")
-for cls, kind in (("_MemoryBuffer", "memory"), ("_DiskBuffer", "scratch file")):
+patch("slicetime.readers.scratch:store_scaled", "read: stored type -> float32 slice-major")
+for cls, kind in (("MemoryBuffer", "memory"), ("DiskBuffer", "scratch file")):
     patch(f"{cls}.__init__", f"buffer ({kind}): allocate")
     patch(f"{cls}.put_volumes", f"buffer ({kind}): put volumes")
     patch(f"{cls}.get_slice", f"engine: buffer ({kind}) get slice")
     patch(f"{cls}.put_slice", f"engine: buffer ({kind}) put slice")
     patch(f"{cls}.get_volumes", f"write: buffer ({kind}) get volumes")
 patch("_engine_pass", "engine (whole pass)")
-patch("resample", "engine: resample calls")
-patch("_Cast.__call__", "write: slice-major -> volume order, output type")
+patch("slicetime.engines.align:resample", "engine: resample calls")
+patch("OutputCast.__call__", "write: slice-major -> volume order, output type")
 patch("VolumeWriter.__init__", "write: open, start encoder")
 patch("VolumeWriter.write", "write: compress + SHA-256 (feed encoder)")
 patch("VolumeWriter.close", "write: flush encoder + fsync")
-patch("_hash_inputs", "provenance: hash sidecars")
-patch("_write_description", "provenance: dataset_description")
-patch("_write_provenance", "provenance: provenance file")
+patch("hash_inputs", "provenance: hash sidecars")
+patch("write_description", "provenance: dataset_description")
+patch("write_provenance", "provenance: provenance file")
 cap = int(sys.argv[4]) if sys.argv[4] else None
 options = mod.CorrectOptions(out=Path(sys.argv[2]), method=sys.argv[3], max_memory=cap,
                              threads=available_cpus())
@@ -510,7 +512,7 @@ def _say(prefix: str, m: Measurement) -> None:
 
 
 def expected_outputs(spec: Spec, out: Path) -> list[Path]:
-    from slicetime.pipelines.correct import output_name
+    from slicetime.pipelines.outputs import output_name
 
     return [out / rel.parent / output_name(rel.name, DESC) for rel in spec.images]
 
@@ -692,7 +694,7 @@ class Context:
 
 def standard_part(ctx: Context, spec: Spec, dataset: Path) -> None:
     args, work = ctx.args, ctx.work
-    from slicetime.pipelines.correct import parse_size
+    from slicetime.pipelines.memory import parse_size
 
     cap = parse_size(args.cap)
     f32 = spec.float32_bytes
@@ -754,7 +756,7 @@ def standard_part(ctx: Context, spec: Spec, dataset: Path) -> None:
 
 def multiband_part(ctx: Context, spec: Spec, dataset: Path) -> None:
     args, work = ctx.args, ctx.work
-    from slicetime.pipelines.correct import parse_size
+    from slicetime.pipelines.memory import parse_size
 
     cap = parse_size(args.multiband_cap)
     f32 = spec.float32_bytes
@@ -823,7 +825,7 @@ def batch_part(ctx: Context, spec: Spec, dataset: Path) -> None:
 
 def profile_part(ctx: Context, dataset: Path) -> None:
     args, work = ctx.args, ctx.work
-    from slicetime.pipelines.correct import parse_size
+    from slicetime.pipelines.memory import parse_size
 
     cap = parse_size(args.cap)
     profile: dict[str, Any] = {}
@@ -907,7 +909,7 @@ def main() -> int:
                         help="also time the phases of one standard run and cProfile another")
     parser.add_argument("--top", type=int, default=25, help="cProfile rows shown")
     args = parser.parse_args()
-    from slicetime.pipelines.correct import parse_size
+    from slicetime.pipelines.memory import parse_size
 
     for option in ("cap", "multiband_cap"):
         try:

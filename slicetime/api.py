@@ -19,13 +19,13 @@ from __future__ import annotations
 
 import math
 from collections.abc import Sequence
-from typing import TYPE_CHECKING, Any, Literal
+from typing import TYPE_CHECKING, Any, Literal, cast
 
 if TYPE_CHECKING:  # the heavy imports happen only when a function is called
     import numpy as np
 
     from slicetime.engines.plan import ReferenceChoice
-    from slicetime.model import Scheme, SliceSchedule
+    from slicetime.model import Axis, Direction, Scheme, SliceSchedule
 
 _DIRECTIONS = ("i", "j", "k", "i-", "j-", "k-")
 
@@ -53,10 +53,10 @@ def _schedule(
                                             and repetition_time > 0):
         raise ValueError(f"repetition_time must be a positive number of seconds, "
                          f"not {repetition_time!r}")
-    direction = "-" if slice_encoding_direction.endswith("-") else "+"
+    direction: Direction = "-" if slice_encoding_direction.endswith("-") else "+"
     return SliceSchedule(
         times=tuple(times if direction == "+" else times[::-1]),
-        axis=slice_encoding_direction[0],  # type: ignore[arg-type]  # checked above
+        axis=cast("Axis", slice_encoding_direction[0]),  # checked above
         direction=direction,
         repetition_time=None if repetition_time is None else float(repetition_time),
         volume_times=None if volume_timing is None else tuple(float(t) for t in volume_timing),

@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import dataclasses
 import enum
+import itertools
 from collections.abc import Mapping
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any, Literal
@@ -18,6 +19,16 @@ if TYPE_CHECKING:
 Axis = Literal["i", "j", "k"]
 Direction = Literal["+", "-"]
 AXES: tuple[Axis, ...] = ("i", "j", "k")
+
+TIME_TOLERANCE = 0.003
+"""Seconds: the one tolerance for slice and repetition times (scheme inference,
+the timing and dataset rules, the lab policy's default). How far a gap between
+consecutive excitation groups may deviate from the median gap before the timing
+counts as uneven, the upper bound of the threshold below which two slice times
+count as equal, and how far two runs' times may differ and still agree.
+Converters round slice times to 1 ms or 2.5 ms (common practice, no source),
+which moves a gap by at most one rounding step (2.5 ms), so 3 ms accepts rounded
+times while a genuinely uneven gap of a few milliseconds or more is reported."""
 
 
 class Severity(str, enum.Enum):
@@ -97,12 +108,38 @@ class SliceSchedule:
 
     @property
     def acquisition_window(self) -> float | None:
-        """Time within which all slices must be acquired (TA, else TR)."""
+        """Time within which all slices must be acquired (:meth:`window`)."""
+        return self.window()[0]
+
+    def window(self) -> tuple[float | None, str]:
+        """The acquisition window every slice time must fall inside, and what it is.
+
+        The one rule (every user calls this): the acquisition time TA when given
+        (``AcquisitionDuration``: ``RepetitionTime - DelayTime`` as the resolver
+        derives it, or ``FrameAcquisitionDuration``), else ``RepetitionTime -
+        DelayTime``, else ``RepetitionTime``, else the shortest ``VolumeTiming``
+        interval (a slice cannot be acquired after the next volume began). The
+        name is one of ``RepetitionTime - DelayTime``, ``FrameAcquisitionDuration``,
+        ``RepetitionTime``, ``the shortest VolumeTiming interval``; ``(None, "")``
+        when nothing bounds the window.
+        """
+        tr, delay = self.repetition_time, self.delay_time
         if self.acquisition_duration is not None:
-            return self.acquisition_duration
-        if self.repetition_time is not None:
-            return self.repetition_time - (self.delay_time or 0.0)
-        return None
+            source = self.sources.get("AcquisitionDuration")
+            derived = (source.kind == "derived" if source is not None else
+                       tr is not None and delay is not None
+                       and abs(tr - delay - self.acquisition_duration) < 1e-9)
+            name = "RepetitionTime - DelayTime" if derived else "FrameAcquisitionDuration"
+            return self.acquisition_duration, name
+        if tr is not None:
+            if delay:
+                return tr - delay, "RepetitionTime - DelayTime"
+            return tr, "RepetitionTime"
+        vt = self.volume_times
+        if vt and len(vt) > 1:
+            gap = min(b - a for a, b in itertools.pairwise(vt))
+            return gap, "the shortest VolumeTiming interval"
+        return None, ""
 
     def sidecar_order(self) -> tuple[float, ...]:
         """The times as a ``SliceTiming`` list for this schedule's direction."""

@@ -28,6 +28,8 @@ from slicetime.interfaces.cli import cli
 from slicetime.pipelines import correct as correct_module
 from slicetime.pipelines.correct import CorrectInterrupted, CorrectOptions, correct_paths
 from slicetime.pipelines.executor import ProcessExecutor
+from slicetime.pipelines.provenance import json_safe
+from slicetime.readers.entities import sidecar_name
 from tests.helpers_bids import patch_header, tree_hashes, write_description
 from tests.test_correct import REL, build_run, interleaved, output_of
 
@@ -61,7 +63,7 @@ def provenance(out: Path) -> dict[str, Any]:
 
 
 def sidecar_of(image: Path) -> Path:
-    return image.with_name(correct_module.sidecar_name(image.name))
+    return image.with_name(sidecar_name(image.name))
 
 
 def assert_outputs_complete(out: Path) -> None:
@@ -73,14 +75,14 @@ def assert_outputs_complete(out: Path) -> None:
     images = [f for f in files if f.endswith((".nii", ".nii.gz"))]
     sidecars = [f for f in files if f.endswith(".json") and "/" in f]
     for image in images:
-        assert correct_module.sidecar_name(image) in sidecars, image
+        assert sidecar_name(image) in sidecars, image
     for sidecar in sidecars:
         stem = sidecar[: -len(".json")]
         assert stem + ".nii.gz" in images or stem + ".nii" in images, sidecar
     if images:
         runs = provenance(out)["Runs"]
         # names that are not UTF-8 are written as \xNN escapes, as the reports write them
-        shown = {correct_module.json_safe(image): image for image in images}
+        shown = {json_safe(image): image for image in images}
         assert sorted(runs) == sorted(shown)
         for key, entry in runs.items():
             assert entry["OutputPath"] == key
@@ -265,14 +267,14 @@ def test_a_sidecar_that_cannot_be_written_takes_its_image_with_it(
 ) -> None:
     build_run(ds, REL, interleaved(8))
     build_run(ds, REL.replace("sub-01", "sub-02"), interleaved(8))
-    real = correct_module._write_json_atomic
+    real = correct_module.write_json_atomic
 
     def refuse_first_sidecar(path: Path, content: Any) -> None:
         if "sub-01_task" in path.name:
             raise OSError(28, "No space left on device")
         real(path, content)
 
-    monkeypatch.setattr(correct_module, "_write_json_atomic", refuse_first_sidecar)
+    monkeypatch.setattr(correct_module, "write_json_atomic", refuse_first_sidecar)
     out = tmp_path / "out"
     code, report = correct_json(ds, "--out", out, "--jobs", "1")
     assert code == 1

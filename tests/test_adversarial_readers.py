@@ -35,10 +35,11 @@ import numpy as np
 import pytest
 
 from slicetime.model import HeaderInfo
+from slicetime.policy.loading import load_policy
+from slicetime.policy.model import POLICY_FILENAME
 from slicetime.readers import ReadError, load_sidecar, read_header
 from slicetime.readers import errors as errors_module
 from slicetime.readers.errors import open_regular, read_bounded
-from slicetime.readers.policy import POLICY_FILENAME, load_policy
 from slicetime.readers.volumes import VolumeReader, file_sha256
 from slicetime.rules import RULES
 from tests.helpers_bids import symlink, write_description, write_json, write_run

@@ -17,6 +17,7 @@ from click.testing import CliRunner
 
 from slicetime.interfaces.cli import cli
 from slicetime.pipelines import correct as correct_module
+from slicetime.pipelines.memory import plan_budget
 from slicetime.schemes.generate import Protocol, slice_timing
 from tests.helpers_bids import write_description, write_run, write_sidecar
 
@@ -316,8 +317,7 @@ def test_memory_cap_gives_the_same_output(dataset: Path, tmp_path: Path) -> None
     plain, capped = tmp_path / "plain", tmp_path / "capped"
     assert run_cli("correct", dataset, "--out", plain).exit_code == 0
     # the float32 array is 7.5 MiB; with the helper buffers 10 MiB forces the scratch file
-    budget = correct_module.plan_budget(16, 120, 32 * 32, 4, 10 << 20, REL, threads=2,
-                                        compressed=True)
+    budget = plan_budget(16, 120, 32 * 32, 4, 10 << 20, REL, threads=2, compressed=True)
     assert budget.on_disk
     result = run_cli("correct", dataset, "--out", capped, "--max-memory", "10M")
     assert result.exit_code == 0, result.output

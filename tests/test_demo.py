@@ -8,8 +8,8 @@ from pathlib import Path
 import jsonschema
 import pytest
 
+from slicetime.interfaces.demo_tour import run_demo
 from slicetime.interfaces.report_json import report_schema
-from slicetime.pipelines.demo import run_demo
 
 
 def test_the_demo_runs_the_whole_job(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:

@@ -3,7 +3,7 @@
 Expected outcomes follow from the TOML specification (read through tomllib),
 JSON Schema (through jsonschema), the BIDS entity definitions (through
 bidsschematools) and the policy semantics documented in
-``slicetime/readers/policy.py`` and ``slicetime/rules/policy.py``.
+the ``slicetime/policy/`` package.
 """
 
 from __future__ import annotations
@@ -19,25 +19,24 @@ from hypothesis import assume, given, settings
 from hypothesis import strategies as st
 
 from slicetime.model import Finding, HeaderInfo, RunRecord, Severity
-from slicetime.readers.errors import ReadError
-from slicetime.readers.policy import (
-    INDEX_ENTITIES,
-    MATCH_KEYS,
-    POLICY_FILENAME,
-    find_policy,
-    load_policy,
-    parse_policy,
-    path_matches,
-    path_pattern_problem,
-    policy_schema,
-)
-from slicetime.rules import RULES, check_run, explain
-from slicetime.rules.policy import (
+from slicetime.policy.checks import (
     apply_overrides_and_ignores,
     apply_policy,
     check_protocol,
     select_protocol,
 )
+from slicetime.policy.loading import (
+    INDEX_ENTITIES,
+    MATCH_KEYS,
+    find_policy,
+    load_policy,
+    parse_policy,
+    policy_schema,
+)
+from slicetime.policy.model import POLICY_FILENAME
+from slicetime.policy.patterns import path_matches, path_pattern_problem
+from slicetime.readers.errors import ReadError
+from slicetime.rules import RULES, check_run, explain
 from slicetime.schemes.generate import Protocol, slice_timing
 from tests.factories import header_info, record
 

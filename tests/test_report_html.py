@@ -635,8 +635,8 @@ def test_browser_screenshot_is_not_blank(
 
 
 def test_schedule_without_window_draws(tmp_path: Path) -> None:
-    # VolumeTiming without a TR: no window, still a picture (not a crash)
-    schedule = SliceSchedule(times=(0.0, 0.5, 0.25, 0.75), volume_times=(0.0, 3.0, 6.0))
+    # neither a TR nor VolumeTiming: no window, still a picture (not a crash)
+    schedule = SliceSchedule(times=(0.0, 0.5, 0.25, 0.75))
     rec = make_record({"SliceTiming": [0.0, 0.5, 0.25, 0.75]})
     from dataclasses import replace
 
@@ -644,3 +644,10 @@ def test_schedule_without_window_draws(tmp_path: Path) -> None:
     assert spec.kind == "schedule" and spec.window is None
     body, _ = render_svg(spec, "w-")
     assert "window unknown" in body
+    # VolumeTiming without a TR: the window is the volume spacing (the one rule,
+    # SliceSchedule.window), drawn like any other
+    timed = replace(schedule, volume_times=(0.0, 3.0, 6.0))
+    spec = diagram_spec(replace(rec, schedule=timed))
+    assert spec.window == 3.0
+    body, _ = render_svg(spec, "w-")
+    assert "window unknown" not in body

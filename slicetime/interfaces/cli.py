@@ -12,7 +12,7 @@ import functools
 import json
 import os
 import sys
-from collections.abc import Callable, Iterator
+from collections.abc import Callable, Iterator, Sequence
 from pathlib import Path
 from typing import Any, TypeVar
 
@@ -25,6 +25,33 @@ F = TypeVar("F", bound=Callable[..., Any])
 EXIT_FINDINGS = 1
 EXIT_USAGE = 2
 EXIT_INTERNAL = 3
+
+
+class RegistryChoice(click.Choice):
+    """A choice read from a registry the first time click needs it (parsing the option,
+    help, completion), so that starting the command line imports no registry (the
+    engines import numpy). Adding an engine to ``ENGINES`` adds it to ``--method``."""
+
+    def __init__(self, load: Callable[[], Sequence[str]]) -> None:
+        self._load = load
+        self._names: tuple[str, ...] | None = None
+        super().__init__([])
+
+    @property  # type: ignore[override]  # click declares choices as a plain attribute
+    def choices(self) -> tuple[str, ...]:
+        if self._names is None:
+            self._names = tuple(self._load())
+        return self._names
+
+    @choices.setter
+    def choices(self, value: Sequence[str]) -> None:
+        pass  # click.Choice.__init__ stores the (empty) list given: the registry decides
+
+
+def _engine_names() -> Sequence[str]:
+    from slicetime.engines.interpolate import ENGINES
+
+    return list(ENGINES)
 
 
 class UserError(click.ClickException):
@@ -472,7 +499,7 @@ def verify(files: tuple[Path, ...], fmt: str) -> None:
 @click.option("--out", type=click.Path(path_type=Path, file_okay=False), required=True,
               help="Derivative dataset folder for the corrected runs (never inside an input "
               "dataset, except under its derivatives/).")
-@click.option("--method", type=click.Choice(["fourier", "sinc", "cubic", "linear"]),
+@click.option("--method", type=RegistryChoice(_engine_names),
               default="fourier", show_default=True, help="Temporal interpolation method.")
 @click.option("--reference", "reference", default="middle", show_default=True,
               help="Time every slice is aligned to: seconds from the start of the volume "
@@ -534,12 +561,8 @@ def correct(
     from slicetime.interfaces.report_json import dumps
     from slicetime.interfaces.safe_text import xml_safe
     from slicetime.interfaces.terminal import make_console, progress_reporter, render_correct
-    from slicetime.pipelines.correct import (
-        CorrectInterrupted,
-        CorrectOptions,
-        correct_paths,
-        parse_size,
-    )
+    from slicetime.pipelines.correct import CorrectInterrupted, CorrectOptions, correct_paths
+    from slicetime.pipelines.memory import parse_size
 
     try:
         choice = ReferenceChoice.parse(reference)
@@ -905,7 +928,7 @@ def _close_codes(code: str, known: list[str]) -> list[str]:
 @friendly
 def demo(out: Path) -> None:
     """Run the whole job on a small invented study (audit, verify, fix, correct)."""
-    from slicetime.pipelines.demo import run_demo
+    from slicetime.interfaces.demo_tour import run_demo
 
     sys.exit(run_demo(out))
 

@@ -50,7 +50,9 @@ RESOLUTION_DECIMALS = 4
 #: figure size in inches, and the user-space size of the SVG at 72 dpi
 FIGSIZE = (7.2, 3.0)
 
-_RC: dict[str, Any] = {
+#: typed Any: matplotlib's stubs type rc keys as one Literal union, which a dict
+#: literal's inferred type never matches
+_RC: Any = {
     "svg.hashsalt": "slicetime",  # deterministic ids
     "svg.fonttype": "none",  # real text: small, selectable, printed crisply
     "font.family": "sans-serif",
@@ -118,14 +120,17 @@ def _r(value: float) -> float:
 def _window(record: RunRecord) -> tuple[float | None, str]:
     schedule = record.schedule
     assert schedule is not None
-    window = schedule.acquisition_window
-    if window is None:
-        return None, ""
-    if schedule.delay_time and schedule.repetition_time is not None:
-        return window, "TR − DelayTime"
-    if schedule.acquisition_duration is not None:
-        return window, "acquisition time"
-    return window, "TR"
+    window, name = schedule.window()
+    return window, _WINDOW_NAMES.get(name, name)
+
+
+#: how the diagram names each kind of window (model.SliceSchedule.window)
+_WINDOW_NAMES = {
+    "RepetitionTime - DelayTime": "TR − DelayTime",
+    "FrameAcquisitionDuration": "acquisition time",
+    "RepetitionTime": "TR",
+    "the shortest VolumeTiming interval": "VolumeTiming spacing",
+}
 
 
 def placeholder_message(record: RunRecord) -> str:

@@ -439,8 +439,8 @@ def _page_data(source: ReportSource, collector: DiagramCollector,
         "columns": columns.values, "column_order": col_order,
     })
     yield _safe_in_script(head[:-1]) + ',"runs":['
-    for i, row in enumerate(rows):
-        yield row if i == 0 else "," + row
+    for i, line in enumerate(rows):
+        yield line if i == 0 else "," + line
     yield "]}"
 
 

@@ -323,6 +323,11 @@ def _finding_text(f: dict[str, Any], paint: _Paint, indent: str = "  ") -> str:
     return text
 
 
+def _scheme_label(facts: RunFacts) -> str:
+    scheme = facts.scheme
+    return scheme.label if scheme is not None else "no usable timing"
+
+
 def write_text(source: ReportSource, out: IO[str], *, show_all: bool = False,
                show_notes: bool = True) -> None:
     """The text report: a summary per task and acquisition, then the runs that
@@ -338,9 +343,7 @@ def write_text(source: ReportSource, out: IO[str], *, show_all: bool = False,
     if groups:
         rows = []
         for key, members in sorted(groups.items()):
-            schemes = Counter(
-                totals.facts[i].scheme.label if totals.facts[i].scheme else "no usable timing"
-                for i in members)
+            schemes = Counter(_scheme_label(totals.facts[i]) for i in members)
             scheme_text = "; ".join(
                 f"{xml_safe(label)} ×{n}" if len(schemes) > 1 else xml_safe(label)
                 for label, n in sorted(schemes.items(), key=lambda kv: (-kv[1], kv[0])))
@@ -458,9 +461,9 @@ def write_junit(source: ReportSource, out: IO[str], *, fail_on: str) -> None:
         members = per_root.get(root, [])
         if several and not members:
             continue
-        name = totals.names.get(root, root)
+        label: str | None = totals.names.get(root, root)
         suites.append((f"{junit.SUITE_NAME}: {root}" if several else junit.SUITE_NAME,
-                       root, name, members, not several))
+                       root, label, members, not several))
     if several:
         suites.append((f"{junit.SUITE_NAME}: all datasets", ", ".join(roots), None, [], True))
     tests = sum(len(m) + d for _, _, _, m, d in suites)

@@ -15,19 +15,20 @@ from slicetime.model import Finding, HeaderInfo, RunRecord, Scheme, Severity, Sl
 from slicetime.model_source import SourceEvidence
 from slicetime.pipelines.errors import NoRunsError
 from slicetime.pipelines.executor import Executor, Interrupted, Progress, map_chunks
-from slicetime.readers.dataset import find_root, iter_runs
-from slicetime.readers.errors import ReadError
-from slicetime.readers.inheritance import SidecarIndex, SidecarStore, ValueSharer
-from slicetime.readers.policy import POLICY_FILENAME, Policy, find_policy, load_policy
-from slicetime.readers.record import build_record, relative_display
-from slicetime.readers.source import SourceIndex, SourceOptions, find_source
-from slicetime.rules import RULES, check_dataset, check_run, fold_consequences, folds_into
-from slicetime.rules.policy import (
+from slicetime.policy.checks import (
     IgnoredFinding,
     apply_overrides_and_ignores,
     apply_policy,
     dataset_codes_judged,
 )
+from slicetime.policy.loading import root_policies
+from slicetime.policy.model import Policy
+from slicetime.readers.dataset import find_root, iter_runs
+from slicetime.readers.errors import ReadError
+from slicetime.readers.inheritance import SidecarIndex, SidecarStore, ValueSharer
+from slicetime.readers.record import build_record, relative_display
+from slicetime.readers.source import SourceIndex, SourceOptions, find_source
+from slicetime.rules import RULES, check_dataset, check_run, fold_consequences, folds_into
 
 
 @dataclass
@@ -186,21 +187,7 @@ def _policies(
 ) -> dict[Path, Policy | None]:
     """The policy of each root: the one given (errors propagate: exit 2), else the
     root's own file (a broken one becomes a dataset finding and is not used)."""
-    if policy_file is not None:
-        given = load_policy(policy_file, RULES)
-        return {root: given for root in roots}
-    found: dict[Path, Policy | None] = {}
-    for root in roots:
-        candidate = find_policy(root)
-        if candidate is None:
-            found[root] = None
-            continue
-        try:
-            found[root] = load_policy(candidate, RULES, display=POLICY_FILENAME)
-        except ReadError as exc:
-            problems.append(exc.to_finding())
-            found[root] = None
-    return found
+    return root_policies(roots, policy_file, RULES, problems)
 
 
 def check_paths_hold_runs(paths: Sequence[Path], **include: bool) -> None:
@@ -506,7 +493,7 @@ def dataset_phase(
 ) -> DatasetPhase:
     """The dataset rules over every run, with each root's policy applied. A run whose
     policy protocol states a value is judged by the protocol, not by the majority
-    (:func:`slicetime.rules.policy.dataset_codes_judged`)."""
+    (:func:`slicetime.policy.checks.dataset_codes_judged`)."""
     exempt: dict[str, set[str]] = {}
     judged = 0
     for record in records:

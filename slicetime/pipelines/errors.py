@@ -1,4 +1,5 @@
-"""Problems with what the user asked a pipeline to do (the CLI turns them into exit 2)."""
+"""Problems with what the user asked a pipeline to do (the CLI turns them into exit 2),
+and the error a single run's correction raises (it becomes that run's outcome)."""
 
 from __future__ import annotations
 
@@ -14,3 +15,21 @@ class NoRunsError(ValueError):
             "*_bold.nii.gz; derivatives/, sourcedata/, code/ and hidden folders are skipped "
             "unless included)"
         )
+
+
+class CorrectionError(Exception):
+    """A run cannot be corrected; the message names the file and the reason.
+
+    With a ``code`` (a registered ``correct/*`` code) the run is *refused* and the
+    code becomes one of its blocking findings; without one it *failed*."""
+
+    def __init__(self, message: str, code: str | None = None, field: str | None = None):
+        super().__init__(message)
+        self.code = code
+        self.field = field
+
+
+#: codes of the refusals ``correct`` makes itself (documented in rules/correction.py)
+CLASH_CODE = "correct/output-clash"
+IMPLAUSIBLE_CODE = "correct/implausible-timing"
+SCALING_CODE = "correct/scaling-range"

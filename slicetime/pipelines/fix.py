@@ -45,16 +45,16 @@ from slicetime.model import Finding, RunRecord
 from slicetime.pipelines.audit import AuditResult, audit_paths
 from slicetime.pipelines.executor import Executor
 from slicetime.pipelines.json_splice import DELETE, Layout, scan, splice
+from slicetime.policy.checks import select_protocol
+from slicetime.policy.loading import root_policies
+from slicetime.policy.model import Policy
 from slicetime.readers.dataset import find_root
-from slicetime.readers.entities import parse_name
-from slicetime.readers.errors import ReadError
-from slicetime.readers.policy import POLICY_FILENAME, Policy, find_policy, load_policy
+from slicetime.readers.entities import parse_name, sidecar_path
 from slicetime.readers.sidecar import MAX_SIDECAR_BYTES, TIMING_FIELDS
 from slicetime.readers.source import SourceOptions
 from slicetime.readers.volumes import file_sha256
 from slicetime.rules import RULES
 from slicetime.rules.dataset import PROTOCOL_ENTITIES
-from slicetime.rules.policy import select_protocol
 from slicetime.rules.repairs import FIXABLE, Repair, plan_consensus, plan_run
 
 JOURNAL_NAME = "journal.json"
@@ -219,32 +219,9 @@ def _load_for_edit(path: Path) -> tuple[str, Layout]:
 # --------------------------------------------------------------------------- planning
 
 
-def own_sidecar(run: str) -> str:
-    """The run's own sidecar: the image's name with ``.json``."""
-    name = run.rsplit("/", 1)[-1]
-    for ext in (".nii.gz", ".nii"):
-        if name.endswith(ext):
-            name = name[: -len(ext)]
-            break
-    folder = run.rsplit("/", 1)[0] if "/" in run else ""
-    return f"{folder}/{name}.json" if folder else f"{name}.json"
-
-
 def _policies(roots: Sequence[Path], policy_file: Path | None) -> dict[str, Policy | None]:
-    out: dict[str, Policy | None] = {}
-    given = load_policy(policy_file, RULES) if policy_file is not None else None
-    for root in roots:
-        if given is not None:
-            out[str(root)] = given
-            continue
-        candidate = find_policy(root)
-        try:
-            out[str(root)] = (
-                load_policy(candidate, RULES, display=POLICY_FILENAME) if candidate else None
-            )
-        except ReadError:  # a broken policy is reported by the audit itself
-            out[str(root)] = None
-    return out
+    # a broken policy is reported by the audit itself
+    return {str(r): p for r, p in root_policies(roots, policy_file, RULES).items()}
 
 
 def _under(run: RunRecord, wanted: Sequence[Path]) -> bool:
@@ -358,7 +335,7 @@ def _place(
             by_shared[(repair.root, repair.resolved_from, repair.field)].append(repair)
     targets: dict[tuple[str, str], dict[str, list[Repair]]] = defaultdict(lambda: defaultdict(list))
     for repair in repairs:
-        target = own_sidecar(repair.run)
+        target = sidecar_path(repair.run)
         shared = repair.resolved_from
         if shared is not None and shared != target and not per_run:
             group = by_shared[(repair.root, shared, repair.field)]
@@ -520,7 +497,7 @@ def _layout_moves(
     for key in spread:
         for record in records:
             source = record.metadata_sources.get(key)
-            own = own_sidecar(record.path)
+            own = sidecar_path(record.path)
             if (record.root, record.path) not in wanted or source is None or source == own:
                 continue
             if not all((u.root, u.path) in wanted for u in users[(record.root, source, key)]):

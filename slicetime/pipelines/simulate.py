@@ -48,7 +48,7 @@ def random_events(rng: np.random.Generator, duration: float, *, gap: tuple[float
     return np.asarray(onsets)
 
 
-def response(times: np.ndarray, onsets: Sequence[float], event_duration: float = 1.0,
+def response(times: np.ndarray, onsets: Sequence[float] | np.ndarray, event_duration: float = 1.0,
              step: float = 0.05) -> np.ndarray:
     """The haemodynamic response to boxcar events, evaluated at ``times`` (seconds)."""
     times = np.asarray(times, dtype=np.float64)
@@ -79,7 +79,7 @@ class RunSimulation:
     seed: int = 0
 
 
-def signal_at(sim: RunSimulation, onsets: Sequence[float], times: np.ndarray,
+def signal_at(sim: RunSimulation, onsets: Sequence[float] | np.ndarray, times: np.ndarray,
               phases: np.ndarray) -> np.ndarray:
     """The noiseless signal (without thermal noise) at ``times``, for voxels whose
     physiological fluctuations have the given phases. Shape: phases.shape + times.shape."""

@@ -27,6 +27,7 @@ from slicetime.model import Finding, RunRecord, Severity
 from slicetime.readers.errors import ReadError
 from slicetime.readers.volumes import VolumeReader, scaling
 from slicetime.schemes.generate import Protocol, array_times
+from slicetime.schemes.labels import LabelParts, format_label
 
 #: volumes per read; the mask comes from the first batch
 BATCH_VOLUMES = 16
@@ -46,14 +47,8 @@ class VerifyOutcome:
 
 
 def _label(order: str, ascending: bool, step: int, start: int, multiband: int) -> str:
-    direction = "ascending" if ascending else "descending"
-    if order == "sequential":
-        inner = direction
-    elif step == 2:
-        inner = f"interleaved {direction} from {start}"
-    else:
-        inner = f"interleaved step {step} {direction} from {start}"
-    return inner if multiband == 1 else f"multiband ×{multiband}, {inner}"
+    return format_label(LabelParts(1 if order == "sequential" else step, ascending, start, None,
+                                   multiband))
 
 
 def standard_schedules(n_slices: int, window: float) -> list[tuple[str, tuple[float, ...]]]:

@@ -42,10 +42,10 @@ from slicetime.model import Finding, Severity
 
 from .entities import (
     IMAGE_EXTENSIONS,
-    image_stem,
     looks_like_run,
     parse_name,
     run_name_problem,
+    sidecar_name,
 )
 from .errors import ReadError, check_regular_file
 from .sidecar import load_sidecar
@@ -153,7 +153,7 @@ def _has_slice_timing(folder: Path, name: str, listing: set[str]) -> bool:
         return False
     if folder.name in _NOT_RUN_FOLDERS:
         return False
-    own = image_stem(name) + ".json"
+    own = sidecar_name(name)
     if own not in listing:
         return False
     data, _findings = load_sidecar(folder / own)

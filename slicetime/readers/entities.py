@@ -21,6 +21,8 @@ __all__ = [
     "looks_like_run",
     "parse_name",
     "run_name_problem",
+    "sidecar_name",
+    "sidecar_path",
 ]
 
 #: Extensions of NIfTI image files, longest first.
@@ -90,6 +92,22 @@ def image_stem(name: str) -> str:
             return name[: -len(ext)]
     stem, dot, _ = name.rpartition(".")
     return stem if dot and stem else name
+
+
+def sidecar_name(image_name: str) -> str:
+    """The name of an image's own sidecar: ``x_bold.nii.gz`` → ``x_bold.json``.
+
+    The one rule for it (readers, fix and correct all call this): the NIfTI
+    extension, in any case, gives way to ``.json`` (BIDS: a data file's own
+    sidecar shares its stem).
+    """
+    return image_stem(image_name) + ".json"
+
+
+def sidecar_path(run_path: str) -> str:
+    """The own sidecar of a run given as a ``/``-separated path (relative or not)."""
+    folder, slash, name = run_path.rpartition("/")
+    return f"{folder}{slash}{sidecar_name(name)}"
 
 
 #: folders whose NIfTI files are time series (BIDS datatypes func, perf, dwi)

@@ -45,7 +45,7 @@ from typing import Any
 
 from slicetime.model import Finding, Severity
 
-from .entities import ParsedName, image_stem, parse_name
+from .entities import ParsedName, parse_name, sidecar_name
 from .sidecar import (
     MAX_SIDECAR_BYTES,
     TIMING_FIELDS,
@@ -406,7 +406,7 @@ class SidecarIndex:
         """The applicable sidecars of the data file at ``data_path`` (absolute, normalised)."""
         folder, data_name = os.path.split(data_path)
         folders = self._chain(folder, root)
-        own_name = image_stem(data_name) + ".json"
+        own_name = sidecar_name(data_name)
         levels: list[list[tuple[_Candidate, bool]]] = []
         problems: list[Finding] = []
         deepest = len(folders) - 1

@@ -3,13 +3,13 @@
 Importing this package registers every rule in :data:`RULES`.
 """
 
+import slicetime.policy.checks  # noqa: F401  (registration of the policy/* codes)
 from slicetime.rules import (  # noqa: F401  (registration)
     batch,
     correction,
     dataset,
     header,
     naming,
-    policy,
     reading,
     source,
     timing,

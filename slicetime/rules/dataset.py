@@ -7,7 +7,7 @@ from collections import Counter, defaultdict
 from collections.abc import Callable, Hashable, Iterator, Sequence
 from typing import Any
 
-from slicetime.model import RunRecord, Severity
+from slicetime.model import TIME_TOLERANCE, RunRecord, Severity
 from slicetime.rules.registry import DatasetHit, Hit, dataset_rule, run_rule
 
 E, W, N = Severity.ERROR, Severity.WARNING, Severity.NOTE
@@ -18,7 +18,6 @@ E, W, N = Severity.ERROR, Severity.WARNING, Severity.NOTE
 PROTOCOL_ENTITIES = ("task", "acq", "ce", "rec", "dir")
 #: a consensus needs at least this many runs (common practice, no source)
 MIN_RUNS_FOR_CONSENSUS = 3
-TIME_TOLERANCE = 0.003
 
 
 def protocol_key(record: RunRecord) -> tuple[str, ...]:
@@ -205,9 +204,10 @@ def timing_override(record: RunRecord) -> Iterator[Hit]:
 
 def _exceeds_window(record: RunRecord) -> bool:
     schedule = record.schedule
-    if schedule is None or schedule.repetition_time is None:
+    window = schedule.acquisition_window if schedule is not None else None
+    if schedule is None or window is None:
         return False
-    return max(schedule.times) >= schedule.repetition_time or min(schedule.times) < 0
+    return max(schedule.times) >= window or min(schedule.times) < 0
 
 
 def _short(value: Any) -> Any:

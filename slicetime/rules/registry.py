@@ -14,7 +14,7 @@ from __future__ import annotations
 import dataclasses
 from collections.abc import Callable, Iterable, Mapping, Sequence, Set
 from dataclasses import dataclass
-from typing import Any, Literal
+from typing import Any, Literal, cast
 
 from slicetime.model import Finding, RunRecord, Severity
 
@@ -75,7 +75,7 @@ def _register(rule: Rule) -> None:
         raise RuntimeError(f"finding codes are lower-case area/short-name: {rule.code!r}")
     RULES[rule.code] = rule
     if rule.scope == "run" and rule.check is not None:
-        _RUN_CHECKS.append((rule, rule.check))  # type: ignore[arg-type]
+        _RUN_CHECKS.append((rule, cast(RunCheck, rule.check)))  # scope "run": a RunCheck
 
 
 def run_rule(
@@ -168,7 +168,8 @@ def check_dataset(
             continue
         left_out = (exempt or {}).get(rule.code)
         considered = [r for r in records if r.abs_path not in left_out] if left_out else records
-        for dhit in rule.check(considered):  # type: ignore[arg-type]
+        check = cast(DatasetCheck, rule.check)  # scope "dataset": a DatasetCheck
+        for dhit in check(considered):
             record = by_path.get(dhit.run) if dhit.run else None
             finding = to_finding(rule, record, dhit.hit)
             if dhit.run is None:

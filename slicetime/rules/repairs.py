@@ -33,12 +33,12 @@ import dataclasses
 import math
 from collections import defaultdict
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from typing import Any
 
-from slicetime.model import AXES, Finding, RunRecord, Severity
-from slicetime.readers.policy import ExpectedProtocol
-from slicetime.rules.dataset import TIME_TOLERANCE, protocol_key
+from slicetime.model import AXES, TIME_TOLERANCE, Finding, RunRecord, Severity
+from slicetime.policy.model import ExpectedProtocol
+from slicetime.rules.dataset import protocol_key
 from slicetime.rules.source import matched, source_multiband, source_times
 from slicetime.schemes.generate import Protocol, array_times, validate_protocol
 from slicetime.schemes.infer import infer_scheme
@@ -76,7 +76,7 @@ class Repair:
     current: Any  # None when the field is absent
     resolved_from: str | None  # sidecar (relative to root) supplying the current value
     source: str  # where the new value comes from, for people
-    evidence: Mapping[str, Any] = field(default_factory=dict)
+    evidence: Mapping[str, Any] = dataclasses.field(default_factory=dict)
     #: the field whose source file this repair belongs to (itself, unless the field is
     #: absent and belongs beside another one, as a multiband factor beside the times)
     anchor: str | None = None
@@ -211,9 +211,9 @@ def _policy_times(protocol: ExpectedProtocol, record: RunRecord) -> list[float] 
             found.add(tuple(_rounded(times)))
     if len(found) != 1:
         return None
-    times = list(next(iter(found)))
+    chosen = list(next(iter(found)))
     direction = record.metadata.get("SliceEncodingDirection")
-    return times[::-1] if isinstance(direction, str) and direction.endswith("-") else times
+    return chosen[::-1] if isinstance(direction, str) and direction.endswith("-") else chosen
 
 
 def _missing_from_policy(record: RunRecord, protocol: ExpectedProtocol | None) -> list[Repair]:
@@ -262,10 +262,11 @@ def _reversed_list(record: RunRecord) -> list[Repair]:
                                      header.slice_duration, schedule.n_slices)
     except ValueError:
         return []
-    if any(t is None for t in encoded):
+    known = [t for t in encoded if t is not None]
+    if len(known) != len(encoded):
         return []
     flipped = list(reversed(schedule.times))
-    if any(abs(float(a) - b) > TIME_TOLERANCE for a, b in zip(encoded, flipped, strict=True)):
+    if any(abs(float(a) - b) > TIME_TOLERANCE for a, b in zip(known, flipped, strict=True)):
         return []
     name = SLICE_CODE_NAMES.get(header.slice_code, str(header.slice_code))
     return [_repair(record, "header/slice-code-mismatch", "SliceTiming", list(reversed(times)),
@@ -320,11 +321,11 @@ def plan_run(
     codes = {f.code for f in findings}
     for code in SOURCE_TIMING_CODES:
         if code in codes:
-            repairs = _from_source(record, code)
-            if repairs:
+            found = _from_source(record, code)
+            if found:
                 if "source/multiband-differs" in codes:
-                    repairs += _multiband_from_source(record)
-                return repairs
+                    found += _multiband_from_source(record)
+                return found
     repairs: list[Repair] = []
     if "source/multiband-differs" in codes:
         repairs += _multiband_from_source(record)

@@ -11,13 +11,10 @@ from slicetime.schemes.resolve import (
     is_number,
     looks_like_milliseconds,
     positive_number,
-    timing_window,
 )
 
 E, W, N = Severity.ERROR, Severity.WARNING, Severity.NOTE
 
-#: seconds; converters round slice times to 1 ms or 2.5 ms (common practice, no source)
-TOLERANCE = 0.003
 #: suffixes whose runs need slice timing for slice-timing correction
 TIMED_SUFFIXES = frozenset({"bold", "cbv", "asl", "m0scan"})
 
@@ -91,7 +88,7 @@ def _window(record: RunRecord) -> tuple[float | None, str]:
     """The acquisition window that every slice time must fall inside, and its name."""
     if record.schedule is None:
         return None, ""
-    return timing_window(record.schedule)
+    return record.schedule.window()
 
 
 def _sidecar_times(record: RunRecord) -> list[float] | None:

@@ -38,7 +38,14 @@ from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Any
 
-from slicetime.model import Scheme
+from slicetime.model import TIME_TOLERANCE, Scheme
+from slicetime.schemes.labels import (
+    IRREGULAR,
+    SIMULTANEOUS,
+    SINGLE_SLICE,
+    order_label,
+    with_multiband,
+)
 
 __all__ = [
     "DEFAULT_TOLERANCE",
@@ -53,13 +60,8 @@ __all__ = [
     "infer_scheme",
 ]
 
-DEFAULT_TOLERANCE = 0.003
-"""Seconds. How far a gap between consecutive excitation groups may deviate
-from the median gap before the timing counts as uneven, and the upper bound of
-the threshold below which two slice times count as equal. Converters round
-slice times to 1 ms or 2.5 ms, which moves a gap by at most one rounding step
-(2.5 ms), so 3 ms accepts rounded times while a genuinely uneven gap of a few
-milliseconds or more is reported."""
+#: the default tolerance: :data:`slicetime.model.TIME_TOLERANCE` (defined there only)
+DEFAULT_TOLERANCE = TIME_TOLERANCE
 
 MIN_SEPARATION = 0.0005
 """Seconds. Differences between slice times at or below this are never taken
@@ -71,17 +73,14 @@ SPLIT_FRACTION = 0.5
 more than this fraction of the typical gap between groups (and by more than
 the tolerance, whichever is smaller)."""
 
-SINGLE_SLICE = "single slice"
-SIMULTANEOUS = "simultaneous"
-IRREGULAR = "irregular"
-ASCENDING = "ascending"
-DESCENDING = "descending"
 
 
 # --------------------------------------------------------------------------- grouping
 
 
-def grouping_threshold(times: Sequence[float], tolerance: float = DEFAULT_TOLERANCE) -> float:
+def grouping_threshold(
+    times: Sequence[float], tolerance: float = DEFAULT_TOLERANCE
+) -> float:
     """The largest difference between two slice times that still counts as "equal".
 
     Equal to ``min(tolerance, SPLIT_FRACTION * g)``, where ``g`` is the typical
@@ -175,15 +174,8 @@ class OrderDescription:
 
     @property
     def label(self) -> str:
-        direction = ASCENDING if self.ascending else DESCENDING
-        if self.step == 1:
-            return direction
-        if not self.consecutive:
-            residues = ",".join(str(r) for r in self.residue_order or ())
-            return f"interleaved step {self.step} {direction}, residue order {residues}"
-        if self.step == 2:
-            return f"interleaved {direction} from {self.start}"
-        return f"interleaved step {self.step} {direction} from {self.start}"
+        residues = None if self.consecutive else self.residue_order
+        return order_label(self.step, self.ascending, self.start, residues)
 
 
 def _interleaved(order: Sequence[int], step: int, ascending: bool) -> tuple[int, ...] | None:
@@ -374,7 +366,7 @@ def _infer_scheme(times: Sequence[float], *, tolerance: float = DEFAULT_TOLERANC
             base_order=bases,
         )
     inner = description.label
-    label = inner if multiband == 1 else f"multiband ×{multiband}, {inner}"
+    label = with_multiband(inner, multiband)
 
     # 5. timing regularity
     assert spacing is not None

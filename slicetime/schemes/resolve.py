@@ -13,7 +13,7 @@ import dataclasses
 import math
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, TypeGuard, cast
 
 from slicetime.model import (
     AXES,
@@ -41,7 +41,7 @@ class ScheduleResolution:
     axis_length: int | None = None
 
 
-def is_number(value: Any) -> bool:
+def is_number(value: Any) -> TypeGuard[int | float]:
     """A JSON number (bool is not a number in JSON terms)."""
     return isinstance(value, int | float) and not isinstance(value, bool)
 
@@ -69,7 +69,7 @@ def positive_number(value: Any) -> float | None:
 def parse_direction(value: Any) -> tuple[Axis, Direction] | None:
     """``SliceEncodingDirection`` → (axis, direction), or None when invalid."""
     if isinstance(value, str) and value in SLICE_ENCODING_VALUES:
-        axis: Axis = value[0]  # type: ignore[assignment]
+        axis = cast(Axis, value[0])  # one of i, j, k: value is a known direction
         return axis, ("-" if value.endswith("-") else "+")
     return None
 
@@ -292,21 +292,6 @@ def resolve_schedule(
 MS_FACTOR_MIN = 50.0
 
 
-def timing_window(schedule: SliceSchedule) -> tuple[float | None, str]:
-    """The acquisition window every slice time must fall inside, and where it comes from."""
-    if schedule.delay_time is not None and schedule.repetition_time is not None:
-        return schedule.repetition_time - schedule.delay_time, "RepetitionTime - DelayTime"
-    if schedule.acquisition_duration is not None:
-        return schedule.acquisition_duration, "FrameAcquisitionDuration"
-    if schedule.repetition_time is not None:
-        return schedule.repetition_time, "RepetitionTime"
-    if schedule.volume_times and len(schedule.volume_times) > 1:
-        vt = schedule.volume_times
-        gaps = [vt[i + 1] - vt[i] for i in range(len(vt) - 1)]
-        return min(gaps), "the shortest VolumeTiming interval"
-    return None, ""
-
-
 def looks_like_milliseconds(times: Sequence[float], window: float | None) -> bool:
     """True when slice times were evidently written in milliseconds: the largest is
     many times the window (in seconds) yet fits inside it once divided by 1000."""
@@ -321,7 +306,7 @@ def seconds_factor(schedule: SliceSchedule | None, timing_origin: str | None) ->
     the values as written; inference and displays multiply by this factor)."""
     if schedule is None or timing_origin != "sidecar":
         return 1.0
-    window, _ = timing_window(schedule)
+    window, _ = schedule.window()
     return 0.001 if looks_like_milliseconds(schedule.times, window) else 1.0
 
 

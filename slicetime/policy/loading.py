@@ -5,7 +5,7 @@ or the policy can be given on the command line. :func:`load_policy` reads it,
 checks it against ``slicetime/data/policy.schema.json`` (JSON Schema draft
 2020-12, every table closed so that a misspelt key is an error) and against
 the semantics below, and returns a frozen :class:`Policy`. Applying it to runs
-and findings is pure and lives in :mod:`slicetime.rules.policy`.
+and findings is pure and lives in :mod:`slicetime.policy.checks`.
 
 The format (version 1)::
 
@@ -29,7 +29,7 @@ The format (version 1)::
     codes = ["*"]
     reason = "pilot sessions use a test protocol"
 
-Semantics, decided here and relied on by :mod:`slicetime.rules.policy`:
+Semantics, decided here and relied on by :mod:`slicetime.policy.checks`:
 
 *Protocols.* ``match`` is required (``match = {}`` selects every run). Its keys
 are BIDS entities by their short names (``sub``, ``ses``, ``task``, ``acq``,
@@ -77,26 +77,37 @@ problems (missing, unreadable) keep their ``file/*`` codes.
 
 from __future__ import annotations
 
-import dataclasses
 import difflib
-import fnmatch
 import functools
 import json
 import math
 import re
 import sys
-from collections.abc import Collection, Mapping, Sequence
-from dataclasses import dataclass
+from collections.abc import Collection, Iterable, Mapping, Sequence
 from importlib import resources
 from pathlib import Path
-from typing import Any, Literal
+from typing import Any
 
 import jsonschema
 
-from slicetime.model import Severity
-from slicetime.schemes.infer import DEFAULT_TOLERANCE
-
-from .errors import ReadError, display_name, open_regular, os_error, read_bounded
+from slicetime.model import TIME_TOLERANCE, Finding, Severity
+from slicetime.policy.model import (
+    EXPECTATION_KEYS,
+    INVALID_CODE,
+    POLICY_FILENAME,
+    ExpectedProtocol,
+    IgnoreEntry,
+    Policy,
+)
+from slicetime.policy.patterns import CODE_CHARS, code_matches, is_pattern, path_pattern_problem
+from slicetime.readers.errors import (
+    ReadError,
+    display_name,
+    open_regular,
+    os_error,
+    read_bounded,
+)
+from slicetime.schemes.labels import label_multiband, label_problem, normalise_label
 
 if sys.version_info >= (3, 11):
     import tomllib
@@ -104,41 +115,20 @@ else:  # pragma: no cover - exercised on Python 3.10 only
     import tomli as tomllib
 
 __all__ = [
-    "DEFAULT_TOLERANCE",
-    "EXPECTATION_KEYS",
     "INDEX_ENTITIES",
-    "INVALID_CODE",
     "MATCH_KEYS",
     "MAX_POLICY_BYTES",
-    "POLICY_FILENAME",
-    "ExpectedProtocol",
-    "IgnoreEntry",
-    "Policy",
-    "SchemeFamily",
-    "code_matches",
     "find_policy",
     "load_policy",
     "parse_policy",
-    "path_matches",
-    "path_pattern_problem",
     "policy_from_document",
     "policy_schema",
-    "scheme_family",
+    "root_policies",
 ]
 
-POLICY_FILENAME = "slicetime-policy.toml"
-#: the finding code of every problem with the policy's content
-INVALID_CODE = "policy/invalid"
+
 #: a policy is a few kilobytes; anything this large is not one
 MAX_POLICY_BYTES = 1024 * 1024
-#: the keys of a protocol that state an expectation (at least one is required)
-EXPECTATION_KEYS: tuple[str, ...] = (
-    "repetition_time",
-    "slices",
-    "multiband_factor",
-    "scheme",
-    "slice_encoding_direction",
-)
 _HINT = "Fix the policy file; `slicetime explain policy/invalid` describes its format."
 
 
@@ -158,303 +148,6 @@ def _match_keys() -> tuple[tuple[str, ...], frozenset[str]]:
 
 #: keys allowed in ``match``: BIDS entities, ``datatype`` and ``suffix`` (from the schema)
 MATCH_KEYS, INDEX_ENTITIES = _match_keys()
-
-
-# --------------------------------------------------------------------------- the policy
-
-
-@dataclass(frozen=True)
-class SchemeFamily:
-    """An order family: ``kind`` sequential/interleaved and/or a direction (None = any)."""
-
-    kind: Literal["sequential", "interleaved"] | None = None
-    ascending: bool | None = None
-
-
-@dataclass(frozen=True)
-class ExpectedProtocol:
-    """One ``[[protocols]]`` entry: what the runs its ``match`` selects should look like.
-
-    ``index`` is the entry's position in the file (0-based), for messages.
-    ``match`` values are strings, except index entities, which are ints.
-    ``scheme`` is normalised (``multiband ×M``, single spaces, lower case).
-    """
-
-    index: int
-    match: Mapping[str, str | int] = dataclasses.field(default_factory=dict)
-    name: str | None = None
-    repetition_time: float | None = None
-    slices: int | None = None
-    multiband_factor: int | None = None
-    scheme: str | None = None
-    slice_encoding_direction: str | None = None
-    tolerance: float = DEFAULT_TOLERANCE
-
-    @property
-    def specificity(self) -> int:
-        """How many keys the selector has; the most specific matching protocol wins."""
-        return len(self.match)
-
-    @property
-    def key_path(self) -> str:
-        return f"protocols[{self.index}]"
-
-    def selector(self) -> str:
-        """The selector for messages: ``task=rest, acq=mb4`` (``every run`` when empty)."""
-        if not self.match:
-            return "every run"
-        return ", ".join(f"{k}={v}" for k, v in self.match.items())
-
-    def describe(self) -> str:
-        """``protocol "name" (task=rest)`` or ``protocols[0] (task=rest)``."""
-        who = f'protocol "{self.name}"' if self.name else f"policy {self.key_path}"
-        return f"{who} ({self.selector()})"
-
-    def expectations(self) -> dict[str, Any]:
-        """The expectations this protocol sets (keys of :data:`EXPECTATION_KEYS`)."""
-        return {k: getattr(self, k) for k in EXPECTATION_KEYS if getattr(self, k) is not None}
-
-    def selects(self, entities: Mapping[str, str], datatype: str | None, suffix: str) -> bool:
-        """Whether a run with these name parts is selected by ``match``."""
-        for key, wanted in self.match.items():
-            if key == "datatype":
-                found: str | None = datatype
-            elif key == "suffix":
-                found = suffix
-            else:
-                found = entities.get(key)
-            if found is None:
-                return False
-            if isinstance(wanted, int):
-                if not found.isdigit() or int(found) != wanted:
-                    return False
-            elif found != wanted:
-                return False
-        return True
-
-
-@dataclass(frozen=True)
-class IgnoreEntry:
-    """One ``[[ignore]]`` entry: drop findings whose code and run path both match."""
-
-    index: int
-    codes: tuple[str, ...]
-    reason: str
-    paths: tuple[str, ...] = ("**",)
-
-    def covers(self, path: str, code: str) -> bool:
-        return any(code_matches(c, code) for c in self.codes) and any(
-            path_matches(p, path) for p in self.paths
-        )
-
-
-@dataclass(frozen=True)
-class Policy:
-    """A loaded lab policy. ``file`` is how messages name the policy file."""
-
-    file: str | None = None
-    version: int = 1
-    protocols: tuple[ExpectedProtocol, ...] = ()
-    severity: Mapping[str, Severity] = dataclasses.field(default_factory=dict)
-    ignores: tuple[IgnoreEntry, ...] = ()
-
-    def severity_for(self, code: str) -> Severity | None:
-        """The lab's severity for ``code``: an exact key, else the first matching pattern."""
-        if code in self.severity:
-            return self.severity[code]
-        for pattern, severity in self.severity.items():
-            if _is_pattern(pattern) and code_matches(pattern, code):
-                return severity
-        return None
-
-    def ignore_entry(self, path: str, code: str) -> IgnoreEntry | None:
-        """The first ``[[ignore]]`` entry that drops ``code`` on ``path``, if any."""
-        for entry in self.ignores:
-            if entry.covers(path, code):
-                return entry
-        return None
-
-
-# --------------------------------------------------------------------------- patterns
-
-
-def _is_pattern(code: str) -> bool:
-    return "*" in code or "?" in code
-
-
-_CODE_CHARS = re.compile(r"[a-z0-9/*?-]+\Z")
-
-
-def code_matches(pattern: str, code: str) -> bool:
-    """Whether a finding code matches a code or a ``*``/``?`` pattern."""
-    if not _is_pattern(pattern):
-        return pattern == code
-    return fnmatch.fnmatchcase(code, pattern)
-
-
-def path_pattern_problem(pattern: str) -> str | None:
-    """Why ``pattern`` is not a valid run path pattern, or None."""
-    if not pattern:
-        return "must not be empty"
-    if "\\" in pattern:
-        return "use forward slashes (/) between folders"
-    if pattern.startswith("/"):
-        return "must be relative to the dataset root (no leading /)"
-    body = pattern[:-1] if pattern.endswith("/") else pattern
-    for segment in body.split("/"):
-        if segment == "":
-            return "has an empty folder name (//)"
-        if segment in (".", ".."):
-            return "must not contain . or .. folders"
-        if "**" in segment and segment != "**":
-            return "** must stand alone between slashes (write sub-*/** rather than sub-**)"
-        problem = _segment_problem(segment)
-        if problem:
-            return problem
-    return None
-
-
-def _segment_problem(segment: str) -> str | None:
-    i = 0
-    while i < len(segment):
-        if segment[i] == "[":
-            end = _class_end(segment, i)
-            if end is None:
-                return "has a [ without its closing ]"
-            i = end
-        i += 1
-    return None
-
-
-def _class_end(segment: str, start: int) -> int | None:
-    """Index of the ``]`` closing the set opened at ``start`` (a leading ``]`` is literal)."""
-    j = start + 1
-    if j < len(segment) and segment[j] == "!":
-        j += 1
-    if j < len(segment) and segment[j] == "]":
-        j += 1
-    close = segment.find("]", j)
-    return close if close != -1 else None
-
-
-def _segment_regex(segment: str) -> str:
-    out: list[str] = []
-    i = 0
-    while i < len(segment):
-        char = segment[i]
-        if char == "*":
-            out.append("[^/]*")
-        elif char == "?":
-            out.append("[^/]")
-        elif char == "[":
-            end = _class_end(segment, i)
-            assert end is not None  # validated before
-            body = segment[i + 1 : end]
-            negate = body.startswith("!")
-            if negate:
-                body = body[1:]
-            escaped = "".join("\\" + c if c in "\\^[]" else c for c in body)
-            out.append(f"[^/{escaped}]" if negate else f"[{escaped}]")
-            i = end
-        else:
-            out.append(re.escape(char))
-        i += 1
-    return "".join(out)
-
-
-@functools.lru_cache(maxsize=1024)
-def _path_regex(pattern: str) -> re.Pattern[str]:
-    body = pattern[:-1] if pattern.endswith("/") else pattern
-    segments = body.split("/")
-    out: list[str] = []
-    for i, segment in enumerate(segments):
-        last = i == len(segments) - 1
-        if segment == "**":
-            out.append(".*" if last else "(?:[^/]+/)*")
-        else:
-            out.append(_segment_regex(segment) + ("" if last else "/"))
-    # a pattern that selects a folder covers everything below it
-    return re.compile("(?:" + "".join(out) + ")(?:/.*)?", re.DOTALL)
-
-
-def path_matches(pattern: str, path: str) -> bool:
-    """Whether a dataset-relative posix ``path`` matches a run path pattern.
-
-    Raises ValueError for an invalid pattern (:func:`path_pattern_problem`).
-    """
-    problem = path_pattern_problem(pattern)
-    if problem:
-        raise ValueError(f"path pattern {pattern!r} {problem}")
-    return _path_regex(pattern).fullmatch(path) is not None
-
-
-# --------------------------------------------------------------------------- scheme labels
-
-_ORDER = (
-    r"(?:ascending|descending"
-    r"|interleaved (?:ascending|descending) from \d+"
-    r"|interleaved step (?P<step>\d+) (?:ascending|descending) from \d+"
-    r"|interleaved step (?P<rstep>\d+) (?:ascending|descending), residue order \d+(?:,\d+)+)"
-)
-_LABEL = re.compile(
-    rf"(?:single slice|simultaneous|irregular|(?:multiband ×(?P<mb>\d+), )?{_ORDER})\Z"
-)
-_FAMILY = re.compile(
-    r"(?:(?P<kind>sequential|interleaved)(?: (?P<dir1>ascending|descending))?"
-    r"|(?P<dir2>ascending|descending))\Z"
-)
-
-
-def _normalise_scheme(text: str) -> str:
-    text = " ".join(text.split()).lower()
-    text = re.sub(r"^multiband\s*[x×*]\s*(\d+)\s*,\s*", r"multiband ×\1, ", text)
-    return re.sub(r"\s*,\s*(?=\d)", ",", text)
-
-
-def scheme_family(text: str) -> SchemeFamily | None:
-    """The order family a (normalised) ``scheme`` value names, or None for an exact label."""
-    m = _FAMILY.match(text)
-    if m is None:
-        return None
-    direction = m.group("dir1") or m.group("dir2")
-    kind = m.group("kind")
-    return SchemeFamily(
-        kind=kind,  # type: ignore[arg-type]
-        ascending=None if direction is None else direction == "ascending",
-    )
-
-
-def _label_multiband(text: str) -> int | None:
-    """The multiband factor an exact label implies (None when it implies none)."""
-    m = _LABEL.match(text)
-    if (
-        m is None
-        or scheme_family(text) is not None
-        or text in ("single slice", "simultaneous", "irregular")
-    ):
-        return None
-    return int(m.group("mb")) if m.group("mb") else 1
-
-
-def _scheme_problem(text: str) -> str | None:
-    if scheme_family(text) is not None:
-        return None
-    m = _LABEL.match(text)
-    if m is None:
-        return (
-            f"{json.dumps(text, ensure_ascii=False)} is not a scheme label or family; labels "
-            'look like "ascending", "interleaved ascending from 1", "multiband ×4, interleaved '
-            'descending from 17", families are ascending, descending, interleaved, sequential'
-        )
-    if m.group("mb") is not None and int(m.group("mb")) < 2:
-        return "slicetime never prints multiband ×1; leave the multiband part out"
-    step = m.group("step") or m.group("rstep")
-    if step is not None and int(step) < 3:
-        return (
-            'slicetime prints step 2 as "interleaved ascending from S" (or descending); '
-            "write it that way"
-        )
-    return None
 
 
 # --------------------------------------------------------------------------- loading
@@ -569,7 +262,7 @@ def _document_order(data: Any, parts: KeyPath) -> tuple[int, ...]:
         if isinstance(node, dict):
             keys = list(node)
             out.append(keys.index(part) if part in node else len(keys))
-            node = node.get(part)  # type: ignore[call-overload]
+            node = node[part] if part in node else None
         elif isinstance(node, list) and isinstance(part, int) and part < len(node):
             out.append(part)
             node = node[part]
@@ -720,12 +413,12 @@ def _raise_first(file: str, data: Any, problems: list[tuple[list[str | int], str
 
 
 def _code_problem(code: str, known: Collection[str]) -> str | None:
-    if not _CODE_CHARS.match(code):
+    if not CODE_CHARS.match(code):
         return (
             f"{json.dumps(code)} is not a finding code: codes are lower-case letters, digits, "
             "- and /, and patterns may use * and ?"
         )
-    if _is_pattern(code):
+    if is_pattern(code):
         if not any(code_matches(code, k) for k in known):
             return f"pattern {json.dumps(code)} matches no finding code"
         return None
@@ -751,9 +444,9 @@ def _protocol(index: int, entry: Mapping[str, Any]) -> ExpectedProtocol:
         repetition_time=float(entry["repetition_time"]) if "repetition_time" in entry else None,
         slices=int(entry["slices"]) if "slices" in entry else None,
         multiband_factor=int(entry["multiband_factor"]) if "multiband_factor" in entry else None,
-        scheme=_normalise_scheme(scheme) if scheme is not None else None,
+        scheme=normalise_label(scheme) if scheme is not None else None,
         slice_encoding_direction=entry.get("slice_encoding_direction"),
-        tolerance=float(entry.get("tolerance", DEFAULT_TOLERANCE)),
+        tolerance=float(entry.get("tolerance", TIME_TOLERANCE)),
     )
 
 
@@ -763,11 +456,11 @@ def _protocol_problems(protocols: Sequence[ExpectedProtocol]) -> list[tuple[list
     for p in protocols:
         here: list[str | int] = ["protocols", p.index]
         if p.scheme is not None:
-            problem = _scheme_problem(p.scheme)
+            problem = label_problem(p.scheme)
             if problem:
                 problems.append(([*here, "scheme"], problem))
             else:
-                implied = _label_multiband(p.scheme)
+                implied = label_multiband(p.scheme)
                 if (
                     implied is not None
                     and p.multiband_factor is not None
@@ -816,7 +509,7 @@ def _severity_problems(
             problems.append((["severity", code], problem))
     if problems:
         return problems
-    patterns = [c for c in severity if _is_pattern(c)]
+    patterns = [c for c in severity if is_pattern(c)]
     for code in sorted(known):
         if code in severity:
             continue
@@ -883,3 +576,32 @@ def policy_from_document(
         severity=severity,
         ignores=ignores,
     )
+
+
+def root_policies(
+    roots: Iterable[Path],
+    policy_file: Path | None,
+    known_codes: Collection[str],
+    problems: list[Finding] | None = None,
+) -> dict[Path, Policy | None]:
+    """The policy of each dataset root: the one given (its errors propagate, so the
+    command line can exit 2), else the root's own ``slicetime-policy.toml``. A
+    root's broken file is not used: its problem is appended to ``problems`` as a
+    finding (when given) for the report."""
+    roots = list(roots)
+    if policy_file is not None:
+        given = load_policy(policy_file, known_codes)
+        return {Path(root): given for root in roots}
+    found: dict[Path, Policy | None] = {}
+    for root in roots:
+        candidate = find_policy(root)
+        if candidate is None:
+            found[Path(root)] = None
+            continue
+        try:
+            found[Path(root)] = load_policy(candidate, known_codes, display=POLICY_FILENAME)
+        except ReadError as exc:
+            if problems is not None:
+                problems.append(exc.to_finding())
+            found[Path(root)] = None
+    return found

@@ -1,8 +1,8 @@
 """Applying the lab policy to runs and findings. Pure: no I/O.
 
-The policy itself (its format, its :class:`Policy` value and the loader) is
-in :mod:`slicetime.readers.policy`; the value types live there so that the
-loader does not import the rules layer. This module:
+The policy itself is in :mod:`slicetime.policy.model` (the value types) and
+:mod:`slicetime.policy.loading` (its format and the loader). This module, at the
+rules layer (``slicetime.rules`` imports it to register the ``policy/*`` codes):
 
 * :func:`check_protocol` compares one run with the protocol the policy
   expects for it and returns ``policy/*`` findings;
@@ -58,17 +58,12 @@ from __future__ import annotations
 
 from collections.abc import Iterable, Iterator
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, cast
 
-from slicetime.model import AXES, Finding, RunRecord, Severity, Source
-from slicetime.readers.policy import (
-    ExpectedProtocol,
-    IgnoreEntry,
-    Policy,
-    SchemeFamily,
-    scheme_family,
-)
+from slicetime.model import AXES, Axis, Finding, RunRecord, Severity, Source
+from slicetime.policy.model import ExpectedProtocol, IgnoreEntry, Policy, SchemeFamily
 from slicetime.rules.registry import RULES, Hit, reader_code, run_rule, to_finding
+from slicetime.schemes.labels import scheme_family
 from slicetime.schemes.resolve import is_number, parse_direction, positive_number
 
 __all__ = [
@@ -416,7 +411,7 @@ def _check_slices(policy: Policy, protocol: ExpectedProtocol, record: RunRecord)
         if parsed is not None:
             axis = parsed[0]
         elif protocol.slice_encoding_direction is not None:
-            axis = protocol.slice_encoding_direction[0]  # type: ignore[assignment]
+            axis = cast(Axis, protocol.slice_encoding_direction[0])  # validated on loading
         else:
             axis = "k"
     index = AXES.index(axis)

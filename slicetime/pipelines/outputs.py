@@ -1,0 +1,209 @@
+"""Where a correction's outputs go: their names, the ``--out`` checks, the runs that
+would collide, and the temporary files of interrupted batches.
+
+An output is the input's path relative to its dataset root, under ``--out``,
+with ``desc-<label>`` added (BIDS derivatives); its sidecar is named by
+:func:`slicetime.readers.entities.sidecar_name`.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import os
+import re
+from collections.abc import Iterable, Sequence
+from pathlib import Path
+
+from slicetime.model import Finding, RunRecord, Severity
+from slicetime.pipelines.errors import CLASH_CODE
+from slicetime.readers.entities import parse_name, sidecar_name
+
+DEFAULT_DESC = "timealigned"
+TEMP_PREFIX = ".slicetime-partial-"
+_DESC_RE = re.compile(r"[A-Za-z0-9]+\Z")
+
+
+def check_desc(desc: str) -> None:
+    """Refuse a ``--desc`` label that is not letters and digits (a BIDS label)."""
+    if not _DESC_RE.match(desc):
+        raise ValueError(f"--desc {desc!r} must be letters and digits only")
+
+
+def output_name(name: str, desc: str) -> str:
+    """``sub-01_task-x_bold.nii.gz`` → ``sub-01_task-x_desc-<desc>_bold.nii.gz``.
+
+    ``desc`` goes last among the entities, as BIDS derivatives order it; an
+    existing ``desc`` value is replaced.
+    """
+    parsed = parse_name(name)
+    if parsed is None:
+        stem, dot, ext = name.partition(".")
+        return f"{stem}_desc-{desc}{dot}{ext}"
+    entities = {k: v for k, v in parsed.entities.items() if k != "desc"}
+    entities["desc"] = desc
+    parts = [f"{k}-{v}" for k, v in entities.items()]
+    return "_".join([*parts, parsed.suffix]) + parsed.extension
+
+
+def output_path(record_path: str, desc: str) -> Path | None:
+    """The output image of a run, relative to ``--out`` (None: the input path cannot
+    be mirrored)."""
+    rel_in = Path(record_path)
+    if rel_in.is_absolute() or ".." in rel_in.parts or not rel_in.parts:
+        return None
+    return rel_in.with_name(output_name(rel_in.name, desc))
+
+
+def output_files(out: Path, output: str) -> tuple[Path, Path]:
+    """The image and sidecar of an output given relative to ``out``."""
+    image = out / output
+    return image, image.with_name(sidecar_name(image.name))
+
+
+def temp_path(final: Path) -> Path:
+    """Where ``final`` is written before its atomic rename (named by this process)."""
+    return final.with_name(f"{TEMP_PREFIX}{os.getpid()}-{final.name}")
+
+
+def check_output_location(
+    out: Path,
+    roots: Sequence[Path],
+    paths: Sequence[Path] = (),
+    *,
+    include_derivatives: bool = False,
+) -> None:
+    """Refuse an output folder that would put files into an input dataset.
+
+    ``out`` may be outside every root and every given path, or inside a root's
+    ``derivatives/`` folder (the BIDS convention); nowhere else inside a root or
+    a given path. ``roots`` are all the roots given or found, also those that
+    contribute no run. With ``include_derivatives`` even a root's derivatives
+    folder is refused when a given path holds it (the outputs would become inputs).
+    """
+    out_real = Path(os.path.realpath(out))
+    in_derivatives = False
+    for root in roots:
+        root_real = Path(os.path.realpath(root))
+        if out_real == root_real:
+            raise ValueError(f"--out {out} is the input dataset {root}; choose another folder")
+        if out_real.is_relative_to(root_real):
+            rel = out_real.relative_to(root_real)
+            if rel.parts[0] != "derivatives" or len(rel.parts) < 2:
+                raise ValueError(
+                    f"--out {out} is inside the input dataset {root}; use a folder outside "
+                    f"it or under {root / 'derivatives'}"
+                )
+            in_derivatives = True
+        if root_real.is_relative_to(out_real):
+            raise ValueError(f"--out {out} contains the input dataset {root}")
+    for path in paths:
+        path_real = Path(os.path.realpath(path))
+        if out_real == path_real or path_real.is_relative_to(out_real):
+            raise ValueError(f"--out {out} is or contains the input path {path}")
+        if out_real.is_relative_to(path_real) and (include_derivatives or not in_derivatives):
+            raise ValueError(
+                f"--out {out} is inside the input path {path}"
+                + (" and --include-derivatives would read the outputs back as inputs"
+                   if in_derivatives else "")
+                + "; choose a folder outside it"
+            )
+
+
+def clashing_runs(records: Iterable[RunRecord], desc: str) -> dict[str, Finding]:
+    """Runs that would be written onto one output (same output sidecar: names that
+    differ only in ``desc``, ``.nii``/``.nii.gz`` twins, one path in two roots):
+    each gets a ``correct/output-clash`` finding naming all of them (keyed by the
+    run's absolute path)."""
+    groups: dict[str, list[RunRecord]] = {}
+    for record in records:
+        rel_out = output_path(record.path, desc)
+        if rel_out is None:
+            continue
+        key = rel_out.with_name(sidecar_name(rel_out.name)).as_posix()
+        groups.setdefault(key, []).append(record)
+    clashes: dict[str, Finding] = {}
+    for key, group in groups.items():
+        if len(group) < 2:
+            continue
+        for record in group:
+            others = [r for r in group if r is not record]
+            named = ", ".join(
+                o.path if o.root == record.root else f"{o.path} (in {o.root})" for o in others
+            )
+            message = (
+                f"{record.path} and {named} would be written to one output "
+                f"({key} in --out); none of them is corrected"
+            )
+            clashes[record.abs_path] = Finding(
+                CLASH_CODE, Severity.ERROR, message, file=record.path,
+                evidence={"inputs": [record.path, *[o.path for o in others]], "output": key},
+            )
+    return clashes
+
+
+def _owner_alive(name: str) -> bool:
+    """Whether the process that named a temporary file (by its pid) still runs."""
+    pid_text = name[len(TEMP_PREFIX) :].split("-", 1)[0]
+    if not pid_text.isdigit():
+        return False
+    pid = int(pid_text)
+    if pid == os.getpid():
+        return False
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True
+    return True
+
+
+def remove_stale_temporaries(out: Path) -> int:
+    """Delete temporary files an interrupted earlier batch left under ``out``
+    (not those of a batch that is still running)."""
+    removed = 0
+    if not out.is_dir():
+        return 0
+    for dirpath, _dirs, files in os.walk(out):
+        for name in files:
+            if name.startswith(TEMP_PREFIX) and not _owner_alive(name):
+                with contextlib.suppress(FileNotFoundError):
+                    os.unlink(os.path.join(dirpath, name))
+                    removed += 1
+    return removed
+
+
+def prune_empty_folders(out: Path, empty_runs: Iterable[str], desc: str, *,
+                        remove_out: bool) -> None:
+    """Remove the folders made for runs that produced nothing (``empty_runs``: their
+    input paths), so a failed batch leaves nothing behind (and ``out`` itself when
+    this batch created it)."""
+    for path in empty_runs:
+        target = output_path(path, desc)
+        if target is None:
+            continue
+        folder = (out / target).parent
+        while folder != out and out in folder.parents:
+            try:
+                folder.rmdir()
+            except OSError:
+                break  # not empty (other outputs live there) or already gone
+            folder = folder.parent
+    if remove_out:
+        with contextlib.suppress(OSError):
+            out.rmdir()
+
+
+__all__ = [
+    "DEFAULT_DESC",
+    "TEMP_PREFIX",
+    "check_desc",
+    "check_output_location",
+    "clashing_runs",
+    "output_files",
+    "output_name",
+    "output_path",
+    "prune_empty_folders",
+    "remove_stale_temporaries",
+    "temp_path",
+]

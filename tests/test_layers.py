@@ -1,0 +1,148 @@
+"""The import rule of DESIGN.md, checked on the source: a module imports only from its
+own layer or the layers below it.
+
+Layers, bottom up (DEVELOPERS.md, Architecture map):
+
+1. model: ``slicetime.model``, ``slicetime.model_source``, and the lab policy's value
+   types and patterns (``slicetime.policy.model``, ``slicetime.policy.patterns``);
+2. schemes: ``slicetime.schemes``;
+3. readers: ``slicetime.readers``, and loading the lab policy (``slicetime.policy.loading``);
+4. rules: ``slicetime.rules``, and the policy checks (``slicetime.policy.checks``);
+5. engines: ``slicetime.engines``;
+6. pipelines: ``slicetime.pipelines``, and the public API (``slicetime.api``: it
+   composes schemes and engines for Python callers, as a pipeline does for files);
+7. interfaces: ``slicetime.interfaces`` and ``slicetime.__main__``.
+
+The package root ``slicetime`` (``__init__.py``) holds the version, which every layer
+may import, and re-exports the API lazily; it counts as the top layer for what it
+imports itself. Every import is checked, at module level and inside functions
+(a lazy import is still a dependency); the few that go upwards are listed in
+:data:`ALLOWED` with the reason, so a new one fails until someone decides on it.
+"""
+
+from __future__ import annotations
+
+import ast
+from pathlib import Path
+
+PACKAGE = Path(__file__).resolve().parents[1] / "slicetime"
+
+LAYERS: list[tuple[str, int]] = [
+    # most specific prefix first
+    ("slicetime.policy.model", 1),
+    ("slicetime.policy.patterns", 1),
+    ("slicetime.policy.loading", 3),
+    ("slicetime.policy.checks", 4),
+    ("slicetime.policy", 1),  # the package's __init__ imports nothing
+    ("slicetime.model_source", 1),
+    ("slicetime.model", 1),
+    ("slicetime.schemes", 2),
+    ("slicetime.readers", 3),
+    ("slicetime.rules", 4),
+    ("slicetime.engines", 5),
+    ("slicetime.pipelines", 6),
+    ("slicetime.api", 6),
+    ("slicetime.interfaces", 7),
+    ("slicetime.__main__", 7),
+]
+NAMES = {1: "model", 2: "schemes", 3: "readers", 4: "rules", 5: "engines", 6: "pipelines",
+         7: "interfaces", 8: "package root"}
+
+#: (importing module, imported module): why this upward import is accepted
+#: (none today: the demo's tour, which printed through the interfaces from the
+#: pipelines layer, moved to slicetime.interfaces.demo_tour)
+ALLOWED: dict[tuple[str, str], str] = {}
+
+
+def layer_of(module: str) -> int | None:
+    if module == "slicetime":
+        return 8
+    for prefix, layer in LAYERS:
+        if module == prefix or module.startswith(prefix + "."):
+            return layer
+    return None
+
+
+def module_name(path: Path) -> str:
+    parts = list(path.relative_to(PACKAGE.parent).with_suffix("").parts)
+    if parts[-1] == "__init__":
+        parts.pop()
+    return ".".join(parts)
+
+
+def imports_of(path: Path, module: str) -> list[tuple[str, int, list[str]]]:
+    """(imported module, line, names) of every import statement in the file."""
+    tree = ast.parse(path.read_text(encoding="utf-8"))
+    package = module if path.name == "__init__.py" else module.rpartition(".")[0]
+    found: list[tuple[str, int, list[str]]] = []
+    for node in ast.walk(tree):
+        if isinstance(node, ast.Import):
+            found += [(alias.name, node.lineno, []) for alias in node.names]
+        elif isinstance(node, ast.ImportFrom):
+            if node.level:
+                base = package.split(".")
+                base = base[: len(base) - (node.level - 1)]
+                target = ".".join([*base, node.module] if node.module else base)
+            else:
+                target = node.module or ""
+            names = [alias.name for alias in node.names]
+            # "from slicetime.rules import timing" imports the module slicetime.rules.timing
+            for name in names:
+                sub = f"{target}.{name}"
+                if layer_of(sub) is not None and (PACKAGE.parent / (sub.replace(".", "/") + ".py")
+                                                  ).exists():
+                    found.append((sub, node.lineno, []))
+                    break
+            else:
+                found.append((target, node.lineno, names))
+    return [f for f in found if f[0] == "slicetime" or f[0].startswith("slicetime.")]
+
+
+def violations() -> list[str]:
+    out = []
+    for path in sorted(PACKAGE.rglob("*.py")):
+        module = module_name(path)
+        own = layer_of(module)
+        assert own is not None, f"{module} has no layer: add it to LAYERS (and DEVELOPERS.md)"
+        for target, line, names in imports_of(path, module):
+            if target == "slicetime" and set(names) <= {"__version__"}:
+                continue  # the version, from the package root, is for everyone
+            theirs = layer_of(target)
+            assert theirs is not None, f"{module}:{line} imports {target}, which has no layer"
+            if theirs <= own:
+                continue
+            key = next((k for k in ALLOWED if module.startswith(k[0]) and target == k[1]),
+                       None)
+            if key is not None:
+                continue
+            out.append(f"{path.relative_to(PACKAGE.parent)}:{line}: {module} "
+                       f"({NAMES[own]}) imports {target} ({NAMES[theirs]})")
+    return out
+
+
+def test_no_module_imports_from_a_higher_layer() -> None:
+    found = violations()
+    # the walk saw the package: some imports cross layers downwards
+    assert len(list(PACKAGE.rglob("*.py"))) > 60
+    assert not found, "imports against the layer order:\n" + "\n".join(found)
+
+
+def test_every_allowed_exception_is_still_needed() -> None:
+    """An entry of ALLOWED whose import is gone must be removed (the list stays true)."""
+    for (module, target), _why in ALLOWED.items():
+        used = False
+        for path in PACKAGE.rglob("*.py"):
+            name = module_name(path)
+            if name == module or name.startswith(module + "."):
+                used |= any(t == target for t, _, _ in imports_of(path, name))
+        assert used, f"ALLOWED lists {module} -> {target}, which no longer exists"
+
+
+def test_the_checker_sees_an_upward_import(tmp_path: Path) -> None:
+    """The check is not vacuous: a rules module importing a pipeline is caught."""
+    fake = tmp_path / "slicetime" / "rules" / "bad.py"
+    fake.parent.mkdir(parents=True)
+    fake.write_text("def f():\n    from slicetime.pipelines.audit import audit_paths\n")
+    found = imports_of(fake, "slicetime.rules.bad")
+    assert found == [("slicetime.pipelines.audit", 2, ["audit_paths"])]
+    assert layer_of(found[0][0]) == 6 and layer_of("slicetime.rules.bad") == 4
