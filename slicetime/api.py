@@ -8,7 +8,11 @@ no function has an implementation of its own that the commands do not share.
 * :func:`reference_time` — the reference a correction aligns to (write it as
   ``StartTime``);
 * :func:`slice_times` — ``SliceTiming`` for a protocol (``slicetime timing``);
-* :func:`infer_scheme` — the acquisition scheme a list of times describes.
+* :func:`infer_scheme` — the acquisition scheme a list of times describes;
+* :func:`audit` — every run under dataset folders, with its findings
+  (``slicetime audit``);
+* :func:`inspect` — one run with exactly the findings the audit gives it
+  (``slicetime show``).
 
 Times follow BIDS: seconds from the start of each volume, listed along the
 ``SliceEncodingDirection`` (so with ``k-`` the list runs from the last slice
@@ -18,6 +22,7 @@ index down to 0), exactly as in a sidecar's ``SliceTiming``.
 from __future__ import annotations
 
 import math
+import os
 from collections.abc import Sequence
 from typing import TYPE_CHECKING, Any, Literal, cast
 
@@ -26,6 +31,7 @@ if TYPE_CHECKING:  # the heavy imports happen only when a function is called
 
     from slicetime.engines.plan import ReferenceChoice
     from slicetime.model import Axis, Direction, Scheme, SliceSchedule
+    from slicetime.pipelines.audit import AuditResult, RunResult
 
 _DIRECTIONS = ("i", "j", "k", "i-", "j-", "k-")
 
@@ -370,4 +376,108 @@ def infer_scheme(slice_timing: Sequence[float], *,
     return infer(times)
 
 
-__all__ = ["correct_array", "correct_image", "infer_scheme", "reference_time", "slice_times"]
+def audit(
+    paths: str | os.PathLike[str] | Sequence[str | os.PathLike[str]],
+    *,
+    policy: str | os.PathLike[str] | None = None,
+    include_derivatives: bool = False,
+    include_sourcedata: bool = False,
+    include_hidden: bool = False,
+    source: bool | None = None,
+    verify: bool = False,
+    jobs: int = 1,
+) -> AuditResult:
+    """Audit every run under ``paths``, as ``slicetime audit`` does.
+
+    Parameters
+    ----------
+    paths : path or sequence of paths
+        Dataset roots, subject folders or run files.
+    policy : path, optional
+        A lab policy file (TOML); by default each dataset's
+        ``slicetime-policy.toml``, if any.
+    include_derivatives, include_sourcedata, include_hidden : bool
+        Also walk ``derivatives/``, ``sourcedata/``, hidden folders.
+    source : bool, optional
+        Check runs against their DICOM series under ``sourcedata/``: ``None``
+        (default) when that folder exists, ``True`` always, ``False`` never.
+    verify : bool
+        Also read each run's image data and check its slice order (slower).
+    jobs : int
+        Local worker processes.
+
+    Returns
+    -------
+    AuditResult
+        ``runs``: one ``RunResult`` per run in report order, each with its
+        ``record`` (``path``, ``schedule``, ``scheme``, ``metadata``, ...),
+        ``findings`` and ``ignored`` (by the policy); ``dataset_findings``;
+        ``counts()`` by severity; ``exit_code(fail_on)`` as the command's.
+
+    Raises
+    ------
+    slicetime.readers.errors.ReadError
+        A given path that does not exist.
+    slicetime.pipelines.errors.NoRunsError
+        A given path that holds no run.
+
+    Examples
+    --------
+    >>> import slicetime
+    >>> result = slicetime.audit("my-dataset")  # doctest: +SKIP
+    >>> [(r.record.path, [f.code for f in r.findings]) for r in result.runs]  # doctest: +SKIP
+    """
+    from pathlib import Path
+
+    from slicetime.pipelines.audit import audit_paths
+    from slicetime.pipelines.executor import make_executor
+    from slicetime.readers.source import SourceOptions
+
+    given: Sequence[str | os.PathLike[str]] = (
+        [paths] if isinstance(paths, (str, os.PathLike)) else paths)
+    mode: Literal["auto", "on", "off"] = "auto" if source is None else "on" if source else "off"
+    executor = make_executor(jobs, None, light=not verify)
+    try:
+        return audit_paths(
+            [Path(p) for p in given],
+            include_derivatives=include_derivatives,
+            include_sourcedata=include_sourcedata,
+            include_hidden=include_hidden,
+            policy_file=None if policy is None else Path(policy),
+            executor=executor,
+            verify=verify,
+            source=SourceOptions(mode=mode),
+        )
+    finally:
+        executor.close()
+
+
+def inspect(run: str | os.PathLike[str], *,
+            policy: str | os.PathLike[str] | None = None) -> RunResult:
+    """One run with exactly the findings :func:`audit` gives it (``slicetime show``).
+
+    Parameters
+    ----------
+    run : path
+        The run's image (``*_bold.nii.gz``). Its dataset is audited from the
+        header bytes (so dataset-wide checks and the lab policy apply).
+    policy : path, optional
+        A lab policy file instead of the dataset's own.
+
+    Returns
+    -------
+    RunResult
+        ``record`` (the resolved schedule with the source of every value in
+        ``record.schedule.sources``, the scheme, the merged sidecar metadata),
+        ``findings`` and ``ignored``. A file that cannot be read gives a
+        result with that one finding.
+    """
+    from pathlib import Path
+
+    from slicetime.pipelines.audit import inspect_run
+
+    return inspect_run(Path(run), policy_file=None if policy is None else Path(policy))
+
+
+__all__ = ["audit", "correct_array", "correct_image", "infer_scheme", "inspect",
+           "reference_time", "slice_times"]

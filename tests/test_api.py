@@ -191,3 +191,35 @@ def test_readme_python_examples_run(tmp_path: Path, monkeypatch: pytest.MonkeyPa
     monkeypatch.chdir(tmp_path)
     for block in blocks:
         exec(compile(block, "README.md", "exec"), {})
+
+
+def test_audit_and_inspect_give_what_the_commands_report(tmp_path: Path) -> None:
+    # one implementation: the API's findings are those of `audit --format json` and
+    # `show --json`, run for run
+    from slicetime.pipelines.demo import build_demo_dataset
+
+    root = tmp_path / "study"
+    build_demo_dataset(root)
+    result = slicetime.audit(root)
+    printed = CliRunner().invoke(cli, ["audit", str(root), "--format", "json"])
+    report = json.loads(printed.stdout)
+    assert [r.record.path for r in result.runs] == [r["path"] for r in report["runs"]]
+    assert [[f.code for f in r.findings] for r in result.runs] == \
+        [[f["code"] for f in r["findings"]] for r in report["runs"]]
+    assert result.counts() == {k: report["summary"][k] for k in ("error", "warning", "note")}
+    assert result.exit_code("error") == printed.exit_code
+    flagged = next(r for r in result.runs if r.findings)
+    one = slicetime.inspect(flagged.record.abs_path)
+    shown = json.loads(CliRunner().invoke(
+        cli, ["show", flagged.record.abs_path, "--json"]).stdout)
+    assert [f.code for f in one.findings] == [f["code"] for f in shown["findings"]]
+    assert [f.code for f in one.findings] == [f.code for f in flagged.findings]
+    assert one.record.scheme == flagged.record.scheme
+
+
+def test_audit_of_a_folder_without_runs_is_an_error(tmp_path: Path) -> None:
+    from slicetime.pipelines.errors import NoRunsError
+
+    (tmp_path / "empty").mkdir()
+    with pytest.raises(NoRunsError):
+        slicetime.audit(tmp_path / "empty")

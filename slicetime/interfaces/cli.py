@@ -143,27 +143,13 @@ def show(file: Path, as_json: bool, fail_on: str, policy_file: Path | None) -> N
     """
     from slicetime.interfaces.report_json import dumps, run_object
     from slicetime.interfaces.terminal import make_console, render_show
-    from slicetime.model import RunRecord, Severity
-    from slicetime.pipelines.audit import RunResult, audit_paths
-    from slicetime.readers.dataset import find_root
-    from slicetime.readers.errors import ReadError
-    from slicetime.readers.record import relative_display
+    from slicetime.model import Severity
+    from slicetime.pipelines.audit import inspect_run
 
     if _is_dicom_input(file):
         _show_series(file, as_json)
         return
-    image = _show_target(file)
-    absolute = image if image.is_absolute() else image.absolute()
-    root = find_root(absolute.parent)
-    try:
-        result = audit_paths([root, absolute], policy_file=policy_file, require_runs=False)
-        run = next(r for r in result.runs if r.record.abs_path == str(absolute))
-    except ReadError as exc:
-        if exc.code == "file/missing":
-            raise
-        shown = relative_display(absolute, root)
-        run = RunResult(RunRecord(path=shown, abs_path=str(absolute), root=str(root)),
-                        [exc.to_finding()])
+    run = inspect_run(_show_target(file), policy_file=policy_file)
     if as_json:
         from slicetime.interfaces.source_view import run_source_object
 

@@ -606,6 +606,29 @@ def audit_paths(
     return result
 
 
+def inspect_run(image: Path, *, policy_file: Path | None = None,
+                source: SourceOptions | None = None) -> RunResult:
+    """One run with exactly the findings :func:`audit_paths` gives it: its dataset is
+    audited (header bytes only) with the lab policy, so the dataset-wide checks are
+    included (what ``slicetime show`` prints). A file that cannot be read at all gives
+    a result with that one finding; a missing file raises ReadError."""
+    absolute = image if image.is_absolute() else image.absolute()
+    root = find_root(absolute.parent)
+    try:
+        result = audit_paths([root, absolute], policy_file=policy_file, source=source,
+                             require_runs=False)
+        return next(r for r in result.runs if r.record.abs_path == str(absolute))
+    except ReadError as exc:
+        if exc.code == "file/missing":
+            raise
+        shown = relative_display(absolute, root)
+        return RunResult(RunRecord(path=shown, abs_path=str(absolute), root=str(root)),
+                         [exc.to_finding()])
+    except StopIteration:  # not a run the walker recognises (a name it skips)
+        raise ReadError("file/not-nifti", str(absolute), None,
+                        f"{absolute}: not an image the audit reads as a run") from None
+
+
 __all__ = [
     "AuditResult",
     "AuditTotals",
@@ -619,4 +642,5 @@ __all__ = [
     "check_paths_hold_runs",
     "dataset_name",
     "failed_run",
+    "inspect_run",
 ]
