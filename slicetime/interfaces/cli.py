@@ -364,14 +364,12 @@ def _audit_report(source: Any, out: Any, fmt: str, fail_on: str, show_all: bool,
 
 def _write_report(path: Path, write: Callable[[Any], None]) -> None:
     """Write a report atomically (a temporary name beside it, then a rename)."""
-    tmp = path.with_name(f".{path.name}.tmp-{os.getpid()}")
+    from slicetime.readers.atomic import atomic_file
+
     try:
-        with open(tmp, "w", encoding="utf-8", newline="\n") as fh:
+        with atomic_file(path) as fh:
             write(fh)
-        os.replace(tmp, path)
     except OSError as exc:
-        with contextlib.suppress(OSError):
-            tmp.unlink()
         raise UserError(f"{path}: cannot write the report: {exc.strerror or exc}") from None
 
 
@@ -417,10 +415,10 @@ def _require_matplotlib(option: str) -> None:
 
 
 def _write_text(path: Path, text: str) -> None:
+    from slicetime.readers.atomic import write_atomic
+
     try:
-        tmp = path.with_name(f".{path.name}.tmp-{os.getpid()}")
-        tmp.write_text(text, encoding="utf-8")
-        os.replace(tmp, path)
+        write_atomic(path, text)
     except OSError as exc:
         raise UserError(f"{path}: cannot write the report: {exc.strerror or exc}") from None
 

@@ -642,19 +642,10 @@ def write_html_stream(
 ) -> None:
     """Write the report atomically (a temporary file beside it, fsync, then a rename),
     so a reader never sees half a report. OSError propagates."""
-    target = os.fspath(path)
-    folder = os.path.dirname(os.path.abspath(target))
-    tmp = os.path.join(folder, f".{os.path.basename(target)}.tmp-{os.getpid()}")
-    try:
-        with open(tmp, "w", encoding="utf-8") as fh:
-            _write_page(source, collector, fh, generated=generated)
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, target)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
+    from slicetime.readers.atomic import atomic_file
+
+    with atomic_file(path) as fh:
+        _write_page(source, collector, fh, generated=generated)
 
 
 def _collect(result: AuditResult) -> DiagramCollector:

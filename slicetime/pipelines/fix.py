@@ -48,6 +48,7 @@ from slicetime.pipelines.json_splice import DELETE, Layout, scan, splice
 from slicetime.policy.checks import select_protocol
 from slicetime.policy.loading import root_policies
 from slicetime.policy.model import Policy
+from slicetime.readers.atomic import write_atomic
 from slicetime.readers.dataset import find_root
 from slicetime.readers.entities import parse_name, sidecar_path
 from slicetime.readers.sidecar import MAX_SIDECAR_BYTES, TIMING_FIELDS
@@ -909,19 +910,10 @@ def _write_journal(path: Path, roots: Sequence[str], token: str,
 
 
 def _atomic_write(path: Path, data: bytes, mode: int | None, temp: str | None = None) -> None:
-    """Write ``data`` to ``path`` by rename; a link at ``path`` is replaced, never followed."""
-    tmp = path.with_name(temp or f".slicetime-{secrets.token_hex(8)}.tmp")
-    try:
-        with open(tmp, "xb") as fh:
-            fh.write(data)
-            fh.flush()
-            os.fsync(fh.fileno())
-        if mode is not None:
-            os.chmod(tmp, mode)
-        os.replace(tmp, path)
-    finally:
-        with contextlib.suppress(FileNotFoundError):
-            os.unlink(tmp)
+    """Write ``data`` to ``path`` by rename; a link at ``path`` is replaced, never followed.
+    ``temp`` names the temporary file (so an interrupted apply or undo finds it)."""
+    write_atomic(path, data, temp=path.with_name(temp or f".slicetime-{secrets.token_hex(8)}.tmp"),
+                 mode=mode)
 
 
 # --------------------------------------------------------------------------- undo

@@ -9,7 +9,6 @@ the sidecars that are on disk.
 
 from __future__ import annotations
 
-import contextlib
 import json
 import os
 import re
@@ -22,6 +21,7 @@ from slicetime.engines.interpolate import Engine, ResampleStats
 from slicetime.engines.plan import ResamplingPlan
 from slicetime.model import RunRecord
 from slicetime.pipelines.outputs import output_files, temp_path
+from slicetime.readers.atomic import write_atomic
 from slicetime.readers.volumes import file_sha256
 
 PROVENANCE_KEY = "SliceTimeAlignment"
@@ -75,18 +75,10 @@ def unescaped(text: str) -> str:
 
 
 def write_json_atomic(path: Path, content: Any) -> None:
-    tmp = temp_path(path)
-    content = json_safe(content)
-    try:
-        with open(tmp, "x", encoding="utf-8") as fh:
-            json.dump(content, fh, indent=2, ensure_ascii=False, allow_nan=False)
-            fh.write("\n")
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, path)
-    finally:
-        with contextlib.suppress(FileNotFoundError):
-            os.unlink(tmp)
+    """``content`` as indented JSON at ``path``, atomically (its temporary name is the
+    one :func:`remove_stale_temporaries` recognises after a crash)."""
+    text = json.dumps(json_safe(content), indent=2, ensure_ascii=False, allow_nan=False)
+    write_atomic(path, text + "\n", temp=temp_path(path))
 
 
 def dataset_uri(root: str | Path) -> str:
