@@ -43,9 +43,9 @@ def atomic_file(
     tmp = Path(temp) if temp is not None else default_temp(target)
     # created exclusively: an existing file at the temporary name is never touched
     if binary:
-        fh: IO[Any] = open(tmp, "xb")  # noqa: SIM115  (closed below)
+        fh: IO[Any] = open(tmp, "xb")
     else:
-        fh = open(tmp, "x", encoding="utf-8", newline="\n")  # noqa: SIM115
+        fh = open(tmp, "x", encoding="utf-8", newline="\n")
     try:
         with fh:
             yield fh
