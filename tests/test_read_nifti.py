@@ -10,6 +10,7 @@ import sys
 import time
 import tracemalloc
 from pathlib import Path
+from typing import Any
 
 import nibabel as nib
 import numpy as np
@@ -506,3 +507,23 @@ def test_fuzzed_headers_never_crash(
     else:
         header_size = 348 if info.version == 1 else 540  # nifti1.h / nifti2.h (from memory)
         assert max(info.vox_offset, header_size) + info.data_bytes <= len(plain)
+
+
+@pytest.mark.parametrize(("version", "header_class"),
+                         [(1, nib.Nifti1Header), (2, nib.Nifti2Header)])
+def test_header_layout_matches_nibabel(version: int, header_class: Any) -> None:
+    # one table of field offsets serves the reader and the output patching; nibabel's
+    # header dtypes (an independent implementation of nifti1.h / nifti2.h) must agree
+    import struct
+
+    from slicetime.readers.nifti import HEADER_LAYOUT
+
+    fields = header_class.template_dtype.fields
+    for name, (offset, code) in HEADER_LAYOUT[version].items():
+        dtype, nib_offset = fields[name][0], fields[name][1]
+        size = dtype.itemsize
+        if version == 2 and name == "magic":  # we read the magic with its 4 eol_check bytes
+            size += fields["eol_check"][0].itemsize
+            assert fields["eol_check"][1] == nib_offset + dtype.itemsize
+        assert offset == nib_offset, name
+        assert struct.calcsize("<" + code) == size, name

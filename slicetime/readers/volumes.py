@@ -42,7 +42,7 @@ import numpy as np
 from slicetime.model import HeaderInfo
 
 from .errors import ReadError, open_regular, os_error
-from .nifti import data_offset_problem, extension_problem
+from .nifti import HEADER_LAYOUT, data_offset_problem, extension_problem
 
 try:  # pragma: no cover - depends on the environment
     from isal import igzip_threaded as _threaded_gzip
@@ -75,30 +75,11 @@ FLOAT32_CODE = 16
 _HASH_CHUNK = 1 << 20
 
 # (offset, format) of the header fields a corrected output changes; nifti1.h / nifti2.h
-_PATCH_1 = {
-    "datatype": (70, "h"),
-    "bitpix": (72, "h"),
-    "slice_start": (74, "h"),
-    "scl_slope": (112, "f"),
-    "scl_inter": (116, "f"),
-    "slice_end": (120, "h"),
-    "slice_code": (122, "B"),
-    "cal_max": (124, "f"),
-    "cal_min": (128, "f"),
-    "slice_duration": (132, "f"),
-}
-_PATCH_2 = {
-    "datatype": (12, "h"),
-    "bitpix": (14, "h"),
-    "scl_slope": (176, "d"),
-    "scl_inter": (184, "d"),
-    "cal_max": (192, "d"),
-    "cal_min": (200, "d"),
-    "slice_duration": (208, "d"),
-    "slice_start": (224, "q"),
-    "slice_end": (232, "q"),
-    "slice_code": (496, "i"),
-}
+#: the header fields a corrected output's header gets new values for
+_PATCHED = ("datatype", "bitpix", "slice_start", "scl_slope", "scl_inter", "slice_end",
+            "slice_code", "cal_max", "cal_min", "slice_duration")
+_PATCH_1 = {name: HEADER_LAYOUT[1][name] for name in _PATCHED}
+_PATCH_2 = {name: HEADER_LAYOUT[2][name] for name in _PATCHED}
 
 
 def data_type(header: HeaderInfo, shown: str) -> np.dtype[Any]:
