@@ -266,7 +266,7 @@ def simulate_brain(sim: BrainRun) -> np.ndarray:
         shifted = t[None, None, :] - latency[:, :, z, None]
         s += sim.task * task_map[:, :, z, None] * at(task, shifted.reshape(-1)).reshape(
             shifted.shape)
-        for course, cmap in zip(networks, net_maps):
+        for course, cmap in zip(networks, net_maps, strict=False):
             s += sim.network * cmap[:, :, z, None] * at(course, t)[None, None, :]
         s += sim.global_signal * at(glob, t)[None, None, :]
         rel = t / max(nv * tr, 1.0)
@@ -275,7 +275,7 @@ def simulate_brain(sim: BrainRun) -> np.ndarray:
         delayed = t[None, None, :] - card_delay[:, :, z, None]
         s += sim.cardiac * card_map[:, :, z, None] * at(card, delayed.reshape(-1)).reshape(
             delayed.shape)
-        for onset, size, emap in zip(event_onsets, event_sizes, event_maps):
+        for onset, size, emap in zip(event_onsets, event_sizes, event_maps, strict=False):
             after = t >= onset
             if after.any():
                 s[:, :, after] += size * emap[:, :, z, None] * np.exp(
