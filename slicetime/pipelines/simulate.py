@@ -162,6 +162,8 @@ class BrainRun:
     event_size: float = 1.0  # % step, decaying
     noise: float = 2.0  # voxel noise sd, % of baseline (tSNR 50)
     ar1: float = 0.3  # lag-one autocorrelation of the noise over volumes
+    #: a stress test: the respiration map changes sign between the lower and upper slices
+    respiration_flip: bool = False
     seed: int = 0
 
 
@@ -235,6 +237,8 @@ def simulate_brain(sim: BrainRun) -> np.ndarray:
     resp_map = 1.0 + 0.4 * _smooth_field(rng, (nx, ny, nz), 4)
     edge = np.gradient(inside.astype(float), axis=1)[:, :, None] * 2.0
     resp_map = resp_map + edge
+    if sim.respiration_flip:
+        resp_map[:, :, nz // 2:] *= -1.0
     card_map = np.clip(_smooth_field(rng, (nx, ny, nz), 2) - 0.5, 0, None) * 2.0
     card_delay = 0.1 * (1 + _smooth_field(rng, (nx, ny, nz), 4)).clip(0, None)
     task_map = np.clip(0.5 + _smooth_field(rng, (nx, ny, nz), 3), 0, None)
