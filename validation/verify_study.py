@@ -401,6 +401,91 @@ def figures(summary: dict[str, object], out: Path) -> list[str]:
 # --------------------------------------------------------------------------- report
 
 
+METHOD = """\
+## Method
+
+1. **Reduce** the run in one streaming pass (batches of 16 volumes): an in-brain mask from
+   the first batch's mean (voxels above 0.2 × the 98th percentile), then, per volume, the
+   mean of each quarter of each slice (4 channels per slice; two quarters on each side of
+   the image make its two *halves*).
+2. **Prepare** each channel course: drop cosine terms below 0.01 Hz (mean, drifts), scale
+   to unit variance, and take its discrete Fourier transform; per slice and half, sum the
+   channels' spectra.
+3. **Candidates**: the claim; the claim flipped along the slice axis and reversed in
+   time; no offsets; sequential and interleaved (steps 2 and 3, every start, both
+   directions) orders for every multiband factor ≤ 6 that divides the slice count, over
+   the claim's acquisition window; identical time lists scored once (about 40-90).
+4. **Align, allowing for aliasing.** A component whose true frequency is *g* reaches
+   slice *z* with phase 2π *g* *t*<sub>z</sub>. Sampled every TR it appears at the bin
+   *f* = |*g* − *k*/TR| (sampling theorem), but its slice-to-slice phases keep the true
+   *g*. At every bin *f* each candidate is therefore tried with every *g* = *f* + *k*/TR
+   up to {max_hz} Hz (respiration, its harmonic and the heart), and the one that aligns the
+   slices best is kept. The choice of *k* is made on one half of the image and the power
+   counted on the other half (and across the halves), so that choosing cannot favour any
+   schedule on noise: with independent halves, pure noise scores the same, on average,
+   for every schedule.
+5. **Weigh every bin by its coherence, not its power.** Each bin contributes the share
+   of its power that the schedule aligns: its coherent power divided by the larger of
+   the channels' power at that bin and the running median of that power over 9 bins. A periodic component — respiration, cardiac pulsation, aliased anywhere — or the
+   strong slow bins therefore cannot carry a verdict alone: the evidence has to be
+   spread over the spectrum. The score of a candidate is the mean pairwise coherence of
+   the aligned channels over the bins.
+6. **Calibrate.** *Timing evidence*: {sets} sets of as many orders as there are
+   candidates, made by shuffling the claimed times across slices and scored the same
+   way; the best candidate must beat the best order of every set (permutation p of
+   1/{sets_plus}). *Differences*: a moving-block bootstrap over frequency bins (blocks of
+   0.01 Hz, at least 3 bins; the same blocks for every candidate) gives a z for the
+   difference between any alternative and the claim, overall and in each half of the
+   image separately.
+7. **Verdict.** *undecidable* without timing evidence. *contradicted* when one of the
+   three best-scoring materially different alternatives beats the claim with z ≥
+   {z_contradict:g} over the bins, an effect ≥ {min_effect:g} (its lead over the claim as a share
+   of the best candidate's lead over shuffled orders) **and** z ≥ {z_region:g} in each half of
+   the image on its own; when the halves disagree the verdict is *undecidable*.
+   *supported* when the claim beats the best of every shuffled set **and** each of the
+   three best alternatives with z ≤ −{z_support:g}, both halves agreeing (the claim beats the
+   alternatives, not merely "no worse"). *consistent* (new, weaker) when the claim beats
+   shuffled orders and no alternative beats it, but one fits about as well (z below
+   {z_tie:g} or an effect below {tie_effect:g}): the data fit the claim without singling it out.
+   *undecidable* otherwise. Milliseconds: RepetitionTime above 100 or SliceTiming that
+   fits the window once divided by 1000 are converted to seconds first, reported with the
+   audit's codes (`tr/units-ms`, `timing/units-ms`), and the order is verified in seconds.
+
+## Why this evidence
+
+The previous version aligned the slices with a phase ramp set by the frequency at which a
+component *appears*. That is right for slow neural signal, which is sampled well above
+its Nyquist rate, and wrong for respiration and cardiac pulsation above 1/(2 TR): their
+slice phases follow their true frequency, so after folding they can run backwards (a
+respiration at 0.3 Hz seen at 0.1 Hz with TR 2.5 s behaves as if the slices were
+acquired in the reverse order, three times over). Real runs at TR ≥ 2 s nearly always
+carry such signal; on held-out runs with a small respiration it contradicted 4 of 6 true
+claims, always in favour of the reversed or flipped order.
+
+Three remedies were possible: remove narrow-band peaks before scoring; score only
+frequencies where the timing is interpretable; or model the unknown true frequency and
+require agreement across frequencies and regions. Removing peaks alone does not work
+because respiration and heart rates wander: at TR 2.5 s a respiration between 0.22 and
+0.32 Hz folds onto 0.08-0.18 Hz, most of the spectrum, and the wandering heart rate
+folds over all of it. Scoring only low frequencies does not work either, because the
+folded bands land anywhere, including near 0 Hz (a heart at exactly 1/TR). Modelling the
+true frequency turns physiology from a source of false accusations into evidence for the
+true schedule, which is also what raises detection at TR 0.8 s (cardiac pulsation spans
+almost a full cycle across the slices). The price of modelling — a wrong schedule may
+fit some bins with some other *k* — is paid by choosing *k* on one half of the image
+and scoring it on the other, by weighing bins by coherence so that no single band can
+decide, and by asking both halves of the image to agree before accusing a claim.
+
+What it cannot protect against: physiology whose *sign* changes between groups of slices
+(e.g. opposite in the lower and upper slices) makes the true schedule cancel it and can
+make a wrong schedule fit better; with weak neural signal this can still produce a
+contradiction (the stress-test row below). Anything that delays the signal differently
+from slice to slice (regional latency, a travelling wave, slice-wise motion) is read as
+timing too; a constant offset of every slice is invisible.
+"""
+
+
+
 def _table(title: str, rows: dict[str, dict[str, tuple[int, int]]], fields: Sequence[str],
            labels: Sequence[str]) -> list[str]:
     lines = ["", title, "", "| | " + " | ".join(labels) + " |",
@@ -417,15 +502,19 @@ def write_markdown(summary: dict[str, object], power: dict[str, dict[str, float]
     assert isinstance(conf, dict)
     fa, n_true = s["false_accusations"]  # type: ignore[misc]
     lines = [
-        "# Verify under physiology: the simulation study",
+        "# Verify: does a run's own data support its claimed slice order?",
         "",
         "Generated by `validation/verify_study.py`"
         + (" (reduced design: `--quick`)" if quick else "")
         + f" in {seconds / 60:.0f} min; {s['runs']} simulated runs, {s['verifications']} "
         f"verifications; median {s['seconds_per_verify']} s per verification "
-        f"({INPLANE} × {INPLANE} × slices × volumes, in memory). The method and the "
-        "reasoning behind it are in `docs/verify.md`.",
+        f"({INPLANE} × {INPLANE} × slices × volumes, in memory). Thresholds were set on the "
+        "reduced design (`--quick`, other seeds) before this run.",
         "",
+        METHOD.format(max_hz=ev.MAX_TRUE_HZ, sets=ev.N_SETS, sets_plus=ev.N_SETS + 1,
+                      z_contradict=ev.Z_CONTRADICT, min_effect=ev.MIN_EFFECT,
+                      z_region=ev.Z_REGION, z_support=ev.Z_SUPPORT, z_tie=ev.Z_TIE,
+                      tie_effect=ev.TIE_EFFECT),
         "## Simulated runs",
         "",
         f"`BrainRun` (`slicetime/pipelines/simulate.py`), {INPLANE} × {INPLANE} voxels per "

@@ -297,23 +297,28 @@ def _aligned(y: np.ndarray, times: np.ndarray, freqs: np.ndarray, ks: np.ndarray
     return np.matmul(psi[:, inverse].transpose(1, 0, 2), w)
 
 
-def _pick(pa: np.ndarray, pb: np.ndarray, cross: np.ndarray, valid: np.ndarray
+def _pick(ta: np.ndarray, tb: np.ndarray, valid: np.ndarray
           ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """From ``(k, q, bins)`` region powers and their cross term: the total, and each
+    """From ``(k, q, bins)`` aligned sums of the two regions: the total, and each
     region's power at the order ``k`` chosen (the strongest) on the other region."""
-    invalid = ~valid[:, None, :]
-    ka = np.argmax(np.where(invalid, -1.0, pa), axis=0)[None]
-    kb = np.argmax(np.where(invalid, -1.0, pb), axis=0)[None]
-    a_at_b = np.take_along_axis(pa, kb, axis=0)[0]
-    b_at_a = np.take_along_axis(pb, ka, axis=0)[0]
-    total = (a_at_b + b_at_a + np.take_along_axis(cross, ka, axis=0)[0]
-             + np.take_along_axis(cross, kb, axis=0)[0])
-    return total, a_at_b, b_at_a
+    pa = ta.real ** 2 + ta.imag ** 2
+    pb = tb.real ** 2 + tb.imag ** 2
+    invalid = np.broadcast_to(~valid[:, None, :], pa.shape)
+    chosen = []
+    for p in (pa, pb):
+        masked = p.copy()
+        masked[invalid] = -1.0
+        chosen.append(np.argmax(masked, axis=0)[None])
+    ka, kb = chosen
 
+    def at(x: np.ndarray, k: np.ndarray) -> np.ndarray:
+        return np.take_along_axis(x, k, axis=0)[0]
 
-def _powers(ta: np.ndarray, tb: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    return (ta.real ** 2 + ta.imag ** 2, tb.real ** 2 + tb.imag ** 2,
-            ta.real * tb.real + ta.imag * tb.imag)
+    a_at_b = at(pa, kb)
+    b_at_a = at(pb, ka)
+    cross_a = (at(ta, ka) * at(tb, ka).conj()).real
+    cross_b = (at(ta, kb) * at(tb, kb).conj()).real
+    return a_at_b + b_at_a + cross_a + cross_b, a_at_b, b_at_a
 
 
 def bin_scores(spectra: Spectra, schedules: np.ndarray, max_hz: float = MAX_TRUE_HZ
@@ -338,8 +343,8 @@ def bin_scores(spectra: Spectra, schedules: np.ndarray, max_hz: float = MAX_TRUE
         ta = _aligned(spectra.region_a, times, spectra.freqs, ks, spectra.repetition_time)
         tb = _aligned(spectra.region_b, times, spectra.freqs, ks, spectra.repetition_time)
         part = slice(start, start + chunk)
-        total[part], ra[part], rb[part] = _pick(*_powers(ta.transpose(1, 0, 2),
-                                                         tb.transpose(1, 0, 2)), valid)
+        total[part], ra[part], rb[part] = _pick(ta.transpose(1, 0, 2), tb.transpose(1, 0, 2),
+                                                valid)
     return BinScores(total, ra, rb)
 
 
@@ -371,8 +376,7 @@ def shuffled_totals(spectra: Spectra, claimed: Sequence[float], count: int, seed
     phi = np.exp(-2j * np.pi * values[:, None] * spectra.freqs[None, :]).astype(np.complex64)
     psi = np.exp(-2j * np.pi * ks[:, None] * values[None, :] / spectra.repetition_time
                  ).astype(np.complex64)
-    regions = [np.ascontiguousarray(y.astype(np.complex64))
-               for y in (spectra.region_a, spectra.region_b)]
+    both = np.stack([spectra.region_a, spectra.region_b], axis=1).astype(np.complex64)
     rng = np.random.default_rng(seed + 7919)
     out = np.empty(count)
     bins = spectra.freqs.size
@@ -381,13 +385,11 @@ def shuffled_totals(spectra: Spectra, claimed: Sequence[float], count: int, seed
         q = min(chunk, count - first)
         # slice perm[q, i] takes the i-th smallest claimed time
         perm = np.argsort(rng.random((q, n)), axis=1).T  # (n, q)
-        aligned = []
-        for y in regions:
-            grouped = _group(y[perm], starts, n)
-            grouped *= phi[:, None, :]  # (J, q, bins)
-            t = psi @ grouped.reshape(values.size, q * bins)
-            aligned.append(t.reshape(ks.size, q, bins))
-        total = _pick(*_powers(aligned[0], aligned[1]), valid)[0]
+        # both regions side by side: (J, q, 2, bins), one matrix product for all orders k
+        grouped = _group(both[perm], starts, n)
+        grouped *= phi[:, None, None, :]
+        t = (psi @ grouped.reshape(values.size, 2 * q * bins)).reshape(ks.size, q, 2, bins)
+        total = _pick(t[:, :, 0], t[:, :, 1], valid)[0]
         out[first:first + q] = total @ spectra.weights
     return out
 
