@@ -426,7 +426,8 @@ METHOD = """\
    for every schedule.
 5. **Weigh every bin by its coherence, not its power.** Each bin contributes the share
    of its power that the schedule aligns: its coherent power divided by the larger of
-   the channels' power at that bin and the running median of that power over 9 bins. A periodic component — respiration, cardiac pulsation, aliased anywhere — or the
+   the channels' power at that bin and the running median of that power over 9 bins.
+   A periodic component — respiration, cardiac pulsation, aliased anywhere — or the
    strong slow bins therefore cannot carry a verdict alone: the evidence has to be
    spread over the spectrum. The score of a candidate is the mean pairwise coherence of
    the aligned channels over the bins.
