@@ -38,6 +38,7 @@ bench: $(STAMP)
 	$(PY) benchmarks/bench_correct.py --runs standard,multiband,batch --volumes 600 --repeat 5 \
 		--multiband-volumes 1200 --batch-runs 6 --batch-volumes 200 --out bench-results/correct.json
 	$(PY) benchmarks/bench_fix.py --sizes 2000,20000 --out bench-results/fix.json
+	$(PY) benchmarks/bench_verify.py --repeat 3 --out bench-results/verify.json
 
 validate: $(STAMP)
 	$(PY) validation/make_report.py --out docs

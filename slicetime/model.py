@@ -20,6 +20,14 @@ Axis = Literal["i", "j", "k"]
 Direction = Literal["+", "-"]
 AXES: tuple[Axis, ...] = ("i", "j", "k")
 
+#: Seconds: the repetition times an fMRI run can physically have. A volume takes at least
+#: tens of milliseconds and at most about a minute (common practice, no source); a TR
+#: above the upper bound was written in milliseconds. The one owner of these bounds:
+#: the audit's ``tr/units-ms``, the repairs' trusted window, the correction's
+#: plausibility gate, ``verify`` and ``slicetime timing`` use them.
+MIN_REPETITION_TIME = 0.05
+MAX_REPETITION_TIME = 100.0
+
 TIME_TOLERANCE = 0.003
 """Seconds: the one tolerance for slice and repetition times (scheme inference,
 the timing and dataset rules, the lab policy's default). How far a gap between

@@ -17,7 +17,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from slicetime.model import SliceSchedule
+from slicetime.model import MAX_REPETITION_TIME, MIN_REPETITION_TIME, SliceSchedule
 
 #: the reference used when the user does not choose one (see ``ReferenceChoice``)
 DEFAULT_REFERENCE = "middle"
@@ -39,8 +39,6 @@ class ImplausibleTiming(PlanError):
 #: Seconds. A functional TR above 100 s is the threshold ``tr/units-ms`` already uses
 #: (common practice (no source): fMRI repetition times run from about 0.1 s for fast
 #: multiband or inverse imaging to a few tens of seconds for sparse designs).
-MIN_REPETITION_TIME = 0.05
-MAX_REPETITION_TIME = 100.0
 
 
 def check_plausible(schedule: SliceSchedule) -> None:

@@ -19,6 +19,7 @@ from typing import Any, TypeVar
 import click
 
 from slicetime import __version__
+from slicetime.model import MAX_REPETITION_TIME
 
 F = TypeVar("F", bound=Callable[..., Any])
 
@@ -432,8 +433,10 @@ def _write_text(path: Path, text: str) -> None:
 def verify(files: tuple[Path, ...], fmt: str) -> None:
     """Check each run's claimed slice order against its own image data.
 
-    Verdicts: supported, contradicted (naming the order that fits better) or
-    undecidable. Exit 1 when any run is contradicted, 2 when a file cannot be read.
+    Verdicts: supported, consistent (fits, but another order fits about as
+    well), contradicted (naming the order that fits better) or undecidable. Timing
+    in milliseconds is reported and the order verified in seconds. Exit 1 when any
+    run is contradicted or has timing in milliseconds, 2 when a file cannot be read.
     """
     from slicetime.interfaces.report_json import dumps
     from slicetime.pipelines.verify import verify_run
@@ -457,6 +460,8 @@ def verify(files: tuple[Path, ...], fmt: str) -> None:
         outcomes.append(outcome)
         if fmt == "text":
             finding = outcome.finding
+            for note in outcome.units:
+                click.echo(f"{'units':<12} {note.message}")
             click.echo(f"{finding.code.split('/')[1]:<12} {finding.message}")
             if outcome.decision is not None and outcome.decision.verdict != "supported":
                 d = outcome.decision
@@ -467,14 +472,16 @@ def verify(files: tuple[Path, ...], fmt: str) -> None:
         click.echo(dumps({
             "tool": {"name": "slicetime", "version": __version__},
             "runs": [{"path": o.path, "verdict": o.finding.code.split("/")[1],
-                      "finding": o.finding.to_json()} for o in outcomes],
+                      "finding": o.finding.to_json(),
+                      "units": [f.to_json() for f in o.units]} for o in outcomes],
             "unreadable": unreadable,
-            "summary": {v: verdicts.count(v) for v in ("supported", "contradicted",
-                                                       "undecidable")},
+            "summary": {v: verdicts.count(v) for v in ("supported", "consistent",
+                                                       "contradicted", "undecidable")},
         }))
     if unreadable:
         sys.exit(EXIT_USAGE)
-    sys.exit(EXIT_FINDINGS if "contradicted" in verdicts else 0)
+    units = any(o.units for o in outcomes)
+    sys.exit(EXIT_FINDINGS if "contradicted" in verdicts or units else 0)
 
 
 # --------------------------------------------------------------------------- correct
@@ -842,7 +849,7 @@ def timing(
 
 #: a TR or acquisition time above this many seconds was written in milliseconds (the
 #: audit's tr/units-ms uses the same bound)
-_MS_LIKE_SECONDS = 100.0
+_MS_LIKE_SECONDS = MAX_REPETITION_TIME
 #: the protocol's parameter names and the options the user typed for them
 _OPTION_OF = {
     "n_slices": "--slices",

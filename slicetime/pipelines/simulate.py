@@ -13,6 +13,7 @@ value stored for slice ``z`` of volume ``v`` is that signal at time
 
 from __future__ import annotations
 
+import math
 from collections.abc import Sequence
 from dataclasses import dataclass
 
@@ -127,5 +128,167 @@ def truth_at(sim: RunSimulation, onsets: Sequence[float], phases: np.ndarray,
     return values.astype(np.float64)
 
 
-__all__ = ["RunSimulation", "double_gamma", "random_events", "response", "signal_at",
-           "simulate_run", "truth_at"]
+
+
+# --------------------------------------------------------------------------- physiology
+
+
+@dataclass(frozen=True)
+class BrainRun:
+    """A richer simulated run for the verify study: every voxel's signal is a baseline
+    times one plus (in % of the baseline) a task response with regional latency, slow
+    network and global fluctuations, a drift, respiration and cardiac pulsation with
+    wandering rates and their own spatial maps, motion-like events, and AR(1) noise.
+
+    Physiology is generated in continuous time (a rate that wanders, integrated into a
+    phase) and sampled at each voxel's own acquisition time, so it aliases exactly as
+    it would in a scanner. Rates in adults at rest: respiration about 0.2-0.35 Hz,
+    heart about 0.9-1.3 Hz (common practice, no source)."""
+
+    shape: tuple[int, int, int, int]  # (i, j, slices, volumes); slices along axis 2
+    repetition_time: float
+    slice_times: Sequence[float]  # the true acquisition time of each slice (seconds)
+    baseline: float = 1000.0
+    task: float = 0.5  # response peak, % of baseline
+    latency_sd: float = 0.3  # regional hemodynamic latency differences (s)
+    network: float = 0.4  # slow (0.01-0.1 Hz) fluctuations with regional maps, % sd
+    global_signal: float = 0.2  # slow global fluctuation, % sd
+    drift: float = 0.5  # % over the run
+    respiration: float = 0.3  # amplitude of the fundamental, %
+    respiration_rate: tuple[float, float] = (0.2, 0.35)  # Hz, range of the mean rate
+    cardiac: float = 0.3  # amplitude of the fundamental, %
+    cardiac_rate: tuple[float, float] = (0.9, 1.3)
+    events_per_100: float = 1.0  # motion-like events per 100 volumes
+    event_size: float = 1.0  # % step, decaying
+    noise: float = 2.0  # voxel noise sd, % of baseline (tSNR 50)
+    ar1: float = 0.3  # lag-one autocorrelation of the noise over volumes
+    #: a stress test: the respiration map changes sign between the lower and upper slices
+    respiration_flip: bool = False
+    seed: int = 0
+
+
+def _smooth_field(rng: np.random.Generator, shape: tuple[int, ...], width: float
+                  ) -> np.ndarray:
+    from scipy import ndimage
+
+    field = ndimage.gaussian_filter(rng.normal(0.0, 1.0, shape), width, mode="wrap")
+    return (field - field.mean()) / max(float(field.std()), 1e-12)
+
+
+def _band_noise(rng: np.random.Generator, n: int, step: float, low: float, high: float
+                ) -> np.ndarray:
+    """Unit-sd noise on a grid of ``n`` points ``step`` s apart, band-limited to
+    ``[low, high]`` Hz."""
+    spectrum = np.fft.rfft(rng.normal(0.0, 1.0, n))
+    freqs = np.fft.rfftfreq(n, step)
+    spectrum[(freqs < low) | (freqs > high)] = 0.0
+    out = np.fft.irfft(spectrum, n)
+    return out / max(float(out.std()), 1e-12)
+
+
+def wandering_phase(rng: np.random.Generator, grid: np.ndarray, rates: tuple[float, float],
+                    wander: float, tau: float = 30.0) -> np.ndarray:
+    """The phase (radians) of an oscillator whose rate starts uniformly in ``rates`` and
+    wanders (an Ornstein-Uhlenbeck process, sd ``wander`` times the mean rate, time
+    constant ``tau`` s), kept inside the range widened by 10 %."""
+    step = float(grid[1] - grid[0])
+    mean = float(rng.uniform(*rates))
+    a = math.exp(-step / tau)
+    x = np.empty(grid.size)
+    x[0] = rng.normal()
+    kicks = rng.normal(0.0, math.sqrt(1 - a * a), grid.size)
+    for i in range(1, grid.size):
+        x[i] = a * x[i - 1] + kicks[i]
+    rate = np.clip(mean * (1.0 + wander * x), 0.9 * rates[0], 1.1 * rates[1])
+    return 2 * np.pi * np.cumsum(rate) * step + rng.uniform(0, 2 * np.pi)
+
+
+def simulate_brain(sim: BrainRun) -> np.ndarray:
+    """float32 data of ``sim.shape``: voxel ``(i, j, z)`` of volume ``v`` holds the signal
+    at ``v * TR + slice_times[z]`` (plus that voxel's latency for the task response)."""
+    rng = np.random.default_rng(sim.seed)
+    nx, ny, nz, nv = sim.shape
+    tr = sim.repetition_time
+    duration = nv * tr + tr
+    step = 0.02
+    grid = np.arange(-2.0, duration + 2.0, step)
+    # an elliptical brain in every slice, darker outside
+    x = (np.arange(nx) - (nx - 1) / 2) / (0.45 * nx)
+    y = (np.arange(ny) - (ny - 1) / 2) / (0.42 * ny)
+    inside = (x[:, None] ** 2 + y[None, :] ** 2) <= 1.0
+    brain = np.broadcast_to(inside[:, :, None], (nx, ny, nz))
+    baseline = np.where(brain, sim.baseline * (1 + 0.1 * _smooth_field(rng, (nx, ny, nz), 2)),
+                        0.03 * sim.baseline)
+    # time courses on a fine grid
+    onsets = random_events(rng, duration)
+    task = response(grid, onsets)
+    networks = [_band_noise(rng, grid.size, step, 0.01, 0.1) for _ in range(3)]
+    net_maps = [np.clip(_smooth_field(rng, (nx, ny, nz), 3), 0, None) for _ in range(3)]
+    glob = _band_noise(rng, grid.size, step, 0.01, 0.15)
+    resp_phase = wandering_phase(rng, grid, sim.respiration_rate, 0.08)
+    resp = np.cos(resp_phase) + 0.25 * np.cos(2 * resp_phase + 0.7)
+    resp_depth = 1.0 + 0.3 * _band_noise(rng, grid.size, step, 0.0, 0.02)
+    resp *= resp_depth
+    card_phase = wandering_phase(rng, grid, sim.cardiac_rate, 0.05, tau=20.0)
+    card = np.cos(card_phase) + 0.5 * np.cos(2 * card_phase + 0.4) \
+        + 0.2 * np.cos(3 * card_phase + 1.1)
+    # spatial maps: respiration broad (mostly positive, with an edge term of both signs
+    # along j, as a field shift would give); cardiac near "vessels"; task in regions
+    resp_map = 1.0 + 0.4 * _smooth_field(rng, (nx, ny, nz), 4)
+    edge = np.gradient(inside.astype(float), axis=1)[:, :, None] * 2.0
+    resp_map = resp_map + edge
+    if sim.respiration_flip:
+        resp_map[:, :, nz // 2:] *= -1.0
+    card_map = np.clip(_smooth_field(rng, (nx, ny, nz), 2) - 0.5, 0, None) * 2.0
+    card_delay = 0.1 * (1 + _smooth_field(rng, (nx, ny, nz), 4)).clip(0, None)
+    task_map = np.clip(0.5 + _smooth_field(rng, (nx, ny, nz), 3), 0, None)
+    latency = sim.latency_sd * _smooth_field(rng, (nx, ny, nz), 3)
+    count = rng.poisson(sim.events_per_100 * nv / 100.0)
+    event_onsets = rng.uniform(0, nv * tr, count)
+    event_sizes = rng.normal(0, sim.event_size, count)
+    event_maps = [1.0 + 0.5 * _smooth_field(rng, (nx, ny, nz), 5) for _ in range(count)]
+    drift_shape = rng.normal(0, 1, 2)
+    data = np.empty(sim.shape, dtype=np.float32)
+    volumes = np.arange(nv) * tr
+    # AR(1) over volumes with unit variance, then scaled: e_v = a e_(v-1) + sqrt(1-a^2) w_v
+    noise = rng.normal(0.0, 1.0, (nx, ny, nz, nv)).astype(np.float32)
+    keep = np.float32(math.sqrt(1 - sim.ar1 ** 2))
+    for v in range(1, nv):
+        noise[..., v] = np.float32(sim.ar1) * noise[..., v - 1] + keep * noise[..., v]
+    noise *= np.float32(sim.noise / 100.0 * sim.baseline)
+    for z in range(nz):
+        t = volumes + float(sim.slice_times[z])  # (nv,)
+        s = np.zeros((nx, ny, nv))
+
+        def at(course: np.ndarray, times: np.ndarray) -> np.ndarray:
+            # linear interpolation on the uniform fine grid
+            pos = (times - grid[0]) / step
+            low = np.clip(pos.astype(np.int64), 0, grid.size - 2)
+            frac = pos - low
+            return course[low] * (1.0 - frac) + course[low + 1] * frac
+
+        shifted = t[None, None, :] - latency[:, :, z, None]
+        s += sim.task * task_map[:, :, z, None] * at(task, shifted.reshape(-1)).reshape(
+            shifted.shape)
+        for course, cmap in zip(networks, net_maps, strict=False):
+            s += sim.network * cmap[:, :, z, None] * at(course, t)[None, None, :]
+        s += sim.global_signal * at(glob, t)[None, None, :]
+        rel = t / max(nv * tr, 1.0)
+        s += sim.drift * (drift_shape[0] * rel + drift_shape[1] * (rel - 0.5) ** 2)
+        s += sim.respiration * resp_map[:, :, z, None] * at(resp, t)[None, None, :]
+        delayed = t[None, None, :] - card_delay[:, :, z, None]
+        s += sim.cardiac * card_map[:, :, z, None] * at(card, delayed.reshape(-1)).reshape(
+            delayed.shape)
+        for onset, size, emap in zip(event_onsets, event_sizes, event_maps, strict=False):
+            after = t >= onset
+            if after.any():
+                s[:, :, after] += size * emap[:, :, z, None] * np.exp(
+                    -(t[after] - onset) / 4.0)[None, None, :]
+        values = baseline[:, :, z, None] * (1.0 + s / 100.0) + noise[:, :, z, :] * (
+            baseline[:, :, z, None] / sim.baseline)
+        data[:, :, z, :] = values.astype(np.float32)
+    return data
+
+
+__all__ = ["BrainRun", "RunSimulation", "double_gamma", "random_events", "response",
+           "signal_at", "simulate_brain", "simulate_run", "truth_at", "wandering_phase"]

@@ -7,27 +7,31 @@ taken from the first batch), build the candidate schedules (the claim, common
 orders and multiband variants over the same acquisition window, the claim
 flipped along the slice axis and reversed in time, no offsets, and shuffled
 orders as the null), score them with :mod:`slicetime.engines.verify` and turn
-the verdict into a finding (``verify/supported``, ``verify/contradicted``,
-``verify/undecidable``).
+the verdict into a finding (``verify/supported``, ``verify/consistent``,
+``verify/contradicted``, ``verify/undecidable``). Timing fields written in milliseconds
+are converted to seconds first and reported with the audit's own codes.
 
 Memory: one batch of volumes plus the channel courses (channels × volumes).
 """
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 
 from slicetime.engines import verify as ev
-from slicetime.model import Finding, RunRecord, Severity
+from slicetime.model import MAX_REPETITION_TIME, Finding, RunRecord, Severity, SliceSchedule
 from slicetime.readers.errors import ReadError
 from slicetime.readers.volumes import VolumeReader, scaling
 from slicetime.schemes.generate import Protocol, array_times
 from slicetime.schemes.labels import LabelParts, format_label
+from slicetime.schemes.resolve import looks_like_milliseconds
 
 #: volumes per read; the mask comes from the first batch
 BATCH_VOLUMES = 16
@@ -36,11 +40,13 @@ MAX_MULTIBAND = 6
 
 @dataclass(frozen=True)
 class VerifyOutcome:
-    """What verify found for one run."""
+    """What verify found for one run: the verdict's finding, and findings about the units
+    of the timing fields when they had to be converted to seconds first."""
 
     path: str
     decision: ev.Decision | None
     finding: Finding
+    units: tuple[Finding, ...] = ()
 
 
 # --------------------------------------------------------------------------- candidates
@@ -107,6 +113,16 @@ def candidates(claimed: Sequence[float], window: float) -> list[ev.Candidate]:
 # --------------------------------------------------------------------------- reading
 
 
+@dataclass(frozen=True)
+class Channels:
+    """Channel courses ``(channels, volumes)``, each channel's slice and its half of
+    the in-plane grid (0 or 1)."""
+
+    courses: np.ndarray
+    slice_of: np.ndarray
+    region_of: np.ndarray
+
+
 class Reducer:
     """Channel courses from batches of volumes, fed in order: ``add(first, batch)`` with
     ``batch`` shaped ``(volumes, n_slices, rows, cols)``. The in-brain mask comes from
@@ -129,19 +145,21 @@ class Reducer:
         assert self.courses is not None
         self.courses[:, first:first + count] = ev.channel_sums(flat, self.layout)
 
-    def result(self, scale: tuple[float, float] | None = None) -> tuple[np.ndarray, np.ndarray]:
-        """``(courses, slice_of)`` of the channels with in-brain voxels and finite values."""
+    def result(self, scale: tuple[float, float] | None = None) -> Channels:
+        """The courses of the channels with in-brain voxels and finite values."""
         assert self.layout is not None and self.courses is not None
+        assert self.layout.region_of is not None
         courses = self.courses
         if scale is not None:
             courses = courses * scale[0] + scale[1]
         keep = (self.layout.voxels > 0) & np.isfinite(courses).all(axis=1)
-        return courses[keep], self.layout.slice_of[keep]
+        return Channels(courses[keep], self.layout.slice_of[keep],
+                        self.layout.region_of[keep])
 
 
 def channel_courses(path: Path, record: RunRecord, axis: int, *,
-                    batch: int = BATCH_VOLUMES) -> tuple[np.ndarray, np.ndarray]:
-    """``(courses, slice_of)``: channel means ``(channels, volumes)``, read in one pass
+                    batch: int = BATCH_VOLUMES) -> Channels:
+    """Channel means ``(channels, volumes)``, read in one pass
     with :class:`VolumeReader` (one batch of volumes in memory at a time)."""
     assert record.header is not None
     with VolumeReader(path, record.header, record.path) as reader:
@@ -153,7 +171,7 @@ def channel_courses(path: Path, record: RunRecord, axis: int, *,
 
 
 def array_courses(data: np.ndarray, axis: int = 2, *,
-                  batch: int = BATCH_VOLUMES) -> tuple[np.ndarray, np.ndarray]:
+                  batch: int = BATCH_VOLUMES) -> Channels:
     """The same reduction for an in-memory ``(i, j, k, volumes)`` array (studies, tests)."""
     volumes = np.moveaxis(data, (3, axis), (0, 1))
     reducer = Reducer(data.shape[3])
@@ -165,10 +183,11 @@ def array_courses(data: np.ndarray, axis: int = 2, *,
 def verify_array(data: np.ndarray, claimed: Sequence[float], repetition_time: float, *,
                  axis: int = 2, window: float | None = None, seed: int = 0) -> ev.Decision:
     """Verify a claimed schedule against an in-memory run (no files)."""
-    courses, slice_of = array_courses(data, axis)
+    channels = array_courses(data, axis)
     span = window if window is not None else repetition_time
     listed = candidates(claimed, span)
-    return ev.evaluate(courses, slice_of, repetition_time, listed, span, seed=seed)
+    return ev.evaluate(channels.courses, channels.slice_of, repetition_time, listed, span,
+                       seed=seed, region_of=channels.region_of)
 
 
 # --------------------------------------------------------------------------- verdict
@@ -187,11 +206,78 @@ def _undecidable(record: RunRecord, why: str, **evidence: object) -> VerifyOutco
                          _finding(record, "undecidable", message, {"reason": why, **evidence}))
 
 
+#: a RepetitionTime above this many seconds was written in milliseconds (as the audit's
+#: ``tr/units-ms``)
+TR_MS_ABOVE = MAX_REPETITION_TIME
+
+
+def in_seconds(record: RunRecord) -> tuple[SliceSchedule | None, tuple[Finding, ...]]:
+    """The run's schedule with RepetitionTime and SliceTiming in seconds, and a finding
+    (the audit's ``tr/units-ms`` and ``timing/units-ms`` codes) for each field that had to
+    be divided by 1000. BIDS times are in seconds."""
+    schedule = record.schedule
+    if schedule is None or schedule.repetition_time is None or not schedule.times:
+        return schedule, ()
+    found: list[Finding] = []
+    tr = float(schedule.repetition_time)
+    changes: dict[str, Any] = {}
+    tr_file = record.metadata_sources.get("RepetitionTime", record.path)
+    st_file = record.metadata_sources.get("SliceTiming", record.path)
+    if tr > TR_MS_ABOVE:
+        tr /= 1000.0
+        changes["repetition_time"] = tr
+        for name in ("acquisition_duration", "delay_time"):
+            value = getattr(schedule, name)
+            if value is not None and value > TR_MS_ABOVE / 10:
+                changes[name] = value / 1000.0
+        found.append(Finding(
+            "tr/units-ms", Severity.ERROR,
+            f"{record.path}: RepetitionTime is {schedule.repetition_time:g}, milliseconds; "
+            f"verified with {tr:g} s", tr_file, "RepetitionTime",
+            {"value": schedule.repetition_time, "as_seconds": tr},
+            "Divide RepetitionTime by 1000."))
+    converted = dataclasses.replace(schedule, **changes) if changes else schedule
+    window = converted.acquisition_window or tr
+    times = converted.times
+    if max(times) >= window and (looks_like_milliseconds(times, window) or (
+            "repetition_time" in changes and max(times) / 1000.0 < window)):
+        converted = dataclasses.replace(converted, times=tuple(t / 1000.0 for t in times))
+        found.append(Finding(
+            "timing/units-ms", Severity.ERROR,
+            f"{record.path}: SliceTiming goes up to {max(times):g}, milliseconds; the order "
+            f"was verified with the times divided by 1000 (up to {max(times) / 1000:g} s)",
+            st_file, "SliceTiming",
+            {"max": max(times), "window": window, "as_seconds_max": max(times) / 1000.0},
+            "Divide every SliceTiming entry by 1000 (slicetime fix does this)."))
+    return converted, tuple(found)
+
+
+def _units_note(units: Sequence[Finding]) -> str:
+    if not units:
+        return ""
+    fields = " and ".join(f.field or "" for f in units)
+    return f" (read in seconds: {fields} {'was' if len(units) == 1 else 'were'} in milliseconds)"
+
+
 def verify_record(record: RunRecord, *, seed: int = 0) -> VerifyOutcome:
-    """Verify one run whose record was built by the audit's reader.
+    """Verify one run whose record was built by the audit's reader. Timing fields written
+    in milliseconds are converted to seconds first and reported (``outcome.units``).
 
     Raises ReadError when the image data cannot be read (truncated, corrupt)."""
-    schedule = record.schedule
+    schedule, units = in_seconds(record)
+    outcome = _verify_schedule(record, schedule, seed=seed)
+    if not units:
+        return outcome
+    finding = outcome.finding
+    evidence = dict(finding.evidence or {})
+    evidence["units"] = {f.field: "milliseconds" for f in units}
+    message = finding.message + _units_note(units)
+    return dataclasses.replace(outcome, units=units, finding=dataclasses.replace(
+        finding, message=message, evidence=evidence))
+
+
+def _verify_schedule(record: RunRecord, schedule: SliceSchedule | None, *, seed: int
+                     ) -> VerifyOutcome:
     header = record.header
     if header is None:
         return _undecidable(record, "the header could not be read")
@@ -210,11 +296,15 @@ def verify_record(record: RunRecord, *, seed: int = 0) -> VerifyOutcome:
         return _undecidable(record, "the acquisition window is not positive")
     if max(schedule.times) - min(schedule.times) <= 0:
         return _undecidable(record, "the claimed schedule has no offsets to check")
-    courses, slice_of = channel_courses(Path(record.abs_path), record, schedule.axis_index)
-    if np.unique(slice_of).size < 3:
+    if max(schedule.times) > window + 1e-6 or min(schedule.times) < -1e-6:
+        return _undecidable(record, f"the claimed slice times (up to {max(schedule.times):g} "
+                            f"s) do not fit in the acquisition window ({window:g} s)")
+    channels = channel_courses(Path(record.abs_path), record, schedule.axis_index)
+    if np.unique(channels.slice_of).size < 3:
         return _undecidable(record, "fewer than 3 slices hold in-brain voxels")
     listed = candidates(schedule.times, window)
-    decision = ev.evaluate(courses, slice_of, tr, listed, window, seed=seed)
+    decision = ev.evaluate(channels.courses, channels.slice_of, tr, listed, window, seed=seed,
+                           region_of=channels.region_of)
     evidence = decision.to_json()
     evidence["candidates"] = len(listed)
     if decision.verdict == "contradicted":
@@ -227,10 +317,16 @@ def verify_record(record: RunRecord, *, seed: int = 0) -> VerifyOutcome:
         return VerifyOutcome(record.path, decision,
                              _finding(record, "contradicted", message, evidence, hint))
     if decision.verdict == "supported":
-        message = (f"{record.path}: the data support the claimed slice order "
-                   f"(p {decision.p_claimed:.3f} against shuffled slice orders)")
+        message = (f"{record.path}: the data support the claimed slice order: it aligns the "
+                   f"slices better than any other order tried (p {decision.p_claimed:.3f} "
+                   "against shuffled slice orders)")
         return VerifyOutcome(record.path, decision,
                              _finding(record, "supported", message, evidence))
+    if decision.verdict == "consistent":
+        message = (f"{record.path}: the data fit the claimed slice order but do not single "
+                   f"it out: '{decision.rival_name}' fits about as well")
+        return VerifyOutcome(record.path, decision,
+                             _finding(record, "consistent", message, evidence))
     message = f"{record.path}: the data neither support nor contradict the claimed slice " \
               f"order ({decision.reason})"
     return VerifyOutcome(record.path, decision,
@@ -262,5 +358,17 @@ def verify_finding(record: RunRecord, *, seed: int = 0) -> Finding:
         return _undecidable(record, f"the image data cannot be read ({exc.code})").finding
 
 
-__all__ = ["Reducer", "VerifyOutcome", "array_courses", "candidates", "channel_courses",
-           "standard_schedules", "verify_array", "verify_finding", "verify_record", "verify_run"]
+__all__ = [
+    "Channels",
+    "Reducer",
+    "VerifyOutcome",
+    "array_courses",
+    "candidates",
+    "channel_courses",
+    "in_seconds",
+    "standard_schedules",
+    "verify_array",
+    "verify_finding",
+    "verify_record",
+    "verify_run",
+]

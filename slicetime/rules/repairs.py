@@ -36,7 +36,15 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
-from slicetime.model import AXES, TIME_TOLERANCE, Finding, RunRecord, Severity
+from slicetime.model import (
+    AXES,
+    MAX_REPETITION_TIME,
+    MIN_REPETITION_TIME,
+    TIME_TOLERANCE,
+    Finding,
+    RunRecord,
+    Severity,
+)
 from slicetime.policy.model import ExpectedProtocol
 from slicetime.rules.dataset import protocol_key
 from slicetime.rules.source import matched, source_multiband, source_times
@@ -105,9 +113,8 @@ def _repair(record: RunRecord, code: str, key: str, value: Any, source: str,
     )
 
 
-#: the repetition times a trusted window may have, in seconds: an fMRI volume takes
-#: at least tens of milliseconds and at most about a minute (common practice, no source)
-PLAUSIBLE_TR = (0.05, 100.0)
+#: the repetition times a trusted window may have, in seconds (the model's bounds)
+PLAUSIBLE_TR = (MIN_REPETITION_TIME, MAX_REPETITION_TIME)
 
 
 def _trusted_window(record: RunRecord) -> tuple[float, float] | None:

@@ -5,7 +5,7 @@ from __future__ import annotations
 from collections.abc import Iterator
 from typing import Any
 
-from slicetime.model import RunRecord, Severity
+from slicetime.model import MAX_REPETITION_TIME, RunRecord, Severity
 from slicetime.rules.registry import Hit, run_rule
 from slicetime.schemes.resolve import (
     is_number,
@@ -606,7 +606,7 @@ def deprecated_acq(record: RunRecord) -> Iterator[Hit]:
 )
 def tr_units(record: RunRecord) -> Iterator[Hit]:
     tr = positive_number(record.metadata.get("RepetitionTime"))
-    if tr is not None and tr > 100:
+    if tr is not None and tr > MAX_REPETITION_TIME:
         yield Hit(f"RepetitionTime is {tr:g}; {tr / 1000:g} s is far more likely",
                   "RepetitionTime", {"value": tr, "as_seconds": tr / 1000})
 

@@ -12,12 +12,16 @@ from slicetime.rules.registry import reader_code
 
 _HOW = (
     "A signal shared by the slices (global fluctuations, a widespread response, abrupt "
-    "events) reaches every slice delayed by that slice's acquisition time. verify aligns "
-    "the slices' mean time courses with the claimed schedule and with plausible "
-    "alternatives (sequential and interleaved orders, the claim flipped or reversed, "
-    "multiband variants, no offsets) and compares how coherent they become; a block "
-    "bootstrap over volumes and orders made by shuffling the claimed times calibrate the "
-    "differences. "
+    "events, respiration, cardiac pulsation) reaches every slice delayed by that slice's "
+    "acquisition time. verify aligns the slices' mean time courses with the claimed "
+    "schedule and with plausible alternatives (sequential and interleaved orders, the claim "
+    "flipped or reversed, multiband variants, no offsets) frequency by frequency, allowing "
+    "for aliasing (a component seen at f may truly lie at f + k/TR, up to 1.6 Hz), and "
+    "compares how coherent they become. Every frequency bin counts by its coherence, not "
+    "its power, so a narrow-band peak cannot carry the verdict; a block bootstrap over "
+    "frequency bins and orders made by shuffling the claimed times calibrate the "
+    "differences, and two halves of the image are scored independently. Timing fields in "
+    "milliseconds are converted to seconds first (and reported). "
 )
 
 reader_code(
@@ -25,9 +29,11 @@ reader_code(
     title="the image data fit another slice order clearly better than the claimed one",
     severity=Severity.WARNING,
     rationale=_HOW + (
-        "A named alternative aligns the slices better than the claim by a clear margin "
-        "(evidence: effect, the share of the timing evidence the claim loses; z_rival, the "
-        "bootstrap z of the difference, and its 95 % interval). Anything that delays the "
+        "A named alternative aligns the slices better than the claim by a clear margin, "
+        "spread over the spectrum and in both halves of the image (evidence: effect, the "
+        "share of the timing evidence the claim loses; z_rival, the bootstrap z of the "
+        "difference, and its 95 % interval; z_regions, the z in each half). Anything that "
+        "delays the "
         "signal differently from slice to slice can also cause this, e.g. strong regional "
         "latency differences or slice-wise motion; already corrected data fit 'no offsets'."
     ),
@@ -39,9 +45,21 @@ reader_code(
     title="the image data support the claimed slice order",
     severity=Severity.NOTE,
     rationale=_HOW + (
+        "The claim aligns the slices clearly better than shuffled orders and better than "
+        "every materially different alternative (bootstrap z of at least 2 over the best "
+        "of them). Alternatives nearly identical in time to the claim cannot be told apart "
+        "and are listed as equivalent."
+    ),
+)
+reader_code(
+    "verify/consistent",
+    title="the image data fit the claimed slice order but do not single it out",
+    severity=Severity.NOTE,
+    rationale=_HOW + (
         "The claim aligns the slices clearly better than shuffled orders and no alternative "
-        "beats it beyond noise. Alternatives nearly identical in time to the claim cannot be "
-        "told apart and are listed as equivalent."
+        "beats it, but the alternative named in the message fits about as well, so the "
+        "data cannot tell the two apart (typical of schedules close in time, short runs "
+        "or short TRs). Weaker than verify/supported; not a problem."
     ),
 )
 reader_code(
@@ -50,8 +68,10 @@ reader_code(
     severity=Severity.NOTE,
     rationale=_HOW + (
         "No verdict: the shared signal is too weak or too slow for slice delays to matter "
-        "(e.g. noise-dominated data, short runs), the evidence points both ways, or the run "
-        "cannot be checked (no schedule, VolumeTiming, fewer than 30 volumes or 3 slices)."
+        "(e.g. noise-dominated data, short runs), the evidence points both ways (across "
+        "frequencies or between the two halves of the image, as physiology can make it), or "
+        "the run cannot be checked (no schedule, VolumeTiming, fewer than 30 volumes or 3 "
+        "slices, slice times outside the acquisition window)."
     ),
     fix="Nothing to repair; longer runs or runs with more shared signal give more evidence.",
 )
