@@ -107,6 +107,7 @@ from slicetime.readers.errors import (
     os_error,
     read_bounded,
 )
+from slicetime.readers.schema_text import describe_schema
 from slicetime.schemes.labels import label_multiband, label_problem, normalise_label
 
 if sys.version_info >= (3, 11):
@@ -302,40 +303,14 @@ def _shown(value: Any) -> str:
 _PATTERN_WORDS = {
     "^[A-Za-z0-9]+$": "a string of letters and digits (a BIDS label)",
     "\\S": "a string that is not blank",
+    "^[0-9]+$": "such a number as a string of digits",
 }
 
 
 def _describe(schema: Mapping[str, Any]) -> str:
-    if "$ref" in schema:
-        name = str(schema["$ref"]).rsplit("/", 1)[-1]
-        return _describe(policy_schema()["$defs"][name])
-    if "const" in schema:
-        return json.dumps(schema["const"])
-    if "enum" in schema:
-        return "one of " + ", ".join(str(v) for v in schema["enum"])
-    kind = schema.get("type")
-    if isinstance(kind, list):
-        return "a whole number of at least 0, or such a number as a string of digits"
-    if kind == "array":
-        base = "a non-empty array" if schema.get("minItems") else "an array"
-        items = schema.get("items", {})
-        if "$ref" in items:
-            return base + " of tables"
-        return base + " of strings" if items.get("type") == "string" else base
-    if kind == "object":
-        return "a table"
-    if kind in ("number", "integer"):
-        noun = "a number" if kind == "number" else "a whole number"
-        if "exclusiveMinimum" in schema:
-            return f"{noun} greater than {schema['exclusiveMinimum']}"
-        if "minimum" in schema:
-            return f"{noun} of at least {schema['minimum']}"
-        return noun
-    if kind == "string":
-        if "pattern" in schema:
-            return _PATTERN_WORDS.get(schema["pattern"], "a string")
-        return "a non-empty string" if schema.get("minLength") else "a string"
-    return "a valid value"
+    return describe_schema(
+        schema, resolve=lambda ref: policy_schema()["$defs"][ref.rsplit("/", 1)[-1]],
+        object_word=("a table", "tables"), pattern_words=_PATTERN_WORDS)
 
 
 _REQUIRED_WHY = {

@@ -48,6 +48,7 @@ import jsonschema
 from slicetime.model import Finding, Severity
 
 from .errors import ReadError, display_name, open_regular, os_error, read_bounded
+from .schema_text import describe_schema
 
 __all__ = [
     "MAX_SIDECAR_BYTES",
@@ -665,29 +666,8 @@ def _non_finite_findings(
 # --- type checks -------------------------------------------------------------------------
 
 
-def _describe(schema: Mapping[str, Any], plural: bool = False) -> str:
-    if "anyOf" in schema:
-        return " or ".join(_describe(s, plural) for s in schema["anyOf"])
-    if "enum" in schema:
-        return "one of " + ", ".join(str(v) for v in schema["enum"])
-    kind = schema.get("type")
-    if kind == "array":
-        items = schema.get("items", {})
-        base = "an array" if not schema.get("minItems") else "a non-empty array"
-        return f"{base} of {_describe(items, plural=True)}" if items else base
-    noun = {
-        "number": "number",
-        "integer": "integer",
-        "string": "string",
-        "boolean": "boolean",
-        "object": "object",
-    }.get(str(kind), "value")
-    text = (noun + "s") if plural else ("an " if noun[0] in "aeiou" else "a ") + noun
-    if "exclusiveMinimum" in schema:
-        text += f" > {schema['exclusiveMinimum']}"
-    elif "minimum" in schema:
-        text += f" ≥ {schema['minimum']}"
-    return text
+def _describe(schema: Mapping[str, Any]) -> str:
+    return describe_schema(schema)
 
 
 def check_types(
