@@ -148,7 +148,7 @@ def test_milliseconds_give_one_finding_and_the_scheme_in_seconds(tmp_path: Path)
     code, text, _ = run_cli("show", str(root / "sub-03/func/sub-03_task-tap_bold.nii.gz"))
     assert code == 1
     flat = " ".join(text.split())
-    assert "one excitation every 66.7 ms" in flat
+    assert "one excitation every 66.67 ms" in flat  # 2000 ms / 30, 2 decimals
     assert "SliceTiming read as milliseconds" in flat
     axis = text.split("acquisition order")[1].split("findings")[0]
     assert "2 s" in axis and "1933" not in axis and "2000" not in axis
