@@ -330,7 +330,7 @@ def slice_times(
         window = repetition_time - delay_time
     protocol = Protocol(
         n_slices=n_slices, order=order, ascending=not descending, step=step, start=first,
-        multiband=multiband, repetition_time=repetition_time, acquisition_time=window,
+        multiband=multiband, repetition_time=repetition_time, active_time=window,
         direction="-" if slice_encoding_direction.endswith("-") else "+", decimals=decimals,
     )
     return slice_timing(protocol)

@@ -79,7 +79,7 @@ def test_sparse_run_times_beyond_the_acquisition_window() -> None:
     found = codes({"RepetitionTime": 3.0, "DelayTime": 1.0, "SliceTiming": st},
                   header_info((8, 8, 12, 20), tr=3.0))
     assert found.get("timing/exceeds-acquisition") is Severity.ERROR
-    ok = slice_timing(Protocol(n_slices=12, repetition_time=3.0, acquisition_time=2.0))
+    ok = slice_timing(Protocol(n_slices=12, repetition_time=3.0, active_time=2.0))
     assert "timing/exceeds-acquisition" not in codes(
         {"RepetitionTime": 3.0, "DelayTime": 1.0, "SliceTiming": ok},
         header_info((8, 8, 12, 20), tr=3.0))

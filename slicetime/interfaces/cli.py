@@ -739,9 +739,12 @@ def _fix_undo(journal: Path) -> None:
               help="Number of slices along the slice axis.")
 @click.option("--tr", "tr", type=click.FloatRange(min=0, min_open=True),
               help="Repetition time in seconds.")
-@click.option("--acquisition-time", "ta", type=click.FloatRange(min=0, min_open=True),
-              help="Time over which the slices are spread, when shorter than the TR "
-              "(sparse protocols). Defaults to the TR.")
+@click.option("--delay-time", "delay", type=click.FloatRange(min=0, min_open=True),
+              metavar="SECONDS",
+              help="BIDS DelayTime of a sparse protocol: the silent part at the end of each TR. "
+              "The slices are spread over the rest (TR minus SECONDS); written as DelayTime.")
+@click.option("--acquisition-time", "old_ta", hidden=True, default=None,
+              help="Replaced by --delay-time (kept only to say so).")
 @click.option("--order", type=click.Choice(["sequential", "interleaved"]), default="sequential",
               show_default=True, help="Order of excitation along the slice encoding direction.")
 @click.option("--descending", is_flag=True,
@@ -766,7 +769,8 @@ def _fix_undo(journal: Path) -> None:
 def timing(
     n_slices: int,
     tr: float | None,
-    ta: float | None,
+    delay: float | None,
+    old_ta: str | None,
     order: str,
     descending: bool,
     step: int,
@@ -782,13 +786,19 @@ def timing(
     Examples:
       slicetime timing --slices 40 --tr 2 --order interleaved
       slicetime timing --slices 60 --tr 1 --multiband 4 --order interleaved --first auto
+      slicetime timing --slices 16 --tr 3 --delay-time 1.5 --order interleaved  # sparse
     """
+    from slicetime.numbers import plain
     from slicetime.schemes.generate import Protocol, array_times, slice_timing
     from slicetime.schemes.infer import infer_scheme
 
-    if tr is None and ta is None:
-        raise UserError("timing: give --tr (and --acquisition-time for sparse protocols)")
-    for option, value in (("--tr", tr), ("--acquisition-time", ta)):
+    if old_ta is not None:
+        raise UserError("timing: --acquisition-time is replaced by --delay-time SECONDS, the "
+                        "silent part of the TR (BIDS DelayTime): for slices spread over A "
+                        "seconds of a TR of T seconds give --tr T --delay-time T-A")
+    if tr is None:
+        raise UserError("timing: give --tr (and --delay-time for sparse protocols)")
+    for option, value in (("--tr", tr), ("--delay-time", delay)):
         if value is not None and value > _MS_LIKE_SECONDS:
             raise UserError(f"{option} {value:g}: times are in seconds, and {value:g} s looks "
                             f"like milliseconds; did you mean {option} {value / 1000:g}?")
@@ -804,6 +814,10 @@ def timing(
                     from None
             if start < 0:  # type: ignore[operator]
                 raise UserError(f"--first must be a slice index (0 or more), not {first}")
+    if delay is not None and delay >= tr:
+        raise UserError(f"timing: --delay-time {plain(delay)} must be shorter than --tr "
+                        f"{plain(tr)} (the slices are spread over the TR minus the delay)")
+    active = None if delay is None else tr - delay
     protocol = Protocol(
         n_slices=n_slices,
         order=order,  # type: ignore[arg-type]
@@ -812,7 +826,7 @@ def timing(
         start=start,  # type: ignore[arg-type]
         multiband=multiband,
         repetition_time=tr,
-        acquisition_time=ta,
+        active_time=active,
         direction="-" if axis.endswith("-") else "+",
         decimals=decimals,
     )
@@ -821,10 +835,9 @@ def timing(
     except ValueError as exc:
         raise UserError(f"timing: {_as_options(str(exc))}") from None
     fields: dict[str, Any] = {"SliceTiming": times}
-    if tr is not None:
-        fields["RepetitionTime"] = tr
-    if ta is not None and tr is not None and ta < tr:
-        fields["DelayTime"] = round(tr - ta, decimals)
+    fields["RepetitionTime"] = tr
+    if delay is not None:
+        fields["DelayTime"] = round(delay, decimals)
     fields["SliceEncodingDirection"] = axis
     if multiband > 1:
         fields["MultibandAccelerationFactor"] = multiband
@@ -833,14 +846,14 @@ def timing(
     click.echo(f"scheme in data-array order: {label}", err=True)
 
 
-#: a TR or acquisition time above this many seconds was written in milliseconds (the
+#: a TR or delay above this many seconds was written in milliseconds (the
 #: audit's tr/units-ms uses the same bound)
 _MS_LIKE_SECONDS = 100.0
 #: the protocol's parameter names and the options the user typed for them
 _OPTION_OF = {
     "n_slices": "--slices",
     "repetition_time": "--tr",
-    "acquisition_time": "--acquisition-time",
+    "active_time": "--delay-time",
     "start": "--first",
     "step": "--step",
     "multiband": "--multiband",

@@ -189,7 +189,7 @@ def _policy_times(protocol: ExpectedProtocol, record: RunRecord) -> list[float] 
     found: set[tuple[float, ...]] = set()
     candidates: list[Protocol] = [
         Protocol(n_slices=n, order="sequential", ascending=asc, multiband=multiband,
-                 repetition_time=tr, acquisition_time=window)
+                 repetition_time=tr, active_time=window)
         for asc in (True, False)
     ]
     groups = n // multiband if multiband else n
@@ -198,7 +198,7 @@ def _policy_times(protocol: ExpectedProtocol, record: RunRecord) -> list[float] 
             starts = range(step) if asc else range(groups - step, groups)
             candidates.extend(
                 Protocol(n_slices=n, order="interleaved", ascending=asc, step=step, start=s,
-                         multiband=multiband, repetition_time=tr, acquisition_time=window)
+                         multiband=multiband, repetition_time=tr, active_time=window)
                 for s in starts
             )
     for candidate in candidates:
