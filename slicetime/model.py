@@ -12,6 +12,8 @@ from collections.abc import Mapping
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any, Literal
 
+from slicetime.numbers import json_time, json_times, tidy_json
+
 if TYPE_CHECKING:
     from slicetime.model_source import SourceEvidence
 
@@ -141,14 +143,14 @@ class Scheme:
             "label": self.label,
             "multiband_factor": self.multiband_factor,
             "groups": [list(g) for g in self.groups],
-            "group_times": [round(t, 6) for t in self.group_times],
+            "group_times": json_times(self.group_times),
             "step": self.step,
             "regular": self.regular,
             "residue_order": list(self.residue_order) if self.residue_order else None,
             "ascending": self.ascending,
             "start": self.start,
-            "spacing": self.spacing,
-            "evidence": _jsonable(self.evidence),
+            "spacing": None if self.spacing is None else json_time(self.spacing),
+            "evidence": tidy_json(_jsonable(self.evidence)),
         }
 
 
@@ -182,7 +184,7 @@ class Finding:
             "message": self.message,
             "file": self.file,
             "field": self.field,
-            "evidence": _jsonable(self.evidence),
+            "evidence": tidy_json(_jsonable(self.evidence)),
             "hint": self.hint,
         }
 

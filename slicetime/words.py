@@ -42,4 +42,12 @@ def with_article(word: str) -> str:
     return f"{article(word)} {word}"
 
 
-__all__ = ["agree", "article", "count", "plural_of", "with_article"]
+
+
+def encoding_direction(axis: str, direction: str) -> str:
+    """The slice axis as the standard's SliceEncodingDirection spells it: ``k`` or ``k-``
+    (BIDS: one of i, j, k, i-, j-, k-), the one spelling every screen and report uses."""
+    return axis if direction == "+" else f"{axis}-"
+
+
+__all__ = ["agree", "article", "count", "encoding_direction", "plural_of", "with_article"]

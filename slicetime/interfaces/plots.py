@@ -19,6 +19,7 @@ timing gets a placeholder picture that says why.
 
 from __future__ import annotations
 
+import dataclasses
 import io
 import re
 import textwrap
@@ -28,6 +29,8 @@ from typing import Any
 from slicetime.engines.plan import DEFAULT_REFERENCE, PlanError, ReferenceChoice, reference_time
 from slicetime.interfaces.safe_text import xml_safe
 from slicetime.model import RunRecord
+from slicetime.numbers import secs
+from slicetime.words import encoding_direction
 
 #: our own palette (also used by the HTML report for the matching legend)
 COLOURS = {
@@ -142,6 +145,9 @@ def diagram_spec(record: RunRecord) -> DiagramSpec:
     schedule = record.schedule
     if schedule is None or not schedule.times:
         return DiagramSpec("placeholder", message=placeholder_message(record))
+    if record.scheme is not None and record.scheme.evidence.get("assumed_unit") == "ms":
+        # SliceTiming in milliseconds: drawn in seconds, as the scheme and the terminal read it
+        schedule = dataclasses.replace(schedule, times=tuple(t * 0.001 for t in schedule.times))
     times = tuple(_r(t) for t in schedule.times)
     window, window_name = _window(record)
     scheme = record.scheme
@@ -262,7 +268,7 @@ def _draw_schedule(fig: Any, spec: DiagramSpec) -> None:
                 ax.axvspan(left - pad, 0, color=COLOURS["beyond"], zorder=0, lw=0)
         ax.axvline(window, color=COLOURS["edge"], lw=1.0, zorder=1)
         ax.annotate(
-            f"{spec.window_name} {window:g} s",
+            f"{spec.window_name} {secs(window)}",
             (window, 1.0),
             xycoords=("data", "axes fraction"),
             xytext=(0, 3),
@@ -354,7 +360,7 @@ def _draw_schedule(fig: Any, spec: DiagramSpec) -> None:
             )
         )
         ax.annotate(
-            f"{spec.reference:g} s",
+            secs(spec.reference),
             (spec.reference, 1.0),
             xycoords=("data", "axes fraction"),
             xytext=(3, -3),
@@ -369,7 +375,7 @@ def _draw_schedule(fig: Any, spec: DiagramSpec) -> None:
         )
 
     ax.set_xlabel("time within the volume (s)")
-    ax.set_ylabel(f"slice index, axis {spec.axis}{spec.direction}")
+    ax.set_ylabel(f"slice index, axis {encoding_direction(spec.axis, spec.direction)}")
     title = spec.label or "scheme unknown"
     ax.set_title(
         f"{title}  ·  {n} slices, {len(spec.groups)} excitation groups",

@@ -52,8 +52,10 @@ from slicetime.interfaces.report_stream import (
 )
 from slicetime.interfaces.safe_text import xml_safe
 from slicetime.model import RunRecord, Severity
+from slicetime.numbers import duration, secs
 from slicetime.pipelines.audit import AuditResult, AuditTotals, RunFacts, RunResult
 from slicetime.rules.dataset import PROTOCOL_ENTITIES, protocol_key
+from slicetime.words import count, encoding_direction
 
 #: fills for scheme tags in the dataset picture (our own muted palette), reused in turn
 TAG_FILLS = (
@@ -186,20 +188,21 @@ def _run_facts(record: RunRecord) -> tuple[tuple[str, str], ...]:
         facts.append(("shape", " × ".join(str(d) for d in header.shape)))
     tr = schedule.repetition_time if schedule else (header.repetition_time if header else None)
     if tr is not None:
-        facts.append(("repetition time", f"{tr:g} s"))
+        facts.append(("repetition time", secs(tr)))
     if schedule is not None:
-        facts.append(("slice axis", f"{schedule.axis}{schedule.direction}" + (
+        facts.append(("slice axis", encoding_direction(schedule.axis, schedule.direction) + (
             " (SliceTiming lists the highest index first)" if schedule.direction == "-" else "")))
         if schedule.delay_time:
-            facts.append(("DelayTime", f"{schedule.delay_time:g} s"))
+            facts.append(("DelayTime", secs(schedule.delay_time)))
         if schedule.volume_times:
-            facts.append(("volume times", f"{len(schedule.volume_times)} onsets (VolumeTiming)"))
+            facts.append(("volume times",
+                          f"{count(len(schedule.volume_times), 'onset')} (VolumeTiming)"))
         facts.append(("timing from", xml_safe(record.timing_origin or "")))
     scheme = record.scheme
     if scheme is not None:
         detail = _plural(len(scheme.groups), "excitation group")
         if scheme.spacing:
-            detail += f", one every {scheme.spacing * 1000:.4g} ms"
+            detail += f", one every {duration(scheme.spacing)}"
         facts.append(("scheme", f"{xml_safe(scheme.label)} · {detail}"))
     else:
         facts.append(("scheme", "unknown: no usable slice timing"))
@@ -314,12 +317,12 @@ def _schemes_table(totals: AuditTotals, tags: dict[str | None, _Tag]) -> str:
             per_label[label] += 1
             first.setdefault(label, i)
         cells = []
-        for label, count in sorted(per_label.items(), key=lambda kv: (-kv[1], kv[0] or "")):
+        for label, n_runs in sorted(per_label.items(), key=lambda kv: (-kv[1], kv[0] or "")):
             name = txt(label) if label is not None else "<em>no usable slice timing</em>"
             example = totals.facts[first[label]].path
             cells.append(
                 f'<li>{_chip(tags[label])} {name} <span class="muted">'
-                f'{_plural(count, "run")}, e.g. <a href="#run-{first[label] + 1}">'
+                f'{_plural(n_runs, "run")}, e.g. <a href="#run-{first[label] + 1}">'
                 f"{txt(example)}</a></span></li>"
             )
         mixed = len(per_label) > 1

@@ -9,7 +9,9 @@ from typing import Any
 
 from slicetime import __version__
 from slicetime.interfaces.safe_text import sanitise
+from slicetime.numbers import json_time, json_times
 from slicetime.pipelines.audit import AuditResult, RunResult
+from slicetime.words import encoding_direction
 
 
 @lru_cache(maxsize=1)
@@ -54,12 +56,14 @@ def run_object(run: RunResult) -> dict[str, Any]:
         "shape": list(header.shape) if header else None,
         "slice_axis": schedule.axis if schedule else None,
         "slice_direction": schedule.direction if schedule else None,
-        "repetition_time": schedule.repetition_time if schedule else (
-            header.repetition_time if header else None),
-        "volume_times": list(schedule.volume_times) if schedule and schedule.volume_times
+        "slice_encoding_direction": encoding_direction(schedule.axis, schedule.direction)
+        if schedule else None,
+        "repetition_time": _time(schedule.repetition_time if schedule else (
+            header.repetition_time if header else None)),
+        "volume_times": json_times(schedule.volume_times) if schedule and schedule.volume_times
         else None,
-        "acquisition_duration": schedule.acquisition_duration if schedule else None,
-        "slice_times": [round(t, 6) for t in schedule.times] if schedule else None,
+        "acquisition_duration": _time(schedule.acquisition_duration) if schedule else None,
+        "slice_times": json_times(schedule.times) if schedule else None,
         "timing_origin": record.timing_origin,
         "scheme": record.scheme.to_json() if record.scheme else None,
         "sources": sources,
@@ -67,6 +71,10 @@ def run_object(run: RunResult) -> dict[str, Any]:
         "sidecars": list(record.sidecar_chain),
         "findings": [f.to_json() for f in run.findings],
     }
+
+
+def _time(value: float | None) -> float | None:
+    return None if value is None else json_time(value)
 
 
 def audit_object(result: AuditResult, root_given: str) -> dict[str, Any]:

@@ -11,6 +11,7 @@ from rich.text import Text
 from slicetime.interfaces.safe_text import xml_safe
 from slicetime.model import RunRecord
 from slicetime.model_source import SeriesTiming
+from slicetime.numbers import plain
 from slicetime.rules.source import correspondence, matched, source_times
 from slicetime.schemes.correspond import Correspondence
 from slicetime.schemes.infer import infer_scheme
@@ -52,7 +53,7 @@ def render_series(series: SeriesTiming, console: Console) -> None:
     if series.series_number is not None:
         facts.add_row("series number", str(series.series_number))
     if series.repetition_time is not None:
-        facts.add_row("repetition time", f"{series.repetition_time:g} s")
+        facts.add_row("repetition time", f"{plain(series.repetition_time)} s")
     facts.add_row("slices", f"{series.n_slices}" + (f", {series.n_volumes} volumes"
                                                     if series.n_volumes else ""))
     if series.times_source is not None:

@@ -24,7 +24,7 @@ from slicetime.interfaces.safe_text import xml_safe
 from slicetime.model import Finding, Severity
 from slicetime.numbers import duration, secs
 from slicetime.pipelines.audit import AuditResult, RunResult
-from slicetime.words import count
+from slicetime.words import count, encoding_direction
 
 if TYPE_CHECKING:
     from slicetime.pipelines.correct import CorrectResult
@@ -117,11 +117,6 @@ def finding_lines(findings: Iterable[Finding], indent: str = "  ", *,
     return lines
 
 
-def axis_text(axis: str, direction: str) -> str:
-    """The slice axis as SliceEncodingDirection spells it: ``k`` or ``k-``."""
-    return axis if direction == "+" else f"{axis}-"
-
-
 def render_show(run: RunResult, console: Console) -> None:
     """The detailed view of one run."""
     record = run.record
@@ -136,7 +131,7 @@ def render_show(run: RunResult, console: Console) -> None:
         facts.append(("shape", " × ".join(str(d) for d in header.shape)
                       + f"   (NIfTI-{header.version}{', gzip' if header.compressed else ''})"))
     if schedule is not None:
-        facts.append(("slice axis", axis_text(schedule.axis, schedule.direction)
+        facts.append(("slice axis", encoding_direction(schedule.axis, schedule.direction)
                       + ("   (SliceTiming lists the highest index first)"
                          if schedule.direction == "-" else "")))
         if schedule.repetition_time is not None:

@@ -37,6 +37,7 @@ from dataclasses import dataclass, field
 from typing import Any
 
 from slicetime.model import AXES, Finding, RunRecord, Severity
+from slicetime.numbers import plain
 from slicetime.readers.policy import ExpectedProtocol
 from slicetime.rules.dataset import TIME_TOLERANCE, protocol_key
 from slicetime.rules.source import matched, source_multiband, source_times
@@ -165,7 +166,7 @@ def _from_header(record: RunRecord) -> list[Repair]:
         return []
     name = SLICE_CODE_NAMES.get(header.slice_code, str(header.slice_code))
     source = (f"the NIfTI header: slice_code {header.slice_code} ({name}), slice_duration "
-              f"{header.slice_duration:g} s, slice axis {schedule.axis}")
+              f"{plain(header.slice_duration)} s, slice axis {schedule.axis}")
     evidence = {"slice_code": header.slice_code, "slice_duration": header.slice_duration,
                 "slice_axis": schedule.axis}
     repairs = [_repair(record, "timing/from-header", "SliceTiming",
@@ -225,7 +226,7 @@ def _missing_from_policy(record: RunRecord, protocol: ExpectedProtocol | None) -
     where = protocol.name or f"protocols[{protocol.index}]"
     return [_repair(record, "timing/missing", "SliceTiming", times,
                     f"the lab policy's protocol {where} ('{protocol.scheme}', "
-                    f"{protocol.slices} slices, TR {protocol.repetition_time:g} s)",
+                    f"{protocol.slices} slices, TR {plain(protocol.repetition_time)} s)",
                     {"protocol": where, "scheme": protocol.scheme})]
 
 

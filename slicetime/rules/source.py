@@ -14,6 +14,7 @@ from collections.abc import Iterator
 
 from slicetime.model import RunRecord, Severity
 from slicetime.model_source import SeriesTiming, SourceEvidence
+from slicetime.numbers import plain
 from slicetime.rules.registry import Hit, reader_code, run_rule
 from slicetime.schemes.correspond import Correspondence, Mismatch, correspond
 from slicetime.schemes.infer import infer_scheme
@@ -258,7 +259,7 @@ def times_differ(record: RunRecord) -> Iterator[Hit]:
     facts = outcome[1]
     detail = facts.get("reason") or (
         f"{facts['slices_differing']} slice(s) differ, by up to "
-        f"{facts['largest_difference_ms']:g} ms")
+        f"{plain(facts['largest_difference_ms'])} ms")
     yield Hit(f"SliceTiming disagrees with the source series {facts['series']} ({detail})",
               field="SliceTiming", evidence=facts)
 
@@ -281,8 +282,8 @@ def tr_differs(record: RunRecord) -> Iterator[Hit]:
     if found is None or tr is None or found[1].repetition_time is None:
         return
     if abs(tr - found[1].repetition_time) > TR_TOLERANCE:
-        yield Hit(f"the repetition time is {tr:g} s, the source series {found[1].series} "
-                  f"says {found[1].repetition_time:g} s", field="RepetitionTime",
+        yield Hit(f"the repetition time is {plain(tr)} s, the source series {found[1].series} "
+                  f"says {plain(found[1].repetition_time)} s", field="RepetitionTime",
                   evidence={**_series_facts(found[1]), "run": tr,
                             "source": found[1].repetition_time})
 
@@ -313,7 +314,7 @@ def multiband_differs(record: RunRecord) -> Iterator[Hit]:
         return
     factor = source_multiband(found[1])
     if factor is not None and factor != declared:
-        yield Hit(f"MultibandAccelerationFactor is {declared:g}, the source series "
+        yield Hit(f"MultibandAccelerationFactor is {plain(declared)}, the source series "
                   f"{found[1].series} excites {factor} slices at a time",
                   field="MultibandAccelerationFactor",
                   evidence={**_series_facts(found[1]), "declared": declared, "source": factor})
