@@ -21,6 +21,8 @@ import math
 from collections.abc import Sequence
 from typing import TYPE_CHECKING, Any, Literal
 
+from slicetime.words import count
+
 if TYPE_CHECKING:  # the heavy imports happen only when a function is called
     import numpy as np
 
@@ -184,8 +186,8 @@ def correct_array(
                          volume_timing, delay_time)
     if len(schedule.times) != array.shape[schedule.axis_index]:
         raise ValueError(
-            f"slice_timing has {len(schedule.times)} entries but the data have "
-            f"{array.shape[schedule.axis_index]} slices along {schedule.axis}"
+            f"slice_timing has {count(len(schedule.times), 'entry')} but the data have "
+            f"{count(array.shape[schedule.axis_index], 'slice')} along {schedule.axis}"
         )
     plan = make_plan(schedule, array.shape[3], _choice(reference))
     return align_array(array, plan, get_engine(method), threads=threads)

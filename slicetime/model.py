@@ -178,13 +178,16 @@ class Finding:
         return f"{self.severity.value}: {self.code}: {where}: {self.message}"
 
     def to_json(self) -> dict[str, Any]:
+        grounds = tidy_json(_jsonable(self.evidence))
         return {
             "code": self.code,
             "severity": self.severity.value,
             "message": self.message,
             "file": self.file,
             "field": self.field,
-            "evidence": tidy_json(_jsonable(self.evidence)),
+            # the values the finding rests on; "evidence" repeats them for one release
+            "grounds": grounds,
+            "evidence": tidy_json(_jsonable(self.evidence)),  # deprecated: use "grounds"
             "hint": self.hint,
         }
 

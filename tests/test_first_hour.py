@@ -197,7 +197,7 @@ def test_tr_in_milliseconds_folds_the_majority_finding(tmp_path: Path) -> None:
     odd = next(r for r in result.runs if r.record.path.startswith("sub-04"))
     codes = [f.code for f in odd.findings]
     assert codes.count("tr/units-ms") == 1 and "dataset/outlier-tr" not in codes
-    assert "header/tr-mismatch" not in codes  # pixdim[4] is 2 s: the same root cause
+    assert "header/tr-disagrees" not in codes  # pixdim[4] is 2 s: the same root cause
 
 
 # ---------------------------------------------------------------- 4: corrected runs

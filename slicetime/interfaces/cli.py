@@ -376,6 +376,7 @@ def _executor(jobs: int | None, scheduler: str | None, *, light: bool = True) ->
     """The executor the options ask for; a note on stderr of where the work ran.
     ``light``: header-only work per run (audit, fix), see ``make_executor``."""
     from slicetime.pipelines.executor import ExecutorError, make_executor
+    from slicetime.words import count
 
     try:
         executor = make_executor(jobs, scheduler, light=light)
@@ -386,11 +387,11 @@ def _executor(jobs: int | None, scheduler: str | None, *, light: bool = True) ->
     finally:
         stats = executor.stats
         if executor.name == "dask":
-            click.echo(f"slicetime: ran on {len(stats.workers)} Dask worker(s) of "
+            click.echo(f"slicetime: ran on {count(len(stats.workers), 'Dask worker')} of "
                        f"{scheduler}", err=True)
         if stats.retried_chunks:
-            click.echo(f"slicetime: {stats.retried_chunks} chunk(s) retried after a lost "
-                       f"worker, {stats.lost_items} run(s) lost twice", err=True)
+            click.echo(f"slicetime: {count(stats.retried_chunks, 'chunk')} retried after a lost "
+                       f"worker, {count(stats.lost_items, 'run')} lost twice", err=True)
         executor.close()
 
 
@@ -540,6 +541,7 @@ def correct(
         correct_paths,
         parse_size,
     )
+    from slicetime.words import count
 
     try:
         choice = ReferenceChoice.parse(reference)
@@ -564,7 +566,7 @@ def correct(
             )
         except CorrectInterrupted as stop:
             render_correct(stop.result, make_console(sys.stderr))
-            click.echo(f"slicetime: interrupted; {stop.not_finished} run(s) not finished "
+            click.echo(f"slicetime: interrupted; {count(stop.not_finished, 'run')} not finished "
                        "(rerun the same command to finish them)", err=True)
             sys.exit(130)
         except ValueError as exc:
@@ -877,19 +879,45 @@ def _as_options(message: str) -> str:
 @friendly
 def explain(code: str | None, list_all: bool) -> None:
     """Print the documentation of a finding CODE (or --list them all)."""
+    from slicetime.interfaces.screen import width_for, wrap_words
     from slicetime.rules import RULES
     from slicetime.rules import explain as explain_rule
 
+    width = width_for(sys.stdout)
     if list_all or code is None:
-        width = max(len(c) for c in RULES)
+        code_width = max(len(c) for c in RULES)
+        lead = code_width + 2 + 7 + 2
         for rule in sorted(RULES.values(), key=lambda r: r.code):
-            click.echo(f"{rule.code:<{width}}  {rule.severity.value:<7}  {rule.title}")
+            head = f"{rule.code:<{code_width}}  {rule.severity.value:<7}  "
+            if width is not None and width - lead < 30:  # narrow: the title under the code
+                click.echo(f"{rule.code}  {rule.severity.value}")
+                for part in wrap_words(rule.title, width, first=4, rest=4):
+                    click.echo("    " + part)
+                continue
+            parts = wrap_words(rule.title, width, first=lead, rest=lead)
+            click.echo(head + parts[0])
+            for part in parts[1:]:
+                click.echo(" " * lead + part)
         return
-    if code not in RULES:
+    known = _known_code(code, RULES)
+    if known is None:
         near = _close_codes(code, list(RULES))
         extra = f"; did you mean {', '.join(near)}?" if near else ""
         raise UserError(f"explain: no finding code {code!r}{extra} (see slicetime explain --list)")
-    click.echo(explain_rule(code))
+    if known != code:
+        click.echo(f"{code} is the former name of {known} (still accepted in lab policies)")
+    for paragraph in explain_rule(known).split("\n"):
+        hanging = 2 if paragraph.endswith(":") or ": " in paragraph[:24] else 0
+        for i, part in enumerate(wrap_words(paragraph, width, rest=hanging)):
+            click.echo(("" if i == 0 else " " * hanging) + part)
+
+
+def _known_code(code: str, rules: Any) -> str | None:
+    """The registered code ``code`` names: itself, or the code a former name became."""
+    from slicetime.rules.registry import current_code
+
+    current = current_code(code)
+    return current if current in rules else None
 
 
 def _close_codes(code: str, known: list[str]) -> list[str]:

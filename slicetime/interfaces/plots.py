@@ -30,7 +30,7 @@ from slicetime.engines.plan import DEFAULT_REFERENCE, PlanError, ReferenceChoice
 from slicetime.interfaces.safe_text import xml_safe
 from slicetime.model import RunRecord
 from slicetime.numbers import secs
-from slicetime.words import encoding_direction
+from slicetime.words import count, encoding_direction
 
 #: our own palette (also used by the HTML report for the matching legend)
 COLOURS = {
@@ -104,13 +104,13 @@ class DiagramSpec:
         """One line saying what the picture marks (for alt text and reports)."""
         if self.kind != "schedule":
             return f"no timing diagram: {self.message}"
-        parts = [self.label or "scheme unknown", f"{len(self.times)} slices"]
+        parts = [self.label or "scheme unknown", count(len(self.times), "slice")]
         if self.late:
-            parts.append(f"{len(self.late)} slice(s) at or after the end of the window")
+            parts.append(f"{count(len(self.late), 'slice')} at or after the end of the window")
         if self.early:
-            parts.append(f"{len(self.early)} slice(s) before 0 s")
+            parts.append(f"{count(len(self.early), 'slice')} before 0 s")
         if self.uneven_after:
-            parts.append(f"{len(self.uneven_after)} uneven gap(s)")
+            parts.append(f"{count(len(self.uneven_after), 'uneven gap')}")
         return ", ".join(parts)
 
 
@@ -378,7 +378,7 @@ def _draw_schedule(fig: Any, spec: DiagramSpec) -> None:
     ax.set_ylabel(f"slice index, axis {encoding_direction(spec.axis, spec.direction)}")
     title = spec.label or "scheme unknown"
     ax.set_title(
-        f"{title}  ·  {n} slices, {len(spec.groups)} excitation groups",
+        f"{title}  ·  {count(n, 'slice')}, {count(len(spec.groups), 'excitation group')}",
         loc="left",
         fontsize=9.5,
         pad=16,

@@ -30,7 +30,7 @@ from slicetime import __version__
 from slicetime.interfaces import screen
 from slicetime.interfaces.safe_text import _escape, xml_safe
 from slicetime.model import Finding, Severity
-from slicetime.numbers import fixed, secs
+from slicetime.numbers import fixed, plain, secs
 from slicetime.pipelines.audit import AuditResult, AuditTotals, RunFacts, RunResult, dataset_names
 from slicetime.rules.dataset import protocol_key
 from slicetime.words import count, plural_of
@@ -59,7 +59,8 @@ def run_line(run: RunResult) -> str:
 
 def _finding_from(obj: dict[str, Any]) -> Finding:
     return Finding(obj["code"], Severity(obj["severity"]), obj["message"], obj.get("file"),
-                   obj.get("field"), obj.get("evidence") or {}, obj.get("hint"))
+                   obj.get("field"), obj.get("grounds") or obj.get("evidence") or {},
+                   obj.get("hint"))
 
 
 # --------------------------------------------------------------------------- sources
@@ -76,8 +77,9 @@ def _completed(obj: dict[str, Any], more: Sequence[Finding] | None,
     if folded:
         roots = [d for d in findings if d["code"] in RULES and RULES[d["code"]].subsumes]
         for number, finding in folded:
-            evidence = roots[number].setdefault("evidence", {})
-            evidence.setdefault("folded", []).append(folded_entry(finding))
+            for key in ("grounds", "evidence"):  # evidence: the former name, one release
+                grounds = roots[number].setdefault(key, {})
+                grounds.setdefault("folded", []).append(folded_entry(finding))
     if more:
         findings.extend(f.to_json() for f in more)
     return obj
@@ -325,6 +327,35 @@ def finding_screen_lines(f: dict[str, Any], width: int | None, *, run_path: str 
         f["severity"], xml_safe(f["code"]), xml_safe(message, one_line=False), where or None,
         xml_safe(f["hint"], one_line=False) if f.get("hint") else None, width,
         indent=indent, unicode=unicode)
+
+
+def _value_text(value: Any, limit: int = 12) -> str:
+    if isinstance(value, bool):
+        return "yes" if value else "no"
+    if isinstance(value, float):
+        return plain(value)
+    if isinstance(value, list | tuple):
+        shown = ", ".join(_value_text(v, limit) for v in value[:limit])
+        return shown + (f", … ({len(value)} in all)" if len(value) > limit else "")
+    if isinstance(value, dict):
+        return "; ".join(f"{k.replace('_', ' ')} {_value_text(v, limit)}"
+                         for k, v in value.items())
+    return xml_safe(value)
+
+
+def grounds_text(grounds: dict[str, Any]) -> str:
+    """A finding's grounds for people: one ``name: value`` line per entry (names with
+    spaces, numbers without float noise, long lists cut), and the findings folded into
+    it as ``also: code (severity): message`` lines."""
+    lines = []
+    for key, value in grounds.items():
+        if key == "folded" and isinstance(value, list):
+            lines.extend(f"also: {xml_safe(f.get('code'))} ({xml_safe(f.get('severity'))}): "
+                         f"{xml_safe(f.get('message'), one_line=False)}"
+                         for f in value if isinstance(f, dict))
+            continue
+        lines.append(f"{xml_safe(key).replace('_', ' ')}: {_value_text(value)}")
+    return "\n".join(lines)
 
 
 def _finding_text(f: dict[str, Any], paint: _Paint, width: int | None = None,

@@ -181,13 +181,29 @@ def _check_every_path_has_runs(
             raise NoRunsError(str(given), is_folder=os.path.isdir(given))
 
 
+def load_current_policy(path: Path, *, display: str | None = None) -> Policy:
+    """A lab policy whose former finding codes (``rules.RENAMED``) name the codes they
+    became, so a policy written for an earlier release keeps working for one release.
+    A pattern is kept as written (it matches the current codes only)."""
+    from slicetime.rules.registry import current_code, known_codes
+
+    policy = load_policy(path, known_codes(), display=display)
+    if not any(current_code(c) != c for c in policy.severity) and not any(
+            current_code(c) != c for entry in policy.ignores for c in entry.codes):
+        return policy
+    severity = {current_code(c): s for c, s in policy.severity.items()}
+    ignores = tuple(dataclasses.replace(e, codes=tuple(current_code(c) for c in e.codes))
+                    for e in policy.ignores)
+    return dataclasses.replace(policy, severity=severity, ignores=ignores)
+
+
 def _policies(
     roots: Iterable[Path], policy_file: Path | None, problems: list[Finding]
 ) -> dict[Path, Policy | None]:
     """The policy of each root: the one given (errors propagate: exit 2), else the
     root's own file (a broken one becomes a dataset finding and is not used)."""
     if policy_file is not None:
-        given = load_policy(policy_file, RULES)
+        given = load_current_policy(policy_file)
         return {root: given for root in roots}
     found: dict[Path, Policy | None] = {}
     for root in roots:
@@ -196,7 +212,7 @@ def _policies(
             found[root] = None
             continue
         try:
-            found[root] = load_policy(candidate, RULES, display=POLICY_FILENAME)
+            found[root] = load_current_policy(candidate, display=POLICY_FILENAME)
         except ReadError as exc:
             problems.append(exc.to_finding())
             found[root] = None

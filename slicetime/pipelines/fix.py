@@ -42,17 +42,16 @@ from typing import Any
 
 from slicetime import __version__
 from slicetime.model import Finding, RunRecord
-from slicetime.pipelines.audit import AuditResult, audit_paths
+from slicetime.pipelines.audit import AuditResult, audit_paths, load_current_policy
 from slicetime.pipelines.executor import Executor
 from slicetime.pipelines.json_splice import DELETE, Layout, scan, splice
 from slicetime.readers.dataset import find_root
 from slicetime.readers.entities import parse_name
 from slicetime.readers.errors import ReadError
-from slicetime.readers.policy import POLICY_FILENAME, Policy, find_policy, load_policy
+from slicetime.readers.policy import POLICY_FILENAME, Policy, find_policy
 from slicetime.readers.sidecar import MAX_SIDECAR_BYTES, TIMING_FIELDS
 from slicetime.readers.source import SourceOptions
 from slicetime.readers.volumes import file_sha256
-from slicetime.rules import RULES
 from slicetime.rules.dataset import PROTOCOL_ENTITIES
 from slicetime.rules.policy import select_protocol
 from slicetime.rules.repairs import FIXABLE, Repair, plan_consensus, plan_run
@@ -232,7 +231,7 @@ def own_sidecar(run: str) -> str:
 
 def _policies(roots: Sequence[Path], policy_file: Path | None) -> dict[str, Policy | None]:
     out: dict[str, Policy | None] = {}
-    given = load_policy(policy_file, RULES) if policy_file is not None else None
+    given = load_current_policy(policy_file) if policy_file is not None else None
     for root in roots:
         if given is not None:
             out[str(root)] = given
@@ -240,7 +239,7 @@ def _policies(roots: Sequence[Path], policy_file: Path | None) -> dict[str, Poli
         candidate = find_policy(root)
         try:
             out[str(root)] = (
-                load_policy(candidate, RULES, display=POLICY_FILENAME) if candidate else None
+                load_current_policy(candidate, display=POLICY_FILENAME) if candidate else None
             )
         except ReadError:  # a broken policy is reported by the audit itself
             out[str(root)] = None

@@ -7,7 +7,7 @@ from collections.abc import Iterator
 
 from slicetime.model import AXES, RunRecord, Severity
 from slicetime.numbers import plain
-from slicetime.rules.registry import Hit, run_rule
+from slicetime.rules.registry import Hit, renamed, run_rule
 from slicetime.schemes.infer import infer_scheme
 from slicetime.schemes.niftcodes import SLICE_CODE_NAMES, header_slice_times
 from slicetime.schemes.resolve import parse_direction, positive_number
@@ -42,8 +42,11 @@ def not_4d(record: RunRecord) -> Iterator[Hit]:
         )
 
 
+renamed("header/tr-mismatch", "header/tr-disagrees")  # until the release after 0.1
+
+
 @run_rule(
-    "header/tr-mismatch",
+    "header/tr-disagrees",
     title="the header's TR disagrees with RepetitionTime",
     severity=E,
     rationale=(

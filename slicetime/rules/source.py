@@ -18,6 +18,7 @@ from slicetime.numbers import plain
 from slicetime.rules.registry import Hit, reader_code, run_rule
 from slicetime.schemes.correspond import Correspondence, Mismatch, correspond
 from slicetime.schemes.infer import infer_scheme
+from slicetime.words import agree, count
 
 E, W, N = Severity.ERROR, Severity.WARNING, Severity.NOTE
 #: the source's quantisation step: a sidecar within it agrees (common practice, no source)
@@ -75,6 +76,7 @@ def _ms(values: tuple[float, ...]) -> list[float]:
 
 @run_rule(
     "source/no-match",
+    checked="source",
     title="no source series could be matched to the run",
     severity=N,
     rationale=(
@@ -93,6 +95,7 @@ def no_match(record: RunRecord) -> Iterator[Hit]:
 
 @run_rule(
     "source/ambiguous",
+    checked="source",
     title="several source series fit the run",
     severity=N,
     rationale=(
@@ -110,6 +113,7 @@ def ambiguous(record: RunRecord) -> Iterator[Hit]:
 
 @run_rule(
     "source/unreadable",
+    checked="source",
     title="the source series cannot be read",
     severity=W,
     rationale=(
@@ -129,6 +133,7 @@ def unreadable(record: RunRecord) -> Iterator[Hit]:
 
 @run_rule(
     "source/geometry-differs",
+    checked="source",
     title="the run's slices do not line up with its source series",
     severity=W,
     rationale=(
@@ -154,6 +159,7 @@ def geometry_differs(record: RunRecord) -> Iterator[Hit]:
 
 @run_rule(
     "source/no-times",
+    checked="source",
     title="the source series carries no per-slice times",
     severity=N,
     rationale=(
@@ -177,6 +183,7 @@ def _where(corr: Correspondence, series: SeriesTiming) -> str:
 
 @run_rule(
     "source/times-absent",
+    checked="source",
     title="the sidecar has no SliceTiming but the source series records it",
     severity=W,
     rationale=(
@@ -223,6 +230,7 @@ def _compare(record: RunRecord) -> tuple[str, dict[str, object]] | None:
 
 @run_rule(
     "source/reversed",
+    checked="source",
     title="the sidecar's slice times run in the opposite direction to the source's",
     severity=E,
     rationale=(
@@ -242,6 +250,7 @@ def reversed_times(record: RunRecord) -> Iterator[Hit]:
 
 @run_rule(
     "source/times-differ",
+    checked="source",
     title="the sidecar's slice times disagree with the source series",
     severity=E,
     rationale=(
@@ -258,7 +267,8 @@ def times_differ(record: RunRecord) -> Iterator[Hit]:
         return
     facts = outcome[1]
     detail = facts.get("reason") or (
-        f"{facts['slices_differing']} slice(s) differ, by up to "
+        f"{count(facts['slices_differing'], 'slice')} "
+        f"{agree(facts['slices_differing'], 'differs')}, by up to "
         f"{plain(facts['largest_difference_ms'])} ms")
     yield Hit(f"SliceTiming disagrees with the source series {facts['series']} ({detail})",
               field="SliceTiming", evidence=facts)
@@ -269,6 +279,7 @@ def times_differ(record: RunRecord) -> Iterator[Hit]:
 
 @run_rule(
     "source/tr-differs",
+    checked="source",
     title="the run's repetition time differs from the source series'",
     severity=E,
     rationale="RepetitionTime (0018,0080) of the source series is the scanner's TR.",
@@ -299,6 +310,7 @@ def source_multiband(series: SeriesTiming) -> int | None:
 
 @run_rule(
     "source/multiband-differs",
+    checked="source",
     title="MultibandAccelerationFactor differs from the source's excitation groups",
     severity=W,
     rationale=(
@@ -322,6 +334,7 @@ def multiband_differs(record: RunRecord) -> Iterator[Hit]:
 
 reader_code(
     "source/bad-map",
+    checked="source",
     title="the --source-map file cannot be used",
     severity=E,
     rationale="The map must be a TSV with two columns per line: run path and series folder.",

@@ -14,6 +14,7 @@ from slicetime.schemes.resolve import (
     positive_number,
     timing_window,
 )
+from slicetime.words import count
 
 E, W, N = Severity.ERROR, Severity.WARNING, Severity.NOTE
 
@@ -559,8 +560,8 @@ def vt_order(record: RunRecord) -> Iterator[Hit]:
         )
     if record.header is not None and len(vt) != record.header.n_volumes:
         yield Hit(
-            f"VolumeTiming has {len(vt)} entries but the image has "
-            f"{record.header.n_volumes} volumes",
+            f"VolumeTiming has {count(len(vt), 'entry')} but the image has "
+            f"{count(record.header.n_volumes, 'volume')}",
             "VolumeTiming", {"entries": len(vt), "volumes": record.header.n_volumes},
         )
 
@@ -606,7 +607,7 @@ def deprecated_acq(record: RunRecord) -> Iterator[Hit]:
     "time and correction would be wrong by a factor of 1000.)",
     fix="Divide RepetitionTime by 1000.",
     standard="BIDS rules.checks.func.RepetitionTimeGreaterThan",
-    subsumes=("dataset/outlier-tr", "policy/tr-mismatch", "header/tr-mismatch"),
+    subsumes=("dataset/outlier-tr", "policy/tr-mismatch", "header/tr-disagrees"),
 )
 def tr_units(record: RunRecord) -> Iterator[Hit]:
     tr = positive_number(record.metadata.get("RepetitionTime"))

@@ -22,6 +22,7 @@ _HOW = (
 
 reader_code(
     "verify/contradicted",
+    checked="data",
     title="the image data fit another slice order clearly better than the claimed one",
     severity=Severity.WARNING,
     rationale=_HOW + (
@@ -36,6 +37,7 @@ reader_code(
 )
 reader_code(
     "verify/supported",
+    checked="data",
     title="the image data support the claimed slice order",
     severity=Severity.NOTE,
     rationale=_HOW + (
@@ -46,6 +48,7 @@ reader_code(
 )
 reader_code(
     "verify/undecidable",
+    checked="data",
     title="the image data cannot tell whether the claimed slice order is right",
     severity=Severity.NOTE,
     rationale=_HOW + (
