@@ -89,6 +89,7 @@ def audit_object(result: AuditResult, root_given: str) -> dict[str, Any]:
         "tool": {"name": "slicetime", "version": __version__},
         "root": ", ".join(names[r] for r in roots),
         "roots": result.roots,
+        "dataset_names": [dataset_names(result.roots).get(r, r) for r in result.roots],
         "runs": [run_object(r) for r in result.runs],
         "dataset_findings": [f.to_json() for f in result.dataset_findings],
         "policies": result.policies,

@@ -193,7 +193,8 @@ def display_path(totals: AuditTotals, facts: RunFacts, path: str, *, several: bo
 
 def _head(totals: AuditTotals) -> dict[str, Any]:
     return {"tool": {"name": "slicetime", "version": __version__},
-            "root": report_root(totals), "roots": totals.roots}
+            "root": report_root(totals), "roots": totals.roots,
+            "dataset_names": [totals.names.get(r, r) for r in totals.roots]}
 
 
 def _summary(totals: AuditTotals) -> dict[str, Any]:

@@ -59,6 +59,8 @@ from slicetime.rules.repairs import FIXABLE, Repair, plan_consensus, plan_run
 JOURNAL_NAME = "journal.json"
 PLAN_FORMAT = "slicetime-fix-plan"
 JOURNAL_FORMAT = "slicetime-fix-journal"
+#: journal entry keys written by earlier releases, read as the keys they became
+_JOURNAL_FORMER_KEYS = {"before_sha256": "sha256_before", "after_sha256": "sha256_after"}
 
 
 class FixError(Exception):
@@ -716,8 +718,8 @@ class JournalEntry:
     root: str
     file: str
     action: str  # modified | created | replaced-link
-    before_sha256: str | None
-    after_sha256: str
+    sha256_before: str | None
+    sha256_after: str
     backup: str | None = None  # relative to the journal's folder
     mode: int | None = None
     link_target: str | None = None
@@ -728,7 +730,7 @@ class JournalEntry:
 
     def to_json(self) -> dict[str, Any]:
         return {"root": self.root, "file": self.file, "action": self.action,
-                "before_sha256": self.before_sha256, "after_sha256": self.after_sha256,
+                "sha256_before": self.sha256_before, "sha256_after": self.sha256_after,
                 "backup": self.backup, "mode": self.mode, "link_target": self.link_target}
 
 
@@ -859,7 +861,7 @@ def _apply_checked(plan: FixPlan, roots: list[str], backup: Path) -> ApplyResult
                              _sha(change.after.encode("utf-8")))
         if path.is_symlink():
             entry.action, entry.link_target = "replaced-link", os.readlink(path)
-            entry.before_sha256 = change.sha256_before
+            entry.sha256_before = change.sha256_before
         elif path.exists():
             data = path.read_bytes()
             if _sha(data) != change.sha256_before:
@@ -873,7 +875,7 @@ def _apply_checked(plan: FixPlan, roots: list[str], backup: Path) -> ApplyResult
                 fh.flush()
                 os.fsync(fh.fileno())
             entry.action, entry.backup = "modified", rel
-            entry.before_sha256 = change.sha256_before
+            entry.sha256_before = change.sha256_before
             entry.mode = path.stat().st_mode & 0o7777
         entries.append(entry)
     _write_journal(journal_path, roots, token, entries, "prepared")
@@ -994,7 +996,10 @@ def _read_journal(journal_path: Path) -> _Journal:
     for n, raw in enumerate(raw_entries, 1):
         if not isinstance(raw, dict):
             raise damaged(f"entry {n} is not an object")
-        for key in ("root", "file", "action", "after_sha256"):
+        for former, key in _JOURNAL_FORMER_KEYS.items():  # journals before 0.2
+            if former in raw and key not in raw:
+                raw = {**raw, key: raw[former]}
+        for key in ("root", "file", "action", "sha256_after"):
             if key not in raw:
                 raise damaged(f"entry {n} lacks {key!r}")
         root, file, action = raw["root"], raw["file"], raw["action"]
@@ -1006,17 +1011,17 @@ def _read_journal(journal_path: Path) -> _Journal:
         if (root, file) in seen:
             raise damaged(f"entry {n}: {file!r} is recorded twice")
         seen.add((root, file))
-        after, before = raw["after_sha256"], raw.get("before_sha256")
+        after, before = raw["sha256_after"], raw.get("sha256_before")
         if not (isinstance(after, str) and _SHA.match(after)):
-            raise damaged(f"entry {n}: after_sha256 is not a SHA-256")
+            raise damaged(f"entry {n}: sha256_after is not a SHA-256")
         entry = JournalEntry(root, file, str(action), None, after)
         if action == "created":
             if before is not None:
-                raise damaged(f"entry {n}: a created file has a before_sha256")
+                raise damaged(f"entry {n}: a created file has a sha256_before")
         elif action in ("modified", "replaced-link"):
             if not (isinstance(before, str) and _SHA.match(before)):
-                raise damaged(f"entry {n}: before_sha256 is missing or not a SHA-256")
-            entry.before_sha256 = before
+                raise damaged(f"entry {n}: sha256_before is missing or not a SHA-256")
+            entry.sha256_before = before
         else:
             raise damaged(f"entry {n}: unknown action {action!r}")
         if action == "modified":
@@ -1051,7 +1056,7 @@ def _backup_bytes(entry: JournalEntry, backup: Path) -> bytes:
         raise FixError(f"{path}: the backup of {entry.file} is missing (or not a regular "
                        "file); nothing was restored")
     data = path.read_bytes()
-    if _sha(data) != entry.before_sha256:
+    if _sha(data) != entry.sha256_before:
         raise FixError(f"{path}: the backup of {entry.file} does not match the SHA-256 the "
                        "journal recorded before the fix; nothing was restored")
     return data
@@ -1067,9 +1072,9 @@ def _state(entry: JournalEntry) -> str:
     if path.exists() and not path.is_file():
         return "other"
     sha = _current_sha(path)
-    if sha == entry.after_sha256:
+    if sha == entry.sha256_after:
         return "after"
-    if sha == entry.before_sha256 and entry.action != "replaced-link":
+    if sha == entry.sha256_before and entry.action != "replaced-link":
         return "before"
     return "other"
 
