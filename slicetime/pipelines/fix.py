@@ -42,6 +42,7 @@ from typing import Any
 
 from slicetime import __version__
 from slicetime.model import Finding, RunRecord
+from slicetime.numbers import tidy_json
 from slicetime.pipelines.audit import AuditResult, audit_paths, load_current_policy
 from slicetime.pipelines.executor import Executor
 from slicetime.pipelines.json_splice import DELETE, Layout, scan, splice
@@ -161,7 +162,7 @@ def _repair_json(repair: Repair) -> dict[str, Any]:
         "current": repair.current,
         "resolved_from": repair.resolved_from,
         "source": repair.source,
-        "evidence": dict(repair.evidence),
+        "grounds": tidy_json(dict(repair.evidence)),
     }
 
 
