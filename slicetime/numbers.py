@@ -2,9 +2,10 @@
 rounded and written (model layer: no I/O, used by every layer above).
 
 * JSON (reports, plans, sidecars the tool writes): times in seconds to 1 µs
-  (:func:`json_time`); any other float to 12 significant digits, and to 1 µs as
-  well when it is 0.01 or more (:func:`json_float`), so float noise such as
-  ``0.44999999999999996`` never reaches a file a person reads.
+  (:func:`json_time`); the values a finding rests on (its grounds, mostly times)
+  to 12 significant digits and then to 6 decimals, i.e. 1 µs for a time
+  (:func:`json_float`), so float noise such as ``0.44999999999999996`` never
+  reaches a file a person reads.
 * Screens (terminal, HTML, messages): fixed-point, never scientific notation,
   trailing zeros dropped; durations below one second in milliseconds with at
   most 2 decimals (:func:`duration`), seconds with at most 5 (the same 10 µs).
@@ -42,13 +43,10 @@ def json_times(values: Any) -> list[float]:
 
 
 def json_float(value: float) -> float:
-    """Any float for JSON: 12 significant digits; values of 0.01 or more also to 1 µs."""
+    """A float for JSON: 12 significant digits, then at most 6 decimals (1 µs)."""
     if not _finite(value) or value == 0:
         return value + 0.0 if value == 0 else value
-    tidy = float(f"{value:.{JSON_SIGNIFICANT}g}")
-    if abs(tidy) >= 0.01:
-        tidy = round(tidy, JSON_TIME_DECIMALS)
-    return tidy + 0.0
+    return round(float(f"{value:.{JSON_SIGNIFICANT}g}"), JSON_TIME_DECIMALS) + 0.0
 
 
 def tidy_json(value: Any) -> Any:

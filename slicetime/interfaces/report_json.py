@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import json
-from functools import lru_cache
+from functools import cache, lru_cache
 from importlib import resources
 from typing import Any
 
@@ -54,7 +54,7 @@ SCHEMAS = {
 }
 
 
-@lru_cache(maxsize=None)
+@cache
 def load_schema(name: str) -> dict[str, Any]:
     """A shipped schema by its name in :data:`SCHEMAS` (or its file name)."""
     file = SCHEMAS.get(name, name)

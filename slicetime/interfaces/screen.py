@@ -13,6 +13,7 @@ Every function here is pure (strings in, strings out) except :func:`width_for`.
 from __future__ import annotations
 
 import os
+import re
 import shutil
 from collections.abc import Callable, Sequence
 from typing import Any
@@ -67,6 +68,20 @@ def shorten_path(path: str, room: int | None, *, unicode: bool = True) -> str:
     return path[:left] + dots + path[len(path) - right:]
 
 
+_UNIT = re.compile(r"^(ms|s|mm|µs|us|Hz|%|×\d+)[),.;:]*$")
+
+
+def _words(paragraph: str) -> list[str]:
+    """The paragraph's words, a number kept with its unit (``2.5 s``: one word)."""
+    words: list[str] = []
+    for word in paragraph.split(" "):
+        if words and _UNIT.match(word) and words[-1][-1:].isdigit():
+            words[-1] = f"{words[-1]} {word}"
+        else:
+            words.append(word)
+    return words
+
+
 def wrap_words(text: str, width: int | None, first: int = 0, rest: int = 0) -> list[str]:
     """``text`` broken at spaces into lines of at most ``width`` characters, the first
     line already ``first`` characters in, the others indented by ``rest`` (returned
@@ -79,7 +94,7 @@ def wrap_words(text: str, width: int | None, first: int = 0, rest: int = 0) -> l
     for paragraph in text.split("\n"):
         current = ""
         used = first if not lines else rest
-        for word in paragraph.split(" "):
+        for word in _words(paragraph):
             room = width - used
             candidate = f"{current} {word}" if current else word
             if len(candidate) <= room or (not current and len(word) <= room):
@@ -93,6 +108,33 @@ def wrap_words(text: str, width: int | None, first: int = 0, rest: int = 0) -> l
                 word = shorten_path(word, max(room, 8)) if "/" in word else word[:max(room, 8)]
             current = word
         lines.append(current)
+    return lines
+
+
+def wrap_items(items: Sequence[str], width: int | None, first: int = 0, rest: int = 0,
+               sep: str = "  ") -> list[str]:
+    """Like :func:`wrap_words`, but each item (``(reference 0.95 s)``) stays whole on
+    one line unless it alone is wider than a line."""
+    if width is None:
+        return [sep.join(items)]
+    lines: list[str] = []
+    current = ""
+    for item in items:
+        used = first if not lines else rest
+        candidate = f"{current}{sep}{item}" if current else item
+        if len(candidate) <= width - used:
+            current = candidate
+            continue
+        if current:
+            lines.append(current)
+            used = rest
+        if len(item) > width - used:
+            parts = wrap_words(item, width, first=used, rest=rest)
+            lines.extend(parts[:-1])
+            current = parts[-1]
+        else:
+            current = item
+    lines.append(current)
     return lines
 
 

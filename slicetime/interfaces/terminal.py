@@ -202,11 +202,12 @@ def render_correct(result: CorrectResult, console: Console) -> None:
     unicode = supports_unicode(console)
     pad = " " * 11
     for run in result.runs:
-        tail = ""
+        items = []
         if run.ok and run.output:
-            tail += f"  {'→' if unicode else '->'} {xml_safe(run.output.rsplit('/', 1)[-1])}"
+            items.append(f"{'→' if unicode else '->'} {xml_safe(run.output.rsplit('/', 1)[-1])}")
         if run.reference is not None and run.ok:
-            tail += f"  (reference {secs(run.reference)})"
+            items.append(f"(reference {secs(run.reference)})")
+        tail = "".join(f"  {item}" for item in items)
         path = xml_safe(run.path)
         line = Text()
         line.append(f"{run.status:<10}", style=OUTCOME_STYLE[run.status])
@@ -217,10 +218,11 @@ def render_correct(result: CorrectResult, console: Console) -> None:
         else:  # the path on the status line, shortened; the output under it
             line.append(" " + screen.shorten_path(path, width - 11, unicode=unicode))
             console.print(line)
-            for part in screen.wrap_words(tail.strip(), width, first=11, rest=13):
+            for part in screen.wrap_items(items, width, first=11, rest=11):
                 console.print(Text(pad + part, style="dim"))
-        if run.reason:
-            for part in screen.wrap_words(xml_safe(run.reason), width, first=11, rest=13):
+        if run.reason:  # the path is on the line above: not again
+            reason = screen.strip_path_prefix(run.reason, run.path)
+            for part in screen.wrap_words(xml_safe(reason), width, first=11, rest=13):
                 console.print(Text(pad + part))
         for warning in run.warnings:
             for i, part in enumerate(screen.wrap_words(f"warning: {xml_safe(warning)}", width,
