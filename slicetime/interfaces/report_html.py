@@ -51,6 +51,7 @@ from slicetime.interfaces.report_stream import (
     report_root,
 )
 from slicetime.interfaces.safe_text import xml_safe
+from slicetime.interfaces.screen import strip_path_prefix
 from slicetime.model import RunRecord, Severity
 from slicetime.numbers import duration, secs
 from slicetime.pipelines.audit import AuditResult, AuditTotals, RunFacts, RunResult
@@ -409,7 +410,9 @@ def _page_data(source: ReportSource, collector: DiagramCollector,
                 grounds = f.get("grounds") or f.get("evidence")
                 findings.append([
                     strings(xml_safe(f["code"])), _RANK[f["severity"]],
-                    opt(f["message"], one_line=False), opt(f.get("file")), opt(f.get("field")),
+                    opt(strip_path_prefix(f["message"], f.get("file"), pending[1]["path"]),
+                        one_line=False),
+                    opt(f.get("file")), opt(f.get("field")),
                     opt(grounds_text(grounds) if grounds else None, one_line=False),
                     opt(f.get("hint"), one_line=False),
                 ])
