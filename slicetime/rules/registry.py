@@ -73,7 +73,7 @@ class Rule:
     #: the standard's check this rule covers, when one exists (for docs and tests)
     standard: str | None = None
     #: codes that follow from this rule's finding: on the same run and field they are
-    #: folded into it (listed in its evidence) instead of reported again
+    #: folded into it (listed in its grounds) instead of reported again
     subsumes: frozenset[str] = frozenset()
     #: where the check happens (a key of :data:`CHECKED`)
     checked: Checked = "metadata"
@@ -289,5 +289,5 @@ def explain(code: str) -> str:
         lines += ["", f"standard: {rule.standard}"]
     if rule.subsumes:
         lines += ["", "folds in (consequences on the same run and field, listed in its "
-                  "evidence instead of reported again): " + ", ".join(sorted(rule.subsumes))]
+                  "grounds instead of reported again): " + ", ".join(sorted(rule.subsumes))]
     return "\n".join(lines)
