@@ -535,6 +535,7 @@ def correct(
     from slicetime.interfaces.report_json import dumps
     from slicetime.interfaces.safe_text import xml_safe
     from slicetime.interfaces.terminal import make_console, progress_reporter, render_correct
+    from slicetime.numbers import tidy_json
     from slicetime.pipelines.correct import (
         CorrectInterrupted,
         CorrectOptions,
@@ -578,7 +579,7 @@ def correct(
         payload = {
             "tool": {"name": "slicetime", "version": __version__},
             "out": result.out,
-            "runs": [r.to_json() for r in result.runs],
+            "runs": [tidy_json(r.to_json()) for r in result.runs],  # no float noise
             "summary": result.counts(),
         }
         click.echo(dumps(payload))

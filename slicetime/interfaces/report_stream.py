@@ -251,7 +251,7 @@ TSV_COLUMNS = ("path", "dataset", "task", "scheme", "repetition_time", "slices",
 def _cell(value: object) -> str:
     if value is None:
         return ""
-    return xml_safe(value if isinstance(value, str) else f"{value:g}"
+    return xml_safe(value if isinstance(value, str) else plain(value, 9)
                     if isinstance(value, float) else str(value))
 
 
