@@ -175,7 +175,10 @@ class Finding:
         where = self.file or ""
         if self.field:
             where = f"{where} [{self.field}]" if where else f"[{self.field}]"
-        return f"{self.severity.value}: {self.code}: {where}: {self.message}"
+        message = self.message
+        if self.file and message.startswith(self.file + ": "):  # the path once, not twice
+            message = message[len(self.file) + 2:]
+        return f"{self.severity.value}: {self.code}: {where}: {message}"
 
     def to_json(self) -> dict[str, Any]:
         grounds = tidy_json(_jsonable(self.evidence))

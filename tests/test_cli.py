@@ -168,6 +168,12 @@ def test_a_former_code_keeps_working_in_policies_and_explain(tmp_path: Path) -> 
     findings = json.loads(result.stdout)["runs"][0]["findings"]
     found = [f for f in findings if f["code"] == "header/tr-disagrees"]
     assert found and found[0]["severity"] == "note"
+    (ds / "slicetime-policy.toml").write_text(
+        'version = 1\n[[ignore]]\ncodes = ["header/tr-mismatch"]\nreason = "scanner quirk"\n')
+    result = CliRunner().invoke(cli, ["audit", str(ds), "--format", "json"])
+    report = json.loads(result.stdout)
+    assert not [f for f in report["runs"][0]["findings"] if f["code"] == "header/tr-disagrees"]
+    assert report["summary"]["ignored"] == 1
     shown = CliRunner().invoke(cli, ["explain", "header/tr-mismatch"])
     assert shown.exit_code == 0 and "header/tr-disagrees" in shown.stdout
 

@@ -282,3 +282,20 @@ def test_wrapping_never_breaks_a_word_or_a_number_from_its_unit() -> None:
         assert all(len(line) <= width for line in lines)
         assert " ".join(lines) == text
         assert not any(line.startswith(("s,", "s ")) or line == "s" for line in lines)
+
+
+@pytest.mark.parametrize("width", WIDTHS)
+def test_dicom_series_screens_fit(tmp_path: Path, width: int) -> None:
+    from tests.test_dicom_source import resting_tree
+
+    root, run, _ = resting_tree(tmp_path, None)
+    for target in (root / "sourcedata/sub-01/rest", run):
+        _, text = run_cli("show", target, columns=width)
+        assert "interleaved ascending from 1" in text or "source DICOM series" in text
+        for line in text.splitlines():
+            assert len(line) <= width and line == line.rstrip(), line
+        assert not NOISE.search(text) and not SCIENTIFIC.search(text)
+    # the series' own slice times in milliseconds: the mosaic's tile 2 at 0 ms, tile 1 at
+    # 1040 ms (MosaicRefAcqTimes of nibabel's csa_slice_norm.dcm, read by pydicom)
+    _, series = run_cli("show", root / "sourcedata/sub-01/rest", columns=width)
+    assert re.search(r"tile 1\s.*\b1040\b", series) and "time ms" in series
