@@ -26,6 +26,8 @@ import os
 from collections.abc import Sequence
 from typing import TYPE_CHECKING, Any, Literal, cast
 
+from slicetime.words import count
+
 if TYPE_CHECKING:  # the heavy imports happen only when a function is called
     import numpy as np
 
@@ -190,8 +192,8 @@ def correct_array(
                          volume_timing, delay_time)
     if len(schedule.times) != array.shape[schedule.axis_index]:
         raise ValueError(
-            f"slice_timing has {len(schedule.times)} entries but the data have "
-            f"{array.shape[schedule.axis_index]} slices along {schedule.axis}"
+            f"slice_timing has {count(len(schedule.times), 'entry')} but the data have "
+            f"{count(array.shape[schedule.axis_index], 'slice')} along {schedule.axis}"
         )
     plan = make_plan(schedule, array.shape[3], _choice(reference))
     return align_array(array, plan, get_engine(method), threads=threads)
@@ -336,7 +338,7 @@ def slice_times(
         window = repetition_time - delay_time
     protocol = Protocol(
         n_slices=n_slices, order=order, ascending=not descending, step=step, start=first,
-        multiband=multiband, repetition_time=repetition_time, acquisition_time=window,
+        multiband=multiband, repetition_time=repetition_time, active_time=window,
         direction="-" if slice_encoding_direction.endswith("-") else "+", decimals=decimals,
     )
     return slice_timing(protocol)

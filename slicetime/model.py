@@ -13,6 +13,8 @@ from collections.abc import Mapping
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any, Literal
 
+from slicetime.numbers import json_time, json_times, tidy_json
+
 if TYPE_CHECKING:
     from slicetime.model_source import SourceEvidence
 
@@ -186,14 +188,14 @@ class Scheme:
             "label": self.label,
             "multiband_factor": self.multiband_factor,
             "groups": [list(g) for g in self.groups],
-            "group_times": [round(t, 6) for t in self.group_times],
+            "group_times": json_times(self.group_times),
             "step": self.step,
             "regular": self.regular,
             "residue_order": list(self.residue_order) if self.residue_order else None,
             "ascending": self.ascending,
             "start": self.start,
-            "spacing": self.spacing,
-            "evidence": _jsonable(self.evidence),
+            "spacing": None if self.spacing is None else json_time(self.spacing),
+            "evidence": tidy_json(_jsonable(self.evidence)),
         }
 
 
@@ -218,16 +220,22 @@ class Finding:
         where = self.file or ""
         if self.field:
             where = f"{where} [{self.field}]" if where else f"[{self.field}]"
-        return f"{self.severity.value}: {self.code}: {where}: {self.message}"
+        message = self.message
+        if self.file and message.startswith(self.file + ": "):  # the path once, not twice
+            message = message[len(self.file) + 2:]
+        return f"{self.severity.value}: {self.code}: {where}: {message}"
 
     def to_json(self) -> dict[str, Any]:
+        grounds = tidy_json(_jsonable(self.evidence))
         return {
             "code": self.code,
             "severity": self.severity.value,
             "message": self.message,
             "file": self.file,
             "field": self.field,
-            "evidence": _jsonable(self.evidence),
+            # the values the finding rests on; "evidence" repeats them for one release
+            "grounds": grounds,
+            "evidence": tidy_json(_jsonable(self.evidence)),  # deprecated: use "grounds"
             "hint": self.hint,
         }
 

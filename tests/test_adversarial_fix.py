@@ -136,11 +136,11 @@ def test_an_edited_journal_cannot_write_outside_its_datasets(tmp_path: Path, att
         first = content["entries"][0]
         if attack == "root-outside":
             content["roots"].append(str(victim.parent))
-            first.update(root=str(victim.parent), file=victim.name, after_sha256=victim_sha)
+            first.update(root=str(victim.parent), file=victim.name, sha256_after=victim_sha)
         elif attack == "dotdot-file":
-            first.update(file="../home/notes.json", after_sha256=victim_sha)
+            first.update(file="../home/notes.json", sha256_after=victim_sha)
         elif attack == "absolute-file":
-            first.update(file=str(victim), after_sha256=victim_sha)
+            first.update(file=str(victim), sha256_after=victim_sha)
         elif attack == "backup-outside":
             first["backup"] = "files/../../home/notes.json"
         elif attack == "backup-through-link":
@@ -148,9 +148,9 @@ def test_an_edited_journal_cannot_write_outside_its_datasets(tmp_path: Path, att
             first["backup"] = "files/escape/notes.json"
         elif attack == "folder-through-link":
             os.symlink(victim.parent, ds / "sub-01" / "escape")
-            first.update(file="sub-01/escape/notes.json", after_sha256=victim_sha)
+            first.update(file="sub-01/escape/notes.json", sha256_after=victim_sha)
         else:
-            del first["after_sha256"]
+            del first["sha256_after"]
 
     edit_journal(journal, change)
     state = tree_hashes(tmp_path)

@@ -27,7 +27,7 @@ def test_tricky_valid_runs_are_clean(tmp_path: Path) -> None:
     write_run(root, F.format("multiband"), shape=(4, 4, 12, 5), tr=1.0,
               sidecar={"RepetitionTime": 1.0, "SliceTiming": mb,
                        "MultibandAccelerationFactor": 3})
-    sparse = slice_timing(Protocol(n_slices=12, repetition_time=3.0, acquisition_time=2.0))
+    sparse = slice_timing(Protocol(n_slices=12, repetition_time=3.0, active_time=2.0))
     write_run(root, F.format("sparse"), shape=(4, 4, 12, 5), tr=3.0,
               sidecar={"RepetitionTime": 3.0, "DelayTime": 1.0, "SliceTiming": sparse})
     # slices along j, with dim_info saying so

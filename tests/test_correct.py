@@ -364,10 +364,10 @@ def test_force_overrides_a_header_disagreement(dataset: Path, tmp_path: Path) ->
     run_with_header_tr(dataset, 3.0)
     out = tmp_path / "out"
     refused = run_cli("correct", dataset, "--out", out)
-    assert refused.exit_code == 1 and "header/tr-mismatch" in refused.output
+    assert refused.exit_code == 1 and "header/tr-disagrees" in refused.output
     forced = run_cli("correct", dataset, "--out", out, "--force")
     assert forced.exit_code == 0, forced.output
-    assert "corrected despite audit error header/tr-mismatch" in forced.output
+    assert "corrected despite audit error header/tr-disagrees" in forced.output
     # the sidecar's TR was used (BIDS: the sidecar wins over the header)
     assert interior_error(output_of(out, REL), truth_at(SHAPE, 0.875)) < 0.2
 
@@ -501,7 +501,7 @@ def test_an_interrupted_batch_leaves_nothing_half_written_and_resumes(
     # one process, so the patched engine is the one that runs
     result = CliRunner().invoke(cli, ["correct", str(dataset), "--out", str(out), "--jobs", "1"])
     assert result.exit_code == 130
-    assert "interrupted; 2 run(s) not finished" in result.output
+    assert "interrupted; 2 runs not finished" in result.output
     files = sorted(p.relative_to(out).as_posix() for p in out.rglob("*") if p.is_file())
     first = output_of(out, rels[0]).relative_to(out).as_posix()
     assert first in files
@@ -594,7 +594,7 @@ def test_the_lab_policy_decides_what_blocks(dataset: Path, tmp_path: Path) -> No
     # policy; the audit gate then lets the run through without --force
     run_with_header_tr(dataset, 3.0)
     policy = tmp_path / "policy.toml"
-    policy.write_text('version = 1\n\n[severity]\n"header/tr-mismatch" = "warning"\n')
+    policy.write_text('version = 1\n\n[severity]\n"header/tr-disagrees" = "warning"\n')
     out = tmp_path / "out"
     assert run_cli("correct", dataset, "--out", out).exit_code == 1
     result = run_cli("correct", dataset, "--out", out, "--policy", policy)

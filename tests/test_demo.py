@@ -23,7 +23,7 @@ def test_the_demo_runs_the_whole_job(tmp_path: Path, capsys: pytest.CaptureFixtu
     jsonschema.validate(report, report_schema())  # the JSON report contract
     codes = {f["code"] for run in report["runs"] for f in run["findings"]}
     # every planted defect is found
-    assert {"timing/units-ms", "header/tr-mismatch", "scheme/multiband-undeclared",
+    assert {"timing/units-ms", "header/tr-disagrees", "scheme/multiband-undeclared",
             "file/truncated", "inherit/timing-override"} <= codes
     fixed = out / "quiet-rooms-fixed"
     top = json.loads((fixed / "task-chirp_bold.json").read_text())

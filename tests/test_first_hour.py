@@ -148,7 +148,7 @@ def test_milliseconds_give_one_finding_and_the_scheme_in_seconds(tmp_path: Path)
     code, text, _ = run_cli("show", str(root / "sub-03/func/sub-03_task-tap_bold.nii.gz"))
     assert code == 1
     flat = " ".join(text.split())
-    assert "one excitation every 66.7 ms" in flat
+    assert "one excitation every 66.67 ms" in flat  # 2000 ms / 30, 2 decimals
     assert "SliceTiming read as milliseconds" in flat
     axis = text.split("acquisition order")[1].split("findings")[0]
     assert "2 s" in axis and "1933" not in axis and "2000" not in axis
@@ -197,7 +197,7 @@ def test_tr_in_milliseconds_folds_the_majority_finding(tmp_path: Path) -> None:
     odd = next(r for r in result.runs if r.record.path.startswith("sub-04"))
     codes = [f.code for f in odd.findings]
     assert codes.count("tr/units-ms") == 1 and "dataset/outlier-tr" not in codes
-    assert "header/tr-mismatch" not in codes  # pixdim[4] is 2 s: the same root cause
+    assert "header/tr-disagrees" not in codes  # pixdim[4] is 2 s: the same root cause
 
 
 # ---------------------------------------------------------------- 4: corrected runs
@@ -380,13 +380,28 @@ def test_timing_refuses_milliseconds_and_names_the_options() -> None:
     assert code == 2 and "--tr 2000" in err and "milliseconds" in err and "--tr 2?" in err
     code, _, err = run_cli("timing", "--slices", "10", "--tr", "2", "--multiband", "3")
     assert code == 2 and "--multiband" in err and "--slices" in err and "n_slices" not in err
-    code, _, err = run_cli("timing", "--slices", "10", "--tr", "2", "--acquisition-time", "3")
-    assert code == 2 and "--acquisition-time" in err and "acquisition_time" not in err
+    code, _, err = run_cli("timing", "--slices", "10", "--tr", "2", "--delay-time", "3")
+    assert code == 2 and "--delay-time" in err and "active_time" not in err
     code, _, err = run_cli("timing", "--slices", "10", "--tr", "2", "--order", "interleaved",
                            "--first", "5")
     assert code == 2 and "--first" in err and "start" not in err
     _, help_text, _ = run_cli("timing", "--help")
     assert "0 to STEP-1" in " ".join(help_text.split())
+
+
+def test_timing_delay_time_sets_the_silent_part_and_the_old_option_names_it() -> None:
+    # BIDS DelayTime: "the time between the end of the acquisition of one volume and the
+    # start of the next" (bids-specification, func metadata): the slices use TR - DelayTime
+    code, out, _ = run_cli("timing", "--slices", "4", "--tr", "3", "--delay-time", "1",
+                           "--compact")
+    fields = json.loads(out)
+    assert code == 0 and fields["DelayTime"] == 1 and fields["RepetitionTime"] == 3
+    # common practice (no source): N slices evenly over the active 2 s are 0.5 s apart
+    assert fields["SliceTiming"] == [0.0, 0.5, 1.0, 1.5]
+    code, _, err = run_cli("timing", "--slices", "4", "--tr", "3", "--acquisition-time", "2")
+    assert code == 2 and "--delay-time" in err and "replaced" in err
+    _, help_text, _ = run_cli("timing", "--help")
+    assert "--acquisition-time" not in help_text and "--delay-time" in help_text
 
 
 def test_timing_compact_is_one_line_of_the_same_fields() -> None:

@@ -232,12 +232,12 @@ def test_semantic_problems_of_protocols() -> None:
 
 
 def test_conflicting_severity_patterns() -> None:
-    error = invalid('version = 1\n[severity]\n"header/*" = "note"\n"*/tr-mismatch" = "error"\n')
-    assert "header/tr-mismatch" in error.message
+    error = invalid('version = 1\n[severity]\n"header/*" = "note"\n"*/tr-disagrees" = "error"\n')
+    assert "header/tr-disagrees" in error.message
     # an exact code settles it
     load_text(
-        'version = 1\n[severity]\n"header/*" = "note"\n"*/tr-mismatch" = "error"\n'
-        '"header/tr-mismatch" = "warning"\n'
+        'version = 1\n[severity]\n"header/*" = "note"\n"*/tr-disagrees" = "error"\n'
+        '"header/tr-disagrees" = "warning"\n'
     )
 
 
@@ -430,7 +430,7 @@ def test_ignore_by_glob_drops_and_counts() -> None:
     policy = load_text(EXAMPLE)
     pilot = "sub-pilot01/ses-1/func/sub-pilot01_ses-1_task-rest_bold.nii.gz"
     regular = "sub-01/func/sub-01_task-rest_bold.nii.gz"
-    found = [finding("timing/missing"), finding("header/tr-mismatch", Severity.ERROR)]
+    found = [finding("timing/missing"), finding("header/tr-disagrees", Severity.ERROR)]
     outcome = apply_overrides_and_ignores(policy, pilot, found)
     assert outcome.kept == () and len(outcome.ignored) == 2
     assert outcome.ignored_by_reason() == {"pilot sessions use a test protocol": 2}
@@ -445,14 +445,15 @@ def test_ignore_codes_patterns_and_dataset_findings() -> None:
         'version = 1\n[[ignore]]\ncodes = ["header/*"]\n'
         'paths = ["**/anat"]\nreason = "anatomy is not timed"\n'
     )
-    found = [finding("header/tr-mismatch"), finding("timing/missing")]
+    found = [finding("header/tr-disagrees"), finding("timing/missing")]
     outcome = apply_overrides_and_ignores(policy, "sub-01/ses-2/anat/sub-01_T1w.nii.gz", found)
     assert [f.code for f in outcome.kept] == ["timing/missing"] and len(outcome.ignored) == 1
     # a dataset finding is matched by its own file
     outcome = apply_overrides_and_ignores(
         policy,
         None,
-        [finding("header/tr-mismatch", file="sub-02/anat/x.nii.gz"), finding("header/tr-mismatch")],
+        [finding("header/tr-disagrees", file="sub-02/anat/x.nii.gz"),
+         finding("header/tr-disagrees")],
     )
     assert len(outcome.kept) == 1 and len(outcome.ignored) == 1
 

@@ -146,9 +146,9 @@ def test_text_summary_counts_equal_the_json_summary(dataset: Path) -> None:
     summary = report["summary"]
     per_severity = {s: sum(1 for r in report["runs"] for f in r["findings"] if f["severity"] == s)
                     for s in ("error", "warning", "note")}
-    # the table: one row per task and acquisition, its ERR/WRN/NTE counts the runs' findings
+    # the table: one row per run group, its errors/warnings/notes counts the runs' findings
     lines = text.splitlines()
-    header = next(i for i, line in enumerate(lines) if line.startswith("task and acquisition"))
+    header = next(i for i, line in enumerate(lines) if line.startswith("run group"))
     rows = [line.split("  ") for line in lines[header + 1 : lines.index("", header)]]
     rows = [[cell.strip() for cell in row if cell.strip()] for row in rows]
     tap = next(row for row in rows if row[0] == "func: task-tap_bold")

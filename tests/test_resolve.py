@@ -79,7 +79,7 @@ def test_padded_header_gives_no_schedule_but_a_reason() -> None:
 
 def test_sparse_window_from_delay_time() -> None:
     # BIDS DelayTime: the acquisition occupies RepetitionTime - DelayTime
-    p = Protocol(n_slices=10, repetition_time=3.0, acquisition_time=2.0)
+    p = Protocol(n_slices=10, repetition_time=3.0, active_time=2.0)
     rec = record({"SliceTiming": slice_timing(p), "RepetitionTime": 3.0, "DelayTime": 1.0},
                  header_info((8, 8, 10, 10), tr=3.0))
     assert rec.schedule is not None

@@ -38,7 +38,7 @@ FIXTURES: dict[str, tuple[str, dict[str, Any], HeaderInfo]] = {
     "func.RepetitionTimeGreaterThan": (
         "tr/units-ms", {"RepetitionTime": 2000, "SliceTiming": ST40}, H40),
     "func.RepetitionTimeMismatch": (
-        "header/tr-mismatch", {"RepetitionTime": 2.0, "SliceTiming": ST40},
+        "header/tr-disagrees", {"RepetitionTime": 2.0, "SliceTiming": ST40},
         header_info((8, 8, 40, 20), tr=2.5)),
     "func.SliceTimingGreaterThanRepetitionTime": (
         "timing/exceeds-tr", {"RepetitionTime": 1.5, "SliceTiming": ST40}, H40),

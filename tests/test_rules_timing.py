@@ -79,7 +79,7 @@ def test_sparse_run_times_beyond_the_acquisition_window() -> None:
     found = codes({"RepetitionTime": 3.0, "DelayTime": 1.0, "SliceTiming": st},
                   header_info((8, 8, 12, 20), tr=3.0))
     assert found.get("timing/exceeds-acquisition") is Severity.ERROR
-    ok = slice_timing(Protocol(n_slices=12, repetition_time=3.0, acquisition_time=2.0))
+    ok = slice_timing(Protocol(n_slices=12, repetition_time=3.0, active_time=2.0))
     assert "timing/exceeds-acquisition" not in codes(
         {"RepetitionTime": 3.0, "DelayTime": 1.0, "SliceTiming": ok},
         header_info((8, 8, 12, 20), tr=3.0))
@@ -90,11 +90,11 @@ def test_header_tr_in_ms_labelled_seconds_gets_a_unit_hint() -> None:
     st = [i * 0.15 for i in range(12)]
     hdr = header_info((8, 8, 12, 20), tr=2000.0)
     found = [f for f in check_run(record({"RepetitionTime": 2.0, "SliceTiming": st}, hdr))
-             if f.code == "header/tr-mismatch"]
+             if f.code == "header/tr-disagrees"]
     assert found and "milliseconds" in (found[0].hint or "")
     # a header in ms units that says so is consistent
     ms_header = header_info((8, 8, 12, 20), tr=2.0, time_unit="ms")
-    assert "header/tr-mismatch" not in codes({"RepetitionTime": 2.0, "SliceTiming": st},
+    assert "header/tr-disagrees" not in codes({"RepetitionTime": 2.0, "SliceTiming": st},
                                              ms_header)
 
 

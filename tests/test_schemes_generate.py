@@ -75,16 +75,16 @@ def test_negative_direction_reverses_the_list() -> None:
     assert infer_scheme(arr).label == "descending"
 
 
-def test_sparse_acquisition_time() -> None:
-    p = Protocol(20, repetition_time=3.0, acquisition_time=1.0)
+def test_sparse_active_time() -> None:
+    p = Protocol(20, repetition_time=3.0, active_time=1.0)
     t = array_times(p)
     assert max(t) == pytest.approx(0.95)
     s = infer_scheme(t)
     assert s.regular and s.spacing == pytest.approx(0.05)
 
 
-def test_acquisition_time_alone() -> None:
-    assert array_times(Protocol(4, acquisition_time=1.0)) == pytest.approx((0, 0.25, 0.5, 0.75))
+def test_active_time_alone() -> None:
+    assert array_times(Protocol(4, active_time=1.0)) == pytest.approx((0, 0.25, 0.5, 0.75))
 
 
 def test_decimals_round_output() -> None:
@@ -163,8 +163,8 @@ def test_step_three_from_each_start() -> None:
         ({"start": 3}, "start"),
         ({"repetition_time": None}, "repetition_time"),
         ({"repetition_time": -1.0}, "repetition_time"),
-        ({"acquisition_time": 3.0}, "acquisition_time"),
-        ({"acquisition_time": 0.0}, "acquisition_time"),
+        ({"active_time": 3.0}, "active_time"),
+        ({"active_time": 0.0}, "active_time"),
         ({"direction": "x"}, "direction"),
         ({"decimals": -1}, "decimals"),
     ],
@@ -237,7 +237,7 @@ def protocols(draw: st.DrawFn) -> tuple[Protocol, float | None, float, int]:
         start=start,  # type: ignore[arg-type]
         multiband=m,
         repetition_time=tr,
-        acquisition_time=ta,
+        active_time=ta,
         direction=draw(st.sampled_from(["+", "-"])),
     )
     quantum = draw(st.sampled_from([None, 0.001, 0.0025]))

@@ -388,6 +388,7 @@ def _executor(jobs: int | None, scheduler: str | None, *, light: bool = True) ->
     """The executor the options ask for; a note on stderr of where the work ran.
     ``light``: header-only work per run (audit, fix), see ``make_executor``."""
     from slicetime.pipelines.executor import ExecutorError, make_executor
+    from slicetime.words import count
 
     try:
         executor = make_executor(jobs, scheduler, light=light)
@@ -398,11 +399,11 @@ def _executor(jobs: int | None, scheduler: str | None, *, light: bool = True) ->
     finally:
         stats = executor.stats
         if executor.name == "dask":
-            click.echo(f"slicetime: ran on {len(stats.workers)} Dask worker(s) of "
+            click.echo(f"slicetime: ran on {count(len(stats.workers), 'Dask worker')} of "
                        f"{scheduler}", err=True)
         if stats.retried_chunks:
-            click.echo(f"slicetime: {stats.retried_chunks} chunk(s) retried after a lost "
-                       f"worker, {stats.lost_items} run(s) lost twice", err=True)
+            click.echo(f"slicetime: {count(stats.retried_chunks, 'chunk')} retried after a lost "
+                       f"worker, {count(stats.lost_items, 'run')} lost twice", err=True)
         executor.close()
 
 
@@ -552,8 +553,10 @@ def correct(
     from slicetime.interfaces.report_json import dumps
     from slicetime.interfaces.safe_text import xml_safe
     from slicetime.interfaces.terminal import make_console, progress_reporter, render_correct
+    from slicetime.numbers import tidy_json
     from slicetime.pipelines.correct import CorrectInterrupted, CorrectOptions, correct_paths
     from slicetime.pipelines.memory import parse_size
+    from slicetime.words import count
 
     try:
         choice = ReferenceChoice.parse(reference)
@@ -578,7 +581,7 @@ def correct(
             )
         except CorrectInterrupted as stop:
             render_correct(stop.result, make_console(sys.stderr))
-            click.echo(f"slicetime: interrupted; {stop.not_finished} run(s) not finished "
+            click.echo(f"slicetime: interrupted; {count(stop.not_finished, 'run')} not finished "
                        "(rerun the same command to finish them)", err=True)
             sys.exit(130)
         except ValueError as exc:
@@ -590,7 +593,7 @@ def correct(
         payload = {
             "tool": {"name": "slicetime", "version": __version__},
             "out": result.out,
-            "runs": [r.to_json() for r in result.runs],
+            "runs": [tidy_json(r.to_json()) for r in result.runs],  # no float noise
             "summary": result.counts(),
         }
         click.echo(dumps(payload))
@@ -753,9 +756,12 @@ def _fix_undo(journal: Path) -> None:
               help="Number of slices along the slice axis.")
 @click.option("--tr", "tr", type=click.FloatRange(min=0, min_open=True),
               help="Repetition time in seconds.")
-@click.option("--acquisition-time", "ta", type=click.FloatRange(min=0, min_open=True),
-              help="Time over which the slices are spread, when shorter than the TR "
-              "(sparse protocols). Defaults to the TR.")
+@click.option("--delay-time", "delay", type=click.FloatRange(min=0, min_open=True),
+              metavar="SECONDS",
+              help="BIDS DelayTime of a sparse protocol: the silent part at the end of each TR. "
+              "The slices are spread over the rest (TR minus SECONDS); written as DelayTime.")
+@click.option("--acquisition-time", "old_ta", hidden=True, default=None,
+              help="Replaced by --delay-time (kept only to say so).")
 @click.option("--order", type=click.Choice(["sequential", "interleaved"]), default="sequential",
               show_default=True, help="Order of excitation along the slice encoding direction.")
 @click.option("--descending", is_flag=True,
@@ -780,7 +786,8 @@ def _fix_undo(journal: Path) -> None:
 def timing(
     n_slices: int,
     tr: float | None,
-    ta: float | None,
+    delay: float | None,
+    old_ta: str | None,
     order: str,
     descending: bool,
     step: int,
@@ -796,13 +803,19 @@ def timing(
     Examples:
       slicetime timing --slices 40 --tr 2 --order interleaved
       slicetime timing --slices 60 --tr 1 --multiband 4 --order interleaved --first auto
+      slicetime timing --slices 16 --tr 3 --delay-time 1.5 --order interleaved  # sparse
     """
+    from slicetime.numbers import plain
     from slicetime.schemes.generate import Protocol, array_times, slice_timing
     from slicetime.schemes.infer import infer_scheme
 
-    if tr is None and ta is None:
-        raise UserError("timing: give --tr (and --acquisition-time for sparse protocols)")
-    for option, value in (("--tr", tr), ("--acquisition-time", ta)):
+    if old_ta is not None:
+        raise UserError("timing: --acquisition-time is replaced by --delay-time SECONDS, the "
+                        "silent part of the TR (BIDS DelayTime): for slices spread over A "
+                        "seconds of a TR of T seconds give --tr T --delay-time T-A")
+    if tr is None:
+        raise UserError("timing: give --tr (and --delay-time for sparse protocols)")
+    for option, value in (("--tr", tr), ("--delay-time", delay)):
         if value is not None and value > _MS_LIKE_SECONDS:
             raise UserError(f"{option} {value:g}: times are in seconds, and {value:g} s looks "
                             f"like milliseconds; did you mean {option} {value / 1000:g}?")
@@ -818,6 +831,10 @@ def timing(
                     from None
             if start < 0:  # type: ignore[operator]
                 raise UserError(f"--first must be a slice index (0 or more), not {first}")
+    if delay is not None and delay >= tr:
+        raise UserError(f"timing: --delay-time {plain(delay)} must be shorter than --tr "
+                        f"{plain(tr)} (the slices are spread over the TR minus the delay)")
+    active = None if delay is None else tr - delay
     protocol = Protocol(
         n_slices=n_slices,
         order=order,  # type: ignore[arg-type]
@@ -826,7 +843,7 @@ def timing(
         start=start,  # type: ignore[arg-type]
         multiband=multiband,
         repetition_time=tr,
-        acquisition_time=ta,
+        active_time=active,
         direction="-" if axis.endswith("-") else "+",
         decimals=decimals,
     )
@@ -835,10 +852,9 @@ def timing(
     except ValueError as exc:
         raise UserError(f"timing: {_as_options(str(exc))}") from None
     fields: dict[str, Any] = {"SliceTiming": times}
-    if tr is not None:
-        fields["RepetitionTime"] = tr
-    if ta is not None and tr is not None and ta < tr:
-        fields["DelayTime"] = round(tr - ta, decimals)
+    fields["RepetitionTime"] = tr
+    if delay is not None:
+        fields["DelayTime"] = round(delay, decimals)
     fields["SliceEncodingDirection"] = axis
     if multiband > 1:
         fields["MultibandAccelerationFactor"] = multiband
@@ -847,14 +863,14 @@ def timing(
     click.echo(f"scheme in data-array order: {label}", err=True)
 
 
-#: a TR or acquisition time above this many seconds was written in milliseconds (the
+#: a TR or delay above this many seconds was written in milliseconds (the
 #: audit's tr/units-ms uses the same bound)
 _MS_LIKE_SECONDS = MAX_REPETITION_TIME
 #: the protocol's parameter names and the options the user typed for them
 _OPTION_OF = {
     "n_slices": "--slices",
     "repetition_time": "--tr",
-    "acquisition_time": "--acquisition-time",
+    "active_time": "--delay-time",
     "start": "--first",
     "step": "--step",
     "multiband": "--multiband",
@@ -878,19 +894,45 @@ def _as_options(message: str) -> str:
 @friendly
 def explain(code: str | None, list_all: bool) -> None:
     """Print the documentation of a finding CODE (or --list them all)."""
+    from slicetime.interfaces.screen import width_for, wrap_words
     from slicetime.rules import RULES
     from slicetime.rules import explain as explain_rule
 
+    width = width_for(sys.stdout)
     if list_all or code is None:
-        width = max(len(c) for c in RULES)
+        code_width = max(len(c) for c in RULES)
+        lead = code_width + 2 + 7 + 2
         for rule in sorted(RULES.values(), key=lambda r: r.code):
-            click.echo(f"{rule.code:<{width}}  {rule.severity.value:<7}  {rule.title}")
+            head = f"{rule.code:<{code_width}}  {rule.severity.value:<7}  "
+            if width is not None and width - lead < 30:  # narrow: the title under the code
+                click.echo(f"{rule.code}  {rule.severity.value}")
+                for part in wrap_words(rule.title, width, first=4, rest=4):
+                    click.echo("    " + part)
+                continue
+            parts = wrap_words(rule.title, width, first=lead, rest=lead)
+            click.echo(head + parts[0])
+            for part in parts[1:]:
+                click.echo(" " * lead + part)
         return
-    if code not in RULES:
+    known = _known_code(code, RULES)
+    if known is None:
         near = _close_codes(code, list(RULES))
         extra = f"; did you mean {', '.join(near)}?" if near else ""
         raise UserError(f"explain: no finding code {code!r}{extra} (see slicetime explain --list)")
-    click.echo(explain_rule(code))
+    if known != code:
+        click.echo(f"{code} is the former name of {known} (still accepted in lab policies)")
+    for paragraph in explain_rule(known).split("\n"):
+        hanging = 2 if paragraph.endswith(":") or ": " in paragraph[:24] else 0
+        for i, part in enumerate(wrap_words(paragraph, width, rest=hanging)):
+            click.echo(("" if i == 0 else " " * hanging) + part)
+
+
+def _known_code(code: str, rules: Any) -> str | None:
+    """The registered code ``code`` names: itself, or the code a former name became."""
+    from slicetime.rules.registry import current_code
+
+    current = current_code(code)
+    return current if current in rules else None
 
 
 def _close_codes(code: str, known: list[str]) -> list[str]:

@@ -13,8 +13,12 @@ import shutil
 from pathlib import Path
 from typing import Any
 
+from slicetime.interfaces import screen
 from slicetime.interfaces.report_json import audit_object, dumps
 from slicetime.interfaces.terminal import (
+    emit,
+    finding_lines,
+    fit_width,
     make_console,
     render_audit,
     render_correct,
@@ -26,42 +30,57 @@ from slicetime.pipelines.correct import CorrectOptions, correct_paths
 from slicetime.pipelines.demo import STUDY, build_demo_dataset, demo_runs
 from slicetime.pipelines.fix import apply_plan, plan_fix, reaudit
 from slicetime.pipelines.verify import verify_run
+from slicetime.words import count
 
 
 def run_demo(out: Path) -> int:
     """The guided tour; returns 0. Everything is written under ``out``."""
     console = make_console()
+    width = fit_width(console)
+
+    def say(text: str, indent: int = 0) -> None:
+        for i, part in enumerate(screen.wrap_words(text, width, first=indent,
+                                                   rest=indent + 4)):
+            console.print(" " * (indent if i == 0 else indent + 4) + part, markup=False)
+
+    def rule(title: str) -> None:
+        console.print(f"── {title} " + "─" * max(3, min(width or 72, 72) - len(title) - 4))
+
     out.mkdir(parents=True, exist_ok=True)
     dataset = out / "quiet-rooms"
     build_demo_dataset(dataset)
-    console.print(f"[bold]slicetime demo[/bold]: {STUDY}\n"
-                  f"dataset written to {dataset}\n")
+    say(f"slicetime demo: {STUDY}")
+    say(f"dataset written to {dataset}")
+    console.print()
     for run in demo_runs():
         if run.story:
-            console.print(f"  planted: {run.relpath}: {run.story}")
-    console.print("  planted: sub-03 overrides the hum timing for all its sessions\n"
-                  "  planted: task-chirp_bold.json leaves out the multiband factor\n")
+            say(f"planted: {run.relpath}: {run.story}", 2)
+    say("planted: sub-03 overrides the hum timing for all its sessions", 2)
+    say("planted: task-chirp_bold.json leaves out the multiband factor", 2)
+    console.print()
 
     example = dataset / "sub-01/ses-1/func/sub-01_ses-1_task-chirp_bold.nii.gz"
-    console.rule("1. slicetime show (one run)")
+    rule("1. slicetime show (one run)")
     render_show(audit_one(dataset, example), console)
 
-    console.rule("2. slicetime audit (the whole study)")
+    rule("2. slicetime audit (the whole study)")
     result = audit_paths([dataset])
     render_audit(result, console)
     report = out / "audit.json"
     report.write_text(dumps(audit_object(result, str(dataset))) + "\n", encoding="utf-8")
     html = _html_report(result, str(dataset), out / "audit.html")
 
-    console.rule("3. slicetime verify (do the images agree with sub-03's override?)")
+    rule("3. slicetime verify (do the images agree with sub-03's override?)")
     for session in ("1", "2"):
         rel = f"sub-03/ses-{session}/func/sub-03_ses-{session}_task-hum_bold.nii.gz"
         _, verdict = verify_run(dataset, dataset / rel)
-        console.print(f"{verdict.finding.code:<20} {rel}: {verdict.finding.message}")
-    console.print("the sidecar override says 'descending'; the slices' own time courses say "
-                  "otherwise: fix cannot settle which is true, a person must\n")
+        console.print(rel, style="bold", markup=False)
+        emit(console, finding_lines([verdict.finding], width=width, run_path=rel))
+    say("the sidecar override says 'descending'; the slices' own time courses say "
+        "otherwise: fix cannot settle which is true, a person must")
+    console.print()
 
-    console.rule("4. slicetime fix (the plan, on a copy of the study)")
+    rule("4. slicetime fix (the plan, on a copy of the study)")
     fixed = out / "quiet-rooms-fixed"
     if fixed.exists():
         shutil.rmtree(fixed)
@@ -70,33 +89,36 @@ def run_demo(out: Path) -> int:
     render_fix_plan(plan, console)
     applied = apply_plan(plan, backup_dir=out / "fix-backups")
     left = reaudit(plan)
-    console.print(f"applied to {len(applied.written)} files of the copy; re-audit: "
-                  + ("clean for the repaired codes" if not left else
-                     f"{len(left)} findings left"))
+    say(f"applied to {count(len(applied.written), 'file')} of the copy; re-audit: "
+        + ("clean for the repaired codes" if not left else
+           f"{count(len(left), 'finding')} left"))
     after = audit_paths([fixed])
 
-    console.rule("5. slicetime correct (runs with trustworthy timing)")
+    rule("5. slicetime correct (runs with trustworthy timing)")
     aligned = fixed / "derivatives" / "slicetime"
     if aligned.exists():
         shutil.rmtree(aligned)
     corrected = correct_paths([fixed], CorrectOptions(out=aligned, threads=0))
     render_correct(corrected, console)
 
-    console.rule("where everything is")
+    rule("where everything is")
     before_counts, after_counts = result.counts(), after.counts()
-    lines = [
-        f"the study, as planted:      {dataset}",
-        f"audit report (JSON):        {report}",
-        *([f"audit report (HTML):        {html}   <- open this first"] if html else []),
-        f"the repaired copy:          {fixed}  (errors {before_counts['error']} -> "
-        f"{after_counts['error']}, warnings {before_counts['warning']} -> "
-        f"{after_counts['warning']})",
-        f"backups and undo journal:   {applied.journal}",
-        f"corrected runs:             {aligned}",
-        "next: slicetime explain timing/units-ms, or slicetime show on any run",
+    places = [
+        ("the study, as planted", str(dataset)),
+        ("audit report (JSON)", str(report)),
+        *([("audit report (HTML)", f"{html}   (open this first)")] if html else []),
+        ("the repaired copy", f"{fixed}  (errors {before_counts['error']} -> "
+         f"{after_counts['error']}, warnings {before_counts['warning']} -> "
+         f"{after_counts['warning']})"),
+        ("backups and undo journal", str(applied.journal)),
+        ("corrected runs", str(aligned)),
     ]
-    for line in lines:
-        console.print(line)
+    for name, where in places:
+        say(f"{name}:".ljust(27) + where if width is None or 27 + len(where) <= width
+            else f"{name}:")
+        if width is not None and 27 + len(where) > width:
+            say(where, 4)
+    say("next: slicetime explain timing/units-ms, or slicetime show on any run")
     return 0
 
 

@@ -10,6 +10,8 @@ from __future__ import annotations
 import math
 from collections.abc import Sequence
 
+from slicetime.numbers import plain
+
 #: (marker, empty cell, axis rule) for each character set
 _GLYPHS = {True: ("●", "·", "─"), False: ("#", ".", "-")}
 
@@ -49,6 +51,6 @@ def order_diagram(
                      else f"{label:>{label_width}} |{''.join(cells)}|")
     pad = " " * label_width
     lines.append(f"{pad} {'└' if unicode else '+'}{rule * width}{'┘' if unicode else '+'}")
-    left, right = "0 s", f"{span:g} s"
+    left, right = "0 s", f"{plain(span)} s"
     lines.append(f"{pad}  {left}{' ' * max(1, width - len(left) - len(right))}{right}")
     return lines

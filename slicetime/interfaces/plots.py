@@ -19,6 +19,7 @@ timing gets a placeholder picture that says why.
 
 from __future__ import annotations
 
+import dataclasses
 import io
 import re
 import textwrap
@@ -28,6 +29,8 @@ from typing import Any
 from slicetime.engines.plan import DEFAULT_REFERENCE, PlanError, ReferenceChoice, reference_time
 from slicetime.interfaces.safe_text import xml_safe
 from slicetime.model import RunRecord
+from slicetime.numbers import secs
+from slicetime.words import count, encoding_direction
 
 #: our own palette (also used by the HTML report for the matching legend)
 COLOURS = {
@@ -103,13 +106,13 @@ class DiagramSpec:
         """One line saying what the picture marks (for alt text and reports)."""
         if self.kind != "schedule":
             return f"no timing diagram: {self.message}"
-        parts = [self.label or "scheme unknown", f"{len(self.times)} slices"]
+        parts = [self.label or "scheme unknown", count(len(self.times), "slice")]
         if self.late:
-            parts.append(f"{len(self.late)} slice(s) at or after the end of the window")
+            parts.append(f"{count(len(self.late), 'slice')} at or after the end of the window")
         if self.early:
-            parts.append(f"{len(self.early)} slice(s) before 0 s")
+            parts.append(f"{count(len(self.early), 'slice')} before 0 s")
         if self.uneven_after:
-            parts.append(f"{len(self.uneven_after)} uneven gap(s)")
+            parts.append(f"{count(len(self.uneven_after), 'uneven gap')}")
         return ", ".join(parts)
 
 
@@ -147,6 +150,9 @@ def diagram_spec(record: RunRecord) -> DiagramSpec:
     schedule = record.schedule
     if schedule is None or not schedule.times:
         return DiagramSpec("placeholder", message=placeholder_message(record))
+    if record.scheme is not None and record.scheme.evidence.get("assumed_unit") == "ms":
+        # SliceTiming in milliseconds: drawn in seconds, as the scheme and the terminal read it
+        schedule = dataclasses.replace(schedule, times=tuple(t * 0.001 for t in schedule.times))
     times = tuple(_r(t) for t in schedule.times)
     window, window_name = _window(record)
     scheme = record.scheme
@@ -267,7 +273,7 @@ def _draw_schedule(fig: Any, spec: DiagramSpec) -> None:
                 ax.axvspan(left - pad, 0, color=COLOURS["beyond"], zorder=0, lw=0)
         ax.axvline(window, color=COLOURS["edge"], lw=1.0, zorder=1)
         ax.annotate(
-            f"{spec.window_name} {window:g} s",
+            f"{spec.window_name} {secs(window)}",
             (window, 1.0),
             xycoords=("data", "axes fraction"),
             xytext=(0, 3),
@@ -359,7 +365,7 @@ def _draw_schedule(fig: Any, spec: DiagramSpec) -> None:
             )
         )
         ax.annotate(
-            f"{spec.reference:g} s",
+            secs(spec.reference),
             (spec.reference, 1.0),
             xycoords=("data", "axes fraction"),
             xytext=(3, -3),
@@ -374,10 +380,10 @@ def _draw_schedule(fig: Any, spec: DiagramSpec) -> None:
         )
 
     ax.set_xlabel("time within the volume (s)")
-    ax.set_ylabel(f"slice index, axis {spec.axis}{spec.direction}")
+    ax.set_ylabel(f"slice index, axis {encoding_direction(spec.axis, spec.direction)}")
     title = spec.label or "scheme unknown"
     ax.set_title(
-        f"{title}  ·  {n} slices, {len(spec.groups)} excitation groups",
+        f"{title}  ·  {count(n, 'slice')}, {count(len(spec.groups), 'excitation group')}",
         loc="left",
         fontsize=9.5,
         pad=16,

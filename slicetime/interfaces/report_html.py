@@ -4,7 +4,7 @@ Layout, top to bottom:
 
 1. a header with the dataset and the totals;
 2. the overview: runs with errors / warnings / notes, the schemes in use per
-   task and acquisition (grouped like the dataset rules group runs,
+   run group (grouped like the dataset rules group runs,
    ``rules.dataset.protocol_key``), the outliers (``dataset/*`` findings), and
    a collapsed gallery of every distinct timing diagram;
 3. the dataset picture: subjects down, the other entities (session, task,
@@ -33,7 +33,6 @@ import datetime
 import hashlib
 import html
 import io
-import json
 import os
 from array import array
 from collections import Counter, defaultdict
@@ -48,12 +47,16 @@ from slicetime.interfaces.report_stream import (
     ReportSource,
     display_path,
     encode,
+    grounds_text,
     report_root,
 )
 from slicetime.interfaces.safe_text import xml_safe
+from slicetime.interfaces.screen import strip_path_prefix
 from slicetime.model import RunRecord, Severity
+from slicetime.numbers import duration, secs
 from slicetime.pipelines.audit import AuditResult, AuditTotals, RunFacts, RunResult
 from slicetime.rules.dataset import PROTOCOL_ENTITIES, protocol_key
+from slicetime.words import agree, count, encoding_direction
 
 #: fills for scheme tags in the dataset picture (our own muted palette), reused in turn
 TAG_FILLS = (
@@ -186,20 +189,21 @@ def _run_facts(record: RunRecord) -> tuple[tuple[str, str], ...]:
         facts.append(("shape", " × ".join(str(d) for d in header.shape)))
     tr = schedule.repetition_time if schedule else (header.repetition_time if header else None)
     if tr is not None:
-        facts.append(("repetition time", f"{tr:g} s"))
+        facts.append(("repetition time", secs(tr)))
     if schedule is not None:
-        facts.append(("slice axis", f"{schedule.axis}{schedule.direction}" + (
+        facts.append(("slice axis", encoding_direction(schedule.axis, schedule.direction) + (
             " (SliceTiming lists the highest index first)" if schedule.direction == "-" else "")))
         if schedule.delay_time:
-            facts.append(("DelayTime", f"{schedule.delay_time:g} s"))
+            facts.append(("DelayTime", secs(schedule.delay_time)))
         if schedule.volume_times:
-            facts.append(("volume times", f"{len(schedule.volume_times)} onsets (VolumeTiming)"))
+            facts.append(("volume times",
+                          f"{count(len(schedule.volume_times), 'onset')} (VolumeTiming)"))
         facts.append(("timing from", xml_safe(record.timing_origin or "")))
     scheme = record.scheme
     if scheme is not None:
         detail = _plural(len(scheme.groups), "excitation group")
         if scheme.spacing:
-            detail += f", one every {scheme.spacing * 1000:.4g} ms"
+            detail += f", one every {duration(scheme.spacing)}"
         facts.append(("scheme", f"{xml_safe(scheme.label)} · {detail}"))
     else:
         facts.append(("scheme", "unknown: no usable slice timing"))
@@ -289,7 +293,7 @@ def _summary_cards(totals: AuditTotals, drawings: int) -> str:
     if totals.ignored:
         out.append(
             f'<p class="muted">{_plural(totals.ignored, "finding")} ignored by the lab '
-            "policy are not shown.</p>"
+            f"policy {agree(totals.ignored, 'is')} not shown.</p>"
         )
     return "".join(out)
 
@@ -314,12 +318,12 @@ def _schemes_table(totals: AuditTotals, tags: dict[str | None, _Tag]) -> str:
             per_label[label] += 1
             first.setdefault(label, i)
         cells = []
-        for label, count in sorted(per_label.items(), key=lambda kv: (-kv[1], kv[0] or "")):
+        for label, n_runs in sorted(per_label.items(), key=lambda kv: (-kv[1], kv[0] or "")):
             name = txt(label) if label is not None else "<em>no usable slice timing</em>"
             example = totals.facts[first[label]].path
             cells.append(
                 f'<li>{_chip(tags[label])} {name} <span class="muted">'
-                f'{_plural(count, "run")}, e.g. <a href="#run-{first[label] + 1}">'
+                f'{_plural(n_runs, "run")}, e.g. <a href="#run-{first[label] + 1}">'
                 f"{txt(example)}</a></span></li>"
             )
         mixed = len(per_label) > 1
@@ -335,7 +339,7 @@ def _schemes_table(totals: AuditTotals, tags: dict[str | None, _Tag]) -> str:
     return (
         f'<p class="muted">Runs are grouped by dataset, datatype, suffix and the '
         f"entities {entities}, as the consistency rules group them.</p>"
-        '<table class="schemes"><thead><tr><th>task and acquisition</th><th>runs</th>'
+        '<table class="schemes"><thead><tr><th>run group</th><th>runs</th>'
         f"<th>schemes</th></tr></thead><tbody>{''.join(rows)}</tbody></table>"
     )
 
@@ -403,12 +407,13 @@ def _page_data(source: ReportSource, collector: DiagramCollector,
         if pending is not None and pending[0] == index:
             ordered = sorted(pending[1]["findings"], key=lambda f: -_RANK[f["severity"]])
             for f in ordered:
-                evidence = f.get("evidence")
+                grounds = f.get("grounds") or f.get("evidence")
                 findings.append([
                     strings(xml_safe(f["code"])), _RANK[f["severity"]],
-                    opt(f["message"], one_line=False), opt(f.get("file")), opt(f.get("field")),
-                    opt(json.dumps(evidence, ensure_ascii=False) if evidence else None,
+                    opt(strip_path_prefix(f["message"], f.get("file"), pending[1]["path"]),
                         one_line=False),
+                    opt(f.get("file")), opt(f.get("field")),
+                    opt(grounds_text(grounds) if grounds else None, one_line=False),
                     opt(f.get("hint"), one_line=False),
                 ])
             pending = next(found, None)
@@ -525,7 +530,7 @@ body{margin:0;background:var(--paper);color:var(--ink);font:15px/1.45 system-ui,
 code,pre{font-family:ui-monospace,monospace;font-size:.92em}
 header.top{padding:1.2rem 2rem .6rem;border-bottom:3px solid var(--accent);background:#fff}
 .brand{font-size:.8rem;letter-spacing:.08em;text-transform:uppercase;color:var(--accent)}
-h1{margin:.2rem 0;font-size:1.5rem;word-break:break-all}
+h1{margin:.2rem 0;font-size:1.5rem;overflow-wrap:anywhere}
 h2{margin:2rem 0 .6rem;font-size:1.25rem;border-bottom:1px solid var(--line)}
 h3{margin:1.4rem 0 .4rem;font-size:1.05rem}
 h4{margin:.9rem 0 .3rem;font-size:.9rem;color:var(--muted);font-weight:600}
@@ -580,7 +585,7 @@ details.run{background:#fff;border:1px solid var(--line);border-radius:4px;margi
 details.run>summary{cursor:pointer;padding:.35rem .6rem;display:flex;flex-wrap:wrap;
 gap:.5rem;align-items:center}
 details.run[open]>summary{border-bottom:1px solid var(--line)}
-summary .path{font-weight:600;word-break:break-all}
+summary .path{font-weight:600;overflow-wrap:anywhere}
 summary .label{color:var(--muted);font-size:.85rem}
 .mark{width:.7rem;height:.7rem;border-radius:50%;background:var(--clean);flex:none}
 .mark.sev-error{background:var(--error)}.mark.sev-warning{background:var(--warning)}
@@ -597,9 +602,9 @@ svg.sprite symbol *{stroke-linejoin:round;stroke-linecap:butt}
 svg.sprite{position:absolute;width:0;height:0;overflow:hidden}
 figcaption{font-size:.8rem;color:var(--muted)}
 dl.facts{display:grid;grid-template-columns:max-content 1fr;gap:.15rem .9rem;margin:0}
-dl.facts dt{color:var(--muted)}dl.facts dd{margin:0;word-break:break-all}
+dl.facts dt{color:var(--muted)}dl.facts dd{margin:0;overflow-wrap:anywhere}
 table.sources th{font-weight:400;color:var(--muted);text-align:left;padding-right:.8rem}
-table.sources td{word-break:break-all}
+table.sources td{overflow-wrap:anywhere}
 ol.findings{list-style:none;padding:0;margin:0}
 .finding{border-left:4px solid var(--note);padding:.3rem .7rem;margin:.4rem 0;
 background:#f7f8f8}
@@ -612,8 +617,8 @@ background:#f7f8f8}
 .finding .where{font-size:.85rem;color:var(--muted)}
 .finding .where span{margin-right:1rem}
 .finding .hint::before{content:"what to do: ";font-weight:600}
-pre.evidence{margin:.2rem 0;padding:.3rem .5rem;background:#fff;border:1px dashed var(--line);
-white-space:pre-wrap;word-break:break-all;font-size:.8rem}
+p.grounds{margin:.2rem 0;padding:.3rem .5rem;background:#fff;border-left:3px solid var(--line);
+white-space:pre-line;overflow-wrap:anywhere;font-size:.8rem}
 .guide .swatch{display:inline-block;width:.9em;height:.9em;margin-right:.5em;
 vertical-align:middle;border-radius:2px}
 .print-only{display:none}
@@ -715,7 +720,7 @@ def _write_page(source: ReportSource, collector: DiagramCollector, out: IO[str],
         "</nav></header><main>",
         '<section id="overview"><h2>Overview</h2>',
         _summary_cards(totals, len(collector.drawings.ids)),
-        "<h3>Schemes in use per task and acquisition</h3>",
+        "<h3>Schemes in use per run group</h3>",
         _schemes_table(totals, tags),
         "<h3>Outliers</h3>",
         '<div id="outliers"><p class="muted">No run differs from the others of its task and '
@@ -885,7 +890,7 @@ _SCRIPT = """
           }
           li.appendChild(where);
         }
-        if (f[5] >= 0) { li.appendChild(el("pre", "evidence", S[f[5]])); }
+        if (f[5] >= 0) { li.appendChild(el("p", "grounds", S[f[5]])); }
         if (f[6] >= 0) { li.appendChild(el("p", "hint", S[f[6]])); }
         ol.appendChild(li);
       });

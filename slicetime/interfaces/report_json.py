@@ -3,13 +3,15 @@
 from __future__ import annotations
 
 import json
-from functools import lru_cache
+from functools import cache, lru_cache
 from importlib import resources
 from typing import Any
 
 from slicetime import __version__
 from slicetime.interfaces.safe_text import sanitise
+from slicetime.numbers import json_time, json_times
 from slicetime.pipelines.audit import AuditResult, RunResult
+from slicetime.words import encoding_direction
 
 
 @lru_cache(maxsize=1)
@@ -38,6 +40,42 @@ def lines_validator() -> Any:
     return jsonschema.Draft202012Validator(lines_schema(), registry=registry)
 
 
+#: the JSON Schema of every JSON file or output the tool writes (slicetime/data)
+SCHEMAS = {
+    "report": "report.schema.json",          # audit --format json
+    "report-lines": "report-lines.schema.json",  # audit --format jsonl, each line
+    "show": "show.schema.json",              # show --json (a run, or a DICOM series)
+    "correct": "correct.schema.json",        # correct --format json
+    "verify": "verify.schema.json",          # verify --format json
+    "fix-plan": "fix-plan.schema.json",      # fix --plan FILE
+    "fix-journal": "fix-journal.schema.json",  # fix --apply journal.json
+    "provenance": "provenance.schema.json",  # slicetime-provenance.json (and the sidecar
+                                             # SliceTimeAlignment: #/$defs/alignment_strict)
+}
+
+
+@cache
+def load_schema(name: str) -> dict[str, Any]:
+    """A shipped schema by its name in :data:`SCHEMAS` (or its file name)."""
+    file = SCHEMAS.get(name, name)
+    return json.loads(resources.files("slicetime").joinpath(f"data/{file}").read_text("utf-8"))
+
+
+def schema_validator(name: str, pointer: str = "") -> Any:
+    """A jsonschema validator for a shipped schema (``pointer``: a part of it, such as
+    ``#/$defs/alignment_strict``), resolving references between the shipped schemas."""
+    import jsonschema
+    from referencing import Registry, Resource
+
+    registry = Registry().with_resources([
+        (f"slicetime/{file}", Resource.from_contents(load_schema(file)))
+        for file in SCHEMAS.values()])
+    schema = load_schema(name)
+    if pointer:
+        schema = {"$ref": f"slicetime/{SCHEMAS.get(name, name)}{pointer}"}
+    return jsonschema.Draft202012Validator(schema, registry=registry)
+
+
 def run_object(run: RunResult) -> dict[str, Any]:
     """One run as the contract's run object."""
     record = run.record
@@ -54,12 +92,14 @@ def run_object(run: RunResult) -> dict[str, Any]:
         "shape": list(header.shape) if header else None,
         "slice_axis": schedule.axis if schedule else None,
         "slice_direction": schedule.direction if schedule else None,
-        "repetition_time": schedule.repetition_time if schedule else (
-            header.repetition_time if header else None),
-        "volume_times": list(schedule.volume_times) if schedule and schedule.volume_times
+        "slice_encoding_direction": encoding_direction(schedule.axis, schedule.direction)
+        if schedule else None,
+        "repetition_time": _time(schedule.repetition_time if schedule else (
+            header.repetition_time if header else None)),
+        "volume_times": json_times(schedule.volume_times) if schedule and schedule.volume_times
         else None,
-        "acquisition_duration": schedule.acquisition_duration if schedule else None,
-        "slice_times": [round(t, 6) for t in schedule.times] if schedule else None,
+        "acquisition_duration": _time(schedule.acquisition_duration) if schedule else None,
+        "slice_times": json_times(schedule.times) if schedule else None,
         "timing_origin": record.timing_origin,
         "scheme": record.scheme.to_json() if record.scheme else None,
         "sources": sources,
@@ -67,6 +107,10 @@ def run_object(run: RunResult) -> dict[str, Any]:
         "sidecars": list(record.sidecar_chain),
         "findings": [f.to_json() for f in run.findings],
     }
+
+
+def _time(value: float | None) -> float | None:
+    return None if value is None else json_time(value)
 
 
 def audit_object(result: AuditResult, root_given: str) -> dict[str, Any]:
@@ -81,6 +125,7 @@ def audit_object(result: AuditResult, root_given: str) -> dict[str, Any]:
         "tool": {"name": "slicetime", "version": __version__},
         "root": ", ".join(names[r] for r in roots),
         "roots": result.roots,
+        "dataset_names": [dataset_names(result.roots).get(r, r) for r in result.roots],
         "runs": [run_object(r) for r in result.runs],
         "dataset_findings": [f.to_json() for f in result.dataset_findings],
         "policies": result.policies,

@@ -73,7 +73,7 @@ def _message(finding: Finding) -> str:
 
 
 def _evidence(finding: Finding) -> str:
-    data = finding.to_json()["evidence"]
+    data = finding.to_json()["grounds"]
     return json.dumps(data, ensure_ascii=False, sort_keys=True, allow_nan=True, default=str)
 
 
@@ -82,7 +82,7 @@ def _failure_text(finding: Finding) -> str:
         f"severity: {finding.severity.value}",
         f"file: {xml_safe(finding.file or '-')}",
         f"field: {xml_safe(finding.field or '-')}",
-        f"evidence: {xml_safe(_evidence(finding))}",
+        f"grounds: {xml_safe(_evidence(finding))}",
         f"hint: {xml_safe(finding.hint or '-')}",
     ]
     return "\n".join(lines) + "\n"

@@ -27,10 +27,13 @@ from collections.abc import Callable, Iterable, Iterator, Sequence
 from typing import IO, Any
 
 from slicetime import __version__
+from slicetime.interfaces import screen
 from slicetime.interfaces.safe_text import _escape, xml_safe
 from slicetime.model import Finding, Severity
+from slicetime.numbers import fixed, plain, secs
 from slicetime.pipelines.audit import AuditResult, AuditTotals, RunFacts, RunResult, dataset_names
 from slicetime.rules.dataset import protocol_key
+from slicetime.words import count, plural_of
 
 _ENCODER = json.JSONEncoder(ensure_ascii=False, allow_nan=False, separators=(",", ":"))
 _SURROGATE = re.compile("[\ud800-\udfff]")
@@ -56,7 +59,8 @@ def run_line(run: RunResult) -> str:
 
 def _finding_from(obj: dict[str, Any]) -> Finding:
     return Finding(obj["code"], Severity(obj["severity"]), obj["message"], obj.get("file"),
-                   obj.get("field"), obj.get("evidence") or {}, obj.get("hint"))
+                   obj.get("field"), obj.get("grounds") or obj.get("evidence") or {},
+                   obj.get("hint"))
 
 
 # --------------------------------------------------------------------------- sources
@@ -73,8 +77,9 @@ def _completed(obj: dict[str, Any], more: Sequence[Finding] | None,
     if folded:
         roots = [d for d in findings if d["code"] in RULES and RULES[d["code"]].subsumes]
         for number, finding in folded:
-            evidence = roots[number].setdefault("evidence", {})
-            evidence.setdefault("folded", []).append(folded_entry(finding))
+            for key in ("grounds", "evidence"):  # evidence: the former name, one release
+                grounds = roots[number].setdefault(key, {})
+                grounds.setdefault("folded", []).append(folded_entry(finding))
     if more:
         findings.extend(f.to_json() for f in more)
     return obj
@@ -188,7 +193,8 @@ def display_path(totals: AuditTotals, facts: RunFacts, path: str, *, several: bo
 
 def _head(totals: AuditTotals) -> dict[str, Any]:
     return {"tool": {"name": "slicetime", "version": __version__},
-            "root": report_root(totals), "roots": totals.roots}
+            "root": report_root(totals), "roots": totals.roots,
+            "dataset_names": [totals.names.get(r, r) for r in totals.roots]}
 
 
 def _summary(totals: AuditTotals) -> dict[str, Any]:
@@ -245,7 +251,7 @@ TSV_COLUMNS = ("path", "dataset", "task", "scheme", "repetition_time", "slices",
 def _cell(value: object) -> str:
     if value is None:
         return ""
-    return xml_safe(value if isinstance(value, str) else f"{value:g}"
+    return xml_safe(value if isinstance(value, str) else plain(value, 9)
                     if isinstance(value, float) else str(value))
 
 
@@ -271,9 +277,11 @@ def write_tsv(source: ReportSource, out: IO[str]) -> None:
 
 # --------------------------------------------------------------------------- text
 
-BADGE = {"error": "ERR", "warning": "WRN", "note": "NTE"}
-_COLOUR = {"error": "1;31", "warning": "33", "note": "34", "bold": "1", "dim": "2"}
+_COLOUR = {"error": "1;31", "warning": "33", "note": "34", "bold": "1", "dim": "2",
+           "italic": "3"}
 _RANK = {"error": 3, "warning": 2, "note": 1}
+#: the head of the text report's table (one row per run group)
+GROUP_HEAD = "run group"
 
 
 class _Paint:
@@ -288,7 +296,7 @@ class _Paint:
 
 
 def _plural(n: int, word: str) -> str:
-    return f"{n} {word}{'' if n == 1 else 's'}"
+    return count(n, word)
 
 
 def _group_label(key: tuple[str, ...], totals: AuditTotals, several: bool) -> str:
@@ -304,23 +312,112 @@ def _tr_text(values: Iterable[float | None]) -> str:
     known = sorted({round(v, 3) for v in values if v})
     if not known:
         return "—"
-    shown = ", ".join(f"{v:g}" for v in known[:3]) + (", …" if len(known) > 3 else "")
+    shown = ", ".join(fixed(v, 3) for v in known[:3]) + (", …" if len(known) > 3 else "")
     return f"{shown} s"
 
 
-def _finding_text(f: dict[str, Any], paint: _Paint, indent: str = "  ") -> str:
-    sev = f["severity"]
+def finding_screen_lines(f: dict[str, Any], width: int | None, *, run_path: str | None = None,
+                         indent: str = "  ", unicode: bool = True) -> list[screen.Line]:
+    """One finding (a JSON finding object) laid out for a screen of ``width``."""
     where = xml_safe(f.get("file") or "")
     if f.get("field"):
         field = xml_safe(f["field"])
         where = f"{where} › {field}" if where else field
-    text = f"{indent}{paint(BADGE[sev], sev)} {paint(xml_safe(f['code']), 'bold')}  " \
-           f"{xml_safe(f['message'], one_line=False)}"
-    if where:
-        text += "\n" + paint(f"{indent}    at {where}", "dim")
-    if f.get("hint"):
-        text += f"\n{indent}    → {xml_safe(f['hint'], one_line=False)}"
-    return text
+    message = screen.strip_path_prefix(f["message"], f.get("file"), run_path)
+    return screen.finding_lines(
+        f["severity"], xml_safe(f["code"]), xml_safe(message, one_line=False), where or None,
+        xml_safe(f["hint"], one_line=False) if f.get("hint") else None, width,
+        indent=indent, unicode=unicode)
+
+
+def _value_text(value: Any, limit: int = 12) -> str:
+    if isinstance(value, bool):
+        return "yes" if value else "no"
+    if isinstance(value, float):
+        return plain(value)
+    if isinstance(value, list | tuple):
+        shown = ", ".join(_value_text(v, limit) for v in value[:limit])
+        return shown + (f", … ({len(value)} in all)" if len(value) > limit else "")
+    if isinstance(value, dict):
+        return "; ".join(f"{k.replace('_', ' ')} {_value_text(v, limit)}"
+                         for k, v in value.items())
+    return xml_safe(value)
+
+
+def grounds_text(grounds: dict[str, Any]) -> str:
+    """A finding's grounds for people: one ``name: value`` line per entry (names with
+    spaces, numbers without float noise, long lists cut), and the findings folded into
+    it as ``also: code (severity): message`` lines."""
+    lines: list[str] = []
+    for key, value in grounds.items():
+        if key == "folded" and isinstance(value, list):
+            lines.extend(f"also: {xml_safe(f.get('code'))} ({xml_safe(f.get('severity'))}): "
+                         f"{xml_safe(f.get('message'), one_line=False)}"
+                         for f in value if isinstance(f, dict))
+            continue
+        lines.append(f"{xml_safe(key).replace('_', ' ')}: {_value_text(value)}")
+    return "\n".join(lines)
+
+
+def _finding_text(f: dict[str, Any], paint: _Paint, width: int | None = None,
+                  run_path: str | None = None, indent: str = "  ") -> str:
+    return screen.paint_lines(finding_screen_lines(f, width, run_path=run_path,
+                                                   indent=indent), paint)
+
+
+def _table(rows: list[tuple[str, ...]], head: tuple[str, ...], right: set[int],
+           styles: tuple[str | None, ...], width: int | None, paint: _Paint) -> list[str]:
+    """Columns padded to their widest cell; the last column wrapped under itself, or,
+    when the fixed columns leave it too little room, every row as a short block."""
+    fixed_cols = len(head) - 1
+    widths = [max(len(r[c]) for r in [head, *rows]) for c in range(fixed_cols)]
+    lead = sum(widths) + 2 * fixed_cols
+    last_room = None if width is None else width - lead
+
+    def cells(row: tuple[str, ...], row_styles: tuple[str | None, ...]) -> str:
+        out = []
+        for c in range(fixed_cols):
+            cell = row[c].rjust(widths[c]) if c in right else row[c].ljust(widths[c])
+            style = row_styles[c] if c < len(row_styles) else None
+            out.append(paint(cell, style) if row[c] not in ("0", "") else cell)
+        return "  ".join(out) + "  "
+
+    lines: list[str] = []
+    if last_room is None or last_room >= 24:
+        lines.append(paint(cells(head, ()) + head[-1], "bold"))
+        for row in rows:
+            parts = screen.wrap_words(row[-1], width, first=lead, rest=lead)
+            lines.append(cells(row, styles) + parts[0])
+            lines.extend(" " * lead + part for part in parts[1:])
+        return lines
+    assert width is not None
+    if lead - 2 <= width:  # the last column under each row
+        lines.append(paint(cells(head, ()).rstrip(), "bold"))
+        for row in rows:
+            lines.append(cells(row, styles).rstrip())
+            for i, part in enumerate(screen.wrap_words(f"{head[-1]}: {row[-1]}", width,
+                                                       first=4, rest=6)):
+                lines.append(("    " if i == 0 else "      ") + part)
+        return lines
+    for row in rows:  # narrower still: the group on its own line, the rest under it
+        lines.append(paint(screen.shorten_path(row[0], width), "bold"))
+        facts = "  ".join(f"{head[c]} {row[c]}" for c in range(1, fixed_cols))
+        for part in screen.wrap_words(facts, width, first=4, rest=4):
+            lines.append("    " + part)
+        for i, part in enumerate(screen.wrap_words(f"{head[-1]}: {row[-1]}", width,
+                                                   first=4, rest=6)):
+            lines.append(("    " if i == 0 else "      ") + part)
+    return lines
+
+
+def _run_head(name: str, rest: str, width: int | None, paint: _Paint) -> list[str]:
+    """A run's line: the path, then scheme, TR and counts; when they do not fit,
+    the path on its own line (shortened in the middle) and the rest under it."""
+    if width is None or len(name) + 2 + len(rest) <= width:
+        return [f"{paint(name, 'bold')}  {rest}"]
+    lines = [paint(screen.shorten_path(name, width), "bold")]
+    lines.extend("    " + part for part in screen.wrap_words(rest, width, first=4, rest=4))
+    return lines
 
 
 def _scheme_label(facts: RunFacts) -> str:
@@ -329,14 +426,18 @@ def _scheme_label(facts: RunFacts) -> str:
 
 
 def write_text(source: ReportSource, out: IO[str], *, show_all: bool = False,
-               show_notes: bool = True) -> None:
-    """The text report: a summary per task and acquisition, then the runs that
-    have findings (every run with ``show_all``), the dataset findings and the
-    summary line. Counts are exact: notes hidden with ``show_notes=False`` are
-    still counted."""
+               show_notes: bool = True, width: int | bool | None = True) -> None:
+    """The text report: a summary per run group, then the runs that have findings
+    (every run with ``show_all``), the dataset findings and the summary line. Counts
+    are exact: notes hidden with ``show_notes=False`` are still counted (in the
+    summary line; the table then has no notes column). ``width``: True to fit
+    ``out`` (see ``screen.width_for``), None for no limit, or a number."""
     totals = source.totals
     paint = _Paint(out)
+    fit: int | None = screen.width_for(out) if width is True else (
+        None if width is False else width)
     several = several_roots(totals)
+    kinds = ("error", "warning", "note") if show_notes else ("error", "warning")
     groups: dict[tuple[str, ...], list[int]] = defaultdict(list)
     for index, facts in enumerate(totals.facts):
         groups[protocol_key(facts)].append(index)  # type: ignore[arg-type]
@@ -349,24 +450,13 @@ def write_text(source: ReportSource, out: IO[str], *, show_all: bool = False,
                 for label, n in sorted(schemes.items(), key=lambda kv: (-kv[1], kv[0])))
             trs = _tr_text(totals.facts[i].schedule.repetition_time  # type: ignore[union-attr]
                            for i in members if totals.facts[i].schedule is not None)
-            sums = [sum(totals.facts[i].counts[k] for i in members) for k in range(3)]
+            sums = [sum(totals.facts[i].counts[k] for i in members) for k in range(len(kinds))]
             rows.append((xml_safe(_group_label(key, totals, several)), str(len(members)), trs,
                          *(str(s) for s in sums), scheme_text))
-        head = ("task and acquisition", "runs", "TR", "ERR", "WRN", "NTE", "schemes")
-        widths = [max(len(r[c]) for r in [head, *rows]) for c in range(6)]
-        right = {1, 3, 4, 5}
-
-        def fmt(row: tuple[str, ...], styles: tuple[str | None, ...] = ()) -> str:
-            cells = []
-            for c in range(6):
-                cell = row[c].rjust(widths[c]) if c in right else row[c].ljust(widths[c])
-                style = styles[c] if c < len(styles) else None
-                cells.append(paint(cell, style) if row[c] not in ("0", "") else cell)
-            return "  ".join(cells) + "  " + row[6]
-
-        out.write(paint(fmt(head), "bold") + "\n")
-        for row in rows:
-            out.write(fmt(row, (None, None, None, "error", "warning", "note")) + "\n")
+        head = (GROUP_HEAD, "runs", "TR", *(plural_of(k) for k in kinds), "schemes")
+        right = {1, *range(3, 3 + len(kinds))}
+        for line in _table(rows, head, right, (None, None, None, *kinds), fit, paint):
+            out.write(line + "\n")
 
     def listed(index: int) -> bool:
         if show_all:
@@ -390,20 +480,31 @@ def write_text(source: ReportSource, out: IO[str], *, show_all: bool = False,
         counts = ", ".join(_plural(c, s) for c, s in ((e, "error"), (w, "warning"), (n, "note"))
                            if c) or "no findings"
         name = display_path(totals, facts, xml_safe(obj["path"]), several=several)
-        out.write(f"{paint(name, 'bold')}  {xml_safe(scheme)}"
-                  f"{f'  TR {tr:g} s' if tr else ''}  ({counts})\n")
+        rest = f"{xml_safe(scheme)}{f'  TR {secs(tr)}' if tr else ''}  ({counts})"
+        for line in _run_head(name, rest, fit, paint):
+            out.write(line + "\n")
         shown = [f for f in obj["findings"] if show_notes or f["severity"] != "note"]
         shown.sort(key=lambda f: -_RANK[f["severity"]])
         for f in shown:
-            out.write(_finding_text(f, paint) + "\n")
+            out.write(_finding_text(f, paint, fit, run_path=obj["path"]) + "\n")
     if totals.dataset_findings:
         out.write(paint("\ndataset", "bold") + "\n")
         for finding in sorted(totals.dataset_findings, key=lambda f: -f.severity.rank):
-            out.write(_finding_text(json.loads(encode(finding.to_json())), paint) + "\n")
+            if finding.severity is Severity.NOTE and not show_notes:
+                continue
+            out.write(_finding_text(json.loads(encode(finding.to_json())), paint, fit) + "\n")
     policy_line = policy_summary(totals)
     if policy_line:
-        out.write("\n" + paint(xml_safe(policy_line), "dim") + "\n")
-    out.write("\n" + summary_line(totals, paint) + "\n")
+        out.write("\n")
+        for i, part in enumerate(screen.wrap_words(xml_safe(policy_line), fit, rest=2)):
+            out.write(paint(part if i == 0 else "  " + part, "dim") + "\n")
+    out.write("\n")
+    plain_line = summary_line(totals)
+    if fit is None or len(plain_line) <= fit:
+        out.write(summary_line(totals, paint) + "\n")
+    else:
+        for i, part in enumerate(screen.wrap_words(plain_line, fit, rest=2)):
+            out.write(("" if i == 0 else "  ") + part + "\n")
 
 
 def policy_summary(totals: AuditTotals) -> str | None:
@@ -413,9 +514,8 @@ def policy_summary(totals: AuditTotals) -> str | None:
     if not files:
         return None
     ignored, judged = totals.ignored, totals.judged_by_policy
-    return (f"policy {', '.join(files)}: {ignored} finding{'s' if ignored != 1 else ''} "
-            f"ignored, {judged} run{'s' if judged != 1 else ''} judged by its protocols "
-            "instead of the dataset majority")
+    return (f"policy {', '.join(files)}: {count(ignored, 'finding')} ignored, "
+            f"{count(judged, 'run')} judged by its protocols instead of the dataset majority")
 
 
 def summary_line(totals: AuditTotals, paint: Callable[[str, str | None], str] | None = None

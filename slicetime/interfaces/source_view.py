@@ -11,9 +11,11 @@ from rich.text import Text
 from slicetime.interfaces.safe_text import xml_safe
 from slicetime.model import RunRecord
 from slicetime.model_source import SeriesTiming
+from slicetime.numbers import fixed, json_time, json_times, secs, tidy_json
 from slicetime.rules.source import correspondence, matched, source_times
 from slicetime.schemes.correspond import Correspondence
 from slicetime.schemes.infer import infer_scheme
+from slicetime.words import count
 
 
 def series_object(series: SeriesTiming) -> dict[str, Any]:
@@ -27,11 +29,12 @@ def series_object(series: SeriesTiming) -> dict[str, Any]:
         "files_read": list(series.files_read),
         "series_number": series.series_number,
         "description": series.description,
-        "repetition_time": series.repetition_time,
+        "repetition_time": None if series.repetition_time is None
+        else json_time(series.repetition_time),
         "volumes": series.n_volumes,
-        "slice_normal": list(series.normal) if series.normal else None,
+        "slice_normal": tidy_json(list(series.normal)) if series.normal else None,
         "slices": [{"label": series.labels[i], "position_mm": round(p, 3),
-                    "time": round(times[n], 6) if times is not None else None}
+                    "time": json_time(times[n]) if times is not None else None}
                    for n, (i, p) in enumerate(zip(order, positions, strict=True))],
         "times_from": series.times_source.describe() if series.times_source else None,
         "scheme": scheme.to_json() if scheme is not None else None,
@@ -42,32 +45,34 @@ def series_object(series: SeriesTiming) -> dict[str, Any]:
 def render_series(series: SeriesTiming, console: Console) -> None:
     """`show` on a DICOM file or series folder."""
     data = series_object(series)
-    console.print(Text(xml_safe(series.series), style="bold"))
-    facts = Table.grid(padding=(0, 2))
-    facts.add_column(style="dim", no_wrap=True)
-    facts.add_column()
-    facts.add_row("layout", {"mosaic": "mosaic (tiles in one image, times in the vendor "
+    from slicetime.interfaces.screen import shorten_path
+    from slicetime.interfaces.terminal import emit, fit_width, pairs
+
+    width = fit_width(console)
+    console.print(Text(shorten_path(xml_safe(series.series), width), style="bold"))
+    facts: list[tuple[str, str | Text]] = []
+    facts.append(("layout", {"mosaic": "mosaic (tiles in one image, times in the vendor "
                              "private header)", "enhanced": "enhanced multi-frame",
-                             "classic": "one slice per file"}[series.layout])
+                             "classic": "one slice per file"}[series.layout]))
     if series.series_number is not None:
-        facts.add_row("series number", str(series.series_number))
+        facts.append(("series number", str(series.series_number)))
     if series.repetition_time is not None:
-        facts.add_row("repetition time", f"{series.repetition_time:g} s")
-    facts.add_row("slices", f"{series.n_slices}" + (f", {series.n_volumes} volumes"
-                                                    if series.n_volumes else ""))
+        facts.append(("repetition time", secs(series.repetition_time)))
+    facts.append(("slices", f"{series.n_slices}" + (
+        f", {count(series.n_volumes, 'volume')}" if series.n_volumes else "")))
     if series.times_source is not None:
-        facts.add_row("times from", xml_safe(series.times_source.describe()))
+        facts.append(("times from", xml_safe(series.times_source.describe())))
     scheme = data["scheme"]
-    facts.add_row("scheme", Text(scheme["label"], style="bold") if scheme else
-                  Text("unknown: no per-slice times", style="italic"))
-    console.print(facts)
+    facts.append(("scheme", Text(scheme["label"], style="bold") if scheme else
+                  Text("unknown: no per-slice times", style="italic")))
+    emit(console, pairs(facts, width))
     table = Table(show_edge=False, pad_edge=False, header_style="bold")
     table.add_column("slice (ascending along the normal)")
     table.add_column("position mm", justify="right")
-    table.add_column("time s", justify="right")
+    table.add_column("time ms", justify="right")
     for row in data["slices"]:
         table.add_row(row["label"], f"{row['position_mm']:.2f}",
-                      "—" if row["time"] is None else f"{row['time']:.4f}")
+                      "—" if row["time"] is None else fixed(row["time"] * 1000, 2))
     console.print(table)
     for note in series.notes:
         console.print(Text(f"note: {note}", style="dim"))
@@ -87,7 +92,7 @@ def run_source_object(record: RunRecord) -> dict[str, Any] | None:
         if isinstance(corr, Correspondence):
             out["correspondence"] = [[k, label] for k, label in corr.pairs(found[1])]
         both = source_times(record)
-        out["source_times"] = [round(t, 6) for t in both[1]] if both else None
+        out["source_times"] = json_times(both[1]) if both else None
     return out
 
 
@@ -96,20 +101,29 @@ def render_run_source(record: RunRecord, console: Console) -> None:
     evidence = record.source
     if evidence is None:
         return
+    from slicetime.interfaces.screen import wrap_words
+    from slicetime.interfaces.terminal import fit_width
+
+    width = fit_width(console)
+
+    def say(text: str) -> None:
+        for i, part in enumerate(wrap_words(text, width, first=2, rest=4)):
+            console.print(Text(("  " if i == 0 else "    ") + part))
+
     console.print(Text("\nsource DICOM series", style="dim"))
     found = matched(record)
     if found is None:
         why = evidence.reason or (evidence.error.message if evidence.error else "")
-        console.print(f"  {evidence.status}: {xml_safe(why)}")
+        say(f"{evidence.status}: {xml_safe(why)}")
         return
     series = found[1]
-    console.print(f"  {xml_safe(series.series)}  (matched by {evidence.how}; "
+    say(f"{xml_safe(series.series)}  (matched by {evidence.how}; "
                   f"{series.layout}; times from "
                   f"{series.times_source.field if series.times_source else 'nowhere'})")
     corr = correspondence(record)
     if not isinstance(corr, Correspondence):
         if corr is not None:
-            console.print(f"  geometry differs: {xml_safe(corr.reason)}")
+            say(f"geometry differs: {xml_safe(corr.reason)}")
         return
     both = source_times(record)
     sidecar = record.schedule.times if record.schedule and record.timing_origin == "sidecar" \
@@ -117,11 +131,11 @@ def render_run_source(record: RunRecord, console: Console) -> None:
     table = Table(show_edge=False, pad_edge=False, header_style="bold")
     table.add_column(f"slice ({'ijk'[corr.axis]})", justify="right")
     table.add_column("source slice")
-    table.add_column("source s", justify="right")
-    table.add_column("sidecar s", justify="right")
+    table.add_column("source ms", justify="right")
+    table.add_column("sidecar ms", justify="right")
     for k, label in corr.pairs(series):
-        src = f"{both[1][k]:.4f}" if both else "—"
-        side = f"{sidecar[k]:.4f}" if sidecar is not None and k < len(sidecar) else "—"
+        src = fixed(both[1][k] * 1000, 2) if both else "—"
+        side = fixed(sidecar[k] * 1000, 2) if sidecar is not None and k < len(sidecar) else "—"
         table.add_row(str(k), label, src, side)
     console.print(table)
 

@@ -12,9 +12,9 @@ from collections.abc import Iterable
 from typing import TYPE_CHECKING
 
 from rich.console import Console
-from rich.table import Table
 from rich.text import Text
 
+from slicetime.interfaces import screen
 from slicetime.interfaces.diagram import order_diagram
 from slicetime.interfaces.progress import (  # noqa: F401 (re-exported)
     _periodic_lines,
@@ -22,7 +22,9 @@ from slicetime.interfaces.progress import (  # noqa: F401 (re-exported)
 )
 from slicetime.interfaces.safe_text import xml_safe
 from slicetime.model import Finding, Severity
+from slicetime.numbers import duration, secs
 from slicetime.pipelines.audit import AuditResult, RunResult
+from slicetime.words import count, encoding_direction
 
 if TYPE_CHECKING:
     from slicetime.pipelines.correct import CorrectResult
@@ -34,15 +36,19 @@ STYLE = {
     Severity.WARNING: "dark_orange3",
     Severity.NOTE: "steel_blue",
 }
-BADGE = {Severity.ERROR: "ERR", Severity.WARNING: "WRN", Severity.NOTE: "NTE"}
+#: the screen module's style names as rich styles
+RICH_STYLE = {"error": STYLE[Severity.ERROR], "warning": STYLE[Severity.WARNING],
+              "note": STYLE[Severity.NOTE], "bold": "bold", "dim": "dim", "italic": "italic"}
 
 
 def make_console(file: object = None) -> Console:
+    """A console that never wraps by itself: every screen is laid out for
+    ``screen.width_for`` (COLUMNS, else the terminal, else no limit) before printing."""
     stream = file if file is not None else sys.stdout
-    is_tty = bool(getattr(stream, "isatty", lambda: False)())
+    width = screen.width_for(stream)
     return Console(
         file=stream,  # type: ignore[arg-type]
-        width=None if is_tty else int(os.environ.get("COLUMNS", "120")),
+        width=width or 10_000,
         highlight=False,
         soft_wrap=True,
         no_color="NO_COLOR" in os.environ,
@@ -50,30 +56,64 @@ def make_console(file: object = None) -> Console:
     )
 
 
+def fit_width(console: Console) -> int | None:
+    """The width the console's lines are laid out for (None: no limit)."""
+    return screen.width_for(console.file)
+
+
 def supports_unicode(console: Console) -> bool:
     encoding = (console.encoding or "").lower()
     return "utf" in encoding and os.environ.get("SLICETIME_ASCII") is None
 
 
-def _ms(value: float) -> str:
-    return f"{value * 1000:.1f} ms" if value < 1 else f"{value:g} s"
+def emit(console: Console, lines: Iterable[screen.Line]) -> None:
+    """Print lines of (text, style) segments."""
+    for line in lines:
+        text = Text()
+        for part, style in line:
+            text.append(part, style=RICH_STYLE.get(style or "", None) if style else None)
+        console.print(text)
 
 
-def finding_lines(findings: Iterable[Finding], indent: str = "  ") -> list[Text]:
-    lines = []
+def pairs(rows: Iterable[tuple[str, str | Text]], width: int | None, *,
+          indent: str = "") -> list[screen.Line]:
+    """Two columns, the names dimmed and padded, the values wrapped under themselves."""
+    rows = list(rows)
+    if not rows:
+        return []
+    name_width = max(len(name) for name, _ in rows)
+    lead = len(indent) + name_width + 2
+    out: list[screen.Line] = []
+    for name, value in rows:
+        style = value.style if isinstance(value, Text) and isinstance(value.style, str) else None
+        plain = value.plain if isinstance(value, Text) else value
+        parts = screen.wrap_words(plain, width, first=lead, rest=lead)
+        if width is not None and width - lead < 20:  # no room beside: under the name
+            out.append([(indent + name, "dim")])
+            parts = screen.wrap_words(plain, width, first=len(indent) + 4,
+                                      rest=len(indent) + 4)
+            out.extend([(indent + "    " + p, _style_name(style))] for p in parts)
+            continue
+        out.append([(indent + name.ljust(name_width) + "  ", "dim"),
+                    (parts[0], _style_name(style))])
+        out.extend([(" " * lead + p, _style_name(style))] for p in parts[1:])
+    return out
+
+
+def _style_name(style: str | None) -> str | None:
+    return {"bold": "bold", "italic": "italic", "dim": "dim"}.get(style or "")
+
+
+def finding_lines(findings: Iterable[Finding], indent: str = "  ", *,
+                  width: int | None = None, run_path: str | None = None,
+                  unicode: bool = True) -> list[screen.Line]:
+    """Findings, worst first, laid out as in the text report."""
+    from slicetime.interfaces.report_stream import finding_screen_lines
+
+    lines: list[screen.Line] = []
     for f in sorted(findings, key=lambda f: -f.severity.rank):
-        line = Text(indent)
-        line.append(f"{BADGE[f.severity]} ", style=STYLE[f.severity])
-        line.append(f"{f.code}", style="bold")
-        where = xml_safe(f.file or "")
-        if f.field:
-            where = f"{where} › {xml_safe(f.field)}" if where else xml_safe(f.field)
-        line.append(f"  {xml_safe(f.message, one_line=False)}")
-        if where:
-            line.append(f"\n{indent}    at {where}", style="dim")
-        if f.hint:
-            line.append(f"\n{indent}    → {xml_safe(f.hint, one_line=False)}", style="italic")
-        lines.append(line)
+        lines.extend(finding_screen_lines(f.to_json(), width, run_path=run_path,
+                                          indent=indent, unicode=unicode))
     return lines
 
 
@@ -82,61 +122,59 @@ def render_show(run: RunResult, console: Console) -> None:
     record = run.record
     schedule = record.schedule
     header = record.header
-    console.print(Text(xml_safe(record.path), style="bold"))
-    facts = Table.grid(padding=(0, 2))
-    facts.add_column(style="dim", no_wrap=True)
-    facts.add_column()
+    width = fit_width(console)
+    unicode = supports_unicode(console)
+    console.print(Text(screen.shorten_path(xml_safe(record.path), width, unicode=unicode),
+                       style="bold"))
+    facts: list[tuple[str, str | Text]] = []
     if header is not None:
-        facts.add_row("shape", " × ".join(str(d) for d in header.shape)
-                       + f"   (NIfTI-{header.version}{', gzip' if header.compressed else ''})")
+        facts.append(("shape", " × ".join(str(d) for d in header.shape)
+                      + f"   (NIfTI-{header.version}{', gzip' if header.compressed else ''})"))
     if schedule is not None:
-        facts.add_row("slice axis", f"{schedule.axis} ({schedule.direction})"
-                      + ("   SliceTiming lists the highest index first"
-                         if schedule.direction == "-" else ""))
+        facts.append(("slice axis", encoding_direction(schedule.axis, schedule.direction)
+                      + ("   (SliceTiming lists the highest index first)"
+                         if schedule.direction == "-" else "")))
         if schedule.repetition_time is not None:
-            facts.add_row("repetition time", f"{schedule.repetition_time:g} s")
+            facts.append(("repetition time", secs(schedule.repetition_time)))
         if schedule.volume_times:
-            facts.add_row("volume times", f"{len(schedule.volume_times)} onsets (VolumeTiming)")
+            facts.append(("volume times",
+                          f"{count(len(schedule.volume_times), 'onset')} (VolumeTiming)"))
         if schedule.acquisition_window is not None and schedule.delay_time:
-            facts.add_row("acquisition window", f"{schedule.acquisition_window:g} s "
-                          f"(DelayTime {schedule.delay_time:g} s)")
+            facts.append(("acquisition window", f"{secs(schedule.acquisition_window)} "
+                          f"(DelayTime {secs(schedule.delay_time)})"))
     scheme = record.scheme
     if scheme is not None:
         detail: list[str] = []
         if scheme.spacing:
-            detail.append(f"one excitation every {_ms(scheme.spacing)}")
-        detail.append(f"{len(scheme.groups)} excitation group"
-                      f"{'s' if len(scheme.groups) != 1 else ''}")
+            detail.append(f"one excitation every {duration(scheme.spacing)}")
+        detail.append(count(len(scheme.groups), "excitation group"))
         if scheme.evidence.get("unit_note"):
             detail.append(str(scheme.evidence["unit_note"]))
-        facts.add_row("scheme", Text(scheme.label, style="bold") + Text(
-            "   " + ", ".join(detail), style="dim"))
+        facts.append(("scheme", f"{scheme.label}   {', '.join(detail)}"))
     elif header is not None:
-        facts.add_row("scheme", Text("unknown: no usable slice timing", style="italic"))
-    console.print(facts)
+        facts.append(("scheme", Text("unknown: no usable slice timing", style="italic")))
+    emit(console, pairs(facts, width))
 
     if schedule is not None:
         console.print(Text("\nwhere each value came from", style="dim"))
-        src = Table.grid(padding=(0, 2))
-        src.add_column(no_wrap=True)
-        src.add_column(style="dim")
-        for key, source in schedule.sources.items():
-            src.add_row(f"  {key}", xml_safe(source.describe()))
-        console.print(src)
+        emit(console, [[(p, None if s == "dim" else "dim") for p, s in line] for line in
+                       pairs([(key, xml_safe(source.describe()))
+                              for key, source in schedule.sources.items()],
+                             width, indent="  ")])
         console.print(Text("\nacquisition order (slice index ↑, time within the volume →)"
-                           if supports_unicode(console) else
+                           if unicode else
                            "\nacquisition order (slice index up, time within the volume right)",
                            style="dim"))
         factor = 0.001 if scheme is not None and scheme.evidence.get("assumed_unit") == "ms" \
             else 1.0  # SliceTiming in milliseconds: drawn in seconds, as the scheme reads it
         for line in order_diagram([t * factor for t in schedule.times],
                                   schedule.acquisition_window or schedule.repetition_time,
-                                  unicode=supports_unicode(console)):
+                                  unicode=unicode):
             console.print("  " + line)
     if run.findings:
         console.print(Text("\nfindings", style="dim"))
-        for line in finding_lines(run.findings):
-            console.print(line)
+        emit(console, finding_lines(run.findings, width=width, run_path=record.path,
+                                    unicode=unicode))
     else:
         console.print(Text("\nno findings", style="dim"))
 
@@ -160,55 +198,92 @@ OUTCOME_STYLE = {
 
 def render_correct(result: CorrectResult, console: Console) -> None:
     """One line per run (status, output, reference time), reasons under it, a summary."""
+    width = fit_width(console)
+    unicode = supports_unicode(console)
+    pad = " " * 11
     for run in result.runs:
+        items = []
+        if run.ok and run.output:
+            items.append(f"{'→' if unicode else '->'} {xml_safe(run.output.rsplit('/', 1)[-1])}")
+        if run.reference is not None and run.ok:
+            items.append(f"(reference {secs(run.reference)})")
+        tail = "".join(f"  {item}" for item in items)
+        path = xml_safe(run.path)
         line = Text()
         line.append(f"{run.status:<10}", style=OUTCOME_STYLE[run.status])
-        line.append(" " + xml_safe(run.path))
-        if run.ok and run.output:
-            line.append(f"  → {xml_safe(run.output.rsplit('/', 1)[-1])}", style="dim")
-        if run.reference is not None and run.ok:
-            line.append(f"  (reference {run.reference:.4g} s)", style="dim")
-        console.print(line)
-        if run.reason:
-            console.print(Text(f"           {xml_safe(run.reason)}"))
+        if width is None or 11 + len(path) + len(tail) <= width:
+            line.append(" " + path)
+            line.append(tail, style="dim")
+            console.print(line)
+        else:  # the path on the status line, shortened; the output under it
+            line.append(" " + screen.shorten_path(path, width - 11, unicode=unicode))
+            console.print(line)
+            for part in screen.wrap_items(items, width, first=11, rest=11):
+                console.print(Text(pad + part, style="dim"))
+        if run.reason:  # the path is on the line above: not again
+            reason = screen.strip_path_prefix(run.reason, run.path)
+            for part in screen.wrap_words(xml_safe(reason), width, first=11, rest=13):
+                console.print(Text(pad + part))
         for warning in run.warnings:
-            console.print(Text(f"           warning: {xml_safe(warning)}", style="dark_orange3"))
+            for i, part in enumerate(screen.wrap_words(f"warning: {xml_safe(warning)}", width,
+                                                       first=11, rest=13)):
+                console.print(Text(pad + ("" if i == 0 else "  ") + part,
+                                   style="dark_orange3"))
     counts = result.counts()
     parts = [f"{counts[k]} {k}" for k in ("corrected", "up-to-date", "refused", "failed")
              if counts[k]]
     total = len(result.runs)
     where = (f"outputs in {xml_safe(result.out)}" if any(r.ok for r in result.runs)
              else "nothing was written")
-    console.print(Text(f"\n{total} run{'s' if total != 1 else ''}: "
-                       f"{', '.join(parts) or 'nothing to do'}; {where}"))
+    summary = f"{count(total, 'run')}: {', '.join(parts) or 'nothing to do'}; {where}"
+    console.print()
+    for i, part in enumerate(screen.wrap_words(summary, width, rest=2)):
+        console.print(Text(("" if i == 0 else "  ") + part))
 
 
 def render_fix_plan(plan: FixPlan, console: Console) -> None:
     """Every planned file: what changes and why (rule, evidence, runs), then the diff."""
+    width = fit_width(console)
+    unicode = supports_unicode(console)
     for change in plan.changes:
         runs = change.runs
-        head = Text(xml_safe(change.file), style="bold")
-        head.append(f"  ({'new file; ' if change.sha256_before is None else ''}"
-                    f"{len(runs)} run{'s' if len(runs) != 1 else ''})", style="dim")
+        extra = f"  ({'new file; ' if change.sha256_before is None else ''}" \
+                f"{count(len(runs), 'run')})"
+        name = xml_safe(change.file)
+        if width is not None and len(name) + len(extra) > width:
+            name = screen.shorten_path(name, max(width - len(extra), 20), unicode=unicode)
+        head = Text(name, style="bold")
+        head.append(extra, style="dim")
         console.print(head)
         seen: set[tuple[str, str]] = set()
         for repair in change.repairs:
             if (repair.code, repair.field) in seen:
                 continue
             seen.add((repair.code, repair.field))
-            console.print(Text(f"  {repair.code}: {repair.field} from {repair.source}"))
+            for i, part in enumerate(screen.wrap_words(
+                    f"{repair.code}: {repair.field} from {xml_safe(repair.source)}", width,
+                    first=2, rest=6)):
+                console.print(Text(("  " if i == 0 else "      ") + part))
+        room = None if width is None else width - 8
         for run in runs[:10]:
-            console.print(Text(f"    run {xml_safe(run)}", style="dim"))
+            console.print(Text(f"    run {screen.shorten_path(xml_safe(run), room)}",
+                               style="dim"))
         if len(runs) > 10:
-            console.print(Text(f"    … and {len(runs) - 10} more runs", style="dim"))
+            console.print(Text(f"    {'…' if unicode else '...'} and "
+                               f"{count(len(runs) - 10, 'more run')}", style="dim"))
         for line in change.diff().splitlines():
             style = ("green4" if line.startswith("+") and not line.startswith("+++")
                      else "red3" if line.startswith("-") and not line.startswith("---")
                      else "dim" if line.startswith("@@") else None)
-            console.print(Text(xml_safe(line), style=style))
+            text = xml_safe(line)
+            if width is not None and len(text) > width:
+                # a diff line is not reflowed (it must stay one line): cut, with a mark
+                text = text[: width - 1] + ("…" if unicode else "~")
+            console.print(Text(text, style=style))
         console.print()
     for note in plan.notes:
-        console.print(Text(f"note: {xml_safe(note)}", style=STYLE[Severity.NOTE]))
+        for i, part in enumerate(screen.wrap_words(f"note: {xml_safe(note)}", width, rest=6)):
+            console.print(Text(("" if i == 0 else "      ") + part, style=STYLE[Severity.NOTE]))
     total = len(plan.changes)
-    console.print(Text(f"{total} file{'s' if total != 1 else ''} to change"
+    console.print(Text(f"{count(total, 'file')} to change"
                        + ("" if total else " — nothing to fix")))

@@ -29,6 +29,7 @@ from slicetime.readers.inheritance import SidecarIndex, SidecarStore, ValueShare
 from slicetime.readers.record import build_record, relative_display
 from slicetime.readers.source import SourceIndex, SourceOptions, find_source
 from slicetime.rules import RULES, check_dataset, check_run, fold_consequences, folds_into
+from slicetime.rules.registry import RENAMED, known_codes
 
 
 @dataclass
@@ -187,7 +188,7 @@ def _policies(
 ) -> dict[Path, Policy | None]:
     """The policy of each root: the one given (errors propagate: exit 2), else the
     root's own file (a broken one becomes a dataset finding and is not used)."""
-    return root_policies(roots, policy_file, RULES, problems)
+    return root_policies(roots, policy_file, known_codes(), problems, renamed=RENAMED)
 
 
 def check_paths_hold_runs(paths: Sequence[Path], **include: bool) -> None:

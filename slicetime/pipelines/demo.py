@@ -57,7 +57,7 @@ def _protocols() -> dict[str, Protocol]:
         "rest": Protocol(n_slices=18, order="sequential", repetition_time=2.5),
         # sparse: 16 slices in the first 1.5 s of a 3 s TR, odd slices first
         "tone": Protocol(n_slices=16, order="interleaved", start=1, repetition_time=3.0,
-                         acquisition_time=1.5),
+                         active_time=1.5),
     }
 
 
@@ -130,7 +130,7 @@ def build_demo_dataset(root: Path) -> list[DemoRun]:
     })
     (root / "participants.tsv").write_text("participant_id\nsub-01\nsub-02\nsub-03\n")
     tone = p["tone"]
-    assert tone.repetition_time is not None and tone.acquisition_time is not None
+    assert tone.repetition_time is not None and tone.active_time is not None
     top = {
         "hum": {"TaskName": "hum", "RepetitionTime": 2.0, "SliceTiming": slice_timing(p["hum"])},
         # the multiband factor was left out of this one
@@ -138,7 +138,7 @@ def build_demo_dataset(root: Path) -> list[DemoRun]:
                   "SliceTiming": slice_timing(p["chirp"])},
         "rest": {"TaskName": "rest", "RepetitionTime": 2.5},
         "tone": {"TaskName": "tone", "RepetitionTime": tone.repetition_time,
-                 "DelayTime": round(tone.repetition_time - tone.acquisition_time, 6),
+                 "DelayTime": round(tone.repetition_time - tone.active_time, 6),
                  "SliceTiming": slice_timing(tone)},
     }
     for task, content in top.items():

@@ -42,6 +42,7 @@ from typing import Any
 
 from slicetime import __version__
 from slicetime.model import Finding, RunRecord
+from slicetime.numbers import tidy_json
 from slicetime.pipelines.audit import AuditResult, audit_paths
 from slicetime.pipelines.executor import Executor
 from slicetime.pipelines.json_splice import DELETE, Layout, scan, splice
@@ -54,13 +55,15 @@ from slicetime.readers.entities import parse_name, sidecar_path
 from slicetime.readers.sidecar import MAX_SIDECAR_BYTES, TIMING_FIELDS
 from slicetime.readers.source import SourceOptions
 from slicetime.readers.volumes import file_sha256
-from slicetime.rules import RULES
 from slicetime.rules.dataset import PROTOCOL_ENTITIES
+from slicetime.rules.registry import RENAMED, known_codes
 from slicetime.rules.repairs import FIXABLE, Repair, plan_consensus, plan_run
 
 JOURNAL_NAME = "journal.json"
 PLAN_FORMAT = "slicetime-fix-plan"
 JOURNAL_FORMAT = "slicetime-fix-journal"
+#: journal entry keys written by earlier releases, read as the keys they became
+_JOURNAL_FORMER_KEYS = {"before_sha256": "sha256_before", "after_sha256": "sha256_after"}
 
 
 class FixError(Exception):
@@ -161,7 +164,7 @@ def _repair_json(repair: Repair) -> dict[str, Any]:
         "current": repair.current,
         "resolved_from": repair.resolved_from,
         "source": repair.source,
-        "evidence": dict(repair.evidence),
+        "grounds": tidy_json(dict(repair.evidence)),
     }
 
 
@@ -222,7 +225,8 @@ def _load_for_edit(path: Path) -> tuple[str, Layout]:
 
 def _policies(roots: Sequence[Path], policy_file: Path | None) -> dict[str, Policy | None]:
     # a broken policy is reported by the audit itself
-    return {str(r): p for r, p in root_policies(roots, policy_file, RULES).items()}
+    return {str(r): p for r, p in root_policies(roots, policy_file, known_codes(),
+                                                renamed=RENAMED).items()}
 
 
 def _under(run: RunRecord, wanted: Sequence[Path]) -> bool:
@@ -695,8 +699,8 @@ class JournalEntry:
     root: str
     file: str
     action: str  # modified | created | replaced-link
-    before_sha256: str | None
-    after_sha256: str
+    sha256_before: str | None
+    sha256_after: str
     backup: str | None = None  # relative to the journal's folder
     mode: int | None = None
     link_target: str | None = None
@@ -707,7 +711,7 @@ class JournalEntry:
 
     def to_json(self) -> dict[str, Any]:
         return {"root": self.root, "file": self.file, "action": self.action,
-                "before_sha256": self.before_sha256, "after_sha256": self.after_sha256,
+                "sha256_before": self.sha256_before, "sha256_after": self.sha256_after,
                 "backup": self.backup, "mode": self.mode, "link_target": self.link_target}
 
 
@@ -838,7 +842,7 @@ def _apply_checked(plan: FixPlan, roots: list[str], backup: Path) -> ApplyResult
                              _sha(change.after.encode("utf-8")))
         if path.is_symlink():
             entry.action, entry.link_target = "replaced-link", os.readlink(path)
-            entry.before_sha256 = change.sha256_before
+            entry.sha256_before = change.sha256_before
         elif path.exists():
             data = path.read_bytes()
             if _sha(data) != change.sha256_before:
@@ -852,7 +856,7 @@ def _apply_checked(plan: FixPlan, roots: list[str], backup: Path) -> ApplyResult
                 fh.flush()
                 os.fsync(fh.fileno())
             entry.action, entry.backup = "modified", rel
-            entry.before_sha256 = change.sha256_before
+            entry.sha256_before = change.sha256_before
             entry.mode = path.stat().st_mode & 0o7777
         entries.append(entry)
     _write_journal(journal_path, roots, token, entries, "prepared")
@@ -964,7 +968,10 @@ def _read_journal(journal_path: Path) -> _Journal:
     for n, raw in enumerate(raw_entries, 1):
         if not isinstance(raw, dict):
             raise damaged(f"entry {n} is not an object")
-        for key in ("root", "file", "action", "after_sha256"):
+        for former, key in _JOURNAL_FORMER_KEYS.items():  # journals before 0.2
+            if former in raw and key not in raw:
+                raw = {**raw, key: raw[former]}
+        for key in ("root", "file", "action", "sha256_after"):
             if key not in raw:
                 raise damaged(f"entry {n} lacks {key!r}")
         root, file, action = raw["root"], raw["file"], raw["action"]
@@ -976,17 +983,17 @@ def _read_journal(journal_path: Path) -> _Journal:
         if (root, file) in seen:
             raise damaged(f"entry {n}: {file!r} is recorded twice")
         seen.add((root, file))
-        after, before = raw["after_sha256"], raw.get("before_sha256")
+        after, before = raw["sha256_after"], raw.get("sha256_before")
         if not (isinstance(after, str) and _SHA.match(after)):
-            raise damaged(f"entry {n}: after_sha256 is not a SHA-256")
+            raise damaged(f"entry {n}: sha256_after is not a SHA-256")
         entry = JournalEntry(root, file, str(action), None, after)
         if action == "created":
             if before is not None:
-                raise damaged(f"entry {n}: a created file has a before_sha256")
+                raise damaged(f"entry {n}: a created file has a sha256_before")
         elif action in ("modified", "replaced-link"):
             if not (isinstance(before, str) and _SHA.match(before)):
-                raise damaged(f"entry {n}: before_sha256 is missing or not a SHA-256")
-            entry.before_sha256 = before
+                raise damaged(f"entry {n}: sha256_before is missing or not a SHA-256")
+            entry.sha256_before = before
         else:
             raise damaged(f"entry {n}: unknown action {action!r}")
         if action == "modified":
@@ -1021,7 +1028,7 @@ def _backup_bytes(entry: JournalEntry, backup: Path) -> bytes:
         raise FixError(f"{path}: the backup of {entry.file} is missing (or not a regular "
                        "file); nothing was restored")
     data = path.read_bytes()
-    if _sha(data) != entry.before_sha256:
+    if _sha(data) != entry.sha256_before:
         raise FixError(f"{path}: the backup of {entry.file} does not match the SHA-256 the "
                        "journal recorded before the fix; nothing was restored")
     return data
@@ -1037,9 +1044,9 @@ def _state(entry: JournalEntry) -> str:
     if path.exists() and not path.is_file():
         return "other"
     sha = _current_sha(path)
-    if sha == entry.after_sha256:
+    if sha == entry.sha256_after:
         return "after"
-    if sha == entry.before_sha256 and entry.action != "replaced-link":
+    if sha == entry.sha256_before and entry.action != "replaced-link":
         return "before"
     return "other"
 

@@ -77,6 +77,7 @@ problems (missing, unreadable) keep their ``file/*`` codes.
 
 from __future__ import annotations
 
+import dataclasses
 import difflib
 import functools
 import json
@@ -553,19 +554,45 @@ def policy_from_document(
     )
 
 
+def with_current_codes(policy: Policy, renamed: Mapping[str, str]) -> Policy:
+    """The policy with every former finding code (``renamed``: former → current) named
+    as the code it became, so a policy written for an earlier release keeps working. A
+    pattern is kept as written (it matches the current codes only)."""
+    def now(code: str) -> str:
+        return renamed.get(code, code)
+
+    if all(now(c) == c for c in policy.severity) and all(
+            now(c) == c for entry in policy.ignores for c in entry.codes):
+        return policy
+    return dataclasses.replace(
+        policy,
+        severity={now(c): s for c, s in policy.severity.items()},
+        ignores=tuple(dataclasses.replace(e, codes=tuple(now(c) for c in e.codes))
+                      for e in policy.ignores),
+    )
+
+
 def root_policies(
     roots: Iterable[Path],
     policy_file: Path | None,
     known_codes: Collection[str],
     problems: list[Finding] | None = None,
+    *,
+    renamed: Mapping[str, str] | None = None,
 ) -> dict[Path, Policy | None]:
     """The policy of each dataset root: the one given (its errors propagate, so the
     command line can exit 2), else the root's own ``slicetime-policy.toml``. A
     root's broken file is not used: its problem is appended to ``problems`` as a
-    finding (when given) for the report."""
+    finding (when given) for the report. ``renamed`` maps former codes to current
+    ones (:func:`with_current_codes`)."""
     roots = list(roots)
+
+    def load(path: Path, display: str | None = None) -> Policy:
+        policy = load_policy(path, known_codes, display=display)
+        return with_current_codes(policy, renamed) if renamed else policy
+
     if policy_file is not None:
-        given = load_policy(policy_file, known_codes)
+        given = load(policy_file)
         return {Path(root): given for root in roots}
     found: dict[Path, Policy | None] = {}
     for root in roots:
@@ -574,7 +601,7 @@ def root_policies(
             found[Path(root)] = None
             continue
         try:
-            found[Path(root)] = load_policy(candidate, known_codes, display=POLICY_FILENAME)
+            found[Path(root)] = load(candidate, display=POLICY_FILENAME)
         except ReadError as exc:
             if problems is not None:
                 problems.append(exc.to_finding())

@@ -38,6 +38,7 @@ from pathlib import Path
 from typing import Any, BinaryIO
 
 from slicetime.model import Finding, Severity
+from slicetime.words import with_article
 
 __all__ = [
     "ReadError",
@@ -131,7 +132,8 @@ def os_error(exc: OSError, shown: str, *, what: str = "file") -> ReadError:
         return ReadError("file/missing", shown, None, f"{shown}: {what} does not exist")
     if isinstance(exc, IsADirectoryError):
         return ReadError(
-            "file/unreadable", shown, None, f"{shown}: is a directory, expected a {what}"
+            "file/unreadable", shown, None,
+            f"{shown}: is a directory, expected {with_article(what)}"
         )
     if isinstance(exc, PermissionError):
         return ReadError(
@@ -191,7 +193,8 @@ def check_regular_file(
         raise os_error(exc, shown, what=what) from None
     if stat.S_ISDIR(st.st_mode):
         raise ReadError(
-            "file/unreadable", shown, None, f"{shown}: is a directory, expected a {what}"
+            "file/unreadable", shown, None,
+            f"{shown}: is a directory, expected {with_article(what)}"
         )
     if not stat.S_ISREG(st.st_mode):
         raise _not_regular(shown, st.st_mode, what)

@@ -40,6 +40,7 @@ from typing import Any, BinaryIO
 import numpy as np
 
 from slicetime.model import HeaderInfo
+from slicetime.numbers import plain
 
 from .errors import ReadError, open_regular, os_error
 from .nifti import HEADER_LAYOUT, data_offset_problem, extension_problem
@@ -126,9 +127,10 @@ def scaling_problem(header: HeaderInfo) -> str | None:
         return None
     slope, inter = scale
     if not math.isfinite(inter):
-        return f"scl_inter is {inter} while scl_slope is {slope:g}; the scaled values are undefined"
+        return (f"scl_inter is {inter} while scl_slope is {plain(slope)}; the scaled values "
+                "are undefined")
     if abs(slope) > FLOAT32_MAX or abs(inter) > FLOAT32_MAX:
-        return (f"scl_slope {slope:g} / scl_inter {inter:g} lie beyond the float32 range "
+        return (f"scl_slope {plain(slope)} / scl_inter {plain(inter)} lie beyond the float32 range "
                 f"(±{FLOAT32_MAX:.4g})")
     return None
 

@@ -11,6 +11,7 @@ from slicetime.rules.registry import reader_code
 
 reader_code(
     "batch/worker-lost",
+    checked="batch",
     title="the run was not processed: its worker stopped twice",
     severity=Severity.ERROR,
     rationale=(
@@ -22,6 +23,7 @@ reader_code(
 )
 reader_code(
     "batch/internal-error",
+    checked="batch",
     title="slicetime failed on this run (a bug)",
     severity=Severity.ERROR,
     rationale=(

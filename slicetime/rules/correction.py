@@ -12,6 +12,7 @@ from slicetime.rules.registry import reader_code
 
 reader_code(
     "correct/output-clash",
+    checked="correcting",
     title="two inputs would be written to one corrected output",
     severity=Severity.ERROR,
     rationale=(
@@ -29,6 +30,7 @@ reader_code(
 )
 reader_code(
     "correct/implausible-timing",
+    checked="correcting",
     title="the timing is physically impossible for an fMRI run",
     severity=Severity.ERROR,
     rationale=(
@@ -42,6 +44,7 @@ reader_code(
 )
 reader_code(
     "correct/scaling-range",
+    checked="correcting",
     title="the header's scaling gives values a float32 output cannot hold",
     severity=Severity.ERROR,
     rationale=(

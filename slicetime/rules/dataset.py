@@ -8,6 +8,7 @@ from collections.abc import Callable, Hashable, Iterator, Sequence
 from typing import Any
 
 from slicetime.model import TIME_TOLERANCE, RunRecord, Severity
+from slicetime.numbers import plain
 from slicetime.rules.registry import DatasetHit, Hit, dataset_rule, run_rule
 
 E, W, N = Severity.ERROR, Severity.WARNING, Severity.NOTE
@@ -104,7 +105,7 @@ def outlier_tr(records: Sequence[RunRecord]) -> Iterator[DatasetHit]:
         tr = record.schedule.repetition_time if record.schedule else None
         return round(tr, 3) if tr else None
 
-    yield from _consensus(records, value, lambda v: f"{v:g} s", "RepetitionTime",
+    yield from _consensus(records, value, lambda v: f"{plain(v)} s", "RepetitionTime",
                           "RepetitionTime")
 
 

@@ -6,7 +6,8 @@ import math
 from collections.abc import Iterator
 
 from slicetime.model import AXES, RunRecord, Severity
-from slicetime.rules.registry import Hit, run_rule
+from slicetime.numbers import plain
+from slicetime.rules.registry import Hit, renamed, run_rule
 from slicetime.schemes.infer import infer_scheme
 from slicetime.schemes.niftcodes import SLICE_CODE_NAMES, header_slice_times
 from slicetime.schemes.resolve import parse_direction, positive_number
@@ -41,8 +42,11 @@ def not_4d(record: RunRecord) -> Iterator[Hit]:
         )
 
 
+renamed("header/tr-mismatch", "header/tr-disagrees")  # until the release after 0.1
+
+
 @run_rule(
-    "header/tr-mismatch",
+    "header/tr-disagrees",
     title="the header's TR disagrees with RepetitionTime",
     severity=E,
     rationale=(
@@ -63,13 +67,13 @@ def tr_mismatch(record: RunRecord) -> Iterator[Hit]:
     hint = None
     ratio = htr / tr
     if math.isclose(ratio, 1000, rel_tol=1e-3):
-        hint = (f"pixdim[4] is {header.raw_pixdim4:g} with time unit {header.time_unit}: the "
+        hint = (f"pixdim[4] is {plain(header.raw_pixdim4)} with time unit {header.time_unit}: the "
                 "header unit is probably wrong (the value is in milliseconds).")
     elif math.isclose(ratio, 1e-3, rel_tol=1e-3):
         hint = ("The header TR is a thousandth of the sidecar's: the header unit is probably "
                 "wrong (microseconds or milliseconds labelled as seconds).")
     yield Hit(
-        f"header pixdim[4] gives a TR of {htr:g} s, the sidecar RepetitionTime {tr:g} s",
+        f"header pixdim[4] gives a TR of {plain(htr)} s, the sidecar RepetitionTime {plain(tr)} s",
         "RepetitionTime",
         {"header_tr": htr, "raw_pixdim4": header.raw_pixdim4,
          "time_unit": header.time_unit, "sidecar_tr": tr},
@@ -91,7 +95,7 @@ def tr_unset(record: RunRecord) -> Iterator[Hit]:
         return
     if header.raw_pixdim4 == 0:
         yield Hit(
-            f"pixdim[4] is 0 while RepetitionTime is {tr:g} s",
+            f"pixdim[4] is 0 while RepetitionTime is {plain(tr)} s",
             "pixdim[4]", {"sidecar_tr": tr}, file=record.path,
         )
 
@@ -108,7 +112,7 @@ def time_units(record: RunRecord) -> Iterator[Hit]:
     if header is not None and header.time_unit == "unknown" and header.raw_pixdim4 > 0 \
             and len(header.shape) >= 4:
         yield Hit(
-            f"xyzt_units has no time unit; pixdim[4] = {header.raw_pixdim4:g} read as seconds",
+            f"xyzt_units has no time unit; pixdim[4] = {plain(header.raw_pixdim4)} read as seconds",
             "xyzt_units", {"raw_pixdim4": header.raw_pixdim4}, file=record.path,
         )
 

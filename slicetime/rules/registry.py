@@ -19,6 +19,21 @@ from typing import Any, Literal, cast
 from slicetime.model import Finding, RunRecord, Severity
 
 Scope = Literal["run", "dataset", "reader"]
+
+#: where a code's check really happens, as ``slicetime explain`` says it; every
+#: registration declares one (run, dataset and reader registrations have a default)
+CHECKED = {
+    "metadata": "in each run's metadata (its sidecars and header)",
+    "dataset": "across the dataset (runs compared with each other)",
+    "reading": "while reading the files",
+    "data": "in the image data",
+    "batch": "in the batch (a worker that ran the run)",
+    "source": "against the source DICOM series",
+    "policy": "in the lab policy",
+    "correcting": "while correcting",
+}
+Checked = Literal["metadata", "dataset", "reading", "data", "batch", "source", "policy",
+                  "correcting"]
 RunCheck = Callable[[RunRecord], Iterable["Hit"]]
 DatasetCheck = Callable[[Sequence[RunRecord]], Iterable["DatasetHit"]]
 
@@ -58,11 +73,36 @@ class Rule:
     #: the standard's check this rule covers, when one exists (for docs and tests)
     standard: str | None = None
     #: codes that follow from this rule's finding: on the same run and field they are
-    #: folded into it (listed in its evidence) instead of reported again
+    #: folded into it (listed in its grounds) instead of reported again
     subsumes: frozenset[str] = frozenset()
+    #: where the check happens (a key of :data:`CHECKED`)
+    checked: Checked = "metadata"
+
+    @property
+    def checked_text(self) -> str:
+        return CHECKED[self.checked]
 
 
 RULES: dict[str, Rule] = {}
+#: former codes still understood for one release (lab policies, ``explain``): old -> new
+RENAMED: dict[str, str] = {}
+
+
+def current_code(code: str) -> str:
+    """The code as it is named now (a former name gives its new code)."""
+    return RENAMED.get(code, code)
+
+
+def renamed(old: str, new: str) -> None:
+    """Keep the former code ``old`` understood as ``new`` (lab policies, ``explain``)."""
+    if old in RULES or old in RENAMED:
+        raise RuntimeError(f"finding code {old!r} is still in use")
+    RENAMED[old] = new
+
+
+def known_codes() -> frozenset[str]:
+    """Every code a lab policy may name: the registered ones and their former names."""
+    return frozenset(RULES) | frozenset(RENAMED)
 #: the run rules with a check, in registry order (what :func:`check_run` runs)
 _RUN_CHECKS: list[tuple[Rule, RunCheck]] = []
 
@@ -73,6 +113,8 @@ def _register(rule: Rule) -> None:
     area, _, name = rule.code.partition("/")
     if not area or not name or rule.code != rule.code.lower():
         raise RuntimeError(f"finding codes are lower-case area/short-name: {rule.code!r}")
+    if rule.checked not in CHECKED:
+        raise RuntimeError(f"{rule.code}: unknown place of checking {rule.checked!r}")
     RULES[rule.code] = rule
     if rule.scope == "run" and rule.check is not None:
         _RUN_CHECKS.append((rule, cast(RunCheck, rule.check)))  # scope "run": a RunCheck
@@ -87,25 +129,29 @@ def run_rule(
     fix: str | None = None,
     standard: str | None = None,
     subsumes: Iterable[str] = (),
+    checked: Checked = "metadata",
 ) -> Callable[[RunCheck], RunCheck]:
     """Register a check over one run. ``subsumes``: codes that follow from this one's
-    finding on the same run and field (see :func:`fold_consequences`)."""
+    finding on the same run and field (see :func:`fold_consequences`); ``checked``:
+    where the check happens (:data:`CHECKED`)."""
 
     def decorate(check: RunCheck) -> RunCheck:
         _register(Rule(code, title, severity, rationale, fix, "run", check, standard,
-                       frozenset(subsumes)))
+                       frozenset(subsumes), checked))
         return check
 
     return decorate
 
 
 def dataset_rule(
-    code: str, *, title: str, severity: Severity, rationale: str, fix: str | None = None
+    code: str, *, title: str, severity: Severity, rationale: str, fix: str | None = None,
+    checked: Checked = "dataset",
 ) -> Callable[[DatasetCheck], DatasetCheck]:
     """Register a check over all runs of a dataset."""
 
     def decorate(check: DatasetCheck) -> DatasetCheck:
-        _register(Rule(code, title, severity, rationale, fix, "dataset", check))
+        _register(Rule(code, title, severity, rationale, fix, "dataset", check,
+                       checked=checked))
         return check
 
     return decorate
@@ -119,9 +165,12 @@ def reader_code(
     rationale: str,
     fix: str | None = None,
     standard: str | None = None,
+    checked: Checked = "reading",
 ) -> None:
-    """Document a code that the readers raise (no check function)."""
-    _register(Rule(code, title, severity, rationale, fix, "reader", None, standard))
+    """Document a code raised outside the rules (no check function): by the readers
+    (the default), the batch, verify, correct or the source cross-check (``checked``)."""
+    _register(Rule(code, title, severity, rationale, fix, "reader", None, standard,
+                   checked=checked))
 
 
 def to_finding(rule: Rule, record: RunRecord | None, hit: Hit) -> Finding:
@@ -230,7 +279,8 @@ def explain(code: str) -> str:
     rule = RULES[code]
     lines = [
         f"{rule.code} — {rule.title}",
-        f"default severity: {rule.severity.value}    checked on: {rule.scope}",
+        f"default severity: {rule.severity.value}",
+        f"checked: {rule.checked_text}",
         "",
         rule.rationale.strip(),
     ]
@@ -240,5 +290,5 @@ def explain(code: str) -> str:
         lines += ["", f"standard: {rule.standard}"]
     if rule.subsumes:
         lines += ["", "folds in (consequences on the same run and field, listed in its "
-                  "evidence instead of reported again): " + ", ".join(sorted(rule.subsumes))]
+                  "grounds instead of reported again): " + ", ".join(sorted(rule.subsumes))]
     return "\n".join(lines)

@@ -45,6 +45,7 @@ from slicetime.model import (
     RunRecord,
     Severity,
 )
+from slicetime.numbers import plain
 from slicetime.policy.model import ExpectedProtocol
 from slicetime.rules.dataset import protocol_key
 from slicetime.rules.source import matched, source_multiband, source_times
@@ -172,7 +173,7 @@ def _from_header(record: RunRecord) -> list[Repair]:
         return []
     name = SLICE_CODE_NAMES.get(header.slice_code, str(header.slice_code))
     source = (f"the NIfTI header: slice_code {header.slice_code} ({name}), slice_duration "
-              f"{header.slice_duration:g} s, slice axis {schedule.axis}")
+              f"{plain(header.slice_duration)} s, slice axis {schedule.axis}")
     evidence = {"slice_code": header.slice_code, "slice_duration": header.slice_duration,
                 "slice_axis": schedule.axis}
     repairs = [_repair(record, "timing/from-header", "SliceTiming",
@@ -196,7 +197,7 @@ def _policy_times(protocol: ExpectedProtocol, record: RunRecord) -> list[float] 
     found: set[tuple[float, ...]] = set()
     candidates: list[Protocol] = [
         Protocol(n_slices=n, order="sequential", ascending=asc, multiband=multiband,
-                 repetition_time=tr, acquisition_time=window)
+                 repetition_time=tr, active_time=window)
         for asc in (True, False)
     ]
     groups = n // multiband if multiband else n
@@ -205,7 +206,7 @@ def _policy_times(protocol: ExpectedProtocol, record: RunRecord) -> list[float] 
             starts = range(step) if asc else range(groups - step, groups)
             candidates.extend(
                 Protocol(n_slices=n, order="interleaved", ascending=asc, step=step, start=s,
-                         multiband=multiband, repetition_time=tr, acquisition_time=window)
+                         multiband=multiband, repetition_time=tr, active_time=window)
                 for s in starts
             )
     for candidate in candidates:
@@ -232,7 +233,7 @@ def _missing_from_policy(record: RunRecord, protocol: ExpectedProtocol | None) -
     where = protocol.name or f"protocols[{protocol.index}]"
     return [_repair(record, "timing/missing", "SliceTiming", times,
                     f"the lab policy's protocol {where} ('{protocol.scheme}', "
-                    f"{protocol.slices} slices, TR {protocol.repetition_time:g} s)",
+                    f"{protocol.slices} slices, TR {plain(protocol.repetition_time)} s)",
                     {"protocol": where, "scheme": protocol.scheme})]
 
 

@@ -14,9 +14,11 @@ from collections.abc import Iterator
 
 from slicetime.model import RunRecord, Severity
 from slicetime.model_source import SeriesTiming, SourceEvidence
+from slicetime.numbers import plain
 from slicetime.rules.registry import Hit, reader_code, run_rule
 from slicetime.schemes.correspond import Correspondence, Mismatch, correspond
 from slicetime.schemes.infer import infer_scheme
+from slicetime.words import agree, count
 
 E, W, N = Severity.ERROR, Severity.WARNING, Severity.NOTE
 #: the source's quantisation step: a sidecar within it agrees (common practice, no source)
@@ -74,6 +76,7 @@ def _ms(values: tuple[float, ...]) -> list[float]:
 
 @run_rule(
     "source/no-match",
+    checked="source",
     title="no source series could be matched to the run",
     severity=N,
     rationale=(
@@ -92,6 +95,7 @@ def no_match(record: RunRecord) -> Iterator[Hit]:
 
 @run_rule(
     "source/ambiguous",
+    checked="source",
     title="several source series fit the run",
     severity=N,
     rationale=(
@@ -109,6 +113,7 @@ def ambiguous(record: RunRecord) -> Iterator[Hit]:
 
 @run_rule(
     "source/unreadable",
+    checked="source",
     title="the source series cannot be read",
     severity=W,
     rationale=(
@@ -128,6 +133,7 @@ def unreadable(record: RunRecord) -> Iterator[Hit]:
 
 @run_rule(
     "source/geometry-differs",
+    checked="source",
     title="the run's slices do not line up with its source series",
     severity=W,
     rationale=(
@@ -153,6 +159,7 @@ def geometry_differs(record: RunRecord) -> Iterator[Hit]:
 
 @run_rule(
     "source/no-times",
+    checked="source",
     title="the source series carries no per-slice times",
     severity=N,
     rationale=(
@@ -176,6 +183,7 @@ def _where(corr: Correspondence, series: SeriesTiming) -> str:
 
 @run_rule(
     "source/times-absent",
+    checked="source",
     title="the sidecar has no SliceTiming but the source series records it",
     severity=W,
     rationale=(
@@ -222,6 +230,7 @@ def _compare(record: RunRecord) -> tuple[str, dict[str, object]] | None:
 
 @run_rule(
     "source/reversed",
+    checked="source",
     title="the sidecar's slice times run in the opposite direction to the source's",
     severity=E,
     rationale=(
@@ -241,6 +250,7 @@ def reversed_times(record: RunRecord) -> Iterator[Hit]:
 
 @run_rule(
     "source/times-differ",
+    checked="source",
     title="the sidecar's slice times disagree with the source series",
     severity=E,
     rationale=(
@@ -257,8 +267,9 @@ def times_differ(record: RunRecord) -> Iterator[Hit]:
         return
     facts = outcome[1]
     detail = facts.get("reason") or (
-        f"{facts['slices_differing']} slice(s) differ, by up to "
-        f"{facts['largest_difference_ms']:g} ms")
+        f"{count(_int(facts['slices_differing']), 'slice')} "
+        f"{agree(_int(facts['slices_differing']), 'differs')}, by up to "
+        f"{plain(facts['largest_difference_ms'])} ms")
     yield Hit(f"SliceTiming disagrees with the source series {facts['series']} ({detail})",
               field="SliceTiming", evidence=facts)
 
@@ -268,6 +279,7 @@ def times_differ(record: RunRecord) -> Iterator[Hit]:
 
 @run_rule(
     "source/tr-differs",
+    checked="source",
     title="the run's repetition time differs from the source series'",
     severity=E,
     rationale="RepetitionTime (0018,0080) of the source series is the scanner's TR.",
@@ -281,8 +293,8 @@ def tr_differs(record: RunRecord) -> Iterator[Hit]:
     if found is None or tr is None or found[1].repetition_time is None:
         return
     if abs(tr - found[1].repetition_time) > TR_TOLERANCE:
-        yield Hit(f"the repetition time is {tr:g} s, the source series {found[1].series} "
-                  f"says {found[1].repetition_time:g} s", field="RepetitionTime",
+        yield Hit(f"the repetition time is {plain(tr)} s, the source series {found[1].series} "
+                  f"says {plain(found[1].repetition_time)} s", field="RepetitionTime",
                   evidence={**_series_facts(found[1]), "run": tr,
                             "source": found[1].repetition_time})
 
@@ -298,6 +310,7 @@ def source_multiband(series: SeriesTiming) -> int | None:
 
 @run_rule(
     "source/multiband-differs",
+    checked="source",
     title="MultibandAccelerationFactor differs from the source's excitation groups",
     severity=W,
     rationale=(
@@ -313,7 +326,7 @@ def multiband_differs(record: RunRecord) -> Iterator[Hit]:
         return
     factor = source_multiband(found[1])
     if factor is not None and factor != declared:
-        yield Hit(f"MultibandAccelerationFactor is {declared:g}, the source series "
+        yield Hit(f"MultibandAccelerationFactor is {plain(declared)}, the source series "
                   f"{found[1].series} excites {factor} slices at a time",
                   field="MultibandAccelerationFactor",
                   evidence={**_series_facts(found[1]), "declared": declared, "source": factor})
@@ -321,6 +334,7 @@ def multiband_differs(record: RunRecord) -> Iterator[Hit]:
 
 reader_code(
     "source/bad-map",
+    checked="source",
     title="the --source-map file cannot be used",
     severity=E,
     rationale="The map must be a TSV with two columns per line: run path and series folder.",
@@ -328,3 +342,7 @@ reader_code(
 )
 
 __all__ = ["QUANTUM", "correspondence", "matched", "source_multiband", "source_times"]
+
+
+def _int(value: object) -> int:
+    return value if isinstance(value, int) else 0

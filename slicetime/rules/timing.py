@@ -6,12 +6,14 @@ from collections.abc import Iterator
 from typing import Any
 
 from slicetime.model import MAX_REPETITION_TIME, RunRecord, Severity
+from slicetime.numbers import plain
 from slicetime.rules.registry import Hit, run_rule
 from slicetime.schemes.resolve import (
     is_number,
     looks_like_milliseconds,
     positive_number,
 )
+from slicetime.words import count
 
 E, W, N = Severity.ERROR, Severity.WARNING, Severity.NOTE
 
@@ -199,7 +201,7 @@ def negative(record: RunRecord) -> Iterator[Hit]:
         idx = [i for i, t in enumerate(times) if t < 0]
         yield Hit(
             f"{len(idx)} SliceTiming entr{'y is' if len(idx) == 1 else 'ies are'} negative "
-            f"(smallest {min(times):g} s)",
+            f"(smallest {plain(min(times))} s)",
             "SliceTiming",
             {"indices": idx[:20], "min": min(times)},
         )
@@ -234,8 +236,8 @@ def units_ms(record: RunRecord) -> Iterator[Hit]:
     window, name = _window(record)
     if times and window and _looks_like_ms(times, window):
         yield Hit(
-            f"SliceTiming goes up to {max(times):g}, above {name} ({window:g} s); divided by "
-            f"1000 it fits"
+            f"SliceTiming goes up to {plain(max(times))}, above {name} ({plain(window)} s); "
+            f"divided by 1000 it fits"
             + (f" ({record.scheme.label} in seconds)" if record.scheme is not None else ""),
             "SliceTiming",
             {"max": max(times), "window": window, "window_from": name,
@@ -268,7 +270,7 @@ def exceeds_tr(record: RunRecord) -> Iterator[Hit]:
     if late:
         yield Hit(
             f"{len(late)} SliceTiming entr{'y is' if len(late) == 1 else 'ies are'} at or "
-            f"beyond RepetitionTime {tr:g} s (largest {max(times):g} s)",
+            f"beyond RepetitionTime {plain(tr)} s (largest {plain(max(times))} s)",
             "SliceTiming",
             {"indices": late[:20], "max": max(times), "RepetitionTime": tr},
         )
@@ -298,7 +300,7 @@ def exceeds_acquisition(record: RunRecord) -> Iterator[Hit]:
     if late:
         yield Hit(
             f"{len(late)} SliceTiming entr{'y is' if len(late) == 1 else 'ies are'} at or after "
-            f"the end of acquisition ({name} = {window:g} s)",
+            f"the end of acquisition ({name} = {plain(window)} s)",
             "SliceTiming",
             {"indices": late[:20], "max": max(times), "window": window, "window_from": name},
         )
@@ -323,7 +325,7 @@ def all_equal(record: RunRecord) -> Iterator[Hit]:
     if is_number(mb) and mb == scheme.n_slices:
         return
     yield Hit(
-        f"all {scheme.n_slices} slices are at {scheme.group_times[0]:g} s",
+        f"all {scheme.n_slices} slices are at {plain(scheme.group_times[0])} s",
         "SliceTiming",
         {"time": scheme.group_times[0], "slices": scheme.n_slices},
     )
@@ -426,7 +428,7 @@ def multiband_mismatch(record: RunRecord) -> Iterator[Hit]:
         return  # reported as timing/all-equal
     if int(mb) != mb or int(mb) != scheme.multiband_factor:
         yield Hit(
-            f"MultibandAccelerationFactor is {mb:g} but the slice times form groups of "
+            f"MultibandAccelerationFactor is {plain(mb)} but the slice times form groups of "
             f"{scheme.multiband_factor}",
             "MultibandAccelerationFactor",
             {"declared": mb, "from_times": scheme.multiband_factor},
@@ -477,7 +479,7 @@ def tr_missing(record: RunRecord) -> Iterator[Hit]:
     hint = None
     if record.header.repetition_time:
         ev["header_tr"] = record.header.repetition_time
-        hint = f"The header's pixdim[4] says {record.header.repetition_time:g} s."
+        hint = f"The header's pixdim[4] says {plain(record.header.repetition_time)} s."
     yield Hit(
         "neither RepetitionTime nor VolumeTiming is given by any applicable sidecar",
         "RepetitionTime", ev, hint=hint,
@@ -555,8 +557,8 @@ def vt_order(record: RunRecord) -> Iterator[Hit]:
         )
     if record.header is not None and len(vt) != record.header.n_volumes:
         yield Hit(
-            f"VolumeTiming has {len(vt)} entries but the image has "
-            f"{record.header.n_volumes} volumes",
+            f"VolumeTiming has {count(len(vt), 'entry')} but the image has "
+            f"{count(record.header.n_volumes, 'volume')}",
             "VolumeTiming", {"entries": len(vt), "volumes": record.header.n_volumes},
         )
 
@@ -602,12 +604,12 @@ def deprecated_acq(record: RunRecord) -> Iterator[Hit]:
     "time and correction would be wrong by a factor of 1000.)",
     fix="Divide RepetitionTime by 1000.",
     standard="BIDS rules.checks.func.RepetitionTimeGreaterThan",
-    subsumes=("dataset/outlier-tr", "policy/tr-mismatch", "header/tr-mismatch"),
+    subsumes=("dataset/outlier-tr", "policy/tr-mismatch", "header/tr-disagrees"),
 )
 def tr_units(record: RunRecord) -> Iterator[Hit]:
     tr = positive_number(record.metadata.get("RepetitionTime"))
     if tr is not None and tr > MAX_REPETITION_TIME:
-        yield Hit(f"RepetitionTime is {tr:g}; {tr / 1000:g} s is far more likely",
+        yield Hit(f"RepetitionTime is {plain(tr)}; {plain(tr / 1000)} s is far more likely",
                   "RepetitionTime", {"value": tr, "as_seconds": tr / 1000})
 
 

@@ -26,6 +26,7 @@ _HOW = (
 
 reader_code(
     "verify/contradicted",
+    checked="data",
     title="the image data fit another slice order clearly better than the claimed one",
     severity=Severity.WARNING,
     rationale=_HOW + (
@@ -42,6 +43,7 @@ reader_code(
 )
 reader_code(
     "verify/supported",
+    checked="data",
     title="the image data support the claimed slice order",
     severity=Severity.NOTE,
     rationale=_HOW + (
@@ -64,6 +66,7 @@ reader_code(
 )
 reader_code(
     "verify/undecidable",
+    checked="data",
     title="the image data cannot tell whether the claimed slice order is right",
     severity=Severity.NOTE,
     rationale=_HOW + (

@@ -16,6 +16,7 @@ from collections.abc import Sequence
 from dataclasses import dataclass
 
 from slicetime.model_source import SeriesTiming
+from slicetime.numbers import plain
 
 #: |cos| between the run's slice axis and the series' normal for "parallel"
 PARALLEL = 0.99
@@ -112,7 +113,7 @@ def correspond(
         offset = abs(series.positions[j] - along)
         if offset > tolerance:
             return Mismatch(f"run slice {k} lies {offset:.1f} mm from the nearest source slice "
-                            f"(more than half the {spacing:g} mm spacing)")
+                            f"(more than half the {plain(spacing)} mm spacing)")
         index.append(j)
         offsets.append(offset)
     if len(set(index)) != len(index):

@@ -11,7 +11,8 @@ Order, ``ascending`` and ``start`` are read along the slice encoding
 direction, in the ``SliceTiming`` list's own order: with direction ``-`` and an
 ascending order, ``SliceTiming[0]`` (the highest array index) is acquired
 first. Group ``k`` (``k = 0 .. Nb-1`` in acquisition order) is acquired at
-``k * TA / Nb``, where ``TA`` is the acquisition time (the repetition time when
+``k * A / Nb``, where ``A`` is the active part of the TR (``active_time``: the
+repetition time minus the BIDS ``DelayTime``; the repetition time when
 not given) and ``Nb = n_slices / multiband``.
 """
 
@@ -62,7 +63,10 @@ class Protocol:
     start: int | Literal["auto"] | None = None
     multiband: int = 1
     repetition_time: float | None = None
-    acquisition_time: float | None = None
+    #: the active part of the TR, over which the groups are spread (RepetitionTime minus
+    #: the BIDS DelayTime, the silent part); None: the whole TR. Not the time from the
+    #: first to the last slice, which is one group spacing shorter.
+    active_time: float | None = None
     direction: Literal["+", "-"] = "+"
     decimals: int | None = None
 
@@ -73,9 +77,10 @@ class Protocol:
 
     @property
     def window(self) -> float:
-        """The time over which the groups are spread (TA, else TR)."""
-        if self.acquisition_time is not None:
-            return float(self.acquisition_time)
+        """The time over which the groups are spread: the active part of the TR
+        (``active_time``, i.e. ``RepetitionTime - DelayTime``), else the TR."""
+        if self.active_time is not None:
+            return float(self.active_time)
         assert self.repetition_time is not None
         return float(self.repetition_time)
 
@@ -138,17 +143,17 @@ def validate_protocol(p: Protocol) -> None:
                 f"start must be {allowed} for {what} with {n_groups} excitation groups "
                 f"(got {p.start})"
             )
-    if p.repetition_time is None and p.acquisition_time is None:
-        raise ValueError("repetition_time or acquisition_time must be given")
+    if p.repetition_time is None and p.active_time is None:
+        raise ValueError("repetition_time or active_time must be given")
     _positive_time("repetition_time", p.repetition_time)
-    _positive_time("acquisition_time", p.acquisition_time)
+    _positive_time("active_time", p.active_time)
     if (
         p.repetition_time is not None
-        and p.acquisition_time is not None
-        and p.acquisition_time > p.repetition_time + 1e-9
+        and p.active_time is not None
+        and p.active_time > p.repetition_time + 1e-9
     ):
         raise ValueError(
-            f"acquisition_time ({p.acquisition_time}) must not exceed "
+            f"active_time ({p.active_time}) must not exceed "
             f"repetition_time ({p.repetition_time})"
         )
     if p.decimals is not None and (not _is_int(p.decimals) or p.decimals < 0):
@@ -221,6 +226,8 @@ def array_times(p: Protocol) -> tuple[float, ...]:
         t = k * spacing
         if p.decimals is not None:
             t = round(t, p.decimals) + 0.0
+        else:  # no binary noise (3 * 0.15 is 0.44999999999999996): 12 significant digits
+            t = float(f"{t:.12g}") + 0.0
         for index in group:
             times[index] = t
     return tuple(times)

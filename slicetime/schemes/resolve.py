@@ -26,6 +26,7 @@ from slicetime.model import (
     TimingProblem,
 )
 from slicetime.schemes.niftcodes import header_slice_times
+from slicetime.words import agree, count
 
 SLICE_ENCODING_VALUES = ("i", "j", "k", "i-", "j-", "k-")
 
@@ -98,8 +99,9 @@ def slice_timing_problems(value: Any, expected_count: int | None) -> list[Timing
         problems.append(
             TimingProblem(
                 "timing/bad-entry",
-                f"SliceTiming has {len(bad)} entr{'y' if len(bad) == 1 else 'ies'} that are not "
-                f"finite numbers (first at index {bad[0]})",
+                f"SliceTiming has {count(len(bad), 'entry')} that {agree(len(bad), 'is')} not "
+                f"{'a finite number' if len(bad) == 1 else 'finite numbers'} (first at index "
+                f"{bad[0]})",
                 {"indices": bad[:20], "values": shown},
             )
         )
@@ -107,8 +109,8 @@ def slice_timing_problems(value: Any, expected_count: int | None) -> list[Timing
         problems.append(
             TimingProblem(
                 "timing/count-mismatch",
-                f"SliceTiming has {len(value)} entries but the image has {expected_count} "
-                "slices along the slice axis",
+                f"SliceTiming has {count(len(value), 'entry')} but the image has "
+                f"{count(expected_count, 'slice')} along the slice axis",
                 {"entries": len(value), "slices": expected_count},
             )
         )

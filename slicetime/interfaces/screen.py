@@ -1,0 +1,195 @@
+"""Fitting text to the terminal: the width to use, paths shortened in the middle,
+words wrapped with their indentation kept, and how a finding is laid out.
+
+Width (documented in the README, "Screens"): the ``COLUMNS`` environment
+variable when it holds a whole number (at least 40), whether or not the output
+is a terminal; else the terminal's width when the output is a terminal; else
+no limit: piped or redirected output keeps every finding on one line, so
+``grep`` finds its code, message and severity together.
+
+Every function here is pure (strings in, strings out) except :func:`width_for`.
+"""
+
+from __future__ import annotations
+
+import os
+import re
+import shutil
+from collections.abc import Callable, Sequence
+from typing import Any
+
+#: the narrowest width honoured; below it lines are cut at 40 columns
+MIN_WIDTH = 40
+#: the severity words, padded to one column so codes line up
+SEVERITY_WORD = {"error": "error", "warning": "warning", "note": "note"}
+SEVERITY_PAD = max(len(w) for w in SEVERITY_WORD.values())
+#: indentation of a finding's continuation lines (message, place, hint)
+FINDING_INDENT = 4
+
+Segment = tuple[str, str | None]  # text, style name (None: plain)
+Line = list[Segment]
+
+
+def width_for(stream: Any) -> int | None:
+    """The width to fit ``stream``'s lines to, or None for no limit (see the module)."""
+    text = os.environ.get("COLUMNS", "").strip()
+    if text.isdigit() and int(text) > 0:
+        return max(int(text), MIN_WIDTH)
+    if bool(getattr(stream, "isatty", lambda: False)()):
+        return max(shutil.get_terminal_size((100, 24)).columns, MIN_WIDTH)
+    return None
+
+
+def ellipsis(unicode: bool = True) -> str:
+    return "…" if unicode else "..."
+
+
+def shorten_path(path: str, room: int | None, *, unicode: bool = True) -> str:
+    """``path`` shortened in the middle to at most ``room`` characters: the first
+    folder and the file name stay whole while they fit (``sub-01/…/x_bold.nii.gz``);
+    only a file name longer than the room loses its own middle."""
+    if room is None or len(path) <= room:
+        return path
+    dots = ellipsis(unicode)
+    head, _, name = path.rpartition("/")
+    if head:
+        first = head.split("/", 1)[0]
+        for lead in (f"{first}/{dots}/", f"{dots}/"):
+            if len(lead) + len(name) <= room:
+                # keep as much of the folders as fits, from the front
+                keep = room - len(name) - len(dots) - 1
+                if keep >= len(first) + 1:
+                    return f"{head[:keep]}{dots}/{name}"
+                return lead + name
+    if room <= len(dots) + 2:
+        return path[:max(room, 1)]
+    left = (room - len(dots)) // 2
+    right = room - len(dots) - left
+    return path[:left] + dots + path[len(path) - right:]
+
+
+_UNIT = re.compile(r"^(ms|s|mm|µs|us|Hz|%|×\d+)[),.;:]*$")
+
+
+def _words(paragraph: str) -> list[str]:
+    """The paragraph's words, a number kept with its unit (``2.5 s``: one word)."""
+    words: list[str] = []
+    for word in paragraph.split(" "):
+        if words and _UNIT.match(word) and words[-1][-1:].isdigit():
+            words[-1] = f"{words[-1]} {word}"
+        else:
+            words.append(word)
+    return words
+
+
+def wrap_words(text: str, width: int | None, first: int = 0, rest: int = 0) -> list[str]:
+    """``text`` broken at spaces into lines of at most ``width`` characters, the first
+    line already ``first`` characters in, the others indented by ``rest`` (returned
+    without that indentation). A word longer than a line is cut only when it alone
+    exceeds the line (a path-like word is shortened in the middle instead).
+    Line breaks in ``text`` are kept."""
+    if width is None:
+        return text.split("\n")
+    lines: list[str] = []
+    for paragraph in text.split("\n"):
+        current = ""
+        used = first if not lines else rest
+        for word in _words(paragraph):
+            room = width - used
+            candidate = f"{current} {word}" if current else word
+            if len(candidate) <= room or (not current and len(word) <= room):
+                current = candidate
+                continue
+            if current:
+                lines.append(current)
+                used = rest
+                room = width - used
+            if len(word) > room:
+                word = shorten_path(word, max(room, 8)) if "/" in word else word[:max(room, 8)]
+            current = word
+        lines.append(current)
+    return lines
+
+
+def wrap_items(items: Sequence[str], width: int | None, first: int = 0, rest: int = 0,
+               sep: str = "  ") -> list[str]:
+    """Like :func:`wrap_words`, but each item (``(reference 0.95 s)``) stays whole on
+    one line unless it alone is wider than a line."""
+    if width is None:
+        return [sep.join(items)]
+    lines: list[str] = []
+    current = ""
+    for item in items:
+        used = first if not lines else rest
+        candidate = f"{current}{sep}{item}" if current else item
+        if len(candidate) <= width - used:
+            current = candidate
+            continue
+        if current:
+            lines.append(current)
+            used = rest
+        if len(item) > width - used:
+            parts = wrap_words(item, width, first=used, rest=rest)
+            lines.extend(parts[:-1])
+            current = parts[-1]
+        else:
+            current = item
+    lines.append(current)
+    return lines
+
+
+def paint_lines(lines: Sequence[Line], paint: Callable[[str, str | None], str]) -> str:
+    """Lines of segments as text, each segment painted with its style."""
+    return "\n".join("".join(paint(text, style) for text, style in line) for line in lines)
+
+
+def finding_lines(severity: str, code: str, message: str, where: str | None,
+                  hint: str | None, width: int | None, *, indent: str = "  ",
+                  unicode: bool = True) -> list[Line]:
+    """One finding: ``severity  code  message`` (wrapped), ``at file › field``
+    (the path shortened in the middle), ``→ hint`` (wrapped), continuation lines
+    indented under the code. Without a width: one line per part, never wrapped."""
+    word = SEVERITY_WORD[severity].ljust(SEVERITY_PAD)
+    lead = f"{indent}{word}  "
+    pad = " " * (len(indent) + FINDING_INDENT)
+    out: list[Line] = []
+    head = f"{code}  {message}" if message else code
+    body = wrap_words(head, width, first=len(lead), rest=len(pad))
+    first = body[0]
+    if first.startswith(code):
+        out.append([(indent, None), (word, severity), ("  ", None), (code, "bold"),
+                    (first[len(code):], None)])
+    else:  # the code alone was too wide for the first line
+        out.append([(indent, None), (word, severity), ("  ", None), (first, "bold")])
+    out.extend([(pad + line, None)] for line in body[1:])
+    if where:
+        arrow_at = "at "
+        room = None if width is None else width - len(pad) - len(arrow_at)
+        file, sep, field = where.partition(" › ")
+        if room is not None and len(where) > room:
+            keep = room - (len(sep) + len(field) if sep else 0)
+            where = shorten_path(file, max(keep, 12), unicode=unicode) + (
+                sep + field if sep else "")
+            if len(where) > room:
+                where = shorten_path(where, room, unicode=unicode)
+        out.append([(f"{pad}{arrow_at}{where}", "dim")])
+    if hint:
+        arrow = "→ " if unicode else "-> "
+        lines = wrap_words(hint, width, first=len(pad) + len(arrow),
+                           rest=len(pad) + len(arrow))
+        out.append([(f"{pad}{arrow}{lines[0]}", "italic")])
+        out.extend([(f"{pad}{' ' * len(arrow)}{line}", "italic")] for line in lines[1:])
+    return out
+
+
+def strip_path_prefix(message: str, *paths: str | None) -> str:
+    """``message`` without a leading ``PATH: `` that repeats a path the line already
+    shows (readers word their errors for stderr, where the path is needed)."""
+    for path in paths:
+        if path and message.startswith(path + ": ") and len(message) > len(path) + 2:
+            return message[len(path) + 2:]
+    return message
+
+
+__all__ = ["FINDING_INDENT", "MIN_WIDTH", "SEVERITY_WORD", "finding_lines", "paint_lines",
+           "shorten_path", "strip_path_prefix", "width_for", "wrap_words"]

@@ -1,0 +1,163 @@
+"""Every JSON the tool writes validates against its shipped JSON Schema, and the
+schemas are strict: a key they do not document fails.
+
+Validation: jsonschema's Draft 2020-12 validator (the reference implementation
+of the JSON Schema specification) with the schemas in slicetime/data.
+"""
+
+from __future__ import annotations
+
+import copy
+import json
+import shutil
+from pathlib import Path
+from typing import Any
+
+import jsonschema
+import pytest
+from click.testing import CliRunner
+
+from slicetime.interfaces.cli import cli
+from slicetime.interfaces.report_json import SCHEMAS, load_schema, schema_validator
+from slicetime.pipelines.demo import build_demo_dataset
+
+MS_RUN = "sub-01/ses-1/func/sub-01_ses-1_task-rest_bold.nii.gz"
+PLAIN_RUN = "sub-01/ses-1/func/sub-01_ses-1_task-hum_bold.nii.gz"
+
+
+def run_cli(*args: object) -> tuple[int, str]:
+    result = CliRunner().invoke(cli, [str(a) for a in args], catch_exceptions=False)
+    return result.exit_code, result.stdout
+
+
+def valid(name: str, obj: Any, pointer: str = "") -> None:
+    errors = sorted(schema_validator(name, pointer).iter_errors(obj), key=str)
+    assert not errors, [f"{list(e.absolute_path)}: {e.message}" for e in errors[:5]]
+
+
+def invalid(name: str, obj: Any, pointer: str = "") -> bool:
+    return not schema_validator(name, pointer).is_valid(obj)
+
+
+@pytest.fixture(scope="module")
+def study(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    root = tmp_path_factory.mktemp("formats") / "quiet-rooms"
+    build_demo_dataset(root)
+    return root
+
+
+@pytest.fixture(scope="module")
+def repaired(study: Path, tmp_path_factory: pytest.TempPathFactory) -> dict[str, Path]:
+    """A copy of the study with a saved plan, the plan applied (journal) and corrected."""
+    work = tmp_path_factory.mktemp("repaired")
+    copy_root = work / "ds"
+    shutil.copytree(study, copy_root)
+    plan = work / "plan.json"
+    assert run_cli("fix", copy_root, "--plan", plan)[0] == 1
+    backups = work / "backups"
+    code, _ = run_cli("fix", "--apply", "--plan", plan, "--backup-dir", backups)
+    assert code == 0
+    out = work / "out"
+    _, text = run_cli("correct", copy_root, "--out", out, "--format", "json")
+    (work / "correct.json").write_text(text)
+    return {"root": copy_root, "plan": plan, "journal": backups / "journal.json", "out": out,
+            "correct": work / "correct.json"}
+
+
+def test_every_shipped_schema_is_a_valid_draft_2020_12_schema() -> None:
+    for file in SCHEMAS.values():
+        jsonschema.Draft202012Validator.check_schema(load_schema(file))  # the meta-schema
+
+
+def test_audit_json_and_jsonl_validate_and_undocumented_keys_fail(study: Path) -> None:
+    _, text = run_cli("audit", study, "--format", "json")
+    report = json.loads(text)
+    valid("report", report)
+    scheme = next(r["scheme"] for r in report["runs"] if r["scheme"])
+    assert "residue_order" in scheme  # emitted, so documented
+    # strict: one undocumented key anywhere fails (top, run, scheme, finding, summary)
+    for where in ("top", "run", "scheme", "finding", "summary"):
+        broken = copy.deepcopy(report)
+        target = {"top": broken, "run": broken["runs"][0],
+                  "scheme": next(r["scheme"] for r in broken["runs"] if r["scheme"]),
+                  "finding": next(f for r in broken["runs"] for f in r["findings"]),
+                  "summary": broken["summary"]}[where]
+        target["undocumented"] = 1
+        assert invalid("report", broken), where
+    # every finding carries its grounds, and the former key with the same values
+    for finding in (f for r in report["runs"] for f in r["findings"]):
+        assert finding["grounds"] == finding["evidence"]
+    assert len(report["dataset_names"]) == len(report["roots"]) == 1
+    _, lines = run_cli("audit", study, "--format", "jsonl")
+    for line in lines.splitlines():
+        valid("report-lines", json.loads(line))
+    first = json.loads(lines.splitlines()[0])
+    first["report"]["undocumented"] = 1
+    assert invalid("report-lines", first)
+
+
+def test_show_json_of_runs_and_of_a_dicom_series_validate(study: Path, tmp_path: Path) -> None:
+    for rel in (MS_RUN, PLAIN_RUN):
+        _, text = run_cli("show", study / rel, "--json")
+        obj = json.loads(text)
+        valid("show", obj)
+        obj["undocumented"] = 1
+        assert invalid("show", obj)
+    from tests.test_dicom_source import resting_tree
+
+    root, run, _ = resting_tree(tmp_path, None)
+    _, series = run_cli("show", root / "sourcedata/sub-01/rest", "--json")
+    valid("show", json.loads(series))
+    _, with_source = run_cli("show", run, "--json")
+    obj = json.loads(with_source)
+    assert obj["source"]["series"]["layout"] == "mosaic"
+    valid("show", obj)
+    obj["source"]["undocumented"] = 1
+    assert invalid("show", obj)
+
+
+def test_correct_plan_journal_provenance_and_sidecar_validate(repaired: dict[str, Path]) -> None:
+    valid("fix-plan", json.loads(repaired["plan"].read_text()))
+    journal = json.loads(repaired["journal"].read_text())
+    valid("fix-journal", journal)
+    assert all("sha256_after" in e for e in journal["entries"])  # the plan's spelling
+    valid("correct", json.loads(repaired["correct"].read_text()))
+    provenance = json.loads((repaired["out"] / "slicetime-provenance.json").read_text())
+    valid("provenance", provenance)
+    assert provenance["Runs"]
+    for output in provenance["Runs"]:
+        sidecar = repaired["out"] / output.replace(".nii.gz", ".json")
+        record = json.loads(sidecar.read_text())["SliceTimeAlignment"]
+        valid("provenance", record, "#/$defs/alignment_strict")
+        record["Undocumented"] = 1
+        assert invalid("provenance", record, "#/$defs/alignment_strict")
+
+
+def test_verify_json_validates(study: Path) -> None:
+    code, text = run_cli("verify", study / PLAIN_RUN, "--format", "json")
+    assert code in (0, 1)
+    report = json.loads(text)
+    valid("verify", report)
+    report["runs"][0]["undocumented"] = 1
+    assert invalid("verify", report)
+
+
+def test_a_journal_written_with_the_former_key_names_still_undoes(
+        repaired: dict[str, Path], tmp_path: Path) -> None:
+    # journals before this release named the hashes before_sha256/after_sha256
+    work = tmp_path / "again"
+    shutil.copytree(repaired["root"].parent / "ds", work / "ds")
+    shutil.copytree(repaired["journal"].parent, work / "backups")
+    journal = work / "backups" / "journal.json"
+    content = json.loads(journal.read_text())
+    content["roots"] = [str(work / "ds")]
+    for entry in content["entries"]:
+        entry["root"] = str(work / "ds")
+        entry["before_sha256"] = entry.pop("sha256_before")
+        entry["after_sha256"] = entry.pop("sha256_after")
+    journal.write_text(json.dumps(content))
+    changed = work / "ds" / content["entries"][0]["file"]
+    before = changed.read_bytes()
+    code, out = run_cli("fix", "--undo", journal)
+    assert code == 0, out
+    assert "restored" in out and changed.read_bytes() != before
