@@ -225,7 +225,7 @@ def test_output_sidecar_and_dataset_description(dataset: Path, tmp_path: Path) -
     assert sidecar["Sources"] == [f"bids:raw:{REL}"]
     record = sidecar["SliceTimeAlignment"]
     assert record["Settings"]["Method"] == "sinc"
-    assert record["Settings"]["Parameters"]["window"] == "hann"
+    assert record["Settings"]["Parameters"]["Window"] == "hann"
     assert record["OriginalSliceTiming"] == pytest.approx(times)
     image_hash = hashlib.sha256((dataset / REL).read_bytes()).hexdigest()
     assert record["Inputs"]["Image"]["SHA256"] == image_hash
@@ -600,3 +600,30 @@ def test_the_lab_policy_decides_what_blocks(dataset: Path, tmp_path: Path) -> No
     result = run_cli("correct", dataset, "--out", out, "--policy", policy)
     assert result.exit_code == 0, result.output
     assert "corrected despite" not in result.output
+
+
+def test_outputs_written_with_the_former_key_spelling_are_still_up_to_date(
+    tmp_path: Path,
+) -> None:
+    # provenance keys are PascalCase now (like the BIDS fields beside them); an output
+    # recorded with the former lower-case Parameters/Reference keys is not redone
+    from slicetime.pipelines import provenance
+
+    assert provenance.pascal_keys({"half_width": 8, "kind": "middle"}) == \
+        {"HalfWidth": 8, "Kind": "middle"}
+    root = tmp_path / "ds"
+    write_description(root)
+    build_run(root, REL, interleaved(8))
+    out = tmp_path / "out"
+    assert run_cli("correct", root, "--out", out).exit_code == 0
+    sidecar = next(out.rglob("*_desc-timealigned_bold.json"))
+    data = json.loads(sidecar.read_text())
+    record = data["SliceTimeAlignment"]
+    assert record["Tool"] == {"Name": "slicetime", "Version": record["Settings"]["Version"]}
+    assert record["SliceEncodingDirection"] == "k"
+    settings = record["Settings"]
+    settings["Parameters"] = {k[0].lower() + k[1:]: v for k, v in settings["Parameters"].items()}
+    settings["Reference"] = {k.lower(): v for k, v in settings["Reference"].items()}
+    sidecar.write_text(json.dumps(data, indent=2))
+    again = run_cli("correct", root, "--out", out, "--format", "json")
+    assert again.exit_code == 0 and json.loads(again.stdout)["runs"][0]["status"] == "up-to-date"

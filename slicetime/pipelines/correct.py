@@ -100,6 +100,7 @@ from slicetime.pipelines.provenance import (
     hash_inputs,
     json_safe,
     output_sidecar,
+    pascal_keys,
     provenance_entry,
     read_json_object,
     recorded_input,
@@ -152,8 +153,8 @@ class CorrectOptions:
         """What must match for an earlier output to be reused."""
         return {
             "Method": engine.name,
-            "Parameters": dict(engine.parameters),
-            "Reference": self.reference.to_json(),
+            "Parameters": pascal_keys(engine.parameters),
+            "Reference": pascal_keys(self.reference.to_json()),
             "KeepDataType": self.keep_dtype,
             "Desc": self.desc,
             "Version": __version__,

@@ -12,7 +12,7 @@ from __future__ import annotations
 import json
 import os
 import re
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from pathlib import Path
 from typing import Any, Protocol
 
@@ -97,6 +97,26 @@ def hash_inputs(record: RunRecord, image_sha: str | None) -> dict[str, Any]:
     return json_safe({"Dataset": dataset_uri(root), "Image": image, "Sidecars": sidecars})
 
 
+def pascal_keys(mapping: Mapping[str, Any]) -> dict[str, Any]:
+    """Our own keys in the files we write are PascalCase like the BIDS fields beside them
+    (``half_width`` → ``HalfWidth``); values are kept."""
+    return {"".join(part[:1].upper() + part[1:] for part in key.split("_")): value
+            for key, value in mapping.items()}
+
+
+def _current_settings(recorded: Any) -> Any:
+    """Settings recorded by an earlier release (lower-case ``Parameters`` and
+    ``Reference`` keys), spelled as they are written now, so the rename alone never
+    makes an output look out of date."""
+    if not isinstance(recorded, dict):
+        return recorded
+    current = dict(recorded)
+    for key in ("Parameters", "Reference"):
+        if isinstance(current.get(key), dict):
+            current[key] = pascal_keys(current[key])
+    return current
+
+
 def up_to_date(
     image_out: Path, sidecar_out: Path, settings: dict[str, Any], inputs: dict[str, Any]
 ) -> bool:
@@ -107,7 +127,8 @@ def up_to_date(
         return False
     if not isinstance(recorded, dict):
         return False
-    if recorded.get("Settings") != settings or recorded.get("Inputs") != inputs:
+    if _current_settings(recorded.get("Settings")) != settings \
+            or recorded.get("Inputs") != inputs:
         return False
     output = recorded.get("Output", {})
     if not image_out.is_file() or not isinstance(output, dict):
@@ -134,10 +155,11 @@ def output_sidecar(
     metadata["StartTime"] = round(plan.reference, 6)
     metadata["Sources"] = [f"bids:{dataset_name}:{record.path}"]
     metadata[PROVENANCE_KEY] = {
-        "Tool": "slicetime",
+        "Tool": {"Name": "slicetime", "Version": __version__},
         "Settings": settings,
         "ReferenceTime": round(plan.reference, 6),
         "OriginalSliceTiming": [round(t, 6) for t in schedule.sidecar_order()],
+        "SliceEncodingDirection": schedule.axis + ("-" if schedule.direction == "-" else ""),
         "SliceAxis": schedule.axis,
         "SliceDirection": schedule.direction,
         "TimingOrigin": record.timing_origin,
