@@ -808,23 +808,6 @@ class _ChunkJob:
         return _correct_chunk(items, self.options)
 
 
-__all__ = [
-    "DEFAULT_DESC",
-    "PROVENANCE_FILE",
-    "PROVENANCE_KEY",
-    "CorrectInterrupted",
-    "CorrectOptions",
-    "CorrectResult",
-    "CorrectionError",
-    "RunOutcome",
-    "check_output_location",
-    "correct_paths",
-    "correct_run",
-    "output_name",
-    "parse_size",
-    "remove_stale_temporaries",
-]
-
 
 def _describe(
     out: Path, roots: Sequence[str], links: dict[str, str], options: CorrectOptions
