@@ -13,6 +13,7 @@ rounded and written (model layer: no I/O, used by every layer above).
 
 from __future__ import annotations
 
+import functools
 import math
 from collections.abc import Mapping
 from typing import Any
@@ -39,7 +40,16 @@ def json_time(value: float) -> float:
 
 
 def json_times(values: Any) -> list[float]:
+    """Times for JSON (:func:`json_time` each). Runs of a dataset share a few schedules,
+    so the rounding of a tuple is remembered (a new list is returned every time)."""
+    if isinstance(values, tuple):
+        return list(_json_times_of(values))
     return [json_time(float(v)) for v in values]
+
+
+@functools.lru_cache(maxsize=1024)
+def _json_times_of(values: tuple[float, ...]) -> tuple[float, ...]:
+    return tuple(json_time(float(v)) for v in values)
 
 
 def json_float(value: float) -> float:
