@@ -161,3 +161,45 @@ def test_a_journal_written_with_the_former_key_names_still_undoes(
     code, out = run_cli("fix", "--undo", journal)
     assert code == 0, out
     assert "restored" in out and changed.read_bytes() != before
+
+
+def test_correct_and_verify_documents_are_built_by_the_interface_layer() -> None:
+    # report_json.correct_object / verify_object: the documents correct --format json and
+    # verify --format json print, built from pipeline results (every status, a blocking
+    # finding, float noise, an unreadable file) and valid against the shipped schemas
+    from slicetime.codes import make_finding
+    from slicetime.interfaces.report_json import correct_object, verify_object
+    from slicetime.pipelines.correct import CorrectResult, RunOutcome
+    from slicetime.pipelines.verify import VerifyOutcome
+
+    blocking = make_finding("correct/implausible-timing", "a.nii.gz: TR 2000 s",
+                            file="a.nii.gz", field="RepetitionTime")
+    result = CorrectResult("out", [
+        RunOutcome("a.nii.gz", "/ds", "refused", reason="a.nii.gz: TR 2000 s",
+                   blocking=[blocking]),
+        RunOutcome("b.nii.gz", "/ds", "corrected", output="b_desc-x_bold.nii.gz",
+                   reference=0.1 + 0.2, seconds=1.23456, warnings=["clipped"]),
+        RunOutcome("c.nii.gz", "/ds", "up-to-date", output="c_desc-x_bold.nii.gz"),
+        RunOutcome("d.nii.gz", "/ds", "failed", reason="d.nii.gz: cannot write"),
+    ])
+    document = correct_object(result)
+    valid("correct", document)
+    assert document["summary"] == {"corrected": 1, "up-to-date": 1, "refused": 1, "failed": 1}
+    runs = {r["path"]: r for r in document["runs"]}
+    assert runs["b.nii.gz"]["reference_time"] == 0.3  # no float noise in the output
+    assert runs["b.nii.gz"]["seconds"] == 1.235
+    assert runs["a.nii.gz"]["blocking_findings"][0]["severity"] == "error"
+    runs["a.nii.gz"]["undocumented"] = 1
+    assert invalid("correct", document)
+
+    verdict = make_finding("verify/undecidable", "e.nii.gz: fewer than 30 volumes",
+                           file="e.nii.gz", field="SliceTiming")
+    units = make_finding("timing/units-ms", "e.nii.gz: SliceTiming in milliseconds",
+                         file="e.json", field="SliceTiming")
+    report = verify_object([VerifyOutcome("e.nii.gz", None, verdict, (units,))],
+                           [{"file": "f.nii.gz", "code": "file/not-nifti", "message": "m"}])
+    valid("verify", report)
+    assert report["summary"] == {"supported": 0, "consistent": 0, "contradicted": 0,
+                                 "undecidable": 1}
+    assert report["runs"][0]["verdict"] == "undecidable"
+    assert report["runs"][0]["units"][0]["code"] == "timing/units-ms"

@@ -3,8 +3,8 @@ own layer or the layers below it.
 
 Layers, bottom up (DEVELOPERS.md, Architecture map):
 
-1. model: ``slicetime.model``, ``slicetime.model_source``, ``slicetime.numbers``,
-   ``slicetime.words``, and the lab policy's value
+1. model: ``slicetime.model``, ``slicetime.model_source``, ``slicetime.codes``,
+   ``slicetime.numbers``, ``slicetime.words``, and the lab policy's value
    types and patterns (``slicetime.policy.model``, ``slicetime.policy.patterns``);
 2. schemes: ``slicetime.schemes``;
 3. readers: ``slicetime.readers``, and loading the lab policy (``slicetime.policy.loading``);
@@ -36,6 +36,7 @@ LAYERS: list[tuple[str, int]] = [
     ("slicetime.policy.checks", 4),
     ("slicetime.policy", 1),  # the package's __init__ imports nothing
     ("slicetime.model_source", 1),
+    ("slicetime.codes", 1),  # the catalogue of finding codes and make_finding: pure
     ("slicetime.model", 1),
     ("slicetime.numbers", 1),  # how numbers are rounded and written: pure
     ("slicetime.words", 1),  # plurals and agreement: pure

@@ -55,6 +55,89 @@ def _engine_names() -> Sequence[str]:
     return list(ENGINES)
 
 
+def _report_formats() -> Sequence[str]:
+    from slicetime.interfaces.report_stream import WRITERS
+
+    return list(WRITERS)
+
+
+# --------------------------------------------------------------------------- option groups
+# Options several commands share, declared once: a command applies the group where its
+# options stood (click lists options in decorator order), and keeps their names.
+
+
+def _options(*decorators: Callable[[F], F]) -> Callable[[F], F]:
+    """Several click options as one decorator, listed in the order given."""
+
+    def apply(fn: F) -> F:
+        for decorate in reversed(decorators):
+            fn = decorate(fn)
+        return fn
+
+    return apply
+
+
+def walking_options(verb: str) -> Callable[[F], F]:
+    """``--include-derivatives``, ``--include-sourcedata``, ``--include-hidden``: the
+    parts of a dataset the walk leaves out by default. ``verb``: what the command does
+    to the runs found there ("audit", "correct")."""
+    return _options(
+        click.option("--include-derivatives", is_flag=True,
+                     help=f"Also {verb} runs in derivatives/."),
+        click.option("--include-sourcedata", is_flag=True,
+                     help=f"Also {verb} runs in sourcedata/."),
+        click.option("--include-hidden", is_flag=True,
+                     help=f"Also {verb} hidden folders and files."),
+    )
+
+
+#: what ``--jobs`` defaults to (``pipelines.executor.make_executor``): header-only work
+#: (audit, fix) and work that reads image data (correct)
+JOBS_LIGHT = "the CPUs available; one on machines with 2 or fewer"
+JOBS_HEAVY = "the CPUs available; memory grows with each"
+
+
+def executor_options(*, default: str, shared: str = "Files") -> Callable[[F], F]:
+    """``--jobs`` and ``--scheduler``: where the runs are processed. ``default`` names
+    the command's default for ``--jobs`` (:data:`JOBS_LIGHT`, :data:`JOBS_HEAVY`);
+    ``shared``: what the Dask workers must see."""
+    return _options(
+        click.option("--jobs", type=click.IntRange(min=1), default=None,
+                     help=f"Local worker processes (default: {default})."),
+        click.option("--scheduler", metavar="ADDRESS",
+                     help="Run on a Dask cluster: the address of its scheduler "
+                     f"(tcp://host:8786). {shared} must be on a file system the workers "
+                     "share."),
+    )
+
+
+def policy_option(purpose: str = "") -> Callable[[F], F]:
+    """``--policy FILE``; ``purpose``: what this command uses the policy for."""
+    return click.option(
+        "--policy", "policy_file", type=click.Path(path_type=Path, dir_okay=False),
+        help="Lab policy (TOML). Default: slicetime-policy.toml at the dataset root."
+        + (f" {purpose}" if purpose else ""))
+
+
+def source_options(*, switch: bool = True, purpose: str = "") -> Callable[[F], F]:
+    """``--source/--no-source`` (when ``switch``) and ``--source-map``: the cross-check
+    with the DICOM series under sourcedata/ (:func:`_source_options` reads them)."""
+    source_map = click.option(
+        "--source-map", "source_map", type=click.Path(path_type=Path, dir_okay=False),
+        help="TSV of run path and series folder (relative to the dataset root, or "
+        "absolute): these matches win over SeriesNumber and geometry."
+        + (f" {purpose}" if purpose else ""))
+    if not switch:
+        return source_map
+    return _options(
+        click.option("--source/--no-source", "source_check", default=None,
+                     help="Check each run against its DICOM series under sourcedata/ "
+                     "(default: on when the dataset has a sourcedata/ folder; --source also "
+                     "notes runs without a series)."),
+        source_map,
+    )
+
+
 class UserError(click.ClickException):
     """A one-line problem with what the user asked for (exit 2)."""
 
@@ -131,8 +214,7 @@ def cli() -> None:
 @click.option("--fail-on", type=click.Choice(["error", "warning", "never"]), default="error",
               show_default=True, help="Exit 1 when one of the run's findings reaches this "
               "severity.")
-@click.option("--policy", "policy_file", type=click.Path(path_type=Path, dir_okay=False),
-              help="Lab policy (TOML). Default: slicetime-policy.toml at the dataset root.")
+@policy_option()
 @friendly
 def show(file: Path, as_json: bool, fail_on: str, policy_file: Path | None) -> None:
     """Show one run: its schedule, where each value came from, its scheme and findings.
@@ -220,7 +302,7 @@ def _show_series(file: Path, as_json: bool) -> None:
 # --------------------------------------------------------------------------- audit
 @cli.command()
 @click.argument("paths", nargs=-1, required=True, type=click.Path(path_type=Path))
-@click.option("--format", "fmt", type=click.Choice(["text", "json", "jsonl", "tsv", "junit"]),
+@click.option("--format", "fmt", type=RegistryChoice(_report_formats),
               default="text", show_default=True,
               help="Report format on stdout (or --output): text, json (the contract), jsonl "
               "(one object per line), tsv (one row per run) or junit (CI).")
@@ -238,27 +320,13 @@ def _show_series(file: Path, as_json: bool) -> None:
               help="Print only the summary line (the exit status is unchanged); --output and "
               "--html are still written.")
 @click.option("--no-progress", is_flag=True, help="No progress bar or progress lines on stderr.")
-@click.option("--include-derivatives", is_flag=True, help="Also audit derivatives/.")
-@click.option("--include-sourcedata", is_flag=True, help="Also audit sourcedata/.")
-@click.option("--include-hidden", is_flag=True, help="Also audit hidden folders and files.")
-@click.option("--jobs", type=click.IntRange(min=1), default=None,
-              help="Local worker processes (default: the CPUs available; one on machines with 2 or "
-              "fewer).")
-@click.option("--scheduler", metavar="ADDRESS",
-              help="Run on a Dask cluster: the address of its scheduler (tcp://host:8786). "
-              "Files must be on a file system the workers share.")
-@click.option("--policy", "policy_file", type=click.Path(path_type=Path, dir_okay=False),
-              help="Lab policy (TOML). Default: slicetime-policy.toml at the dataset root.")
+@walking_options("audit")
+@executor_options(default=JOBS_LIGHT)
+@policy_option()
 @click.option("--verify", "verify_data", is_flag=True,
               help="Also read each run's image data and check its slice order against it "
               "(a verify/* finding per run; slower: see 'slicetime verify').")
-@click.option("--source/--no-source", "source_check", default=None,
-              help="Check each run against its DICOM series under sourcedata/ (default: on "
-              "when the dataset has a sourcedata/ folder; --source also notes runs without "
-              "a series).")
-@click.option("--source-map", "source_map", type=click.Path(path_type=Path, dir_okay=False),
-              help="TSV of run path and series folder (relative to the dataset root, or "
-              "absolute): these matches win over SeriesNumber and geometry.")
+@source_options()
 @friendly
 def audit(
     paths: tuple[Path, ...],
@@ -349,18 +417,10 @@ def audit(
 
 def _audit_report(source: Any, out: Any, fmt: str, fail_on: str, show_all: bool,
                   show_notes: bool) -> None:
-    from slicetime.interfaces import report_stream as streamed
+    from slicetime.interfaces.report_stream import ReportStyle, write_report
 
-    if fmt == "json":
-        streamed.write_json(source, out)
-    elif fmt == "jsonl":
-        streamed.write_jsonl(source, out)
-    elif fmt == "tsv":
-        streamed.write_tsv(source, out)
-    elif fmt == "junit":
-        streamed.write_junit(source, out, fail_on=fail_on)
-    else:
-        streamed.write_text(source, out, show_all=show_all, show_notes=show_notes)
+    write_report(fmt, source, out, ReportStyle(fail_on=fail_on, show_all=show_all,
+                                               show_notes=show_notes))
 
 
 def _write_report(path: Path, write: Callable[[Any], None]) -> None:
@@ -439,7 +499,7 @@ def verify(files: tuple[Path, ...], fmt: str) -> None:
     in milliseconds is reported and the order verified in seconds. Exit 1 when any
     run is contradicted or has timing in milliseconds, 2 when a file cannot be read.
     """
-    from slicetime.interfaces.report_json import dumps
+    from slicetime.interfaces.report_json import dumps, verdict_of, verify_object
     from slicetime.pipelines.verify import verify_run
     from slicetime.readers.dataset import find_root
     from slicetime.readers.errors import ReadError, check_regular_file
@@ -468,17 +528,9 @@ def verify(files: tuple[Path, ...], fmt: str) -> None:
                 d = outcome.decision
                 click.echo(f"{'':<12} best: {d.best_name} (score {d.best_score:.3f}; claimed "
                            f"{d.claimed_score:.3f}; shuffled orders {d.null_score:.3f})")
-    verdicts = [o.finding.code.split("/")[1] for o in outcomes]
+    verdicts = [verdict_of(o) for o in outcomes]
     if fmt == "json":
-        click.echo(dumps({
-            "tool": {"name": "slicetime", "version": __version__},
-            "runs": [{"path": o.path, "verdict": o.finding.code.split("/")[1],
-                      "finding": o.finding.to_json(),
-                      "units": [f.to_json() for f in o.units]} for o in outcomes],
-            "unreadable": unreadable,
-            "summary": {v: verdicts.count(v) for v in ("supported", "consistent",
-                                                       "contradicted", "undecidable")},
-        }))
+        click.echo(dumps(verify_object(outcomes, unreadable)))
     if unreadable:
         sys.exit(EXIT_USAGE)
     units = any(o.units for o in outcomes)
@@ -507,19 +559,11 @@ def verify(files: tuple[Path, ...], fmt: str) -> None:
 @click.option("--max-memory", "max_memory", default=None, metavar="SIZE",
               help="Keep the working memory under SIZE (e.g. 512M, 2G); larger runs are "
               "buffered in a scratch file under --out.")
-@click.option("--jobs", type=click.IntRange(min=1), default=None,
-              help="Runs corrected at once in local processes (default: the CPUs "
-              "available; memory grows with each).")
-@click.option("--scheduler", metavar="ADDRESS",
-              help="Run on a Dask cluster: the address of its scheduler (tcp://host:8786). "
-              "Inputs and --out must be on a file system the workers share.")
-@click.option("--policy", "policy_file", type=click.Path(path_type=Path, dir_okay=False),
-              help="Lab policy (TOML) used by the audit that gates correction.")
+@executor_options(default=JOBS_HEAVY, shared="Inputs and --out")
+@policy_option("The audit that gates correction applies it.")
 @click.option("--format", "fmt", type=click.Choice(["text", "json"]), default="text",
               show_default=True, help="Report format on stdout.")
-@click.option("--include-derivatives", is_flag=True, help="Also correct runs in derivatives/.")
-@click.option("--include-sourcedata", is_flag=True, help="Also correct runs in sourcedata/.")
-@click.option("--include-hidden", is_flag=True, help="Also correct hidden folders and files.")
+@walking_options("correct")
 @click.option("--mix-inputs", is_flag=True,
               help="Allow an --out folder that already holds outputs made from other input "
               "datasets (they are kept; a run whose output would replace one is refused).")
@@ -550,10 +594,9 @@ def correct(
       slicetime correct ds/sub-01 --out aligned --method cubic --reference 1.0
     """
     from slicetime.engines.plan import ReferenceChoice
-    from slicetime.interfaces.report_json import dumps
+    from slicetime.interfaces.report_json import correct_object, dumps
     from slicetime.interfaces.safe_text import xml_safe
     from slicetime.interfaces.terminal import make_console, progress_reporter, render_correct
-    from slicetime.numbers import tidy_json
     from slicetime.pipelines.correct import CorrectInterrupted, CorrectOptions, correct_paths
     from slicetime.pipelines.memory import parse_size
     from slicetime.words import count
@@ -590,13 +633,7 @@ def correct(
             raise UserError(xml_safe(f"{out}: cannot write the outputs ({exc.strerror or exc})")
                             ) from None
     if fmt == "json":
-        payload = {
-            "tool": {"name": "slicetime", "version": __version__},
-            "out": result.out,
-            "runs": [tidy_json(r.to_json()) for r in result.runs],  # no float noise
-            "summary": result.counts(),
-        }
-        click.echo(dumps(payload))
+        click.echo(dumps(correct_object(result)))
     else:
         render_correct(result, make_console())
     sys.exit(result.exit_code())
@@ -626,14 +663,9 @@ def correct(
 @click.option("--replace-links", is_flag=True,
               help="Replace a sidecar that is a symbolic link (annexed) by a regular file "
               "instead of refusing it.")
-@click.option("--policy", "policy_file", type=click.Path(path_type=Path, dir_okay=False),
-              help="Lab policy (TOML); its expected protocols can rebuild missing timing.")
-@click.option("--jobs", type=click.IntRange(min=1), default=None,
-              help="Local worker processes for the audit (default: the CPUs available; one "
-              "on machines with 2 or fewer).")
-@click.option("--scheduler", metavar="ADDRESS", help="Audit on a Dask cluster.")
-@click.option("--source-map", "source_map", type=click.Path(path_type=Path, dir_okay=False),
-              help="TSV of run path and series folder for rebuilding timing from sourcedata/.")
+@policy_option("Its expected protocols can rebuild missing timing.")
+@executor_options(default=JOBS_LIGHT)
+@source_options(switch=False, purpose="Used to rebuild timing from sourcedata/.")
 @friendly
 def fix(
     paths: tuple[Path, ...],

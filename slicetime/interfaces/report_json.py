@@ -3,15 +3,20 @@
 from __future__ import annotations
 
 import json
+from collections.abc import Mapping, Sequence
 from functools import cache, lru_cache
 from importlib import resources
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from slicetime import __version__
 from slicetime.interfaces.safe_text import sanitise
-from slicetime.numbers import json_time, json_times
+from slicetime.numbers import json_time, json_times, tidy_json
 from slicetime.pipelines.audit import AuditResult, RunResult
 from slicetime.words import encoding_direction
+
+if TYPE_CHECKING:  # the correct and verify pipelines import numpy: only for types here
+    from slicetime.pipelines.correct import CorrectResult, RunOutcome
+    from slicetime.pipelines.verify import VerifyOutcome
 
 
 @lru_cache(maxsize=1)
@@ -130,6 +135,54 @@ def audit_object(result: AuditResult, root_given: str) -> dict[str, Any]:
         "dataset_findings": [f.to_json() for f in result.dataset_findings],
         "policies": result.policies,
         "summary": {"runs": len(result.runs), **counts, "ignored": result.ignored_count()},
+    }
+
+
+def correct_run_object(outcome: RunOutcome) -> dict[str, Any]:
+    """One run of ``correct --format json`` (``correct.schema.json``, ``runs`` item)."""
+    return tidy_json({  # no float noise
+        "path": outcome.path,
+        "status": outcome.status,
+        "reason": outcome.reason,
+        "output": outcome.output,
+        "reference_time": outcome.reference,
+        "warnings": list(outcome.warnings),
+        "blocking_findings": [f.to_json() for f in outcome.blocking],
+        "removed_output": outcome.removed,
+        "seconds": round(outcome.seconds, 3),
+    })
+
+
+def correct_object(result: CorrectResult) -> dict[str, Any]:
+    """The document ``correct --format json`` prints (``correct.schema.json``)."""
+    return {
+        "tool": {"name": "slicetime", "version": __version__},
+        "out": result.out,
+        "runs": [correct_run_object(r) for r in result.runs],
+        "summary": result.counts(),
+    }
+
+
+#: the verdicts of ``verify``, in the order its summary lists them
+VERDICTS = ("supported", "consistent", "contradicted", "undecidable")
+
+
+def verdict_of(outcome: VerifyOutcome) -> str:
+    """The verdict of one verified run: the short name of its ``verify/*`` code."""
+    return outcome.finding.code.split("/")[1]
+
+
+def verify_object(outcomes: Sequence[VerifyOutcome],
+                  unreadable: Sequence[Mapping[str, str]]) -> dict[str, Any]:
+    """The document ``verify --format json`` prints (``verify.schema.json``):
+    ``unreadable`` lists the files that could not be read (file, code, message)."""
+    verdicts = [verdict_of(o) for o in outcomes]
+    return {
+        "tool": {"name": "slicetime", "version": __version__},
+        "runs": [{"path": o.path, "verdict": verdict_of(o), "finding": o.finding.to_json(),
+                  "units": [f.to_json() for f in o.units]} for o in outcomes],
+        "unreadable": [dict(u) for u in unreadable],
+        "summary": {v: verdicts.count(v) for v in VERDICTS},
     }
 
 

@@ -24,6 +24,7 @@ import re
 import tempfile
 from collections import Counter, defaultdict
 from collections.abc import Callable, Iterable, Iterator, Sequence
+from dataclasses import dataclass
 from typing import IO, Any
 
 from slicetime import __version__
@@ -609,7 +610,37 @@ def _write_element(out: IO[str], element: Any, ET: Any) -> None:
     out.write("    " + ET.tostring(element, encoding="unicode").rstrip() + "\n")
 
 
+@dataclass(frozen=True)
+class ReportStyle:
+    """What the writers other than JSON take from the command line."""
+
+    fail_on: str = "error"  # junit: the severity that makes a test case fail
+    show_all: bool = False  # text: every run, not only the runs with findings
+    show_notes: bool = True  # text: the notes too
+
+
+ReportWriter = Callable[[ReportSource, IO[str], ReportStyle], None]
+
+#: the report formats (``audit --format``), in the order help lists them: name -> writer.
+#: A writer added here is a choice of ``--format`` (the command line reads this registry).
+WRITERS: dict[str, ReportWriter] = {
+    "text": lambda source, out, style: write_text(source, out, show_all=style.show_all,
+                                                  show_notes=style.show_notes),
+    "json": lambda source, out, style: write_json(source, out),
+    "jsonl": lambda source, out, style: write_jsonl(source, out),
+    "tsv": lambda source, out, style: write_tsv(source, out),
+    "junit": lambda source, out, style: write_junit(source, out, fail_on=style.fail_on),
+}
+
+
+def write_report(fmt: str, source: ReportSource, out: IO[str],
+                 style: ReportStyle | None = None) -> None:
+    """Write the report in format ``fmt`` (a key of :data:`WRITERS`)."""
+    WRITERS[fmt](source, out, style if style is not None else ReportStyle())
+
+
 __all__ = [
-    "TSV_COLUMNS", "MemorySource", "ReportSource", "RunSpool", "encode", "report_root", "run_line",
-    "summary_line", "write_json", "write_jsonl", "write_junit", "write_text", "write_tsv",
+    "TSV_COLUMNS", "WRITERS", "MemorySource", "ReportSource", "ReportStyle", "ReportWriter",
+    "RunSpool", "encode", "report_root", "run_line", "summary_line", "write_json", "write_jsonl",
+    "write_junit", "write_report", "write_text", "write_tsv",
 ]

@@ -11,6 +11,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+from slicetime.codes import make_finding
 from slicetime.model import Finding, HeaderInfo, RunRecord, Scheme, Severity, SliceSchedule
 from slicetime.model_source import SourceEvidence
 from slicetime.pipelines.errors import NoRunsError
@@ -108,8 +109,8 @@ def _with_source(record: RunRecord, root: Path, options: SourceOptions | None,
     except Exception as exc:  # a series no reader anticipated: a finding, never a crash
         if os.environ.get("SLICETIME_DEBUG"):
             raise
-        error = Finding("source/unreadable", Severity.WARNING, f"{record.path}: its source "
-                        f"series could not be read ({type(exc).__name__}: {exc})", record.path)
+        error = make_finding("source/unreadable", f"{record.path}: its source series could "
+                             f"not be read ({type(exc).__name__}: {exc})", file=record.path)
         evidence = SourceEvidence("unreadable", "", error=error)
     return dataclasses.replace(record, source=evidence) if evidence is not None else record
 # ---- end of the source cross-check
@@ -158,7 +159,7 @@ def failed_run(root: Path, path: Path, code: str, why: str) -> RunResult:
         if code == "batch/worker-lost"
         else f"{shown}: the audit of this run failed ({why})"
     )
-    return RunResult(record, [Finding(code, Severity.ERROR, message, shown)])
+    return RunResult(record, [make_finding(code, message, file=shown)])
 
 
 def _lost_target(target: tuple[Path, Path], why: str) -> RunResult:

@@ -39,6 +39,7 @@ from typing import Any
 import numpy as np
 
 from slicetime import __version__
+from slicetime.codes import make_finding
 from slicetime.engines.align import align_slice, run_tasks, slice_tasks
 from slicetime.engines.interpolate import (
     Engine,
@@ -256,7 +257,7 @@ def correct_run(
         if code is not None:
             field_name = exc.field if isinstance(exc, CorrectionError) else None
             outcome.blocking.append(
-                Finding(code, Severity.ERROR, message, file=record.path, field=field_name)
+                make_finding(code, message, file=record.path, field=field_name)
             )
     except OSError as exc:
         outcome.status = "failed"

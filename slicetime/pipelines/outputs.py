@@ -14,7 +14,9 @@ import re
 from collections.abc import Iterable, Sequence
 from pathlib import Path
 
-from slicetime.model import Finding, RunRecord, Severity
+import slicetime.rules.correction  # noqa: F401  (registers CLASH_CODE)
+from slicetime.codes import make_finding
+from slicetime.model import Finding, RunRecord
 from slicetime.pipelines.errors import CLASH_CODE
 from slicetime.readers.entities import parse_name, sidecar_name
 
@@ -134,8 +136,8 @@ def clashing_runs(records: Iterable[RunRecord], desc: str) -> dict[str, Finding]
                 f"{record.path} and {named} would be written to one output "
                 f"({key} in --out); none of them is corrected"
             )
-            clashes[record.abs_path] = Finding(
-                CLASH_CODE, Severity.ERROR, message, file=record.path,
+            clashes[record.abs_path] = make_finding(
+                CLASH_CODE, message, file=record.path,
                 evidence={"inputs": [record.path, *[o.path for o in others]], "output": key},
             )
     return clashes

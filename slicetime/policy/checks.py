@@ -62,7 +62,7 @@ from typing import Any, cast
 
 from slicetime.model import AXES, Axis, Finding, RunRecord, Severity, Source
 from slicetime.policy.model import ExpectedProtocol, IgnoreEntry, Policy, SchemeFamily
-from slicetime.rules.registry import RULES, Hit, reader_code, run_rule, to_finding
+from slicetime.rules.registry import RULES, Hit, run_rule, to_finding
 from slicetime.schemes.labels import scheme_family
 from slicetime.schemes.resolve import is_number, parse_direction, positive_number
 
@@ -167,26 +167,6 @@ _document(
     fix="Add a key to one of the match tables so exactly one protocol is most specific for "
     "such runs, or make the protocols agree.",
 )
-reader_code(
-    "policy/invalid",
-    title="the lab policy file cannot be used",
-    severity=E,
-    rationale=(
-        "slicetime-policy.toml (at the dataset root, or given with --policy) must be valid TOML "
-        "and follow the policy format: version = 1; [[protocols]] with a match table of BIDS "
-        "entities (plus datatype and suffix), at least one of repetition_time, slices, "
-        "multiband_factor, scheme, slice_encoding_direction, and an optional tolerance; a "
-        "[severity] table "
-        "mapping finding codes (or patterns with * and ?) to error, warning or note; [[ignore]] "
-        "entries with codes, optional run path patterns (paths) and a required reason. Unknown "
-        "keys, unknown finding codes and bad patterns are errors, so a typo never silently "
-        "turns a check off."
-    ),
-    fix="Fix the key the message names; the file's JSON Schema ships as "
-    "slicetime/data/policy.schema.json.",
-)
-
-
 # --------------------------------------------------------------------------- results
 
 

@@ -38,7 +38,9 @@ import stat
 from collections.abc import Callable, Iterator, Sequence
 from pathlib import Path
 
-from slicetime.model import Finding, Severity
+import slicetime.readers.codes  # noqa: F401  (registers the codes made here)
+from slicetime.codes import make_finding
+from slicetime.model import Finding
 
 from .entities import (
     IMAGE_EXTENSIONS,
@@ -176,9 +178,8 @@ class _Walker:
         if self.on_error is not None:
             shown = str(folder)
             self.on_error(
-                Finding(
+                make_finding(
                     "file/unreadable",
-                    Severity.ERROR,
                     f"{shown}: cannot list the folder ({exc.strerror or exc}); "
                     "its runs are skipped",
                     file=shown,

@@ -37,7 +37,9 @@ from collections.abc import Mapping
 from pathlib import Path
 from typing import Any, BinaryIO
 
-from slicetime.model import Finding, Severity
+import slicetime.readers.codes  # noqa: F401  (registers the codes made here)
+from slicetime.codes import make_finding
+from slicetime.model import Finding
 from slicetime.words import with_article
 
 __all__ = [
@@ -87,16 +89,11 @@ class ReadError(Exception):
         return f"ReadError({self.code!r}, {self.file!r}, {self.field!r}, {self.message!r})"
 
     def to_finding(self) -> Finding:
-        """This error as a finding of severity ``error``."""
-        return Finding(
-            code=self.code,
-            severity=Severity.ERROR,
-            message=self.message,
-            file=self.file,
-            field=self.field,
-            evidence=dict(self.evidence),
-            hint=self.hint,
-        )
+        """This error as a finding of its code's registered severity (an error for every
+        code a reader raises; ``source/unreadable`` is a warning, reported again by its
+        rule)."""
+        return make_finding(self.code, self.message, file=self.file, field=self.field,
+                            evidence=self.evidence, hint=self.hint)
 
 
 def display_name(path: Path | str, display: str | None) -> str:

@@ -43,6 +43,8 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+import slicetime.readers.codes  # noqa: F401  (registers the codes made here)
+from slicetime.codes import make_finding
 from slicetime.model import Finding, Severity
 
 from .entities import ParsedName, parse_name, sidecar_name
@@ -127,9 +129,8 @@ class SidecarStore:
         return value, True
 
     def _over_budget(self, shown: str, size: int) -> Finding:
-        return Finding(
+        return make_finding(
             "sidecar/over-budget",
-            Severity.ERROR,
             f"{shown}: this inherited sidecar has {size} bytes, and the large inherited "
             f"sidecars parsed in this audit already hold {self.used} of the {self.budget} "
             "bytes allowed; not read",
@@ -309,9 +310,8 @@ class SidecarIndex:
         except OSError as exc:
             base = os.fspath(root) if root is not None else self._root_text
             shown = _relative_text(key, base) or "."
-            problem = Finding(
+            problem = make_finding(
                 "file/unreadable",
-                Severity.ERROR,
                 f"{shown}: cannot list the folder to find sidecars ({exc.strerror or exc})",
                 file=shown,
             )
@@ -577,11 +577,11 @@ def _ambiguity(
         per_file = values_of[key]
         shown_values = "; ".join(f"{f}: {_short(v)}" for f, v in per_file.items())
         out.append(
-            Finding(
+            make_finding(
                 "inherit/ambiguous",
-                Severity.ERROR,
                 f"{listed} all apply to {data_shown} at one folder level and disagree on {key} "
                 f"({shown_values}); {winner_of[key]} is used",
+                severity=Severity.ERROR,
                 file=winner_of[key],
                 field=key,
                 evidence={
@@ -596,9 +596,8 @@ def _ambiguity(
     if not timing:
         tail = f"; they also differ on {', '.join(others)}" if others else ""
         out.append(
-            Finding(
+            make_finding(
                 "inherit/ambiguous",
-                Severity.WARNING,
                 f"{listed} all apply to {data_shown} at one folder level; they agree on every "
                 f"timing field, merged with the more specific file last{tail}",
                 file=files[-1],

@@ -45,6 +45,8 @@ from typing import Any
 
 import jsonschema
 
+import slicetime.readers.codes  # noqa: F401  (registers the codes made here)
+from slicetime.codes import make_finding
 from slicetime.model import Finding, Severity
 
 from .errors import ReadError, display_name, open_regular, os_error, read_bounded
@@ -273,9 +275,8 @@ def load_sidecar(
 
 
 def _too_large(shown: str, size: int) -> Finding:
-    return Finding(
+    return make_finding(
         "sidecar/too-large",
-        Severity.ERROR,
         f"{shown}: the sidecar has {size} bytes, more than the {MAX_SIDECAR_BYTES} "
         "bytes (16 MiB) metadata can reasonably need; not read",
         file=shown,
@@ -284,9 +285,8 @@ def _too_large(shown: str, size: int) -> Finding:
 
 
 def _empty(shown: str) -> Finding:
-    return Finding(
+    return make_finding(
         "sidecar/bad-json",
-        Severity.ERROR,
         f"{shown}: the sidecar is empty (0 bytes on disk)",
         file=shown,
         evidence={"line": 1, "column": 1, "size": 0},
@@ -301,9 +301,8 @@ def parse_sidecar_bytes(raw: bytes, shown: str) -> tuple[dict[str, Any] | None, 
     for bom, name in _OTHER_BOMS.items():
         if raw.startswith(bom):
             return None, [
-                Finding(
+                make_finding(
                     "sidecar/bad-encoding",
-                    Severity.ERROR,
                     f"{shown}: the sidecar is encoded as {name}; BIDS sidecars must be UTF-8",
                     file=shown,
                     evidence={"encoding": name},
@@ -313,11 +312,11 @@ def parse_sidecar_bytes(raw: bytes, shown: str) -> tuple[dict[str, Any] | None, 
     if raw.startswith(_UTF8_BOM):
         raw = raw[len(_UTF8_BOM) :]
         findings.append(
-            Finding(
+            make_finding(
                 "sidecar/bad-encoding",
-                Severity.WARNING,
                 f"{shown}: the sidecar starts with a UTF-8 byte-order mark, which JSON "
                 "forbids; read without it",
+                severity=Severity.WARNING,
                 file=shown,
                 hint="re-save the file as UTF-8 without a byte-order mark",
             )
@@ -328,9 +327,8 @@ def parse_sidecar_bytes(raw: bytes, shown: str) -> tuple[dict[str, Any] | None, 
         line, col = _line_col(raw, exc.start)
         return None, [
             *findings,
-            Finding(
+            make_finding(
                 "sidecar/bad-encoding",
-                Severity.ERROR,
                 f"{shown}: the sidecar is not valid UTF-8 (byte 0x{raw[exc.start]:02x} at line "
                 f"{line} column {col})",
                 file=shown,
@@ -341,9 +339,8 @@ def parse_sidecar_bytes(raw: bytes, shown: str) -> tuple[dict[str, Any] | None, 
     if not text.strip():
         return None, [
             *findings,
-            Finding(
+            make_finding(
                 "sidecar/bad-json",
-                Severity.ERROR,
                 f"{shown}: the sidecar is empty",
                 file=shown,
                 evidence={"line": 1, "column": 1},
@@ -358,9 +355,8 @@ def parse_sidecar_bytes(raw: bytes, shown: str) -> tuple[dict[str, Any] | None, 
     except json.JSONDecodeError as exc:
         return None, [
             *findings,
-            Finding(
+            make_finding(
                 "sidecar/bad-json",
-                Severity.ERROR,
                 f"{shown}: invalid JSON at line {exc.lineno} column {exc.colno}: {exc.msg}",
                 file=shown,
                 evidence={"line": exc.lineno, "column": exc.colno, "error": exc.msg},
@@ -371,9 +367,8 @@ def parse_sidecar_bytes(raw: bytes, shown: str) -> tuple[dict[str, Any] | None, 
     except ValueError as exc:  # e.g. an integer literal beyond Python's digit limit
         return None, [
             *findings,
-            Finding(
+            make_finding(
                 "sidecar/bad-json",
-                Severity.ERROR,
                 f"{shown}: a value cannot be read ({str(exc).splitlines()[0]})",
                 file=shown,
             ),
@@ -385,9 +380,8 @@ def parse_sidecar_bytes(raw: bytes, shown: str) -> tuple[dict[str, Any] | None, 
         )
         return None, [
             *findings,
-            Finding(
+            make_finding(
                 "sidecar/not-object",
-                Severity.ERROR,
                 f"{shown}: the top level is {kind}; a sidecar must be a JSON object",
                 file=shown,
                 evidence={"type": kind},
@@ -411,11 +405,11 @@ def parse_sidecar_bytes(raw: bytes, shown: str) -> tuple[dict[str, Any] | None, 
     if cleaner.surrogate_keys:
         keys = sorted(cleaner.surrogate_keys)
         findings.append(
-            Finding(
+            make_finding(
                 "sidecar/bad-encoding",
-                Severity.WARNING,
                 f"{shown}: {', '.join(keys)} contain lone UTF-16 surrogate escapes, which are not "
                 "valid Unicode; replaced with U+FFFD",
+                severity=Severity.WARNING,
                 file=shown,
                 field=keys[0],
                 evidence={"fields": keys},
@@ -493,9 +487,8 @@ def _parser() -> _StrictParser:
 
 
 def _too_deep(shown: str) -> Finding:
-    return Finding(
+    return make_finding(
         "sidecar/too-deep",
-        Severity.ERROR,
         f"{shown}: the sidecar nests deeper than {MAX_SIDECAR_DEPTH} levels; not read",
         file=shown,
         evidence={"limit": MAX_SIDECAR_DEPTH},
@@ -601,10 +594,10 @@ def _duplicate_findings(
         else:
             what = "with the same value; the last copy is kept"
         out.append(
-            Finding(
+            make_finding(
                 "sidecar/duplicate-key",
-                severity,
                 f"{shown}: key {key!r}{where} appears {len(values)} times {what}",
+                severity=severity,
                 file=shown,
                 field=key,
                 evidence={
@@ -649,9 +642,8 @@ def _non_finite_findings(
         else:
             subject, field_name, outcome = key or "a value", key, "read as null"
         out.append(
-            Finding(
+            make_finding(
                 "sidecar/non-finite-number",
-                Severity.ERROR,
                 f"{shown}: {subject} holds {', '.join(literals)}{where}, which is not a "
                 f"JSON number; {outcome}",
                 file=shown,
@@ -697,9 +689,8 @@ def check_types(
         where = key + "".join(f"[{p}]" if isinstance(p, int) else f".{p}" for p in path)
         shown = (sources or {}).get(key) or display or "sidecar"
         out.append(
-            Finding(
+            make_finding(
                 "sidecar/wrong-type",
-                Severity.ERROR,
                 f"{shown}: {key} must be {_describe(schema[key])}; "
                 f"{where} is {_short(err.instance)}",
                 file=shown,

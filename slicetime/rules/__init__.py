@@ -3,14 +3,15 @@
 Importing this package registers every rule in :data:`RULES`.
 """
 
-import slicetime.policy.checks  # noqa: F401  (registration of the policy/* codes)
+import slicetime.policy.checks  # registration of the policy/* codes
+import slicetime.policy.loading  # registration of policy/invalid
+import slicetime.readers.codes  # noqa: F401  (registration of the readers codes)
 from slicetime.rules import (  # noqa: F401  (registration)
     batch,
     correction,
     dataset,
     header,
     naming,
-    reading,
     source,
     timing,
     verify,

@@ -179,6 +179,7 @@ def echo_mismatch(records: Sequence[RunRecord]) -> Iterator[DatasetHit]:
     "inherit/timing-override",
     title="a deeper sidecar overrides inherited timing",
     severity=N,
+    also_severities=(E,),
     rationale=(
         "The inheritance principle lets a subject- or run-level sidecar override a value "
         "inherited from above. For timing that is legitimate (a protocol change) but also how "

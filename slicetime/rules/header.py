@@ -152,6 +152,7 @@ def dim_info_mismatch(record: RunRecord) -> Iterator[Hit]:
 
 @run_rule(
     "header/slice-code-mismatch",
+    fixable=True,
     title="the header's slice_code describes another order than SliceTiming",
     severity=W,
     rationale=(

@@ -14,26 +14,21 @@ from __future__ import annotations
 import dataclasses
 from collections.abc import Callable, Iterable, Mapping, Sequence, Set
 from dataclasses import dataclass
-from typing import Any, Literal, cast
+from typing import Any, cast
 
+from slicetime.codes import (
+    CHECKED,
+    RENAMED,
+    RULES,
+    Checked,
+    Rule,
+    Scope,
+    declare,
+    make_finding,
+    register,
+)
 from slicetime.model import Finding, RunRecord, Severity
 
-Scope = Literal["run", "dataset", "reader"]
-
-#: where a code's check really happens, as ``slicetime explain`` says it; every
-#: registration declares one (run, dataset and reader registrations have a default)
-CHECKED = {
-    "metadata": "in each run's metadata (its sidecars and header)",
-    "dataset": "across the dataset (runs compared with each other)",
-    "reading": "while reading the files",
-    "data": "in the image data",
-    "batch": "in the batch (a worker that ran the run)",
-    "source": "against the source DICOM series",
-    "policy": "in the lab policy",
-    "correcting": "while correcting",
-}
-Checked = Literal["metadata", "dataset", "reading", "data", "batch", "source", "policy",
-                  "correcting"]
 RunCheck = Callable[[RunRecord], Iterable["Hit"]]
 DatasetCheck = Callable[[Sequence[RunRecord]], Iterable["DatasetHit"]]
 
@@ -61,33 +56,6 @@ class DatasetHit:
     hit: Hit
 
 
-@dataclass(frozen=True)
-class Rule:
-    code: str
-    title: str
-    severity: Severity
-    rationale: str
-    fix: str | None
-    scope: Scope
-    check: RunCheck | DatasetCheck | None = None
-    #: the standard's check this rule covers, when one exists (for docs and tests)
-    standard: str | None = None
-    #: codes that follow from this rule's finding: on the same run and field they are
-    #: folded into it (listed in its grounds) instead of reported again
-    subsumes: frozenset[str] = frozenset()
-    #: where the check happens (a key of :data:`CHECKED`)
-    checked: Checked = "metadata"
-
-    @property
-    def checked_text(self) -> str:
-        return CHECKED[self.checked]
-
-
-RULES: dict[str, Rule] = {}
-#: former codes still understood for one release (lab policies, ``explain``): old -> new
-RENAMED: dict[str, str] = {}
-
-
 def current_code(code: str) -> str:
     """The code as it is named now (a former name gives its new code)."""
     return RENAMED.get(code, code)
@@ -103,21 +71,29 @@ def renamed(old: str, new: str) -> None:
 def known_codes() -> frozenset[str]:
     """Every code a lab policy may name: the registered ones and their former names."""
     return frozenset(RULES) | frozenset(RENAMED)
+
+
 #: the run rules with a check, in registry order (what :func:`check_run` runs)
 _RUN_CHECKS: list[tuple[Rule, RunCheck]] = []
 
 
 def _register(rule: Rule) -> None:
-    if rule.code in RULES:
-        raise RuntimeError(f"finding code registered twice: {rule.code}")
-    area, _, name = rule.code.partition("/")
-    if not area or not name or rule.code != rule.code.lower():
-        raise RuntimeError(f"finding codes are lower-case area/short-name: {rule.code!r}")
-    if rule.checked not in CHECKED:
-        raise RuntimeError(f"{rule.code}: unknown place of checking {rule.checked!r}")
-    RULES[rule.code] = rule
+    register(rule)
     if rule.scope == "run" and rule.check is not None:
         _RUN_CHECKS.append((rule, cast(RunCheck, rule.check)))  # scope "run": a RunCheck
+
+
+def run_check(code: str) -> Callable[[RunCheck], RunCheck]:
+    """Attach a check over one run to a code registered below the rules layer (a reader
+    code that a run rule reports again, e.g. ``source/unreadable``)."""
+
+    def decorate(check: RunCheck) -> RunCheck:
+        rule = dataclasses.replace(RULES[code], scope="run", check=check)
+        RULES[code] = rule
+        _RUN_CHECKS.append((rule, check))
+        return check
+
+    return decorate
 
 
 def run_rule(
@@ -130,14 +106,18 @@ def run_rule(
     standard: str | None = None,
     subsumes: Iterable[str] = (),
     checked: Checked = "metadata",
+    fixable: bool = False,
+    also_severities: Iterable[Severity] = (),
 ) -> Callable[[RunCheck], RunCheck]:
     """Register a check over one run. ``subsumes``: codes that follow from this one's
     finding on the same run and field (see :func:`fold_consequences`); ``checked``:
-    where the check happens (:data:`CHECKED`)."""
+    where the check happens (:data:`CHECKED`); ``fixable``: ``slicetime fix`` repairs
+    it (:mod:`slicetime.rules.repairs`); ``also_severities``: severities a hit may
+    state instead of ``severity`` (``Hit.severity``)."""
 
     def decorate(check: RunCheck) -> RunCheck:
         _register(Rule(code, title, severity, rationale, fix, "run", check, standard,
-                       frozenset(subsumes), checked))
+                       frozenset(subsumes), checked, fixable, frozenset(also_severities)))
         return check
 
     return decorate
@@ -145,32 +125,23 @@ def run_rule(
 
 def dataset_rule(
     code: str, *, title: str, severity: Severity, rationale: str, fix: str | None = None,
-    checked: Checked = "dataset",
+    checked: Checked = "dataset", fixable: bool = False,
+    also_severities: Iterable[Severity] = (),
 ) -> Callable[[DatasetCheck], DatasetCheck]:
-    """Register a check over all runs of a dataset."""
+    """Register a check over all runs of a dataset (keywords as :func:`run_rule`)."""
 
     def decorate(check: DatasetCheck) -> DatasetCheck:
         _register(Rule(code, title, severity, rationale, fix, "dataset", check,
-                       checked=checked))
+                       checked=checked, fixable=fixable,
+                       also_severities=frozenset(also_severities)))
         return check
 
     return decorate
 
 
-def reader_code(
-    code: str,
-    *,
-    title: str,
-    severity: Severity,
-    rationale: str,
-    fix: str | None = None,
-    standard: str | None = None,
-    checked: Checked = "reading",
-) -> None:
-    """Document a code raised outside the rules (no check function): by the readers
-    (the default), the batch, verify, correct or the source cross-check (``checked``)."""
-    _register(Rule(code, title, severity, rationale, fix, "reader", None, standard,
-                   checked=checked))
+#: document a code raised outside the rules (no check function): by the readers, the
+#: batch (``checked="batch"``), verify, correct or the source cross-check
+reader_code = declare
 
 
 def to_finding(rule: Rule, record: RunRecord | None, hit: Hit) -> Finding:
@@ -180,15 +151,10 @@ def to_finding(rule: Rule, record: RunRecord | None, hit: Hit) -> Finding:
             file = record.metadata_sources[hit.field]
         else:
             file = record.path
-    return Finding(
-        code=rule.code,
-        severity=hit.severity or rule.severity,
-        message=hit.message,
-        file=file,
-        field=hit.field,
-        evidence=dict(hit.evidence),
-        hint=hit.hint if hit.hint is not None else rule.fix,
-    )
+    return make_finding(rule.code, hit.message, file=file, field=hit.field,
+                        evidence=hit.evidence,
+                        hint=hit.hint if hit.hint is not None else rule.fix,
+                        severity=hit.severity)
 
 
 def check_run(record: RunRecord) -> list[Finding]:
@@ -286,9 +252,17 @@ def explain(code: str) -> str:
     ]
     if rule.fix:
         lines += ["", f"what to do: {rule.fix.strip()}"]
+    if rule.fixable:
+        lines += ["", "slicetime fix repairs this."]
     if rule.standard:
         lines += ["", f"standard: {rule.standard}"]
     if rule.subsumes:
         lines += ["", "folds in (consequences on the same run and field, listed in its "
                   "grounds instead of reported again): " + ", ".join(sorted(rule.subsumes))]
     return "\n".join(lines)
+
+
+__all__ = ["CHECKED", "RENAMED", "RULES", "Checked", "DatasetCheck", "DatasetHit", "Hit",
+           "Rule", "RunCheck", "Scope", "check_dataset", "check_run", "current_code", "explain",
+           "fold_consequences", "folded_entry", "folds_into", "known_codes", "reader_code",
+           "renamed", "run_check", "run_rule", "to_finding"]

@@ -48,26 +48,15 @@ from slicetime.model import (
 from slicetime.numbers import plain
 from slicetime.policy.model import ExpectedProtocol
 from slicetime.rules.dataset import protocol_key
+from slicetime.rules.registry import RULES
 from slicetime.rules.source import matched, source_multiband, source_times
 from slicetime.schemes.generate import Protocol, array_times, validate_protocol
 from slicetime.schemes.infer import infer_scheme
 from slicetime.schemes.niftcodes import SLICE_CODE_NAMES, header_slice_times
 
-#: the codes ``slicetime fix`` can repair
-FIXABLE = frozenset(
-    {
-        "timing/units-ms",
-        "timing/from-header",
-        "timing/missing",
-        "header/slice-code-mismatch",
-        "scheme/multiband-mismatch",
-        "scheme/multiband-undeclared",
-        "source/times-absent",
-        "source/times-differ",
-        "source/reversed",
-        "source/multiband-differs",
-    }
-)
+#: the codes ``slicetime fix`` can repair: declared on each rule (``fixable=True``);
+#: importing this module imported :mod:`slicetime.rules`, so every rule is registered
+FIXABLE = frozenset(code for code, rule in RULES.items() if rule.fixable)
 #: codes repaired from the source series; they win over every other SliceTiming repair
 SOURCE_TIMING_CODES = ("source/times-absent", "source/times-differ", "source/reversed")
 DECIMALS = 6  # microseconds: finer than any scanner clock

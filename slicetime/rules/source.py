@@ -12,10 +12,11 @@ from __future__ import annotations
 
 from collections.abc import Iterator
 
+import slicetime.readers.codes  # noqa: F401  (registers source/unreadable, checked below)
 from slicetime.model import RunRecord, Severity
 from slicetime.model_source import SeriesTiming, SourceEvidence
 from slicetime.numbers import plain
-from slicetime.rules.registry import Hit, reader_code, run_rule
+from slicetime.rules.registry import Hit, run_check, run_rule
 from slicetime.schemes.correspond import Correspondence, Mismatch, correspond
 from slicetime.schemes.infer import infer_scheme
 from slicetime.words import agree, count
@@ -111,18 +112,7 @@ def ambiguous(record: RunRecord) -> Iterator[Hit]:
                   evidence={"candidates": list(evidence.candidates)})
 
 
-@run_rule(
-    "source/unreadable",
-    checked="source",
-    title="the source series cannot be read",
-    severity=W,
-    rationale=(
-        "The series matched to the run (or named in the source map) is not usable DICOM: "
-        "not DICOM at all, truncated, missing a tag needed to place the slices, or carrying "
-        "a vendor private header too large to trust. Nothing is compared."
-    ),
-    fix="Copy the series again from the scanner or archive, or correct the source map.",
-)
+@run_check("source/unreadable")  # registered with the readers, which raise it
 def unreadable(record: RunRecord) -> Iterator[Hit]:
     evidence = record.source
     if evidence is not None and evidence.status == "unreadable" and evidence.error is not None:
@@ -183,6 +173,7 @@ def _where(corr: Correspondence, series: SeriesTiming) -> str:
 
 @run_rule(
     "source/times-absent",
+    fixable=True,
     checked="source",
     title="the sidecar has no SliceTiming but the source series records it",
     severity=W,
@@ -230,6 +221,7 @@ def _compare(record: RunRecord) -> tuple[str, dict[str, object]] | None:
 
 @run_rule(
     "source/reversed",
+    fixable=True,
     checked="source",
     title="the sidecar's slice times run in the opposite direction to the source's",
     severity=E,
@@ -250,6 +242,7 @@ def reversed_times(record: RunRecord) -> Iterator[Hit]:
 
 @run_rule(
     "source/times-differ",
+    fixable=True,
     checked="source",
     title="the sidecar's slice times disagree with the source series",
     severity=E,
@@ -310,6 +303,7 @@ def source_multiband(series: SeriesTiming) -> int | None:
 
 @run_rule(
     "source/multiband-differs",
+    fixable=True,
     checked="source",
     title="MultibandAccelerationFactor differs from the source's excitation groups",
     severity=W,
@@ -331,15 +325,6 @@ def multiband_differs(record: RunRecord) -> Iterator[Hit]:
                   field="MultibandAccelerationFactor",
                   evidence={**_series_facts(found[1]), "declared": declared, "source": factor})
 
-
-reader_code(
-    "source/bad-map",
-    checked="source",
-    title="the --source-map file cannot be used",
-    severity=E,
-    rationale="The map must be a TSV with two columns per line: run path and series folder.",
-    fix="Fix the line named in the message.",
-)
 
 __all__ = ["QUANTUM", "correspondence", "matched", "source_multiband", "source_times"]
 

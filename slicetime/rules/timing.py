@@ -102,6 +102,7 @@ def _sidecar_times(record: RunRecord) -> list[float] | None:
 
 @run_rule(
     "timing/missing",
+    fixable=True,
     title="no slice timing for a run that needs it",
     severity=W,
     rationale=(
@@ -167,6 +168,7 @@ def corrected_still_timed(record: RunRecord) -> Iterator[Hit]:
 
 @run_rule(
     "timing/from-header",
+    fixable=True,
     title="slice timing rebuilt from the NIfTI header",
     severity=N,
     rationale=(
@@ -221,6 +223,7 @@ _MS_CONSEQUENCES = (
 
 @run_rule(
     "timing/units-ms",
+    fixable=True,
     title="slice times look like milliseconds",
     severity=E,
     rationale=(
@@ -407,6 +410,7 @@ def unrecognised(record: RunRecord) -> Iterator[Hit]:
 
 @run_rule(
     "scheme/multiband-mismatch",
+    fixable=True,
     title="MultibandAccelerationFactor disagrees with the slice times",
     severity=E,
     rationale=(
@@ -437,6 +441,7 @@ def multiband_mismatch(record: RunRecord) -> Iterator[Hit]:
 
 @run_rule(
     "scheme/multiband-undeclared",
+    fixable=True,
     title="the times show multiband groups but no factor is declared",
     severity=N,
     rationale=(

@@ -1,13 +1,15 @@
-"""Documentation of the codes that the readers raise while opening files.
+"""The registration of every code the readers raise while opening files.
 
-The checks themselves live in :mod:`slicetime.readers` (they need the bytes);
-these entries make ``slicetime explain`` and the report schema cover them.
+The checks themselves live in :mod:`slicetime.readers` (they need the bytes), and
+every reader that makes a finding imports this module, so its codes are in the
+catalogue (:mod:`slicetime.codes`) before :func:`~slicetime.codes.make_finding`
+is called; ``slicetime explain`` and the report schema cover them too.
 """
 
 from __future__ import annotations
 
+from slicetime.codes import declare as reader_code
 from slicetime.model import Severity
-from slicetime.rules.registry import reader_code
 
 E, W, N = Severity.ERROR, Severity.WARNING, Severity.NOTE
 
@@ -127,6 +129,7 @@ reader_code(
         "JSON parsers keep the last of repeated keys, silently dropping the others; which one "
         "a given tool keeps is not guaranteed. An error when the copies differ on a timing field."
     ),
+    also_severities=(E,),
     fix="Keep one copy of the key with the intended value.",
 )
 reader_code(
@@ -147,7 +150,11 @@ reader_code(
     "sidecar/bad-encoding",
     title="a JSON sidecar is not valid UTF-8",
     severity=E,
-    rationale="JSON text exchanged between systems must be UTF-8 (RFC 8259).",
+    rationale=(
+        "JSON text exchanged between systems must be UTF-8 (RFC 8259). A warning for a "
+        "UTF-8 byte-order mark or lone surrogate escapes (the file is still read)."
+    ),
+    also_severities=(W,),
     fix="Re-save the file as UTF-8.",
 )
 reader_code(
@@ -194,6 +201,27 @@ reader_code(
         "several, which value wins depends on the tool. An error when they disagree on a "
         "timing field."
     ),
+    also_severities=(E,),
     fix="Merge the files, or add entities so that each applies to a distinct set of runs.",
     standard="BIDS inheritance principle",
+)
+reader_code(
+    "source/unreadable",
+    checked="source",
+    title="the source series cannot be read",
+    severity=W,
+    rationale=(
+        "The series matched to the run (or named in the source map) is not usable DICOM: "
+        "not DICOM at all, truncated, missing a tag needed to place the slices, or carrying "
+        "a vendor private header too large to trust. Nothing is compared."
+    ),
+    fix="Copy the series again from the scanner or archive, or correct the source map.",
+)
+reader_code(
+    "source/bad-map",
+    checked="source",
+    title="the --source-map file cannot be used",
+    severity=E,
+    rationale="The map must be a TSV with two columns per line: run path and series folder.",
+    fix="Fix the line named in the message.",
 )
