@@ -122,7 +122,7 @@ class Case:
     order: str
     mistake: str
     seed: int
-    signal: str = "brain"  # brain | noise | voxelwise | physio-only | flipped
+    signal: str = "brain"  # brain | noise | voxelwise | physio-only | a key of STRESS
 
 
 @dataclass(frozen=True)
@@ -136,17 +136,32 @@ class Outcome:
     z_rival: float | None
     p_evidence: float
     seconds: float
+    z_signs: float | None = None
+
+
+#: stress tests with weak neural signal (task 0.1 %, network 0.1 %): respiration sign
+#: pattern along the slice axis, cardiac sign pattern (None: no cardiac pulsation), and a
+#: delay of both growing along the slice axis (s)
+STRESS: dict[str, tuple[str, str | None, float]] = {
+    "flipped": ("halves", None, 0.0),
+    "alternating": ("alternating", "alternating", 0.0),
+    "gradient": ("gradient", "halves", 0.0),
+    "random-signs": ("random", "random", 0.0),
+    "delays": ("halves", "thirds", 0.3),
+}
 
 
 def simulate_case(case: Case) -> np.ndarray:
     truth = scheme_times(case.n_slices, case.tr, case.order, case.multiband)
     neural = case.signal == "brain"
-    if case.signal == "flipped":
+    if case.signal in STRESS:
+        resp_signs, card_signs, delay = STRESS[case.signal]
         sim = BrainRun(
             shape=(INPLANE, INPLANE, case.n_slices, case.volumes), repetition_time=case.tr,
             slice_times=truth, task=0.1, network=0.1, global_signal=0.0,
-            respiration=case.respiration, cardiac=0.0, noise=NOISE[case.snr],
-            respiration_flip=True, seed=case.seed)
+            respiration=case.respiration, cardiac=0.0 if card_signs is None else case.cardiac,
+            noise=NOISE[case.snr], respiration_signs=resp_signs,
+            cardiac_signs=card_signs or "none", physio_delay=delay, seed=case.seed)
         return simulate_brain(sim)
     sim = BrainRun(
         shape=(INPLANE, INPLANE, case.n_slices, case.volumes), repetition_time=case.tr,
@@ -175,8 +190,15 @@ def run_case(case: Case) -> list[Outcome]:
                       if c.name == decision.rival_name), None)
         is_truth = rival is not None and ev.schedule_distance(rival.times, truth) < 1e-6
         out.append(Outcome(case, name, decision.verdict, decision.rival_name, is_truth,
-                           decision.effect, decision.z_rival, decision.p_evidence, seconds))
+                           decision.effect, decision.z_rival, decision.p_evidence, seconds,
+                           decision.z_signs))
     return out
+
+
+def _stress_seed(signal: str) -> int:
+    if signal in ("noise", "voxelwise", "physio-only", "flipped"):
+        return 50_000 + 1000 * len(signal)  # the seeds of the earlier study
+    return 60_000 + 1000 * list(STRESS).index(signal)
 
 
 def design(quick: bool) -> list[Case]:
@@ -198,17 +220,18 @@ def design(quick: bool) -> list[Case]:
         mistake = applicable[int(rng.integers(len(applicable)))]
         cases.append(Case(tr, n, mb, volumes, snr, physio, float(rng.uniform(low, high)),
                           float(rng.uniform(low, high)), order, mistake, base + i))
-    extra = 8 if quick else 40
-    for signal in ("noise", "voxelwise", "physio-only", "flipped"):
+    for signal in ("noise", "voxelwise", "physio-only", *STRESS):
+        extra = (8 if quick else 40) if signal in ("noise", "voxelwise", "physio-only",
+                                                    "flipped") else (8 if quick else 24)
         for i in range(extra):
             tr = TRS[i % len(TRS)]
             n, mb = LAYOUTS[tr][i % len(LAYOUTS[tr])]
             order = ORDERS[i % len(ORDERS)]
             applicable = [m for m in MISTAKES if wrong_claim(n, tr, order, mb, m) is not None]
-            amp = (0.5, 1.0) if signal in ("physio-only", "flipped") else (0.0, 0.0)
+            amp = (0.5, 1.0) if signal == "physio-only" or signal in STRESS else (0.0, 0.0)
             cases.append(Case(tr, n, mb, 300, "medium", "high", amp[i % 2], amp[i % 2],
                               order, applicable[i % len(applicable)],
-                              base + 50_000 + 1000 * len(signal) + i, signal))
+                              base + _stress_seed(signal) + i, signal))
     return cases
 
 
@@ -221,7 +244,8 @@ def _outcome(saved: dict[str, object]) -> Outcome:
     return Outcome(case, str(saved["claim"]), str(saved["verdict"]),
                    saved["rival"], bool(saved["rival_is_truth"]),  # type: ignore[arg-type]
                    saved["effect"], saved["z_rival"],  # type: ignore[arg-type]
-                   float(saved["p_evidence"]), float(saved["seconds"]))  # type: ignore[arg-type]
+                   float(saved["p_evidence"]), float(saved["seconds"]),  # type: ignore[arg-type]
+                   saved.get("z_signs"))  # type: ignore[arg-type]
 
 
 def _rate(outcomes: Iterable[Outcome], verdict: str) -> tuple[int, int]:
@@ -290,14 +314,13 @@ def summarise(outcomes: Sequence[Outcome]) -> dict[str, object]:
                       "supported": _rate([o for o in wrong if o.claim == m], "supported")}
                   for m in MISTAKES}
     named = sum(1 for o in wrong if o.verdict == "contradicted" and o.rival_is_truth)
-    # the stress test (respiration of opposite sign in lower and upper slices) is outside
-    # the realistic range and reported on its own
-    realistic = [o for o in outcomes if o.case.signal != "flipped"]
-    false_acc = [o for o in realistic if o.claim == "true" and o.verdict == "contradicted"]
-    all_true = [o for o in realistic if o.claim == "true"]
+    # every run counts, the stress tests (physiology whose sign or delay varies along the
+    # slice axis, weak neural signal) included; they are also reported on their own
+    false_acc = [o for o in outcomes if o.claim == "true" and o.verdict == "contradicted"]
+    all_true = [o for o in outcomes if o.claim == "true"]
     extras = {s: {"true": row([o for o in outcomes if o.case.signal == s and o.claim == "true"]),
                   "wrong": row([o for o in outcomes if o.case.signal == s and o.claim != "true"])}
-              for s in ("noise", "voxelwise", "physio-only", "flipped")}
+              for s in ("noise", "voxelwise", "physio-only", *STRESS)}
     return {
         "confusion": {"true claim": row(true_claims), "wrong claim": row(wrong)},
         "false_accusations": [len(false_acc), len(all_true)],
@@ -323,7 +346,8 @@ def summarise(outcomes: Sequence[Outcome]) -> dict[str, object]:
         "thresholds": {"shuffled_sets": ev.N_SETS, "z_contradict": ev.Z_CONTRADICT,
                        "min_effect": ev.MIN_EFFECT, "z_region": ev.Z_REGION,
                        "z_support": ev.Z_SUPPORT, "z_tie": ev.Z_TIE,
-                       "tie_effect": ev.TIE_EFFECT, "max_true_hz": ev.MAX_TRUE_HZ},
+                       "tie_effect": ev.TIE_EFFECT, "max_true_hz": ev.MAX_TRUE_HZ,
+                       "z_sign": ev.Z_SIGN},
     }
 
 
@@ -606,7 +630,17 @@ def write_markdown(summary: dict[str, object], power: dict[str, dict[str, float]
              "physio-only": "physiology only (respiration and cardiac 0.5-1 %, no neural "
                             "signal)",
              "flipped": "stress test: respiration 0.5-1 % of opposite sign in the lower and "
-                        "upper slices, weak neural signal"}
+                        "upper slices, weak neural signal",
+             "alternating": "stress test: respiration and cardiac 0.5-1 %, sign flipping "
+                            "every 4 slices, weak neural signal",
+             "gradient": "stress test: respiration 0.5-1 % with a smooth sign gradient "
+                         "along the slices (+1 to -1), cardiac of opposite sign in the "
+                         "lower and upper slices, weak neural signal",
+             "random-signs": "stress test: respiration and cardiac 0.5-1 % with a random "
+                             "sign in every slice, weak neural signal",
+             "delays": "stress test: respiration (opposite signs by halves) and cardiac "
+                       "(signs +, -, + by thirds) 0.5-1 %, both delayed by 0 to 0.3 s "
+                       "along the slice axis, weak neural signal"}
     lines += ["", "## Runs without neural signal (300 volumes, TR 0.8-2.5 s)", "",
               "| data | claim | " + " | ".join(VERDICTS) + " |",
               "|---|---|" + "---:|" * len(VERDICTS)]
@@ -661,6 +695,8 @@ def main(argv: Sequence[str] | None = None) -> int:
                        effect=None if o.effect is None else round(o.effect, 4),
                        z_rival=None if o.z_rival is None or not math.isfinite(o.z_rival)
                        else round(o.z_rival, 3), p_evidence=round(o.p_evidence, 4),
+                       z_signs=None if o.z_signs is None or not math.isfinite(o.z_signs)
+                       else round(o.z_signs, 3),
                        rival_is_truth=o.rival_is_truth, seconds=round(o.seconds, 4))
                   for o in results]}, separators=(",", ":"), default=str) + "\n",
         encoding="utf-8")
