@@ -17,17 +17,25 @@ cost little. Two calibrations:
   each made by shuffling the claimed times across slices; the best candidate
   must beat the best order of every set (a permutation p of ``1/(N_SETS+1)``
   that accounts for picking the best of many candidates);
-* differences: the score is also a mean of per-volume contributions (time
-  domain), so a moving-block bootstrap over volumes gives paired replicates of
-  every candidate's score and a z for any difference.
+* differences: the score is a mean of per-bin contributions, so a moving-block
+  bootstrap over frequency bins gives paired replicates of every candidate's
+  score and a z for any difference.
+
+A second, sign-invariant score (:func:`doubled`, :func:`sign_scores`) lets every
+channel carry its own real gain (a sign) for a shared component: physiology of
+opposite signs in different slices cancels in the delay-and-sum under the true
+schedule, and could make a wrong schedule score higher; it cannot under this score.
 
 :func:`decide` turns them into a verdict: ``undecidable`` without timing
 evidence (pure noise, voxel-wise fluctuations, a shared signal too slow for
 the delays to matter); ``contradicted`` when a materially different
 alternative beats the claim with ``z >= Z_CONTRADICT`` and a relative effect
-of at least ``MIN_EFFECT``; ``supported`` when the claim itself beats the best
-of every shuffled set and no alternative leads it with ``z >= Z_TIE`` and
-effect ``>= TIE_EFFECT``; ``undecidable`` otherwise.
+of at least ``MIN_EFFECT``, in both halves of the image, and with
+``z >= Z_SIGN`` under the sign-invariant score; ``supported`` when the claim
+itself beats the best of every shuffled set and the best alternatives with
+``z <= -Z_SUPPORT`` and none of them leads it with ``z >= Z_SIGN`` under the
+sign-invariant score; ``consistent`` when it beats shuffled orders and an
+alternative fits about as well; ``undecidable`` otherwise.
 
 No files here: the pipeline streams volumes and feeds :func:`channel_sums`.
 """
@@ -739,6 +747,7 @@ __all__ = [
     "block_bootstrap",
     "channel_sums",
     "decide",
+    "doubled",
     "evaluate",
     "gather",
     "make_layout",
@@ -748,5 +757,6 @@ __all__ = [
     "schedule_distance",
     "shuffle_maxima",
     "shuffled_totals",
+    "sign_scores",
     "weigh",
 ]
