@@ -45,7 +45,7 @@ def _sequential(n: int, ascending: bool = True, multiband: int = 1) -> tuple[flo
 
 
 def _brain(times: tuple[float, ...], tr: float, *, seed: int, volumes: int = 300,
-           **kwargs: float) -> np.ndarray:
+           **kwargs: float | str) -> np.ndarray:
     # BrainRun's task response is the canonical double-gamma response checked against
     # nilearn's "glover" model in tests/test_validation.py; respiration and cardiac rates
     # are the adult resting ranges (common practice, no source)
@@ -95,6 +95,42 @@ def test_aliased_oscillation_is_aligned_by_the_true_schedule_not_the_reversed_on
     coherence = (total[:, peak] - diagonal) / (23 * diagonal)
     assert coherence[0] > 0.99
     assert coherence[1] < 0.8 and coherence[2] < 0.5, coherence
+
+
+def test_the_sign_invariant_score_is_the_best_real_gain_fit() -> None:
+    # linear algebra (textbook): with y = a + ib, Re(y y^H) = a a^T + b b^T, and its top
+    # eigenvalue (the power one common component with a free real gain per channel
+    # explains) is (|y|^2 + |sum y_c^2|) / 2; checked against numpy's symmetric eigensolver
+    rng = np.random.default_rng(8)
+    for _ in range(20):
+        y = rng.normal(size=9) + 1j * rng.normal(size=9)
+        top = np.linalg.eigvalsh(np.real(np.outer(y, y.conj())))[-1]
+        assert top == pytest.approx((np.sum(np.abs(y) ** 2) + abs(np.sum(y ** 2))) / 2)
+
+
+def test_opposite_signs_cancel_the_true_alignment_but_not_the_sign_invariant_one() -> None:
+    # an oscillation aliased as in the test above (sampling theorem), but of opposite sign
+    # in the lower and upper slices: the true schedule's delay-and-sum cancels it, while
+    # the sign-invariant score (a sign is a phase of pi, which squaring removes) still
+    # aligns every slice under the true schedule and not under the reversed order
+    tr, g, n, nz = 2.5, 0.27, 200, 12
+    truth = np.asarray(_sequential(nz)) * tr / TR
+    signs = np.where(np.arange(nz) < nz // 2, 1.0, -1.0)
+    rng = np.random.default_rng(0)
+    courses = [signs[z] * np.cos(2 * np.pi * g * (np.arange(n) * tr + truth[z]))
+               + 0.05 * rng.normal(size=n) for z in range(nz) for _ in range(2)]
+    prepared = ev.prepare(np.asarray(courses), tr, np.repeat(np.arange(nz), 2))
+    spectra = ev.region_spectra(prepared, nz, np.tile([0, 1], nz))
+    peak = int(np.argmin(np.abs(spectra.freqs - abs(g - 1 / tr))))
+    schedules = np.stack([truth, truth.max() - truth])
+    linear = ev.bin_scores(spectra, schedules).total[:, peak]
+    diagonal = spectra.diagonal[peak]
+    assert (linear[0] - diagonal) / (23 * diagonal) < 0.6  # largely cancelled
+    twice = ev.doubled(spectra)
+    signed = ev.bin_scores(twice, schedules, 2 * ev.MAX_TRUE_HZ).total[:, peak]
+    rows = twice.channels
+    coherence = (signed - twice.diagonal[peak]) / ((rows - 1) * twice.diagonal[peak])
+    assert coherence[0] > 0.99 and coherence[1] < 0.8, coherence
 
 
 def test_noise_scores_the_same_for_every_schedule_on_average() -> None:
@@ -208,6 +244,53 @@ def test_a_wrong_claim_at_a_favourable_setting_is_contradicted_naming_the_truth(
         decision = verify_array(data, claim, TR, seed=61)
         assert decision.verdict == "contradicted", decision
         assert decision.z_regions is not None and min(decision.z_regions) >= ev.Z_REGION
+        rival = next(c for c in candidates(claim, TR) if c.name == decision.rival_name)
+        assert ev.schedule_distance(rival.times, truth) < 1e-9
+
+
+@pytest.mark.parametrize(("pattern", "cardiac", "tr", "layout", "seed"), [
+    ("halves", "none", 1.5, (24, 2, "descending"), 71),
+    ("halves", "none", 2.5, (24, 2, "interleaved"), 72),
+    ("halves", "none", 0.8, (24, 3, "ascending"), 73),
+    ("alternating", "random", 2.0, (24, 1, "interleaved"), 74),
+    ("gradient", "halves", 1.5, (24, 2, "ascending"), 75),
+])
+def test_physiology_of_varying_sign_never_turns_a_true_claim_into_a_contradiction(
+        pattern: str, cardiac: str, tr: float, layout: tuple[int, int, str],
+        seed: int) -> None:
+    # physiological signal changes vary in sign across the brain (common practice, no
+    # source); respiration 0.2-0.35 Hz and heart 0.9-1.3 Hz in adults at rest (common
+    # practice, no source) alias at these TRs (sampling theorem). With opposite signs in
+    # groups of slices the true schedule cancels them in a delay-and-sum, so a wrong
+    # schedule can align the slices better; weak neural signal (task and network 0.1 %)
+    n, multiband, order = layout
+    if order == "interleaved":
+        p = Protocol(n, "interleaved", True, 2, 0, multiband, repetition_time=tr)
+    else:
+        p = Protocol(n, "sequential", order == "ascending", multiband=multiband,
+                     repetition_time=tr)
+    truth = array_times(p)
+    data = _brain(truth, tr, seed=seed, task=0.1, network=0.1, global_signal=0.0,
+                  respiration=1.0, cardiac=0.0 if cardiac == "none" else 0.8,
+                  respiration_signs=pattern, cardiac_signs=cardiac)
+    decision = verify_array(data, truth, tr, seed=seed)
+    assert decision.verdict != "contradicted", decision
+    # a wrong claim on such data is never "supported"
+    wrong = verify_array(data, truth[::-1], tr, seed=seed)
+    assert wrong.verdict != "supported", wrong
+
+
+def test_a_wrong_claim_is_still_contradicted_when_physiology_changes_sign() -> None:
+    # favourable setting (TR 2 s, 300 volumes, high SNR, ordinary neural signal) with a
+    # respiration of opposite signs in the lower and upper slices and cardiac pulsation
+    # whose sign alternates every 4 slices: both scores must agree, and they do
+    truth = _interleaved(24)
+    data = _brain(truth, TR, seed=62, noise=1.0, respiration=0.5, cardiac=0.4,
+                  respiration_signs="halves", cardiac_signs="alternating")
+    for claim in (truth[::-1], _sequential(24)):
+        decision = verify_array(data, claim, TR, seed=62)
+        assert decision.verdict == "contradicted", decision
+        assert decision.z_signs is not None and decision.z_signs >= ev.Z_SIGN
         rival = next(c for c in candidates(claim, TR) if c.name == decision.rival_name)
         assert ev.schedule_distance(rival.times, truth) < 1e-9
 

@@ -17,17 +17,25 @@ cost little. Two calibrations:
   each made by shuffling the claimed times across slices; the best candidate
   must beat the best order of every set (a permutation p of ``1/(N_SETS+1)``
   that accounts for picking the best of many candidates);
-* differences: the score is also a mean of per-volume contributions (time
-  domain), so a moving-block bootstrap over volumes gives paired replicates of
-  every candidate's score and a z for any difference.
+* differences: the score is a mean of per-bin contributions, so a moving-block
+  bootstrap over frequency bins gives paired replicates of every candidate's
+  score and a z for any difference.
+
+A second, sign-invariant score (:func:`doubled`, :func:`sign_scores`) lets every
+channel carry its own real gain (a sign) for a shared component: physiology of
+opposite signs in different slices cancels in the delay-and-sum under the true
+schedule, and could make a wrong schedule score higher; it cannot under this score.
 
 :func:`decide` turns them into a verdict: ``undecidable`` without timing
 evidence (pure noise, voxel-wise fluctuations, a shared signal too slow for
 the delays to matter); ``contradicted`` when a materially different
 alternative beats the claim with ``z >= Z_CONTRADICT`` and a relative effect
-of at least ``MIN_EFFECT``; ``supported`` when the claim itself beats the best
-of every shuffled set and no alternative leads it with ``z >= Z_TIE`` and
-effect ``>= TIE_EFFECT``; ``undecidable`` otherwise.
+of at least ``MIN_EFFECT``, in both halves of the image, and with
+``z >= Z_SIGN`` under the sign-invariant score; ``supported`` when the claim
+itself beats the best of every shuffled set and the best alternatives with
+``z <= -Z_SUPPORT`` and none of them leads it with ``z >= Z_SIGN`` under the
+sign-invariant score; ``consistent`` when it beats shuffled orders and an
+alternative fits about as well; ``undecidable`` otherwise.
 
 No files here: the pipeline streams volumes and feeds :func:`channel_sums`.
 """
@@ -65,6 +73,9 @@ Z_REGION = 1.5
 Z_SUPPORT = 2.0
 Z_SUPPORT_REGION = 0.0
 Z_TIE = 1.0
+#: the sign-invariant score (:func:`doubled`) must agree: a rival must beat the claim there
+#: with at least this z for a contradiction; beating it there with this z bars "supported"
+Z_SIGN = 2.0
 TIE_EFFECT = 0.05
 #: alternatives closer than this to the claim (RMS seconds, after the best common
 #: offset, as a fraction of the acquisition window) count as the same schedule
@@ -234,6 +245,27 @@ def region_spectra(prepared: Prepared, n_slices: int, region_of: np.ndarray) -> 
     freqs = np.arange(1, n // 2 + 1) / (n * prepared.repetition_time)
     return Spectra(out[0], out[1], freqs, diagonal, bin_weights(diagonal),
                    int(x.shape[0]), prepared.repetition_time)
+
+
+def doubled(spectra: Spectra) -> Spectra:
+    """The phase-doubled spectra behind the sign-invariant score.
+
+    Let every channel carry its own real gain (a sign and a size) for a shared component.
+    At one bin, with ``y_c`` the channel spectra aligned by a schedule, the best real-gain
+    fit of one common component explains ``(sum |y_c|^2 + |sum y_c^2|) / 2`` of the power
+    (the top eigenvalue of ``Re(y y^H)``): a real gain cannot absorb a phase, but a sign
+    is a phase of pi, which squaring removes. ``sum y_c^2`` is the same delay-and-sum as
+    :func:`bin_scores` computes, applied to the squared spectra at twice the frequency
+    (a component at true frequency ``g`` gives ``y_c^2`` the phase ``2 pi (2 g) t_c``), so
+    the returned spectra go through the same code with ``max_hz`` doubled. Each row (a
+    slice in one half of the image) is one channel; its power is ``|X|^4``. The timing of
+    a channel is then known only modulo half a cycle of the component's true frequency."""
+    a = spectra.region_a ** 2
+    b = spectra.region_b ** 2
+    diagonal = (np.abs(a) ** 2).sum(axis=0) + (np.abs(b) ** 2).sum(axis=0)
+    rows = int((np.abs(a).sum(axis=1) > 0).sum() + (np.abs(b).sum(axis=1) > 0).sum())
+    return Spectra(a, b, 2.0 * spectra.freqs, diagonal, bin_weights(diagonal), max(rows, 2),
+                   spectra.repetition_time / 2.0)
 
 
 def bin_weights(diagonal: np.ndarray, width: int = PEAK_WIDTH) -> np.ndarray:
@@ -456,6 +488,9 @@ class Decision:
     rival_wins: float | None = None
     #: the same z in each of the two spatial regions (each scored independently)
     z_regions: tuple[float, float] | None = None
+    #: the z of rival - claimed under the sign-invariant score (each slice and half of the
+    #: image free to carry its own sign of a shared component)
+    z_signs: float | None = None
     #: permutation p values: the share of shuffled sets whose best beats the best
     #: candidate (timing evidence) and the claim
     p_evidence: float = 1.0
@@ -480,6 +515,7 @@ class Decision:
             "effect": r(self.effect),
             "z_rival": r(self.z_rival),
             "z_regions": None if self.z_regions is None else [r(v) for v in self.z_regions],
+            "z_signs": r(self.z_signs),
             "interval": None if self.interval is None else [r(v) for v in self.interval],
             "rival_wins": r(self.rival_wins),
             "p_evidence": r(self.p_evidence),
@@ -521,6 +557,8 @@ class Evidence:
     scores: np.ndarray  # (candidates,) normalised
     null_maxima: np.ndarray
     null_mean: float
+    #: the sign-invariant scores (:func:`doubled` spectra) of every candidate, per bin
+    signs: BinScores | None = None
 
 
 def _paired_z(diff_bins: np.ndarray, block: int, seed: int
@@ -532,10 +570,23 @@ def _paired_z(diff_bins: np.ndarray, block: int, seed: int
     return _z(centre, reps - reps.mean()), (float(low), float(high)), float(np.mean(reps > 0))
 
 
-def _beats(fields: dict[str, Any]) -> bool:
+def _leads(fields: dict[str, Any]) -> bool:
+    """The rival beats the claim under the ordinary score, overall and in both halves."""
     effect = fields["effect"]
     return (fields["z_rival"] >= Z_CONTRADICT and effect is not None
             and effect >= MIN_EFFECT and min(fields["z_regions"]) >= Z_REGION)
+
+
+def _signs_agree(fields: dict[str, Any]) -> bool:
+    z = fields.get("z_signs")
+    return z is None or z >= Z_SIGN
+
+
+def _beats(fields: dict[str, Any]) -> bool:
+    """A contradiction: the rival leads under the ordinary score and under the
+    sign-invariant one (so physiology of opposite signs in different slices, which the
+    true schedule cancels, cannot make the lead)."""
+    return _leads(fields) and _signs_agree(fields)
 
 
 def decide(candidates: Sequence[Candidate], evidence: Evidence, window: float, *,
@@ -566,6 +617,7 @@ def decide(candidates: Sequence[Candidate], evidence: Evidence, window: float, *
         equivalent=tuple(candidates[i].name for i in equivalent), ranking=ranking,
     )
     rival_fields: dict[str, Any] = {}
+    signs_against: list[dict[str, Any]] = []
     block = bin_block(evidence.spectra.freqs)
     bins = evidence.bins
     if others:
@@ -576,9 +628,14 @@ def decide(candidates: Sequence[Candidate], evidence: Evidence, window: float, *
             z_a = _paired_z(bins.region_a[i] - bins.region_a[claimed], block, seed + 1)[0]
             z_b = _paired_z(bins.region_b[i] - bins.region_b[claimed], block, seed + 2)[0]
             diff = float(scores[i] - scores[claimed])
+            z_s = None
+            if evidence.signs is not None:
+                z_s = _paired_z(evidence.signs.total[i] - evidence.signs.total[claimed],
+                                block, seed + 3)[0]
             return dict(rival_name=candidates[i].name, rival_score=float(scores[i]),
                         effect=diff / spread if spread > 0 else None, z_rival=z,
-                        interval=interval, rival_wins=wins, z_regions=(z_a, z_b))
+                        interval=interval, rival_wins=wins, z_regions=(z_a, z_b),
+                        z_signs=z_s)
 
         # the claim is tested against the best few alternatives, so that near-ties in
         # score cannot swap the alternative it is judged against: a contradiction names
@@ -586,7 +643,10 @@ def decide(candidates: Sequence[Candidate], evidence: Evidence, window: float, *
         # (highest z) is reported
         tested = [challenge(i) for i in sorted(others, key=lambda i: -scores[i])[:RIVALS]]
         beating = [t for t in tested if _beats(t)]
-        rival_fields = beating[0] if beating else max(tested, key=lambda t: t["z_rival"])
+        leading = [t for t in tested if _leads(t)]
+        rival_fields = (beating or leading or [max(tested, key=lambda t: t["z_rival"])])[0]
+        signs_against = [t for t in tested
+                         if t["z_signs"] is not None and t["z_signs"] >= Z_SIGN]
     threshold = 1.0 / (sets + 1) + 1e-12
     if p_evidence > threshold:
         return Decision("undecidable", "the data show too little timing evidence: no "
@@ -600,6 +660,12 @@ def decide(candidates: Sequence[Candidate], evidence: Evidence, window: float, *
             return Decision("contradicted", f"{rival_fields['rival_name']} aligns the slices "
                             "clearly better than the claimed schedule, in every frequency "
                             "band and in both halves of the image", **base, **rival_fields)
+        if _leads(rival_fields):
+            return Decision("undecidable", f"{rival_fields['rival_name']} aligns the slices "
+                            "better than the claimed schedule, but not once each slice may "
+                            "carry its own sign of the shared signal (physiology of opposite "
+                            "signs in different slices can make such a lead)",
+                            **base, **rival_fields)
         if z_rival >= Z_CONTRADICT and effect >= MIN_EFFECT:
             return Decision("undecidable", f"{rival_fields['rival_name']} aligns the slices "
                             "better than the claimed schedule, but the two halves of the "
@@ -607,6 +673,11 @@ def decide(candidates: Sequence[Candidate], evidence: Evidence, window: float, *
     if p_claimed > threshold:
         return Decision("undecidable", "the evidence is too weak to support or contradict "
                         "the claimed schedule", **base, **rival_fields)
+    if signs_against:
+        return Decision("undecidable", "no alternative clearly beats the claimed schedule, "
+                        f"but {signs_against[0]['rival_name']} aligns the slices better once "
+                        "each slice may carry its own sign of the shared signal",
+                        **base, **signs_against[0])
     if z_rival is None or (z_rival <= -Z_SUPPORT and regions is not None
                            and max(regions) < -Z_SUPPORT_REGION):
         return Decision("supported", "the claimed schedule aligns the slices better than "
@@ -627,13 +698,24 @@ def gather(courses: np.ndarray, slice_of: np.ndarray, region_of: np.ndarray,
     prepared = prepare(courses, repetition_time, slice_of)
     n_slices = len(candidates[0].times)
     spectra = region_spectra(prepared, n_slices, region_of)
-    raw = bin_scores(spectra, np.asarray([c.times for c in candidates], dtype=np.float64))
+    times = np.asarray([c.times for c in candidates], dtype=np.float64)
+    raw = bin_scores(spectra, times)
     bins = BinScores(weigh(raw.total, spectra), weigh(raw.region_a, spectra),
                      weigh(raw.region_b, spectra))
     scores = normalise(bins.total.sum(axis=1), spectra)
     claimed = next(c for c in candidates if c.kind == "claimed")
     maxima, mean, _ = shuffle_maxima(spectra, claimed.times, len(candidates), sets, seed)
-    return Evidence(spectra, bins, scores, maxima, mean)
+    return Evidence(spectra, bins, scores, maxima, mean, sign_scores(spectra, times))
+
+
+def sign_scores(spectra: Spectra, schedules: np.ndarray, max_hz: float = MAX_TRUE_HZ
+                ) -> BinScores:
+    """Weighted per-bin sign-invariant scores of schedules ``(q, n_slices)`` (see
+    :func:`doubled`)."""
+    twice = doubled(spectra)
+    raw = bin_scores(twice, schedules, 2.0 * max_hz)
+    return BinScores(weigh(raw.total, twice), weigh(raw.region_a, twice),
+                     weigh(raw.region_b, twice))
 
 
 def evaluate(courses: np.ndarray, slice_of: np.ndarray, repetition_time: float,
@@ -665,6 +747,7 @@ __all__ = [
     "block_bootstrap",
     "channel_sums",
     "decide",
+    "doubled",
     "evaluate",
     "gather",
     "make_layout",
@@ -674,5 +757,6 @@ __all__ = [
     "schedule_distance",
     "shuffle_maxima",
     "shuffled_totals",
+    "sign_scores",
     "weigh",
 ]

@@ -164,7 +164,41 @@ class BrainRun:
     ar1: float = 0.3  # lag-one autocorrelation of the noise over volumes
     #: a stress test: the respiration map changes sign between the lower and upper slices
     respiration_flip: bool = False
+    #: stress tests: a sign pattern along the slice axis for the respiration and for the
+    #: cardiac map (see :func:`slice_signs`), and a delay of both growing linearly along
+    #: the slice axis up to this many seconds (a travelling wave)
+    respiration_signs: str = "none"
+    cardiac_signs: str = "none"
+    physio_delay: float = 0.0
     seed: int = 0
+
+
+#: sign patterns along the slice axis offered by :func:`slice_signs`
+SIGN_PATTERNS = ("none", "halves", "thirds", "alternating", "gradient", "random")
+
+
+def slice_signs(pattern: str, n_slices: int, rng: np.random.Generator | None = None
+                ) -> np.ndarray:
+    """A gain per slice: ``none`` all 1; ``halves`` -1 in the upper half; ``thirds`` +, -,
+    + by thirds; ``alternating`` a sign flip every 4 slices; ``gradient`` a smooth change
+    from +1 to -1 (``cos(pi z / (n - 1))``, crossing zero in the middle); ``random`` a
+    random sign per slice (``rng`` required)."""
+    z = np.arange(n_slices)
+    if pattern == "none":
+        return np.ones(n_slices)
+    if pattern == "halves":
+        return np.where(z < n_slices // 2, 1.0, -1.0)
+    if pattern == "thirds":
+        return np.where((z * 3 // max(n_slices, 1)) == 1, -1.0, 1.0)
+    if pattern == "alternating":
+        return np.where((z // 4) % 2 == 0, 1.0, -1.0)
+    if pattern == "gradient":
+        return np.cos(np.pi * z / max(n_slices - 1, 1))
+    if pattern == "random":
+        if rng is None:
+            raise ValueError("a random sign pattern needs a generator")
+        return rng.choice((-1.0, 1.0), n_slices)
+    raise ValueError(f"unknown sign pattern {pattern!r}")
 
 
 def _smooth_field(rng: np.random.Generator, shape: tuple[int, ...], width: float
@@ -241,6 +275,13 @@ def simulate_brain(sim: BrainRun) -> np.ndarray:
         resp_map[:, :, nz // 2:] *= -1.0
     card_map = np.clip(_smooth_field(rng, (nx, ny, nz), 2) - 0.5, 0, None) * 2.0
     card_delay = 0.1 * (1 + _smooth_field(rng, (nx, ny, nz), 4)).clip(0, None)
+    if sim.respiration_signs != "none" or sim.cardiac_signs != "none" or sim.physio_delay:
+        # stress patterns drawn from their own generator: the run's other draws unchanged
+        extra = np.random.default_rng(sim.seed + 1_000_003)
+        resp_map = resp_map * slice_signs(sim.respiration_signs, nz, extra)[None, None, :]
+        card_map = card_map * slice_signs(sim.cardiac_signs, nz, extra)[None, None, :]
+        card_delay = card_delay + sim.physio_delay * np.linspace(0.0, 1.0, nz)[None, None, :]
+    resp_delay = sim.physio_delay * np.linspace(0.0, 1.0, nz)
     task_map = np.clip(0.5 + _smooth_field(rng, (nx, ny, nz), 3), 0, None)
     latency = sim.latency_sd * _smooth_field(rng, (nx, ny, nz), 3)
     count = rng.poisson(sim.events_per_100 * nv / 100.0)
@@ -275,7 +316,8 @@ def simulate_brain(sim: BrainRun) -> np.ndarray:
         s += sim.global_signal * at(glob, t)[None, None, :]
         rel = t / max(nv * tr, 1.0)
         s += sim.drift * (drift_shape[0] * rel + drift_shape[1] * (rel - 0.5) ** 2)
-        s += sim.respiration * resp_map[:, :, z, None] * at(resp, t)[None, None, :]
+        s += sim.respiration * resp_map[:, :, z, None] * at(resp, t - resp_delay[z]
+                                                            )[None, None, :]
         delayed = t[None, None, :] - card_delay[:, :, z, None]
         s += sim.cardiac * card_map[:, :, z, None] * at(card, delayed.reshape(-1)).reshape(
             delayed.shape)
@@ -290,5 +332,6 @@ def simulate_brain(sim: BrainRun) -> np.ndarray:
     return data
 
 
-__all__ = ["BrainRun", "RunSimulation", "double_gamma", "random_events", "response",
-           "signal_at", "simulate_brain", "simulate_run", "truth_at", "wandering_phase"]
+__all__ = ["SIGN_PATTERNS", "BrainRun", "RunSimulation", "double_gamma", "random_events",
+           "response", "signal_at", "simulate_brain", "simulate_run", "slice_signs", "truth_at",
+           "wandering_phase"]
