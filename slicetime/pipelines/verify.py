@@ -25,8 +25,11 @@ from typing import Any
 
 import numpy as np
 
+from slicetime import rules as _registered  # noqa: F401  (registers the verify/* and units codes)
+from slicetime.codes import make_finding
 from slicetime.engines import verify as ev
 from slicetime.model import MAX_REPETITION_TIME, Finding, RunRecord, Severity, SliceSchedule
+from slicetime.numbers import plain
 from slicetime.readers.errors import ReadError
 from slicetime.readers.volumes import VolumeReader, scaling
 from slicetime.schemes.generate import Protocol, array_times
@@ -195,9 +198,9 @@ def verify_array(data: np.ndarray, claimed: Sequence[float], repetition_time: fl
 
 def _finding(record: RunRecord, verdict: ev.Verdict, message: str,
              evidence: dict[str, object], hint: str | None = None) -> Finding:
-    severity = Severity.WARNING if verdict == "contradicted" else Severity.NOTE
     file = record.metadata_sources.get("SliceTiming", record.path)
-    return Finding(f"verify/{verdict}", severity, message, file, "SliceTiming", evidence, hint)
+    return make_finding(f"verify/{verdict}", message, file=file, field="SliceTiming",
+                        evidence=evidence, hint=hint)
 
 
 def _undecidable(record: RunRecord, why: str, **evidence: object) -> VerifyOutcome:
@@ -230,25 +233,26 @@ def in_seconds(record: RunRecord) -> tuple[SliceSchedule | None, tuple[Finding, 
             value = getattr(schedule, name)
             if value is not None and value > TR_MS_ABOVE / 10:
                 changes[name] = value / 1000.0
-        found.append(Finding(
-            "tr/units-ms", Severity.ERROR,
-            f"{record.path}: RepetitionTime is {schedule.repetition_time:g}, milliseconds; "
-            f"verified with {tr:g} s", tr_file, "RepetitionTime",
-            {"value": schedule.repetition_time, "as_seconds": tr},
-            "Divide RepetitionTime by 1000."))
+        found.append(make_finding(
+            "tr/units-ms",
+            f"{record.path}: RepetitionTime is {plain(schedule.repetition_time)}, "
+            f"milliseconds; verified with {plain(tr)} s", file=tr_file, field="RepetitionTime",
+            evidence={"value": schedule.repetition_time, "as_seconds": tr},
+            hint="Divide RepetitionTime by 1000."))
     converted = dataclasses.replace(schedule, **changes) if changes else schedule
     window = converted.acquisition_window or tr
     times = converted.times
     if max(times) >= window and (looks_like_milliseconds(times, window) or (
             "repetition_time" in changes and max(times) / 1000.0 < window)):
         converted = dataclasses.replace(converted, times=tuple(t / 1000.0 for t in times))
-        found.append(Finding(
-            "timing/units-ms", Severity.ERROR,
-            f"{record.path}: SliceTiming goes up to {max(times):g}, milliseconds; the order "
-            f"was verified with the times divided by 1000 (up to {max(times) / 1000:g} s)",
-            st_file, "SliceTiming",
-            {"max": max(times), "window": window, "as_seconds_max": max(times) / 1000.0},
-            "Divide every SliceTiming entry by 1000 (slicetime fix does this)."))
+        found.append(make_finding(
+            "timing/units-ms",
+            f"{record.path}: SliceTiming goes up to {plain(max(times))}, milliseconds; the "
+            f"order was verified with the times divided by 1000 (up to "
+            f"{plain(max(times) / 1000)} s)", file=st_file, field="SliceTiming",
+            evidence={"max": max(times), "window": window,
+                      "as_seconds_max": max(times) / 1000.0},
+            hint="Divide every SliceTiming entry by 1000 (slicetime fix does this)."))
     return converted, tuple(found)
 
 
