@@ -25,7 +25,7 @@ from typing import Any
 
 import numpy as np
 
-from slicetime import rules as _registered  # noqa: F401  (registers the verify/* and units codes)
+import slicetime.rules  # noqa: F401  (registers the verify/* and units codes it makes)
 from slicetime.codes import make_finding
 from slicetime.engines import verify as ev
 from slicetime.model import MAX_REPETITION_TIME, Finding, RunRecord, Severity, SliceSchedule
