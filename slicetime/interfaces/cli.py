@@ -14,7 +14,7 @@ import os
 import sys
 from collections.abc import Callable, Iterator, Sequence
 from pathlib import Path
-from typing import Any, TypeVar
+from typing import Any, Literal, TypeVar
 
 import click
 
@@ -38,7 +38,7 @@ class RegistryChoice(click.Choice):
         self._names: tuple[str, ...] | None = None
         super().__init__([])
 
-    @property  # type: ignore[override]  # click declares choices as a plain attribute
+    @property  # click declares choices as a plain attribute
     def choices(self) -> tuple[str, ...]:
         if self._names is None:
             self._names = tuple(self._load())
@@ -178,7 +178,7 @@ def friendly(fn: F) -> F:
             )
             sys.exit(EXIT_INTERNAL)
 
-    return wrapper  # type: ignore[return-value]
+    return wrapper  # type: ignore[return-value]  # functools.wraps keeps the signature
 
 
 EXIT_STATUSES = """\b
@@ -439,7 +439,8 @@ def _source_options(check: bool | None, source_map: Path | None) -> Any:
     from slicetime.readers.source import SourceOptions, load_source_map
 
     mapping = load_source_map(source_map) if source_map is not None else {}
-    mode = "off" if check is False else "on" if check or mapping else "auto"
+    mode: Literal["auto", "on", "off"] = (
+        "off" if check is False else "on" if check or mapping else "auto")
     return SourceOptions(mode=mode, mapping=mapping)
 
 
@@ -861,7 +862,7 @@ def timing(
             except ValueError:
                 raise UserError(f"--first must be a slice index or 'auto', not {first!r}") \
                     from None
-            if start < 0:  # type: ignore[operator]
+            if start < 0:
                 raise UserError(f"--first must be a slice index (0 or more), not {first}")
     if delay is not None and delay >= tr:
         raise UserError(f"timing: --delay-time {plain(delay)} must be shorter than --tr "
@@ -869,10 +870,10 @@ def timing(
     active = None if delay is None else tr - delay
     protocol = Protocol(
         n_slices=n_slices,
-        order=order,  # type: ignore[arg-type]
+        order=order,  # type: ignore[arg-type]  # click.Choice gave one of the Literal values
         ascending=not descending,
         step=step,
-        start=start,  # type: ignore[arg-type]
+        start=start,  # type: ignore[arg-type]  # an int or "auto", checked above
         multiband=multiband,
         repetition_time=tr,
         active_time=active,

@@ -47,7 +47,7 @@ def make_console(file: object = None) -> Console:
     stream = file if file is not None else sys.stdout
     width = screen.width_for(stream)
     return Console(
-        file=stream,  # type: ignore[arg-type]
+        file=stream,  # type: ignore[arg-type]  # a text stream; rich types it as IO[str]
         width=width or 10_000,
         highlight=False,
         soft_wrap=True,
@@ -279,7 +279,7 @@ def render_fix_plan(plan: FixPlan, console: Console) -> None:
             if width is not None and len(text) > width:
                 # a diff line is not reflowed (it must stay one line): cut, with a mark
                 text = text[: width - 1] + ("…" if unicode else "~")
-            console.print(Text(text, style=style))
+            console.print(Text(text, style=style or ""))
         console.print()
     for note in plan.notes:
         for i, part in enumerate(screen.wrap_words(f"note: {xml_safe(note)}", width, rest=6)):

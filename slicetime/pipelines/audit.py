@@ -195,7 +195,10 @@ def _policies(
 def check_paths_hold_runs(paths: Sequence[Path], **include: bool) -> None:
     """Walk ``paths`` (names only, no file is read) and raise :class:`NoRunsError` for
     the first that holds no run; for commands that find their runs another way."""
-    _check_every_path_has_runs(paths, list(iter_runs(paths, **include)))
+    _check_every_path_has_runs(paths, list(iter_runs(
+        paths, include_derivatives=include.get("include_derivatives", False),
+        include_sourcedata=include.get("include_sourcedata", False),
+        include_hidden=include.get("include_hidden", False))))
 
 
 class RunFacts:
@@ -266,24 +269,24 @@ class _Interner:
         return found
 
     def text(self, value: str) -> str:
-        return self._one(("s", value), lambda: value)  # type: ignore[no-any-return]
+        return self._one(("s", value), lambda: value)
 
     def mapping(self, value: Mapping[str, Any]) -> Mapping[str, Any]:
         items = tuple(value.items())
-        return self._one(("m", items), lambda: dict(items))  # type: ignore[no-any-return]
+        return self._one(("m", items), lambda: dict(items))
 
     def header(self, value: HeaderInfo | None) -> HeaderInfo | None:
         if value is None:
             return None
         slim = dataclasses.replace(value, file_size=0)
-        return self._one(("h", slim), lambda: slim)  # type: ignore[no-any-return]
+        return self._one(("h", slim), lambda: slim)
 
     def schedule(self, value: SliceSchedule | None) -> SliceSchedule | None:
         if value is None:
             return None
         key = ("t", value.times, value.axis, value.direction, value.repetition_time,
                value.volume_times, value.acquisition_duration, value.delay_time)
-        return self._one(  # type: ignore[no-any-return]
+        return self._one(
             key, lambda: dataclasses.replace(value, sources={}))
 
     def scheme(self, value: Scheme | None, schedule: SliceSchedule | None) -> Scheme | None:
@@ -291,7 +294,7 @@ class _Interner:
             return None
         key = ("c", id(schedule), value.label, value.groups, value.multiband_factor,
                value.regular)
-        return self._one(key, lambda: value)  # type: ignore[no-any-return]
+        return self._one(key, lambda: value)
 
 
 def _severity_counts(findings: Iterable[Finding]) -> tuple[int, int, int]:
@@ -400,7 +403,7 @@ def audit_stream(
         paths, policy_file, include_derivatives, include_sourcedata, include_hidden,
         require_runs)
     totals = AuditTotals(roots=roots, names=dataset_names(roots))
-    totals.policies = {str(r): p.file for r, p in policies.items() if p is not None}
+    totals.policies = {str(r): p.file or "" for r, p in policies.items() if p is not None}
     if on_start is not None:
         on_start(totals)
     job = functools.partial(audit_chunk, policies=policies, verify=verify, source=source,
@@ -449,7 +452,8 @@ def audit_stream(
         if kept:
             totals.extras[index] = kept
             more = _severity_counts(kept)
-            facts.counts = tuple(a + b for a, b in zip(facts.counts, more, strict=True))
+            facts.counts = (facts.counts[0] + more[0], facts.counts[1] + more[1],
+                            facts.counts[2] + more[2])
             for key, value in zip(("error", "warning", "note"), more, strict=True):
                 counts[key] += value
     totals.dataset_findings.extend(phase.overall)
@@ -502,18 +506,18 @@ def dataset_phase(
         policy = policies.get(Path(record.root))
         if policy is None:
             continue
-        codes = dataset_codes_judged(policy, record)  # type: ignore[arg-type]
+        codes = dataset_codes_judged(policy, record)  # type: ignore[arg-type]  # RunFacts quacks
         for code in codes:
             exempt.setdefault(code, set()).add(record.abs_path)
         judged += bool(codes)
-    per_run, overall = check_dataset(records, exempt)  # type: ignore[arg-type]
+    per_run, overall = check_dataset(records, exempt)  # type: ignore[arg-type]  # RunFacts quacks
     by_path = {r.abs_path: r for r in records}
     extras: dict[str, tuple[tuple[Finding, ...], tuple[IgnoredFinding, ...]]] = {}
     for abs_path, found in per_run.items():
-        record = by_path.get(abs_path)
-        policy = policies.get(Path(record.root)) if record is not None else None
-        if policy is not None and found and record is not None:
-            outcome = apply_overrides_and_ignores(policy, record.path, found)
+        owner = by_path.get(abs_path)
+        policy = policies.get(Path(owner.root)) if owner is not None else None
+        if policy is not None and found and owner is not None:
+            outcome = apply_overrides_and_ignores(policy, owner.path, found)
             extras[abs_path] = (tuple(outcome.kept), tuple(outcome.ignored))
         else:
             extras[abs_path] = (tuple(found), ())
@@ -575,7 +579,7 @@ def audit_paths(
         paths, policy_file, include_derivatives, include_sourcedata, include_hidden,
         require_runs)
     result = AuditResult(roots=roots)
-    result.policies = {str(r): p.file for r, p in policies.items() if p is not None}
+    result.policies = {str(r): p.file or "" for r, p in policies.items() if p is not None}
     job = functools.partial(audit_chunk, policies=policies, verify=verify, source=source,
                             store=SidecarStore())
     sharer = ValueSharer()  # one copy of each inherited value, as chunks come back

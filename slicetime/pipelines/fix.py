@@ -495,26 +495,26 @@ def _layout_moves(
             why = f"one value shared by the {len(affected)} runs {top} serves"
             moves.append((top, _move(members[0], key, value, "layout/consolidate", why)))
             for record in affected:
-                source = record.metadata_sources.get(key)
-                if source is not None and source != top:
-                    moves.append((source, _move(record, key, REMOVE, "layout/consolidate",
+                origin = record.metadata_sources.get(key)
+                if origin is not None and origin != top:
+                    moves.append((origin, _move(record, key, REMOVE, "layout/consolidate",
                                                 f"now inherited from {top}")))
     for key in spread:
         for record in records:
-            source = record.metadata_sources.get(key)
+            origin = record.metadata_sources.get(key)
             own = sidecar_path(record.path)
-            if (record.root, record.path) not in wanted or source is None or source == own:
+            if (record.root, record.path) not in wanted or origin is None or origin == own:
                 continue
-            if not all((u.root, u.path) in wanted for u in users[(record.root, source, key)]):
-                note = (f"{source}: {key} not spread: it also serves runs outside the paths "
+            if not all((u.root, u.path) in wanted for u in users[(record.root, origin, key)]):
+                note = (f"{origin}: {key} not spread: it also serves runs outside the paths "
                         "given (give the whole dataset)")
                 if note not in plan.notes:
                     plan.notes.append(note)
                 continue
             value = record.metadata[key]
             moves.append((own, _move(record, key, value, "layout/spread",
-                                     f"copied from {source} into the run's own sidecar")))
-            moves.append((source, _move(record, key, REMOVE, "layout/spread",
+                                     f"copied from {origin} into the run's own sidecar")))
+            moves.append((origin, _move(record, key, REMOVE, "layout/spread",
                                         "now written in each run's own sidecar")))
     return moves
 

@@ -27,7 +27,7 @@ import json
 import re
 from collections.abc import Sequence
 from dataclasses import dataclass
-from json.decoder import scanstring  # type: ignore[attr-defined]
+from json.decoder import scanstring  # type: ignore[attr-defined]  # not in the stubs
 from typing import Any
 
 _WS = re.compile(r"[ \t\n\r]*")
@@ -162,8 +162,8 @@ def render_like(old: str | None, value: Any, *, base: str, unit: str, ascii_only
             compact = re.search(r",\S", old) is not None and ", " not in old
             return _dumps(value, ascii_only, "," if compact else ", ", None)
         lines = old.split("\n")
-        inner = re.match(r"[ \t]*", lines[1]).group(0) if len(lines) > 1 else ""  # type: ignore[union-attr]
-        closing = re.match(r"[ \t]*", lines[-1]).group(0)  # type: ignore[union-attr]
+        inner = re.match(r"[ \t]*", lines[1]).group(0) if len(lines) > 1 else ""  # type: ignore[union-attr]  # always matches
+        closing = re.match(r"[ \t]*", lines[-1]).group(0)  # type: ignore[union-attr]  # always matches
         if inner.startswith(closing) and len(inner) > len(closing):
             unit = inner[len(closing) :]
         base = closing
