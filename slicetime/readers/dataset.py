@@ -113,6 +113,7 @@ class _RootFinder:
 
     def __init__(self) -> None:
         self._described: dict[str, bool] = {}
+        self._root: dict[str, str] = {}  # folder -> the root found for it
 
     def _has_description(self, folder: str) -> bool:
         known = self._described.get(folder)
@@ -123,19 +124,38 @@ class _RootFinder:
 
     def find(self, path: Path) -> Path:
         p = _abs(Path(path))
-        start = p if p.is_dir() else p.parent
-        folder = str(start)
+        return self.find_folder(str(p if p.is_dir() else p.parent))
+
+    def find_folder(self, start: str) -> Path:
+        """The dataset root of the folder ``start``: the nearest folder (``start`` or
+        above) that holds a dataset description, else the parent of the outermost
+        ``sub-*`` folder, else ``start``. Every folder passed on the way up remembers
+        the root found, so the runs of one dataset cost one look each."""
+        start = os.fspath(_abs(Path(start))) if not os.path.isabs(start) else start
+        folder, passed = start, []
+        found: str | None = None
         while True:  # start, then each parent up to the file-system root
+            known = self._root.get(folder)
+            if known is not None:
+                found = known
+                break
+            passed.append(folder)
             if self._has_description(folder):
-                return Path(folder)
+                found = folder
+                break
             parent = os.path.dirname(folder)
             if parent == folder:
                 break
             folder = parent
-        for candidate in reversed((start, *start.parents)):
+        if found is not None:
+            for each in passed:
+                self._root[each] = found
+            return Path(found)
+        begin = Path(start)
+        for candidate in reversed((begin, *begin.parents)):
             if candidate.name.startswith("sub-"):
                 return candidate.parent
-        return start
+        return begin
 
 
 def _time_series_by_name(name: str) -> bool:
@@ -289,9 +309,9 @@ def iter_runs(
     roots: dict[str, Path] = {}
 
     def root_of(run: Path) -> Path:
-        key = str(run.parent)
+        key = os.path.dirname(os.fspath(run))
         if key not in roots:
-            roots[key] = finder.find(run)
+            roots[key] = finder.find_folder(key)
         return roots[key]
 
     found: dict[tuple[str, str], tuple[Path, Path]] = {}
