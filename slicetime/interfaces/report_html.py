@@ -48,6 +48,7 @@ from slicetime.interfaces.report_stream import (
     display_path,
     encode,
     grounds_text,
+    group_label,
     report_root,
 )
 from slicetime.interfaces.safe_text import xml_safe
@@ -135,13 +136,6 @@ def _use(ident: str, size: tuple[float, float], caption: str) -> str:
 # --------------------------------------------------------------------------- grouping
 
 
-def _group_label(key: tuple[str, ...], many_roots: bool) -> str:
-    root, datatype, suffix = key[0], key[1], key[2]
-    parts = [p for p in key[3:] if not p.endswith("-")]
-    name = "_".join([*parts, suffix or "(no suffix)"])
-    if datatype:
-        name = f"{datatype}: {name}"
-    return f"{root} · {name}" if many_roots else name
 
 
 def _column_key(record: RunRecord, suffixes: int) -> str:
@@ -299,7 +293,7 @@ def _summary_cards(totals: AuditTotals, drawings: int) -> str:
 
 
 def _group_name(key: tuple[str, ...], totals: AuditTotals, many_roots: bool) -> str:
-    label = _group_label(key, False)
+    label = group_label(key)
     return f"{totals.names.get(key[0], key[0])} · {label}" if many_roots else label
 
 

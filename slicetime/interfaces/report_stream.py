@@ -300,13 +300,15 @@ def _plural(n: int, word: str) -> str:
     return count(n, word)
 
 
-def _group_label(key: tuple[str, ...], totals: AuditTotals, several: bool) -> str:
-    root, datatype, suffix = key[0], key[1], key[2]
+def group_label(key: tuple[str, ...], root_label: str | None = None) -> str:
+    """How reports name a group of runs (a ``protocol_key``): datatype, the entities
+    that define the protocol and the suffix, after ``root_label`` when given."""
+    datatype, suffix = key[1], key[2]
     parts = [p for p in key[3:] if not p.endswith("-")]
     name = "_".join([*parts, suffix or "(no suffix)"])
     if datatype:
         name = f"{datatype}: {name}"
-    return f"[{totals.names.get(root, root)}] {name}" if several else name
+    return f"{root_label} {name}" if root_label else name
 
 
 def _tr_text(values: Iterable[float | None]) -> str:
@@ -449,10 +451,11 @@ def write_text(source: ReportSource, out: IO[str], *, show_all: bool = False,
             scheme_text = "; ".join(
                 f"{xml_safe(label)} ×{n}" if len(schemes) > 1 else xml_safe(label)
                 for label, n in sorted(schemes.items(), key=lambda kv: (-kv[1], kv[0])))
-            trs = _tr_text(totals.facts[i].schedule.repetition_time  # type: ignore[union-attr]
+            trs = _tr_text(totals.facts[i].schedule.repetition_time  # type: ignore[union-attr]  # filtered below
                            for i in members if totals.facts[i].schedule is not None)
             sums = [sum(totals.facts[i].counts[k] for i in members) for k in range(len(kinds))]
-            rows.append((xml_safe(_group_label(key, totals, several)), str(len(members)), trs,
+            root_label = f"[{totals.names.get(key[0], key[0])}]" if several else None
+            rows.append((xml_safe(group_label(key, root_label)), str(len(members)), trs,
                          *(str(s) for s in sums), scheme_text))
         head = (GROUP_HEAD, "runs", "TR", *(plural_of(k) for k in kinds), "schemes")
         right = {1, *range(3, 3 + len(kinds))}
