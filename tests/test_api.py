@@ -223,3 +223,10 @@ def test_audit_of_a_folder_without_runs_is_an_error(tmp_path: Path) -> None:
     (tmp_path / "empty").mkdir()
     with pytest.raises(NoRunsError):
         slicetime.audit(tmp_path / "empty")
+
+
+def test_the_package_declares_its_type_hints() -> None:
+    # PEP 561: a py.typed marker tells type checkers to use the package's own hints
+    from importlib import resources
+
+    assert resources.files("slicetime").joinpath("py.typed").is_file()
