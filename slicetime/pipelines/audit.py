@@ -5,6 +5,7 @@ from __future__ import annotations
 import dataclasses
 import functools
 import os
+import sys
 from collections import Counter
 from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
@@ -272,7 +273,10 @@ class _Interner:
         return self._one(("s", value), lambda: value)
 
     def mapping(self, value: Mapping[str, Any]) -> Mapping[str, Any]:
-        items = tuple(value.items())
+        # keys and text values interned: every run's parse made its own copies of the same
+        # few words ("sub", "SliceTiming", its subject's label), kept for every run otherwise
+        items = tuple((sys.intern(k), sys.intern(v) if type(v) is str else v)
+                      for k, v in value.items())
         return self._one(("m", items), lambda: dict(items))
 
     def header(self, value: HeaderInfo | None) -> HeaderInfo | None:
