@@ -140,6 +140,7 @@ import importlib, json, resource, sys, time
 from pathlib import Path
 start = time.perf_counter()
 import slicetime.pipelines.correct as mod
+from slicetime.interfaces.report_json import correct_run_object
 from slicetime.pipelines.executor import available_cpus
 imported = time.perf_counter() - start
 totals = {}
@@ -208,7 +209,7 @@ rss_before = maxrss()
 began = time.perf_counter()
 result = mod.correct_paths([Path(sys.argv[1])], options)
 total = time.perf_counter() - began
-assert result.counts()["corrected"] == 1, [r.to_json() for r in result.runs]
+assert result.counts()["corrected"] == 1, [correct_run_object(r) for r in result.runs]
 print(json.dumps({"imports_s": imported, "correct_paths_s": total,
                   "peak_rss_before_bytes": rss_before, "peak_rss_bytes": maxrss(),
                   "missing": missing,
@@ -222,12 +223,13 @@ PROFILE = """
 import cProfile, sys
 from pathlib import Path
 import slicetime.pipelines.correct as mod
+from slicetime.interfaces.report_json import correct_run_object
 from slicetime.pipelines.executor import available_cpus
 options = mod.CorrectOptions(out=Path(sys.argv[2]), threads=available_cpus())
 profiler = cProfile.Profile()
 result = profiler.runcall(mod.correct_paths, [Path(sys.argv[1])], options)
 profiler.dump_stats(sys.argv[3])
-assert result.counts()["corrected"] == 1, [r.to_json() for r in result.runs]
+assert result.counts()["corrected"] == 1, [correct_run_object(r) for r in result.runs]
 """
 
 

@@ -557,3 +557,16 @@ def test_shared_values_survive_pickling_and_become_one_object_again() -> None:
         sharer.add(record)
     assert copies[0].metadata["SliceTiming"] is copies[2].metadata["SliceTiming"]
     assert sharer.replaced == 2
+
+
+def test_correct_reads_its_own_json_back_only_from_regular_files(tmp_path: Path) -> None:
+    # the derivative description and sidecars that correct reads back go through the
+    # bounded regular-file reader: a FIFO in their place reads as "none", never blocks
+    from slicetime.pipelines.provenance import read_description, read_json_object
+
+    fifo = tmp_path / "dataset_description.json"
+    os.mkfifo(fifo)
+    assert within(lambda: read_description(tmp_path)) == {}
+    regular = tmp_path / "x.json"
+    regular.write_text('{"Name": "quiet rooms"}')
+    assert read_json_object(regular) == {"Name": "quiet rooms"}

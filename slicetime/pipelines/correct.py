@@ -182,19 +182,6 @@ class RunOutcome:
     def ok(self) -> bool:
         return self.status in ("corrected", "up-to-date")
 
-    def to_json(self) -> dict[str, Any]:
-        return {
-            "path": self.path,
-            "status": self.status,
-            "reason": self.reason,
-            "output": self.output,
-            "reference_time": self.reference,
-            "warnings": self.warnings,
-            "blocking_findings": [f.to_json() for f in self.blocking],
-            "removed_output": self.removed,
-            "seconds": round(self.seconds, 3),
-        }
-
 
 @dataclass
 class CorrectResult:

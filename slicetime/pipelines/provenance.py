@@ -22,6 +22,7 @@ from slicetime.engines.plan import ResamplingPlan
 from slicetime.model import RunRecord
 from slicetime.pipelines.outputs import output_files, temp_path
 from slicetime.readers.atomic import write_atomic
+from slicetime.readers.errors import ReadError, open_regular, read_bounded
 from slicetime.readers.volumes import file_sha256
 
 PROVENANCE_KEY = "SliceTimeAlignment"
@@ -120,11 +121,8 @@ def _current_settings(recorded: Any) -> Any:
 def up_to_date(
     image_out: Path, sidecar_out: Path, settings: dict[str, Any], inputs: dict[str, Any]
 ) -> bool:
-    try:
-        with open(sidecar_out, encoding="utf-8") as fh:
-            recorded = json.load(fh).get(PROVENANCE_KEY, {})
-    except (OSError, ValueError, AttributeError):
-        return False
+    content = read_json_object(sidecar_out)
+    recorded = content.get(PROVENANCE_KEY, {}) if content is not None else None
     if not isinstance(recorded, dict):
         return False
     if _current_settings(recorded.get("Settings")) != settings \
@@ -172,12 +170,7 @@ def output_sidecar(
 
 
 def read_description(root: Path) -> dict[str, Any]:
-    try:
-        with open(root / "dataset_description.json", encoding="utf-8") as fh:
-            value = json.load(fh)
-        return value if isinstance(value, dict) else {}
-    except (OSError, ValueError):
-        return {}
+    return read_json_object(root / "dataset_description.json") or {}
 
 
 def dataset_names(
@@ -266,12 +259,20 @@ def entry_of(sidecar: dict[str, Any], output: str) -> dict[str, Any] | None:
     return {**recorded, "Sources": sidecar.get("Sources"), "OutputPath": output}
 
 
+#: the largest JSON file (description, output sidecar, provenance) read back
+MAX_JSON_BYTES = 64 << 20
+
+
 def read_json_object(path: Path) -> dict[str, Any] | None:
+    """The JSON object in the regular file ``path`` (read with a bound, so a FIFO or a
+    device put in its place never blocks), or None when there is none."""
     try:
-        with open(path, encoding="utf-8") as fh:
-            value = json.load(fh)
+        fh, st = open_regular(path, str(path))
+        with fh:
+            raw = read_bounded(fh, st.st_size, MAX_JSON_BYTES)
+        value = json.loads(raw) if len(raw) <= MAX_JSON_BYTES else None
         return value if isinstance(value, dict) else None
-    except (OSError, ValueError):
+    except (OSError, ValueError, RecursionError, ReadError):
         return None
 
 
