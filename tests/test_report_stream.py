@@ -96,6 +96,20 @@ def test_streamed_json_equals_the_report_built_in_memory(dataset: Path) -> None:
     assert code == 1 and streamed["root"] == "quiet rooms"
 
 
+def test_a_run_line_is_the_encoded_run_object_byte_for_byte(dataset: Path) -> None:
+    # run_line encodes the shared values (slice times, scheme) once per distinct value;
+    # the text must still be exactly that of the whole object, the first time and when
+    # the value is remembered (milliseconds, no schedule, a hostile name included)
+    from slicetime.interfaces.report_json import run_object
+    from slicetime.interfaces.report_stream import encode, run_line
+
+    runs = audit_paths([dataset]).runs
+    assert any(r.record.schedule is None for r in runs)
+    for _ in range(2):
+        for run in runs:
+            assert run_line(run) == encode(run_object(run))
+
+
 def test_dataset_findings_that_follow_from_a_unit_are_folded_in_the_stream_too(
     tmp_path: Path,
 ) -> None:

@@ -81,8 +81,30 @@ def schema_validator(name: str, pointer: str = "") -> Any:
     return jsonschema.Draft202012Validator(schema, registry=registry)
 
 
+#: the keys of a run object whose values many runs share, in contract order:
+#: ``slice_times`` (the rounded schedule) and ``scheme`` (one per distinct schedule)
+SHARED_RUN_KEYS = ("slice_times", "scheme")
+
+
 def run_object(run: RunResult) -> dict[str, Any]:
     """One run as the contract's run object."""
+    head, origin, tail = run_parts(run)
+    record = run.record
+    schedule = record.schedule
+    return {
+        **head,
+        "slice_times": json_times(schedule.times) if schedule else None,
+        "timing_origin": origin,
+        "scheme": record.scheme.to_json() if record.scheme else None,
+        **tail,
+    }
+
+
+def run_parts(run: RunResult) -> tuple[dict[str, Any], str | None, dict[str, Any]]:
+    """The run object without its shared values (:data:`SHARED_RUN_KEYS`): the keys
+    before ``slice_times``, the ``timing_origin`` between them, and the keys after
+    ``scheme``. :func:`run_object` puts them together; the streamed report encodes
+    the shared values once per distinct value (``report_stream.run_line``)."""
     record = run.record
     schedule = record.schedule
     header = record.header
@@ -92,7 +114,7 @@ def run_object(run: RunResult) -> dict[str, Any]:
     for key in ("MultibandAccelerationFactor", "TaskName", "EchoTime"):
         if key in record.metadata_sources:
             sources[key] = record.metadata_sources[key]
-    return {
+    head = {
         "path": record.path,
         "shape": list(header.shape) if header else None,
         "slice_axis": schedule.axis if schedule else None,
@@ -104,14 +126,14 @@ def run_object(run: RunResult) -> dict[str, Any]:
         "volume_times": json_times(schedule.volume_times) if schedule and schedule.volume_times
         else None,
         "acquisition_duration": _time(schedule.acquisition_duration) if schedule else None,
-        "slice_times": json_times(schedule.times) if schedule else None,
-        "timing_origin": record.timing_origin,
-        "scheme": record.scheme.to_json() if record.scheme else None,
+    }
+    tail = {
         "sources": sources,
         "entities": dict(record.entities),
         "sidecars": list(record.sidecar_chain),
         "findings": [f.to_json() for f in run.findings],
     }
+    return head, record.timing_origin, tail
 
 
 def _time(value: float | None) -> float | None:

@@ -30,8 +30,8 @@ from typing import IO, Any
 from slicetime import __version__
 from slicetime.interfaces import screen
 from slicetime.interfaces.safe_text import _escape, xml_safe
-from slicetime.model import Finding, Severity
-from slicetime.numbers import fixed, plain, secs
+from slicetime.model import Finding, Scheme, Severity
+from slicetime.numbers import fixed, json_times, plain, secs
 from slicetime.pipelines.audit import AuditResult, AuditTotals, RunFacts, RunResult, dataset_names
 from slicetime.rules.dataset import protocol_key
 from slicetime.words import count, plural_of
@@ -52,10 +52,49 @@ def encode(value: Any) -> str:
 
 
 def run_line(run: RunResult) -> str:
-    """The contract's run object of ``run`` as one line of JSON."""
-    from slicetime.interfaces.report_json import run_object
+    """The contract's run object of ``run`` as one line of JSON: the same text as
+    ``encode(run_object(run))``, with the values many runs share (the slice times and
+    the scheme) encoded once per distinct value."""
+    from slicetime.interfaces.report_json import run_parts
 
-    return encode(run_object(run))
+    head, origin, tail = run_parts(run)
+    record = run.record
+    times = _times_text(record.schedule.times) if record.schedule is not None else "null"
+    scheme = _scheme_text(record.scheme) if record.scheme is not None else "null"
+    text = (f'{_ENCODER.encode(head)[:-1]},"slice_times":{times},'
+            f'"timing_origin":{_ENCODER.encode(origin)},"scheme":{scheme},'
+            f'{_ENCODER.encode(tail)[1:]}')
+    return _SURROGATE.sub(_visible, text) if _SURROGATE.search(text) else text
+
+
+#: encodings of shared values; emptied when full, so memory stays bounded
+_FRAGMENTS_MAX = 4096
+_times_texts: dict[tuple[float, ...], str] = {}
+_scheme_texts: dict[int, tuple[Scheme, str]] = {}  # id -> (the scheme, its text)
+
+
+def _times_text(times: tuple[float, ...]) -> str:
+    if type(times) is not tuple:
+        return encode(json_times(times))
+    text = _times_texts.get(times)
+    if text is None:
+        if len(_times_texts) >= _FRAGMENTS_MAX:
+            _times_texts.clear()
+        text = _times_texts[times] = encode(json_times(times))
+    return text
+
+
+def _scheme_text(scheme: Scheme) -> str:
+    # a Scheme is immutable but not hashable (its evidence is a dict): known by identity,
+    # the object kept beside its text so that its id cannot be reused meanwhile
+    hit = _scheme_texts.get(id(scheme))
+    if hit is not None and hit[0] is scheme:
+        return hit[1]
+    if len(_scheme_texts) >= _FRAGMENTS_MAX:
+        _scheme_texts.clear()
+    text = encode(scheme.to_json())
+    _scheme_texts[id(scheme)] = (scheme, text)
+    return text
 
 
 def _finding_from(obj: dict[str, Any]) -> Finding:

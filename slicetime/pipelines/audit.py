@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import dataclasses
 import functools
+import operator
 import os
 import sys
 from collections import Counter
@@ -257,6 +258,10 @@ _FACT_SOURCES = frozenset({"SliceTiming", "RepetitionTime", "VolumeTiming", "Del
                            "MultibandAccelerationFactor", "EchoTime", "TaskName"})
 
 
+_HEADER_KEY = operator.attrgetter(
+    *[f.name for f in dataclasses.fields(HeaderInfo) if f.name != "file_size"])
+
+
 class _Interner:
     """One shared instance per distinct value, so equal facts cost memory once."""
 
@@ -282,8 +287,11 @@ class _Interner:
     def header(self, value: HeaderInfo | None) -> HeaderInfo | None:
         if value is None:
             return None
-        slim = dataclasses.replace(value, file_size=0)
-        return self._one(("h", slim), lambda: slim)
+        key = ("h", *_HEADER_KEY(value))  # every field but the size on disk
+        found = self._values.get(key)
+        if found is None:
+            found = self._values[key] = dataclasses.replace(value, file_size=0)
+        return found
 
     def schedule(self, value: SliceSchedule | None) -> SliceSchedule | None:
         if value is None:

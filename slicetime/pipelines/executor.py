@@ -32,10 +32,11 @@ import itertools
 import os
 import time
 from collections.abc import Callable, Sequence
-from concurrent.futures import FIRST_COMPLETED, Future, ProcessPoolExecutor, wait
-from concurrent.futures.process import BrokenProcessPool
 from dataclasses import dataclass, field
-from typing import Any, Generic, TypeVar
+from typing import TYPE_CHECKING, Any, Generic, TypeVar
+
+if TYPE_CHECKING:  # imported by the process pool only: 12 ms of every start otherwise
+    from concurrent.futures import Future, ProcessPoolExecutor
 
 T = TypeVar("T")
 R = TypeVar("R")
@@ -183,6 +184,9 @@ class ProcessExecutor(Executor):
         self, job: Job[T, R], tracker: _Tracker[R], todo: list[int], started: Any
     ) -> bool:
         """Run ``todo`` in a fresh pool; True when the pool broke (work left undone)."""
+        from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
+        from concurrent.futures.process import BrokenProcessPool
+
         pool = ProcessPoolExecutor(
             max_workers=min(self.jobs, len(todo)), initializer=_remember_flags,
             initargs=(started,),
@@ -243,6 +247,9 @@ class ProcessExecutor(Executor):
 
     def _isolated(self, job: Job[T, R], chunk: Sequence[T]) -> list[R] | None:
         """``job(chunk)`` in a one-worker pool; None when that worker died."""
+        from concurrent.futures import ProcessPoolExecutor
+        from concurrent.futures.process import BrokenProcessPool
+
         pool = ProcessPoolExecutor(
             max_workers=1, initializer=_remember_flags, initargs=(_shared_flags(1),)
         )

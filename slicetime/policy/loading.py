@@ -87,9 +87,10 @@ import sys
 from collections.abc import Collection, Iterable, Mapping, Sequence
 from importlib import resources
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
-import jsonschema
+if TYPE_CHECKING:  # imported where a policy is validated: 50 ms a start otherwise
+    import jsonschema
 
 from slicetime.codes import declare
 from slicetime.model import TIME_TOLERANCE, Finding, Severity
@@ -540,6 +541,8 @@ def policy_from_document(
     """Validate a parsed TOML document and build the :class:`Policy` (pure)."""
     known = frozenset(known_codes)
     _raise_first(file, data, _non_finite(dict(data), []))
+    import jsonschema
+
     validator_class = jsonschema.validators.validator_for(policy_schema())
     validator = validator_class(policy_schema())
     _raise_first(file, data, [_schema_problem(e) for e in validator.iter_errors(dict(data))])

@@ -9,6 +9,7 @@ extension ``.nii.gz``. Top-level inherited files have fewer entities
 
 from __future__ import annotations
 
+import functools
 import re
 from collections.abc import Mapping
 from dataclasses import dataclass, field
@@ -62,8 +63,12 @@ class ParsedName:
         return all(theirs.get(k) == v for k, v in self.entities.items())
 
 
+@functools.lru_cache(maxsize=4096)
 def parse_name(name: str) -> ParsedName | None:
     """Split a BIDS file name; ``None`` when it does not follow the BIDS pattern.
+
+    Remembered (a run's name is parsed by the walk, the sidecar resolution and the
+    record): the result is shared, so its ``entities`` must not be changed.
 
     The extension runs from the first dot (``.nii.gz``, ``.json``, ``.tsv.gz``);
     keys, values and the suffix are alphanumeric; a key may not repeat. Hidden
@@ -133,6 +138,7 @@ def looks_like_run(name: str, folder: str) -> bool:
     return folder in RUN_FOLDERS or _SERIES_WORD.search(stem) is not None
 
 
+@functools.lru_cache(maxsize=1024)
 def run_name_problem(name: str) -> str | None:
     """Why ``name`` is not a valid BIDS name for a NIfTI run, or None when it is.
 

@@ -41,9 +41,10 @@ import threading
 from collections.abc import Callable, Mapping
 from importlib import resources
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
-import jsonschema
+if TYPE_CHECKING:  # imported when a value fails the quick checks: 50 ms a start otherwise
+    import jsonschema
 
 import slicetime.readers.codes  # noqa: F401  (registers the codes made here)
 from slicetime.codes import make_finding
@@ -88,6 +89,8 @@ def load_schema() -> dict[str, Any]:
 
 @functools.cache
 def _validators() -> dict[str, jsonschema.protocols.Validator]:
+    import jsonschema
+
     schema = load_schema()
     cls = jsonschema.validators.validator_for(schema)
     return {key: cls(sub) for key, sub in schema["properties"].items()}
@@ -684,6 +687,8 @@ def check_types(
         errors = list(_validators()[key].iter_errors(value))
         if not errors:
             continue
+        import jsonschema
+
         err = jsonschema.exceptions.best_match(errors) or errors[0]
         path = list(err.absolute_path)
         where = key + "".join(f"[{p}]" if isinstance(p, int) else f".{p}" for p in path)
