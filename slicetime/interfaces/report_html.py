@@ -36,7 +36,7 @@ import io
 import os
 from array import array
 from collections import Counter, defaultdict
-from collections.abc import Iterator, Sequence
+from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass, field
 from typing import IO, Any
 
@@ -56,6 +56,7 @@ from slicetime.interfaces.screen import strip_path_prefix
 from slicetime.model import RunRecord, Severity
 from slicetime.numbers import duration, secs
 from slicetime.pipelines.audit import AuditResult, AuditTotals, RunFacts, RunResult
+from slicetime.readers.entities import sidecar_path
 from slicetime.rules.dataset import PROTOCOL_ENTITIES, protocol_key
 from slicetime.words import agree, count, encoding_direction
 
@@ -204,7 +205,11 @@ def _run_facts(record: RunRecord) -> tuple[tuple[str, str], ...]:
     return tuple(facts)
 
 
-def _run_sources(record: RunRecord, strings: _Table) -> tuple[int, ...]:
+#: in the page's sources table: the run's own sidecar (the run's last element names it)
+OWN_SIDECAR = -2
+
+
+def _run_sources(record: RunRecord, index: Callable[[str], int]) -> tuple[int, ...]:
     """Where each value came from, as string indexes: key, value, key, value, …"""
     sources: dict[str, str] = {}
     if record.schedule is not None:
@@ -212,7 +217,7 @@ def _run_sources(record: RunRecord, strings: _Table) -> tuple[int, ...]:
     for key in ("MultibandAccelerationFactor", "TaskName", "EchoTime"):
         if key in record.metadata_sources:
             sources[key] = record.metadata_sources[key]
-    return tuple(strings(xml_safe(text)) for pair in sources.items() for text in pair)
+    return tuple(index(text) for pair in sources.items() for text in pair)
 
 
 class DiagramCollector:
@@ -230,6 +235,7 @@ class DiagramCollector:
         self.run_drawing = array("I")
         self.run_facts = array("I")
         self.run_sources = array("I")
+        self.run_own = array("i")  # the run's own sidecar (a string index), or -1
 
     def add(self, run: RunResult) -> None:
         record = run.record
@@ -237,8 +243,21 @@ class DiagramCollector:
         self.examples.setdefault(ident, len(self.run_drawing))
         self.run_drawing.append(int(ident[3:]) - 1)
         self.run_facts.append(self.facts(_run_facts(record)))
-        chain = tuple(self.strings(xml_safe(s)) for s in record.sidecar_chain)
-        self.run_sources.append(self.sources((_run_sources(record, self.strings), chain)))
+        # the run's own sidecar is OWN_SIDECAR in its sources and chain, so runs that take
+        # their values the same way share one entry of the sources table
+        own = sidecar_path(record.path)
+        used = False
+
+        def index(text: str) -> int:
+            nonlocal used
+            if text == own:
+                used = True
+                return OWN_SIDECAR
+            return self.strings(xml_safe(text))
+
+        chain = tuple(index(s) for s in record.sidecar_chain)
+        self.run_sources.append(self.sources((_run_sources(record, index), chain)))
+        self.run_own.append(self.strings(xml_safe(own)) if used else -1)
 
 
 # --------------------------------------------------------------------------- sections
@@ -379,7 +398,8 @@ def _page_data(source: ReportSource, collector: DiagramCollector,
     """The compact data the page's script renders from (JSON, safe inside a script
     element). Every string is stored once in ``s`` and referred to by index; a run
     is ``[path, tag, drawing, errors, warnings, notes, row, column, facts, sources,
-    findings]``; a finding ``[code, rank, message, file, field, evidence, hint]``
+    findings, own sidecar]`` (``OWN_SIDECAR`` in a sources entry stands for the last);
+    a finding ``[code, rank, message, file, field, evidence, hint]``
     (-1 for none)."""
     totals = source.totals
     strings = collector.strings
@@ -390,12 +410,12 @@ def _page_data(source: ReportSource, collector: DiagramCollector,
     columns = _Table()
     found = source.objects(lambda i: any(totals.facts[i].counts))
     pending = next(found, None)
-    rows: list[str] = []
-    size = 0
 
     def opt(value: str | None, *, one_line: bool = True) -> int:
         return -1 if value is None or value == "" else strings(xml_safe(value, one_line=one_line))
 
+    # the runs first, each written as it is made: the string table they add to comes last
+    yield '{"runs":['
     for index, facts in enumerate(totals.facts):
         findings: list[list[int]] = []
         if pending is not None and pending[0] == index:
@@ -420,27 +440,33 @@ def _page_data(source: ReportSource, collector: DiagramCollector,
             subjects(f"sub-{xml_safe(sub)}" if sub is not None else "(no subject)"),
             columns(xml_safe(_column_of(facts, suffixes))),
             collector.run_facts[index], collector.run_sources[index],
-            findings,
+            findings, collector.run_own[index],
         ]
-        rows.append(_safe_in_script(encode(row)))
-        size += len(rows[-1])
+        yield ("," if index else "") + _safe_in_script(encode(row))
     drawings = [[ident, *sizes[ident], xml_safe(spec.caption())]
                 for spec, ident in collector.drawings.ids.items()]
     row_order = sorted(range(len(subjects.values)), key=lambda i: subjects.values[i])
     col_order = sorted(range(len(columns.values)), key=lambda i: columns.values[i])
-    head = encode({
-        "s": strings.values,
+    rest = encode({
         "tags": [[t.text, t.cls, xml_safe(t.label)] for t in tags.values()],
         "drawings": drawings,
         "facts": collector.facts.values,
-        "sources": collector.sources.values,
         "subjects": subjects.values, "subject_order": row_order,
         "columns": columns.values, "column_order": col_order,
     })
-    yield _safe_in_script(head[:-1]) + ',"runs":['
-    for i, line in enumerate(rows):
-        yield line if i == 0 else "," + line
-    yield "]}"
+    yield "]," + _safe_in_script(rest[1:-1])
+    # the two tables that grow with the runs, a block at a time (never one huge string)
+    for key, values in (("sources", collector.sources.values), ("s", strings.values)):
+        yield f',"{key}":['
+        for start in range(0, len(values), _BLOCK):
+            yield ("," if start else "") + _safe_in_script(
+                encode(values[start:start + _BLOCK])[1:-1])
+        yield "]"
+    yield "}"
+
+
+#: table entries encoded at once when the page data is written
+_BLOCK = 4096
 
 
 def _safe_in_script(text: str) -> str:
@@ -836,9 +862,10 @@ _SCRIPT = """
       dl.appendChild(dd);
     });
     var pairs = data.sources[r[9]][0], chain = data.sources[r[9]][1];
+    function named(k) { return k === -2 ? S[r[11]] : S[k]; }  // -2: the run's own sidecar
     if (chain.length) {
       dl.appendChild(el("dt", null, "sidecars"));
-      dl.appendChild(el("dd", null, chain.map(function (k) { return S[k]; }).join(" \u2192 ")));
+      dl.appendChild(el("dd", null, chain.map(named).join(" \u2192 ")));
     }
     left.appendChild(dl);
     if (pairs.length) {
@@ -847,7 +874,7 @@ _SCRIPT = """
       for (var k = 0; k < pairs.length; k += 2) {
         var tr = el("tr"), th = el("th", null, S[pairs[k]]), td = el("td");
         th.setAttribute("scope", "row");
-        td.appendChild(el("code", null, S[pairs[k + 1]]));
+        td.appendChild(el("code", null, named(pairs[k + 1])));
         tr.appendChild(th); tr.appendChild(td); table.appendChild(tr);
       }
       left.appendChild(table);

@@ -27,6 +27,7 @@ from slicetime.policy.checks import (
 from slicetime.policy.loading import root_policies
 from slicetime.policy.model import Policy
 from slicetime.readers.dataset import find_root, iter_runs
+from slicetime.readers.entities import sidecar_path
 from slicetime.readers.errors import ReadError
 from slicetime.readers.inheritance import SidecarIndex, SidecarStore, ValueSharer
 from slicetime.readers.record import build_record, relative_display
@@ -215,8 +216,8 @@ class RunFacts:
     so 100,000 runs cost a few tens of MB.
     """
 
-    __slots__ = ("abs_path", "axis_length", "counts", "datatype", "entities", "fold_roots",
-                 "header", "metadata_sources", "path", "root", "schedule", "scheme", "suffix",
+    __slots__ = ("_abs", "_sources", "axis_length", "counts", "datatype", "entities",
+                 "fold_roots", "header", "path", "root", "schedule", "scheme", "suffix",
                  "timing_origin")
 
     #: read by some run rules; a fact never has them
@@ -229,14 +230,18 @@ class RunFacts:
     def __init__(self, record: RunRecord, counts: tuple[int, int, int], shared: _Interner,
                  findings: Sequence[Finding] = ()) -> None:
         self.path = record.path
-        self.abs_path = record.abs_path
         self.root = shared.text(record.root)
+        # what can be told from the run's path is not stored again for each run: the
+        # absolute path (root/path) and the run's own sidecar among the sources
+        self._abs = None if record.abs_path == _joined(self.root, self.path) else record.abs_path
+        own = sidecar_path(record.path)
+        self._sources = shared.mapping(
+            {k: _OWN if v == own else v for k, v in record.metadata_sources.items()
+             if k in _FACT_SOURCES})
         self.entities = shared.mapping(record.entities)
         self.suffix = shared.text(record.suffix)
         self.datatype = shared.text(record.datatype) if record.datatype else record.datatype
         self.header = shared.header(record.header)
-        self.metadata_sources = shared.mapping(
-            {k: v for k, v in record.metadata_sources.items() if k in _FACT_SOURCES})
         self.schedule = shared.schedule(record.schedule)
         self.scheme = shared.scheme(record.scheme, self.schedule)
         self.axis_length = record.axis_length
@@ -246,11 +251,28 @@ class RunFacts:
         self.fold_roots: tuple[tuple[str, str | None], ...] = tuple(
             (f.code, f.field) for f in findings if f.code in RULES and RULES[f.code].subsumes)
 
+    @property
+    def abs_path(self) -> str:
+        return self._abs if self._abs is not None else _joined(self.root, self.path)
+
+    @property
+    def metadata_sources(self) -> Mapping[str, str]:
+        """The sidecar that gave each value the dataset rules may name (a new dict)."""
+        own = sidecar_path(self.path)
+        return {k: own if v == _OWN else v for k, v in self._sources.items()}
+
     def worst(self) -> str:
         """The worst severity among the run's findings, or ``none``."""
         e, w, n = self.counts
         return "error" if e else "warning" if w else "note" if n else "none"
 
+
+def _joined(root: str, path: str) -> str:
+    return root + path if root.endswith(os.sep) else root + os.sep + path
+
+
+#: stands for the run's own sidecar in RunFacts' sources (not a path: it holds a NUL)
+_OWN = "\0own sidecar"
 
 #: metadata sources a dataset finding may name as its file
 _FACT_SOURCES = frozenset({"SliceTiming", "RepetitionTime", "VolumeTiming", "DelayTime",
@@ -278,11 +300,13 @@ class _Interner:
         return self._one(("s", value), lambda: value)
 
     def mapping(self, value: Mapping[str, Any]) -> Mapping[str, Any]:
-        # keys and text values interned: every run's parse made its own copies of the same
-        # few words ("sub", "SliceTiming", its subject's label), kept for every run otherwise
-        items = tuple((sys.intern(k), sys.intern(v) if type(v) is str else v)
-                      for k, v in value.items())
-        return self._one(("m", items), lambda: dict(items))
+        # the keys (one tuple per distinct set) and text values interned: every run's parse
+        # made its own copies of the same few words ("sub", "SliceTiming", a subject's
+        # label); the lookup key holds no (key, value) pairs, only two flat tuples
+        keys = tuple(value)
+        keys = self._one(("k", keys), lambda: tuple(sys.intern(k) for k in keys))
+        values = tuple(sys.intern(v) if type(v) is str else v for v in value.values())
+        return self._one(("m", keys, values), lambda: dict(zip(keys, values, strict=True)))
 
     def header(self, value: HeaderInfo | None) -> HeaderInfo | None:
         if value is None:

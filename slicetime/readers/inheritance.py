@@ -70,6 +70,8 @@ __all__ = [
 ]
 
 _OWN_CACHE_SIZE = 256
+#: folder listings a walk's store keeps for all its chunks (see SidecarStore)
+LISTINGS_KEPT = 4096
 #: shared sidecars of this size on disk or more count against the walk's budget
 LARGE_SIDECAR_BYTES = 1 << 20
 #: bytes on disk of large shared sidecars parsed and held in one walk (per process)
@@ -98,6 +100,7 @@ class SidecarStore:
         self.used = 0
         self.parse_count = 0
         self._entries: dict[tuple[str, str], Loaded] = {}
+        self._listings: OrderedDict[tuple[str, str | None], _Listing] = OrderedDict()
         _STORES[self.token] = self
 
     def __reduce__(self) -> tuple[Any, ...]:
@@ -105,6 +108,21 @@ class SidecarStore:
 
     def __len__(self) -> int:
         return len(self._entries)
+
+    def listing(self, key: str, base: str | None) -> _Listing | None:
+        """The remembered listing of folder ``key`` (problems shown relative to ``base``)."""
+        found = self._listings.get((key, base))
+        if found is not None:
+            self._listings.move_to_end((key, base))
+        return found
+
+    def remember_listing(self, key: str, base: str | None, listing: _Listing) -> None:
+        """Keep a folder listing for every chunk of the walk. Bounded (least recently
+        used first out): the folders every run passes (the root, a subject's) stay, and
+        a 25,000-entry root is listed once per walk, not once per chunk of runs."""
+        self._listings[(key, base)] = listing
+        if len(self._listings) > LISTINGS_KEPT:
+            self._listings.popitem(last=False)
 
     def get(self, path: str, display: str) -> tuple[Loaded, bool]:
         """The parsed sidecar at ``path`` and whether it was parsed by this call."""
@@ -292,6 +310,11 @@ class SidecarIndex:
         cached = self._listings.get(key)
         if cached is not None:
             return cached
+        base = os.fspath(root) if root is not None else self._root_text
+        cached = self.store.listing(key, base)
+        if cached is not None:
+            self._listings[key] = cached
+            return cached
         jsons: list[tuple[str, ParsedName | None]] = []
         problem: Finding | None = None
         try:
@@ -308,7 +331,6 @@ class SidecarIndex:
         except FileNotFoundError:
             pass
         except OSError as exc:
-            base = os.fspath(root) if root is not None else self._root_text
             shown = _relative_text(key, base) or "."
             problem = make_finding(
                 "file/unreadable",
@@ -318,6 +340,7 @@ class SidecarIndex:
         jsons.sort()
         result = _Listing(jsons, problem)
         self._listings[key] = result
+        self.store.remember_listing(key, base, result)
         return result
 
     def _folder(self, directory: str, root: str | None) -> _Folder:
