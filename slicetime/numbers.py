@@ -56,7 +56,10 @@ def json_float(value: float) -> float:
     """A float for JSON: 12 significant digits, then at most 6 decimals (1 µs)."""
     if not _finite(value) or value == 0:
         return value + 0.0 if value == 0 else value
-    return round(float(f"{value:.{JSON_SIGNIFICANT}g}"), JSON_TIME_DECIMALS) + 0.0
+    # one rounding, to whichever is coarser: rounding to 12 digits and then to 6 decimals
+    # could move a value by more than half a microsecond (10000.6807214823 → …722)
+    digits = math.floor(math.log10(abs(value))) + 1  # before the decimal point
+    return round(value, min(JSON_TIME_DECIMALS, JSON_SIGNIFICANT - digits)) + 0.0
 
 
 def tidy_json(value: Any) -> Any:

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import dataclasses
 import functools
+import gc
 import operator
 import os
 import sys
@@ -448,55 +449,81 @@ def audit_stream(
     total = len(targets)
     done_before = failed_before = 0
     counts = totals.counts
-    for start in range(0, total, max(1, batch)):
-        part = targets[start:start + batch]
+    settle = _Settler()
+    try:
+        for start in range(0, total, max(1, batch)):
+            part = targets[start:start + batch]
 
-        def step(done: int, _total: int, failed: int, base: int = done_before,
-                 base_failed: int = failed_before) -> None:
-            if progress is not None:
-                progress(base + done, total, base_failed + failed)
+            def step(done: int, _total: int, failed: int, base: int = done_before,
+                     base_failed: int = failed_before) -> None:
+                if progress is not None:
+                    progress(base + done, total, base_failed + failed)
 
-        try:
-            results = map_chunks(job, part, lost=_lost_target, executor=executor,
-                                 progress=step, failed_of=_not_processed)
-        except Interrupted as stop:
-            raise Interrupted([True] * start + stop.results + [None] * (total - start - len(part))
-                              ) from None
-        for result in results:
-            own = _severity_counts(result.findings)
-            counts["error"] += own[0]
-            counts["warning"] += own[1]
-            counts["note"] += own[2]
-            totals.ignored += len(result.ignored)
-            failed_before += _not_processed(result)
-            totals.facts.append(RunFacts(result.record, own, shared, result.findings))
-            on_run(result)
-        done_before += len(part)
-        del results
-    totals.dataset_findings.extend(walk_problems)
-    phase = dataset_phase(totals.facts, policies)
-    totals.judged_by_policy = phase.judged
-    for index, facts in enumerate(totals.facts):
-        found = phase.extras.get(facts.abs_path)
-        if found is None:
-            continue
-        kept, ignored = found
-        totals.ignored += len(ignored)
-        kept, folds = _fold_extras(facts.fold_roots, kept)
-        if folds:
-            totals.folds[index] = folds
-        if kept:
-            totals.extras[index] = kept
-            more = _severity_counts(kept)
-            facts.counts = (facts.counts[0] + more[0], facts.counts[1] + more[1],
-                            facts.counts[2] + more[2])
-            for key, value in zip(("error", "warning", "note"), more, strict=True):
-                counts[key] += value
-    totals.dataset_findings.extend(phase.overall)
-    totals.ignored += len(phase.overall_ignored)
-    for finding in totals.dataset_findings:
-        counts[finding.severity.value] += 1
-    return totals
+            try:
+                results = map_chunks(job, part, lost=_lost_target, executor=executor,
+                                     progress=step, failed_of=_not_processed)
+            except Interrupted as stop:
+                left = total - start - len(part)
+                raise Interrupted([True] * start + stop.results + [None] * left) from None
+            for result in results:
+                own = _severity_counts(result.findings)
+                counts["error"] += own[0]
+                counts["warning"] += own[1]
+                counts["note"] += own[2]
+                totals.ignored += len(result.ignored)
+                failed_before += _not_processed(result)
+                totals.facts.append(RunFacts(result.record, own, shared, result.findings))
+                on_run(result)
+            done_before += len(part)
+            del results
+            settle()
+        totals.dataset_findings.extend(walk_problems)
+        phase = dataset_phase(totals.facts, policies)
+        totals.judged_by_policy = phase.judged
+        for index, facts in enumerate(totals.facts):
+            found = phase.extras.get(facts.abs_path)
+            if found is None:
+                continue
+            kept, ignored = found
+            totals.ignored += len(ignored)
+            kept, folds = _fold_extras(facts.fold_roots, kept)
+            if folds:
+                totals.folds[index] = folds
+            if kept:
+                totals.extras[index] = kept
+                more = _severity_counts(kept)
+                facts.counts = (facts.counts[0] + more[0], facts.counts[1] + more[1],
+                                facts.counts[2] + more[2])
+                for key, value in zip(("error", "warning", "note"), more, strict=True):
+                    counts[key] += value
+        totals.dataset_findings.extend(phase.overall)
+        totals.ignored += len(phase.overall_ignored)
+        for finding in totals.dataset_findings:
+            counts[finding.severity.value] += 1
+        return totals
+    finally:
+        settle.release()
+
+
+class _Settler:
+    """Keeps what a streamed audit holds for every run (the facts) out of the cyclic
+    garbage collector's walks. Each full collection walks every tracked object; with
+    100,000 runs' facts held, those walks took a quarter of the audit. After a batch,
+    ``settle()`` freezes what exists (the facts, the shared values: they live until
+    the report is written; a batch's results are freed by reference counting);
+    ``release()`` returns them to the collector. Nothing is frozen when the process
+    already froze objects of its own (``gc.freeze`` is process-wide)."""
+
+    def __init__(self) -> None:
+        self.active = gc.get_freeze_count() == 0
+
+    def __call__(self) -> None:
+        if self.active:
+            gc.freeze()
+
+    def release(self) -> None:
+        if self.active:
+            gc.unfreeze()
 
 
 def _fold_extras(
