@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import contextlib
 import functools
+import io
 import json
 import os
 import sys
@@ -408,8 +409,8 @@ def audit(
         if quiet:
             click.echo(summary_line(spool.totals))
         elif output is None:
-            _audit_report(spool, sys.stdout, fmt, fail_on, show_all, not hide_notes)
-            sys.stdout.flush()
+            with _buffered_stdout() as out:
+                _audit_report(spool, out, fmt, fail_on, show_all, not hide_notes)
     finally:
         spool.close()
     sys.exit(spool.totals.exit_code(fail_on))
@@ -421,6 +422,26 @@ def _audit_report(source: Any, out: Any, fmt: str, fail_on: str, show_all: bool,
 
     write_report(fmt, source, out, ReportStyle(fail_on=fail_on, show_all=show_all,
                                                show_notes=show_notes))
+
+
+@contextlib.contextmanager
+def _buffered_stdout() -> Iterator[Any]:
+    """Standard output for a long report, written in large blocks even where
+    ``PYTHONUNBUFFERED`` is set (as in many container images): otherwise every piece
+    of every line is a system call of its own (4,000 for a 2,000-run JSON report)."""
+    stdout = sys.stdout
+    binary = getattr(stdout, "buffer", None)
+    if binary is None:  # a stream without a binary layer: written as it is
+        yield stdout
+        return
+    stdout.flush()
+    out = io.TextIOWrapper(binary, encoding=stdout.encoding, errors=stdout.errors,
+                           write_through=False)
+    try:
+        yield out
+    finally:
+        out.flush()
+        out.detach()  # standard output stays open
 
 
 def _write_report(path: Path, write: Callable[[Any], None]) -> None:
