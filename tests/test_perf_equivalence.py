@@ -273,3 +273,39 @@ def test_fast_sidecar_parse_equals_the_general_parse(value: Any, literals: list[
     general = _general_parse(raw)
     assert repr(fast[0]) == repr(general[0])
     assert fast[1] == general[1]
+
+
+def test_the_walks_listings_equal_the_sidecar_index_listing_its_own(tmp_path: Path) -> None:
+    # the audit hands the walk's folder listings to the sidecar resolution instead of
+    # listing every folder twice: what the resolution gets must be what it would list
+    # itself (hidden names, folders named *.json, links, a description that is a folder)
+    import os
+
+    from slicetime.readers.dataset import _RootFinder, iter_runs
+    from slicetime.readers.inheritance import SidecarIndex, SidecarStore
+
+    root = tmp_path / "ds"
+    func = root / "sub-01" / "ses-1" / "func"
+    func.mkdir(parents=True)
+    (root / "dataset_description.json").write_text('{"Name": "x"}')
+    (root / "task-a_bold.json").write_text("{}")
+    (root / ".hidden_bold.json").write_text("{}")
+    (root / "sub-01" / "sub-01_task-a_bold.json").mkdir()  # a folder, not a sidecar
+    (root / "sub-01" / "ses-1" / "dataset_description.json").mkdir()
+    for name in ("sub-01_ses-1_task-a_bold", "sub-01_ses-1_task-b_bold"):
+        (func / f"{name}.nii.gz").write_bytes(b"")
+        (func / f"{name}.json").write_text("{}")
+    os.symlink(func / "sub-01_ses-1_task-a_bold.json", func / "link_bold.json")
+    os.symlink(func / "missing.json", func / "dangling_bold.json")
+    listings: dict[str, tuple[str, ...]] = {}
+    runs = list(iter_runs([root], listings=listings))
+    assert runs == list(iter_runs([root]))  # the same runs, the same roots
+    # every folder of the tree was listed by the walk (the two odd folders too)
+    assert set(listings) == {str(root), *(str(p) for p in root.rglob("*") if p.is_dir())}
+    for folder, names in listings.items():
+        own = SidecarIndex(root).listing(folder)
+        assert [n for n, _ in own.jsons] == list(names), folder
+        walked = SidecarIndex(root, store=SidecarStore(listings=dict(listings)))
+        assert walked.listing(folder).jsons == own.jsons
+        # the root finder seeded by the walk answers as one that looks for itself
+        assert _RootFinder().find_folder(folder) == root

@@ -436,15 +436,16 @@ def audit_stream(
     are kept. ``on_start`` sees the totals before the first run (roots, names and
     policies are set). Interrupted carries one entry per run (None where not
     finished)."""
+    listings: dict[str, tuple[str, ...]] = {}
     targets, roots, policies, walk_problems = _targets(
         paths, policy_file, include_derivatives, include_sourcedata, include_hidden,
-        require_runs)
+        require_runs, listings)
     totals = AuditTotals(roots=roots, names=dataset_names(roots))
     totals.policies = {str(r): p.file or "" for r, p in policies.items() if p is not None}
     if on_start is not None:
         on_start(totals)
     job = functools.partial(audit_chunk, policies=policies, verify=verify, source=source,
-                            store=SidecarStore())
+                            store=SidecarStore(listings=listings))
     shared = _Interner()
     total = len(targets)
     done_before = failed_before = 0
@@ -594,9 +595,11 @@ def dataset_phase(
 def _targets(
     paths: Sequence[Path], policy_file: Path | None, include_derivatives: bool,
     include_sourcedata: bool, include_hidden: bool, require_runs: bool = True,
+    listings: dict[str, tuple[str, ...]] | None = None,
 ) -> tuple[list[tuple[Path, Path]], list[str], dict[Path, Policy | None], list[Finding]]:
     """The runs to audit, the roots, each root's policy, and the walk's problems;
-    :class:`NoRunsError` when a given path holds no run and ``require_runs``."""
+    :class:`NoRunsError` when a given path holds no run and ``require_runs``.
+    ``listings`` receives the folder listings of the walk (see ``iter_runs``)."""
     walk_problems: list[Finding] = []
     targets: list[tuple[Path, Path]] = list(
         iter_runs(
@@ -605,6 +608,7 @@ def _targets(
             include_sourcedata=include_sourcedata,
             include_hidden=include_hidden,
             on_error=walk_problems.append,
+            listings=listings,
         )
     )
     if require_runs:
@@ -638,13 +642,14 @@ def audit_paths(
     (default: when that folder exists; see :mod:`slicetime.readers.source`). Findings
     that follow from a root cause are folded into it
     (:func:`slicetime.rules.fold_consequences`)."""
+    listings: dict[str, tuple[str, ...]] = {}
     targets, roots, policies, walk_problems = _targets(
         paths, policy_file, include_derivatives, include_sourcedata, include_hidden,
-        require_runs)
+        require_runs, listings)
     result = AuditResult(roots=roots)
     result.policies = {str(r): p.file or "" for r, p in policies.items() if p is not None}
     job = functools.partial(audit_chunk, policies=policies, verify=verify, source=source,
-                            store=SidecarStore())
+                            store=SidecarStore(listings=listings))
     sharer = ValueSharer()  # one copy of each inherited value, as chunks come back
 
     def arrived(run: RunResult) -> bool:

@@ -188,11 +188,42 @@ class _Walker:
         skip: set[str],
         include_hidden: bool,
         on_error: Callable[[Finding], None] | None,
+        listings: dict[str, tuple[str, ...]] | None = None,
+        described: dict[str, bool] | None = None,
     ) -> None:
         self.skip = skip
         self.include_hidden = include_hidden
         self.on_error = on_error
         self.visited: set[str] = set()
+        #: per folder listed: its sidecar names (see ``iter_runs``), and whether it holds
+        #: a dataset description (for the root finder); the walk has read them already
+        self.listings = listings
+        self.described = described
+
+    def _remember(self, key: str, entries: list[os.DirEntry[str]]) -> None:
+        """The folder's sidecar names as ``SidecarIndex.listing`` would list them (a
+        ``.json`` name, not hidden, not a folder), and whether it holds a description."""
+        assert self.listings is not None and self.described is not None
+        jsons: list[str] = []
+        described: bool | None = False
+        for entry in entries:
+            name = entry.name
+            if not name.endswith(".json") or name.startswith("."):
+                continue
+            try:
+                if entry.is_dir():
+                    continue
+            except OSError:
+                pass  # a link loop: reading it reports it
+            jsons.append(name)
+            if name == _DESCRIPTION:
+                try:
+                    described = entry.is_file()  # follows links, as the root finder does
+                except OSError:
+                    described = None  # the root finder looks for itself
+        self.listings[key] = tuple(jsons)
+        if described is not None:
+            self.described[key] = described
 
     def _report(self, folder: Path, exc: OSError) -> None:
         if self.on_error is not None:
@@ -227,6 +258,8 @@ class _Walker:
         except OSError as exc:
             self._report(folder, exc)
             return
+        if self.listings is not None:
+            self._remember(os.fspath(folder), entries)
         names: set[str] | None = None
         for entry in entries:
             name = entry.name
@@ -281,8 +314,14 @@ def iter_runs(
     include_sourcedata: bool = False,
     include_hidden: bool = False,
     on_error: Callable[[Finding], None] | None = None,
+    listings: dict[str, tuple[str, ...]] | None = None,
 ) -> Iterator[tuple[Path, Path]]:
     """Yield ``(root, data_file)`` for every candidate run under ``paths``.
+
+    ``listings``, when given, receives the sidecar names of every folder the walk
+    listed (absolute folder path → sorted ``.json`` names that are neither hidden nor
+    folders), so that the sidecar resolution need not list those folders again
+    (``SidecarStore(listings=...)``).
 
     A path that is a file is yielded as given (made absolute), whatever its
     name. A folder is searched as described in the module docstring; each
@@ -304,8 +343,9 @@ def iter_runs(
         skip.discard("derivatives")
     if include_sourcedata:
         skip -= {"sourcedata", "code"}
-    walker = _Walker(skip, include_hidden, on_error)
     finder = _RootFinder()
+    walker = _Walker(skip, include_hidden, on_error, listings,
+                     finder._described if listings is not None else None)
     roots: dict[str, Path] = {}
 
     def root_of(run: Path) -> Path:

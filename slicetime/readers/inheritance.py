@@ -94,8 +94,12 @@ class SidecarStore:
     a worker audits share one store too.
     """
 
-    def __init__(self, budget: int = SHARED_BUDGET_BYTES, *, token: str | None = None) -> None:
+    def __init__(self, budget: int = SHARED_BUDGET_BYTES, *, token: str | None = None,
+                 listings: dict[str, tuple[str, ...]] | None = None) -> None:
         self.budget = budget
+        #: folder → sidecar names, as the walk listed them (``iter_runs(listings=...)``);
+        #: each is taken once, then kept with the listings the store remembers
+        self.walked = listings if listings is not None else {}
         self.token = token if token is not None else os.urandom(8).hex()
         self.used = 0
         self.parse_count = 0
@@ -314,6 +318,11 @@ class SidecarIndex:
         cached = self.store.listing(key, base)
         if cached is not None:
             self._listings[key] = cached
+            return cached
+        walked = self.store.walked.pop(key, None)
+        if walked is not None:  # listed by the walk a moment ago: not listed again
+            cached = self._listings[key] = _Listing([(n, parse_name(n)) for n in walked])
+            self.store.remember_listing(key, base, cached)
             return cached
         jsons: list[tuple[str, ParsedName | None]] = []
         problem: Finding | None = None
