@@ -113,11 +113,6 @@ from slicetime.readers.errors import (
 from slicetime.readers.schema_text import describe_schema
 from slicetime.schemes.labels import label_multiband, label_problem, normalise_label
 
-if sys.version_info >= (3, 11):
-    import tomllib
-else:  # pragma: no cover - exercised on Python 3.10 only
-    import tomli as tomllib
-
 __all__ = [
     "INDEX_ENTITIES",
     "MATCH_KEYS",
@@ -226,6 +221,10 @@ def parse_policy(text: str | bytes, *, file: str, known_codes: Collection[str]) 
             ) from None
     elif text.startswith("\ufeff"):
         text = text[1:]
+    if sys.version_info >= (3, 11):  # imported only when a policy is read
+        import tomllib
+    else:  # pragma: no cover - exercised on Python 3.10 only
+        import tomli as tomllib
     try:
         data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:

@@ -274,18 +274,20 @@ def read_bounded(fh: BinaryIO, expected: int, limit: int) -> bytes:
     whatever the file does while it is read.
     """
     first = min(max(expected, 0), limit) + 1
-    data = _read_up_to(fh, first)
+    data = _read_up_to(fh, first, expected)
     if len(data) == first and first <= limit:
         data += _read_up_to(fh, limit + 1 - first)
     return data
 
 
-def _read_up_to(fh: BinaryIO, size: int) -> bytes:
-    """Up to ``size`` bytes; fewer only at the end of the file."""
+def _read_up_to(fh: BinaryIO, size: int, whole: int | None = None) -> bytes:
+    """Up to ``size`` bytes; fewer only at the end of the file. ``whole``: the size
+    ``fstat`` gave; a first read that returns exactly that much is taken as the whole
+    file (no second read to see the end: one system call less per small file)."""
     data = fh.read(size)
     if data is None:  # a non-blocking read with nothing to give (not a regular file)
         return b""
-    if len(data) >= size:
+    if len(data) >= size or (whole is not None and 0 < whole == len(data)):
         return data
     parts = [data]
     got = len(data)

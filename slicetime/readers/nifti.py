@@ -417,10 +417,13 @@ def read_header(
         raise os_error(exc, shown, what="NIfTI file") from None
 
 
-def _read_full(fh: BinaryIO, size: int) -> bytes:
+def _read_full(fh: BinaryIO, size: int, whole: int | None = None) -> bytes:
     """Up to ``size`` bytes, fewer only at the end of the file (an unbuffered read may
-    return less)."""
+    return less). ``whole``: the file's size from ``fstat``; a first read that returns
+    all of it needs no second read to see the end."""
     data = fh.read(size)
+    if whole is not None and 0 < whole == len(data):
+        return data
     while len(data) < size:
         more = fh.read(size - len(data))
         if not more:
@@ -433,7 +436,7 @@ def _read_open(
     path: str | os.PathLike[str], fh: BinaryIO, file_size: int, shown: str, verify_stream: bool
 ) -> tuple[HeaderInfo, list[Finding]]:
     findings: list[Finding] = []
-    first = _read_full(fh, _FIRST_READ)
+    first = _read_full(fh, _FIRST_READ, file_size)
     compressed = first[:2] == GZIP_MAGIC
     if compressed:
         parts: list[bytes] = []
