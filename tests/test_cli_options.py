@@ -8,7 +8,7 @@ import click
 import pytest
 from click.testing import CliRunner
 
-from slicetime.interfaces.cli import JOBS_HEAVY, JOBS_LIGHT, cli
+from slicetime.interfaces.cli import JOBS_AUDIT, JOBS_HEAVY, JOBS_LIGHT, cli
 
 
 def option(command: str, name: str) -> click.Option:
@@ -61,7 +61,8 @@ def test_a_shared_group_is_one_definition() -> None:
         assert isinstance(jobs.type, click.IntRange) and jobs.type.min == 1
         assert jobs.help is not None
         # the help names the command's own default
-        assert (JOBS_HEAVY if command == "correct" else JOBS_LIGHT) in jobs.help
+        default = {"correct": JOBS_HEAVY, "audit": JOBS_AUDIT}.get(command, JOBS_LIGHT)
+        assert default in jobs.help
         assert option(command, "--scheduler").metavar == "ADDRESS"
     helps = {option(c, "--policy").help for c in ("show", "audit", "correct", "fix")}
     assert all(h and h.startswith("Lab policy (TOML).") for h in helps)

@@ -287,3 +287,99 @@ def test_light_work_stays_in_one_process_on_small_machines(
     monkeypatch.setattr(executor_module, "available_cpus", lambda: 8)
     pooled = make_executor(None, None, light=True)
     assert isinstance(pooled, ProcessExecutor) and pooled.jobs == 8
+
+
+# ------------------------------------------------------------- prepared streams
+
+
+def _many_runs(root: Path, n: int = 150) -> Path:
+    """More runs than one chunk of 64, so that a process pool really shares them out:
+    clean runs, one outlier scheme, one unreadable file, one in milliseconds."""
+    from tests.helpers_bids import write_run
+
+    write_description(root)
+    write_sidecar(root, "task-hum_bold.json", {"RepetitionTime": 2.0, "SliceTiming":
+                                               interleaved(6)})
+    for i in range(n):
+        sidecar = ({"SliceTiming": [0.0, 0.4, 0.8, 1.2, 1.6, 2.0 - 0.4]} if i == 7 else
+                   {"SliceTiming": [t * 1000 for t in interleaved(6)]} if i == 11 else None)
+        write_run(root, f"sub-{i:03d}/func/sub-{i:03d}_task-hum_bold.nii.gz",
+                  shape=(4, 4, 6, 5), sidecar=sidecar)
+    (root / "sub-042/func/sub-042_task-hum_bold.nii.gz").write_bytes(b"not an image")
+    return root
+
+
+def _streamed_json(root: Path, executor: Executor, prepared: bool) -> str:
+    import io
+
+    from slicetime.interfaces.report_stream import RunSpool, run_line, write_report
+
+    spool = RunSpool(str(root))
+    try:
+        spool.totals = audit_module.audit_stream(
+            [root], spool.add_line if prepared else spool.add, executor=executor,
+            prepare=run_line if prepared else None)
+        out = io.StringIO()
+        write_report("json", spool, out)
+        return out.getvalue()
+    finally:
+        spool.close()
+
+
+def test_a_prepared_stream_in_worker_processes_gives_the_same_report(tmp_path: Path) -> None:
+    # report lines made in the workers, with only the run facts sent back, give the very
+    # report that whole results audited in this process give (the executor never changes
+    # a report)
+    root = _many_runs(tmp_path / "ds")
+    whole = _streamed_json(root, Executor(), prepared=False)
+    pooled = ProcessExecutor(2)
+    assert _streamed_json(root, pooled, prepared=True) == whole
+    assert _streamed_json(root, Executor(), prepared=True) == whole
+    data = json.loads(whole)
+    assert data["summary"]["runs"] == 150
+    assert any(f["code"] == "dataset/outlier-scheme" for r in data["runs"] for f in r["findings"])
+
+
+def _die_on_sub_013(root_: Path, path: Path, *args: object, **kwargs: object):
+    if "sub-013_" in path.name:
+        os._exit(3)  # the worker process dies, every time
+    return _REAL_AUDIT_ONE(root_, path, *args, **kwargs)  # type: ignore[arg-type]
+
+
+_REAL_AUDIT_ONE = audit_module.audit_one
+
+
+def test_a_run_that_kills_its_worker_in_a_prepared_stream_is_reported_lost(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    root = _many_runs(tmp_path / "ds", n=80)
+    monkeypatch.setattr(audit_module, "audit_one", _die_on_sub_013)
+    data = json.loads(_streamed_json(root, ProcessExecutor(2), prepared=True))
+    by_path = {r["path"]: r for r in data["runs"]}
+    lost = by_path["sub-013/func/sub-013_task-hum_bold.nii.gz"]
+    assert [f["code"] for f in lost["findings"]] == ["batch/worker-lost"]
+    assert len(data["runs"]) == 80  # the others were audited, each once
+    assert sum(1 for r in data["runs"] if r["findings"] and
+               r["findings"][0]["code"] == "batch/worker-lost") == 1
+
+
+def test_small_results_use_the_second_cpu_only_for_large_audits(
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    # measured (README, Performance): on 2 CPUs, workers that send back only report lines
+    # and run facts make a 2,000-run audit about a quarter faster; a few runs stay here
+    from slicetime.pipelines import executor as executor_module
+
+    monkeypatch.setattr(executor_module, "available_cpus", lambda: 2)
+    pooled = make_executor(None, None, light=True, small_results=True)
+    assert isinstance(pooled, ProcessExecutor) and pooled.jobs == 2
+    assert pooled.serial_below == executor_module.SMALL_RESULTS_PARALLEL_FROM
+    few = pooled.map_chunks(_pid, list(range(200)),
+                            lost=lambda i, why: -1)
+    assert set(few) == {os.getpid()}  # fewer than the threshold: in this process
+    monkeypatch.setattr(executor_module, "available_cpus", lambda: 1)
+    assert type(make_executor(None, None, light=True, small_results=True)) is Executor
+
+
+def _pid(items: Sequence[int]) -> list[int]:
+    return [os.getpid() for _ in items]

@@ -95,13 +95,15 @@ def walking_options(verb: str) -> Callable[[F], F]:
 #: what ``--jobs`` defaults to (``pipelines.executor.make_executor``): header-only work
 #: (audit, fix) and work that reads image data (correct)
 JOBS_LIGHT = "the CPUs available; one on machines with 2 or fewer"
+JOBS_AUDIT = ("the CPUs available; on machines with 2 or fewer, one unless 500 runs or more "
+              "are audited without --html")
 JOBS_HEAVY = "the CPUs available; memory grows with each"
 
 
 def executor_options(*, default: str, shared: str = "Files") -> Callable[[F], F]:
     """``--jobs`` and ``--scheduler``: where the runs are processed. ``default`` names
-    the command's default for ``--jobs`` (:data:`JOBS_LIGHT`, :data:`JOBS_HEAVY`);
-    ``shared``: what the Dask workers must see."""
+    the command's default for ``--jobs`` (:data:`JOBS_LIGHT`, :data:`JOBS_AUDIT`,
+    :data:`JOBS_HEAVY`); ``shared``: what the Dask workers must see."""
     return _options(
         click.option("--jobs", type=click.IntRange(min=1), default=None,
                      help=f"Local worker processes (default: {default})."),
@@ -322,7 +324,7 @@ def _show_series(file: Path, as_json: bool) -> None:
               "--html are still written.")
 @click.option("--no-progress", is_flag=True, help="No progress bar or progress lines on stderr.")
 @walking_options("audit")
-@executor_options(default=JOBS_LIGHT)
+@executor_options(default=JOBS_AUDIT)
 @policy_option()
 @click.option("--verify", "verify_data", is_flag=True,
               help="Also read each run's image data and check its slice order against it "
@@ -351,7 +353,7 @@ def audit(
 ) -> None:
     """Audit every run under PATHS (dataset roots, subject folders or run files)."""
     from slicetime.interfaces.progress import progress_reporter
-    from slicetime.interfaces.report_stream import RunSpool, summary_line
+    from slicetime.interfaces.report_stream import RunSpool, run_line, summary_line
     from slicetime.pipelines.audit import audit_stream
     from slicetime.pipelines.executor import Interrupted
 
@@ -371,15 +373,21 @@ def audit(
         for step in collect:
             step(run)
 
+    # without the HTML page, which draws from whole records, a run's report line is made
+    # where the run is audited, and a worker sends back only that line and the run's facts
+    prepare = run_line if drawings is None else None
+
     reporter = (contextlib.nullcontext(None) if quiet or no_progress
                 else progress_reporter("auditing"))
     try:
-        with _executor(jobs, scheduler, light=not verify_data) as executor, \
+        with _executor(jobs, scheduler, light=not verify_data,
+                       small_results=prepare is not None) as executor, \
                 reporter as progress:
             try:
                 spool.totals = audit_stream(
                     list(paths),
-                    on_run,
+                    on_run if prepare is None else spool.add_line,
+                    prepare=prepare,
                     include_derivatives=include_derivatives,
                     include_sourcedata=include_sourcedata,
                     include_hidden=include_hidden,
@@ -466,14 +474,16 @@ def _source_options(check: bool | None, source_map: Path | None) -> Any:
 
 
 @contextlib.contextmanager
-def _executor(jobs: int | None, scheduler: str | None, *, light: bool = True) -> Iterator[Any]:
+def _executor(jobs: int | None, scheduler: str | None, *, light: bool = True,
+              small_results: bool = False) -> Iterator[Any]:
     """The executor the options ask for; a note on stderr of where the work ran.
-    ``light``: header-only work per run (audit, fix), see ``make_executor``."""
+    ``light``: header-only work per run (audit, fix); ``small_results``: the workers
+    send back little (see ``make_executor``)."""
     from slicetime.pipelines.executor import ExecutorError, make_executor
     from slicetime.words import count
 
     try:
-        executor = make_executor(jobs, scheduler, light=light)
+        executor = make_executor(jobs, scheduler, light=light, small_results=small_results)
     except ExecutorError as exc:
         raise UserError(str(exc)) from None
     try:

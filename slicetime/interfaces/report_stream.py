@@ -170,7 +170,11 @@ class RunSpool(ReportSource):
             "w+", encoding="utf-8", newline="\n", buffering=1 << 20)
 
     def add(self, run: RunResult) -> None:
-        self._file.write(run_line(run))
+        self.add_line(run_line(run))
+
+    def add_line(self, line: str) -> None:
+        """A run's line made elsewhere (``audit_stream(prepare=run_line)``)."""
+        self._file.write(line)
         self._file.write("\n")
 
     def _raw(self) -> Iterator[str]:

@@ -309,6 +309,32 @@ class _Interner:
         values = tuple(sys.intern(v) if type(v) is str else v for v in value.values())
         return self._one(("m", keys, values), lambda: dict(zip(keys, values, strict=True)))
 
+    def adopt(self, facts: RunFacts, seen: dict[int, Any]) -> RunFacts:
+        """``facts`` made by another interner (in a worker), sharing this one's values.
+        ``seen`` (one per batch of results, which keeps them alive) maps the objects
+        already adopted to this interner's: the runs of a chunk share their values, and
+        unpickling keeps them one object, so each is looked up once per chunk."""
+
+        def one(value: Any, adopt: Callable[[Any], Any]) -> Any:
+            if value is None:
+                return None
+            found = seen.get(id(value))
+            if found is None:
+                found = seen[id(value)] = adopt(value)
+            return found
+
+        facts.root = one(facts.root, self.text)
+        facts.entities = one(facts.entities, self.mapping)
+        facts._sources = one(facts._sources, self.mapping)
+        facts.suffix = one(facts.suffix, self.text)
+        if facts.datatype:
+            facts.datatype = one(facts.datatype, self.text)
+        facts.header = one(facts.header, self.header)
+        schedule = facts.schedule
+        facts.schedule = one(schedule, self.schedule)
+        facts.scheme = one(facts.scheme, lambda v: self.scheme(v, facts.schedule))
+        return facts
+
     def header(self, value: HeaderInfo | None) -> HeaderInfo | None:
         if value is None:
             return None
@@ -415,7 +441,7 @@ STREAM_BATCH = 4096
 
 def audit_stream(
     paths: Sequence[Path],
-    on_run: Callable[[RunResult], None],
+    on_run: Callable[[Any], None],  # a RunResult, or what ``prepare`` made of it
     *,
     include_derivatives: bool = False,
     include_sourcedata: bool = False,
@@ -428,6 +454,7 @@ def audit_stream(
     require_runs: bool = True,
     batch: int = STREAM_BATCH,
     on_start: Callable[[AuditTotals], None] | None = None,
+    prepare: Callable[[RunResult], Any] | None = None,
 ) -> AuditTotals:
     """The audit of :func:`audit_paths`, streamed: ``on_run`` gets every run's result
     in report order as soon as its batch is done (without the findings of the
@@ -435,7 +462,12 @@ def audit_stream(
     folded into a root cause of the run in ``folds``), and only :class:`RunFacts`
     are kept. ``on_start`` sees the totals before the first run (roots, names and
     policies are set). Interrupted carries one entry per run (None where not
-    finished)."""
+    finished).
+
+    With ``prepare`` (picklable), ``on_run`` gets ``prepare(result)`` instead of the
+    result, made where the run was audited: a worker process then sends back only
+    that and the run's facts, not the whole record (the report line of a run is
+    encoded in parallel, and this process does little per run)."""
     listings: dict[str, tuple[str, ...]] = {}
     targets, roots, policies, walk_problems = _targets(
         paths, policy_file, include_derivatives, include_sourcedata, include_hidden,
@@ -444,8 +476,13 @@ def audit_stream(
     totals.policies = {str(r): p.file or "" for r, p in policies.items() if p is not None}
     if on_start is not None:
         on_start(totals)
-    job = functools.partial(audit_chunk, policies=policies, verify=verify, source=source,
-                            store=SidecarStore(listings=listings))
+    job: Callable[[Sequence[tuple[Path, Path]]], list[Any]] = functools.partial(
+        audit_chunk, policies=policies, verify=verify, source=source,
+        store=SidecarStore(listings=listings))
+    lost: Callable[[tuple[Path, Path], str], Any] = _lost_target
+    if prepare is not None:
+        job = functools.partial(_prepared_chunk, job=job, prepare=prepare)
+        lost = functools.partial(_prepared_lost, prepare=prepare)
     shared = _Interner()
     total = len(targets)
     done_before = failed_before = 0
@@ -461,22 +498,30 @@ def audit_stream(
                     progress(base + done, total, base_failed + failed)
 
             try:
-                results = map_chunks(job, part, lost=_lost_target, executor=executor,
-                                     progress=step, failed_of=_not_processed)
+                results = map_chunks(job, part, lost=lost, executor=executor,
+                                     progress=step, failed_of=_failed)
             except Interrupted as stop:
                 left = total - start - len(part)
                 raise Interrupted([True] * start + stop.results + [None] * left) from None
+            seen: dict[int, Any] = {}
             for result in results:
-                own = _severity_counts(result.findings)
+                if isinstance(result, _Prepared):
+                    facts = shared.adopt(result.facts, seen)
+                    totals.ignored += result.ignored
+                    failed_before += result.failed
+                else:
+                    facts = RunFacts(result.record, _severity_counts(result.findings), shared,
+                                     result.findings)
+                    totals.ignored += len(result.ignored)
+                    failed_before += _not_processed(result)
+                own = facts.counts
                 counts["error"] += own[0]
                 counts["warning"] += own[1]
                 counts["note"] += own[2]
-                totals.ignored += len(result.ignored)
-                failed_before += _not_processed(result)
-                totals.facts.append(RunFacts(result.record, own, shared, result.findings))
-                on_run(result)
+                totals.facts.append(facts)
+                on_run(result.prepared if isinstance(result, _Prepared) else result)
             done_before += len(part)
-            del results
+            del results, seen
             settle()
         totals.dataset_findings.extend(walk_problems)
         phase = dataset_phase(totals.facts, policies)
@@ -504,6 +549,42 @@ def audit_stream(
         return totals
     finally:
         settle.release()
+
+
+@dataclass
+class _Prepared:
+    """What a worker sends back for one run of a prepared stream (see ``audit_stream``)."""
+
+    facts: RunFacts
+    ignored: int
+    failed: bool
+    prepared: Any
+
+
+def _prepare(result: RunResult, prepare: Callable[[RunResult], Any],
+             shared: _Interner) -> _Prepared:
+    return _Prepared(RunFacts(result.record, _severity_counts(result.findings), shared,
+                              result.findings),
+                     len(result.ignored), _not_processed(result), prepare(result))
+
+
+def _prepared_chunk(targets: Sequence[tuple[Path, Path]], *,
+                    job: Callable[[Sequence[tuple[Path, Path]]], list[RunResult]],
+                    prepare: Callable[[RunResult], Any]) -> list[_Prepared]:
+    # one interner per chunk: equal values of the chunk's runs are sent once
+    shared = _Interner()
+    return [_prepare(result, prepare, shared) for result in job(targets)]
+
+
+def _prepared_lost(item: tuple[Path, Path], why: str, *,
+                   prepare: Callable[[RunResult], Any]) -> _Prepared:
+    return _prepare(_lost_target(item, why), prepare, _Interner())
+
+
+def _failed(result: RunResult | _Prepared) -> bool:
+    if isinstance(result, _Prepared):
+        return result.failed
+    return _not_processed(result)
 
 
 class _Settler:

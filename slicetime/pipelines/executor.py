@@ -159,12 +159,14 @@ class ProcessExecutor(Executor):
 
     name = "processes"
 
-    def __init__(self, jobs: int) -> None:
+    def __init__(self, jobs: int, *, serial_below: int = 0) -> None:
         super().__init__()
         self.jobs = jobs
+        #: fewer items than this run in this process (starting workers would cost more)
+        self.serial_below = serial_below
 
     def _run(self, job: Job[T, R], tracker: _Tracker[R], lost: Lost[T, R]) -> None:
-        if self.jobs <= 1 or len(tracker.chunks) <= 1:
+        if self.jobs <= 1 or len(tracker.chunks) <= 1 or tracker.total < self.serial_below:
             Executor._run(self, job, tracker, lost)
             return
         while todo := tracker.pending():
@@ -384,25 +386,35 @@ class DaskExecutor(Executor):
 
 
 #: with this many CPUs or fewer, light per-run work (audit, fix) runs in one process by
-#: default: measured on 2 CPUs, sending results back costs more than the second worker
-#: saves (README, Performance)
+#: default: measured on 2 CPUs, sending whole results back costs more than the second
+#: worker saves (README, Performance)
 LIGHT_WORK_SERIAL_CPUS = 2
+#: ... unless the workers send back little (``small_results``: a streamed audit's report
+#: lines and run facts) and there are at least this many runs: then the workers win
+#: (2,000 runs on 2 CPUs: about a quarter less time) and below it starting them costs more
+SMALL_RESULTS_PARALLEL_FROM = 500
 
 
-def make_executor(jobs: int | None, scheduler: str | None, *, light: bool = False) -> Executor:
+def make_executor(jobs: int | None, scheduler: str | None, *, light: bool = False,
+                  small_results: bool = False) -> Executor:
     """``--scheduler`` wins (connecting for at most ``SLICETIME_CONNECT_TIMEOUT``
     seconds, default 10); else ``--jobs`` local processes. Without ``--jobs``: the
     CPUs available, except for ``light`` work on machines with at most
-    ``LIGHT_WORK_SERIAL_CPUS`` CPUs, which runs in this process."""
+    ``LIGHT_WORK_SERIAL_CPUS`` CPUs, which runs in this process, or, when the work
+    sends back ``small_results``, in this process below ``SMALL_RESULTS_PARALLEL_FROM``
+    runs."""
     if scheduler:
         timeout = float(os.environ.get("SLICETIME_CONNECT_TIMEOUT", "10"))
         return DaskExecutor(scheduler, timeout=timeout)
-    if jobs is None:
-        cpus = available_cpus()
-        count = 1 if light and cpus <= LIGHT_WORK_SERIAL_CPUS else cpus
-    else:
-        count = jobs
-    return ProcessExecutor(count) if count > 1 else Executor()
+    if jobs is not None:
+        return ProcessExecutor(jobs) if jobs > 1 else Executor()
+    cpus = available_cpus()
+    if cpus == 1:
+        return Executor()
+    if light and cpus <= LIGHT_WORK_SERIAL_CPUS:
+        return (ProcessExecutor(cpus, serial_below=SMALL_RESULTS_PARALLEL_FROM)
+                if small_results else Executor())
+    return ProcessExecutor(cpus)
 
 
 def map_chunks(
