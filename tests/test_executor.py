@@ -383,3 +383,43 @@ def test_small_results_use_the_second_cpu_only_for_large_audits(
 
 def _pid(items: Sequence[int]) -> list[int]:
     return [os.getpid() for _ in items]
+
+
+def test_the_html_page_from_worker_parts_equals_the_page_from_whole_records(
+    tmp_path: Path,
+) -> None:
+    # with --html the workers send back each run's page parts instead of its record: the
+    # page (data, drawings, counts) must be the one the whole records give
+    from slicetime.interfaces.report_html import (
+        DiagramCollector,
+        line_and_parts,
+        write_html_stream,
+    )
+    from slicetime.interfaces.report_stream import RunSpool
+
+    root = _many_runs(tmp_path / "ds", n=90)
+    pages = []
+    for executor, prepared in ((Executor(), False), (ProcessExecutor(2), True)):
+        spool, drawings = RunSpool(str(root)), DiagramCollector()
+
+        def from_parts(item: tuple[str, object], spool: RunSpool = spool,
+                       drawings: DiagramCollector = drawings) -> None:
+            spool.add_line(item[0])
+            drawings.add_parts(item[1])  # type: ignore[arg-type]
+
+        def from_record(run: object, spool: RunSpool = spool,
+                        drawings: DiagramCollector = drawings) -> None:
+            spool.add(run)  # type: ignore[arg-type]
+            drawings.add(run)  # type: ignore[arg-type]
+
+        try:
+            spool.totals = audit_module.audit_stream(
+                [root], from_parts if prepared else from_record, executor=executor,
+                prepare=line_and_parts if prepared else None)
+            page = tmp_path / f"page-{prepared}.html"
+            write_html_stream(spool, drawings, page, generated="fixed")
+            pages.append(page.read_text(encoding="utf-8"))
+        finally:
+            spool.close()
+    assert pages[0] == pages[1]
+    assert "dg-2" in pages[0]  # more than one distinct diagram (the outlier's own)

@@ -95,8 +95,7 @@ def walking_options(verb: str) -> Callable[[F], F]:
 #: what ``--jobs`` defaults to (``pipelines.executor.make_executor``): header-only work
 #: (audit, fix) and work that reads image data (correct)
 JOBS_LIGHT = "the CPUs available; one on machines with 2 or fewer"
-JOBS_AUDIT = ("the CPUs available; on machines with 2 or fewer, one unless 500 runs or more "
-              "are audited without --html")
+JOBS_AUDIT = "the CPUs available; on machines with 2 or fewer, one below 500 runs"
 JOBS_HEAVY = "the CPUs available; memory grows with each"
 
 
@@ -361,32 +360,37 @@ def audit(
         _require_matplotlib("--html")
     root_given = str(paths[0]) if len(paths) == 1 else " ".join(str(p) for p in paths)
     spool = RunSpool(root_given)
-    collect: list[Callable[[Any], None]] = [spool.add]
     drawings = None
     if html_file is not None:
         from slicetime.interfaces.report_html import DiagramCollector
 
         drawings = DiagramCollector()
-        collect.append(drawings.add)
 
-    def on_run(run: Any) -> None:
-        for step in collect:
-            step(run)
+    # a run's report line (and its page parts) are made where the run is audited: a worker
+    # sends back only them and the run's facts, never the whole record
+    prepare: Callable[[Any], Any] = run_line
+    on_run: Callable[[Any], None] = spool.add_line
+    if drawings is not None:
+        from slicetime.interfaces.report_html import line_and_parts
 
-    # without the HTML page, which draws from whole records, a run's report line is made
-    # where the run is audited, and a worker sends back only that line and the run's facts
-    prepare = run_line if drawings is None else None
+        collector = drawings
+        prepare = line_and_parts
+
+        def on_run(prepared: Any) -> None:
+            line, parts = prepared
+            spool.add_line(line)
+            collector.add_parts(parts)
 
     reporter = (contextlib.nullcontext(None) if quiet or no_progress
                 else progress_reporter("auditing"))
     try:
         with _executor(jobs, scheduler, light=not verify_data,
-                       small_results=prepare is not None) as executor, \
+                       small_results=True) as executor, \
                 reporter as progress:
             try:
                 spool.totals = audit_stream(
                     list(paths),
-                    on_run if prepare is None else spool.add_line,
+                    on_run,
                     prepare=prepare,
                     include_derivatives=include_derivatives,
                     include_sourcedata=include_sourcedata,

@@ -36,7 +36,7 @@ import io
 import os
 from array import array
 from collections import Counter, defaultdict
-from collections.abc import Callable, Iterator, Sequence
+from collections.abc import Iterator, Sequence
 from dataclasses import dataclass, field
 from typing import IO, Any
 
@@ -50,6 +50,7 @@ from slicetime.interfaces.report_stream import (
     grounds_text,
     group_label,
     report_root,
+    run_line,
 )
 from slicetime.interfaces.safe_text import xml_safe
 from slicetime.interfaces.screen import strip_path_prefix
@@ -209,15 +210,45 @@ def _run_facts(record: RunRecord) -> tuple[tuple[str, str], ...]:
 OWN_SIDECAR = -2
 
 
-def _run_sources(record: RunRecord, index: Callable[[str], int]) -> tuple[int, ...]:
-    """Where each value came from, as string indexes: key, value, key, value, …"""
+def _source_texts(record: RunRecord) -> tuple[str, ...]:
+    """Where each value came from: key, value, key, value, …"""
     sources: dict[str, str] = {}
     if record.schedule is not None:
         sources.update({k: v.describe() for k, v in record.schedule.sources.items()})
     for key in ("MultibandAccelerationFactor", "TaskName", "EchoTime"):
         if key in record.metadata_sources:
             sources[key] = record.metadata_sources[key]
-    return tuple(index(text) for pair in sources.items() for text in pair)
+    return tuple(text for pair in sources.items() for text in pair)
+
+
+@dataclass(frozen=True)
+class RunParts:
+    """What the page needs of one run's full record, as plain values: made where the
+    run is audited (a worker process), so that the record need not travel."""
+
+    spec: DiagramSpec
+    facts: tuple[tuple[str, str], ...]
+    sources: tuple[str, ...]  # key, value, key, value, …
+    chain: tuple[str, ...]
+    own: str  # the run's own sidecar (path as reports show it)
+
+
+#: equal diagrams of the runs a worker audits made one object (sent once per chunk)
+_SPECS: dict[DiagramSpec, DiagramSpec] = {}
+
+
+def page_parts(record: RunRecord) -> RunParts:
+    spec = diagram_spec(record)
+    if len(_SPECS) >= 1024:
+        _SPECS.clear()
+    spec = _SPECS.setdefault(spec, spec)
+    return RunParts(spec, _run_facts(record), _source_texts(record), record.sidecar_chain,
+                    sidecar_path(record.path))
+
+
+def line_and_parts(result: RunResult) -> tuple[str, RunParts]:
+    """A run's report line and page parts: ``audit_stream(prepare=...)`` with ``--html``."""
+    return run_line(result), page_parts(result.record)
 
 
 class DiagramCollector:
@@ -238,14 +269,16 @@ class DiagramCollector:
         self.run_own = array("i")  # the run's own sidecar (a string index), or -1
 
     def add(self, run: RunResult) -> None:
-        record = run.record
-        ident = self.drawings.add(diagram_spec(record))
+        self.add_parts(page_parts(run.record))
+
+    def add_parts(self, parts: RunParts) -> None:
+        ident = self.drawings.add(parts.spec)
         self.examples.setdefault(ident, len(self.run_drawing))
         self.run_drawing.append(int(ident[3:]) - 1)
-        self.run_facts.append(self.facts(_run_facts(record)))
+        self.run_facts.append(self.facts(parts.facts))
         # the run's own sidecar is OWN_SIDECAR in its sources and chain, so runs that take
         # their values the same way share one entry of the sources table
-        own = sidecar_path(record.path)
+        own = parts.own
         used = False
 
         def index(text: str) -> int:
@@ -255,8 +288,9 @@ class DiagramCollector:
                 return OWN_SIDECAR
             return self.strings(xml_safe(text))
 
-        chain = tuple(index(s) for s in record.sidecar_chain)
-        self.run_sources.append(self.sources((_run_sources(record, index), chain)))
+        chain = tuple(index(s) for s in parts.chain)
+        sources = tuple(index(text) for text in parts.sources)
+        self.run_sources.append(self.sources((sources, chain)))
         self.run_own.append(self.strings(xml_safe(own)) if used else -1)
 
 
