@@ -435,3 +435,36 @@ def test_consolidate_refuses_differing_values(ds: Path) -> None:
     assert result.exit_code == 0
     assert "SliceTiming not consolidated" in result.output
     assert tree_hashes(ds) == before
+
+
+def test_the_reaudit_after_apply_uses_the_commands_policy_and_source_map(
+    ds: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    # the re-audit that follows --apply must judge the runs as the plan did: with the
+    # --policy given (a code it ignores must not come back as "still") and the
+    # --source-map given (a series only the map names)
+    from slicetime.pipelines import fix as fixing
+
+    rel = run_path("01")
+    write_run(ds, rel, shape=SHAPE, tr=TR,
+              sidecar={"RepetitionTime": TR, "SliceTiming": [t * 1000 for t in interleaved()]})
+    policy = tmp_path / "lab.toml"
+    policy.write_text("version = 1\n", encoding="utf-8")
+    mapping = tmp_path / "map.tsv"
+    mapping.write_text(f"run\tseries\n{rel}\t{tmp_path / 'nowhere'}\n", encoding="utf-8")
+    seen: list[dict[str, Any]] = []
+    real = fixing.audit_paths
+
+    def spy(paths: Any, **kwargs: Any) -> Any:
+        seen.append(kwargs)
+        return real(paths, **kwargs)
+
+    monkeypatch.setattr(fixing, "audit_paths", spy)
+    result = fix(ds, "--apply", "--policy", policy, "--source-map", mapping,
+                 "--backup-dir", tmp_path / "b")
+    assert "written" in result.output, result.output
+    assert len(seen) == 2  # the plan's audit, then the re-audit
+    planned, again = seen
+    assert again["policy_file"] == planned["policy_file"] == policy
+    assert again["source"] == planned["source"]
+    assert again["source"].mapping  # the map was read and passed on

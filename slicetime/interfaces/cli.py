@@ -785,7 +785,9 @@ def fix(
     if applied.journal is not None:
         click.echo(f"backups and journal: {xml_safe(applied.journal)}  (undo: slicetime fix "
                    f"--undo {xml_safe(applied.journal)})")
-    left = fixing.reaudit(plan) if applied.written else []
+    left = (fixing.reaudit(plan, policy_file=policy_file,
+                           source=_source_options(None, source_map))
+            if applied.written else [])
     if left:
         for finding in left:
             click.echo(f"still     {xml_safe(finding.one_line())}")

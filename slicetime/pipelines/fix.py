@@ -1126,11 +1126,14 @@ def undo(journal_path: Path) -> UndoResult:
     return result
 
 
-def reaudit(plan: FixPlan) -> list[Finding]:
-    """Fixable findings left on the repaired runs after applying (should be none)."""
+def reaudit(plan: FixPlan, *, policy_file: Path | None = None,
+            source: SourceOptions | None = None) -> list[Finding]:
+    """Fixable findings left on the repaired runs after applying (should be none).
+    ``policy_file`` and ``source``: as the plan was made with (a code the lab policy
+    ignores, or a series only the source map names, must not come back here)."""
     left: list[Finding] = []
     for root, runs in plan.repaired_runs.items():
-        result = audit_paths([Path(root)])
+        result = audit_paths([Path(root)], policy_file=policy_file, source=source)
         for run in result.runs:
             if run.record.path in runs:
                 left.extend(f for f in run.findings if f.code in FIXABLE)
