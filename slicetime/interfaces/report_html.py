@@ -138,8 +138,6 @@ def _use(ident: str, size: tuple[float, float], caption: str) -> str:
 # --------------------------------------------------------------------------- grouping
 
 
-
-
 def _column_key(record: RunRecord, suffixes: int) -> str:
     parts = [f"{k}-{v}" for k, v in record.entities.items() if k != "sub"]
     if suffixes > 1 or not parts:
@@ -487,6 +485,7 @@ def _page_data(source: ReportSource, collector: DiagramCollector,
         "facts": collector.facts.values,
         "subjects": subjects.values, "subject_order": row_order,
         "columns": columns.values, "column_order": col_order,
+        "own_sidecar": OWN_SIDECAR,
     })
     yield "]," + _safe_in_script(rest[1:-1])
     # the two tables that grow with the runs, a block at a time (never one huge string)
@@ -896,7 +895,7 @@ _SCRIPT = """
       dl.appendChild(dd);
     });
     var pairs = data.sources[r[9]][0], chain = data.sources[r[9]][1];
-    function named(k) { return k === -2 ? S[r[11]] : S[k]; }  // -2: the run's own sidecar
+    function named(k) { return k === data.own_sidecar ? S[r[11]] : S[k]; }
     if (chain.length) {
       dl.appendChild(el("dt", null, "sidecars"));
       dl.appendChild(el("dd", null, chain.map(named).join(" \u2192 ")));

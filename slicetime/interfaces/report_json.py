@@ -81,11 +81,6 @@ def schema_validator(name: str, pointer: str = "") -> Any:
     return jsonschema.Draft202012Validator(schema, registry=registry)
 
 
-#: the keys of a run object whose values many runs share, in contract order:
-#: ``slice_times`` (the rounded schedule) and ``scheme`` (one per distinct schedule)
-SHARED_RUN_KEYS = ("slice_times", "scheme")
-
-
 def run_object(run: RunResult) -> dict[str, Any]:
     """One run as the contract's run object."""
     head, origin, tail = run_parts(run)
@@ -101,10 +96,10 @@ def run_object(run: RunResult) -> dict[str, Any]:
 
 
 def run_parts(run: RunResult) -> tuple[dict[str, Any], str | None, dict[str, Any]]:
-    """The run object without its shared values (:data:`SHARED_RUN_KEYS`): the keys
-    before ``slice_times``, the ``timing_origin`` between them, and the keys after
-    ``scheme``. :func:`run_object` puts them together; the streamed report encodes
-    the shared values once per distinct value (``report_stream.run_line``)."""
+    """The run object without the values many runs share (``slice_times`` and
+    ``scheme``): the keys before ``slice_times``, the ``timing_origin`` between them,
+    and the keys after ``scheme``. :func:`run_object` puts them together; the streamed
+    report encodes the shared values once per distinct value (``report_stream.run_line``)."""
     record = run.record
     schedule = record.schedule
     header = record.header

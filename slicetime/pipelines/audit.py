@@ -330,8 +330,7 @@ class _Interner:
         if facts.datatype:
             facts.datatype = one(facts.datatype, self.text)
         facts.header = one(facts.header, self.header)
-        schedule = facts.schedule
-        facts.schedule = one(schedule, self.schedule)
+        facts.schedule = one(facts.schedule, self.schedule)
         facts.scheme = one(facts.scheme, lambda v: self.scheme(v, facts.schedule))
         return facts
 
@@ -505,21 +504,20 @@ def audit_stream(
                 raise Interrupted([True] * start + stop.results + [None] * left) from None
             seen: dict[int, Any] = {}
             for result in results:
-                if isinstance(result, _Prepared):
-                    facts = shared.adopt(result.facts, seen)
-                    totals.ignored += result.ignored
-                    failed_before += result.failed
+                if isinstance(result, _Prepared):  # made in a worker: its values made ours
+                    item = result
+                    facts = shared.adopt(item.facts, seen)
                 else:
-                    facts = RunFacts(result.record, _severity_counts(result.findings), shared,
-                                     result.findings)
-                    totals.ignored += len(result.ignored)
-                    failed_before += _not_processed(result)
+                    item = _prepare(result, _itself, shared)
+                    facts = item.facts
+                totals.ignored += item.ignored
+                failed_before += item.failed
                 own = facts.counts
                 counts["error"] += own[0]
                 counts["warning"] += own[1]
                 counts["note"] += own[2]
                 totals.facts.append(facts)
-                on_run(result.prepared if isinstance(result, _Prepared) else result)
+                on_run(item.prepared)
             done_before += len(part)
             del results, seen
             settle()
@@ -579,6 +577,10 @@ def _prepared_chunk(targets: Sequence[tuple[Path, Path]], *,
 def _prepared_lost(item: tuple[Path, Path], why: str, *,
                    prepare: Callable[[RunResult], Any]) -> _Prepared:
     return _prepare(_lost_target(item, why), prepare, _Interner())
+
+
+def _itself(result: RunResult) -> RunResult:
+    return result
 
 
 def _failed(result: RunResult | _Prepared) -> bool:

@@ -50,6 +50,7 @@ __all__ = [
     "open_regular",
     "os_error",
     "read_bounded",
+    "read_up_to",
 ]
 
 _MAX_LINK_HOPS = 40
@@ -274,13 +275,13 @@ def read_bounded(fh: BinaryIO, expected: int, limit: int) -> bytes:
     whatever the file does while it is read.
     """
     first = min(max(expected, 0), limit) + 1
-    data = _read_up_to(fh, first, expected)
+    data = read_up_to(fh, first, expected)
     if len(data) == first and first <= limit:
-        data += _read_up_to(fh, limit + 1 - first)
+        data += read_up_to(fh, limit + 1 - first)
     return data
 
 
-def _read_up_to(fh: BinaryIO, size: int, whole: int | None = None) -> bytes:
+def read_up_to(fh: BinaryIO, size: int, whole: int | None = None) -> bytes:
     """Up to ``size`` bytes; fewer only at the end of the file. ``whole``: the size
     ``fstat`` gave; a first read that returns exactly that much is taken as the whole
     file (no second read to see the end: one system call less per small file)."""

@@ -60,7 +60,14 @@ from typing import Any, BinaryIO, Literal
 
 from slicetime.model import Finding, HeaderInfo
 
-from .errors import ReadError, check_regular_file, display_name, open_regular, os_error
+from .errors import (
+    ReadError,
+    check_regular_file,
+    display_name,
+    open_regular,
+    os_error,
+    read_up_to,
+)
 
 try:  # pragma: no cover - depends on the environment
     from isal import isal_zlib as _fast_zlib
@@ -378,7 +385,7 @@ def _read_isize(fh: BinaryIO, file_size: int) -> int | None:
     if file_size < 18:  # smallest gzip member: 10-byte header, 8-byte trailer
         return None
     fh.seek(file_size - 4)
-    return int(struct.unpack("<I", _read_full(fh, 4))[0])
+    return int(struct.unpack("<I", read_up_to(fh, 4))[0])
 
 
 def _paired_image(path: Path) -> Path | None:
@@ -417,26 +424,11 @@ def read_header(
         raise os_error(exc, shown, what="NIfTI file") from None
 
 
-def _read_full(fh: BinaryIO, size: int, whole: int | None = None) -> bytes:
-    """Up to ``size`` bytes, fewer only at the end of the file (an unbuffered read may
-    return less). ``whole``: the file's size from ``fstat``; a first read that returns
-    all of it needs no second read to see the end."""
-    data = fh.read(size)
-    if whole is not None and 0 < whole == len(data):
-        return data
-    while len(data) < size:
-        more = fh.read(size - len(data))
-        if not more:
-            break
-        data += more
-    return data
-
-
 def _read_open(
     path: str | os.PathLike[str], fh: BinaryIO, file_size: int, shown: str, verify_stream: bool
 ) -> tuple[HeaderInfo, list[Finding]]:
     findings: list[Finding] = []
-    first = _read_full(fh, _FIRST_READ, file_size)
+    first = read_up_to(fh, _FIRST_READ, file_size)
     compressed = first[:2] == GZIP_MAGIC
     if compressed:
         parts: list[bytes] = []
