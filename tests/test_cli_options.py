@@ -1,5 +1,5 @@
 """The command line composes: option groups shared by commands are declared once
-(slicetime.interfaces.cli: walking_options, executor_options, policy_option,
+(slicetime.interfaces.commands.shared: walking_options, executor_options, policy_option,
 source_options) and choices come from the registries (formats, engines)."""
 
 from __future__ import annotations
@@ -8,18 +8,25 @@ import click
 import pytest
 from click.testing import CliRunner
 
-from slicetime.interfaces.cli import JOBS_AUDIT, JOBS_HEAVY, JOBS_LIGHT, cli
+from slicetime.interfaces.cli import cli
+from slicetime.interfaces.commands.shared import JOBS_AUDIT, JOBS_HEAVY, JOBS_LIGHT
+
+
+def command_named(name: str) -> click.Command:
+    command = cli.get_command(None, name)  # type: ignore[arg-type]  # click wants a context; the lazy group needs none
+    assert command is not None, name
+    return command
 
 
 def option(command: str, name: str) -> click.Option:
-    found = [p for p in cli.commands[command].params
+    found = [p for p in command_named(command).params
              if isinstance(p, click.Option) and name in p.opts]
     assert len(found) == 1, (command, name)
     return found[0]
 
 
 def names(command: str) -> set[str]:
-    return {o for p in cli.commands[command].params for o in [*p.opts, *p.secondary_opts]}
+    return {o for p in command_named(command).params for o in [*p.opts, *p.secondary_opts]}
 
 
 GROUPS = {
@@ -82,3 +89,55 @@ def test_format_and_method_choices_come_from_the_registries() -> None:
     result = CliRunner().invoke(cli, ["audit", ".", "--format", "nope"])
     assert result.exit_code == 2
     assert all(name in result.output for name in WRITERS)
+
+
+def test_the_group_loads_a_command_only_when_it_is_used() -> None:
+    """``slicetime --help`` lists every command from the group's table without importing
+    any command module; looking one command up imports its module alone (and the shared
+    options)."""
+    import subprocess
+    import sys
+
+    code = (
+        "import sys\n"
+        "from click.testing import CliRunner\n"
+        "from slicetime.interfaces.cli import cli\n"
+        "loaded = lambda: sorted(m.rsplit('.', 1)[1] for m in sys.modules\n"
+        "                        if m.startswith('slicetime.interfaces.commands.'))\n"
+        "out = CliRunner().invoke(cli, ['--help']).output\n"
+        "print(loaded())\n"
+        "cli.get_command(None, 'timing')\n"
+        "print(loaded())\n"
+        "print(out)\n"
+    )
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                         check=True).stdout.split("\n")
+    assert out[0] == "[]"
+    assert out[1] == "['shared', 'timing']"
+    help_text = "\n".join(out[2:])
+    for name in ("audit", "correct", "demo", "explain", "fix", "show", "timing", "verify"):
+        assert f"\n  {name} " in help_text, name
+    assert "  timing   Print SliceTiming for a protocol" in help_text
+
+
+def test_the_group_table_matches_each_command() -> None:
+    """The one-line help kept in the group's table is the first sentence of the
+    command's own help, and every command module is in the table."""
+    from pathlib import Path
+
+    from slicetime.interfaces import commands
+    from slicetime.interfaces.cli import COMMANDS
+
+    modules = {p.stem for p in Path(commands.__file__).parent.glob("*.py")} - {
+        "__init__", "shared"}
+    assert {module for module, _ in COMMANDS.values()} == modules
+    for name, (_, short) in COMMANDS.items():
+        command = command_named(name)
+        assert command.name == name
+        assert command.get_short_help_str(1000) == short, name
+        # the line of ``slicetime --help`` made from the table equals the one click
+        # makes from the loaded command, at any width
+        stand_in = click.Command(name, help=short)
+        for limit in (30, 45, 88):
+            assert stand_in.get_short_help_str(limit) == command.get_short_help_str(
+                limit), (name, limit)

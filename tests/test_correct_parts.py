@@ -142,7 +142,8 @@ def test_the_method_choice_comes_from_the_engine_registry(
     import dataclasses
 
     from slicetime.engines import interpolate
-    from slicetime.interfaces.cli import RegistryChoice, _engine_names
+    from slicetime.interfaces.commands.correct import _engine_names
+    from slicetime.interfaces.commands.shared import RegistryChoice
 
     extra = dataclasses.replace(interpolate.ENGINES["linear"], name="linear2")
     monkeypatch.setitem(interpolate.ENGINES, "linear2", extra)

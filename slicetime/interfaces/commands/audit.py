@@ -1,0 +1,206 @@
+"""``slicetime audit PATHS``: every run checked, one report (text, JSON, JSONL, TSV,
+JUnit; HTML with --html)."""
+
+from __future__ import annotations
+
+import contextlib
+import io
+import sys
+from collections.abc import Callable, Iterator, Sequence
+from pathlib import Path
+from typing import Any
+
+import click
+
+from slicetime.interfaces.commands.shared import (
+    JOBS_AUDIT,
+    RegistryChoice,
+    UserError,
+    executor_options,
+    friendly,
+    policy_option,
+    run_executor,
+    source_options,
+    source_settings,
+    walking_options,
+)
+
+
+def _report_formats() -> Sequence[str]:
+    from slicetime.interfaces.report_stream import WRITERS
+
+    return list(WRITERS)
+
+
+@click.command()
+@click.argument("paths", nargs=-1, required=True, type=click.Path(path_type=Path))
+@click.option("--format", "fmt", type=RegistryChoice(_report_formats),
+              default="text", show_default=True,
+              help="Report format on stdout (or --output): text, json (the contract), jsonl "
+              "(one object per line), tsv (one row per run) or junit (CI).")
+@click.option("--output", type=click.Path(path_type=Path, dir_okay=False),
+              help="Write the report to this file instead of stdout.")
+@click.option("--html", "html_file", type=click.Path(path_type=Path, dir_okay=False),
+              help="Also write a self-contained HTML report with timing diagrams to this "
+              "file (works offline; any --format still goes to stdout or --output).")
+@click.option("--fail-on", type=click.Choice(["error", "warning", "never"]), default="error",
+              show_default=True, help="Exit 1 when a finding reaches this severity.")
+@click.option("--hide-notes", is_flag=True, help="Leave notes out of the text report.")
+@click.option("--all", "show_all", is_flag=True,
+              help="Text report: list every run, not only the runs with findings.")
+@click.option("--quiet", "-q", is_flag=True,
+              help="Print only the summary line (the exit status is unchanged); --output and "
+              "--html are still written.")
+@click.option("--no-progress", is_flag=True, help="No progress bar or progress lines on stderr.")
+@walking_options("audit")
+@executor_options(default=JOBS_AUDIT)
+@policy_option()
+@click.option("--verify", "verify_data", is_flag=True,
+              help="Also read each run's image data and check its slice order against it "
+              "(a verify/* finding per run; slower: see 'slicetime verify').")
+@source_options()
+@friendly
+def audit(
+    paths: tuple[Path, ...],
+    fmt: str,
+    output: Path | None,
+    html_file: Path | None,
+    fail_on: str,
+    hide_notes: bool,
+    show_all: bool,
+    quiet: bool,
+    no_progress: bool,
+    include_derivatives: bool,
+    include_sourcedata: bool,
+    include_hidden: bool,
+    jobs: int | None,
+    scheduler: str | None,
+    policy_file: Path | None,
+    verify_data: bool,
+    source_check: bool | None,
+    source_map: Path | None,
+) -> None:
+    """Audit every run under PATHS (dataset roots, subject folders or run files)."""
+    from slicetime.interfaces.progress import progress_reporter
+    from slicetime.interfaces.report_stream import RunSpool, run_line, summary_line
+    from slicetime.pipelines.audit import audit_stream
+    from slicetime.pipelines.executor import Interrupted
+
+    if html_file is not None:
+        _require_matplotlib("--html")
+    root_given = str(paths[0]) if len(paths) == 1 else " ".join(str(p) for p in paths)
+    spool = RunSpool(root_given)
+    drawings = None
+    if html_file is not None:
+        from slicetime.interfaces.report_html import DiagramCollector
+
+        drawings = DiagramCollector()
+
+    # a run's report line (and its page parts) are made where the run is audited: a worker
+    # sends back only them and the run's facts, never the whole record
+    prepare: Callable[[Any], Any] = run_line
+    on_run: Callable[[Any], None] = spool.add_line
+    if drawings is not None:
+        from slicetime.interfaces.report_html import line_and_parts
+
+        collector = drawings
+        prepare = line_and_parts
+
+        def on_run(prepared: Any) -> None:
+            line, parts = prepared
+            spool.add_line(line)
+            collector.add_parts(parts)
+
+    reporter = (contextlib.nullcontext(None) if quiet or no_progress
+                else progress_reporter("auditing"))
+    try:
+        with run_executor(jobs, scheduler, light=not verify_data,
+                       small_results=True) as executor, \
+                reporter as progress:
+            try:
+                spool.totals = audit_stream(
+                    list(paths),
+                    on_run,
+                    prepare=prepare,
+                    include_derivatives=include_derivatives,
+                    include_sourcedata=include_sourcedata,
+                    include_hidden=include_hidden,
+                    progress=progress,
+                    policy_file=policy_file,
+                    executor=executor,
+                    verify=verify_data,
+                    source=source_settings(source_check, source_map),
+                )
+            except Interrupted as stop:
+                finished = sum(1 for r in stop.results if r is not None)
+                click.echo(f"slicetime: interrupted; {finished} of {len(stop.results)} runs "
+                           "audited, no report written", err=True)
+                sys.exit(130)
+        if html_file is not None:
+            from slicetime.interfaces.report_html import write_html_stream
+
+            assert drawings is not None
+            try:
+                write_html_stream(spool, drawings, html_file)
+            except OSError as exc:
+                raise UserError(f"{html_file}: cannot write the HTML report: "
+                                f"{exc.strerror or exc}") from None
+        if output is not None:
+            _write_report(output, lambda fh: _audit_report(spool, fh, fmt, fail_on, show_all,
+                                                           not hide_notes))
+        if quiet:
+            click.echo(summary_line(spool.totals))
+        elif output is None:
+            with _buffered_stdout() as out:
+                _audit_report(spool, out, fmt, fail_on, show_all, not hide_notes)
+    finally:
+        spool.close()
+    sys.exit(spool.totals.exit_code(fail_on))
+
+
+def _audit_report(source: Any, out: Any, fmt: str, fail_on: str, show_all: bool,
+                  show_notes: bool) -> None:
+    from slicetime.interfaces.report_stream import ReportStyle, write_report
+
+    write_report(fmt, source, out, ReportStyle(fail_on=fail_on, show_all=show_all,
+                                               show_notes=show_notes))
+
+
+@contextlib.contextmanager
+def _buffered_stdout() -> Iterator[Any]:
+    """Standard output for a long report, written in large blocks even where
+    ``PYTHONUNBUFFERED`` is set (as in many container images): otherwise every piece
+    of every line is a system call of its own (4,000 for a 2,000-run JSON report)."""
+    stdout = sys.stdout
+    binary = getattr(stdout, "buffer", None)
+    if binary is None:  # a stream without a binary layer: written as it is
+        yield stdout
+        return
+    stdout.flush()
+    out = io.TextIOWrapper(binary, encoding=stdout.encoding, errors=stdout.errors,
+                           write_through=False)
+    try:
+        yield out
+    finally:
+        out.flush()
+        out.detach()  # standard output stays open
+
+
+def _write_report(path: Path, write: Callable[[Any], None]) -> None:
+    """Write a report atomically (a temporary name beside it, then a rename)."""
+    from slicetime.readers.atomic import atomic_file
+
+    try:
+        with atomic_file(path) as fh:
+            write(fh)
+    except OSError as exc:
+        raise UserError(f"{path}: cannot write the report: {exc.strerror or exc}") from None
+
+
+def _require_matplotlib(option: str) -> None:
+    """Exit 2 with what to install when the optional drawing library is missing."""
+    try:
+        import matplotlib  # noqa: F401
+    except ImportError:
+        raise UserError(f"{option} draws timing diagrams with matplotlib, which is not "
+                        "installed: pip install matplotlib") from None

@@ -1,0 +1,127 @@
+"""``slicetime correct PATHS --out DIR``: slice-time correction of every run."""
+
+from __future__ import annotations
+
+import sys
+from collections.abc import Sequence
+from pathlib import Path
+
+import click
+
+from slicetime.interfaces.commands.shared import (
+    JOBS_HEAVY,
+    RegistryChoice,
+    UserError,
+    executor_options,
+    friendly,
+    policy_option,
+    run_executor,
+    walking_options,
+)
+
+
+def _engine_names() -> Sequence[str]:
+    from slicetime.engines.interpolate import ENGINES
+
+    return list(ENGINES)
+
+
+@click.command()
+@click.argument("paths", nargs=-1, required=True, type=click.Path(path_type=Path))
+@click.option("--out", type=click.Path(path_type=Path, file_okay=False), required=True,
+              help="Derivative dataset folder for the corrected runs (never inside an input "
+              "dataset, except under its derivatives/).")
+@click.option("--method", type=RegistryChoice(_engine_names),
+              default="fourier", show_default=True, help="Temporal interpolation method.")
+@click.option("--reference", "reference", default="middle", show_default=True,
+              help="Time every slice is aligned to: seconds from the start of the volume "
+              "(e.g. 1.0), 'first', 'middle' (halfway between the first and last excitation), "
+              "'last', or 'slice:N' (the time of slice N, 0-based).")
+@click.option("--desc", default="timealigned", show_default=True,
+              help="Value of the desc- entity added to output names.")
+@click.option("--keep-dtype", is_flag=True,
+              help="Store the input's data type (rounded, clipped with a warning) instead of "
+              "float32.")
+@click.option("--force", is_flag=True,
+              help="Correct runs whose audit has errors (never runs without slice timing).")
+@click.option("--max-memory", "max_memory", default=None, metavar="SIZE",
+              help="Keep the working memory under SIZE (e.g. 512M, 2G); larger runs are "
+              "buffered in a scratch file under --out.")
+@executor_options(default=JOBS_HEAVY, shared="Inputs and --out")
+@policy_option("The audit that gates correction applies it.")
+@click.option("--format", "fmt", type=click.Choice(["text", "json"]), default="text",
+              show_default=True, help="Report format on stdout.")
+@walking_options("correct")
+@click.option("--mix-inputs", is_flag=True,
+              help="Allow an --out folder that already holds outputs made from other input "
+              "datasets (they are kept; a run whose output would replace one is refused).")
+@friendly
+def correct(
+    paths: tuple[Path, ...],
+    out: Path,
+    method: str,
+    reference: str,
+    desc: str,
+    keep_dtype: bool,
+    force: bool,
+    max_memory: str | None,
+    jobs: int | None,
+    scheduler: str | None,
+    policy_file: Path | None,
+    fmt: str,
+    include_derivatives: bool,
+    include_sourcedata: bool,
+    include_hidden: bool,
+    mix_inputs: bool,
+) -> None:
+    """Align every slice of the runs under PATHS to one reference time.
+
+    \b
+    Examples:
+      slicetime correct ds/ --out ds/derivatives/slicetime
+      slicetime correct ds/sub-01 --out aligned --method cubic --reference 1.0
+    """
+    from slicetime.engines.plan import ReferenceChoice
+    from slicetime.interfaces.report_json import correct_object, dumps
+    from slicetime.interfaces.safe_text import xml_safe
+    from slicetime.interfaces.terminal import make_console, progress_reporter, render_correct
+    from slicetime.pipelines.correct import CorrectInterrupted, CorrectOptions, correct_paths
+    from slicetime.pipelines.memory import parse_size
+    from slicetime.words import count
+
+    try:
+        choice = ReferenceChoice.parse(reference)
+    except ValueError as exc:
+        raise UserError(f"--reference: {exc}") from None
+    cap = None
+    if max_memory is not None:
+        try:
+            cap = parse_size(max_memory)
+        except ValueError as exc:
+            raise UserError(f"--max-memory: {exc}") from None
+    options = CorrectOptions(out=out, method=method, reference=choice, desc=desc,
+                             keep_dtype=keep_dtype, force=force, max_memory=cap, threads=0,
+                             mix_inputs=mix_inputs)
+    with run_executor(jobs, scheduler, light=False) as executor, \
+            progress_reporter("correcting") as progress:
+        try:
+            result = correct_paths(
+                list(paths), options, progress=progress, policy_file=policy_file,
+                include_derivatives=include_derivatives, include_sourcedata=include_sourcedata,
+                include_hidden=include_hidden, executor=executor,
+            )
+        except CorrectInterrupted as stop:
+            render_correct(stop.result, make_console(sys.stderr))
+            click.echo(f"slicetime: interrupted; {count(stop.not_finished, 'run')} not finished "
+                       "(rerun the same command to finish them)", err=True)
+            sys.exit(130)
+        except ValueError as exc:
+            raise UserError(xml_safe(str(exc))) from None
+        except OSError as exc:
+            raise UserError(xml_safe(f"{out}: cannot write the outputs ({exc.strerror or exc})")
+                            ) from None
+    if fmt == "json":
+        click.echo(dumps(correct_object(result)))
+    else:
+        render_correct(result, make_console())
+    sys.exit(result.exit_code())

@@ -1,0 +1,21 @@
+"""``slicetime demo``: the whole job on a small invented study."""
+
+from __future__ import annotations
+
+import sys
+from pathlib import Path
+
+import click
+
+from slicetime.interfaces.commands.shared import friendly
+
+
+@click.command()
+@click.option("--out", type=click.Path(path_type=Path, file_okay=False), default=Path(
+    "demo-output"), show_default=True, help="Folder for the invented dataset and reports.")
+@friendly
+def demo(out: Path) -> None:
+    """Run the whole job on a small invented study (audit, verify, fix, correct)."""
+    from slicetime.interfaces.demo_tour import run_demo
+
+    sys.exit(run_demo(out))

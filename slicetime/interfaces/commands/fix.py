@@ -1,0 +1,164 @@
+"""``slicetime fix PATHS``: repair slice-timing metadata (a dry run unless --apply;
+--undo restores from a journal)."""
+
+from __future__ import annotations
+
+import sys
+from pathlib import Path
+
+import click
+
+from slicetime.interfaces.commands.shared import (
+    JOBS_LIGHT,
+    UserError,
+    executor_options,
+    friendly,
+    policy_option,
+    run_executor,
+    source_options,
+    source_settings,
+)
+
+
+@click.command()
+@click.argument("paths", nargs=-1, type=click.Path(path_type=Path))
+@click.option("--apply", "do_apply", is_flag=True,
+              help="Write the changes (default: only show them). Each file is backed up first.")
+@click.option("--backup-dir", type=click.Path(path_type=Path, file_okay=False),
+              help="Where --apply keeps the originals and the journal (default: a "
+              "<dataset>-slicetime-backups folder beside the dataset).")
+@click.option("--undo", "undo_journal", type=click.Path(path_type=Path, dir_okay=False),
+              help="Restore the files a journal (from an earlier --apply) records.")
+@click.option("--plan", "plan_file", type=click.Path(path_type=Path, dir_okay=False),
+              help="Without --apply: save the plan to this file. With --apply: apply exactly "
+              "this saved plan (files changed since it was made are refused).")
+@click.option("--per-run", is_flag=True,
+              help="Write every repair into the run's own sidecar, never into an inherited one.")
+@click.option("--consolidate", "consolidate", multiple=True, metavar="FIELD",
+              help="Move FIELD, when every run of a task and acquisition has the same value in "
+              "its own sidecar, into one top-level sidecar (repeatable).")
+@click.option("--spread", "spread", multiple=True, metavar="FIELD",
+              help="The reverse: copy FIELD from the shared sidecar that gives it into each "
+              "run's own sidecar and remove it there (repeatable).")
+@click.option("--replace-links", is_flag=True,
+              help="Replace a sidecar that is a symbolic link (annexed) by a regular file "
+              "instead of refusing it.")
+@policy_option("Its expected protocols can rebuild missing timing.")
+@executor_options(default=JOBS_LIGHT)
+@source_options(switch=False, purpose="Used to rebuild timing from sourcedata/.")
+@friendly
+def fix(
+    paths: tuple[Path, ...],
+    do_apply: bool,
+    backup_dir: Path | None,
+    undo_journal: Path | None,
+    plan_file: Path | None,
+    per_run: bool,
+    consolidate: tuple[str, ...],
+    spread: tuple[str, ...],
+    replace_links: bool,
+    policy_file: Path | None,
+    jobs: int | None,
+    scheduler: str | None,
+    source_map: Path | None,
+) -> None:
+    """Repair slice-timing metadata in sidecars: a dry run unless --apply.
+
+    \b
+    Exit status: 0 nothing to do (or everything applied / restored); 1 changes
+    are planned (dry run) or some files were refused; 2 bad usage.
+    \b
+    Examples:
+      slicetime fix ds/                    # show the planned changes as diffs
+      slicetime fix ds/ --apply            # write them, with backups and a journal
+      slicetime fix --undo ds-slicetime-backups/<UTC time>/journal.json
+    \b
+    Backups go to <dataset>-slicetime-backups/<UTC time stamp>/ beside the
+    dataset (or --backup-dir); --apply prints the journal's exact path.
+    """
+    from slicetime.interfaces.safe_text import xml_safe
+    from slicetime.interfaces.terminal import make_console, render_fix_plan
+    from slicetime.pipelines import fix as fixing
+
+    console = make_console()
+    try:
+        if undo_journal is not None:
+            if paths or do_apply:
+                raise UserError("--undo takes only the journal, no PATH and no --apply")
+            _fix_undo(undo_journal)
+        if do_apply and plan_file is not None:
+            if paths:
+                raise UserError("--apply --plan FILE applies the saved plan; give no PATH")
+            plan = fixing.read_plan(plan_file)
+        else:
+            if not paths:
+                raise UserError("fix: give the dataset or runs to repair (PATH...)")
+            from slicetime.pipelines.audit import check_paths_hold_runs
+
+            check_paths_hold_runs(list(paths))
+            with run_executor(jobs, scheduler) as executor:
+                plan = fixing.plan_fix(list(paths), per_run=per_run, policy_file=policy_file,
+                                       executor=executor, consolidate=consolidate,
+                                       spread=spread,
+                                       source=source_settings(None, source_map))
+            # the dry run names what --apply would refuse (one refusal writes nothing)
+            plan.notes.extend(f"--apply would refuse it, and then write nothing: {line}"
+                              for line in fixing.preflight(plan, replace_links))
+            render_fix_plan(plan, console)
+        if not do_apply:
+            if plan_file is not None:
+                fixing.write_plan(plan, plan_file)
+                click.echo(f"plan saved to {xml_safe(plan_file)}; apply it with: slicetime fix "
+                           f"--apply --plan {xml_safe(plan_file)}")
+            sys.exit(1 if plan.changes else 0)
+        if not plan.changes:
+            sys.exit(0)
+        applied = fixing.apply_plan(plan, backup_dir=backup_dir, replace_links=replace_links)
+    except fixing.FixError as exc:
+        raise UserError(xml_safe(str(exc))) from None
+    except OSError as exc:
+        raise UserError(xml_safe(f"cannot write the backups or files ({exc.strerror or exc}); "
+                                 "choose a writable --backup-dir")) from None
+    for name in applied.written:
+        click.echo(f"written   {xml_safe(name)}")
+    for line in applied.refused:
+        click.echo(f"refused   {xml_safe(line)}")
+    if applied.refused:
+        click.echo(f"nothing was written: {len(applied.refused)} of {len(plan.changes)} files "
+                   "would be refused, and a plan is applied whole or not at all")
+    if applied.journal is not None:
+        click.echo(f"backups and journal: {xml_safe(applied.journal)}  (undo: slicetime fix "
+                   f"--undo {xml_safe(applied.journal)})")
+    left = (fixing.reaudit(plan, policy_file=policy_file,
+                           source=source_settings(None, source_map))
+            if applied.written else [])
+    if left:
+        for finding in left:
+            click.echo(f"still     {xml_safe(finding.one_line())}")
+    elif applied.written:
+        click.echo("re-audit: the repaired runs are clean for the repaired codes")
+    sys.exit(1 if applied.refused else 0)
+
+
+def _fix_undo(journal: Path) -> None:
+    """``fix --undo JOURNAL``: restore, then say exactly what was and was not done."""
+    from slicetime.interfaces.safe_text import xml_safe
+    from slicetime.pipelines import fix as fixing
+
+    try:
+        undone = fixing.undo(journal)
+    except OSError as exc:
+        raise UserError(xml_safe(f"{journal}: cannot undo ({exc.strerror or exc}); nothing "
+                                 "was restored")) from None
+    for name in undone.restored:
+        click.echo(f"restored  {xml_safe(name)}")
+    for name in undone.already:
+        click.echo(f"unchanged {xml_safe(name)}  (already restored)")
+    for name in undone.never_written:
+        click.echo(f"unchanged {xml_safe(name)}  (never written: the apply stopped before it)")
+    for line in undone.refused:
+        click.echo(f"refused   {xml_safe(line)}")
+    if undone.failure is not None:
+        click.echo(f"slicetime: {xml_safe(undone.failure)}", err=True)
+        sys.exit(2)
+    sys.exit(1 if undone.refused else 0)

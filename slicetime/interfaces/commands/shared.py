@@ -1,0 +1,204 @@
+"""What the commands share: option groups declared once, the lazy registry choice,
+the one-line error (exit 2) and the crash guard, and the executor and source
+cross-check the options ask for.
+
+Exit codes (contract): 0 nothing at or above ``--fail-on``; 1 findings at or
+above it; 2 bad usage or unreadable input given explicitly. A user's mistake
+or a bad file never produces a traceback: it is one line on stderr.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import functools
+import os
+import sys
+from collections.abc import Callable, Iterator, Sequence
+from pathlib import Path
+from typing import Any, Literal, TypeVar
+
+import click
+
+F = TypeVar("F", bound=Callable[..., Any])
+
+EXIT_FINDINGS = 1
+EXIT_USAGE = 2
+EXIT_INTERNAL = 3
+
+
+class RegistryChoice(click.Choice):
+    """A choice read from a registry the first time click needs it (parsing the option,
+    help, completion), so that starting the command line imports no registry (the
+    engines import numpy). Adding an engine to ``ENGINES`` adds it to ``--method``."""
+
+    def __init__(self, load: Callable[[], Sequence[str]]) -> None:
+        self._load = load
+        self._names: tuple[str, ...] | None = None
+        super().__init__([])
+
+    @property  # click declares choices as a plain attribute
+    def choices(self) -> tuple[str, ...]:
+        if self._names is None:
+            self._names = tuple(self._load())
+        return self._names
+
+    @choices.setter
+    def choices(self, value: Sequence[str]) -> None:
+        pass  # click.Choice.__init__ stores the (empty) list given: the registry decides
+
+
+# --------------------------------------------------------------------------- option groups
+# Options several commands share, declared once: a command applies the group where its
+# options stood (click lists options in decorator order), and keeps their names.
+
+
+def _options(*decorators: Callable[[F], F]) -> Callable[[F], F]:
+    """Several click options as one decorator, listed in the order given."""
+
+    def apply(fn: F) -> F:
+        for decorate in reversed(decorators):
+            fn = decorate(fn)
+        return fn
+
+    return apply
+
+
+def walking_options(verb: str) -> Callable[[F], F]:
+    """``--include-derivatives``, ``--include-sourcedata``, ``--include-hidden``: the
+    parts of a dataset the walk leaves out by default. ``verb``: what the command does
+    to the runs found there ("audit", "correct")."""
+    return _options(
+        click.option("--include-derivatives", is_flag=True,
+                     help=f"Also {verb} runs in derivatives/."),
+        click.option("--include-sourcedata", is_flag=True,
+                     help=f"Also {verb} runs in sourcedata/."),
+        click.option("--include-hidden", is_flag=True,
+                     help=f"Also {verb} hidden folders and files."),
+    )
+
+
+#: what ``--jobs`` defaults to (``pipelines.executor.make_executor``): header-only work
+#: (audit, fix) and work that reads image data (correct)
+JOBS_LIGHT = "the CPUs available; one on machines with 2 or fewer"
+JOBS_AUDIT = "the CPUs available; on machines with 2 or fewer, one below 500 runs"
+JOBS_HEAVY = "the CPUs available; memory grows with each"
+
+
+def executor_options(*, default: str, shared: str = "Files") -> Callable[[F], F]:
+    """``--jobs`` and ``--scheduler``: where the runs are processed. ``default`` names
+    the command's default for ``--jobs`` (:data:`JOBS_LIGHT`, :data:`JOBS_AUDIT`,
+    :data:`JOBS_HEAVY`); ``shared``: what the Dask workers must see."""
+    return _options(
+        click.option("--jobs", type=click.IntRange(min=1), default=None,
+                     help=f"Local worker processes (default: {default})."),
+        click.option("--scheduler", metavar="ADDRESS",
+                     help="Run on a Dask cluster: the address of its scheduler "
+                     f"(tcp://host:8786). {shared} must be on a file system the workers "
+                     "share."),
+    )
+
+
+def policy_option(purpose: str = "") -> Callable[[F], F]:
+    """``--policy FILE``; ``purpose``: what this command uses the policy for."""
+    return click.option(
+        "--policy", "policy_file", type=click.Path(path_type=Path, dir_okay=False),
+        help="Lab policy (TOML). Default: slicetime-policy.toml at the dataset root."
+        + (f" {purpose}" if purpose else ""))
+
+
+def source_options(*, switch: bool = True, purpose: str = "") -> Callable[[F], F]:
+    """``--source/--no-source`` (when ``switch``) and ``--source-map``: the cross-check
+    with the DICOM series under sourcedata/ (:func:`source_settings` reads them)."""
+    source_map = click.option(
+        "--source-map", "source_map", type=click.Path(path_type=Path, dir_okay=False),
+        help="TSV of run path and series folder (relative to the dataset root, or "
+        "absolute): these matches win over SeriesNumber and geometry."
+        + (f" {purpose}" if purpose else ""))
+    if not switch:
+        return source_map
+    return _options(
+        click.option("--source/--no-source", "source_check", default=None,
+                     help="Check each run against its DICOM series under sourcedata/ "
+                     "(default: on when the dataset has a sourcedata/ folder; --source also "
+                     "notes runs without a series)."),
+        source_map,
+    )
+
+
+class UserError(click.ClickException):
+    """A one-line problem with what the user asked for (exit 2)."""
+
+    exit_code = EXIT_USAGE
+
+    def show(self, file: Any = None) -> None:
+        click.echo(f"slicetime: {self.format_message()}", err=True)
+
+
+def friendly(fn: F) -> F:
+    """Turn reader errors into one-line messages and unexpected crashes into exit 3."""
+
+    @functools.wraps(fn)
+    def wrapper(*args: Any, **kwargs: Any) -> Any:
+        from slicetime.pipelines.errors import NoRunsError
+        from slicetime.readers.errors import ReadError
+
+        try:
+            return fn(*args, **kwargs)
+        except ReadError as exc:
+            raise UserError(exc.message) from None
+        except NoRunsError as exc:
+            raise UserError(str(exc)) from None
+        except (click.ClickException, click.exceptions.Exit, click.Abort, SystemExit):
+            raise
+        except KeyboardInterrupt:
+            click.echo("slicetime: interrupted", err=True)
+            sys.exit(130)
+        except BrokenPipeError:
+            sys.exit(0)
+        except Exception as exc:  # a bug: keep the user's terminal clean, allow debugging
+            if os.environ.get("SLICETIME_DEBUG"):
+                raise
+            click.echo(
+                f"slicetime: internal error ({type(exc).__name__}: {exc}); "
+                "rerun with SLICETIME_DEBUG=1 for the traceback and please report it",
+                err=True,
+            )
+            sys.exit(EXIT_INTERNAL)
+
+    return wrapper  # type: ignore[return-value]  # functools.wraps keeps the signature
+
+
+def source_settings(check: bool | None, source_map: Path | None) -> Any:
+    """The source cross-check the options ask for (a bad map file: exit 2)."""
+    from slicetime.readers.source import SourceOptions, load_source_map
+
+    mapping = load_source_map(source_map) if source_map is not None else {}
+    mode: Literal["auto", "on", "off"] = (
+        "off" if check is False else "on" if check or mapping else "auto")
+    return SourceOptions(mode=mode, mapping=mapping)
+
+
+@contextlib.contextmanager
+def run_executor(jobs: int | None, scheduler: str | None, *, light: bool = True,
+                 small_results: bool = False) -> Iterator[Any]:
+    """The executor the options ask for; a note on stderr of where the work ran.
+    ``light``: header-only work per run (audit, fix); ``small_results``: the workers
+    send back little (see ``make_executor``)."""
+    from slicetime.pipelines.executor import ExecutorError, make_executor
+    from slicetime.words import count
+
+    try:
+        executor = make_executor(jobs, scheduler, light=light, small_results=small_results)
+    except ExecutorError as exc:
+        raise UserError(str(exc)) from None
+    try:
+        yield executor
+    finally:
+        stats = executor.stats
+        if executor.name == "dask":
+            click.echo(f"slicetime: ran on {count(len(stats.workers), 'Dask worker')} of "
+                       f"{scheduler}", err=True)
+        if stats.retried_chunks:
+            click.echo(f"slicetime: {count(stats.retried_chunks, 'chunk')} retried after a lost "
+                       f"worker, {count(stats.lost_items, 'run')} lost twice", err=True)
+        executor.close()

@@ -1,0 +1,102 @@
+"""``slicetime show FILE``: one run (or one DICOM series) in full."""
+
+from __future__ import annotations
+
+import os
+import sys
+from pathlib import Path
+
+import click
+
+from slicetime.interfaces.commands.shared import EXIT_FINDINGS, UserError, friendly, policy_option
+
+
+@click.command()
+@click.argument("file", type=click.Path(path_type=Path))
+@click.option("--json", "as_json", is_flag=True, help="Print the run object of the JSON report.")
+@click.option("--fail-on", type=click.Choice(["error", "warning", "never"]), default="error",
+              show_default=True, help="Exit 1 when one of the run's findings reaches this "
+              "severity.")
+@policy_option()
+@friendly
+def show(file: Path, as_json: bool, fail_on: str, policy_file: Path | None) -> None:
+    """Show one run: its schedule, where each value came from, its scheme and findings.
+
+    FILE is the run's image or its own sidecar (_bold.json). The findings are
+    exactly those `slicetime audit` gives the run: its dataset is audited (header
+    bytes only) with the lab policy, so the dataset-wide checks are included.
+    A DICOM file or series folder shows the series' own slice times and scheme.
+    """
+    from slicetime.interfaces.report_json import dumps, run_object
+    from slicetime.interfaces.terminal import make_console, render_show
+    from slicetime.model import Severity
+    from slicetime.pipelines.audit import inspect_run
+
+    if _is_dicom_input(file):
+        _show_series(file, as_json)
+        return
+    run = inspect_run(_show_target(file), policy_file=policy_file)
+    if as_json:
+        from slicetime.interfaces.source_view import run_source_object
+
+        obj = run_object(run)
+        if run.record.source is not None:
+            obj["source"] = run_source_object(run.record)
+        click.echo(dumps(obj))
+    else:
+        from slicetime.interfaces.source_view import render_run_source
+
+        render_show(run, make_console())
+        render_run_source(run.record, make_console())
+    if fail_on != "never":
+        level = Severity.parse(fail_on).rank
+        sys.exit(EXIT_FINDINGS if any(f.severity.rank >= level for f in run.findings) else 0)
+
+
+def _show_target(file: Path) -> Path:
+    """The run image that ``show FILE`` means: the file itself, or the image beside a
+    run's own sidecar. A folder or a sidecar without its image is a usage mistake."""
+    if not os.path.lexists(file):
+        raise UserError(f"{file}: file does not exist")
+    if file.is_dir():
+        raise UserError(f"{file}: a folder; show takes one run (its image or its own sidecar); "
+                        f"to check every run under it: slicetime audit {file}")
+    if file.name.lower().endswith(".json"):
+        stem = file.name[: -len(".json")]
+        for ext in (".nii.gz", ".nii"):
+            image = file.with_name(stem + ext)
+            if os.path.lexists(image):
+                return image
+        raise UserError(f"{file}: a sidecar without a run image beside it (no {stem}.nii.gz "
+                        f"or {stem}.nii); an inherited sidecar serves several runs: show one "
+                        "of them, or audit the folder")
+    return file
+
+
+def _is_dicom_input(file: Path) -> bool:
+    """A series folder or a DICOM file (not a NIfTI run) given to ``show``."""
+    from slicetime.readers.dataset import is_image_name
+    from slicetime.readers.dicom import is_dicom_file, series_files
+
+    if is_image_name(file.name):
+        return False
+    if file.is_dir():
+        try:
+            files = series_files(str(file))
+        except OSError:
+            return False
+        return bool(files) and is_dicom_file(files[0])
+    return file.is_file() and is_dicom_file(str(file))
+
+
+def _show_series(file: Path, as_json: bool) -> None:
+    from slicetime.interfaces.report_json import dumps
+    from slicetime.interfaces.source_view import render_series, series_object
+    from slicetime.interfaces.terminal import make_console
+    from slicetime.readers.dicom import read_series
+
+    series = read_series(str(file), str(file))  # ReadError: one line, exit 2
+    if as_json:
+        click.echo(dumps(series_object(series)))
+    else:
+        render_series(series, make_console())

@@ -1,0 +1,147 @@
+"""``slicetime timing``: SliceTiming for a protocol, as JSON for a sidecar."""
+
+from __future__ import annotations
+
+import json
+from typing import Any
+
+import click
+
+from slicetime.interfaces.commands.shared import UserError, friendly
+from slicetime.model import MAX_REPETITION_TIME
+
+
+@click.command()
+@click.option("--slices", "n_slices", type=click.IntRange(min=1), required=True,
+              help="Number of slices along the slice axis.")
+@click.option("--tr", "tr", type=click.FloatRange(min=0, min_open=True),
+              help="Repetition time in seconds.")
+@click.option("--delay-time", "delay", type=click.FloatRange(min=0, min_open=True),
+              metavar="SECONDS",
+              help="BIDS DelayTime of a sparse protocol: the silent part at the end of each TR. "
+              "The slices are spread over the rest (TR minus SECONDS); written as DelayTime.")
+@click.option("--acquisition-time", "old_ta", hidden=True, default=None,
+              help="Replaced by --delay-time (kept only to say so).")
+@click.option("--order", type=click.Choice(["sequential", "interleaved"]), default="sequential",
+              show_default=True, help="Order of excitation along the slice encoding direction.")
+@click.option("--descending", is_flag=True,
+              help="Acquire from the last slice (along the encoding direction) first.")
+@click.option("--step", type=click.IntRange(min=2), default=2, show_default=True,
+              help="Distance between successive slices of an interleaved order.")
+@click.option("--first", "first", default=None, metavar="INDEX|auto",
+              help="First slice acquired in an interleaved order, counted along the encoding "
+              "direction from 0: one of the first STEP slices (0 to STEP-1; with --descending "
+              "one of the last STEP excitation groups), each later pass starting one slice "
+              "further; or 'auto': from 1 when the count is even, else from 0.")
+@click.option("--multiband", type=click.IntRange(min=1), default=1, show_default=True,
+              help="Multiband factor: slices excited together, spaced N/M apart.")
+@click.option("--axis", "axis", type=click.Choice(["i", "j", "k", "i-", "j-", "k-"]),
+              default="k", show_default=True,
+              help="SliceEncodingDirection of the run the list is for.")
+@click.option("--decimals", type=click.IntRange(min=0, max=9), default=4, show_default=True,
+              help="Round the times to this many decimals.")
+@click.option("--compact", is_flag=True,
+              help="Print the fields as one line of JSON, ready to paste into a sidecar.")
+@friendly
+def timing(
+    n_slices: int,
+    tr: float | None,
+    delay: float | None,
+    old_ta: str | None,
+    order: str,
+    descending: bool,
+    step: int,
+    first: str | None,
+    multiband: int,
+    axis: str,
+    decimals: int,
+    compact: bool,
+) -> None:
+    """Print SliceTiming for a protocol, as JSON to paste into a sidecar.
+
+    \b
+    Examples:
+      slicetime timing --slices 40 --tr 2 --order interleaved
+      slicetime timing --slices 60 --tr 1 --multiband 4 --order interleaved --first auto
+      slicetime timing --slices 16 --tr 3 --delay-time 1.5 --order interleaved  # sparse
+    """
+    from slicetime.numbers import plain
+    from slicetime.schemes.generate import Protocol, array_times, slice_timing
+    from slicetime.schemes.infer import infer_scheme
+
+    if old_ta is not None:
+        raise UserError("timing: --acquisition-time is replaced by --delay-time SECONDS, the "
+                        "silent part of the TR (BIDS DelayTime): for slices spread over A "
+                        "seconds of a TR of T seconds give --tr T --delay-time T-A")
+    if tr is None:
+        raise UserError("timing: give --tr (and --delay-time for sparse protocols)")
+    for option, value in (("--tr", tr), ("--delay-time", delay)):
+        if value is not None and value > _MS_LIKE_SECONDS:
+            raise UserError(f"{option} {value:g}: times are in seconds, and {value:g} s looks "
+                            f"like milliseconds; did you mean {option} {value / 1000:g}?")
+    start: int | str | None = None
+    if first is not None:
+        if first == "auto":
+            start = "auto"
+        else:
+            try:
+                start = int(first)
+            except ValueError:
+                raise UserError(f"--first must be a slice index or 'auto', not {first!r}") \
+                    from None
+            if start < 0:
+                raise UserError(f"--first must be a slice index (0 or more), not {first}")
+    if delay is not None and delay >= tr:
+        raise UserError(f"timing: --delay-time {plain(delay)} must be shorter than --tr "
+                        f"{plain(tr)} (the slices are spread over the TR minus the delay)")
+    active = None if delay is None else tr - delay
+    protocol = Protocol(
+        n_slices=n_slices,
+        order=order,  # type: ignore[arg-type]  # click.Choice gave one of the Literal values
+        ascending=not descending,
+        step=step,
+        start=start,  # type: ignore[arg-type]  # an int or "auto", checked above
+        multiband=multiband,
+        repetition_time=tr,
+        active_time=active,
+        direction="-" if axis.endswith("-") else "+",
+        decimals=decimals,
+    )
+    try:
+        times = slice_timing(protocol)
+    except ValueError as exc:
+        raise UserError(f"timing: {_as_options(str(exc))}") from None
+    fields: dict[str, Any] = {"SliceTiming": times}
+    fields["RepetitionTime"] = tr
+    if delay is not None:
+        fields["DelayTime"] = round(delay, decimals)
+    fields["SliceEncodingDirection"] = axis
+    if multiband > 1:
+        fields["MultibandAccelerationFactor"] = multiband
+    label = infer_scheme(array_times(protocol)).label
+    click.echo(json.dumps(fields) if compact else json.dumps(fields, indent=2))
+    click.echo(f"scheme in data-array order: {label}", err=True)
+
+
+#: a TR or delay above this many seconds was written in milliseconds (the
+#: audit's tr/units-ms uses the same bound)
+_MS_LIKE_SECONDS = MAX_REPETITION_TIME
+#: the protocol's parameter names and the options the user typed for them
+_OPTION_OF = {
+    "n_slices": "--slices",
+    "repetition_time": "--tr",
+    "active_time": "--delay-time",
+    "start": "--first",
+    "step": "--step",
+    "multiband": "--multiband",
+    "decimals": "--decimals",
+}
+
+
+def _as_options(message: str) -> str:
+    """A protocol validation message with parameter names replaced by option names."""
+    import re
+
+    pattern = re.compile(r"(?<![\w-])(" + "|".join(_OPTION_OF) + r")(?= must|:|=| \()")
+    message = message.replace("use order 'sequential'", "use --order sequential")
+    return pattern.sub(lambda m: _OPTION_OF[m.group(1)], message)
