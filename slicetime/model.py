@@ -9,7 +9,7 @@ from __future__ import annotations
 import dataclasses
 import enum
 import itertools
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any, Literal
 
@@ -35,10 +35,39 @@ TIME_TOLERANCE = 0.003
 the timing and dataset rules, the lab policy's default). How far a gap between
 consecutive excitation groups may deviate from the median gap before the timing
 counts as uneven, the upper bound of the threshold below which two slice times
-count as equal, and how far two runs' times may differ and still agree.
-Converters round slice times to 1 ms or 2.5 ms (common practice, no source),
-which moves a gap by at most one rounding step (2.5 ms), so 3 ms accepts rounded
-times while a genuinely uneven gap of a few milliseconds or more is reported."""
+count as equal, and how far two runs' times (or a run's and its source series'
+slice times and TR) may differ and still agree. Converters round slice times to
+1 ms or 2.5 ms (common practice, no source), which moves a gap by at most one
+rounding step (2.5 ms), so 3 ms accepts rounded times while a genuinely uneven gap
+of a few milliseconds or more is reported."""
+
+#: Seconds: the floating-point slack of the one boundary rule (:func:`past_end`), far
+#: below the 1 µs to which reports round times; it absorbs only arithmetic noise such
+#: as ``2.0 - 0.5`` computed in another order.
+BOUNDARY_SLACK = 1e-9
+
+
+def past_end(time: float, end: float) -> bool:
+    """The one boundary rule: a slice time at or after the end of its window (the TR,
+    or the acquisition time of a sparse run) belongs to the next volume. A slice at
+    exactly the end is outside; one before it is inside. Every consumer (rules,
+    repairs, the correction gate, plots) asks this function."""
+    return time >= end - BOUNDARY_SLACK
+
+
+def before_start(time: float) -> bool:
+    """The other side of the window: a slice time before the volume begins (negative)."""
+    return time < -BOUNDARY_SLACK
+
+
+def outside_window(times: Sequence[float], window: float | None) -> tuple[int, ...]:
+    """The indices of ``times`` outside the acquisition window ``[0, window)``, by the
+    one boundary rule; only negative times count when nothing bounds the window."""
+    if not times or (not before_start(min(times))
+                     and (window is None or not past_end(max(times), window))):
+        return ()  # the common case, decided with one min() and one max()
+    return tuple(i for i, t in enumerate(times)
+                 if before_start(t) or (window is not None and past_end(t, window)))
 
 
 class Severity(str, enum.Enum):
@@ -310,6 +339,85 @@ class TimingProblem:
     evidence: Mapping[str, Any] = dataclasses.field(default_factory=dict)
 
 
+#: the units a timing value can be written in, and the factor that makes it seconds
+UNIT_FACTORS: Mapping[str, float] = {"s": 1.0, "ms": 0.001, "us": 1e-6, "unknown": 1.0}
+
+
+@dataclass(frozen=True)
+class UnitVerdict:
+    """How one timing field was written: its unit, and what that verdict rests on.
+
+    ``field`` is ``SliceTiming``, ``RepetitionTime``, ``VolumeTiming`` (sidecar keys)
+    or ``pixdim[4]``, ``slice_duration`` (header fields, whose unit ``xyzt_units``
+    states). ``unit`` is ``s``, ``ms``, ``us`` or ``unknown`` (read as seconds);
+    the value as written times :attr:`factor` is seconds."""
+
+    field: str
+    unit: str
+    evidence: Mapping[str, Any] = dataclasses.field(default_factory=dict)
+
+    @property
+    def factor(self) -> float:
+        return UNIT_FACTORS[self.unit]
+
+
+@dataclass(frozen=True)
+class ResolvedTiming:
+    """Everything a run's timing resolves to, decided once (``schemes.resolve``).
+
+    ``schedule`` keeps the slice times as written, in data-array order, with the
+    source of every value (``correct`` refuses what is not in seconds; ``fix``
+    divides). Everything else is in seconds, after the unit verdicts in ``units``:
+    ``times``, ``repetition_time`` (sidecar ``RepetitionTime``; else, without
+    ``VolumeTiming``, the header's ``pixdim[4]``; BIDS: the sidecar wins, with or
+    without a schedule), the acquisition ``window`` and its
+    ``window_name`` (:meth:`SliceSchedule.window`), and ``outside``: the slices
+    outside ``[0, window)`` by the one boundary rule (:func:`outside_window`).
+    Rules, repairs, the correction gate, plots, reports and the API read this and
+    decide none of it again."""
+
+    schedule: SliceSchedule | None = None
+    #: where the slice times came from: "sidecar", "header", or None
+    origin: str | None = None
+    #: why there is no schedule (empty when there is one)
+    problems: tuple[TimingProblem, ...] = ()
+    #: slice axis length along the resolved axis, when the header gives it
+    axis_length: int | None = None
+    repetition_time: float | None = None
+    repetition_source: Source | None = None
+    times: tuple[float, ...] | None = None
+    window: float | None = None
+    window_name: str = ""
+    outside: tuple[int, ...] = ()
+    units: Mapping[str, UnitVerdict] = dataclasses.field(default_factory=dict)
+
+    def unit(self, field: str) -> str:
+        """The unit ``field`` was written in (``s`` when no verdict was needed)."""
+        verdict = self.units.get(field)
+        return verdict.unit if verdict is not None else "s"
+
+    @property
+    def times_factor(self) -> float:
+        """The factor that turns the schedule's times as written into seconds."""
+        verdict = self.units.get("SliceTiming")
+        return verdict.factor if verdict is not None else 1.0
+
+    def seconds_schedule(self) -> SliceSchedule | None:
+        """The schedule with its times and repetition time in seconds (for drawings,
+        ``verify`` and callers that need a schedule rather than the parts)."""
+        schedule = self.schedule
+        if schedule is None or self.times is None:
+            return schedule
+        if self.times == schedule.times and self.repetition_time == schedule.repetition_time:
+            return schedule
+        return dataclasses.replace(schedule, times=self.times,
+                                   repetition_time=self.repetition_time)
+
+
+#: a run about which nothing is resolved (no header, or built before resolving)
+UNRESOLVED = ResolvedTiming()
+
+
 @dataclass(frozen=True)
 class RunRecord:
     """One run with everything resolved about it, ready for rules and reports.
@@ -331,13 +439,8 @@ class RunRecord:
     metadata: Mapping[str, Any] = dataclasses.field(default_factory=dict)
     metadata_sources: Mapping[str, str] = dataclasses.field(default_factory=dict)
     sidecar_chain: tuple[str, ...] = ()
-    schedule: SliceSchedule | None = None
-    #: where the slice times came from: "sidecar", "header" or None
-    timing_origin: str | None = None
-    #: why there is no schedule, when there is none
-    timing_problems: tuple[TimingProblem, ...] = ()
-    #: the number of slices along the resolved slice axis, when the header gives it
-    axis_length: int | None = None
+    #: the run's timing, resolved once (schedule, units, TR, window): see ResolvedTiming
+    timing: ResolvedTiming = UNRESOLVED
     scheme: Scheme | None = None
     findings: tuple[Finding, ...] = ()
     #: timing fields a deeper sidecar overrode: key -> ((sidecar, shadowed value), ...)
@@ -346,3 +449,23 @@ class RunRecord:
     )
     #: what the source DICOM series says, when the source cross-check ran (see model_source)
     source: SourceEvidence | None = None
+
+    @property
+    def schedule(self) -> SliceSchedule | None:
+        """The slice times as written, with their sources (``timing.schedule``)."""
+        return self.timing.schedule
+
+    @property
+    def timing_origin(self) -> str | None:
+        """Where the slice times came from: "sidecar", "header" or None."""
+        return self.timing.origin
+
+    @property
+    def timing_problems(self) -> tuple[TimingProblem, ...]:
+        """Why there is no schedule, when there is none."""
+        return self.timing.problems
+
+    @property
+    def axis_length(self) -> int | None:
+        """The number of slices along the resolved slice axis, when the header gives it."""
+        return self.timing.axis_length

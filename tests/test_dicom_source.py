@@ -40,6 +40,7 @@ from slicetime.pipelines.audit import audit_paths
 from slicetime.pipelines.fix import apply_plan, plan_fix
 from slicetime.readers.dicom import read_series
 from slicetime.readers.source import SourceOptions
+from slicetime.rules.registry import RULES
 from slicetime.schemes.infer import infer_scheme
 from tests.helpers_bids import write_description
 
@@ -293,7 +294,7 @@ def test_times_within_the_quantum_agree(tmp_path: Path) -> None:
     assert codes(audit_paths([root])) == ["source/times-differ"]
     root2, _, _ = resting_tree(tmp_path / "b", [round(t * 1000) / 1000 for t in
                                                     nib_times(ds)])
-    assert codes(audit_paths([root2])) == []  # 1 ms rounding stays within 2.5 ms
+    assert codes(audit_paths([root2])) == []  # 1 ms rounding stays within the 3 ms tolerance
 
 
 def test_no_source_flag_and_auto_mode(tmp_path: Path) -> None:
@@ -499,3 +500,43 @@ def test_bad_dicom_becomes_a_finding(tmp_path: Path, kind: str) -> None:
         ["source/unreadable"]
     shown = CliRunner().invoke(cli, ["show", str(bad)])
     assert shown.exit_code == 2 and "Traceback" not in shown.output
+
+
+# --------------------------------------------------------------------------- one verdict (issue 23)
+
+
+def test_missing_times_the_source_records_are_reported_once(tmp_path: Path) -> None:
+    # the same absence seen with the source (source/times-absent) and without it
+    # (timing/missing) is one finding with one hint; the other is listed as folded
+    root, _, _ = resting_tree(tmp_path, None)
+    (run,) = audit_paths([root]).runs
+    about_times = [f for f in run.findings if f.field == "SliceTiming"]
+    assert [f.code for f in about_times] == ["source/times-absent"]
+    assert [entry["code"] for entry in about_times[0].evidence["folded"]] == ["timing/missing"]
+
+
+def test_a_multiband_source_is_rebuilt_in_one_pass(tmp_path: Path) -> None:
+    # no SliceTiming and no MultibandAccelerationFactor: the times and the factor come
+    # from the source in the same fix --apply, so a second pass has nothing to do
+    invented = [0.0, 0.5, 1.0, 0.0, 0.5, 1.0]  # two slices at each time
+    root = dataset(tmp_path)
+    enhanced_file(root / "sourcedata/sub-02/mf/mf.dcm", invented)
+    run = root / "sub-02/func/sub-02_task-x_bold.nii.gz"
+    affine = DPCS_TO_TAL @ np.array([[2.0, 0, 0, -16], [0, 2.0, 0, -16], [0, 0, 3.0, 0],
+                                     [0, 0, 0, 1]])
+    write_nifti(run, affine, (16, 16, 6), 2, 1.5)
+    sidecar(run, TaskName="x", RepetitionTime=1.5, SeriesNumber=7)
+    assert codes(audit_paths([root])) == ["source/times-absent"]
+    result = CliRunner().invoke(cli, ["fix", str(root), "--apply", "--backup-dir",
+                                      str(tmp_path / "b")])
+    assert result.exit_code == 0, result.output
+    ds = pydicom.dcmread(root / "sourcedata/sub-02/mf/mf.dcm")
+    per_time = collections.Counter(  # the group size as pydicom reads the frames
+        f.FrameContentSequence[0].FrameAcquisitionDateTime
+        for f in ds.PerFrameFunctionalGroupsSequence[:6])
+    written = json.loads(run.with_name("sub-02_task-x_bold.json").read_text())
+    assert written["MultibandAccelerationFactor"] == max(per_time.values())
+    (again,) = audit_paths([root]).runs
+    assert not [f.code for f in again.findings if RULES[f.code].fixable]
+    second = plan_fix([root])
+    assert second.changes == []

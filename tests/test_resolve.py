@@ -86,3 +86,68 @@ def test_sparse_window_from_delay_time() -> None:
     assert rec.schedule.acquisition_window == pytest.approx(2.0)
     assert rec.schedule.times == pytest.approx(array_times(p))
     assert rec.scheme is not None and rec.scheme.regular
+
+
+# --------------------------------------------------------------------------- one resolved timing
+
+
+def test_sidecar_repetition_time_wins_over_the_header_without_slice_timing() -> None:
+    # BIDS specification (MRI, task imaging): RepetitionTime is given in the sidecar, in
+    # seconds; the sidecar is the metadata of record, so a header pixdim[4] that says
+    # otherwise does not win, with or without SliceTiming (from memory)
+    rec = record({"RepetitionTime": 2.0}, header_info((8, 8, 4, 10), tr=2000.0))
+    assert rec.schedule is None  # no slice times at all
+    assert rec.timing.repetition_time == 2.0
+    assert rec.timing.repetition_source is not None
+    assert rec.timing.repetition_source.kind == "sidecar"
+
+
+def test_header_time_units_come_from_xyzt_units() -> None:
+    # NIfTI-1 (nifti1.h): xyzt_units bits 3-5 give the time unit; NIFTI_UNITS_MSEC is 16.
+    # nibabel's header reports the same unit, which the header below was written with.
+    hdr = nib.Nifti1Header()
+    hdr.set_xyzt_units("mm", "msec")
+    assert hdr.get_xyzt_units()[1] == "msec"
+    rec = record({"SliceTiming": [0.0, 0.5, 1.0, 1.5]},
+                 header_info((8, 8, 4, 10), tr=2.0, time_unit="ms"))
+    verdict = rec.timing.units["pixdim[4]"]
+    assert verdict.unit == "ms" and verdict.factor == 1e-3  # 1 ms = 1e-3 s (SI)
+    assert rec.timing.repetition_time == 2.0  # the header's value, in seconds
+    assert rec.timing.repetition_source is not None
+    assert rec.timing.repetition_source.kind == "header"
+
+
+def test_repetition_time_in_milliseconds_makes_every_time_seconds() -> None:
+    # BIDS rules.checks.func.RepetitionTimeGreaterThan: a functional TR above 100 was
+    # written in milliseconds. Slice times in ms beside it are then judged against the TR
+    # in seconds (1 ms = 1e-3 s), and one verdict per field says so.
+    listed = [float(t) for t in slice_timing(Protocol(n_slices=4, repetition_time=2.0))]
+    ms = [t * 1000.0 for t in listed]
+    rec = record({"RepetitionTime": 2000.0, "SliceTiming": ms}, header_info((8, 8, 4, 10)))
+    assert rec.timing.unit("RepetitionTime") == "ms"
+    assert rec.timing.unit("SliceTiming") == "ms"
+    assert rec.timing.repetition_time == pytest.approx(2.0)
+    assert rec.timing.times == pytest.approx(tuple(listed))
+    assert rec.timing.window == pytest.approx(2.0) and rec.timing.outside == ()
+
+
+def test_one_boundary_rule_for_the_window() -> None:
+    # common practice (no source): a slice acquired exactly one TR after the volume began
+    # is the first slice of the next volume, so the window is [0, TR)
+    from slicetime.engines.plan import ImplausibleTiming, check_plausible
+    from slicetime.interfaces.plots import diagram_spec
+    from slicetime.rules import check_run
+
+    rec = record({"RepetitionTime": 2.0, "SliceTiming": [0.0, 0.5, 1.0, 2.0]},
+                 header_info((8, 8, 4, 10)))
+    assert rec.timing.outside == (3,)
+    assert diagram_spec(rec).late == (3,)
+    assert rec.schedule is not None
+    with pytest.raises(ImplausibleTiming):
+        check_plausible(rec.schedule)
+
+    assert "timing/exceeds-tr" in {f.code for f in check_run(rec)}
+    inside = record({"RepetitionTime": 2.0, "SliceTiming": [0.0, 0.5, 1.0, 1.999]},
+                    header_info((8, 8, 4, 10)))
+    assert inside.timing.outside == ()
+    assert "timing/exceeds-tr" not in {f.code for f in check_run(inside)}

@@ -17,7 +17,14 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from slicetime.model import MAX_REPETITION_TIME, MIN_REPETITION_TIME, SliceSchedule
+from slicetime.model import (
+    BOUNDARY_SLACK,
+    MAX_REPETITION_TIME,
+    MIN_REPETITION_TIME,
+    SliceSchedule,
+    before_start,
+    outside_window,
+)
 
 #: the reference used when the user does not choose one (see ``ReferenceChoice``)
 DEFAULT_REFERENCE = "middle"
@@ -81,7 +88,7 @@ def check_plausible(schedule: SliceSchedule) -> None:
     if times:
         low, high = min(times), max(times)
         limit = min(window, high_tr) if window is not None else high_tr
-        if low < -1e-6 or high > limit + 1e-6:
+        if outside_window((low, high), limit):  # the one boundary rule
             raise ImplausibleTiming(
                 f"slice times run from {low:g} to {high:g} s, outside the acquisition "
                 f"window of 0 to {limit:g} s, so they cannot be used even with --force"
@@ -160,7 +167,8 @@ def reference_time(choice: ReferenceChoice, schedule: SliceSchedule) -> float:
         assert choice.value is not None
         ref = choice.value
     window = schedule.acquisition_window
-    if window is not None and not (0.0 <= ref <= window + 1e-9):
+    # a reference may be the window's end itself (it is not a slice)
+    if window is not None and (before_start(ref) or ref > window + BOUNDARY_SLACK):
         raise PlanError(
             f"reference time {ref:g} s is outside this run's acquisition window "
             f"(0 to {window:g} s)"

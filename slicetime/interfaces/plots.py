@@ -19,7 +19,6 @@ timing gets a placeholder picture that says why.
 
 from __future__ import annotations
 
-import dataclasses
 import io
 import re
 import textwrap
@@ -28,7 +27,7 @@ from typing import Any
 
 from slicetime.engines.plan import DEFAULT_REFERENCE, PlanError, ReferenceChoice, reference_time
 from slicetime.interfaces.safe_text import xml_safe
-from slicetime.model import RunRecord
+from slicetime.model import RunRecord, before_start
 from slicetime.numbers import secs
 from slicetime.words import count, encoding_direction
 
@@ -120,13 +119,6 @@ def _r(value: float) -> float:
     return round(float(value), RESOLUTION_DECIMALS)
 
 
-def _window(record: RunRecord) -> tuple[float | None, str]:
-    schedule = record.schedule
-    assert schedule is not None
-    window, name = schedule.window()
-    return window, _WINDOW_NAMES.get(name, name)
-
-
 #: how the diagram names each kind of window (model.SliceSchedule.window)
 _WINDOW_NAMES = {
     "RepetitionTime - DelayTime": "TR − DelayTime",
@@ -147,14 +139,14 @@ def placeholder_message(record: RunRecord) -> str:
 
 def diagram_spec(record: RunRecord) -> DiagramSpec:
     """The picture of one run (pure: no drawing, no I/O)."""
-    schedule = record.schedule
+    timing = record.timing
+    # drawn in seconds, as resolved (SliceTiming in milliseconds is drawn ÷ 1000)
+    schedule = timing.seconds_schedule()
     if schedule is None or not schedule.times:
         return DiagramSpec("placeholder", message=placeholder_message(record))
-    if record.scheme is not None and record.scheme.evidence.get("assumed_unit") == "ms":
-        # SliceTiming in milliseconds: drawn in seconds, as the scheme and the terminal read it
-        schedule = dataclasses.replace(schedule, times=tuple(t * 0.001 for t in schedule.times))
     times = tuple(_r(t) for t in schedule.times)
-    window, window_name = _window(record)
+    window = timing.window
+    window_name = _WINDOW_NAMES.get(timing.window_name, timing.window_name)
     scheme = record.scheme
     if scheme is not None:
         groups = tuple(tuple(g) for g in scheme.groups)
@@ -172,10 +164,8 @@ def diagram_spec(record: RunRecord) -> DiagramSpec:
         order = sorted(range(len(times)), key=lambda i: (times[i], i))
         groups = tuple((i,) for i in order)
         label, uneven = "", ()
-    late = tuple(
-        i for i, t in enumerate(schedule.times) if window is not None and t >= window - 1e-9
-    )
-    early = tuple(i for i, t in enumerate(schedule.times) if t < 0)
+    late = tuple(i for i in timing.outside if not before_start(schedule.times[i]))
+    early = tuple(i for i in timing.outside if before_start(schedule.times[i]))
     reference: float | None = None
     note = f"default reference ({DEFAULT_REFERENCE})"
     try:

@@ -181,7 +181,7 @@ def _run_facts(record: RunRecord) -> tuple[tuple[str, str], ...]:
     facts: list[tuple[str, str]] = []
     if header is not None:
         facts.append(("shape", " × ".join(str(d) for d in header.shape)))
-    tr = schedule.repetition_time if schedule else (header.repetition_time if header else None)
+    tr = record.timing.repetition_time  # resolved: the sidecar's, else the header's
     if tr is not None:
         facts.append(("repetition time", secs(tr)))
     if schedule is not None:

@@ -106,6 +106,8 @@ def run_parts(run: RunResult) -> tuple[dict[str, Any], str | None, dict[str, Any
     sources: dict[str, str] = {}
     if schedule is not None:
         sources.update({k: v.describe() for k, v in schedule.sources.items()})
+    elif record.timing.repetition_source is not None:  # a TR without slice times
+        sources["RepetitionTime"] = record.timing.repetition_source.describe()
     for key in ("MultibandAccelerationFactor", "TaskName", "EchoTime"):
         if key in record.metadata_sources:
             sources[key] = record.metadata_sources[key]
@@ -116,8 +118,7 @@ def run_parts(run: RunResult) -> tuple[dict[str, Any], str | None, dict[str, Any
         "slice_direction": schedule.direction if schedule else None,
         "slice_encoding_direction": encoding_direction(schedule.axis, schedule.direction)
         if schedule else None,
-        "repetition_time": _time(schedule.repetition_time if schedule else (
-            header.repetition_time if header else None)),
+        "repetition_time": _time(record.timing.repetition_time),  # seconds, resolved
         "volume_times": json_times(schedule.volume_times) if schedule and schedule.volume_times
         else None,
         "acquisition_duration": _time(schedule.acquisition_duration) if schedule else None,

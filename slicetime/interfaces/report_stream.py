@@ -494,8 +494,7 @@ def write_text(source: ReportSource, out: IO[str], *, show_all: bool = False,
             scheme_text = "; ".join(
                 f"{xml_safe(label)} ×{n}" if len(schemes) > 1 else xml_safe(label)
                 for label, n in sorted(schemes.items(), key=lambda kv: (-kv[1], kv[0])))
-            trs = _tr_text(totals.facts[i].schedule.repetition_time  # type: ignore[union-attr]  # filtered below
-                           for i in members if totals.facts[i].schedule is not None)
+            trs = _tr_text(totals.facts[i].timing.repetition_time for i in members)
             sums = [sum(totals.facts[i].counts[k] for i in members) for k in range(len(kinds))]
             root_label = f"[{totals.names.get(key[0], key[0])}]" if several else None
             rows.append((xml_safe(group_label(key, root_label)), str(len(members)), trs,

@@ -134,13 +134,15 @@ def render_show(run: RunResult, console: Console) -> None:
         facts.append(("slice axis", encoding_direction(schedule.axis, schedule.direction)
                       + ("   (SliceTiming lists the highest index first)"
                          if schedule.direction == "-" else "")))
-        if schedule.repetition_time is not None:
-            facts.append(("repetition time", secs(schedule.repetition_time)))
+    timing = record.timing
+    if timing.repetition_time is not None:  # resolved: the sidecar's, else the header's
+        facts.append(("repetition time", secs(timing.repetition_time)))
+    if schedule is not None:
         if schedule.volume_times:
             facts.append(("volume times",
                           f"{count(len(schedule.volume_times), 'onset')} (VolumeTiming)"))
-        if schedule.acquisition_window is not None and schedule.delay_time:
-            facts.append(("acquisition window", f"{secs(schedule.acquisition_window)} "
+        if timing.window is not None and schedule.delay_time:
+            facts.append(("acquisition window", f"{secs(timing.window)} "
                           f"(DelayTime {secs(schedule.delay_time)})"))
     scheme = record.scheme
     if scheme is not None:
@@ -165,10 +167,9 @@ def render_show(run: RunResult, console: Console) -> None:
                            if unicode else
                            "\nacquisition order (slice index up, time within the volume right)",
                            style="dim"))
-        factor = 0.001 if scheme is not None and scheme.evidence.get("assumed_unit") == "ms" \
-            else 1.0  # SliceTiming in milliseconds: drawn in seconds, as the scheme reads it
-        for line in order_diagram([t * factor for t in schedule.times],
-                                  schedule.acquisition_window or schedule.repetition_time,
+        timing = record.timing  # drawn in seconds, as resolved
+        for line in order_diagram(list(timing.times or schedule.times),
+                                  timing.window or timing.repetition_time,
                                   unicode=unicode):
             console.print("  " + line)
     if run.findings:

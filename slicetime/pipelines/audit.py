@@ -15,7 +15,16 @@ from pathlib import Path
 from typing import Any
 
 from slicetime.codes import make_finding
-from slicetime.model import Finding, HeaderInfo, RunRecord, Scheme, Severity, SliceSchedule
+from slicetime.model import (
+    Finding,
+    HeaderInfo,
+    ResolvedTiming,
+    RunRecord,
+    Scheme,
+    Severity,
+    SliceSchedule,
+    UnitVerdict,
+)
 from slicetime.model_source import SourceEvidence
 from slicetime.pipelines.errors import NoRunsError
 from slicetime.pipelines.executor import Executor, Interrupted, Progress, map_chunks
@@ -217,9 +226,8 @@ class RunFacts:
     so 100,000 runs cost a few tens of MB.
     """
 
-    __slots__ = ("_abs", "_sources", "axis_length", "counts", "datatype", "entities",
-                 "fold_roots", "header", "path", "root", "schedule", "scheme", "suffix",
-                 "timing_origin")
+    __slots__ = ("_abs", "_sources", "counts", "datatype", "entities",
+                 "fold_roots", "header", "path", "root", "scheme", "suffix", "timing")
 
     #: read by some run rules; a fact never has them
     metadata: Mapping[str, Any] = {}
@@ -243,10 +251,8 @@ class RunFacts:
         self.suffix = shared.text(record.suffix)
         self.datatype = shared.text(record.datatype) if record.datatype else record.datatype
         self.header = shared.header(record.header)
-        self.schedule = shared.schedule(record.schedule)
-        self.scheme = shared.scheme(record.scheme, self.schedule)
-        self.axis_length = record.axis_length
-        self.timing_origin = record.timing_origin
+        self.timing = shared.timing(record.timing)
+        self.scheme = shared.scheme(record.scheme, self.timing.schedule)
         self.counts = counts  # (errors, warnings, notes) of the run's own findings
         #: (code, field) of the run's own findings that fold others into them, in order
         self.fold_roots: tuple[tuple[str, str | None], ...] = tuple(
@@ -255,6 +261,18 @@ class RunFacts:
     @property
     def abs_path(self) -> str:
         return self._abs if self._abs is not None else _joined(self.root, self.path)
+
+    @property
+    def schedule(self) -> SliceSchedule | None:
+        return self.timing.schedule
+
+    @property
+    def timing_origin(self) -> str | None:
+        return self.timing.origin
+
+    @property
+    def axis_length(self) -> int | None:
+        return self.timing.axis_length
 
     @property
     def metadata_sources(self) -> Mapping[str, str]:
@@ -330,8 +348,8 @@ class _Interner:
         if facts.datatype:
             facts.datatype = one(facts.datatype, self.text)
         facts.header = one(facts.header, self.header)
-        facts.schedule = one(facts.schedule, self.schedule)
-        facts.scheme = one(facts.scheme, lambda v: self.scheme(v, facts.schedule))
+        facts.timing = one(facts.timing, self.timing)
+        facts.scheme = one(facts.scheme, lambda v: self.scheme(v, facts.timing.schedule))
         return facts
 
     def header(self, value: HeaderInfo | None) -> HeaderInfo | None:
@@ -350,6 +368,18 @@ class _Interner:
                value.volume_times, value.acquisition_duration, value.delay_time)
         return self._one(
             key, lambda: dataclasses.replace(value, sources={}))
+
+    def timing(self, value: ResolvedTiming) -> ResolvedTiming:
+        """The resolved timing without what no fact reader needs (the schedule's sources,
+        the problems, the TR's source file, the verdicts' evidence), shared."""
+        schedule = self.schedule(value.schedule)
+        units = tuple((k, v.unit) for k, v in value.units.items())
+        key = ("r", id(schedule), value.origin, value.axis_length, value.repetition_time,
+               value.times, value.window, value.window_name, value.outside, units)
+        return self._one(key, lambda: ResolvedTiming(
+            schedule, value.origin, (), value.axis_length, value.repetition_time, None,
+            value.times, value.window, value.window_name, value.outside,
+            {k: UnitVerdict(k, u) for k, u in units}))
 
     def scheme(self, value: Scheme | None, schedule: SliceSchedule | None) -> Scheme | None:
         if value is None:

@@ -64,7 +64,7 @@ from slicetime.model import AXES, Axis, Finding, RunRecord, Severity, Source
 from slicetime.policy.model import ExpectedProtocol, IgnoreEntry, Policy, SchemeFamily
 from slicetime.rules.registry import RULES, Hit, run_rule, to_finding
 from slicetime.schemes.labels import scheme_family
-from slicetime.schemes.resolve import is_number, parse_direction, positive_number
+from slicetime.schemes.resolve import is_number, parse_direction
 
 __all__ = [
     "ExpectedProtocol",
@@ -329,22 +329,12 @@ def _source_file(source: Source | None, record: RunRecord) -> str:
 
 
 def _found_tr(record: RunRecord) -> tuple[float, Source] | None:
-    schedule = record.schedule
-    if schedule is not None:
-        if schedule.repetition_time is None:
-            return None
-        source = schedule.sources.get("RepetitionTime") or Source("derived", "RepetitionTime")
-        return schedule.repetition_time, source
-    tr = positive_number(record.metadata.get("RepetitionTime"))
-    if tr is not None:
-        return tr, Source(
-            "sidecar", "RepetitionTime", record.metadata_sources.get("RepetitionTime")
-        )
-    if "VolumeTiming" in record.metadata:
+    """The run's resolved repetition time (seconds) and where it came from."""
+    timing = record.timing
+    if timing.repetition_time is None:
         return None
-    if record.header is not None and record.header.repetition_time:
-        return record.header.repetition_time, Source("header", "pixdim[4]", record.path)
-    return None
+    return timing.repetition_time, timing.repetition_source or Source("derived",
+                                                                       "RepetitionTime")
 
 
 def _check_tr(policy: Policy, protocol: ExpectedProtocol, record: RunRecord) -> Hit | None:

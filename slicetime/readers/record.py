@@ -17,7 +17,7 @@ from slicetime.readers.entities import parse_name
 from slicetime.readers.errors import ReadError
 from slicetime.readers.inheritance import SidecarIndex, relative_posix
 from slicetime.readers.nifti import read_header
-from slicetime.schemes.resolve import infer_run_scheme, resolve_schedule
+from slicetime.schemes.resolve import infer_run_scheme, resolve_timing
 
 #: timing fields with a dedicated rule; their type problems are reported there
 _DEDICATED_FIELDS = frozenset({"SliceTiming", "SliceEncodingDirection"})
@@ -65,17 +65,8 @@ def assemble_record(
     }
     if header is None:
         return RunRecord(**common)
-    timing = resolve_schedule(metadata, sources, header, display)
-    scheme = (infer_run_scheme(timing.schedule, timing.timing_origin)
-              if timing.schedule is not None else None)
-    return RunRecord(
-        **common,
-        schedule=timing.schedule,
-        timing_origin=timing.timing_origin,
-        timing_problems=timing.problems,
-        axis_length=timing.axis_length,
-        scheme=scheme,
-    )
+    timing = resolve_timing(metadata, sources, header, display)
+    return RunRecord(**common, timing=timing, scheme=infer_run_scheme(timing))
 
 
 def build_record(root: Path, path: Path, index: SidecarIndex | None = None) -> RunRecord:

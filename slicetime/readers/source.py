@@ -25,7 +25,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Literal
 
-from slicetime.model import RunRecord
+from slicetime.model import TIME_TOLERANCE, RunRecord
 from slicetime.model_source import SeriesTiming, SourceEvidence
 from slicetime.readers.dicom import is_dicom_file, read_series, series_files, series_number
 from slicetime.readers.errors import ReadError
@@ -34,7 +34,6 @@ from slicetime.schemes.correspond import Mismatch, correspond
 __all__ = ["SourceIndex", "SourceOptions", "find_source", "load_source_map", "run_geometry"]
 
 SOURCEDATA = "sourcedata"
-TR_TOLERANCE = 0.001  # s
 SIZE_TOLERANCE = 0.02  # relative, for voxel sizes
 
 
@@ -174,10 +173,9 @@ def _fits(series: SeriesTiming, record: RunRecord,
     if series.slice_spacing and abs(sizes[outcome.axis] - series.slice_spacing) > \
             SIZE_TOLERANCE * series.slice_spacing:
         return False
-    tr = record.schedule.repetition_time if record.schedule else (
-        record.header.repetition_time if record.header else None)
+    tr = record.timing.repetition_time  # seconds, the sidecar's before the header's
     if tr is not None and series.repetition_time is not None and \
-            abs(tr - series.repetition_time) > TR_TOLERANCE:
+            abs(tr - series.repetition_time) > TIME_TOLERANCE:
         return False
     volumes = shape[3] if len(shape) > 3 else 1
     return series.n_volumes is None or series.n_volumes == volumes

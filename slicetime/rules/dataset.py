@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import math
 from collections import Counter, defaultdict
 from collections.abc import Callable, Hashable, Iterator, Sequence
 from typing import Any
@@ -37,8 +36,10 @@ def _consensus(
     value_of: Callable[[RunRecord], Hashable | None],
     show: Callable[[Hashable], str],
     what: str,
-    field: str,
+    field: str | Callable[[RunRecord, Sequence[RunRecord]], str],
 ) -> Iterator[DatasetHit]:
+    """Outliers against a strict majority of a protocol's runs. ``field`` names the
+    field the finding is about, or says it for an outlier given the majority's runs."""
     groups: dict[tuple[str, ...], list[RunRecord]] = defaultdict(list)
     for record in records:
         if record.header is not None:
@@ -53,13 +54,14 @@ def _consensus(
         if votes * 2 <= len(known) or votes == len(known):
             continue  # no strict majority, or everyone agrees
         outliers = [r for r, v in known if v != majority]
+        agreeing = [r for r, v in known if v == majority] if callable(field) else []
         for record in outliers:
             seen = value_of(record)
             assert seen is not None
             yield DatasetHit(record.abs_path, Hit(
                 f"{what} {show(seen)} differs from the {votes} of {len(known)} "
                 f"{_describe_key(key)} runs that have {show(majority)}",
-                field,
+                field(record, agreeing) if callable(field) else field,
                 {"found": show(seen), "majority": show(majority), "majority_runs": votes,
                  "runs_compared": len(known),
                  "outliers": [r.path for r in outliers][:20]},
@@ -90,7 +92,23 @@ def _scheme_text(value: Hashable) -> str:
     "an acq- entity.",
 )
 def outlier_scheme(records: Sequence[RunRecord]) -> Iterator[DatasetHit]:
-    yield from _consensus(records, _scheme_value, _scheme_text, "scheme", "SliceTiming")
+    yield from _consensus(records, _scheme_value, _scheme_text, "scheme", _scheme_field)
+
+
+def _scheme_field(record: RunRecord, majority: Sequence[RunRecord]) -> str:
+    """The field an outlying scheme comes from: SliceEncodingDirection when the run
+    reads the very SliceTiming the majority reads (the same sidecar) but takes its
+    direction from elsewhere, so the finding names the run's own value and file,
+    not the shared list the agreeing runs use; else SliceTiming."""
+    sources = record.metadata_sources
+    times_from, direction_from = sources.get("SliceTiming"), sources.get("SliceEncodingDirection")
+    if times_from is None or direction_from is None or direction_from == times_from:
+        return "SliceTiming"
+    if any(r.metadata_sources.get("SliceTiming") == times_from
+           and r.metadata_sources.get("SliceEncodingDirection") != direction_from
+           for r in majority):
+        return "SliceEncodingDirection"
+    return "SliceTiming"
 
 
 @dataset_rule(
@@ -102,7 +120,7 @@ def outlier_scheme(records: Sequence[RunRecord]) -> Iterator[DatasetHit]:
 )
 def outlier_tr(records: Sequence[RunRecord]) -> Iterator[DatasetHit]:
     def value(record: RunRecord) -> Hashable | None:
-        tr = record.schedule.repetition_time if record.schedule else None
+        tr = record.timing.repetition_time  # seconds, with or without slice times
         return round(tr, 3) if tr else None
 
     yield from _consensus(records, value, lambda v: f"{plain(v)} s", "RepetitionTime",
@@ -162,7 +180,7 @@ def echo_mismatch(records: Sequence[RunRecord]) -> Iterator[DatasetHit]:
                 abs(x - y) <= TIME_TOLERANCE for x, y in zip(a.times, b.times, strict=True))
             same_tr = (a.repetition_time is None) == (b.repetition_time is None) and (
                 a.repetition_time is None or b.repetition_time is None
-                or math.isclose(a.repetition_time, b.repetition_time, abs_tol=1e-3))
+                or abs(a.repetition_time - b.repetition_time) <= TIME_TOLERANCE)
             if not (same_times and same_tr):
                 what = "SliceTiming" if not same_times else "RepetitionTime"
                 yield DatasetHit(other.abs_path, Hit(

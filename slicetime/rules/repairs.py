@@ -30,7 +30,6 @@ a repair only says which sidecar supplies the current value.
 from __future__ import annotations
 
 import dataclasses
-import math
 from collections import defaultdict
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
@@ -110,44 +109,46 @@ PLAUSIBLE_TR = (MIN_REPETITION_TIME, MAX_REPETITION_TIME)
 def _trusted_window(record: RunRecord) -> tuple[float, float] | None:
     """The TR and the window the times must fit, when it comes from evidence that is itself trusted.
 
-    Only a RepetitionTime (or VolumeTiming) written in a sidecar, inside
+    Only a RepetitionTime (or VolumeTiming) written in a sidecar in seconds, inside
     :data:`PLAUSIBLE_TR`, qualifies: a TR from the header (whose units may be
-    wrong) or an implausible one settles nothing. A shorter FrameAcquisitionDuration
-    or DelayTime window narrows it only when it is itself plausible (inside the TR
-    and not below the lower bound); otherwise it is ignored.
+    wrong), one written in milliseconds or an implausible one settles nothing. A
+    shorter FrameAcquisitionDuration or DelayTime window narrows it only when it is
+    itself plausible (inside the TR and not below the lower bound); otherwise it is
+    ignored. Every value is the resolved timing's (seconds, one unit verdict each).
     """
-    schedule = record.schedule
+    timing = record.timing
+    schedule = timing.schedule
     if schedule is None:
         return None
-    tr_source = schedule.sources.get("RepetitionTime")
     tr: float | None = None
-    if schedule.repetition_time is not None and tr_source is not None \
-            and tr_source.kind == "sidecar":
-        tr = schedule.repetition_time
-    elif schedule.volume_times is not None and len(schedule.volume_times) > 1:
+    source = timing.repetition_source
+    if timing.repetition_time is not None and source is not None and source.kind == "sidecar" \
+            and timing.unit("RepetitionTime") == "s":
+        tr = timing.repetition_time
+    elif schedule.volume_times is not None and len(schedule.volume_times) > 1 \
+            and timing.unit("VolumeTiming") == "s":
         vt = schedule.volume_times
         tr = min(vt[i + 1] - vt[i] for i in range(len(vt) - 1))
     low, high = PLAUSIBLE_TR
     if tr is None or not low <= tr <= high:
         return None
-    acq = schedule.acquisition_window
+    acq = timing.window
     if acq is not None and low <= acq <= tr:
         return tr, acq
     return tr, tr
 
 
 def _units_ms(record: RunRecord) -> list[Repair]:
-    times = record.metadata.get("SliceTiming")
-    if not isinstance(times, list) or not times or not all(
-        isinstance(t, int | float) and not isinstance(t, bool) and math.isfinite(t)
-        for t in times
-    ):
+    """Every SliceTiming entry ÷ 1000, when the resolved verdict says milliseconds and
+    the window it was judged against is trusted."""
+    if record.timing.unit("SliceTiming") != "ms":
         return []
+    times = record.metadata.get("SliceTiming")
     trusted = _trusted_window(record)
-    if trusted is None:
+    if trusted is None or not isinstance(times, list):
         return []
     tr, window = trusted
-    # the list must be impossible in seconds (beyond the TR) and fit once divided
+    # the list must be impossible in seconds (beyond the trusted TR) and fit once divided
     if max(times) < tr or max(times) / 1000.0 >= window:
         return []
     value = _rounded([t / 1000.0 for t in times])
@@ -298,14 +299,27 @@ def _from_source(record: RunRecord, code: str) -> list[Repair]:
     return repairs
 
 
-def _multiband_from_source(record: RunRecord) -> list[Repair]:
+def _multiband_from_source(record: RunRecord,
+                           code: str = "source/multiband-differs") -> list[Repair]:
+    """MultibandAccelerationFactor from the source's groups when the sidecar states
+    another, or states none for a multiband source: with SliceTiming rebuilt from the
+    source (``code`` one of :data:`SOURCE_TIMING_CODES`), the factor comes in the same
+    pass, so one ``fix --apply`` leaves nothing for a second one."""
     found = matched(record)
     factor = source_multiband(found[1]) if found is not None else None
     if found is None or factor is None:
         return []
-    return [_repair(record, "source/multiband-differs", "MultibandAccelerationFactor", factor,
-                    f"the source DICOM series {found[1].series}: {factor} slices share each "
-                    "time", {"series": found[1].series, "group_size": factor})]
+    declared = record.metadata.get("MultibandAccelerationFactor")
+    if declared == factor or (declared is None and factor == 1):
+        return []
+    repair = _repair(record, code, "MultibandAccelerationFactor", factor,
+                     f"the source DICOM series {found[1].series}: {factor} slices share each "
+                     "time", {"series": found[1].series, "group_size": factor})
+    if repair.resolved_from is None:  # beside the times it comes with
+        repair = dataclasses.replace(
+            repair, resolved_from=record.metadata_sources.get("SliceTiming"),
+            anchor="SliceTiming")
+    return [repair]
 
 
 def plan_run(
@@ -320,9 +334,9 @@ def plan_run(
         if code in codes:
             found = _from_source(record, code)
             if found:
-                if "source/multiband-differs" in codes:
-                    found += _multiband_from_source(record)
-                return found
+                return found + _multiband_from_source(
+                    record, "source/multiband-differs"
+                    if "source/multiband-differs" in codes else code)
     repairs: list[Repair] = []
     if "source/multiband-differs" in codes:
         repairs += _multiband_from_source(record)

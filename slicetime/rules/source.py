@@ -13,7 +13,7 @@ from __future__ import annotations
 from collections.abc import Iterator
 
 import slicetime.readers.codes  # noqa: F401  (registers source/unreadable, checked below)
-from slicetime.model import RunRecord, Severity
+from slicetime.model import TIME_TOLERANCE, RunRecord, Severity
 from slicetime.model_source import SeriesTiming, SourceEvidence
 from slicetime.numbers import plain
 from slicetime.rules.registry import Hit, run_check, run_rule
@@ -22,10 +22,6 @@ from slicetime.schemes.infer import infer_scheme
 from slicetime.words import agree, count
 
 E, W, N = Severity.ERROR, Severity.WARNING, Severity.NOTE
-#: the source's quantisation step: a sidecar within it agrees (common practice, no source)
-QUANTUM = 0.0025
-TIME_TOLERANCE = QUANTUM + 1e-6
-TR_TOLERANCE = 0.001
 
 
 def _declared_axis(record: RunRecord) -> int | None:
@@ -182,6 +178,8 @@ def _where(corr: Correspondence, series: SeriesTiming) -> str:
         "the converter dropped it. Correction and event models need it."
     ),
     fix="Run slicetime fix: it rebuilds SliceTiming from the source series.",
+    # the same absence, seen without the source: reported once, with this rule's hint
+    subsumes=("timing/missing",),
 )
 def times_absent(record: RunRecord) -> Iterator[Hit]:
     if "SliceTiming" in record.metadata:
@@ -197,21 +195,22 @@ def times_absent(record: RunRecord) -> Iterator[Hit]:
 
 def _compare(record: RunRecord) -> tuple[str, dict[str, object]] | None:
     """('differ'|'reversed', evidence) when the sidecar's times disagree with the source."""
-    schedule = record.schedule
+    schedule, sidecar = record.schedule, record.timing.times  # sidecar: seconds
     found, both = matched(record), source_times(record)
-    if schedule is None or record.timing_origin != "sidecar" or found is None or both is None:
+    if schedule is None or sidecar is None or record.timing_origin != "sidecar" \
+            or found is None or both is None:
         return None
     corr, times = both
     evidence: dict[str, object] = {**_series_facts(found[1]), "source_ms": _ms(times),
-                                   "sidecar_ms": _ms(schedule.times)}
-    if schedule.axis_index != corr.axis or len(schedule.times) != len(times):
+                                   "sidecar_ms": _ms(sidecar)}
+    if schedule.axis_index != corr.axis or len(sidecar) != len(times):
         evidence["reason"] = (f"the sidecar's times run along {schedule.axis}, the source's "
                               f"slices along {'ijk'[corr.axis]}")
         return "differ", evidence
-    diffs = [abs(a - b) for a, b in zip(schedule.times, times, strict=True)]
+    diffs = [abs(a - b) for a, b in zip(sidecar, times, strict=True)]
     if max(diffs) <= TIME_TOLERANCE:
         return None
-    flipped = [abs(a - b) for a, b in zip(schedule.times, reversed(times), strict=True)]
+    flipped = [abs(a - b) for a, b in zip(sidecar, reversed(times), strict=True)]
     evidence["largest_difference_ms"] = round(max(diffs) * 1000.0, 3)
     evidence["slices_differing"] = sum(d > TIME_TOLERANCE for d in diffs)
     if max(flipped) <= TIME_TOLERANCE:
@@ -280,12 +279,10 @@ def times_differ(record: RunRecord) -> Iterator[Hit]:
 )
 def tr_differs(record: RunRecord) -> Iterator[Hit]:
     found = matched(record)
-    schedule = record.schedule
-    tr = schedule.repetition_time if schedule else (
-        record.header.repetition_time if record.header else None)
+    tr = record.timing.repetition_time  # seconds, the sidecar's before the header's
     if found is None or tr is None or found[1].repetition_time is None:
         return
-    if abs(tr - found[1].repetition_time) > TR_TOLERANCE:
+    if abs(tr - found[1].repetition_time) > TIME_TOLERANCE:
         yield Hit(f"the repetition time is {plain(tr)} s, the source series {found[1].series} "
                   f"says {plain(found[1].repetition_time)} s", field="RepetitionTime",
                   evidence={**_series_facts(found[1]), "run": tr,
@@ -326,7 +323,7 @@ def multiband_differs(record: RunRecord) -> Iterator[Hit]:
                   evidence={**_series_facts(found[1]), "declared": declared, "source": factor})
 
 
-__all__ = ["QUANTUM", "correspondence", "matched", "source_multiband", "source_times"]
+__all__ = ["correspondence", "matched", "source_multiband", "source_times"]
 
 
 def _int(value: object) -> int:

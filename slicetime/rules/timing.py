@@ -5,14 +5,10 @@ from __future__ import annotations
 from collections.abc import Iterator
 from typing import Any
 
-from slicetime.model import MAX_REPETITION_TIME, RunRecord, Severity
+from slicetime.model import RunRecord, Severity, SliceSchedule, before_start, past_end
 from slicetime.numbers import plain
 from slicetime.rules.registry import Hit, run_rule
-from slicetime.schemes.resolve import (
-    is_number,
-    looks_like_milliseconds,
-    positive_number,
-)
+from slicetime.schemes.resolve import is_number
 from slicetime.words import count
 
 E, W, N = Severity.ERROR, Severity.WARNING, Severity.NOTE
@@ -86,18 +82,17 @@ _problem_rule(
 )
 
 
-def _window(record: RunRecord) -> tuple[float | None, str]:
-    """The acquisition window that every slice time must fall inside, and its name."""
-    if record.schedule is None:
-        return None, ""
-    return record.schedule.window()
-
-
 def _sidecar_times(record: RunRecord) -> list[float] | None:
+    """The sidecar's SliceTiming as written (sidecar order), when it gave the times."""
     schedule = record.schedule
     if schedule is None or record.timing_origin != "sidecar":
         return None
     return list(schedule.sidecar_order())
+
+
+def _in_ms(record: RunRecord) -> bool:
+    """The resolved verdict: the sidecar's SliceTiming was written in milliseconds."""
+    return record.timing.unit("SliceTiming") == "ms"
 
 
 @run_rule(
@@ -199,18 +194,14 @@ def from_header(record: RunRecord) -> Iterator[Hit]:
 )
 def negative(record: RunRecord) -> Iterator[Hit]:
     times = _sidecar_times(record)
-    if times and min(times) < 0:
-        idx = [i for i, t in enumerate(times) if t < 0]
+    if times and before_start(min(times)):
+        idx = [i for i, t in enumerate(times) if before_start(t)]
         yield Hit(
             f"{len(idx)} SliceTiming entr{'y is' if len(idx) == 1 else 'ies are'} negative "
             f"(smallest {plain(min(times))} s)",
             "SliceTiming",
             {"indices": idx[:20], "min": min(times)},
         )
-
-
-def _looks_like_ms(times: list[float], window: float) -> bool:
-    return looks_like_milliseconds(times, window)
 
 
 #: what follows from SliceTiming in milliseconds, on the same field: folded into it
@@ -235,18 +226,20 @@ _MS_CONSEQUENCES = (
     subsumes=_MS_CONSEQUENCES,
 )
 def units_ms(record: RunRecord) -> Iterator[Hit]:
-    times = _sidecar_times(record)
-    window, name = _window(record)
-    if times and window and _looks_like_ms(times, window):
-        yield Hit(
-            f"SliceTiming goes up to {plain(max(times))}, above {name} ({plain(window)} s); "
-            f"divided by 1000 it fits"
-            + (f" ({record.scheme.label} in seconds)" if record.scheme is not None else ""),
-            "SliceTiming",
-            {"max": max(times), "window": window, "window_from": name,
-             "as_seconds_max": max(times) / 1000.0,
-             "scheme_in_seconds": record.scheme.label if record.scheme is not None else None},
-        )
+    verdict = record.timing.units.get("SliceTiming")
+    if verdict is None or verdict.unit != "ms":
+        return
+    ev = verdict.evidence
+    window, name = record.timing.window, record.timing.window_name
+    yield Hit(
+        f"SliceTiming goes up to {plain(ev['max'])}, above {name} ({plain(window)} s); "
+        f"divided by 1000 it fits"
+        + (f" ({record.scheme.label} in seconds)" if record.scheme is not None else ""),
+        "SliceTiming",
+        {"max": ev["max"], "window": window, "window_from": name,
+         "as_seconds_max": ev["as_seconds_max"],
+         "scheme_in_seconds": record.scheme.label if record.scheme is not None else None},
+    )
 
 
 @run_rule(
@@ -262,23 +255,24 @@ def units_ms(record: RunRecord) -> Iterator[Hit]:
     standard="BIDS rules.checks.func.SliceTimingGreaterThanRepetitionTime",
 )
 def exceeds_tr(record: RunRecord) -> Iterator[Hit]:
-    times = _sidecar_times(record)
-    schedule = record.schedule
-    if not times or schedule is None or schedule.repetition_time is None:
-        return
-    tr = schedule.repetition_time
-    if max(times) < tr - 1e-9:
-        return  # the common case, decided without the unit check (times are finite here)
-    if _looks_like_ms(times, _window(record)[0] or tr):
-        return  # reported as timing/units-ms
-    late = [i for i, t in enumerate(times) if t >= tr - 1e-9]
-    if late:
-        yield Hit(
-            f"{len(late)} SliceTiming entr{'y is' if len(late) == 1 else 'ies are'} at or "
-            f"beyond RepetitionTime {plain(tr)} s (largest {plain(max(times))} s)",
-            "SliceTiming",
-            {"indices": late[:20], "max": max(times), "RepetitionTime": tr},
-        )
+    timing = record.timing
+    tr, times = timing.repetition_time, timing.times
+    if times is None or tr is None or record.timing_origin != "sidecar" or _in_ms(record):
+        return  # no sidecar times, no TR, or reported as timing/units-ms
+    if not past_end(max(times), tr):
+        return  # the common case, decided with one max()
+    late = [i for i, t in enumerate(_sidecar_order(timing.schedule, times)) if past_end(t, tr)]
+    yield Hit(
+        f"{len(late)} SliceTiming entr{'y is' if len(late) == 1 else 'ies are'} at or "
+        f"beyond RepetitionTime {plain(tr)} s (largest {plain(max(times))} s)",
+        "SliceTiming",
+        {"indices": late[:20], "max": max(times), "RepetitionTime": tr},
+    )
+
+
+def _sidecar_order(schedule: SliceSchedule | None, times: tuple[float, ...]) -> tuple[float, ...]:
+    """Times in seconds in the order the sidecar lists them (indices name its entries)."""
+    return times if schedule is None or schedule.direction == "+" else times[::-1]
 
 
 @run_rule(
@@ -292,16 +286,16 @@ def exceeds_tr(record: RunRecord) -> Iterator[Hit]:
     fix="Check DelayTime against SliceTiming; one of them belongs to another protocol.",
 )
 def exceeds_acquisition(record: RunRecord) -> Iterator[Hit]:
-    times = _sidecar_times(record)
-    schedule = record.schedule
-    window, name = _window(record)
-    if not times or schedule is None or window is None or name == "RepetitionTime":
+    timing = record.timing
+    window, name, times = timing.window, timing.window_name, timing.times
+    if times is None or window is None or name == "RepetitionTime" \
+            or record.timing_origin != "sidecar" or _in_ms(record) or not timing.outside:
         return
-    if schedule.repetition_time is not None and max(times) >= schedule.repetition_time:
-        return  # reported as exceeds-tr / units-ms
-    if _looks_like_ms(times, window):
-        return
-    late = [i for i, t in enumerate(times) if t >= window - 1e-9]
+    tr = timing.repetition_time
+    if tr is not None and past_end(max(times), tr):
+        return  # reported as exceeds-tr
+    late = [i for i, t in enumerate(_sidecar_order(timing.schedule, times))
+            if past_end(t, window)]
     if late:
         yield Hit(
             f"{len(late)} SliceTiming entr{'y is' if len(late) == 1 else 'ies are'} at or after "
@@ -614,8 +608,9 @@ def deprecated_acq(record: RunRecord) -> Iterator[Hit]:
     subsumes=("dataset/outlier-tr", "policy/tr-mismatch", "header/tr-disagrees"),
 )
 def tr_units(record: RunRecord) -> Iterator[Hit]:
-    tr = positive_number(record.metadata.get("RepetitionTime"))
-    if tr is not None and tr > MAX_REPETITION_TIME:
+    verdict = record.timing.units.get("RepetitionTime")
+    if verdict is not None and verdict.unit == "ms":
+        tr = verdict.evidence["value"]
         yield Hit(f"RepetitionTime is {plain(tr)}; {plain(tr / 1000)} s is far more likely",
                   "RepetitionTime", {"value": tr, "as_seconds": tr / 1000})
 

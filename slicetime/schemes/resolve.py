@@ -10,6 +10,7 @@ an error" never disagree.
 from __future__ import annotations
 
 import dataclasses
+import itertools
 import math
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
@@ -17,29 +18,22 @@ from typing import Any, TypeGuard, cast
 
 from slicetime.model import (
     AXES,
+    MAX_REPETITION_TIME,
     Axis,
     Direction,
     HeaderInfo,
+    ResolvedTiming,
     Scheme,
     SliceSchedule,
     Source,
     TimingProblem,
+    UnitVerdict,
+    outside_window,
 )
 from slicetime.schemes.niftcodes import header_slice_times
 from slicetime.words import agree, count
 
 SLICE_ENCODING_VALUES = ("i", "j", "k", "i-", "j-", "k-")
-
-
-@dataclass(frozen=True)
-class ScheduleResolution:
-    schedule: SliceSchedule | None
-    #: where the slice times came from: "sidecar", "header", or None
-    timing_origin: str | None
-    #: why there is no schedule (empty when there is one)
-    problems: tuple[TimingProblem, ...] = ()
-    #: slice axis length along the resolved axis, when the header gives it
-    axis_length: int | None = None
 
 
 def is_number(value: Any) -> TypeGuard[int | float]:
@@ -117,12 +111,36 @@ def slice_timing_problems(value: Any, expected_count: int | None) -> list[Timing
     return problems
 
 
-def resolve_schedule(
+@dataclass(frozen=True)
+class _Slices:
+    """The slice-time part of a resolution: a schedule, or why there is none."""
+
+    schedule: SliceSchedule | None
+    origin: str | None
+    problems: tuple[TimingProblem, ...] = ()
+    axis_length: int | None = None
+
+
+def resolve_timing(
     metadata: Mapping[str, Any],
     metadata_sources: Mapping[str, str],
     header: HeaderInfo | None,
     image_file: str,
-) -> ScheduleResolution:
+) -> ResolvedTiming:
+    """The one resolved timing of a run (:class:`~slicetime.model.ResolvedTiming`):
+    the schedule or why there is none, the repetition time with its source, a unit
+    verdict per timing field, and the acquisition window and the slices outside it,
+    in seconds."""
+    slices = _resolve_slices(metadata, metadata_sources, header, image_file)
+    return _complete(slices, metadata, metadata_sources, header, image_file)
+
+
+def _resolve_slices(
+    metadata: Mapping[str, Any],
+    metadata_sources: Mapping[str, str],
+    header: HeaderInfo | None,
+    image_file: str,
+) -> _Slices:
     """Build the schedule of one run, or say why it cannot be built.
 
     Precedence (documented in DEVELOPERS.md):
@@ -170,7 +188,7 @@ def resolve_schedule(
     sed = metadata.get("SliceEncodingDirection")
     parsed = parse_direction(sed)
     if sed is not None and parsed is None:
-        return ScheduleResolution(
+        return _Slices(
             None,
             None,
             (
@@ -199,7 +217,7 @@ def resolve_schedule(
         index = AXES.index(ax)
         return header.shape[index] if len(header.shape) > index else 1
 
-    def build(times: Sequence[float], origin: str, ax: Axis, dr: Direction) -> ScheduleResolution:
+    def build(times: Sequence[float], origin: str, ax: Axis, dr: Direction) -> _Slices:
         schedule = SliceSchedule(
             times=tuple(times),
             axis=ax,
@@ -210,7 +228,7 @@ def resolve_schedule(
             delay_time=delay_time,
             sources=sources,
         )
-        return ScheduleResolution(schedule, origin, (), axis_length(ax))
+        return _Slices(schedule, origin, (), axis_length(ax))
 
     # --- slice times -----------------------------------------------------------
     if "SliceTiming" in metadata:
@@ -218,7 +236,7 @@ def resolve_schedule(
         length = axis_length(axis)
         problems = slice_timing_problems(value, length)
         if problems:
-            return ScheduleResolution(None, None, tuple(problems), length)
+            return _Slices(None, None, tuple(problems), length)
         times = list(map(float, value))
         if direction == "-":
             times.reverse()
@@ -243,7 +261,7 @@ def resolve_schedule(
                 n,
             )
         except ValueError as exc:
-            return ScheduleResolution(
+            return _Slices(
                 None,
                 None,
                 (
@@ -261,7 +279,7 @@ def resolve_schedule(
                 n,
             )
         if any(t is None for t in raw):
-            return ScheduleResolution(
+            return _Slices(
                 None,
                 None,
                 (
@@ -284,7 +302,7 @@ def resolve_schedule(
         sources["SliceEncodingDirection"] = Source("header", "dim_info", image_file)
         return build([float(t) for t in raw if t is not None], "header", header_axis, "+")
 
-    return ScheduleResolution(None, None, (), axis_length(axis))
+    return _Slices(None, None, (), axis_length(axis))
 
 
 # --------------------------------------------------------------------------- units
@@ -303,25 +321,96 @@ def looks_like_milliseconds(times: Sequence[float], window: float | None) -> boo
     return top >= MS_FACTOR_MIN * window and top / 1000.0 < window
 
 
-def seconds_factor(schedule: SliceSchedule | None, timing_origin: str | None) -> float:
-    """1.0, or 0.001 when the sidecar's SliceTiming is in milliseconds (the schedule keeps
-    the values as written; inference and displays multiply by this factor)."""
-    if schedule is None or timing_origin != "sidecar":
-        return 1.0
-    window, _ = schedule.window()
-    return 0.001 if looks_like_milliseconds(schedule.times, window) else 1.0
+def repetition_time_unit(value: float, field: str = "RepetitionTime") -> UnitVerdict:
+    """A sidecar repetition time (or ``VolumeTiming`` spacing) above the largest
+    plausible TR (``model.MAX_REPETITION_TIME``) was written in milliseconds."""
+    if value > MAX_REPETITION_TIME:
+        return UnitVerdict(field, "ms", {"value": value, "above": MAX_REPETITION_TIME,
+                                         "as_seconds": value / 1000.0})
+    return UnitVerdict(field, "s")
 
 
-def infer_run_scheme(schedule: SliceSchedule, timing_origin: str | None) -> Scheme:
-    """The scheme of a resolved schedule. Times written in milliseconds are read in
-    seconds first (the scheme's evidence says so: ``assumed_unit`` ``ms``), so the
+def header_unit(field: str, header: HeaderInfo, raw: float) -> UnitVerdict:
+    """A header time's unit is what ``xyzt_units`` states (``unknown`` reads as seconds)."""
+    return UnitVerdict(field, header.time_unit, {"xyzt_units": header.time_unit,
+                                                 "as_written": raw})
+
+
+def _volume_times(metadata: Mapping[str, Any]) -> tuple[float, ...] | None:
+    vt = metadata.get("VolumeTiming")
+    if isinstance(vt, list) and vt and all(is_number(v) and math.isfinite(v) for v in vt):
+        return tuple(float(v) for v in vt)
+    return None
+
+
+def _complete(slices: _Slices, metadata: Mapping[str, Any],
+              metadata_sources: Mapping[str, str], header: HeaderInfo | None,
+              image_file: str) -> ResolvedTiming:
+    """The unit verdicts, the TR, the window and the slices outside it, in seconds."""
+    units: dict[str, UnitVerdict] = {}
+    schedule = slices.schedule
+    tr: float | None = None
+    tr_source: Source | None = None
+    written = positive_number(metadata.get("RepetitionTime"))
+    if written is not None:  # BIDS: the sidecar wins, with or without slice times
+        units["RepetitionTime"] = verdict = repetition_time_unit(written)
+        tr = written * verdict.factor
+        tr_source = Source("sidecar", "RepetitionTime", metadata_sources.get("RepetitionTime"))
+    volume_times = schedule.volume_times if schedule is not None else _volume_times(metadata)
+    vt_factor = 1.0
+    if volume_times is not None:
+        spacing = min((b - a for a, b in itertools.pairwise(volume_times)),
+                      default=0.0)
+        units["VolumeTiming"] = verdict = repetition_time_unit(spacing, "VolumeTiming")
+        vt_factor = verdict.factor
+    if header is not None:
+        if header.raw_pixdim4:
+            units["pixdim[4]"] = header_unit("pixdim[4]", header, header.raw_pixdim4)
+        if header.raw_slice_duration:
+            units["slice_duration"] = header_unit("slice_duration", header,
+                                                  header.raw_slice_duration)
+        if tr is None and volume_times is None and header.repetition_time:
+            tr, tr_source = header.repetition_time, Source("header", "pixdim[4]", image_file)
+    if schedule is None:
+        return ResolvedTiming(None, slices.origin, slices.problems, slices.axis_length,
+                              repetition_time=tr, repetition_source=tr_source, units=units)
+    # the window in seconds: the schedule's own rule over values in seconds
+    if tr == schedule.repetition_time and vt_factor == 1.0:
+        window, name = schedule.window()  # written in seconds: the common case
+    else:
+        acquisition = schedule.acquisition_duration
+        derived = schedule.sources.get("AcquisitionDuration")
+        if derived is not None and derived.kind == "derived" and tr is not None \
+                and schedule.delay_time is not None:
+            acquisition = tr - schedule.delay_time if schedule.delay_time < tr else None
+        window, name = dataclasses.replace(
+            schedule, repetition_time=tr, acquisition_duration=acquisition,
+            volume_times=None if volume_times is None else tuple(
+                v * vt_factor for v in volume_times)).window()
+    times = schedule.times
+    if slices.origin == "sidecar" and looks_like_milliseconds(times, window):
+        units["SliceTiming"] = UnitVerdict(
+            "SliceTiming", "ms",
+            {"max": max(times), "window": window, "window_from": name,
+             "as_seconds_max": max(times) / 1000.0, "at_least": MS_FACTOR_MIN})
+        times = tuple(t * 0.001 for t in times)
+    return ResolvedTiming(
+        schedule, slices.origin, slices.problems, slices.axis_length,
+        repetition_time=tr, repetition_source=tr_source, times=times, window=window,
+        window_name=name, outside=outside_window(times, window), units=units)
+
+
+def infer_run_scheme(timing: ResolvedTiming) -> Scheme | None:
+    """The scheme of a resolved timing, inferred from its times in seconds. Times written
+    in milliseconds say so in the scheme's evidence (``assumed_unit`` ``ms``), so the
     order, the groups and the spacing describe the protocol and not the unit mistake."""
     from slicetime.schemes.infer import infer_scheme
 
-    factor = seconds_factor(schedule, timing_origin)
-    if factor == 1.0:
-        return infer_scheme(schedule.times)
-    scheme = infer_scheme([t * factor for t in schedule.times])
+    if timing.times is None:
+        return None
+    scheme = infer_scheme(timing.times)
+    if timing.unit("SliceTiming") != "ms":
+        return scheme
     note = "SliceTiming read as milliseconds (every value ÷ 1000)"
     return dataclasses.replace(
         scheme, evidence={**scheme.evidence, "assumed_unit": "ms", "unit_note": note}
