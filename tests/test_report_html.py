@@ -643,14 +643,16 @@ def test_schedule_without_window_draws(tmp_path: Path) -> None:
     rec = make_record({"SliceTiming": [0.0, 0.5, 0.25, 0.75]})
     from dataclasses import replace
 
-    spec = diagram_spec(replace(rec, schedule=schedule))
+    from slicetime.schemes.resolve import timing_of
+
+    spec = diagram_spec(replace(rec, timing=timing_of(schedule)))
     assert spec.kind == "schedule" and spec.window is None
     body, _ = render_svg(spec, "w-")
     assert "window unknown" in body
     # VolumeTiming without a TR: the window is the volume spacing (the one rule,
     # SliceSchedule.window), drawn like any other
     timed = replace(schedule, volume_times=(0.0, 3.0, 6.0))
-    spec = diagram_spec(replace(rec, schedule=timed))
+    spec = diagram_spec(replace(rec, timing=timing_of(timed)))
     assert spec.window == 3.0
     body, _ = render_svg(spec, "w-")
     assert "window unknown" not in body

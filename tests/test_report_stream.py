@@ -113,8 +113,9 @@ def test_a_run_line_is_the_encoded_run_object_byte_for_byte(dataset: Path) -> No
 def test_dataset_findings_that_follow_from_a_unit_are_folded_in_the_stream_too(
     tmp_path: Path,
 ) -> None:
-    # a TR written in milliseconds: the majority finding on RepetitionTime follows from
-    # the unit and is folded into it after the stream, exactly as in memory
+    # slice times written in milliseconds, in another order than the majority's: the
+    # majority finding on SliceTiming follows from the unit and is folded into it after
+    # the stream, exactly as in memory
     root = tmp_path / "ds"
     write_description(root)
     write_sidecar(root, "task-tap_bold.json", {"RepetitionTime": TR,
@@ -122,15 +123,15 @@ def test_dataset_findings_that_follow_from_a_unit_are_folded_in_the_stream_too(
     for i in range(1, 5):
         write_run(root, f"sub-0{i}/func/sub-0{i}_task-tap_bold.nii.gz", shape=SHAPE, tr=TR)
     write_run(root, "sub-05/func/sub-05_task-tap_bold.nii.gz", shape=SHAPE, tr=TR,
-              sidecar={"RepetitionTime": TR * 1000})
+              sidecar={"SliceTiming": [t * 1000 for t in _times(order="sequential")]})
     _, text = cli_out("audit", str(root), "--format", "json")
     streamed = json.loads(text)
     assert streamed == json.loads(dumps(audit_object(audit_paths([root]), str(root))))
     run = next(r for r in streamed["runs"] if r["path"].startswith("sub-05/"))
-    roots = [f for f in run["findings"] if f["code"] == "tr/units-ms"]
+    roots = [f for f in run["findings"] if f["code"] == "timing/units-ms"]
     assert len(roots) == 1
-    assert "dataset/outlier-tr" in [f["code"] for f in roots[0]["evidence"]["folded"]]
-    assert "dataset/outlier-tr" not in [f["code"] for f in run["findings"]]
+    assert "dataset/outlier-scheme" in [f["code"] for f in roots[0]["evidence"]["folded"]]
+    assert "dataset/outlier-scheme" not in [f["code"] for f in run["findings"]]
     assert streamed["summary"]["warning"] == sum(
         f["severity"] == "warning" for r in streamed["runs"] for f in r["findings"]) + sum(
         f["severity"] == "warning" for f in streamed["dataset_findings"])

@@ -400,6 +400,14 @@ def _complete(slices: _Slices, metadata: Mapping[str, Any],
         window_name=name, outside=outside_window(times, window), units=units)
 
 
+def timing_of(schedule: SliceSchedule, origin: str = "sidecar") -> ResolvedTiming:
+    """The resolved timing of a schedule given as values (the API, drawings of a
+    schedule alone): the same verdicts and window as a run whose sidecar held it."""
+    metadata = ({} if schedule.repetition_time is None
+                else {"RepetitionTime": schedule.repetition_time})
+    return _complete(_Slices(schedule, origin), metadata, {}, None, "")
+
+
 def infer_run_scheme(timing: ResolvedTiming) -> Scheme | None:
     """The scheme of a resolved timing, inferred from its times in seconds. Times written
     in milliseconds say so in the scheme's evidence (``assumed_unit`` ``ms``), so the
