@@ -22,7 +22,7 @@ import pytest
 from click.testing import CliRunner
 
 from slicetime.interfaces.cli import cli
-from slicetime.pipelines import fix as fixing
+from slicetime.pipelines import transaction
 from slicetime.schemes.generate import Protocol, slice_timing
 from tests.helpers_bids import (
     symlink,
@@ -215,7 +215,7 @@ def test_a_failed_write_puts_back_the_files_written_before_it(
 ) -> None:
     ds = ms_dataset(tmp_path / "ds", subjects=("01", "02", "03"))
     before = tree_hashes(ds)
-    real = fixing._atomic_write
+    real = transaction._atomic_write
     calls = {"n": 0}
 
     def failing(path: Path, data: bytes, mode: int | None, temp: str | None = None) -> None:
@@ -225,7 +225,7 @@ def test_a_failed_write_puts_back_the_files_written_before_it(
                 raise OSError(28, "No space left on device")
         real(path, data, mode, temp)
 
-    monkeypatch.setattr(fixing, "_atomic_write", failing)
+    monkeypatch.setattr(transaction, "_atomic_write", failing)
     result = fix(ds, "--apply", "--backup-dir", tmp_path / "backups")
     assert result.exit_code == 2
     assert "nothing is changed" in result.output and "No space left" in result.output
@@ -339,8 +339,8 @@ def test_undo_after_kill_during_apply_restores_and_names_unwritten_files(
     script = f"""
 import os, signal
 from pathlib import Path
-from slicetime.pipelines import fix
-real = fix._atomic_write
+from slicetime.pipelines import fix, transaction
+real = transaction._atomic_write
 count = [0]
 def killing(path, data, mode, temp=None):
     if path.name.startswith("sub-"):
@@ -349,7 +349,7 @@ def killing(path, data, mode, temp=None):
             (path.parent / temp).write_bytes(data[:10])
             os.kill(os.getpid(), signal.SIGKILL)
     real(path, data, mode, temp)
-fix._atomic_write = killing
+transaction._atomic_write = killing
 plan = fix.plan_fix([Path({str(ds)!r})])
 fix.apply_plan(plan, backup_dir=Path({str(backups)!r}))
 """
@@ -370,13 +370,13 @@ fix.apply_plan(plan, backup_dir=Path({str(backups)!r}))
 
 def test_a_second_apply_on_a_locked_dataset_writes_nothing(tmp_path: Path) -> None:
     ds = ms_dataset(tmp_path / "ds")
-    with fixing.dataset_lock([str(ds)]):
+    with transaction.dataset_lock([str(ds)]):
         state = tree_hashes(tmp_path)
         result = fix(ds, "--apply")
         assert result.exit_code == 2
         assert "another slicetime fix is writing this dataset" in result.output
         assert tree_hashes(tmp_path) == state
-    assert not (ds / fixing.LOCK_NAME).exists()  # released and removed
+    assert not (ds / transaction.LOCK_NAME).exists()  # released and removed
     assert fix(ds, "--apply").exit_code == 0
 
 
@@ -469,13 +469,13 @@ def test_the_journal_is_written_twice_whatever_the_number_of_files(
 ) -> None:
     ds = ms_dataset(tmp_path / "ds", subjects=tuple(f"{i:02d}" for i in range(1, 9)))
     writes: list[str] = []
-    real = fixing._write_journal
+    real = transaction._write_journal
 
     def counting(path: Path, roots: Any, token: str, entries: Any, status: str) -> None:
         writes.append(status)
         real(path, roots, token, entries, status)
 
-    monkeypatch.setattr(fixing, "_write_journal", counting)
+    monkeypatch.setattr(transaction, "_write_journal", counting)
     result = fix(ds, "--apply")
     assert result.exit_code == 0, result.output
     assert result.output.count("written   ") == 8

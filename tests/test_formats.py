@@ -18,8 +18,8 @@ import pytest
 from click.testing import CliRunner
 
 from slicetime.interfaces.cli import cli
-from slicetime.interfaces.report_json import SCHEMAS, load_schema, schema_validator
 from slicetime.pipelines.demo import build_demo_dataset
+from slicetime.readers.shipped_schemas import SCHEMAS, load_schema, schema_validator
 
 MS_RUN = "sub-01/ses-1/func/sub-01_ses-1_task-rest_bold.nii.gz"
 PLAIN_RUN = "sub-01/ses-1/func/sub-01_ses-1_task-hum_bold.nii.gz"
@@ -142,9 +142,12 @@ def test_verify_json_validates(study: Path) -> None:
     assert invalid("verify", report)
 
 
-def test_a_journal_written_with_the_former_key_names_still_undoes(
+def test_a_journal_or_plan_read_back_is_checked_by_its_shipped_schema(
         repaired: dict[str, Path], tmp_path: Path) -> None:
-    # journals before this release named the hashes before_sha256/after_sha256
+    # the journal and the plan are read back through fix-journal.schema.json and
+    # fix-plan.schema.json (JSON Schema 2020-12, validated with jsonschema): a key the
+    # schema does not know, or one it requires and the file lacks, refuses the file whole,
+    # in one line naming the file and the place; no release ever wrote other key names
     work = tmp_path / "again"
     shutil.copytree(repaired["root"].parent / "ds", work / "ds")
     shutil.copytree(repaired["journal"].parent, work / "backups")
@@ -153,14 +156,27 @@ def test_a_journal_written_with_the_former_key_names_still_undoes(
     content["roots"] = [str(work / "ds")]
     for entry in content["entries"]:
         entry["root"] = str(work / "ds")
-        entry["before_sha256"] = entry.pop("sha256_before")
-        entry["after_sha256"] = entry.pop("sha256_after")
+    assert not invalid("fix-journal", content)
+    entry = content["entries"][0]
+    entry["before_sha256"] = entry.pop("sha256_before")
+    assert invalid("fix-journal", content)
     journal.write_text(json.dumps(content))
-    changed = work / "ds" / content["entries"][0]["file"]
+    changed = work / "ds" / entry["file"]
     before = changed.read_bytes()
-    code, out = run_cli("fix", "--undo", journal)
-    assert code == 0, out
-    assert "restored" in out and changed.read_bytes() != before
+    result = CliRunner().invoke(cli, ["fix", "--undo", str(journal)])
+    code, out = result.exit_code, result.output
+    assert code == 2
+    assert out.count("\n") <= 1 and str(journal) in out
+    assert "entries[0]" in out and "nothing was restored" in out
+    assert changed.read_bytes() == before
+    plan = json.loads(repaired["plan"].read_text())
+    del plan["changes"][0]["sha256_before"]
+    saved = tmp_path / "plan.json"
+    saved.write_text(json.dumps(plan))
+    result = CliRunner().invoke(cli, ["fix", "--apply", "--plan", str(saved)])
+    code, out = result.exit_code, result.output
+    assert code == 2
+    assert "changes[0] lacks 'sha256_before'" in out and "nothing was written" in out
 
 
 def test_correct_and_verify_documents_are_built_by_the_interface_layer() -> None:

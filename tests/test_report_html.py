@@ -345,6 +345,32 @@ def test_policy_allows_only_the_page_script(report: tuple[Path, str]) -> None:
     assert f"'sha256-{digest.decode()}'" in policy
     assert "default-src 'none'" in policy
     assert "unsafe-inline" not in policy.split("script-src")[1].split(";")[0]
+    # the script is the shipped file, byte for byte, and the style holds the shipped one
+    from importlib import resources
+
+    data = resources.files("slicetime").joinpath("data")
+    assert page.scripts[0].encode("utf-8") == data.joinpath("report.js").read_bytes()
+    assert data.joinpath("report.css").read_text("utf-8") in "".join(page.styles)
+
+
+def test_the_page_files_are_package_data() -> None:
+    """An installed wheel has report.css and report.js: every file under slicetime/data
+    matches a pattern of [tool.setuptools.package-data] (setuptools' glob patterns)."""
+    import fnmatch
+
+    try:
+        import tomllib
+    except ImportError:  # Python 3.10
+        import tomli as tomllib
+
+    root = Path(__file__).resolve().parents[1]
+    patterns = tomllib.loads((root / "pyproject.toml").read_text())["tool"]["setuptools"][
+        "package-data"]["slicetime"]
+    shipped = sorted((root / "slicetime" / "data").iterdir())
+    assert {"report.css", "report.js"} <= {p.name for p in shipped}
+    for path in shipped:
+        name = path.relative_to(root / "slicetime").as_posix()
+        assert any(fnmatch.fnmatch(name, pattern) for pattern in patterns), name
 
 
 def test_filter_and_search_controls_exist(report: tuple[Path, str]) -> None:

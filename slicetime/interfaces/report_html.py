@@ -18,7 +18,9 @@ block at the top of the page, and every run that has it shows it with
 ``<use href="#dg-N">``. Every string from the data passes through
 ``safe_text.xml_safe`` (control characters and undecodable bytes become visible
 escapes) and then ``html.escape``. A Content-Security-Policy allows no network
-access at all and only the page's own script (by its hash).
+access at all and only the page's own script (by its hash, computed from the script
+file's bytes). The style and the script are package data files,
+``slicetime/data/report.css`` and ``slicetime/data/report.js``, embedded in the page.
 
 The script reads and writes its state in the URL fragment
 (``report.html#severity=error&q=sub-01``), so a filtered view can be shared, and
@@ -38,6 +40,8 @@ from array import array
 from collections import Counter, defaultdict
 from collections.abc import Iterator, Sequence
 from dataclasses import dataclass, field
+from functools import cache
+from importlib import resources
 from typing import IO, Any
 
 from slicetime import __version__
@@ -568,130 +572,25 @@ def _reading_guide() -> str:
     )
 
 
+@cache
+def page_asset(name: str) -> str:
+    """The text of a file the page embeds (``report.css``, ``report.js``), shipped as
+    package data under ``slicetime/data``."""
+    return resources.files("slicetime").joinpath(f"data/{name}").read_text("utf-8")
+
+
+def script_hash(script: str) -> str:
+    """The Content-Security-Policy source of the page's script: ``sha256-`` and the base64
+    of the SHA-256 of its bytes (CSP Level 2, "hash-source")."""
+    return "sha256-" + base64.b64encode(hashlib.sha256(script.encode("utf-8")).digest()).decode()
+
+
 def _css() -> str:
+    """The page's style: the tag colours (from :data:`TAG_FILLS`), then ``report.css``."""
     fills = "".join(
         f".t{i}{{background:{fill}}}" for i, fill in enumerate((NO_TIMING_FILL, *TAG_FILLS))
     )
-    return (
-        fills
-        + """
-:root{--ink:#263238;--muted:#5f6b6d;--paper:#fbfaf7;--line:#d9d6cf;--accent:#1f6f78;
---error:#b3261e;--warning:#a86a12;--note:#3d6a99;--clean:#4f7d4a}
-*{box-sizing:border-box}
-[hidden]{display:none!important}
-body{margin:0;background:var(--paper);color:var(--ink);font:15px/1.45 system-ui,sans-serif}
-code,pre{font-family:ui-monospace,monospace;font-size:.92em}
-header.top{padding:1.2rem 2rem .6rem;border-bottom:3px solid var(--accent);background:#fff}
-.brand{font-size:.8rem;letter-spacing:.08em;text-transform:uppercase;color:var(--accent)}
-h1{margin:.2rem 0;font-size:1.5rem;overflow-wrap:anywhere}
-h2{margin:2rem 0 .6rem;font-size:1.25rem;border-bottom:1px solid var(--line)}
-h3{margin:1.4rem 0 .4rem;font-size:1.05rem}
-h4{margin:.9rem 0 .3rem;font-size:.9rem;color:var(--muted);font-weight:600}
-main{padding:0 2rem 3rem;max-width:1400px}
-nav a{margin-right:1.2rem;color:var(--accent)}
-a{color:var(--accent)}
-.muted{color:var(--muted)}
-.plain{list-style:none;padding:0;margin:.2rem 0}
-.plain li{margin:.15rem 0}
-.cards{display:flex;flex-wrap:wrap;gap:.8rem;margin:1rem 0}
-.card{display:flex;flex-direction:column;min-width:9.5rem;padding:.6rem .9rem;background:#fff;
-border:1px solid var(--line);border-left:6px solid var(--accent);border-radius:4px;
-color:inherit;text-decoration:none}
-.card .num{font-size:1.7rem;font-weight:700}
-.card .what{font-size:.85rem}.card .extra{font-size:.75rem;color:var(--muted)}
-.card.error{border-left-color:var(--error)}.card.warning{border-left-color:var(--warning)}
-.card.note{border-left-color:var(--note)}.card.clean{border-left-color:var(--clean)}
-.chip{display:inline-block;min-width:1.6em;padding:0 .35em;border-radius:3px;
-text-align:center;font-weight:700;font-size:.85em;border:1px solid #0002}
-table{border-collapse:collapse}
-table.schemes{width:100%;background:#fff}
-table.schemes th,table.schemes td{border:1px solid var(--line);padding:.35rem .6rem;
-text-align:left;vertical-align:top}
-table.schemes tr.mixed th{border-left:5px solid var(--warning)}
-.flag{display:inline-block;margin-top:.2rem;font-size:.75rem;color:var(--warning);
-font-weight:600}
-ul.outliers{padding-left:1.2rem}
-ul.outliers li.sev-error::marker{color:var(--error)}
-ul.outliers li.sev-warning::marker{color:var(--warning)}
-details.gallery{margin:1.2rem 0}
-details.gallery figure{display:inline-block;width:min(100%,620px);margin:.5rem 1rem .5rem 0;
-vertical-align:top}
-.picture-wrap{overflow:auto;max-height:70vh;border:1px solid var(--line);background:#fff}
-table.picture{font-size:.8rem}
-table.picture th{position:sticky;top:0;background:#fff;font-weight:600;padding:.2rem .4rem;
-white-space:nowrap}
-table.picture tbody th{left:0;position:sticky;text-align:right}
-table.picture td{padding:1px 2px;text-align:center;white-space:nowrap}
-.cell{display:inline-block;min-width:2.6em;padding:0 .25em;margin:1px;border-radius:3px;
-border:2px solid transparent;color:var(--ink);text-decoration:none;font-weight:600}
-.cell b{margin-left:.2em;font-weight:700}
-.cell.sev-error{border-color:var(--error)}.cell.sev-error b{color:var(--error)}
-.cell.sev-warning{border-color:var(--warning)}.cell.sev-warning b{color:var(--warning)}
-.cell.sev-note b{color:var(--note)}
-.legends{display:flex;flex-wrap:wrap;gap:2.5rem;margin:.6rem 0;font-size:.85rem}
-.controls{position:sticky;top:0;z-index:2;display:flex;flex-wrap:wrap;gap:1rem;
-align-items:center;padding:.5rem .7rem;background:#eef4f1;border:1px solid var(--line);
-border-radius:4px;margin-bottom:.6rem}
-.controls input{width:16rem}
-#shown-count{color:var(--muted);font-size:.85rem}
-details.run{background:#fff;border:1px solid var(--line);border-radius:4px;margin:.3rem 0}
-details.run>summary{cursor:pointer;padding:.35rem .6rem;display:flex;flex-wrap:wrap;
-gap:.5rem;align-items:center}
-details.run[open]>summary{border-bottom:1px solid var(--line)}
-summary .path{font-weight:600;overflow-wrap:anywhere}
-summary .label{color:var(--muted);font-size:.85rem}
-.mark{width:.7rem;height:.7rem;border-radius:50%;background:var(--clean);flex:none}
-.mark.sev-error{background:var(--error)}.mark.sev-warning{background:var(--warning)}
-.mark.sev-note{background:var(--note)}
-.badge{font-size:.75rem;padding:0 .45em;border-radius:8px;border:1px solid currentColor}
-.badge.sev-error{color:var(--error)}.badge.sev-warning{color:var(--warning)}
-.badge.sev-note{color:var(--note)}.badge.sev-none{color:var(--clean)}
-.run-body{padding:.4rem .9rem .8rem}
-.cols{display:flex;flex-wrap:wrap;gap:1.5rem}
-.cols>div{flex:1 1 22rem;min-width:0}
-figure.timing{flex:2 1 34rem;margin:0}
-svg.diagram{width:100%;height:auto;display:block;max-width:900px}
-svg.sprite symbol *{stroke-linejoin:round;stroke-linecap:butt}
-svg.sprite{position:absolute;width:0;height:0;overflow:hidden}
-figcaption{font-size:.8rem;color:var(--muted)}
-dl.facts{display:grid;grid-template-columns:max-content 1fr;gap:.15rem .9rem;margin:0}
-dl.facts dt{color:var(--muted)}dl.facts dd{margin:0;overflow-wrap:anywhere}
-table.sources th{font-weight:400;color:var(--muted);text-align:left;padding-right:.8rem}
-table.sources td{overflow-wrap:anywhere}
-ol.findings{list-style:none;padding:0;margin:0}
-.finding{border-left:4px solid var(--note);padding:.3rem .7rem;margin:.4rem 0;
-background:#f7f8f8}
-.finding.sev-error{border-left-color:var(--error)}
-.finding.sev-warning{border-left-color:var(--warning)}
-.finding .sev{font-weight:700;text-transform:uppercase;font-size:.75rem}
-.finding.sev-error .sev{color:var(--error)}.finding.sev-warning .sev{color:var(--warning)}
-.finding.sev-note .sev{color:var(--note)}
-.finding p{margin:.15rem 0;white-space:pre-wrap;word-break:break-word}
-.finding .where{font-size:.85rem;color:var(--muted)}
-.finding .where span{margin-right:1rem}
-.finding .hint::before{content:"what to do: ";font-weight:600}
-p.grounds{margin:.2rem 0;padding:.3rem .5rem;background:#fff;border-left:3px solid var(--line);
-white-space:pre-line;overflow-wrap:anywhere;font-size:.8rem}
-.guide .swatch{display:inline-block;width:.9em;height:.9em;margin-right:.5em;
-vertical-align:middle;border-radius:2px}
-.print-only{display:none}
-@media print{
-body{background:#fff;font-size:10pt}
-.controls,.no-print,details.gallery{display:none!important}
-.print-only{display:block}
-header.top{border-bottom-width:1px}
-.picture-wrap{max-height:none;overflow:visible}
-details.run{border-color:#999}
-details.run>summary,figure,.finding,dl.facts{break-inside:avoid}
-details.run>.run-body{display:block}
-details::details-content{content-visibility:visible;display:contents}
-.cols{flex-wrap:nowrap;gap:.8rem}.cols>div{flex:1 1 40%}figure.timing{flex:1 1 60%}
-body{font-size:9pt}
-a{color:inherit;text-decoration:none}
-main{padding:0 .5rem}
-}
-"""
-    )
+    return fills + "\n" + page_asset("report.css")
 
 
 def write_html_stream(
@@ -741,10 +640,10 @@ def _write_page(source: ReportSource, collector: DiagramCollector, out: IO[str],
     stamp = generated if generated is not None else _generated_stamp()
     name = report_root(totals)
     title = f"slicetime audit · {xml_safe(name)}"
-    digest = base64.b64encode(hashlib.sha256(_SCRIPT.encode("utf-8")).digest()).decode()
+    script = page_asset("report.js")
     policy = (
         "default-src 'none'; style-src 'unsafe-inline'; img-src data:; "
-        f"script-src 'sha256-{digest}'; base-uri 'none'; form-action 'none'"
+        f"script-src '{script_hash(script)}'; base-uri 'none'; form-action 'none'"
     )
     roots = "".join(f"<code>{txt(r)}</code> " for r in totals.roots)
     policies = "".join(
@@ -809,7 +708,7 @@ def _write_page(source: ReportSource, collector: DiagramCollector, out: IO[str],
     ]))
     for part in _page_data(source, collector, tags, sizes):
         out.write(part)
-    out.write(f"</script><script>{_SCRIPT}</script></body></html>\n")
+    out.write(f"</script><script>{script}</script></body></html>\n")
 
 
 #: runs listed at once; "list more" adds as many again
@@ -831,328 +730,5 @@ def _legends(tags: dict[str | None, _Tag]) -> str:
 
 
 _RANK = {"error": 3, "warning": 2, "note": 1}
-
-_SCRIPT = """
-(function () {
-  "use strict";
-  var body = document.body;
-  var data = JSON.parse(document.getElementById("report-data").textContent);
-  var S = data.s, runs = data.runs;
-  var SEV = ["none", "note", "warning", "error"];
-  var GLYPH = {error: "\\u2715", warning: "\\u25b3", note: "\\u2022", none: ""};
-  var PAGE = 200;
-  var select = document.getElementById("severity-filter");
-  var search = document.getElementById("run-search");
-  var count = document.getElementById("shown-count");
-  var printNote = document.getElementById("print-filter");
-  var list = document.getElementById("run-list");
-  var pinned = document.getElementById("pinned");
-  var more = document.getElementById("more");
-  var levels = ["all", "error", "warning", "note", "clean"];
-  var names = null, matching = [], limit = PAGE, built = {};
-
-  function el(tag, cls, text) {
-    var node = document.createElement(tag);
-    if (cls) { node.className = cls; }
-    if (text !== undefined && text !== null) { node.textContent = text; }
-    return node;
-  }
-  function plural(n, word) { return n + " " + word + (n === 1 ? "" : "s"); }
-  function worst(r) { return r[3] ? 3 : r[4] ? 2 : r[5] ? 1 : 0; }
-  function str(i) { return i < 0 ? "" : S[i]; }
-  function chip(tagIndex) {
-    var tag = data.tags[tagIndex];
-    return el("span", "chip " + tag[1], tag[0]);
-  }
-  function use(drawing, caption) {
-    var d = data.drawings[drawing], ns = document.querySelector("svg.sprite").namespaceURI;
-    var svg = document.createElementNS(ns, "svg");
-    svg.setAttribute("class", "diagram");
-    svg.setAttribute("viewBox", "0 0 " + d[1] + " " + d[2]);
-    svg.setAttribute("role", "img");
-    svg.setAttribute("aria-label", caption || d[3]);
-    var u = document.createElementNS(ns, "use");
-    u.setAttribute("href", "#" + d[0]);
-    u.setAttribute("width", d[1]);
-    u.setAttribute("height", d[2]);
-    svg.appendChild(u);
-    return svg;
-  }
-
-  function fill(details, i) {
-    if (details.getAttribute("data-built")) { return; }
-    details.setAttribute("data-built", "1");
-    var r = runs[i], d = data.drawings[r[2]];
-    var box = el("div", "run-body"), cols = el("div", "cols"), left = el("div");
-    var dl = el("dl", "facts");
-    data.facts[r[8]].forEach(function (fact) {
-      dl.appendChild(el("dt", null, fact[0]));
-      var dd = el("dd", null, fact[1]);
-      if (fact[0] === "scheme") {
-        dd.insertBefore(document.createTextNode(" "), dd.firstChild);
-        dd.insertBefore(chip(r[1]), dd.firstChild);
-      }
-      dl.appendChild(dd);
-    });
-    var pairs = data.sources[r[9]][0], chain = data.sources[r[9]][1];
-    function named(k) { return k === data.own_sidecar ? S[r[11]] : S[k]; }
-    if (chain.length) {
-      dl.appendChild(el("dt", null, "sidecars"));
-      dl.appendChild(el("dd", null, chain.map(named).join(" \u2192 ")));
-    }
-    left.appendChild(dl);
-    if (pairs.length) {
-      left.appendChild(el("h4", null, "where each value came from"));
-      var table = el("table", "sources");
-      for (var k = 0; k < pairs.length; k += 2) {
-        var tr = el("tr"), th = el("th", null, S[pairs[k]]), td = el("td");
-        th.setAttribute("scope", "row");
-        td.appendChild(el("code", null, named(pairs[k + 1])));
-        tr.appendChild(th); tr.appendChild(td); table.appendChild(tr);
-      }
-      left.appendChild(table);
-    }
-    cols.appendChild(left);
-    var figure = el("figure", "timing");
-    figure.appendChild(use(r[2]));
-    figure.appendChild(el("figcaption", null, d[3]));
-    cols.appendChild(figure);
-    box.appendChild(cols);
-    if (r[10].length) {
-      box.appendChild(el("h4", null, "findings"));
-      var ol = el("ol", "findings");
-      r[10].forEach(function (f) {
-        var sev = SEV[f[1]], li = el("li", "finding sev-" + sev);
-        li.setAttribute("data-severity", sev);
-        var head = el("div", "fhead");
-        head.appendChild(el("span", "sev", GLYPH[sev] + " " + sev));
-        head.appendChild(document.createTextNode(" "));
-        head.appendChild(el("code", "code", S[f[0]]));
-        li.appendChild(head);
-        li.appendChild(el("p", "msg", str(f[2])));
-        if (f[3] >= 0 || f[4] >= 0) {
-          var where = el("p", "where");
-          if (f[3] >= 0) {
-            var a = el("span", null, "file ");
-            a.appendChild(el("code", null, S[f[3]]));
-            where.appendChild(a);
-          }
-          if (f[4] >= 0) {
-            var b = el("span", null, "field ");
-            b.appendChild(el("code", null, S[f[4]]));
-            where.appendChild(b);
-          }
-          li.appendChild(where);
-        }
-        if (f[5] >= 0) { li.appendChild(el("p", "grounds", S[f[5]])); }
-        if (f[6] >= 0) { li.appendChild(el("p", "hint", S[f[6]])); }
-        ol.appendChild(li);
-      });
-      box.appendChild(ol);
-    } else {
-      box.appendChild(el("p", "muted", "No findings."));
-    }
-    details.appendChild(box);
-  }
-
-  function section(i) {
-    var r = runs[i], w = SEV[worst(r)];
-    var details = el("details", "run");
-    details.id = "run-" + (i + 1);
-    details.setAttribute("data-name", S[r[0]].toLowerCase());
-    details.setAttribute("data-worst", w);
-    var summary = el("summary");
-    summary.appendChild(el("span", "mark sev-" + w));
-    summary.appendChild(el("code", "path", S[r[0]]));
-    summary.appendChild(document.createTextNode(" "));
-    summary.appendChild(chip(r[1]));
-    summary.appendChild(el("span", "label", data.tags[r[1]][2]));
-    var any = false;
-    [[r[3], "error"], [r[4], "warning"], [r[5], "note"]].forEach(function (c) {
-      if (c[0]) {
-        any = true;
-        summary.appendChild(el("span", "badge sev-" + c[1], plural(c[0], c[1])));
-      }
-    });
-    if (!any) { summary.appendChild(el("span", "badge sev-none", "no findings")); }
-    details.appendChild(summary);
-    details.addEventListener("toggle", function () { if (details.open) { fill(details, i); } });
-    built[i] = details;
-    return details;
-  }
-
-  function matches(i, level, words) {
-    var w = worst(runs[i]);
-    var rank = {note: 1, warning: 2, error: 3};
-    if (level === "clean" ? w !== 0 : level !== "all" && w < rank[level]) { return false; }
-    if (!words.length) { return true; }
-    if (!names) { names = runs.map(function (r) { return S[r[0]].toLowerCase(); }); }
-    var name = names[i];
-    return words.every(function (word) { return name.indexOf(word) >= 0; });
-  }
-
-  function draw() {
-    list.textContent = "";
-    built = {};
-    var shown = matching.slice(0, limit), frag = document.createDocumentFragment();
-    shown.forEach(function (i) { frag.appendChild(section(i)); });
-    list.appendChild(frag);
-    more.hidden = matching.length <= limit;
-    count.textContent = matching.length + " of " + runs.length + " runs shown" +
-      (matching.length > limit ? " (the first " + limit + " listed)" : "");
-  }
-
-  function apply() {
-    var level = select.value;
-    var words = search.value.toLowerCase().split(/\\s+/).filter(Boolean);
-    matching = [];
-    for (var i = 0; i < runs.length; i += 1) {
-      if (matches(i, level, words)) { matching.push(i); }
-    }
-    limit = PAGE;
-    draw();
-    body.setAttribute("data-severity", level);
-    var parts = [];
-    if (level !== "all") { parts.push(select.options[select.selectedIndex].text); }
-    if (words.length) { parts.push("names containing \\u201c" + search.value + "\\u201d"); }
-    printNote.textContent = parts.length ? "Printed with a filter: " + parts.join(", ") +
-      " (" + matching.length + " of " + runs.length + " runs)." : "";
-  }
-
-  function store() {
-    var parts = [];
-    if (select.value !== "all") { parts.push("severity=" + select.value); }
-    if (search.value) { parts.push("q=" + encodeURIComponent(search.value)); }
-    var target = parts.length ? "#" + parts.join("&") : location.pathname + location.search;
-    try { history.replaceState(null, "", target); } catch (e) { /* a page from disk may refuse */ }
-  }
-
-  function fromFragment() {
-    var text = location.hash.slice(1);
-    if (text.indexOf("=") >= 0) {
-      text.split("&").forEach(function (part) {
-        var cut = part.indexOf("=");
-        var key = part.slice(0, cut), value = "";
-        try { value = decodeURIComponent(part.slice(cut + 1).replace(/\\+/g, " ")); }
-        catch (e) { value = ""; }
-        if (key === "severity" && levels.indexOf(value) >= 0) { select.value = value; }
-        if (key === "q") { search.value = value; }
-      });
-      apply();
-      return;
-    }
-    var m = /^run-(\\d+)$/.exec(text);
-    if (m) {
-      var i = parseInt(m[1], 10) - 1;
-      if (i < 0 || i >= runs.length) { return; }
-      var target = built[i];
-      if (!target) {
-        pinned.textContent = "";
-        target = section(i);
-        pinned.appendChild(target);
-      }
-      fill(target, i);
-      target.open = true;
-      target.scrollIntoView();
-    }
-  }
-
-  function outliers() {
-    var box = document.getElementById("outliers"), ul = el("ul", "outliers"), n = 0, extra = 0;
-    runs.forEach(function (r, i) {
-      r[10].forEach(function (f) {
-        if (S[f[0]].indexOf("dataset/") !== 0) { return; }
-        if (n >= 500) { extra += 1; return; }
-        n += 1;
-        var li = el("li", "sev-" + SEV[f[1]]), a = el("a", null, S[r[0]]);
-        a.href = "#run-" + (i + 1);
-        li.appendChild(a);
-        li.appendChild(document.createTextNode(" "));
-        li.appendChild(el("code", null, S[f[0]]));
-        li.appendChild(document.createTextNode(" " + str(f[2])));
-        ul.appendChild(li);
-      });
-    });
-    if (n) {
-      box.textContent = "";
-      box.appendChild(ul);
-      if (extra) {
-        box.appendChild(el("p", "muted", "and " + extra + " more: filter the runs below"));
-      }
-    }
-  }
-
-  function picture() {
-    var table = document.getElementById("picture-table");
-    var cells = {}, thead = el("thead"), tr = el("tr"), tbody = el("tbody");
-    runs.forEach(function (r, i) {
-      var key = r[6] + ":" + r[7];
-      (cells[key] = cells[key] || []).push(i);
-    });
-    tr.appendChild(el("th"));
-    data.column_order.forEach(function (c) {
-      var th = el("th");
-      th.setAttribute("scope", "col");
-      th.appendChild(el("span", null, data.columns[c]));
-      tr.appendChild(th);
-    });
-    thead.appendChild(tr);
-    data.subject_order.forEach(function (s) {
-      var row = el("tr"), th = el("th", null, data.subjects[s]);
-      th.setAttribute("scope", "row");
-      row.appendChild(th);
-      data.column_order.forEach(function (c) {
-        var td = el("td");
-        (cells[s + ":" + c] || []).forEach(function (i) {
-          var r = runs[i], tag = data.tags[r[1]], w = SEV[worst(r)];
-          var a = el("a", "cell " + tag[1] + " sev-" + w, tag[0]);
-          a.href = "#run-" + (i + 1);
-          var counts = [];
-          if (r[3]) { counts.push(plural(r[3], "error")); }
-          if (r[4]) { counts.push(plural(r[4], "warning")); }
-          if (r[5]) { counts.push(plural(r[5], "note")); }
-          a.title = S[r[0]] + " \\u00b7 " + tag[2] + " \\u00b7 " +
-            (counts.join(", ") || "no findings");
-          a.appendChild(el("b", null, GLYPH[w]));
-          td.appendChild(a);
-        });
-        row.appendChild(td);
-      });
-      tbody.appendChild(row);
-    });
-    table.appendChild(thead);
-    table.appendChild(tbody);
-  }
-
-  select.addEventListener("change", function () { apply(); store(); });
-  search.addEventListener("input", function () { apply(); store(); });
-  window.addEventListener("hashchange", fromFragment);
-  more.addEventListener("click", function () { limit += PAGE; draw(); });
-  document.getElementById("open-shown").addEventListener("click", function () {
-    Object.keys(built).forEach(function (i) { fill(built[i], +i); built[i].open = true; });
-  });
-  document.getElementById("close-all").addEventListener("click", function () {
-    Object.keys(built).forEach(function (i) { built[i].open = false; });
-  });
-  var wasOpen = {};
-  window.addEventListener("beforeprint", function () {
-    wasOpen = {};
-    Object.keys(built).forEach(function (i) {
-      wasOpen[i] = built[i].open;
-      fill(built[i], +i);
-      built[i].open = true;
-    });
-  });
-  window.addEventListener("afterprint", function () {
-    Object.keys(built).forEach(function (i) { built[i].open = wasOpen[i] || false; });
-  });
-  outliers();
-  picture();
-  apply();
-  fromFragment();
-  body.setAttribute("data-ready", "1");
-})();
-"""
-
 
 __all__ = ["DiagramCollector", "Drawings", "esc", "render_html", "write_html", "write_html_stream"]

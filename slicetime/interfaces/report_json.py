@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import json
 from collections.abc import Mapping, Sequence
-from functools import cache, lru_cache
+from functools import lru_cache
 from importlib import resources
 from typing import TYPE_CHECKING, Any
 
@@ -43,42 +43,6 @@ def lines_validator() -> Any:
         ("slicetime/report.schema.json", Resource.from_contents(report_schema())),
     ])
     return jsonschema.Draft202012Validator(lines_schema(), registry=registry)
-
-
-#: the JSON Schema of every JSON file or output the tool writes (slicetime/data)
-SCHEMAS = {
-    "report": "report.schema.json",          # audit --format json
-    "report-lines": "report-lines.schema.json",  # audit --format jsonl, each line
-    "show": "show.schema.json",              # show --json (a run, or a DICOM series)
-    "correct": "correct.schema.json",        # correct --format json
-    "verify": "verify.schema.json",          # verify --format json
-    "fix-plan": "fix-plan.schema.json",      # fix --plan FILE
-    "fix-journal": "fix-journal.schema.json",  # fix --apply journal.json
-    "provenance": "provenance.schema.json",  # slicetime-provenance.json (and the sidecar
-                                             # SliceTimeAlignment: #/$defs/alignment_strict)
-}
-
-
-@cache
-def load_schema(name: str) -> dict[str, Any]:
-    """A shipped schema by its name in :data:`SCHEMAS` (or its file name)."""
-    file = SCHEMAS.get(name, name)
-    return json.loads(resources.files("slicetime").joinpath(f"data/{file}").read_text("utf-8"))
-
-
-def schema_validator(name: str, pointer: str = "") -> Any:
-    """A jsonschema validator for a shipped schema (``pointer``: a part of it, such as
-    ``#/$defs/alignment_strict``), resolving references between the shipped schemas."""
-    import jsonschema
-    from referencing import Registry, Resource
-
-    registry = Registry().with_resources([
-        (f"slicetime/{file}", Resource.from_contents(load_schema(file)))
-        for file in SCHEMAS.values()])
-    schema = load_schema(name)
-    if pointer:
-        schema = {"$ref": f"slicetime/{SCHEMAS.get(name, name)}{pointer}"}
-    return jsonschema.Draft202012Validator(schema, registry=registry)
 
 
 def run_object(run: RunResult) -> dict[str, Any]:

@@ -114,7 +114,7 @@ def fix(
         if not plan.changes:
             sys.exit(0)
         applied = fixing.apply_plan(plan, backup_dir=backup_dir, replace_links=replace_links)
-    except fixing.FixError as exc:
+    except fixing.TransactionError as exc:  # FixError and the transaction's refusals
         raise UserError(xml_safe(str(exc))) from None
     except OSError as exc:
         raise UserError(xml_safe(f"cannot write the backups or files ({exc.strerror or exc}); "
