@@ -77,6 +77,12 @@ class Rule:
     #: severities a call may state instead of ``severity`` (e.g. a warning that becomes
     #: an error for a timing field); any other stated severity is refused
     also_severities: frozenset[Severity] = frozenset()
+    #: whether a finding of this code puts the run's slice times themselves in doubt
+    #: (another source contradicts them: the header, the source series, the image
+    #: data, the lab's protocol or the dataset's other runs); ``correct`` refuses such
+    #: a run at warning level or above unless the user accepts the doubt
+    #: (:func:`slicetime.rules.correction.timing_doubts`)
+    timing_in_doubt: bool = False
 
     @property
     def checked_text(self) -> str:
@@ -115,12 +121,14 @@ def declare(
     checked: Checked = "reading",
     fixable: bool = False,
     also_severities: Iterable[Severity] = (),
+    timing_in_doubt: bool = False,
 ) -> Rule:
     """Register a code raised outside the rules' checks (no check function): by the
     readers (the default), the batch, verify, correct or the source cross-check."""
     return register(Rule(code, title, severity, rationale, fix, "reader", None, standard,
                          checked=checked, fixable=fixable,
-                         also_severities=frozenset(also_severities)))
+                         also_severities=frozenset(also_severities),
+                         timing_in_doubt=timing_in_doubt))
 
 
 def rule_of(code: str) -> Rule:

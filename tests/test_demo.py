@@ -33,7 +33,13 @@ def test_the_demo_runs_the_whole_job(tmp_path: Path, capsys: pytest.CaptureFixtu
     assert (out / "fix-backups" / "journal.json").exists()
     derivatives = fixed / "derivatives" / "slicetime"
     corrected = sorted(derivatives.rglob("*_desc-timealigned_bold.nii.gz"))
-    assert len(corrected) == 19  # all but the truncated file and the wrong header TR
+    # all but the truncated file, the wrong header TR and sub-03's two hum runs, whose
+    # override the dataset's other runs (and the images, step 3) contradict: their
+    # timing stands in doubt, so correct refuses them and says how a doubt is accepted
+    assert len(corrected) == 17
+    assert not list(derivatives.glob("sub-03/*/func/*task-hum*"))
+    assert "refused for doubt: 2 runs" in printed
+    assert "--accept 'dataset/outlier-scheme:sub-03/**'" in printed
     assert (derivatives / "dataset_description.json").exists()
     # the planted study itself was never modified by the repairs
     original = json.loads((out / "quiet-rooms/task-chirp_bold.json").read_text())

@@ -206,7 +206,8 @@ def test_tr_in_milliseconds_folds_the_majority_finding(tmp_path: Path) -> None:
 def test_corrected_outputs_audit_clean_and_a_still_timed_one_is_reported(tmp_path: Path) -> None:
     root = tmp_path / "ds"
     write_description(root)
-    write_run(root, "sub-01/func/sub-01_task-tap_bold.nii.gz", SHAPE, tr=TR,
+    # correct refuses runs shorter than MIN_VOLUMES (6) volumes
+    write_run(root, "sub-01/func/sub-01_task-tap_bold.nii.gz", (*SHAPE[:3], 6), tr=TR,
               sidecar={"RepetitionTime": TR, "SliceTiming": INTERLEAVED})
     out = root / "derivatives" / "aligned"
     code, _, err = run_cli("correct", str(root), "--out", str(out))

@@ -16,7 +16,13 @@ from collections.abc import Callable, Sequence
 
 import numpy as np
 
-from slicetime.engines.interpolate import Engine, ResampleStats, resample
+from slicetime.engines.interpolate import (
+    NOISE_PROBE_LENGTH,
+    Engine,
+    ResampleStats,
+    noise_variance,
+    resample,
+)
 from slicetime.engines.plan import ResamplingPlan, ShiftGroup
 
 #: voxels transformed together inside one slice: small enough that a block's copies
@@ -142,5 +148,24 @@ def align_array(
     return np.ascontiguousarray(np.moveaxis(aligned, (0, 1), (axis, 3)))
 
 
-__all__ = ["NO_SHIFT", "ROWS_PER_BLOCK", "align_array", "align_slice", "run_tasks",
-           "slice_tasks"]
+def noise_per_slice(plan: ResamplingPlan, engine: Engine, n_slices: int) -> list[float]:
+    """The variance each slice's white noise keeps after correction (1: unchanged), in
+    data-array order (:func:`~slicetime.engines.interpolate.noise_variance`, measured
+    on the middle of the run's own grid; a slice left in place keeps 1)."""
+    ratios = [1.0] * n_slices
+    n = plan.n_volumes
+    half = min(n, NOISE_PROBE_LENGTH) // 2
+    middle = slice(max(0, n // 2 - half), max(0, n // 2 - half) + min(n, NOISE_PROBE_LENGTH))
+    targets = plan.target_times()[middle]
+    for group in plan.groups:
+        if abs(group.shift) < NO_SHIFT:
+            continue
+        ratio = noise_variance(engine, 0.0, sample_times=plan.sample_times(group)[middle],
+                               target_times=targets)
+        for z in group.slices:
+            ratios[z] = round(ratio, 3)
+    return ratios
+
+
+__all__ = ["NO_SHIFT", "ROWS_PER_BLOCK", "align_array", "align_slice", "noise_per_slice",
+           "run_tasks", "slice_tasks"]

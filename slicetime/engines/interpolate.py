@@ -278,6 +278,39 @@ def prepare(engine: Engine) -> None:
         import scipy.interpolate  # noqa: F401
 
 
+#: samples in the probe :func:`noise_variance` measures an engine on
+NOISE_PROBE_LENGTH = 256
+
+
+def noise_variance(
+    engine: Engine,
+    shift: float,
+    *,
+    sample_times: np.ndarray | None = None,
+    target_times: np.ndarray | None = None,
+) -> float:
+    """The variance of a corrected sample in the middle of a series of unit white noise.
+
+    Every engine is linear: the corrected series is ``H @ x``, so for independent
+    samples of variance 1 the variance of output ``m`` is ``sum_j H[m, j]**2``. The
+    row of ``H`` is measured by passing the unit impulses through the engine. By
+    default the grid is ``NOISE_PROBE_LENGTH`` evenly spaced samples moved by ``shift``
+    samples; give ``sample_times`` and ``target_times`` (seconds) for another grid (the
+    middle of a run's own grid, for ``VolumeTiming``). Below 1 the method smooths
+    (linear interpolation halfway between two samples averages them: 0.5); 1 keeps
+    the noise as it is (a pure phase shift).
+    """
+    if sample_times is None or target_times is None:
+        sample_times = np.arange(NOISE_PROBE_LENGTH, dtype=np.float64)
+        target_times = sample_times + shift
+    n = sample_times.size
+    impulses = np.eye(n, dtype=np.float32)
+    response = engine.core(impulses, np.asarray(sample_times, dtype=np.float64),
+                           np.asarray(target_times, dtype=np.float64), 1)
+    row = response[:, n // 2].astype(np.float64)  # response[j, m] = H[m, j]
+    return float(np.dot(row, row))
+
+
 def _fill_gaps(row: np.ndarray, sample_times: np.ndarray) -> np.ndarray:
     good = np.isfinite(row)
     filled = row.copy()
@@ -358,10 +391,12 @@ __all__ = [
     "BLOCK_ROWS",
     "DEFAULT_METHOD",
     "ENGINES",
+    "NOISE_PROBE_LENGTH",
     "Engine",
     "IrregularGridError",
     "ResampleStats",
     "get_engine",
+    "noise_variance",
     "prepare",
     "regular_shift",
     "resample",

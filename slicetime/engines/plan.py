@@ -261,6 +261,58 @@ def make_plan(
     )
 
 
+def slice_time_ref(reference: float, repetition_time: float | None) -> float | None:
+    """What a model of the corrected run needs: ``StartTime / RepetitionTime``, the
+    fraction of the TR at which every slice now sits (a GLM's frame times are
+    ``volume * TR + slice_time_ref * TR``). None without a RepetitionTime (a
+    ``VolumeTiming`` run: its frame times are ``VolumeTiming + StartTime``)."""
+    if repetition_time is None or not repetition_time > 0:
+        return None
+    return round(reference / repetition_time, 6)
+
+
+def occupied_span(times: tuple[float, ...] | list[float]) -> float | None:
+    """How long the slices of one volume take: the last excitation's time plus one step
+    between successive excitations (the median gap between distinct slice times), or
+    None when all slices share one time (no step to measure)."""
+    distinct = sorted({round(t, 6) for t in times})
+    if len(distinct) < 2:
+        return None
+    step = float(np.median(np.diff(distinct)))
+    return distinct[-1] + step
+
+
+def window_fields(schedule: SliceSchedule, metadata_keys: set[str] | frozenset[str]
+                  ) -> dict[str, float]:
+    """The BIDS fields a corrected output needs, beside what its input already states
+    (``metadata_keys``), so that it still tells the acquisition window once its
+    ``SliceTiming`` is gone:
+
+    * ``VolumeTiming`` without ``AcquisitionDuration``: ``AcquisitionDuration`` (BIDS
+      requires it, or ``SliceTiming``, beside ``VolumeTiming``), the time the slices
+      occupy (:func:`occupied_span`), within the run's window;
+    * ``RepetitionTime`` without ``DelayTime`` or ``AcquisitionDuration`` whose slices
+      leave more than one excitation step of the TR silent (a sparse run described by
+      its slice times alone): ``DelayTime``, the silent part of the TR.
+    """
+    span = occupied_span(schedule.times)
+    window = schedule.acquisition_window
+    if span is None or window is None:
+        return {}
+    span = min(span, window)
+    if schedule.volume_times is not None:
+        if "AcquisitionDuration" in metadata_keys:
+            return {}
+        return {"AcquisitionDuration": round(span, 6)}
+    tr = schedule.repetition_time
+    if tr is None or metadata_keys & {"DelayTime", "AcquisitionDuration"}:
+        return {}
+    distinct = sorted({round(t, 6) for t in schedule.times})
+    step = float(np.median(np.diff(distinct)))
+    silent = tr - span
+    return {"DelayTime": round(silent, 6)} if silent > step + 1e-6 else {}
+
+
 def _group(members: list[int], schedule: SliceSchedule, reference: float) -> ShiftGroup:
     t = float(np.mean([schedule.times[z] for z in members]))
     return ShiftGroup(tuple(sorted(members)), t, reference - t)
@@ -277,5 +329,8 @@ __all__ = [
     "ShiftGroup",
     "check_plausible",
     "make_plan",
+    "occupied_span",
     "reference_time",
+    "slice_time_ref",
+    "window_fields",
 ]

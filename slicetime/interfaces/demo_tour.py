@@ -3,8 +3,9 @@
 
 The tour: show one run, audit the study (terminal and HTML), ask the images
 whether the overriding participant's claimed order is true, plan the repairs,
-apply them to a copy, audit the copy again, correct the copy, and say where
-everything is. Seeded, so every run of the demo is the same.
+apply them to a copy, audit the copy again, correct the copy (the runs whose
+timing stays in doubt are refused, and the tour says how a doubt is accepted), and
+say where everything is. Seeded, so every run of the demo is the same.
 """
 
 from __future__ import annotations
@@ -28,8 +29,10 @@ from slicetime.interfaces.terminal import (
 from slicetime.pipelines.audit import audit_one, audit_paths
 from slicetime.pipelines.correct import CorrectOptions, correct_paths
 from slicetime.pipelines.demo import STUDY, build_demo_dataset, demo_runs
+from slicetime.pipelines.errors import DOUBT_CODE
 from slicetime.pipelines.fix import apply_plan, plan_fix, reaudit
 from slicetime.pipelines.verify import verify_run
+from slicetime.rules.correction import doubts_timing
 from slicetime.words import count
 
 
@@ -100,6 +103,20 @@ def run_demo(out: Path) -> int:
         shutil.rmtree(aligned)
     corrected = correct_paths([fixed], CorrectOptions(out=aligned, threads=0))
     render_correct(corrected, console)
+    doubted = [r for r in corrected.runs
+               if any(f.code == DOUBT_CODE for f in r.blocking)]
+    if doubted:
+        codes = sorted({f.code for r in doubted for f in r.blocking if doubts_timing(f.code)})
+        console.print()
+        say(f"refused for doubt: {count(len(doubted), 'run')} whose slice times another "
+            f"source contradicts ({', '.join(codes)}). Only someone who knows the "
+            "acquisition may accept such a doubt, by code and by run, and it is then "
+            "recorded in every output it lets through:")
+        say(f"slicetime correct {fixed} --out {aligned} "
+            + " ".join(f"--accept '{c}:sub-03/**'" for c in codes), 4)
+        say("or the same in the lab policy: [[accept]] codes = [...], paths = [...], "
+            "reason = \"...\". Here the images contradict sub-03's override (step 3), so "
+            "the honest move is to repair the override, not to accept it.")
 
     rule("where everything is")
     before_counts, after_counts = result.counts(), after.counts()

@@ -131,6 +131,8 @@ def correct_run_object(outcome: RunOutcome) -> dict[str, Any]:
         "warnings": list(outcome.warnings),
         "blocking_findings": [f.to_json() for f in outcome.blocking],
         "removed_output": outcome.removed,
+        "slice_time_ref": outcome.slice_time_ref,
+        "accepted_doubts": [dict(a) for a in outcome.accepted],
         "seconds": round(outcome.seconds, 3),
     })
 
@@ -142,6 +144,7 @@ def correct_object(result: CorrectResult) -> dict[str, Any]:
         "out": result.out,
         "runs": [correct_run_object(r) for r in result.runs],
         "summary": result.counts(),
+        "hand_off": result.hand_off(),
     }
 
 

@@ -230,6 +230,11 @@ def render_correct(result: CorrectResult, console: Console) -> None:
                                                        first=11, rest=13)):
                 console.print(Text(pad + ("" if i == 0 else "  ") + part,
                                    style="dark_orange3"))
+        for doubt in run.accepted:
+            said = (f"accepted doubt {doubt['code']} ({xml_safe(doubt['accepted_by'])}): "
+                    f"{xml_safe(doubt['message'])}")
+            for i, part in enumerate(screen.wrap_words(said, width, first=11, rest=13)):
+                console.print(Text(pad + ("" if i == 0 else "  ") + part, style="dim"))
     counts = result.counts()
     parts = [f"{counts[k]} {k}" for k in ("corrected", "up-to-date", "refused", "failed")
              if counts[k]]
@@ -240,6 +245,10 @@ def render_correct(result: CorrectResult, console: Console) -> None:
     console.print()
     for i, part in enumerate(screen.wrap_words(summary, width, rest=2)):
         console.print(Text(("" if i == 0 else "  ") + part))
+    hand_off = result.hand_off()
+    if hand_off is not None:
+        for i, part in enumerate(screen.wrap_words(hand_off, width, rest=2)):
+            console.print(Text(("" if i == 0 else "  ") + part))
 
 
 def render_fix_plan(plan: FixPlan, console: Console) -> None:

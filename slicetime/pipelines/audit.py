@@ -35,7 +35,7 @@ from slicetime.policy.checks import (
     dataset_codes_judged,
 )
 from slicetime.policy.loading import root_policies
-from slicetime.policy.model import Policy
+from slicetime.policy.model import AcceptEntry, Policy
 from slicetime.readers.dataset import find_root, iter_runs
 from slicetime.readers.entities import sidecar_path
 from slicetime.readers.errors import ReadError
@@ -60,6 +60,8 @@ class AuditResult:
     dataset_findings: list[Finding] = field(default_factory=list)
     ignored: list[IgnoredFinding] = field(default_factory=list)
     policies: dict[str, str] = field(default_factory=dict)  # root -> policy file used
+    #: root -> the policy's [[accept]] entries (the doubts correct may go ahead despite)
+    accepts: dict[str, tuple[AcceptEntry, ...]] = field(default_factory=dict)
     #: runs whose policy protocol states a value, so that value was judged by the policy
     #: and not by the majority of their task and acquisition (dataset/outlier-*)
     judged_by_policy: int = 0
@@ -761,6 +763,8 @@ def audit_paths(
         require_runs, listings)
     result = AuditResult(roots=roots)
     result.policies = {str(r): p.file or "" for r, p in policies.items() if p is not None}
+    result.accepts = {str(r): p.accepts for r, p in policies.items()
+                      if p is not None and p.accepts}
     job = functools.partial(audit_chunk, policies=policies, verify=verify, source=source,
                             store=SidecarStore(listings=listings))
     sharer = ValueSharer()  # one copy of each inherited value, as chunks come back

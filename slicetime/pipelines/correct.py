@@ -2,9 +2,15 @@
 
 For each run (found by the audit's walker), :func:`correct_run` composes:
 
-1. the gate (:func:`_refusal`): a run without a resolved schedule is always
-   refused; a run with error findings is refused unless ``force`` (which never
-   invents missing timing);
+1. the gate (:func:`_refusal`), in this order: a series that may not be
+   interpolated (``rules.correction.interpolation_refusal``: only BOLD-type series),
+   a run without a resolved schedule, an impossible timing, a bad scaling and a run
+   shorter than ``MIN_VOLUMES`` are refused whatever the options; a run whose timing
+   stands in doubt (``rules.correction.judge_trust``) is refused unless every doubt is
+   accepted (``--accept``, the policy's ``[[accept]]``); a run with other error
+   findings is refused unless ``force``. This is the one place ``--force`` is
+   decided: it covers audit errors that do not put the timing in doubt, nothing
+   else;
 2. the plan (``engines.plan``) and the output's place
    (:mod:`slicetime.pipelines.outputs`); a run whose output sidecar records the
    same inputs (SHA-256), settings and output checksum is reused
@@ -31,7 +37,8 @@ import math
 import os
 import threading
 import time
-from collections.abc import Sequence
+from collections import Counter
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -40,7 +47,7 @@ import numpy as np
 
 from slicetime import __version__
 from slicetime.codes import make_finding
-from slicetime.engines.align import align_slice, run_tasks, slice_tasks
+from slicetime.engines.align import align_slice, noise_per_slice, run_tasks, slice_tasks
 from slicetime.engines.interpolate import (
     Engine,
     IrregularGridError,
@@ -56,13 +63,17 @@ from slicetime.engines.plan import (
     ShiftGroup,
     check_plausible,
     make_plan,
+    slice_time_ref,
 )
 from slicetime.model import Finding, RunRecord, Severity
 from slicetime.pipelines.audit import AuditResult, RunResult, audit_paths
 from slicetime.pipelines.errors import (
     CLASH_CODE,
+    DOUBT_CODE,
     IMPLAUSIBLE_CODE,
+    NOT_INTERPOLABLE_CODE,
     SCALING_CODE,
+    TOO_FEW_CODE,
     CorrectionError,
 )
 from slicetime.pipelines.executor import (
@@ -95,6 +106,7 @@ from slicetime.pipelines.outputs import (
 from slicetime.pipelines.provenance import (
     PROVENANCE_FILE,
     PROVENANCE_KEY,
+    CorrectionFacts,
     dataset_names,
     dataset_uri,
     entry_of,
@@ -110,6 +122,7 @@ from slicetime.pipelines.provenance import (
     write_json_atomic,
     write_provenance,
 )
+from slicetime.policy.model import AcceptEntry
 from slicetime.readers.dataset import find_root
 from slicetime.readers.entities import sidecar_name
 from slicetime.readers.errors import ReadError
@@ -132,6 +145,8 @@ from slicetime.readers.volumes import (
     scaling,
     scaling_problem,
 )
+from slicetime.rules.correction import MIN_VOLUMES, interpolation_refusal, judge_trust
+from slicetime.words import count
 
 
 @dataclass(frozen=True)
@@ -149,6 +164,12 @@ class CorrectOptions:
     #: when the batch began (time.time()): an output already in place that this batch
     #: wrote (its worker was lost before it could say so) is reported as corrected
     batch_started: float | None = None
+    #: doubts about the timing accepted on the command line (``--accept``)
+    accepts: tuple[AcceptEntry, ...] = ()
+    #: the same from each dataset root's lab policy (root -> its ``[[accept]]`` entries)
+    policy_accepts: Mapping[str, tuple[AcceptEntry, ...]] = field(default_factory=dict)
+    #: leading volumes left out of the outputs (still used to interpolate the others)
+    omit_leading: int = 0
 
     def settings(self, engine: Engine) -> dict[str, Any]:
         """What must match for an earlier output to be reused."""
@@ -159,7 +180,11 @@ class CorrectOptions:
             "KeepDataType": self.keep_dtype,
             "Desc": self.desc,
             "Version": __version__,
+            **({"LeadingVolumesLeftOut": self.omit_leading} if self.omit_leading else {}),
         }
+
+    def accepts_for(self, root: str) -> tuple[AcceptEntry, ...]:
+        return (*self.accepts, *self.policy_accepts.get(root, ()))
 
 
 @dataclass
@@ -177,6 +202,10 @@ class RunOutcome:
     seconds: float = 0.0
     provenance: dict[str, Any] | None = None
     removed: str | None = None  # an earlier output of this run, removed as stale (rel. to out)
+    #: the doubts about the timing the user accepted (code, message, accepted by, reason)
+    accepted: list[dict[str, str]] = field(default_factory=list)
+    #: what a model of the output needs: StartTime / RepetitionTime (None: VolumeTiming)
+    slice_time_ref: float | None = None
 
     @property
     def ok(self) -> bool:
@@ -188,6 +217,7 @@ class CorrectResult:
     out: str
     runs: list[RunOutcome] = field(default_factory=list)
     dataset_findings: list[Finding] = field(default_factory=list)
+    omitted: int = 0  # --omit-leading
 
     def counts(self) -> dict[str, int]:
         counts = {"corrected": 0, "up-to-date": 0, "refused": 0, "failed": 0}
@@ -197,6 +227,37 @@ class CorrectResult:
 
     def exit_code(self) -> int:
         return 0 if all(r.ok for r in self.runs) else 1
+
+    def hand_off(self) -> str | None:
+        """The one line a model of the outputs needs: the slice-time reference
+        ``StartTime / RepetitionTime`` (the same for every output, or each value with
+        its count), the frame times of ``VolumeTiming`` outputs, and the shift of the
+        event onsets when leading volumes were left out. None: nothing corrected."""
+        done = [r for r in self.runs if r.ok]
+        if not done:
+            return None
+        values = [r.slice_time_ref for r in done if r.slice_time_ref is not None]
+        parts = []
+        if values:
+            counts = Counter(values)
+            if len(counts) == 1:
+                every = "every output" if len(values) == len(done) else count(
+                    len(values), "output")
+                parts.append(f"slice_time_ref = StartTime / RepetitionTime = {values[0]:g} "
+                             f"({every})")
+            else:
+                listed = ", ".join(f"{v:g} ({count(n, 'output')})"
+                                   for v, n in sorted(counts.items()))
+                parts.append(f"slice_time_ref = StartTime / RepetitionTime: {listed}; each "
+                             "output's in its sidecar and in --format json")
+        timed = len(done) - len(values)
+        if timed:
+            parts.append(f"frame times = VolumeTiming + StartTime ({count(timed, 'output')} "
+                         "without RepetitionTime)")
+        if self.omitted:
+            parts.append(f"event onsets count from volume {self.omitted} now "
+                         "(NumberOfVolumesDiscardedByUser)")
+        return "for the model: " + "; ".join(parts)
 
 
 def _engine_pass(
@@ -259,15 +320,25 @@ def correct_run(
     return outcome
 
 
-def _refusal(run: RunResult, errors: list[Finding], force: bool) -> tuple[str | None, list[str]]:
+def _refusal(
+    run: RunResult, options: CorrectOptions, outcome: RunOutcome
+) -> tuple[str | None, list[str]]:
     """Why the run is not corrected (None: it is), and the warnings when forced.
 
-    The physical plausibility gate (:func:`check_plausible`) comes before
-    ``force``: no judgement makes an impossible timing usable."""
+    Refusals that no option lifts come first (raised with their ``correct/*`` code):
+    a series that must not be interpolated, an impossible timing (before ``force``:
+    no judgement makes it usable), a bad scaling, too few volumes. Then the doubts
+    about the timing, lifted only by accepting each one; then the audit's other
+    errors, lifted by ``force``. ``outcome.blocking`` holds the audit's errors on
+    entry; a refusal for doubts puts the doubting findings first."""
     record = run.record
+    errors = outcome.blocking
     if record.header is None:
         first = errors[0].message if errors else "the image header cannot be read"
         raise CorrectionError(first)
+    not_series = interpolation_refusal(record)
+    if not_series is not None:
+        raise CorrectionError(not_series, code=NOT_INTERPOLABLE_CODE, field="suffix")
     if record.schedule is None:
         why = "; ".join(p.message for p in record.timing_problems) or "no slice timing found"
         return f"{record.path}: no usable slice timing ({why})", []
@@ -282,7 +353,28 @@ def _refusal(run: RunResult, errors: list[Finding], force: bool) -> tuple[str | 
     if problem is not None:
         raise CorrectionError(f"{problem}, so the run is refused", code=SCALING_CODE,
                               field="scl_inter")
-    if errors and not force:
+    shape = record.header.shape
+    if len(shape) == 4 and shape[3] < MIN_VOLUMES:
+        raise CorrectionError(
+            f"the run has {shape[3]} volumes; correction needs at least {MIN_VOLUMES} (the "
+            "error near a run's ends is too large below that; slicetime explain "
+            "correct/too-few-volumes)", code=TOO_FEW_CODE, field="dim")
+    verdict = judge_trust(record.path, run.findings, options.accepts_for(record.root))
+    outcome.accepted = [
+        {"code": f.code, "message": f.message, "accepted_by": entry.given,
+         "reason": entry.reason} for f, entry in verdict.accepted]
+    if verdict.standing:
+        outcome.blocking = [*verdict.standing, *(f for f in errors
+                                                 if f not in verdict.standing)]
+        doubted = sorted({f.code for f in verdict.standing})
+        accept = " ".join(f"--accept {c}:{record.path}" for c in doubted)
+        raise CorrectionError(
+            f"its slice times are in doubt ({'; '.join(f.message for f in verdict.standing)}); "
+            f"resolve it (slicetime show), or if you know the run's own timing is right, "
+            f"accept it: {accept}", code=DOUBT_CODE)
+    accepted = {id(f) for f, _ in verdict.accepted}
+    errors = [f for f in errors if id(f) not in accepted]
+    if errors and not options.force:
         codes = ", ".join(sorted({f.code for f in errors}))
         return (
             f"{record.path}: the audit found errors that make the timing untrustworthy "
@@ -291,9 +383,6 @@ def _refusal(run: RunResult, errors: list[Finding], force: bool) -> tuple[str | 
             [],
         )
     return None, [f"corrected despite audit error {f.code}: {f.message}" for f in errors]
-
-
-
 
 
 @dataclass(frozen=True)
@@ -311,13 +400,15 @@ def _correct(
     """Correct the run into ``outcome``; return the warnings about forced audit errors."""
     record = run.record
     outcome.blocking = [f for f in run.findings if f.severity is Severity.ERROR]
-    reason, forced = _refusal(run, outcome.blocking, options.force)
+    reason, forced = _refusal(run, options, outcome)
     if reason is not None:
         outcome.reason = reason
         return []
     engine = get_engine(options.method)
     plan = _plan(record, options, engine)
     outcome.reference = plan.reference
+    assert record.schedule is not None
+    outcome.slice_time_ref = slice_time_ref(plan.reference, record.schedule.repetition_time)
     target = _target(record, options)
     outcome.output = target.rel.as_posix()
     settings = options.settings(engine)
@@ -343,6 +434,11 @@ def _plan(record: RunRecord, options: CorrectOptions, engine: Engine) -> Resampl
         raise CorrectionError(
             f"SliceTiming has {schedule.n_slices} entries but the image has {axis_length} "
             f"slices along {schedule.axis}"
+        )
+    if options.omit_leading >= header.shape[3]:
+        raise CorrectionError(
+            f"--omit-leading {options.omit_leading} leaves none of the run's "
+            f"{header.shape[3]} volumes"
         )
     plan = make_plan(schedule, header.shape[3], options.reference)
     if engine.needs_regular_grid and not plan.regular:
@@ -452,13 +548,15 @@ def _resample_and_write(
             )
             cast = OutputCast(out_dtype, out_scale)
             slope, inter = out_scale if out_scale is not None else (1.0, 0.0)
+            skip = options.omit_leading
             new_prefix = patched_prefix(
-                prefix, header, datatype=code, bitpix=bitpix, slope=slope, inter=inter
+                prefix, header, datatype=code, bitpix=bitpix, slope=slope, inter=inter,
+                volumes=n_volumes - skip if skip else None,
             )
             writer = VolumeWriter(
                 tmp_image, new_prefix, compress=header.compressed, threads=options.threads
             )
-            _drain(buffer, writer, cast, plan, budget, header.shape)
+            _drain(buffer, writer, cast, plan, budget, header.shape, skip)
             output_sha = writer.sha256()
             writer = None
             buffer.close()
@@ -472,7 +570,10 @@ def _resample_and_write(
                 f"{cast.nonfinite} non-finite values were stored as 0 in {out_dtype.name}"
             )
         inputs = hash_inputs(record, image_sha)
-        sidecar = output_sidecar(record, plan, settings, inputs, output_sha, dataset_name, stats)
+        sidecar = output_sidecar(
+            record, plan, settings, inputs, output_sha, dataset_name, stats,
+            CorrectionFacts(accepted=outcome.accepted, omitted=options.omit_leading,
+                            noise=noise_per_slice(plan, engine, n_slices)))
         _commit(tmp_image, target.image, target.sidecar, sidecar)
         outcome.status = "corrected"
         outcome.provenance = entry_of(sidecar, target.rel.as_posix())
@@ -512,14 +613,15 @@ def _drain(
     plan: ResamplingPlan,
     budget: Budget,
     shape: tuple[int, ...],
+    skip: int = 0,
 ) -> None:
-    """Write the buffer's volumes out in file order (then close the writer);
-    ``shape`` is the image's NIfTI shape (i, j, k, volumes)."""
+    """Write the buffer's volumes out in file order (then close the writer), leaving out
+    the first ``skip``; ``shape`` is the image's NIfTI shape (i, j, k, volumes)."""
     n_slices, n_volumes = shape[plan.axis_index], shape[3]
     spatial_c = tuple(reversed(shape[:3]))
     others = [d for i, d in enumerate(spatial_c) if i != c_axis(plan.axis_index) - 1]
     outgoing = np.empty((budget.volumes_per_batch, *spatial_c), dtype=cast.dtype)
-    for first in range(0, n_volumes, budget.volumes_per_batch):
+    for first in range(skip, n_volumes, budget.volumes_per_batch):
         count = min(budget.volumes_per_batch, n_volumes - first)
         block = buffer.get_volumes(first, count).reshape(n_slices, count, *others)
         target = outgoing[:count]
@@ -590,8 +692,12 @@ def correct_paths(
     include_sourcedata: bool = False,
     include_hidden: bool = False,
     executor: Executor | None = None,
+    verify: bool = False,
 ) -> CorrectResult:
     """Correct every run under ``paths`` into ``options.out``.
+
+    ``verify`` checks each run's claimed slice order against its image data first
+    (the audit's ``verify``): a contradicted claim puts the timing in doubt.
 
     Raises ``ValueError`` for a bad output location (usage error) and
     ``ReadError`` for a missing given path; everything about a single run
@@ -605,7 +711,11 @@ def correct_paths(
         include_sourcedata=include_sourcedata,
         include_hidden=include_hidden,
         policy_file=policy_file,
+        verify=verify,
+        executor=executor if verify else None,
+        jobs=jobs if verify else 1,
     )
+    options = dataclasses.replace(options, policy_accepts=audit.accepts)
     roots = sorted({r.record.root for r in audit.runs})
     given_roots = {str(find_root(Path(p))) for p in paths} | set(audit.roots) | set(roots)
     check_output_location(
@@ -613,7 +723,7 @@ def correct_paths(
         include_derivatives=include_derivatives,
     )
     names, links = dataset_names(options.out, roots, mix_inputs=options.mix_inputs)
-    result = CorrectResult(out=str(options.out))
+    result = CorrectResult(out=str(options.out), omitted=options.omit_leading)
     result.dataset_findings = [
         f for f in audit.dataset_findings if f.severity is Severity.ERROR
     ]

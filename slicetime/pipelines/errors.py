@@ -33,3 +33,6 @@ class CorrectionError(Exception):
 CLASH_CODE = "correct/output-clash"
 IMPLAUSIBLE_CODE = "correct/implausible-timing"
 SCALING_CODE = "correct/scaling-range"
+DOUBT_CODE = "correct/timing-in-doubt"
+NOT_INTERPOLABLE_CODE = "correct/not-interpolable"
+TOO_FEW_CODE = "correct/too-few-volumes"

@@ -13,12 +13,13 @@ import json
 import os
 import re
 from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Protocol
 
 from slicetime import __version__
 from slicetime.engines.interpolate import Engine, ResampleStats
-from slicetime.engines.plan import ResamplingPlan
+from slicetime.engines.plan import ResamplingPlan, slice_time_ref, window_fields
 from slicetime.model import RunRecord
 from slicetime.pipelines.outputs import output_files, temp_path
 from slicetime.readers.atomic import write_atomic
@@ -134,6 +135,18 @@ def up_to_date(
     return output.get("SHA256") == file_sha256(image_out)
 
 
+@dataclass(frozen=True)
+class CorrectionFacts:
+    """What the correction of one run decided, beside its plan, for its output sidecar."""
+
+    #: the doubts about the timing accepted (code, message, accepted_by, reason)
+    accepted: Sequence[Mapping[str, str]] = ()
+    #: leading volumes left out of the output
+    omitted: int = 0
+    #: the variance white noise keeps in each slice (data-array order)
+    noise: Sequence[float] = ()
+
+
 def output_sidecar(
     record: RunRecord,
     plan: ResamplingPlan,
@@ -142,13 +155,28 @@ def output_sidecar(
     output_sha: str,
     dataset_name: str,
     stats: ResampleStats,
+    facts: CorrectionFacts | None = None,
 ) -> dict[str, Any]:
-    """The output sidecar: the input's metadata without ``SliceTiming``, the
-    derivative fields (``SliceTimingCorrected``, ``StartTime``, ``Sources``) and the
-    provenance record."""
+    """The output sidecar: the input's metadata without ``SliceTiming``, the fields
+    that keep the acquisition window (``engines.plan.window_fields``), the leading
+    volumes left out (``NumberOfVolumesDiscardedByUser``, ``VolumeTiming`` cut to
+    the volumes kept), the derivative fields (``SliceTimingCorrected``,
+    ``StartTime``, ``Sources``) and the provenance record."""
+    facts = facts if facts is not None else CorrectionFacts()
     metadata = {k: v for k, v in record.metadata.items() if k not in DROPPED_FIELDS}
     schedule = record.schedule
     assert schedule is not None
+    metadata.update(window_fields(schedule, frozenset(record.metadata)))
+    if facts.omitted:
+        prior = metadata.get("NumberOfVolumesDiscardedByUser")
+        before = prior if isinstance(prior, int) and not isinstance(prior, bool) else 0
+        metadata["NumberOfVolumesDiscardedByUser"] = max(0, before) + facts.omitted
+        times = schedule.volume_times
+        if times is not None and "VolumeTiming" in metadata:
+            # the first volume kept takes the first volume's time (BIDS: times count
+            # from the first volume stored)
+            offset = times[facts.omitted] - times[0]
+            metadata["VolumeTiming"] = [round(t - offset, 6) for t in times[facts.omitted:]]
     metadata["SliceTimingCorrected"] = True
     metadata["StartTime"] = round(plan.reference, 6)
     metadata["Sources"] = [f"bids:{dataset_name}:{record.path}"]
@@ -161,6 +189,11 @@ def output_sidecar(
         "SliceAxis": schedule.axis,
         "SliceDirection": schedule.direction,
         "TimingOrigin": record.timing_origin,
+        "LargestShift": round(plan.max_shift, 6),
+        "WhiteNoiseVarianceRatio": list(facts.noise),
+        "SliceTimeRef": slice_time_ref(plan.reference, schedule.repetition_time),
+        "LeadingVolumesLeftOut": facts.omitted,
+        "AcceptedDoubts": [pascal_keys(a) for a in facts.accepted],
         "ConstantSeries": stats.constant,
         "SeriesWithGaps": stats.partial_nonfinite,
         "Inputs": inputs,

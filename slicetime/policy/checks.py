@@ -91,8 +91,10 @@ def _checked_with_policy(record: RunRecord) -> Iterator[Hit]:
     return iter(())
 
 
-def _document(code: str, *, title: str, rationale: str, fix: str) -> None:
-    run_rule(code, title=title, severity=E, rationale=rationale, fix=fix)(_checked_with_policy)
+def _document(code: str, *, title: str, rationale: str, fix: str,
+              timing_in_doubt: bool = False) -> None:
+    run_rule(code, title=title, severity=E, rationale=rationale, fix=fix,
+             timing_in_doubt=timing_in_doubt)(_checked_with_policy)
 
 
 _OWN_ENTRY = (
@@ -123,6 +125,7 @@ _document(
 )
 _document(
     "policy/multiband-mismatch",
+    timing_in_doubt=True,
     title="the multiband factor differs from the lab's protocol",
     rationale=(
         "The slices excited together (the size of the groups in the slice times, else the "
@@ -135,6 +138,7 @@ _document(
 )
 _document(
     "policy/scheme-mismatch",
+    timing_in_doubt=True,
     title="the slice order differs from the lab's protocol",
     rationale=(
         "The acquisition scheme inferred from the slice times is not the one the lab's protocol "
@@ -148,6 +152,7 @@ _document(
 )
 _document(
     "policy/direction-mismatch",
+    timing_in_doubt=True,
     title="the slice encoding direction differs from the lab's protocol",
     rationale=(
         "The slice axis and direction the run's metadata gives (or the BIDS default k when "

@@ -29,6 +29,11 @@ The format (version 1)::
     codes = ["*"]
     reason = "pilot sessions use a test protocol"
 
+    [[accept]]                           # correct goes ahead despite these doubts
+    paths = ["sub-07/**"]
+    codes = ["header/slice-code-mismatch"]
+    reason = "the console protocol confirms the sidecar; the header is the converter's guess"
+
 Semantics, decided here and relied on by :mod:`slicetime.policy.checks`:
 
 *Protocols.* ``match`` is required (``match = {}`` selects every run). Its keys
@@ -68,6 +73,12 @@ number of folders. A pattern that selects a folder covers everything in it
 (``sub-pilot01`` and ``sub-pilot01/**`` are the same). ``reason`` is required
 and must not be blank.
 
+*Accept.* ``codes`` (required) are exact finding codes whose rule puts the slice
+times in doubt (``timing_in_doubt``; no patterns: a doubt is accepted by name);
+``paths`` as for ignore; ``reason`` is required. The audit still reports these
+findings; ``correct`` goes ahead on the runs they select and records the
+acceptance in each output (:mod:`slicetime.rules.correction`).
+
 Every problem raises :class:`ReadError` with code ``policy/invalid``, a
 one-line message naming the file and the key path
 (``protocols[1].repetition_time: must be a number greater than 0 ...``), the
@@ -92,12 +103,13 @@ from typing import TYPE_CHECKING, Any
 if TYPE_CHECKING:  # imported where a policy is validated: 50 ms a start otherwise
     import jsonschema
 
-from slicetime.codes import declare
+from slicetime.codes import RULES, declare
 from slicetime.model import TIME_TOLERANCE, Finding, Severity
 from slicetime.policy.model import (
     EXPECTATION_KEYS,
     INVALID_CODE,
     POLICY_FILENAME,
+    AcceptEntry,
     ExpectedProtocol,
     IgnoreEntry,
     Policy,
@@ -524,13 +536,28 @@ def _severity_problems(
     return problems
 
 
-def _ignore_problems(entries: Sequence[Any]) -> list[tuple[list[str | int], str]]:
+def _ignore_problems(entries: Sequence[Any], key: str = "ignore"
+                     ) -> list[tuple[list[str | int], str]]:
     problems: list[tuple[list[str | int], str]] = []
     for i, entry in enumerate(entries):
         for j, pattern in enumerate(entry.get("paths", [])):
             problem = path_pattern_problem(pattern)
             if problem:
-                problems.append((["ignore", i, "paths", j], f"{json.dumps(pattern)}: {problem}"))
+                problems.append(([key, i, "paths", j], f"{json.dumps(pattern)}: {problem}"))
+    return problems
+
+
+def _accept_problems(entries: Sequence[Any]) -> list[tuple[list[str | int], str]]:
+    """``[[accept]]`` codes name, exactly, a code whose rule puts the timing in doubt."""
+    problems = _ignore_problems(entries, "accept")
+    for i, entry in enumerate(entries):
+        for j, code in enumerate(entry["codes"]):
+            rule = RULES.get(code)
+            if rule is None or not rule.timing_in_doubt:
+                doubting = ", ".join(sorted(c for c, r in RULES.items() if r.timing_in_doubt))
+                problems.append((["accept", i, "codes", j],
+                                 f"{json.dumps(code)} is not a code that puts the timing in "
+                                 f"doubt (name one exactly: {doubting})"))
     return problems
 
 
@@ -557,8 +584,20 @@ def policy_from_document(
             problem = _code_problem(code, known)
             if problem:
                 problems.append((["ignore", i, "codes", j], problem))
+    raw_accepts = data.get("accept", [])
+    problems += _accept_problems(raw_accepts)
     _raise_first(file, data, problems)
 
+    accepts = tuple(
+        AcceptEntry(
+            index=i,
+            codes=tuple(entry["codes"]),
+            reason=" ".join(entry["reason"].split()),
+            paths=tuple(entry.get("paths", ["**"])),
+            given=f"{Path(file).name} accept[{i}]",
+        )
+        for i, entry in enumerate(raw_accepts)
+    )
     ignores = tuple(
         IgnoreEntry(
             index=i,
@@ -574,6 +613,7 @@ def policy_from_document(
         protocols=protocols,
         severity=severity,
         ignores=ignores,
+        accepts=accepts,
     )
 
 

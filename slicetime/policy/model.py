@@ -15,6 +15,7 @@ __all__ = [
     "EXPECTATION_KEYS",
     "INVALID_CODE",
     "POLICY_FILENAME",
+    "AcceptEntry",
     "ExpectedProtocol",
     "IgnoreEntry",
     "Policy",
@@ -120,6 +121,23 @@ class IgnoreEntry:
 
 
 @dataclass(frozen=True)
+class AcceptEntry:
+    """One ``[[accept]]`` entry (or one ``correct --accept CODE[:PATTERN]``): ``correct``
+    goes ahead on the runs ``paths`` select despite findings of ``codes`` that put their
+    timing in doubt (exact codes, never patterns: a doubt is accepted by name).
+    ``given`` is how outputs name the acceptance (``--accept ...`` or the policy entry)."""
+
+    index: int
+    codes: tuple[str, ...]
+    reason: str
+    paths: tuple[str, ...] = ("**",)
+    given: str = ""
+
+    def covers(self, path: str, code: str) -> bool:
+        return code in self.codes and any(path_matches(p, path) for p in self.paths)
+
+
+@dataclass(frozen=True)
 class Policy:
     """A loaded lab policy. ``file`` is how messages name the policy file."""
 
@@ -128,6 +146,7 @@ class Policy:
     protocols: tuple[ExpectedProtocol, ...] = ()
     severity: Mapping[str, Severity] = dataclasses.field(default_factory=dict)
     ignores: tuple[IgnoreEntry, ...] = ()
+    accepts: tuple[AcceptEntry, ...] = ()
 
     def severity_for(self, code: str) -> Severity | None:
         """The lab's severity for ``code``: an exact key, else the first matching pattern."""

@@ -350,6 +350,7 @@ def patched_prefix(
     bitpix: int,
     slope: float,
     inter: float,
+    volumes: int | None = None,
 ) -> bytes:
     """The input header bytes with the fields a corrected image changes.
 
@@ -358,7 +359,8 @@ def patched_prefix(
     hold); ``slice_code``, ``slice_start``, ``slice_end`` and
     ``slice_duration`` are reset to 0 so the corrected image no longer claims a
     slice acquisition order (nothing downstream corrects it twice). Everything
-    else (affine, units, ``dim_info``, intent, description, extensions) is kept.
+    else (affine, units, ``dim_info``, intent, description, extensions) is kept,
+    except ``dim[4]`` when ``volumes`` is given (leading volumes left out).
     """
     fields = _PATCH_1 if header.version == 1 else _PATCH_2
     values = {
@@ -376,6 +378,10 @@ def patched_prefix(
     out = bytearray(prefix)
     for name, (offset, fmt) in fields.items():
         struct.pack_into(header.byte_order + fmt, out, offset, values[name])
+    if volumes is not None:
+        offset, fmt = HEADER_LAYOUT[header.version]["dim"]  # "8h" or "8q": dim[4] is 5th
+        struct.pack_into(header.byte_order + fmt[1:], out,
+                         offset + 4 * struct.calcsize(fmt[1:]), volumes)
     return bytes(out)
 
 

@@ -81,6 +81,7 @@ def _scheme_text(value: Hashable) -> str:
 
 @dataset_rule(
     "dataset/outlier-scheme",
+    timing_in_doubt=True,
     title="a run's scheme differs from the other runs of its task and acquisition",
     severity=W,
     rationale=(
@@ -152,6 +153,7 @@ def _echo_family(record: RunRecord) -> tuple[Any, ...] | None:
 
 @dataset_rule(
     "dataset/echo-mismatch",
+    timing_in_doubt=True,
     title="echoes or parts of one run disagree on timing",
     severity=E,
     rationale=(

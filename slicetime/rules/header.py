@@ -119,6 +119,7 @@ def time_units(record: RunRecord) -> Iterator[Hit]:
 
 @run_rule(
     "axis/dim-info-mismatch",
+    timing_in_doubt=True,
     title="the slice axis disagrees with the header's dim_info",
     severity=W,
     rationale=(
@@ -152,6 +153,7 @@ def dim_info_mismatch(record: RunRecord) -> Iterator[Hit]:
 
 @run_rule(
     "header/slice-code-mismatch",
+    timing_in_doubt=True,
     fixable=True,
     title="the header's slice_code describes another order than SliceTiming",
     severity=W,

@@ -108,16 +108,20 @@ def run_rule(
     checked: Checked = "metadata",
     fixable: bool = False,
     also_severities: Iterable[Severity] = (),
+    timing_in_doubt: bool = False,
 ) -> Callable[[RunCheck], RunCheck]:
     """Register a check over one run. ``subsumes``: codes that follow from this one's
     finding on the same run and field (see :func:`fold_consequences`); ``checked``:
     where the check happens (:data:`CHECKED`); ``fixable``: ``slicetime fix`` repairs
     it (:mod:`slicetime.rules.repairs`); ``also_severities``: severities a hit may
-    state instead of ``severity`` (``Hit.severity``)."""
+    state instead of ``severity`` (``Hit.severity``); ``timing_in_doubt``: a finding
+    puts the slice times in doubt, so ``correct`` refuses the run unless the doubt is
+    accepted (``Rule.timing_in_doubt``)."""
 
     def decorate(check: RunCheck) -> RunCheck:
         _register(Rule(code, title, severity, rationale, fix, "run", check, standard,
-                       frozenset(subsumes), checked, fixable, frozenset(also_severities)))
+                       frozenset(subsumes), checked, fixable, frozenset(also_severities),
+                       timing_in_doubt))
         return check
 
     return decorate
@@ -126,14 +130,15 @@ def run_rule(
 def dataset_rule(
     code: str, *, title: str, severity: Severity, rationale: str, fix: str | None = None,
     checked: Checked = "dataset", fixable: bool = False,
-    also_severities: Iterable[Severity] = (),
+    also_severities: Iterable[Severity] = (), timing_in_doubt: bool = False,
 ) -> Callable[[DatasetCheck], DatasetCheck]:
     """Register a check over all runs of a dataset (keywords as :func:`run_rule`)."""
 
     def decorate(check: DatasetCheck) -> DatasetCheck:
         _register(Rule(code, title, severity, rationale, fix, "dataset", check,
                        checked=checked, fixable=fixable,
-                       also_severities=frozenset(also_severities)))
+                       also_severities=frozenset(also_severities),
+                       timing_in_doubt=timing_in_doubt))
         return check
 
     return decorate

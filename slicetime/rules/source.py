@@ -119,6 +119,7 @@ def unreadable(record: RunRecord) -> Iterator[Hit]:
 
 @run_rule(
     "source/geometry-differs",
+    timing_in_doubt=True,
     checked="source",
     title="the run's slices do not line up with its source series",
     severity=W,
@@ -169,6 +170,7 @@ def _where(corr: Correspondence, series: SeriesTiming) -> str:
 
 @run_rule(
     "source/times-absent",
+    timing_in_doubt=True,
     fixable=True,
     checked="source",
     title="the sidecar has no SliceTiming but the source series records it",
@@ -220,6 +222,7 @@ def _compare(record: RunRecord) -> tuple[str, dict[str, object]] | None:
 
 @run_rule(
     "source/reversed",
+    timing_in_doubt=True,
     fixable=True,
     checked="source",
     title="the sidecar's slice times run in the opposite direction to the source's",
@@ -241,6 +244,7 @@ def reversed_times(record: RunRecord) -> Iterator[Hit]:
 
 @run_rule(
     "source/times-differ",
+    timing_in_doubt=True,
     fixable=True,
     checked="source",
     title="the sidecar's slice times disagree with the source series",
@@ -300,6 +304,7 @@ def source_multiband(series: SeriesTiming) -> int | None:
 
 @run_rule(
     "source/multiband-differs",
+    timing_in_doubt=True,
     fixable=True,
     checked="source",
     title="MultibandAccelerationFactor differs from the source's excitation groups",

@@ -406,6 +406,7 @@ def unrecognised(record: RunRecord) -> Iterator[Hit]:
 
 @run_rule(
     "scheme/multiband-mismatch",
+    timing_in_doubt=True,
     fixable=True,
     title="MultibandAccelerationFactor disagrees with the slice times",
     severity=E,

@@ -26,6 +26,7 @@ _HOW = (
 
 reader_code(
     "verify/contradicted",
+    timing_in_doubt=True,
     checked="data",
     title="the image data fit another slice order clearly better than the claimed one",
     severity=Severity.WARNING,

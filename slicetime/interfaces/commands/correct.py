@@ -43,7 +43,20 @@ def _engine_names() -> Sequence[str]:
               help="Store the input's data type (rounded, clipped with a warning) instead of "
               "float32.")
 @click.option("--force", is_flag=True,
-              help="Correct runs whose audit has errors (never runs without slice timing).")
+              help="Correct runs whose audit has errors that do not put the slice times in "
+              "doubt (never runs without slice timing, with doubted timing, or that may not "
+              "be interpolated).")
+@click.option("--accept", "accepts", multiple=True, metavar="CODE[:PATTERN]",
+              help="Correct despite a finding of CODE that puts the slice times in doubt, on "
+              "the runs whose path (relative to the dataset root) matches PATTERN (default: "
+              "every run). Repeatable; recorded in each output. The lab policy's [[accept]] "
+              "does the same.")
+@click.option("--verify", "verify_data", is_flag=True,
+              help="Check each run's claimed slice order against its image data first; a "
+              "contradicted claim puts the timing in doubt (slower).")
+@click.option("--omit-leading", "omit_leading", type=click.IntRange(min=0), default=0,
+              metavar="N", help="Leave the first N volumes out of the outputs (they still "
+              "help interpolate the others); written as NumberOfVolumesDiscardedByUser.")
 @click.option("--max-memory", "max_memory", default=None, metavar="SIZE",
               help="Keep the working memory under SIZE (e.g. 512M, 2G); larger runs are "
               "buffered in a scratch file under --out.")
@@ -64,6 +77,9 @@ def correct(
     desc: str,
     keep_dtype: bool,
     force: bool,
+    accepts: tuple[str, ...],
+    verify_data: bool,
+    omit_leading: int,
     max_memory: str | None,
     jobs: int | None,
     scheduler: str | None,
@@ -87,6 +103,7 @@ def correct(
     from slicetime.interfaces.terminal import make_console, progress_reporter, render_correct
     from slicetime.pipelines.correct import CorrectInterrupted, CorrectOptions, correct_paths
     from slicetime.pipelines.memory import parse_size
+    from slicetime.rules.correction import parse_accept
     from slicetime.words import count
 
     try:
@@ -99,16 +116,21 @@ def correct(
             cap = parse_size(max_memory)
         except ValueError as exc:
             raise UserError(f"--max-memory: {exc}") from None
+    try:
+        accepted = tuple(parse_accept(text) for text in accepts)
+    except ValueError as exc:
+        raise UserError(f"--accept: {exc}") from None
     options = CorrectOptions(out=out, method=method, reference=choice, desc=desc,
                              keep_dtype=keep_dtype, force=force, max_memory=cap, threads=0,
-                             mix_inputs=mix_inputs)
+                             mix_inputs=mix_inputs, accepts=accepted,
+                             omit_leading=omit_leading)
     with run_executor(jobs, scheduler, light=False) as executor, \
             progress_reporter("correcting") as progress:
         try:
             result = correct_paths(
                 list(paths), options, progress=progress, policy_file=policy_file,
                 include_derivatives=include_derivatives, include_sourcedata=include_sourcedata,
-                include_hidden=include_hidden, executor=executor,
+                include_hidden=include_hidden, executor=executor, verify=verify_data,
             )
         except CorrectInterrupted as stop:
             render_correct(stop.result, make_console(sys.stderr))
