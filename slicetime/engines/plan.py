@@ -288,9 +288,11 @@ def window_fields(schedule: SliceSchedule, metadata_keys: set[str] | frozenset[s
     (``metadata_keys``), so that it still tells the acquisition window once its
     ``SliceTiming`` is gone:
 
-    * ``VolumeTiming`` without ``AcquisitionDuration``: ``AcquisitionDuration`` (BIDS
-      requires it, or ``SliceTiming``, beside ``VolumeTiming``), the time the slices
-      occupy (:func:`occupied_span`), within the run's window;
+    * ``VolumeTiming`` without ``FrameAcquisitionDuration`` (or the older
+      ``AcquisitionDuration``): ``FrameAcquisitionDuration`` (BIDS requires it, or
+      ``SliceTiming``, beside ``VolumeTiming``; ``AcquisitionDuration`` there is
+      deprecated), the time the slices occupy (:func:`occupied_span`), within the
+      run's window;
     * ``RepetitionTime`` without ``DelayTime`` or ``AcquisitionDuration`` whose slices
       leave more than one excitation step of the TR silent (a sparse run described by
       its slice times alone): ``DelayTime``, the silent part of the TR.
@@ -301,9 +303,9 @@ def window_fields(schedule: SliceSchedule, metadata_keys: set[str] | frozenset[s
         return {}
     span = min(span, window)
     if schedule.volume_times is not None:
-        if "AcquisitionDuration" in metadata_keys:
+        if metadata_keys & {"FrameAcquisitionDuration", "AcquisitionDuration"}:
             return {}
-        return {"AcquisitionDuration": round(span, 6)}
+        return {"FrameAcquisitionDuration": round(span, 6)}
     tr = schedule.repetition_time
     if tr is None or metadata_keys & {"DelayTime", "AcquisitionDuration"}:
         return {}
