@@ -120,17 +120,18 @@ reader_code(
     rationale=(
         "Near the first and last volumes every method has to invent what lies beyond the "
         "run, and its error there is large: measured for a shift of half a TR (benchmarks/"
-        "bench_edges.py, table in the README), the whole-run error is 56 % of doing nothing "
-        "at 2 volumes, 32 % at 4 and 28 % at 5, and falls to 20 % or less from "
-        "6 volumes on for the fourier, sinc and cubic methods. Below that a correction "
-        "does more harm than it seems to."
+        "bench_edges.py, table in the README), the whole-run error is 57 % of doing nothing "
+        "at 2 volumes, 33 % at 4 and 24 to 28 % at 5, about a fifth (19 to 21 %) at 6 and "
+        "less from 8 on, for the fourier, sinc and cubic methods. Below 6 volumes a "
+        "correction gives little and looks like more than it is."
     ),
     fix="Correct only complete runs; a run this short is usually a test or a broken export.",
 )
 
 #: the fewest volumes a run needs to be corrected: from the measured whole-run error
 #: (benchmarks/bench_edges.py; README "The run's ends"), 6 volumes is the first count at
-#: which fourier, sinc and cubic stay at or under a fifth of the uncorrected error
+#: which fourier, sinc and cubic come down to about a fifth of the uncorrected error
+#: (0.19 to 0.21; 0.24 to 0.28 at 5)
 MIN_VOLUMES = 6
 
 #: the suffixes whose volumes sample one slowly varying signal (BIDS: func datatype)

@@ -259,6 +259,10 @@ def explain(code: str) -> str:
         lines += ["", f"what to do: {rule.fix.strip()}"]
     if rule.fixable:
         lines += ["", "slicetime fix repairs this."]
+    if rule.timing_in_doubt:
+        lines += ["", "it puts the slice times in doubt: slicetime correct refuses a run with "
+                  f"this finding (at warning or above) unless you accept it: --accept "
+                  f"{rule.code}[:PATTERN], or an [[accept]] entry in the lab policy."]
     if rule.standard:
         lines += ["", f"standard: {rule.standard}"]
     if rule.subsumes:
