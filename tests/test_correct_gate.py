@@ -241,3 +241,17 @@ def test_a_run_shorter_than_the_minimum_is_refused_naming_its_volumes(
     image = nib.load(output_of(tmp_path / "out", REL.replace("01", "02")))
     assert image.shape[3] == MIN_VOLUMES
     assert np.isfinite(np.asarray(image.dataobj)).all()
+
+
+def test_a_doubt_the_policy_ignores_still_needs_accepting(ds: Path, tmp_path: Path) -> None:
+    # an [[ignore]] hides a finding from the reports; it does not make the timing true
+    build_run(ds, REL, SEQUENTIAL, slice_code=2, slice_duration=0.25)
+    (ds / "slicetime-policy.toml").write_text(
+        'version = 1\n[[ignore]]\ncodes = ["header/*"]\nreason = "headers are converter guesses"\n')
+    code, doc, _ = correct_json(ds, "--out", tmp_path / "out")
+    assert code == 1
+    assert doc["runs"][0]["blocking_findings"][0]["code"] == "header/slice-code-mismatch"
+    code, doc, _ = correct_json(ds, "--out", tmp_path / "out", "--accept",
+                                "header/slice-code-mismatch")
+    assert code == 0 and doc["runs"][0]["accepted_doubts"][0]["accepted_by"] == (
+        "--accept header/slice-code-mismatch")

@@ -359,7 +359,10 @@ def _refusal(
             f"the run has {shape[3]} volumes; correction needs at least {MIN_VOLUMES} (the "
             "error near a run's ends is too large below that; slicetime explain "
             "correct/too-few-volumes)", code=TOO_FEW_CODE, field="dim")
-    verdict = judge_trust(record.path, run.findings, options.accepts_for(record.root))
+    # a finding the lab policy ignores is hidden from the reports, not made trustworthy:
+    # only an explicit acceptance lifts a doubt
+    seen = [*run.findings, *(item.finding for item in run.ignored)]
+    verdict = judge_trust(record.path, seen, options.accepts_for(record.root))
     outcome.accepted = [
         {"code": f.code, "message": f.message, "accepted_by": entry.given,
          "reason": entry.reason} for f, entry in verdict.accepted]
