@@ -561,6 +561,13 @@ def _accept_problems(entries: Sequence[Any]) -> list[tuple[list[str | int], str]
     return problems
 
 
+def _entry_fields(index: int, entry: Mapping[str, Any]) -> dict[str, Any]:
+    """The fields an ``[[ignore]]`` and an ``[[accept]]`` entry share, as written."""
+    return {"index": index, "codes": tuple(entry["codes"]),
+            "reason": " ".join(entry["reason"].split()),
+            "paths": tuple(entry.get("paths", ["**"]))}
+
+
 def policy_from_document(
     data: Mapping[str, Any], *, file: str, known_codes: Collection[str]
 ) -> Policy:
@@ -588,25 +595,9 @@ def policy_from_document(
     problems += _accept_problems(raw_accepts)
     _raise_first(file, data, problems)
 
-    accepts = tuple(
-        AcceptEntry(
-            index=i,
-            codes=tuple(entry["codes"]),
-            reason=" ".join(entry["reason"].split()),
-            paths=tuple(entry.get("paths", ["**"])),
-            given=f"{Path(file).name} accept[{i}]",
-        )
-        for i, entry in enumerate(raw_accepts)
-    )
-    ignores = tuple(
-        IgnoreEntry(
-            index=i,
-            codes=tuple(entry["codes"]),
-            reason=" ".join(entry["reason"].split()),
-            paths=tuple(entry.get("paths", ["**"])),
-        )
-        for i, entry in enumerate(raw_ignores)
-    )
+    accepts = tuple(AcceptEntry(**_entry_fields(i, entry), given=f"{Path(file).name} accept[{i}]")
+                    for i, entry in enumerate(raw_accepts))
+    ignores = tuple(IgnoreEntry(**_entry_fields(i, entry)) for i, entry in enumerate(raw_ignores))
     return Policy(
         file=file,
         version=int(data["version"]),
