@@ -326,9 +326,23 @@ def test_two_fitting_series_without_series_number_are_ambiguous(tmp_path: Path) 
     root, _, _ = resting_tree(tmp_path, [0.0] * 32, series_number=False)
     twin = root / "sourcedata" / "sub-01" / "rest2"
     twin.mkdir()
+    ds = pydicom.dcmread(RESTING)
+    ds.SeriesInstanceUID = generate_uid()  # another series (DICOM PS3.3 C.7.3.1)
+    for i in range(3):
+        ds.save_as(twin / f"{i + 1:03d}.dcm")
+    assert codes(audit_paths([root])) == ["source/ambiguous"]
+
+
+def test_one_series_in_two_folders_is_one_series(tmp_path: Path) -> None:
+    # grouped by SeriesInstanceUID (DICOM PS3.3 C.7.3.1), not by folder: the same three
+    # volumes linked into a second folder make one series of six volumes, which no
+    # longer fits the three-volume run
+    root, _, _ = resting_tree(tmp_path, [0.0] * 32, series_number=False)
+    twin = root / "sourcedata" / "sub-01" / "rest2"
+    twin.mkdir()
     for i in range(3):
         os.symlink(RESTING, twin / f"{i + 1:03d}.dcm")
-    assert codes(audit_paths([root])) == ["source/ambiguous"]
+    assert codes(audit_paths([root])) == ["source/no-match"]
 
 
 # --------------------------------------------------------------------------- head to foot

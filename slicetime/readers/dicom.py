@@ -1,33 +1,37 @@
 """Per-slice acquisition times from a source DICOM series (headers only).
 
-:func:`read_series` reads one volume of a series and returns a
-:class:`~slicetime.model_source.SeriesTiming`. It dispatches on what the file
-holds, never on who made it:
+:func:`read_group` reads one volume of a series (the objects of one
+SeriesInstanceUID, found by :func:`slicetime.readers.dicom_files.catalogue`)
+and returns a :class:`~slicetime.model_source.SeriesTiming`. It dispatches on
+what the first object holds, never on who made it:
 
-* a **mosaic** (several tiles in one image) whose vendor private header holds
+* an **enhanced multi-frame** object (``PerFrameFunctionalGroupsSequence``,
+  DICOM PS3.3 C.7.6.16): per-frame ``FrameAcquisitionDateTime`` (else
+  ``FrameReferenceDateTime``) of the frames of the first temporal position,
+  placed by their ``PlanePositionSequence``;
+* a **mosaic** (several tiles in one image), only when it has tiles to read: a
+  private image header whose ``NumberOfImagesInMosaic`` has an entry, or whose
   ``MosaicRefAcqTimes`` (ms from the first excitation, one per tile in tile
-  order) and ``SliceNormalVector`` (the direction in which the tiles advance):
-  one file is read; tile *t* lies at ``position(tile 0) + t × spacing`` along
-  that normal, so a normal pointing against the cross product of the row and
-  column cosines (a head-to-foot stack) reverses the tiles along the array's
-  slice axis;
-* an **enhanced multi-frame** file (``PerFrameFunctionalGroupsSequence``):
-  per-frame ``FrameAcquisitionDateTime`` (else ``FrameReferenceDateTime``) of
-  the frames of the first temporal position, with ``PlanePositionSequence``;
-* **classic** one-slice-per-file series: the files of one volume (read in name
-  order until the acquisition changes or a position repeats), with the
-  per-instance Trigger Time (0018,1060) when it varies within the volume, else
-  AcquisitionTime (0008,0032); ordered by ImagePositionPatient along the
-  normal of ImageOrientationPatient.
+  order) has entries in an image typed ``MOSAIC``. ``SliceNormalVector`` gives
+  the direction in which the tiles advance: tile *t* lies at
+  ``position(tile 0) + t × spacing`` along it, so a normal pointing against the
+  cross product of the row and column cosines (a head-to-foot stack) reverses
+  the tiles along the array's slice axis. A private header whose keys are there
+  but empty (localizers, field maps, scouts) is not a mosaic;
+* **classic** one-slice-per-file series (DICOM PS3.3 C.7.6.2 Image Plane,
+  C.8.3.1 MR Image): the objects of one volume (in name order until the
+  acquisition changes or a position repeats; by InstanceNumber when names are
+  not in acquisition order) with the same ImageOrientationPatient, ordered by
+  ImagePositionPatient along its normal; times from the per-object Trigger
+  Time (0018,1060) when it varies within the volume, else AcquisitionTime
+  (0008,0032), else AcquisitionDateTime (0008,002A).
 
-RepetitionTime is (0018,0080), in ms. Tag meanings follow DICOM PS3.3 (C.7.6.2
-Image Plane, C.8.3.1 MR Image, C.7.6.16 Multi-frame Functional Groups).
+A series that records no per-slice times is not an error: its timing has
+``times`` None and a note saying why. RepetitionTime is (0018,0080), in ms.
 
-Files are read with ``stop_before_pixels`` and large values deferred, so pixel
-data and oversized private blocks are never loaded. A file that cannot be used
-(not DICOM, truncated, a required tag missing, a private block too large)
-raises :class:`~slicetime.readers.errors.ReadError` with code
-``source/unreadable``; callers turn it into a finding.
+A file that cannot be used (not DICOM, truncated, a required tag missing, a
+private block too large) raises :class:`~slicetime.readers.errors.ReadError`
+with code ``source/unreadable``; callers turn it into a finding.
 """
 
 from __future__ import annotations
@@ -37,90 +41,62 @@ import math
 import os
 import re
 import warnings
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from typing import Any
 
 from slicetime.model import Source
 from slicetime.model_source import SeriesTiming
+from slicetime.readers.dicom_files import (
+    DicomObject,
+    SeriesGroup,
+    catalogue,
+    fail,
+    full_header,
+    is_archive_name,
+    is_dicom_path,
+    natural,
+    read_object,
+)
 from slicetime.readers.errors import ReadError
 
 __all__ = [
     "MAX_PRIVATE_BYTES",
     "is_dicom_file",
+    "read_all_series",
+    "read_group",
     "read_series",
     "series_files",
-    "series_number",
 ]
 
-#: a vendor private header larger than this is refused (real ones are a few tens of kB)
+#: a private image header larger than this is refused (real ones are a few tens of kB)
 MAX_PRIVATE_BYTES = 4 * 1024 * 1024
-#: values larger than this stay on disk until asked for
-_DEFER = 64 * 1024
-#: at most this many files are read to isolate one volume of a classic series
+#: at most this many objects are looked at to isolate one volume of a classic series
 MAX_CLASSIC_FILES = 2048
-_NOT_DICOM_SUFFIXES = (
-    ".json", ".txt", ".tsv", ".csv", ".nii", ".nii.gz", ".gz", ".zip", ".tar", ".bz2",
-    ".xz", ".md", ".log", ".html", ".pdf", ".png", ".jpg", ".jpeg", ".xml", ".py",
-)
-_DICOM_SUFFIXES = (".dcm", ".ima", ".dicom")
-CODE = "source/unreadable"
-_HINT = ("check the series under sourcedata/ (a complete copy from the scanner or archive), "
-         "or point the run at the right series with --source-map")
-
-
-def _natural(name: str) -> list[Any]:
-    return [int(p) if p.isdigit() else p for p in re.split(r"(\d+)", name)]
+_fail = fail
 
 
 def series_files(folder: str) -> list[str]:
-    """The candidate DICOM files of a series folder, in natural name order."""
+    """The candidate DICOM files of a folder (plain, compressed or archives), natural order."""
     names = []
     with os.scandir(folder) as entries:
         for entry in entries:
-            name = entry.name
-            if name.startswith(".") or name.lower().endswith(_NOT_DICOM_SUFFIXES):
-                continue
             try:
-                if entry.is_file():
-                    names.append(name)
+                if entry.is_file() and (is_archive_name(entry.name) or
+                                        is_dicom_path(entry.path)):
+                    names.append(entry.name)
             except OSError:
                 continue
-    names.sort(key=_natural)
+    names.sort(key=natural)
     return [os.path.join(folder, n) for n in names]
 
 
 def is_dicom_file(path: str) -> bool:
-    """True when the file has the DICOM part-10 marker, or a DICOM file name suffix."""
-    if path.lower().endswith(_DICOM_SUFFIXES):
-        return True
-    try:
-        with open(path, "rb") as fh:
-            head = fh.read(132)
-    except OSError:
-        return False
-    return head[128:132] == b"DICM"
-
-
-def _fail(shown: str, message: str, field: str | None = None, **evidence: Any) -> ReadError:
-    return ReadError(CODE, shown, field, f"{shown}: {message}", evidence=evidence, hint=_HINT)
+    """True for a DICOM file (marker or suffix, plain or gzip-compressed) or an archive."""
+    return is_archive_name(path) or is_dicom_path(path)
 
 
 def _read(path: str, shown: str, tags: Sequence[str] | None = None) -> Any:
-    """One file's header as a pydicom Dataset; ReadError for anything unusable."""
-    import pydicom
-    from pydicom.errors import InvalidDicomError
-
-    try:
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore")
-            return pydicom.dcmread(path, stop_before_pixels=True, defer_size=_DEFER,
-                                   specific_tags=list(tags) if tags else None)
-    except InvalidDicomError:
-        raise _fail(shown, "not a DICOM file (no DICM marker after the preamble)") from None
-    except OSError as exc:
-        raise _fail(shown, f"cannot read the file ({exc.strerror or exc})") from None
-    except Exception as exc:  # pydicom raises many types for damaged files
-        raise _fail(shown, f"damaged DICOM header ({type(exc).__name__}: {exc})") from None
+    return read_object(DicomObject(path), shown, tags)
 
 
 def _get(ds: Any, keyword: str, shown: str) -> Any:
@@ -231,7 +207,8 @@ def _relative(values: Sequence[float]) -> tuple[float, ...]:
 
 
 def _private_header(ds: Any, shown: str) -> dict[str, Any] | None:
-    """The vendor private image header's entries (name -> items), or None when absent."""
+    """The private image header's entries (name -> items), or None when absent. Damage is
+    an error only in an image typed MOSAIC (which needs it); elsewhere it is ignored."""
     for tag in list(ds.keys()):
         if tag.group != 0x0029 or (tag.element & 0xFF) != 0x10 or tag.element < 0x1000:
             continue
@@ -251,6 +228,8 @@ def _private_header(ds: Any, shown: str) -> dict[str, Any] | None:
 
             header = csareader.get_csa_header(ds, "image")
     except Exception as exc:
+        if not _is_mosaic_type(ds):
+            return None
         raise _fail(shown, f"the vendor private header cannot be parsed ({type(exc).__name__})",
                     "vendor private header") from None
     if not header:
@@ -258,12 +237,20 @@ def _private_header(ds: Any, shown: str) -> dict[str, Any] | None:
     return {name: entry.get("items", []) for name, entry in header.get("tags", {}).items()}
 
 
-def _is_mosaic(ds: Any, private: dict[str, Any] | None) -> bool:
+def _is_mosaic_type(ds: Any) -> bool:
     image_type = ds.get("ImageType")
-    types = [str(t).upper() for t in image_type] if image_type else []
-    if private and ("MosaicRefAcqTimes" in private or private.get("NumberOfImagesInMosaic")):
+    return "MOSAIC" in ([str(t).upper() for t in image_type] if image_type else [])
+
+
+def _has_tiles(ds: Any, private: dict[str, Any] | None) -> bool:
+    """A mosaic with tiles to read: NumberOfImagesInMosaic has an entry, or an image typed
+    MOSAIC has MosaicRefAcqTimes entries. Keys present but empty are no mosaic."""
+    if not private:
+        return False
+    count = _int((private.get("NumberOfImagesInMosaic") or [None])[0])
+    if count is not None and count > 0:
         return True
-    return "MOSAIC" in types
+    return bool(private.get("MosaicRefAcqTimes")) and _is_mosaic_type(ds)
 
 
 def _common(ds: Any, shown: str) -> dict[str, Any]:
@@ -289,7 +276,7 @@ def _slice_gap(ds: Any, shown: str) -> float | None:
 # --------------------------------------------------------------------------- mosaic
 
 
-def _mosaic(ds: Any, private: dict[str, Any] | None, files: Sequence[str], series: str,
+def _mosaic(ds: Any, private: dict[str, Any] | None, files: Sequence[object], series: str,
             shown: str, first: str) -> SeriesTiming:
     private = private or {}
     _, _, cross = _orientation(_get(ds, "ImageOrientationPatient", shown), shown)
@@ -360,7 +347,7 @@ def _frame_value(frame: Any, shared: Any, group: str, keyword: str) -> Any:
     return None
 
 
-def _enhanced(ds: Any, files: Sequence[str], series: str, shown: str,
+def _enhanced(ds: Any, files: Sequence[object], series: str, shown: str,
               first: str) -> SeriesTiming:
     frames = list(ds.get("PerFrameFunctionalGroupsSequence") or [])
     if not frames:
@@ -436,77 +423,81 @@ def _enhanced(ds: Any, files: Sequence[str], series: str, shown: str,
 
 # --------------------------------------------------------------------------- classic
 
-_CLASSIC_TAGS = (
-    "ImagePositionPatient", "ImageOrientationPatient", "AcquisitionTime", "TriggerTime",
-    "AcquisitionNumber", "TemporalPositionIdentifier", "InstanceNumber", "SeriesNumber",
-    "SeriesDescription", "RepetitionTime", "Rows", "Columns", "PixelSpacing",
-    "SliceThickness", "SpacingBetweenSlices", "SeriesInstanceUID",
-)
+def _same_plane(ds: Any, row: Sequence[float], col: Sequence[float]) -> bool:
+    iop = _floats(ds.get("ImageOrientationPatient"), 6, "ImageOrientationPatient", "",
+                  required=False)
+    return iop is not None and all(abs(a - b) < 1e-4 for a, b in zip(iop, (*row, *col),
+                                                                        strict=True))
 
 
-def _volume_of(datasets: Sequence[tuple[str, Any]], normal: Sequence[float],
-               shown_of: Any) -> list[tuple[str, Any, float]]:
-    """The leading slices that belong to the first file's volume."""
+def _volume_of(datasets: Sequence[tuple[str, Any]], normal: Sequence[float]
+               ) -> list[tuple[str, Any, float]]:
+    """The leading slices that belong to the first object's volume."""
     first = datasets[0][1]
     key = (first.get("AcquisitionNumber"), first.get("TemporalPositionIdentifier"))
     kept: list[tuple[str, Any, float]] = []
-    for path, ds in datasets:
+    for shown, ds in datasets:
         if (ds.get("AcquisitionNumber"), ds.get("TemporalPositionIdentifier")) != key:
             break
-        ipp = _floats(ds.get("ImagePositionPatient"), 3, "ImagePositionPatient",
-                      shown_of(path))
+        ipp = _floats(ds.get("ImagePositionPatient"), 3, "ImagePositionPatient", shown)
         assert ipp is not None
         position = _dot(ipp, normal)
         if any(abs(position - p) < 1e-3 for _, _, p in kept):
             break
-        kept.append((path, ds, position))
+        kept.append((shown, ds, position))
     return kept
 
 
-def _classic(ds0: Any, files: Sequence[str], series: str, shown_of: Any) -> SeriesTiming:
-    first_shown = shown_of(files[0])
-    _, _, normal = _orientation(ds0.get("ImageOrientationPatient"), first_shown)
-    datasets: list[tuple[str, Any]] = [(files[0], ds0)]
-    kept = _volume_of(datasets, normal, shown_of)
-    for path in files[1:MAX_CLASSIC_FILES]:
-        datasets.append((path, _read(path, shown_of(path), _CLASSIC_TAGS)))
-        now = _volume_of(datasets, normal, shown_of)
-        if len(now) == len(kept):
-            break  # this file starts the next volume
-        kept = now
-    if len(kept) == 1 and len(files) > 2:
-        # names not in acquisition order: read the files and order them by InstanceNumber
-        for path in files[len(datasets):MAX_CLASSIC_FILES]:
-            datasets.append((path, _read(path, shown_of(path), _CLASSIC_TAGS)))
-        datasets.sort(key=lambda item: (_int(item[1].get("InstanceNumber")) or 0))
-        kept = _volume_of(datasets, normal, shown_of)
-    kept.sort(key=lambda item: item[2])
+def _classic(group: SeriesGroup, series: str, shown_of: Callable[[DicomObject], str]
+             ) -> SeriesTiming:
+    ds0 = group.slim[0]
+    first_shown = shown_of(group.objects[0])
+    row, col, normal = _orientation(ds0.get("ImageOrientationPatient"), first_shown)
     notes: list[str] = []
+    planes = [(shown_of(o), ds) for o, ds in zip(group.objects, group.slim, strict=True)
+              if ds.get("ImagePositionPatient") is not None and _same_plane(ds, row, col)]
+    if len(planes) < len(group.objects):
+        notes.append(f"{len(group.objects) - len(planes)} of {len(group.objects)} images lie "
+                     "in another plane and were left out")
+    candidates = planes[:MAX_CLASSIC_FILES]
+    kept = _volume_of(candidates, normal)
+    if len(kept) == 1 and len(candidates) > 2:
+        # names not in acquisition order: order the objects by InstanceNumber
+        ordered = sorted(candidates, key=lambda item: _int(item[1].get("InstanceNumber")) or 0)
+        kept = _volume_of(ordered, normal)
+    read = [shown for shown, _ in candidates[:len(kept) + 1]]
+    kept.sort(key=lambda item: item[2])
     times: tuple[float, ...] | None = None
     source: Source | None = None
     trigger = [_number(ds.get("TriggerTime")) for _, ds, _ in kept]
     clock = [_tm_seconds(ds.get("AcquisitionTime")) for _, ds, _ in kept]
+    stamp = [_dt_seconds(ds.get("AcquisitionDateTime")) for _, ds, _ in kept]
     if len(kept) > 1 and all(t is not None for t in trigger) and len(set(trigger)) > 1:
         times = tuple(float(t) / 1000.0 for t in trigger)  # type: ignore[arg-type]
         source = Source("dicom", "TriggerTime (0018,1060), per file", first_shown)
     elif len(kept) > 1 and all(t is not None for t in clock) and len(set(clock)) > 1:
         times = _relative([t for t in clock if t is not None])
         source = Source("dicom", "AcquisitionTime (0008,0032), per file", first_shown)
+    elif len(kept) > 1 and all(t is not None for t in stamp) and len(set(stamp)) > 1:
+        times = _relative([t for t in stamp if t is not None])
+        source = Source("dicom", "AcquisitionDateTime (0008,002A), per file", first_shown)
+    elif len(kept) == 1:
+        notes.append("one image per volume: a single slice has no slice order")
     else:
-        notes.append("the files of one volume carry no differing AcquisitionTime or Trigger "
-                     "Time")
+        notes.append("the images of one volume carry no differing AcquisitionTime, "
+                     "AcquisitionDateTime or Trigger Time")
     positions = tuple(p for _, _, p in kept)
     gap = abs(positions[1] - positions[0]) if len(positions) > 1 else _slice_gap(
         ds0, first_shown)
     n = len(kept)
+    total = len(planes)
     return SeriesTiming(
-        series=series, layout="classic",
-        files_read=tuple(shown_of(p) for p, _ in datasets), n_files=len(files),
+        series=series, layout="classic", files_read=tuple(read), n_files=len(group.objects),
         normal=normal, positions=positions,
         labels=tuple(f"instance {_int(ds.get('InstanceNumber')) or '?'}" for _, ds, _ in kept),
         times=times, times_source=source, rows=_int(ds0.get("Rows")),
         columns=_int(ds0.get("Columns")), slice_spacing=gap,
-        n_volumes=len(files) // n if n and len(files) % n == 0 else None,
+        n_volumes=total // n if n and total % n == 0 else None,
         notes=tuple(notes), **_common(ds0, first_shown),
     )
 
@@ -514,50 +505,86 @@ def _classic(ds0: Any, files: Sequence[str], series: str, shown_of: Any) -> Seri
 # --------------------------------------------------------------------------- entry points
 
 
-def read_series(path: str, shown: str, root: str | None = None) -> SeriesTiming:
-    """One volume's slice times from a series folder (or a single DICOM file).
+def _shown_by(root: str | None) -> Callable[[DicomObject], str]:
+    def shown_of(obj: DicomObject) -> str:
+        return obj.shown(root)
+    return shown_of
 
-    ``shown`` names ``path`` in messages; files inside it are shown relative to
-    ``root`` when given. Raises ReadError (``source/unreadable``) for bad input.
+
+def _path_shown(root: str | None) -> Callable[[str], str]:
+    def shown_of(path: str) -> str:
+        return DicomObject(path).shown(root)
+    return shown_of
+
+
+def read_group(group: SeriesGroup, series: str, root: str | None = None) -> SeriesTiming:
+    """One volume's slice times from the objects of one series (see the module's text).
+
+    ``series`` names the series in messages and reports; objects are shown relative
+    to ``root`` when given. Raises ReadError (``source/unreadable``) for bad input.
     """
-
-    def shown_of(file: str) -> str:
-        if root is not None:
-            try:
-                return os.path.relpath(file, root).replace(os.sep, "/")
-            except ValueError:
-                return file
-        return file
-
-    if os.path.isdir(path):
-        try:
-            files = series_files(path)
-        except OSError as exc:
-            raise _fail(shown, f"cannot list the series folder ({exc.strerror or exc})") \
-                from None
-        if not files:
-            raise _fail(shown, "the series folder holds no DICOM files")
-    elif os.path.isfile(path):
-        files = [path]
-    else:
-        raise _fail(shown, "the series folder or file does not exist")
-    first = files[0]
-    ds = _read(first, shown_of(first))
+    shown_of = _shown_by(root)
+    first = shown_of(group.objects[0])
+    ds = full_header(group, first)
     if "PerFrameFunctionalGroupsSequence" in ds:
-        return _enhanced(ds, files, shown, shown_of(first), shown_of(first))
-    private = _private_header(ds, shown_of(first))
-    if _is_mosaic(ds, private):
-        return _mosaic(ds, private, files, shown, shown_of(first), shown_of(first))
-    if ds.get("ImagePositionPatient") is None:
-        raise _fail(shown_of(first), "ImagePositionPatient is missing (needed to place the "
-                    "slices)", "ImagePositionPatient")
-    return _classic(ds, files, shown, shown_of)
+        timing = _enhanced(ds, group.objects, series, first, first)
+    else:
+        private = _private_header(ds, first)
+        if _has_tiles(ds, private):
+            timing = _mosaic(ds, private, group.objects, series, first, first)
+        elif ds.get("ImagePositionPatient") is None:
+            raise _fail(first, "ImagePositionPatient is missing (needed to place the slices)",
+                        "ImagePositionPatient")
+        else:
+            timing = _classic(group, series, shown_of)
+    if group.neighbours:
+        import dataclasses
+
+        where = ", ".join(_path_shown(root)(f) for f in group.folders)
+        note = (f"{where} mixes {group.neighbours + 1} series: only the "
+                f"{len(group.objects)} images with SeriesInstanceUID {group.uid} were read")
+        timing = dataclasses.replace(timing, notes=(*timing.notes, note))
+    return timing
 
 
-def series_number(folder: str, shown: str) -> int | None:
-    """The SeriesNumber (0020,0011) of a series folder's first file (one tag read)."""
-    files = series_files(folder) if os.path.isdir(folder) else [folder]
-    if not files:
-        raise _fail(shown, "the series folder holds no DICOM files")
-    ds = _read(files[0], shown, ("SeriesNumber",))
-    return _int(ds.get("SeriesNumber"))
+def group_name(group: SeriesGroup, root: str | None = None) -> str:
+    """How people see a series: its folder, with its number when the folder mixes series."""
+    where = _path_shown(root)(group.folders[0]) if group.folders else "?"
+    return f"{where} ({_label(group)})" if group.neighbours else where
+
+
+def _label(group: SeriesGroup) -> str:
+    return (f"SeriesNumber {group.number}" if group.number is not None
+            else f"SeriesInstanceUID {group.uid}")
+
+
+def read_all_series(path: str, shown: str, root: str | None = None
+                    ) -> list[SeriesTiming | ReadError]:
+    """Every series in a DICOM file, an archive or a folder (not its subfolders)."""
+    if not os.path.exists(path):
+        raise _fail(shown, "the series folder or file does not exist")
+    try:
+        groups, problems = catalogue(path, _path_shown(root))
+    except OSError as exc:
+        raise _fail(shown, f"cannot list the series folder ({exc.strerror or exc})") from None
+    if not groups:
+        if problems:
+            raise problems[0]
+        raise _fail(shown, "holds no DICOM files")
+    out: list[SeriesTiming | ReadError] = []
+    for group in sorted(groups, key=lambda g: (g.number is None, g.number or 0,
+                                               natural(g.objects[0].shown(root)))):
+        name = shown if len(groups) == 1 else f"{shown} ({_label(group)})"
+        try:
+            out.append(read_group(group, name, root))
+        except ReadError as exc:
+            out.append(exc)
+    return out
+
+
+def read_series(path: str, shown: str, root: str | None = None) -> SeriesTiming:
+    """The first series of a folder, archive or file (see :func:`read_all_series`)."""
+    first = read_all_series(path, shown, root)[0]
+    if isinstance(first, ReadError):
+        raise first
+    return first

@@ -1,19 +1,23 @@
 """Finding a run's source DICOM series and reading what it says (the source cross-check).
 
-A run is matched to one series folder:
+A run is matched to one series: the DICOM objects that share a
+SeriesInstanceUID (DICOM PS3.3 C.7.3.1), wherever they lie: a folder is never
+taken for a series by itself, and one that mixes series is said so.
 
 1. an explicit map (``--source-map FILE``: a TSV of run path and series folder,
-   relative to the dataset root or absolute) always wins;
-2. otherwise the series folders under ``sourcedata/sub-X[/ses-Y]/`` (any depth;
-   a folder is a series when its first file is DICOM) are the candidates:
-   the sidecar's ``SeriesNumber`` picks the series with that number (several
-   with it are narrowed by geometry); without it, the geometry (slice count,
+   archive or file, relative to the dataset root or absolute) always wins (a
+   mapped folder holding several series is narrowed as below);
+2. otherwise the series under ``sourcedata/sub-X[/ses-Y]/`` (any depth; plain,
+   gzip-compressed and archived DICOM, see :mod:`slicetime.readers.dicom_files`)
+   are the candidates: the sidecar's ``SeriesNumber`` picks the series with that
+   number (several with it, e.g. sessions kept side by side, are narrowed by
+   geometry, TR and volume count); without it, the geometry (slice count,
    in-plane matrix, voxel size, orientation), TR and volume count must fit
    exactly one series.
 
 No match, or more than one, is reported as such, never guessed. One
-:class:`SourceIndex` per dataset root and chunk of runs caches folder listings,
-series numbers and series reads, so each series is read at most once per chunk.
+:class:`SourceIndex` per dataset root and chunk of runs caches the catalogue
+of series and their reads, so each series is read at most once per chunk.
 """
 
 from __future__ import annotations
@@ -23,17 +27,19 @@ import os
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Literal
+from typing import Any, Literal
 
 from slicetime.model import TIME_TOLERANCE, RunRecord
 from slicetime.model_source import SeriesTiming, SourceEvidence
-from slicetime.readers.dicom import is_dicom_file, read_series, series_files, series_number
+from slicetime.readers.dicom import group_name, read_all_series, read_group
+from slicetime.readers.dicom_files import SeriesGroup, catalogue, natural
 from slicetime.readers.errors import ReadError
 from slicetime.schemes.correspond import Mismatch, correspond
 
 __all__ = ["SourceIndex", "SourceOptions", "find_source", "load_source_map", "run_geometry"]
 
 SOURCEDATA = "sourcedata"
+Geometry = tuple[tuple[tuple[float, ...], ...], tuple[int, ...]]
 SIZE_TOLERANCE = 0.02  # relative, for voxel sizes
 
 
@@ -78,12 +84,12 @@ def load_source_map(path: Path) -> dict[str, str]:
     return mapping
 
 
-def run_geometry(path: str) -> tuple[tuple[tuple[float, ...], ...], tuple[int, ...]] | None:
+def run_geometry(path: str) -> Geometry | None:
     """The run's affine (RAS+, the header's best: sform, else qform) and shape, or None."""
     import nibabel
 
     try:
-        image = nibabel.load(path)
+        image: Any = nibabel.load(path)
         affine = image.affine
         shape = tuple(int(d) for d in image.shape)
     except Exception:  # a bad image is reported by the audit's own reader
@@ -92,14 +98,14 @@ def run_geometry(path: str) -> tuple[tuple[tuple[float, ...], ...], tuple[int, .
 
 
 class SourceIndex:
-    """Series folders, numbers and reads of one dataset root, cached for one chunk."""
+    """The series (grouped by SeriesInstanceUID) under one dataset root's sourcedata/,
+    cached for one chunk of runs, with their reads."""
 
     def __init__(self, root: Path | str) -> None:
         self.root = str(root)
         self.base = os.path.join(self.root, SOURCEDATA)
-        self._folders: dict[str, list[str]] = {}
-        self._numbers: dict[str, int | ReadError | None] = {}
-        self._series: dict[str, SeriesTiming | ReadError] = {}
+        self._groups: dict[str, list[SeriesGroup]] = {}
+        self._series: dict[int, SeriesTiming | ReadError] = {}
         self._has_base: bool | None = None
 
     def shown(self, path: str) -> str:
@@ -113,41 +119,39 @@ class SourceIndex:
             self._has_base = os.path.isdir(self.base)
         return self._has_base
 
-    def folders(self, subject: str, session: str | None) -> list[str]:
-        """Series folders under sourcedata/sub-X[/ses-Y], sorted."""
+    def groups_in(self, path: str, recursive: bool) -> list[SeriesGroup]:
+        """The series of a folder (and below when ``recursive``), an archive or a file."""
+        key = f"{int(recursive)}{path}"
+        if key not in self._groups:
+            found: list[SeriesGroup] = []
+            if os.path.exists(path):
+                try:
+                    found, _ = catalogue(path, self.shown, recursive=recursive)
+                except OSError:
+                    found = []
+            found.sort(key=lambda g: natural(g.objects[0].shown(self.root)))
+            self._groups[key] = found
+        return self._groups[key]
+
+    def groups(self, subject: str, session: str | None) -> list[SeriesGroup]:
+        """The series under sourcedata/sub-X[/ses-Y] (any depth, archives included)."""
         top = os.path.join(self.base, f"sub-{subject}")
         if session:
             top = os.path.join(top, f"ses-{session}")
-        if top in self._folders:
-            return self._folders[top]
-        found: list[str] = []
-        if self.has_sourcedata() and os.path.isdir(top):
-            for folder, dirs, _ in os.walk(top):
-                dirs[:] = sorted(d for d in dirs if not d.startswith("."))
-                try:
-                    files = series_files(folder)
-                except OSError:
-                    continue
-                if files and is_dicom_file(files[0]):
-                    found.append(folder)
-        self._folders[top] = sorted(found)
-        return self._folders[top]
+        if not self.has_sourcedata():
+            return []
+        return self.groups_in(top, recursive=True)
 
-    def number(self, folder: str) -> int | ReadError | None:
-        if folder not in self._numbers:
-            try:
-                self._numbers[folder] = series_number(folder, self.shown(folder))
-            except ReadError as exc:
-                self._numbers[folder] = exc
-        return self._numbers[folder]
+    def name(self, group: SeriesGroup) -> str:
+        return group_name(group, self.root)
 
-    def series(self, folder: str) -> SeriesTiming | ReadError:
-        if folder not in self._series:
+    def series(self, group: SeriesGroup) -> SeriesTiming | ReadError:
+        if id(group) not in self._series:
             try:
-                self._series[folder] = read_series(folder, self.shown(folder), self.root)
+                self._series[id(group)] = read_group(group, self.name(group), self.root)
             except ReadError as exc:
-                self._series[folder] = exc
-        return self._series[folder]
+                self._series[id(group)] = exc
+        return self._series[id(group)]
 
 
 def _declared_axis(record: RunRecord) -> int | None:
@@ -157,8 +161,7 @@ def _declared_axis(record: RunRecord) -> int | None:
     return None
 
 
-def _fits(series: SeriesTiming, record: RunRecord,
-          geometry: tuple[tuple[tuple[float, ...], ...], tuple[int, ...]]) -> bool:
+def _fits(series: SeriesTiming, record: RunRecord, geometry: Geometry) -> bool:
     """Geometry, TR and volume count all agree (used to match without SeriesNumber)."""
     affine, shape = geometry
     outcome = correspond(series, affine, shape, _declared_axis(record))
@@ -189,15 +192,50 @@ def _mapped(record: RunRecord, options: SourceOptions) -> str | None:
     return None
 
 
-def _read_matched(index: SourceIndex, folder: str, how: str,
-                  geometry: tuple[tuple[tuple[float, ...], ...], tuple[int, ...]] | None
-                  ) -> SourceEvidence:
+def _read_matched(index: SourceIndex, group: SeriesGroup, how: str,
+                  geometry: Geometry | None) -> SourceEvidence:
     affine, shape = geometry if geometry is not None else (None, None)
-    series = index.series(folder)
+    series = index.series(group)
     if isinstance(series, ReadError):
         return SourceEvidence("unreadable", how, error=series.to_finding(), affine=affine,
-                              shape=shape, candidates=(index.shown(folder),))
+                              shape=shape, candidates=(index.name(group),))
     return SourceEvidence("matched", how, series=series, affine=affine, shape=shape)
+
+
+def _fitting(index: SourceIndex, groups: list[SeriesGroup], record: RunRecord,
+             geometry: Geometry) -> list[SeriesGroup]:
+    out = []
+    for group in groups:
+        series = index.series(group)
+        if not isinstance(series, ReadError) and _fits(series, record, geometry):
+            out.append(group)
+    return out
+
+
+def _mapped_evidence(record: RunRecord, index: SourceIndex, target: str) -> SourceEvidence:
+    geometry = run_geometry(record.abs_path)
+    shown = index.shown(target)
+    if not os.path.exists(target):
+        return SourceEvidence("unreadable", "the source map", error=ReadError(
+            "source/unreadable", shown, None,
+            f"{shown}: the series folder or file does not exist").to_finding(),
+            candidates=(shown,))
+    groups = index.groups_in(target, recursive=False)
+    if not groups:
+        try:
+            read_all_series(target, shown, index.root)
+        except ReadError as exc:
+            return SourceEvidence("unreadable", "the source map", error=exc.to_finding(),
+                                  candidates=(shown,))
+    if len(groups) == 1:
+        return _read_matched(index, groups[0], "the source map", geometry)
+    fitting = _fitting(index, groups, record, geometry) if geometry is not None else []
+    if len(fitting) == 1:
+        return _read_matched(index, fitting[0], "the source map, geometry, TR and volume "
+                             "count", geometry)
+    return SourceEvidence("ambiguous", candidates=tuple(index.name(g) for g in groups),
+                          reason=f"the mapped {shown} holds {len(groups)} series and "
+                          "geometry, TR and volume count do not single one out")
 
 
 def find_source(record: RunRecord, index: SourceIndex,
@@ -207,50 +245,45 @@ def find_source(record: RunRecord, index: SourceIndex,
         return None
     mapped = _mapped(record, options)
     if mapped is not None:
-        return _read_matched(index, mapped, "the source map", run_geometry(record.abs_path))
+        return _mapped_evidence(record, index, mapped)
     subject = record.entities.get("sub")
     session = record.entities.get("ses")
     where = f"{SOURCEDATA}/sub-{subject}" + (f"/ses-{session}" if session else "")
-    folders = index.folders(subject, session) if subject else []
-    if not folders:
+    groups = index.groups(subject, session) if subject else []
+    if not groups:
         if options.mode == "on":
             return SourceEvidence("no-match", reason=f"no DICOM series under {where}/")
         return None
-    shown = tuple(index.shown(f) for f in folders)
+    shown = tuple(index.name(g) for g in groups)
     geometry = run_geometry(record.abs_path)
     wanted = record.metadata.get("SeriesNumber")
     if isinstance(wanted, int | float) and not isinstance(wanted, bool) and wanted == int(wanted):
-        same = [f for f in folders if index.number(f) == int(wanted)]
+        same = [g for g in groups if g.number == int(wanted)]
         if len(same) == 1:
             return _read_matched(index, same[0], f"SeriesNumber {int(wanted)}", geometry)
         if not same:
             return SourceEvidence("no-match", candidates=shown,
                                   reason=f"no series under {where}/ has SeriesNumber "
                                   f"{int(wanted)} (the sidecar's)")
-        if geometry is not None:
-            fitting = [f for f in same if not isinstance(index.series(f), ReadError)
-                       and _fits(index.series(f), record, geometry)]  # type: ignore[arg-type]
-            if len(fitting) == 1:
-                return _read_matched(index, fitting[0], f"SeriesNumber {int(wanted)} and "
-                                     "geometry", geometry)
-        return SourceEvidence("ambiguous", candidates=tuple(index.shown(f) for f in same),
+        fitting = _fitting(index, same, record, geometry) if geometry is not None else []
+        if len(fitting) == 1:
+            return _read_matched(index, fitting[0], f"SeriesNumber {int(wanted)}, geometry, "
+                                 "TR and volume count", geometry)
+        return SourceEvidence("ambiguous", candidates=tuple(index.name(g) for g in same),
                               reason=f"{len(same)} series under {where}/ have SeriesNumber "
-                              f"{int(wanted)} and their geometry does not single one out")
+                              f"{int(wanted)} and their geometry, TR and volume count do not "
+                              "single one out")
     if geometry is None:
         return SourceEvidence("no-match", candidates=shown,
                               reason="the run has no SeriesNumber and its geometry is unknown")
-    fitting = []
-    for folder in folders:
-        series = index.series(folder)
-        if not isinstance(series, ReadError) and _fits(series, record, geometry):
-            fitting.append(folder)
+    fitting = _fitting(index, groups, record, geometry)
     if len(fitting) == 1:
         return _read_matched(index, fitting[0], "geometry, TR and volume count", geometry)
     if not fitting:
         return SourceEvidence("no-match", candidates=shown,
-                              reason=f"none of the {len(folders)} series under {where}/ has "
+                              reason=f"none of the {len(groups)} series under {where}/ has "
                               "the run's geometry, TR and volume count (and the sidecar has no "
                               "SeriesNumber)")
-    return SourceEvidence("ambiguous", candidates=tuple(index.shown(f) for f in fitting),
+    return SourceEvidence("ambiguous", candidates=tuple(index.name(g) for g in fitting),
                           reason=f"{len(fitting)} series under {where}/ have the run's geometry, "
                           "TR and volume count (and the sidecar has no SeriesNumber)")

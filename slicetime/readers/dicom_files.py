@@ -1,0 +1,383 @@
+"""Where DICOM objects live and how their headers are read (bounded, header bytes only).
+
+A DICOM object (DICOM PS3.10 file format: a 128-byte preamble, ``DICM``, the
+file meta information, then the data set) is found as
+
+* a plain file (any name; ``.dcm``/``.ima`` or the ``DICM`` marker),
+* a gzip-compressed file (``.dcm.gz``, ``.ima.gz``, or any ``.gz`` whose content
+  has the marker; ``.nii.gz`` and ``.tar.gz`` are not DICOM),
+* a member of a ``.zip``, ``.tar``, ``.tar.gz``/``.tgz`` archive (the BIDS
+  specification's ``sourcedata/`` often holds the scanner's export that way).
+
+Only header bytes are read: plain files through pydicom with
+``stop_before_pixels`` (large values deferred); compressed files and archive
+members as a prefix that ends at the Pixel Data element (7FE0,0010), growing
+from 256 KiB to at most :data:`MAX_HEADER_BYTES`. A header longer than that,
+an archive with more than :data:`MAX_MEMBERS` members, or a damaged file
+raises :class:`~slicetime.readers.errors.ReadError` (``source/unreadable``).
+
+:func:`catalogue` reads every object of a folder (or archive) and groups them
+by SeriesInstanceUID (0020,000E), DICOM PS3.3 C.7.3.1: a folder is never taken
+for a series by itself, and a folder that mixes several series is said so.
+"""
+
+from __future__ import annotations
+
+import gzip
+import io
+import os
+import re
+import tarfile
+import warnings
+import zipfile
+from collections.abc import Iterator, Sequence
+from dataclasses import dataclass, field
+from typing import Any
+
+from slicetime.readers.errors import ReadError
+
+__all__ = [
+    "CATALOGUE_TAGS",
+    "MAX_HEADER_BYTES",
+    "MAX_MEMBERS",
+    "DicomObject",
+    "SeriesGroup",
+    "catalogue",
+    "is_archive_name",
+    "is_dicom_path",
+    "read_object",
+]
+
+CODE = "source/unreadable"
+HINT = ("check the series under sourcedata/ (a complete copy from the scanner or archive), "
+        "or point the run at the right series with --source-map")
+#: a header (everything before the pixel data) longer than this is refused
+MAX_HEADER_BYTES = 16 * 1024 * 1024
+_FIRST_PREFIX = 256 * 1024
+#: an archive with more members than this is refused (a scanner export holds thousands)
+MAX_MEMBERS = 200_000
+#: values larger than this stay on disk until asked for (plain files)
+_DEFER = 64 * 1024
+_ARCHIVE_SUFFIXES = (".zip", ".tar", ".tar.gz", ".tgz")
+_GZ_DICOM_SUFFIXES = (".dcm.gz", ".ima.gz", ".dicom.gz")
+_DICOM_SUFFIXES = (".dcm", ".ima", ".dicom")
+_NOT_DICOM_SUFFIXES = (
+    ".json", ".txt", ".tsv", ".csv", ".nii", ".nii.gz", ".bz2", ".xz", ".md", ".log",
+    ".html", ".pdf", ".png", ".jpg", ".jpeg", ".xml", ".py", ".bval", ".bvec",
+)
+#: the Pixel Data elements (7FE0,0010/0008/0009), little then big endian (PS3.5 7.1)
+_PIXEL_TAGS = (b"\xe0\x7f\x10\x00", b"\xe0\x7f\x08\x00", b"\xe0\x7f\x09\x00",
+               b"\x7f\xe0\x00\x10")
+#: the tags the catalogue keeps for every object (the classic reader needs no more)
+CATALOGUE_TAGS = (
+    "SeriesInstanceUID", "SeriesNumber", "SeriesDescription", "ImagePositionPatient",
+    "ImageOrientationPatient", "AcquisitionTime", "AcquisitionDateTime", "TriggerTime",
+    "AcquisitionNumber", "TemporalPositionIdentifier", "InstanceNumber", "RepetitionTime",
+    "Rows", "Columns", "PixelSpacing", "SliceThickness", "SpacingBetweenSlices",
+)
+
+
+def fail(shown: str, message: str, field: str | None = None, **evidence: Any) -> ReadError:
+    return ReadError(CODE, shown, field, f"{shown}: {message}", evidence=evidence, hint=HINT)
+
+
+def natural(name: str) -> list[Any]:
+    return [int(p) if p.isdigit() else p for p in re.split(r"(\d+)", name)]
+
+
+def is_archive_name(name: str) -> bool:
+    return name.lower().endswith(_ARCHIVE_SUFFIXES)
+
+
+def _skipped(name: str) -> bool:
+    lower = name.lower()
+    base = lower.rsplit("/", 1)[-1]
+    return (base.startswith(".") or not base or lower.endswith(_NOT_DICOM_SUFFIXES)
+            or lower.endswith("/"))
+
+
+def _is_gz(name: str) -> bool:
+    return name.lower().endswith(".gz") and not is_archive_name(name)
+
+
+@dataclass(frozen=True)
+class DicomObject:
+    """One DICOM object: ``path`` on disk, and ``member`` inside it when an archive."""
+
+    path: str
+    member: str | None = None
+
+    @property
+    def gzipped(self) -> bool:
+        return _is_gz(self.member if self.member is not None else self.path)
+
+    def shown(self, root: str | None = None) -> str:
+        base = self.path
+        if root is not None:
+            try:
+                base = os.path.relpath(self.path, root).replace(os.sep, "/")
+            except ValueError:
+                pass
+        return f"{base}/{self.member}" if self.member is not None else base
+
+    @property
+    def folder(self) -> str:
+        """The folder it lives in (inside an archive: the archive path and the member's
+        folder), which names the series for people."""
+        if self.member is None:
+            return os.path.dirname(self.path)
+        inner = self.member.rsplit("/", 1)[0] if "/" in self.member else ""
+        return os.path.join(self.path, inner) if inner else self.path
+
+
+# --------------------------------------------------------------------------- reading
+
+
+def _marker_ok(head: bytes) -> bool:
+    return len(head) >= 132 and head[128:132] == b"DICM"
+
+
+def _parse(data: bytes | str, shown: str, tags: Sequence[str] | None, defer: bool) -> Any:
+    import pydicom
+    from pydicom.errors import InvalidDicomError
+
+    source: Any = io.BytesIO(data) if isinstance(data, bytes) else data
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            return pydicom.dcmread(source, stop_before_pixels=True,
+                                   defer_size=_DEFER if defer else None,
+                                   specific_tags=list(tags) if tags else None)
+    except InvalidDicomError:
+        raise fail(shown, "not a DICOM file (no DICM marker after the preamble)") from None
+    except OSError as exc:
+        raise fail(shown, f"cannot read the file ({exc.strerror or exc})") from None
+    except Exception as exc:  # pydicom raises many types for damaged files
+        raise fail(shown, f"damaged DICOM header ({type(exc).__name__}: {exc})") from None
+
+
+def _prefix(stream: Any, shown: str) -> bytes:
+    """The object's bytes up to its Pixel Data element (bounded)."""
+    data = b""
+    want = _FIRST_PREFIX
+    while True:
+        try:
+            chunk = stream.read(want - len(data))
+        except (OSError, EOFError, zipfile.BadZipFile, tarfile.TarError) as exc:
+            raise fail(shown, f"cannot decompress the file ({type(exc).__name__}: {exc})") \
+                from None
+        data += chunk
+        if len(data) < want or any(tag in data for tag in _PIXEL_TAGS):
+            return data  # the whole object, or its header is complete
+        if want >= MAX_HEADER_BYTES:
+            raise fail(shown, f"no pixel data within the first {MAX_HEADER_BYTES:,} bytes: the "
+                       "header is too large to read", bytes=MAX_HEADER_BYTES)
+        want = min(want * 4, MAX_HEADER_BYTES)
+
+
+def read_object(obj: DicomObject, shown: str, tags: Sequence[str] | None = None) -> Any:
+    """One object's header as a pydicom Dataset; ReadError for anything unusable."""
+    if obj.member is None and not obj.gzipped:
+        return _parse(obj.path, shown, tags, defer=True)
+    if obj.member is None:
+        try:
+            with gzip.open(obj.path, "rb") as stream:
+                return _parse(_prefix(stream, shown), shown, tags, defer=False)
+        except OSError as exc:
+            raise fail(shown, f"cannot read the file ({exc.strerror or exc})") from None
+    for member, data in _archive_members(obj.path, shown, only=obj.member):
+        del member
+        return _parse(data, shown, tags, defer=False)
+    raise fail(shown, "the archive member is gone")
+
+
+def _member_bytes(stream: Any, name: str, shown: str) -> bytes | None:
+    """A member's header bytes, or None when it is not DICOM (no marker, not .dcm)."""
+    if _is_gz(name):
+        stream = gzip.GzipFile(fileobj=stream, mode="rb")
+    try:
+        data = _prefix(stream, shown)
+    except ReadError:
+        if name.lower().endswith(_DICOM_SUFFIXES + _GZ_DICOM_SUFFIXES):
+            raise
+        return None
+    if _marker_ok(data) or name.lower().endswith(_DICOM_SUFFIXES + _GZ_DICOM_SUFFIXES):
+        return data
+    return None
+
+
+def _archive_members(path: str, shown: str, only: str | None = None
+                     ) -> Iterator[tuple[str, bytes]]:
+    """(member name, header bytes) of the DICOM members of an archive, in archive order.
+    Tar archives are read as one stream (no seeking back and forth in a compressed one)."""
+    seen = 0
+    try:
+        if path.lower().endswith(".zip"):
+            with zipfile.ZipFile(path) as archive:
+                for info in archive.infolist():
+                    seen += 1
+                    if seen > MAX_MEMBERS:
+                        raise fail(shown, f"more than {MAX_MEMBERS:,} members: refused")
+                    if info.is_dir() or _skipped(info.filename) or \
+                            (only is not None and info.filename != only):
+                        continue
+                    name = info.filename
+                    with archive.open(info) as stream:
+                        data = _member_bytes(stream, name, f"{shown}/{name}")
+                    if data is not None:
+                        yield name, data
+            return
+        with tarfile.open(path, "r|*") as archive:
+            for member in archive:
+                seen += 1
+                if seen > MAX_MEMBERS:
+                    raise fail(shown, f"more than {MAX_MEMBERS:,} members: refused")
+                if not member.isfile() or _skipped(member.name) or \
+                        (only is not None and member.name != only):
+                    continue
+                extracted = archive.extractfile(member)
+                if extracted is None:
+                    continue
+                data = _member_bytes(extracted, member.name, f"{shown}/{member.name}")
+                if data is not None:
+                    yield member.name, data
+    except ReadError:
+        raise
+    except (OSError, EOFError, zipfile.BadZipFile, tarfile.TarError) as exc:
+        raise fail(shown, f"cannot read the archive ({type(exc).__name__}: {exc})") from None
+
+
+def is_dicom_path(path: str) -> bool:
+    """A plain or gzip-compressed file that holds DICOM (marker or suffix)."""
+    lower = path.lower()
+    if lower.endswith(_DICOM_SUFFIXES + _GZ_DICOM_SUFFIXES):
+        return True
+    if _skipped(os.path.basename(path)) or is_archive_name(path):
+        return False
+    try:
+        if _is_gz(path):
+            with gzip.open(path, "rb") as fh:
+                head = fh.read(132)
+        else:
+            with open(path, "rb") as fh:
+                head = fh.read(132)
+    except (OSError, EOFError):
+        return False
+    return _marker_ok(head)
+
+
+# --------------------------------------------------------------------------- catalogue
+
+
+@dataclass
+class SeriesGroup:
+    """The objects of one series (one SeriesInstanceUID), in natural name order.
+
+    ``first`` is the first object's whole header; ``slim`` holds every object's
+    :data:`CATALOGUE_TAGS`. ``folders`` are where its objects live;
+    ``neighbours`` counts the other series found in those folders.
+    """
+
+    uid: str | None
+    objects: list[DicomObject]
+    slim: list[Any]
+    first: Any
+    folders: list[str] = field(default_factory=list)
+    neighbours: int = 0
+
+    @property
+    def number(self) -> int | None:
+        value = self.first.get("SeriesNumber")
+        try:
+            return int(value) if value is not None and value != "" else None
+        except (TypeError, ValueError):
+            return None
+
+
+def _plain_entries(folder: str) -> list[str]:
+    names = []
+    with os.scandir(folder) as entries:
+        for entry in entries:
+            try:
+                if entry.is_file() and not _skipped(entry.name):
+                    names.append(entry.name)
+            except OSError:
+                continue
+    names.sort(key=natural)
+    return [os.path.join(folder, n) for n in names]
+
+
+def _objects_of(path: str, shown_of: Any, problems: list[ReadError]
+                ) -> Iterator[tuple[DicomObject, Any]]:
+    """(object, slim header) for every DICOM object in a file or archive."""
+    if is_archive_name(path):
+        try:
+            members = sorted(_archive_members(path, shown_of(path)),
+                             key=lambda item: natural(item[0]))
+            for name, data in members:
+                obj = DicomObject(path, name)
+                try:
+                    yield obj, _parse(data, f"{shown_of(path)}/{name}", None, defer=False)
+                except ReadError as exc:
+                    problems.append(exc)
+        except ReadError as exc:
+            problems.append(exc)
+        return
+    if not is_dicom_path(path):
+        return
+    obj = DicomObject(path)
+    try:
+        # a compressed file is parsed whole from its header bytes: keep every tag
+        yield obj, read_object(obj, shown_of(path), None if obj.gzipped else CATALOGUE_TAGS)
+    except ReadError as exc:
+        problems.append(exc)
+
+
+def catalogue(path: str, shown_of: Any, recursive: bool = False
+              ) -> tuple[list[SeriesGroup], list[ReadError]]:
+    """The series held by a file, an archive or a folder (and its subfolders when
+    ``recursive``), grouped by SeriesInstanceUID; and the objects that could not be read."""
+    problems: list[ReadError] = []
+    files: list[str] = []
+    if os.path.isdir(path):
+        if recursive:
+            for folder, dirs, _ in os.walk(path):
+                dirs[:] = sorted((d for d in dirs if not d.startswith(".")), key=natural)
+                try:
+                    files.extend(_plain_entries(folder))
+                except OSError:
+                    continue
+        else:
+            files = _plain_entries(path)
+    else:
+        files = [path]
+    groups: dict[str, SeriesGroup] = {}
+    per_folder: dict[str, set[str]] = {}
+    for file in files:
+        for obj, slim in _objects_of(file, shown_of, problems):
+            uid_value = slim.get("SeriesInstanceUID")
+            uid = str(uid_value) if uid_value else None
+            key = uid if uid is not None else f"no uid in {obj.folder}"
+            per_folder.setdefault(obj.folder, set()).add(key)
+            group = groups.get(key)
+            if group is None:
+                groups[key] = SeriesGroup(uid, [obj], [slim], slim, [obj.folder])
+            else:
+                group.objects.append(obj)
+                group.slim.append(slim)
+                if obj.folder not in group.folders:
+                    group.folders.append(obj.folder)
+    out = list(groups.values())
+    for key, group in groups.items():
+        others = set().union(*(per_folder[f] for f in group.folders)) - {key}
+        group.neighbours = len(others)
+    return out, problems
+
+
+def full_header(group: SeriesGroup, shown: str) -> Any:
+    """The whole header of the group's first object (the catalogue keeps only some tags
+    of plain files)."""
+    obj = group.objects[0]
+    if obj.member is None and not obj.gzipped:
+        group.first = read_object(obj, shown)
+    return group.first
