@@ -42,12 +42,48 @@ def series_object(series: SeriesTiming) -> dict[str, Any]:
     }
 
 
+def show_series(path: str, as_json: bool, console: Console) -> None:
+    """`show` on a DICOM file, series folder or archive: every series it holds (one
+    unreadable series among several is a line; alone, it is the command's error)."""
+    from slicetime.readers.dicom import read_all_series
+    from slicetime.readers.errors import ReadError
+
+    found = read_all_series(path, path)  # ReadError: one line, exit 2
+    if len(found) == 1 and isinstance(found[0], ReadError):
+        raise found[0]
+    if as_json:
+        import click
+
+        from slicetime.interfaces.report_json import dumps
+
+        objects = [series_object(s) for s in found if not isinstance(s, ReadError)]
+        click.echo(dumps(objects[0] if len(found) == 1 else objects))
+        return
+    if len(found) > 1:
+        console.print(Text(f"{xml_safe(path)} holds {len(found)} series "
+                           "(grouped by SeriesInstanceUID)", style="bold"))
+    for series in found:
+        if isinstance(series, ReadError):
+            console.print(Text(f"unreadable: {xml_safe(series.message)}"))
+            continue
+        render_series(series, console)
+
+
 def render_series(series: SeriesTiming, console: Console) -> None:
-    """`show` on a DICOM file or series folder."""
+    """One series: its slice times and scheme, or one line when it records none."""
     data = series_object(series)
     from slicetime.interfaces.screen import shorten_path
     from slicetime.interfaces.terminal import emit, fit_width, pairs
 
+    if series.times is None:
+        kind = {"mosaic": "a mosaic", "enhanced": "an enhanced multi-frame series",
+                "classic": "a one-slice-per-file series"}[series.layout]
+        why = "; ".join(series.notes)
+        console.print(Text(f"{xml_safe(series.series)}: {kind} of "
+                           f"{count(series.n_slices, 'slice')} that holds no per-slice times"
+                           + (f" ({xml_safe(why)})" if why else ""), overflow="fold"),
+                      soft_wrap=True)
+        return
     width = fit_width(console)
     console.print(Text(shorten_path(xml_safe(series.series), width), style="bold"))
     facts: list[tuple[str, str | Text]] = []
@@ -140,4 +176,5 @@ def render_run_source(record: RunRecord, console: Console) -> None:
     console.print(table)
 
 
-__all__ = ["render_run_source", "render_series", "run_source_object", "series_object"]
+__all__ = ["render_run_source", "render_series", "run_source_object", "series_object",
+           "show_series"]

@@ -62,6 +62,7 @@ from slicetime.readers.errors import ReadError
 __all__ = [
     "MAX_PRIVATE_BYTES",
     "is_dicom_file",
+    "is_dicom_input",
     "read_all_series",
     "read_group",
     "read_series",
@@ -88,6 +89,20 @@ def series_files(folder: str) -> list[str]:
                 continue
     names.sort(key=natural)
     return [os.path.join(folder, n) for n in names]
+
+
+def is_dicom_input(path: str) -> bool:
+    """A series folder, an archive or a DICOM file (plain or compressed), not a NIfTI run:
+    what ``show`` reads as a source series."""
+    lower = os.path.basename(path).lower()
+    if lower.endswith((".nii", ".nii.gz", ".json", ".tsv")):
+        return False
+    if os.path.isdir(path):
+        try:
+            return bool(series_files(path))
+        except OSError:
+            return False
+    return os.path.isfile(path) and is_dicom_file(path)
 
 
 def is_dicom_file(path: str) -> bool:

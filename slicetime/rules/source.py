@@ -158,7 +158,7 @@ def no_times(record: RunRecord) -> Iterator[Hit]:
     found = matched(record)
     if found is not None and found[1].times is None:
         why = "; ".join(found[1].notes) or "no per-slice times"
-        yield Hit(f"the source series {found[1].series} carries no slice times ({why})",
+        yield Hit(f"source holds no slice times: the series {found[1].series} ({why})",
                   evidence=_series_facts(found[1]))
 
 

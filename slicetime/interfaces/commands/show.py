@@ -32,7 +32,9 @@ def show(file: Path, as_json: bool, fail_on: str, policy_file: Path | None) -> N
     from slicetime.model import Severity
     from slicetime.pipelines.audit import inspect_run
 
-    if _is_dicom_input(file):
+    from slicetime.readers.dicom import is_dicom_input
+
+    if is_dicom_input(str(file)):
         _show_series(file, as_json)
         return
     run = inspect_run(_show_target(file), policy_file=policy_file)
@@ -73,30 +75,8 @@ def _show_target(file: Path) -> Path:
     return file
 
 
-def _is_dicom_input(file: Path) -> bool:
-    """A series folder or a DICOM file (not a NIfTI run) given to ``show``."""
-    from slicetime.readers.dataset import is_image_name
-    from slicetime.readers.dicom import is_dicom_file, series_files
-
-    if is_image_name(file.name):
-        return False
-    if file.is_dir():
-        try:
-            files = series_files(str(file))
-        except OSError:
-            return False
-        return bool(files) and is_dicom_file(files[0])
-    return file.is_file() and is_dicom_file(str(file))
-
-
 def _show_series(file: Path, as_json: bool) -> None:
-    from slicetime.interfaces.report_json import dumps
-    from slicetime.interfaces.source_view import render_series, series_object
+    from slicetime.interfaces.source_view import show_series
     from slicetime.interfaces.terminal import make_console
-    from slicetime.readers.dicom import read_series
 
-    series = read_series(str(file), str(file))  # ReadError: one line, exit 2
-    if as_json:
-        click.echo(dumps(series_object(series)))
-    else:
-        render_series(series, make_console())
+    show_series(str(file), as_json, make_console())  # ReadError: one line, exit 2

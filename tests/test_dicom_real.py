@@ -1,0 +1,326 @@
+"""The DICOM reader on what scanners really write (issue 27).
+
+Outside references:
+- the real DICOM files nibabel ships with its tests (found through the installed
+  package, read in place): nibabel's own wrappers (``nibabel.nicom.dicomwrappers``)
+  say which of them is a mosaic (``MosaicWrapper``), an enhanced multi-frame file
+  (``MultiframeWrapper``) or a single slice, and its private-header reader
+  (``nibabel.nicom.csareader``) gives the mosaic's tile times;
+- pydicom's own test files (``pydicom.data.get_testdata_file``, shipped in the
+  package, never downloaded) and pydicom's reading of the files built here;
+- DICOM PS3.3: SeriesInstanceUID (C.7.3.1 General Series), AcquisitionTime and
+  ImagePositionPatient/ImageOrientationPatient (C.7.6.2, C.8.3.1), the
+  per-frame functional groups (C.7.6.16); PS3.10 (the file format: preamble,
+  ``DICM``, the data set; files may travel compressed or in archives);
+- the BIDS specification: ``sourcedata/`` holds the data before conversion, in
+  any form (archives included).
+"""
+
+from __future__ import annotations
+
+import gzip
+import io
+import json
+import os
+import shutil
+import tarfile
+import warnings
+import zipfile
+from pathlib import Path
+from typing import Any
+
+import nibabel as nib
+import numpy as np
+import pydicom
+import pytest
+from click.testing import CliRunner
+from pydicom.data import get_testdata_file
+from pydicom.uid import generate_uid
+
+from slicetime.interfaces.cli import cli
+from slicetime.pipelines.audit import audit_paths
+from slicetime.readers import dicom_files
+from slicetime.readers.dicom import read_all_series, read_series
+from slicetime.readers.errors import ReadError
+from tests.test_dicom_source import (
+    RESTING,
+    classic_affine,
+    classic_series,
+    codes,
+    csa2,
+    dataset,
+    sidecar,
+    write_nifti,
+)
+
+with warnings.catch_warnings():
+    warnings.simplefilter("ignore")
+    from nibabel.nicom import dicomwrappers
+    from nibabel.nicom.csareader import get_csa_header
+
+NIB = Path(nib.__file__).parent
+NIB_DICOM = sorted([*(NIB / "nicom" / "tests" / "data").glob("*.dcm*"),
+                    *(NIB / "tests" / "data").glob("*.dcm")])
+
+pytestmark = pytest.mark.skipif(not NIB_DICOM, reason="nibabel's DICOM test data absent")
+
+
+def _dataset_of(path: Path) -> Any:
+    """pydicom's reading of a (possibly gzip-compressed) file, for the reference side."""
+    raw = gzip.open(path).read() if path.name.endswith(".gz") else path.read_bytes()
+    return pydicom.dcmread(io.BytesIO(raw), stop_before_pixels=True)
+
+
+def _wrapper_kind(ds: Any) -> str:
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        wrapper = dicomwrappers.wrapper_from_data(ds)
+    if isinstance(wrapper, dicomwrappers.MosaicWrapper):
+        return "mosaic"
+    if isinstance(wrapper, dicomwrappers.MultiframeWrapper):
+        return "enhanced"
+    return "classic"
+
+
+@pytest.mark.parametrize("path", NIB_DICOM, ids=lambda p: p.parent.parent.name + "/" + p.name)
+def test_every_dicom_file_nibabel_ships_is_read_as_what_it_holds(path: Path) -> None:
+    ds = _dataset_of(path)
+    series = read_series(str(path), path.name)
+    assert series.layout == _wrapper_kind(ds)  # nibabel's dicomwrappers
+    if series.layout == "mosaic":
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            tags = get_csa_header(ds, "image")["tags"]  # nibabel's private-header reader
+        assert series.times == pytest.approx([t / 1000 for t in
+                                              tags["MosaicRefAcqTimes"]["items"]])
+        assert series.n_slices == tags["NumberOfImagesInMosaic"]["items"][0]
+    else:
+        # single images and a one-volume 3-D acquisition: no per-slice times, no error
+        assert series.times is None and series.notes
+    shown = CliRunner().invoke(cli, ["show", str(path)])
+    assert shown.exit_code == 0, shown.output
+    if series.times is None:
+        assert len(shown.output.strip().splitlines()) == 1
+        assert "holds no per-slice times" in shown.output
+
+
+def test_enhanced_file_in_gzip_is_read_up_to_its_pixel_data(monkeypatch: Any) -> None:
+    path = next(p for p in NIB_DICOM if p.name.endswith(".gz")
+                and _wrapper_kind(_dataset_of(p)) == "enhanced")
+    ds = _dataset_of(path)
+    series = read_series(str(path), path.name)
+    # the frames of the first temporal position (PS3.3 C.7.6.16), as pydicom reads them
+    frames = [f for f in ds.PerFrameFunctionalGroupsSequence
+              if f.FrameContentSequence[0].TemporalPositionIndex == 1]
+    assert series.n_slices == len(frames)
+    pixel_at = gzip.open(path).read().find(b"\xe0\x7f\x10\x00")  # (7FE0,0010), PS3.5
+    assert 0 < pixel_at < dicom_files.MAX_HEADER_BYTES
+    # a header longer than the bound is refused with one line, not read on and on
+    monkeypatch.setattr(dicom_files, "MAX_HEADER_BYTES", pixel_at // 4)
+    with pytest.raises(ReadError, match="too large"):
+        read_series(str(path), path.name)
+
+
+@pytest.mark.parametrize("name", ["MR_small.dcm", "MR_small_bigendian.dcm",
+                                  "MR_small_implicit.dcm", "zipMR.gz"])
+def test_pydicoms_own_files_plain_and_compressed(tmp_path: Path, name: str) -> None:
+    source = get_testdata_file(name, download=False)
+    assert source is not None
+    path = Path(str(source))
+    raw = gzip.open(path).read() if name.endswith(".gz") else path.read_bytes()
+    ds = pydicom.dcmread(io.BytesIO(raw), stop_before_pixels=True)
+    packed = tmp_path / "image.dcm.gz"
+    packed.write_bytes(gzip.compress(raw))
+    for candidate in (path, packed):
+        series = read_series(str(candidate), candidate.name)
+        assert series.layout == "classic" and series.times is None
+        assert series.series_number == int(ds.SeriesNumber)  # pydicom
+        assert series.rows == ds.Rows and series.columns == ds.Columns
+        normal = np.cross([float(v) for v in ds.ImageOrientationPatient[:3]],
+                          [float(v) for v in ds.ImageOrientationPatient[3:]])
+        assert series.positions[0] == pytest.approx(
+            float(np.dot([float(v) for v in ds.ImagePositionPatient], normal)))
+
+
+def test_truncated_file_from_pydicom_is_one_line_exit_2() -> None:
+    path = get_testdata_file("MR_truncated.dcm", download=False)
+    assert path is not None
+    shown = CliRunner().invoke(cli, ["show", str(path)])
+    # pydicom documents the file as truncated inside its pixel data: the header is whole
+    assert shown.exit_code in (0, 2) and "Traceback" not in shown.output
+
+
+# --------------------------------------------------------------------------- built with pydicom
+
+
+def _localizer(folder: Path, series_number: int = 2) -> None:
+    """A 3-plane scout: a private image header whose mosaic keys are there but empty."""
+    folder.mkdir(parents=True, exist_ok=True)
+    base = pydicom.dcmread(RESTING)
+    tag = next(t for t in base.keys() if t.group == 0x29 and t.element & 0xFF == 0x10
+               and t.element >= 0x1000)
+    uid = generate_uid()
+    planes = [[1, 0, 0, 0, 1, 0], [1, 0, 0, 0, 0, -1], [0, 1, 0, 0, 0, -1]]
+    for n, iop in enumerate(planes, start=1):
+        ds = pydicom.dcmread(RESTING)
+        ds[tag].value = csa2({"MosaicRefAcqTimes": ("FD", []),
+                              "NumberOfImagesInMosaic": ("US", []),
+                              "SliceNormalVector": ("FD", [])})
+        ds.ImageType = ["ORIGINAL", "PRIMARY", "M", "NORM"]
+        ds.SeriesInstanceUID = uid
+        ds.SOPInstanceUID = generate_uid()
+        ds.SeriesNumber = series_number
+        ds.InstanceNumber = n
+        ds.ImageOrientationPatient = iop
+        ds.save_as(folder / f"{n}.dcm")
+
+
+def test_private_keys_without_entries_are_no_mosaic(tmp_path: Path) -> None:
+    folder = tmp_path / "scout"
+    _localizer(folder)
+    ds = pydicom.dcmread(folder / "1.dcm")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        assert get_csa_header(ds, "image")["tags"]["MosaicRefAcqTimes"]["items"] == []
+    series = read_series(str(folder), "scout")
+    assert series.layout == "classic" and series.times is None
+    assert any("another plane" in note for note in series.notes)
+    shown = CliRunner().invoke(cli, ["show", str(folder)])
+    assert shown.exit_code == 0, shown.output
+    assert len(shown.output.strip().splitlines()) == 1
+
+
+def _classic_run(root: Path, invented: list[float], number: int = 5, volumes: int = 2) -> Path:
+    run = root / "sub-01/func/sub-01_task-x_bold.nii.gz"
+    write_nifti(run, classic_affine(), (20, 20, len(invented)), volumes, 2.0)
+    sidecar(run, RepetitionTime=2.0, SeriesNumber=number, SliceTiming=[0.0] * len(invented))
+    return run
+
+
+INVENTED = [0.0, 1.0, 0.25, 1.25, 0.5, 1.5, 0.75, 1.75]  # structure only
+
+
+def _expected_from_pydicom(paths: list[tuple[str, bytes]]) -> list[float]:
+    """Times of the first volume by position, read with pydicom (AcquisitionTime TM)."""
+    rows = []
+    for _, raw in paths:
+        ds = pydicom.dcmread(io.BytesIO(raw))
+        if int(ds.AcquisitionNumber) == 1:
+            tm = ds.AcquisitionTime
+            seconds = int(tm[:2]) * 3600 + int(tm[2:4]) * 60 + float(tm[4:])
+            rows.append((float(ds.ImagePositionPatient[2]), seconds))
+    rows.sort()
+    return [t - min(t for _, t in rows) for _, t in rows]
+
+
+@pytest.mark.parametrize("kind", ["zip", "tar", "tar.gz", "dcm.gz"])
+def test_classic_series_in_archives_and_gzip(tmp_path: Path, kind: str) -> None:
+    root = dataset(tmp_path)
+    loose = tmp_path / "loose"
+    classic_series(loose, INVENTED)
+    files = sorted(loose.iterdir())
+    raw = [(f.name, f.read_bytes()) for f in files]
+    target = root / "sourcedata/sub-01"
+    target.mkdir(parents=True)
+    if kind == "zip":
+        with zipfile.ZipFile(target / "export.zip", "w") as archive:
+            for name, data in raw:
+                archive.writestr(f"s005/{name}", data)
+    elif kind.startswith("tar"):
+        mode = "w:gz" if kind == "tar.gz" else "w"
+        with tarfile.open(target / f"export.{kind}", mode) as archive:
+            for name, data in raw:
+                info = tarfile.TarInfo(f"s005/{name}")
+                info.size = len(data)
+                archive.addfile(info, io.BytesIO(data))
+    else:
+        (target / "s005").mkdir()
+        for name, data in raw:
+            (target / "s005" / f"{name}.dcm.gz").write_bytes(gzip.compress(data))
+    run = _classic_run(root, INVENTED)
+    result = audit_paths([root])
+    assert codes(result) == ["source/times-differ"]
+    finding = next(f for f in result.runs[0].findings if f.code == "source/times-differ")
+    expected = _expected_from_pydicom(raw)
+    assert [t / 1000 for t in finding.evidence["source_ms"]] == pytest.approx(expected,
+                                                                               abs=1e-6)
+    if kind != "dcm.gz":
+        shown = CliRunner().invoke(cli, ["show", str(next(target.iterdir())), "--json"])
+        assert shown.exit_code == 0, shown.output
+        assert json.loads(shown.output)["layout"] == "classic"
+    del run
+
+
+def test_a_folder_mixing_two_series_is_said_so(tmp_path: Path) -> None:
+    root = dataset(tmp_path)
+    folder = root / "sourcedata/sub-01/all"
+    classic_series(folder, INVENTED)
+    other = tmp_path / "other"
+    _localizer(other, series_number=9)
+    for f in other.iterdir():
+        shutil.copy(f, folder / f"zz{f.name}")
+    found = read_all_series(str(folder), "all")
+    assert len(found) == 2  # two SeriesInstanceUIDs (PS3.3 C.7.3.1), read with pydicom:
+    assert len({pydicom.dcmread(f, stop_before_pixels=True).SeriesInstanceUID
+                for f in folder.iterdir()}) == 2
+    shown = CliRunner().invoke(cli, ["show", str(folder), "--json"])
+    assert shown.exit_code == 0 and len(json.loads(shown.output)) == 2
+    _classic_run(root, INVENTED)
+    result = audit_paths([root])
+    assert codes(result) == ["source/times-differ"]
+    finding = next(f for f in result.runs[0].findings if f.code == "source/times-differ")
+    assert "SeriesNumber 5" in finding.message
+    series = read_all_series(str(folder), "all")[0]
+    assert not isinstance(series, ReadError)
+    assert any("mixes 2 series" in note for note in series.notes)
+
+
+def test_shared_series_number_is_settled_by_geometry_and_volumes(tmp_path: Path) -> None:
+    root = dataset(tmp_path)
+    # two sessions kept side by side, both series number 5: other slab, other length
+    classic_series(root / "sourcedata/sub-01/day1/005", INVENTED, volumes=2)
+    classic_series(root / "sourcedata/sub-01/day2/005", INVENTED, volumes=3, z0=-60.0)
+    for f in (root / "sourcedata/sub-01/day2/005").iterdir():
+        ds = pydicom.dcmread(f)
+        ds.SeriesInstanceUID = "1.2.3.5"  # another series (PS3.3 C.7.3.1)
+        ds.save_as(f)
+    _classic_run(root, INVENTED, volumes=2)
+    result = audit_paths([root])
+    assert codes(result) == ["source/times-differ"]
+    finding = next(f for f in result.runs[0].findings if f.code == "source/times-differ")
+    assert "day1/005" in finding.message
+
+
+def test_no_times_is_said_only_for_the_matched_run(tmp_path: Path) -> None:
+    root = dataset(tmp_path)
+    _localizer(root / "sourcedata/sub-01/scout", series_number=2)
+    classic_series(root / "sourcedata/sub-01/005", INVENTED)
+    still = root / "sourcedata/sub-01/006"
+    classic_series(still, INVENTED, series_number=6)
+    for f in still.iterdir():  # one clock reading for every image: no per-slice times
+        ds = pydicom.dcmread(f)
+        ds.SeriesInstanceUID = "1.2.3.6"
+        ds.AcquisitionTime = "100000.000000"
+        ds.save_as(f)
+    _classic_run(root, INVENTED)  # SeriesNumber 5, times recorded
+    other = root / "sub-01/func/sub-01_task-y_bold.nii.gz"
+    write_nifti(other, classic_affine(), (20, 20, len(INVENTED)), 2, 2.0)
+    sidecar(other, RepetitionTime=2.0, SeriesNumber=6, SliceTiming=INVENTED)
+    result = audit_paths([root])
+    by_run = {r.record.path: [f for f in r.findings if f.code == "source/no-times"]
+              for r in result.runs}
+    assert by_run["sub-01/func/sub-01_task-x_bold.nii.gz"] == []
+    lines = by_run["sub-01/func/sub-01_task-y_bold.nii.gz"]
+    assert len(lines) == 1 and "source holds no slice times" in lines[0].message
+    assert "006" in lines[0].message
+
+
+def test_mosaic_in_a_zip_equals_the_plain_mosaic(tmp_path: Path) -> None:
+    archive = tmp_path / "export.zip"
+    with zipfile.ZipFile(archive, "w") as out:
+        out.write(RESTING, "rest/001.dcm")
+    plain = read_series(str(RESTING), "rest")
+    packed = read_series(str(archive), "rest")
+    assert packed.times == plain.times and packed.positions == plain.positions
+    assert packed.files_read[0].endswith("export.zip/rest/001.dcm")
+    assert os.path.getsize(archive) > 0
