@@ -449,6 +449,9 @@ class RunRecord:
     )
     #: what the source DICOM series says, when the source cross-check ran (see model_source)
     source: SourceEvidence | None = None
+    #: why the image's content is not here ("annex": a link into an absent object store;
+    #: "placeholder": a 0-byte file): the run is audited from its sidecars only
+    content_missing: str | None = None
 
     @property
     def schedule(self) -> SliceSchedule | None:

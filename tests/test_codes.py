@@ -139,7 +139,7 @@ def test_the_readers_find_their_codes_registered_without_the_rules_layer() -> No
             if (isinstance(node, ast.Call) and _callee(node) in {"make_finding", "ReadError"}
                     and node.args and isinstance(node.args[0], ast.Constant)):
                 used.add(node.args[0].value)
-    used.add(importlib.import_module("slicetime.readers.dicom").CODE)
+    used.add(importlib.import_module("slicetime.readers.dicom_files").CODE)
     assert len(used) > 10
     assert used <= registered, sorted(used - registered)
 

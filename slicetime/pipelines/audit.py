@@ -228,7 +228,7 @@ class RunFacts:
     so 100,000 runs cost a few tens of MB.
     """
 
-    __slots__ = ("_abs", "_sources", "counts", "datatype", "entities",
+    __slots__ = ("_abs", "_sources", "content_missing", "counts", "datatype", "entities",
                  "fold_roots", "header", "path", "root", "scheme", "suffix", "timing")
 
     #: read by some run rules; a fact never has them
@@ -255,6 +255,7 @@ class RunFacts:
         self.header = shared.header(record.header)
         self.timing = shared.timing(record.timing)
         self.scheme = shared.scheme(record.scheme, self.timing.schedule)
+        self.content_missing = record.content_missing
         self.counts = counts  # (errors, warnings, notes) of the run's own findings
         #: (code, field) of the run's own findings that fold others into them, in order
         self.fold_roots: tuple[tuple[str, str | None], ...] = tuple(

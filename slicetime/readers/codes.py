@@ -32,6 +32,21 @@ reader_code(
     fix="Retrieve the content with your annex tool's get command, then audit again.",
 )
 reader_code(
+    "file/not-retrieved",
+    title="the run's image content is not retrieved; it was audited from its sidecars only",
+    severity=W,
+    rationale=(
+        "A clone of a dataset whose large files live in an annex holds its images as links "
+        "into an object store that is empty until the content is fetched; some copies hold "
+        "0-byte placeholders instead. Such a run still has its sidecars: its schedule, scheme, "
+        "sidecar checks and the dataset-wide comparisons are done from them. What needs the "
+        "image's header (dimensions, units, TR and slice fields in the header, the source "
+        "cross-check's geometry) is not, and the finding lists those checks."
+    ),
+    fix="Fetch the content (for an annexed dataset: git annex get PATH, from the dataset's "
+    "top folder), or copy the real file over the placeholder; then audit again.",
+)
+reader_code(
     "file/link-loop",
     title="a symbolic link loops back on itself",
     severity=E,

@@ -49,7 +49,7 @@ from .entities import (
     run_name_problem,
     sidecar_name,
 )
-from .errors import ReadError, check_regular_file
+from .errors import ReadError, annex_target, check_regular_file
 from .sidecar import load_sidecar
 
 __all__ = [
@@ -334,6 +334,8 @@ def iter_runs(
     given = [_abs(Path(p)) for p in paths]
     for p in given:
         if not os.path.lexists(p) or (os.path.islink(p) and not os.path.exists(p)):
+            if annex_target(p) is not None:
+                continue  # an annexed run whose content is absent: audited from its sidecars
             shown = str(p)
             if os.path.islink(p):
                 check_regular_file(p, shown)  # tells an annexed file from a dangling link

@@ -116,6 +116,9 @@ def _annex_target(path: str | os.PathLike[str]) -> str | None:
     return None
 
 
+annex_target = _annex_target  # public: the run reader asks whether content is absent
+
+
 def os_error(exc: OSError, shown: str, *, what: str = "file") -> ReadError:
     """Translate an ``OSError`` raised while opening or reading ``shown`` into a ReadError."""
     if exc.errno == errno.ELOOP:

@@ -8,13 +8,15 @@ the schedule and infers the scheme from values already read.
 
 from __future__ import annotations
 
+import os
+import stat
 from collections.abc import Iterable, Mapping, Sequence
 from pathlib import Path
 from typing import Any
 
 from slicetime.model import Finding, HeaderInfo, RunRecord
 from slicetime.readers.entities import parse_name
-from slicetime.readers.errors import ReadError
+from slicetime.readers.errors import ReadError, annex_target
 from slicetime.readers.inheritance import SidecarIndex, relative_posix
 from slicetime.readers.nifti import read_header
 from slicetime.schemes.resolve import infer_run_scheme, resolve_timing
@@ -40,6 +42,7 @@ def assemble_record(
     chain: Sequence[str] = (),
     findings: Iterable[Finding] = (),
     overridden: Mapping[str, tuple[tuple[str, Any], ...]] | None = None,
+    content_missing: str | None = None,
 ) -> RunRecord:
     """Resolve the schedule and infer the scheme from values already read (pure)."""
     name = display.rsplit("/", 1)[-1]
@@ -62,8 +65,9 @@ def assemble_record(
         "sidecar_chain": tuple(chain),
         "findings": tuple(kept),
         "overridden": dict(overridden or {}),
+        "content_missing": content_missing,
     }
-    if header is None:
+    if header is None and content_missing is None:
         return RunRecord(**common)
     timing = resolve_timing(metadata, sources, header, display)
     return RunRecord(**common, timing=timing, scheme=infer_run_scheme(timing))
@@ -75,11 +79,13 @@ def build_record(root: Path, path: Path, index: SidecarIndex | None = None) -> R
     display = relative_display(path, root)
     findings: list[Finding] = []
     header: HeaderInfo | None = None
-    try:
-        header, header_findings = read_header(path, display)
-        findings.extend(header_findings)
-    except ReadError as exc:
-        findings.append(exc.to_finding())
+    missing = content_missing(path)
+    if missing is None:
+        try:
+            header, header_findings = read_header(path, display)
+            findings.extend(header_findings)
+        except ReadError as exc:
+            findings.append(exc.to_finding())
     resolution = index.resolve(path, root)
     findings.extend(resolution.findings)
     return assemble_record(
@@ -92,4 +98,19 @@ def build_record(root: Path, path: Path, index: SidecarIndex | None = None) -> R
         chain=resolution.chain,
         findings=findings,
         overridden=resolution.overridden,
+        content_missing=missing,
     )
+
+
+def content_missing(path: Path) -> str | None:
+    """Why a run's image content is not here, or None when it may be read: "annex" for a
+    link into an annex object store whose object is absent (a clone before its content
+    is fetched), "placeholder" for a 0-byte regular file. Other problems are the header
+    reader's to report."""
+    try:
+        st = os.stat(path)
+    except FileNotFoundError:
+        return "annex" if annex_target(str(path)) is not None else None
+    except OSError:
+        return None
+    return "placeholder" if stat.S_ISREG(st.st_mode) and st.st_size == 0 else None

@@ -42,7 +42,7 @@ def _consensus(
     field the finding is about, or says it for an outlier given the majority's runs."""
     groups: dict[tuple[str, ...], list[RunRecord]] = defaultdict(list)
     for record in records:
-        if record.header is not None:
+        if record.header is not None or record.content_missing is not None:
             groups[protocol_key(record)].append(record)
     for key, members in sorted(groups.items()):
         values = [(r, value_of(r)) for r in members]

@@ -5,9 +5,10 @@ from __future__ import annotations
 import math
 from collections.abc import Iterator
 
+import slicetime.readers.codes  # noqa: F401  (registers file/not-retrieved, checked below)
 from slicetime.model import AXES, RunRecord, Severity
 from slicetime.numbers import plain
-from slicetime.rules.registry import Hit, renamed, run_rule
+from slicetime.rules.registry import RULES, Hit, renamed, run_check, run_rule
 from slicetime.schemes.infer import infer_scheme
 from slicetime.schemes.niftcodes import SLICE_CODE_NAMES, header_slice_times
 from slicetime.schemes.resolve import parse_direction, positive_number
@@ -191,3 +192,33 @@ def slice_code_mismatch(record: RunRecord) -> Iterator[Hit]:
              "sidecar_scheme": scheme.label},
             file=record.path,
         )
+
+
+#: checks outside this module that need the image's header
+_ALSO_HEADER = ("timing/count-mismatch", "timing/missing")
+_MISSING_WHY = {
+    "annex": ("the image links into an annex object store that lacks it",
+              "git annex get {path}"),
+    "placeholder": ("the image is a 0-byte placeholder", "copy the real file over it"),
+}
+
+
+def header_checks() -> list[str]:
+    """The run checks a run without its image's header cannot have: this module's, the
+    source cross-check's, and the sidecar checks that compare with the header."""
+    mine = [code for code, rule in RULES.items() if rule.scope == "run"
+            and getattr(rule.check, "__module__", None) == __name__
+            and code != "file/not-retrieved"]
+    source = [code for code, rule in RULES.items() if rule.checked == "source"]
+    return sorted({*mine, *source, *_ALSO_HEADER})
+
+
+@run_check("file/not-retrieved")  # registered with the readers
+def not_retrieved(record: RunRecord) -> Iterator[Hit]:
+    if record.content_missing is None:
+        return
+    why, how = _MISSING_WHY.get(record.content_missing, _MISSING_WHY["placeholder"])
+    skipped = header_checks()
+    yield Hit(f"content not retrieved ({why}): audited from its sidecars only, "
+              f"{len(skipped)} header checks not done ({how.format(path=record.path)})",
+              evidence={"reason": record.content_missing, "not_checked": skipped})

@@ -473,13 +473,13 @@ def multiband_undeclared(record: RunRecord) -> Iterator[Hit]:
     standard="BIDS sidecars.func.MRIFuncRepetitionTime",
 )
 def tr_missing(record: RunRecord) -> Iterator[Hit]:
-    if record.suffix != "bold" or record.header is None:
+    if record.suffix != "bold" or (record.header is None and record.content_missing is None):
         return
     if "RepetitionTime" in record.metadata or "VolumeTiming" in record.metadata:
         return
     ev: dict[str, Any] = {"sidecars": list(record.sidecar_chain)}
     hint = None
-    if record.header.repetition_time:
+    if record.header is not None and record.header.repetition_time:
         ev["header_tr"] = record.header.repetition_time
         hint = f"The header's pixdim[4] says {plain(record.header.repetition_time)} s."
     yield Hit(
