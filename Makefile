@@ -12,6 +12,7 @@ STAMP := $(VENV)/.installed-test
 $(RUNTIME_STAMP): pyproject.toml
 	test -x $(PY) || $(PYTHON) -m venv $(VENV)
 	$(PY) -m pip install --quiet --upgrade pip
+	$(PY) -m pip uninstall --quiet --yes slicetime 2>/dev/null || true  # the name before slicetime-bids
 	$(PY) -m pip install --quiet -e .
 	touch $(RUNTIME_STAMP)
 

@@ -3,13 +3,17 @@
 from __future__ import annotations
 
 import json
+import sys
 from pathlib import Path
 
 import jsonschema
 import pytest
+from click.testing import CliRunner
 
-from slicetime.interfaces.demo_tour import run_demo
+from slicetime.interfaces.cli import cli
+from slicetime.interfaces.demo_tour import command_name, run_demo
 from slicetime.interfaces.report_json import report_schema
+from tests.helpers_bids import tree_hashes
 
 
 def test_the_demo_runs_the_whole_job(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
@@ -55,3 +59,42 @@ def test_the_demo_is_deterministic(tmp_path: Path) -> None:
         report.pop("root", None)
         report.pop("roots", None)
     assert a == b
+
+
+def test_the_demo_runs_again_in_the_same_folder(tmp_path: Path) -> None:
+    # `make demo` twice in one clone: the second run rebuilds the output cleanly
+    out = tmp_path / "demo-output"
+    first = CliRunner().invoke(cli, ["demo", "--out", str(out)])
+    assert first.exit_code == 0, first.output
+    before = json.loads((out / "audit.json").read_text())
+    second = CliRunner().invoke(cli, ["demo", "--out", str(out)])
+    assert second.exit_code == 0, second.output
+    assert "internal error" not in second.output
+    assert json.loads((out / "audit.json").read_text()) == before
+    # one journal: the earlier run's backups were removed with the rest of its output
+    assert [p.name for p in (out / "fix-backups").iterdir()].count("journal.json") == 1
+
+
+def test_the_demo_refuses_a_folder_that_is_not_its_own(tmp_path: Path) -> None:
+    dataset = tmp_path / "study"
+    dataset.mkdir()
+    (dataset / "dataset_description.json").write_text('{"Name": "a lab study"}')
+    before = tree_hashes(dataset)
+    out = CliRunner().invoke(cli, ["demo", "--out", str(dataset)])
+    assert out.exit_code == 2 and "not an earlier demo output" in out.output
+    assert tree_hashes(dataset) == before  # nothing written
+    empty = tmp_path / "empty"
+    empty.mkdir()
+    assert CliRunner().invoke(cli, ["demo", "--out", str(empty)]).exit_code == 0
+
+
+def test_the_demo_names_a_command_that_works_in_this_shell(
+        monkeypatch: pytest.MonkeyPatch) -> None:
+    # not on PATH: the tour names the command installed beside this Python
+    monkeypatch.setenv("PATH", "/nonexistent")
+    name = command_name()
+    beside = Path(sys.executable).parent / "slicetime"
+    if beside.exists():
+        assert Path(name).resolve() == beside.resolve()
+    else:
+        assert name == "slicetime"

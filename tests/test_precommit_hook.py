@@ -114,7 +114,7 @@ def test_hook_definition() -> None:
 
 def _console_script() -> Path:
     try:
-        dist = metadata.distribution("slicetime")
+        dist = metadata.distribution("slicetime-bids")
     except metadata.PackageNotFoundError:  # pragma: no cover - running from a bare checkout
         pytest.skip("slicetime is not installed; the console script cannot be checked")
     scripts = {ep.name: ep.value for ep in dist.entry_points if ep.group == "console_scripts"}

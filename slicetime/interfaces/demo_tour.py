@@ -10,9 +10,13 @@ say where everything is. Seeded, so every run of the demo is the same.
 
 from __future__ import annotations
 
+import os
 import shutil
+import sys
 from pathlib import Path
 from typing import Any
+
+import click
 
 from slicetime.interfaces import screen
 from slicetime.interfaces.report_json import audit_object, dumps
@@ -28,7 +32,7 @@ from slicetime.interfaces.terminal import (
 )
 from slicetime.pipelines.audit import audit_one, audit_paths
 from slicetime.pipelines.correct import CorrectOptions, correct_paths
-from slicetime.pipelines.demo import STUDY, build_demo_dataset, demo_runs
+from slicetime.pipelines.demo import STUDY, build_demo_dataset, demo_runs, prepare_output
 from slicetime.pipelines.errors import DOUBT_CODE
 from slicetime.pipelines.fix import apply_plan, plan_fix, reaudit
 from slicetime.pipelines.verify import verify_run
@@ -36,8 +40,31 @@ from slicetime.rules.correction import doubts_timing
 from slicetime.words import count
 
 
+class DemoRefused(click.ClickException):
+    """``demo --out`` names a folder that is not the demo's to write (exit 2)."""
+
+    exit_code = 2
+
+
+def command_name() -> str:
+    """How to call slicetime from this shell: ``slicetime`` when it is on PATH, else the
+    path of the command installed beside this Python (e.g. ``.venv/bin/slicetime``)."""
+    here = Path(sys.executable).parent / "slicetime"
+    found = shutil.which("slicetime")
+    if found is not None or not here.exists():
+        return "slicetime"
+    try:
+        shown = os.path.relpath(here)
+    except ValueError:
+        return str(here)
+    return shown if not shown.startswith("..") else str(here)
+
+
 def run_demo(out: Path) -> int:
     """The guided tour; returns 0. Everything is written under ``out``."""
+    refused = prepare_output(out)
+    if refused is not None:
+        raise DemoRefused(refused)
     console = make_console()
     width = fit_width(console)
 
@@ -49,7 +76,6 @@ def run_demo(out: Path) -> int:
     def rule(title: str) -> None:
         console.print(f"── {title} " + "─" * max(3, min(width or 72, 72) - len(title) - 4))
 
-    out.mkdir(parents=True, exist_ok=True)
     dataset = out / "quiet-rooms"
     build_demo_dataset(dataset)
     say(f"slicetime demo: {STUDY}")
@@ -135,7 +161,11 @@ def run_demo(out: Path) -> int:
             else f"{name}:")
         if width is not None and 27 + len(where) > width:
             say(where, 4)
-    say("next: slicetime explain timing/units-ms, or slicetime show on any run")
+    command = command_name()
+    say(f"next: {command} explain timing/units-ms, or {command} show on any run")
+    if command != "slicetime":
+        say(f"(slicetime is not on PATH: call {command}, or first activate the environment: "
+            f"source {Path(command).parent.parent}/bin/activate)")
     return 0
 
 

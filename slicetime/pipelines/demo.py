@@ -16,6 +16,11 @@ exists for, planted the way they happen in practice:
 * one file was cut short in a copy.
 
 Seeded, so every build of the study is the same.
+
+The output folder carries a marker file (:data:`MARKER`): an earlier demo
+output is rebuilt cleanly (the demo's own entries removed first), and any
+other folder that exists and is not empty is refused, so ``demo --out`` never
+writes into a dataset.
 """
 
 from __future__ import annotations
@@ -35,6 +40,33 @@ from slicetime.schemes.generate import Protocol, array_times, slice_timing
 STUDY = "Quiet Rooms (invented study of the invented Fernhill Centre for Listening Research)"
 VOLUMES = 48
 SEED = 20261201
+#: the file that marks a folder as a demo output (so that it may be rebuilt)
+MARKER = ".slicetime-demo"
+#: what the demo writes at the top of its output folder
+ENTRIES = ("quiet-rooms", "quiet-rooms-fixed", "fix-backups", "audit.json", "audit.html")
+
+
+def prepare_output(out: Path) -> str | None:
+    """Make ``out`` ready for a demo: created, or an earlier demo output emptied of the
+    demo's own entries. Returns why it is refused (nothing touched), or None."""
+    if out.is_symlink() or (out.exists() and not out.is_dir()):
+        return f"{out}: exists and is not a folder; give demo --out a new folder"
+    # a folder that holds only the demo's entries is an earlier output too (made before
+    # the marker existed)
+    if out.exists() and not (out / MARKER).is_file() and \
+            not {p.name for p in out.iterdir()} <= set(ENTRIES):
+        return (f"{out}: exists, is not empty and is not an earlier demo output (no {MARKER} "
+                "in it); give demo --out a new or empty folder")
+    out.mkdir(parents=True, exist_ok=True)
+    for name in ENTRIES:
+        entry = out / name
+        if entry.is_dir() and not entry.is_symlink():
+            shutil.rmtree(entry)
+        elif entry.exists() or entry.is_symlink():
+            entry.unlink()
+    (out / MARKER).write_text("made by slicetime demo; the demo may rebuild this folder\n",
+                              encoding="utf-8")
+    return None
 
 
 @dataclass(frozen=True)

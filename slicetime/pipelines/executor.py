@@ -346,7 +346,7 @@ class DaskExecutor(Executor):
             from distributed import Client
         except ImportError:
             raise ExecutorError(
-                "--scheduler needs the optional Dask support: pip install 'slicetime[dask]'"
+                "--scheduler needs the optional Dask support: pip install 'slicetime-bids[dask]'"
             ) from None
         try:
             self.client = Client(address, timeout=timeout, set_as_default=False)
