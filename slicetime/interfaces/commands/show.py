@@ -31,7 +31,6 @@ def show(file: Path, as_json: bool, fail_on: str, policy_file: Path | None) -> N
     from slicetime.interfaces.terminal import make_console, render_show
     from slicetime.model import Severity
     from slicetime.pipelines.audit import inspect_run
-
     from slicetime.readers.dicom import is_dicom_input
 
     if is_dicom_input(str(file)):
