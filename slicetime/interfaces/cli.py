@@ -26,6 +26,7 @@ COMMANDS: dict[str, tuple[str, str]] = {
              "correct)."),
     "explain": ("explain", "Print the documentation of a finding CODE (or --list them all)."),
     "fix": ("fix", "Repair slice-timing metadata in sidecars: a dry run unless --apply."),
+    "pin": ("pin", "Write the protocol the runs under PATHS share as a lab policy (TOML)."),
     "show": ("show", "Show one run: its schedule, where each value came from, its scheme and "
              "findings."),
     "timing": ("timing", "Print SliceTiming for a protocol, as JSON to paste into a sidecar."),

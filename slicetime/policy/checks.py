@@ -77,6 +77,8 @@ __all__ = [
     "apply_policy",
     "check_protocol",
     "dataset_codes_judged",
+    "judge",
+    "observed",
     "select_protocol",
 ]
 
@@ -374,45 +376,67 @@ def _check_tr(policy: Policy, protocol: ExpectedProtocol, record: RunRecord) -> 
     )
 
 
-def _check_slices(policy: Policy, protocol: ExpectedProtocol, record: RunRecord) -> Hit | None:
-    expected = protocol.slices
+def _found_slices(record: RunRecord, fallback: str | None = None) -> tuple[int, Axis] | None:
+    """The image's extent along the slice axis (see the module docstring), with the axis."""
     header = record.header
-    if expected is None or header is None:
+    if header is None:
         return None
+    axis: Axis
     if record.schedule is not None:
         axis = record.schedule.axis
     else:
         parsed = parse_direction(record.metadata.get("SliceEncodingDirection"))
         if parsed is not None:
             axis = parsed[0]
-        elif protocol.slice_encoding_direction is not None:
-            axis = cast(Axis, protocol.slice_encoding_direction[0])  # validated on loading
+        elif fallback is not None:
+            axis = cast(Axis, fallback[0])  # validated on loading
         else:
             axis = "k"
     index = AXES.index(axis)
-    found = header.shape[index] if len(header.shape) > index else 1
+    return (header.shape[index] if len(header.shape) > index else 1), axis
+
+
+def _check_slices(policy: Policy, protocol: ExpectedProtocol, record: RunRecord) -> Hit | None:
+    expected = protocol.slices
+    seen = _found_slices(record, protocol.slice_encoding_direction)
+    if expected is None or seen is None or record.header is None:
+        return None
+    found, axis = seen
     if found == expected:
         return None
+    index = AXES.index(axis)
     return Hit(
         f"the image has {found} slices along {axis} but {protocol.describe()} expects {expected}",
         f"dim[{index + 1}]",
-        _evidence(policy, protocol, record, expected, found, axis=axis, shape=list(header.shape)),
+        _evidence(policy, protocol, record, expected, found, axis=axis,
+                  shape=list(record.header.shape)),
         file=record.path,
     )
+
+
+def _found_multiband(record: RunRecord) -> tuple[int, bool] | None:
+    """The multiband factor (see the module docstring) and whether the slice times gave it."""
+    scheme = record.scheme
+    if (
+        scheme is not None
+        and len(scheme.groups) > 1
+        and scheme.evidence.get("kind") != "unequal-groups"
+    ):
+        return scheme.multiband_factor, True
+    declared = record.metadata.get("MultibandAccelerationFactor")
+    if is_number(declared) and declared == int(declared) and declared >= 1:
+        return int(declared), False
+    return None
 
 
 def _check_multiband(policy: Policy, protocol: ExpectedProtocol, record: RunRecord) -> Hit | None:
     expected = protocol.multiband_factor
     if expected is None:
         return None
-    scheme = record.scheme
     declared = record.metadata.get("MultibandAccelerationFactor")
-    if (
-        scheme is not None
-        and len(scheme.groups) > 1
-        and scheme.evidence.get("kind") != "unequal-groups"
-    ):
-        found = scheme.multiband_factor
+    seen = _found_multiband(record)
+    if seen is not None and seen[1]:
+        found = seen[0]
         if found == expected:
             return None
         field = "SliceTiming" if record.timing_origin == "sidecar" else "slice_code"
@@ -432,8 +456,8 @@ def _check_multiband(policy: Policy, protocol: ExpectedProtocol, record: RunReco
             ),
             file=_source_file(source, record),
         )
-    if is_number(declared) and declared == int(declared) and declared >= 1:
-        found = int(declared)
+    if seen is not None:
+        found = seen[0]
         if found == expected:
             return None
         return Hit(
@@ -486,10 +510,8 @@ def _check_scheme(policy: Policy, protocol: ExpectedProtocol, record: RunRecord)
     )
 
 
-def _check_direction(policy: Policy, protocol: ExpectedProtocol, record: RunRecord) -> Hit | None:
-    expected = protocol.slice_encoding_direction
-    if expected is None:
-        return None
+def _found_direction(record: RunRecord) -> tuple[str, Source | None] | None:
+    """The slice axis and direction (see the module docstring) and where it came from."""
     schedule = record.schedule
     source: Source | None
     if schedule is not None:
@@ -508,6 +530,15 @@ def _check_direction(policy: Policy, protocol: ExpectedProtocol, record: RunReco
             )
         else:
             return None  # reported as axis/unknown-direction
+    return found, source
+
+
+def _check_direction(policy: Policy, protocol: ExpectedProtocol, record: RunRecord) -> Hit | None:
+    expected = protocol.slice_encoding_direction
+    seen = _found_direction(record)
+    if expected is None or seen is None:
+        return None
+    found, source = seen
     if found == expected:
         return None
     kind = source.kind if source is not None else "sidecar"
@@ -551,6 +582,32 @@ def _ambiguous(policy: Policy, record: RunRecord, tied: tuple[ExpectedProtocol, 
         },
         file=record.path,
     )
+
+
+def observed(record: RunRecord) -> dict[str, Any]:
+    """What each expectation is compared with for this run (the module docstring), None
+    where it is not checked: the values a policy written from the dataset states."""
+    tr = _found_tr(record)
+    slices = _found_slices(record)
+    multiband = _found_multiband(record)
+    direction = _found_direction(record)
+    return {
+        "repetition_time": tr[0] if tr is not None else None,
+        "slices": slices[0] if slices is not None else None,
+        "multiband_factor": multiband[0] if multiband is not None else None,
+        "scheme": record.scheme.label if record.scheme is not None else None,
+        "slice_encoding_direction": direction[0] if direction is not None else None,
+    }
+
+
+def judge(protocol: ExpectedProtocol, record: RunRecord) -> list[tuple[str, Hit]]:
+    """The ``policy/*`` hits of one run against one protocol (no selection)."""
+    out = []
+    for code, check in _CHECKS:
+        hit = check(Policy(), protocol, record)
+        if hit is not None:
+            out.append((code, hit))
+    return out
 
 
 _CHECKS = (

@@ -1,0 +1,49 @@
+"""``slicetime pin``: the dataset's protocol, as it is, written as a lab policy."""
+
+from __future__ import annotations
+
+import os
+from pathlib import Path
+
+import click
+
+from slicetime.interfaces.commands.shared import UserError, friendly, walking_options
+
+
+@click.command()
+@click.argument("paths", nargs=-1, required=True, type=click.Path(path_type=Path))
+@click.option("--output", type=click.Path(path_type=Path, dir_okay=False),
+              help="Write the policy to this file (refused when it exists) instead of "
+              "standard output.")
+@walking_options("pin")
+@friendly
+def pin(paths: tuple[Path, ...], output: Path | None, include_derivatives: bool,
+        include_sourcedata: bool, include_hidden: bool) -> None:
+    """Write the protocol the runs under PATHS share as a lab policy (TOML).
+
+    Per task and acquisition: the TR, slice count, scheme, multiband factor and
+    slice encoding direction that a majority of the runs has; the runs that
+    disagree are listed as comments under their entry. Review the file and keep
+    it as slicetime-policy.toml at the dataset root: later deviations then fail
+    the audit (policy/* findings). Nothing in the dataset is changed.
+    """
+    from slicetime.pipelines.pin import pin_protocols, policy_text
+
+    entries, untasked = pin_protocols(
+        list(paths), include_derivatives=include_derivatives,
+        include_sourcedata=include_sourcedata, include_hidden=include_hidden)
+    text = policy_text(entries, ", ".join(p.as_posix() for p in paths), untasked)
+    if output is None:
+        click.echo(text, nl=False)
+        return
+    try:
+        with open(output, "x", encoding="utf-8") as fh:  # never over an existing file
+            fh.write(text)
+    except FileExistsError:
+        raise UserError(f"{output}: already exists; pin writes a new file (remove it or "
+                        "choose another name)") from None
+    except OSError as exc:
+        raise UserError(f"{output}: cannot write the policy ({exc.strerror or exc})") from None
+    disagreeing = sum(len({p for p, _, _ in e.disagreeing}) for e in entries)
+    click.echo(f"{os.fspath(output)}: {len(entries)} protocols written; "
+               f"{disagreeing} runs disagree with them (listed in the file)", err=True)
