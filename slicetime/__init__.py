@@ -45,7 +45,9 @@ def __getattr__(name: str) -> Any:
 
 
 def __dir__() -> list[str]:
-    return sorted([*globals(), *_API])
+    """The public names and the subpackages (PEP 562), not this module's typing imports."""
+    hidden = {"Any", "TYPE_CHECKING", "annotations"}
+    return sorted({*(n for n in globals() if n not in hidden), *_API})
 
 
 __all__ = ["__version__", *_API]

@@ -483,3 +483,8 @@ def inspect(run: str | os.PathLike[str], *,
 
 __all__ = ["audit", "correct_array", "correct_image", "infer_scheme", "inspect",
            "reference_time", "slice_times"]
+
+
+def __dir__() -> list[str]:
+    """The public names only (PEP 562): not the typing helpers this module imports."""
+    return sorted(__all__)

@@ -230,3 +230,13 @@ def test_the_package_declares_its_type_hints() -> None:
     from importlib import resources
 
     assert resources.files("slicetime").joinpath("py.typed").is_file()
+
+
+def test_the_api_modules_list_only_their_public_names() -> None:
+    # PEP 562: a module's __dir__ decides what dir() and completion show; the names a
+    # module imports for its annotations are not part of the API
+    for module in (slicetime, slicetime.api):
+        shown = set(dir(module))
+        assert not shown & {"Any", "TYPE_CHECKING", "annotations", "cast", "math", "os"}
+        assert set(module.__all__) <= shown
+    assert sorted(dir(slicetime.api)) == sorted(slicetime.api.__all__)

@@ -201,3 +201,29 @@ def test_bad_policy_given_explicitly_is_exit_2(dataset: Path, tmp_path: Path) ->
     bad.write_text("version = 1\n[[protocols]]\nmatch = {}\nrepetition_time = -1\n")
     code, _, err = run_cli("audit", str(dataset), "--policy", str(bad))
     assert code == 2 and "repetition_time" in err and "Traceback" not in err
+
+
+def test_shell_completion_completes_codes_for_explain() -> None:
+    # click's completion protocol (bash_complete: one "type,value" line per candidate)
+    from slicetime.rules import RULES
+
+    result = CliRunner().invoke(cli, [], prog_name="slicetime", env={
+        "_SLICETIME_COMPLETE": "bash_complete", "COMP_WORDS": "slicetime explain timing/u",
+        "COMP_CWORD": "2"})
+    offered = [line.split(",", 1)[1] for line in result.output.splitlines() if line]
+    assert offered == sorted(c for c in RULES if c.startswith("timing/u"))
+    assert "timing/units-ms" in offered
+
+
+def test_show_on_an_events_table_says_it_is_not_a_run(tmp_path: Path) -> None:
+    # BIDS "Task events": *_events.tsv accompanies a run and is not one
+
+    write_description(tmp_path)
+    run = write_run(tmp_path, "sub-01/func/sub-01_task-x_bold.nii.gz", shape=(4, 4, 3, 5),
+                    tr=2.0, sidecar={"RepetitionTime": 2.0, "SliceTiming": [0, 0.5, 1.0]})
+    events = run.with_name("sub-01_task-x_events.tsv")
+    events.write_text("onset\tduration\n1\t2\n")
+    result = CliRunner().invoke(cli, ["show", str(events)])
+    assert result.exit_code == 2
+    assert "not a run" in result.output and "enam" not in result.output  # no "Rename"
+    assert str(run) in result.output  # the run it belongs to

@@ -10,8 +10,18 @@ import click
 from slicetime.interfaces.commands.shared import UserError, friendly
 
 
+def _complete_codes(ctx: click.Context, param: click.Parameter, incomplete: str
+                    ) -> list[Any]:
+    """Shell completion of CODE: the registered finding codes."""
+    from click.shell_completion import CompletionItem
+
+    from slicetime.rules import RULES
+
+    return [CompletionItem(code) for code in sorted(RULES) if code.startswith(incomplete)]
+
+
 @click.command()
-@click.argument("code", required=False)
+@click.argument("code", required=False, shell_complete=_complete_codes)
 @click.option("--list", "list_all", is_flag=True, help="List every finding code.")
 @friendly
 def explain(code: str | None, list_all: bool) -> None:
