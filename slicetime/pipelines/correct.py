@@ -765,7 +765,10 @@ def correct_paths(
                 finished.append(found)
         result.runs = _in_input_order(audit.runs, finished, clashes)
         _withdraw_stale(options, audit.runs, result.runs)
-        _finish(options, roots, links, result, created_out)
+        done_paths = {r.path for r in finished}
+        _finish(options, roots, links, result, created_out,
+                unfinished=[run.record.path for run, _ in items
+                            if run.record.path not in done_paths])
         raise CorrectInterrupted(result, len(items) - len(finished)) from None
     result.runs = _in_input_order(audit.runs, done, clashes)
     _withdraw_stale(options, audit.runs, result.runs)
@@ -882,7 +885,11 @@ def _finish(
     links: dict[str, str],
     result: CorrectResult,
     created_out: bool,
+    unfinished: Sequence[str] = (),
 ) -> None:
+    """Describe the output when it holds corrected runs; else remove what this batch
+    made. The folders of runs that produced nothing (failed, refused, or ``unfinished``
+    when the batch was interrupted) are removed when empty."""
     withdrawn = any(r.removed for r in result.runs)
     if any(r.ok for r in result.runs) or withdrawn:
         _describe(options.out, roots, links, options)
@@ -891,8 +898,8 @@ def _finish(
         for name in ("dataset_description.json", PROVENANCE_FILE):
             with contextlib.suppress(FileNotFoundError):
                 os.unlink(options.out / name)
-    prune_empty_folders(options.out, [r.path for r in result.runs if not r.ok], options.desc,
-                        remove_out=created_out)
+    prune_empty_folders(options.out, [*(r.path for r in result.runs if not r.ok), *unfinished],
+                        options.desc, remove_out=created_out)
 
 
 def _lost_run(item: tuple[RunResult, str], why: str) -> RunOutcome:

@@ -144,6 +144,46 @@ def outlier_slices(records: Sequence[RunRecord]) -> Iterator[DatasetHit]:
     yield from _consensus(records, value, lambda v: f"{v}", "slice count", "SliceTiming")
 
 
+def _run_stem(path: str) -> str | None:
+    lower = path.lower()
+    for ext in (".nii.gz", ".nii"):
+        if lower.endswith(ext):
+            return path[: -len(ext)]
+    return None
+
+
+@dataset_rule(
+    "dataset/duplicate-run",
+    title="one run is present twice, as .nii and as .nii.gz",
+    severity=E,
+    rationale=(
+        "A run is one image file: BIDS names it once, with either NIfTI extension, and its "
+        "sidecar, events and derivatives are named from that one name. Two copies (one "
+        "compressed, one not) share the sidecar and the output name; tools pick either, and "
+        "the two may differ."
+    ),
+    fix="Keep one copy (usually the .nii.gz) and delete the other, after checking they hold "
+    "the same data.",
+)
+def duplicate_run(records: Sequence[RunRecord]) -> Iterator[DatasetHit]:
+    copies: dict[tuple[str, str], list[RunRecord]] = defaultdict(list)
+    for record in records:
+        stem = _run_stem(record.path)
+        if stem is not None:
+            copies[(record.root, stem)].append(record)
+    for (_, stem), same in sorted(copies.items()):
+        if len(same) < 2:
+            continue
+        names = sorted(r.path.rsplit("/", 1)[-1] for r in same)
+        for record in sorted(same, key=lambda r: r.path):
+            others = [n for n in names if n != record.path.rsplit("/", 1)[-1]]
+            yield DatasetHit(record.abs_path, Hit(
+                f"{record.path.rsplit('/', 1)[-1]} and {', '.join(others)} are copies of one "
+                "run (the same name with both NIfTI extensions)",
+                evidence={"copies": [r.path for r in sorted(same, key=lambda r: r.path)]},
+                file=record.path))
+
+
 def _echo_family(record: RunRecord) -> tuple[Any, ...] | None:
     if "echo" not in record.entities and "part" not in record.entities:
         return None

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import contextlib
 import sys
 from collections.abc import Sequence
 from pathlib import Path
@@ -64,6 +65,7 @@ def _engine_names() -> Sequence[str]:
 @policy_option("The audit that gates correction applies it.")
 @click.option("--format", "fmt", type=click.Choice(["text", "json"]), default="text",
               show_default=True, help="Report format on stdout.")
+@click.option("--no-progress", is_flag=True, help="No progress bar or progress lines on stderr.")
 @walking_options("correct")
 @click.option("--mix-inputs", is_flag=True,
               help="Allow an --out folder that already holds outputs made from other input "
@@ -85,6 +87,7 @@ def correct(
     scheduler: str | None,
     policy_file: Path | None,
     fmt: str,
+    no_progress: bool,
     include_derivatives: bool,
     include_sourcedata: bool,
     include_hidden: bool,
@@ -125,7 +128,8 @@ def correct(
                              mix_inputs=mix_inputs, accepts=accepted,
                              omit_leading=omit_leading)
     with run_executor(jobs, scheduler, light=False) as executor, \
-            progress_reporter("correcting") as progress:
+            (contextlib.nullcontext(None) if no_progress
+             else progress_reporter("correcting")) as progress:
         try:
             result = correct_paths(
                 list(paths), options, progress=progress, policy_file=policy_file,
@@ -133,6 +137,11 @@ def correct(
                 include_hidden=include_hidden, executor=executor, verify=verify_data,
             )
         except CorrectInterrupted as stop:
+            if not stop.result.runs:  # nothing finished: no summary of zero runs
+                click.echo(f"slicetime: interrupted before any run was corrected; nothing "
+                           f"written ({count(stop.not_finished, 'run')} to do: rerun the same "
+                           "command)", err=True)
+                sys.exit(130)
             render_correct(stop.result, make_console(sys.stderr))
             click.echo(f"slicetime: interrupted; {count(stop.not_finished, 'run')} not finished "
                        "(rerun the same command to finish them)", err=True)
