@@ -171,7 +171,7 @@ def duplicate_run(records: Sequence[RunRecord]) -> Iterator[DatasetHit]:
         stem = _run_stem(record.path)
         if stem is not None:
             copies[(record.root, stem)].append(record)
-    for (_, stem), same in sorted(copies.items()):
+    for _, same in sorted(copies.items()):
         if len(same) < 2:
             continue
         names = sorted(r.path.rsplit("/", 1)[-1] for r in same)
