@@ -423,3 +423,25 @@ def test_the_html_page_from_worker_parts_equals_the_page_from_whole_records(
             spool.close()
     assert pages[0] == pages[1]
     assert "dg-2" in pages[0]  # more than one distinct diagram (the outlier's own)
+
+
+def test_dask_reports_the_workers_that_ran_the_tasks(tmp_path: Path,
+                                                     dask_cluster: object) -> None:
+    # distributed's own task stream (a scheduler plugin) records the worker of every task;
+    # the executor's count must be exactly the workers that stream names
+    distributed = pytest.importorskip("distributed")
+    root = make_dataset(tmp_path / "ds", n_subjects=8)
+    address = dask_cluster.scheduler_address  # type: ignore[attr-defined]
+    executor = DaskExecutor(address)
+    watcher = distributed.Client(address, set_as_default=False)
+    try:
+        with distributed.get_task_stream(client=watcher) as stream:
+            audit_module.map_chunks(
+                audit_module.audit_chunk, [(root, p) for p in sorted(root.rglob("*.nii.gz"))],
+                lost=lambda item, why: None, executor=executor, chunk_size=1)
+    finally:
+        executor.close()
+        watcher.close()
+    ran = {task["worker"] for task in stream.data if str(task["key"]).startswith("slicetime-")}
+    assert ran and executor.stats.workers == ran
+    assert executor.stats.cluster_workers == 2  # the cluster of the fixture

@@ -74,7 +74,10 @@ class RunStats:
     """What an executor did: for summaries and for tests."""
 
     executor: str = "serial"
+    #: the workers that ran a chunk (Dask: each task names its own worker)
     workers: set[str] = field(default_factory=set)
+    #: how many workers the cluster had (Dask), None when not known
+    cluster_workers: int | None = None
     retried_chunks: int = 0
     lost_items: int = 0
 
@@ -335,6 +338,23 @@ def _stop_workers(pool: ProcessPoolExecutor) -> None:
                 process.join(1.0)
 
 
+@dataclass(frozen=True)
+class _Located(Generic[T, R]):
+    """A job that also says which Dask worker ran it (the result may later be held
+    elsewhere, so the scheduler's record of who holds it is not who ran it)."""
+
+    job: Job[T, R]
+
+    def __call__(self, items: Sequence[T]) -> tuple[str, list[R]]:
+        from distributed import get_worker
+
+        try:
+            where = get_worker().address
+        except ValueError:  # not on a worker (a client running tasks itself)
+            where = "client"
+        return where, self.job(items)
+
+
 class DaskExecutor(Executor):
     """Chunks as tasks on a running ``distributed`` scheduler (retried once)."""
 
@@ -361,8 +381,12 @@ class DaskExecutor(Executor):
         from distributed import as_completed
 
         todo = tracker.pending()
+        try:
+            self.stats.cluster_workers = len(self.client.scheduler_info().get("workers", {}))
+        except Exception:  # only a summary figure: never a reason to fail
+            self.stats.cluster_workers = None
         futures = self.client.map(
-            job, [tracker.chunks[i] for i in todo], pure=False, retries=1,
+            _Located(job), [tracker.chunks[i] for i in todo], pure=False, retries=1,
             key=[f"slicetime-{time.time_ns()}-{i}" for i in todo],
         )
         index_of = {future.key: i for future, i in zip(futures, todo, strict=True)}
@@ -373,9 +397,9 @@ class DaskExecutor(Executor):
                     why = f"its Dask task failed ({type(future.exception()).__name__})"
                     self._give_up(tracker, index, lost, why)
                     continue
-                where = self.client.who_has([future]).get(future.key, ())
-                self.stats.workers.update(where)
-                tracker.finish(index, future.result())
+                where, result = future.result()
+                self.stats.workers.add(where)
+                tracker.finish(index, result)
                 future.release()
         except BaseException:
             self.client.cancel(futures)

@@ -196,8 +196,10 @@ def run_executor(jobs: int | None, scheduler: str | None, *, light: bool = True,
     finally:
         stats = executor.stats
         if executor.name == "dask":
-            click.echo(f"slicetime: ran on {count(len(stats.workers), 'Dask worker')} of "
-                       f"{scheduler}", err=True)
+            of = (f" of the {stats.cluster_workers} at {scheduler}"
+                  if stats.cluster_workers is not None else f" at {scheduler}")
+            click.echo(f"slicetime: ran on {count(len(stats.workers), 'Dask worker')}{of}",
+                       err=True)
         if stats.retried_chunks:
             click.echo(f"slicetime: {count(stats.retried_chunks, 'chunk')} retried after a lost "
                        f"worker, {count(stats.lost_items, 'run')} lost twice", err=True)
