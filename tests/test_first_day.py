@@ -8,6 +8,7 @@ rest is common practice (no source): Ctrl-C must not leave half-made folders.
 from __future__ import annotations
 
 import contextlib
+import re
 from collections.abc import Iterator, Sequence
 from pathlib import Path
 from typing import Any
@@ -88,3 +89,45 @@ def test_nii_and_nii_gz_copies_of_one_run_are_flagged(tmp_path: Path) -> None:
     assert flagged == {"sub-01/func/sub-01_task-x_bold.nii",
                        "sub-01/func/sub-01_task-x_bold.nii.gz"}
     assert result.exit_code == 1
+
+
+def test_fix_takes_source_and_no_source_like_audit(tmp_path: Path) -> None:
+    # nibabel's resting mosaic as the source (see tests/test_dicom_source.py): the sidecar's
+    # wrong times are rebuilt from it, unless the cross-check is switched off
+    from tests.test_dicom_source import resting_tree
+
+    root, _, _ = resting_tree(tmp_path, [i * 0.06 for i in range(32)])
+    with_source = CliRunner().invoke(cli, ["fix", str(root), "--source"])
+    assert with_source.exit_code == 1 and "source/times-differ" in with_source.output
+    without = CliRunner().invoke(cli, ["fix", str(root), "--no-source"])
+    assert without.exit_code == 0, without.output
+    assert "source/" not in without.output
+
+
+def test_the_fix_plan_lists_what_it_leaves_and_why(tmp_path: Path) -> None:
+    import json
+
+    from slicetime.pipelines.demo import build_demo_dataset
+    from slicetime.pipelines.fix import plan_fix
+
+    root = tmp_path / "study"
+    build_demo_dataset(root)
+    shown = CliRunner().invoke(cli, ["fix", str(root)])
+    assert shown.exit_code == 1
+    listed = dict(re.findall(r"^  ([a-z]+/[a-z-]+) ×(\d+): ", shown.output, flags=re.M))
+    # the audit's own report, minus what the plan repairs, is what the plan leaves
+    report = json.loads(CliRunner().invoke(cli, ["audit", str(root), "--format",
+                                                 "json"]).output)
+    plan = plan_fix([root])
+    repaired = {(r.run, r.code) for c in plan.changes for r in c.repairs}
+    expected: dict[str, int] = {}
+    for run in report["runs"]:
+        for f in run["findings"]:
+            if f["severity"] != "note" and (run["path"], f["code"]) not in repaired:
+                expected[f["code"]] = expected.get(f["code"], 0) + 1
+    for f in report.get("dataset_findings", []):
+        if f["severity"] != "note":
+            expected[f["code"]] = expected.get(f["code"], 0) + 1
+    assert {k: int(v) for k, v in listed.items()} == expected
+    assert "file/truncated" in listed  # a defect no sidecar edit can repair
+    assert "Copy or convert the run again" in shown.output  # and what to do instead

@@ -294,6 +294,47 @@ def render_fix_plan(plan: FixPlan, console: Console) -> None:
     for note in plan.notes:
         for i, part in enumerate(screen.wrap_words(f"note: {xml_safe(note)}", width, rest=6)):
             console.print(Text(("" if i == 0 else "      ") + part, style=STYLE[Severity.NOTE]))
+    left = left_unfixed(plan)
+    if left:
+        console.print(Text(f"left as they are ({count(sum(n for _, n, _ in left), 'finding')} "
+                           "this plan does not repair):", style="bold"))
+        for code, n, why in left:
+            for i, part in enumerate(screen.wrap_words(f"{code} ×{n}: {why}", width, first=2,
+                                                       rest=6)):
+                console.print(Text(("  " if i == 0 else "      ") + part))
     total = len(plan.changes)
     console.print(Text(f"{count(total, 'file')} to change"
                        + ("" if total else " — nothing to fix")))
+
+
+def left_unfixed(plan: FixPlan) -> list[tuple[str, int, str]]:
+    """The errors and warnings of the plan's audit that no planned change repairs:
+    (code, how many, why), in code order. Why: fix repairs sidecar metadata only, so a
+    code it cannot repair says what to do instead; a repairable one it did not plan is
+    explained by the plan's notes."""
+    from slicetime.rules import RULES
+
+    if plan.audit is None:
+        return []
+    repaired = {(r.root, r.run, r.code) for change in plan.changes for r in change.repairs}
+    counts: dict[str, int] = {}
+    for run in plan.audit.runs:
+        for finding in run.findings:
+            if finding.severity is Severity.NOTE or \
+                    (run.record.root, run.record.path, finding.code) in repaired:
+                continue
+            counts[finding.code] = counts.get(finding.code, 0) + 1
+    for finding in plan.audit.dataset_findings:
+        if finding.severity is not Severity.NOTE:
+            counts[finding.code] = counts.get(finding.code, 0) + 1
+    out = []
+    for code, n in sorted(counts.items()):
+        rule = RULES.get(code)
+        if rule is not None and rule.fixable:
+            why = "repairable, but not planned here (see the notes above)" if plan.notes \
+                else "repairable, but the values to write are not known"
+        else:
+            todo = rule.fix if rule is not None and rule.fix else "see slicetime explain " + code
+            why = f"not a sidecar repair: {todo}"
+        out.append((code, n, why))
+    return out

@@ -45,7 +45,7 @@ from slicetime.interfaces.commands.shared import (
               "instead of refusing it.")
 @policy_option("Its expected protocols can rebuild missing timing.")
 @executor_options(default=JOBS_LIGHT)
-@source_options(switch=False, purpose="Used to rebuild timing from sourcedata/.")
+@source_options(purpose="Used to rebuild timing from sourcedata/.")
 @friendly
 def fix(
     paths: tuple[Path, ...],
@@ -60,6 +60,7 @@ def fix(
     policy_file: Path | None,
     jobs: int | None,
     scheduler: str | None,
+    source_check: bool | None,
     source_map: Path | None,
 ) -> None:
     """Repair slice-timing metadata in sidecars: a dry run unless --apply.
@@ -100,7 +101,7 @@ def fix(
                 plan = fixing.plan_fix(list(paths), per_run=per_run, policy_file=policy_file,
                                        executor=executor, consolidate=consolidate,
                                        spread=spread,
-                                       source=source_settings(None, source_map))
+                                       source=source_settings(source_check, source_map))
             # the dry run names what --apply would refuse (one refusal writes nothing)
             plan.notes.extend(f"--apply would refuse it, and then write nothing: {line}"
                               for line in fixing.preflight(plan, replace_links))
@@ -130,7 +131,7 @@ def fix(
         click.echo(f"backups and journal: {xml_safe(applied.journal)}  (undo: slicetime fix "
                    f"--undo {xml_safe(applied.journal)})")
     left = (fixing.reaudit(plan, policy_file=policy_file,
-                           source=source_settings(None, source_map))
+                           source=source_settings(source_check, source_map))
             if applied.written else [])
     if left:
         for finding in left:
