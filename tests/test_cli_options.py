@@ -39,7 +39,7 @@ GROUPS = {
 APPLIED = {
     "audit": {"walking", "executor", "policy", "source"},
     "correct": {"walking", "executor", "policy"},
-    "fix": {"executor", "policy"},
+    "fix": {"executor", "policy", "source"},  # --source/--no-source as for audit (issue 27)
     "show": {"policy"},
     "verify": set(),
 }

@@ -82,7 +82,8 @@ def _wrapper_kind(ds: Any) -> str:
     return "classic"
 
 
-@pytest.mark.parametrize("path", NIB_DICOM, ids=lambda p: p.parent.parent.name + "/" + p.name)
+# ids by position: some of nibabel's file names name their makers, which this project never does
+@pytest.mark.parametrize("path", NIB_DICOM, ids=[f"nibabel-{n}" for n in range(len(NIB_DICOM))])
 def test_every_dicom_file_nibabel_ships_is_read_as_what_it_holds(path: Path) -> None:
     ds = _dataset_of(path)
     series = read_series(str(path), path.name)
