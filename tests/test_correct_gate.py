@@ -188,6 +188,9 @@ def test_a_policy_may_accept_only_doubting_codes(ds: Path, tmp_path: Path) -> No
     policy.write_text('version = 1\n[[accept]]\ncodes = ["timing/uneven"]\nreason = "x"\n')
     code, _, err = correct_json(ds, "--out", tmp_path / "out", "--policy", policy)
     assert code == 2 and "accept[0].codes[0]" in err and "doubt" in err
+    policy.write_text('version = 1\n[[accept]]\ncodes = ["source/reversed"]\n')
+    code, _, err = correct_json(ds, "--out", tmp_path / "out", "--policy", policy)
+    assert code == 2 and "accept[0].reason: missing" in err and "recorded" in err
     code, _, err = correct_json(ds, "--out", tmp_path / "out", "--accept", "tr/missing")
     assert code == 2 and "--accept" in err and "Traceback" not in err
 

@@ -354,6 +354,13 @@ _REQUIRED_WHY = {
     "codes": 'list the finding codes to ignore (codes = ["*"] for every code)',
     "reason": 'say why these findings are ignored (reason = "..."): a lab must say why',
 }
+#: the same for an ``[[accept]]`` entry (the table a missing key belongs to decides)
+_REQUIRED_WHY_ACCEPT = {
+    "codes": 'list the codes whose doubt is accepted, each exactly '
+    '(codes = ["header/slice-code-mismatch"])',
+    "reason": 'say why the runs\' own timing is trusted despite the doubt (reason = "..."): '
+    "it is recorded in every output",
+}
 
 
 def _schema_problem(error: jsonschema.ValidationError) -> tuple[list[str | int], str]:
@@ -379,7 +386,8 @@ def _schema_problem(error: jsonschema.ValidationError) -> tuple[list[str | int],
     if validator == "required" and isinstance(error.instance, dict):
         missing = [k for k in error.validator_value if k not in error.instance]
         key = missing[0] if missing else "?"
-        return [*path, key], "missing: " + _REQUIRED_WHY.get(key, "this key is required")
+        why = _REQUIRED_WHY_ACCEPT if path[:1] == ["accept"] else _REQUIRED_WHY
+        return [*path, key], "missing: " + why.get(key, "this key is required")
     if (
         validator == "anyOf"
         and isinstance(error.instance, dict)
