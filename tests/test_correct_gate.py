@@ -258,3 +258,20 @@ def test_a_doubt_the_policy_ignores_still_needs_accepting(ds: Path, tmp_path: Pa
                                 "header/slice-code-mismatch")
     assert code == 0 and doc["runs"][0]["accepted_doubts"][0]["accepted_by"] == (
         "--accept header/slice-code-mismatch")
+
+
+def test_an_output_is_redone_when_the_acceptance_changes(ds: Path, tmp_path: Path) -> None:
+    build_run(ds, REL, SEQUENTIAL, slice_code=2, slice_duration=0.25)
+    out = tmp_path / "out"
+    code, doc, _ = correct_json(ds, "--out", out, "--accept", "header/slice-code-mismatch")
+    assert code == 0 and doc["runs"][0]["status"] == "corrected"
+    code, doc, _ = correct_json(ds, "--out", out, "--accept", "header/slice-code-mismatch")
+    assert doc["runs"][0]["status"] == "up-to-date"
+    # accepted now by another entry: the output's record would no longer be true
+    code, doc, _ = correct_json(ds, "--out", out, "--accept",
+                                "header/slice-code-mismatch:sub-01/**")
+    assert code == 0 and doc["runs"][0]["status"] == "corrected"
+    sidecar = json.loads(output_of(out, REL).with_name(
+        "sub-01_task-hum_desc-timealigned_bold.json").read_text())
+    assert sidecar["SliceTimeAlignment"]["AcceptedDoubts"][0]["AcceptedBy"].endswith(
+        "sub-01/**")

@@ -415,6 +415,9 @@ def _correct(
     target = _target(record, options)
     outcome.output = target.rel.as_posix()
     settings = options.settings(engine)
+    if outcome.accepted:  # an output made under other acceptances is not reused
+        settings["AcceptedDoubts"] = sorted(f"{a['code']} ({a['accepted_by']}: {a['reason']})"
+                                            for a in outcome.accepted)
     if _reuse(record, target, settings, options, outcome):
         return forced
     _resample_and_write(record, plan, engine, options, target, settings, dataset_name, outcome)
