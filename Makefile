@@ -40,6 +40,7 @@ bench: $(STAMP)
 		--multiband-volumes 1200 --batch-runs 6 --batch-volumes 200 --out bench-results/correct.json
 	$(PY) benchmarks/bench_fix.py --sizes 2000,20000 --out bench-results/fix.json
 	$(PY) benchmarks/bench_verify.py --repeat 3 --out bench-results/verify.json
+	$(PY) benchmarks/bench_edges.py --seeds 15 --out bench-results/edges.json
 
 validate: $(STAMP)
 	$(PY) validation/make_report.py --out docs

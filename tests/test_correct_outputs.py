@@ -253,7 +253,10 @@ def test_a_volume_timing_output_states_its_frame_duration(tmp_path: Path) -> Non
     write_description(ds)
     _volume_timing(ds)
     out = tmp_path / "out"
-    assert run("correct", ds, "--out", out, "--method", "cubic")[0] == 0
+    code, text, _ = run("correct", ds, "--out", out, "--method", "cubic")
+    assert code == 0
+    # without RepetitionTime there is no single slice_time_ref: the frame times are said
+    assert "frame times = VolumeTiming + StartTime (1 output without RepetitionTime)" in text
     sidecar = sidecar_of(out, REL)
     # 8 interleaved slices 0.25 s apart occupy 2.0 s
     assert sidecar["FrameAcquisitionDuration"] == pytest.approx(2.0)
@@ -324,8 +327,10 @@ def test_leading_volumes_left_out_are_counted_as_discarded(tmp_path: Path) -> No
     build_run(ds, REL, interleaved(8))
     whole, cut = tmp_path / "whole", tmp_path / "cut"
     assert run("correct", ds, "--out", whole)[0] == 0
-    code, _, err = run("correct", ds, "--out", cut, "--omit-leading", "4")
+    code, text, err = run("correct", ds, "--out", cut, "--omit-leading", "4")
     assert code == 0, err
+    # BIDS: events.tsv onsets refer to the first volume in the file, now the fifth
+    assert "event onsets count from volume 4 now" in text
     # nibabel as the reference reader: the volumes kept are the whole run's from the
     # fifth on (they were interpolated with the first four still in the series)
     full = np.asarray(nib.load(output_of(whole, REL)).dataobj)
