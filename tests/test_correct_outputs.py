@@ -388,3 +388,20 @@ def test_the_hand_off_gives_what_a_model_reads_from_the_derivative(tmp_path: Pat
     assert document["runs"][0]["slice_time_ref"] == pytest.approx(expected)
     assert f"= {expected:g} (every output)" in document["hand_off"]
     assert sidecar_of(out, REL)["SliceTimeAlignment"]["SliceTimeRef"] == pytest.approx(expected)
+
+
+def test_only_a_silent_part_of_the_tr_becomes_a_delay_time() -> None:
+    # BIDS DelayTime: "time to delay the acquisition of data for the following volume";
+    # absent means zero, so a run whose slices fill the TR states none
+    from slicetime.engines.plan import window_fields
+    from slicetime.model import SliceSchedule
+
+    filled = SliceSchedule(times=tuple(0.25 * z for z in range(8)), repetition_time=2.0)
+    assert window_fields(filled, frozenset()) == {}
+    sparse = SliceSchedule(times=tuple(0.125 * z for z in range(8)), repetition_time=2.0)
+    assert window_fields(sparse, frozenset()) == {"DelayTime": 1.0}
+    # a window the input already states is kept as stated
+    assert window_fields(sparse, frozenset({"DelayTime"})) == {}
+    timed = SliceSchedule(times=tuple(0.25 * z for z in range(8)),
+                          volume_times=(0.0, 2.0, 4.5, 6.5))
+    assert window_fields(timed, frozenset()) == {"FrameAcquisitionDuration": 2.0}

@@ -21,6 +21,7 @@ from slicetime.model import (
     BOUNDARY_SLACK,
     MAX_REPETITION_TIME,
     MIN_REPETITION_TIME,
+    TIME_TOLERANCE,
     SliceSchedule,
     before_start,
     outside_window,
@@ -312,7 +313,8 @@ def window_fields(schedule: SliceSchedule, metadata_keys: set[str] | frozenset[s
     distinct = sorted({round(t, 6) for t in schedule.times})
     step = float(np.median(np.diff(distinct)))
     silent = tr - span
-    return {"DelayTime": round(silent, 6)} if silent > step + 1e-6 else {}
+    # silent beyond one step by more than the project's timing tolerance: a sparse run
+    return {"DelayTime": round(silent, 6)} if silent > step + TIME_TOLERANCE else {}
 
 
 def _group(members: list[int], schedule: SliceSchedule, reference: float) -> ShiftGroup:
