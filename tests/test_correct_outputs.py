@@ -361,6 +361,7 @@ def test_volume_timing_is_cut_to_the_volumes_kept(tmp_path: Path) -> None:
 # --------------------------------------------------------------------------- hand-off
 
 
+@pytest.mark.filterwarnings("ignore:.*a mask was given:RuntimeWarning")
 def test_the_hand_off_gives_what_a_model_reads_from_the_derivative(tmp_path: Path) -> None:
     # nilearn's first_level_from_bids infers slice_time_ref as StartTime / t_r from a
     # derivative dataset (nilearn.interfaces.bids); FirstLevelModel then samples its
@@ -388,6 +389,21 @@ def test_the_hand_off_gives_what_a_model_reads_from_the_derivative(tmp_path: Pat
     assert document["runs"][0]["slice_time_ref"] == pytest.approx(expected)
     assert f"= {expected:g} (every output)" in document["hand_off"]
     assert sidecar_of(out, REL)["SliceTimeAlignment"]["SliceTimeRef"] == pytest.approx(expected)
+    # FirstLevelModel given that slice_time_ref samples its design at the times the
+    # corrected volumes now stand for: volume v at v * RepetitionTime + StartTime
+    import pandas as pd
+    from nilearn.glm.first_level import FirstLevelModel
+
+    image = nib.load(output_of(out, REL))
+    mask = nib.Nifti1Image(np.ones(image.shape[:3], dtype=np.uint8), image.affine)
+    events = pd.DataFrame({"onset": [10.0, 60.0], "duration": [4.0, 4.0],
+                           "trial_type": ["tone", "tone"]})
+    model = FirstLevelModel(t_r=t_r, slice_time_ref=document["runs"][0]["slice_time_ref"],
+                            mask_img=mask, minimize_memory=True).fit(image, events=events)
+    sidecar = sidecar_of(out, REL)
+    stands_for = np.arange(image.shape[3]) * sidecar["RepetitionTime"] + sidecar["StartTime"]
+    np.testing.assert_allclose(model.design_matrices_[0].index.to_numpy(), stands_for,
+                               atol=1e-6)
 
 
 def test_only_a_silent_part_of_the_tr_becomes_a_delay_time() -> None:
