@@ -311,17 +311,33 @@ def _objects_of(path: str, shown_of: Any, problems: list[ReadError]
                 ) -> Iterator[tuple[DicomObject, Any]]:
     """(object, slim header) for every DICOM object in a file or archive."""
     if is_archive_name(path):
+        # one pass over the archive: every member's catalogue tags, and the header bytes
+        # of only the first member (in name order) of each series, parsed whole at the end
+        items: list[tuple[DicomObject, Any]] = []
+        first: dict[str, tuple[list[Any], str, bytes]] = {}
         try:
-            members = sorted(_archive_members(path, shown_of(path)),
-                             key=lambda item: natural(item[0]))
-            for name, data in members:
-                obj = DicomObject(path, name)
+            for name, data in _archive_members(path, shown_of(path)):
+                shown = f"{shown_of(path)}/{name}"
                 try:
-                    yield obj, _parse(data, f"{shown_of(path)}/{name}", None, defer=False)
+                    slim = _parse(data, shown, CATALOGUE_TAGS, defer=False)
                 except ReadError as exc:
                     problems.append(exc)
+                    continue
+                items.append((DicomObject(path, name), slim))
+                uid = str(slim.get("SeriesInstanceUID") or "")
+                if uid not in first or natural(name) < first[uid][0]:
+                    first[uid] = (natural(name), name, data)
         except ReadError as exc:
             problems.append(exc)
+        whole: dict[str, Any] = {}
+        for _, name, data in first.values():
+            try:
+                whole[name] = _parse(data, f"{shown_of(path)}/{name}", None, defer=False)
+            except ReadError as exc:
+                problems.append(exc)
+        items.sort(key=lambda item: natural(item[0].member or ""))
+        for obj, slim in items:
+            yield obj, whole.get(obj.member or "", slim)
         return
     if not is_dicom_path(path):
         return
