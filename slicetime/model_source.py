@@ -47,6 +47,8 @@ class SeriesTiming:
     n_volumes: int | None
     #: why the series carries no per-slice times, or anything else people should know
     notes: tuple[str, ...] = ()
+    #: how many other series share the folders this one's images lie in
+    neighbours: int = 0
 
     @property
     def n_slices(self) -> int:

@@ -268,9 +268,11 @@ def test_a_folder_mixing_two_series_is_said_so(tmp_path: Path) -> None:
     assert shown.exit_code == 0 and len(json.loads(shown.output)) == 2
     _classic_run(root, INVENTED)
     result = audit_paths([root])
-    assert codes(result) == ["source/times-differ"]
+    assert codes(result) == ["source/mixed-folder", "source/times-differ"]
     finding = next(f for f in result.runs[0].findings if f.code == "source/times-differ")
     assert "SeriesNumber 5" in finding.message
+    mixed = next(f for f in result.runs[0].findings if f.code == "source/mixed-folder")
+    assert "1 other series" in mixed.message
     series = read_all_series(str(folder), "all")[0]
     assert not isinstance(series, ReadError)
     assert any("mixes 2 series" in note for note in series.notes)

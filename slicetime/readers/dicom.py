@@ -558,7 +558,8 @@ def read_group(group: SeriesGroup, series: str, root: str | None = None) -> Seri
         where = ", ".join(_path_shown(root)(f) for f in group.folders)
         note = (f"{where} mixes {group.neighbours + 1} series: only the "
                 f"{len(group.objects)} images with SeriesInstanceUID {group.uid} were read")
-        timing = dataclasses.replace(timing, notes=(*timing.notes, note))
+        timing = dataclasses.replace(timing, notes=(*timing.notes, note),
+                                     neighbours=group.neighbours)
     return timing
 
 

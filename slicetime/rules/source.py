@@ -141,6 +141,28 @@ def geometry_differs(record: RunRecord) -> Iterator[Hit]:
                   else None, evidence=_series_facts(found[1]))
 
 
+@run_rule(
+    "source/mixed-folder",
+    checked="source",
+    title="the run's source series shares its folder with other series",
+    severity=N,
+    rationale=(
+        "Series are told apart by SeriesInstanceUID (DICOM PS3.3 C.7.3.1), not by folder: "
+        "only the images of the run's series were read. A folder holding several series "
+        "usually means an export that was not sorted, which is worth knowing when a series "
+        "looks incomplete."
+    ),
+    fix="Nothing is wrong with the run; sort the export into one folder per series if you "
+    "want the folders to say what they hold.",
+)
+def mixed_folder(record: RunRecord) -> Iterator[Hit]:
+    found = matched(record)
+    if found is not None and found[1].neighbours:
+        yield Hit(f"the source series {found[1].series} shares its folder with "
+                  f"{found[1].neighbours} other series; only its own "
+                  "images were read (by SeriesInstanceUID)", evidence=_series_facts(found[1]))
+
+
 # --------------------------------------------------------------------------- times
 
 
