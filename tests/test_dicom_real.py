@@ -327,3 +327,23 @@ def test_mosaic_in_a_zip_equals_the_plain_mosaic(tmp_path: Path) -> None:
     assert packed.times == plain.times and packed.positions == plain.positions
     assert packed.files_read[0].endswith("export.zip/rest/001.dcm")
     assert os.path.getsize(archive) > 0
+
+
+def test_an_archive_that_starts_with_other_files_is_not_read_to_its_end(
+        tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    # a recording archive under sourcedata/ (BIDS allows any form there): once its first
+    # files hold no DICOM, it is left; a DICOM member after them is not looked for
+    monkeypatch.setattr(dicom_files, "MAX_LEADING_OTHERS", 3)
+    archive = tmp_path / "recording.tar"
+    with tarfile.open(archive, "w") as out:
+        for n in range(5):
+            data = f"sample {n}\n".encode()
+            info = tarfile.TarInfo(f"rec/part{n}.bin")
+            info.size = len(data)
+            out.addfile(info, io.BytesIO(data))
+        out.add(RESTING, "rec/zz.dcm")
+    groups, problems = dicom_files.catalogue(str(archive), str)
+    assert groups == [] and problems == []
+    monkeypatch.setattr(dicom_files, "MAX_LEADING_OTHERS", 64)
+    groups, _ = dicom_files.catalogue(str(archive), str)
+    assert [len(g.objects) for g in groups] == [1]  # the same archive, read on: one mosaic

@@ -55,7 +55,6 @@ from slicetime.readers.dicom_files import (
     is_archive_name,
     is_dicom_path,
     natural,
-    read_object,
 )
 from slicetime.readers.errors import ReadError
 
@@ -108,10 +107,6 @@ def is_dicom_input(path: str) -> bool:
 def is_dicom_file(path: str) -> bool:
     """True for a DICOM file (marker or suffix, plain or gzip-compressed) or an archive."""
     return is_archive_name(path) or is_dicom_path(path)
-
-
-def _read(path: str, shown: str, tags: Sequence[str] | None = None) -> Any:
-    return read_object(DicomObject(path), shown, tags)
 
 
 def _get(ds: Any, keyword: str, shown: str) -> Any:

@@ -56,6 +56,9 @@ MAX_HEADER_BYTES = 16 * 1024 * 1024
 _FIRST_PREFIX = 256 * 1024
 #: an archive with more members than this is refused (a scanner export holds thousands)
 MAX_MEMBERS = 200_000
+#: an archive whose first this many files hold no DICOM is not read on (a recording or
+#: a document archive under sourcedata/ is not decompressed to its end)
+MAX_LEADING_OTHERS = 64
 #: values larger than this stay on disk until asked for (plain files)
 _DEFER = 64 * 1024
 _ARCHIVE_SUFFIXES = (".zip", ".tar", ".tar.gz", ".tgz")
@@ -209,38 +212,60 @@ def _member_bytes(stream: Any, name: str, shown: str) -> bytes | None:
 def _archive_members(path: str, shown: str, only: str | None = None
                      ) -> Iterator[tuple[str, bytes]]:
     """(member name, header bytes) of the DICOM members of an archive, in archive order.
-    Tar archives are read as one stream (no seeking back and forth in a compressed one)."""
-    seen = 0
+    Tar archives are read as one stream (no seeking back and forth in a compressed one).
+    Reading stops when the first :data:`MAX_LEADING_OTHERS` files hold no DICOM."""
+    seen = found = others = 0
+
+    def counted(name: str, is_file: bool) -> bool:
+        """Whether to read this member; raises past MAX_MEMBERS."""
+        nonlocal seen, others
+        seen += 1
+        if seen > MAX_MEMBERS:
+            raise fail(shown, f"more than {MAX_MEMBERS:,} members: refused")
+        if only is not None:
+            return is_file and name == only
+        if not is_file:
+            return False
+        if _skipped(name):
+            others += 1
+            return False
+        return True
+
+    def given_up() -> bool:
+        return only is None and not found and others >= MAX_LEADING_OTHERS
+
     try:
         if path.lower().endswith(".zip"):
-            with zipfile.ZipFile(path) as archive:
-                for info in archive.infolist():
-                    seen += 1
-                    if seen > MAX_MEMBERS:
-                        raise fail(shown, f"more than {MAX_MEMBERS:,} members: refused")
-                    if info.is_dir() or _skipped(info.filename) or \
-                            (only is not None and info.filename != only):
+            with zipfile.ZipFile(path) as packed:
+                for info in packed.infolist():
+                    if given_up():
+                        return
+                    if not counted(info.filename, not info.is_dir()):
                         continue
-                    name = info.filename
-                    with archive.open(info) as stream:
-                        data = _member_bytes(stream, name, f"{shown}/{name}")
-                    if data is not None:
-                        yield name, data
+                    with packed.open(info) as stream:
+                        data = _member_bytes(stream, info.filename,
+                                             f"{shown}/{info.filename}")
+                    if data is None:
+                        others += 1
+                        continue
+                    found += 1
+                    yield info.filename, data
             return
         with tarfile.open(path, "r|*") as archive:
             for member in archive:
-                seen += 1
-                if seen > MAX_MEMBERS:
-                    raise fail(shown, f"more than {MAX_MEMBERS:,} members: refused")
-                if not member.isfile() or _skipped(member.name) or \
-                        (only is not None and member.name != only):
+                if given_up():
+                    return
+                if not counted(member.name, member.isfile()):
                     continue
                 extracted = archive.extractfile(member)
                 if extracted is None:
                     continue
                 data = _member_bytes(extracted, member.name, f"{shown}/{member.name}")
-                if data is not None:
-                    yield member.name, data
+                if data is None:
+                    others += 1
+                    continue
+                found += 1
+                yield member.name, data
     except ReadError:
         raise
     except (OSError, EOFError, zipfile.BadZipFile, tarfile.TarError) as exc:
