@@ -347,3 +347,35 @@ def test_an_archive_that_starts_with_other_files_is_not_read_to_its_end(
     monkeypatch.setattr(dicom_files, "MAX_LEADING_OTHERS", 64)
     groups, _ = dicom_files.catalogue(str(archive), str)
     assert [len(g.objects) for g in groups] == [1]  # the same archive, read on: one mosaic
+
+
+def test_one_slice_per_file_epi_with_empty_private_keys_keeps_its_source_check(
+        tmp_path: Path) -> None:
+    # the private image header copied from nibabel's real mosaic (creator included, so
+    # nibabel's reader finds it), with its mosaic keys present but empty
+    root = dataset(tmp_path)
+    folder = root / "sourcedata/sub-01/005"
+    classic_series(folder, INVENTED)
+    base = pydicom.dcmread(RESTING)
+    private = [base[t] for t in base.keys() if t.group == 0x0029]
+    header_tag = next(t for t in base.keys() if t.group == 0x29 and t.element & 0xFF == 0x10
+                      and t.element >= 0x1000)
+    raw = []
+    for f in sorted(folder.iterdir()):
+        ds = pydicom.dcmread(f)
+        for element in private:
+            ds.add(element)
+        ds[header_tag].value = csa2({"MosaicRefAcqTimes": ("FD", []),
+                                     "NumberOfImagesInMosaic": ("US", [])})
+        ds.save_as(f)
+        raw.append((f.name, f.read_bytes()))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        tags = get_csa_header(pydicom.dcmread(folder / raw[0][0]), "image")["tags"]
+    assert tags["MosaicRefAcqTimes"]["items"] == []  # nibabel reads the empty keys
+    _classic_run(root, INVENTED)
+    result = audit_paths([root])
+    assert codes(result) == ["source/times-differ"]  # read as one slice per file
+    finding = next(f for f in result.runs[0].findings if f.code == "source/times-differ")
+    assert [t / 1000 for t in finding.evidence["source_ms"]] == pytest.approx(
+        _expected_from_pydicom(raw), abs=1e-6)
