@@ -103,6 +103,10 @@ def test_every_dicom_file_nibabel_ships_is_read_as_what_it_holds(path: Path) -> 
     if series.times is None:
         assert len(shown.output.strip().splitlines()) == 1
         assert "holds no per-slice times" in shown.output
+    from slicetime.readers.shipped_schemas import document_problem
+
+    as_json = CliRunner().invoke(cli, ["show", str(path), "--json"])
+    assert document_problem("show", json.loads(as_json.output)) is None  # the contract
 
 
 def test_enhanced_file_in_gzip_is_read_up_to_its_pixel_data(monkeypatch: Any) -> None:
@@ -266,6 +270,9 @@ def test_a_folder_mixing_two_series_is_said_so(tmp_path: Path) -> None:
                 for f in folder.iterdir()}) == 2
     shown = CliRunner().invoke(cli, ["show", str(folder), "--json"])
     assert shown.exit_code == 0 and len(json.loads(shown.output)) == 2
+    from slicetime.readers.shipped_schemas import document_problem
+
+    assert document_problem("show", json.loads(shown.output)) is None  # the shipped contract
     _classic_run(root, INVENTED)
     result = audit_paths([root])
     assert codes(result) == ["source/mixed-folder", "source/times-differ"]
