@@ -386,3 +386,29 @@ def test_one_slice_per_file_epi_with_empty_private_keys_keeps_its_source_check(
     finding = next(f for f in result.runs[0].findings if f.code == "source/times-differ")
     assert [t / 1000 for t in finding.evidence["source_ms"]] == pytest.approx(
         _expected_from_pydicom(raw), abs=1e-6)
+
+
+def test_the_catalogue_is_kept_between_chunks_until_the_tree_changes(
+        tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    from slicetime.readers import source as source_module
+
+    root = dataset(tmp_path)
+    classic_series(root / "sourcedata/sub-01/005", INVENTED)
+    calls: list[str] = []
+    real = source_module.catalogue
+
+    def counting(path: str, *args: Any, **kwargs: Any) -> Any:
+        calls.append(path)
+        return real(path, *args, **kwargs)
+
+    monkeypatch.setattr(source_module, "catalogue", counting)
+    first = source_module.SourceIndex(root).groups("01", None)
+    again = source_module.SourceIndex(root).groups("01", None)  # the next chunk
+    assert len(calls) == 1 and again is first
+    classic_series(root / "sourcedata/sub-01/006", INVENTED, series_number=6)
+    for f in (root / "sourcedata/sub-01/006").iterdir():  # another series (PS3.3 C.7.3.1)
+        ds = pydicom.dcmread(f)
+        ds.SeriesInstanceUID = "1.2.3.6"
+        ds.save_as(f)
+    changed = source_module.SourceIndex(root).groups("01", None)
+    assert len(calls) == 2 and len(changed) == 2  # the new files are seen

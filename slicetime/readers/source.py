@@ -24,6 +24,7 @@ from __future__ import annotations
 
 import csv
 import os
+from collections import OrderedDict
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -97,6 +98,43 @@ def run_geometry(path: str) -> Geometry | None:
     return tuple(tuple(float(v) for v in row) for row in affine), shape
 
 
+#: catalogues kept by this process from one chunk of runs to the next (reading every
+#: DICOM header is the cost of the cross-check); each is checked against the size and
+#: modification time of every file under it, so a changed tree is read again
+_KEPT: OrderedDict[tuple[str, str, bool], tuple[tuple[tuple[str, int, int], ...],
+                                                list[SeriesGroup]]] = OrderedDict()
+_KEEP = 16
+
+
+def _signature(path: str, recursive: bool) -> tuple[tuple[str, int, int], ...]:
+    """Every file under ``path`` (the folder itself, or below when ``recursive``) with
+    its size and modification time; the file itself when ``path`` is a file."""
+    out: list[tuple[str, int, int]] = []
+
+    def add(file: str) -> None:
+        try:
+            st = os.stat(file)
+        except OSError:
+            return
+        out.append((file, st.st_size, st.st_mtime_ns))
+
+    if not os.path.isdir(path):
+        add(path)
+    elif recursive:
+        for folder, dirs, files in os.walk(path):
+            dirs[:] = sorted(d for d in dirs if not d.startswith("."))
+            for name in sorted(files):
+                add(os.path.join(folder, name))
+    else:
+        try:
+            names = sorted(os.listdir(path))
+        except OSError:
+            names = []
+        for name in names:
+            add(os.path.join(path, name))
+    return tuple(out)
+
+
 class SourceIndex:
     """The series (grouped by SeriesInstanceUID) under one dataset root's sourcedata/,
     cached for one chunk of runs, with their reads."""
@@ -123,6 +161,13 @@ class SourceIndex:
         """The series of a folder (and below when ``recursive``), an archive or a file."""
         key = f"{int(recursive)}{path}"
         if key not in self._groups:
+            kept_key = (self.root, path, recursive)
+            signature = _signature(path, recursive)
+            kept = _KEPT.get(kept_key)
+            if kept is not None and kept[0] == signature:
+                _KEPT.move_to_end(kept_key)
+                self._groups[key] = kept[1]
+                return kept[1]
             found: list[SeriesGroup] = []
             if os.path.exists(path):
                 try:
@@ -131,6 +176,9 @@ class SourceIndex:
                     found = []
             found.sort(key=lambda g: natural(g.objects[0].shown(self.root)))
             self._groups[key] = found
+            _KEPT[kept_key] = (signature, found)
+            while len(_KEPT) > _KEEP:
+                _KEPT.popitem(last=False)
         return self._groups[key]
 
     def groups(self, subject: str, session: str | None) -> list[SeriesGroup]:
