@@ -9,9 +9,9 @@ from __future__ import annotations
 import dataclasses
 import enum
 import itertools
-from collections.abc import Mapping, Sequence
+from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass
-from typing import TYPE_CHECKING, Any, Literal
+from typing import TYPE_CHECKING, Any, Literal, Protocol
 
 from slicetime.numbers import json_time, json_times, tidy_json
 
@@ -89,6 +89,76 @@ class Severity(str, enum.Enum):
             raise ValueError(
                 f"unknown severity {text!r}; expected one of error, warning, note"
             ) from None
+
+
+class Counts(tuple[int, int, int]):
+    """Findings per severity: (errors, warnings, notes). Counted once per run
+    (:meth:`of`), added up for a dataset, and judged by :class:`FailOn`."""
+
+    __slots__ = ()
+
+    def __new__(cls, error: int = 0, warning: int = 0, note: int = 0) -> Counts:
+        return super().__new__(cls, (error, warning, note))
+
+    def __getnewargs__(self) -> tuple[int, int, int]:  # pickled as its three numbers
+        return (self[0], self[1], self[2])
+
+    @classmethod
+    def of(cls, findings: Iterable[Finding]) -> Counts:
+        e = w = n = 0
+        for f in findings:
+            if f.severity is Severity.ERROR:
+                e += 1
+            elif f.severity is Severity.WARNING:
+                w += 1
+            else:
+                n += 1
+        return cls(e, w, n)
+
+    def plus(self, other: tuple[int, int, int]) -> Counts:
+        return Counts(self[0] + other[0], self[1] + other[1], self[2] + other[2])
+
+    def of_severity(self, severity: Severity) -> int:
+        return self[3 - severity.rank]
+
+    def as_dict(self) -> dict[str, int]:
+        """``{"error": e, "warning": w, "note": n}`` (the reports' summary keys)."""
+        return {"error": self[0], "warning": self[1], "note": self[2]}
+
+
+@dataclass(frozen=True)
+class FailOn:
+    """The one ``--fail-on`` threshold: the least severity that fails (``error``,
+    ``warning``), or ``never``. The exit codes of ``audit`` and ``show`` and the
+    JUnit failures all ask it."""
+
+    least: Severity | None  # None: never
+
+    CHOICES = ("error", "warning", "never")
+
+    @classmethod
+    def parse(cls, text: str | FailOn) -> FailOn:
+        if isinstance(text, FailOn):
+            return text
+        if text not in cls.CHOICES:
+            raise ValueError(f"fail_on must be one of {', '.join(cls.CHOICES)}, not {text!r}")
+        return cls(None if text == "never" else Severity(text))
+
+    def fails(self, severity: Severity) -> bool:
+        return self.least is not None and severity.rank >= self.least.rank
+
+    def reached(self, counts: tuple[int, int, int]) -> bool:
+        """True when any of ``counts`` (errors, warnings, notes) fails."""
+        if self.least is None:
+            return False
+        return any(counts[3 - rank] for rank in range(self.least.rank, 4))
+
+    def exit_code(self, counts: tuple[int, int, int]) -> int:
+        """1 when ``counts`` reach the threshold, else 0."""
+        return 1 if self.reached(counts) else 0
+
+    def __str__(self) -> str:
+        return "never" if self.least is None else self.least.value
 
 
 @dataclass(frozen=True)
@@ -246,13 +316,7 @@ class Finding:
         )
 
     def one_line(self) -> str:
-        where = self.file or ""
-        if self.field:
-            where = f"{where} [{self.field}]" if where else f"[{self.field}]"
-        message = self.message
-        if self.file and message.startswith(self.file + ": "):  # the path once, not twice
-            message = message[len(self.file) + 2:]
-        return f"{self.severity.value}: {self.code}: {where}: {message}"
+        return one_line(self.severity.value, self.code, self.file, self.field, self.message)
 
     def to_json(self) -> dict[str, Any]:
         grounds = tidy_json(_jsonable(self.evidence))
@@ -267,6 +331,17 @@ class Finding:
             "evidence": tidy_json(_jsonable(self.evidence)),  # deprecated: use "grounds"
             "hint": self.hint,
         }
+
+
+def one_line(severity: str, code: str, file: str | None, field: str | None,
+             message: str) -> str:
+    """A finding in one line (``Finding.one_line``; the JUnit writer, from the JSON)."""
+    where = file or ""
+    if field:
+        where = f"{where} [{field}]" if where else f"[{field}]"
+    if file and message.startswith(file + ": "):  # the path once, not twice
+        message = message[len(file) + 2:]
+    return f"{severity}: {code}: {where}: {message}"
 
 
 def _jsonable(value: Any) -> Any:
@@ -472,3 +547,37 @@ class RunRecord:
     def axis_length(self) -> int | None:
         """The number of slices along the resolved slice axis, when the header gives it."""
         return self.timing.axis_length
+
+
+class RunView(Protocol):
+    """What the dataset rules, the lab policy's protocol selection and the report
+    summaries read of a run: a :class:`RunRecord`, or the compact view a streamed
+    audit keeps of every run (``pipelines.audit.RunFacts``). Nothing else of a
+    record may be read there; a dataset rule that needs more adds it to both."""
+
+    @property
+    def path(self) -> str: ...
+    @property
+    def root(self) -> str: ...
+    @property
+    def abs_path(self) -> str: ...
+    @property
+    def entities(self) -> Mapping[str, str]: ...
+    @property
+    def suffix(self) -> str: ...
+    @property
+    def datatype(self) -> str | None: ...
+    @property
+    def header(self) -> HeaderInfo | None: ...
+    @property
+    def content_missing(self) -> str | None: ...
+    @property
+    def timing(self) -> ResolvedTiming: ...
+    @property
+    def schedule(self) -> SliceSchedule | None: ...
+    @property
+    def axis_length(self) -> int | None: ...
+    @property
+    def scheme(self) -> Scheme | None: ...
+    @property
+    def metadata_sources(self) -> Mapping[str, str]: ...

@@ -355,7 +355,7 @@ def _group_name(key: tuple[str, ...], totals: AuditTotals, many_roots: bool) -> 
 def _schemes_table(totals: AuditTotals, tags: dict[str | None, _Tag]) -> str:
     groups: dict[tuple[str, ...], list[int]] = defaultdict(list)
     for i, facts in enumerate(totals.facts):
-        groups[protocol_key(facts)].append(i)  # type: ignore[arg-type]  # RunFacts quacks
+        groups[protocol_key(facts)].append(i)
     many_roots = len({k[0] for k in groups}) > 1
     rows = []
     for key, members in sorted(groups.items()):

@@ -40,26 +40,21 @@ from __future__ import annotations
 
 import json
 import xml.etree.ElementTree as ET
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
+from typing import Any
 
 from slicetime.interfaces.safe_text import xml_safe
-from slicetime.model import Finding, Severity
+from slicetime.model import FailOn, Severity, one_line
 from slicetime.pipelines.audit import AuditResult
 
 __all__ = ["DATASET_CASE", "FAIL_LEVELS", "junit_xml", "xml_safe"]
 
-#: accepted values of ``fail_on``
-FAIL_LEVELS: tuple[str, ...] = ("error", "warning", "never")
+#: accepted values of ``fail_on`` (``model.FailOn``, the one threshold)
+FAIL_LEVELS: tuple[str, ...] = FailOn.CHOICES
 #: the name of the test case that holds findings about the whole dataset
 DATASET_CASE = "dataset"
 SUITE_NAME = "slicetime audit"
 _MAX_MESSAGE = 1000  # characters kept of a message in the ``message`` attribute
-
-def _check_level(fail_on: str) -> int | None:
-    """The lowest failing severity rank, or None for ``never``."""
-    if fail_on not in FAIL_LEVELS:
-        raise ValueError(f"fail_on must be one of {', '.join(FAIL_LEVELS)}, not {fail_on!r}")
-    return None if fail_on == "never" else Severity.parse(fail_on).rank
 
 
 def _folder(path: str) -> str:
@@ -67,46 +62,47 @@ def _folder(path: str) -> str:
     return folder if sep and folder else "."
 
 
-def _message(finding: Finding) -> str:
-    text = " ".join(xml_safe(finding.message, one_line=False).split())
+def _message(finding: Mapping[str, Any]) -> str:
+    text = " ".join(xml_safe(finding["message"], one_line=False).split())
     return text if len(text) <= _MAX_MESSAGE else text[: _MAX_MESSAGE - 1] + "…"
 
 
-def _evidence(finding: Finding) -> str:
-    data = finding.to_json()["grounds"]
-    return json.dumps(data, ensure_ascii=False, sort_keys=True, allow_nan=True, default=str)
+def _evidence(finding: Mapping[str, Any]) -> str:
+    return json.dumps(finding.get("evidence") or {}, ensure_ascii=False, sort_keys=True,
+                      allow_nan=True, default=str)
 
 
-def _failure_text(finding: Finding) -> str:
+def _failure_text(finding: Mapping[str, Any]) -> str:
     lines = [
-        f"severity: {finding.severity.value}",
-        f"file: {xml_safe(finding.file or '-')}",
-        f"field: {xml_safe(finding.field or '-')}",
+        f"severity: {finding['severity']}",
+        f"file: {xml_safe(finding.get('file') or '-')}",
+        f"field: {xml_safe(finding.get('field') or '-')}",
         f"grounds: {xml_safe(_evidence(finding))}",
-        f"hint: {xml_safe(finding.hint or '-')}",
+        f"hint: {xml_safe(finding.get('hint') or '-')}",
     ]
     return "\n".join(lines) + "\n"
 
 
-def _note_line(finding: Finding) -> str:
-    line = xml_safe(finding.one_line())
-    if finding.hint:
-        line += f" (hint: {xml_safe(finding.hint)})"
+def _note_line(finding: Mapping[str, Any]) -> str:
+    line = xml_safe(one_line(finding["severity"], finding["code"], finding.get("file"),
+                             finding.get("field"), finding["message"]))
+    if finding.get("hint"):
+        line += f" (hint: {xml_safe(finding['hint'])})"
     return line
 
 
-def _testcase(
-    parent: ET.Element, classname: str, name: str, findings: Sequence[Finding], level: int | None
-) -> bool:
-    """Add one test case; True when it has a failure."""
+def _testcase(parent: ET.Element, classname: str, name: str,
+              findings: Sequence[Mapping[str, Any]], fail_on: FailOn) -> bool:
+    """Add one test case (its findings as the report's JSON objects); True when it has a
+    failure."""
     case = ET.SubElement(parent, "testcase", classname=xml_safe(classname), name=xml_safe(name))
-    failing: list[Finding] = []
-    quiet: list[Finding] = []
+    failing: list[Mapping[str, Any]] = []
+    quiet: list[Mapping[str, Any]] = []
     for finding in findings:
-        (failing if level is not None and finding.severity.rank >= level else quiet).append(finding)
+        (failing if fail_on.fails(Severity(finding["severity"])) else quiet).append(finding)
     for finding in failing:
         failure = ET.SubElement(
-            case, "failure", type=xml_safe(finding.code), message=_message(finding)
+            case, "failure", type=xml_safe(finding["code"]), message=_message(finding)
         )
         failure.text = _failure_text(finding)
     if quiet:
@@ -126,7 +122,7 @@ def junit_xml(result: AuditResult, *, fail_on: str, root_given: str) -> str:
 
     from slicetime.interfaces.report_stream import MemorySource, write_junit
 
-    _check_level(fail_on)
+    FailOn.parse(fail_on)  # a bad value is refused before anything is written
     buffer = io.StringIO()
     write_junit(MemorySource(result, root_given), buffer, fail_on=fail_on)
     return buffer.getvalue()

@@ -30,7 +30,7 @@ from typing import IO, Any
 from slicetime import __version__
 from slicetime.interfaces import screen
 from slicetime.interfaces.safe_text import _escape, xml_safe
-from slicetime.model import Finding, Scheme, Severity
+from slicetime.model import Counts, FailOn, Finding, Scheme, Severity
 from slicetime.numbers import fixed, json_times, plain, secs
 from slicetime.pipelines.audit import AuditResult, AuditTotals, RunFacts, RunResult, dataset_names
 from slicetime.rules.dataset import protocol_key
@@ -97,12 +97,6 @@ def _scheme_text(scheme: Scheme) -> str:
     return text
 
 
-def _finding_from(obj: dict[str, Any]) -> Finding:
-    return Finding(obj["code"], Severity(obj["severity"]), obj["message"], obj.get("file"),
-                   obj.get("field"), obj.get("grounds") or obj.get("evidence") or {},
-                   obj.get("hint"))
-
-
 # --------------------------------------------------------------------------- sources
 
 
@@ -110,12 +104,13 @@ def _completed(obj: dict[str, Any], more: Sequence[Finding] | None,
                folded: Sequence[tuple[int, Finding]] | None) -> dict[str, Any]:
     """A streamed run object with what the dataset rules found: findings added, and
     those that follow from one of the run's root causes listed under that root's
-    ``evidence["folded"]`` (as :func:`slicetime.rules.fold_consequences` does in memory)."""
-    from slicetime.rules import RULES, folded_entry
+    ``evidence["folded"]``: the decision was made once (``rules.registry.fold``, in the
+    audit), this only writes it into the JSON, as ``attach_folded`` does in memory."""
+    from slicetime.rules.registry import folded_entry, is_fold_root
 
     findings = obj["findings"]
     if folded:
-        roots = [d for d in findings if d["code"] in RULES and RULES[d["code"]].subsumes]
+        roots = [d for d in findings if is_fold_root(d["code"])]
         for number, finding in folded:
             for key in ("grounds", "evidence"):  # evidence: the former name, one release
                 grounds = roots[number].setdefault(key, {})
@@ -192,7 +187,7 @@ class MemorySource(ReportSource):
     """A finished :class:`AuditResult` (every finding already in its runs)."""
 
     def __init__(self, result: AuditResult, root_given: str) -> None:
-        from slicetime.pipelines.audit import _Interner, _severity_counts
+        from slicetime.pipelines.audit import _Interner
 
         shared = _Interner()
         totals = AuditTotals(roots=list(result.roots), names=dataset_names(result.roots),
@@ -200,7 +195,7 @@ class MemorySource(ReportSource):
                              dataset_findings=list(result.dataset_findings),
                              counts=result.counts(), ignored=result.ignored_count(),
                              judged_by_policy=result.judged_by_policy)
-        totals.facts = [RunFacts(r.record, _severity_counts(r.findings), shared)
+        totals.facts = [RunFacts(r.record, Counts.of(r.findings), shared)
                         for r in result.runs]
         missing = {f.root for f in totals.facts} - set(totals.names)
         if missing:
@@ -486,7 +481,7 @@ def write_text(source: ReportSource, out: IO[str], *, show_all: bool = False,
     kinds = ("error", "warning", "note") if show_notes else ("error", "warning")
     groups: dict[tuple[str, ...], list[int]] = defaultdict(list)
     for index, facts in enumerate(totals.facts):
-        groups[protocol_key(facts)].append(index)  # type: ignore[arg-type]
+        groups[protocol_key(facts)].append(index)
     if groups:
         rows = []
         for key, members in sorted(groups.items()):
@@ -585,20 +580,15 @@ def write_junit(source: ReportSource, out: IO[str], *, fail_on: str) -> None:
 
     from slicetime.interfaces import report_junit as junit
 
-    level = junit._check_level(fail_on)
+    threshold = FailOn.parse(fail_on)
     totals = source.totals
     roots = list(dict.fromkeys([*totals.roots, *(f.root for f in totals.facts)]))
     if not roots:
         roots = [source.root_given]
     several = len(roots) > 1
 
-    def failing(counts: tuple[int, int, int]) -> bool:
-        if level is None:
-            return False
-        return bool(counts[0] or (level <= 2 and counts[1]) or (level <= 1 and counts[2]))
-
-    dataset_fails = level is not None and any(
-        f.severity.rank >= level for f in totals.dataset_findings)
+    failing = threshold.reached
+    dataset_fails = any(threshold.fails(f.severity) for f in totals.dataset_findings)
     per_root: dict[str, list[int]] = defaultdict(list)
     for index, facts in enumerate(totals.facts):
         per_root[facts.root].append(index)
@@ -639,12 +629,12 @@ def write_junit(source: ReportSource, out: IO[str], *, fail_on: str) -> None:
             path = obj["path"]
             folder = junit._folder(path)
             classname = f"{name}/{folder}" if several and name else folder
-            junit._testcase(holder, classname, path, [_finding_from(f) for f in obj["findings"]],
-                            level)
+            junit._testcase(holder, classname, path, obj["findings"], threshold)
             _write_element(out, holder[0], ET)
         if with_dataset:
             holder = ET.Element("x")
-            junit._testcase(holder, ".", junit.DATASET_CASE, totals.dataset_findings, level)
+            junit._testcase(holder, ".", junit.DATASET_CASE,
+                            [f.to_json() for f in totals.dataset_findings], threshold)
             _write_element(out, holder[0], ET)
         out.write("  </testsuite>\n")
     out.write("</testsuites>\n")

@@ -16,10 +16,13 @@ from typing import Any
 
 from slicetime.codes import make_finding
 from slicetime.model import (
+    Counts,
+    FailOn,
     Finding,
     HeaderInfo,
     ResolvedTiming,
     RunRecord,
+    RunView,
     Scheme,
     Severity,
     SliceSchedule,
@@ -27,7 +30,13 @@ from slicetime.model import (
 )
 from slicetime.model_source import SourceEvidence
 from slicetime.pipelines.errors import NoRunsError
-from slicetime.pipelines.executor import Executor, Interrupted, Progress, map_chunks
+from slicetime.pipelines.executor import (
+    Executor,
+    Interrupted,
+    ProcessExecutor,
+    Progress,
+    map_chunks,
+)
 from slicetime.policy.checks import (
     IgnoredFinding,
     apply_overrides_and_ignores,
@@ -42,8 +51,8 @@ from slicetime.readers.errors import ReadError
 from slicetime.readers.inheritance import SidecarIndex, SidecarStore, ValueSharer
 from slicetime.readers.record import build_record, relative_display
 from slicetime.readers.source import SourceIndex, SourceOptions, find_source
-from slicetime.rules import RULES, check_dataset, check_run, fold_consequences, folds_into
-from slicetime.rules.registry import RENAMED, known_codes
+from slicetime.rules import check_dataset, check_run, fold_consequences
+from slicetime.rules.registry import RENAMED, attach_folded, fold, fold_roots, known_codes
 
 
 @dataclass
@@ -70,22 +79,16 @@ class AuditResult:
         return len(self.ignored) + sum(len(r.ignored) for r in self.runs)
 
     def counts(self) -> dict[str, int]:
-        counts = {s.value: 0 for s in Severity}
-        for finding in self.all_findings():
-            counts[finding.severity.value] += 1
-        return counts
+        return Counts.of(self.all_findings()).as_dict()
 
     def all_findings(self) -> Iterable[Finding]:
         for run in self.runs:
             yield from run.findings
         yield from self.dataset_findings
 
-    def exit_code(self, fail_on: str) -> int:
+    def exit_code(self, fail_on: str | FailOn) -> int:
         """0 when nothing reaches ``fail_on`` (error|warning|never), else 1."""
-        if fail_on == "never":
-            return 0
-        level = Severity.parse(fail_on).rank
-        return 1 if any(f.severity.rank >= level for f in self.all_findings()) else 0
+        return FailOn.parse(fail_on).exit_code(Counts.of(self.all_findings()))
 
 
 def audit_one(
@@ -217,28 +220,21 @@ def check_paths_hold_runs(paths: Sequence[Path], **include: bool) -> None:
 
 
 class RunFacts:
-    """The small part of a run record that the dataset rules and the report
-    summaries need, kept for every run while a streamed audit writes the rest.
-
-    It answers the attributes of :class:`RunRecord` that ``rules/dataset.py``
-    and :func:`rules.registry.to_finding` read; a dataset rule that needs
-    another attribute must add it here (``tests/test_report_stream.py`` runs
-    the dataset rules on facts and on full records and compares). Values that
-    many runs share (schedules, schemes, headers, source maps) are interned,
-    so 100,000 runs cost a few tens of MB.
+    """The compact view of a run (:class:`slicetime.model.RunView`) that a streamed
+    audit keeps for every run while it writes the rest: what the dataset rules, the
+    policy's protocol selection and the report summaries read (path, root, entities,
+    suffix, datatype and interned header, resolved timing, scheme and source map),
+    plus the run's severity counts and its root causes. A dataset rule that needs
+    another attribute adds it to ``RunView`` and here (``tests/test_report_stream.py``
+    runs the dataset rules on facts and on full records and compares). Values that
+    many runs share (timings, schemes, headers, source maps) are interned, so
+    100,000 runs cost a few tens of MB.
     """
 
     __slots__ = ("_abs", "_sources", "content_missing", "counts", "datatype", "entities",
                  "fold_roots", "header", "path", "root", "scheme", "suffix", "timing")
 
-    #: read by some run rules; a fact never has them
-    metadata: Mapping[str, Any] = {}
-    findings: tuple[Finding, ...] = ()
-    timing_problems: tuple[Any, ...] = ()
-    sidecar_chain: tuple[str, ...] = ()
-    overridden: Mapping[str, Any] = {}
-
-    def __init__(self, record: RunRecord, counts: tuple[int, int, int], shared: _Interner,
+    def __init__(self, record: RunRecord, counts: Counts, shared: _Interner,
                  findings: Sequence[Finding] = ()) -> None:
         self.path = record.path
         self.root = shared.text(record.root)
@@ -258,8 +254,7 @@ class RunFacts:
         self.content_missing = record.content_missing
         self.counts = counts  # (errors, warnings, notes) of the run's own findings
         #: (code, field) of the run's own findings that fold others into them, in order
-        self.fold_roots: tuple[tuple[str, str | None], ...] = tuple(
-            (f.code, f.field) for f in findings if f.code in RULES and RULES[f.code].subsumes)
+        self.fold_roots = fold_roots(findings)
 
     @property
     def abs_path(self) -> str:
@@ -392,18 +387,6 @@ class _Interner:
         return self._one(key, lambda: value)
 
 
-def _severity_counts(findings: Iterable[Finding]) -> tuple[int, int, int]:
-    e = w = n = 0
-    for f in findings:
-        if f.severity is Severity.ERROR:
-            e += 1
-        elif f.severity is Severity.WARNING:
-            w += 1
-        else:
-            n += 1
-    return e, w, n
-
-
 @dataclass
 class AuditTotals:
     """What a streamed audit knows at the end: everything but the run objects.
@@ -418,24 +401,28 @@ class AuditTotals:
     roots: list[str]
     names: dict[str, str] = field(default_factory=dict)  # root -> dataset name
     policies: dict[str, str] = field(default_factory=dict)
+    #: root -> the policy's [[accept]] entries (as ``AuditResult.accepts``)
+    accepts: dict[str, tuple[AcceptEntry, ...]] = field(default_factory=dict)
     facts: list[RunFacts] = field(default_factory=list)
     extras: dict[int, tuple[Finding, ...]] = field(default_factory=dict)
     folds: dict[int, tuple[tuple[int, Finding], ...]] = field(default_factory=dict)
     dataset_findings: list[Finding] = field(default_factory=list)
     counts: dict[str, int] = field(default_factory=lambda: {s.value: 0 for s in Severity})
     ignored: int = 0
+    #: what the policy ignored of the dataset rules' findings: per run, and overall
+    ignored_extras: dict[int, tuple[IgnoredFinding, ...]] = field(default_factory=dict)
+    ignored_overall: list[IgnoredFinding] = field(default_factory=list)
     judged_by_policy: int = 0  # runs judged by a policy protocol instead of the majority
 
     @property
     def runs(self) -> int:
         return len(self.facts)
 
-    def exit_code(self, fail_on: str) -> int:
+    def exit_code(self, fail_on: str | FailOn) -> int:
         """0 when nothing reaches ``fail_on`` (error|warning|never), else 1."""
-        if fail_on == "never":
-            return 0
-        level = Severity.parse(fail_on).rank
-        return 1 if any(self.counts[s.value] for s in Severity if s.rank >= level) else 0
+        counts = self.counts
+        return FailOn.parse(fail_on).exit_code(
+            Counts(counts["error"], counts["warning"], counts["note"]))
 
 
 def dataset_name(root: str) -> str:
@@ -506,6 +493,8 @@ def audit_stream(
         require_runs, listings)
     totals = AuditTotals(roots=roots, names=dataset_names(roots))
     totals.policies = {str(r): p.file or "" for r, p in policies.items() if p is not None}
+    totals.accepts = {str(r): p.accepts for r, p in policies.items()
+                      if p is not None and p.accepts}
     if on_start is not None:
         on_start(totals)
     job: Callable[[Sequence[tuple[Path, Path]]], list[Any]] = functools.partial(
@@ -563,18 +552,20 @@ def audit_stream(
                 continue
             kept, ignored = found
             totals.ignored += len(ignored)
-            kept, folds = _fold_extras(facts.fold_roots, kept)
+            if ignored:
+                totals.ignored_extras[index] = ignored
+            kept, folds = fold(kept, facts.fold_roots)
             if folds:
                 totals.folds[index] = folds
             if kept:
                 totals.extras[index] = kept
-                more = _severity_counts(kept)
-                facts.counts = (facts.counts[0] + more[0], facts.counts[1] + more[1],
-                                facts.counts[2] + more[2])
+                more = Counts.of(kept)
+                facts.counts = facts.counts.plus(more)
                 for key, value in zip(("error", "warning", "note"), more, strict=True):
                     counts[key] += value
         totals.dataset_findings.extend(phase.overall)
         totals.ignored += len(phase.overall_ignored)
+        totals.ignored_overall.extend(phase.overall_ignored)
         for finding in totals.dataset_findings:
             counts[finding.severity.value] += 1
         return totals
@@ -594,7 +585,7 @@ class _Prepared:
 
 def _prepare(result: RunResult, prepare: Callable[[RunResult], Any],
              shared: _Interner) -> _Prepared:
-    return _Prepared(RunFacts(result.record, _severity_counts(result.findings), shared,
+    return _Prepared(RunFacts(result.record, Counts.of(result.findings), shared,
                               result.findings),
                      len(result.ignored), _not_processed(result), prepare(result))
 
@@ -643,26 +634,6 @@ class _Settler:
             gc.unfreeze()
 
 
-def _fold_extras(
-    roots: Sequence[tuple[str, str | None]], extras: Sequence[Finding]
-) -> tuple[tuple[Finding, ...], tuple[tuple[int, Finding], ...]]:
-    """Split a run's dataset findings into those kept and those that follow from one
-    of the run's own root causes (``roots``: code and field of each own finding whose
-    rule folds others, in report order): (kept, ((root number, folded finding), ...))."""
-    if not roots:
-        return tuple(extras), ()
-    kept: list[Finding] = []
-    folds: list[tuple[int, Finding]] = []
-    for finding in extras:
-        owner = next((n for n, (code, field_) in enumerate(roots)
-                      if folds_into(code, field_, finding)), None)
-        if owner is None:
-            kept.append(finding)
-        else:
-            folds.append((owner, finding))
-    return tuple(kept), tuple(folds)
-
-
 @dataclass
 class DatasetPhase:
     """What the dataset rules add, with each root's policy applied."""
@@ -675,7 +646,7 @@ class DatasetPhase:
 
 
 def dataset_phase(
-    records: Sequence[RunRecord] | Sequence[RunFacts], policies: Mapping[Path, Policy | None],
+    records: Sequence[RunView], policies: Mapping[Path, Policy | None],
 ) -> DatasetPhase:
     """The dataset rules over every run, with each root's policy applied. A run whose
     policy protocol states a value is judged by the protocol, not by the majority
@@ -686,11 +657,11 @@ def dataset_phase(
         policy = policies.get(Path(record.root))
         if policy is None:
             continue
-        codes = dataset_codes_judged(policy, record)  # type: ignore[arg-type]  # RunFacts quacks
+        codes = dataset_codes_judged(policy, record)
         for code in codes:
             exempt.setdefault(code, set()).add(record.abs_path)
         judged += bool(codes)
-    per_run, overall = check_dataset(records, exempt)  # type: ignore[arg-type]  # RunFacts quacks
+    per_run, overall = check_dataset(records, exempt)
     by_path = {r.abs_path: r for r in records}
     extras: dict[str, tuple[tuple[Finding, ...], tuple[IgnoredFinding, ...]]] = {}
     for abs_path, found in per_run.items():
@@ -758,44 +729,36 @@ def audit_paths(
     (default: when that folder exists; see :mod:`slicetime.readers.source`). Findings
     that follow from a root cause are folded into it
     (:func:`slicetime.rules.fold_consequences`)."""
-    listings: dict[str, tuple[str, ...]] = {}
-    targets, roots, policies, walk_problems = _targets(
-        paths, policy_file, include_derivatives, include_sourcedata, include_hidden,
-        require_runs, listings)
-    result = AuditResult(roots=roots)
-    result.policies = {str(r): p.file or "" for r, p in policies.items() if p is not None}
-    result.accepts = {str(r): p.accepts for r, p in policies.items()
-                      if p is not None and p.accepts}
-    job = functools.partial(audit_chunk, policies=policies, verify=verify, source=source,
-                            store=SidecarStore(listings=listings))
+    runs: list[RunResult] = []
     sharer = ValueSharer()  # one copy of each inherited value, as chunks come back
 
-    def arrived(run: RunResult) -> bool:
+    def collect(run: RunResult) -> None:
         sharer.add(run.record)
-        return _not_processed(run)
+        runs.append(run)
 
-    result.runs = map_chunks(
-        job,
-        targets,
-        lost=_lost_target,
-        executor=executor,
-        jobs=jobs,
-        progress=progress,
-        failed_of=arrived,
-    )
-    result.dataset_findings.extend(walk_problems)
-    phase = dataset_phase([r.record for r in result.runs], policies)
-    result.judged_by_policy = phase.judged
-    for run in result.runs:
-        kept, ignored = phase.extras.get(run.record.abs_path, ((), ()))
-        run.ignored.extend(ignored)
-        if kept:
-            # the run's own findings and the dataset's, folded together (one root cause
-            # reported once): the streamed report patches its lines the same way
-            run.findings[:] = fold_consequences([*run.findings, *kept])
-    result.dataset_findings.extend(phase.overall)
-    result.ignored.extend(phase.overall_ignored)
-    return result
+    if executor is None and jobs > 1:
+        executor = ProcessExecutor(jobs)
+    totals = audit_stream(
+        paths, collect, include_derivatives=include_derivatives,
+        include_sourcedata=include_sourcedata, include_hidden=include_hidden,
+        progress=progress, policy_file=policy_file, executor=executor, verify=verify,
+        source=source, require_runs=require_runs)
+    return collected(totals, runs)
+
+
+def collected(totals: AuditTotals, runs: list[RunResult]) -> AuditResult:
+    """The in-memory result: the stream's runs with what the dataset rules added to
+    each (kept, and folded into the run's own root causes: decided once in the stream,
+    written into the findings here), the dataset's findings and what was ignored."""
+    for index, run in enumerate(runs):
+        folded, more = totals.folds.get(index), totals.extras.get(index)
+        if folded or more:
+            run.findings[:] = [*attach_folded(run.findings, folded or ()), *(more or ())]
+        run.ignored.extend(totals.ignored_extras.get(index, ()))
+    return AuditResult(roots=totals.roots, runs=runs,
+                       dataset_findings=list(totals.dataset_findings),
+                       ignored=list(totals.ignored_overall), policies=dict(totals.policies),
+                       accepts=dict(totals.accepts), judged_by_policy=totals.judged_by_policy)
 
 
 def inspect_run(image: Path, *, policy_file: Path | None = None,

@@ -60,7 +60,7 @@ from collections.abc import Iterable, Iterator
 from dataclasses import dataclass
 from typing import Any, cast
 
-from slicetime.model import AXES, Axis, Finding, RunRecord, Severity, Source
+from slicetime.model import AXES, Axis, Finding, RunRecord, RunView, Severity, Source
 from slicetime.policy.model import ExpectedProtocol, IgnoreEntry, Policy, SchemeFamily
 from slicetime.rules.registry import RULES, Hit, run_rule, to_finding
 from slicetime.schemes.labels import scheme_family
@@ -215,7 +215,7 @@ class ProtocolChoice:
 # --------------------------------------------------------------------------- applying
 
 
-def select_protocol(policy: Policy, record: RunRecord) -> ProtocolChoice:
+def select_protocol(policy: Policy, record: RunView) -> ProtocolChoice:
     """The most specific protocol selecting ``record`` (see the module docstring)."""
     matching = [
         p for p in policy.protocols if p.selects(record.entities, record.datatype, record.suffix)
@@ -241,7 +241,7 @@ _JUDGED_BY = (
 )
 
 
-def dataset_codes_judged(policy: Policy, record: RunRecord) -> frozenset[str]:
+def dataset_codes_judged(policy: Policy, record: RunView) -> frozenset[str]:
     """The dataset consensus codes that do not apply to ``record`` because the protocol
     the policy selects for it states that value: the run is judged by the protocol
     (``policy/*``), not by the majority of its task and acquisition, and it does not

@@ -6,7 +6,7 @@ from collections import Counter, defaultdict
 from collections.abc import Callable, Hashable, Iterator, Sequence
 from typing import Any
 
-from slicetime.model import TIME_TOLERANCE, RunRecord, Severity
+from slicetime.model import TIME_TOLERANCE, RunRecord, RunView, Severity
 from slicetime.numbers import plain
 from slicetime.rules.registry import DatasetHit, Hit, dataset_rule, run_rule
 
@@ -20,7 +20,7 @@ PROTOCOL_ENTITIES = ("task", "acq", "ce", "rec", "dir")
 MIN_RUNS_FOR_CONSENSUS = 3
 
 
-def protocol_key(record: RunRecord) -> tuple[str, ...]:
+def protocol_key(record: RunView) -> tuple[str, ...]:
     """Runs with the same key (root, datatype, suffix, protocol entities) should agree."""
     return (record.root, record.datatype or "", record.suffix,
             *(f"{e}-{record.entities.get(e, '')}" for e in PROTOCOL_ENTITIES))
@@ -32,15 +32,15 @@ def _describe_key(key: tuple[str, ...]) -> str:
 
 
 def _consensus(
-    records: Sequence[RunRecord],
-    value_of: Callable[[RunRecord], Hashable | None],
+    records: Sequence[RunView],
+    value_of: Callable[[RunView], Hashable | None],
     show: Callable[[Hashable], str],
     what: str,
-    field: str | Callable[[RunRecord, Sequence[RunRecord]], str],
+    field: str | Callable[[RunView, Sequence[RunView]], str],
 ) -> Iterator[DatasetHit]:
     """Outliers against a strict majority of a protocol's runs. ``field`` names the
     field the finding is about, or says it for an outlier given the majority's runs."""
-    groups: dict[tuple[str, ...], list[RunRecord]] = defaultdict(list)
+    groups: dict[tuple[str, ...], list[RunView]] = defaultdict(list)
     for record in records:
         if record.header is not None or record.content_missing is not None:
             groups[protocol_key(record)].append(record)
@@ -68,7 +68,7 @@ def _consensus(
             ))
 
 
-def _scheme_value(record: RunRecord) -> Hashable | None:
+def _scheme_value(record: RunView) -> Hashable | None:
     if record.scheme is None:
         return None
     return (record.scheme.label, record.scheme.groups) if not record.scheme.regular \
@@ -92,11 +92,11 @@ def _scheme_text(value: Hashable) -> str:
     fix="Check the outlier against the protocol; fix its sidecar or record the change with "
     "an acq- entity.",
 )
-def outlier_scheme(records: Sequence[RunRecord]) -> Iterator[DatasetHit]:
+def outlier_scheme(records: Sequence[RunView]) -> Iterator[DatasetHit]:
     yield from _consensus(records, _scheme_value, _scheme_text, "scheme", _scheme_field)
 
 
-def _scheme_field(record: RunRecord, majority: Sequence[RunRecord]) -> str:
+def _scheme_field(record: RunView, majority: Sequence[RunView]) -> str:
     """The field an outlying scheme comes from: SliceEncodingDirection when the run
     reads the very SliceTiming the majority reads (the same sidecar) but takes its
     direction from elsewhere, so the finding names the run's own value and file,
@@ -119,8 +119,8 @@ def _scheme_field(record: RunRecord, majority: Sequence[RunRecord]) -> str:
     rationale="Runs of one protocol share a repetition time.",
     fix="Check RepetitionTime of the outlier against the protocol.",
 )
-def outlier_tr(records: Sequence[RunRecord]) -> Iterator[DatasetHit]:
-    def value(record: RunRecord) -> Hashable | None:
+def outlier_tr(records: Sequence[RunView]) -> Iterator[DatasetHit]:
+    def value(record: RunView) -> Hashable | None:
         tr = record.timing.repetition_time  # seconds, with or without slice times
         return round(tr, 3) if tr else None
 
@@ -135,8 +135,8 @@ def outlier_tr(records: Sequence[RunRecord]) -> Iterator[DatasetHit]:
     rationale="Runs of one protocol have the same number of slices.",
     fix="Check the image: a different slice count means a different protocol or a crop.",
 )
-def outlier_slices(records: Sequence[RunRecord]) -> Iterator[DatasetHit]:
-    def value(record: RunRecord) -> Hashable | None:
+def outlier_slices(records: Sequence[RunView]) -> Iterator[DatasetHit]:
+    def value(record: RunView) -> Hashable | None:
         if record.schedule is not None:
             return record.schedule.n_slices
         return record.axis_length
@@ -165,8 +165,8 @@ def _run_stem(path: str) -> str | None:
     fix="Keep one copy (usually the .nii.gz) and delete the other, after checking they hold "
     "the same data.",
 )
-def duplicate_run(records: Sequence[RunRecord]) -> Iterator[DatasetHit]:
-    copies: dict[tuple[str, str], list[RunRecord]] = defaultdict(list)
+def duplicate_run(records: Sequence[RunView]) -> Iterator[DatasetHit]:
+    copies: dict[tuple[str, str], list[RunView]] = defaultdict(list)
     for record in records:
         stem = _run_stem(record.path)
         if stem is not None:
@@ -184,7 +184,7 @@ def duplicate_run(records: Sequence[RunRecord]) -> Iterator[DatasetHit]:
                 file=record.path))
 
 
-def _echo_family(record: RunRecord) -> tuple[Any, ...] | None:
+def _echo_family(record: RunView) -> tuple[Any, ...] | None:
     if "echo" not in record.entities and "part" not in record.entities:
         return None
     rest = tuple(sorted((k, v) for k, v in record.entities.items() if k not in ("echo", "part")))
@@ -203,8 +203,8 @@ def _echo_family(record: RunRecord) -> tuple[Any, ...] | None:
     ),
     fix="Give every echo the same SliceTiming and RepetitionTime.",
 )
-def echo_mismatch(records: Sequence[RunRecord]) -> Iterator[DatasetHit]:
-    families: dict[tuple[Any, ...], list[RunRecord]] = defaultdict(list)
+def echo_mismatch(records: Sequence[RunView]) -> Iterator[DatasetHit]:
+    families: dict[tuple[Any, ...], list[RunView]] = defaultdict(list)
     for record in records:
         family = _echo_family(record)
         if family is not None and record.schedule is not None:
@@ -265,11 +265,9 @@ def timing_override(record: RunRecord) -> Iterator[Hit]:
 
 
 def _exceeds_window(record: RunRecord) -> bool:
-    schedule = record.schedule
-    window = schedule.acquisition_window if schedule is not None else None
-    if schedule is None or window is None:
-        return False
-    return max(schedule.times) >= window or min(schedule.times) < 0
+    """The resolved verdict: times in the wrong unit, or slices outside the window."""
+    timing = record.timing
+    return bool(timing.outside) or timing.unit("SliceTiming") != "s"
 
 
 def _short(value: Any) -> Any:

@@ -27,10 +27,10 @@ from slicetime.codes import (
     make_finding,
     register,
 )
-from slicetime.model import Finding, RunRecord, Severity
+from slicetime.model import Finding, RunRecord, RunView, Severity
 
 RunCheck = Callable[[RunRecord], Iterable["Hit"]]
-DatasetCheck = Callable[[Sequence[RunRecord]], Iterable["DatasetHit"]]
+DatasetCheck = Callable[[Sequence[RunView]], Iterable["DatasetHit"]]
 
 
 @dataclass(frozen=True)
@@ -149,7 +149,7 @@ def dataset_rule(
 reader_code = declare
 
 
-def to_finding(rule: Rule, record: RunRecord | None, hit: Hit) -> Finding:
+def to_finding(rule: Rule, record: RunView | None, hit: Hit) -> Finding:
     file = hit.file
     if file is None and record is not None:
         if hit.field and hit.field in record.metadata_sources:
@@ -172,7 +172,7 @@ def check_run(record: RunRecord) -> list[Finding]:
 
 
 def check_dataset(
-    records: Sequence[RunRecord], exempt: Mapping[str, Set[str]] | None = None
+    records: Sequence[RunView], exempt: Mapping[str, Set[str]] | None = None
 ) -> tuple[dict[str, list[Finding]], list[Finding]]:
     """Dataset rules: (findings per run ``abs_path``, findings about the whole dataset).
 
@@ -211,38 +211,90 @@ def folded_entry(finding: Finding) -> dict[str, str]:
     return {"code": finding.code, "severity": finding.severity.value, "message": finding.message}
 
 
-def fold_consequences(findings: Sequence[Finding]) -> list[Finding]:
-    """Fold findings that follow from a root cause into it.
+#: (code, field) of a finding whose rule folds others into it: a run's root cause
+FoldRoot = tuple[str, str | None]
 
-    A finding whose rule declares ``subsumes`` absorbs every other finding of the
-    same run with one of those codes on the same field: they leave the list and are
-    listed under ``evidence["folded"]`` of the root (:func:`folded_entry`), so one
-    cause is reported once. Order is kept; a folded finding never absorbs others.
-    """
-    roots = [i for i, f in enumerate(findings) if f.code in RULES and RULES[f.code].subsumes]
+
+def is_fold_root(code: str) -> bool:
+    return code in RULES and bool(RULES[code].subsumes)
+
+
+def fold_roots(findings: Sequence[Finding]) -> tuple[FoldRoot, ...]:
+    """The root causes among a run's findings, in order (numbered by :func:`fold`)."""
+    return tuple((f.code, f.field) for f in findings if is_fold_root(f.code))
+
+
+def _owners(findings: Sequence[Finding], roots: Sequence[FoldRoot] | None
+            ) -> tuple[dict[int, int], list[int]]:
+    """{position of a folded finding: its root's number}, and the positions of the roots
+    among ``findings`` (empty when ``roots`` are given)."""
+    own = roots is None
+    positions: list[int] = []
+    if roots is None:
+        positions = [i for i, f in enumerate(findings) if is_fold_root(f.code)]
+        roots = [(findings[i].code, findings[i].field) for i in positions]
+    owner: dict[int, int] = {}
     if not roots:
+        return owner, positions
+    # roots first, in order (an absorbed root absorbs nothing), then the rest
+    taken = set(positions)
+    for i in positions + [i for i in range(len(findings)) if i not in taken]:
+        for number, (code, field_) in enumerate(roots):
+            if own and (positions[number] == i or positions[number] in owner):
+                continue
+            if folds_into(code, field_, findings[i]):
+                owner[i] = number
+                break
+    return owner, positions
+
+
+def fold(
+    findings: Sequence[Finding], roots: Sequence[FoldRoot]
+) -> tuple[tuple[Finding, ...], tuple[tuple[int, Finding], ...]]:
+    """The one folding decision, for findings that come after the run's own were folded
+    (the dataset rules'): which of them follow from one of the run's root causes
+    ``roots`` (:func:`fold_roots`: a rule that declares ``subsumes``, on the same
+    ``field``). Returns the findings kept and the folded ones with their root's number."""
+    owner, _ = _owners(findings, roots)
+    return (tuple(f for i, f in enumerate(findings) if i not in owner),
+            tuple((owner[i], findings[i]) for i in sorted(owner)))
+
+
+def attach_folded(findings: Sequence[Finding],
+                  folded: Sequence[tuple[int, Finding]]) -> list[Finding]:
+    """``findings`` with each folded finding listed under its root's
+    ``evidence["folded"]`` (:func:`folded_entry`; roots numbered as :func:`fold_roots`)."""
+    if not folded:
         return list(findings)
-    folded_into: dict[int, list[Finding]] = {}
-    taken: set[int] = set()
-    for root_index in roots:
-        if root_index in taken:
-            continue
-        root = findings[root_index]
-        for i, other in enumerate(findings):
-            if i != root_index and i not in taken and folds_into(root.code, root.field, other):
-                taken.add(i)
-                folded_into.setdefault(root_index, []).append(other)
-    result: list[Finding] = []
-    for i, finding in enumerate(findings):
-        if i in taken:
-            continue
-        absorbed = folded_into.get(i)
-        if absorbed:
-            before = list(finding.evidence.get("folded", []))
-            finding = dataclasses.replace(finding, evidence={
-                **finding.evidence, "folded": before + [folded_entry(f) for f in absorbed]})
-        result.append(finding)
-    return result
+    by_root: dict[int, list[Finding]] = {}
+    for number, finding in folded:
+        by_root.setdefault(number, []).append(finding)
+    out: list[Finding] = []
+    number = 0
+    for finding in findings:
+        if is_fold_root(finding.code):
+            absorbed = by_root.get(number)
+            number += 1
+            if absorbed:
+                before = list(finding.evidence.get("folded", []))
+                finding = dataclasses.replace(finding, evidence={
+                    **finding.evidence, "folded": before + [folded_entry(f) for f in absorbed]})
+        out.append(finding)
+    return out
+
+
+def fold_consequences(findings: Sequence[Finding]) -> list[Finding]:
+    """Fold a run's findings that follow from a root cause among them into it (the same
+    decision as :func:`fold`; a root never folds into itself, and a root folded into an
+    earlier one folds nothing): they leave the list and are listed under
+    ``evidence["folded"]`` of the root, so one cause is reported once. Order is kept."""
+    owner, positions = _owners(findings, None)
+    if not owner:
+        return list(findings)
+    kept_roots = {n: new for new, n in enumerate(
+        n for n, p in enumerate(positions) if p not in owner)}
+    kept = [f for i, f in enumerate(findings) if i not in owner]
+    return attach_folded(kept, [(kept_roots[owner[i]], findings[i]) for i in sorted(owner)])
 
 
 def explain(code: str) -> str:

@@ -24,6 +24,7 @@ from slicetime.interfaces.commands.shared import (
     source_settings,
     walking_options,
 )
+from slicetime.model import FailOn
 
 
 def _report_formats() -> Sequence[str]:
@@ -43,7 +44,7 @@ def _report_formats() -> Sequence[str]:
 @click.option("--html", "html_file", type=click.Path(path_type=Path, dir_okay=False),
               help="Also write a self-contained HTML report with timing diagrams to this "
               "file (works offline; any --format still goes to stdout or --output).")
-@click.option("--fail-on", type=click.Choice(["error", "warning", "never"]), default="error",
+@click.option("--fail-on", type=click.Choice(FailOn.CHOICES), default="error",
               show_default=True, help="Exit 1 when a finding reaches this severity.")
 @click.option("--hide-notes", is_flag=True, help="Leave notes out of the text report.")
 @click.option("--all", "show_all", is_flag=True,

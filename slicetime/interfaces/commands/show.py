@@ -9,12 +9,13 @@ from pathlib import Path
 import click
 
 from slicetime.interfaces.commands.shared import EXIT_FINDINGS, UserError, friendly, policy_option
+from slicetime.model import FailOn
 
 
 @click.command()
 @click.argument("file", type=click.Path(path_type=Path))
 @click.option("--json", "as_json", is_flag=True, help="Print the run object of the JSON report.")
-@click.option("--fail-on", type=click.Choice(["error", "warning", "never"]), default="error",
+@click.option("--fail-on", type=click.Choice(FailOn.CHOICES), default="error",
               show_default=True, help="Exit 1 when one of the run's findings reaches this "
               "severity.")
 @policy_option()
@@ -29,7 +30,7 @@ def show(file: Path, as_json: bool, fail_on: str, policy_file: Path | None) -> N
     """
     from slicetime.interfaces.report_json import dumps, run_object
     from slicetime.interfaces.terminal import make_console, render_show
-    from slicetime.model import Severity
+    from slicetime.model import Counts
     from slicetime.pipelines.audit import inspect_run
     from slicetime.readers.dicom import is_dicom_input
 
@@ -49,9 +50,8 @@ def show(file: Path, as_json: bool, fail_on: str, policy_file: Path | None) -> N
 
         render_show(run, make_console())
         render_run_source(run.record, make_console())
-    if fail_on != "never":
-        level = Severity.parse(fail_on).rank
-        sys.exit(EXIT_FINDINGS if any(f.severity.rank >= level for f in run.findings) else 0)
+    if FailOn.parse(fail_on).reached(Counts.of(run.findings)):
+        sys.exit(EXIT_FINDINGS)
 
 
 #: BIDS files that accompany a run (not runs themselves), by the end of their name
