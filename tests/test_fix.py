@@ -183,8 +183,9 @@ def test_a_family_in_the_policy_does_not_settle_the_order(ds: Path) -> None:
         'slices = 10\nscheme = "interleaved"\n'
     )
     result = fix(ds)
-    assert result.exit_code == 0 and "nothing to fix" in result.output
-    assert "timing/missing not repaired" in result.output
+    # issue 23: a fixable finding fix cannot settle is listed as not planned, exit 1
+    assert result.exit_code == 1 and "0 files to change" in result.output
+    assert "timing/missing not planned" in result.output
 
 
 def test_missing_timing_from_agreeing_runs(ds: Path) -> None:
@@ -210,8 +211,8 @@ def test_disagreeing_runs_settle_nothing(ds: Path) -> None:
     write_run(ds, run_path("03"), shape=SHAPE, tr=TR,
               sidecar={"TaskName": "hum", "RepetitionTime": TR})
     result = fix(ds)
-    assert result.exit_code == 0
-    assert "timing/missing not repaired" in result.output
+    assert result.exit_code == 1  # issue 23: not planned is not success
+    assert "timing/missing not planned" in result.output
 
 
 def test_a_list_written_for_the_opposite_direction_is_reversed(ds: Path) -> None:

@@ -74,8 +74,9 @@ Exit status (every command):
        date (correct), nothing to fix or everything applied (fix), no claim
        contradicted (verify)
   1    a finding at or above --fail-on (audit, show; also a file show cannot
-       read), a run refused or failed (correct), changes planned or files
-       refused (fix), a claim contradicted (verify)
+       read), a run refused or failed (correct), changes planned, a fixable
+       finding not planned, or files refused (fix), a claim contradicted
+       (verify)
   2    bad usage: an unknown option or value, a path that does not exist or
        holds no run, an unreadable file or policy named on the command line, a
        missing optional part (e.g. matplotlib for --html)

@@ -291,6 +291,14 @@ def render_fix_plan(plan: FixPlan, console: Console) -> None:
                 text = text[: width - 1] + ("…" if unicode else "~")
             console.print(Text(text, style=style or ""))
         console.print()
+    if plan.unplanned:
+        console.print(Text(f"not planned ({count(len(plan.unplanned), 'fixable finding')})",
+                           style="bold"))
+        for item in plan.unplanned:
+            for i, part in enumerate(screen.wrap_words(xml_safe(item.line()), width, first=2,
+                                                       rest=4)):
+                console.print(Text(("  " if i == 0 else "    ") + part,
+                                   style=STYLE[Severity.WARNING]))
     for note in plan.notes:
         for i, part in enumerate(screen.wrap_words(f"note: {xml_safe(note)}", width, rest=6)):
             console.print(Text(("" if i == 0 else "      ") + part, style=STYLE[Severity.NOTE]))
@@ -304,7 +312,7 @@ def render_fix_plan(plan: FixPlan, console: Console) -> None:
                 console.print(Text(("  " if i == 0 else "      ") + part))
     total = len(plan.changes)
     console.print(Text(f"{count(total, 'file')} to change"
-                       + ("" if total else " — nothing to fix")))
+                       + ("" if total or plan.unplanned else " — nothing to fix")))
 
 
 def left_unfixed(plan: FixPlan) -> list[tuple[str, int, str]]:
@@ -331,8 +339,9 @@ def left_unfixed(plan: FixPlan) -> list[tuple[str, int, str]]:
     for code, n in sorted(counts.items()):
         rule = RULES.get(code)
         if rule is not None and rule.fixable:
-            why = "repairable, but not planned here (see the notes above)" if plan.notes \
-                else "repairable, but the values to write are not known"
+            why = ("repairable, but not planned here (listed above with the reason)"
+                   if any(u.code == code for u in plan.unplanned)
+                   else "repairable, but not planned here (see the notes above)")
         else:
             todo = rule.fix if rule is not None and rule.fix else "see slicetime explain " + code
             why = f"not a sidecar repair: {todo}"

@@ -28,7 +28,7 @@ import math
 import os
 import re
 from collections import defaultdict
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -120,19 +120,38 @@ class FileChange:
         }
 
 
+@dataclass(frozen=True)
+class Unplanned:
+    """A finding the audit calls fixable that the plan does not repair, and why."""
+
+    root: str
+    run: str
+    code: str
+    reason: str
+
+    def line(self) -> str:
+        return f"{self.run}: {self.code} not planned: {self.reason}"
+
+
+#: why a fixable finding is not planned, when nothing more precise is known
+UNSETTLED = "the evidence does not settle the value (see slicetime show)"
+
+
 @dataclass
 class FixPlan:
     changes: list[FileChange] = field(default_factory=list)
-    notes: list[str] = field(default_factory=list)  # repairs not planned, and why
+    notes: list[str] = field(default_factory=list)  # other remarks (layout, placement)
     audit: AuditResult | None = None
     repaired_runs: dict[str, set[str]] = field(default_factory=dict)  # root -> runs
+    #: every fixable finding under the given paths that no change repairs (exit 1)
+    unplanned: list[Unplanned] = field(default_factory=list)
 
     def to_json(self) -> dict[str, Any]:
         return {
             "format": PLAN_FORMAT,
             "tool": {"name": "slicetime", "version": __version__},
             "changes": [c.to_json() for c in self.changes],
-            "notes": self.notes,
+            "notes": [*(u.line() for u in self.unplanned), *self.notes],
         }
 
 
@@ -229,10 +248,14 @@ def _policies(roots: Sequence[Path], policy_file: Path | None) -> dict[str, Poli
 
 
 def _under(run: RunRecord, wanted: Sequence[Path]) -> bool:
+    """Whether the run lies under a given path: where its file really is, or where the
+    walk found it (a subject folder that is a link is walked as part of its dataset)."""
     real = Path(os.path.realpath(run.abs_path))
+    walked = Path(os.path.realpath(run.root)) / run.path
     for target in wanted:
-        if real == target or target in real.parents:
-            return True
+        for place in (real, walked):
+            if place == target or target in place.parents:
+                return True
     return False
 
 
@@ -272,35 +295,58 @@ def plan_fix(
         repairs += plan_run(record, findings, protocol)
     consensus = plan_consensus(runs, repairs)
     repairs += [r for r in consensus if (r.root, r.run) in wanted]
-    _explain_unrepaired(runs, wanted, repairs, plan)
     moves = layout_moves(runs, wanted, consolidate, spread, plan.notes)
     _place(repairs, runs, per_run, plan, moves)
+    reasons = _confine(plan)
+    _unplanned(runs, wanted, plan, reasons)
     for repair in repairs:
-        plan.repaired_runs.setdefault(repair.root, set()).add(repair.run)
+        if (repair.root, repair.run, repair.code) not in reasons:
+            plan.repaired_runs.setdefault(repair.root, set()).add(repair.run)
     return plan
 
 
-def _explain_unrepaired(
+def _confine(plan: FixPlan) -> dict[tuple[str, str, str], str]:
+    """Drop the changes whose sidecar is not inside its dataset (a folder that is a link
+    leading out of the root): slicetime never writes there, so they are not planned.
+    Returns why, per (root, run, code) of the repairs dropped."""
+    reasons: dict[tuple[str, str, str], str] = {}
+    kept: list[FileChange] = []
+    for change in plan.changes:
+        problem = confinement_problem(change.root, change.file)
+        if problem is None:
+            kept.append(change)
+            continue
+        for repair in change.repairs:
+            reasons[(repair.root, repair.run, repair.code)] = (
+                f"{problem} (slicetime writes only inside the dataset root)")
+    plan.changes[:] = kept
+    return reasons
+
+
+def _unplanned(
     runs: Sequence[tuple[RunRecord, list[Finding]]],
     wanted: set[tuple[str, str]],
-    repairs: Sequence[Repair],
     plan: FixPlan,
+    reasons: Mapping[tuple[str, str, str], str],
 ) -> None:
-    done = {(r.root, r.run, r.code) for r in repairs}
+    """Every finding the audit calls fixable, under the given paths, that no planned
+    change repairs goes under ``plan.unplanned`` with the reason (``reasons``, else
+    :data:`UNSETTLED`): whatever the audit calls fixable, fix plans it or says why not."""
     from slicetime.rules.repairs import SOURCE_TIMING_CODES  # source: see rules/repairs.py
 
+    planned = {(r.root, r.run, r.code) for c in plan.changes for r in c.repairs}
     # SliceTiming rebuilt from the source series settles the run's other timing findings
-    sourced = {(r.root, r.run) for r in repairs if r.code in SOURCE_TIMING_CODES}
+    sourced = {(r.root, r.run) for c in plan.changes for r in c.repairs
+               if r.code in SOURCE_TIMING_CODES}
     for record, findings in runs:
-        if (record.root, record.path) not in wanted:
+        key = (record.root, record.path)
+        if key not in wanted or key in sourced:
             continue
         for finding in findings:
-            if finding.code in FIXABLE and (record.root, record.path, finding.code) not in done \
-                    and (record.root, record.path) not in sourced:
-                plan.notes.append(
-                    f"{record.path}: {finding.code} not repaired: the evidence does not settle "
-                    "the value (see slicetime show)"
-                )
+            if finding.code in FIXABLE and (*key, finding.code) not in planned:
+                plan.unplanned.append(Unplanned(
+                    record.root, record.path, finding.code,
+                    reasons.get((*key, finding.code), UNSETTLED)))
 
 
 def _place(

@@ -67,7 +67,8 @@ def fix(
 
     \b
     Exit status: 0 nothing to do (or everything applied / restored); 1 changes
-    are planned (dry run) or some files were refused; 2 bad usage.
+    are planned (dry run), a fixable finding is not planned (listed with the
+    reason), or some files were refused; 2 bad usage.
     \b
     Examples:
       slicetime fix ds/                    # show the planned changes as diffs
@@ -111,9 +112,9 @@ def fix(
                 fixing.write_plan(plan, plan_file)
                 click.echo(f"plan saved to {xml_safe(plan_file)}; apply it with: slicetime fix "
                            f"--apply --plan {xml_safe(plan_file)}")
-            sys.exit(1 if plan.changes else 0)
+            sys.exit(1 if plan.changes or plan.unplanned else 0)
         if not plan.changes:
-            sys.exit(0)
+            sys.exit(1 if plan.unplanned else 0)
         applied = fixing.apply_plan(plan, backup_dir=backup_dir, replace_links=replace_links)
     except fixing.TransactionError as exc:  # FixError and the transaction's refusals
         raise UserError(xml_safe(str(exc))) from None
@@ -138,7 +139,7 @@ def fix(
             click.echo(f"still     {xml_safe(finding.one_line())}")
     elif applied.written:
         click.echo("re-audit: the repaired runs are clean for the repaired codes")
-    sys.exit(1 if applied.refused else 0)
+    sys.exit(1 if applied.refused or plan.unplanned else 0)
 
 
 def _fix_undo(journal: Path) -> None:
