@@ -371,13 +371,18 @@ class _Interner:
         """The resolved timing without what no fact reader needs (the schedule's sources,
         the problems, the TR's source file, the verdicts' evidence), shared."""
         schedule = self.schedule(value.schedule)
-        units = tuple((k, v.unit) for k, v in value.units.items())
+        # the times, the window and what lies outside it follow from the schedule, the
+        # TR and the units: the key needs only those
+        units = tuple([(k, v.unit) for k, v in value.units.items()])
         key = ("r", id(schedule), value.origin, value.axis_length, value.repetition_time,
-               value.times, value.window, value.window_name, value.outside, units)
-        return self._one(key, lambda: ResolvedTiming(
-            schedule, value.origin, (), value.axis_length, value.repetition_time, None,
-            value.times, value.window, value.window_name, value.outside,
-            {k: UnitVerdict(k, u) for k, u in units}))
+               value.window_name, units)
+        found = self._values.get(key)
+        if found is None:
+            found = self._values[key] = ResolvedTiming(
+                schedule, value.origin, (), value.axis_length, value.repetition_time, None,
+                value.times, value.window, value.window_name, value.outside,
+                {k: UnitVerdict(k, u) for k, u in units})
+        return found
 
     def scheme(self, value: Scheme | None, schedule: SliceSchedule | None) -> Scheme | None:
         if value is None:

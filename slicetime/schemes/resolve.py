@@ -10,6 +10,7 @@ an error" never disagree.
 from __future__ import annotations
 
 import dataclasses
+import functools
 import itertools
 import math
 from collections.abc import Mapping, Sequence
@@ -321,19 +322,28 @@ def looks_like_milliseconds(times: Sequence[float], window: float | None) -> boo
     return top >= MS_FACTOR_MIN * window and top / 1000.0 < window
 
 
+#: the verdict for a sidecar time in seconds (one shared object per field)
+_SECONDS = {field: UnitVerdict(field, "s", {"at_most": MAX_REPETITION_TIME})
+            for field in ("RepetitionTime", "VolumeTiming")}
+
+
 def repetition_time_unit(value: float, field: str = "RepetitionTime") -> UnitVerdict:
     """A sidecar repetition time (or ``VolumeTiming`` spacing) above the largest
     plausible TR (``model.MAX_REPETITION_TIME``) was written in milliseconds."""
     if value > MAX_REPETITION_TIME:
         return UnitVerdict(field, "ms", {"value": value, "above": MAX_REPETITION_TIME,
                                          "as_seconds": value / 1000.0})
-    return UnitVerdict(field, "s")
+    return _SECONDS[field]
+
+
+@functools.lru_cache(maxsize=256)
+def _header_unit(field: str, unit: str, raw: float) -> UnitVerdict:
+    return UnitVerdict(field, unit, {"xyzt_units": unit, "as_written": raw})
 
 
 def header_unit(field: str, header: HeaderInfo, raw: float) -> UnitVerdict:
     """A header time's unit is what ``xyzt_units`` states (``unknown`` reads as seconds)."""
-    return UnitVerdict(field, header.time_unit, {"xyzt_units": header.time_unit,
-                                                 "as_written": raw})
+    return _header_unit(field, header.time_unit, raw)
 
 
 def _volume_times(metadata: Mapping[str, Any]) -> tuple[float, ...] | None:
@@ -355,7 +365,8 @@ def _complete(slices: _Slices, metadata: Mapping[str, Any],
     if written is not None:  # BIDS: the sidecar wins, with or without slice times
         units["RepetitionTime"] = verdict = repetition_time_unit(written)
         tr = written * verdict.factor
-        tr_source = Source("sidecar", "RepetitionTime", metadata_sources.get("RepetitionTime"))
+        tr_source = (schedule.sources.get("RepetitionTime") if schedule is not None else None) \
+            or Source("sidecar", "RepetitionTime", metadata_sources.get("RepetitionTime"))
     volume_times = schedule.volume_times if schedule is not None else _volume_times(metadata)
     vt_factor = 1.0
     if volume_times is not None:
@@ -370,7 +381,9 @@ def _complete(slices: _Slices, metadata: Mapping[str, Any],
             units["slice_duration"] = header_unit("slice_duration", header,
                                                   header.raw_slice_duration)
         if tr is None and volume_times is None and header.repetition_time:
-            tr, tr_source = header.repetition_time, Source("header", "pixdim[4]", image_file)
+            tr = header.repetition_time
+            tr_source = (schedule.sources.get("RepetitionTime") if schedule is not None
+                         else None) or Source("header", "pixdim[4]", image_file)
     if schedule is None:
         return ResolvedTiming(None, slices.origin, slices.problems, slices.axis_length,
                               repetition_time=tr, repetition_source=tr_source, units=units)
