@@ -12,7 +12,8 @@ Pure: arrays in, arrays out; no files.
 
 from __future__ import annotations
 
-from collections.abc import Callable, Sequence
+import contextlib
+from collections.abc import Callable, Iterator, Sequence
 
 import numpy as np
 
@@ -22,6 +23,8 @@ from slicetime.engines.interpolate import (
     ResampleStats,
     noise_variance,
     resample,
+    shift_columns,
+    time_kernel,
 )
 from slicetime.engines.plan import ResamplingPlan, ShiftGroup
 
@@ -59,22 +62,63 @@ def align_slice(
         Counts of constant and non-finite series, added to in place.
     rows_per_block
         Voxels transformed together (bounds the temporaries).
+
+    The voxels are transformed along the time axis where they lie
+    (:func:`~slicetime.engines.interpolate.shift_columns`, one kernel per group,
+    computed once), a block of voxels at a time, with one minimum and maximum per
+    voxel to find the constant and non-finite series; those are put back as they
+    were (constant) or handed to the row engine (non-finite samples), so the
+    result is what :func:`~slicetime.engines.interpolate.resample` gives for every
+    series, to float32 rounding. Methods without such a kernel (linear, or a grid
+    that is not evenly spaced) run the row engine on transposed blocks.
     """
     if abs(group.shift) < NO_SHIFT:
         return
     stats = stats if stats is not None else ResampleStats()
     samples = plan.sample_times(group)
     targets = plan.target_times()
+    kernel = time_kernel(engine, samples, targets)
     for start in range(0, view.shape[1], rows_per_block):
         block = view[:, start : start + rows_per_block]
         with np.errstate(invalid="ignore"):
-            if bool(np.all(block.min(axis=0) == block.max(axis=0))):
-                stats.constant += block.shape[1]  # background: nothing to move
-                continue
-        series = np.ascontiguousarray(block.T)
-        done = resample(engine, series, samples, targets, workers=1, stats=stats,
-                        overwrite=True)
-        block[...] = done.T
+            low, high = block.min(axis=0), block.max(axis=0)
+        finite = np.isfinite(low) & np.isfinite(high)
+        constant = finite & (low == high)
+        if bool(constant.all()):
+            stats.constant += block.shape[1]  # background: nothing to move
+            continue
+        if kernel is None:
+            series = np.ascontiguousarray(block.T)
+            done = resample(engine, series, samples, targets, workers=1, stats=stats,
+                            overwrite=True)
+            block[...] = done.T
+            continue
+        odd = np.flatnonzero(~finite)
+        saved = np.ascontiguousarray(block[:, odd].T) if odd.size else None
+        with np.errstate(invalid="ignore", over="ignore"):
+            shift_columns(block, kernel)
+        if constant.any():
+            still = np.flatnonzero(constant)
+            block[:, still] = low[still]
+            stats.constant += still.size
+        if saved is not None:
+            done = resample(engine, saved, samples, targets, workers=1, stats=stats,
+                            overwrite=True)
+            block[:, odd] = done.T
+
+
+@contextlib.contextmanager
+def single_threaded_blas() -> Iterator[None]:
+    """BLAS on one thread while the engine runs (its slices already run in parallel
+    threads; BLAS's own threads would only contend with them). Uses threadpoolctl
+    when it is installed; without it BLAS keeps its settings."""
+    try:
+        from threadpoolctl import threadpool_limits
+    except ImportError:  # pragma: no cover - optional
+        yield
+        return
+    with threadpool_limits(limits=1, user_api="blas"):
+        yield
 
 
 def slice_tasks(plan: ResamplingPlan) -> list[tuple[ShiftGroup, int]]:
@@ -90,15 +134,16 @@ def run_tasks(
     """Run ``work`` over ``tasks`` in ``threads`` threads (the transforms release
     the GIL) and add up their statistics."""
     total = ResampleStats()
-    if threads > 1 and len(tasks) > 1:
-        from concurrent.futures import ThreadPoolExecutor
+    with single_threaded_blas():
+        if threads > 1 and len(tasks) > 1:
+            from concurrent.futures import ThreadPoolExecutor
 
-        with ThreadPoolExecutor(max_workers=threads) as pool:
-            for local in pool.map(work, tasks):
-                total.add(local)
-    else:
-        for task in tasks:
-            total.add(work(task))
+            with ThreadPoolExecutor(max_workers=threads) as pool:
+                for local in pool.map(work, tasks):
+                    total.add(local)
+        else:
+            for task in tasks:
+                total.add(work(task))
     return total
 
 
@@ -168,4 +213,4 @@ def noise_per_slice(plan: ResamplingPlan, engine: Engine, n_slices: int) -> list
 
 
 __all__ = ["NO_SHIFT", "ROWS_PER_BLOCK", "align_array", "align_slice", "noise_per_slice",
-           "run_tasks", "slice_tasks"]
+           "run_tasks", "single_threaded_blas", "slice_tasks"]

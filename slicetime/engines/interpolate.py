@@ -42,6 +42,7 @@ finite sample are copied unchanged.
 
 from __future__ import annotations
 
+import functools
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 from typing import Any
@@ -66,17 +67,26 @@ class IrregularGridError(ValueError):
 
 
 Core = Callable[[np.ndarray, np.ndarray, np.ndarray, int], np.ndarray]
+#: ``(shift in samples, n) -> (response, trend, head, tail)``, see :class:`TimeKernel`
+Response = Callable[[float, int], "tuple[np.ndarray, bool, np.ndarray | None, np.ndarray | None]"]
 
 
 @dataclass(frozen=True)
 class Engine:
-    """One interpolation method with its fixed parameters."""
+    """One interpolation method with its fixed parameters.
+
+    ``core`` works on rows (series, samples); ``response``, when the method has one,
+    describes the same operator on an evenly spaced grid as a filter of the mirrored
+    series (:func:`time_kernel`), which :func:`shift_columns` applies along the time
+    axis in place.
+    """
 
     name: str
     needs_regular_grid: bool
     parameters: Mapping[str, Any]
     core: Core = field(repr=False)
     summary: str = ""
+    response: Response | None = field(default=None, repr=False)
 
 
 @dataclass
@@ -220,6 +230,189 @@ def _linear_core(
     return x[:, left] * (np.float32(1.0) - weight) + x[:, right] * weight
 
 
+# ---------------------------------------------------------------------------
+# the same operators along the time axis, in place (the correction's hot path)
+#
+# Every regular-grid operator above is, on the mirrored series y (period 2n, even
+# about -1/2), a filter: ``out[m] = sum_j h[j] y[m + j]``. The mirrored series'
+# discrete Fourier transform is ``exp(i pi k / 2n) C[k]`` with ``C = dct(x)`` (DCT-II,
+# its Nyquist term is zero), so with ``H[k] = sum_j h[j] exp(i pi k j / n)``
+# (textbook convolution theorem)
+#     out = idct(C Re H) - idst(C[1:] Im H[1:], padded with a zero).
+# fourier: ``H = exp(i pi k d / n)`` (a shift by d samples); sinc: H of its 16 taps;
+# cubic: H of the spline's interior kernel, with the first and last rows (where
+# the not-a-knot ends differ from a mirror) taken from the spline itself.
+# The per-series line fit of fourier and sinc (removed, transformed, added back
+# shifted) is linear too: ``out = S(x) + slope * (t + d - S(t))``, so only the
+# slope is computed per series and the line's contribution is one precomputed
+# vector (its DCT is added to the coefficients).
+
+#: rows at each end of a cubic-spline run taken from the exact spline; beyond them
+#: the spline's influence of the ends has decayed below 0.27**24 = 2e-14 (the
+#: cardinal cubic spline decays by 2 - sqrt(3) per sample: textbook)
+SPLINE_EDGE = 24
+#: taps of the spline's interior kernel on each side (0.27**32: below 1e-18)
+SPLINE_TAPS = 32
+#: the longest spline solved to find the kernel and the end rows
+_SPLINE_SPAN = 4 * SPLINE_EDGE + 2 * SPLINE_TAPS
+
+
+@dataclass(frozen=True, eq=False)
+class TimeKernel:
+    """A regular-grid operator of ``n`` samples, ready for :func:`shift_columns`."""
+
+    n: int
+    re: np.ndarray  # (n, 1) float32: Re H
+    im: np.ndarray  # (n - 1, 1) float32: Im H[1:]
+    #: (n,) float32 centred sample index, or None when no line is removed
+    t: np.ndarray | None
+    #: (n, 1) float32: DCT of (t + d - S(t)) / (t . t), added per unit of t . x
+    line: np.ndarray | None
+    head: np.ndarray | None  # (edge, width) float32: exact first rows
+    tail: np.ndarray | None  # (edge, width) float32: exact last rows
+
+
+def _apply_response(x: np.ndarray, re: np.ndarray, im: np.ndarray) -> np.ndarray:
+    """The filter on the mirrored series, along axis 0 (float64; kernels only)."""
+    fft = _fft()
+    coeffs = fft.dct(x, type=2, axis=0)
+    odd = np.zeros_like(coeffs)
+    odd[:-1] = coeffs[1:] * im
+    coeffs *= re
+    return np.asarray(fft.idct(coeffs, type=2, axis=0) - fft.idst(odd, type=2, axis=0))
+
+
+def _response_of_taps(taps: np.ndarray, offsets: np.ndarray, n: int) -> np.ndarray:
+    k = np.arange(n, dtype=np.float64)[:, None]
+    return np.asarray((taps[None, :] * np.exp(1j * np.pi * k * offsets[None, :] / n)).sum(axis=1))
+
+
+def _fourier_response(shift: float, n: int) -> tuple[np.ndarray, bool, None, None]:
+    return np.exp(1j * np.pi * np.arange(n, dtype=np.float64) * shift / n), True, None, None
+
+
+def _sinc_response(shift: float, n: int) -> tuple[np.ndarray, bool, None, None]:
+    whole = int(np.floor(shift))
+    taps = sinc_weights(shift - whole, SINC_HALF_WIDTH)
+    offsets = whole + np.arange(-SINC_HALF_WIDTH + 1, SINC_HALF_WIDTH + 1, dtype=np.float64)
+    return _response_of_taps(taps, offsets, n), True, None, None
+
+
+def _cubic_response(shift: float, n: int) -> tuple[np.ndarray, bool, np.ndarray, np.ndarray]:
+    from scipy.interpolate import CubicSpline
+
+    span = min(n, _SPLINE_SPAN)
+    index = np.arange(span, dtype=np.float64)
+    # the spline of each unit sample, at the targets: row m holds the weights of
+    # every sample in the value at target m (CubicSpline is linear in the samples)
+    rows = CubicSpline(index, np.eye(span), axis=0, bc_type="not-a-knot")(index + shift)
+    middle = span // 2
+    reach = np.arange(-min(SPLINE_TAPS, middle), min(SPLINE_TAPS, span - 1 - middle) + 1)
+    response = _response_of_taps(rows[middle, middle + reach], reach.astype(np.float64), n)
+    edge = SPLINE_EDGE
+    width = min(span, edge + SPLINE_TAPS)
+    return response, False, rows[:edge, :width], rows[span - edge :, span - width :]
+
+
+def _kernel_of(engine: Engine, shift: float, n: int) -> TimeKernel:
+    assert engine.response is not None
+    response, trend, head, tail = engine.response(shift, n)
+    re = response.real
+    im = response.imag[1:]
+    t_line: np.ndarray | None = None
+    line: np.ndarray | None = None
+    if trend:
+        t = np.arange(n, dtype=np.float64) - (n - 1) / 2.0
+        moved = _apply_response(t[:, None], re[:, None], im[:, None])[:, 0]
+        line = (_fft().dct(t + shift - moved, type=2) / float(np.dot(t, t)))[:, None]
+        t_line = t.astype(np.float32)
+    return TimeKernel(
+        n,
+        np.ascontiguousarray(re[:, None], dtype=np.float32),
+        np.ascontiguousarray(im[:, None], dtype=np.float32),
+        t_line,
+        _as32(line),
+        _as32(head),
+        _as32(tail),
+    )
+
+
+def _as32(array: np.ndarray | None) -> np.ndarray | None:
+    return None if array is None else np.ascontiguousarray(array, dtype=np.float32)
+
+
+@functools.lru_cache(maxsize=256)
+def _cached_kernel(name: str, samples: bytes, targets: bytes) -> TimeKernel | None:
+    engine = ENGINES[name]
+    sample_times = np.frombuffer(samples, dtype=np.float64)
+    target_times = np.frombuffer(targets, dtype=np.float64)
+    n = sample_times.size
+    try:
+        shift = regular_shift(sample_times, target_times)
+    except IrregularGridError:
+        if engine.needs_regular_grid:
+            raise
+        return None
+    if n < _MIN_KERNEL_SAMPLES.get(name, n + 1):
+        return None
+    return _kernel_of(engine, shift, n)
+
+
+#: the shortest series each kernel is used for (below: the row engines). The
+#: cubic kernel needs its two blocks of exact end rows.
+_MIN_KERNEL_SAMPLES = {"fourier": 2, "sinc": 2, "cubic": 2 * SPLINE_EDGE + 1}
+
+
+def time_kernel(
+    engine: Engine, sample_times: np.ndarray, target_times: np.ndarray
+) -> TimeKernel | None:
+    """The engine's operator for these times as a :class:`TimeKernel` (computed once
+    per distinct grid and shift), or None when the engine has no such form for them
+    (linear; cubic on an uneven grid; very short series): then the row engines
+    (:func:`resample`) apply. Raises ``IrregularGridError`` like :func:`resample`."""
+    if engine.response is None or ENGINES.get(engine.name) is not engine:
+        return None
+    samples = np.ascontiguousarray(sample_times, dtype=np.float64)
+    targets = np.ascontiguousarray(target_times, dtype=np.float64)
+    if samples.size != targets.size:
+        raise ValueError("one sample time and one target time per sample are needed")
+    return _cached_kernel(engine.name, samples.tobytes(), targets.tobytes())
+
+
+def shift_columns(block: np.ndarray, kernel: TimeKernel) -> None:
+    """Apply ``kernel`` to every column of ``block`` (float32, ``(n, columns)``, time
+    along axis 0, any strides), in place.
+
+    Every column is transformed: the caller restores columns that must not be
+    (constant and non-finite ones; see ``engines.align``). A non-finite sample
+    stays in its own column. The first row is subtracted before the transforms and
+    added back after (the transforms' rounding then scales with the signal's
+    variation, not its level).
+    """
+    fft = _fft()
+    base = block[0].copy()
+    head = tail = None
+    if kernel.head is not None and kernel.tail is not None:
+        width = kernel.head.shape[1]
+        head = kernel.head @ block[:width]
+        tail = kernel.tail @ block[block.shape[0] - width :]
+    varying = np.subtract(block, base)  # contiguous: the transforms read it fastest
+    coeffs = fft.dct(varying, type=2, axis=0, workers=1, overwrite_x=kernel.t is None)
+    odd = np.empty_like(coeffs)
+    np.multiply(coeffs[1:], kernel.im, out=odd[:-1])
+    odd[-1] = 0.0
+    coeffs *= kernel.re
+    if kernel.line is not None and kernel.t is not None:
+        coeffs += kernel.line * (kernel.t @ varying)
+    del varying
+    out = fft.idct(coeffs, type=2, axis=0, workers=1, overwrite_x=True)
+    out += base
+    np.subtract(out, fft.idst(odd, type=2, axis=0, workers=1, overwrite_x=True), out=block)
+    if head is not None and tail is not None:
+        block[: head.shape[0]] = head
+        block[block.shape[0] - tail.shape[0] :] = tail
+
+
 ENGINES: dict[str, Engine] = {
     "fourier": Engine(
         "fourier",
@@ -227,6 +420,7 @@ ENGINES: dict[str, Engine] = {
         {"detrend": "mean and linear", "extension": "mirror", "precision": "float32"},
         _fourier_core,
         "linear phase ramp on the mirrored, detrended series",
+        _fourier_response,
     ),
     "sinc": Engine(
         "sinc",
@@ -240,6 +434,7 @@ ENGINES: dict[str, Engine] = {
         },
         _sinc_core,
         f"Hann-windowed sinc, {2 * SINC_HALF_WIDTH} taps",
+        _sinc_response,
     ),
     "cubic": Engine(
         "cubic",
@@ -247,6 +442,7 @@ ENGINES: dict[str, Engine] = {
         {"boundary": "not-a-knot", "beyond_ends": "extend end polynomial"},
         _cubic_core,
         "cubic spline, not-a-knot ends",
+        _cubic_response,
     ),
     "linear": Engine(
         "linear",
@@ -272,9 +468,9 @@ def get_engine(name: str) -> Engine:
 def prepare(engine: Engine) -> None:
     """Import the libraries ``engine`` needs. Callers may run this in a thread
     while the image is being read, so the import does not add to the wall time."""
-    if engine.name == "fourier":
+    if engine.response is not None or engine.name == "fourier":
         _fft()
-    elif engine.name == "cubic":
+    if engine.name == "cubic":
         import scipy.interpolate  # noqa: F401
 
 
@@ -395,10 +591,13 @@ __all__ = [
     "Engine",
     "IrregularGridError",
     "ResampleStats",
+    "TimeKernel",
     "get_engine",
     "noise_variance",
     "prepare",
     "regular_shift",
     "resample",
+    "shift_columns",
     "sinc_weights",
+    "time_kernel",
 ]

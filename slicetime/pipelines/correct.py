@@ -35,7 +35,6 @@ import contextlib
 import dataclasses
 import math
 import os
-import threading
 import time
 from collections import Counter
 from collections.abc import Mapping, Sequence
@@ -529,9 +528,9 @@ def _resample_and_write(
     stats = ResampleStats()
     buffer: SliceBuffer | None = None
     writer: VolumeWriter | None = None
-    # the engine's imports load in a thread while the decompressor fills the buffer
-    warm_up = threading.Thread(target=prepare, args=(engine,), daemon=True)
-    warm_up.start()
+    # the engine's imports load before the decoder starts: loading them beside it
+    # holds the interpreter lock the reading thread needs
+    prepare(engine)
     try:
         if budget.on_disk:
             scratch = options.out / f"{TEMP_PREFIX}{os.getpid()}-scratch.f32"
@@ -545,7 +544,6 @@ def _resample_and_write(
         if budget.on_disk:
             release_memory()
         with allocator_tuning(keep_freed=not budget.on_disk):
-            warm_up.join()
             _engine_pass(buffer, plan, engine, budget, stats)
             if budget.on_disk:
                 release_memory()
@@ -602,7 +600,8 @@ def _fill(
     n_volumes = header.shape[3]
     spatial_c = tuple(reversed(header.shape[:3]))
     scale = scaling(header)
-    with VolumeReader(Path(record.abs_path), header, record.path, threads=threads) as reader:
+    with VolumeReader(Path(record.abs_path), header, record.path, threads=threads,
+                      checksum=True) as reader:
         batch = np.empty((budget.volumes_per_batch, *spatial_c), dtype=reader.dtype)
         for first in range(0, n_volumes, budget.volumes_per_batch):
             count = min(budget.volumes_per_batch, n_volumes - first)

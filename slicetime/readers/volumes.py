@@ -31,11 +31,12 @@ import io
 import math
 import os
 import struct
+import threading
 import zlib
 from collections.abc import Iterator
 from pathlib import Path
 from types import TracebackType
-from typing import Any, BinaryIO
+from typing import Any, BinaryIO, Protocol, cast
 
 import numpy as np
 
@@ -45,19 +46,16 @@ from slicetime.numbers import plain
 from .errors import ReadError, open_regular, os_error
 from .nifti import HEADER_LAYOUT, data_offset_problem, extension_problem
 
+_threaded_gzip: Any
+_GZIP_ERRORS: tuple[type[BaseException], ...] = (zlib.error, gzip.BadGzipFile, EOFError)
 try:  # pragma: no cover - depends on the environment
-    from isal import igzip_threaded as _threaded_gzip
+    from isal import igzip_threaded as _isal_threaded
     from isal import isal_zlib as _isal_zlib
 
-    _GZIP_ERRORS: tuple[type[BaseException], ...] = (
-        zlib.error,
-        _isal_zlib.error,
-        gzip.BadGzipFile,
-        EOFError,
-    )
+    _threaded_gzip = _isal_threaded
+    _GZIP_ERRORS += (cast("type[BaseException]", _isal_zlib.error),)
 except ImportError:  # pragma: no cover
     _threaded_gzip = None
-    _GZIP_ERRORS = (zlib.error, gzip.BadGzipFile, EOFError)
 
 #: NIfTI datatype code -> numpy type, for the types correction accepts
 DATA_TYPES: dict[int, np.dtype[Any]] = {
@@ -135,14 +133,20 @@ def scaling_problem(header: HeaderInfo) -> str | None:
     return None
 
 
-class _HashingReader:
-    """A binary file wrapper that hashes every byte read through it and reads at most
-    ``limit`` bytes (the size of the file when it was opened)."""
+class _RawFile(Protocol):
+    def read(self, size: int = -1, /) -> bytes | None: ...
+    def readinto(self, buffer: Any, /) -> int | None: ...
+    @property
+    def closed(self) -> bool: ...
 
-    def __init__(self, fh: BinaryIO, limit: int | None = None) -> None:
+
+class _LimitedReader:
+    """A binary file wrapper that reads at most ``limit`` bytes (the size of the file
+    when it was opened), so a growing file cannot keep a read going."""
+
+    def __init__(self, fh: _RawFile, limit: int | None = None) -> None:
         self._fh = fh
         self._left = limit
-        self.digest = hashlib.sha256()
 
     def _allowed(self, size: int) -> int:
         if self._left is None:
@@ -156,7 +160,6 @@ class _HashingReader:
         data = self._fh.read(size) or b""
         if self._left is not None:
             self._left -= len(data)
-        self.digest.update(data)
         return data
 
     def readinto(self, buffer: Any) -> int:
@@ -167,12 +170,13 @@ class _HashingReader:
         n = self._fh.readinto(view[:size]) or 0
         if self._left is not None:
             self._left -= n
-        if n:
-            self.digest.update(view[:n])
         return n
 
     def readable(self) -> bool:
         return True
+
+    def seek(self, offset: int, /) -> int:
+        raise io.UnsupportedOperation("the image is read once, in order")
 
     def close(self) -> None:
         pass  # the owner closes the real file
@@ -181,23 +185,79 @@ class _HashingReader:
     def closed(self) -> bool:
         return self._fh.closed
 
-    def finish(self) -> str:
-        """Hash whatever is left of the file and return the hex digest."""
-        while self.read(_HASH_CHUNK):
-            pass
-        return self.digest.hexdigest()
+
+class _FileHasher:
+    """SHA-256 of a file's first ``limit`` bytes, computed in a thread of its own with
+    positional reads of the same descriptor (they never move the decoder's position),
+    so hashing runs beside decoding instead of in its way."""
+
+    def __init__(self, fd: int, limit: int) -> None:
+        self._fd = fd
+        self._limit = limit
+        self._digest = hashlib.sha256()
+        self._error: OSError | None = None
+        self._stop = False
+        self._thread = threading.Thread(target=self._run, name="slicetime-hash", daemon=True)
+        self._thread.start()
+
+    def _run(self) -> None:
+        offset = 0
+        try:
+            while offset < self._limit and not self._stop:
+                chunk = os.pread(self._fd, min(_HASH_CHUNK, self._limit - offset), offset)
+                if not chunk:
+                    break
+                self._digest.update(chunk)
+                offset += len(chunk)
+        except OSError as exc:
+            self._error = exc
+
+    def hexdigest(self) -> str:
+        """Wait for the hash; raises the ``OSError`` a read met."""
+        self._thread.join()
+        if self._error is not None:
+            raise self._error
+        return self._digest.hexdigest()
+
+    def stop(self) -> None:
+        self._stop = True
+        self._thread.join()
+
+
+#: decoded blocks the gzip helper thread may keep ready (1 MiB each): enough for the
+#: reader to convert a whole batch while the decoder goes on
+DECODE_QUEUE_BLOCKS = 16
+_DECODE_BLOCK = 1 << 20
+
+
+def _threaded_gzip_reader(fileobj: Any) -> Any:
+    """isal's threaded gzip reader with a deeper queue than its default (2 blocks)."""
+    assert _threaded_gzip is not None
+    reader_class = getattr(_threaded_gzip, "_ThreadedGzipReader", None)
+    if reader_class is None:  # pragma: no cover - another isal version
+        return _threaded_gzip.open(fileobj, "rb", threads=1)
+    try:
+        raw = reader_class(fileobj, queue_size=DECODE_QUEUE_BLOCKS, block_size=_DECODE_BLOCK)
+    except TypeError:  # pragma: no cover - another isal version
+        return _threaded_gzip.open(fileobj, "rb", threads=1)
+    return io.BufferedReader(raw)
 
 
 class VolumeReader:
     """Read the volumes of a single-file NIfTI image in batches, in file order.
 
     Use as a context manager. ``prefix`` holds the bytes before the image data
-    (header, extensions, padding). ``read(count)`` returns a C-ordered array of
-    shape ``(count, *reversed(spatial shape))`` in the stored type, i.e. the
-    NIfTI (Fortran-ordered) volumes viewed without a copy of the bytes.
+    (header, extensions, padding). With ``checksum`` the file's SHA-256 is computed
+    in a thread of its own while the volumes are read (:meth:`sha256`).
+    ``read(count)`` returns a C-ordered array of shape
+    ``(count, *reversed(spatial shape))`` in the stored type, i.e. the NIfTI
+    (Fortran-ordered) volumes viewed without a copy of the bytes.
     """
 
-    def __init__(self, path: Path, header: HeaderInfo, shown: str, *, threads: int = 1) -> None:
+    def __init__(
+        self, path: Path, header: HeaderInfo, shown: str, *, threads: int = 1,
+        checksum: bool = False,
+    ) -> None:
         if len(header.shape) != 4:
             raise ReadError(
                 "file/unsupported",
@@ -214,8 +274,10 @@ class VolumeReader:
         self.n_volumes = header.shape[3]
         self.volume_bytes = math.prod(self.spatial) * self.dtype.itemsize
         self._threads = threads
+        self._checksum = checksum
+        self._size = 0
         self._fh: BinaryIO | None = None
-        self._hasher: _HashingReader | None = None
+        self._hasher: _FileHasher | None = None
         self._stream: Any = None
         self._done = 0
         self.prefix = b""
@@ -225,15 +287,17 @@ class VolumeReader:
         if problem is not None:
             raise problem
         raw, st = open_regular(self.path, self.shown, what="NIfTI file")
-        self._fh = io.BufferedReader(raw)  # type: ignore[arg-type]  # owns and closes raw
-        self._hasher = _HashingReader(self._fh, st.st_size)
+        self._fh = raw
+        self._size = st.st_size
+        if self._checksum:  # from the start, beside the decoder
+            self._hasher = _FileHasher(raw.fileno(), st.st_size)
+        limited = _LimitedReader(cast(_RawFile, raw), st.st_size)  # an unbuffered FileIO
+        self._stream = limited
         if self.header.compressed:
             if _threaded_gzip is not None and self._threads > 0:
-                self._stream = _threaded_gzip.open(self._hasher, "rb", threads=self._threads)
+                self._stream = _threaded_gzip_reader(limited)
             else:
-                self._stream = gzip.GzipFile(fileobj=self._hasher, mode="rb")  # type: ignore[arg-type]
-        else:
-            self._stream = self._hasher
+                self._stream = gzip.GzipFile(fileobj=limited, mode="rb")
         try:
             self.prefix = self._read_exact(self.data_offset, "the header and extensions")
             prefix = self.prefix
@@ -266,6 +330,8 @@ class VolumeReader:
         try:
             self._close_stream()
         finally:
+            if self._hasher is not None:
+                self._hasher.stop()
             if self._fh is not None:
                 self._fh.close()
 
@@ -316,7 +382,7 @@ class VolumeReader:
             raise ValueError("read_into needs a contiguous array within the remaining volumes")
         first = self._done
         what = f"volumes {first} to {first + count - 1}"
-        self._fill(memoryview(out.reshape(-1).view(np.uint8)), what)
+        self._fill(out.reshape(-1).view(np.uint8).data, what)
         self._done += count
 
     def batches(self, count: int) -> Iterator[tuple[int, np.ndarray]]:
@@ -326,18 +392,20 @@ class VolumeReader:
             yield first, self.read(count)
 
     def sha256(self) -> str:
-        """SHA-256 of the whole file on disk (reads what the decoder left).
-
-        The decoder's helper thread reads the file ahead of us, so it is stopped
-        first: only then is this thread the file's single reader, in order.
-        """
-        assert self._hasher is not None
+        """SHA-256 of the whole file on disk (as large as it was when opened), from the
+        hashing thread started on entry (``checksum=True``) or now."""
+        assert self._fh is not None
         self._close_stream()
-        return self._hasher.finish()
+        if self._hasher is None:
+            self._hasher = _FileHasher(self._fh.fileno(), self._size)
+        try:
+            return self._hasher.hexdigest()
+        except OSError as exc:
+            raise os_error(exc, self.shown, what="NIfTI file") from None
 
     def _close_stream(self) -> None:
         stream, self._stream = self._stream, None
-        if stream is not None and stream is not self._hasher:
+        if stream is not None and not isinstance(stream, _LimitedReader):
             with contextlib.suppress(*_GZIP_ERRORS):
                 stream.close()
 
@@ -408,7 +476,7 @@ class VolumeWriter:
                 )
             else:
                 self._stream = gzip.GzipFile(
-                    fileobj=self._hashing,  # type: ignore[arg-type]
+                    fileobj=self._hashing,
                     mode="wb",
                     compresslevel=level,
                     mtime=0,
@@ -418,7 +486,19 @@ class VolumeWriter:
         self._stream.write(prefix)
 
     def write(self, volumes: np.ndarray) -> None:
-        self._stream.write(memoryview(np.ascontiguousarray(volumes).reshape(-1).view(np.uint8)))
+        data = np.ascontiguousarray(volumes).reshape(-1).view(np.uint8).data
+        if self._stream is not self._hashing:
+            self._stream.write(data)  # the encoder's writer thread hashes what it writes
+            return
+        # uncompressed: the bytes are hashed in a thread of their own while this
+        # thread writes them (both release the GIL); both are done before returning
+        hasher = threading.Thread(target=self._digest.update, args=(data,),
+                                  name="slicetime-hash")
+        hasher.start()
+        try:
+            self._raw.write(data)
+        finally:
+            hasher.join()
 
     def close(self) -> None:
         if self._stream is not self._hashing:
