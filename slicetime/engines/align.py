@@ -63,14 +63,15 @@ def align_slice(
     rows_per_block
         Voxels transformed together (bounds the temporaries).
 
-    The voxels are transformed along the time axis where they lie
-    (:func:`~slicetime.engines.interpolate.shift_columns`, one kernel per group,
-    computed once), a block of voxels at a time, with one minimum and maximum per
-    voxel to find the constant and non-finite series; those are put back as they
-    were (constant) or handed to the row engine (non-finite samples), so the
-    result is what :func:`~slicetime.engines.interpolate.resample` gives for every
+    One minimum and maximum per voxel finds the constant series (left as they
+    are) and those with non-finite samples (handed to the row engine,
+    :func:`~slicetime.engines.interpolate.resample`, which handles them series by
+    series). The other voxels are packed side by side into contiguous blocks and
+    transformed along the time axis
+    (:func:`~slicetime.engines.interpolate.shift_columns`, with one kernel per
+    shift, computed once), so the result is what ``resample`` gives for every
     series, to float32 rounding. Methods without such a kernel (linear, or a grid
-    that is not evenly spaced) run the row engine on transposed blocks.
+    that is not evenly spaced) run the row engine on the transposed blocks.
     """
     if abs(group.shift) < NO_SHIFT:
         return
@@ -78,33 +79,55 @@ def align_slice(
     samples = plan.sample_times(group)
     targets = plan.target_times()
     kernel = time_kernel(engine, samples, targets)
-    for start in range(0, view.shape[1], rows_per_block):
-        block = view[:, start : start + rows_per_block]
-        with np.errstate(invalid="ignore"):
-            low, high = block.min(axis=0), block.max(axis=0)
-        finite = np.isfinite(low) & np.isfinite(high)
-        constant = finite & (low == high)
-        if bool(constant.all()):
-            stats.constant += block.shape[1]  # background: nothing to move
-            continue
-        if kernel is None:
-            series = np.ascontiguousarray(block.T)
-            done = resample(engine, series, samples, targets, workers=1, stats=stats,
-                            overwrite=True)
-            block[...] = done.T
-            continue
-        odd = np.flatnonzero(~finite)
-        saved = np.ascontiguousarray(block[:, odd].T) if odd.size else None
-        with np.errstate(invalid="ignore", over="ignore"):
+    # one minimum and maximum per voxel: the constant series are left where they
+    # are (copied, not transformed); those with non-finite samples go to the row
+    # engine, which handles them series by series
+    with np.errstate(invalid="ignore"):
+        low, high = view.min(axis=0), view.max(axis=0)
+    finite = np.isfinite(low) & np.isfinite(high)
+    constant = finite & (low == high)
+    stats.constant += int(np.count_nonzero(constant))
+    for group_runs in _packed(_runs(finite & ~constant), rows_per_block):
+        # the voxels to move, packed side by side into one contiguous block
+        block = np.concatenate([view[:, a:b] for a, b in group_runs], axis=1)
+        if kernel is not None:
             shift_columns(block, kernel)
-        if constant.any():
-            still = np.flatnonzero(constant)
-            block[:, still] = low[still]
-            stats.constant += still.size
-        if saved is not None:
-            done = resample(engine, saved, samples, targets, workers=1, stats=stats,
-                            overwrite=True)
-            block[:, odd] = done.T
+        else:
+            series = np.ascontiguousarray(block.T)
+            block = resample(engine, series, samples, targets, workers=1, stats=stats,
+                             overwrite=True).T
+        offset = 0
+        for a, b in group_runs:
+            view[:, a:b] = block[:, offset : offset + b - a]
+            offset += b - a
+    for group_runs in _packed(_runs(~finite), rows_per_block):
+        for a, b in group_runs:
+            series = np.ascontiguousarray(view[:, a:b].T)
+            view[:, a:b] = resample(engine, series, samples, targets, workers=1, stats=stats,
+                                    overwrite=True).T
+
+
+def _runs(mask: np.ndarray) -> list[tuple[int, int]]:
+    """``(start, stop)`` of each run of True in a 1-D mask."""
+    edges = np.flatnonzero(np.diff(np.concatenate(([False], mask, [False])).astype(np.int8)))
+    return [(int(a), int(b)) for a, b in edges.reshape(-1, 2)]
+
+
+def _packed(runs: list[tuple[int, int]], size: int) -> Iterator[list[tuple[int, int]]]:
+    """The runs cut and grouped so that each group spans at most ``size`` columns."""
+    group: list[tuple[int, int]] = []
+    room = size
+    for a, b in runs:
+        while a < b:
+            take = min(b - a, room)
+            group.append((a, a + take))
+            a += take
+            room -= take
+            if room == 0:
+                yield group
+                group, room = [], size
+    if group:
+        yield group
 
 
 @contextlib.contextmanager

@@ -396,14 +396,19 @@ def shift_columns(block: np.ndarray, kernel: TimeKernel) -> None:
         width = kernel.head.shape[1]
         head = kernel.head @ block[:width]
         tail = kernel.tail @ block[block.shape[0] - width :]
-    varying = np.subtract(block, base)  # contiguous: the transforms read it fastest
-    coeffs = fft.dct(varying, type=2, axis=0, workers=1, overwrite_x=kernel.t is None)
+    if block.flags.c_contiguous:
+        block -= base  # the transforms read contiguous data fastest
+        varying = block
+    else:
+        varying = np.subtract(block, base)
+    slope = kernel.t @ varying if kernel.t is not None else None
+    coeffs = fft.dct(varying, type=2, axis=0, workers=1, overwrite_x=True)
     odd = np.empty_like(coeffs)
     np.multiply(coeffs[1:], kernel.im, out=odd[:-1])
     odd[-1] = 0.0
     coeffs *= kernel.re
-    if kernel.line is not None and kernel.t is not None:
-        coeffs += kernel.line * (kernel.t @ varying)
+    if kernel.line is not None and slope is not None:
+        coeffs += kernel.line * slope
     del varying
     out = fft.idct(coeffs, type=2, axis=0, workers=1, overwrite_x=True)
     out += base
