@@ -43,9 +43,13 @@ finite sample are copied unchanged.
 from __future__ import annotations
 
 import functools
+import importlib.machinery
+import importlib.util
+import sys
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
-from typing import Any
+from pathlib import Path
+from typing import Any, NamedTuple
 
 import numpy as np
 
@@ -60,6 +64,66 @@ def _fft() -> Any:
     import scipy.fft
 
     return scipy.fft
+
+
+class Transforms(NamedTuple):
+    """The three real transforms of the time-axis engine, along axis 0 of a float32
+    or float64 array, unnormalised as ``scipy.fft`` defines them (``dct`` is its
+    ``dct(type=2)``, ``idct`` and ``idst`` its ``idct(type=2)`` and ``idst(type=2)``).
+    The flag lets a transform overwrite its (contiguous) input."""
+
+    dct: Callable[[np.ndarray, bool], np.ndarray]
+    idct: Callable[[np.ndarray, bool], np.ndarray]
+    idst: Callable[[np.ndarray, bool], np.ndarray]
+
+
+_POCKETFFT = "scipy.fft._pocketfft.pypocketfft"
+
+
+def _pocketfft() -> Any:
+    """scipy's compiled transform module, loaded without the ``scipy.fft`` package
+    around it (whose import, through ``scipy.special``, costs more processor time
+    than all the transforms of a typical run), or None where that fails."""
+    loaded = sys.modules.get(_POCKETFFT)
+    if loaded is not None:
+        return loaded
+    try:
+        found = importlib.util.find_spec("scipy")
+        assert found is not None and found.submodule_search_locations
+        folder = Path(next(iter(found.submodule_search_locations))) / "fft" / "_pocketfft"
+        paths = [p for suffix in importlib.machinery.EXTENSION_SUFFIXES
+                 for p in sorted(folder.glob(f"pypocketfft{suffix}"))]
+        spec = importlib.util.spec_from_file_location(_POCKETFFT, paths[0])
+        assert spec is not None and spec.loader is not None
+        module = importlib.util.module_from_spec(spec)
+        spec.loader.exec_module(module)
+        probe = np.array([[1.0], [2.0]], dtype=np.float32)  # dct-II of [1, 2]: [6, -1.414]
+        if not np.allclose(module.dct(probe, 2, (0,), 0, None, 1, None)[:, 0], [6.0, -2**0.5]):
+            return None
+    except Exception:  # any layout or interface change: use scipy.fft itself
+        return None
+    sys.modules[_POCKETFFT] = module  # scipy.fft, when imported later, reuses it
+    return module
+
+
+@functools.lru_cache(maxsize=1)
+def transforms() -> Transforms:
+    """The transforms, from scipy's compiled module directly when possible."""
+    module = _pocketfft()
+    if module is not None:
+        # pocketfft's own conventions (scipy.fft._pocketfft.realtransforms): the
+        # inverse of type 2 is type 3 with normalisation 2 (1 / 2n)
+        return Transforms(
+            lambda x, over: module.dct(x, 2, (0,), 0, x if over else None, 1, None),
+            lambda x, over: module.dct(x, 3, (0,), 2, x if over else None, 1, None),
+            lambda x, over: module.dst(x, 3, (0,), 2, x if over else None, 1, None),
+        )
+    fft = _fft()
+    return Transforms(
+        lambda x, over: fft.dct(x, type=2, axis=0, overwrite_x=over, workers=1),
+        lambda x, over: fft.idct(x, type=2, axis=0, overwrite_x=over, workers=1),
+        lambda x, over: fft.idst(x, type=2, axis=0, overwrite_x=over, workers=1),
+    )
 
 
 class IrregularGridError(ValueError):
@@ -274,12 +338,12 @@ class TimeKernel:
 
 def _apply_response(x: np.ndarray, re: np.ndarray, im: np.ndarray) -> np.ndarray:
     """The filter on the mirrored series, along axis 0 (float64; kernels only)."""
-    fft = _fft()
-    coeffs = fft.dct(x, type=2, axis=0)
+    fft = transforms()
+    coeffs = fft.dct(x, False)
     odd = np.zeros_like(coeffs)
     odd[:-1] = coeffs[1:] * im
     coeffs *= re
-    return np.asarray(fft.idct(coeffs, type=2, axis=0) - fft.idst(odd, type=2, axis=0))
+    return np.asarray(fft.idct(coeffs, True) - fft.idst(odd, True))
 
 
 def _response_of_taps(taps: np.ndarray, offsets: np.ndarray, n: int) -> np.ndarray:
@@ -324,7 +388,7 @@ def _kernel_of(engine: Engine, shift: float, n: int) -> TimeKernel:
     if trend:
         t = np.arange(n, dtype=np.float64) - (n - 1) / 2.0
         moved = _apply_response(t[:, None], re[:, None], im[:, None])[:, 0]
-        line = (_fft().dct(t + shift - moved, type=2) / float(np.dot(t, t)))[:, None]
+        line = transforms().dct((t + shift - moved)[:, None], True) / float(np.dot(t, t))
         t_line = t.astype(np.float32)
     return TimeKernel(
         n,
@@ -389,7 +453,7 @@ def shift_columns(block: np.ndarray, kernel: TimeKernel) -> None:
     added back after (the transforms' rounding then scales with the signal's
     variation, not its level).
     """
-    fft = _fft()
+    fft = transforms()
     base = block[0].copy()
     head = tail = None
     if kernel.head is not None and kernel.tail is not None:
@@ -402,7 +466,7 @@ def shift_columns(block: np.ndarray, kernel: TimeKernel) -> None:
     else:
         varying = np.subtract(block, base)
     slope = kernel.t @ varying if kernel.t is not None else None
-    coeffs = fft.dct(varying, type=2, axis=0, workers=1, overwrite_x=True)
+    coeffs = fft.dct(varying, True)
     odd = np.empty_like(coeffs)
     np.multiply(coeffs[1:], kernel.im, out=odd[:-1])
     odd[-1] = 0.0
@@ -410,9 +474,9 @@ def shift_columns(block: np.ndarray, kernel: TimeKernel) -> None:
     if kernel.line is not None and slope is not None:
         coeffs += kernel.line * slope
     del varying
-    out = fft.idct(coeffs, type=2, axis=0, workers=1, overwrite_x=True)
+    out = fft.idct(coeffs, True)
     out += base
-    np.subtract(out, fft.idst(odd, type=2, axis=0, workers=1, overwrite_x=True), out=block)
+    np.subtract(out, fft.idst(odd, True), out=block)
     if head is not None and tail is not None:
         block[: head.shape[0]] = head
         block[block.shape[0] - tail.shape[0] :] = tail
@@ -473,8 +537,8 @@ def get_engine(name: str) -> Engine:
 def prepare(engine: Engine) -> None:
     """Import the libraries ``engine`` needs. Callers may run this in a thread
     while the image is being read, so the import does not add to the wall time."""
-    if engine.response is not None or engine.name == "fourier":
-        _fft()
+    if engine.response is not None:
+        transforms()
     if engine.name == "cubic":
         import scipy.interpolate  # noqa: F401
 
@@ -597,6 +661,7 @@ __all__ = [
     "IrregularGridError",
     "ResampleStats",
     "TimeKernel",
+    "Transforms",
     "get_engine",
     "noise_variance",
     "prepare",
@@ -605,4 +670,5 @@ __all__ = [
     "shift_columns",
     "sinc_weights",
     "time_kernel",
+    "transforms",
 ]
