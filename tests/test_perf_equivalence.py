@@ -17,6 +17,7 @@ import struct
 from pathlib import Path, PurePosixPath
 from typing import Any
 
+import numpy as np
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
@@ -309,3 +310,139 @@ def test_the_walks_listings_equal_the_sidecar_index_listing_its_own(tmp_path: Pa
         assert walked.listing(folder).jsons == own.jsons
         # the root finder seeded by the walk answers as one that looks for itself
         assert _RootFinder().find_folder(folder) == root
+
+
+# --------------------------------------------------------------------------- correction
+# The correction's time-axis engine (``engines.align.align_slice`` with
+# ``interpolate.shift_columns``) stands in for the row engine (``interpolate.resample``,
+# which detrends, mirrors and transforms each series on its own) and for
+# ``scipy.interpolate.CubicSpline``; the I/O keeps its checksums while hashing in
+# threads of its own.
+
+
+def _slice_with_awkward_voxels(n: int, seed: int) -> np.ndarray:
+    """(n volumes, 40 voxels): head-like series (level 300 to 1600, a drift, noise),
+    a zero background, a non-zero constant, and series with non-finite samples."""
+    rng = np.random.default_rng(seed)
+    level = rng.uniform(300, 1600, 40)
+    drift = np.linspace(0, 1, n)[:, None] * rng.uniform(-40, 40, 40)
+    view = (level + drift + rng.normal(0, 15, (n, 40))).astype(np.float32)
+    view[:, 0:5] = 0.0  # background
+    view[:, 9] = 731.5  # constant
+    view[n // 3, 12] = np.nan  # one bad sample
+    view[:, 20] = np.nan  # nothing finite
+    view[:, 21] = np.inf
+    view[1:, 22] = np.nan  # one finite sample
+    view[[0, n - 1], 23] = [np.inf, -np.inf]  # bad ends
+    return view
+
+
+class _Plan:
+    """The two methods of a ResamplingPlan that ``align_slice`` uses."""
+
+    def __init__(self, tr: float, n: int, reference: float) -> None:
+        self.onsets = np.arange(n) * tr
+        self.reference = reference
+
+    def sample_times(self, group: Any) -> np.ndarray:
+        return self.onsets + group.slice_time
+
+    def target_times(self) -> np.ndarray:
+        return self.onsets + self.reference
+
+
+@pytest.mark.parametrize("method", ["fourier", "sinc", "cubic", "linear"])
+@pytest.mark.parametrize("n", [3, 17, 49, 120, 333])
+@pytest.mark.parametrize("slice_time", [0.05, 0.9, 1.95])
+def test_time_axis_engine_equals_the_row_engine(method: str, n: int, slice_time: float) -> None:
+    from slicetime.engines.align import align_slice
+    from slicetime.engines.interpolate import ResampleStats, get_engine, resample
+    from slicetime.engines.plan import ShiftGroup
+
+    tr, reference = 2.0, 1.0
+    view = _slice_with_awkward_voxels(n, seed=n)
+    plan = _Plan(tr, n, reference)
+    group = ShiftGroup((0,), slice_time, reference - slice_time)
+    engine = get_engine(method)
+    row_stats, column_stats = ResampleStats(), ResampleStats()
+    expected = resample(engine, np.ascontiguousarray(view.T), plan.sample_times(group),
+                        plan.target_times(), stats=row_stats).T
+    got = view.copy()
+    align_slice(got, plan, group, engine, stats=column_stats, rows_per_block=7)
+    # the same non-finite samples, the same copies of constant series, bit for bit
+    assert np.array_equal(np.isnan(got), np.isnan(expected))
+    assert np.array_equal(got[~np.isfinite(got)], expected[~np.isfinite(expected)],
+                          equal_nan=True)
+    assert np.array_equal(got[:, [0, 1, 2, 3, 4, 9]], view[:, [0, 1, 2, 3, 4, 9]])
+    assert not np.signbit(got[:, :5]).any()
+    # and the same values to float32 rounding: a few units in the last place of the
+    # run's largest value (float32 spacing: IEEE 754 binary32, 2**-23 relative)
+    finite = np.isfinite(expected)
+    scale = float(np.abs(view[np.isfinite(view)]).max())
+    assert np.abs(got[finite] - expected[finite]).max() <= 8 * 2.0**-23 * scale
+    assert (column_stats.constant, column_stats.partial_nonfinite,
+            column_stats.all_nonfinite) == (row_stats.constant, row_stats.partial_nonfinite,
+                                            row_stats.all_nonfinite)
+
+
+@pytest.mark.parametrize("shift", [-0.97, -0.5, 0.31, 0.99])
+def test_cubic_time_axis_engine_equals_scipy_cubic_spline(shift: float) -> None:
+    # Reference library: scipy.interpolate.CubicSpline with not-a-knot ends, evaluated
+    # at the targets (beyond the last sample: its end polynomial), in float64.
+    from scipy.interpolate import CubicSpline
+
+    from slicetime.engines.align import align_slice
+    from slicetime.engines.interpolate import get_engine
+    from slicetime.engines.plan import ShiftGroup
+
+    n, tr = 260, 1.5
+    rng = np.random.default_rng(4)
+    view = (900 + np.cumsum(rng.normal(0, 4, (n, 30)), axis=0)).astype(np.float32)
+    plan = _Plan(tr, n, 0.7)
+    group = ShiftGroup((0,), 0.7 - shift * tr, shift * tr)
+    expected = CubicSpline(plan.sample_times(group), view.astype(np.float64), axis=0,
+                           bc_type="not-a-knot")(plan.target_times())
+    got = view.copy()
+    align_slice(got, plan, group, get_engine("cubic"))
+    assert np.abs(got - expected).max() <= 8 * 2.0**-23 * float(np.abs(expected).max())
+
+
+def test_the_transforms_equal_scipy_fft() -> None:
+    # Reference library: scipy.fft.dct / idct / idst (type 2, unnormalised), float32
+    # and float64, along axis 0; the engine may load scipy's compiled module directly.
+    import scipy.fft
+
+    from slicetime.engines.interpolate import transforms
+
+    rng = np.random.default_rng(8)
+    for dtype, tol in ((np.float32, 1e-4), (np.float64, 1e-10)):
+        x = rng.normal(0, 10, (150, 7)).astype(dtype)
+        for ours, theirs in ((transforms().dct, scipy.fft.dct), (transforms().idct, scipy.fft.idct),
+                             (transforms().idst, scipy.fft.idst)):
+            got = ours(x.copy(), True)
+            assert got.dtype == dtype
+            np.testing.assert_allclose(got, theirs(x, type=2, axis=0), rtol=tol, atol=tol)
+
+
+@pytest.mark.parametrize("name", ["sub-01_bold.nii", "sub-01_bold.nii.gz"])
+def test_checksums_hashed_in_threads_equal_hashlib(tmp_path: Path, name: str) -> None:
+    # Reference: hashlib.sha256 of the whole file (FIPS 180-4), as read back from disk.
+    import hashlib
+
+    from helpers_bids import write_run
+
+    from slicetime.readers.nifti import read_header
+    from slicetime.readers.volumes import VolumeReader, VolumeWriter
+
+    path = write_run(tmp_path, name, shape=(6, 5, 4, 30))
+    header, _ = read_header(path)
+    with VolumeReader(path, header, name, checksum=True) as reader:
+        volumes = reader.read(30)
+        read_sha = reader.sha256()
+    assert read_sha == hashlib.sha256(path.read_bytes()).hexdigest()
+    out = tmp_path / f"out-{name}"
+    writer = VolumeWriter(out, reader.prefix, compress=name.endswith(".gz"))
+    writer.write(volumes[:11])
+    writer.write(volumes[11:])
+    writer.close()
+    assert writer.sha256() == hashlib.sha256(out.read_bytes()).hexdigest()
