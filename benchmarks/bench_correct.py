@@ -98,7 +98,7 @@ DESC = "timealigned"
 MIB = 1 << 20
 GIB = 1 << 30
 BLOCK_BYTES = 64 * MIB  # float32 working set per block of generated volumes
-PARTS = ("standard", "multiband", "batch")
+PARTS = ("standard", "multiband", "batch", "floor")
 
 # Runs ``argv[1]`` (a JSON list) with stdout/stderr to ``argv[2]`` and prints its
 # wall time and rusage. ru_maxrss of RUSAGE_CHILDREN is the largest over all
@@ -127,6 +127,62 @@ nib.save(nib.Nifti1Image(data, img.affine, header), sys.argv[2])
 """
 
 OVERHEAD = "import slicetime.pipelines.correct, scipy.fft, numpy, nibabel"
+
+# The I/O floor of a correction, by hand: decode the image (isal, in a helper
+# thread, as correct does), convert the stored int16 to float32, encode the float32
+# volumes (isal level 1 in two helper threads, as correct does) and write them
+# durably (fsync, as correct does). No interpolation, no checksum, no audit. The
+# float32 values are the stored ones times a fixed pattern of factors just above 1,
+# so they have random low mantissa bits as interpolated values do: the encoder then
+# sees data of the entropy of a real corrected run (the script reports both sizes).
+# A .nii input is read and written uncompressed. argv: input image, output image.
+FLOOR = """
+import os, sys
+import numpy as np
+from isal import igzip_threaded
+
+CHUNK = 16 << 20
+src, dst = sys.argv[1], sys.argv[2]
+compressed = src.endswith(".gz")
+with (igzip_threaded.open(src, "rb", threads=1) if compressed else open(src, "rb")) as fh:
+    head = fh.read(348)
+    assert np.frombuffer(head, "<i4", 1, 0)[0] == 348, "a little-endian NIfTI-1 header"
+    assert np.frombuffer(head, "<i2", 1, 70)[0] == 4, "int16 voxels"
+    prefix = head + fh.read(int(np.frombuffer(head, "<f4", 1, 108)[0]) - 348)
+    dim = np.frombuffer(head, "<i2", 8, 40)
+    n = int(np.prod(dim[1:1 + dim[0]], dtype=np.int64))
+    stored = np.empty(n, np.int16)
+    data = np.empty(n, np.float32)
+    table = 1 + np.random.default_rng(0).random(1 << 20, dtype=np.float32) * np.float32(1e-3)
+    step = CHUNK // 2
+    view = memoryview(stored).cast("B")
+    for first in range(0, n, step):
+        part = view[first * 2:(first + step) * 2]
+        got = 0
+        while got < len(part):
+            got += fh.readinto(part[got:])
+        # stored type -> float32, times the pattern
+        part_in = stored[first:first + step]
+        part_out = data[first:first + step]
+        whole = part_in.size - part_in.size % table.size
+        np.multiply(part_in[:whole].reshape(-1, table.size), table,
+                    out=part_out[:whole].reshape(-1, table.size))
+        np.multiply(part_in[whole:], table[:part_in.size - whole], out=part_out[whole:])
+del stored
+header = bytearray(prefix)
+header[70:74] = np.array([16, 32], "<i2").tobytes()  # datatype float32, bitpix 32
+raw = open(dst, "xb")
+out = igzip_threaded.open(raw, "wb", compresslevel=1, threads=2) if compressed else raw
+out.write(bytes(header))
+bytes_view = memoryview(data).cast("B")
+for first in range(0, len(bytes_view), CHUNK):
+    out.write(bytes_view[first:first + CHUNK])
+if out is not raw:
+    out.close()
+raw.flush()
+os.fsync(raw.fileno())
+raw.close()
+"""
 
 # Runs correct_paths in-process with wall-clock timers around its phases and
 # prints them as JSON. For each phase it also records by how much the process's
@@ -185,7 +241,8 @@ def patch(path, name):
 
 patch("audit_paths", "audit (walk, headers, rules)")
 patch("VolumeReader.__enter__", "read: open, start decoder, header bytes")
-patch("VolumeReader.read_into", "read: decompress + SHA-256 (wait on decoder)")
+patch("VolumeReader.read_into", "read: decompress (wait on decoder)")
+patch("VolumeReader.sha256", "read: SHA-256 (wait on its thread)")
 patch("slicetime.readers.scratch:store_scaled", "read: stored type -> float32 slice-major")
 for cls, kind in (("MemoryBuffer", "memory"), ("DiskBuffer", "scratch file")):
     patch(f"{cls}.__init__", f"buffer ({kind}): allocate")
@@ -194,7 +251,8 @@ for cls, kind in (("MemoryBuffer", "memory"), ("DiskBuffer", "scratch file")):
     patch(f"{cls}.put_slice", f"engine: buffer ({kind}) put slice")
     patch(f"{cls}.get_volumes", f"write: buffer ({kind}) get volumes")
 patch("_engine_pass", "engine (whole pass)")
-patch("slicetime.engines.align:resample", "engine: resample calls")
+patch("slicetime.engines.align:shift_columns", "engine: transforms (shift_columns)")
+patch("slicetime.engines.align:resample", "engine: row engine (awkward series)")
 patch("OutputCast.__call__", "write: slice-major -> volume order, output type")
 patch("VolumeWriter.__init__", "write: open, start encoder")
 patch("VolumeWriter.write", "write: compress + SHA-256 (feed encoder)")
@@ -825,6 +883,125 @@ def batch_part(ctx: Context, spec: Spec, dataset: Path) -> None:
     ctx.tables.append(table)
 
 
+def nii_copy(root: Path, spec: Spec, work: Path) -> tuple[Path, list[Path]]:
+    """The dataset with its images stored uncompressed (``.nii``), made once."""
+    from isal import igzip_threaded
+
+    target = work / f"{spec.folder}-nii"
+    stamp = target / ".bench-stamp.json"
+    wanted = spec.stamp() | {"uncompressed": True}
+    images = [rel.with_name(rel.name.removesuffix(".gz")) for rel in spec.images]
+    if stamp.is_file() and all((target / image).is_file() for image in images):
+        if json.loads(stamp.read_text()) == wanted:
+            return target, images
+    shutil.rmtree(target, ignore_errors=True)
+    for rel, plain in zip(spec.images, images, strict=True):
+        (target / plain).parent.mkdir(parents=True, exist_ok=True)
+        with igzip_threaded.open(root / rel, "rb") as src, open(target / plain, "wb") as dst:
+            shutil.copyfileobj(src, dst, 16 * MIB)
+        sidecar = rel.with_name(rel.name.replace(".nii.gz", ".json"))
+        shutil.copyfile(root / sidecar, target / sidecar)
+    shutil.copyfile(root / "dataset_description.json", target / "dataset_description.json")
+    stamp.write_text(json.dumps(wanted))
+    return target, images
+
+
+def run_floor(label: str, image: Path, work: Path, tag: str) -> tuple[Measurement, int]:
+    """The I/O floor script on one image; its wall time and output size."""
+    out = work / f"floor-{tag}{''.join(image.suffixes[-2:]) if image.suffix == '.gz' else '.nii'}"
+    out.unlink(missing_ok=True)
+    result = measure(label, [sys.executable, "-c", FLOOR, str(image), str(out)],
+                     work / "logs" / f"floor-{tag}.log")
+    size = out.stat().st_size
+    out.unlink()
+    _say(label, result)
+    return result, size
+
+
+def run_correct_sized(label: str, dataset: Path, image: Path, work: Path, tag: str,
+                      *extra: str) -> tuple[Measurement, int]:
+    """``correct`` on a one-run dataset; its wall time and output image size."""
+    from slicetime.pipelines.outputs import output_name
+
+    out = work / f"out-{tag}"
+    shutil.rmtree(out, ignore_errors=True)
+    cmd = [*slicetime_command(), "correct", str(dataset), "--out", str(out), *extra]
+    result = measure(label, cmd, work / "logs" / f"{tag}.log")
+    written = out / image.parent / output_name(image.name, DESC)
+    if not written.is_file():
+        raise SystemExit(f"{label}: no output at {written} (log: {work / 'logs' / f'{tag}.log'})")
+    size = written.stat().st_size
+    shutil.rmtree(out, ignore_errors=True)
+    _say(label, result)
+    return result, size
+
+
+#: the issue's targets: correct within this many times its I/O floor
+FLOOR_TARGETS = {"fourier": 1.2, "sinc": 1.2, "cubic": 2.0}
+
+
+def floor_part(ctx: Context, specs: dict[str, Spec]) -> None:
+    """``correct`` against the I/O floor script, in alternating rounds (floor, fourier,
+    sinc, cubic), on ``.nii.gz`` and ``.nii`` copies of the standard and the
+    multiband run; every ratio is of medians measured in the same rounds."""
+    args, work = ctx.args, ctx.work
+    results: dict[str, Any] = {}
+    rows: list[tuple[str, str, str, float, float, float | None, bool | None]] = []
+    for key in args.floor_runs:
+        spec = specs[key]
+        dataset = make_dataset(work / spec.folder, spec)
+        plain_root, plain_images = nii_copy(dataset, spec, work)
+        rounds = args.floor_repeat if key == "standard" else args.floor_multiband_repeat
+        for fmt, root, image in ((".nii.gz", dataset, spec.images[0]),
+                                 (".nii", plain_root, plain_images[0])):
+            with open(root / image, "rb") as fh:  # into the page cache
+                while fh.read(16 * MIB):
+                    pass
+            floors: list[Measurement] = []
+            sizes: dict[str, int] = {}
+            by_method: dict[str, list[Measurement]] = {m: [] for m in FLOOR_TARGETS}
+            for i in range(rounds):
+                tag = f"{key}-{fmt.strip('.').replace('.', '')}-{i}"
+                m, sizes["floor"] = run_floor(f"{key} {fmt}: I/O floor", root / image, work, tag)
+                floors.append(m)
+                for method in FLOOR_TARGETS:
+                    m, sizes[method] = run_correct_sized(
+                        f"{key} {fmt}: correct {method}", root, image, work,
+                        f"floor-{method}-{tag}", "--method", method)
+                    by_method[method].append(m)
+            floor_wall = _median(floors)
+            entry: dict[str, Any] = {"rounds": rounds, "floor": _summary(floors),
+                                     "output_bytes": sizes}
+            for method, values in by_method.items():
+                ratio = _median(values) / floor_wall
+                met = ratio <= FLOOR_TARGETS[method]
+                entry[method] = _summary(values) | {
+                    "over_floor": round(ratio, 3), "target": f"<= {FLOOR_TARGETS[method]}",
+                    "met": met}
+                ctx.targets[f"floor_{key}_{fmt}_{method}"] = {
+                    "value": round(ratio, 3), "target": f"<= {FLOOR_TARGETS[method]}", "met": met}
+                rows.append((key, fmt, method, floor_wall, _median(values), ratio, met))
+            results[f"{key} {fmt}"] = entry
+    ctx.results["floor"] = results
+
+    def table() -> None:
+        print("\ncorrect against its I/O floor (decode, int16 -> float32, encode, fsync; "
+              "medians of alternating rounds)")
+        head = (f"{'run':<10} {'format':<8} {'method':<8} {'floor s':>8} {'correct s':>10} "
+                f"{'÷ floor':>8}  target")
+        print(head)
+        print("-" * len(head))
+        for key, fmt, method, floor_wall, wall, ratio, met in rows:
+            print(f"{key:<10} {fmt:<8} {method:<8} {floor_wall:8.2f} {wall:10.2f} "
+                  f"{ratio:8.2f}  ≤ {FLOOR_TARGETS[method]:g}  {_verdict(met)}")
+        for name, entry in results.items():
+            sizes = entry["output_bytes"]
+            print(f"{name}: output {sizes['fourier'] / MIB:.0f} MiB (fourier), floor's "
+                  f"{sizes['floor'] / MIB:.0f} MiB")
+
+    ctx.tables.append(table)
+
+
 def profile_part(ctx: Context, dataset: Path) -> None:
     args, work = ctx.args, ctx.work
     from slicetime.pipelines.memory import parse_size
@@ -877,6 +1054,13 @@ def _parts(text: str) -> list[str]:
     return [p for p in PARTS if p in chosen]
 
 
+def _floor_runs(text: str) -> list[str]:
+    chosen = [p.strip() for p in text.split(",") if p.strip()]
+    if not chosen or set(chosen) - {"standard", "multiband"}:
+        raise argparse.ArgumentTypeError(f"choose from standard,multiband (got {text!r})")
+    return chosen
+
+
 def _positive(text: str) -> int:
     value = int(text)
     if value < 1:
@@ -907,6 +1091,12 @@ def main() -> int:
                         help="volumes of each batch run")
     parser.add_argument("--batch-repeat", type=_positive, default=3,
                         help="--jobs 1 / --jobs 2 pairs on the batch")
+    parser.add_argument("--floor-runs", type=_floor_runs, default=["standard", "multiband"],
+                        help="runs compared with the I/O floor (standard,multiband)")
+    parser.add_argument("--floor-repeat", type=_positive, default=5,
+                        help="floor/correct rounds on the standard run")
+    parser.add_argument("--floor-multiband-repeat", type=_positive, default=1,
+                        help="floor/correct rounds on the multiband run")
     parser.add_argument("--profile", action=argparse.BooleanOptionalAction, default=True,
                         help="also time the phases of one standard run and cProfile another")
     parser.add_argument("--top", type=int, default=25, help="cProfile rows shown")
@@ -923,7 +1113,8 @@ def main() -> int:
     specs = {"standard": standard_spec(args.volumes),
              "multiband": multiband_spec(args.multiband_volumes),
              "batch": batch_spec(args.batch_runs, args.batch_volumes)}
-    datasets = {key: make_dataset(work / specs[key].folder, specs[key]) for key in args.runs}
+    datasets = {key: make_dataset(work / specs[key].folder, specs[key]) for key in args.runs
+                if key in specs}
     for key, dataset in datasets.items():
         described = specs[key].describe(dataset)
         print(f"{specs[key].title()}; {described['compressed_mib']:.0f} MiB compressed",
@@ -947,7 +1138,10 @@ def main() -> int:
     parts = {"standard": standard_part, "multiband": multiband_part, "batch": batch_part}
     for key in args.runs:
         print(f"\n{key}:", flush=True)
-        parts[key](ctx, specs[key], datasets[key])
+        if key == "floor":
+            floor_part(ctx, specs)
+        else:
+            parts[key](ctx, specs[key], datasets[key])
         ctx.save(complete=False)
 
     for table in ctx.tables:

@@ -446,3 +446,16 @@ def test_checksums_hashed_in_threads_equal_hashlib(tmp_path: Path, name: str) ->
     writer.write(volumes[11:])
     writer.close()
     assert writer.sha256() == hashlib.sha256(out.read_bytes()).hexdigest()
+
+
+@pytest.mark.parametrize(("length", "shift"), [(4, 0.3), (7, -0.9), (60, 0.99), (160, -0.5)])
+def test_spline_rows_equal_scipy_cubic_spline(length: int, shift: float) -> None:
+    # Reference library: scipy.interpolate.CubicSpline (not-a-knot) of each unit sample,
+    # evaluated at the shifted samples (beyond the ends: its end polynomial).
+    from scipy.interpolate import CubicSpline
+
+    from slicetime.engines.interpolate import spline_rows
+
+    index = np.arange(length, dtype=np.float64)
+    expected = CubicSpline(index, np.eye(length), axis=0, bc_type="not-a-knot")(index + shift)
+    np.testing.assert_allclose(spline_rows(length, shift), expected, rtol=0, atol=1e-12)

@@ -362,14 +362,40 @@ def _sinc_response(shift: float, n: int) -> tuple[np.ndarray, bool, None, None]:
     return _response_of_taps(taps, offsets, n), True, None, None
 
 
-def _cubic_response(shift: float, n: int) -> tuple[np.ndarray, bool, np.ndarray, np.ndarray]:
-    from scipy.interpolate import CubicSpline
+def spline_rows(length: int, shift: float) -> np.ndarray:
+    """The not-a-knot cubic spline through samples at 0, 1, ..., ``length - 1`` as a
+    matrix: row m holds the weight of every sample in the spline's value at
+    ``m + shift`` (beyond the ends: the end polynomial). ``length`` >= 4.
 
+    Textbook construction on a unit grid: the second derivatives ``M`` solve
+    ``M[i-1] + 4 M[i] + M[i+1] = 6 (y[i+1] - 2 y[i] + y[i-1])`` inside and the
+    not-a-knot conditions ``M[0] - 2 M[1] + M[2] = 0`` (and the same at the other
+    end); on ``[i, i + 1]`` with ``u = x - i`` the spline is
+    ``(1 - u) y[i] + u y[i+1] + ((1 - u)**3 - (1 - u)) M[i] / 6 + (u**3 - u) M[i+1] / 6``.
+    """
+    system = np.zeros((length, length))
+    second = np.zeros((length, length))
+    inside = np.arange(1, length - 1)
+    system[inside, inside - 1] = 1.0
+    system[inside, inside] = 4.0
+    system[inside, inside + 1] = 1.0
+    second[inside, inside - 1] = 6.0
+    second[inside, inside] = -12.0
+    second[inside, inside + 1] = 6.0
+    system[0, :3] = system[-1, -3:] = (1.0, -2.0, 1.0)
+    curvature = np.linalg.solve(system, second)  # M for each unit sample
+    where = np.arange(length, dtype=np.float64) + shift
+    left = np.clip(np.floor(where).astype(int), 0, length - 2)
+    u = (where - left)[:, None]
+    rows = (u**3 - u) / 6.0 * curvature[left + 1] + ((1 - u) ** 3 - (1 - u)) / 6.0 * curvature[left]
+    rows[np.arange(length), left] += (1 - u)[:, 0]
+    rows[np.arange(length), left + 1] += u[:, 0]
+    return rows
+
+
+def _cubic_response(shift: float, n: int) -> tuple[np.ndarray, bool, np.ndarray, np.ndarray]:
     span = min(n, _SPLINE_SPAN)
-    index = np.arange(span, dtype=np.float64)
-    # the spline of each unit sample, at the targets: row m holds the weights of
-    # every sample in the value at target m (CubicSpline is linear in the samples)
-    rows = CubicSpline(index, np.eye(span), axis=0, bc_type="not-a-knot")(index + shift)
+    rows = spline_rows(span, shift)
     middle = span // 2
     reach = np.arange(-min(SPLINE_TAPS, middle), min(SPLINE_TAPS, span - 1 - middle) + 1)
     response = _response_of_taps(rows[middle, middle + reach], reach.astype(np.float64), n)
@@ -539,8 +565,6 @@ def prepare(engine: Engine) -> None:
     while the image is being read, so the import does not add to the wall time."""
     if engine.response is not None:
         transforms()
-    if engine.name == "cubic":
-        import scipy.interpolate  # noqa: F401
 
 
 #: samples in the probe :func:`noise_variance` measures an engine on
