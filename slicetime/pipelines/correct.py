@@ -601,7 +601,7 @@ def _fill(
     spatial_c = tuple(reversed(header.shape[:3]))
     scale = scaling(header)
     with VolumeReader(Path(record.abs_path), header, record.path, threads=threads,
-                      checksum=True) as reader:
+                      checksum=True, decode_blocks=budget.decode_blocks) as reader:
         batch = np.empty((budget.volumes_per_batch, *spatial_c), dtype=reader.dtype)
         for first in range(0, n_volumes, budget.volumes_per_batch):
             count = min(budget.volumes_per_batch, n_volumes - first)

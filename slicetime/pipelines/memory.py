@@ -46,6 +46,9 @@ class Budget:
     volumes_per_batch: int
     rows_per_block: int
     threads: int = 1
+    #: decoded 1 MiB blocks the gzip reader may hold ready (a deep queue keeps the
+    #: decoder going while a batch is converted; under a cap, isal's default of 2)
+    decode_blocks: int = 2
 
 
 #: float32-sized temporaries per sample of a series inside an engine (upper bound,
@@ -57,6 +60,9 @@ BLOCK_VOXELS = 256
 #: (measured with benchmarks/bench_memory_cap.py: about 4 MiB with 2 threads)
 _CODEC_BASE = 2 << 20
 _CODEC_PER_THREAD = 1 << 20
+#: decoded blocks queued by the gzip reader of a run without a memory cap (16 MiB:
+#: one batch, so the decoder never waits while a batch is converted)
+UNCAPPED_DECODE_BLOCKS = 16
 #: thread stacks and small temporaries of any run (measured: 1 to 3 MiB)
 _RUN_OVERHEAD = 4 << 20
 
@@ -88,7 +94,7 @@ def plan_budget(
     block_bytes = min(BLOCK_VOXELS, plane) * per_voxel
     if cap is None:
         batch = max(1, min(n_volumes, (16 << 20) // max(1, per_volume)))
-        return Budget(False, batch, BLOCK_VOXELS, threads)
+        return Budget(False, batch, BLOCK_VOXELS, threads, decode_blocks=UNCAPPED_DECODE_BLOCKS)
     buffer_bytes = slice_bytes * n_slices
     engine_bytes = threads * block_bytes
     codec = _CODEC_BASE + _CODEC_PER_THREAD * max(1, threads) if compressed else 0

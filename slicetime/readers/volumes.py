@@ -224,20 +224,19 @@ class _FileHasher:
         self._thread.join()
 
 
-#: decoded blocks the gzip helper thread may keep ready (1 MiB each): enough for the
-#: reader to convert a whole batch while the decoder goes on
-DECODE_QUEUE_BLOCKS = 16
+#: the gzip helper thread decodes this much at a time
 _DECODE_BLOCK = 1 << 20
 
 
-def _threaded_gzip_reader(fileobj: Any) -> Any:
-    """isal's threaded gzip reader with a deeper queue than its default (2 blocks)."""
+def _threaded_gzip_reader(fileobj: Any, blocks: int) -> Any:
+    """isal's threaded gzip reader keeping up to ``blocks`` decoded blocks ready (its
+    default is 2: the decoder then waits whenever the reader converts a batch)."""
     assert _threaded_gzip is not None
     reader_class = getattr(_threaded_gzip, "_ThreadedGzipReader", None)
-    if reader_class is None:  # pragma: no cover - another isal version
+    if reader_class is None or blocks <= 2:  # pragma: no cover - another isal version
         return _threaded_gzip.open(fileobj, "rb", threads=1)
     try:
-        raw = reader_class(fileobj, queue_size=DECODE_QUEUE_BLOCKS, block_size=_DECODE_BLOCK)
+        raw = reader_class(fileobj, queue_size=blocks, block_size=_DECODE_BLOCK)
     except TypeError:  # pragma: no cover - another isal version
         return _threaded_gzip.open(fileobj, "rb", threads=1)
     return io.BufferedReader(raw)
@@ -248,7 +247,8 @@ class VolumeReader:
 
     Use as a context manager. ``prefix`` holds the bytes before the image data
     (header, extensions, padding). With ``checksum`` the file's SHA-256 is computed
-    in a thread of its own while the volumes are read (:meth:`sha256`).
+    in a thread of its own while the volumes are read (:meth:`sha256`); a gzip image
+    is decoded in a helper thread that keeps up to ``decode_blocks`` MiB ready.
     ``read(count)`` returns a C-ordered array of shape
     ``(count, *reversed(spatial shape))`` in the stored type, i.e. the NIfTI
     (Fortran-ordered) volumes viewed without a copy of the bytes.
@@ -256,7 +256,7 @@ class VolumeReader:
 
     def __init__(
         self, path: Path, header: HeaderInfo, shown: str, *, threads: int = 1,
-        checksum: bool = False,
+        checksum: bool = False, decode_blocks: int = 2,
     ) -> None:
         if len(header.shape) != 4:
             raise ReadError(
@@ -275,6 +275,7 @@ class VolumeReader:
         self.volume_bytes = math.prod(self.spatial) * self.dtype.itemsize
         self._threads = threads
         self._checksum = checksum
+        self._decode_blocks = decode_blocks
         self._size = 0
         self._fh: BinaryIO | None = None
         self._hasher: _FileHasher | None = None
@@ -295,7 +296,7 @@ class VolumeReader:
         self._stream = limited
         if self.header.compressed:
             if _threaded_gzip is not None and self._threads > 0:
-                self._stream = _threaded_gzip_reader(limited)
+                self._stream = _threaded_gzip_reader(limited, self._decode_blocks)
             else:
                 self._stream = gzip.GzipFile(fileobj=limited, mode="rb")
         try:
