@@ -129,7 +129,8 @@ nib.save(nib.Nifti1Image(data, img.affine, header), sys.argv[2])
 OVERHEAD = "import slicetime.pipelines.correct, scipy.fft, numpy, nibabel"
 
 # The I/O floor of a correction, by hand: decode the image (isal, in a helper
-# thread, as correct does), convert the stored int16 to float32, encode the float32
+# thread with correct's queue depth), convert the stored int16 to float32 a batch
+# at a time into one float32 array (as correct fills its buffer), encode the float32
 # volumes (isal level 1 in two helper threads, as correct does) and write them
 # durably (fsync, as correct does). No interpolation, no checksum, no audit. The
 # float32 values are the stored ones times a fixed pattern of factors just above 1,
@@ -137,37 +138,42 @@ OVERHEAD = "import slicetime.pipelines.correct, scipy.fft, numpy, nibabel"
 # sees data of the entropy of a real corrected run (the script reports both sizes).
 # A .nii input is read and written uncompressed. argv: input image, output image.
 FLOOR = """
-import os, sys
+import io, os, sys
 import numpy as np
 from isal import igzip_threaded
 
 CHUNK = 16 << 20
 src, dst = sys.argv[1], sys.argv[2]
 compressed = src.endswith(".gz")
-with (igzip_threaded.open(src, "rb", threads=1) if compressed else open(src, "rb")) as fh:
+if compressed:  # a decoder thread keeping 16 blocks of 1 MiB ready, as correct's does
+    fh = io.BufferedReader(igzip_threaded._ThreadedGzipReader(src, queue_size=16,
+                                                              block_size=1 << 20))
+else:
+    fh = open(src, "rb", buffering=0)
+with fh:
     head = fh.read(348)
     assert np.frombuffer(head, "<i4", 1, 0)[0] == 348, "a little-endian NIfTI-1 header"
     assert np.frombuffer(head, "<i2", 1, 70)[0] == 4, "int16 voxels"
     prefix = head + fh.read(int(np.frombuffer(head, "<f4", 1, 108)[0]) - 348)
     dim = np.frombuffer(head, "<i2", 8, 40)
     n = int(np.prod(dim[1:1 + dim[0]], dtype=np.int64))
-    stored = np.empty(n, np.int16)
     data = np.empty(n, np.float32)
     table = 1 + np.random.default_rng(0).random(1 << 20, dtype=np.float32) * np.float32(1e-3)
     step = CHUNK // 2
-    view = memoryview(stored).cast("B")
+    stored = np.empty(step, np.int16)  # one batch, reused
     for first in range(0, n, step):
-        part = view[first * 2:(first + step) * 2]
+        count = min(step, n - first)
+        part = stored[:count].view(np.uint8).data
         got = 0
         while got < len(part):
             got += fh.readinto(part[got:])
         # stored type -> float32, times the pattern
-        part_in = stored[first:first + step]
-        part_out = data[first:first + step]
-        whole = part_in.size - part_in.size % table.size
+        part_in = stored[:count]
+        part_out = data[first:first + count]
+        whole = count - count % table.size
         np.multiply(part_in[:whole].reshape(-1, table.size), table,
                     out=part_out[:whole].reshape(-1, table.size))
-        np.multiply(part_in[whole:], table[:part_in.size - whole], out=part_out[whole:])
+        np.multiply(part_in[whole:], table[:count - whole], out=part_out[whole:])
 del stored
 header = bytearray(prefix)
 header[70:74] = np.array([16, 32], "<i2").tobytes()  # datatype float32, bitpix 32
