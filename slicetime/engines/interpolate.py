@@ -593,6 +593,12 @@ def noise_variance(
         sample_times = np.arange(NOISE_PROBE_LENGTH, dtype=np.float64)
         target_times = sample_times + shift
     n = sample_times.size
+    kernel = time_kernel(engine, sample_times, target_times)
+    if kernel is not None:  # the correction's own path: impulses as columns
+        columns = np.eye(n, dtype=np.float32)
+        shift_columns(columns, kernel)
+        row = columns[n // 2].astype(np.float64)  # columns[m, j] = H[m, j]
+        return float(np.dot(row, row))
     impulses = np.eye(n, dtype=np.float32)
     response = engine.core(impulses, np.asarray(sample_times, dtype=np.float64),
                            np.asarray(target_times, dtype=np.float64), 1)
