@@ -8,8 +8,11 @@ byte for byte, a few fields patched) from batches of volumes.
 
 * gzip is decompressed and compressed with ``isal`` in a helper thread when it
   is importable (several times faster than ``zlib``), else with ``gzip``.
-* The compressed (or plain) input bytes are hashed (SHA-256) while they are
-  read, so provenance costs no second pass over the file.
+* The input file's bytes (compressed or plain) are hashed (SHA-256) in a thread
+  of their own with positional reads of the same descriptor, beside the decoder
+  (the file is then in the page cache): the checksum no longer slows the decoder's
+  thread. An uncompressed output is hashed beside its write; a compressed one in
+  the encoder's writer thread.
 * Sizes were checked by :func:`.nifti.read_header` before anything here is
   allocated; a stream that still ends early or is corrupt raises ``ReadError``
   (``file/truncated`` / ``file/not-nifti``) naming the file.
