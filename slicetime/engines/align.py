@@ -225,13 +225,14 @@ def noise_per_slice(plan: ResamplingPlan, engine: Engine, n_slices: int) -> list
     half = min(n, NOISE_PROBE_LENGTH) // 2
     middle = slice(max(0, n // 2 - half), max(0, n // 2 - half) + min(n, NOISE_PROBE_LENGTH))
     targets = plan.target_times()[middle]
-    for group in plan.groups:
-        if abs(group.shift) < NO_SHIFT:
-            continue
-        ratio = noise_variance(engine, 0.0, sample_times=plan.sample_times(group)[middle],
-                               target_times=targets)
-        for z in group.slices:
-            ratios[z] = round(ratio, 3)
+    with single_threaded_blas():  # the kernels' small solves and products
+        for group in plan.groups:
+            if abs(group.shift) < NO_SHIFT:
+                continue
+            ratio = noise_variance(engine, 0.0, sample_times=plan.sample_times(group)[middle],
+                                   target_times=targets)
+            for z in group.slices:
+                ratios[z] = round(ratio, 3)
     return ratios
 
 

@@ -318,7 +318,7 @@ SPLINE_EDGE = 24
 #: taps of the spline's interior kernel on each side (0.27**32: below 1e-18)
 SPLINE_TAPS = 32
 #: the longest spline solved to find the kernel and the end rows
-_SPLINE_SPAN = 4 * SPLINE_EDGE + 2 * SPLINE_TAPS
+_SPLINE_SPAN = 2 * SPLINE_EDGE + 2 * SPLINE_TAPS
 
 
 @dataclass(frozen=True, eq=False)
