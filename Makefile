@@ -36,7 +36,7 @@ clean:
 
 bench: $(STAMP)
 	$(PY) benchmarks/bench_audit.py --sizes 2000,20000 $(if $(BENCH_HUGE),--huge) --out bench-results/audit.json
-	$(PY) benchmarks/bench_correct.py --runs standard,multiband,batch --volumes 600 --repeat 5 \
+	$(PY) benchmarks/bench_correct.py --runs standard,multiband,batch,floor --volumes 600 --repeat 5 \
 		--multiband-volumes 1200 --batch-runs 6 --batch-volumes 200 --out bench-results/correct.json
 	$(PY) benchmarks/bench_fix.py --sizes 2000,20000 --out bench-results/fix.json
 	$(PY) benchmarks/bench_verify.py --repeat 3 --out bench-results/verify.json
