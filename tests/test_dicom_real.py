@@ -147,12 +147,26 @@ def test_pydicoms_own_files_plain_and_compressed(tmp_path: Path, name: str) -> N
             float(np.dot([float(v) for v in ds.ImagePositionPatient], normal)))
 
 
-def test_truncated_file_from_pydicom_is_one_line_exit_2() -> None:
+def test_truncated_files_header_read_or_one_line_exit_2(tmp_path: Path) -> None:
+    # pydicom's MR_truncated.dcm is cut inside its pixel data: the header is whole, and a
+    # header-only reader reads it as pydicom does (stop_before_pixels)
     path = get_testdata_file("MR_truncated.dcm", download=False)
     assert path is not None
+    ds = pydicom.dcmread(str(path), stop_before_pixels=True)
     shown = CliRunner().invoke(cli, ["show", str(path)])
-    # pydicom documents the file as truncated inside its pixel data: the header is whole
-    assert shown.exit_code in (0, 2) and "Traceback" not in shown.output
+    assert shown.exit_code == 0 and len(shown.output.strip().splitlines()) == 1
+    series = read_series(str(path), "mr")
+    assert series.rows == ds.Rows and series.positions[0] == pytest.approx(
+        float(ds.ImagePositionPatient[2]))  # axial: the normal is +z (PS3.3 C.7.6.2)
+    # cut inside the header (PS3.10: preamble, DICM, meta, data set) and compressed:
+    # one line, exit 2, never a traceback
+    small = get_testdata_file("MR_small.dcm", download=False)
+    assert small is not None
+    cut = tmp_path / "cut.dcm.gz"
+    cut.write_bytes(gzip.compress(Path(str(small)).read_bytes()[:400]))
+    broken = CliRunner().invoke(cli, ["show", str(cut)])
+    assert broken.exit_code == 2 and "Traceback" not in broken.output
+    assert len(broken.output.strip().splitlines()) == 1 and "cut.dcm.gz" in broken.output
 
 
 # --------------------------------------------------------------------------- built with pydicom
