@@ -426,3 +426,24 @@ def test_the_catalogue_is_kept_between_chunks_until_the_tree_changes(
         ds.save_as(f)
     changed = source_module.SourceIndex(root).groups("01", None)
     assert len(calls) == 2 and len(changed) == 2  # the new files are seen
+
+
+def test_a_pixel_data_tag_inside_a_header_value_does_not_end_the_header(
+        tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    # the bytes of the Pixel Data tag (7FE0,0010; PS3.5 little endian) inside a long text
+    # value, before the first prefix ends: the header is read on to its real end
+    monkeypatch.setattr(dicom_files, "_FIRST_PREFIX", 4096)
+    small = get_testdata_file("MR_small.dcm", download=False)
+    assert small is not None
+    ds = pydicom.dcmread(str(small))
+    ds.SpecificCharacterSet = "ISO_IR 100"  # Latin-1 (PS3.3 C.12.1.1.2): one byte a character
+    ds.ImageComments = "x" * 1500 + "\xe0\x7f\x10\x00" + "y" * 6000
+    plain = tmp_path / "plain.dcm"
+    ds.save_as(plain)
+    first = plain.read_bytes().find(b"\xe0\x7f\x10\x00")
+    assert 0 < first < 4096 < plain.read_bytes().rfind(b"\xe0\x7f\x10\x00")  # the premise
+    packed = tmp_path / "packed.dcm.gz"
+    packed.write_bytes(gzip.compress(plain.read_bytes()))
+    read = read_series(str(packed), "packed")
+    assert read.positions == read_series(str(plain), "plain").positions
+    assert read.rows == pydicom.dcmread(plain).Rows  # pydicom

@@ -140,11 +140,11 @@ def _marker_ok(head: bytes) -> bool:
     return len(head) >= 132 and head[128:132] == b"DICM"
 
 
-def _parse(data: bytes | str, shown: str, tags: Sequence[str] | None, defer: bool) -> Any:
+def _parse(source: Any, shown: str, tags: Sequence[str] | None, defer: bool) -> Any:
+    """pydicom's reading of a path or a binary stream, header only."""
     import pydicom
     from pydicom.errors import InvalidDicomError
 
-    source: Any = io.BytesIO(data) if isinstance(data, bytes) else data
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
@@ -159,19 +159,37 @@ def _parse(data: bytes | str, shown: str, tags: Sequence[str] | None, defer: boo
         raise fail(shown, f"damaged DICOM header ({type(exc).__name__}: {exc})") from None
 
 
-def _prefix(stream: Any, shown: str) -> bytes:
-    """The object's bytes up to its Pixel Data element (bounded)."""
+def _read_more(stream: Any, n: int, shown: str) -> bytes:
+    try:
+        return bytes(stream.read(n))
+    except (OSError, EOFError, zipfile.BadZipFile, tarfile.TarError) as exc:
+        raise fail(shown, f"cannot decompress the file ({type(exc).__name__}: {exc})") \
+            from None
+
+
+def _header(stream: Any, shown: str, tags: Sequence[str] | None) -> tuple[bytes, Any]:
+    """The object's header bytes (up to its Pixel Data element) and their parse with
+    ``tags``: read as a prefix growing from 256 KiB to at most MAX_HEADER_BYTES. A prefix
+    is complete when the parse stops before its end (at the pixel data) or the object
+    ends; a prefix that a Pixel Data tag value inside the header only seems to end is
+    read on."""
     data = b""
     want = _FIRST_PREFIX
     while True:
-        try:
-            chunk = stream.read(want - len(data))
-        except (OSError, EOFError, zipfile.BadZipFile, tarfile.TarError) as exc:
-            raise fail(shown, f"cannot decompress the file ({type(exc).__name__}: {exc})") \
-                from None
-        data += chunk
-        if len(data) < want or any(tag in data for tag in _PIXEL_TAGS):
-            return data  # the whole object, or its header is complete
+        data += _read_more(stream, want - len(data), shown)
+        ended = len(data) < want
+        if ended or any(tag in data for tag in _PIXEL_TAGS):
+            buffer = io.BytesIO(data)
+            try:
+                dataset = _parse(buffer, shown, tags, defer=False)
+            except ReadError:
+                if ended or want >= MAX_HEADER_BYTES:
+                    raise
+            else:
+                if ended or buffer.tell() < len(data):
+                    return data[: buffer.tell()], dataset
+        if ended:  # pragma: no cover - a parse at the end either returns or raises
+            raise fail(shown, "the header ends before it is complete")
         if want >= MAX_HEADER_BYTES:
             raise fail(shown, f"no pixel data within the first {MAX_HEADER_BYTES:,} bytes: the "
                        "header is too large to read", bytes=MAX_HEADER_BYTES)
@@ -185,35 +203,55 @@ def read_object(obj: DicomObject, shown: str, tags: Sequence[str] | None = None)
     if obj.member is None:
         try:
             with gzip.open(obj.path, "rb") as stream:
-                return _parse(_prefix(stream, shown), shown, tags, defer=False)
+                return _header(stream, shown, tags)[1]
         except OSError as exc:
             raise fail(shown, f"cannot read the file ({exc.strerror or exc})") from None
-    for member, data in _archive_members(obj.path, shown, only=obj.member):
-        del member
-        return _parse(data, shown, tags, defer=False)
+    for _, data, _slim in _archive_members(obj.path, shown, only=obj.member):
+        return _parse(io.BytesIO(data), shown, tags, defer=False)
     raise fail(shown, "the archive member is gone")
 
 
-def _member_bytes(stream: Any, name: str, shown: str) -> bytes | None:
-    """A member's header bytes, or None when it is not DICOM (no marker, not .dcm)."""
+def _member_header(stream: Any, name: str, shown: str) -> tuple[bytes, Any] | None:
+    """A member's header bytes and catalogue tags, or None when it is not DICOM (no
+    marker and no DICOM name)."""
     if _is_gz(name):
         stream = gzip.GzipFile(fileobj=stream, mode="rb")
-    try:
-        data = _prefix(stream, shown)
-    except ReadError:
-        if name.lower().endswith(_DICOM_SUFFIXES + _GZ_DICOM_SUFFIXES):
-            raise
+    named = name.lower().endswith(_DICOM_SUFFIXES + _GZ_DICOM_SUFFIXES)
+    head = _read_more(stream, 132, shown)
+    if not named and not _marker_ok(head):
         return None
-    if _marker_ok(data) or name.lower().endswith(_DICOM_SUFFIXES + _GZ_DICOM_SUFFIXES):
-        return data
-    return None
+    return _header(_Joined(head, stream), shown, CATALOGUE_TAGS)
 
 
-def _archive_members(path: str, shown: str, only: str | None = None
-                     ) -> Iterator[tuple[str, bytes]]:
-    """(member name, header bytes) of the DICOM members of an archive, in archive order.
+class _Joined(io.RawIOBase):
+    """The bytes already read, then the rest of the stream."""
+
+    def __init__(self, head: bytes, rest: Any) -> None:
+        super().__init__()
+        self.head, self.rest = head, rest
+
+    def readable(self) -> bool:
+        return True
+
+    def read(self, n: int = -1) -> bytes:
+        out = self.head[:n] if n >= 0 else self.head
+        self.head = self.head[len(out):]
+        if n < 0:
+            return out + bytes(self.rest.read())
+        if len(out) < n:
+            out += bytes(self.rest.read(n - len(out)))
+        return out
+
+
+def _archive_members(path: str, shown: str, only: str | None = None,
+                     problems: list[ReadError] | None = None
+                     ) -> Iterator[tuple[str, bytes, Any]]:
+    """(member name, header bytes, catalogue tags) of the DICOM members of an archive, in
+    archive order.
     Tar archives are read as one stream (no seeking back and forth in a compressed one).
-    Reading stops when the first :data:`MAX_LEADING_OTHERS` files hold no DICOM."""
+    Reading stops when the first :data:`MAX_LEADING_OTHERS` files hold no DICOM. A member
+    that cannot be read goes to ``problems`` when given (the others are still read), else
+    raises."""
     seen = found = others = 0
 
     def counted(name: str, is_file: bool) -> bool:
@@ -234,6 +272,15 @@ def _archive_members(path: str, shown: str, only: str | None = None
     def given_up() -> bool:
         return only is None and not found and others >= MAX_LEADING_OTHERS
 
+    def member(stream: Any, name: str) -> tuple[bytes, Any] | None:
+        try:
+            return _member_header(stream, name, f"{shown}/{name}")
+        except ReadError as exc:
+            if problems is None:
+                raise
+            problems.append(exc)
+            return None
+
     try:
         if path.lower().endswith(".zip"):
             with zipfile.ZipFile(path) as packed:
@@ -243,29 +290,28 @@ def _archive_members(path: str, shown: str, only: str | None = None
                     if not counted(info.filename, not info.is_dir()):
                         continue
                     with packed.open(info) as stream:
-                        data = _member_bytes(stream, info.filename,
-                                             f"{shown}/{info.filename}")
-                    if data is None:
+                        got = member(stream, info.filename)
+                    if got is None:
                         others += 1
                         continue
                     found += 1
-                    yield info.filename, data
+                    yield info.filename, got[0], got[1]
             return
         with tarfile.open(path, "r|*") as archive:
-            for member in archive:
+            for entry in archive:
                 if given_up():
                     return
-                if not counted(member.name, member.isfile()):
+                if not counted(entry.name, entry.isfile()):
                     continue
-                extracted = archive.extractfile(member)
+                extracted = archive.extractfile(entry)
                 if extracted is None:
                     continue
-                data = _member_bytes(extracted, member.name, f"{shown}/{member.name}")
-                if data is None:
+                got = member(extracted, entry.name)
+                if got is None:
                     others += 1
                     continue
                 found += 1
-                yield member.name, data
+                yield entry.name, got[0], got[1]
     except ReadError:
         raise
     except (OSError, EOFError, zipfile.BadZipFile, tarfile.TarError) as exc:
@@ -341,13 +387,7 @@ def _objects_of(path: str, shown_of: Any, problems: list[ReadError]
         items: list[tuple[DicomObject, Any]] = []
         first: dict[str, tuple[list[Any], str, bytes]] = {}
         try:
-            for name, data in _archive_members(path, shown_of(path)):
-                shown = f"{shown_of(path)}/{name}"
-                try:
-                    slim = _parse(data, shown, CATALOGUE_TAGS, defer=False)
-                except ReadError as exc:
-                    problems.append(exc)
-                    continue
+            for name, data, slim in _archive_members(path, shown_of(path), problems=problems):
                 items.append((DicomObject(path, name), slim))
                 uid = str(slim.get("SeriesInstanceUID") or "")
                 if uid not in first or natural(name) < first[uid][0]:
@@ -357,7 +397,8 @@ def _objects_of(path: str, shown_of: Any, problems: list[ReadError]
         whole: dict[str, Any] = {}
         for _, name, data in first.values():
             try:
-                whole[name] = _parse(data, f"{shown_of(path)}/{name}", None, defer=False)
+                whole[name] = _parse(io.BytesIO(data), f"{shown_of(path)}/{name}", None,
+                                     defer=False)
             except ReadError as exc:
                 problems.append(exc)
         items.sort(key=lambda item: natural(item[0].member or ""))
