@@ -447,3 +447,13 @@ def test_a_pixel_data_tag_inside_a_header_value_does_not_end_the_header(
     read = read_series(str(packed), "packed")
     assert read.positions == read_series(str(plain), "plain").positions
     assert read.rows == pydicom.dcmread(plain).Rows  # pydicom
+
+
+def test_a_bad_member_does_not_hide_the_rest_of_its_archive(tmp_path: Path) -> None:
+    archive = tmp_path / "export.zip"
+    with zipfile.ZipFile(archive, "w") as out:
+        out.writestr("rest/000.dcm", b"a note saved with a DICOM name")  # not DICOM
+        out.write(RESTING, "rest/001.dcm")
+    groups, problems = dicom_files.catalogue(str(archive), str)
+    assert [len(g.objects) for g in groups] == [1] and len(problems) == 1
+    assert "000.dcm" in problems[0].message
