@@ -53,6 +53,8 @@ Verdict = Literal["supported", "consistent", "contradicted", "undecidable"]
 
 #: in-brain voxels: temporal mean above this fraction of the robust maximum
 MASK_FRACTION = 0.2
+#: the share of the run tapered (half at each end) before the Fourier transform (:func:`taper`)
+TAPER_FRACTION = 1.0
 #: high-pass cut-off (Hz): slower components carry almost no timing evidence
 HIGHPASS_HZ = 0.01
 #: the highest true frequency (Hz) a component is assumed to have: respiration (about
@@ -228,10 +230,36 @@ class Spectra:
     repetition_time: float
 
 
+def taper(n: int, fraction: float | None = None) -> np.ndarray:
+    """The window every channel course is multiplied by before its Fourier transform.
+
+    A delay is a linear phase ramp on the discrete Fourier transform only for a periodic
+    course: the ramp shifts the course circularly (the shift theorem of the DFT). A run's
+    course is not periodic (a drift, a slow wander that ends elsewhere than it began, a
+    block cut mid-block), so its periodic extension jumps at the run's ends, and that
+    jump leaks over the whole spectrum (Harris 1978, Proc. IEEE 66:51-83) at the same
+    sample in every slice, as if the slices had no offsets. Aligning by a schedule with
+    offsets then misaligns the leak, and "no offsets" would win on the shape of the signal
+    alone. Tapering both ends to zero removes the jump (the leak decays as the cube of
+    the frequency instead of its first power), and every candidate is scored on the same
+    tapered spectra. A Tukey (cosine-tapered) window: ``fraction`` of the run (half at
+    each end) follows a raised cosine, the middle is flat; ``fraction`` 1 is Hann."""
+    share = TAPER_FRACTION if fraction is None else fraction
+    w = np.ones(n)
+    edge = round(share * n / 2)
+    if n < 3 or edge < 1:
+        return w
+    ramp = 0.5 * (1.0 - np.cos(np.pi * (np.arange(edge) + 0.5) / edge))
+    w[:edge] = ramp
+    w[n - edge:] = ramp[::-1]
+    return w
+
+
 def region_spectra(prepared: Prepared, n_slices: int, region_of: np.ndarray) -> Spectra:
     """Slice spectra of the channels in region 0 and in region 1 (``region_of`` per channel)."""
     x = _fft().idct(prepared.coeffs, type=2, axis=1)
     n = x.shape[1]
+    x = x * taper(n)[None, :]
     transform = np.fft.rfft(x, axis=1)[:, 1:]
     weights = np.sqrt(_weights(n)[1:])
     regions = np.asarray(region_of) % 2
@@ -479,6 +507,8 @@ class Decision:
     #: the strongest alternative that is not equivalent to the claim
     rival_name: str | None = None
     rival_score: float | None = None
+    #: the rival's slice times (seconds, data-array order)
+    rival_times: tuple[float, ...] | None = None
     #: (rival - claimed) / (best - shuffled mean): share of the timing evidence the claim loses
     effect: float | None = None
     #: bootstrap (over blocks of frequency bins) z of rival - claimed, its 95 % interval,
@@ -523,6 +553,22 @@ class Decision:
             "equivalent": list(self.equivalent),
             "top": [[name, r(score)] for name, score in self.ranking[:5]],
         }
+
+
+#: the strength of the evidence in words, by the size of the bootstrap z of the decisive
+#: comparison (the claim against the alternative the verdict names)
+STRENGTH_WORDS = ((10.0, "very strong"), (6.0, "strong"), (3.0, "clear"), (2.0, "moderate"))
+#: alternatives within this RMS distance of the claim (seconds, after the best common
+#: offset, as a fraction of the acquisition window) are "too close in time to tell apart"
+CLOSE_FRACTION = 0.08
+
+
+def strength(decision: Decision) -> str:
+    """How strong the evidence behind a verdict is, in words (for the screen)."""
+    z = abs(decision.z_rival) if decision.z_rival is not None else 0.0
+    if decision.verdict == "supported" and decision.z_rival is None:
+        return "clear"
+    return next((word for bound, word in STRENGTH_WORDS if z >= bound), "weak")
 
 
 def _z(diff: float, replicates: np.ndarray) -> float:
@@ -570,23 +616,65 @@ def _paired_z(diff_bins: np.ndarray, block: int, seed: int
     return _z(centre, reps - reps.mean()), (float(low), float(high)), float(np.mean(reps > 0))
 
 
-def _leads(fields: dict[str, Any]) -> bool:
-    """The rival beats the claim under the ordinary score, overall and in both halves."""
-    effect = fields["effect"]
-    return (fields["z_rival"] >= Z_CONTRADICT and effect is not None
-            and effect >= MIN_EFFECT and min(fields["z_regions"]) >= Z_REGION)
+@dataclass(frozen=True)
+class Challenge:
+    """The claim tested against one alternative (see :class:`Decision` for the fields)."""
+
+    name: str
+    score: float
+    times: tuple[float, ...]
+    effect: float | None
+    z: float
+    interval: tuple[float, float]
+    wins: float
+    z_regions: tuple[float, float]
+    z_signs: float | None
+
+    def leads(self) -> bool:
+        """The rival beats the claim under the ordinary score, overall and in both halves."""
+        return (self.z >= Z_CONTRADICT and self.effect is not None
+                and self.effect >= MIN_EFFECT and min(self.z_regions) >= Z_REGION)
+
+    def signs_agree(self) -> bool:
+        return self.z_signs is None or self.z_signs >= Z_SIGN
+
+    def beats(self) -> bool:
+        """A contradiction: the rival leads under the ordinary score and under the
+        sign-invariant one (so physiology of opposite signs in different slices, which the
+        true schedule cancels, cannot make the lead)."""
+        return self.leads() and self.signs_agree()
 
 
-def _signs_agree(fields: dict[str, Any]) -> bool:
-    z = fields.get("z_signs")
-    return z is None or z >= Z_SIGN
+@dataclass(frozen=True)
+class _Base:
+    claimed_score: float
+    best_name: str
+    best_score: float
+    null_score: float
+    null_best: float
+    p_evidence: float
+    p_claimed: float
+    equivalent: tuple[str, ...]
+    ranking: tuple[tuple[str, float], ...]
 
 
-def _beats(fields: dict[str, Any]) -> bool:
-    """A contradiction: the rival leads under the ordinary score and under the
-    sign-invariant one (so physiology of opposite signs in different slices, which the
-    true schedule cancels, cannot make the lead)."""
-    return _leads(fields) and _signs_agree(fields)
+def _decision(verdict: Verdict, reason: str, base: _Base, rival: Challenge | None
+              ) -> Decision:
+    """One :class:`Decision` from the shared numbers and the alternative it names."""
+    return Decision(
+        verdict, reason, base.claimed_score, base.best_name, base.best_score, base.null_score,
+        base.null_best,
+        rival_name=None if rival is None else rival.name,
+        rival_score=None if rival is None else rival.score,
+        rival_times=None if rival is None else rival.times,
+        effect=None if rival is None else rival.effect,
+        z_rival=None if rival is None else rival.z,
+        interval=None if rival is None else rival.interval,
+        rival_wins=None if rival is None else rival.wins,
+        z_regions=None if rival is None else rival.z_regions,
+        z_signs=None if rival is None else rival.z_signs,
+        p_evidence=base.p_evidence, p_claimed=base.p_claimed, equivalent=base.equivalent,
+        ranking=base.ranking)
 
 
 def decide(candidates: Sequence[Candidate], evidence: Evidence, window: float, *,
@@ -601,29 +689,27 @@ def decide(candidates: Sequence[Candidate], evidence: Evidence, window: float, *
     def p_value(score: float) -> float:
         return (1 + int(np.sum(null_maxima >= score))) / (sets + 1)
 
-    p_evidence = p_value(float(scores[best]))
-    p_claimed = p_value(float(scores[claimed]))
     ranking = tuple(sorted(((c.name, float(scores[i])) for i, c in enumerate(candidates)),
                            key=lambda item: -item[1]))
     ref = candidates[claimed].times
     equivalent = [i for i in range(len(candidates)) if i != claimed
                   and schedule_distance(candidates[i].times, ref) < EQUIVALENT_FRACTION * window]
     others = [i for i in range(len(candidates)) if i != claimed and i not in equivalent]
-    base = dict(
+    base = _Base(
         claimed_score=float(scores[claimed]), best_name=candidates[best].name,
         best_score=float(scores[best]), null_score=evidence.null_mean,
         null_best=float(np.median(null_maxima)) if sets else evidence.null_mean,
-        p_evidence=p_evidence, p_claimed=p_claimed,
+        p_evidence=p_value(float(scores[best])), p_claimed=p_value(float(scores[claimed])),
         equivalent=tuple(candidates[i].name for i in equivalent), ranking=ranking,
     )
-    rival_fields: dict[str, Any] = {}
-    signs_against: list[dict[str, Any]] = []
+    rival: Challenge | None = None
+    signs_against: list[Challenge] = []
     block = bin_block(evidence.spectra.freqs)
     bins = evidence.bins
     if others:
         spread = float(scores[best]) - evidence.null_mean
 
-        def challenge(i: int) -> dict[str, Any]:
+        def challenge(i: int) -> Challenge:
             z, interval, wins = _paired_z(bins.total[i] - bins.total[claimed], block, seed)
             z_a = _paired_z(bins.region_a[i] - bins.region_a[claimed], block, seed + 1)[0]
             z_b = _paired_z(bins.region_b[i] - bins.region_b[claimed], block, seed + 2)[0]
@@ -632,63 +718,51 @@ def decide(candidates: Sequence[Candidate], evidence: Evidence, window: float, *
             if evidence.signs is not None:
                 z_s = _paired_z(evidence.signs.total[i] - evidence.signs.total[claimed],
                                 block, seed + 3)[0]
-            return dict(rival_name=candidates[i].name, rival_score=float(scores[i]),
-                        effect=diff / spread if spread > 0 else None, z_rival=z,
-                        interval=interval, rival_wins=wins, z_regions=(z_a, z_b),
-                        z_signs=z_s)
+            return Challenge(candidates[i].name, float(scores[i]), candidates[i].times,
+                             diff / spread if spread > 0 else None, z, interval, wins,
+                             (z_a, z_b), z_s)
 
         # the claim is tested against the best few alternatives, so that near-ties in
         # score cannot swap the alternative it is judged against: a contradiction names
         # the best-scoring one that beats it clearly; otherwise the most threatening one
         # (highest z) is reported
         tested = [challenge(i) for i in sorted(others, key=lambda i: -scores[i])[:RIVALS]]
-        beating = [t for t in tested if _beats(t)]
-        leading = [t for t in tested if _leads(t)]
-        rival_fields = (beating or leading or [max(tested, key=lambda t: t["z_rival"])])[0]
-        signs_against = [t for t in tested
-                         if t["z_signs"] is not None and t["z_signs"] >= Z_SIGN]
+        beating = [t for t in tested if t.beats()]
+        leading = [t for t in tested if t.leads()]
+        rival = (beating or leading or [max(tested, key=lambda t: t.z)])[0]
+        signs_against = [t for t in tested if t.z_signs is not None and t.z_signs >= Z_SIGN]
     threshold = 1.0 / (sets + 1) + 1e-12
-    if p_evidence > threshold:
-        return Decision("undecidable", "the data show too little timing evidence: no "
-                        "candidate aligns the slices better than the best of every set of "
-                        "shuffled slice orders", **base, **rival_fields)
-    z_rival = rival_fields.get("z_rival")
-    effect = rival_fields.get("effect")
-    regions = rival_fields.get("z_regions")
-    if z_rival is not None and effect is not None and regions is not None:
-        if _beats(rival_fields):
-            return Decision("contradicted", f"{rival_fields['rival_name']} aligns the slices "
-                            "clearly better than the claimed schedule, in every frequency "
-                            "band and in both halves of the image", **base, **rival_fields)
-        if _leads(rival_fields):
-            return Decision("undecidable", f"{rival_fields['rival_name']} aligns the slices "
-                            "better than the claimed schedule, but not once each slice may "
-                            "carry its own sign of the shared signal (physiology of opposite "
-                            "signs in different slices can make such a lead)",
-                            **base, **rival_fields)
-        if z_rival >= Z_CONTRADICT and effect >= MIN_EFFECT:
-            return Decision("undecidable", f"{rival_fields['rival_name']} aligns the slices "
-                            "better than the claimed schedule, but the two halves of the "
-                            "image disagree", **base, **rival_fields)
-    if p_claimed > threshold:
-        return Decision("undecidable", "the evidence is too weak to support or contradict "
-                        "the claimed schedule", **base, **rival_fields)
+    if base.p_evidence > threshold:
+        return _decision("undecidable", "the data hold too little shared signal that "
+                         "depends on when each slice was acquired: no order fits better than "
+                         "orders made by shuffling the slices", base, rival)
+    if rival is not None and rival.effect is not None:
+        if rival.beats():
+            return _decision("contradicted", f"{rival.name} fits clearly better than the "
+                             "claimed order, across the spectrum and in both halves of the "
+                             "image", base, rival)
+        if rival.leads():
+            return _decision("undecidable", f"{rival.name} fits better, but that lead "
+                             "could come from breathing or pulse signals of opposite sign in "
+                             "different slices", base, rival)
+        if rival.z >= Z_CONTRADICT and rival.effect >= MIN_EFFECT:
+            return _decision("undecidable", f"{rival.name} fits better in one half of "
+                             "the image but not in the other",
+                             base, rival)
+    if base.p_claimed > threshold:
+        return _decision("undecidable", "the evidence is too weak either way", base, rival)
     if signs_against:
-        return Decision("undecidable", "no alternative clearly beats the claimed schedule, "
-                        f"but {signs_against[0]['rival_name']} aligns the slices better once "
-                        "each slice may carry its own sign of the shared signal",
-                        **base, **signs_against[0])
-    if z_rival is None or (z_rival <= -Z_SUPPORT and regions is not None
-                           and max(regions) < -Z_SUPPORT_REGION):
-        return Decision("supported", "the claimed schedule aligns the slices better than "
-                        "every materially different alternative and than the best of every "
-                        "set of shuffled slice orders", **base, **rival_fields)
-    if z_rival <= Z_TIE or effect is None or effect < TIE_EFFECT:
-        return Decision("consistent", f"the claimed schedule aligns the slices better than "
-                        f"shuffled slice orders, but {rival_fields['rival_name']} fits about "
-                        "as well", **base, **rival_fields)
-    return Decision("undecidable", "the evidence is too weak to support or contradict the "
-                    "claimed schedule", **base, **rival_fields)
+        return _decision("undecidable", "no other order clearly fits better, but "
+                         f"{signs_against[0].name} does once each slice may carry its own "
+                         "sign of the shared signal", base,
+                         signs_against[0])
+    if rival is None or (rival.z <= -Z_SUPPORT and max(rival.z_regions) < -Z_SUPPORT_REGION):
+        return _decision("supported", "the claimed order fits better than every "
+                         "materially different order and than shuffled orders", base, rival)
+    if rival.z <= Z_TIE or rival.effect is None or rival.effect < TIE_EFFECT:
+        return _decision("consistent", f"{rival.name} fits about as well",
+                         base, rival)
+    return _decision("undecidable", "the evidence is too weak either way", base, rival)
 
 
 def gather(courses: np.ndarray, slice_of: np.ndarray, region_of: np.ndarray,
@@ -734,6 +808,7 @@ def evaluate(courses: np.ndarray, slice_of: np.ndarray, repetition_time: float,
 __all__ = [
     "BinScores",
     "Candidate",
+    "Challenge",
     "ChannelLayout",
     "Decision",
     "Evidence",
@@ -758,5 +833,7 @@ __all__ = [
     "shuffle_maxima",
     "shuffled_totals",
     "sign_scores",
+    "strength",
+    "taper",
     "weigh",
 ]

@@ -164,8 +164,8 @@ def verify_object(outcomes: Sequence[VerifyOutcome],
     verdicts = [verdict_of(o) for o in outcomes]
     return {
         "tool": {"name": "slicetime", "version": __version__},
-        "runs": [{"path": o.path, "verdict": verdict_of(o), "finding": o.finding.to_json(),
-                  "units": [f.to_json() for f in o.units]} for o in outcomes],
+        "runs": [{"path": o.path, "verdict": verdict_of(o), "finding": o.finding.to_json()}
+                 for o in outcomes],
         "unreadable": [dict(u) for u in unreadable],
         "summary": {v: verdicts.count(v) for v in VERDICTS},
     }

@@ -8,20 +8,23 @@ orders and multiband variants over the same acquisition window, the claim
 flipped along the slice axis and reversed in time, no offsets, and shuffled
 orders as the null), score them with :mod:`slicetime.engines.verify` and turn
 the verdict into a finding (``verify/supported``, ``verify/consistent``,
-``verify/contradicted``, ``verify/undecidable``). Timing fields written in milliseconds
-are converted to seconds first and reported with the audit's own codes.
+``verify/contradicted``, ``verify/undecidable``). Every alternative is named by its
+scheme label (the words ``show`` uses, from :mod:`slicetime.schemes.labels` and
+:func:`slicetime.schemes.infer.infer_scheme`); a contradiction carries the better
+order's slice times (``best_slice_times``, the sidecar's order, seconds). Units are not
+decided here: SliceTiming is read in seconds as :func:`slicetime.schemes.resolve.seconds_factor`
+says, and a RepetitionTime that is not plausible seconds leaves the run undecidable
+(the audit reports the unit).
 
 Memory: one batch of volumes plus the channel courses (channels × volumes).
 """
 
 from __future__ import annotations
 
-import dataclasses
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
 
 import numpy as np
 
@@ -29,27 +32,32 @@ import slicetime.rules  # noqa: F401  (registers the verify/* and units codes it
 from slicetime.codes import make_finding
 from slicetime.engines import verify as ev
 from slicetime.model import MAX_REPETITION_TIME, Finding, RunRecord, Severity, SliceSchedule
-from slicetime.numbers import plain
 from slicetime.readers.errors import ReadError
 from slicetime.readers.volumes import VolumeReader, scaling
 from slicetime.schemes.generate import Protocol, array_times
-from slicetime.schemes.labels import LabelParts, format_label
-from slicetime.schemes.resolve import looks_like_milliseconds
+from slicetime.schemes.infer import infer_scheme
+from slicetime.schemes.labels import IRREGULAR, LabelParts, format_label
+from slicetime.schemes.resolve import seconds_factor
 
 #: volumes per read; the mask comes from the first batch
 BATCH_VOLUMES = 16
 MAX_MULTIBAND = 6
 
 
+#: the name of the candidate without offsets (every slice at the volume's start): the
+#: answer only when the data look already slice-time corrected
+NO_OFFSETS = "no offsets"
+
+
 @dataclass(frozen=True)
 class VerifyOutcome:
-    """What verify found for one run: the verdict's finding, and findings about the units
-    of the timing fields when they had to be converted to seconds first."""
+    """What verify found for one run: the decision (None when the run cannot be
+    checked), the verdict's finding, and the claimed order's label."""
 
     path: str
     decision: ev.Decision | None
     finding: Finding
-    units: tuple[Finding, ...] = ()
+    claimed_label: str | None = None
 
 
 # --------------------------------------------------------------------------- candidates
@@ -90,9 +98,19 @@ def _key(times: Sequence[float]) -> tuple[int, ...]:
     return tuple(round((t - low) * 1000) for t in times)  # 1 ms, offset removed
 
 
+def order_label(times: Sequence[float]) -> str:
+    """The scheme label of a list of slice times, as ``show`` prints it."""
+    try:
+        return infer_scheme(times).label
+    except ValueError:
+        return IRREGULAR
+
+
 def candidates(claimed: Sequence[float], window: float) -> list[ev.Candidate]:
-    """The claim first, then the alternatives (identical time lists, up to a common
-    offset, are scored once, under the first name)."""
+    """The claim first, then the alternatives, each named by its scheme label: the
+    common orders, the claim flipped along the slice axis and reversed in time (when they
+    are not common orders themselves), and no offsets. Identical time lists (up to a
+    common offset, which the data cannot see) are scored once, under the first name."""
     claim = tuple(float(t) for t in claimed)
     n = len(claim)
     listed: list[ev.Candidate] = [ev.Candidate("claimed schedule", claim, "claimed")]
@@ -104,12 +122,12 @@ def candidates(claimed: Sequence[float], window: float) -> list[ev.Candidate]:
             seen.add(key)
             listed.append(ev.Candidate(name, tuple(float(t) for t in times)))
 
-    add("claimed schedule flipped along the slice axis", claim[::-1])
-    top = max(claim) if claim else 0.0
-    add("claimed order reversed in time", tuple(top - t for t in claim))
-    add("no offsets (all slices at once)", (0.0,) * n)
     for name, times in standard_schedules(n, window):
         add(name, times)
+    top = max(claim) if claim else 0.0
+    for times in (claim[::-1], tuple(top - t for t in claim)):
+        add(order_label(times), times)
+    add(NO_OFFSETS, (0.0,) * n)
     return listed
 
 
@@ -209,84 +227,40 @@ def _undecidable(record: RunRecord, why: str, **evidence: object) -> VerifyOutco
                          _finding(record, "undecidable", message, {"reason": why, **evidence}))
 
 
-#: a RepetitionTime above this many seconds was written in milliseconds (as the audit's
-#: ``tr/units-ms``)
-TR_MS_ABOVE = MAX_REPETITION_TIME
+def in_sidecar_order(times: Sequence[float], schedule: SliceSchedule) -> list[float]:
+    """Data-array order -> the order of the sidecar's SliceTiming list (reversed when
+    SliceEncodingDirection is negative, BIDS), rounded to the microsecond."""
+    ordered = list(times) if schedule.direction == "+" else list(times)[::-1]
+    return [round(float(t), 6) for t in ordered]
 
 
-def in_seconds(record: RunRecord) -> tuple[SliceSchedule | None, tuple[Finding, ...]]:
-    """The run's schedule with RepetitionTime and SliceTiming in seconds, and a finding
-    (the audit's ``tr/units-ms`` and ``timing/units-ms`` codes) for each field that had to
-    be divided by 1000. BIDS times are in seconds."""
+def seconds_schedule(record: RunRecord) -> SliceSchedule | None:
+    """The run's schedule with SliceTiming in seconds, as the project's one owner of units
+    (:func:`slicetime.schemes.resolve.seconds_factor`) reads it."""
     schedule = record.schedule
-    if schedule is None or schedule.repetition_time is None or not schedule.times:
-        return schedule, ()
-    found: list[Finding] = []
-    tr = float(schedule.repetition_time)
-    changes: dict[str, Any] = {}
-    tr_file = record.metadata_sources.get("RepetitionTime", record.path)
-    st_file = record.metadata_sources.get("SliceTiming", record.path)
-    if tr > TR_MS_ABOVE:
-        tr /= 1000.0
-        changes["repetition_time"] = tr
-        for name in ("acquisition_duration", "delay_time"):
-            value = getattr(schedule, name)
-            if value is not None and value > TR_MS_ABOVE / 10:
-                changes[name] = value / 1000.0
-        found.append(make_finding(
-            "tr/units-ms",
-            f"{record.path}: RepetitionTime is {plain(schedule.repetition_time)}, "
-            f"milliseconds; verified with {plain(tr)} s", file=tr_file, field="RepetitionTime",
-            evidence={"value": schedule.repetition_time, "as_seconds": tr},
-            hint="Divide RepetitionTime by 1000."))
-    converted = dataclasses.replace(schedule, **changes) if changes else schedule
-    window = converted.acquisition_window or tr
-    times = converted.times
-    if max(times) >= window and (looks_like_milliseconds(times, window) or (
-            "repetition_time" in changes and max(times) / 1000.0 < window)):
-        converted = dataclasses.replace(converted, times=tuple(t / 1000.0 for t in times))
-        found.append(make_finding(
-            "timing/units-ms",
-            f"{record.path}: SliceTiming goes up to {plain(max(times))}, milliseconds; the "
-            f"order was verified with the times divided by 1000 (up to "
-            f"{plain(max(times) / 1000)} s)", file=st_file, field="SliceTiming",
-            evidence={"max": max(times), "window": window,
-                      "as_seconds_max": max(times) / 1000.0},
-            hint="Divide every SliceTiming entry by 1000 (slicetime fix does this)."))
-    return converted, tuple(found)
+    if schedule is None or not schedule.times:
+        return schedule
+    factor = seconds_factor(schedule, record.timing_origin)
+    if factor == 1.0:
+        return schedule
+    import dataclasses
 
-
-def _units_note(units: Sequence[Finding]) -> str:
-    if not units:
-        return ""
-    fields = " and ".join(f.field or "" for f in units)
-    return f" (read in seconds: {fields} {'was' if len(units) == 1 else 'were'} in milliseconds)"
+    return dataclasses.replace(schedule, times=tuple(t * factor for t in schedule.times))
 
 
 def verify_record(record: RunRecord, *, seed: int = 0) -> VerifyOutcome:
-    """Verify one run whose record was built by the audit's reader. Timing fields written
-    in milliseconds are converted to seconds first and reported (``outcome.units``).
+    """Verify one run whose record was built by the audit's reader.
 
     Raises ReadError when the image data cannot be read (truncated, corrupt)."""
-    schedule, units = in_seconds(record)
-    outcome = _verify_schedule(record, schedule, seed=seed)
-    if not units:
-        return outcome
-    finding = outcome.finding
-    evidence = dict(finding.evidence or {})
-    evidence["units"] = {f.field: "milliseconds" for f in units}
-    message = finding.message + _units_note(units)
-    return dataclasses.replace(outcome, units=units, finding=dataclasses.replace(
-        finding, message=message, evidence=evidence))
-
-
-def _verify_schedule(record: RunRecord, schedule: SliceSchedule | None, *, seed: int
-                     ) -> VerifyOutcome:
     header = record.header
+    schedule = seconds_schedule(record)
     if header is None:
         return _undecidable(record, "the header could not be read")
     if schedule is None or schedule.repetition_time is None:
         return _undecidable(record, "no slice schedule or repetition time is known")
+    if schedule.repetition_time > MAX_REPETITION_TIME:
+        return _undecidable(record, f"RepetitionTime ({schedule.repetition_time:g}) is not in "
+                            "seconds (slicetime audit reports it)")
     if schedule.volume_times is not None:
         return _undecidable(record, "volumes are not evenly spaced (VolumeTiming)")
     if len(header.shape) != 4 or header.n_volumes < ev.MIN_VOLUMES:
@@ -309,32 +283,65 @@ def _verify_schedule(record: RunRecord, schedule: SliceSchedule | None, *, seed:
     listed = candidates(schedule.times, window)
     decision = ev.evaluate(channels.courses, channels.slice_of, tr, listed, window, seed=seed,
                            region_of=channels.region_of)
+    return outcome_of(record, schedule, window, decision, len(listed))
+
+
+def outcome_of(record: RunRecord, schedule: SliceSchedule, window: float,
+               decision: ev.Decision, n_candidates: int) -> VerifyOutcome:
+    """The finding of a decision: its message in plain words, and in the evidence the
+    numbers, the claimed order's label and, for a contradiction, the order to adopt
+    (``best_order``, ``best_slice_times`` in the sidecar's order, seconds)."""
+    claimed = order_label(schedule.times)
     evidence = decision.to_json()
-    evidence["candidates"] = len(listed)
-    if decision.verdict == "contradicted":
-        message = (f"{record.path}: the data contradict the claimed slice order: "
-                   f"'{decision.rival_name}' aligns the slices better "
-                   f"(effect {decision.effect:.2f}, z {decision.z_rival:.1f})")
-        hint = ("Check the slice order on the protocol sheet or in the scanner's export; the "
-                "named alternative fits the data better. Data that were already slice-time "
-                "corrected fit 'no offsets'.")
+    evidence["candidates"] = n_candidates
+    evidence["claimed_order"] = claimed
+    evidence["strength"] = ev.strength(decision)
+    words = evidence["strength"]
+    where = record.path
+    if decision.verdict == "contradicted" and decision.rival_times is not None:
+        evidence["best_slice_times"] = in_sidecar_order(decision.rival_times, schedule)
+        if decision.rival_name == NO_OFFSETS:
+            evidence["best_order"] = NO_OFFSETS
+            evidence["already_corrected"] = True
+            message = (f"{where}: the data look already slice-time corrected: all slices fit "
+                       f"one time better than the claimed {claimed} order ({words} evidence)")
+            hint = ("Corrected data need no further slice-time correction; check where the "
+                    "run came from before correcting it again.")
+        else:
+            evidence["best_order"] = decision.rival_name
+            message = (f"{where}: the data contradict the claimed order ({claimed}); they fit "
+                       f"{decision.rival_name} ({words} evidence)")
+            hint = ("Check the slice order on the protocol sheet or in the scanner's export; "
+                    "best_slice_times holds the times of the order that fits better.")
         return VerifyOutcome(record.path, decision,
-                             _finding(record, "contradicted", message, evidence, hint))
+                             _finding(record, "contradicted", message, evidence, hint), claimed)
     if decision.verdict == "supported":
-        message = (f"{record.path}: the data support the claimed slice order: it aligns the "
-                   f"slices better than any other order tried (p {decision.p_claimed:.3f} "
-                   "against shuffled slice orders)")
+        message = (f"{where}: the data support the claimed order ({claimed}): it fits better "
+                   f"than every other order tried ({words} evidence)")
         return VerifyOutcome(record.path, decision,
-                             _finding(record, "supported", message, evidence))
+                             _finding(record, "supported", message, evidence), claimed)
     if decision.verdict == "consistent":
-        message = (f"{record.path}: the data fit the claimed slice order but do not single "
-                   f"it out: '{decision.rival_name}' fits about as well")
+        message = (f"{where}: the data fit the claimed order ({claimed}) but do not single "
+                   f"it out: {plain_reason(decision, schedule.times, window)}")
         return VerifyOutcome(record.path, decision,
-                             _finding(record, "consistent", message, evidence))
-    message = f"{record.path}: the data neither support nor contradict the claimed slice " \
-              f"order ({decision.reason})"
+                             _finding(record, "consistent", message, evidence), claimed)
+    message = (f"{where}: the data neither support nor contradict the claimed order "
+               f"({claimed}): {plain_reason(decision, schedule.times, window)}")
     return VerifyOutcome(record.path, decision,
-                         _finding(record, "undecidable", message, evidence))
+                         _finding(record, "undecidable", message, evidence), claimed)
+
+
+def plain_reason(decision: ev.Decision, claimed: Sequence[float], window: float) -> str:
+    """Why a run is neither supported nor contradicted, in plain words: the engine's
+    reason, or that the order named is too close in time to the claim to tell apart."""
+    rival = decision.rival_name
+    close = (decision.rival_times is not None
+             and ev.schedule_distance(decision.rival_times, claimed)
+             < ev.CLOSE_FRACTION * window)
+    if rival is not None and close and decision.verdict in ("consistent", "undecidable"):
+        return (f"{rival} differs from it so little in time that the data cannot tell the "
+                "two apart")
+    return decision.reason
 
 
 def verify_run(root: Path, path: Path, *, seed: int = 0) -> tuple[RunRecord, VerifyOutcome]:
@@ -363,13 +370,18 @@ def verify_finding(record: RunRecord, *, seed: int = 0) -> Finding:
 
 
 __all__ = [
+    "NO_OFFSETS",
     "Channels",
     "Reducer",
     "VerifyOutcome",
     "array_courses",
     "candidates",
     "channel_courses",
-    "in_seconds",
+    "in_sidecar_order",
+    "order_label",
+    "outcome_of",
+    "plain_reason",
+    "seconds_schedule",
     "standard_schedules",
     "verify_array",
     "verify_finding",

@@ -1,0 +1,170 @@
+"""verify on the second, independent simulator (:mod:`validation.heldout_sim`).
+
+For each simulated run (a signal family, a true order, a TR, a number of volumes) verify
+checks the true claim and one wrong claim. Seeds split the study: thresholds were set
+on the tuning range (``--seeds 0:N``), and the reported numbers come from another range.
+
+    python validation/verify_heldout.py --seeds 1000:1040 --out bench-results/heldout.json
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+import time
+from collections.abc import Sequence
+from dataclasses import asdict, dataclass
+from pathlib import Path
+
+import numpy as np
+
+if __package__ in (None, ""):
+    sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
+
+from validation import heldout_sim as hs
+
+#: (TR seconds, slices) pairs: single-band at the longer TRs, multiband-friendly counts
+SETTINGS = ((0.8, 36), (1.5, 36), (2.0, 36), (2.5, 40))
+
+
+@dataclass(frozen=True)
+class Trial:
+    family: str
+    repetition_time: float
+    volumes: int
+    n_slices: int
+    order: str
+    multiband: int
+    mistake: str | None  # None: the true claim
+    seed: int
+    verdict: str = ""
+    named: str | None = None
+    named_is_truth: bool | None = None
+    seconds: float = 0.0
+
+
+def trials(seeds: range, families: Sequence[str], volumes: Sequence[int]) -> list[Trial]:
+    out: list[Trial] = []
+    for seed in seeds:
+        for tr, n in SETTINGS:
+            for family in families:
+                for vols in volumes:
+                    orders = hs.orders_for(n)
+                    rng = np.random.default_rng([seed, int(tr * 10), vols, len(family)])
+                    order, mb = orders[int(rng.integers(len(orders)))]
+                    mistakes = [m for m in hs.MISTAKES
+                                if hs.wrong_claim(n, tr, order, mb, m) is not None]
+                    mistake = mistakes[int(rng.integers(len(mistakes)))]
+                    for m in (None, mistake):
+                        out.append(Trial(family, tr, vols, n, order, mb, m, seed))
+    return out
+
+
+def run_trial(trial: Trial) -> Trial:
+    from slicetime.engines.verify import schedule_distance
+    from slicetime.pipelines.verify import verify_array
+
+    truth = hs.order_times(trial.n_slices, trial.repetition_time, trial.order, trial.multiband)
+    claim = truth if trial.mistake is None else hs.wrong_claim(
+        trial.n_slices, trial.repetition_time, trial.order, trial.multiband, trial.mistake)
+    assert claim is not None
+    seed = trial.seed * 7919 + int(trial.repetition_time * 100) + trial.volumes
+    run = hs.simulate(trial.family, truth, trial.repetition_time, trial.volumes,
+                      seed + hash(trial.family) % 1000)
+    start = time.perf_counter()
+    decision = verify_array(run.data, claim, trial.repetition_time, seed=trial.seed)
+    seconds = time.perf_counter() - start
+    named = decision.rival_times if decision.verdict == "contradicted" else None
+    is_truth = None
+    if named is not None:
+        is_truth = schedule_distance(named, truth) < 0.02 * trial.repetition_time
+    return Trial(**{**asdict(trial), "verdict": decision.verdict,
+                    "named": decision.rival_name if named is not None else None,
+                    "named_is_truth": is_truth, "seconds": seconds})
+
+
+def upper_95(hits: int, total: int) -> float:
+    """One-sided 95 % upper bound of a rate (Clopper-Pearson; for 0 hits 1 - 0.05^(1/n))."""
+    from scipy.stats import beta
+
+    if total == 0:
+        return 1.0
+    if hits >= total:
+        return 1.0
+    return float(beta.ppf(0.95, hits + 1, total - hits))
+
+
+def summarise(done: Sequence[Trial]) -> dict[str, object]:
+    true = [t for t in done if t.mistake is None]
+    wrong = [t for t in done if t.mistake is not None]
+    fa = sum(t.verdict == "contradicted" for t in true)
+
+    def counts(group: Sequence[Trial]) -> dict[str, int]:
+        out = {v: 0 for v in ("supported", "consistent", "contradicted", "undecidable")}
+        for t in group:
+            out[t.verdict] += 1
+        return out
+
+    def caught(key: str) -> dict[str, list[int]]:
+        table: dict[str, list[int]] = {}
+        for t in wrong:
+            k = str(getattr(t, key))
+            row = table.setdefault(k, [0, 0])
+            row[0] += t.verdict == "contradicted"
+            row[1] += 1
+        return table
+
+    realistic_true = [t for t in true if t.family in ("realistic", "block", "event")]
+    named = [t for t in wrong if t.named is not None]
+    return {
+        "runs": len(done),
+        "true_claims": counts(true),
+        "true_contradicted": [fa, len(true), round(upper_95(fa, len(true)), 4)],
+        "true_by_family": {f: counts([t for t in true if t.family == f])
+                           for f in sorted({t.family for t in true})},
+        "task_true_supported": [sum(t.verdict == "supported" for t in realistic_true),
+                                len(realistic_true)],
+        "wrong_claims": counts(wrong),
+        "wrong_by_tr": caught("repetition_time"),
+        "wrong_by_volumes": caught("volumes"),
+        "wrong_by_mistake": caught("mistake"),
+        "wrong_by_family": caught("family"),
+        "wrong_realistic_by_tr": {
+            str(tr): [sum(t.verdict == "contradicted" for t in wrong
+                          if t.family == "realistic" and t.repetition_time == tr),
+                      sum(1 for t in wrong if t.family == "realistic"
+                          and t.repetition_time == tr)]
+            for tr, _ in SETTINGS},
+        "named_is_truth": [sum(bool(t.named_is_truth) for t in named), len(named)],
+        "median_seconds": float(np.median([t.seconds for t in done])) if done else 0.0,
+    }
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    parser = argparse.ArgumentParser(description=__doc__)
+    parser.add_argument("--seeds", default="1000:1004", help="first:last (exclusive)")
+    parser.add_argument("--families", default=",".join(hs.FAMILIES))
+    parser.add_argument("--volumes", default="300")
+    parser.add_argument("--out", type=Path, default=None)
+    args = parser.parse_args(argv)
+    first, last = (int(x) for x in args.seeds.split(":"))
+    design = trials(range(first, last), args.families.split(","),
+                    [int(v) for v in args.volumes.split(",")])
+    done = []
+    for i, trial in enumerate(design):
+        done.append(run_trial(trial))
+        if (i + 1) % 20 == 0:
+            print(f"{i + 1}/{len(design)}", file=sys.stderr, flush=True)
+    summary = summarise(done)
+    text = json.dumps({"seeds": args.seeds, "summary": summary,
+                       "trials": [asdict(t) for t in done]}, indent=1)
+    if args.out:
+        args.out.parent.mkdir(parents=True, exist_ok=True)
+        args.out.write_text(text)
+    print(json.dumps(summary, indent=1))
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
