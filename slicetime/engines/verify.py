@@ -55,6 +55,9 @@ Verdict = Literal["supported", "consistent", "contradicted", "undecidable"]
 MASK_FRACTION = 0.2
 #: the share of the run tapered (half at each end) before the Fourier transform (:func:`taper`)
 TAPER_FRACTION = 1.0
+#: a transition is a step when the slices' scaled squared change there exceeds this many
+#: times its median over the run and its mean two transitions away (:func:`step_transitions`)
+STEP_RATIO = 20.0
 #: high-pass cut-off (Hz): slower components carry almost no timing evidence
 HIGHPASS_HZ = 0.01
 #: the highest true frequency (Hz) a component is assumed to have: respiration (about
@@ -177,12 +180,55 @@ class Prepared:
     slice_of: np.ndarray
 
 
+def step_transitions(courses: np.ndarray, slice_of: np.ndarray) -> list[int]:
+    """Transitions ``v`` (between volumes ``v`` and ``v + 1``) where the slices' courses
+    jump abruptly: the sum over slices of their squared change, each scaled by that
+    slice's median squared change, exceeds ``STEP_RATIO`` times its median over the run
+    and ``STEP_RATIO`` times its mean two transitions before and after (a smooth rise,
+    such as a response to a block, changes as much there; a step does not)."""
+    n = courses.shape[1]
+    if n < 8:
+        return []
+    slices = np.unique(slice_of)
+    means = np.stack([courses[slice_of == z].mean(axis=0) for z in slices])
+    d2 = np.diff(means, axis=1) ** 2
+    scale = np.median(d2, axis=1, keepdims=True)
+    ok = scale[:, 0] > 0
+    if not ok.any():
+        return []
+    jump = (d2[ok] / scale[ok]).sum(axis=0)
+    typical = float(np.median(jump))
+    padded = np.pad(jump, 2, mode="edge")
+    around = (padded[:-4] + padded[4:]) / 2.0
+    flagged = (jump > STEP_RATIO * typical) & (jump > STEP_RATIO * around)
+    return [int(v) for v in np.flatnonzero(flagged)]
+
+
+def remove_steps(courses: np.ndarray, slice_of: np.ndarray) -> np.ndarray:
+    """Each channel course without its level steps (least squares on step functions at
+    every flagged transition and its neighbours, the same for every channel).
+
+    A step is not band-limited: sampled every TR it aliases over the whole spectrum, and
+    a step that starts mid-volume reaches the slices acquired before it one volume late,
+    whole, not delayed by their acquisition times (sampling theorem). No slice schedule
+    can align it, while no offsets nearly does; so the steps are taken out for every
+    candidate alike."""
+    flagged = step_transitions(courses, slice_of)
+    if not flagged:
+        return courses
+    n = courses.shape[1]
+    at = sorted({v + k for v in flagged for k in (-1, 0, 1) if 0 <= v + k < n - 1})
+    design = np.stack([np.ones(n)] + [(np.arange(n) > v).astype(float) for v in at], axis=1)
+    beta, *_ = np.linalg.lstsq(design, courses.T, rcond=None)
+    return courses - (design[:, 1:] @ beta[1:]).T
+
+
 def prepare(courses: np.ndarray, repetition_time: float, slice_of: np.ndarray, *,
             highpass: float = HIGHPASS_HZ) -> Prepared:
     """High-pass (drop cosine terms below ``highpass`` Hz, which removes the mean and
     slow drifts) and standardise each channel course. Rows that are constant after
     the high-pass keep zero coefficients (they add nothing to any score)."""
-    x = np.asarray(courses, dtype=np.float64)
+    x = remove_steps(np.asarray(courses, dtype=np.float64), np.asarray(slice_of))
     n = x.shape[1]
     coeffs = _fft().dct(x, type=2, axis=1)
     cut = max(1, math.ceil(highpass * 2.0 * n * repetition_time))
@@ -829,10 +875,12 @@ __all__ = [
     "normalise",
     "prepare",
     "region_spectra",
+    "remove_steps",
     "schedule_distance",
     "shuffle_maxima",
     "shuffled_totals",
     "sign_scores",
+    "step_transitions",
     "strength",
     "taper",
     "weigh",
