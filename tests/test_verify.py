@@ -17,7 +17,8 @@ from helpers_bids import write_description, write_run
 from slicetime.engines import verify as ev
 from slicetime.interfaces.cli import cli
 from slicetime.pipelines.simulate import BrainRun, RunSimulation, simulate_brain, simulate_run
-from slicetime.pipelines.verify import BATCH_VOLUMES, candidates, verify_array
+from slicetime.pipelines.verify import BATCH_VOLUMES, NO_OFFSETS, candidates, verify_array
+from slicetime.schemes.infer import infer_scheme
 from slicetime.schemes.generate import Protocol, array_times
 
 TR = 2.0
@@ -187,7 +188,7 @@ def test_candidates_cover_orders_and_multiband_without_duplicates() -> None:
     listed = candidates(claim, TR)
     names = [c.name for c in listed]
     assert listed[0].kind == "claimed" and listed[0].times == claim
-    assert "no offsets (all slices at once)" in names
+    assert NO_OFFSETS in names
     assert "descending" in names and "interleaved ascending from 1" in names
     assert "multiband ×3, interleaved ascending from 0" in names
     assert not any("×5" in n for n in names)  # 5 does not divide 36
@@ -195,6 +196,21 @@ def test_candidates_cover_orders_and_multiband_without_duplicates() -> None:
     assert len(keys) == len(names)
     # the claim itself is not listed again under its scheme name
     assert "interleaved ascending from 0" not in names
+
+
+@pytest.mark.parametrize("claim", [_interleaved(24), _sequential(24, False),
+                                   _interleaved(24, 1, 3), (0.0, 1.2, 0.4, 1.6, 0.8, 0.2,
+                                                            1.4, 0.6, 1.8, 1.0)])
+def test_every_alternative_is_named_by_the_label_show_gives_its_times(
+        claim: tuple[float, ...]) -> None:
+    # the order to adopt is named in the words of `show` (the scheme inferred from the
+    # times, schemes.infer); never an operation on the claim ("flipped", "reversed")
+    for candidate in candidates(claim, TR)[1:]:
+        if candidate.name == NO_OFFSETS:
+            assert set(candidate.times) == {0.0}
+            continue
+        assert candidate.name == infer_scheme(candidate.times).label, candidate
+        assert "flipped" not in candidate.name and "reversed" not in candidate.name
 
 
 # --------------------------------------------------------------------------- verdicts
@@ -450,33 +466,28 @@ def test_reading_is_streamed_in_batches_without_loading_the_image(dataset: Path,
     assert max(sizes) <= BATCH_VOLUMES and sum(sizes) == 300
 
 
-@pytest.mark.parametrize("tr_in_ms", [False, True])
-def test_milliseconds_are_reported_as_such_and_the_order_verified_in_seconds(
-        tmp_path: Path, tr_in_ms: bool) -> None:
+def test_milliseconds_are_read_by_the_projects_one_owner_of_units(tmp_path: Path) -> None:
     # BIDS: RepetitionTime and SliceTiming are in seconds (BIDS specification, "Units");
-    # the claim is the true order, written in milliseconds
+    # the claim is the true order, SliceTiming written in milliseconds: verify reads it as
+    # schemes.resolve.seconds_factor says (no unit findings of its own: the audit's)
     root = tmp_path / "ds"
     write_description(root)
     truth = _interleaved(24)
     data = _brain(truth, TR, seed=71)
-    sidecar = {"RepetitionTime": TR * 1000 if tr_in_ms else TR,
-               "SliceTiming": [round(t * 1000, 3) for t in truth], "TaskName": "x"}
-    path = write_run(root, "sub-01/func/sub-01_task-x_bold.nii.gz",
-                     data=np.round(data).astype(np.int16), dtype=np.int16, tr=TR,
-                     sidecar=sidecar)
-    code, out, _ = _cli("verify", str(path), "--format", "json")
-    run = json.loads(out)["runs"][0]
-    assert code == 1  # the units are an error in the sidecar
-    assert run["verdict"] == "supported", run
-    codes = [f["code"] for f in run["units"]]
-    assert "timing/units-ms" in codes
-    assert ("tr/units-ms" in codes) is tr_in_ms
-    assert run["finding"]["evidence"]["units"]["SliceTiming"] == "milliseconds"
-    assert "milliseconds" in run["finding"]["message"]
-    code, out, _ = _cli("verify", str(path))
-    lines = out.splitlines()
-    assert lines[0].startswith("units") and "SliceTiming" in out
-    assert any(line.startswith("supported") for line in lines)
+    for name, tr in (("a", TR), ("b", TR * 1000)):
+        write_run(root, f"sub-{name}/func/sub-{name}_task-x_bold.nii.gz",
+                  data=np.round(data).astype(np.int16), dtype=np.int16, tr=TR,
+                  sidecar={"RepetitionTime": tr, "TaskName": "x",
+                           "SliceTiming": [round(t * 1000, 3) for t in truth]})
+    code, out, _ = _cli("verify", str(root / "sub-a/func/sub-a_task-x_bold.nii.gz"),
+                        str(root / "sub-b/func/sub-b_task-x_bold.nii.gz"), "--format", "json")
+    runs = json.loads(out)["runs"]
+    assert runs[0]["verdict"] == "supported", runs[0]
+    assert set(runs[0]) == {"path", "verdict", "finding"}
+    # a RepetitionTime in milliseconds: no frequency can be trusted; the audit says why
+    assert runs[1]["verdict"] == "undecidable"
+    assert "RepetitionTime" in runs[1]["finding"]["message"]
+    assert code == 0
 
 
 def test_the_consistent_verdict_is_a_documented_code() -> None:

@@ -33,7 +33,7 @@ import numpy as np
 
 from slicetime.engines import verify as ev
 from slicetime.pipelines.simulate import BrainRun, simulate_brain
-from slicetime.pipelines.verify import candidates, verify_array
+from slicetime.pipelines.verify import verify_array
 from slicetime.schemes.generate import Protocol, array_times
 
 INPLANE = 24  # 24 x 24 voxels per slice, an elliptical brain of about 340 voxels
@@ -186,9 +186,8 @@ def run_case(case: Case) -> list[Outcome]:
         start = time.perf_counter()
         decision = verify_array(data, claim, case.tr, seed=case.seed)
         seconds = time.perf_counter() - start
-        rival = next((c for c in candidates(claim, case.tr)
-                      if c.name == decision.rival_name), None)
-        is_truth = rival is not None and ev.schedule_distance(rival.times, truth) < 1e-6
+        rival = decision.rival_times
+        is_truth = rival is not None and ev.schedule_distance(rival, truth) < 1e-6
         out.append(Outcome(case, name, decision.verdict, decision.rival_name, is_truth,
                            decision.effect, decision.z_rival, decision.p_evidence, seconds,
                            decision.z_signs))

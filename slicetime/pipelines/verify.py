@@ -25,6 +25,7 @@ import math
 from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import numpy as np
 
@@ -38,6 +39,9 @@ from slicetime.schemes.generate import Protocol, array_times
 from slicetime.schemes.infer import infer_scheme
 from slicetime.schemes.labels import IRREGULAR, LabelParts, format_label
 from slicetime.schemes.resolve import seconds_factor
+
+if TYPE_CHECKING:
+    from slicetime.pipelines.executor import Executor
 
 #: volumes per read; the mask comes from the first batch
 BATCH_VOLUMES = 16
@@ -360,6 +364,48 @@ def verify_run(root: Path, path: Path, *, seed: int = 0) -> tuple[RunRecord, Ver
     return record, verify_record(record, seed=seed)
 
 
+@dataclass(frozen=True)
+class FileResult:
+    """One file given to ``verify``: its outcome, or why it could not be read."""
+
+    file: str
+    outcome: VerifyOutcome | None = None
+    code: str | None = None
+    message: str | None = None
+
+
+def verify_file(file: str) -> FileResult:
+    """Verify one run file (as given on the command line); never raises ReadError."""
+    from slicetime.readers.dataset import find_root
+    from slicetime.readers.errors import check_regular_file
+
+    try:
+        check_regular_file(file, file, what="image")
+        path = Path(file)
+        path = path if path.is_absolute() else path.absolute()
+        _, outcome = verify_run(find_root(path.parent), path)
+    except ReadError as exc:
+        return FileResult(file, code=exc.code, message=exc.message)
+    return FileResult(file, outcome)
+
+
+def _verify_chunk(files: Sequence[str]) -> list[FileResult]:
+    return [verify_file(f) for f in files]
+
+
+def _lost_file(file: str, why: str) -> FileResult:
+    return FileResult(file, code="file/unreadable", message=f"{file}: {why}")
+
+
+def verify_files(files: Sequence[str], executor: Executor | None = None) -> list[FileResult]:
+    """Verify run files, one per task, on ``executor`` (default: in this process);
+    results in input order."""
+    from slicetime.pipelines.executor import map_chunks
+
+    return map_chunks(_verify_chunk, list(files), lost=_lost_file, executor=executor,
+                      chunk_size=1)
+
+
 def verify_finding(record: RunRecord, *, seed: int = 0) -> Finding:
     """The verify finding of a run for the audit; a run whose data cannot be read
     gets an undecidable note (its reading problem is reported by the audit itself)."""
@@ -372,6 +418,7 @@ def verify_finding(record: RunRecord, *, seed: int = 0) -> Finding:
 __all__ = [
     "NO_OFFSETS",
     "Channels",
+    "FileResult",
     "Reducer",
     "VerifyOutcome",
     "array_courses",
@@ -384,6 +431,8 @@ __all__ = [
     "seconds_schedule",
     "standard_schedules",
     "verify_array",
+    "verify_file",
+    "verify_files",
     "verify_finding",
     "verify_record",
     "verify_run",
