@@ -388,7 +388,33 @@ def test_cli_verdicts_exit_codes_and_json(dataset: Path) -> None:
     assert finding["evidence"]["rival"] == "interleaved ascending from 0"
     assert report["summary"] == {"supported": 1, "consistent": 0, "contradicted": 1,
                                  "undecidable": 0}
-    assert report["runs"][0]["units"] == []
+    # the order to adopt: its scheme label and its slice times (sidecar order, seconds)
+    # so that fix could write them; the truth here is interleaved from 0 (Protocol)
+    assert finding["evidence"]["best_order"] == "interleaved ascending from 0"
+    assert finding["evidence"]["best_slice_times"] == pytest.approx(list(_interleaved(24)), abs=1e-6)
+    assert finding["evidence"]["claimed_order"] == "ascending"
+    assert "interleaved ascending from 0" in finding["message"]
+
+
+@pytest.mark.parametrize("width", [80, 120])
+def test_cli_screen_fits_the_width_one_line_per_run_and_one_reason_line(
+        dataset: Path, width: int, monkeypatch: pytest.MonkeyPatch) -> None:
+    # COLUMNS sets the width (README, "Screens"; the POSIX shell variable)
+    monkeypatch.setenv("COLUMNS", str(width))
+    good = dataset / "sub-01/func/sub-01_task-x_bold.nii.gz"
+    bad = dataset / "sub-02/func/sub-02_task-x_bold.nii.gz"
+    code, out, _ = _cli("verify", str(good), str(bad), "--jobs", "1")
+    lines = out.splitlines()
+    assert code == 1
+    assert all(len(line) <= width for line in lines), lines
+    assert lines[0].startswith("supported") and lines[2].startswith("contradicted")
+    assert lines[1].startswith("    ") and lines[3].startswith("    ")
+    assert "interleaved ascending from 0" in lines[3] and "evidence" in lines[3]
+    assert lines[4] == "2 runs: 1 supported, 1 contradicted"
+    # no internal numbers on the screen
+    assert not any(word in out for word in ("score", " p ", " z ", "effect"))
+    code, _, _ = _cli("verify", str(good), str(bad), "--fail-on", "never")
+    assert code == 0
 
 
 def test_cli_truncated_and_missing_files_are_one_line_errors(dataset: Path) -> None:

@@ -22,26 +22,39 @@ if TYPE_CHECKING:
 VERDICT_PAD = len("contradicted") + 2
 
 
-def reason_line(outcome: VerifyOutcome) -> str:
-    """The reason of one run's verdict, in plain words (no scores)."""
+def reason_parts(outcome: VerifyOutcome) -> list[str]:
+    """The reason of one run's verdict in plain words (no scores), most important part
+    first: a narrow screen drops the later parts rather than cut a word."""
     finding = outcome.finding
     evidence = dict(finding.evidence or {})
     verdict = finding.code.split("/")[1]
     strength = evidence.get("strength")
     claimed = evidence.get("claimed_order") or outcome.claimed_label
-    how = f"; {strength} evidence" if strength else ""
+    how = f" ({strength} evidence)" if strength else ""
     if verdict == "contradicted":
         if evidence.get("already_corrected"):
-            return f"the data look already slice-time corrected (claimed: {claimed}){how}"
-        return f"fits {evidence.get('best_order')} better than the claimed {claimed}{how}"
+            return [f"looks already slice-time corrected{how}", f"; claimed: {claimed}"]
+        return [f"fits {evidence.get('best_order')}{how}", f"; claimed: {claimed}"]
     if verdict == "supported":
-        return f"the claimed order fits best: {claimed}{how}"
-    reason = str(evidence.get("reason") or "")
-    decision = outcome.decision
-    if decision is not None:
-        # the plain reason is the message's tail after the claimed order
-        reason = finding.message.rsplit("): ", 1)[-1]
-    return reason
+        return [f"fits the claimed order{how}", f": {claimed}"]
+    if outcome.decision is None:
+        return [str(evidence.get("reason") or "")]
+    # the plain reason is the message's tail after the claimed order
+    return [finding.message.rsplit("): ", 1)[-1]]
+
+
+def reason_line(outcome: VerifyOutcome, room: int | None = None, *, unicode: bool = True
+                ) -> str:
+    """The reason parts that fit ``room`` columns (the first always, shortened if need be)."""
+    parts = [p for p in reason_parts(outcome) if p]
+    if not parts:
+        return ""
+    text = parts[0]
+    for part in parts[1:]:
+        if room is not None and len(text) + len(part) > room:
+            break
+        text += part
+    return _fit(text, room, unicode)
 
 
 def _fit(text: str, room: int | None, unicode: bool) -> str:
@@ -57,11 +70,11 @@ def run_lines(outcome: VerifyOutcome, width: int | None, *, unicode: bool = True
     verdict = outcome.finding.code.split("/")[1]
     room = None if width is None else width - VERDICT_PAD
     head = f"{verdict:<{VERDICT_PAD}}{shorten_path(outcome.path, room, unicode=unicode)}"
-    reason = reason_line(outcome)
+    inner = None if width is None else width - FINDING_INDENT
+    reason = reason_line(outcome, inner, unicode=unicode)
     lines = [head]
     if reason:
-        inner = None if width is None else width - FINDING_INDENT
-        lines.append(" " * FINDING_INDENT + _fit(reason, inner, unicode))
+        lines.append(" " * FINDING_INDENT + reason)
     return lines
 
 
@@ -85,4 +98,4 @@ def summary_line(verdicts: Sequence[str], unreadable: int) -> str:
     return f"{count(len(verdicts) + unreadable, 'run')}: {', '.join(parts) or 'none'}"
 
 
-__all__ = ["reason_line", "run_lines", "summary_line", "unreadable_lines"]
+__all__ = ["reason_line", "reason_parts", "run_lines", "summary_line", "unreadable_lines"]

@@ -7,55 +7,71 @@ from pathlib import Path
 
 import click
 
-from slicetime.interfaces.commands.shared import EXIT_FINDINGS, EXIT_USAGE, UserError, friendly
+from slicetime.interfaces.commands.shared import (
+    EXIT_FINDINGS,
+    EXIT_USAGE,
+    JOBS_HEAVY,
+    UserError,
+    executor_options,
+    friendly,
+    run_executor,
+)
 
 
 @click.command()
 @click.argument("files", nargs=-1, required=True, type=click.Path(path_type=Path))
 @click.option("--format", "fmt", type=click.Choice(["text", "json"]), default="text",
-              show_default=True, help="Report format on stdout.")
+              show_default=True, help="Report format on stdout (json holds the numbers).")
+@click.option("--fail-on", type=click.Choice(["error", "warning", "never"]), default="warning",
+              show_default=True, help="Exit 1 when a run's verdict reaches this severity "
+              "(contradicted is a warning; the other verdicts are notes).")
+@executor_options(default=JOBS_HEAVY + "; one for a single file")
 @friendly
-def verify(files: tuple[Path, ...], fmt: str) -> None:
+def verify(files: tuple[Path, ...], fmt: str, fail_on: str, jobs: int | None,
+           scheduler: str | None) -> None:
     """Check each run's claimed slice order against its own image data.
 
     Verdicts: supported, consistent (fits, but another order fits about as
-    well), contradicted (naming the order that fits better) or undecidable. Timing
-    in milliseconds is reported and the order verified in seconds. Exit 1 when any
-    run is contradicted or has timing in milliseconds, 2 when a file cannot be read.
+    well), contradicted (naming the order that fits better, by its scheme
+    label; its slice times are in the JSON report) or undecidable (saying why).
+    Exit 1 when a verdict reaches --fail-on, 2 when a file cannot be read.
     """
     from slicetime.interfaces.report_json import dumps, verdict_of, verify_object
-    from slicetime.pipelines.verify import verify_run
-    from slicetime.readers.dataset import find_root
-    from slicetime.readers.errors import ReadError, check_regular_file
+    from slicetime.interfaces.screen import width_for
+    from slicetime.interfaces.verify_screen import run_lines, summary_line, unreadable_lines
+    from slicetime.model import Severity
+    from slicetime.pipelines.verify import verify_files
 
-    outcomes = []
-    unreadable: list[dict[str, str]] = []
     for file in files:
         if file.is_dir():
             raise UserError(f"{file}: a folder; verify takes run files (to check every run "
                             f"under a folder: slicetime audit {file} --verify)")
-        try:
-            check_regular_file(file, str(file), what="image")
-            path = file if file.is_absolute() else file.absolute()
-            _, outcome = verify_run(find_root(path.parent), path)
-        except ReadError as exc:
-            click.echo(f"slicetime: {exc.message}", err=True)
-            unreadable.append({"file": str(file), "code": exc.code, "message": exc.message})
-            continue
-        outcomes.append(outcome)
-        if fmt == "text":
-            finding = outcome.finding
-            for note in outcome.units:
-                click.echo(f"{'units':<12} {note.message}")
-            click.echo(f"{finding.code.split('/')[1]:<12} {finding.message}")
-            if outcome.decision is not None and outcome.decision.verdict != "supported":
-                d = outcome.decision
-                click.echo(f"{'':<12} best: {d.best_name} (score {d.best_score:.3f}; claimed "
-                           f"{d.claimed_score:.3f}; shuffled orders {d.null_score:.3f})")
-    verdicts = [verdict_of(o) for o in outcomes]
+    if jobs is None and scheduler is None and len(files) == 1:
+        jobs = 1
+    with run_executor(jobs, scheduler, light=False, small_results=True) as executor:
+        results = verify_files([str(f) for f in files], executor)
+    outcomes = [r.outcome for r in results if r.outcome is not None]
+    unreadable = [{"file": r.file, "code": r.code or "file/unreadable",
+                   "message": r.message or r.file} for r in results if r.outcome is None]
+    for item in unreadable:
+        click.echo(f"slicetime: {item['message']}", err=True)
     if fmt == "json":
         click.echo(dumps(verify_object(outcomes, unreadable)))
+    else:
+        width = width_for(sys.stdout)
+        unicode = (sys.stdout.encoding or "").lower().replace("-", "") == "utf8"
+        for result in results:
+            if result.outcome is not None:
+                lines = run_lines(result.outcome, width, unicode=unicode)
+            else:
+                lines = unreadable_lines(result.file, result.message or "", width,
+                                         unicode=unicode)
+            click.echo("\n".join(lines))
+        click.echo(summary_line([verdict_of(o) for o in outcomes], len(unreadable)))
     if unreadable:
         sys.exit(EXIT_USAGE)
-    units = any(o.units for o in outcomes)
-    sys.exit(EXIT_FINDINGS if "contradicted" in verdicts or units else 0)
+    if fail_on != "never":
+        level = Severity.parse(fail_on).rank
+        if any(o.finding.severity.rank >= level for o in outcomes):
+            sys.exit(EXIT_FINDINGS)
+    sys.exit(0)
