@@ -13,6 +13,7 @@ import argparse
 import json
 import sys
 import time
+import zlib
 from collections.abc import Sequence
 from dataclasses import asdict, dataclass
 from pathlib import Path
@@ -42,6 +43,10 @@ class Trial:
     named: str | None = None
     named_is_truth: bool | None = None
     seconds: float = 0.0
+    z: float | None = None
+    z_regions: tuple[float, float] | None = None
+    effect: float | None = None
+    p_evidence: float | None = None
 
 
 def trials(seeds: range, families: Sequence[str], volumes: Sequence[int]) -> list[Trial]:
@@ -71,7 +76,7 @@ def run_trial(trial: Trial) -> Trial:
     assert claim is not None
     seed = trial.seed * 7919 + int(trial.repetition_time * 100) + trial.volumes
     run = hs.simulate(trial.family, truth, trial.repetition_time, trial.volumes,
-                      seed + hash(trial.family) % 1000)
+                      seed + zlib.crc32(trial.family.encode()) % 1000)
     start = time.perf_counter()
     decision = verify_array(run.data, claim, trial.repetition_time, seed=trial.seed)
     seconds = time.perf_counter() - start
@@ -81,7 +86,9 @@ def run_trial(trial: Trial) -> Trial:
         is_truth = schedule_distance(named, truth) < 0.02 * trial.repetition_time
     return Trial(**{**asdict(trial), "verdict": decision.verdict,
                     "named": decision.rival_name if named is not None else None,
-                    "named_is_truth": is_truth, "seconds": seconds})
+                    "named_is_truth": is_truth, "seconds": seconds,
+                    "z": decision.z_rival, "z_regions": decision.z_regions,
+                    "effect": decision.effect, "p_evidence": decision.p_evidence})
 
 
 def upper_95(hits: int, total: int) -> float:

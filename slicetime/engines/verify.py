@@ -58,6 +58,11 @@ TAPER_FRACTION = 1.0
 #: a transition is a step when the slices' scaled squared change there exceeds this many
 #: times its median over the run and its mean two transitions away (:func:`step_transitions`)
 STEP_RATIO = 20.0
+#: score with the sign-invariant statistic first (see :func:`gather`)
+SIGNS_FIRST = True
+COMBINE = True
+#: with SIGNS_FIRST, the ordinary score's z a contradiction needs too (None: not needed)
+Z_SECOND: float | None = None
 #: high-pass cut-off (Hz): slower components carry almost no timing evidence
 HIGHPASS_HZ = 0.01
 #: the highest true frequency (Hz) a component is assumed to have: respiration (about
@@ -515,12 +520,14 @@ def weigh(per_bin: np.ndarray, spectra: Spectra) -> np.ndarray:
 
 
 def shuffle_maxima(spectra: Spectra, claimed: Sequence[float], per_set: int,
-                   sets: int = N_SETS, seed: int = 0) -> tuple[np.ndarray, float, float]:
+                   sets: int = N_SETS, seed: int = 0, max_hz: float = MAX_TRUE_HZ
+                   ) -> tuple[np.ndarray, float, float]:
     """The null of "the best of ``per_set`` schedules when timing does not matter":
     ``sets`` sets of ``per_set`` orders made by shuffling the claimed times across
     slices, scored as the candidates are; returns each set's best score, and the mean and
     sd of all shuffled scores (normalised as :func:`normalise`)."""
-    scores = normalise(shuffled_totals(spectra, claimed, sets * per_set, seed), spectra)
+    scores = normalise(shuffled_totals(spectra, claimed, sets * per_set, seed, max_hz),
+                       spectra)
     return (scores.reshape(sets, per_set).max(axis=1), float(scores.mean()),
             float(scores.std(ddof=1)))
 
@@ -649,8 +656,13 @@ class Evidence:
     scores: np.ndarray  # (candidates,) normalised
     null_maxima: np.ndarray
     null_mean: float
-    #: the sign-invariant scores (:func:`doubled` spectra) of every candidate, per bin
+    #: the second score of every candidate, per bin (the ordinary one when the primary
+    #: is sign-invariant, and the other way round)
     signs: BinScores | None = None
+    #: bootstrap block length (bins)
+    block: int = MIN_BLOCK
+    #: ``bins`` and ``scores`` are the sign-invariant score's (``signs`` the ordinary's)
+    signs_first: bool = False
 
 
 def _paired_z(diff_bins: np.ndarray, block: int, seed: int
@@ -675,6 +687,8 @@ class Challenge:
     wins: float
     z_regions: tuple[float, float]
     z_signs: float | None
+    #: the primary score is the sign-invariant one (``z_signs`` is then the ordinary one's)
+    signs_first: bool = False
 
     def leads(self) -> bool:
         """The rival beats the claim under the ordinary score, overall and in both halves."""
@@ -682,6 +696,8 @@ class Challenge:
                 and self.effect >= MIN_EFFECT and min(self.z_regions) >= Z_REGION)
 
     def signs_agree(self) -> bool:
+        if self.signs_first:
+            return self.z_signs is None or Z_SECOND is None or self.z_signs >= Z_SECOND
         return self.z_signs is None or self.z_signs >= Z_SIGN
 
     def beats(self) -> bool:
@@ -750,7 +766,7 @@ def decide(candidates: Sequence[Candidate], evidence: Evidence, window: float, *
     )
     rival: Challenge | None = None
     signs_against: list[Challenge] = []
-    block = bin_block(evidence.spectra.freqs)
+    block = evidence.block
     bins = evidence.bins
     if others:
         spread = float(scores[best]) - evidence.null_mean
@@ -766,7 +782,7 @@ def decide(candidates: Sequence[Candidate], evidence: Evidence, window: float, *
                                 block, seed + 3)[0]
             return Challenge(candidates[i].name, float(scores[i]), candidates[i].times,
                              diff / spread if spread > 0 else None, z, interval, wins,
-                             (z_a, z_b), z_s)
+                             (z_a, z_b), z_s, evidence.signs_first)
 
         # the claim is tested against the best few alternatives, so that near-ties in
         # score cannot swap the alternative it is judged against: a contradiction names
@@ -776,7 +792,8 @@ def decide(candidates: Sequence[Candidate], evidence: Evidence, window: float, *
         beating = [t for t in tested if t.beats()]
         leading = [t for t in tested if t.leads()]
         rival = (beating or leading or [max(tested, key=lambda t: t.z)])[0]
-        signs_against = [t for t in tested if t.z_signs is not None and t.z_signs >= Z_SIGN]
+        signs_against = [] if evidence.signs_first else [
+            t for t in tested if t.z_signs is not None and t.z_signs >= Z_SIGN]
     threshold = 1.0 / (sets + 1) + 1e-12
     if base.p_evidence > threshold:
         return _decision("undecidable", "the data hold too little shared signal that "
@@ -811,21 +828,63 @@ def decide(candidates: Sequence[Candidate], evidence: Evidence, window: float, *
     return _decision("undecidable", "the evidence is too weak either way", base, rival)
 
 
-def gather(courses: np.ndarray, slice_of: np.ndarray, region_of: np.ndarray,
-           repetition_time: float, candidates: Sequence[Candidate], *, seed: int = 0,
-           sets: int = N_SETS) -> Evidence:
-    """Score every candidate on channel courses ``(channels, volumes)`` and build the null."""
+def gather_both(courses: np.ndarray, slice_of: np.ndarray, region_of: np.ndarray,
+                repetition_time: float, candidates: Sequence[Candidate], *, seed: int = 0,
+                sets: int = N_SETS) -> tuple[Evidence, Evidence]:
+    """Score every candidate on channel courses ``(channels, volumes)`` under both scores
+    and build each one's null: ``(ordinary first, sign-invariant first)``.
+
+    Shared signals in real runs can reach different slices and halves of the image with
+    different signs (networks with maps of both signs, breathing and pulse); the
+    delay-and-sum of the ordinary score then favours wrong schedules, while the
+    sign-invariant score (:func:`doubled`) ranks the true one first. With one sign
+    everywhere the ordinary score has more power. Each is the primary score of one
+    evidence and the second opinion of the other."""
     prepared = prepare(courses, repetition_time, slice_of)
     n_slices = len(candidates[0].times)
     spectra = region_spectra(prepared, n_slices, region_of)
     times = np.asarray([c.times for c in candidates], dtype=np.float64)
     raw = bin_scores(spectra, times)
-    bins = BinScores(weigh(raw.total, spectra), weigh(raw.region_a, spectra),
-                     weigh(raw.region_b, spectra))
-    scores = normalise(bins.total.sum(axis=1), spectra)
+    ordinary = BinScores(weigh(raw.total, spectra), weigh(raw.region_a, spectra),
+                         weigh(raw.region_b, spectra))
+    signs = sign_scores(spectra, times)
     claimed = next(c for c in candidates if c.kind == "claimed")
+    block = bin_block(spectra.freqs)
+    scores = normalise(ordinary.total.sum(axis=1), spectra)
     maxima, mean, _ = shuffle_maxima(spectra, claimed.times, len(candidates), sets, seed)
-    return Evidence(spectra, bins, scores, maxima, mean, sign_scores(spectra, times))
+    first = Evidence(spectra, ordinary, scores, maxima, mean, signs, block)
+    twice = doubled(spectra)
+    scores = normalise(signs.total.sum(axis=1), twice)
+    maxima, mean, _ = shuffle_maxima(twice, claimed.times, len(candidates), sets, seed,
+                                     2.0 * MAX_TRUE_HZ)
+    return first, Evidence(twice, signs, scores, maxima, mean, ordinary, block, True)
+
+
+def gather(courses: np.ndarray, slice_of: np.ndarray, region_of: np.ndarray,
+           repetition_time: float, candidates: Sequence[Candidate], *, seed: int = 0,
+           sets: int = N_SETS) -> Evidence:
+    """The ordinary-score evidence of :func:`gather_both`."""
+    return gather_both(courses, slice_of, region_of, repetition_time, candidates, seed=seed,
+                       sets=sets)[0]
+
+
+def combine(ordinary: Decision, signs: Decision) -> Decision:
+    """One verdict from the two scores' decisions: a contradiction by either (each with
+    its own safeguards), the sign-invariant one's first; else support by either, unless
+    the other names a lead; else the closer of "consistent"; else undecidable."""
+    for d in (signs, ordinary):
+        if d.verdict == "contradicted":
+            return d
+    leads = [d for d in (signs, ordinary) if d.z_rival is not None and d.z_rival >= Z_SIGN]
+    for d in (signs, ordinary):
+        if d.verdict == "supported" and not leads:
+            return d
+    for d in (signs, ordinary):
+        if d.verdict == "consistent" and not leads:
+            return d
+    if signs.verdict == "undecidable":
+        return signs
+    return ordinary if ordinary.verdict == "undecidable" else signs
 
 
 def sign_scores(spectra: Spectra, schedules: np.ndarray, max_hz: float = MAX_TRUE_HZ
@@ -846,9 +905,12 @@ def evaluate(courses: np.ndarray, slice_of: np.ndarray, repetition_time: float,
     channels of each slice)."""
     if region_of is None:
         region_of = np.arange(len(slice_of)) % 2
-    evidence = gather(courses, slice_of, region_of, repetition_time, candidates, seed=seed,
-                      sets=sets)
-    return decide(candidates, evidence, window, seed=seed)
+    first, second = gather_both(courses, slice_of, region_of, repetition_time, candidates,
+                                seed=seed, sets=sets)
+    if not COMBINE:
+        return decide(candidates, second if SIGNS_FIRST else first, window, seed=seed)
+    return combine(decide(candidates, first, window, seed=seed),
+                   decide(candidates, second, window, seed=seed))
 
 
 __all__ = [
@@ -867,10 +929,12 @@ __all__ = [
     "bin_weights",
     "block_bootstrap",
     "channel_sums",
+    "combine",
     "decide",
     "doubled",
     "evaluate",
     "gather",
+    "gather_both",
     "make_layout",
     "normalise",
     "prepare",
