@@ -48,3 +48,4 @@ validate: $(STAMP)
 .PHONY: verify-study
 verify-study: $(STAMP)
 	$(PY) validation/verify_study.py --out docs
+	$(PY) validation/verify_heldout.py --seeds 1000:1004 --out docs/verify-heldout.json --doc docs/verify.md

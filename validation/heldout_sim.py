@@ -36,7 +36,7 @@ import numpy as np
 FAMILIES = ("wander", "linear", "quadratic", "exponential", "sinusoid", "block", "event",
             "physio", "step", "network", "realistic")
 
-Course = Callable[[np.ndarray], np.ndarray]
+Course = Callable[..., np.ndarray]
 
 
 # --------------------------------------------------------------------------- slice orders

@@ -443,13 +443,19 @@ METHOD = """\
    the first batch's mean (voxels above 0.2 × the 98th percentile), then, per volume, the
    mean of each quarter of each slice (4 channels per slice; two quarters on each side of
    the image make its two *halves*).
-2. **Prepare** each channel course: drop cosine terms below 0.01 Hz (mean, drifts), scale
-   to unit variance, and take its discrete Fourier transform; per slice and half, sum the
-   channels' spectra.
-3. **Candidates**: the claim; the claim flipped along the slice axis and reversed in
-   time; no offsets; sequential and interleaved (steps 2 and 3, every start, both
-   directions) orders for every multiband factor ≤ 6 that divides the slice count, over
-   the claim's acquisition window; identical time lists scored once (about 40-90).
+2. **Prepare** each channel course: take out abrupt level steps (least squares on step
+   functions at every transition where the slices jump together far more than usual and
+   than two volumes before and after, and at its neighbours), drop cosine terms below
+   0.01 Hz (mean, drifts), scale to unit variance, **taper both ends** (a Hann window)
+   and take its discrete Fourier transform; per slice and half, sum the channels' spectra.
+   See "The ends of the run" below.
+3. **Candidates**: the claim; sequential and interleaved (steps 2 and 3, every start,
+   both directions) orders for every multiband factor ≤ 6 that divides the slice count,
+   over the claim's acquisition window; the claim flipped along the slice axis and
+   reversed in time when these are not among them; no offsets; identical time lists
+   scored once (about 40-90). Every candidate is named by its scheme label, the words
+   `slicetime show` prints (`schemes.infer`): an order to adopt, never an operation on
+   the claim.
 4. **Align, allowing for aliasing.** A component whose true frequency is *g* reaches
    slice *z* with phase 2π *g* *t*<sub>z</sub>. Sampled every TR it appears at the bin
    *f* = |*g* − *k*/TR| (sampling theorem), but its slice-to-slice phases keep the true
@@ -481,8 +487,12 @@ METHOD = """\
    but not a delay. Σ *y*<sub>c</sub>² is the same delay-and-sum applied to the squared spectra
    at twice the true frequency, so it is scored by the same code (alias orders, the
    choice on one half and the count on the other, coherence weights, bootstrap).
-8. **Verdict.** *undecidable* without timing evidence. *contradicted* when one of the
-   three best-scoring materially different alternatives beats the claim with z ≥
+8. **Verdict** (computed twice, once with each score as the primary one and the other as
+   the second opinion, then combined: a contradiction by either — the sign-invariant
+   one first, which needs no agreement from the ordinary score — else support or
+   "consistent" by either unless the other has an alternative leading with z ≥
+   {z_sign:g}). Under the ordinary score: *undecidable* without timing evidence.
+   *contradicted* when one of the three best-scoring materially different alternatives beats the claim with z ≥
    {z_contradict:g} over the bins, an effect ≥ {min_effect:g} (its lead over the claim as a share
    of the best candidate's lead over shuffled orders), z ≥ {z_region:g} in each half of
    the image on its own, **and** z ≥ {z_sign:g} under the sign-invariant score; when the
@@ -494,10 +504,41 @@ METHOD = """\
    shuffled orders and no alternative beats it, but one fits about as well (z below
    {z_tie:g} or an effect below {tie_effect:g}): the data fit the claim without singling it out.
    Neither *supported* nor *consistent* when an alternative beats the claim with z ≥
-   {z_sign:g} under the sign-invariant score. *undecidable* otherwise. Milliseconds:
-   RepetitionTime above 100 or SliceTiming that fits the window once divided by 1000
-   are converted to seconds first, reported with the audit's codes (`tr/units-ms`,
-   `timing/units-ms`), and the order is verified in seconds.
+   {z_sign:g} under the sign-invariant score. *undecidable* otherwise. Units are not
+   decided by verify: SliceTiming is read in seconds as the project's one owner
+   (`schemes.resolve.seconds_factor`) says, and a RepetitionTime above 100 leaves the run
+   *undecidable* (the audit reports the unit).
+9. **Name the order.** A contradiction names the better order by its scheme label and
+   puts its slice times in the finding's evidence (`best_slice_times`, the sidecar's
+   order, seconds; `best_order`, `claimed_order`). When it is *no offsets*, the message
+   says that the data look already slice-time corrected. Alternatives within 8 % of the
+   acquisition window (RMS, after the best common offset) of the claim are said to be too
+   close in time to tell apart; a constant offset of every slice time cannot be seen.
+
+## The ends of the run (issue 24)
+
+A delay is a linear phase ramp on the discrete Fourier transform only for a periodic
+sequence: on a finite run the ramp shifts the course *circularly* (the shift theorem of
+the DFT, any signal-processing text). A run's shared course is rarely periodic — a drift,
+a slow wander that ends elsewhere than it began, a block design cut mid-block — so its
+periodic extension jumps at the run's ends, and the jump leaks over the whole spectrum
+(Harris 1978, Proc. IEEE 66:51-83) at the same sample in every slice, that is with no
+offsets. Aligning by any schedule with offsets misaligns that leak; "no offsets" escapes
+the penalty. Checked on the second simulator (below): a slow random wander (Gaussian
+smoothing of 10 s, a few tenths of a percent) made 3 of 4 true interleaved claims
+*contradicted* (z 5.6-7.7), always in favour of no offsets; tapering both ends of every
+course with a Hann window removed all of them, and no offsets stopped being the
+alternative. Forcing the simulated course to end at its starting level did not help on
+its own, because the cosine high-pass before the transform again leaves ends that
+differ; the taper acts after it. Every candidate is scored on the same tapered spectra.
+
+A level step that starts mid-volume is a second, different case: a step is not
+band-limited, so sampled every TR it aliases whole over the spectrum (sampling
+theorem), and the slices acquired before it see it one volume later, whole, not delayed
+by their acquisition times. No schedule aligns that, while no offsets nearly does (1 of
+the regression runs was still *contradicted* after the taper). Steps are therefore taken
+out of every channel alike before scoring. Block and event designs (Glover 1999,
+NeuroImage 9:416-429, response) rise smoothly and are not taken for steps.
 
 ## Why this evidence
 
