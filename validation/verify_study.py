@@ -494,8 +494,8 @@ METHOD = """\
    {z_sign:g}). Under the ordinary score: *undecidable* without timing evidence.
    *contradicted* when one of the three best-scoring materially different alternatives
    beats the claim with z ≥ {z_contradict:g} over the bins, an effect ≥ {min_effect:g}
-   (its lead over the claim as a share of the best candidate's lead over shuffled orders), z ≥ {z_region:g} in each half of
-   the image on its own, **and** z ≥ {z_sign:g} under the sign-invariant score; when the
+   (its lead over the claim as a share of the best candidate's lead over shuffled
+   orders), z ≥ {z_region:g} in each half of the image on its own, **and** z ≥ {z_sign:g} under the sign-invariant score; when the
    halves disagree, or the lead disappears once each slice may carry its own sign, the
    verdict is *undecidable*.
    *supported* when the claim beats the best of every shuffled set **and** each of the
