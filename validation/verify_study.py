@@ -488,26 +488,28 @@ METHOD = """\
    at twice the true frequency, so it is scored by the same code (alias orders, the
    choice on one half and the count on the other, coherence weights, bootstrap).
 8. **Verdict** (computed twice, once with each score as the primary one and the other as
-   the second opinion, then combined: a contradiction by either — the sign-invariant
-   one first, which needs no agreement from the ordinary score — else support or
+   the second opinion, then combined: a contradiction by either — the sign-invariant one
+   first, which needs no agreement from the ordinary score — else support or
    "consistent" by either unless the other has an alternative leading with z ≥
    {z_sign:g}). Under the ordinary score: *undecidable* without timing evidence.
    *contradicted* when one of the three best-scoring materially different alternatives
    beats the claim with z ≥ {z_contradict:g} over the bins, an effect ≥ {min_effect:g}
    (its lead over the claim as a share of the best candidate's lead over shuffled
-   orders), z ≥ {z_region:g} in each half of the image on its own, **and** z ≥ {z_sign:g} under the sign-invariant score; when the
-   halves disagree, or the lead disappears once each slice may carry its own sign, the
-   verdict is *undecidable*.
+   orders), z ≥ {z_region:g} in each half of the image on its own, **and** z ≥
+   {z_sign:g} under the sign-invariant score; when the halves disagree, or the lead
+   disappears once each slice may carry its own sign, the verdict is *undecidable*. With
+   the sign-invariant score as the primary one the same thresholds apply to its own z,
+   effect and halves, and its null is made of shuffled orders scored the same way.
    *supported* when the claim beats the best of every shuffled set **and** each of the
-   three best alternatives with z ≤ −{z_support:g}, both halves agreeing (the claim beats the
-   alternatives, not merely "no worse"). *consistent* (new, weaker) when the claim beats
-   shuffled orders and no alternative beats it, but one fits about as well (z below
-   {z_tie:g} or an effect below {tie_effect:g}): the data fit the claim without singling it out.
-   Neither *supported* nor *consistent* when an alternative beats the claim with z ≥
-   {z_sign:g} under the sign-invariant score. *undecidable* otherwise. Units are not
-   decided by verify: SliceTiming is read in seconds as the project's one owner
-   (`schemes.resolve.seconds_factor`) says, and a RepetitionTime above 100 leaves the run
-   *undecidable* (the audit reports the unit).
+   three best alternatives with z ≤ −{z_support:g}, both halves agreeing (the claim
+   beats the alternatives, not merely "no worse"). *consistent* (new, weaker) when the
+   claim beats shuffled orders and no alternative beats it, but one fits about as well
+   (z below {z_tie:g} or an effect below {tie_effect:g}): the data fit the claim without
+   singling it out. Neither *supported* nor *consistent* when an alternative beats the
+   claim with z ≥ {z_sign:g} under the sign-invariant score. *undecidable* otherwise.
+   Units are not decided by verify: SliceTiming is read in seconds as the project's one
+   owner (`schemes.resolve.seconds_factor`) says, and a RepetitionTime above 100 leaves
+   the run *undecidable* (the audit reports the unit).
 9. **Name the order.** A contradiction names the better order by its scheme label and
    puts its slice times in the finding's evidence (`best_slice_times`, the sidecar's
    order, seconds; `best_order`, `claimed_order`). When it is *no offsets*, the message
