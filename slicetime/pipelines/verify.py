@@ -21,6 +21,7 @@ Memory: one batch of volumes plus the channel courses (channels × volumes).
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass
@@ -29,7 +30,7 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 
-import slicetime.rules  # noqa: F401  (registers the verify/* and units codes it makes)
+import slicetime.rules  # noqa: F401  (registers the verify/* codes it makes)
 from slicetime.codes import make_finding
 from slicetime.engines import verify as ev
 from slicetime.model import MAX_REPETITION_TIME, Finding, RunRecord, Severity, SliceSchedule
@@ -247,8 +248,6 @@ def seconds_schedule(record: RunRecord) -> SliceSchedule | None:
     factor = seconds_factor(schedule, record.timing_origin)
     if factor == 1.0:
         return schedule
-    import dataclasses
-
     return dataclasses.replace(schedule, times=tuple(t * factor for t in schedule.times))
 
 
