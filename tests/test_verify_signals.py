@@ -104,3 +104,22 @@ def test_the_taper_removes_the_jump_at_the_run_ends() -> None:
     assert tapered[far].max() < 0.01 * plain[far].max()
     w = ev.taper(n)
     assert w[0] < 0.01 and w[-1] < 0.01 and w.max() == pytest.approx(1.0, abs=1e-3)
+
+
+def test_already_corrected_data_are_named_as_such_not_as_an_order() -> None:
+    # slice-time corrected data hold every slice at one time (what correction does, by
+    # definition); a claim with offsets is then contradicted by "no offsets", which the
+    # finding words as "already slice-time corrected", with zero times to adopt
+    from slicetime.model import RunRecord, SliceSchedule
+    from slicetime.pipelines.verify import outcome_of
+
+    claim = hs.order_times(N, TR, "interleaved-odd")
+    run = hs.simulate("event", (0.0,) * N, TR, 300, 11, noise=0.005)
+    decision = verify_array(run.data, claim, TR, seed=11)
+    assert decision.verdict == "contradicted", decision.reason
+    assert decision.rival_name == NO_OFFSETS
+    schedule = SliceSchedule(claim, repetition_time=TR)
+    outcome = outcome_of(RunRecord("r.nii.gz", "/r.nii.gz", "/"), schedule, TR, decision, 50)
+    evidence = dict(outcome.finding.evidence or {})
+    assert "already slice-time corrected" in outcome.finding.message
+    assert evidence["best_slice_times"] == [0.0] * N and evidence["already_corrected"]
