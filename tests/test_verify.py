@@ -18,8 +18,8 @@ from slicetime.engines import verify as ev
 from slicetime.interfaces.cli import cli
 from slicetime.pipelines.simulate import BrainRun, RunSimulation, simulate_brain, simulate_run
 from slicetime.pipelines.verify import BATCH_VOLUMES, NO_OFFSETS, candidates, verify_array
-from slicetime.schemes.infer import infer_scheme
 from slicetime.schemes.generate import Protocol, array_times
+from slicetime.schemes.infer import infer_scheme
 
 TR = 2.0
 
