@@ -391,7 +391,8 @@ def test_cli_verdicts_exit_codes_and_json(dataset: Path) -> None:
     # the order to adopt: its scheme label and its slice times (sidecar order, seconds)
     # so that fix could write them; the truth here is interleaved from 0 (Protocol)
     assert finding["evidence"]["best_order"] == "interleaved ascending from 0"
-    assert finding["evidence"]["best_slice_times"] == pytest.approx(list(_interleaved(24)), abs=1e-6)
+    times = finding["evidence"]["best_slice_times"]
+    assert times == pytest.approx(list(_interleaved(24)), abs=1e-6)
     assert finding["evidence"]["claimed_order"] == "ascending"
     assert "interleaved ascending from 0" in finding["message"]
 
