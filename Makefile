@@ -48,4 +48,9 @@ validate: $(STAMP)
 .PHONY: verify-study
 verify-study: $(STAMP)
 	$(PY) validation/verify_study.py --out docs
-	$(PY) validation/verify_heldout.py --seeds 1000:1004 --out docs/verify-heldout.json --doc docs/verify.md
+	$(PY) validation/verify_heldout.py --seeds 1000:1002 --out docs/verify-heldout.json
+	$(PY) validation/verify_heldout.py --seeds 1000:1010 --families realistic \
+		--out docs/verify-heldout-realistic.json
+	$(PY) validation/verify_heldout.py --report-only --out docs/verify-heldout.json \
+		--realistic docs/verify-heldout-realistic.json \
+		--before docs/verify-heldout-before.json --doc docs/verify.md

@@ -153,12 +153,18 @@ BEGIN = "<!-- second simulator: written by validation/verify_heldout.py -->"
 END = "<!-- end of the second simulator -->"
 
 
+def _span(seeds: str) -> str:
+    first, last = (int(x) for x in seeds.split(":"))
+    return f"{first} to {last - 1}"
+
+
 def _pct(pair: Sequence[int]) -> str:
     hits, total = pair
     return f"{100 * hits / total:.0f} % ({hits}/{total})" if total else "–"
 
 
-def markdown(summary: dict[str, Any], seeds: str, before: dict[str, Any] | None) -> str:
+def markdown(summary: dict[str, Any], seeds: str, before: dict[str, Any] | None,
+             realistic: dict[str, Any] | None = None) -> str:
     """The second simulator's section of docs/verify.md."""
     s = summary
     lines = [BEGIN, "", "## The second simulator (held out)", "",
@@ -173,7 +179,7 @@ def markdown(summary: dict[str, Any], seeds: str, before: dict[str, Any] | None)
              "Each run is verified with its true claim and with one wrong claim (reversed, "
              "sequential for interleaved and back, the other parity, a wrong multiband "
              "factor). The decision rule was chosen on seeds 0-2; the numbers below are "
-             f"from seeds {seeds.replace(':', '-')} (exclusive end).", ""]
+             f"from seeds {_span(seeds)}.", ""]
     fa, n_true, upper = s["true_contradicted"]
     lines += [f"- true claims contradicted: **{fa} of {n_true}**; one-sided 95 % upper "
               f"bound of the rate: {100 * upper:.1f} %.",
@@ -211,11 +217,28 @@ def markdown(summary: dict[str, Any], seeds: str, before: dict[str, Any] | None)
     for name, row in fam.items():
         lines.append(f"| {name} | {row['supported']} | {row['consistent']} | "
                      f"{row['contradicted']} | {row['undecidable']} |")
+    if realistic is not None:
+        r = realistic["summary"]
+        true_counts = r["true_claims"]
+        lines += ["", f"Realistic runs only (a task, networks, physiology and drift; seeds "
+                  f"{_span(realistic['seeds'])}):", "",
+                  "| TR | wrong claims contradicted | named = truth |", "|---|---:|---:|"]
+        trials = realistic["trials"]
+        for tr, pair in r["wrong_by_tr"].items():
+            named = [t for t in trials if t["mistake"] and str(t["repetition_time"]) == tr
+                     and t["verdict"] == "contradicted"]
+            lines.append(f"| {tr} s | {_pct(pair)} | "
+                         f"{_pct([sum(bool(t['named_is_truth']) for t in named), len(named)])} |")
+        n_true = sum(true_counts.values())
+        lines += ["", f"True claims: {true_counts['supported']} supported, "
+                  f"{true_counts['consistent']} consistent, {true_counts['contradicted']} "
+                  f"contradicted, {true_counts['undecidable']} undecidable (of {n_true})."]
     if before is not None:
         b = before
         bfa, bn, bup = b["true_contradicted"]
+        span = _span(str(b.get("seeds", "0:0")))
         lines += ["", "Before this change (the engine of the previous release, the same "
-                  f"simulator, seeds {b.get('seeds', '?')}): true claims contradicted "
+                  f"simulator, seeds {span}): true claims contradicted "
                   f"{bfa} of {bn} (one-sided 95 % upper bound {100 * bup:.1f} %); wrong "
                   f"claims contradicted {_pct([b['wrong_claims']['contradicted'], bn])}, "
                   "many of them only because no offsets won on the signal's shape; the "
@@ -247,6 +270,8 @@ def main(argv: Sequence[str] | None = None) -> int:
                         help="write the section into this markdown file (docs/verify.md)")
     parser.add_argument("--before", type=Path, default=None,
                         help="a saved JSON of the same study with the earlier engine")
+    parser.add_argument("--realistic", type=Path, default=None,
+                        help="a saved JSON of a realistic-only run, tabled by TR")
     parser.add_argument("--report-only", action="store_true",
                         help="rewrite --doc from the saved --out JSON")
     args = parser.parse_args(argv)
@@ -256,7 +281,10 @@ def main(argv: Sequence[str] | None = None) -> int:
         if args.before:
             old = json.loads(args.before.read_text(encoding="utf-8"))
             before = {**old["summary"], "seeds": old["seeds"]}
-        insert_section(args.doc, markdown(saved["summary"], saved["seeds"], before))
+        realistic = None
+        if args.realistic:
+            realistic = json.loads(args.realistic.read_text(encoding="utf-8"))
+        insert_section(args.doc, markdown(saved["summary"], saved["seeds"], before, realistic))
         return 0
     first, last = (int(x) for x in args.seeds.split(":"))
     design = trials(range(first, last), args.families.split(","),
