@@ -776,7 +776,18 @@ def write_markdown(summary: dict[str, object], power: dict[str, dict[str, float]
                      f"{100 * r.get('share_z_signs', float('nan')):.0f} % | "
                      f"{100 * r.get('vetoed', float('nan')):.0f} % |")
     lines.append("")
-    path.write_text("\n".join(lines), encoding="utf-8")
+    text = "\n".join(lines)
+    # keep the second simulator's section (validation/verify_heldout.py writes it)
+    try:
+        from validation.verify_heldout import BEGIN, END
+    except ImportError:  # run as a script: this folder is on the path
+        from verify_heldout import BEGIN, END  # type: ignore[import-not-found,no-redef]
+
+    old = path.read_text(encoding="utf-8") if path.exists() else ""
+    if BEGIN in old and END in old:
+        kept = BEGIN + old.split(BEGIN, 1)[1].split(END, 1)[0] + END + "\n"
+        text = text.rstrip("\n") + "\n\n" + kept
+    path.write_text(text, encoding="utf-8")
 
 
 def main(argv: Sequence[str] | None = None) -> int:
