@@ -208,6 +208,12 @@ def markdown(summary: dict[str, Any], seeds: str, before: dict[str, Any] | None,
         assert isinstance(table, dict)
         for value, pair in table.items():
             lines.append(f"| {label} | {value} | {_pct(pair)} | |")
+    lines += ["", "A run whose only shared signal is one slow family (drifts, a slow wander, "
+              "one sinusoid, a block design, a step) carries almost no timing information: "
+              "such a course changes little within one TR, so schedules differ by little. "
+              "Wrong claims there are left *undecidable* rather than accused, which is the "
+              "honest answer; event designs, networks and realistic runs carry the "
+              "evidence.", ""]
     lines += ["", "True claims by signal family (supported / consistent / contradicted / "
               "undecidable):", ""]
     fam = s["true_by_family"]
@@ -229,6 +235,16 @@ def markdown(summary: dict[str, Any], seeds: str, before: dict[str, Any] | None,
                      and t["verdict"] == "contradicted"]
             lines.append(f"| {tr} s | {_pct(pair)} | "
                          f"{_pct([sum(bool(t['named_is_truth']) for t in named), len(named)])} |")
+        mid = [r["wrong_by_tr"][k] for k in ("1.5", "2.0", "2.5") if k in r["wrong_by_tr"]]
+        hits, total = sum(p[0] for p in mid), sum(p[1] for p in mid)
+        fast = r["wrong_by_tr"].get("0.8", [0, 0])
+        lines += ["", f"Against the aims of issue 24: wrong claims contradicted at TR 1.5-2.5 s "
+                  f"{_pct([hits, total])} (aim at least 80 %); at TR 0.8 s {_pct(fast)} "
+                  "(aim at least 60 %: not reached; the slice delays are under 0.8 s and "
+                  "the shared signal is mostly slower than 0.1 Hz, so the wrong claims there "
+                  "reach z 2.2-3.0 against the threshold of 3, and lowering it would let "
+                  "slow-signal runs accuse true claims: on the tuning seeds, true claims "
+                  "with networks or a block design reached z 2.8)."]
         n_true = sum(true_counts.values())
         lines += ["", f"True claims: {true_counts['supported']} supported, "
                   f"{true_counts['consistent']} consistent, {true_counts['contradicted']} "
