@@ -10,6 +10,14 @@ the mean correlation over all pairs of aligned, standardised channel courses
 delay-and-sum average, up to a constant, so it is the natural statistic for a
 common signal with unknown shape seen with independent noise in each channel.
 
+The shift theorem holds for the discrete Fourier transform only as a CIRCULAR
+shift: a finite course that ends elsewhere than it began (a drift, a slow wander, a
+block design cut mid-block) jumps at the run's ends in its periodic extension, and
+that jump leaks over the spectrum undelayed, as if the slices had no offsets. Every
+course is therefore tapered at both ends (:func:`taper`) before its transform, and
+level steps, which no schedule can align once sampled, are regressed out of every
+channel alike (:func:`remove_steps`); every candidate faces the same spectra.
+
 Scores are computed from the spectrum (Parseval), so thousands of schedules
 cost little. Two calibrations:
 
@@ -25,13 +33,17 @@ A second, sign-invariant score (:func:`doubled`, :func:`sign_scores`) lets every
 channel carry its own real gain (a sign) for a shared component: physiology of
 opposite signs in different slices cancels in the delay-and-sum under the true
 schedule, and could make a wrong schedule score higher; it cannot under this score.
+:func:`gather_both` scores every candidate under both scores, each with its own
+shuffled null; :func:`decide` runs with each as the primary score and :func:`combine`
+makes one verdict of the two (see there).
 
 :func:`decide` turns them into a verdict: ``undecidable`` without timing
 evidence (pure noise, voxel-wise fluctuations, a shared signal too slow for
 the delays to matter); ``contradicted`` when a materially different
 alternative beats the claim with ``z >= Z_CONTRADICT`` and a relative effect
 of at least ``MIN_EFFECT``, in both halves of the image, and with
-``z >= Z_SIGN`` under the sign-invariant score; ``supported`` when the claim
+``z >= Z_SIGN`` under the sign-invariant score when the ordinary score is the
+primary one; ``supported`` when the claim
 itself beats the best of every shuffled set and the best alternatives with
 ``z <= -Z_SUPPORT`` and none of them leads it with ``z >= Z_SIGN`` under the
 sign-invariant score; ``consistent`` when it beats shuffled orders and an
@@ -58,11 +70,6 @@ TAPER_FRACTION = 1.0
 #: a transition is a step when the slices' scaled squared change there exceeds this many
 #: times its median over the run and its mean two transitions away (:func:`step_transitions`)
 STEP_RATIO = 20.0
-#: score with the sign-invariant statistic first (see :func:`gather`)
-SIGNS_FIRST = True
-COMBINE = True
-#: with SIGNS_FIRST, the ordinary score's z a contradiction needs too (None: not needed)
-Z_SECOND: float | None = None
 #: high-pass cut-off (Hz): slower components carry almost no timing evidence
 HIGHPASS_HZ = 0.01
 #: the highest true frequency (Hz) a component is assumed to have: respiration (about
@@ -696,8 +703,11 @@ class Challenge:
                 and self.effect >= MIN_EFFECT and min(self.z_regions) >= Z_REGION)
 
     def signs_agree(self) -> bool:
+        """The second score agrees: needed when the ordinary score is the primary one (the
+        sign-invariant score must confirm its lead); the sign-invariant score's own lead
+        needs no confirmation (the ordinary score is the one mixed signs mislead)."""
         if self.signs_first:
-            return self.z_signs is None or Z_SECOND is None or self.z_signs >= Z_SECOND
+            return True
         return self.z_signs is None or self.z_signs >= Z_SIGN
 
     def beats(self) -> bool:
@@ -907,8 +917,6 @@ def evaluate(courses: np.ndarray, slice_of: np.ndarray, repetition_time: float,
         region_of = np.arange(len(slice_of)) % 2
     first, second = gather_both(courses, slice_of, region_of, repetition_time, candidates,
                                 seed=seed, sets=sets)
-    if not COMBINE:
-        return decide(candidates, second if SIGNS_FIRST else first, window, seed=seed)
     return combine(decide(candidates, first, window, seed=seed),
                    decide(candidates, second, window, seed=seed))
 
