@@ -41,7 +41,7 @@ APPLIED = {
     "correct": {"walking", "executor", "policy"},
     "fix": {"executor", "policy", "source"},  # --source/--no-source as for audit (issue 27)
     "show": {"policy"},
-    "verify": set(),
+    "verify": {"executor"},
 }
 
 
