@@ -53,4 +53,5 @@ verify-study: $(STAMP)
 		--out docs/verify-heldout-realistic.json
 	$(PY) validation/verify_heldout.py --report-only --out docs/verify-heldout.json \
 		--realistic docs/verify-heldout-realistic.json \
-		--before docs/verify-heldout-before.json --doc docs/verify.md
+		--before docs/verify-heldout-before.json \
+		--project docs/verify-previous.json docs/verify.json --doc docs/verify.md

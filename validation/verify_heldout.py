@@ -163,11 +163,32 @@ def _pct(pair: Sequence[int]) -> str:
     return f"{100 * hits / total:.0f} % ({hits}/{total})" if total else "–"
 
 
+def project_lines(before: dict[str, Any], after: dict[str, Any]) -> list[str]:
+    """Before and after on the project's own simulator (``verify_study.py`` summaries)."""
+    out = ["## Before and after on the project's simulator", "",
+           "| engine | runs | true claims contradicted | wrong claims contradicted | "
+           "order named = truth | true claims supported |", "|---|---:|---:|---:|---:|---:|"]
+    for name, s in (("previous (full design)", before), ("this one (reduced design)", after)):
+        conf = s["confusion"]
+        wrong, true = conf["wrong claim"], conf["true claim"]
+        n_wrong, n_true = sum(wrong.values()), sum(true.values())
+        out.append(f"| {name} | {s['runs']} | {_pct(s['false_accusations'])} | "
+                   f"{_pct([wrong['contradicted'], n_wrong])} | "
+                   f"{_pct(s['contradicted_naming_truth'])} | "
+                   f"{_pct([true['supported'], n_true])} |")
+    out += ["", "(wrong and supported counts: the runs with neural signal and physiology; "
+            "true claims contradicted: every run. The reduced design is 184 runs on seeds "
+            "other than the full design's.)", ""]
+    return out
+
+
 def markdown(summary: dict[str, Any], seeds: str, before: dict[str, Any] | None,
-             realistic: dict[str, Any] | None = None) -> str:
+             realistic: dict[str, Any] | None = None,
+             project: tuple[dict[str, Any], dict[str, Any]] | None = None) -> str:
     """The second simulator's section of docs/verify.md."""
     s = summary
-    lines = [BEGIN, "", "## The second simulator (held out)", "",
+    lines = [BEGIN, ""] + (project_lines(*project) if project else []) + [
+             "## The second simulator (held out)", "",
              "`validation/heldout_sim.py` was written apart from `pipelines/simulate.py` and "
              "from the engine (no shared code): every slice sampled at its own true time; "
              "24 × 24 voxels, 36 slices (40 at TR 2.5 s), 300 volumes, thermal noise 1 % "
@@ -288,6 +309,9 @@ def main(argv: Sequence[str] | None = None) -> int:
                         help="a saved JSON of the same study with the earlier engine")
     parser.add_argument("--realistic", type=Path, default=None,
                         help="a saved JSON of a realistic-only run, tabled by TR")
+    parser.add_argument("--project", type=Path, nargs=2, default=None,
+                        metavar=("BEFORE", "AFTER"),
+                        help="verify_study.py JSON files of the previous and this engine")
     parser.add_argument("--report-only", action="store_true",
                         help="rewrite --doc from the saved --out JSON")
     args = parser.parse_args(argv)
@@ -300,7 +324,12 @@ def main(argv: Sequence[str] | None = None) -> int:
         realistic = None
         if args.realistic:
             realistic = json.loads(args.realistic.read_text(encoding="utf-8"))
-        insert_section(args.doc, markdown(saved["summary"], saved["seeds"], before, realistic))
+        project = None
+        if args.project:
+            project = tuple(json.loads(p.read_text(encoding="utf-8"))["summary"]
+                            for p in args.project)
+        insert_section(args.doc, markdown(saved["summary"], saved["seeds"], before, realistic,
+                                          project))  # type: ignore[arg-type]
         return 0
     first, last = (int(x) for x in args.seeds.split(":"))
     design = trials(range(first, last), args.families.split(","),
