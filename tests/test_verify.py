@@ -496,7 +496,7 @@ def test_reading_is_streamed_in_batches_without_loading_the_image(dataset: Path,
 def test_milliseconds_are_read_by_the_projects_one_owner_of_units(tmp_path: Path) -> None:
     # BIDS: RepetitionTime and SliceTiming are in seconds (BIDS specification, "Units");
     # the claim is the true order, SliceTiming written in milliseconds: verify reads it as
-    # schemes.resolve.seconds_factor says (no unit findings of its own: the audit's)
+    # the run's resolved timing says (schemes.resolve; no unit findings of its own)
     root = tmp_path / "ds"
     write_description(root)
     truth = _interleaved(24)
@@ -511,9 +511,9 @@ def test_milliseconds_are_read_by_the_projects_one_owner_of_units(tmp_path: Path
     runs = json.loads(out)["runs"]
     assert runs[0]["verdict"] == "supported", runs[0]
     assert set(runs[0]) == {"path", "verdict", "finding"}
-    # a RepetitionTime in milliseconds: no frequency can be trusted; the audit says why
-    assert runs[1]["verdict"] == "undecidable"
-    assert "RepetitionTime" in runs[1]["finding"]["message"]
+    # RepetitionTime in milliseconds too: the run's one resolved timing reads both in
+    # seconds (schemes.resolve), so the order is verified as written in seconds
+    assert runs[1]["verdict"] == "supported", runs[1]
     assert code == 0
 
 

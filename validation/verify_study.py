@@ -507,9 +507,9 @@ METHOD = """\
    (z below {z_tie:g} or an effect below {tie_effect:g}): the data fit the claim without
    singling it out. Neither *supported* nor *consistent* when an alternative beats the
    claim with z ≥ {z_sign:g} under the sign-invariant score. *undecidable* otherwise.
-   Units are not decided by verify: SliceTiming is read in seconds as the project's one
-   owner (`schemes.resolve.seconds_factor`) says, and a RepetitionTime above 100 leaves
-   the run *undecidable* (the audit reports the unit).
+   Units are not decided by verify: the times and the TR are read in seconds as the
+   run's one resolved timing (`RunRecord.timing`, `schemes.resolve`) gives them (the
+   audit reports the units).
 9. **Name the order.** A contradiction names the better order by its scheme label and
    puts its slice times in the finding's evidence (`best_slice_times`, the sidecar's
    order, seconds; `best_order`, `claimed_order`). When it is *no offsets*, the message

@@ -12,16 +12,14 @@ the verdict into a finding (``verify/supported``, ``verify/consistent``,
 scheme label (the words ``show`` uses, from :mod:`slicetime.schemes.labels` and
 :func:`slicetime.schemes.infer.infer_scheme`); a contradiction carries the better
 order's slice times (``best_slice_times``, the sidecar's order, seconds). Units are not
-decided here: SliceTiming is read in seconds as :func:`slicetime.schemes.resolve.seconds_factor`
-says, and a RepetitionTime that is not plausible seconds leaves the run undecidable
-(the audit reports the unit).
+decided here: the times and the TR are read in seconds as the run's one resolved timing
+(``RunRecord.timing``) gives them; the audit reports the units.
 
 Memory: one batch of volumes plus the channel courses (channels × volumes).
 """
 
 from __future__ import annotations
 
-import dataclasses
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass
@@ -39,7 +37,6 @@ from slicetime.readers.volumes import VolumeReader, scaling
 from slicetime.schemes.generate import Protocol, array_times
 from slicetime.schemes.infer import infer_scheme
 from slicetime.schemes.labels import IRREGULAR, LabelParts, format_label
-from slicetime.schemes.resolve import seconds_factor
 
 if TYPE_CHECKING:
     from slicetime.pipelines.executor import Executor
@@ -240,15 +237,12 @@ def in_sidecar_order(times: Sequence[float], schedule: SliceSchedule) -> list[fl
 
 
 def seconds_schedule(record: RunRecord) -> SliceSchedule | None:
-    """The run's schedule with SliceTiming in seconds, as the project's one owner of units
-    (:func:`slicetime.schemes.resolve.seconds_factor`) reads it."""
-    schedule = record.schedule
-    if schedule is None or not schedule.times:
-        return schedule
-    factor = seconds_factor(schedule, record.timing_origin)
-    if factor == 1.0:
-        return schedule
-    return dataclasses.replace(schedule, times=tuple(t * factor for t in schedule.times))
+    """The run's schedule with SliceTiming and RepetitionTime in seconds, as the project's
+    one resolution of a run's timing (``RunRecord.timing``, :mod:`slicetime.schemes.resolve`)
+    gives it; verify decides no unit itself."""
+    if record.timing.schedule is not None:
+        return record.timing.seconds_schedule()
+    return record.schedule
 
 
 def verify_record(record: RunRecord, *, seed: int = 0) -> VerifyOutcome:
@@ -272,7 +266,7 @@ def verify_record(record: RunRecord, *, seed: int = 0) -> VerifyOutcome:
     if schedule.n_slices < 3:
         return _undecidable(record, "fewer than 3 slices")
     tr = float(schedule.repetition_time)
-    window = schedule.acquisition_window or tr
+    window = record.timing.window or schedule.acquisition_window or tr
     if not (math.isfinite(window) and window > 0):
         return _undecidable(record, "the acquisition window is not positive")
     if max(schedule.times) - min(schedule.times) <= 0:

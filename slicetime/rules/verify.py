@@ -84,7 +84,7 @@ reader_code(
         "(e.g. noise-dominated data, short runs), the evidence points both ways (across "
         "frequencies or between the two halves of the image, as physiology can make it), or "
         "the order named differs from the claim too little in time to be told apart, or the run "
-        "cannot be checked (no schedule, VolumeTiming, a RepetitionTime not in seconds, fewer "
+        "cannot be checked (no schedule, VolumeTiming, fewer "
         "than 30 volumes or 3 slices, slice times outside the acquisition window)."
     ),
     fix="Nothing to repair; longer runs or runs with more shared signal give more evidence.",
