@@ -493,8 +493,31 @@ class ResolvedTiming:
 UNRESOLVED = ResolvedTiming()
 
 
+class TimingViews:
+    """The parts of a run's resolved timing read most often, as attributes of the run:
+    shared by :class:`RunRecord` and the compact run view of a streamed audit."""
+
+    __slots__ = ()
+    timing: ResolvedTiming
+
+    @property
+    def schedule(self) -> SliceSchedule | None:
+        """The slice times as written, with their sources (``timing.schedule``)."""
+        return self.timing.schedule
+
+    @property
+    def timing_origin(self) -> str | None:
+        """Where the slice times came from: "sidecar", "header" or None."""
+        return self.timing.origin
+
+    @property
+    def axis_length(self) -> int | None:
+        """The number of slices along the resolved slice axis, when the header gives it."""
+        return self.timing.axis_length
+
+
 @dataclass(frozen=True)
-class RunRecord:
+class RunRecord(TimingViews):
     """One run with everything resolved about it, ready for rules and reports.
 
     ``path`` is relative to ``root`` with forward slashes (how reports name the
@@ -529,24 +552,9 @@ class RunRecord:
     content_missing: str | None = None
 
     @property
-    def schedule(self) -> SliceSchedule | None:
-        """The slice times as written, with their sources (``timing.schedule``)."""
-        return self.timing.schedule
-
-    @property
-    def timing_origin(self) -> str | None:
-        """Where the slice times came from: "sidecar", "header" or None."""
-        return self.timing.origin
-
-    @property
     def timing_problems(self) -> tuple[TimingProblem, ...]:
         """Why there is no schedule, when there is none."""
         return self.timing.problems
-
-    @property
-    def axis_length(self) -> int | None:
-        """The number of slices along the resolved slice axis, when the header gives it."""
-        return self.timing.axis_length
 
 
 class RunView(Protocol):

@@ -437,16 +437,23 @@ def enhanced_file(path: Path, times_s: list[float], volumes: int = 2, gap: float
     ds.save_as(path, enforce_file_format=True)
 
 
-def test_enhanced_multiband_series(tmp_path: Path) -> None:
+def multiband_tree(tmp: Path, **fields: Any) -> tuple[Path, Path]:
+    """An enhanced multiband series (two slices at each time) and a run matching it,
+    whose sidecar holds ``fields`` beside its TR and series number."""
     invented = [0.0, 0.5, 1.0, 0.0, 0.5, 1.0]  # two slices at each time
-    root = dataset(tmp_path)
+    root = dataset(tmp)
     enhanced_file(root / "sourcedata/sub-02/mf/mf.dcm", invented)
     run = root / "sub-02/func/sub-02_task-x_bold.nii.gz"
     affine = DPCS_TO_TAL @ np.array([[2.0, 0, 0, -16], [0, 2.0, 0, -16], [0, 0, 3.0, 0],
                                      [0, 0, 0, 1]])
     write_nifti(run, affine, (16, 16, 6), 2, 1.5)
-    sidecar(run, RepetitionTime=1.5, SeriesNumber=7, MultibandAccelerationFactor=3,
-            SliceTiming=[0.0, 0.5, 1.0, 0.0, 0.5, 1.0])
+    sidecar(run, RepetitionTime=1.5, SeriesNumber=7, **fields)
+    return root, run
+
+
+def test_enhanced_multiband_series(tmp_path: Path) -> None:
+    root, run = multiband_tree(tmp_path, MultibandAccelerationFactor=3,
+                               SliceTiming=[0.0, 0.5, 1.0, 0.0, 0.5, 1.0])
     ds = pydicom.dcmread(root / "sourcedata/sub-02/mf/mf.dcm")
     per_time = collections.Counter(
         f.FrameContentSequence[0].FrameAcquisitionDateTime
@@ -532,14 +539,7 @@ def test_missing_times_the_source_records_are_reported_once(tmp_path: Path) -> N
 def test_a_multiband_source_is_rebuilt_in_one_pass(tmp_path: Path) -> None:
     # no SliceTiming and no MultibandAccelerationFactor: the times and the factor come
     # from the source in the same fix --apply, so a second pass has nothing to do
-    invented = [0.0, 0.5, 1.0, 0.0, 0.5, 1.0]  # two slices at each time
-    root = dataset(tmp_path)
-    enhanced_file(root / "sourcedata/sub-02/mf/mf.dcm", invented)
-    run = root / "sub-02/func/sub-02_task-x_bold.nii.gz"
-    affine = DPCS_TO_TAL @ np.array([[2.0, 0, 0, -16], [0, 2.0, 0, -16], [0, 0, 3.0, 0],
-                                     [0, 0, 0, 1]])
-    write_nifti(run, affine, (16, 16, 6), 2, 1.5)
-    sidecar(run, TaskName="x", RepetitionTime=1.5, SeriesNumber=7)
+    root, run = multiband_tree(tmp_path, TaskName="x")
     assert codes(audit_paths([root])) == ["source/times-absent"]
     result = CliRunner().invoke(cli, ["fix", str(root), "--apply", "--backup-dir",
                                       str(tmp_path / "b")])

@@ -7,7 +7,6 @@ import os
 from collections.abc import Callable
 from pathlib import Path
 
-import numpy as np
 import pydicom
 import pytest
 from click.testing import CliRunner
@@ -88,14 +87,8 @@ def reversed_times(tmp: Path) -> Path:
 
 
 def multiband_differs(tmp: Path) -> Path:
-    root = src.dataset(tmp)
-    src.enhanced_file(root / "sourcedata/sub-02/mf/mf.dcm", [0.0, 0.5, 1.0, 0.0, 0.5, 1.0])
-    run = root / "sub-02/func/sub-02_task-x_bold.nii.gz"
-    affine = src.DPCS_TO_TAL @ np.array([[2.0, 0, 0, -16], [0, 2.0, 0, -16], [0, 0, 3.0, 0],
-                                         [0, 0, 0, 1]])
-    src.write_nifti(run, affine, (16, 16, 6), 2, 1.5)
-    src.sidecar(run, TaskName="x", RepetitionTime=1.5, SeriesNumber=7,
-                MultibandAccelerationFactor=3, SliceTiming=[0.0, 0.5, 1.0, 0.0, 0.5, 1.0])
+    root, _ = src.multiband_tree(tmp, TaskName="x", MultibandAccelerationFactor=3,
+                                 SliceTiming=[0.0, 0.5, 1.0, 0.0, 0.5, 1.0])
     return root
 
 

@@ -26,6 +26,7 @@ from slicetime.model import (
     Scheme,
     Severity,
     SliceSchedule,
+    TimingViews,
     UnitVerdict,
 )
 from slicetime.model_source import SourceEvidence
@@ -219,7 +220,7 @@ def check_paths_hold_runs(paths: Sequence[Path], **include: bool) -> None:
         include_hidden=include.get("include_hidden", False))))
 
 
-class RunFacts:
+class RunFacts(TimingViews):
     """The compact view of a run (:class:`slicetime.model.RunView`) that a streamed
     audit keeps for every run while it writes the rest: what the dataset rules, the
     policy's protocol selection and the report summaries read (path, root, entities,
@@ -259,18 +260,6 @@ class RunFacts:
     @property
     def abs_path(self) -> str:
         return self._abs if self._abs is not None else _joined(self.root, self.path)
-
-    @property
-    def schedule(self) -> SliceSchedule | None:
-        return self.timing.schedule
-
-    @property
-    def timing_origin(self) -> str | None:
-        return self.timing.origin
-
-    @property
-    def axis_length(self) -> int | None:
-        return self.timing.axis_length
 
     @property
     def metadata_sources(self) -> Mapping[str, str]:
