@@ -29,11 +29,12 @@ from slicetime.pipelines import correct as correct_module
 from slicetime.pipelines.correct import CorrectInterrupted, CorrectOptions, correct_paths
 from slicetime.pipelines.executor import ProcessExecutor
 from slicetime.pipelines.provenance import json_safe
+from slicetime.readers.atomic import TEMP_PREFIX
 from slicetime.readers.entities import sidecar_name
 from tests.helpers_bids import patch_header, tree_hashes, write_description
 from tests.test_correct import REL, build_run, interleaved, output_of
 
-PARTIAL = correct_module.TEMP_PREFIX
+PARTIAL = TEMP_PREFIX
 
 
 def snapshot(*roots: Path) -> dict[str, str]:
@@ -292,7 +293,7 @@ class _DyingWriter(correct_module.VolumeWriter):
 
     def write(self, volumes: np.ndarray) -> None:
         super().write(volumes)
-        if "sub-02" in self.path.name:
+        if "sub-02" in str(self.path.parent):
             self._raw.flush()
             os._exit(9)
 

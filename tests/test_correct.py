@@ -17,6 +17,7 @@ from click.testing import CliRunner
 
 from slicetime.interfaces.cli import cli
 from slicetime.pipelines import correct as correct_module
+from slicetime.readers.atomic import TEMP_PREFIX, TEMP_SUFFIX
 from slicetime.pipelines.memory import plan_budget
 from slicetime.schemes.generate import Protocol, slice_timing
 from tests.helpers_bids import write_description, write_run, write_sidecar
@@ -330,7 +331,7 @@ def test_memory_cap_gives_the_same_output(dataset: Path, tmp_path: Path) -> None
     b = np.asarray(nib.load(output_of(capped, REL)).dataobj)
     # identical up to float32 rounding (the engine sees differently sized blocks)
     np.testing.assert_allclose(a, b, rtol=1e-6)
-    assert not [p for p in capped.rglob("*") if p.name.startswith(".slicetime-partial-")]
+    assert not [p for p in capped.rglob("*") if p.name.startswith(".slicetime-")]
     too_small = run_cli("correct", dataset, "--out", tmp_path / "tiny", "--max-memory", "20K")
     assert too_small.exit_code == 1
     assert "--max-memory 20.0 KiB is too small for this run" in too_small.output
@@ -467,7 +468,7 @@ def test_truncated_and_corrupt_images_fail_cleanly(dataset: Path, tmp_path: Path
     for rel in (short_rel, bad_rel):
         assert not output_of(out, rel).exists()
         assert rel in result.output
-    leftovers = [p for p in out.rglob("*") if p.name.startswith(".slicetime-partial-")]
+    leftovers = [p for p in out.rglob("*") if p.name.startswith(".slicetime-")]
     assert leftovers == []
     assert good.exists()
     # nothing at all is left for the failed runs, not even their folders
@@ -511,7 +512,7 @@ def test_an_interrupted_batch_leaves_nothing_half_written_and_resumes(
     first = output_of(out, rels[0]).relative_to(out).as_posix()
     assert first in files
     assert not any(f.startswith(("sub-02", "sub-03")) for f in files)
-    assert not any(".slicetime-partial-" in f for f in files)
+    assert not any(".slicetime-" in f for f in files)
 
     monkeypatch.setattr(correct_module, "_engine_pass", real)
     resumed = run_cli("correct", dataset, "--out", out, "--format", "json")
@@ -567,9 +568,9 @@ def test_stale_temporaries_are_removed_but_not_a_running_batchs(tmp_path: Path) 
     # common practice (no source): a pid that no longer runs owns nothing
     out = tmp_path / "out"
     (out / "sub-01").mkdir(parents=True)
-    dead = out / "sub-01" / f"{correct_module.TEMP_PREFIX}999999999-x_bold.nii.gz"
-    mine = out / f"{correct_module.TEMP_PREFIX}{os.getpid()}-scratch.f32"
-    alive = out / f"{correct_module.TEMP_PREFIX}1-y_bold.json"  # pid 1 always runs
+    dead = out / "sub-01" / f"{TEMP_PREFIX}999999999-x{TEMP_SUFFIX}"
+    mine = out / f"{TEMP_PREFIX}{os.getpid()}-scratch{TEMP_SUFFIX}"
+    alive = out / f"{TEMP_PREFIX}1-y{TEMP_SUFFIX}"  # pid 1 always runs
     for path in (dead, mine, alive):
         path.write_bytes(b"partial")
     assert correct_module.remove_stale_temporaries(out) == 2

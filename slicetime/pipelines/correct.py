@@ -91,7 +91,6 @@ from slicetime.pipelines.memory import (
 )
 from slicetime.pipelines.outputs import (
     DEFAULT_DESC,
-    TEMP_PREFIX,
     check_desc,
     check_output_location,
     clashing_runs,
@@ -100,7 +99,6 @@ from slicetime.pipelines.outputs import (
     output_path,
     prune_empty_folders,
     remove_stale_temporaries,
-    temp_path,
 )
 from slicetime.pipelines.provenance import (
     PROVENANCE_FILE,
@@ -122,6 +120,14 @@ from slicetime.pipelines.provenance import (
     write_provenance,
 )
 from slicetime.policy.model import AcceptEntry
+from slicetime.readers.atomic import (
+    FolderBusy,
+    WriteRefused,
+    folder_lock,
+    link_between,
+    make_folders,
+    temp_path,
+)
 from slicetime.readers.dataset import find_root
 from slicetime.readers.entities import sidecar_name
 from slicetime.readers.errors import ReadError
@@ -462,11 +468,13 @@ def _target(record: RunRecord, options: CorrectOptions) -> _Target:
         raise CorrectionError("the run is outside its dataset root, so its path cannot be mirrored")
     image_out = options.out / rel_out
     sidecar_out = image_out.with_name(sidecar_name(image_out.name))
-    image_out.parent.mkdir(parents=True, exist_ok=True)
-    if not Path(os.path.realpath(image_out.parent)).is_relative_to(os.path.realpath(options.out)):
-        raise CorrectionError(
-            f"{image_out.parent} leads outside --out (a symbolic link?); nothing was written"
-        )
+    try:
+        make_folders(image_out.parent, options.out)
+    except WriteRefused as exc:
+        raise CorrectionError(f"{exc} (inside --out); nothing was written") from None
+    for path in (image_out, sidecar_out):
+        if path.is_symlink():
+            raise CorrectionError(f"{path} is a symbolic link; nothing is written through it")
     owner = recorded_input(sidecar_out)
     if owner is not None and owner != (dataset_uri(record.root), json_safe(record.path)):
         raise CorrectionError(
@@ -533,7 +541,7 @@ def _resample_and_write(
     prepare(engine)
     try:
         if budget.on_disk:
-            scratch = options.out / f"{TEMP_PREFIX}{os.getpid()}-scratch.f32"
+            scratch = temp_path(options.out / "scratch")
             buffer = DiskBuffer(scratch, n_slices, n_volumes, plane)
         else:
             buffer = MemoryBuffer(n_slices, n_volumes, plane)
@@ -727,14 +735,41 @@ def correct_paths(
         options.out, [Path(r) for r in sorted(given_roots)], list(paths),
         include_derivatives=include_derivatives,
     )
+    created_out = not options.out.exists()
+    options.out.mkdir(parents=True, exist_ok=True)
+    try:
+        with folder_lock(options.out):
+            return _correct_locked(audit, roots, options, created_out, executor, jobs,
+                                   progress)
+    except FolderBusy:
+        raise ValueError(
+            f"--out {options.out}: another slicetime correct is writing to this folder now; "
+            "run this batch when it has ended"
+        ) from None
+    finally:
+        if created_out:  # nothing was written (a refusal before the batch): no folder left
+            with contextlib.suppress(OSError):
+                options.out.rmdir()
+
+
+def _correct_locked(
+    audit: AuditResult,
+    roots: list[str],
+    options: CorrectOptions,
+    created_out: bool,
+    executor: Executor | None,
+    jobs: int,
+    progress: Progress | None,
+) -> CorrectResult:
+    """The batch, while this process holds the lock of ``--out``: the description's
+    ``DatasetLinks`` and the provenance file are read and rewritten by one batch at a
+    time."""
     names, links = dataset_names(options.out, roots, mix_inputs=options.mix_inputs)
     result = CorrectResult(out=str(options.out), omitted=options.omit_leading)
     result.dataset_findings = [
         f for f in audit.dataset_findings if f.severity is Severity.ERROR
     ]
     clashes = _clash_outcomes(audit.runs, options.desc)
-    created_out = not options.out.exists()
-    options.out.mkdir(parents=True, exist_ok=True)
     remove_stale_temporaries(options.out)
     if any(r.record.abs_path not in clashes for r in audit.runs):
         # before any output: a batch killed half way still names its inputs
@@ -779,7 +814,6 @@ def correct_paths(
     return result
 
 
-
 def _in_input_order(
     runs: Sequence[RunResult], outcomes: Sequence[RunOutcome], clashes: dict[str, RunOutcome]
 ) -> list[RunOutcome]:
@@ -804,6 +838,8 @@ def _found_on_disk(
     if rel_out is None:
         return None
     image, sidecar = output_files(options.out, rel_out.as_posix())
+    if link_between(sidecar, options.out) is not None or link_between(image, options.out):
+        return None  # reached through a link: this batch wrote nothing there
 
     def fresh(path: Path) -> bool:
         try:
@@ -842,6 +878,8 @@ def _withdraw_stale(
         if rel_out is None:
             continue
         image, sidecar = output_files(options.out, rel_out.as_posix())
+        if link_between(sidecar, options.out) is not None or link_between(image, options.out):
+            continue  # reached through a link: not in --out, never removed
         if recorded_input(sidecar) != (dataset_uri(outcome.root), json_safe(outcome.path)):
             continue  # not an output of this run (or not one slicetime wrote)
         for path in (image, sidecar):

@@ -18,10 +18,17 @@ import slicetime.rules.correction  # noqa: F401  (registers CLASH_CODE)
 from slicetime.codes import make_finding
 from slicetime.model import Finding, RunRecord
 from slicetime.pipelines.errors import CLASH_CODE
+from slicetime.readers.atomic import (
+    WriteRefused,
+    check_write_target,
+    link_between,
+    real_within,
+    stale_temporary,
+    within,
+)
 from slicetime.readers.entities import parse_name, sidecar_name
 
 DEFAULT_DESC = "timealigned"
-TEMP_PREFIX = ".slicetime-partial-"
 _DESC_RE = re.compile(r"[A-Za-z0-9]+\Z")
 
 
@@ -62,11 +69,6 @@ def output_files(out: Path, output: str) -> tuple[Path, Path]:
     return image, image.with_name(sidecar_name(image.name))
 
 
-def temp_path(final: Path) -> Path:
-    """Where ``final`` is written before its atomic rename (named by this process)."""
-    return final.with_name(f"{TEMP_PREFIX}{os.getpid()}-{final.name}")
-
-
 def check_output_location(
     out: Path,
     roots: Sequence[Path],
@@ -74,7 +76,8 @@ def check_output_location(
     *,
     include_derivatives: bool = False,
 ) -> None:
-    """Refuse an output folder that would put files into an input dataset.
+    """Refuse an output folder that would put files into an input dataset
+    (:func:`~slicetime.readers.atomic.check_write_target`, the one decision).
 
     ``out`` may be outside every root and every given path, or inside a root's
     ``derivatives/`` folder (the BIDS convention); nowhere else inside a root or
@@ -82,33 +85,17 @@ def check_output_location(
     contribute no run. With ``include_derivatives`` even a root's derivatives
     folder is refused when a given path holds it (the outputs would become inputs).
     """
-    out_real = Path(os.path.realpath(out))
-    in_derivatives = False
-    for root in roots:
-        root_real = Path(os.path.realpath(root))
-        if out_real == root_real:
-            raise ValueError(f"--out {out} is the input dataset {root}; choose another folder")
-        if out_real.is_relative_to(root_real):
-            rel = out_real.relative_to(root_real)
-            if rel.parts[0] != "derivatives" or len(rel.parts) < 2:
-                raise ValueError(
-                    f"--out {out} is inside the input dataset {root}; use a folder outside "
-                    f"it or under {root / 'derivatives'}"
-                )
-            in_derivatives = True
-        if root_real.is_relative_to(out_real):
-            raise ValueError(f"--out {out} contains the input dataset {root}")
-    for path in paths:
-        path_real = Path(os.path.realpath(path))
-        if out_real == path_real or path_real.is_relative_to(out_real):
-            raise ValueError(f"--out {out} is or contains the input path {path}")
-        if out_real.is_relative_to(path_real) and (include_derivatives or not in_derivatives):
-            raise ValueError(
-                f"--out {out} is inside the input path {path}"
-                + (" and --include-derivatives would read the outputs back as inputs"
-                   if in_derivatives else "")
-                + "; choose a folder outside it"
-            )
+    check_write_target(out, roots, (), what="--out", folder=True, derivatives=True)
+    in_derivatives = any(real_within(out, root) for root in roots)
+    given = [p for p in paths if include_derivatives or not in_derivatives
+             or not real_within(out, p) or real_within(p, out)]
+    try:
+        check_write_target(out, (), given, what="--out", folder=True)
+    except WriteRefused as exc:
+        if in_derivatives and include_derivatives:
+            raise WriteRefused(f"{exc} (--include-derivatives would read the outputs back "
+                               "as inputs)") from None
+        raise
 
 
 def clashing_runs(records: Iterable[RunRecord], desc: str) -> dict[str, Finding]:
@@ -143,32 +130,16 @@ def clashing_runs(records: Iterable[RunRecord], desc: str) -> dict[str, Finding]
     return clashes
 
 
-def _owner_alive(name: str) -> bool:
-    """Whether the process that named a temporary file (by its pid) still runs."""
-    pid_text = name[len(TEMP_PREFIX) :].split("-", 1)[0]
-    if not pid_text.isdigit():
-        return False
-    pid = int(pid_text)
-    if pid == os.getpid():
-        return False
-    try:
-        os.kill(pid, 0)
-    except ProcessLookupError:
-        return False
-    except PermissionError:
-        return True
-    return True
-
-
 def remove_stale_temporaries(out: Path) -> int:
-    """Delete temporary files an interrupted earlier batch left under ``out``
-    (not those of a batch that is still running)."""
+    """Delete temporary files an interrupted earlier batch left under ``out`` (not
+    those of a batch that is still running). Links are not followed: nothing outside
+    ``out`` is removed."""
     removed = 0
-    if not out.is_dir():
+    if out.is_symlink() or not out.is_dir():
         return 0
     for dirpath, _dirs, files in os.walk(out):
         for name in files:
-            if name.startswith(TEMP_PREFIX) and not _owner_alive(name):
+            if stale_temporary(name):
                 with contextlib.suppress(FileNotFoundError):
                     os.unlink(os.path.join(dirpath, name))
                     removed += 1
@@ -185,7 +156,7 @@ def prune_empty_folders(out: Path, empty_runs: Iterable[str], desc: str, *,
         if target is None:
             continue
         folder = (out / target).parent
-        while folder != out and out in folder.parents:
+        while folder != out and within(folder, out) and link_between(folder, out) is None:
             try:
                 folder.rmdir()
             except OSError:
@@ -196,9 +167,9 @@ def prune_empty_folders(out: Path, empty_runs: Iterable[str], desc: str, *,
             out.rmdir()
 
 
+
 __all__ = [
     "DEFAULT_DESC",
-    "TEMP_PREFIX",
     "check_desc",
     "check_output_location",
     "clashing_runs",
@@ -207,5 +178,4 @@ __all__ = [
     "output_path",
     "prune_empty_folders",
     "remove_stale_temporaries",
-    "temp_path",
 ]

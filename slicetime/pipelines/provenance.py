@@ -21,7 +21,7 @@ from slicetime import __version__
 from slicetime.engines.interpolate import Engine, ResampleStats
 from slicetime.engines.plan import ResamplingPlan, slice_time_ref, window_fields
 from slicetime.model import RunRecord
-from slicetime.pipelines.outputs import output_files, temp_path
+from slicetime.pipelines.outputs import output_files
 from slicetime.readers.atomic import write_atomic
 from slicetime.readers.errors import ReadError, open_regular, read_bounded
 from slicetime.readers.volumes import file_sha256
@@ -80,7 +80,7 @@ def write_json_atomic(path: Path, content: Any) -> None:
     """``content`` as indented JSON at ``path``, atomically (its temporary name is the
     one :func:`remove_stale_temporaries` recognises after a crash)."""
     text = json.dumps(json_safe(content), indent=2, ensure_ascii=False, allow_nan=False)
-    write_atomic(path, text + "\n", temp=temp_path(path))
+    write_atomic(path, text + "\n")
 
 
 def dataset_uri(root: str | Path) -> str:
