@@ -17,8 +17,8 @@ from click.testing import CliRunner
 
 from slicetime.interfaces.cli import cli
 from slicetime.pipelines import correct as correct_module
-from slicetime.readers.atomic import TEMP_PREFIX, TEMP_SUFFIX
 from slicetime.pipelines.memory import plan_budget
+from slicetime.readers.atomic import TEMP_PREFIX, TEMP_SUFFIX
 from slicetime.schemes.generate import Protocol, slice_timing
 from tests.helpers_bids import write_description, write_run, write_sidecar
 

@@ -143,6 +143,7 @@ def correct_object(result: CorrectResult) -> dict[str, Any]:
         "tool": {"name": "slicetime", "version": __version__},
         "out": result.out,
         "runs": [correct_run_object(r) for r in result.runs],
+        "batch_findings": [f.to_json() for f in result.batch_findings()],
         "summary": result.counts(),
         "hand_off": result.hand_off(),
     }

@@ -235,6 +235,9 @@ def render_correct(result: CorrectResult, console: Console) -> None:
                     f"{xml_safe(doubt['message'])}")
             for i, part in enumerate(screen.wrap_words(said, width, first=11, rest=13)):
                 console.print(Text(pad + ("" if i == 0 else "  ") + part, style="dim"))
+    for finding in result.batch_findings():
+        for part in screen.wrap_words(f"error: {xml_safe(finding.message)}", width):
+            console.print(Text(part, style="red"))
     counts = result.counts()
     parts = [f"{counts[k]} {k}" for k in ("corrected", "up-to-date", "refused", "failed")
              if counts[k]]

@@ -73,6 +73,7 @@ from slicetime.pipelines.errors import (
     NOT_INTERPOLABLE_CODE,
     SCALING_CODE,
     TOO_FEW_CODE,
+    UNWRITTEN_CODE,
     CorrectionError,
 )
 from slicetime.pipelines.executor import (
@@ -130,7 +131,7 @@ from slicetime.readers.atomic import (
 )
 from slicetime.readers.dataset import find_root
 from slicetime.readers.entities import sidecar_name
-from slicetime.readers.errors import ReadError
+from slicetime.readers.errors import ReadError, is_regular_file
 from slicetime.readers.scratch import (
     DiskBuffer,
     MemoryBuffer,
@@ -230,8 +231,12 @@ class CorrectResult:
             counts[run.status] += 1
         return counts
 
+    def batch_findings(self) -> list[Finding]:
+        """The batch's own problems (``correct/*`` codes), not the audit's."""
+        return [f for f in self.dataset_findings if f.code.startswith("correct/")]
+
     def exit_code(self) -> int:
-        return 0 if all(r.ok for r in self.runs) else 1
+        return 0 if all(r.ok for r in self.runs) and not self.batch_findings() else 1
 
     def hand_off(self) -> str | None:
         """The one line a model of the outputs needs: the slice-time reference
@@ -494,7 +499,7 @@ def _reuse(
 ) -> bool:
     """Whether an output already in place is this run's, with these settings (then
     ``outcome`` says so)."""
-    if not (target.sidecar.exists() and target.image.exists()):
+    if not (is_regular_file(target.sidecar) and is_regular_file(target.image)):
         return False
     if not up_to_date(target.image, target.sidecar, settings, hash_inputs(record, None)):
         return False
@@ -852,7 +857,7 @@ def _found_on_disk(
     content = read_json_object(sidecar)
     entry = entry_of(content, rel_out.as_posix()) if content is not None else None
     output = entry.get("Output") if entry is not None else None
-    if (image.is_file() and isinstance(output, dict)
+    if (is_regular_file(image) and isinstance(output, dict)
             and output.get("SHA256") == file_sha256(image)
             and recorded_input(sidecar) == (dataset_uri(record.root), json_safe(record.path))):
         outcome = RunOutcome(record.path, record.root, "corrected", output=rel_out.as_posix())
@@ -932,8 +937,16 @@ def _finish(
     when the batch was interrupted) are removed when empty."""
     withdrawn = any(r.removed for r in result.runs)
     if any(r.ok for r in result.runs) or withdrawn:
-        _describe(options.out, roots, links, options)
-        write_provenance(options.out, result.runs)
+        try:
+            _describe(options.out, roots, links, options)
+            write_provenance(options.out, result.runs)
+        except OSError as exc:  # a full disk: the runs in place are still reported
+            result.dataset_findings.append(make_finding(
+                UNWRITTEN_CODE,
+                f"{options.out}: the description and provenance file could not be brought "
+                f"up to date ({exc.strerror or exc}); rerun when the folder is writable",
+                file=str(options.out),
+            ))
     elif created_out:  # nothing was written: leave no folder behind
         for name in ("dataset_description.json", PROVENANCE_FILE):
             with contextlib.suppress(FileNotFoundError):

@@ -23,7 +23,7 @@ from slicetime.engines.plan import ResamplingPlan, slice_time_ref, window_fields
 from slicetime.model import RunRecord
 from slicetime.pipelines.outputs import output_files
 from slicetime.readers.atomic import write_atomic
-from slicetime.readers.errors import ReadError, open_regular, read_bounded
+from slicetime.readers.errors import ReadError, is_regular_file, open_regular, read_bounded
 from slicetime.readers.volumes import file_sha256
 
 PROVENANCE_KEY = "SliceTimeAlignment"
@@ -130,7 +130,7 @@ def up_to_date(
             or recorded.get("Inputs") != inputs:
         return False
     output = recorded.get("Output", {})
-    if not image_out.is_file() or not isinstance(output, dict):
+    if not is_regular_file(image_out) or not isinstance(output, dict):
         return False
     return output.get("SHA256") == file_sha256(image_out)
 
@@ -317,7 +317,7 @@ def provenance_entry(sidecar_out: Path, output: str) -> dict[str, Any] | None:
 def recorded_input(sidecar_out: Path) -> tuple[str, str] | None:
     """``(dataset URI, image path)`` an existing output sidecar records as its input
     (None: no such sidecar, or not one slicetime wrote with its dataset)."""
-    content = read_json_object(sidecar_out) if sidecar_out.exists() else None
+    content = read_json_object(sidecar_out)
     recorded = content.get(PROVENANCE_KEY) if content else None
     inputs = recorded.get("Inputs") if isinstance(recorded, dict) else None
     if not isinstance(inputs, dict) or not isinstance(inputs.get("Dataset"), str):
@@ -351,7 +351,7 @@ def write_provenance(out: Path, outcomes: Sequence[Outcome]) -> None:
         if entry is not None:
             runs[key] = entry
     for key in list(runs):
-        if not any(image.is_file() and sidecar.is_file()
+        if not any(is_regular_file(image) and is_regular_file(sidecar)
                    for image, sidecar in (output_files(out, k) for k in {key, unescaped(key)})):
             del runs[key]
     content = {

@@ -58,10 +58,18 @@ def link_between(path: str | os.PathLike[str], base: str | os.PathLike[str]) -> 
     here, stop = Path(path), Path(base)
     found: Path | None = None
     while here != stop and within(here, stop):
-        if here.is_symlink():
+        if _is_link(here):
             found = here
         here = here.parent
     return found
+
+
+def _is_link(path: Path) -> bool:
+    """A symbolic link (a name the system refuses, e.g. too long, is none)."""
+    try:
+        return stat.S_ISLNK(os.lstat(path).st_mode)
+    except OSError:
+        return False
 
 
 def make_folders(folder: str | os.PathLike[str], base: str | os.PathLike[str]) -> None:

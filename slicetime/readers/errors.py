@@ -47,6 +47,7 @@ __all__ = [
     "check_regular_file",
     "display_name",
     "file_kind",
+    "is_regular_file",
     "open_regular",
     "os_error",
     "read_bounded",
@@ -200,6 +201,15 @@ def check_regular_file(
     if not stat.S_ISREG(st.st_mode):
         raise _not_regular(shown, st.st_mode, what)
     return st
+
+
+def is_regular_file(path: str | os.PathLike[str]) -> bool:
+    """Whether ``path`` is a regular file (links followed); any error (a missing
+    path, a name too long, a loop, no permission) is "no"."""
+    try:
+        return stat.S_ISREG(os.stat(path).st_mode)
+    except (OSError, ValueError):
+        return False
 
 
 def file_kind(mode: int) -> str:
