@@ -194,7 +194,7 @@ class ProcessExecutor(Executor):
 
         pool = ProcessPoolExecutor(
             max_workers=min(self.jobs, len(todo)), initializer=_remember_flags,
-            initargs=(started,),
+            initargs=(started, os.getpid()),
         )
         futures: dict[Future[list[R]], int] = {}
         # a few chunks in flight per worker, not all at once: results that arrive faster
@@ -256,7 +256,8 @@ class ProcessExecutor(Executor):
         from concurrent.futures.process import BrokenProcessPool
 
         pool = ProcessPoolExecutor(
-            max_workers=1, initializer=_remember_flags, initargs=(_shared_flags(1),)
+            max_workers=1, initializer=_remember_flags,
+            initargs=(_shared_flags(1), os.getpid()),
         )
         try:
             return pool.submit(_flagged, job, chunk, 0).result()
@@ -293,15 +294,50 @@ def _on_terminate(signum: int, frame: Any) -> None:
     os._exit(STOPPED_STATUS)
 
 
-def _remember_flags(flags: Any) -> None:
+def _remember_flags(flags: Any, parent: int | None = None) -> None:
     """Worker initialiser: keep the flags; Ctrl-C is the parent's to handle (it stops
-    the workers with SIGTERM, which ends a running job through its clean-up)."""
+    the workers with SIGTERM, which ends a running job through its clean-up); and the
+    worker ends with its parent (``parent``: its pid) however the parent ends."""
     import signal
 
     global _FLAGS
     _FLAGS = flags
     signal.signal(signal.SIGINT, signal.SIG_IGN)
     signal.signal(signal.SIGTERM, _on_terminate)
+    if parent is not None:
+        die_with_parent(parent)
+
+
+#: how often the portable watch looks whether the parent still runs (seconds)
+PARENT_WATCH_INTERVAL = 1.0
+
+
+def die_with_parent(parent: int) -> None:
+    """End this process (SIGTERM to itself: a running job cleans up first) when the
+    process ``parent`` ends, even by kill -9: on Linux the kernel sends the signal
+    (``prctl(PR_SET_PDEATHSIG)``, prctl(2)); everywhere a daemon thread also checks
+    once a second that the parent is still this process's parent (an orphan is
+    adopted by another process, so ``getppid`` changes)."""
+    import signal
+    import sys
+    import threading
+
+    if sys.platform.startswith("linux"):
+        with contextlib.suppress(Exception):  # no libc or no prctl: the watch remains
+            import ctypes
+
+            pr_set_pdeathsig = 1  # <linux/prctl.h>
+            ctypes.CDLL(None, use_errno=True).prctl(pr_set_pdeathsig, int(signal.SIGTERM),
+                                                    0, 0, 0)
+
+    def watch() -> None:
+        while os.getppid() == parent:
+            time.sleep(PARENT_WATCH_INTERVAL)
+        os.kill(os.getpid(), signal.SIGTERM)
+
+    if os.getppid() != parent:  # the parent ended before the signal was asked for
+        os.kill(os.getpid(), signal.SIGTERM)
+    threading.Thread(target=watch, name="slicetime-parent-watch", daemon=True).start()
 
 
 def _flagged(job: Job[T, R], chunk: Sequence[T], index: int) -> list[R]:

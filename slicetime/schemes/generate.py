@@ -98,10 +98,18 @@ def _positive_time(name: str, value: object) -> None:
         raise ValueError(f"{name} must be a positive number of seconds (got {value!r})")
 
 
+#: the most slices a protocol may have: a NIfTI-1 dimension is a signed 16-bit
+#: integer (nifti1.h, ``short dim[8]``), so no image can hold more along one axis
+MAX_SLICES = 32767
+
+
 def validate_protocol(p: Protocol) -> None:
     """Raise ValueError with a one-line message naming the bad parameter."""
     if not _is_int(p.n_slices) or p.n_slices < 1:
         raise ValueError(f"n_slices must be a whole number of at least 1 (got {p.n_slices!r})")
+    if p.n_slices > MAX_SLICES:
+        raise ValueError(f"n_slices must be at most {MAX_SLICES}, the largest dimension a "
+                         f"NIfTI image can have (got {p.n_slices})")
     if p.order not in ("sequential", "interleaved"):
         raise ValueError(f"order must be 'sequential' or 'interleaved' (got {p.order!r})")
     if not isinstance(p.ascending, bool):
