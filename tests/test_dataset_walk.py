@@ -164,7 +164,13 @@ def test_unlistable_folder_is_reported(tree: Path, monkeypatch: pytest.MonkeyPat
 def test_folder_links(tree: Path, tmp_path: Path) -> None:
     storage = tmp_path / "storage" / "sub-06"
     write_run(storage, "func/sub-06_task-x_bold.nii.gz", SMALL)
-    symlink(tree / "sub-06", storage)  # a subject kept elsewhere: followed
+    symlink(tree / "sub-06", storage)  # a subject kept elsewhere: reported, not followed
     symlink(tree / "sub-01/func/alias", "../../sub-02")  # an alias inside the tree: not followed
-    runs = rel(tree, list(iter_runs([tree])))
+    seen: list[Finding] = []
+    runs = rel(tree, list(iter_runs([tree], on_error=seen.append)))
+    assert runs == [(".", p) for p in EXPECTED]
+    assert [(f.code, f.file) for f in seen] == [("file/link-leaves-dataset",
+                                                 str(tree / "sub-06"))]
+    # given as a path of its own, the linked subject is walked, under its name in the tree
+    runs = rel(tree, list(iter_runs([tree, tree / "sub-06"])))
     assert runs == [(".", p) for p in [*EXPECTED, "sub-06/func/sub-06_task-x_bold.nii.gz"]]

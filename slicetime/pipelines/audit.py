@@ -46,6 +46,7 @@ from slicetime.policy.checks import (
 )
 from slicetime.policy.loading import root_policies
 from slicetime.policy.model import AcceptEntry, Policy
+from slicetime.readers.atomic import within
 from slicetime.readers.dataset import find_root, iter_runs
 from slicetime.readers.entities import sidecar_path
 from slicetime.readers.errors import ReadError
@@ -194,12 +195,17 @@ def _not_processed(result: RunResult) -> bool:
 def _check_every_path_has_runs(
     paths: Sequence[Path], targets: Sequence[tuple[Path, Path]]
 ) -> None:
-    """Raise :class:`NoRunsError` for the first given path that holds no run."""
+    """Raise :class:`NoRunsError` for the first given path that holds no run. A path
+    that is another given path under another name (a link to a dataset given beside
+    the dataset) holds that path's runs: the walk met them once, under the first name."""
     runs = [str(run) for _, run in targets]
+    holding = [given for given in paths
+               if any(within(run, os.path.abspath(given)) for run in runs)]
     for given in paths:
-        where = os.path.abspath(given)
-        prefix = where.rstrip(os.sep) + os.sep
-        if not any(run == where or run.startswith(prefix) for run in runs):
+        if given in holding:
+            continue
+        real = os.path.realpath(given)
+        if not any(within(real, os.path.realpath(other)) for other in holding):
             raise NoRunsError(str(given), is_folder=os.path.isdir(given))
 
 

@@ -42,8 +42,8 @@ def within(path: str | os.PathLike[str], folder: str | os.PathLike[str]) -> bool
     p, f = os.fspath(path), os.fspath(folder)
     if p == f:
         return True
-    f = f.rstrip(os.sep) + os.sep if f.rstrip(os.sep) else os.sep
-    return p.startswith(f)
+    bare = f.rstrip(os.sep)
+    return p == bare or p.startswith(bare + os.sep)
 
 
 def real_within(path: str | os.PathLike[str], folder: str | os.PathLike[str]) -> bool:

@@ -240,3 +240,16 @@ reader_code(
     rationale="The map must be a TSV with two columns per line: run path and series folder.",
     fix="Fix the line named in the message.",
 )
+reader_code(
+    "file/link-leaves-dataset",
+    title="a folder link leads out of the dataset and is not followed",
+    severity=W,
+    rationale=(
+        "A symbolic link inside a dataset that points at a folder outside it (another "
+        "study, a mounted store, the file-system root, /proc) would take the walk, and "
+        "every write a repair makes, out of the data the command was given. The link is "
+        "reported once and not followed, so the runs behind it are not audited."
+    ),
+    fix="Give the linked folder as a path of its own to include it, or replace the link "
+        "with the folder it points at.",
+)

@@ -23,11 +23,15 @@ yielded too, so that reading them turns into a finding (``file/no-content``,
 
 ``derivatives``, ``sourcedata`` and ``code`` folders and hidden names
 (starting with a dot) are skipped at any depth below a given folder unless
-included. Folder symlinks that lead out of the given folder are followed
-(subjects kept on other storage); symlinks to folders inside it are aliases
-(or loops) and are not followed, so each run keeps its real name; a folder
-whose real path was already visited is never entered again, so loops end. Runs come out sorted by
-root, then by path components; each run once.
+included. A walk is confined to the dataset of the folder it was given: folder
+symlinks to folders inside the given folder are aliases (or loops) and are not
+followed, so each run keeps its real name; symlinks that lead out of the given
+folder's dataset root (another study, ``/``, ``/proc``) are not followed either
+and are reported once each (``file/link-leaves-dataset``: a subject kept on other
+storage is included by giving its folder as a path of its own); links to other
+folders of the same dataset are followed. A folder whose real path was already
+visited is never entered again, so loops end. Runs come out sorted by root, then
+by path components; each run once.
 """
 
 from __future__ import annotations
@@ -42,6 +46,7 @@ import slicetime.readers.codes  # noqa: F401  (registers the codes made here)
 from slicetime.codes import make_finding
 from slicetime.model import Finding
 
+from .atomic import within
 from .entities import (
     IMAGE_EXTENSIONS,
     looks_like_run,
@@ -237,10 +242,23 @@ class _Walker:
                 )
             )
 
+    def _report_link(self, path: Path, target: str) -> None:
+        if self.on_error is not None:
+            shown = str(path)
+            self.on_error(make_finding(
+                "file/link-leaves-dataset",
+                f"{shown}: a link to {target}, outside the dataset; not followed, so the "
+                "runs behind it are not audited",
+                file=shown, evidence={"link_target": target},
+            ))
+
     def walk(
-        self, folder: Path, top_real: str | None = None, real: str | None = None
+        self, folder: Path, top_real: str | None = None, real: str | None = None,
+        confine: str | None = None,
     ) -> Iterator[Path]:
-        """Depth-first, sorted by name; ``real`` is the real path of ``folder`` when known."""
+        """Depth-first, sorted by name; ``real`` is the real path of ``folder`` when known;
+        ``confine``: the real path of the dataset root that folder links may not leave
+        (default: the folder's own)."""
         if real is None:
             try:
                 real = os.path.realpath(folder)
@@ -249,6 +267,8 @@ class _Walker:
                 return
         if top_real is None:
             top_real = real
+        if confine is None:
+            confine = top_real
         if real in self.visited:
             return
         self.visited.add(real)
@@ -288,15 +308,14 @@ class _Walker:
                 path = folder / name
                 if entry.is_symlink():
                     child_real = os.path.realpath(path)
-                    if _inside(child_real, top_real):
+                    if within(child_real, top_real):
                         continue  # an alias of a folder in this tree (or a loop): reached by name
+                    if not within(child_real, confine):
+                        self._report_link(path, child_real)
+                        continue
                 else:  # not a link: its real path is its name under this folder's real path
                     child_real = os.path.join(real, name)
-                yield from self.walk(path, top_real, child_real)
-
-
-def _inside(real: str, top_real: str) -> bool:
-    return real == top_real or real.startswith(top_real.rstrip(os.sep) + os.sep)
+                yield from self.walk(path, top_real, child_real, confine)
 
 
 def _is_regular(entry: os.DirEntry[str]) -> bool:
@@ -358,7 +377,12 @@ def iter_runs(
 
     found: dict[tuple[str, str], tuple[Path, Path]] = {}
     for p in given:
-        runs = walker.walk(p) if p.is_dir() else iter([p])
+        if p.is_dir():
+            top = os.path.realpath(p)
+            confine = os.path.realpath(finder.find_folder(os.fspath(p)))
+            runs = walker.walk(p, top, top, confine if within(top, confine) else top)
+        else:
+            runs = iter([p])
         for run in runs:
             root = root_of(run)
             found.setdefault((str(root), str(run)), (root, run))

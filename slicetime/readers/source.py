@@ -34,7 +34,7 @@ from slicetime.model import TIME_TOLERANCE, RunRecord
 from slicetime.model_source import SeriesTiming, SourceEvidence
 from slicetime.readers.dicom import group_name, read_all_series, read_group
 from slicetime.readers.dicom_files import SeriesGroup, catalogue, natural
-from slicetime.readers.errors import ReadError
+from slicetime.readers.errors import ReadError, open_regular, read_bounded
 from slicetime.schemes.correspond import Mismatch, correspond
 
 __all__ = ["SourceIndex", "SourceOptions", "find_source", "load_source_map", "run_geometry"]
@@ -59,11 +59,25 @@ class SourceOptions:
     mapping: Mapping[str, str] = field(default_factory=dict)
 
 
+#: the largest --source-map read (a line per run: far more than any study needs)
+MAX_SOURCE_MAP_BYTES = 16 << 20
+
+
 def load_source_map(path: Path) -> dict[str, str]:
     """Read a ``--source-map`` TSV (run path, series folder). Raises ReadError (exit 2)."""
     shown = str(path)
     try:
-        text = path.read_text(encoding="utf-8")
+        fh, st = open_regular(path, shown, what="source map")  # a FIFO or device: refused
+        with fh:
+            raw = read_bounded(fh, st.st_size, MAX_SOURCE_MAP_BYTES)
+        if len(raw) > MAX_SOURCE_MAP_BYTES:
+            raise ReadError("source/bad-map", shown, None, f"{shown}: the source map is larger "
+                            f"than {MAX_SOURCE_MAP_BYTES} bytes; it is not read")
+        text = raw.decode("utf-8")
+    except ReadError as exc:
+        if exc.code == "source/bad-map":
+            raise
+        raise ReadError("source/bad-map", shown, None, exc.message) from None
     except (OSError, UnicodeDecodeError) as exc:
         raise ReadError("source/bad-map", shown, None,
                         f"{shown}: cannot read the source map ({exc})") from None
