@@ -39,14 +39,14 @@ from __future__ import annotations
 import errno
 import os
 import stat
-from collections.abc import Callable, Iterator, Sequence
+from collections.abc import Callable, Iterator, Mapping, Sequence
 from pathlib import Path
 
 import slicetime.readers.codes  # noqa: F401  (registers the codes made here)
 from slicetime.codes import make_finding
 from slicetime.model import Finding
 
-from .atomic import within
+from .atomic import check_write_target, within
 from .entities import (
     IMAGE_EXTENSIONS,
     looks_like_run,
@@ -60,6 +60,7 @@ from .sidecar import load_sidecar
 __all__ = [
     "SKIPPED_FOLDERS",
     "TIME_SERIES_SUFFIXES",
+    "check_writes",
     "find_root",
     "is_image_name",
     "iter_runs",
@@ -95,6 +96,32 @@ def find_root(path: Path) -> Path:
     a file).
     """
     return _RootFinder().find(path)
+
+
+def check_writes(
+    paths: Sequence[Path],
+    files: Mapping[str, Path | None] = {},
+    *,
+    folders: Mapping[str, Path | None] = {},
+    inputs: Sequence[Path | None] = (),
+) -> None:
+    """Refuse, before anything is read or written, a command's output file or folder
+    that could touch its inputs (``WriteRefused``: exit 2, one line naming the path).
+
+    ``paths``: what the command was given; their dataset roots (:func:`find_root`)
+    and the paths themselves are the inputs, with the other files it reads
+    (``inputs``: a policy, a source map). ``files`` and ``folders`` map each output's
+    option name to its path (None: not asked for). The decision itself is
+    :func:`slicetime.readers.atomic.check_write_target`, the one every command uses.
+    """
+    roots = [find_root(Path(p)) for p in paths]
+    given = [*paths, *(p for p in inputs if p is not None)]
+    for what, path in files.items():
+        if path is not None:
+            check_write_target(path, roots, given, what=what)
+    for what, path in folders.items():
+        if path is not None:
+            check_write_target(path, roots, given, what=what, folder=True)
 
 
 #: errors that :meth:`pathlib.Path.is_file` treats as "not a file" (others propagate)

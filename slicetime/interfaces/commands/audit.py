@@ -86,7 +86,10 @@ def audit(
     from slicetime.interfaces.report_stream import RunSpool, run_line, summary_line
     from slicetime.pipelines.audit import audit_stream
     from slicetime.pipelines.executor import Interrupted
+    from slicetime.readers.dataset import check_writes
 
+    check_writes(list(paths), {"--output": output, "--html": html_file},
+                 inputs=[policy_file, source_map])
     if html_file is not None:
         _require_matplotlib("--html")
     root_given = str(paths[0]) if len(paths) == 1 else " ".join(str(p) for p in paths)

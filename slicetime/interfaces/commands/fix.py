@@ -96,7 +96,11 @@ def fix(
             if not paths:
                 raise UserError("fix: give the dataset or runs to repair (PATH...)")
             from slicetime.pipelines.audit import check_paths_hold_runs
+            from slicetime.readers.dataset import check_writes
 
+            check_writes(list(paths), {"--plan": plan_file if not do_apply else None},
+                         folders={"--backup-dir": backup_dir},
+                         inputs=[policy_file, source_map])
             check_paths_hold_runs(list(paths))
             with run_executor(jobs, scheduler) as executor:
                 plan = fixing.plan_fix(list(paths), per_run=per_run, policy_file=policy_file,

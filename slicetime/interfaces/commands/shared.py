@@ -140,12 +140,17 @@ def friendly(fn: F) -> F:
     @functools.wraps(fn)
     def wrapper(*args: Any, **kwargs: Any) -> Any:
         from slicetime.pipelines.errors import NoRunsError
+        from slicetime.readers.atomic import WriteRefused
         from slicetime.readers.errors import ReadError
 
         try:
             return fn(*args, **kwargs)
         except ReadError as exc:
             raise UserError(exc.message) from None
+        except WriteRefused as exc:
+            from slicetime.interfaces.safe_text import xml_safe
+
+            raise UserError(xml_safe(str(exc))) from None
         except NoRunsError as exc:
             raise UserError(str(exc)) from None
         except (click.ClickException, click.exceptions.Exit, click.Abort, SystemExit):
