@@ -138,12 +138,12 @@ def test_nested_duplicate_is_a_warning(tmp_path: Path) -> None:
     assert (f.code, f.severity) == ("sidecar/duplicate-key", Severity.WARNING)
 
 
-def test_utf8_bom_is_a_warning(tmp_path: Path) -> None:
+def test_utf8_bom_is_a_note(tmp_path: Path) -> None:
     data, findings = load_text(tmp_path, b"\xef\xbb\xbf" + b'{"TaskName": "rest"}')
     # RFC 8259 section 8.1: no byte-order mark; parsers may ignore one
     assert data == {"TaskName": "rest"}
     (f,) = findings
-    assert (f.code, f.severity) == ("sidecar/bad-encoding", Severity.WARNING)
+    assert (f.code, f.severity) == ("sidecar/bad-encoding", Severity.NOTE)
 
 
 @pytest.mark.parametrize("encoding", ["utf-16", "utf-32"])

@@ -74,8 +74,10 @@ def _skip(text: str, i: int) -> int:
 
 
 def scan(text: str) -> Layout:
-    """The members of the object ``text`` holds; ``ValueError`` (one line) otherwise."""
-    i = _skip(text, 0)
+    """The members of the object ``text`` holds; ``ValueError`` (one line) otherwise. A
+    leading UTF-8 byte-order mark is skipped (RFC 8259 lets a parser ignore it) and, being
+    outside every member, kept by an edit."""
+    i = _skip(text, 1 if text.startswith("\ufeff") else 0)
     if text[i : i + 1] != "{":
         raise ValueError("its top level is not a JSON object")
     start = i

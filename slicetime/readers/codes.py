@@ -166,10 +166,11 @@ reader_code(
     title="a JSON sidecar is not valid UTF-8",
     severity=E,
     rationale=(
-        "JSON text exchanged between systems must be UTF-8 (RFC 8259). A warning for a "
-        "UTF-8 byte-order mark or lone surrogate escapes (the file is still read)."
+        "JSON text exchanged between systems must be UTF-8 (RFC 8259). A warning for lone "
+        "surrogate escapes (the file is still read); a note for a UTF-8 byte-order mark, "
+        "which RFC 8259 lets a parser ignore (the file is read, and fix keeps the mark)."
     ),
-    also_severities=(W,),
+    also_severities=(W, N),
     fix="Re-save the file as UTF-8.",
 )
 reader_code(

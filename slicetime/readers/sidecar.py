@@ -318,8 +318,8 @@ def parse_sidecar_bytes(raw: bytes, shown: str) -> tuple[dict[str, Any] | None, 
             make_finding(
                 "sidecar/bad-encoding",
                 f"{shown}: the sidecar starts with a UTF-8 byte-order mark, which JSON "
-                "forbids; read without it",
-                severity=Severity.WARNING,
+                "writers must not add; read without it",
+                severity=Severity.NOTE,
                 file=shown,
                 hint="re-save the file as UTF-8 without a byte-order mark",
             )
