@@ -199,13 +199,20 @@ def _check_every_path_has_runs(
     that is another given path under another name (a link to a dataset given beside
     the dataset) holds that path's runs: the walk met them once, under the first name."""
     runs = [str(run) for _, run in targets]
-    holding = [given for given in paths
-               if any(within(run, os.path.abspath(given)) for run in runs)]
+
+    def holds(where: str) -> bool:
+        return any(within(run, where) for run in runs)
+
+    holding = [os.path.abspath(given) for given in paths if holds(os.path.abspath(given))]
     for given in paths:
-        if given in holding:
+        where = os.path.abspath(given)
+        if where in holding:
             continue
         real = os.path.realpath(given)
-        if not any(within(real, os.path.realpath(other)) for other in holding):
+        # the same folder under the name another given path gave it: its runs, met once
+        aliases = [os.path.join(other, os.path.relpath(real, os.path.realpath(other)))
+                   for other in holding if within(real, os.path.realpath(other))]
+        if not any(holds(os.path.normpath(alias)) for alias in aliases):
             raise NoRunsError(str(given), is_folder=os.path.isdir(given))
 
 
