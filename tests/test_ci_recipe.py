@@ -51,7 +51,7 @@ def test_the_shell_script_writes_both_reports_and_keeps_the_exit_status(
     done = subprocess.run(["sh", str(CI / "slicetime-audit.sh"), "."], cwd=root,
                           env=_env(), capture_output=True, text=True, timeout=300)
     assert done.returncode == (1 if broken else 0), done.stdout + done.stderr
-    reports = root / "slicetime-reports"
+    reports = root.parent / "ds-slicetime-reports"  # beside the dataset, never inside it
     suite = ET.parse(reports / "audit.xml").getroot()
     failures = suite.findall(".//failure")
     assert bool(failures) == broken
@@ -68,14 +68,18 @@ def test_the_hosted_ci_job_runs_as_pasted(tmp_path: Path) -> None:
     steps = job["jobs"]["slicetime"]["steps"]
     runs = [s["run"] for s in steps if "run" in s]
     assert "pip install slicetime-bids" in runs[0]  # the distribution's name, not `slicetime`
-    root = _dataset(tmp_path / "ds", broken=True)
-    done = subprocess.run(["sh", "-ec", runs[1]], cwd=root, env=_env(), capture_output=True,
-                          text=True, timeout=300)
+    checkout = next(s for s in steps if s.get("uses", "").startswith("actions/checkout"))
+    workspace = tmp_path / "workspace"
+    root = _dataset(workspace / checkout["with"]["path"], broken=True)
+    before = {p for p in root.rglob("*")}
+    done = subprocess.run(["sh", "-ec", runs[1]], cwd=workspace, env=_env(),
+                          capture_output=True, text=True, timeout=300)
     assert done.returncode == 1, done.stdout + done.stderr  # the job fails on the error
     kept = next(s for s in steps if s.get("uses", "").startswith("actions/upload-artifact"))
     assert kept["if"] == "always()"  # the reports are kept when the audit fails
-    folder = root / kept["with"]["path"]
+    folder = workspace / kept["with"]["path"]
     assert {p.name for p in folder.iterdir()} == {"audit.xml", "audit.html"}
+    assert {p for p in root.rglob("*")} == before  # nothing written inside the dataset
     ET.parse(folder / "audit.xml")
 
 

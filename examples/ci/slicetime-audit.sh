@@ -8,7 +8,8 @@
 #   SLICETIME_SPEC     what pip installs when no slicetime command is on PATH
 #                      (default: slicetime-bids; a checkout's path works too)
 #   SLICETIME_VENV     where that install goes (default: .slicetime-venv)
-#   SLICETIME_REPORTS  folder for audit.xml and audit.html (default: slicetime-reports)
+#   SLICETIME_REPORTS  folder for audit.xml and audit.html (default: <dataset>-slicetime-reports
+#                      beside the dataset: slicetime writes no report inside a dataset)
 #   SLICETIME_FAIL_ON  error, warning or never (default: error)
 #   PYTHON             the Python that makes the environment (default: python3)
 #
@@ -17,7 +18,8 @@
 set -u
 
 dataset=${1:-.}
-reports=${SLICETIME_REPORTS:-slicetime-reports}
+whole=$(cd "$dataset" && pwd) || exit 2
+reports=${SLICETIME_REPORTS:-$whole-slicetime-reports}
 fail_on=${SLICETIME_FAIL_ON:-error}
 
 if command -v slicetime >/dev/null 2>&1 && [ -z "${SLICETIME_SPEC:-}" ]; then
