@@ -107,11 +107,16 @@ def test_undo_refuses_a_backup_that_does_not_match_its_hash(tmp_path: Path) -> N
     _ds, journal, _ = applied(tmp_path)
     backup = next((journal.parent / "files").rglob("*.json"))
     backup.write_text('{"TaskName": "someone else"}')
+    damaged = backup.relative_to(journal.parent / "files").as_posix().split("/", 1)[1]
     state = tree_hashes(tmp_path)
     result = fix("--undo", journal)
-    assert result.exit_code == 2
-    assert "does not match the SHA-256" in result.output
-    assert tree_hashes(tmp_path) == state  # nothing restored, nothing written
+    assert result.exit_code == 1
+    refused = [x for x in result.output.splitlines() if x.startswith("refused ")]
+    assert len(refused) == 1 and damaged in refused[0] and "does not match the SHA-256" in \
+        refused[0]
+    after = tree_hashes(tmp_path)
+    assert after[f"ds/{damaged}"] == state[f"ds/{damaged}"]  # not restored from a bad backup
+    assert result.output.count("restored  ") == 1  # the other file is
 
 
 # ------------------------------------------------------------------ 2. confinement
@@ -155,10 +160,21 @@ def test_an_edited_journal_cannot_write_outside_its_datasets(tmp_path: Path, att
     edit_journal(journal, change)
     state = tree_hashes(tmp_path)
     result = fix("--undo", journal)
-    assert result.exit_code == 2, result.output
-    assert "nothing was restored" in result.output
-    assert len(result.output.strip().splitlines()) == 1  # one line, no traceback
-    assert tree_hashes(tmp_path) == state  # not even the valid entries were restored
+    assert hashlib.sha256(victim.read_bytes()).hexdigest() == victim_sha
+    if attack in ("root-outside", "missing-key"):  # the journal itself is unusable
+        assert result.exit_code == 2, result.output
+        assert "nothing was restored" in result.output
+        assert len(result.output.strip().splitlines()) == 1  # one line, no traceback
+        assert tree_hashes(tmp_path) == state
+        return
+    # one entry out of bounds is refused, with its reason; the valid entry is restored
+    assert result.exit_code == 1, result.output
+    refused = [x for x in result.output.splitlines() if x.startswith("refused ")]
+    assert len(refused) == 1 and "not restored" in refused[0], result.output
+    assert result.output.count("restored  ") == 1
+    changed = {k for k, v in tree_hashes(tmp_path).items() if state.get(k) != v}
+    assert changed == {"ds/sub-02/func/sub-02_task-hum_bold.json"} | (
+        {"ds/.slicetime-fix.lock"} & set(state))
 
 
 @pytest.mark.parametrize("attack", ["root-outside", "dotdot-file", "image-file"])
@@ -296,12 +312,16 @@ def test_nan_and_huge_numbers_elsewhere_keep_their_bytes(tmp_path: Path) -> None
 
 def test_undo_with_a_missing_backup_is_one_line_and_writes_nothing(tmp_path: Path) -> None:
     _ds, journal, _ = applied(tmp_path)
-    next((journal.parent / "files").rglob("*.json")).unlink()
+    missing = next((journal.parent / "files").rglob("*.json"))
+    missing.unlink()
     state = tree_hashes(tmp_path)
     result = fix("--undo", journal)
-    assert result.exit_code == 2
-    assert "is missing" in result.output and len(result.output.strip().splitlines()) == 1
-    assert tree_hashes(tmp_path) == state
+    assert result.exit_code == 1
+    refused = [x for x in result.output.splitlines() if x.startswith("refused ")]
+    assert len(refused) == 1 and "is missing" in refused[0]
+    assert result.output.count("restored  ") == 1  # the file whose backup is there
+    changed = {k for k, v in tree_hashes(tmp_path).items() if state.get(k) != v}
+    assert len(changed) == 1
 
 
 @pytest.mark.parametrize("damage", ['{"format": "slicetime-fix-journal"',
@@ -340,15 +360,16 @@ def test_undo_after_kill_during_apply_restores_and_names_unwritten_files(
 import os, signal
 from pathlib import Path
 from slicetime.pipelines import fix, transaction
+from slicetime.readers.atomic import temp_path
 real = transaction._atomic_write
 count = [0]
-def killing(path, data, mode, temp=None):
+def killing(path, data, like, tag=None):
     if path.name.startswith("sub-"):
         count[0] += 1
         if count[0] == 2:
-            (path.parent / temp).write_bytes(data[:10])
+            temp_path(path, tag).write_bytes(data[:10])
             os.kill(os.getpid(), signal.SIGKILL)
-    real(path, data, mode, temp)
+    real(path, data, like, tag)
 transaction._atomic_write = killing
 plan = fix.plan_fix([Path({str(ds)!r})])
 fix.apply_plan(plan, backup_dir=Path({str(backups)!r}))
@@ -471,9 +492,10 @@ def test_the_journal_is_written_twice_whatever_the_number_of_files(
     writes: list[str] = []
     real = transaction._write_journal
 
-    def counting(path: Path, roots: Any, token: str, entries: Any, status: str) -> None:
+    def counting(path: Path, roots: Any, token: str, entries: Any, status: str,
+                 ids: Any = None) -> None:
         writes.append(status)
-        real(path, roots, token, entries, status)
+        real(path, roots, token, entries, status, ids)
 
     monkeypatch.setattr(transaction, "_write_journal", counting)
     result = fix(ds, "--apply")

@@ -42,6 +42,7 @@ from slicetime.pipelines.fix_layout import REMOVE, check_fields, layout_moves, v
 from slicetime.pipelines.json_splice import DELETE, Layout, scan, splice
 from slicetime.pipelines.transaction import (
     ApplyResult,
+    Interrupted,
     TransactionError,
     UndoResult,
     apply_changes,
@@ -49,6 +50,7 @@ from slicetime.pipelines.transaction import (
     confinement_problem,
     current_sha,
     read_document,
+    recover,
     undo,
 )
 from slicetime.pipelines.transaction import preflight as preflight_changes
@@ -479,17 +481,20 @@ def read_plan(path: Path) -> FixPlan:
 # --------------------------------------------------------------------------- applying
 
 
-def preflight(plan: FixPlan, replace_links: bool = False) -> list[str]:
+def preflight(plan: FixPlan, replace_links: bool = False,
+              rewrite_read_only: bool = False) -> list[str]:
     """Every file :func:`apply_plan` would refuse, one line each (none: it can write all)."""
-    return preflight_changes(plan.changes, replace_links)
+    return preflight_changes(plan.changes, replace_links, rewrite_read_only)
 
 
 def apply_plan(
-    plan: FixPlan, *, backup_dir: Path | None = None, replace_links: bool = False
+    plan: FixPlan, *, backup_dir: Path | None = None, replace_links: bool = False,
+    rewrite_read_only: bool = False,
 ) -> ApplyResult:
     """Write the planned changes, all or none, after backing every file up
     (:func:`slicetime.pipelines.transaction.apply_changes`)."""
-    return apply_changes(plan.changes, backup_dir=backup_dir, replace_links=replace_links)
+    return apply_changes(plan.changes, backup_dir=backup_dir, replace_links=replace_links,
+                         rewrite_read_only=rewrite_read_only)
 
 
 def reaudit(plan: FixPlan, *, policy_file: Path | None = None,
@@ -511,6 +516,7 @@ __all__ = [
     "FileChange",
     "FixError",
     "FixPlan",
+    "Interrupted",
     "JsonStyle",
     "TransactionError",
     "UndoResult",
@@ -519,6 +525,7 @@ __all__ = [
     "preflight",
     "read_plan",
     "reaudit",
+    "recover",
     "undo",
     "write_plan",
 ]

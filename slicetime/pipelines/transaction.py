@@ -25,14 +25,25 @@ import json
 import os
 import re
 import secrets
+import signal
 import socket
+import stat
+import threading
 from collections.abc import Iterator, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path, PurePosixPath
 from typing import Any, Protocol
 
 from slicetime import __version__
-from slicetime.readers.atomic import write_atomic
+from slicetime.readers.atomic import (
+    WriteRefused,
+    check_write_target,
+    temp_parts,
+    temp_path,
+    within,
+    write_atomic,
+)
+from slicetime.readers.errors import ReadError, open_regular, read_bounded
 from slicetime.readers.shipped_schemas import document_problem, load_schema
 from slicetime.readers.volumes import file_sha256
 
@@ -41,6 +52,8 @@ JOURNAL_NAME = "journal.json"
 JOURNAL_SCHEMA = "fix-journal"
 JOURNAL_FORMAT = "slicetime-fix-journal"
 LOCK_NAME = ".slicetime-fix.lock"
+#: the largest plan or journal read back (a plan holds every new file's text)
+MAX_DOCUMENT_BYTES = 1 << 30
 
 
 class TransactionError(Exception):
@@ -81,10 +94,16 @@ def read_document(path: Path, schema: str, what: str, refused: str) -> dict[str,
     shipped ``schema``; ``what`` names it in messages, ``refused`` says what a refusal
     means ("nothing was restored")."""
     try:
-        with open(path, "rb") as fh:
-            raw = fh.read(1 << 30)
+        fh, st = open_regular(path, str(path), what=what)  # a FIFO or a device: refused
+        with fh:
+            raw = read_bounded(fh, st.st_size, MAX_DOCUMENT_BYTES)
+        if len(raw) > MAX_DOCUMENT_BYTES:
+            raise ValueError(f"larger than {MAX_DOCUMENT_BYTES} bytes")
         content = json.loads(raw.decode("utf-8"))
-    except (OSError, ValueError) as exc:
+    except ReadError as exc:
+        why = exc.message.removeprefix(f"{path}: ")
+        raise TransactionError(f"{path}: cannot read the {what} ({why})") from None
+    except (OSError, ValueError, RecursionError) as exc:
         why = exc.strerror if isinstance(exc, OSError) and exc.strerror else str(exc)
         raise TransactionError(f"{path}: cannot read the {what} ({why})") from None
     marker = load_schema(schema)["properties"]["format"]["const"]
@@ -113,11 +132,6 @@ def is_dataset_root(root: Path) -> bool:
         return False
 
 
-def inside(path: str, folder: str) -> bool:
-    """``path`` is ``folder`` or lies under it (both as given: resolve links first)."""
-    return path == folder or path.startswith(folder.rstrip(os.sep) + os.sep)
-
-
 def confinement_problem(root: str, file: object) -> str | None:
     """Why ``file`` is not a sidecar inside the dataset ``root`` (None when it is).
 
@@ -134,7 +148,7 @@ def confinement_problem(root: str, file: object) -> str | None:
         return f"the file {file!r} is not a sidecar (slicetime writes only .json sidecars)"
     real_root = os.path.realpath(root)
     real_folder = os.path.realpath(os.path.join(root, *pure.parts[:-1]))
-    if not inside(real_folder, real_root):
+    if not within(real_folder, real_root):
         return f"the folder of {file!r} leads out of the dataset through a link"
     return None
 
@@ -152,8 +166,10 @@ def check_root(root: object, where: Path, what: str) -> str:
 
 # --------------------------------------------------------------------------- locking
 
-def _lock_one(root: Path) -> tuple[Path, int]:
-    """Hold ``root/.slicetime-fix.lock`` (flock); the kernel frees it if the process dies."""
+def _lock_one(root: Path) -> tuple[Path, int, str]:
+    """Hold ``root/.slicetime-fix.lock`` (flock); the kernel frees it if the process dies.
+    Returns the file, its descriptor and what the file said before (a holder killed
+    while applying left its journal's path there: see :func:`recover`)."""
     path = root / LOCK_NAME
     for _ in range(5):
         try:
@@ -173,37 +189,145 @@ def _lock_one(root: Path) -> tuple[Path, int]:
             os.close(fd)
             raise TransactionError(
                 f"{root}: another slicetime fix is writing this dataset now "
-                f"({holder or 'process unknown'}); wait until it ends, then make "
-                "a new plan") from None
+                f"({holder.splitlines()[0] if holder else 'process unknown'}); wait until "
+                "it ends, then make a new plan") from None
         try:  # the previous holder may have removed the file between our open and flock
             same = os.fstat(fd).st_ino == os.lstat(path).st_ino
         except FileNotFoundError:
             same = False
         if same:
-            note = f"pid {os.getpid()} on {socket.gethostname()}\n".encode()
-            os.ftruncate(fd, 0)
-            os.pwrite(fd, note, 0)
-            return path, fd
+            try:
+                previous = os.pread(fd, 8192, 0).decode("utf-8", "replace")
+            except OSError:
+                previous = ""
+            _note(fd, None)
+            return path, fd, previous
         os.close(fd)
     raise TransactionError(f"{root}: cannot take the lock {LOCK_NAME}: it keeps being replaced")
 
 
+def _note(fd: int, journal: Path | None) -> None:
+    """Say in the lock file who holds it and, while files are being written, which
+    journal can put them back (the next fix or undo reads it after a kill -9)."""
+    note = f"pid {os.getpid()} on {socket.gethostname()}\n"
+    if journal is not None:
+        note += f"journal: {journal}\n"
+    os.ftruncate(fd, 0)
+    os.pwrite(fd, note.encode("utf-8", "surrogateescape"), 0)
+    with contextlib.suppress(OSError):
+        os.fsync(fd)
+
+
+@dataclass
+class Locks:
+    """The fix locks held on some dataset roots."""
+
+    held: list[tuple[Path, int]] = field(default_factory=list)
+    #: per root: the journal an earlier holder was applying when it died (None: none)
+    interrupted: dict[str, Path] = field(default_factory=dict)
+
+    def note_journal(self, journal: Path | None) -> None:
+        for _path, fd in self.held:
+            _note(fd, journal)
+
+
+def _journal_named(note: str) -> Path | None:
+    for line in note.splitlines():
+        if line.startswith("journal: "):
+            return Path(os.fsencode(line[len("journal: "):]).decode("utf-8", "surrogateescape"))
+    return None
+
+
 @contextlib.contextmanager
-def dataset_lock(roots: Sequence[str]) -> Iterator[None]:
-    """Hold the fix lock of every root (sorted, all or none) while writing."""
-    held: list[tuple[Path, int]] = []
+def dataset_lock(roots: Sequence[str]) -> Iterator[Locks]:
+    """Hold the fix lock of every root (sorted, all or none) while writing; the lock
+    files are removed when the block ends."""
+    locks = Locks()
     try:
         for root in sorted(set(roots)):
-            held.append(_lock_one(Path(root)))
-        yield
+            path, fd, previous = _lock_one(Path(root))
+            locks.held.append((path, fd))
+            journal = _journal_named(previous)
+            if journal is not None:
+                locks.interrupted[root] = journal
+        yield locks
     finally:
-        for path, fd in reversed(held):
+        for path, fd in reversed(locks.held):
             with contextlib.suppress(OSError):
                 os.unlink(path)
             os.close(fd)
 
 
+def recover(roots: Sequence[str]) -> list[str]:
+    """Finish what an ``--apply`` killed on these dataset roots left (kill -9, a power
+    cut): the files it had written are put back from its backups, its temporary files
+    and its lock file removed, its journal marked "rolled back". Returns one line per
+    journal recovered (none: nothing was left). A root whose lock another running fix
+    holds is left to it."""
+    lines: list[str] = []
+    for root in sorted(set(roots)):
+        if not os.path.lexists(Path(root) / LOCK_NAME):
+            continue
+        try:
+            with dataset_lock([root]) as locks:
+                journal = locks.interrupted.get(root)
+                if journal is not None:
+                    lines.append(_finish_rollback(journal))
+        except TransactionError:
+            continue  # another fix holds it: that one is running, not killed
+    return lines
+
+
+def _finish_rollback(journal_path: Path) -> str:
+    """Roll back the files an interrupted apply wrote (its journal says "prepared");
+    a journal that says "applied" was complete: only its temporary files go."""
+    try:
+        journal = _read_journal(journal_path)
+    except TransactionError as exc:
+        return (f"an earlier fix --apply was interrupted, but its journal cannot be used "
+                f"({exc}); check the files it names by hand")
+    _remove_temps(journal.entries, journal.token)
+    if journal.status != "prepared":
+        return f"an earlier fix --apply ended without removing its lock (journal {journal_path})"
+    put_back, stuck = _put_back(journal.entries, journal.path.parent, journal.token)
+    if stuck:
+        return (f"an earlier fix --apply was interrupted: {len(put_back)} of its files were "
+                f"put back, not {', '.join(stuck[:3])}: run slicetime fix --undo {journal_path}")
+    with contextlib.suppress(OSError):
+        _write_journal(journal.path, journal.roots, journal.token or "", journal.entries,
+                       "rolled back", journal.root_ids)
+    return (f"an earlier fix --apply was interrupted; the {len(put_back)} files it had written "
+            f"were put back (journal {journal_path})")
+
+
+def _put_back(entries: Sequence[JournalEntry], backup: Path,
+              token: str | None) -> tuple[list[str], list[str]]:
+    """Restore, newest first, every entry whose file holds its bytes after the fix;
+    (put back, could not be put back)."""
+    put_back: list[str] = []
+    stuck: list[str] = []
+    for n, entry in reversed(list(enumerate(entries))):
+        if _state(entry) != "after":
+            continue
+        try:
+            _restore(entry, backup, _temp_tag(token or secrets.token_hex(8), n))
+        except (OSError, TransactionError):
+            stuck.append(entry.file)
+            continue
+        put_back.append(entry.file)
+    return put_back, stuck
+
+
 # --------------------------------------------------------------------------- applying
+
+
+class Interrupted(TransactionError):
+    """A signal (Ctrl-C, SIGTERM) stopped an apply; the files written were put back.
+    ``exit_code``: 128 + the signal's number, as a shell reports it."""
+
+    def __init__(self, message: str, signum: int) -> None:
+        super().__init__(message)
+        self.exit_code = 128 + signum
 
 
 @dataclass
@@ -211,6 +335,8 @@ class ApplyResult:
     journal: Path | None
     written: list[str] = field(default_factory=list)
     refused: list[str] = field(default_factory=list)  # one line per refused file
+    #: what an earlier, interrupted apply left and this one put right first
+    recovered: list[str] = field(default_factory=list)
 
 
 @dataclass
@@ -225,6 +351,8 @@ class JournalEntry:
     backup: str | None = None  # relative to the journal's folder
     mode: int | None = None
     link_target: str | None = None
+    uid: int | None = None  # the file's owner and group before the fix
+    gid: int | None = None
 
     @property
     def path(self) -> Path:
@@ -233,7 +361,16 @@ class JournalEntry:
     def to_json(self) -> dict[str, Any]:
         return {"root": self.root, "file": self.file, "action": self.action,
                 "sha256_before": self.sha256_before, "sha256_after": self.sha256_after,
-                "backup": self.backup, "mode": self.mode, "link_target": self.link_target}
+                "backup": self.backup, "mode": self.mode, "link_target": self.link_target,
+                "uid": self.uid, "gid": self.gid}
+
+    def like(self) -> os.stat_result | None:
+        """The owner and mode to give the file when it is written back (None: unknown)."""
+        if self.mode is None:
+            return None
+        uid = self.uid if self.uid is not None else os.geteuid()
+        gid = self.gid if self.gid is not None else os.getegid()
+        return os.stat_result((stat.S_IFREG | self.mode, 0, 0, 1, uid, gid, 0, 0, 0, 0))
 
 
 def default_backup_dir(roots: Sequence[str]) -> Path:
@@ -243,7 +380,24 @@ def default_backup_dir(roots: Sequence[str]) -> Path:
     return root.parent / f"{root.name}-slicetime-backups" / stamp
 
 
-def _refusal(change: PlannedWrite, replace_links: bool, expected_sha: str | None) -> str | None:
+def root_identity(root: str | Path) -> str | None:
+    """What says a folder is the dataset a journal was made for, wherever it now is
+    (moved or copied): the SHA-256 of its ``dataset_description.json`` (None: it has
+    none)."""
+    try:
+        return file_sha256(Path(root) / "dataset_description.json")
+    except OSError:
+        return None
+
+
+def _read_only(st: os.stat_result) -> bool:
+    """No write bit at all: the owner meant the file to stay as it is (root could still
+    write it, so the bits are read, not ``access(2)``)."""
+    return not st.st_mode & (stat.S_IWUSR | stat.S_IWGRP | stat.S_IWOTH)
+
+
+def _refusal(change: PlannedWrite, replace_links: bool, expected_sha: str | None,
+             rewrite_read_only: bool = False) -> str | None:
     path = change.path
     problem = confinement_problem(change.root, change.file)
     if problem is not None:
@@ -259,8 +413,11 @@ def _refusal(change: PlannedWrite, replace_links: bool, expected_sha: str | None
     elif path.exists():
         if not path.is_file():
             return f"{change.file}: is not a regular file"
-        if not os.access(path, os.W_OK):
-            return f"{change.file}: is read-only; make it writable (chmod u+w) to fix it"
+        if _read_only(path.stat()) and not rewrite_read_only:
+            return (f"{change.file}: is read-only; make it writable (chmod u+w), or pass "
+                    "--rewrite-read-only to rewrite it and keep it read-only")
+        if not _read_only(path.stat()) and not os.access(path, os.W_OK):
+            return f"{change.file}: is read-only for this user; make it writable (chmod u+w)"
     if not path.parent.is_dir():
         return f"{change.file}: its folder does not exist"
     if not os.access(path.parent, os.W_OK):
@@ -275,12 +432,13 @@ def _refusal(change: PlannedWrite, replace_links: bool, expected_sha: str | None
     return None
 
 
-def preflight(changes: Sequence[PlannedWrite], replace_links: bool = False) -> list[str]:
+def preflight(changes: Sequence[PlannedWrite], replace_links: bool = False,
+              rewrite_read_only: bool = False) -> list[str]:
     """Every file :func:`apply_changes` would refuse, one line each (none: it can write
     all)."""
     out = []
     for change in changes:
-        reason = _refusal(change, replace_links, change.sha256_before)
+        reason = _refusal(change, replace_links, change.sha256_before, rewrite_read_only)
         if reason is not None:
             out.append(reason)
     return out
@@ -289,6 +447,7 @@ def preflight(changes: Sequence[PlannedWrite], replace_links: bool = False) -> l
 def _prepare_backup_dir(backup_dir: Path | None, roots: Sequence[str]) -> Path:
     if backup_dir is not None:
         backup = Path(os.path.abspath(backup_dir))
+        _clear_rolled_back(backup)
         if (backup / JOURNAL_NAME).exists() or (backup / JOURNAL_NAME).is_symlink():
             raise TransactionError(
                 f"{backup}: already holds the journal of an earlier --apply; give "
@@ -296,12 +455,10 @@ def _prepare_backup_dir(backup_dir: Path | None, roots: Sequence[str]) -> Path:
                 "undo that fix)")
     else:
         backup = default_backup_dir(roots)
-    real = os.path.realpath(backup)
-    for root in roots:
-        if inside(real, os.path.realpath(root)):
-            raise TransactionError(
-                f"{backup}: the backups would be inside the dataset {root}; "
-                "choose a --backup-dir outside it")
+    try:
+        check_write_target(backup, roots, (), what="the backup folder", folder=True)
+    except WriteRefused as exc:
+        raise TransactionError(str(exc)) from None
     base = backup
     for n in range(1, 1000):
         try:
@@ -312,28 +469,74 @@ def _prepare_backup_dir(backup_dir: Path | None, roots: Sequence[str]) -> Path:
     raise TransactionError(f"{base}: cannot make a new backup folder there")
 
 
+def _clear_rolled_back(backup: Path) -> None:
+    """A backup folder whose journal says "rolled back" (an apply that failed, say on a
+    full disk, and put every file back) records nothing that happened: its journal
+    and backups are removed, so the same --backup-dir can be used again."""
+    journal = backup / JOURNAL_NAME
+    try:
+        content = read_document(journal, JOURNAL_SCHEMA, "journal", "it is kept")
+    except TransactionError:
+        return
+    if content.get("status") != "rolled back":
+        return
+    files = backup / "files"
+    if files.is_dir() and not files.is_symlink():
+        import shutil
+
+        shutil.rmtree(files, ignore_errors=True)
+    with contextlib.suppress(OSError):
+        journal.unlink()
+
+
+@contextlib.contextmanager
+def _signals_noted() -> Iterator[list[int]]:
+    """While the block runs, SIGINT and SIGTERM are noted instead of stopping the
+    process at once, so that the apply stops between two files and puts back what it
+    wrote (a signal can arrive only in the main thread; elsewhere nothing changes)."""
+    got: list[int] = []
+    if threading.current_thread() is not threading.main_thread():
+        yield got
+        return
+
+    def note(signum: int, frame: Any) -> None:
+        got.append(signum)
+
+    previous = {sig: signal.signal(sig, note) for sig in (signal.SIGINT, signal.SIGTERM)}
+    try:
+        yield got
+    finally:
+        for sig, handler in previous.items():
+            signal.signal(sig, handler)
+
+
 def apply_changes(
     changes: Sequence[PlannedWrite], *, backup_dir: Path | None = None,
-    replace_links: bool = False,
+    replace_links: bool = False, rewrite_read_only: bool = False,
 ) -> ApplyResult:
     """Write the planned changes, all or none, after backing every file up.
 
-    Under the lock of every dataset root: every file is checked first (links,
-    read-only, changed since the plan, out of its dataset) and one refusal
-    writes nothing. Then each original is copied to the backup folder, the
-    journal (before and after SHA-256 of every file) is written once, and the
-    files are replaced atomically. When a write fails, the files already written
-    are put back from the backups.
+    Under the lock of every dataset root: an earlier apply that was killed is rolled
+    back first (:func:`recover`); every file is checked (links, read-only, changed
+    since the plan, out of its dataset) and one refusal writes nothing. Then each
+    original is copied to the backup folder (its owner and mode kept), the journal
+    (before and after SHA-256 of every file) is written and named in the lock files,
+    and the files are replaced atomically, each keeping its owner and mode. When a
+    write fails, or a SIGINT or SIGTERM arrives, the files already written are put
+    back (:class:`Interrupted` for a signal).
     """
     if not changes:
         return ApplyResult(None)
     roots = list(dict.fromkeys(c.root for c in changes))
-    with dataset_lock(roots):
-        refused = preflight(changes, replace_links)
+    with dataset_lock(roots) as locks:
+        recovered = [_finish_rollback(j) for j in dict.fromkeys(locks.interrupted.values())]
+        refused = preflight(changes, replace_links, rewrite_read_only)
         if refused:
-            return ApplyResult(None, refused=refused)
+            return ApplyResult(None, refused=refused, recovered=recovered)
         backup = _prepare_backup_dir(backup_dir, roots)
-        return _apply_checked(changes, roots, backup)
+        result = _apply_checked(changes, roots, backup, locks)
+        result.recovered = recovered
+        return result
 
 
 def _fsync_folder(folder: Path) -> None:
@@ -350,96 +553,126 @@ def _backup_name(roots: Sequence[str], root: str) -> str:
     return f"{roots.index(root) + 1}-{name}"
 
 
+def _save_backup(saved: Path, data: bytes, like: os.stat_result) -> None:
+    """The original's bytes at ``saved``, no more readable than the original: made
+    readable by this user only, then given the original's owner and permission bits."""
+    saved.parent.mkdir(parents=True, exist_ok=True)
+    fd = os.open(saved, os.O_WRONLY | os.O_CREAT | os.O_EXCL | getattr(os, "O_CLOEXEC", 0),
+                 0o600)
+    with os.fdopen(fd, "wb") as fh:
+        fh.write(data)
+        fh.flush()
+        os.fsync(fh.fileno())
+        with contextlib.suppress(PermissionError):
+            os.fchown(fh.fileno(), like.st_uid, like.st_gid)
+        os.fchmod(fh.fileno(), stat.S_IMODE(like.st_mode) & 0o777)
+
+
 def _apply_checked(changes: Sequence[PlannedWrite], roots: list[str],
-                   backup: Path) -> ApplyResult:
+                   backup: Path, locks: Locks) -> ApplyResult:
     journal_path = backup / JOURNAL_NAME
     token = secrets.token_hex(8)
+    ids = [root_identity(r) for r in roots]
     entries: list[JournalEntry] = []
-    for change in changes:
-        path = change.path
-        entry = JournalEntry(change.root, change.file, "created", None,
-                             sha256_of(change.after.encode("utf-8")))
-        if path.is_symlink():
-            entry.action, entry.link_target = "replaced-link", os.readlink(path)
-            entry.sha256_before = change.sha256_before
-        elif path.exists():
-            data = path.read_bytes()
-            if sha256_of(data) != change.sha256_before:
-                raise TransactionError(
-                    f"{change.file}: changed while the backups were being made; "
-                    "nothing was written, make a new plan")
-            rel = f"files/{_backup_name(roots, change.root)}/{change.file}"
-            saved = backup / rel
-            saved.parent.mkdir(parents=True, exist_ok=True)
-            with open(saved, "xb") as fh:
-                fh.write(data)
-                fh.flush()
-                os.fsync(fh.fileno())
-            entry.action, entry.backup = "modified", rel
-            entry.sha256_before = change.sha256_before
-            entry.mode = path.stat().st_mode & 0o7777
-        entries.append(entry)
-    _write_journal(journal_path, roots, token, entries, "prepared")
-    _fsync_folder(backup)
-    result = ApplyResult(journal_path)
-    done: list[JournalEntry] = []
-    for n, (change, entry) in enumerate(zip(changes, entries, strict=True)):
-        try:
-            _atomic_write(change.path, change.after.encode("utf-8"), entry.mode,
-                          _temp_name(token, n))
-        except OSError as exc:
-            _roll_back(exc, change.file, done, backup, token, roots, journal_path)
-        done.append(entry)
-        result.written.append(change.file)
-    for folder in {e.path.parent for e in entries}:
-        _fsync_folder(folder)
-    _write_journal(journal_path, roots, token, entries, "applied")
+    with _signals_noted() as signals:
+        for change in changes:
+            path = change.path
+            entry = JournalEntry(change.root, change.file, "created", None,
+                                 sha256_of(change.after.encode("utf-8")))
+            if path.is_symlink():
+                entry.action, entry.link_target = "replaced-link", os.readlink(path)
+                entry.sha256_before = change.sha256_before
+            elif path.exists():
+                st = path.stat()
+                data = path.read_bytes()
+                if sha256_of(data) != change.sha256_before:
+                    raise TransactionError(
+                        f"{change.file}: changed while the backups were being made; "
+                        "nothing was written, make a new plan")
+                rel = f"files/{_backup_name(roots, change.root)}/{change.file}"
+                _save_backup(backup / rel, data, st)
+                entry.action, entry.backup = "modified", rel
+                entry.sha256_before = change.sha256_before
+                entry.mode = stat.S_IMODE(st.st_mode)
+                entry.uid, entry.gid = st.st_uid, st.st_gid
+            entries.append(entry)
+            if signals:
+                raise Interrupted(
+                    f"interrupted ({signal.Signals(signals[0]).name}) while the backups were "
+                    f"made; nothing was written (backups in {backup})", signals[0])
+        _write_journal(journal_path, roots, token, entries, "prepared", ids)
+        _fsync_folder(backup)
+        locks.note_journal(journal_path)
+        result = ApplyResult(journal_path)
+        done: list[JournalEntry] = []
+        for n, (change, entry) in enumerate(zip(changes, entries, strict=True)):
+            try:
+                _atomic_write(change.path, change.after.encode("utf-8"), entry.like(),
+                              _temp_tag(token, n))
+            except OSError as exc:
+                _roll_back(exc, change.file, done, backup, token, roots, journal_path, ids)
+            done.append(entry)
+            result.written.append(change.file)
+            if signals and len(done) < len(entries):
+                _roll_back(signals[0], change.file, done, backup, token, roots, journal_path,
+                           ids)
+        for folder in {e.path.parent for e in entries}:
+            _fsync_folder(folder)
+        _write_journal(journal_path, roots, token, entries, "applied", ids)
+        locks.note_journal(None)
     return result
 
 
-def _roll_back(exc: OSError, file: str, done: list[JournalEntry], backup: Path, token: str,
-               roots: list[str], journal_path: Path) -> None:
-    stuck: list[str] = []
-    for n, entry in reversed(list(enumerate(done))):
-        try:
-            _restore(entry, backup, _temp_name(token, n))
-        except (OSError, TransactionError):
-            stuck.append(entry.file)
-    why = exc.strerror or str(exc)
+def _roll_back(cause: OSError | int, file: str, done: list[JournalEntry], backup: Path,
+               token: str, roots: list[str], journal_path: Path,
+               ids: Sequence[str | None]) -> None:
+    """Put back the files written so far (``cause``: the error writing ``file``, or the
+    signal that arrived after it) and raise."""
+    put_back, stuck = _put_back(done, backup, token)
+    if isinstance(cause, int):
+        what = f"interrupted ({signal.Signals(cause).name}) after {len(done)} files"
+    else:
+        what = f"cannot write {file} ({cause.strerror or cause})"
     if stuck:
         raise TransactionError(
-            f"cannot write {file} ({why}); {len(done) - len(stuck)} of the "
-            f"{len(done)} files written before it were put back, not "
-            f"{', '.join(stuck[:3])}: run slicetime fix --undo {journal_path}")
+            f"{what}; {len(put_back)} of the {len(done)} files written before it were put "
+            f"back, not {', '.join(stuck[:3])}: run slicetime fix --undo {journal_path}")
     with contextlib.suppress(OSError):
-        _write_journal(journal_path, roots, token, done, "rolled back")
-    raise TransactionError(
-        f"cannot write {file} ({why}); nothing is changed: the {len(done)} files "
-        "written before it were put back from the backups")
+        _write_journal(journal_path, roots, token, done, "rolled back", ids)
+    message = (f"{what}; nothing is changed: the {len(put_back)} files written were put back "
+               f"from the backups (journal {journal_path})")
+    if isinstance(cause, int):
+        raise Interrupted(message, cause)
+    raise TransactionError(message)
 
 
-def _temp_name(token: str, n: int) -> str:
-    return f".slicetime-{token}-{n}.tmp"
+def _temp_tag(token: str, n: int) -> str:
+    """The tag of the n-th entry's temporary file (:func:`readers.atomic.temp_path`), so
+    that a later run finds what an interrupted apply or undo left."""
+    return f"{token}-{n}"
 
 
 def _write_journal(path: Path, roots: Sequence[str], token: str,
-                   entries: Sequence[JournalEntry], status: str) -> None:
+                   entries: Sequence[JournalEntry], status: str,
+                   ids: Sequence[str | None] | None = None) -> None:
     content = {
         "format": JOURNAL_FORMAT,
         "tool": {"name": "slicetime", "version": __version__},
         "status": status,
         "roots": list(roots),
+        "root_ids": list(ids) if ids is not None else [None] * len(roots),
         "temp_token": token,
         "entries": [e.to_json() for e in entries],
     }
     _atomic_write(path, (json.dumps(content, indent=1) + "\n").encode("utf-8"), None)
 
 
-def _atomic_write(path: Path, data: bytes, mode: int | None, temp: str | None = None) -> None:
-    """Write ``data`` to ``path`` by rename; a link at ``path`` is replaced, never followed.
-    ``temp`` names the temporary file (so an interrupted apply or undo finds it)."""
-    write_atomic(path, data, temp=path.with_name(temp or f".slicetime-{secrets.token_hex(8)}.tmp"),
-                 mode=mode)
+def _atomic_write(path: Path, data: bytes, like: os.stat_result | None,
+                  tag: str | None = None) -> None:
+    """Write ``data`` to ``path`` by rename, with the owner and mode of ``like``; a link
+    at ``path`` is replaced, never followed. ``tag`` names the temporary file
+    (:func:`readers.atomic.temp_path`), so an interrupted apply or undo is found."""
+    write_atomic(path, data, temp=temp_path(path, tag), like=like)
 
 
 # --------------------------------------------------------------------------- undo
@@ -450,8 +683,9 @@ class UndoResult:
     restored: list[str] = field(default_factory=list)
     already: list[str] = field(default_factory=list)  # at their bytes before the fix
     never_written: list[str] = field(default_factory=list)  # the apply stopped before them
-    refused: list[str] = field(default_factory=list)
+    refused: list[str] = field(default_factory=list)  # "file: why", each not restored
     failure: str | None = None  # the undo stopped here; ``restored`` says what was done
+    recovered: list[str] = field(default_factory=list)  # other interrupted applies put right
 
 
 @dataclass
@@ -461,56 +695,113 @@ class _Journal:
     roots: list[str]
     token: str | None
     entries: list[JournalEntry]
+    root_ids: list[str | None] = field(default_factory=list)
+    #: entries that cannot be restored, with the reason (the others still are)
+    refused: list[str] = field(default_factory=list)
+    moved: bool = False  # a root is read at another place than the journal records
 
 
-def _read_journal(journal_path: Path) -> _Journal:
-    """A journal valid against its shipped schema, every entry then checked against the
-    file system; one entry out of bounds refuses it all."""
+def _place_roots(content: dict[str, Any], where: Path, at: Path | None) -> dict[str, str]:
+    """Where each root the journal names is now: as recorded, or ``at`` (the dataset
+    moved or copied), checked by its identity (:func:`root_identity`), not its path."""
+    roots: list[str] = content["roots"]
+    ids: list[str | None] = list(content.get("root_ids") or [])
+    ids = (ids + [None] * len(roots))[: len(roots)]
+    placed: dict[str, str] = {}
+    if at is not None:
+        new = os.path.abspath(at)
+        if not is_dataset_root(Path(new)):
+            raise TransactionError(f"{at}: not a dataset (no dataset_description.json or sub-* "
+                                   "folders); nothing was restored")
+        have = root_identity(new)
+        matching = [r for r, i in zip(roots, ids, strict=True) if i is not None and i == have]
+        if len(roots) == 1 and not matching and ids[0] is None:
+            matching = roots  # a journal from before identities: its only root
+        if len(matching) != 1:
+            raise TransactionError(
+                f"{at}: not the dataset this journal was made for (its "
+                "dataset_description.json differs from the one recorded); nothing was restored")
+        placed[matching[0]] = new
+    for root, ident in zip(roots, ids, strict=True):
+        if root in placed:
+            continue
+        if not is_dataset_root(Path(root)):
+            gone = "is not there any more" if not os.path.lexists(root) else "is not a dataset"
+            raise TransactionError(
+                f"{where}: the journal's dataset {root} {gone}; if the dataset was moved or "
+                f"copied, give its new place: slicetime fix --undo {where} NEW-PLACE; "
+                "nothing was restored")
+        if ident is not None and root_identity(root) != ident:
+            raise TransactionError(
+                f"{where}: {root} is no longer the dataset this journal was made for (its "
+                "dataset_description.json changed); nothing was restored")
+        placed[root] = root
+    return placed
+
+
+def _read_journal(journal_path: Path, at: Path | None = None) -> _Journal:
+    """A journal valid against its shipped schema, its roots placed
+    (:func:`_place_roots`), every entry then checked against the file system: an
+    entry out of bounds is refused with its reason, the others are kept."""
     content = read_document(journal_path, JOURNAL_SCHEMA, "journal", "nothing was restored")
-    where = journal_path
-
-    def damaged(why: str) -> TransactionError:
-        return TransactionError(f"{where}: {why}; the journal is refused, nothing was restored")
-
-    roots = [check_root(r, where, "journal") for r in content["roots"]]
+    placed = _place_roots(content, journal_path, at)
     real_backup = os.path.realpath(journal_path.parent)
     entries: list[JournalEntry] = []
+    refused: list[str] = []
     seen: set[tuple[str, str]] = set()
     for n, raw in enumerate(content["entries"], 1):
         root, file, action = raw["root"], raw["file"], raw["action"]
-        if root not in roots:
-            raise damaged(f"entry {n}: its root {root!r} is not one of the journal's roots")
+        shown = file if isinstance(file, str) and file else f"entry {n}"
+
+        def refuse(why: str, shown: str = shown, n: int = n) -> None:
+            refused.append(f"{shown}: not restored: {why} (journal entry {n})")
+
+        if root not in placed:
+            refuse(f"its root {root!r} is not one of the journal's roots")
+            continue
+        root = placed[root]
         problem = confinement_problem(root, file)
         if problem is not None:
-            raise damaged(f"entry {n}: {problem}")
+            refuse(problem)
+            continue
         if (root, file) in seen:
-            raise damaged(f"entry {n}: {file!r} is recorded twice")
+            refuse("it is recorded twice")
+            continue
         seen.add((root, file))
         before = raw["sha256_before"]
         if (action == "created") != (before is None):
-            raise damaged(f"entry {n}: a {action} file has "
-                          f"{'a' if before is not None else 'no'} sha256_before")
+            refuse(f"a {action} file with{'' if before is not None else 'out'} sha256_before")
+            continue
         entry = JournalEntry(root, file, action, before, raw["sha256_after"])
         if action == "modified":
             backup, mode = raw.get("backup"), raw.get("mode")
             if not backup:
-                raise damaged(f"entry {n}: the backup of {file!r} is not named")
+                refuse("its backup is not named")
+                continue
             pure = PurePosixPath(backup)
             real = os.path.realpath(journal_path.parent / backup)
             if (pure.is_absolute() or ".." in pure.parts or not pure.parts
-                    or pure.parts[0] != "files" or not inside(real, real_backup)):
-                raise damaged(f"entry {n}: the backup {backup!r} is outside the backup folder")
+                    or pure.parts[0] != "files" or not within(real, real_backup)):
+                refuse(f"its backup {backup!r} is outside the backup folder")
+                continue
             entry.backup, entry.mode = backup, mode
+            entry.uid, entry.gid = raw.get("uid"), raw.get("gid")
         if action == "replaced-link":
             target = raw.get("link_target")
-            if not target or os.path.isabs(target):
-                raise damaged(f"entry {n}: link_target is missing or absolute")
-            landing = os.path.normpath(os.path.join(os.path.dirname(entry.path), target))
-            if not inside(landing, os.path.normpath(root)):
-                raise damaged(f"entry {n}: the link target {target!r} points out of the dataset")
+            landing = (os.path.normpath(os.path.join(os.path.dirname(entry.path), target))
+                       if target else "")
+            if not target or os.path.isabs(target) or not within(landing,
+                                                                  os.path.normpath(root)):
+                refuse(f"the link it replaced pointed to {target!r}, out of the dataset; "
+                       "slicetime does not make links that leave a dataset (make it by "
+                       f"hand: ln -s {target} {file})")
+                continue
             entry.link_target = target
         entries.append(entry)
-    return _Journal(journal_path, content["status"], roots, content.get("temp_token"), entries)
+    return _Journal(journal_path, content["status"], list(placed.values()),
+                    content.get("temp_token"), entries,
+                    list(content.get("root_ids") or [None] * len(placed)), refused,
+                    moved=any(k != v for k, v in placed.items()))
 
 
 def _backup_bytes(entry: JournalEntry, backup: Path) -> bytes:
@@ -518,15 +809,19 @@ def _backup_bytes(entry: JournalEntry, backup: Path) -> bytes:
     (:class:`TransactionError` if not)."""
     assert entry.backup is not None
     path = backup / entry.backup
-    if path.is_symlink() or not path.is_file():
+    shown = str(path)
+    try:
+        fh, st = open_regular(path, shown, what="backup")
+        with fh:
+            data = read_bounded(fh, st.st_size, MAX_DOCUMENT_BYTES)
+    except ReadError:
         raise TransactionError(
             f"{path}: the backup of {entry.file} is missing (or not a regular "
-            "file); nothing was restored")
-    data = path.read_bytes()
-    if sha256_of(data) != entry.sha256_before:
+            "file)") from None
+    if os.path.islink(path) or sha256_of(data) != entry.sha256_before:
         raise TransactionError(
             f"{path}: the backup of {entry.file} does not match the SHA-256 the "
-            "journal recorded before the fix; nothing was restored")
+            "journal recorded before the fix")
     return data
 
 
@@ -547,52 +842,69 @@ def _state(entry: JournalEntry) -> str:
     return "other"
 
 
-def _restore(entry: JournalEntry, backup: Path, temp: str) -> None:
+def _restore(entry: JournalEntry, backup: Path, tag: str) -> None:
     path = entry.path
     if entry.action == "created":
         path.unlink()
     elif entry.action == "replaced-link":
         assert entry.link_target is not None
-        tmp = path.with_name(temp)
+        tmp = temp_path(path, tag)
         with contextlib.suppress(FileNotFoundError):
             os.unlink(tmp)
         os.symlink(entry.link_target, tmp)
         os.replace(tmp, path)
     else:
-        _atomic_write(path, _backup_bytes(entry, backup), entry.mode, temp)
+        _atomic_write(path, _backup_bytes(entry, backup), entry.like(), tag)
 
 
 def _remove_temps(entries: Sequence[JournalEntry], token: str | None) -> None:
-    """Remove what an interrupted apply may have left: its own temporary files only.
-
-    The temporary file of the n-th entry is ``.slicetime-<token>-<n>.tmp`` beside it.
-    """
+    """Remove what an interrupted apply or undo may have left: its own temporary files
+    only (tagged ``<token>-<n>`` for the n-th entry, by whichever process)."""
     if token is None:
         return
-    for n, entry in enumerate(entries):
-        tmp = entry.path.with_name(_temp_name(token, n))
-        with contextlib.suppress(OSError):
-            if tmp.is_symlink() or tmp.is_file():
-                tmp.unlink()
+    tags = {_temp_tag(token, n) for n in range(len(entries))}
+    for folder in {entry.path.parent for entry in entries}:
+        try:
+            names = os.listdir(folder)
+        except OSError:
+            continue
+        for name in names:
+            parts = temp_parts(name)
+            if parts is not None and parts[1] in tags:
+                with contextlib.suppress(OSError):
+                    os.unlink(folder / name)
 
 
-def undo(journal_path: Path) -> UndoResult:
-    """Restore every file a journal records, newest first, byte for byte.
+def undo(journal_path: Path, at: Path | None = None) -> UndoResult:
+    """Restore every file a journal records, newest first, byte for byte, with its
+    owner and mode.
 
-    The journal is checked whole before anything is written (every entry inside
-    a dataset root and the backup folder, every backup matching its recorded
-    SHA-256). Files already at their bytes from before the fix are reported, not
-    written; files changed since the fix are refused and left alone.
+    ``at``: where the dataset is now, when it was moved or copied (checked by its
+    identity, not its path). The journal is checked first (its schema; every entry
+    inside its dataset and the backup folder); an entry that is not, or whose backup
+    does not match its recorded SHA-256, is refused with its reason and the others
+    are restored. Files already at their bytes from before the fix are reported, not
+    written; files changed since the fix are refused and left alone. An apply that
+    was killed on these datasets is rolled back first.
     """
-    journal = _read_journal(Path(os.path.abspath(journal_path)))
+    journal = _read_journal(Path(os.path.abspath(journal_path)), at)
     backup = journal.path.parent
-    result = UndoResult()
-    with dataset_lock(journal.roots):
-        for entry in journal.entries:
-            if entry.action == "modified":
-                _backup_bytes(entry, backup)
-        todo: list[tuple[int, JournalEntry]] = []
+    result = UndoResult(refused=list(journal.refused))
+    with dataset_lock(journal.roots) as locks:
+        for other in dict.fromkeys(locks.interrupted.values()):
+            if os.path.abspath(other) != str(journal.path):
+                result.recovered.append(_finish_rollback(other))
+        usable: list[tuple[int, JournalEntry]] = []
         for n, entry in enumerate(journal.entries):
+            if entry.action == "modified":
+                try:
+                    _backup_bytes(entry, backup)
+                except TransactionError as exc:
+                    result.refused.append(f"{entry.file}: not restored: {exc}")
+                    continue
+            usable.append((n, entry))
+        todo: list[tuple[int, JournalEntry]] = []
+        for n, entry in usable:
             state = _state(entry)
             if state == "after":
                 todo.append((n, entry))
@@ -603,7 +915,7 @@ def undo(journal_path: Path) -> UndoResult:
                 result.refused.append(f"{entry.file}: changed since the fix; not restored")
         for n, entry in reversed(todo):
             try:
-                _restore(entry, backup, _temp_name(journal.token or secrets.token_hex(8), n))
+                _restore(entry, backup, _temp_tag(journal.token or secrets.token_hex(8), n))
             except (OSError, TransactionError) as exc:
                 why = exc.strerror if isinstance(exc, OSError) and exc.strerror else str(exc)
                 left = len(todo) - len(result.restored)
@@ -613,11 +925,9 @@ def undo(journal_path: Path) -> UndoResult:
                                   "again")
                 break
             result.restored.append(entry.file)
-        if journal.token is not None:
-            _remove_temps(journal.entries, journal.token)
-        if result.failure is None and not result.refused:
+        _remove_temps(journal.entries, journal.token)
+        if result.failure is None and not result.refused and not journal.moved:
             with contextlib.suppress(OSError):
                 _write_journal(journal.path, journal.roots, journal.token or "",
-                               journal.entries, "undone")
+                               journal.entries, "undone", journal.root_ids)
     return result
-

@@ -43,6 +43,9 @@ from slicetime.interfaces.commands.shared import (
 @click.option("--replace-links", is_flag=True,
               help="Replace a sidecar that is a symbolic link (annexed) by a regular file "
               "instead of refusing it.")
+@click.option("--rewrite-read-only", is_flag=True,
+              help="Rewrite sidecars that have no write permission (they stay read-only) "
+              "instead of refusing them.")
 @policy_option("Its expected protocols can rebuild missing timing.")
 @executor_options(default=JOBS_LIGHT)
 @source_options(purpose="Used to rebuild timing from sourcedata/.")
@@ -57,6 +60,7 @@ def fix(
     consolidate: tuple[str, ...],
     spread: tuple[str, ...],
     replace_links: bool,
+    rewrite_read_only: bool,
     policy_file: Path | None,
     jobs: int | None,
     scheduler: str | None,
@@ -74,9 +78,12 @@ def fix(
       slicetime fix ds/                    # show the planned changes as diffs
       slicetime fix ds/ --apply            # write them, with backups and a journal
       slicetime fix --undo ds-slicetime-backups/<UTC time>/journal.json
+      slicetime fix --undo JOURNAL ds-copy/  # the dataset moved or copied
     \b
     Backups go to <dataset>-slicetime-backups/<UTC time stamp>/ beside the
-    dataset (or --backup-dir); --apply prints the journal's exact path.
+    dataset (or --backup-dir); --apply prints the journal's exact path. Ctrl-C
+    during --apply puts back what was written; after a kill, the next fix or
+    undo does.
     """
     from slicetime.interfaces.safe_text import xml_safe
     from slicetime.interfaces.terminal import make_console, render_fix_plan
@@ -85,9 +92,10 @@ def fix(
     console = make_console()
     try:
         if undo_journal is not None:
-            if paths or do_apply:
-                raise UserError("--undo takes only the journal, no PATH and no --apply")
-            _fix_undo(undo_journal)
+            if len(paths) > 1 or do_apply:
+                raise UserError("--undo takes the journal and at most one PATH (the dataset, "
+                                "when it was moved or copied), and no --apply")
+            _fix_undo(undo_journal, paths[0] if paths else None)
         if do_apply and plan_file is not None:
             if paths:
                 raise UserError("--apply --plan FILE applies the saved plan; give no PATH")
@@ -96,12 +104,14 @@ def fix(
             if not paths:
                 raise UserError("fix: give the dataset or runs to repair (PATH...)")
             from slicetime.pipelines.audit import check_paths_hold_runs
-            from slicetime.readers.dataset import check_writes
+            from slicetime.readers.dataset import check_writes, find_root
 
             check_writes(list(paths), {"--plan": plan_file if not do_apply else None},
                          folders={"--backup-dir": backup_dir},
                          inputs=[policy_file, source_map])
             check_paths_hold_runs(list(paths))
+            for line in fixing.recover([str(find_root(p)) for p in paths]):
+                click.echo(f"slicetime: {xml_safe(line)}", err=True)
             with run_executor(jobs, scheduler) as executor:
                 plan = fixing.plan_fix(list(paths), per_run=per_run, policy_file=policy_file,
                                        executor=executor, consolidate=consolidate,
@@ -109,7 +119,8 @@ def fix(
                                        source=source_settings(source_check, source_map))
             # the dry run names what --apply would refuse (one refusal writes nothing)
             plan.notes.extend(f"--apply would refuse it, and then write nothing: {line}"
-                              for line in fixing.preflight(plan, replace_links))
+                              for line in fixing.preflight(plan, replace_links,
+                                                           rewrite_read_only))
             render_fix_plan(plan, console)
         if not do_apply:
             if plan_file is not None:
@@ -119,12 +130,19 @@ def fix(
             sys.exit(1 if plan.changes or plan.unplanned else 0)
         if not plan.changes:
             sys.exit(1 if plan.unplanned else 0)
-        applied = fixing.apply_plan(plan, backup_dir=backup_dir, replace_links=replace_links)
+        applied = fixing.apply_plan(plan, backup_dir=backup_dir, replace_links=replace_links,
+                                    rewrite_read_only=rewrite_read_only)
+    except fixing.Interrupted as exc:  # the files written were put back
+        click.echo(f"slicetime: {xml_safe(str(exc))}", err=True)
+        sys.exit(exc.exit_code)
     except fixing.TransactionError as exc:  # FixError and the transaction's refusals
         raise UserError(xml_safe(str(exc))) from None
     except OSError as exc:
-        raise UserError(xml_safe(f"cannot write the backups or files ({exc.strerror or exc}); "
-                                 "choose a writable --backup-dir")) from None
+        where = f"{exc.filename}: " if exc.filename else ""
+        raise UserError(xml_safe(f"{where}cannot write ({exc.strerror or exc}); nothing in "
+                                 "the dataset was changed")) from None
+    for line in applied.recovered:
+        click.echo(f"slicetime: {xml_safe(line)}", err=True)
     for name in applied.written:
         click.echo(f"written   {xml_safe(name)}")
     for line in applied.refused:
@@ -146,16 +164,19 @@ def fix(
     sys.exit(1 if applied.refused or plan.unplanned else 0)
 
 
-def _fix_undo(journal: Path) -> None:
-    """``fix --undo JOURNAL``: restore, then say exactly what was and was not done."""
+def _fix_undo(journal: Path, at: Path | None) -> None:
+    """``fix --undo JOURNAL [PATH]``: restore (the dataset at PATH when it was moved or
+    copied), then say exactly what was and was not done."""
     from slicetime.interfaces.safe_text import xml_safe
     from slicetime.pipelines import fix as fixing
 
     try:
-        undone = fixing.undo(journal)
+        undone = fixing.undo(journal, at)
     except OSError as exc:
         raise UserError(xml_safe(f"{journal}: cannot undo ({exc.strerror or exc}); nothing "
                                  "was restored")) from None
+    for line in undone.recovered:
+        click.echo(f"slicetime: {xml_safe(line)}", err=True)
     for name in undone.restored:
         click.echo(f"restored  {xml_safe(name)}")
     for name in undone.already:
