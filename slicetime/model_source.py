@@ -68,7 +68,8 @@ class SourceEvidence:
 
     ``status`` ``matched`` carries ``series``; ``no-match`` and ``ambiguous``
     carry the ``candidates`` looked at and the ``reason``; ``unreadable``
-    carries ``error``, the finding for the bad file. ``affine`` (RAS, from the
+    carries ``error``, the finding for the bad file; ``skipped`` names the files
+    beside a matched series that could not be read. ``affine`` (RAS, from the
     NIfTI header) and ``shape`` give the run's slice centres.
     """
 
@@ -80,6 +81,9 @@ class SourceEvidence:
     error: Finding | None = None
     affine: tuple[tuple[float, ...], ...] | None = None
     shape: tuple[int, ...] | None = None
+    #: files in the matched series' folders that could not be read (one message each):
+    #: the series was judged on its readable files
+    skipped: tuple[str, ...] = ()
 
 
 __all__ = ["Layout", "MatchStatus", "SeriesTiming", "SourceEvidence"]

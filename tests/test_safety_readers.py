@@ -8,11 +8,14 @@ from __future__ import annotations
 import json
 from pathlib import Path
 
+import pytest
 from click.testing import CliRunner
 
 from slicetime.interfaces.cli import cli
+from slicetime.pipelines.audit import audit_paths
 from tests.helpers_bids import tree_hashes
 from tests.test_adversarial_fix import ms_dataset
+from tests.test_dicom_source import resting_tree
 
 BOM = b"\xef\xbb\xbf"  # the UTF-8 encoding of U+FEFF (Unicode standard, from memory)
 
@@ -38,3 +41,22 @@ def test_a_sidecar_with_a_bom_is_read_noted_and_repaired_with_the_mark_kept(
     assert after.startswith(BOM + b"{") and after != original
     assert json.loads(after[len(BOM):])["SliceTiming"][1] == 1.0  # 1000 ms -> 1 s
     assert {k: v for k, v in tree_hashes(ds).items() if not k.endswith("_bold.json")} == others
+
+
+@pytest.mark.parametrize("stray", [b"", b"notes taken at the scanner\n"])
+def test_a_stray_file_first_in_a_series_folder_hides_nothing(
+    tmp_path: Path, stray: bytes
+) -> None:
+    # nibabel's mosaic: its private header lists the slice times (as test_dicom_source)
+    root, _run, _truth = resting_tree(tmp_path, [i * 0.06 for i in range(32)])
+    folder = root / "sourcedata" / "sub-01" / "rest"
+    (folder / "000.dcm").write_bytes(stray)  # sorted before the series' files
+    before = tree_hashes(root)
+    result = audit_paths([root])
+    found = {f.code: f for run in result.runs for f in run.findings
+             if f.code.startswith("source/")}
+    # the readable files still give their verdict: the times differ (an error, exit 1)
+    assert found["source/times-differ"].severity.value == "error"
+    assert "000.dcm" in found["source/files-skipped"].message
+    assert found["source/files-skipped"].severity.value == "note"
+    assert tree_hashes(root) == before

@@ -159,6 +159,7 @@ class SourceIndex:
         self._groups: dict[str, list[SeriesGroup]] = {}
         self._series: dict[int, SeriesTiming | ReadError] = {}
         self._has_base: bool | None = None
+        self._problems: dict[str, list[ReadError]] = {}
 
     def shown(self, path: str) -> str:
         try:
@@ -185,7 +186,8 @@ class SourceIndex:
             found: list[SeriesGroup] = []
             if os.path.exists(path):
                 try:
-                    found, _ = catalogue(path, self.shown, recursive=recursive)
+                    found, problems = catalogue(path, self.shown, recursive=recursive)
+                    self._problems[key] = problems
                 except OSError:
                     found = []
             found.sort(key=lambda g: natural(g.objects[0].shown(self.root)))
@@ -206,6 +208,16 @@ class SourceIndex:
 
     def name(self, group: SeriesGroup) -> str:
         return group_name(group, self.root)
+
+    def skipped(self, group: SeriesGroup) -> tuple[str, ...]:
+        """The files in the group's folders that could not be read (their messages)."""
+        folders = {self.shown(f) for f in group.folders}
+        out: list[str] = []
+        for problems in self._problems.values():
+            for problem in problems:
+                if problem.file is not None and os.path.dirname(problem.file) in folders:
+                    out.append(problem.message)
+        return tuple(dict.fromkeys(out))
 
     def series(self, group: SeriesGroup) -> SeriesTiming | ReadError:
         if id(group) not in self._series:
@@ -261,7 +273,8 @@ def _read_matched(index: SourceIndex, group: SeriesGroup, how: str,
     if isinstance(series, ReadError):
         return SourceEvidence("unreadable", how, error=series.to_finding(), affine=affine,
                               shape=shape, candidates=(index.name(group),))
-    return SourceEvidence("matched", how, series=series, affine=affine, shape=shape)
+    return SourceEvidence("matched", how, series=series, affine=affine, shape=shape,
+                          skipped=index.skipped(group))
 
 
 def _fitting(index: SourceIndex, groups: list[SeriesGroup], record: RunRecord,

@@ -118,6 +118,29 @@ def unreadable(record: RunRecord) -> Iterator[Hit]:
 
 
 @run_rule(
+    "source/files-skipped",
+    checked="source",
+    title="files beside the matched source series could not be read",
+    severity=N,
+    rationale=(
+        "A series folder can hold files that are not readable DICOM (an empty file, a note, "
+        "a truncated copy). They are left out and the series is compared on its readable "
+        "files, so the verdict on the run still stands; this note names what was left out, "
+        "in case a slice of the series is among them."
+    ),
+    fix="Remove the stray files from the series folder, or copy the series again.",
+)
+def files_skipped(record: RunRecord) -> Iterator[Hit]:
+    evidence = record.source
+    if evidence is not None and evidence.status == "matched" and evidence.skipped:
+        first = evidence.skipped[0]
+        more = f" (and {len(evidence.skipped) - 1} more)" if len(evidence.skipped) > 1 else ""
+        yield Hit(f"{count(len(evidence.skipped), 'file')} beside the source series could "
+                  f"not be read and were left out: {first}{more}",
+                  evidence={"skipped": list(evidence.skipped)})
+
+
+@run_rule(
     "source/geometry-differs",
     timing_in_doubt=True,
     checked="source",
