@@ -77,6 +77,32 @@ def applied(tmp_path: Path) -> tuple[Path, Path, dict[str, str]]:
     return ds, journal_in(result.output), before
 
 
+def killed_apply(ds: Path, backups: Path, *, at: int) -> None:
+    """``fix --apply`` in its own process, killed (SIGKILL) while writing the ``at``-th
+    file of the dataset, after that file's temporary copy exists."""
+    script = f"""
+import os, signal
+from pathlib import Path
+from slicetime.pipelines import fix, transaction
+from slicetime.readers.atomic import temp_path
+real = transaction._atomic_write
+count = [0]
+def killing(path, data, like, tag=None):
+    if path.name.startswith("sub-"):
+        count[0] += 1
+        if count[0] == {at}:
+            temp_path(path, tag).write_bytes(data[:10])
+            os.kill(os.getpid(), signal.SIGKILL)
+    real(path, data, like, tag)
+transaction._atomic_write = killing
+plan = fix.plan_fix([Path({str(ds)!r})])
+fix.apply_plan(plan, backup_dir=Path({str(backups)!r}))
+"""
+    proc = subprocess.run([sys.executable, "-c", script], cwd=Path(__file__).parents[1],
+                          capture_output=True, timeout=120)
+    assert proc.returncode == -signal.SIGKILL, proc.stderr.decode()
+
+
 def edit_journal(journal: Path, change: Any) -> None:
     content = json.loads(journal.read_text())
     change(content)
@@ -356,27 +382,7 @@ def test_undo_after_kill_during_apply_restores_and_names_unwritten_files(
     backups = tmp_path / "backups"
     # a separate process applies the fix and is killed (SIGKILL) while writing the second
     # dataset file, after its temporary file exists
-    script = f"""
-import os, signal
-from pathlib import Path
-from slicetime.pipelines import fix, transaction
-from slicetime.readers.atomic import temp_path
-real = transaction._atomic_write
-count = [0]
-def killing(path, data, like, tag=None):
-    if path.name.startswith("sub-"):
-        count[0] += 1
-        if count[0] == 2:
-            temp_path(path, tag).write_bytes(data[:10])
-            os.kill(os.getpid(), signal.SIGKILL)
-    real(path, data, like, tag)
-transaction._atomic_write = killing
-plan = fix.plan_fix([Path({str(ds)!r})])
-fix.apply_plan(plan, backup_dir=Path({str(backups)!r}))
-"""
-    proc = subprocess.run([sys.executable, "-c", script], cwd=Path(__file__).parents[1],
-                          capture_output=True, timeout=120)
-    assert proc.returncode == -signal.SIGKILL, proc.stderr.decode()
+    killed_apply(ds, backups, at=2)
     assert any(p.name.endswith(".tmp") for p in ds.rglob(".*"))  # the crash left a temp
     assert tree_hashes(ds) != before
     result = fix("--undo", backups / "journal.json")

@@ -186,14 +186,20 @@ def test_two_mixed_batches_keep_every_dataset_link(ds: Path, tmp_path: Path) -> 
 # ------------------------------------------------------------------ item 3 (correct)
 
 
-def test_a_link_inside_out_is_never_written_or_removed_through(
-    ds: Path, tmp_path: Path
-) -> None:
+def _out_linking_into_an_earlier_output(ds: Path, tmp_path: Path) -> tuple[Path, Path]:
+    """(earlier output folder, new --out whose sub-01 is a link into the earlier one)."""
     earlier = tmp_path / "earlier"
     assert correct_json(ds, "--out", earlier)[0] == 0
     out = tmp_path / "out"
     out.mkdir()
-    os.symlink(earlier / "sub-01", out / "sub-01")  # leads into the earlier output folder
+    os.symlink(earlier / "sub-01", out / "sub-01")
+    return earlier, out
+
+
+def test_a_link_inside_out_is_never_written_or_removed_through(
+    ds: Path, tmp_path: Path
+) -> None:
+    earlier, out = _out_linking_into_an_earlier_output(ds, tmp_path)
     victim = tmp_path / "elsewhere"
     (victim / "empty").mkdir(parents=True)
     os.symlink(victim, out / "sub-02")
@@ -213,11 +219,7 @@ def test_a_link_inside_out_is_never_written_or_removed_through(
 def test_a_stale_output_reached_through_a_link_is_not_removed(
     ds: Path, tmp_path: Path
 ) -> None:
-    earlier = tmp_path / "earlier"
-    assert correct_json(ds, "--out", earlier)[0] == 0
-    out = tmp_path / "out"
-    out.mkdir()
-    os.symlink(earlier / "sub-01", out / "sub-01")
+    earlier, out = _out_linking_into_an_earlier_output(ds, tmp_path)
     # the run is now refused (SliceTiming removed), which would withdraw its stale output
     sidecar = ds / sidecar_name(REL)
     content = json.loads(sidecar.read_text())

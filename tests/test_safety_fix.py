@@ -15,8 +15,6 @@ import os
 import shutil
 import signal
 import stat
-import subprocess
-import sys
 from pathlib import Path
 from typing import Any
 
@@ -26,7 +24,7 @@ from click.testing import CliRunner
 from slicetime.interfaces.cli import cli
 from slicetime.pipelines import transaction
 from tests.helpers_bids import symlink, tree_hashes
-from tests.test_adversarial_fix import OWN, fix, journal_in, ms_dataset
+from tests.test_adversarial_fix import OWN, fix, journal_in, killed_apply, ms_dataset
 
 REPO = Path(__file__).resolve().parents[1]
 SUBJECTS = tuple(f"{i:02d}" for i in range(1, 7))
@@ -77,37 +75,11 @@ def test_a_signal_during_apply_puts_back_every_file_written(
     assert signal.getsignal(signal.SIGINT) is signal.default_int_handler  # handlers restored
 
 
-def _killed_apply(ds: Path, backups: Path) -> None:
-    """``fix --apply`` in its own process, killed (SIGKILL) while writing the third file
-    of the dataset, after that file's temporary copy exists."""
-    script = f"""
-import os, signal
-from pathlib import Path
-from slicetime.pipelines import fix, transaction
-from slicetime.readers.atomic import temp_path
-real = transaction._atomic_write
-count = [0]
-def killing(path, data, like, tag=None):
-    if path.name.startswith("sub-"):
-        count[0] += 1
-        if count[0] == 3:
-            temp_path(path, tag).write_bytes(data[:10])
-            os.kill(os.getpid(), signal.SIGKILL)
-    real(path, data, like, tag)
-transaction._atomic_write = killing
-plan = fix.plan_fix([Path({str(ds)!r})])
-fix.apply_plan(plan, backup_dir=Path({str(backups)!r}))
-"""
-    proc = subprocess.run([sys.executable, "-c", script], cwd=REPO, capture_output=True,
-                          timeout=120)
-    assert proc.returncode == -signal.SIGKILL, proc.stderr.decode()
-
-
 def test_after_kill_9_the_next_fix_finishes_the_rollback(tmp_path: Path) -> None:
     ds = ms_dataset(tmp_path / "ds", subjects=SUBJECTS)
     before = tree_hashes(ds)
     backups = tmp_path / "backups"
-    _killed_apply(ds, backups)
+    killed_apply(ds, backups, at=3)
     assert tree_hashes(ds) != before and leftovers(ds)  # two files, a temp, the lock
     result = fix_stderr(ds)  # a dry run: it finishes the rollback first
     assert result.exit_code == 1
@@ -124,7 +96,7 @@ def test_after_kill_9_undo_finishes_the_rollback(tmp_path: Path) -> None:
     ds = ms_dataset(tmp_path / "ds", subjects=SUBJECTS)
     before = tree_hashes(ds)
     backups = tmp_path / "backups"
-    _killed_apply(ds, backups)
+    killed_apply(ds, backups, at=3)
     result = fix("--undo", backups / "journal.json")
     assert result.exit_code == 0, result.output
     assert result.output.count("restored  ") == 2
