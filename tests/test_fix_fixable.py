@@ -135,9 +135,9 @@ def test_fix_plans_or_says_why_not(code: str, tmp_path: Path) -> None:
 
 
 def test_a_subject_folder_linked_from_outside_is_not_planned(tmp_path: Path) -> None:
-    # the audit walks the linked subject as part of the dataset and calls the unit fixable;
-    # fix never writes outside the root, so it says so and exits 1 (it said "nothing to
-    # fix" and exited 0)
+    # the linked subject, given as a path of its own (a walk of the root does not follow a
+    # link out of the dataset), is audited and the unit called fixable; fix never writes
+    # outside the root, so it says so and exits 1 (it said "nothing to fix" and exited 0)
     outside = tmp_path / "elsewhere"
     write_run(outside, "sub-02/func/sub-02_task-x_bold.nii.gz", shape=SHAPE,
               sidecar={"TaskName": "x", "RepetitionTime": 2.0,
@@ -145,14 +145,15 @@ def test_a_subject_folder_linked_from_outside_is_not_planned(tmp_path: Path) -> 
     root = tmp_path / "ds"
     write_description(root)
     os.symlink(outside / "sub-02", root / "sub-02")
-    (run,) = audit_paths([root]).runs
+    given = [root, root / "sub-02"]
+    (run,) = audit_paths(given).runs
     assert "timing/units-ms" in {f.code for f in run.findings}
-    plan = plan_fix([root])
+    plan = plan_fix(given)
     assert plan.changes == []
     (item,) = plan.unplanned
     assert (item.run, item.code) == (run.record.path, "timing/units-ms")
     assert "link" in item.reason and "root" in item.reason
     for args in ([], ["--apply", "--backup-dir", str(tmp_path / "b")]):
-        result = CliRunner().invoke(cli, ["fix", str(root), *args])
+        result = CliRunner().invoke(cli, ["fix", *map(str, given), *args])
         assert result.exit_code == 1, result.output
         assert "timing/units-ms not planned" in result.output

@@ -279,7 +279,9 @@ def plan_fix(
     """
     roots = sorted({find_root(Path(p)) for p in paths}, key=str)
     targets = [Path(os.path.realpath(p)) for p in paths]
-    audit = audit_paths(list(roots), policy_file=policy_file, executor=executor, source=source)
+    # the given paths too: one behind a link out of its dataset is walked only when given
+    audit = audit_paths([*roots, *(Path(p) for p in paths)], policy_file=policy_file,
+                        executor=executor, source=source)
     policies = _policies(roots, policy_file)
     plan = FixPlan(audit=audit)
     runs: list[tuple[RunRecord, list[Finding]]] = [(r.record, r.findings) for r in audit.runs]

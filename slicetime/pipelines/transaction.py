@@ -784,8 +784,12 @@ def _read_journal(journal_path: Path, at: Path | None = None) -> _Journal:
                     or pure.parts[0] != "files" or not within(real, real_backup)):
                 refuse(f"its backup {backup!r} is outside the backup folder")
                 continue
+            owner = (mode, raw.get("uid"), raw.get("gid"))
+            if not all(v is None or (type(v) is int and 0 <= v < 1 << 32) for v in owner):
+                refuse("its mode, uid or gid is not a whole number")
+                continue
             entry.backup, entry.mode = backup, mode
-            entry.uid, entry.gid = raw.get("uid"), raw.get("gid")
+            entry.uid, entry.gid = owner[1], owner[2]
         if action == "replaced-link":
             target = raw.get("link_target")
             landing = (os.path.normpath(os.path.join(os.path.dirname(entry.path), target))
