@@ -312,6 +312,131 @@ def test_the_walks_listings_equal_the_sidecar_index_listing_its_own(tmp_path: Pa
         assert _RootFinder().find_folder(folder) == root
 
 
+def _sidecar_tree(root: Path, seed: int) -> list[Path]:
+    """A dataset whose sidecars name varied entities at every level (ambiguous levels,
+    suffixes that differ, the run's own sidecar, names that do not parse); the runs."""
+    import random
+
+    rng = random.Random(seed)
+    tasks, accs = ("a", "b"), ("x", "y", None)
+    folders = [root]
+    runs: list[Path] = []
+    (root / "dataset_description.json").parent.mkdir(parents=True, exist_ok=True)
+    (root / "dataset_description.json").write_text('{"Name": "x"}')
+    for sub in ("01", "02"):
+        for ses in ("1", "2"):
+            func = root / f"sub-{sub}" / f"ses-{ses}" / "func"
+            func.mkdir(parents=True)
+            folders += [func.parent.parent, func.parent, func]
+            for task in tasks:
+                for run in ("1", "2"):
+                    acc = rng.choice(accs)
+                    parts = [f"sub-{sub}", f"ses-{ses}", f"task-{task}",
+                             *([f"acq-{acc}"] if acc else []), f"run-{run}"]
+                    stem = "_".join([*parts, rng.choice(["bold", "bold", "cbv"])])
+                    (func / f"{stem}.nii.gz").write_bytes(b"")
+                    runs.append(func / f"{stem}.nii.gz")
+                    if rng.random() < 0.7:
+                        (func / f"{stem}.json").write_text(json.dumps({"EchoTime": 0.03}))
+    for folder in folders:
+        for _ in range(rng.randint(0, 4)):
+            keys = rng.sample(["task-a", "task-b", "acq-x", "acq-y", "run-1", "run-2"],
+                              rng.randint(0, 2))
+            name = "_".join([*keys, rng.choice(["bold", "cbv", "sbref"])]) + ".json"
+            value = rng.choice([1.5, 2.0, 2.5])
+            (folder / name).write_text(json.dumps({"RepetitionTime": value, "TaskName": "t"}))
+        if rng.random() < 0.2:
+            (folder / "not a bids name.json").write_text("{}")
+    return runs
+
+
+@pytest.mark.parametrize("seed", range(6))
+def test_remembered_level_choices_equal_the_choice_made_for_each_run(
+    tmp_path: Path, seed: int
+) -> None:
+    # the inheritance principle (BIDS specification, "The Inheritance Principle"): one
+    # index remembers, per folder, which sidecars applied to a run with the same suffix
+    # and the same values of the entities the folder's sidecars name; the answer must be
+    # the one an index that never saw another run gives
+    from slicetime.readers.inheritance import SidecarIndex
+
+    root = tmp_path / "ds"
+    runs = _sidecar_tree(root, seed)
+    shared = SidecarIndex(root)
+    for run in runs * 2:  # the second pass is answered from what was remembered
+        remembered, fresh = shared.resolve(run, root), SidecarIndex(root).resolve(run, root)
+        assert remembered.chain == fresh.chain, run
+        assert remembered.levels == fresh.levels
+        assert remembered.metadata == fresh.metadata
+        assert remembered.sources == fresh.sources
+        assert [repr(f) for f in remembered.findings] == [repr(f) for f in fresh.findings]
+        assert shared.applicable(run, root) == SidecarIndex(root).applicable(run, root)
+
+
+def _record_asking_first(root: Path, path: Path) -> Any:
+    """``build_record`` as it was: ask ``content_missing`` before reading the header."""
+    from slicetime.model import Finding
+    from slicetime.readers.errors import ReadError
+    from slicetime.readers.inheritance import SidecarIndex
+    from slicetime.readers.nifti import read_header
+    from slicetime.readers.record import assemble_record, content_missing, relative_display
+
+    display = relative_display(path, root)
+    findings: list[Finding] = []
+    header = None
+    missing = content_missing(path)
+    if missing is None:
+        try:
+            header, more = read_header(path, display)
+            findings.extend(more)
+        except ReadError as exc:
+            findings.append(exc.to_finding())
+    resolution = SidecarIndex(root).resolve(path, root)
+    findings.extend(resolution.findings)
+    return assemble_record(display=display, abs_path=str(path), root=str(root),
+                           header=header, metadata=resolution.metadata,
+                           sources=resolution.sources, chain=resolution.chain,
+                           findings=findings, overridden=resolution.overridden,
+                           content_missing=missing)
+
+
+def test_header_read_first_gives_the_record_of_asking_for_missing_content_first(
+    tmp_path: Path,
+) -> None:
+    # build_record reads the header before it asks whether the content is absent (one
+    # stat less per run): every kind of file gives the record the old order gave
+    import gzip
+    import os
+
+    import nibabel as nib
+
+    from slicetime.readers.record import build_record
+
+    root = tmp_path / "ds"
+    func = root / "sub-01" / "func"
+    func.mkdir(parents=True)
+    img = nib.Nifti1Image(np.zeros((4, 4, 3, 5), np.int16), np.eye(4))  # source: nibabel
+    img.header.set_zooms((3.0, 3.0, 3.0, 2.0))
+    files = {
+        "good": gzip.compress(img.to_bytes()),
+        "empty": b"",
+        "garbage": b"not an image at all" * 30,
+        "short": gzip.compress(img.to_bytes())[:40],
+    }
+    for name, content in files.items():
+        (func / f"sub-01_task-{name}_bold.nii.gz").write_bytes(content)
+    annex = root / ".git" / "annex" / "objects" / "Xx" / "Yy" / "KEY" / "KEY"
+    os.symlink(annex, func / "sub-01_task-annexed_bold.nii.gz")
+    os.symlink(func / "gone", func / "sub-01_task-dangling_bold.nii.gz")
+    (func / "sub-01_task-folder_bold.nii.gz").mkdir()
+    (func / "sub-01_task-good_bold.json").write_text('{"SliceTiming": [0, 0.5, 1.0]}')
+    for path in sorted(func.iterdir()):
+        if path.name.endswith(".json"):
+            continue
+        new, old = build_record(root, path), _record_asking_first(root, path)
+        assert repr(new) == repr(old), path.name
+
+
 # --------------------------------------------------------------------------- correction
 # The correction's time-axis engine (``engines.align.align_slice`` with
 # ``interpolate.shift_columns``) stands in for the row engine (``interpolate.resample``,

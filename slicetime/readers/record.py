@@ -79,12 +79,16 @@ def build_record(root: Path, path: Path, index: SidecarIndex | None = None) -> R
     display = relative_display(path, root)
     findings: list[Finding] = []
     header: HeaderInfo | None = None
-    missing = content_missing(path)
-    if missing is None:
-        try:
-            header, header_findings = read_header(path, display)
-            findings.extend(header_findings)
-        except ReadError as exc:
+    missing: str | None = None
+    # the header first: a file it reads is neither absent nor empty, so only a file it
+    # cannot read costs the extra look of content_missing (whose answer then replaces
+    # the read error; the same outcome as asking it first, one stat less per run)
+    try:
+        header, header_findings = read_header(path, display)
+        findings.extend(header_findings)
+    except ReadError as exc:
+        missing = content_missing(path)
+        if missing is None:
             findings.append(exc.to_finding())
     resolution = index.resolve(path, root)
     findings.extend(resolution.findings)
