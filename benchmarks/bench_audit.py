@@ -12,7 +12,12 @@ the outside (wall time and peak resident memory from ``/usr/bin/time``, or from
 * the bare-scan floor (``SCAN``): an ``os.scandir`` walk that reads each header's
   first bytes and ``json.loads`` each sidecar, nothing else; every slicetime
   figure is also given as a multiple of it (``over_scan``), measured in the same
-  rounds.
+  rounds, in wall time and in CPU time (``over_scan_cpu``: user + system seconds
+  of the command and every process it started, from ``getrusage``; on a shared
+  machine the load of others lengthens wall times, not CPU times);
+* ``json@1``, ``text@1``: the same reports with ``--jobs 1``, so the default's
+  choice of workers is compared with one worker in the same rounds
+  (``over_one_worker``: below 1 the default won).
 
 Two layouts: ``shared`` (the timing in top-level sidecars, each run a small
 sidecar of its own) and ``per-run`` (every run's own sidecar holds all of its
@@ -47,6 +52,7 @@ import sys
 import tempfile
 import time
 from pathlib import Path
+from typing import Any
 
 import nibabel as nib
 import numpy as np
@@ -56,7 +62,7 @@ sys.path.insert(0, str(REPO))
 
 from slicetime.schemes.generate import Protocol, slice_timing  # noqa: E402
 
-FORMATS = ("json", "jsonl", "text", "html")
+FORMATS = ("json", "jsonl", "text", "html", "json@1", "text@1")
 TIME = "/usr/bin/time" if os.access("/usr/bin/time", os.X_OK) else None
 
 BASELINE = r'''
@@ -155,13 +161,27 @@ def _command() -> list[str]:
     return [str(script)] if script.exists() else [sys.executable, "-m", "slicetime"]
 
 
+#: CPU seconds (user + system) of the last command measured, workers included
+LAST_CPU = [0.0]
+
+
+def _children_cpu() -> float:
+    usage = resource.getrusage(resource.RUSAGE_CHILDREN)
+    return usage.ru_utime + usage.ru_stime
+
+
 def measure(command: list[str], stdout: Path) -> tuple[float, float]:
-    """(wall seconds, peak resident MiB) of one command, stdout to a file."""
+    """(wall seconds, peak resident MiB) of one command, stdout to a file; its CPU
+    seconds (every process it started included: they are waited for) in ``LAST_CPU``.
+    CPU time is what the ratios are given in beside wall time: on a shared machine
+    other people's work lengthens the wall time of whatever runs, not its CPU time."""
+    cpu = _children_cpu()
     if TIME:
         stats = stdout.with_suffix(".time")
         with open(stdout, "wb") as out:
             subprocess.run([TIME, "-f", "%e %M", "-o", str(stats), *command], stdout=out,
                            stderr=subprocess.DEVNULL, check=False)
+        LAST_CPU[0] = _children_cpu() - cpu
         wall, kib = stats.read_text().split()[-2:]
         return float(wall), int(kib) / 1024
     before = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
@@ -169,6 +189,7 @@ def measure(command: list[str], stdout: Path) -> tuple[float, float]:
     with open(stdout, "wb") as out:
         subprocess.run(command, stdout=out, stderr=subprocess.DEVNULL, check=False)
     wall = time.perf_counter() - start
+    LAST_CPU[0] = _children_cpu() - cpu
     # ru_maxrss of children is the largest so far: exact only when this one is larger
     peak = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
     return wall, (peak if peak > before else float("nan")) / 1024
@@ -176,6 +197,9 @@ def measure(command: list[str], stdout: Path) -> tuple[float, float]:
 
 def slicetime_command(root: Path, fmt: str, work: Path) -> tuple[list[str], Path]:
     base = [*_command(), "audit", str(root), "--fail-on", "never", "--no-progress"]
+    if "@" in fmt:  # FORMAT@JOBS: the same report with --jobs given (against the default)
+        fmt, jobs = fmt.split("@")
+        base += ["--jobs", jobs]
     if fmt == "html":
         return [*base, "--html", str(work / "report.html"), "--quiet"], work / "stdout.txt"
     return [*base, "--format", fmt], work / f"report.{fmt}"
@@ -213,13 +237,24 @@ def single_run(work: Path, repeat: int) -> dict[str, object]:
                                    sorted(top.items(), key=lambda kv: -kv[1])[:8]}}
 
 
+def _shown(key: str, v: dict[str, Any]) -> str:
+    """One figure of a row as the progress line prints it."""
+    return (f"{key} {v['wall_s']:.2f} s {v['peak_mib']:.0f} MiB"
+            + (f" ×{v['ratio']}" if "ratio" in v else "")
+            + (f" {v['over_scan']}× scan (CPU {v['over_scan_cpu']}×)" if "over_scan" in v
+               else "")
+            + (f" {v['over_one_worker']}× one worker" if "over_one_worker" in v else ""))
+
+
 def main() -> int:
     parser = argparse.ArgumentParser()
     parser.add_argument("--sizes", default="2000,20000")
     parser.add_argument("--huge", action="store_true",
                         help="also 100,000 runs (per-run layout): several minutes")
     parser.add_argument("--layouts", default="shared,per-run")
-    parser.add_argument("--formats", default=",".join(FORMATS))
+    parser.add_argument("--formats", default=",".join(FORMATS),
+                        help="report formats; FORMAT@N also runs it with --jobs N (json@1, "
+                        "text@1 give the default's ratio to one worker)")
     parser.add_argument("--baseline-max", type=int, default=2000)
     parser.add_argument("--repeat", type=int, default=3,
                         help="measurements at the smallest size; the median is reported")
@@ -257,33 +292,47 @@ def main() -> int:
             made = time.perf_counter() - started
             repeat = max(1, args.repeat) if n == min(sizes) else 1
             times: dict[str, list[float]] = {}
+            cpus: dict[str, list[float]] = {}
             peaks: dict[str, float] = {}
-            for _ in range(repeat):
-                wall, peak = measure([sys.executable, str(scan_script), str(root)],
-                                     work / "scan.json")
-                times.setdefault("scan", []).append(wall)
-                peaks["scan"] = max(peaks.get("scan", 0.0), peak)
+
+            def take(key: str, command: list[str], out: Path, times: dict[str, list[float]]
+                    = times, cpus: dict[str, list[float]] = cpus,
+                    peaks: dict[str, float] = peaks) -> None:
+                wall, peak = measure(command, out)
+                times.setdefault(key, []).append(wall)
+                cpus.setdefault(key, []).append(LAST_CPU[0])
+                peaks[key] = max(peaks.get(key, 0.0), peak)
+
+            for _ in range(repeat):  # alternating rounds: each figure meets the same load
+                take("scan", [sys.executable, str(scan_script), str(root)], work / "scan.json")
                 if n <= args.baseline_max:
-                    wall, peak = measure([sys.executable, str(baseline_script), str(root)],
-                                         work / "baseline.json")
-                    times.setdefault("baseline", []).append(wall)
-                    peaks["baseline"] = max(peaks.get("baseline", 0.0), peak)
+                    take("baseline", [sys.executable, str(baseline_script), str(root)],
+                        work / "baseline.json")
                 for fmt in formats:
-                    command, out = slicetime_command(root, fmt, work)
-                    wall, peak = measure(command, out)
-                    times.setdefault(fmt, []).append(wall)
-                    peaks[fmt] = max(peaks.get(fmt, 0.0), peak)
+                    take(fmt, *slicetime_command(root, fmt, work))
             row: dict[str, object] = {"runs": n, "layout": layout, "repeat": repeat,
-                                      "generate_s": round(made, 2)}
+                                      "generate_s": round(made, 2),
+                                      "load_average": round(os.getloadavg()[0], 1)}
             base = statistics.median(times["baseline"]) if "baseline" in times else None
+            base_cpu = statistics.median(cpus["baseline"]) if "baseline" in cpus else None
             floor = statistics.median(times["scan"])
+            floor_cpu = statistics.median(cpus["scan"])
             for key, values in times.items():
                 wall = statistics.median(values)
+                cpu = statistics.median(cpus[key])
                 mine = key not in ("baseline", "scan")
-                row[key] = {"wall_s": round(wall, 3), "peak_mib": round(peaks[key], 1),
+                row[key] = {"wall_s": round(wall, 3), "cpu_s": round(cpu, 3),
+                            "peak_mib": round(peaks[key], 1),
                             "ms_per_run": round(wall / n * 1000, 3),
                             **({"ratio": round(base / wall, 1)} if base and mine else {}),
-                            **({"over_scan": round(wall / floor, 2)} if mine else {})}
+                            **({"ratio_cpu": round(base_cpu / cpu, 1)}
+                               if base_cpu and mine else {}),
+                            **({"over_scan": round(wall / floor, 2),
+                                "over_scan_cpu": round(cpu / floor_cpu, 2)} if mine else {})}
+                single = f"{key.split('@')[0]}@1"
+                if mine and "@" not in key and single in times:  # the default's workers
+                    row[key]["over_one_worker"] = round(  # type: ignore[index]
+                        wall / statistics.median(times[single]), 2)
             if n == min(sizes):
                 row["in_process_s"] = round(statistics.median(
                     in_process(root) for _ in range(repeat)), 3)
@@ -293,11 +342,7 @@ def main() -> int:
             if html.exists():
                 row["html_mib"] = round(html.stat().st_size / 2**20, 2)
             rows.append(row)
-            shown = " | ".join(
-                f"{k} {v['wall_s']:.2f} s {v['peak_mib']:.0f} MiB"  # type: ignore[index]
-                + (f" ×{v['ratio']}" if "ratio" in v else "")  # type: ignore[operator]
-                + (f" {v['over_scan']}× scan" if "over_scan" in v else "")  # type: ignore[operator]
-                for k, v in row.items() if isinstance(v, dict))
+            shown = " | ".join(_shown(k, v) for k, v in row.items() if isinstance(v, dict))
             print(f"{n:>7} runs, {layout:<7}: {shown}", flush=True)
             shutil.rmtree(root, ignore_errors=True)
     finally:
