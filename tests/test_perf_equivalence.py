@@ -263,6 +263,19 @@ def test_overflow_check_never_misses_an_overflow(mantissa: int, exponent: int) -
 
 
 @settings(max_examples=300, deadline=None)
+@given(text=st.text(alphabet=st.sampled_from("0123456789eE+-.9 \"a\u00e9\u0669\u2079"),
+                    max_size=40) | st.text(max_size=40),
+       literal=st.sampled_from(["", "1e400", "9" * 301, "1e99", "E+999"]))
+def test_overflow_check_on_utf8_bytes_equals_the_check_on_text(text: str, literal: str) -> None:
+    # the sidecar parser asks on the bytes it read; UTF-8 (RFC 3629) encodes every ASCII
+    # character as itself and no byte of a longer sequence as an ASCII byte, so the
+    # answer must be the one for the decoded text (non-ASCII digits included)
+    text = text + literal
+    raw = text.encode("utf-8", "surrogatepass")
+    assert sidecar._may_overflow(raw) == sidecar._may_overflow(text)
+
+
+@settings(max_examples=300, deadline=None)
 @given(value=json_values, literals=st.lists(number_literals, max_size=4))
 def test_fast_sidecar_parse_equals_the_general_parse(value: Any, literals: list[str]) -> None:
     # the fast paths (C float parsing when no literal can overflow; strings copied as they

@@ -353,7 +353,7 @@ def parse_sidecar_bytes(raw: bytes, shown: str) -> tuple[dict[str, Any] | None, 
     parser = _parser()
     try:
         data, constants, duplicates = parser.parse(
-            text, exact_floats=_may_overflow(text)
+            text, exact_floats=_may_overflow(raw)
         )
     except json.JSONDecodeError as exc:
         return None, [
@@ -506,7 +506,7 @@ _DIGITS_AS_NINES = str.maketrans("012345678", "999999999")
 _OVERFLOW_MARKS = ("e999", "E999", "e+999", "E+999", "9" * 300)
 
 
-def _may_overflow(text: str) -> bool:
+def _may_overflow(text: str | bytes) -> bool:
     """False only when no float literal in ``text`` can overflow to infinity.
 
     The largest double is about 1.8e308, so an overflowing literal has an exponent of
@@ -514,9 +514,20 @@ def _may_overflow(text: str) -> bool:
     both show as one of :data:`_OVERFLOW_MARKS` (a few fast substring searches; a
     regular expression with the same meaning costs several times more). False
     positives (``e999`` inside a string) only select the exact, slower parse.
+
+    The UTF-8 bytes of the text give the same answer (every character of the marks is
+    one ASCII byte, and no byte of a longer UTF-8 sequence is ASCII), several times
+    faster: ``bytes.translate`` is a table lookup per byte.
     """
-    nines = text.translate(_DIGITS_AS_NINES)
-    return any(mark in nines for mark in _OVERFLOW_MARKS)
+    if isinstance(text, bytes):
+        nines = text.translate(_BYTE_DIGITS_AS_NINES)
+        return any(mark in nines for mark in _BYTE_OVERFLOW_MARKS)
+    nines_text = text.translate(_DIGITS_AS_NINES)
+    return any(mark in nines_text for mark in _OVERFLOW_MARKS)
+
+
+_BYTE_DIGITS_AS_NINES = bytes.maketrans(b"012345678", b"999999999")
+_BYTE_OVERFLOW_MARKS = tuple(mark.encode("ascii") for mark in _OVERFLOW_MARKS)
 
 _DISCARDED = "\x00discarded"  # marker: the value sat in an overridden duplicate key
 
