@@ -371,6 +371,7 @@ def test_small_results_use_the_second_cpu_only_for_large_audits(
     from slicetime.pipelines import executor as executor_module
 
     monkeypatch.setattr(executor_module, "available_cpus", lambda: 2)
+    monkeypatch.setattr(executor_module, "load_average", lambda: 0.1)  # an idle machine
     pooled = make_executor(None, None, light=True, small_results=True)
     assert isinstance(pooled, ProcessExecutor) and pooled.jobs == 2
     assert pooled.serial_below == executor_module.SMALL_RESULTS_PARALLEL_FROM
@@ -379,6 +380,20 @@ def test_small_results_use_the_second_cpu_only_for_large_audits(
     assert set(few) == {os.getpid()}  # fewer than the threshold: in this process
     monkeypatch.setattr(executor_module, "available_cpus", lambda: 1)
     assert type(make_executor(None, None, light=True, small_results=True)) is Executor
+
+
+def test_a_busy_two_cpu_machine_audits_in_one_process(monkeypatch: pytest.MonkeyPatch) -> None:
+    # measured (README, Performance; benchmarks/bench_audit.py json@1): with the other
+    # CPU busy, a second worker lost to one; --jobs still asks for workers
+    from slicetime.pipelines import executor as executor_module
+
+    monkeypatch.setattr(executor_module, "available_cpus", lambda: 2)
+    monkeypatch.setattr(executor_module, "load_average", lambda: 1.4)
+    assert type(make_executor(None, None, light=True, small_results=True)) is Executor
+    assert isinstance(make_executor(2, None, light=True, small_results=True), ProcessExecutor)
+    monkeypatch.setattr(executor_module, "load_average", lambda: 0.3)
+    assert isinstance(make_executor(None, None, light=True, small_results=True),
+                      ProcessExecutor)
 
 
 def _pid(items: Sequence[int]) -> list[int]:

@@ -450,9 +450,23 @@ class DaskExecutor(Executor):
 #: worker saves (README, Performance)
 LIGHT_WORK_SERIAL_CPUS = 2
 #: ... unless the workers send back little (``small_results``: a streamed audit's report
-#: lines and run facts) and there are at least this many runs: then the workers win
-#: (2,000 runs on 2 CPUs: about a quarter less time) and below it starting them costs more
+#: lines and run facts), there are at least this many runs, and the machine has a CPU to
+#: spare (``IDLE_LOAD_FOR_WORKERS``): then the workers can win (2,000 runs on 2 CPUs with
+#: a load average of 1.3: about a quarter less time); below it starting them costs more
 SMALL_RESULTS_PARALLEL_FROM = 500
+#: on 2 CPUs, the second worker only pays when the other CPU is free: with the 1-minute
+#: load average above this (other work running), one process. Measured with a load of
+#: 4 to 6 on 2 CPUs (README, Performance): two workers took 1.08 and 1.17 times as long
+#: as one for 2,000 runs (json, text), 0.91 and 1.04 for 20,000, and 15-25 % more CPU
+IDLE_LOAD_FOR_WORKERS = 0.5
+
+
+def load_average() -> float:
+    """The 1-minute load average (0 where the system does not tell)."""
+    try:
+        return os.getloadavg()[0]
+    except (AttributeError, OSError):
+        return 0.0
 
 
 def make_executor(jobs: int | None, scheduler: str | None, *, light: bool = False,
@@ -461,8 +475,8 @@ def make_executor(jobs: int | None, scheduler: str | None, *, light: bool = Fals
     seconds, default 10); else ``--jobs`` local processes. Without ``--jobs``: the
     CPUs available, except for ``light`` work on machines with at most
     ``LIGHT_WORK_SERIAL_CPUS`` CPUs, which runs in this process, or, when the work
-    sends back ``small_results``, in this process below ``SMALL_RESULTS_PARALLEL_FROM``
-    runs."""
+    sends back ``small_results`` and the machine is idle (``IDLE_LOAD_FOR_WORKERS``),
+    in this process below ``SMALL_RESULTS_PARALLEL_FROM`` runs."""
     if scheduler:
         timeout = float(os.environ.get("SLICETIME_CONNECT_TIMEOUT", "10"))
         return DaskExecutor(scheduler, timeout=timeout)
@@ -472,8 +486,9 @@ def make_executor(jobs: int | None, scheduler: str | None, *, light: bool = Fals
     if cpus == 1:
         return Executor()
     if light and cpus <= LIGHT_WORK_SERIAL_CPUS:
+        spare = load_average() <= IDLE_LOAD_FOR_WORKERS
         return (ProcessExecutor(cpus, serial_below=SMALL_RESULTS_PARALLEL_FROM)
-                if small_results else Executor())
+                if small_results and spare else Executor())
     return ProcessExecutor(cpus)
 
 

@@ -80,7 +80,8 @@ def walking_options(verb: str) -> Callable[[F], F]:
 #: what ``--jobs`` defaults to (``pipelines.executor.make_executor``): header-only work
 #: (audit, fix) and work that reads image data (correct)
 JOBS_LIGHT = "the CPUs available; one on machines with 2 or fewer"
-JOBS_AUDIT = "the CPUs available; on machines with 2 or fewer, one below 500 runs"
+JOBS_AUDIT = ("the CPUs available; on machines with 2 or fewer, one unless the machine is "
+              "idle and there are 500 runs or more")
 JOBS_HEAVY = "the CPUs available; memory grows with each"
 
 
