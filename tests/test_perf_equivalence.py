@@ -386,6 +386,25 @@ def test_remembered_level_choices_equal_the_choice_made_for_each_run(
         assert shared.applicable(run, root) == SidecarIndex(root).applicable(run, root)
 
 
+entity_maps = st.dictionaries(st.sampled_from(["sub", "ses", "task", "acq", "run"]),
+                              st.sampled_from(["01", "02", "a", "b", ""]) | st.none(),
+                              max_size=4)
+
+
+@settings(max_examples=400, deadline=None)
+@given(mine=entity_maps, theirs=entity_maps, suffixes=st.sampled_from([("bold", "bold"),
+                                                                     ("bold", "cbv")]))
+def test_applies_to_equals_the_pair_by_pair_subset_test(
+    mine: dict[str, str], theirs: dict[str, str], suffixes: tuple[str, str]
+) -> None:
+    # the inheritance principle (BIDS specification): a sidecar applies when its suffix
+    # is the data file's and each of its entities has the same value in the data file
+    sidecar_name = ParsedName(entities=mine, suffix=suffixes[0], extension=".json")
+    data_name = ParsedName(entities=theirs, suffix=suffixes[1], extension=".nii.gz")
+    general = suffixes[0] == suffixes[1] and all(theirs.get(k) == v for k, v in mine.items())
+    assert sidecar_name.applies_to(data_name) == general
+
+
 def _record_asking_first(root: Path, path: Path) -> Any:
     """``build_record`` as it was: ask ``content_missing`` before reading the header."""
     from slicetime.model import Finding
