@@ -7,8 +7,16 @@ rounded and written (model layer: no I/O, used by every layer above).
   (:func:`json_float`), so float noise such as ``0.44999999999999996`` never
   reaches a file a person reads.
 * Screens (terminal, HTML, messages): fixed-point, never scientific notation,
-  trailing zeros dropped; durations below one second in milliseconds with at
-  most 2 decimals (:func:`duration`), seconds with at most 5 (the same 10 µs).
+  trailing zeros dropped. Times have one resolution everywhere, 10 µs: seconds
+  with at most 5 decimals (:func:`secs`), milliseconds with at most 2 (:func:`ms`),
+  durations below one second in milliseconds (:func:`duration`); a drawing
+  rounds to the same 5 decimals, so the HTML, ``correct``, ``show`` and the
+  screens built from sidecars print the same digits. A value whose unit is in
+  doubt (milliseconds where seconds are due) is written as a bare number and
+  never called seconds (:func:`as_written`). Whole numbers of 10,000 and more are
+  grouped by thousands (:func:`grouped`), byte counts carry their unit
+  (:func:`size_words`: ``109,400 bytes``), and any other float is written with at most
+  6 significant digits (:func:`plain`): no raw float reaches a screen.
 """
 
 from __future__ import annotations
@@ -106,6 +114,35 @@ def plain(value: object, significant: int = 6) -> str:
     return fixed(round(value, decimals), decimals)
 
 
+def grouped(value: int) -> str:
+    """A whole number for people: thousands separated by commas from 10,000 on
+    (``109,400``; ``2048`` stays as it is, as four-digit numbers usually are)."""
+    if isinstance(value, bool) or not isinstance(value, int):
+        return plain(value)
+    return f"{value:,}" if abs(value) >= 10_000 else str(value)
+
+
+def size_words(n_bytes: int) -> str:
+    """A byte count for people: grouped, with its unit (``109,400 bytes``, ``1 byte``)."""
+    return f"{grouped(n_bytes)} {'byte' if n_bytes == 1 else 'bytes'}"
+
+
+def amount(n_bytes: float) -> str:
+    """A large byte count in binary units, one decimal (``1.5 GiB``); below 1 KiB exact."""
+    for unit, scale in (("TiB", 1 << 40), ("GiB", 1 << 30), ("MiB", 1 << 20), ("KiB", 1 << 10)):
+        if n_bytes >= scale:
+            return f"{n_bytes / scale:.1f} {unit}"
+    return size_words(int(n_bytes))
+
+
+def as_written(value: float) -> str:
+    """A number from a file whose unit is in doubt, as the file has it (at most 6
+    significant digits, 2 decimals from 100 on, never scientific, no unit)."""
+    if isinstance(value, float) and _finite(value) and abs(value) >= 100:
+        return fixed(value, 2)
+    return plain(value)
+
+
 def ms(seconds: float) -> str:
     """Seconds shown as milliseconds: ``138.89 ms`` (at most 2 decimals)."""
     return f"{fixed(seconds * 1000.0, SCREEN_MS_DECIMALS)} ms"
@@ -123,5 +160,5 @@ def duration(seconds: float) -> str:
     return secs(seconds)
 
 
-__all__ = ["duration", "fixed", "json_float", "json_time", "json_times", "ms", "plain",
-           "secs", "tidy_json"]
+__all__ = ["amount", "as_written", "duration", "fixed", "grouped", "json_float", "json_time",
+           "json_times", "ms", "plain", "secs", "size_words", "tidy_json"]

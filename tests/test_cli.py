@@ -165,13 +165,13 @@ def test_a_former_code_keeps_working_in_policies_and_explain(tmp_path: Path) -> 
     write_run(ds, "sub-01/func/sub-01_task-x_bold.nii.gz", tr=3.0,
               sidecar={"RepetitionTime": 2.0, "SliceTiming": [0.0, 0.5, 1.0]})
     (ds / "slicetime-policy.toml").write_text(
-        'version = 1\n[severity]\n"header/tr-mismatch" = "note"\n')
+        'version = 1\n[levels]\n"header/tr-mismatch" = "note"\n')
     result = CliRunner().invoke(cli, ["audit", str(ds), "--format", "json"])
     findings = json.loads(result.stdout)["runs"][0]["findings"]
     found = [f for f in findings if f["code"] == "header/tr-disagrees"]
     assert found and found[0]["severity"] == "note"
     (ds / "slicetime-policy.toml").write_text(
-        'version = 1\n[[ignore]]\ncodes = ["header/tr-mismatch"]\nreason = "scanner quirk"\n')
+        'version = 1\n[[waive]]\nfindings = ["header/tr-mismatch"]\nreason = "scanner quirk"\n')
     result = CliRunner().invoke(cli, ["audit", str(ds), "--format", "json"])
     report = json.loads(result.stdout)
     assert not [f for f in report["runs"][0]["findings"] if f["code"] == "header/tr-disagrees"]
@@ -184,7 +184,7 @@ def test_policy_is_discovered_applied_and_counted(dataset: Path) -> None:
     (dataset / "slicetime-policy.toml").write_text(
         'version = 1\n'
         '[[protocols]]\nmatch = { task = "tap" }\nrepetition_time = 2.5\n'
-        '[[ignore]]\npaths = ["sub-02/**"]\ncodes = ["timing/*"]\n'
+        '[[waive]]\nruns = ["sub-02/**"]\nfindings = ["timing/*"]\n'
         'reason = "sub-02 is re-exported next week"\n')
     code, out, _ = run_cli("audit", str(dataset), "--format", "json")
     report = json.loads(out)

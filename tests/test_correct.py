@@ -600,7 +600,7 @@ def test_the_lab_policy_decides_what_blocks(dataset: Path, tmp_path: Path) -> No
     # policy; the audit gate then lets the run through without --force
     run_with_header_tr(dataset, 3.0)
     policy = tmp_path / "policy.toml"
-    policy.write_text('version = 1\n\n[severity]\n"header/tr-disagrees" = "warning"\n')
+    policy.write_text('version = 1\n\n[levels]\n"header/tr-disagrees" = "warning"\n')
     out = tmp_path / "out"
     assert run_cli("correct", dataset, "--out", out).exit_code == 1
     result = run_cli("correct", dataset, "--out", out, "--policy", policy)

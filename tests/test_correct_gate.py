@@ -171,7 +171,7 @@ def test_a_direction_flipped_against_its_task_is_refused_until_the_lab_accepts_i
     refused = next(r for r in doc["runs"] if r["path"] == flipped)
     assert "dataset/outlier-scheme" in {f["code"] for f in refused["blocking_findings"]}
     (ds / "slicetime-policy.toml").write_text(
-        'version = 1\n[[accept]]\ncodes = ["dataset/outlier-scheme"]\npaths = ["sub-03/**"]\n'
+        'version = 1\n[[accept]]\nfindings = ["dataset/outlier-scheme"]\nruns = ["sub-03/**"]\n'
         'reason = "sub-03 was scanned head first supine on the other coil"\n')
     code, doc, _ = correct_json(ds, "--out", out)
     assert code == 0, doc
@@ -185,10 +185,10 @@ def test_a_direction_flipped_against_its_task_is_refused_until_the_lab_accepts_i
 def test_a_policy_may_accept_only_doubting_codes(ds: Path, tmp_path: Path) -> None:
     build_run(ds, REL, interleaved(8))
     policy = tmp_path / "policy.toml"
-    policy.write_text('version = 1\n[[accept]]\ncodes = ["timing/uneven"]\nreason = "x"\n')
+    policy.write_text('version = 1\n[[accept]]\nfindings = ["timing/uneven"]\nreason = "x"\n')
     code, _, err = correct_json(ds, "--out", tmp_path / "out", "--policy", policy)
-    assert code == 2 and "accept[0].codes[0]" in err and "doubt" in err
-    policy.write_text('version = 1\n[[accept]]\ncodes = ["source/reversed"]\n')
+    assert code == 2 and "accept[0].findings[0]" in err and "doubt" in err
+    policy.write_text('version = 1\n[[accept]]\nfindings = ["source/reversed"]\n')
     code, _, err = correct_json(ds, "--out", tmp_path / "out", "--policy", policy)
     assert code == 2 and "accept[0].reason: missing" in err and "recorded" in err
     code, _, err = correct_json(ds, "--out", tmp_path / "out", "--accept", "tr/missing")
@@ -250,7 +250,7 @@ def test_a_doubt_the_policy_ignores_still_needs_accepting(ds: Path, tmp_path: Pa
     # an [[ignore]] hides a finding from the reports; it does not make the timing true
     build_run(ds, REL, SEQUENTIAL, slice_code=2, slice_duration=0.25)
     (ds / "slicetime-policy.toml").write_text(
-        'version = 1\n[[ignore]]\ncodes = ["header/*"]\nreason = "headers are converter guesses"\n')
+        'version = 1\n[[waive]]\nfindings = ["header/*"]\nreason = "headers are converter guesses"\n')
     code, doc, _ = correct_json(ds, "--out", tmp_path / "out")
     assert code == 1
     assert doc["runs"][0]["blocking_findings"][0]["code"] == "header/slice-code-mismatch"

@@ -75,7 +75,7 @@ def lab(tmp_path: Path) -> Path:
         'version = 1\n'
         '[[protocols]]\nmatch = { task = "tap" }\nslices = 30\n'
         '[[protocols]]\nmatch = { task = "tap", sub = "04" }\nrepetition_time = 2.5\nslices = 30\n'
-        '[[ignore]]\npaths = ["sub-06/**"]\ncodes = ["file/bad-run-name"]\n'
+        '[[waive]]\nruns = ["sub-06/**"]\nfindings = ["file/bad-run-name"]\n'
         'reason = "renamed next week"\n',
         encoding="utf-8",
     )

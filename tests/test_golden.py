@@ -188,8 +188,8 @@ def make_varied_dataset(root: Path, n_runs: int) -> None:
         "[[protocols]]\nmatch = { task = \"a\" }\nrepetition_time = 2.0\nslices = 40\n"
         "scheme = \"interleaved\"\n\n"
         "[[protocols]]\nmatch = { task = \"b\", sub = \"00007\" }\nrepetition_time = 2.5\n\n"
-        "[severity]\n\"inherit/timing-override\" = \"warning\"\n\n"
-        "[[ignore]]\npaths = [\"sub-0001*/**\"]\ncodes = [\"header/*\"]\n"
+        "[levels]\n\"inherit/timing-override\" = \"warning\"\n\n"
+        "[[waive]]\nruns = [\"sub-0001*/**\"]\nfindings = [\"header/*\"]\n"
         "reason = \"an invented pilot group\"\n"
     )
     # a subject whose folder overrides the inherited timing of task b

@@ -58,13 +58,13 @@ scheme = "multiband ×4, interleaved ascending from 0"
 slice_encoding_direction = "k"
 tolerance = 0.003
 
-[severity]
+[levels]
 "scheme/multiband-undeclared" = "warning"
 "timing/missing" = "error"
 
-[[ignore]]
-paths = ["sub-pilot*/**"]
-codes = ["*"]
+[[waive]]
+runs = ["sub-pilot*/**"]
+findings = ["*"]
 reason = "pilot sessions use a test protocol"
 """
 
@@ -100,9 +100,37 @@ def test_valid_file_is_found_at_the_root_and_loaded(tmp_path: Path) -> None:
     assert protocol.multiband_factor == doc["protocols"][0]["multiband_factor"]
     assert protocol.scheme == doc["protocols"][0]["scheme"]
     assert protocol.slice_encoding_direction == "k"
-    assert {k: v.value for k, v in policy.severity.items()} == doc["severity"]
-    assert policy.ignores[0].reason == doc["ignore"][0]["reason"]
+    assert {k: v.value for k, v in policy.severity.items()} == doc["levels"]
+    assert policy.ignores[0].reason == doc["waive"][0]["reason"]
     assert policy.file == POLICY_FILENAME
+    assert policy.notices == ()
+
+
+def test_former_key_names_are_read_with_a_note_naming_the_new_ones(tmp_path: Path) -> None:
+    # the same policy written with the former names ([severity], [[ignore]] with codes
+    # and paths) means the same thing, and the note names every new key
+    former = (EXAMPLE.replace("[levels]", "[severity]").replace("[[waive]]", "[[ignore]]")
+              .replace("findings = [", "codes = [").replace("runs = [", "paths = ["))
+    assert former != EXAMPLE
+    old, new = load_text(former), load_text(EXAMPLE)
+    assert old.severity == new.severity and old.ignores == new.ignores
+    (notice,) = old.notices
+    for words in ("[severity] → [levels]", "[[ignore]] → [[waive]]", "codes → findings",
+                  "paths → runs"):
+        assert words in notice
+    # both spellings at once: refused, naming the one to keep
+    error = invalid('version = 1\n[severity]\n"timing/missing" = "note"\n'
+                    '[levels]\n"timing/missing" = "note"\n')
+    assert error.field == "severity" and "[levels]" in error.message
+    # the note reaches the report as a finding about the policy file
+    from slicetime.policy.loading import FORMER_KEYS_CODE, root_policies
+
+    assert RULES[FORMER_KEYS_CODE].severity is Severity.NOTE
+    (tmp_path / POLICY_FILENAME).write_text(former, encoding="utf-8")
+    problems: list[Any] = []
+    root_policies([tmp_path], None, RULES, problems)
+    assert [(f.code, f.file) for f in problems] == [(FORMER_KEYS_CODE, POLICY_FILENAME)]
+    assert "[[waive]]" in problems[0].message
 
 
 def test_shipped_schema_is_draft_2020_12_and_accepts_the_example() -> None:
@@ -178,21 +206,21 @@ def test_unknown_keys_are_typos_not_silently_ignored() -> None:
 
 
 def test_unknown_code_and_bad_severity() -> None:
-    error = invalid('version = 1\n[severity]\n"timing/mising" = "error"\n')
-    assert error.field == 'severity."timing/mising"' and "timing/missing" in error.message
-    error = invalid('version = 1\n[severity]\n"nosuch/*" = "note"\n')
+    error = invalid('version = 1\n[levels]\n"timing/mising" = "error"\n')
+    assert error.field == 'levels."timing/mising"' and "timing/missing" in error.message
+    error = invalid('version = 1\n[levels]\n"nosuch/*" = "note"\n')
     assert "matches no finding code" in error.message
-    error = invalid('version = 1\n[severity]\n"timing/missing" = "fatal"\n')
+    error = invalid('version = 1\n[levels]\n"timing/missing" = "fatal"\n')
     assert "error, warning, note" in error.message
-    error = invalid('version = 1\n[[ignore]]\ncodes = ["header/nope"]\nreason = "x"\n')
-    assert error.field == "ignore[0].codes[0]"
+    error = invalid('version = 1\n[[waive]]\nfindings = ["header/nope"]\nreason = "x"\n')
+    assert error.field == "waive[0].findings[0]"
 
 
 def test_ignore_needs_a_reason() -> None:
-    error = invalid('version = 1\n[[ignore]]\ncodes = ["*"]\npaths = ["sub-01/**"]\n')
-    assert error.field == "ignore[0].reason"
-    error = invalid('version = 1\n[[ignore]]\ncodes = ["*"]\nreason = "   "\n')
-    assert error.field == "ignore[0].reason"
+    error = invalid('version = 1\n[[waive]]\nfindings = ["*"]\nruns = ["sub-01/**"]\n')
+    assert error.field == "waive[0].reason"
+    error = invalid('version = 1\n[[waive]]\nfindings = ["*"]\nreason = "   "\n')
+    assert error.field == "waive[0].reason"
 
 
 @pytest.mark.parametrize(
@@ -207,9 +235,9 @@ def test_ignore_needs_a_reason() -> None:
 )
 def test_bad_path_patterns(pattern: str, why: str) -> None:
     error = invalid(
-        f'version = 1\n[[ignore]]\ncodes = ["*"]\npaths = ["{pattern}"]\nreason = "x"\n'
+        f'version = 1\n[[waive]]\nfindings = ["*"]\nruns = ["{pattern}"]\nreason = "x"\n'
     )
-    assert error.field == "ignore[0].paths[0]" and why in error.message
+    assert error.field == "waive[0].runs[0]" and why in error.message
 
 
 def test_semantic_problems_of_protocols() -> None:
@@ -228,15 +256,15 @@ def test_semantic_problems_of_protocols() -> None:
     )
     assert invalid(twice).field == "protocols[1].match"
     assert invalid("version = 2\n").field == "version"
-    assert invalid('[severity]\n"timing/missing" = "error"\n').field == "version"
+    assert invalid('[levels]\n"timing/missing" = "error"\n').field == "version"
 
 
 def test_conflicting_severity_patterns() -> None:
-    error = invalid('version = 1\n[severity]\n"header/*" = "note"\n"*/tr-disagrees" = "error"\n')
+    error = invalid('version = 1\n[levels]\n"header/*" = "note"\n"*/tr-disagrees" = "error"\n')
     assert "header/tr-disagrees" in error.message
     # an exact code settles it
     load_text(
-        'version = 1\n[severity]\n"header/*" = "note"\n"*/tr-disagrees" = "error"\n'
+        'version = 1\n[levels]\n"header/*" = "note"\n"*/tr-disagrees" = "error"\n'
         '"header/tr-disagrees" = "warning"\n'
     )
 
@@ -414,13 +442,13 @@ def finding(code: str, severity: Severity = Severity.WARNING, file: str | None =
 
 
 def test_severity_override_changes_severity() -> None:
-    policy = load_text('version = 1\n[severity]\n"timing/missing" = "note"\n')
+    policy = load_text('version = 1\n[levels]\n"timing/missing" = "note"\n')
     rec = run(SliceTiming=None)
     missing = [f for f in check_run(rec) if f.code == "timing/missing"]
     assert missing and missing[0].severity is RULES["timing/missing"].severity
     outcome = apply_overrides_and_ignores(policy, rec.path, missing)
     assert [f.severity for f in outcome.kept] == [Severity.NOTE]
-    lab = load_text(LAB + '[severity]\n"policy/*" = "warning"\n')
+    lab = load_text(LAB + '[levels]\n"policy/*" = "warning"\n')
     outcome = apply_policy(lab, run(tr=2.0), check_run(run(tr=2.0)))
     tr = [f for f in outcome.kept if f.code == "policy/tr-mismatch"]
     assert [f.severity for f in tr] == [Severity.WARNING]
@@ -436,14 +464,14 @@ def test_ignore_by_glob_drops_and_counts() -> None:
     assert outcome.ignored_by_reason() == {"pilot sessions use a test protocol": 2}
     outcome = apply_overrides_and_ignores(policy, regular, found)
     assert outcome.ignored == ()
-    # the example's [severity] table makes timing/missing an error
+    # the example's [levels] table makes timing/missing an error
     assert [f.severity for f in outcome.kept] == [Severity.ERROR, Severity.ERROR]
 
 
 def test_ignore_codes_patterns_and_dataset_findings() -> None:
     policy = load_text(
-        'version = 1\n[[ignore]]\ncodes = ["header/*"]\n'
-        'paths = ["**/anat"]\nreason = "anatomy is not timed"\n'
+        'version = 1\n[[waive]]\nfindings = ["header/*"]\n'
+        'runs = ["**/anat"]\nreason = "anatomy is not timed"\n'
     )
     found = [finding("header/tr-disagrees"), finding("timing/missing")]
     outcome = apply_overrides_and_ignores(policy, "sub-01/ses-2/anat/sub-01_T1w.nii.gz", found)

@@ -70,8 +70,8 @@ def dataset(tmp_path_factory: pytest.TempPathFactory) -> Path:
     except OSError:  # pragma: no cover - file systems that require UTF-8 names
         pass
     (root / "slicetime-policy.toml").write_text(
-        'version = 1\n[[ignore]]\npaths = ["sub-06/**"]\n'
-        'codes = ["inherit/timing-override"]\nreason = "pilot"\n',
+        'version = 1\n[[waive]]\nruns = ["sub-06/**"]\n'
+        'findings = ["inherit/timing-override"]\nreason = "pilot"\n',
         encoding="utf-8")
     return root
 

@@ -124,5 +124,5 @@ def test_missing_timing_and_tr() -> None:
 
 
 def test_three_dimensional_bold() -> None:
-    assert "file/not-4d" in codes({"RepetitionTime": 2.0},
-                                  header_info((8, 8, 12), tr=None))
+    assert "file/series-shape" in codes({"RepetitionTime": 2.0},
+                                        header_info((8, 8, 12), tr=None))

@@ -26,6 +26,8 @@ from slicetime.model import (
     before_start,
     outside_window,
 )
+from slicetime.numbers import as_written, plain, secs
+from slicetime.schemes.resolve import looks_like_milliseconds
 
 #: the reference used when the user does not choose one (see ``ReferenceChoice``)
 DEFAULT_REFERENCE = "middle"
@@ -57,12 +59,12 @@ def check_plausible(schedule: SliceSchedule) -> None:
     or slice times outside the acquisition window (which would move the
     output's ``StartTime`` outside the volume)."""
     low_tr, high_tr = MIN_REPETITION_TIME, MAX_REPETITION_TIME
-    bounds = f"{low_tr:g} to {high_tr:g} s"
+    bounds = f"{plain(low_tr)} to {secs(high_tr)}"
     tr = schedule.repetition_time
     if tr is not None and not (math.isfinite(tr) and low_tr <= tr <= high_tr):
         raise ImplausibleTiming(
-            f"RepetitionTime {tr:g} is outside the plausible {bounds} (milliseconds?), so "
-            "the run cannot be corrected even with --force"
+            f"RepetitionTime {as_written(tr)} is outside the plausible {bounds} "
+            "(milliseconds?), so the run cannot be corrected even with --force"
         )
     if schedule.volume_times is not None:
         onsets = np.asarray(schedule.volume_times, dtype=np.float64)
@@ -71,7 +73,8 @@ def check_plausible(schedule: SliceSchedule) -> None:
             raise ImplausibleTiming("VolumeTiming holds a negative or non-finite time")
         if steps.size and (steps.max() > high_tr or steps.min() < low_tr):
             raise ImplausibleTiming(
-                f"VolumeTiming spaces volumes {steps.min():g} to {steps.max():g} s apart, "
+                f"VolumeTiming spaces volumes {as_written(float(steps.min()))} to "
+                f"{as_written(float(steps.max()))} apart, "
                 f"outside the plausible {bounds} (milliseconds?), so the run cannot be "
                 "corrected even with --force"
             )
@@ -79,8 +82,8 @@ def check_plausible(schedule: SliceSchedule) -> None:
                         ("AcquisitionDuration", schedule.acquisition_duration)):
         if value is not None and not (math.isfinite(value) and 0.0 <= value <= high_tr):
             raise ImplausibleTiming(
-                f"{name} {value:g} is outside the plausible 0 to {high_tr:g} s, so the run "
-                "cannot be corrected even with --force"
+                f"{name} {as_written(value)} is outside the plausible 0 to {secs(high_tr)}, so "
+                "the run cannot be corrected even with --force"
             )
     times = schedule.times
     if times and not all(math.isfinite(t) for t in times):
@@ -90,9 +93,16 @@ def check_plausible(schedule: SliceSchedule) -> None:
         low, high = min(times), max(times)
         limit = min(window, high_tr) if window is not None else high_tr
         if outside_window((low, high), limit):  # the one boundary rule
+            if looks_like_milliseconds(times, window):
+                # the values are milliseconds: never call them seconds
+                shown = (f"SliceTiming runs from {as_written(low)} to {as_written(high)}, "
+                         f"which reads as milliseconds ({secs(low / 1000)} to "
+                         f"{secs(high / 1000)}),")
+            else:
+                shown = f"slice times run from {secs(low)} to {secs(high)},"
             raise ImplausibleTiming(
-                f"slice times run from {low:g} to {high:g} s, outside the acquisition "
-                f"window of 0 to {limit:g} s, so they cannot be used even with --force"
+                f"{shown} outside the acquisition window of 0 to {secs(limit)}, so they "
+                "cannot be used even with --force"
             )
 
 
@@ -136,7 +146,7 @@ class ReferenceChoice:
 
     def describe(self) -> str:
         if self.kind == "seconds":
-            return f"{self.value:g} s"
+            return secs(self.value)
         if self.kind == "slice":
             return f"slice:{self.index}"
         return self.kind
@@ -171,8 +181,8 @@ def reference_time(choice: ReferenceChoice, schedule: SliceSchedule) -> float:
     # a reference may be the window's end itself (it is not a slice)
     if window is not None and (before_start(ref) or ref > window + BOUNDARY_SLACK):
         raise PlanError(
-            f"reference time {ref:g} s is outside this run's acquisition window "
-            f"(0 to {window:g} s)"
+            f"reference time {secs(ref)} is outside this run's acquisition window "
+            f"(0 to {secs(window)})"
         )
     return float(ref)
 

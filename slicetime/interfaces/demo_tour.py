@@ -140,7 +140,7 @@ def run_demo(out: Path) -> int:
             "recorded in every output it lets through:")
         say(f"slicetime correct {fixed} --out {aligned} "
             + " ".join(f"--accept '{c}:sub-03/**'" for c in codes), 4)
-        say("or the same in the lab policy: [[accept]] codes = [...], paths = [...], "
+        say("or the same in the lab policy: [[accept]] findings = [...], runs = [...], "
             "reason = \"...\". Here the images contradict sub-03's override (step 3), so "
             "the honest move is to repair the override, not to accept it.")
 

@@ -16,8 +16,8 @@ from collections.abc import Iterator
 from dataclasses import dataclass
 from typing import Any
 
+from slicetime.numbers import amount
 from slicetime.pipelines.errors import CorrectionError
-from slicetime.readers.nifti import size_text
 
 _SIZE_RE = re.compile(r"^\s*(\d+(?:\.\d+)?)\s*([kmgt]?)(?:i?b)?\s*$", re.IGNORECASE)
 
@@ -108,9 +108,9 @@ def plan_budget(
     need = max(2 * slice_bytes + smallest_block * per_voxel, per_volume)
     if cap < need:
         raise CorrectionError(
-            f"{shown}: --max-memory {size_text(cap_all)} is too small for this run; one "
+            f"{shown}: --max-memory {amount(cap_all)} is too small for this run; one "
             f"slice's series and the helper buffers need about "
-            f"{size_text(need + codec + _RUN_OVERHEAD)}"
+            f"{amount(need + codec + _RUN_OVERHEAD)}"
         )
     rows = max(smallest_block, min(BLOCK_VOXELS, (cap - 2 * slice_bytes) // per_voxel))
     # each engine thread holds its slice twice (read, written back) and one block

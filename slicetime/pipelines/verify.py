@@ -32,6 +32,7 @@ import slicetime.rules  # noqa: F401  (registers the verify/* codes it makes)
 from slicetime.codes import make_finding
 from slicetime.engines import verify as ev
 from slicetime.model import MAX_REPETITION_TIME, Finding, RunRecord, Severity, SliceSchedule
+from slicetime.numbers import as_written, secs
 from slicetime.readers.errors import ReadError
 from slicetime.readers.volumes import VolumeReader, scaling
 from slicetime.schemes.generate import Protocol, array_times
@@ -256,8 +257,8 @@ def verify_record(record: RunRecord, *, seed: int = 0) -> VerifyOutcome:
     if schedule is None or schedule.repetition_time is None:
         return _undecidable(record, "no slice schedule or repetition time is known")
     if schedule.repetition_time > MAX_REPETITION_TIME:
-        return _undecidable(record, f"RepetitionTime ({schedule.repetition_time:g}) is not in "
-                            "seconds (slicetime audit reports it)")
+        return _undecidable(record, f"RepetitionTime ({as_written(schedule.repetition_time)}) "
+                            "is not in seconds (slicetime audit reports it)")
     if schedule.volume_times is not None:
         return _undecidable(record, "volumes are not evenly spaced (VolumeTiming)")
     if len(header.shape) != 4 or header.n_volumes < ev.MIN_VOLUMES:
@@ -272,8 +273,9 @@ def verify_record(record: RunRecord, *, seed: int = 0) -> VerifyOutcome:
     if max(schedule.times) - min(schedule.times) <= 0:
         return _undecidable(record, "the claimed schedule has no offsets to check")
     if max(schedule.times) > window + 1e-6 or min(schedule.times) < -1e-6:
-        return _undecidable(record, f"the claimed slice times (up to {max(schedule.times):g} "
-                            f"s) do not fit in the acquisition window ({window:g} s)")
+        return _undecidable(record, "the claimed slice times (up to "
+                            f"{as_written(max(schedule.times))}) do not fit in the acquisition "
+                            f"window ({secs(window)})")
     channels = channel_courses(Path(record.abs_path), record, schedule.axis_index)
     if np.unique(channels.slice_of).size < 3:
         return _undecidable(record, "fewer than 3 slices hold in-brain voxels")

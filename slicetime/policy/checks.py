@@ -6,8 +6,8 @@ rules layer (``slicetime.rules`` imports it to register the ``policy/*`` codes):
 
 * :func:`check_protocol` compares one run with the protocol the policy
   expects for it and returns ``policy/*`` findings;
-* :func:`apply_overrides_and_ignores` applies the ``[severity]`` table and the
-  ``[[ignore]]`` entries to any findings (reader, run and dataset findings
+* :func:`apply_overrides_and_ignores` applies the ``[levels]`` table and the
+  ``[[waive]]`` entries to any findings (reader, run and dataset findings
   alike) and returns the kept ones and the ignored ones
   (:class:`PolicyOutcome`), so a report can say how many the policy hid;
 * :func:`apply_policy` does both for one run;
@@ -61,6 +61,7 @@ from dataclasses import dataclass
 from typing import Any, cast
 
 from slicetime.model import AXES, Axis, Finding, RunRecord, RunView, Severity, Source
+from slicetime.numbers import as_written, secs
 from slicetime.policy.model import ExpectedProtocol, IgnoreEntry, Policy, SchemeFamily
 from slicetime.rules.registry import RULES, Hit, run_rule, to_finding
 from slicetime.schemes.labels import scheme_family
@@ -101,7 +102,7 @@ def _document(code: str, *, title: str, rationale: str, fix: str,
 
 _OWN_ENTRY = (
     "If the run was acquired with another protocol on purpose, give it its own [[protocols]] "
-    "entry with a more specific match (or ignore the code for it with a reason)."
+    "entry with a more specific match (or waive the code for it with a reason)."
 )
 
 _document(
@@ -179,7 +180,7 @@ _document(
 
 @dataclass(frozen=True)
 class IgnoredFinding:
-    """A finding the policy dropped, and the ``[[ignore]]`` entry that dropped it."""
+    """A finding the policy dropped, and the ``[[waive]]`` entry that dropped it."""
 
     finding: Finding
     entry: IgnoreEntry
@@ -357,10 +358,14 @@ def _check_tr(policy: Policy, protocol: ExpectedProtocol, record: RunRecord) -> 
         "the header's pixdim[4] gives a repetition time of" if from_header else "RepetitionTime is"
     )
     hint = None
+    stated = secs(tr)
     if abs(tr / 1000 - expected) <= protocol.tolerance + _SLACK:
-        hint = f"{tr:g} looks like milliseconds: {tr / 1000:g} s is the protocol's value."
+        # milliseconds are never called seconds
+        hint = (f"{as_written(tr)} looks like milliseconds: {secs(tr / 1000)} is the "
+                "protocol's value.")
+        stated = f"{as_written(tr)} (milliseconds?)"
     return Hit(
-        f"{what} {tr:g} s but {protocol.describe()} expects {expected:g} s",
+        f"{what} {stated} but {protocol.describe()} expects {secs(expected)}",
         "pixdim[4]" if from_header else "RepetitionTime",
         _evidence(
             policy,

@@ -21,18 +21,23 @@ The format (version 1)::
     slice_encoding_direction = "k"
     tolerance = 0.003                    # seconds, for repetition_time (default 0.003)
 
-    [severity]                           # replaces a rule's default severity
+    [levels]                             # replaces a code's default level
     "scheme/multiband-undeclared" = "warning"
 
-    [[ignore]]                           # drops findings
-    paths = ["sub-pilot*/**"]
-    codes = ["*"]
+    [[waive]]                            # waives findings (dropped, counted)
+    findings = ["*"]
+    runs = ["sub-pilot*/**"]
     reason = "pilot sessions use a test protocol"
 
     [[accept]]                           # correct goes ahead despite these doubts
-    paths = ["sub-07/**"]
-    codes = ["header/slice-code-mismatch"]
+    findings = ["header/slice-code-mismatch"]
+    runs = ["sub-07/**"]
     reason = "the console protocol confirms the sidecar; the header is the converter's guess"
+
+Former key names (read for one release, each use reported by a
+``policy/former-keys`` note that names the new ones): ``[severity]`` is
+``[levels]``; ``[[ignore]]`` is ``[[waive]]``, its ``codes`` is ``findings``
+and its ``paths`` is ``runs`` (:data:`FORMER_KEYS`).
 
 Semantics, decided here and relied on by :mod:`slicetime.policy.checks`:
 
@@ -60,12 +65,12 @@ against the label grammar; ``multiband x4`` is accepted for ``multiband ×4``.
 A label's multiband factor must agree with ``multiband_factor``, and
 ``multiband_factor`` must divide ``slices``.
 
-*Severity.* Keys are finding codes, or patterns with ``*`` and ``?`` (``header/*``).
+*Levels.* Keys are finding codes, or patterns with ``*`` and ``?`` (``header/*``).
 Every key must name or match at least one known code. An exact code beats
 patterns; two patterns that give one known code different severities are an
 error (give that code its own key).
 
-*Ignore.* ``codes`` (required) are codes or patterns as above. ``paths``
+*Waive.* ``findings`` (required) are codes or patterns as above. ``runs``
 (default: every run) are patterns over the run's path relative to the dataset
 root with forward slashes: ``*`` and ``?`` within one folder or file name,
 ``[abc]``/``[!abc]`` character sets, ``**`` as a whole path segment for any
@@ -103,7 +108,7 @@ from typing import TYPE_CHECKING, Any
 if TYPE_CHECKING:  # imported where a policy is validated: 50 ms a start otherwise
     import jsonschema
 
-from slicetime.codes import RULES, declare
+from slicetime.codes import RULES, declare, make_finding
 from slicetime.model import TIME_TOLERANCE, Finding, Severity
 from slicetime.policy.model import (
     EXPECTATION_KEYS,
@@ -152,15 +157,77 @@ declare(
         "and follow the policy format: version = 1; [[protocols]] with a match table of BIDS "
         "entities (plus datatype and suffix), at least one of repetition_time, slices, "
         "multiband_factor, scheme, slice_encoding_direction, and an optional tolerance; a "
-        "[severity] table "
-        "mapping finding codes (or patterns with * and ?) to error, warning or note; [[ignore]] "
-        "entries with codes, optional run path patterns (paths) and a required reason. Unknown "
+        "[levels] table "
+        "mapping finding codes (or patterns with * and ?) to error, warning or note; [[waive]] "
+        "entries with findings (codes or patterns), optional run path patterns (runs) and a "
+        "required reason. Unknown "
         "keys, unknown finding codes and bad patterns are errors, so a typo never silently "
         "turns a check off."
     ),
     fix="Fix the key the message names; the file's JSON Schema ships as "
     "slicetime/data/policy.schema.json.",
 )
+
+
+FORMER_KEYS_CODE = "policy/former-keys"
+declare(
+    FORMER_KEYS_CODE,
+    title="the lab policy uses key names of an earlier release",
+    severity=Severity.NOTE,
+    rationale=(
+        "The policy's tables were renamed: [severity] is now [levels], [[ignore]] is now "
+        "[[waive]], and a waive entry's codes and paths are now findings and runs. The former "
+        "names are still read, with the same meaning, until the next release."
+    ),
+    fix="Rename the keys the message names.",
+    checked="policy",
+)
+
+#: former policy keys and the names they are read as (one release): at the top level,
+#: and inside each ``[[waive]]`` entry
+FORMER_KEYS: dict[str, str] = {"severity": "levels", "ignore": "waive"}
+FORMER_WAIVE_KEYS: dict[str, str] = {"codes": "findings", "paths": "runs"}
+
+
+def _with_current_keys(data: Mapping[str, Any], file: str
+                       ) -> tuple[dict[str, Any], tuple[str, ...]]:
+    """``data`` with the former key names (:data:`FORMER_KEYS`) read as the current
+    ones, and one sentence per kind of renaming met (for the ``policy/former-keys``
+    note). A file that gives both the former and the current name is refused."""
+    out = dict(data)
+    used: list[str] = []
+    for old, new in FORMER_KEYS.items():
+        if old not in out:
+            continue
+        if new in out:
+            raise _invalid(file, old, f"is the former name of [{new}], which the file also "
+                           f"has; keep only [{new}]")
+        out[new] = out.pop(old)
+        used.append(f"[{old}] → [{new}]" if old == "severity" else f"[[{old}]] → [[{new}]]")
+    for table in ("waive", "accept"):  # one spelling for both kinds of entry
+        entries = out.get(table)
+        if not isinstance(entries, list):
+            continue
+        renamed_entries = []
+        for i, entry in enumerate(entries):
+            if isinstance(entry, dict):
+                entry = dict(entry)
+                for old, new in FORMER_WAIVE_KEYS.items():
+                    if old in entry:
+                        if new in entry:
+                            raise _invalid(file, f"{table}[{i}].{old}", f"is the former name "
+                                           f"of {new}, which the entry also has; keep only "
+                                           f"{new}")
+                        entry[new] = entry.pop(old)
+                        word = f"{old} → {new}"
+                        if word not in used:
+                            used.append(word)
+            renamed_entries.append(entry)
+        out[table] = renamed_entries
+    if not used:
+        return out, ()
+    return out, (f"{file}: former key names read as the current ones ({', '.join(used)}); "
+                 "rename them, the former names are read until the next release",)
 
 
 @functools.cache
@@ -351,13 +418,13 @@ _REQUIRED_WHY = {
     "version": "the policy must say version = 1",
     "match": 'say which runs this protocol is for, e.g. match = { task = "rest" } '
     "(match = {} for every run)",
-    "codes": 'list the finding codes to ignore (codes = ["*"] for every code)',
-    "reason": 'say why these findings are ignored (reason = "..."): a lab must say why',
+    "findings": 'list the finding codes to waive (findings = ["*"] for every code)',
+    "reason": 'say why these findings are waived (reason = "..."): a lab must say why',
 }
 #: the same for an ``[[accept]]`` entry (the table a missing key belongs to decides)
 _REQUIRED_WHY_ACCEPT = {
-    "codes": 'list the codes whose doubt is accepted, each exactly '
-    '(codes = ["header/slice-code-mismatch"])',
+    "findings": 'list the codes whose doubt is accepted, each exactly '
+    '(findings = ["header/slice-code-mismatch"])',
     "reason": 'say why the runs\' own timing is trusted despite the doubt (reason = "..."): '
     "it is recorded in every output",
 }
@@ -523,7 +590,7 @@ def _severity_problems(
     for code in severity:
         problem = _code_problem(code, known)
         if problem:
-            problems.append((["severity", code], problem))
+            problems.append((["levels", code], problem))
     if problems:
         return problems
     patterns = [c for c in severity if is_pattern(c)]
@@ -536,22 +603,22 @@ def _severity_problems(
             first, second = hits[0], next(p for p in hits if severity[p] != severity[hits[0]])
             problems.append(
                 (
-                    ["severity", second],
-                    f"gives {code} {severity[second].value} but severity.{json.dumps(first)} gives "
+                    ["levels", second],
+                    f"gives {code} {severity[second].value} but levels.{json.dumps(first)} gives "
                     f"it {severity[first].value}; give {json.dumps(code)} its own entry",
                 )
             )
     return problems
 
 
-def _ignore_problems(entries: Sequence[Any], key: str = "ignore"
+def _ignore_problems(entries: Sequence[Any], key: str = "waive"
                      ) -> list[tuple[list[str | int], str]]:
     problems: list[tuple[list[str | int], str]] = []
     for i, entry in enumerate(entries):
-        for j, pattern in enumerate(entry.get("paths", [])):
+        for j, pattern in enumerate(entry.get("runs", [])):
             problem = path_pattern_problem(pattern)
             if problem:
-                problems.append(([key, i, "paths", j], f"{json.dumps(pattern)}: {problem}"))
+                problems.append(([key, i, "runs", j], f"{json.dumps(pattern)}: {problem}"))
     return problems
 
 
@@ -559,21 +626,21 @@ def _accept_problems(entries: Sequence[Any]) -> list[tuple[list[str | int], str]
     """``[[accept]]`` codes name, exactly, a code whose rule puts the timing in doubt."""
     problems = _ignore_problems(entries, "accept")
     for i, entry in enumerate(entries):
-        for j, code in enumerate(entry["codes"]):
+        for j, code in enumerate(entry["findings"]):
             rule = RULES.get(code)
             if rule is None or not rule.timing_in_doubt:
                 doubting = ", ".join(sorted(c for c, r in RULES.items() if r.timing_in_doubt))
-                problems.append((["accept", i, "codes", j],
+                problems.append((["accept", i, "findings", j],
                                  f"{json.dumps(code)} is not a code that puts the timing in "
                                  f"doubt (name one exactly: {doubting})"))
     return problems
 
 
 def _entry_fields(index: int, entry: Mapping[str, Any]) -> dict[str, Any]:
-    """The fields an ``[[ignore]]`` and an ``[[accept]]`` entry share, as written."""
-    return {"index": index, "codes": tuple(entry["codes"]),
+    """The fields a ``[[waive]]`` and an ``[[accept]]`` entry share, as written."""
+    return {"index": index, "codes": tuple(entry["findings"]),
             "reason": " ".join(entry["reason"].split()),
-            "paths": tuple(entry.get("paths", ["**"]))}
+            "paths": tuple(entry.get("runs", ["**"]))}
 
 
 def policy_from_document(
@@ -581,6 +648,7 @@ def policy_from_document(
 ) -> Policy:
     """Validate a parsed TOML document and build the :class:`Policy` (pure)."""
     known = frozenset(known_codes)
+    data, notices = _with_current_keys(data, file)
     _raise_first(file, data, _non_finite(dict(data), []))
     import jsonschema
 
@@ -589,16 +657,16 @@ def policy_from_document(
     _raise_first(file, data, [_schema_problem(e) for e in validator.iter_errors(dict(data))])
 
     protocols = tuple(_protocol(i, entry) for i, entry in enumerate(data.get("protocols", [])))
-    severity = {code: Severity(level) for code, level in data.get("severity", {}).items()}
-    raw_ignores = data.get("ignore", [])
+    severity = {code: Severity(level) for code, level in data.get("levels", {}).items()}
+    raw_ignores = data.get("waive", [])
     problems = _protocol_problems(protocols)
     problems += _severity_problems(severity, known)
     problems += _ignore_problems(raw_ignores)
     for i, entry in enumerate(raw_ignores):
-        for j, code in enumerate(entry["codes"]):
+        for j, code in enumerate(entry["findings"]):
             problem = _code_problem(code, known)
             if problem:
-                problems.append((["ignore", i, "codes", j], problem))
+                problems.append((["waive", i, "findings", j], problem))
     raw_accepts = data.get("accept", [])
     problems += _accept_problems(raw_accepts)
     _raise_first(file, data, problems)
@@ -613,6 +681,7 @@ def policy_from_document(
         severity=severity,
         ignores=ignores,
         accepts=accepts,
+        notices=notices,
     )
 
 
@@ -651,6 +720,9 @@ def root_policies(
 
     def load(path: Path, display: str | None = None) -> Policy:
         policy = load_policy(path, known_codes, display=display)
+        if problems is not None:
+            problems.extend(make_finding(FORMER_KEYS_CODE, text, file=policy.file)
+                            for text in policy.notices)
         return with_current_codes(policy, renamed) if renamed else policy
 
     if policy_file is not None:

@@ -107,7 +107,8 @@ class ExpectedProtocol:
 
 @dataclass(frozen=True)
 class IgnoreEntry:
-    """One ``[[ignore]]`` entry: drop findings whose code and run path both match."""
+    """One ``[[waive]]`` entry: drop findings whose code and run path both match
+    (``codes``: the entry's ``findings``; ``paths``: its ``runs``)."""
 
     index: int
     codes: tuple[str, ...]
@@ -145,8 +146,10 @@ class Policy:
     version: int = 1
     protocols: tuple[ExpectedProtocol, ...] = ()
     severity: Mapping[str, Severity] = dataclasses.field(default_factory=dict)
-    ignores: tuple[IgnoreEntry, ...] = ()
+    ignores: tuple[IgnoreEntry, ...] = ()  # the [[waive]] entries
     accepts: tuple[AcceptEntry, ...] = ()
+    #: sentences about former key names the file used (``policy/former-keys`` notes)
+    notices: tuple[str, ...] = ()
 
     def severity_for(self, code: str) -> Severity | None:
         """The lab's severity for ``code``: an exact key, else the first matching pattern."""
@@ -158,7 +161,7 @@ class Policy:
         return None
 
     def ignore_entry(self, path: str, code: str) -> IgnoreEntry | None:
-        """The first ``[[ignore]]`` entry that drops ``code`` on ``path``, if any."""
+        """The first ``[[waive]]`` entry that drops ``code`` on ``path``, if any."""
         for entry in self.ignores:
             if entry.covers(path, code):
                 return entry

@@ -59,6 +59,7 @@ from pathlib import Path
 from typing import Any, BinaryIO, Literal
 
 from slicetime.model import Finding, HeaderInfo
+from slicetime.numbers import amount, size_words
 
 from .errors import (
     ReadError,
@@ -206,13 +207,6 @@ _TIME_UNITS: dict[int, tuple[Literal["s", "ms", "us"], float]] = {
 }
 
 
-def size_text(n: int) -> str:
-    for unit, scale in (("TiB", 1 << 40), ("GiB", 1 << 30), ("MiB", 1 << 20), ("KiB", 1 << 10)):
-        if n >= scale:
-            return f"{n / scale:.1f} {unit}"
-    return f"{n} bytes"
-
-
 class _GzipReader:
     """Bounded streaming decompression of a gzip file, across members."""
 
@@ -282,7 +276,7 @@ def _decode(buf: bytes, shown: str) -> tuple[int, Literal["<", ">"], dict[str, A
             "file/not-nifti",
             shown,
             "sizeof_hdr",
-            f"{shown}: only {len(buf)} bytes, too short for a NIfTI header",
+            f"{shown}: only {size_words(len(buf))}, too short for a NIfTI header",
         )
     order: Literal["<", ">"] = "<"
     size = struct.unpack_from("<i", buf)[0]
@@ -362,7 +356,7 @@ def _check_dimensions(raw: dict[str, Any], shown: str) -> tuple[tuple[int, ...],
             "file/bad-dimensions",
             shown,
             "dim",
-            f"{shown}: header claims {size_text(data_bytes)} of image data "
+            f"{shown}: header claims {amount(data_bytes)} of image data "
             f"(shape {list(shape)}), which no real image holds",
             evidence={"shape": list(shape), "data_bytes": data_bytes},
         )
@@ -440,7 +434,8 @@ def _read_open(
                 "file/truncated",
                 shown,
                 None,
-                f"{shown}: the gzip stream ends after {len(buf)} bytes, inside the NIfTI header",
+                f"{shown}: the gzip stream ends after {size_words(len(buf))}, inside the "
+                "NIfTI header",
                 evidence={"decompressed_size": len(buf), "file_size": file_size},
             )
         if not buf:
@@ -470,8 +465,8 @@ def _read_open(
                     "file/bad-dimensions",
                     shown,
                     "dim",
-                    f"{shown}: header claims {size_text(needed)} but a "
-                    f"{size_text(file_size)} gzip file can hold at most {size_text(limit)}",
+                    f"{shown}: header claims {amount(needed)} but a "
+                    f"{amount(file_size)} gzip file can hold at most {amount(limit)}",
                     evidence={
                         "shape": list(shape),
                         "claimed_bytes": needed,
@@ -487,8 +482,9 @@ def _read_open(
                 "file/truncated",
                 shown,
                 None,
-                f"{shown}: file has {file_size} bytes but the header implies {needed} "
-                f"(vox_offset {vox_offset} + {data_bytes} bytes of data)",
+                f"{shown}: file has {size_words(file_size)} but the header implies "
+                f"{size_words(needed)} (vox_offset {vox_offset} + "
+                f"{size_words(data_bytes)} of data)",
                 evidence={"file_size": file_size, "expected_size": needed},
             )
         if _extension_flag(buf, version):
@@ -691,6 +687,9 @@ def _check_stream_length(
     """Called when the ISIZE trailer disagrees: count the real stream length (bounded)."""
     evidence: dict[str, Any] = {"expected_size": needed, "gzip_isize": isize}
     if verify:
+        # the stream is counted: when it ends early its last 4 bytes are image data, not a
+        # trailer, so the "trailer" value means nothing and is not reported
+        evidence = {"expected_size": needed}
         fh.seek(len(first))
         counter = _GzipReader(fh, shown, first, file_size - len(first))
         try:
@@ -710,15 +709,16 @@ def _check_stream_length(
             "file/truncated",
             shown,
             None,
-            f"{shown}: the gzip stream holds {total} bytes but the header implies {needed}",
+            f"{shown}: the gzip stream holds {size_words(total)} but the header implies "
+            f"{size_words(needed)}",
             evidence=evidence,
         )
     raise ReadError(
         "file/truncated",
         shown,
         None,
-        f"{shown}: the gzip trailer gives {isize} bytes (mod 2**32) but the header implies "
-        f"{needed}",
+        f"{shown}: the gzip trailer gives {size_words(isize or 0)} (mod 2**32) but the header "
+        f"implies {size_words(needed)}",
         evidence=evidence,
     )
 
@@ -739,6 +739,7 @@ def _check_paired_image(p: Path, shown: str, needed: int) -> None:
             "file/truncated",
             img_shown,
             None,
-            f"{img_shown}: file has {st.st_size} bytes but the header {shown} implies {needed}",
+            f"{img_shown}: file has {size_words(st.st_size)} but the header {shown} implies "
+            f"{size_words(needed)}",
             evidence={"file_size": st.st_size, "expected_size": needed},
         )

@@ -19,7 +19,7 @@ from typing import Any
 
 import numpy as np
 
-from slicetime.readers.volumes import FLOAT32_MAX
+from slicetime.numbers import grouped, plain
 
 __all__ = [
     "DiskBuffer",
@@ -158,10 +158,12 @@ def store_scaled(
             bad &= np.isfinite(block)
         count = int(np.count_nonzero(bad))
     if count:
-        how = (f"scl_slope {scale[0]:g} and scl_inter {scale[1]:g} take" if scale is not None
+        how = (f"scl_slope {plain(scale[0])} and scl_inter {plain(scale[1])} take"
+               if scale is not None
                else "the stored float64 values include")
         raise ScalingRangeError(
-            f"{how} {count} value(s) beyond the float32 range (±{FLOAT32_MAX:.4g}); the "
+            f"{how} {grouped(count)} value(s) beyond the float32 range (about ±3.4 × 10^38); "
+            "the "
             "output would hold inf or nan, so the run is refused",
             field="scl_slope" if scale is not None else "datatype",
         )

@@ -19,15 +19,18 @@ E, W, N = Severity.ERROR, Severity.WARNING, Severity.NOTE
 TR_ABS_TOL = 1e-3
 
 
+renamed("file/not-4d", "file/series-shape")  # until the release after 0.1
+
+
 @run_rule(
-    "file/not-4d",
+    "file/series-shape",
     title="a single volume where a time series is expected",
     severity=E,
     rationale="Slice timing concerns series of volumes; a 3D image (or a 4D image with one "
     "volume) under a functional name is a conversion mistake or the wrong file.",
     fix="Check that the file is the full series.",
 )
-def not_4d(record: RunRecord) -> Iterator[Hit]:
+def series_shape(record: RunRecord) -> Iterator[Hit]:
     header = record.header
     if header is None or record.suffix not in ("bold", "cbv", "asl"):
         return

@@ -6,7 +6,7 @@ from collections.abc import Iterator
 from typing import Any
 
 from slicetime.model import RunRecord, Severity, SliceSchedule, before_start, past_end
-from slicetime.numbers import plain
+from slicetime.numbers import plain, secs
 from slicetime.rules.registry import Hit, run_rule
 from slicetime.schemes.resolve import is_number
 from slicetime.words import count
@@ -153,7 +153,7 @@ def corrected_still_timed(record: RunRecord) -> Iterator[Hit]:
         yield Hit(
             "SliceTimingCorrected is true but the header still encodes slice timing "
             f"(slice_code {record.header.slice_code}, slice_duration "
-            f"{record.header.slice_duration} s): a later step would correct this run twice",
+            f"{secs(record.header.slice_duration)}): a later step would correct this run twice",
             "slice_code",
             {"slice_code": record.header.slice_code,
              "slice_duration": record.header.slice_duration},
@@ -177,7 +177,8 @@ def from_header(record: RunRecord) -> Iterator[Hit]:
     if record.timing_origin == "header" and record.header is not None:
         yield Hit(
             "SliceTiming rebuilt from header slice_code "
-            f"{record.header.slice_code} and slice_duration {record.header.slice_duration} s",
+            f"{record.header.slice_code} and slice_duration "
+            f"{secs(record.header.slice_duration)}",
             "SliceTiming",
             {"slice_code": record.header.slice_code,
              "slice_duration": record.header.slice_duration},

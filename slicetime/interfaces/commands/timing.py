@@ -65,7 +65,7 @@ def timing(
       slicetime timing --slices 60 --tr 1 --multiband 4 --order interleaved --first auto
       slicetime timing --slices 16 --tr 3 --delay-time 1.5 --order interleaved  # sparse
     """
-    from slicetime.numbers import plain
+    from slicetime.numbers import as_written, plain
     from slicetime.schemes.generate import Protocol, array_times, slice_timing
     from slicetime.schemes.infer import infer_scheme
 
@@ -77,8 +77,9 @@ def timing(
         raise UserError("timing: give --tr (and --delay-time for sparse protocols)")
     for option, value in (("--tr", tr), ("--delay-time", delay)):
         if value is not None and value > _MS_LIKE_SECONDS:
-            raise UserError(f"{option} {value:g}: times are in seconds, and {value:g} s looks "
-                            f"like milliseconds; did you mean {option} {value / 1000:g}?")
+            raise UserError(f"{option} {as_written(value)}: times are in seconds, and "
+                            f"{as_written(value)} looks like milliseconds; did you mean "
+                            f"{option} {plain(value / 1000)}?")
     start: int | str | None = None
     if first is not None:
         if first == "auto":
