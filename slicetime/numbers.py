@@ -138,8 +138,12 @@ def amount(n_bytes: float) -> str:
 def as_written(value: float) -> str:
     """A number from a file whose unit is in doubt, as the file has it (at most 6
     significant digits, 2 decimals from 100 on, never scientific, no unit)."""
-    if isinstance(value, float) and _finite(value) and abs(value) >= 100:
-        return fixed(value, 2)
+    if isinstance(value, int | float) and not isinstance(value, bool) and _finite(value):
+        if abs(value) >= 10_000:
+            whole, _, decimals = fixed(value, 2).partition(".")
+            return f"{int(whole):,}" + (f".{decimals}" if decimals else "")
+        if abs(value) >= 100:
+            return fixed(value, 2)
     return plain(value)
 
 

@@ -412,7 +412,7 @@ def test_float64_values_beyond_float32_are_refused(ds: Path, tmp_path: Path) -> 
     ("tr", "times_scale", "expect"),
     [
         (2000.0, 1000.0, "RepetitionTime 2000 is outside the plausible"),  # all in ms
-        (1e9, 1.0, "RepetitionTime 1e+09 is outside the plausible"),
+        (1e9, 1.0, "RepetitionTime 1,000,000,000 is outside the plausible"),
         (0.002, 0.001, "RepetitionTime 0.002 is outside the plausible"),
     ],
 )

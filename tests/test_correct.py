@@ -352,7 +352,9 @@ def test_runs_with_timing_errors_are_refused_unless_forced(dataset: Path, tmp_pa
     # forcing cannot make times beyond the TR possible (BIDS: SliceTiming values are
     # seconds within the volume and must not exceed RepetitionTime)
     assert forced.exit_code == 1
-    assert "slice times run from 0 to 1750 s, outside the acquisition window" in forced.output
+    # milliseconds are never called seconds: the values as written, then in seconds
+    assert ("SliceTiming runs from 0 to 1750, which reads as milliseconds (0 s to 1.75 s), "
+            "outside the acquisition window" in " ".join(forced.output.split()))
     assert not output_of(out, REL).exists()
 
 
