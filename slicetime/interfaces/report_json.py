@@ -101,23 +101,17 @@ def _time(value: float | None) -> float | None:
 
 
 def audit_object(result: AuditResult, root_given: str) -> dict[str, Any]:
-    """The whole report as one object (``report_stream.write_json`` writes the same
-    report as a stream). ``root`` names the dataset(s): see ``report_root``."""
-    from slicetime.pipelines.audit import dataset_names
+    """The whole report as one object: what ``report_stream.write_json`` writes (the
+    one writer of the JSON report), parsed. ``root`` names the dataset(s): see
+    ``report_root``."""
+    import io
 
-    counts = result.counts()
-    roots = list(dict.fromkeys([*result.roots, *(r.record.root for r in result.runs)]))
-    names = dataset_names(roots)
-    return {
-        "tool": {"name": "slicetime", "version": __version__},
-        "root": ", ".join(names[r] for r in roots),
-        "roots": result.roots,
-        "dataset_names": [dataset_names(result.roots).get(r, r) for r in result.roots],
-        "runs": [run_object(r) for r in result.runs],
-        "dataset_findings": [f.to_json() for f in result.dataset_findings],
-        "policies": result.policies,
-        "summary": {"runs": len(result.runs), **counts, "ignored": result.ignored_count()},
-    }
+    from slicetime.interfaces.report_stream import MemorySource, write_json
+
+    buffer = io.StringIO()
+    write_json(MemorySource(result, root_given), buffer)
+    report: dict[str, Any] = json.loads(buffer.getvalue())
+    return report
 
 
 def correct_run_object(outcome: RunOutcome) -> dict[str, Any]:

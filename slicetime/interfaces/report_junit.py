@@ -8,7 +8,13 @@ Layout (our own mapping of an audit onto the JUnit XML vocabulary):
   ``<properties>`` give the root, the path as given, the ``--fail-on`` level
   and the slicetime version;
 * one ``<testcase>`` per run: ``classname`` is the run's folder relative to its
-  dataset root (``.`` for the root itself) and ``name`` the run's path;
+  dataset root (``.`` for the root itself) and ``name`` the run's path; it holds
+  the run's own findings;
+* one ``<testcase>`` per finding of a file that several runs share (an inherited
+  sidecar), told once instead of in each run's case: ``classname`` is the file's
+  folder, ``name`` is ``FILE: CODE``, and its ``<system-out>`` says which runs it
+  applies to (``applies to all 6 runs of task-chirp_bold`` or the count and the
+  paths);
 * one more ``<testcase classname="." name="dataset">`` for the checks over the
   whole dataset. It sits in the single suite, or, with several roots, in a
   last suite named ``slicetime audit: all datasets`` (dataset checks look
@@ -92,9 +98,11 @@ def _note_line(finding: Mapping[str, Any]) -> str:
 
 
 def _testcase(parent: ET.Element, classname: str, name: str,
-              findings: Sequence[Mapping[str, Any]], fail_on: FailOn) -> bool:
+              findings: Sequence[Mapping[str, Any]], fail_on: FailOn,
+              more_out: str | None = None) -> bool:
     """Add one test case (its findings as the report's JSON objects); True when it has a
-    failure."""
+    failure. ``more_out`` is added to its ``<system-out>`` (the runs a shared finding
+    applies to)."""
     case = ET.SubElement(parent, "testcase", classname=xml_safe(classname), name=xml_safe(name))
     failing: list[Mapping[str, Any]] = []
     quiet: list[Mapping[str, Any]] = []
@@ -105,9 +113,9 @@ def _testcase(parent: ET.Element, classname: str, name: str,
             case, "failure", type=xml_safe(finding["code"]), message=_message(finding)
         )
         failure.text = _failure_text(finding)
-    if quiet:
+    if quiet or more_out:
         out = ET.SubElement(case, "system-out")
-        out.text = "".join(_note_line(f) + "\n" for f in quiet)
+        out.text = "".join(_note_line(f) + "\n" for f in quiet) + (more_out or "")
     return bool(failing)
 
 

@@ -29,6 +29,17 @@ from typing import IO, Any
 
 from slicetime import __version__
 from slicetime.interfaces import screen
+from slicetime.interfaces.grouping import (
+    LISTED_RUNS,
+    SEVERITIES,
+    Grouper,
+    Grouping,
+    SharedFinding,
+    counts_phrase,
+    group_findings,
+    listed_paths,
+    runs_phrase,
+)
 from slicetime.interfaces.safe_text import _escape, xml_safe
 from slicetime.model import Counts, FailOn, Finding, Scheme, Severity
 from slicetime.numbers import fixed, json_times, plain, secs
@@ -231,13 +242,31 @@ def display_path(totals: AuditTotals, facts: RunFacts, path: str, *, several: bo
 
 
 def _head(totals: AuditTotals) -> dict[str, Any]:
+    # "root" is display text (the dataset names) kept for the contract; "datasets" pairs
+    # each root path with its name, so no reader has to match "roots" to "dataset_names"
     return {"tool": {"name": "slicetime", "version": __version__},
             "root": report_root(totals), "roots": totals.roots,
-            "dataset_names": [totals.names.get(r, r) for r in totals.roots]}
+            "dataset_names": [totals.names.get(r, r) for r in totals.roots],
+            "datasets": [{"root": r, "name": totals.names.get(r, r)} for r in totals.roots]}
 
 
-def _summary(totals: AuditTotals) -> dict[str, Any]:
-    return {"runs": totals.runs, **totals.counts, "ignored": totals.ignored}
+def _summary(totals: AuditTotals, grouping: Grouping) -> dict[str, Any]:
+    return {"runs": totals.runs, **totals.counts, "ignored": totals.ignored,
+            "distinct": grouping.distinct, "runs_affected": grouping.runs_affected}
+
+
+def shared_object(group: SharedFinding) -> dict[str, Any]:
+    """A shared finding in the JSON reports: the finding once, its root and its runs."""
+    return {"finding": group.finding, "root": group.root, "runs": group.paths}
+
+
+def _grouped_lines(source: ReportSource, grouper: Grouper) -> Iterator[str]:
+    """The source's lines, each run with findings also handed to ``grouper``."""
+    facts = source.totals.facts
+    for index, line in enumerate(source.lines()):
+        if any(facts[index].counts):
+            grouper.add(index, json.loads(line))
+        yield line
 
 
 def write_json(source: ReportSource, out: IO[str]) -> None:
@@ -245,12 +274,13 @@ def write_json(source: ReportSource, out: IO[str]) -> None:
     as ``report_json.audit_object``), one run object per line."""
     totals = source.totals
     head = _head(totals)
+    grouper = Grouper(totals)
     out.write("{\n")
     for key, value in head.items():
         out.write(f"  {encode(key)}: {encode(value)},\n")
     out.write('  "runs": [')
     first = True
-    for line in source.lines():
+    for line in _grouped_lines(source, grouper):
         out.write("\n    " if first else ",\n    ")
         out.write(line)
         first = False
@@ -260,7 +290,11 @@ def write_json(source: ReportSource, out: IO[str]) -> None:
     out.write(",".join(f"\n    {encode(f)}" for f in findings))
     out.write("\n  ],\n" if findings else "],\n")
     out.write(f'  "policies": {encode(totals.policies)},\n')
-    out.write(f'  "summary": {encode(_summary(totals))}\n')
+    grouping = grouper.finish()
+    out.write('  "shared_findings": [')
+    out.write(",".join(f"\n    {encode(shared_object(g))}" for g in grouping.shared))
+    out.write("\n  ],\n" if grouping.shared else "],\n")
+    out.write(f'  "summary": {encode(_summary(totals, grouping))}\n')
     out.write("}\n")
 
 
@@ -269,22 +303,27 @@ def write_jsonl(source: ReportSource, out: IO[str]) -> None:
     with one key: ``report`` (first: tool, root, roots, policies), ``run`` (one per
     run, the contract's run object, in report order), ``dataset_finding`` (one per
     finding about the dataset as a whole), ``summary`` (last: the line that says
-    the report is complete)."""
+    the report is complete). Before the summary, one ``shared_finding`` per finding of a
+    file several runs share (told once, with its runs; the runs keep it too)."""
     totals = source.totals
+    grouper = Grouper(totals)
     out.write(encode({"report": {**_head(totals), "policies": totals.policies}}) + "\n")
-    for line in source.lines():
+    for line in _grouped_lines(source, grouper):
         out.write('{"run":')
         out.write(line)
         out.write("}\n")
     for finding in totals.dataset_findings:
         out.write(encode({"dataset_finding": finding.to_json()}) + "\n")
-    out.write(encode({"summary": _summary(totals)}) + "\n")
+    grouping = grouper.finish()
+    for group in grouping.shared:
+        out.write(encode({"shared_finding": shared_object(group)}) + "\n")
+    out.write(encode({"summary": _summary(totals, grouping)}) + "\n")
 
 
 # --------------------------------------------------------------------------- TSV
 
 TSV_COLUMNS = ("path", "dataset", "task", "scheme", "repetition_time", "slices",
-               "multiband_factor", "errors", "warnings", "notes", "codes")
+               "multiband_factor", "errors", "warnings", "notes", "codes", "applies_to")
 
 
 def _cell(value: object) -> str:
@@ -295,22 +334,37 @@ def _cell(value: object) -> str:
 
 
 def write_tsv(source: ReportSource, out: IO[str]) -> None:
-    """One row per run (tab-separated, header row first). Tabs, line breaks and
-    control characters in values are written as visible escapes (``\\t``,
-    ``\\n``), so every row is one line with exactly the header's columns.
+    """One row per run (tab-separated, header row first), then one row per finding of a
+    file several runs share, told once: its ``path`` is that file, ``applies_to`` the
+    number of runs it applies to (empty on run rows), and the run rows count and list
+    only the findings of their own. So the severity columns add up to the JSON report's
+    ``summary.distinct`` without its dataset findings. ``dataset`` is filled only when
+    the runs come from several roots (one name, repeated on every row, told nothing).
+    Tabs, line breaks and control characters in values are written as visible escapes
+    (``\\t``, ``\\n``), so every row is one line with exactly the header's columns.
     ``codes`` lists the distinct finding codes, sorted, separated by commas."""
     totals = source.totals
+    grouping = group_findings(source)
+    several = several_roots(totals)
     out.write("\t".join(TSV_COLUMNS) + "\n")
     for index, obj in source.objects():
         facts = totals.facts[index]
         scheme = obj.get("scheme") or {}
         times = obj.get("slice_times")
         slices = len(times) if times else facts.axis_length
-        codes = ",".join(sorted({f["code"] for f in obj["findings"]}))
-        row = (obj["path"], totals.names.get(facts.root, facts.root),
+        codes = ",".join(sorted({f["code"] for f in grouping.own(index, obj["findings"])}))
+        dataset = totals.names.get(facts.root, facts.root) if several else None
+        row = (obj["path"], dataset,
                obj.get("entities", {}).get("task"), scheme.get("label"),
                obj.get("repetition_time"), slices, scheme.get("multiband_factor"),
-               *facts.counts, codes)
+               *grouping.own_counts(index, facts.counts), codes, None)
+        out.write("\t".join(_cell(v) for v in row) + "\n")
+    for group in grouping.shared:
+        f = group.finding
+        counts = tuple(int(f["severity"] == s) for s in SEVERITIES)
+        dataset = totals.names.get(group.root, group.root) if several else None
+        row = (f["file"], dataset, None, None, None, None, None, *counts, f["code"],
+               len(group.runs))
         out.write("\t".join(_cell(v) for v in row) + "\n")
 
 
@@ -499,35 +553,57 @@ def write_text(source: ReportSource, out: IO[str], *, show_all: bool = False,
         for line in _table(rows, head, right, (None, None, None, *kinds), fit, paint):
             out.write(line + "\n")
 
+    grouping = group_findings(source)
+
+    def own_counts(index: int) -> tuple[int, int, int]:
+        return grouping.own_counts(index, totals.facts[index].counts)
+
     def listed(index: int) -> bool:
         if show_all:
             return True
-        e, w, n = totals.facts[index].counts
+        e, w, n = own_counts(index)
         return bool(e or w or (n and show_notes))
 
-    with_findings = sum(1 for f in totals.facts if any(f.counts))
+    with_own = sum(1 for i in range(len(totals.facts)) if listed(i)) if not show_all else 0
     if totals.facts:
         if show_all:
             title = f"\nevery run ({totals.runs})"
+        elif grouping.shared:
+            title = (f"\nruns with findings of their own ({with_own} of {totals.runs}; "
+                     "--all lists every run)")
         else:
-            title = (f"\nruns with findings ({with_findings} of {totals.runs}; "
+            title = (f"\nruns with findings ({with_own} of {totals.runs}; "
                      "--all lists every run)")
         out.write(paint(title, "bold") + "\n")
     for index, obj in source.objects(listed):
         facts = totals.facts[index]
         scheme = (obj.get("scheme") or {}).get("label") or "no usable timing"
         tr = obj.get("repetition_time")
-        e, w, n = facts.counts
+        e, w, n = own_counts(index)
         counts = ", ".join(_plural(c, s) for c, s in ((e, "error"), (w, "warning"), (n, "note"))
-                           if c) or "no findings"
+                           if c)
+        shared_here = sum(grouping.shared_counts.get(index, (0, 0, 0)))
+        if shared_here:
+            told = f"{_plural(shared_here, 'finding')} of a shared file, below"
+            counts = f"{counts}; {told}" if counts else told
+        counts = counts or "no findings"
         name = display_path(totals, facts, xml_safe(obj["path"]), several=several)
         rest = f"{xml_safe(scheme)}{f'  TR {secs(tr)}' if tr else ''}  ({counts})"
         for line in _run_head(name, rest, fit, paint):
             out.write(line + "\n")
-        shown = [f for f in obj["findings"] if show_notes or f["severity"] != "note"]
+        shown = [f for f in grouping.own(index, obj["findings"])
+                 if show_notes or f["severity"] != "note"]
         shown.sort(key=lambda f: -_RANK[f["severity"]])
         for f in shown:
             out.write(_finding_text(f, paint, fit, run_path=obj["path"]) + "\n")
+    shared = [g for g in grouping.shared if show_notes or g.severity != "note"]
+    if shared:
+        out.write(paint("\nfindings of shared files (each told once, with the runs it "
+                        "applies to)", "bold") + "\n")
+        for group in shared:
+            out.write(_finding_text(group.finding, paint, fit) + "\n")
+            for line in shared_runs_lines(group, grouping, totals, fit, several=several):
+                out.write(line + "\n")
     if totals.dataset_findings:
         out.write(paint("\ndataset", "bold") + "\n")
         for finding in sorted(totals.dataset_findings, key=lambda f: -f.severity.rank):
@@ -540,12 +616,32 @@ def write_text(source: ReportSource, out: IO[str], *, show_all: bool = False,
         for i, part in enumerate(screen.wrap_words(xml_safe(policy_line), fit, rest=2)):
             out.write(paint(part if i == 0 else "  " + part, "dim") + "\n")
     out.write("\n")
-    plain_line = summary_line(totals)
+    plain_line = summary_line(totals, grouping)
     if fit is None or len(plain_line) <= fit:
-        out.write(summary_line(totals, paint) + "\n")
+        out.write(summary_line(totals, grouping, paint) + "\n")
     else:
         for i, part in enumerate(screen.wrap_words(plain_line, fit, rest=2)):
             out.write(("" if i == 0 else "  ") + part + "\n")
+
+
+def shared_runs_lines(group: SharedFinding, grouping: Grouping, totals: AuditTotals,
+                      width: int | None, *, several: bool, indent: str = "  ") -> list[str]:
+    """The runs a shared finding applies to, under the finding: ``applies to all 6 runs
+    of task-chirp_bold``, or the count and the runs' paths (at most
+    ``grouping.LISTED_RUNS`` on a screen of limited width; every one without a limit)."""
+    pad = indent + " " * screen.FINDING_INDENT
+    phrase = runs_phrase(group, grouping, totals)
+    if phrase.startswith("all "):
+        return [f"{pad}applies to {phrase}"]
+    paths = [display_path(totals, totals.facts[i], xml_safe(p), several=several)
+             for i, p in zip(group.runs, group.paths, strict=True)]
+    shown, more = listed_paths(paths, None if width is None else LISTED_RUNS)
+    lines = [f"{pad}applies to {phrase}:"]
+    room = None if width is None else width - len(pad) - 2
+    lines.extend(f"{pad}  {screen.shorten_path(p, room)}" for p in shown)
+    if more:
+        lines.append(f"{pad}  and {more} more (the JSON report lists every run)")
+    return lines
 
 
 def policy_summary(totals: AuditTotals) -> str | None:
@@ -559,12 +655,15 @@ def policy_summary(totals: AuditTotals) -> str | None:
             f"{count(judged, 'run')} judged by its protocols instead of the dataset majority")
 
 
-def summary_line(totals: AuditTotals, paint: Callable[[str, str | None], str] | None = None
-                 ) -> str:
-    """``N runs audited: E errors, W warnings, N notes`` (plus what the policy ignored)."""
+def summary_line(totals: AuditTotals, grouping: Grouping,
+                 paint: Callable[[str, str | None], str] | None = None) -> str:
+    """``N runs audited: 3 errors on 3 runs, 1 warning on 2 runs, 0 notes`` (a finding
+    of a shared file counted once, with the runs each severity touches; plus what the
+    policy ignored)."""
     paint = paint or (lambda text, _style: text)
-    parts = [paint(_plural(totals.counts[s.value], s.value), s.value if totals.counts[s.value]
-                   else None) for s in Severity]
+    texts = counts_phrase(grouping.distinct, grouping.runs_affected)
+    parts = [paint(text, s if grouping.distinct[s] else None)
+             for text, s in zip(texts, SEVERITIES, strict=True)]
     line = f"{_plural(totals.runs, 'run')} audited: {', '.join(parts)}"
     if totals.ignored:
         line += f" ({_plural(totals.ignored, 'finding')} ignored by the lab policy)"
@@ -582,6 +681,7 @@ def write_junit(source: ReportSource, out: IO[str], *, fail_on: str) -> None:
 
     threshold = FailOn.parse(fail_on)
     totals = source.totals
+    grouping = group_findings(source)
     roots = list(dict.fromkeys([*totals.roots, *(f.root for f in totals.facts)]))
     if not roots:
         roots = [source.root_given]
@@ -589,6 +689,16 @@ def write_junit(source: ReportSource, out: IO[str], *, fail_on: str) -> None:
 
     failing = threshold.reached
     dataset_fails = any(threshold.fails(f.severity) for f in totals.dataset_findings)
+
+    def run_fails(index: int) -> bool:
+        return failing(grouping.own_counts(index, totals.facts[index].counts))
+
+    shared_of: dict[str, list[SharedFinding]] = defaultdict(list)
+    for group in grouping.shared:
+        shared_of[group.root].append(group)
+
+    def shared_fails(root: str) -> int:
+        return sum(threshold.fails(Severity(g.severity)) for g in shared_of[root])
     per_root: dict[str, list[int]] = defaultdict(list)
     for index, facts in enumerate(totals.facts):
         per_root[facts.root].append(index)
@@ -602,17 +712,17 @@ def write_junit(source: ReportSource, out: IO[str], *, fail_on: str) -> None:
                        root, label, members, not several))
     if several:
         suites.append((f"{junit.SUITE_NAME}: all datasets", ", ".join(roots), None, [], True))
-    tests = sum(len(m) + d for _, _, _, m, d in suites)
-    failures = sum(sum(failing(totals.facts[i].counts) for i in m) + (d and dataset_fails)
-                   for _, _, _, m, d in suites)
+    tests = sum(len(m) + len(shared_of[r]) + d for _, r, _, m, d in suites)
+    failures = sum(sum(run_fails(i) for i in m) + shared_fails(r) + (d and dataset_fails)
+                   for _, r, _, m, d in suites)
     common = {"path_given": source.root_given, "fail_on": fail_on,
               "slicetime_version": __version__}
     out.write('<?xml version="1.0" encoding="UTF-8"?>\n')
     out.write(f'<testsuites name="slicetime" tests="{tests}" failures="{failures}" '
               'errors="0" skipped="0">\n')
     for suite_name, root, name, members, with_dataset in suites:
-        s_tests = len(members) + with_dataset
-        s_fail = sum(failing(totals.facts[i].counts) for i in members) + (
+        s_tests = len(members) + len(shared_of[root]) + with_dataset
+        s_fail = sum(run_fails(i) for i in members) + shared_fails(root) + (
             with_dataset and dataset_fails)
         suite = ET.Element("testsuite", name=xml_safe(suite_name), tests=str(s_tests),
                            failures=str(s_fail), errors="0", skipped="0")
@@ -624,12 +734,22 @@ def write_junit(source: ReportSource, out: IO[str], *, fail_on: str) -> None:
             ET.SubElement(props, "property", name=key, value=xml_safe(value))
         _write_element(out, props, ET)
         wanted = set(members)
-        for _index, obj in source.objects(wanted.__contains__) if members else ():
+        for index, obj in source.objects(wanted.__contains__) if members else ():
             holder = ET.Element("x")
             path = obj["path"]
             folder = junit._folder(path)
             classname = f"{name}/{folder}" if several and name else folder
-            junit._testcase(holder, classname, path, obj["findings"], threshold)
+            junit._testcase(holder, classname, path, grouping.own(index, obj["findings"]),
+                            threshold)
+            _write_element(out, holder[0], ET)
+        for group in shared_of[root]:
+            holder = ET.Element("x")
+            file = group.finding["file"]
+            folder = junit._folder(file)
+            classname = f"{name}/{folder}" if several and name else folder
+            junit._testcase(holder, classname, f"{file}: {group.finding['code']}",
+                            [group.finding], threshold,
+                            more_out=shared_runs_text(group, grouping, totals))
             _write_element(out, holder[0], ET)
         if with_dataset:
             holder = ET.Element("x")
@@ -638,6 +758,14 @@ def write_junit(source: ReportSource, out: IO[str], *, fail_on: str) -> None:
             _write_element(out, holder[0], ET)
         out.write("  </testsuite>\n")
     out.write("</testsuites>\n")
+
+
+def shared_runs_text(group: SharedFinding, grouping: Grouping, totals: AuditTotals) -> str:
+    """The runs a shared finding applies to, as plain lines (every run named)."""
+    phrase = runs_phrase(group, grouping, totals)
+    if phrase.startswith("all "):
+        return f"applies to {phrase}\n"
+    return f"applies to {phrase}:\n" + "".join(f"  {xml_safe(p)}\n" for p in group.paths)
 
 
 def _write_element(out: IO[str], element: Any, ET: Any) -> None:

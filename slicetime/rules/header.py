@@ -7,7 +7,7 @@ from collections.abc import Iterator
 
 import slicetime.readers.codes  # noqa: F401  (registers file/not-retrieved, checked below)
 from slicetime.model import AXES, RunRecord, Severity
-from slicetime.numbers import plain
+from slicetime.numbers import as_written, plain, secs
 from slicetime.rules.registry import RULES, Hit, renamed, run_check, run_rule
 from slicetime.schemes.infer import infer_scheme
 from slicetime.schemes.niftcodes import SLICE_CODE_NAMES, header_slice_times
@@ -70,14 +70,17 @@ def tr_mismatch(record: RunRecord) -> Iterator[Hit]:
         return
     hint = None
     ratio = htr / tr
+    stated = secs(htr)
     if math.isclose(ratio, 1000, rel_tol=1e-3):
+        # milliseconds are never called seconds, even when the header labels them so
+        stated = f"{as_written(htr)} (labelled seconds, milliseconds by its size)"
         hint = (f"pixdim[4] is {plain(header.raw_pixdim4)} with time unit {header.time_unit}: the "
                 "header unit is probably wrong (the value is in milliseconds).")
     elif math.isclose(ratio, 1e-3, rel_tol=1e-3):
         hint = ("The header TR is a thousandth of the sidecar's: the header unit is probably "
                 "wrong (microseconds or milliseconds labelled as seconds).")
     yield Hit(
-        f"header pixdim[4] gives a TR of {plain(htr)} s, the sidecar RepetitionTime {plain(tr)} s",
+        f"header pixdim[4] gives a TR of {stated}, the sidecar RepetitionTime {secs(tr)}",
         "RepetitionTime",
         {"header_tr": htr, "raw_pixdim4": header.raw_pixdim4,
          "time_unit": header.time_unit, "sidecar_tr": tr},
@@ -99,7 +102,7 @@ def tr_unset(record: RunRecord) -> Iterator[Hit]:
         return
     if header.raw_pixdim4 == 0:
         yield Hit(
-            f"pixdim[4] is 0 while RepetitionTime is {plain(tr)} s",
+            f"pixdim[4] is 0 while RepetitionTime is {secs(tr)}",
             "pixdim[4]", {"sidecar_tr": tr}, file=record.path,
         )
 

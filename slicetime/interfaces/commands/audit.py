@@ -153,7 +153,9 @@ def audit(
             _write_report(output, lambda fh: _audit_report(spool, fh, fmt, fail_on, show_all,
                                                            not hide_notes))
         if quiet:
-            click.echo(summary_line(spool.totals))
+            from slicetime.interfaces.grouping import group_findings
+
+            click.echo(summary_line(spool.totals, group_findings(spool)))
         elif output is None:
             with _buffered_stdout() as out:
                 _audit_report(spool, out, fmt, fail_on, show_all, not hide_notes)
