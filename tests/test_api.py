@@ -195,7 +195,7 @@ def test_readme_python_examples_run(tmp_path: Path, monkeypatch: pytest.MonkeyPa
 
 def test_audit_and_inspect_give_what_the_commands_report(tmp_path: Path) -> None:
     # one implementation: the API's findings are those of `audit --format json` and
-    # `show --json`, run for run
+    # `show --format json`, run for run
     from slicetime.pipelines.demo import build_demo_dataset
 
     root = tmp_path / "study"
@@ -211,7 +211,7 @@ def test_audit_and_inspect_give_what_the_commands_report(tmp_path: Path) -> None
     flagged = next(r for r in result.runs if r.findings)
     one = slicetime.inspect(flagged.record.abs_path)
     shown = json.loads(CliRunner().invoke(
-        cli, ["show", flagged.record.abs_path, "--json"]).stdout)
+        cli, ["show", flagged.record.abs_path, "--format", "json"]).stdout)
     assert [f.code for f in one.findings] == [f["code"] for f in shown["findings"]]
     assert [f.code for f in one.findings] == [f.code for f in flagged.findings]
     assert one.record.scheme == flagged.record.scheme

@@ -40,8 +40,18 @@ def dataset(tmp_path: Path) -> Path:
     return root
 
 
+def test_former_spellings_still_work_with_a_notice(dataset: Path) -> None:
+    # show --json (0.1) is show --format json: the same document, a notice on stderr,
+    # and hidden from the help
+    code, new, err_new = run_cli("show", str(dataset / RUN), "--format", "json")
+    old_code, old, err_old = run_cli("show", str(dataset / RUN), "--json")
+    assert old_code == code and json.loads(old) == json.loads(new)
+    assert err_new == "" and "--format json" in err_old and "next release" in err_old
+    assert "--json" not in run_cli("show", "--help")[1]
+
+
 def test_show_json_is_the_contract_run_object(dataset: Path) -> None:
-    code, out, _ = run_cli("show", str(dataset / RUN), "--json")
+    code, out, _ = run_cli("show", str(dataset / RUN), "--format", "json")
     assert code == 0
     obj = json.loads(out)
     jsonschema.validate(obj, report_schema()["$defs"]["run"] | {"$defs": report_schema()["$defs"]})
@@ -96,7 +106,7 @@ def test_garbage_file_is_a_finding_not_a_crash(tmp_path: Path) -> None:
     bad = root / "sub-01/func/sub-01_task-tap_bold.nii.gz"
     bad.parent.mkdir(parents=True)
     bad.write_bytes(os.urandom(2000))
-    code, out, _ = run_cli("show", str(bad), "--json")
+    code, out, _ = run_cli("show", str(bad), "--format", "json")
     assert code == 1  # a file show cannot read at all: the finding, and exit 1 (issue 15)
     assert "file/not-nifti" in {f["code"] for f in json.loads(out)["findings"]}
 

@@ -135,9 +135,21 @@ def test_the_group_table_matches_each_command() -> None:
         command = command_named(name)
         assert command.name == name
         assert command.get_short_help_str(1000) == short, name
-        # the line of ``slicetime --help`` made from the table equals the one click
-        # makes from the loaded command, at any width
-        stand_in = click.Command(name, help=short)
-        for limit in (30, 45, 88):
-            assert stand_in.get_short_help_str(limit) == command.get_short_help_str(
-                limit), (name, limit)
+
+
+@pytest.mark.parametrize("columns", [80, 120])
+def test_every_help_fits_the_terminal_and_no_summary_is_cut(columns: int) -> None:
+    from slicetime.interfaces.cli import COMMANDS, cli
+
+    runner = CliRunner(env={"COLUMNS": str(columns)})
+    top = runner.invoke(cli, ["--help"], terminal_width=columns).output
+    for name in ("", *COMMANDS):
+        text = top if not name else runner.invoke(cli, [name, "--help"],
+                                                  terminal_width=columns).output
+        for line in text.splitlines():
+            assert len(line) <= columns, (name, columns, line)
+    # each command's summary whole in the table (wrapped, never cut with dots)
+    flat = " ".join(top.split())
+    for name, (_, short) in COMMANDS.items():
+        assert f"{name} {short}" in flat, name
+    assert "…" not in top

@@ -467,12 +467,13 @@ def test_enhanced_multiband_series(tmp_path: Path) -> None:
 
 def test_show_on_a_series_folder_and_on_a_run(tmp_path: Path) -> None:
     root, run, truth = resting_tree(tmp_path, None)
-    out = CliRunner().invoke(cli, ["show", str(root / "sourcedata/sub-01/rest"), "--json"])
+    out = CliRunner().invoke(cli, ["show", str(root / "sourcedata/sub-01/rest"),
+                                   "--format", "json"])
     assert out.exit_code == 0, out.output
     data = json.loads(out.output)
     assert data["scheme"]["label"] == "interleaved ascending from 1"
     assert data["layout"] == "mosaic" and data["repetition_time"] == pytest.approx(2.07)
-    shown = CliRunner().invoke(cli, ["show", str(run), "--json"])
+    shown = CliRunner().invoke(cli, ["show", str(run), "--format", "json"])
     assert json.loads(shown.output)["source"]["source_times"] == pytest.approx(truth, abs=1e-6)
     text = CliRunner().invoke(cli, ["show", str(run)])
     assert "source DICOM series" in text.output and "tile 32" in text.output

@@ -94,7 +94,7 @@ def test_show_lists_exactly_the_audit_findings_of_every_run(tmp_path: Path) -> N
     assert len(runs) == 10
     differing = 0
     for run in runs:
-        shown_code, shown, _ = run_cli("show", str(root / run["path"]), "--json")
+        shown_code, shown, _ = run_cli("show", str(root / run["path"]), "--format", "json")
         obj = json.loads(shown)
         assert obj["findings"] == run["findings"], run["path"]
         errors = any(f["severity"] == "error" for f in run["findings"])
@@ -119,8 +119,9 @@ def test_show_fail_on_and_unreadable_file(tmp_path: Path) -> None:
 def test_show_accepts_the_runs_sidecar_and_refuses_a_folder(tmp_path: Path) -> None:
     root = lab(tmp_path)
     image = root / "sub-03/func/sub-03_task-tap_bold.nii.gz"
-    by_image = run_cli("show", str(image), "--json")
-    by_sidecar = run_cli("show", str(image.with_name("sub-03_task-tap_bold.json")), "--json")
+    by_image = run_cli("show", str(image), "--format", "json")
+    by_sidecar = run_cli("show", str(image.with_name("sub-03_task-tap_bold.json")),
+                         "--format", "json")
     assert by_sidecar == by_image
     code, _, err = run_cli("show", str(root / "sub-01/func"))
     assert code == 2 and err.count("\n") == 1 and "func: a folder" in err
@@ -135,7 +136,7 @@ def test_show_accepts_the_runs_sidecar_and_refuses_a_folder(tmp_path: Path) -> N
 def test_milliseconds_give_one_finding_and_the_scheme_in_seconds(tmp_path: Path) -> None:
     root = lab(tmp_path)
     code, out, _ = run_cli("show", str(root / "sub-03/func/sub-03_task-tap_bold.nii.gz"),
-                           "--json")
+                           "--format", "json")
     obj = json.loads(out)
     assert [f["code"] for f in obj["findings"]] == ["timing/units-ms"]
     folded = {f["code"] for f in obj["findings"][0]["evidence"]["folded"]}

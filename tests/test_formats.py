@@ -98,7 +98,7 @@ def test_audit_json_and_jsonl_validate_and_undocumented_keys_fail(study: Path) -
 
 def test_show_json_of_runs_and_of_a_dicom_series_validate(study: Path, tmp_path: Path) -> None:
     for rel in (MS_RUN, PLAIN_RUN):
-        _, text = run_cli("show", study / rel, "--json")
+        _, text = run_cli("show", study / rel, "--format", "json")
         obj = json.loads(text)
         valid("show", obj)
         obj["undocumented"] = 1
@@ -106,9 +106,9 @@ def test_show_json_of_runs_and_of_a_dicom_series_validate(study: Path, tmp_path:
     from tests.test_dicom_source import resting_tree
 
     root, run, _ = resting_tree(tmp_path, None)
-    _, series = run_cli("show", root / "sourcedata/sub-01/rest", "--json")
+    _, series = run_cli("show", root / "sourcedata/sub-01/rest", "--format", "json")
     valid("show", json.loads(series))
-    _, with_source = run_cli("show", run, "--json")
+    _, with_source = run_cli("show", run, "--format", "json")
     obj = json.loads(with_source)
     assert obj["source"]["series"]["layout"] == "mosaic"
     valid("show", obj)

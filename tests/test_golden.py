@@ -1,7 +1,7 @@
 """Golden reports: the restructuring of issue 14 must not change what users read.
 
 The machine-readable reports (``audit --format json``, ``--format junit`` and
-``show --json``) of the demo study and of a generated 2,000-run dataset are
+``show --format json``) of the demo study and of a generated 2,000-run dataset are
 compared with the files under ``tests/golden/``. They are compared as
 *content* (JSON parsed and dumped with sorted keys, XML canonicalised with
 whitespace-only text dropped), so a change of layout alone (indentation,
@@ -258,7 +258,8 @@ def test_demo_audit_report_is_unchanged(demo_root: Path, fmt: str) -> None:
 
 
 def test_demo_show_reports_are_unchanged(demo_root: Path) -> None:
-    shown = [canonical_json(_invoke(["show", str(demo_root / rel), "--json"]), demo_root.parent)
+    shown = [canonical_json(_invoke(["show", str(demo_root / rel), "--format", "json"]),
+                            demo_root.parent)
              for rel in DEMO_SHOWN]
     check_golden("demo-show.json", "".join(shown))
 
@@ -276,7 +277,8 @@ def test_large_show_reports_are_unchanged(large_root: Path) -> None:
     for stem in picked:
         sub, ses = stem.split("_")[:2]
         image = large_root / sub / ses / "func" / f"{stem}.nii.gz"
-        shown.append(canonical_json(_invoke(["show", str(image), "--json"]), large_root.parent))
+        shown.append(canonical_json(_invoke(["show", str(image), "--format", "json"]),
+                                    large_root.parent))
     check_golden("large-show.json", "".join(shown))
 
 

@@ -52,26 +52,21 @@ class LazyGroup(click.Group):
         return command
 
     def format_commands(self, ctx: click.Context, formatter: click.HelpFormatter) -> None:
-        """The command table of ``slicetime --help``, as click lays it out, from the
-        one-line helps of :data:`COMMANDS` (no command module imported)."""
+        """The command table of ``slicetime --help`` from the one-line helps of
+        :data:`COMMANDS` (no command module imported): each summary whole, wrapped
+        under itself when the terminal is narrow (click would cut it with "...")."""
         names = self.list_commands(ctx)
         if not names:
             return
-        limit = formatter.width - 6 - max(len(name) for name in names)
-        rows: list[tuple[str, str]] = []
-        for name in names:
-            # click shortens a loaded command's help; a stand-in carrying the table's
-            # line is shortened by the same rule
-            command = self.commands.get(name) or click.Command(name, help=COMMANDS[name][1])
-            rows.append((name, command.get_short_help_str(limit)))
+        rows = [(name, COMMANDS[name][1]) for name in names if name in COMMANDS]
         with formatter.section("Commands"):
             formatter.write_dl(rows)
 
 
 EXIT_STATUSES = """\b
 Exit status (every command):
-  0    nothing at or above --fail-on (audit, show), every run corrected or up to
-       date (correct), nothing to fix or everything applied (fix), no claim
+  0    nothing at or above --fail-on (audit, show), every run corrected or up
+       to date (correct), nothing to fix or everything applied (fix), no claim
        contradicted (verify)
   1    a finding at or above --fail-on (audit, show; also a file show cannot
        read), a run refused or failed (correct), changes planned, a fixable

@@ -74,19 +74,21 @@ def run_demo(out: Path) -> int:
             console.print(" " * (indent if i == 0 else indent + 4) + part, markup=False)
 
     def rule(title: str) -> None:
+        console.print()  # every section starts after one blank line
         console.print(f"── {title} " + "─" * max(3, min(width or 72, 72) - len(title) - 4))
 
     dataset = out / "quiet-rooms"
     build_demo_dataset(dataset)
     say(f"slicetime demo: {STUDY}")
     say(f"dataset written to {dataset}")
+    say(f"open this first when the tour ends: {out / 'audit.html'} (the audit report, "
+        "one page)")
     console.print()
     for run in demo_runs():
         if run.story:
             say(f"planted: {run.relpath}: {run.story}", 2)
     say("planted: sub-03 overrides the hum timing for all its sessions", 2)
     say("planted: task-chirp_bold.json leaves out the multiband factor", 2)
-    console.print()
 
     example = dataset / "sub-01/ses-1/func/sub-01_ses-1_task-chirp_bold.nii.gz"
     rule("1. slicetime show (one run)")
@@ -107,7 +109,6 @@ def run_demo(out: Path) -> int:
         emit(console, finding_lines([verdict.finding], width=width, run_path=rel))
     say("the sidecar override says 'descending'; the slices' own time courses say "
         "otherwise: fix cannot settle which is true, a person must")
-    console.print()
 
     rule("4. slicetime fix (the plan, on a copy of the study)")
     fixed = out / "quiet-rooms-fixed"
@@ -150,8 +151,8 @@ def run_demo(out: Path) -> int:
         ("the study, as planted", str(dataset)),
         ("audit report (JSON)", str(report)),
         *([("audit report (HTML)", f"{html}   (open this first)")] if html else []),
-        ("the repaired copy", f"{fixed}  (errors {before_counts['error']} -> "
-         f"{after_counts['error']}, warnings {before_counts['warning']} -> "
+        ("the repaired copy", f"{fixed}  (errors {before_counts['error']} → "
+         f"{after_counts['error']}, warnings {before_counts['warning']} → "
          f"{after_counts['warning']})"),
         ("backups and undo journal", str(applied.journal)),
         ("corrected runs", str(aligned)),

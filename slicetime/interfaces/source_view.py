@@ -115,7 +115,7 @@ def render_series(series: SeriesTiming, console: Console) -> None:
 
 
 def run_source_object(record: RunRecord) -> dict[str, Any] | None:
-    """The run's source evidence for ``show --json`` (None when not checked)."""
+    """The run's source evidence for ``show --format json`` (None when not checked)."""
     evidence = record.source
     if evidence is None:
         return None

@@ -254,8 +254,9 @@ def render_correct(result: CorrectResult, console: Console) -> None:
             console.print(Text(("" if i == 0 else "  ") + part))
 
 
-def render_fix_plan(plan: FixPlan, console: Console) -> None:
-    """Every planned file: what changes and why (rule, evidence, runs), then the diff."""
+def render_fix_plan(plan: FixPlan, console: Console, apply_hint: str | None = None) -> None:
+    """Every planned file: what changes and why (rule, evidence, runs), then the diff;
+    last, when changes are planned, ``apply_hint`` (the command that writes them)."""
     width = fit_width(console)
     unicode = supports_unicode(console)
     for change in plan.changes:
@@ -316,6 +317,9 @@ def render_fix_plan(plan: FixPlan, console: Console) -> None:
     total = len(plan.changes)
     console.print(Text(f"{count(total, 'file')} to change"
                        + ("" if total or plan.unplanned else " — nothing to fix")))
+    if total and apply_hint:
+        for i, part in enumerate(screen.wrap_words(apply_hint, width, rest=4)):
+            console.print(Text(("" if i == 0 else "    ") + part, style="bold"), soft_wrap=True)
 
 
 def left_unfixed(plan: FixPlan) -> list[tuple[str, int, str]]:

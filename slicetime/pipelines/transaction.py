@@ -374,9 +374,11 @@ class JournalEntry:
 
 
 def default_backup_dir(roots: Sequence[str]) -> Path:
-    """``<dataset>-slicetime-backups/<UTC time>`` beside the (first) dataset root."""
+    """``<dataset>-slicetime-backups/<UTC time to the second>`` beside the (first)
+    dataset root; a second apply within the same second gets ``-1``, ``-2``... (made
+    unique where the folder is created, by ``mkdir`` refusing an existing one)."""
     root = Path(roots[0]) if roots else Path.cwd()
-    stamp = dt.datetime.now(dt.timezone.utc).strftime("%Y%m%dT%H%M%S%fZ")
+    stamp = dt.datetime.now(dt.timezone.utc).strftime("%Y%m%dT%H%M%SZ")
     return root.parent / f"{root.name}-slicetime-backups" / stamp
 
 

@@ -18,7 +18,7 @@ from .schema_text import describe_schema
 SCHEMAS = {
     "report": "report.schema.json",          # audit --format json
     "report-lines": "report-lines.schema.json",  # audit --format jsonl, each line
-    "show": "show.schema.json",              # show --json (a run, or a DICOM series)
+    "show": "show.schema.json",              # show --format json (a run, or a DICOM series)
     "correct": "correct.schema.json",        # correct --format json
     "verify": "verify.schema.json",          # verify --format json
     "fix-plan": "fix-plan.schema.json",      # fix --plan FILE

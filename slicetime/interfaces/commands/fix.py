@@ -3,6 +3,7 @@
 
 from __future__ import annotations
 
+import shlex
 import sys
 from pathlib import Path
 
@@ -75,8 +76,8 @@ def fix(
     reason), or some files were refused; 2 bad usage.
     \b
     Examples:
-      slicetime fix ds/                    # show the planned changes as diffs
-      slicetime fix ds/ --apply            # write them, with backups and a journal
+      slicetime fix ds/            # show the planned changes as diffs
+      slicetime fix ds/ --apply    # write them, with backups and a journal
       slicetime fix --undo ds-slicetime-backups/<UTC time>/journal.json
       slicetime fix --undo JOURNAL ds-copy/  # the dataset moved or copied
     \b
@@ -121,7 +122,11 @@ def fix(
             plan.notes.extend(f"--apply would refuse it, and then write nothing: {line}"
                               for line in fixing.preflight(plan, replace_links,
                                                            rewrite_read_only))
-            render_fix_plan(plan, console)
+            hint = None
+            if not do_apply and plan_file is None:
+                given = " ".join(shlex.quote(xml_safe(str(p))) for p in paths)
+                hint = f"to write them: slicetime fix {given} --apply"
+            render_fix_plan(plan, console, apply_hint=hint)
         if not do_apply:
             if plan_file is not None:
                 fixing.write_plan(plan, plan_file)
@@ -151,8 +156,17 @@ def fix(
         click.echo(f"nothing was written: {len(applied.refused)} of {len(plan.changes)} files "
                    "would be refused, and a plan is applied whole or not at all")
     if applied.journal is not None:
-        click.echo(f"backups and journal: {xml_safe(applied.journal)}  (undo: slicetime fix "
-                   f"--undo {xml_safe(applied.journal)})")
+        journal = xml_safe(applied.journal)
+        from slicetime.interfaces import screen
+
+        width = screen.width_for(sys.stdout)
+        for label, value in (("backups and journal:", journal),
+                             ("undo with:", f"slicetime fix --undo {journal}")):
+            # a path is never cut (it is copied from here): too long, it goes on its own line
+            if width is None or len(label) + 1 + len(value) <= width:
+                click.echo(f"{label} {value}")
+            else:
+                click.echo(f"{label}\n  {value}")
     left = (fixing.reaudit(plan, policy_file=policy_file,
                            source=source_settings(source_check, source_map))
             if applied.written else [])

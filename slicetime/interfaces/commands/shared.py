@@ -77,12 +77,21 @@ def walking_options(verb: str) -> Callable[[F], F]:
     )
 
 
+def former_spelling(old: str, new: str) -> None:
+    """The notice (on standard error, so a JSON document on standard output stays
+    clean) that an option was used under the spelling of an earlier release, which is
+    read, hidden from help, until the next release (DEVELOPERS.md, "Option names")."""
+    click.echo(f"slicetime: {old} is now spelt {new}; the former spelling is read until "
+               "the next release", err=True)
+
+
 #: what ``--jobs`` defaults to (``pipelines.executor.make_executor``): header-only work
 #: (audit, fix) and work that reads image data (correct)
-JOBS_LIGHT = "the CPUs available; one on machines with 2 or fewer"
-JOBS_AUDIT = ("the CPUs available; on machines with 2 or fewer, one unless the machine is "
-              "idle and there are 500 runs or more")
-JOBS_HEAVY = "the CPUs available; memory grows with each"
+JOBS_LIGHT = ("one per CPU; a single process on a machine with 1 or 2 CPUs, where more "
+              "would be slower")
+JOBS_AUDIT = ("one per CPU; on a machine with 1 or 2 CPUs, a single process unless the "
+              "machine is idle and there are 500 runs or more")
+JOBS_HEAVY = "one per CPU; each needs memory for a run of its own"
 
 
 def executor_options(*, default: str, shared: str = "Files") -> Callable[[F], F]:
@@ -91,7 +100,8 @@ def executor_options(*, default: str, shared: str = "Files") -> Callable[[F], F]
     :data:`JOBS_HEAVY`); ``shared``: what the Dask workers must see."""
     return _options(
         click.option("--jobs", type=click.IntRange(min=1), default=None,
-                     help=f"Local worker processes (default: {default})."),
+                     metavar="N",
+                     help=f"Use N worker processes on this machine. Default: {default}."),
         click.option("--scheduler", metavar="ADDRESS",
                      help="Run on a Dask cluster: the address of its scheduler "
                      f"(tcp://host:8786). {shared} must be on a file system the workers "

@@ -8,19 +8,29 @@ from pathlib import Path
 
 import click
 
-from slicetime.interfaces.commands.shared import EXIT_FINDINGS, UserError, friendly, policy_option
+from slicetime.interfaces.commands.shared import (
+    EXIT_FINDINGS,
+    UserError,
+    former_spelling,
+    friendly,
+    policy_option,
+)
 from slicetime.model import FailOn
 
 
 @click.command()
 @click.argument("file", type=click.Path(path_type=Path))
-@click.option("--json", "as_json", is_flag=True, help="Print the run object of the JSON report.")
+@click.option("--format", "fmt", type=click.Choice(["text", "json"]), default="text",
+              show_default=True, help="json: print the run object of the JSON report.")
+@click.option("--json", "former_json", is_flag=True, hidden=True,
+              help="Former spelling of --format json (read until the next release).")
 @click.option("--fail-on", type=click.Choice(FailOn.CHOICES), default="error",
               show_default=True, help="Exit 1 when one of the run's findings reaches this "
               "severity.")
 @policy_option()
 @friendly
-def show(file: Path, as_json: bool, fail_on: str, policy_file: Path | None) -> None:
+def show(file: Path, fmt: str, former_json: bool, fail_on: str,
+         policy_file: Path | None) -> None:
     """Show one run: its schedule, where each value came from, its scheme and findings.
 
     FILE is the run's image or its own sidecar (_bold.json). The findings are
@@ -34,6 +44,9 @@ def show(file: Path, as_json: bool, fail_on: str, policy_file: Path | None) -> N
     from slicetime.pipelines.audit import inspect_run
     from slicetime.readers.dicom import is_dicom_input
 
+    if former_json:
+        former_spelling("show --json", "show --format json")
+    as_json = former_json or fmt == "json"
     if is_dicom_input(str(file)):
         _show_series(file, as_json)
         return

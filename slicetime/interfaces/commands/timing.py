@@ -62,8 +62,10 @@ def timing(
     \b
     Examples:
       slicetime timing --slices 40 --tr 2 --order interleaved
-      slicetime timing --slices 60 --tr 1 --multiband 4 --order interleaved --first auto
-      slicetime timing --slices 16 --tr 3 --delay-time 1.5 --order interleaved  # sparse
+      slicetime timing --slices 60 --tr 1 --multiband 4 --order interleaved \\
+          --first auto
+      # sparse: slices spread over 1.5 s of a 3 s TR
+      slicetime timing --slices 16 --tr 3 --delay-time 1.5 --order interleaved
     """
     from slicetime.numbers import as_written, plain
     from slicetime.schemes.generate import Protocol, array_times, slice_timing
