@@ -147,6 +147,23 @@ def as_written(value: float) -> str:
     return plain(value)
 
 
+def shown(value: object) -> str:
+    """Any number on a screen whose unit the screen does not know (a finding's
+    grounds): 6 significant digits and at most 5 decimals (the 10 µs of a time in
+    seconds), grouped from 10,000 on, never scientific."""
+    if isinstance(value, bool) or not isinstance(value, int | float):
+        return str(value)
+    if isinstance(value, int):
+        return grouped(value)
+    if not _finite(value):
+        return str(value)
+    if abs(value) >= 10_000:
+        return as_written(value)
+    text = plain(value)
+    decimals = text.partition(".")[2]
+    return fixed(value, SCREEN_S_DECIMALS) if len(decimals) > SCREEN_S_DECIMALS else text
+
+
 def ms(seconds: float) -> str:
     """Seconds shown as milliseconds: ``138.89 ms`` (at most 2 decimals)."""
     return f"{fixed(seconds * 1000.0, SCREEN_MS_DECIMALS)} ms"
@@ -165,4 +182,4 @@ def duration(seconds: float) -> str:
 
 
 __all__ = ["amount", "as_written", "duration", "fixed", "grouped", "json_float", "json_time",
-           "json_times", "ms", "plain", "secs", "size_words", "tidy_json"]
+           "json_times", "ms", "plain", "secs", "shown", "size_words", "tidy_json"]

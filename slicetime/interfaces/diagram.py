@@ -10,7 +10,7 @@ from __future__ import annotations
 import math
 from collections.abc import Sequence
 
-from slicetime.numbers import plain
+from slicetime.numbers import secs
 
 #: (marker, empty cell, axis rule) for each character set
 _GLYPHS = {True: ("●", "·", "─"), False: ("#", ".", "-")}
@@ -51,6 +51,6 @@ def order_diagram(
                      else f"{label:>{label_width}} |{''.join(cells)}|")
     pad = " " * label_width
     lines.append(f"{pad} {'└' if unicode else '+'}{rule * width}{'┘' if unicode else '+'}")
-    left, right = "0 s", f"{plain(span)} s"
+    left, right = "0 s", f"{secs(span)}"
     lines.append(f"{pad}  {left}{' ' * max(1, width - len(left) - len(right))}{right}")
     return lines

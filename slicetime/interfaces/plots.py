@@ -28,7 +28,7 @@ from typing import Any
 from slicetime.engines.plan import DEFAULT_REFERENCE, PlanError, ReferenceChoice, reference_time
 from slicetime.interfaces.safe_text import xml_safe
 from slicetime.model import RunRecord, before_start
-from slicetime.numbers import secs
+from slicetime.numbers import SCREEN_S_DECIMALS, secs
 from slicetime.words import count, encoding_direction
 
 #: our own palette (also used by the HTML report for the matching legend)
@@ -46,8 +46,10 @@ COLOURS = {
     "text": "#263238",
 }
 
-#: times and windows are compared at this resolution (seconds): 0.1 ms
-RESOLUTION_DECIMALS = 4
+#: times and windows are compared and labelled at this resolution (seconds): the 10 µs
+#: every screen uses (``numbers.SCREEN_S_DECIMALS``), so a drawing's labels show the
+#: digits ``correct`` and ``show`` print
+RESOLUTION_DECIMALS = SCREEN_S_DECIMALS
 
 #: figure size in inches, and the user-space size of the SVG at 72 dpi
 FIGSIZE = (7.2, 3.0)

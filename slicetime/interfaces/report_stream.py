@@ -43,6 +43,7 @@ from slicetime.interfaces.grouping import (
 from slicetime.interfaces.safe_text import _escape, xml_safe
 from slicetime.model import Counts, FailOn, Finding, Scheme, Severity
 from slicetime.numbers import fixed, json_times, plain, secs
+from slicetime.numbers import shown as shown_number
 from slicetime.pipelines.audit import AuditResult, AuditTotals, RunFacts, RunResult, dataset_names
 from slicetime.rules.dataset import protocol_key
 from slicetime.words import count, plural_of
@@ -428,8 +429,8 @@ def finding_screen_lines(f: dict[str, Any], width: int | None, *, run_path: str 
 def _value_text(value: Any, limit: int = 12) -> str:
     if isinstance(value, bool):
         return "yes" if value else "no"
-    if isinstance(value, float):
-        return plain(value)
+    if isinstance(value, int | float):
+        return shown_number(value)
     if isinstance(value, list | tuple):
         shown = ", ".join(_value_text(v, limit) for v in value[:limit])
         return shown + (f", … ({len(value)} in all)" if len(value) > limit else "")

@@ -7,7 +7,7 @@ from collections.abc import Callable, Hashable, Iterator, Sequence
 from typing import Any
 
 from slicetime.model import TIME_TOLERANCE, RunRecord, RunView, Severity
-from slicetime.numbers import plain
+from slicetime.numbers import secs
 from slicetime.rules.registry import DatasetHit, Hit, dataset_rule, run_rule
 
 E, W, N = Severity.ERROR, Severity.WARNING, Severity.NOTE
@@ -124,7 +124,7 @@ def outlier_tr(records: Sequence[RunView]) -> Iterator[DatasetHit]:
         tr = record.timing.repetition_time  # seconds, with or without slice times
         return round(tr, 3) if tr else None
 
-    yield from _consensus(records, value, lambda v: f"{plain(v)} s", "RepetitionTime",
+    yield from _consensus(records, value, secs, "RepetitionTime",
                           "RepetitionTime")
 
 

@@ -44,7 +44,7 @@ from slicetime.model import (
     RunRecord,
     Severity,
 )
-from slicetime.numbers import plain
+from slicetime.numbers import secs
 from slicetime.policy.model import ExpectedProtocol
 from slicetime.rules.dataset import protocol_key
 from slicetime.rules.registry import RULES
@@ -163,7 +163,7 @@ def _from_header(record: RunRecord) -> list[Repair]:
         return []
     name = SLICE_CODE_NAMES.get(header.slice_code, str(header.slice_code))
     source = (f"the NIfTI header: slice_code {header.slice_code} ({name}), slice_duration "
-              f"{plain(header.slice_duration)} s, slice axis {schedule.axis}")
+              f"{secs(header.slice_duration)}, slice axis {schedule.axis}")
     evidence = {"slice_code": header.slice_code, "slice_duration": header.slice_duration,
                 "slice_axis": schedule.axis}
     repairs = [_repair(record, "timing/from-header", "SliceTiming",
@@ -223,7 +223,7 @@ def _missing_from_policy(record: RunRecord, protocol: ExpectedProtocol | None) -
     where = protocol.name or f"protocols[{protocol.index}]"
     return [_repair(record, "timing/missing", "SliceTiming", times,
                     f"the lab policy's protocol {where} ('{protocol.scheme}', "
-                    f"{protocol.slices} slices, TR {plain(protocol.repetition_time)} s)",
+                    f"{protocol.slices} slices, TR {secs(protocol.repetition_time)})",
                     {"protocol": where, "scheme": protocol.scheme})]
 
 

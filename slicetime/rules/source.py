@@ -15,7 +15,7 @@ from collections.abc import Iterator
 import slicetime.readers.codes  # noqa: F401  (registers source/unreadable, checked below)
 from slicetime.model import TIME_TOLERANCE, RunRecord, Severity
 from slicetime.model_source import SeriesTiming, SourceEvidence
-from slicetime.numbers import plain
+from slicetime.numbers import plain, secs
 from slicetime.rules.registry import Hit, run_check, run_rule
 from slicetime.schemes.correspond import Correspondence, Mismatch, correspond
 from slicetime.schemes.infer import infer_scheme
@@ -332,8 +332,8 @@ def tr_differs(record: RunRecord) -> Iterator[Hit]:
     if found is None or tr is None or found[1].repetition_time is None:
         return
     if abs(tr - found[1].repetition_time) > TIME_TOLERANCE:
-        yield Hit(f"the repetition time is {plain(tr)} s, the source series {found[1].series} "
-                  f"says {plain(found[1].repetition_time)} s", field="RepetitionTime",
+        yield Hit(f"the repetition time is {secs(tr)}, the source series {found[1].series} "
+                  f"says {secs(found[1].repetition_time)}", field="RepetitionTime",
                   evidence={**_series_facts(found[1]), "run": tr,
                             "source": found[1].repetition_time})
 

@@ -6,7 +6,7 @@ from collections.abc import Iterator
 from typing import Any
 
 from slicetime.model import RunRecord, Severity, SliceSchedule, before_start, past_end
-from slicetime.numbers import plain, secs
+from slicetime.numbers import as_written, plain, secs
 from slicetime.rules.registry import Hit, run_rule
 from slicetime.schemes.resolve import is_number
 from slicetime.words import count
@@ -199,7 +199,7 @@ def negative(record: RunRecord) -> Iterator[Hit]:
         idx = [i for i, t in enumerate(times) if before_start(t)]
         yield Hit(
             f"{len(idx)} SliceTiming entr{'y is' if len(idx) == 1 else 'ies are'} negative "
-            f"(smallest {plain(min(times))} s)",
+            f"(smallest {secs(min(times))})",
             "SliceTiming",
             {"indices": idx[:20], "min": min(times)},
         )
@@ -233,7 +233,7 @@ def units_ms(record: RunRecord) -> Iterator[Hit]:
     ev = verdict.evidence
     window, name = record.timing.window, record.timing.window_name
     yield Hit(
-        f"SliceTiming goes up to {plain(ev['max'])}, above {name} ({plain(window)} s); "
+        f"SliceTiming goes up to {as_written(ev['max'])}, above {name} ({secs(window)}); "
         f"divided by 1000 it fits"
         + (f" ({record.scheme.label} in seconds)" if record.scheme is not None else ""),
         "SliceTiming",
@@ -265,7 +265,7 @@ def exceeds_tr(record: RunRecord) -> Iterator[Hit]:
     late = [i for i, t in enumerate(_sidecar_order(timing.schedule, times)) if past_end(t, tr)]
     yield Hit(
         f"{len(late)} SliceTiming entr{'y is' if len(late) == 1 else 'ies are'} at or "
-        f"beyond RepetitionTime {plain(tr)} s (largest {plain(max(times))} s)",
+        f"beyond RepetitionTime {secs(tr)} (largest {secs(max(times))})",
         "SliceTiming",
         {"indices": late[:20], "max": max(times), "RepetitionTime": tr},
     )
@@ -300,7 +300,7 @@ def exceeds_acquisition(record: RunRecord) -> Iterator[Hit]:
     if late:
         yield Hit(
             f"{len(late)} SliceTiming entr{'y is' if len(late) == 1 else 'ies are'} at or after "
-            f"the end of acquisition ({name} = {plain(window)} s)",
+            f"the end of acquisition ({name} = {secs(window)})",
             "SliceTiming",
             {"indices": late[:20], "max": max(times), "window": window, "window_from": name},
         )
@@ -325,7 +325,7 @@ def all_equal(record: RunRecord) -> Iterator[Hit]:
     if is_number(mb) and mb == scheme.n_slices:
         return
     yield Hit(
-        f"all {scheme.n_slices} slices are at {plain(scheme.group_times[0])} s",
+        f"all {scheme.n_slices} slices are at {secs(scheme.group_times[0])}",
         "SliceTiming",
         {"time": scheme.group_times[0], "slices": scheme.n_slices},
     )
@@ -482,7 +482,7 @@ def tr_missing(record: RunRecord) -> Iterator[Hit]:
     hint = None
     if record.header is not None and record.header.repetition_time:
         ev["header_tr"] = record.header.repetition_time
-        hint = f"The header's pixdim[4] says {plain(record.header.repetition_time)} s."
+        hint = f"The header's pixdim[4] says {secs(record.header.repetition_time)}."
     yield Hit(
         "neither RepetitionTime nor VolumeTiming is given by any applicable sidecar",
         "RepetitionTime", ev, hint=hint,
@@ -613,7 +613,7 @@ def tr_units(record: RunRecord) -> Iterator[Hit]:
     verdict = record.timing.units.get("RepetitionTime")
     if verdict is not None and verdict.unit == "ms":
         tr = verdict.evidence["value"]
-        yield Hit(f"RepetitionTime is {plain(tr)}; {plain(tr / 1000)} s is far more likely",
+        yield Hit(f"RepetitionTime is {plain(tr)}; {secs(tr / 1000)} is far more likely",
                   "RepetitionTime", {"value": tr, "as_seconds": tr / 1000})
 
 
