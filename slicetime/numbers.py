@@ -169,8 +169,10 @@ def ms(seconds: float) -> str:
     return f"{fixed(seconds * 1000.0, SCREEN_MS_DECIMALS)} ms"
 
 
-def secs(seconds: float) -> str:
-    """Seconds shown as seconds: ``2.5 s`` (at most 5 decimals)."""
+def secs(seconds: float | None) -> str:
+    """Seconds shown as seconds: ``2.5 s`` (at most 5 decimals); None: ``unknown``."""
+    if seconds is None:
+        return "unknown"
     return f"{fixed(seconds, SCREEN_S_DECIMALS)} s"
 
 

@@ -124,7 +124,9 @@ def outlier_tr(records: Sequence[RunView]) -> Iterator[DatasetHit]:
         tr = record.timing.repetition_time  # seconds, with or without slice times
         return round(tr, 3) if tr else None
 
-    yield from _consensus(records, value, secs, "RepetitionTime",
+    yield from _consensus(records, value,
+                          lambda v: secs(v) if isinstance(v, int | float) else str(v),
+                          "RepetitionTime",
                           "RepetitionTime")
 
 
