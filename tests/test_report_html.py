@@ -682,3 +682,64 @@ def test_schedule_without_window_draws(tmp_path: Path) -> None:
     assert spec.window == 3.0
     body, _ = render_svg(spec, "w-")
     assert "window unknown" not in body
+
+
+def _study_of_many_sessions(subjects: int, sessions: int, tasks: int) -> AuditResult:
+    """An audit of ``subjects`` × ``sessions`` × ``tasks`` runs (records made in memory)."""
+    from dataclasses import replace
+
+    from slicetime.model import Finding, Severity
+
+    timing = slice_timing(Protocol(n_slices=40, order="interleaved", repetition_time=2.0,
+                                   decimals=4))
+    base = make_record({"RepetitionTime": 2.0, "SliceTiming": timing},
+                       header_info(shape=(8, 8, 40, 20)),
+                       name="sub-01/ses-1/func/sub-01_ses-1_task-t0_bold.nii.gz")
+    runs = []
+    for s in range(1, subjects + 1):
+        for v in range(1, sessions + 1):
+            for t in range(tasks):
+                name = (f"sub-{s:02d}/ses-{v}/func/sub-{s:02d}_ses-{v}_task-listening{t}"
+                        "_bold.nii.gz")
+                findings = [Finding("timing/uneven", Severity.WARNING, "uneven", name,
+                                    "SliceTiming")] if (s + t) % 7 == 0 else []
+                record = replace(base, path=name, abs_path=f"/ds/{name}",
+                                 entities={"sub": f"{s:02d}", "ses": str(v),
+                                           "task": f"listening{t}"})
+                runs.append(RunResult(record, findings))
+    return AuditResult(roots=["/ds"], runs=runs)
+
+
+@pytest.mark.parametrize("width", [800, 1400])
+def test_a_study_of_many_sessions_and_tasks_fits_the_window(
+        browser: list[str], tmp_path: Path, width: int) -> None:
+    import matplotlib.image
+
+    # 40 subjects × 3 sessions × 6 tasks (issue 28): no sideways scrolling at 800 px,
+    # neither of the page nor of the dataset picture
+    result = _study_of_many_sessions(40, 3, 6)
+    out = tmp_path / "many.html"
+    out.write_text(render_html(result, "/ds", generated="fixed"), encoding="utf-8")
+    done = _run_browser([*browser, f"--window-size={width},900", "--dump-dom",
+                         out.resolve().as_uri()])
+    assert done.returncode == 0, done.stderr[-2000:]
+    body = re.search(r"<body[^>]*>", done.stdout)
+    assert body is not None and 'data-ready="1"' in body.group(0)
+    page_width = int(re.search(r'data-page-width="(\d+)"', body.group(0)).group(1))  # type: ignore[union-attr]
+    overflow = int(re.search(r'data-picture-overflow="(\d+)"', body.group(0)).group(1))  # type: ignore[union-attr]
+    # document.documentElement.scrollWidth (CSSOM View) is at most the window's width
+    assert page_width <= width, page_width
+    assert overflow == 0, overflow
+    # the rows of the picture are subjects' sessions: 120 rows, 6 task columns
+    picture = done.stdout[done.stdout.index('id="picture-table"'):]
+    picture = picture[: picture.index("</table>")]
+    assert picture.count("<tr>") == 40 * 3 + 1
+    # a screenshot of that window has the window's size and is not blank
+    shot = tmp_path / f"shot{width}.png"
+    taken = _run_browser([*browser, f"--window-size={width},1200", "--hide-scrollbars",
+                          f"--screenshot={shot}", out.resolve().as_uri()])
+    assert taken.returncode == 0, taken.stderr[-2000:]
+    pixels = matplotlib.image.imread(str(shot))  # the PNG decoder as the reference reader
+    assert pixels.shape[:2] == (1200, width)
+    assert len(np.unique((pixels[::13, ::13, :3] * 255).astype(np.uint8).reshape(-1, 3),
+                         axis=0)) > 10

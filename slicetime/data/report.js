@@ -44,9 +44,19 @@
     return svg;
   }
 
-  function fill(details, i) {
-    if (details.getAttribute("data-built")) { return; }
-    details.setAttribute("data-built", "1");
+  // a run is a row of the runs table; its details go in the row after it, built when
+  // first opened (row._detail; row.open mirrors <details>)
+  function setOpen(row, open) {
+    if (open) { fill(row, +row.getAttribute("data-index")); }
+    row.open = open;
+    row.setAttribute("data-open", open ? "1" : "0");
+    row._detail.hidden = !open;
+    row.querySelector("button.open-run").setAttribute("aria-expanded", open ? "true" : "false");
+  }
+
+  function fill(row, i) {
+    if (row.getAttribute("data-built")) { return; }
+    row.setAttribute("data-built", "1");
     var r = runs[i], d = data.drawings[r[2]];
     var box = el("div", "run-body"), cols = el("div", "cols"), left = el("div");
     var dl = el("dl", "facts");
@@ -78,11 +88,20 @@
       left.appendChild(table);
     }
     cols.appendChild(left);
-    var figure = el("figure", "timing");
-    figure.appendChild(use(r[2]));
-    figure.appendChild(el("figcaption", null, d[3]));
-    cols.appendChild(figure);
+    if (d[0]) {
+      var figure = el("figure", "timing");
+      figure.appendChild(use(r[2]));
+      figure.appendChild(el("figcaption", null, d[4]));
+      cols.appendChild(figure);
+    } else {  // no usable timing: one line says why, no empty drawing
+      left.appendChild(el("p", "muted no-drawing", d[3]));
+    }
     box.appendChild(cols);
+    if (r[15].length) {
+      box.appendChild(el("p", "muted shared-note", plural(r[15].length, "finding") +
+        " of a shared file, told once under \u201cFindings of shared files\u201d: " +
+        r[15].map(function (k) { return data.shared[k][0]; }).join(", ")));
+    }
     if (r[10].length) {
       box.appendChild(el("h4", null, "findings"));
       var ol = el("ol", "findings");
@@ -114,36 +133,68 @@
         ol.appendChild(li);
       });
       box.appendChild(ol);
-    } else {
+    } else if (!r[15].length) {
       box.appendChild(el("p", "muted", "No findings."));
     }
-    details.appendChild(box);
+    row._detail.firstChild.appendChild(box);
   }
 
   function section(i) {
     var r = runs[i], w = SEV[worst(r)];
-    var details = el("details", "run");
-    details.id = "run-" + (i + 1);
-    details.setAttribute("data-name", S[r[0]].toLowerCase());
-    details.setAttribute("data-worst", w);
-    var summary = el("summary");
-    summary.appendChild(el("span", "mark sev-" + w));
-    summary.appendChild(el("code", "path", S[r[0]]));
-    summary.appendChild(document.createTextNode(" "));
-    summary.appendChild(chip(r[1]));
-    summary.appendChild(el("span", "label", data.tags[r[1]][2]));
-    var any = false;
+    var row = el("tr", "run");
+    row.id = "run-" + (i + 1);
+    row.setAttribute("data-index", i);
+    row.setAttribute("data-name", S[r[0]].toLowerCase());
+    row.setAttribute("data-worst", w);
+    var first = el("td", "path"), button = el("button", "open-run");
+    button.type = "button";
+    button.setAttribute("aria-expanded", "false");
+    button.appendChild(el("span", "mark sev-" + w));
+    button.appendChild(el("code", null, S[r[0]]));
+    first.appendChild(button);
+    row.appendChild(first);
+    var scheme = el("td", "scheme");
+    scheme.appendChild(chip(r[1]));
+    scheme.appendChild(el("span", "label", " " + data.tags[r[1]][2]));
+    row.appendChild(scheme);
+    row.appendChild(el("td", "num", r[12] >= 0 ? S[r[12]] : "\u2014"));
+    row.appendChild(el("td", "num", r[13] >= 0 ? String(r[13]) : "\u2014"));
+    var found = el("td", "found"), any = false;
     [[r[3], "error"], [r[4], "warning"], [r[5], "note"]].forEach(function (c) {
       if (c[0]) {
         any = true;
-        summary.appendChild(el("span", "badge sev-" + c[1], plural(c[0], c[1])));
+        found.appendChild(el("span", "badge sev-" + c[1], plural(c[0], c[1])));
+        found.appendChild(document.createTextNode(" "));
       }
     });
-    if (!any) { summary.appendChild(el("span", "badge sev-none", "no findings")); }
-    details.appendChild(summary);
-    details.addEventListener("toggle", function () { if (details.open) { fill(details, i); } });
-    built[i] = details;
-    return details;
+    if (!any) { found.appendChild(el("span", "badge sev-none", "no findings")); }
+    row.appendChild(found);
+    var detail = el("tr", "run-detail"), cell = el("td");
+    cell.colSpan = 5;
+    detail.appendChild(cell);
+    detail.hidden = true;
+    row._detail = detail;
+    row.open = false;
+    button.addEventListener("click", function () { setOpen(row, !row.open); });
+    built[i] = row;
+    return row;
+  }
+
+  var sortKey = "", sortDir = 1;
+  function sortValue(i, key) {
+    var r = runs[i];
+    if (key === "name") { return S[r[0]]; }
+    if (key === "scheme") { return data.tags[r[1]][2]; }
+    if (key === "tr") { return r[14]; }
+    if (key === "slices") { return r[13]; }
+    return worst(r) * 1e6 + r[3] * 1e4 + r[4] * 100 + r[5];
+  }
+  function sortMatching() {
+    if (!sortKey) { return; }
+    matching.sort(function (a, b) {
+      var x = sortValue(a, sortKey), y = sortValue(b, sortKey);
+      return (x < y ? -1 : x > y ? 1 : a - b) * sortDir;
+    });
   }
 
   function matches(i, level, words) {
@@ -160,7 +211,11 @@
     list.textContent = "";
     built = {};
     var shown = matching.slice(0, limit), frag = document.createDocumentFragment();
-    shown.forEach(function (i) { frag.appendChild(section(i)); });
+    shown.forEach(function (i) {
+      var row = section(i);
+      frag.appendChild(row);
+      frag.appendChild(row._detail);
+    });
     list.appendChild(frag);
     more.hidden = matching.length <= limit;
     count.textContent = matching.length + " of " + runs.length + " runs shown" +
@@ -175,6 +230,7 @@
       if (matches(i, level, words)) { matching.push(i); }
     }
     limit = PAGE;
+    sortMatching();
     draw();
     body.setAttribute("data-severity", level);
     var parts = [];
@@ -215,9 +271,9 @@
         pinned.textContent = "";
         target = section(i);
         pinned.appendChild(target);
+        pinned.appendChild(target._detail);
       }
-      fill(target, i);
-      target.open = true;
+      setOpen(target, true);
       target.scrollIntoView();
     }
   }
@@ -235,6 +291,19 @@
         li.appendChild(document.createTextNode(" "));
         li.appendChild(el("code", null, S[f[0]]));
         li.appendChild(document.createTextNode(" " + str(f[2])));
+        ul.appendChild(li);
+      });
+    });
+    (data.shared || []).forEach(function (g) {  // a shared outlier: each of its runs
+      if (g[0].indexOf("dataset/") !== 0) { return; }
+      g[2].forEach(function (i) {
+        if (n >= 500) { extra += 1; return; }
+        n += 1;
+        var li = el("li", "sev-" + SEV[g[1]]), a = el("a", null, S[runs[i][0]]);
+        a.href = "#run-" + (i + 1);
+        li.appendChild(a);
+        li.appendChild(document.createTextNode(" "));
+        li.appendChild(el("code", null, g[0]));
         ul.appendChild(li);
       });
     });
@@ -258,7 +327,17 @@
     data.column_order.forEach(function (c) {
       var th = el("th");
       th.setAttribute("scope", "col");
-      th.appendChild(el("span", null, data.columns[c]));
+      // one entity a line ("task-hum", "acq-mb"): a name never breaks inside a word
+      data.columns[c].split(" ").forEach(function (part) {
+        var cut = part.indexOf("-"), span = el("span", "part");
+        if (cut > 0) {  // the entity's key small above its label: "task" over "hum"
+          span.appendChild(el("small", null, part.slice(0, cut)));
+          span.appendChild(el("span", null, part.slice(cut + 1)));
+        } else {
+          span.textContent = part;
+        }
+        th.appendChild(span);
+      });
       tr.appendChild(th);
     });
     thead.appendChild(tr);
@@ -294,26 +373,45 @@
   window.addEventListener("hashchange", fromFragment);
   more.addEventListener("click", function () { limit += PAGE; draw(); });
   document.getElementById("open-shown").addEventListener("click", function () {
-    Object.keys(built).forEach(function (i) { fill(built[i], +i); built[i].open = true; });
+    Object.keys(built).forEach(function (i) { setOpen(built[i], true); });
   });
   document.getElementById("close-all").addEventListener("click", function () {
-    Object.keys(built).forEach(function (i) { built[i].open = false; });
+    Object.keys(built).forEach(function (i) { setOpen(built[i], false); });
+  });
+  Array.prototype.forEach.call(document.querySelectorAll("button.sort"), function (b) {
+    b.addEventListener("click", function () {
+      var key = b.getAttribute("data-sort");
+      sortDir = key === sortKey ? -sortDir : 1;
+      sortKey = key;
+      Array.prototype.forEach.call(document.querySelectorAll("button.sort"), function (o) {
+        o.removeAttribute("data-dir");
+      });
+      b.setAttribute("data-dir", sortDir > 0 ? "up" : "down");
+      sortMatching();
+      limit = Math.max(limit, PAGE);
+      draw();
+    });
   });
   var wasOpen = {};
   window.addEventListener("beforeprint", function () {
     wasOpen = {};
     Object.keys(built).forEach(function (i) {
       wasOpen[i] = built[i].open;
-      fill(built[i], +i);
-      built[i].open = true;
+      setOpen(built[i], true);
     });
   });
   window.addEventListener("afterprint", function () {
-    Object.keys(built).forEach(function (i) { built[i].open = wasOpen[i] || false; });
+    Object.keys(built).forEach(function (i) { setOpen(built[i], wasOpen[i] || false); });
   });
   outliers();
   picture();
   apply();
   fromFragment();
+  // the laid-out widths, for a browser test to read from the page's DOM: the page and
+  // the dataset picture must fit the window without sideways scrolling
+  var wrap = document.querySelector(".picture-wrap");
+  body.setAttribute("data-page-width", String(document.documentElement.scrollWidth));
+  body.setAttribute("data-picture-overflow",
+                    String(Math.max(0, wrap.scrollWidth - wrap.clientWidth)));
   body.setAttribute("data-ready", "1");
 })();

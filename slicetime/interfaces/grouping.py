@@ -24,7 +24,7 @@ import json
 from collections import defaultdict
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING, Any, TypeVar
 
 from slicetime.words import count
 
@@ -38,6 +38,7 @@ _NIFTI = (".nii.gz", ".nii")
 #: a text screen names at most this many runs of a shared finding (the JSON lists all)
 LISTED_RUNS = 8
 
+T = TypeVar("T")
 Key = tuple[str, str, str, str, str | None, str, str | None, str]
 
 
@@ -198,8 +199,8 @@ def runs_phrase(group: SharedFinding, grouping: Grouping, totals: AuditTotals) -
     return count(n, "run")
 
 
-def listed_paths(paths: Sequence[str], limit: int | None = LISTED_RUNS) -> tuple[list[str], int]:
-    """The paths a screen names and how many more there are."""
+def listed_paths(paths: Sequence[T], limit: int | None = LISTED_RUNS) -> tuple[list[T], int]:
+    """The paths (or entries) a screen names and how many more there are."""
     if limit is None or len(paths) <= limit:
         return list(paths), 0
     return list(paths[:limit]), len(paths) - limit

@@ -22,6 +22,7 @@ from __future__ import annotations
 import io
 import re
 import textwrap
+from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -107,7 +108,14 @@ class DiagramSpec:
         """One line saying what the picture marks (for alt text and reports)."""
         if self.kind != "schedule":
             return f"no timing diagram: {self.message}"
-        parts = [self.label or "scheme unknown", count(len(self.times), "slice")]
+        return f"{self.label or 'scheme unknown'}, {self.detail()}"
+
+    def detail(self) -> str:
+        """The caption without the scheme label (a run's section names the scheme once,
+        beside the run): slices, excitation groups, what the picture marks."""
+        if self.kind != "schedule":
+            return f"no timing diagram: {self.message}"
+        parts = [slices_phrase(len(self.times), self.groups)]
         if self.late:
             parts.append(f"{count(len(self.late), 'slice')} at or after the end of the window")
         if self.early:
@@ -115,6 +123,16 @@ class DiagramSpec:
         if self.uneven_after:
             parts.append(f"{count(len(self.uneven_after), 'uneven gap')}")
         return ", ".join(parts)
+
+
+def slices_phrase(n_slices: int, groups: Sequence[Sequence[int]]) -> str:
+    """``18 slices, one at a time`` (single-band: a group per slice is no news) or
+    ``24 slices in 8 excitation groups of 3`` (``… groups of 2 to 3`` when uneven)."""
+    if not groups or all(len(g) == 1 for g in groups):
+        return f"{count(n_slices, 'slice')}, one at a time"
+    sizes = sorted({len(g) for g in groups})
+    size = str(sizes[0]) if len(sizes) == 1 else f"{sizes[0]} to {sizes[-1]}"
+    return f"{count(n_slices, 'slice')} in {count(len(groups), 'excitation group')} of {size}"
 
 
 def _r(value: float) -> float:
@@ -373,9 +391,10 @@ def _draw_schedule(fig: Any, spec: DiagramSpec) -> None:
 
     ax.set_xlabel("time within the volume (s)")
     ax.set_ylabel(f"slice index, axis {encoding_direction(spec.axis, spec.direction)}")
-    title = spec.label or "scheme unknown"
+    # the scheme's label is beside the drawing wherever it is shown (run row, gallery
+    # caption): the title says what only the picture knows
     ax.set_title(
-        f"{title}  ·  {count(n, 'slice')}, {count(len(spec.groups), 'excitation group')}",
+        slices_phrase(n, spec.groups),
         loc="left",
         fontsize=9.5,
         pad=16,

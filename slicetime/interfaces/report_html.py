@@ -45,7 +45,20 @@ from importlib import resources
 from typing import IO, Any
 
 from slicetime import __version__
-from slicetime.interfaces.plots import COLOURS, DiagramSpec, diagram_spec, render_svg
+from slicetime.interfaces.grouping import (
+    Grouping,
+    counts_phrase,
+    group_findings,
+    listed_paths,
+    runs_phrase,
+)
+from slicetime.interfaces.plots import (
+    COLOURS,
+    DiagramSpec,
+    diagram_spec,
+    render_svg,
+    slices_phrase,
+)
 from slicetime.interfaces.report_stream import (
     MemorySource,
     ReportSource,
@@ -65,18 +78,19 @@ from slicetime.readers.entities import sidecar_path
 from slicetime.rules.dataset import PROTOCOL_ENTITIES, protocol_key
 from slicetime.words import agree, count, encoding_direction
 
-#: fills for scheme tags in the dataset picture (our own muted palette), reused in turn
+#: fills for scheme tags in the dataset picture and the runs table (our own muted
+#: palette: lavender, aqua, teal, mint, lilac, mauve grey, periwinkle, pale green), reused
+#: in turn. No fill may read as a severity: each is at least 10 CIEDE2000 units from a
+#: tint of every severity colour at the fill's lightness (tests/test_report_colours.py)
 TAG_FILLS = (
-    "#cfe3e0",
-    "#f3dcb5",
-    "#d9d3ec",
-    "#d6e6c3",
-    "#f2cfc8",
-    "#c9d8ea",
-    "#ece3c0",
-    "#e3cfe0",
-    "#cde0d3",
-    "#e6d6c9",
+    "#cdb9e0",
+    "#aaeef7",
+    "#89ccd1",
+    "#afefe5",
+    "#f7d9fe",
+    "#c8bdce",
+    "#d6d3fd",
+    "#c0edd0",
 )
 NO_TIMING_FILL = "#e4e4e4"
 
@@ -118,11 +132,19 @@ class Drawings:
         self.users[ident] += 1
         return ident
 
+    def distinct(self) -> int:
+        """How many real diagrams there are (a run without timing has none: no box)."""
+        return sum(1 for spec in self.ids if spec.kind == "schedule")
+
     def symbols(self) -> tuple[str, dict[str, tuple[float, float]]]:
-        """The hidden SVG block holding one ``<symbol>`` per distinct diagram."""
+        """The hidden SVG block holding one ``<symbol>`` per distinct diagram (none for
+        the runs without usable timing: their sections say why in a line of text)."""
         parts = ['<svg class="sprite" aria-hidden="true" focusable="false"><defs>']
         sizes: dict[str, tuple[float, float]] = {}
         for spec, ident in self.ids.items():
+            if spec.kind != "schedule":
+                sizes[ident] = (0.0, 0.0)
+                continue
             body, (w, h) = render_svg(spec, prefix=f"{ident}-")
             sizes[ident] = (w, h)
             parts.append(f'<symbol id="{ident}" viewBox="0 0 {w:g} {h:g}">{body}</symbol>')
@@ -199,10 +221,11 @@ def _run_facts(record: RunRecord) -> tuple[tuple[str, str], ...]:
         facts.append(("timing from", xml_safe(record.timing_origin or "")))
     scheme = record.scheme
     if scheme is not None:
-        detail = _plural(len(scheme.groups), "excitation group")
+        # the label is on the run's row; here what it means
+        detail = slices_phrase(scheme.n_slices, scheme.groups)
         if scheme.spacing:
-            detail += f", one every {duration(scheme.spacing)}"
-        facts.append(("scheme", f"{xml_safe(scheme.label)} · {detail}"))
+            detail += f", one excitation every {duration(scheme.spacing)}"
+        facts.append(("scheme", detail))
     else:
         facts.append(("scheme", "unknown: no usable slice timing"))
     return tuple(facts)
@@ -313,13 +336,13 @@ def _scheme_tags(facts: Sequence[RunFacts]) -> dict[str | None, _Tag]:
     return tags
 
 
-def _summary_cards(totals: AuditTotals, drawings: int) -> str:
+def _summary_cards(totals: AuditTotals, drawings: int, grouping: Grouping) -> str:
     facts = totals.facts
     with_sev = [sum(1 for f in facts if f.counts[k]) for k in range(3)]
     clean = sum(1 for f in facts if not any(f.counts))
-    counts = totals.counts
+    counts = grouping.distinct  # a finding of a shared file counted once
     cards = [
-        ("runs", str(len(facts)), "audited", ""),
+        ("runs", str(len(facts)), "runs audited", ""),
         ("error", str(with_sev[0]), "runs with errors",
          f"{_plural(counts['error'], 'error')} in all"),
         ("warning", str(with_sev[1]), "runs with warnings",
@@ -403,11 +426,40 @@ def _wide_findings(totals: AuditTotals) -> str:
             if wide else "")
 
 
+def _shared_findings(grouping: Grouping, totals: AuditTotals) -> str:
+    """Each finding of a file several runs share, once, with the runs it applies to."""
+    if not grouping.shared:
+        return ""
+    items = []
+    for group in grouping.shared:
+        f = group.finding
+        phrase = runs_phrase(group, grouping, totals)
+        shown, more = listed_paths(list(zip(group.runs, group.paths, strict=True)), 50)
+        links = "" if phrase.startswith("all ") else (
+            '<ul class="plain runs-of">' + "".join(
+                f'<li><a href="#run-{i + 1}">{txt(p)}</a></li>' for i, p in shown)
+            + (f"<li>and {more} more</li>" if more else "") + "</ul>")
+        where = txt(f.get("file") or "") + (f" › {txt(f['field'])}" if f.get("field") else "")
+        items.append(
+            f'<li class="finding sev-{f["severity"]}"><div class="fhead"><span class="sev">'
+            f'{SEVERITY_GLYPH[Severity(f["severity"])]} {f["severity"]}</span> '
+            f'<code class="code">{txt(f["code"])}</code></div>'
+            f'<p class="msg">{txt(f["message"], one_line=False)}</p>'
+            f'<p class="where"><code>{where}</code></p>'
+            + (f'<p class="hint">{txt(f["hint"], one_line=False)}</p>' if f.get("hint") else "")
+            + f'<p class="applies">applies to {txt(phrase)}</p>{links}</li>')
+    return ("<h3>Findings of shared files</h3><p class=\"muted\">A file several runs inherit "
+            "gives each of them the same finding: it is told once here, with the runs it "
+            f'applies to.</p><ol class="findings shared">{"".join(items)}</ol>')
+
+
 def _gallery(collector: DiagramCollector, sizes: dict[str, tuple[float, float]],
              totals: AuditTotals) -> str:
     figures = []
     drawings = collector.drawings
     for spec, ident in drawings.ids.items():
+        if spec.kind != "schedule":
+            continue  # no drawing: not a diagram
         first = collector.examples[ident]
         figures.append(
             f"<figure>{_use(ident, sizes[ident], spec.caption())}<figcaption>"
@@ -422,21 +474,23 @@ def _gallery(collector: DiagramCollector, sizes: dict[str, tuple[float, float]],
 
 
 def _column_of(facts: RunFacts, suffixes: int) -> str:
-    parts = [f"{k}-{v}" for k, v in facts.entities.items() if k != "sub"]
+    parts = [f"{k}-{v}" for k, v in facts.entities.items() if k not in ("sub", "ses")]
     if suffixes > 1 or not parts:
         parts.append(facts.suffix or "(no suffix)")
     return " ".join(parts)
 
 
 def _page_data(source: ReportSource, collector: DiagramCollector,
-               tags: dict[str | None, _Tag], sizes: dict[str, tuple[float, float]]
-               ) -> Iterator[str]:
+               tags: dict[str | None, _Tag], sizes: dict[str, tuple[float, float]],
+               grouping: Grouping) -> Iterator[str]:
     """The compact data the page's script renders from (JSON, safe inside a script
     element). Every string is stored once in ``s`` and referred to by index; a run
     is ``[path, tag, drawing, errors, warnings, notes, row, column, facts, sources,
-    findings, own sidecar]`` (``OWN_SIDECAR`` in a sources entry stands for the last);
-    a finding ``[code, rank, message, file, field, evidence, hint]``
-    (-1 for none)."""
+    findings, own sidecar, TR text, slices, TR in seconds, shared findings]``
+    (``OWN_SIDECAR`` in a sources entry stands for the own sidecar; the findings are
+    the run's own, the shared ones are indices into ``shared``); a finding ``[code,
+    rank, message, file, field, evidence, hint]`` (-1 for none); a row of the
+    dataset picture is a subject, or a subject's session."""
     totals = source.totals
     strings = collector.strings
     several = len({f.root for f in totals.facts}) > 1
@@ -446,6 +500,10 @@ def _page_data(source: ReportSource, collector: DiagramCollector,
     columns = _Table()
     found = source.objects(lambda i: any(totals.facts[i].counts))
     pending = next(found, None)
+    shared_of: dict[int, list[int]] = defaultdict(list)
+    for number, group in enumerate(grouping.shared):
+        for i in group.runs:
+            shared_of[i].append(number)
 
     def opt(value: str | None, *, one_line: bool = True) -> int:
         return -1 if value is None or value == "" else strings(xml_safe(value, one_line=one_line))
@@ -455,7 +513,8 @@ def _page_data(source: ReportSource, collector: DiagramCollector,
     for index, facts in enumerate(totals.facts):
         findings: list[list[int]] = []
         if pending is not None and pending[0] == index:
-            ordered = sorted(pending[1]["findings"], key=lambda f: -_RANK[f["severity"]])
+            own = grouping.own(index, pending[1]["findings"])
+            ordered = sorted(own, key=lambda f: -_RANK[f["severity"]])
             for f in ordered:
                 grounds = f.get("grounds") or f.get("evidence")
                 findings.append([
@@ -468,18 +527,30 @@ def _page_data(source: ReportSource, collector: DiagramCollector,
                 ])
             pending = next(found, None)
         sub = facts.entities.get("sub")
+        ses = facts.entities.get("ses")
         name = display_path(totals, facts, facts.path, several=several)
+        subject = f"sub-{xml_safe(sub)}" if sub is not None else "(no subject)"
+        if ses is not None:  # sessions are rows of their subject: the columns stay few
+            subject += f" · ses-{xml_safe(ses)}"
+        tr = facts.timing.repetition_time  # resolved, in seconds
+        slices = len(facts.schedule.times) if facts.schedule is not None else (
+            facts.axis_length or -1)
         row = [
             strings(xml_safe(name)),
             tag_index[facts.scheme.label if facts.scheme else None],
             collector.run_drawing[index], *facts.counts,
-            subjects(f"sub-{xml_safe(sub)}" if sub is not None else "(no subject)"),
+            subjects(subject),
             columns(xml_safe(_column_of(facts, suffixes))),
             collector.run_facts[index], collector.run_sources[index],
             findings, collector.run_own[index],
+            opt(secs(tr) if tr else None), slices, tr if tr else -1,
+            shared_of.get(index, []),
         ]
         yield ("," if index else "") + _safe_in_script(encode(row))
-    drawings = [[ident, *sizes[ident], xml_safe(spec.caption())]
+    # a drawing: [symbol id ("" for a run without timing), width, height, caption,
+    # caption without the scheme label (a run's section names the scheme once)]
+    drawings = [[ident if spec.kind == "schedule" else "", *sizes[ident],
+                 xml_safe(spec.caption()), xml_safe(spec.detail())]
                 for spec, ident in collector.drawings.ids.items()]
     row_order = sorted(range(len(subjects.values)), key=lambda i: subjects.values[i])
     col_order = sorted(range(len(columns.values)), key=lambda i: columns.values[i])
@@ -490,6 +561,8 @@ def _page_data(source: ReportSource, collector: DiagramCollector,
         "subjects": subjects.values, "subject_order": row_order,
         "columns": columns.values, "column_order": col_order,
         "own_sidecar": OWN_SIDECAR,
+        "shared": [[xml_safe(g.finding["code"]), _RANK[g.severity], g.runs]
+                   for g in grouping.shared],
     })
     yield "]," + _safe_in_script(rest[1:-1])
     # the two tables that grow with the runs, a block at a time (never one huge string)
@@ -567,7 +640,7 @@ def _reading_guide() -> str:
     return (
         '<section id="reading"><h2>How to read a timing diagram</h2>'
         f'<ul class="plain guide">{lis}<li>The shaded area is the acquisition window. '
-        "A run without usable timing shows a dashed box that says why.</li></ul>"
+        "A run without usable timing has no diagram: its section says why.</li></ul>"
         "</section>"
     )
 
@@ -636,7 +709,7 @@ def _write_page(source: ReportSource, collector: DiagramCollector, out: IO[str],
     totals = source.totals
     tags = _scheme_tags(totals.facts)
     sprite, sizes = collector.drawings.symbols()
-    counts = totals.counts
+    grouping = group_findings(source)
     stamp = generated if generated is not None else _generated_stamp()
     name = report_root(totals)
     title = f"slicetime audit · {xml_safe(name)}"
@@ -660,30 +733,32 @@ def _write_page(source: ReportSource, collector: DiagramCollector, out: IO[str],
         sprite,
         '<header class="top"><div class="brand">slicetime · slice-timing audit</div>',
         f"<h1>{txt(name)}</h1>",
-        f'<p class="muted">{_plural(n, "run")} · '
-        f"{_plural(counts['error'], 'error')}, {_plural(counts['warning'], 'warning')}, "
-        f"{_plural(counts['note'], 'note')} · dataset root {roots}· path given "
-        f"<code>{txt(source.root_given)}</code> · written {txt(stamp)} "
-        f"by slicetime {txt(__version__)}</p>",
+        f'<p class="muted">{_plural(n, "run")} audited: '
+        f"{txt(', '.join(counts_phrase(grouping.distinct, grouping.runs_affected)))} · "
+        f"dataset root {roots}"
+        + (f"· audited from <code>{txt(source.root_given)}</code> "
+           if source.root_given not in totals.roots else "")
+        + f"· written {txt(stamp)} by slicetime {txt(__version__)}</p>",
         (f'<p class="muted">Lab policy: </p><ul class="plain muted">{policies}</ul>'
          if policies else ""),
         '<nav class="no-print"><a href="#overview">overview</a><a href="#picture">dataset '
         'picture</a><a href="#runs">runs</a><a href="#reading">how to read a diagram</a>'
         "</nav></header><main>",
         '<section id="overview"><h2>Overview</h2>',
-        _summary_cards(totals, len(collector.drawings.ids)),
+        _summary_cards(totals, collector.drawings.distinct(), grouping),
         "<h3>Schemes in use per run group</h3>",
         _schemes_table(totals, tags),
         "<h3>Outliers</h3>",
         '<div id="outliers"><p class="muted">No run differs from the others of its task and '
         "acquisition.</p></div>",
         _wide_findings(totals),
+        _shared_findings(grouping, totals),
         _gallery(collector, sizes, totals),
         "</section>",
         '<section id="picture"><h2>Dataset picture</h2><p class="muted">One row per '
-        "subject, one column per session, task, acquisition and run. The number is the "
-        "scheme (legend below), the colour the scheme, the mark the worst finding: a subject "
-        "whose cells differ from the column stands out.</p>",
+        "subject (per session when there are sessions), one column per task, acquisition "
+        "and run. The number is the scheme (legend below), the colour the scheme, the mark "
+        "the worst finding: a row whose cells differ from the column stands out.</p>",
         '<div class="picture-wrap"><table class="picture" id="picture-table"></table></div>',
         _legends(tags),
         "</section>",
@@ -698,7 +773,15 @@ def _write_page(source: ReportSource, collector: DiagramCollector, out: IO[str],
         'id="close-all">close all</button><span id="shown-count" aria-live="polite">'
         f"{_plural(n, 'run')}</span></div>",
         '<p class="print-only" id="print-filter"></p>',
-        '<div id="pinned"></div><div class="run-list" id="run-list"></div>',
+        '<table class="runs pinned"><tbody id="pinned"></tbody></table>'
+        '<table class="runs" id="run-table"><thead><tr>'
+        '<th scope="col"><button type="button" class="sort" data-sort="name">run</button></th>'
+        '<th scope="col"><button type="button" class="sort" data-sort="scheme">scheme'
+        '</button></th><th scope="col" class="num"><button type="button" class="sort" '
+        'data-sort="tr">TR</button></th><th scope="col" class="num"><button type="button" '
+        'class="sort" data-sort="slices">slices</button></th><th scope="col"><button '
+        'type="button" class="sort" data-sort="findings">findings</button></th></tr></thead>'
+        '<tbody class="run-list" id="run-list"></tbody></table>',
         f'<p class="no-print"><button type="button" id="more" hidden>list {PAGE} more'
         "</button></p>",
         "</section>",
@@ -706,7 +789,7 @@ def _write_page(source: ReportSource, collector: DiagramCollector, out: IO[str],
         "</main>",
         '<script type="application/json" id="report-data">',
     ]))
-    for part in _page_data(source, collector, tags, sizes):
+    for part in _page_data(source, collector, tags, sizes, grouping):
         out.write(part)
     out.write(f"</script><script>{script}</script></body></html>\n")
 
