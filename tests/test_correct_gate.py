@@ -250,7 +250,8 @@ def test_a_doubt_the_policy_ignores_still_needs_accepting(ds: Path, tmp_path: Pa
     # an [[ignore]] hides a finding from the reports; it does not make the timing true
     build_run(ds, REL, SEQUENTIAL, slice_code=2, slice_duration=0.25)
     (ds / "slicetime-policy.toml").write_text(
-        'version = 1\n[[waive]]\nfindings = ["header/*"]\nreason = "headers are converter guesses"\n')
+        'version = 1\n[[waive]]\nfindings = ["header/*"]\n'
+        'reason = "headers are converter guesses"\n')
     code, doc, _ = correct_json(ds, "--out", tmp_path / "out")
     assert code == 1
     assert doc["runs"][0]["blocking_findings"][0]["code"] == "header/slice-code-mismatch"
