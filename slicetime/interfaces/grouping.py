@@ -165,7 +165,7 @@ class Grouper:
         shared = sorted(self._groups.values(), key=lambda g: (
             -_RANK[g.severity], g.root, g.finding.get("file") or "", g.finding["code"],
             g.finding["message"]))
-        sizes = Counter(protocol_key(f) for f in totals.facts  # type: ignore[arg-type]
+        sizes = Counter(protocol_key(f) for f in totals.facts
                         ) if shared else Counter()
         return Grouping(shared, {i: frozenset(p) for i, p in told.items()}, distinct,
                         runs_affected, {i: (c[0], c[1], c[2]) for i, c in shared_counts.items()},
@@ -190,7 +190,7 @@ def runs_phrase(group: SharedFinding, grouping: Grouping, totals: AuditTotals) -
     n = len(group.runs)
     if n == len(totals.facts):
         return f"all {n} runs"
-    keys = {protocol_key(totals.facts[i]) for i in group.runs}  # type: ignore[arg-type]
+    keys = {protocol_key(totals.facts[i]) for i in group.runs}
     if len(keys) == 1:
         (key,) = keys
         if grouping.group_sizes.get(key) == n:
