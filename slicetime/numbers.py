@@ -164,6 +164,12 @@ def shown(value: object) -> str:
     return fixed(value, SCREEN_S_DECIMALS) if len(decimals) > SCREEN_S_DECIMALS else text
 
 
+def ratio(value: float) -> str:
+    """A fraction of a time (``StartTime / RepetitionTime``) for people: at most 5
+    decimals, the resolution of the times it divides (``0.23438``)."""
+    return fixed(value, SCREEN_S_DECIMALS)
+
+
 def ms(seconds: float) -> str:
     """Seconds shown as milliseconds: ``138.89 ms`` (at most 2 decimals)."""
     return f"{fixed(seconds * 1000.0, SCREEN_MS_DECIMALS)} ms"
@@ -184,4 +190,4 @@ def duration(seconds: float) -> str:
 
 
 __all__ = ["amount", "as_written", "duration", "fixed", "grouped", "json_float", "json_time",
-           "json_times", "ms", "plain", "secs", "shown", "size_words", "tidy_json"]
+           "json_times", "ms", "plain", "ratio", "secs", "shown", "size_words", "tidy_json"]

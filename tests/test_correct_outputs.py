@@ -25,6 +25,7 @@ from click.testing import CliRunner
 
 from slicetime.engines.interpolate import ENGINES, noise_variance
 from slicetime.interfaces.cli import cli
+from slicetime.numbers import ratio
 from slicetime.schemes.generate import Protocol, slice_timing
 from tests.helpers_bids import write_description
 from tests.test_correct import TR, build_run, interleaved, output_of
@@ -383,11 +384,11 @@ def test_the_hand_off_gives_what_a_model_reads_from_the_derivative(tmp_path: Pat
     expected = start / t_r
     lines = [line for line in text.splitlines() if "slice_time_ref" in line]
     assert lines == [f"for the model: slice_time_ref = StartTime / RepetitionTime = "
-                     f"{expected:g} (every output)"]
+                     f"{ratio(expected)} (every output)"]
     code, doc, _ = run("correct", ds, "--out", out, "--format", "json")
     document = json.loads(doc)
     assert document["runs"][0]["slice_time_ref"] == pytest.approx(expected)
-    assert f"= {expected:g} (every output)" in document["hand_off"]
+    assert f"= {ratio(expected)} (every output)" in document["hand_off"]
     assert sidecar_of(out, REL)["SliceTimeAlignment"]["SliceTimeRef"] == pytest.approx(expected)
     # FirstLevelModel given that slice_time_ref samples its design at the times the
     # corrected volumes now stand for: volume v at v * RepetitionTime + StartTime

@@ -65,6 +65,7 @@ from slicetime.engines.plan import (
     slice_time_ref,
 )
 from slicetime.model import Finding, RunRecord, Severity
+from slicetime.numbers import ratio
 from slicetime.pipelines.audit import AuditResult, RunResult, audit_paths
 from slicetime.pipelines.errors import (
     CLASH_CODE,
@@ -253,10 +254,10 @@ class CorrectResult:
             if len(counts) == 1:
                 every = "every output" if len(values) == len(done) else count(
                     len(values), "output")
-                parts.append(f"slice_time_ref = StartTime / RepetitionTime = {values[0]:g} "
+                parts.append(f"slice_time_ref = StartTime / RepetitionTime = {ratio(values[0])} "
                              f"({every})")
             else:
-                listed = ", ".join(f"{v:g} ({count(n, 'output')})"
+                listed = ", ".join(f"{ratio(v)} ({count(n, 'output')})"
                                    for v, n in sorted(counts.items()))
                 parts.append(f"slice_time_ref = StartTime / RepetitionTime: {listed}; each "
                              "output's in its sidecar and in --format json")
