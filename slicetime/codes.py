@@ -68,7 +68,7 @@ class Rule:
     #: the standard's check this rule covers, when one exists (for docs and tests)
     standard: str | None = None
     #: codes that follow from this rule's finding: on the same run and field they are
-    #: folded into it (listed in its grounds) instead of reported again
+    #: folded into it (listed in its evidence) instead of reported again
     subsumes: frozenset[str] = frozenset()
     #: where the check happens (a key of :data:`CHECKED`)
     checked: Checked = "metadata"
@@ -160,7 +160,7 @@ def make_finding(
     file, field
         Where the problem is (a display path; a sidecar key or header field).
     evidence
-        The values the finding rests on (its grounds in reports).
+        The values the finding rests on (its ``evidence`` in reports).
     hint
         What to do, when the call knows better than the registration's ``fix``;
         None gives a finding without a hint.

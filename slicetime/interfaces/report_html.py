@@ -51,7 +51,7 @@ from slicetime.interfaces.report_stream import (
     ReportSource,
     display_path,
     encode,
-    grounds_text,
+    evidence_text,
     group_label,
     report_root,
     run_line,
@@ -457,13 +457,13 @@ def _page_data(source: ReportSource, collector: DiagramCollector,
         if pending is not None and pending[0] == index:
             ordered = sorted(pending[1]["findings"], key=lambda f: -_RANK[f["severity"]])
             for f in ordered:
-                grounds = f.get("grounds") or f.get("evidence")
+                evidence = f.get("evidence")
                 findings.append([
                     strings(xml_safe(f["code"])), _RANK[f["severity"]],
                     opt(strip_path_prefix(f["message"], f.get("file"), pending[1]["path"]),
                         one_line=False),
                     opt(f.get("file")), opt(f.get("field")),
-                    opt(grounds_text(grounds) if grounds else None, one_line=False),
+                    opt(evidence_text(evidence) if evidence else None, one_line=False),
                     opt(f.get("hint"), one_line=False),
                 ])
             pending = next(found, None)

@@ -319,7 +319,7 @@ def explain(code: str) -> str:
         lines += ["", f"standard: {rule.standard}"]
     if rule.subsumes:
         lines += ["", "folds in (consequences on the same run and field, listed in its "
-                  "grounds instead of reported again): " + ", ".join(sorted(rule.subsumes))]
+                  "evidence instead of reported again): " + ", ".join(sorted(rule.subsumes))]
     return "\n".join(lines)
 
 
