@@ -103,7 +103,7 @@ from typing import TYPE_CHECKING, Any
 if TYPE_CHECKING:  # imported where a policy is validated: 50 ms a start otherwise
     import jsonschema
 
-from slicetime.codes import RULES, declare
+from slicetime.codes import RULES
 from slicetime.model import TIME_TOLERANCE, Finding, Severity
 from slicetime.policy.model import (
     EXPECTATION_KEYS,
@@ -143,24 +143,6 @@ MAX_POLICY_BYTES = 1024 * 1024
 _HINT = "Fix the policy file; `slicetime explain policy/invalid` describes its format."
 
 # the code this module raises, registered here so a reader can make its finding
-declare(
-    "policy/invalid",
-    title="the lab policy file cannot be used",
-    severity=Severity.ERROR,
-    rationale=(
-        "slicetime-policy.toml (at the dataset root, or given with --policy) must be valid TOML "
-        "and follow the policy format: version = 1; [[protocols]] with a match table of BIDS "
-        "entities (plus datatype and suffix), at least one of repetition_time, slices, "
-        "multiband_factor, scheme, slice_encoding_direction, and an optional tolerance; a "
-        "[severity] table "
-        "mapping finding codes (or patterns with * and ?) to error, warning or note; [[ignore]] "
-        "entries with codes, optional run path patterns (paths) and a required reason. Unknown "
-        "keys, unknown finding codes and bad patterns are errors, so a typo never silently "
-        "turns a check off."
-    ),
-    fix="Fix the key the message names; the file's JSON Schema ships as "
-    "slicetime/data/policy.schema.json.",
-)
 
 
 @functools.cache

@@ -46,7 +46,6 @@ from typing import TYPE_CHECKING, Any
 if TYPE_CHECKING:  # imported when a value fails the quick checks: 50 ms a start otherwise
     import jsonschema
 
-import slicetime.readers.codes  # noqa: F401  (registers the codes made here)
 from slicetime.codes import make_finding
 from slicetime.model import Finding, Severity
 
