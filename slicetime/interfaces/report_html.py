@@ -142,13 +142,6 @@ def _use(ident: str, size: tuple[float, float], caption: str) -> str:
 # --------------------------------------------------------------------------- grouping
 
 
-def _column_key(record: RunRecord, suffixes: int) -> str:
-    parts = [f"{k}-{v}" for k, v in record.entities.items() if k != "sub"]
-    if suffixes > 1 or not parts:
-        parts.append(record.suffix or "(no suffix)")
-    return " ".join(parts)
-
-
 @dataclass(frozen=True)
 class _Tag:
     text: str

@@ -289,20 +289,16 @@ def _document_order(data: Any, parts: KeyPath) -> tuple[int, ...]:
     return tuple(out)
 
 
+#: TOML's value types as Python reads them, in words (bool before int: a bool is an int)
+_TOML_TYPES: tuple[tuple[type, str], ...] = (
+    (bool, "a boolean"), (int, "an integer"), (float, "a float"), (str, "a string"),
+    (dict, "a table"), (list, "an array"),
+)
+
+
 def _toml_type(value: Any) -> str:
-    if isinstance(value, bool):
-        return "a boolean"
-    if isinstance(value, int):
-        return "an integer"
-    if isinstance(value, float):
-        return "a float"
-    if isinstance(value, str):
-        return "a string"
-    if isinstance(value, dict):
-        return "a table"
-    if isinstance(value, list):
-        return "an array"
-    return "a date/time"
+    return next((words for kind, words in _TOML_TYPES if isinstance(value, kind)),
+                "a date/time")
 
 
 def _shown(value: Any) -> str:

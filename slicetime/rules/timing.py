@@ -81,11 +81,15 @@ def corrected_still_timed(record: RunRecord) -> Iterator[Hit]:
             "SliceTimingCorrected is true but the header still encodes slice timing "
             f"(slice_code {record.header.slice_code}, slice_duration "
             f"{record.header.slice_duration} s): a later step would correct this run twice",
-            "slice_code",
-            {"slice_code": record.header.slice_code,
-             "slice_duration": record.header.slice_duration},
-            file=record.path,
+            "slice_code", _header_timing(record), file=record.path,
         )
+
+
+def _header_timing(record: RunRecord) -> dict[str, Any]:
+    """The header fields that encode the slice timing, as a finding's evidence."""
+    assert record.header is not None
+    return {"slice_code": record.header.slice_code,
+            "slice_duration": record.header.slice_duration}
 
 
 def from_header(record: RunRecord) -> Iterator[Hit]:
@@ -93,10 +97,7 @@ def from_header(record: RunRecord) -> Iterator[Hit]:
         yield Hit(
             "SliceTiming rebuilt from header slice_code "
             f"{record.header.slice_code} and slice_duration {record.header.slice_duration} s",
-            "SliceTiming",
-            {"slice_code": record.header.slice_code,
-             "slice_duration": record.header.slice_duration},
-            file=record.path,
+            "SliceTiming", _header_timing(record), file=record.path,
         )
 
 
