@@ -32,6 +32,7 @@ RUN_CHECKS: tuple[tuple[str, RunCheck], ...] = (
     ("source/ambiguous", source.ambiguous),
     ("source/unreadable", source.unreadable),
     ("source/geometry-differs", source.geometry_differs),
+    ("source/mixed-folder", source.mixed_folder),
     ("source/no-times", source.no_times),
     ("source/times-absent", source.times_absent),
     ("source/reversed", source.reversed_times),
