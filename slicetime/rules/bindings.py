@@ -31,6 +31,7 @@ RUN_CHECKS: tuple[tuple[str, RunCheck], ...] = (
     ("source/no-match", source.no_match),
     ("source/ambiguous", source.ambiguous),
     ("source/unreadable", source.unreadable),
+    ("source/files-skipped", source.files_skipped),
     ("source/geometry-differs", source.geometry_differs),
     ("source/mixed-folder", source.mixed_folder),
     ("source/no-times", source.no_times),

@@ -27,22 +27,6 @@ from slicetime.model import Finding, RunRecord, Severity
 from slicetime.policy.model import AcceptEntry
 from slicetime.policy.patterns import path_pattern_problem
 
-reader_code(
-    "correct/record-unwritten",
-    checked="correcting",
-    title="the output folder's description or provenance file could not be written",
-    severity=Severity.ERROR,
-    rationale=(
-        "After the runs, correct rewrites dataset_description.json and the provenance file "
-        "of --out so that they list exactly the outputs on disk. When that write fails (a "
-        "full disk, a folder that became read-only), the corrected runs are still in place "
-        "and reported, but the folder's own record of them is out of date, so the batch "
-        "ends with exit status 1."
-    ),
-    fix="Free space or restore write access to --out, then rerun the same command: the "
-        "outputs in place are reused and the record is written again.",
-)
-
 #: the fewest volumes a run needs to be corrected: from the measured whole-run error
 #: (benchmarks/bench_edges.py; README "The run's ends"), 6 volumes is the first count at
 #: which fourier, sinc and cubic come down to about a fifth of the uncorrected error
