@@ -1,34 +1,37 @@
 """The catalogue of finding codes, and the one way to make a finding.
 
-Every code a report can contain is registered here once, with its severity, its
-documentation, where it is checked and whether ``slicetime fix`` repairs it
-(:class:`Rule`). :func:`make_finding` is the only constructor of findings outside
-this module and :mod:`slicetime.model`: it refuses a code nobody registered, and
-it gives the registered severity unless the call states another one that the
-registration allows (``also_severities``), so the severity ``explain`` documents
-is the one a report shows.
+Every code a report can contain is declared once, in one table shipped with the
+package (``slicetime/data/codes.toml``): its severity, its documentation, where it is
+checked and whether ``slicetime fix`` repairs it. This module loads the table when
+it is imported, so :data:`RULES` is complete after ``import slicetime.codes`` alone,
+whichever layer asks. :func:`make_finding` is the only constructor of findings outside
+this module and :mod:`slicetime.model`: it refuses a code the table does not declare,
+and it gives the declared severity unless the call states another one that the
+declaration allows (``also_severities``), so the severity ``explain`` documents is
+the one a report shows.
 
-Who registers what (a code is registered in the lowest layer that emits it, so the
-emitter can always import its registration):
+The checks themselves are functions of the rules layer, bound to their codes in one
+table (:mod:`slicetime.rules.bindings`); a check reports :class:`Hit` values, which
+:func:`to_finding` turns into findings of its code.
 
-* the readers' codes (``file/*``, ``sidecar/*``, ``inherit/ambiguous``,
-  ``source/unreadable``): :mod:`slicetime.readers.codes`;
-* ``policy/invalid``: :mod:`slicetime.policy.loading`;
-* every check of the rules layer, and the batch, correction and verify codes:
-  :mod:`slicetime.rules` (``run_rule``, ``dataset_rule``, ``reader_code`` of
-  :mod:`slicetime.rules.registry`, which extend this catalogue).
-
-Pure: no I/O. The check functions of run and dataset rules are stored on their
-:class:`Rule` but typed loosely here (the rules layer owns their types).
+Pure: no I/O but reading the package's own table once.
 """
 
 from __future__ import annotations
 
-from collections.abc import Callable, Iterable, Mapping
+import dataclasses
+import sys
+from collections.abc import Mapping
 from dataclasses import dataclass
-from typing import Any, Literal
+from importlib import resources
+from typing import Any, Literal, get_args
 
-from slicetime.model import Finding, Severity
+from slicetime.model import Finding, RunView, Severity
+
+if sys.version_info >= (3, 11):
+    import tomllib
+else:  # pragma: no cover
+    import tomli as tomllib
 
 Scope = Literal["run", "dataset", "reader"]
 
@@ -54,21 +57,21 @@ class UnknownCode(LookupError):
 
 @dataclass(frozen=True)
 class Rule:
-    """One registered code: its documentation, severity and (for checks) its function."""
+    """One declared code: its documentation, its severity, where it is checked."""
 
     code: str
     title: str
     severity: Severity
     rationale: str
     fix: str | None
+    #: run or dataset: checked by a function of the rules layer bound to the code
+    #: (:mod:`slicetime.rules.bindings`); reader: raised elsewhere (readers, policy,
+    #: batch, correct, verify)
     scope: Scope
-    #: the check (a run or dataset check of :mod:`slicetime.rules.registry`), or None
-    #: when the code is raised elsewhere (readers, batch, correct, verify)
-    check: Callable[..., Any] | None = None
     #: the standard's check this rule covers, when one exists (for docs and tests)
     standard: str | None = None
     #: codes that follow from this rule's finding: on the same run and field they are
-    #: folded into it (listed in its grounds) instead of reported again
+    #: folded into it (listed in its evidence) instead of reported again
     subsumes: frozenset[str] = frozenset()
     #: where the check happens (a key of :data:`CHECKED`)
     checked: Checked = "metadata"
@@ -89,46 +92,56 @@ class Rule:
         return CHECKED[self.checked]
 
 
-#: every registered code, in registration order
-RULES: dict[str, Rule] = {}
+#: the table of declarations (package data), loaded once below
+CATALOGUE_FILE = "data/codes.toml"
+
+
+def _declaration(code: str, entry: Mapping[str, Any]) -> Rule:
+    """One table entry as a :class:`Rule`; a malformed entry is a bug of the package."""
+    known = {"title", "severity", "also_severities", "scope", "checked", "fixable",
+             "timing_in_doubt", "subsumes", "standard", "rationale", "fix"}
+    area, _, name = code.partition("/")
+    problems = [
+        f"unknown keys {sorted(set(entry) - known)}" if set(entry) - known else "",
+        "codes are lower-case area/short-name" if not area or not name
+        or code != code.lower() else "",
+        f"unknown place of checking {entry.get('checked')!r}"
+        if entry.get("checked") not in CHECKED else "",
+        f"unknown scope {entry.get('scope')!r}"
+        if entry.get("scope") not in get_args(Scope) else "",
+    ]
+    if any(problems):
+        raise RuntimeError(f"{CATALOGUE_FILE} [{code}]: " + "; ".join(p for p in problems if p))
+    severity = Severity(entry["severity"])
+    also = frozenset(Severity(s) for s in entry.get("also_severities", ()))
+    if severity in also:
+        raise RuntimeError(f"{CATALOGUE_FILE} [{code}]: also_severities repeats the severity")
+    return Rule(code, entry["title"], severity, entry["rationale"], entry.get("fix"),
+                entry["scope"], entry.get("standard"), frozenset(entry.get("subsumes", ())),
+                entry["checked"], entry.get("fixable", False), also,
+                entry.get("timing_in_doubt", False))
+
+
+def _load() -> tuple[dict[str, Rule], dict[str, str]]:
+    table = tomllib.loads(resources.files("slicetime").joinpath(CATALOGUE_FILE)
+                          .read_text("utf-8"))
+    renamed = dict(table.pop("renamed", {}))
+    rules = {code: _declaration(code, entry) for code, entry in table.items()}
+    for old, new in renamed.items():
+        if old in rules or new not in rules:
+            raise RuntimeError(f"{CATALOGUE_FILE} [renamed]: {old} -> {new}: the former "
+                               "name is still declared, or the new one is not")
+    for rule in rules.values():
+        if not rule.subsumes <= rules.keys():
+            raise RuntimeError(f"{CATALOGUE_FILE} [{rule.code}]: subsumes an unknown code")
+    return rules, renamed
+
+
+#: every declared code, in the table's order
+RULES: dict[str, Rule]
 #: former codes still understood for one release (lab policies, ``explain``): old -> new
-RENAMED: dict[str, str] = {}
-
-
-def register(rule: Rule) -> Rule:
-    """Add ``rule`` to the catalogue; a code is registered once, as ``area/short-name``."""
-    if rule.code in RULES:
-        raise RuntimeError(f"finding code registered twice: {rule.code}")
-    area, _, name = rule.code.partition("/")
-    if not area or not name or rule.code != rule.code.lower():
-        raise RuntimeError(f"finding codes are lower-case area/short-name: {rule.code!r}")
-    if rule.checked not in CHECKED:
-        raise RuntimeError(f"{rule.code}: unknown place of checking {rule.checked!r}")
-    if rule.severity in rule.also_severities:
-        raise RuntimeError(f"{rule.code}: also_severities repeats the registered severity")
-    RULES[rule.code] = rule
-    return rule
-
-
-def declare(
-    code: str,
-    *,
-    title: str,
-    severity: Severity,
-    rationale: str,
-    fix: str | None = None,
-    standard: str | None = None,
-    checked: Checked = "reading",
-    fixable: bool = False,
-    also_severities: Iterable[Severity] = (),
-    timing_in_doubt: bool = False,
-) -> Rule:
-    """Register a code raised outside the rules' checks (no check function): by the
-    readers (the default), the batch, verify, correct or the source cross-check."""
-    return register(Rule(code, title, severity, rationale, fix, "reader", None, standard,
-                         checked=checked, fixable=fixable,
-                         also_severities=frozenset(also_severities),
-                         timing_in_doubt=timing_in_doubt))
+RENAMED: dict[str, str]
+RULES, RENAMED = _load()
 
 
 def rule_of(code: str) -> Rule:
@@ -160,7 +173,7 @@ def make_finding(
     file, field
         Where the problem is (a display path; a sidecar key or header field).
     evidence
-        The values the finding rests on (its grounds in reports).
+        The values the finding rests on (its ``evidence`` in reports).
     hint
         What to do, when the call knows better than the registration's ``fix``;
         None gives a finding without a hint.
@@ -181,5 +194,31 @@ def make_finding(
     return Finding(code, chosen, message, file, field, dict(evidence or {}), hint)
 
 
-__all__ = ["CHECKED", "RENAMED", "RULES", "Checked", "Rule", "Scope", "UnknownCode", "declare",
-           "make_finding", "register", "rule_of"]
+@dataclass(frozen=True)
+class Hit:
+    """What a check reports about a run; :func:`to_finding` adds code and severity."""
+
+    message: str
+    field: str | None = None
+    evidence: Mapping[str, Any] = dataclasses.field(default_factory=dict)
+    hint: str | None = None
+    file: str | None = None  # defaults to the sidecar that supplied ``field``, else the run
+    severity: Severity | None = None  # overrides the rule's default for this hit
+
+
+def to_finding(rule: Rule, record: RunView | None, hit: Hit) -> Finding:
+    """The finding of ``rule``'s code that ``hit`` reports about ``record``."""
+    file = hit.file
+    if file is None and record is not None:
+        if hit.field and hit.field in record.metadata_sources:
+            file = record.metadata_sources[hit.field]
+        else:
+            file = record.path
+    return make_finding(rule.code, hit.message, file=file, field=hit.field,
+                        evidence=hit.evidence,
+                        hint=hit.hint if hit.hint is not None else rule.fix,
+                        severity=hit.severity)
+
+
+__all__ = ["CHECKED", "RENAMED", "RULES", "Checked", "Hit", "Rule", "Scope", "UnknownCode",
+           "make_finding", "rule_of", "to_finding"]

@@ -319,16 +319,13 @@ class Finding:
         return one_line(self.severity.value, self.code, self.file, self.field, self.message)
 
     def to_json(self) -> dict[str, Any]:
-        grounds = tidy_json(_jsonable(self.evidence))
         return {
             "code": self.code,
             "severity": self.severity.value,
             "message": self.message,
             "file": self.file,
             "field": self.field,
-            # the values the finding rests on; "evidence" repeats them for one release
-            "grounds": grounds,
-            "evidence": tidy_json(_jsonable(self.evidence)),  # deprecated: use "grounds"
+            "evidence": tidy_json(_jsonable(self.evidence)),  # the values it rests on
             "hint": self.hint,
         }
 

@@ -2,7 +2,7 @@
 rounded and written (model layer: no I/O, used by every layer above).
 
 * JSON (reports, plans, sidecars the tool writes): times in seconds to 1 µs
-  (:func:`json_time`); the values a finding rests on (its grounds, mostly times)
+  (:func:`json_time`); the values a finding rests on (its evidence, mostly times)
   to 12 significant digits and then to 6 decimals, i.e. 1 µs for a time
   (:func:`json_float`), so float noise such as ``0.44999999999999996`` never
   reaches a file a person reads.

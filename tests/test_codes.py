@@ -16,7 +16,6 @@ from pathlib import Path
 
 import pytest
 
-import slicetime.rules  # noqa: F401  (every registration)
 from slicetime.codes import CHECKED, RULES, UnknownCode, make_finding
 from slicetime.model import Severity
 from slicetime.rules import explain
@@ -87,8 +86,51 @@ def test_every_construction_site_names_a_registered_code() -> None:
                 checked += 1
                 if code not in RULES:
                     unregistered.append(f"{module}:{node.lineno}: {code}")
-    assert checked > 100  # the walk really sees the call sites
+    assert checked > 60  # the walk really sees the call sites
     assert not unregistered, unregistered
+
+
+def test_the_catalogue_is_whole_after_importing_slicetime_codes_alone() -> None:
+    # a fresh interpreter that imports only slicetime.codes knows every code, in the
+    # same order, as this one after importing the rules, the pipelines and the commands
+    import slicetime.interfaces.commands.audit
+    import slicetime.pipelines.correct
+    import slicetime.pipelines.verify  # noqa: F401
+    from slicetime.codes import RENAMED
+
+    script = ("import sys, slicetime.codes as c; print(' '.join(c.RULES)); "
+              "print(' '.join(f'{k}={v}' for k, v in c.RENAMED.items())); "
+              "print(' '.join(sorted(m for m in sys.modules if m.startswith('slicetime'))))")
+    out = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True,
+                         check=True).stdout.split("\n")
+    assert out[0].split() == list(RULES) and len(RULES) > 80
+    assert out[1].split() == [f"{k}={v}" for k, v in RENAMED.items()]
+    # nothing but the model is loaded with it (no module imported for its registrations)
+    assert set(out[2].split()) <= {"slicetime", "slicetime.codes", "slicetime.model",
+                                   "slicetime.numbers"}
+
+
+def test_every_run_and_dataset_code_has_exactly_one_check() -> None:
+    from slicetime.rules.bindings import DATASET_CHECKS, RUN_CHECKS
+
+    run_codes = [code for code, _ in RUN_CHECKS]
+    dataset_codes = [code for code, _ in DATASET_CHECKS]
+    assert len(set(run_codes)) == len(run_codes)
+    assert len(set(dataset_codes)) == len(dataset_codes)
+    assert set(run_codes) == {c for c, r in RULES.items() if r.scope == "run"}
+    assert set(dataset_codes) == {c for c, r in RULES.items() if r.scope == "dataset"}
+    assert all(callable(check) for _, check in (*RUN_CHECKS, *DATASET_CHECKS))
+
+
+def test_no_module_of_the_package_is_imported_for_its_side_effect() -> None:
+    # an import kept only for what it registers shows as an unused import the linter
+    # is told to accept (F401); none may name a slicetime module
+    offenders = []
+    for path in sorted(PACKAGE.rglob("*.py")):
+        for number, line in enumerate(path.read_text("utf-8").splitlines(), 1):
+            if "noqa: F401" in line and line.lstrip().startswith("import slicetime"):
+                offenders.append(f"{path.relative_to(PACKAGE.parent)}:{number}")
+    assert not offenders, offenders
 
 
 def test_make_finding_uses_the_registered_severity_and_refuses_unknown_codes() -> None:

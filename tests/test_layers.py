@@ -3,12 +3,12 @@ own layer or the layers below it.
 
 Layers, bottom up (DEVELOPERS.md, Architecture map):
 
-1. model: ``slicetime.model``, ``slicetime.model_source``, ``slicetime.codes``,
-   ``slicetime.numbers``, ``slicetime.words``, and the lab policy's value
-   types and patterns (``slicetime.policy.model``, ``slicetime.policy.patterns``);
+1. model: ``slicetime.model``, ``slicetime.model_source``, ``slicetime.codes`` (the
+   catalogue of finding codes, whole on import), ``slicetime.numbers``, ``slicetime.words``;
 2. schemes: ``slicetime.schemes``;
-3. readers: ``slicetime.readers``, and loading the lab policy (``slicetime.policy.loading``);
-4. rules: ``slicetime.rules``, and the policy checks (``slicetime.policy.checks``);
+3. readers: ``slicetime.readers``, and the lab policy, the whole package
+   ``slicetime.policy`` (reading it, its value types and its checks);
+4. rules: ``slicetime.rules``;
 5. engines: ``slicetime.engines``;
 6. pipelines: ``slicetime.pipelines``, and the public API (``slicetime.api``: it
    composes schemes and engines for Python callers, as a pipeline does for files);
@@ -30,11 +30,7 @@ PACKAGE = Path(__file__).resolve().parents[1] / "slicetime"
 
 LAYERS: list[tuple[str, int]] = [
     # most specific prefix first
-    ("slicetime.policy.model", 1),
-    ("slicetime.policy.patterns", 1),
-    ("slicetime.policy.loading", 3),
-    ("slicetime.policy.checks", 4),
-    ("slicetime.policy", 1),  # the package's __init__ imports nothing
+    ("slicetime.policy", 3),  # the whole package: one layer (DEVELOPERS.md, Decisions)
     ("slicetime.model_source", 1),
     ("slicetime.codes", 1),  # the catalogue of finding codes and make_finding: pure
     ("slicetime.model", 1),

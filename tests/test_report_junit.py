@@ -102,8 +102,8 @@ def test_failures_carry_code_message_and_details(dataset: Path) -> None:
     lines = dict(line.split(": ", 1) for line in body.strip().splitlines())
     assert lines["file"] == finding.file and lines["field"] == "SliceTiming"
     assert lines["severity"] == "error"
-    # the grounds line is JSON (RFC 8259) equal to the report's grounds
-    assert json.loads(lines["grounds"]) == finding.to_json()["grounds"]
+    # the evidence line is JSON (RFC 8259) equal to the report's evidence
+    assert json.loads(lines["evidence"]) == finding.to_json()["evidence"]
     assert lines["hint"] == finding.hint
 
 

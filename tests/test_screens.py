@@ -245,7 +245,7 @@ def test_screen_numbers_are_fixed_point_with_bounded_decimals(value: float) -> N
                 max_size=12))
 def test_no_output_has_more_than_6_decimals_for_times(times: list[float]) -> None:
     # noisy times (as arithmetic leaves them) in a sidecar: the run object, its scheme and
-    # every finding's grounds carry at most 6 decimals for any time
+    # every finding's evidence carries at most 6 decimals for any time
     noisy = [t + 1e-13 for t in times]
     rec = record({"SliceTiming": noisy, "RepetitionTime": 2.0},
                  header_info((4, 4, len(noisy), 5)))
@@ -253,7 +253,7 @@ def test_no_output_has_more_than_6_decimals_for_times(times: list[float]) -> Non
     for value in obj["slice_times"] + (obj["scheme"] or {}).get("group_times", []):
         assert decimals(repr(value)) <= 6
     for f in obj["findings"]:
-        for number in re.findall(r"\d+\.\d+", json.dumps(f["grounds"])):
+        for number in re.findall(r"\d+\.\d+", json.dumps(f["evidence"])):
             assert decimals(number) <= 6, (f["code"], number)
         assert not NOISE.search(f["message"]) and not SCIENTIFIC.search(f["message"])
 

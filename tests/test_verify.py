@@ -383,8 +383,7 @@ def test_cli_verdicts_exit_codes_and_json(dataset: Path) -> None:
     assert [r["verdict"] for r in report["runs"]] == ["supported", "contradicted"]
     finding = report["runs"][1]["finding"]
     assert finding["code"] == "verify/contradicted" and finding["severity"] == "warning"
-    assert set(finding) == {"code", "severity", "message", "file", "field", "grounds", "evidence",
-                            "hint"}
+    assert set(finding) == {"code", "severity", "message", "file", "field", "evidence", "hint"}
     assert finding["evidence"]["rival"] == "interleaved ascending from 0"
     assert report["summary"] == {"supported": 1, "consistent": 0, "contradicted": 1,
                                  "undecidable": 0}

@@ -128,7 +128,7 @@
           }
           li.appendChild(where);
         }
-        if (f[5] >= 0) { li.appendChild(el("p", "grounds", S[f[5]])); }
+        if (f[5] >= 0) { li.appendChild(el("p", "evidence", S[f[5]])); }
         if (f[6] >= 0) { li.appendChild(el("p", "hint", S[f[6]])); }
         ol.appendChild(li);
       });

@@ -6,7 +6,7 @@ for machines); the reports for people tell it once, with the runs it applies to
 JSON report's ``shared_findings``).
 
 Two findings are the same when they come from the same dataset root and agree
-in code, severity, file, field, message, hint and grounds. Only findings about
+in code, severity, file, field, message, hint and evidence. Only findings about
 a file that is neither the run's image nor the run's own sidecar can be shared;
 a finding made by several runs' shared file but worded for each run (with a run's
 own value in the message) stays with its run.
@@ -50,8 +50,8 @@ def own_sidecar(path: str) -> str:
     return path + ".json"
 
 
-def _grounds(f: dict[str, Any]) -> Any:
-    return f.get("grounds", f.get("evidence"))
+def _evidence(f: dict[str, Any]) -> Any:
+    return f.get("evidence")
 
 
 def finding_key(root: str, run_path: str, f: dict[str, Any]) -> Key | None:
@@ -60,9 +60,9 @@ def finding_key(root: str, run_path: str, f: dict[str, Any]) -> Key | None:
     file = f.get("file")
     if not file or file == run_path or file == own_sidecar(run_path):
         return None
-    grounds = json.dumps(_grounds(f), sort_keys=True, ensure_ascii=False, default=str)
+    evidence = json.dumps(_evidence(f), sort_keys=True, ensure_ascii=False, default=str)
     return (root, f["code"], f["severity"], file, f.get("field"), f["message"], f.get("hint"),
-            grounds)
+            evidence)
 
 
 @dataclass

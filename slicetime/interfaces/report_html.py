@@ -64,7 +64,7 @@ from slicetime.interfaces.report_stream import (
     ReportSource,
     display_path,
     encode,
-    grounds_text,
+    evidence_text,
     group_label,
     report_root,
     run_line,
@@ -162,13 +162,6 @@ def _use(ident: str, size: tuple[float, float], caption: str) -> str:
 
 
 # --------------------------------------------------------------------------- grouping
-
-
-def _column_key(record: RunRecord, suffixes: int) -> str:
-    parts = [f"{k}-{v}" for k, v in record.entities.items() if k != "sub"]
-    if suffixes > 1 or not parts:
-        parts.append(record.suffix or "(no suffix)")
-    return " ".join(parts)
 
 
 @dataclass(frozen=True)
@@ -516,13 +509,13 @@ def _page_data(source: ReportSource, collector: DiagramCollector,
             own = grouping.own(index, pending[1]["findings"])
             ordered = sorted(own, key=lambda f: -_RANK[f["severity"]])
             for f in ordered:
-                grounds = f.get("grounds") or f.get("evidence")
+                evidence = f.get("evidence")
                 findings.append([
                     strings(xml_safe(f["code"])), _RANK[f["severity"]],
                     opt(strip_path_prefix(f["message"], f.get("file"), pending[1]["path"]),
                         one_line=False),
                     opt(f.get("file")), opt(f.get("field")),
-                    opt(grounds_text(grounds) if grounds else None, one_line=False),
+                    opt(evidence_text(evidence) if evidence else None, one_line=False),
                     opt(f.get("hint"), one_line=False),
                 ])
             pending = next(found, None)

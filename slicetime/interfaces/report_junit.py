@@ -83,7 +83,7 @@ def _failure_text(finding: Mapping[str, Any]) -> str:
         f"severity: {finding['severity']}",
         f"file: {xml_safe(finding.get('file') or '-')}",
         f"field: {xml_safe(finding.get('field') or '-')}",
-        f"grounds: {xml_safe(_evidence(finding))}",
+        f"evidence: {xml_safe(_evidence(finding))}",
         f"hint: {xml_safe(finding.get('hint') or '-')}",
     ]
     return "\n".join(lines) + "\n"

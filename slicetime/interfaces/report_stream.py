@@ -124,9 +124,8 @@ def _completed(obj: dict[str, Any], more: Sequence[Finding] | None,
     if folded:
         roots = [d for d in findings if is_fold_root(d["code"])]
         for number, finding in folded:
-            for key in ("grounds", "evidence"):  # evidence: the former name, one release
-                grounds = roots[number].setdefault(key, {})
-                grounds.setdefault("folded", []).append(folded_entry(finding))
+            evidence = roots[number].setdefault("evidence", {})
+            evidence.setdefault("folded", []).append(folded_entry(finding))
     if more:
         findings.extend(f.to_json() for f in more)
     return obj
@@ -440,12 +439,12 @@ def _value_text(value: Any, limit: int = 12) -> str:
     return xml_safe(value)
 
 
-def grounds_text(grounds: dict[str, Any]) -> str:
-    """A finding's grounds for people: one ``name: value`` line per entry (names with
+def evidence_text(evidence: dict[str, Any]) -> str:
+    """A finding's evidence for people: one ``name: value`` line per entry (names with
     spaces, numbers without float noise, long lists cut), and the findings folded into
     it as ``also: code (severity): message`` lines."""
     lines: list[str] = []
-    for key, value in grounds.items():
+    for key, value in evidence.items():
         if key == "folded" and isinstance(value, list):
             lines.extend(f"also: {xml_safe(f.get('code'))} ({xml_safe(f.get('severity'))}): "
                          f"{xml_safe(f.get('message'), one_line=False)}"

@@ -29,7 +29,7 @@ class CorrectionError(Exception):
         self.field = field
 
 
-#: codes of the refusals ``correct`` makes itself (documented in rules/correction.py)
+#: codes of the refusals ``correct`` makes itself (declared in slicetime/data/codes.toml)
 CLASH_CODE = "correct/output-clash"
 IMPLAUSIBLE_CODE = "correct/implausible-timing"
 SCALING_CODE = "correct/scaling-range"

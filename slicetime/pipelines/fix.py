@@ -188,7 +188,7 @@ def _repair_json(repair: Repair) -> dict[str, Any]:
         "current": repair.current,
         "resolved_from": repair.resolved_from,
         "source": repair.source,
-        "grounds": tidy_json(dict(repair.evidence)),
+        "evidence": tidy_json(dict(repair.evidence)),
     }
 
 

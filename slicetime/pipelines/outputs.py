@@ -14,7 +14,6 @@ import re
 from collections.abc import Iterable, Sequence
 from pathlib import Path
 
-import slicetime.rules.correction  # noqa: F401  (registers CLASH_CODE)
 from slicetime.codes import make_finding
 from slicetime.model import Finding, RunRecord
 from slicetime.pipelines.errors import CLASH_CODE

@@ -28,7 +28,6 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 
-import slicetime.rules  # noqa: F401  (registers the verify/* codes it makes)
 from slicetime.codes import make_finding
 from slicetime.engines import verify as ev
 from slicetime.model import MAX_REPETITION_TIME, Finding, RunRecord, Severity, SliceSchedule

@@ -1,8 +1,9 @@
 """Applying the lab policy to runs and findings. Pure: no I/O.
 
 The policy itself is in :mod:`slicetime.policy.model` (the value types) and
-:mod:`slicetime.policy.loading` (its format and the loader). This module, at the
-rules layer (``slicetime.rules`` imports it to register the ``policy/*`` codes):
+:mod:`slicetime.policy.loading` (its format and the loader). This module, in the
+same layer as the rest of the package (it needs only the catalogue of codes, never
+the rules):
 
 * :func:`check_protocol` compares one run with the protocol the policy
   expects for it and returns ``policy/*`` findings;
@@ -56,15 +57,15 @@ before severity overrides; an ignored finding keeps its original severity.
 
 from __future__ import annotations
 
-from collections.abc import Iterable, Iterator
+from collections.abc import Iterable
 from dataclasses import dataclass
 from typing import Any, cast
 
-from slicetime.model import AXES, Axis, Finding, RunRecord, RunView, Severity, Source
+from slicetime.codes import RULES, Hit, to_finding
+from slicetime.model import AXES, Axis, Finding, RunRecord, RunView, Source
 from slicetime.numbers import as_written, secs
-from slicetime.policy.model import ExpectedProtocol, IgnoreEntry, Policy, SchemeFamily
-from slicetime.rules.registry import RULES, Hit, run_rule, to_finding
-from slicetime.schemes.labels import scheme_family
+from slicetime.policy.model import ExpectedProtocol, IgnoreEntry, Policy
+from slicetime.schemes.labels import SchemeFamily, scheme_family
 from slicetime.schemes.resolve import is_number, parse_direction
 
 __all__ = [
@@ -83,98 +84,13 @@ __all__ = [
     "select_protocol",
 ]
 
-E = Severity.ERROR
 _SLACK = 1e-9  # float noise when comparing with a tolerance
-
-# --------------------------------------------------------------------------- registration
-
-
-def _checked_with_policy(record: RunRecord) -> Iterator[Hit]:
-    """Registered check for the policy codes: they need the policy, so check_protocol runs them."""
-    return iter(())
-
-
-def _document(code: str, *, title: str, rationale: str, fix: str,
-              timing_in_doubt: bool = False) -> None:
-    run_rule(code, title=title, severity=E, rationale=rationale, fix=fix,
-             timing_in_doubt=timing_in_doubt)(_checked_with_policy)
-
 
 _OWN_ENTRY = (
     "If the run was acquired with another protocol on purpose, give it its own [[protocols]] "
     "entry with a more specific match (or waive the code for it with a reason)."
 )
 
-_document(
-    "policy/tr-mismatch",
-    title="the repetition time differs from the lab's protocol",
-    rationale=(
-        "The lab policy (slicetime-policy.toml) expects this repetition time for the runs its "
-        "protocol selects. A different TR means the run was acquired with another protocol, or "
-        "its metadata is wrong (milliseconds, a copied sidecar, an inherited value meant for "
-        "other runs). Only differences beyond the protocol's tolerance count."
-    ),
-    fix="Correct RepetitionTime in the sidecar. " + _OWN_ENTRY,
-)
-_document(
-    "policy/slice-count",
-    title="the number of slices differs from the lab's protocol",
-    rationale=(
-        "The image's extent along the slice axis is not the number of slices the lab's protocol "
-        "for this run expects: the run used another protocol, was cropped or resliced, or the "
-        "slice axis is not the one the lab expects."
-    ),
-    fix="Check the slice axis (SliceEncodingDirection) and the image. " + _OWN_ENTRY,
-)
-_document(
-    "policy/multiband-mismatch",
-    timing_in_doubt=True,
-    title="the multiband factor differs from the lab's protocol",
-    rationale=(
-        "The slices excited together (the size of the groups in the slice times, else the "
-        "declared MultibandAccelerationFactor) are not as many as the lab's protocol for this "
-        "run expects. Slice times written for a single-band protocol, or copied from another "
-        "protocol, give every slice the wrong time."
-    ),
-    fix="Take SliceTiming and MultibandAccelerationFactor from the protocol that produced the "
-    "run (slicetime timing prints them). " + _OWN_ENTRY,
-)
-_document(
-    "policy/scheme-mismatch",
-    timing_in_doubt=True,
-    title="the slice order differs from the lab's protocol",
-    rationale=(
-        "The acquisition scheme inferred from the slice times is not the one the lab's protocol "
-        "expects (an exact label as slicetime prints it, or an order family such as "
-        "interleaved). Labels describe the order of data-array indices, after "
-        "SliceEncodingDirection is applied: a reversed direction turns ascending into "
-        "descending."
-    ),
-    fix="Compare with `slicetime show` for the run; fix SliceTiming or SliceEncodingDirection. "
-    + _OWN_ENTRY,
-)
-_document(
-    "policy/direction-mismatch",
-    timing_in_doubt=True,
-    title="the slice encoding direction differs from the lab's protocol",
-    rationale=(
-        "The slice axis and direction the run's metadata gives (or the BIDS default k when "
-        "SliceEncodingDirection is absent) are not the ones the lab's protocol expects. Slice "
-        "times mapped onto the wrong axis or direction are wrong for every slice."
-    ),
-    fix="Set SliceEncodingDirection in the sidecar to the protocol's value. " + _OWN_ENTRY,
-)
-_document(
-    "policy/ambiguous-protocol",
-    title="two protocols of the lab policy claim the run and disagree",
-    rationale=(
-        "When several [[protocols]] select a run, the one with the most match keys applies. "
-        "These are equally specific and expect different things, so slicetime cannot tell "
-        "which the lab meant and checks none of them for this run."
-    ),
-    fix="Add a key to one of the match tables so exactly one protocol is most specific for "
-    "such runs, or make the protocols agree.",
-)
 # --------------------------------------------------------------------------- results
 
 
@@ -451,11 +367,7 @@ def _check_multiband(policy: Policy, protocol: ExpectedProtocol, record: RunReco
             f"but {protocol.describe()} expects {expected}",
             field,
             _evidence(
-                policy,
-                protocol,
-                record,
-                expected,
-                found,
+                policy, protocol, record, expected, found,
                 declared=declared,
                 **{"from": "slice times"},
             ),
@@ -560,11 +472,7 @@ def _check_direction(policy: Policy, protocol: ExpectedProtocol, record: RunReco
         f"{text} but {protocol.describe()} expects {expected}",
         "SliceEncodingDirection",
         _evidence(
-            policy,
-            protocol,
-            record,
-            expected,
-            found,
+            policy, protocol, record, expected, found,
             source=source.describe() if source is not None else None,
         ),
         hint=f'Set "SliceEncodingDirection": "{expected}" in the sidecar if the protocol is '

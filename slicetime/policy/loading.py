@@ -108,7 +108,7 @@ from typing import TYPE_CHECKING, Any
 if TYPE_CHECKING:  # imported where a policy is validated: 50 ms a start otherwise
     import jsonschema
 
-from slicetime.codes import RULES, declare, make_finding
+from slicetime.codes import RULES, make_finding
 from slicetime.model import TIME_TOLERANCE, Finding, Severity
 from slicetime.policy.model import (
     EXPECTATION_KEYS,
@@ -148,40 +148,9 @@ MAX_POLICY_BYTES = 1024 * 1024
 _HINT = "Fix the policy file; `slicetime explain policy/invalid` describes its format."
 
 # the code this module raises, registered here so a reader can make its finding
-declare(
-    "policy/invalid",
-    title="the lab policy file cannot be used",
-    severity=Severity.ERROR,
-    rationale=(
-        "slicetime-policy.toml (at the dataset root, or given with --policy) must be valid TOML "
-        "and follow the policy format: version = 1; [[protocols]] with a match table of BIDS "
-        "entities (plus datatype and suffix), at least one of repetition_time, slices, "
-        "multiband_factor, scheme, slice_encoding_direction, and an optional tolerance; a "
-        "[levels] table "
-        "mapping finding codes (or patterns with * and ?) to error, warning or note; [[waive]] "
-        "entries with findings (codes or patterns), optional run path patterns (runs) and a "
-        "required reason. Unknown "
-        "keys, unknown finding codes and bad patterns are errors, so a typo never silently "
-        "turns a check off."
-    ),
-    fix="Fix the key the message names; the file's JSON Schema ships as "
-    "slicetime/data/policy.schema.json.",
-)
 
 
 FORMER_KEYS_CODE = "policy/former-keys"
-declare(
-    FORMER_KEYS_CODE,
-    title="the lab policy uses key names of an earlier release",
-    severity=Severity.NOTE,
-    rationale=(
-        "The policy's tables were renamed: [severity] is now [levels], [[ignore]] is now "
-        "[[waive]], and a waive entry's codes and paths are now findings and runs. The former "
-        "names are still read, with the same meaning, until the next release."
-    ),
-    fix="Rename the keys the message names.",
-    checked="policy",
-)
 
 #: former policy keys and the names they are read as (one release): at the top level,
 #: and inside each ``[[waive]]`` entry
@@ -374,20 +343,16 @@ def _document_order(data: Any, parts: KeyPath) -> tuple[int, ...]:
     return tuple(out)
 
 
+#: TOML's value types as Python reads them, in words (bool before int: a bool is an int)
+_TOML_TYPES: tuple[tuple[type, str], ...] = (
+    (bool, "a boolean"), (int, "an integer"), (float, "a float"), (str, "a string"),
+    (dict, "a table"), (list, "an array"),
+)
+
+
 def _toml_type(value: Any) -> str:
-    if isinstance(value, bool):
-        return "a boolean"
-    if isinstance(value, int):
-        return "an integer"
-    if isinstance(value, float):
-        return "a float"
-    if isinstance(value, str):
-        return "a string"
-    if isinstance(value, dict):
-        return "a table"
-    if isinstance(value, list):
-        return "an array"
-    return "a date/time"
+    return next((words for kind, words in _TOML_TYPES if isinstance(value, kind)),
+                "a date/time")
 
 
 def _shown(value: Any) -> str:

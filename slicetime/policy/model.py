@@ -6,7 +6,7 @@ from __future__ import annotations
 import dataclasses
 from collections.abc import Mapping
 from dataclasses import dataclass
-from typing import Any, Literal
+from typing import Any
 
 from slicetime.model import TIME_TOLERANCE, Severity
 from slicetime.policy.patterns import code_matches, is_pattern, path_matches
@@ -19,7 +19,6 @@ __all__ = [
     "ExpectedProtocol",
     "IgnoreEntry",
     "Policy",
-    "SchemeFamily",
 ]
 
 POLICY_FILENAME = "slicetime-policy.toml"
@@ -33,14 +32,6 @@ EXPECTATION_KEYS: tuple[str, ...] = (
     "scheme",
     "slice_encoding_direction",
 )
-
-
-@dataclass(frozen=True)
-class SchemeFamily:
-    """An order family: ``kind`` sequential/interleaved and/or a direction (None = any)."""
-
-    kind: Literal["sequential", "interleaved"] | None = None
-    ascending: bool | None = None
 
 
 @dataclass(frozen=True)

@@ -42,7 +42,6 @@ import stat
 from collections.abc import Callable, Iterator, Mapping, Sequence
 from pathlib import Path
 
-import slicetime.readers.codes  # noqa: F401  (registers the codes made here)
 from slicetime.codes import make_finding
 from slicetime.model import Finding
 

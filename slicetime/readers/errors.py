@@ -37,7 +37,6 @@ from collections.abc import Mapping
 from pathlib import Path
 from typing import Any, BinaryIO
 
-import slicetime.readers.codes  # noqa: F401  (registers the codes made here)
 from slicetime.codes import make_finding
 from slicetime.model import Finding
 from slicetime.words import with_article

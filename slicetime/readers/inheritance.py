@@ -43,7 +43,6 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, NamedTuple
 
-import slicetime.readers.codes  # noqa: F401  (registers the codes made here)
 from slicetime.codes import make_finding
 from slicetime.model import Finding, Severity
 

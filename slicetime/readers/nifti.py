@@ -56,7 +56,7 @@ import struct
 import zlib
 from collections.abc import Callable
 from pathlib import Path
-from typing import Any, BinaryIO, Literal
+from typing import Any, BinaryIO, Literal, cast
 
 from slicetime.model import Finding, HeaderInfo
 from slicetime.numbers import amount, size_words
@@ -73,7 +73,8 @@ from .errors import (
 try:  # pragma: no cover - depends on the environment
     from isal import isal_zlib as _fast_zlib
 
-    _DECOMPRESS_ERRORS: tuple[type[BaseException], ...] = (zlib.error, _fast_zlib.error)
+    _DECOMPRESS_ERRORS: tuple[type[BaseException], ...] = (
+        zlib.error, cast("type[BaseException]", _fast_zlib.error))  # its stub types an instance
 
     def _new_decompressor() -> Any:
         return _fast_zlib.decompressobj(wbits=31)
@@ -200,7 +201,7 @@ _LAYOUTS = {
 }
 _MAGIC_1 = {b"n+1\x00": True, b"ni1\x00": False}  # value: image data in the same file
 _MAGIC_2 = {b"n+2\x00\r\n\x1a\n": True, b"ni2\x00\r\n\x1a\n": False}
-_TIME_UNITS: dict[int, tuple[Literal["s", "ms", "us"], float]] = {
+_TIME_UNITS: dict[int, tuple[Literal["s", "ms", "us", "unknown"], float]] = {
     8: ("s", 1.0),
     16: ("ms", 1e-3),
     24: ("us", 1e-6),
@@ -499,7 +500,7 @@ def _read_open(
         _check_paired_image(Path(path), shown, vox_offset + data_bytes)
 
     unit_bits = int(raw["xyzt_units"]) & 0x38
-    time_unit, factor = _TIME_UNITS.get(unit_bits, ("unknown", 1.0))
+    time_unit, factor = _TIME_UNITS.get(unit_bits) or ("unknown", 1.0)
     pixdim_all = raw["pixdim"]
     raw_tr = float(pixdim_all[4])
     tr = raw_tr * factor if len(shape) >= 4 and math.isfinite(raw_tr) and raw_tr != 0 else None

@@ -46,7 +46,6 @@ from typing import TYPE_CHECKING, Any
 if TYPE_CHECKING:  # imported when a value fails the quick checks: 50 ms a start otherwise
     import jsonschema
 
-import slicetime.readers.codes  # noqa: F401  (registers the codes made here)
 from slicetime.codes import make_finding
 from slicetime.model import Finding, Severity
 
@@ -103,7 +102,7 @@ def _refuse(self: Any, *_args: Any, **_kwargs: Any) -> Any:
     )
 
 
-class FrozenList(list):  # type: ignore[type-arg]
+class FrozenList(list):
     """A JSON array read from a sidecar: a ``list`` that refuses every change.
 
     One parsed value is shared by every run that inherits it (no copy per run), so it
@@ -119,7 +118,7 @@ class FrozenList(list):  # type: ignore[type-arg]
         return (FrozenList, (list(self),))
 
 
-class FrozenDict(dict):  # type: ignore[type-arg]
+class FrozenDict(dict):
     """A JSON object nested in a sidecar: a ``dict`` that refuses every change (see
     :class:`FrozenList`)."""
 
@@ -190,8 +189,8 @@ def _quick_check(schema: Mapping[str, Any]) -> Check:
             return lambda value: type(value) is str
         if not all(type(option) is str for option in enum):
             return _never
-        options = frozenset(enum)
-        return lambda value: type(value) is str and value in options
+        allowed = frozenset(enum)
+        return lambda value: type(value) is str and value in allowed
     if kind == "array":
         if low is not None or above is not None or "enum" in schema:
             return _never

@@ -1,13 +1,15 @@
-"""What ``correct`` may act on, and the codes it gives a run it refuses for its own reasons.
+"""What ``correct`` may act on, and the judgements behind the codes it gives a run it
+refuses for its own reasons.
 
-The codes are not audit checks: the audit never reports them. ``correct`` attaches
-them to a refused run (its ``blocking_findings``) so that ``slicetime explain``
-documents every reason a run was not corrected.
+Those codes (``correct/*``, declared in the catalogue, ``slicetime/data/codes.toml``)
+are not audit checks: the audit never reports them. ``correct`` attaches them to a
+refused run (its ``blocking_findings``) so that ``slicetime explain`` documents every
+reason a run was not corrected.
 
 The judgements, each with one owner here (pure, no I/O):
 
 * :func:`timing_doubts` / :func:`judge_trust`: whether the run's timing stands in
-  doubt (a finding whose rule is registered with ``timing_in_doubt``, at warning
+  doubt (a finding whose code is declared with ``timing_in_doubt``, at warning
   level or above) and which doubts the user accepted (``--accept``, ``[[accept]]``);
 * :func:`interpolation_refusal`: whether the run's volumes may be interpolated at
   all (BOLD-type series only);
@@ -24,125 +26,6 @@ from slicetime.codes import RULES
 from slicetime.model import Finding, RunRecord, Severity
 from slicetime.policy.model import AcceptEntry
 from slicetime.policy.patterns import path_pattern_problem
-from slicetime.rules.registry import reader_code
-
-reader_code(
-    "correct/output-clash",
-    checked="correcting",
-    title="two inputs would be written to one corrected output",
-    severity=Severity.ERROR,
-    rationale=(
-        "The output name is the input's path with the desc entity replaced and the image "
-        "extension kept, and the sidecar drops the extension: runs whose names differ only "
-        "in desc-, or a .nii and a .nii.gz of one run, or an output that an earlier batch "
-        "wrote from another input dataset, would all land on one file. One would silently "
-        "overwrite the other and every rerun would redo both, so every run involved is "
-        "refused and none is written."
-    ),
-    fix=(
-        "Keep one of the inputs (remove or rename the other), or correct them into separate "
-        "--out folders."
-    ),
-)
-reader_code(
-    "correct/implausible-timing",
-    checked="correcting",
-    title="the timing is physically impossible for an fMRI run",
-    severity=Severity.ERROR,
-    rationale=(
-        "A repetition time or volume spacing outside 0.05 to 100 s, a DelayTime or "
-        "AcquisitionDuration above 100 s, or slice times outside the acquisition window "
-        "cannot describe a functional run; they are almost always in the wrong unit. "
-        "Resampling with them would shift every slice by a meaningless amount, so the run "
-        "is refused even with --force."
-    ),
-    fix="Correct the values (slicetime fix repairs millisecond values), then rerun.",
-)
-reader_code(
-    "correct/scaling-range",
-    checked="correcting",
-    title="the header's scaling gives values a float32 output cannot hold",
-    severity=Severity.ERROR,
-    rationale=(
-        "scl_slope and scl_inter turn stored values into real values. A non-finite "
-        "scl_inter with a valid scl_slope, or a slope and intercept that take the stored "
-        "values beyond the float32 range, would write inf or nan into the corrected "
-        "image (NIfTI-1: value = scl_slope * stored + scl_inter)."
-    ),
-    fix="Check scl_slope and scl_inter in the image header; rewrite the image with sane ones.",
-)
-reader_code(
-    "correct/timing-in-doubt",
-    checked="correcting",
-    title="the run's slice times are in doubt, so it is not corrected",
-    severity=Severity.ERROR,
-    rationale=(
-        "Another source contradicts the slice times the run's metadata gives: the NIfTI "
-        "header, the source DICOM series, the image data (verify), the lab's protocol or the "
-        "dataset's other runs of the same task (the audit's findings whose rules say so; "
-        "slicetime explain CODE tells). Correcting with times that may be wrong moves every "
-        "slice by the wrong amount and makes the timing error worse than doing nothing, and "
-        "the output no longer shows it. So correct refuses such a run, at warning level or "
-        "above, even with --force, until someone who knows the acquisition accepts the doubt "
-        "for that code and those runs."
-    ),
-    fix=(
-        "Resolve the contradiction (slicetime show RUN; slicetime fix repairs many), or, "
-        "when you know the run's own metadata is right, accept the doubt: correct --accept "
-        "CODE[:PATH-PATTERN], or an [[accept]] entry with a reason in the lab policy. The "
-        "outcome, the output sidecar and the provenance record every accepted doubt."
-    ),
-)
-reader_code(
-    "correct/not-interpolable",
-    checked="correcting",
-    title="the run is not a BOLD-type time series, so its volumes must not be interpolated",
-    severity=Severity.ERROR,
-    rationale=(
-        "Slice-timing correction interpolates each voxel between neighbouring volumes, which "
-        "assumes the volumes sample one slowly varying signal. Only BOLD-type series (bold, "
-        "cbv, phase and their echoes) do. Diffusion volumes differ in b-value and gradient "
-        "direction, so interpolating across them mixes contrasts (a b=1500 slice takes values "
-        "from the b=5 volumes beside it); arterial spin labelling alternates label and control "
-        "volumes, whose difference is the signal interpolation destroys; a single-band "
-        "reference or an M0 scan is not a time series at all."
-    ),
-    fix=(
-        "Leave such runs out of correct (their timing is handled by their own models); "
-        "correct the BOLD runs."
-    ),
-)
-reader_code(
-    "correct/too-few-volumes",
-    checked="correcting",
-    title="the run has too few volumes to be corrected",
-    severity=Severity.ERROR,
-    rationale=(
-        "Near the first and last volumes every method has to invent what lies beyond the "
-        "run, and its error there is large: measured for a shift of half a TR (benchmarks/"
-        "bench_edges.py, table in the README), the whole-run error is 57 % of doing nothing "
-        "at 2 volumes, 33 % at 4 and 24 to 28 % at 5, about a fifth (19 to 21 %) at 6 and "
-        "less from 8 on, for the fourier, sinc and cubic methods. Below 6 volumes a "
-        "correction gives little and looks like more than it is."
-    ),
-    fix="Correct only complete runs; a run this short is usually a test or a broken export.",
-)
-
-reader_code(
-    "correct/record-unwritten",
-    checked="correcting",
-    title="the output folder's description or provenance file could not be written",
-    severity=Severity.ERROR,
-    rationale=(
-        "After the runs, correct rewrites dataset_description.json and the provenance file "
-        "of --out so that they list exactly the outputs on disk. When that write fails (a "
-        "full disk, a folder that became read-only), the corrected runs are still in place "
-        "and reported, but the folder's own record of them is out of date, so the batch "
-        "ends with exit status 1."
-    ),
-    fix="Free space or restore write access to --out, then rerun the same command: the "
-        "outputs in place are reused and the record is written again.",
-)
 
 #: the fewest volumes a run needs to be corrected: from the measured whole-run error
 #: (benchmarks/bench_edges.py; README "The run's ends"), 6 volumes is the first count at

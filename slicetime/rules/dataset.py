@@ -8,9 +8,9 @@ from typing import Any
 
 from slicetime.model import TIME_TOLERANCE, RunRecord, RunView, Severity
 from slicetime.numbers import secs
-from slicetime.rules.registry import DatasetHit, Hit, dataset_rule, run_rule
+from slicetime.rules.registry import DatasetHit, Hit
 
-E, W, N = Severity.ERROR, Severity.WARNING, Severity.NOTE
+E = Severity.ERROR
 
 #: entities that name a protocol; runs sharing them are expected to share timing.
 #: echo and part are left out: echoes and magnitude/phase parts of one run share a
@@ -79,19 +79,6 @@ def _scheme_text(value: Hashable) -> str:
     return f"'{value[0]}'" if isinstance(value, tuple) else f"'{value}'"
 
 
-@dataset_rule(
-    "dataset/outlier-scheme",
-    timing_in_doubt=True,
-    title="a run's scheme differs from the other runs of its task and acquisition",
-    severity=W,
-    rationale=(
-        "Runs of one task and acquisition come from one protocol, so they should share a "
-        "slice order. One subject's differing order usually means an overriding sidecar, a "
-        "different converter, or a protocol change nobody recorded."
-    ),
-    fix="Check the outlier against the protocol; fix its sidecar or record the change with "
-    "an acq- entity.",
-)
 def outlier_scheme(records: Sequence[RunView]) -> Iterator[DatasetHit]:
     yield from _consensus(records, _scheme_value, _scheme_text, "scheme", _scheme_field)
 
@@ -112,13 +99,6 @@ def _scheme_field(record: RunView, majority: Sequence[RunView]) -> str:
     return "SliceTiming"
 
 
-@dataset_rule(
-    "dataset/outlier-tr",
-    title="a run's TR differs from the other runs of its task and acquisition",
-    severity=W,
-    rationale="Runs of one protocol share a repetition time.",
-    fix="Check RepetitionTime of the outlier against the protocol.",
-)
 def outlier_tr(records: Sequence[RunView]) -> Iterator[DatasetHit]:
     def value(record: RunView) -> Hashable | None:
         tr = record.timing.repetition_time  # seconds, with or without slice times
@@ -130,13 +110,6 @@ def outlier_tr(records: Sequence[RunView]) -> Iterator[DatasetHit]:
                           "RepetitionTime")
 
 
-@dataset_rule(
-    "dataset/outlier-slices",
-    title="a run's slice count differs from the other runs of its task and acquisition",
-    severity=W,
-    rationale="Runs of one protocol have the same number of slices.",
-    fix="Check the image: a different slice count means a different protocol or a crop.",
-)
 def outlier_slices(records: Sequence[RunView]) -> Iterator[DatasetHit]:
     def value(record: RunView) -> Hashable | None:
         if record.schedule is not None:
@@ -154,19 +127,6 @@ def _run_stem(path: str) -> str | None:
     return None
 
 
-@dataset_rule(
-    "dataset/duplicate-run",
-    title="one run is present twice, as .nii and as .nii.gz",
-    severity=E,
-    rationale=(
-        "A run is one image file: BIDS names it once, with either NIfTI extension, and its "
-        "sidecar, events and derivatives are named from that one name. Two copies (one "
-        "compressed, one not) share the sidecar and the output name; tools pick either, and "
-        "the two may differ."
-    ),
-    fix="Keep one copy (usually the .nii.gz) and delete the other, after checking they hold "
-    "the same data.",
-)
 def duplicate_run(records: Sequence[RunView]) -> Iterator[DatasetHit]:
     copies: dict[tuple[str, str], list[RunView]] = defaultdict(list)
     for record in records:
@@ -193,18 +153,6 @@ def _echo_family(record: RunView) -> tuple[Any, ...] | None:
     return (record.root, record.datatype, record.suffix, rest)
 
 
-@dataset_rule(
-    "dataset/echo-mismatch",
-    timing_in_doubt=True,
-    title="echoes or parts of one run disagree on timing",
-    severity=E,
-    rationale=(
-        "The echoes (and magnitude/phase parts) of a multi-echo run are acquired in the same "
-        "excitations, so their slice times and TR are identical. A difference means one "
-        "file's metadata belongs to another run."
-    ),
-    fix="Give every echo the same SliceTiming and RepetitionTime.",
-)
 def echo_mismatch(records: Sequence[RunView]) -> Iterator[DatasetHit]:
     families: dict[tuple[Any, ...], list[RunView]] = defaultdict(list)
     for record in records:
@@ -237,19 +185,6 @@ def echo_mismatch(records: Sequence[RunView]) -> Iterator[DatasetHit]:
                 ))
 
 
-@run_rule(
-    "inherit/timing-override",
-    title="a deeper sidecar overrides inherited timing",
-    severity=N,
-    also_severities=(E,),
-    rationale=(
-        "The inheritance principle lets a subject- or run-level sidecar override a value "
-        "inherited from above. For timing that is legitimate (a protocol change) but also how "
-        "one participant silently ends up with different slice times. It is an error when the "
-        "overriding value itself is broken."
-    ),
-    fix="Confirm the override is intended; otherwise delete the overriding key.",
-)
 def timing_override(record: RunRecord) -> Iterator[Hit]:
     for key, shadowed in sorted(record.overridden.items()):
         winner = record.metadata_sources.get(key)

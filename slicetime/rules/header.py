@@ -5,31 +5,17 @@ from __future__ import annotations
 import math
 from collections.abc import Iterator
 
-import slicetime.readers.codes  # noqa: F401  (registers file/not-retrieved, checked below)
-from slicetime.model import AXES, RunRecord, Severity
+from slicetime.model import AXES, RunRecord
 from slicetime.numbers import as_written, plain, secs
-from slicetime.rules.registry import RULES, Hit, renamed, run_check, run_rule
+from slicetime.rules.registry import RULES, Hit
 from slicetime.schemes.infer import infer_scheme
 from slicetime.schemes.niftcodes import SLICE_CODE_NAMES, header_slice_times
 from slicetime.schemes.resolve import parse_direction, positive_number
-
-E, W, N = Severity.ERROR, Severity.WARNING, Severity.NOTE
 
 #: header and sidecar TR may differ by less than 1 ms (BIDS RepetitionTimeMismatch check)
 TR_ABS_TOL = 1e-3
 
 
-renamed("file/not-4d", "file/series-shape")  # until the release after 0.1
-
-
-@run_rule(
-    "file/series-shape",
-    title="a single volume where a time series is expected",
-    severity=E,
-    rationale="Slice timing concerns series of volumes; a 3D image (or a 4D image with one "
-    "volume) under a functional name is a conversion mistake or the wrong file.",
-    fix="Check that the file is the full series.",
-)
 def series_shape(record: RunRecord) -> Iterator[Hit]:
     header = record.header
     if header is None or record.suffix not in ("bold", "cbv", "asl"):
@@ -46,20 +32,8 @@ def series_shape(record: RunRecord) -> Iterator[Hit]:
         )
 
 
-renamed("header/tr-mismatch", "header/tr-disagrees")  # until the release after 0.1
 
 
-@run_rule(
-    "header/tr-disagrees",
-    title="the header's TR disagrees with RepetitionTime",
-    severity=E,
-    rationale=(
-        "BIDS requires RepetitionTime to agree with pixdim[4] after converting xyzt_units. "
-        "Tools that read the header see a different TR from tools that read the sidecar."
-    ),
-    fix="Correct whichever is wrong; the sidecar is what slicetime uses.",
-    standard="BIDS rules.checks.func.RepetitionTimeMismatch",
-)
 def tr_mismatch(record: RunRecord) -> Iterator[Hit]:
     header = record.header
     tr = positive_number(record.metadata.get("RepetitionTime"))
@@ -88,13 +62,6 @@ def tr_mismatch(record: RunRecord) -> Iterator[Hit]:
     )
 
 
-@run_rule(
-    "header/tr-unset",
-    title="the header's TR is 0",
-    severity=W,
-    rationale="Tools that take the TR from the NIfTI header see none.",
-    fix="Set pixdim[4] (and xyzt_units) to the repetition time.",
-)
 def tr_unset(record: RunRecord) -> Iterator[Hit]:
     header = record.header
     tr = positive_number(record.metadata.get("RepetitionTime"))
@@ -107,13 +74,6 @@ def tr_unset(record: RunRecord) -> Iterator[Hit]:
         )
 
 
-@run_rule(
-    "header/time-units-unknown",
-    title="the header does not say the unit of its TR",
-    severity=N,
-    rationale="xyzt_units carries no time unit, so pixdim[4] is read as seconds.",
-    fix="Set the time unit in xyzt_units.",
-)
 def time_units(record: RunRecord) -> Iterator[Hit]:
     header = record.header
     if header is not None and header.time_unit == "unknown" and header.raw_pixdim4 > 0 \
@@ -124,18 +84,6 @@ def time_units(record: RunRecord) -> Iterator[Hit]:
         )
 
 
-@run_rule(
-    "axis/dim-info-mismatch",
-    timing_in_doubt=True,
-    title="the slice axis disagrees with the header's dim_info",
-    severity=W,
-    rationale=(
-        "SliceEncodingDirection (k when absent) and the header's dim_info slice dimension "
-        "both name the slice axis. When they differ, SliceTiming may be applied along the "
-        "wrong axis."
-    ),
-    fix="Set SliceEncodingDirection to the header's slice axis, or correct dim_info.",
-)
 def dim_info_mismatch(record: RunRecord) -> Iterator[Hit]:
     header = record.header
     if header is None or header.slice_dim is None or header.slice_dim > 2:
@@ -158,19 +106,6 @@ def dim_info_mismatch(record: RunRecord) -> Iterator[Hit]:
         )
 
 
-@run_rule(
-    "header/slice-code-mismatch",
-    timing_in_doubt=True,
-    fixable=True,
-    title="the header's slice_code describes another order than SliceTiming",
-    severity=W,
-    rationale=(
-        "The header's slice_code and slice_duration and the sidecar's SliceTiming both "
-        "describe the order. When they disagree, tools reading the header correct with the "
-        "wrong order."
-    ),
-    fix="Trust neither blindly: check the protocol, then correct the wrong one.",
-)
 def slice_code_mismatch(record: RunRecord) -> Iterator[Hit]:
     header = record.header
     scheme = record.scheme
@@ -212,14 +147,14 @@ _MISSING_WHY = {
 def header_checks() -> list[str]:
     """The run checks a run without its image's header cannot have: this module's, the
     source cross-check's, and the sidecar checks that compare with the header."""
-    mine = [code for code, rule in RULES.items() if rule.scope == "run"
-            and getattr(rule.check, "__module__", None) == __name__
-            and code != "file/not-retrieved"]
+    from slicetime.rules.bindings import RUN_CHECKS  # the table that binds this module
+
+    mine = [code for code, check in RUN_CHECKS
+            if getattr(check, "__module__", None) == __name__ and code != "file/not-retrieved"]
     source = [code for code, rule in RULES.items() if rule.checked == "source"]
     return sorted({*mine, *source, *_ALSO_HEADER})
 
 
-@run_check("file/not-retrieved")  # registered with the readers
 def not_retrieved(record: RunRecord) -> Iterator[Hit]:
     if record.content_missing is None:
         return

@@ -1,48 +1,35 @@
-"""The rule registry: every finding code, with its documentation and its check.
+"""What the checks of the rules layer share: the values they report, former names,
+folding and ``explain``.
 
-A rule is a small function registered under a stable code. Run rules take a
-:class:`RunRecord` and yield :class:`Hit` values; dataset rules take every
-record. The registry turns hits into :class:`Finding` objects carrying the
-rule's code and default severity, so a rule cannot invent an unregistered
-code. Codes raised while reading files (``file/*``, ``sidecar/*``,
-``inherit/*``) are registered as documentation-only rules, so ``slicetime
-explain`` covers every code a report can contain.
+A check is a small function over one run (:data:`RunCheck`, yielding :class:`Hit`
+values) or over all runs of a dataset (:data:`DatasetCheck`, yielding
+:class:`DatasetHit`); :mod:`slicetime.rules.bindings` binds each to the code it
+reports, declared with its severity and documentation in the catalogue
+(:mod:`slicetime.codes`), so a check cannot invent an undeclared code. Codes raised
+while reading files (``file/*``, ``sidecar/*``, ``inherit/*``) are declared there
+too, so ``slicetime explain`` covers every code a report can contain.
 """
 
 from __future__ import annotations
 
 import dataclasses
-from collections.abc import Callable, Iterable, Mapping, Sequence, Set
+from collections.abc import Callable, Iterable, Sequence
 from dataclasses import dataclass
-from typing import Any, cast
 
 from slicetime.codes import (
     CHECKED,
     RENAMED,
     RULES,
     Checked,
+    Hit,
     Rule,
     Scope,
-    declare,
-    make_finding,
-    register,
+    to_finding,
 )
-from slicetime.model import Finding, RunRecord, RunView, Severity
+from slicetime.model import Finding, RunRecord, RunView
 
-RunCheck = Callable[[RunRecord], Iterable["Hit"]]
+RunCheck = Callable[[RunRecord], Iterable[Hit]]
 DatasetCheck = Callable[[Sequence[RunView]], Iterable["DatasetHit"]]
-
-
-@dataclass(frozen=True)
-class Hit:
-    """What a run rule reports; the registry adds code and severity."""
-
-    message: str
-    field: str | None = None
-    evidence: Mapping[str, Any] = dataclasses.field(default_factory=dict)
-    hint: str | None = None
-    file: str | None = None  # defaults to the sidecar that supplied ``field``, else the run
-    severity: Severity | None = None  # overrides the rule's default for this hit
 
 
 @dataclass(frozen=True)
@@ -61,142 +48,9 @@ def current_code(code: str) -> str:
     return RENAMED.get(code, code)
 
 
-def renamed(old: str, new: str) -> None:
-    """Keep the former code ``old`` understood as ``new`` (lab policies, ``explain``)."""
-    if old in RULES or old in RENAMED:
-        raise RuntimeError(f"finding code {old!r} is still in use")
-    RENAMED[old] = new
-
-
 def known_codes() -> frozenset[str]:
     """Every code a lab policy may name: the registered ones and their former names."""
     return frozenset(RULES) | frozenset(RENAMED)
-
-
-#: the run rules with a check, in registry order (what :func:`check_run` runs)
-_RUN_CHECKS: list[tuple[Rule, RunCheck]] = []
-
-
-def _register(rule: Rule) -> None:
-    register(rule)
-    if rule.scope == "run" and rule.check is not None:
-        _RUN_CHECKS.append((rule, cast(RunCheck, rule.check)))  # scope "run": a RunCheck
-
-
-def run_check(code: str) -> Callable[[RunCheck], RunCheck]:
-    """Attach a check over one run to a code registered below the rules layer (a reader
-    code that a run rule reports again, e.g. ``source/unreadable``)."""
-
-    def decorate(check: RunCheck) -> RunCheck:
-        rule = dataclasses.replace(RULES[code], scope="run", check=check)
-        RULES[code] = rule
-        _RUN_CHECKS.append((rule, check))
-        return check
-
-    return decorate
-
-
-def run_rule(
-    code: str,
-    *,
-    title: str,
-    severity: Severity,
-    rationale: str,
-    fix: str | None = None,
-    standard: str | None = None,
-    subsumes: Iterable[str] = (),
-    checked: Checked = "metadata",
-    fixable: bool = False,
-    also_severities: Iterable[Severity] = (),
-    timing_in_doubt: bool = False,
-) -> Callable[[RunCheck], RunCheck]:
-    """Register a check over one run. ``subsumes``: codes that follow from this one's
-    finding on the same run and field (see :func:`fold_consequences`); ``checked``:
-    where the check happens (:data:`CHECKED`); ``fixable``: ``slicetime fix`` repairs
-    it (:mod:`slicetime.rules.repairs`); ``also_severities``: severities a hit may
-    state instead of ``severity`` (``Hit.severity``); ``timing_in_doubt``: a finding
-    puts the slice times in doubt, so ``correct`` refuses the run unless the doubt is
-    accepted (``Rule.timing_in_doubt``)."""
-
-    def decorate(check: RunCheck) -> RunCheck:
-        _register(Rule(code, title, severity, rationale, fix, "run", check, standard,
-                       frozenset(subsumes), checked, fixable, frozenset(also_severities),
-                       timing_in_doubt))
-        return check
-
-    return decorate
-
-
-def dataset_rule(
-    code: str, *, title: str, severity: Severity, rationale: str, fix: str | None = None,
-    checked: Checked = "dataset", fixable: bool = False,
-    also_severities: Iterable[Severity] = (), timing_in_doubt: bool = False,
-) -> Callable[[DatasetCheck], DatasetCheck]:
-    """Register a check over all runs of a dataset (keywords as :func:`run_rule`)."""
-
-    def decorate(check: DatasetCheck) -> DatasetCheck:
-        _register(Rule(code, title, severity, rationale, fix, "dataset", check,
-                       checked=checked, fixable=fixable,
-                       also_severities=frozenset(also_severities),
-                       timing_in_doubt=timing_in_doubt))
-        return check
-
-    return decorate
-
-
-#: document a code raised outside the rules (no check function): by the readers, the
-#: batch (``checked="batch"``), verify, correct or the source cross-check
-reader_code = declare
-
-
-def to_finding(rule: Rule, record: RunView | None, hit: Hit) -> Finding:
-    file = hit.file
-    if file is None and record is not None:
-        if hit.field and hit.field in record.metadata_sources:
-            file = record.metadata_sources[hit.field]
-        else:
-            file = record.path
-    return make_finding(rule.code, hit.message, file=file, field=hit.field,
-                        evidence=hit.evidence,
-                        hint=hit.hint if hit.hint is not None else rule.fix,
-                        severity=hit.severity)
-
-
-def check_run(record: RunRecord) -> list[Finding]:
-    """Reading findings plus every run rule's findings, in registry order."""
-    findings = list(record.findings)
-    for rule, check in _RUN_CHECKS:
-        for hit in check(record):
-            findings.append(to_finding(rule, record, hit))
-    return findings
-
-
-def check_dataset(
-    records: Sequence[RunView], exempt: Mapping[str, Set[str]] | None = None
-) -> tuple[dict[str, list[Finding]], list[Finding]]:
-    """Dataset rules: (findings per run ``abs_path``, findings about the whole dataset).
-
-    ``exempt`` maps a dataset rule's code to the runs (``abs_path``) that rule must
-    leave out: neither counted nor reported (e.g. runs the lab policy judges for that
-    value, so the majority of the others does not judge them).
-    """
-    per_run: dict[str, list[Finding]] = {}
-    overall: list[Finding] = []
-    by_path = {r.abs_path: r for r in records}
-    for rule in RULES.values():
-        if rule.scope != "dataset" or rule.check is None:
-            continue
-        left_out = (exempt or {}).get(rule.code)
-        considered = [r for r in records if r.abs_path not in left_out] if left_out else records
-        check = cast(DatasetCheck, rule.check)  # scope "dataset": a DatasetCheck
-        for dhit in check(considered):
-            record = by_path.get(dhit.run) if dhit.run else None
-            finding = to_finding(rule, record, dhit.hit)
-            if dhit.run is None:
-                overall.append(finding)
-            else:
-                per_run.setdefault(dhit.run, []).append(finding)
-    return per_run, overall
 
 
 def folds_into(root_code: str, root_field: str | None, other: Finding) -> bool:
@@ -319,11 +173,11 @@ def explain(code: str) -> str:
         lines += ["", f"standard: {rule.standard}"]
     if rule.subsumes:
         lines += ["", "folds in (consequences on the same run and field, listed in its "
-                  "grounds instead of reported again): " + ", ".join(sorted(rule.subsumes))]
+                  "evidence instead of reported again): " + ", ".join(sorted(rule.subsumes))]
     return "\n".join(lines)
 
 
-__all__ = ["CHECKED", "RENAMED", "RULES", "Checked", "DatasetCheck", "DatasetHit", "Hit",
-           "Rule", "RunCheck", "Scope", "check_dataset", "check_run", "current_code", "explain",
-           "fold_consequences", "folded_entry", "folds_into", "known_codes", "reader_code",
-           "renamed", "run_check", "run_rule", "to_finding"]
+__all__ = ["CHECKED", "RENAMED", "RULES", "Checked", "DatasetCheck", "DatasetHit", "FoldRoot",
+           "Hit", "Rule", "RunCheck", "Scope", "attach_folded", "current_code", "explain",
+           "fold", "fold_consequences", "fold_roots", "folded_entry", "folds_into",
+           "is_fold_root", "known_codes", "to_finding"]

@@ -12,16 +12,13 @@ from __future__ import annotations
 
 from collections.abc import Iterator
 
-import slicetime.readers.codes  # noqa: F401  (registers source/unreadable, checked below)
-from slicetime.model import TIME_TOLERANCE, RunRecord, Severity
+from slicetime.model import TIME_TOLERANCE, RunRecord
 from slicetime.model_source import SeriesTiming, SourceEvidence
 from slicetime.numbers import plain, secs
-from slicetime.rules.registry import Hit, run_check, run_rule
+from slicetime.rules.registry import Hit
 from slicetime.schemes.correspond import Correspondence, Mismatch, correspond
 from slicetime.schemes.infer import infer_scheme
 from slicetime.words import agree, count
-
-E, W, N = Severity.ERROR, Severity.WARNING, Severity.NOTE
 
 
 def _declared_axis(record: RunRecord) -> int | None:
@@ -71,18 +68,6 @@ def _ms(values: tuple[float, ...]) -> list[float]:
 # --------------------------------------------------------------------------- matching
 
 
-@run_rule(
-    "source/no-match",
-    checked="source",
-    title="no source series could be matched to the run",
-    severity=N,
-    rationale=(
-        "The source cross-check compares a run with the DICOM series it was converted from. "
-        "It matches by the sidecar's SeriesNumber, else by geometry, TR and volume count, and "
-        "never guesses: when nothing fits, the run is not checked against the scanner's record."
-    ),
-    fix="Add SeriesNumber to the sidecar, or name the series in a --source-map file.",
-)
 def no_match(record: RunRecord) -> Iterator[Hit]:
     evidence = record.source
     if evidence is not None and evidence.status == "no-match":
@@ -90,17 +75,6 @@ def no_match(record: RunRecord) -> Iterator[Hit]:
                   evidence={"candidates": list(evidence.candidates)})
 
 
-@run_rule(
-    "source/ambiguous",
-    checked="source",
-    title="several source series fit the run",
-    severity=N,
-    rationale=(
-        "More than one series under sourcedata/ fits the run and nothing singles one out; "
-        "comparing with any of them would be a guess."
-    ),
-    fix="Name the run's series in a --source-map file (run path, series folder).",
-)
 def ambiguous(record: RunRecord) -> Iterator[Hit]:
     evidence = record.source
     if evidence is not None and evidence.status == "ambiguous":
@@ -108,7 +82,6 @@ def ambiguous(record: RunRecord) -> Iterator[Hit]:
                   evidence={"candidates": list(evidence.candidates)})
 
 
-@run_check("source/unreadable")  # registered with the readers, which raise it
 def unreadable(record: RunRecord) -> Iterator[Hit]:
     evidence = record.source
     if evidence is not None and evidence.status == "unreadable" and evidence.error is not None:
@@ -117,19 +90,6 @@ def unreadable(record: RunRecord) -> Iterator[Hit]:
                   evidence={**error.evidence, "how": evidence.how})
 
 
-@run_rule(
-    "source/files-skipped",
-    checked="source",
-    title="files beside the matched source series could not be read",
-    severity=N,
-    rationale=(
-        "A series folder can hold files that are not readable DICOM (an empty file, a note, "
-        "a truncated copy). They are left out and the series is compared on its readable "
-        "files, so the verdict on the run still stands; this note names what was left out, "
-        "in case a slice of the series is among them."
-    ),
-    fix="Remove the stray files from the series folder, or copy the series again.",
-)
 def files_skipped(record: RunRecord) -> Iterator[Hit]:
     evidence = record.source
     if evidence is not None and evidence.status == "matched" and evidence.skipped:
@@ -140,20 +100,6 @@ def files_skipped(record: RunRecord) -> Iterator[Hit]:
                   evidence={"skipped": list(evidence.skipped)})
 
 
-@run_rule(
-    "source/geometry-differs",
-    timing_in_doubt=True,
-    checked="source",
-    title="the run's slices do not line up with its source series",
-    severity=W,
-    rationale=(
-        "Slices are matched by their position along the source's slice normal. When the "
-        "slice axis is not parallel to it, the counts or the matrix differ, or a slice finds "
-        "no source slice within half the spacing, the run was resliced, cropped or matched "
-        "to the wrong series: no time is compared."
-    ),
-    fix="Check the match (SeriesNumber, --source-map) and whether the run was resampled.",
-)
 def geometry_differs(record: RunRecord) -> Iterator[Hit]:
     outcome = correspondence(record)
     found = matched(record)
@@ -164,20 +110,6 @@ def geometry_differs(record: RunRecord) -> Iterator[Hit]:
                   else None, evidence=_series_facts(found[1]))
 
 
-@run_rule(
-    "source/mixed-folder",
-    checked="source",
-    title="the run's source series shares its folder with other series",
-    severity=N,
-    rationale=(
-        "Series are told apart by SeriesInstanceUID (DICOM PS3.3 C.7.3.1), not by folder: "
-        "only the images of the run's series were read. A folder holding several series "
-        "usually means an export that was not sorted, which is worth knowing when a series "
-        "looks incomplete."
-    ),
-    fix="Nothing is wrong with the run; sort the export into one folder per series if you "
-    "want the folders to say what they hold.",
-)
 def mixed_folder(record: RunRecord) -> Iterator[Hit]:
     found = matched(record)
     if found is not None and found[1].neighbours:
@@ -189,16 +121,6 @@ def mixed_folder(record: RunRecord) -> Iterator[Hit]:
 # --------------------------------------------------------------------------- times
 
 
-@run_rule(
-    "source/no-times",
-    checked="source",
-    title="the source series carries no per-slice times",
-    severity=N,
-    rationale=(
-        "The series was found, but neither its vendor private header, its frames nor its "
-        "files record when each slice was acquired; the sidecar cannot be checked against it."
-    ),
-)
 def no_times(record: RunRecord) -> Iterator[Hit]:
     found = matched(record)
     if found is not None and found[1].times is None:
@@ -213,21 +135,6 @@ def _where(corr: Correspondence, series: SeriesTiming) -> str:
             f"series' normal; largest offset {max(corr.offsets, default=0):.2f} mm)")
 
 
-@run_rule(
-    "source/times-absent",
-    timing_in_doubt=True,
-    fixable=True,
-    checked="source",
-    title="the sidecar has no SliceTiming but the source series records it",
-    severity=W,
-    rationale=(
-        "The scanner recorded every slice's time in the series the run was converted from; "
-        "the converter dropped it. Correction and event models need it."
-    ),
-    fix="Run slicetime fix: it rebuilds SliceTiming from the source series.",
-    # the same absence, seen without the source: reported once, with this rule's hint
-    subsumes=("timing/missing",),
-)
 def times_absent(record: RunRecord) -> Iterator[Hit]:
     if "SliceTiming" in record.metadata:
         return
@@ -265,21 +172,6 @@ def _compare(record: RunRecord) -> tuple[str, dict[str, object]] | None:
     return "differ", evidence
 
 
-@run_rule(
-    "source/reversed",
-    timing_in_doubt=True,
-    fixable=True,
-    checked="source",
-    title="the sidecar's slice times run in the opposite direction to the source's",
-    severity=E,
-    rationale=(
-        "Matched by position, the sidecar's SliceTiming is the source's list backwards: the "
-        "times were written for the opposite slice direction (common with head-to-foot "
-        "stacks, whose tiles come in reversed order). Correction would shift every slice by "
-        "the wrong amount."
-    ),
-    fix="Run slicetime fix: it rebuilds SliceTiming from the source series.",
-)
 def reversed_times(record: RunRecord) -> Iterator[Hit]:
     outcome = _compare(record)
     if outcome is not None and outcome[0] == "reversed":
@@ -287,21 +179,6 @@ def reversed_times(record: RunRecord) -> Iterator[Hit]:
                   "reverse slice order", field="SliceTiming", evidence=outcome[1])
 
 
-@run_rule(
-    "source/times-differ",
-    timing_in_doubt=True,
-    fixable=True,
-    checked="source",
-    title="the sidecar's slice times disagree with the source series",
-    severity=E,
-    rationale=(
-        "The scanner's own record of each slice's time (matched to the run's slices by "
-        "position) differs from SliceTiming by more than the 2.5 ms step in which scanners "
-        "store slice times: the sidecar was rounded wrongly, edited, or copied from another "
-        "protocol."
-    ),
-    fix="Run slicetime fix: it rebuilds SliceTiming from the source series.",
-)
 def times_differ(record: RunRecord) -> Iterator[Hit]:
     outcome = _compare(record)
     if outcome is None or outcome[0] != "differ":
@@ -318,14 +195,6 @@ def times_differ(record: RunRecord) -> Iterator[Hit]:
 # --------------------------------------------------------------------------- TR, multiband
 
 
-@run_rule(
-    "source/tr-differs",
-    checked="source",
-    title="the run's repetition time differs from the source series'",
-    severity=E,
-    rationale="RepetitionTime (0018,0080) of the source series is the scanner's TR.",
-    fix="Set RepetitionTime (and the NIfTI header's pixdim[4]) to the source's value.",
-)
 def tr_differs(record: RunRecord) -> Iterator[Hit]:
     found = matched(record)
     tr = record.timing.repetition_time  # seconds, the sidecar's before the header's
@@ -347,19 +216,6 @@ def source_multiband(series: SeriesTiming) -> int | None:
     return scheme.multiband_factor if len(sizes) == 1 and len(scheme.groups) > 1 else None
 
 
-@run_rule(
-    "source/multiband-differs",
-    timing_in_doubt=True,
-    fixable=True,
-    checked="source",
-    title="MultibandAccelerationFactor differs from the source's excitation groups",
-    severity=W,
-    rationale=(
-        "Slices excited together share one time in the source series; the number sharing "
-        "each time is the multiband factor the scanner used."
-    ),
-    fix="Run slicetime fix: it sets MultibandAccelerationFactor from the source series.",
-)
 def multiband_differs(record: RunRecord) -> Iterator[Hit]:
     found = matched(record)
     declared = record.metadata.get("MultibandAccelerationFactor")

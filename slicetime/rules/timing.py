@@ -2,24 +2,27 @@
 
 from __future__ import annotations
 
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from typing import Any
 
-from slicetime.model import RunRecord, Severity, SliceSchedule, before_start, past_end
+from slicetime.model import RunRecord, SliceSchedule, before_start, past_end
 from slicetime.numbers import as_written, plain, secs
-from slicetime.rules.registry import Hit, run_rule
+from slicetime.rules.registry import Hit
 from slicetime.schemes.resolve import is_number
 from slicetime.words import count
-
-E, W, N = Severity.ERROR, Severity.WARNING, Severity.NOTE
 
 #: suffixes whose runs need slice timing for slice-timing correction
 TIMED_SUFFIXES = frozenset({"bold", "cbv", "asl", "m0scan"})
 
 
-def _problem_rule(code: str, title: str, rationale: str, fix: str,
-                  standard: str | None = None) -> None:
-    """A rule that reports the resolver's structural problem with this code."""
+#: the codes of the resolver's structural problems (``record.timing_problems``), each
+#: reported by its own check (:func:`problem_check`)
+PROBLEM_CODES = ("timing/not-a-list", "timing/bad-entry", "timing/count-mismatch",
+                 "axis/unknown-direction", "header/bad-slice-fields", "header/padded-slices")
+
+
+def problem_check(code: str) -> Callable[[RunRecord], Iterator[Hit]]:
+    """The check that reports the resolver's structural problem ``code``."""
 
     def check(record: RunRecord) -> Iterator[Hit]:
         for problem in record.timing_problems:
@@ -31,55 +34,7 @@ def _problem_rule(code: str, title: str, rationale: str, fix: str,
                 else:
                     yield Hit(problem.message, field, problem.evidence)
 
-    run_rule(code, title=title, severity=E, rationale=rationale, fix=fix,
-             standard=standard)(check)
-
-
-_problem_rule(
-    "timing/not-a-list",
-    "SliceTiming is not a list of numbers",
-    "BIDS defines SliceTiming as an array of numbers, one per slice, in seconds.",
-    "Write SliceTiming as a JSON array of numbers (slicetime timing can generate one).",
-    "BIDS objects.metadata.SliceTiming",
-)
-_problem_rule(
-    "timing/bad-entry",
-    "SliceTiming holds entries that are not finite numbers",
-    "null, strings, booleans, NaN or Infinity cannot be acquisition times.",
-    "Replace the entries with the slices' acquisition times in seconds.",
-)
-_problem_rule(
-    "timing/count-mismatch",
-    "SliceTiming has the wrong number of entries",
-    "There must be one entry per slice along the axis that SliceEncodingDirection names "
-    "(k when it is absent). A different count usually means the list belongs to another "
-    "protocol, or the axis is wrong.",
-    "Use the SliceTiming of the protocol that produced this image, or set "
-    "SliceEncodingDirection to the axis the list was written for.",
-    "BIDS rules.checks.mri.SliceTimingElements / SliceTimingElementsWithDirection",
-)
-_problem_rule(
-    "axis/unknown-direction",
-    "SliceEncodingDirection is not one of the standard's values",
-    "BIDS allows i, j, k, i-, j-, k-. Without a valid axis the slice times cannot be mapped "
-    "onto the image.",
-    "Set SliceEncodingDirection to the acquisition's slice axis, e.g. k.",
-    "BIDS objects.metadata.SliceEncodingDirection",
-)
-_problem_rule(
-    "header/bad-slice-fields",
-    "the header's slice timing fields are inconsistent",
-    "slice_code, slice_start, slice_end and slice_duration must describe a valid order "
-    "within the slice dimension (NIfTI-1 nifti1.h).",
-    "Ignore the header fields and give SliceTiming in the sidecar.",
-)
-_problem_rule(
-    "header/padded-slices",
-    "the header times only part of the slices",
-    "NIfTI slice_start/slice_end may leave padding slices with no acquisition time; such a "
-    "run cannot be corrected from the header alone.",
-    "Give SliceTiming for every slice in the sidecar.",
-)
+    return check
 
 
 def _sidecar_times(record: RunRecord) -> list[float] | None:
@@ -95,21 +50,6 @@ def _in_ms(record: RunRecord) -> bool:
     return record.timing.unit("SliceTiming") == "ms"
 
 
-@run_rule(
-    "timing/missing",
-    fixable=True,
-    title="no slice timing for a run that needs it",
-    severity=W,
-    rationale=(
-        "Slice-timing correction and event-related models need each slice's acquisition "
-        "time. BIDS recommends SliceTiming for functional runs and requires it for sparse "
-        "acquisitions without DelayTime; neither the sidecars nor the NIfTI header "
-        "(slice_code, slice_duration, dim_info) give it here."
-    ),
-    fix="Add SliceTiming from the protocol (slicetime timing prints it) or from the "
-    "scanner's export.",
-    standard="BIDS objects.metadata.SliceTiming (RECOMMENDED for func)",
-)
 def missing(record: RunRecord) -> Iterator[Hit]:
     if record.suffix not in TIMED_SUFFIXES or record.header is None:
         return
@@ -126,19 +66,6 @@ def missing(record: RunRecord) -> Iterator[Hit]:
     )
 
 
-@run_rule(
-    "timing/corrected-still-timed",
-    title="a slice-time corrected run still claims per-slice times",
-    severity=E,
-    rationale=(
-        "SliceTimingCorrected: true says every slice was already aligned to one reference time "
-        "(StartTime). A run that still gives SliceTiming (or header slice_code/slice_duration) "
-        "invites the next processing step to correct it again, shifting every slice a second "
-        "time."
-    ),
-    fix="Remove SliceTiming from the corrected run's sidecar (and clear slice_code and "
-    "slice_duration in its header); keep the original times in a provenance record instead.",
-)
 def corrected_still_timed(record: RunRecord) -> Iterator[Hit]:
     if record.metadata.get("SliceTimingCorrected") is not True:
         return
@@ -154,45 +81,27 @@ def corrected_still_timed(record: RunRecord) -> Iterator[Hit]:
             "SliceTimingCorrected is true but the header still encodes slice timing "
             f"(slice_code {record.header.slice_code}, slice_duration "
             f"{secs(record.header.slice_duration)}): a later step would correct this run twice",
-            "slice_code",
-            {"slice_code": record.header.slice_code,
-             "slice_duration": record.header.slice_duration},
-            file=record.path,
+            "slice_code", _header_timing(record), file=record.path,
         )
 
 
-@run_rule(
-    "timing/from-header",
-    fixable=True,
-    title="slice timing rebuilt from the NIfTI header",
-    severity=N,
-    rationale=(
-        "No sidecar gives SliceTiming, but the header's slice_code, slice_duration and "
-        "dim_info encode an order. Header fields are often left at converter defaults, so the "
-        "rebuilt timing deserves a look before it is trusted."
-    ),
-    fix="Confirm the order against the protocol and write SliceTiming into the sidecar.",
-)
+def _header_timing(record: RunRecord) -> dict[str, Any]:
+    """The header fields that encode the slice timing, as a finding's evidence."""
+    assert record.header is not None
+    return {"slice_code": record.header.slice_code,
+            "slice_duration": record.header.slice_duration}
+
+
 def from_header(record: RunRecord) -> Iterator[Hit]:
     if record.timing_origin == "header" and record.header is not None:
         yield Hit(
             "SliceTiming rebuilt from header slice_code "
             f"{record.header.slice_code} and slice_duration "
             f"{secs(record.header.slice_duration)}",
-            "SliceTiming",
-            {"slice_code": record.header.slice_code,
-             "slice_duration": record.header.slice_duration},
-            file=record.path,
+            "SliceTiming", _header_timing(record), file=record.path,
         )
 
 
-@run_rule(
-    "timing/negative",
-    title="negative slice times",
-    severity=E,
-    rationale="Slice times are seconds from the start of each volume, so none can be negative.",
-    fix="Shift or regenerate the list so that the first slice is at or after 0.",
-)
 def negative(record: RunRecord) -> Iterator[Hit]:
     times = _sidecar_times(record)
     if times and before_start(min(times)):
@@ -213,19 +122,6 @@ _MS_CONSEQUENCES = (
 )
 
 
-@run_rule(
-    "timing/units-ms",
-    fixable=True,
-    title="slice times look like milliseconds",
-    severity=E,
-    rationale=(
-        "BIDS slice times are in seconds. Values above the TR that fit inside it once divided "
-        "by 1000 were almost always written in milliseconds by a converter or by hand."
-    ),
-    fix="Divide every SliceTiming entry by 1000 (slicetime fix does this).",
-    standard="BIDS rules.checks.func.SliceTimingGreaterThanRepetitionTime",
-    subsumes=_MS_CONSEQUENCES,
-)
 def units_ms(record: RunRecord) -> Iterator[Hit]:
     verdict = record.timing.units.get("SliceTiming")
     if verdict is None or verdict.unit != "ms":
@@ -243,18 +139,6 @@ def units_ms(record: RunRecord) -> Iterator[Hit]:
     )
 
 
-@run_rule(
-    "timing/exceeds-tr",
-    title="slice times at or beyond the repetition time",
-    severity=E,
-    rationale=(
-        "Every slice of a volume is acquired within one TR; a slice time at or after the TR "
-        "belongs to the next volume. The list was written for another protocol, or the TR is "
-        "wrong."
-    ),
-    fix="Check RepetitionTime and SliceTiming against the protocol.",
-    standard="BIDS rules.checks.func.SliceTimingGreaterThanRepetitionTime",
-)
 def exceeds_tr(record: RunRecord) -> Iterator[Hit]:
     timing = record.timing
     tr, times = timing.repetition_time, timing.times
@@ -276,16 +160,6 @@ def _sidecar_order(schedule: SliceSchedule | None, times: tuple[float, ...]) -> 
     return times if schedule is None or schedule.direction == "+" else times[::-1]
 
 
-@run_rule(
-    "timing/exceeds-acquisition",
-    title="slice times beyond the acquisition window of a sparse run",
-    severity=E,
-    rationale=(
-        "With DelayTime (or FrameAcquisitionDuration) every slice is acquired within TR minus "
-        "the delay; a later slice time contradicts the sparse protocol."
-    ),
-    fix="Check DelayTime against SliceTiming; one of them belongs to another protocol.",
-)
 def exceeds_acquisition(record: RunRecord) -> Iterator[Hit]:
     timing = record.timing
     window, name, times = timing.window, timing.window_name, timing.times
@@ -306,17 +180,6 @@ def exceeds_acquisition(record: RunRecord) -> Iterator[Hit]:
         )
 
 
-@run_rule(
-    "timing/all-equal",
-    title="every slice has the same time",
-    severity=W,
-    rationale=(
-        "Identical times for all slices describe a 3D acquisition, or a placeholder written "
-        "by a converter; for a 2D multi-slice run it means the timing is unknown, and "
-        "correction would do nothing."
-    ),
-    fix="Replace SliceTiming with the protocol's real slice times, or remove it for 3D runs.",
-)
 def all_equal(record: RunRecord) -> Iterator[Hit]:
     scheme = record.scheme
     if scheme is None or len(scheme.groups) != 1 or scheme.n_slices < 2:
@@ -338,16 +201,6 @@ def _irregular_reason(record: RunRecord) -> str | None:
     return str(scheme.evidence.get("kind", ""))
 
 
-@run_rule(
-    "timing/duplicates",
-    title="repeated slice times without a multiband structure",
-    severity=W,
-    rationale=(
-        "Under multiband factor m every time appears exactly m times, on slices N/m apart. "
-        "Repeats that do not follow that pattern are copy errors or a mislabelled protocol."
-    ),
-    fix="Regenerate SliceTiming from the protocol (slicetime timing --multiband M).",
-)
 def duplicates(record: RunRecord) -> Iterator[Hit]:
     reason = _irregular_reason(record)
     scheme = record.scheme
@@ -362,16 +215,6 @@ def duplicates(record: RunRecord) -> Iterator[Hit]:
     )
 
 
-@run_rule(
-    "timing/uneven",
-    title="slice times are unevenly spaced",
-    severity=W,
-    rationale=(
-        "Scanners excite slices (or multiband groups) at a fixed interval. Gaps that differ "
-        "by more than a few milliseconds point to a hand-edited or mis-merged list."
-    ),
-    fix="Compare SliceTiming with the protocol and regenerate it.",
-)
 def uneven(record: RunRecord) -> Iterator[Hit]:
     reason = _irregular_reason(record)
     scheme = record.scheme
@@ -383,16 +226,6 @@ def uneven(record: RunRecord) -> Iterator[Hit]:
         )
 
 
-@run_rule(
-    "scheme/unrecognised-order",
-    title="the slice order fits no regular scheme",
-    severity=N,
-    rationale=(
-        "The times are evenly spaced but the order is neither sequential nor interleaved with "
-        "a fixed step. That can be a custom protocol; it can also be a shuffled list."
-    ),
-    fix="Confirm the order against the protocol.",
-)
 def unrecognised(record: RunRecord) -> Iterator[Hit]:
     scheme = record.scheme
     if scheme is not None and _irregular_reason(record) == "order":
@@ -405,20 +238,6 @@ def unrecognised(record: RunRecord) -> Iterator[Hit]:
         )
 
 
-@run_rule(
-    "scheme/multiband-mismatch",
-    timing_in_doubt=True,
-    fixable=True,
-    title="MultibandAccelerationFactor disagrees with the slice times",
-    severity=E,
-    rationale=(
-        "Under multiband factor m, m slices share each time. When the declared factor and the "
-        "times disagree one of them is wrong, and correction would shift slices that were "
-        "acquired together by different amounts (or the reverse)."
-    ),
-    fix="Set MultibandAccelerationFactor to the group size the times show, or regenerate "
-    "SliceTiming for the declared factor.",
-)
 def multiband_mismatch(record: RunRecord) -> Iterator[Hit]:
     scheme = record.scheme
     mb = record.metadata.get("MultibandAccelerationFactor")
@@ -437,17 +256,6 @@ def multiband_mismatch(record: RunRecord) -> Iterator[Hit]:
         )
 
 
-@run_rule(
-    "scheme/multiband-undeclared",
-    fixable=True,
-    title="the times show multiband groups but no factor is declared",
-    severity=N,
-    rationale=(
-        "The times form groups of m simultaneous slices N/m apart, which is a multiband "
-        "acquisition, but MultibandAccelerationFactor is absent."
-    ),
-    fix="Add MultibandAccelerationFactor (slicetime fix fills it from the times).",
-)
 def multiband_undeclared(record: RunRecord) -> Iterator[Hit]:
     scheme = record.scheme
     if (
@@ -465,14 +273,6 @@ def multiband_undeclared(record: RunRecord) -> Iterator[Hit]:
         )
 
 
-@run_rule(
-    "tr/missing",
-    title="no RepetitionTime and no VolumeTiming",
-    severity=E,
-    rationale="BIDS requires one of them for functional runs; without it times cannot be mapped.",
-    fix="Add RepetitionTime (seconds) to the run's sidecar or an inherited one.",
-    standard="BIDS sidecars.func.MRIFuncRepetitionTime",
-)
 def tr_missing(record: RunRecord) -> Iterator[Hit]:
     if record.suffix != "bold" or (record.header is None and record.content_missing is None):
         return
@@ -490,14 +290,6 @@ def tr_missing(record: RunRecord) -> Iterator[Hit]:
     )
 
 
-@run_rule(
-    "tr/both-present",
-    title="RepetitionTime and VolumeTiming are both given",
-    severity=E,
-    rationale="BIDS makes them mutually exclusive: one describes regular, one irregular volumes.",
-    fix="Keep RepetitionTime for regular sampling, VolumeTiming for irregular.",
-    standard="BIDS rules.checks.func.VolumeTimingRepetitionTimeMutex",
-)
 def tr_both(record: RunRecord) -> Iterator[Hit]:
     if "RepetitionTime" in record.metadata and "VolumeTiming" in record.metadata:
         yield Hit(
@@ -508,28 +300,11 @@ def tr_both(record: RunRecord) -> Iterator[Hit]:
         )
 
 
-@run_rule(
-    "tr/volume-timing-delay",
-    title="VolumeTiming and DelayTime are both given",
-    severity=E,
-    rationale="BIDS makes them mutually exclusive.",
-    fix="With VolumeTiming describe the acquisition time by SliceTiming or "
-    "FrameAcquisitionDuration.",
-    standard="BIDS rules.checks.func.VolumeTimingDelayTimeMutex",
-)
 def vt_delay(record: RunRecord) -> Iterator[Hit]:
     if "VolumeTiming" in record.metadata and "DelayTime" in record.metadata:
         yield Hit("VolumeTiming and DelayTime are mutually exclusive", "DelayTime")
 
 
-@run_rule(
-    "tr/volume-timing-acquisition",
-    title="VolumeTiming without an acquisition duration",
-    severity=E,
-    rationale="BIDS requires SliceTiming or FrameAcquisitionDuration beside VolumeTiming.",
-    fix="Add SliceTiming or FrameAcquisitionDuration.",
-    standard="BIDS rules.checks.func.VolumeTimingMissingFrameAcquisitionDuration",
-)
 def vt_acq(record: RunRecord) -> Iterator[Hit]:
     md = record.metadata
     if "VolumeTiming" in md and not (
@@ -539,14 +314,6 @@ def vt_acq(record: RunRecord) -> Iterator[Hit]:
                   "VolumeTiming")
 
 
-@run_rule(
-    "tr/volume-timing-order",
-    title="VolumeTiming is not increasing, or has the wrong length",
-    severity=E,
-    rationale="Volume onsets must be non-negative, strictly increasing, one per volume.",
-    fix="Write one onset per volume in increasing order.",
-    standard="BIDS rules.checks.mri.VolumeTimingNotMonotonicallyIncreasing",
-)
 def vt_order(record: RunRecord) -> Iterator[Hit]:
     vt = record.metadata.get("VolumeTiming")
     if not isinstance(vt, list) or not vt or not all(is_number(v) for v in vt):
@@ -566,30 +333,12 @@ def vt_order(record: RunRecord) -> Iterator[Hit]:
         )
 
 
-@run_rule(
-    "tr/frame-duration-conflict",
-    title="RepetitionTime and FrameAcquisitionDuration are both given",
-    severity=E,
-    rationale="BIDS makes them mutually exclusive; the acquisition time of a sparse run with "
-    "RepetitionTime is described by DelayTime (TR minus acquisition time) or SliceTiming.",
-    fix="Replace FrameAcquisitionDuration by DelayTime = RepetitionTime - acquisition time.",
-    standard="BIDS rules.checks.func.RepetitionTimeFrameAcquisitionDurationMutex",
-)
 def tr_frame_duration(record: RunRecord) -> Iterator[Hit]:
     if "RepetitionTime" in record.metadata and "FrameAcquisitionDuration" in record.metadata:
         yield Hit("RepetitionTime and FrameAcquisitionDuration are mutually exclusive",
                   "FrameAcquisitionDuration")
 
 
-@run_rule(
-    "tr/deprecated-acquisition-duration",
-    title="AcquisitionDuration used where FrameAcquisitionDuration is meant",
-    severity=W,
-    rationale="With VolumeTiming the acquisition time of each volume is FrameAcquisitionDuration; "
-    "AcquisitionDuration is deprecated for that use.",
-    fix="Rename AcquisitionDuration to FrameAcquisitionDuration.",
-    standard="BIDS rules.checks.func.DeprecatedAcquisitionDuration",
-)
 def deprecated_acq(record: RunRecord) -> Iterator[Hit]:
     md = record.metadata
     if "VolumeTiming" in md and "FrameAcquisitionDuration" not in md \
@@ -598,17 +347,6 @@ def deprecated_acq(record: RunRecord) -> Iterator[Hit]:
                   "AcquisitionDuration")
 
 
-@run_rule(
-    "tr/units-ms",
-    title="RepetitionTime looks like milliseconds",
-    severity=E,
-    rationale="BIDS times are in seconds; a functional TR above 100 was almost always written "
-    "in milliseconds. (The standard warns; slicetime makes it an error because every slice "
-    "time and correction would be wrong by a factor of 1000.)",
-    fix="Divide RepetitionTime by 1000.",
-    standard="BIDS rules.checks.func.RepetitionTimeGreaterThan",
-    subsumes=("dataset/outlier-tr", "policy/tr-mismatch", "header/tr-disagrees"),
-)
 def tr_units(record: RunRecord) -> Iterator[Hit]:
     verdict = record.timing.units.get("RepetitionTime")
     if verdict is not None and verdict.unit == "ms":

@@ -25,7 +25,14 @@ import re
 from dataclasses import dataclass
 from typing import Literal, cast
 
-from slicetime.policy.model import SchemeFamily
+
+@dataclass(frozen=True)
+class SchemeFamily:
+    """An order family: ``kind`` sequential/interleaved and/or a direction (None = any)."""
+
+    kind: Literal["sequential", "interleaved"] | None = None
+    ascending: bool | None = None
+
 
 __all__ = [
     "ASCENDING",

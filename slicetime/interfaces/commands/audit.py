@@ -12,18 +12,8 @@ from typing import Any
 
 import click
 
-from slicetime.interfaces.commands.shared import (
-    JOBS_AUDIT,
-    RegistryChoice,
-    UserError,
-    executor_options,
-    friendly,
-    policy_option,
-    run_executor,
-    source_options,
-    source_settings,
-    walking_options,
-)
+from slicetime.interfaces.commands import shared
+from slicetime.interfaces.commands.shared import UserError, friendly
 from slicetime.model import FailOn
 
 
@@ -35,7 +25,7 @@ def _report_formats() -> Sequence[str]:
 
 @click.command()
 @click.argument("paths", nargs=-1, required=True, type=click.Path(path_type=Path))
-@click.option("--format", "fmt", type=RegistryChoice(_report_formats),
+@click.option("--format", "fmt", type=shared.RegistryChoice(_report_formats),
               default="text", show_default=True,
               help="Report format on stdout (or --output): text, json (the contract), jsonl "
               "(one object per line), tsv (one row per run) or junit (CI).")
@@ -53,13 +43,13 @@ def _report_formats() -> Sequence[str]:
               help="Print only the summary line (the exit status is unchanged); --output and "
               "--html are still written.")
 @click.option("--no-progress", is_flag=True, help="No progress bar or progress lines on stderr.")
-@walking_options("audit")
-@executor_options(default=JOBS_AUDIT)
-@policy_option()
+@shared.walking_options("audit")
+@shared.executor_options(default=shared.JOBS_AUDIT)
+@shared.policy_option()
 @click.option("--verify", "verify_data", is_flag=True,
               help="Also read each run's image data and check its slice order against it "
               "(a verify/* finding per run; slower: see 'slicetime verify').")
-@source_options()
+@shared.source_options()
 @friendly
 def audit(
     paths: tuple[Path, ...],
@@ -118,23 +108,16 @@ def audit(
     reporter = (contextlib.nullcontext(None) if quiet or no_progress
                 else progress_reporter("auditing"))
     try:
-        with run_executor(jobs, scheduler, light=not verify_data,
+        with shared.run_executor(jobs, scheduler, light=not verify_data,
                        small_results=True) as executor, \
                 reporter as progress:
             try:
                 spool.totals = audit_stream(
-                    list(paths),
-                    on_run,
-                    prepare=prepare,
+                    list(paths), on_run, prepare=prepare, progress=progress,
                     include_derivatives=include_derivatives,
-                    include_sourcedata=include_sourcedata,
-                    include_hidden=include_hidden,
-                    progress=progress,
-                    policy_file=policy_file,
-                    executor=executor,
-                    verify=verify_data,
-                    source=source_settings(source_check, source_map),
-                )
+                    include_sourcedata=include_sourcedata, include_hidden=include_hidden,
+                    policy_file=policy_file, executor=executor, verify=verify_data,
+                    source=shared.source_settings(source_check, source_map))
             except Interrupted as stop:
                 finished = sum(1 for r in stop.results if r is not None)
                 click.echo(f"slicetime: interrupted; {finished} of {len(stop.results)} runs "

@@ -9,16 +9,8 @@ from pathlib import Path
 
 import click
 
-from slicetime.interfaces.commands.shared import (
-    JOBS_HEAVY,
-    RegistryChoice,
-    UserError,
-    executor_options,
-    friendly,
-    policy_option,
-    run_executor,
-    walking_options,
-)
+from slicetime.interfaces.commands import shared
+from slicetime.interfaces.commands.shared import UserError, friendly
 
 
 def _engine_names() -> Sequence[str]:
@@ -32,7 +24,7 @@ def _engine_names() -> Sequence[str]:
 @click.option("--out", type=click.Path(path_type=Path, file_okay=False), required=True,
               help="Derivative dataset folder for the corrected runs (never inside an input "
               "dataset, except under its derivatives/).")
-@click.option("--method", type=RegistryChoice(_engine_names),
+@click.option("--method", type=shared.RegistryChoice(_engine_names),
               default="fourier", show_default=True, help="Temporal interpolation method.")
 @click.option("--reference", "reference", default="middle", show_default=True,
               help="Time every slice is aligned to: seconds from the start of the volume "
@@ -61,12 +53,12 @@ def _engine_names() -> Sequence[str]:
 @click.option("--max-memory", "max_memory", default=None, metavar="SIZE",
               help="Keep the working memory under SIZE (e.g. 512M, 2G); larger runs are "
               "buffered in a scratch file under --out.")
-@executor_options(default=JOBS_HEAVY, shared="Inputs and --out")
-@policy_option("The audit that gates correction applies it.")
+@shared.executor_options(default=shared.JOBS_HEAVY, shared="Inputs and --out")
+@shared.policy_option("The audit that gates correction applies it.")
 @click.option("--format", "fmt", type=click.Choice(["text", "json"]), default="text",
               show_default=True, help="Report format on stdout.")
 @click.option("--no-progress", is_flag=True, help="No progress bar or progress lines on stderr.")
-@walking_options("correct")
+@shared.walking_options("correct")
 @click.option("--mix-inputs", is_flag=True,
               help="Allow an --out folder that already holds outputs made from other input "
               "datasets (they are kept; a run whose output would replace one is refused).")
@@ -127,7 +119,7 @@ def correct(
                              keep_dtype=keep_dtype, force=force, max_memory=cap, threads=0,
                              mix_inputs=mix_inputs, accepts=accepted,
                              omit_leading=omit_leading)
-    with run_executor(jobs, scheduler, light=False) as executor, \
+    with shared.run_executor(jobs, scheduler, light=False) as executor, \
             (contextlib.nullcontext(None) if no_progress
              else progress_reporter("correcting")) as progress:
         try:

@@ -20,8 +20,6 @@ from slicetime.model import MAX_REPETITION_TIME
               metavar="SECONDS",
               help="BIDS DelayTime of a sparse protocol: the silent part at the end of each TR. "
               "The slices are spread over the rest (TR minus SECONDS); written as DelayTime.")
-@click.option("--acquisition-time", "old_ta", hidden=True, default=None,
-              help="Replaced by --delay-time (kept only to say so).")
 @click.option("--order", type=click.Choice(["sequential", "interleaved"]), default="sequential",
               show_default=True, help="Order of excitation along the slice encoding direction.")
 @click.option("--descending", is_flag=True,
@@ -47,7 +45,6 @@ def timing(
     n_slices: int,
     tr: float | None,
     delay: float | None,
-    old_ta: str | None,
     order: str,
     descending: bool,
     step: int,
@@ -71,10 +68,6 @@ def timing(
     from slicetime.schemes.generate import Protocol, array_times, slice_timing
     from slicetime.schemes.infer import infer_scheme
 
-    if old_ta is not None:
-        raise UserError("timing: --acquisition-time is replaced by --delay-time SECONDS, the "
-                        "silent part of the TR (BIDS DelayTime): for slices spread over A "
-                        "seconds of a TR of T seconds give --tr T --delay-time T-A")
     if tr is None:
         raise UserError("timing: give --tr (and --delay-time for sparse protocols)")
     for option, value in (("--tr", tr), ("--delay-time", delay)):
