@@ -105,7 +105,7 @@ def test_every_dicom_file_nibabel_ships_is_read_as_what_it_holds(path: Path) -> 
         assert "holds no per-slice times" in shown.output
     from slicetime.readers.shipped_schemas import document_problem
 
-    as_json = CliRunner().invoke(cli, ["show", str(path), "--json"])
+    as_json = CliRunner().invoke(cli, ["show", str(path), "--format", "json"])
     assert document_problem("show", json.loads(as_json.output)) is None  # the contract
 
 
@@ -264,7 +264,7 @@ def test_classic_series_in_archives_and_gzip(tmp_path: Path, kind: str) -> None:
     assert [t / 1000 for t in finding.evidence["source_ms"]] == pytest.approx(expected,
                                                                                abs=1e-6)
     if kind != "dcm.gz":
-        shown = CliRunner().invoke(cli, ["show", str(next(target.iterdir())), "--json"])
+        shown = CliRunner().invoke(cli, ["show", str(next(target.iterdir())), "--format", "json"])
         assert shown.exit_code == 0, shown.output
         assert json.loads(shown.output)["layout"] == "classic"
     del run
@@ -282,7 +282,7 @@ def test_a_folder_mixing_two_series_is_said_so(tmp_path: Path) -> None:
     assert len(found) == 2  # two SeriesInstanceUIDs (PS3.3 C.7.3.1), read with pydicom:
     assert len({pydicom.dcmread(f, stop_before_pixels=True).SeriesInstanceUID
                 for f in folder.iterdir()}) == 2
-    shown = CliRunner().invoke(cli, ["show", str(folder), "--json"])
+    shown = CliRunner().invoke(cli, ["show", str(folder), "--format", "json"])
     assert shown.exit_code == 0 and len(json.loads(shown.output)) == 2
     from slicetime.readers.shipped_schemas import document_problem
 

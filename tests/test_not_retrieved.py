@@ -69,7 +69,7 @@ def test_unretrieved_runs_keep_schedule_scheme_and_consensus(tmp_path: Path) -> 
 def test_show_on_an_annexed_run_shows_its_sidecar_schedule(tmp_path: Path) -> None:
     root = _tree(tmp_path)
     run_path = root / "sub-03/func/sub-03_task-rest_bold.nii.gz"
-    out = CliRunner().invoke(cli, ["show", str(run_path), "--json", "--fail-on", "error"])
+    out = CliRunner().invoke(cli, ["show", str(run_path), "--format", "json", "--fail-on", "error"])
     assert out.exit_code == 0, out.output
     run = json.loads(out.output)
     assert run["slice_times"] == TIMES and run["repetition_time"] == 2.0  # the sidecar's
