@@ -276,3 +276,36 @@ def test_an_output_is_redone_when_the_acceptance_changes(ds: Path, tmp_path: Pat
         "sub-01_task-hum_desc-timealigned_bold.json").read_text())
     assert sidecar["SliceTimeAlignment"]["AcceptedDoubts"][0]["AcceptedBy"].endswith(
         "sub-01/**")
+
+
+def test_fix_takes_no_side_in_a_doubt_and_correct_still_refuses(ds: Path,
+                                                                tmp_path: Path) -> None:
+    # NIfTI-1 (nibabel's slice_order_codes): slice_code 2 is "sequential decreasing",
+    # against the ascending SliceTiming of the sidecar; nibabel reads the header's times
+    assert nib.nifti1.slice_order_codes.label[2] == "sequential decreasing"
+    path, _ = build_run(ds, REL, SEQUENTIAL, slice_code=2, slice_duration=0.25)
+    assert list(nib.load(path).header.get_slice_times()) == pytest.approx(SEQUENTIAL[::-1])
+    sidecar = path.with_name(path.name.replace(".nii.gz", ".json"))
+    before = sidecar.read_bytes()
+    fixed = CliRunner().invoke(cli, ["fix", str(ds), "--apply", "--backup-dir",
+                                     str(tmp_path / "backups")], catch_exceptions=False)
+    assert fixed.exit_code == 1, fixed.output  # not planned is not success (issue 23)
+    assert ("header/slice-code-mismatch not planned: the timing is in doubt "
+            "(header/slice-code-mismatch): a person must decide which source is right"
+            in fixed.output)
+    assert sidecar.read_bytes() == before
+    code, doc, _ = correct_json(ds, "--out", tmp_path / "out")
+    assert code == 1 and doc["runs"][0]["status"] == "refused"
+    assert "correct/timing-in-doubt" in [f["code"] for f in doc["runs"][0]["blocking_findings"]]
+
+
+def test_a_doubt_the_source_series_raises_is_settled_from_it() -> None:
+    # the source series is the scanner's own record: its doubts are the ones fix may
+    # settle (by rebuilding from it); the header's or the protocol's are not
+    from slicetime.rules.correction import undecided_doubt
+
+    header = make_finding("header/slice-code-mismatch", "the header says another order")
+    source = make_finding("source/reversed", "the source's times in reverse")
+    assert undecided_doubt([source]) is None
+    assert undecided_doubt([source, header]) == header
+    assert undecided_doubt([header.with_severity(Severity.NOTE)]) is None

@@ -183,6 +183,21 @@ def _volume_timing(ds: Path) -> list[str]:
     return [REL]
 
 
+def _volume_timing_acquisition_duration(ds: Path) -> list[str]:
+    # the input states its frame duration the deprecated way (BIDS schema
+    # rules.checks.func.DeprecatedAcquisitionDuration): the output must not copy it
+    onsets = np.cumsum([0.0] + [2.0, 2.5] * 29 + [2.0])[:60]
+    build_run(ds, REL, interleaved(8), onsets=onsets,
+              extra={"VolumeTiming": [float(t) for t in onsets], "AcquisitionDuration": 2.0})
+    return [REL]
+
+
+def _sparse_delay(ds: Path) -> list[str]:
+    # a sparse run that states its silent gap (BIDS DelayTime) beside RepetitionTime
+    build_run(ds, REL, [round(0.125 * z, 6) for z in range(8)], extra={"DelayTime": 1.0})
+    return [REL]
+
+
 def _multiband(ds: Path) -> list[str]:
     times = list(slice_timing(Protocol(n_slices=8, order="interleaved", multiband=2,
                                        repetition_time=TR)))
@@ -206,6 +221,9 @@ def _reversed(ds: Path) -> list[str]:
 
 KINDS = {"plain": (_plain, ()), "sparse": (_sparse, ()),
          "volume-timing": (_volume_timing, ("--method", "cubic")),
+         "volume-timing-acquisition-duration": (_volume_timing_acquisition_duration,
+                                                ("--method", "cubic")),
+         "sparse-delay": (_sparse_delay, ()),
          "multiband": (_multiband, ()), "multi-echo": (_multi_echo, ()),
          "reversed-axis": (_reversed, ())}
 
@@ -262,6 +280,26 @@ def test_a_volume_timing_output_states_its_frame_duration(tmp_path: Path) -> Non
     # 8 interleaved slices 0.25 s apart occupy 2.0 s
     assert sidecar["FrameAcquisitionDuration"] == pytest.approx(2.0)
     assert "AcquisitionDuration" not in sidecar
+
+
+def test_a_deprecated_acquisition_duration_becomes_a_frame_duration(tmp_path: Path) -> None:
+    # BIDS schema rules.checks.func.DeprecatedAcquisitionDuration: beside VolumeTiming the
+    # frame's duration is FrameAcquisitionDuration; the input's value is kept, renamed
+    ds = tmp_path / "ds"
+    write_description(ds)
+    _volume_timing_acquisition_duration(ds)
+    out = tmp_path / "out"
+    assert run("correct", ds, "--out", out, "--method", "cubic")[0] == 0
+    sidecar = sidecar_of(out, REL)
+    assert "AcquisitionDuration" not in sidecar
+    assert sidecar["FrameAcquisitionDuration"] == 2.0
+    check = _schema_checks()["func.DeprecatedAcquisitionDuration"]
+    from bidsschematools.expressions import parse
+
+    context = {"suffix": "bold", "extension": ".nii.gz", "modality": "mri", "sidecar": sidecar}
+    # the schema's check holds on the output (its selectors may not even apply any more)
+    assert not all(_evaluate(parse(s), context) for s in check["selectors"]) or all(
+        _evaluate(parse(c), context) for c in check["checks"])
 
 
 # --------------------------------------------------------------------------- provenance

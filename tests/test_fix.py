@@ -100,23 +100,22 @@ def mb_times(multiband: int, n: int = 12) -> list[float]:
 
 
 def test_shared_file_serving_a_run_that_needs_no_change_gets_an_override(ds: Path) -> None:
-    # the top-level factor 2 is right for sub-02 (groups of 2) and wrong for sub-01
-    # (groups of 3): the fix must not change sub-02, so sub-01 gets its own value
-    shared = {"TaskName": "hum", "RepetitionTime": TR, "MultibandAccelerationFactor": 2}
+    # the top-level times (groups of 2) lack their factor for sub-01; sub-02 states its
+    # own: the fix must not write into the shared file, so sub-01 gets its own value
+    shared = {"TaskName": "hum", "RepetitionTime": TR, "SliceTiming": mb_times(2)}
     write_sidecar(ds, "task-hum_bold.json", shared)
-    write_run(ds, run_path("01"), shape=(4, 4, 12, 5), tr=TR,
-              sidecar={"SliceTiming": mb_times(3)})
+    write_run(ds, run_path("01"), shape=(4, 4, 12, 5), tr=TR)
     write_run(ds, run_path("02"), shape=(4, 4, 12, 5), tr=TR,
-              sidecar={"SliceTiming": mb_times(2)})
+              sidecar={"MultibandAccelerationFactor": 2})
     result = fix(ds, "--apply")
     assert result.exit_code == 0, result.output
     assert "writing per-run overrides" in result.output
     assert json.loads((ds / "task-hum_bold.json").read_text()) == shared
     own = json.loads((ds / sidecar_of(run_path("01"))).read_text())
-    assert own["MultibandAccelerationFactor"] == 3
-    assert "scheme/multiband-mismatch" not in codes_of(ds, run_path("01"))
-    assert "MultibandAccelerationFactor" not in json.loads(
-        (ds / sidecar_of(run_path("02"))).read_text())
+    assert own["MultibandAccelerationFactor"] == 2
+    assert "scheme/multiband-undeclared" not in codes_of(ds, run_path("01"))
+    assert json.loads((ds / sidecar_of(run_path("02"))).read_text()) == {
+        "MultibandAccelerationFactor": 2}
 
 
 def test_per_run_writes_overrides_and_leaves_the_shared_file(ds: Path) -> None:
@@ -215,38 +214,51 @@ def test_disagreeing_runs_settle_nothing(ds: Path) -> None:
     assert "timing/missing not planned" in result.output
 
 
-def test_a_list_written_for_the_opposite_direction_is_reversed(ds: Path) -> None:
-    # NIfTI: slice_code 1 is sequential increasing along the slice axis, so a
-    # decreasing SliceTiming along +k is the same list written for k-
+def test_a_list_reversed_against_the_header_is_left_for_a_person(ds: Path) -> None:
+    # NIfTI: slice_code 1 is sequential increasing along the slice axis (nibabel reads
+    # the header's times below), so a decreasing SliceTiming along +k contradicts it;
+    # which of the two is right only the acquisition can tell: fix takes no side
     rel = run_path("01")
     descending = [round((9 - i) * 0.2, 4) for i in range(10)]
     path = write_run(ds, rel, shape=SHAPE, tr=TR, slice_code=1, slice_duration=0.2,
                      sidecar={"TaskName": "hum", "RepetitionTime": TR,
                               "SliceTiming": descending})
+    assert list(nib.load(path).header.get_slice_times()) == pytest.approx(descending[::-1])
     assert "header/slice-code-mismatch" in codes_of(ds, rel)
-    assert fix(ds, "--apply").exit_code == 0
-    written = json.loads((ds / sidecar_of(rel)).read_text())
-    assert written["SliceTiming"] == descending[::-1]
-    # nibabel's reading of the header is the reference
-    assert written["SliceTiming"] == pytest.approx(nib.load(path).header.get_slice_times())
-    assert "header/slice-code-mismatch" not in codes_of(ds, rel)
+    before = (ds / sidecar_of(rel)).read_bytes()
+    result = fix(ds, "--apply")
+    assert result.exit_code == 1  # a fixable finding not planned
+    assert (f"{rel}: header/slice-code-mismatch not planned: the timing is in doubt "
+            "(header/slice-code-mismatch): a person must decide which source is right"
+            in result.output)
+    assert (ds / sidecar_of(rel)).read_bytes() == before
+    assert "header/slice-code-mismatch" in codes_of(ds, rel)
 
 
-@pytest.mark.parametrize("declared", [None, 2])
-def test_multiband_factor_from_the_groups(ds: Path, declared: int | None) -> None:
+def test_multiband_factor_from_the_groups(ds: Path) -> None:
     # common practice (no source): multiband factor m repeats each time m times
     sidecar: dict[str, Any] = {"TaskName": "hum", "RepetitionTime": TR,
                                "SliceTiming": mb_times(3)}
-    if declared is not None:
-        sidecar["MultibandAccelerationFactor"] = declared
     rel = run_path("01")
     write_run(ds, rel, shape=(4, 4, 12, 5), tr=TR, sidecar=sidecar)
     result = fix(ds, "--apply")
     assert result.exit_code == 0, result.output
     written = json.loads((ds / sidecar_of(rel)).read_text())
     assert written["MultibandAccelerationFactor"] == 3
-    assert {"scheme/multiband-mismatch", "scheme/multiband-undeclared"}.isdisjoint(
-        codes_of(ds, rel))
+    assert "scheme/multiband-undeclared" not in codes_of(ds, rel)
+
+
+def test_a_declared_factor_the_times_contradict_is_left_for_a_person(ds: Path) -> None:
+    # groups of 3 in the times against a declared factor of 2: one of the two is wrong
+    # and only the acquisition can tell which, so fix takes no side
+    sidecar = {"TaskName": "hum", "RepetitionTime": TR, "SliceTiming": mb_times(3),
+               "MultibandAccelerationFactor": 2}
+    rel = run_path("01")
+    write_run(ds, rel, shape=(4, 4, 12, 5), tr=TR, sidecar=sidecar)
+    result = fix(ds, "--apply")
+    assert result.exit_code == 1, result.output
+    assert "the timing is in doubt (scheme/multiband-mismatch)" in result.output
+    assert json.loads((ds / sidecar_of(rel)).read_text())["MultibandAccelerationFactor"] == 2
 
 
 # -------------------------------------------------------------- file safety

@@ -11,6 +11,7 @@ import pydicom
 import pytest
 from click.testing import CliRunner
 
+from slicetime.codes import RULES
 from slicetime.interfaces.cli import cli
 from slicetime.pipelines.audit import audit_paths
 from slicetime.pipelines.fix import UNSETTLED, plan_fix
@@ -97,8 +98,10 @@ BUILDERS: dict[str, tuple[Callable[[Path], Path], bool]] = {
     "timing/units-ms": (units_ms, True),
     "timing/from-header": (from_header, True),
     "timing/missing": (missing, False),  # no policy, no agreeing runs: nothing settles it
-    "header/slice-code-mismatch": (slice_code_mismatch, True),
-    "scheme/multiband-mismatch": (multiband_mismatch, True),
+    # the header (or the declared factor) and the times contradict each other: a person
+    # must decide which is right, fix takes no side (rules.correction.undecided_doubt)
+    "header/slice-code-mismatch": (slice_code_mismatch, False),
+    "scheme/multiband-mismatch": (multiband_mismatch, False),
     "scheme/multiband-undeclared": (multiband_undeclared, True),
     "source/times-absent": (times_absent, True),
     "source/times-differ": (times_differ, True),
@@ -130,7 +133,10 @@ def test_fix_plans_or_says_why_not(code: str, tmp_path: Path) -> None:
                                        str(tmp_path / "backups")])
     assert applied.exit_code == (0 if settled else 1), applied.output
     if not settled:
-        assert unplanned[(runs[0], code)] == UNSETTLED
+        doubted = RULES[code].timing_in_doubt
+        assert unplanned[(runs[0], code)] == (
+            f"the timing is in doubt ({code}): a person must decide which source is right"
+            if doubted else UNSETTLED)
         assert "not planned" in applied.output
 
 

@@ -62,6 +62,7 @@ from slicetime.readers.dataset import find_root
 from slicetime.readers.entities import sidecar_path
 from slicetime.readers.sidecar import MAX_SIDECAR_BYTES
 from slicetime.readers.source import SourceOptions
+from slicetime.rules.correction import DOUBTED_FIELDS, undecided_doubt, undecided_reason
 from slicetime.rules.registry import RENAMED, known_codes
 from slicetime.rules.repairs import FIXABLE, Repair, plan_consensus, plan_run
 
@@ -299,14 +300,38 @@ def plan_fix(
         repairs += plan_run(record, findings, protocol)
     consensus = plan_consensus(runs, repairs)
     repairs += [r for r in consensus if (r.root, r.run) in wanted]
+    repairs, doubted = _undecided(runs, repairs)
     moves = layout_moves(runs, wanted, consolidate, spread, plan.notes)
     _place(repairs, runs, per_run, plan, moves)
-    reasons = _confine(plan)
+    reasons = {**doubted, **_confine(plan)}
     _unplanned(runs, wanted, plan, reasons)
     for repair in repairs:
         if (repair.root, repair.run, repair.code) not in reasons:
             plan.repaired_runs.setdefault(repair.root, set()).add(repair.run)
     return plan
+
+
+def _undecided(
+    runs: Sequence[tuple[RunRecord, list[Finding]]], repairs: Sequence[Repair]
+) -> tuple[list[Repair], dict[tuple[str, str, str], str]]:
+    """Drop every repair that would change a doubted timing field of a run whose timing
+    stands in a doubt only a person can settle (``rules.correction.undecided_doubt``):
+    fix never takes one side of such a doubt (a repair from the source series, the
+    scanner's own record, settles it). Returns the repairs kept and why the
+    others are not planned, per (root, run, code), for every fixable finding of such runs."""
+    codes: dict[tuple[str, str], set[str]] = defaultdict(set)
+    for repair in repairs:
+        codes[(repair.root, repair.run)].add(repair.code)
+    reasons: dict[tuple[str, str, str], str] = {}
+    for record, findings in runs:
+        key = (record.root, record.path)
+        doubt = undecided_doubt(findings, codes.get(key, ()))
+        if doubt is not None:
+            for finding in findings:
+                reasons[(*key, finding.code)] = undecided_reason(doubt)
+    kept = [r for r in repairs
+            if not ((r.root, r.run, r.code) in reasons and r.field in DOUBTED_FIELDS)]
+    return kept, reasons
 
 
 def _confine(plan: FixPlan) -> dict[tuple[str, str, str], str]:

@@ -157,7 +157,8 @@ def output_sidecar(
     stats: ResampleStats,
     facts: CorrectionFacts | None = None,
 ) -> dict[str, Any]:
-    """The output sidecar: the input's metadata without ``SliceTiming``, the fields
+    """The output sidecar: the input's metadata without ``SliceTiming`` (a deprecated
+    ``AcquisitionDuration`` beside ``VolumeTiming`` renamed ``FrameAcquisitionDuration``), the fields
     that keep the acquisition window (``engines.plan.window_fields``), the leading
     volumes left out (``NumberOfVolumesDiscardedByUser``, ``VolumeTiming`` cut to
     the volumes kept), the derivative fields (``SliceTimingCorrected``,
@@ -166,7 +167,13 @@ def output_sidecar(
     metadata = {k: v for k, v in record.metadata.items() if k not in DROPPED_FIELDS}
     schedule = record.schedule
     assert schedule is not None
-    metadata.update(window_fields(schedule, frozenset(record.metadata)))
+    if "VolumeTiming" in metadata and "AcquisitionDuration" in metadata:
+        # BIDS (schema rules.checks.func.DeprecatedAcquisitionDuration): beside
+        # VolumeTiming the time each volume takes is FrameAcquisitionDuration, and
+        # AcquisitionDuration there is deprecated; the output says it the current way
+        duration = metadata.pop("AcquisitionDuration")
+        metadata.setdefault("FrameAcquisitionDuration", duration)
+    metadata.update(window_fields(schedule, frozenset(metadata)))
     if facts.omitted:
         prior = metadata.get("NumberOfVolumesDiscardedByUser")
         before = prior if isinstance(prior, int) and not isinstance(prior, bool) else 0

@@ -11,6 +11,8 @@ The judgements, each with one owner here (pure, no I/O):
 * :func:`timing_doubts` / :func:`judge_trust`: whether the run's timing stands in
   doubt (a finding whose code is declared with ``timing_in_doubt``, at warning
   level or above) and which doubts the user accepted (``--accept``, ``[[accept]]``);
+* :func:`undecided_doubt`: whether ``fix`` may change the run's timing fields (not
+  while a doubt stands that only a person can settle);
 * :func:`interpolation_refusal`: whether the run's volumes may be interpolated at
   all (BOLD-type series only);
 * :data:`MIN_VOLUMES`: the shortest run worth correcting (from the measured edge error).
@@ -81,6 +83,33 @@ def timing_doubts(findings: Iterable[Finding]) -> list[Finding]:
     timing stand in doubt" (``correct`` reads it; ``slicetime explain`` says it)."""
     return [f for f in findings
             if f.severity.rank >= Severity.WARNING.rank and doubts_timing(f.code)]
+
+
+#: the fields a doubt about the timing is about: no repair changes them while it stands
+DOUBTED_FIELDS = frozenset({"SliceTiming", "SliceEncodingDirection",
+                            "MultibandAccelerationFactor"})
+
+
+def undecided_doubt(findings: Iterable[Finding], repaired: Iterable[str] = ()) -> Finding | None:
+    """The doubt (:func:`timing_doubts`) that ``fix`` may not settle by taking a side,
+    or None: the one owner of "may a repair change this run's timing". A doubt raised
+    by the run's source series (a rule ``checked="source"``) is settled by the
+    scanner's own record, and so is every doubt of a run that a repair rebuilds from it
+    (``repaired``: the codes of the run's repairs); any other doubt sets two sources
+    against each other, and a person must decide which is right."""
+    if any(_from_source(code) for code in repaired):
+        return None
+    return next((f for f in timing_doubts(findings) if not _from_source(f.code)), None)
+
+
+def _from_source(code: str) -> bool:
+    rule = RULES.get(code)
+    return rule is not None and rule.checked == "source"
+
+
+def undecided_reason(finding: Finding) -> str:
+    """Why no repair touches the run's timing while ``finding`` stands (fix's "not planned")."""
+    return f"the timing is in doubt ({finding.code}): a person must decide which source is right"
 
 
 def doubts_timing(code: str) -> bool:

@@ -23,6 +23,11 @@ Each repair is proposed only when the evidence is unambiguous:
   and SliceEncodingDirection when the matched slice axis is not ``k``;
   ``source/multiband-differs``: MultibandAccelerationFactor from the source's groups.
 
+A repair that takes one side of a doubt about the timing (the header against the
+sidecar, the declared factor against the times) is proposed here but never planned
+while the doubt stands: ``rules.correction.undecided_doubt`` decides, ``pipelines.fix``
+lists the run as not planned (a person must decide which source is right).
+
 Where the value is written is the pipeline's business (``pipelines.fix``);
 a repair only says which sidecar supplies the current value.
 """
