@@ -542,3 +542,48 @@ def test_policy_codes_are_documented() -> None:
     policy_codes = {c for c in RULES if c.startswith("policy/")}
     assert not policy_codes & {code for code, _ in RUN_CHECKS}
     assert all(RULES[c].scope == "reader" for c in policy_codes)
+
+
+# --------------------------------------------------------------------------- a broken lab policy
+
+
+def _broken_policy_dataset(tmp_path: Path) -> tuple[Path, Path]:
+    from tests.helpers_bids import write_description
+    from tests.test_correct import build_run, interleaved
+
+    root = tmp_path / "ds"
+    write_description(root)
+    image, _ = build_run(root, "sub-01/func/sub-01_task-hum_bold.nii.gz", interleaved(8))
+    # TOML v1.0.0 ("Table"): a table header is closed by "]"; this one is not
+    (root / POLICY_FILENAME).write_text("[severity\nbroken = ", encoding="utf-8")
+    return root, image
+
+
+def test_a_broken_lab_policy_is_seen_by_audit_show_and_correct_alike(tmp_path: Path) -> None:
+    import json
+
+    import tomllib
+    from click.testing import CliRunner
+
+    from slicetime.interfaces.cli import cli
+
+    root, image = _broken_policy_dataset(tmp_path)
+    with pytest.raises(tomllib.TOMLDecodeError):  # the standard library's TOML reader
+        tomllib.loads((root / POLICY_FILENAME).read_text(encoding="utf-8"))
+    runner = CliRunner()
+    audit = runner.invoke(cli, ["audit", str(root), "--format", "json"])
+    assert audit.exit_code == 1
+    assert "policy/invalid" in audit.stdout
+    shown = runner.invoke(cli, ["show", str(image), "--json"])
+    assert shown.exit_code == 1, shown.output
+    assert [f["code"] for f in json.loads(shown.stdout)["findings"]][:1] == ["policy/invalid"]
+    text = runner.invoke(cli, ["show", str(image)])
+    assert text.exit_code == 1 and "no findings" not in text.stdout
+    assert "policy/invalid" in text.stdout
+    out = tmp_path / "out"
+    corrected = runner.invoke(cli, ["correct", str(root), "--out", str(out)])
+    assert corrected.exit_code == 2
+    lines = corrected.stderr.strip().splitlines()
+    assert len(lines) == 1 and lines[0].startswith(f"slicetime: {root / POLICY_FILENAME}: line 1")
+    assert "without the dataset's lab policy" in lines[0]
+    assert not out.exists()

@@ -76,6 +76,18 @@ class AuditResult:
     #: runs whose policy protocol states a value, so that value was judged by the policy
     #: and not by the majority of their task and acquisition (dataset/outlier-*)
     judged_by_policy: int = 0
+    #: root -> the problem of its own lab policy file, which was not used
+    #: (``policy/invalid``; also among ``dataset_findings``)
+    broken_policies: dict[str, Finding] = field(default_factory=dict)
+
+    def policy_problem(self) -> str | None:
+        """One line naming the first dataset whose own lab policy is broken, or None:
+        what a command that must not go on without the lab's policy stops with."""
+        for root, finding in sorted(self.broken_policies.items()):
+            name = finding.file or ""
+            message = finding.message.removeprefix(f"{name}: ")  # named once, in full
+            return f"{Path(root) / name}: {message}"
+        return None
 
     def ignored_count(self) -> int:
         return len(self.ignored) + sum(len(r.ignored) for r in self.runs)
@@ -217,11 +229,14 @@ def _check_every_path_has_runs(
 
 
 def _policies(
-    roots: Iterable[Path], policy_file: Path | None, problems: list[Finding]
+    roots: Iterable[Path], policy_file: Path | None, problems: list[Finding],
+    broken: dict[Path, Finding] | None = None,
 ) -> dict[Path, Policy | None]:
     """The policy of each root: the one given (errors propagate: exit 2), else the
-    root's own file (a broken one becomes a dataset finding and is not used)."""
-    return root_policies(roots, policy_file, known_codes(), problems, renamed=RENAMED)
+    root's own file (a broken one becomes a dataset finding, is not used and is named
+    in ``broken``)."""
+    return root_policies(roots, policy_file, known_codes(), problems, renamed=RENAMED,
+                         broken=broken)
 
 
 def check_paths_hold_runs(paths: Sequence[Path], **include: bool) -> None:
@@ -408,6 +423,8 @@ class AuditTotals:
     roots: list[str]
     names: dict[str, str] = field(default_factory=dict)  # root -> dataset name
     policies: dict[str, str] = field(default_factory=dict)
+    #: root -> the problem of its broken own policy (as ``AuditResult.broken_policies``)
+    broken_policies: dict[str, Finding] = field(default_factory=dict)
     #: root -> the policy's [[accept]] entries (as ``AuditResult.accepts``)
     accepts: dict[str, tuple[AcceptEntry, ...]] = field(default_factory=dict)
     facts: list[RunFacts] = field(default_factory=list)
@@ -495,10 +512,12 @@ def audit_stream(
     that and the run's facts, not the whole record (the report line of a run is
     encoded in parallel, and this process does little per run)."""
     listings: dict[str, tuple[str, ...]] = {}
+    broken: dict[Path, Finding] = {}
     targets, roots, policies, walk_problems = _targets(
         paths, policy_file, include_derivatives, include_sourcedata, include_hidden,
-        require_runs, listings)
+        require_runs, listings, broken)
     totals = AuditTotals(roots=roots, names=dataset_names(roots))
+    totals.broken_policies = {str(r): f for r, f in broken.items()}
     totals.policies = {str(r): p.file or "" for r, p in policies.items() if p is not None}
     totals.accepts = {str(r): p.accepts for r, p in policies.items()
                       if p is not None and p.accepts}
@@ -690,6 +709,7 @@ def _targets(
     paths: Sequence[Path], policy_file: Path | None, include_derivatives: bool,
     include_sourcedata: bool, include_hidden: bool, require_runs: bool = True,
     listings: dict[str, tuple[str, ...]] | None = None,
+    broken: dict[Path, Finding] | None = None,
 ) -> tuple[list[tuple[Path, Path]], list[str], dict[Path, Policy | None], list[Finding]]:
     """The runs to audit, the roots, each root's policy, and the walk's problems;
     :class:`NoRunsError` when a given path holds no run and ``require_runs``.
@@ -708,7 +728,8 @@ def _targets(
     if require_runs:
         _check_every_path_has_runs(paths, targets)
     roots = sorted({str(root) for root, _ in targets}) or [str(find_root(p)) for p in paths]
-    policies = _policies(sorted({root for root, _ in targets}), policy_file, walk_problems)
+    policies = _policies(sorted({root for root, _ in targets}), policy_file, walk_problems,
+                         broken)
     return targets, roots, policies, walk_problems
 
 
@@ -765,7 +786,8 @@ def collected(totals: AuditTotals, runs: list[RunResult]) -> AuditResult:
     return AuditResult(roots=totals.roots, runs=runs,
                        dataset_findings=list(totals.dataset_findings),
                        ignored=list(totals.ignored_overall), policies=dict(totals.policies),
-                       accepts=dict(totals.accepts), judged_by_policy=totals.judged_by_policy)
+                       accepts=dict(totals.accepts), judged_by_policy=totals.judged_by_policy,
+                       broken_policies=dict(totals.broken_policies))
 
 
 def inspect_run(image: Path, *, policy_file: Path | None = None,
@@ -779,7 +801,13 @@ def inspect_run(image: Path, *, policy_file: Path | None = None,
     try:
         result = audit_paths([root, absolute], policy_file=policy_file, source=source,
                              require_runs=False)
-        return next(r for r in result.runs if r.record.abs_path == str(absolute))
+        run = next(r for r in result.runs if r.record.abs_path == str(absolute))
+        # the dataset's broken lab policy was not used: the run's findings say so,
+        # as the audit's report does (one loading path: audit_paths)
+        broken = result.broken_policies.get(run.record.root)
+        if broken is not None:
+            run.findings.insert(0, broken)
+        return run
     except ReadError as exc:
         if exc.code == "file/missing":
             raise

@@ -718,7 +718,8 @@ def correct_paths(
     ``verify`` checks each run's claimed slice order against its image data first
     (the audit's ``verify``): a contradicted claim puts the timing in doubt.
 
-    Raises ``ValueError`` for a bad output location (usage error) and
+    Raises ``ValueError`` for a bad output location or a dataset whose own lab policy
+    is broken (usage errors) and
     ``ReadError`` for a missing given path; everything about a single run
     becomes its outcome.
     """
@@ -734,6 +735,11 @@ def correct_paths(
         executor=executor if verify else None,
         jobs=jobs if verify else 1,
     )
+    broken = audit.policy_problem()
+    if broken is not None:
+        # the lab's policy (its accepted doubts, severities, protocols) decides what may
+        # be corrected: without it correct would judge every run by other rules
+        raise ValueError(f"{broken} (correct does not run without the dataset's lab policy)")
     options = dataclasses.replace(options, policy_accepts=audit.accepts)
     roots = sorted({r.record.root for r in audit.runs})
     given_roots = {str(find_root(Path(p))) for p in paths} | set(audit.roots) | set(roots)

@@ -675,12 +675,15 @@ def root_policies(
     problems: list[Finding] | None = None,
     *,
     renamed: Mapping[str, str] | None = None,
+    broken: dict[Path, Finding] | None = None,
 ) -> dict[Path, Policy | None]:
     """The policy of each dataset root: the one given (its errors propagate, so the
     command line can exit 2), else the root's own ``slicetime-policy.toml``. A
     root's broken file is not used: its problem is appended to ``problems`` as a
     finding (when given) for the report. ``renamed`` maps former codes to current
-    ones (:func:`with_current_codes`)."""
+    ones (:func:`with_current_codes`); ``broken`` receives each root whose own file is
+    broken, with its problem (every command that must not go on without the lab's
+    policy reads it there)."""
     roots = list(roots)
 
     def load(path: Path, display: str | None = None) -> Policy:
@@ -704,5 +707,7 @@ def root_policies(
         except ReadError as exc:
             if problems is not None:
                 problems.append(exc.to_finding())
+            if broken is not None:
+                broken[Path(root)] = exc.to_finding()
             found[Path(root)] = None
     return found
