@@ -309,3 +309,17 @@ def test_a_doubt_the_source_series_raises_is_settled_from_it() -> None:
     assert undecided_doubt([source]) is None
     assert undecided_doubt([source, header]) == header
     assert undecided_doubt([header.with_severity(Severity.NOTE)]) is None
+
+
+def test_two_echoes_that_disagree_are_both_refused(ds: Path, tmp_path: Path) -> None:
+    # common practice (no source): the echoes of one run share its excitations, so
+    # their slice times are one list; echo-1 ascending and echo-2 descending (the
+    # reverse) leave no majority: neither echo's timing can be trusted
+    for echo, times in ((1, SEQUENTIAL), (2, SEQUENTIAL[::-1])):
+        build_run(ds, REL.replace("_bold", f"_echo-{echo}_bold"), times,
+                  extra={"EchoTime": 0.015 * echo})
+    code, doc, _ = correct_json(ds, "--out", tmp_path / "out")
+    assert code == 1
+    assert [r["status"] for r in doc["runs"]] == ["refused", "refused"]
+    for run in doc["runs"]:
+        assert "dataset/echo-mismatch" in [f["code"] for f in run["blocking_findings"]]

@@ -95,6 +95,25 @@ def test_echoes_must_share_timing(tmp_path: Path) -> None:
     found = findings_by_run(root)
     assert found["sub-01/func/sub-01_task-me_echo-3_bold.nii.gz"].get(
         "dataset/echo-mismatch") is Severity.ERROR
+    # two echoes of three agree: only the odd one out is in doubt
+    for echo in (1, 2):
+        assert "dataset/echo-mismatch" not in found[
+            f"sub-01/func/sub-01_task-me_echo-{echo}_bold.nii.gz"]
+
+
+def test_two_echoes_that_disagree_are_both_in_doubt(tmp_path: Path) -> None:
+    # common practice (no source): the echoes of one run share its excitations; with two
+    # that disagree there is no majority, so neither can be trusted over the other
+    root = tmp_path / "ds"
+    write_description(root)
+    for echo, times in ((1, INTERLEAVED), (2, DESCENDING)):
+        write_run(root, f"sub-01/func/sub-01_task-me_echo-{echo}_bold.nii.gz",
+                  shape=(4, 4, 10, 5), sidecar={"EchoTime": 0.012 * echo,
+                                                "RepetitionTime": 2.0, "SliceTiming": times})
+    found = findings_by_run(root)
+    for echo in (1, 2):
+        assert found[f"sub-01/func/sub-01_task-me_echo-{echo}_bold.nii.gz"].get(
+            "dataset/echo-mismatch") is Severity.ERROR
 
 
 def test_local_processes_give_the_same_report_as_serial(tmp_path: Path) -> None:

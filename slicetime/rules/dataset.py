@@ -154,6 +154,9 @@ def _echo_family(record: RunView) -> tuple[Any, ...] | None:
 
 
 def echo_mismatch(records: Sequence[RunView]) -> Iterator[DatasetHit]:
+    """Each echo/part that disagrees with the timing most of its family shares; when no
+    timing is shared by a strict majority (two echoes that differ), every member is in
+    doubt, since nothing tells which one is right."""
     families: dict[tuple[Any, ...], list[RunView]] = defaultdict(list)
     for record in records:
         family = _echo_family(record)
@@ -162,27 +165,53 @@ def echo_mismatch(records: Sequence[RunView]) -> Iterator[DatasetHit]:
     for members in families.values():
         if len(members) < 2:
             continue
-        members = sorted(members, key=lambda r: r.path)
-        first = members[0]
-        assert first.schedule is not None
-        for other in members[1:]:
-            assert other.schedule is not None
-            a, b = first.schedule, other.schedule
-            same_times = len(a.times) == len(b.times) and all(
-                abs(x - y) <= TIME_TOLERANCE for x, y in zip(a.times, b.times, strict=True))
-            same_tr = (a.repetition_time is None) == (b.repetition_time is None) and (
-                a.repetition_time is None or b.repetition_time is None
-                or abs(a.repetition_time - b.repetition_time) <= TIME_TOLERANCE)
-            if not (same_times and same_tr):
-                what = "SliceTiming" if not same_times else "RepetitionTime"
+        clusters: list[list[RunView]] = []
+        for record in sorted(members, key=lambda r: r.path):
+            home = next((c for c in clusters if _same_timing(c[0], record) is None), None)
+            if home is None:
+                clusters.append([record])
+            else:
+                home.append(record)
+        if len(clusters) < 2:
+            continue
+        largest = max(clusters, key=len)
+        majority = largest if len(largest) * 2 > len(members) else None
+        for cluster in clusters:
+            if cluster is majority:
+                continue
+            for other in cluster:
+                first = majority[0] if majority is not None else next(
+                    c[0] for c in clusters if c is not cluster)
+                what = _same_timing(first, other)
+                assert first.schedule is not None and other.schedule is not None
+                why = "" if majority is not None else (
+                    f"; no timing is shared by most of the {len(members)} echoes/parts, so "
+                    "none of them can be trusted over the others")
                 yield DatasetHit(other.abs_path, Hit(
-                    f"{what} differs from {first.path}, another echo/part of the same run",
+                    f"{what} differs from {first.path}, another echo/part of the same run{why}",
                     what,
                     {"reference_run": first.path,
                      "reference_scheme": first.scheme.label if first.scheme else None,
                      "this_scheme": other.scheme.label if other.scheme else None,
-                     "reference_tr": a.repetition_time, "this_tr": b.repetition_time},
+                     "reference_tr": first.schedule.repetition_time,
+                     "this_tr": other.schedule.repetition_time,
+                     "members": len(members),
+                     "agreeing_with_reference": len(majority) if majority is not None else 1},
                 ))
+
+
+def _same_timing(first: RunView, other: RunView) -> str | None:
+    """The field in which two echoes' timing differs (SliceTiming first), or None."""
+    a, b = first.schedule, other.schedule
+    assert a is not None and b is not None
+    same_times = len(a.times) == len(b.times) and all(
+        abs(x - y) <= TIME_TOLERANCE for x, y in zip(a.times, b.times, strict=True))
+    if not same_times:
+        return "SliceTiming"
+    same_tr = (a.repetition_time is None) == (b.repetition_time is None) and (
+        a.repetition_time is None or b.repetition_time is None
+        or abs(a.repetition_time - b.repetition_time) <= TIME_TOLERANCE)
+    return None if same_tr else "RepetitionTime"
 
 
 def timing_override(record: RunRecord) -> Iterator[Hit]:
