@@ -44,6 +44,11 @@ def test_the_demo_runs_the_whole_job(tmp_path: Path, capsys: pytest.CaptureFixtu
     assert not list(derivatives.glob("sub-03/*/func/*task-hum*"))
     assert "refused for doubt: 2 runs" in printed
     assert "--accept 'dataset/outlier-scheme:sub-03/**'" in printed
+    # the command to paste is whole on one line (not wrapped, not shortened)
+    command = next(line.strip() for line in printed.splitlines()
+                   if line.strip().startswith("slicetime correct "))
+    assert command.endswith("--accept 'dataset/outlier-scheme:sub-03/**'")
+    assert f"--out {derivatives}" in command
     assert (derivatives / "dataset_description.json").exists()
     # the planted study itself was never modified by the repairs
     original = json.loads((out / "quiet-rooms/task-chirp_bold.json").read_text())

@@ -123,7 +123,11 @@ def test_no_line_is_wider_than_the_terminal(screens: dict[tuple[str, int], str],
     for name, width, text in every_screen(screens, verify_screens, demo_screens):
         assert text.strip(), name
         for line in text.splitlines():
-            assert len(line) <= width, (name, width, line)
+            # a command the user is told to paste is whole on its own line, whatever
+            # the width (screen.split_pasteable)
+            assert len(line) <= width or line.lstrip().startswith(
+                ("--accept ", "slicetime correct ")), \
+                (name, width, line)
             assert line == line.rstrip(), (name, width, "trailing spaces", line)
 
 
@@ -299,3 +303,28 @@ def test_dicom_series_screens_fit(tmp_path: Path, width: int) -> None:
     # 1040 ms (MosaicRefAcqTimes of nibabel's csa_slice_norm.dcm, read by pydicom)
     _, series = run_cli("show", root / "sourcedata/sub-01/rest", columns=width)
     assert re.search(r"tile 1\s.*\b1040\b", series) and "time ms" in series
+
+
+def test_a_command_to_paste_is_whole_on_its_own_line(tmp_path: Path) -> None:
+    # POSIX shell (Shell Command Language, 2.3 Token Recognition): a pasted argument
+    # must be the exact characters; an ellipsis or a line break inside it makes another
+    # path or another command
+    from tests.helpers_bids import write_description
+    from tests.test_correct import build_run
+
+    root = tmp_path / "ds"
+    write_description(root)
+    rel = ("sub-03/ses-follow-up-long-session-name/func/"
+           "sub-03_ses-follow-up-long-session-name_task-hum_acq-longacquisition_bold.nii.gz")
+    # NIfTI-1 (nibabel's slice_order_codes): slice_code 2 is "sequential decreasing",
+    # against the sidecar's ascending times: a doubt correct refuses
+    build_run(root, rel, [round(0.25 * z, 6) for z in range(8)], slice_code=2,
+              slice_duration=0.25)
+    code, text = run_cli("correct", root, "--out", tmp_path / "out", columns=80)
+    assert code == 1
+    expected = f"--accept header/slice-code-mismatch:{rel}"
+    commands = [line.strip() for line in text.splitlines() if "--accept" in line]
+    assert commands == [expected], text
+    # a refused run has no output to show under its shortened path: no blank line
+    assert all(line == line.rstrip() for line in text.splitlines()), text
+    assert "…" not in commands[0] and "..." not in commands[0]

@@ -139,8 +139,10 @@ def run_demo(out: Path) -> int:
             f"source contradicts ({', '.join(codes)}). Only someone who knows the "
             "acquisition may accept such a doubt, by code and by run, and it is then "
             "recorded in every output it lets through:")
-        say(f"slicetime correct {fixed} --out {aligned} "
-            + " ".join(f"--accept '{c}:sub-03/**'" for c in codes), 4)
+        # a command to paste: whole, on its own line, even wider than the screen
+        console.print(f"    slicetime correct {fixed} --out {aligned} "
+                      + " ".join(f"--accept '{c}:sub-03/**'" for c in codes),
+                      markup=False, soft_wrap=True)
         say("or the same in the lab policy: [[accept]] findings = [...], runs = [...], "
             "reason = \"...\". Here the images contradict sub-03's override (step 3), so "
             "the honest move is to repair the override, not to accept it.")

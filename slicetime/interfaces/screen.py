@@ -111,6 +111,21 @@ def wrap_words(text: str, width: int | None, first: int = 0, rest: int = 0) -> l
     return lines
 
 
+#: what starts the options a message tells the user to paste (they end the message)
+PASTE_STARTS = (" --accept ",)
+
+
+def split_pasteable(text: str) -> tuple[str, str | None]:
+    """``text`` without the options to paste it ends with, and those options (None when
+    there are none). A screen prints them on a line of their own, whole: a command
+    the user is told to paste is never wrapped or shortened, whatever the width."""
+    found = [i for i in (text.find(start) for start in PASTE_STARTS) if i >= 0]
+    if not found:
+        return text, None
+    at = min(found)
+    return text[:at].rstrip(), text[at + 1:].strip()
+
+
 def wrap_items(items: Sequence[str], width: int | None, first: int = 0, rest: int = 0,
                sep: str = "  ") -> list[str]:
     """Like :func:`wrap_words`, but each item (``(reference 0.95 s)``) stays whole on

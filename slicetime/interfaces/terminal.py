@@ -219,12 +219,15 @@ def render_correct(result: CorrectResult, console: Console) -> None:
         else:  # the path on the status line, shortened; the output under it
             line.append(" " + screen.shorten_path(path, width - 11, unicode=unicode))
             console.print(line)
-            for part in screen.wrap_items(items, width, first=11, rest=11):
+            for part in screen.wrap_items(items, width, first=11, rest=11) if items else ():
                 console.print(Text(pad + part, style="dim"))
         if run.reason:  # the path is on the line above: not again
-            reason = screen.strip_path_prefix(run.reason, run.path)
+            reason, paste = screen.split_pasteable(
+                screen.strip_path_prefix(run.reason, run.path))
             for part in screen.wrap_words(xml_safe(reason), width, first=11, rest=13):
                 console.print(Text(pad + part))
+            if paste is not None:  # whole, on its own line, even wider than the screen
+                console.print(Text(pad + "  " + xml_safe(paste)), soft_wrap=True)
         for warning in run.warnings:
             for i, part in enumerate(screen.wrap_words(f"warning: {xml_safe(warning)}", width,
                                                        first=11, rest=13)):
