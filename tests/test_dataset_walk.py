@@ -174,3 +174,33 @@ def test_folder_links(tree: Path, tmp_path: Path) -> None:
     # given as a path of its own, the linked subject is walked, under its name in the tree
     runs = rel(tree, list(iter_runs([tree, tree / "sub-06"])))
     assert runs == [(".", p) for p in [*EXPECTED, "sub-06/func/sub-06_task-x_bold.nii.gz"]]
+
+
+def test_an_sbref_is_not_a_run_found_or_given(tmp_path: Path) -> None:
+    # BIDS specification ("Magnetic Resonance Imaging", task imaging data): sbref is the
+    # single-band reference image of a run, one volume, not a time series
+    from click.testing import CliRunner
+
+    from slicetime.interfaces.cli import cli
+
+    ds = tmp_path / "ds"
+    write_description(ds)
+    times = [0.25 * z for z in range(8)]
+    write_run(ds, "sub-01/func/sub-01_task-x_bold.nii.gz", (4, 4, 8, 10), tr=2.0,
+              sidecar={"TaskName": "x", "RepetitionTime": 2.0, "SliceTiming": times})
+    sbref = write_run(ds, "sub-01/func/sub-01_task-x_sbref.nii.gz", (4, 4, 8, 1), tr=2.0,
+                      sidecar={"TaskName": "x", "SliceTiming": times})
+    assert rel(ds, list(iter_runs([ds]))) == [(".", "sub-01/func/sub-01_task-x_bold.nii.gz")]
+    assert list(iter_runs([sbref])) == []  # given by name: the same judgement
+    runner = CliRunner()
+    for command in ("audit", "show"):
+        result = runner.invoke(cli, [command, str(sbref)])
+        assert result.exit_code == 2, (command, result.output)
+        lines = result.stderr.strip().splitlines()
+        assert len(lines) == 1 and "not a time series" in lines[0], (command, lines)
+    result = runner.invoke(cli, ["correct", str(sbref), "--out", str(tmp_path / "out")])
+    assert result.exit_code == 2 and "not a time series" in result.stderr
+    # a name meant as a run but not valid BIDS is still audited (file/bad-run-name)
+    write_run(ds, "sub-01/func/sub-01_task-x_sbref (copy).nii.gz", (4, 4, 8, 1), tr=2.0)
+    assert "sub-01/func/sub-01_task-x_sbref (copy).nii.gz" in [
+        r for _, r in rel(ds, list(iter_runs([ds])))]

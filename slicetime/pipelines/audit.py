@@ -47,7 +47,7 @@ from slicetime.policy.checks import (
 from slicetime.policy.loading import root_policies
 from slicetime.policy.model import AcceptEntry, Policy
 from slicetime.readers.atomic import within
-from slicetime.readers.dataset import find_root, iter_runs
+from slicetime.readers.dataset import find_root, iter_runs, not_a_run
 from slicetime.readers.entities import sidecar_path
 from slicetime.readers.errors import ReadError
 from slicetime.readers.inheritance import SidecarIndex, SidecarStore, ValueSharer
@@ -225,7 +225,9 @@ def _check_every_path_has_runs(
         aliases = [os.path.join(other, os.path.relpath(real, os.path.realpath(other)))
                    for other in holding if within(real, os.path.realpath(other))]
         if not any(holds(os.path.normpath(alias)) for alias in aliases):
-            raise NoRunsError(str(given), is_folder=os.path.isdir(given))
+            folder = os.path.isdir(given)
+            raise NoRunsError(str(given), is_folder=folder,
+                              why=None if folder else not_a_run(os.path.basename(given)))
 
 
 def _policies(
@@ -815,8 +817,8 @@ def inspect_run(image: Path, *, policy_file: Path | None = None,
         return RunResult(RunRecord(path=shown, abs_path=str(absolute), root=str(root)),
                          [exc.to_finding()])
     except StopIteration:  # not a run the walker recognises (a name it skips)
-        raise ReadError("file/not-nifti", str(absolute), None,
-                        f"{absolute}: not an image the audit reads as a run") from None
+        why = not_a_run(absolute.name) or "not an image the audit reads as a run"
+        raise ReadError("file/not-nifti", str(absolute), None, f"{absolute}: {why}") from None
 
 
 __all__ = [

@@ -7,10 +7,12 @@ from __future__ import annotations
 class NoRunsError(ValueError):
     """A path given on the command line holds no run: nothing found is not success."""
 
-    def __init__(self, path: str, *, is_folder: bool) -> None:
+    def __init__(self, path: str, *, is_folder: bool, why: str | None = None) -> None:
         self.path = path
         where = "under this folder" if is_folder else "in this file"
         super().__init__(
+            f"{path}: no functional runs found {where} ({why}; runs are NIfTI time series "
+            "such as *_bold.nii.gz)" if why is not None else
             f"{path}: no functional runs found {where} (runs are NIfTI time series such as "
             "*_bold.nii.gz; derivatives/, sourcedata/, code/ and hidden folders are skipped "
             "unless included)"

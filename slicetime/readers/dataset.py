@@ -8,13 +8,16 @@ A file is a candidate run when its name ends in ``.nii`` or ``.nii.gz`` and
   ``cbv``, ``phase``, ``asl``, ``dwi``), in any folder; or
 * its own sidecar (same stem, ``.json``) has a top-level ``SliceTiming`` key,
   unless it sits in an ``anat`` or ``fmap`` folder (structural scans and field
-  maps often carry ``SliceTiming`` but are not time series) or is a
-  single-band reference (``sbref``); or
+  maps often carry ``SliceTiming`` but are not time series); or
 * it is meant as a run but its name is not a valid BIDS run name
   (:func:`~slicetime.readers.entities.looks_like_run`: any NIfTI in a ``func``,
   ``perf`` or ``dwi`` folder, or with a time-series suffix, ``sbref`` or
   ``m0scan`` as a word of its name, e.g. ``task-rest-eyes``, ``acq-1.5mm``,
   ``_bold (copy)``), so the audit reports the name instead of dropping the run.
+
+A validly named single-band reference (``sbref``) is never a run: one reference
+volume, not a time series (:func:`not_a_run`); found in a folder or given by name,
+it is not audited (a file given alone is "no functional runs", exit 2, saying why).
 
 Entries that *look* like runs by name but are broken symlinks (an annexed
 file without local content, a dangling link), symlink loops or folders are
@@ -63,11 +66,15 @@ __all__ = [
     "find_root",
     "is_image_name",
     "iter_runs",
+    "not_a_run",
 ]
 
 TIME_SERIES_SUFFIXES: frozenset[str] = frozenset({"bold", "cbv", "phase", "asl", "dwi"})
-#: Suffixes never treated as runs even with SliceTiming in their sidecar.
-_NOT_RUNS: frozenset[str] = frozenset({"sbref"})
+#: Suffixes never treated as runs, even with SliceTiming in their sidecar or given by
+#: name: why each is not a time series.
+_NOT_RUNS: dict[str, str] = {
+    "sbref": "a single-band reference (sbref): one reference volume, not a time series",
+}
 _NOT_RUN_FOLDERS: frozenset[str] = frozenset({"anat", "fmap"})
 #: Folders not searched unless included (``code`` goes with ``sourcedata``).
 SKIPPED_FOLDERS: frozenset[str] = frozenset({"derivatives", "sourcedata", "code"})
@@ -194,6 +201,13 @@ def _time_series_by_name(name: str) -> bool:
     return parsed is not None and parsed.suffix in TIME_SERIES_SUFFIXES
 
 
+def not_a_run(name: str) -> str | None:
+    """Why a validly named image is never a run (a single-band reference), or None:
+    the one owner of that judgement, for the walk and for a file given by name alike."""
+    parsed = parse_name(name)
+    return _NOT_RUNS.get(parsed.suffix) if parsed is not None else None
+
+
 def _misnamed_run(name: str, folder: str) -> bool:
     """A NIfTI meant as a run whose name is not a valid BIDS run name: yielded so the
     audit reports the name (``file/bad-run-name``) instead of dropping the run."""
@@ -201,8 +215,7 @@ def _misnamed_run(name: str, folder: str) -> bool:
 
 
 def _has_slice_timing(folder: Path, name: str, listing: set[str]) -> bool:
-    parsed = parse_name(name)
-    if parsed is not None and parsed.suffix in _NOT_RUNS:
+    if not_a_run(name) is not None:
         return False
     if folder.name in _NOT_RUN_FOLDERS:
         return False
@@ -369,7 +382,8 @@ def iter_runs(
     (``SidecarStore(listings=...)``).
 
     A path that is a file is yielded as given (made absolute), whatever its
-    name. A folder is searched as described in the module docstring; each
+    name, except a name that is never a run (:func:`not_a_run`: a single-band
+    reference), which is not yielded either way. A folder is searched as described in the module docstring; each
     run's root is :func:`find_root` of the run. A path that does not exist
     (including a broken symlink) raises ``ReadError("file/missing")`` before
     anything is yielded. ``include_sourcedata`` also includes ``code``.
@@ -403,6 +417,8 @@ def iter_runs(
 
     found: dict[tuple[str, str], tuple[Path, Path]] = {}
     for p in given:
+        if not p.is_dir() and not_a_run(p.name) is not None:
+            continue  # never a run, given by name or found (NoRunsError says why)
         if p.is_dir():
             top = os.path.realpath(p)
             confine = os.path.realpath(finder.find_folder(os.fspath(p)))
