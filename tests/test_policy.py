@@ -562,13 +562,16 @@ def _broken_policy_dataset(tmp_path: Path) -> tuple[Path, Path]:
 def test_a_broken_lab_policy_is_seen_by_audit_show_and_correct_alike(tmp_path: Path) -> None:
     import json
 
-    import tomllib
     from click.testing import CliRunner
 
     from slicetime.interfaces.cli import cli
 
     root, image = _broken_policy_dataset(tmp_path)
-    with pytest.raises(tomllib.TOMLDecodeError):  # the standard library's TOML reader
+    try:  # the standard library's TOML reader (tomli before Python 3.11)
+        import tomllib
+    except ModuleNotFoundError:  # pragma: no cover - Python 3.10
+        import tomli as tomllib  # type: ignore[no-redef]
+    with pytest.raises(tomllib.TOMLDecodeError):
         tomllib.loads((root / POLICY_FILENAME).read_text(encoding="utf-8"))
     runner = CliRunner()
     audit = runner.invoke(cli, ["audit", str(root), "--format", "json"])

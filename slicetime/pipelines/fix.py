@@ -328,7 +328,7 @@ def _undecided(
         doubt = undecided_doubt(findings, codes.get(key, ()))
         if doubt is not None:
             for finding in findings:
-                reasons[(*key, finding.code)] = undecided_reason(doubt)
+                reasons[(record.root, record.path, finding.code)] = undecided_reason(doubt)
     kept = [r for r in repairs
             if not ((r.root, r.run, r.code) in reasons and r.field in DOUBTED_FIELDS)]
     return kept, reasons

@@ -158,11 +158,11 @@ def output_sidecar(
     facts: CorrectionFacts | None = None,
 ) -> dict[str, Any]:
     """The output sidecar: the input's metadata without ``SliceTiming`` (a deprecated
-    ``AcquisitionDuration`` beside ``VolumeTiming`` renamed ``FrameAcquisitionDuration``), the fields
-    that keep the acquisition window (``engines.plan.window_fields``), the leading
-    volumes left out (``NumberOfVolumesDiscardedByUser``, ``VolumeTiming`` cut to
-    the volumes kept), the derivative fields (``SliceTimingCorrected``,
-    ``StartTime``, ``Sources``) and the provenance record."""
+    ``AcquisitionDuration`` beside ``VolumeTiming`` renamed ``FrameAcquisitionDuration``), the
+    fields that keep the acquisition window (``engines.plan.window_fields``), the leading
+    volumes left out (``NumberOfVolumesDiscardedByUser``, ``VolumeTiming`` cut to the volumes
+    kept), the derivative fields (``SliceTimingCorrected``, ``StartTime``, ``Sources``) and the
+    provenance record."""
     facts = facts if facts is not None else CorrectionFacts()
     metadata = {k: v for k, v in record.metadata.items() if k not in DROPPED_FIELDS}
     schedule = record.schedule

@@ -376,20 +376,17 @@ def iter_runs(
 ) -> Iterator[tuple[Path, Path]]:
     """Yield ``(root, data_file)`` for every candidate run under ``paths``.
 
-    ``listings``, when given, receives the sidecar names of every folder the walk
-    listed (absolute folder path → sorted ``.json`` names that are neither hidden nor
-    folders), so that the sidecar resolution need not list those folders again
-    (``SidecarStore(listings=...)``).
+    ``listings``, when given, receives the sidecar names of every folder the walk listed
+    (absolute folder path → sorted ``.json`` names that are neither hidden nor folders), so that
+    the sidecar resolution need not list those folders again (``SidecarStore(listings=...)``).
 
-    A path that is a file is yielded as given (made absolute), whatever its
-    name, except a name that is never a run (:func:`not_a_run`: a single-band
-    reference), which is not yielded either way. A folder is searched as described in the module docstring; each
-    run's root is :func:`find_root` of the run. A path that does not exist
-    (including a broken symlink) raises ``ReadError("file/missing")`` before
-    anything is yielded. ``include_sourcedata`` also includes ``code``.
-    Folders that cannot be listed are skipped and, when ``on_error`` is
-    given, reported to it as ``file/unreadable`` findings.
-    """
+    A path that is a file is yielded as given (made absolute), whatever its name, except a name
+    that is never a run (:func:`not_a_run`: a single-band reference), which is not yielded
+    either way. A folder is searched as described in the module docstring; each run's root is
+    :func:`find_root` of the run. A path that does not exist (including a broken symlink) raises
+    ``ReadError("file/missing")`` before anything is yielded. ``include_sourcedata`` also
+    includes ``code``. Folders that cannot be listed are skipped and, when ``on_error`` is
+    given, reported to it as ``file/unreadable`` findings."""
     given = [_abs(Path(p)) for p in paths]
     for p in given:
         if not os.path.lexists(p) or (os.path.islink(p) and not os.path.exists(p)):
