@@ -258,7 +258,7 @@ def load_sidecar(
     p = os.fspath(path)
     shown = display if display is not None else display_name(Path(p), None)
     try:
-        fh, st = open_regular(p, shown, what="sidecar")
+        fh, st = open_regular(p, shown, what="JSON file")
         with fh:
             if st.st_size > MAX_SIDECAR_BYTES:
                 return None, [_too_large(shown, st.st_size)]
@@ -272,7 +272,7 @@ def load_sidecar(
     except ReadError as err:
         return None, [err.to_finding()]
     except OSError as exc:
-        return None, [os_error(exc, shown, what="sidecar").to_finding()]
+        return None, [os_error(exc, shown, what="JSON file").to_finding()]
     return parse_sidecar_bytes(raw, shown)
 
 

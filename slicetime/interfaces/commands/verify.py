@@ -41,11 +41,13 @@ def verify(files: tuple[Path, ...], fmt: str, fail_on: str, jobs: int | None,
     from slicetime.interfaces.verify_screen import run_lines, summary_line, unreadable_lines
     from slicetime.model import Severity
     from slicetime.pipelines.verify import verify_files
+    from slicetime.readers.dataset import given_run
 
     for file in files:
         if file.is_dir():
             raise UserError(f"{file}: a folder; verify takes run files (to check every run "
                             f"under a folder: slicetime audit {file} --verify)")
+    files = tuple(given_run(file) for file in files)  # a sidecar: its run; a .bval: exit 2
     if jobs is None and scheduler is None and len(files) == 1:
         jobs = 1
     with run_executor(jobs, scheduler, light=False, small_results=True) as executor:
