@@ -65,7 +65,7 @@ def timing(
       slicetime timing --slices 16 --tr 3 --delay-time 1.5 --order interleaved
     """
     from slicetime.numbers import as_written, plain
-    from slicetime.schemes.generate import Protocol, array_times, slice_timing
+    from slicetime.schemes.generate import Protocol, array_times, slice_timing, timing_problem
     from slicetime.schemes.infer import infer_scheme
 
     if tr is None:
@@ -104,9 +104,12 @@ def timing(
         decimals=decimals,
     )
     try:
+        problem = timing_problem(protocol)
         times = slice_timing(protocol)
     except ValueError as exc:
         raise UserError(f"timing: {_as_options(str(exc))}") from None
+    if problem is not None:
+        raise UserError(f"timing: {_as_options(problem)}")
     fields: dict[str, Any] = {"SliceTiming": times}
     fields["RepetitionTime"] = tr
     if delay is not None:
