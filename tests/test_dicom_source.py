@@ -562,7 +562,7 @@ def test_a_multiband_source_is_rebuilt_in_one_pass(tmp_path: Path) -> None:
 
 def _with_bad_uid(tmp: Path) -> tuple[Path, Path]:
     """The resting tree, its series copied with a SeriesInstanceUID that is no UID."""
-    root, run, _ = resting_tree(tmp, [0.0] * 32)
+    root, _, _ = resting_tree(tmp, [0.0] * 32)
     folder = root / "sourcedata" / "sub-01" / "rest"
     for link in sorted(folder.iterdir()):
         ds = pydicom.dcmread(RESTING)

@@ -424,9 +424,9 @@ def iter_runs(
     A path that is a file is resolved by :func:`given_run` (a run's own sidecar
     stands for its image; a file that accompanies runs raises ``file/not-a-run``)
     and yielded made absolute, whatever its name. A folder is searched as
-    described in the module docstring; each run's root is :func:`find_root` of the run. A path that does not exist
-    (including a broken symlink) raises ``ReadError("file/missing")`` before
-    anything is yielded. ``include_sourcedata`` also includes ``code``.
+    described in the module docstring; each run's root is :func:`find_root` of the
+    run. A path that does not exist (including a broken symlink) raises
+    ``ReadError("file/missing")`` before anything is yielded. ``include_sourcedata`` also includes ``code``.
     Folders that cannot be listed are skipped and, when ``on_error`` is
     given, reported to it as ``file/unreadable`` findings.
     """
