@@ -426,7 +426,8 @@ def iter_runs(
     and yielded made absolute, whatever its name. A folder is searched as
     described in the module docstring; each run's root is :func:`find_root` of the
     run. A path that does not exist (including a broken symlink) raises
-    ``ReadError("file/missing")`` before anything is yielded. ``include_sourcedata`` also includes ``code``.
+    ``ReadError("file/missing")`` before anything is yielded.
+    ``include_sourcedata`` also includes ``code``.
     Folders that cannot be listed are skipped and, when ``on_error`` is
     given, reported to it as ``file/unreadable`` findings.
     """
