@@ -24,7 +24,8 @@ from slicetime.interfaces.commands.shared import (
               show_default=True, help="Report format on stdout (json holds the numbers).")
 @click.option("--fail-on", type=click.Choice(["error", "warning", "never"]), default="warning",
               show_default=True, help="Exit 1 when a run's verdict reaches this severity "
-              "(contradicted is a warning; the other verdicts are notes).")
+              "(contradicted is a warning, the other verdicts are notes: error never "
+              "exits 1).")
 @executor_options(default=JOBS_HEAVY + "; one for a single file")
 @friendly
 def verify(files: tuple[Path, ...], fmt: str, fail_on: str, jobs: int | None,
@@ -34,7 +35,8 @@ def verify(files: tuple[Path, ...], fmt: str, fail_on: str, jobs: int | None,
     Verdicts: supported, consistent (fits, but another order fits about as
     well), contradicted (naming the order that fits better, by its scheme
     label; its slice times are in the JSON report) or undecidable (saying why).
-    Exit 1 when a verdict reaches --fail-on, 2 when a file cannot be read.
+    Exit 1 when a verdict reaches --fail-on (by default: a claim contradicted),
+    2 when a file cannot be read.
     """
     from slicetime.interfaces.report_json import dumps, verdict_of, verify_object
     from slicetime.interfaces.screen import width_for
