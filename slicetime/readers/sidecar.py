@@ -48,7 +48,6 @@ if TYPE_CHECKING:  # imported when a value fails the quick checks: 50 ms a start
 
 from slicetime.codes import make_finding
 from slicetime.model import Finding, Severity
-
 from slicetime.schemes.resolve import valid_multiband_factor
 
 from .errors import ReadError, display_name, open_regular, os_error, read_bounded
