@@ -7,6 +7,7 @@ TOML), and the BIDS specification (task and acq entities select runs).
 
 from __future__ import annotations
 
+import itertools
 import json
 import re
 from pathlib import Path
@@ -26,7 +27,7 @@ CODE_LINE = re.compile(r"^#     (policy/[a-z-]+) \(has .*\)$")
 def listed_runs(text: str) -> set[tuple[str, str]]:
     """(path, code) of the disagreeing runs the file lists: a path line, then its code."""
     lines = text.splitlines()
-    return {(p.group(1), c.group(1)) for a, b in zip(lines, lines[1:], strict=False)
+    return {(p.group(1), c.group(1)) for a, b in itertools.pairwise(lines)
             if (p := PATH_LINE.match(a)) and (c := CODE_LINE.match(b))}
 
 
