@@ -39,7 +39,7 @@ def verify(files: tuple[Path, ...], fmt: str, fail_on: str, jobs: int | None,
     2 when a file cannot be read.
     """
     from slicetime.interfaces.report_json import dumps, verdict_of, verify_object
-    from slicetime.interfaces.screen import width_for
+    from slicetime.interfaces.screen import ascii_text, unicode_wanted, width_for
     from slicetime.interfaces.verify_screen import run_lines, summary_line, unreadable_lines
     from slicetime.model import Severity
     from slicetime.pipelines.verify import verify_files
@@ -63,14 +63,15 @@ def verify(files: tuple[Path, ...], fmt: str, fail_on: str, jobs: int | None,
         click.echo(dumps(verify_object(outcomes, unreadable)))
     else:
         width = width_for(sys.stdout)
-        unicode = (sys.stdout.encoding or "").lower().replace("-", "") == "utf8"
+        unicode = unicode_wanted(sys.stdout)
         for result in results:
             if result.outcome is not None:
                 lines = run_lines(result.outcome, width, unicode=unicode)
             else:
                 lines = unreadable_lines(result.file, result.message or "", width,
                                          unicode=unicode)
-            click.echo("\n".join(lines))
+            text = "\n".join(lines)
+            click.echo(text if unicode else ascii_text(text))
         click.echo(summary_line([verdict_of(o) for o in outcomes], len(unreadable)))
     if unreadable:
         sys.exit(EXIT_USAGE)
