@@ -47,7 +47,7 @@ def make_console(file: object = None) -> Console:
     stream = screen.screen_stream(file if file is not None else sys.stdout)
     width = screen.width_for(stream)
     return Console(
-        file=stream,  # type: ignore[arg-type]  # a text stream; rich types it as IO[str]
+        file=stream,  # a text stream (or its ASCII spelling)
         width=width or 10_000,
         highlight=False,
         soft_wrap=True,
