@@ -224,9 +224,16 @@ _BEYOND_SCHEMA: dict[str, tuple[Check, str]] = {
 def _quick_checks() -> dict[str, Check]:
     checks = {key: _quick_check(sub) for key, sub in load_schema()["properties"].items()}
     for key, (valid, _) in _BEYOND_SCHEMA.items():
-        typed = checks[key]
-        checks[key] = lambda value, typed=typed, valid=valid: typed(value) and valid(value)
+        checks[key] = _both(checks[key], valid)
     return checks
+
+
+def _both(first: Check, second: Check) -> Check:
+    """A check that passes when both pass."""
+    def check(value: Any) -> bool:
+        return bool(first(value) and second(value))
+
+    return check
 
 
 class _NonFinite:
