@@ -73,9 +73,9 @@ Exit status (every command):
        finding not planned, or files refused (fix), a verdict at or above
        --fail-on, by default a claim contradicted (verify)
   2    bad usage: an unknown option or value, a path that does not exist,
-       holds no run or is no run (a .bval, an events table), an unreadable file
-       or policy named on the command line, a missing optional part (e.g.
-       matplotlib for --html)
+       holds no run or is no run (a .bval, an events table), an unreadable
+       file or policy named on the command line, a missing optional part
+       (e.g. matplotlib for --html)
   3    internal error (a bug: rerun with SLICETIME_DEBUG=1 and report it)
   130  interrupted (Ctrl-C)
 \b
