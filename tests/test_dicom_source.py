@@ -555,3 +555,37 @@ def test_a_multiband_source_is_rebuilt_in_one_pass(tmp_path: Path) -> None:
     assert not [f.code for f in again.findings if RULES[f.code].fixable]
     second = plan_fix([root])
     assert second.changes == []
+
+
+# --------------------------------------------------------------------------- malformed values
+
+
+def _with_bad_uid(tmp: Path) -> tuple[Path, Path]:
+    """The resting tree, its series copied with a SeriesInstanceUID that is no UID."""
+    root, _, _ = resting_tree(tmp, [0.0] * 32)
+    folder = root / "sourcedata" / "sub-01" / "rest"
+    for link in sorted(folder.iterdir()):
+        ds = pydicom.dcmread(RESTING)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")  # pydicom warns on setting it, too
+            ds.SeriesInstanceUID = "1.2.3.bad_uid"  # DICOM PS3.5 9.1: digits and dots only
+        link.unlink()
+        ds.save_as(link)
+    return root, folder
+
+
+def test_a_malformed_uid_is_a_note_not_a_library_warning(tmp_path: Path) -> None:
+    root, folder = _with_bad_uid(tmp_path)
+    # pydicom's own validation rejects the value (it warns on reading it; the reader
+    # must not let that reach the user's terminal)
+    with pytest.warns(UserWarning, match="Invalid value for VR UI"):
+        pydicom.dcmread(next(folder.iterdir())).SeriesInstanceUID  # noqa: B018
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        shown = CliRunner().invoke(cli, ["show", str(folder)])
+        audited = CliRunner().invoke(cli, ["audit", str(root), "--source", "--format", "json"])
+    assert [str(w.message) for w in caught if issubclass(w.category, UserWarning)] == []
+    assert shown.exit_code == 0 and "Invalid value" not in shown.stderr
+    notes = [line for line in shown.stdout.splitlines() if "SeriesInstanceUID" in line]
+    assert len(notes) == 1 and "001.dcm" in notes[0] and "not a valid UID" in notes[0]
+    assert audited.exit_code in (0, 1) and "Invalid value" not in audited.stderr

@@ -7,6 +7,7 @@ TOML), and the BIDS specification (task and acq entities select runs).
 
 from __future__ import annotations
 
+import itertools
 import json
 import re
 from pathlib import Path
@@ -19,7 +20,15 @@ from slicetime.interfaces.cli import cli
 from slicetime.pipelines.demo import build_demo_dataset
 
 tomllib = pytest.importorskip("tomllib")  # Python 3.11+: the standard library's TOML reader
-LISTED = re.compile(r"^#   (\S+)  (policy/[a-z-]+)  \(has .*\)$")
+PATH_LINE = re.compile(r"^#   (\S+)$")
+CODE_LINE = re.compile(r"^#     (policy/[a-z-]+) \(has .*\)$")
+
+
+def listed_runs(text: str) -> set[tuple[str, str]]:
+    """(path, code) of the disagreeing runs the file lists: a path line, then its code."""
+    lines = text.splitlines()
+    return {(p.group(1), c.group(1)) for a, b in itertools.pairwise(lines)
+            if (p := PATH_LINE.match(a)) and (c := CODE_LINE.match(b))}
 
 
 @pytest.fixture(scope="module")
@@ -39,7 +48,8 @@ def test_the_written_policy_reports_exactly_the_runs_it_lists(study: Path,
     assert out.exit_code == 0, out.output
     text = policy.read_text()
     document = tomllib.loads(text)  # the file is TOML
-    listed = {m.groups() for line in text.splitlines() if (m := LISTED.match(line))}
+    listed = listed_runs(text)
+    assert all(len(line) <= 80 for line in text.splitlines() if line.startswith("#"))
     assert ("sub-02/ses-2/func/sub-02_ses-2_task-chirp_bold.nii.gz",
             "policy/direction-mismatch") in listed
     audited = CliRunner().invoke(cli, ["audit", str(study), "--policy", str(policy),

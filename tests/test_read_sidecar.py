@@ -21,7 +21,7 @@ from slicetime.model import Severity
 from slicetime.readers import TIMING_FIELDS, check_types, load_schema, load_sidecar
 
 sys.path.insert(0, str(Path(__file__).parent))
-from helpers_bids import symlink, write_json
+from helpers_bids import symlink, write_json, write_run
 
 
 def load_text(tmp_path: Path, text: str | bytes, name: str = "sub-01_task-x_bold.json"):
@@ -309,3 +309,35 @@ def test_non_finite_in_overridden_duplicate_is_still_reported(tmp_path: Path) ->
     assert data == {"SliceTiming": [0, 1]}  # the last copy wins (Python's json module)
     assert sorted(codes(findings)) == ["sidecar/duplicate-key", "sidecar/non-finite-number"]
     assert all(f.severity is Severity.ERROR for f in findings)  # RFC 8259: NaN is not JSON
+
+
+@pytest.mark.parametrize("value", [0, -2, 1.5, 0.0])
+def test_a_multiband_factor_that_counts_no_slices_is_reported(value: float) -> None:
+    # source: bidsschematools objects.metadata.MultibandAccelerationFactor: a "number",
+    # "the multiband factor" (slices excited together): the BIDS type admits the value...
+    standard = bids_metadata()["MultibandAccelerationFactor"]
+    assert standard["type"] == "number"
+    jsonschema.validate(value, validation_part(standard))
+    # ...but a count of slices excited together is a whole number of at least 1
+    # (common practice, no source)
+    findings = check_types({"MultibandAccelerationFactor": value}, "x_bold.json")
+    assert codes(findings) == ["sidecar/wrong-type"]
+    assert "must be an integer ≥ 1" in findings[0].message
+    assert findings[0].field == "MultibandAccelerationFactor"
+
+
+@pytest.mark.parametrize("value", [1, 2, 4.0])
+def test_a_whole_multiband_factor_is_accepted(value: float) -> None:
+    assert check_types({"MultibandAccelerationFactor": value}, "x_bold.json") == []
+
+
+def test_a_zero_multiband_factor_is_not_a_mismatch_with_the_times(tmp_path: Path) -> None:
+    from slicetime.pipelines.audit import audit_paths
+
+    write_json(tmp_path / "dataset_description.json", {"Name": "t", "BIDSVersion": "1.9.0"})
+    write_run(tmp_path, "sub-01/func/sub-01_task-x_bold.nii.gz", shape=(4, 4, 4, 5), tr=2.0,
+              sidecar={"RepetitionTime": 2.0, "SliceTiming": [0, 0.5, 1.0, 1.5],
+                       "MultibandAccelerationFactor": 0})
+    (run,) = audit_paths([tmp_path]).runs
+    found = [f.code for f in run.findings if f.field == "MultibandAccelerationFactor"]
+    assert found == ["sidecar/wrong-type"]

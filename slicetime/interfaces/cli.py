@@ -66,15 +66,16 @@ class LazyGroup(click.Group):
 EXIT_STATUSES = """\b
 Exit status (every command):
   0    nothing at or above --fail-on (audit, show), every run corrected or up
-       to date (correct), nothing to fix or everything applied (fix), no claim
-       contradicted (verify)
+       to date (correct), nothing to fix or everything applied (fix), no
+       verdict at or above --fail-on (verify)
   1    a finding at or above --fail-on (audit, show; also a file show cannot
        read), a run refused or failed (correct), changes planned, a fixable
-       finding not planned, or files refused (fix), a claim contradicted
-       (verify)
-  2    bad usage: an unknown option or value, a path that does not exist or
-       holds no run, an unreadable file or policy named on the command line, a
-       missing optional part (e.g. matplotlib for --html)
+       finding not planned, or files refused (fix), a verdict at or above
+       --fail-on, by default a claim contradicted (verify)
+  2    bad usage: an unknown option or value, a path that does not exist,
+       holds no run or is no run (a .bval, an events table), an unreadable
+       file or policy named on the command line, a missing optional part
+       (e.g. matplotlib for --html)
   3    internal error (a bug: rerun with SLICETIME_DEBUG=1 and report it)
   130  interrupted (Ctrl-C)
 \b

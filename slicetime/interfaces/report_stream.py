@@ -528,6 +528,7 @@ def write_text(source: ReportSource, out: IO[str], *, show_all: bool = False,
     summary line; the table then has no notes column). ``width``: True to fit
     ``out`` (see ``screen.width_for``), None for no limit, or a number."""
     totals = source.totals
+    out = screen.screen_stream(out)  # ASCII mode: "x" for "×", "->" for "→", ...
     paint = _Paint(out)
     fit: int | None = screen.width_for(out) if width is True else (
         None if width is False else width)

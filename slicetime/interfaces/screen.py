@@ -7,7 +7,14 @@ is a terminal; else the terminal's width when the output is a terminal; else
 no limit: piped or redirected output keeps every finding on one line, so
 ``grep`` finds its code, message and severity together.
 
-Every function here is pure (strings in, strings out) except :func:`width_for`.
+ASCII (README, "Screens"): a screen uses only ASCII characters when its stream's
+encoding is not UTF-8 or ``SLICETIME_ASCII`` is set (:func:`unicode_wanted`, the one
+decision); :func:`screen_stream` then turns "×" into "x", "→" into "->", box
+lines into ``-``/``|``/``+`` and so on (:func:`ascii_text`). Machine formats (JSON,
+JUnit) are never changed: a scheme label keeps its standard words there.
+
+Every function here is pure (strings in, strings out) except :func:`width_for`,
+:func:`unicode_wanted` and :func:`screen_stream`.
 """
 
 from __future__ import annotations
@@ -38,6 +45,57 @@ def width_for(stream: Any) -> int | None:
     if bool(getattr(stream, "isatty", lambda: False)()):
         return max(shutil.get_terminal_size((100, 24)).columns, MIN_WIDTH)
     return None
+
+
+def unicode_wanted(stream: Any) -> bool:
+    """Whether a screen written to ``stream`` may use characters beyond ASCII: the
+    stream's encoding is UTF-8 and ``SLICETIME_ASCII`` is not set. Every screen asks
+    this (and only this)."""
+    encoding = (getattr(stream, "encoding", None) or "").lower().replace("-", "")
+    return "utf" in encoding and os.environ.get("SLICETIME_ASCII") is None
+
+
+#: what a screen in ASCII mode prints for a character beyond ASCII
+_ASCII = str.maketrans({
+    "×": "x", "→": "->", "←": "<-", "…": "...", "≥": ">=", "≤": "<=", "≈": "~", "±": "+/-",
+    "µ": "u", "–": "-", "—": "-", "›": ">", "‹": "<", "·": ".", "‘": "'", "’": "'",
+    "“": '"', "”": '"', "│": "|", "┃": "|", "─": "-", "━": "-", "┼": "+", "╇": "+",
+    "╋": "+", "┌": "+", "┐": "+", "└": "+", "┘": "+", "├": "+", "┤": "+", "┬": "+",
+    "┴": "+", "┏": "+", "┓": "+", "┗": "+", "┛": "+", "┡": "+", "┩": "+", "╭": "+",
+    "╮": "+", "╰": "+", "╯": "+", "█": "#", "▏": "|", "•": "*", "✓": "ok", "✗": "x",
+})
+
+
+def ascii_text(text: str) -> str:
+    """``text`` as an ASCII screen shows it ("12 × 12" → "12 x 12")."""
+    return text.translate(_ASCII)
+
+
+class _AsciiStream:
+    """A text stream that writes :func:`ascii_text` of what it is given; everything
+    else (encoding, isatty, flush, ...) is the wrapped stream's."""
+
+    def __init__(self, stream: Any) -> None:
+        self._stream = stream
+
+    def write(self, text: str) -> int:
+        self._stream.write(ascii_text(text))
+        return len(text)
+
+    def writelines(self, lines: Any) -> None:
+        for line in lines:
+            self.write(line)
+
+    def __getattr__(self, name: str) -> Any:
+        return getattr(self._stream, name)
+
+
+def screen_stream(stream: Any) -> Any:
+    """``stream`` itself when screens may use Unicode on it (:func:`unicode_wanted`),
+    else a stream that writes the ASCII spelling of every character."""
+    if unicode_wanted(stream) or isinstance(stream, _AsciiStream):
+        return stream
+    return _AsciiStream(stream)
 
 
 def ellipsis(unicode: bool = True) -> str:

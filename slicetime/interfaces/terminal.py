@@ -44,10 +44,10 @@ RICH_STYLE = {"error": STYLE[Severity.ERROR], "warning": STYLE[Severity.WARNING]
 def make_console(file: object = None) -> Console:
     """A console that never wraps by itself: every screen is laid out for
     ``screen.width_for`` (COLUMNS, else the terminal, else no limit) before printing."""
-    stream = file if file is not None else sys.stdout
+    stream = screen.screen_stream(file if file is not None else sys.stdout)
     width = screen.width_for(stream)
     return Console(
-        file=stream,  # type: ignore[arg-type]  # a text stream; rich types it as IO[str]
+        file=stream,  # a text stream (or its ASCII spelling)
         width=width or 10_000,
         highlight=False,
         soft_wrap=True,
@@ -62,8 +62,8 @@ def fit_width(console: Console) -> int | None:
 
 
 def supports_unicode(console: Console) -> bool:
-    encoding = (console.encoding or "").lower()
-    return "utf" in encoding and os.environ.get("SLICETIME_ASCII") is None
+    """Whether the console's screen may use Unicode (``screen.unicode_wanted``)."""
+    return screen.unicode_wanted(console.file)
 
 
 def emit(console: Console, lines: Iterable[screen.Line]) -> None:

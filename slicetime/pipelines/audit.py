@@ -47,7 +47,7 @@ from slicetime.policy.checks import (
 from slicetime.policy.loading import root_policies
 from slicetime.policy.model import AcceptEntry, Policy
 from slicetime.readers.atomic import within
-from slicetime.readers.dataset import find_root, iter_runs, not_a_run
+from slicetime.readers.dataset import find_root, given_run, iter_runs, not_a_run
 from slicetime.readers.entities import sidecar_path
 from slicetime.readers.errors import ReadError
 from slicetime.readers.inheritance import SidecarIndex, SidecarStore, ValueSharer
@@ -215,12 +215,14 @@ def _check_every_path_has_runs(
     def holds(where: str) -> bool:
         return any(within(run, where) for run in runs)
 
-    holding = [os.path.abspath(given) for given in paths if holds(os.path.abspath(given))]
+    # a run's own sidecar stands for its image (given_run)
+    holding = [os.path.abspath(given_run(given)) for given in paths
+               if holds(os.path.abspath(given_run(given)))]
     for given in paths:
-        where = os.path.abspath(given)
+        where = os.path.abspath(given_run(given))
         if where in holding:
             continue
-        real = os.path.realpath(given)
+        real = os.path.realpath(given_run(given))
         # the same folder under the name another given path gave it: its runs, met once
         aliases = [os.path.join(other, os.path.relpath(real, os.path.realpath(other)))
                    for other in holding if within(real, os.path.realpath(other))]

@@ -11,13 +11,19 @@ code the written policy will give it: the list is made by the policy's own
 checks (:func:`slicetime.policy.checks.judge`), so the policy applied to the
 same dataset reports exactly those runs.
 
+Runs with no usable timing (an image that could not be read, e.g. an empty or
+not-retrieved file; slice times that could not be resolved) give no values: they
+are left out and listed as comments under their entry.
+
 Only the expected protocols (``version`` and ``[[protocols]]``) are written;
-severities and ignore entries are the lab's to add.
+severities and ignore entries are the lab's to add. Comment lines fit 80 columns
+(a single path longer than that stays whole).
 """
 
 from __future__ import annotations
 
 import json
+import textwrap
 from collections import Counter, defaultdict
 from collections.abc import Sequence
 from dataclasses import dataclass, field
@@ -30,11 +36,14 @@ from slicetime.pipelines.audit import audit_paths
 from slicetime.policy.checks import judge, observed
 from slicetime.policy.model import EXPECTATION_KEYS, ExpectedProtocol
 from slicetime.schemes.labels import label_multiband, label_problem, normalise_label
+from slicetime.words import agree, count
 
 __all__ = ["PinnedEntry", "pin_protocols", "policy_text"]
 
 #: the suffix most runs have; others are named in the match
 _DEFAULT_SUFFIX = "bold"
+#: the width comment lines fit
+_WIDTH = 80
 
 
 @dataclass
@@ -47,6 +56,8 @@ class PinnedEntry:
     values: dict[str, Any] = field(default_factory=dict)
     disagreeing: list[tuple[str, str, str]] = field(default_factory=list)
     left_out: list[str] = field(default_factory=list)
+    #: runs with no usable timing (path, why), which gave no values
+    unusable: list[tuple[str, str]] = field(default_factory=list)
 
     @property
     def name(self) -> str:
@@ -66,8 +77,20 @@ def _key(value: Any) -> Any:
     return round(value, 6) if isinstance(value, float) else value
 
 
+def _no_usable_timing(record: RunRecord) -> str | None:
+    """Why the run cannot tell its protocol, or None when it can: its image header was
+    not read (empty, not retrieved, unreadable) or its slice times were not resolved."""
+    if record.header is None:
+        return "its image could not be read (empty, not retrieved or unreadable)"
+    if record.schedule is None:
+        return "its slice times could not be resolved"
+    return None
+
+
 def _entry(match: dict[str, str], records: Sequence[RunRecord]) -> PinnedEntry:
-    entry = PinnedEntry(match, len(records))
+    unusable = [(r.path, why) for r in records if (why := _no_usable_timing(r)) is not None]
+    records = [r for r in records if _no_usable_timing(r) is None]
+    entry = PinnedEntry(match, len(records), unusable=sorted(unusable))
     seen = [observed(r) for r in records]
     for key in EXPECTATION_KEYS:
         found = _majority([_key(s[key]) for s in seen])
@@ -75,7 +98,8 @@ def _entry(match: dict[str, str], records: Sequence[RunRecord]) -> PinnedEntry:
         if found is None:
             if known:
                 entry.left_out.append(f"{key}: no value is held by more than half of the "
-                                      f"{known} runs that have one")
+                                      f"{count(known, 'run')} that {agree(known, 'has')} "
+                                      "one")
             continue
         value = found[0]
         if key == "scheme" and label_problem(normalise_label(value)) is not None:
@@ -138,14 +162,42 @@ def _toml_value(value: Any) -> str:
     return json.dumps(str(value), ensure_ascii=False)  # a TOML basic string
 
 
-def _comment(text: str) -> str:
-    return "# " + text.replace("\n", " ").replace("\r", " ")
+def _comment(text: str, indent: str = "") -> list[str]:
+    """``text`` as comment lines of at most :data:`_WIDTH` columns (a word longer than
+    that, such as a long path, stays whole); later lines are indented two more."""
+    flat = text.replace("\n", " ").replace("\r", " ")
+    return textwrap.wrap(flat, width=_WIDTH, initial_indent="# " + indent,
+                         subsequent_indent="# " + indent + "  ", break_long_words=False,
+                         break_on_hyphens=False) or ["#"]
+
+
+def _agreement(entry: PinnedEntry) -> list[str]:
+    """The comment lines on which of the entry's runs agree with it."""
+    if not entry.disagreeing:
+        return _comment("the only run agrees" if entry.runs == 1
+                        else f"all {count(entry.runs, 'run')} agree")
+    n = len({p for p, _, _ in entry.disagreeing})
+    lines = _comment(f"{n} of {count(entry.runs, 'run')} {agree(n, 'disagrees')}:")
+    for path, code, found in entry.disagreeing:
+        lines += _comment(path, "  ") + _comment(f"{code} (has {found})", "    ")
+    return lines
+
+
+def _unusable(entry: PinnedEntry) -> list[str]:
+    if not entry.unusable:
+        return []
+    n = len(entry.unusable)
+    lines = _comment(f"left out: {count(n, 'run')} with no usable timing (no values taken "
+                     f"from {'it' if n == 1 else 'them'}):")
+    for path, why in entry.unusable:
+        lines += _comment(path, "  ") + _comment(why, "    ")
+    return lines
 
 
 def policy_text(entries: Sequence[PinnedEntry], where: str, untasked: int = 0) -> str:
     """The policy file: ``version``, one ``[[protocols]]`` per entry, and comments."""
     lines = [
-        _comment(f"Lab policy written by `slicetime pin` from {where}."),
+        *_comment(f"Lab policy written by `slicetime pin` from {where}."),
         "# Per task and acquisition: the value a majority of the runs has for each",
         "# expectation.",
         "# Review it, keep it beside the dataset (slicetime-policy.toml at its root, or",
@@ -154,13 +206,19 @@ def policy_text(entries: Sequence[PinnedEntry], where: str, untasked: int = 0) -
         "# policy reports exactly those (fix them, or give them their own entry).",
     ]
     if untasked:
-        lines.append(_comment(f"{untasked} runs without a task in their name are not covered."))
+        lines += _comment(f"{count(untasked, 'run')} without a task in "
+                          f"{'its' if untasked == 1 else 'their'} name "
+                          f"{agree(untasked, 'is')} not covered.")
     lines += ["", "version = 1"]
     for entry in entries:
         if not entry.values:  # the format wants at least one expectation per entry
-            lines += ["", _comment(f"{entry.name}: no expectation has a majority of its "
-                                   f"{entry.runs} runs; no entry written")]
-            lines += [_comment(f"left out: {note}") for note in entry.left_out]
+            lines.append("")
+            why = (f"no expectation has a majority of its {count(entry.runs, 'run')}"
+                   if entry.runs else "no run has usable timing")
+            lines += _comment(f"{entry.name}: {why}; no entry written")
+            for note in entry.left_out:
+                lines += _comment(f"left out: {note}")
+            lines += _unusable(entry)
             continue
         lines += ["", "[[protocols]]", f"name = {_toml_value(entry.name)}"]
         match = ", ".join(f"{k} = {_toml_value(v)}" for k, v in entry.match.items())
@@ -169,12 +227,7 @@ def policy_text(entries: Sequence[PinnedEntry], where: str, untasked: int = 0) -
             if key in entry.values:
                 lines.append(f"{key} = {_toml_value(entry.values[key])}")
         for note in entry.left_out:
-            lines.append(_comment(f"left out: {note}"))
-        if entry.disagreeing:
-            lines.append(_comment(f"{len({p for p, _, _ in entry.disagreeing})} of "
-                                  f"{entry.runs} runs disagree:"))
-            for path, code, found in entry.disagreeing:
-                lines.append(_comment(f"  {path}  {code}  (has {found})"))
-        else:
-            lines.append(_comment(f"all {entry.runs} runs agree"))
+            lines += _comment(f"left out: {note}")
+        lines += _unusable(entry)
+        lines += _agreement(entry)
     return "\n".join(lines) + "\n"

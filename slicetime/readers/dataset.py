@@ -64,6 +64,7 @@ __all__ = [
     "TIME_SERIES_SUFFIXES",
     "check_writes",
     "find_root",
+    "given_run",
     "is_image_name",
     "iter_runs",
     "not_a_run",
@@ -128,6 +129,63 @@ def check_writes(
     for what, path in folders.items():
         if path is not None:
             check_write_target(path, roots, given, what=what, folder=True)
+
+
+#: BIDS files that accompany runs (not runs themselves), by the end of their name
+_COMPANIONS: tuple[tuple[str, str], ...] = (
+    ("_events.tsv", "its events table"), ("_physio.tsv.gz", "its physiological recording"),
+    ("_stim.tsv.gz", "its stimulus recording"), ("_scans.tsv", "a session's scans table"),
+    ("participants.tsv", "the participants table"), (".tsv", "a BIDS table"),
+    (".tsv.gz", "a compressed BIDS table"), (".bval", "a diffusion b-value list"),
+    (".bvec", "a diffusion gradient list"),
+)
+
+
+def given_run(path: Path) -> Path:
+    """The run a path given on the command line means, for every command.
+
+    A folder or a run image is returned as given; a run's own sidecar
+    (``x_bold.json``) stands for the image beside it (``x_bold.nii.gz`` or
+    ``x_bold.nii``). A file that accompanies runs (``.bval``, ``.bvec``,
+    ``_events.tsv``, ...) or a sidecar with no image beside it is no run: raises
+    ``ReadError("file/not-a-run")``, one line naming the file. A path that does not
+    exist is returned as given (the callers report it as missing).
+    """
+    name = path.name
+    lower = name.lower()
+    if not os.path.lexists(path) or os.path.isdir(path) or is_image_name(name):
+        return path
+    shown = str(path)
+    for end, kind in _COMPANIONS:
+        if lower.endswith(end):
+            raise ReadError("file/not-a-run", shown, None,
+                            f"{shown}: not a run but {kind} (a BIDS file that accompanies "
+                            "runs); give a run's image (.nii, .nii.gz) or its own sidecar"
+                            + _run_beside(path))
+    if lower.endswith(".json"):
+        stem = name[: -len(".json")]
+        for ext in IMAGE_EXTENSIONS:
+            image = path.with_name(stem + ext)
+            if os.path.lexists(image):
+                return image
+        raise ReadError("file/not-a-run", shown, None,
+                        f"{shown}: not a run: a sidecar without a run image beside it (no "
+                        f"{stem}.nii.gz or {stem}.nii); an inherited sidecar serves several "
+                        "runs: give one of them, or the folder")
+    return path
+
+
+def _run_beside(file: Path) -> str:
+    """``; the run it belongs to: X`` when the image of the same name parts is there."""
+    stem, _, _ = file.name.rpartition("_")
+    if not stem:
+        return ""
+    for suffix in ("_bold.nii.gz", "_bold.nii", "_cbv.nii.gz", "_asl.nii.gz", "_dwi.nii.gz",
+                   "_dwi.nii"):
+        image = file.with_name(stem + suffix)
+        if image.exists():
+            return f"; the run it belongs to: {image}"
+    return ""
 
 
 #: errors that :meth:`pathlib.Path.is_file` treats as "not a file" (others propagate)
@@ -246,7 +304,7 @@ class _Walker:
 
     def _remember(self, key: str, entries: list[os.DirEntry[str]]) -> None:
         """The folder's sidecar names as ``SidecarIndex.listing`` would list them (a
-        ``.json`` name, not hidden, not a folder), and whether it holds a description."""
+        ``.json`` name, not hidden), and whether it holds a description."""
         assert self.listings is not None and self.described is not None
         jsons: list[str] = []
         described: bool | None = False
@@ -254,12 +312,7 @@ class _Walker:
             name = entry.name
             if not name.endswith(".json") or name.startswith("."):
                 continue
-            try:
-                if entry.is_dir():
-                    continue
-            except OSError:
-                pass  # a link loop: reading it reports it
-            jsons.append(name)
+            jsons.append(name)  # a folder or a link loop with that name: reading it reports it
             if name == _DESCRIPTION:
                 try:
                     described = entry.is_file()  # follows links, as the root finder does
@@ -376,18 +429,23 @@ def iter_runs(
 ) -> Iterator[tuple[Path, Path]]:
     """Yield ``(root, data_file)`` for every candidate run under ``paths``.
 
-    ``listings``, when given, receives the sidecar names of every folder the walk listed
-    (absolute folder path → sorted ``.json`` names that are neither hidden nor folders), so that
-    the sidecar resolution need not list those folders again (``SidecarStore(listings=...)``).
+    ``listings``, when given, receives the sidecar names of every folder the walk
+    listed (absolute folder path → sorted ``.json`` names that are not hidden; a folder
+    with such a name is listed, and reading it reports it), so that the sidecar
+    resolution need not list those folders again (``SidecarStore(listings=...)``).
 
-    A path that is a file is yielded as given (made absolute), whatever its name, except a name
-    that is never a run (:func:`not_a_run`: a single-band reference), which is not yielded
-    either way. A folder is searched as described in the module docstring; each run's root is
-    :func:`find_root` of the run. A path that does not exist (including a broken symlink) raises
-    ``ReadError("file/missing")`` before anything is yielded. ``include_sourcedata`` also
-    includes ``code``. Folders that cannot be listed are skipped and, when ``on_error`` is
-    given, reported to it as ``file/unreadable`` findings."""
-    given = [_abs(Path(p)) for p in paths]
+    A path that is a file is resolved by :func:`given_run` (a run's own sidecar
+    stands for its image; a file that accompanies runs raises ``file/not-a-run``)
+    and yielded made absolute, whatever its name, except a name that is never a run
+    (:func:`not_a_run`: a single-band reference), which is not yielded either way. A
+    folder is searched as described in the module docstring; each run's root is
+    :func:`find_root` of the run. A path that does not exist (including a broken
+    symlink) raises ``ReadError("file/missing")`` before anything is yielded.
+    ``include_sourcedata`` also includes ``code``.
+    Folders that cannot be listed are skipped and, when ``on_error`` is
+    given, reported to it as ``file/unreadable`` findings.
+    """
+    given = [_abs(given_run(Path(p))) for p in paths]
     for p in given:
         if not os.path.lexists(p) or (os.path.islink(p) and not os.path.exists(p)):
             if annex_target(p) is not None:

@@ -55,6 +55,7 @@ from slicetime.readers.dicom_files import (
     is_archive_name,
     is_dicom_path,
     natural,
+    quiet,
 )
 from slicetime.readers.errors import ReadError
 
@@ -527,6 +528,7 @@ def _path_shown(root: str | None) -> Callable[[str], str]:
     return shown_of
 
 
+@quiet
 def read_group(group: SeriesGroup, series: str, root: str | None = None) -> SeriesTiming:
     """One volume's slice times from the objects of one series (see the module's text).
 
@@ -547,9 +549,11 @@ def read_group(group: SeriesGroup, series: str, root: str | None = None) -> Seri
                         "ImagePositionPatient")
         else:
             timing = _classic(group, series, shown_of)
-    if group.neighbours:
-        import dataclasses
+    import dataclasses
 
+    if group.uid_note is not None:
+        timing = dataclasses.replace(timing, notes=(*timing.notes, group.uid_note))
+    if group.neighbours:
         where = ", ".join(_path_shown(root)(f) for f in group.folders)
         note = (f"{where} mixes {group.neighbours + 1} series: only the "
                 f"{len(group.objects)} images with SeriesInstanceUID {group.uid} were read")
@@ -569,6 +573,7 @@ def _label(group: SeriesGroup) -> str:
             else f"SeriesInstanceUID {group.uid}")
 
 
+@quiet
 def read_all_series(path: str, shown: str, root: str | None = None
                     ) -> list[SeriesTiming | ReadError]:
     """Every series in a DICOM file, an archive or a folder (not its subfolders)."""

@@ -30,9 +30,9 @@ import re
 import tarfile
 import warnings
 import zipfile
-from collections.abc import Iterator, Sequence
+from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass, field
-from typing import Any
+from typing import Any, TypeVar
 
 from slicetime.readers.errors import ReadError
 
@@ -45,8 +45,50 @@ __all__ = [
     "catalogue",
     "is_archive_name",
     "is_dicom_path",
+    "quiet",
     "read_object",
+    "series_uid",
 ]
+
+_F = TypeVar("_F", bound=Callable[..., Any])
+
+
+def quiet(fn: _F) -> _F:
+    """Run ``fn`` with library warnings silenced: pydicom converts values when they are
+    first read and warns on stderr about a malformed one; the readers report what
+    matters as findings or notes instead."""
+    import functools
+
+    @functools.wraps(fn)
+    def wrapper(*args: Any, **kwargs: Any) -> Any:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            return fn(*args, **kwargs)
+
+    return wrapper  # type: ignore[return-value]  # functools.wraps keeps the signature
+
+
+#: a DICOM UID (PS3.5 section 9.1): numeric components without leading zeros, separated
+#: by dots, at most 64 characters
+_UID = re.compile(r"(?:0|[1-9][0-9]*)(?:\.(?:0|[1-9][0-9]*))*\Z")
+
+
+def series_uid(ds: Any, shown: str) -> tuple[str | None, str | None]:
+    """The SeriesInstanceUID of a header, and a one-line note naming the file and field
+    when the stored value is not a valid UID (the series is still grouped by it)."""
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        try:
+            value = ds.get("SeriesInstanceUID")
+        except Exception:  # a value pydicom cannot decode at all
+            return None, f"{shown}: SeriesInstanceUID cannot be decoded"
+    if not value:
+        return None, None
+    text = str(value)
+    if len(text) > 64 or not _UID.match(text):
+        return text, (f"{shown}: SeriesInstanceUID {text!r} is not a valid UID (digits and "
+                      "dots, at most 64 characters); the images are grouped by it as stored")
+    return text, None
 
 CODE = "source/unreadable"
 HINT = ("check the series under sourcedata/ (a complete copy from the scanner or archive), "
@@ -355,6 +397,8 @@ class SeriesGroup:
     first: Any
     folders: list[str] = field(default_factory=list)
     neighbours: int = 0
+    #: a malformed SeriesInstanceUID, one line naming the first file that holds it
+    uid_note: str | None = None
 
     @property
     def number(self) -> int | None:
@@ -389,7 +433,7 @@ def _objects_of(path: str, shown_of: Any, problems: list[ReadError]
         try:
             for name, data, slim in _archive_members(path, shown_of(path), problems=problems):
                 items.append((DicomObject(path, name), slim))
-                uid = str(slim.get("SeriesInstanceUID") or "")
+                uid = series_uid(slim, name)[0] or ""
                 if uid not in first or natural(name) < first[uid][0]:
                     first[uid] = (natural(name), name, data)
         except ReadError as exc:
@@ -415,6 +459,7 @@ def _objects_of(path: str, shown_of: Any, problems: list[ReadError]
         problems.append(exc)
 
 
+@quiet
 def catalogue(path: str, shown_of: Any, recursive: bool = False
               ) -> tuple[list[SeriesGroup], list[ReadError]]:
     """The series held by a file, an archive or a folder (and its subfolders when
@@ -437,13 +482,15 @@ def catalogue(path: str, shown_of: Any, recursive: bool = False
     per_folder: dict[str, set[str]] = {}
     for file in files:
         for obj, slim in _objects_of(file, shown_of, problems):
-            uid_value = slim.get("SeriesInstanceUID")
-            uid = str(uid_value) if uid_value else None
+            shown = shown_of(obj.path)
+            uid, uid_note = series_uid(
+                slim, f"{shown}/{obj.member}" if obj.member is not None else shown)
             key = uid if uid is not None else f"no uid in {obj.folder}"
             per_folder.setdefault(obj.folder, set()).add(key)
             group = groups.get(key)
             if group is None:
-                groups[key] = SeriesGroup(uid, [obj], [slim], slim, [obj.folder])
+                groups[key] = SeriesGroup(uid, [obj], [slim], slim, [obj.folder],
+                                          uid_note=uid_note)
             else:
                 group.objects.append(obj)
                 group.slim.append(slim)
@@ -456,6 +503,7 @@ def catalogue(path: str, shown_of: Any, recursive: bool = False
     return out, problems
 
 
+@quiet
 def full_header(group: SeriesGroup, shown: str) -> Any:
     """The whole header of the group's first object (the catalogue keeps only some tags
     of plain files)."""

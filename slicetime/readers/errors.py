@@ -134,7 +134,7 @@ def os_error(exc: OSError, shown: str, *, what: str = "file") -> ReadError:
     if isinstance(exc, IsADirectoryError):
         return ReadError(
             "file/unreadable", shown, None,
-            f"{shown}: is a directory, expected {with_article(what)}"
+            f"{shown}: is a directory, not {with_article(what)}"
         )
     if isinstance(exc, PermissionError):
         return ReadError(
@@ -195,7 +195,7 @@ def check_regular_file(
     if stat.S_ISDIR(st.st_mode):
         raise ReadError(
             "file/unreadable", shown, None,
-            f"{shown}: is a directory, expected {with_article(what)}"
+            f"{shown}: is a directory, not {with_article(what)}"
         )
     if not stat.S_ISREG(st.st_mode):
         raise _not_regular(shown, st.st_mode, what)

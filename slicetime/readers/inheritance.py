@@ -334,11 +334,8 @@ class SidecarIndex:
                 for entry in it:
                     if not entry.name.endswith(".json") or entry.name.startswith("."):
                         continue
-                    try:
-                        if entry.is_dir():
-                            continue
-                    except OSError:
-                        pass  # a link loop: load_sidecar reports it
+                    # a folder with a sidecar's name is listed too: load_sidecar reports
+                    # it (file/unreadable), a link loop likewise
                     jsons.append((entry.name, parse_name(entry.name)))
         except FileNotFoundError:
             pass

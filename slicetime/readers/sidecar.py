@@ -48,6 +48,7 @@ if TYPE_CHECKING:  # imported when a value fails the quick checks: 50 ms a start
 
 from slicetime.codes import make_finding
 from slicetime.model import Finding, Severity
+from slicetime.schemes.resolve import valid_multiband_factor
 
 from .errors import ReadError, display_name, open_regular, os_error, read_bounded
 from .schema_text import describe_schema
@@ -212,9 +213,27 @@ def quick_checks() -> dict[str, Check]:
     return _quick_checks()
 
 
+#: what a field must be beyond its BIDS type (the shipped schema copies the BIDS types
+#: and nothing more): field → (predicate of a valid value, what it must be)
+_BEYOND_SCHEMA: dict[str, tuple[Check, str]] = {
+    "MultibandAccelerationFactor": (valid_multiband_factor, "an integer ≥ 1"),
+}
+
+
 @functools.cache
 def _quick_checks() -> dict[str, Check]:
-    return {key: _quick_check(sub) for key, sub in load_schema()["properties"].items()}
+    checks = {key: _quick_check(sub) for key, sub in load_schema()["properties"].items()}
+    for key, (valid, _) in _BEYOND_SCHEMA.items():
+        checks[key] = _both(checks[key], valid)
+    return checks
+
+
+def _both(first: Check, second: Check) -> Check:
+    """A check that passes when both pass."""
+    def check(value: Any) -> bool:
+        return bool(first(value) and second(value))
+
+    return check
 
 
 class _NonFinite:
@@ -258,7 +277,7 @@ def load_sidecar(
     p = os.fspath(path)
     shown = display if display is not None else display_name(Path(p), None)
     try:
-        fh, st = open_regular(p, shown, what="sidecar")
+        fh, st = open_regular(p, shown, what="JSON file")
         with fh:
             if st.st_size > MAX_SIDECAR_BYTES:
                 return None, [_too_large(shown, st.st_size)]
@@ -272,7 +291,7 @@ def load_sidecar(
     except ReadError as err:
         return None, [err.to_finding()]
     except OSError as exc:
-        return None, [os_error(exc, shown, what="sidecar").to_finding()]
+        return None, [os_error(exc, shown, what="JSON file").to_finding()]
     return parse_sidecar_bytes(raw, shown)
 
 
@@ -675,6 +694,21 @@ def _describe(schema: Mapping[str, Any]) -> str:
     return describe_schema(schema)
 
 
+def _beyond_finding(key: str, value: Any, what: str, sources: Mapping[str, str] | None,
+                    display: str | None) -> Finding:
+    """The ``sidecar/wrong-type`` finding of a value of the right BIDS type that no
+    acquisition can have (:data:`_BEYOND_SCHEMA`)."""
+    shown = (sources or {}).get(key) or display or "sidecar"
+    return make_finding(
+        "sidecar/wrong-type",
+        f"{shown}: {key} must be {what}; it is {_short(value)}",
+        file=shown,
+        field=key,
+        evidence={"value": _short(value, 200), "at": key, "expected": what},
+        hint=f"write {key} as {what}",
+    )
+
+
 def check_types(
     data: Mapping[str, Any],
     display: str | None = None,
@@ -696,6 +730,9 @@ def check_types(
             continue
         errors = list(_validators()[key].iter_errors(value))
         if not errors:
+            beyond = _BEYOND_SCHEMA.get(key)
+            if beyond is not None and not beyond[0](value):
+                out.append(_beyond_finding(key, value, beyond[1], sources, display))
             continue
         import jsonschema
 

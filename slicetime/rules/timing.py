@@ -8,7 +8,7 @@ from typing import Any
 from slicetime.model import RunRecord, SliceSchedule, before_start, past_end
 from slicetime.numbers import as_written, plain, secs
 from slicetime.rules.registry import Hit
-from slicetime.schemes.resolve import is_number
+from slicetime.schemes.resolve import is_number, valid_multiband_factor
 from slicetime.words import count
 
 #: suffixes whose runs need slice timing for slice-timing correction
@@ -241,8 +241,8 @@ def unrecognised(record: RunRecord) -> Iterator[Hit]:
 def multiband_mismatch(record: RunRecord) -> Iterator[Hit]:
     scheme = record.scheme
     mb = record.metadata.get("MultibandAccelerationFactor")
-    if scheme is None or not is_number(mb) or scheme.n_slices < 2:
-        return
+    if scheme is None or not valid_multiband_factor(mb) or scheme.n_slices < 2:
+        return  # an invalid factor (0, 1.5) is the sidecar check's sidecar/wrong-type
     if _irregular_reason(record) in ("unequal-groups",):
         return
     if len(scheme.groups) == 1:

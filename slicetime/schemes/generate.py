@@ -29,6 +29,7 @@ __all__ = [
     "base_order",
     "resolve_start",
     "slice_timing",
+    "timing_problem",
     "validate_protocol",
 ]
 
@@ -245,3 +246,50 @@ def slice_timing(p: Protocol) -> list[float]:
     """The times as a BIDS ``SliceTiming`` list (reversed when direction is ``-``)."""
     times = list(array_times(p))
     return times if p.direction == "+" else times[::-1]
+
+
+def timing_problem(p: Protocol) -> str | None:
+    """Why the list :func:`slice_timing` makes for ``p`` is no usable slice order, or
+    None when it is one. The audit reads the list back with
+    :func:`~slicetime.schemes.infer.infer_scheme`; a list it would take for another
+    order is refused here, naming the parameter to change:
+
+    - ``multiband`` equal to ``n_slices`` (more than one slice) excites every slice at
+      once: there is no order;
+    - rounding to ``decimals`` gives two excitation groups the same time or swaps them,
+      or puts a time at or past the TR (BIDS: each SliceTiming value is below
+      RepetitionTime);
+    - the groups are closer than the audit can tell apart (the grouping threshold of
+      :func:`~slicetime.schemes.infer.grouping_threshold`).
+    """
+    from slicetime.schemes.infer import group_slices
+
+    validate_protocol(p)
+    if p.n_slices > 1 and p.multiband == p.n_slices:
+        return (f"multiband={p.multiband} equals n_slices: every slice is excited at once, "
+                "which is not a slice order (a 3-D acquisition has no SliceTiming)")
+    groups = array_groups(p)
+    times = array_times(p)
+    starts = [times[g[0]] for g in groups]
+    if p.decimals is not None:
+        unit = 10.0 ** -p.decimals
+        for k in range(1, len(starts)):
+            if starts[k] <= starts[k - 1]:
+                spacing = p.window / p.n_groups
+                return (f"decimals={p.decimals}: rounding makes excitation groups {k} and "
+                        f"{k + 1} {'simultaneous' if starts[k] == starts[k - 1] else 'swap'} "
+                        f"(they are {spacing:.3g} s apart, below the {unit:g} s step of "
+                        f"{p.decimals} decimals); give more decimals")
+    tr = p.repetition_time
+    if tr is not None and starts and max(starts) >= tr:
+        return (f"decimals={p.decimals}: rounding puts a slice at {max(starts):g} s, not "
+                f"below the TR of {tr:g} s (each slice time must be shorter than the TR); "
+                "give more decimals")
+    found, _ = group_slices(times)
+    if len(groups) > 1 and len(found) != len(groups):
+        spacing = p.window / p.n_groups
+        return (f"n_slices={p.n_slices}: {len(groups)} excitation groups over {p.window:g} s "
+                f"are {spacing:.3g} s apart, too close to tell apart (the audit reads "
+                f"{len(found)} group{'s' if len(found) != 1 else ''}); give fewer slices or a "
+                f"longer repetition_time (now {p.window:g} s)")
+    return None

@@ -42,6 +42,16 @@ def is_number(value: Any) -> TypeGuard[int | float]:
     return isinstance(value, int | float) and not isinstance(value, bool)
 
 
+def valid_multiband_factor(value: Any) -> TypeGuard[int | float]:
+    """A usable MultibandAccelerationFactor: a whole number of at least 1 (JSON ``2`` or
+    ``2.0``). The BIDS schema types it only as a number ("the multiband factor, for
+    multiband acquisitions"); a factor counts the slices excited together, so 0, a
+    negative or a fractional value describes no acquisition (common practice, no source).
+    The sidecar check reports any other value, and the rules about the factor use only
+    a valid one."""
+    return is_number(value) and value >= 1 and float(value).is_integer()
+
+
 _PLAIN_NUMBERS = frozenset({int, float})
 
 

@@ -26,25 +26,30 @@ def _complete_codes(ctx: click.Context, param: click.Parameter, incomplete: str
 @friendly
 def explain(code: str | None, list_all: bool) -> None:
     """Print the documentation of a finding CODE (or --list them all)."""
-    from slicetime.interfaces.screen import width_for, wrap_words
+    from slicetime.interfaces.screen import screen_stream, width_for, wrap_words
     from slicetime.rules import RULES
     from slicetime.rules import explain as explain_rule
 
     width = width_for(sys.stdout)
+    out = screen_stream(sys.stdout)  # ASCII mode: "x" for "×", ">=" for "≥", ...
+
+    def say(text: str) -> None:
+        click.echo(text, file=out)
+
     if list_all or code is None:
         code_width = max(len(c) for c in RULES)
         lead = code_width + 2 + 7 + 2
         for rule in sorted(RULES.values(), key=lambda r: r.code):
             head = f"{rule.code:<{code_width}}  {rule.severity.value:<7}  "
             if width is not None and width - lead < 30:  # narrow: the title under the code
-                click.echo(f"{rule.code}  {rule.severity.value}")
+                say(f"{rule.code}  {rule.severity.value}")
                 for part in wrap_words(rule.title, width, first=4, rest=4):
-                    click.echo("    " + part)
+                    say("    " + part)
                 continue
             parts = wrap_words(rule.title, width, first=lead, rest=lead)
-            click.echo(head + parts[0])
+            say(head + parts[0])
             for part in parts[1:]:
-                click.echo(" " * lead + part)
+                say(" " * lead + part)
         return
     known = _known_code(code, RULES)
     if known is None:
@@ -52,11 +57,11 @@ def explain(code: str | None, list_all: bool) -> None:
         extra = f"; did you mean {', '.join(near)}?" if near else ""
         raise UserError(f"explain: no finding code {code!r}{extra} (see slicetime explain --list)")
     if known != code:
-        click.echo(f"{code} is the former name of {known} (still accepted in lab policies)")
+        say(f"{code} is the former name of {known} (still accepted in lab policies)")
     for paragraph in explain_rule(known).split("\n"):
         hanging = 2 if paragraph.endswith(":") or ": " in paragraph[:24] else 0
         for i, part in enumerate(wrap_words(paragraph, width, rest=hanging)):
-            click.echo(("" if i == 0 else " " * hanging) + part)
+            say(("" if i == 0 else " " * hanging) + part)
 
 
 def _known_code(code: str, rules: Any) -> str | None:

@@ -44,6 +44,10 @@ def pin(paths: tuple[Path, ...], output: Path | None, include_derivatives: bool,
                         "choose another name)") from None
     except OSError as exc:
         raise UserError(f"{output}: cannot write the policy ({exc.strerror or exc})") from None
+    from slicetime.words import agree, count
+
     disagreeing = sum(len({p for p, _, _ in e.disagreeing}) for e in entries)
-    click.echo(f"{os.fspath(output)}: {len(entries)} protocols written; "
-               f"{disagreeing} runs disagree with them (listed in the file)", err=True)
+    written = sum(1 for e in entries if e.values)
+    click.echo(f"{os.fspath(output)}: {count(written, 'protocol')} written; "
+               f"{count(disagreeing, 'run')} {agree(disagreeing, 'disagrees')} with them "
+               "(listed in the file)", err=True)

@@ -67,58 +67,17 @@ def show(file: Path, fmt: str, former_json: bool, fail_on: str,
         sys.exit(EXIT_FINDINGS)
 
 
-#: BIDS files that accompany a run (not runs themselves), by the end of their name
-_COMPANIONS = (
-    ("_events.tsv", "its events table"), ("_physio.tsv.gz", "its physiological recording"),
-    ("_stim.tsv.gz", "its stimulus recording"), ("_scans.tsv", "a session's scans table"),
-    ("participants.tsv", "the participants table"), (".tsv", "a BIDS table"),
-    (".tsv.gz", "a compressed BIDS table"), (".bval", "a diffusion b-value list"),
-    (".bvec", "a diffusion gradient list"),
-)
-
-
-def _companion_kind(name: str) -> str | None:
-    lower = name.lower()
-    for end, kind in _COMPANIONS:
-        if lower.endswith(end):
-            return f"{kind} (a BIDS file that accompanies runs)"
-    return None
-
-
-def _run_beside(file: Path) -> str:
-    """``: the run it belongs to is X`` when the image of the same name parts is there."""
-    stem, _, _ = file.name.rpartition("_")
-    if not stem:
-        return ""
-    for suffix in ("_bold.nii.gz", "_bold.nii", "_cbv.nii.gz", "_asl.nii.gz"):
-        image = file.with_name(stem + suffix)
-        if image.exists():
-            return f"; the run it belongs to: slicetime show {image}"
-    return ""
-
-
 def _show_target(file: Path) -> Path:
-    """The run image that ``show FILE`` means: the file itself, or the image beside a
-    run's own sidecar. A folder or a sidecar without its image is a usage mistake."""
+    """The run image that ``show FILE`` means (:func:`~slicetime.readers.dataset.given_run`);
+    a folder or a path that does not exist is a usage mistake."""
+    from slicetime.readers.dataset import given_run
+
     if not os.path.lexists(file):
         raise UserError(f"{file}: file does not exist")
     if file.is_dir():
         raise UserError(f"{file}: a folder; show takes one run (its image or its own sidecar); "
                         f"to check every run under it: slicetime audit {file}")
-    companion = _companion_kind(file.name)
-    if companion is not None:
-        raise UserError(f"{file}: not a run but {companion}; show takes a run's image (.nii, "
-                        ".nii.gz) or its own sidecar" + _run_beside(file))
-    if file.name.lower().endswith(".json"):
-        stem = file.name[: -len(".json")]
-        for ext in (".nii.gz", ".nii"):
-            image = file.with_name(stem + ext)
-            if os.path.lexists(image):
-                return image
-        raise UserError(f"{file}: a sidecar without a run image beside it (no {stem}.nii.gz "
-                        f"or {stem}.nii); an inherited sidecar serves several runs: show one "
-                        "of them, or audit the folder")
-    return file
+    return given_run(file)
 
 
 def _show_series(file: Path, as_json: bool) -> None:

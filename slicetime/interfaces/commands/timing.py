@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+import sys
 from typing import Any
 
 import click
@@ -65,7 +66,7 @@ def timing(
       slicetime timing --slices 16 --tr 3 --delay-time 1.5 --order interleaved
     """
     from slicetime.numbers import as_written, plain
-    from slicetime.schemes.generate import Protocol, array_times, slice_timing
+    from slicetime.schemes.generate import Protocol, array_times, slice_timing, timing_problem
     from slicetime.schemes.infer import infer_scheme
 
     if tr is None:
@@ -104,9 +105,12 @@ def timing(
         decimals=decimals,
     )
     try:
+        problem = timing_problem(protocol)
         times = slice_timing(protocol)
     except ValueError as exc:
         raise UserError(f"timing: {_as_options(str(exc))}") from None
+    if problem is not None:
+        raise UserError(f"timing: {_as_options(problem)}")
     fields: dict[str, Any] = {"SliceTiming": times}
     fields["RepetitionTime"] = tr
     if delay is not None:
@@ -116,7 +120,10 @@ def timing(
         fields["MultibandAccelerationFactor"] = multiband
     label = infer_scheme(array_times(protocol)).label
     click.echo(json.dumps(fields) if compact else json.dumps(fields, indent=2))
-    click.echo(f"scheme in data-array order: {label}", err=True)
+    from slicetime.interfaces.screen import ascii_text, unicode_wanted
+
+    shown = label if unicode_wanted(sys.stderr) else ascii_text(label)
+    click.echo(f"scheme in data-array order: {shown}", err=True)
 
 
 #: a TR or delay above this many seconds was written in milliseconds (the

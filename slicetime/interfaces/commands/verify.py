@@ -24,7 +24,8 @@ from slicetime.interfaces.commands.shared import (
               show_default=True, help="Report format on stdout (json holds the numbers).")
 @click.option("--fail-on", type=click.Choice(["error", "warning", "never"]), default="warning",
               show_default=True, help="Exit 1 when a run's verdict reaches this severity "
-              "(contradicted is a warning; the other verdicts are notes).")
+              "(contradicted is a warning, the other verdicts are notes: error never "
+              "exits 1).")
 @executor_options(default=JOBS_HEAVY + "; one for a single file")
 @friendly
 def verify(files: tuple[Path, ...], fmt: str, fail_on: str, jobs: int | None,
@@ -34,18 +35,21 @@ def verify(files: tuple[Path, ...], fmt: str, fail_on: str, jobs: int | None,
     Verdicts: supported, consistent (fits, but another order fits about as
     well), contradicted (naming the order that fits better, by its scheme
     label; its slice times are in the JSON report) or undecidable (saying why).
-    Exit 1 when a verdict reaches --fail-on, 2 when a file cannot be read.
+    Exit 1 when a verdict reaches --fail-on (by default: a claim contradicted),
+    2 when a file cannot be read.
     """
     from slicetime.interfaces.report_json import dumps, verdict_of, verify_object
-    from slicetime.interfaces.screen import width_for
+    from slicetime.interfaces.screen import ascii_text, unicode_wanted, width_for
     from slicetime.interfaces.verify_screen import run_lines, summary_line, unreadable_lines
     from slicetime.model import Severity
     from slicetime.pipelines.verify import verify_files
+    from slicetime.readers.dataset import given_run
 
     for file in files:
         if file.is_dir():
             raise UserError(f"{file}: a folder; verify takes run files (to check every run "
                             f"under a folder: slicetime audit {file} --verify)")
+    files = tuple(given_run(file) for file in files)  # a sidecar: its run; a .bval: exit 2
     if jobs is None and scheduler is None and len(files) == 1:
         jobs = 1
     with run_executor(jobs, scheduler, light=False, small_results=True) as executor:
@@ -59,14 +63,15 @@ def verify(files: tuple[Path, ...], fmt: str, fail_on: str, jobs: int | None,
         click.echo(dumps(verify_object(outcomes, unreadable)))
     else:
         width = width_for(sys.stdout)
-        unicode = (sys.stdout.encoding or "").lower().replace("-", "") == "utf8"
+        unicode = unicode_wanted(sys.stdout)
         for result in results:
             if result.outcome is not None:
                 lines = run_lines(result.outcome, width, unicode=unicode)
             else:
                 lines = unreadable_lines(result.file, result.message or "", width,
                                          unicode=unicode)
-            click.echo("\n".join(lines))
+            text = "\n".join(lines)
+            click.echo(text if unicode else ascii_text(text))
         click.echo(summary_line([verdict_of(o) for o in outcomes], len(unreadable)))
     if unreadable:
         sys.exit(EXIT_USAGE)
