@@ -70,12 +70,11 @@ from slicetime.engines.verify_signal import (
     prepare,
     remove_steps,
     step_transitions,
+    taper,
 )
 
 Verdict = Literal["supported", "consistent", "contradicted", "undecidable"]
 
-#: the share of the run tapered (half at each end) before the Fourier transform (:func:`taper`)
-TAPER_FRACTION = 1.0
 #: the highest true frequency (Hz) a component is assumed to have: respiration (about
 #: 0.2-0.35 Hz in adults at rest) and its harmonics, the heart (about 0.9-1.3 Hz) with margin
 MAX_TRUE_HZ = 1.6
@@ -139,31 +138,6 @@ class Spectra:
     weights: np.ndarray  # (bins,) see :func:`bin_weights`
     channels: int
     repetition_time: float
-
-
-def taper(n: int, fraction: float | None = None) -> np.ndarray:
-    """The window every channel course is multiplied by before its Fourier transform.
-
-    A delay is a linear phase ramp on the discrete Fourier transform only for a periodic
-    course: the ramp shifts the course circularly (the shift theorem of the DFT). A run's
-    course is not periodic (a drift, a slow wander that ends elsewhere than it began, a
-    block cut mid-block), so its periodic extension jumps at the run's ends, and that
-    jump leaks over the whole spectrum (Harris 1978, Proc. IEEE 66:51-83) at the same
-    sample in every slice, as if the slices had no offsets. Aligning by a schedule with
-    offsets then misaligns the leak, and "no offsets" would win on the shape of the signal
-    alone. Tapering both ends to zero removes the jump (the leak decays as the cube of
-    the frequency instead of its first power), and every candidate is scored on the same
-    tapered spectra. A Tukey (cosine-tapered) window: ``fraction`` of the run (half at
-    each end) follows a raised cosine, the middle is flat; ``fraction`` 1 is Hann."""
-    share = TAPER_FRACTION if fraction is None else fraction
-    w = np.ones(n)
-    edge = round(share * n / 2)
-    if n < 3 or edge < 1:
-        return w
-    ramp = 0.5 * (1.0 - np.cos(np.pi * (np.arange(edge) + 0.5) / edge))
-    w[:edge] = ramp
-    w[n - edge:] = ramp[::-1]
-    return w
 
 
 def region_spectra(prepared: Prepared, n_slices: int, region_of: np.ndarray) -> Spectra:

@@ -3,7 +3,8 @@
 The channel layout (slices, or parts of slices, inside the brain mask), the
 reduction of a batch of volumes to channel sums, and the preparation of the
 channel courses (level steps regressed out, high-passed and standardised in the
-cosine basis) that :mod:`slicetime.engines.verify` then scores.
+cosine basis) and the taper every course gets before its Fourier transform: what
+:mod:`slicetime.engines.verify` then scores.
 """
 
 from __future__ import annotations
@@ -14,6 +15,8 @@ from typing import Any
 
 import numpy as np
 
+#: the share of the run tapered (half at each end) before the Fourier transform (:func:`taper`)
+TAPER_FRACTION = 1.0
 #: in-brain voxels: temporal mean above this fraction of the robust maximum
 MASK_FRACTION = 0.2
 #: a transition is a step when the slices' scaled squared change there exceeds this many
@@ -172,3 +175,28 @@ def prepare(courses: np.ndarray, repetition_time: float, slice_of: np.ndarray, *
     coeffs[good] /= power[good, None]
     coeffs[~good] = 0.0
     return Prepared(coeffs, float(repetition_time), np.asarray(slice_of))
+
+
+def taper(n: int, fraction: float | None = None) -> np.ndarray:
+    """The window every channel course is multiplied by before its Fourier transform.
+
+    A delay is a linear phase ramp on the discrete Fourier transform only for a periodic
+    course: the ramp shifts the course circularly (the shift theorem of the DFT). A run's
+    course is not periodic (a drift, a slow wander that ends elsewhere than it began, a
+    block cut mid-block), so its periodic extension jumps at the run's ends, and that
+    jump leaks over the whole spectrum (Harris 1978, Proc. IEEE 66:51-83) at the same
+    sample in every slice, as if the slices had no offsets. Aligning by a schedule with
+    offsets then misaligns the leak, and "no offsets" would win on the shape of the signal
+    alone. Tapering both ends to zero removes the jump (the leak decays as the cube of
+    the frequency instead of its first power), and every candidate is scored on the same
+    tapered spectra. A Tukey (cosine-tapered) window: ``fraction`` of the run (half at
+    each end) follows a raised cosine, the middle is flat; ``fraction`` 1 is Hann."""
+    share = TAPER_FRACTION if fraction is None else fraction
+    w = np.ones(n)
+    edge = round(share * n / 2)
+    if n < 3 or edge < 1:
+        return w
+    ramp = 0.5 * (1.0 - np.cos(np.pi * (np.arange(edge) + 0.5) / edge))
+    w[:edge] = ramp
+    w[n - edge:] = ramp[::-1]
+    return w
