@@ -202,6 +202,7 @@ import importlib, json, resource, sys, time
 from pathlib import Path
 start = time.perf_counter()
 import slicetime.pipelines.correct as mod
+import slicetime.pipelines.correct_batch as batch
 from slicetime.interfaces.report_json import correct_run_object
 from slicetime.pipelines.executor import available_cpus
 imported = time.perf_counter() - start
@@ -245,7 +246,7 @@ def patch(path, name):
         return
     setattr(owner, attr, timed(name, fn))
 
-patch("audit_paths", "audit (walk, headers, rules)")
+patch("slicetime.pipelines.correct_batch:audit_paths", "audit (walk, headers, rules)")
 patch("VolumeReader.__enter__", "read: open, start decoder, header bytes")
 patch("VolumeReader.read_into", "read: decompress (wait on decoder)")
 patch("VolumeReader.sha256", "read: SHA-256 (wait on its thread)")
@@ -264,14 +265,14 @@ patch("VolumeWriter.__init__", "write: open, start encoder")
 patch("VolumeWriter.write", "write: compress + SHA-256 (feed encoder)")
 patch("VolumeWriter.close", "write: flush encoder + fsync")
 patch("hash_inputs", "provenance: hash sidecars")
-patch("write_description", "provenance: dataset_description")
-patch("write_provenance", "provenance: provenance file")
+patch("slicetime.pipelines.correct_batch:write_description", "provenance: dataset_description")
+patch("slicetime.pipelines.correct_batch:write_provenance", "provenance: provenance file")
 cap = int(sys.argv[4]) if sys.argv[4] else None
 options = mod.CorrectOptions(out=Path(sys.argv[2]), method=sys.argv[3], max_memory=cap,
                              threads=available_cpus())
 rss_before = maxrss()
 began = time.perf_counter()
-result = mod.correct_paths([Path(sys.argv[1])], options)
+result = batch.correct_paths([Path(sys.argv[1])], options)
 total = time.perf_counter() - began
 assert result.counts()["corrected"] == 1, [correct_run_object(r) for r in result.runs]
 print(json.dumps({"imports_s": imported, "correct_paths_s": total,
@@ -287,11 +288,12 @@ PROFILE = """
 import cProfile, sys
 from pathlib import Path
 import slicetime.pipelines.correct as mod
+import slicetime.pipelines.correct_batch as batch
 from slicetime.interfaces.report_json import correct_run_object
 from slicetime.pipelines.executor import available_cpus
 options = mod.CorrectOptions(out=Path(sys.argv[2]), threads=available_cpus())
 profiler = cProfile.Profile()
-result = profiler.runcall(mod.correct_paths, [Path(sys.argv[1])], options)
+result = profiler.runcall(batch.correct_paths, [Path(sys.argv[1])], options)
 profiler.dump_stats(sys.argv[3])
 assert result.counts()["corrected"] == 1, [correct_run_object(r) for r in result.runs]
 """

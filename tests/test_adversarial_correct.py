@@ -26,7 +26,8 @@ from click.testing import CliRunner
 
 from slicetime.interfaces.cli import cli
 from slicetime.pipelines import correct as correct_module
-from slicetime.pipelines.correct import CorrectInterrupted, CorrectOptions, correct_paths
+from slicetime.pipelines.correct import CorrectOptions
+from slicetime.pipelines.correct_batch import CorrectInterrupted, correct_paths
 from slicetime.pipelines.executor import ProcessExecutor
 from slicetime.pipelines.provenance import json_safe
 from slicetime.readers.atomic import TEMP_PREFIX

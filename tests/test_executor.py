@@ -16,7 +16,8 @@ from slicetime.interfaces.cli import cli
 from slicetime.interfaces.report_json import audit_object, dumps
 from slicetime.pipelines import audit as audit_module
 from slicetime.pipelines.audit import audit_paths
-from slicetime.pipelines.correct import CorrectOptions, correct_paths
+from slicetime.pipelines.correct import CorrectOptions
+from slicetime.pipelines.correct_batch import correct_paths
 from slicetime.pipelines.executor import (
     DaskExecutor,
     Executor,
@@ -247,7 +248,7 @@ def test_make_executor_follows_the_options() -> None:
 
 def test_correct_uses_all_cpus_for_a_single_run(tmp_path: Path) -> None:
     # one run in a process pool would waste the other CPUs: it gets them as threads
-    from slicetime.pipelines.correct import _auto_threads
+    from slicetime.pipelines.correct_batch import _auto_threads
     from slicetime.pipelines.executor import available_cpus
 
     assert _auto_threads(ProcessExecutor(2), 2, 1) == available_cpus()

@@ -18,6 +18,7 @@ from click.testing import CliRunner
 
 import slicetime.interfaces.terminal as terminal
 import slicetime.pipelines.correct as correct_module
+import slicetime.pipelines.correct_batch as batch_module
 from slicetime.interfaces.cli import cli
 from slicetime.pipelines.executor import Interrupted
 from slicetime.readers.entities import sidecar_name
@@ -68,7 +69,7 @@ def test_a_very_early_ctrl_c_in_correct_leaves_nothing(tmp_path: Path,
         (out / target).parent.mkdir(parents=True, exist_ok=True)
         raise Interrupted([None] * len(items))
 
-    monkeypatch.setattr(correct_module, "map_chunks", stopped)
+    monkeypatch.setattr(batch_module, "map_chunks", stopped)
     result = CliRunner().invoke(cli, ["correct", str(root), "--out", str(out)])
     assert result.exit_code == 130
     assert "nothing to do" not in result.output  # no summary of zero runs ...

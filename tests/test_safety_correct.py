@@ -19,8 +19,10 @@ from click.testing import CliRunner
 
 from slicetime.interfaces.cli import cli
 from slicetime.pipelines import correct as correct_module
+from slicetime.pipelines import correct_batch as batch_module
 from slicetime.pipelines import provenance as provenance_module
-from slicetime.pipelines.correct import CorrectOptions, correct_paths
+from slicetime.pipelines.correct import CorrectOptions
+from slicetime.pipelines.correct_batch import correct_paths
 from slicetime.readers.atomic import TEMP_PREFIX, folder_lock
 from slicetime.readers.entities import sidecar_name
 from tests.helpers_bids import tree_hashes, write_description
@@ -118,7 +120,7 @@ def test_a_provenance_file_that_cannot_be_written_is_reported_with_exit_1(
         raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
 
     before = tree_hashes(ds)
-    monkeypatch.setattr(correct_module, "write_provenance", full)
+    monkeypatch.setattr(batch_module, "write_provenance", full)
     out = tmp_path / "out"
     code, report, _ = correct_json(ds, "--out", out)
     assert code == 1

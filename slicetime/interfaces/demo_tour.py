@@ -31,7 +31,8 @@ from slicetime.interfaces.terminal import (
     render_show,
 )
 from slicetime.pipelines.audit import audit_one, audit_paths
-from slicetime.pipelines.correct import CorrectOptions, correct_paths
+from slicetime.pipelines.correct import CorrectOptions
+from slicetime.pipelines.correct_batch import correct_paths
 from slicetime.pipelines.demo import STUDY, build_demo_dataset, demo_runs, prepare_output
 from slicetime.pipelines.errors import DOUBT_CODE
 from slicetime.pipelines.fix import apply_plan, plan_fix, reaudit

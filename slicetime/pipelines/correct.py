@@ -25,19 +25,18 @@ For each run (found by the audit's walker), :func:`correct_run` composes:
    acts as the "done" marker) appear under their final names by atomic rename;
    a failure at any point removes the temporary files.
 
-:func:`correct_paths` maps this over a batch and writes the dataset's
-description and provenance file.
+:func:`~slicetime.pipelines.correct_batch.correct_paths` maps this over a batch and
+writes the dataset's description and provenance file.
 """
 
 from __future__ import annotations
 
 import contextlib
-import dataclasses
 import math
 import os
 import time
 from collections import Counter
-from collections.abc import Mapping, Sequence
+from collections.abc import Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -66,7 +65,7 @@ from slicetime.engines.plan import (
 )
 from slicetime.model import Finding, RunRecord, Severity
 from slicetime.numbers import ratio
-from slicetime.pipelines.audit import AuditResult, RunResult, audit_paths
+from slicetime.pipelines.audit import RunResult
 from slicetime.pipelines.errors import (
     CLASH_CODE,
     DOUBT_CODE,
@@ -74,15 +73,7 @@ from slicetime.pipelines.errors import (
     NOT_INTERPOLABLE_CODE,
     SCALING_CODE,
     TOO_FEW_CODE,
-    UNWRITTEN_CODE,
     CorrectionError,
-)
-from slicetime.pipelines.executor import (
-    Executor,
-    Interrupted,
-    Progress,
-    available_cpus,
-    map_chunks,
 )
 from slicetime.pipelines.memory import (
     Budget,
@@ -93,20 +84,15 @@ from slicetime.pipelines.memory import (
 )
 from slicetime.pipelines.outputs import (
     DEFAULT_DESC,
-    check_desc,
     check_output_location,
-    clashing_runs,
-    output_files,
     output_name,
     output_path,
-    prune_empty_folders,
     remove_stale_temporaries,
 )
 from slicetime.pipelines.provenance import (
     PROVENANCE_FILE,
     PROVENANCE_KEY,
     CorrectionFacts,
-    dataset_names,
     dataset_uri,
     entry_of,
     hash_inputs,
@@ -114,23 +100,16 @@ from slicetime.pipelines.provenance import (
     output_sidecar,
     pascal_keys,
     provenance_entry,
-    read_json_object,
     recorded_input,
     up_to_date,
-    write_description,
     write_json_atomic,
-    write_provenance,
 )
 from slicetime.policy.model import AcceptEntry
 from slicetime.readers.atomic import (
-    FolderBusy,
     WriteRefused,
-    folder_lock,
-    link_between,
     make_folders,
     temp_path,
 )
-from slicetime.readers.dataset import find_root
 from slicetime.readers.entities import sidecar_name
 from slicetime.readers.errors import ReadError, is_regular_file
 from slicetime.readers.scratch import (
@@ -147,7 +126,6 @@ from slicetime.readers.volumes import (
     FLOAT32_CODE,
     VolumeReader,
     VolumeWriter,
-    file_sha256,
     patched_prefix,
     scaling,
     scaling_problem,
@@ -689,312 +667,15 @@ def _output_type(
     return np.dtype(np.float32).newbyteorder(header.byte_order), FLOAT32_CODE, 32, None
 
 
-
-# ---------------------------------------------------------------------------
-# batches
-
-
-def _correct_chunk(
-    items: Sequence[tuple[RunResult, str]], options: CorrectOptions
-) -> list[RunOutcome]:
-    return [correct_run(run, options, name) for run, name in items]
-
-
-def correct_paths(
-    paths: Sequence[Path],
-    options: CorrectOptions,
-    *,
-    jobs: int = 1,
-    progress: Progress | None = None,
-    policy_file: Path | None = None,
-    include_derivatives: bool = False,
-    include_sourcedata: bool = False,
-    include_hidden: bool = False,
-    executor: Executor | None = None,
-    verify: bool = False,
-) -> CorrectResult:
-    """Correct every run under ``paths`` into ``options.out``.
-
-    ``verify`` checks each run's claimed slice order against its image data first
-    (the audit's ``verify``): a contradicted claim puts the timing in doubt.
-
-    Raises ``ValueError`` for a bad output location or a dataset whose own lab policy
-    is broken (usage errors) and
-    ``ReadError`` for a missing given path; everything about a single run
-    becomes its outcome.
-    """
-    get_engine(options.method)
-    check_desc(options.desc)
-    audit: AuditResult = audit_paths(
-        paths,
-        include_derivatives=include_derivatives,
-        include_sourcedata=include_sourcedata,
-        include_hidden=include_hidden,
-        policy_file=policy_file,
-        verify=verify,
-        executor=executor if verify else None,
-        jobs=jobs if verify else 1,
-    )
-    broken = audit.policy_problem()
-    if broken is not None:
-        # the lab's policy (its accepted doubts, severities, protocols) decides what may
-        # be corrected: without it correct would judge every run by other rules
-        raise ValueError(f"{broken} (correct does not run without the dataset's lab policy)")
-    options = dataclasses.replace(options, policy_accepts=audit.accepts)
-    roots = sorted({r.record.root for r in audit.runs})
-    given_roots = {str(find_root(Path(p))) for p in paths} | set(audit.roots) | set(roots)
-    check_output_location(
-        options.out, [Path(r) for r in sorted(given_roots)], list(paths),
-        include_derivatives=include_derivatives,
-    )
-    created_out = not options.out.exists()
-    options.out.mkdir(parents=True, exist_ok=True)
-    try:
-        with folder_lock(options.out):
-            return _correct_locked(audit, roots, options, created_out, executor, jobs,
-                                   progress)
-    except FolderBusy:
-        raise ValueError(
-            f"--out {options.out}: another slicetime correct is writing to this folder now; "
-            "run this batch when it has ended"
-        ) from None
-    finally:
-        if created_out:  # nothing was written (a refusal before the batch): no folder left
-            with contextlib.suppress(OSError):
-                options.out.rmdir()
-
-
-def _correct_locked(
-    audit: AuditResult,
-    roots: list[str],
-    options: CorrectOptions,
-    created_out: bool,
-    executor: Executor | None,
-    jobs: int,
-    progress: Progress | None,
-) -> CorrectResult:
-    """The batch, while this process holds the lock of ``--out``: the description's
-    ``DatasetLinks`` and the provenance file are read and rewritten by one batch at a
-    time."""
-    names, links = dataset_names(options.out, roots, mix_inputs=options.mix_inputs)
-    result = CorrectResult(out=str(options.out), omitted=options.omit_leading)
-    result.dataset_findings = [
-        f for f in audit.dataset_findings if f.severity is Severity.ERROR
-    ]
-    clashes = _clash_outcomes(audit.runs, options.desc)
-    remove_stale_temporaries(options.out)
-    if any(r.record.abs_path not in clashes for r in audit.runs):
-        # before any output: a batch killed half way still names its inputs
-        _describe(options.out, roots, links, options)
-    items = [(run, names[run.record.root]) for run in audit.runs
-             if run.record.abs_path not in clashes]
-    started = time.time()
-    options = dataclasses.replace(options, batch_started=started)
-    if options.threads <= 0:
-        options = dataclasses.replace(options, threads=_auto_threads(executor, jobs, len(items)))
-    job = _ChunkJob(options)
-    try:
-        done = map_chunks(
-            job,
-            items,
-            lost=_lost_run,
-            executor=executor,
-            jobs=jobs,
-            chunk_size=1,
-            progress=progress,
-            failed_of=lambda outcome: not outcome.ok,
-        )
-    except Interrupted as stop:
-        # the workers are gone: what is on disk now is final; report exactly that
-        remove_stale_temporaries(options.out)
-        finished: list[RunOutcome] = []
-        for item, outcome in zip(items, stop.results, strict=True):
-            found = outcome if outcome is not None else _found_on_disk(item, options, started)
-            if found is not None:
-                finished.append(found)
-        result.runs = _in_input_order(audit.runs, finished, clashes)
-        _withdraw_stale(options, audit.runs, result.runs)
-        done_paths = {r.path for r in finished}
-        _finish(options, roots, links, result, created_out,
-                unfinished=[run.record.path for run, _ in items
-                            if run.record.path not in done_paths])
-        raise CorrectInterrupted(result, len(items) - len(finished)) from None
-    result.runs = _in_input_order(audit.runs, done, clashes)
-    _withdraw_stale(options, audit.runs, result.runs)
-    remove_stale_temporaries(options.out)  # of a worker that was lost
-    _finish(options, roots, links, result, created_out)
-    return result
-
-
-def _in_input_order(
-    runs: Sequence[RunResult], outcomes: Sequence[RunOutcome], clashes: dict[str, RunOutcome]
-) -> list[RunOutcome]:
-    by_key = {(o.root, o.path): o for o in outcomes}
-    ordered = []
-    for run in runs:
-        record = run.record
-        outcome = clashes.get(record.abs_path) or by_key.get((record.root, record.path))
-        if outcome is not None:
-            ordered.append(outcome)
-    return ordered
-
-
-def _found_on_disk(
-    item: tuple[RunResult, str], options: CorrectOptions, since: float
-) -> RunOutcome | None:
-    """After Ctrl-C, a run whose worker was stopped: ``corrected`` when this batch put
-    its image and sidecar in place (the image matches the sidecar's checksum), else
-    nothing, after removing a sidecar or image of this batch that lacks its partner."""
-    record = item[0].record
-    rel_out = output_path(record.path, options.desc)
-    if rel_out is None:
-        return None
-    image, sidecar = output_files(options.out, rel_out.as_posix())
-    if link_between(sidecar, options.out) is not None or link_between(image, options.out):
-        return None  # reached through a link: this batch wrote nothing there
-
-    def fresh(path: Path) -> bool:
-        try:
-            return path.stat().st_mtime >= since - 0.05
-        except OSError:
-            return False
-
-    if not (fresh(image) or fresh(sidecar)):
-        return None  # untouched by this batch: left as it was
-    content = read_json_object(sidecar)
-    entry = entry_of(content, rel_out.as_posix()) if content is not None else None
-    output = entry.get("Output") if entry is not None else None
-    if (is_regular_file(image) and isinstance(output, dict)
-            and output.get("SHA256") == file_sha256(image)
-            and recorded_input(sidecar) == (dataset_uri(record.root), json_safe(record.path))):
-        outcome = RunOutcome(record.path, record.root, "corrected", output=rel_out.as_posix())
-        outcome.provenance = entry
-        return outcome
-    for path in (image, sidecar):
-        if fresh(path):
-            with contextlib.suppress(OSError):
-                os.unlink(path)
-    return None
-
-
-def _withdraw_stale(
-    options: CorrectOptions, runs: Sequence[RunResult], outcomes: Sequence[RunOutcome]
-) -> None:
-    """A run refused or failed now whose earlier output is still in ``out`` (written
-    from this very input): remove that output, so nothing stale looks valid, and
-    say so in the run's reason and in the provenance file (``Removed``)."""
-    for outcome in outcomes:
-        if outcome.ok:
-            continue
-        rel_out = output_path(outcome.path, options.desc)
-        if rel_out is None:
-            continue
-        image, sidecar = output_files(options.out, rel_out.as_posix())
-        if link_between(sidecar, options.out) is not None or link_between(image, options.out):
-            continue  # reached through a link: not in --out, never removed
-        if recorded_input(sidecar) != (dataset_uri(outcome.root), json_safe(outcome.path)):
-            continue  # not an output of this run (or not one slicetime wrote)
-        for path in (image, sidecar):
-            with contextlib.suppress(FileNotFoundError):
-                os.unlink(path)
-        outcome.removed = rel_out.as_posix()
-        note = f"its earlier output {rel_out.as_posix()} was removed, as it no longer holds"
-        outcome.reason = f"{outcome.reason}; {note}" if outcome.reason else note
-
-
-
-def _clash_outcomes(runs: Sequence[RunResult], desc: str) -> dict[str, RunOutcome]:
-    """The runs refused because they would be written onto one output."""
-    found = clashing_runs((r.record for r in runs), desc)
-    return {
-        r.record.abs_path: RunOutcome(r.record.path, r.record.root, "refused",
-                                      reason=found[r.record.abs_path].message,
-                                      blocking=[found[r.record.abs_path]])
-        for r in runs if r.record.abs_path in found
-    }
-
-
-def _auto_threads(executor: Executor | None, jobs: int, n_runs: int) -> int:
-    """Threads per run so that the runs corrected at once share the CPUs."""
-    if executor is not None and executor.name == "dask":
-        return 1  # a Dask worker runs as many tasks as it has threads
-    at_once = getattr(executor, "jobs", jobs) if executor is not None else jobs
-    return max(1, available_cpus() // max(1, min(at_once, n_runs)))
-
-
-class CorrectInterrupted(KeyboardInterrupt):
-    """Ctrl-C during a batch: ``result`` holds the runs that finished."""
-
-    def __init__(self, result: CorrectResult, not_finished: int) -> None:
-        super().__init__("interrupted")
-        self.result = result
-        self.not_finished = not_finished
-
-
-def _finish(
-    options: CorrectOptions,
-    roots: Sequence[str],
-    links: dict[str, str],
-    result: CorrectResult,
-    created_out: bool,
-    unfinished: Sequence[str] = (),
-) -> None:
-    """Describe the output when it holds corrected runs; else remove what this batch
-    made. The folders of runs that produced nothing (failed, refused, or ``unfinished``
-    when the batch was interrupted) are removed when empty."""
-    withdrawn = any(r.removed for r in result.runs)
-    if any(r.ok for r in result.runs) or withdrawn:
-        try:
-            _describe(options.out, roots, links, options)
-            write_provenance(options.out, result.runs)
-        except OSError as exc:  # a full disk: the runs in place are still reported
-            result.dataset_findings.append(make_finding(
-                UNWRITTEN_CODE,
-                f"{options.out}: the description and provenance file could not be brought "
-                f"up to date ({exc.strerror or exc}); rerun when the folder is writable",
-                file=str(options.out),
-            ))
-    elif created_out:  # nothing was written: leave no folder behind
-        for name in ("dataset_description.json", PROVENANCE_FILE):
-            with contextlib.suppress(FileNotFoundError):
-                os.unlink(options.out / name)
-    prune_empty_folders(options.out, [*(r.path for r in result.runs if not r.ok), *unfinished],
-                        options.desc, remove_out=created_out)
-
-
-def _lost_run(item: tuple[RunResult, str], why: str) -> RunOutcome:
-    record = item[0].record
-    return RunOutcome(record.path, record.root, "failed", reason=f"{record.path}: {why}")
-
-
-
-@dataclass(frozen=True)
-class _ChunkJob:
-    options: CorrectOptions
-
-    def __call__(self, items: Sequence[tuple[RunResult, str]]) -> list[RunOutcome]:
-        return _correct_chunk(items, self.options)
-
-
-
-def _describe(
-    out: Path, roots: Sequence[str], links: dict[str, str], options: CorrectOptions
-) -> None:
-    write_description(out, roots, links, get_engine(options.method),
-                      options.reference.describe())
-
-
 __all__ = [
     "DEFAULT_DESC",
     "PROVENANCE_FILE",
     "PROVENANCE_KEY",
-    "CorrectInterrupted",
     "CorrectOptions",
     "CorrectResult",
     "CorrectionError",
     "RunOutcome",
     "check_output_location",
-    "correct_paths",
     "correct_run",
     "output_name",
     "parse_size",

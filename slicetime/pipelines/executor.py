@@ -31,7 +31,7 @@ import contextlib
 import itertools
 import os
 import time
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass, field
 from typing import TYPE_CHECKING, Any, Generic, TypeVar
 
@@ -209,7 +209,7 @@ class ProcessExecutor(Executor):
                 futures[future] = i
                 waiting.add(future)
 
-        try:
+        with _owned(pool):
             try:
                 submit(window)
             except BrokenProcessPool:  # a worker died before the window was filled
@@ -229,11 +229,6 @@ class ProcessExecutor(Executor):
                     except BrokenProcessPool:  # another worker died meanwhile
                         return True
             return False
-        except BaseException:
-            _stop_workers(pool)
-            raise
-        finally:
-            pool.shutdown(wait=True, cancel_futures=True)
 
     def _alone(self, job: Job[T, R], tracker: _Tracker[R], index: int, lost: Lost[T, R]) -> None:
         """Rerun a suspect chunk in a pool of its own; if it kills that worker too, run its
@@ -259,15 +254,11 @@ class ProcessExecutor(Executor):
             max_workers=1, initializer=_remember_flags,
             initargs=(_shared_flags(1), os.getpid()),
         )
-        try:
-            return pool.submit(_flagged, job, chunk, 0).result()
-        except BrokenProcessPool:
-            return None
-        except BaseException:
-            _stop_workers(pool)
-            raise
-        finally:
-            pool.shutdown(wait=True, cancel_futures=True)
+        with _owned(pool):
+            try:
+                return pool.submit(_flagged, job, chunk, 0).result()
+            except BrokenProcessPool:
+                return None
 
 
 #: per pool: one shared byte per chunk, set by the worker as the chunk starts
@@ -353,6 +344,19 @@ def _flagged(job: Job[T, R], chunk: Sequence[T], index: int) -> list[R]:
         os._exit(STOPPED_STATUS)  # the job's clean-up has run; take no further work
     finally:
         _IN_JOB = False
+
+
+@contextlib.contextmanager
+def _owned(pool: ProcessPoolExecutor) -> Iterator[None]:
+    """The lifetime of a pool this process made: on any error (Ctrl-C included) its
+    workers are stopped first; in every case it is shut down at the end."""
+    try:
+        yield
+    except BaseException:
+        _stop_workers(pool)
+        raise
+    finally:
+        pool.shutdown(wait=True, cancel_futures=True)
 
 
 def _stop_workers(pool: ProcessPoolExecutor) -> None:

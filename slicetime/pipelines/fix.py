@@ -39,17 +39,19 @@ from slicetime.numbers import tidy_json
 from slicetime.pipelines.audit import AuditResult, audit_paths
 from slicetime.pipelines.executor import Executor
 from slicetime.pipelines.fix_layout import REMOVE, check_fields, layout_moves, value_key
-from slicetime.pipelines.json_splice import DELETE, Layout, scan, splice
-from slicetime.pipelines.transaction import (
-    ApplyResult,
-    Interrupted,
+from slicetime.pipelines.journal import (
     TransactionError,
-    UndoResult,
-    apply_changes,
     check_root,
     confinement_problem,
     current_sha,
     read_document,
+)
+from slicetime.pipelines.json_splice import DELETE, Layout, scan, splice
+from slicetime.pipelines.transaction import (
+    ApplyResult,
+    Interrupted,
+    UndoResult,
+    apply_changes,
     recover,
     undo,
 )

@@ -33,7 +33,7 @@ from __future__ import annotations
 import errno
 import os
 import stat
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 from pathlib import Path
 from typing import Any, BinaryIO
 
@@ -211,20 +211,22 @@ def is_regular_file(path: str | os.PathLike[str]) -> bool:
         return False
 
 
+#: the kinds of file a ``st_mode`` can describe, in words, in the order they are tested
+_FILE_KINDS: tuple[tuple[Callable[[int], bool], str], ...] = (
+    (stat.S_ISREG, "a regular file"),
+    (stat.S_ISDIR, "a directory"),
+    (stat.S_ISFIFO, "a FIFO (named pipe)"),
+    (stat.S_ISCHR, "a character device"),
+    (stat.S_ISBLK, "a block device"),
+    (stat.S_ISSOCK, "a socket"),
+)
+
+
 def file_kind(mode: int) -> str:
     """What kind of file a ``st_mode`` describes, in words (for messages)."""
-    if stat.S_ISREG(mode):
-        return "a regular file"
-    if stat.S_ISDIR(mode):
-        return "a directory"
-    if stat.S_ISFIFO(mode):
-        return "a FIFO (named pipe)"
-    if stat.S_ISCHR(mode):
-        return "a character device"
-    if stat.S_ISBLK(mode):
-        return "a block device"
-    if stat.S_ISSOCK(mode):
-        return "a socket"
+    for test, words in _FILE_KINDS:
+        if test(mode):
+            return words
     return "not a regular file"
 
 

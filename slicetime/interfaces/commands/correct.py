@@ -96,7 +96,8 @@ def correct(
     from slicetime.interfaces.report_json import correct_object, dumps
     from slicetime.interfaces.safe_text import xml_safe
     from slicetime.interfaces.terminal import make_console, progress_reporter, render_correct
-    from slicetime.pipelines.correct import CorrectInterrupted, CorrectOptions, correct_paths
+    from slicetime.pipelines.correct import CorrectOptions
+    from slicetime.pipelines.correct_batch import CorrectInterrupted, correct_paths
     from slicetime.pipelines.memory import parse_size
     from slicetime.rules.correction import parse_accept
     from slicetime.words import count

@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import shlex
 import sys
+from collections.abc import Iterable
 from pathlib import Path
 
 import click
@@ -146,12 +147,9 @@ def fix(
         where = f"{exc.filename}: " if exc.filename else ""
         raise UserError(xml_safe(f"{where}cannot write ({exc.strerror or exc}); nothing in "
                                  "the dataset was changed")) from None
-    for line in applied.recovered:
-        click.echo(f"slicetime: {xml_safe(line)}", err=True)
-    for name in applied.written:
-        click.echo(f"written   {xml_safe(name)}")
-    for line in applied.refused:
-        click.echo(f"refused   {xml_safe(line)}")
+    _say("slicetime: ", applied.recovered, err=True)
+    _say("written   ", applied.written)
+    _say("refused   ", applied.refused)
     if applied.refused:
         click.echo(f"nothing was written: {len(applied.refused)} of {len(plan.changes)} files "
                    "would be refused, and a plan is applied whole or not at all")
@@ -178,6 +176,14 @@ def fix(
     sys.exit(1 if applied.refused or plan.unplanned else 0)
 
 
+def _say(label: str, items: Iterable[str], note: str = "", *, err: bool = False) -> None:
+    """One line per item: ``label``, the item made safe to print, then ``note``."""
+    from slicetime.interfaces.safe_text import xml_safe
+
+    for item in items:
+        click.echo(f"{label}{xml_safe(item)}{note}", err=err)
+
+
 def _fix_undo(journal: Path, at: Path | None) -> None:
     """``fix --undo JOURNAL [PATH]``: restore (the dataset at PATH when it was moved or
     copied), then say exactly what was and was not done."""
@@ -189,16 +195,11 @@ def _fix_undo(journal: Path, at: Path | None) -> None:
     except OSError as exc:
         raise UserError(xml_safe(f"{journal}: cannot undo ({exc.strerror or exc}); nothing "
                                  "was restored")) from None
-    for line in undone.recovered:
-        click.echo(f"slicetime: {xml_safe(line)}", err=True)
-    for name in undone.restored:
-        click.echo(f"restored  {xml_safe(name)}")
-    for name in undone.already:
-        click.echo(f"unchanged {xml_safe(name)}  (already restored)")
-    for name in undone.never_written:
-        click.echo(f"unchanged {xml_safe(name)}  (never written: the apply stopped before it)")
-    for line in undone.refused:
-        click.echo(f"refused   {xml_safe(line)}")
+    _say("slicetime: ", undone.recovered, err=True)
+    _say("restored  ", undone.restored)
+    _say("unchanged ", undone.already, "  (already restored)")
+    _say("unchanged ", undone.never_written, "  (never written: the apply stopped before it)")
+    _say("refused   ", undone.refused)
     if undone.failure is not None:
         click.echo(f"slicetime: {xml_safe(undone.failure)}", err=True)
         sys.exit(2)
