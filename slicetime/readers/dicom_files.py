@@ -23,6 +23,8 @@ for a series by itself, and a folder that mixes several series is said so.
 
 from __future__ import annotations
 
+import contextlib
+import functools
 import gzip
 import io
 import os
@@ -285,6 +287,32 @@ class _Joined(io.RawIOBase):
         return out
 
 
+def _entries(path: str) -> Iterator[tuple[str, bool, Callable[[], Any]]]:
+    """(name, is a regular file, a function that opens it) of every member of a zip or
+    tar archive, in archive order; a tar member must be opened before the next one is
+    asked for (the archive is read as one stream). The opened value is a context
+    manager giving a stream, or None for a member with no content."""
+    if path.lower().endswith(".zip"):
+        with zipfile.ZipFile(path) as packed:
+            for info in packed.infolist():
+                yield info.filename, not info.is_dir(), functools.partial(packed.open, info)
+        return
+    with tarfile.open(path, "r|*") as archive:
+        for entry in archive:
+            yield (entry.name, entry.isfile(),
+                   functools.partial(_tar_member, archive, entry))
+
+
+@contextlib.contextmanager
+def _tar_member(archive: tarfile.TarFile, entry: tarfile.TarInfo) -> Iterator[Any]:
+    extracted = archive.extractfile(entry)
+    try:
+        yield extracted
+    finally:
+        if extracted is not None:
+            extracted.close()
+
+
 def _archive_members(path: str, shown: str, only: str | None = None,
                      problems: list[ReadError] | None = None
                      ) -> Iterator[tuple[str, bytes, Any]]:
@@ -324,36 +352,20 @@ def _archive_members(path: str, shown: str, only: str | None = None,
             return None
 
     try:
-        if path.lower().endswith(".zip"):
-            with zipfile.ZipFile(path) as packed:
-                for info in packed.infolist():
-                    if given_up():
-                        return
-                    if not counted(info.filename, not info.is_dir()):
-                        continue
-                    with packed.open(info) as stream:
-                        got = member(stream, info.filename)
-                    if got is None:
-                        others += 1
-                        continue
-                    found += 1
-                    yield info.filename, got[0], got[1]
-            return
-        with tarfile.open(path, "r|*") as archive:
-            for entry in archive:
-                if given_up():
-                    return
-                if not counted(entry.name, entry.isfile()):
-                    continue
-                extracted = archive.extractfile(entry)
-                if extracted is None:
-                    continue
-                got = member(extracted, entry.name)
-                if got is None:
-                    others += 1
-                    continue
-                found += 1
-                yield entry.name, got[0], got[1]
+        for name, is_file, opened in _entries(path):
+            if given_up():
+                return
+            if not counted(name, is_file):
+                continue
+            with opened() as stream:
+                got = None if stream is None else member(stream, name)
+            if stream is None:
+                continue
+            if got is None:
+                others += 1
+                continue
+            found += 1
+            yield name, got[0], got[1]
     except ReadError:
         raise
     except (OSError, EOFError, zipfile.BadZipFile, tarfile.TarError) as exc:
