@@ -230,9 +230,9 @@ def test_progress_reports_failures() -> None:
 
 
 def test_progress_lines_off_a_terminal(capsys: pytest.CaptureFixture[str]) -> None:
-    from slicetime.interfaces.terminal import _periodic_lines
+    from slicetime.interfaces.progress import periodic_lines
 
-    update = _periodic_lines("auditing", every=0.0)
+    update = periodic_lines("auditing", every=0.0)
     update(5, 20, 1)
     update(20, 20, 1)  # the end is left to the final report
     lines = capsys.readouterr().err.splitlines()

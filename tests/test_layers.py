@@ -146,3 +146,44 @@ def test_the_checker_sees_an_upward_import(tmp_path: Path) -> None:
     found = imports_of(fake, "slicetime.rules.bad")
     assert found == [("slicetime.pipelines.audit", 2, ["audit_paths"])]
     assert layer_of(found[0][0]) == 6 and layer_of("slicetime.rules.bad") == 4
+
+
+def private_imports(path: Path, module: str) -> list[str]:
+    """Names with a leading underscore that the file takes from another slicetime module:
+    by import, or as an attribute of an imported slicetime module (``junit._folder``)."""
+    tree = ast.parse(path.read_text(encoding="utf-8"))
+    found = [f"{path.name}:{line}: {name} from {target}"
+             for target, line, names in imports_of(path, module) if target != module
+             for name in names if name.startswith("_") and not name.startswith("__")]
+    modules = {alias.asname or alias.name.rpartition(".")[2]
+               for node in ast.walk(tree) if isinstance(node, ast.ImportFrom)
+               and (node.module or "").startswith("slicetime") for alias in node.names
+               if (PACKAGE.parent / f"{node.module}.{alias.name}".replace(".", "/")
+                   ).with_suffix(".py").exists()}
+    found += [f"{path.name}:{node.lineno}: {node.value.id}.{node.attr}"
+              for node in ast.walk(tree) if isinstance(node, ast.Attribute)
+              and isinstance(node.value, ast.Name) and node.value.id in modules
+              and node.attr.startswith("_") and not node.attr.startswith("__")]
+    return found
+
+
+def test_no_module_imports_another_modules_private_name() -> None:
+    """A leading underscore marks a name internal to its module (PEP 8, "Descriptive:
+    Naming Styles": "weak internal use indicator"); a name another module needs is
+    public in its owner."""
+    found = [hit for path in sorted(PACKAGE.rglob("*.py"))
+             for hit in private_imports(path, module_name(path))]
+    assert not found, "private names used across modules:\n" + "\n".join(found)
+
+
+def test_the_checker_sees_a_private_import(tmp_path: Path) -> None:
+    """Not vacuous: an imported private function and a private attribute of an
+    imported module are both caught."""
+    fake = tmp_path / "slicetime" / "interfaces" / "bad.py"
+    fake.parent.mkdir(parents=True)
+    fake.write_text("from slicetime.pipelines.journal import _hidden\n"
+                    "from slicetime.interfaces import report_junit as junit\n"
+                    "junit._inner('x')\n")
+    found = private_imports(fake, "slicetime.interfaces.bad")
+    assert found == ["bad.py:1: _hidden from slicetime.pipelines.journal",
+                     "bad.py:3: junit._inner"]

@@ -64,11 +64,11 @@ import numpy as np
 from slicetime.engines.verify_signal import (
     ChannelLayout,
     Prepared,
-    _fft,
     channel_sums,
     make_layout,
     prepare,
     remove_steps,
+    scipy_fft,
     step_transitions,
     taper,
 )
@@ -142,7 +142,7 @@ class Spectra:
 
 def region_spectra(prepared: Prepared, n_slices: int, region_of: np.ndarray) -> Spectra:
     """Slice spectra of the channels in region 0 and in region 1 (``region_of`` per channel)."""
-    x = _fft().idct(prepared.coeffs, type=2, axis=1)
+    x = scipy_fft().idct(prepared.coeffs, type=2, axis=1)
     n = x.shape[1]
     x = x * taper(n)[None, :]
     transform = np.fft.rfft(x, axis=1)[:, 1:]

@@ -99,7 +99,8 @@ def channel_sums(batch: np.ndarray, layout: ChannelLayout) -> np.ndarray:
 # --------------------------------------------------------------------------- alignment
 
 
-def _fft() -> Any:
+def scipy_fft() -> Any:
+    """scipy.fft, imported on first use (a large import)."""
     import scipy.fft
 
     return scipy.fft
@@ -165,7 +166,7 @@ def prepare(courses: np.ndarray, repetition_time: float, slice_of: np.ndarray, *
     the high-pass keep zero coefficients (they add nothing to any score)."""
     x = remove_steps(np.asarray(courses, dtype=np.float64), np.asarray(slice_of))
     n = x.shape[1]
-    coeffs = _fft().dct(x, type=2, axis=1)
+    coeffs = scipy_fft().dct(x, type=2, axis=1)
     cut = max(1, math.ceil(highpass * 2.0 * n * repetition_time))
     coeffs[:, :cut] = 0.0
     # variance over time of the series a coefficient vector describes (scipy's DCT-II

@@ -15,7 +15,7 @@ def progress_reporter(
     """Progress on stderr: a bar (runs done, failures, time left) on a terminal; on
     anything else (CI logs, batch jobs) one line every ``every`` seconds."""
     if not sys.stderr.isatty():
-        yield _periodic_lines(what, every)
+        yield periodic_lines(what, every)
         return
     from rich.console import Console
     from rich.progress import (
@@ -38,7 +38,9 @@ def progress_reporter(
         yield update
 
 
-def _periodic_lines(what: str, every: float) -> Callable[[int, int, int], None]:
+def periodic_lines(what: str, every: float) -> Callable[[int, int, int], None]:
+    """A progress callback that prints one plain line every ``every`` seconds (none
+    for the last run)."""
     started = time.monotonic()
     last = [started]
 

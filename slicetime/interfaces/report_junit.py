@@ -63,7 +63,8 @@ SUITE_NAME = "slicetime audit"
 _MAX_MESSAGE = 1000  # characters kept of a message in the ``message`` attribute
 
 
-def _folder(path: str) -> str:
+def folder_of(path: str) -> str:
+    """The folder part of a report path (``.`` for a file at the root): a test class."""
     folder, sep, _name = path.rpartition("/")
     return folder if sep and folder else "."
 
@@ -97,7 +98,7 @@ def _note_line(finding: Mapping[str, Any]) -> str:
     return line
 
 
-def _testcase(parent: ET.Element, classname: str, name: str,
+def add_testcase(parent: ET.Element, classname: str, name: str,
               findings: Sequence[Mapping[str, Any]], fail_on: FailOn,
               more_out: str | None = None) -> bool:
     """Add one test case (its findings as the report's JSON objects); True when it has a

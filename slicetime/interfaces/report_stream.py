@@ -40,7 +40,7 @@ from slicetime.interfaces.grouping import (
     listed_paths,
     runs_phrase,
 )
-from slicetime.interfaces.safe_text import _escape, xml_safe
+from slicetime.interfaces.safe_text import escape_char, xml_safe
 from slicetime.model import Counts, FailOn, Finding, Scheme, Severity
 from slicetime.numbers import fixed, json_times, plain, secs
 from slicetime.numbers import shown as shown_number
@@ -54,7 +54,7 @@ _SURROGATE = re.compile("[\ud800-\udfff]")
 
 def _visible(match: re.Match[str]) -> str:
     # inside an encoded JSON string: a backslash (escaped) and the visible escape
-    return "\\" + _escape(match)
+    return "\\" + escape_char(match)
 
 
 def encode(value: Any) -> str:
@@ -198,9 +198,9 @@ class MemorySource(ReportSource):
     """A finished :class:`AuditResult` (every finding already in its runs)."""
 
     def __init__(self, result: AuditResult, root_given: str) -> None:
-        from slicetime.pipelines.audit import _Interner
+        from slicetime.pipelines.audit_facts import Interner
 
-        shared = _Interner()
+        shared = Interner()
         totals = AuditTotals(roots=list(result.roots), names=dataset_names(result.roots),
                              policies=dict(result.policies),
                              dataset_findings=list(result.dataset_findings),
@@ -738,23 +738,23 @@ def write_junit(source: ReportSource, out: IO[str], *, fail_on: str) -> None:
         for index, obj in source.objects(wanted.__contains__) if members else ():
             holder = ET.Element("x")
             path = obj["path"]
-            folder = junit._folder(path)
+            folder = junit.folder_of(path)
             classname = f"{name}/{folder}" if several and name else folder
-            junit._testcase(holder, classname, path, grouping.own(index, obj["findings"]),
+            junit.add_testcase(holder, classname, path, grouping.own(index, obj["findings"]),
                             threshold)
             _write_element(out, holder[0], ET)
         for group in shared_of[root]:
             holder = ET.Element("x")
             file = group.finding["file"]
-            folder = junit._folder(file)
+            folder = junit.folder_of(file)
             classname = f"{name}/{folder}" if several and name else folder
-            junit._testcase(holder, classname, f"{file}: {group.finding['code']}",
+            junit.add_testcase(holder, classname, f"{file}: {group.finding['code']}",
                             [group.finding], threshold,
                             more_out=shared_runs_text(group, grouping, totals))
             _write_element(out, holder[0], ET)
         if with_dataset:
             holder = ET.Element("x")
-            junit._testcase(holder, ".", junit.DATASET_CASE,
+            junit.add_testcase(holder, ".", junit.DATASET_CASE,
                             [f.to_json() for f in totals.dataset_findings], threshold)
             _write_element(out, holder[0], ET)
         out.write("  </testsuite>\n")

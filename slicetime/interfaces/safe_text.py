@@ -25,7 +25,8 @@ _UNSAFE_LINE = re.compile(f"[\x00-\x1f\x7f-\x9f{_BIDI}\ud800-\udfff\ufffe\uffff]
 _NAMED = {"\t": "\\t", "\n": "\\n", "\r": "\\r"}
 
 
-def _escape(match: re.Match[str]) -> str:
+def escape_char(match: re.Match[str]) -> str:
+    """The visible backslash escape of one matched unsafe character."""
     char = match.group(0)
     if char in _NAMED:
         return _NAMED[char]
@@ -44,7 +45,7 @@ def xml_safe(text: object, *, one_line: bool = True) -> str:
     tabs and line breaks do too (use it for attributes and single fields).
     """
     value = text if isinstance(text, str) else str(text)
-    return (_UNSAFE_LINE if one_line else _UNSAFE_TEXT).sub(_escape, value)
+    return (_UNSAFE_LINE if one_line else _UNSAFE_TEXT).sub(escape_char, value)
 
 
 _SURROGATE = re.compile("[\ud800-\udfff]")
@@ -57,7 +58,7 @@ def sanitise(value: Any) -> Any:
     file names that are not UTF-8) are replaced, by visible ``\\xNN`` escapes.
     """
     if isinstance(value, str):
-        return _SURROGATE.sub(_escape, value) if _SURROGATE.search(value) else value
+        return _SURROGATE.sub(escape_char, value) if _SURROGATE.search(value) else value
     if isinstance(value, dict):
         return {sanitise(k): sanitise(v) for k, v in value.items()}
     if isinstance(value, list | tuple):

@@ -16,10 +16,7 @@ from rich.text import Text
 
 from slicetime.interfaces import screen
 from slicetime.interfaces.diagram import order_diagram
-from slicetime.interfaces.progress import (  # noqa: F401 (re-exported)
-    _periodic_lines,
-    progress_reporter,
-)
+from slicetime.interfaces.progress import progress_reporter  # noqa: F401 (re-exported)
 from slicetime.interfaces.safe_text import xml_safe
 from slicetime.model import Finding, Severity
 from slicetime.numbers import duration, secs

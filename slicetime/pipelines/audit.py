@@ -22,7 +22,7 @@ from slicetime.model import (
     Severity,
 )
 from slicetime.model_source import SourceEvidence
-from slicetime.pipelines.audit_facts import RunFacts, _Interner
+from slicetime.pipelines.audit_facts import Interner, RunFacts
 from slicetime.pipelines.errors import NoRunsError
 from slicetime.pipelines.executor import (
     Executor,
@@ -365,7 +365,7 @@ def audit_stream(
     if prepare is not None:
         job = functools.partial(_prepared_chunk, job=job, prepare=prepare)
         lost = functools.partial(_prepared_lost, prepare=prepare)
-    shared = _Interner()
+    shared = Interner()
     total = len(targets)
     done_before = failed_before = 0
     counts = totals.counts
@@ -445,7 +445,7 @@ class _Prepared:
 
 
 def _prepare(result: RunResult, prepare: Callable[[RunResult], Any],
-             shared: _Interner) -> _Prepared:
+             shared: Interner) -> _Prepared:
     return _Prepared(RunFacts(result.record, Counts.of(result.findings), shared,
                               result.findings),
                      len(result.ignored), _not_processed(result), prepare(result))
@@ -455,13 +455,13 @@ def _prepared_chunk(targets: Sequence[tuple[Path, Path]], *,
                     job: Callable[[Sequence[tuple[Path, Path]]], list[RunResult]],
                     prepare: Callable[[RunResult], Any]) -> list[_Prepared]:
     # one interner per chunk: equal values of the chunk's runs are sent once
-    shared = _Interner()
+    shared = Interner()
     return [_prepare(result, prepare, shared) for result in job(targets)]
 
 
 def _prepared_lost(item: tuple[Path, Path], why: str, *,
                    prepare: Callable[[RunResult], Any]) -> _Prepared:
-    return _prepare(_lost_target(item, why), prepare, _Interner())
+    return _prepare(_lost_target(item, why), prepare, Interner())
 
 
 def _itself(result: RunResult) -> RunResult:

@@ -43,7 +43,7 @@ class RunFacts(TimingViews):
     __slots__ = ("_abs", "_sources", "content_missing", "counts", "datatype", "entities",
                  "fold_roots", "header", "path", "root", "scheme", "suffix", "timing")
 
-    def __init__(self, record: RunRecord, counts: Counts, shared: _Interner,
+    def __init__(self, record: RunRecord, counts: Counts, shared: Interner,
                  findings: Sequence[Finding] = ()) -> None:
         self.path = record.path
         self.root = shared.text(record.root)
@@ -98,7 +98,7 @@ _HEADER_KEY = operator.attrgetter(
     *[f.name for f in dataclasses.fields(HeaderInfo) if f.name != "file_size"])
 
 
-class _Interner:
+class Interner:
     """One shared instance per distinct value, so equal facts cost memory once."""
 
     def __init__(self) -> None:

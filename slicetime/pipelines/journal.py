@@ -184,7 +184,8 @@ def root_identity(root: str | Path) -> str | None:
 
 
 @dataclass
-class _Journal:
+class Journal:
+    """A fix journal as read back: its status, roots, temp token and entries."""
     path: Path
     status: str
     roots: list[str]
@@ -234,7 +235,7 @@ def _place_roots(content: dict[str, Any], where: Path, at: Path | None) -> dict[
     return placed
 
 
-def _read_journal(journal_path: Path, at: Path | None = None) -> _Journal:
+def read_journal(journal_path: Path, at: Path | None = None) -> Journal:
     """A journal valid against its shipped schema, its roots placed
     (:func:`_place_roots`), every entry then checked against the file system: an
     entry out of bounds is refused with its reason, the others are kept."""
@@ -297,13 +298,13 @@ def _read_journal(journal_path: Path, at: Path | None = None) -> _Journal:
                 continue
             entry.link_target = target
         entries.append(entry)
-    return _Journal(journal_path, content["status"], list(placed.values()),
+    return Journal(journal_path, content["status"], list(placed.values()),
                     content.get("temp_token"), entries,
                     list(content.get("root_ids") or [None] * len(placed)), refused,
                     moved=any(k != v for k, v in placed.items()))
 
 
-def _backup_bytes(entry: JournalEntry, backup: Path) -> bytes:
+def backup_bytes(entry: JournalEntry, backup: Path) -> bytes:
     """The backup of ``entry``, checked against its recorded SHA-256
     (:class:`TransactionError` if not)."""
     assert entry.backup is not None
@@ -324,7 +325,7 @@ def _backup_bytes(entry: JournalEntry, backup: Path) -> bytes:
     return data
 
 
-def _state(entry: JournalEntry) -> str:
+def entry_state(entry: JournalEntry) -> str:
     """``before``, ``after`` or ``other``: where the file stands against the journal."""
     path = entry.path
     if path.is_symlink():

@@ -42,12 +42,12 @@ from slicetime.pipelines.journal import (
     JournalEntry,
     PlannedWrite,
     TransactionError,
-    _backup_bytes,
-    _read_journal,
-    _state,
+    backup_bytes,
     confinement_problem,
     current_sha,
+    entry_state,
     read_document,
+    read_journal,
     root_identity,
     sha256_of,
 )
@@ -177,7 +177,7 @@ def _finish_rollback(journal_path: Path) -> str:
     """Roll back the files an interrupted apply wrote (its journal says "prepared");
     a journal that says "applied" was complete: only its temporary files go."""
     try:
-        journal = _read_journal(journal_path)
+        journal = read_journal(journal_path)
     except TransactionError as exc:
         return (f"an earlier fix --apply was interrupted, but its journal cannot be used "
                 f"({exc}); check the files it names by hand")
@@ -202,7 +202,7 @@ def _put_back(entries: Sequence[JournalEntry], backup: Path,
     put_back: list[str] = []
     stuck: list[str] = []
     for n, entry in reversed(list(enumerate(entries))):
-        if _state(entry) != "after":
+        if entry_state(entry) != "after":
             continue
         try:
             _restore(entry, backup, _temp_tag(token or secrets.token_hex(8), n))
@@ -553,7 +553,7 @@ def _restore(entry: JournalEntry, backup: Path, tag: str) -> None:
         os.symlink(entry.link_target, tmp)
         os.replace(tmp, path)
     else:
-        _atomic_write(path, _backup_bytes(entry, backup), entry.like(), tag)
+        _atomic_write(path, backup_bytes(entry, backup), entry.like(), tag)
 
 
 def _remove_temps(entries: Sequence[JournalEntry], token: str | None) -> None:
@@ -586,7 +586,7 @@ def undo(journal_path: Path, at: Path | None = None) -> UndoResult:
     written; files changed since the fix are refused and left alone. An apply that
     was killed on these datasets is rolled back first.
     """
-    journal = _read_journal(Path(os.path.abspath(journal_path)), at)
+    journal = read_journal(Path(os.path.abspath(journal_path)), at)
     backup = journal.path.parent
     result = UndoResult(refused=list(journal.refused))
     with dataset_lock(journal.roots) as locks:
@@ -597,14 +597,14 @@ def undo(journal_path: Path, at: Path | None = None) -> UndoResult:
         for n, entry in enumerate(journal.entries):
             if entry.action == "modified":
                 try:
-                    _backup_bytes(entry, backup)
+                    backup_bytes(entry, backup)
                 except TransactionError as exc:
                     result.refused.append(f"{entry.file}: not restored: {exc}")
                     continue
             usable.append((n, entry))
         todo: list[tuple[int, JournalEntry]] = []
         for n, entry in usable:
-            state = _state(entry)
+            state = entry_state(entry)
             if state == "after":
                 todo.append((n, entry))
             elif state == "before":
