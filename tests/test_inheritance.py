@@ -276,9 +276,9 @@ def test_top_level_sidecar_is_parsed_once(tmp_path: Path, monkeypatch: pytest.Mo
     calls: list[str] = []
     real = inheritance_module.load_sidecar
 
-    def counting(path: Any, display: Any = None) -> Any:
+    def counting(path: Any, display: Any = None, **kwargs: Any) -> Any:
         calls.append(str(path))
-        return real(path, display)
+        return real(path, display, **kwargs)
 
     monkeypatch.setattr(inheritance_module, "load_sidecar", counting)
     index = SidecarIndex(tmp_path)

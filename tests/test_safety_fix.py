@@ -176,10 +176,13 @@ def test_undo_refuses_another_dataset_given_as_the_place(tmp_path: Path) -> None
 
 def test_undo_restores_what_it_can_and_names_a_link_it_cannot_remake(tmp_path: Path) -> None:
     ds = ms_dataset(tmp_path / "ds")
-    outside = tmp_path / "elsewhere" / "sidecar.json"
-    outside.parent.mkdir()
-    shutil.move(ds / OWN, outside)
-    symlink(ds / OWN, outside)  # a sidecar kept outside the dataset, linked in
+    # a sidecar kept in a store folder of the dataset, linked in by its absolute path (a
+    # link out of the dataset is never read nor replaced: tests/test_file_links.py); an
+    # absolute target would leave a copied or moved dataset, so undo does not remake it
+    kept = ds / "store" / "sidecar.json"
+    kept.parent.mkdir()
+    shutil.move(ds / OWN, kept)
+    symlink(ds / OWN, kept)
     before = tree_hashes(ds)
     result = fix(ds, "--apply", "--replace-links", "--backup-dir", tmp_path / "backups")
     assert result.exit_code == 0, result.output

@@ -323,8 +323,9 @@ def _refusal(
     record = run.record
     errors = outcome.blocking
     if record.header is None:
-        first = errors[0].message if errors else "the image header cannot be read"
-        raise CorrectionError(first)
+        # the reader's own reason (an error, or a link out of the dataset: not read)
+        unread = [*errors, *(f for f in run.findings if f.code.startswith("file/"))]
+        raise CorrectionError(unread[0].message if unread else "the image header cannot be read")
     not_series = interpolation_refusal(record)
     if not_series is not None:
         raise CorrectionError(not_series, code=NOT_INTERPOLABLE_CODE, field="suffix")

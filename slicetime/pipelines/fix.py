@@ -62,6 +62,7 @@ from slicetime.policy.model import Policy
 from slicetime.readers.atomic import write_atomic
 from slicetime.readers.dataset import find_root
 from slicetime.readers.entities import sidecar_path
+from slicetime.readers.errors import ReadError, open_regular, read_bounded
 from slicetime.readers.sidecar import MAX_SIDECAR_BYTES
 from slicetime.readers.source import SourceOptions
 from slicetime.rules.correction import DOUBTED_FIELDS, undecided_doubt, undecided_reason
@@ -229,14 +230,20 @@ class JsonStyle:
         return text + ("\n" if self.final_newline else "")
 
 
-def _load_for_edit(path: Path) -> tuple[str, Layout]:
-    """The exact text of a sidecar about to be edited, and where its members sit."""
+def _load_for_edit(path: Path, root: str) -> tuple[str, Layout]:
+    """The exact text of a sidecar about to be edited, and where its members sit (read
+    as the audit reads it: a regular file only, never through a link out of the
+    dataset ``root``)."""
     if path.is_symlink() and not path.is_file():
         raise ValueError("it is a link to something that is not a regular file")
     if path.exists() and not path.is_file():
         raise ValueError("it is not a regular file")
-    with open(path, "rb") as fh:
-        data = fh.read(MAX_SIDECAR_BYTES + 1)
+    try:
+        fh, st = open_regular(path, str(path), what="sidecar", root=root)
+    except ReadError as exc:
+        raise ValueError(exc.message.removeprefix(f"{path}: ")) from None
+    with fh:
+        data = read_bounded(fh, st.st_size, MAX_SIDECAR_BYTES)
     if len(data) > MAX_SIDECAR_BYTES:
         raise ValueError(f"it is larger than {MAX_SIDECAR_BYTES} bytes")
     text = data.decode("utf-8")  # no newline translation: every byte is kept
@@ -412,12 +419,34 @@ def _place(
                 if note not in plan.notes:
                     plan.notes.append(note)
         targets[(repair.root, target)][repair.field].append(repair)
-    for file, move in moves:
+    for file, move in _movable(moves, plan):
         targets[(move.root, file)][move.field].append(move)
     for (root, file), fields in sorted(targets.items()):
         change = _build_change(root, file, fields, plan)
         if change is not None:
             plan.changes.append(change)
+
+
+def _movable(moves: Sequence[tuple[str, Repair]], plan: FixPlan) -> list[tuple[str, Repair]]:
+    """The layout moves whose every receiving file can be edited: a field removed from
+    one file must arrive in the other, so a move whose receiving file cannot be read
+    (not UTF-8, a link out of the dataset, ...) drops that field's moves in its
+    dataset (said in the notes), never the removal alone."""
+    blocked: set[tuple[str, str, str]] = set()
+    for file, move in moves:
+        group = (move.root, move.code, move.field)
+        if move.value is REMOVE or group in blocked:
+            continue
+        path = Path(move.root) / file
+        try:
+            if path.exists() or path.is_symlink():
+                _load_for_edit(path, move.root)
+        except (OSError, UnicodeDecodeError, ValueError) as exc:
+            blocked.add(group)
+            verb = "spread" if move.code == "layout/spread" else "consolidated"
+            plan.notes.append(f"{move.field} not {verb}: {file} cannot be changed "
+                              f"({_reason(exc)})")
+    return [(f, m) for f, m in moves if (m.root, m.code, m.field) not in blocked]
 
 
 def _build_change(
@@ -427,7 +456,7 @@ def _build_change(
     try:
         if path.exists() or path.is_symlink():
             before: str | None
-            before, _ = _load_for_edit(path)
+            before, _ = _load_for_edit(path, root)
         else:
             before = None
     except (OSError, UnicodeDecodeError, ValueError) as exc:

@@ -18,7 +18,7 @@ from typing import Any, Protocol
 from slicetime.readers.atomic import (
     within,
 )
-from slicetime.readers.errors import ReadError, open_regular, read_bounded
+from slicetime.readers.errors import ReadError, link_leaving, open_regular, read_bounded
 from slicetime.readers.shipped_schemas import document_problem, load_schema
 from slicetime.readers.volumes import file_sha256
 
@@ -112,7 +112,9 @@ def confinement_problem(root: str, file: object) -> str | None:
 
     A plan or journal names files relative to a dataset root; slicetime only
     ever writes sidecars (``.json``, not hidden) whose folder, links resolved,
-    is inside the root.
+    is inside the root, and never a file that is a link out of the dataset (not
+    even with ``--replace-links``: what it points at is never read, so it cannot
+    be backed up; :func:`slicetime.readers.errors.link_leaving` decides).
     """
     if not isinstance(file, str) or not file:
         return "no file name"
@@ -125,6 +127,9 @@ def confinement_problem(root: str, file: object) -> str | None:
     real_folder = os.path.realpath(os.path.join(root, *pure.parts[:-1]))
     if not within(real_folder, real_root):
         return f"the folder of {file!r} leads out of the dataset through a link"
+    leaving = link_leaving(os.path.join(root, *pure.parts), root)
+    if leaving is not None:
+        return f"the file {file!r} is a link to {leaving}, outside the dataset"
     return None
 
 

@@ -350,7 +350,7 @@ def verify_run(root: Path, path: Path, *, seed: int = 0) -> tuple[RunRecord, Ver
 
     record = build_record(root, path)
     fatal = [f for f in record.findings if f.code.startswith("file/")
-             and f.severity is Severity.ERROR]
+             and (f.severity is Severity.ERROR or record.header is None)]
     if record.header is None or fatal:
         first = fatal[0] if fatal else None
         raise ReadError(first.code if first else "file/not-nifti", record.path, None,

@@ -32,9 +32,12 @@ followed, so each run keeps its real name; symlinks that lead out of the given
 folder's dataset root (another study, ``/``, ``/proc``) are not followed either
 and are reported once each (``file/link-leaves-dataset``: a subject kept on other
 storage is included by giving its folder as a path of its own); links to other
-folders of the same dataset are followed. A folder whose real path was already
-visited is never entered again, so loops end. Runs come out sorted by root, then
-by path components; each run once.
+folders of the same dataset are followed. File links are judged the same way
+(:func:`~slicetime.readers.errors.link_leaving`, the one decision): a run image or
+sidecar that is a link out of its dataset is reported (``file/link-leaves-dataset``)
+by the reader given the root, and what it points at is never read. A folder whose
+real path was already visited is never entered again, so loops end. Runs come out
+sorted by root, then by path components; each run once.
 """
 
 from __future__ import annotations
@@ -56,7 +59,13 @@ from .entities import (
     run_name_problem,
     sidecar_name,
 )
-from .errors import ReadError, annex_target, check_regular_file
+from .errors import (
+    ReadError,
+    annex_target,
+    check_regular_file,
+    link_leaves_error,
+    link_leaving,
+)
 from .sidecar import load_sidecar
 
 __all__ = [
@@ -272,7 +281,7 @@ def _misnamed_run(name: str, folder: str) -> bool:
     return looks_like_run(name, folder) and run_name_problem(name) is not None
 
 
-def _has_slice_timing(folder: Path, name: str, listing: set[str]) -> bool:
+def _has_slice_timing(folder: Path, name: str, listing: set[str], confine: str) -> bool:
     if not_a_run(name) is not None:
         return False
     if folder.name in _NOT_RUN_FOLDERS:
@@ -280,7 +289,7 @@ def _has_slice_timing(folder: Path, name: str, listing: set[str]) -> bool:
     own = sidecar_name(name)
     if own not in listing:
         return False
-    data, _findings = load_sidecar(folder / own)
+    data, _findings = load_sidecar(folder / own, root=confine)
     return data is not None and "SliceTiming" in data
 
 
@@ -336,13 +345,9 @@ class _Walker:
 
     def _report_link(self, path: Path, target: str) -> None:
         if self.on_error is not None:
-            shown = str(path)
-            self.on_error(make_finding(
-                "file/link-leaves-dataset",
-                f"{shown}: a link to {target}, outside the dataset; not followed, so the "
-                "runs behind it are not audited",
-                file=shown, evidence={"link_target": target},
-            ))
+            self.on_error(link_leaves_error(
+                str(path), target, "not followed, so the runs behind it are not audited",
+            ).to_finding())
 
     def walk(
         self, folder: Path, top_real: str | None = None, real: str | None = None,
@@ -391,7 +396,7 @@ class _Walker:
                     continue
                 if names is None:
                     names = {e.name for e in entries}
-                if _has_slice_timing(folder, name, names):
+                if _has_slice_timing(folder, name, names, confine):
                     yield folder / name
                 continue
             if is_dir:
@@ -399,12 +404,13 @@ class _Walker:
                     continue
                 path = folder / name
                 if entry.is_symlink():
+                    leaving = link_leaving(path, confine)  # the readers' decision for files
+                    if leaving is not None:
+                        self._report_link(path, leaving)
+                        continue
                     child_real = os.path.realpath(path)
                     if within(child_real, top_real):
                         continue  # an alias of a folder in this tree (or a loop): reached by name
-                    if not within(child_real, confine):
-                        self._report_link(path, child_real)
-                        continue
                 else:  # not a link: its real path is its name under this folder's real path
                     child_real = os.path.join(real, name)
                 yield from self.walk(path, top_real, child_real, confine)

@@ -17,7 +17,11 @@ File-level codes (our own):
     symlinks that point at each other in a loop;
 ``file/unreadable``
     a permission or other OS error, a directory or anything that is not a
-    regular file (FIFOs, sockets and devices are refused so that reading never blocks).
+    regular file (FIFOs, sockets and devices are refused so that reading never blocks);
+``file/link-leaves-dataset``
+    a symbolic link that leads out of the dataset (a warning): a reader given the
+    dataset root (``root=``) does not read what it points at (:func:`link_leaving`,
+    the one decision, which the walk makes for folder links too).
 
 Every reader opens its input through :func:`open_regular`: the path is checked
 with ``stat`` (a special file is refused before it is opened, so opening has no
@@ -41,12 +45,16 @@ from slicetime.codes import make_finding
 from slicetime.model import Finding
 from slicetime.words import with_article
 
+from .atomic import within
+
 __all__ = [
     "ReadError",
     "check_regular_file",
     "display_name",
     "file_kind",
     "is_regular_file",
+    "link_leaves_error",
+    "link_leaving",
     "open_regular",
     "os_error",
     "read_bounded",
@@ -148,15 +156,50 @@ def os_error(exc: OSError, shown: str, *, what: str = "file") -> ReadError:
     return ReadError("file/unreadable", shown, None, f"{shown}: cannot read the {what}: {reason}")
 
 
+def link_leaving(path: str | os.PathLike[str], confine: str | os.PathLike[str]) -> str | None:
+    """The real place ``path`` leads to when it is a symbolic link out of the dataset
+    whose root is ``confine``, else None: the one decision of "does this link leave the
+    dataset" (the walk asks it of folder links, the readers of file links).
+
+    A link stays when its target (links resolved) lies inside the real root, or inside
+    the real folder the link itself sits in (a subject folder kept elsewhere and given
+    as a path of its own keeps its own links). Only ``path`` itself is looked at (one
+    ``lstat``; the folders above it are the walk's to judge)."""
+    try:
+        if not stat.S_ISLNK(os.lstat(path).st_mode):
+            return None
+    except (OSError, ValueError):
+        return None  # the reader reports a path it cannot look at
+    target = os.path.realpath(path)
+    if within(target, os.path.realpath(confine)):
+        return None
+    if within(target, os.path.realpath(os.path.dirname(os.path.abspath(path)))):
+        return None
+    return target
+
+
+def link_leaves_error(shown: str, target: str, consequence: str) -> ReadError:
+    """``file/link-leaves-dataset`` for the link ``shown`` to ``target`` (see
+    :func:`link_leaving`); ``consequence`` says what is therefore not done."""
+    return ReadError(
+        "file/link-leaves-dataset", shown, None,
+        f"{shown}: a link to {target}, outside the dataset; {consequence}",
+        evidence={"link_target": target},
+    )
+
+
 def check_regular_file(
-    path: str | os.PathLike[str], shown: str, *, what: str = "file"
+    path: str | os.PathLike[str], shown: str, *, what: str = "file",
+    root: str | os.PathLike[str] | None = None,
 ) -> os.stat_result:
     """Return the ``stat`` of ``path`` (following links) or raise the matching ReadError.
 
     Distinguishes a missing path, a broken symlink (``file/missing``), a symlink
     into an annex object store whose content is absent (``file/no-content``), a
     link loop (``file/link-loop``) and anything that is not a regular file
-    (``file/unreadable``).
+    (``file/unreadable``). With ``root`` (the file's dataset root), a link that
+    leaves the dataset (:func:`link_leaving`) raises ``file/link-leaves-dataset``:
+    what it points at is never opened.
     """
     try:
         lst = os.lstat(path)
@@ -199,6 +242,10 @@ def check_regular_file(
         )
     if not stat.S_ISREG(st.st_mode):
         raise _not_regular(shown, st.st_mode, what)
+    if root is not None and stat.S_ISLNK(lst.st_mode):
+        leads_to = link_leaving(path, root)
+        if leads_to is not None:
+            raise link_leaves_error(shown, leads_to, f"the {what} is not read")
     return st
 
 
@@ -255,16 +302,19 @@ _OPEN_FLAGS = (
 
 
 def open_regular(
-    path: str | os.PathLike[str], shown: str, *, what: str = "file"
+    path: str | os.PathLike[str], shown: str, *, what: str = "file",
+    root: str | os.PathLike[str] | None = None,
 ) -> tuple[BinaryIO, os.stat_result]:
     """Open the regular file at ``path`` for unbuffered binary reading, or raise.
 
     Returns the open file and its ``fstat``. Raises :class:`ReadError` as
-    :func:`check_regular_file` does, and ``file/unreadable`` when the path turned
+    :func:`check_regular_file` does (with ``root``, the file's dataset root: a link
+    out of the dataset is not opened), and ``file/unreadable`` when the path turned
     into something else (a FIFO, a device) between the check and the open. The
     open never blocks: the flags include ``O_NONBLOCK``, which regular files ignore.
     """
-    check_regular_file(path, shown, what=what)  # before the open: a device is never opened
+    # before the open: a device (or a link out of the dataset) is never opened
+    check_regular_file(path, shown, what=what, root=root)
     try:
         fd = os.open(path, _OPEN_FLAGS)
     except OSError as exc:

@@ -129,8 +129,9 @@ class SidecarStore:
         if len(self._listings) > LISTINGS_KEPT:
             self._listings.popitem(last=False)
 
-    def get(self, path: str, display: str) -> tuple[Loaded, bool]:
-        """The parsed sidecar at ``path`` and whether it was parsed by this call."""
+    def get(self, path: str, display: str, root: str | None = None) -> tuple[Loaded, bool]:
+        """The parsed sidecar at ``path`` and whether it was parsed by this call
+        (``root``: its dataset root, see :func:`.sidecar.load_sidecar`)."""
         key = (path, display)
         cached = self._entries.get(key)
         if cached is not None:
@@ -145,7 +146,7 @@ class SidecarStore:
                 self._entries[key] = value
                 return value, False
             self.used += size
-        data, findings = load_sidecar(path, display)
+        data, findings = load_sidecar(path, display, root=root)
         self.parse_count += 1
         value = (data, tuple(findings))
         self._entries[key] = value
@@ -386,20 +387,21 @@ class SidecarIndex:
         return cached
 
     def load(
-        self, path: Path | str, display: str, *, shared: bool = True
+        self, path: Path | str, display: str, *, shared: bool = True, root: str | None = None
     ) -> tuple[dict[str, Any] | None, tuple[Finding, ...]]:
         """Parse the sidecar at ``path`` once; shared sidecars go through the walk's
         :class:`SidecarStore`; ``shared=False`` uses a small LRU cache (for a data file's
-        own sidecar, which no other run inherits)."""
+        own sidecar, which no other run inherits). ``root``: the dataset root, whose
+        links out are not read (:func:`.sidecar.load_sidecar`)."""
         key = (os.fspath(path), display)
         if shared:
-            value, parsed = self.store.get(key[0], display)
+            value, parsed = self.store.get(key[0], display, root)
             self.parse_count += parsed
             return value
         if key in self._own:
             self._own.move_to_end(key)
             return self._own[key]
-        data, findings = load_sidecar(key[0], display)
+        data, findings = load_sidecar(key[0], display, root=root)
         self.parse_count += 1
         value = (data, tuple(findings))
         self._own[key] = value
@@ -521,7 +523,8 @@ class SidecarIndex:
                 shown = candidate.shown
                 if own:
                     own_names.add(shown)
-                data, problems = self.load(candidate.path, shown, shared=not own)
+                data, problems = self.load(candidate.path, shown, shared=not own,
+                                           root=root_path)
                 findings.extend(problems)
                 chain.append(shown)
                 loaded.append((shown, data))

@@ -393,11 +393,14 @@ def _paired_image(path: Path) -> Path | None:
 
 
 def read_header(
-    path: str | os.PathLike[str], display: str | None = None, *, verify_stream: bool = True
+    path: str | os.PathLike[str], display: str | None = None, *, verify_stream: bool = True,
+    root: str | os.PathLike[str] | None = None,
 ) -> tuple[HeaderInfo, list[Finding]]:
     """Read and check the header of the NIfTI file at ``path``.
 
-    ``display`` is how messages name the file (default: ``str(path)``).
+    ``display`` is how messages name the file (default: ``str(path)``); with
+    ``root`` (its dataset root) a link out of the dataset is not read
+    (``file/link-leaves-dataset``).
     Returns the header and a list of non-fatal findings (currently always
     empty: every header problem this reader detects makes the file unusable).
     Raises :class:`ReadError` (``file/*`` codes, see the module docstring)
@@ -407,7 +410,7 @@ def read_header(
     shown = display if display is not None else display_name(Path(file), None)
     try:
         # unbuffered: a header read is a few small reads, a buffer would only be filled
-        fh, st = open_regular(file, shown, what="NIfTI file")
+        fh, st = open_regular(file, shown, what="NIfTI file", root=root)
         with fh:
             if st.st_size == 0:
                 # not read: an empty file, or a pseudo-file (/proc) whose read may not end

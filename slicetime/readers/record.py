@@ -84,7 +84,7 @@ def build_record(root: Path, path: Path, index: SidecarIndex | None = None) -> R
     # cannot read costs the extra look of content_missing (whose answer then replaces
     # the read error; the same outcome as asking it first, one stat less per run)
     try:
-        header, header_findings = read_header(path, display)
+        header, header_findings = read_header(path, display, root=root)
         findings.extend(header_findings)
     except ReadError as exc:
         missing = content_missing(path)

@@ -267,17 +267,20 @@ def _line_col(data: bytes, offset: int) -> tuple[int, int]:
 
 
 def load_sidecar(
-    path: str | os.PathLike[str], display: str | None = None
+    path: str | os.PathLike[str], display: str | None = None, *,
+    root: str | os.PathLike[str] | None = None,
 ) -> tuple[dict[str, Any] | None, list[Finding]]:
     """Read and strictly parse the sidecar at ``path``; never raises.
 
     Returns ``(data, findings)``; ``data`` is ``None`` only when the file is
-    unusable (see the module docstring for codes and severities).
+    unusable (see the module docstring for codes and severities). With ``root``
+    (the dataset root), a link out of the dataset is not read
+    (``file/link-leaves-dataset``, :func:`.errors.link_leaving`).
     """
     p = os.fspath(path)
     shown = display if display is not None else display_name(Path(p), None)
     try:
-        fh, st = open_regular(p, shown, what="JSON file")
+        fh, st = open_regular(p, shown, what="JSON file", root=root)
         with fh:
             if st.st_size > MAX_SIDECAR_BYTES:
                 return None, [_too_large(shown, st.st_size)]
