@@ -590,3 +590,42 @@ def test_a_broken_lab_policy_is_seen_by_audit_show_and_correct_alike(tmp_path: P
     assert len(lines) == 1 and lines[0].startswith(f"slicetime: {root / POLICY_FILENAME}: line 1")
     assert "without the dataset's lab policy" in lines[0]
     assert not out.exists()
+
+
+def test_fix_stops_on_a_broken_lab_policy_as_correct_does(tmp_path: Path) -> None:
+    import json
+
+    from click.testing import CliRunner
+
+    from slicetime.interfaces.cli import cli
+    from tests.helpers_bids import tree_hashes
+
+    root, image = _broken_policy_dataset(tmp_path)
+    own = image.with_name("sub-01_task-hum_bold.json")
+    content = json.loads(own.read_text(encoding="utf-8"))
+    # milliseconds where BIDS asks for seconds: a repair fix plans when the policy is sound
+    content["SliceTiming"] = [t * 1000 for t in content["SliceTiming"]]
+    own.write_text(json.dumps(content), encoding="utf-8")
+    broken = (root / POLICY_FILENAME).read_text(encoding="utf-8")
+    runner = CliRunner()
+    before = tree_hashes(tmp_path)
+    for args in ([], ["--apply"]):
+        refused = runner.invoke(cli, ["fix", str(root), *args])
+        assert refused.exit_code == 2, refused.output
+        lines = refused.stderr.strip().splitlines()
+        assert len(lines) == 1 and lines[0].startswith(f"slicetime: {root / POLICY_FILENAME}: ")
+        assert "fix does not run without the dataset's lab policy" in lines[0]
+        assert refused.stdout == ""  # no plan shown
+        assert tree_hashes(tmp_path) == before
+    # a plan saved without the policy is not applied once a broken one is there
+    (root / POLICY_FILENAME).unlink()
+    plan = tmp_path / "plan.json"
+    saved = runner.invoke(cli, ["fix", str(root), "--plan", str(plan)])
+    assert saved.exit_code == 1 and "timing/units-ms" in saved.stdout
+    (root / POLICY_FILENAME).write_text(broken, encoding="utf-8")
+    before = tree_hashes(tmp_path)
+    applied = runner.invoke(cli, ["fix", "--apply", "--plan", str(plan),
+                                  "--backup-dir", str(tmp_path / "backups")])
+    assert applied.exit_code == 2
+    assert "fix does not run without the dataset's lab policy" in applied.stderr
+    assert tree_hashes(tmp_path) == before

@@ -74,12 +74,9 @@ class AuditResult:
 
     def policy_problem(self) -> str | None:
         """One line naming the first dataset whose own lab policy is broken, or None:
-        what a command that must not go on without the lab's policy stops with."""
-        for root, finding in sorted(self.broken_policies.items()):
-            name = finding.file or ""
-            message = finding.message.removeprefix(f"{name}: ")  # named once, in full
-            return f"{Path(root) / name}: {message}"
-        return None
+        what a command that must not go on without the lab's policy stops with
+        (``correct``, ``fix``)."""
+        return _first_broken(self.broken_policies)
 
     def ignored_count(self) -> int:
         return len(self.ignored) + sum(len(r.ignored) for r in self.runs)
@@ -222,6 +219,22 @@ def _check_every_path_has_runs(
             folder = os.path.isdir(given)
             raise NoRunsError(str(given), is_folder=folder,
                               why=None if folder else not_a_run(os.path.basename(given)))
+
+
+def _first_broken(broken: Mapping[str, Finding]) -> str | None:
+    for root, finding in sorted(broken.items()):
+        name = finding.file or ""
+        message = finding.message.removeprefix(f"{name}: ")  # named once, in full
+        return f"{Path(root) / name}: {message}"
+    return None
+
+
+def policy_problem(roots: Iterable[Path], policy_file: Path | None = None) -> str | None:
+    """:meth:`AuditResult.policy_problem` for dataset roots without an audit (a saved fix
+    plan): their policies loaded the audit's way."""
+    broken: dict[Path, Finding] = {}
+    _policies(roots, policy_file, [], broken)
+    return _first_broken({str(r): f for r, f in broken.items()})
 
 
 def _policies(
@@ -668,4 +681,5 @@ __all__ = [
     "dataset_name",
     "failed_run",
     "inspect_run",
+    "policy_problem",
 ]

@@ -36,7 +36,7 @@ from typing import Any
 from slicetime import __version__
 from slicetime.model import Finding, RunRecord
 from slicetime.numbers import tidy_json
-from slicetime.pipelines.audit import AuditResult, audit_paths
+from slicetime.pipelines.audit import AuditResult, audit_paths, policy_problem
 from slicetime.pipelines.executor import Executor
 from slicetime.pipelines.fix_layout import REMOVE, check_fields, layout_moves, value_key
 from slicetime.pipelines.journal import (
@@ -292,6 +292,7 @@ def plan_fix(
     # the given paths too: one behind a link out of its dataset is walked only when given
     audit = audit_paths([*roots, *(Path(p) for p in paths)], policy_file=policy_file,
                         executor=executor, source=source)
+    _refuse_broken_policy(audit.policy_problem())
     policies = _policies(roots, policy_file)
     plan = FixPlan(audit=audit)
     runs: list[tuple[RunRecord, list[Finding]]] = [(r.record, r.findings) for r in audit.runs]
@@ -318,6 +319,20 @@ def plan_fix(
         if (repair.root, repair.run, repair.code) not in reasons:
             plan.repaired_runs.setdefault(repair.root, set()).add(repair.run)
     return plan
+
+
+def _refuse_broken_policy(problem: str | None) -> None:
+    """Stop (exit 2) on a dataset whose own lab policy is broken, as ``correct`` does:
+    its protocols, severities and accepted doubts decide what may be repaired."""
+    if problem is not None:
+        raise FixError(f"{problem} (fix does not run without the dataset's lab policy); "
+                       "nothing was planned or written")
+
+
+def check_policies(plan: FixPlan, policy_file: Path | None = None) -> None:
+    """:func:`_refuse_broken_policy` for the roots of a saved plan about to be applied."""
+    roots = sorted({Path(c.root) for c in plan.changes}, key=str)
+    _refuse_broken_policy(policy_problem(roots, policy_file))
 
 
 def _undecided(

@@ -102,6 +102,7 @@ def fix(
             if paths:
                 raise UserError("--apply --plan FILE applies the saved plan; give no PATH")
             plan = fixing.read_plan(plan_file)
+            fixing.check_policies(plan, policy_file)
         else:
             if not paths:
                 raise UserError("fix: give the dataset or runs to repair (PATH...)")
