@@ -195,6 +195,22 @@ def test_wrong_type_names_the_key_path() -> None:
     assert error.field == "protocols[1].repetition_time"
 
 
+def test_a_version_of_the_wrong_type_is_named_as_a_type_error() -> None:
+    # TOML spec: "1" in quotes is a string, 1.5 a float, true a boolean (tomllib reads
+    # them as str, float and bool); the format asks for the integer 1
+    for text, kind, shown in (('version = "1"', str, '"1"'), ("version = 1.5", float, "1.5"),
+                              ("version = true", bool, "true")):
+        assert type(tomllib.loads(text)["version"]) is kind
+        error = invalid(text + "\n")
+        assert error.field == "version"
+        words = {str: "string", float: "float", bool: "boolean"}[kind]
+        assert error.message == (f"lab/{POLICY_FILENAME}: version: expected the integer 1, got "
+                                 f"the {words} {shown}")
+        assert "missing" not in error.message and "\n" not in error.message
+    # the right type with another value is a value problem, not a type problem
+    assert "must be 1 (found 2, an integer)" in invalid("version = 2\n").message
+
+
 def test_unknown_keys_are_typos_not_silently_ignored() -> None:
     error = invalid("version = 1\n[[protocols]]\nmatch = {}\nrepetition_tme = 2.0\n")
     assert error.field == "protocols[0].repetition_tme"

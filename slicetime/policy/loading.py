@@ -366,6 +366,15 @@ def _shown(value: Any) -> str:
     return _toml_type(value)
 
 
+def _value_words(value: Any) -> str:
+    """A value with its TOML type first: ``the string "1"``, ``the float 1.5``."""
+    kind = _toml_type(value).split(" ", 1)[-1]
+    if isinstance(value, dict | list) or kind == "date/time":
+        return _toml_type(value)
+    shown = _shown(value).rsplit(", ", 1)[0] if not isinstance(value, bool) else _shown(value)
+    return f"the {kind} {shown}"
+
+
 _PATTERN_WORDS = {
     "^[A-Za-z0-9]+$": "a string of letters and digits (a BIDS label)",
     "\\S": "a string that is not blank",
@@ -427,7 +436,10 @@ def _schema_problem(error: jsonschema.ValidationError) -> tuple[list[str | int],
     ):
         return path, "sets no expectation; give at least one of " + ", ".join(EXPECTATION_KEYS)
     if validator == "const":
-        return path, f"must be {json.dumps(error.validator_value)} (found {_shown(error.instance)})"
+        expected = error.validator_value
+        if _toml_type(error.instance) != _toml_type(expected):  # version = "1": the type
+            return path, f"expected {_value_words(expected)}, got {_value_words(error.instance)}"
+        return path, f"must be {json.dumps(expected)} (found {_shown(error.instance)})"
     if validator in ("minItems", "minLength"):
         return path, "must not be empty"
     return path, f"must be {_describe(error.schema)} (found {_shown(error.instance)})"
