@@ -72,3 +72,50 @@ def test_the_one_decision(monkeypatch: pytest.MonkeyPatch) -> None:
     monkeypatch.setenv("SLICETIME_ASCII", "1")
     assert not unicode_wanted(Stream())
     assert ascii_text("multiband ×4 → 12 × 12") == "multiband x4 -> 12 x 12"
+
+
+def test_the_lines_fix_prints_itself_are_ascii_too(tmp_path: Path,
+                                                   monkeypatch: pytest.MonkeyPatch) -> None:
+    # fix --apply prints its own lines (written, journal, re-audit) besides the plan; a
+    # finding left after the re-audit may quote a scheme label ("multiband ×2, ...",
+    # the label grammar of slicetime.schemes.labels): in ASCII mode it reads "x2"
+    from slicetime.codes import make_finding
+    from slicetime.pipelines import fix as fixing
+    from slicetime.schemes.labels import with_multiband
+
+    write_description(tmp_path)
+    # SliceTiming in milliseconds (BIDS: seconds): a repair fix plans
+    write_run(tmp_path, RUN, shape=(12, 12, 6, 8), tr=2.0,
+              sidecar={**SIDECAR, "SliceTiming": [0, 500, 1000, 0, 500, 1000]})
+    label = with_multiband("ascending", 2)
+    assert "×" in label
+    left = make_finding("timing/units-ms", f"still read as {label}", file=RUN)
+    monkeypatch.setattr(fixing, "reaudit", lambda *a, **k: [left])
+    code, out, err = invoke("fix", str(tmp_path), "--apply")
+    assert code == 0, (out, err)
+    assert "still" in out and "multiband x2" in out
+    assert out.isascii() and err.isascii(), [c for c in out + err if not c.isascii()]
+
+
+def test_no_plain_echo_of_text_for_people_in_the_interfaces() -> None:
+    # every line for people goes through screen.say (or a console on screen_stream);
+    # click.echo is left for machine formats: JSON (dumps) and the TOML pin writes
+    import ast
+
+    import slicetime.interfaces as interfaces
+
+    machine = {"dumps", "json.dumps"}
+    found = []
+    for path in Path(interfaces.__file__).parent.rglob("*.py"):
+        for node in ast.walk(ast.parse(path.read_text(encoding="utf-8"))):
+            if not (isinstance(node, ast.Call) and ast.unparse(node.func) == "click.echo"):
+                continue
+            first = node.args[0] if node.args else None
+            if first is not None and any(f"{name}(" in ast.unparse(first) for name in machine):
+                continue
+            if any(k.arg == "file" for k in node.keywords):  # a stream chosen with care
+                continue
+            if path.name == "pin.py" and isinstance(first, ast.Name) and first.id == "text":
+                continue
+            found.append(f"{path.name}:{node.lineno}")
+    assert found == []

@@ -14,7 +14,7 @@ lines into ``-``/``|``/``+`` and so on (:func:`ascii_text`). Machine formats (JS
 JUnit) are never changed: a scheme label keeps its standard words there.
 
 Every function here is pure (strings in, strings out) except :func:`width_for`,
-:func:`unicode_wanted` and :func:`screen_stream`.
+:func:`unicode_wanted`, :func:`screen_stream` and :func:`say` (which prints).
 """
 
 from __future__ import annotations
@@ -96,6 +96,19 @@ def screen_stream(stream: Any) -> Any:
     if unicode_wanted(stream) or isinstance(stream, _AsciiStream):
         return stream
     return _AsciiStream(stream)
+
+
+def say(text: str, *, err: bool = False) -> None:
+    """Print ``text`` (and a line break) for people on standard output, or standard
+    error with ``err``, through :func:`screen_stream`: every plain line a command
+    prints (one-line errors, the lines of ``fix``) goes through here, so that ASCII
+    mode covers it as it covers the laid-out screens. Machine formats (JSON) are
+    printed as they are, never through here."""
+    import sys
+
+    import click
+
+    click.echo(text, file=screen_stream(sys.stderr if err else sys.stdout))
 
 
 def ellipsis(unicode: bool = True) -> str:

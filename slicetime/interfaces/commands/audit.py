@@ -14,6 +14,7 @@ import click
 
 from slicetime.interfaces.commands import shared
 from slicetime.interfaces.commands.shared import UserError, friendly
+from slicetime.interfaces.screen import say
 from slicetime.model import FailOn
 
 
@@ -120,8 +121,8 @@ def audit(
                     source=shared.source_settings(source_check, source_map))
             except Interrupted as stop:
                 finished = sum(1 for r in stop.results if r is not None)
-                click.echo(f"slicetime: interrupted; {finished} of {len(stop.results)} runs "
-                           "audited, no report written", err=True)
+                say(f"slicetime: interrupted; {finished} of {len(stop.results)} runs "
+                    "audited, no report written", err=True)
                 sys.exit(130)
         if html_file is not None:
             from slicetime.interfaces.report_html import write_html_stream
@@ -138,7 +139,7 @@ def audit(
         if quiet:
             from slicetime.interfaces.grouping import group_findings
 
-            click.echo(summary_line(spool.totals, group_findings(spool)))
+            say(summary_line(spool.totals, group_findings(spool)))
         elif output is None:
             with _buffered_stdout() as out:
                 _audit_report(spool, out, fmt, fail_on, show_all, not hide_notes)

@@ -11,6 +11,7 @@ import click
 
 from slicetime.interfaces.commands import shared
 from slicetime.interfaces.commands.shared import UserError, friendly
+from slicetime.interfaces.screen import say
 
 
 def _engine_names() -> Sequence[str]:
@@ -131,13 +132,13 @@ def correct(
             )
         except CorrectInterrupted as stop:
             if not stop.result.runs:  # nothing finished: no summary of zero runs
-                click.echo(f"slicetime: interrupted before any run was corrected; nothing "
-                           f"written ({count(stop.not_finished, 'run')} to do: rerun the same "
-                           "command)", err=True)
+                say(f"slicetime: interrupted before any run was corrected; nothing "
+                    f"written ({count(stop.not_finished, 'run')} to do: rerun the same "
+                    "command)", err=True)
                 sys.exit(130)
             render_correct(stop.result, make_console(sys.stderr))
-            click.echo(f"slicetime: interrupted; {count(stop.not_finished, 'run')} not finished "
-                       "(rerun the same command to finish them)", err=True)
+            say(f"slicetime: interrupted; {count(stop.not_finished, 'run')} not finished "
+                "(rerun the same command to finish them)", err=True)
             sys.exit(130)
         except ValueError as exc:
             raise UserError(xml_safe(str(exc))) from None

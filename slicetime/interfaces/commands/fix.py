@@ -20,6 +20,7 @@ from slicetime.interfaces.commands.shared import (
     source_options,
     source_settings,
 )
+from slicetime.interfaces.screen import say
 
 
 @click.command()
@@ -114,7 +115,7 @@ def fix(
                          inputs=[policy_file, source_map])
             check_paths_hold_runs(list(paths))
             for line in fixing.recover([str(find_root(p)) for p in paths]):
-                click.echo(f"slicetime: {xml_safe(line)}", err=True)
+                say(f"slicetime: {xml_safe(line)}", err=True)
             with run_executor(jobs, scheduler) as executor:
                 plan = fixing.plan_fix(list(paths), per_run=per_run, policy_file=policy_file,
                                        executor=executor, consolidate=consolidate,
@@ -132,15 +133,15 @@ def fix(
         if not do_apply:
             if plan_file is not None:
                 fixing.write_plan(plan, plan_file)
-                click.echo(f"plan saved to {xml_safe(plan_file)}; apply it with: slicetime fix "
-                           f"--apply --plan {xml_safe(plan_file)}")
+                say(f"plan saved to {xml_safe(plan_file)}; apply it with: slicetime fix "
+                    f"--apply --plan {xml_safe(plan_file)}")
             sys.exit(1 if plan.changes or plan.unplanned else 0)
         if not plan.changes:
             sys.exit(1 if plan.unplanned else 0)
         applied = fixing.apply_plan(plan, backup_dir=backup_dir, replace_links=replace_links,
                                     rewrite_read_only=rewrite_read_only)
     except fixing.Interrupted as exc:  # the files written were put back
-        click.echo(f"slicetime: {xml_safe(str(exc))}", err=True)
+        say(f"slicetime: {xml_safe(str(exc))}", err=True)
         sys.exit(exc.exit_code)
     except fixing.TransactionError as exc:  # FixError and the transaction's refusals
         raise UserError(xml_safe(str(exc))) from None
@@ -152,8 +153,8 @@ def fix(
     _say("written   ", applied.written)
     _say("refused   ", applied.refused)
     if applied.refused:
-        click.echo(f"nothing was written: {len(applied.refused)} of {len(plan.changes)} files "
-                   "would be refused, and a plan is applied whole or not at all")
+        say(f"nothing was written: {len(applied.refused)} of {len(plan.changes)} files "
+            "would be refused, and a plan is applied whole or not at all")
     if applied.journal is not None:
         journal = xml_safe(applied.journal)
         from slicetime.interfaces import screen
@@ -163,17 +164,17 @@ def fix(
                              ("undo with:", f"slicetime fix --undo {journal}")):
             # a path is never cut (it is copied from here): too long, it goes on its own line
             if width is None or len(label) + 1 + len(value) <= width:
-                click.echo(f"{label} {value}")
+                say(f"{label} {value}")
             else:
-                click.echo(f"{label}\n  {value}")
+                say(f"{label}\n  {value}")
     left = (fixing.reaudit(plan, policy_file=policy_file,
                            source=source_settings(source_check, source_map))
             if applied.written else [])
     if left:
         for finding in left:
-            click.echo(f"still     {xml_safe(finding.one_line())}")
+            say(f"still     {xml_safe(finding.one_line())}")
     elif applied.written:
-        click.echo("re-audit: the repaired runs are clean for the repaired codes")
+        say("re-audit: the repaired runs are clean for the repaired codes")
     sys.exit(1 if applied.refused or plan.unplanned else 0)
 
 
@@ -182,7 +183,7 @@ def _say(label: str, items: Iterable[str], note: str = "", *, err: bool = False)
     from slicetime.interfaces.safe_text import xml_safe
 
     for item in items:
-        click.echo(f"{label}{xml_safe(item)}{note}", err=err)
+        say(f"{label}{xml_safe(item)}{note}", err=err)
 
 
 def _fix_undo(journal: Path, at: Path | None) -> None:
@@ -202,6 +203,6 @@ def _fix_undo(journal: Path, at: Path | None) -> None:
     _say("unchanged ", undone.never_written, "  (never written: the apply stopped before it)")
     _say("refused   ", undone.refused)
     if undone.failure is not None:
-        click.echo(f"slicetime: {xml_safe(undone.failure)}", err=True)
+        say(f"slicetime: {xml_safe(undone.failure)}", err=True)
         sys.exit(2)
     sys.exit(1 if undone.refused else 0)

@@ -8,6 +8,7 @@ from pathlib import Path
 import click
 
 from slicetime.interfaces.commands.shared import UserError, friendly, walking_options
+from slicetime.interfaces.screen import say
 
 
 @click.command()
@@ -48,6 +49,6 @@ def pin(paths: tuple[Path, ...], output: Path | None, include_derivatives: bool,
 
     disagreeing = sum(len({p for p, _, _ in e.disagreeing}) for e in entries)
     written = sum(1 for e in entries if e.values)
-    click.echo(f"{os.fspath(output)}: {count(written, 'protocol')} written; "
-               f"{count(disagreeing, 'run')} {agree(disagreeing, 'disagrees')} with them "
-               "(listed in the file)", err=True)
+    say(f"{os.fspath(output)}: {count(written, 'protocol')} written; "
+        f"{count(disagreeing, 'run')} {agree(disagreeing, 'disagrees')} with them "
+        "(listed in the file)", err=True)

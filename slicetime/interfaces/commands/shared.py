@@ -19,6 +19,8 @@ from typing import Any, Literal, TypeVar
 
 import click
 
+from slicetime.interfaces.screen import say
+
 F = TypeVar("F", bound=Callable[..., Any])
 
 EXIT_FINDINGS = 1
@@ -81,8 +83,8 @@ def former_spelling(old: str, new: str) -> None:
     """The notice (on standard error, so a JSON document on standard output stays
     clean) that an option was used under the spelling of an earlier release, which is
     read, hidden from help, until the next release (DEVELOPERS.md, "Option names")."""
-    click.echo(f"slicetime: {old} is now spelt {new}; the former spelling is read until "
-               "the next release", err=True)
+    say(f"slicetime: {old} is now spelt {new}; the former spelling is read until "
+        "the next release", err=True)
 
 
 #: what ``--jobs`` defaults to (``pipelines.executor.make_executor``): header-only work
@@ -142,7 +144,7 @@ class UserError(click.ClickException):
     exit_code = EXIT_USAGE
 
     def show(self, file: Any = None) -> None:
-        click.echo(f"slicetime: {self.format_message()}", err=True)
+        say(f"slicetime: {self.format_message()}", err=True)
 
 
 def friendly(fn: F) -> F:
@@ -167,18 +169,16 @@ def friendly(fn: F) -> F:
         except (click.ClickException, click.exceptions.Exit, click.Abort, SystemExit):
             raise
         except KeyboardInterrupt:
-            click.echo("slicetime: interrupted", err=True)
+            say("slicetime: interrupted", err=True)
             sys.exit(130)
         except BrokenPipeError:
             sys.exit(0)
         except Exception as exc:  # a bug: keep the user's terminal clean, allow debugging
             if os.environ.get("SLICETIME_DEBUG"):
                 raise
-            click.echo(
-                f"slicetime: internal error ({type(exc).__name__}: {exc}); "
+            say(f"slicetime: internal error ({type(exc).__name__}: {exc}); "
                 "rerun with SLICETIME_DEBUG=1 for the traceback and please report it",
-                err=True,
-            )
+                err=True)
             sys.exit(EXIT_INTERNAL)
 
     return wrapper  # type: ignore[return-value]  # functools.wraps keeps the signature
@@ -214,9 +214,9 @@ def run_executor(jobs: int | None, scheduler: str | None, *, light: bool = True,
         if executor.name == "dask":
             of = (f" of the {stats.cluster_workers} at {scheduler}"
                   if stats.cluster_workers is not None else f" at {scheduler}")
-            click.echo(f"slicetime: ran on {count(len(stats.workers), 'Dask worker')}{of}",
-                       err=True)
+            say(f"slicetime: ran on {count(len(stats.workers), 'Dask worker')}{of}",
+                err=True)
         if stats.retried_chunks:
-            click.echo(f"slicetime: {count(stats.retried_chunks, 'chunk')} retried after a lost "
-                       f"worker, {count(stats.lost_items, 'run')} lost twice", err=True)
+            say(f"slicetime: {count(stats.retried_chunks, 'chunk')} retried after a lost "
+                f"worker, {count(stats.lost_items, 'run')} lost twice", err=True)
         executor.close()

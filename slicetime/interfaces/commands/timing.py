@@ -3,12 +3,12 @@
 from __future__ import annotations
 
 import json
-import sys
 from typing import Any
 
 import click
 
 from slicetime.interfaces.commands.shared import UserError, friendly
+from slicetime.interfaces.screen import say
 from slicetime.model import MAX_REPETITION_TIME
 
 
@@ -120,10 +120,7 @@ def timing(
         fields["MultibandAccelerationFactor"] = multiband
     label = infer_scheme(array_times(protocol)).label
     click.echo(json.dumps(fields) if compact else json.dumps(fields, indent=2))
-    from slicetime.interfaces.screen import ascii_text, unicode_wanted
-
-    shown = label if unicode_wanted(sys.stderr) else ascii_text(label)
-    click.echo(f"scheme in data-array order: {shown}", err=True)
+    say(f"scheme in data-array order: {label}", err=True)
 
 
 #: a TR or delay above this many seconds was written in milliseconds (the

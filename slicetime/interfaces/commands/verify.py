@@ -16,6 +16,7 @@ from slicetime.interfaces.commands.shared import (
     friendly,
     run_executor,
 )
+from slicetime.interfaces.screen import say
 
 
 @click.command()
@@ -39,7 +40,7 @@ def verify(files: tuple[Path, ...], fmt: str, fail_on: str, jobs: int | None,
     2 when a file cannot be read.
     """
     from slicetime.interfaces.report_json import dumps, verdict_of, verify_object
-    from slicetime.interfaces.screen import ascii_text, unicode_wanted, width_for
+    from slicetime.interfaces.screen import unicode_wanted, width_for
     from slicetime.interfaces.verify_screen import run_lines, summary_line, unreadable_lines
     from slicetime.model import Severity
     from slicetime.pipelines.verify import verify_files
@@ -58,7 +59,7 @@ def verify(files: tuple[Path, ...], fmt: str, fail_on: str, jobs: int | None,
     unreadable = [{"file": r.file, "code": r.code or "file/unreadable",
                    "message": r.message or r.file} for r in results if r.outcome is None]
     for item in unreadable:
-        click.echo(f"slicetime: {item['message']}", err=True)
+        say(f"slicetime: {item['message']}", err=True)
     if fmt == "json":
         click.echo(dumps(verify_object(outcomes, unreadable)))
     else:
@@ -71,8 +72,8 @@ def verify(files: tuple[Path, ...], fmt: str, fail_on: str, jobs: int | None,
                 lines = unreadable_lines(result.file, result.message or "", width,
                                          unicode=unicode)
             text = "\n".join(lines)
-            click.echo(text if unicode else ascii_text(text))
-        click.echo(summary_line([verdict_of(o) for o in outcomes], len(unreadable)))
+            say(text)
+        say(summary_line([verdict_of(o) for o in outcomes], len(unreadable)))
     if unreadable:
         sys.exit(EXIT_USAGE)
     if fail_on != "never":
