@@ -9,7 +9,11 @@ one-line errors and the exit codes are in :mod:`slicetime.interfaces.commands.sh
 
 from __future__ import annotations
 
+import difflib
 import importlib
+import sys
+from collections.abc import Sequence
+from typing import Any
 
 import click
 
@@ -51,6 +55,53 @@ class LazyGroup(click.Group):
             self.add_command(command, cmd_name)
         return command
 
+    def resolve_command(self, ctx: click.Context, args: list[str]
+                        ) -> tuple[str | None, click.Command | None, list[str]]:
+        """The command ``args`` name; an unknown name is a usage error that suggests the
+        nearest command (click suggests only options)."""
+        name = args[0] if args else ""
+        if args and self.get_command(ctx, name) is None and not name.startswith("-"):
+            close = difflib.get_close_matches(name, self.list_commands(ctx), n=1)
+            guess = f" (did you mean {close[0]!r}?)" if close else ""
+            raise click.UsageError(f"no command {name!r}{guess}; {ctx.command_path} --help "
+                                   "lists them", ctx)
+        return super().resolve_command(ctx, args)
+
+    def invoke(self, ctx: click.Context) -> Any:
+        try:
+            return super().invoke(ctx)
+        except click.UsageError as exc:
+            if exc.ctx is None:  # click's parser leaves some without (a missing value)
+                exc.ctx = ctx  # the group's: usage_line adds the command being parsed
+            raise
+
+    def main(self, args: Sequence[str] | None = None, prog_name: str | None = None,
+             complete_var: str | None = None, standalone_mode: bool = True,
+             windows_expand_args: bool = True, **extra: Any) -> Any:
+        """Click's entry point, with every usage mistake told in one line (the command,
+        the option or argument and what is wrong with it, click's "did you mean" kept)
+        and exit 2, instead of click's usage, help hint and error lines. ``--help`` and
+        ``--version`` are click's own."""
+        if not standalone_mode:  # a caller that handles click's exceptions itself
+            return super().main(args, prog_name, complete_var, standalone_mode=False,
+                                windows_expand_args=windows_expand_args, **extra)
+        try:
+            code = super().main(args, prog_name, complete_var, standalone_mode=False,
+                                windows_expand_args=windows_expand_args, **extra)
+        except click.exceptions.NoArgsIsHelpError as exc:  # no command: the help
+            exc.show()
+            sys.exit(exc.exit_code)
+        except click.UsageError as exc:
+            _say_error(usage_line(exc))
+            sys.exit(exc.exit_code)
+        except click.ClickException as exc:  # the commands' own one-line errors
+            exc.show()
+            sys.exit(exc.exit_code)
+        except click.Abort:  # Ctrl-C (or end of input) before a command started
+            _say_error("slicetime: interrupted before anything was done")
+            sys.exit(130)
+        sys.exit(code if isinstance(code, int) else 0)
+
     def format_commands(self, ctx: click.Context, formatter: click.HelpFormatter) -> None:
         """The command table of ``slicetime --help`` from the one-line helps of
         :data:`COMMANDS` (no command module imported): each summary whole, wrapped
@@ -61,6 +112,24 @@ class LazyGroup(click.Group):
         rows = [(name, COMMANDS[name][1]) for name in names if name in COMMANDS]
         with formatter.section("Commands"):
             formatter.write_dl(rows)
+
+
+def usage_line(exc: click.UsageError) -> str:
+    """A usage mistake as one line: the command it was made on, then click's message
+    (which names the option, argument or file and keeps its "did you mean"), e.g.
+    ``slicetime correct: invalid value for '--out': Directory 'x' is a file.``"""
+    ctx = exc.ctx
+    where = ctx.command_path if ctx is not None else "slicetime"
+    if ctx is not None and isinstance(ctx.command, click.Group) and ctx.invoked_subcommand:
+        where += f" {ctx.invoked_subcommand}"  # the mistake is in the command's options
+    message = " ".join(exc.format_message().split())  # one line, whatever click wrote
+    return f"{where}: {message[:1].lower()}{message[1:]}"
+
+
+def _say_error(line: str) -> None:
+    from slicetime.interfaces.screen import say
+
+    say(line, err=True)
 
 
 EXIT_STATUSES = """\b
