@@ -463,6 +463,15 @@ class ResolvedTiming:
     outside: tuple[int, ...] = ()
     units: Mapping[str, UnitVerdict] = dataclasses.field(default_factory=dict)
 
+    @property
+    def repetition_origin(self) -> str | None:
+        """What gave ``repetition_time``: ``sidecar`` (``RepetitionTime``), ``header``
+        (``pixdim[4]``: read only when no applicable sidecar gives a usable
+        ``RepetitionTime`` or ``VolumeTiming``, which ``tr/missing`` reports; BIDS takes
+        the TR from the sidecar, so every screen says the header's TR is the header's
+        only), or None without a TR. Decided here once; screens and reports read it."""
+        return None if self.repetition_source is None else self.repetition_source.kind
+
     def unit(self, field: str) -> str:
         """The unit ``field`` was written in (``s`` when no verdict was needed)."""
         verdict = self.units.get(field)

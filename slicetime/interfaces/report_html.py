@@ -70,7 +70,7 @@ from slicetime.interfaces.report_stream import (
     run_line,
 )
 from slicetime.interfaces.safe_text import xml_safe
-from slicetime.interfaces.screen import strip_path_prefix
+from slicetime.interfaces.screen import repetition_text, strip_path_prefix
 from slicetime.model import RunRecord, Severity
 from slicetime.numbers import duration, secs
 from slicetime.pipelines.audit import AuditResult, AuditTotals, RunFacts, RunResult
@@ -202,7 +202,8 @@ def _run_facts(record: RunRecord) -> tuple[tuple[str, str], ...]:
         facts.append(("shape", " × ".join(str(d) for d in header.shape)))
     tr = record.timing.repetition_time  # resolved: the sidecar's, else the header's
     if tr is not None:
-        facts.append(("repetition time", secs(tr)))
+        facts.append(("repetition time",
+                      repetition_text(tr, record.timing.repetition_origin)))
     if schedule is not None:
         facts.append(("slice axis", encoding_direction(schedule.axis, schedule.direction) + (
             " (SliceTiming lists the highest index first)" if schedule.direction == "-" else "")))
@@ -536,7 +537,8 @@ def _page_data(source: ReportSource, collector: DiagramCollector,
             columns(xml_safe(_column_of(facts, suffixes))),
             collector.run_facts[index], collector.run_sources[index],
             findings, collector.run_own[index],
-            opt(secs(tr) if tr else None), slices, tr if tr else -1,
+            opt(repetition_text(tr, facts.timing.repetition_origin) if tr else None),
+            slices, tr if tr else -1,
             shared_of.get(index, []),
         ]
         yield ("," if index else "") + _safe_in_script(encode(row))

@@ -83,6 +83,8 @@ def run_parts(run: RunResult) -> tuple[dict[str, Any], str | None, dict[str, Any
         "slice_encoding_direction": encoding_direction(schedule.axis, schedule.direction)
         if schedule else None,
         "repetition_time": _time(record.timing.repetition_time),  # seconds, resolved
+        # what gave it: "sidecar", or "header" when no sidecar gives a usable TR
+        "repetition_time_source": record.timing.repetition_origin,
         "volume_times": json_times(schedule.volume_times) if schedule and schedule.volume_times
         else None,
         "acquisition_duration": _time(schedule.acquisition_duration) if schedule else None,

@@ -41,8 +41,8 @@ from slicetime.interfaces.grouping import (
     runs_phrase,
 )
 from slicetime.interfaces.safe_text import escape_char, xml_safe
-from slicetime.model import Counts, FailOn, Finding, Scheme, Severity
-from slicetime.numbers import fixed, json_times, plain, secs
+from slicetime.model import Counts, FailOn, Finding, ResolvedTiming, Scheme, Severity
+from slicetime.numbers import fixed, json_times, plain
 from slicetime.numbers import shown as shown_number
 from slicetime.pipelines.audit import AuditResult, AuditTotals, RunFacts, RunResult, dataset_names
 from slicetime.rules.dataset import protocol_key
@@ -322,8 +322,9 @@ def write_jsonl(source: ReportSource, out: IO[str]) -> None:
 
 # --------------------------------------------------------------------------- TSV
 
-TSV_COLUMNS = ("path", "dataset", "task", "scheme", "repetition_time", "slices",
-               "multiband_factor", "errors", "warnings", "notes", "codes", "applies_to")
+TSV_COLUMNS = ("path", "dataset", "task", "scheme", "repetition_time",
+               "repetition_time_source", "slices", "multiband_factor", "errors", "warnings",
+               "notes", "codes", "applies_to")
 
 
 def _cell(value: object) -> str:
@@ -342,7 +343,9 @@ def write_tsv(source: ReportSource, out: IO[str]) -> None:
     the runs come from several roots (one name, repeated on every row, told nothing).
     Tabs, line breaks and control characters in values are written as visible escapes
     (``\\t``, ``\\n``), so every row is one line with exactly the header's columns.
-    ``codes`` lists the distinct finding codes, sorted, separated by commas."""
+    ``codes`` lists the distinct finding codes, sorted, separated by commas;
+    ``repetition_time_source`` says what gave ``repetition_time`` (``header``: the
+    image header's only, no sidecar gives it), as in the JSON report."""
     totals = source.totals
     grouping = group_findings(source)
     several = several_roots(totals)
@@ -356,14 +359,15 @@ def write_tsv(source: ReportSource, out: IO[str]) -> None:
         dataset = totals.names.get(facts.root, facts.root) if several else None
         row = (obj["path"], dataset,
                obj.get("entities", {}).get("task"), scheme.get("label"),
-               obj.get("repetition_time"), slices, scheme.get("multiband_factor"),
+               obj.get("repetition_time"), obj.get("repetition_time_source"), slices,
+               scheme.get("multiband_factor"),
                *grouping.own_counts(index, facts.counts), codes, None)
         out.write("\t".join(_cell(v) for v in row) + "\n")
     for group in grouping.shared:
         f = group.finding
         counts = tuple(int(f["severity"] == s) for s in SEVERITIES)
         dataset = totals.names.get(group.root, group.root) if several else None
-        row = (f["file"], dataset, None, None, None, None, None, *counts, f["code"],
+        row = (f["file"], dataset, None, None, None, None, None, None, *counts, f["code"],
                len(group.runs))
         out.write("\t".join(_cell(v) for v in row) + "\n")
 
@@ -403,12 +407,20 @@ def group_label(key: tuple[str, ...], root_label: str | None = None) -> str:
     return f"{root_label} {name}" if root_label else name
 
 
-def _tr_text(values: Iterable[float | None]) -> str:
-    known = sorted({round(v, 3) for v in values if v})
+def _tr_text(timings: Iterable[ResolvedTiming]) -> str:
+    """The TRs of a run group (at most three), and how many of its runs have the
+    header's TR only (``ResolvedTiming.repetition_origin``)."""
+    given = [(t.repetition_time, t.repetition_origin) for t in timings if t.repetition_time]
+    known = sorted({round(v, 3) for v, _ in given})
     if not known:
         return "—"
     shown = ", ".join(fixed(v, 3) for v in known[:3]) + (", …" if len(known) > 3 else "")
-    return f"{shown} s"
+    header = sum(1 for _, origin in given if origin == "header")
+    if not header:
+        return f"{shown} s"
+    if header == len(given):
+        return f"{shown} s ({screen.HEADER_ONLY})"
+    return f"{shown} s ({count(header, 'run')}: {screen.HEADER_ONLY})"
 
 
 def finding_screen_lines(f: dict[str, Any], width: int | None, *, run_path: str | None = None,
@@ -544,7 +556,7 @@ def write_text(source: ReportSource, out: IO[str], *, show_all: bool = False,
             scheme_text = "; ".join(
                 f"{xml_safe(label)} ×{n}" if len(schemes) > 1 else xml_safe(label)
                 for label, n in sorted(schemes.items(), key=lambda kv: (-kv[1], kv[0])))
-            trs = _tr_text(totals.facts[i].timing.repetition_time for i in members)
+            trs = _tr_text(totals.facts[i].timing for i in members)
             sums = [sum(totals.facts[i].counts[k] for i in members) for k in range(len(kinds))]
             root_label = f"[{totals.names.get(key[0], key[0])}]" if several else None
             rows.append((xml_safe(group_label(key, root_label)), str(len(members)), trs,
@@ -589,7 +601,9 @@ def write_text(source: ReportSource, out: IO[str], *, show_all: bool = False,
             counts = f"{counts}; {told}" if counts else told
         counts = counts or "no findings"
         name = display_path(totals, facts, xml_safe(obj["path"]), several=several)
-        rest = f"{xml_safe(scheme)}{f'  TR {secs(tr)}' if tr else ''}  ({counts})"
+        tr_text = (f"  TR {screen.repetition_text(tr, facts.timing.repetition_origin)}"
+                   if tr else "")
+        rest = f"{xml_safe(scheme)}{tr_text}  ({counts})"
         for line in _run_head(name, rest, fit, paint):
             out.write(line + "\n")
         shown = [f for f in grouping.own(index, obj["findings"])

@@ -25,6 +25,10 @@ import shutil
 from collections.abc import Callable, Sequence
 from typing import Any
 
+#: what a screen adds to a TR that only the image header gives (no applicable sidecar
+#: has a usable RepetitionTime or VolumeTiming: ``ResolvedTiming.repetition_origin``)
+HEADER_ONLY = "header only"
+
 #: the narrowest width honoured; below it lines are cut at 40 columns
 MIN_WIDTH = 40
 #: the severity words, padded to one column so codes line up
@@ -64,6 +68,16 @@ _ASCII = str.maketrans({
     "┴": "+", "┏": "+", "┓": "+", "┗": "+", "┛": "+", "┡": "+", "┩": "+", "╭": "+",
     "╮": "+", "╰": "+", "╯": "+", "█": "#", "▏": "|", "•": "*", "✓": "ok", "✗": "x",
 })
+
+
+def repetition_text(seconds: float, origin: str | None) -> str:
+    """A run's TR for people: ``2 s``, or ``2 s (header only)`` when it is the image
+    header's only (``origin``: ``ResolvedTiming.repetition_origin``). Every screen that
+    shows a run's TR (text report, ``show``, HTML) writes it with this."""
+    from slicetime.numbers import secs
+
+    text = secs(seconds)
+    return f"{text} ({HEADER_ONLY})" if origin == "header" else text
 
 
 def ascii_text(text: str) -> str:

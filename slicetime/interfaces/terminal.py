@@ -133,7 +133,8 @@ def render_show(run: RunResult, console: Console) -> None:
                          if schedule.direction == "-" else "")))
     timing = record.timing
     if timing.repetition_time is not None:  # resolved: the sidecar's, else the header's
-        facts.append(("repetition time", secs(timing.repetition_time)))
+        facts.append(("repetition time", screen.repetition_text(
+            timing.repetition_time, timing.repetition_origin)))
     if schedule is not None:
         if schedule.volume_times:
             facts.append(("volume times",

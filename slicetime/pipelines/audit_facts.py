@@ -21,6 +21,7 @@ from slicetime.model import (
     RunRecord,
     Scheme,
     SliceSchedule,
+    Source,
     TimingViews,
     UnitVerdict,
 )
@@ -166,17 +167,20 @@ class Interner:
 
     def timing(self, value: ResolvedTiming) -> ResolvedTiming:
         """The resolved timing without what no fact reader needs (the schedule's sources,
-        the problems, the TR's source file, the verdicts' evidence), shared."""
+        the problems, the file the TR came from, the verdicts' evidence), shared."""
         schedule = self.schedule(value.schedule)
         # the times, the window and what lies outside it follow from the schedule, the
         # TR and the units: the key needs only those
         units = tuple([(k, v.unit) for k, v in value.units.items()])
+        tr_source = value.repetition_source  # its kind and field, kept (not its file)
+        tr_from = None if tr_source is None else Source(tr_source.kind, tr_source.field)
         key = ("r", id(schedule), value.origin, value.axis_length, value.repetition_time,
-               value.window_name, units)
+               value.window_name, units, tr_from)
         found = self._values.get(key)
         if found is None:
             found = self._values[key] = ResolvedTiming(
-                schedule, value.origin, (), value.axis_length, value.repetition_time, None,
+                schedule, value.origin, (), value.axis_length, value.repetition_time,
+                tr_from,
                 value.times, value.window, value.window_name, value.outside,
                 {k: UnitVerdict(k, u) for k, u in units})
         return found

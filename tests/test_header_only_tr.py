@@ -1,0 +1,92 @@
+"""A TR that only the image header gives is said to be the header's only, on every
+screen and in every report.
+
+BIDS ("Task imaging data", "Required fields"): RepetitionTime belongs in the
+sidecar; the NIfTI header's pixdim[4] (nibabel: ``header.get_zooms()[3]``) is what is
+left when no sidecar gives it, which ``tr/missing`` reports.
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+import json
+from pathlib import Path
+
+import jsonschema
+import nibabel as nib
+import pytest
+from click.testing import CliRunner
+
+from slicetime.interfaces.cli import cli
+from slicetime.interfaces.report_json import report_schema
+from tests.helpers_bids import write_description, write_run
+
+HEADER_ONLY = "sub-01/func/sub-01_task-a_bold.nii.gz"
+SIDECAR_TR = "sub-02/func/sub-02_task-a_bold.nii.gz"
+
+
+def invoke(*args: str) -> tuple[int, str]:
+    result = CliRunner().invoke(cli, list(args), env={"COLUMNS": "200"})
+    return result.exit_code, result.stdout
+
+
+@pytest.fixture()
+def root(tmp_path: Path) -> Path:
+    write_description(tmp_path)
+    # no RepetitionTime in any sidecar, and SliceTiming in milliseconds: two errors
+    write_run(tmp_path, HEADER_ONLY, shape=(4, 4, 3, 8), tr=2.0,
+              sidecar={"SliceTiming": [0, 500, 1000]})
+    write_run(tmp_path, SIDECAR_TR, shape=(4, 4, 3, 8), tr=2.0,
+              sidecar={"RepetitionTime": 2.0, "SliceTiming": [0, 0.5, 1.0]})
+    # the header holds the TR the screens show (nibabel reads pixdim[4])
+    assert nib.load(tmp_path / HEADER_ONLY).header.get_zooms()[3] == 2.0
+    return tmp_path
+
+
+def test_the_resolved_timing_says_where_the_tr_came_from(root: Path) -> None:
+    from slicetime.pipelines.audit import audit_paths
+
+    result = audit_paths([root])
+    origin = {r.record.path: r.record.timing.repetition_origin for r in result.runs}
+    assert origin == {HEADER_ONLY: "header", SIDECAR_TR: "sidecar"}
+    codes = {r.record.path: {f.code for f in r.findings} for r in result.runs}
+    assert "tr/missing" in codes[HEADER_ONLY] and "tr/missing" not in codes[SIDECAR_TR]
+
+
+def test_every_screen_says_the_tr_is_the_headers_only(root: Path) -> None:
+    code, text = invoke("audit", str(root), "--all")
+    assert code == 1
+    line = next(x for x in text.splitlines() if x.startswith(HEADER_ONLY))
+    assert "TR 2 s (header only)" in line
+    other = next(x for x in text.splitlines() if x.startswith(SIDECAR_TR))
+    assert "TR 2 s" in other and "header only" not in other
+    # the run group's TR: one of its two runs has the header's only
+    row = next(x for x in text.splitlines() if x.startswith("func: task-a_bold"))
+    assert "2 s (1 run: header only)" in row
+
+    _, shown = invoke("show", str(root / HEADER_ONLY))
+    assert any(x.split() == ["repetition", "time", "2", "s", "(header", "only)"]
+               for x in shown.splitlines()), shown
+    _, shown = invoke("show", str(root / SIDECAR_TR))
+    assert "header only" not in shown
+
+    _, tsv = invoke("audit", str(root), "--format", "tsv")
+    rows = {r["path"]: r for r in csv.DictReader(io.StringIO(tsv), delimiter="\t")}
+    assert rows[HEADER_ONLY]["repetition_time_source"] == "header"
+    assert rows[SIDECAR_TR]["repetition_time_source"] == "sidecar"
+
+    _, report = invoke("audit", str(root), "--format", "json")
+    doc = json.loads(report)
+    jsonschema.validate(doc, report_schema())
+    runs = {r["path"]: r for r in doc["runs"]}
+    assert runs[HEADER_ONLY]["repetition_time_source"] == "header"
+    assert runs[SIDECAR_TR]["repetition_time_source"] == "sidecar"
+    _, one = invoke("show", str(root / HEADER_ONLY), "--format", "json")
+    assert json.loads(one)["repetition_time_source"] == "header"
+
+    page = root.parent / "report.html"
+    invoke("audit", str(root), "--html", str(page))
+    html = page.read_text(encoding="utf-8")
+    assert html.count('"2 s (header only)"') == 2  # the run's facts and its row
+
