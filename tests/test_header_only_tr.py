@@ -1,5 +1,5 @@
 """A TR that only the image header gives is said to be the header's only, on every
-screen and in every report.
+screen and in every report, and the run-group table counts runs.
 
 BIDS ("Task imaging data", "Required fields"): RepetitionTime belongs in the
 sidecar; the NIfTI header's pixdim[4] (nibabel: ``header.get_zooms()[3]``) is what is
@@ -90,3 +90,21 @@ def test_every_screen_says_the_tr_is_the_headers_only(root: Path) -> None:
     html = page.read_text(encoding="utf-8")
     assert html.count('"2 s (header only)"') == 2  # the run's facts and its row
 
+
+def test_the_run_group_table_counts_runs(root: Path) -> None:
+    code, text = invoke("audit", str(root))
+    head, row = text.splitlines()[:2]
+    columns = head.split("  ")
+    columns = [c.strip() for c in columns if c.strip()]
+    assert columns[:6] == ["run group", "runs", "TR", "with errors", "with warnings",
+                           "with notes"]
+    # the run group: 2 runs, one of them with two errors; the with-columns count runs
+    _, report = invoke("audit", str(root), "--format", "json")
+    summary = json.loads(report)["summary"]
+    assert summary["error"] >= 2 and summary["runs_affected"]["error"] == 1
+    cells = row.split()
+    # run group name (2 words), runs, TR (2 words + "(1 run: header only)" = 4 words)
+    numbers = [c for c in cells[2:] if c.isdigit()]
+    assert numbers[0] == "2"  # runs
+    assert numbers[-3:] == [str(summary["runs_affected"][k])
+                            for k in ("error", "warning", "note")]

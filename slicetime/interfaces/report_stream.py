@@ -557,11 +557,14 @@ def write_text(source: ReportSource, out: IO[str], *, show_all: bool = False,
                 f"{xml_safe(label)} ×{n}" if len(schemes) > 1 else xml_safe(label)
                 for label, n in sorted(schemes.items(), key=lambda kv: (-kv[1], kv[0])))
             trs = _tr_text(totals.facts[i].timing for i in members)
-            sums = [sum(totals.facts[i].counts[k] for i in members) for k in range(len(kinds))]
+            # runs, not findings: how many of the group's runs have one of each severity
+            sums = [sum(1 for i in members if totals.facts[i].counts[k])
+                    for k in range(len(kinds))]
             root_label = f"[{totals.names.get(key[0], key[0])}]" if several else None
             rows.append((xml_safe(group_label(key, root_label)), str(len(members)), trs,
                          *(str(s) for s in sums), scheme_text))
-        head = (GROUP_HEAD, "runs", "TR", *(plural_of(k) for k in kinds), "schemes")
+        head = (GROUP_HEAD, "runs", "TR", *(f"with {plural_of(k)}" for k in kinds),
+                "schemes")
         right = {1, *range(3, 3 + len(kinds))}
         for line in _table(rows, head, right, (None, None, None, *kinds), fit, paint):
             out.write(line + "\n")
