@@ -203,6 +203,9 @@ class CorrectResult:
     runs: list[RunOutcome] = field(default_factory=list)
     dataset_findings: list[Finding] = field(default_factory=list)
     omitted: int = 0  # --omit-leading
+    #: a Ctrl-C (or SIGTERM) arrived after every run was done, while the records were
+    #: written: noted, not obeyed (the batch finished; ``pipelines.signals``)
+    late_signal: bool = False
 
     def counts(self) -> dict[str, int]:
         counts = {"corrected": 0, "up-to-date": 0, "refused": 0, "failed": 0}

@@ -57,6 +57,7 @@ from slicetime.pipelines.provenance import (
     write_description,
     write_provenance,
 )
+from slicetime.pipelines.signals import signals_noted, test_point
 from slicetime.readers.atomic import (
     FolderBusy,
     folder_lock,
@@ -180,24 +181,32 @@ def _correct_locked(
             failed_of=lambda outcome: not outcome.ok,
         )
     except Interrupted as stop:
-        # the workers are gone: what is on disk now is final; report exactly that
+        # the workers are gone: what is on disk now is final; report exactly that, with
+        # the records written whole (another Ctrl-C meanwhile is noted, not obeyed)
         remove_stale_temporaries(options.out)
-        finished: list[RunOutcome] = []
-        for item, outcome in zip(items, stop.results, strict=True):
-            found = outcome if outcome is not None else _found_on_disk(item, options, started)
-            if found is not None:
-                finished.append(found)
-        result.runs = _in_input_order(audit.runs, finished, clashes)
-        _withdraw_stale(options, audit.runs, result.runs)
-        done_paths = {r.path for r in finished}
-        _finish(options, roots, links, result, created_out,
-                unfinished=[run.record.path for run, _ in items
-                            if run.record.path not in done_paths])
+        with signals_noted():
+            finished: list[RunOutcome] = []
+            for item, outcome in zip(items, stop.results, strict=True):
+                found = (outcome if outcome is not None
+                         else _found_on_disk(item, options, started))
+                if found is not None:
+                    finished.append(found)
+            result.runs = _in_input_order(audit.runs, finished, clashes)
+            _withdraw_stale(options, audit.runs, result.runs)
+            done_paths = {r.path for r in finished}
+            _finish(options, roots, links, result, created_out,
+                    unfinished=[run.record.path for run, _ in items
+                                if run.record.path not in done_paths])
         raise CorrectInterrupted(result, len(items) - len(finished)) from None
-    result.runs = _in_input_order(audit.runs, done, clashes)
-    _withdraw_stale(options, audit.runs, result.runs)
-    remove_stale_temporaries(options.out)  # of a worker that was lost
-    _finish(options, roots, links, result, created_out)
+    # every run is done: the outputs in place and the records written whole, whatever
+    # signal arrives now (noted: the batch is reported finished, and says so)
+    with signals_noted() as late:
+        result.runs = _in_input_order(audit.runs, done, clashes)
+        _withdraw_stale(options, audit.runs, result.runs)
+        remove_stale_temporaries(options.out)  # of a worker that was lost
+        test_point("correct:records")
+        _finish(options, roots, links, result, created_out)
+    result.late_signal = bool(late)
     return result
 
 

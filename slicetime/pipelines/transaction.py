@@ -27,11 +27,9 @@ import secrets
 import signal
 import socket
 import stat
-import threading
 from collections.abc import Iterator, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
 
 from slicetime import __version__
 from slicetime.pipelines.journal import (
@@ -51,6 +49,7 @@ from slicetime.pipelines.journal import (
     root_identity,
     sha256_of,
 )
+from slicetime.pipelines.signals import signals_noted
 from slicetime.readers.atomic import (
     WriteRefused,
     check_write_target,
@@ -342,27 +341,6 @@ def _clear_rolled_back(backup: Path) -> None:
         journal.unlink()
 
 
-@contextlib.contextmanager
-def _signals_noted() -> Iterator[list[int]]:
-    """While the block runs, SIGINT and SIGTERM are noted instead of stopping the
-    process at once, so that the apply stops between two files and puts back what it
-    wrote (a signal can arrive only in the main thread; elsewhere nothing changes)."""
-    got: list[int] = []
-    if threading.current_thread() is not threading.main_thread():
-        yield got
-        return
-
-    def note(signum: int, frame: Any) -> None:
-        got.append(signum)
-
-    previous = {sig: signal.signal(sig, note) for sig in (signal.SIGINT, signal.SIGTERM)}
-    try:
-        yield got
-    finally:
-        for sig, handler in previous.items():
-            signal.signal(sig, handler)
-
-
 def apply_changes(
     changes: Sequence[PlannedWrite], *, backup_dir: Path | None = None,
     replace_links: bool = False, rewrite_read_only: bool = False,
@@ -427,7 +405,9 @@ def _apply_checked(changes: Sequence[PlannedWrite], roots: list[str],
     token = secrets.token_hex(8)
     ids = [root_identity(r) for r in roots]
     entries: list[JournalEntry] = []
-    with _signals_noted() as signals:
+    # a signal is noted, so that the apply stops between two files and puts back what
+    # it wrote; one after the last file lets the journal be finished ("applied")
+    with signals_noted() as signals:
         for change in changes:
             path = change.path
             entry = JournalEntry(change.root, change.file, "created", None,

@@ -6,6 +6,7 @@ import contextlib
 import sys
 from collections.abc import Sequence
 from pathlib import Path
+from typing import NoReturn
 
 import click
 
@@ -98,10 +99,10 @@ def correct(
     from slicetime.interfaces.safe_text import xml_safe
     from slicetime.interfaces.terminal import make_console, progress_reporter, render_correct
     from slicetime.pipelines.correct import CorrectOptions
-    from slicetime.pipelines.correct_batch import CorrectInterrupted, correct_paths
+    from slicetime.pipelines.correct_batch import correct_paths
     from slicetime.pipelines.memory import parse_size
+    from slicetime.pipelines.signals import signals_noted, test_point
     from slicetime.rules.correction import parse_accept
-    from slicetime.words import count
 
     try:
         choice = ReferenceChoice.parse(reference)
@@ -121,32 +122,53 @@ def correct(
                              keep_dtype=keep_dtype, force=force, max_memory=cap, threads=0,
                              mix_inputs=mix_inputs, accepts=accepted,
                              omit_leading=omit_leading)
-    with shared.run_executor(jobs, scheduler, light=False) as executor, \
-            (contextlib.nullcontext(None) if no_progress
-             else progress_reporter("correcting")) as progress:
-        try:
+    result = None
+    late = False
+    try:
+        with shared.run_executor(jobs, scheduler, light=False) as executor, \
+                (contextlib.nullcontext(None) if no_progress
+                 else progress_reporter("correcting")) as progress:
             result = correct_paths(
                 list(paths), options, progress=progress, policy_file=policy_file,
                 include_derivatives=include_derivatives, include_sourcedata=include_sourcedata,
                 include_hidden=include_hidden, executor=executor, verify=verify_data,
             )
-        except CorrectInterrupted as stop:
-            if not stop.result.runs:  # nothing finished: no summary of zero runs
-                say(f"slicetime: interrupted before any run was corrected; nothing "
-                    f"written ({count(stop.not_finished, 'run')} to do: rerun the same "
-                    "command)", err=True)
-                sys.exit(130)
-            render_correct(stop.result, make_console(sys.stderr))
-            say(f"slicetime: interrupted; {count(stop.not_finished, 'run')} not finished "
-                "(rerun the same command to finish them)", err=True)
-            sys.exit(130)
-        except ValueError as exc:
-            raise UserError(xml_safe(str(exc))) from None
-        except OSError as exc:
-            raise UserError(xml_safe(f"{out}: cannot write the outputs ({exc.strerror or exc})")
-                            ) from None
-    if fmt == "json":
-        click.echo(dumps(correct_object(result)))
-    else:
-        render_correct(result, make_console())
+            test_point("correct:closing")
+    except KeyboardInterrupt as stop:
+        if result is None:  # the batch was not done (CorrectInterrupted: partly)
+            _interrupted(stop)
+        late = True  # while the workers and the progress bar closed: the batch is done
+    except ValueError as exc:
+        raise UserError(xml_safe(str(exc))) from None
+    except OSError as exc:
+        raise UserError(xml_safe(f"{out}: cannot write the outputs ({exc.strerror or exc})")
+                        ) from None
+    assert result is not None
+    with signals_noted() as noted:  # the batch is done: its summary is printed whole
+        test_point("correct:summary")
+        if fmt == "json":
+            click.echo(dumps(correct_object(result)))
+        else:
+            render_correct(result, make_console())
+    if late or noted or result.late_signal:
+        shared.say_finished_despite_interrupt("the batch")
     sys.exit(result.exit_code())
+
+
+def _interrupted(stop: KeyboardInterrupt) -> NoReturn:
+    """Ctrl-C before the batch was done: what finished and what did not, exit 130 (a
+    Ctrl-C before any run was started goes on to the one-line "interrupted")."""
+    from slicetime.interfaces.terminal import make_console, render_correct
+    from slicetime.pipelines.correct_batch import CorrectInterrupted
+    from slicetime.words import count
+
+    if not isinstance(stop, CorrectInterrupted):
+        raise stop
+    if not stop.result.runs:  # nothing finished: no summary of zero runs
+        say(f"slicetime: interrupted before any run was corrected; nothing written "
+            f"({count(stop.not_finished, 'run')} to do: rerun the same command)", err=True)
+        sys.exit(130)
+    render_correct(stop.result, make_console(sys.stderr))
+    say(f"slicetime: interrupted; {count(stop.not_finished, 'run')} not finished "
+        "(rerun the same command to finish them)", err=True)
+    sys.exit(130)

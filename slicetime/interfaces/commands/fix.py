@@ -17,6 +17,7 @@ from slicetime.interfaces.commands.shared import (
     friendly,
     policy_option,
     run_executor,
+    say_finished_despite_interrupt,
     source_options,
     source_settings,
 )
@@ -91,6 +92,8 @@ def fix(
     from slicetime.interfaces.safe_text import xml_safe
     from slicetime.interfaces.terminal import make_console, render_fix_plan
     from slicetime.pipelines import fix as fixing
+    from slicetime.pipelines.signals import signals_noted, test_point
+    from slicetime.words import agree, count
 
     console = make_console()
     try:
@@ -149,33 +152,57 @@ def fix(
         where = f"{exc.filename}: " if exc.filename else ""
         raise UserError(xml_safe(f"{where}cannot write ({exc.strerror or exc}); nothing in "
                                  "the dataset was changed")) from None
-    _say("slicetime: ", applied.recovered, err=True)
-    _say("written   ", applied.written)
-    _say("refused   ", applied.refused)
-    if applied.refused:
-        say(f"nothing was written: {len(applied.refused)} of {len(plan.changes)} files "
-            "would be refused, and a plan is applied whole or not at all")
-    if applied.journal is not None:
-        journal = xml_safe(applied.journal)
-        from slicetime.interfaces import screen
-
-        width = screen.width_for(sys.stdout)
-        for label, value in (("backups and journal:", journal),
-                             ("undo with:", f"slicetime fix --undo {journal}")):
-            # a path is never cut (it is copied from here): too long, it goes on its own line
-            if width is None or len(label) + 1 + len(value) <= width:
-                say(f"{label} {value}")
-            else:
-                say(f"{label}\n  {value}")
-    left = (fixing.reaudit(plan, policy_file=policy_file,
-                           source=source_settings(source_check, source_map))
-            if applied.written else [])
-    if left:
+    code = 1 if applied.refused or plan.unplanned else 0
+    with signals_noted() as noted:  # the files are written: this summary is printed whole
+        test_point("fix:summary")
+        _say("slicetime: ", applied.recovered, err=True)
+        _say("written   ", applied.written)
+        _say("refused   ", applied.refused)
+        if applied.refused:
+            say(f"nothing was written: {len(applied.refused)} of {len(plan.changes)} files "
+                "would be refused, and a plan is applied whole or not at all")
+        if applied.journal is not None:
+            _say_journal(xml_safe(applied.journal))
+    if not applied.written or applied.journal is None:
+        if noted:
+            say_finished_despite_interrupt("the apply")
+        sys.exit(code)
+    # the re-audit is what is left: a Ctrl-C before or during it stops there, and says so
+    undo = f"slicetime fix --undo {xml_safe(applied.journal)}"
+    n = len(applied.written)
+    stopped = f"the {count(n, 'file')} above {agree(n, 'was')} written (undo with: {undo})"
+    if noted:
+        say(f"slicetime: interrupted before the re-audit; {stopped}", err=True)
+        sys.exit(130)
+    try:
+        test_point("fix:reaudit")
+        left = fixing.reaudit(plan, policy_file=policy_file,
+                              source=source_settings(source_check, source_map))
+    except KeyboardInterrupt:
+        say(f"slicetime: interrupted during the re-audit (not finished); {stopped}", err=True)
+        sys.exit(130)
+    with signals_noted() as noted:
         for finding in left:
             say(f"still     {xml_safe(finding.one_line())}")
-    elif applied.written:
-        say("re-audit: the repaired runs are clean for the repaired codes")
-    sys.exit(1 if applied.refused or plan.unplanned else 0)
+        if not left:
+            say("re-audit: the repaired runs are clean for the repaired codes")
+    if noted:
+        say_finished_despite_interrupt("fix --apply")
+    sys.exit(code)
+
+
+def _say_journal(journal: str) -> None:
+    """Where the backups and the journal are, and the undo command, each whole (a path
+    is copied from here): too long for the screen, it goes on its own line."""
+    from slicetime.interfaces import screen
+
+    width = screen.width_for(sys.stdout)
+    for label, value in (("backups and journal:", journal),
+                         ("undo with:", f"slicetime fix --undo {journal}")):
+        if width is None or len(label) + 1 + len(value) <= width:
+            say(f"{label} {value}")
+        else:
+            say(f"{label}\n  {value}")
 
 
 def _say(label: str, items: Iterable[str], note: str = "", *, err: bool = False) -> None:

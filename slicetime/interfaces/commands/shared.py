@@ -138,6 +138,14 @@ def source_options(*, switch: bool = True, purpose: str = "") -> Callable[[F], F
     )
 
 
+def say_finished_despite_interrupt(work: str) -> None:
+    """The line for a Ctrl-C (or SIGTERM) that arrived after ``work`` was done, while
+    its records were written or its summary printed: it was noted, not obeyed, so the
+    command finished and exits as it would have (``pipelines.signals``)."""
+    say(f"slicetime: Ctrl-C came after {work} was done; it finished as reported above",
+        err=True)
+
+
 class UserError(click.ClickException):
     """A one-line problem with what the user asked for (exit 2)."""
 

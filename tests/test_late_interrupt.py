@@ -1,0 +1,106 @@
+"""Ctrl-C in the last instant of ``correct`` and ``fix --apply`` (after the work, while
+records are written or the summary is printed): the outcome is told honestly, either
+finished (the whole summary, the usual exit status, one line saying the Ctrl-C came
+after the work) or interrupted (one line saying what was and was not done, exit 130).
+
+Each case runs the command in its own process, which sends itself SIGINT at a named
+point (``SLICETIME_TEST_SIGINT_AT``, the private hook of ``slicetime.pipelines.signals``).
+Exit 130 for an interrupted command: 128 + SIGINT's number 2, as a shell reports a
+process ended by a signal (common practice (no source); the project's exit-status
+contract).
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from slicetime.schemes.generate import Protocol, slice_timing
+from tests.helpers_bids import write_description, write_run
+
+TR = 2.0
+RUN = "sub-01/func/sub-01_task-hum_bold.nii.gz"
+OWN = "sub-01/func/sub-01_task-hum_bold.json"
+
+
+def seconds() -> list[float]:
+    return [float(t) for t in slice_timing(Protocol(n_slices=6, order="interleaved",
+                                                    repetition_time=TR))]
+
+
+def run(point: str, *args: str) -> subprocess.CompletedProcess[str]:
+    env = {**os.environ, "SLICETIME_TEST_SIGINT_AT": point, "COLUMNS": "200"}
+    env.pop("SLICETIME_ASCII", None)
+    return subprocess.run([sys.executable, "-m", "slicetime", *args], env=env,
+                          capture_output=True, text=True, timeout=300)
+
+
+@pytest.fixture()
+def dataset(tmp_path: Path) -> Path:
+    root = tmp_path / "ds"
+    write_description(root)
+    data = np.random.default_rng(0).normal(100, 5, size=(4, 4, 6, 8)).astype(np.float32)
+    write_run(root, RUN, data=data, dtype=np.float32, tr=TR,
+              sidecar={"TaskName": "hum", "RepetitionTime": TR, "SliceTiming": seconds()})
+    return root
+
+
+@pytest.mark.parametrize("point", ["correct:records", "correct:closing", "correct:summary"])
+def test_a_ctrl_c_after_the_batch_is_done_reports_it_finished(
+        dataset: Path, tmp_path: Path, point: str) -> None:
+    out = tmp_path / "aligned"
+    done = run(point, "correct", str(dataset), "--out", str(out), "--jobs", "1",
+               "--no-progress")
+    assert done.returncode == 0, done.stderr
+    assert "1 run: 1 corrected; outputs in" in done.stdout  # the whole summary
+    assert "slice_time_ref" in done.stdout
+    assert "interrupted" not in done.stderr
+    assert done.stderr.count("Ctrl-C came after the batch was done") == 1
+    # the records are whole: the provenance names the run, the description is JSON
+    provenance = json.loads((out / "slicetime-provenance.json").read_text())
+    assert list(provenance["Runs"]) == ["sub-01/func/sub-01_task-hum_desc-timealigned_bold.nii.gz"]
+    assert json.loads((out / "dataset_description.json").read_text())["DatasetType"] == \
+        "derivative"  # BIDS: a derivative dataset says so in its description
+    assert any(out.rglob("*_desc-timealigned_bold.nii.gz"))
+
+
+def test_a_ctrl_c_while_the_fixed_files_are_listed_stops_before_the_reaudit(
+        dataset: Path, tmp_path: Path) -> None:
+    (dataset / OWN).write_text(json.dumps(
+        {"TaskName": "hum", "RepetitionTime": TR,
+         "SliceTiming": [t * 1000 for t in seconds()]}), encoding="utf-8")
+    stopped = run("fix:summary", "fix", str(dataset), "--apply", "--backup-dir",
+                  str(tmp_path / "backups"))
+    assert stopped.returncode == 130, stopped.stderr
+    assert f"written   {OWN}" in stopped.stdout and "undo with:" in stopped.stdout
+    assert "re-audit:" not in stopped.stdout
+    lines = [x for x in stopped.stderr.splitlines() if "interrupted" in x]
+    assert len(lines) == 1
+    assert "before the re-audit; the 1 file above was written (undo with: slicetime fix " \
+        "--undo" in lines[0]
+    # what it says is so: the file holds seconds (BIDS: SliceTiming in seconds), the
+    # journal says applied
+    fixed = json.loads((dataset / OWN).read_text())["SliceTiming"]
+    assert fixed == pytest.approx(seconds())
+    journal = tmp_path / "backups" / "journal.json"
+    assert json.loads(journal.read_text())["status"] == "applied"
+
+
+def test_a_ctrl_c_during_the_reaudit_says_the_files_were_written(
+        dataset: Path, tmp_path: Path) -> None:
+    (dataset / OWN).write_text(json.dumps(
+        {"TaskName": "hum", "RepetitionTime": TR,
+         "SliceTiming": [t * 1000 for t in seconds()]}), encoding="utf-8")
+    stopped = run("fix:reaudit", "fix", str(dataset), "--apply", "--backup-dir",
+                  str(tmp_path / "backups"))
+    assert stopped.returncode == 130, stopped.stderr
+    lines = [x for x in stopped.stderr.splitlines() if "interrupted" in x]
+    assert len(lines) == 1 and "during the re-audit (not finished)" in lines[0]
+    assert "the 1 file above was written" in lines[0]
+    assert json.loads((dataset / OWN).read_text())["SliceTiming"] == pytest.approx(seconds())
