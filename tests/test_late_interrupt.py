@@ -70,18 +70,25 @@ def test_a_ctrl_c_after_the_batch_is_done_reports_it_finished(
     assert any(out.rglob("*_desc-timealigned_bold.nii.gz"))
 
 
-def test_a_ctrl_c_while_the_fixed_files_are_listed_stops_before_the_reaudit(
-        dataset: Path, tmp_path: Path) -> None:
+def apply_stopped_at(point: str, dataset: Path, backups: Path
+                     ) -> subprocess.CompletedProcess[str]:
+    """``fix --apply`` of a sidecar whose SliceTiming is in milliseconds (BIDS: seconds),
+    with SIGINT at ``point``; it must end with exit 130 and one "interrupted" line."""
     (dataset / OWN).write_text(json.dumps(
         {"TaskName": "hum", "RepetitionTime": TR,
          "SliceTiming": [t * 1000 for t in seconds()]}), encoding="utf-8")
-    stopped = run("fix:summary", "fix", str(dataset), "--apply", "--backup-dir",
-                  str(tmp_path / "backups"))
+    stopped = run(point, "fix", str(dataset), "--apply", "--backup-dir", str(backups))
     assert stopped.returncode == 130, stopped.stderr
+    assert len([x for x in stopped.stderr.splitlines() if "interrupted" in x]) == 1
+    return stopped
+
+
+def test_a_ctrl_c_while_the_fixed_files_are_listed_stops_before_the_reaudit(
+        dataset: Path, tmp_path: Path) -> None:
+    stopped = apply_stopped_at("fix:summary", dataset, tmp_path / "backups")
     assert f"written   {OWN}" in stopped.stdout and "undo with:" in stopped.stdout
     assert "re-audit:" not in stopped.stdout
     lines = [x for x in stopped.stderr.splitlines() if "interrupted" in x]
-    assert len(lines) == 1
     assert "before the re-audit; the 1 file above was written (undo with: slicetime fix " \
         "--undo" in lines[0]
     # what it says is so: the file holds seconds (BIDS: SliceTiming in seconds), the
@@ -94,12 +101,7 @@ def test_a_ctrl_c_while_the_fixed_files_are_listed_stops_before_the_reaudit(
 
 def test_a_ctrl_c_during_the_reaudit_says_the_files_were_written(
         dataset: Path, tmp_path: Path) -> None:
-    (dataset / OWN).write_text(json.dumps(
-        {"TaskName": "hum", "RepetitionTime": TR,
-         "SliceTiming": [t * 1000 for t in seconds()]}), encoding="utf-8")
-    stopped = run("fix:reaudit", "fix", str(dataset), "--apply", "--backup-dir",
-                  str(tmp_path / "backups"))
-    assert stopped.returncode == 130, stopped.stderr
+    stopped = apply_stopped_at("fix:reaudit", dataset, tmp_path / "backups")
     lines = [x for x in stopped.stderr.splitlines() if "interrupted" in x]
     assert len(lines) == 1 and "during the re-audit (not finished)" in lines[0]
     assert "the 1 file above was written" in lines[0]
