@@ -93,6 +93,7 @@ def test_every_screen_says_the_tr_is_the_headers_only(root: Path) -> None:
 
 def test_the_run_group_table_counts_runs(root: Path) -> None:
     code, text = invoke("audit", str(root))
+    assert code == 1  # the header-only TR is an error (tr/missing)
     head, row = text.splitlines()[:2]
     columns = head.split("  ")
     columns = [c.strip() for c in columns if c.strip()]
