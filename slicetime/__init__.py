@@ -9,7 +9,9 @@ The public API (stable names; see the README's "Python API" section):
 - ``slice_times(n_slices, repetition_time, ...)``: ``SliceTiming`` for a protocol;
 - ``infer_scheme(slice_timing, ...)``: the acquisition scheme of a list of times;
 - ``audit(paths, ...)``: every run under dataset folders with its findings;
-- ``inspect(run, ...)``: one run with the findings the audit gives it.
+- ``inspect(run, ...)``: one run with the findings the audit gives it;
+- ``CorrectionRefused`` / ``TimingInDoubt``: what the corrections raise for a run
+  the ``correct`` command would refuse.
 
 The functions are imported on first use, so ``import slicetime`` stays cheap
 for the command line.
@@ -21,11 +23,13 @@ from typing import TYPE_CHECKING, Any
 
 __version__ = "0.1.0"
 
-_API = ("audit", "correct_array", "correct_image", "infer_scheme", "inspect", "reference_time",
-        "slice_times")
+_API = ("CorrectionRefused", "TimingInDoubt", "audit", "correct_array", "correct_image",
+        "infer_scheme", "inspect", "reference_time", "slice_times")
 
 if TYPE_CHECKING:
     from slicetime.api import (  # noqa: F401
+        CorrectionRefused,
+        TimingInDoubt,
         audit,
         correct_array,
         correct_image,

@@ -17,6 +17,14 @@ no function has an implementation of its own that the commands do not share.
 Times follow BIDS: seconds from the start of each volume, listed along the
 ``SliceEncodingDirection`` (so with ``k-`` the list runs from the last slice
 index down to 0), exactly as in a sidecar's ``SliceTiming``.
+
+The corrections apply the ``correct`` command's gate, from the same owners
+(``slicetime.rules.correction``): an image read from a file is audited with its
+sidecars, dataset and lab policy, and a run whose timing stands in doubt raises
+:class:`TimingInDoubt` (accept a doubt with ``accept=["CODE"]`` or
+``["CODE:PATTERN"]``, as ``--accept``); a series that may not be interpolated or is
+too short raises :class:`CorrectionRefused`. A bare array is checked for what it
+can show (see :func:`correct_array`).
 """
 
 from __future__ import annotations
@@ -26,6 +34,7 @@ import os
 from collections.abc import Sequence
 from typing import TYPE_CHECKING, Any, Literal, cast
 
+from slicetime.pipelines.errors import CorrectionRefused, TimingInDoubt
 from slicetime.words import count
 
 if TYPE_CHECKING:  # the heavy imports happen only when a function is called
@@ -132,8 +141,19 @@ def correct_array(
     volume_timing: Sequence[float] | None = None,
     delay_time: float | None = None,
     threads: int = 1,
+    suffix: str | None = None,
 ) -> np.ndarray:
     """Align every slice of a 4-D array to one reference time.
+
+    A bare array comes without its sidecar, header or dataset, so of the ``correct``
+    command's gate only this is checked: the number of volumes (at least 6; the
+    error near a run's ends is too large below that) and, when ``suffix`` says what
+    the series is, that it may be interpolated. What cannot be checked here: whether
+    the times agree with the image header's ``slice_code``, the slice axis and
+    direction with the header and the other runs of the task, the dataset's lab
+    policy, or the source DICOM series. To have those checked, correct the image
+    read from its file in the dataset (:func:`correct_image` on ``nibabel.load(path)``)
+    or look first with :func:`inspect`.
 
     Parameters
     ----------
@@ -157,6 +177,10 @@ def correct_array(
         ``DelayTime`` of a sparse run: the slices lie within ``TR - DelayTime``.
     threads : int
         Slices resampled at once.
+    suffix : str, optional
+        The run's BIDS suffix. Only BOLD-type series (``bold``, ``cbv``, ``phase``)
+        are corrected; ``dwi``, ``asl``, ``m0scan``, ``sbref`` and other suffixes are
+        refused. Not given: the series kind is not checked.
 
     Returns
     -------
@@ -166,10 +190,14 @@ def correct_array(
 
     Raises
     ------
+    CorrectionRefused
+        (a ``ValueError``) fewer than 6 volumes (``code`` is
+        ``correct/too-few-volumes``), or a ``suffix`` whose volumes may not be
+        interpolated (``correct/not-interpolable``).
     ValueError
         Inconsistent inputs: wrong number of slice times, times outside the
-        acquisition window, a reference outside it, fewer than 2 volumes, an
-        engine that needs even volume spacing given ``volume_timing``.
+        acquisition window, a reference outside it, an engine that needs even
+        volume spacing given ``volume_timing``.
 
     Examples
     --------
@@ -184,10 +212,12 @@ def correct_array(
     from slicetime.engines.align import align_array
     from slicetime.engines.interpolate import get_engine
     from slicetime.engines.plan import make_plan
+    from slicetime.pipelines.correct import check_array
 
     array = np.asarray(data)
     if array.ndim != 4:
         raise ValueError(f"data must be 4-D (x, y, z, time), got shape {array.shape}")
+    check_array(array.shape[3], suffix)
     schedule = _schedule(slice_timing, repetition_time, slice_encoding_direction,
                          volume_timing, delay_time)
     if len(schedule.times) != array.shape[schedule.axis_index]:
@@ -210,8 +240,22 @@ def correct_image(
     volume_timing: Sequence[float] | None = None,
     delay_time: float | None = None,
     threads: int = 1,
+    accept: Sequence[str] = (),
+    policy: str | os.PathLike[str] | None = None,
+    suffix: str | None = None,
 ) -> Any:
     """Align a nibabel NIfTI image; returns a new float32 image.
+
+    An image read from a file (``nibabel.load``) goes through the ``correct``
+    command's gate first: the run is audited as :func:`inspect` audits it (its
+    sidecars, the other runs of its dataset, the lab policy), and it is refused when
+    its timing stands in doubt (:class:`TimingInDoubt`: the header's ``slice_code``
+    against ``SliceTiming``, a slice direction against the header or the task's other
+    runs, ...) unless ``accept`` (or the policy's ``[[accept]]``) accepts every doubt,
+    when its series may not be interpolated (``dwi``, ``asl``, ``m0scan``, ``sbref``),
+    when it has fewer than 6 volumes, or when its dataset's own lab policy is broken
+    (:class:`CorrectionRefused`). An image made in memory has no file, sidecar or
+    dataset: it is checked as :func:`correct_array` checks an array.
 
     Parameters
     ----------
@@ -223,18 +267,45 @@ def correct_image(
         are used (and the axis is the header's slice dimension).
     repetition_time : float, optional
         Seconds. When omitted, the header's ``pixdim[4]`` (after ``xyzt_units``).
-    slice_encoding_direction, method, reference, volume_timing, delay_time, threads
+    slice_encoding_direction, method, reference, volume_timing, delay_time, threads, suffix
         As in :func:`correct_array`. The direction defaults to the header's
         slice dimension when the times come from the header, else ``k``.
+    accept : sequence of str
+        Doubts about the timing accepted for an image read from a file, as the
+        command's ``--accept``: ``"CODE"`` (this run) or ``"CODE:PATTERN"`` (runs
+        whose path from the dataset root matches). The :class:`TimingInDoubt`
+        message prints the exact ``accept=[...]`` for the run.
+    policy : path, optional
+        A lab policy file instead of the dataset's own ``slicetime-policy.toml``.
 
     Returns
     -------
     image of the same class
         Same affine and header, data float32 without scaling, ``slice_code``
         and ``slice_duration`` cleared (the slices are no longer staggered).
+
+    Raises
+    ------
+    TimingInDoubt
+        The run's timing stands in doubt; ``findings`` are the doubts, ``codes``
+        their codes; the message says how to accept them.
+    CorrectionRefused
+        (a ``ValueError``; :class:`TimingInDoubt` is one) the series may not be
+        interpolated, has too few volumes, or its dataset's lab policy is broken
+        (``code`` says which).
+    ValueError
+        Inconsistent inputs (see :func:`correct_array`), or an ``accept`` entry that
+        names no code that puts the timing in doubt.
     """
     import numpy as np
 
+    from slicetime.pipelines.correct import check_file
+
+    file = _source_file(img)
+    if file is not None:
+        from pathlib import Path
+
+        check_file(Path(file), accept, None if policy is None else Path(policy))
     header = img.header
     axis_letter: str | None = None
     if slice_timing is None:
@@ -248,7 +319,7 @@ def correct_image(
         data, slice_timing, repetition_time,
         slice_encoding_direction=slice_encoding_direction, method=method,
         reference=reference, volume_timing=volume_timing, delay_time=delay_time,
-        threads=threads,
+        threads=threads, suffix=suffix,
     )
     new_header = header.copy()
     new_header.set_data_dtype(np.float32)
@@ -257,6 +328,20 @@ def correct_image(
     out = img.__class__(aligned, img.affine, new_header)
     out.header.set_slope_inter(1.0, 0.0)
     return out
+
+
+def _source_file(img: Any) -> str | None:
+    """The file the image was read from (``nibabel.load``), or None for one made in
+    memory. A file that is gone since cannot be checked: ValueError."""
+    get = getattr(img, "get_filename", None)
+    file = get() if callable(get) else None
+    if file is None:
+        return None
+    if not os.path.lexists(file):
+        raise ValueError(f"{file}: the image was read from this file, which is gone, so its "
+                         "sidecars and dataset cannot be checked; load it again, or correct "
+                         "its array with correct_array")
+    return os.fspath(file)
 
 
 def _header_times(header: Any) -> tuple[list[float], str]:
@@ -481,8 +566,8 @@ def inspect(run: str | os.PathLike[str], *,
     return inspect_run(Path(run), policy_file=None if policy is None else Path(policy))
 
 
-__all__ = ["audit", "correct_array", "correct_image", "infer_scheme", "inspect",
-           "reference_time", "slice_times"]
+__all__ = ["CorrectionRefused", "TimingInDoubt", "audit", "correct_array", "correct_image",
+           "infer_scheme", "inspect", "reference_time", "slice_times"]
 
 
 def __dir__() -> list[str]:

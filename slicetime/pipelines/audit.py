@@ -231,10 +231,17 @@ def _first_broken(broken: Mapping[str, Finding]) -> str | None:
 
 def policy_problem(roots: Iterable[Path], policy_file: Path | None = None) -> str | None:
     """:meth:`AuditResult.policy_problem` for dataset roots without an audit (a saved fix
-    plan): their policies loaded the audit's way."""
+    plan, the Python API's correction): their policies loaded the audit's way."""
     broken: dict[Path, Finding] = {}
     _policies(roots, policy_file, [], broken)
     return _first_broken({str(r): f for r, f in broken.items()})
+
+
+def policy_accepts(root: Path, policy_file: Path | None = None) -> tuple[AcceptEntry, ...]:
+    """The ``[[accept]]`` entries of the dataset's lab policy (as ``AuditResult.accepts``
+    gives them for one root), loaded the audit's way; none when there is no policy."""
+    policy = _policies([root], policy_file, []).get(Path(root))
+    return policy.accepts if policy is not None else ()
 
 
 def _policies(
@@ -681,5 +688,6 @@ __all__ = [
     "dataset_name",
     "failed_run",
     "inspect_run",
+    "policy_accepts",
     "policy_problem",
 ]

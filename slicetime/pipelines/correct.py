@@ -36,7 +36,7 @@ import math
 import os
 import time
 from collections import Counter
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -65,7 +65,7 @@ from slicetime.engines.plan import (
 )
 from slicetime.model import Finding, RunRecord, Severity
 from slicetime.numbers import ratio
-from slicetime.pipelines.audit import RunResult
+from slicetime.pipelines.audit import RunResult, inspect_run, policy_accepts, policy_problem
 from slicetime.pipelines.errors import (
     CLASH_CODE,
     DOUBT_CODE,
@@ -74,6 +74,8 @@ from slicetime.pipelines.errors import (
     SCALING_CODE,
     TOO_FEW_CODE,
     CorrectionError,
+    CorrectionRefused,
+    TimingInDoubt,
 )
 from slicetime.pipelines.memory import (
     Budget,
@@ -110,6 +112,7 @@ from slicetime.readers.atomic import (
     make_folders,
     temp_path,
 )
+from slicetime.readers.dataset import not_a_run
 from slicetime.readers.entities import sidecar_name
 from slicetime.readers.errors import ReadError, is_regular_file
 from slicetime.readers.scratch import (
@@ -130,7 +133,15 @@ from slicetime.readers.volumes import (
     scaling,
     scaling_problem,
 )
-from slicetime.rules.correction import MIN_VOLUMES, interpolation_refusal, judge_trust
+from slicetime.rules.correction import (
+    TrustVerdict,
+    doubt_refusal,
+    interpolation_refusal,
+    judge_trust,
+    parse_accept,
+    suffix_refusal,
+    too_few_volumes,
+)
 from slicetime.words import count
 
 
@@ -347,11 +358,9 @@ def _refusal(
         raise CorrectionError(f"{problem}, so the run is refused", code=SCALING_CODE,
                               field="scl_inter")
     shape = record.header.shape
-    if len(shape) == 4 and shape[3] < MIN_VOLUMES:
-        raise CorrectionError(
-            f"the run has {shape[3]} volumes; correction needs at least {MIN_VOLUMES} (the "
-            "error near a run's ends is too large below that; slicetime explain "
-            "correct/too-few-volumes)", code=TOO_FEW_CODE, field="dim")
+    short = too_few_volumes(shape[3]) if len(shape) == 4 else None
+    if short is not None:
+        raise CorrectionError(short, code=TOO_FEW_CODE, field="dim")
     # a finding the lab policy ignores is hidden from the reports, not made trustworthy:
     # only an explicit acceptance lifts a doubt
     seen = [*run.findings, *(item.finding for item in run.ignored)]
@@ -359,15 +368,11 @@ def _refusal(
     outcome.accepted = [
         {"code": f.code, "message": f.message, "accepted_by": entry.given,
          "reason": entry.reason} for f, entry in verdict.accepted]
-    if verdict.standing:
+    doubted = doubt_refusal(verdict, record.path, _command_line_accepts)
+    if doubted is not None:
         outcome.blocking = [*verdict.standing, *(f for f in errors
                                                  if f not in verdict.standing)]
-        doubted = sorted({f.code for f in verdict.standing})
-        accept = " ".join(f"--accept {c}:{record.path}" for c in doubted)
-        raise CorrectionError(
-            f"its slice times are in doubt ({'; '.join(f.message for f in verdict.standing)}); "
-            f"resolve it (slicetime show), or if you know the run's own timing is right, "
-            f"accept it: {accept}", code=DOUBT_CODE)
+        raise CorrectionError(doubted, code=DOUBT_CODE)
     accepted = {id(f) for f, _ in verdict.accepted}
     errors = [f for f in errors if id(f) not in accepted]
     if errors and not options.force:
@@ -379,6 +384,65 @@ def _refusal(
             [],
         )
     return None, [f"corrected despite audit error {f.code}: {f.message}" for f in errors]
+
+
+def _command_line_accepts(specs: list[str]) -> str:
+    return " ".join(f"--accept {spec}" for spec in specs)
+
+
+# ---- the Python API's gate: the same owners as _refusal, for what the API is given
+
+
+def check_array(n_volumes: int, suffix: str | None = None) -> None:
+    """The gate of a bare array (no file, no sidecar, no dataset): the series kind when
+    the caller names its BIDS ``suffix`` (``rules.correction.suffix_refusal``) and the
+    number of volumes (``too_few_volumes``). Raises :class:`CorrectionRefused`."""
+    refusal = suffix_refusal(suffix)
+    if refusal is not None:
+        raise CorrectionRefused(refusal, NOT_INTERPOLABLE_CODE)
+    short = too_few_volumes(n_volumes)
+    if short is not None:
+        raise CorrectionRefused(short, TOO_FEW_CODE)
+
+
+def check_file(image: Path, accept: Sequence[str] = (),
+               policy_file: Path | None = None) -> TrustVerdict:
+    """The gate of an image read from a file, as ``correct`` gates a run: the run is
+    audited as ``slicetime show`` audits it (its sidecars, its dataset, its lab policy),
+    then refused (:class:`CorrectionRefused`) when its dataset's own lab policy is
+    broken, its series may not be interpolated or it is too short, and
+    (:class:`TimingInDoubt`) when a doubt about its timing stands that neither
+    ``accept`` (``CODE`` or ``CODE:PATTERN``, as ``--accept``) nor the policy's
+    ``[[accept]]`` accepts. Returns the verdict (the doubts accepted)."""
+    entries = [parse_accept(text) for text in accept]  # ValueError naming a bad one
+    never = not_a_run(image.name)
+    if never is not None:
+        raise CorrectionRefused(f"{image}: not corrected: {never}", NOT_INTERPOLABLE_CODE)
+    run = inspect_run(image, policy_file=policy_file)
+    record = run.record
+    broken = policy_problem([Path(record.root)], policy_file)
+    if broken is not None:
+        raise CorrectionRefused(
+            f"{broken} (correction does not run without the dataset's lab policy)",
+            "policy/invalid", [f for f in run.findings if f.code == "policy/invalid"])
+    refusal = interpolation_refusal(record)
+    if refusal is not None:
+        raise CorrectionRefused(f"{record.path}: {refusal}", NOT_INTERPOLABLE_CODE)
+    shape = record.header.shape if record.header is not None else ()
+    short = too_few_volumes(shape[3]) if len(shape) == 4 else None
+    if short is not None:
+        raise CorrectionRefused(f"{record.path}: {short}", TOO_FEW_CODE)
+    seen = [*run.findings, *(item.finding for item in run.ignored)]
+    verdict = judge_trust(record.path, seen,
+                          [*entries, *policy_accepts(Path(record.root), policy_file)])
+    doubted = doubt_refusal(verdict, record.path, _api_accepts)
+    if doubted is not None:
+        raise TimingInDoubt(f"{record.path}: {doubted}", DOUBT_CODE, verdict.standing)
+    return verdict
+
+
+def _api_accepts(specs: list[str]) -> str:
+    return f"accept={specs!r}"
 
 
 @dataclass(frozen=True)
@@ -679,6 +743,8 @@ __all__ = [
     "CorrectResult",
     "CorrectionError",
     "RunOutcome",
+    "check_array",
+    "check_file",
     "check_output_location",
     "correct_run",
     "output_name",

@@ -3,6 +3,12 @@ and the error a single run's correction raises (it becomes that run's outcome)."
 
 from __future__ import annotations
 
+from collections.abc import Sequence
+from typing import TYPE_CHECKING
+
+if TYPE_CHECKING:
+    from slicetime.model import Finding
+
 
 class NoRunsError(ValueError):
     """A path given on the command line holds no run: nothing found is not success."""
@@ -29,6 +35,33 @@ class CorrectionError(Exception):
         super().__init__(message)
         self.code = code
         self.field = field
+
+
+class CorrectionRefused(ValueError):
+    """The Python API (``slicetime.correct_image``, ``slicetime.correct_array``) will not
+    correct this run, for a reason the ``correct`` command refuses it too.
+
+    ``code`` is the command's refusal code (``correct/not-interpolable``,
+    ``correct/too-few-volumes``, ``correct/timing-in-doubt``, or ``policy/invalid``
+    for a dataset whose own lab policy is broken; ``slicetime explain CODE`` says
+    more); ``findings`` are the audit's findings behind the refusal (the doubts, for
+    :class:`TimingInDoubt`). A ``ValueError``, as every other bad input to the API."""
+
+    def __init__(self, message: str, code: str, findings: Sequence[Finding] = ()) -> None:
+        super().__init__(message)
+        self.code = code
+        self.findings: tuple[Finding, ...] = tuple(findings)
+
+
+class TimingInDoubt(CorrectionRefused):
+    """The run's slice times stand in doubt (the audit found a finding whose code puts
+    them in doubt, e.g. the header's ``slice_code`` against ``SliceTiming``). The message
+    names each doubt and the ``accept=[...]`` that accepts it, the API's form of the
+    command's ``--accept CODE[:PATTERN]``; ``codes`` are the codes in doubt."""
+
+    @property
+    def codes(self) -> list[str]:
+        return sorted({f.code for f in self.findings})
 
 
 #: codes of the refusals ``correct`` makes itself (declared in slicetime/data/codes.toml)

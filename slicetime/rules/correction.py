@@ -15,13 +15,19 @@ The judgements, each with one owner here (pure, no I/O):
   while a doubt stands that only a person can settle);
 * :func:`interpolation_refusal`: whether the run's volumes may be interpolated at
   all (BOLD-type series only);
-* :data:`MIN_VOLUMES`: the shortest run worth correcting (from the measured edge error).
+* :data:`MIN_VOLUMES` / :func:`too_few_volumes`: the shortest run worth correcting
+  (from the measured edge error);
+* :func:`doubt_refusal`: the refusal of a run whose doubts still stand, naming them and
+  how to accept each (in the command line's words or the Python API's).
+
+The ``correct`` command (``pipelines.correct``) and the Python API
+(``slicetime.correct_image``/``correct_array``) both ask these functions.
 """
 
 from __future__ import annotations
 
 import re
-from collections.abc import Iterable, Sequence
+from collections.abc import Callable, Iterable, Sequence
 from dataclasses import dataclass
 
 from slicetime.codes import RULES
@@ -69,12 +75,27 @@ def series_kind(record: RunRecord) -> str | None:
 def interpolation_refusal(record: RunRecord) -> str | None:
     """Why the run's volumes may not be interpolated, or None when they may: the one
     owner of "may this run be corrected at all" (``correct/not-interpolable``)."""
-    kind = series_kind(record)
-    if kind is None:
+    return suffix_refusal(series_kind(record))
+
+
+def suffix_refusal(suffix: str | None) -> str | None:
+    """:func:`interpolation_refusal` for a series known only by its BIDS suffix (None:
+    not known, nothing to refuse)."""
+    if suffix is None or suffix in BOLD_TYPE_SUFFIXES:
         return None
-    why = _NOT_INTERPOLABLE.get(kind, f"suffix {kind!r} is not a BOLD-type time series "
+    why = _NOT_INTERPOLABLE.get(suffix, f"suffix {suffix!r} is not a BOLD-type time series "
                                 "(bold, cbv, phase)")
     return f"not corrected: {why}"
+
+
+def too_few_volumes(n_volumes: int) -> str | None:
+    """Why a run of ``n_volumes`` is too short to correct, or None: the one owner of
+    :data:`MIN_VOLUMES` and of its message (``correct/too-few-volumes``)."""
+    if n_volumes >= MIN_VOLUMES:
+        return None
+    return (f"the run has {n_volumes} volumes; correction needs at least {MIN_VOLUMES} (the "
+            "error near a run's ends is too large below that; slicetime explain "
+            "correct/too-few-volumes)")
 
 
 def timing_doubts(findings: Iterable[Finding]) -> list[Finding]:
@@ -138,6 +159,21 @@ def judge_trust(path: str, findings: Iterable[Finding],
         else:
             accepted.append((finding, entry))
     return TrustVerdict(tuple(standing), tuple(accepted))
+
+
+def doubt_refusal(verdict: TrustVerdict, path: str,
+                  how: Callable[[list[str]], str]) -> str | None:
+    """Why a run whose doubts (:func:`judge_trust`) still stand is refused, naming each
+    doubt and how to accept it, or None when none stands: the one owner of that message
+    (``correct/timing-in-doubt``). ``how`` puts the acceptances (``CODE:PATH``, the run
+    ``path`` relative to its dataset root) in the caller's words: ``--accept ...`` on
+    the command line, ``accept=[...]`` in the Python API."""
+    if not verdict.standing:
+        return None
+    specs = [f"{code}:{path}" for code in sorted({f.code for f in verdict.standing})]
+    return (f"its slice times are in doubt ({'; '.join(f.message for f in verdict.standing)}); "
+            f"resolve it (slicetime show), or if you know the run's own timing is right, "
+            f"accept it: {how(specs)}")
 
 
 def accept_problem(code: str) -> str | None:
