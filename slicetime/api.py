@@ -212,7 +212,7 @@ def correct_array(
     from slicetime.engines.align import align_array
     from slicetime.engines.interpolate import get_engine
     from slicetime.engines.plan import make_plan
-    from slicetime.pipelines.correct import check_array
+    from slicetime.pipelines.correct_gate import check_array
 
     array = np.asarray(data)
     if array.ndim != 4:
@@ -299,7 +299,7 @@ def correct_image(
     """
     import numpy as np
 
-    from slicetime.pipelines.correct import check_file
+    from slicetime.pipelines.correct_gate import check_file
 
     file = _source_file(img)
     if file is not None:

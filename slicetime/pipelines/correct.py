@@ -36,7 +36,7 @@ import math
 import os
 import time
 from collections import Counter
-from collections.abc import Mapping, Sequence
+from collections.abc import Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -65,7 +65,13 @@ from slicetime.engines.plan import (
 )
 from slicetime.model import Finding, RunRecord, Severity
 from slicetime.numbers import ratio
-from slicetime.pipelines.audit import RunResult, inspect_run, policy_accepts, policy_problem
+from slicetime.pipelines.audit import RunResult
+from slicetime.pipelines.correct_events import (
+    RestatedEvents,
+    recorded_events,
+    restate_events,
+    run_inputs,
+)
 from slicetime.pipelines.errors import (
     CLASH_CODE,
     DOUBT_CODE,
@@ -74,8 +80,6 @@ from slicetime.pipelines.errors import (
     SCALING_CODE,
     TOO_FEW_CODE,
     CorrectionError,
-    CorrectionRefused,
-    TimingInDoubt,
 )
 from slicetime.pipelines.memory import (
     Budget,
@@ -97,7 +101,6 @@ from slicetime.pipelines.provenance import (
     CorrectionFacts,
     dataset_uri,
     entry_of,
-    hash_inputs,
     json_safe,
     output_sidecar,
     pascal_keys,
@@ -111,8 +114,8 @@ from slicetime.readers.atomic import (
     WriteRefused,
     make_folders,
     temp_path,
+    write_atomic,
 )
-from slicetime.readers.dataset import not_a_run
 from slicetime.readers.entities import sidecar_name
 from slicetime.readers.errors import ReadError, is_regular_file
 from slicetime.readers.scratch import (
@@ -134,12 +137,9 @@ from slicetime.readers.volumes import (
     scaling_problem,
 )
 from slicetime.rules.correction import (
-    TrustVerdict,
     doubt_refusal,
     interpolation_refusal,
     judge_trust,
-    parse_accept,
-    suffix_refusal,
     too_few_volumes,
 )
 from slicetime.words import count
@@ -258,8 +258,11 @@ class CorrectResult:
             parts.append(f"frame times = VolumeTiming + StartTime ({count(timed, 'output')} "
                          "without RepetitionTime)")
         if self.omitted:
+            restated = sum(1 for r in done if (r.provenance or {}).get("Events"))
+            beside = (f"; events tables restated beside {count(restated, 'output')}"
+                      if restated else "")
             parts.append(f"event onsets count from volume {self.omitted} now "
-                         "(NumberOfVolumesDiscardedByUser)")
+                         f"(NumberOfVolumesDiscardedByUser){beside}")
         return "for the model: " + "; ".join(parts)
 
 
@@ -390,61 +393,6 @@ def _command_line_accepts(specs: list[str]) -> str:
     return " ".join(f"--accept {spec}" for spec in specs)
 
 
-# ---- the Python API's gate: the same owners as _refusal, for what the API is given
-
-
-def check_array(n_volumes: int, suffix: str | None = None) -> None:
-    """The gate of a bare array (no file, no sidecar, no dataset): the series kind when
-    the caller names its BIDS ``suffix`` (``rules.correction.suffix_refusal``) and the
-    number of volumes (``too_few_volumes``). Raises :class:`CorrectionRefused`."""
-    refusal = suffix_refusal(suffix)
-    if refusal is not None:
-        raise CorrectionRefused(refusal, NOT_INTERPOLABLE_CODE)
-    short = too_few_volumes(n_volumes)
-    if short is not None:
-        raise CorrectionRefused(short, TOO_FEW_CODE)
-
-
-def check_file(image: Path, accept: Sequence[str] = (),
-               policy_file: Path | None = None) -> TrustVerdict:
-    """The gate of an image read from a file, as ``correct`` gates a run: the run is
-    audited as ``slicetime show`` audits it (its sidecars, its dataset, its lab policy),
-    then refused (:class:`CorrectionRefused`) when its dataset's own lab policy is
-    broken, its series may not be interpolated or it is too short, and
-    (:class:`TimingInDoubt`) when a doubt about its timing stands that neither
-    ``accept`` (``CODE`` or ``CODE:PATTERN``, as ``--accept``) nor the policy's
-    ``[[accept]]`` accepts. Returns the verdict (the doubts accepted)."""
-    entries = [parse_accept(text) for text in accept]  # ValueError naming a bad one
-    never = not_a_run(image.name)
-    if never is not None:
-        raise CorrectionRefused(f"{image}: not corrected: {never}", NOT_INTERPOLABLE_CODE)
-    run = inspect_run(image, policy_file=policy_file)
-    record = run.record
-    broken = policy_problem([Path(record.root)], policy_file)
-    if broken is not None:
-        raise CorrectionRefused(
-            f"{broken} (correction does not run without the dataset's lab policy)",
-            "policy/invalid", [f for f in run.findings if f.code == "policy/invalid"])
-    refusal = interpolation_refusal(record)
-    if refusal is not None:
-        raise CorrectionRefused(f"{record.path}: {refusal}", NOT_INTERPOLABLE_CODE)
-    shape = record.header.shape if record.header is not None else ()
-    short = too_few_volumes(shape[3]) if len(shape) == 4 else None
-    if short is not None:
-        raise CorrectionRefused(f"{record.path}: {short}", TOO_FEW_CODE)
-    seen = [*run.findings, *(item.finding for item in run.ignored)]
-    verdict = judge_trust(record.path, seen,
-                          [*entries, *policy_accepts(Path(record.root), policy_file)])
-    doubted = doubt_refusal(verdict, record.path, _api_accepts)
-    if doubted is not None:
-        raise TimingInDoubt(f"{record.path}: {doubted}", DOUBT_CODE, verdict.standing)
-    return verdict
-
-
-def _api_accepts(specs: list[str]) -> str:
-    return f"accept={specs!r}"
-
-
 @dataclass(frozen=True)
 class _Target:
     """Where one run's output goes."""
@@ -475,9 +423,15 @@ def _correct(
     if outcome.accepted:  # an output made under other acceptances is not reused
         settings["AcceptedDoubts"] = sorted(f"{a['code']} ({a['accepted_by']}: {a['reason']})"
                                             for a in outcome.accepted)
-    if _reuse(record, target, settings, options, outcome):
+    events, warning = restate_events(record, options.omit_leading, target.image, target.rel)
+    if warning is not None:
+        outcome.warnings.append(warning)
+    if _reuse(record, target, settings, options, outcome, events):
+        if events is not None:  # in place again, should it have been removed since
+            write_atomic(events.output, events.shifted.text)
         return forced
-    _resample_and_write(record, plan, engine, options, target, settings, dataset_name, outcome)
+    _resample_and_write(record, plan, engine, options, target, settings, dataset_name, outcome,
+                        events)
     return forced
 
 
@@ -543,12 +497,13 @@ def _reuse(
     settings: dict[str, Any],
     options: CorrectOptions,
     outcome: RunOutcome,
+    events: RestatedEvents | None = None,
 ) -> bool:
     """Whether an output already in place is this run's, with these settings (then
     ``outcome`` says so)."""
     if not (is_regular_file(target.sidecar) and is_regular_file(target.image)):
         return False
-    if not up_to_date(target.image, target.sidecar, settings, hash_inputs(record, None)):
+    if not up_to_date(target.image, target.sidecar, settings, run_inputs(record, None, events)):
         return False
     since = options.batch_started
     fresh = since is not None and _mtime(target.image) >= since
@@ -566,8 +521,12 @@ def _resample_and_write(
     settings: dict[str, Any],
     dataset_name: str,
     outcome: RunOutcome,
+    events: RestatedEvents | None = None,
 ) -> None:
-    """Read the run into the buffer, resample it, write it out and commit it."""
+    """Read the run into the buffer, resample it, write it out and commit it (with its
+    restated events table, when there is one: written before the sidecar, the "done"
+    marker; an events table an earlier output recorded is removed when this one has
+    none or another)."""
     header = record.header
     assert header is not None
     n_slices = header.shape[plan.axis_index]
@@ -633,12 +592,19 @@ def _resample_and_write(
             outcome.warnings.append(
                 f"{cast.nonfinite} non-finite values were stored as 0 in {out_dtype.name}"
             )
-        inputs = hash_inputs(record, image_sha)
+        inputs = run_inputs(record, image_sha, events)
         sidecar = output_sidecar(
             record, plan, settings, inputs, output_sha, dataset_name, stats,
             CorrectionFacts(accepted=outcome.accepted, omitted=options.omit_leading,
-                            noise=noise_per_slice(plan, engine, n_slices)))
+                            noise=noise_per_slice(plan, engine, n_slices),
+                            events=events.record() if events is not None else None))
+        earlier = recorded_events(target.sidecar, options.out)
+        if events is not None:
+            write_atomic(events.output, events.shifted.text)
         _commit(tmp_image, target.image, target.sidecar, sidecar)
+        if earlier is not None and (events is None or earlier != events.output):
+            with contextlib.suppress(FileNotFoundError):
+                os.unlink(earlier)
         outcome.status = "corrected"
         outcome.provenance = entry_of(sidecar, target.rel.as_posix())
     finally:
@@ -743,8 +709,6 @@ __all__ = [
     "CorrectResult",
     "CorrectionError",
     "RunOutcome",
-    "check_array",
-    "check_file",
     "check_output_location",
     "correct_run",
     "output_name",

@@ -27,6 +27,7 @@ from slicetime.pipelines.correct import (
     RunOutcome,
     correct_run,
 )
+from slicetime.pipelines.correct_events import recorded_events
 from slicetime.pipelines.errors import (
     UNWRITTEN_CODE,
 )
@@ -265,8 +266,11 @@ def _withdraw_stale(
     options: CorrectOptions, runs: Sequence[RunResult], outcomes: Sequence[RunOutcome]
 ) -> None:
     """A run refused or failed now whose earlier output is still in ``out`` (written
-    from this very input): remove that output, so nothing stale looks valid, and
-    say so in the run's reason and in the provenance file (``Removed``)."""
+    from this very input): remove that output (and the events table it recorded, unless
+    a run of this batch wrote it too: echoes share one), so nothing stale looks valid,
+    and say so in the run's reason and in the provenance file (``Removed``)."""
+    kept = {events.get("Output") for o in outcomes if o.ok
+            for events in [(o.provenance or {}).get("Events")] if isinstance(events, dict)}
     for outcome in outcomes:
         if outcome.ok:
             continue
@@ -278,6 +282,10 @@ def _withdraw_stale(
             continue  # reached through a link: not in --out, never removed
         if recorded_input(sidecar) != (dataset_uri(outcome.root), json_safe(outcome.path)):
             continue  # not an output of this run (or not one slicetime wrote)
+        events = recorded_events(sidecar, options.out)
+        if events is not None and events.relative_to(options.out).as_posix() not in kept:
+            with contextlib.suppress(FileNotFoundError):
+                os.unlink(events)
         for path in (image, sidecar):
             with contextlib.suppress(FileNotFoundError):
                 os.unlink(path)

@@ -145,6 +145,8 @@ class CorrectionFacts:
     omitted: int = 0
     #: the variance white noise keeps in each slice (data-array order)
     noise: Sequence[float] = ()
+    #: the run's events table restated beside the output (``--omit-leading``), if any
+    events: Mapping[str, Any] | None = None
 
 
 def output_sidecar(
@@ -201,6 +203,7 @@ def output_sidecar(
         "SliceTimeRef": slice_time_ref(plan.reference, schedule.repetition_time),
         "LeadingVolumesLeftOut": facts.omitted,
         "AcceptedDoubts": [pascal_keys(a) for a in facts.accepted],
+        **({"Events": dict(facts.events)} if facts.events is not None else {}),
         "ConstantSeries": stats.constant,
         "SeriesWithGaps": stats.partial_nonfinite,
         "Inputs": inputs,

@@ -1,0 +1,87 @@
+"""The Python API's gate (``slicetime.correct_image`` / ``correct_array``): what the
+``correct`` command refuses, asked of the same owners (``rules.correction``) for what
+the API is given: an image read from a file is audited as ``slicetime show`` audits it
+(:func:`check_file`); a bare array shows only its length, and its series kind when the
+caller names it (:func:`check_array`). The command's own gate is
+``pipelines.correct._refusal``; both word the acceptance of a doubt through
+``rules.correction.doubt_refusal``.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from pathlib import Path
+
+from slicetime.pipelines.audit import inspect_run, policy_accepts, policy_problem
+from slicetime.pipelines.errors import (
+    DOUBT_CODE,
+    NOT_INTERPOLABLE_CODE,
+    TOO_FEW_CODE,
+    CorrectionRefused,
+    TimingInDoubt,
+)
+from slicetime.readers.dataset import not_a_run
+from slicetime.rules.correction import (
+    TrustVerdict,
+    doubt_refusal,
+    interpolation_refusal,
+    judge_trust,
+    parse_accept,
+    suffix_refusal,
+    too_few_volumes,
+)
+
+
+def check_array(n_volumes: int, suffix: str | None = None) -> None:
+    """The gate of a bare array (no file, no sidecar, no dataset): the series kind when
+    the caller names its BIDS ``suffix`` (``rules.correction.suffix_refusal``) and the
+    number of volumes (``too_few_volumes``). Raises :class:`CorrectionRefused`."""
+    refusal = suffix_refusal(suffix)
+    if refusal is not None:
+        raise CorrectionRefused(refusal, NOT_INTERPOLABLE_CODE)
+    short = too_few_volumes(n_volumes)
+    if short is not None:
+        raise CorrectionRefused(short, TOO_FEW_CODE)
+
+
+def check_file(image: Path, accept: Sequence[str] = (),
+               policy_file: Path | None = None) -> TrustVerdict:
+    """The gate of an image read from a file, as ``correct`` gates a run: the run is
+    audited as ``slicetime show`` audits it (its sidecars, its dataset, its lab policy),
+    then refused (:class:`CorrectionRefused`) when its dataset's own lab policy is
+    broken, its series may not be interpolated or it is too short, and
+    (:class:`TimingInDoubt`) when a doubt about its timing stands that neither
+    ``accept`` (``CODE`` or ``CODE:PATTERN``, as ``--accept``) nor the policy's
+    ``[[accept]]`` accepts. Returns the verdict (the doubts accepted)."""
+    entries = [parse_accept(text) for text in accept]  # ValueError naming a bad one
+    never = not_a_run(image.name)
+    if never is not None:
+        raise CorrectionRefused(f"{image}: not corrected: {never}", NOT_INTERPOLABLE_CODE)
+    run = inspect_run(image, policy_file=policy_file)
+    record = run.record
+    broken = policy_problem([Path(record.root)], policy_file)
+    if broken is not None:
+        raise CorrectionRefused(
+            f"{broken} (correction does not run without the dataset's lab policy)",
+            "policy/invalid", [f for f in run.findings if f.code == "policy/invalid"])
+    refusal = interpolation_refusal(record)
+    if refusal is not None:
+        raise CorrectionRefused(f"{record.path}: {refusal}", NOT_INTERPOLABLE_CODE)
+    shape = record.header.shape if record.header is not None else ()
+    short = too_few_volumes(shape[3]) if len(shape) == 4 else None
+    if short is not None:
+        raise CorrectionRefused(f"{record.path}: {short}", TOO_FEW_CODE)
+    seen = [*run.findings, *(item.finding for item in run.ignored)]
+    verdict = judge_trust(record.path, seen,
+                          [*entries, *policy_accepts(Path(record.root), policy_file)])
+    doubted = doubt_refusal(verdict, record.path, _api_accepts)
+    if doubted is not None:
+        raise TimingInDoubt(f"{record.path}: {doubted}", DOUBT_CODE, verdict.standing)
+    return verdict
+
+
+def _api_accepts(specs: list[str]) -> str:
+    return f"accept={specs!r}"
+
+
+__all__ = ["check_array", "check_file"]
