@@ -254,8 +254,10 @@ def correct_image(
     runs, ...) unless ``accept`` (or the policy's ``[[accept]]``) accepts every doubt,
     when its series may not be interpolated (``dwi``, ``asl``, ``m0scan``, ``sbref``),
     when it has fewer than 6 volumes, or when its dataset's own lab policy is broken
-    (:class:`CorrectionRefused`). An image made in memory has no file, sidecar or
-    dataset: it is checked as :func:`correct_array` checks an array.
+    (:class:`CorrectionRefused`). The audit reads the headers and sidecars of the
+    run's dataset once per call, as :func:`inspect` does. An image made in memory has
+    no file, sidecar or dataset: it is checked as :func:`correct_array` checks an
+    array.
 
     Parameters
     ----------

@@ -139,6 +139,29 @@ def test_the_events_follow_the_output_as_it_is_remade_or_withdrawn(ds: Path,
     assert not (out / OUT_EVENTS).exists()
 
 
+def test_with_volume_timing_the_shift_is_the_time_of_the_first_volume_kept(
+        tmp_path: Path) -> None:
+    # BIDS VolumeTiming: the onset of each volume; the output's first volume is the
+    # input's fourth, so its events move by VolumeTiming[3] - VolumeTiming[0] (6.5 s here)
+    from tests.test_correct_outputs import _volume_timing
+
+    ds = tmp_path / "ds"
+    write_description(ds)
+    _volume_timing(ds)
+    (ds / EVENTS).write_text(TABLE)
+    out = tmp_path / "out"
+    code, _, err = run("correct", ds, "--out", out, "--method", "cubic", "--omit-leading", 3)
+    assert code == 0, err
+    sidecar = json.loads(output_of(out, REL).with_name(
+        "sub-01_task-hum_desc-timealigned_bold.json").read_text())
+    volumes = json.loads((ds / REL.replace(".nii.gz", ".json")).read_text())["VolumeTiming"]
+    shift = Decimal(repr(volumes[3])) - Decimal(repr(volumes[0]))
+    assert shift == Decimal("6.5")
+    assert sidecar["SliceTimeAlignment"]["Events"]["OnsetShift"] == float(shift)
+    onsets = [row[0] for row in _rows((out / OUT_EVENTS).read_text())[1:]]
+    assert onsets == ["-5.5", "3.8", "n/a", "23.5"]
+
+
 def test_an_inherited_table_is_restated_for_each_run(ds: Path, tmp_path: Path) -> None:
     # BIDS inheritance principle: a top-level task-hum_events.tsv applies to every run
     build_run(ds, REL.replace("01", "02"), interleaved(8))
