@@ -187,6 +187,16 @@ def test_a_table_that_cannot_be_restated_is_a_warning_not_a_wrong_file(
     assert not (out / OUT_EVENTS).exists()
 
 
+def test_two_tables_at_one_level_are_ambiguous(ds: Path, tmp_path: Path) -> None:
+    # BIDS inheritance principle: no more than one applicable file per folder level
+    (ds / EVENTS).write_text(TABLE)
+    (ds / "sub-01/func/sub-01_events.tsv").write_text(TABLE)  # applies too (a subset)
+    out = tmp_path / "out"
+    code, text, _ = run("correct", ds, "--out", out, "--omit-leading", 2)
+    assert code == 0 and "two events tables apply at one level" in text
+    assert not (out / OUT_EVENTS).exists()
+
+
 def test_a_table_linked_from_outside_the_dataset_is_not_read(ds: Path, tmp_path: Path) -> None:
     outside = tmp_path / "elsewhere.tsv"
     outside.write_text(TABLE)
