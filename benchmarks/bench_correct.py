@@ -132,19 +132,77 @@ OVERHEAD = "import slicetime.pipelines.correct, scipy.fft, numpy, nibabel"
 # thread with correct's queue depth), convert the stored int16 to float32 a batch
 # at a time into one float32 array (as correct fills its buffer), encode the float32
 # volumes (isal level 1 in two helper threads, as correct does) and write them
-# durably (fsync, as correct does). No interpolation, no checksum, no audit. The
-# float32 values are the stored ones times a fixed pattern of factors just above 1,
-# so they have random low mantissa bits as interpolated values do: the encoder then
-# sees data of the entropy of a real corrected run (the script reports both sizes).
-# A .nii input is read and written uncompressed. argv: input image, output image.
+# durably (fsync, as correct does). No interpolation and no audit. The float32
+# values are the stored ones times a fixed pattern of factors just above 1, so they
+# have random low mantissa bits as interpolated values do: the encoder then sees
+# data of the entropy of a real corrected run (the script reports both sizes).
+# A .nii input is read and written uncompressed. argv: input image, output image,
+# and "hash" or "none". With "hash" the floor also computes what correct must record
+# for provenance, each byte hashed once and off the main thread: the SHA-256 of the
+# input file (of the bytes as they are read for .nii; of the compressed file, read
+# again from the page cache by a helper thread, for .nii.gz) and of the output file
+# (of each chunk as it is written for .nii; of the compressed bytes in the encoder's
+# writer thread for .nii.gz).
 FLOOR = """
-import io, os, sys
+import hashlib, io, os, queue, sys, threading
 import numpy as np
 from isal import igzip_threaded
 
 CHUNK = 16 << 20
-src, dst = sys.argv[1], sys.argv[2]
+src, dst, hashing = sys.argv[1], sys.argv[2], sys.argv[3] == "hash"
 compressed = src.endswith(".gz")
+
+
+class Hasher:  # one helper thread: digest.update(view) in the order submitted
+    def __init__(self):
+        self.jobs = queue.Queue()
+        threading.Thread(target=self.run, daemon=True).start()
+
+    def run(self):
+        while True:
+            digest, view = self.jobs.get()
+            digest.update(view)
+            self.jobs.task_done()
+
+    def submit(self, digest, view):
+        self.jobs.put((digest, view))
+
+    def wait(self):
+        self.jobs.join()
+
+
+class HashingFile:  # the compressed output's bytes, hashed where they are written
+    def __init__(self, fh, digest):
+        self.fh, self.digest = fh, digest
+
+    def write(self, data):
+        self.digest.update(data)
+        return self.fh.write(data)
+
+    def flush(self):
+        self.fh.flush()
+
+    def writable(self):
+        return True
+
+    def close(self):
+        pass
+
+    @property
+    def closed(self):
+        return self.fh.closed
+
+
+hasher = Hasher() if hashing else None
+in_digest, out_digest = hashlib.sha256(), hashlib.sha256()
+if hashing and compressed:  # the compressed input file, read again by a helper thread
+    def hash_file():
+        with open(src, "rb", buffering=0) as fh:
+            buf = memoryview(bytearray(1 << 20))
+            while n := fh.readinto(buf):
+                in_digest.update(buf[:n])
+    input_hash = threading.Thread(target=hash_file, daemon=True)
+    input_hash.start()
 if compressed:  # a decoder thread keeping 16 blocks of 1 MiB ready, as correct's does
     fh = io.BufferedReader(igzip_threaded._ThreadedGzipReader(src, queue_size=16,
                                                               block_size=1 << 20))
@@ -155,6 +213,8 @@ with fh:
     assert np.frombuffer(head, "<i4", 1, 0)[0] == 348, "a little-endian NIfTI-1 header"
     assert np.frombuffer(head, "<i2", 1, 70)[0] == 4, "int16 voxels"
     prefix = head + fh.read(int(np.frombuffer(head, "<f4", 1, 108)[0]) - 348)
+    if hashing and not compressed:
+        in_digest.update(prefix)
     dim = np.frombuffer(head, "<i2", 8, 40)
     n = int(np.prod(dim[1:1 + dim[0]], dtype=np.int64))
     data = np.empty(n, np.float32)
@@ -164,9 +224,13 @@ with fh:
     for first in range(0, n, step):
         count = min(step, n - first)
         part = stored[:count].view(np.uint8).data
+        if hasher is not None:
+            hasher.wait()  # the previous batch is hashed before it is overwritten
         got = 0
         while got < len(part):
             got += fh.readinto(part[got:])
+        if hasher is not None and not compressed:
+            hasher.submit(in_digest, part)  # hashed while it is converted
         # stored type -> float32, times the pattern
         part_in = stored[:count]
         part_out = data[first:first + count]
@@ -174,20 +238,35 @@ with fh:
         np.multiply(part_in[:whole].reshape(-1, table.size), table,
                     out=part_out[:whole].reshape(-1, table.size))
         np.multiply(part_in[whole:], table[:count - whole], out=part_out[whole:])
+    if hasher is not None and not compressed:
+        hasher.wait()
+        in_digest.update(fh.read())  # whatever follows the data
 del stored
 header = bytearray(prefix)
 header[70:74] = np.array([16, 32], "<i2").tobytes()  # datatype float32, bitpix 32
 raw = open(dst, "xb")
-out = igzip_threaded.open(raw, "wb", compresslevel=1, threads=2) if compressed else raw
+sink = HashingFile(raw, out_digest) if hashing and compressed else raw
+out = igzip_threaded.open(sink, "wb", compresslevel=1, threads=2) if compressed else raw
 out.write(bytes(header))
+if hasher is not None and not compressed:
+    out_digest.update(bytes(header))
 bytes_view = memoryview(data).cast("B")
 for first in range(0, len(bytes_view), CHUNK):
-    out.write(bytes_view[first:first + CHUNK])
+    chunk = bytes_view[first:first + CHUNK]
+    if hasher is not None and not compressed:
+        hasher.submit(out_digest, chunk)  # hashed while it is written
+    out.write(chunk)
 if out is not raw:
     out.close()
 raw.flush()
 os.fsync(raw.fileno())
 raw.close()
+if hashing:
+    if hasher is not None:
+        hasher.wait()
+    if compressed:
+        input_hash.join()
+    print(in_digest.hexdigest(), out_digest.hexdigest())
 """
 
 # Runs correct_paths in-process with wall-clock timers around its phases and
@@ -914,12 +993,15 @@ def nii_copy(root: Path, spec: Spec, work: Path) -> tuple[Path, list[Path]]:
     return target, images
 
 
-def run_floor(label: str, image: Path, work: Path, tag: str) -> tuple[Measurement, int]:
-    """The I/O floor script on one image; its wall time and output size."""
+def run_floor(label: str, image: Path, work: Path, tag: str,
+              hashing: bool = False) -> tuple[Measurement, int]:
+    """The I/O floor script on one image (with ``hashing``, also the SHA-256 of input
+    and output); its wall time and output size."""
     out = work / f"floor-{tag}{''.join(image.suffixes[-2:]) if image.suffix == '.gz' else '.nii'}"
     out.unlink(missing_ok=True)
-    result = measure(label, [sys.executable, "-c", FLOOR, str(image), str(out)],
-                     work / "logs" / f"floor-{tag}.log")
+    mode = "hash" if hashing else "none"
+    result = measure(label, [sys.executable, "-c", FLOOR, str(image), str(out), mode],
+                     work / "logs" / f"floor-{mode}-{tag}.log")
     size = out.stat().st_size
     out.unlink()
     _say(label, result)
@@ -946,15 +1028,24 @@ def run_correct_sized(label: str, dataset: Path, image: Path, work: Path, tag: s
 
 #: the issue's targets: correct within this many times its I/O floor
 FLOOR_TARGETS = {"fourier": 1.2, "sinc": 1.2, "cubic": 2.0}
+#: the two floors: the I/O alone, and the I/O with the SHA-256 of input and output
+#: that correct records for provenance (each byte hashed once, off the main thread)
+FLOORS = {"floor": False, "floor+hash": True}
+
+
+def _cpu(values: Sequence[Measurement]) -> float:
+    return statistics.median(m.user_s + m.sys_s for m in values)
 
 
 def floor_part(ctx: Context, specs: dict[str, Spec]) -> None:
-    """``correct`` against the I/O floor script, in alternating rounds (floor, fourier,
-    sinc, cubic), on ``.nii.gz`` and ``.nii`` copies of the standard and the
-    multiband run; every ratio is of medians measured in the same rounds."""
+    """``correct`` against the I/O floor scripts, in alternating rounds (floor,
+    floor+hash, fourier, sinc, cubic), on ``.nii.gz`` and ``.nii`` copies of the
+    standard and the multiband run; every ratio is of medians measured in the same
+    rounds, in wall time and in processor time (user + system)."""
     args, work = ctx.args, ctx.work
     results: dict[str, Any] = {}
-    rows: list[tuple[str, str, str, float, float, float | None, bool | None]] = []
+    rows: list[tuple[str, str, str, dict[str, tuple[float, float]], float, float,
+                     bool]] = []
     for key in args.floor_runs:
         spec = specs[key]
         dataset = make_dataset(work / spec.folder, spec)
@@ -965,43 +1056,57 @@ def floor_part(ctx: Context, specs: dict[str, Spec]) -> None:
             with open(root / image, "rb") as fh:  # into the page cache
                 while fh.read(16 * MIB):
                     pass
-            floors: list[Measurement] = []
+            floors: dict[str, list[Measurement]] = {name: [] for name in FLOORS}
             sizes: dict[str, int] = {}
             by_method: dict[str, list[Measurement]] = {m: [] for m in FLOOR_TARGETS}
             for i in range(rounds):
                 tag = f"{key}-{fmt.strip('.').replace('.', '')}-{i}"
-                m, sizes["floor"] = run_floor(f"{key} {fmt}: I/O floor", root / image, work, tag)
-                floors.append(m)
+                for name, hashing in FLOORS.items():
+                    m, sizes[name] = run_floor(f"{key} {fmt}: I/O {name}", root / image,
+                                               work, tag, hashing)
+                    floors[name].append(m)
                 for method in FLOOR_TARGETS:
                     m, sizes[method] = run_correct_sized(
                         f"{key} {fmt}: correct {method}", root, image, work,
                         f"floor-{method}-{tag}", "--method", method)
                     by_method[method].append(m)
-            floor_wall = _median(floors)
-            entry: dict[str, Any] = {"rounds": rounds, "floor": _summary(floors),
-                                     "output_bytes": sizes}
+            base = {name: (_median(values), _cpu(values)) for name, values in floors.items()}
+            entry: dict[str, Any] = {"rounds": rounds, "output_bytes": sizes}
+            for name, values in floors.items():
+                entry[name] = _summary(values) | {"cpu_s_median": round(_cpu(values), 3)}
             for method, values in by_method.items():
-                ratio = _median(values) / floor_wall
+                wall, cpu = _median(values), _cpu(values)
+                over = {name: {"wall": round(wall / w, 3), "cpu": round(cpu / c, 3)}
+                        for name, (w, c) in base.items()}
+                ratio = wall / base["floor"][0]
                 met = ratio <= FLOOR_TARGETS[method]
                 entry[method] = _summary(values) | {
-                    "over_floor": round(ratio, 3), "target": f"<= {FLOOR_TARGETS[method]}",
-                    "met": met}
+                    "cpu_s_median": round(cpu, 3), "over_floor": round(ratio, 3),
+                    "over": over, "target": f"<= {FLOOR_TARGETS[method]}", "met": met}
                 ctx.targets[f"floor_{key}_{fmt}_{method}"] = {
-                    "value": round(ratio, 3), "target": f"<= {FLOOR_TARGETS[method]}", "met": met}
-                rows.append((key, fmt, method, floor_wall, _median(values), ratio, met))
+                    "value": round(ratio, 3), "target": f"<= {FLOOR_TARGETS[method]}",
+                    "met": met, "over_floor_with_hash": over["floor+hash"]}
+                rows.append((key, fmt, method, base, wall, cpu, met))
             results[f"{key} {fmt}"] = entry
     ctx.results["floor"] = results
 
     def table() -> None:
-        print("\ncorrect against its I/O floor (decode, int16 -> float32, encode, fsync; "
-              "medians of alternating rounds)")
-        head = (f"{'run':<10} {'format':<8} {'method':<8} {'floor s':>8} {'correct s':>10} "
-                f"{'÷ floor':>8}  target")
+        print("\ncorrect against its I/O floors (decode, int16 -> float32, encode, fsync; "
+              "floor+hash also SHA-256s input and output as correct must for provenance; "
+              "medians of alternating rounds; cpu: user + system seconds)")
+        head = (f"{'run':<10} {'format':<8} {'method':<8} {'floor s':>12} "
+                f"{'floor+hash s':>13} {'correct s':>12} {'÷ floor':>12} "
+                f"{'÷ floor+hash':>13}  target")
         print(head)
         print("-" * len(head))
-        for key, fmt, method, floor_wall, wall, ratio, met in rows:
-            print(f"{key:<10} {fmt:<8} {method:<8} {floor_wall:8.2f} {wall:10.2f} "
-                  f"{ratio:8.2f}  ≤ {FLOOR_TARGETS[method]:g}  {_verdict(met)}")
+        for key, fmt, method, base, wall, cpu, met in rows:
+            (fw, fc), (hw, hc) = base["floor"], base["floor+hash"]
+            print(f"{key:<10} {fmt:<8} {method:<8} {fw:5.2f} ({fc:4.2f}) {hw:6.2f} ({hc:4.2f}) "
+                  f"{wall:5.2f} ({cpu:4.2f}) {wall / fw:5.2f} ({cpu / fc:4.2f}) "
+                  f"{wall / hw:6.2f} ({cpu / hc:4.2f})  ≤ {FLOOR_TARGETS[method]:g} "
+                  f"{_verdict(met)}")
+        print("(each cell: wall seconds or ratio, processor time in brackets; the verdict "
+              "is the wall ratio to the floor without hashing)")
         for name, entry in results.items():
             sizes = entry["output_bytes"]
             print(f"{name}: output {sizes['fourier'] / MIB:.0f} MiB (fourier), floor's "
