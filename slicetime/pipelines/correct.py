@@ -651,16 +651,22 @@ def _drain(
     n_slices, n_volumes = shape[plan.axis_index], shape[3]
     spatial_c = tuple(reversed(shape[:3]))
     others = [d for i, d in enumerate(spatial_c) if i != c_axis(plan.axis_index) - 1]
-    outgoing = np.empty((budget.volumes_per_batch, *spatial_c), dtype=cast.dtype)
-    for first in range(skip, n_volumes, budget.volumes_per_batch):
+    # two batch arrays in turn when the buffer is in memory (the writer may still be
+    # writing one while the next is filled; the budget counts two float32 batches);
+    # one from a scratch file, whose reads take the second batch's place
+    outgoing = [np.empty((budget.volumes_per_batch, *spatial_c), dtype=cast.dtype)
+                for _ in range(1 if budget.on_disk else 2)]
+    for i, first in enumerate(range(skip, n_volumes, budget.volumes_per_batch)):
         count = min(budget.volumes_per_batch, n_volumes - first)
         block = buffer.get_volumes(first, count).reshape(n_slices, count, *others)
-        target = outgoing[:count]
+        target = outgoing[i % len(outgoing)][:count]
+        if len(outgoing) == 1:
+            writer.settle()  # the one batch array is free again
         cast(volume_major_target(target, plan.axis_index), block)
         del block
         writer.write(target)
-    del outgoing
     writer.close()
+    del outgoing
 
 
 def _mtime(path: Path) -> float:

@@ -9,10 +9,11 @@ byte for byte, a few fields patched) from batches of volumes.
 * gzip is decompressed and compressed with ``isal`` in a helper thread when it
   is importable (several times faster than ``zlib``), else with ``gzip``.
 * The input file's bytes (compressed or plain) are hashed (SHA-256) in a thread
-  of their own with positional reads of the same descriptor, beside the decoder
-  (the file is then in the page cache): the checksum no longer slows the decoder's
-  thread. An uncompressed output is hashed beside its write; a compressed one in
-  the encoder's writer thread.
+  of their own with positional reads of the same descriptor into one reused
+  buffer, beside the decoder (the file is then in the page cache): the checksum
+  no longer slows the decoder's thread. An uncompressed output is written and
+  hashed by two helper threads while the next batch is prepared; a compressed
+  one is hashed in the encoder's writer thread.
 * Sizes were checked by :func:`.nifti.read_header` before anything here is
   allocated; a stream that still ends early or is corrupt raises ``ReadError``
   (``file/truncated`` / ``file/not-nifti``) naming the file.
@@ -205,13 +206,15 @@ class _FileHasher:
 
     def _run(self) -> None:
         offset = 0
+        buffer = memoryview(bytearray(_HASH_CHUNK))  # reused: no fresh pages per chunk
         try:
             while offset < self._limit and not self._stop:
-                chunk = os.pread(self._fd, min(_HASH_CHUNK, self._limit - offset), offset)
-                if not chunk:
+                n = os.preadv(self._fd, [buffer[: min(_HASH_CHUNK, self._limit - offset)]],
+                              offset)
+                if not n:
                     break
-                self._digest.update(chunk)
-                offset += len(chunk)
+                self._digest.update(buffer[:n])
+                offset += n
         except OSError as exc:
             self._error = exc
 
@@ -463,6 +466,13 @@ class VolumeWriter:
     Compressed with gzip when ``compress`` (``isal`` at its fastest level in a
     helper thread when available, else zlib level 1). The SHA-256 of the bytes
     written to disk is available from ``sha256()`` after ``close()``.
+
+    Uncompressed, each batch is written and hashed by two helper threads while the
+    caller prepares the next one: the array given to :meth:`write` may still be read
+    until the next ``write``, :meth:`settle` or ``close`` returns (a caller that
+    reuses one array calls ``settle`` before changing it; with two arrays in turn,
+    ``write`` itself waits for the one given before). A compressed batch is copied
+    by the encoder before ``write`` returns.
     """
 
     def __init__(
@@ -473,6 +483,8 @@ class VolumeWriter:
         self._digest = hashlib.sha256()
         self._hashing = _HashingWriter(self._raw, self._digest)
         self._stream: Any
+        self._helpers: Any = None
+        self._pending: list[Any] = []
         if compress:
             if _threaded_gzip is not None and threads > 0:
                 self._stream = _threaded_gzip.open(
@@ -494,17 +506,34 @@ class VolumeWriter:
         if self._stream is not self._hashing:
             self._stream.write(data)  # the encoder's writer thread hashes what it writes
             return
-        # uncompressed: the bytes are hashed in a thread of their own while this
-        # thread writes them (both release the GIL); both are done before returning
-        hasher = threading.Thread(target=self._digest.update, args=(data,),
-                                  name="slicetime-hash")
-        hasher.start()
-        try:
-            self._raw.write(data)
-        finally:
-            hasher.join()
+        # uncompressed: one helper thread writes the bytes, another hashes them (both
+        # release the GIL), in order, while the caller prepares the next batch
+        self.settle()
+        if self._helpers is None:
+            from concurrent.futures import ThreadPoolExecutor
+
+            self._helpers = ThreadPoolExecutor(max_workers=2,
+                                               thread_name_prefix="slicetime-write")
+        self._pending = [self._helpers.submit(self._raw.write, data),
+                         self._helpers.submit(self._digest.update, data)]
+
+    def settle(self) -> None:
+        """Wait until the last batch given to :meth:`write` is written and hashed
+        (raises the ``OSError`` its write met)."""
+        pending, self._pending = self._pending, []
+        for future in pending:
+            future.result()
+
+    def _stop_helpers(self) -> None:
+        helpers, self._helpers = self._helpers, None
+        if helpers is not None:
+            helpers.shutdown(wait=True)
 
     def close(self) -> None:
+        try:
+            self.settle()
+        finally:
+            self._stop_helpers()
         if self._stream is not self._hashing:
             self._stream.close()
         self._raw.flush()
@@ -513,10 +542,13 @@ class VolumeWriter:
 
     def abort(self) -> None:
         try:
+            self.settle()
             if self._stream is not self._hashing:
                 self._stream.close()
         except Exception:
             pass
+        finally:
+            self._stop_helpers()
         self._raw.close()
 
     def sha256(self) -> str:
