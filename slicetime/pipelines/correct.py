@@ -651,16 +651,18 @@ def _drain(
     n_slices, n_volumes = shape[plan.axis_index], shape[3]
     spatial_c = tuple(reversed(shape[:3]))
     others = [d for i, d in enumerate(spatial_c) if i != c_axis(plan.axis_index) - 1]
-    # two batch arrays in turn when the buffer is in memory (the writer may still be
-    # writing one while the next is filled; the budget counts two float32 batches);
-    # one from a scratch file, whose reads take the second batch's place
-    outgoing = [np.empty((budget.volumes_per_batch, *spatial_c), dtype=cast.dtype)
-                for _ in range(1 if budget.on_disk else 2)]
-    for i, first in enumerate(range(skip, n_volumes, budget.volumes_per_batch)):
-        count = min(budget.volumes_per_batch, n_volumes - first)
+    # two arrays of half a batch in turn when the buffer is in memory (the writer may
+    # still be writing one while the other is filled: the same memory as one batch,
+    # so the peak does not rise); one batch array from a scratch file
+    step = budget.volumes_per_batch
+    arrays = 1 if budget.on_disk or step < 2 else 2
+    step = -(-step // arrays)
+    outgoing = [np.empty((step, *spatial_c), dtype=cast.dtype) for _ in range(arrays)]
+    for i, first in enumerate(range(skip, n_volumes, step)):
+        count = min(step, n_volumes - first)
         block = buffer.get_volumes(first, count).reshape(n_slices, count, *others)
-        target = outgoing[i % len(outgoing)][:count]
-        if len(outgoing) == 1:
+        target = outgoing[i % arrays][:count]
+        if arrays == 1:
             writer.settle()  # the one batch array is free again
         cast(volume_major_target(target, plan.axis_index), block)
         del block
