@@ -275,18 +275,26 @@ def test_top_level_sidecar_is_parsed_once(tmp_path: Path, monkeypatch: pytest.Mo
     ]
     calls: list[str] = []
     real = inheritance_module.load_sidecar
+    real_read = inheritance_module.read_sidecar_bytes
 
     def counting(path: Any, display: Any = None, **kwargs: Any) -> Any:
         calls.append(str(path))
         return real(path, display, **kwargs)
 
+    def counting_read(path: Any, display: Any) -> Any:
+        calls.append(str(path))
+        return real_read(path, display)
+
     monkeypatch.setattr(inheritance_module, "load_sidecar", counting)
+    monkeypatch.setattr(inheritance_module, "read_sidecar_bytes", counting_read)
     index = SidecarIndex(tmp_path)
     for run in runs:
         res = index.resolve(run, tmp_path)
         assert res.metadata == {"RepetitionTime": 2.0, "SliceTiming": TIMES}
     assert calls.count(str(tmp_path / "task-rest_bold.json")) == 1
-    assert len(calls) == 1 + len(runs) == index.parse_count
+    assert len(calls) == 1 + len(runs)  # every run's own sidecar is read
+    # the twelve own sidecars hold the same bytes: parsed once, shared (SidecarStore.parsed)
+    assert index.parse_count == 2
 
 
 def test_metadata_is_a_fresh_dict_of_shared_frozen_values(tmp_path: Path) -> None:

@@ -54,7 +54,9 @@ from .sidecar import (
     FrozenList,
     check_types,
     load_sidecar,
+    parse_sidecar_bytes,
     quick_checks,
+    read_sidecar_bytes,
 )
 
 __all__ = [
@@ -73,6 +75,9 @@ _OWN_CACHE_SIZE = 256
 _CHOICES_KEPT = 4096
 #: folder listings a walk's store keeps for all its chunks (see SidecarStore)
 LISTINGS_KEPT = 4096
+#: own sidecars kept by content (see SidecarStore.parsed): how many, and how large
+_CONTENTS_KEPT = 4096
+_CONTENT_KEPT_BYTES = 1 << 16
 #: shared sidecars of this size on disk or more count against the walk's budget
 LARGE_SIDECAR_BYTES = 1 << 20
 #: bytes on disk of large shared sidecars parsed and held in one walk (per process)
@@ -105,6 +110,8 @@ class SidecarStore:
         self.used = 0
         self.parse_count = 0
         self._entries: dict[tuple[str, str], Loaded] = {}
+        #: sidecar bytes -> their parse, for content without findings (see ``parsed``)
+        self._contents: dict[bytes, Loaded] = {}
         self._listings: OrderedDict[tuple[str, str | None], _Listing] = OrderedDict()
         _STORES[self.token] = self
 
@@ -150,6 +157,23 @@ class SidecarStore:
         self.parse_count += 1
         value = (data, tuple(findings))
         self._entries[key] = value
+        return value, True
+
+    def parsed(self, raw: bytes, shown: str) -> tuple[Loaded, bool]:
+        """``raw`` parsed (:func:`parse_sidecar_bytes`; ``shown`` names it in findings).
+        Content parsed without a finding is kept by its bytes: the runs' own sidecars
+        of a study are often byte for byte alike (one per run, the same fields), and
+        they share one parsed (never changed) value. Content with findings is parsed
+        again each time, since the findings name the file. Also says whether this
+        call parsed."""
+        found = self._contents.get(raw)
+        if found is not None:
+            return found, False
+        data, findings = parse_sidecar_bytes(raw, shown)
+        value: Loaded = (data, tuple(findings))
+        if not findings and len(raw) <= _CONTENT_KEPT_BYTES \
+                and len(self._contents) < _CONTENTS_KEPT:
+            self._contents[raw] = value
         return value, True
 
     def _over_budget(self, shown: str, size: int) -> Finding:
@@ -401,9 +425,12 @@ class SidecarIndex:
         if key in self._own:
             self._own.move_to_end(key)
             return self._own[key]
-        data, findings = load_sidecar(key[0], display, root=root)
-        self.parse_count += 1
-        value = (data, tuple(findings))
+        raw, problem = read_sidecar_bytes(key[0], display, root=root)
+        if raw is None:
+            value: Loaded = (None, (problem,) if problem is not None else ())
+        else:
+            value, parsed = self.store.parsed(raw, display)
+            self.parse_count += parsed
         self._own[key] = value
         if len(self._own) > _OWN_CACHE_SIZE:
             self._own.popitem(last=False)

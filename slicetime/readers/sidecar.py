@@ -62,6 +62,7 @@ __all__ = [
     "check_types",
     "load_schema",
     "load_sidecar",
+    "read_sidecar_bytes",
     "parse_sidecar_bytes",
 ]
 
@@ -279,23 +280,34 @@ def load_sidecar(
     """
     p = os.fspath(path)
     shown = display if display is not None else display_name(Path(p), None)
+    raw, problem = read_sidecar_bytes(p, shown, root=root)
+    if raw is None:
+        return None, [problem] if problem is not None else []
+    return parse_sidecar_bytes(raw, shown)
+
+
+def read_sidecar_bytes(
+    path: str, shown: str, *, root: str | os.PathLike[str] | None = None,
+) -> tuple[bytes | None, Finding | None]:
+    """The bytes of the sidecar at ``path`` (a regular file, read with a bound; with
+    ``root``, not a link out of the dataset), or None and the finding that says why not
+    (the reading half of :func:`load_sidecar`)."""
     try:
-        fh, st = open_regular(p, shown, what="JSON file", root=root)
+        fh, st = open_regular(path, shown, what="JSON file", root=root)
         with fh:
             if st.st_size > MAX_SIDECAR_BYTES:
-                return None, [_too_large(shown, st.st_size)]
+                return None, _too_large(shown, st.st_size)
             if st.st_size == 0:
                 # not read: a size of 0 is an empty file or a pseudo-file (/proc) whose
                 # read may never end
-                return None, [_empty(shown)]
+                return None, _empty(shown)
             # ask for the size on disk (plus one byte, to see growth): a read of the 16 MiB
             # limit would allocate that much for every small file
-            raw = read_bounded(fh, st.st_size, MAX_SIDECAR_BYTES)
+            return read_bounded(fh, st.st_size, MAX_SIDECAR_BYTES), None
     except ReadError as err:
-        return None, [err.to_finding()]
+        return None, err.to_finding()
     except OSError as exc:
-        return None, [os_error(exc, shown, what="JSON file").to_finding()]
-    return parse_sidecar_bytes(raw, shown)
+        return None, os_error(exc, shown, what="JSON file").to_finding()
 
 
 def _too_large(shown: str, size: int) -> Finding:
