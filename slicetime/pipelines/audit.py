@@ -23,6 +23,7 @@ from slicetime.model import (
 )
 from slicetime.model_source import SourceEvidence
 from slicetime.pipelines.audit_facts import Interner, RunFacts
+from slicetime.pipelines.audit_memo import memo_for
 from slicetime.pipelines.errors import NoRunsError
 from slicetime.pipelines.executor import (
     Executor,
@@ -102,9 +103,10 @@ def audit_one(
     """Audit one run (the unit of work for every executor). With ``verify`` the image
     data are read too and the run gets one ``verify/*`` finding (before the policy, so
     the policy can ignore or re-rate it)."""
-    record = build_record(root, path, index)
+    memo = memo_for(index.store) if index is not None else None
+    record = build_record(root, path, index, memo.timing_of if memo is not None else None)
     record = _with_source(record, root, source, sources)
-    findings = check_run(record)
+    findings = memo.findings(record) if memo is not None else check_run(record)
     if verify:
         from slicetime.pipelines.verify import verify_finding
 

@@ -427,7 +427,7 @@ class SidecarIndex:
             return self._own[key]
         raw, problem = read_sidecar_bytes(key[0], display, root=root)
         if raw is None:
-            value: Loaded = (None, (problem,) if problem is not None else ())
+            value = (None, (problem,) if problem is not None else ())
         else:
             value, parsed = self.store.parsed(raw, display)
             self.parse_count += parsed

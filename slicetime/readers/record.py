@@ -10,11 +10,11 @@ from __future__ import annotations
 
 import os
 import stat
-from collections.abc import Iterable, Mapping, Sequence
+from collections.abc import Callable, Iterable, Mapping, Sequence
 from pathlib import Path
 from typing import Any
 
-from slicetime.model import Finding, HeaderInfo, RunRecord
+from slicetime.model import Finding, HeaderInfo, ResolvedTiming, RunRecord, Scheme
 from slicetime.readers.entities import parse_name
 from slicetime.readers.errors import ReadError, annex_target
 from slicetime.readers.inheritance import SidecarIndex, relative_posix
@@ -24,6 +24,9 @@ from slicetime.schemes.resolve import infer_run_scheme, resolve_timing
 #: timing fields with a dedicated rule; their type problems are reported there
 _DEDICATED_FIELDS = frozenset({"SliceTiming", "SliceEncodingDirection"})
 DATATYPES = frozenset({"func", "perf", "dwi", "anat", "fmap"})
+#: (metadata, sources, header, display) -> the run's timing and scheme
+TimingOf = Callable[[Mapping[str, Any], Mapping[str, str], HeaderInfo | None, str],
+                    tuple[ResolvedTiming, Scheme | None]]
 
 
 def relative_display(path: Path, root: Path) -> str:
@@ -43,8 +46,12 @@ def assemble_record(
     findings: Iterable[Finding] = (),
     overridden: Mapping[str, tuple[tuple[str, Any], ...]] | None = None,
     content_missing: str | None = None,
+    timing_of: TimingOf | None = None,
 ) -> RunRecord:
-    """Resolve the schedule and infer the scheme from values already read (pure)."""
+    """Resolve the schedule and infer the scheme from values already read (pure).
+    ``timing_of`` (metadata, sources, header, display) gives the timing and scheme in
+    place of :func:`resolve_timing` and :func:`infer_run_scheme` (the audit's
+    content memo, which gives the same)."""
     name = display.rsplit("/", 1)[-1]
     parent = display.rsplit("/", 2)[-2] if display.count("/") >= 1 else ""
     parsed = parse_name(name)
@@ -69,12 +76,17 @@ def assemble_record(
     }
     if header is None and content_missing is None:
         return RunRecord(**common)
+    if timing_of is not None:
+        timing, scheme = timing_of(metadata, sources, header, display)
+        return RunRecord(**common, timing=timing, scheme=scheme)
     timing = resolve_timing(metadata, sources, header, display)
     return RunRecord(**common, timing=timing, scheme=infer_run_scheme(timing))
 
 
-def build_record(root: Path, path: Path, index: SidecarIndex | None = None) -> RunRecord:
-    """Read one run. Never raises for a bad file: problems become findings."""
+def build_record(root: Path, path: Path, index: SidecarIndex | None = None,
+                 timing_of: TimingOf | None = None) -> RunRecord:
+    """Read one run. Never raises for a bad file: problems become findings.
+    ``timing_of``: see :func:`assemble_record`."""
     index = index if index is not None else SidecarIndex(root)
     display = relative_display(path, root)
     findings: list[Finding] = []
@@ -103,6 +115,7 @@ def build_record(root: Path, path: Path, index: SidecarIndex | None = None) -> R
         findings=findings,
         overridden=resolution.overridden,
         content_missing=missing,
+        timing_of=timing_of,
     )
 
 

@@ -62,8 +62,8 @@ __all__ = [
     "check_types",
     "load_schema",
     "load_sidecar",
-    "read_sidecar_bytes",
     "parse_sidecar_bytes",
+    "read_sidecar_bytes",
 ]
 
 MAX_SIDECAR_BYTES = 16 * 1024 * 1024

@@ -87,6 +87,25 @@ def check_run(record: RunRecord) -> list[Finding]:
     return findings
 
 
+#: the run checks that read the run's name or its source series, not only what its
+#: header and sidecars hold (the others may be judged once per distinct content:
+#: ``pipelines.audit_memo``)
+NAME_CODES: frozenset[str] = frozenset(
+    code for code, _check in RUN_CHECKS
+    if code == "file/bad-run-name" or code.startswith("source/"))
+
+
+def check_run_part(record: RunRecord, *, by_name: bool) -> list[tuple[int, Finding]]:
+    """The findings of the run checks of :data:`NAME_CODES` (``by_name``) or of all the
+    others, each with its check's place in :data:`RUN_CHECKS`: :func:`check_run` is the
+    reading findings plus both parts in that order."""
+    out: list[tuple[int, Finding]] = []
+    for place, (rule, check) in enumerate(_RUN):
+        if (rule.code in NAME_CODES) is by_name:
+            out.extend((place, to_finding(rule, record, hit)) for hit in check(record))
+    return out
+
+
 def check_dataset(
     records: Sequence[RunView], exempt: Mapping[str, Set[str]] | None = None
 ) -> tuple[dict[str, list[Finding]], list[Finding]]:
@@ -112,4 +131,5 @@ def check_dataset(
     return per_run, overall
 
 
-__all__ = ["DATASET_CHECKS", "RUN_CHECKS", "check_dataset", "check_run"]
+__all__ = ["DATASET_CHECKS", "NAME_CODES", "RUN_CHECKS", "check_dataset", "check_run",
+           "check_run_part"]
