@@ -45,7 +45,7 @@ from __future__ import annotations
 import errno
 import os
 import stat
-from collections.abc import Callable, Iterator, Mapping, Sequence
+from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
 from pathlib import Path
 
 from slicetime.codes import make_finding
@@ -350,17 +350,18 @@ class _Walker:
             ).to_finding())
 
     def walk(
-        self, folder: Path, top_real: str | None = None, real: str | None = None,
+        self, folder: str, top_real: str | None = None, real: str | None = None,
         confine: str | None = None,
-    ) -> Iterator[Path]:
+    ) -> Iterator[str]:
         """Depth-first, sorted by name; ``real`` is the real path of ``folder`` when known;
         ``confine``: the real path of the dataset root that folder links may not leave
-        (default: the folder's own)."""
+        (default: the folder's own). Paths are strings (absolute, normalised), a run's
+        made from its folder's and its name as the walk meets them."""
         if real is None:
             try:
                 real = os.path.realpath(folder)
             except OSError as exc:  # pragma: no cover - realpath rarely raises
-                self._report(folder, exc)
+                self._report(Path(folder), exc)
                 return
         if top_real is None:
             top_real = real
@@ -371,13 +372,15 @@ class _Walker:
         self.visited.add(real)
         try:
             with os.scandir(folder) as it:
-                entries = sorted(it, key=lambda e: e.name)
+                entries = sorted(it, key=_entry_name)
         except OSError as exc:
-            self._report(folder, exc)
+            self._report(Path(folder), exc)
             return
         if self.listings is not None:
-            self._remember(os.fspath(folder), entries)
+            self._remember(folder, entries)
         names: set[str] | None = None
+        base = folder if folder.endswith(os.sep) else folder + os.sep
+        folder_name = os.path.basename(folder)
         for entry in entries:
             name = entry.name
             if name.startswith(".") and not self.include_hidden:
@@ -388,25 +391,25 @@ class _Walker:
                 is_dir = False  # a link loop
             if is_image_name(name):
                 if is_dir or not _is_regular(entry):
-                    if _time_series_by_name(name) or _misnamed_run(name, folder.name):
-                        yield folder / name  # reading it reports what is wrong
+                    if _time_series_by_name(name) or _misnamed_run(name, folder_name):
+                        yield base + name  # reading it reports what is wrong
                     continue
-                if _time_series_by_name(name) or _misnamed_run(name, folder.name):
-                    yield folder / name
+                if _time_series_by_name(name) or _misnamed_run(name, folder_name):
+                    yield base + name
                     continue
                 if names is None:
                     names = {e.name for e in entries}
-                if _has_slice_timing(folder, name, names, confine):
-                    yield folder / name
+                if _has_slice_timing(Path(folder), name, names, confine):
+                    yield base + name
                 continue
             if is_dir:
                 if name in self.skip:
                     continue
-                path = folder / name
+                path = base + name
                 if entry.is_symlink():
                     leaving = link_leaving(path, confine)  # the readers' decision for files
                     if leaving is not None:
-                        self._report_link(path, leaving)
+                        self._report_link(Path(path), leaving)
                         continue
                     child_real = os.path.realpath(path)
                     if within(child_real, top_real):
@@ -414,6 +417,10 @@ class _Walker:
                 else:  # not a link: its real path is its name under this folder's real path
                     child_real = os.path.join(real, name)
                 yield from self.walk(path, top_real, child_real, confine)
+
+
+def _entry_name(entry: os.DirEntry[str]) -> str:
+    return entry.name
 
 
 def _is_regular(entry: os.DirEntry[str]) -> bool:
@@ -468,39 +475,45 @@ def iter_runs(
     finder = _RootFinder()
     walker = _Walker(skip, include_hidden, on_error, listings,
                      finder._described if listings is not None else None)
-    roots: dict[str, Path] = {}
+    roots: dict[str, tuple[str, Path]] = {}
 
-    def root_of(run: Path) -> Path:
-        key = os.path.dirname(os.fspath(run))
-        if key not in roots:
-            roots[key] = finder.find_folder(key)
-        return roots[key]
+    def root_of(run: str) -> tuple[str, Path]:
+        key = os.path.dirname(run)
+        found = roots.get(key)
+        if found is None:
+            root = finder.find_folder(key)
+            found = roots[key] = (str(root), root)
+        return found
 
-    found: dict[tuple[str, str], tuple[Path, Path]] = {}
+    found: dict[tuple[str, str], tuple[Path, str]] = {}
     for p in given:
         if not p.is_dir() and not_a_run(p.name) is not None:
             continue  # never a run, given by name or found (NoRunsError says why)
+        runs: Iterable[str]
         if p.is_dir():
             top = os.path.realpath(p)
             confine = os.path.realpath(finder.find_folder(os.fspath(p)))
-            runs = walker.walk(p, top, top, confine if within(top, confine) else top)
+            runs = walker.walk(os.fspath(p), top, top, confine if within(top, confine) else top)
         else:
-            runs = iter([p])
+            runs = (os.fspath(p),)
         for run in runs:
-            root = root_of(run)
-            found.setdefault((str(root), str(run)), (root, run))
+            root_text, root = root_of(run)
+            key = (root_text, run)
+            if key not in found:
+                found[key] = (root, run)
 
-    def order(item: tuple[Path, Path]) -> tuple[str, tuple[str, ...]]:
-        root, run = item
-        root_text, run_text = str(root), str(run)
+    def order(item: tuple[tuple[str, str], tuple[Path, str]]) -> tuple[str, tuple[str, ...]]:
+        (root_text, run_text), (root, _run) = item
         prefix = root_text if root_text.endswith(os.sep) else root_text + os.sep
         if os.sep == "/" and run_text.startswith(prefix):
             # what run.relative_to(root).parts gives, for absolute normalised paths
             return (root_text, tuple(run_text[len(prefix) :].split("/")))
+        run = Path(run_text)
         try:
             parts = run.relative_to(root).parts
         except ValueError:
             parts = run.parts
         return (root_text, parts)
 
-    yield from sorted(found.values(), key=order)
+    for _key, (root, run) in sorted(found.items(), key=order):
+        yield root, Path(run)

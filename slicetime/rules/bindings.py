@@ -100,10 +100,19 @@ def check_run_part(record: RunRecord, *, by_name: bool) -> list[tuple[int, Findi
     others, each with its check's place in :data:`RUN_CHECKS`: :func:`check_run` is the
     reading findings plus both parts in that order."""
     out: list[tuple[int, Finding]] = []
-    for place, (rule, check) in enumerate(_RUN):
-        if (rule.code in NAME_CODES) is by_name:
-            out.extend((place, to_finding(rule, record, hit)) for hit in check(record))
+    # the source checks judge the run's source series: without one they find nothing
+    checks = _BY_CONTENT if not by_name else _BY_NAME_ONLY if record.source is None \
+        else _BY_NAME_ALL
+    for place, rule, check in checks:
+        for hit in check(record):
+            out.append((place, to_finding(rule, record, hit)))
     return out
+
+
+_PLACED = [(place, rule, check) for place, (rule, check) in enumerate(_RUN)]
+_BY_CONTENT = tuple(p for p in _PLACED if p[1].code not in NAME_CODES)
+_BY_NAME_ALL = tuple(p for p in _PLACED if p[1].code in NAME_CODES)
+_BY_NAME_ONLY = tuple(p for p in _BY_NAME_ALL if not p[1].code.startswith("source/"))
 
 
 def check_dataset(
