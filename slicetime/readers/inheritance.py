@@ -73,6 +73,8 @@ __all__ = [
 _OWN_CACHE_SIZE = 256
 #: level choices remembered per folder (a flat folder of many runs stops adding)
 _CHOICES_KEPT = 4096
+#: values that passed the quick type check, remembered per index
+_PASSED_KEPT = 4096
 #: folder listings a walk's store keeps for all its chunks (see SidecarStore)
 LISTINGS_KEPT = 4096
 #: own sidecars kept by content (see SidecarStore.parsed): how many, and how large
@@ -323,8 +325,9 @@ class SidecarIndex:
         self._folders: dict[tuple[str, str | None], _Folder] = {}
         self._chains: dict[tuple[str, str | None], tuple[_Folder, ...]] = {}
         self._checked: dict[tuple[str, str], tuple[Finding, ...]] = {}
-        #: (shared sidecar, key) -> the value that passed the quick type check
-        self._passed: dict[tuple[str, str], Any] = {}
+        #: (shared sidecar, key) or (key, id of a frozen value) -> the value that passed
+        #: the quick type check
+        self._passed: dict[tuple[str, Any], Any] = {}
         self._own: OrderedDict[
             tuple[str, str], tuple[dict[str, Any] | None, tuple[Finding, ...]]
         ] = OrderedDict()
@@ -446,13 +449,17 @@ class SidecarIndex:
         for key in sorted(TIMING_FIELDS.intersection(metadata)):
             value = metadata[key]
             source = sources[key]
-            if passed.get((source, key)) is value:
+            if passed.get((source, key)) is value or passed.get((key, id(value))) is value:
                 continue  # this very (frozen, shared) value passed the check before
             if quick[key](value):
                 # certainly valid (the same predicate check_types starts with); a shared
-                # sidecar's value is remembered, so its runs do not check it again
+                # sidecar's value is remembered, so its runs do not check it again, and so
+                # is a parsed array or object of an own sidecar (one object for the runs
+                # whose own sidecars hold the same bytes: SidecarStore.parsed)
                 if source not in own_names:
                     passed[(source, key)] = value
+                elif type(value) in _FROZEN and len(passed) < _PASSED_KEPT:
+                    passed[(key, id(value))] = value  # held: the id is not reused meanwhile
                 continue
             memo_key = (source, key)
             cached = self._checked.get(memo_key)
