@@ -31,7 +31,7 @@ import dataclasses
 import operator
 import weakref
 from collections.abc import Mapping
-from typing import Any
+from typing import Any, TypeVar
 
 from slicetime.model import (
     Finding,
@@ -47,6 +47,8 @@ from slicetime.readers.inheritance import SidecarStore
 from slicetime.readers.sidecar import FrozenDict, FrozenList
 from slicetime.rules.bindings import check_run_part
 from slicetime.schemes.resolve import infer_run_scheme, resolve_timing
+
+_T = TypeVar("_T")
 
 #: a private switch: False evaluates every run as it is (the tests compare both ways)
 ENABLED = True
@@ -132,8 +134,18 @@ class _Timing:
 
 def _named(source: Source, names: Mapping[str, str]) -> Source:
     file = source.file
-    return dataclasses.replace(source, file=names[file]) \
+    return Source(source.kind, source.field, names[file]) \
         if file is not None and file in names else source
+
+
+def _changed(value: _T, **changes: Any) -> _T:
+    """A copy of the frozen dataclass instance ``value`` with ``changes`` (what
+    :func:`dataclasses.replace` gives, for classes without ``__post_init__``, without
+    running ``__init__``: this is done for every run)."""
+    copy = object.__new__(type(value))
+    copy.__dict__.update(value.__dict__)
+    copy.__dict__.update(changes)
+    return copy
 
 
 class ContentMemo:
@@ -177,13 +189,12 @@ class ContentMemo:
         timing = entry.timing
         schedule = timing.schedule
         if entry.in_schedule and schedule is not None:
-            schedule = dataclasses.replace(schedule, sources={
+            schedule = _changed(schedule, sources={
                 k: _named(s, names) for k, s in schedule.sources.items()})
         tr_source = timing.repetition_source
         if entry.in_tr and tr_source is not None:
             tr_source = _named(tr_source, names)
-        return dataclasses.replace(timing, schedule=schedule,
-                                   repetition_source=tr_source), entry.scheme
+        return _changed(timing, schedule=schedule, repetition_source=tr_source), entry.scheme
 
     def findings(self, record: RunRecord) -> list[Finding]:
         """What :func:`slicetime.rules.check_run` gives ``record`` (built with

@@ -115,8 +115,16 @@ def sidecar_name(image_name: str) -> str:
 
 def sidecar_path(run_path: str) -> str:
     """The own sidecar of a run given as a ``/``-separated path (relative or not)."""
-    folder, slash, name = run_path.rpartition("/")
-    return f"{folder}{slash}{sidecar_name(name)}"
+    found = _SIDECAR_PATHS.get(run_path)
+    if found is None:  # asked several times per run as the audit goes: the last few kept
+        if len(_SIDECAR_PATHS) >= 256:
+            _SIDECAR_PATHS.clear()
+        folder, slash, name = run_path.rpartition("/")
+        found = _SIDECAR_PATHS[run_path] = f"{folder}{slash}{sidecar_name(name)}"
+    return found
+
+
+_SIDECAR_PATHS: dict[str, str] = {}
 
 
 #: folders whose NIfTI files are time series (BIDS datatypes func, perf, dwi)
