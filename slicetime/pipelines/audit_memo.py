@@ -50,6 +50,10 @@ from slicetime.schemes.resolve import infer_run_scheme, resolve_timing
 
 _T = TypeVar("_T")
 
+#: a content whose arrays and objects hold more items in all is not remembered (the
+#: memo keeps what it remembers alive: a few thousand small sidecars, not large ones)
+_HELD_ITEMS = 4096
+
 #: a private switch: False evaluates every run as it is (the tests compare both ways)
 ENABLED = True
 #: distinct contents remembered per walk and process
@@ -69,6 +73,7 @@ _SCALARS: frozenset[type] = frozenset({str, int, bool, type(None)})
 _PLAIN: frozenset[type] = frozenset({int, float, bool, type(None), Severity})
 _MAPPINGS: frozenset[type] = frozenset({dict, FrozenDict})
 _SEQUENCES: frozenset[type] = frozenset({list, tuple, FrozenList})
+_FROZEN: frozenset[type] = frozenset({FrozenList, FrozenDict})
 
 
 def _value_key(value: Any) -> tuple[Any, Any]:
@@ -78,6 +83,10 @@ def _value_key(value: Any) -> tuple[Any, Any]:
     if kind is float:
         return (float, value.hex())  # -0.0 and 0.0 apart
     return (None, id(value))  # a parsed array or object: one object per parse
+
+
+def _held_items(metadata: Mapping[str, Any]) -> int:
+    return sum(len(v) for v in metadata.values() if type(v) in _FROZEN)
 
 
 def _scan(value: Any) -> int:
@@ -173,7 +182,7 @@ class ContentMemo:
                tuple(canonical.items()))
         entry = self._timings.get(key)
         if entry is None:
-            if not self._remembers(self._timings):
+            if not self._remembers(self._timings) or _held_items(metadata) > _HELD_ITEMS:
                 self._last = None
                 return _cold(metadata, sources, header, display)
             entry = self._timings[key] = _evaluate(metadata, canonical, header)

@@ -80,6 +80,8 @@ LISTINGS_KEPT = 4096
 #: own sidecars kept by content (see SidecarStore.parsed): how many, and how large
 _CONTENTS_KEPT = 4096
 _CONTENT_KEPT_BYTES = 1 << 16
+#: and how many bytes of such content in all (their parse holds several times as much)
+_CONTENTS_KEPT_BYTES = 4 << 20
 #: shared sidecars of this size on disk or more count against the walk's budget
 LARGE_SIDECAR_BYTES = 1 << 20
 #: bytes on disk of large shared sidecars parsed and held in one walk (per process)
@@ -114,6 +116,7 @@ class SidecarStore:
         self._entries: dict[tuple[str, str], Loaded] = {}
         #: sidecar bytes -> their parse, for content without findings (see ``parsed``)
         self._contents: dict[bytes, Loaded] = {}
+        self._content_bytes = 0
         self._listings: OrderedDict[tuple[str, str | None], _Listing] = OrderedDict()
         _STORES[self.token] = self
 
@@ -174,8 +177,10 @@ class SidecarStore:
         data, findings = parse_sidecar_bytes(raw, shown)
         value: Loaded = (data, tuple(findings))
         if not findings and len(raw) <= _CONTENT_KEPT_BYTES \
-                and len(self._contents) < _CONTENTS_KEPT:
+                and len(self._contents) < _CONTENTS_KEPT \
+                and self._content_bytes + len(raw) <= _CONTENTS_KEPT_BYTES:
             self._contents[raw] = value
+            self._content_bytes += len(raw)
         return value, True
 
     def _over_budget(self, shown: str, size: int) -> Finding:
