@@ -281,9 +281,9 @@ def test_top_level_sidecar_is_parsed_once(tmp_path: Path, monkeypatch: pytest.Mo
         calls.append(str(path))
         return real(path, display, **kwargs)
 
-    def counting_read(path: Any, display: Any) -> Any:
+    def counting_read(path: Any, display: Any, **kwargs: Any) -> Any:
         calls.append(str(path))
-        return real_read(path, display)
+        return real_read(path, display, **kwargs)
 
     monkeypatch.setattr(inheritance_module, "load_sidecar", counting)
     monkeypatch.setattr(inheritance_module, "read_sidecar_bytes", counting_read)
