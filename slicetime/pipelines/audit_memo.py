@@ -288,9 +288,10 @@ def _evaluate_checks(record: RunRecord, own: str, entry: _Timing
 
 
 def _put_finding(finding: Finding, names: Mapping[str, str]) -> Finding:
-    return Finding(finding.code, finding.severity, _put(finding.message, names),
-                   _put(finding.file, names), _put(finding.field, names),
-                   _put(finding.evidence, names), _put(finding.hint, names))
+    """The catalogue's finding with the run's names in place of the tokens."""
+    return _changed(finding, message=_put(finding.message, names),
+                    file=_put(finding.file, names), field=_put(finding.field, names),
+                    evidence=_put(finding.evidence, names), hint=_put(finding.hint, names))
 
 
 #: the memo of each walk in this process (the walk's sidecar store stands for the walk)
