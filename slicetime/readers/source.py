@@ -28,14 +28,17 @@ from collections import OrderedDict
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Literal
+from typing import TYPE_CHECKING, Any, Literal
 
 from slicetime.model import TIME_TOLERANCE, RunRecord
 from slicetime.model_source import SeriesTiming, SourceEvidence
-from slicetime.readers.dicom import group_name, read_all_series, read_group
-from slicetime.readers.dicom_files import SeriesGroup, catalogue, natural
 from slicetime.readers.errors import ReadError, open_regular, read_bounded
-from slicetime.schemes.correspond import Mismatch, correspond
+
+if TYPE_CHECKING:
+    from slicetime.readers.dicom_files import SeriesGroup
+
+# the DICOM readers and the correspondence are imported where a series is read: an
+# audit of a dataset without sourcedata/ never needs them (a few ms of every start)
 
 __all__ = ["SourceIndex", "SourceOptions", "find_source", "load_source_map", "run_geometry"]
 
@@ -183,6 +186,8 @@ class SourceIndex:
                 _KEPT.move_to_end(kept_key)
                 self._groups[key] = kept[1]
                 return kept[1]
+            from slicetime.readers.dicom_files import catalogue, natural
+
             found: list[SeriesGroup] = []
             if os.path.exists(path):
                 try:
@@ -207,6 +212,8 @@ class SourceIndex:
         return self.groups_in(top, recursive=True)
 
     def name(self, group: SeriesGroup) -> str:
+        from slicetime.readers.dicom import group_name
+
         return group_name(group, self.root)
 
     def skipped(self, group: SeriesGroup) -> tuple[str, ...]:
@@ -222,6 +229,8 @@ class SourceIndex:
     def series(self, group: SeriesGroup) -> SeriesTiming | ReadError:
         if id(group) not in self._series:
             try:
+                from slicetime.readers.dicom import read_group
+
                 self._series[id(group)] = read_group(group, self.name(group), self.root)
             except ReadError as exc:
                 self._series[id(group)] = exc
@@ -237,6 +246,8 @@ def _declared_axis(record: RunRecord) -> int | None:
 
 def _fits(series: SeriesTiming, record: RunRecord, geometry: Geometry) -> bool:
     """Geometry, TR and volume count all agree (used to match without SeriesNumber)."""
+    from slicetime.schemes.correspond import Mismatch, correspond
+
     affine, shape = geometry
     outcome = correspond(series, affine, shape, _declared_axis(record))
     if isinstance(outcome, Mismatch):
@@ -297,6 +308,8 @@ def _mapped_evidence(record: RunRecord, index: SourceIndex, target: str) -> Sour
             candidates=(shown,))
     groups = index.groups_in(target, recursive=False)
     if not groups:
+        from slicetime.readers.dicom import read_all_series
+
         try:
             read_all_series(target, shown, index.root)
         except ReadError as exc:
