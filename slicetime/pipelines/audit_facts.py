@@ -112,16 +112,28 @@ class Interner:
         return found
 
     def text(self, value: str) -> str:
-        return self._one(("s", value), lambda: value)
+        key = ("s", value)
+        found = self._values.get(key)
+        if found is None:
+            found = self._values[key] = value
+        return found
 
     def mapping(self, value: Mapping[str, Any]) -> Mapping[str, Any]:
         # the keys (one tuple per distinct set) and text values interned: every run's parse
         # made its own copies of the same few words ("sub", "SliceTiming", a subject's
         # label); the lookup key holds no (key, value) pairs, only two flat tuples
+        values_ = self._values
         keys = tuple(value)
-        keys = self._one(("k", keys), lambda: tuple(sys.intern(k) for k in keys))
-        values = tuple(sys.intern(v) if type(v) is str else v for v in value.values())
-        return self._one(("m", keys, values), lambda: dict(zip(keys, values, strict=True)))
+        found = values_.get(("k", keys))
+        if found is None:
+            found = values_[("k", keys)] = tuple([sys.intern(k) for k in keys])
+        keys = found
+        values = tuple([sys.intern(v) if type(v) is str else v for v in value.values()])
+        key = ("m", keys, values)
+        mapping = values_.get(key)
+        if mapping is None:
+            mapping = values_[key] = dict(zip(keys, values, strict=True))
+        return mapping
 
     def adopt(self, facts: RunFacts, seen: dict[int, Any]) -> RunFacts:
         """``facts`` made by another interner (in a worker), sharing this one's values.

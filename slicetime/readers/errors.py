@@ -35,6 +35,7 @@ even from a file that keeps growing.
 from __future__ import annotations
 
 import errno
+import io
 import os
 import stat
 from collections.abc import Callable, Mapping
@@ -314,7 +315,12 @@ def open_regular(
     open never blocks: the flags include ``O_NONBLOCK``, which regular files ignore.
     """
     # before the open: a device (or a link out of the dataset) is never opened
-    check_regular_file(path, shown, what=what, root=root)
+    try:
+        known = stat.S_ISREG(os.lstat(path).st_mode)  # a regular file, not a link: no more
+    except (OSError, ValueError):                     # to ask (the common case, said once)
+        known = False
+    if not known:
+        check_regular_file(path, shown, what=what, root=root)
     try:
         fd = os.open(path, _OPEN_FLAGS)
     except OSError as exc:
@@ -323,7 +329,7 @@ def open_regular(
         st = os.fstat(fd)
         if not stat.S_ISREG(st.st_mode):
             raise _not_regular(shown, st.st_mode, what, swapped=True)
-        return os.fdopen(fd, "rb", buffering=0), st
+        return io.FileIO(fd, "rb"), st  # what os.fdopen(fd, "rb", buffering=0) gives
     except BaseException:
         os.close(fd)
         raise
