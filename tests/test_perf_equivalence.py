@@ -652,3 +652,24 @@ def test_spline_rows_equal_scipy_cubic_spline(length: int, shift: float) -> None
     index = np.arange(length, dtype=np.float64)
     expected = CubicSpline(index, np.eye(length), axis=0, bc_type="not-a-knot")(index + shift)
     np.testing.assert_allclose(spline_rows(length, shift), expected, rtol=0, atol=1e-12)
+
+
+@pytest.mark.parametrize("cls", ["HeaderInfo", "RunRecord"])
+def test_assembled_instance_equals_the_constructed_one(cls: str) -> None:
+    # the dataclass constructor is the reference (Python documentation, dataclasses:
+    # a frozen class's __init__ stores each field; equality compares the fields)
+    import dataclasses
+
+    from slicetime import model
+
+    kind = getattr(model, cls)
+    values = {f.name: (i, f.name) for i, f in enumerate(dataclasses.fields(kind))}
+    made = model.assembled(kind, dict(values))
+    assert made == kind(**values)
+    assert type(made) is kind
+    assert {f.name: getattr(made, f.name) for f in dataclasses.fields(kind)} == values
+    with pytest.raises(dataclasses.FrozenInstanceError):
+        made.path = "x"
+    with pytest.raises(TypeError):
+        model.assembled(kind, {k: v for k, v in values.items() if k != "file_size"
+                               and k != "content_missing"})

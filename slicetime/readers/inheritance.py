@@ -391,20 +391,19 @@ class SidecarIndex:
         cached = self._folders.get(key)
         if cached is None:
             listing = self.listing(directory, root)
-            candidates = tuple(
-                _Candidate(
-                    name=name,
-                    parsed=pn,
-                    inheritable=pn is not None and pn.extension == ".json",
-                    n_entities=len(pn.entities) if pn is not None else 0,
-                    path=os.path.join(directory, name),
-                    shown=_relative_text(os.path.join(directory, name), root),
-                )
-                for name, pn in listing.jsons
-            )
+            if not listing.jsons:  # most folders on the way down hold no sidecar
+                cached = self._folders[key] = _Folder((), listing.problem)
+                return cached
+            candidates = []
+            for name, pn in listing.jsons:
+                path = os.path.join(directory, name)
+                candidates.append(_Candidate(
+                    name, pn, pn is not None and pn.extension == ".json",
+                    len(pn.entities) if pn is not None else 0, path,
+                    _relative_text(path, root)))
             keys = sorted({k for c in candidates if c.inheritable and c.parsed is not None
                            for k in c.parsed.entities})
-            cached = _Folder(candidates, listing.problem, tuple(keys),
+            cached = _Folder(tuple(candidates), listing.problem, tuple(keys),
                              frozenset(c.name for c in candidates))
             self._folders[key] = cached
         return cached

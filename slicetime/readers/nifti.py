@@ -58,7 +58,7 @@ from collections.abc import Callable
 from pathlib import Path
 from typing import Any, BinaryIO, Literal, cast
 
-from slicetime.model import Finding, HeaderInfo
+from slicetime.model import Finding, HeaderInfo, assembled
 from slicetime.numbers import amount, size_words
 
 from .errors import (
@@ -511,31 +511,31 @@ def _read_open(
     sd = raw_sd * factor if math.isfinite(raw_sd) and raw_sd != 0 else None
     info = int(raw["dim_info"])
     freq, phase, slc = info & 3, (info >> 2) & 3, (info >> 4) & 3
-    header = HeaderInfo(
-        version=version,
-        shape=shape,
-        pixdim=tuple(float(v) for v in pixdim_all[1 : len(shape) + 1]),
-        datatype=int(raw["datatype"]),
-        bitpix=int(raw["bitpix"]),
-        vox_offset=vox_offset,
-        byte_order=order,
-        time_unit=time_unit,
-        raw_pixdim4=raw_tr,
-        repetition_time=tr,
-        freq_dim=freq - 1 if freq else None,
-        phase_dim=phase - 1 if phase else None,
-        slice_dim=slc - 1 if slc else None,
-        slice_code=int(raw["slice_code"]),
-        slice_start=int(raw["slice_start"]),
-        slice_end=int(raw["slice_end"]),
-        raw_slice_duration=raw_sd,
-        slice_duration=sd,
-        scl_slope=float(raw["scl_slope"]),
-        scl_inter=float(raw["scl_inter"]),
-        compressed=compressed,
-        file_size=file_size,
-        data_bytes=data_bytes,
-    )
+    header = assembled(HeaderInfo, {  # HeaderInfo(...) without its per-field setattr
+        "version": version,
+        "shape": shape,
+        "pixdim": tuple(float(v) for v in pixdim_all[1 : len(shape) + 1]),
+        "datatype": int(raw["datatype"]),
+        "bitpix": int(raw["bitpix"]),
+        "vox_offset": vox_offset,
+        "byte_order": order,
+        "time_unit": time_unit,
+        "raw_pixdim4": raw_tr,
+        "repetition_time": tr,
+        "freq_dim": freq - 1 if freq else None,
+        "phase_dim": phase - 1 if phase else None,
+        "slice_dim": slc - 1 if slc else None,
+        "slice_code": int(raw["slice_code"]),
+        "slice_start": int(raw["slice_start"]),
+        "slice_end": int(raw["slice_end"]),
+        "raw_slice_duration": raw_sd,
+        "slice_duration": sd,
+        "scl_slope": float(raw["scl_slope"]),
+        "scl_inter": float(raw["scl_inter"]),
+        "compressed": compressed,
+        "file_size": file_size,
+        "data_bytes": data_bytes,
+    })
     return header, findings
 
 

@@ -14,7 +14,7 @@ from collections.abc import Callable, Iterable, Mapping, Sequence
 from pathlib import Path
 from typing import Any
 
-from slicetime.model import Finding, HeaderInfo, ResolvedTiming, RunRecord, Scheme
+from slicetime.model import Finding, HeaderInfo, ResolvedTiming, RunRecord, Scheme, assembled
 from slicetime.readers.entities import parse_name
 from slicetime.readers.errors import ReadError, annex_target
 from slicetime.readers.inheritance import SidecarIndex, relative_posix
@@ -77,10 +77,12 @@ def assemble_record(
     if header is None and content_missing is None:
         return RunRecord(**common)
     if timing_of is not None:
-        timing, scheme = timing_of(metadata, sources, header, display)
-        return RunRecord(**common, timing=timing, scheme=scheme)
-    timing = resolve_timing(metadata, sources, header, display)
-    return RunRecord(**common, timing=timing, scheme=infer_run_scheme(timing))
+        common["timing"], common["scheme"] = timing_of(metadata, sources, header, display)
+    else:
+        common["timing"] = timing = resolve_timing(metadata, sources, header, display)
+        common["scheme"] = infer_run_scheme(timing)
+    common["source"] = None
+    return assembled(RunRecord, common)  # RunRecord(**common), once per run
 
 
 def build_record(root: Path, path: Path, index: SidecarIndex | None = None,
