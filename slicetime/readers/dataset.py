@@ -43,6 +43,7 @@ sorted by root, then by path components; each run once.
 from __future__ import annotations
 
 import errno
+import operator
 import os
 import stat
 from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
@@ -419,8 +420,8 @@ class _Walker:
                 yield from self.walk(path, top_real, child_real, confine)
 
 
-def _entry_name(entry: os.DirEntry[str]) -> str:
-    return entry.name
+#: a folder entry's name, read in C (a Python key function cost 3 % of an audit)
+_entry_name = operator.attrgetter("name")
 
 
 def _is_regular(entry: os.DirEntry[str]) -> bool:
