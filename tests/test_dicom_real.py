@@ -409,13 +409,13 @@ def test_the_catalogue_is_kept_between_chunks_until_the_tree_changes(
     root = dataset(tmp_path)
     classic_series(root / "sourcedata/sub-01/005", INVENTED)
     calls: list[str] = []
-    real = source_module.catalogue
+    real = dicom_files.catalogue  # imported by the source index when it reads a folder
 
     def counting(path: str, *args: Any, **kwargs: Any) -> Any:
         calls.append(path)
         return real(path, *args, **kwargs)
 
-    monkeypatch.setattr(source_module, "catalogue", counting)
+    monkeypatch.setattr(dicom_files, "catalogue", counting)
     first = source_module.SourceIndex(root).groups("01", None)
     again = source_module.SourceIndex(root).groups("01", None)  # the next chunk
     assert len(calls) == 1 and again is first
