@@ -406,11 +406,8 @@ def test_the_html_page_from_worker_parts_equals_the_page_from_whole_records(
 ) -> None:
     # with --html the workers send back each run's page parts instead of its record: the
     # page (data, drawings, counts) must be the one the whole records give
-    from slicetime.interfaces.report_html import (
-        DiagramCollector,
-        line_and_parts,
-        write_html_stream,
-    )
+    from slicetime.interfaces.report_html import write_html_stream
+    from slicetime.interfaces.report_html_parts import DiagramCollector, line_and_parts
     from slicetime.interfaces.report_stream import RunSpool
 
     root = _many_runs(tmp_path / "ds", n=90)

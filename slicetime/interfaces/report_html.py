@@ -21,6 +21,8 @@ escapes) and then ``html.escape``. A Content-Security-Policy allows no network
 access at all and only the page's own script (by its hash, computed from the script
 file's bytes). The style and the script are package data files,
 ``slicetime/data/report.css`` and ``slicetime/data/report.js``, embedded in the page.
+What the page needs of each run (its drawing, facts and sources) is taken while the
+audit streams, by ``report_html_parts``; this module lays the page out from it.
 
 The script reads and writes its state in the URL fragment
 (``report.html#severity=error&q=sub-01``), so a filtered view can be shared, and
@@ -36,13 +38,12 @@ import hashlib
 import html
 import io
 import os
-from array import array
 from collections import Counter, defaultdict
 from collections.abc import Iterator, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from functools import cache
 from importlib import resources
-from typing import IO, Any
+from typing import IO
 
 from slicetime import __version__
 from slicetime.interfaces.grouping import (
@@ -52,13 +53,8 @@ from slicetime.interfaces.grouping import (
     listed_paths,
     runs_phrase,
 )
-from slicetime.interfaces.plots import (
-    COLOURS,
-    DiagramSpec,
-    diagram_spec,
-    render_svg,
-    slices_phrase,
-)
+from slicetime.interfaces.plots import COLOURS
+from slicetime.interfaces.report_html_parts import OWN_SIDECAR, DiagramCollector, ValueTable
 from slicetime.interfaces.report_stream import (
     MemorySource,
     ReportSource,
@@ -67,16 +63,14 @@ from slicetime.interfaces.report_stream import (
     evidence_text,
     group_label,
     report_root,
-    run_line,
 )
 from slicetime.interfaces.safe_text import xml_safe
 from slicetime.interfaces.screen import repetition_text, strip_path_prefix
-from slicetime.model import RunRecord, Severity
-from slicetime.numbers import duration, secs
-from slicetime.pipelines.audit import AuditResult, AuditTotals, RunFacts, RunResult
-from slicetime.readers.entities import sidecar_path
+from slicetime.model import Severity
+from slicetime.numbers import secs
+from slicetime.pipelines.audit import AuditResult, AuditTotals, RunFacts
 from slicetime.rules.dataset import PROTOCOL_ENTITIES, protocol_key
-from slicetime.words import agree, count, encoding_direction
+from slicetime.words import agree
 
 #: fills for scheme tags in the dataset picture and the runs table (our own muted
 #: palette: lavender, aqua, teal, mint, lilac, mauve grey, periwinkle, pale green), reused
@@ -117,41 +111,6 @@ def _plural(n: int, word: str) -> str:
 # --------------------------------------------------------------------------- diagrams
 
 
-@dataclass
-class Drawings:
-    """Distinct timing diagrams, each drawn once and referenced by id."""
-
-    ids: dict[DiagramSpec, str] = field(default_factory=dict)
-    users: Counter[str] = field(default_factory=Counter)
-
-    def add(self, spec: DiagramSpec) -> str:
-        ident = self.ids.get(spec)
-        if ident is None:
-            ident = f"dg-{len(self.ids) + 1}"
-            self.ids[spec] = ident
-        self.users[ident] += 1
-        return ident
-
-    def distinct(self) -> int:
-        """How many real diagrams there are (a run without timing has none: no box)."""
-        return sum(1 for spec in self.ids if spec.kind == "schedule")
-
-    def symbols(self) -> tuple[str, dict[str, tuple[float, float]]]:
-        """The hidden SVG block holding one ``<symbol>`` per distinct diagram (none for
-        the runs without usable timing: their sections say why in a line of text)."""
-        parts = ['<svg class="sprite" aria-hidden="true" focusable="false"><defs>']
-        sizes: dict[str, tuple[float, float]] = {}
-        for spec, ident in self.ids.items():
-            if spec.kind != "schedule":
-                sizes[ident] = (0.0, 0.0)
-                continue
-            body, (w, h) = render_svg(spec, prefix=f"{ident}-")
-            sizes[ident] = (w, h)
-            parts.append(f'<symbol id="{ident}" viewBox="0 0 {w:g} {h:g}">{body}</symbol>')
-        parts.append("</defs></svg>")
-        return "".join(parts), sizes
-
-
 def _use(ident: str, size: tuple[float, float], caption: str) -> str:
     w, h = size
     return (
@@ -173,144 +132,6 @@ class _Tag:
 
 def _chip(tag: _Tag) -> str:
     return f'<span class="chip {tag.cls}">{txt(tag.text)}</span>'
-
-
-# --------------------------------------------------------------------------- phase 1
-
-
-class _Table:
-    """Distinct values, each stored once and referred to by its index."""
-
-    def __init__(self) -> None:
-        self.index: dict[Any, int] = {}
-        self.values: list[Any] = []
-
-    def __call__(self, value: Any) -> int:
-        found = self.index.get(value)
-        if found is None:
-            found = self.index[value] = len(self.values)
-            self.values.append(value)
-        return found
-
-
-def _run_facts(record: RunRecord) -> tuple[tuple[str, str], ...]:
-    """The facts a run's section lists (name, text), as plain text for the page."""
-    schedule = record.schedule
-    header = record.header
-    facts: list[tuple[str, str]] = []
-    if header is not None:
-        facts.append(("shape", " × ".join(str(d) for d in header.shape)))
-    tr = record.timing.repetition_time  # resolved: the sidecar's, else the header's
-    if tr is not None:
-        facts.append(("repetition time",
-                      repetition_text(tr, record.timing.repetition_origin)))
-    if schedule is not None:
-        facts.append(("slice axis", encoding_direction(schedule.axis, schedule.direction) + (
-            " (SliceTiming lists the highest index first)" if schedule.direction == "-" else "")))
-        if schedule.delay_time:
-            facts.append(("DelayTime", secs(schedule.delay_time)))
-        if schedule.volume_times:
-            facts.append(("volume times",
-                          f"{count(len(schedule.volume_times), 'onset')} (VolumeTiming)"))
-        facts.append(("timing from", xml_safe(record.timing_origin or "")))
-    scheme = record.scheme
-    if scheme is not None:
-        # the label is on the run's row; here what it means
-        detail = slices_phrase(scheme.n_slices, scheme.groups)
-        if scheme.spacing:
-            detail += f", one excitation every {duration(scheme.spacing)}"
-        facts.append(("scheme", detail))
-    else:
-        facts.append(("scheme", "unknown: no usable slice timing"))
-    return tuple(facts)
-
-
-#: in the page's sources table: the run's own sidecar (the run's last element names it)
-OWN_SIDECAR = -2
-
-
-def _source_texts(record: RunRecord) -> tuple[str, ...]:
-    """Where each value came from: key, value, key, value, …"""
-    sources: dict[str, str] = {}
-    if record.schedule is not None:
-        sources.update({k: v.describe() for k, v in record.schedule.sources.items()})
-    for key in ("MultibandAccelerationFactor", "TaskName", "EchoTime"):
-        if key in record.metadata_sources:
-            sources[key] = record.metadata_sources[key]
-    return tuple(text for pair in sources.items() for text in pair)
-
-
-@dataclass(frozen=True)
-class RunParts:
-    """What the page needs of one run's full record, as plain values: made where the
-    run is audited (a worker process), so that the record need not travel."""
-
-    spec: DiagramSpec
-    facts: tuple[tuple[str, str], ...]
-    sources: tuple[str, ...]  # key, value, key, value, …
-    chain: tuple[str, ...]
-    own: str  # the run's own sidecar (path as reports show it)
-
-
-#: equal diagrams of the runs a worker audits made one object (sent once per chunk)
-_SPECS: dict[DiagramSpec, DiagramSpec] = {}
-
-
-def page_parts(record: RunRecord) -> RunParts:
-    spec = diagram_spec(record)
-    if len(_SPECS) >= 1024:
-        _SPECS.clear()
-    spec = _SPECS.setdefault(spec, spec)
-    return RunParts(spec, _run_facts(record), _source_texts(record), record.sidecar_chain,
-                    sidecar_path(record.path))
-
-
-def line_and_parts(result: RunResult) -> tuple[str, RunParts]:
-    """A run's report line and page parts: ``audit_stream(prepare=...)`` with ``--html``."""
-    return run_line(result), page_parts(result.record)
-
-
-class DiagramCollector:
-    """What the HTML report needs from each full run record, taken while the audit
-    streams (the records are not kept): its drawing, its facts, its sources and
-    sidecars. Each distinct value (and string) is stored once; what is unique to
-    a run (its own sidecar's name) costs one string."""
-
-    def __init__(self) -> None:
-        self.drawings = Drawings()
-        self.examples: dict[str, int] = {}
-        self.strings = _Table()
-        self.facts = _Table()
-        self.sources = _Table()
-        self.run_drawing = array("I")
-        self.run_facts = array("I")
-        self.run_sources = array("I")
-        self.run_own = array("i")  # the run's own sidecar (a string index), or -1
-
-    def add(self, run: RunResult) -> None:
-        self.add_parts(page_parts(run.record))
-
-    def add_parts(self, parts: RunParts) -> None:
-        ident = self.drawings.add(parts.spec)
-        self.examples.setdefault(ident, len(self.run_drawing))
-        self.run_drawing.append(int(ident[3:]) - 1)
-        self.run_facts.append(self.facts(parts.facts))
-        # the run's own sidecar is OWN_SIDECAR in its sources and chain, so runs that take
-        # their values the same way share one entry of the sources table
-        own = parts.own
-        used = False
-
-        def index(text: str) -> int:
-            nonlocal used
-            if text == own:
-                used = True
-                return OWN_SIDECAR
-            return self.strings(xml_safe(text))
-
-        chain = tuple(index(s) for s in parts.chain)
-        sources = tuple(index(text) for text in parts.sources)
-        self.run_sources.append(self.sources((sources, chain)))
-        self.run_own.append(self.strings(xml_safe(own)) if used else -1)
 
 
 # --------------------------------------------------------------------------- sections
@@ -490,8 +311,8 @@ def _page_data(source: ReportSource, collector: DiagramCollector,
     several = len({f.root for f in totals.facts}) > 1
     suffixes = len({f.suffix for f in totals.facts})
     tag_index = {label: i for i, label in enumerate(tags)}
-    subjects = _Table()
-    columns = _Table()
+    subjects = ValueTable()
+    columns = ValueTable()
     found = source.objects(lambda i: any(totals.facts[i].counts))
     pending = next(found, None)
     shared_of: dict[int, list[int]] = defaultdict(list)
@@ -809,4 +630,4 @@ def _legends(tags: dict[str | None, _Tag]) -> str:
 
 _RANK = {"error": 3, "warning": 2, "note": 1}
 
-__all__ = ["DiagramCollector", "Drawings", "esc", "render_html", "write_html", "write_html_stream"]
+__all__ = ["esc", "render_html", "write_html", "write_html_stream"]

@@ -87,7 +87,7 @@ def audit(
     spool = RunSpool(root_given)
     drawings = None
     if html_file is not None:
-        from slicetime.interfaces.report_html import DiagramCollector
+        from slicetime.interfaces.report_html_parts import DiagramCollector
 
         drawings = DiagramCollector()
 
@@ -96,7 +96,7 @@ def audit(
     prepare: Callable[[Any], Any] = run_line
     on_run: Callable[[Any], None] = spool.add_line
     if drawings is not None:
-        from slicetime.interfaces.report_html import line_and_parts
+        from slicetime.interfaces.report_html_parts import line_and_parts
 
         collector = drawings
         prepare = line_and_parts
