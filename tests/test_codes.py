@@ -27,7 +27,6 @@ PACKAGE = Path(__file__).resolve().parents[1] / "slicetime"
 ALLOWED_FINDING_CALLS = {
     "slicetime.model": "the type's own helpers (with_severity)",
     "slicetime.codes": "make_finding itself",
-    "slicetime.interfaces.report_stream": "deserialisation of findings already made",
 }
 #: calls whose first argument is a finding code
 CODE_TAKERS = {"make_finding", "ReadError", "run_rule", "dataset_rule", "reader_code",

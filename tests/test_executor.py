@@ -313,7 +313,8 @@ def _many_runs(root: Path, n: int = 150) -> Path:
 def _streamed_json(root: Path, executor: Executor, prepared: bool) -> str:
     import io
 
-    from slicetime.interfaces.report_stream import RunSpool, run_line, write_report
+    from slicetime.interfaces.report_source import RunSpool, run_line
+    from slicetime.interfaces.report_stream import write_report
 
     spool = RunSpool(str(root))
     try:
@@ -408,7 +409,7 @@ def test_the_html_page_from_worker_parts_equals_the_page_from_whole_records(
     # page (data, drawings, counts) must be the one the whole records give
     from slicetime.interfaces.report_html import write_html_stream
     from slicetime.interfaces.report_html_parts import DiagramCollector, line_and_parts
-    from slicetime.interfaces.report_stream import RunSpool
+    from slicetime.interfaces.report_source import RunSpool
 
     root = _many_runs(tmp_path / "ds", n=90)
     pages = []

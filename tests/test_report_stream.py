@@ -101,7 +101,7 @@ def test_a_run_line_is_the_encoded_run_object_byte_for_byte(dataset: Path) -> No
     # the text must still be exactly that of the whole object, the first time and when
     # the value is remembered (milliseconds, no schedule, a hostile name included)
     from slicetime.interfaces.report_json import run_object
-    from slicetime.interfaces.report_stream import encode, run_line
+    from slicetime.interfaces.report_source import encode, run_line
 
     runs = audit_paths([dataset]).runs
     assert any(r.record.schedule is None for r in runs)

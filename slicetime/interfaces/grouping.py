@@ -29,7 +29,7 @@ from typing import TYPE_CHECKING, Any, TypeVar
 from slicetime.words import count
 
 if TYPE_CHECKING:
-    from slicetime.interfaces.report_stream import ReportSource
+    from slicetime.interfaces.report_source import ReportSource
     from slicetime.pipelines.audit import AuditTotals
 
 SEVERITIES = ("error", "warning", "note")
@@ -184,7 +184,7 @@ def group_findings(source: ReportSource) -> Grouping:
 def runs_phrase(group: SharedFinding, grouping: Grouping, totals: AuditTotals) -> str:
     """``all 6 runs of task-chirp_bold`` when the runs are exactly one protocol
     group's, ``all 21 runs`` when they are every run audited, else ``2 runs``."""
-    from slicetime.interfaces.report_stream import group_label
+    from slicetime.interfaces.report_source import group_label
     from slicetime.rules.dataset import protocol_key
 
     n = len(group.runs)

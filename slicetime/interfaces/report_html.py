@@ -55,15 +55,15 @@ from slicetime.interfaces.grouping import (
 )
 from slicetime.interfaces.plots import COLOURS
 from slicetime.interfaces.report_html_parts import OWN_SIDECAR, DiagramCollector, ValueTable
-from slicetime.interfaces.report_stream import (
+from slicetime.interfaces.report_source import (
     MemorySource,
     ReportSource,
     display_path,
     encode,
-    evidence_text,
     group_label,
     report_root,
 )
+from slicetime.interfaces.report_stream import evidence_text
 from slicetime.interfaces.safe_text import xml_safe
 from slicetime.interfaces.screen import repetition_text, strip_path_prefix
 from slicetime.model import Severity

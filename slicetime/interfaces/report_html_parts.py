@@ -12,7 +12,7 @@ from dataclasses import dataclass, field
 from typing import Any
 
 from slicetime.interfaces.plots import DiagramSpec, diagram_spec, render_svg, slices_phrase
-from slicetime.interfaces.report_stream import run_line
+from slicetime.interfaces.report_source import run_line
 from slicetime.interfaces.safe_text import xml_safe
 from slicetime.interfaces.screen import repetition_text
 from slicetime.model import RunRecord

@@ -63,7 +63,7 @@ def run_parts(run: RunResult) -> tuple[dict[str, Any], str | None, dict[str, Any
     """The run object without the values many runs share (``slice_times`` and
     ``scheme``): the keys before ``slice_times``, the ``timing_origin`` between them,
     and the keys after ``scheme``. :func:`run_object` puts them together; the streamed
-    report encodes the shared values once per distinct value (``report_stream.run_line``)."""
+    report encodes the shared values once per distinct value (``report_source.run_line``)."""
     record = run.record
     schedule = record.schedule
     header = record.header
@@ -108,7 +108,8 @@ def audit_object(result: AuditResult, root_given: str) -> dict[str, Any]:
     ``report_root``."""
     import io
 
-    from slicetime.interfaces.report_stream import MemorySource, write_json
+    from slicetime.interfaces.report_source import MemorySource
+    from slicetime.interfaces.report_stream import write_json
 
     buffer = io.StringIO()
     write_json(MemorySource(result, root_given), buffer)

@@ -129,7 +129,8 @@ def junit_xml(result: AuditResult, *, fail_on: str, root_given: str) -> str:
     """
     import io
 
-    from slicetime.interfaces.report_stream import MemorySource, write_junit
+    from slicetime.interfaces.report_source import MemorySource
+    from slicetime.interfaces.report_stream import write_junit
 
     FailOn.parse(fail_on)  # a bad value is refused before anything is written
     buffer = io.StringIO()

@@ -181,7 +181,8 @@ def render_show(run: RunResult, console: Console) -> None:
 def render_audit(result: AuditResult, console: Console, *, show_notes: bool = True,
                  show_all: bool = False) -> None:
     """The text report of a finished audit (see ``report_stream.write_text``)."""
-    from slicetime.interfaces.report_stream import MemorySource, write_text
+    from slicetime.interfaces.report_source import MemorySource
+    from slicetime.interfaces.report_stream import write_text
 
     write_text(MemorySource(result, ""), console.file, show_notes=show_notes, show_all=show_all)
 

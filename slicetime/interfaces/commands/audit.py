@@ -74,7 +74,8 @@ def audit(
 ) -> None:
     """Audit every run under PATHS (dataset roots, subject folders or run files)."""
     from slicetime.interfaces.progress import progress_reporter
-    from slicetime.interfaces.report_stream import RunSpool, run_line, summary_line
+    from slicetime.interfaces.report_source import RunSpool, run_line
+    from slicetime.interfaces.report_stream import summary_line
     from slicetime.pipelines.audit import audit_stream
     from slicetime.pipelines.executor import Interrupted
     from slicetime.readers.dataset import check_writes
