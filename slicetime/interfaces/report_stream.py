@@ -553,7 +553,7 @@ def write_junit(source: ReportSource, out: IO[str], *, fail_on: str) -> None:
             folder = junit.folder_of(path)
             classname = f"{name}/{folder}" if several and name else folder
             junit.add_testcase(holder, classname, path, grouping.own(index, obj["findings"]),
-                            threshold)
+                               threshold)
             _write_element(out, holder[0], ET)
         for group in shared_of[root]:
             holder = ET.Element("x")
@@ -561,13 +561,13 @@ def write_junit(source: ReportSource, out: IO[str], *, fail_on: str) -> None:
             folder = junit.folder_of(file)
             classname = f"{name}/{folder}" if several and name else folder
             junit.add_testcase(holder, classname, f"{file}: {group.finding['code']}",
-                            [group.finding], threshold,
-                            more_out=shared_runs_text(group, grouping, totals))
+                               [group.finding], threshold,
+                               more_out=shared_runs_text(group, grouping, totals))
             _write_element(out, holder[0], ET)
         if with_dataset:
             holder = ET.Element("x")
             junit.add_testcase(holder, ".", junit.DATASET_CASE,
-                            [f.to_json() for f in totals.dataset_findings], threshold)
+                               [f.to_json() for f in totals.dataset_findings], threshold)
             _write_element(out, holder[0], ET)
         out.write("  </testsuite>\n")
     out.write("</testsuites>\n")
