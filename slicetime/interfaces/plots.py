@@ -237,63 +237,86 @@ def render_svg(spec: DiagramSpec, prefix: str) -> tuple[str, tuple[float, float]
 
 
 def _draw_schedule(fig: Any, spec: DiagramSpec) -> None:
-    from matplotlib.lines import Line2D
-    from matplotlib.patches import Patch
+    """The timing diagram: the acquisition window and what lies beyond it, the
+    excitation groups in acquisition order, the slices, the reference time, then the
+    labels and the legend, drawn in this order (the SVG's element order follows it)."""
     from matplotlib.ticker import MaxNLocator
 
     ax = fig.add_axes((0.075, 0.16, 0.625, 0.7))
     times = spec.times
-    n = len(times)
     window = spec.window
     tr = spec.repetition_time
     right = max([t for t in (window, tr) if t is not None] + [max(times), 1e-3])
     left = min(0.0, min(times))
     pad = (right - left) * 0.04
     ax.set_xlim(left - pad, right + pad)
-    ax.set_ylim(-0.8, n - 0.2)
+    ax.set_ylim(-0.8, len(times) - 0.2)
     ax.yaxis.set_major_locator(MaxNLocator(integer=True, nbins=8))
     handles: list[Any] = []
-
     if window is not None:
-        ax.axvspan(0, window, color=COLOURS["window"], zorder=0, lw=0)
-        handles.append(Patch(color=COLOURS["window"], label="acquisition window"))
-        if tr is not None and tr > window + 1e-9:
-            ax.axvspan(
-                window,
-                tr,
+        handles += _draw_window(ax, spec, window, (left - pad, right + pad))
+    handles += _draw_groups(ax, spec)
+    handles += _draw_slices(ax, spec)
+    if spec.reference is not None:
+        handles += _draw_reference(ax, spec, spec.reference)
+    _draw_labels(fig, ax, spec, handles)
+
+
+def _draw_window(ax: Any, spec: DiagramSpec, window: float,
+                 limits: tuple[float, float]) -> list[Any]:
+    """The acquisition window, the delay up to the TR, what lies beyond (shaded when
+    slices are outside it), the window's edge and its name; the legend handles."""
+    from matplotlib.patches import Patch
+
+    tr = spec.repetition_time
+    handles: list[Any] = []
+    ax.axvspan(0, window, color=COLOURS["window"], zorder=0, lw=0)
+    handles.append(Patch(color=COLOURS["window"], label="acquisition window"))
+    if tr is not None and tr > window + 1e-9:
+        ax.axvspan(
+            window,
+            tr,
+            facecolor=COLOURS["delay"],
+            edgecolor=COLOURS["edge"],
+            hatch="//",
+            lw=0,
+            zorder=0,
+        )
+        handles.append(
+            Patch(
                 facecolor=COLOURS["delay"],
                 edgecolor=COLOURS["edge"],
                 hatch="//",
-                lw=0,
-                zorder=0,
+                label="no excitation (DelayTime)",
             )
-            handles.append(
-                Patch(
-                    facecolor=COLOURS["delay"],
-                    edgecolor=COLOURS["edge"],
-                    hatch="//",
-                    label="no excitation (DelayTime)",
-                )
-            )
-        if spec.late or spec.early:
-            ax.axvspan(
-                max(window, tr or window), right + pad, color=COLOURS["beyond"], zorder=0, lw=0
-            )
-            if spec.early:
-                ax.axvspan(left - pad, 0, color=COLOURS["beyond"], zorder=0, lw=0)
-        ax.axvline(window, color=COLOURS["edge"], lw=1.0, zorder=1)
-        ax.annotate(
-            f"{spec.window_name} {secs(window)}",
-            (window, 1.0),
-            xycoords=("data", "axes fraction"),
-            xytext=(0, 3),
-            textcoords="offset points",
-            ha="center",
-            va="bottom",
-            fontsize=8,
-            annotation_clip=False,
         )
+    if spec.late or spec.early:
+        ax.axvspan(max(window, tr or window), limits[1], color=COLOURS["beyond"], zorder=0, lw=0)
+        if spec.early:
+            ax.axvspan(limits[0], 0, color=COLOURS["beyond"], zorder=0, lw=0)
+    ax.axvline(window, color=COLOURS["edge"], lw=1.0, zorder=1)
+    ax.annotate(
+        f"{spec.window_name} {secs(window)}",
+        (window, 1.0),
+        xycoords=("data", "axes fraction"),
+        xytext=(0, 3),
+        textcoords="offset points",
+        ha="center",
+        va="bottom",
+        fontsize=8,
+        annotation_clip=False,
+    )
+    return handles
 
+
+def _draw_groups(ax: Any, spec: DiagramSpec) -> list[Any]:
+    """The acquisition order through the groups, each multiband group as one bar, the
+    uneven gaps; the legend handles."""
+    from matplotlib.lines import Line2D
+    from matplotlib.patches import Patch
+
+    times = spec.times
+    handles: list[Any] = []
     # acquisition order: a faint line through the groups' lowest slices
     order_x = [times[g[0]] for g in spec.groups]
     order_y = [g[0] for g in spec.groups]
@@ -323,7 +346,16 @@ def _draw_schedule(fig: Any, spec: DiagramSpec) -> None:
             ax.axvspan(min(a, b), max(a, b), color=COLOURS["uneven"], alpha=0.35, lw=0, zorder=1)
     if spec.uneven_after:
         handles.append(Patch(color=COLOURS["uneven"], alpha=0.35, label="uneven gap"))
+    return handles
 
+
+def _draw_slices(ax: Any, spec: DiagramSpec) -> list[Any]:
+    """Every slice at its time, those outside the window marked; the legend handles."""
+    from matplotlib.lines import Line2D
+
+    times = spec.times
+    n = len(times)
+    handles: list[Any] = []
     bad = set(spec.late) | set(spec.early)
     good = [i for i in range(n) if i not in bad]
     marker = 5.0 if n <= 40 else 3.5 if n <= 80 else 2.5
@@ -361,34 +393,46 @@ def _draw_schedule(fig: Any, spec: DiagramSpec) -> None:
                 label="outside the window",
             )
         )
+    return handles
 
-    if spec.reference is not None:
-        ax.axvline(spec.reference, color=COLOURS["reference"], lw=1.2, ls=(0, (4, 3)), zorder=6)
-        handles.append(
-            Line2D(
-                [],
-                [],
-                color=COLOURS["reference"],
-                lw=1.2,
-                ls=(0, (4, 3)),
-                label=spec.reference_note,
-            )
-        )
-        ax.annotate(
-            secs(spec.reference),
-            (spec.reference, 1.0),
-            xycoords=("data", "axes fraction"),
-            xytext=(3, -3),
-            textcoords="offset points",
-            ha="left",
-            va="top",
-            fontsize=8,
+
+def _draw_reference(ax: Any, spec: DiagramSpec, reference: float) -> list[Any]:
+    """The reference time the correction aligns to, as a dashed line with its value."""
+    from matplotlib.lines import Line2D
+
+    handles: list[Any] = []
+    ax.axvline(reference, color=COLOURS["reference"], lw=1.2, ls=(0, (4, 3)), zorder=6)
+    handles.append(
+        Line2D(
+            [],
+            [],
             color=COLOURS["reference"],
-            bbox={"boxstyle": "round,pad=0.15", "fc": "white", "ec": "none", "alpha": 0.85},
-            annotation_clip=False,
-            zorder=7,
+            lw=1.2,
+            ls=(0, (4, 3)),
+            label=spec.reference_note,
         )
+    )
+    ax.annotate(
+        secs(reference),
+        (reference, 1.0),
+        xycoords=("data", "axes fraction"),
+        xytext=(3, -3),
+        textcoords="offset points",
+        ha="left",
+        va="top",
+        fontsize=8,
+        color=COLOURS["reference"],
+        bbox={"boxstyle": "round,pad=0.15", "fc": "white", "ec": "none", "alpha": 0.85},
+        annotation_clip=False,
+        zorder=7,
+    )
+    return handles
 
+
+def _draw_labels(fig: Any, ax: Any, spec: DiagramSpec, handles: list[Any]) -> None:
+    """Axis labels, the title, the legend and the notes of what the drawing lacks."""
+    n = len(spec.times)
+    window = spec.window
     ax.set_xlabel("time within the volume (s)")
     ax.set_ylabel(f"slice index, axis {encoding_direction(spec.axis, spec.direction)}")
     # the scheme's label is beside the drawing wherever it is shown (run row, gallery
