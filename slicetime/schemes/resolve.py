@@ -13,9 +13,9 @@ import dataclasses
 import functools
 import itertools
 import math
-from collections.abc import Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
-from typing import Any, TypeGuard, cast
+from typing import Any, NamedTuple, TypeGuard, cast
 
 from slicetime.model import (
     AXES,
@@ -146,6 +146,15 @@ def resolve_timing(
     return _complete(slices, metadata, metadata_sources, header, image_file)
 
 
+class _Volume(NamedTuple):
+    """The volume-level fields of a schedule, in seconds."""
+
+    repetition_time: float | None
+    volume_times: tuple[float, ...] | None
+    acquisition_duration: float | None
+    delay_time: float | None
+
+
 def _resolve_slices(
     metadata: Mapping[str, Any],
     metadata_sources: Mapping[str, str],
@@ -167,8 +176,74 @@ def _resolve_slices(
         return Source("sidecar", key, metadata_sources.get(key))
 
     sources: dict[str, Source] = {}
+    volume = _volume_fields(metadata, header, image_file, sources, sidecar_source)
+    found = _slice_direction(metadata.get("SliceEncodingDirection"), sources, sidecar_source)
+    if isinstance(found, TimingProblem):
+        return _Slices(None, None, (found,))
+    axis, direction = found
 
-    # --- repetition time / volume times -------------------------------------
+    def axis_length(ax: Axis) -> int | None:
+        if header is None:
+            return None
+        index = AXES.index(ax)
+        return header.shape[index] if len(header.shape) > index else 1
+
+    def build(times: Sequence[float], origin: str, ax: Axis, dr: Direction) -> _Slices:
+        schedule = SliceSchedule(
+            times=tuple(times),
+            axis=ax,
+            direction=dr,
+            repetition_time=volume.repetition_time,
+            volume_times=volume.volume_times,
+            acquisition_duration=volume.acquisition_duration,
+            delay_time=volume.delay_time,
+            sources=sources,
+        )
+        return _Slices(schedule, origin, (), axis_length(ax))
+
+    # --- slice times -----------------------------------------------------------
+    if "SliceTiming" in metadata:
+        value = metadata["SliceTiming"]
+        length = axis_length(axis)
+        problems = slice_timing_problems(value, length)
+        if problems:
+            return _Slices(None, None, tuple(problems), length)
+        times = list(map(float, value))
+        if direction == "-":
+            times.reverse()
+        sources["SliceTiming"] = sidecar_source("SliceTiming")
+        return build(times, "sidecar", axis, direction)
+
+    if (
+        header is not None
+        and header.slice_code > 0
+        and header.slice_duration
+        and header.slice_dim is not None
+        and header.slice_dim < min(3, len(header.shape))
+    ):
+        n = header.shape[header.slice_dim]
+        rebuilt = _header_times(header, header.slice_duration, n)
+        if isinstance(rebuilt, TimingProblem):
+            return _Slices(None, None, (rebuilt,), n)
+        sources["SliceTiming"] = Source(
+            "header", "slice_code, slice_duration, dim_info", image_file
+        )
+        sources["SliceEncodingDirection"] = Source("header", "dim_info", image_file)
+        return build(rebuilt, "header", AXES[header.slice_dim], "+")
+
+    return _Slices(None, None, (), axis_length(axis))
+
+
+def _volume_fields(
+    metadata: Mapping[str, Any],
+    header: HeaderInfo | None,
+    image_file: str,
+    sources: dict[str, Source],
+    sidecar_source: Callable[[str], Source],
+) -> _Volume:
+    """The volume-level fields of the schedule, each source recorded in ``sources``:
+    TR from the sidecar, else (without VolumeTiming) the header's pixdim[4]; the
+    acquisition duration is TR - DelayTime, else FrameAcquisitionDuration."""
     tr = positive_number(metadata.get("RepetitionTime"))
     if tr is not None:
         sources["RepetitionTime"] = sidecar_source("RepetitionTime")
@@ -194,126 +269,66 @@ def _resolve_slices(
         if fad is not None:
             acq = fad
             sources["AcquisitionDuration"] = sidecar_source("FrameAcquisitionDuration")
+    return _Volume(tr, volume_times, acq, delay_time)
 
-    # --- axis and direction --------------------------------------------------
-    sed = metadata.get("SliceEncodingDirection")
+
+def _slice_direction(
+    sed: Any, sources: dict[str, Source], sidecar_source: Callable[[str], Source]
+) -> tuple[Axis, Direction] | TimingProblem:
+    """The sidecar's SliceEncodingDirection, else the BIDS default ``k``; the problem
+    ``axis/unknown-direction`` for a value that is none of the six."""
     parsed = parse_direction(sed)
     if sed is not None and parsed is None:
-        return _Slices(
-            None,
-            None,
-            (
-                TimingProblem(
-                    "axis/unknown-direction",
-                    f"SliceEncodingDirection {sed!r} is not one of "
-                    + ", ".join(SLICE_ENCODING_VALUES),
-                    {"value": sed if isinstance(sed, str) else repr(sed)},
-                ),
-            ),
+        return TimingProblem(
+            "axis/unknown-direction",
+            f"SliceEncodingDirection {sed!r} is not one of " + ", ".join(SLICE_ENCODING_VALUES),
+            {"value": sed if isinstance(sed, str) else repr(sed)},
         )
-    axis: Axis
-    direction: Direction
     if parsed is not None:
-        axis, direction = parsed
         sources["SliceEncodingDirection"] = sidecar_source("SliceEncodingDirection")
-    else:
-        axis, direction = "k", "+"
-        sources["SliceEncodingDirection"] = Source(
-            "default", "k (BIDS: SliceTiming runs along k when SliceEncodingDirection is absent)"
+        return parsed
+    sources["SliceEncodingDirection"] = Source(
+        "default", "k (BIDS: SliceTiming runs along k when SliceEncodingDirection is absent)"
+    )
+    return "k", "+"
+
+
+def _header_times(header: HeaderInfo, duration: float, n: int) -> list[float] | TimingProblem:
+    """The times of the ``n`` slices along the header's slice dimension that its
+    slice_code and slice_duration (``duration``) encode, in data-array order; the
+    problem when they cannot be rebuilt (fields that contradict each other, padding
+    slices without a time)."""
+    try:
+        raw = header_slice_times(
+            header.slice_code,
+            header.slice_start,
+            header.slice_end,
+            duration,
+            n,
         )
-
-    def axis_length(ax: Axis) -> int | None:
-        if header is None:
-            return None
-        index = AXES.index(ax)
-        return header.shape[index] if len(header.shape) > index else 1
-
-    def build(times: Sequence[float], origin: str, ax: Axis, dr: Direction) -> _Slices:
-        schedule = SliceSchedule(
-            times=tuple(times),
-            axis=ax,
-            direction=dr,
-            repetition_time=tr,
-            volume_times=volume_times,
-            acquisition_duration=acq,
-            delay_time=delay_time,
-            sources=sources,
+    except ValueError as exc:
+        return TimingProblem(
+            "header/bad-slice-fields",
+            str(exc),
+            {
+                "slice_code": header.slice_code,
+                "slice_start": header.slice_start,
+                "slice_end": header.slice_end,
+                "slice_duration": header.slice_duration,
+            },
         )
-        return _Slices(schedule, origin, (), axis_length(ax))
-
-    # --- slice times -----------------------------------------------------------
-    if "SliceTiming" in metadata:
-        value = metadata["SliceTiming"]
-        length = axis_length(axis)
-        problems = slice_timing_problems(value, length)
-        if problems:
-            return _Slices(None, None, tuple(problems), length)
-        times = list(map(float, value))
-        if direction == "-":
-            times.reverse()
-        sources["SliceTiming"] = sidecar_source("SliceTiming")
-        return build(times, "sidecar", axis, direction)
-
-    if (
-        header is not None
-        and header.slice_code > 0
-        and header.slice_duration
-        and header.slice_dim is not None
-        and header.slice_dim < min(3, len(header.shape))
-    ):
-        header_axis: Axis = AXES[header.slice_dim]
-        n = header.shape[header.slice_dim]
-        try:
-            raw = header_slice_times(
-                header.slice_code,
-                header.slice_start,
-                header.slice_end,
-                header.slice_duration,
-                n,
-            )
-        except ValueError as exc:
-            return _Slices(
-                None,
-                None,
-                (
-                    TimingProblem(
-                        "header/bad-slice-fields",
-                        str(exc),
-                        {
-                            "slice_code": header.slice_code,
-                            "slice_start": header.slice_start,
-                            "slice_end": header.slice_end,
-                            "slice_duration": header.slice_duration,
-                        },
-                    ),
-                ),
-                n,
-            )
-        if any(t is None for t in raw):
-            return _Slices(
-                None,
-                None,
-                (
-                    TimingProblem(
-                        "header/padded-slices",
-                        f"the header times only slices {header.slice_start}..{header.slice_end} "
-                        f"of {n}; padding slices have no acquisition time",
-                        {
-                            "slice_start": header.slice_start,
-                            "slice_end": header.slice_end,
-                            "slices": n,
-                        },
-                    ),
-                ),
-                n,
-            )
-        sources["SliceTiming"] = Source(
-            "header", "slice_code, slice_duration, dim_info", image_file
+    if any(t is None for t in raw):
+        return TimingProblem(
+            "header/padded-slices",
+            f"the header times only slices {header.slice_start}..{header.slice_end} "
+            f"of {n}; padding slices have no acquisition time",
+            {
+                "slice_start": header.slice_start,
+                "slice_end": header.slice_end,
+                "slices": n,
+            },
         )
-        sources["SliceEncodingDirection"] = Source("header", "dim_info", image_file)
-        return build([float(t) for t in raw if t is not None], "header", header_axis, "+")
-
-    return _Slices(None, None, (), axis_length(axis))
+    return [float(t) for t in raw if t is not None]
 
 
 # --------------------------------------------------------------------------- units
