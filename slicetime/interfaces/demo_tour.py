@@ -61,116 +61,151 @@ def command_name() -> str:
     return shown if not shown.startswith("..") else str(here)
 
 
+class _Tour:
+    """The tour's screen: wrapped lines and numbered section rules."""
+
+    def __init__(self) -> None:
+        self.console = make_console()
+        self.width = fit_width(self.console)
+
+    def say(self, text: str, indent: int = 0) -> None:
+        for i, part in enumerate(screen.wrap_words(text, self.width, first=indent,
+                                                   rest=indent + 4)):
+            self.console.print(" " * (indent if i == 0 else indent + 4) + part, markup=False)
+
+    def rule(self, title: str) -> None:
+        self.console.print()  # every section starts after one blank line
+        self.console.print(f"── {title} "
+                           + "─" * max(3, min(self.width or 72, 72) - len(title) - 4))
+
+
 def run_demo(out: Path) -> int:
     """The guided tour; returns 0. Everything is written under ``out``."""
     refused = prepare_output(out)
     if refused is not None:
         raise DemoRefused(refused)
-    console = make_console()
-    width = fit_width(console)
-
-    def say(text: str, indent: int = 0) -> None:
-        for i, part in enumerate(screen.wrap_words(text, width, first=indent,
-                                                   rest=indent + 4)):
-            console.print(" " * (indent if i == 0 else indent + 4) + part, markup=False)
-
-    def rule(title: str) -> None:
-        console.print()  # every section starts after one blank line
-        console.print(f"── {title} " + "─" * max(3, min(width or 72, 72) - len(title) - 4))
-
+    tour = _Tour()
     dataset = out / "quiet-rooms"
     build_demo_dataset(dataset)
-    say(f"slicetime demo: {STUDY}")
-    say(f"dataset written to {dataset}")
-    say(f"open this first when the tour ends: {out / 'audit.html'} (the audit report, "
-        "one page)")
-    console.print()
-    for run in demo_runs():
-        if run.story:
-            say(f"planted: {run.relpath}: {run.story}", 2)
-    say("planted: sub-03 overrides the hum timing for all its sessions", 2)
-    say("planted: task-chirp_bold.json leaves out the multiband factor", 2)
+    _introduce(tour, dataset, out)
 
     example = dataset / "sub-01/ses-1/func/sub-01_ses-1_task-chirp_bold.nii.gz"
-    rule("1. slicetime show (one run)")
-    render_show(audit_one(dataset, example), console)
+    tour.rule("1. slicetime show (one run)")
+    render_show(audit_one(dataset, example), tour.console)
 
-    rule("2. slicetime audit (the whole study)")
+    tour.rule("2. slicetime audit (the whole study)")
     result = audit_paths([dataset])
-    render_audit(result, console)
+    render_audit(result, tour.console)
     report = out / "audit.json"
     report.write_text(dumps(audit_object(result, str(dataset))) + "\n", encoding="utf-8")
     html = _html_report(result, str(dataset), out / "audit.html")
 
-    rule("3. slicetime verify (do the images agree with sub-03's override?)")
-    for session in ("1", "2"):
-        rel = f"sub-03/ses-{session}/func/sub-03_ses-{session}_task-hum_bold.nii.gz"
-        _, verdict = verify_run(dataset, dataset / rel)
-        console.print(rel, style="bold", markup=False)
-        emit(console, finding_lines([verdict.finding], width=width, run_path=rel))
-    say("the sidecar override says 'descending'; the slices' own time courses say "
-        "otherwise: fix cannot settle which is true, a person must")
-
-    rule("4. slicetime fix (the plan, on a copy of the study)")
-    fixed = out / "quiet-rooms-fixed"
-    if fixed.exists():
-        shutil.rmtree(fixed)
-    shutil.copytree(dataset, fixed)
-    plan = plan_fix([fixed])
-    render_fix_plan(plan, console)
-    applied = apply_plan(plan, backup_dir=out / "fix-backups")
-    left = reaudit(plan)
-    say(f"applied to {count(len(applied.written), 'file')} of the copy; re-audit: "
-        + ("clean for the repaired codes" if not left else
-           f"{count(len(left), 'finding')} left"))
+    _verify_step(tour, dataset)
+    fixed, journal = _fix_step(tour, dataset, out)
     after = audit_paths([fixed])
+    aligned = _correct_step(tour, fixed)
 
-    rule("5. slicetime correct (runs with trustworthy timing)")
-    aligned = fixed / "derivatives" / "slicetime"
-    if aligned.exists():
-        shutil.rmtree(aligned)
-    corrected = correct_paths([fixed], CorrectOptions(out=aligned, threads=0))
-    render_correct(corrected, console)
-    doubted = [r for r in corrected.runs
-               if any(f.code == DOUBT_CODE for f in r.blocking)]
-    if doubted:
-        codes = sorted({f.code for r in doubted for f in r.blocking if doubts_timing(f.code)})
-        console.print()
-        say(f"refused for doubt: {count(len(doubted), 'run')} whose slice times another "
-            f"source contradicts ({', '.join(codes)}). Only someone who knows the "
-            "acquisition may accept such a doubt, by code and by run, and it is then "
-            "recorded in every output it lets through:")
-        # a command to paste: whole, on its own line, even wider than the screen
-        console.print(f"    slicetime correct {fixed} --out {aligned} "
-                      + " ".join(f"--accept '{c}:sub-03/**'" for c in codes),
-                      markup=False, soft_wrap=True)
-        say("or the same in the lab policy: [[accept]] findings = [...], runs = [...], "
-            "reason = \"...\". Here the images contradict sub-03's override (step 3), so "
-            "the honest move is to repair the override, not to accept it.")
-
-    rule("where everything is")
+    tour.rule("where everything is")
     before_counts, after_counts = result.counts(), after.counts()
-    places = [
+    _where(tour, [
         ("the study, as planted", str(dataset)),
         ("audit report (JSON)", str(report)),
         *([("audit report (HTML)", f"{html}   (open this first)")] if html else []),
         ("the repaired copy", f"{fixed}  (errors {before_counts['error']} → "
          f"{after_counts['error']}, warnings {before_counts['warning']} → "
          f"{after_counts['warning']})"),
-        ("backups and undo journal", str(applied.journal)),
+        ("backups and undo journal", str(journal)),
         ("corrected runs", str(aligned)),
-    ]
-    for name, where in places:
-        say(f"{name}:".ljust(27) + where if width is None or 27 + len(where) <= width
-            else f"{name}:")
-        if width is not None and 27 + len(where) > width:
-            say(where, 4)
-    command = command_name()
-    say(f"next: {command} explain timing/units-ms, or {command} show on any run")
-    if command != "slicetime":
-        say(f"(slicetime is not on PATH: call {command}, or first activate the environment: "
-            f"source {Path(command).parent.parent}/bin/activate)")
+    ])
     return 0
+
+
+def _introduce(tour: _Tour, dataset: Path, out: Path) -> None:
+    """Where the study is, and what was planted in it."""
+    tour.say(f"slicetime demo: {STUDY}")
+    tour.say(f"dataset written to {dataset}")
+    tour.say(f"open this first when the tour ends: {out / 'audit.html'} (the audit report, "
+             "one page)")
+    tour.console.print()
+    for run in demo_runs():
+        if run.story:
+            tour.say(f"planted: {run.relpath}: {run.story}", 2)
+    tour.say("planted: sub-03 overrides the hum timing for all its sessions", 2)
+    tour.say("planted: task-chirp_bold.json leaves out the multiband factor", 2)
+
+
+def _verify_step(tour: _Tour, dataset: Path) -> None:
+    """Step 3: the images asked whether sub-03's claimed order is true."""
+    tour.rule("3. slicetime verify (do the images agree with sub-03's override?)")
+    for session in ("1", "2"):
+        rel = f"sub-03/ses-{session}/func/sub-03_ses-{session}_task-hum_bold.nii.gz"
+        _, verdict = verify_run(dataset, dataset / rel)
+        tour.console.print(rel, style="bold", markup=False)
+        emit(tour.console, finding_lines([verdict.finding], width=tour.width, run_path=rel))
+    tour.say("the sidecar override says 'descending'; the slices' own time courses say "
+             "otherwise: fix cannot settle which is true, a person must")
+
+
+def _fix_step(tour: _Tour, dataset: Path, out: Path) -> tuple[Path, Path | None]:
+    """Step 4: the repairs planned and applied to a copy; the copy and the journal."""
+    tour.rule("4. slicetime fix (the plan, on a copy of the study)")
+    fixed = out / "quiet-rooms-fixed"
+    if fixed.exists():
+        shutil.rmtree(fixed)
+    shutil.copytree(dataset, fixed)
+    plan = plan_fix([fixed])
+    render_fix_plan(plan, tour.console)
+    applied = apply_plan(plan, backup_dir=out / "fix-backups")
+    left = reaudit(plan)
+    tour.say(f"applied to {count(len(applied.written), 'file')} of the copy; re-audit: "
+             + ("clean for the repaired codes" if not left else
+                f"{count(len(left), 'finding')} left"))
+    return fixed, applied.journal
+
+
+def _correct_step(tour: _Tour, fixed: Path) -> Path:
+    """Step 5: the copy corrected; the runs refused for doubt, and how a doubt is
+    accepted. Returns where the corrected runs are."""
+    tour.rule("5. slicetime correct (runs with trustworthy timing)")
+    aligned = fixed / "derivatives" / "slicetime"
+    if aligned.exists():
+        shutil.rmtree(aligned)
+    corrected = correct_paths([fixed], CorrectOptions(out=aligned, threads=0))
+    render_correct(corrected, tour.console)
+    doubted = [r for r in corrected.runs
+               if any(f.code == DOUBT_CODE for f in r.blocking)]
+    if not doubted:
+        return aligned
+    codes = sorted({f.code for r in doubted for f in r.blocking if doubts_timing(f.code)})
+    tour.console.print()
+    tour.say(f"refused for doubt: {count(len(doubted), 'run')} whose slice times another "
+             f"source contradicts ({', '.join(codes)}). Only someone who knows the "
+             "acquisition may accept such a doubt, by code and by run, and it is then "
+             "recorded in every output it lets through:")
+    # a command to paste: whole, on its own line, even wider than the screen
+    tour.console.print(f"    slicetime correct {fixed} --out {aligned} "
+                       + " ".join(f"--accept '{c}:sub-03/**'" for c in codes),
+                       markup=False, soft_wrap=True)
+    tour.say("or the same in the lab policy: [[accept]] findings = [...], runs = [...], "
+             "reason = \"...\". Here the images contradict sub-03's override (step 3), so "
+             "the honest move is to repair the override, not to accept it.")
+    return aligned
+
+
+def _where(tour: _Tour, places: list[tuple[str, str]]) -> None:
+    """Where everything is, one line a place (the place under its name when too long),
+    and what to try next."""
+    width = tour.width
+    for name, where in places:
+        tour.say(f"{name}:".ljust(27) + where if width is None or 27 + len(where) <= width
+                 else f"{name}:")
+        if width is not None and 27 + len(where) > width:
+            tour.say(where, 4)
+    command = command_name()
+    tour.say(f"next: {command} explain timing/units-ms, or {command} show on any run")
+    if command != "slicetime":
+        tour.say(f"(slicetime is not on PATH: call {command}, or first activate the "
+                 f"environment: source {Path(command).parent.parent}/bin/activate)")
 
 
 def _html_report(result: Any, root_given: str, path: Path) -> Path | None:
