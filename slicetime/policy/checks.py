@@ -57,12 +57,12 @@ before severity overrides; an ignored finding keeps its original severity.
 
 from __future__ import annotations
 
-from collections.abc import Iterable
+from collections.abc import Callable, Iterable, Iterator
 from dataclasses import dataclass
 from typing import Any, cast
 
 from slicetime.codes import RULES, Hit, to_finding
-from slicetime.model import AXES, Axis, Finding, RunRecord, RunView, Source
+from slicetime.model import AXES, Axis, Finding, RunRecord, RunView, Scheme, Source
 from slicetime.numbers import as_written, secs
 from slicetime.policy.model import ExpectedProtocol, IgnoreEntry, Policy
 from slicetime.schemes.labels import SchemeFamily, scheme_family
@@ -183,12 +183,8 @@ def check_protocol(policy: Policy, record: RunRecord) -> list[Finding]:
     protocol = choice.protocol
     if protocol is None:
         return []
-    findings: list[Finding] = []
-    for code, check in _CHECKS:
-        hit = check(policy, protocol, record)
-        if hit is not None:
-            findings.append(to_finding(RULES[code], record, hit))
-    return findings
+    return [to_finding(RULES[code], record, hit)
+            for code, hit in _protocol_hits(policy, protocol, record)]
 
 
 def apply_overrides_and_ignores(
@@ -246,6 +242,32 @@ def _evidence(
     return evidence
 
 
+def _differs(
+    policy: Policy,
+    protocol: ExpectedProtocol,
+    record: RunRecord,
+    expected: Any,
+    found: Any,
+    said: str,
+    wanted: str,
+    field: str,
+    *,
+    hint: str | None = None,
+    file: str | None = None,
+    **extra: Any,
+) -> Hit:
+    """The hit of a run whose value differs from its protocol's: ``said`` (what the
+    run has) "but" the protocol "expects" ``wanted`` (``expected`` as people read it),
+    with the comparison's evidence (:func:`_evidence`, ``extra`` last)."""
+    return Hit(
+        f"{said} but {protocol.describe()} expects {wanted}",
+        field,
+        _evidence(policy, protocol, record, expected, found, **extra),
+        hint=hint,
+        file=file,
+    )
+
+
 def _source_file(source: Source | None, record: RunRecord) -> str:
     if source is not None and source.file:
         return source.file
@@ -261,11 +283,8 @@ def _found_tr(record: RunRecord) -> tuple[float, Source] | None:
                                                                        "RepetitionTime")
 
 
-def _check_tr(policy: Policy, protocol: ExpectedProtocol, record: RunRecord) -> Hit | None:
-    expected = protocol.repetition_time
-    found = _found_tr(record)
-    if expected is None or found is None:
-        return None
+def _check_tr(policy: Policy, protocol: ExpectedProtocol, record: RunRecord, expected: float,
+              found: tuple[float, Source]) -> Hit | None:
     tr, source = found
     if abs(tr - expected) <= protocol.tolerance + _SLACK:
         return None
@@ -280,21 +299,10 @@ def _check_tr(policy: Policy, protocol: ExpectedProtocol, record: RunRecord) -> 
         hint = (f"{as_written(tr)} looks like milliseconds: {secs(tr / 1000)} is the "
                 "protocol's value.")
         stated = f"{as_written(tr)} (milliseconds?)"
-    return Hit(
-        f"{what} {stated} but {protocol.describe()} expects {secs(expected)}",
-        "pixdim[4]" if from_header else "RepetitionTime",
-        _evidence(
-            policy,
-            protocol,
-            record,
-            expected,
-            tr,
-            source=source.describe(),
-            tolerance=protocol.tolerance,
-        ),
-        hint=hint,
-        file=_source_file(source, record),
-    )
+    return _differs(policy, protocol, record, expected, tr, f"{what} {stated}", secs(expected),
+                    "pixdim[4]" if from_header else "RepetitionTime", hint=hint,
+                    file=_source_file(source, record), source=source.describe(),
+                    tolerance=protocol.tolerance)
 
 
 def _found_slices(record: RunRecord, fallback: str | None = None) -> tuple[int, Axis] | None:
@@ -317,22 +325,15 @@ def _found_slices(record: RunRecord, fallback: str | None = None) -> tuple[int, 
     return (header.shape[index] if len(header.shape) > index else 1), axis
 
 
-def _check_slices(policy: Policy, protocol: ExpectedProtocol, record: RunRecord) -> Hit | None:
-    expected = protocol.slices
-    seen = _found_slices(record, protocol.slice_encoding_direction)
-    if expected is None or seen is None or record.header is None:
-        return None
+def _check_slices(policy: Policy, protocol: ExpectedProtocol, record: RunRecord, expected: int,
+                  seen: tuple[int, Axis]) -> Hit | None:
     found, axis = seen
-    if found == expected:
+    if found == expected or record.header is None:
         return None
-    index = AXES.index(axis)
-    return Hit(
-        f"the image has {found} slices along {axis} but {protocol.describe()} expects {expected}",
-        f"dim[{index + 1}]",
-        _evidence(policy, protocol, record, expected, found, axis=axis,
-                  shape=list(record.header.shape)),
-        file=record.path,
-    )
+    return _differs(policy, protocol, record, expected, found,
+                    f"the image has {found} slices along {axis}", str(expected),
+                    f"dim[{AXES.index(axis) + 1}]", file=record.path, axis=axis,
+                    shape=list(record.header.shape))
 
 
 def _found_multiband(record: RunRecord) -> tuple[int, bool] | None:
@@ -350,41 +351,26 @@ def _found_multiband(record: RunRecord) -> tuple[int, bool] | None:
     return None
 
 
-def _check_multiband(policy: Policy, protocol: ExpectedProtocol, record: RunRecord) -> Hit | None:
-    expected = protocol.multiband_factor
-    if expected is None:
-        return None
+def _check_multiband(policy: Policy, protocol: ExpectedProtocol, record: RunRecord,
+                     expected: int, seen: tuple[int, bool]) -> Hit | None:
     declared = record.metadata.get("MultibandAccelerationFactor")
-    seen = _found_multiband(record)
-    if seen is not None and seen[1]:
+    if seen[1]:
         found = seen[0]
         if found == expected:
             return None
         field = "SliceTiming" if record.timing_origin == "sidecar" else "slice_code"
         source = record.schedule.sources.get("SliceTiming") if record.schedule else None
-        return Hit(
-            f"the slice times form excitation groups of {found} (multiband factor {found}) "
-            f"but {protocol.describe()} expects {expected}",
-            field,
-            _evidence(
-                policy, protocol, record, expected, found,
-                declared=declared,
-                **{"from": "slice times"},
-            ),
-            file=_source_file(source, record),
-        )
-    if seen is not None:
-        found = seen[0]
-        if found == expected:
-            return None
-        return Hit(
-            f"MultibandAccelerationFactor is {found} but {protocol.describe()} expects {expected}",
-            "MultibandAccelerationFactor",
-            _evidence(
-                policy, protocol, record, expected, found, **{"from": "MultibandAccelerationFactor"}
-            ),
-        )
-    return None
+        return _differs(policy, protocol, record, expected, found,
+                        f"the slice times form excitation groups of {found} (multiband "
+                        f"factor {found})", str(expected), field,
+                        file=_source_file(source, record), declared=declared,
+                        **{"from": "slice times"})
+    found = seen[0]
+    if found == expected:
+        return None
+    return _differs(policy, protocol, record, expected, found,
+                    f"MultibandAccelerationFactor is {found}", str(expected),
+                    "MultibandAccelerationFactor", **{"from": "MultibandAccelerationFactor"})
 
 
 def _family_matches(family: SchemeFamily, record: RunRecord) -> bool:
@@ -396,11 +382,8 @@ def _family_matches(family: SchemeFamily, record: RunRecord) -> bool:
     return family.ascending is None or family.ascending == scheme.ascending
 
 
-def _check_scheme(policy: Policy, protocol: ExpectedProtocol, record: RunRecord) -> Hit | None:
-    expected = protocol.scheme
-    scheme = record.scheme
-    if expected is None or scheme is None:
-        return None
+def _check_scheme(policy: Policy, protocol: ExpectedProtocol, record: RunRecord, expected: str,
+                  scheme: Scheme) -> Hit | None:
     family = scheme_family(expected)
     if family is not None:
         if _family_matches(family, record):
@@ -417,14 +400,11 @@ def _check_scheme(policy: Policy, protocol: ExpectedProtocol, record: RunRecord)
         extra["irregular"] = scheme.evidence["reason"]
     field = "SliceTiming" if record.timing_origin == "sidecar" else "slice_code"
     source = record.schedule.sources.get("SliceTiming") if record.schedule else None
-    return Hit(
-        f"the slice times describe {scheme.label!r} but {protocol.describe()} expects {wanted}",
-        field,
-        _evidence(policy, protocol, record, expected, scheme.label, **extra),
-        hint="Scheme labels describe the order of data-array indices (after "
-        "SliceEncodingDirection); `slicetime show` prints this run's scheme. " + _OWN_ENTRY,
-        file=_source_file(source, record),
-    )
+    return _differs(policy, protocol, record, expected, scheme.label,
+                    f"the slice times describe {scheme.label!r}", wanted, field,
+                    hint="Scheme labels describe the order of data-array indices (after "
+                    "SliceEncodingDirection); `slicetime show` prints this run's scheme. "
+                    + _OWN_ENTRY, file=_source_file(source, record), **extra)
 
 
 def _found_direction(record: RunRecord) -> tuple[str, Source | None] | None:
@@ -450,11 +430,8 @@ def _found_direction(record: RunRecord) -> tuple[str, Source | None] | None:
     return found, source
 
 
-def _check_direction(policy: Policy, protocol: ExpectedProtocol, record: RunRecord) -> Hit | None:
-    expected = protocol.slice_encoding_direction
-    seen = _found_direction(record)
-    if expected is None or seen is None:
-        return None
+def _check_direction(policy: Policy, protocol: ExpectedProtocol, record: RunRecord,
+                     expected: str, seen: tuple[str, Source | None]) -> Hit | None:
     found, source = seen
     if found == expected:
         return None
@@ -468,17 +445,11 @@ def _check_direction(policy: Policy, protocol: ExpectedProtocol, record: RunReco
     else:
         text = f"SliceEncodingDirection is {found}"
         file = _source_file(source, record)
-    return Hit(
-        f"{text} but {protocol.describe()} expects {expected}",
-        "SliceEncodingDirection",
-        _evidence(
-            policy, protocol, record, expected, found,
-            source=source.describe() if source is not None else None,
-        ),
-        hint=f'Set "SliceEncodingDirection": "{expected}" in the sidecar if the protocol is '
-        "right for this run. " + _OWN_ENTRY,
-        file=file,
-    )
+    return _differs(policy, protocol, record, expected, found, text, expected,
+                    "SliceEncodingDirection",
+                    hint=f'Set "SliceEncodingDirection": "{expected}" in the sidecar if the '
+                    "protocol is right for this run. " + _OWN_ENTRY, file=file,
+                    source=source.describe() if source is not None else None)
 
 
 def _ambiguous(policy: Policy, record: RunRecord, tied: tuple[ExpectedProtocol, ...]) -> Hit:
@@ -515,18 +486,44 @@ def observed(record: RunRecord) -> dict[str, Any]:
 
 def judge(protocol: ExpectedProtocol, record: RunRecord) -> list[tuple[str, Hit]]:
     """The ``policy/*`` hits of one run against one protocol (no selection)."""
-    out = []
-    for code, check in _CHECKS:
-        hit = check(Policy(), protocol, record)
-        if hit is not None:
-            out.append((code, hit))
-    return out
+    return list(_protocol_hits(Policy(), protocol, record))
+
+
+@dataclass(frozen=True)
+class _Check:
+    """One expectation of a protocol: its code, the protocol's key, what of the run it
+    is compared with (None: not checked, see the module docstring) and the comparison
+    (a hit when they differ)."""
+
+    code: str
+    key: str
+    found: Callable[[RunRecord, ExpectedProtocol], Any]
+    compare: Callable[[Policy, ExpectedProtocol, RunRecord, Any, Any], Hit | None]
 
 
 _CHECKS = (
-    ("policy/tr-mismatch", _check_tr),
-    ("policy/slice-count", _check_slices),
-    ("policy/multiband-mismatch", _check_multiband),
-    ("policy/scheme-mismatch", _check_scheme),
-    ("policy/direction-mismatch", _check_direction),
+    _Check("policy/tr-mismatch", "repetition_time", lambda r, p: _found_tr(r), _check_tr),
+    _Check("policy/slice-count", "slices",
+           lambda r, p: _found_slices(r, p.slice_encoding_direction), _check_slices),
+    _Check("policy/multiband-mismatch", "multiband_factor",
+           lambda r, p: _found_multiband(r), _check_multiband),
+    _Check("policy/scheme-mismatch", "scheme", lambda r, p: r.scheme, _check_scheme),
+    _Check("policy/direction-mismatch", "slice_encoding_direction",
+           lambda r, p: _found_direction(r), _check_direction),
 )
+
+
+def _protocol_hits(policy: Policy, protocol: ExpectedProtocol,
+                   record: RunRecord) -> Iterator[tuple[str, Hit]]:
+    """(code, hit) of every expectation the protocol states, the run has a value for,
+    and the value differs from, in the order of :data:`_CHECKS`."""
+    for check in _CHECKS:
+        expected = getattr(protocol, check.key)
+        if expected is None:
+            continue
+        found = check.found(record, protocol)
+        if found is None:
+            continue
+        hit = check.compare(policy, protocol, record, expected, found)
+        if hit is not None:
+            yield check.code, hit
