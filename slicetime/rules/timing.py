@@ -76,30 +76,29 @@ def corrected_still_timed(record: RunRecord) -> Iterator[Hit]:
             "SliceTiming",
             {"SliceTimingCorrected_from": record.metadata_sources.get("SliceTimingCorrected")},
         )
-    elif record.timing_origin == "header" and record.header is not None:
-        yield Hit(
-            "SliceTimingCorrected is true but the header still encodes slice timing "
-            f"(slice_code {record.header.slice_code}, slice_duration "
-            f"{secs(record.header.slice_duration)}): a later step would correct this run twice",
-            "slice_code", _header_timing(record), file=record.path,
-        )
+    else:
+        yield from _header_timing_hit(
+            record, "slice_code", "SliceTimingCorrected is true but the header still encodes "
+            "slice timing (slice_code {code}, slice_duration {duration}): a later step would "
+            "correct this run twice")
 
 
-def _header_timing(record: RunRecord) -> dict[str, Any]:
-    """The header fields that encode the slice timing, as a finding's evidence."""
-    assert record.header is not None
-    return {"slice_code": record.header.slice_code,
-            "slice_duration": record.header.slice_duration}
+def _header_timing_hit(record: RunRecord, field: str, message: str) -> Iterator[Hit]:
+    """A hit about the slice timing the image header encodes, when the run's timing
+    was rebuilt from it: ``message`` with the header's ``{code}`` and ``{duration}``,
+    those fields as its evidence, the image as its file."""
+    header = record.header
+    if record.timing_origin != "header" or header is None:
+        return
+    yield Hit(message.format(code=header.slice_code, duration=secs(header.slice_duration)),
+              field, {"slice_code": header.slice_code, "slice_duration": header.slice_duration},
+              file=record.path)
 
 
 def from_header(record: RunRecord) -> Iterator[Hit]:
-    if record.timing_origin == "header" and record.header is not None:
-        yield Hit(
-            "SliceTiming rebuilt from header slice_code "
-            f"{record.header.slice_code} and slice_duration "
-            f"{secs(record.header.slice_duration)}",
-            "SliceTiming", _header_timing(record), file=record.path,
-        )
+    yield from _header_timing_hit(
+        record, "SliceTiming",
+        "SliceTiming rebuilt from header slice_code {code} and slice_duration {duration}")
 
 
 def negative(record: RunRecord) -> Iterator[Hit]:
