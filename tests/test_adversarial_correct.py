@@ -24,12 +24,12 @@ import numpy as np
 import pytest
 from click.testing import CliRunner
 
+from slicetime.escapes import json_safe
 from slicetime.interfaces.cli import cli
 from slicetime.pipelines import correct as correct_module
 from slicetime.pipelines.correct import CorrectOptions
 from slicetime.pipelines.correct_batch import CorrectInterrupted, correct_paths
 from slicetime.pipelines.executor import ProcessExecutor
-from slicetime.pipelines.provenance import json_safe
 from slicetime.readers.atomic import TEMP_PREFIX
 from slicetime.readers.entities import sidecar_name
 from tests.helpers_bids import patch_header, tree_hashes, write_description

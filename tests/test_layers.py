@@ -4,7 +4,8 @@ own layer or the layers below it.
 Layers, bottom up (DEVELOPERS.md, Architecture map):
 
 1. model: ``slicetime.model``, ``slicetime.model_source``, ``slicetime.codes`` (the
-   catalogue of finding codes, whole on import), ``slicetime.numbers``, ``slicetime.words``;
+   catalogue of finding codes, whole on import), ``slicetime.numbers``, ``slicetime.words``,
+   ``slicetime.escapes``;
 2. schemes: ``slicetime.schemes``;
 3. readers: ``slicetime.readers``, and the lab policy, the whole package
    ``slicetime.policy`` (reading it, its value types and its checks);
@@ -36,6 +37,7 @@ LAYERS: list[tuple[str, int]] = [
     ("slicetime.model", 1),
     ("slicetime.numbers", 1),  # how numbers are rounded and written: pure
     ("slicetime.words", 1),  # plurals and agreement: pure
+    ("slicetime.escapes", 1),  # how a file name's non-UTF-8 bytes are written: pure
     ("slicetime.schemes", 2),
     ("slicetime.readers", 3),
     ("slicetime.rules", 4),

@@ -9,7 +9,7 @@ from importlib import resources
 from typing import TYPE_CHECKING, Any
 
 from slicetime import __version__
-from slicetime.interfaces.safe_text import sanitise
+from slicetime.escapes import json_safe
 from slicetime.numbers import json_time, json_times, tidy_json
 from slicetime.pipelines.audit import AuditResult, RunResult
 from slicetime.words import encoding_direction
@@ -170,4 +170,4 @@ def verify_object(outcomes: Sequence[VerifyOutcome],
 
 
 def dumps(obj: Any) -> str:
-    return json.dumps(sanitise(obj), indent=2, ensure_ascii=False, allow_nan=False)
+    return json.dumps(json_safe(obj), indent=2, ensure_ascii=False, allow_nan=False)

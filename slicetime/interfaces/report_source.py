@@ -13,7 +13,7 @@ runs, roots and run groups are here too.
 Escaping: JSON escapes control characters itself; the only strings it cannot
 encode as UTF-8 are lone surrogates (file-name bytes that are not UTF-8).
 They are replaced in the encoded line, once, by the visible escape that
-``safe_text.sanitise`` gives (``\\xff``), so no value is walked.
+``escapes.json_safe`` gives (``\\xff``), so no value is walked.
 """
 
 from __future__ import annotations
@@ -25,24 +25,23 @@ import tempfile
 from collections.abc import Callable, Iterator, Sequence
 from typing import IO, Any
 
-from slicetime.interfaces.safe_text import escape_char
+from slicetime.escapes import SURROGATE, escape_surrogate
 from slicetime.model import Counts, Finding, Scheme
 from slicetime.numbers import json_times
 from slicetime.pipelines.audit import AuditResult, AuditTotals, RunFacts, RunResult, dataset_names
 
 _ENCODER = json.JSONEncoder(ensure_ascii=False, allow_nan=False, separators=(",", ":"))
-_SURROGATE = re.compile("[\ud800-\udfff]")
 
 
 def _visible(match: re.Match[str]) -> str:
     # inside an encoded JSON string: a backslash (escaped) and the visible escape
-    return "\\" + escape_char(match)
+    return "\\" + escape_surrogate(match)
 
 
 def encode(value: Any) -> str:
     """Compact JSON, one line, encodable as UTF-8 (see the module docstring)."""
     text = _ENCODER.encode(value)
-    return _SURROGATE.sub(_visible, text) if _SURROGATE.search(text) else text
+    return SURROGATE.sub(_visible, text) if SURROGATE.search(text) else text
 
 
 def run_line(run: RunResult) -> str:
@@ -58,7 +57,7 @@ def run_line(run: RunResult) -> str:
     text = (f'{_ENCODER.encode(head)[:-1]},"slice_times":{times},'
             f'"timing_origin":{_ENCODER.encode(origin)},"scheme":{scheme},'
             f'{_ENCODER.encode(tail)[1:]}')
-    return _SURROGATE.sub(_visible, text) if _SURROGATE.search(text) else text
+    return SURROGATE.sub(_visible, text) if SURROGATE.search(text) else text
 
 
 #: encodings of shared values; emptied when full, so memory stays bounded

@@ -3,14 +3,15 @@
 File names may hold control characters (which can retitle or clear a
 terminal) and bytes that are not UTF-8 (which Python carries as lone
 surrogates, unencodable on output). Reports pass every such string through
-:func:`xml_safe` (one line, XML 1.0 and terminal safe) or :func:`sanitise` (JSON values,
-recursively).
+:func:`xml_safe` (one line, XML 1.0 and terminal safe) or ``escapes.json_safe`` (JSON
+values, recursively: only the lone surrogates need escaping there).
 """
 
 from __future__ import annotations
 
 import re
-from typing import Any
+
+from slicetime.escapes import escape_surrogate
 
 # Characters XML 1.0 cannot hold (outside Char), plus DEL and C1 controls, which
 # it allows but which are invisible and unsafe on terminals that display reports.
@@ -31,8 +32,8 @@ def escape_char(match: re.Match[str]) -> str:
     if char in _NAMED:
         return _NAMED[char]
     code = ord(char)
-    if 0xDC80 <= code <= 0xDCFF:  # a file-name byte that is not UTF-8 (surrogateescape)
-        return f"\\x{code - 0xDC00:02x}"
+    if 0xD800 <= code <= 0xDFFF:  # a lone surrogate: a file-name byte that is not UTF-8
+        return escape_surrogate(match)
     if code <= 0xFF:
         return f"\\x{code:02x}"
     return f"\\u{code:04x}"
@@ -46,21 +47,3 @@ def xml_safe(text: object, *, one_line: bool = True) -> str:
     """
     value = text if isinstance(text, str) else str(text)
     return (_UNSAFE_LINE if one_line else _UNSAFE_TEXT).sub(escape_char, value)
-
-
-_SURROGATE = re.compile("[\ud800-\udfff]")
-
-
-def sanitise(value: Any) -> Any:
-    """Make every string in a JSON-like value encodable as UTF-8.
-
-    JSON escapes control characters itself, so only lone surrogates (bytes of
-    file names that are not UTF-8) are replaced, by visible ``\\xNN`` escapes.
-    """
-    if isinstance(value, str):
-        return _SURROGATE.sub(escape_char, value) if _SURROGATE.search(value) else value
-    if isinstance(value, dict):
-        return {sanitise(k): sanitise(v) for k, v in value.items()}
-    if isinstance(value, list | tuple):
-        return [sanitise(v) for v in value]
-    return value

@@ -11,7 +11,6 @@ from __future__ import annotations
 
 import json
 import os
-import re
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
@@ -20,6 +19,7 @@ from typing import Any, Protocol
 from slicetime import __version__
 from slicetime.engines.interpolate import Engine, ResampleStats
 from slicetime.engines.plan import ResamplingPlan, slice_time_ref, window_fields
+from slicetime.escapes import json_safe, unescaped
 from slicetime.model import RunRecord
 from slicetime.pipelines.outputs import output_files
 from slicetime.readers.atomic import write_atomic
@@ -43,37 +43,6 @@ class Outcome(Protocol):
     removed: str | None
     reason: str | None
     provenance: dict[str, Any] | None
-
-
-_SURROGATE = re.compile("[\ud800-\udfff]")
-
-
-def _escape_surrogate(match: re.Match[str]) -> str:
-    code = ord(match.group(0))
-    if 0xDC80 <= code <= 0xDCFF:  # a file-name byte that is not UTF-8 (surrogateescape)
-        return f"\\x{code - 0xDC00:02x}"
-    return f"\\u{code:04x}"
-
-
-def json_safe(value: Any) -> Any:
-    """Every string of a JSON-like value encodable as UTF-8: a file-name byte that is
-    not UTF-8 (a lone surrogate in Python) becomes a visible ``\\xNN``, as the
-    reports write it (interfaces/safe_text.py; this layer cannot import it)."""
-    if isinstance(value, str):
-        return _SURROGATE.sub(_escape_surrogate, value) if _SURROGATE.search(value) else value
-    if isinstance(value, dict):
-        return {json_safe(k): json_safe(v) for k, v in value.items()}
-    if isinstance(value, list | tuple):
-        return [json_safe(v) for v in value]
-    return value
-
-
-_ESCAPED_BYTE = re.compile(r"\\x([89a-f][0-9a-f])")
-
-
-def unescaped(text: str) -> str:
-    """The file name behind a :func:`json_safe` text (``\\xNN`` back to its byte)."""
-    return _ESCAPED_BYTE.sub(lambda m: chr(0xDC00 + int(m.group(1), 16)), text)
 
 
 def write_json_atomic(path: Path, content: Any) -> None:
