@@ -249,10 +249,10 @@ def _irregular(
     group_times: tuple[float, ...],
     multiband: int,
     spacing: float | None,
-    kind: str,
-    reason: str,
-    **details: Any,
+    why: dict[str, Any],
 ) -> Scheme:
+    """The irregular scheme of these groups; ``why`` is its evidence (``kind``,
+    ``reason`` and the details)."""
     return Scheme(
         groups=groups,
         group_times=group_times,
@@ -260,7 +260,7 @@ def _irregular(
         label=IRREGULAR,
         regular=False,
         spacing=spacing,
-        evidence={"kind": kind, "reason": reason, **details},
+        evidence=why,
     )
 
 
@@ -312,23 +312,10 @@ def _infer_scheme(times: Sequence[float], *, tolerance: float = DEFAULT_TOLERANC
     spacing = _median(gaps) if gaps else None
 
     # 2. multiband factor: the common group size
-    sizes = [len(g) for g in groups]
-    if len(set(sizes)) > 1:
-        counts: dict[str, int] = {}
-        for size in sorted(set(sizes)):
-            counts[str(size)] = sizes.count(size)
-        odd_group = next(g for g in groups if len(g) != _most_common(sizes))
-        return _irregular(
-            groups,
-            group_times,
-            _most_common(sizes),
-            spacing,
-            "unequal-groups",
-            "excitation groups have unequal sizes",
-            group_sizes=counts,
-            example_group=list(odd_group),
-        )
-    multiband = sizes[0]
+    multiband = _most_common([len(g) for g in groups])
+    why = _unequal_sizes(groups, multiband)
+    if why is not None:
+        return _irregular(groups, group_times, multiband, spacing, why)
     n_groups = len(groups)
 
     if n == 1:
@@ -337,56 +324,27 @@ def _infer_scheme(times: Sequence[float], *, tolerance: float = DEFAULT_TOLERANC
         return Scheme(groups, group_times, multiband, SIMULTANEOUS, True, start=0, spacing=None)
 
     # 3. structure: group b holds {b, b + Nb, b + 2 Nb, ...}
-    if multiband > 1:
-        for group in groups:
-            expected = tuple(range(group[0], n, n_groups))
-            if group != expected:
-                return _irregular(
-                    groups,
-                    group_times,
-                    multiband,
-                    spacing,
-                    "group-spacing",
-                    f"groups are not spaced N/m apart (N={n}, m={multiband}, N/m={n_groups})",
-                    group=list(group),
-                    expected=list(expected),
-                )
+    why = _misplaced_group(groups, n, multiband)
+    if why is not None:
+        return _irregular(groups, group_times, multiband, spacing, why)
 
     # 4. order of base slices
     bases = [g[0] for g in groups]
     description = describe_order(bases)
     if description is None:
-        return _irregular(
-            groups,
-            group_times,
-            multiband,
-            spacing,
-            "order",
-            "the order of excitation groups is not ascending, descending or interleaved",
-            base_order=bases,
-        )
-    inner = description.label
-    label = with_multiband(inner, multiband)
+        return _irregular(groups, group_times, multiband, spacing, {
+            "kind": "order",
+            "reason": "the order of excitation groups is not ascending, descending or "
+            "interleaved",
+            "base_order": bases,
+        })
+    label = with_multiband(description.label, multiband)
 
     # 5. timing regularity
     assert spacing is not None
-    slack = tolerance + 1e-9
-    if any(abs(g - spacing) > slack for g in gaps):
-        too_long = [k for k, g in enumerate(gaps) if g - spacing > slack]
-        too_short = [k for k, g in enumerate(gaps) if spacing - g > slack]
-        details: dict[str, Any] = {
-            "gaps": [_round(g) for g in gaps],
-            "median_gap": _round(spacing),
-            "order_label": label,
-        }
-        if too_long and not too_short:
-            details["pause_after_group"] = too_long
-            reason = "pause between excitation groups"
-        else:
-            details["uneven_after_group"] = sorted(too_long + too_short)
-            reason = "excitation groups are not evenly spaced in time"
-        return _irregular(groups, group_times, multiband, spacing, "uneven-gaps", reason,
-                          **details)
+    why = _uneven_gaps(gaps, spacing, tolerance, label)
+    if why is not None:
+        return _irregular(groups, group_times, multiband, spacing, why)
 
     return Scheme(
         groups=groups,
@@ -400,6 +358,57 @@ def _infer_scheme(times: Sequence[float], *, tolerance: float = DEFAULT_TOLERANC
         residue_order=description.residue_order,
         spacing=spacing,
     )
+
+
+def _unequal_sizes(groups: Sequence[tuple[int, ...]], common: int) -> dict[str, Any] | None:
+    """Groups of different sizes (no one multiband factor): how many of each size, and
+    one group whose size is not the ``common`` one."""
+    sizes = [len(g) for g in groups]
+    if len(set(sizes)) <= 1:
+        return None
+    odd_group = next(g for g in groups if len(g) != common)
+    return {"kind": "unequal-groups", "reason": "excitation groups have unequal sizes",
+            "group_sizes": {str(size): sizes.count(size) for size in sorted(set(sizes))},
+            "example_group": list(odd_group)}
+
+
+def _misplaced_group(groups: Sequence[tuple[int, ...]], n: int,
+                     multiband: int) -> dict[str, Any] | None:
+    """With multiband, the first group whose slices are not N/m apart (group b must hold
+    b, b + N/m, b + 2 N/m, ...)."""
+    if multiband <= 1:
+        return None
+    n_groups = len(groups)
+    for group in groups:
+        expected = tuple(range(group[0], n, n_groups))
+        if group != expected:
+            return {"kind": "group-spacing",
+                    "reason": f"groups are not spaced N/m apart (N={n}, m={multiband}, "
+                    f"N/m={n_groups})",
+                    "group": list(group), "expected": list(expected)}
+    return None
+
+
+def _uneven_gaps(gaps: Sequence[float], spacing: float, tolerance: float,
+                 label: str) -> dict[str, Any] | None:
+    """Gaps between groups that differ from the median ``spacing`` by more than
+    ``tolerance``: a pause (only longer gaps) or uneven spacing."""
+    slack = tolerance + 1e-9
+    if not any(abs(g - spacing) > slack for g in gaps):
+        return None
+    too_long = [k for k, g in enumerate(gaps) if g - spacing > slack]
+    too_short = [k for k, g in enumerate(gaps) if spacing - g > slack]
+    pause = bool(too_long and not too_short)
+    return {
+        "kind": "uneven-gaps",
+        "reason": "pause between excitation groups" if pause
+        else "excitation groups are not evenly spaced in time",
+        "gaps": [_round(g) for g in gaps],
+        "median_gap": _round(spacing),
+        "order_label": label,
+        **({"pause_after_group": too_long} if pause
+           else {"uneven_after_group": sorted(too_long + too_short)}),
+    }
 
 
 def _most_common(values: Sequence[int]) -> int:
