@@ -339,32 +339,50 @@ def write_text(source: ReportSource, out: IO[str], *, show_all: bool = False,
     paint = _Paint(out)
     fit: int | None = screen.width_for(out) if width is True else (
         None if width is False else width)
-    several = several_roots(totals)
     kinds = ("error", "warning", "note") if show_notes else ("error", "warning")
+    for line in _group_table(totals, kinds, fit, paint):
+        out.write(line + "\n")
+    grouping = group_findings(source)
+    _write_runs(source, grouping, out, paint, fit, show_all=show_all, show_notes=show_notes)
+    _write_closing(totals, grouping, out, paint, fit, show_notes=show_notes)
+
+
+def _group_table(totals: AuditTotals, kinds: tuple[str, ...], fit: int | None,
+                 paint: _Paint) -> list[str]:
+    """The table of run groups (``protocol_key``): runs, TR, how many runs have
+    findings of each of ``kinds``, the schemes (with how many runs have each when
+    they differ)."""
+    several = several_roots(totals)
     groups: dict[tuple[str, ...], list[int]] = defaultdict(list)
     for index, facts in enumerate(totals.facts):
         groups[protocol_key(facts)].append(index)
-    if groups:
-        rows = []
-        for key, members in sorted(groups.items()):
-            schemes = Counter(_scheme_label(totals.facts[i]) for i in members)
-            scheme_text = "; ".join(
-                f"{xml_safe(label)} ×{n}" if len(schemes) > 1 else xml_safe(label)
-                for label, n in sorted(schemes.items(), key=lambda kv: (-kv[1], kv[0])))
-            trs = _tr_text(totals.facts[i].timing for i in members)
-            # runs, not findings: how many of the group's runs have one of each severity
-            sums = [sum(1 for i in members if totals.facts[i].counts[k])
-                    for k in range(len(kinds))]
-            root_label = f"[{totals.names.get(key[0], key[0])}]" if several else None
-            rows.append((xml_safe(group_label(key, root_label)), str(len(members)), trs,
-                         *(str(s) for s in sums), scheme_text))
-        head = (GROUP_HEAD, "runs", "TR", *(f"with {plural_of(k)}" for k in kinds),
-                "schemes")
-        right = {1, *range(3, 3 + len(kinds))}
-        for line in _table(rows, head, right, (None, None, None, *kinds), fit, paint):
-            out.write(line + "\n")
+    if not groups:
+        return []
+    rows = []
+    for key, members in sorted(groups.items()):
+        schemes = Counter(_scheme_label(totals.facts[i]) for i in members)
+        scheme_text = "; ".join(
+            f"{xml_safe(label)} ×{n}" if len(schemes) > 1 else xml_safe(label)
+            for label, n in sorted(schemes.items(), key=lambda kv: (-kv[1], kv[0])))
+        trs = _tr_text(totals.facts[i].timing for i in members)
+        # runs, not findings: how many of the group's runs have one of each severity
+        sums = [sum(1 for i in members if totals.facts[i].counts[k])
+                for k in range(len(kinds))]
+        root_label = f"[{totals.names.get(key[0], key[0])}]" if several else None
+        rows.append((xml_safe(group_label(key, root_label)), str(len(members)), trs,
+                     *(str(s) for s in sums), scheme_text))
+    head = (GROUP_HEAD, "runs", "TR", *(f"with {plural_of(k)}" for k in kinds),
+            "schemes")
+    right = {1, *range(3, 3 + len(kinds))}
+    return _table(rows, head, right, (None, None, None, *kinds), fit, paint)
 
-    grouping = group_findings(source)
+
+def _write_runs(source: ReportSource, grouping: Grouping, out: IO[str], paint: _Paint,
+                fit: int | None, *, show_all: bool, show_notes: bool) -> None:
+    """The runs with findings of their own (every run with ``show_all``): each run's
+    line, then its findings, worst first."""
+    totals = source.totals
+    several = several_roots(totals)
 
     def own_counts(index: int) -> tuple[int, int, int]:
         return grouping.own_counts(index, totals.facts[index].counts)
@@ -409,13 +427,20 @@ def write_text(source: ReportSource, out: IO[str], *, show_all: bool = False,
         shown.sort(key=lambda f: -_RANK[f["severity"]])
         for f in shown:
             out.write(_finding_text(f, paint, fit, run_path=obj["path"]) + "\n")
+
+
+def _write_closing(totals: AuditTotals, grouping: Grouping, out: IO[str], paint: _Paint,
+                   fit: int | None, *, show_notes: bool) -> None:
+    """After the runs: the findings of shared files (each once, with its runs), the
+    dataset findings, the policy line and the summary line."""
     shared = [g for g in grouping.shared if show_notes or g.severity != "note"]
     if shared:
         out.write(paint("\nfindings of shared files (each told once, with the runs it "
                         "applies to)", "bold") + "\n")
         for group in shared:
             out.write(_finding_text(group.finding, paint, fit) + "\n")
-            for line in shared_runs_lines(group, grouping, totals, fit, several=several):
+            for line in shared_runs_lines(group, grouping, totals, fit,
+                                          several=several_roots(totals)):
                 out.write(line + "\n")
     if totals.dataset_findings:
         out.write(paint("\ndataset", "bold") + "\n")
