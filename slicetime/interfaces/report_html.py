@@ -67,7 +67,6 @@ from slicetime.interfaces.report_stream import evidence_text
 from slicetime.interfaces.safe_text import xml_safe
 from slicetime.interfaces.screen import repetition_text, strip_path_prefix
 from slicetime.model import Severity
-from slicetime.numbers import secs
 from slicetime.pipelines.audit import AuditResult, AuditTotals, RunFacts
 from slicetime.rules.dataset import PROTOCOL_ENTITIES, protocol_key
 from slicetime.words import agree
