@@ -15,7 +15,7 @@ import itertools
 import math
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
-from typing import Any, NamedTuple, TypeGuard, cast
+from typing import Any, TypedDict, TypeGuard, cast
 
 from slicetime.model import (
     AXES,
@@ -146,8 +146,8 @@ def resolve_timing(
     return _complete(slices, metadata, metadata_sources, header, image_file)
 
 
-class _Volume(NamedTuple):
-    """The volume-level fields of a schedule, in seconds."""
+class _Volume(TypedDict):
+    """The volume-level fields of a schedule (:class:`SliceSchedule`'s names), in seconds."""
 
     repetition_time: float | None
     volume_times: tuple[float, ...] | None
@@ -189,16 +189,8 @@ def _resolve_slices(
         return header.shape[index] if len(header.shape) > index else 1
 
     def build(times: Sequence[float], origin: str, ax: Axis, dr: Direction) -> _Slices:
-        schedule = SliceSchedule(
-            times=tuple(times),
-            axis=ax,
-            direction=dr,
-            repetition_time=volume.repetition_time,
-            volume_times=volume.volume_times,
-            acquisition_duration=volume.acquisition_duration,
-            delay_time=volume.delay_time,
-            sources=sources,
-        )
+        schedule = SliceSchedule(times=tuple(times), axis=ax, direction=dr, sources=sources,
+                                 **volume)
         return _Slices(schedule, origin, (), axis_length(ax))
 
     # --- slice times -----------------------------------------------------------
@@ -269,7 +261,8 @@ def _volume_fields(
         if fad is not None:
             acq = fad
             sources["AcquisitionDuration"] = sidecar_source("FrameAcquisitionDuration")
-    return _Volume(tr, volume_times, acq, delay_time)
+    return _Volume(repetition_time=tr, volume_times=volume_times, acquisition_duration=acq,
+                   delay_time=delay_time)
 
 
 def _slice_direction(
