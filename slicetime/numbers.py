@@ -40,6 +40,14 @@ def _finite(value: float) -> bool:
     return not (math.isnan(value) or math.isinf(value))
 
 
+def _finite_float(value: object) -> float | None:
+    """``value`` when it is a finite float; None for anything else (a whole number, a
+    bool, NaN, an infinity, text), which the formatters write as ``str`` gives it."""
+    if isinstance(value, float) and _finite(value):
+        return value
+    return None
+
+
 def json_time(value: float) -> float:
     """A time in seconds for JSON: rounded to 1 µs (``-0.0`` becomes ``0.0``)."""
     if not _finite(value):
@@ -101,17 +109,14 @@ def plain(value: object, significant: int = 6) -> str:
     """Like ``format(value, "g")`` (``significant`` digits) but never scientific:
     ``plain(138900.0)`` is ``138900``, ``plain(2.3611109999999997)`` is ``2.36111``.
     Tiny values keep at most 6 decimals (1 µs for a time in seconds)."""
-    if isinstance(value, bool) or not isinstance(value, int | float):
+    number = _finite_float(value)
+    if number is None:
         return str(value)
-    if isinstance(value, int):
-        return str(value)
-    if not _finite(value):
-        return str(value)
-    if value == 0:
+    if number == 0:
         return "0"
-    magnitude = math.floor(math.log10(abs(value)))
+    magnitude = math.floor(math.log10(abs(number)))
     decimals = min(max(significant - 1 - magnitude, 0), 6)
-    return fixed(round(value, decimals), decimals)
+    return fixed(round(number, decimals), decimals)
 
 
 def grouped(value: int) -> str:
@@ -151,17 +156,16 @@ def shown(value: object) -> str:
     """Any number on a screen whose unit the screen does not know (a finding's
     grounds): 6 significant digits and at most 5 decimals (the 10 µs of a time in
     seconds), grouped from 10,000 on, never scientific."""
-    if isinstance(value, bool) or not isinstance(value, int | float):
-        return str(value)
-    if isinstance(value, int):
+    if isinstance(value, int) and not isinstance(value, bool):
         return grouped(value)
-    if not _finite(value):
+    number = _finite_float(value)
+    if number is None:
         return str(value)
-    if abs(value) >= 10_000:
-        return as_written(value)
-    text = plain(value)
+    if abs(number) >= 10_000:
+        return as_written(number)
+    text = plain(number)
     decimals = text.partition(".")[2]
-    return fixed(value, SCREEN_S_DECIMALS) if len(decimals) > SCREEN_S_DECIMALS else text
+    return fixed(number, SCREEN_S_DECIMALS) if len(decimals) > SCREEN_S_DECIMALS else text
 
 
 def ratio(value: float) -> str:
