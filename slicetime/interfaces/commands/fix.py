@@ -5,8 +5,9 @@ from __future__ import annotations
 
 import shlex
 import sys
-from collections.abc import Iterable
+from collections.abc import Callable, Iterable
 from pathlib import Path
+from typing import TYPE_CHECKING, NoReturn
 
 import click
 
@@ -22,6 +23,11 @@ from slicetime.interfaces.commands.shared import (
     source_settings,
 )
 from slicetime.interfaces.screen import say
+
+if TYPE_CHECKING:
+    from slicetime.model import Finding
+    from slicetime.pipelines.fix import FixPlan
+    from slicetime.pipelines.transaction import ApplyResult
 
 
 @click.command()
@@ -92,8 +98,6 @@ def fix(
     from slicetime.interfaces.safe_text import xml_safe
     from slicetime.interfaces.terminal import make_console, render_fix_plan
     from slicetime.pipelines import fix as fixing
-    from slicetime.pipelines.signals import signals_noted, test_point
-    from slicetime.words import agree, count
 
     console = make_console()
     try:
@@ -108,17 +112,8 @@ def fix(
             plan = fixing.read_plan(plan_file)
             fixing.check_policies(plan, policy_file)
         else:
-            if not paths:
-                raise UserError("fix: give the dataset or runs to repair (PATH...)")
-            from slicetime.pipelines.audit import check_paths_hold_runs
-            from slicetime.readers.dataset import check_writes, find_root
-
-            check_writes(list(paths), {"--plan": plan_file if not do_apply else None},
-                         folders={"--backup-dir": backup_dir},
-                         inputs=[policy_file, source_map])
-            check_paths_hold_runs(list(paths))
-            for line in fixing.recover([str(find_root(p)) for p in paths]):
-                say(f"slicetime: {xml_safe(line)}", err=True)
+            _check_inputs(paths, plan_file if not do_apply else None, backup_dir,
+                          [policy_file, source_map])
             with run_executor(jobs, scheduler) as executor:
                 plan = fixing.plan_fix(list(paths), per_run=per_run, policy_file=policy_file,
                                        executor=executor, consolidate=consolidate,
@@ -152,6 +147,38 @@ def fix(
         where = f"{exc.filename}: " if exc.filename else ""
         raise UserError(xml_safe(f"{where}cannot write ({exc.strerror or exc}); nothing in "
                                  "the dataset was changed")) from None
+    _finish_apply(plan, applied, lambda: fixing.reaudit(
+        plan, policy_file=policy_file, source=source_settings(source_check, source_map)))
+
+
+def _check_inputs(paths: tuple[Path, ...], plan_out: Path | None, backup_dir: Path | None,
+                  inputs: list[Path | None]) -> None:
+    """Before any planning: PATHs given, no output that would overwrite an input, PATHs
+    that hold runs; a transaction a kill interrupted in one of their datasets is
+    finished first (``fixing.recover``), with a line on stderr for each file."""
+    from slicetime.interfaces.safe_text import xml_safe
+    from slicetime.pipelines import fix as fixing
+    from slicetime.pipelines.audit import check_paths_hold_runs
+    from slicetime.readers.dataset import check_writes, find_root
+
+    if not paths:
+        raise UserError("fix: give the dataset or runs to repair (PATH...)")
+    check_writes(list(paths), {"--plan": plan_out}, folders={"--backup-dir": backup_dir},
+                 inputs=inputs)
+    check_paths_hold_runs(list(paths))
+    for line in fixing.recover([str(find_root(p)) for p in paths]):
+        say(f"slicetime: {xml_safe(line)}", err=True)
+
+
+def _finish_apply(plan: FixPlan, applied: ApplyResult,
+                  reaudit: Callable[[], list[Finding]]) -> NoReturn:
+    """After ``--apply`` wrote its files: what was written, refused and recovered, where
+    the journal is, then the re-audit of the repaired runs; exits (1 when something was
+    refused or not planned, 130 after a Ctrl-C that stopped the re-audit)."""
+    from slicetime.interfaces.safe_text import xml_safe
+    from slicetime.pipelines.signals import signals_noted, test_point
+    from slicetime.words import agree, count
+
     code = 1 if applied.refused or plan.unplanned else 0
     with signals_noted() as noted:  # the files are written: this summary is printed whole
         test_point("fix:summary")
@@ -176,8 +203,7 @@ def fix(
         sys.exit(130)
     try:
         test_point("fix:reaudit")
-        left = fixing.reaudit(plan, policy_file=policy_file,
-                              source=source_settings(source_check, source_map))
+        left = reaudit()
     except KeyboardInterrupt:
         say(f"slicetime: interrupted during the re-audit (not finished); {stopped}", err=True)
         sys.exit(130)
