@@ -42,11 +42,13 @@ ratios (methods, the multiband run's time and memory, ``--jobs 2`` ÷
 ``--jobs 1``) are reported without a target. Absolute seconds vary between
 machines, the ratios are what the targets are about.
 
-With ``--profile`` (the default; standard run only) three more runs show where
-``correct`` spends its time: one with wall-clock timers wrapped around its
-phases (read, engine, write, ...; the wrapping happens in the child, slicetime
-is not modified; functions that no longer exist are skipped with a note), the
-same with the memory cap, and one ``correct_paths`` call under cProfile (main
+With ``--profile`` (the default; standard run only) four more runs show where
+``correct`` spends its time: one with timers wrapped around its phases (read,
+engine, write, ...; wall clock, and the processor time of all the process's
+threads meanwhile; the wrapping happens in the child, slicetime is not
+modified; functions that no longer exist are skipped with a note), the same on
+the run's ``.nii`` copy, the same with the memory cap, and one ``correct_paths``
+call under cProfile (main
 thread only; the gzip helper threads show up as lock waits); last, the slowest
 imports (``python -X importtime``), part of every command's wall time.
 
@@ -291,17 +293,28 @@ raised = {}
 peak_after = {}
 missing = []
 
+cpu = {}
+
 def maxrss():
     return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024
+
+def used():  # processor seconds of every thread of the process (user, system)
+    ru = resource.getrusage(resource.RUSAGE_SELF)
+    return ru.ru_utime, ru.ru_stime
 
 def timed(name, fn):
     def wrapper(*args, **kwargs):
         before = maxrss()
+        user, system = used()
         began = time.perf_counter()
         try:
             return fn(*args, **kwargs)
         finally:
             totals[name] = totals.get(name, 0.0) + time.perf_counter() - began
+            user_after, system_after = used()
+            spent = cpu.setdefault(name, [0.0, 0.0])
+            spent[0] += user_after - user
+            spent[1] += system_after - system
             calls[name] = calls.get(name, 0) + 1
             after = maxrss()
             if after > before:
@@ -342,23 +355,29 @@ patch("slicetime.engines.align:resample", "engine: row engine (awkward series)")
 patch("OutputCast.__call__", "write: slice-major -> volume order, output type")
 patch("VolumeWriter.__init__", "write: open, start encoder")
 patch("VolumeWriter.write", "write: compress + SHA-256 (feed encoder)")
+patch("VolumeWriter.settle", "write: wait for the helpers (.nii)")
 patch("VolumeWriter.close", "write: flush encoder + fsync")
-patch("hash_inputs", "provenance: hash sidecars")
+patch("run_inputs", "provenance: hash sidecars (and an events table)")
 patch("slicetime.pipelines.correct_batch:write_description", "provenance: dataset_description")
 patch("slicetime.pipelines.correct_batch:write_provenance", "provenance: provenance file")
 cap = int(sys.argv[4]) if sys.argv[4] else None
 options = mod.CorrectOptions(out=Path(sys.argv[2]), method=sys.argv[3], max_memory=cap,
                              threads=available_cpus())
 rss_before = maxrss()
+user, system = used()
 began = time.perf_counter()
 result = batch.correct_paths([Path(sys.argv[1])], options)
 total = time.perf_counter() - began
+user_after, system_after = used()
 assert result.counts()["corrected"] == 1, [correct_run_object(r) for r in result.runs]
 print(json.dumps({"imports_s": imported, "correct_paths_s": total,
+                  "correct_paths_user_s": user_after - user,
+                  "correct_paths_system_s": system_after - system,
                   "peak_rss_before_bytes": rss_before, "peak_rss_bytes": maxrss(),
                   "missing": missing,
                   "phases": {k: {"s": v, "calls": calls[k], "peak_raised_bytes": raised.get(k, 0),
-                                 "peak_after_bytes": peak_after.get(k)}
+                                 "peak_after_bytes": peak_after.get(k),
+                                 "user_s": cpu[k][0], "system_s": cpu[k][1]}
                              for k, v in totals.items()}}))
 """
 
@@ -1127,31 +1146,39 @@ def floor_part(ctx: Context, specs: dict[str, Spec]) -> None:
     ctx.tables.append(table)
 
 
-def profile_part(ctx: Context, dataset: Path) -> None:
+def profile_part(ctx: Context, spec: Spec, dataset: Path) -> None:
     args, work = ctx.args, ctx.work
     from slicetime.pipelines.memory import parse_size
 
     cap = parse_size(args.cap)
+    plain_root, _ = nii_copy(dataset, spec, work)
     profile: dict[str, Any] = {}
-    for key, method, run_cap in (("fourier", "fourier", None), ("max_memory", "fourier", cap)):
-        phases = phase_profile(dataset, work, method, run_cap, f"phases-{key}")
+    for key, method, run_cap, root in (("fourier", "fourier", None, dataset),
+                                       ("fourier_nii", "fourier", None, plain_root),
+                                       ("max_memory", "fourier", cap, dataset)):
+        phases = phase_profile(root, work, method, run_cap, f"phases-{key}")
         profile[f"phases_{key}"] = phases
         title = "fourier" if run_cap is None else f"fourier, --max-memory {args.cap}"
-        print(f"\nphases of one correct ({title}; standard run; in-process wall clock; "
+        fmt = ".nii" if root == plain_root else ".nii.gz"
+        print(f"\nphases of one correct ({title}; standard run, {fmt}; in-process; "
               f"imports {phases['imports_s']:.2f} s, correct_paths "
-              f"{phases['correct_paths_s']:.2f} s; peak RSS "
+              f"{phases['correct_paths_s']:.2f} s, {phases['correct_paths_user_s']:.2f} s "
+              f"user + {phases['correct_paths_system_s']:.2f} s system; peak RSS "
               f"{phases['peak_rss_before_bytes'] / MIB:.0f} MiB before correct_paths, "
               f"{phases['peak_rss_bytes'] / MIB:.0f} MiB after):")
-        print(f"  {'phase':<48} {'wall s':>7} {'share':>6} {'calls':>6} "
-              f"{'peak +MiB':>9} {'peak MiB':>9}")
+        print(f"  {'phase':<48} {'wall s':>7} {'share':>6} {'user s':>7} {'sys s':>6} "
+              f"{'calls':>6} {'peak +MiB':>9} {'peak MiB':>9}")
         for name, entry in sorted(phases["phases"].items()):
             share = entry["s"] / phases["correct_paths_s"]
             after = entry["peak_after_bytes"]
-            print(f"  {name:<48} {entry['s']:7.2f} {share:6.1%} {entry['calls']:6d} "
+            print(f"  {name:<48} {entry['s']:7.2f} {share:6.1%} {entry['user_s']:7.2f} "
+                  f"{entry['system_s']:6.2f} {entry['calls']:6d} "
                   f"{entry['peak_raised_bytes'] / MIB:9.0f} "
                   f"{after / MIB if after else float('nan'):9.0f}")
-        print("  (peak +MiB: how much the peak RSS rose inside the phase; peak MiB: the "
-              "highest peak it left; nested phases count in their parents too)")
+        print("  (user s, sys s: processor time of every thread of the process while the "
+              "phase ran, the helper threads' included; peak +MiB: how much the peak RSS "
+              "rose inside the phase; peak MiB: the highest peak it left; nested phases "
+              "count in their parents too)")
         if phases.get("missing"):
             print("  note: not timed, no longer in slicetime.pipelines.correct: "
                   + ", ".join(phases["missing"]))
@@ -1273,7 +1300,7 @@ def main() -> int:
         table()
     if args.profile:
         if "standard" in datasets:
-            profile_part(ctx, datasets["standard"])
+            profile_part(ctx, specs["standard"], datasets["standard"])
         else:
             print("\n(--profile: skipped, it profiles the standard run, which is not in --runs)")
     ctx.save(complete=True)
