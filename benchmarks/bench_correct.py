@@ -48,9 +48,9 @@ engine, write, ...; wall clock, and the processor time of all the process's
 threads meanwhile; the wrapping happens in the child, slicetime is not
 modified; functions that no longer exist are skipped with a note), the same on
 the run's ``.nii`` copy, the same with the memory cap, and one ``correct_paths``
-call under cProfile (main
-thread only; the gzip helper threads show up as lock waits); last, the slowest
-imports (``python -X importtime``), part of every command's wall time.
+call under cProfile (main thread only; the gzip helper threads show up as lock
+waits); last, the slowest imports (``python -X importtime``), part of every
+command's wall time.
 
 The results are written to --out as JSON after each part (``"complete":
 false`` until the end), so a late failure keeps what was measured.
