@@ -39,11 +39,11 @@ import html
 import io
 import os
 from collections import Counter, defaultdict
-from collections.abc import Iterator, Sequence
+from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass
 from functools import cache
 from importlib import resources
-from typing import IO
+from typing import IO, Any
 
 from slicetime import __version__
 from slicetime.interfaces.grouping import (
@@ -327,18 +327,8 @@ def _page_data(source: ReportSource, collector: DiagramCollector,
     for index, facts in enumerate(totals.facts):
         findings: list[list[int]] = []
         if pending is not None and pending[0] == index:
-            own = grouping.own(index, pending[1]["findings"])
-            ordered = sorted(own, key=lambda f: -_RANK[f["severity"]])
-            for f in ordered:
-                evidence = f.get("evidence")
-                findings.append([
-                    strings(xml_safe(f["code"])), _RANK[f["severity"]],
-                    opt(strip_path_prefix(f["message"], f.get("file"), pending[1]["path"]),
-                        one_line=False),
-                    opt(f.get("file")), opt(f.get("field")),
-                    opt(evidence_text(evidence) if evidence else None, one_line=False),
-                    opt(f.get("hint"), one_line=False),
-                ])
+            findings = _finding_rows(grouping.own(index, pending[1]["findings"]),
+                                     pending[1]["path"], strings, opt)
             pending = next(found, None)
         sub = facts.entities.get("sub")
         ses = facts.entities.get("ses")
@@ -362,24 +352,8 @@ def _page_data(source: ReportSource, collector: DiagramCollector,
             shared_of.get(index, []),
         ]
         yield ("," if index else "") + _safe_in_script(encode(row))
-    # a drawing: [symbol id ("" for a run without timing), width, height, caption,
-    # caption without the scheme label (a run's section names the scheme once)]
-    drawings = [[ident if spec.kind == "schedule" else "", *sizes[ident],
-                 xml_safe(spec.caption()), xml_safe(spec.detail())]
-                for spec, ident in collector.drawings.ids.items()]
-    row_order = sorted(range(len(subjects.values)), key=lambda i: subjects.values[i])
-    col_order = sorted(range(len(columns.values)), key=lambda i: columns.values[i])
-    rest = encode({
-        "tags": [[t.text, t.cls, xml_safe(t.label)] for t in tags.values()],
-        "drawings": drawings,
-        "facts": collector.facts.values,
-        "subjects": subjects.values, "subject_order": row_order,
-        "columns": columns.values, "column_order": col_order,
-        "own_sidecar": OWN_SIDECAR,
-        "shared": [[xml_safe(g.finding["code"]), _RANK[g.severity], g.runs]
-                   for g in grouping.shared],
-    })
-    yield "]," + _safe_in_script(rest[1:-1])
+    yield "]," + _safe_in_script(
+        encode(_page_tables(collector, tags, sizes, subjects, columns, grouping))[1:-1])
     # the two tables that grow with the runs, a block at a time (never one huge string)
     for key, values in (("sources", collector.sources.values), ("s", strings.values)):
         yield f',"{key}":['
@@ -388,6 +362,48 @@ def _page_data(source: ReportSource, collector: DiagramCollector,
                 encode(values[start:start + _BLOCK])[1:-1])
         yield "]"
     yield "}"
+
+
+def _finding_rows(own: list[dict[str, Any]], run_path: str, strings: ValueTable,
+                  opt: Callable[..., int]) -> list[list[int]]:
+    """A run's own findings for the page, worst first: ``[code, rank, message, file,
+    field, evidence, hint]`` as indices into ``strings`` (``opt``: -1 for none)."""
+    rows = []
+    for f in sorted(own, key=lambda f: -_RANK[f["severity"]]):
+        evidence = f.get("evidence")
+        rows.append([
+            strings(xml_safe(f["code"])), _RANK[f["severity"]],
+            opt(strip_path_prefix(f["message"], f.get("file"), run_path), one_line=False),
+            opt(f.get("file")), opt(f.get("field")),
+            opt(evidence_text(evidence) if evidence else None, one_line=False),
+            opt(f.get("hint"), one_line=False),
+        ])
+    return rows
+
+
+def _page_tables(collector: DiagramCollector, tags: dict[str | None, _Tag],
+                 sizes: dict[str, tuple[float, float]], subjects: ValueTable,
+                 columns: ValueTable, grouping: Grouping) -> dict[str, Any]:
+    """The page data's small tables, written after the runs: scheme tags, drawings,
+    facts, the dataset picture's rows and columns (with their sorted order), the
+    shared findings."""
+    # a drawing: [symbol id ("" for a run without timing), width, height, caption,
+    # caption without the scheme label (a run's section names the scheme once)]
+    drawings = [[ident if spec.kind == "schedule" else "", *sizes[ident],
+                 xml_safe(spec.caption()), xml_safe(spec.detail())]
+                for spec, ident in collector.drawings.ids.items()]
+    row_order = sorted(range(len(subjects.values)), key=lambda i: subjects.values[i])
+    col_order = sorted(range(len(columns.values)), key=lambda i: columns.values[i])
+    return {
+        "tags": [[t.text, t.cls, xml_safe(t.label)] for t in tags.values()],
+        "drawings": drawings,
+        "facts": collector.facts.values,
+        "subjects": subjects.values, "subject_order": row_order,
+        "columns": columns.values, "column_order": col_order,
+        "own_sidecar": OWN_SIDECAR,
+        "shared": [[xml_safe(g.finding["code"]), _RANK[g.severity], g.runs]
+                   for g in grouping.shared],
+    }
 
 
 #: table entries encoded at once when the page data is written
@@ -521,6 +537,8 @@ def write_html(
 
 def _write_page(source: ReportSource, collector: DiagramCollector, out: IO[str], *,
                 generated: str | None = None) -> None:
+    """The whole page: head (style, policy), header, overview, dataset picture, the runs
+    section and the reading guide, then the data its script renders and the script."""
     totals = source.totals
     tags = _scheme_tags(totals.facts)
     sprite, sizes = collector.drawings.symbols()
@@ -533,11 +551,6 @@ def _write_page(source: ReportSource, collector: DiagramCollector, out: IO[str],
         "default-src 'none'; style-src 'unsafe-inline'; img-src data:; "
         f"script-src '{script_hash(script)}'; base-uri 'none'; form-action 'none'"
     )
-    roots = "".join(f"<code>{txt(r)}</code> " for r in totals.roots)
-    policies = "".join(
-        f"<li><code>{txt(r)}</code>: <code>{txt(p)}</code></li>" for r, p in totals.policies.items()
-    )
-    n = totals.runs
     out.write("".join([
         '<!DOCTYPE html>\n<html lang="en"><head><meta charset="utf-8">',
         f'<meta http-equiv="Content-Security-Policy" content="{policy}">',
@@ -546,19 +559,8 @@ def _write_page(source: ReportSource, collector: DiagramCollector, out: IO[str],
         f"<title>{html.escape(title)}</title><style>{_css()}</style></head>",
         '<body data-ready="0">',
         sprite,
-        '<header class="top"><div class="brand">slicetime · slice-timing audit</div>',
-        f"<h1>{txt(name)}</h1>",
-        f'<p class="muted">{_plural(n, "run")} audited: '
-        f"{txt(', '.join(counts_phrase(grouping.distinct, grouping.runs_affected)))} · "
-        f"dataset root {roots}"
-        + (f"· audited from <code>{txt(source.root_given)}</code> "
-           if source.root_given not in totals.roots else "")
-        + f"· written {txt(stamp)} by slicetime {txt(__version__)}</p>",
-        (f'<p class="muted">Lab policy: </p><ul class="plain muted">{policies}</ul>'
-         if policies else ""),
-        '<nav class="no-print"><a href="#overview">overview</a><a href="#picture">dataset '
-        'picture</a><a href="#runs">runs</a><a href="#reading">how to read a diagram</a>'
-        "</nav></header><main>",
+        _page_header(source, grouping, name, stamp),
+        "<main>",
         '<section id="overview"><h2>Overview</h2>',
         _summary_cards(totals, collector.drawings.distinct(), grouping),
         "<h3>Schemes in use per run group</h3>",
@@ -577,6 +579,49 @@ def _write_page(source: ReportSource, collector: DiagramCollector, out: IO[str],
         '<div class="picture-wrap"><table class="picture" id="picture-table"></table></div>',
         _legends(tags),
         "</section>",
+        _runs_section(totals.runs),
+        _reading_guide(),
+        "</main>",
+        '<script type="application/json" id="report-data">',
+    ]))
+    for part in _page_data(source, collector, tags, sizes, grouping):
+        out.write(part)
+    out.write(f"</script><script>{script}</script></body></html>\n")
+
+
+#: runs listed at once; "list more" adds as many again
+PAGE = 200
+
+
+def _page_header(source: ReportSource, grouping: Grouping, name: str, stamp: str) -> str:
+    """The page's header: the dataset, the totals, where and when it was audited, the
+    lab policies, and the navigation."""
+    totals = source.totals
+    roots = "".join(f"<code>{txt(r)}</code> " for r in totals.roots)
+    policies = "".join(
+        f"<li><code>{txt(r)}</code>: <code>{txt(p)}</code></li>" for r, p in totals.policies.items()
+    )
+    return "".join([
+        '<header class="top"><div class="brand">slicetime · slice-timing audit</div>',
+        f"<h1>{txt(name)}</h1>",
+        f'<p class="muted">{_plural(totals.runs, "run")} audited: '
+        f"{txt(', '.join(counts_phrase(grouping.distinct, grouping.runs_affected)))} · "
+        f"dataset root {roots}"
+        + (f"· audited from <code>{txt(source.root_given)}</code> "
+           if source.root_given not in totals.roots else "")
+        + f"· written {txt(stamp)} by slicetime {txt(__version__)}</p>",
+        (f'<p class="muted">Lab policy: </p><ul class="plain muted">{policies}</ul>'
+         if policies else ""),
+        '<nav class="no-print"><a href="#overview">overview</a><a href="#picture">dataset '
+        'picture</a><a href="#runs">runs</a><a href="#reading">how to read a diagram</a>'
+        "</nav></header>",
+    ])
+
+
+def _runs_section(n: int) -> str:
+    """The runs section without its runs (the script lists them): the severity filter,
+    the search, the table's head and the "list more" button; ``n`` runs in all."""
+    return "".join([
         '<section id="runs"><h2>Runs</h2>',
         '<div class="controls" role="search"><label>Show <select id="severity-filter">'
         '<option value="all">all runs</option><option value="error">runs with errors'
@@ -600,17 +645,7 @@ def _write_page(source: ReportSource, collector: DiagramCollector, out: IO[str],
         f'<p class="no-print"><button type="button" id="more" hidden>list {PAGE} more'
         "</button></p>",
         "</section>",
-        _reading_guide(),
-        "</main>",
-        '<script type="application/json" id="report-data">',
-    ]))
-    for part in _page_data(source, collector, tags, sizes, grouping):
-        out.write(part)
-    out.write(f"</script><script>{script}</script></body></html>\n")
-
-
-#: runs listed at once; "list more" adds as many again
-PAGE = 200
+    ])
 
 
 def _legends(tags: dict[str | None, _Tag]) -> str:
