@@ -13,7 +13,7 @@ import os
 from collections import Counter, defaultdict
 from collections.abc import Callable, Iterable, Iterator
 from dataclasses import dataclass
-from typing import IO, Any
+from typing import IO, Any, NamedTuple
 
 from slicetime import __version__
 from slicetime.interfaces import screen
@@ -511,6 +511,62 @@ def summary_line(totals: AuditTotals, grouping: Grouping,
 # --------------------------------------------------------------------------- JUnit
 
 
+class _Suite(NamedTuple):
+    """One ``<testsuite>`` of the JUnit report: a dataset root's runs (its shared
+    findings and, with one root, the dataset findings), or, with several roots, the
+    dataset findings of all of them."""
+
+    name: str
+    root: str
+    label: str | None  # the dataset's name, for the properties and the class names
+    members: list[int]  # indices of its runs
+    with_dataset: bool
+
+
+class _JunitTally:
+    """What fails at a ``--fail-on`` threshold, counted the same way for each suite
+    and for the whole report."""
+
+    def __init__(self, totals: AuditTotals, grouping: Grouping, threshold: FailOn) -> None:
+        self.totals, self.grouping, self.threshold = totals, grouping, threshold
+        self.shared_of: dict[str, list[SharedFinding]] = defaultdict(list)
+        for group in grouping.shared:
+            self.shared_of[group.root].append(group)
+        self.dataset_fails = any(threshold.fails(f.severity) for f in totals.dataset_findings)
+
+    def tests(self, suite: _Suite) -> int:
+        return len(suite.members) + len(self.shared_of[suite.root]) + suite.with_dataset
+
+    def failures(self, suite: _Suite) -> int:
+        facts = self.totals.facts
+        runs = sum(self.threshold.reached(self.grouping.own_counts(i, facts[i].counts))
+                   for i in suite.members)
+        shared = sum(self.threshold.fails(Severity(g.severity))
+                     for g in self.shared_of[suite.root])
+        return runs + shared + (suite.with_dataset and self.dataset_fails)
+
+
+def _junit_suites(totals: AuditTotals, roots: list[str]) -> list[_Suite]:
+    """One suite per root with runs; with several roots, one more for the dataset
+    findings of all of them (one root: its suite holds them)."""
+    from slicetime.interfaces.report_junit import SUITE_NAME
+
+    several = len(roots) > 1
+    per_root: dict[str, list[int]] = defaultdict(list)
+    for index, facts in enumerate(totals.facts):
+        per_root[facts.root].append(index)
+    suites: list[_Suite] = []
+    for root in roots:
+        members = per_root.get(root, [])
+        if several and not members:
+            continue
+        suites.append(_Suite(f"{SUITE_NAME}: {root}" if several else SUITE_NAME, root,
+                             totals.names.get(root, root), members, not several))
+    if several:
+        suites.append(_Suite(f"{SUITE_NAME}: all datasets", ", ".join(roots), None, [], True))
+    return suites
+
+
 def write_junit(source: ReportSource, out: IO[str], *, fail_on: str) -> None:
     """The JUnit XML report (layout in ``report_junit``), written suite by suite."""
     import xml.etree.ElementTree as ET
@@ -524,47 +580,21 @@ def write_junit(source: ReportSource, out: IO[str], *, fail_on: str) -> None:
     if not roots:
         roots = [source.root_given]
     several = len(roots) > 1
-
-    failing = threshold.reached
-    dataset_fails = any(threshold.fails(f.severity) for f in totals.dataset_findings)
-
-    def run_fails(index: int) -> bool:
-        return failing(grouping.own_counts(index, totals.facts[index].counts))
-
-    shared_of: dict[str, list[SharedFinding]] = defaultdict(list)
-    for group in grouping.shared:
-        shared_of[group.root].append(group)
-
-    def shared_fails(root: str) -> int:
-        return sum(threshold.fails(Severity(g.severity)) for g in shared_of[root])
-    per_root: dict[str, list[int]] = defaultdict(list)
-    for index, facts in enumerate(totals.facts):
-        per_root[facts.root].append(index)
-    suites: list[tuple[str, str, str | None, list[int], bool]] = []
-    for root in roots:
-        members = per_root.get(root, [])
-        if several and not members:
-            continue
-        label: str | None = totals.names.get(root, root)
-        suites.append((f"{junit.SUITE_NAME}: {root}" if several else junit.SUITE_NAME,
-                       root, label, members, not several))
-    if several:
-        suites.append((f"{junit.SUITE_NAME}: all datasets", ", ".join(roots), None, [], True))
-    tests = sum(len(m) + len(shared_of[r]) + d for _, r, _, m, d in suites)
-    failures = sum(sum(run_fails(i) for i in m) + shared_fails(r) + (d and dataset_fails)
-                   for _, r, _, m, d in suites)
+    tally = _JunitTally(totals, grouping, threshold)
+    suites = _junit_suites(totals, roots)
+    tests = sum(tally.tests(suite) for suite in suites)
+    failures = sum(tally.failures(suite) for suite in suites)
     common = {"path_given": source.root_given, "fail_on": fail_on,
               "slicetime_version": __version__}
     out.write('<?xml version="1.0" encoding="UTF-8"?>\n')
     out.write(f'<testsuites name="slicetime" tests="{tests}" failures="{failures}" '
               'errors="0" skipped="0">\n')
-    for suite_name, root, name, members, with_dataset in suites:
-        s_tests = len(members) + len(shared_of[root]) + with_dataset
-        s_fail = sum(run_fails(i) for i in members) + shared_fails(root) + (
-            with_dataset and dataset_fails)
-        suite = ET.Element("testsuite", name=xml_safe(suite_name), tests=str(s_tests),
-                           failures=str(s_fail), errors="0", skipped="0")
-        text = ET.tostring(suite, encoding="unicode")
+    for suite in suites:
+        root, name, members = suite.root, suite.label, suite.members
+        element = ET.Element("testsuite", name=xml_safe(suite.name),
+                             tests=str(tally.tests(suite)),
+                             failures=str(tally.failures(suite)), errors="0", skipped="0")
+        text = ET.tostring(element, encoding="unicode")
         out.write("  " + text[: -len(" />")] + ">\n")
         props = ET.Element("properties")
         prop_values = {"root": root, **({"dataset": name} if name else {}), **common}
@@ -580,7 +610,7 @@ def write_junit(source: ReportSource, out: IO[str], *, fail_on: str) -> None:
             junit.add_testcase(holder, classname, path, grouping.own(index, obj["findings"]),
                                threshold)
             _write_element(out, holder[0], ET)
-        for group in shared_of[root]:
+        for group in tally.shared_of[root]:
             holder = ET.Element("x")
             file = group.finding["file"]
             folder = junit.folder_of(file)
@@ -589,7 +619,7 @@ def write_junit(source: ReportSource, out: IO[str], *, fail_on: str) -> None:
                                [group.finding], threshold,
                                more_out=shared_runs_text(group, grouping, totals))
             _write_element(out, holder[0], ET)
-        if with_dataset:
+        if suite.with_dataset:
             holder = ET.Element("x")
             junit.add_testcase(holder, ".", junit.DATASET_CASE,
                                [f.to_json() for f in totals.dataset_findings], threshold)
