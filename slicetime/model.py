@@ -189,6 +189,34 @@ class Source:
         return {"kind": self.kind, "file": self.file, "field": self.field}
 
 
+class WindowKind(str, enum.Enum):
+    """What bounds the acquisition window (:meth:`SliceSchedule.window`), typed so that
+    a decision never reads a label. The value is the BIDS name reports print for it
+    (:func:`window_label` names a TR only the header gives honestly)."""
+
+    NONE = ""
+    ACQUISITION = "FrameAcquisitionDuration"
+    DELAY = "RepetitionTime - DelayTime"
+    REPETITION = "RepetitionTime"
+    VOLUME_SPACING = "the shortest VolumeTiming interval"
+
+
+#: the name of a repetition time that only the image header gives (pixdim[4])
+HEADER_TR_NAME = "the TR in the header's pixdim[4]"
+
+
+def window_label(kind: WindowKind, repetition_origin: str | None) -> str:
+    """How findings and reports name the window: its BIDS name, except that a TR read
+    from the header (no sidecar gives one) is called the header's TR, never the
+    sidecar field ``RepetitionTime`` it is not."""
+    if repetition_origin == "header":
+        if kind is WindowKind.REPETITION:
+            return HEADER_TR_NAME
+        if kind is WindowKind.DELAY:
+            return f"{HEADER_TR_NAME} - DelayTime"
+    return kind.value
+
+
 @dataclass(frozen=True)
 class SliceSchedule:
     """When each slice of a volume was acquired.
@@ -220,7 +248,7 @@ class SliceSchedule:
         """Time within which all slices must be acquired (:meth:`window`)."""
         return self.window()[0]
 
-    def window(self) -> tuple[float | None, str]:
+    def window(self) -> tuple[float | None, WindowKind]:
         """The acquisition window every slice time must fall inside, and what it is.
 
         The one rule (every user calls this): the acquisition time TA when given
@@ -228,9 +256,8 @@ class SliceSchedule:
         derives it, or ``FrameAcquisitionDuration``), else ``RepetitionTime -
         DelayTime``, else ``RepetitionTime``, else the shortest ``VolumeTiming``
         interval (a slice cannot be acquired after the next volume began). The
-        name is one of ``RepetitionTime - DelayTime``, ``FrameAcquisitionDuration``,
-        ``RepetitionTime``, ``the shortest VolumeTiming interval``; ``(None, "")``
-        when nothing bounds the window.
+        kind is one of :class:`WindowKind` (its value the field's BIDS name);
+        ``(None, WindowKind.NONE)`` when nothing bounds the window.
         """
         tr, delay = self.repetition_time, self.delay_time
         if self.acquisition_duration is not None:
@@ -238,17 +265,17 @@ class SliceSchedule:
             derived = (source.kind == "derived" if source is not None else
                        tr is not None and delay is not None
                        and abs(tr - delay - self.acquisition_duration) < 1e-9)
-            name = "RepetitionTime - DelayTime" if derived else "FrameAcquisitionDuration"
-            return self.acquisition_duration, name
+            kind = WindowKind.DELAY if derived else WindowKind.ACQUISITION
+            return self.acquisition_duration, kind
         if tr is not None:
             if delay:
-                return tr - delay, "RepetitionTime - DelayTime"
-            return tr, "RepetitionTime"
+                return tr - delay, WindowKind.DELAY
+            return tr, WindowKind.REPETITION
         vt = self.volume_times
         if vt and len(vt) > 1:
             gap = min(b - a for a, b in itertools.pairwise(vt))
-            return gap, "the shortest VolumeTiming interval"
-        return None, ""
+            return gap, WindowKind.VOLUME_SPACING
+        return None, WindowKind.NONE
 
     def sidecar_order(self) -> tuple[float, ...]:
         """The times as a ``SliceTiming`` list for this schedule's direction."""
@@ -442,8 +469,8 @@ class ResolvedTiming:
     divides). Everything else is in seconds, after the unit verdicts in ``units``:
     ``times``, ``repetition_time`` (sidecar ``RepetitionTime``; else, without
     ``VolumeTiming``, the header's ``pixdim[4]``; BIDS: the sidecar wins, with or
-    without a schedule), the acquisition ``window`` and its
-    ``window_name`` (:meth:`SliceSchedule.window`), and ``outside``: the slices
+    without a schedule), the acquisition ``window`` and its ``window_kind``
+    (:meth:`SliceSchedule.window`; ``window_name`` names it), and ``outside``: the slices
     outside ``[0, window)`` by the one boundary rule (:func:`outside_window`).
     Rules, repairs, the correction gate, plots, reports and the API read this and
     decide none of it again."""
@@ -459,7 +486,7 @@ class ResolvedTiming:
     repetition_source: Source | None = None
     times: tuple[float, ...] | None = None
     window: float | None = None
-    window_name: str = ""
+    window_kind: WindowKind = WindowKind.NONE
     outside: tuple[int, ...] = ()
     units: Mapping[str, UnitVerdict] = dataclasses.field(default_factory=dict)
 
@@ -471,6 +498,12 @@ class ResolvedTiming:
         the TR from the sidecar, so every screen says the header's TR is the header's
         only), or None without a TR. Decided here once; screens and reports read it."""
         return None if self.repetition_source is None else self.repetition_source.kind
+
+    @property
+    def window_name(self) -> str:
+        """The window's name for people (:func:`window_label`: a TR only the header
+        gives is called the header's TR). Decisions read ``window_kind``."""
+        return window_label(self.window_kind, self.repetition_origin)
 
     def unit(self, field: str) -> str:
         """The unit ``field`` was written in (``s`` when no verdict was needed)."""

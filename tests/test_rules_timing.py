@@ -26,6 +26,27 @@ def test_milliseconds_are_named_as_such_with_the_fix() -> None:
     assert "timing/exceeds-tr" not in {f.code for f in found}  # one problem, one finding
 
 
+def test_milliseconds_judged_against_the_headers_tr_name_it_so() -> None:
+    # BIDS: RepetitionTime is a sidecar field; without it the TR is the NIfTI header's
+    # pixdim[4] (NIfTI-1 standard), which the finding must not call RepetitionTime
+    seconds = slice_timing(Protocol(n_slices=12, order="interleaved", repetition_time=2.0))
+    found = check_run(record({"SliceTiming": [t * 1000 for t in seconds]}, H))
+    ms = [f for f in found if f.code == "timing/units-ms"]
+    assert len(ms) == 1
+    assert "RepetitionTime" not in ms[0].message
+    assert "the TR in the header's pixdim[4] (2 s)" in ms[0].message
+    assert ms[0].evidence["window_from"] == "the TR in the header's pixdim[4]"
+    # the decision reads the typed kind: the header's TR bounds the window like a TR
+    from slicetime.model import WindowKind
+
+    rec = record({"SliceTiming": [t * 1000 for t in seconds]}, H)
+    assert rec.timing.window_kind is WindowKind.REPETITION
+    assert rec.timing.repetition_origin == "header"
+    # with a sidecar RepetitionTime the BIDS name stays
+    side = record({"RepetitionTime": 2.0, "SliceTiming": [t * 1000 for t in seconds]}, H)
+    assert side.timing.window_name == "RepetitionTime"
+
+
 def test_negative_times() -> None:
     assert codes({"RepetitionTime": 2.0,
                   "SliceTiming": [-0.1] + [i * 0.15 for i in range(1, 12)]}).get(

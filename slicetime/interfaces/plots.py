@@ -166,7 +166,7 @@ def diagram_spec(record: RunRecord) -> DiagramSpec:
         return DiagramSpec("placeholder", message=placeholder_message(record))
     times = tuple(_r(t) for t in schedule.times)
     window = timing.window
-    window_name = _WINDOW_NAMES.get(timing.window_name, timing.window_name)
+    window_name = _WINDOW_NAMES.get(timing.window_kind.value, timing.window_name)
     scheme = record.scheme
     if scheme is not None:
         groups = tuple(tuple(g) for g in scheme.groups)

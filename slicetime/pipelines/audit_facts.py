@@ -187,13 +187,13 @@ class Interner:
         tr_source = value.repetition_source  # its kind and field, kept (not its file)
         tr_from = None if tr_source is None else Source(tr_source.kind, tr_source.field)
         key = ("r", id(schedule), value.origin, value.axis_length, value.repetition_time,
-               value.window_name, units, tr_from)
+               value.window_kind, units, tr_from)
         found = self._values.get(key)
         if found is None:
             found = self._values[key] = ResolvedTiming(
                 schedule, value.origin, (), value.axis_length, value.repetition_time,
                 tr_from,
-                value.times, value.window, value.window_name, value.outside,
+                value.times, value.window, value.window_kind, value.outside,
                 {k: UnitVerdict(k, u) for k, u in units})
         return found
 

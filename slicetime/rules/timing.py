@@ -5,7 +5,7 @@ from __future__ import annotations
 from collections.abc import Callable, Iterator
 from typing import Any
 
-from slicetime.model import RunRecord, SliceSchedule, before_start, past_end
+from slicetime.model import RunRecord, SliceSchedule, WindowKind, before_start, past_end
 from slicetime.numbers import as_written, plain, secs
 from slicetime.rules.registry import Hit
 from slicetime.schemes.resolve import is_number, valid_multiband_factor
@@ -162,7 +162,7 @@ def _sidecar_order(schedule: SliceSchedule | None, times: tuple[float, ...]) -> 
 def exceeds_acquisition(record: RunRecord) -> Iterator[Hit]:
     timing = record.timing
     window, name, times = timing.window, timing.window_name, timing.times
-    if times is None or window is None or name == "RepetitionTime" \
+    if times is None or window is None or timing.window_kind is WindowKind.REPETITION \
             or record.timing_origin != "sidecar" or _in_ms(record) or not timing.outside:
         return
     tr = timing.repetition_time

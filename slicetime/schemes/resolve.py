@@ -30,6 +30,7 @@ from slicetime.model import (
     TimingProblem,
     UnitVerdict,
     outside_window,
+    window_label,
 )
 from slicetime.schemes.niftcodes import header_slice_times
 from slicetime.words import agree, count
@@ -407,14 +408,14 @@ def _complete(slices: _Slices, metadata: Mapping[str, Any],
                               repetition_time=tr, repetition_source=tr_source, units=units)
     # the window in seconds: the schedule's own rule over values in seconds
     if tr == schedule.repetition_time and vt_factor == 1.0:
-        window, name = schedule.window()  # written in seconds: the common case
+        window, kind = schedule.window()  # written in seconds: the common case
     else:
         acquisition = schedule.acquisition_duration
         derived = schedule.sources.get("AcquisitionDuration")
         if derived is not None and derived.kind == "derived" and tr is not None \
                 and schedule.delay_time is not None:
             acquisition = tr - schedule.delay_time if schedule.delay_time < tr else None
-        window, name = dataclasses.replace(
+        window, kind = dataclasses.replace(
             schedule, repetition_time=tr, acquisition_duration=acquisition,
             volume_times=None if volume_times is None else tuple(
                 v * vt_factor for v in volume_times)).window()
@@ -422,13 +423,14 @@ def _complete(slices: _Slices, metadata: Mapping[str, Any],
     if slices.origin == "sidecar" and looks_like_milliseconds(times, window):
         units["SliceTiming"] = UnitVerdict(
             "SliceTiming", "ms",
-            {"max": max(times), "window": window, "window_from": name,
+            {"max": max(times), "window": window,
+             "window_from": window_label(kind, None if tr_source is None else tr_source.kind),
              "as_seconds_max": max(times) / 1000.0, "at_least": MS_FACTOR_MIN})
         times = tuple(t * 0.001 for t in times)
     return ResolvedTiming(
         schedule, slices.origin, slices.problems, slices.axis_length,
         repetition_time=tr, repetition_source=tr_source, times=times, window=window,
-        window_name=name, outside=outside_window(times, window), units=units)
+        window_kind=kind, outside=outside_window(times, window), units=units)
 
 
 def timing_of(schedule: SliceSchedule, origin: str = "sidecar") -> ResolvedTiming:
