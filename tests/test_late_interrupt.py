@@ -106,3 +106,35 @@ def test_a_ctrl_c_during_the_reaudit_says_the_files_were_written(
     assert len(lines) == 1 and "during the re-audit (not finished)" in lines[0]
     assert "the 1 file above was written" in lines[0]
     assert json.loads((dataset / OWN).read_text())["SliceTiming"] == pytest.approx(seconds())
+
+
+@pytest.mark.parametrize("point", ["fix:written", "fix:release"])
+def test_a_ctrl_c_after_the_last_write_or_while_the_locks_are_released_is_told(
+        dataset: Path, tmp_path: Path, point: str) -> None:
+    # after the apply's last file (its journal finished, its locks released) the files
+    # are written: the same honest line as before the re-audit, never a bare
+    # "interrupted"
+    stopped = apply_stopped_at(point, dataset, tmp_path / "backups")
+    assert f"written   {OWN}" in stopped.stdout and "undo with:" in stopped.stdout
+    lines = [x for x in stopped.stderr.splitlines() if "interrupted" in x]
+    assert "before the re-audit; the 1 file above was written (undo with: slicetime fix " \
+        "--undo" in lines[0]
+    assert "re-audit:" not in stopped.stdout
+    # what it says is so: the file holds seconds (BIDS), the journal says applied, and
+    # no lock file is left in the dataset
+    assert json.loads((dataset / OWN).read_text())["SliceTiming"] == pytest.approx(seconds())
+    journal = tmp_path / "backups" / "journal.json"
+    assert json.loads(journal.read_text())["status"] == "applied"
+    assert not [p for p in dataset.iterdir() if p.name.endswith(".lock")]
+
+
+def test_a_ctrl_c_during_corrects_audit_says_so_in_one_line(
+        dataset: Path, tmp_path: Path) -> None:
+    out = tmp_path / "aligned"
+    stopped = run("correct:audit", "correct", str(dataset), "--out", str(out), "--jobs", "1",
+                  "--no-progress")
+    assert stopped.returncode == 130, stopped.stderr
+    lines = [x for x in stopped.stderr.splitlines() if x.strip()]
+    assert lines == ["slicetime: interrupted while the runs were audited, before any run "
+                     "was corrected; nothing written (rerun the same command)"]
+    assert not out.exists()  # what it says is so

@@ -102,16 +102,20 @@ def correct_paths(
     """
     get_engine(options.method)
     check_desc(options.desc)
-    audit: AuditResult = audit_paths(
-        paths,
-        include_derivatives=include_derivatives,
-        include_sourcedata=include_sourcedata,
-        include_hidden=include_hidden,
-        policy_file=policy_file,
-        verify=verify,
-        executor=executor if verify else None,
-        jobs=jobs if verify else 1,
-    )
+    try:
+        audit: AuditResult = audit_paths(
+            paths,
+            include_derivatives=include_derivatives,
+            include_sourcedata=include_sourcedata,
+            include_hidden=include_hidden,
+            policy_file=policy_file,
+            verify=verify,
+            executor=executor if verify else None,
+            jobs=jobs if verify else 1,
+        )
+        test_point("correct:audit")
+    except KeyboardInterrupt:
+        raise NotStarted("while the runs were audited") from None
     broken = audit.policy_problem()
     if broken is not None:
         # the lab's policy (its accepted doubts, severities, protocols) decides what may
@@ -312,6 +316,15 @@ def _auto_threads(executor: Executor | None, jobs: int, n_runs: int) -> int:
         return 1  # a Dask worker runs as many tasks as it has threads
     at_once = getattr(executor, "jobs", jobs) if executor is not None else jobs
     return max(1, available_cpus() // max(1, min(at_once, n_runs)))
+
+
+class NotStarted(KeyboardInterrupt):
+    """Ctrl-C before any run was started (``stage``: what was being done): nothing
+    was corrected and no output written."""
+
+    def __init__(self, stage: str) -> None:
+        super().__init__("interrupted")
+        self.stage = stage
 
 
 class CorrectInterrupted(KeyboardInterrupt):

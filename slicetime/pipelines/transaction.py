@@ -49,7 +49,7 @@ from slicetime.pipelines.journal import (
     root_identity,
     sha256_of,
 )
-from slicetime.pipelines.signals import signals_noted
+from slicetime.pipelines.signals import signals_noted, test_point
 from slicetime.readers.atomic import (
     WriteRefused,
     check_write_target,
@@ -231,6 +231,8 @@ class ApplyResult:
     refused: list[str] = field(default_factory=list)  # one line per refused file
     #: what an earlier, interrupted apply left and this one put right first
     recovered: list[str] = field(default_factory=list)
+    #: a SIGINT or SIGTERM came after the last file was written (the apply is whole)
+    late_signal: bool = False
 
 
 def default_backup_dir(roots: Sequence[str]) -> Path:
@@ -359,15 +361,25 @@ def apply_changes(
     if not changes:
         return ApplyResult(None)
     roots = list(dict.fromkeys(c.root for c in changes))
-    with dataset_lock(roots) as locks:
-        recovered = [_finish_rollback(j) for j in dict.fromkeys(locks.interrupted.values())]
-        refused = preflight(changes, replace_links, rewrite_read_only)
-        if refused:
-            return ApplyResult(None, refused=refused, recovered=recovered)
-        backup = _prepare_backup_dir(backup_dir, roots)
-        result = _apply_checked(changes, roots, backup, locks)
-        result.recovered = recovered
-        return result
+    # a signal is noted for the whole apply, lock release included: before the first
+    # write it stops the apply with nothing written; after the last one the apply is
+    # done and the caller is told (``late_signal``), never a bare "interrupted"
+    with signals_noted() as late:
+        with dataset_lock(roots) as locks:
+            recovered = [_finish_rollback(j)
+                         for j in dict.fromkeys(locks.interrupted.values())]
+            refused = preflight(changes, replace_links, rewrite_read_only)
+            if late:
+                raise Interrupted(f"interrupted ({signal.Signals(late[0]).name}) before "
+                                  "anything was written; nothing is changed", late[0])
+            if refused:
+                return ApplyResult(None, refused=refused, recovered=recovered)
+            backup = _prepare_backup_dir(backup_dir, roots)
+            result = _apply_checked(changes, roots, backup, locks)
+            result.recovered = recovered
+            test_point("fix:release")
+        result.late_signal = result.late_signal or bool(late)
+    return result
 
 
 def _fsync_folder(folder: Path) -> None:
@@ -449,10 +461,12 @@ def _apply_checked(changes: Sequence[PlannedWrite], roots: list[str],
             if signals and len(done) < len(entries):
                 _roll_back(signals[0], change.file, done, backup, token, roots, journal_path,
                            ids)
+        test_point("fix:written")
         for folder in {e.path.parent for e in entries}:
             _fsync_folder(folder)
         _write_journal(journal_path, roots, token, entries, "applied", ids)
         locks.note_journal(None)
+    result.late_signal = bool(signals)  # after the last file: the apply is whole
     return result
 
 

@@ -157,11 +157,15 @@ def correct(
 
 def _interrupted(stop: KeyboardInterrupt) -> NoReturn:
     """Ctrl-C before the batch was done: what finished and what did not, exit 130 (a
-    Ctrl-C before any run was started goes on to the one-line "interrupted")."""
+    Ctrl-C during the audit that comes first says so in one line)."""
     from slicetime.interfaces.terminal import make_console, render_correct
-    from slicetime.pipelines.correct_batch import CorrectInterrupted
+    from slicetime.pipelines.correct_batch import CorrectInterrupted, NotStarted
     from slicetime.words import count
 
+    if isinstance(stop, NotStarted):
+        say(f"slicetime: interrupted {stop.stage}, before any run was corrected; nothing "
+            "written (rerun the same command)", err=True)
+        sys.exit(130)
     if not isinstance(stop, CorrectInterrupted):
         raise stop
     if not stop.result.runs:  # nothing finished: no summary of zero runs

@@ -190,15 +190,18 @@ def _finish_apply(plan: FixPlan, applied: ApplyResult,
                 "would be refused, and a plan is applied whole or not at all")
         if applied.journal is not None:
             _say_journal(xml_safe(applied.journal))
+    # a Ctrl-C while the summary was printed, or after the apply's last file (while its
+    # journal was finished and its locks released)
+    late = bool(noted) or applied.late_signal
     if not applied.written or applied.journal is None:
-        if noted:
+        if late:
             say_finished_despite_interrupt("the apply")
         sys.exit(code)
     # the re-audit is what is left: a Ctrl-C before or during it stops there, and says so
     undo = f"slicetime fix --undo {xml_safe(applied.journal)}"
     n = len(applied.written)
     stopped = f"the {count(n, 'file')} above {agree(n, 'was')} written (undo with: {undo})"
-    if noted:
+    if late:
         say(f"slicetime: interrupted before the re-audit; {stopped}", err=True)
         sys.exit(130)
     try:
