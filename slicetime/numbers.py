@@ -36,6 +36,11 @@ SCREEN_MS_DECIMALS = 2
 SCREEN_S_DECIMALS = 5
 
 
+#: from here on a number is shown as ``1e+308``, never written out in full: a double
+#: holds 15 to 17 significant decimal digits (IEEE 754 binary64), the rest is noise
+HUGE = 1e15
+
+
 def _finite(value: float) -> bool:
     return not (math.isnan(value) or math.isinf(value))
 
@@ -99,6 +104,8 @@ def fixed(value: float, decimals: int) -> str:
         return str(value)
     if not _finite(float(value)):
         return str(value)
+    if abs(value) >= HUGE:  # digits a double does not hold: not written out
+        return f"{value:.6g}"
     text = f"{value:.{decimals}f}"
     if "." in text:
         text = text.rstrip("0").rstrip(".")
@@ -144,6 +151,8 @@ def as_written(value: float) -> str:
     """A number from a file whose unit is in doubt, as the file has it (at most 6
     significant digits, 2 decimals from 100 on, never scientific, no unit)."""
     if isinstance(value, int | float) and not isinstance(value, bool) and _finite(value):
+        if abs(value) >= HUGE:
+            return fixed(value, 2)
         if abs(value) >= 10_000:
             whole, _, decimals = fixed(value, 2).partition(".")
             return f"{int(whole):,}" + (f".{decimals}" if decimals else "")

@@ -21,7 +21,7 @@ import pytest
 from click.testing import CliRunner
 
 from slicetime.interfaces.cli import cli
-from slicetime.numbers import as_written, grouped, secs, size_words
+from slicetime.numbers import as_written, grouped, plain, secs, shown, size_words
 from slicetime.pipelines.demo import build_demo_dataset
 from tests.helpers_bids import write_description, write_run, write_sidecar
 
@@ -192,6 +192,13 @@ def test_the_number_rules() -> None:
     assert size_words(221536) == "221,536 bytes" and size_words(1) == "1 byte"
     assert as_written(2361.111111) == "2361.11" and as_written(1e9) == f"{10**9:,}"
     assert secs(0.703125) == "0.70312 s"  # 10 µs: round half to even, as format() does
+    # a double holds 15 to 17 significant decimal digits (IEEE 754 binary64): a huge
+    # value (a SliceTiming entry of 1e308 in a sidecar) is not written out as 309
+    # digits of noise, but as Python's "g" format gives it
+    assert secs(1e308) == f"{1e308:.6g} s" == "1e+308 s"
+    assert as_written(1e308) == plain(1e308) == shown(1e308) == f"{1e308:.6g}"
+    assert as_written(-1e300) == f"{-1e300:.6g}"
+    assert as_written(1e12) == f"{10**12:,}"  # below that, grouped digits as before
     assert not number_problems("slice_duration 0.05556 s, 138.89 ms, 109,400 bytes")
     assert number_problems("slice_duration 0.0555555559694767 s")
     assert number_problems("138.889 ms") and number_problems("109400 bytes")
