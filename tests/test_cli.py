@@ -133,6 +133,19 @@ def test_timing_bad_protocol_is_a_usage_error() -> None:
     assert code == 2 and "--tr" in err
 
 
+def test_timing_never_suggests_an_impossible_tr() -> None:
+    # BIDS: RepetitionTime in seconds; the model's plausible TR is 0.05 to 100 s
+    # (model.MIN/MAX_REPETITION_TIME, common practice (no source)): a value that is no
+    # TR read as milliseconds either, or not finite, gets no "did you mean"
+    for value in ("inf", "1e12"):
+        code, out, err = run_cli("timing", "--slices", "10", "--tr", value)
+        lines = err.strip().splitlines()
+        assert code == 2 and out == "" and len(lines) == 1, err
+        assert "did you mean" not in err and lines[0].startswith("slicetime: timing: --tr")
+    code, _, err = run_cli("timing", "--slices", "10", "--tr", "2000")
+    assert code == 2 and "did you mean --tr 2?" in err  # 2000 ms = 2 s
+
+
 def test_explain_covers_every_code() -> None:
     code, out, _ = run_cli("explain", "--list")
     assert code == 0

@@ -47,6 +47,23 @@ def test_milliseconds_judged_against_the_headers_tr_name_it_so() -> None:
     assert side.timing.window_name == "RepetitionTime"
 
 
+def test_a_tr_no_unit_makes_plausible_is_not_divided_in_the_message() -> None:
+    # BIDS: RepetitionTime in seconds; a TR lies between 0.05 and 100 s (the model's
+    # bounds, common practice (no source)): 1e12 read as milliseconds is 1e9 s, no TR
+    found = [f for f in check_run(record({"RepetitionTime": 1e12, "SliceTiming": [0, 1, 0.5]},
+                                         header_info((8, 8, 3, 20), tr=2.0)))
+             if f.code == "tr/units-ms"]
+    assert len(found) == 1
+    assert "far more likely" not in found[0].message
+    assert "no plausible TR" in found[0].message
+    assert "1000" not in (found[0].hint or "")  # no "divide by 1000"
+    # 2000 is the ordinary case: 2 s, and the hint divides
+    ordinary = [f for f in check_run(record({"RepetitionTime": 2000, "SliceTiming": [0, 1, 0.5]},
+                                            header_info((8, 8, 3, 20), tr=2.0)))
+                if f.code == "tr/units-ms"]
+    assert "2 s is far more likely" in ordinary[0].message and "1000" in (ordinary[0].hint or "")
+
+
 def test_negative_times() -> None:
     assert codes({"RepetitionTime": 2.0,
                   "SliceTiming": [-0.1] + [i * 0.15 for i in range(1, 12)]}).get(

@@ -5,7 +5,15 @@ from __future__ import annotations
 from collections.abc import Callable, Iterator
 from typing import Any
 
-from slicetime.model import RunRecord, SliceSchedule, WindowKind, before_start, past_end
+from slicetime.model import (
+    MAX_REPETITION_TIME,
+    MIN_REPETITION_TIME,
+    RunRecord,
+    SliceSchedule,
+    WindowKind,
+    before_start,
+    past_end,
+)
 from slicetime.numbers import as_written, plain, secs
 from slicetime.rules.registry import Hit
 from slicetime.schemes.resolve import is_number, valid_multiband_factor
@@ -350,6 +358,13 @@ def tr_units(record: RunRecord) -> Iterator[Hit]:
     verdict = record.timing.units.get("RepetitionTime")
     if verdict is not None and verdict.unit == "ms":
         tr = verdict.evidence["value"]
+        if tr / 1000 > MAX_REPETITION_TIME:  # read as milliseconds it is no TR either
+            yield Hit(f"RepetitionTime is {as_written(tr)}, no plausible TR in seconds or "
+                      f"read as milliseconds ({secs(tr / 1000)}; a TR lies between "
+                      f"{secs(MIN_REPETITION_TIME)} and {secs(MAX_REPETITION_TIME)})",
+                      "RepetitionTime", {"value": tr, "as_seconds": tr / 1000},
+                      hint="Write RepetitionTime in seconds, from the protocol.")
+            return
         yield Hit(f"RepetitionTime is {plain(tr)}; {secs(tr / 1000)} is far more likely",
                   "RepetitionTime", {"value": tr, "as_seconds": tr / 1000})
 

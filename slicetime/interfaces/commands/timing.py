@@ -3,13 +3,14 @@
 from __future__ import annotations
 
 import json
+import math
 from typing import Any
 
 import click
 
 from slicetime.interfaces.commands.shared import UserError, friendly
 from slicetime.interfaces.screen import say
-from slicetime.model import MAX_REPETITION_TIME
+from slicetime.model import MAX_REPETITION_TIME, MIN_REPETITION_TIME
 
 
 @click.command()
@@ -72,9 +73,16 @@ def timing(
     if tr is None:
         raise UserError("timing: give --tr (and --delay-time for sparse protocols)")
     for option, value in (("--tr", tr), ("--delay-time", delay)):
+        if value is not None and not math.isfinite(value):
+            raise UserError(f"timing: {option} must be a finite number of seconds "
+                            f"(got {value})")
+        if value is not None and value / 1000 > _MS_LIKE_SECONDS:
+            raise UserError(f"timing: {option} {as_written(value)} is no plausible time, "
+                            f"in seconds or read as milliseconds (a TR lies between "
+                            f"{plain(MIN_REPETITION_TIME)} and {plain(MAX_REPETITION_TIME)} s)")
         if value is not None and value > _MS_LIKE_SECONDS:
-            raise UserError(f"{option} {as_written(value)}: times are in seconds, and "
-                            f"{as_written(value)} looks like milliseconds; did you mean "
+            raise UserError(f"timing: {option} {as_written(value)}: times are in seconds, "
+                            f"and {as_written(value)} looks like milliseconds; did you mean "
                             f"{option} {plain(value / 1000)}?")
     start: int | str | None = None
     if first is not None:
