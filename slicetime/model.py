@@ -254,8 +254,11 @@ class SliceSchedule:
         The one rule (every user calls this): the acquisition time TA when given
         (``AcquisitionDuration``: ``RepetitionTime - DelayTime`` as the resolver
         derives it, or ``FrameAcquisitionDuration``), else ``RepetitionTime -
-        DelayTime``, else ``RepetitionTime``, else the shortest ``VolumeTiming``
-        interval (a slice cannot be acquired after the next volume began). The
+        DelayTime`` (a DelayTime not shorter than the TR leaves no window: it is
+        ignored here as the resolver ignores it for the TA, and
+        ``timing/exceeds-acquisition`` reports it), else ``RepetitionTime``, else the
+        shortest ``VolumeTiming`` interval (a slice cannot be acquired after the next
+        volume began). The
         kind is one of :class:`WindowKind` (its value the field's BIDS name);
         ``(None, WindowKind.NONE)`` when nothing bounds the window.
         """
@@ -268,7 +271,7 @@ class SliceSchedule:
             kind = WindowKind.DELAY if derived else WindowKind.ACQUISITION
             return self.acquisition_duration, kind
         if tr is not None:
-            if delay:
+            if delay and delay < tr:
                 return tr - delay, WindowKind.DELAY
             return tr, WindowKind.REPETITION
         vt = self.volume_times

@@ -27,6 +27,10 @@ TIMES = (0.0, 0.4, 0.8)
           "sources": {"AcquisitionDuration": Source("sidecar", "FrameAcquisitionDuration")}},
          (1.2, "FrameAcquisitionDuration")),
         ({"repetition_time": 2.0}, (2.0, "RepetitionTime")),
+        # a DelayTime not shorter than the TR leaves TR - DelayTime <= 0: no window at
+        # all, so it is ignored as the resolver ignores it for the TA (BIDS: DelayTime
+        # is part of the TR); timing/exceeds-acquisition reports it
+        ({"repetition_time": 2.0, "delay_time": 5.0}, (2.0, "RepetitionTime")),
         # BIDS VolumeTiming without a TR: a slice is acquired before the next volume starts
         ({"volume_times": (0.0, 3.0, 5.5, 9.0)}, (2.5, "the shortest VolumeTiming interval")),
         ({"volume_times": (0.0,)}, (None, "")),

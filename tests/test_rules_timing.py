@@ -123,6 +123,23 @@ def test_sparse_run_times_beyond_the_acquisition_window() -> None:
         header_info((8, 8, 12, 20), tr=3.0))
 
 
+def test_a_delay_time_not_shorter_than_the_tr_is_named_not_a_negative_window() -> None:
+    # BIDS DelayTime: the silent part of each TR, so it is shorter than RepetitionTime;
+    # 5 s in a 2 s TR leaves no acquisition window (not one of -3 s)
+    found = [f for f in check_run(record({"RepetitionTime": 2.0, "DelayTime": 5.0,
+                                          "SliceTiming": [0, 1.0, 0.5]},
+                                         header_info((8, 8, 3, 20), tr=2.0)))
+             if f.code == "timing/exceeds-acquisition"]
+    assert len(found) == 1 and found[0].field == "DelayTime"
+    assert "-3" not in found[0].message and "not shorter than RepetitionTime" in found[0].message
+    # a negative DelayTime is no delay (BIDS: a time "to delay the acquisition")
+    from slicetime.readers.sidecar import check_types
+
+    wrong = check_types({"DelayTime": -1.0}, "sub-01_task-x_bold.json")
+    assert [(f.code, f.field) for f in wrong] == [("sidecar/wrong-type", "DelayTime")]
+    assert check_types({"DelayTime": 0}, "x.json") == []  # BIDS: absent means zero
+
+
 def test_header_tr_in_ms_labelled_seconds_gets_a_unit_hint() -> None:
     # BIDS RepetitionTimeMismatch: pixdim[4] after xyzt_units must equal RepetitionTime
     st = [i * 0.15 for i in range(12)]

@@ -218,6 +218,8 @@ def quick_checks() -> dict[str, Check]:
 #: and nothing more): field → (predicate of a valid value, what it must be)
 _BEYOND_SCHEMA: dict[str, tuple[Check, str]] = {
     "MultibandAccelerationFactor": (valid_multiband_factor, "an integer ≥ 1"),
+    # BIDS: a time "to delay the acquisition" of the next volume; none is negative
+    "DelayTime": (lambda value: value >= 0, "a number of seconds, 0 or more"),
 }
 
 

@@ -13,6 +13,7 @@ from slicetime.model import (
     WindowKind,
     before_start,
     past_end,
+    window_label,
 )
 from slicetime.numbers import as_written, plain, secs
 from slicetime.rules.registry import Hit
@@ -169,6 +170,16 @@ def _sidecar_order(schedule: SliceSchedule | None, times: tuple[float, ...]) -> 
 
 def exceeds_acquisition(record: RunRecord) -> Iterator[Hit]:
     timing = record.timing
+    delay = timing.schedule.delay_time if timing.schedule is not None else None
+    tr = timing.repetition_time
+    if delay is not None and tr is not None and delay >= tr \
+            and timing.unit("RepetitionTime") == "s":
+        # no window is left (SliceSchedule.window ignores such a DelayTime)
+        name = window_label(WindowKind.REPETITION, timing.repetition_origin)
+        yield Hit(f"DelayTime {secs(delay)} is not shorter than {name} ({secs(tr)}): it "
+                  "leaves no time to acquire the slices", "DelayTime",
+                  {"DelayTime": delay, "RepetitionTime": tr})
+        return
     window, name, times = timing.window, timing.window_name, timing.times
     if times is None or window is None or timing.window_kind is WindowKind.REPETITION \
             or record.timing_origin != "sidecar" or _in_ms(record) or not timing.outside:
