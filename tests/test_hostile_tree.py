@@ -319,3 +319,30 @@ def test_text_report_does_not_pass_terminal_controls(tmp_path: Path) -> None:
     assert result.exit_code == 0
     # ECMA-48 (from memory): ESC and BEL start and end terminal control sequences
     assert "\x1b" not in result.stdout and "\x07" not in result.stdout
+
+
+def test_verify_and_the_name_finding_escape_a_name_that_is_not_utf8(tmp_path: Path) -> None:
+    # POSIX file names are bytes; Python carries a byte that is not UTF-8 as a lone
+    # surrogate (PEP 383), which no screen can print: every screen shows it as the same
+    # visible escape \xe9, as the audit's run line does
+    root = tmp_path / "ds"
+    write_description(root)
+    run = write_run(root, FUNC + "sub-01_task-rest_bold.nii.gz", SHAPE, sidecar=_own_timing())
+    folder = os.fsencode(run.parent)
+    try:
+        os.rename(run, folder + b"/sub-01_task-caf\xe9_bold.nii.gz")
+        os.rename(run.with_name("sub-01_task-rest_bold.json"),
+                  folder + b"/sub-01_task-caf\xe9_bold.json")
+    except OSError:  # pragma: no cover - file systems that require UTF-8 names
+        pytest.skip("the file system refuses names that are not UTF-8")
+    image = os.fsdecode(folder + b"/sub-01_task-caf\xe9_bold.nii.gz")
+    env = {**os.environ, "COLUMNS": "200"}
+    verified = subprocess.run([sys.executable, "-m", "slicetime", "verify", image],
+                              capture_output=True, env=env)
+    out = verified.stdout.decode("utf-8")  # strict: a raw byte would fail here
+    assert "sub-01_task-caf\\xe9_bold.nii.gz" in out, out
+    audited = subprocess.run([sys.executable, "-m", "slicetime", "audit", str(root),
+                              "--no-progress"], capture_output=True, env=env)
+    text = audited.stdout.decode("utf-8")
+    named = [line for line in text.splitlines() if "file/bad-run-name" in line]
+    assert named and "\\udce9" not in named[0] and "caf\\xe9" in named[0], text

@@ -12,6 +12,7 @@ from __future__ import annotations
 from collections.abc import Sequence
 from typing import TYPE_CHECKING
 
+from slicetime.interfaces.safe_text import xml_safe
 from slicetime.interfaces.screen import FINDING_INDENT, ellipsis, shorten_path
 from slicetime.words import count
 
@@ -69,7 +70,8 @@ def run_lines(outcome: VerifyOutcome, width: int | None, *, unicode: bool = True
     """The line (verdict, file) and the indented reason line of one run."""
     verdict = outcome.finding.code.split("/")[1]
     room = None if width is None else width - VERDICT_PAD
-    head = f"{verdict:<{VERDICT_PAD}}{shorten_path(outcome.path, room, unicode=unicode)}"
+    path = xml_safe(outcome.path)  # a name's control characters and non-UTF-8 bytes escaped
+    head = f"{verdict:<{VERDICT_PAD}}{shorten_path(path, room, unicode=unicode)}"
     inner = None if width is None else width - FINDING_INDENT
     reason = reason_line(outcome, inner, unicode=unicode)
     lines = [head]
@@ -81,10 +83,11 @@ def run_lines(outcome: VerifyOutcome, width: int | None, *, unicode: bool = True
 def unreadable_lines(file: str, message: str, width: int | None, *, unicode: bool = True
                      ) -> list[str]:
     room = None if width is None else width - VERDICT_PAD
-    lines = [f"{'unreadable':<{VERDICT_PAD}}{shorten_path(file, room, unicode=unicode)}"]
+    shown = shorten_path(xml_safe(file), room, unicode=unicode)
+    lines = [f"{'unreadable':<{VERDICT_PAD}}{shown}"]
     inner = None if width is None else width - FINDING_INDENT
     tail = message.split(": ", 1)[-1] if message.startswith(file) else message
-    lines.append(" " * FINDING_INDENT + _fit(tail, inner, unicode))
+    lines.append(" " * FINDING_INDENT + _fit(xml_safe(tail), inner, unicode))
     return lines
 
 

@@ -163,26 +163,26 @@ def run_name_problem(name: str) -> str | None:
         return "not a NIfTI name (.nii or .nii.gz)"
     extension = name[len(stem):]
     if extension not in IMAGE_EXTENSIONS:
-        return f"the extension {extension!r} is not .nii or .nii.gz"
+        return f"the extension '{extension}' is not .nii or .nii.gz"
     if "." in stem:
         part = next(p for p in stem.split("_") if "." in p)
-        return f"{part!r} holds a '.': labels are letters and digits only, and a name has " \
+        return f"'{part}' holds a '.': labels are letters and digits only, and a name has " \
             "one extension"
     *pairs, suffix = stem.split("_")
     seen: set[str] = set()
     for pair in pairs:
         key, dash, value = pair.partition("-")
         if not dash:
-            return f"{pair!r} is not a key-value entity (key-label)"
+            return f"'{pair}' is not a key-value entity (key-label)"
         if "-" in value:
-            return f"{pair!r} holds more than one '-': a label is letters and digits only"
+            return f"'{pair}' holds more than one '-': a label is letters and digits only"
         if not _ALNUM.match(key) or not _ALNUM.match(value):
-            return f"{pair!r}: keys and labels are letters and digits only"
+            return f"'{pair}': keys and labels are letters and digits only"
         if key in seen:
-            return f"the entity {key!r} appears twice"
+            return f"the entity '{key}' appears twice"
         seen.add(key)
     if not _ALNUM.match(suffix):
-        return f"the suffix {suffix!r} is not letters and digits only"
+        return f"the suffix '{suffix}' is not letters and digits only"
     if not pairs or not pairs[0].startswith("sub-"):
         return "a run's name starts with sub-<label>"
     return None

@@ -17,7 +17,7 @@ def bad_run_name(record: RunRecord) -> Iterator[Hit]:
     problem = run_name_problem(name)
     if problem is not None:
         yield Hit(
-            f"{name!r} is not a valid BIDS run name: {problem}",
+            f"'{name}' is not a valid BIDS run name: {problem}",
             None,
             {"name": name, "problem": problem},
             file=record.path,

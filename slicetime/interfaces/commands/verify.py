@@ -40,6 +40,7 @@ def verify(files: tuple[Path, ...], fmt: str, fail_on: str, jobs: int | None,
     2 when a file cannot be read.
     """
     from slicetime.interfaces.report_json import dumps, verdict_of, verify_object
+    from slicetime.interfaces.safe_text import xml_safe
     from slicetime.interfaces.screen import unicode_wanted, width_for
     from slicetime.interfaces.verify_screen import run_lines, summary_line, unreadable_lines
     from slicetime.model import Severity
@@ -59,7 +60,7 @@ def verify(files: tuple[Path, ...], fmt: str, fail_on: str, jobs: int | None,
     unreadable = [{"file": r.file, "code": r.code or "file/unreadable",
                    "message": r.message or r.file} for r in results if r.outcome is None]
     for item in unreadable:
-        say(f"slicetime: {item['message']}", err=True)
+        say(f"slicetime: {xml_safe(item['message'])}", err=True)
     if fmt == "json":
         click.echo(dumps(verify_object(outcomes, unreadable)))
     else:
