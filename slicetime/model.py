@@ -431,6 +431,13 @@ class HeaderInfo:
     def n_volumes(self) -> int:
         return self.shape[3] if len(self.shape) >= 4 else 1
 
+    @property
+    def is_four_d(self) -> bool:
+        """Four dimensions, or more whose extents past the fourth are all 1 (``dim[0]``
+        5 with ``dim[5]`` 1 stores exactly the bytes of the 4-D image, NIfTI-1: the data
+        are laid out dimension by dimension, the first fastest)."""
+        return len(self.shape) >= 4 and all(d == 1 for d in self.shape[4:])
+
 
 @dataclass(frozen=True)
 class TimingProblem:

@@ -635,3 +635,33 @@ def test_outputs_written_with_the_former_key_spelling_are_still_up_to_date(
     sidecar.write_text(json.dumps(data, indent=2))
     again = run_cli("correct", root, "--out", out, "--format", "json")
     assert again.exit_code == 0 and json.loads(again.stdout)["runs"][0]["status"] == "up-to-date"
+
+
+def test_a_trailing_dimension_of_one_is_the_four_d_run(tmp_path: Path) -> None:
+    # NIfTI-1: dim[0] = 5 with dim[5] = 1 stores the same bytes as the 4-D image (the
+    # data are laid out with the first dimension fastest), and the audit accepts it; so
+    # correct must too, with the output nibabel reads equal to the 4-D run's output
+    rng = np.random.default_rng(0)
+    data = rng.normal(100, 5, size=(4, 4, 6, 12)).astype(np.float32)
+    times = [float(t) for t in slice_timing(Protocol(n_slices=6, order="interleaved",
+                                                    repetition_time=2.0))]
+    outs = []
+    for name, array in (("four", data), ("five", data[..., None])):
+        root = tmp_path / name
+        write_description(root)
+        run = root / "sub-01/func/sub-01_task-x_bold.nii"
+        run.parent.mkdir(parents=True)
+        image = nib.Nifti1Image(array, np.eye(4))
+        image.header.set_xyzt_units("mm", "sec")
+        image.header["pixdim"][4] = 2.0
+        nib.save(image, run)
+        (run.parent / "sub-01_task-x_bold.json").write_text(
+            json.dumps({"RepetitionTime": 2.0, "SliceTiming": times}))
+        out = tmp_path / f"{name}-out"
+        result = CliRunner().invoke(cli, ["correct", str(root), "--out", str(out),
+                                          "--no-progress"])
+        assert result.exit_code == 0, result.output
+        outs.append(nib.load(next(out.rglob("*_desc-*_bold.nii"))))
+    assert outs[1].shape == (4, 4, 6, 12, 1)  # the header's dimensions kept
+    np.testing.assert_array_equal(np.asarray(outs[1].dataobj)[..., 0],
+                                  np.asarray(outs[0].dataobj))

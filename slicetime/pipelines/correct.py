@@ -361,7 +361,7 @@ def _refusal(
         raise CorrectionError(f"{problem}, so the run is refused", code=SCALING_CODE,
                               field="scl_inter")
     shape = record.header.shape
-    short = too_few_volumes(shape[3]) if len(shape) == 4 else None
+    short = too_few_volumes(shape[3]) if record.header.is_four_d else None
     if short is not None:
         raise CorrectionError(short, code=TOO_FEW_CODE, field="dim")
     # a finding the lab policy ignores is hidden from the reports, not made trustworthy:
@@ -439,7 +439,7 @@ def _plan(record: RunRecord, options: CorrectOptions, engine: Engine) -> Resampl
     """The run's resampling plan, after the checks of its image's shape and type."""
     header, schedule = record.header, record.schedule
     assert header is not None and schedule is not None
-    if len(header.shape) != 4:
+    if not header.is_four_d:
         raise CorrectionError(
             f"correction needs a 4-D image; this one has {len(header.shape)} dimensions "
             f"{list(header.shape)} (dim)"

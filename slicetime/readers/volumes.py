@@ -264,7 +264,7 @@ class VolumeReader:
         self, path: Path, header: HeaderInfo, shown: str, *, threads: int = 1,
         checksum: bool = False, decode_blocks: int = 2,
     ) -> None:
-        if len(header.shape) != 4:
+        if not header.is_four_d:
             raise ReadError(
                 "file/unsupported",
                 shown,

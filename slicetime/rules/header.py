@@ -25,7 +25,7 @@ def series_shape(record: RunRecord) -> Iterator[Hit]:
             f"the image has shape {list(header.shape)}: not a time series",
             "dim", {"shape": list(header.shape)}, file=record.path,
         )
-    elif len(header.shape) > 4 and any(d > 1 for d in header.shape[4:]):
+    elif not header.is_four_d:
         yield Hit(
             f"the image has shape {list(header.shape)}: more than four dimensions",
             "dim", {"shape": list(header.shape)}, file=record.path,
