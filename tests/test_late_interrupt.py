@@ -138,3 +138,12 @@ def test_a_ctrl_c_during_corrects_audit_says_so_in_one_line(
     assert lines == ["slicetime: interrupted while the runs were audited, before any run "
                      "was corrected; nothing written (rerun the same command)"]
     assert not out.exists()  # what it says is so
+
+
+def test_a_ctrl_c_during_verify_says_what_was_done(dataset: Path) -> None:
+    # as the audit says it: how many runs were done, and that no report was written
+    stopped = run("verify:run", "verify", str(dataset / RUN), "--jobs", "1")
+    assert stopped.returncode == 130, stopped.stderr
+    assert stopped.stderr.strip().splitlines() == [
+        "slicetime: interrupted; 0 of 1 runs verified, no report written"]
+    assert stopped.stdout == ""

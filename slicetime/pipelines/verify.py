@@ -384,6 +384,9 @@ def verify_file(file: str) -> FileResult:
 
 
 def _verify_chunk(files: Sequence[str]) -> list[FileResult]:
+    from slicetime.pipelines.signals import test_point
+
+    test_point("verify:run")
     return [verify_file(f) for f in files]
 
 

@@ -44,6 +44,7 @@ def verify(files: tuple[Path, ...], fmt: str, fail_on: str, jobs: int | None,
     from slicetime.interfaces.screen import unicode_wanted, width_for
     from slicetime.interfaces.verify_screen import run_lines, summary_line, unreadable_lines
     from slicetime.model import Severity
+    from slicetime.pipelines.executor import Interrupted
     from slicetime.pipelines.verify import verify_files
     from slicetime.readers.dataset import given_run
 
@@ -54,8 +55,14 @@ def verify(files: tuple[Path, ...], fmt: str, fail_on: str, jobs: int | None,
     files = tuple(given_run(file) for file in files)  # a sidecar: its run; a .bval: exit 2
     if jobs is None and scheduler is None and len(files) == 1:
         jobs = 1
-    with run_executor(jobs, scheduler, light=False, small_results=True) as executor:
-        results = verify_files([str(f) for f in files], executor)
+    try:
+        with run_executor(jobs, scheduler, light=False, small_results=True) as executor:
+            results = verify_files([str(f) for f in files], executor)
+    except Interrupted as stop:  # Ctrl-C: what was done, in one line, as audit says it
+        finished = sum(1 for r in stop.results if r is not None)
+        say(f"slicetime: interrupted; {finished} of {len(stop.results)} runs verified, "
+            "no report written", err=True)
+        sys.exit(130)
     outcomes = [r.outcome for r in results if r.outcome is not None]
     unreadable = [{"file": r.file, "code": r.code or "file/unreadable",
                    "message": r.message or r.file} for r in results if r.outcome is None]
