@@ -481,3 +481,25 @@ def test_the_reaudit_after_apply_uses_the_commands_policy_and_source_map(
     assert again["policy_file"] == planned["policy_file"] == policy
     assert again["source"] == planned["source"]
     assert again["source"].mapping  # the map was read and passed on
+
+
+def test_fix_of_one_run_leaves_the_other_runs_findings_out_of_its_summary(
+        tmp_path: Path) -> None:
+    # BIDS: SliceTiming in seconds (the ms list is the fixable finding); the other
+    # run's negative time (timing/negative, not a sidecar repair) belongs to a run the
+    # command was not asked about, so its plan does not count it
+    root = tmp_path / "ds"
+    write_description(root)
+    given = run_path("01")
+    write_run(root, given, SHAPE, tr=TR, sidecar={
+        "RepetitionTime": TR, "SliceTiming": [t * 1000 for t in interleaved()]})
+    other = interleaved()
+    other[3] = -0.5
+    write_run(root, run_path("02"), SHAPE, tr=TR,
+              sidecar={"RepetitionTime": TR, "SliceTiming": other})
+    assert "timing/negative" in codes_of(root, run_path("02"))
+    one = fix(root / given)
+    assert one.exit_code == 1  # changes planned in a dry run
+    assert "timing/units-ms" in one.output and "timing/negative" not in one.output
+    everything = fix(root)
+    assert "timing/negative ×1" in everything.output  # the whole dataset: counted

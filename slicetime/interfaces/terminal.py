@@ -325,23 +325,28 @@ def render_fix_plan(plan: FixPlan, console: Console, apply_hint: str | None = No
 
 
 def left_unfixed(plan: FixPlan) -> list[tuple[str, int, str]]:
-    """The errors and warnings of the plan's audit that no planned change repairs:
-    (code, how many, why), in code order. Why: fix repairs sidecar metadata only, so a
-    code it cannot repair says what to do instead; a repairable one it did not plan is
-    explained by the plan's notes."""
+    """The errors and warnings of the plan's audit, on the runs under the given paths,
+    that no planned change repairs: (code, how many, why), in code order (the runs the
+    plan was not asked about are not counted; the dataset's own findings only when every
+    run was given). Why: fix repairs sidecar metadata only, so a code it cannot repair
+    says what to do instead; a repairable one it did not plan is explained by the plan's
+    notes."""
     from slicetime.rules import RULES
 
     if plan.audit is None:
         return []
     repaired = {(r.root, r.run, r.code) for change in plan.changes for r in change.repairs}
+    given = plan.given
+    runs = [run for run in plan.audit.runs
+            if given is None or (run.record.root, run.record.path) in given]
     counts: dict[str, int] = {}
-    for run in plan.audit.runs:
+    for run in runs:
         for finding in run.findings:
             if finding.severity is Severity.NOTE or \
                     (run.record.root, run.record.path, finding.code) in repaired:
                 continue
             counts[finding.code] = counts.get(finding.code, 0) + 1
-    for finding in plan.audit.dataset_findings:
+    for finding in (plan.audit.dataset_findings if len(runs) == len(plan.audit.runs) else ()):
         if finding.severity is not Severity.NOTE:
             counts[finding.code] = counts.get(finding.code, 0) + 1
     out = []

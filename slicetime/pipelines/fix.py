@@ -151,6 +151,9 @@ class FixPlan:
     repaired_runs: dict[str, set[str]] = field(default_factory=dict)  # root -> runs
     #: every fixable finding under the given paths that no change repairs (exit 1)
     unplanned: list[Unplanned] = field(default_factory=list)
+    #: the runs (root, path) under the given paths: the audit also holds the rest of
+    #: their datasets (for inherited files and dataset rules), which the plan leaves be
+    given: frozenset[tuple[str, str]] | None = None
 
     def to_json(self) -> dict[str, Any]:
         return {
@@ -301,6 +304,7 @@ def plan_fix(
         raise FixError(problem)
     # the runs under the given paths, resolved once (realpath per run is file-system work)
     wanted = {(r.root, r.path) for r, _ in runs if _under(r, targets)}
+    plan.given = frozenset(wanted)
     repairs: list[Repair] = []
     for record, findings in runs:
         if (record.root, record.path) not in wanted or not {f.code for f in findings} & FIXABLE:
