@@ -460,3 +460,17 @@ def test_only_a_silent_part_of_the_tr_becomes_a_delay_time() -> None:
     timed = SliceSchedule(times=tuple(0.25 * z for z in range(8)),
                           volume_times=(0.0, 2.0, 4.5, 6.5))
     assert window_fields(timed, frozenset()) == {"FrameAcquisitionDuration": 2.0}
+
+
+def test_an_output_of_a_name_bids_would_refuse_keeps_desc_before_the_suffix() -> None:
+    # BIDS derivatives: desc is an entity, and entities come before the suffix
+    # (sub-<label>[_...]_desc-<label>_<suffix>); a name whose label BIDS refuses (a
+    # space, a byte that is not UTF-8) still gets it there, not after "_bold"
+    from slicetime.pipelines.outputs import output_name
+
+    assert output_name("sub-21_task-sp ace_bold.nii", "timealigned") == \
+        "sub-21_task-sp ace_desc-timealigned_bold.nii"
+    assert output_name("sub-22_task-caf\udce9_bold.nii.gz", "timealigned") == \
+        "sub-22_task-caf\udce9_desc-timealigned_bold.nii.gz"
+    assert output_name("sub-01_task-x_bold.nii.gz", "timealigned") == \
+        "sub-01_task-x_desc-timealigned_bold.nii.gz"  # a valid name, as before

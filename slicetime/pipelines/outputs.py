@@ -44,8 +44,11 @@ def output_name(name: str, desc: str) -> str:
     existing ``desc`` value is replaced.
     """
     parsed = parse_name(name)
-    if parsed is None:
+    if parsed is None:  # a name BIDS would not accept: desc still goes before the suffix
         stem, dot, ext = name.partition(".")
+        head, under, suffix = stem.rpartition("_")
+        if under:
+            return f"{head}_desc-{desc}_{suffix}{dot}{ext}"
         return f"{stem}_desc-{desc}{dot}{ext}"
     entities = {k: v for k, v in parsed.entities.items() if k != "desc"}
     entities["desc"] = desc
