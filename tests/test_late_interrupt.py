@@ -147,3 +147,19 @@ def test_a_ctrl_c_during_verify_says_what_was_done(dataset: Path) -> None:
     assert stopped.stderr.strip().splitlines() == [
         "slicetime: interrupted; 0 of 1 runs verified, no report written"]
     assert stopped.stdout == ""
+
+
+@pytest.mark.parametrize("apply", [True, False])
+def test_a_ctrl_c_while_fix_audits_for_its_plan_says_nothing_was_written(
+        dataset: Path, tmp_path: Path, apply: bool) -> None:
+    own = dataset / OWN
+    own.write_text(json.dumps({"TaskName": "hum", "RepetitionTime": TR,
+                               "SliceTiming": [t * 1000 for t in seconds()]}),
+                   encoding="utf-8")
+    before = own.read_bytes()
+    args = ["--apply", "--backup-dir", str(tmp_path / "backups")] if apply else []
+    stopped = run("fix:plan", "fix", str(dataset), *args)
+    assert stopped.returncode == 130, stopped.stderr
+    assert stopped.stderr.strip().splitlines() == [
+        "slicetime: interrupted while the runs were audited for the plan; nothing was written"]
+    assert own.read_bytes() == before and not (tmp_path / "backups").exists()

@@ -98,6 +98,7 @@ def fix(
     from slicetime.interfaces.safe_text import xml_safe
     from slicetime.interfaces.terminal import make_console, render_fix_plan
     from slicetime.pipelines import fix as fixing
+    from slicetime.pipelines.signals import test_point
 
     console = make_console()
     try:
@@ -114,11 +115,17 @@ def fix(
         else:
             _check_inputs(paths, plan_file if not do_apply else None, backup_dir,
                           [policy_file, source_map])
-            with run_executor(jobs, scheduler) as executor:
-                plan = fixing.plan_fix(list(paths), per_run=per_run, policy_file=policy_file,
-                                       executor=executor, consolidate=consolidate,
-                                       spread=spread,
-                                       source=source_settings(source_check, source_map))
+            try:
+                with run_executor(jobs, scheduler) as executor:
+                    test_point("fix:plan")
+                    plan = fixing.plan_fix(list(paths), per_run=per_run,
+                                           policy_file=policy_file, executor=executor,
+                                           consolidate=consolidate, spread=spread,
+                                           source=source_settings(source_check, source_map))
+            except KeyboardInterrupt:  # the audit for the plan: nothing is written yet
+                say("slicetime: interrupted while the runs were audited for the plan; "
+                    "nothing was written", err=True)
+                sys.exit(130)
             # the dry run names what --apply would refuse (one refusal writes nothing)
             plan.notes.extend(f"--apply would refuse it, and then write nothing: {line}"
                               for line in fixing.preflight(plan, replace_links,
