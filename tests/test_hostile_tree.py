@@ -286,17 +286,24 @@ def test_subprocess_with_memory_limit_and_timeout(
 # ---- known gaps, reported to the lead (strict: they fail loudly once fixed) -----------------
 
 
+def undecodable_run(root: Path, stem: str, new_stem: bytes) -> str:
+    """A run ``FUNC + stem`` with its sidecar, renamed to ``new_stem`` (bytes that are
+    not UTF-8); returns the image's path as Python carries it (PEP 383)."""
+    write_description(root)
+    run = write_run(root, FUNC + stem + ".nii.gz", SHAPE, sidecar=_own_timing())
+    folder = os.fsencode(run.parent)
+    try:
+        os.rename(run, folder + b"/" + new_stem + b".nii.gz")
+        os.rename(run.with_name(stem + ".json"), folder + b"/" + new_stem + b".json")
+    except OSError:  # pragma: no cover - file systems that require UTF-8 names
+        pytest.skip("the file system refuses names that are not UTF-8")
+    return os.fsdecode(folder + b"/" + new_stem + b".nii.gz")
+
+
 @pytest.fixture()
 def undecodable(tmp_path: Path) -> Path:
     root = tmp_path / "ds"
-    write_description(root)
-    run = write_run(root, FUNC + "plain_bold.nii.gz", SHAPE, sidecar=_own_timing())
-    folder = os.fsencode(run.parent)
-    try:
-        os.rename(run, folder + b"/raw\xff_bold.nii.gz")
-        os.rename(run.with_name("plain_bold.json"), folder + b"/raw\xff_bold.json")
-    except OSError:  # pragma: no cover - file systems that require UTF-8 names
-        pytest.skip("the file system refuses names that are not UTF-8")
+    undecodable_run(root, "plain_bold", b"raw\xff_bold")
     return root
 
 
@@ -326,16 +333,7 @@ def test_verify_and_the_name_finding_escape_a_name_that_is_not_utf8(tmp_path: Pa
     # surrogate (PEP 383), which no screen can print: every screen shows it as the same
     # visible escape \xe9, as the audit's run line does
     root = tmp_path / "ds"
-    write_description(root)
-    run = write_run(root, FUNC + "sub-01_task-rest_bold.nii.gz", SHAPE, sidecar=_own_timing())
-    folder = os.fsencode(run.parent)
-    try:
-        os.rename(run, folder + b"/sub-01_task-caf\xe9_bold.nii.gz")
-        os.rename(run.with_name("sub-01_task-rest_bold.json"),
-                  folder + b"/sub-01_task-caf\xe9_bold.json")
-    except OSError:  # pragma: no cover - file systems that require UTF-8 names
-        pytest.skip("the file system refuses names that are not UTF-8")
-    image = os.fsdecode(folder + b"/sub-01_task-caf\xe9_bold.nii.gz")
+    image = undecodable_run(root, "sub-01_task-rest_bold", b"sub-01_task-caf\xe9_bold")
     env = {**os.environ, "COLUMNS": "200"}
     verified = subprocess.run([sys.executable, "-m", "slicetime", "verify", image],
                               capture_output=True, env=env)
