@@ -384,7 +384,11 @@ def audit_stream(
         audit_chunk, policies=policies, verify=verify, source=source,
         store=SidecarStore(listings=listings))
     lost: Callable[[tuple[Path, Path], str], Any] = _lost_target
-    if prepare is not None:
+    # runs audited in this process are prepared here, with the one interner of the
+    # audit; a worker prepares its own and sends back only that (see _prepared_chunk)
+    here = prepare if prepare is not None and type(executor) in (Executor, type(None)) \
+        else _itself
+    if prepare is not None and here is _itself:
         job = functools.partial(_prepared_chunk, job=job, prepare=prepare)
         lost = functools.partial(_prepared_lost, prepare=prepare)
     shared = Interner()
@@ -413,7 +417,7 @@ def audit_stream(
                     item = result
                     facts = shared.adopt(item.facts, seen)
                 else:
-                    item = _prepare(result, _itself, shared)
+                    item = _prepare(result, here, shared)
                     facts = item.facts
                 totals.ignored += item.ignored
                 failed_before += item.failed
