@@ -108,9 +108,7 @@ def _scan(value: Any) -> int:
         found = max((_scan(getattr(value, f.name)) for f in dataclasses.fields(value)),
                     default=0)
         return 2 if found else 0  # not rebuilt by _put
-    if isinstance(value, (Mapping, list, tuple, set, frozenset)):
-        return 2 if "\0" in repr(value) else 0
-    return 2 if "\0" in repr(value) else 0
+    return 2 if "\0" in repr(value) else 0  # any other value: not rebuilt either
 
 
 def _put(value: Any, names: Mapping[str, str]) -> Any:
