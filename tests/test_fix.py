@@ -503,3 +503,19 @@ def test_fix_of_one_run_leaves_the_other_runs_findings_out_of_its_summary(
     assert "timing/units-ms" in one.output and "timing/negative" not in one.output
     everything = fix(root)
     assert "timing/negative ×1" in everything.output  # the whole dataset: counted
+
+
+def test_milliseconds_judged_against_the_headers_tr_say_why_they_are_not_planned(
+        tmp_path: Path) -> None:
+    # BIDS: RepetitionTime is a sidecar field; without it the only TR is the NIfTI
+    # header's pixdim[4], whose unit (xyzt_units) may be wrong, so the division by
+    # 1000 is not planned, and the reason names that TR and what to do
+    root = tmp_path / "ds"
+    write_description(root)
+    rel = run_path("01")
+    write_run(root, rel, SHAPE, tr=TR,
+              sidecar={"SliceTiming": [t * 1000 for t in interleaved()]})
+    result = fix(root)
+    assert result.exit_code == 1  # a fixable finding not planned
+    line = next(x for x in result.output.splitlines() if "timing/units-ms not planned" in x)
+    assert "header's pixdim[4]" in line and "add RepetitionTime to the sidecar" in line

@@ -67,7 +67,7 @@ from slicetime.readers.sidecar import MAX_SIDECAR_BYTES
 from slicetime.readers.source import SourceOptions
 from slicetime.rules.correction import DOUBTED_FIELDS, undecided_doubt, undecided_reason
 from slicetime.rules.registry import RENAMED, known_codes
-from slicetime.rules.repairs import FIXABLE, Repair, plan_consensus, plan_run
+from slicetime.rules.repairs import FIXABLE, Repair, plan_consensus, plan_run, window_distrust
 
 PLAN_FORMAT = "slicetime-fix-plan"
 #: the shipped schema of a saved plan (``slicetime/data/fix-plan.schema.json``)
@@ -401,9 +401,11 @@ def _unplanned(
             continue
         for finding in findings:
             if finding.code in FIXABLE and (*key, finding.code) not in planned:
+                why = reasons.get((*key, finding.code))
+                if why is None and finding.code == "timing/units-ms":
+                    why = window_distrust(record)
                 plan.unplanned.append(Unplanned(
-                    record.root, record.path, finding.code,
-                    reasons.get((*key, finding.code), UNSETTLED)))
+                    record.root, record.path, finding.code, why or UNSETTLED))
 
 
 def _place(

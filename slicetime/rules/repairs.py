@@ -143,6 +143,18 @@ def _trusted_window(record: RunRecord) -> tuple[float, float] | None:
     return tr, tr
 
 
+def window_distrust(record: RunRecord) -> str | None:
+    """Why a millisecond verdict cannot be repaired here, when the reason is the window
+    it was judged against (:func:`_trusted_window`); None when that window is trusted
+    or the reason is another."""
+    if _trusted_window(record) is not None:
+        return None
+    if record.timing.repetition_origin == "header":
+        return ("the only TR is the header's pixdim[4], whose unit may be wrong: add "
+                "RepetitionTime to the sidecar, then fix again")
+    return None
+
+
 def _units_ms(record: RunRecord) -> list[Repair]:
     """Every SliceTiming entry ÷ 1000, when the resolved verdict says milliseconds and
     the window it was judged against is trusted."""
@@ -416,4 +428,4 @@ def plan_consensus(
     return repairs
 
 
-__all__ = ["DECIMALS", "FIXABLE", "Repair", "plan_consensus", "plan_run"]
+__all__ = ["DECIMALS", "FIXABLE", "Repair", "plan_consensus", "plan_run", "window_distrust"]
