@@ -519,3 +519,14 @@ def test_milliseconds_are_read_by_the_projects_one_owner_of_units(tmp_path: Path
 def test_the_consistent_verdict_is_a_documented_code() -> None:
     code, out, _ = _cli("explain", "verify/consistent")
     assert code == 0 and "single it out" in out
+
+
+def test_cli_a_three_d_image_is_not_called_short_of_volumes(tmp_path: Path) -> None:
+    # NIfTI-1: dim[0] = 3 is a single volume, not a time series; verify says so as the
+    # audit's file/series-shape does, instead of "fewer than 30 volumes"
+    path = write_run(tmp_path, "sub-01/func/sub-01_task-x_bold.nii", shape=(8, 8, 12),
+                     tr=None, sidecar={"RepetitionTime": TR,
+                                       "SliceTiming": list(_interleaved(12))})
+    code, out, _ = _cli("verify", str(path), "--format", "json")
+    reason = json.loads(out)["runs"][0]["finding"]["evidence"]["reason"]
+    assert code == 0 and "not a 4-D time series" in reason and "volumes" not in reason

@@ -260,9 +260,12 @@ def verify_record(record: RunRecord, *, seed: int = 0) -> VerifyOutcome:
                             "is not in seconds (slicetime audit reports it)")
     if schedule.volume_times is not None:
         return _undecidable(record, "volumes are not evenly spaced (VolumeTiming)")
-    if not header.is_four_d or header.n_volumes < ev.MIN_VOLUMES:
+    if not header.is_four_d:  # as the audit's file/series-shape says it
+        return _undecidable(record, f"the image is not a 4-D time series (shape "
+                            f"{list(header.shape)})", volumes=1)
+    if header.n_volumes < ev.MIN_VOLUMES:
         return _undecidable(record, f"fewer than {ev.MIN_VOLUMES} volumes",
-                            volumes=header.n_volumes if header.is_four_d else 1)
+                            volumes=header.n_volumes)
     if schedule.n_slices < 3:
         return _undecidable(record, "fewer than 3 slices")
     tr = float(schedule.repetition_time)
