@@ -163,3 +163,17 @@ def test_a_ctrl_c_while_fix_audits_for_its_plan_says_nothing_was_written(
     assert stopped.stderr.strip().splitlines() == [
         "slicetime: interrupted while the runs were audited for the plan; nothing was written"]
     assert own.read_bytes() == before and not (tmp_path / "backups").exists()
+
+
+def test_a_ctrl_c_between_two_runs_names_the_one_left_in_the_singular(
+        dataset: Path, tmp_path: Path) -> None:
+    second = "sub-02/func/sub-02_task-hum_bold.nii.gz"
+    data = np.random.default_rng(1).normal(100, 5, size=(4, 4, 6, 8)).astype(np.float32)
+    write_run(dataset, second, data=data, dtype=np.float32, tr=TR,
+              sidecar={"TaskName": "hum", "RepetitionTime": TR, "SliceTiming": seconds()})
+    out = tmp_path / "aligned"
+    stopped = run(f"correct:run:{second}", "correct", str(dataset), "--out", str(out),
+                  "--jobs", "1", "--no-progress")
+    assert stopped.returncode == 130, stopped.stderr
+    assert "1 run not finished (rerun the same command to finish it)" in stopped.stderr
+    assert len(list(out.rglob("*_desc-timealigned_bold.nii.gz"))) == 1  # what it says

@@ -74,7 +74,11 @@ from slicetime.readers.volumes import (
 def _correct_chunk(
     items: Sequence[tuple[RunResult, str]], options: CorrectOptions
 ) -> list[RunOutcome]:
-    return [correct_run(run, options, name) for run, name in items]
+    outcomes = []
+    for run, name in items:
+        test_point(f"correct:run:{run.record.path}")  # tests: Ctrl-C before this run
+        outcomes.append(correct_run(run, options, name))
+    return outcomes
 
 
 def correct_paths(

@@ -173,6 +173,7 @@ def _interrupted(stop: KeyboardInterrupt) -> NoReturn:
             f"({count(stop.not_finished, 'run')} to do: rerun the same command)", err=True)
         sys.exit(130)
     render_correct(stop.result, make_console(sys.stderr))
+    them = "it" if stop.not_finished == 1 else "them"
     say(f"slicetime: interrupted; {count(stop.not_finished, 'run')} not finished "
-        "(rerun the same command to finish them)", err=True)
+        f"(rerun the same command to finish {them})", err=True)
     sys.exit(130)
