@@ -99,3 +99,18 @@ def test_a_sidecar_that_is_a_folder_is_reported(tmp_path: Path) -> None:
     assert len(found) == 1 and found[0]["code"] == "file/unreadable"
     assert "is a directory, not a JSON file" in found[0]["message"]
     assert code == 1
+
+
+@pytest.mark.parametrize("command", ["audit", "verify", "show", "fix"])
+def test_a_file_that_is_no_nifti_image_given_by_name_is_not_a_run(
+        run: Path, command: str) -> None:
+    # NIfTI-1/2 images are .nii or .nii.gz (BIDS: the data file extensions of func
+    # runs); the walk takes nothing else for a run, so a file named otherwise and given
+    # by name is a usage mistake: one line naming it, exit 2 (README, exit status)
+    notes = run.with_name("notes.txt")
+    notes.write_text("scanner log\n")
+    code, out, err = invoke(command, str(notes))
+    assert code == 2
+    lines = err.strip().splitlines()
+    assert len(lines) == 1 and "not a run" in lines[0] and str(notes) in lines[0]
+    assert "not-nifti" not in out + err

@@ -157,8 +157,9 @@ def given_run(path: Path) -> Path:
     A folder or a run image is returned as given; a run's own sidecar
     (``x_bold.json``) stands for the image beside it (``x_bold.nii.gz`` or
     ``x_bold.nii``). A file that accompanies runs (``.bval``, ``.bvec``,
-    ``_events.tsv``, ...) or a sidecar with no image beside it is no run: raises
-    ``ReadError("file/not-a-run")``, one line naming the file. A path that does not
+    ``_events.tsv``, ...), a sidecar with no image beside it, or any other file whose
+    name is not a NIfTI image's is no run: raises ``ReadError("file/not-a-run")``, one
+    line naming the file. A path that does not
     exist is returned as given (the callers report it as missing).
     """
     name = path.name
@@ -182,7 +183,10 @@ def given_run(path: Path) -> Path:
                         f"{shown}: not a run: a sidecar without a run image beside it (no "
                         f"{stem}.nii.gz or {stem}.nii); an inherited sidecar serves several "
                         "runs: give one of them, or the folder")
-    return path
+    # any other name is no NIfTI image: the walk would never take it for a run either
+    raise ReadError("file/not-a-run", shown, None,
+                    f"{shown}: not a run: a run is a NIfTI image (.nii or .nii.gz) or its "
+                    "own sidecar (.json)")
 
 
 def _run_beside(file: Path) -> str:
