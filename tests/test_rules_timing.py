@@ -181,3 +181,23 @@ def test_missing_timing_and_tr() -> None:
 def test_three_dimensional_bold() -> None:
     assert "file/series-shape" in codes({"RepetitionTime": 2.0},
                                         header_info((8, 8, 12), tr=None))
+
+
+def test_milliseconds_fix_will_not_repair_do_not_promise_the_repair() -> None:
+    # BIDS: RepetitionTime is a sidecar field; the NIfTI-1 header's pixdim[4] is in the
+    # unit xyzt_units names, which may be wrong, so fix does not divide against it
+    # (rules.repairs.window_distrust): the audit's hint must not say fix does it
+    from slicetime.rules.repairs import window_distrust
+
+    seconds = slice_timing(Protocol(n_slices=12, order="interleaved", repetition_time=2.0))
+    header_only = record({"SliceTiming": [t * 1000 for t in seconds]}, H)
+    ms = [f for f in check_run(header_only) if f.code == "timing/units-ms"]
+    reason = window_distrust(header_only)
+    assert reason is not None and len(ms) == 1
+    assert "fix does this" not in (ms[0].hint or "")
+    assert reason in (ms[0].hint or "") and "will not" in (ms[0].hint or "")
+    # with the sidecar's RepetitionTime the repair is planned: the catalogue's hint stays
+    side = record({"RepetitionTime": 2.0, "SliceTiming": [t * 1000 for t in seconds]}, H)
+    assert window_distrust(side) is None
+    hint = next(f.hint for f in check_run(side) if f.code == "timing/units-ms")
+    assert "slicetime fix does this" in (hint or "")

@@ -17,6 +17,7 @@ from slicetime.model import (
 )
 from slicetime.numbers import as_written, plain, secs
 from slicetime.rules.registry import Hit
+from slicetime.rules.repairs import window_distrust
 from slicetime.schemes.resolve import is_number, valid_multiband_factor
 from slicetime.words import count
 
@@ -136,6 +137,9 @@ def units_ms(record: RunRecord) -> Iterator[Hit]:
         return
     ev = verdict.evidence
     window, name = record.timing.window, record.timing.window_name
+    # the catalogue's hint says fix divides; where fix will not (its one owner says why),
+    # the hint says what a person does instead, so the audit and fix agree
+    distrust = window_distrust(record)
     yield Hit(
         f"SliceTiming goes up to {as_written(ev['max'])}, above {name} ({secs(window)}); "
         f"divided by 1000 it fits"
@@ -144,6 +148,8 @@ def units_ms(record: RunRecord) -> Iterator[Hit]:
         {"max": ev["max"], "window": window, "window_from": name,
          "as_seconds_max": ev["as_seconds_max"],
          "scheme_in_seconds": record.scheme.label if record.scheme is not None else None},
+        hint=None if distrust is None else
+        f"Divide every SliceTiming entry by 1000; slicetime fix will not, because {distrust}.",
     )
 
 
