@@ -14,24 +14,23 @@ The checks themselves are functions of the rules layer, bound to their codes in 
 table (:mod:`slicetime.rules.bindings`); a check reports :class:`Hit` values, which
 :func:`to_finding` turns into findings of its code.
 
-Pure: no I/O but reading the package's own table once.
+Pure: no I/O but reading the package's own table once (through a cache of the parsed
+table in the user's cache folder: see :func:`_parsed_table`).
 """
 
 from __future__ import annotations
 
+import contextlib
 import dataclasses
+import marshal
+import os
 import sys
+import zlib
 from collections.abc import Mapping
 from dataclasses import dataclass
-from importlib import resources
 from typing import Any, Literal, get_args
 
 from slicetime.model import Finding, RunView, Severity
-
-if sys.version_info >= (3, 11):
-    import tomllib
-else:  # pragma: no cover
-    import tomli as tomllib
 
 Scope = Literal["run", "dataset", "reader"]
 
@@ -122,9 +121,68 @@ def _declaration(code: str, entry: Mapping[str, Any]) -> Rule:
                 entry.get("timing_in_doubt", False))
 
 
+def package_data(name: str) -> bytes:
+    """The bytes of ``slicetime/data/<name>``, through the package's loader (as
+    :mod:`importlib.resources` would read them, without its 20 ms of imports)."""
+    loader = __spec__.loader if __spec__ is not None else None
+    path = os.path.join(os.path.dirname(__file__), "data", name)
+    get_data = getattr(loader, "get_data", None)
+    if get_data is None:  # pragma: no cover - every file-system or zip loader has it
+        with open(path, "rb") as fh:
+            return fh.read()
+    data: bytes = get_data(path)
+    return data
+
+
+def _cache_path(source: bytes) -> str:
+    """Where the parsed catalogue ``source`` is kept: the user's cache folder
+    (``$XDG_CACHE_HOME``, else ``~/.cache``; ``%LOCALAPPDATA%`` on Windows), a file
+    named for the running Python (``marshal``'s format may change between versions) and
+    for the table's checksum and size, so installations with different catalogues do
+    not take turns rewriting one file."""
+    base = os.environ.get("XDG_CACHE_HOME") or (
+        os.environ.get("LOCALAPPDATA", "") if os.name == "nt" else ""
+    ) or os.path.join(os.path.expanduser("~"), ".cache")
+    key = f"{zlib.crc32(source):08x}-{len(source)}"
+    return os.path.join(base, "slicetime", f"codes-{key}.{sys.implementation.cache_tag}.marshal")
+
+
+def _parsed_table(source: bytes) -> dict[str, Any]:
+    """The TOML table ``source`` parsed, from the cache when the cache was made from
+    exactly these bytes (parsing costs about 10 ms a start; the cache's check and load
+    well under 1 ms). The cache holds the source bytes beside the table and is used only
+    when they are equal, so a stale, edited or corrupt cache file can only cost a parse.
+    It is written to a temporary name, then renamed; where it cannot be written (no home,
+    a read-only one) the table is parsed at every start, as it was before the cache."""
+    path = _cache_path(source)
+    try:
+        with open(path, "rb") as fh:
+            cached = marshal.loads(fh.read())
+        if (type(cached) is tuple and len(cached) == 2 and cached[0] == source
+                and type(cached[1]) is dict):
+            table: dict[str, Any] = cached[1]
+            return table
+    except (OSError, EOFError, ValueError, TypeError):
+        pass
+    if sys.version_info >= (3, 11):
+        import tomllib
+    else:  # pragma: no cover
+        import tomli as tomllib
+    table = tomllib.loads(source.decode("utf-8"))
+    temporary = f"{path}.{os.getpid()}.tmp"
+    try:
+        os.makedirs(os.path.dirname(path), exist_ok=True)
+        with open(temporary, "wb") as fh:
+            fh.write(marshal.dumps((source, table)))
+        os.replace(temporary, path)
+    except (OSError, ValueError):  # unwritable, or a value marshal cannot keep
+        with contextlib.suppress(OSError):
+            os.unlink(temporary)
+    return table
+
+
 def _load() -> tuple[dict[str, Rule], dict[str, str]]:
-    table = tomllib.loads(resources.files("slicetime").joinpath(CATALOGUE_FILE)
-                          .read_text("utf-8"))
+    table = dict(_parsed_table(package_data(CATALOGUE_FILE.removeprefix("data/"))))
     renamed = dict(table.pop("renamed", {}))
     rules = {code: _declaration(code, entry) for code, entry in table.items()}
     for old, new in renamed.items():

@@ -245,3 +245,49 @@ print(",".join(missing))
         out = subprocess.run([sys.executable, "-c", script, name], capture_output=True,
                              text=True, check=True, cwd=PACKAGE.parent).stdout.strip()
         assert out == "", f"{name} emits unregistered codes when imported alone: {out}"
+
+
+def test_the_catalogue_cache_gives_the_table_the_toml_parser_gives(
+        tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    """The parsed catalogue kept in the user's cache folder is used only when it was made
+    from the same bytes; a stale or corrupt cache costs a parse, never another table."""
+    import tomllib
+
+    from slicetime import codes
+
+    monkeypatch.setenv("XDG_CACHE_HOME", str(tmp_path))
+    source = codes.package_data("codes.toml")
+    # reference: the standard library's TOML parser (PEP 680) on the shipped file
+    expected = tomllib.loads(source.decode("utf-8"))
+    assert codes._parsed_table(source) == expected  # parsed, then written
+    cache = Path(codes._cache_path(source))
+    assert cache.is_file() and cache.is_relative_to(tmp_path)
+    assert codes._parsed_table(source) == expected  # read back from the cache
+
+    # a cache whose recorded source differs (a stale file under this name) is not used
+    import marshal
+    cache.write_bytes(marshal.dumps((b"other", {"area/stale": {}})))
+    assert codes._parsed_table(source) == expected
+    assert marshal.loads(cache.read_bytes())[0] == source  # and was rewritten
+    cache.write_bytes(b"\x00 not marshal data")
+    assert codes._parsed_table(source) == expected
+
+    # an edited catalogue is parsed anew (a file of its own, the old one left alone)
+    edited = source + b'\n["area/extra"]\ntitle = "x"\n'
+    assert codes._parsed_table(edited) == tomllib.loads(edited.decode("utf-8"))
+    assert codes._cache_path(edited) != str(cache)
+
+
+def test_the_catalogue_loads_where_no_cache_can_be_written(
+        tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    import tomllib
+
+    from slicetime import codes
+
+    blocker = tmp_path / "file"
+    blocker.write_text("a file where the cache folder would be")
+    monkeypatch.setenv("XDG_CACHE_HOME", str(blocker))
+    source = codes.package_data("codes.toml")
+    # reference: the standard library's TOML parser (PEP 680)
+    assert codes._parsed_table(source) == tomllib.loads(source.decode("utf-8"))
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["file"]

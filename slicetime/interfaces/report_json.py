@@ -5,10 +5,10 @@ from __future__ import annotations
 import json
 from collections.abc import Mapping, Sequence
 from functools import lru_cache
-from importlib import resources
 from typing import TYPE_CHECKING, Any
 
 from slicetime import __version__
+from slicetime.codes import package_data
 from slicetime.escapes import json_safe
 from slicetime.numbers import json_time, json_times, tidy_json
 from slicetime.pipelines.audit import AuditResult, RunResult
@@ -21,17 +21,14 @@ if TYPE_CHECKING:  # the correct and verify pipelines import numpy: only for typ
 
 @lru_cache(maxsize=1)
 def report_schema() -> dict[str, Any]:
-    text = resources.files("slicetime").joinpath("data/report.schema.json").read_text("utf-8")
-    return json.loads(text)
+    return json.loads(package_data("report.schema.json"))
 
 
 @lru_cache(maxsize=1)
 def lines_schema() -> dict[str, Any]:
     """The schema of each line of ``audit --format jsonl`` (it refers to
     ``report.schema.json``; see :func:`lines_validator`)."""
-    text = resources.files("slicetime").joinpath("data/report-lines.schema.json").read_text(
-        "utf-8")
-    return json.loads(text)
+    return json.loads(package_data("report-lines.schema.json"))
 
 
 def lines_validator() -> Any:

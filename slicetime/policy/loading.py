@@ -101,14 +101,13 @@ import math
 import re
 import sys
 from collections.abc import Collection, Iterable, Mapping, Sequence
-from importlib import resources
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 if TYPE_CHECKING:  # imported where a policy is validated: 50 ms a start otherwise
     import jsonschema
 
-from slicetime.codes import RULES, make_finding
+from slicetime.codes import RULES, make_finding, package_data
 from slicetime.model import TIME_TOLERANCE, Finding, Severity
 from slicetime.policy.model import (
     EXPECTATION_KEYS,
@@ -202,7 +201,7 @@ def _with_current_keys(data: Mapping[str, Any], file: str
 @functools.cache
 def policy_schema() -> dict[str, Any]:
     """The shipped JSON Schema of the policy file."""
-    text = (resources.files("slicetime") / "data" / "policy.schema.json").read_text("utf-8")
+    text = package_data("policy.schema.json").decode("utf-8")
     schema: dict[str, Any] = json.loads(text)
     return schema
 

@@ -39,14 +39,13 @@ import os
 import re
 import threading
 from collections.abc import Callable, Mapping
-from importlib import resources
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 if TYPE_CHECKING:  # imported when a value fails the quick checks: 50 ms a start otherwise
     import jsonschema
 
-from slicetime.codes import make_finding
+from slicetime.codes import make_finding, package_data
 from slicetime.model import Finding, Severity
 from slicetime.schemes.resolve import valid_multiband_factor
 
@@ -83,8 +82,7 @@ _LITERAL = re.compile(r'"(?:[^"\\]|\\.)*"|(-?Infinity|NaN|-?\d[\d.eE+\-]*)', re.
 @functools.cache
 def load_schema() -> dict[str, Any]:
     """The sidecar JSON Schema shipped in ``slicetime/data``."""
-    text = (resources.files("slicetime") / "data" / "sidecar.schema.json").read_text("utf-8")
-    schema: dict[str, Any] = json.loads(text)
+    schema: dict[str, Any] = json.loads(package_data("sidecar.schema.json"))
     return schema
 
 
