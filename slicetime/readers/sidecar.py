@@ -39,6 +39,8 @@ import os
 import re
 import threading
 from collections.abc import Callable, Mapping
+from itertools import compress
+from operator import not_
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
@@ -372,7 +374,7 @@ def parse_sidecar_bytes(raw: bytes, shown: str) -> tuple[dict[str, Any] | None, 
                 hint="re-save the file as UTF-8",
             ),
         ]
-    if not text.strip():
+    if not text or text.isspace():  # as not text.strip(), without a copy
         return None, [
             *findings,
             make_finding(
@@ -383,54 +385,28 @@ def parse_sidecar_bytes(raw: bytes, shown: str) -> tuple[dict[str, Any] | None, 
             ),
         ]
 
-    parser = _parser()
-    try:
-        data, constants, duplicates = parser.parse(
-            text, exact_floats=_may_overflow(raw)
-        )
-    except json.JSONDecodeError as exc:
-        return None, [
-            *findings,
-            make_finding(
-                "sidecar/bad-json",
-                f"{shown}: invalid JSON at line {exc.lineno} column {exc.colno}: {exc.msg}",
-                file=shown,
-                evidence={"line": exc.lineno, "column": exc.colno, "error": exc.msg},
-            ),
-        ]
-    except RecursionError:
-        return None, [*findings, _too_deep(shown)]
-    except ValueError as exc:  # e.g. an integer literal beyond Python's digit limit
-        return None, [
-            *findings,
-            make_finding(
-                "sidecar/bad-json",
-                f"{shown}: a value cannot be read ({str(exc).splitlines()[0]})",
-                file=shown,
-            ),
-        ]
-
-    if not isinstance(data, dict):
-        kind = {list: "an array", str: "a string", bool: "a boolean", type(None): "null"}.get(
-            type(data), "a number"
-        )
-        return None, [
-            *findings,
-            make_finding(
-                "sidecar/not-object",
-                f"{shown}: the top level is {kind}; a sidecar must be a JSON object",
-                file=shown,
-                evidence={"type": kind},
-            ),
-        ]
-
-    # lone surrogates can only come from \u escapes (the UTF-8 decoder refuses them), and
-    # placeholders only from non-finite literals: without either, strings need no cleaning
-    cleaner = _Cleaner(strings=bool(constants) or "\\u" in text)
-    try:
-        cleaned = cleaner.clean(data, 1, None)
-    except _TooDeep:
-        return None, [*findings, _too_deep(shown)]
+    # first with the C scanner's own float parsing (no per-float hook); an overflowing
+    # literal then shows as an infinite float, which the cleaner notices, and only then is
+    # the text parsed again with the hook that places and reports it
+    exact = not _FAST_FLOATS
+    while True:
+        parsed = _parse_or_finding(text, shown, findings, exact=exact)
+        if isinstance(parsed, list):
+            return None, parsed
+        data, constants, duplicates = parsed
+        # lone surrogates can only come from \u escapes (the UTF-8 decoder refuses them),
+        # and placeholders only from non-finite literals: without either, strings need no
+        # cleaning
+        cleaner = _Cleaner(strings=bool(constants) or "\\u" in text)
+        try:
+            cleaned = cleaner.clean(data, 1, None)
+        except _TooDeep:
+            return None, [*findings, _too_deep(shown)]
+        # (a repeated key's overridden values are not in the data: with repeats, the
+        # exact parse, which sees them)
+        if exact or not (cleaner.infinite or duplicates):
+            break
+        exact = True
     assert isinstance(cleaned, dict)
 
     findings.extend(_duplicate_findings(shown, data, duplicates))
@@ -454,6 +430,59 @@ def parse_sidecar_bytes(raw: bytes, shown: str) -> tuple[dict[str, Any] | None, 
     return cleaned, findings
 
 
+#: parse first without the per-float hook (see :func:`parse_sidecar_bytes`); the tests set
+#: it False to compare with the parse that hooks every float
+_FAST_FLOATS = True
+_INFINITY = float("inf")
+_NEG_INFINITY = -_INFINITY
+
+
+def _parse_or_finding(
+    text: str, shown: str, findings: list[Finding], *, exact: bool,
+) -> tuple[dict[str, Any], list[_NonFinite], list[tuple[dict[str, Any], str, list[Any]]]] | list[
+        Finding]:
+    """``text`` parsed by the strict parser (a top-level object, its non-finite
+    placeholders and its repeated keys), or the findings that say why it is not a sidecar
+    (``findings`` first)."""
+    try:
+        data, constants, duplicates = _parser().parse(text, exact_floats=exact)
+    except json.JSONDecodeError as exc:
+        return [
+            *findings,
+            make_finding(
+                "sidecar/bad-json",
+                f"{shown}: invalid JSON at line {exc.lineno} column {exc.colno}: {exc.msg}",
+                file=shown,
+                evidence={"line": exc.lineno, "column": exc.colno, "error": exc.msg},
+            ),
+        ]
+    except RecursionError:
+        return [*findings, _too_deep(shown)]
+    except ValueError as exc:  # e.g. an integer literal beyond Python's digit limit
+        return [
+            *findings,
+            make_finding(
+                "sidecar/bad-json",
+                f"{shown}: a value cannot be read ({str(exc).splitlines()[0]})",
+                file=shown,
+            ),
+        ]
+    if not isinstance(data, dict):
+        kind = {list: "an array", str: "a string", bool: "a boolean", type(None): "null"}.get(
+            type(data), "a number"
+        )
+        return [
+            *findings,
+            make_finding(
+                "sidecar/not-object",
+                f"{shown}: the top level is {kind}; a sidecar must be a JSON object",
+                file=shown,
+                evidence={"type": kind},
+            ),
+        ]
+    return data, constants, duplicates
+
+
 class _StrictParser:
     """A JSON decoder whose hooks note what plain parsing would hide: non-finite numbers
     (kept as :class:`_NonFinite` placeholders, numbered in text order) and repeated keys.
@@ -470,8 +499,8 @@ class _StrictParser:
             parse_constant=self.on_constant,
             parse_float=self.on_float,
         )
-        # without a float hook: floats are made by the C scanner (used when no literal
-        # can overflow, see _may_overflow)
+        # without a float hook: floats are made by the C scanner (an overflowing literal
+        # becomes an infinite float; see parse_sidecar_bytes)
         self.fast_decoder = json.JSONDecoder(
             object_pairs_hook=self.on_pairs, parse_constant=self.on_constant
         )
@@ -481,8 +510,8 @@ class _StrictParser:
     ) -> tuple[Any, list[_NonFinite], list[tuple[dict[str, Any], str, list[Any]]]]:
         """Parse ``text`` as :func:`json.loads` would, with this parser's hooks.
 
-        ``exact_floats=False`` skips the per-float hook; only correct when no float
-        literal in ``text`` can overflow to infinity."""
+        ``exact_floats=False`` skips the per-float hook: an overflowing literal then
+        reads as an infinite float instead of a placeholder."""
         self.constants, self.duplicates = [], []
         if text.startswith("\ufeff"):  # as json.loads does for text input
             raise json.JSONDecodeError("Unexpected UTF-8 BOM (decode using utf-8-sig)", text, 0)
@@ -535,33 +564,6 @@ def _too_deep(shown: str) -> Finding:
 #: are copied, non-finite placeholders are replaced)
 _PLAIN: frozenset[type] = frozenset({int, float, bool, type(None)})
 _PLAIN_OR_TEXT: frozenset[type] = _PLAIN | {str}
-_DIGITS_AS_NINES = str.maketrans("012345678", "999999999")
-_OVERFLOW_MARKS = ("e999", "E999", "e+999", "E+999", "9" * 300)
-
-
-def _may_overflow(text: str | bytes) -> bool:
-    """False only when no float literal in ``text`` can overflow to infinity.
-
-    The largest double is about 1.8e308, so an overflowing literal has an exponent of
-    three or more digits or 300 or more digits in a row. With every digit written as 9,
-    both show as one of :data:`_OVERFLOW_MARKS` (a few fast substring searches; a
-    regular expression with the same meaning costs several times more). False
-    positives (``e999`` inside a string) only select the exact, slower parse.
-
-    The UTF-8 bytes of the text give the same answer (every character of the marks is
-    one ASCII byte, and no byte of a longer UTF-8 sequence is ASCII), several times
-    faster: ``bytes.translate`` is a table lookup per byte.
-    """
-    if isinstance(text, bytes):
-        nines = text.translate(_BYTE_DIGITS_AS_NINES)
-        return any(mark in nines for mark in _BYTE_OVERFLOW_MARKS)
-    nines_text = text.translate(_DIGITS_AS_NINES)
-    return any(mark in nines_text for mark in _OVERFLOW_MARKS)
-
-
-_BYTE_DIGITS_AS_NINES = bytes.maketrans(b"012345678", b"999999999")
-_BYTE_OVERFLOW_MARKS = tuple(mark.encode("ascii") for mark in _OVERFLOW_MARKS)
-
 _DISCARDED = "\x00discarded"  # marker: the value sat in an overridden duplicate key
 
 
@@ -583,6 +585,9 @@ class _Cleaner:
         #: value types copied as they are (strings too when they cannot need cleaning)
         self.plain = _PLAIN if strings else _PLAIN_OR_TEXT
         self.strings = strings
+        #: whether an infinite float was met (from an overflowing literal, when the text
+        #: was parsed without the float hook)
+        self.infinite = False
 
     def _text(self, s: str, top: str | None) -> str:
         if s.isascii():
@@ -599,23 +604,41 @@ class _Cleaner:
             if depth > MAX_SIDECAR_DEPTH:
                 raise _TooDeep
             plain = self.plain
-            strings = self.strings
-            out: dict[str, Any] = {}
-            for k, v in value.items():
-                key = self._text(k, top if top is not None else k) if strings else k
-                # plain numbers, booleans and null (the common case) need no cleaning
-                out[key] = (
-                    v if type(v) in plain
-                    else self.clean(v, depth + 1, top if top is not None else key)
-                )
+            out: dict[str, Any]
+            if self.strings:
+                out = {}
+                for k, v in value.items():
+                    key = self._text(k, top if top is not None else k)
+                    # plain numbers, booleans and null (the common case) need no cleaning
+                    out[key] = (
+                        v if type(v) in plain
+                        else self.clean(v, depth + 1, top if top is not None else key)
+                    )
+            else:
+                # keys need no cleaning: copy the object at once (in C) and clean only the
+                # values that are not plain, found by C iterators, not a Python loop
+                out = dict(value)
+                if not plain.issuperset(map(type, value.values())):
+                    odd = compress(value, map(not_, map(plain.__contains__,
+                                                        map(type, value.values()))))
+                    for key in list(odd):
+                        out[key] = self.clean(value[key], depth + 1,
+                                              top if top is not None else key)
+            values = out.values()
+            if _INFINITY in values or _NEG_INFINITY in values:  # one C loop each
+                self.infinite = True
             return out if depth == 1 else FrozenDict(out)
         if isinstance(value, list):
             if depth > MAX_SIDECAR_DEPTH:
                 raise _TooDeep
             plain = self.plain
-            if all(type(v) in plain for v in value):  # numbers: nothing to clean
-                return FrozenList(value)
-            return FrozenList([self.clean(v, depth + 1, top) for v in value])
+            if plain.issuperset(map(type, value)):  # numbers: nothing to clean
+                items = FrozenList(value)
+            else:
+                items = FrozenList([self.clean(v, depth + 1, top) for v in value])
+            if _INFINITY in items or _NEG_INFINITY in items:
+                self.infinite = True
+            return items
         if isinstance(value, str):
             return self._text(value, top)
         if isinstance(value, _NonFinite):
