@@ -671,3 +671,37 @@ def test_assembled_instance_equals_the_constructed_one(cls: str) -> None:
     with pytest.raises(TypeError):
         model.assembled(kind, {k: v for k, v in values.items() if k != "file_size"
                                and k != "content_missing"})
+
+
+def test_the_walks_plain_names_are_the_regular_files_that_are_not_links(tmp_path: Path) -> None:
+    # the audit opens a file the walk's listing gave as a regular file, not a link,
+    # without an lstat first: that set must be what lstat (POSIX: the link itself)
+    # says, for files, links to files, links out, dangling links, folders and FIFOs
+    import os
+    import stat
+
+    from slicetime.readers.dataset import iter_runs
+
+    root = tmp_path / "ds"
+    func = root / "sub-01" / "func"
+    func.mkdir(parents=True)
+    (root / "dataset_description.json").write_text('{"Name": "x"}')
+    (root / "task-a_bold.json").write_text("{}")
+    for name in ("sub-01_task-a_bold", "sub-01_task-b_bold"):
+        (func / f"{name}.nii.gz").write_bytes(b"")
+        (func / f"{name}.json").write_text("{}")
+    (tmp_path / "out.json").write_text("{}")
+    os.symlink(func / "sub-01_task-a_bold.json", func / "sub-01_task-c_bold.json")
+    os.symlink(tmp_path / "out.json", func / "sub-01_task-d_bold.json")
+    os.symlink(func / "missing.json", func / "sub-01_task-e_bold.json")
+    (func / "sub-01_task-f_bold.json").mkdir()
+    if hasattr(os, "mkfifo"):
+        os.mkfifo(func / "sub-01_task-g_bold.json")
+    listings: dict[str, tuple[str, ...]] = {}
+    plain: dict[str, frozenset[str]] = {}
+    list(iter_runs([root], listings=listings, plain=plain))
+    assert set(plain) == set(listings)
+    for folder, names in plain.items():
+        expected = {n for n in os.listdir(folder)
+                    if stat.S_ISREG(os.lstat(os.path.join(folder, n)).st_mode)}
+        assert names == expected

@@ -6,6 +6,7 @@ give their verdict."""
 from __future__ import annotations
 
 import json
+import os
 from pathlib import Path
 
 import pytest
@@ -60,3 +61,50 @@ def test_a_stray_file_first_in_a_series_folder_hides_nothing(
     assert "000.dcm" in found["source/files-skipped"].message
     assert found["source/files-skipped"].severity.value == "note"
     assert tree_hashes(root) == before
+
+
+@pytest.mark.skipif(not hasattr(os, "O_NOFOLLOW") or not hasattr(os, "mkfifo"),
+                    reason="POSIX open flags and FIFOs")
+@pytest.mark.parametrize("kind", ["regular", "inner-link", "outer-link", "dangling",
+                                  "fifo", "folder", "missing"])
+def test_a_file_the_walk_listed_as_plain_is_opened_as_without_the_listing(
+        tmp_path: Path, kind: str) -> None:
+    # the audit's walk tells open_regular a file is a regular file and not a link
+    # (plain=True) so that no lstat precedes the open; what stands at the path by then
+    # must give the outcome the checked open gives: POSIX open(2) refuses a link as the
+    # last part of the path with O_NOFOLLOW (ELOOP), and returns at once for a FIFO
+    # with O_NONBLOCK, so neither is followed or waited on
+    from slicetime.readers.errors import ReadError, open_regular
+
+    root = tmp_path / "ds"
+    root.mkdir()
+    outside = tmp_path / "outside.json"
+    outside.write_text('{"secret": 1}')
+    inside = root / "other.json"
+    inside.write_text('{"a": 1}')
+    path = root / "sub-01_bold.json"
+    if kind == "regular":
+        path.write_text('{"b": 2}')
+    elif kind == "inner-link":
+        path.symlink_to(inside)
+    elif kind == "outer-link":
+        path.symlink_to(outside)
+    elif kind == "dangling":
+        path.symlink_to(root / "nothing.json")
+    elif kind == "fifo":
+        os.mkfifo(path)
+    elif kind == "folder":
+        path.mkdir()
+
+    def outcome(plain: bool) -> tuple[str, str]:
+        try:
+            fh, _st = open_regular(str(path), "x.json", what="JSON file", root=str(root),
+                                   plain=plain)
+        except ReadError as err:
+            return "refused", repr(err.to_finding())
+        with fh:
+            return "read", fh.read().decode()
+
+    checked = outcome(False)
+    assert outcome(True) == checked
+    assert checked[0] == ("read" if kind in ("regular", "inner-link") else "refused")

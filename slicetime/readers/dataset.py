@@ -306,6 +306,7 @@ class _Walker:
         on_error: Callable[[Finding], None] | None,
         listings: dict[str, tuple[str, ...]] | None = None,
         described: dict[str, bool] | None = None,
+        plain: dict[str, frozenset[str]] | None = None,
     ) -> None:
         self.skip = skip
         self.include_hidden = include_hidden
@@ -315,6 +316,9 @@ class _Walker:
         #: a dataset description (for the root finder); the walk has read them already
         self.listings = listings
         self.described = described
+        #: per folder listed: the names of its images and sidecars that its listing
+        #: says are regular files, not links (see ``iter_runs``)
+        self.plain = plain
 
     def _remember(self, key: str, entries: list[os.DirEntry[str]]) -> None:
         """The folder's sidecar names as ``SidecarIndex.listing`` would list them (a
@@ -335,6 +339,8 @@ class _Walker:
         self.listings[key] = tuple(jsons)
         if described is not None:
             self.described[key] = described
+        if self.plain is not None:
+            self.plain[key] = frozenset(e.name for e in entries if _is_plain(e))
 
     def _report(self, folder: Path, exc: OSError) -> None:
         if self.on_error is not None:
@@ -428,6 +434,15 @@ class _Walker:
 _entry_name = operator.attrgetter("name")
 
 
+def _is_plain(entry: os.DirEntry[str]) -> bool:
+    """A regular file that is not a link (the entry's type: no system call where the
+    file system gives it, as Linux's and macOS's do)."""
+    try:
+        return entry.is_file(follow_symlinks=False)
+    except OSError:
+        return False
+
+
 def _is_regular(entry: os.DirEntry[str]) -> bool:
     """A regular file, following symlinks (the entry's type needs no system call)."""
     try:
@@ -444,6 +459,7 @@ def iter_runs(
     include_hidden: bool = False,
     on_error: Callable[[Finding], None] | None = None,
     listings: dict[str, tuple[str, ...]] | None = None,
+    plain: dict[str, frozenset[str]] | None = None,
 ) -> Iterator[tuple[Path, Path]]:
     """Yield ``(root, data_file)`` for every candidate run under ``paths``.
 
@@ -451,6 +467,10 @@ def iter_runs(
     listed (absolute folder path → sorted ``.json`` names that are not hidden; a folder
     with such a name is listed, and reading it reports it), so that the sidecar
     resolution need not list those folders again (``SidecarStore(listings=...)``).
+    ``plain``, given with ``listings``, receives per folder the names of its entries
+    that the listing says are regular files and not links, so that reading an image or
+    a sidecar needs no ``lstat`` (``SidecarStore(plain=...)``,
+    :func:`.errors.open_regular`).
 
     A path that is a file is resolved by :func:`given_run` (a run's own sidecar
     stands for its image; a file that accompanies runs raises ``file/not-a-run``)
@@ -479,7 +499,8 @@ def iter_runs(
         skip -= {"sourcedata", "code"}
     finder = _RootFinder()
     walker = _Walker(skip, include_hidden, on_error, listings,
-                     finder._described if listings is not None else None)
+                     finder._described if listings is not None else None,
+                     plain if listings is not None else None)
     roots: dict[str, tuple[str, Path]] = {}
 
     def root_of(run: str) -> tuple[str, Path]:

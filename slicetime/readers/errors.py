@@ -302,9 +302,13 @@ _OPEN_FLAGS = (
 )
 
 
+#: open flag that refuses a link as the last part of the path (0 where there is none)
+_NOFOLLOW = getattr(os, "O_NOFOLLOW", 0)
+
+
 def open_regular(
     path: str | os.PathLike[str], shown: str, *, what: str = "file",
-    root: str | os.PathLike[str] | None = None,
+    root: str | os.PathLike[str] | None = None, plain: bool = False,
 ) -> tuple[BinaryIO, os.stat_result]:
     """Open the regular file at ``path`` for unbuffered binary reading, or raise.
 
@@ -313,7 +317,21 @@ def open_regular(
     out of the dataset is not opened), and ``file/unreadable`` when the path turned
     into something else (a FIFO, a device) between the check and the open. The
     open never blocks: the flags include ``O_NONBLOCK``, which regular files ignore.
+
+    ``plain``: the caller's folder listing (``os.DirEntry``, from the walk) said the
+    path is a regular file and not a link, so the ``lstat`` before the open is left
+    out: the open refuses a link (``O_NOFOLLOW``), a FIFO swapped in since does not
+    block it (``O_NONBLOCK``), and whatever the open or the ``fstat`` after it finds
+    that is not a regular file (a link, a FIFO, a folder, nothing) is checked and
+    opened as without ``plain``, so the finding is the same. What this cannot refuse
+    is a device node put in the file's place between the walk's listing and this
+    open (making one needs the privilege to create devices). Ignored where
+    ``O_NOFOLLOW`` does not exist.
     """
+    if plain and _NOFOLLOW:
+        opened = _open_plain(path)
+        if opened is not None:
+            return opened
     # before the open: a device (or a link out of the dataset) is never opened
     try:
         known = stat.S_ISREG(os.lstat(path).st_mode)  # a regular file, not a link: no more
@@ -333,6 +351,25 @@ def open_regular(
     except BaseException:
         os.close(fd)
         raise
+
+
+def _open_plain(path: str | os.PathLike[str]) -> tuple[BinaryIO, os.stat_result] | None:
+    """``path`` opened without following a link, when it is a regular file; None for
+    anything else (a link, a FIFO, a folder, a missing file), which the caller then
+    checks and opens as any other path, so that the finding is the one it gives."""
+    try:
+        fd = os.open(path, _OPEN_FLAGS | _NOFOLLOW)
+    except (OSError, ValueError):
+        return None
+    try:
+        st = os.fstat(fd)
+        if stat.S_ISREG(st.st_mode):
+            return io.FileIO(fd, "rb"), st
+    except BaseException:
+        os.close(fd)
+        raise
+    os.close(fd)
+    return None
 
 
 def read_bounded(fh: BinaryIO, expected: int, limit: int) -> bytes:

@@ -105,11 +105,15 @@ class SidecarStore:
     """
 
     def __init__(self, budget: int = SHARED_BUDGET_BYTES, *, token: str | None = None,
-                 listings: dict[str, tuple[str, ...]] | None = None) -> None:
+                 listings: dict[str, tuple[str, ...]] | None = None,
+                 plain: dict[str, frozenset[str]] | None = None) -> None:
         self.budget = budget
         #: folder → sidecar names, as the walk listed them (``iter_runs(listings=...)``);
         #: each is taken once, then kept with the listings the store remembers
         self.walked = listings if listings is not None else {}
+        #: folder → names its listing in the walk gave as regular files, not links
+        #: (``iter_runs(plain=...)``); not sent to worker processes, which then ask
+        self.plain = plain if plain is not None else {}
         self.token = token if token is not None else os.urandom(8).hex()
         self.used = 0
         self.parse_count = 0
@@ -125,6 +129,13 @@ class SidecarStore:
 
     def __len__(self) -> int:
         return len(self._entries)
+
+    def known_plain(self, path: str) -> bool:
+        """Whether the walk's listing of ``path``'s folder gave it as a regular file
+        and not a link (:func:`.errors.open_regular`'s ``plain``)."""
+        folder, _, name = path.rpartition(os.sep)
+        names = self.plain.get(folder)
+        return names is not None and name in names
 
     def listing(self, key: str, base: str | None) -> _Listing | None:
         """The remembered listing of folder ``key`` (problems shown relative to ``base``)."""
@@ -432,7 +443,8 @@ class SidecarIndex:
         if key in self._own:
             self._own.move_to_end(key)
             return self._own[key]
-        raw, problem = read_sidecar_bytes(key[0], display, root=root)
+        raw, problem = read_sidecar_bytes(key[0], display, root=root,
+                                          plain=self.store.known_plain(key[0]))
         if raw is None:
             value = (None, (problem,) if problem is not None else ())
         else:

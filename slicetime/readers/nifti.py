@@ -394,7 +394,7 @@ def _paired_image(path: Path) -> Path | None:
 
 def read_header(
     path: str | os.PathLike[str], display: str | None = None, *, verify_stream: bool = True,
-    root: str | os.PathLike[str] | None = None,
+    root: str | os.PathLike[str] | None = None, plain: bool = False,
 ) -> tuple[HeaderInfo, list[Finding]]:
     """Read and check the header of the NIfTI file at ``path``.
 
@@ -410,7 +410,7 @@ def read_header(
     shown = display if display is not None else display_name(Path(file), None)
     try:
         # unbuffered: a header read is a few small reads, a buffer would only be filled
-        fh, st = open_regular(file, shown, what="NIfTI file", root=root)
+        fh, st = open_regular(file, shown, what="NIfTI file", root=root, plain=plain)
         with fh:
             if st.st_size == 0:
                 # not read: an empty file, or a pseudo-file (/proc) whose read may not end

@@ -98,7 +98,9 @@ def build_record(root: Path, path: Path, index: SidecarIndex | None = None,
     # cannot read costs the extra look of content_missing (whose answer then replaces
     # the read error; the same outcome as asking it first, one stat less per run)
     try:
-        header, header_findings = read_header(path, display, root=root)
+        # plain: the walk listed it as a regular file, not a link (no lstat before the open)
+        header, header_findings = read_header(
+            path, display, root=root, plain=index.store.known_plain(str(path)))
         findings.extend(header_findings)
     except ReadError as exc:
         missing = content_missing(path)

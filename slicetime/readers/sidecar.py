@@ -290,12 +290,14 @@ def load_sidecar(
 
 def read_sidecar_bytes(
     path: str, shown: str, *, root: str | os.PathLike[str] | None = None,
+    plain: bool = False,
 ) -> tuple[bytes | None, Finding | None]:
     """The bytes of the sidecar at ``path`` (a regular file, read with a bound; with
     ``root``, not a link out of the dataset), or None and the finding that says why not
-    (the reading half of :func:`load_sidecar`)."""
+    (the reading half of :func:`load_sidecar`); ``plain``: see
+    :func:`.errors.open_regular`."""
     try:
-        fh, st = open_regular(path, shown, what="JSON file", root=root)
+        fh, st = open_regular(path, shown, what="JSON file", root=root, plain=plain)
         with fh:
             if st.st_size > MAX_SIDECAR_BYTES:
                 return None, _too_large(shown, st.st_size)
