@@ -673,10 +673,12 @@ def test_assembled_instance_equals_the_constructed_one(cls: str) -> None:
                                and k != "content_missing"})
 
 
-def test_the_walks_plain_names_are_the_regular_files_that_are_not_links(tmp_path: Path) -> None:
-    # the audit opens a file the walk's listing gave as a regular file, not a link,
-    # without an lstat first: that set must be what lstat (POSIX: the link itself)
-    # says, for files, links to files, links out, dangling links, folders and FIFOs
+def test_the_walks_odd_names_are_the_entries_that_are_links_or_not_files(
+        tmp_path: Path) -> None:
+    # the audit opens a file of a listed folder without an lstat first unless the walk's
+    # listing gave it as a link or not a regular file: that set must be what lstat
+    # (POSIX: the link itself) says, for files, links to files, links out, dangling
+    # links, folders and FIFOs
     import os
     import stat
 
@@ -698,10 +700,12 @@ def test_the_walks_plain_names_are_the_regular_files_that_are_not_links(tmp_path
     if hasattr(os, "mkfifo"):
         os.mkfifo(func / "sub-01_task-g_bold.json")
     listings: dict[str, tuple[str, ...]] = {}
-    plain: dict[str, frozenset[str]] = {}
-    list(iter_runs([root], listings=listings, plain=plain))
-    assert set(plain) == set(listings)
-    for folder, names in plain.items():
+    not_plain: dict[str, frozenset[str]] = {}
+    list(iter_runs([root], listings=listings, not_plain=not_plain))
+    assert set(not_plain) == set(listings)
+    for folder, names in not_plain.items():
         expected = {n for n in os.listdir(folder)
-                    if stat.S_ISREG(os.lstat(os.path.join(folder, n)).st_mode)}
+                    if not stat.S_ISREG(os.lstat(os.path.join(folder, n)).st_mode)}
         assert names == expected
+    func_odd = not_plain[str(func)]
+    assert "sub-01_task-a_bold.json" not in func_odd and "sub-01_task-c_bold.json" in func_odd

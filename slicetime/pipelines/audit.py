@@ -369,11 +369,11 @@ def audit_stream(
     that and the run's facts, not the whole record (the report line of a run is
     encoded in parallel, and this process does little per run)."""
     listings: dict[str, tuple[str, ...]] = {}
-    plain: dict[str, frozenset[str]] = {}
+    not_plain: dict[str, frozenset[str]] = {}
     broken: dict[Path, Finding] = {}
     targets, roots, policies, walk_problems = _targets(
         paths, policy_file, include_derivatives, include_sourcedata, include_hidden,
-        require_runs, listings, broken, plain)
+        require_runs, listings, broken, not_plain)
     totals = AuditTotals(roots=roots, names=dataset_names(roots))
     totals.broken_policies = {str(r): f for r, f in broken.items()}
     totals.policies = {str(r): p.file or "" for r, p in policies.items() if p is not None}
@@ -383,7 +383,7 @@ def audit_stream(
         on_start(totals)
     job: Callable[[Sequence[tuple[Path, Path]]], list[Any]] = functools.partial(
         audit_chunk, policies=policies, verify=verify, source=source,
-        store=SidecarStore(listings=listings, plain=plain))
+        store=SidecarStore(listings=listings, not_plain=not_plain))
     lost: Callable[[tuple[Path, Path], str], Any] = _lost_target
     # runs audited in this process are prepared here, with the one interner of the
     # audit; a worker prepares its own and sends back only that (see _prepared_chunk)
@@ -572,7 +572,7 @@ def _targets(
     include_sourcedata: bool, include_hidden: bool, require_runs: bool = True,
     listings: dict[str, tuple[str, ...]] | None = None,
     broken: dict[Path, Finding] | None = None,
-    plain: dict[str, frozenset[str]] | None = None,
+    not_plain: dict[str, frozenset[str]] | None = None,
 ) -> tuple[list[tuple[Path, Path]], list[str], dict[Path, Policy | None], list[Finding]]:
     """The runs to audit, the roots, each root's policy, and the walk's problems;
     :class:`NoRunsError` when a given path holds no run and ``require_runs``.
@@ -586,7 +586,7 @@ def _targets(
             include_hidden=include_hidden,
             on_error=walk_problems.append,
             listings=listings,
-            plain=plain,
+            not_plain=not_plain,
         )
     )
     if require_runs:

@@ -306,7 +306,7 @@ class _Walker:
         on_error: Callable[[Finding], None] | None,
         listings: dict[str, tuple[str, ...]] | None = None,
         described: dict[str, bool] | None = None,
-        plain: dict[str, frozenset[str]] | None = None,
+        not_plain: dict[str, frozenset[str]] | None = None,
     ) -> None:
         self.skip = skip
         self.include_hidden = include_hidden
@@ -316,9 +316,9 @@ class _Walker:
         #: a dataset description (for the root finder); the walk has read them already
         self.listings = listings
         self.described = described
-        #: per folder listed: the names of its images and sidecars that its listing
-        #: says are regular files, not links (see ``iter_runs``)
-        self.plain = plain
+        #: per folder listed: the names of its entries that its listing says are not
+        #: regular files, or are links (see ``iter_runs``)
+        self.not_plain = not_plain
 
     def _remember(self, key: str, entries: list[os.DirEntry[str]]) -> None:
         """The folder's sidecar names as ``SidecarIndex.listing`` would list them (a
@@ -339,8 +339,10 @@ class _Walker:
         self.listings[key] = tuple(jsons)
         if described is not None:
             self.described[key] = described
-        if self.plain is not None:
-            self.plain[key] = frozenset(e.name for e in entries if _is_plain(e))
+        if self.not_plain is not None:
+            # the few names that are not plain files (most folders: none), so that a
+            # large walk keeps little
+            self.not_plain[key] = frozenset(e.name for e in entries if not _is_plain(e))
 
     def _report(self, folder: Path, exc: OSError) -> None:
         if self.on_error is not None:
@@ -459,7 +461,7 @@ def iter_runs(
     include_hidden: bool = False,
     on_error: Callable[[Finding], None] | None = None,
     listings: dict[str, tuple[str, ...]] | None = None,
-    plain: dict[str, frozenset[str]] | None = None,
+    not_plain: dict[str, frozenset[str]] | None = None,
 ) -> Iterator[tuple[Path, Path]]:
     """Yield ``(root, data_file)`` for every candidate run under ``paths``.
 
@@ -467,10 +469,10 @@ def iter_runs(
     listed (absolute folder path → sorted ``.json`` names that are not hidden; a folder
     with such a name is listed, and reading it reports it), so that the sidecar
     resolution need not list those folders again (``SidecarStore(listings=...)``).
-    ``plain``, given with ``listings``, receives per folder the names of its entries
-    that the listing says are regular files and not links, so that reading an image or
-    a sidecar needs no ``lstat`` (``SidecarStore(plain=...)``,
-    :func:`.errors.open_regular`).
+    ``not_plain``, given with ``listings``, receives per folder listed the names of its
+    entries that the listing says are not regular files or are links, so that reading
+    any other file of the folder needs no ``lstat`` first
+    (``SidecarStore(not_plain=...)``, :func:`.errors.open_regular`).
 
     A path that is a file is resolved by :func:`given_run` (a run's own sidecar
     stands for its image; a file that accompanies runs raises ``file/not-a-run``)
@@ -500,7 +502,7 @@ def iter_runs(
     finder = _RootFinder()
     walker = _Walker(skip, include_hidden, on_error, listings,
                      finder._described if listings is not None else None,
-                     plain if listings is not None else None)
+                     not_plain if listings is not None else None)
     roots: dict[str, tuple[str, Path]] = {}
 
     def root_of(run: str) -> tuple[str, Path]:

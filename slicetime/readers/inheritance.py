@@ -106,14 +106,14 @@ class SidecarStore:
 
     def __init__(self, budget: int = SHARED_BUDGET_BYTES, *, token: str | None = None,
                  listings: dict[str, tuple[str, ...]] | None = None,
-                 plain: dict[str, frozenset[str]] | None = None) -> None:
+                 not_plain: dict[str, frozenset[str]] | None = None) -> None:
         self.budget = budget
         #: folder → sidecar names, as the walk listed them (``iter_runs(listings=...)``);
         #: each is taken once, then kept with the listings the store remembers
         self.walked = listings if listings is not None else {}
-        #: folder → names its listing in the walk gave as regular files, not links
-        #: (``iter_runs(plain=...)``); not sent to worker processes, which then ask
-        self.plain = plain if plain is not None else {}
+        #: folder → names its listing in the walk gave as not regular files or as links
+        #: (``iter_runs(not_plain=...)``); not sent to worker processes, which then ask
+        self.not_plain = not_plain if not_plain is not None else {}
         self.token = token if token is not None else os.urandom(8).hex()
         self.used = 0
         self.parse_count = 0
@@ -131,11 +131,12 @@ class SidecarStore:
         return len(self._entries)
 
     def known_plain(self, path: str) -> bool:
-        """Whether the walk's listing of ``path``'s folder gave it as a regular file
-        and not a link (:func:`.errors.open_regular`'s ``plain``)."""
+        """Whether the walk listed ``path``'s folder and did not see ``path`` as a link
+        or anything but a regular file there (:func:`.errors.open_regular`'s ``plain``:
+        whatever is found at the open that is not a regular file is checked then)."""
         folder, _, name = path.rpartition(os.sep)
-        names = self.plain.get(folder)
-        return names is not None and name in names
+        odd = self.not_plain.get(folder)
+        return odd is not None and name not in odd
 
     def listing(self, key: str, base: str | None) -> _Listing | None:
         """The remembered listing of folder ``key`` (problems shown relative to ``base``)."""
