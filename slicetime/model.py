@@ -469,6 +469,13 @@ class UnitVerdict:
     def factor(self) -> float:
         return UNIT_FACTORS[self.unit]
 
+    @property
+    def usable(self) -> bool:
+        """False when no unit makes the value plausible (``evidence["usable"]``: a
+        sidecar TR that is no TR in seconds nor read as milliseconds), so the value
+        gives no time at all (``schemes.resolve.repetition_time_unit`` decides it)."""
+        return bool(self.evidence.get("usable", True))
+
 
 @dataclass(frozen=True)
 class ResolvedTiming:
@@ -514,6 +521,14 @@ class ResolvedTiming:
         """The window's name for people (:func:`window_label`: a TR only the header
         gives is called the header's TR). Decisions read ``window_kind``."""
         return window_label(self.window_kind, self.repetition_origin)
+
+    @property
+    def repetition_unusable(self) -> bool:
+        """True when the sidecar gives a ``RepetitionTime`` that no unit makes a plausible
+        TR (its unit verdict is not :attr:`UnitVerdict.usable`): ``repetition_time`` is
+        then None, and screens say the TR is not usable rather than show a number."""
+        verdict = self.units.get("RepetitionTime")
+        return verdict is not None and not verdict.usable
 
     def unit(self, field: str) -> str:
         """The unit ``field`` was written in (``s`` when no verdict was needed)."""

@@ -65,7 +65,7 @@ from slicetime.interfaces.report_source import (
 )
 from slicetime.interfaces.report_stream import evidence_text
 from slicetime.interfaces.safe_text import xml_safe
-from slicetime.interfaces.screen import repetition_text, strip_path_prefix
+from slicetime.interfaces.screen import strip_path_prefix, timing_tr_text
 from slicetime.model import Severity
 from slicetime.pipelines.audit import AuditResult, AuditTotals, RunFacts
 from slicetime.rules.dataset import PROTOCOL_ENTITIES, protocol_key
@@ -347,7 +347,7 @@ def _page_data(source: ReportSource, collector: DiagramCollector,
             columns(xml_safe(_column_of(facts, suffixes))),
             collector.run_facts[index], collector.run_sources[index],
             findings, collector.run_own[index],
-            opt(repetition_text(tr, facts.timing.repetition_origin) if tr else None),
+            opt(timing_tr_text(facts.timing)),
             slices, tr if tr else -1,
             shared_of.get(index, []),
         ]

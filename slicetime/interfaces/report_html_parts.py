@@ -14,7 +14,7 @@ from typing import Any
 from slicetime.interfaces.plots import DiagramSpec, diagram_spec, render_svg, slices_phrase
 from slicetime.interfaces.report_source import run_line
 from slicetime.interfaces.safe_text import xml_safe
-from slicetime.interfaces.screen import repetition_text
+from slicetime.interfaces.screen import timing_tr_text
 from slicetime.model import RunRecord
 from slicetime.numbers import duration, secs
 from slicetime.pipelines.audit import RunResult
@@ -84,10 +84,9 @@ def _run_facts(record: RunRecord) -> tuple[tuple[str, str], ...]:
     facts: list[tuple[str, str]] = []
     if header is not None:
         facts.append(("shape", " × ".join(str(d) for d in header.shape)))
-    tr = record.timing.repetition_time  # resolved: the sidecar's, else the header's
-    if tr is not None:
-        facts.append(("repetition time",
-                      repetition_text(tr, record.timing.repetition_origin)))
+    tr_text = timing_tr_text(record.timing)  # resolved: the sidecar's, else the header's
+    if tr_text is not None:
+        facts.append(("repetition time", tr_text))
     if schedule is not None:
         facts.append(("slice axis", encoding_direction(schedule.axis, schedule.direction) + (
             " (SliceTiming lists the highest index first)" if schedule.direction == "-" else "")))

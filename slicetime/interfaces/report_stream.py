@@ -205,6 +205,13 @@ def _plural(n: int, word: str) -> str:
 def _tr_text(timings: Iterable[ResolvedTiming]) -> str:
     """The TRs of a run group (at most three), and how many of its runs have the
     header's TR only (``ResolvedTiming.repetition_origin``)."""
+    timings = list(timings)
+    unusable = sum(1 for t in timings if t.repetition_unusable)
+    if unusable:  # a sidecar TR no unit makes plausible is shown so, not divided
+        rest = _tr_text(t for t in timings if not t.repetition_unusable)
+        if rest == "—":
+            return screen.TR_NOT_USABLE
+        return f"{rest}; {count(unusable, 'run')} {screen.TR_NOT_USABLE}"
     given = [(t.repetition_time, t.repetition_origin) for t in timings if t.repetition_time]
     known = sorted({round(v, 3) for v, _ in given})
     if not known:
@@ -417,8 +424,9 @@ def _write_runs(source: ReportSource, grouping: Grouping, out: IO[str], paint: _
             counts = f"{counts}; {told}" if counts else told
         counts = counts or "no findings"
         name = display_path(totals, facts, xml_safe(obj["path"]), several=several)
-        tr_text = (f"  TR {screen.repetition_text(tr, facts.timing.repetition_origin)}"
-                   if tr else "")
+        shown_tr = screen.timing_tr_text(facts.timing) \
+            if tr or facts.timing.repetition_unusable else None
+        tr_text = f"  TR {shown_tr}" if shown_tr else ""
         rest = f"{xml_safe(scheme)}{tr_text}  ({counts})"
         for line in _run_head(name, rest, fit, paint):
             out.write(line + "\n")

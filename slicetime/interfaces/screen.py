@@ -23,11 +23,17 @@ import os
 import re
 import shutil
 from collections.abc import Callable, Sequence
-from typing import Any
+from typing import TYPE_CHECKING, Any
+
+if TYPE_CHECKING:
+    from slicetime.model import ResolvedTiming
 
 #: what a screen adds to a TR that only the image header gives (no applicable sidecar
 #: has a usable RepetitionTime or VolumeTiming: ``ResolvedTiming.repetition_origin``)
 HEADER_ONLY = "header only"
+#: what a screen shows for a sidecar TR that no unit makes plausible
+#: (``ResolvedTiming.repetition_unusable``): no divided number
+TR_NOT_USABLE = "not usable"
 
 #: the narrowest width honoured; below it lines are cut at 40 columns
 MIN_WIDTH = 40
@@ -78,6 +84,14 @@ def repetition_text(seconds: float, origin: str | None) -> str:
 
     text = secs(seconds)
     return f"{text} ({HEADER_ONLY})" if origin == "header" else text
+
+
+def timing_tr_text(timing: ResolvedTiming) -> str | None:
+    """A run's resolved TR for people (:func:`repetition_text`), ``not usable`` when the
+    sidecar's ``RepetitionTime`` is no TR in any unit, None without a TR."""
+    if timing.repetition_time is not None:
+        return repetition_text(timing.repetition_time, timing.repetition_origin)
+    return TR_NOT_USABLE if timing.repetition_unusable else None
 
 
 def ascii_text(text: str) -> str:

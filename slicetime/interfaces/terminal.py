@@ -132,9 +132,9 @@ def render_show(run: RunResult, console: Console) -> None:
                       + ("   (SliceTiming lists the highest index first)"
                          if schedule.direction == "-" else "")))
     timing = record.timing
-    if timing.repetition_time is not None:  # resolved: the sidecar's, else the header's
-        facts.append(("repetition time", screen.repetition_text(
-            timing.repetition_time, timing.repetition_origin)))
+    tr_text = screen.timing_tr_text(timing)  # resolved: the sidecar's, else the header's
+    if tr_text is not None:
+        facts.append(("repetition time", tr_text))
     if schedule is not None:
         if schedule.volume_times:
             facts.append(("volume times",

@@ -179,11 +179,12 @@ class Interner:
 
     def timing(self, value: ResolvedTiming) -> ResolvedTiming:
         """The resolved timing without what no fact reader needs (the schedule's sources,
-        the problems, the file the TR came from, the verdicts' evidence), shared."""
+        the problems, the file the TR came from, the verdicts' evidence but whether they
+        are usable), shared."""
         schedule = self.schedule(value.schedule)
         # the times, the window and what lies outside it follow from the schedule, the
         # TR and the units: the key needs only those
-        units = tuple([(k, v.unit) for k, v in value.units.items()])
+        units = tuple([(k, v.unit, v.usable) for k, v in value.units.items()])
         tr_source = value.repetition_source  # its kind and field, kept (not its file)
         tr_from = None if tr_source is None else Source(tr_source.kind, tr_source.field)
         key = ("r", id(schedule), value.origin, value.axis_length, value.repetition_time,
@@ -194,7 +195,7 @@ class Interner:
                 schedule, value.origin, (), value.axis_length, value.repetition_time,
                 tr_from,
                 value.times, value.window, value.window_kind, value.outside,
-                {k: UnitVerdict(k, u) for k, u in units})
+                {k: UnitVerdict(k, u, {} if ok else {"usable": False}) for k, u, ok in units})
         return found
 
     def scheme(self, value: Scheme | None, schedule: SliceSchedule | None) -> Scheme | None:

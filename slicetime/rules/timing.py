@@ -375,7 +375,7 @@ def tr_units(record: RunRecord) -> Iterator[Hit]:
     verdict = record.timing.units.get("RepetitionTime")
     if verdict is not None and verdict.unit == "ms":
         tr = verdict.evidence["value"]
-        if tr / 1000 > MAX_REPETITION_TIME:  # read as milliseconds it is no TR either
+        if not verdict.usable:  # read as milliseconds it is no TR either (resolve decides)
             yield Hit(f"RepetitionTime is {as_written(tr)}, no plausible TR in seconds or "
                       f"read as milliseconds ({secs(tr / 1000)}; a TR lies between "
                       f"{secs(MIN_REPETITION_TIME)} and {secs(MAX_REPETITION_TIME)})",

@@ -348,10 +348,16 @@ _SECONDS = {field: UnitVerdict(field, "s", {"at_most": MAX_REPETITION_TIME})
 
 def repetition_time_unit(value: float, field: str = "RepetitionTime") -> UnitVerdict:
     """A sidecar repetition time (or ``VolumeTiming`` spacing) above the largest
-    plausible TR (``model.MAX_REPETITION_TIME``) was written in milliseconds."""
+    plausible TR (``model.MAX_REPETITION_TIME``) was written in milliseconds. One that
+    is still above it read as milliseconds is no TR in any unit: the verdict says so
+    (``usable`` False, :attr:`UnitVerdict.usable`) and the value gives no TR."""
     if value > MAX_REPETITION_TIME:
-        return UnitVerdict(field, "ms", {"value": value, "above": MAX_REPETITION_TIME,
-                                         "as_seconds": value / 1000.0})
+        evidence: dict[str, Any] = {"value": value, "above": MAX_REPETITION_TIME,
+                                    "as_seconds": value / 1000.0}
+        if value / 1000.0 > MAX_REPETITION_TIME:
+            evidence.update(usable=False, reason="no plausible TR in seconds or read as "
+                                                 "milliseconds")
+        return UnitVerdict(field, "ms", evidence)
     return _SECONDS[field]
 
 
@@ -383,7 +389,7 @@ def _complete(slices: _Slices, metadata: Mapping[str, Any],
     written = positive_number(metadata.get("RepetitionTime"))
     if written is not None:  # BIDS: the sidecar wins, with or without slice times
         units["RepetitionTime"] = verdict = repetition_time_unit(written)
-        tr = written * verdict.factor
+        tr = written * verdict.factor if verdict.usable else None
         tr_source = (schedule.sources.get("RepetitionTime") if schedule is not None else None) \
             or Source("sidecar", "RepetitionTime", metadata_sources.get("RepetitionTime"))
     volume_times = schedule.volume_times if schedule is not None else _volume_times(metadata)
@@ -399,7 +405,8 @@ def _complete(slices: _Slices, metadata: Mapping[str, Any],
         if header.raw_slice_duration:
             units["slice_duration"] = header_unit("slice_duration", header,
                                                   header.raw_slice_duration)
-        if tr is None and volume_times is None and header.repetition_time:
+        if tr is None and volume_times is None and header.repetition_time \
+                and "RepetitionTime" not in units:  # an unusable sidecar TR is not replaced
             tr = header.repetition_time
             tr_source = (schedule.sources.get("RepetitionTime") if schedule is not None
                          else None) or Source("header", "pixdim[4]", image_file)
