@@ -147,6 +147,22 @@ def test_pydicoms_own_files_plain_and_compressed(tmp_path: Path, name: str) -> N
             float(np.dot([float(v) for v in ds.ImagePositionPatient], normal)))
 
 
+def test_a_dicom_object_that_is_no_image_is_named_by_its_sop_class() -> None:
+    # pydicom's rtplan.dcm is an RT plan, no image: DICOM PS3.3 C.7.6.3 makes Rows
+    # (Image Pixel module) type 1 for every image; the SOP class name and Modality
+    # are pydicom's reading of the file, not invented
+    source = get_testdata_file("rtplan.dcm", download=False)
+    assert source is not None
+    ds = pydicom.dcmread(str(source), stop_before_pixels=True)
+    assert "Rows" not in ds
+    result = CliRunner().invoke(cli, ["show", str(source)])
+    lines = result.stderr.strip().splitlines()
+    assert result.exit_code == 2 and result.stdout == "" and len(lines) == 1, result.stderr
+    assert "not an image series" in lines[0] and "ImagePositionPatient" not in lines[0]
+    assert f"SOP class {ds.SOPClassUID.name}" in lines[0]
+    assert f"Modality {ds.Modality}" in lines[0]
+
+
 def test_truncated_files_header_read_or_one_line_exit_2(tmp_path: Path) -> None:
     # pydicom's MR_truncated.dcm is cut inside its pixel data: the header is whole, and a
     # header-only reader reads it as pydicom does (stop_before_pixels)

@@ -513,6 +513,22 @@ def _classic(group: SeriesGroup, series: str, shown_of: Callable[[DicomObject], 
     )
 
 
+def _not_an_image(ds: Any, shown: str) -> ReadError:
+    """The one line for a DICOM object that is no image (DICOM PS3.3 C.7.6.3: every image
+    has the Image Pixel module, whose Rows is type 1), named by its SOP class and
+    Modality (a plan, a structure set, a report hold no slices to time)."""
+    sop = _get(ds, "SOPClassUID", shown)
+    modality = _get(ds, "Modality", shown)
+    what = []
+    if sop:  # pydicom names the standard's SOP classes (a UID it does not know: itself)
+        what.append(f"SOP class {getattr(sop, 'name', '') or sop}")
+    if modality:
+        what.append(f"Modality {modality}")
+    told = f" ({', '.join(what)})" if what else ""
+    return _fail(shown, f"not an image series{told}: it holds no slices to time",
+                 "SOPClassUID", modality=None if modality is None else str(modality))
+
+
 # --------------------------------------------------------------------------- entry points
 
 
@@ -545,6 +561,8 @@ def read_group(group: SeriesGroup, series: str, root: str | None = None) -> Seri
         if _has_tiles(ds, private):
             timing = _mosaic(ds, private, group.objects, series, first, first)
         elif ds.get("ImagePositionPatient") is None:
+            if _get(ds, "Rows", first) is None:  # no Image Pixel module: no image at all
+                raise _not_an_image(ds, first)
             raise _fail(first, "ImagePositionPatient is missing (needed to place the slices)",
                         "ImagePositionPatient")
         else:
