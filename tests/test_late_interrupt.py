@@ -177,3 +177,50 @@ def test_a_ctrl_c_between_two_runs_names_the_one_left_in_the_singular(
     assert stopped.returncode == 130, stopped.stderr
     assert "1 run not finished (rerun the same command to finish it)" in stopped.stderr
     assert len(list(out.rglob("*_desc-timealigned_bold.nii.gz"))) == 1  # what it says
+
+
+def one_line(stopped: subprocess.CompletedProcess[str]) -> str:
+    """The interrupted command's one stderr line (exit 130: 128 + SIGINT's 2)."""
+    assert stopped.returncode == 130, stopped.stderr
+    lines = [x for x in stopped.stderr.splitlines() if x.strip()]
+    assert len(lines) == 1 and lines[0] != "slicetime: interrupted", stopped.stderr
+    return lines[0]
+
+
+def test_a_ctrl_c_during_pin_says_no_policy_was_written(dataset: Path, tmp_path: Path) -> None:
+    stopped = run("pin:audit", "pin", str(dataset))
+    assert one_line(stopped) == ("slicetime: interrupted while the runs were audited; "
+                                 "no policy written")
+    assert stopped.stdout == ""
+    policy = tmp_path / "policy.toml"
+    stopped = run("pin:write", "pin", str(dataset), "--output", str(policy))
+    assert one_line(stopped) == (f"slicetime: interrupted while the policy was written; "
+                                 f"{policy} removed, no policy written")
+    assert not policy.exists()  # what it says is so
+
+
+@pytest.mark.parametrize(("point", "told"), [
+    ("show:audit", "while the run's dataset was audited, before anything was shown"),
+    ("show:print", "while the run was shown (what is on screen may be cut short)")])
+def test_a_ctrl_c_during_show_says_how_far_it_got(dataset: Path, point: str,
+                                                   told: str) -> None:
+    before = sorted(p.name for p in dataset.rglob("*"))
+    stopped = run(point, "show", str(dataset / RUN))
+    assert one_line(stopped) == f"slicetime: interrupted {told}; show writes no file"
+    assert sorted(p.name for p in dataset.rglob("*")) == before
+    if point == "show:audit":
+        assert stopped.stdout == ""
+
+
+def test_a_ctrl_c_during_the_demo_names_the_step_and_the_folder(tmp_path: Path) -> None:
+    out = tmp_path / "tour"
+    stopped = run("demo:3", "demo", "--out", str(out))
+    assert one_line(stopped) == (
+        f"slicetime: interrupted during the demo (3. slicetime verify); {out} holds only "
+        f"part of the demo's files (rerun slicetime demo --out {out} to rebuild it)")
+    assert (out / "audit.json").is_file() and not (out / "quiet-rooms-fixed").exists()
+    # the folder is the demo's to rebuild: after the work, only the summary was left
+    stopped = run("demo:where everything is", "demo", "--out", str(out))
+    assert one_line(stopped) == ("slicetime: interrupted while the demo's last summary "
+                                 f"was printed; every file of the demo is written in {out}")
+    assert (out / "quiet-rooms-fixed").is_dir() and (out / "fix-backups").is_dir()

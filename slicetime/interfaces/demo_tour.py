@@ -36,6 +36,7 @@ from slicetime.pipelines.correct_batch import correct_paths
 from slicetime.pipelines.demo import STUDY, build_demo_dataset, demo_runs, prepare_output
 from slicetime.pipelines.errors import DOUBT_CODE
 from slicetime.pipelines.fix import apply_plan, plan_fix, reaudit
+from slicetime.pipelines.signals import test_point
 from slicetime.pipelines.verify import verify_run
 from slicetime.rules.correction import doubts_timing
 from slicetime.words import count
@@ -45,6 +46,21 @@ class DemoRefused(click.ClickException):
     """``demo --out`` names a folder that is not the demo's to write (exit 2)."""
 
     exit_code = 2
+
+
+class DemoInterrupted(KeyboardInterrupt):
+    """Ctrl-C during the tour: :attr:`line` says at which step, and that ``out`` holds
+    the demo's files so far, incomplete (the demo rebuilds the folder when rerun)."""
+
+    def __init__(self, step: str, out: Path, complete: bool) -> None:
+        super().__init__("interrupted")
+        if complete:
+            self.line = (f"slicetime: interrupted while the demo's last summary was "
+                         f"printed; every file of the demo is written in {out}")
+        else:
+            self.line = (f"slicetime: interrupted during the demo ({step}); {out} holds "
+                         f"only part of the demo's files (rerun slicetime demo --out {out} "
+                         "to rebuild it)")
 
 
 def command_name() -> str:
@@ -67,6 +83,10 @@ class _Tour:
     def __init__(self) -> None:
         self.console = make_console()
         self.width = fit_width(self.console)
+        #: the step under way, for the one line a Ctrl-C gets (:class:`DemoInterrupted`)
+        self.step = "preparing the output folder"
+        #: every file of the demo written (only the last summary is left to print)
+        self.complete = False
 
     def say(self, text: str, indent: int = 0) -> None:
         for i, part in enumerate(screen.wrap_words(text, self.width, first=indent,
@@ -74,6 +94,8 @@ class _Tour:
             self.console.print(" " * (indent if i == 0 else indent + 4) + part, markup=False)
 
     def rule(self, title: str) -> None:
+        self.step = title.split(" (")[0]
+        test_point(f"demo:{title.split('.')[0]}")  # tests: Ctrl-C as the step starts
         self.console.print()  # every section starts after one blank line
         self.console.print(f"── {title} "
                            + "─" * max(3, min(self.width or 72, 72) - len(title) - 4))
@@ -81,11 +103,22 @@ class _Tour:
 
 def run_demo(out: Path) -> int:
     """The guided tour; returns 0. Everything is written under ``out``."""
-    refused = prepare_output(out)
-    if refused is not None:
-        raise DemoRefused(refused)
     tour = _Tour()
+    try:
+        refused = prepare_output(out)
+        if refused is not None:
+            raise DemoRefused(refused)
+        _tour(tour, out)
+    except KeyboardInterrupt:
+        raise DemoInterrupted(tour.step, out, tour.complete) from None
+    return 0
+
+
+def _tour(tour: _Tour, out: Path) -> None:
+    """The steps of :func:`run_demo`, in order, everything written under ``out``."""
     dataset = out / "quiet-rooms"
+    tour.step = "writing the invented study"
+    test_point("demo:build")
     build_demo_dataset(dataset)
     _introduce(tour, dataset, out)
 
@@ -105,6 +138,7 @@ def run_demo(out: Path) -> int:
     after = audit_paths([fixed])
     aligned = _correct_step(tour, fixed)
 
+    tour.complete = True
     tour.rule("where everything is")
     before_counts, after_counts = result.counts(), after.counts()
     _where(tour, [
@@ -117,7 +151,6 @@ def run_demo(out: Path) -> int:
         ("backups and undo journal", str(journal)),
         ("corrected runs", str(aligned)),
     ])
-    return 0
 
 
 def _introduce(tour: _Tour, dataset: Path, out: Path) -> None:

@@ -16,6 +16,12 @@ from slicetime.interfaces.commands.shared import friendly
 @friendly
 def demo(out: Path) -> None:
     """Run the whole job on a small invented study (audit, verify, fix, correct)."""
-    from slicetime.interfaces.demo_tour import run_demo
+    from slicetime.interfaces.demo_tour import DemoInterrupted, run_demo
+    from slicetime.interfaces.screen import say
 
-    sys.exit(run_demo(out))
+    try:
+        code = run_demo(out)
+    except DemoInterrupted as stop:  # one line: the step, and what the folder holds
+        say(stop.line, err=True)
+        sys.exit(130)
+    sys.exit(code)

@@ -5,6 +5,7 @@ from __future__ import annotations
 import os
 import sys
 from pathlib import Path
+from typing import NoReturn
 
 import click
 
@@ -15,6 +16,7 @@ from slicetime.interfaces.commands.shared import (
     friendly,
     policy_option,
 )
+from slicetime.interfaces.screen import say
 from slicetime.model import FailOn
 
 
@@ -47,24 +49,45 @@ def show(file: Path, fmt: str, former_json: bool, fail_on: str,
     if former_json:
         former_spelling("show --json", "show --format json")
     as_json = former_json or fmt == "json"
+    from slicetime.pipelines.signals import test_point
+
     if is_dicom_input(str(file)):
-        _show_series(file, as_json)
+        try:
+            test_point("show:series")
+            _show_series(file, as_json)
+        except KeyboardInterrupt:
+            _interrupted("while the series was read or shown")
         return
-    run = inspect_run(_show_target(file), policy_file=policy_file)
-    if as_json:
-        from slicetime.interfaces.source_view import run_source_object
+    target = _show_target(file)
+    try:
+        test_point("show:audit")
+        run = inspect_run(target, policy_file=policy_file)
+    except KeyboardInterrupt:
+        _interrupted("while the run's dataset was audited, before anything was shown")
+    try:
+        test_point("show:print")
+        if as_json:
+            from slicetime.interfaces.source_view import run_source_object
 
-        obj = run_object(run)
-        if run.record.source is not None:
-            obj["source"] = run_source_object(run.record)
-        click.echo(dumps(obj))
-    else:
-        from slicetime.interfaces.source_view import render_run_source
+            obj = run_object(run)
+            if run.record.source is not None:
+                obj["source"] = run_source_object(run.record)
+            click.echo(dumps(obj))
+        else:
+            from slicetime.interfaces.source_view import render_run_source
 
-        render_show(run, make_console())
-        render_run_source(run.record, make_console())
+            render_show(run, make_console())
+            render_run_source(run.record, make_console())
+    except KeyboardInterrupt:
+        _interrupted("while the run was shown (what is on screen may be cut short)")
     if FailOn.parse(fail_on).reached(Counts.of(run.findings)):
         sys.exit(EXIT_FINDINGS)
+
+
+def _interrupted(what: str) -> NoReturn:
+    """Ctrl-C: one line saying how far ``show`` got (it writes no file), exit 130."""
+    say(f"slicetime: interrupted {what}; show writes no file", err=True)
+    sys.exit(130)
 
 
 def _show_target(file: Path) -> Path:
