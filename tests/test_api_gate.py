@@ -134,3 +134,25 @@ def test_an_image_made_in_memory_is_checked_as_an_array(ds: Path) -> None:
     made = nib.Nifti1Image(np.asarray(loaded.dataobj), loaded.affine, loaded.header)
     assert made.get_filename() is None
     assert slicetime.correct_image(made, SEQUENTIAL, TR).shape == loaded.shape
+
+
+def test_a_short_five_d_run_is_refused_by_the_gate_as_by_the_command(ds: Path,
+                                                                      tmp_path: Path) -> None:
+    # NIfTI-1: dim[0] 5 with dim[5] 1 stores exactly the bytes of the 4-D image (the
+    # data laid out dimension by dimension); nibabel reads its shape as written
+    data = np.random.default_rng(0).normal(1000, 20, (5, 4, 8, MIN_VOLUMES - 1, 1))
+    path = write_run(ds, REL, data=data.astype(np.float32), dtype=np.float32, tr=TR,
+                     sidecar={"TaskName": "hum", "RepetitionTime": TR,
+                              "SliceTiming": interleaved(8)})
+    image = nib.load(path)
+    assert image.shape == (5, 4, 8, MIN_VOLUMES - 1, 1)
+    assert int(image.header["dim"][0]) == 5
+    from slicetime.pipelines.correct_gate import check_file
+
+    with pytest.raises(slicetime.CorrectionRefused, match=f"has {MIN_VOLUMES - 1} volumes") \
+            as caught:
+        check_file(path)
+    assert caught.value.code == "correct/too-few-volumes"
+    # the command refuses the same run for the same reason
+    done = run_cli("correct", str(ds), "--out", str(tmp_path / "out"), "--format", "json")
+    assert f"has {MIN_VOLUMES - 1} volumes" in json.loads(done.stdout)["runs"][0]["reason"]

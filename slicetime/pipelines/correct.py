@@ -140,7 +140,7 @@ from slicetime.rules.correction import (
     doubt_refusal,
     interpolation_refusal,
     judge_trust,
-    too_few_volumes,
+    too_few_volumes_of,
 )
 from slicetime.words import count
 
@@ -360,8 +360,7 @@ def _refusal(
     if problem is not None:
         raise CorrectionError(f"{problem}, so the run is refused", code=SCALING_CODE,
                               field="scl_inter")
-    shape = record.header.shape
-    short = too_few_volumes(shape[3]) if record.header.is_four_d else None
+    short = too_few_volumes_of(record.header)
     if short is not None:
         raise CorrectionError(short, code=TOO_FEW_CODE, field="dim")
     # a finding the lab policy ignores is hidden from the reports, not made trustworthy:

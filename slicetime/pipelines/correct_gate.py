@@ -29,6 +29,7 @@ from slicetime.rules.correction import (
     parse_accept,
     suffix_refusal,
     too_few_volumes,
+    too_few_volumes_of,
 )
 
 
@@ -67,8 +68,7 @@ def check_file(image: Path, accept: Sequence[str] = (),
     refusal = interpolation_refusal(record)
     if refusal is not None:
         raise CorrectionRefused(f"{record.path}: {refusal}", NOT_INTERPOLABLE_CODE)
-    shape = record.header.shape if record.header is not None else ()
-    short = too_few_volumes(shape[3]) if len(shape) == 4 else None
+    short = too_few_volumes_of(record.header)  # a 5-D image with dim[5] 1 too
     if short is not None:
         raise CorrectionRefused(f"{record.path}: {short}", TOO_FEW_CODE)
     seen = [*run.findings, *(item.finding for item in run.ignored)]

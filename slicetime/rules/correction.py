@@ -31,7 +31,7 @@ from collections.abc import Callable, Iterable, Sequence
 from dataclasses import dataclass
 
 from slicetime.codes import RULES
-from slicetime.model import Finding, RunRecord, Severity
+from slicetime.model import Finding, HeaderInfo, RunRecord, Severity
 from slicetime.policy.model import AcceptEntry
 from slicetime.policy.patterns import path_pattern_problem
 
@@ -96,6 +96,17 @@ def too_few_volumes(n_volumes: int) -> str | None:
     return (f"the run has {n_volumes} volumes; correction needs at least {MIN_VOLUMES} (the "
             "error near a run's ends is too large below that; slicetime explain "
             "correct/too-few-volumes)")
+
+
+def too_few_volumes_of(header: HeaderInfo | None) -> str | None:
+    """:func:`too_few_volumes` of an image's header: its volume count
+    (``HeaderInfo.n_volumes``) when it is a 4-D series (``HeaderInfo.is_four_d``: 4-D,
+    or more dimensions all of extent 1 past the fourth); None for any other shape,
+    which the audit's shape rule and the correction's reader refuse. The one reading
+    of the count that ``correct`` and the API's gate share."""
+    if header is None or not header.is_four_d:
+        return None
+    return too_few_volumes(header.n_volumes)
 
 
 def timing_doubts(findings: Iterable[Finding]) -> list[Finding]:
