@@ -660,6 +660,16 @@ def inspect_run(image: Path, *, policy_file: Path | None = None,
     audited (header bytes only) with the lab policy, so the dataset-wide checks are
     included (what ``slicetime show`` prints). A file that cannot be read at all gives
     a result with that one finding; a missing file raises ReadError."""
+    return inspect_run_policy(image, policy_file=policy_file, source=source)[0]
+
+
+def inspect_run_policy(
+    image: Path, *, policy_file: Path | None = None, source: SourceOptions | None = None
+) -> tuple[RunResult, str | None, tuple[AcceptEntry, ...]]:
+    """:func:`inspect_run`, with what its audit found of the run's dataset's lab policy
+    (as :func:`policy_problem` and :func:`policy_accepts` give it), from the audit's own
+    loading of the policy: the policy is read once. A run whose file cannot be read at
+    all was not audited: its policy is then loaded on its own."""
     absolute = image if image.is_absolute() else image.absolute()
     root = find_root(absolute.parent)
     try:
@@ -671,13 +681,17 @@ def inspect_run(image: Path, *, policy_file: Path | None = None,
         broken = result.broken_policies.get(run.record.root)
         if broken is not None:
             run.findings.insert(0, broken)
-        return run
+        problem = _first_broken({} if broken is None else {run.record.root: broken})
+        return run, problem, result.accepts.get(run.record.root, ())
     except ReadError as exc:
         if exc.code == "file/missing":
             raise
         shown = relative_display(absolute, root)
-        return RunResult(RunRecord(path=shown, abs_path=str(absolute), root=str(root)),
-                         [exc.to_finding()])
+        run = RunResult(RunRecord(path=shown, abs_path=str(absolute), root=str(root)),
+                        [exc.to_finding()])
+        where = Path(run.record.root)
+        return (run, policy_problem([where], policy_file),
+                policy_accepts(where, policy_file))
     except StopIteration:  # not a run the walker recognises (a name it skips)
         why = not_a_run(absolute.name) or "not an image the audit reads as a run"
         raise ReadError("file/not-nifti", str(absolute), None, f"{absolute}: {why}") from None
@@ -697,6 +711,7 @@ __all__ = [
     "dataset_name",
     "failed_run",
     "inspect_run",
+    "inspect_run_policy",
     "policy_accepts",
     "policy_problem",
 ]

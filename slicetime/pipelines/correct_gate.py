@@ -12,7 +12,7 @@ from __future__ import annotations
 from collections.abc import Sequence
 from pathlib import Path
 
-from slicetime.pipelines.audit import inspect_run, policy_accepts, policy_problem
+from slicetime.pipelines.audit import inspect_run_policy
 from slicetime.pipelines.errors import (
     DOUBT_CODE,
     NOT_INTERPOLABLE_CODE,
@@ -58,9 +58,8 @@ def check_file(image: Path, accept: Sequence[str] = (),
     never = not_a_run(image.name)
     if never is not None:
         raise CorrectionRefused(f"{image}: not corrected: {never}", NOT_INTERPOLABLE_CODE)
-    run = inspect_run(image, policy_file=policy_file)
+    run, broken, policy_accepted = inspect_run_policy(image, policy_file=policy_file)
     record = run.record
-    broken = policy_problem([Path(record.root)], policy_file)
     if broken is not None:
         raise CorrectionRefused(
             f"{broken} (correction does not run without the dataset's lab policy)",
@@ -73,7 +72,7 @@ def check_file(image: Path, accept: Sequence[str] = (),
         raise CorrectionRefused(f"{record.path}: {short}", TOO_FEW_CODE)
     seen = [*run.findings, *(item.finding for item in run.ignored)]
     verdict = judge_trust(record.path, seen,
-                          [*entries, *policy_accepts(Path(record.root), policy_file)])
+                          [*entries, *policy_accepted])
     doubted = doubt_refusal(verdict, record.path, _api_accepts)
     if doubted is not None:
         raise TimingInDoubt(f"{record.path}: {doubted}", DOUBT_CODE, verdict.standing)
