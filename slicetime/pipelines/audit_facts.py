@@ -95,7 +95,9 @@ _FACT_SOURCES = frozenset({"SliceTiming", "RepetitionTime", "VolumeTiming", "Del
                            "MultibandAccelerationFactor", "EchoTime", "TaskName"})
 
 
-_HEADER_KEY = operator.attrgetter(
+#: a header's content for interning and the audit's content memo: every field but the
+#: size on disk (which no check reads)
+HEADER_KEY = operator.attrgetter(
     *[f.name for f in dataclasses.fields(HeaderInfo) if f.name != "file_size"])
 
 
@@ -163,7 +165,7 @@ class Interner:
     def header(self, value: HeaderInfo | None) -> HeaderInfo | None:
         if value is None:
             return None
-        key = ("h", *_HEADER_KEY(value))  # every field but the size on disk
+        key = ("h", *HEADER_KEY(value))  # every field but the size on disk
         found = self._values.get(key)
         if found is None:
             found = self._values[key] = dataclasses.replace(value, file_size=0)

@@ -42,6 +42,7 @@ from slicetime.model import (
     Severity,
     Source,
 )
+from slicetime.pipelines.audit_facts import HEADER_KEY
 from slicetime.readers.entities import sidecar_path
 from slicetime.readers.inheritance import SidecarStore
 from slicetime.readers.sidecar import FrozenDict, FrozenList
@@ -67,8 +68,6 @@ RUN = "\0run\0"
 #: stands for the run's own sidecar in a remembered result
 OWN = "\0own sidecar\0"
 
-_HEADER_KEY = operator.attrgetter(
-    *[f.name for f in dataclasses.fields(HeaderInfo) if f.name != "file_size"])
 _SCALARS: frozenset[type] = frozenset({str, int, bool, type(None)})
 _PLAIN: frozenset[type] = frozenset({int, float, bool, type(None), Severity})
 _MAPPINGS: frozenset[type] = frozenset({dict, FrozenDict})
@@ -175,7 +174,7 @@ class ContentMemo:
         """What :func:`resolve_timing` and :func:`infer_run_scheme` give the run."""
         own = sidecar_path(display)
         canonical = {k: OWN if v == own else v for k, v in sources.items()}
-        key = (None if header is None else _HEADER_KEY(header),
+        key = (None if header is None else HEADER_KEY(header),
                tuple([(k, _value_key(v)) for k, v in metadata.items()]),
                tuple(canonical.items()))
         entry = self._timings.get(key)
