@@ -72,6 +72,7 @@ from slicetime.pipelines.correct_events import (
     restate_events,
     run_inputs,
 )
+from slicetime.pipelines.correct_gate import judge_run
 from slicetime.pipelines.errors import (
     CLASH_CODE,
     DOUBT_CODE,
@@ -139,7 +140,6 @@ from slicetime.readers.volumes import (
 from slicetime.rules.correction import (
     doubt_refusal,
     interpolation_refusal,
-    judge_trust,
     too_few_volumes_of,
 )
 from slicetime.words import count
@@ -363,10 +363,7 @@ def _refusal(
     short = too_few_volumes_of(record.header)
     if short is not None:
         raise CorrectionError(short, code=TOO_FEW_CODE, field="dim")
-    # a finding the lab policy ignores is hidden from the reports, not made trustworthy:
-    # only an explicit acceptance lifts a doubt
-    seen = [*run.findings, *(item.finding for item in run.ignored)]
-    verdict = judge_trust(record.path, seen, options.accepts_for(record.root))
+    verdict = judge_run(run, options.accepts_for(record.root))
     outcome.accepted = [
         {"code": f.code, "message": f.message, "accepted_by": entry.given,
          "reason": entry.reason} for f, entry in verdict.accepted]

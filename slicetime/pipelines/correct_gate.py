@@ -12,7 +12,7 @@ from __future__ import annotations
 from collections.abc import Sequence
 from pathlib import Path
 
-from slicetime.pipelines.audit import inspect_run_policy
+from slicetime.pipelines.audit import RunResult, inspect_run_policy
 from slicetime.pipelines.errors import (
     DOUBT_CODE,
     NOT_INTERPOLABLE_CODE,
@@ -20,6 +20,7 @@ from slicetime.pipelines.errors import (
     CorrectionRefused,
     TimingInDoubt,
 )
+from slicetime.policy.model import AcceptEntry
 from slicetime.readers.dataset import not_a_run
 from slicetime.rules.correction import (
     TrustVerdict,
@@ -70,17 +71,24 @@ def check_file(image: Path, accept: Sequence[str] = (),
     short = too_few_volumes_of(record.header)  # a 5-D image with dim[5] 1 too
     if short is not None:
         raise CorrectionRefused(f"{record.path}: {short}", TOO_FEW_CODE)
-    seen = [*run.findings, *(item.finding for item in run.ignored)]
-    verdict = judge_trust(record.path, seen,
-                          [*entries, *policy_accepted])
+    verdict = judge_run(run, [*entries, *policy_accepted])
     doubted = doubt_refusal(verdict, record.path, _api_accepts)
     if doubted is not None:
         raise TimingInDoubt(f"{record.path}: {doubted}", DOUBT_CODE, verdict.standing)
     return verdict
 
 
+def judge_run(run: RunResult, accepts: Sequence[AcceptEntry]) -> TrustVerdict:
+    """``rules.correction.judge_trust`` over every finding of the audited ``run``, those
+    the lab policy ignores included: an ignored finding is hidden from the reports, not
+    made trustworthy; only an explicit acceptance lifts a doubt (the command's gate and
+    the API's)."""
+    seen = [*run.findings, *(item.finding for item in run.ignored)]
+    return judge_trust(run.record.path, seen, accepts)
+
+
 def _api_accepts(specs: list[str]) -> str:
     return f"accept={specs!r}"
 
 
-__all__ = ["check_array", "check_file"]
+__all__ = ["check_array", "check_file", "judge_run"]
