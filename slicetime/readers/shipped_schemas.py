@@ -9,8 +9,9 @@ from __future__ import annotations
 
 import json
 from functools import cache
-from importlib import resources
 from typing import Any
+
+from slicetime.codes import package_data
 
 from .schema_text import describe_schema
 
@@ -32,7 +33,7 @@ SCHEMAS = {
 def load_schema(name: str) -> dict[str, Any]:
     """A shipped schema by its name in :data:`SCHEMAS` (or its file name)."""
     file = SCHEMAS.get(name, name)
-    return json.loads(resources.files("slicetime").joinpath(f"data/{file}").read_text("utf-8"))
+    return json.loads(package_data(file).decode("utf-8"))
 
 
 def schema_validator(name: str, pointer: str = "") -> Any:
