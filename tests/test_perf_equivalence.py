@@ -170,7 +170,7 @@ def test_folder_chain_matches_pathlib(folder: str, root: str | None) -> None:
         expected = [PurePosixPath(root)]
         for part in f.relative_to(root).parts:
             expected.append(expected[-1] / part)
-    assert inheritance._folder_chain(folder, root) == tuple(str(p) for p in expected)
+    assert inheritance.folder_chain(folder, root) == tuple(str(p) for p in expected)
 
 
 @pytest.mark.parametrize("version", [1, 2])

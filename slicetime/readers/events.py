@@ -26,6 +26,7 @@ from pathlib import Path
 
 from .entities import parse_name
 from .errors import ReadError, open_regular, read_bounded
+from .inheritance import folder_chain
 
 __all__ = [
     "EVENTS_ENTITIES",
@@ -52,12 +53,9 @@ def find_events(root: Path, run: Path) -> Path | None:
     if parsed is None:
         return None
     entities = parsed.entities
-    folder = run.parent
-    chain = [folder]
-    while folder != root and root in folder.parents:
-        folder = folder.parent
-        chain.append(folder)
-    for where in chain:  # deepest first
+    # the folders from the root down to the run's, as for sidecars (deepest first here)
+    chain = folder_chain(os.fspath(run.parent), os.fspath(root))
+    for where in map(Path, reversed(chain)):
         try:
             names = sorted(e.name for e in os.scandir(where)
                            if e.name.endswith("_events.tsv") and not e.name.startswith("."))

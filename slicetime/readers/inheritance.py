@@ -66,6 +66,7 @@ __all__ = [
     "SidecarIndex",
     "SidecarStore",
     "ValueSharer",
+    "folder_chain",
     "relative_posix",
     "share_equal_values",
 ]
@@ -425,7 +426,7 @@ class SidecarIndex:
         key = (folder, root)
         cached = self._chains.get(key)
         if cached is None:
-            cached = tuple(self._folder(d, root) for d in _folder_chain(folder, root))
+            cached = tuple(self._folder(d, root) for d in folder_chain(folder, root))
             self._chains[key] = cached
         return cached
 
@@ -654,7 +655,7 @@ def _relative_text(path: str, root: str | None) -> str:
     return below if below is not None else path
 
 
-def _folder_chain(folder: str, root: str | None) -> tuple[str, ...]:
+def folder_chain(folder: str, root: str | None) -> tuple[str, ...]:
     """``root`` and each folder below it down to ``folder``; just ``folder`` when it is the
     root or lies outside it (paths absolute and normalised)."""
     if root is None or folder == root:
