@@ -22,6 +22,8 @@ import math
 from dataclasses import dataclass
 from typing import Literal
 
+from slicetime.numbers import duration, secs
+
 __all__ = [
     "Protocol",
     "array_groups",
@@ -278,18 +280,18 @@ def timing_problem(p: Protocol) -> str | None:
                 spacing = p.window / p.n_groups
                 return (f"decimals={p.decimals}: rounding makes excitation groups {k} and "
                         f"{k + 1} {'simultaneous' if starts[k] == starts[k - 1] else 'swap'} "
-                        f"(they are {spacing:.3g} s apart, below the {unit:g} s step of "
-                        f"{p.decimals} decimals); give more decimals")
+                        f"(they are {duration(spacing)} apart, below the {duration(unit)} step "
+                        f"of {p.decimals} decimals); give more decimals")
     tr = p.repetition_time
     if tr is not None and starts and max(starts) >= tr:
-        return (f"decimals={p.decimals}: rounding puts a slice at {max(starts):g} s, not "
-                f"below the TR of {tr:g} s (each slice time must be shorter than the TR); "
+        return (f"decimals={p.decimals}: rounding puts a slice at {secs(max(starts))}, not "
+                f"below the TR of {secs(tr)} (each slice time must be shorter than the TR); "
                 "give more decimals")
     found, _ = group_slices(times)
     if len(groups) > 1 and len(found) != len(groups):
         spacing = p.window / p.n_groups
-        return (f"n_slices={p.n_slices}: {len(groups)} excitation groups over {p.window:g} s "
-                f"are {spacing:.3g} s apart, too close to tell apart (the audit reads "
-                f"{len(found)} group{'s' if len(found) != 1 else ''}); give fewer slices or a "
-                f"longer repetition_time (now {p.window:g} s)")
+        return (f"n_slices={p.n_slices}: {len(groups)} excitation groups over "
+                f"{secs(p.window)} are {duration(spacing)} apart, too close to tell apart (the "
+                f"audit reads {len(found)} group{'s' if len(found) != 1 else ''}); give fewer "
+                f"slices or a longer repetition_time (now {secs(p.window)})")
     return None
