@@ -681,16 +681,14 @@ def gather_both(courses: np.ndarray, slice_of: np.ndarray, region_of: np.ndarray
     n_slices = len(candidates[0].times)
     spectra = region_spectra(prepared, n_slices, region_of)
     times = np.asarray([c.times for c in candidates], dtype=np.float64)
-    raw = bin_scores(spectra, times)
-    ordinary = BinScores(weigh(raw.total, spectra), weigh(raw.region_a, spectra),
-                         weigh(raw.region_b, spectra))
-    signs = sign_scores(spectra, times)
+    ordinary = _weighed_scores(spectra, times, MAX_TRUE_HZ)
+    twice = doubled(spectra)
+    signs = _weighed_scores(twice, times, 2.0 * MAX_TRUE_HZ)  # sign_scores, one doubling
     claimed = next(c for c in candidates if c.kind == "claimed")
     block = bin_block(spectra.freqs)
     scores = normalise(ordinary.total.sum(axis=1), spectra)
     maxima, mean, _ = shuffle_maxima(spectra, claimed.times, len(candidates), sets, seed)
     first = Evidence(spectra, ordinary, scores, maxima, mean, signs, block)
-    twice = doubled(spectra)
     scores = normalise(signs.total.sum(axis=1), twice)
     maxima, mean, _ = shuffle_maxima(twice, claimed.times, len(candidates), sets, seed,
                                      2.0 * MAX_TRUE_HZ)
@@ -728,10 +726,14 @@ def sign_scores(spectra: Spectra, schedules: np.ndarray, max_hz: float = MAX_TRU
                 ) -> BinScores:
     """Weighted per-bin sign-invariant scores of schedules ``(q, n_slices)`` (see
     :func:`doubled`)."""
-    twice = doubled(spectra)
-    raw = bin_scores(twice, schedules, 2.0 * max_hz)
-    return BinScores(weigh(raw.total, twice), weigh(raw.region_a, twice),
-                     weigh(raw.region_b, twice))
+    return _weighed_scores(doubled(spectra), schedules, 2.0 * max_hz)
+
+
+def _weighed_scores(spectra: Spectra, schedules: np.ndarray, max_hz: float) -> BinScores:
+    """:func:`bin_scores` of ``schedules`` with every part weighed (:func:`weigh`)."""
+    raw = bin_scores(spectra, schedules, max_hz)
+    return BinScores(weigh(raw.total, spectra), weigh(raw.region_a, spectra),
+                     weigh(raw.region_b, spectra))
 
 
 def evaluate(courses: np.ndarray, slice_of: np.ndarray, repetition_time: float,
