@@ -26,6 +26,7 @@ from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
 from typing import TYPE_CHECKING, Any, TypeVar
 
+from slicetime.readers.entities import sidecar_path
 from slicetime.words import count
 
 if TYPE_CHECKING:
@@ -34,20 +35,11 @@ if TYPE_CHECKING:
 
 SEVERITIES = ("error", "warning", "note")
 _RANK = {"error": 3, "warning": 2, "note": 1}
-_NIFTI = (".nii.gz", ".nii")
 #: a text screen names at most this many runs of a shared finding (the JSON lists all)
 LISTED_RUNS = 8
 
 T = TypeVar("T")
 Key = tuple[str, str, str, str, str | None, str, str | None, str]
-
-
-def own_sidecar(path: str) -> str:
-    """The run's own sidecar name (``x_bold.nii.gz`` → ``x_bold.json``)."""
-    for ext in _NIFTI:
-        if path.endswith(ext):
-            return path[: -len(ext)] + ".json"
-    return path + ".json"
 
 
 def _evidence(f: dict[str, Any]) -> Any:
@@ -58,7 +50,7 @@ def finding_key(root: str, run_path: str, f: dict[str, Any]) -> Key | None:
     """The key under which runs share ``f``, or None when it is about the run's own
     files (or about no file)."""
     file = f.get("file")
-    if not file or file == run_path or file == own_sidecar(run_path):
+    if not file or file == run_path or file == sidecar_path(run_path):
         return None
     evidence = json.dumps(_evidence(f), sort_keys=True, ensure_ascii=False, default=str)
     return (root, f["code"], f["severity"], file, f.get("field"), f["message"], f.get("hint"),
@@ -220,4 +212,4 @@ def counts_phrase(distinct: dict[str, int], runs_affected: dict[str, int],
 
 
 __all__ = ["LISTED_RUNS", "Grouper", "Grouping", "SharedFinding", "counts_phrase",
-           "finding_key", "group_findings", "listed_paths", "own_sidecar", "runs_phrase"]
+           "finding_key", "group_findings", "listed_paths", "runs_phrase"]
