@@ -17,13 +17,14 @@ from slicetime.interfaces.commands.shared import (
     run_executor,
 )
 from slicetime.interfaces.screen import say
+from slicetime.model import FailOn
 
 
 @click.command()
 @click.argument("files", nargs=-1, required=True, type=click.Path(path_type=Path))
 @click.option("--format", "fmt", type=click.Choice(["text", "json"]), default="text",
               show_default=True, help="Report format on stdout (json holds the numbers).")
-@click.option("--fail-on", type=click.Choice(["error", "warning", "never"]), default="warning",
+@click.option("--fail-on", type=click.Choice(FailOn.CHOICES), default="warning",
               show_default=True, help="Exit 1 when a run's verdict reaches this severity "
               "(contradicted is a warning, the other verdicts are notes: error never "
               "exits 1).")
@@ -43,7 +44,6 @@ def verify(files: tuple[Path, ...], fmt: str, fail_on: str, jobs: int | None,
     from slicetime.interfaces.safe_text import xml_safe
     from slicetime.interfaces.screen import unicode_wanted, width_for
     from slicetime.interfaces.verify_screen import run_lines, summary_line, unreadable_lines
-    from slicetime.model import Severity
     from slicetime.pipelines.executor import Interrupted
     from slicetime.pipelines.verify import verify_files
     from slicetime.readers.dataset import given_run
@@ -84,8 +84,7 @@ def verify(files: tuple[Path, ...], fmt: str, fail_on: str, jobs: int | None,
         say(summary_line([verdict_of(o) for o in outcomes], len(unreadable)))
     if unreadable:
         sys.exit(EXIT_USAGE)
-    if fail_on != "never":
-        level = Severity.parse(fail_on).rank
-        if any(o.finding.severity.rank >= level for o in outcomes):
-            sys.exit(EXIT_FINDINGS)
+    threshold = FailOn.parse(fail_on)
+    if any(threshold.fails(o.finding.severity) for o in outcomes):
+        sys.exit(EXIT_FINDINGS)
     sys.exit(0)
