@@ -445,10 +445,10 @@ def _write_closing(totals: AuditTotals, grouping: Grouping, out: IO[str], paint:
     if shared:
         out.write(paint("\nfindings of shared files (each told once, with the runs it "
                         "applies to)", "bold") + "\n")
+        several = several_roots(totals)
         for group in shared:
             out.write(_finding_text(group.finding, paint, fit) + "\n")
-            for line in shared_runs_lines(group, grouping, totals, fit,
-                                          several=several_roots(totals)):
+            for line in shared_runs_lines(group, grouping, totals, fit, several=several):
                 out.write(line + "\n")
     if totals.dataset_findings:
         out.write(paint("\ndataset", "bold") + "\n")
