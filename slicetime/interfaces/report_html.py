@@ -62,6 +62,7 @@ from slicetime.interfaces.report_source import (
     encode,
     group_label,
     report_root,
+    several_roots,
 )
 from slicetime.interfaces.report_stream import evidence_text
 from slicetime.interfaces.safe_text import xml_safe
@@ -307,7 +308,7 @@ def _page_data(source: ReportSource, collector: DiagramCollector,
     dataset picture is a subject, or a subject's session."""
     totals = source.totals
     strings = collector.strings
-    several = len({f.root for f in totals.facts}) > 1
+    several = several_roots(totals)
     suffixes = len({f.suffix for f in totals.facts})
     tag_index = {label: i for i, label in enumerate(tags)}
     subjects = ValueTable()
