@@ -26,16 +26,11 @@ def _complete_codes(ctx: click.Context, param: click.Parameter, incomplete: str
 @friendly
 def explain(code: str | None, list_all: bool) -> None:
     """Print the documentation of a finding CODE (or --list them all)."""
-    from slicetime.interfaces.screen import screen_stream, width_for, wrap_words
+    from slicetime.interfaces.screen import say, width_for, wrap_words  # say: ASCII mode too
     from slicetime.rules import RULES
     from slicetime.rules import explain as explain_rule
 
     width = width_for(sys.stdout)
-    out = screen_stream(sys.stdout)  # ASCII mode: "x" for "×", ">=" for "≥", ...
-
-    def say(text: str) -> None:
-        click.echo(text, file=out)
-
     if list_all or code is None:
         code_width = max(len(c) for c in RULES)
         lead = code_width + 2 + 7 + 2
