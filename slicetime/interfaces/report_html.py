@@ -42,10 +42,10 @@ from collections import Counter, defaultdict
 from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass
 from functools import cache
-from importlib import resources
 from typing import IO, Any
 
 from slicetime import __version__
+from slicetime.codes import package_data
 from slicetime.interfaces.grouping import (
     Grouping,
     counts_phrase,
@@ -481,7 +481,7 @@ def _reading_guide() -> str:
 def page_asset(name: str) -> str:
     """The text of a file the page embeds (``report.css``, ``report.js``), shipped as
     package data under ``slicetime/data``."""
-    return resources.files("slicetime").joinpath(f"data/{name}").read_text("utf-8")
+    return package_data(name).decode("utf-8")
 
 
 def script_hash(script: str) -> str:
