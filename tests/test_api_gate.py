@@ -156,3 +156,12 @@ def test_a_short_five_d_run_is_refused_by_the_gate_as_by_the_command(ds: Path,
     # the command refuses the same run for the same reason
     done = run_cli("correct", str(ds), "--out", str(tmp_path / "out"), "--format", "json")
     assert f"has {MIN_VOLUMES - 1} volumes" in json.loads(done.stdout)["runs"][0]["reason"]
+
+
+def test_a_stacked_five_d_image_read_from_its_file_is_refused(ds: Path) -> None:
+    # NIfTI-1: dim[5] above 1 stacks series past the time axis; not one time series
+    path = write_run(ds, REL, shape=(5, 4, 8, MIN_VOLUMES, 2),
+                     sidecar={"RepetitionTime": TR, "SliceTiming": interleaved(8)})
+    with pytest.raises(slicetime.CorrectionRefused, match=r"\[5, 4, 8, 6, 2\]") as caught:
+        slicetime.correct_image(nib.load(path), interleaved(8), TR)
+    assert caught.value.code == "correct/not-interpolable"

@@ -395,7 +395,10 @@ def test_only_four_dimensional_images(dataset: Path, tmp_path: Path, shape: tupl
               sidecar={"RepetitionTime": TR, "SliceTiming": interleaved(8), "TaskName": "x"})
     result = run_cli("correct", dataset, "--out", tmp_path / "out", "--force")
     assert result.exit_code == 1
-    assert "needs a 4-D image" in result.output or "no usable slice timing" in result.output
+    # refused (not failed), even with --force: a 3-D image is one volume, a 5-D one
+    # with dim[5] 2 is not one time series (NIfTI-1 dim[0])
+    assert "refused" in result.output
+    assert ("single volume" if len(shape) == 3 else "not one 4-D time series") in result.output
 
 
 @pytest.mark.parametrize(

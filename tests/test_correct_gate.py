@@ -323,3 +323,35 @@ def test_two_echoes_that_disagree_are_both_refused(ds: Path, tmp_path: Path) -> 
     assert [r["status"] for r in doc["runs"]] == ["refused", "refused"]
     for run in doc["runs"]:
         assert "dataset/echo-mismatch" in [f["code"] for f in run["blocking_findings"]]
+
+
+@pytest.mark.parametrize("force", [(), ("--force",)])
+def test_an_image_that_is_not_one_time_series_is_refused_even_with_force(
+        ds: Path, tmp_path: Path, force: tuple[str, ...]) -> None:
+    # NIfTI-1 (dim[0]): a 3-D image is one volume, and a 5-D image whose dim[5] is above
+    # 1 stacks several series (echoes, components) past the fourth axis; neither is one
+    # series to interpolate along time, so no option makes them correctable
+    single = "sub-01/func/sub-01_task-one_bold.nii.gz"
+    stacked = "sub-01/func/sub-01_task-two_bold.nii.gz"
+    side = {"RepetitionTime": 2.0, "SliceTiming": [0.0, 1.0, 0.5], "TaskName": "x"}
+    write_run(ds, single, shape=(4, 4, 3), sidecar=side)
+    write_run(ds, stacked, shape=(4, 4, 3, 8, 2), sidecar=side)
+    code, doc, _ = correct_json(ds, "--out", tmp_path / "out", *force)
+    by_path = {r["path"]: r for r in doc["runs"]}
+    assert code == 1
+    assert by_path[single]["status"] == "refused"
+    assert "single volume" in by_path[single]["reason"]
+    assert "even with --force" in by_path[single]["reason"]
+    assert by_path[single]["blocking_findings"][-1]["code"] == "correct/too-few-volumes"
+    assert by_path[stacked]["status"] == "refused"
+    assert "[4, 4, 3, 8, 2]" in by_path[stacked]["reason"]
+    assert by_path[stacked]["blocking_findings"][-1]["code"] == "correct/not-interpolable"
+    assert not (tmp_path / "out" / "sub-01").exists()
+
+
+def test_one_volume_is_said_in_the_singular() -> None:
+    from slicetime.rules.correction import too_few_volumes
+
+    assert (too_few_volumes(1) or "").startswith("the run has 1 volume;")
+    assert (too_few_volumes(2) or "").startswith("the run has 2 volumes;")
+    assert too_few_volumes(MIN_VOLUMES) is None

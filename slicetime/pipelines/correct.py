@@ -140,6 +140,7 @@ from slicetime.readers.volumes import (
 from slicetime.rules.correction import (
     doubt_refusal,
     interpolation_refusal,
+    shape_refusal,
     too_few_volumes_of,
 )
 from slicetime.words import count
@@ -332,8 +333,9 @@ def _refusal(
     """Why the run is not corrected (None: it is), and the warnings when forced.
 
     Refusals that no option lifts come first (raised with their ``correct/*`` code):
-    a series that must not be interpolated, an impossible timing (before ``force``:
-    no judgement makes it usable), a bad scaling, too few volumes. Then the doubts
+    a series that must not be interpolated (by its kind or its shape), too few
+    volumes, an impossible timing (before ``force``:
+    no judgement makes it usable), a bad scaling. Then the doubts
     about the timing, lifted only by accepting each one; then the audit's other
     errors, lifted by ``force``. ``outcome.blocking`` holds the audit's errors on
     entry; a refusal for doubts puts the doubting findings first."""
@@ -346,6 +348,12 @@ def _refusal(
     not_series = interpolation_refusal(record)
     if not_series is not None:
         raise CorrectionError(not_series, code=NOT_INTERPOLABLE_CODE, field="suffix")
+    stacked = shape_refusal(record.header)
+    if stacked is not None:
+        raise CorrectionError(stacked, code=NOT_INTERPOLABLE_CODE, field="dim")
+    short = too_few_volumes_of(record.header)
+    if short is not None:
+        raise CorrectionError(short, code=TOO_FEW_CODE, field="dim")
     if record.schedule is None:
         why = "; ".join(p.message for p in record.timing_problems) or "no slice timing found"
         return f"{record.path}: no usable slice timing ({why})", []
@@ -360,9 +368,6 @@ def _refusal(
     if problem is not None:
         raise CorrectionError(f"{problem}, so the run is refused", code=SCALING_CODE,
                               field="scl_inter")
-    short = too_few_volumes_of(record.header)
-    if short is not None:
-        raise CorrectionError(short, code=TOO_FEW_CODE, field="dim")
     verdict = judge_run(run, options.accepts_for(record.root))
     outcome.accepted = [
         {"code": f.code, "message": f.message, "accepted_by": entry.given,

@@ -28,6 +28,7 @@ from slicetime.rules.correction import (
     interpolation_refusal,
     judge_trust,
     parse_accept,
+    shape_refusal,
     suffix_refusal,
     too_few_volumes,
     too_few_volumes_of,
@@ -68,6 +69,9 @@ def check_file(image: Path, accept: Sequence[str] = (),
     refusal = interpolation_refusal(record)
     if refusal is not None:
         raise CorrectionRefused(f"{record.path}: {refusal}", NOT_INTERPOLABLE_CODE)
+    stacked = shape_refusal(record.header)
+    if stacked is not None:
+        raise CorrectionRefused(f"{record.path}: {stacked}", NOT_INTERPOLABLE_CODE)
     short = too_few_volumes_of(record.header)  # a 5-D image with dim[5] 1 too
     if short is not None:
         raise CorrectionRefused(f"{record.path}: {short}", TOO_FEW_CODE)

@@ -16,7 +16,8 @@ The judgements, each with one owner here (pure, no I/O):
 * :func:`interpolation_refusal`: whether the run's volumes may be interpolated at
   all (BOLD-type series only);
 * :data:`MIN_VOLUMES` / :func:`too_few_volumes`: the shortest run worth correcting
-  (from the measured edge error);
+  (from the measured edge error); :func:`shape_refusal`: an image that is not one
+  4-D time series;
 * :func:`doubt_refusal`: the refusal of a run whose doubts still stand, naming them and
   how to accept each (in the command line's words or the Python API's).
 
@@ -93,20 +94,43 @@ def too_few_volumes(n_volumes: int) -> str | None:
     :data:`MIN_VOLUMES` and of its message (``correct/too-few-volumes``)."""
     if n_volumes >= MIN_VOLUMES:
         return None
-    return (f"the run has {n_volumes} volumes; correction needs at least {MIN_VOLUMES} (the "
-            "error near a run's ends is too large below that; slicetime explain "
-            "correct/too-few-volumes)")
+    return (f"the run has {_volumes(n_volumes)}; correction needs at least {MIN_VOLUMES} (the "
+            "error near a run's ends is too large below that, so it is refused even with "
+            "--force; slicetime explain correct/too-few-volumes)")
+
+
+def _volumes(count: int) -> str:
+    return f"{count} volume" if count == 1 else f"{count} volumes"
 
 
 def too_few_volumes_of(header: HeaderInfo | None) -> str | None:
     """:func:`too_few_volumes` of an image's header: its volume count
     (``HeaderInfo.n_volumes``) when it is a 4-D series (``HeaderInfo.is_four_d``: 4-D,
-    or more dimensions all of extent 1 past the fourth); None for any other shape,
-    which the audit's shape rule and the correction's reader refuse. The one reading
-    of the count that ``correct`` and the API's gate share."""
-    if header is None or not header.is_four_d:
+    or more dimensions all of extent 1 past the fourth); a 3-D image is one volume
+    (said so). None for a header not read and for more dimensions than a time series
+    has (:func:`shape_refusal`). The one reading of the count that ``correct`` and the
+    API's gate share."""
+    if header is None:
+        return None
+    if len(header.shape) < 4:
+        return (f"the image is {len(header.shape)}-D {list(header.shape)} (dim), a single "
+                f"volume; correction needs a time series of at least {MIN_VOLUMES} volumes, "
+                "so it is refused even with --force (slicetime explain correct/too-few-volumes)")
+    if not header.is_four_d:
         return None
     return too_few_volumes(header.n_volumes)
+
+
+def shape_refusal(header: HeaderInfo | None) -> str | None:
+    """Why an image with more dimensions than one time series has (``dim[0]`` above 4
+    with an extent past the fourth above 1: echoes, components or several series
+    stacked) may not be interpolated along its fourth axis, or None: the one owner of
+    that judgement (``correct/not-interpolable``, refused even with --force)."""
+    if header is None or len(header.shape) < 4 or header.is_four_d:
+        return None
+    return (f"not corrected: the image has {len(header.shape)} dimensions "
+            f"{list(header.shape)} (dim), not one 4-D time series, so its fourth axis "
+            "cannot be interpolated even with --force")
 
 
 def timing_doubts(findings: Iterable[Finding]) -> list[Finding]:
