@@ -530,3 +530,31 @@ def test_cli_a_three_d_image_is_not_called_short_of_volumes(tmp_path: Path) -> N
     code, out, _ = _cli("verify", str(path), "--format", "json")
     reason = json.loads(out)["runs"][0]["finding"]["evidence"]["reason"]
     assert code == 0 and "not a 4-D time series" in reason and "volumes" not in reason
+
+
+@pytest.mark.parametrize(("rel", "kind"), [("sub-01/dwi/sub-01_dwi.nii.gz", "a diffusion series"),
+                                           ("sub-01/perf/sub-01_asl.nii.gz",
+                                            "an arterial spin labelling series")])
+def test_cli_a_series_that_is_not_bold_type_is_left_undecided(
+        tmp_path: Path, rel: str, kind: str) -> None:
+    # a diffusion-weighted series: S = S0 exp(-b D) (Stejskal and Tanner 1965), b
+    # alternating 0 and 1000 s/mm2 and D depending on the gradient direction, so every
+    # slice changes at the same volume boundaries; such data once read as "already slice-
+    # time corrected" (a contradiction); verify must not judge an order from them, as
+    # correct refuses to interpolate them (rules.correction)
+    rng = np.random.default_rng(5)
+    n_slices, n_volumes = 12, 60
+    b = np.where(np.arange(n_volumes) % 2 == 0, 0.0, 1000.0)
+    diffusivity = 0.0008 * (1 + 0.5 * np.abs(rng.normal(size=n_volumes)))
+    tissue = 800 + 200 * rng.random((16, 16, n_slices, 1))
+    data = tissue * np.exp(-b * diffusivity)[None, None, None, :]
+    data = data + rng.normal(scale=5, size=data.shape)
+    write_description(tmp_path)
+    path = write_run(tmp_path, rel, data=np.round(data).astype(np.int16), dtype=np.int16,
+                     tr=TR, sidecar={"RepetitionTime": TR,
+                                      "SliceTiming": list(_interleaved(12))})
+    code, out, _ = _cli("verify", str(path), "--format", "json")
+    run = json.loads(out)["runs"][0]
+    assert run["verdict"] == "undecidable", run
+    assert run["finding"]["evidence"]["reason"].startswith(kind)
+    assert code == 0

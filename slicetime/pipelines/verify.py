@@ -34,6 +34,7 @@ from slicetime.model import MAX_REPETITION_TIME, Finding, RunRecord, Severity, S
 from slicetime.numbers import as_written, secs
 from slicetime.readers.errors import ReadError
 from slicetime.readers.volumes import VolumeReader, scaling
+from slicetime.rules.correction import not_bold_series, series_kind
 from slicetime.schemes.generate import Protocol, array_times
 from slicetime.schemes.infer import infer_scheme
 from slicetime.schemes.labels import IRREGULAR, LabelParts, format_label
@@ -260,6 +261,11 @@ def verify_record(record: RunRecord, *, seed: int = 0) -> VerifyOutcome:
                             "is not in seconds (slicetime audit reports it)")
     if schedule.volume_times is not None:
         return _undecidable(record, "volumes are not evenly spaced (VolumeTiming)")
+    kind = not_bold_series(series_kind(record))
+    if kind is not None:  # correct refuses such a series (rules.correction)
+        return _undecidable(record, f"{kind}: the slice order is read from a slowly "
+                            "varying signal the volumes share, which such a series' volumes "
+                            "do not have")
     if not header.is_four_d:  # as the audit's file/series-shape says it
         return _undecidable(record, f"the image is not a 4-D time series (shape "
                             f"{list(header.shape)})", volumes=1)

@@ -45,14 +45,14 @@ MIN_VOLUMES = 6
 #: the suffixes whose volumes sample one slowly varying signal (BIDS: func datatype)
 BOLD_TYPE_SUFFIXES = frozenset({"bold", "cbv", "phase"})
 
-#: why interpolating across the volumes of each other kind is wrong
+#: each other kind of series: what it is, and why interpolating across its volumes is wrong
 _NOT_INTERPOLABLE = {
-    "dwi": "a diffusion series: its volumes differ in b-value and gradient direction, so "
-    "interpolating across them mixes contrasts",
-    "asl": "an arterial spin labelling series: label and control volumes alternate and "
-    "their difference is the signal, which interpolating across them destroys",
-    "sbref": "a single-band reference image, not a time series",
-    "m0scan": "an M0 calibration scan, not a BOLD time series",
+    "dwi": ("a diffusion series", "its volumes differ in b-value and gradient direction, so "
+            "interpolating across them mixes contrasts"),
+    "asl": ("an arterial spin labelling series", "label and control volumes alternate and "
+            "their difference is the signal, which interpolating across them destroys"),
+    "sbref": ("a single-band reference image", "not a time series"),
+    "m0scan": ("an M0 calibration scan", "not a BOLD time series"),
 }
 _FOLDER_KINDS = {"dwi": "dwi", "perf": "asl"}
 _WORD = re.compile(r"[A-Za-z0-9]+")
@@ -84,9 +84,18 @@ def suffix_refusal(suffix: str | None) -> str | None:
     not known, nothing to refuse)."""
     if suffix is None or suffix in BOLD_TYPE_SUFFIXES:
         return None
-    why = _NOT_INTERPOLABLE.get(suffix, f"suffix {suffix!r} is not a BOLD-type time series "
-                                "(bold, cbv, phase)")
-    return f"not corrected: {why}"
+    what, why = _NOT_INTERPOLABLE.get(suffix, (f"suffix {suffix!r}", "not a BOLD-type time "
+                                               "series (bold, cbv, phase)"))
+    return f"not corrected: {what}: {why}"
+
+
+def not_bold_series(kind: str | None) -> str | None:
+    """What a series of ``kind`` (:func:`series_kind`, or a BIDS suffix) is when it is
+    not a BOLD-type series (``a diffusion series``), or None: ``verify`` leaves such a
+    series undecided in these words, as ``correct`` refuses it (:func:`suffix_refusal`)."""
+    if kind is None or kind in BOLD_TYPE_SUFFIXES:
+        return None
+    return _NOT_INTERPOLABLE.get(kind, (f"a {kind} series, not a BOLD-type one", ""))[0]
 
 
 def too_few_volumes(n_volumes: int) -> str | None:
