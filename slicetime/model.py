@@ -524,10 +524,14 @@ class ResolvedTiming:
 
     @property
     def repetition_unusable(self) -> bool:
-        """True when the sidecar gives a ``RepetitionTime`` that no unit makes a plausible
-        TR (its unit verdict is not :attr:`UnitVerdict.usable`): ``repetition_time`` is
-        then None, and screens say the TR is not usable rather than show a number."""
+        """True when the TR's source gives one that no unit makes plausible (its unit
+        verdict is not :attr:`UnitVerdict.usable`): the sidecar's ``RepetitionTime``, or,
+        without one, the header's ``pixdim[4]`` (2000 labelled seconds).
+        ``repetition_time`` is then None, and screens say the TR is not usable rather
+        than show a number."""
         verdict = self.units.get("RepetitionTime")
+        if verdict is None and "VolumeTiming" not in self.units:
+            verdict = self.units.get("pixdim[4]")
         return verdict is not None and not verdict.usable
 
     def unit(self, field: str) -> str:

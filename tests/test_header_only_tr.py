@@ -109,3 +109,41 @@ def test_the_run_group_table_counts_runs(root: Path) -> None:
     assert numbers[0] == "2"  # runs
     assert numbers[-3:] == [str(summary["runs_affected"][k])
                             for k in ("error", "warning", "note")]
+
+
+NIB_DATA = Path(nib.__file__).parent / "tests" / "data"
+
+
+def test_a_header_tr_that_is_no_plausible_tr_in_its_unit_gives_no_tr(tmp_path: Path) -> None:
+    # a real file shipped with nibabel: example4d.nii.gz stores pixdim[4] = 2000 with
+    # xyzt_units seconds (read with nibabel below), a TR in milliseconds under the wrong
+    # unit label; BIDS times are in seconds, and no functional TR is 2000 s (the
+    # project's MAX_REPETITION_TIME, 100 s, common practice (no source))
+    source = NIB_DATA / "example4d.nii.gz"
+    header = nib.load(source).header
+    assert header.get_xyzt_units()[1] == "sec" and float(header["pixdim"][4]) == 2000.0
+    write_description(tmp_path)
+    rel = "sub-01/func/sub-01_task-a_bold.nii.gz"
+    (tmp_path / rel).parent.mkdir(parents=True)
+    (tmp_path / rel).write_bytes(source.read_bytes())
+    code, out = invoke("audit", str(tmp_path), "--format", "json")
+    run = json.loads(out)["runs"][0]
+    assert code == 1
+    assert run["repetition_time"] is None  # not 2000 s, and not a guessed 2 s
+    missing = next(f for f in run["findings"] if f["code"] == "tr/missing")
+    assert "no plausible TR" in missing["hint"] and "2 s if" in missing["hint"]
+    code, out = invoke("show", str(tmp_path / rel))
+    assert "repetition time  not usable" in out and "2000 s" not in out
+
+
+def test_a_file_given_by_a_name_that_is_not_bids_is_said_so(tmp_path: Path) -> None:
+    # nibabel's functional.nii: a real 4-D image, named as no BIDS run is (BIDS file
+    # naming: sub-<label>[_<key>-<label>...]_<suffix>); given by path it is audited, and
+    # the audit says which checks it could not apply instead of reporting it clean
+    given = tmp_path / "functional.nii"
+    given.write_bytes((NIB_DATA / "functional.nii").read_bytes())
+    code, out = invoke("audit", str(given), "--format", "json")
+    findings = json.loads(out)["runs"][0]["findings"]
+    named = [f for f in findings if f["code"] == "file/bad-run-name"]
+    assert len(named) == 1 and "were not applied" in named[0]["message"]
+    assert code == 0  # a warning: below the default --fail-on error

@@ -306,7 +306,14 @@ def tr_missing(record: RunRecord) -> Iterator[Hit]:
     hint = None
     if record.header is not None and record.header.repetition_time:
         ev["header_tr"] = record.header.repetition_time
-        hint = f"The header's pixdim[4] says {secs(record.header.repetition_time)}."
+        verdict = record.timing.units.get("pixdim[4]")
+        if verdict is not None and not verdict.usable:  # resolve decides it
+            header = record.header
+            hint = (f"The header's pixdim[4] is {plain(header.raw_pixdim4)} with time unit "
+                    f"{header.time_unit}: no plausible TR ({secs(header.raw_pixdim4 / 1000)} if "
+                    "it was written in milliseconds); write RepetitionTime from the protocol.")
+        else:
+            hint = f"The header's pixdim[4] says {secs(record.header.repetition_time)}."
     yield Hit(
         "neither RepetitionTime nor VolumeTiming is given by any applicable sidecar",
         "RepetitionTime", ev, hint=hint,

@@ -363,11 +363,21 @@ def repetition_time_unit(value: float, field: str = "RepetitionTime") -> UnitVer
 
 @functools.lru_cache(maxsize=256)
 def _header_unit(field: str, unit: str, raw: float) -> UnitVerdict:
-    return UnitVerdict(field, unit, {"xyzt_units": unit, "as_written": raw})
+    evidence: dict[str, Any] = {"xyzt_units": unit, "as_written": raw}
+    seconds = raw * UnitVerdict(field, unit).factor
+    if field == "pixdim[4]" and seconds > MAX_REPETITION_TIME:
+        # the stated unit makes no plausible TR (2000 labelled seconds): the header gives
+        # no TR; a sidecar TR in milliseconds is read as such, a header's is not guessed
+        evidence.update(usable=False, above=MAX_REPETITION_TIME, as_seconds=seconds,
+                        reason="no plausible TR in the unit xyzt_units states")
+    return UnitVerdict(field, unit, evidence)
 
 
 def header_unit(field: str, header: HeaderInfo, raw: float) -> UnitVerdict:
-    """A header time's unit is what ``xyzt_units`` states (``unknown`` reads as seconds)."""
+    """A header time's unit is what ``xyzt_units`` states (``unknown`` reads as seconds);
+    a ``pixdim[4]`` that is no plausible TR in that unit (above
+    ``model.MAX_REPETITION_TIME``) is not usable (:attr:`UnitVerdict.usable`), and the
+    header then gives the run no TR."""
     return _header_unit(field, header.time_unit, raw)
 
 
@@ -406,7 +416,8 @@ def _complete(slices: _Slices, metadata: Mapping[str, Any],
             units["slice_duration"] = header_unit("slice_duration", header,
                                                   header.raw_slice_duration)
         if tr is None and volume_times is None and header.repetition_time \
-                and "RepetitionTime" not in units:  # an unusable sidecar TR is not replaced
+                and "RepetitionTime" not in units \
+                and units["pixdim[4]"].usable:  # an unusable sidecar TR is not replaced
             tr = header.repetition_time
             tr_source = (schedule.sources.get("RepetitionTime") if schedule is not None
                          else None) or Source("header", "pixdim[4]", image_file)
