@@ -519,3 +519,39 @@ def test_milliseconds_judged_against_the_headers_tr_say_why_they_are_not_planned
     assert result.exit_code == 1  # a fixable finding not planned
     line = next(x for x in result.output.splitlines() if "timing/units-ms not planned" in x)
     assert "header's pixdim[4]" in line and "add RepetitionTime to the sidecar" in line
+
+
+def test_left_alone_findings_say_their_own_advice_not_the_catalogues(ds: Path) -> None:
+    # BIDS: RepetitionTime is in seconds; 1e12 is no TR in seconds nor, divided by 1000,
+    # in milliseconds (common practice (no source): TRs lie within seconds), so the
+    # finding's own hint, not the catalogue's "divide by 1000", is what fix must repeat
+    from slicetime.codes import RULES
+
+    rel = run_path("01")
+    write_run(ds, rel, SHAPE, tr=TR, sidecar={"RepetitionTime": 1e12,
+                                              "SliceTiming": interleaved()})
+    finding = next(f for r in audit_paths([ds]).runs for f in r.findings
+                   if f.code == "tr/units-ms")
+    assert finding.hint and finding.hint != RULES["tr/units-ms"].fix
+    result = fix(ds)
+    line = next(x for x in result.output.splitlines() if "tr/units-ms ×1" in x)
+    assert finding.hint in line, result.output
+    assert (RULES["tr/units-ms"].fix or "") not in result.output
+
+
+def test_left_alone_findings_with_many_own_hints_are_summed_up(ds: Path) -> None:
+    # NIfTI-1: pixdim[4] with xyzt_units seconds; a header TR a thousand times the
+    # sidecar's gets a hint naming its own pixdim[4], so five runs with five values
+    # give five hints: HINTS_SHOWN of them are printed, the rest summed in one line
+    from slicetime.interfaces.terminal import HINTS_SHOWN
+
+    for i in range(HINTS_SHOWN + 2):
+        rel = run_path(f"0{i}")
+        write_run(ds, rel, SHAPE, tr=(TR + i) * 1000,
+                  sidecar={"RepetitionTime": TR + i, "SliceTiming": interleaved()})
+    hints = {f.hint for r in audit_paths([ds]).runs for f in r.findings
+             if f.code == "header/tr-disagrees"}
+    assert len(hints) == HINTS_SHOWN + 2
+    lines = [x for x in fix(ds).output.splitlines() if "header/tr-disagrees ×" in x]
+    assert len(lines) == HINTS_SHOWN + 1
+    assert "2 other hints" in lines[-1] and "header/tr-disagrees ×2" in lines[-1]

@@ -324,13 +324,19 @@ def render_fix_plan(plan: FixPlan, console: Console, apply_hint: str | None = No
             console.print(Text(("" if i == 0 else "    ") + part, style="bold"), soft_wrap=True)
 
 
+#: distinct pieces of advice fix's list of findings left alone prints per code (a hint
+#: may name a run's own values, so a large dataset could have one per run)
+HINTS_SHOWN = 3
+
+
 def left_unfixed(plan: FixPlan) -> list[tuple[str, int, str]]:
     """The errors and warnings of the plan's audit, on the runs under the given paths,
     that no planned change repairs: (code, how many, why), in code order (the runs the
     plan was not asked about are not counted; the dataset's own findings only when every
     run was given). Why: fix repairs sidecar metadata only, so a code it cannot repair
-    says what to do instead; a repairable one it did not plan is explained by the plan's
-    notes."""
+    says what to do instead, in the finding's own hint (the catalogue's text unless the
+    check knew better, as for a TR that is no TR in any unit: one line per distinct
+    hint); a repairable one it did not plan is explained by the plan's notes."""
     from slicetime.rules import RULES
 
     if plan.audit is None:
@@ -339,25 +345,29 @@ def left_unfixed(plan: FixPlan) -> list[tuple[str, int, str]]:
     given = plan.given
     runs = [run for run in plan.audit.runs
             if given is None or (run.record.root, run.record.path) in given]
-    counts: dict[str, int] = {}
-    for run in runs:
-        for finding in run.findings:
-            if finding.severity is Severity.NOTE or \
-                    (run.record.root, run.record.path, finding.code) in repaired:
-                continue
-            counts[finding.code] = counts.get(finding.code, 0) + 1
-    for finding in (plan.audit.dataset_findings if len(runs) == len(plan.audit.runs) else ()):
-        if finding.severity is not Severity.NOTE:
-            counts[finding.code] = counts.get(finding.code, 0) + 1
-    out = []
-    for code, n in sorted(counts.items()):
-        rule = RULES.get(code)
+    left = [finding for run in runs for finding in run.findings
+            if finding.severity is not Severity.NOTE
+            and (run.record.root, run.record.path, finding.code) not in repaired]
+    if len(runs) == len(plan.audit.runs):
+        left += [f for f in plan.audit.dataset_findings if f.severity is not Severity.NOTE]
+    counts: dict[tuple[str, str], int] = {}
+    for finding in left:
+        rule = RULES.get(finding.code)
         if rule is not None and rule.fixable:
             why = ("repairable, but not planned here (listed above with the reason)"
-                   if any(u.code == code for u in plan.unplanned)
+                   if any(u.code == finding.code for u in plan.unplanned)
                    else "repairable, but not planned here (see the notes above)")
         else:
-            todo = rule.fix if rule is not None and rule.fix else "see slicetime explain " + code
-            why = f"not a sidecar repair: {todo}"
-        out.append((code, n, why))
+            why = f"not a sidecar repair: {finding.hint or 'see slicetime explain ' + finding.code}"
+        counts[(finding.code, why)] = counts.get((finding.code, why), 0) + 1
+    out: list[tuple[str, int, str]] = []
+    for code in sorted({code for code, _ in counts}):
+        whys = sorted(((n, why) for (c, why), n in counts.items() if c == code),
+                      key=lambda item: (-item[0], item[1]))
+        out += [(code, n, why) for n, why in whys[:HINTS_SHOWN]]
+        rest = sum(n for n, _ in whys[HINTS_SHOWN:])
+        if rest:  # advice that names each run's own values: the audit lists it per run
+            others = count(len(whys) - HINTS_SHOWN, "other hint")
+            out.append((code, rest, f"not a sidecar repair: {others}, each for its runs' "
+                        "own values (see slicetime audit)"))
     return out
