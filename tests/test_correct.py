@@ -17,6 +17,7 @@ from click.testing import CliRunner
 
 from slicetime.interfaces.cli import cli
 from slicetime.pipelines import correct as correct_module
+from slicetime.pipelines.audit import audit_paths
 from slicetime.pipelines.memory import plan_budget
 from slicetime.readers.atomic import TEMP_PREFIX, TEMP_SUFFIX
 from slicetime.schemes.generate import Protocol, slice_timing
@@ -352,9 +353,17 @@ def test_runs_with_timing_errors_are_refused_unless_forced(dataset: Path, tmp_pa
     # forcing cannot make times beyond the TR possible (BIDS: SliceTiming values are
     # seconds within the volume and must not exceed RepetitionTime)
     assert forced.exit_code == 1
-    # milliseconds are never called seconds: the values as written, then in seconds
-    assert ("SliceTiming runs from 0 to 1750, which reads as milliseconds (0 s to 1.75 s), "
-            "outside the acquisition window" in " ".join(forced.output.split()))
+    # milliseconds are never called seconds, nor seconds outside the window: the refusal
+    # says plainly that the values look like milliseconds, names the file and the field
+    # the audit's finding names, and gives that finding's own advice (its hint)
+    said = " ".join(forced.output.split())
+    assert ("SliceTiming in sub-01/func/sub-01_task-hum_bold.json looks like milliseconds: "
+            "it runs from 0 to 1750, which divided by 1000 is 0 s to 1.75 s" in said), said
+    assert "outside the acquisition window" not in said
+    finding = next(f for r in audit_paths([dataset]).runs for f in r.findings
+                   if f.code == "timing/units-ms")
+    assert finding.file == REL.replace(".nii.gz", ".json") and finding.field == "SliceTiming"
+    assert finding.hint and finding.hint in said and "slicetime fix" in finding.hint
     assert not output_of(out, REL).exists()
 
 

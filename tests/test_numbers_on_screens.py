@@ -181,7 +181,7 @@ def test_hostile_values_are_shown_as_numbers_does(hostile_screens: dict) -> None
                      r"\d{1,3}(,\d{3})+ bytes", audit)
     # the millisecond timing that correct refuses is not called seconds
     forced = " ".join(hostile_screens["correct --force", 120].split())
-    assert "which reads as milliseconds" in forced
+    assert "looks like milliseconds" in forced
     assert not re.search(r"run from [\d.,]+ to [\d.,]{5,} s", forced)
 
 

@@ -40,7 +40,13 @@ class PlanError(ValueError):
 
 
 class ImplausibleTiming(PlanError):
-    """The timing is physically impossible for an fMRI run: refused even with --force."""
+    """The timing is physically impossible for an fMRI run: refused even with --force.
+    ``field`` names the value (a sidecar key), so the caller can add the audit's advice
+    for it."""
+
+    def __init__(self, message: str, field: str | None = None) -> None:
+        super().__init__(message)
+        self.field = field
 
 
 #: The physical plausibility gate, in one place (README, "Safety"). A functional run
@@ -64,46 +70,48 @@ def check_plausible(schedule: SliceSchedule) -> None:
     if tr is not None and not (math.isfinite(tr) and low_tr <= tr <= high_tr):
         raise ImplausibleTiming(
             f"RepetitionTime {as_written(tr)} is outside the plausible {bounds} "
-            "(milliseconds?), so the run cannot be corrected even with --force"
-        )
+            "(milliseconds?), so the run cannot be corrected even with --force",
+            "RepetitionTime")
     if schedule.volume_times is not None:
         onsets = np.asarray(schedule.volume_times, dtype=np.float64)
         steps = np.diff(onsets)
         if not np.all(np.isfinite(onsets)) or (onsets.size and onsets.min() < 0):
-            raise ImplausibleTiming("VolumeTiming holds a negative or non-finite time")
+            raise ImplausibleTiming("VolumeTiming holds a negative or non-finite time",
+                                    "VolumeTiming")
         if steps.size and (steps.max() > high_tr or steps.min() < low_tr):
             raise ImplausibleTiming(
                 f"VolumeTiming spaces volumes {as_written(float(steps.min()))} to "
                 f"{as_written(float(steps.max()))} apart, "
                 f"outside the plausible {bounds} (milliseconds?), so the run cannot be "
-                "corrected even with --force"
-            )
+                "corrected even with --force", "VolumeTiming")
     for name, value in (("DelayTime", schedule.delay_time),
                         ("AcquisitionDuration", schedule.acquisition_duration)):
         if value is not None and not (math.isfinite(value) and 0.0 <= value <= high_tr):
             raise ImplausibleTiming(
                 f"{name} {as_written(value)} is outside the plausible 0 to {secs(high_tr)}, so "
-                "the run cannot be corrected even with --force"
-            )
+                "the run cannot be corrected even with --force", name)
     times = schedule.times
     if times and not all(math.isfinite(t) for t in times):
-        raise ImplausibleTiming("SliceTiming holds a non-finite value")
+        raise ImplausibleTiming("SliceTiming holds a non-finite value", "SliceTiming")
     window = schedule.acquisition_window
     if times:
         low, high = min(times), max(times)
         limit = min(window, high_tr) if window is not None else high_tr
         if outside_window((low, high), limit):  # the one boundary rule
-            if looks_like_milliseconds(times, window):
-                # the values are milliseconds: never call them seconds
-                shown = (f"SliceTiming runs from {as_written(low)} to {as_written(high)}, "
-                         f"which reads as milliseconds ({secs(low / 1000)} to "
-                         f"{secs(high / 1000)}),")
-            else:
-                shown = f"slice times run from {secs(low)} to {secs(high)},"
+            if looks_like_milliseconds(times, window):  # resolve's verdict, the audit's too
+                # the values are milliseconds: say so plainly, never call them seconds
+                source = schedule.sources.get("SliceTiming")
+                where = f" in {source.file}" if source is not None and source.file else ""
+                raise ImplausibleTiming(
+                    f"SliceTiming{where} looks like milliseconds: it runs from "
+                    f"{as_written(low)} to {as_written(high)}, which divided by 1000 is "
+                    f"{secs(low / 1000)} to {secs(high / 1000)} (the acquisition window is 0 "
+                    f"to {secs(limit)}); BIDS times are seconds, so the values cannot be used "
+                    "as written, even with --force", "SliceTiming")
             raise ImplausibleTiming(
-                f"{shown} outside the acquisition window of 0 to {secs(limit)}, so they "
-                "cannot be used even with --force"
-            )
+                f"slice times run from {secs(low)} to {secs(high)}, outside the acquisition "
+                f"window of 0 to {secs(limit)}, so they cannot be used even with --force",
+                "SliceTiming")
 
 
 @dataclass(frozen=True)

@@ -310,7 +310,8 @@ def correct_run(
         code = (IMPLAUSIBLE_CODE if isinstance(exc, ImplausibleTiming)
                 else exc.code if isinstance(exc, CorrectionError) else None)
         if code is not None:
-            field_name = exc.field if isinstance(exc, CorrectionError) else None
+            field_name = exc.field if isinstance(exc, CorrectionError | ImplausibleTiming) \
+                else None
             outcome.blocking.append(
                 make_finding(code, message, file=record.path, field=field_name)
             )
@@ -363,7 +364,11 @@ def _refusal(
         if not errors:
             raise
         codes = ", ".join(sorted({f.code for f in errors}))
-        raise ImplausibleTiming(f"{exc} (the audit found {codes}; see slicetime show)") from None
+        # what to do is the audit's own advice for the value (its finding's hint), so
+        # correct and audit say the same of the run
+        advice = next((f.hint for f in errors if f.field == exc.field and f.hint), None)
+        then = f". {advice}" if advice else "; see slicetime show"
+        raise ImplausibleTiming(f"{exc} (the audit found {codes}){then}", exc.field) from None
     problem = scaling_problem(record.header)
     if problem is not None:
         raise CorrectionError(f"{problem}, so the run is refused", code=SCALING_CODE,
