@@ -160,6 +160,28 @@ def test_correct_copies_nothing_from_a_linked_sidecar_and_reads_no_linked_image(
         assert MARKER not in path.read_text()
 
 
+def test_correct_names_the_own_sidecar_link_as_the_audit_does(tmp_path: Path) -> None:
+    # the run's only timing is in its own sidecar, a link out of the dataset (not read):
+    # correct's refusal gives the audit's own finding (file and message), not only "no
+    # usable slice timing"
+    ds = tmp_path / "ds"
+    write_description(ds)
+    write_run(ds, RUN.format(s="01"), shape=(4, 4, 3, 8), tr=TR)
+    outside = tmp_path / "home" / "own.json"
+    outside.parent.mkdir()
+    outside.write_text(json.dumps({"RepetitionTime": TR, "SliceTiming": TIMES}))
+    symlink(ds / OWN.format(s="01"), outside)
+    audit = audit_paths([ds]).runs[0]
+    link = next(f for f in audit.findings if f.code == "file/link-leaves-dataset")
+    assert link.file == OWN.format(s="01")
+    code, output = invoke("correct", ds, "--out", tmp_path / "out", "--format", "json")
+    assert code == 1
+    reason = json.loads(output)["runs"][0]["reason"]
+    assert "no usable slice timing" in reason
+    assert link.message.startswith(f"{link.file}: ")  # the audit's message names the file
+    assert link.message in reason, reason
+
+
 def test_verify_does_not_read_a_linked_image(linked: Path) -> None:
     code, output = invoke("verify", linked / RUN.format(s="02"))
     assert code == 2

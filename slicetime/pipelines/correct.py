@@ -356,7 +356,8 @@ def _refusal(
     if short is not None:
         raise CorrectionError(short, code=TOO_FEW_CODE, field="dim")
     if record.schedule is None:
-        why = "; ".join(p.message for p in record.timing_problems) or "no slice timing found"
+        why = "; ".join([p.message for p in record.timing_problems]
+                        or _unread_sidecars(run) or ["no slice timing found"])
         return f"{record.path}: no usable slice timing ({why})", []
     try:
         check_plausible(record.schedule)
@@ -393,6 +394,19 @@ def _refusal(
             [],
         )
     return None, [f"corrected despite audit error {f.code}: {f.message}" for f in errors]
+
+
+def _unread_sidecars(run: RunResult) -> list[str]:
+    """What the reader said of the run's sidecars it could not use (a link leading out
+    of the dataset, a file that is no JSON object, ...), each as ``file: message``, in
+    the audit's own words (its findings checked while reading, warnings and errors,
+    about a file other than the image)."""
+    from slicetime.codes import RULES
+
+    return [f.message if f.message.startswith(f"{f.file}: ") else f"{f.file}: {f.message}"
+            for f in run.findings
+            if f.severity is not Severity.NOTE and f.file not in (None, run.record.path)
+            and f.code in RULES and RULES[f.code].checked == "reading"]
 
 
 def _command_line_accepts(specs: list[str]) -> str:
