@@ -163,6 +163,58 @@ def test_a_dicom_object_that_is_no_image_is_named_by_its_sop_class() -> None:
     assert f"Modality {ds.Modality}" in lines[0]
 
 
+@pytest.mark.parametrize("meta", [True, False])
+def test_a_bare_non_image_data_set_is_told_apart_from_a_file_that_is_no_dicom(
+        tmp_path: Path, meta: bool) -> None:
+    # pydicom writes rtplan.dcm without the PS3.10 preamble and DICM (enforce_file_format
+    # False; with and without its file meta): still DICOM, pydicom reads it forced, and it
+    # is no image (no Rows, PS3.3 C.7.6.3), so it gets the line a marked RT plan gets
+    source = get_testdata_file("rtplan.dcm", download=False)
+    assert source is not None
+    ds = pydicom.dcmread(str(source))
+    folder = tmp_path / "sourcedata" / "plan"
+    folder.mkdir(parents=True)
+    bare = folder / "plan.dcm"
+    ds.preamble = None
+    if meta:
+        ds.save_as(bare, enforce_file_format=False)
+    else:
+        del ds.file_meta
+        ds.save_as(bare, implicit_vr=True, little_endian=True, enforce_file_format=False)
+    head = bare.read_bytes()[:132]
+    assert head[128:132] != b"DICM"  # PS3.10 7.1: no marker
+    with pytest.raises(pydicom.errors.InvalidDicomError):
+        pydicom.dcmread(bare)  # pydicom itself wants force for it
+    read = pydicom.dcmread(bare, force=True)
+    result = CliRunner().invoke(cli, ["show", str(bare)])
+    line = result.stderr.strip()
+    assert result.exit_code == 2 and "not a DICOM file" not in line, line
+    assert "not an image series" in line and f"SOP class {read.SOPClassUID.name}" in line
+    # bytes that are no DICOM still get the reader's "not a DICOM file"
+    junk = folder / "junk.dcm"
+    junk.write_bytes(b"no data set here, only text\n" * 20)
+    result = CliRunner().invoke(cli, ["show", str(junk)])
+    assert result.exit_code == 2 and "not a DICOM file" in result.stderr
+
+
+def test_a_bare_image_data_set_is_read_as_pydicom_reads_it(tmp_path: Path) -> None:
+    # pydicom's MR_small.dcm written without preamble and DICM: read as pydicom reads it
+    # forced (rows, columns, position along the normal)
+    source = get_testdata_file("MR_small.dcm", download=False)
+    assert source is not None
+    ds = pydicom.dcmread(str(source))
+    ds.preamble = None
+    bare = tmp_path / "mr.dcm"
+    ds.save_as(bare, enforce_file_format=False)
+    read = pydicom.dcmread(bare, force=True, stop_before_pixels=True)
+    series = read_series(str(bare), bare.name)
+    assert (series.rows, series.columns) == (read.Rows, read.Columns)
+    normal = np.cross([float(v) for v in read.ImageOrientationPatient[:3]],
+                      [float(v) for v in read.ImageOrientationPatient[3:]])
+    assert series.positions[0] == pytest.approx(
+        float(np.dot([float(v) for v in read.ImagePositionPatient], normal)))
+
+
 def test_truncated_files_header_read_or_one_line_exit_2(tmp_path: Path) -> None:
     # pydicom's MR_truncated.dcm is cut inside its pixel data: the header is whole, and a
     # header-only reader reads it as pydicom does (stop_before_pixels)

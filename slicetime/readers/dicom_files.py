@@ -9,6 +9,10 @@ file meta information, then the data set) is found as
 * a member of a ``.zip``, ``.tar``, ``.tar.gz``/``.tgz`` archive (the BIDS
   specification's ``sourcedata/`` often holds the scanner's export that way).
 
+A ``.dcm``/``.ima`` file without the preamble and ``DICM`` (a bare data set, as
+some tools write it) is read as pydicom reads it forced, when that gives a data set
+with a SOPClassUID; otherwise it is "not a DICOM file".
+
 Only header bytes are read: plain files through pydicom with
 ``stop_before_pixels`` (large values deferred); compressed files and archive
 members as a prefix that ends at the Pixel Data element (7FE0,0010), growing
@@ -189,6 +193,7 @@ def _parse(source: Any, shown: str, tags: Sequence[str] | None, defer: bool) -> 
     import pydicom
     from pydicom.errors import InvalidDicomError
 
+    start = source.tell() if hasattr(source, "tell") else 0
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
@@ -196,11 +201,37 @@ def _parse(source: Any, shown: str, tags: Sequence[str] | None, defer: bool) -> 
                                    defer_size=_DEFER if defer else None,
                                    specific_tags=list(tags) if tags else None)
     except InvalidDicomError:
-        raise fail(shown, "not a DICOM file (no DICM marker after the preamble)") from None
+        bare = _bare_data_set(source, start, tags, defer)
+        if bare is None:
+            raise fail(shown, "not a DICOM file (no DICM marker after the preamble, and "
+                       "no data set with a SOPClassUID)") from None
+        return bare
     except OSError as exc:
         raise fail(shown, f"cannot read the file ({exc.strerror or exc})") from None
     except Exception as exc:  # pydicom raises many types for damaged files
         raise fail(shown, f"damaged DICOM header ({type(exc).__name__}: {exc})") from None
+
+
+def _bare_data_set(source: Any, start: int, tags: Sequence[str] | None, defer: bool) -> Any:
+    """A data set written without the PS3.10 preamble, ``DICM`` and file meta (DICOM
+    PS3.10 7.1 makes them the file format; a bare data set is still DICOM), read as
+    pydicom reads it when forced, or None when it is not one: every composite object
+    carries SOPClassUID (0008,0016), DICOM PS3.3 C.12.1 (SOP Common module, type 1),
+    which bytes that are no DICOM do not give."""
+    import pydicom
+
+    wanted = None if not tags else [*tags, "SOPClassUID"]
+    try:
+        if hasattr(source, "seek"):
+            source.seek(start)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            dataset = pydicom.dcmread(source, stop_before_pixels=True, force=True,
+                                      defer_size=_DEFER if defer else None,
+                                      specific_tags=wanted)
+        return dataset if dataset.get("SOPClassUID") else None
+    except Exception:  # pydicom raises many types for bytes that are no DICOM
+        return None
 
 
 def _read_more(stream: Any, n: int, shown: str) -> bytes:
