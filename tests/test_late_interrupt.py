@@ -224,3 +224,109 @@ def test_a_ctrl_c_during_the_demo_names_the_step_and_the_folder(tmp_path: Path) 
     assert one_line(stopped) == ("slicetime: interrupted while the demo's last summary "
                                  f"was printed; every file of the demo is written in {out}")
     assert (out / "quiet-rooms-fixed").is_dir() and (out / "fix-backups").is_dir()
+
+
+# ------------------------------------------- every command tells where a Ctrl-C stopped it
+
+
+def test_no_command_module_is_left_to_the_bare_interrupted_line() -> None:
+    # the last resort (friendly) says it does not know what was written; every command
+    # either tells its stages itself or is interruptible as a whole
+    import slicetime.interfaces.commands as package
+
+    folder = Path(package.__file__).parent
+    for module in sorted(folder.glob("*.py")):
+        if module.name in ("__init__.py", "shared.py"):
+            continue
+        text = module.read_text(encoding="utf-8")
+        told = ("interruptible(" in text or "on_interrupt(" in text
+                or "interrupted(" in text or "Interrupted" in text)
+        assert told, module.name
+
+
+@pytest.mark.parametrize(("point", "args", "told"), [
+    ("timing:start", ["timing", "--slices", "4", "--tr", "2"],
+     "while the times were worked out or printed; timing writes no file"),
+    ("explain:start", ["explain", "timing/units-ms"],
+     "while the documentation was printed; explain writes no file"),
+    ("verify:start", ["verify", "{ds}/" + RUN],
+     "while the runs were read or the report printed; verify writes no file"),
+    ("audit:runs", ["audit", "{ds}"], "while the runs were audited; no report written"),
+    ("fix:inputs", ["fix", "{ds}"], "before the plan was made; nothing was written"),
+    ("fix:show", ["fix", "{ds}"], "while the plan was checked or shown"),
+])
+def test_a_ctrl_c_in_a_command_that_writes_nothing_says_so(
+        dataset: Path, point: str, args: list[str], told: str) -> None:
+    before = {p: p.stat().st_mtime_ns for p in dataset.rglob("*")}
+    stopped = run(point, *(a.replace("{ds}", str(dataset)) for a in args))
+    assert one_line(stopped).startswith(f"slicetime: interrupted {told}"), stopped.stderr
+    assert {p: p.stat().st_mtime_ns for p in dataset.rglob("*")} == before
+
+
+def test_a_ctrl_c_while_audit_writes_its_reports_names_what_was_written(
+        dataset: Path, tmp_path: Path) -> None:
+    page, report = tmp_path / "audit.html", tmp_path / "audit.json"
+    args = ["audit", str(dataset), "--html", str(page), "--output", str(report),
+            "--format", "json"]
+    stopped = run("audit:output", *args)
+    assert one_line(stopped) == (f"slicetime: interrupted while the report was written; "
+                                 f"{report} not written; {page} written")
+    assert page.is_file() and not report.exists()  # what it says is so
+    assert not [p for p in tmp_path.iterdir() if p.name.startswith(".slicetime-")]
+    page.unlink()
+    stopped = run("audit:html", *args)
+    assert one_line(stopped) == (f"slicetime: interrupted while the HTML report was "
+                                 f"written; {page} not written")
+    assert not page.exists() and not report.exists()
+
+
+def test_a_ctrl_c_while_fix_saves_its_plan_leaves_no_plan(
+        dataset: Path, tmp_path: Path) -> None:
+    (dataset / OWN).write_text(json.dumps(
+        {"TaskName": "hum", "RepetitionTime": TR,
+         "SliceTiming": [t * 1000 for t in seconds()]}), encoding="utf-8")
+    plan = tmp_path / "plan.json"
+    stopped = run("fix:save", "fix", str(dataset), "--plan", str(plan))
+    assert one_line(stopped) == (f"slicetime: interrupted while the plan was saved; {plan} "
+                                 "not written, nothing in the dataset changed")
+    assert not plan.exists()
+
+
+def test_a_ctrl_c_during_undo_stops_between_files_and_the_rerun_finishes(
+        dataset: Path, tmp_path: Path) -> None:
+    # two files repaired (SliceTiming in milliseconds, BIDS wants seconds), then undone:
+    # a Ctrl-C after the first file restored stops there and says so; the same undo run
+    # again restores the other, and every byte is back
+    second = "sub-02/func/sub-02_task-hum_bold.nii.gz"
+    write_run(dataset, second, shape=(4, 4, 6, 8), tr=TR, sidecar={"TaskName": "hum"})
+    for own in (OWN, second.replace(".nii.gz", ".json")):
+        (dataset / own).write_text(json.dumps(
+            {"TaskName": "hum", "RepetitionTime": TR,
+             "SliceTiming": [t * 1000 for t in seconds()]}), encoding="utf-8")
+    before = {p: p.read_bytes() for p in dataset.rglob("*.json")}
+    backups = tmp_path / "backups"
+    applied = run("none", "fix", str(dataset), "--apply", "--backup-dir", str(backups))
+    assert applied.returncode == 0, applied.stderr
+    journal = backups / "journal.json"
+    stopped = run("undo:file", "fix", "--undo", str(journal))
+    assert one_line(stopped) == ("slicetime: interrupted after 1 file was restored (listed "
+                                 "above); 1 file not restored yet: run the same undo again")
+    assert stopped.stdout.count("restored  ") == 1
+    restored = stopped.stdout.split("restored  ", 1)[1].strip()
+    assert (dataset / restored).read_bytes() == before[dataset / restored]
+    assert json.loads(journal.read_text())["status"] == "applied"  # not undone yet
+    again = run("none", "fix", "--undo", str(journal))
+    assert again.returncode == 0, again.stderr
+    assert {p: p.read_bytes() for p in dataset.rglob("*.json")} == before
+
+
+def test_a_ctrl_c_while_correct_prepares_its_folder_says_what_may_be_written(
+        dataset: Path, tmp_path: Path) -> None:
+    out = tmp_path / "aligned"
+    stopped = run("correct:describe", "correct", str(dataset), "--out", str(out),
+                  "--jobs", "1", "--no-progress")
+    assert one_line(stopped) == (
+        "slicetime: interrupted while the output folder was prepared, before any run was "
+        f"corrected; no output written, {out / 'dataset_description.json'} (naming the "
+        "inputs) may have been (rerun the same command)")
+    assert not any(out.rglob("*.nii*"))

@@ -128,10 +128,13 @@ def correct_paths(
     options = dataclasses.replace(options, policy_accepts=audit.accepts)
     roots = sorted({r.record.root for r in audit.runs})
     given_roots = {str(find_root(Path(p))) for p in paths} | set(audit.roots) | set(roots)
-    check_output_location(
-        options.out, [Path(r) for r in sorted(given_roots)], list(paths),
-        include_derivatives=include_derivatives,
-    )
+    try:
+        check_output_location(
+            options.out, [Path(r) for r in sorted(given_roots)], list(paths),
+            include_derivatives=include_derivatives,
+        )
+    except KeyboardInterrupt:
+        raise NotStarted("while the output folder was checked") from None
     created_out = not options.out.exists()
     options.out.mkdir(parents=True, exist_ok=True)
     try:
@@ -161,16 +164,24 @@ def _correct_locked(
     """The batch, while this process holds the lock of ``--out``: the description's
     ``DatasetLinks`` and the provenance file are read and rewritten by one batch at a
     time."""
-    names, links = dataset_names(options.out, roots, mix_inputs=options.mix_inputs)
-    result = CorrectResult(out=str(options.out), omitted=options.omit_leading)
-    result.dataset_findings = [
-        f for f in audit.dataset_findings if f.severity is Severity.ERROR
-    ]
-    clashes = _clash_outcomes(audit.runs, options.desc)
-    remove_stale_temporaries(options.out)
-    if any(r.record.abs_path not in clashes for r in audit.runs):
-        # before any output: a batch killed half way still names its inputs
-        _describe(options.out, roots, links, options)
+    describing = False
+    try:
+        names, links = dataset_names(options.out, roots, mix_inputs=options.mix_inputs)
+        result = CorrectResult(out=str(options.out), omitted=options.omit_leading)
+        result.dataset_findings = [
+            f for f in audit.dataset_findings if f.severity is Severity.ERROR
+        ]
+        clashes = _clash_outcomes(audit.runs, options.desc)
+        remove_stale_temporaries(options.out)
+        if any(r.record.abs_path not in clashes for r in audit.runs):
+            # before any output: a batch killed half way still names its inputs
+            describing = True
+            test_point("correct:describe")
+            _describe(options.out, roots, links, options)
+    except KeyboardInterrupt:
+        raise NotStarted("while the output folder was prepared",
+                         f"no output written, {options.out / 'dataset_description.json'} "
+                         "(naming the inputs) may have been" if describing else None) from None
     items = [(run, names[run.record.root]) for run in audit.runs
              if run.record.abs_path not in clashes]
     started = time.time()
@@ -324,11 +335,13 @@ def _auto_threads(executor: Executor | None, jobs: int, n_runs: int) -> int:
 
 class NotStarted(KeyboardInterrupt):
     """Ctrl-C before any run was started (``stage``: what was being done): nothing
-    was corrected and no output written."""
+    was corrected and no output written (``written``: what may have been written,
+    said in full, instead of "nothing written")."""
 
-    def __init__(self, stage: str) -> None:
+    def __init__(self, stage: str, written: str | None = None) -> None:
         super().__init__("interrupted")
         self.stage = stage
+        self.written = written
 
 
 class CorrectInterrupted(KeyboardInterrupt):

@@ -533,6 +533,11 @@ class UndoResult:
     refused: list[str] = field(default_factory=list)  # "file: why", each not restored
     failure: str | None = None  # the undo stopped here; ``restored`` says what was done
     recovered: list[str] = field(default_factory=list)  # other interrupted applies put right
+    #: a SIGINT or SIGTERM stopped the undo between two files (its number); ``restored``
+    #: says what was done, ``left`` how many files it did not reach
+    signal: int | None = None
+    left: int = 0
+    late_signal: bool = False  # one came after the last file: the undo is whole
 
 
 def _restore(entry: JournalEntry, backup: Path, tag: str) -> None:
@@ -583,7 +588,9 @@ def undo(journal_path: Path, at: Path | None = None) -> UndoResult:
     journal = read_journal(Path(os.path.abspath(journal_path)), at)
     backup = journal.path.parent
     result = UndoResult(refused=list(journal.refused))
-    with dataset_lock(journal.roots) as locks:
+    # a signal is noted and obeyed between two files (each is restored whole): the
+    # result says what was restored; the same undo run again does the rest
+    with signals_noted() as signals, dataset_lock(journal.roots) as locks:
         for other in dict.fromkeys(locks.interrupted.values()):
             if os.path.abspath(other) != str(journal.path):
                 result.recovered.append(_finish_rollback(other))
@@ -607,6 +614,9 @@ def undo(journal_path: Path, at: Path | None = None) -> UndoResult:
             else:
                 result.refused.append(f"{entry.file}: changed since the fix; not restored")
         for n, entry in reversed(todo):
+            if signals:
+                result.signal, result.left = signals[0], len(todo) - len(result.restored)
+                break
             try:
                 _restore(entry, backup, _temp_tag(journal.token or secrets.token_hex(8), n))
             except (OSError, TransactionError) as exc:
@@ -618,9 +628,12 @@ def undo(journal_path: Path, at: Path | None = None) -> UndoResult:
                                   "again")
                 break
             result.restored.append(entry.file)
+            test_point("undo:file")  # tests: Ctrl-C after each file restored
         _remove_temps(journal.entries, journal.token)
-        if result.failure is None and not result.refused and not journal.moved:
+        if result.failure is None and result.signal is None and not result.refused \
+                and not journal.moved:
             with contextlib.suppress(OSError):
                 _write_journal(journal.path, journal.roots, journal.token or "",
                                journal.entries, "undone", journal.root_ids)
+        result.late_signal = bool(signals) and result.signal is None
     return result

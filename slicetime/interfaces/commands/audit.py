@@ -76,6 +76,7 @@ def audit(
     from slicetime.interfaces.progress import progress_reporter
     from slicetime.interfaces.report_source import RunSpool, run_line
     from slicetime.interfaces.report_stream import summary_line
+    from slicetime.interfaces.safe_text import xml_safe
     from slicetime.pipelines.audit import audit_stream
     from slicetime.pipelines.executor import Interrupted
     from slicetime.readers.dataset import check_writes
@@ -109,9 +110,16 @@ def audit(
 
     reporter = (contextlib.nullcontext(None) if quiet or no_progress
                 else progress_reporter("auditing"))
+    written: list[str] = []  # the report files written, for the line a Ctrl-C prints
+
+    def stage(doing: str, point: str) -> contextlib.AbstractContextManager[None]:
+        done = f"; {' and '.join(written)} written" if written else ""
+        return shared.on_interrupt(f"{doing}{done}", point)
+
     try:
-        with shared.run_executor(jobs, scheduler, light=not verify_data,
-                       small_results=True) as executor, \
+        with stage("while the runs were audited; no report written", "audit:runs"), \
+                shared.run_executor(jobs, scheduler, light=not verify_data,
+                                    small_results=True) as executor, \
                 reporter as progress:
             try:
                 spool.totals = audit_stream(
@@ -122,28 +130,36 @@ def audit(
                     source=shared.source_settings(source_check, source_map))
             except Interrupted as stop:
                 finished = sum(1 for r in stop.results if r is not None)
-                say(f"slicetime: interrupted; {finished} of {len(stop.results)} runs "
-                    "audited, no report written", err=True)
-                sys.exit(130)
+                shared.interrupted(f"; {finished} of {len(stop.results)} runs audited, no "
+                                   "report written")
         if html_file is not None:
             from slicetime.interfaces.report_html import write_html_stream
 
             assert drawings is not None
             try:
-                write_html_stream(spool, drawings, html_file)
+                with stage(f"while the HTML report was written; {xml_safe(html_file)} not "
+                           "written", "audit:html"):
+                    write_html_stream(spool, drawings, html_file)
             except OSError as exc:
                 raise UserError(f"{html_file}: cannot write the HTML report: "
                                 f"{exc.strerror or exc}") from None
+            written.append(xml_safe(html_file))
         if output is not None:
-            _write_report(output, lambda fh: _audit_report(spool, fh, fmt, fail_on, show_all,
-                                                           not hide_notes))
-        if quiet:
-            from slicetime.interfaces.grouping import group_findings
+            with stage(f"while the report was written; {xml_safe(output)} not written",
+                       "audit:output"):
+                _write_report(output, lambda fh: _audit_report(spool, fh, fmt, fail_on,
+                                                               show_all, not hide_notes))
+            written.append(xml_safe(output))
+        if quiet or output is None:
+            with stage("while the report was printed; what was printed may be cut short",
+                       "audit:print"):
+                if quiet:
+                    from slicetime.interfaces.grouping import group_findings
 
-            say(summary_line(spool.totals, group_findings(spool)))
-        elif output is None:
-            with _buffered_stdout() as out:
-                _audit_report(spool, out, fmt, fail_on, show_all, not hide_notes)
+                    say(summary_line(spool.totals, group_findings(spool)))
+                else:
+                    with _buffered_stdout() as out:
+                        _audit_report(spool, out, fmt, fail_on, show_all, not hide_notes)
     finally:
         spool.close()
     sys.exit(spool.totals.exit_code(fail_on))

@@ -163,11 +163,12 @@ def _interrupted(stop: KeyboardInterrupt) -> NoReturn:
     from slicetime.words import count
 
     if isinstance(stop, NotStarted):
-        say(f"slicetime: interrupted {stop.stage}, before any run was corrected; nothing "
-            "written (rerun the same command)", err=True)
-        sys.exit(130)
-    if not isinstance(stop, CorrectInterrupted):
-        raise stop
+        written = "nothing written" if stop.written is None else stop.written
+        shared.interrupted(f"{stop.stage}, before any run was corrected; {written} (rerun "
+                           "the same command)")
+    if not isinstance(stop, CorrectInterrupted):  # the stages before the batch say more
+        shared.interrupted("before any run was corrected; nothing written (rerun the same "
+                           "command)")
     if not stop.result.runs:  # nothing finished: no summary of zero runs
         say(f"slicetime: interrupted before any run was corrected; nothing written "
             f"({count(stop.not_finished, 'run')} to do: rerun the same command)", err=True)

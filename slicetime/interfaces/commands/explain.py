@@ -7,7 +7,7 @@ from typing import Any
 
 import click
 
-from slicetime.interfaces.commands.shared import UserError, friendly
+from slicetime.interfaces.commands.shared import UserError, friendly, interruptible
 
 
 def _complete_codes(ctx: click.Context, param: click.Parameter, incomplete: str
@@ -24,6 +24,8 @@ def _complete_codes(ctx: click.Context, param: click.Parameter, incomplete: str
 @click.argument("code", required=False, shell_complete=_complete_codes)
 @click.option("--list", "list_all", is_flag=True, help="List every finding code.")
 @friendly
+@interruptible("while the documentation was printed; explain writes no file (what was "
+               "printed may be cut short)", "explain:start")
 def explain(code: str | None, list_all: bool) -> None:
     """Print the documentation of a finding CODE (or --list them all)."""
     from slicetime.interfaces.screen import say, width_for, wrap_words  # say: ASCII mode too

@@ -16,6 +16,8 @@ from slicetime.interfaces.commands.shared import (
     UserError,
     executor_options,
     friendly,
+    interrupted,
+    on_interrupt,
     policy_option,
     run_executor,
     say_finished_despite_interrupt,
@@ -110,11 +112,16 @@ def fix(
         if do_apply and plan_file is not None:
             if paths:
                 raise UserError("--apply --plan FILE applies the saved plan; give no PATH")
-            plan = fixing.read_plan(plan_file)
-            fixing.check_policies(plan, policy_file)
+            with on_interrupt("while the saved plan was read; nothing was written",
+                              "fix:read-plan"):
+                plan = fixing.read_plan(plan_file)
+                fixing.check_policies(plan, policy_file)
         else:
-            _check_inputs(paths, plan_file if not do_apply else None, backup_dir,
-                          [policy_file, source_map])
+            with on_interrupt("before the plan was made; nothing was written (an earlier "
+                              "interrupted apply being put back is finished by the next fix)",
+                              "fix:inputs"):
+                _check_inputs(paths, plan_file if not do_apply else None, backup_dir,
+                              [policy_file, source_map])
             try:
                 with run_executor(jobs, scheduler) as executor:
                     test_point("fix:plan")
@@ -123,28 +130,34 @@ def fix(
                                            consolidate=consolidate, spread=spread,
                                            source=source_settings(source_check, source_map))
             except KeyboardInterrupt:  # the audit for the plan: nothing is written yet
-                say("slicetime: interrupted while the runs were audited for the plan; "
-                    "nothing was written", err=True)
-                sys.exit(130)
-            # the dry run names what --apply would refuse (one refusal writes nothing)
-            plan.notes.extend(f"--apply would refuse it, and then write nothing: {line}"
-                              for line in fixing.preflight(plan, replace_links,
-                                                           rewrite_read_only))
-            hint = None
-            if not do_apply and plan_file is None:
-                given = " ".join(shlex.quote(xml_safe(str(p))) for p in paths)
-                hint = f"to write them: slicetime fix {given} --apply"
-            render_fix_plan(plan, console, apply_hint=hint)
+                interrupted("while the runs were audited for the plan; nothing was written")
+            with on_interrupt("while the plan was checked or shown (what was printed may be "
+                              "cut short); nothing was written", "fix:show"):
+                # the dry run names what --apply would refuse (one refusal writes nothing)
+                plan.notes.extend(f"--apply would refuse it, and then write nothing: {line}"
+                                  for line in fixing.preflight(plan, replace_links,
+                                                               rewrite_read_only))
+                hint = None
+                if not do_apply and plan_file is None:
+                    given = " ".join(shlex.quote(xml_safe(str(p))) for p in paths)
+                    hint = f"to write them: slicetime fix {given} --apply"
+                render_fix_plan(plan, console, apply_hint=hint)
         if not do_apply:
             if plan_file is not None:
-                fixing.write_plan(plan, plan_file)
+                with on_interrupt(f"while the plan was saved; {xml_safe(plan_file)} not "
+                                  "written, nothing in the dataset changed", "fix:save"):
+                    fixing.write_plan(plan, plan_file)
                 say(f"plan saved to {xml_safe(plan_file)}; apply it with: slicetime fix "
                     f"--apply --plan {xml_safe(plan_file)}")
             sys.exit(1 if plan.changes or plan.unplanned else 0)
         if not plan.changes:
             sys.exit(1 if plan.unplanned else 0)
-        applied = fixing.apply_plan(plan, backup_dir=backup_dir, replace_links=replace_links,
-                                    rewrite_read_only=rewrite_read_only)
+        # the apply notes signals itself (nothing written, or everything put back);
+        # a Ctrl-C here comes before it started
+        with on_interrupt("before anything was written; nothing was written"):
+            applied = fixing.apply_plan(plan, backup_dir=backup_dir,
+                                        replace_links=replace_links,
+                                        rewrite_read_only=rewrite_read_only)
     except fixing.Interrupted as exc:  # the files written were put back
         say(f"slicetime: {xml_safe(str(exc))}", err=True)
         sys.exit(exc.exit_code)
@@ -209,14 +222,12 @@ def _finish_apply(plan: FixPlan, applied: ApplyResult,
     n = len(applied.written)
     stopped = f"the {count(n, 'file')} above {agree(n, 'was')} written (undo with: {undo})"
     if late:
-        say(f"slicetime: interrupted before the re-audit; {stopped}", err=True)
-        sys.exit(130)
+        interrupted(f"before the re-audit; {stopped}")
     try:
         test_point("fix:reaudit")
         left = reaudit()
     except KeyboardInterrupt:
-        say(f"slicetime: interrupted during the re-audit (not finished); {stopped}", err=True)
-        sys.exit(130)
+        interrupted(f"during the re-audit (not finished); {stopped}")
     with signals_noted() as noted:
         for finding in left:
             say(f"still     {xml_safe(finding.one_line())}")
@@ -256,7 +267,9 @@ def _fix_undo(journal: Path, at: Path | None) -> None:
     from slicetime.pipelines import fix as fixing
 
     try:
-        undone = fixing.undo(journal, at)
+        with on_interrupt("while the journal was read, before any file was restored; "
+                          "nothing was restored", "undo:read"):
+            undone = fixing.undo(journal, at)
     except OSError as exc:
         raise UserError(xml_safe(f"{journal}: cannot undo ({exc.strerror or exc}); nothing "
                                  "was restored")) from None
@@ -268,4 +281,12 @@ def _fix_undo(journal: Path, at: Path | None) -> None:
     if undone.failure is not None:
         say(f"slicetime: {xml_safe(undone.failure)}", err=True)
         sys.exit(2)
+    if undone.signal is not None:  # stopped between two files, each restored whole
+        from slicetime.words import agree, count
+
+        n = len(undone.restored)
+        interrupted(f"after {count(n, 'file')} {agree(n, 'was')} restored (listed above); "
+                    f"{count(undone.left, 'file')} not restored yet: run the same undo again")
+    if undone.late_signal:
+        say_finished_despite_interrupt("the undo")
     sys.exit(1 if undone.refused else 0)

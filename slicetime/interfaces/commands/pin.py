@@ -3,13 +3,16 @@
 from __future__ import annotations
 
 import os
-import sys
 from pathlib import Path
-from typing import NoReturn
 
 import click
 
-from slicetime.interfaces.commands.shared import UserError, friendly, walking_options
+from slicetime.interfaces.commands.shared import (
+    UserError,
+    friendly,
+    interrupted,
+    walking_options,
+)
 from slicetime.interfaces.screen import say
 
 
@@ -39,15 +42,15 @@ def pin(paths: tuple[Path, ...], output: Path | None, include_derivatives: bool,
             list(paths), include_derivatives=include_derivatives,
             include_sourcedata=include_sourcedata, include_hidden=include_hidden)
     except KeyboardInterrupt:
-        _interrupted("while the runs were audited; no policy written")
+        interrupted("while the runs were audited; no policy written")
     text = policy_text(entries, ", ".join(p.as_posix() for p in paths), untasked)
     if output is None:
         try:
             test_point("pin:print")
             click.echo(text, nl=False)
         except KeyboardInterrupt:
-            _interrupted("while the policy was printed; what was printed may be cut short "
-                         "(no file written)")
+            interrupted("while the policy was printed; what was printed may be cut short "
+                        "(no file written)")
         return
     try:
         with open(output, "x", encoding="utf-8") as fh:  # never over an existing file
@@ -59,10 +62,10 @@ def pin(paths: tuple[Path, ...], output: Path | None, include_derivatives: bool,
                 try:  # made by this open ("x"): a cut-short policy is no policy
                     os.unlink(output)
                 except OSError:
-                    _interrupted(f"while the policy was written; {os.fspath(output)} may be "
-                                 "cut short: remove it")
-                _interrupted(f"while the policy was written; {os.fspath(output)} removed, "
-                             "no policy written")
+                    interrupted(f"while the policy was written; {os.fspath(output)} may be "
+                                "cut short: remove it")
+                interrupted(f"while the policy was written; {os.fspath(output)} removed, "
+                            "no policy written")
     except FileExistsError:
         raise UserError(f"{output}: already exists; pin writes a new file (remove it or "
                         "choose another name)") from None
@@ -75,9 +78,3 @@ def pin(paths: tuple[Path, ...], output: Path | None, include_derivatives: bool,
     say(f"{os.fspath(output)}: {count(written, 'protocol')} written; "
         f"{count(disagreeing, 'run')} {agree(disagreeing, 'disagrees')} with them "
         "(listed in the file)", err=True)
-
-
-def _interrupted(what: str) -> NoReturn:
-    """Ctrl-C: one line saying what was and was not written, exit 130."""
-    say(f"slicetime: interrupted {what}", err=True)
-    sys.exit(130)

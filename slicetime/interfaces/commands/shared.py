@@ -15,7 +15,7 @@ import os
 import sys
 from collections.abc import Callable, Iterator, Sequence
 from pathlib import Path
-from typing import Any, Literal, TypeVar
+from typing import Any, Literal, NoReturn, TypeVar
 
 import click
 
@@ -26,6 +26,9 @@ F = TypeVar("F", bound=Callable[..., Any])
 EXIT_FINDINGS = 1
 EXIT_USAGE = 2
 EXIT_INTERNAL = 3
+#: 128 + SIGINT's number 2, as a shell reports a process a Ctrl-C ended (common
+#: practice (no source))
+EXIT_INTERRUPTED = 130
 
 
 class RegistryChoice(click.Choice):
@@ -146,6 +149,46 @@ def say_finished_despite_interrupt(work: str) -> None:
         err=True)
 
 
+def interrupted(what: str) -> NoReturn:
+    """Ctrl-C: the one line saying where the command was and what was and was not
+    written (``what``: "while ...", "before ...", or "; ..." when the rest says it),
+    exit 130."""
+    say(f"slicetime: interrupted{'' if what.startswith(';') else ' '}{what}", err=True)
+    sys.exit(EXIT_INTERRUPTED)
+
+
+@contextlib.contextmanager
+def on_interrupt(what: str, point: str | None = None) -> Iterator[None]:
+    """A Ctrl-C inside the block ends the command with :func:`interrupted` (``what``).
+    An interrupt that carries its own account (the executor's ``Interrupted``, a
+    transaction's) is caught inside the block, before this. ``point``: the tests' hook
+    (``pipelines.signals.test_point``) as the block starts."""
+    from slicetime.pipelines.signals import test_point
+
+    try:
+        if point is not None:
+            test_point(point)
+        yield
+    except KeyboardInterrupt:
+        interrupted(what)
+
+
+def interruptible(what: str, point: str | None = None) -> Callable[[F], F]:
+    """A command whose every Ctrl-C not told more precisely inside ends with
+    :func:`interrupted` (``what``): for commands that write no file, or as the outer
+    line under the stages they tell themselves. Placed under ``@friendly``."""
+
+    def decorate(fn: F) -> F:
+        @functools.wraps(fn)
+        def wrapper(*args: Any, **kwargs: Any) -> Any:
+            with on_interrupt(what, point):
+                return fn(*args, **kwargs)
+
+        return wrapper  # type: ignore[return-value]  # functools.wraps keeps the signature
+
+    return decorate
+
+
 class UserError(click.ClickException):
     """A one-line problem with what the user asked for (exit 2)."""
 
@@ -176,9 +219,8 @@ def friendly(fn: F) -> F:
             raise UserError(str(exc)) from None
         except (click.ClickException, click.exceptions.Exit, click.Abort, SystemExit):
             raise
-        except KeyboardInterrupt:
-            say("slicetime: interrupted", err=True)
-            sys.exit(130)
+        except KeyboardInterrupt:  # a command that did not say where it was (none should)
+            interrupted("(what was written, if anything, is not known)")
         except BrokenPipeError:
             sys.exit(0)
         except Exception as exc:  # a bug: keep the user's terminal clean, allow debugging

@@ -14,9 +14,9 @@ from slicetime.interfaces.commands.shared import (
     UserError,
     former_spelling,
     friendly,
+    interrupted,
     policy_option,
 )
-from slicetime.interfaces.screen import say
 from slicetime.model import FailOn
 
 
@@ -86,8 +86,7 @@ def show(file: Path, fmt: str, former_json: bool, fail_on: str,
 
 def _interrupted(what: str) -> NoReturn:
     """Ctrl-C: one line saying how far ``show`` got (it writes no file), exit 130."""
-    say(f"slicetime: interrupted {what}; show writes no file", err=True)
-    sys.exit(130)
+    interrupted(f"{what}; show writes no file")
 
 
 def _show_target(file: Path) -> Path:

@@ -8,7 +8,7 @@ from typing import Any
 
 import click
 
-from slicetime.interfaces.commands.shared import UserError, friendly
+from slicetime.interfaces.commands.shared import UserError, friendly, interruptible
 from slicetime.interfaces.screen import say
 from slicetime.model import MAX_REPETITION_TIME, MIN_REPETITION_TIME
 
@@ -43,6 +43,8 @@ from slicetime.model import MAX_REPETITION_TIME, MIN_REPETITION_TIME
 @click.option("--compact", is_flag=True,
               help="Print the fields as one line of JSON, ready to paste into a sidecar.")
 @friendly
+@interruptible("while the times were worked out or printed; timing writes no file (what "
+               "was printed may be cut short)", "timing:start")
 def timing(
     n_slices: int,
     tr: float | None,

@@ -14,6 +14,8 @@ from slicetime.interfaces.commands.shared import (
     UserError,
     executor_options,
     friendly,
+    interrupted,
+    interruptible,
     run_executor,
 )
 from slicetime.interfaces.screen import say
@@ -30,6 +32,8 @@ from slicetime.model import FailOn
               "exits 1).")
 @executor_options(default=JOBS_HEAVY + "; one for a single file")
 @friendly
+@interruptible("while the runs were read or the report printed; verify writes no file "
+               "(what was printed may be cut short)", "verify:start")
 def verify(files: tuple[Path, ...], fmt: str, fail_on: str, jobs: int | None,
            scheduler: str | None) -> None:
     """Check each run's claimed slice order against its own image data.
@@ -60,9 +64,7 @@ def verify(files: tuple[Path, ...], fmt: str, fail_on: str, jobs: int | None,
             results = verify_files([str(f) for f in files], executor)
     except Interrupted as stop:  # Ctrl-C: what was done, in one line, as audit says it
         finished = sum(1 for r in stop.results if r is not None)
-        say(f"slicetime: interrupted; {finished} of {len(stop.results)} runs verified, "
-            "no report written", err=True)
-        sys.exit(130)
+        interrupted(f"; {finished} of {len(stop.results)} runs verified, no report written")
     outcomes = [r.outcome for r in results if r.outcome is not None]
     unreadable = [{"file": r.file, "code": r.code or "file/unreadable",
                    "message": r.message or r.file} for r in results if r.outcome is None]
