@@ -154,3 +154,35 @@ def test_junit_has_one_test_case_per_shared_finding(study: Path, report: dict) -
         name = f"{group['finding']['file']}: {group['finding']['code']}"
         (case,) = [c for c in cases if c.get("name") == name]
         assert case.find("failure") is not None
+
+
+def test_runs_whose_names_are_not_bids_names_are_one_plainly_named_group(
+        tmp_path: Path) -> None:
+    # BIDS file naming: sub-<label>[_<key>-<label>]..._<suffix>.nii[.gz]; a name without
+    # a suffix, or none of that form, names no protocol. The runs the audit reports as
+    # file/bad-run-name are exactly the ones the reports group apart, under a heading
+    # that says so (never "(no suffix)" nor the odd name taken for a suffix)
+    from slicetime.pipelines.audit import audit_paths
+    from tests.helpers_bids import write_description, write_run
+
+    root = tmp_path / "ds"
+    write_description(root)
+    good = ["sub-01/func/sub-01_task-x_bold.nii.gz", "sub-02/func/sub-02_task-x_bold.nii.gz"]
+    odd = ["sub-01/func/sub-01_task-x.nii.gz", "sub-01/func/scan01.nii.gz",
+           "sub-02/func/sub-02_task-x_bold copy.nii.gz"]
+    for rel in good + odd:
+        write_run(root, rel, sidecar={"RepetitionTime": 2.0, "SliceTiming": [0.0, 0.5, 1.0]})
+    named = {r.record.path for r in audit_paths([root]).runs
+             if any(f.code == "file/bad-run-name" for f in r.findings)}
+    assert named == set(odd)
+    text = run_cli("audit", root, columns=200)
+    rows = [line for line in text.splitlines() if line.startswith("func: ")]
+    assert [r.split()[1:3] for r in rows if "task-x_bold" in r] == [["task-x_bold", "2"]]
+    apart = [r for r in rows if "file names that are not valid BIDS names" in r]
+    assert len(apart) == 1 and apart[0].split("names")[-1].split()[0] == str(len(odd))
+    assert "(no suffix)" not in text and "func: scan01" not in text
+    page = tmp_path / "audit.html"
+    run_cli("audit", root, "--html", page)
+    html = page.read_text(encoding="utf-8")
+    assert "func: file names that are not valid BIDS names" in html
+    assert "(no suffix)" not in html

@@ -217,6 +217,28 @@ def test_parse_name_matches_the_part_by_part_rule(name: str) -> None:
     assert repr(parse_name(name)) == repr(_parse_name_part_by_part(name))
 
 
+@settings(max_examples=800, deadline=None)
+@given(
+    name=st.lists(
+        st.sampled_from(["sub", "ses", "task", "-", "_", "01", "a", "bold", ".nii", ".gz",
+                         ".NII", ".", "é", " ", "sub-01_", "_bold.nii.gz", "task-"]),
+        max_size=10,
+    ).map("".join)
+)
+def test_run_name_problem_fast_path_matches_the_part_by_part_rule(name: str) -> None:
+    # the one pattern for a valid name gives the verdict the rule-by-rule code gives
+    from slicetime.readers import entities
+
+    fast = entities.run_name_problem.__wrapped__(name)
+    real = entities._VALID_RUN
+    try:
+        entities._VALID_RUN = re.compile(r"(?!)")  # never matches: the general code only
+        general = entities.run_name_problem.__wrapped__(name)
+    finally:
+        entities._VALID_RUN = real
+    assert fast == general, name
+
+
 # --- sidecar parsing fast paths: no float hook, no string cleaning --------------------------
 
 def _general_parse(raw: bytes) -> tuple[Any, list[Any]]:

@@ -84,7 +84,7 @@ class Grouping:
     runs_affected: dict[str, int]
     #: run index -> how many of its findings of each severity are told as shared
     shared_counts: dict[int, tuple[int, int, int]] = field(default_factory=dict)
-    #: protocol group (``rules.dataset.protocol_key``) -> its number of runs
+    #: run group (``report_source.run_group``) -> its number of runs
     group_sizes: dict[tuple[str, ...], int] = field(default_factory=dict)
 
     def own(self, index: int, findings: Sequence[dict[str, Any]]) -> list[dict[str, Any]]:
@@ -136,7 +136,7 @@ class Grouper:
     def finish(self) -> Grouping:
         from collections import Counter
 
-        from slicetime.rules.dataset import protocol_key
+        from slicetime.interfaces.report_source import run_group
 
         totals = self.totals
         self._groups = {k: g for k, g in self._groups.items() if len(g.runs) > 1}
@@ -157,7 +157,7 @@ class Grouper:
         shared = sorted(self._groups.values(), key=lambda g: (
             -_RANK[g.severity], g.root, g.finding.get("file") or "", g.finding["code"],
             g.finding["message"]))
-        sizes = Counter(protocol_key(f) for f in totals.facts
+        sizes = Counter(run_group(f) for f in totals.facts
                         ) if shared else Counter()
         return Grouping(shared, {i: frozenset(p) for i, p in told.items()}, distinct,
                         runs_affected, {i: (c[0], c[1], c[2]) for i, c in shared_counts.items()},
@@ -176,16 +176,17 @@ def group_findings(source: ReportSource) -> Grouping:
 def runs_phrase(group: SharedFinding, grouping: Grouping, totals: AuditTotals) -> str:
     """``all 6 runs of task-chirp_bold`` when the runs are exactly one protocol
     group's, ``all 21 runs`` when they are every run audited, else ``2 runs``."""
-    from slicetime.interfaces.report_source import group_label
-    from slicetime.rules.dataset import protocol_key
+    from slicetime.interfaces.report_source import NOT_BIDS, group_label, run_group
 
     n = len(group.runs)
     if n == len(totals.facts):
         return f"all {n} runs"
-    keys = {protocol_key(totals.facts[i]) for i in group.runs}
+    keys = {run_group(totals.facts[i]) for i in group.runs}
     if len(keys) == 1:
         (key,) = keys
         if grouping.group_sizes.get(key) == n:
+            if key[2] == NOT_BIDS:
+                return f"all {n} runs whose file names are not valid BIDS names"
             label = group_label(key)
             return f"all {n} runs of {label.partition(': ')[2] or label}"
     return count(n, "run")

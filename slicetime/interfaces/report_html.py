@@ -4,8 +4,8 @@ Layout, top to bottom:
 
 1. a header with the dataset and the totals;
 2. the overview: runs with errors / warnings / notes, the schemes in use per
-   run group (grouped like the dataset rules group runs,
-   ``rules.dataset.protocol_key``), the outliers (``dataset/*`` findings), and
+   run group (grouped like the dataset rules group runs, but runs whose names are
+   not BIDS names apart: ``report_source.run_group``), the outliers (``dataset/*`` findings), and
    a collapsed gallery of every distinct timing diagram;
 3. the dataset picture: subjects down, the other entities (session, task,
    acquisition, run, ...) across; each cell shows the run's scheme tag and worst
@@ -56,12 +56,15 @@ from slicetime.interfaces.grouping import (
 from slicetime.interfaces.plots import COLOURS
 from slicetime.interfaces.report_html_parts import OWN_SIDECAR, DiagramCollector, ValueTable
 from slicetime.interfaces.report_source import (
+    NOT_BIDS,
+    NOT_BIDS_LABEL,
     MemorySource,
     ReportSource,
     display_path,
     encode,
     group_label,
     report_root,
+    run_group,
     several_roots,
 )
 from slicetime.interfaces.report_stream import evidence_text
@@ -69,7 +72,7 @@ from slicetime.interfaces.safe_text import xml_safe
 from slicetime.interfaces.screen import strip_path_prefix, timing_tr_text
 from slicetime.model import Severity
 from slicetime.pipelines.audit import AuditResult, AuditTotals, RunFacts
-from slicetime.rules.dataset import PROTOCOL_ENTITIES, protocol_key
+from slicetime.rules.dataset import PROTOCOL_ENTITIES
 from slicetime.words import agree
 
 #: fills for scheme tags in the dataset picture and the runs table (our own muted
@@ -193,7 +196,7 @@ def _group_name(key: tuple[str, ...], totals: AuditTotals, many_roots: bool) -> 
 def _schemes_table(totals: AuditTotals, tags: dict[str | None, _Tag]) -> str:
     groups: dict[tuple[str, ...], list[int]] = defaultdict(list)
     for i, facts in enumerate(totals.facts):
-        groups[protocol_key(facts)].append(i)
+        groups[run_group(facts)].append(i)
     many_roots = len({k[0] for k in groups}) > 1
     rows = []
     for key, members in sorted(groups.items()):
@@ -289,6 +292,8 @@ def _gallery(collector: DiagramCollector, sizes: dict[str, tuple[float, float]],
 
 
 def _column_of(facts: RunFacts, suffixes: int) -> str:
+    if run_group(facts)[2] == NOT_BIDS:  # its entities and suffix name no protocol
+        return NOT_BIDS_LABEL
     parts = [f"{k}-{v}" for k, v in facts.entities.items() if k not in ("sub", "ses")]
     if suffixes > 1 or not parts:
         parts.append(facts.suffix or "(no suffix)")

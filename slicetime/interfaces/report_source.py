@@ -29,6 +29,8 @@ from slicetime.escapes import SURROGATE, escape_surrogate
 from slicetime.model import Counts, Finding, Scheme
 from slicetime.numbers import json_times
 from slicetime.pipelines.audit import AuditResult, AuditTotals, RunFacts, RunResult, dataset_names
+from slicetime.readers.entities import run_name_problem
+from slicetime.rules.dataset import protocol_key
 
 _ENCODER = json.JSONEncoder(ensure_ascii=False, allow_nan=False, separators=(",", ":"))
 
@@ -219,12 +221,29 @@ def display_path(totals: AuditTotals, facts: RunFacts, path: str, *, several: bo
     return f"[{totals.names.get(facts.root, facts.root)}] {path}" if several else path
 
 
+#: the suffix place of the group of runs whose names are not BIDS names (no valid
+#: suffix holds a space; sorts after every valid suffix)
+NOT_BIDS = "~ not BIDS"
+#: how reports name that group
+NOT_BIDS_LABEL = "file names that are not valid BIDS names"
+
+
+def run_group(facts: RunFacts) -> tuple[str, ...]:
+    """The group a report puts a run in: its protocol (``rules.dataset.protocol_key``),
+    or, when its file name is not a valid BIDS name (``readers.entities.run_name_problem``
+    decides), one group per root and datatype for all such runs: their suffix and
+    entities name no protocol."""
+    if run_name_problem(facts.path.rpartition("/")[2]) is not None:
+        return (facts.root, facts.datatype or "", NOT_BIDS)
+    return protocol_key(facts)
+
+
 def group_label(key: tuple[str, ...], root_label: str | None = None) -> str:
-    """How reports name a group of runs (a ``protocol_key``): datatype, the entities
+    """How reports name a group of runs (a :func:`run_group`): datatype, the entities
     that define the protocol and the suffix, after ``root_label`` when given."""
     datatype, suffix = key[1], key[2]
     parts = [p for p in key[3:] if not p.endswith("-")]
-    name = "_".join([*parts, suffix or "(no suffix)"])
+    name = NOT_BIDS_LABEL if suffix == NOT_BIDS else "_".join([*parts, suffix or "(no suffix)"])
     if datatype:
         name = f"{datatype}: {name}"
     return f"{root_label} {name}" if root_label else name

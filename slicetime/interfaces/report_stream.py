@@ -34,6 +34,7 @@ from slicetime.interfaces.report_source import (
     encode,
     group_label,
     report_root,
+    run_group,
     several_roots,
 )
 from slicetime.interfaces.safe_text import xml_safe
@@ -41,7 +42,6 @@ from slicetime.model import FailOn, ResolvedTiming, Severity
 from slicetime.numbers import fixed, plain
 from slicetime.numbers import shown as shown_number
 from slicetime.pipelines.audit import AuditTotals, RunFacts
-from slicetime.rules.dataset import protocol_key
 from slicetime.words import count, plural_of
 
 # --------------------------------------------------------------------------- JSON
@@ -356,13 +356,13 @@ def write_text(source: ReportSource, out: IO[str], *, show_all: bool = False,
 
 def _group_table(totals: AuditTotals, kinds: tuple[str, ...], fit: int | None,
                  paint: _Paint) -> list[str]:
-    """The table of run groups (``protocol_key``): runs, TR, how many runs have
+    """The table of run groups (``run_group``): runs, TR, how many runs have
     findings of each of ``kinds``, the schemes (with how many runs have each when
     they differ)."""
     several = several_roots(totals)
     groups: dict[tuple[str, ...], list[int]] = defaultdict(list)
     for index, facts in enumerate(totals.facts):
-        groups[protocol_key(facts)].append(index)
+        groups[run_group(facts)].append(index)
     if not groups:
         return []
     rows = []

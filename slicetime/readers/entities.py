@@ -134,6 +134,9 @@ _SERIES_WORD = re.compile(
     r"(?:^|[^A-Za-z0-9])(?:bold|cbv|phase|asl|dwi|sbref|m0scan)(?:[^A-Za-z0-9]|$)", re.IGNORECASE
 )
 _ALNUM = re.compile(r"[A-Za-z0-9]+\Z")
+#: a valid run name but for a repeated key (``run_name_problem``'s rules in one pattern)
+_VALID_RUN = re.compile(
+    r"sub-[A-Za-z0-9]+(?:_[A-Za-z0-9]+-[A-Za-z0-9]+)*_[A-Za-z0-9]+\.nii(?:\.gz)?\Z")
 
 
 def looks_like_run(name: str, folder: str) -> bool:
@@ -158,6 +161,10 @@ def run_name_problem(name: str) -> str | None:
     ``.nii.gz``; keys, labels and the suffix are letters and digits, a key appears
     once (BIDS file naming, from memory).
     """
+    if _VALID_RUN.match(name):  # the common case at once (tested equal to the rest)
+        keys = [pair.partition("-")[0] for pair in name.split("_")[:-1]]
+        if len(set(keys)) == len(keys):
+            return None
     stem = image_stem(name)
     if stem == name:
         return "not a NIfTI name (.nii or .nii.gz)"
