@@ -114,3 +114,43 @@ def test_a_file_that_is_no_nifti_image_given_by_name_is_not_a_run(
     lines = err.strip().splitlines()
     assert len(lines) == 1 and "not a run" in lines[0] and str(notes) in lines[0]
     assert "not-nifti" not in out + err
+
+
+def _bids_time_series() -> list[tuple[str, str]]:
+    """(suffix, NIfTI extension) of every func and perf image the BIDS schema defines
+    (bidsschematools: rules.files.raw.func / .perf), but the ones that are no time
+    series to correct, as the schema's own descriptions say: sbref ("single-band
+    reference"), m0scan ("a calibration image") and noRF ("noise scans ... acquired by
+    disabling the radio frequency excitation")."""
+    from bidsschematools import schema
+
+    bids = schema.load_schema()
+    pairs = set()
+    for datatype in ("func", "perf"):
+        for rule in bids.rules.files.raw[datatype].values():
+            for suffix in rule.suffixes:
+                if suffix in ("sbref", "m0scan", "noRF"):
+                    continue
+                pairs |= {(suffix, ext) for ext in rule.extensions if ext.startswith(".nii")}
+    return sorted(pairs)
+
+
+def test_the_time_series_table_holds_every_bids_func_and_perf_series() -> None:
+    from slicetime.readers.dataset import TIME_SERIES_SUFFIXES
+
+    found = {suffix for suffix, _ in _bids_time_series()}
+    assert {"bold", "cbv", "phase", "asl"} <= found  # the schema is read as expected
+    assert found <= TIME_SERIES_SUFFIXES
+
+
+@pytest.mark.parametrize(("suffix", "extension"), _bids_time_series())
+def test_an_events_table_names_the_run_beside_it_whatever_its_suffix(
+        tmp_path: Path, suffix: str, extension: str) -> None:
+    write_description(tmp_path)
+    image = write_run(tmp_path, f"sub-01/func/sub-01_task-x_{suffix}{extension}",
+                      shape=(4, 4, 3, 5), tr=2.0, sidecar=SIDECAR)
+    events = image.with_name("sub-01_task-x_events.tsv")
+    events.write_text("onset\tduration\n1\t1\n")
+    with pytest.raises(ReadError) as caught:
+        given_run(events)
+    assert caught.value.message.endswith(f"; the run it belongs to: {image}")

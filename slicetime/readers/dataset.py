@@ -190,15 +190,16 @@ def given_run(path: Path) -> Path:
 
 
 def _run_beside(file: Path) -> str:
-    """``; the run it belongs to: X`` when the image of the same name parts is there."""
+    """``; the run it belongs to: X`` when the image of the same name parts is there,
+    with a time-series suffix (:data:`TIME_SERIES_SUFFIXES`, the one table of them)."""
     stem, _, _ = file.name.rpartition("_")
     if not stem:
         return ""
-    for suffix in ("_bold.nii.gz", "_bold.nii", "_cbv.nii.gz", "_asl.nii.gz", "_dwi.nii.gz",
-                   "_dwi.nii"):
-        image = file.with_name(stem + suffix)
-        if image.exists():
-            return f"; the run it belongs to: {image}"
+    for suffix in sorted(TIME_SERIES_SUFFIXES):
+        for extension in IMAGE_EXTENSIONS:
+            image = file.with_name(f"{stem}_{suffix}{extension}")
+            if image.exists():
+                return f"; the run it belongs to: {image}"
     return ""
 
 
