@@ -403,7 +403,28 @@ def test_float64_values_beyond_float32_are_refused(ds: Path, tmp_path: Path) -> 
     code, report = correct_json(ds, "--out", out)
     assert code == 1 and report["runs"][0]["status"] == "refused"
     assert "beyond the float32 range" in report["runs"][0]["reason"]
+    assert f"(about {float32_range_from_numpy()})" in report["runs"][0]["reason"]
     assert files_under(out) == []
+
+
+def float32_range_from_numpy() -> str:
+    """The float32 range in the words of the messages, from numpy's finfo (IEEE 754
+    binary32: largest finite value 3.4028235e38)."""
+    top = float(np.finfo(np.float32).max)
+    exponent = int(np.floor(np.log10(top)))
+    return f"±{round(top / 10 ** exponent, 1)} × 10^{exponent}"
+
+
+def test_a_scaling_beyond_float32_in_a_nifti2_header_names_the_range(
+        ds: Path, tmp_path: Path) -> None:
+    # NIfTI-2 stores scl_slope as float64: 1e39 is finite there, beyond float32; the
+    # refusal writes the range as every message does, never in scientific notation
+    path, _ = build_run(ds, REL, interleaved(8), dtype=np.int16, version=2)
+    patch_header(path, scl_slope=1e39)
+    code, report = correct_json(ds, "--out", tmp_path / "out", "--force")
+    reason = report["runs"][0]["reason"]
+    assert code == 1 and "lie beyond the float32 range" in reason, reason
+    assert f"(about {float32_range_from_numpy()})" in reason and "e+38" not in reason
 
 
 # ------------------------------------------------------------------ item 18

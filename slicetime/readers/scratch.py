@@ -12,6 +12,7 @@ memory map, so its pages never count against the process under a memory cap.
 from __future__ import annotations
 
 import contextlib
+import math
 import os
 from dataclasses import dataclass
 from pathlib import Path
@@ -20,6 +21,16 @@ from typing import Any
 import numpy as np
 
 from slicetime.numbers import grouped, plain
+
+#: the largest finite float32 (IEEE 754 binary32), as numpy gives it
+FLOAT32_MAX = float(np.finfo(np.float32).max)
+
+
+def float32_range() -> str:
+    """The float32 range as every message writes it, from :data:`FLOAT32_MAX`:
+    ``±3.4 × 10^38`` (two significant digits, never scientific notation)."""
+    exponent = math.floor(math.log10(FLOAT32_MAX))
+    return f"±{plain(FLOAT32_MAX / 10 ** exponent, 2)} × 10^{exponent}"
 
 __all__ = [
     "DiskBuffer",
@@ -162,9 +173,8 @@ def store_scaled(
                if scale is not None
                else "the stored float64 values include")
         raise ScalingRangeError(
-            f"{how} {grouped(count)} value(s) beyond the float32 range (about ±3.4 × 10^38); "
-            "the "
-            "output would hold inf or nan, so the run is refused",
+            f"{how} {grouped(count)} value(s) beyond the float32 range (about "
+            f"{float32_range()}); the output would hold inf or nan, so the run is refused",
             field="scl_slope" if scale is not None else "datatype",
         )
 

@@ -49,6 +49,7 @@ from slicetime.numbers import plain
 
 from .errors import ReadError, open_regular, os_error
 from .nifti import HEADER_LAYOUT, data_offset_problem, extension_problem
+from .scratch import FLOAT32_MAX, float32_range
 
 _threaded_gzip: Any
 _GZIP_ERRORS: tuple[type[BaseException], ...] = (zlib.error, gzip.BadGzipFile, EOFError)
@@ -112,8 +113,6 @@ def scaling(header: HeaderInfo) -> tuple[float, float] | None:
     return slope, inter
 
 
-#: the largest finite float32 (IEEE 754 binary32)
-FLOAT32_MAX = float(np.finfo(np.float32).max)
 
 
 def scaling_problem(header: HeaderInfo) -> str | None:
@@ -133,7 +132,7 @@ def scaling_problem(header: HeaderInfo) -> str | None:
                 "are undefined")
     if abs(slope) > FLOAT32_MAX or abs(inter) > FLOAT32_MAX:
         return (f"scl_slope {plain(slope)} / scl_inter {plain(inter)} lie beyond the float32 range "
-                f"(±{FLOAT32_MAX:.4g})")
+                f"(about {float32_range()})")
     return None
 
 
