@@ -335,8 +335,9 @@ def left_unfixed(plan: FixPlan) -> list[tuple[str, int, str]]:
     plan was not asked about are not counted; the dataset's own findings only when every
     run was given). Why: fix repairs sidecar metadata only, so a code it cannot repair
     says what to do instead, in the finding's own hint (the catalogue's text unless the
-    check knew better, as for a TR that is no TR in any unit: one line per distinct
-    hint); a repairable one it did not plan is explained by the plan's notes."""
+    check knew better, as for a TR that is no TR in any unit; the catalogue's for a
+    finding without one: one line per distinct hint); a repairable one it did not plan
+    is explained by the plan's notes."""
     from slicetime.rules import RULES
 
     if plan.audit is None:
@@ -358,7 +359,10 @@ def left_unfixed(plan: FixPlan) -> list[tuple[str, int, str]]:
                    if any(u.code == finding.code for u in plan.unplanned)
                    else "repairable, but not planned here (see the notes above)")
         else:
-            why = f"not a sidecar repair: {finding.hint or 'see slicetime explain ' + finding.code}"
+            # the finding's own hint; one without (a reader's) has the catalogue's text
+            todo = finding.hint or (rule.fix if rule is not None else None) \
+                or f"see slicetime explain {finding.code}"
+            why = f"not a sidecar repair: {todo}"
         counts[(finding.code, why)] = counts.get((finding.code, why), 0) + 1
     out: list[tuple[str, int, str]] = []
     for code in sorted({code for code, _ in counts}):
