@@ -132,7 +132,8 @@ OVERHEAD = "import slicetime.pipelines.correct, scipy.fft, numpy, nibabel"
 
 # The I/O floor of a correction, by hand: decode the image (isal, in a helper
 # thread with correct's queue depth), convert the stored int16 to float32 a batch
-# at a time into one float32 array (as correct fills its buffer), encode the float32
+# at a time into one float32 array (allocated and faulted in as correct's buffer is,
+# by a helper thread beside the decoder; as correct fills its buffer), encode the float32
 # volumes (isal level 1 in two helper threads, as correct does) and write them
 # durably (fsync, as correct does). No interpolation and no audit. The float32
 # values are the stored ones times a fixed pattern of factors just above 1, so they
@@ -146,7 +147,7 @@ OVERHEAD = "import slicetime.pipelines.correct, scipy.fft, numpy, nibabel"
 # (of each chunk as it is written for .nii; of the compressed bytes in the encoder's
 # writer thread for .nii.gz).
 FLOOR = """
-import hashlib, io, os, queue, sys, threading
+import ctypes, hashlib, io, mmap, os, queue, sys, threading
 import numpy as np
 from isal import igzip_threaded
 
@@ -219,7 +220,13 @@ with fh:
         in_digest.update(prefix)
     dim = np.frombuffer(head, "<i2", 8, 40)
     n = int(np.prod(dim[1:1 + dim[0]], dtype=np.int64))
-    data = np.empty(n, np.float32)
+    # the float32 array as correct allocates its buffer (readers.scratch.fresh_float32):
+    # a mapping of its own, its pages faulted in by a helper thread beside the decoder
+    memory = mmap.mmap(-1, n * 4, flags=mmap.MAP_PRIVATE | mmap.MAP_ANONYMOUS)
+    data = np.frombuffer(memory, np.float32)
+    madvise = ctypes.CDLL(None).madvise
+    madvise.argtypes = [ctypes.c_void_p, ctypes.c_size_t, ctypes.c_int]
+    threading.Thread(target=madvise, args=(data.ctypes.data, n * 4, 23), daemon=True).start()
     table = 1 + np.random.default_rng(0).random(1 << 20, dtype=np.float32) * np.float32(1e-3)
     step = CHUNK // 2
     stored = np.empty(step, np.int16)  # one batch, reused

@@ -12,8 +12,10 @@ from __future__ import annotations
 import copy
 import json
 import math
+import os
 import re
 import struct
+import sys
 from pathlib import Path, PurePosixPath
 from typing import Any
 
@@ -731,3 +733,36 @@ def test_the_walks_odd_names_are_the_entries_that_are_links_or_not_files(
         assert names == expected
     func_odd = not_plain[str(func)]
     assert "sub-01_task-a_bold.json" not in func_odd and "sub-01_task-c_bold.json" in func_odd
+
+
+def _kernel_at_least(major: int, minor: int) -> bool:
+    release = os.uname().release.split("-")[0].split(".")
+    try:
+        return (int(release[0]), int(release[1])) >= (major, minor)
+    except (IndexError, ValueError):
+        return False
+
+
+@pytest.mark.skipif(not sys.platform.startswith("linux") or not _kernel_at_least(5, 14),
+                    reason="MADV_POPULATE_WRITE needs Linux 5.14")
+def test_a_fresh_buffer_is_faulted_in_by_its_helper_and_holds_what_is_written() -> None:
+    # Reference: madvise(2), MADV_POPULATE_WRITE (Linux 5.14) "populate (prefault) page
+    # tables writable, faulting-in all pages in the range"; proc(5), /proc/self/statm,
+    # second field: resident pages. The helper, not the caller, faults the pages in.
+    from slicetime.readers.scratch import PREFAULT_BYTES, fresh_float32
+
+    def resident() -> int:
+        with open("/proc/self/statm") as fh:
+            return int(fh.read().split()[1]) * os.sysconf("SC_PAGE_SIZE")
+
+    shape = (3, PREFAULT_BYTES // 4096, 1024)  # 3 × the threshold
+    before = resident()
+    array, helper = fresh_float32(shape)
+    assert helper is not None and array.shape == shape and array.dtype == np.float32
+    helper.join()
+    assert resident() - before >= 0.9 * array.nbytes  # faulted in, nothing written yet
+    values = np.arange(array.size, dtype=np.float32).reshape(shape)
+    array[...] = values
+    assert np.array_equal(array, values)
+    small, none = fresh_float32((4, 5))
+    assert none is None and small.shape == (4, 5) and small.dtype == np.float32
