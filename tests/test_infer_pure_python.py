@@ -11,7 +11,7 @@ import numpy as np
 from hypothesis import given
 from hypothesis import strategies as st
 
-from slicetime.schemes.infer import _median, _quantile, grouping_threshold
+from slicetime.schemes.infer import _quantile, grouping_threshold, median
 
 FLOATS = st.floats(min_value=-1e3, max_value=1e3, allow_nan=False, allow_infinity=False)
 
@@ -20,7 +20,7 @@ FLOATS = st.floats(min_value=-1e3, max_value=1e3, allow_nan=False, allow_infinit
 def test_quantile_and_median_equal_numpy(values: list[float], q: float) -> None:
     ordered = sorted(values)
     assert _quantile(ordered, q) == float(np.quantile(np.asarray(values), q))
-    assert _median(values) == float(np.median(np.asarray(values)))
+    assert median(values) == float(np.median(np.asarray(values)))
 
 
 @given(st.lists(st.floats(min_value=0, max_value=3, allow_nan=False), min_size=1, max_size=80))

@@ -11,6 +11,7 @@ Pure: no files, no arrays larger than the number of volumes.
 
 from __future__ import annotations
 
+import itertools
 import math
 import re
 from dataclasses import dataclass
@@ -27,6 +28,7 @@ from slicetime.model import (
     outside_window,
 )
 from slicetime.numbers import as_written, plain, secs
+from slicetime.schemes.infer import median
 from slicetime.schemes.resolve import looks_like_milliseconds
 
 #: the reference used when the user does not choose one (see ``ReferenceChoice``)
@@ -290,15 +292,21 @@ def slice_time_ref(reference: float, repetition_time: float | None) -> float | N
     return round(reference / repetition_time, 6)
 
 
+def _excitation_step(times: tuple[float, ...] | list[float]) -> tuple[float, float] | None:
+    """The last excitation's time and the step between successive excitations (the
+    median gap between distinct slice times), or None when all slices share one time."""
+    distinct = sorted({round(t, 6) for t in times})
+    if len(distinct) < 2:
+        return None
+    return distinct[-1], median([b - a for a, b in itertools.pairwise(distinct)])
+
+
 def occupied_span(times: tuple[float, ...] | list[float]) -> float | None:
     """How long the slices of one volume take: the last excitation's time plus one step
     between successive excitations (the median gap between distinct slice times), or
     None when all slices share one time (no step to measure)."""
-    distinct = sorted({round(t, 6) for t in times})
-    if len(distinct) < 2:
-        return None
-    step = float(np.median(np.diff(distinct)))
-    return distinct[-1] + step
+    found = _excitation_step(times)
+    return None if found is None else found[0] + found[1]
 
 
 def window_fields(schedule: SliceSchedule, metadata_keys: set[str] | frozenset[str]
@@ -316,11 +324,12 @@ def window_fields(schedule: SliceSchedule, metadata_keys: set[str] | frozenset[s
       leave more than one excitation step of the TR silent (a sparse run described by
       its slice times alone): ``DelayTime``, the silent part of the TR.
     """
-    span = occupied_span(schedule.times)
+    found = _excitation_step(schedule.times)
     window = schedule.acquisition_window
-    if span is None or window is None:
+    if found is None or window is None:
         return {}
-    span = min(span, window)
+    last, step = found
+    span = min(last + step, window)
     if schedule.volume_times is not None:
         if metadata_keys & {"FrameAcquisitionDuration", "AcquisitionDuration"}:
             return {}
@@ -328,8 +337,6 @@ def window_fields(schedule: SliceSchedule, metadata_keys: set[str] | frozenset[s
     tr = schedule.repetition_time
     if tr is None or metadata_keys & {"DelayTime", "AcquisitionDuration"}:
         return {}
-    distinct = sorted({round(t, 6) for t in schedule.times})
-    step = float(np.median(np.diff(distinct)))
     silent = tr - span
     # silent beyond one step by more than the project's timing tolerance: a sparse run
     return {"DelayTime": round(silent, 6)} if silent > step + TIME_TOLERANCE else {}

@@ -58,6 +58,7 @@ __all__ = [
     "group_slices",
     "grouping_threshold",
     "infer_scheme",
+    "median",
 ]
 
 #: the default tolerance: :data:`slicetime.model.TIME_TOLERANCE` (defined there only)
@@ -116,8 +117,8 @@ def _quantile(ordered: Sequence[float], q: float) -> float:
     return b - (b - a) * (1 - t) if t >= 0.5 else a + (b - a) * t
 
 
-def _median(values: Sequence[float]) -> float:
-    """``numpy.median`` without numpy."""
+def median(values: Sequence[float]) -> float:
+    """``numpy.median`` without numpy (nor ``numpy.ma``, which ``numpy.median`` loads)."""
     ordered = sorted(values)
     middle = len(ordered) // 2
     if len(ordered) % 2:
@@ -309,7 +310,7 @@ def _infer_scheme(times: Sequence[float], *, tolerance: float = DEFAULT_TOLERANC
     n = len(values)
     groups, group_times = group_slices(values, tolerance)
     gaps = [b - a for a, b in itertools.pairwise(group_times)]
-    spacing = _median(gaps) if gaps else None
+    spacing = median(gaps) if gaps else None
 
     # 2. multiband factor: the common group size
     multiband = _most_common([len(g) for g in groups])
