@@ -36,10 +36,10 @@ import math
 import os
 import time
 from collections import Counter
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import Any, TypeVar
 
 import numpy as np
 
@@ -144,6 +144,8 @@ from slicetime.rules.correction import (
     too_few_volumes_of,
 )
 from slicetime.words import count
+
+_Result = TypeVar("_Result")
 
 
 @dataclass(frozen=True)
@@ -600,6 +602,7 @@ def _resample_and_write(
                 tmp_image, new_prefix, compress=header.compressed, threads=options.threads
             )
             _drain(buffer, writer, cast, plan, budget, header.shape, skip)
+            noise = _closing_with(writer, lambda: noise_per_slice(plan, engine, n_slices))
             output_sha = writer.sha256()
             writer = None
             buffer.close()
@@ -616,7 +619,7 @@ def _resample_and_write(
         sidecar = output_sidecar(
             record, plan, settings, inputs, output_sha, dataset_name, stats,
             CorrectionFacts(accepted=outcome.accepted, omitted=options.omit_leading,
-                            noise=noise_per_slice(plan, engine, n_slices),
+                            noise=noise,
                             events=events.record() if events is not None else None))
         earlier = recorded_events(target.sidecar, options.out)
         if events is not None:
@@ -666,8 +669,9 @@ def _drain(
     shape: tuple[int, ...],
     skip: int = 0,
 ) -> None:
-    """Write the buffer's volumes out in file order (then close the writer), leaving out
-    the first ``skip``; ``shape`` is the image's NIfTI shape (i, j, k, volumes)."""
+    """Write the buffer's volumes out in file order (the caller closes the writer),
+    leaving out the first ``skip``; ``shape`` is the image's NIfTI shape (i, j, k,
+    volumes)."""
     n_slices, n_volumes = shape[plan.axis_index], shape[3]
     spatial_c = tuple(reversed(shape[:3]))
     others = [d for i, d in enumerate(spatial_c) if i != c_axis(plan.axis_index) - 1]
@@ -687,8 +691,23 @@ def _drain(
         cast(volume_major_target(target, plan.axis_index), block)
         del block
         writer.write(target)
-    writer.close()
+    writer.settle()  # the last batch array is written before it is freed
     del outgoing
+
+
+def _closing_with(writer: VolumeWriter, work: Callable[[], _Result]) -> _Result:
+    """Close ``writer`` (the encoder's last blocks, then ``fsync``: mostly a wait on the
+    disk) in a helper thread while ``work`` runs here; return what ``work`` returns,
+    after the close (whose error, if any, is raised)."""
+    from concurrent.futures import ThreadPoolExecutor
+
+    with ThreadPoolExecutor(max_workers=1, thread_name_prefix="slicetime-close") as closer:
+        closed = closer.submit(writer.close)
+        try:
+            done = work()
+        finally:
+            closed.result()
+    return done
 
 
 def _mtime(path: Path) -> float:
