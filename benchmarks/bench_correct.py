@@ -226,7 +226,12 @@ with fh:
     data = np.frombuffer(memory, np.float32)
     madvise = ctypes.CDLL(None).madvise
     madvise.argtypes = [ctypes.c_void_p, ctypes.c_size_t, ctypes.c_int]
-    threading.Thread(target=madvise, args=(data.ctypes.data, n * 4, 23), daemon=True).start()
+
+    def populate(address=data.ctypes.data, size=n * 4, step=16 << 20):
+        for offset in range(0, size, step):
+            madvise(address + offset, min(step, size - offset), 23)  # MADV_POPULATE_WRITE
+
+    threading.Thread(target=populate, daemon=True).start()
     table = 1 + np.random.default_rng(0).random(1 << 20, dtype=np.float32) * np.float32(1e-3)
     step = CHUNK // 2
     stored = np.empty(step, np.int16)  # one batch, reused
