@@ -9,11 +9,12 @@ from __future__ import annotations
 import dataclasses
 import enum
 import itertools
+import math
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any, Literal, Protocol, TypeVar
 
-from slicetime.numbers import json_time, json_times, tidy_json
+from slicetime.numbers import json_time, json_times, plain, tidy_json
 
 if TYPE_CHECKING:
     from slicetime.model_source import SourceEvidence
@@ -29,6 +30,20 @@ AXES: tuple[Axis, ...] = ("i", "j", "k")
 #: plausibility gate, ``verify`` and ``slicetime timing`` use them.
 MIN_REPETITION_TIME = 0.05
 MAX_REPETITION_TIME = 100.0
+
+
+def implausible_repetition(seconds: float) -> str | None:
+    """Why ``seconds`` is no repetition time an fMRI run can have (outside
+    [:data:`MIN_REPETITION_TIME`, :data:`MAX_REPETITION_TIME`], or not finite), or None:
+    the one judgement of the bounds, which the audit (``tr/implausible``), the
+    correction's plausibility gate and ``slicetime timing`` all ask."""
+    if not math.isfinite(seconds):
+        return "not a finite time"
+    if seconds < MIN_REPETITION_TIME:
+        return f"below the shortest plausible TR ({plain(MIN_REPETITION_TIME)} s)"
+    if seconds > MAX_REPETITION_TIME:
+        return f"above the longest plausible TR ({plain(MAX_REPETITION_TIME)} s)"
+    return None
 
 TIME_TOLERANCE = 0.003
 """Seconds: the one tolerance for slice and repetition times (scheme inference,

@@ -433,9 +433,9 @@ def test_a_scaling_beyond_float32_in_a_nifti2_header_names_the_range(
 @pytest.mark.parametrize(
     ("tr", "times_scale", "expect"),
     [
-        (2000.0, 1000.0, "RepetitionTime 2000 is outside the plausible"),  # all in ms
-        (1e9, 1.0, "RepetitionTime 1,000,000,000 is outside the plausible"),
-        (0.002, 0.001, "RepetitionTime 0.002 is outside the plausible"),
+        (2000.0, 1000.0, "RepetitionTime 2000 is above the longest plausible TR"),  # all in ms
+        (1e9, 1.0, "RepetitionTime 1,000,000,000 is above the longest plausible TR"),
+        (0.002, 0.001, "RepetitionTime 0.002 is below the shortest plausible TR"),
     ],
 )
 def test_the_plausibility_gate_holds_even_with_force(
@@ -454,6 +454,18 @@ def test_the_plausibility_gate_holds_even_with_force(
         assert not run["warnings"]
     assert files_under(out) == []
     assert snapshot(ds) == before
+
+
+def test_the_audit_reports_the_tr_the_correction_refuses(ds: Path, tmp_path: Path) -> None:
+    # one judgement of the bounds (model.implausible_repetition): a TR of 0.002 s, which
+    # correct refuses even with --force, is an audit error too (it was reported clean)
+    build_run(ds, REL, [t * 0.001 for t in interleaved(8)], extra={"RepetitionTime": 0.002})
+    result = run_text("audit", ds, "--format", "json")
+    (run,) = json.loads(result.output)["runs"]
+    assert result.exit_code == 1
+    (found,) = [f for f in run["findings"] if f["code"] == "tr/implausible"]
+    assert "below the shortest plausible TR (0.05 s)" in found["message"]
+    assert found["severity"] == "error"
 
 
 def test_plausibility_bounds_are_defined_once() -> None:

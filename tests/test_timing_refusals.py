@@ -25,8 +25,11 @@ def invoke(*args: str) -> tuple[int, str, str]:
     (("--slices", "30000", "--tr", "2"), "--decimals"),
     # every slice in one group: no order at all
     (("--slices", "10", "--tr", "2", "--multiband", "10"), "--multiband"),
-    # 0.33 ms apart: below the audit's grouping threshold (infer.MIN_SEPARATION)
-    (("--slices", "3", "--tr", "0.001"), "--slices"),
+    # 0.25 ms apart: below the audit's grouping threshold (infer.MIN_SEPARATION)
+    (("--slices", "200", "--tr", "0.05", "--decimals", "6"), "--slices"),
+    # a TR no fMRI run has (model.implausible_repetition; the audit's tr/implausible
+    # and correct's gate refuse it too)
+    (("--slices", "3", "--tr", "0.001"), "--tr"),
 ])
 def test_a_list_the_audit_rejects_is_refused(args: tuple[str, ...], option: str) -> None:
     code, out, err = invoke(*args)

@@ -25,6 +25,7 @@ from slicetime.model import (
     TIME_TOLERANCE,
     SliceSchedule,
     before_start,
+    implausible_repetition,
     outside_window,
 )
 from slicetime.numbers import as_written, plain, secs
@@ -69,10 +70,12 @@ def check_plausible(schedule: SliceSchedule) -> None:
     low_tr, high_tr = MIN_REPETITION_TIME, MAX_REPETITION_TIME
     bounds = f"{plain(low_tr)} to {secs(high_tr)}"
     tr = schedule.repetition_time
-    if tr is not None and not (math.isfinite(tr) and low_tr <= tr <= high_tr):
+    problem = implausible_repetition(tr) if tr is not None else None
+    if tr is not None and problem is not None:
+        guess = " (milliseconds?)" if tr > high_tr else ""
         raise ImplausibleTiming(
-            f"RepetitionTime {as_written(tr)} is outside the plausible {bounds} "
-            "(milliseconds?), so the run cannot be corrected even with --force",
+            f"RepetitionTime {as_written(tr)} is {problem}{guess}, so the run cannot be "
+            "corrected even with --force",
             "RepetitionTime")
     if schedule.volume_times is not None:
         onsets = np.asarray(schedule.volume_times, dtype=np.float64)
@@ -80,7 +83,8 @@ def check_plausible(schedule: SliceSchedule) -> None:
         if not np.all(np.isfinite(onsets)) or (onsets.size and onsets.min() < 0):
             raise ImplausibleTiming("VolumeTiming holds a negative or non-finite time",
                                     "VolumeTiming")
-        if steps.size and (steps.max() > high_tr or steps.min() < low_tr):
+        if steps.size and (implausible_repetition(float(steps.max())) is not None
+                           or implausible_repetition(float(steps.min())) is not None):
             raise ImplausibleTiming(
                 f"VolumeTiming spaces volumes {as_written(float(steps.min()))} to "
                 f"{as_written(float(steps.max()))} apart, "

@@ -62,6 +62,7 @@ RUN_CHECKS: tuple[tuple[str, RunCheck], ...] = (
     ("tr/frame-duration-conflict", timing.tr_frame_duration),
     ("tr/deprecated-acquisition-duration", timing.deprecated_acq),
     ("tr/units-ms", timing.tr_units),
+    ("tr/implausible", timing.tr_implausible),
 )
 
 #: (code, check over all runs of a dataset), in the order check_dataset runs them

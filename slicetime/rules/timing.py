@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import itertools
 from collections.abc import Callable, Iterator
 from typing import Any
 
@@ -12,6 +13,7 @@ from slicetime.model import (
     SliceSchedule,
     WindowKind,
     before_start,
+    implausible_repetition,
     past_end,
     window_label,
 )
@@ -391,6 +393,35 @@ def tr_units(record: RunRecord) -> Iterator[Hit]:
             return
         yield Hit(f"RepetitionTime is {plain(tr)}; {secs(tr / 1000)} is far more likely",
                   "RepetitionTime", {"value": tr, "as_seconds": tr / 1000})
+
+
+def tr_implausible(record: RunRecord) -> Iterator[Hit]:
+    """The run's resolved TR (seconds, after the unit verdicts) or its VolumeTiming's
+    shortest spacing is no TR an fMRI run can have (``model.implausible_repetition``,
+    the bounds the correction's gate refuses by): a TR of 0.01 s. Values above the
+    upper bound are read as milliseconds or found unusable by ``tr/units-ms``."""
+    timing = record.timing
+    tr = timing.repetition_time
+    if tr is not None:
+        problem = implausible_repetition(tr)
+        if problem is not None:
+            header = timing.repetition_origin == "header"
+            yield Hit(f"{'pixdim[4]' if header else 'RepetitionTime'} gives a TR of "
+                      f"{as_written(tr)} s, {problem}", "pixdim[4]" if header else
+                      "RepetitionTime", {"seconds": tr, "origin": timing.repetition_origin},
+                      file=record.path if header else None)
+        return
+    schedule = timing.schedule
+    onsets = schedule.volume_times if schedule is not None else None
+    if onsets is None or len(onsets) < 2:
+        return
+    factor = timing.units["VolumeTiming"].factor if "VolumeTiming" in timing.units else 1.0
+    spacing = min(b - a for a, b in itertools.pairwise(onsets)) * factor
+    if spacing > 0:
+        problem = implausible_repetition(spacing)
+        if problem is not None:
+            yield Hit(f"VolumeTiming spaces volumes as little as {as_written(spacing)} s apart, "
+                      f"{problem}", "VolumeTiming", {"seconds": spacing})
 
 
 def _plain(evidence: Any) -> dict[str, Any]:

@@ -10,7 +10,7 @@ import click
 
 from slicetime.interfaces.commands.shared import UserError, friendly, interruptible
 from slicetime.interfaces.screen import say
-from slicetime.model import MAX_REPETITION_TIME, MIN_REPETITION_TIME
+from slicetime.model import MAX_REPETITION_TIME, MIN_REPETITION_TIME, implausible_repetition
 
 
 @click.command()
@@ -82,6 +82,9 @@ def timing(
             raise UserError(f"timing: {option} {as_written(value)} is no plausible time, "
                             f"in seconds or read as milliseconds (a TR lies between "
                             f"{plain(MIN_REPETITION_TIME)} and {plain(MAX_REPETITION_TIME)} s)")
+        if option == "--tr" and value is not None and value < MIN_REPETITION_TIME:
+            raise UserError(f"timing: --tr {as_written(value)} is "
+                            f"{implausible_repetition(value)}")
         if value is not None and value > _MS_LIKE_SECONDS:
             raise UserError(f"timing: {option} {as_written(value)}: times are in seconds, "
                             f"and {as_written(value)} looks like milliseconds; did you mean "
