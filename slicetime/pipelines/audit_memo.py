@@ -30,7 +30,7 @@ from __future__ import annotations
 import dataclasses
 import operator
 import weakref
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from typing import Any, TypeVar
 
 from slicetime.model import (
@@ -135,7 +135,8 @@ class _Timing:
     #: whether the schedule's sources, the TR's source name a token
     in_schedule: bool
     in_tr: bool
-    keep: Any  # the metadata read: its parsed values stay alive while their ids are keys
+    keep: Any  # what was read (the metadata, or the merged parsed sidecars): alive while
+    #           their ids are keys
 
 
 def _named(source: Source, names: Mapping[str, str]) -> Source:
@@ -161,34 +162,48 @@ class ContentMemo:
         self._timings: dict[Any, _Timing] = {}
         self._checks: dict[Any, tuple[tuple[int, Finding, bool], ...] | None] = {}
         self.reused = 0
-        #: the run whose timing was given last: its name, its content's key and entry
-        self._last: tuple[str, Any, _Timing] | None = None
+        #: the run whose timing was given last: its name, its content's key and entry,
+        #: and whether the key is of the merged sidecars (``Resolution.merged``)
+        self._last: tuple[str, Any, _Timing, bool] | None = None
 
     def _remembers(self, table: Mapping[Any, Any]) -> bool:
         held = len(table)
         return held < MEMO_KEPT and (held < _TRIAL or self.reused >= held)
 
     def timing_of(self, metadata: Mapping[str, Any], sources: Mapping[str, str],
-                  header: HeaderInfo | None, display: str
+                  header: HeaderInfo | None, display: str,
+                  merged: Sequence[tuple[str, Any]] | None = None,
                   ) -> tuple[ResolvedTiming, Scheme | None]:
-        """What :func:`resolve_timing` and :func:`infer_run_scheme` give the run."""
+        """What :func:`resolve_timing` and :func:`infer_run_scheme` give the run.
+        ``merged``: the sidecars (names) and parsed values (objects) the metadata and
+        its sources were merged from, in order (``Resolution.merged``), or None."""
         own = sidecar_path(display)
-        canonical = {k: OWN if v == own else v for k, v in sources.items()}
-        key = (None if header is None else HEADER_KEY(header),
-               tuple([(k, _value_key(v)) for k, v in metadata.items()]),
-               tuple(canonical.items()))
+        head = None if header is None else HEADER_KEY(header)
+        keep: Any
+        if merged is not None:
+            # the metadata, its sources, the chain and the overridden values follow from
+            # the merged sidecars alone: their names (the run's own as OWN) and their
+            # parsed values by identity (kept alive below), not every key and value
+            key: tuple[Any, ...] = (head, tuple([(OWN if shown == own else shown, id(data))
+                                                 for shown, data in merged]))
+            keep = tuple([data for _shown, data in merged])
+        else:
+            key = (head, tuple([(k, _value_key(v)) for k, v in metadata.items()]),
+                   tuple([(k, OWN if v == own else v) for k, v in sources.items()]))
+            keep = dict(metadata)
         entry = self._timings.get(key)
         if entry is None:
             if not self._remembers(self._timings) or _held_items(metadata) > _HELD_ITEMS:
                 self._last = None
                 return _cold(metadata, sources, header, display)
-            entry = self._timings[key] = _evaluate(metadata, canonical, header)
+            canonical = {k: OWN if v == own else v for k, v in sources.items()}
+            entry = self._timings[key] = _evaluate(metadata, canonical, header, keep)
         else:
             self.reused += 1
         if not entry.usable:
             self._last = None
             return _cold(metadata, sources, header, display)
-        self._last = (display, key, entry)
+        self._last = (display, key, entry, merged is not None)
         if not (entry.in_schedule or entry.in_tr):
             return entry.timing, entry.scheme
         names = {RUN: display, OWN: own}
@@ -209,11 +224,16 @@ class ContentMemo:
         if last is None or last[0] != record.path or record.source is not None:
             return _cold_findings(record)
         own = sidecar_path(record.path)
-        key = (last[1],
-               tuple([OWN if s == own else s for s in record.sidecar_chain]),
-               tuple([(k, tuple([(OWN if s == own else s, _value_key(v)) for s, v in shadowed]))
-                      for k, shadowed in record.overridden.items()]),
-               record.suffix, record.content_missing)
+        key: tuple[Any, ...]
+        if last[3]:  # keyed by the merged sidecars: the chain and the overrides follow
+            key = (last[1], record.suffix, record.content_missing)
+        else:
+            key = (last[1],
+                   tuple([OWN if s == own else s for s in record.sidecar_chain]),
+                   tuple([(k, tuple([(OWN if s == own else s, _value_key(v))
+                                     for s, v in shadowed]))
+                          for k, shadowed in record.overridden.items()]),
+                   record.suffix, record.content_missing)
         if key in self._checks:
             found = self._checks[key]
             self.reused += 1
@@ -244,7 +264,7 @@ def _cold_findings(record: RunRecord) -> list[Finding]:
 
 
 def _evaluate(metadata: Mapping[str, Any], canonical: Mapping[str, str],
-              header: HeaderInfo | None) -> _Timing:
+              header: HeaderInfo | None, keep: Any) -> _Timing:
     timing, scheme = _cold(metadata, canonical, header, RUN)
     schedule = timing.schedule
     named = [s for s in (schedule.sources.values() if schedule is not None else ())]
@@ -260,7 +280,7 @@ def _evaluate(metadata: Mapping[str, Any], canonical: Mapping[str, str],
               and (tr_source is None
                    or _scan(dataclasses.replace(tr_source, file=None)) == 0)
               and (tr_source is None or not in_tr or tr_source.file in (RUN, OWN)))
-    return _Timing(timing, scheme, usable, in_schedule, in_tr, dict(metadata))
+    return _Timing(timing, scheme, usable, in_schedule, in_tr, keep)
 
 
 def _evaluate_checks(record: RunRecord, own: str, entry: _Timing

@@ -309,6 +309,11 @@ class Resolution:
     #: timing fields whose inherited value a deeper sidecar replaced with a different
     #: one: key -> ((sidecar, value), ...) of the shadowed values, top-down
     overridden: dict[str, tuple[tuple[str, Any], ...]] = field(default_factory=dict)
+    #: each applicable sidecar in merge order with its parsed value (the very object the
+    #: store holds, None when unreadable): ``metadata``, ``sources``, ``chain`` and
+    #: ``overridden`` follow from it alone, so the audit's content memo keys on the
+    #: names and the identities of these values instead of on every key and value
+    merged: tuple[tuple[str, dict[str, Any] | None], ...] = ()
 
 
 @dataclass
@@ -569,6 +574,7 @@ class SidecarIndex:
         level_names: list[tuple[str, ...]] = []
         own_names: set[str] = set()
         overridden: dict[str, list[tuple[str, Any]]] = {}
+        merged: list[tuple[str, dict[str, Any] | None]] = []
         for level in levels:
             loaded: list[tuple[str, dict[str, Any] | None]] = []
             for candidate, own in level:
@@ -580,6 +586,7 @@ class SidecarIndex:
                 findings.extend(problems)
                 chain.append(shown)
                 loaded.append((shown, data))
+                merged.append((shown, data))
                 if data:
                     for key, value in data.items():
                         if key in OVERRIDE_TRACKED and key in metadata \
@@ -601,6 +608,7 @@ class SidecarIndex:
             name=parsed,
             levels=tuple(level_names),
             overridden={k: tuple(v) for k, v in overridden.items()},
+            merged=tuple(merged),
         )
 
 

@@ -24,8 +24,10 @@ from slicetime.schemes.resolve import infer_run_scheme, resolve_timing
 #: timing fields with a dedicated rule; their type problems are reported there
 _DEDICATED_FIELDS = frozenset({"SliceTiming", "SliceEncodingDirection"})
 DATATYPES = frozenset({"func", "perf", "dwi", "anat", "fmap"})
-#: (metadata, sources, header, display) -> the run's timing and scheme
-TimingOf = Callable[[Mapping[str, Any], Mapping[str, str], HeaderInfo | None, str],
+#: (metadata, sources, header, display, merged) -> the run's timing and scheme; ``merged``
+#: is ``Resolution.merged`` (what the metadata was merged from), or None when not known
+TimingOf = Callable[[Mapping[str, Any], Mapping[str, str], HeaderInfo | None, str,
+                     Sequence[tuple[str, Any]] | None],
                     tuple[ResolvedTiming, Scheme | None]]
 
 
@@ -47,11 +49,13 @@ def assemble_record(
     overridden: Mapping[str, tuple[tuple[str, Any], ...]] | None = None,
     content_missing: str | None = None,
     timing_of: TimingOf | None = None,
+    merged: Sequence[tuple[str, Any]] | None = None,
 ) -> RunRecord:
     """Resolve the schedule and infer the scheme from values already read (pure).
-    ``timing_of`` (metadata, sources, header, display) gives the timing and scheme in
-    place of :func:`resolve_timing` and :func:`infer_run_scheme` (the audit's
-    content memo, which gives the same)."""
+    ``timing_of`` (metadata, sources, header, display, merged) gives the timing and
+    scheme in place of :func:`resolve_timing` and :func:`infer_run_scheme` (the audit's
+    content memo, which gives the same); ``merged``: the sidecars and parsed values the
+    metadata was merged from (``Resolution.merged``), when known."""
     name = display.rsplit("/", 1)[-1]
     parent = display.rsplit("/", 2)[-2] if display.count("/") >= 1 else ""
     parsed = parse_name(name)
@@ -77,7 +81,8 @@ def assemble_record(
     if header is None and content_missing is None:
         return RunRecord(**common)
     if timing_of is not None:
-        common["timing"], common["scheme"] = timing_of(metadata, sources, header, display)
+        common["timing"], common["scheme"] = timing_of(metadata, sources, header, display,
+                                                       merged)
     else:
         common["timing"] = timing = resolve_timing(metadata, sources, header, display)
         common["scheme"] = infer_run_scheme(timing)
@@ -120,6 +125,7 @@ def build_record(root: Path, path: Path, index: SidecarIndex | None = None,
         overridden=resolution.overridden,
         content_missing=missing,
         timing_of=timing_of,
+        merged=resolution.merged,
     )
 
 
