@@ -173,6 +173,11 @@ def test_folder_chain_matches_pathlib(folder: str, root: str | None) -> None:
         for part in f.relative_to(root).parts:
             expected.append(expected[-1] / part)
     assert inheritance.folder_chain(folder, root) == tuple(str(p) for p in expected)
+    # the sidecar index builds a chain from its parent's (_parent_within), the same folders
+    by_parents = [folder]
+    while (parent := inheritance._parent_within(by_parents[0], root)) is not None:
+        by_parents.insert(0, parent)
+    assert tuple(by_parents) == tuple(str(p) for p in expected)
 
 
 @pytest.mark.parametrize("version", [1, 2])

@@ -409,8 +409,9 @@ class SidecarIndex:
         cached = self._folders.get(key)
         if cached is None:
             listing = self.listing(directory, root)
-            if not listing.jsons:  # most folders on the way down hold no sidecar
-                cached = self._folders[key] = _Folder((), listing.problem)
+            if not listing.jsons:  # most folders on the way down hold no sidecar: one object
+                cached = self._folders[key] = _NO_SIDECARS if listing.problem is None \
+                    else _Folder((), listing.problem)
                 return cached
             candidates = []
             for name, pn in listing.jsons:
@@ -431,7 +432,11 @@ class SidecarIndex:
         key = (folder, root)
         cached = self._chains.get(key)
         if cached is None:
-            cached = tuple(self._folder(d, root) for d in folder_chain(folder, root))
+            parent = _parent_within(folder, root)
+            # the parent's chain (remembered: the runs of a subject's folders share it)
+            # and this folder; the folders are folder_chain's (tests/test_perf_equivalence.py)
+            cached = (self._folder(folder, root),) if parent is None \
+                else (*self._chain(parent, root), self._folder(folder, root))
             self._chains[key] = cached
         return cached
 
@@ -642,6 +647,10 @@ class _Folder:
         default_factory=dict, compare=False, hash=False, repr=False)
 
 
+#: a folder on the way down that holds no sidecar (most of them): one shared object
+_NO_SIDECARS = _Folder((), None)
+
+
 def _basename(path: str) -> str:
     return os.path.split(path)[1]
 
@@ -661,6 +670,17 @@ def _relative_text(path: str, root: str | None) -> str:
         return relative_posix(Path(path), Path(root) if root is not None else None)
     below = _strip_root(path, root) if root is not None else None
     return below if below is not None else path
+
+
+def _parent_within(folder: str, root: str | None) -> str | None:
+    """The folder before ``folder`` in :func:`folder_chain`, None when that chain is
+    ``folder`` alone (paths absolute and normalised)."""
+    if root is None or folder == root:
+        return None
+    prefix = root if root.endswith(os.sep) else root + os.sep
+    if not folder.startswith(prefix):
+        return None
+    return folder.rpartition(os.sep)[0] or os.sep
 
 
 def folder_chain(folder: str, root: str | None) -> tuple[str, ...]:
