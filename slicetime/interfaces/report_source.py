@@ -56,10 +56,12 @@ def run_line(run: RunResult) -> str:
     record = run.record
     times = _times_text(record.schedule.times) if record.schedule is not None else "null"
     scheme = _scheme_text(record.scheme) if record.scheme is not None else "null"
-    text = (f'{_ENCODER.encode(head)[:-1]},"slice_times":{times},'
-            f'"timing_origin":{_ENCODER.encode(origin)},"scheme":{scheme},'
-            f'{_ENCODER.encode(tail)[1:]}')
-    return SURROGATE.sub(_visible, text) if SURROGATE.search(text) else text
+    first, last, middle = _ENCODER.encode(head), _ENCODER.encode(tail), _ENCODER.encode(origin)
+    text = (f'{first[:-1]},"slice_times":{times},"timing_origin":{middle},"scheme":{scheme},'
+            f'{last[1:]}')
+    # the shared values' texts were made by encode(): only the run's own parts are searched
+    odd = SURROGATE.search(first) or SURROGATE.search(last) or SURROGATE.search(middle)
+    return SURROGATE.sub(_visible, text) if odd else text
 
 
 #: encodings of shared values; emptied when full, so memory stays bounded

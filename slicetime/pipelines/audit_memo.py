@@ -141,8 +141,7 @@ class _Timing:
 
 def _named(source: Source, names: Mapping[str, str]) -> Source:
     file = source.file
-    return Source(source.kind, source.field, names[file]) \
-        if file is not None and file in names else source
+    return _changed(source, file=names[file]) if file is not None and file in names else source
 
 
 def _changed(value: _T, **changes: Any) -> _T:
