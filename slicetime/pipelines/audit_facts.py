@@ -101,11 +101,33 @@ HEADER_KEY = operator.attrgetter(
     *[f.name for f in dataclasses.fields(HeaderInfo) if f.name != "file_size"])
 
 
+#: objects an Interner recognises by identity (see ``Interner._identities``)
+IDENTITIES_KEPT = 1024
+
+
 class Interner:
     """One shared instance per distinct value, so equal facts cost memory once."""
 
     def __init__(self) -> None:
         self._values: dict[Any, Any] = {}
+        #: (id of a value, id of its companion) -> (value, companion, the interned one):
+        #: the runs of one content hand in the same timing and scheme objects (the audit's
+        #: content memo), which are then not keyed field by field again; the objects are
+        #: held, so their ids are not reused meanwhile (at most IDENTITIES_KEPT)
+        #: (one table per kind, so runs whose timings differ still learn their schemes)
+        self._identities: dict[str, dict[tuple[int, int], tuple[Any, Any, Any]]] = {
+            "timing": {}, "scheme": {}}
+
+    def _known(self, kind: str, value: Any, companion: Any) -> Any:
+        hit = self._identities[kind].get((id(value), id(companion)))
+        return hit[2] if hit is not None and hit[0] is value and hit[1] is companion \
+            else None
+
+    def _learn(self, kind: str, value: Any, companion: Any, interned: Any) -> Any:
+        table = self._identities[kind]
+        if len(table) < IDENTITIES_KEPT:
+            table[(id(value), id(companion))] = (value, companion, interned)
+        return interned
 
     def _one(self, key: Any, make: Callable[[], Any]) -> Any:
         found = self._values.get(key)
@@ -183,6 +205,12 @@ class Interner:
         """The resolved timing without what no fact reader needs (the schedule's sources,
         the problems, the file the TR came from, the verdicts' evidence but whether they
         are usable), shared."""
+        known = self._known("timing", value, None)
+        if known is not None:
+            return known
+        return self._learn("timing", value, None, self._timing(value))
+
+    def _timing(self, value: ResolvedTiming) -> ResolvedTiming:
         schedule = self.schedule(value.schedule)
         # the times, the window and what lies outside it follow from the schedule, the
         # TR and the units: the key needs only those
@@ -203,6 +231,9 @@ class Interner:
     def scheme(self, value: Scheme | None, schedule: SliceSchedule | None) -> Scheme | None:
         if value is None:
             return None
+        known = self._known("scheme", value, schedule)
+        if known is not None:
+            return known
         key = ("c", id(schedule), value.label, value.groups, value.multiband_factor,
                value.regular)
-        return self._one(key, lambda: value)
+        return self._learn("scheme", value, schedule, self._one(key, lambda: value))
