@@ -771,3 +771,17 @@ def test_a_fresh_buffer_is_faulted_in_by_its_helper_and_holds_what_is_written() 
     assert np.array_equal(array, values)
     small, none = fresh_float32((4, 5))
     assert none is None and small.shape == (4, 5) and small.dtype == np.float32
+
+
+@settings(max_examples=300, deadline=None)
+@given(name=st.lists(st.sampled_from(["a", ".", "nii", "NII", "gz", "Gz", "İ", "x_bold"]),
+                     max_size=6).map("".join))
+def test_image_name_test_equals_the_any_extension_form(name: str) -> None:
+    # the form the walk used before: some NIfTI extension ends the lower-cased name and
+    # something stands before it (common practice (no source): .nii and .nii.gz, any case)
+    from slicetime.readers.dataset import IMAGE_EXTENSIONS, is_image_name
+
+    lower = name.lower()
+    expected = lower.endswith(IMAGE_EXTENSIONS) and any(
+        lower.endswith(ext) and len(name) > len(ext) for ext in IMAGE_EXTENSIONS)
+    assert is_image_name(name) == expected

@@ -99,9 +99,11 @@ def _abs(path: Path) -> Path:
 def is_image_name(name: str) -> bool:
     """True for ``*.nii`` and ``*.nii.gz`` names (case-insensitive extension)."""
     lower = name.lower()
-    return lower.endswith(IMAGE_EXTENSIONS) and any(
-        lower.endswith(ext) and len(name) > len(ext) for ext in IMAGE_EXTENSIONS
-    )
+    # each extension tested in turn, without a generator (asked of every name a walk meets)
+    for ext in IMAGE_EXTENSIONS:
+        if lower.endswith(ext) and len(name) > len(ext):
+            return True
+    return False
 
 
 def find_root(path: Path) -> Path:
@@ -225,6 +227,7 @@ class _RootFinder:
     def __init__(self) -> None:
         self._described: dict[str, bool] = {}
         self._root: dict[str, str] = {}  # folder -> the root found for it
+        self._paths: dict[str, Path] = {}  # a root found -> its one Path
 
     def _has_description(self, folder: str) -> bool:
         known = self._described.get(folder)
@@ -242,6 +245,16 @@ class _RootFinder:
         above) that holds a dataset description, else the parent of the outermost
         ``sub-*`` folder, else ``start``. Every folder passed on the way up remembers
         the root found, so the runs of one dataset cost one look each."""
+        found = self._find(start)
+        if isinstance(found, Path):
+            return found
+        made = self._paths.get(found)  # one Path per root found, not one per folder asked
+        if made is None:
+            made = self._paths[found] = Path(found)
+        return made
+
+    def _find(self, start: str) -> str | Path:
+        """:meth:`find_folder`; the root's path text when a description was found."""
         start = os.fspath(_abs(Path(start))) if not os.path.isabs(start) else start
         folder, passed = start, []
         found: str | None = None
@@ -261,7 +274,7 @@ class _RootFinder:
         if found is not None:
             for each in passed:
                 self._root[each] = found
-            return Path(found)
+            return found
         begin = Path(start)
         for candidate in reversed((begin, *begin.parents)):
             if candidate.name.startswith("sub-"):
