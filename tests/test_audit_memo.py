@@ -95,3 +95,57 @@ def test_runs_of_equal_content_name_their_own_sidecars(tmp_path: Path) -> None:
     sources = {run.record.path: run.record.schedule.sources["SliceTiming"].file
                for run in result.runs if run.record.schedule is not None}
     assert sources == {path: next(iter(f)) for path, f in files.items()}
+
+
+def test_report_lines_filled_in_from_a_judged_content_equal_lines_made_in_full(
+        tmp_path: Path) -> None:
+    """Runs of one judged content get their report line from the content's line with
+    their names put in (``report_source._templated``); it must be the text the contract's
+    run object encodes to (``encode(run_object(run))``, Python's json module), names
+    with quotes, backslashes, non-ASCII letters and JSON's own escapes included. Clean
+    runs with own sidecars byte for byte alike, in folders of odd names."""
+    from slicetime.interfaces.report_json import run_object
+    from slicetime.interfaces.report_source import _templates, encode, run_line
+    from slicetime.pipelines.audit import RunResult, audit_stream
+
+    write_description(tmp_path)
+    times = slice_timing(Protocol(n_slices=10, order="interleaved", repetition_time=2.0,
+                                  decimals=4))
+    labels = ["01", "02", "é3", "04"]
+    folders = ["func", 'fu"nc', "fu\\nc", "f\tunc"]
+    for label in labels:
+        for folder in folders:
+            write_run(tmp_path, f"sub-{label}/{folder}/sub-{label}_task-rest_bold.nii.gz",
+                      shape=(4, 4, 10, 6),
+                      sidecar={"SliceTiming": times, "RepetitionTime": 2.0})
+    runs: list[RunResult] = []
+    audit_stream([tmp_path], runs.append)
+    assert len(runs) == len(labels) * len(folders)
+    judged = [run for run in runs if run.content is not None and not run.findings]
+    assert len({id(run.content) for run in judged}) < len(judged) // 2  # contents shared
+    for run in runs:
+        assert run_line(run) == encode(run_object(run)), run.record.path
+    # and these runs' lines were filled in
+    assert sum(_templates.get(run.content) is not None for run in judged) >= len(judged) // 2
+
+
+def test_run_facts_of_a_judged_content_equal_facts_made_run_by_run(tmp_path: Path) -> None:
+    # the facts interned once per content (RunFacts(content=...)) are those each run's own
+    # record gives (the golden tests' varied dataset: shared and own sidecars, defects)
+    from slicetime.model import Counts
+    from slicetime.pipelines.audit import RunResult, audit_stream
+    from slicetime.pipelines.audit_facts import Interner, RunFacts
+
+    root = tmp_path / "varied"
+    make_varied_dataset(root, 300)
+    runs: list[RunResult] = []
+    audit_stream([root], runs.append)
+    assert sum(run.content is not None for run in runs) > 200
+    fast, slow = Interner(), Interner()
+    names = ("path", "root", "abs_path", "entities", "suffix", "datatype", "header", "timing",
+             "scheme", "content_missing", "counts", "fold_roots", "metadata_sources")
+    for run in runs:
+        counts = Counts.of(run.findings)
+        made = RunFacts(run.record, counts, fast, run.findings, run.content)
+        plain = RunFacts(run.record, counts, slow, run.findings)
+        assert {n: getattr(made, n) for n in names} == {n: getattr(plain, n) for n in names}

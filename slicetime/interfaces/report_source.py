@@ -29,7 +29,8 @@ from slicetime.escapes import SURROGATE, escape_surrogate
 from slicetime.model import Counts, Finding, Scheme
 from slicetime.numbers import json_times
 from slicetime.pipelines.audit import AuditResult, AuditTotals, RunFacts, RunResult, dataset_names
-from slicetime.readers.entities import run_name_problem
+from slicetime.pipelines.audit_memo import OWN, RUN, Content
+from slicetime.readers.entities import run_name_problem, sidecar_path
 from slicetime.rules.dataset import protocol_key
 
 _ENCODER = json.JSONEncoder(ensure_ascii=False, allow_nan=False, separators=(",", ":"))
@@ -49,7 +50,17 @@ def encode(value: Any) -> str:
 def run_line(run: RunResult) -> str:
     """The contract's run object of ``run`` as one line of JSON: the same text as
     ``encode(run_object(run))``, with the values many runs share (the slice times and
-    the scheme) encoded once per distinct value."""
+    the scheme) encoded once per distinct value, and the line of a run without findings
+    whose content the audit judged once (``run.content``) filled in from that content's
+    line (:func:`_templated`)."""
+    if run.content is not None and not run.findings:
+        line = _templated(run)
+        if line is not None:
+            return line
+    return _run_line(run)
+
+
+def _run_line(run: RunResult) -> str:
     from slicetime.interfaces.report_json import run_parts
 
     head, origin, tail = run_parts(run)
@@ -62,6 +73,58 @@ def run_line(run: RunResult) -> str:
     # the shared values' texts were made by encode(): only the run's own parts are searched
     odd = SURROGATE.search(first) or SURROGATE.search(last) or SURROGATE.search(middle)
     return SURROGATE.sub(_visible, text) if odd else text
+
+
+#: the tokens of a judged content's record (audit_memo.RUN, OWN) as JSON encodes them
+_RUN_TEXT = _ENCODER.encode(RUN)[1:-1]
+_OWN_TEXT = _ENCODER.encode(OWN)[1:-1]
+#: where a content's line (no entities, no findings) takes the run's entities
+_ENTITIES_AT = ',"entities":{},"sidecars":['
+#: content -> its line with the tokens (None: not filled in); held, emptied when full
+_templates: dict[Content, tuple[str, str] | None] = {}
+
+
+def _templated(run: RunResult) -> str | None:
+    """The run's line from its judged content's line: the content's record (the tokens
+    in place of the run's path and own sidecar, no entities) encoded once, then the
+    names and the entities put in. The first run of a content checks the filled-in line
+    against its line made in full; a content whose lines differ is never filled in.
+    None: make the line in full (a name that holds a lone surrogate, a content not
+    filled in)."""
+    content = run.content
+    assert content is not None
+    record = run.record
+    path, own = record.path, sidecar_path(record.path)
+    if SURROGATE.search(path) or SURROGATE.search(own):
+        return None
+    if content in _templates:
+        made = _templates[content]
+        if made is None:
+            return None
+    else:
+        text = _run_line(RunResult(content.record, []))
+        head, found, tail = text.rpartition(_ENTITIES_AT)
+        made = (head, tail) if found else None
+        if made is not None and _filled(made, path, own, record.entities) != _run_line(run):
+            made = None
+        if len(_templates) >= _FRAGMENTS_MAX:
+            _templates.clear()
+        _templates[content] = made
+        if made is None:
+            return None
+    entities = _ENCODER.encode(record.entities)
+    if SURROGATE.search(entities):
+        return None
+    return _filled(made, path, own, record.entities, entities)
+
+
+def _filled(made: tuple[str, str], path: str, own: str, entities: Any,
+            encoded: str | None = None) -> str:
+    head, tail = made
+    path_text, own_text = _ENCODER.encode(path)[1:-1], _ENCODER.encode(own)[1:-1]
+    return (head.replace(_RUN_TEXT, path_text).replace(_OWN_TEXT, own_text)
+            + ',"entities":' + (encoded if encoded is not None else _ENCODER.encode(entities))
+            + ',"sidecars":[' + tail.replace(_RUN_TEXT, path_text).replace(_OWN_TEXT, own_text))
 
 
 #: encodings of shared values; emptied when full, so memory stays bounded

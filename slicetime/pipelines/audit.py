@@ -23,7 +23,7 @@ from slicetime.model import (
 )
 from slicetime.model_source import SourceEvidence
 from slicetime.pipelines.audit_facts import Interner, RunFacts
-from slicetime.pipelines.audit_memo import memo_for
+from slicetime.pipelines.audit_memo import Content, memo_for
 from slicetime.pipelines.errors import NoRunsError
 from slicetime.pipelines.executor import (
     Executor,
@@ -55,6 +55,10 @@ class RunResult:
     record: RunRecord
     findings: list[Finding]
     ignored: list[IgnoredFinding] = field(default_factory=list)
+    #: the content memo's judged content of the run (``audit_memo.Content``), when its
+    #: content findings came from the memo: runs with the same one differ only in their
+    #: names (what their report lines and facts may reuse); None otherwise
+    content: Content | None = field(default=None, compare=False, repr=False)
 
 
 @dataclass
@@ -107,14 +111,16 @@ def audit_one(
     record = build_record(root, path, index, memo.timing_of if memo is not None else None)
     record = _with_source(record, root, source, sources)
     findings = memo.findings(record) if memo is not None else check_run(record)
+    content = memo.content if memo is not None else None
     if verify:
         from slicetime.pipelines.verify import verify_finding
 
         findings.append(verify_finding(record))
     if policy is None:
-        return RunResult(record, fold_consequences(findings))
+        return RunResult(record, fold_consequences(findings), content=content)
     outcome = apply_policy(policy, record, findings)
-    return RunResult(record, fold_consequences(outcome.kept), list(outcome.ignored))
+    return RunResult(record, fold_consequences(outcome.kept), list(outcome.ignored),
+                     content=content)
 
 
 # ---- the source cross-check (sourcedata/ DICOM series): one place, see readers/source.py
@@ -474,7 +480,7 @@ class _Prepared:
 def _prepare(result: RunResult, prepare: Callable[[RunResult], Any],
              shared: Interner) -> _Prepared:
     return _Prepared(RunFacts(result.record, Counts.of(result.findings), shared,
-                              result.findings),
+                              result.findings, result.content),
                      len(result.ignored), _not_processed(result), prepare(result))
 
 

@@ -45,22 +45,32 @@ class RunFacts(TimingViews):
                  "fold_roots", "header", "path", "root", "scheme", "suffix", "timing")
 
     def __init__(self, record: RunRecord, counts: Counts, shared: Interner,
-                 findings: Sequence[Finding] = ()) -> None:
+                 findings: Sequence[Finding] = (), content: Any = None) -> None:
         self.path = record.path
         self.root = shared.text(record.root)
         # what can be told from the run's path is not stored again for each run: the
         # absolute path (root/path) and the run's own sidecar among the sources
         self._abs = None if record.abs_path == _joined(self.root, self.path) else record.abs_path
-        own = sidecar_path(record.path)
-        self._sources = shared.mapping(
-            {k: _OWN if v == own else v for k, v in record.metadata_sources.items()
-             if k in _FACT_SOURCES})
         self.entities = shared.mapping(record.entities)
-        self.suffix = shared.text(record.suffix)
         self.datatype = shared.text(record.datatype) if record.datatype else record.datatype
-        self.header = shared.header(record.header)
-        self.timing = shared.timing(record.timing)
-        self.scheme = shared.scheme(record.scheme, self.timing.schedule)
+        # the runs of one judged content (``content``: the audit memo's ``Content``) have
+        # the same sources (the own sidecar as _OWN), suffix, header but its size, timing
+        # and scheme: interned once per content
+        known = shared.of_content(content) if content is not None else None
+        if known is None:
+            own = sidecar_path(record.path)
+            self._sources = shared.mapping(
+                {k: _OWN if v == own else v for k, v in record.metadata_sources.items()
+                 if k in _FACT_SOURCES})
+            self.suffix = shared.text(record.suffix)
+            self.header = shared.header(record.header)
+            self.timing = shared.timing(record.timing)
+            self.scheme = shared.scheme(record.scheme, self.timing.schedule)
+            if content is not None:
+                shared.learn_content(content, (self._sources, self.suffix, self.header,
+                                               self.timing, self.scheme))
+        else:
+            self._sources, self.suffix, self.header, self.timing, self.scheme = known
         self.content_missing = record.content_missing
         self.counts = counts  # (errors, warnings, notes) of the run's own findings
         #: (code, field) of the run's own findings that fold others into them, in order
@@ -103,6 +113,8 @@ HEADER_KEY = operator.attrgetter(
 
 #: objects an Interner recognises by identity (see ``Interner._identities``)
 IDENTITIES_KEPT = 1024
+#: judged contents an Interner keeps the interned facts of (see ``RunFacts``)
+CONTENTS_KEPT = 4096
 
 
 class Interner:
@@ -117,6 +129,16 @@ class Interner:
         #: (one table per kind, so runs whose timings differ still learn their schemes)
         self._identities: dict[str, dict[tuple[int, int], tuple[Any, Any, Any]]] = {
             "timing": {}, "scheme": {}}
+        #: judged content (``audit_memo.Content``) -> its runs' interned facts
+        self._contents: dict[Any, tuple[Any, ...]] = {}
+
+    def of_content(self, content: Any) -> tuple[Any, ...] | None:
+        """The interned facts of the runs of ``content`` (see ``RunFacts``), or None."""
+        return self._contents.get(content)
+
+    def learn_content(self, content: Any, facts: tuple[Any, ...]) -> None:
+        if len(self._contents) < CONTENTS_KEPT:  # the content objects are held meanwhile
+            self._contents[content] = facts
 
     def _known(self, kind: str, value: Any, companion: Any) -> Any:
         hit = self._identities[kind].get((id(value), id(companion)))

@@ -154,12 +154,39 @@ def _changed(value: _T, **changes: Any) -> _T:
     return copy
 
 
+class Content:
+    """One judged content of a walk: the runs that carry the same object (``RunResult.
+    content``) have the same header (but its size on disk), merged sidecars, timing,
+    scheme, suffix and content findings, and differ only in their names (their path,
+    entities and own sidecar) and in what their names are judged by. ``record`` is the
+    content's record with the tokens :data:`RUN` and :data:`OWN` for those names and no
+    entities or findings. Consumers (the report line, the run facts) may keep what they
+    make of a content by this object, which they then hold. It never travels to another
+    process: pickled, it becomes None there."""
+
+    __slots__ = ("record",)
+
+    def __init__(self, record: RunRecord) -> None:
+        self.record = record
+
+    def __reduce__(self) -> tuple[Any, ...]:
+        return (_no_content, ())
+
+
+def _no_content() -> None:
+    return None
+
+
 class ContentMemo:
     """The memo of one walk in one process (see the module docstring)."""
 
     def __init__(self) -> None:
         self._timings: dict[Any, _Timing] = {}
-        self._checks: dict[Any, tuple[tuple[int, Finding, bool], ...] | None] = {}
+        self._checks: dict[Any, tuple[tuple[tuple[int, Finding, bool], ...], Content] | None] \
+            = {}
+        #: the judged content of the run whose findings were given last (None when they
+        #: were worked out for that run alone)
+        self.content: Content | None = None
         self.reused = 0
         #: the run whose timing was given last: its name, its content's key and entry,
         #: and whether the key is of the merged sidecars (``Resolution.merged``)
@@ -220,6 +247,7 @@ class ContentMemo:
         """What :func:`slicetime.rules.check_run` gives ``record`` (built with
         :meth:`timing_of` just before)."""
         last, self._last = self._last, None
+        self.content = None
         if last is None or last[0] != record.path or record.source is not None:
             return _cold_findings(record)
         own = sidecar_path(record.path)
@@ -234,14 +262,15 @@ class ContentMemo:
                           for k, shadowed in record.overridden.items()]),
                    record.suffix, record.content_missing)
         if key in self._checks:
-            found = self._checks[key]
+            judged = self._checks[key]
             self.reused += 1
         elif self._remembers(self._checks):
-            found = self._checks[key] = _evaluate_checks(record, own, last[2])
+            judged = self._checks[key] = _evaluate_checks(record, own, last[2])
         else:
             return _cold_findings(record)
-        if found is None:
+        if judged is None:
             return _cold_findings(record)
+        found, self.content = judged
         names = {RUN: record.path, OWN: own}
         parts = [(place, _put_finding(f, names) if named else f)
                  for place, f, named in found]
@@ -283,9 +312,9 @@ def _evaluate(metadata: Mapping[str, Any], canonical: Mapping[str, str],
 
 
 def _evaluate_checks(record: RunRecord, own: str, entry: _Timing
-                     ) -> tuple[tuple[int, Finding, bool], ...] | None:
-    """The content checks' findings of ``record`` with its names as tokens, or None
-    when they cannot be reused (see :func:`_scan`)."""
+                     ) -> tuple[tuple[tuple[int, Finding, bool], ...], Content] | None:
+    """The content checks' findings of ``record`` with its names as tokens and the
+    content they judged, or None when they cannot be reused (see :func:`_scan`)."""
     canonical = dataclasses.replace(
         record, path=RUN, abs_path=RUN, entities={}, findings=(),
         metadata_sources={k: OWN if v == own else v for k, v in record.metadata_sources.items()},
@@ -300,7 +329,7 @@ def _evaluate_checks(record: RunRecord, own: str, entry: _Timing
         if seen == 2:
             return None
         out.append((place, finding, seen == 1))
-    return tuple(out)
+    return tuple(out), Content(canonical)
 
 
 def _put_finding(finding: Finding, names: Mapping[str, str]) -> Finding:
