@@ -44,7 +44,7 @@ from pathlib import Path
 from typing import Any, NamedTuple
 
 from slicetime.codes import make_finding
-from slicetime.model import Finding, Severity
+from slicetime.model import Finding, Severity, assembled
 
 from .entities import ParsedName, parse_name, sidecar_name
 from .sidecar import (
@@ -605,16 +605,16 @@ class SidecarIndex:
                 findings.extend(_ambiguity(loaded, _relative_text(data_path, root_path)))
         if self.check_field_types and metadata:
             findings.extend(self._type_findings(metadata, sources, own_names))
-        return Resolution(
-            metadata=metadata,  # a new dict; its values are shared (frozen, never copied)
-            sources=sources,
-            chain=tuple(chain),
-            findings=tuple(findings),
-            name=parsed,
-            levels=tuple(level_names),
-            overridden={k: tuple(v) for k, v in overridden.items()},
-            merged=tuple(merged),
-        )
+        return assembled(Resolution, {  # Resolution(...) without its per-field setattr
+            "metadata": metadata,  # a new dict; its values are shared (frozen, never copied)
+            "sources": sources,
+            "chain": tuple(chain),
+            "findings": tuple(findings),
+            "name": parsed,
+            "levels": tuple(level_names),
+            "overridden": {k: tuple(v) for k, v in overridden.items()},
+            "merged": tuple(merged),
+        })
 
 
 class _Candidate(NamedTuple):
