@@ -547,8 +547,10 @@ def dataset_phase(
     (:func:`slicetime.policy.checks.dataset_codes_judged`)."""
     exempt: dict[str, set[str]] = {}
     judged = 0
+    # each root's policy by the root's text (as the runs give it): no Path per run
+    by_root = {str(root): policy for root, policy in policies.items()}
     for record in records:
-        policy = policies.get(Path(record.root))
+        policy = by_root.get(record.root)
         if policy is None:
             continue
         codes = dataset_codes_judged(policy, record)
