@@ -57,3 +57,14 @@ def test_runs_without_usable_timing_give_no_protocol(tmp_path: Path) -> None:
     assert LONG.format("b") in comments and "sub-03" in comments
     assert "all 2 runs agree" in text  # the lost run is not counted among them
     assert all(len(line) <= 80 for line in comments.splitlines())
+
+
+def test_a_run_whose_tr_no_run_can_have_gives_no_protocol(tmp_path: Path) -> None:
+    # a TR of 0.01 s (the audit's tr/implausible, model.implausible_repetition): pin
+    # would otherwise write it as the lab's expected TR, which the policy loader refuses
+    write_description(tmp_path)
+    write_run(tmp_path, "sub-01/func/sub-01_task-a_bold.nii.gz", shape=(4, 4, 4, 5), tr=0.01,
+              sidecar={"RepetitionTime": 0.01, "SliceTiming": [0.0, 0.005, 0.0025, 0.0075]})
+    text = pin(tmp_path)
+    assert "repetition_time" not in tomllib.loads(text).get("protocols", [{}])[0]
+    assert "below the shortest plausible TR" in text

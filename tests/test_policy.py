@@ -195,6 +195,17 @@ def test_wrong_type_names_the_key_path() -> None:
     assert error.field == "protocols[1].repetition_time"
 
 
+@pytest.mark.parametrize(("tr", "words"), [("0.01", "below the shortest plausible TR"),
+                                           ("2000", "above the longest plausible TR")])
+def test_a_policy_tr_no_run_can_have_is_refused(tr: str, words: str) -> None:
+    # the bounds the audit's tr/implausible and correct's gate judge by
+    # (model.implausible_repetition): a policy may not expect such a TR
+    error = invalid(f'version = 1\n[[protocols]]\nmatch = {{task = "rest"}}\n'
+                    f"repetition_time = {tr}\n")
+    assert error.field == "protocols[0].repetition_time"
+    assert words in error.message
+
+
 def test_a_version_of_the_wrong_type_is_named_as_a_type_error() -> None:
     # TOML spec: "1" in quotes is a string, 1.5 a float, true a boolean (tomllib reads
     # them as str, float and bool); the format asks for the integer 1

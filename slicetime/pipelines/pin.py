@@ -30,7 +30,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from slicetime.model import RunRecord
+from slicetime.model import RunRecord, implausible_repetition
 from slicetime.numbers import plain
 from slicetime.pipelines.audit import audit_paths
 from slicetime.policy.checks import judge, observed
@@ -84,6 +84,10 @@ def _no_usable_timing(record: RunRecord) -> str | None:
         return "its image could not be read (empty, not retrieved or unreadable)"
     if record.schedule is None:
         return "its slice times could not be resolved"
+    tr = record.timing.repetition_time
+    implausible = implausible_repetition(tr) if tr is not None else None
+    if implausible is not None:  # the audit's tr/implausible: no protocol to state
+        return f"its repetition time, {plain(tr)} s, is {implausible}"
     return None
 
 

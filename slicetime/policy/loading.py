@@ -108,7 +108,8 @@ if TYPE_CHECKING:  # imported where a policy is validated: 50 ms a start otherwi
     import jsonschema
 
 from slicetime.codes import RULES, make_finding, package_data
-from slicetime.model import TIME_TOLERANCE, Finding, Severity
+from slicetime.model import TIME_TOLERANCE, Finding, Severity, implausible_repetition
+from slicetime.numbers import plain
 from slicetime.policy.model import (
     EXPECTATION_KEYS,
     INVALID_CODE,
@@ -515,6 +516,11 @@ def _protocol_problems(protocols: Sequence[ExpectedProtocol]) -> list[tuple[list
     seen: dict[tuple[tuple[str, str | int], ...], int] = {}
     for p in protocols:
         here: list[str | int] = ["protocols", p.index]
+        implausible = (implausible_repetition(p.repetition_time)
+                       if p.repetition_time is not None else None)
+        if implausible is not None:  # the audit's tr/implausible and correct's gate agree
+            problems.append(([*here, "repetition_time"],
+                             f"{plain(p.repetition_time)} s is {implausible}"))
         if p.scheme is not None:
             problem = label_problem(p.scheme)
             if problem:
