@@ -304,6 +304,35 @@ def test_undo_restores_every_byte(ds: Path) -> None:
     assert tree_hashes(ds) == before
 
 
+def test_undo_reads_and_hashes_each_backup_once(
+        ds: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    # the backup checked against the journal's SHA-256 is the bytes written back: one
+    # read per file (it was read and hashed twice: once to check, once to restore)
+    import hashlib
+
+    from slicetime.pipelines import journal as journal_module
+
+    write_run(ds, run_path("01"), shape=SHAPE, tr=TR, sidecar={
+        "RepetitionTime": TR, "SliceTiming": [t * 1000 for t in interleaved()]})
+    own = ds / sidecar_of(run_path("01"))
+    original = own.read_bytes()
+    applied = fix(ds, "--apply", "--backup-dir", ds.parent / "backups")
+    assert applied.exit_code == 0, applied.output
+    hashed: list[bytes] = []
+    real = journal_module.sha256_of
+
+    def counting(data: bytes) -> str:
+        hashed.append(bytes(data))
+        return real(data)
+
+    monkeypatch.setattr(journal_module, "sha256_of", counting)
+    undone = fix("--undo", journal_in(applied.output))
+    assert undone.exit_code == 0, undone.output
+    assert own.read_bytes() == original
+    assert hashed.count(original) == 1  # the backup: read and hashed once
+    assert real(original) == hashlib.sha256(original).hexdigest()  # hashlib: SHA-256
+
+
 def test_default_backups_live_beside_the_dataset(ds: Path) -> None:
     write_run(ds, run_path("01"), shape=SHAPE, tr=TR,
               sidecar={"TaskName": "hum", "RepetitionTime": TR,

@@ -540,7 +540,9 @@ class UndoResult:
     late_signal: bool = False  # one came after the last file: the undo is whole
 
 
-def _restore(entry: JournalEntry, backup: Path, tag: str) -> None:
+def _restore(entry: JournalEntry, backup: Path, tag: str, data: bytes | None = None) -> None:
+    """Put ``entry``'s file back as it was before the fix; ``data``: its backup's bytes,
+    already read and checked (:func:`backup_bytes`), else read here."""
     path = entry.path
     if entry.action == "created":
         path.unlink()
@@ -552,7 +554,8 @@ def _restore(entry: JournalEntry, backup: Path, tag: str) -> None:
         os.symlink(entry.link_target, tmp)
         os.replace(tmp, path)
     else:
-        _atomic_write(path, backup_bytes(entry, backup), entry.like(), tag)
+        _atomic_write(path, backup_bytes(entry, backup) if data is None else data,
+                      entry.like(), tag)
 
 
 def _remove_temps(entries: Sequence[JournalEntry], token: str | None) -> None:
@@ -594,31 +597,34 @@ def undo(journal_path: Path, at: Path | None = None) -> UndoResult:
         for other in dict.fromkeys(locks.interrupted.values()):
             if os.path.abspath(other) != str(journal.path):
                 result.recovered.append(_finish_rollback(other))
-        usable: list[tuple[int, JournalEntry]] = []
+        # each backup is read and checked once; its bytes are what is restored
+        usable: list[tuple[int, JournalEntry, bytes | None]] = []
         for n, entry in enumerate(journal.entries):
+            data = None
             if entry.action == "modified":
                 try:
-                    backup_bytes(entry, backup)
+                    data = backup_bytes(entry, backup)
                 except TransactionError as exc:
                     result.refused.append(f"{entry.file}: not restored: {exc}")
                     continue
-            usable.append((n, entry))
-        todo: list[tuple[int, JournalEntry]] = []
-        for n, entry in usable:
+            usable.append((n, entry, data))
+        todo: list[tuple[int, JournalEntry, bytes | None]] = []
+        for n, entry, data in usable:
             state = entry_state(entry)
             if state == "after":
-                todo.append((n, entry))
+                todo.append((n, entry, data))
             elif state == "before":
                 (result.never_written if journal.status == "prepared"
                  else result.already).append(entry.file)
             else:
                 result.refused.append(f"{entry.file}: changed since the fix; not restored")
-        for n, entry in reversed(todo):
+        for n, entry, data in reversed(todo):
             if signals:
                 result.signal, result.left = signals[0], len(todo) - len(result.restored)
                 break
             try:
-                _restore(entry, backup, _temp_tag(journal.token or secrets.token_hex(8), n))
+                _restore(entry, backup, _temp_tag(journal.token or secrets.token_hex(8), n),
+                         data)
             except (OSError, TransactionError) as exc:
                 why = exc.strerror if isinstance(exc, OSError) and exc.strerror else str(exc)
                 left = len(todo) - len(result.restored)
