@@ -466,6 +466,32 @@ def test_consolidate_and_spread_are_inverse(ds: Path) -> None:
     assert tree_hashes(ds) != original  # key order may differ; the meaning does not
 
 
+@pytest.mark.parametrize("option", ["--consolidate", "--spread"])
+def test_a_layout_move_reads_each_file_it_edits_once(
+        ds: Path, monkeypatch: pytest.MonkeyPatch, option: str) -> None:
+    # the receiving file is read to see that it can be edited, and that text is the
+    # one edited: one read per file (it was read twice for a move)
+    from slicetime.pipelines import fix as fixing
+
+    for sub in ("01", "02", "03"):
+        write_run(ds, run_path(sub), shape=SHAPE, tr=TR, sidecar={
+            "TaskName": "hum", "RepetitionTime": TR, "SliceTiming": interleaved()})
+    if option == "--spread":
+        assert fix(ds, "--apply", "--consolidate", "SliceTiming").exit_code == 0
+    reads: list[str] = []
+    real = fixing._load_for_edit
+
+    def counting(path: Path, root: str) -> Any:
+        reads.append(str(path))
+        return real(path, root)
+
+    monkeypatch.setattr(fixing, "_load_for_edit", counting)
+    result = fix(ds, option, "SliceTiming")
+    assert result.exit_code == 1 and "4 files to change" in result.output, result.output
+    # the three own sidecars, and the top-level one when it exists (spread: it does)
+    assert len(reads) == len(set(reads)) == (4 if option == "--spread" else 3)
+
+
 def test_consolidate_refuses_differing_values(ds: Path) -> None:
     write_run(ds, run_path("01"), shape=SHAPE, tr=TR,
               sidecar={"TaskName": "hum", "RepetitionTime": TR, "SliceTiming": interleaved()})

@@ -440,15 +440,40 @@ def _place(
                 if note not in plan.notes:
                     plan.notes.append(note)
         targets[(repair.root, target)][repair.field].append(repair)
-    for file, move in _movable(moves, plan):
+    texts = _Texts()  # each file to edit read once, for the moves' check and the edit
+    for file, move in _movable(moves, plan, texts):
         targets[(move.root, file)][move.field].append(move)
     for (root, file), fields in sorted(targets.items()):
-        change = _build_change(root, file, fields, plan)
+        change = _build_change(root, file, fields, plan, texts)
         if change is not None:
             plan.changes.append(change)
 
 
-def _movable(moves: Sequence[tuple[str, Repair]], plan: FixPlan) -> list[tuple[str, Repair]]:
+class _Texts:
+    """The text of each sidecar a plan edits (:func:`_load_for_edit`), read once per
+    plan; a file that cannot be read raises its reason each time it is asked for.
+    None: no file there (it is created)."""
+
+    def __init__(self) -> None:
+        self._read: dict[tuple[str, str], str | BaseException | None] = {}
+
+    def get(self, root: str, file: str) -> str | None:
+        key = (root, file)
+        if key not in self._read:
+            path = Path(root) / file
+            try:
+                self._read[key] = (_load_for_edit(path, root)[0]
+                                   if path.exists() or path.is_symlink() else None)
+            except (OSError, UnicodeDecodeError, ValueError) as exc:
+                self._read[key] = exc
+        found = self._read[key]
+        if isinstance(found, BaseException):
+            raise found
+        return found
+
+
+def _movable(moves: Sequence[tuple[str, Repair]], plan: FixPlan,
+             texts: _Texts) -> list[tuple[str, Repair]]:
     """The layout moves whose every receiving file can be edited: a field removed from
     one file must arrive in the other, so a move whose receiving file cannot be read
     (not UTF-8, a link out of the dataset, ...) drops that field's moves in its
@@ -458,10 +483,8 @@ def _movable(moves: Sequence[tuple[str, Repair]], plan: FixPlan) -> list[tuple[s
         group = (move.root, move.code, move.field)
         if move.value is REMOVE or group in blocked:
             continue
-        path = Path(move.root) / file
         try:
-            if path.exists() or path.is_symlink():
-                _load_for_edit(path, move.root)
+            texts.get(move.root, file)
         except (OSError, UnicodeDecodeError, ValueError) as exc:
             blocked.add(group)
             verb = "spread" if move.code == "layout/spread" else "consolidated"
@@ -471,15 +494,11 @@ def _movable(moves: Sequence[tuple[str, Repair]], plan: FixPlan) -> list[tuple[s
 
 
 def _build_change(
-    root: str, file: str, fields: dict[str, list[Repair]], plan: FixPlan
+    root: str, file: str, fields: dict[str, list[Repair]], plan: FixPlan, texts: _Texts
 ) -> FileChange | None:
     path = Path(root) / file
     try:
-        if path.exists() or path.is_symlink():
-            before: str | None
-            before, _ = _load_for_edit(path, root)
-        else:
-            before = None
+        before = texts.get(root, file)
     except (OSError, UnicodeDecodeError, ValueError) as exc:
         plan.notes.append(f"{file}: not changed: {_reason(exc)}")
         return None
