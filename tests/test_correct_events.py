@@ -139,6 +139,29 @@ def test_the_events_follow_the_output_as_it_is_remade_or_withdrawn(ds: Path,
     assert not (out / OUT_EVENTS).exists()
 
 
+def test_a_rerun_that_reuses_the_output_leaves_its_events_table_alone(
+        ds: Path, tmp_path: Path) -> None:
+    # an up-to-date output is reused: its restated table, already right, is neither
+    # rewritten nor replaced (same inode, same modification time, os.stat); one changed
+    # or removed since is put back
+    (ds / EVENTS).write_text(TABLE)
+    out = tmp_path / "out"
+    assert run("correct", ds, "--out", out, "--omit-leading", 4)[0] == 0
+    table = out / OUT_EVENTS
+    right = table.read_bytes()
+    before = table.stat()
+    code, text, _ = run("correct", ds, "--out", out, "--omit-leading", 4)
+    assert code == 0 and "up-to-date" in text
+    after = table.stat()
+    assert (after.st_ino, after.st_mtime_ns) == (before.st_ino, before.st_mtime_ns)
+    table.write_bytes(right + b"extra\t1\tx\n")
+    assert run("correct", ds, "--out", out, "--omit-leading", 4)[0] == 0
+    assert table.read_bytes() == right
+    table.unlink()
+    assert run("correct", ds, "--out", out, "--omit-leading", 4)[0] == 0
+    assert table.read_bytes() == right
+
+
 def test_with_volume_timing_the_shift_is_the_time_of_the_first_volume_kept(
         tmp_path: Path) -> None:
     # BIDS VolumeTiming: the onset of each volume; the output's first volume is the

@@ -68,6 +68,7 @@ from slicetime.numbers import ratio
 from slicetime.pipelines.audit import RunResult
 from slicetime.pipelines.correct_events import (
     RestatedEvents,
+    put_in_place,
     recorded_events,
     restate_events,
     run_inputs,
@@ -450,7 +451,7 @@ def _correct(
         outcome.warnings.append(warning)
     if _reuse(record, target, settings, options, outcome, events):
         if events is not None:  # in place again, should it have been removed since
-            write_atomic(events.output, events.shifted.text)
+            put_in_place(events)
         return forced
     _resample_and_write(record, plan, engine, options, target, settings, dataset_name, outcome,
                         events)

@@ -22,8 +22,8 @@ from typing import Any
 
 from slicetime.model import RunRecord, SliceSchedule
 from slicetime.pipelines.provenance import hash_inputs, json_safe, provenance_entry
-from slicetime.readers.atomic import link_between
-from slicetime.readers.errors import ReadError
+from slicetime.readers.atomic import link_between, write_atomic
+from slicetime.readers.errors import ReadError, open_regular, read_bounded
 from slicetime.readers.events import (
     ShiftedEvents,
     events_name,
@@ -99,6 +99,21 @@ def run_inputs(record: RunRecord, image_sha: str | None,
     return inputs
 
 
+def put_in_place(events: RestatedEvents) -> None:
+    """Write the restated table beside its output, unless the regular file there
+    already holds exactly its text (a rerun of the same batch rewrites nothing)."""
+    wanted = events.shifted.text.encode("utf-8")
+    try:
+        fh, st = open_regular(events.output, str(events.output), what="events table")
+        with fh:
+            if st.st_size == len(wanted) and read_bounded(fh, st.st_size,
+                                                          len(wanted)) == wanted:
+                return
+    except ReadError:  # none there, a link, not a regular file: written anew
+        pass
+    write_atomic(events.output, wanted)
+
+
 def recorded_events(sidecar: Path, out: Path) -> Path | None:
     """The events table an earlier output sidecar says this tool wrote beside it (a
     path inside ``out``, not through a link), or None."""
@@ -112,5 +127,5 @@ def recorded_events(sidecar: Path, out: Path) -> Path | None:
     return path if link_between(path, out) is None else None
 
 
-__all__ = ["RestatedEvents", "recorded_events", "restate_events", "run_inputs",
-           "shift_seconds"]
+__all__ = ["RestatedEvents", "put_in_place", "recorded_events", "restate_events",
+           "run_inputs", "shift_seconds"]
