@@ -154,3 +154,23 @@ def test_an_events_table_names_the_run_beside_it_whatever_its_suffix(
     with pytest.raises(ReadError) as caught:
         given_run(events)
     assert caught.value.message.endswith(f"; the run it belongs to: {image}")
+
+
+def test_the_audits_check_of_given_paths_resolves_each_path_once(
+        run: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    # a sidecar given stands for its run, a folder for itself: the check that every
+    # given path holds runs asks given_run once per path (it asked up to four times)
+    from slicetime.pipelines import audit as auditing
+
+    asked: list[Path] = []
+    real = auditing.given_run
+
+    def counting(path: Path) -> Path:
+        asked.append(path)
+        return real(path)
+
+    monkeypatch.setattr(auditing, "given_run", counting)
+    sidecar = run.with_name("sub-01_task-x_bold.json")
+    result = auditing.audit_paths([sidecar, run.parent])
+    assert [r.record.path for r in result.runs] == [RUN]
+    assert sorted(map(str, asked)) == sorted([str(sidecar), str(run.parent)])

@@ -212,14 +212,14 @@ def _check_every_path_has_runs(
     def holds(where: str) -> bool:
         return any(within(run, where) for run in runs)
 
-    # a run's own sidecar stands for its image (given_run)
-    holding = [os.path.abspath(given_run(given)) for given in paths
-               if holds(os.path.abspath(given_run(given)))]
-    for given in paths:
-        where = os.path.abspath(given_run(given))
+    # a run's own sidecar stands for its image (given_run, asked once per path)
+    meant = [given_run(given) for given in paths]
+    wheres = [os.path.abspath(run) for run in meant]
+    holding = [where for where in wheres if holds(where)]
+    for given, run, where in zip(paths, meant, wheres, strict=True):
         if where in holding:
             continue
-        real = os.path.realpath(given_run(given))
+        real = os.path.realpath(run)
         # the same folder under the name another given path gave it: its runs, met once
         aliases = [os.path.join(other, os.path.relpath(real, os.path.realpath(other)))
                    for other in holding if within(real, os.path.realpath(other))]
