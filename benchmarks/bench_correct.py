@@ -245,13 +245,14 @@ with fh:
             got += fh.readinto(part[got:])
         if hasher is not None and not compressed:
             hasher.submit(in_digest, part)  # hashed while it is converted
-        # stored type -> float32, times the pattern
-        part_in = stored[:count]
+        # stored type -> float32 (a cast, as correct's), then times the pattern in
+        # float32 (the same values as a mixed int16 x float32 multiply, which took
+        # about twice as long)
         part_out = data[first:first + count]
+        np.copyto(part_out, stored[:count], casting="unsafe")
         whole = count - count % table.size
-        np.multiply(part_in[:whole].reshape(-1, table.size), table,
-                    out=part_out[:whole].reshape(-1, table.size))
-        np.multiply(part_in[whole:], table[:count - whole], out=part_out[whole:])
+        part_out[:whole].reshape(-1, table.size).__imul__(table)
+        part_out[whole:] *= table[:count - whole]
     if hasher is not None and not compressed:
         hasher.wait()
         in_digest.update(fh.read())  # whatever follows the data
