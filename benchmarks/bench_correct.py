@@ -251,7 +251,8 @@ with fh:
         part_out = data[first:first + count]
         np.copyto(part_out, stored[:count], casting="unsafe")
         whole = count - count % table.size
-        part_out[:whole].reshape(-1, table.size).__imul__(table)
+        rows = part_out[:whole].reshape(-1, table.size)
+        rows *= table
         part_out[whole:] *= table[:count - whole]
     if hasher is not None and not compressed:
         hasher.wait()
