@@ -784,3 +784,41 @@ def test_image_name_test_equals_the_any_extension_form(name: str) -> None:
     expected = lower.endswith(IMAGE_EXTENSIONS) and any(
         lower.endswith(ext) and len(name) > len(ext) for ext in IMAGE_EXTENSIONS)
     assert is_image_name(name) == expected
+
+
+def test_headers_alike_byte_for_byte_are_decoded_once_and_read_as_when_decoded_alone(
+        tmp_path: Path) -> None:
+    # nibabel writes the files (the reference reader); a header met before (the decode
+    # remembered by its bytes) reads as one decoded afresh, its size on disk its own,
+    # and a broken header is decoded again for each file, so its error names that file
+    import gzip as gz
+
+    import nibabel as nib
+
+    from slicetime.readers.errors import ReadError
+
+    img = nib.Nifti1Image(np.zeros((4, 4, 3, 5), np.int16), np.eye(4))
+    img.header.set_xyzt_units("mm", "sec")
+    img.header.set_zooms((2.0, 2.0, 3.0, 1.5))
+    raw = img.to_bytes()
+    paths = []
+    for name, data in (("a.nii.gz", gz.compress(raw)), ("b.nii.gz", gz.compress(raw, 1)),
+                       ("c.nii", raw)):
+        paths.append(tmp_path / name)
+        paths[-1].write_bytes(data)
+    nifti._DECODED.clear()
+    fresh = []
+    for path in paths:
+        fresh.append(nifti.read_header(path)[0])
+        nifti._DECODED.clear()
+    remembered = [nifti.read_header(path)[0] for path in paths]
+    assert remembered == fresh
+    assert [h.file_size for h in remembered] == [p.stat().st_size for p in paths]
+    assert remembered[0].pixdim == tuple(float(z) for z in img.header.get_zooms())
+    broken = bytearray(raw)
+    broken[40:42] = (9).to_bytes(2, "little")  # dim[0] = 9: NIfTI allows 1 to 7
+    for name in ("x.nii", "y.nii"):
+        (tmp_path / name).write_bytes(bytes(broken))
+        with pytest.raises(ReadError) as caught:
+            nifti.read_header(tmp_path / name, name)
+        assert caught.value.message.startswith(f"{name}: dim[0] is 9")

@@ -56,7 +56,7 @@ import struct
 import zlib
 from collections.abc import Callable
 from pathlib import Path
-from typing import Any, BinaryIO, Literal, cast
+from typing import Any, BinaryIO, Literal, NamedTuple, cast
 
 from slicetime.model import Finding, HeaderInfo, assembled
 from slicetime.numbers import amount, size_words
@@ -454,10 +454,8 @@ def _read_open(
                 evidence={"first_bytes": first[:8].hex()},
             )
         buf = first
-    version, order, raw = _decode(buf, shown)
-    shape, _bits, data_bytes = _check_dimensions(raw, shown)
-    vox_offset = _vox_offset(raw, shown)
-    if raw["single_file"]:
+    version, order, single_file, shape, data_bytes, vox_offset, fields = _decoded(buf, shown)
+    if single_file:
         problem = data_offset_problem(version, vox_offset, shown)
         if problem is not None:
             raise problem
@@ -502,6 +500,51 @@ def _read_open(
     else:
         _check_paired_image(Path(path), shown, vox_offset + data_bytes)
 
+    # HeaderInfo(...) without its per-field setattr
+    header = assembled(HeaderInfo, {**fields, "compressed": compressed, "file_size": file_size,
+                                    "data_bytes": data_bytes})
+    return header, findings
+
+
+class _Decoded(NamedTuple):
+    version: int
+    order: Literal["<", ">"]
+    single_file: bool
+    shape: tuple[int, ...]
+    data_bytes: int
+    vox_offset: int
+    #: the HeaderInfo fields the header's bytes give, in order (all but the last three:
+    #: compressed, file_size, data_bytes)
+    fields: dict[str, Any]
+
+
+#: header bytes -> what they decode to (see _decoded); emptied when full
+_DECODED: dict[bytes, _Decoded] = {}
+_DECODED_KEPT = 256
+#: sizeof_hdr 348 in either byte order: a NIfTI-1 header, read to its extension flag
+_NIFTI1_SIZES = (struct.pack("<i", NIFTI1_SIZE), struct.pack(">i", NIFTI1_SIZE))
+
+
+def _decoded(buf: bytes, shown: str) -> _Decoded:
+    """The header held in ``buf`` decoded and checked (``_decode``, ``_check_dimensions``,
+    ``_vox_offset``; they raise for a bad header). Remembered by the bytes these read
+    (the header and its extension flag: the runs of a study have headers alike byte for
+    byte); a header that raised is decoded again each time, so its message names its
+    file."""
+    key = buf[: NIFTI1_SIZE + 4] if buf[:4] in _NIFTI1_SIZES else buf[: NIFTI2_SIZE + 4]
+    found = _DECODED.get(key)
+    if found is None:
+        found = _decode_fields(buf, shown)
+        if len(_DECODED) >= _DECODED_KEPT:
+            _DECODED.clear()
+        _DECODED[key] = found
+    return found
+
+
+def _decode_fields(buf: bytes, shown: str) -> _Decoded:
+    version, order, raw = _decode(buf, shown)
+    shape, _bits, data_bytes = _check_dimensions(raw, shown)
+    vox_offset = _vox_offset(raw, shown)
     unit_bits = int(raw["xyzt_units"]) & 0x38
     time_unit, factor = _TIME_UNITS.get(unit_bits) or ("unknown", 1.0)
     pixdim_all = raw["pixdim"]
@@ -511,7 +554,7 @@ def _read_open(
     sd = raw_sd * factor if math.isfinite(raw_sd) and raw_sd != 0 else None
     info = int(raw["dim_info"])
     freq, phase, slc = info & 3, (info >> 2) & 3, (info >> 4) & 3
-    header = assembled(HeaderInfo, {  # HeaderInfo(...) without its per-field setattr
+    return _Decoded(version, order, bool(raw["single_file"]), shape, data_bytes, vox_offset, {
         "version": version,
         "shape": shape,
         "pixdim": tuple(float(v) for v in pixdim_all[1 : len(shape) + 1]),
@@ -532,11 +575,7 @@ def _read_open(
         "slice_duration": sd,
         "scl_slope": float(raw["scl_slope"]),
         "scl_inter": float(raw["scl_inter"]),
-        "compressed": compressed,
-        "file_size": file_size,
-        "data_bytes": data_bytes,
     })
-    return header, findings
 
 
 def _header_size(version: int) -> int:
