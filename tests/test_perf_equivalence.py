@@ -822,3 +822,13 @@ def test_headers_alike_byte_for_byte_are_decoded_once_and_read_as_when_decoded_a
         with pytest.raises(ReadError) as caught:
             nifti.read_header(tmp_path / name, name)
         assert caught.value.message.startswith(f"{name}: dim[0] is 9")
+
+
+@settings(max_examples=500, deadline=None)
+@given(path=st.lists(st.sampled_from(["/", "a", ".", "..", "b.c", "//", ".h"]), max_size=8)
+       .map("".join))
+def test_absolute_paths_equal_abspath(path: str) -> None:
+    # the reference is os.path.abspath (Python documentation, os.path)
+    if path:
+        assert inheritance._absolute(path) == os.path.abspath(path)
+        assert inheritance._absolute(Path(path)) == os.path.abspath(Path(path))

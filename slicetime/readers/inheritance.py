@@ -569,8 +569,8 @@ class SidecarIndex:
 
     def resolve(self, data_file: Path, root: Path | None = None) -> Resolution:
         """Merge the applicable sidecars of ``data_file`` under dataset ``root``."""
-        data_path = os.path.abspath(data_file)
-        root_path = os.path.abspath(root) if root is not None else self._root_text
+        data_path = _absolute(data_file)
+        root_path = _absolute(root) if root is not None else self._root_text
         parsed = parse_name(_basename(data_path))
         levels, findings = self._levels(data_path, root_path, parsed)
         metadata: dict[str, Any] = {}
@@ -649,6 +649,17 @@ class _Folder:
 
 #: a folder on the way down that holds no sidecar (most of them): one shared object
 _NO_SIDECARS = _Folder((), None)
+
+
+def _absolute(path: str | os.PathLike[str]) -> str:
+    """``os.path.abspath(path)``, without its normalisation for a path that needs none (the
+    walk's: absolute, no ``//``, no part starting with a dot, no trailing ``/``; tested
+    equal to ``os.path.abspath``)."""
+    text = os.fspath(path)
+    if text[:1] == "/" and "//" not in text and "/." not in text and text[-1:] != "/" \
+            and os.sep == "/":
+        return text
+    return os.path.abspath(text)
 
 
 def _basename(path: str) -> str:
