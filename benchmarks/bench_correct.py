@@ -134,6 +134,7 @@ OVERHEAD = "import slicetime.pipelines.correct, scipy.fft, numpy, nibabel"
 # thread with correct's queue depth), convert the stored int16 to float32 a batch
 # at a time into one float32 array (allocated and faulted in as correct's buffer is,
 # by a helper thread beside the decoder; as correct fills its buffer), encode the float32
+# (with glibc's allocator set as correct sets it for writing)
 # volumes (isal level 1 in two helper threads, as correct does) and write them
 # durably (fsync, as correct does). No interpolation and no audit. The float32
 # values are the stored ones times a fixed pattern of factors just above 1, so they
@@ -258,6 +259,15 @@ with fh:
         hasher.wait()
         in_digest.update(fh.read())  # whatever follows the data
 del stored
+# the allocator as correct sets it for its engine and write phases
+# (pipelines.memory.allocator_tuning): freed blocks up to 64 MiB kept for reuse, so the
+# encoder's blocks do not come from fresh pages each time
+try:
+    libc = ctypes.CDLL("libc.so.6")
+    libc.mallopt(-3, 64 << 20)  # M_MMAP_THRESHOLD
+    libc.mallopt(-1, 128 << 20)  # M_TRIM_THRESHOLD
+except (OSError, AttributeError):  # not glibc: as correct, nothing is set
+    pass
 header = bytearray(prefix)
 header[70:74] = np.array([16, 32], "<i2").tobytes()  # datatype float32, bitpix 32
 raw = open(dst, "xb")
