@@ -80,9 +80,9 @@ def fresh_float32(shape: tuple[int, ...]) -> tuple[np.ndarray, threading.Thread 
     reading. On Linux the array is an anonymous mapping of its own, in small pages
     (``numpy.empty`` asks for transparent huge pages, whose first writes took 0.04 to
     1.2 s on a virtual machine, against a steadier 0.16 to 0.38 s), and
-    the helper asks the kernel to fault every page in at once
+    the helper asks the kernel to fault the pages in, :data:`PREFAULT_STEP` at a time
     (``MADV_POPULATE_WRITE``, called through ctypes, which releases the interpreter
-    lock) beside the decoder. A page the caller reaches first it faults in itself,
+    lock), beside the decoder. A page the caller reaches first it faults in itself,
     as before; a kernel without the advice leaves every page to fault as it is
     touched. Measured numbers: DEVELOPERS.md. Elsewhere, or for a small buffer:
     ``numpy.empty`` and no helper.
