@@ -131,6 +131,29 @@ def test_repetition_time_in_milliseconds_makes_every_time_seconds() -> None:
     assert rec.timing.window == pytest.approx(2.0) and rec.timing.outside == ()
 
 
+def test_a_negative_slice_time_is_drawn_where_it_is() -> None:
+    # BIDS: SliceTiming is the time of each slice relative to the start of the volume
+    # acquisition; a negative entry lies before the volume began, so neither drawing
+    # may put it at 0 s (the text axis starts at the earliest time, the HTML drawing
+    # marks the slice as outside the window)
+    from slicetime.interfaces.diagram import order_diagram
+    from slicetime.interfaces.plots import diagram_spec
+
+    rec = record({"RepetitionTime": 2.0, "SliceTiming": [-0.5, 0.0, 1.0, 0.5]},
+                 header_info((8, 8, 4, 10)))
+    assert diagram_spec(rec).early == (0,)
+    assert diagram_spec(rec).late == ()
+    times = [-0.5, 0.0, 1.0, 0.5]
+    lines = order_diagram(times, 2.0, width=50, unicode=False)
+    rows = {int(line.split("|")[0]): line.split("|")[1] for line in lines[:4]}
+    columns = {s: row.index("#") for s, row in rows.items()}
+    # slice 0 (-0.5 s) is the first column, slice 1 (0 s) a quarter of the 2.5 s axis on
+    assert columns[0] == 0 and columns[1] == 50 * 0.5 // 2.5
+    assert columns[1] < columns[3] < columns[2]
+    assert lines[-2][3 + columns[1]] == "+"  # the 0 s tick on the axis rule, under slice 1
+    assert lines[-1].split()[0] == "-0.5"
+
+
 def test_one_boundary_rule_for_the_window() -> None:
     # common practice (no source): a slice acquired exactly one TR after the volume began
     # is the first slice of the next volume, so the window is [0, TR)
