@@ -521,6 +521,22 @@ def test_the_consistent_verdict_is_a_documented_code() -> None:
     assert code == 0 and "single it out" in out
 
 
+def test_cli_an_already_corrected_run_is_undecidable_because_it_is_corrected(
+        tmp_path: Path) -> None:
+    # BIDS (SliceTimingCorrected): true when the data were slice-time corrected, after
+    # which SliceTiming no longer describes them: there is no order to check, and the
+    # reason says that rather than "no schedule is known"
+    data = _run(_interleaved(12), seed=8, volumes=60)
+    path = write_run(tmp_path, "run_desc-timealigned_bold.nii", data=data.astype(np.int16),
+                     dtype=np.int16, tr=TR,
+                     sidecar={"RepetitionTime": TR, "SliceTimingCorrected": True})
+    code, out, _ = _cli("verify", str(path), "--format", "json")
+    run = json.loads(out)["runs"][0]
+    reason = run["finding"]["evidence"]["reason"]
+    assert code == 0 and run["verdict"] == "undecidable"
+    assert "already slice-time corrected" in reason and "SliceTimingCorrected" in reason
+
+
 def test_cli_a_three_d_image_is_not_called_short_of_volumes(tmp_path: Path) -> None:
     # NIfTI-1: dim[0] = 3 is a single volume, not a time series; verify says so as the
     # audit's file/series-shape does, instead of "fewer than 30 volumes"

@@ -35,6 +35,7 @@ from slicetime.numbers import as_written, secs
 from slicetime.readers.errors import ReadError
 from slicetime.readers.volumes import VolumeReader, scaling
 from slicetime.rules.correction import not_bold_series, series_kind
+from slicetime.rules.timing import already_corrected
 from slicetime.schemes.generate import Protocol, array_times
 from slicetime.schemes.infer import infer_scheme
 from slicetime.schemes.labels import IRREGULAR, LabelParts, format_label
@@ -254,6 +255,10 @@ def verify_record(record: RunRecord, *, seed: int = 0) -> VerifyOutcome:
     schedule = seconds_schedule(record)
     if header is None:
         return _undecidable(record, "the header could not be read")
+    if schedule is None and already_corrected(record):
+        return _undecidable(record, "the run is already slice-time corrected "
+                            "(SliceTimingCorrected is true, BIDS), so it has no slice order "
+                            "to check")
     if schedule is None or schedule.repetition_time is None:
         return _undecidable(record, "no slice schedule or repetition time is known")
     if schedule.repetition_time > MAX_REPETITION_TIME:

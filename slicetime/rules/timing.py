@@ -62,10 +62,18 @@ def _in_ms(record: RunRecord) -> bool:
     return record.timing.unit("SliceTiming") == "ms"
 
 
+def already_corrected(record: RunRecord) -> bool:
+    """The run says it is slice-time corrected (BIDS ``SliceTimingCorrected`` true): its
+    slices are aligned to one reference time, so no slice times are expected and there
+    is no acquisition order left to check (the one judgement, for the rules and for
+    ``verify``)."""
+    return record.metadata.get("SliceTimingCorrected") is True
+
+
 def missing(record: RunRecord) -> Iterator[Hit]:
     if record.suffix not in TIMED_SUFFIXES or record.header is None:
         return
-    if record.metadata.get("SliceTimingCorrected") is True:
+    if already_corrected(record):
         return  # already aligned to one reference time: no slice times expected
     if "SliceTiming" in record.metadata or record.schedule is not None:
         return
@@ -79,7 +87,7 @@ def missing(record: RunRecord) -> Iterator[Hit]:
 
 
 def corrected_still_timed(record: RunRecord) -> Iterator[Hit]:
-    if record.metadata.get("SliceTimingCorrected") is not True:
+    if not already_corrected(record):
         return
     if "SliceTiming" in record.metadata:
         yield Hit(
