@@ -17,6 +17,11 @@ rounded and written (model layer: no I/O, used by every layer above).
   grouped by thousands (:func:`grouped`), byte counts carry their unit
   (:func:`size_words`: ``109,400 bytes``), and any other float is written with at most
   6 significant digits (:func:`plain`): no raw float reaches a screen.
+* A value too large to write out (:data:`HUGE` and beyond: a header's ``scl_slope``
+  of 1e39, a SliceTiming entry of 1e308) is written as a power of ten,
+  ``1 × 10^39`` (:func:`powers`), as is a non-zero value too small for 6 decimals
+  that :func:`plain` is asked for (a slope of 1e-9 is not ``0``); a time keeps its
+  fixed 10 µs resolution (``secs(1e-9)`` is ``0 s``).
 """
 
 from __future__ import annotations
@@ -36,9 +41,13 @@ SCREEN_MS_DECIMALS = 2
 SCREEN_S_DECIMALS = 5
 
 
-#: from here on a number is shown as ``1e+308``, never written out in full: a double
-#: holds 15 to 17 significant decimal digits (IEEE 754 binary64), the rest is noise
+#: from here on a number is shown as a power of ten (``1 × 10^308``), never written out
+#: in full: a double holds 15 to 17 significant decimal digits (IEEE 754 binary64), the
+#: rest is noise
 HUGE = 1e15
+#: below this a non-zero :func:`plain` value is shown as a power of ten: 6 decimals
+#: (1 µs for a time in seconds) would write it as 0
+TINY = 0.5e-6
 
 
 def _finite(value: float) -> bool:
@@ -105,7 +114,7 @@ def fixed(value: float, decimals: int) -> str:
     if not _finite(float(value)):
         return str(value)
     if abs(value) >= HUGE:  # digits a double does not hold: not written out
-        return f"{value:.6g}"
+        return powers(value)
     text = f"{value:.{decimals}f}"
     if "." in text:
         text = text.rstrip("0").rstrip(".")
@@ -115,15 +124,30 @@ def fixed(value: float, decimals: int) -> str:
 def plain(value: object, significant: int = 6) -> str:
     """Like ``format(value, "g")`` (``significant`` digits) but never scientific:
     ``plain(138900.0)`` is ``138900``, ``plain(2.3611109999999997)`` is ``2.36111``.
-    Tiny values keep at most 6 decimals (1 µs for a time in seconds)."""
+    Small values keep at most 6 decimals (1 µs for a time in seconds); a non-zero value
+    those would write as 0, or a huge one, is a power of ten (:func:`powers`)."""
     number = _finite_float(value)
     if number is None:
         return str(value)
     if number == 0:
         return "0"
+    if abs(number) < TINY or abs(number) >= HUGE:  # 6 decimals would say 0; too long
+        return powers(number, significant)
     magnitude = math.floor(math.log10(abs(number)))
     decimals = min(max(significant - 1 - magnitude, 0), 6)
     return fixed(round(number, decimals), decimals)
+
+
+def powers(value: float, significant: int = 6) -> str:
+    """A finite non-zero number as a power of ten for people, never in scientific
+    notation: ``1 × 10^39``, ``-2.5 × 10^-9`` (the mantissa with at most
+    ``significant`` digits, trailing zeros dropped)."""
+    # the "e" format rounds the mantissa and carries into the exponent (9.9999999e38
+    # becomes 1.00000e+39): both are read from its text
+    mantissa, _, exponent = f"{value:.{max(significant, 1) - 1}e}".partition("e")
+    if "." in mantissa:
+        mantissa = mantissa.rstrip("0").rstrip(".")
+    return f"{mantissa} × 10^{int(exponent)}"
 
 
 def grouped(value: int) -> str:
@@ -172,6 +196,8 @@ def shown(value: object) -> str:
         return str(value)
     if abs(number) >= 10_000:
         return as_written(number)
+    if abs(number) < TINY:  # most grounds are times: the screen's 10 µs says 0
+        return fixed(number, SCREEN_S_DECIMALS)
     text = plain(number)
     decimals = text.partition(".")[2]
     return fixed(number, SCREEN_S_DECIMALS) if len(decimals) > SCREEN_S_DECIMALS else text
@@ -203,4 +229,5 @@ def duration(seconds: float) -> str:
 
 
 __all__ = ["amount", "as_written", "duration", "fixed", "grouped", "json_float", "json_time",
-           "json_times", "ms", "plain", "ratio", "secs", "shown", "size_words", "tidy_json"]
+           "json_times", "ms", "plain", "powers", "ratio", "secs", "shown", "size_words",
+           "tidy_json"]

@@ -425,6 +425,8 @@ def test_a_scaling_beyond_float32_in_a_nifti2_header_names_the_range(
     reason = report["runs"][0]["reason"]
     assert code == 1 and "lie beyond the float32 range" in reason, reason
     assert f"(about {float32_range_from_numpy()})" in reason and "e+38" not in reason
+    # the header's own value too (it once read "scl_slope 1e+39")
+    assert "scl_slope 1 × 10^39" in reason and "e+39" not in reason
 
 
 # ------------------------------------------------------------------ item 18

@@ -21,7 +21,7 @@ import pytest
 from click.testing import CliRunner
 
 from slicetime.interfaces.cli import cli
-from slicetime.numbers import as_written, grouped, plain, secs, shown, size_words
+from slicetime.numbers import as_written, grouped, plain, powers, secs, shown, size_words
 from slicetime.pipelines.demo import build_demo_dataset
 from tests.helpers_bids import write_description, write_run, write_sidecar
 
@@ -194,11 +194,36 @@ def test_the_number_rules() -> None:
     assert secs(0.703125) == "0.70312 s"  # 10 µs: round half to even, as format() does
     # a double holds 15 to 17 significant decimal digits (IEEE 754 binary64): a huge
     # value (a SliceTiming entry of 1e308 in a sidecar) is not written out as 309
-    # digits of noise, but as Python's "g" format gives it
-    assert secs(1e308) == f"{1e308:.6g} s" == "1e+308 s"
-    assert as_written(1e308) == plain(1e308) == shown(1e308) == f"{1e308:.6g}"
-    assert as_written(-1e300) == f"{-1e300:.6g}"
+    # digits of noise, but as a power of ten (powers, below)
+    assert secs(1e308) == "1 × 10^308 s"
+    assert as_written(1e308) == plain(1e308) == shown(1e308) == "1 × 10^308"
+    assert as_written(-1e300) == "-1 × 10^300"
     assert as_written(1e12) == f"{10**12:,}"  # below that, grouped digits as before
     assert not number_problems("slice_duration 0.05556 s, 138.89 ms, 109,400 bytes")
     assert number_problems("slice_duration 0.0555555559694767 s")
     assert number_problems("138.889 ms") and number_problems("109400 bytes")
+
+
+def test_huge_and_tiny_values_are_written_as_powers_of_ten() -> None:
+    # mantissa and exponent as Python's "e" presentation type rounds them (format spec
+    # mini-language), written "m × 10^e" instead of "me+e"
+    for value in (1e39, -1e300, 9.99999999e38, 1.5e15, 2.5e-9, 5.551115123125783e-17):
+        mantissa, _, exponent = f"{value:.5e}".partition("e")
+        words = powers(value)
+        assert words.endswith(f" × 10^{int(exponent)}") and "e" not in words
+        assert float(words.split(" × ")[0]) == float(mantissa)
+    assert powers(9.99999999e38) == "1 × 10^39"  # the rounding carries into the exponent
+    # a header's scl_slope of 1e39 (NIfTI-2 stores it as a double, nifti2.h) in the
+    # scaling refusal; the float32 limit as numpy gives it (IEEE 754 binary32 max
+    # 3.4028235e38), two digits, as readers.scratch.float32_range writes it
+    assert plain(1e39) == as_written(1e39) == shown(1e39) == "1 × 10^39"
+    assert plain(float(np.finfo(np.float32).max), 2) == "3.4 × 10^38"
+    from slicetime.readers.scratch import float32_range
+    assert float32_range() == f"±{plain(float(np.finfo(np.float32).max), 2)}"
+    # a non-zero value that 6 decimals would write as 0 (a slope of 2.5e-9) is not 0;
+    # a time keeps the screens' 10 µs, so float noise in seconds is still 0 s
+    assert plain(2.5e-9) == as_written(2.5e-9) == "2.5 × 10^-9"
+    assert plain(-2.5e-9) == "-2.5 × 10^-9" and plain(0.0) == "0"
+    assert secs(5.551115123125783e-17) == "0 s" and shown(5.551115123125783e-17) == "0"
+    assert plain(0.000001) == "0.000001"  # from 1 µs on, fixed decimals as before
+    assert not number_problems(f"scl_slope {plain(1e39)}") and number_problems("scl_slope 1e+39")

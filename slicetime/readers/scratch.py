@@ -13,7 +13,6 @@ from __future__ import annotations
 
 import contextlib
 import ctypes
-import math
 import mmap
 import os
 import sys
@@ -24,7 +23,7 @@ from typing import Any
 
 import numpy as np
 
-from slicetime.numbers import grouped, plain
+from slicetime.numbers import grouped, plain, powers
 
 #: the largest finite float32 (IEEE 754 binary32), as numpy gives it
 FLOAT32_MAX = float(np.finfo(np.float32).max)
@@ -32,9 +31,9 @@ FLOAT32_MAX = float(np.finfo(np.float32).max)
 
 def float32_range() -> str:
     """The float32 range as every message writes it, from :data:`FLOAT32_MAX`:
-    ``±3.4 × 10^38`` (two significant digits, never scientific notation)."""
-    exponent = math.floor(math.log10(FLOAT32_MAX))
-    return f"±{plain(FLOAT32_MAX / 10 ** exponent, 2)} × 10^{exponent}"
+    ``±3.4 × 10^38`` (two significant digits, as :func:`~slicetime.numbers.powers`
+    writes every huge number)."""
+    return f"±{powers(FLOAT32_MAX, 2)}"
 
 __all__ = [
     "DiskBuffer",
