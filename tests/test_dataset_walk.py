@@ -204,3 +204,26 @@ def test_an_sbref_is_not_a_run_found_or_given(tmp_path: Path) -> None:
     write_run(ds, "sub-01/func/sub-01_task-x_sbref (copy).nii.gz", (4, 4, 8, 1), tr=2.0)
     assert "sub-01/func/sub-01_task-x_sbref (copy).nii.gz" in [
         r for _, r in rel(ds, list(iter_runs([ds])))]
+
+
+def test_a_run_word_in_a_name_is_a_suffix_of_the_one_table() -> None:
+    # the words that make a misnamed NIfTI "meant as a run" are exactly the suffixes of
+    # the one table (time series, never-runs, companions), and each is a suffix the BIDS
+    # schema defines (bidsschematools); every other schema suffix is no such word
+    from bidsschematools import schema as bst
+
+    from slicetime.readers import dataset
+    from slicetime.readers.entities import (
+        COMPANION_SUFFIXES,
+        NOT_RUN_SUFFIXES,
+        TIME_SERIES_SUFFIXES,
+        looks_like_run,
+    )
+
+    assert dataset.TIME_SERIES_SUFFIXES is TIME_SERIES_SUFFIXES  # one table, re-exported
+    table = TIME_SERIES_SUFFIXES | set(NOT_RUN_SUFFIXES) | COMPANION_SUFFIXES
+    schema_suffixes = {v["value"] for v in bst.load_schema().objects.suffixes.values()}
+    assert table <= schema_suffixes
+    for suffix in sorted(schema_suffixes):
+        name = f"sub-01_task-rest-{suffix} (copy).nii.gz"  # not a valid BIDS name
+        assert looks_like_run(name, "anat") == (suffix in table), suffix

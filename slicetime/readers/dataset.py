@@ -55,6 +55,8 @@ from slicetime.model import Finding
 from .atomic import check_write_target, within
 from .entities import (
     IMAGE_EXTENSIONS,
+    NOT_RUN_SUFFIXES,
+    TIME_SERIES_SUFFIXES,
     looks_like_run,
     parse_name,
     run_name_problem,
@@ -80,12 +82,6 @@ __all__ = [
     "not_a_run",
 ]
 
-TIME_SERIES_SUFFIXES: frozenset[str] = frozenset({"bold", "cbv", "phase", "asl", "dwi"})
-#: Suffixes never treated as runs, even with SliceTiming in their sidecar or given by
-#: name: why each is not a time series.
-_NOT_RUNS: dict[str, str] = {
-    "sbref": "a single-band reference (sbref): one reference volume, not a time series",
-}
 _NOT_RUN_FOLDERS: frozenset[str] = frozenset({"anat", "fmap"})
 #: Folders not searched unless included (``code`` goes with ``sourcedata``).
 SKIPPED_FOLDERS: frozenset[str] = frozenset({"derivatives", "sourcedata", "code"})
@@ -291,7 +287,7 @@ def not_a_run(name: str) -> str | None:
     """Why a validly named image is never a run (a single-band reference), or None:
     the one owner of that judgement, for the walk and for a file given by name alike."""
     parsed = parse_name(name)
-    return _NOT_RUNS.get(parsed.suffix) if parsed is not None else None
+    return NOT_RUN_SUFFIXES.get(parsed.suffix) if parsed is not None else None
 
 
 def _misnamed_run(name: str, folder: str) -> bool:

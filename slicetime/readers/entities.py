@@ -17,8 +17,11 @@ from dataclasses import dataclass, field
 from slicetime.model import assembled
 
 __all__ = [
+    "COMPANION_SUFFIXES",
     "IMAGE_EXTENSIONS",
+    "NOT_RUN_SUFFIXES",
     "RUN_FOLDERS",
+    "TIME_SERIES_SUFFIXES",
     "ParsedName",
     "image_stem",
     "looks_like_run",
@@ -134,9 +137,23 @@ _SIDECAR_PATHS: dict[str, str] = {}
 
 #: folders whose NIfTI files are time series (BIDS datatypes func, perf, dwi)
 RUN_FOLDERS: frozenset[str] = frozenset({"func", "perf", "dwi"})
-#: a time-series suffix (or a single-band reference) as a word of a name
+#: the suffixes of time series (BIDS): a NIfTI with one of them is a run in any folder
+#: (the one table of them; :mod:`~slicetime.readers.dataset` walks by it)
+TIME_SERIES_SUFFIXES: frozenset[str] = frozenset({"bold", "cbv", "phase", "asl", "dwi"})
+#: suffixes never treated as runs, even with SliceTiming in their sidecar or given by
+#: name: why each is not a time series (``dataset.not_a_run``)
+NOT_RUN_SUFFIXES: Mapping[str, str] = {
+    "sbref": "a single-band reference (sbref): one reference volume, not a time series",
+}
+#: suffixes of images that go with a series and are runs only when their own sidecar
+#: has SliceTiming (an arterial spin labelling series' M0 calibration scan)
+COMPANION_SUFFIXES: frozenset[str] = frozenset({"m0scan"})
+#: any of those suffixes as a word of a name: a file meant as (or beside) a run
 _SERIES_WORD = re.compile(
-    r"(?:^|[^A-Za-z0-9])(?:bold|cbv|phase|asl|dwi|sbref|m0scan)(?:[^A-Za-z0-9]|$)", re.IGNORECASE
+    r"(?:^|[^A-Za-z0-9])(?:"
+    + "|".join(sorted(TIME_SERIES_SUFFIXES | set(NOT_RUN_SUFFIXES) | COMPANION_SUFFIXES))
+    + r")(?:[^A-Za-z0-9]|$)",
+    re.IGNORECASE,
 )
 _ALNUM = re.compile(r"[A-Za-z0-9]+\Z")
 #: a valid run name but for a repeated key (``run_name_problem``'s rules in one pattern)
@@ -146,8 +163,8 @@ _VALID_RUN = re.compile(
 
 def looks_like_run(name: str, folder: str) -> bool:
     """True for a NIfTI name that is meant as a functional run: it sits in a ``func``,
-    ``perf`` or ``dwi`` folder, or a word of its name is a time-series suffix (``bold``,
-    ``cbv``, ``phase``, ``asl``, ``dwi``) or ``sbref``/``m0scan`` (``_bold (copy)``,
+    ``perf`` or ``dwi`` folder, or a word of its name is a suffix of the tables above
+    (``bold``, ``cbv``, ``phase``, ``asl``, ``dwi``, ``sbref``, ``m0scan``; ``_bold (copy)``,
     ``task-rest-eyes_bold``). Hidden names (``.``, e.g. ``._`` metadata forks) never are.
     Whether the name is valid is :func:`run_name_problem`."""
     if name.startswith("."):
