@@ -77,6 +77,28 @@ def test_a_very_early_ctrl_c_in_correct_leaves_nothing(tmp_path: Path,
     assert not out.exists()  # this batch made the folder, and leaves none behind
 
 
+def test_a_ctrl_c_before_any_run_in_a_reused_out_names_the_description_it_left(
+        tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    # --out existed before the batch, so the dataset_description.json written before the
+    # first run (BIDS derivatives: a derivative dataset has its own description) stays;
+    # the line says exactly that, never "nothing written"
+    root = _dataset(tmp_path / "ds")
+    out = tmp_path / "aligned"
+    out.mkdir()
+
+    def stopped(job: Any, items: Sequence[Any], **_: Any) -> list[Any]:
+        raise Interrupted([None] * len(items))
+
+    monkeypatch.setattr(batch_module, "map_chunks", stopped)
+    result = CliRunner().invoke(cli, ["correct", str(root), "--out", str(out)])
+    description = out / "dataset_description.json"
+    assert result.exit_code == 130 and description.is_file()
+    lines = [line for line in result.output.splitlines() if "interrupted" in line]
+    assert len(lines) == 1 and "before any run was corrected" in lines[0], result.output
+    assert "nothing written" not in lines[0] and str(description) in lines[0]
+    assert sorted(p.name for p in out.iterdir()) == [description.name]
+
+
 def test_nii_and_nii_gz_copies_of_one_run_are_flagged(tmp_path: Path) -> None:
     root = _dataset(tmp_path / "ds", runs=1)
     write_run(root, "sub-01/func/sub-01_task-x_bold.nii", shape=(4, 4, 6, 8), tr=2.0)

@@ -49,18 +49,18 @@ class DemoRefused(click.ClickException):
 
 
 class DemoInterrupted(KeyboardInterrupt):
-    """Ctrl-C during the tour: :attr:`line` says at which step, and that ``out`` holds
-    the demo's files so far, incomplete (the demo rebuilds the folder when rerun)."""
+    """Ctrl-C during the tour: :attr:`what` says at which step, and that ``out`` holds
+    the demo's files so far, incomplete (the demo rebuilds the folder when rerun); the
+    command prints it with ``shared.interrupted``."""
 
     def __init__(self, step: str, out: Path, complete: bool) -> None:
         super().__init__("interrupted")
         if complete:
-            self.line = (f"slicetime: interrupted while the demo's last summary was "
-                         f"printed; every file of the demo is written in {out}")
+            self.what = (f"while the demo's last summary was printed; every file of the "
+                         f"demo is written in {out}")
         else:
-            self.line = (f"slicetime: interrupted during the demo ({step}); {out} holds "
-                         f"only part of the demo's files (rerun slicetime demo --out {out} "
-                         "to rebuild it)")
+            self.what = (f"during the demo ({step}); {out} holds only part of the demo's "
+                         f"files (rerun slicetime demo --out {out} to rebuild it)")
 
 
 def command_name() -> str:

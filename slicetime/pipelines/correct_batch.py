@@ -217,7 +217,12 @@ def _correct_locked(
             _finish(options, roots, links, result, created_out,
                     unfinished=[run.record.path for run, _ in items
                                 if run.record.path not in done_paths])
-        raise CorrectInterrupted(result, len(items) - len(finished)) from None
+            description = options.out / "dataset_description.json"
+            # no run finished: the description written before the batch is all there is,
+            # unless this batch made --out and so took it away again (_finish)
+            kept = (f"no run written, only {description} (naming the inputs)"
+                    if describing and not finished and description.exists() else None)
+        raise CorrectInterrupted(result, len(items) - len(finished), kept) from None
     # every run is done: the outputs in place and the records written whole, whatever
     # signal arrives now (noted: the batch is reported finished, and says so)
     with signals_noted() as late:
@@ -345,12 +350,15 @@ class NotStarted(KeyboardInterrupt):
 
 
 class CorrectInterrupted(KeyboardInterrupt):
-    """Ctrl-C during a batch: ``result`` holds the runs that finished."""
+    """Ctrl-C during a batch: ``result`` holds the runs that finished; ``written``, when
+    none did, says what is on disk all the same (None: nothing)."""
 
-    def __init__(self, result: CorrectResult, not_finished: int) -> None:
+    def __init__(self, result: CorrectResult, not_finished: int,
+                 written: str | None = None) -> None:
         super().__init__("interrupted")
         self.result = result
         self.not_finished = not_finished
+        self.written = written
 
 
 def _finish(

@@ -12,7 +12,6 @@ import click
 
 from slicetime.interfaces.commands import shared
 from slicetime.interfaces.commands.shared import UserError, friendly
-from slicetime.interfaces.screen import say
 
 
 def _engine_names() -> Sequence[str]:
@@ -170,11 +169,10 @@ def _interrupted(stop: KeyboardInterrupt) -> NoReturn:
         shared.interrupted("before any run was corrected; nothing written (rerun the same "
                            "command)")
     if not stop.result.runs:  # nothing finished: no summary of zero runs
-        say(f"slicetime: interrupted before any run was corrected; nothing written "
-            f"({count(stop.not_finished, 'run')} to do: rerun the same command)", err=True)
-        sys.exit(130)
+        written = "nothing written" if stop.written is None else stop.written
+        shared.interrupted(f"before any run was corrected; {written} "
+                           f"({count(stop.not_finished, 'run')} to do: rerun the same command)")
     render_correct(stop.result, make_console(sys.stderr))
     them = "it" if stop.not_finished == 1 else "them"
-    say(f"slicetime: interrupted; {count(stop.not_finished, 'run')} not finished "
-        f"(rerun the same command to finish {them})", err=True)
-    sys.exit(130)
+    shared.interrupted(f"; {count(stop.not_finished, 'run')} not finished "
+                       f"(rerun the same command to finish {them})")

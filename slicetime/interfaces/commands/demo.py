@@ -7,7 +7,7 @@ from pathlib import Path
 
 import click
 
-from slicetime.interfaces.commands.shared import friendly
+from slicetime.interfaces.commands.shared import friendly, interrupted
 
 
 @click.command()
@@ -17,11 +17,9 @@ from slicetime.interfaces.commands.shared import friendly
 def demo(out: Path) -> None:
     """Run the whole job on a small invented study (audit, verify, fix, correct)."""
     from slicetime.interfaces.demo_tour import DemoInterrupted, run_demo
-    from slicetime.interfaces.screen import say
 
     try:
         code = run_demo(out)
     except DemoInterrupted as stop:  # one line: the step, and what the folder holds
-        say(stop.line, err=True)
-        sys.exit(130)
+        interrupted(stop.what)
     sys.exit(code)
