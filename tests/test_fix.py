@@ -610,3 +610,32 @@ def test_left_alone_findings_with_many_own_hints_are_summed_up(ds: Path) -> None
     lines = [x for x in fix(ds).output.splitlines() if "header/tr-disagrees ×" in x]
     assert len(lines) == HINTS_SHOWN + 1
     assert "2 other hints" in lines[-1] and "header/tr-disagrees ×2" in lines[-1]
+
+
+def test_a_planned_change_hashes_the_bytes_it_read_without_reading_the_file_again(
+        ds: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    # the plan's sha256_before is the SHA-256 (hashlib, FIPS 180-4) of the sidecar's
+    # bytes as planned, taken from the text already read for the edit; no file is
+    # hashed again while planning (the transaction re-checks just before it writes)
+    import hashlib
+
+    from slicetime.pipelines import fix as fixing
+    from slicetime.pipelines import journal
+
+    rel = run_path("01")
+    write_run(ds, rel, shape=SHAPE, tr=TR,
+              sidecar={"RepetitionTime": TR, "SliceTiming": [t * 1000 for t in interleaved()]})
+    hashed: list[str] = []
+    real = journal.file_sha256
+
+    def counting(path: Path) -> str:
+        hashed.append(str(path))
+        return real(path)
+
+    monkeypatch.setattr(journal, "file_sha256", counting)
+    plan = fixing.plan_fix([ds])
+    sidecar = ds / rel.replace(".nii.gz", ".json").replace(".nii", ".json")
+    changed = [c for c in plan.changes if c.file == str(sidecar.relative_to(ds))]
+    assert len(changed) == 1, [c.file for c in plan.changes]
+    assert changed[0].sha256_before == hashlib.sha256(sidecar.read_bytes()).hexdigest()
+    assert [h for h in hashed if h.endswith(".json") and "dataset_description" not in h] == []

@@ -43,8 +43,8 @@ from slicetime.pipelines.journal import (
     TransactionError,
     check_root,
     confinement_problem,
-    current_sha,
     read_document,
+    sha256_of,
 )
 from slicetime.pipelines.json_splice import DELETE, Layout, scan, splice
 from slicetime.pipelines.transaction import (
@@ -496,7 +496,6 @@ def _movable(moves: Sequence[tuple[str, Repair]], plan: FixPlan,
 def _build_change(
     root: str, file: str, fields: dict[str, list[Repair]], plan: FixPlan, texts: _Texts
 ) -> FileChange | None:
-    path = Path(root) / file
     try:
         before = texts.get(root, file)
     except (OSError, UnicodeDecodeError, ValueError) as exc:
@@ -526,7 +525,12 @@ def _build_change(
             return None
     if after == before:
         return None
-    return FileChange(root, file, before, after, current_sha(path), chosen)
+    # the hash of the bytes just read (their text decodes and encodes back byte for
+    # byte), not of a second read: the plan's "before" and its hash are one state of the
+    # file. The transaction hashes the file again just before it writes (preflight and
+    # backup): that re-check is the safety, a file changed since the plan is refused
+    sha = None if before is None else sha256_of(before.encode("utf-8"))
+    return FileChange(root, file, before, after, sha, chosen)
 
 
 def _reason(exc: BaseException) -> str:
