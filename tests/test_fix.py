@@ -634,8 +634,8 @@ def test_a_planned_change_hashes_the_bytes_it_read_without_reading_the_file_agai
 
     monkeypatch.setattr(journal, "file_sha256", counting)
     plan = fixing.plan_fix([ds])
-    sidecar = ds / rel.replace(".nii.gz", ".json").replace(".nii", ".json")
-    changed = [c for c in plan.changes if c.file == str(sidecar.relative_to(ds))]
+    sidecar = ds / sidecar_of(rel)
+    changed = [c for c in plan.changes if c.file == sidecar_of(rel)]
     assert len(changed) == 1, [c.file for c in plan.changes]
     assert changed[0].sha256_before == hashlib.sha256(sidecar.read_bytes()).hexdigest()
     assert [h for h in hashed if h.endswith(".json") and "dataset_description" not in h] == []
