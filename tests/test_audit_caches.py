@@ -72,6 +72,12 @@ def _odd_dataset(root: Path, *, label: str = "") -> None:
             "../../sub-00/func/sub-00_task-rest_bold.nii.gz")
     symlink(root / "sub-01/func/sub-01_task-link_bold.json",
             "../../sub-00/func/sub-00_task-ms_bold.json")
+    # a subject folder that is a link to another, a sidecar that links out of the dataset
+    symlink(root / "sub-50", "sub-00")
+    outside = write_json(root.parent / f"outside{label}.json",
+                         {"SliceTiming": MS, "RepetitionTime": 2.0})
+    write_run(root, "sub-01/func/sub-01_task-out_bold.nii.gz", shape=SHAPE)
+    symlink(root / "sub-01/func/sub-01_task-out_bold.json", outside)
     # headers alike byte for byte: one file truncated, two with the same broken header
     for sub in ("sub-02", "sub-03"):
         image = write_run(root, f"{sub}/func/{sub}_task-cut_bold.nii", shape=SHAPE,
@@ -109,7 +115,7 @@ def test_odd_names_links_and_alike_contents_report_as_without_the_memo(
     if fmt == "json":
         report = json.loads(warm)
         paths = _run_paths(warm)
-        assert len(paths) == len(set(paths)) == len(ODD_FOLDERS) * 6 + 6
+        assert len(paths) == len(set(paths)) == len(ODD_FOLDERS) * 6 + 7
         # each millisecond finding names the file that gave the value (BIDS, "The
         # Inheritance Principle": the value is the deepest sidecar's), one per run
         named = {run["path"]: {f["file"] for f in run["findings"]
@@ -226,3 +232,23 @@ def test_caches_smaller_than_the_study_change_nothing(
     assert warm == cold
     assert len(nifti._DECODED) <= 3
     assert len(report_source._templates) <= 3
+
+
+def test_a_second_dataset_in_the_same_process_reports_as_in_a_fresh_one(
+        tmp_path: Path) -> None:
+    # the second dataset has the first one's names and own sidecars byte for byte (the
+    # sidecar parse and the header decode kept by their bytes), but its headers say
+    # another TR (NIfTI-1, nifti1.h: pixdim[4]) and its shared sidecar another one
+    first, second = tmp_path / "a", tmp_path / "b"
+    _odd_dataset(first, label="a")
+    _odd_dataset(second, label="b")
+    write_json(second / "task-inh_bold.json", {"RepetitionTime": 3.0, "SliceTiming": MS})
+    for folder in ("func", 'fu"nc'):
+        write_run(second, f"sub-00/{folder}/sub-00_task-rest_bold.nii.gz", shape=SHAPE, tr=3.0,
+                  sidecar={"SliceTiming": TIMES, "RepetitionTime": 2.0})
+    _audit(first, "--jobs", "1")
+    here = _audit(second, "--jobs", "1")
+    assert here == _fresh(second)
+    flagged = [run["path"] for run in json.loads(here)["runs"]
+               if any(f["code"] == "header/tr-disagrees" for f in run["findings"])]
+    assert "sub-00/func/sub-00_task-rest_bold.nii.gz" in flagged
