@@ -103,7 +103,7 @@ def _run_paths(report: str) -> list[str]:
     return [run["path"] for run in json.loads(report)["runs"]]
 
 
-@pytest.mark.parametrize("fmt", ["json", "text"])
+@pytest.mark.parametrize("fmt", ["json", "text", "tsv", "jsonl", "junit"])
 def test_odd_names_links_and_alike_contents_report_as_without_the_memo(
         tmp_path: Path, monkeypatch: pytest.MonkeyPatch, fmt: str) -> None:
     root = tmp_path / "odd"
@@ -252,3 +252,17 @@ def test_a_second_dataset_in_the_same_process_reports_as_in_a_fresh_one(
     flagged = [run["path"] for run in json.loads(here)["runs"]
                if any(f["code"] == "header/tr-disagrees" for f in run["findings"])]
     assert "sub-00/func/sub-00_task-rest_bold.nii.gz" in flagged
+
+
+def test_the_html_report_is_the_one_made_without_the_memo(
+        tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    root = tmp_path / "odd"
+    _odd_dataset(root)
+    pages = []
+    for memo in (True, False):
+        page = tmp_path / f"report-{memo}.html"
+        _audit(root, "--jobs", "1", "--html", page, "-q", memo=memo, monkeypatch=monkeypatch,
+               fmt="text")
+        pages.append(page.read_text(encoding="utf-8"))
+    assert pages[0] == pages[1]
+    assert "sub-03_task-ms_bold.json" in pages[0]  # a run's own file named in the page
