@@ -203,35 +203,54 @@ def test_the_api_called_again_after_files_changed_reports_what_is_there_now(
     assert again == _fresh(root)
 
 
+@pytest.mark.parametrize("small", ["memo", "fragments"])
 def test_caches_smaller_than_the_study_change_nothing(
-        tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
-    # every bounded cache full and emptied (or no longer learning) many times in one
-    # audit; each stays within its bound (memory on 100,000 runs) and the report is the
-    # one made without the memo and with every header decoded afresh
+        tmp_path: Path, monkeypatch: pytest.MonkeyPatch, small: str) -> None:
+    # bounded caches full and emptied (or no longer learning) many times in one audit:
+    # the memo's tables and the facts interned per content ("memo"), or the header
+    # decodes and the report lines per content ("fragments", with the memo as it is);
+    # each stays within its bound (memory on 100,000 runs) and the report is the one
+    # made without the memo and with every header decoded afresh
     root = tmp_path / "odd"
     _odd_dataset(root)
-    for n in range(12):  # contents that differ (shape and TR), each at two places
+    for n in range(12):  # clean contents that differ (shape and TR), each at two places
         for sub in ("p", "q"):
             write_run(root, f"sub-{sub}{n:02d}/func/sub-{sub}{n:02d}_task-rest_bold.nii.gz",
-                      shape=(4, 4, 10, 6 + n),
+                      shape=(4, 4, 10, 6 + n), tr=2.0 + n / 10,
                       sidecar={"SliceTiming": TIMES, "RepetitionTime": 2.0 + n / 10})
-    cold_decode = nifti._decode_fields
-    monkeypatch.setattr(nifti, "_decoded", cold_decode)
+    monkeypatch.setattr(nifti, "_decoded", nifti._decode_fields)
     cold = _audit(root, "--jobs", "1", memo=False, monkeypatch=monkeypatch)
     monkeypatch.undo()
-    monkeypatch.setattr(nifti, "_DECODED_KEPT", 3)
-    monkeypatch.setattr(report_source, "_FRAGMENTS_MAX", 3)
-    monkeypatch.setattr(audit_memo, "MEMO_KEPT", 5)
-    monkeypatch.setattr(audit_memo, "_TRIAL", 2)
-    from slicetime.pipelines import audit_facts
-    monkeypatch.setattr(audit_facts, "CONTENTS_KEPT", 2)
-    monkeypatch.setattr(audit_facts, "IDENTITIES_KEPT", 2)
+    if small == "memo":
+        from slicetime.pipelines import audit_facts
+
+        monkeypatch.setattr(audit_memo, "MEMO_KEPT", 5)
+        monkeypatch.setattr(audit_memo, "_TRIAL", 2)
+        monkeypatch.setattr(audit_facts, "CONTENTS_KEPT", 2)
+        monkeypatch.setattr(audit_facts, "IDENTITIES_KEPT", 2)
+    else:
+        monkeypatch.setattr(nifti, "_DECODED_KEPT", 3)
+        monkeypatch.setattr(report_source, "_FRAGMENTS_MAX", 3)
     nifti._DECODED.clear()
     report_source._templates.clear()
+    memos: list[audit_memo.ContentMemo] = []
+    real = audit_memo.memo_for
+
+    def recording(store: Any) -> audit_memo.ContentMemo | None:
+        memo = real(store)
+        if memo is not None and memo not in memos:
+            memos.append(memo)
+        return memo
+
+    monkeypatch.setattr("slicetime.pipelines.audit.memo_for", recording)
     warm = _audit(root, "--jobs", "1", memo=True, monkeypatch=monkeypatch)
     assert warm == cold
-    assert len(nifti._DECODED) <= 3
-    assert len(report_source._templates) <= 3
+    assert memos and sum(m.reused for m in memos) > 0
+    if small == "memo":
+        assert all(len(m._timings) <= 5 and len(m._checks) <= 5 for m in memos)
+    else:
+        assert len(nifti._DECODED) <= 3
+        assert len(report_source._templates) <= 3
 
 
 def test_a_second_dataset_in_the_same_process_reports_as_in_a_fresh_one(
