@@ -27,6 +27,7 @@ from slicetime.pipelines import audit_memo
 from slicetime.readers import nifti
 from slicetime.schemes.generate import Protocol, slice_timing
 from tests.helpers_bids import patch_header, symlink, write_description, write_json, write_run
+from tests.test_audit_memo import _memos
 
 TIMES = slice_timing(Protocol(n_slices=10, order="interleaved", repetition_time=2.0,
                               decimals=4))
@@ -233,16 +234,7 @@ def test_caches_smaller_than_the_study_change_nothing(
         monkeypatch.setattr(report_source, "_FRAGMENTS_MAX", 3)
     nifti._DECODED.clear()
     report_source._templates.clear()
-    memos: list[audit_memo.ContentMemo] = []
-    real = audit_memo.memo_for
-
-    def recording(store: Any) -> audit_memo.ContentMemo | None:
-        memo = real(store)
-        if memo is not None and memo not in memos:
-            memos.append(memo)
-        return memo
-
-    monkeypatch.setattr("slicetime.pipelines.audit.memo_for", recording)
+    memos = _memos(monkeypatch)  # every memo the audit makes
     warm = _audit(root, "--jobs", "1", memo=True, monkeypatch=monkeypatch)
     assert warm == cold
     assert memos and sum(m.reused for m in memos) > 0
