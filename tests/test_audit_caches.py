@@ -129,6 +129,21 @@ def test_odd_names_links_and_alike_contents_report_as_without_the_memo(
         flagged = [any(f["code"] == "header/tr-disagrees" for f in run["findings"])
                    for run in header_tr]
         assert flagged == [n % 2 == 1 for n in range(len(ODD_FOLDERS))], flagged
+        # NIfTI-1 (nifti1.h): dim[0] is 1 to 7, and the file holds vox_offset plus the
+        # data; the header is alike byte for byte in both runs, the finding is each file's
+        read_problems = {run["path"]: {(f["code"], f["file"]) for f in run["findings"]
+                                       if f["code"].startswith("file/")}
+                         for run in report["runs"] if "_task-bad_" in run["path"]
+                         or "_task-cut_" in run["path"]}
+        assert read_problems == {
+            "sub-02/func/sub-02_task-bad_bold.nii":
+                {("file/bad-dimensions", "sub-02/func/sub-02_task-bad_bold.nii")},
+            "sub-03/func/sub-03_task-bad_bold.nii":
+                {("file/bad-dimensions", "sub-03/func/sub-03_task-bad_bold.nii")},
+            "sub-02/func/sub-02_task-cut_bold.nii": set(),
+            "sub-03/func/sub-03_task-cut_bold.nii":
+                {("file/truncated", "sub-03/func/sub-03_task-cut_bold.nii")},
+        }
         for path, files in named.items():
             if "_task-ms_" in path:
                 assert files == {path.replace(".nii.gz", ".json")}, path
