@@ -574,3 +574,23 @@ def test_cli_a_series_that_is_not_bold_type_is_left_undecided(
     assert run["verdict"] == "undecidable", run
     assert run["finding"]["evidence"]["reason"].startswith(kind)
     assert code == 0
+
+
+def test_cli_a_tr_no_run_can_have_is_undecidable_for_the_tr_not_the_data(
+        tmp_path: Path) -> None:
+    # the TR bounds have one owner (model.implausible_repetition: the audit's
+    # tr/implausible, correct's gate); a TR of 0.01 s once went on to the data and came
+    # back "too little shared signal", not the TR the audit calls impossible
+    from slicetime.model import implausible_repetition
+
+    tr = 0.01
+    times = [t * tr / TR for t in _interleaved(12)]
+    data = _run(tuple(times), seed=9, volumes=60)
+    path = write_run(tmp_path, "sub-01/func/sub-01_task-x_bold.nii", data=data.astype(np.int16),
+                     dtype=np.int16, tr=tr, sidecar={"RepetitionTime": tr, "SliceTiming": times})
+    code, out, _ = _cli("verify", str(path), "--format", "json")
+    run = json.loads(out)["runs"][0]
+    reason = run["finding"]["evidence"]["reason"]
+    problem = implausible_repetition(tr)
+    assert problem is not None and run["verdict"] == "undecidable" and problem in reason
+    assert "RepetitionTime" in reason and code == 0

@@ -30,7 +30,13 @@ import numpy as np
 
 from slicetime.codes import make_finding
 from slicetime.engines import verify as ev
-from slicetime.model import MAX_REPETITION_TIME, Finding, RunRecord, Severity, SliceSchedule
+from slicetime.model import (
+    Finding,
+    RunRecord,
+    Severity,
+    SliceSchedule,
+    implausible_repetition,
+)
 from slicetime.numbers import as_written, secs
 from slicetime.readers.errors import ReadError
 from slicetime.readers.volumes import VolumeReader, scaling
@@ -261,9 +267,10 @@ def verify_record(record: RunRecord, *, seed: int = 0) -> VerifyOutcome:
                             "to check")
     if schedule is None or schedule.repetition_time is None:
         return _undecidable(record, "no slice schedule or repetition time is known")
-    if schedule.repetition_time > MAX_REPETITION_TIME:
-        return _undecidable(record, f"RepetitionTime ({as_written(schedule.repetition_time)}) "
-                            "is not in seconds (slicetime audit reports it)")
+    implausible = implausible_repetition(schedule.repetition_time)
+    if implausible is not None:  # the audit's tr/implausible, correct's gate: one owner
+        return _undecidable(record, f"RepetitionTime ({as_written(schedule.repetition_time)} "
+                            f"s) is {implausible} (slicetime audit reports it)")
     if schedule.volume_times is not None:
         return _undecidable(record, "volumes are not evenly spaced (VolumeTiming)")
     kind = not_bold_series(series_kind(record))
