@@ -330,3 +330,21 @@ def test_a_ctrl_c_while_correct_prepares_its_folder_says_what_may_be_written(
         f"corrected; no output written, {out / 'dataset_description.json'} (naming the "
         "inputs) may have been (rerun the same command)")
     assert not any(out.rglob("*.nii*"))
+
+
+@pytest.mark.parametrize("args", [
+    ["audit", "{ds}"], ["correct", "{ds}", "--out", "{tmp}/aligned"], ["fix", "{ds}"],
+    ["pin", "{ds}", "--output", "{tmp}/policy.toml"], ["show", "{ds}/" + RUN],
+    ["demo", "--out", "{tmp}/demo"],
+])
+def test_a_ctrl_c_as_a_command_starts_says_nothing_was_written(
+        dataset: Path, tmp_path: Path, args: list[str]) -> None:
+    # a Ctrl-C while a command loads its modules and reads its options, before its first
+    # stage told itself: nothing is written yet, and the line says so (it said "what was
+    # written, if anything, is not known", friendly's last resort)
+    before = {p: p.stat().st_mtime_ns for p in dataset.rglob("*")}
+    given = [a.replace("{ds}", str(dataset)).replace("{tmp}", str(tmp_path)) for a in args]
+    stopped = run(f"{args[0]}:start", *given)
+    assert one_line(stopped) == "slicetime: interrupted before anything was done; nothing written"
+    assert {p: p.stat().st_mtime_ns for p in dataset.rglob("*")} == before
+    assert [p.name for p in tmp_path.iterdir()] == [dataset.name]

@@ -73,18 +73,19 @@ def audit(
     source_map: Path | None,
 ) -> None:
     """Audit every run under PATHS (dataset roots, subject folders or run files)."""
-    from slicetime.interfaces.progress import progress_reporter
-    from slicetime.interfaces.report_source import RunSpool, run_line
-    from slicetime.interfaces.report_stream import summary_line
-    from slicetime.interfaces.safe_text import xml_safe
-    from slicetime.pipelines.audit import audit_stream
-    from slicetime.pipelines.executor import Interrupted
-    from slicetime.readers.dataset import check_writes
+    with shared.starting("audit"):
+        from slicetime.interfaces.progress import progress_reporter
+        from slicetime.interfaces.report_source import RunSpool, run_line
+        from slicetime.interfaces.report_stream import summary_line
+        from slicetime.interfaces.safe_text import xml_safe
+        from slicetime.pipelines.audit import audit_stream
+        from slicetime.pipelines.executor import Interrupted
+        from slicetime.readers.dataset import check_writes
 
-    check_writes(list(paths), {"--output": output, "--html": html_file},
-                 inputs=[policy_file, source_map])
-    if html_file is not None:
-        _require_matplotlib("--html")
+        check_writes(list(paths), {"--output": output, "--html": html_file},
+                     inputs=[policy_file, source_map])
+        if html_file is not None:
+            _require_matplotlib("--html")
     root_given = str(paths[0]) if len(paths) == 1 else " ".join(str(p) for p in paths)
     spool = RunSpool(root_given)
     drawings = None

@@ -93,34 +93,35 @@ def correct(
       slicetime correct ds/ --out ds/derivatives/slicetime
       slicetime correct ds/sub-01 --out aligned --method cubic --reference 1.0
     """
-    from slicetime.engines.plan import ReferenceChoice
-    from slicetime.interfaces.report_json import correct_object, dumps
-    from slicetime.interfaces.safe_text import xml_safe
-    from slicetime.interfaces.terminal import make_console, progress_reporter, render_correct
-    from slicetime.pipelines.correct import CorrectOptions
-    from slicetime.pipelines.correct_batch import correct_paths
-    from slicetime.pipelines.memory import parse_size
-    from slicetime.pipelines.signals import signals_noted, test_point
-    from slicetime.rules.correction import parse_accept
+    with shared.starting("correct"):
+        from slicetime.engines.plan import ReferenceChoice
+        from slicetime.interfaces.report_json import correct_object, dumps
+        from slicetime.interfaces.safe_text import xml_safe
+        from slicetime.interfaces.terminal import make_console, progress_reporter, render_correct
+        from slicetime.pipelines.correct import CorrectOptions
+        from slicetime.pipelines.correct_batch import correct_paths
+        from slicetime.pipelines.memory import parse_size
+        from slicetime.pipelines.signals import signals_noted, test_point
+        from slicetime.rules.correction import parse_accept
 
-    try:
-        choice = ReferenceChoice.parse(reference)
-    except ValueError as exc:
-        raise UserError(f"--reference: {exc}") from None
-    cap = None
-    if max_memory is not None:
         try:
-            cap = parse_size(max_memory)
+            choice = ReferenceChoice.parse(reference)
         except ValueError as exc:
-            raise UserError(f"--max-memory: {exc}") from None
-    try:
-        accepted = tuple(parse_accept(text) for text in accepts)
-    except ValueError as exc:
-        raise UserError(f"--accept: {exc}") from None
-    options = CorrectOptions(out=out, method=method, reference=choice, desc=desc,
-                             keep_dtype=keep_dtype, force=force, max_memory=cap, threads=0,
-                             mix_inputs=mix_inputs, accepts=accepted,
-                             omit_leading=omit_leading)
+            raise UserError(f"--reference: {exc}") from None
+        cap = None
+        if max_memory is not None:
+            try:
+                cap = parse_size(max_memory)
+            except ValueError as exc:
+                raise UserError(f"--max-memory: {exc}") from None
+        try:
+            accepted = tuple(parse_accept(text) for text in accepts)
+        except ValueError as exc:
+            raise UserError(f"--accept: {exc}") from None
+        options = CorrectOptions(out=out, method=method, reference=choice, desc=desc,
+                                 keep_dtype=keep_dtype, force=force, max_memory=cap, threads=0,
+                                 mix_inputs=mix_inputs, accepts=accepted,
+                                 omit_leading=omit_leading)
     result = None
     late = False
     try:

@@ -7,7 +7,7 @@ from pathlib import Path
 
 import click
 
-from slicetime.interfaces.commands.shared import friendly, interrupted
+from slicetime.interfaces.commands.shared import friendly, interrupted, starting
 
 
 @click.command()
@@ -16,7 +16,8 @@ from slicetime.interfaces.commands.shared import friendly, interrupted
 @friendly
 def demo(out: Path) -> None:
     """Run the whole job on a small invented study (audit, verify, fix, correct)."""
-    from slicetime.interfaces.demo_tour import DemoInterrupted, run_demo
+    with starting("demo"):
+        from slicetime.interfaces.demo_tour import DemoInterrupted, run_demo
 
     try:
         code = run_demo(out)

@@ -23,6 +23,7 @@ from slicetime.interfaces.commands.shared import (
     say_finished_despite_interrupt,
     source_options,
     source_settings,
+    starting,
 )
 from slicetime.interfaces.screen import say
 
@@ -97,12 +98,13 @@ def fix(
     during --apply puts back what was written; after a kill, the next fix or
     undo does.
     """
-    from slicetime.interfaces.safe_text import xml_safe
-    from slicetime.interfaces.terminal import make_console, render_fix_plan
-    from slicetime.pipelines import fix as fixing
-    from slicetime.pipelines.signals import test_point
+    with starting("fix"):
+        from slicetime.interfaces.safe_text import xml_safe
+        from slicetime.interfaces.terminal import make_console, render_fix_plan
+        from slicetime.pipelines import fix as fixing
+        from slicetime.pipelines.signals import test_point
 
-    console = make_console()
+        console = make_console()
     try:
         if undo_journal is not None:
             if len(paths) > 1 or do_apply:

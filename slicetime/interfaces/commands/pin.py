@@ -11,6 +11,7 @@ from slicetime.interfaces.commands.shared import (
     UserError,
     friendly,
     interrupted,
+    starting,
     walking_options,
 )
 from slicetime.interfaces.screen import say
@@ -33,17 +34,18 @@ def pin(paths: tuple[Path, ...], output: Path | None, include_derivatives: bool,
     it as slicetime-policy.toml at the dataset root: later deviations then fail
     the audit (policy/* findings). Nothing in the dataset is changed.
     """
-    from slicetime.pipelines.pin import pin_protocols, policy_text
-    from slicetime.pipelines.signals import test_point
+    with starting("pin"):
+        from slicetime.pipelines.pin import pin_protocols, policy_text
+        from slicetime.pipelines.signals import test_point
 
     try:
         test_point("pin:audit")
         entries, untasked = pin_protocols(
             list(paths), include_derivatives=include_derivatives,
             include_sourcedata=include_sourcedata, include_hidden=include_hidden)
+        text = policy_text(entries, ", ".join(p.as_posix() for p in paths), untasked)
     except KeyboardInterrupt:
         interrupted("while the runs were audited; no policy written")
-    text = policy_text(entries, ", ".join(p.as_posix() for p in paths), untasked)
     if output is None:
         try:
             test_point("pin:print")

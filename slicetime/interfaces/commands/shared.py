@@ -173,6 +173,14 @@ def on_interrupt(what: str, point: str | None = None) -> Iterator[None]:
         interrupted(what)
 
 
+def starting(command: str) -> contextlib.AbstractContextManager[None]:
+    """A command's start (its imports, its options read and checked), before its first
+    stage that tells a Ctrl-C itself: nothing is written there, and a Ctrl-C says so,
+    not :func:`friendly`'s "what was written, if anything, is not known". The tests'
+    hook is ``<command>:start``."""
+    return on_interrupt("before anything was done; nothing written", f"{command}:start")
+
+
 def interruptible(what: str, point: str | None = None) -> Callable[[F], F]:
     """A command whose every Ctrl-C not told more precisely inside ends with
     :func:`interrupted` (``what``): for commands that write no file, or as the outer

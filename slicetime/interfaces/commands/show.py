@@ -16,6 +16,7 @@ from slicetime.interfaces.commands.shared import (
     friendly,
     interrupted,
     policy_option,
+    starting,
 )
 from slicetime.model import FailOn
 
@@ -40,25 +41,26 @@ def show(file: Path, fmt: str, former_json: bool, fail_on: str,
     bytes only) with the lab policy, so the dataset-wide checks are included.
     A DICOM file or series folder shows the series' own slice times and scheme.
     """
-    from slicetime.interfaces.report_json import dumps, run_object
-    from slicetime.interfaces.terminal import make_console, render_show
-    from slicetime.model import Counts
-    from slicetime.pipelines.audit import inspect_run
-    from slicetime.readers.dicom import is_dicom_input
+    with starting("show"):
+        from slicetime.interfaces.report_json import dumps, run_object
+        from slicetime.interfaces.terminal import make_console, render_show
+        from slicetime.model import Counts
+        from slicetime.pipelines.audit import inspect_run
+        from slicetime.pipelines.signals import test_point
+        from slicetime.readers.dicom import is_dicom_input
 
-    if former_json:
-        former_spelling("show --json", "show --format json")
-    as_json = former_json or fmt == "json"
-    from slicetime.pipelines.signals import test_point
-
-    if is_dicom_input(str(file)):
+        if former_json:
+            former_spelling("show --json", "show --format json")
+        as_json = former_json or fmt == "json"
+        series = is_dicom_input(str(file))
+        target = None if series else _show_target(file)
+    if target is None:
         try:
             test_point("show:series")
             _show_series(file, as_json)
         except KeyboardInterrupt:
             _interrupted("while the series was read or shown")
         return
-    target = _show_target(file)
     try:
         test_point("show:audit")
         run = inspect_run(target, policy_file=policy_file)
