@@ -322,14 +322,22 @@ def test_a_ctrl_c_during_undo_stops_between_files_and_the_rerun_finishes(
 
 def test_a_ctrl_c_while_correct_prepares_its_folder_says_what_may_be_written(
         dataset: Path, tmp_path: Path) -> None:
+    # a --out the batch made, stopped before its description was written: nothing is
+    # written and the folder is gone (the line once said the description may have been)
     out = tmp_path / "aligned"
-    stopped = run("correct:describe", "correct", str(dataset), "--out", str(out),
-                  "--jobs", "1", "--no-progress")
+    args = ["correct", str(dataset), "--out", str(out), "--jobs", "1", "--no-progress"]
+    stopped = run("correct:describe", *args)
+    assert one_line(stopped) == (
+        "slicetime: interrupted while the output folder was prepared, before any run was "
+        "corrected; nothing written (rerun the same command)")
+    assert not out.exists()
+    # a reused --out that holds a description: it may have been rewritten
+    assert run("none", *args).returncode == 0
+    stopped = run("correct:describe", *args)
     assert one_line(stopped) == (
         "slicetime: interrupted while the output folder was prepared, before any run was "
         f"corrected; no output written, {out / 'dataset_description.json'} (naming the "
         "inputs) may have been (rerun the same command)")
-    assert not any(out.rglob("*.nii*"))
 
 
 @pytest.mark.parametrize("args", [

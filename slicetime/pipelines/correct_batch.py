@@ -179,9 +179,12 @@ def _correct_locked(
             test_point("correct:describe")
             _describe(options.out, roots, links, options)
     except KeyboardInterrupt:
+        # written atomically: absent now, it was not written (and a --out this batch made
+        # is taken away again, empty)
+        description = options.out / "dataset_description.json"
         raise NotStarted("while the output folder was prepared",
-                         f"no output written, {options.out / 'dataset_description.json'} "
-                         "(naming the inputs) may have been" if describing else None) from None
+                         f"no output written, {description} (naming the inputs) may have "
+                         "been" if describing and description.exists() else None) from None
     items = [(run, names[run.record.root]) for run in audit.runs
              if run.record.abs_path not in clashes]
     started = time.time()
