@@ -677,3 +677,46 @@ def test_a_trailing_dimension_of_one_is_the_four_d_run(tmp_path: Path) -> None:
     assert outs[1].shape == (4, 4, 6, 12, 1)  # the header's dimensions kept
     np.testing.assert_array_equal(np.asarray(outs[1].dataobj)[..., 0],
                                   np.asarray(outs[0].dataobj))
+
+
+def test_a_kernel_without_the_prefault_advice_corrects_the_same(
+        dataset: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    # madvise(2): EINVAL "advice is invalid" (a kernel before 5.14 knows no
+    # MADV_POPULATE_WRITE): the helper's calls fail, every page faults in as it is
+    # touched, and the output is the one numpy.empty's buffer gives, as close to the
+    # sampled sinusoids at the reference time as ever (the textbook identity that a
+    # band-limited signal is recovered by Fourier interpolation)
+    import ctypes
+    import threading
+
+    from slicetime.readers import scratch
+
+    libc = ctypes.CDLL(None, use_errno=True)
+    page = ctypes.c_void_p(ctypes.addressof(ctypes.create_string_buffer(1)) & ~4095)
+    assert libc.madvise(page, 4096, -1) == -1 and ctypes.get_errno() == 22  # EINVAL
+    shape = (16, 16, 16, 60)
+    times = interleaved(16)
+    build_run(dataset, REL, times, shape=shape)
+    outputs = {}
+    helped: list[str] = []
+    populate = scratch._populate
+
+    def spied(*args: Any) -> None:
+        helped.append(name)
+        populate(*args)
+
+    monkeypatch.setattr(scratch, "_populate", spied)
+    for name, advice, threshold in (("empty", scratch.MADV_POPULATE_WRITE, 1 << 62),
+                                    ("invalid", -1, 1 << 16),
+                                    ("advised", scratch.MADV_POPULATE_WRITE, 1 << 16)):
+        monkeypatch.setattr(scratch, "MADV_POPULATE_WRITE", advice)
+        monkeypatch.setattr(scratch, "PREFAULT_BYTES", threshold)
+        out = tmp_path / name
+        result = run_cli("correct", dataset, "--out", out, "--reference", "1.0")
+        assert result.exit_code == 0, result.output
+        outputs[name] = np.asarray(nib.load(output_of(out, REL)).dataobj)
+        assert not [t for t in threading.enumerate() if t.name == "slicetime-prefault"]
+    assert helped == ["invalid", "advised"]  # the mapping and its helper, not numpy.empty
+    assert np.array_equal(outputs["invalid"], outputs["empty"])
+    assert np.array_equal(outputs["advised"], outputs["empty"])
+    assert interior_error(output_of(tmp_path / "invalid", REL), truth_at(shape, 1.0)) < 0.2
