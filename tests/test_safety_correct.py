@@ -14,6 +14,7 @@ import os
 from pathlib import Path
 from typing import Any
 
+import numpy as np
 import pytest
 from click.testing import CliRunner
 
@@ -245,3 +246,79 @@ def test_correct_paths_refuses_a_locked_out_as_a_usage_error(ds: Path, tmp_path:
     with folder_lock(out), pytest.raises(ValueError, match="another slicetime correct"):
         correct_paths([ds], CorrectOptions(out=out))
     assert files_under(out) == []
+
+
+class _HeldWrites:
+    """The output file, whose writes wait until ``release`` is set (the disk is slow)."""
+
+    def __init__(self, raw: Any) -> None:
+        import threading
+
+        self.raw = raw
+        self.started, self.release = threading.Event(), threading.Event()
+        self.written: list[int] = []
+
+    def write(self, data: Any) -> int:
+        self.started.set()
+        self.release.wait(60)
+        count = int(self.raw.write(data))
+        self.written.append(count)
+        return count
+
+    def __getattr__(self, name: str) -> Any:
+        return getattr(self.raw, name)
+
+
+def test_a_ctrl_c_while_the_writer_waits_for_its_helpers_comes_after_the_batch(
+        tmp_path: Path) -> None:
+    # Python's signal module: a handler runs in the main thread between bytecodes, so an
+    # unguarded KeyboardInterrupt can be raised inside the thread pool's own locking (a
+    # condition entered from Python code) and leave its lock held: 'correct' once hung
+    # there for ever after a Ctrl-C while writing. The writer holds a Ctrl-C until its
+    # helpers' batch is done, then raises it, and abort ends every helper thread.
+    import signal
+    import sys
+    import threading
+
+    from slicetime.readers.volumes import VolumeWriter
+
+    writer = VolumeWriter(tmp_path / "out.nii", b"\0" * 352, compress=False)
+    held = _HeldWrites(writer._raw)
+    writer._raw = held  # type: ignore[assignment]
+    main = threading.main_thread().ident
+    assert main is not None
+
+    def in_settle() -> bool:
+        frame = sys._current_frames().get(main)
+        while frame is not None:
+            name = frame.f_code.co_name
+            if name in ("_settle", "settle") and frame.f_code.co_filename.endswith("volumes.py"):
+                return True
+            frame = frame.f_back
+        return False
+
+    def press_ctrl_c() -> None:
+        held.started.wait(60)
+        for _ in range(6000):  # until the main thread waits for the batch
+            if in_settle():
+                break
+            threading.Event().wait(0.01)
+        signal.pthread_kill(main, signal.SIGINT)
+        for _ in range(200):  # an unguarded wait is interrupted at once
+            if not in_settle():
+                break
+            threading.Event().wait(0.01)
+        held.release.set()
+
+    writer.write(np.arange(1000, dtype=np.float32))
+    presser = threading.Thread(target=press_ctrl_c)
+    presser.start()
+    written_when_interrupted: list[int] | None = None
+    try:
+        writer.settle()
+    except KeyboardInterrupt:
+        written_when_interrupted = list(held.written)
+    presser.join()
+    writer.abort()
+    assert written_when_interrupted == [4000]  # raised, and after the batch was written
+    assert not [t for t in threading.enumerate() if t.name.startswith("slicetime-write")]

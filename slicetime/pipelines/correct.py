@@ -699,10 +699,15 @@ def _drain(
 def _closing_with(writer: VolumeWriter, work: Callable[[], _Result]) -> _Result:
     """Close ``writer`` (the encoder's last blocks, then ``fsync``: mostly a wait on the
     disk) in a helper thread while ``work`` runs here; return what ``work`` returns,
-    after the close (whose error, if any, is raised)."""
+    after the close (whose error, if any, is raised). A Ctrl-C is raised after both,
+    never inside the helper's thread pool (``readers.signals``: it could leave the
+    pool's lock held and the close waiting for ever)."""
     from concurrent.futures import ThreadPoolExecutor
 
-    with ThreadPoolExecutor(max_workers=1, thread_name_prefix="slicetime-close") as closer:
+    from slicetime.readers.signals import signals_held
+
+    with signals_held(), \
+            ThreadPoolExecutor(max_workers=1, thread_name_prefix="slicetime-close") as closer:
         closed = closer.submit(writer.close)
         try:
             done = work()

@@ -6,7 +6,9 @@ and provenance) or while a finished command prints its summary must not leave a
 half-written record or a report that says "interrupted" about work that was done.
 :func:`signals_noted` defers such signals for a block: the block runs to its end and
 the caller reads what arrived and says honestly what happened (finished, or
-interrupted before the steps that remained).
+interrupted before the steps that remained). It lives in
+:mod:`slicetime.readers.signals` (below the pipelines: the writer's helper threads use
+it too) and is imported here.
 
 :func:`test_point` is the private hook the tests use to send SIGINT at a named point
 (DEVELOPERS.md, "Interrupting at a chosen point"): when the environment variable
@@ -16,36 +18,13 @@ there. Nothing else reads that variable.
 
 from __future__ import annotations
 
-import contextlib
 import os
 import signal
-import threading
-from collections.abc import Iterator
-from typing import Any
+
+from slicetime.readers.signals import signals_noted
 
 #: the environment variable that names the point where :func:`test_point` signals
 TEST_POINT_VARIABLE = "SLICETIME_TEST_SIGINT_AT"
-
-
-@contextlib.contextmanager
-def signals_noted() -> Iterator[list[int]]:
-    """While the block runs, SIGINT and SIGTERM are noted in the list it yields instead
-    of stopping the process at once (a signal can arrive only in the main thread;
-    elsewhere nothing changes). The former handlers are back after the block."""
-    got: list[int] = []
-    if threading.current_thread() is not threading.main_thread():
-        yield got
-        return
-
-    def note(signum: int, frame: Any) -> None:
-        got.append(signum)
-
-    previous = {sig: signal.signal(sig, note) for sig in (signal.SIGINT, signal.SIGTERM)}
-    try:
-        yield got
-    finally:
-        for sig, handler in previous.items():
-            signal.signal(sig, handler)
 
 
 def test_point(name: str) -> None:

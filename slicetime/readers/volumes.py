@@ -50,6 +50,7 @@ from slicetime.numbers import plain
 from .errors import ReadError, open_regular, os_error
 from .nifti import HEADER_LAYOUT, data_offset_problem, extension_problem
 from .scratch import FLOAT32_MAX, float32_range
+from .signals import signals_held
 
 _threaded_gzip: Any
 _GZIP_ERRORS: tuple[type[BaseException], ...] = (zlib.error, gzip.BadGzipFile, EOFError)
@@ -498,16 +499,21 @@ class VolumeWriter:
                 )
         else:
             self._stream = self._hashing
-        self._stream.write(prefix)
+        with signals_held():
+            self._stream.write(prefix)
 
     def write(self, volumes: np.ndarray) -> None:
+        with signals_held():  # never a Ctrl-C inside the helpers' locks (readers.signals)
+            self._write(volumes)
+
+    def _write(self, volumes: np.ndarray) -> None:
         data = np.ascontiguousarray(volumes).reshape(-1).view(np.uint8).data
         if self._stream is not self._hashing:
             self._stream.write(data)  # the encoder's writer thread hashes what it writes
             return
         # uncompressed: one helper thread writes the bytes, another hashes them (both
         # release the GIL), in order, while the caller prepares the next batch
-        self.settle()
+        self._settle()
         if self._helpers is None:
             from concurrent.futures import ThreadPoolExecutor
 
@@ -518,7 +524,12 @@ class VolumeWriter:
 
     def settle(self) -> None:
         """Wait until the last batch given to :meth:`write` is written and hashed
-        (raises the ``OSError`` its write met)."""
+        (raises the ``OSError`` its write met). A Ctrl-C while it waits is raised once
+        the batch is done, as in :meth:`write`, :meth:`close` and :meth:`abort`."""
+        with signals_held():
+            self._settle()
+
+    def _settle(self) -> None:
         pending, self._pending = self._pending, []
         for future in pending:
             future.result()
@@ -529,26 +540,28 @@ class VolumeWriter:
             helpers.shutdown(wait=True)
 
     def close(self) -> None:
-        try:
-            self.settle()
-        finally:
-            self._stop_helpers()
-        if self._stream is not self._hashing:
-            self._stream.close()
-        self._raw.flush()
-        os.fsync(self._raw.fileno())
-        self._raw.close()
-
-    def abort(self) -> None:
-        try:
-            self.settle()
+        with signals_held():
+            try:
+                self._settle()
+            finally:
+                self._stop_helpers()
             if self._stream is not self._hashing:
                 self._stream.close()
-        except Exception:
-            pass
-        finally:
-            self._stop_helpers()
-        self._raw.close()
+            self._raw.flush()
+            os.fsync(self._raw.fileno())
+            self._raw.close()
+
+    def abort(self) -> None:
+        with signals_held():
+            try:
+                self._settle()
+                if self._stream is not self._hashing:
+                    self._stream.close()
+            except Exception:
+                pass
+            finally:
+                self._stop_helpers()
+            self._raw.close()
 
     def sha256(self) -> str:
         return self._digest.hexdigest()
