@@ -42,12 +42,12 @@ from typing import Any
 
 from slicetime.model import (
     AXES,
-    MAX_REPETITION_TIME,
     MIN_REPETITION_TIME,
     TIME_TOLERANCE,
     Finding,
     RunRecord,
     Severity,
+    implausible_repetition,
 )
 from slicetime.numbers import secs
 from slicetime.policy.model import ExpectedProtocol
@@ -107,16 +107,13 @@ def _repair(record: RunRecord, code: str, key: str, value: Any, source: str,
     )
 
 
-#: the repetition times a trusted window may have, in seconds (the model's bounds)
-PLAUSIBLE_TR = (MIN_REPETITION_TIME, MAX_REPETITION_TIME)
-
-
 def _trusted_window(record: RunRecord) -> tuple[float, float] | None:
     """The TR and the window the times must fit, when it comes from evidence that is itself trusted.
 
-    Only a RepetitionTime (or VolumeTiming) written in a sidecar in seconds, inside
-    :data:`PLAUSIBLE_TR`, qualifies: a TR from the header (whose units may be
-    wrong), one written in milliseconds or an implausible one settles nothing. A
+    Only a RepetitionTime (or VolumeTiming) written in a sidecar in seconds, a plausible
+    TR (``model.implausible_repetition``, the one judgement of the bounds), qualifies:
+    a TR from the header (whose units may be wrong), one written in milliseconds or an
+    implausible one settles nothing. A
     shorter FrameAcquisitionDuration or DelayTime window narrows it only when it is
     itself plausible (inside the TR and not below the lower bound); otherwise it is
     ignored. Every value is the resolved timing's (seconds, one unit verdict each).
@@ -134,11 +131,10 @@ def _trusted_window(record: RunRecord) -> tuple[float, float] | None:
             and timing.unit("VolumeTiming") == "s":
         vt = schedule.volume_times
         tr = min(vt[i + 1] - vt[i] for i in range(len(vt) - 1))
-    low, high = PLAUSIBLE_TR
-    if tr is None or not low <= tr <= high:
+    if tr is None or implausible_repetition(tr) is not None:
         return None
     acq = timing.window
-    if acq is not None and low <= acq <= tr:
+    if acq is not None and MIN_REPETITION_TIME <= acq <= tr:
         return tr, acq
     return tr, tr
 
