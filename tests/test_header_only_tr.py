@@ -136,6 +136,34 @@ def test_a_header_tr_that_is_no_plausible_tr_in_its_unit_gives_no_tr(tmp_path: P
     assert "repetition time  not usable" in out and "2000 s" not in out
 
 
+def test_correct_names_pixdim4_when_the_headers_tr_is_refused(tmp_path: Path) -> None:
+    # NIfTI-1 (nifti1.h): pixdim[4] is the time step, in the unit xyzt_units states;
+    # with no RepetitionTime in any sidecar that is the run's TR, so a refusal of it
+    # names pixdim[4] in the image, not a "RepetitionTime 2000" no sidecar holds
+    import numpy as np
+
+    root = tmp_path / "ds"
+    write_description(root)
+    rel = "sub-01/func/sub-01_task-a_bold.nii.gz"
+    (root / rel).parent.mkdir(parents=True)
+    image = nib.Nifti1Image(np.ones((4, 4, 4, 10), np.int16), np.eye(4))
+    image.header.set_xyzt_units("mm", "sec")
+    image.header["pixdim"][4] = 2000.0
+    nib.save(image, root / rel)
+    (root / rel.replace(".nii.gz", ".json")).write_text(json.dumps(
+        {"TaskName": "a", "SliceTiming": [0.0, 0.5, 0.25, 0.75]}))
+    code, out = invoke("correct", str(root), "--out", str(tmp_path / "out"),
+                       "--format", "json", "--no-progress")
+    run = json.loads(out)["runs"][0]
+    refusal = next(f for f in run["blocking_findings"]
+                   if f["code"] == "correct/implausible-timing")
+    assert code == 1 and run["status"] == "refused"
+    assert refusal["field"] == "pixdim[4]" and refusal["file"] == rel
+    assert refusal["message"].startswith("pixdim[4] 2000 ")
+    assert "RepetitionTime 2000" not in run["reason"]
+    assert "write RepetitionTime from the protocol" in run["reason"]  # the audit's advice
+
+
 def test_a_file_given_by_a_name_that_is_not_bids_is_said_so(tmp_path: Path) -> None:
     # nibabel's functional.nii: a real 4-D image, named as no BIDS run is (BIDS file
     # naming: sub-<label>[_<key>-<label>...]_<suffix>); given by path it is audited, and

@@ -73,10 +73,13 @@ def check_plausible(schedule: SliceSchedule) -> None:
     problem = implausible_repetition(tr) if tr is not None else None
     if tr is not None and problem is not None:
         guess = " (milliseconds?)" if tr > high_tr else ""
+        # the field the TR was read from: the header's pixdim[4] when no sidecar gives one
+        source = schedule.sources.get("RepetitionTime")
+        name = source.field if source is not None and source.kind == "header" \
+            else "RepetitionTime"
         raise ImplausibleTiming(
-            f"RepetitionTime {as_written(tr)} is {problem}{guess}, so the run cannot be "
-            "corrected even with --force",
-            "RepetitionTime")
+            f"{name} {as_written(tr)} is {problem}{guess}, so the run cannot be "
+            "corrected even with --force", name)
     if schedule.volume_times is not None:
         onsets = np.asarray(schedule.volume_times, dtype=np.float64)
         steps = np.diff(onsets)

@@ -370,7 +370,10 @@ def _refusal(
         codes = ", ".join(sorted({f.code for f in errors}))
         # what to do is the audit's own advice for the value (its finding's hint), so
         # correct and audit say the same of the run
-        advice = next((f.hint for f in errors if f.field == exc.field and f.hint), None)
+        # (a header's pixdim[4] stands in for a missing RepetitionTime: the audit's advice
+        # on RepetitionTime, tr/missing, is about it)
+        fields = {exc.field, "RepetitionTime"} if exc.field == "pixdim[4]" else {exc.field}
+        advice = next((f.hint for f in errors if f.field in fields and f.hint), None)
         then = f". {advice}" if advice else "; see slicetime show"
         raise ImplausibleTiming(f"{exc} (the audit found {codes}){then}", exc.field) from None
     problem = scaling_problem(record.header)
