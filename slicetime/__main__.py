@@ -1,4 +1,4 @@
-from slicetime.interfaces.cli import main
+from slicetime.interfaces.entry import main
 
 if __name__ == "__main__":
     main()

@@ -356,3 +356,24 @@ def test_a_ctrl_c_as_a_command_starts_says_nothing_was_written(
     assert one_line(stopped) == "slicetime: interrupted before anything was done; nothing written"
     assert {p: p.stat().st_mtime_ns for p in dataset.rglob("*")} == before
     assert [p.name for p in tmp_path.iterdir()] == [dataset.name]
+
+
+def test_a_ctrl_c_while_the_command_line_loads_is_one_line_not_a_traceback() -> None:
+    # the console entry point guards the import of click and the command modules: a
+    # KeyboardInterrupt raised as click loads (what a Ctrl-C in the first hundredths of
+    # a second does) ends with the line every command gives before its first stage,
+    # exit 130 (128 + SIGINT, common practice (no source))
+    program = (
+        "import sys\n"
+        "class Interrupt:\n"
+        "    def find_spec(self, name, path=None, target=None):\n"
+        "        if name == 'click':\n"
+        "            raise KeyboardInterrupt\n"
+        "sys.meta_path.insert(0, Interrupt())\n"
+        "from slicetime.interfaces.entry import main\n"
+        "main()\n"
+    )
+    done = subprocess.run([sys.executable, "-c", program, "audit", "."], capture_output=True,
+                          text=True, timeout=60)
+    assert done.returncode == 130
+    assert done.stderr == "slicetime: interrupted before anything was done; nothing written\n"

@@ -119,7 +119,7 @@ def _console_script() -> Path:
         pytest.skip("slicetime is not installed; the console script cannot be checked")
     scripts = {ep.name: ep.value for ep in dist.entry_points if ep.group == "console_scripts"}
     # Python packaging entry points specification: console_scripts name = module:function
-    assert scripts.get("slicetime") == "slicetime.interfaces.cli:main"
+    assert scripts.get("slicetime") == "slicetime.interfaces.entry:main"
     beside = Path(sys.executable).parent / "slicetime"
     found = beside if beside.exists() else shutil.which("slicetime")
     assert found is not None, "the slicetime console script is not on PATH"

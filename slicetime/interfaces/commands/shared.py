@@ -19,6 +19,8 @@ from typing import Any, Literal, NoReturn, TypeVar
 
 import click
 
+from slicetime.interfaces.entry import EXIT_INTERRUPTED as ENTRY_EXIT_INTERRUPTED
+from slicetime.interfaces.entry import STARTING
 from slicetime.interfaces.screen import say
 
 F = TypeVar("F", bound=Callable[..., Any])
@@ -26,9 +28,9 @@ F = TypeVar("F", bound=Callable[..., Any])
 EXIT_FINDINGS = 1
 EXIT_USAGE = 2
 EXIT_INTERNAL = 3
-#: 128 + SIGINT's number 2, as a shell reports a process a Ctrl-C ended (common
-#: practice (no source))
-EXIT_INTERRUPTED = 130
+#: 128 + SIGINT's number 2, as a shell reports a process a Ctrl-C ended (the entry
+#: point's, which it needs before click loads)
+EXIT_INTERRUPTED = ENTRY_EXIT_INTERRUPTED
 
 
 class RegistryChoice(click.Choice):
@@ -178,7 +180,7 @@ def starting(command: str) -> contextlib.AbstractContextManager[None]:
     stage that tells a Ctrl-C itself: nothing is written there, and a Ctrl-C says so,
     not :func:`friendly`'s "what was written, if anything, is not known". The tests'
     hook is ``<command>:start``."""
-    return on_interrupt("before anything was done; nothing written", f"{command}:start")
+    return on_interrupt(STARTING, f"{command}:start")
 
 
 def interruptible(what: str, point: str | None = None) -> Callable[[F], F]:
