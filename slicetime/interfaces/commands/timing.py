@@ -71,21 +71,27 @@ def timing(
     from slicetime.numbers import as_written, plain
     from slicetime.schemes.generate import Protocol, array_times, slice_timing, timing_problem
     from slicetime.schemes.infer import infer_scheme
+    from slicetime.schemes.resolve import repetition_time_unit
 
     if tr is None:
         raise UserError("timing: give --tr (and --delay-time for sparse protocols)")
     for option, value in (("--tr", tr), ("--delay-time", delay)):
-        if value is not None and not math.isfinite(value):
+        if value is None:
+            continue
+        if not math.isfinite(value):
             raise UserError(f"timing: {option} must be a finite number of seconds "
                             f"(got {value})")
-        if value is not None and value / 1000 > _MS_LIKE_SECONDS:
+        # the unit as the audit reads a sidecar TR (schemes.resolve), and the bounds
+        # (model.implausible_repetition): neither is decided here again
+        verdict = repetition_time_unit(value, "RepetitionTime")
+        if not verdict.usable:
             raise UserError(f"timing: {option} {as_written(value)} is no plausible time, "
                             f"in seconds or read as milliseconds (a TR lies between "
                             f"{plain(MIN_REPETITION_TIME)} and {plain(MAX_REPETITION_TIME)} s)")
-        if option == "--tr" and value is not None and value < MIN_REPETITION_TIME:
-            raise UserError(f"timing: --tr {as_written(value)} is "
-                            f"{implausible_repetition(value)}")
-        if value is not None and value > _MS_LIKE_SECONDS:
+        problem = implausible_repetition(value) if option == "--tr" else None
+        if problem is not None and verdict.unit == "s":
+            raise UserError(f"timing: --tr {as_written(value)} is {problem}")
+        if verdict.unit == "ms":
             raise UserError(f"timing: {option} {as_written(value)}: times are in seconds, "
                             f"and {as_written(value)} looks like milliseconds; did you mean "
                             f"{option} {plain(value / 1000)}?")
@@ -136,9 +142,6 @@ def timing(
     say(f"scheme in data-array order: {label}", err=True)
 
 
-#: a TR or delay above this many seconds was written in milliseconds (the
-#: audit's tr/units-ms uses the same bound)
-_MS_LIKE_SECONDS = MAX_REPETITION_TIME
 #: the protocol's parameter names and the options the user typed for them
 _OPTION_OF = {
     "n_slices": "--slices",
